@@ -1,0 +1,6 @@
+"""Absorbing layers (CAP or mask) per face, and CAP strength tuning."""
+from .layers import Absorber, FaceLayer, face_names
+from .tuning import cap_profile, return_probability, tune_cap_strength
+
+__all__ = ["Absorber", "FaceLayer", "face_names", "cap_profile", "return_probability",
+           "tune_cap_strength"]

@@ -1,0 +1,230 @@
+"""Adequacy report of a job before a long run: ``wavesweep check``.
+
+Each item is a finding with numbers, in the job's units:
+
+* momentum the grid resolves (pi/dx per axis) against the packet's reach
+  |p0| + 6 sigma_p (numerics notes; margin of 6 sigma is common practice);
+  a packet the grid cannot represent (|p0| + 3 sigma_p above pi/dx) is an
+  error, raised by :func:`representability` for ``run`` as well;
+* distance of the packet centre from edges and absorbers in units of its
+  width (8 sigma_x of margin is common practice);
+* time step: phase per step E dt / hbar of the packet's highest kinetic
+  energy and of the grid's kinetic range;
+* absorber: thickness against the longest wavelength it must absorb, and
+  the computed worst return probability over the packet's energy window;
+* memory, disk for the snapshots, and run time from a short timed trial.
+"""
+from __future__ import annotations
+
+import math
+import time as _time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .absorbers.tuning import cap_profile, return_probability
+from .errors import JobError
+from .fft import make_transform
+from .jobfile import Job
+from .states import central_momenta, momentum_spread
+
+__all__ = ["Finding", "Report", "check_job", "representability"]
+
+
+@dataclass
+class Finding:
+    topic: str
+    level: str        # "ok", "warn", "error"
+    message: str
+    values: dict = field(default_factory=dict)
+
+
+@dataclass
+class Report:
+    title: str
+    findings: list
+
+    @property
+    def errors(self):
+        return [f for f in self.findings if f.level == "error"]
+
+    def text(self) -> str:
+        mark = {"ok": "  ok ", "warn": "WARN ", "error": "ERROR"}
+        lines = [f"check: {self.title}"]
+        lines += [f"{mark[f.level]} {f.topic:<10} {f.message}" for f in self.findings]
+        n_w = sum(f.level == "warn" for f in self.findings)
+        lines.append(f"{len(self.errors)} error(s), {n_w} warning(s)")
+        return "\n".join(lines)
+
+    def as_dict(self) -> dict:
+        return {"title": self.title, "findings": [f.__dict__ for f in self.findings]}
+
+
+def _gaussian_parts(packet):
+    if packet["kind"] == "gaussian":
+        return [packet]
+    if packet["kind"] == "superposition":
+        return [q for p in packet["packets"] for q in _gaussian_parts(p)]
+    return []
+
+
+def representability(setup, findings=None):
+    """Momentum coverage per axis; raises JobError if the grid cannot
+    represent the packet (|p0| + 3 sigma_p > pi/dx)."""
+    u = setup.units
+    pf = u.factor("momentum")
+    for part in _gaussian_parts(setup.packet):
+        p0 = central_momenta(part, setup.mass, setup.grid.ndim, "packet")
+        for i, ax in enumerate(setup.grid.axes):
+            sp = momentum_spread(part["width"][i])
+            reach6, reach3 = abs(p0[i]) + 6 * sp, abs(p0[i]) + 3 * sp
+            kmax = math.pi / ax.dx
+            need = math.ceil(ax.length * reach6 / math.pi) + 1
+            if reach3 > kmax:
+                raise JobError(f"grid.{ax.name}.points",
+                               f"the grid resolves |p| up to {kmax / pf:.4g} but the packet reaches "
+                               f"{reach3 / pf:.4g} (|p0| + 3 sigma); use at least {need} points")
+            if findings is not None:
+                level = "ok" if reach6 <= kmax else "warn"
+                findings.append(Finding(
+                    "momentum", level,
+                    f"{ax.name}: grid resolves |p| <= {kmax / pf:.4g} {u.unit_label('momentum')}; packet "
+                    f"|p0| + 6 sigma_p = {reach6 / pf:.4g} ({reach6 / kmax:.0%} of the range)"
+                    + ("" if level == "ok" else f"; use >= {need} points"),
+                    {"axis": ax.name, "k_max": kmax / pf, "packet_reach": reach6 / pf}))
+
+
+def check_job(job: Job, trial_seconds: float = 1.0) -> Report:
+    """Findings for a job (builds the run's objects and times a short trial)."""
+    from .simulation import Setup
+
+    findings: list[Finding] = []
+    setup = Setup(job)
+    u = setup.units
+    lf, tf, ef = u.factor("length"), u.factor("time"), u.factor("energy")
+    L, T, E = u.unit_label("length"), u.unit_label("time"), u.unit_label("energy")
+    representability(setup, findings)
+    table = job.table
+
+    # distances from edges and absorbers
+    th = u.to_atomic(table["absorber"]["thickness"], "length") if setup.absorber.active else 0.0
+    for part in _gaussian_parts(setup.packet):
+        for i, ax in enumerate(setup.grid.axes):
+            x0, w = part["center"][i], part["width"][i]
+            edges = [(x0 - ax.min, f"{ax.name}-"), (ax.max - x0, f"{ax.name}+")]
+            if setup.grid.radial:
+                edges = [(x0, "r = 0"), (ax.max - x0, "r+")]
+            for dist, face in edges:
+                layer = th if any(layer.name == face for layer in setup.absorber.layers) else 0.0
+                margin = (dist - layer) / w
+                level = "ok" if margin >= 8 else ("warn" if margin > 3 else "error")
+                what = "absorber" if layer else "edge"
+                findings.append(Finding("margin", level,
+                    f"packet centre is {margin:.1f} widths from the {face} {what} "
+                    f"({(dist - layer) / lf:.4g} {L}; 8 widths is common practice)",
+                    {"face": face, "widths": margin}))
+
+    # time step
+    dt = setup.dt
+    e_pk = 0.0
+    for part in _gaussian_parts(setup.packet):
+        p0 = central_momenta(part, setup.mass, setup.grid.ndim, "packet")
+        e_pk = max(e_pk, sum((abs(p) + 6 * momentum_spread(w)) ** 2 for p, w in zip(p0, part["width"]))
+                   / (2 * setup.mass))
+    t_max = setup.grid.kinetic_max(setup.mass)
+    v = setup.hamiltonian.static_potential
+    v_span = float(v.max() - v.min())
+    phase = e_pk * dt
+    level = "ok" if phase <= 1.0 else ("warn" if phase <= math.pi else "error")
+    findings.append(Finding("time step", level,
+        f"phase per step: packet's highest kinetic energy {phase:.3g} rad (<= 1 is common practice), "
+        f"grid's kinetic range {t_max * dt:.3g} rad, potential range {v_span * dt:.3g} rad "
+        f"(dt = {dt / tf:g} {T})",
+        {"packet_phase": phase, "grid_phase": t_max * dt, "potential_phase": v_span * dt}))
+    if setup.scheme.name == "chebyshev":
+        from .propagators.chebyshev import Chebyshev
+        prop = Chebyshev(setup.hamiltonian, dt, make_transform(setup.grid, "scipy"), setup.absorber)
+        findings.append(Finding("time step", "ok",
+            f"chebyshev: {len(prop.coefficients)} terms per step", {"terms": len(prop.coefficients)}))
+
+    # absorber
+    if setup.absorber.active:
+        faxes = sorted({layer.axis for layer in setup.absorber.layers})
+        for i in faxes:
+            e_lo, e_hi = setup.energy_window(i)
+            plo, _ = setup.momentum_window()[i]
+            lam = 2 * math.pi / max(math.sqrt(2 * setup.mass * e_lo), 1e-300)
+            energies = np.geomspace(e_lo, e_hi, 48)
+            depth = np.linspace(0.0, th, 513)
+            if setup.absorber.kind == "cap":
+                strength = u.to_atomic(table["absorber"]["strength"], "energy")
+                rate = cap_profile(depth, th, strength, table["absorber"]["power"])
+            else:
+                s = np.clip(depth / th, 0, 1 - 1e-9)
+                rate = -np.log(np.cos(0.5 * np.pi * s) ** table["absorber"]["mask_exponent"]) / dt
+            worst = float(np.max(return_probability(depth, rate, setup.mass, energies)))
+            level = "ok" if worst <= 1e-6 else ("warn" if worst <= 1e-3 else "error")
+            findings.append(Finding("absorber", level,
+                f"{setup.grid.axes[i].name}: thickness {th / lf:.4g} {L} vs longest wavelength "
+                f"{lam / lf:.4g} {L}; worst return probability {worst:.2e} over "
+                f"{e_lo / ef:.4g}..{e_hi / ef:.4g} {E} (target 1e-6)",
+                {"axis": setup.grid.axes[i].name, "worst_return": worst,
+                 "e_min": e_lo / ef, "e_max": e_hi / ef}))
+    else:
+        findings.append(Finding("absorber", "ok" if setup.grid.axes[0].boundary == "box" else "warn",
+                                "no absorber: probability reaching the edges "
+                                + ("reflects off the walls" if setup.grid.axes[0].boundary == "box"
+                                   else "wraps around the periodic grid")))
+
+    # memory and disk
+    itemsize = np.dtype(setup.dtype).itemsize
+    psi_bytes = setup.grid.size * itemsize
+    n_kicks = 2 if setup.scheme.name == "strang" else 4
+    estimate = psi_bytes * (3 + n_kicks + 2) + setup.grid.size * 8 * 3
+    findings.append(Finding("memory", "ok",
+        f"psi {psi_bytes / 2**20:.1f} MiB; run about {estimate / 2**20:.0f} MiB",
+        {"psi_bytes": psi_bytes, "estimate_bytes": estimate}))
+    stride = table["record"]["stride"]
+    frame = int(np.prod([math.ceil(a.points / stride) for a in setup.grid.axes])) * 4
+    n_snap = setup.total_steps // setup.snapshot_steps + 1
+    n_samp = setup.total_steps // setup.sample_steps + 1
+    disk = frame * n_snap + n_samp * 8 * (8 + len(setup.detectors) + len(setup.absorber.layers))
+    findings.append(Finding("disk", "ok",
+        f"{n_snap} snapshots of {frame / 2**10:.0f} KiB, {n_samp} samples: at most "
+        f"{disk / 2**20:.1f} MiB before compression",
+        {"snapshots": n_snap, "samples": n_samp, "bytes": disk}))
+
+    # timed trial
+    findings.append(_trial(setup, trial_seconds))
+    return Report(job.title, findings)
+
+
+def _trial(setup, seconds) -> Finding:
+    from .observables import Observer
+
+    transform = make_transform(setup.grid, setup.fft_backend, setup.dtype, setup.threads)
+    prop = setup.make_propagator(transform)
+    psi = setup.psi0.astype(setup.dtype)
+    psi = prop.step(psi, 1)  # compiles the kernels and warms the caches
+    n, t0 = 0, _time.perf_counter()
+    while _time.perf_counter() - t0 < seconds and n < setup.total_steps:
+        chunk = max(1, min(setup.sample_steps, 50))
+        psi = prop.step(psi, chunk)
+        n += chunk
+    per_step = (_time.perf_counter() - t0) / max(n, 1)
+    obs = Observer(setup.grid, setup.mass, transform, setup.detectors, setup.psi0)
+    t1 = _time.perf_counter()
+    obs.measure(psi, setup.hamiltonian.potential(prop.t))
+    per_sample = _time.perf_counter() - t1
+    total = per_step * setup.total_steps + per_sample * (setup.total_steps // setup.sample_steps + 1)
+    return Finding("run time", "ok",
+        f"{per_step * 1e3:.3g} ms per step over {n} trial steps; {setup.total_steps} steps: "
+        f"about {_human(total)}", {"seconds_per_step": per_step, "estimate_seconds": total})
+
+
+def _human(seconds: float) -> str:
+    if seconds < 90:
+        return f"{seconds:.0f} s"
+    if seconds < 5400:
+        return f"{seconds / 60:.0f} min"
+    return f"{seconds / 3600:.1f} h"

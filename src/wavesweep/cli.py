@@ -1,0 +1,93 @@
+"""Command line: parses arguments and calls the library (nothing else).
+
+Exit status: 0 success, 2 bad input (one line on stderr), 1 otherwise.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+
+from .errors import JobError, RunFailed
+
+EXIT_OK, EXIT_FAIL, EXIT_INPUT = 0, 1, 2
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # one line, exit 2, as for every bad input
+        self.exit(EXIT_INPUT, f"wavesweep: {message} (see wavesweep {self.prog.split()[-1]} --help)\n")
+
+
+def _parser() -> argparse.ArgumentParser:
+    p = _Parser(prog="wavesweep", description="Wave-packet simulations on grids, studies and analysis.")
+    p.add_argument("--version", action="store_true", help="print the version and exit")
+    sub = p.add_subparsers(dest="command", parser_class=_Parser)
+
+    r = sub.add_parser("run", help="run a job now; one result file per run")
+    r.add_argument("job", help="job file (TOML)")
+    r.add_argument("-o", "--output", required=True, help="output folder")
+    r.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                   help="override a job field, e.g. --set packet.width=15 (repeatable)")
+    r.add_argument("--quiet", action="store_true", help="no progress bar")
+    r.add_argument("--fft", default=None, help="FFT backend (auto, scipy, pyfftw)")
+
+    c = sub.add_parser("check", help="is the grid and time step adequate? memory, disk, time")
+    c.add_argument("job")
+    c.add_argument("--set", action="append", default=[], metavar="KEY=VALUE")
+    c.add_argument("--json", action="store_true", help="print the findings as JSON")
+    c.add_argument("--trial-seconds", type=float, default=1.0, help="length of the timed trial")
+    return p
+
+
+def main(argv=None) -> int:
+    args = _parser().parse_args(argv)
+    if args.version:
+        from . import __version__
+        print(__version__)
+        return EXIT_OK
+    if not args.command:
+        _parser().print_help()
+        return EXIT_INPUT
+    try:
+        return _COMMANDS[args.command](args)
+    except JobError as e:
+        print(f"wavesweep {args.command}: {e}", file=sys.stderr)
+        return EXIT_INPUT
+    except RunFailed as e:
+        print(f"wavesweep {args.command}: run failed: {e.reason}", file=sys.stderr)
+        return EXIT_FAIL
+    except KeyboardInterrupt:
+        print(f"wavesweep {args.command}: interrupted", file=sys.stderr)
+        return 130
+
+
+def _run(args) -> int:
+    from .jobfile import load_job
+    from .simulation import Simulation
+
+    job = load_job(args.job, args.set)
+    sim = Simulation(job, fft=args.fft)
+    path = sim.run(args.output, progress=not args.quiet)
+    print(path)
+    return EXIT_OK
+
+
+def _check(args) -> int:
+    from .check import check_job
+    from .jobfile import load_job
+
+    report = check_job(load_job(args.job, args.set), trial_seconds=args.trial_seconds)
+    if args.json:
+        print(json.dumps(report.as_dict()))
+    else:
+        print(report.text())
+    if report.errors:
+        print(f"wavesweep check: {report.errors[0].topic}: {report.errors[0].message}", file=sys.stderr)
+        return EXIT_INPUT
+    return EXIT_OK
+
+
+_COMMANDS = {"run": _run, "check": _check}
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,211 @@
+"""Streaming netCDF writer for one run's result dataset.
+
+Density snapshots are appended frame by frame (float32, zlib, one chunk per
+frame), and scalar samples are buffered in small blocks, so memory does not
+grow with the duration.  The file is written under a temporary name in the
+output folder, flushed, fsync'ed and renamed into place when complete (an
+HDF5 file cut off mid-write can be unreadable, so a reader never sees one).
+
+All values are written in the job's units; every coordinate and variable has
+``units`` and ``long_name`` attributes (CF conventions).
+"""
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import netCDF4
+import numpy as np
+
+__all__ = ["ResultWriter", "atomic_rename"]
+
+SCALARS = ("norm", "x_mean", "x_std", "p_mean", "energy")
+
+
+def atomic_rename(tmp: Path, final: Path) -> None:
+    """fsync ``tmp``, rename it to ``final`` and fsync the folder."""
+    fd = os.open(tmp, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+    os.replace(tmp, final)
+    try:
+        dfd = os.open(final.parent, os.O_RDONLY)
+        try:
+            os.fsync(dfd)
+        finally:
+            os.close(dfd)
+    except OSError:  # some filesystems do not fsync folders
+        pass
+
+
+class ResultWriter:
+    """Writes the result of one run.
+
+    Parameters
+    ----------
+    path : final file path
+    layout : dict with keys
+        ``axes``: list of (name, coords_job_units, long_name);
+        ``stride``: snapshot decimation; ``units``: dict of unit labels by kind
+        (length, time, energy, momentum, density, flux);
+        ``detectors``: list of (name, axis_name, position_job_units);
+        ``boundaries``: list of face names; ``potential``: static V (job units,
+        full grid); ``autocorrelation``: bool; ``final_state``: bool.
+    attrs : global attributes written at open (the job text, units, ...).
+    """
+
+    block = 256  # scalar samples buffered before a write
+
+    def __init__(self, path, layout: dict, attrs: dict):
+        self.path = Path(path)
+        self.tmp = self.path.with_name(f".{self.path.name}.part")
+        self.layout = layout
+        self._buf: list[dict] = []
+        self._n_time = 0
+        self._n_snap = 0
+        ds = netCDF4.Dataset(self.tmp, "w", format="NETCDF4")
+        self.ds = ds
+        try:
+            self._define(layout, attrs)
+        except Exception:
+            self.abort()
+            raise
+
+    # -- layout ------------------------------------------------------------
+    def _define(self, lay, attrs):
+        ds, u, s = self.ds, lay["units"], lay["stride"]
+        ds.setncatts({k: v for k, v in attrs.items() if v is not None})
+        ds.Conventions = "CF-1.8"
+        full_shape = []
+        for name, coords, long in lay["axes"]:
+            c = np.asarray(coords)[::s]
+            ds.createDimension(name, len(c))
+            v = ds.createVariable(name, "f8", (name,))
+            v[:] = c
+            v.units, v.long_name, v.axis = u["length"], long, name.upper() if name in "xyz" else "X"
+            full_shape.append(len(coords))
+        names = [a[0] for a in lay["axes"]]
+        ds.createDimension("time", None)
+        ds.createDimension("snapshot_time", None)
+        self._coord("time", "time", u["time"], "time of the scalar samples")
+        self._coord("snapshot_time", "snapshot_time", u["time"], "time of the density snapshots")
+        ndet, nb = len(lay["detectors"]), len(lay["boundaries"])
+        ds.createDimension("detector", ndet if ndet else None)
+        ds.createDimension("boundary", nb if nb else None)
+        d = ds.createVariable("detector", str, ("detector",))
+        d.long_name, d.units = "detector name", "1"
+        for i, det in enumerate(lay["detectors"]):
+            d[i] = det[0]
+        dx = ds.createVariable("detector_x", "f8", ("detector",))
+        dx.units, dx.long_name = u["length"], "detector position along its axis"
+        da = ds.createVariable("detector_axis", str, ("detector",))
+        da.units, da.long_name = "1", "axis the detector is perpendicular to"
+        for i, det in enumerate(lay["detectors"]):
+            dx[i] = det[2]
+            da[i] = det[1]
+        b = ds.createVariable("boundary", str, ("boundary",))
+        b.long_name, b.units = "absorbing face", "1"
+        for i, face in enumerate(lay["boundaries"]):
+            b[i] = face
+        chunks = [1] + [len(np.asarray(a[1])[::s]) for a in lay["axes"]]
+        dens = ds.createVariable("density", "f4", ("snapshot_time", *names), zlib=True,
+                                 complevel=4, shuffle=True, chunksizes=chunks)
+        dens.units = u["density"]
+        dens.long_name = "probability density |psi|^2"
+        pot = ds.createVariable("potential", "f8", tuple(names), zlib=True, complevel=4)
+        pot.units, pot.long_name = u["energy"], "static part of the potential V"
+        pot[:] = np.asarray(lay["potential"])[tuple(slice(None, None, s) for _ in names)]
+        meta = {
+            "norm": ("1", "probability on the grid"),
+            "x_mean": (u["length"], f"mean {names[0]} of the probability on the grid"),
+            "x_std": (u["length"], f"standard deviation of {names[0]}"),
+            "p_mean": (u["momentum"], f"mean momentum along {names[0]}"),
+            "energy": (u["energy"], "<H> of the probability on the grid, per unit norm"),
+        }
+        for key, (unit, long) in meta.items():
+            v = ds.createVariable(key, "f8", ("time",))
+            v.units, v.long_name = unit, long
+        f = ds.createVariable("flux", "f8", ("time", "detector"))
+        f.units, f.long_name = u["flux"], "probability current through the detector"
+        a = ds.createVariable("absorbed", "f8", ("time", "boundary"))
+        a.units, a.long_name = "1", "probability removed at the face, cumulative"
+        if lay.get("autocorrelation", True):
+            for part in ("real", "imag"):
+                v = ds.createVariable(f"autocorrelation_{part}", "f8", ("time",))
+                v.units, v.long_name = "1", f"{part} part of <psi(0)|psi(t)>"
+        if lay.get("final_state", True):
+            state_dims = names if s == 1 else [f"{n}_full" for n in names]
+            if s != 1:
+                for (name, coords, long), n in zip(lay["axes"], state_dims):
+                    ds.createDimension(n, len(coords))
+                    v = ds.createVariable(n, "f8", (n,))
+                    v[:] = coords
+                    v.units, v.long_name = u["length"], f"{long} (full grid)"
+            for part in ("real", "imag"):
+                v = ds.createVariable(f"psi_{part}", "f8", tuple(state_dims), zlib=True, complevel=4)
+                v.units = f"{u['length']}-{len(names) / 2:g}"
+                v.long_name = f"{part} part of the final wave function"
+
+    def _coord(self, name, dim, unit, long):
+        v = self.ds.createVariable(name, "f8", (dim,))
+        v.units, v.long_name = unit, long
+
+    # -- appending -----------------------------------------------------------
+    def add_sample(self, time: float, values: dict) -> None:
+        """One scalar sample (job units), buffered."""
+        self._buf.append({"time": time, **values})
+        if len(self._buf) >= self.block:
+            self.flush()
+
+    def add_snapshot(self, time: float, density: np.ndarray) -> None:
+        """One density frame (job units, full grid; decimated here)."""
+        s = self.layout["stride"]
+        frame = density[tuple(slice(None, None, s) for _ in range(density.ndim))]
+        i = self._n_snap
+        self.ds["snapshot_time"][i] = time
+        self.ds["density"][i] = frame.astype(np.float32)
+        self._n_snap += 1
+
+    def flush(self) -> None:
+        if not self._buf:
+            return
+        i0, n = self._n_time, len(self._buf)
+        ds = self.ds
+        ds["time"][i0:i0 + n] = np.array([b["time"] for b in self._buf])
+        for key in SCALARS + ("autocorrelation_real", "autocorrelation_imag"):
+            if key in ds.variables and key in self._buf[0]:
+                ds[key][i0:i0 + n] = np.array([b[key] for b in self._buf])
+        if len(self.layout["detectors"]):
+            ds["flux"][i0:i0 + n, :] = np.array([b["flux"] for b in self._buf])
+        if len(self.layout["boundaries"]):
+            ds["absorbed"][i0:i0 + n, :] = np.array([b["absorbed"] for b in self._buf])
+        self._n_time += n
+        self._buf.clear()
+        ds.sync()
+
+    def set_final_state(self, psi: np.ndarray) -> None:
+        if "psi_real" in self.ds.variables:
+            self.ds["psi_real"][:] = psi.real
+            self.ds["psi_imag"][:] = psi.imag
+
+    def close(self, attrs: dict | None = None) -> Path:
+        """Write the closing attributes, close and move into place."""
+        self.flush()
+        if attrs:
+            self.ds.setncatts({k: v for k, v in attrs.items() if v is not None})
+        self.ds.close()
+        atomic_rename(self.tmp, self.path)
+        return self.path
+
+    def abort(self) -> None:
+        """Close and delete the temporary file (nothing partial is left)."""
+        try:
+            self.ds.close()
+        except Exception:
+            pass
+        try:
+            self.tmp.unlink()
+        except FileNotFoundError:
+            pass

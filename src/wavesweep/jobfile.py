@@ -1,0 +1,435 @@
+"""Job files: TOML -> a validated, resolved job.
+
+:func:`load_job` reads a file (or :func:`job_from_dict` a dict), applies
+``--set`` overrides, checks every table against its schema and returns a
+:class:`Job`: the resolved table in the job's units with every default filled
+in (``Job.to_toml()`` is a complete job file that reproduces the run) and the
+unit set.  Physical objects are built from it by :mod:`wavesweep.simulation`.
+
+Every problem is a :class:`~wavesweep.errors.JobError` naming the field.
+"""
+from __future__ import annotations
+
+import copy
+import hashlib
+import json
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import tomli_w
+
+from .absorbers.layers import face_names
+from .errors import JobError
+from .grid import BOUNDARIES
+from .potentials import REGISTRY, term_class
+from .propagators import SCHEMES
+from .schema import Field, check_unknown, validate_table
+from .states import PACKET_SCHEMAS
+from .units import UnitSet
+
+__all__ = ["Job", "load_job", "job_from_dict", "apply_overrides", "parse_override"]
+
+TOP_LEVEL = ("title", "units", "particle", "grid", "potential", "packet", "evolve",
+             "absorber", "record", "detector", "sweep")
+
+PARTICLE = {
+    "mass": Field("mass", 1.0, positive=True, doc="particle mass in the job's mass unit"),
+    "charge": Field("charge", None, doc="charge in units of e (needed by a driving field)"),
+}
+AXIS = {
+    "min": Field("length", None),
+    "max": Field("length", doc="upper end of the axis"),
+    "points": Field("int", positive=True, doc="number of grid points"),
+    "boundary": Field("str", None, choices=BOUNDARIES),
+}
+EVOLVE = {
+    "dt": Field("time", positive=True, doc="time step"),
+    "duration": Field("time", positive=True, doc="total propagation time"),
+    "scheme": Field("str", "strang", choices=tuple(SCHEMES)),
+    "precision": Field("str", "double", choices=("double", "single")),
+    "fft": Field("str", "auto", doc="FFT backend: auto, scipy, pyfftw"),
+    "threads": Field("int", None, positive=True),
+}
+ABSORBER = {
+    "kind": Field("str", "none", choices=("cap", "mask", "none")),
+    "thickness": Field("length", None, positive=True),
+    "faces": Field("list", None),
+    "strength": Field("energy", None, nonnegative=True,
+                      doc="CAP strength; omitted: tuned to the packet's energy window"),
+    "power": Field("number", 2.0, positive=True),
+    "mask_exponent": Field("number", 0.125, positive=True),
+}
+RECORD = {
+    "every": Field("time", None, positive=True, doc="time between scalar samples"),
+    "snapshot_every": Field("time", None, positive=True, doc="time between density snapshots"),
+    "stride": Field("int", 1, positive=True),
+    "final_state": Field("bool", True),
+}
+DETECTOR = {
+    "name": Field("str", None),
+}
+
+
+@dataclass
+class Job:
+    """A validated job: ``table`` in the job's units with defaults filled in."""
+
+    table: dict
+    units: UnitSet
+    source: Path | None = None
+    notes: list = field(default_factory=list)
+
+    @property
+    def title(self) -> str:
+        return self.table.get("title", "")
+
+    @property
+    def name(self) -> str:
+        return self.source.stem if self.source else "job"
+
+    @property
+    def ndim(self) -> int:
+        return len(grid_axes(self.table["grid"]))
+
+    def to_toml(self) -> str:
+        return tomli_w.dumps(_toml_ready(self.table))
+
+    def canonical(self) -> str:
+        """Key-order-free JSON of the physics (title excluded), for hashing."""
+        t = {k: v for k, v in self.table.items() if k not in ("title", "sweep")}
+        return json.dumps(_canonical_numbers(t), sort_keys=True, separators=(",", ":"))
+
+    @property
+    def run_id(self) -> str:
+        """Content hash of the canonical job: same physics, same id."""
+        return hashlib.sha256(self.canonical().encode()).hexdigest()[:12]
+
+
+def _canonical_numbers(obj):
+    if isinstance(obj, dict):
+        return {k: _canonical_numbers(v) for k, v in obj.items()}
+    if isinstance(obj, list):
+        return [_canonical_numbers(v) for v in obj]
+    if isinstance(obj, bool) or obj is None:
+        return obj
+    if isinstance(obj, (int, float)):
+        return float(repr(float(obj))) if math.isfinite(obj) else str(obj)
+    return obj
+
+
+def _toml_ready(obj):
+    if isinstance(obj, dict):
+        return {k: _toml_ready(v) for k, v in obj.items() if v is not None}
+    if isinstance(obj, list):
+        return [_toml_ready(v) for v in obj]
+    return obj
+
+
+# -- overrides -------------------------------------------------------------------
+def parse_override(text: str) -> tuple[str, object]:
+    """``"packet.width=15"`` -> ("packet.width", 15); values are read as TOML
+    (numbers, strings, lists, booleans), bare words as strings."""
+    if "=" not in text:
+        raise JobError("--set", f"{text!r} is not key=value, e.g. --set packet.width=15")
+    key, raw = text.split("=", 1)
+    key, raw = key.strip(), raw.strip()
+    if not key:
+        raise JobError("--set", f"{text!r} has no key")
+    try:
+        value = tomllib.loads(f"v = {raw}")["v"]
+    except tomllib.TOMLDecodeError:
+        value = raw
+    return key, value
+
+
+def apply_overrides(table: dict, overrides) -> dict:
+    """Set dotted keys (``potential.0.height``) in a copy of ``table``."""
+    out = copy.deepcopy(table)
+    for item in overrides or ():
+        key, value = parse_override(item) if isinstance(item, str) else item
+        set_dotted(out, key, value)
+    return out
+
+
+def set_dotted(table: dict, key: str, value) -> None:
+    parts = key.split(".")
+    node = table
+    for depth, part in enumerate(parts[:-1]):
+        here = ".".join(parts[: depth + 1])
+        if isinstance(node, list):
+            node = _list_item(node, part, here)
+        else:
+            if part not in node:
+                node[part] = {}
+            node = node[part]
+        if not isinstance(node, (dict, list)):
+            raise JobError(key, f"{here} is a value, not a table")
+    last = parts[-1]
+    if isinstance(node, list):
+        idx = _index(node, last, key)
+        node[idx] = value
+    else:
+        node[last] = value
+
+
+def _index(seq: list, part: str, where: str) -> int:
+    try:
+        i = int(part)
+    except ValueError:
+        raise JobError(where, f"{part!r} must be an index into the list (0..{len(seq) - 1})") from None
+    if not -len(seq) <= i < len(seq):
+        raise JobError(where, f"index {i} is out of range; the list has {len(seq)} entries")
+    return i
+
+
+def _list_item(seq, part, where):
+    return seq[_index(seq, part, where)]
+
+
+# -- loading ---------------------------------------------------------------------
+def load_job(path, overrides=()) -> Job:
+    """Read and validate a job file; ``overrides`` are ``"key=value"`` strings."""
+    path = Path(path)
+    try:
+        text = path.read_text()
+    except FileNotFoundError:
+        raise JobError("", f"job file {str(path)!r} not found") from None
+    except OSError as e:
+        raise JobError("", f"cannot read job file {str(path)!r}: {e.strerror}") from None
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as e:
+        raise JobError("", f"{path.name} is not valid TOML: {e}") from None
+    return job_from_dict(raw, overrides, source=path)
+
+
+def job_from_dict(raw: dict, overrides=(), source: Path | None = None) -> Job:
+    """Validate a job given as a dict (as parsed from TOML)."""
+    raw = apply_overrides(raw, overrides)
+    check_unknown(raw, TOP_LEVEL, "")
+    units = UnitSet.from_table(raw.get("units"))
+    out: dict = {}
+    title = raw.get("title", source.stem if source else "untitled")
+    if not isinstance(title, str):
+        raise JobError("title", f"must be a string, got {title!r}")
+    out["title"] = title
+    out["units"] = units.as_table()
+    out["particle"] = validate_table(raw.get("particle", {}), PARTICLE, "particle", units)
+    out["grid"] = _grid(raw.get("grid"), units)
+    ndim = len(grid_axes(out["grid"]))
+    base = source.parent if source else Path.cwd()
+    out["potential"] = _potentials(raw.get("potential"), units, ndim, base)
+    out["packet"] = _packet(raw.get("packet"), units, ndim, base, "packet")
+    out["evolve"] = validate_table(_need(raw, "evolve"), EVOLVE, "evolve", units)
+    out["absorber"] = _absorber(raw.get("absorber", {}), units, out["grid"])
+    out["record"] = _record(raw.get("record", {}), units, out["evolve"])
+    out["detector"] = _detectors(raw.get("detector", []), units, out["grid"])
+    if "sweep" in raw:
+        if not isinstance(raw["sweep"], dict):
+            raise JobError("sweep", "must be a table")
+        out["sweep"] = raw["sweep"]
+    return Job(out, units, source)
+
+
+def _need(raw, key):
+    if key not in raw:
+        raise JobError(key, f"missing [{key}] table")
+    return raw[key]
+
+
+def grid_axes(grid: dict) -> list[str]:
+    return [k for k in ("x", "y", "z", "r") if k in grid]
+
+
+def _grid(raw, units) -> dict:
+    if raw is None:
+        raise JobError("grid", "missing [grid] table; e.g. x = { min = -100, max = 100, points = 1024 }")
+    if not isinstance(raw, dict):
+        raise JobError("grid", "must be a table")
+    check_unknown(raw, ("x", "y", "z", "r", "boundary", "l"), "grid")
+    axes = grid_axes(raw)
+    if not axes:
+        raise JobError("grid.x", "missing; give at least one axis, e.g. x = { min = -100, max = 100, points = 1024 }")
+    if "r" in axes and len(axes) > 1:
+        raise JobError("grid.r", "a radial grid has only r; remove the Cartesian axes")
+    cart = [a for a in ("x", "y", "z") if a in raw]
+    if cart and cart != ["x", "y", "z"][: len(cart)]:
+        raise JobError(f"grid.{cart[-1]}", "Cartesian axes are x, then y, then z")
+    radial = "r" in axes
+    boundary = raw.get("boundary", "box" if radial else "periodic")
+    out = {}
+    if not isinstance(boundary, str) or boundary not in BOUNDARIES:
+        raise JobError("grid.boundary", f"{boundary!r} is not one of {', '.join(map(repr, BOUNDARIES))}")
+    if radial and boundary != "box":
+        raise JobError("grid.boundary", "a radial grid has u(0) = 0: it is always 'box'")
+    for name in axes:
+        ax = validate_table(raw[name], AXIS, f"grid.{name}", units)
+        if radial:
+            if ax.get("min") not in (None, 0, 0.0):
+                raise JobError("grid.r.min", "a radial grid starts at r = 0; remove min")
+            ax["min"] = 0.0
+        elif ax.get("min") is None:
+            raise JobError(f"grid.{name}.min", "missing; the lower end of the axis")
+        lo = units.to_atomic(ax["min"], "length", f"grid.{name}.min")
+        hi = units.to_atomic(ax["max"], "length", f"grid.{name}.max")
+        if not hi > lo:
+            raise JobError(f"grid.{name}.max", f"must be larger than min ({ax['min']!r})")
+        if ax["points"] < 4:
+            raise JobError(f"grid.{name}.points", f"must be at least 4, got {ax['points']}")
+        if radial and ax.get("boundary", "box") != "box":
+            raise JobError(f"grid.{name}.boundary", "a radial axis is always 'box'")
+        out[name] = ax
+    out["boundary"] = boundary
+    l_value = raw.get("l", 0)
+    if isinstance(l_value, bool) or not isinstance(l_value, int) or l_value < 0:
+        raise JobError("grid.l", f"angular momentum must be an integer >= 0, got {l_value!r}")
+    if l_value and not radial:
+        raise JobError("grid.l", "angular momentum l applies to a radial grid (grid.r)")
+    if radial:
+        out["l"] = l_value
+    return out
+
+
+def _potentials(raw, units, ndim, base) -> list[dict]:
+    if raw is None:
+        return [{"kind": "free"}]
+    if isinstance(raw, dict):
+        raw = [raw]
+    if not isinstance(raw, list) or not all(isinstance(t, dict) for t in raw):
+        raise JobError("potential", "must be [[potential]] tables")
+    out = []
+    for i, table in enumerate(raw):
+        name = f"potential.{i}"
+        if "kind" not in table:
+            raise JobError(f"{name}.kind", f"missing; known kinds: {', '.join(sorted(REGISTRY))}")
+        cls = term_class(table["kind"], f"{name}.kind")
+        schema = {"kind": Field("str"), **cls.parameters}
+        t = validate_table(table, schema, name, units, ndim)
+        if "path" in t:
+            t["path"] = str((base / t["path"]).resolve())
+        out.append(t)
+    return out
+
+
+def _packet(raw, units, ndim, base, name) -> dict:
+    if raw is None:
+        raise JobError(name, f"missing [{name}] table; e.g. kind = 'gaussian', center, width, momentum")
+    if not isinstance(raw, dict):
+        raise JobError(name, "must be a table")
+    kind = raw.get("kind", "gaussian")
+    if kind not in PACKET_SCHEMAS:
+        import difflib
+        near = difflib.get_close_matches(str(kind), PACKET_SCHEMAS, n=1)
+        hint = f"did you mean {near[0]!r}? " if near else ""
+        raise JobError(f"{name}.kind", f"unknown packet kind {kind!r}; {hint}known: {', '.join(PACKET_SCHEMAS)}")
+    t = validate_table(raw, PACKET_SCHEMAS[kind], name, units, ndim)
+    t["kind"] = kind
+    if kind == "gaussian" and t.get("momentum") is not None and t.get("energy") is not None:
+        raise JobError(f"{name}.energy", "give either momentum or energy, not both")
+    if kind == "gaussian" and t.get("energy") is not None and ndim != 1:
+        raise JobError(f"{name}.energy", "in 2D/3D give `momentum` per axis instead")
+    if kind == "superposition":
+        t["packets"] = [_packet(p, units, ndim, base, f"{name}.packets.{j}")
+                        for j, p in enumerate(t["packets"])]
+    if kind == "file":
+        t["path"] = str((base / t["path"]).resolve())
+    return t
+
+
+def _absorber(raw, units, grid) -> dict:
+    t = validate_table(raw, ABSORBER, "absorber", units)
+    if t["kind"] == "none":
+        return {"kind": "none"}
+    if t.get("thickness") is None:
+        raise JobError("absorber.thickness", f"required for kind = {t['kind']!r}")
+    th = units.to_atomic(t["thickness"], "length", "absorber.thickness")
+    for name in grid_axes(grid):
+        lo = units.to_atomic(grid[name]["min"], "length")
+        hi = units.to_atomic(grid[name]["max"], "length")
+        if 2 * th >= hi - lo:
+            raise JobError("absorber.thickness", f"two layers do not fit on the {name} axis "
+                                                 f"(length {grid[name]['max']!r} - {grid[name]['min']!r})")
+    faces = t.get("faces")
+    if faces is not None:
+        allowed = _face_names_of(grid)
+        for f in faces:
+            if f not in allowed:
+                raise JobError("absorber.faces", f"{f!r} is not a face of this grid; faces: {', '.join(allowed)}")
+    if t["kind"] == "mask":
+        t.pop("strength", None)
+        t.pop("power", None)
+    else:
+        t.pop("mask_exponent", None)
+    return t
+
+
+def _face_names_of(grid) -> list[str]:
+    class _G:  # the face names depend only on axis names and radial-ness
+        radial = "r" in grid
+        axes = [type("A", (), {"name": n}) for n in grid_axes(grid)]
+    return face_names(_G)
+
+
+def _steps(value, dt, what, field, units) -> int:
+    n = round(value / dt)
+    if n < 1 or abs(n * dt - value) > 1e-9 * max(abs(value), dt):
+        lo = max(1, math.floor(value / dt)) * dt
+        hi = math.ceil(value / dt) * dt
+        tf = units.factor("time")
+        raise JobError(field, f"{what} must be a whole number of time steps (dt = {dt / tf:g}); "
+                              f"use {lo / tf:g} or {hi / tf:g}")
+    return n
+
+
+def _record(raw, units, evolve) -> dict:
+    t = validate_table(raw, RECORD, "record", units)
+    dt = units.to_atomic(evolve["dt"], "time", "evolve.dt")
+    duration = units.to_atomic(evolve["duration"], "time", "evolve.duration")
+    if duration < dt:
+        raise JobError("evolve.duration", "is shorter than one time step")
+    total = _steps(duration, dt, "the duration", "evolve.duration", units)
+    if t.get("every") is None:
+        # default: about 1000 samples, on whole steps
+        t["every"] = max(1, total // 1000) * dt / units.factor("time")
+    every = units.to_atomic(t["every"], "time", "record.every")
+    k = _steps(every, dt, "record.every", "record.every", units)
+    if t.get("snapshot_every") is None:
+        t["snapshot_every"] = max(1, (total // k) // 100) * k * dt / units.factor("time")
+    snap = units.to_atomic(t["snapshot_every"], "time", "record.snapshot_every")
+    m = _steps(snap, dt, "record.snapshot_every", "record.snapshot_every", units)
+    if m % k:
+        raise JobError("record.snapshot_every", f"must be a multiple of record.every ({t['every']!r})")
+    if total % k:
+        raise JobError("evolve.duration", f"must be a multiple of record.every ({t['every']!r}) "
+                                          "so that the last sample is at the end")
+    return t
+
+
+def _detectors(raw, units, grid) -> list[dict]:
+    if isinstance(raw, dict):
+        raw = [raw]
+    if not isinstance(raw, list) or not all(isinstance(t, dict) for t in raw):
+        raise JobError("detector", "must be [[detector]] tables")
+    axes = grid_axes(grid)
+    out, names = [], set()
+    for i, table in enumerate(raw):
+        field = f"detector.{i}"
+        schema = {**DETECTOR, **{a: Field("length", None) for a in axes}}
+        t = validate_table(table, schema, field, units)
+        where = [a for a in axes if t.get(a) is not None]
+        if len(where) != 1:
+            raise JobError(field, f"give exactly one position, one of {', '.join(axes)} = ...")
+        a = where[0]
+        pos = units.to_atomic(t[a], "length", f"{field}.{a}")
+        lo = units.to_atomic(grid[a]["min"], "length")
+        hi = units.to_atomic(grid[a]["max"], "length")
+        if not lo < pos < hi:
+            raise JobError(f"{field}.{a}", f"{t[a]!r} lies outside the grid [{grid[a]['min']!r}, {grid[a]['max']!r}]")
+        t["name"] = t.get("name") or f"{a}={t[a]}"
+        if t["name"] in names:
+            raise JobError(f"{field}.name", f"{t['name']!r} is used twice")
+        names.add(t["name"])
+        out.append(t)
+    return out

@@ -1,0 +1,106 @@
+"""Potential terms: one small base class and a registry by name.
+
+A term is built from its validated job table converted to atomic units and
+evaluates V (hartree) on broadcastable coordinate arrays (bohr).  Static terms
+implement :meth:`PotentialTerm.static`; time-dependent ones implement
+:meth:`PotentialTerm.at_time`, and if they factor as ``f(t) g(r)`` they say so
+with :meth:`separable` so the propagator evaluates ``g`` once and only the
+scalar ``f(t)`` per step.
+
+To add a kind: subclass, set ``kind`` and ``parameters`` (a schema of
+:class:`~wavesweep.schema.Field`), implement ``static`` (or ``at_time``), and
+decorate with :func:`register`.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import ClassVar
+
+import numpy as np
+
+from ..errors import JobError
+from ..schema import Field
+
+__all__ = ["PotentialTerm", "PotentialContext", "REGISTRY", "register", "term_class"]
+
+
+@dataclass(frozen=True)
+class PotentialContext:
+    """What a term may need beyond its own parameters (atomic units)."""
+
+    grid: object          # wavesweep.grid.Grid
+    mass: float           # m_e
+    charge: float | None  # e, None when the job gives none
+    units: object         # wavesweep.units.UnitSet (for expressions in job units)
+    field: str            # dotted job path of this term, for error messages
+
+
+class PotentialTerm:
+    """Base class of a potential term.
+
+    Subclasses define:
+
+    1. ``kind``: the name used in job files;
+    2. ``parameters``: ``name -> Field`` with unit kinds, defaults and checks;
+    3. ``static(mesh)`` returning V in hartree for time-independent terms, or
+       ``at_time(mesh, t)`` with ``time_dependent = True``;
+    4. optionally ``separable()`` -> ``(g(mesh) array, f(t) callable)``.
+
+    ``self.p`` holds the parameters in atomic units, ``self.ctx`` the context.
+    """
+
+    kind: ClassVar[str] = ""
+    parameters: ClassVar[dict[str, Field]] = {}
+    time_dependent: ClassVar[bool] = False
+    summary: ClassVar[str] = ""
+
+    def __init__(self, params: dict, ctx: PotentialContext):
+        self.p = params
+        self.ctx = ctx
+        self.validate()
+
+    def validate(self) -> None:
+        """Check parameter combinations; raise JobError naming the field."""
+
+    def axis_of(self, name: str = "axis") -> int:
+        """Index of the grid axis named by parameter ``name`` (default ``x``)."""
+        axis = self.p.get(name) or self.ctx.grid.names[0]
+        if axis not in self.ctx.grid.names:
+            raise JobError(f"{self.ctx.field}.{name}",
+                           f"{axis!r} is not an axis of this grid ({', '.join(self.ctx.grid.names)})")
+        return self.ctx.grid.names.index(axis)
+
+    def static(self, mesh: dict[str, np.ndarray]) -> np.ndarray:
+        raise NotImplementedError
+
+    def at_time(self, mesh: dict[str, np.ndarray], t: float) -> np.ndarray:
+        return self.static(mesh)
+
+    def separable(self):
+        """``(g, f)`` with V(r, t) = f(t) g(r), or None."""
+        return None
+
+
+REGISTRY: dict[str, type[PotentialTerm]] = {}
+
+
+def register(cls: type[PotentialTerm]) -> type[PotentialTerm]:
+    """Class decorator adding a term to the registry under ``cls.kind``."""
+    if not cls.kind:
+        raise TypeError(f"{cls.__name__} needs a kind")
+    REGISTRY[cls.kind] = cls
+    return cls
+
+
+def term_class(kind, field: str) -> type[PotentialTerm]:
+    """The term class for a kind name (or a PotentialTerm subclass)."""
+    if isinstance(kind, type) and issubclass(kind, PotentialTerm):
+        return kind
+    try:
+        return REGISTRY[kind]
+    except (KeyError, TypeError):
+        import difflib
+        near = difflib.get_close_matches(str(kind), REGISTRY, n=1)
+        hint = f"did you mean {near[0]!r}? " if near else ""
+        raise JobError(field, f"unknown potential kind {kind!r}; {hint}"
+                              f"known kinds: {', '.join(sorted(REGISTRY))}") from None

@@ -1,0 +1,90 @@
+"""A driving electric field in the length gauge: V(r, t) = -q E(t) x_axis.
+
+E(t) = amplitude * envelope(t) * cos(omega (t - start) + phase), with the
+particle's charge q (units of e) from ``particle.charge``.  The term is
+separable, V = f(t) g(r) with g = -q x and f = E(t), so the propagator
+evaluates the grid part once and only the scalar E(t) per step (at the middle
+of each step, for second order).
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from ..errors import JobError
+from ..schema import Field
+from .base import PotentialTerm, register
+
+ENVELOPES = ("constant", "sin2", "trapezoid", "gaussian")
+
+
+@register
+class DrivingField(PotentialTerm):
+    kind = "field"
+    time_dependent = True
+    summary = ("electric field along `axis`, V = -q E(t) x, E(t) = amplitude envelope(t) "
+               "cos(omega (t - start) + phase)")
+    parameters = {
+        "amplitude": Field("electric_field", doc="peak field strength"),
+        "omega": Field("frequency", 0.0, nonnegative=True, doc="carrier angular frequency (0: static)"),
+        "phase": Field("number", 0.0, doc="carrier phase (rad)"),
+        "envelope": Field("str", "sin2", choices=ENVELOPES),
+        "start": Field("time", 0.0, doc="switch-on time"),
+        "duration": Field("time", None, positive=True,
+                          doc="total length of a sin2/trapezoid pulse; constant: optional switch-off"),
+        "ramp": Field("time", None, positive=True, doc="trapezoid rise and fall time"),
+        "fwhm": Field("time", None, positive=True, doc="gaussian: FWHM of the intensity"),
+        "peak": Field("time", None, doc="gaussian: time of the envelope maximum"),
+        "axis": Field("str", None, "polarisation axis (default: the first)"),
+    }
+
+    def validate(self):
+        f = self.ctx.field
+        if self.ctx.charge is None:
+            raise JobError("particle.charge", "required by the driving field term "
+                           f"({f}); give the particle's charge in units of e, e.g. -1 for an electron")
+        if self.ctx.grid.radial:
+            raise JobError(f"{f}.kind", "a linearly polarised field breaks spherical symmetry; "
+                                        "use a Cartesian grid")
+        env = self.p["envelope"]
+        need = {"sin2": ("duration",), "trapezoid": ("duration", "ramp"), "gaussian": ("fwhm", "peak")}
+        for key in need.get(env, ()):
+            if self.p.get(key) is None:
+                raise JobError(f"{f}.{key}", f"required by envelope = {env!r}")
+        if env == "trapezoid" and 2 * self.p["ramp"] > self.p["duration"]:
+            raise JobError(f"{f}.ramp", "two ramps must fit in the duration")
+
+    def envelope(self, t: float) -> float:
+        p, env = self.p, self.p["envelope"]
+        s = t - p["start"]
+        if env == "gaussian":
+            return math.exp(-2.0 * math.log(2.0) * ((t - p["peak"]) / p["fwhm"]) ** 2)
+        if s < 0:
+            return 0.0
+        dur = p.get("duration")
+        if env == "constant":
+            return 1.0 if dur is None or s <= dur else 0.0
+        if s > dur:
+            return 0.0
+        if env == "sin2":
+            return math.sin(math.pi * s / dur) ** 2
+        ramp = p["ramp"]  # trapezoid
+        return min(1.0, s / ramp, (dur - s) / ramp)
+
+    def electric_field(self, t: float) -> float:
+        """E(t) in atomic units (hartree / (e bohr))."""
+        p = self.p
+        return p["amplitude"] * self.envelope(t) * math.cos(p["omega"] * (t - p["start"]) + p["phase"])
+
+    def spatial(self, mesh) -> np.ndarray:
+        return -self.ctx.charge * mesh[self.ctx.grid.names[self.axis_of()]]
+
+    def separable(self):
+        return self.spatial, self.electric_field
+
+    def at_time(self, mesh, t):
+        return self.electric_field(t) * self.spatial(mesh)
+
+    def static(self, mesh):
+        return np.zeros(())

@@ -1,0 +1,274 @@
+"""The named potential kinds.  Every formula is in atomic units (hartree, bohr).
+
+Terms that act along one direction take ``axis`` (default: the first axis);
+terms with a centre take one value per axis in 2D/3D.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from ..errors import JobError
+from ..schema import Field
+from .base import PotentialTerm, register
+
+_AXIS = Field("str", None, "axis the term varies along (default: the first)")
+
+
+def _along(term: PotentialTerm, mesh) -> np.ndarray:
+    i = term.axis_of()
+    return mesh[term.ctx.grid.names[i]]
+
+
+def _sharp_or_smooth(s: np.ndarray, smoothing: float) -> np.ndarray:
+    """Heaviside(s) or, with a smoothing length, (1 + tanh(s/smoothing))/2."""
+    if smoothing > 0:
+        return 0.5 * (1.0 + np.tanh(s / smoothing))
+    return (s >= 0).astype(float)
+
+
+def _radius2(term, mesh, center) -> np.ndarray:
+    r2 = 0.0
+    for name, c in zip(term.ctx.grid.names, center):
+        r2 = r2 + (mesh[name] - c) ** 2
+    return r2
+
+
+@register
+class Free(PotentialTerm):
+    kind = "free"
+    summary = "V = 0"
+    parameters = {}
+
+    def static(self, mesh):
+        return np.zeros(())
+
+
+@register
+class Step(PotentialTerm):
+    kind = "step"
+    summary = "V = height for x >= position (optionally smoothed over `smoothing`)"
+    parameters = {
+        "height": Field("energy", doc="step height"),
+        "position": Field("length", 0.0),
+        "smoothing": Field("length", 0.0, nonnegative=True),
+        "axis": _AXIS,
+    }
+
+    def static(self, mesh):
+        x = _along(self, mesh)
+        return self.p["height"] * _sharp_or_smooth(x - self.p["position"], self.p["smoothing"])
+
+
+@register
+class Barrier(PotentialTerm):
+    kind = "barrier"
+    summary = "rectangular barrier: V = height for |x - center| < width/2"
+    parameters = {
+        "height": Field("energy", doc="barrier height (negative for a well)"),
+        "width": Field("length", doc="full width", positive=True),
+        "center": Field("length", 0.0),
+        "smoothing": Field("length", 0.0, nonnegative=True),
+        "axis": _AXIS,
+    }
+
+    def static(self, mesh):
+        x = _along(self, mesh) - self.p["center"]
+        half, s = self.p["width"] / 2, self.p["smoothing"]
+        if s > 0:
+            return self.p["height"] * _sharp_or_smooth(x + half, s) * _sharp_or_smooth(half - x, s)
+        return self.p["height"] * (np.abs(x) < half)
+
+
+@register
+class DoubleBarrier(PotentialTerm):
+    kind = "double_barrier"
+    summary = "two rectangular barriers of `width` with a `gap` between their inner edges"
+    parameters = {
+        "height": Field("energy"),
+        "width": Field("length", positive=True),
+        "gap": Field("length", positive=True, doc="distance between the inner edges"),
+        "center": Field("length", 0.0),
+        "axis": _AXIS,
+    }
+
+    def static(self, mesh):
+        x = np.abs(_along(self, mesh) - self.p["center"])
+        inner = self.p["gap"] / 2
+        return self.p["height"] * ((x > inner) & (x < inner + self.p["width"]))
+
+
+@register
+class Gaussian(PotentialTerm):
+    kind = "gaussian"
+    summary = "V = height exp(-|r - center|^2 / (2 width^2)); width is a standard deviation"
+    parameters = {
+        "height": Field("energy", doc="peak value (negative for a well)"),
+        "width": Field("length", per_axis=True, positive=True),
+        "center": Field("length", 0.0, per_axis=True),
+    }
+
+    def static(self, mesh):
+        names = self.ctx.grid.names
+        arg = 0.0
+        for name, c, w in zip(names, _each(self.p["center"], len(names)), _each(self.p["width"], len(names))):
+            arg = arg + ((mesh[name] - c) / w) ** 2
+        return self.p["height"] * np.exp(-0.5 * arg)
+
+
+@register
+class Eckart(PotentialTerm):
+    kind = "eckart"
+    summary = "symmetric Eckart barrier V = height / cosh^2((x - center)/width)"
+    parameters = {
+        "height": Field("energy"),
+        "width": Field("length", positive=True),
+        "center": Field("length", 0.0),
+        "axis": _AXIS,
+    }
+
+    def static(self, mesh):
+        x = (_along(self, mesh) - self.p["center"]) / self.p["width"]
+        return self.p["height"] / np.cosh(np.clip(x, -350, 350)) ** 2
+
+
+@register
+class Harmonic(PotentialTerm):
+    kind = "harmonic"
+    summary = "V = m/2 sum_i omega_i^2 (x_i - center_i)^2 (omega: angular frequency)"
+    parameters = {
+        "omega": Field("frequency", per_axis=True, nonnegative=True),
+        "center": Field("length", 0.0, per_axis=True),
+    }
+
+    def static(self, mesh):
+        names = self.ctx.grid.names
+        v = 0.0
+        for name, c, w in zip(names, _each(self.p["center"], len(names)), _each(self.p["omega"], len(names))):
+            v = v + w**2 * (mesh[name] - c) ** 2
+        return 0.5 * self.ctx.mass * v
+
+
+@register
+class Morse(PotentialTerm):
+    kind = "morse"
+    summary = "V = depth (1 - exp(-stiffness (x - center)))^2 (zero at the minimum)"
+    parameters = {
+        "depth": Field("energy", positive=True),
+        "stiffness": Field("wavenumber", positive=True),
+        "center": Field("length", 0.0),
+        "axis": _AXIS,
+    }
+
+    def static(self, mesh):
+        x = _along(self, mesh) - self.p["center"]
+        arg = np.clip(-self.p["stiffness"] * x, -700, 700)
+        return self.p["depth"] * (1.0 - np.exp(arg)) ** 2
+
+
+@register
+class DoubleWell(PotentialTerm):
+    kind = "double_well"
+    summary = "quartic double well V = height ((x-center)^2/a^2 - 1)^2, minima at center +/- a"
+    parameters = {
+        "height": Field("energy", positive=True, doc="barrier height between the wells"),
+        "separation": Field("length", positive=True, doc="distance between the minima (2a)"),
+        "center": Field("length", 0.0),
+        "axis": _AXIS,
+    }
+
+    def static(self, mesh):
+        a = self.p["separation"] / 2
+        x = (_along(self, mesh) - self.p["center"]) / a
+        return self.p["height"] * (x**2 - 1.0) ** 2
+
+
+@register
+class SoftCoulomb(PotentialTerm):
+    kind = "soft_coulomb"
+    summary = "V = -Z / sqrt(|r - center|^2 + softening^2) (Z in units of e)"
+    parameters = {
+        "charge": Field("number", 1.0, doc="Z of the attracting centre"),
+        "softening": Field("length", positive=True),
+        "center": Field("length", 0.0, per_axis=True),
+    }
+
+    def static(self, mesh):
+        r2 = _radius2(self, mesh, _each(self.p["center"], self.ctx.grid.ndim))
+        return -self.p["charge"] / np.sqrt(r2 + self.p["softening"] ** 2)
+
+
+@register
+class Coulomb(PotentialTerm):
+    kind = "coulomb"
+    summary = "V = -Z / |r - center|; on a radial grid -Z/r"
+    parameters = {
+        "charge": Field("number", 1.0, doc="Z of the attracting centre"),
+        "center": Field("length", 0.0, per_axis=True),
+    }
+
+    def static(self, mesh):
+        grid = self.ctx.grid
+        center = _each(self.p["center"], grid.ndim)
+        if grid.radial and center[0] != 0.0:
+            raise JobError(f"{self.ctx.field}.center", "on a radial grid the centre is r = 0")
+        r = np.sqrt(_radius2(self, mesh, center))
+        if np.min(r) < 1e-9 * min(a.dx for a in grid.axes):
+            raise JobError(f"{self.ctx.field}.center",
+                           "a grid point sits on the singularity; shift the centre by half a "
+                           "grid step or use kind = 'soft_coulomb'")
+        return -self.p["charge"] / r
+
+
+@register
+class Lattice(PotentialTerm):
+    kind = "lattice"
+    summary = "optical lattice V = depth sin^2(pi (x - origin) / spacing), minima at origin + n spacing"
+    parameters = {
+        "depth": Field("energy"),
+        "spacing": Field("length", positive=True),
+        "origin": Field("length", 0.0),
+        "axis": _AXIS,
+    }
+
+    def static(self, mesh):
+        x = _along(self, mesh) - self.p["origin"]
+        return self.p["depth"] * np.sin(np.pi * x / self.p["spacing"]) ** 2
+
+
+@register
+class Slits(PotentialTerm):
+    kind = "slits"
+    summary = "a wall of `height` across `axis` at `position`, with openings along `across`"
+    parameters = {
+        "height": Field("energy", positive=True),
+        "position": Field("length", 0.0),
+        "thickness": Field("length", positive=True),
+        "openings": Field("list", doc="centres of the openings along `across`"),
+        "opening_width": Field("length", positive=True),
+        "axis": _AXIS,
+        "across": Field("str", None, "axis along which the openings lie (default: the second)"),
+    }
+
+    def validate(self):
+        if self.ctx.grid.ndim < 2:
+            raise JobError(f"{self.ctx.field}.kind", "slits need a 2D or 3D grid")
+        units = self.ctx.units
+        self.open_at = [units.to_atomic(v, "length", f"{self.ctx.field}.openings.{i}")
+                        for i, v in enumerate(self.p["openings"])]
+
+    def static(self, mesh):
+        names = self.ctx.grid.names
+        x = _along(self, mesh)
+        across = self.p.get("across") or names[1]
+        if across not in names or across == names[self.axis_of()]:
+            raise JobError(f"{self.ctx.field}.across", f"must be another axis of {', '.join(names)}")
+        y = mesh[across]
+        wall = np.abs(x - self.p["position"]) < self.p["thickness"] / 2
+        hole = np.zeros(np.broadcast_shapes(np.shape(y)), bool)
+        for c in self.open_at:
+            hole = hole | (np.abs(y - c) < self.p["opening_width"] / 2)
+        return self.p["height"] * (wall & ~hole)
+
+
+def _each(value, n: int) -> list:
+    return list(value) if isinstance(value, (list, tuple)) else [value] * n

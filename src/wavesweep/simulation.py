@@ -1,0 +1,332 @@
+"""One run: a validated job -> physical objects -> the stepping loop -> a result file.
+
+:class:`Setup` turns a :class:`~wavesweep.jobfile.Job` into atomic-unit
+objects (grid, Hamiltonian, absorber, initial state, detectors, propagator).
+:class:`Simulation` runs the loop, records observables every ``record.every``
+and density every ``record.snapshot_every``, and writes the result through
+:class:`~wavesweep.io.recorder.ResultWriter`.
+"""
+from __future__ import annotations
+
+import math
+import os
+import sys
+import time as _time
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .absorbers.layers import Absorber
+from .absorbers.tuning import tune_cap_strength
+from .errors import JobError, RunFailed
+from .fft import make_transform
+from .grid import Axis, Grid
+from .hamiltonian import Hamiltonian
+from .io.recorder import ResultWriter
+from .jobfile import Job, grid_axes, load_job
+from .observables import Detector, Observer
+from .potentials import PotentialContext, term_class
+from .propagators import propagator_class
+from .schema import Field, to_atomic
+from .states import PACKET_SCHEMAS, build_state, central_momenta, momentum_spread
+
+__all__ = ["Setup", "Simulation", "run_job"]
+
+AXIS_LONG = {"x": "position x", "y": "position y", "z": "position z", "r": "radius r"}
+
+
+class Setup:
+    """Atomic-unit objects of a job (no time stepping)."""
+
+    def __init__(self, job: Job, fft: str | None = None, threads: int | None = None):
+        self.job = job
+        t, u = job.table, job.units
+        self.units = u
+        self.mass = u.to_atomic(t["particle"]["mass"], "mass", "particle.mass")
+        charge = t["particle"].get("charge")
+        self.charge = None if charge is None else u.to_atomic(charge, "charge", "particle.charge")
+        self.grid = self._grid(t["grid"])
+        ev = t["evolve"]
+        self.dt = u.to_atomic(ev["dt"], "time", "evolve.dt")
+        self.duration = u.to_atomic(ev["duration"], "time", "evolve.duration")
+        self.total_steps = round(self.duration / self.dt)
+        rec = t["record"]
+        self.sample_steps = round(u.to_atomic(rec["every"], "time") / self.dt)
+        self.snapshot_steps = round(u.to_atomic(rec["snapshot_every"], "time") / self.dt)
+        self.dtype = np.complex64 if ev["precision"] == "single" else np.complex128
+        self.terms = [self._term(i, p) for i, p in enumerate(t["potential"])]
+        self.packet = self._packet_atomic(t["packet"])
+        self.psi0 = build_state(self.packet, self.grid, self.mass)
+        self.absorber = self._absorber(t["absorber"])
+        self.hamiltonian = Hamiltonian(self.grid, self.mass, self.terms, self.absorber.rate)
+        self.detectors = [self._detector(i, d) for i, d in enumerate(t["detector"])]
+        self.fft_backend = fft or ev.get("fft", "auto")
+        self.threads = threads or ev.get("threads")
+        self.scheme = propagator_class(ev["scheme"])
+        self.scheme.check_supported(self.hamiltonian, self.absorber, self.grid)
+        from .check import representability
+        representability(self)
+
+    # -- pieces ----------------------------------------------------------------
+    def _grid(self, g) -> Grid:
+        u, axes = self.units, []
+        for name in grid_axes(g):
+            a = g[name]
+            axes.append(Axis(name, u.to_atomic(a["min"], "length"), u.to_atomic(a["max"], "length"),
+                             int(a["points"]), a.get("boundary") or g["boundary"]))
+        return Grid(tuple(axes), radial="r" in g, angular_momentum=int(g.get("l", 0)))
+
+    def _term(self, i, table):
+        cls = term_class(table["kind"], f"potential.{i}.kind")
+        params = to_atomic({k: v for k, v in table.items() if k != "kind"}, cls.parameters,
+                           self.units, f"potential.{i}", self.grid.ndim)
+        ctx = PotentialContext(self.grid, self.mass, self.charge, self.units, f"potential.{i}")
+        return cls(params, ctx)
+
+    def _packet_atomic(self, table, name="packet") -> dict:
+        kind = table["kind"]
+        p = to_atomic(table, PACKET_SCHEMAS[kind], self.units, name, self.grid.ndim)
+        if kind == "superposition":
+            p["packets"] = [self._packet_atomic(s, f"{name}.packets.{j}") for j, s in enumerate(table["packets"])]
+        return p
+
+    def momentum_window(self) -> list[tuple[float, float]]:
+        """Per axis (p_lo, p_hi) covering the packet's momenta (+/- 6 sigma_p),
+        atomic units; for superpositions the union of the parts."""
+        def window(p):
+            if p["kind"] == "gaussian":
+                p0 = central_momenta(p, self.mass, self.grid.ndim, "packet")
+                return [(c - 6 * momentum_spread(w), c + 6 * momentum_spread(w)) for c, w in zip(p0, p["width"])]
+            if p["kind"] == "superposition":
+                parts = [window(s) for s in p["packets"]]
+                return [(min(w[i][0] for w in parts), max(w[i][1] for w in parts)) for i in range(self.grid.ndim)]
+            # a state from a file: measure its momentum content
+            return self._measured_window()
+        return window(self.packet)
+
+    def _measured_window(self):
+        out = []
+        for i, ax in enumerate(self.grid.axes):
+            c = np.fft.fft(self.psi0, axis=i)
+            other = tuple(j for j in range(self.grid.ndim) if j != i)
+            w = np.sum(np.abs(c) ** 2, axis=other) if other else np.abs(c) ** 2
+            k = 2 * np.pi * np.fft.fftfreq(ax.points, ax.dx)
+            keep = k[w > 1e-12 * w.max()]
+            out.append((float(keep.min()), float(keep.max())))
+        return out
+
+    def energy_window(self, axis: int) -> tuple[float, float]:
+        """Kinetic energies (hartree) along one axis that the absorber must
+        take: from the packet's momentum window, floored where the wavelength
+        reaches the layer thickness (slower parts cannot be absorbed by any
+        layer of that thickness and are reported by ``check``)."""
+        lo, hi = self.momentum_window()[axis]
+        pmax = max(abs(lo), abs(hi))
+        pmin = 0.0 if lo <= 0 <= hi else min(abs(lo), abs(hi))
+        th = self.units.to_atomic(self.job.table["absorber"]["thickness"], "length")
+        p_floor = 2 * math.pi / th
+        pmin = max(pmin, p_floor)
+        pmax = max(pmax, 2 * pmin)
+        return pmin**2 / (2 * self.mass), pmax**2 / (2 * self.mass)
+
+    def _absorber(self, table) -> Absorber:
+        kind = table["kind"]
+        if kind == "none":
+            return Absorber(self.grid, "none")
+        u = self.units
+        th = u.to_atomic(table["thickness"], "length", "absorber.thickness")
+        faces = table.get("faces")
+        if kind == "cap":
+            strength = table.get("strength")
+            if strength is None:
+                axes = sorted({f[:-1] for f in (faces or [a.name + "+" for a in self.grid.axes])})
+                windows = [self.energy_window(self.grid.axis_index(a)) for a in axes]
+                e_min, e_max = min(w[0] for w in windows), max(w[1] for w in windows)
+                strength_au, worst = tune_cap_strength(th, self.mass, e_min, e_max, table["power"])
+                self.cap_tuning = {"e_min": e_min, "e_max": e_max, "worst_return": worst}
+                # recorded in the resolved job, so that a rerun uses the same layer
+                table["strength"] = float(f"{u.to_job(strength_au, 'energy'):.12g}")
+            strength_au = u.to_atomic(table["strength"], "energy", "absorber.strength")
+            return Absorber(self.grid, "cap", th, faces, strength=strength_au, power=table["power"])
+        return Absorber(self.grid, "mask", th, faces, dt=self.dt, mask_exponent=table["mask_exponent"])
+
+    def _detector(self, i, d) -> Detector:
+        axis = next(a for a in self.grid.names if d.get(a) is not None)
+        return Detector(d["name"], self.grid.axis_index(axis),
+                        self.units.to_atomic(d[axis], "length", f"detector.{i}.{axis}"))
+
+    def make_propagator(self, transform):
+        return self.scheme(self.hamiltonian, self.dt, transform, self.absorber, self.dtype)
+
+    def unit_labels(self) -> dict:
+        u = self.units
+        return {"length": u.unit_label("length"), "time": u.unit_label("time"),
+                "energy": u.unit_label("energy"), "momentum": u.unit_label("momentum"),
+                "density": f"{u.unit_label('length')}-{self.grid.ndim}",
+                "flux": f"{u.unit_label('time')}-1"}
+
+
+class Simulation:
+    """Runs one job and writes its result dataset.
+
+    >>> sim = Simulation(load_job("jobs/demo.toml"))     # doctest: +SKIP
+    >>> path = sim.run("out/")                           # doctest: +SKIP
+    """
+
+    def __init__(self, job: Job, fft: str | None = None, threads: int | None = None):
+        self.job = job
+        self.setup = Setup(job, fft, threads)
+
+    def output_path(self, outdir) -> Path:
+        return Path(outdir) / f"{self.job.name}.nc"
+
+    def run(self, outdir=None, path=None, progress: bool = True, on_sample=None) -> Path:
+        """Propagate and write the result; returns the file path.
+
+        ``on_sample(step, total, rate)`` is called after every sample (for
+        queue progress).  Raises :class:`RunFailed` on numerical failure (the
+        partial file is removed)."""
+        s = self.setup
+        path = Path(path) if path else self.output_path(outdir)
+        _check_writable(path.parent)
+        transform = make_transform(s.grid, s.fft_backend, s.dtype, s.threads)
+        prop = s.make_propagator(transform)
+        observer = Observer(s.grid, s.mass, transform, s.detectors, s.psi0)
+        u = s.units
+        tf, lf = u.factor("time"), u.factor("length")
+        writer = ResultWriter(path, self._layout(), self._attrs())
+        psi = s.psi0.astype(s.dtype)
+        conv = self._converters()
+        wall0 = _time.perf_counter()
+        bar = _progress(s.total_steps, progress, self.job.name)
+        try:
+            self._sample(writer, observer, prop, psi, conv)
+            writer.add_snapshot(0.0, self._density(psi))
+            done = 0
+            while done < s.total_steps:
+                n = min(s.sample_steps, s.total_steps - done)
+                psi = prop.step(psi, n)
+                done += n
+                values = self._sample(writer, observer, prop, psi, conv)
+                self._health(values, prop, done)
+                if done % s.snapshot_steps == 0:
+                    writer.add_snapshot(prop.t / tf, self._density(psi))
+                if bar is not None:
+                    bar.update(n)
+                if on_sample is not None:
+                    elapsed = _time.perf_counter() - wall0
+                    on_sample(done, s.total_steps, done / elapsed if elapsed > 0 else 0.0)
+            if s.job.table["record"]["final_state"]:
+                writer.set_final_state(np.asarray(psi, np.complex128) * lf ** (s.grid.ndim / 2))
+            wall = _time.perf_counter() - wall0
+            out = writer.close({"steps": int(prop.steps_done), "wall_seconds": float(wall)})
+        except BaseException:
+            writer.abort()
+            raise
+        finally:
+            if bar is not None:
+                bar.close()
+        self.psi = psi
+        return out
+
+    # -- helpers ---------------------------------------------------------------
+    def _converters(self):
+        u = self.setup.units
+        return {"length": 1 / u.factor("length"), "energy": 1 / u.factor("energy"),
+                "momentum": 1 / u.factor("momentum"), "flux": u.factor("time")}
+
+    def _sample(self, writer, observer, prop, psi, conv):
+        s = self.setup
+        values = observer.measure(psi, s.hamiltonian.potential(prop.t))
+        values["absorbed"] = prop.absorbed.copy()
+        row = dict(values)
+        row["x_mean"] *= conv["length"]
+        row["x_std"] *= conv["length"]
+        row["p_mean"] *= conv["momentum"]
+        row["energy"] *= conv["energy"]
+        row["flux"] = values["flux"] * conv["flux"]
+        writer.add_sample(prop.t / s.units.factor("time"), row)
+        return values
+
+    def _health(self, values, prop, step):
+        total = values["norm"] + float(np.sum(prop.absorbed))
+        t = prop.t / self.setup.units.factor("time")
+        if not math.isfinite(total):
+            raise RunFailed(f"psi became NaN/inf at t = {t:g} (step {step}); reduce evolve.dt "
+                            "or check the potential for non-finite values", step, t)
+        tol = 1e-3 if self.setup.dtype == np.complex64 else 1e-6
+        if total > 1 + tol:
+            raise RunFailed(f"norm grew to {total:.6g} at t = {t:g} (step {step}): the scheme is "
+                            "unstable for this dt", step, t)
+
+    def _density(self, psi) -> np.ndarray:
+        lf = self.setup.units.factor("length")
+        d = np.abs(psi.astype(np.complex128)) ** 2
+        return d * lf ** self.setup.grid.ndim
+
+    def _layout(self) -> dict:
+        s = self.setup
+        lf = s.units.factor("length")
+        axes = [(a.name, a.coordinates / lf, AXIS_LONG[a.name]) for a in s.grid.axes]
+        return {
+            "axes": axes,
+            "stride": int(s.job.table["record"]["stride"]),
+            "units": s.unit_labels(),
+            "detectors": [(d.name, s.grid.names[d.axis], d.position / lf) for d in s.detectors],
+            "boundaries": [layer.name for layer in s.absorber.layers],
+            "potential": s.hamiltonian.static_potential / s.units.factor("energy"),
+            "autocorrelation": True,
+            "final_state": bool(s.job.table["record"]["final_state"]),
+        }
+
+    def _attrs(self) -> dict:
+        s, job = self.setup, self.job
+        u = s.units
+        return {
+            "title": job.title,
+            "job": job.to_toml(),
+            "run_id": job.run_id,
+            "wavesweep_version": __version__,
+            "scheme": s.scheme.name,
+            "dt": float(u.to_job(s.dt, "time")),
+            "steps": int(s.total_steps),
+            "precision": job.table["evolve"]["precision"],
+            "units_length": u.unit_label("length"),
+            "units_energy": u.unit_label("energy"),
+            "units_time": u.unit_label("time"),
+            "units_mass": u.unit_label("mass"),
+            "length_to_bohr": float(u.factor("length")),
+            "energy_to_hartree": float(u.factor("energy")),
+            "time_to_atomic": float(u.factor("time")),
+            "mass_to_electron_mass": float(u.factor("mass")),
+            "particle_mass": float(s.mass / u.factor("mass")),
+            "grid_kind": "radial" if s.grid.radial else "cartesian",
+            "angular_momentum": int(s.grid.angular_momentum),
+            "absorber": s.absorber.kind,
+        }
+
+
+def _check_writable(folder: Path) -> None:
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise JobError("--output", f"cannot create {str(folder)!r}: {e.strerror}") from None
+    if not os.access(folder, os.W_OK):
+        raise JobError("--output", f"{str(folder)!r} is not writable; choose another folder with -o")
+
+
+def _progress(total, enabled, name):
+    if not enabled:
+        return None
+    from tqdm import tqdm
+    return tqdm(total=total, unit="step", desc=name, file=sys.stderr, delay=2.0,
+                dynamic_ncols=True, leave=False)
+
+
+def run_job(job, outdir=".", overrides=(), progress=True, **kwargs) -> Path:
+    """Run a job (a path, a dict or a :class:`Job`) and return the result path."""
+    if not isinstance(job, Job):
+        from .jobfile import job_from_dict
+        job = load_job(job, overrides) if isinstance(job, (str, Path)) else job_from_dict(job, overrides)
+    return Simulation(job, **kwargs).run(outdir, progress=progress)

@@ -1,0 +1,158 @@
+"""Initial states on a grid (atomic units).
+
+* ``gaussian``: psi(x) = (2 pi s^2)^(-1/4) exp(-(x - x0)^2 / (4 s^2) + i p0 (x - x0)),
+  a product over axes in 2D/3D; ``s`` (``width``) is the standard deviation
+  of |psi|^2 and p0 the mean momentum (hbar = 1).  ``energy`` E instead of
+  ``momentum`` means p0 = direction * sqrt(2 m E) (1D/radial).
+* ``superposition``: sum_j a_j exp(i phase_j) psi_j of packets in ``packets``.
+* ``file``: psi from the ``psi_real``/``psi_imag`` variables of a netCDF file
+  (a result of this tool, or anything on the same grid).
+
+Every state is normalised on the grid.  A packet whose analytic norm is not
+on the grid (centre outside, or cut by an edge) is an error.
+"""
+from __future__ import annotations
+
+import math
+import os
+
+import numpy as np
+
+from .errors import JobError
+from .schema import Field
+
+__all__ = ["PACKET_SCHEMAS", "build_state", "gaussian_packet", "momentum_spread"]
+
+_GAUSSIAN = {
+    "kind": Field("str", "gaussian"),
+    "center": Field("length", per_axis=True, doc="packet centre x0 (one per axis in 2D/3D)"),
+    "width": Field("length", per_axis=True, positive=True,
+                   doc="standard deviation of |psi|^2 in position"),
+    "momentum": Field("momentum", None, per_axis=True, doc="central momentum p0"),
+    "energy": Field("energy", None, nonnegative=True,
+                    doc="kinetic energy p0^2/2m of the central momentum (1D)"),
+    "direction": Field("number", 1.0, choices=(1, -1, 1.0, -1.0), doc="sign of p0 with `energy`"),
+}
+_SUPERPOSITION = {
+    "kind": Field("str"),
+    "packets": Field("list", doc="packet tables to superpose"),
+    "amplitudes": Field("list", None, doc="real weights a_j (default all 1)"),
+    "phases": Field("list", None, doc="phases in radians (default all 0)"),
+}
+_FILE = {
+    "kind": Field("str"),
+    "path": Field("str", doc="netCDF file with psi_real and psi_imag on this grid"),
+    "real": Field("str", "psi_real"),
+    "imag": Field("str", "psi_imag"),
+}
+PACKET_SCHEMAS = {"gaussian": _GAUSSIAN, "superposition": _SUPERPOSITION, "file": _FILE}
+
+
+def gaussian_packet(coord: np.ndarray, x0: float, width: float, p0: float) -> np.ndarray:
+    """One-axis Gaussian packet (bohr, bohr, hbar/bohr); unit L2 norm on the line."""
+    s = coord - x0
+    return (2 * math.pi * width**2) ** -0.25 * np.exp(-(s**2) / (4 * width**2) + 1j * p0 * s)
+
+
+def momentum_spread(width: float) -> float:
+    """Standard deviation of the momentum of a minimum-uncertainty packet, hbar / (2 width)."""
+    return 0.5 / width
+
+
+def central_momenta(packet: dict, mass: float, ndim: int, field: str) -> list[float]:
+    """p0 per axis (atomic units) from ``momentum`` or ``energy`` (already atomic)."""
+    if packet.get("momentum") is not None and packet.get("energy") is not None:
+        raise JobError(f"{field}.energy", "give either momentum or energy, not both")
+    if packet.get("energy") is not None:
+        if ndim != 1:
+            raise JobError(f"{field}.energy", "in 2D/3D give `momentum` per axis instead")
+        return [packet.get("direction", 1.0) * math.sqrt(2 * mass * packet["energy"])]
+    p = packet.get("momentum")
+    if p is None:
+        return [0.0] * ndim
+    return list(p)
+
+
+def build_state(packet: dict, grid, mass: float, field: str = "packet") -> np.ndarray:
+    """psi on the grid (complex128, normalised) from a packet table in atomic units."""
+    kind = packet.get("kind", "gaussian")
+    if kind == "gaussian":
+        psi = _gaussian_state(packet, grid, mass, field)
+    elif kind == "superposition":
+        psi = _superposition(packet, grid, mass, field)
+    elif kind == "file":
+        psi = _from_file(packet, grid, field)
+    else:  # validated upstream; a programming error here
+        raise JobError(f"{field}.kind", f"unknown packet kind {kind!r}")
+    norm = float(np.sum(np.abs(psi) ** 2)) * grid.cell_volume
+    if not np.isfinite(norm) or norm <= 0:
+        raise JobError(field, "the initial state is zero or not finite on the grid")
+    return psi / math.sqrt(norm)
+
+
+def _gaussian_state(packet, grid, mass, field):
+    x0s, widths = packet["center"], packet["width"]
+    p0s = central_momenta(packet, mass, grid.ndim, field)
+    psi = np.ones((1,) * grid.ndim, complex)
+    for i, ax in enumerate(grid.axes):
+        x0, w = x0s[i], widths[i]
+        if not (ax.min < x0 < ax.max):
+            raise JobError(f"{field}.center", f"{ax.name} = {x0:g} bohr lies outside the grid "
+                                              f"[{ax.min:g}, {ax.max:g}] bohr")
+        line = gaussian_packet(ax.coordinates, x0, w, p0s[i])
+        # the packet must be on the grid, not cut by an edge (beyond 1e-8 of its weight)
+        on_grid = float(np.sum(np.abs(line) ** 2)) * ax.dx
+        tail = 0.5 * math.erfc((min(x0 - ax.min, ax.max - x0)) / (math.sqrt(2) * w))
+        if ax.boundary == "box" or grid.radial:
+            if tail > 1e-8:
+                raise JobError(f"{field}.center", f"the packet reaches the {ax.name} wall "
+                               f"({tail:.1e} of it lies beyond); move it inward or narrow it")
+        elif tail > 1e-8:
+            raise JobError(f"{field}.center", f"the packet reaches the {ax.name} edge "
+                           f"({tail:.1e} of it lies beyond); move it inward or narrow it")
+        if not np.isfinite(on_grid) or abs(on_grid - 1.0) > 1e-6:
+            raise JobError(f"{field}.width", f"the grid does not resolve the packet along {ax.name} "
+                           f"(norm on grid {on_grid:.6f}); use more points or a wider packet")
+        shape = [1] * grid.ndim
+        shape[i] = ax.points
+        psi = psi * line.reshape(shape)
+    return psi
+
+
+def _superposition(packet, grid, mass, field):
+    parts = packet["packets"]
+    if not parts:
+        raise JobError(f"{field}.packets", "needs at least one packet table")
+    amps = packet.get("amplitudes") or [1.0] * len(parts)
+    phases = packet.get("phases") or [0.0] * len(parts)
+    if len(amps) != len(parts) or len(phases) != len(parts):
+        raise JobError(f"{field}.amplitudes", "needs one amplitude and one phase per packet")
+    psi = 0.0
+    for j, (sub, a, ph) in enumerate(zip(parts, amps, phases)):
+        psi = psi + float(a) * np.exp(1j * float(ph)) * build_state(sub, grid, mass, f"{field}.packets.{j}")
+    return np.broadcast_to(psi, grid.shape).astype(complex)
+
+
+def _from_file(packet, grid, field):
+    import xarray as xr
+
+    path = packet["path"]
+    if not os.path.exists(path):
+        raise JobError(f"{field}.path", f"no such file {path!r}")
+    try:
+        with xr.open_dataset(path) as ds:
+            for key in ("real", "imag"):
+                if packet[key] not in ds:
+                    raise JobError(f"{field}.{key}", f"{packet[key]!r} is not in {path!r}")
+            re = ds[packet["real"]].load()
+            im = ds[packet["imag"]].load()
+            lf = float(ds.attrs.get("length_to_bohr", 1.0))
+    except (OSError, ValueError) as e:
+        raise JobError(f"{field}.path", f"cannot read {path!r} as netCDF: {e}") from e
+    if re.shape != grid.shape:
+        raise JobError(f"{field}.path", f"the state has shape {re.shape}, the grid {grid.shape}")
+    for dim, ax in zip(re.dims, grid.axes):
+        c = np.asarray(re[dim].values, float) * lf
+        if not np.allclose(c, ax.coordinates, rtol=0, atol=1e-6 * ax.dx):
+            raise JobError(f"{field}.path", f"the state's {dim} coordinates differ from the grid's")
+    return np.asarray(re.values, float) + 1j * np.asarray(im.values, float)

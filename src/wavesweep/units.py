@@ -1,0 +1,306 @@
+"""Units: the job's unit set, quantities with units, conversion to atomic units.
+
+Internally wavesweep works in Hartree atomic units (hbar = m_e = e = 1,
+4 pi eps0 = 1).  A job chooses a unit for length, energy, time and mass; every
+number in the job file is read in those units, and every number written to a
+result file is written in them.  A value may instead be a string carrying its
+own unit, ``"3 nm"`` or ``"0.2 m_e*nm/fs"``.
+
+All conversion factors are CODATA values taken from :mod:`scipy.constants`.
+
+Each quantity has a *kind* (``"length"``, ``"energy"``, ...).  A kind fixes
+the physical dimension (exponents of mass, length, time, charge) and how the
+job's unit for it is built from the job's four base units.  The four base
+units need not be mutually consistent in the ``E = M L^2 / T^2`` sense
+(nm / meV / fs / m_e are not): each kind has its own job unit, and everything
+is converted to atomic units on input, so the physics never sees the choice.
+"""
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass
+
+import scipy.constants as sc
+
+from .errors import JobError
+
+__all__ = ["UnitSet", "KINDS", "parse_unit", "ATOMIC"]
+
+# --- atomic units in SI (CODATA via scipy.constants) -------------------------
+_M_AU = sc.m_e                                   # kg
+_L_AU = sc.physical_constants["Bohr radius"][0]  # m
+_E_AU = sc.physical_constants["Hartree energy"][0]  # J
+_T_AU = sc.hbar / _E_AU                          # s
+_Q_AU = sc.e                                     # C
+
+# Dimension vectors are (mass, length, time, charge) exponents.
+Dims = tuple[int, int, int, int]
+_DIM_NONE: Dims = (0, 0, 0, 0)
+
+
+def _au_in_si(dims: Dims) -> float:
+    m, l, t, q = dims
+    return _M_AU**m * _L_AU**l * _T_AU**t * _Q_AU**q
+
+
+def _unit(si_value: float, dims: Dims) -> tuple[float, Dims]:
+    """(factor to atomic units, dims) for a unit whose SI value is given."""
+    return si_value / _au_in_si(dims), dims
+
+
+_MASS, _LEN, _TIME, _CHG = (1, 0, 0, 0), (0, 1, 0, 0), (0, 0, 1, 0), (0, 0, 0, 1)
+_ENERGY: Dims = (1, 2, -2, 0)
+
+# Unit symbols: name -> (factor to atomic units, dims).  Kept to symbols that a
+# physicist writes without ambiguity; "e" is not a unit here (it is the
+# charge-unit name "e_charge" / "qe") so that "1e-3 eV" cannot be misread.
+UNITS: dict[str, tuple[float, Dims]] = {
+    # atomic
+    "bohr": (1.0, _LEN), "a0": (1.0, _LEN),
+    "hartree": (1.0, _ENERGY), "Eh": (1.0, _ENERGY), "Ha": (1.0, _ENERGY),
+    "au_time": (1.0, _TIME), "m_e": (1.0, _MASS), "me": (1.0, _MASS),
+    "e_charge": (1.0, _CHG), "qe": (1.0, _CHG),
+    # SI and prefixed
+    "m": _unit(1.0, _LEN), "cm": _unit(1e-2, _LEN), "mm": _unit(1e-3, _LEN),
+    "um": _unit(1e-6, _LEN), "µm": _unit(1e-6, _LEN), "micron": _unit(1e-6, _LEN),
+    "nm": _unit(1e-9, _LEN), "pm": _unit(1e-12, _LEN),
+    "angstrom": _unit(1e-10, _LEN), "Å": _unit(1e-10, _LEN), "A": _unit(1e-10, _LEN),
+    "s": _unit(1.0, _TIME), "ms": _unit(1e-3, _TIME), "us": _unit(1e-6, _TIME),
+    "µs": _unit(1e-6, _TIME), "ns": _unit(1e-9, _TIME), "ps": _unit(1e-12, _TIME),
+    "fs": _unit(1e-15, _TIME), "as": _unit(1e-18, _TIME),
+    "J": _unit(1.0, _ENERGY), "eV": _unit(sc.eV, _ENERGY), "meV": _unit(1e-3 * sc.eV, _ENERGY),
+    "ueV": _unit(1e-6 * sc.eV, _ENERGY), "µeV": _unit(1e-6 * sc.eV, _ENERGY),
+    "neV": _unit(1e-9 * sc.eV, _ENERGY), "keV": _unit(1e3 * sc.eV, _ENERGY),
+    "kg": _unit(1.0, _MASS), "g": _unit(1e-3, _MASS),
+    "u": _unit(sc.atomic_mass, _MASS), "Da": _unit(sc.atomic_mass, _MASS),
+    "dalton": _unit(sc.atomic_mass, _MASS), "amu": _unit(sc.atomic_mass, _MASS),
+    "C": _unit(1.0, _CHG),
+    "V": _unit(1.0, (1, 2, -2, -1)),                 # volt = J / C
+    "Hz": _unit(1.0, (0, 0, -1, 0)), "kHz": _unit(1e3, (0, 0, -1, 0)),
+    "MHz": _unit(1e6, (0, 0, -1, 0)), "GHz": _unit(1e9, (0, 0, -1, 0)),
+    "THz": _unit(1e12, (0, 0, -1, 0)),
+    # energy equivalents that are conventional in spectroscopy / cold atoms
+    "K": _unit(sc.k, _ENERGY),                      # k_B * 1 K
+    "mK": _unit(1e-3 * sc.k, _ENERGY), "uK": _unit(1e-6 * sc.k, _ENERGY),
+    "µK": _unit(1e-6 * sc.k, _ENERGY), "nK": _unit(1e-9 * sc.k, _ENERGY),
+    "invcm": _unit(sc.h * sc.c * 100.0, _ENERGY),   # wavenumber, h c / 1 cm
+}
+
+
+@dataclass(frozen=True)
+class Kind:
+    """A physical kind of quantity: its dimensions and its job unit.
+
+    ``job_unit`` is a product of powers of the job's base units
+    (``"length"``, ``"energy"``, ``"time"``, ``"mass"``, ``"charge"``).
+    """
+
+    name: str
+    dims: Dims
+    job_unit: tuple[tuple[str, int], ...]
+
+
+def _k(name, dims, *parts):
+    return name, Kind(name, dims, tuple(parts))
+
+
+KINDS: dict[str, Kind] = dict([
+    _k("dimensionless", _DIM_NONE),
+    _k("length", _LEN, ("length", 1)),
+    _k("energy", _ENERGY, ("energy", 1)),
+    _k("time", _TIME, ("time", 1)),
+    _k("mass", _MASS, ("mass", 1)),
+    _k("charge", _CHG, ("charge", 1)),
+    _k("momentum", (1, 1, -1, 0), ("mass", 1), ("length", 1), ("time", -1)),
+    _k("velocity", (0, 1, -1, 0), ("length", 1), ("time", -1)),
+    _k("wavenumber", (0, -1, 0, 0), ("length", -1)),
+    _k("frequency", (0, 0, -1, 0), ("time", -1)),          # angular, rad per time
+    _k("electric_field", (1, 1, -2, -1), ("energy", 1), ("charge", -1), ("length", -1)),
+    _k("energy_per_length", (1, 1, -2, 0), ("energy", 1), ("length", -1)),
+    _k("energy_length", (1, 3, -2, 0), ("energy", 1), ("length", 1)),
+])
+
+_DEFAULT_NAMES = {"length": "bohr", "energy": "hartree", "time": "au_time",
+                  "mass": "m_e", "charge": "e_charge"}
+
+
+_TOKEN = re.compile(r"\s*(?:(?P<name>[A-Za-zµÅ_][A-Za-z0-9µÅ_]*)|(?P<pow>\*\*|\^)|(?P<op>[*/])|(?P<num>[+-]?\d+))")
+
+
+def parse_unit(text: str, field: str = "unit") -> tuple[float, Dims]:
+    """Parse a unit expression such as ``"nm"``, ``"meV/nm"``, ``"m_e*nm/fs"``,
+    ``"1/fs"``, ``"fs^-1"`` or ``"nm**2"`` into (factor to atomic units, dims).
+
+    Grammar: factors separated by ``*`` or ``/`` (each ``/`` divides only the
+    next factor); a factor is a unit symbol with an optional integer power,
+    or the number 1.
+    """
+    bad = JobError(field, f"cannot read unit {text!r}; write e.g. 'nm', 'meV/nm', "
+                          "'m_e*nm/fs' or 'fs^-1'")
+    tokens, pos = [], 0
+    while pos < len(text):
+        m = _TOKEN.match(text, pos)
+        if not m or m.end() == pos:
+            if text[pos:].strip() == "":
+                break
+            raise bad
+        pos = m.end()
+        tokens.append((m.lastgroup, m.group(m.lastgroup)))
+    factor, dims = 1.0, [0, 0, 0, 0]
+    sign, i, need_factor = 1, 0, True
+    while i < len(tokens):
+        kind, tok = tokens[i]
+        if need_factor and kind == "num" and tok == "1":
+            need_factor, i = False, i + 1
+            continue
+        if not need_factor and kind == "op":
+            sign = -1 if tok == "/" else 1
+            need_factor, i = True, i + 1
+            continue
+        if not (need_factor and kind == "name"):
+            raise bad
+        if tok not in UNITS:
+            import difflib
+            near = difflib.get_close_matches(tok, UNITS, n=3)
+            hint = f" (did you mean {', '.join(map(repr, near))}?)" if near else ""
+            raise JobError(field, f"unknown unit {tok!r} in {text!r}{hint}; "
+                                  f"known: {', '.join(sorted(UNITS))}")
+        power = 1
+        if i + 1 < len(tokens) and tokens[i + 1][0] == "pow":
+            if i + 2 >= len(tokens) or tokens[i + 2][0] != "num":
+                raise bad
+            power = int(tokens[i + 2][1])
+            i += 2
+        f, d = UNITS[tok]
+        factor *= f ** (sign * power)
+        for j in range(4):
+            dims[j] += sign * power * d[j]
+        need_factor, i = False, i + 1
+    if need_factor:
+        raise bad
+    return factor, tuple(dims)
+
+
+_QUANTITY = re.compile(r"^\s*(?P<num>[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?)\s*(?P<unit>.*?)\s*$")
+
+
+@dataclass(frozen=True)
+class UnitSet:
+    """The job's units: the name of each base unit and its factor to atomic units.
+
+    ``UnitSet.from_table({"length": "nm", "energy": "meV"})`` gives a set where
+    the time unit follows from hbar / energy unit unless given, as the job-file
+    contract says.  Factors are derived once; conversion is multiplication.
+    """
+
+    length: str = "bohr"
+    energy: str = "hartree"
+    time: str = "au_time"
+    mass: str = "m_e"
+    charge: str = "e_charge"
+    time_derived: bool = False
+
+    @classmethod
+    def from_table(cls, table: dict | None, field: str = "units") -> "UnitSet":
+        table = dict(table or {})
+        allowed = ("length", "energy", "time", "mass", "charge")
+        for key in table:
+            if key not in allowed:
+                import difflib
+                near = difflib.get_close_matches(key, allowed, n=1)
+                hint = f" (did you mean {near[0]!r}?)" if near else ""
+                raise JobError(f"{field}.{key}", f"unknown key{hint}; allowed: {', '.join(allowed)}")
+            if not isinstance(table[key], str):
+                raise JobError(f"{field}.{key}", f"must be a unit name as a string, got {table[key]!r}")
+        names = {}
+        for key in allowed:
+            name = table.get(key, _DEFAULT_NAMES[key])
+            _, dims = parse_unit(name, f"{field}.{key}")
+            want = KINDS[key].dims
+            if dims != want:
+                raise JobError(f"{field}.{key}", f"{name!r} is not a unit of {key}")
+            names[key] = name
+        derived = "time" not in table and "energy" in table
+        if derived:
+            names["time"] = f"hbar/{names['energy']}"
+        return cls(**names, time_derived=derived)
+
+    # -- factors -----------------------------------------------------------
+    def base_factor(self, base: str) -> float:
+        """Atomic units per one job unit of a base quantity."""
+        name = getattr(self, base)
+        if base == "time" and self.time_derived:
+            # hbar / E_unit in atomic units is 1 / (E_unit in hartree).
+            return 1.0 / parse_unit(self.energy)[0]
+        return parse_unit(name)[0]
+
+    def factor(self, kind: str) -> float:
+        """Atomic units per one job unit of quantity ``kind``."""
+        f = 1.0
+        for base, power in KINDS[kind].job_unit:
+            f *= self.base_factor(base) ** power
+        return f
+
+    def unit_label(self, kind: str) -> str:
+        """A CF-style unit string for ``kind`` in this unit set (``"nm-1"``)."""
+        parts = []
+        for base, power in KINDS[kind].job_unit:
+            name = getattr(self, base)
+            if base == "time" and self.time_derived:
+                name = f"(hbar/{self.energy})"
+            parts.append(name if power == 1 else f"{name}{power}")
+        return " ".join(parts) if parts else "1"
+
+    def density_label(self, ndim: int) -> str:
+        name = self.length
+        return f"{name}-{ndim}"
+
+    # -- conversion --------------------------------------------------------
+    def to_atomic(self, value, kind: str, field: str = "value") -> float:
+        """A job value (number in job units, or a string with its own unit)
+        converted to atomic units."""
+        if isinstance(value, bool):
+            raise JobError(field, f"must be a number, got {value!r}")
+        if isinstance(value, (int, float)):
+            out = float(value) * self.factor(kind)
+        elif isinstance(value, str):
+            out = quantity_to_atomic(value, kind, field)
+        else:
+            raise JobError(field, f"must be a number or a string with a unit such as '3 nm', got {value!r}")
+        if not math.isfinite(out):
+            raise JobError(field, f"must be finite, got {value!r}")
+        return out
+
+    def to_job(self, value_au, kind: str):
+        """Atomic units -> numbers in the job's unit for ``kind``."""
+        return value_au / self.factor(kind)
+
+    def as_table(self) -> dict:
+        out = {"length": self.length, "energy": self.energy, "mass": self.mass}
+        if not self.time_derived:
+            out["time"] = self.time
+        if self.charge != _DEFAULT_NAMES["charge"]:
+            out["charge"] = self.charge
+        return out
+
+
+ATOMIC = UnitSet()
+
+
+def quantity_to_atomic(text: str, kind: str, field: str = "value") -> float:
+    """``"3 nm"`` -> 3 nm in bohr; the unit must have the dimension of ``kind``."""
+    m = _QUANTITY.match(text)
+    if not m:
+        raise JobError(field, f"cannot read quantity {text!r}; write a number and a unit, e.g. '3 nm'")
+    number = float(m.group("num"))
+    unit = m.group("unit")
+    want = KINDS[kind].dims
+    if not unit:
+        if want != _DIM_NONE:
+            raise JobError(field, f"{text!r} has no unit; write it as a number, or with a {kind} unit")
+        return number
+    factor, dims = parse_unit(unit, field)
+    if dims != want:
+        raise JobError(field, f"{text!r} is not a {kind.replace('_', ' ')}")
+    return number * factor
