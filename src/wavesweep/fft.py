@@ -16,7 +16,8 @@ import os
 import numpy as np
 import scipy.fft
 
-__all__ = ["Transform", "ScipyTransform", "BACKENDS", "make_transform", "register_backend"]
+__all__ = ["Transform", "ScipyTransform", "PyFFTWTransform", "BACKENDS", "make_transform",
+           "register_backend", "wisdom_path"]
 
 
 class Transform:
@@ -28,7 +29,7 @@ class Transform:
     def __init__(self, grid, dtype=np.complex128, threads: int | None = None):
         self.grid = grid
         self.dtype = np.dtype(dtype)
-        self.threads = threads or default_threads()
+        self.threads = threads or default_threads(grid.size)
 
     def forward(self, a: np.ndarray) -> np.ndarray:
         raise NotImplementedError
@@ -68,17 +69,117 @@ class ScipyTransform(Transform):
 BACKENDS: dict[str, type[Transform]] = {"scipy": ScipyTransform}
 
 
+def wisdom_path():
+    """Where FFTW wisdom is kept between runs (``$WAVESWEEP_CACHE`` or the
+    user cache folder), so a second run of the same grid does not plan again."""
+    root = os.environ.get("WAVESWEEP_CACHE") or os.path.join(
+        os.environ.get("XDG_CACHE_HOME") or os.path.expanduser("~/.cache"), "wavesweep")
+    return os.path.join(root, "fftw-wisdom.pickle")
+
+
+def _load_wisdom(pyfftw) -> None:
+    import pickle
+    try:
+        with open(wisdom_path(), "rb") as f:
+            pyfftw.import_wisdom(pickle.load(f))
+    except (OSError, ValueError, EOFError, pickle.UnpicklingError):
+        pass
+
+
+def _save_wisdom(pyfftw) -> None:
+    import pickle
+    import tempfile
+    path = wisdom_path()
+    try:
+        os.makedirs(os.path.dirname(path), exist_ok=True)
+        fd, tmp = tempfile.mkstemp(dir=os.path.dirname(path), prefix=".wisdom-")
+        with os.fdopen(fd, "wb") as f:
+            pickle.dump(pyfftw.export_wisdom(), f)
+        os.replace(tmp, path)  # concurrent workers: last complete writer wins
+    except OSError:
+        pass
+
+
+try:  # pyFFTW is optional: a faster FFT for periodic axes
+    import pyfftw as _pyfftw
+except ImportError:  # pragma: no cover - exercised only without pyFFTW
+    _pyfftw = None
+
+
+class PyFFTWTransform(Transform):
+    """Planned in-place FFTW transforms of one aligned buffer (pyFFTW).
+
+    ``forward(a)`` works in place when ``a`` is the buffer (the propagator
+    keeps psi there, so a step copies nothing); any other input is copied
+    into it first.  Plans are made once per transform with FFTW_MEASURE and
+    the wisdom is cached on disk.  Box (DST-I) axes go through scipy.fft.
+    """
+
+    name = "pyfftw"
+
+    def __init__(self, grid, dtype=np.complex128, threads=None, effort="FFTW_MEASURE"):
+        super().__init__(grid, dtype, threads)
+        kinds = grid.transform_kinds
+        self._fft_axes = tuple(i for i, k in enumerate(kinds) if k == "fft")
+        self._dst_axes = tuple(i for i, k in enumerate(kinds) if k == "dst1")
+        self.buffer = _pyfftw.empty_aligned(grid.shape, dtype=self.dtype)
+        self._fwd = self._bwd = None
+        if self._fft_axes:
+            _load_wisdom(_pyfftw)
+            flags = (effort, "FFTW_DESTROY_INPUT")
+            self._fwd = _pyfftw.FFTW(self.buffer, self.buffer, axes=self._fft_axes,
+                                     direction="FFTW_FORWARD", flags=flags, threads=self.threads)
+            self._bwd = _pyfftw.FFTW(self.buffer, self.buffer, axes=self._fft_axes,
+                                     direction="FFTW_BACKWARD", flags=flags, threads=self.threads)
+            _save_wisdom(_pyfftw)
+
+    def _into_buffer(self, a):
+        if a is not self.buffer:
+            np.copyto(self.buffer, a)
+        return self.buffer
+
+    def forward(self, a):
+        b = self._into_buffer(a)
+        if self._fwd is not None:
+            self._fwd.execute()
+        if self._dst_axes:
+            b[...] = scipy.fft.dstn(b, type=1, axes=self._dst_axes, norm="ortho", workers=self.threads)
+        return b
+
+    def backward(self, c):
+        b = self._into_buffer(c)
+        if self._dst_axes:
+            b[...] = scipy.fft.idstn(b, type=1, axes=self._dst_axes, norm="ortho", workers=self.threads)
+        if self._bwd is not None:
+            self._bwd.execute()
+            b *= 1.0 / int(np.prod([self.grid.shape[i] for i in self._fft_axes]))
+        return b
+
+
+if _pyfftw is not None:
+    BACKENDS["pyfftw"] = PyFFTWTransform
+
+
 def register_backend(cls: type[Transform]) -> type[Transform]:
     """Class decorator: make a Transform subclass available by its ``name``."""
     BACKENDS[cls.name] = cls
     return cls
 
 
-def default_threads() -> int:
-    """Threads for one run: ``WAVESWEEP_THREADS`` if set, else all cores."""
+# Below this many grid points a transform is too short for threads to pay:
+# start-up and synchronisation cost more than the work (and on a loaded
+# machine a spinning thread waits for a core).  Measured order of magnitude.
+THREADS_MIN_POINTS = 1 << 16
+
+
+def default_threads(size: int | None = None) -> int:
+    """Threads for one run: ``WAVESWEEP_THREADS`` if set, else all cores;
+    one for grids smaller than :data:`THREADS_MIN_POINTS`."""
     env = os.environ.get("WAVESWEEP_THREADS")
     if env:
         return max(1, int(env))
+    if size is not None and size < THREADS_MIN_POINTS:
+        return 1
     return os.cpu_count() or 1
 
 

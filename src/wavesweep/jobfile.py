@@ -56,8 +56,8 @@ ABSORBER = {
     "kind": Field("str", "none", choices=("cap", "mask", "none")),
     "thickness": Field("length", None, positive=True),
     "faces": Field("list", None),
-    "strength": Field("energy", None, nonnegative=True,
-                      doc="CAP strength; omitted: tuned to the packet's energy window"),
+    "strength": Field("energy", None, nonnegative=True, per_axis=True,
+                      doc="CAP strength (one per axis allowed); omitted: tuned to the packet"),
     "power": Field("number", 2.0, positive=True),
     "mask_exponent": Field("number", 0.125, positive=True),
 }
@@ -339,7 +339,7 @@ def _packet(raw, units, ndim, base, name) -> dict:
 
 
 def _absorber(raw, units, grid) -> dict:
-    t = validate_table(raw, ABSORBER, "absorber", units)
+    t = validate_table(raw, ABSORBER, "absorber", units, len(grid_axes(grid)))
     if t["kind"] == "none":
         return {"kind": "none"}
     if t.get("thickness") is None:

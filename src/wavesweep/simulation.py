@@ -138,16 +138,25 @@ class Setup:
         th = u.to_atomic(table["thickness"], "length", "absorber.thickness")
         faces = table.get("faces")
         if kind == "cap":
-            strength = table.get("strength")
-            if strength is None:
-                axes = sorted({f[:-1] for f in (faces or [a.name + "+" for a in self.grid.axes])})
-                windows = [self.energy_window(self.grid.axis_index(a)) for a in axes]
-                e_min, e_max = min(w[0] for w in windows), max(w[1] for w in windows)
-                strength_au, worst = tune_cap_strength(th, self.mass, e_min, e_max, table["power"])
-                self.cap_tuning = {"e_min": e_min, "e_max": e_max, "worst_return": worst}
+            if table.get("strength") is None:
+                # one strength per axis, tuned to the kinetic energies along it:
+                # a packet fast along x and spreading slowly along y needs both
+                covered = {f[:-1] for f in faces} if faces else set(self.grid.names)
+                self.cap_tuning = {}
+                tuned = []
+                for i, name in enumerate(self.grid.names):
+                    if name not in covered:
+                        tuned.append(0.0)
+                        continue
+                    e_min, e_max = self.energy_window(i)
+                    s_au, worst = tune_cap_strength(th, self.mass, e_min, e_max, table["power"])
+                    self.cap_tuning[name] = {"e_min": e_min, "e_max": e_max, "worst_return": worst}
+                    tuned.append(float(f"{u.to_job(s_au, 'energy'):.12g}"))
                 # recorded in the resolved job, so that a rerun uses the same layer
-                table["strength"] = float(f"{u.to_job(strength_au, 'energy'):.12g}")
-            strength_au = u.to_atomic(table["strength"], "energy", "absorber.strength")
+                table["strength"] = tuned[0] if self.grid.ndim == 1 else tuned
+            raw = table["strength"]
+            strength_au = ([u.to_atomic(v, "energy", f"absorber.strength.{i}") for i, v in enumerate(raw)]
+                           if isinstance(raw, list) else u.to_atomic(raw, "energy", "absorber.strength"))
             return Absorber(self.grid, "cap", th, faces, strength=strength_au, power=table["power"])
         return Absorber(self.grid, "mask", th, faces, dt=self.dt, mask_exponent=table["mask_exponent"])
 
@@ -156,8 +165,23 @@ class Setup:
         return Detector(d["name"], self.grid.axis_index(axis),
                         self.units.to_atomic(d[axis], "length", f"detector.{i}.{axis}"))
 
-    def make_propagator(self, transform):
+    def make_transform(self):
+        """The propagator's transform.  Only split-operator steps work in the
+        planned in-place buffer of a fast backend; the others keep several
+        arrays alive at once and use scipy.fft."""
+        backend = self.fft_backend if getattr(self.scheme, "in_place_transform", False) else "scipy"
+        return make_transform(self.grid, backend, self.dtype, self.threads)
+
+    def make_propagator(self, transform=None):
+        transform = transform if transform is not None else self.make_transform()
+        _set_kernel_threads(transform.threads)
         return self.scheme(self.hamiltonian, self.dt, transform, self.absorber, self.dtype)
+
+    def make_observer(self):
+        """Observables use their own scipy transform: they must never touch
+        the propagator's buffer, which holds psi."""
+        return Observer(self.grid, self.mass, make_transform(self.grid, "scipy", np.complex128, self.threads),
+                        self.detectors, self.psi0)
 
     def unit_labels(self) -> dict:
         u = self.units
@@ -190,9 +214,8 @@ class Simulation:
         s = self.setup
         path = Path(path) if path else self.output_path(outdir)
         _check_writable(path.parent)
-        transform = make_transform(s.grid, s.fft_backend, s.dtype, s.threads)
-        prop = s.make_propagator(transform)
-        observer = Observer(s.grid, s.mass, transform, s.detectors, s.psi0)
+        prop = s.make_propagator()
+        observer = s.make_observer()
         u = s.units
         tf, lf = u.factor("time"), u.factor("length")
         writer = ResultWriter(path, self._layout(), self._attrs())
@@ -307,6 +330,12 @@ class Simulation:
         }
 
 
+def _set_kernel_threads(n: int) -> None:
+    """numba's parallel kernels use as many threads as the transforms."""
+    import numba
+    numba.set_num_threads(max(1, min(int(n), numba.config.NUMBA_NUM_THREADS)))
+
+
 def _check_writable(folder: Path) -> None:
     try:
         folder.mkdir(parents=True, exist_ok=True)
@@ -320,8 +349,10 @@ def _progress(total, enabled, name):
     if not enabled:
         return None
     from tqdm import tqdm
+    tty = sys.stderr.isatty()
+    # on a terminal: live bar after 2 s; in a log file: a line every 30 s at most
     return tqdm(total=total, unit="step", desc=name, file=sys.stderr, delay=2.0,
-                dynamic_ncols=True, leave=False)
+                mininterval=0.5 if tty else 30.0, dynamic_ncols=tty, leave=False)
 
 
 def run_job(job, outdir=".", overrides=(), progress=True, **kwargs) -> Path:

@@ -30,6 +30,7 @@ class SplitOperator(Propagator):
     """Symmetric composition of Strang sub-steps with weights ``weights``."""
 
     weights: ClassVar[tuple[float, ...]] = STRANG
+    in_place_transform: ClassVar[bool] = True  # psi may live in the transform's buffer
 
     def __init__(self, *args, **kwargs):
         super().__init__(*args, **kwargs)
