@@ -37,6 +37,7 @@ class Finding:
     level: str        # "ok", "warn", "error"
     message: str
     values: dict = field(default_factory=dict)
+    field: str = ""   # the job field to change, for an error ("packet.center")
 
 
 @dataclass
@@ -57,7 +58,22 @@ class Report:
         return "\n".join(lines)
 
     def as_dict(self) -> dict:
-        return {"title": self.title, "findings": [f.__dict__ for f in self.findings]}
+        """Plain JSON-ready data (numpy numbers as Python ones, non-finite as None)."""
+        return _plain({"title": self.title, "findings": [dict(f.__dict__) for f in self.findings]})
+
+
+def _plain(obj):
+    if isinstance(obj, dict):
+        return {str(k): _plain(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_plain(v) for v in obj]
+    if isinstance(obj, (bool, np.bool_)):
+        return bool(obj)
+    if isinstance(obj, (int, np.integer)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        return float(obj) if math.isfinite(obj) else None
+    return obj
 
 
 def _gaussian_parts(packet):
@@ -91,7 +107,8 @@ def representability(setup, findings=None):
                     f"{ax.name}: grid resolves |p| <= {kmax / pf:.4g} {u.unit_label('momentum')}; packet "
                     f"|p0| + 6 sigma_p = {reach6 / pf:.4g} ({reach6 / kmax:.0%} of the range)"
                     + ("" if level == "ok" else f"; use >= {need} points"),
-                    {"axis": ax.name, "k_max": kmax / pf, "packet_reach": reach6 / pf}))
+                    {"axis": ax.name, "k_max": kmax / pf, "packet_reach": reach6 / pf},
+                    field=f"grid.{ax.name}.points"))
 
 
 def check_job(job: Job, trial_seconds: float = 1.0) -> Report:
@@ -121,8 +138,9 @@ def check_job(job: Job, trial_seconds: float = 1.0) -> Report:
                 what = "absorber" if layer else "edge"
                 findings.append(Finding("margin", level,
                     f"packet centre is {margin:.1f} widths from the {face} {what} "
-                    f"({(dist - layer) / lf:.4g} {L}; 8 widths is common practice)",
-                    {"face": face, "widths": margin}))
+                    f"({(dist - layer) / lf:.4g} {L}; 8 widths is common practice)"
+                    + ("; move the packet inward or narrow it" if level == "error" else ""),
+                    {"face": face, "widths": margin}, field="packet.center"))
 
     # time step
     dt = setup.dt
@@ -140,7 +158,8 @@ def check_job(job: Job, trial_seconds: float = 1.0) -> Report:
         f"phase per step: packet's highest kinetic energy {phase:.3g} rad (<= 1 is common practice), "
         f"grid's kinetic range {t_max * dt:.3g} rad, potential range {v_span * dt:.3g} rad "
         f"(dt = {dt / tf:g} {T})",
-        {"packet_phase": phase, "grid_phase": t_max * dt, "potential_phase": v_span * dt}))
+        {"packet_phase": phase, "grid_phase": t_max * dt, "potential_phase": v_span * dt},
+        field="evolve.dt"))
     if setup.scheme.name == "chebyshev":
         from .propagators.chebyshev import Chebyshev
         prop = Chebyshev(setup.hamiltonian, dt, make_transform(setup.grid, "scipy"), setup.absorber)
@@ -174,7 +193,7 @@ def check_job(job: Job, trial_seconds: float = 1.0) -> Report:
                 + ("; slower parts, with wavelengths above the thickness, return more"
                    if floored else ""),
                 {"axis": setup.grid.axes[i].name, "worst_return": worst,
-                 "e_min": e_lo / ef, "e_max": e_hi / ef}))
+                 "e_min": e_lo / ef, "e_max": e_hi / ef}, field="absorber.thickness"))
     else:
         findings.append(Finding("absorber", "ok" if setup.grid.axes[0].boundary == "box" else "warn",
                                 "no absorber: probability reaching the edges "
@@ -186,6 +205,17 @@ def check_job(job: Job, trial_seconds: float = 1.0) -> Report:
     psi_bytes = setup.grid.size * itemsize
     n_kicks = 2 if setup.scheme.name == "strang" else 4
     estimate = psi_bytes * (3 + n_kicks + 2) + setup.grid.size * 8 * 3
+    if setup.grid.radial:
+        from .propagators.split_operator import RADIAL_DENSE_MAX
+        n = setup.grid.axes[0].points
+        if getattr(setup.scheme, "in_place_transform", False):
+            if n <= RADIAL_DENSE_MAX:
+                estimate += 16 * n * n   # the dense radial eigenbasis (two N x N matrices)
+            else:
+                findings.append(Finding("time step", "warn",
+                    f"radial grid of {n} points (> {RADIAL_DENSE_MAX}): the singular radial terms are "
+                    "kicked, which converges slowly; use fewer points or scheme = 'chebyshev'",
+                    {"points": n}, field="grid.r.points"))
     findings.append(Finding("memory", "ok",
         f"psi {psi_bytes / 2**20:.1f} MiB; run about {estimate / 2**20:.0f} MiB",
         {"psi_bytes": psi_bytes, "estimate_bytes": estimate}))

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 
 from .errors import JobError, RunFailed
@@ -15,7 +16,7 @@ EXIT_OK, EXIT_FAIL, EXIT_INPUT = 0, 1, 2
 
 class _Parser(argparse.ArgumentParser):
     def error(self, message):  # one line, exit 2, as for every bad input
-        self.exit(EXIT_INPUT, f"wavesweep: {message} (see wavesweep {self.prog.split()[-1]} --help)\n")
+        self.exit(EXIT_INPUT, f"wavesweep: {message} (see {self.prog} --help)\n")
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -29,7 +30,8 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
                    help="override a job field, e.g. --set packet.width=15 (repeatable)")
     r.add_argument("--quiet", action="store_true", help="no progress bar")
-    r.add_argument("--fft", default=None, help="FFT backend (auto, scipy, pyfftw)")
+    r.add_argument("--fft", default=None, choices=("auto", "scipy", "pyfftw"),
+                   help="FFT backend (default: evolve.fft of the job, else auto)")
 
     c = sub.add_parser("check", help="is the grid and time step adequate? memory, disk, time")
     c.add_argument("job")
@@ -51,14 +53,29 @@ def main(argv=None) -> int:
     try:
         return _COMMANDS[args.command](args)
     except JobError as e:
-        print(f"wavesweep {args.command}: {e}", file=sys.stderr)
+        print(f"wavesweep {args.command}: {_one_line(e)}", file=sys.stderr)
         return EXIT_INPUT
     except RunFailed as e:
-        print(f"wavesweep {args.command}: run failed: {e.reason}", file=sys.stderr)
+        print(f"wavesweep {args.command}: run failed: {_one_line(e.reason)}", file=sys.stderr)
         return EXIT_FAIL
     except KeyboardInterrupt:
         print(f"wavesweep {args.command}: interrupted", file=sys.stderr)
         return 130
+    except MemoryError:
+        print(f"wavesweep {args.command}: out of memory; use fewer grid points "
+              "(wavesweep check estimates the memory a job needs)", file=sys.stderr)
+        return EXIT_FAIL
+    except Exception as e:  # a bug or an environment failure: one line, exit 1
+        if os.environ.get("WAVESWEEP_DEBUG"):
+            raise
+        print(f"wavesweep {args.command}: internal error: {type(e).__name__}: {_one_line(e)} "
+              "(set WAVESWEEP_DEBUG=1 to see the traceback)", file=sys.stderr)
+        return EXIT_FAIL
+
+
+def _one_line(message) -> str:
+    """The contract promises a one-line cause on stderr."""
+    return " ".join(str(message).split())
 
 
 def _run(args) -> int:
@@ -82,7 +99,8 @@ def _check(args) -> int:
     else:
         print(report.text())
     if report.errors:
-        print(f"wavesweep check: {report.errors[0].topic}: {report.errors[0].message}", file=sys.stderr)
+        first = report.errors[0]
+        print(f"wavesweep check: {first.field or first.topic}: {_one_line(first.message)}", file=sys.stderr)
         return EXIT_INPUT
     return EXIT_OK
 

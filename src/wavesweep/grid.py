@@ -67,8 +67,12 @@ class Axis:
         to psi(x) and dpsi/dx at an arbitrary point ``x`` (spectral
         interpolation).  Periodic: coefficients from an unnormalised FFT,
         psi(x) = (1/N) sum_k c_k exp(i k (x - min)); the Nyquist mode of an even
-        N is split into +/- halves, so the derivative row drops it (its
-        derivative is ambiguous).  Box: coefficients from the orthonormal DST-I,
+        N is split into equal +/- halves, cos(k_N (x - min)), and the derivative
+        row is the derivative of that same interpolant, -k_N sin(k_N (x - min))
+        (zero on the grid points, as in the spectral derivative, but not between
+        them: value and derivative must come from one function, or the current
+        of a state with Nyquist content is wrong off the grid points).
+        Box: coefficients from the orthonormal DST-I,
         psi(x) = sqrt(2/(N+1)) sum_n c_n sin(k_n (x - min))."""
         k = self.wavenumbers
         s = x - self.min
@@ -79,7 +83,7 @@ class Axis:
             if n % 2 == 0:
                 ny = n // 2
                 value[ny] = np.cos(k[ny] * s) / n
-                deriv[ny] = 0.0
+                deriv[ny] = -k[ny] * np.sin(k[ny] * s) / n
             return value, deriv
         norm = np.sqrt(2.0 / (self.points + 1))
         return norm * np.sin(k * s) + 0j, norm * k * np.cos(k * s) + 0j
@@ -153,6 +157,14 @@ class Grid:
                 t = t + (a.wavenumbers**2 / (2.0 * mass)).reshape(shape)
             self._cache[key] = t
         return self._cache[key]
+
+    def centrifugal_potential(self, mass: float) -> np.ndarray:
+        """l(l+1) hbar^2 / (2 m r^2) (hartree) on a radial grid; zeros otherwise."""
+        if not (self.radial and self.angular_momentum):
+            return np.zeros(self.shape)
+        r = self.axes[0].coordinates
+        l = self.angular_momentum
+        return l * (l + 1) / (2.0 * mass * r**2)
 
     def kinetic_max(self, mass: float) -> float:
         return sum(a.k_max**2 for a in self.axes) / (2.0 * mass)

@@ -34,10 +34,7 @@ class Hamiltonian:
                 self.separable.append((np.asarray(g(mesh), float), f))
             else:
                 self.general.append(term)
-        if grid.radial and grid.angular_momentum:
-            r = grid.axes[0].coordinates
-            l = grid.angular_momentum
-            v0 = v0 + l * (l + 1) / (2.0 * self.mass * r**2)
+        v0 = v0 + grid.centrifugal_potential(self.mass)
         self.static_potential = np.ascontiguousarray(np.broadcast_to(v0, grid.shape), dtype=float)
         self.kinetic = grid.kinetic_energy(self.mass)
         self.absorber_rate = absorber_rate

@@ -31,6 +31,10 @@ from .units import UnitSet
 
 __all__ = ["Job", "load_job", "job_from_dict", "apply_overrides", "parse_override"]
 
+FFT_BACKENDS = ("auto", "scipy", "pyfftw")
+# Keys that choose how a run is computed, not what is computed: left out of the run id.
+NOT_PHYSICS = {"evolve": ("fft", "threads")}
+
 TOP_LEVEL = ("title", "units", "particle", "grid", "potential", "packet", "evolve",
              "absorber", "record", "detector", "sweep")
 
@@ -49,7 +53,7 @@ EVOLVE = {
     "duration": Field("time", positive=True, doc="total propagation time"),
     "scheme": Field("str", "strang", choices=tuple(SCHEMES)),
     "precision": Field("str", "double", choices=("double", "single")),
-    "fft": Field("str", "auto", doc="FFT backend: auto, scipy, pyfftw"),
+    "fft": Field("str", "auto", choices=FFT_BACKENDS, doc="FFT backend: auto, scipy, pyfftw"),
     "threads": Field("int", None, positive=True),
 }
 ABSORBER = {
@@ -93,12 +97,38 @@ class Job:
     def ndim(self) -> int:
         return len(grid_axes(self.table["grid"]))
 
+    def resolve(self) -> "Job":
+        """Fill in the values that need the physics to choose, so that the
+        table is the complete job: today the CAP strength, tuned to the
+        packet's energies by :class:`~wavesweep.simulation.Setup` (which
+        records it in ``table``).  Idempotent; ``to_toml``, ``canonical`` and
+        ``run_id`` call it, so the id is the same before and after a run and
+        for a rerun of the job text stored in the result."""
+        ab = self.table.get("absorber") or {}
+        if ab.get("kind") == "cap" and ab.get("strength") is None:
+            from .simulation import Setup
+            Setup(self)
+        return self
+
     def to_toml(self) -> str:
-        return tomli_w.dumps(_toml_ready(self.table))
+        """The complete job as TOML; loading it gives back the same table."""
+        self.resolve()
+        table = dict(self.table)
+        if isinstance(table.get("absorber"), dict):  # the tuned strength in its schema place
+            ab = table["absorber"]
+            table["absorber"] = {**{k: ab[k] for k in ABSORBER if k in ab},
+                                 **{k: v for k, v in ab.items() if k not in ABSORBER}}
+        return tomli_w.dumps(_toml_ready(table))
 
     def canonical(self) -> str:
-        """Key-order-free JSON of the physics (title excluded), for hashing."""
+        """Key-order-free JSON of the physics, for hashing: the title, the
+        sweep and the keys in :data:`NOT_PHYSICS` are left out; numbers are
+        compared as floats (1 and 1.0 are the same)."""
+        self.resolve()
         t = {k: v for k, v in self.table.items() if k not in ("title", "sweep")}
+        for table, keys in NOT_PHYSICS.items():
+            if isinstance(t.get(table), dict):
+                t[table] = {k: v for k, v in t[table].items() if k not in keys}
         return json.dumps(_canonical_numbers(t), sort_keys=True, separators=(",", ":"))
 
     @property
@@ -162,6 +192,9 @@ def set_dotted(table: dict, key: str, value) -> None:
             node = _list_item(node, part, here)
         else:
             if part not in node:
+                if parts[depth + 1].lstrip("-").isdigit():
+                    raise JobError(key, f"the job has no {here} entries to index; "
+                                        f"add a [[{here}]] table to the job file first")
                 node[part] = {}
             node = node[part]
         if not isinstance(node, (dict, list)):
@@ -180,7 +213,8 @@ def _index(seq: list, part: str, where: str) -> int:
     except ValueError:
         raise JobError(where, f"{part!r} must be an index into the list (0..{len(seq) - 1})") from None
     if not -len(seq) <= i < len(seq):
-        raise JobError(where, f"index {i} is out of range; the list has {len(seq)} entries")
+        valid = f"valid indices are 0..{len(seq) - 1}" if seq else "there are no entries"
+        raise JobError(where, f"index {i} is out of range; {valid} (negative ones count from the end)")
     return i
 
 
@@ -198,6 +232,8 @@ def load_job(path, overrides=()) -> Job:
         raise JobError("", f"job file {str(path)!r} not found") from None
     except OSError as e:
         raise JobError("", f"cannot read job file {str(path)!r}: {e.strerror}") from None
+    except UnicodeDecodeError as e:
+        raise JobError("", f"{path.name} is not UTF-8 text (byte {e.start}); TOML files are UTF-8") from None
     try:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:
@@ -209,6 +245,9 @@ def job_from_dict(raw: dict, overrides=(), source: Path | None = None) -> Job:
     """Validate a job given as a dict (as parsed from TOML)."""
     raw = apply_overrides(raw, overrides)
     check_unknown(raw, TOP_LEVEL, "")
+    if not isinstance(raw.get("units", {}), dict):
+        raise JobError("units", f"must be a table such as {{ length = 'nm', energy = 'meV' }}, "
+                                f"got {raw['units']!r}")
     units = UnitSet.from_table(raw.get("units"))
     out: dict = {}
     title = raw.get("title", source.stem if source else "untitled")
@@ -319,6 +358,8 @@ def _packet(raw, units, ndim, base, name) -> dict:
     if not isinstance(raw, dict):
         raise JobError(name, "must be a table")
     kind = raw.get("kind", "gaussian")
+    if not isinstance(kind, str):
+        raise JobError(f"{name}.kind", f"must be a string, one of {', '.join(PACKET_SCHEMAS)}; got {kind!r}")
     if kind not in PACKET_SCHEMAS:
         import difflib
         near = difflib.get_close_matches(str(kind), PACKET_SCHEMAS, n=1)
@@ -372,15 +413,21 @@ def _face_names_of(grid) -> list[str]:
     return face_names(_G)
 
 
-def _steps(value, dt, what, field, units) -> int:
+def _steps(value, dt, field, units) -> int:
     n = round(value / dt)
     if n < 1 or abs(n * dt - value) > 1e-9 * max(abs(value), dt):
         lo = max(1, math.floor(value / dt)) * dt
         hi = math.ceil(value / dt) * dt
         tf = units.factor("time")
-        raise JobError(field, f"{what} must be a whole number of time steps (dt = {dt / tf:g}); "
-                              f"use {lo / tf:g} or {hi / tf:g}")
+        raise JobError(field, f"must be a whole number of time steps (dt = {dt / tf:g}), "
+                              f"got {value / tf:g}; use {lo / tf:g} or {hi / tf:g}")
     return n
+
+
+def _job_number(x: float) -> float:
+    """A derived default as it would be written by hand (12 significant
+    digits: 0.05, not 0.05000000000000001)."""
+    return float(f"{x:.12g}")
 
 
 def _record(raw, units, evolve) -> dict:
@@ -389,16 +436,16 @@ def _record(raw, units, evolve) -> dict:
     duration = units.to_atomic(evolve["duration"], "time", "evolve.duration")
     if duration < dt:
         raise JobError("evolve.duration", "is shorter than one time step")
-    total = _steps(duration, dt, "the duration", "evolve.duration", units)
+    total = _steps(duration, dt, "evolve.duration", units)
     if t.get("every") is None:
         # default: about 1000 samples, on whole steps
-        t["every"] = max(1, total // 1000) * dt / units.factor("time")
+        t["every"] = _job_number(max(1, total // 1000) * dt / units.factor("time"))
     every = units.to_atomic(t["every"], "time", "record.every")
-    k = _steps(every, dt, "record.every", "record.every", units)
+    k = _steps(every, dt, "record.every", units)
     if t.get("snapshot_every") is None:
-        t["snapshot_every"] = max(1, (total // k) // 100) * k * dt / units.factor("time")
+        t["snapshot_every"] = _job_number(max(1, (total // k) // 100) * k * dt / units.factor("time"))
     snap = units.to_atomic(t["snapshot_every"], "time", "record.snapshot_every")
-    m = _steps(snap, dt, "record.snapshot_every", "record.snapshot_every", units)
+    m = _steps(snap, dt, "record.snapshot_every", units)
     if m % k:
         raise JobError("record.snapshot_every", f"must be a multiple of record.every ({t['every']!r})")
     if total % k:

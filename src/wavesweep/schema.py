@@ -62,8 +62,9 @@ def check_unknown(table: dict, allowed, prefix: str) -> None:
         if key not in allowed:
             near = difflib.get_close_matches(str(key), allowed, n=1, cutoff=0.5)
             hint = f"did you mean {near[0]!r}? " if near else ""
+            where = "at the top level" if not prefix else f"in [{prefix}]"
             raise JobError(_join(prefix, key),
-                           f"unknown key; {hint}allowed here: {', '.join(allowed)}")
+                           f"unknown key; {hint}allowed {where}: {', '.join(allowed)}")
 
 
 def _join(prefix: str, key) -> str:
@@ -143,7 +144,8 @@ def validate_table(table, schema: dict[str, Field], prefix: str, units: UnitSet 
         name = _join(prefix, key)
         if key not in table:
             if f.required:
-                raise JobError(name, f"missing; {f.doc or 'this field is required'}")
+                what = f" ({f.doc})" if f.doc else ""
+                raise JobError(name, f"missing; add {key} = ...{what}")
             if f.default is not None:
                 out[key] = f.default
             continue

@@ -57,6 +57,8 @@ class Setup:
         self.dtype = np.complex64 if ev["precision"] == "single" else np.complex128
         self.terms = [self._term(i, p) for i, p in enumerate(t["potential"])]
         self.packet = self._packet_atomic(t["packet"])
+        from .check import representability
+        representability(self)  # before the absorber's tuning squares the packet's momenta
         self.psi0 = build_state(self.packet, self.grid, self.mass)
         self.absorber = self._absorber(t["absorber"])
         self.hamiltonian = Hamiltonian(self.grid, self.mass, self.terms, self.absorber.rate)
@@ -65,8 +67,6 @@ class Setup:
         self.threads = threads or ev.get("threads")
         self.scheme = propagator_class(ev["scheme"])
         self.scheme.check_supported(self.hamiltonian, self.absorber, self.grid)
-        from .check import representability
-        representability(self)
 
     # -- pieces ----------------------------------------------------------------
     def _grid(self, g) -> Grid:

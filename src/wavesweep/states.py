@@ -147,6 +147,8 @@ def _from_file(packet, grid, field):
             re = ds[packet["real"]].load()
             im = ds[packet["imag"]].load()
             lf = float(ds.attrs.get("length_to_bohr", 1.0))
+    except JobError:  # a JobError is a ValueError: keep its own field
+        raise
     except (OSError, ValueError) as e:
         raise JobError(f"{field}.path", f"cannot read {path!r} as netCDF: {e}") from e
     if re.shape != grid.shape:

@@ -17,6 +17,8 @@ from pathlib import Path
 import netCDF4
 import numpy as np
 
+from ..errors import JobError
+
 __all__ = ["ResultWriter", "atomic_rename"]
 
 SCALARS = ("norm", "x_mean", "x_std", "p_mean", "energy")
@@ -65,7 +67,11 @@ class ResultWriter:
         self._buf: list[dict] = []
         self._n_time = 0
         self._n_snap = 0
-        ds = netCDF4.Dataset(self.tmp, "w", format="NETCDF4")
+        try:
+            ds = netCDF4.Dataset(self.tmp, "w", format="NETCDF4")
+        except OSError as e:  # permissions, a full disk, a folder that vanished
+            raise JobError("--output", f"cannot write {str(self.tmp.parent)!r}: "
+                                       f"{e.strerror or e}; choose another folder with -o") from None
         self.ds = ds
         try:
             self._define(layout, attrs)
@@ -129,6 +135,7 @@ class ResultWriter:
             v.units, v.long_name = unit, long
         f = ds.createVariable("flux", "f8", ("time", "detector"))
         f.units, f.long_name = u["flux"], "probability current through the detector"
+        f.coordinates = "detector_x detector_axis"  # CF: auxiliary coordinates of `detector`
         a = ds.createVariable("absorbed", "f8", ("time", "boundary"))
         a.units, a.long_name = "1", "probability removed at the face, cumulative"
         if lay.get("autocorrelation", True):

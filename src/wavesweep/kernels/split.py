@@ -7,7 +7,8 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-__all__ = ["as3d", "multiply_inplace", "kick_separable", "kick_general", "abs2_weighted_sum"]
+__all__ = ["as3d", "multiply_inplace", "kick_separable", "kick_general", "abs2_weighted_sum",
+           "real_matvec"]
 
 
 def as3d(a: np.ndarray) -> np.ndarray:
@@ -66,3 +67,17 @@ def abs2_weighted_sum(psi, w):
                 z = psi[i, j, k]
                 total += (z.real * z.real + z.imag * z.imag) * w[i, j, k]
     return total
+
+
+@numba.njit(cache=True, parallel=True, fastmath=False)
+def real_matvec(q, x, out):
+    """out = q @ x for a real C-contiguous (n, n) matrix q and a complex vector x
+    (the dense kinetic step of a radial grid; rows in parallel, no BLAS threads)."""
+    n = q.shape[0]
+    for i in numba.prange(n):
+        re = 0.0
+        im = 0.0
+        for j in range(n):
+            re += q[i, j] * x[j].real
+            im += q[i, j] * x[j].imag
+        out[i] = re + 1j * im

@@ -95,6 +95,8 @@ class FileTerm(PotentialTerm):
                     raise JobError(f"{f}.variable", f"{self.p['variable']!r} is not in {self.p['path']!r}; "
                                    f"it has {', '.join(map(str, ds.data_vars))}")
                 da = ds[self.p["variable"]].load()
+        except JobError:  # a JobError is a ValueError: keep its own field
+            raise
         except (OSError, ValueError) as e:
             raise JobError(f"{f}.path", f"cannot read {self.p['path']!r} as netCDF: {e}") from e
         if tuple(da.dims) != grid.names:

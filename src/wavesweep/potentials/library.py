@@ -151,7 +151,8 @@ class Harmonic(PotentialTerm):
 @register
 class Morse(PotentialTerm):
     kind = "morse"
-    summary = "V = depth (1 - exp(-stiffness (x - center)))^2 (zero at the minimum)"
+    summary = ("V = depth (1 - exp(-stiffness (x - center)))^2 (zero at the minimum; the "
+               "repulsive wall is capped at ~2.4e17 depth, 20/stiffness inside the minimum)")
     parameters = {
         "depth": Field("energy", positive=True),
         "stiffness": Field("wavenumber", positive=True),
@@ -161,7 +162,13 @@ class Morse(PotentialTerm):
 
     def static(self, mesh):
         x = _along(self, mesh) - self.p["center"]
-        arg = np.clip(-self.p["stiffness"] * x, -700, 700)
+        # The repulsive wall grows as exp(2 a |x|).  Clipped only at exp's own
+        # limit (709) the square overflows to inf on a wide grid and the kick
+        # exp(-i V dt) turns psi into NaN.  The wall is capped instead at
+        # depth (1 - e^20)^2 ~ 2.4e17 depth, 20 / stiffness inside the
+        # minimum: far above any kinetic energy a grid represents, so no
+        # resolved state sees the difference.
+        arg = np.clip(-self.p["stiffness"] * x, -700, 20)
         return self.p["depth"] * (1.0 - np.exp(arg)) ** 2
 
 

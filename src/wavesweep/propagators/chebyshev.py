@@ -51,6 +51,7 @@ class Chebyshev(Propagator):
         self.coefficients = coeff[: big[-1] + 1] * np.exp(-1j * self.e_mid * self.dt)
         self._v = self.hamiltonian.static_potential
         self._mask = None
+        absorber = self.absorber
         if absorber is not None and absorber.active:
             self._mask = np.exp(-absorber.rate * self.dt)
             self._loss = absorber.loss_weights(self.dt)

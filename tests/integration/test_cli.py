@@ -1,0 +1,350 @@
+"""The command line, through a real process: exit status, stdout, stderr, files.
+
+Contract (design.md, "Command line"): exit 0 on success, 2 on bad input with
+a one-line cause on stderr, 1 otherwise; ``--json`` prints one JSON object
+on stdout and nothing else there.  For every bad input we also require: the
+line names the field, no traceback anywhere, nothing on stdout for ``run``,
+and no result or partial file left in the output folder.
+
+Jobs are tiny (128 points, 20 steps) so that a run takes well under a second
+and each case costs about one interpreter start.
+"""
+from __future__ import annotations
+
+import copy
+import json
+import os
+import re
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+import tomli_w
+import xarray as xr
+
+ROOT = Path(__file__).resolve().parents[2]
+DEMO = ROOT / "jobs" / "kestrel-diode.toml"
+
+# A 1D barrier job in atomic units: 20 steps of 0.05, samples every 2 steps.
+# No absorber, so that a case costs no CAP tuning (tests that need one add it).
+TINY = {
+    "title": "tiny cli job",
+    "grid": {"x": {"min": -40.0, "max": 40.0, "points": 128}, "boundary": "periodic"},
+    "potential": [{"kind": "barrier", "height": 0.5, "width": 1.0, "center": 0.0}],
+    "packet": {"kind": "gaussian", "center": -10.0, "width": 2.0, "momentum": 1.0},
+    "evolve": {"dt": 0.05, "duration": 1.0, "scheme": "strang"},
+    "record": {"every": 0.1, "snapshot_every": 0.5},
+    "detector": [{"name": "far", "x": 10.0}],
+}
+CAP = {"absorber": {"kind": "cap", "thickness": 8.0}}
+
+TWO_D = {
+    "grid": {"y": {"min": -16.0, "max": 16.0, "points": 32}},
+    "packet": {"center": [-10.0, 0.0], "width": [2.0, 2.0], "momentum": [1.0, 0.0]},
+}
+
+
+def _env(tmp: Path) -> dict:
+    env = dict(os.environ)
+    env.pop("WAVESWEEP_DEBUG", None)  # tracebacks must not appear on their own
+    env.update(WAVESWEEP_THREADS="1", NUMBA_NUM_THREADS="1", OMP_NUM_THREADS="1",
+               WAVESWEEP_CACHE=str(tmp / "cache"))
+    return env
+
+
+def cli(*args, cwd: Path, exe=None) -> subprocess.CompletedProcess:
+    """Run the command line in a fresh interpreter (``python -m wavesweep``)."""
+    cmd = [str(exe)] if exe else [sys.executable, "-m", "wavesweep"]
+    return subprocess.run(cmd + [str(a) for a in args], capture_output=True, text=True,
+                          cwd=cwd, env=_env(cwd), timeout=120)
+
+
+def merged(base: dict, patch: dict) -> dict:
+    """``base`` with ``patch`` merged in recursively (None deletes a key)."""
+    out = copy.deepcopy(base)
+    for key, value in patch.items():
+        if value is None:
+            out.pop(key, None)
+        elif isinstance(value, dict) and isinstance(out.get(key), dict):
+            out[key] = merged(out[key], value)
+        else:
+            out[key] = copy.deepcopy(value)
+    return out
+
+
+def write_job(folder: Path, table: dict, name: str = "job.toml") -> Path:
+    path = folder / name
+    path.write_text(tomli_w.dumps(table))
+    return path
+
+
+def leftovers(folder: Path) -> list[str]:
+    """Result files and partial files in an output folder (hidden ones too)."""
+    if not folder.exists():
+        return []
+    return sorted(p.name for p in folder.iterdir() if p.suffix == ".nc" or p.name.endswith(".part"))
+
+
+def assert_bad_input(proc, field: str, *pieces: str, stdout_empty: bool = True) -> str:
+    """Exit 2, exactly one line on stderr naming ``field``, no traceback."""
+    assert "Traceback" not in proc.stdout + proc.stderr, proc.stderr
+    assert proc.returncode == 2, (proc.returncode, proc.stderr)
+    lines = proc.stderr.splitlines()
+    assert len(lines) == 1, proc.stderr
+    line = lines[0]
+    assert field in line, line
+    for piece in pieces:
+        assert piece in line, line
+    if stdout_empty:
+        assert proc.stdout == "", proc.stdout
+    return line
+
+
+# -- bad input: one table per case -------------------------------------------------
+# (id, job patch, extra CLI args, field named in the message, other pieces)
+CASES = [
+    ("unknown-key", {"packet": {"width": None, "widht": 3.0}}, [], "packet.widht", ["'width'"]),
+    ("unknown-table", {"detectors": [{"x": 5.0}]}, [], "detectors", ["'detector'"]),
+    ("missing-dt", {"evolve": {"dt": None}}, [], "evolve.dt", ["missing"]),
+    ("points-string", {"grid": {"x": {"points": "many"}}}, [], "grid.x.points", ["integer"]),
+    ("dt-list", {"evolve": {"dt": [1]}}, [], "evolve.dt", ["list"]),
+    ("points-zero", {"grid": {"x": {"points": 0}}}, [], "grid.x.points", ["positive"]),
+    ("points-negative", {"grid": {"x": {"points": -64}}}, [], "grid.x.points", ["positive"]),
+    ("width-negative", {"packet": {"width": -2.0}}, [], "packet.width", ["positive"]),
+    ("centre-outside", {"packet": {"center": -100.0}}, [], "packet.center", ["outside"]),
+    ("centre-cut-by-edge", {"packet": {"center": -36.0}}, [], "packet.center", ["edge"]),
+    ("expression-import", {"potential": [{"kind": "expression",
+                                          "expression": "__import__('os').system('touch PWNED')"}]},
+     [], "potential.0.expression", ["__import__"]),
+    ("expression-attribute", {"potential": [{"kind": "expression", "expression": "x.real"}]},
+     [], "potential.0.expression", ["x.real"]),
+    ("detector-outside", {"detector": [{"name": "far", "x": 100.0}]}, [], "detector.0.x", ["outside"]),
+    ("every-not-multiple-of-dt", {"record": {"every": 0.07}}, [], "record.every", ["0.05", "0.1"]),
+    ("unknown-scheme", {"evolve": {"scheme": "leapfrog"}}, [], "evolve.scheme", ["strang"]),
+    ("chebyshev-time-dependent", {"evolve": {"scheme": "chebyshev"},
+                                  "potential": [{"kind": "expression", "expression": "0.01 * x * cos(t)"}]},
+     [], "evolve.scheme", ["time"]),
+    ("crank-nicolson-2d", merged(TWO_D, {"evolve": {"scheme": "crank_nicolson"}}),
+     [], "evolve.scheme", ["1D"]),
+    # p0 = 8 with dx = 0.625: the grid resolves |p| <= pi/dx = 5.03 only
+    ("grid-too-coarse", {"packet": {"momentum": 8.0}}, [], "grid.x.points", ["use at least"]),
+    ("set-unknown-key", {}, ["--set", "evolve.dtt=0.1"], "evolve.dtt", ["'dt'"]),
+    ("set-index-out-of-range", {}, ["--set", "potential.5.height=1"], "potential.5", ["range"]),
+    ("set-without-equals", {}, ["--set", "packet.width"], "--set", ["key=value"]),
+]
+
+
+# ``check`` reads jobs through the same loader as ``run``; it is asked about one
+# case from each stage of validation (schema, --set, units and steps, physics
+# of the packet, the scheme's limits, the expression parser).
+CHECK_TOO = {"unknown-key", "points-negative", "centre-cut-by-edge", "expression-import",
+             "every-not-multiple-of-dt", "chebyshev-time-dependent", "grid-too-coarse",
+             "set-index-out-of-range"}
+PARAMS = [pytest.param("run", *c[1:], id=f"run-{c[0]}") for c in CASES]
+PARAMS += [pytest.param("check", *c[1:], id=f"check-{c[0]}") for c in CASES if c[0] in CHECK_TOO]
+
+
+@pytest.mark.parametrize(("command", "patch", "extra", "field", "pieces"), PARAMS)
+def test_bad_input_is_one_line_exit_2(tmp_path, command, patch, extra, field, pieces):
+    job = write_job(tmp_path, merged(TINY, patch))
+    out = tmp_path / "out"
+    args = ["-o", out, "--quiet"] if command == "run" else ["--trial-seconds", "0.01"]
+    proc = cli(command, job, *args, *extra, cwd=tmp_path)
+    assert_bad_input(proc, field, *pieces)
+    assert leftovers(out) == []
+    assert not (tmp_path / "PWNED").exists()  # the expression case ran nothing
+
+
+@pytest.mark.parametrize("command", ["run", "check"])
+def test_toml_syntax_error(tmp_path, command):
+    job = tmp_path / "broken.toml"
+    job.write_text('title = "unterminated\n[grid\n')
+    args = ["-o", tmp_path / "out"] if command == "run" else []
+    line = assert_bad_input(cli(command, job, *args, cwd=tmp_path), "broken.toml", "TOML", "line 1")
+    assert re.search(r"column \d+", line)
+    assert leftovers(tmp_path / "out") == []
+
+
+@pytest.mark.parametrize("command", ["run", "check"])
+def test_missing_job_file(tmp_path, command):
+    args = ["-o", tmp_path / "out"] if command == "run" else []
+    assert_bad_input(cli(command, "no-such-job.toml", *args, cwd=tmp_path), "no-such-job.toml", "not found")
+    assert not (tmp_path / "out").exists()
+
+
+@pytest.mark.parametrize(("args", "field"), [
+    (["run", "JOB"], "-o/--output"),
+    (["run", "JOB", "-o", "out", "--fft", "fastest"], "--fft"),
+    (["check", "JOB", "--trial-seconds", "soon"], "--trial-seconds"),
+    (["frobnicate"], "frobnicate"),
+])
+def test_bad_arguments_are_one_line_exit_2(tmp_path, capsys, args, field):
+    """Argument errors (argparse) follow the same rule; in-process is enough."""
+    from wavesweep.cli import main
+
+    job = write_job(tmp_path, TINY)
+    with pytest.raises(SystemExit) as info:
+        main([str(job) if a == "JOB" else a for a in args])
+    assert info.value.code == 2
+    captured = capsys.readouterr()
+    assert captured.out == ""
+    assert len(captured.err.splitlines()) == 1 and field in captured.err, captured.err
+
+
+def test_output_under_a_regular_file(tmp_path):
+    """A folder that cannot be created (its parent is a file): exit 2, nothing written."""
+    job = write_job(tmp_path, TINY)
+    (tmp_path / "plain-file").write_text("not a folder\n")
+    proc = cli("run", job, "-o", tmp_path / "plain-file" / "out", "--quiet", cwd=tmp_path)
+    assert_bad_input(proc, "--output", "plain-file")
+    assert leftovers(tmp_path) == []
+
+
+@pytest.mark.skipif(not hasattr(os, "geteuid") or os.geteuid() == 0,
+                    reason="root writes through chmod 555; covered by test_output_under_a_regular_file")
+def test_output_in_read_only_folder(tmp_path):
+    job = write_job(tmp_path, TINY)
+    locked = tmp_path / "locked"
+    locked.mkdir()
+    locked.chmod(0o555)
+    try:
+        for out in (locked, locked / "sub"):
+            proc = cli("run", job, "-o", out, "--quiet", cwd=tmp_path)
+            assert_bad_input(proc, "--output", str(locked))
+            assert leftovers(locked) == []
+    finally:
+        locked.chmod(0o755)
+
+
+def test_failure_mid_run_leaves_no_file(tmp_path):
+    """A potential that turns non-finite after a few steps stops the run with
+    a one-line cause; the temporary file is removed, nothing is renamed."""
+    job = write_job(tmp_path, merged(TINY, {"potential": [
+        {"kind": "expression", "expression": "where(t > 0.15, log(-1.0 - x * x), 0.0)"}]}))
+    out = tmp_path / "out"
+    proc = cli("run", job, "-o", out, "--quiet", cwd=tmp_path)
+    assert_bad_input(proc, "potential.0.expression", "t = 0.")
+    assert out.is_dir()  # the run had started writing
+    assert leftovers(out) == []
+
+
+# -- good runs ---------------------------------------------------------------------
+def test_run_prints_the_result_path(tmp_path):
+    job = write_job(tmp_path, TINY, "tiny.toml")
+    out = tmp_path / "results"
+    proc = cli("run", job, "-o", out, "--quiet", cwd=tmp_path)
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stderr == ""  # --quiet: no progress, no chatter
+    assert proc.stdout.splitlines() == [str(out / "tiny.nc")]
+    assert leftovers(out) == ["tiny.nc"]
+    with xr.open_dataset(out / "tiny.nc") as ds:
+        assert ds.attrs["title"] == "tiny cli job"
+        assert ds.sizes["time"] == 11
+
+
+def test_module_and_console_script_agree(tmp_path):
+    """``python -m wavesweep`` and the installed ``wavesweep`` script are the
+    same program: same exit status, output line and results."""
+    script = Path(sys.executable).with_name("wavesweep")
+    if not script.exists():
+        pytest.skip("console script not installed next to this interpreter")
+    job = write_job(tmp_path, TINY, "tiny.toml")
+    a = cli("run", job, "-o", tmp_path / "a", "--quiet", cwd=tmp_path)
+    b = cli("run", job, "-o", tmp_path / "b", "--quiet", cwd=tmp_path, exe=script)
+    assert (a.returncode, b.returncode) == (0, 0), (a.stderr, b.stderr)
+    assert a.stdout.replace(str(tmp_path / "a"), "OUT") == b.stdout.replace(str(tmp_path / "b"), "OUT")
+    da, db = (xr.load_dataset(tmp_path / name / "tiny.nc") for name in "ab")
+    assert da.attrs["run_id"] == db.attrs["run_id"]
+    for ds in (da, db):
+        assert ds.attrs.pop("wall_seconds") >= 0
+    xr.testing.assert_identical(da, db)
+
+
+class _FakeBar:
+    """Stands in for tqdm: records that a progress bar was made and used."""
+
+    made: list = []
+
+    def __init__(self, *args, **kwargs):
+        self.kwargs, self.steps = kwargs, 0
+        _FakeBar.made.append(self)
+
+    def update(self, n=1):
+        self.steps += n
+
+    def close(self):
+        pass
+
+
+@pytest.mark.parametrize("quiet", [False, True])
+def test_quiet_means_no_progress_bar(tmp_path, monkeypatch, capsys, quiet):
+    """In-process, with tqdm replaced: without --quiet a bar is made, on
+    stderr, and advanced to the last step; with --quiet none is made."""
+    import tqdm
+
+    from wavesweep.cli import main
+
+    _FakeBar.made = []
+    monkeypatch.setattr(tqdm, "tqdm", _FakeBar)
+    job = write_job(tmp_path, TINY)
+    args = ["run", str(job), "-o", str(tmp_path / "out")] + (["--quiet"] if quiet else [])
+    assert main(args) == 0
+    assert capsys.readouterr().out.strip() == str(tmp_path / "out" / "job.nc")
+    if quiet:
+        assert _FakeBar.made == []
+    else:
+        (bar,) = _FakeBar.made
+        assert bar.kwargs["file"] is sys.stderr
+        assert bar.steps == bar.kwargs["total"] == 20
+
+
+# -- check -------------------------------------------------------------------------
+def test_check_demo_job_reports_numbers(tmp_path):
+    proc = cli("check", DEMO, "--trial-seconds", "0.05", cwd=tmp_path)
+    assert proc.returncode == 0, proc.stderr
+    assert "Traceback" not in proc.stderr
+    lines = proc.stdout.strip().splitlines()
+    findings = [ln for ln in lines if re.match(r"^\s*(ok|WARN|ERROR)\s", ln)]
+    topics = {ln.split()[1] for ln in findings}
+    assert {"momentum", "margin", "time", "absorber", "memory", "disk", "run"} <= topics, lines
+    for line in findings:
+        assert re.search(r"\d", line), f"a finding without a number: {line!r}"
+    assert not any(ln.startswith("ERROR") for ln in findings)
+    assert lines[-1].startswith("0 error(s)")
+
+
+def _one_json_object(text: str) -> dict:
+    obj, end = json.JSONDecoder().raw_decode(text.lstrip())
+    assert text.lstrip()[end:].strip() == "", "more than one JSON value on stdout"
+    assert isinstance(obj, dict)
+    return obj
+
+
+def test_check_json_demo_job(tmp_path):
+    proc = cli("check", DEMO, "--json", "--trial-seconds", "0.05", cwd=tmp_path)
+    assert proc.returncode == 0, proc.stderr
+    report = _one_json_object(proc.stdout)
+    assert report["title"].startswith("Kestrel diode")
+    levels = {f["level"] for f in report["findings"]}
+    assert levels <= {"ok", "warn"}
+    # every finding carries its numbers as data, not only in the text
+    for f in report["findings"]:
+        assert f["topic"] and f["message"]
+        assert any(isinstance(v, (int, float)) for v in f["values"].values()), f
+    run_time = next(f for f in report["findings"] if f["topic"] == "run time")
+    assert run_time["values"]["seconds_per_step"] > 0
+
+
+def test_check_json_with_an_error_finding(tmp_path):
+    """A packet 2 widths from the absorber: check refuses (exit 2) with one
+    line naming the field, and stdout still holds exactly one JSON object."""
+    job = write_job(tmp_path, merged(TINY, {**CAP, "packet": {"center": -28.0}}))
+    proc = cli("check", job, "--json", "--trial-seconds", "0.01", cwd=tmp_path)
+    assert proc.returncode == 2, proc.stderr
+    line = assert_bad_input(proc, "packet.center", "widths", stdout_empty=False)
+    assert "2.0 widths" in line
+    report = _one_json_object(proc.stdout)
+    errors = [f for f in report["findings"] if f["level"] == "error"]
+    assert [f["field"] for f in errors] == ["packet.center"]
+    assert errors[0]["values"]["widths"] == pytest.approx(2.0)

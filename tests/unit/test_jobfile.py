@@ -1,0 +1,317 @@
+"""Job files: --set overrides, defaults, run ids, quantities with units, and
+error messages that name the field."""
+from __future__ import annotations
+
+import copy
+import tomllib
+
+import pytest
+import scipy.constants as sc
+import tomli_w
+
+from wavesweep.errors import JobError
+from wavesweep.jobfile import apply_overrides, job_from_dict, load_job, parse_override
+from wavesweep.simulation import Setup
+
+BOHR_M = sc.physical_constants["Bohr radius"][0]
+AU_TIME_S = sc.hbar / sc.physical_constants["Hartree energy"][0]
+
+JOB = {
+    "title": "jobfile unit test",
+    "grid": {"x": {"min": -60.0, "max": 60.0, "points": 256}, "boundary": "periodic"},
+    "potential": [
+        {"kind": "barrier", "height": 0.3, "width": 1.0, "center": 10.0},
+        {"kind": "gaussian", "height": 0.1, "width": 2.0, "center": 25.0},
+    ],
+    "packet": {"kind": "gaussian", "center": -20.0, "width": 2.0, "momentum": 1.0},
+    "evolve": {"dt": 0.02, "duration": 4.0},
+    "record": {"every": 0.2, "snapshot_every": 1.0},
+    "detector": [{"name": "far", "x": 30.0}],
+}
+
+
+def job(overrides=(), **patch):
+    table = copy.deepcopy(JOB)
+    for dotted, value in patch.items():
+        node = table
+        *path, last = dotted.split("__")
+        for part in path:
+            node = node[part]
+        node[last] = value
+    return job_from_dict(table, overrides)
+
+
+def error(table_or_overrides, overrides=()) -> JobError:
+    with pytest.raises(JobError) as info:
+        if isinstance(table_or_overrides, dict):
+            job_from_dict(table_or_overrides, overrides)
+        else:
+            job_from_dict(copy.deepcopy(JOB), table_or_overrides)
+    return info.value
+
+
+# -- parse_override: values are read as TOML ------------------------------------------
+@pytest.mark.parametrize(("text", "key", "value"), [
+    ("packet.width=15", "packet.width", 15),
+    ("packet.width = 1.5", "packet.width", 1.5),
+    ("packet.center=[-10.0, 0.0]", "packet.center", [-10.0, 0.0]),
+    ("record.final_state=false", "record.final_state", False),
+    ("evolve.scheme='order4'", "evolve.scheme", "order4"),
+    ("evolve.scheme=order4", "evolve.scheme", "order4"),          # bare word: a string
+    ("packet.width=3 nm", "packet.width", "3 nm"),                # bare quantity: a string
+    ("packet.width=\"3 nm\"", "packet.width", "3 nm"),
+    ("potential.0={kind = 'free'}", "potential.0", {"kind": "free"}),
+    ("evolve.dt=1e-2", "evolve.dt", 0.01),
+    ("title=a=b", "title", "a=b"),                                # only the first = splits
+])
+def test_parse_override(text, key, value):
+    k, v = parse_override(text)
+    assert k == key
+    assert v == value and type(v) is type(value)
+
+
+@pytest.mark.parametrize("text", ["packet.width", "=3", "  = 3"])
+def test_parse_override_needs_key_and_value(text):
+    with pytest.raises(JobError) as info:
+        parse_override(text)
+    assert info.value.field == "--set"
+
+
+# -- apply_overrides: nested tables and array tables ----------------------------------
+def test_overrides_reach_nested_tables_without_touching_the_input():
+    table = copy.deepcopy(JOB)
+    out = apply_overrides(table, ["grid.x.points=512", "evolve.scheme=order4", "units.length=nm"])
+    assert out["grid"]["x"]["points"] == 512
+    assert out["evolve"]["scheme"] == "order4"
+    assert out["units"] == {"length": "nm"}          # a missing table is created
+    assert table == JOB                               # the input is a copy
+
+
+def test_overrides_index_array_tables():
+    out = apply_overrides(JOB, ["potential.0.height=2.5", "potential.1.center=-3",
+                                "potential.-1.width=4.0", "detector.0.name=near"])
+    assert out["potential"][0]["height"] == 2.5
+    assert out["potential"][1]["center"] == -3
+    assert out["potential"][1]["width"] == 4.0
+    assert out["detector"][0]["name"] == "near"
+    assert out["potential"][0]["kind"] == "barrier"   # the rest of the table stays
+
+
+def test_override_in_a_loaded_job_file(tmp_path):
+    path = tmp_path / "scan.toml"
+    path.write_text(tomli_w.dumps(JOB))
+    loaded = load_job(path, ["potential.0.height=0.45", "packet.width=2.5", "evolve.dt=0.01"])
+    assert loaded.table["potential"][0]["height"] == 0.45
+    assert loaded.table["packet"]["width"] == 2.5
+    assert loaded.table["evolve"]["dt"] == 0.01
+    assert loaded.name == "scan"
+    assert load_job(path).table["potential"][0]["height"] == 0.3
+
+
+@pytest.mark.parametrize(("override", "field", "piece"), [
+    ("potential.7.height=1", "potential.7", "0..1"),
+    ("potential.one.height=1", "potential.one", "index"),
+    ("packet.width.x=1", "packet.width.x", "value, not a table"),
+    ("detector.3.x=1", "detector.3", "out of range"),
+    ("packet.widht=3", "packet.widht", "'width'"),
+    ("grid.x.points=many", "grid.x.points", "integer"),
+    ("evolve.dt=[1]", "evolve.dt", "list"),
+])
+def test_bad_overrides_name_the_field(override, field, piece):
+    e = error([override])
+    assert e.field == field, str(e)
+    assert piece in str(e)
+
+
+def test_override_cannot_invent_array_table_entries():
+    """``--set detector.0.x=5`` on a job without detectors used to build a
+    table keyed "0"; it must say there is nothing to index."""
+    table = copy.deepcopy(JOB)
+    del table["detector"]
+    e = error(table, ["detector.0.x=5"])
+    assert e.field == "detector.0.x"
+    assert "[[detector]]" in str(e)
+
+
+# -- defaults -------------------------------------------------------------------------
+def test_defaults_are_filled():
+    table = copy.deepcopy(JOB)
+    del table["potential"], table["detector"], table["record"], table["grid"]["boundary"]
+    t = job_from_dict(table).table
+    assert t["potential"] == [{"kind": "free"}]
+    assert t["detector"] == []
+    assert t["grid"]["boundary"] == "periodic"
+    assert t["evolve"]["scheme"] == "strang" and t["evolve"]["precision"] == "double"
+    assert t["absorber"] == {"kind": "none"}
+    assert t["particle"]["mass"] == 1.0
+    assert t["units"] == {"length": "bohr", "energy": "hartree", "mass": "m_e", "time": "au_time"}
+    rec = t["record"]
+    assert rec["stride"] == 1 and rec["final_state"] is True
+    # 200 steps: a sample every step (about 1000 samples at most), a snapshot
+    # every 2 samples (about 100 snapshots)
+    assert rec["every"] == 0.02
+    assert rec["snapshot_every"] == 0.04
+
+
+def test_default_sampling_is_written_as_by_hand():
+    """10 000 steps of 0.01: samples every 10 steps, snapshots every 100;
+    the TOML says 0.1 and 1.0, not 0.09999999999999999."""
+    t = job(evolve__dt=0.01, evolve__duration=100.0, record={}).table
+    assert t["record"]["every"] == 0.1
+    assert t["record"]["snapshot_every"] == 1.0
+    assert "every = 0.1\n" in job(evolve__dt=0.01, evolve__duration=100.0, record={}).to_toml()
+
+
+def test_default_sampling_in_femtoseconds():
+    t = job_from_dict({**copy.deepcopy(JOB), "units": {"time": "fs"},
+                       "evolve": {"dt": 0.3, "duration": 3000.0}, "record": {}}).table
+    assert t["record"]["every"] == 3.0            # 10 000 steps -> every 10 steps
+    assert t["record"]["snapshot_every"] == 30.0
+
+
+def test_resolved_job_is_a_fixed_point():
+    first = job(absorber={"kind": "cap", "thickness": 10.0})
+    text = first.to_toml()
+    second = job_from_dict(tomllib.loads(text))
+    assert second.to_toml() == text
+    assert second.table == first.table
+
+
+# -- run ids ----------------------------------------------------------------------------
+def _reversed(obj):
+    if isinstance(obj, dict):
+        return {k: _reversed(obj[k]) for k in reversed(list(obj))}
+    if isinstance(obj, list):
+        return [_reversed(v) for v in obj]
+    return obj
+
+
+def test_run_id_ignores_key_order():
+    assert job_from_dict(_reversed(copy.deepcopy(JOB))).run_id == job().run_id
+
+
+def test_run_id_ignores_number_formatting():
+    a = job()
+    b = job(grid__x={"min": -60, "max": 60, "points": 256.0}, packet__width=2, packet__momentum=1,
+            evolve__duration=4, record__snapshot_every=1)
+    c = job_from_dict(tomllib.loads(tomli_w.dumps(JOB).replace("0.02", "2e-2").replace("4.0", "4.000")))
+    assert a.run_id == b.run_id == c.run_id
+
+
+def test_run_id_ignores_title_and_how_it_is_computed():
+    base = job().run_id
+    assert job(title="another title").run_id == base
+    assert job(["evolve.fft=scipy"]).run_id == base
+    assert job(["evolve.threads=1"]).run_id == base
+
+
+@pytest.mark.parametrize("override", [
+    "packet.width=2.5", "potential.0.height=0.31", "evolve.dt=0.01", "grid.x.points=512",
+    "particle.mass=2.0", "record.every=0.1", "evolve.scheme=order4", "detector.0.x=31.0",
+    "absorber={kind = 'mask', thickness = 10.0}",
+])
+def test_run_id_changes_with_the_physics(override):
+    assert job([override]).run_id != job().run_id
+
+
+def test_run_id_is_the_same_before_and_after_setup():
+    """The CAP strength is tuned by Setup and written into the job; the id
+    must not depend on whether that has happened yet."""
+    j = job(absorber={"kind": "cap", "thickness": 10.0})
+    assert "strength" not in j.table["absorber"]
+    before = j.run_id
+    assert j.table["absorber"]["strength"] > 0
+    Setup(j)
+    assert j.run_id == before
+    fresh = job(absorber={"kind": "cap", "thickness": 10.0})
+    Setup(fresh)
+    assert fresh.run_id == before
+
+
+# -- quantities with units ------------------------------------------------------------
+def test_strings_with_units_are_accepted_and_kept_as_written():
+    j = job(packet__width="0.1 nm", packet__center="-1 nm", evolve__dt="2 as", evolve__duration="80 as",
+            record={"every": "8 as", "snapshot_every": "40 as"})
+    assert j.table["packet"]["width"] == "0.1 nm"          # the job file says what it said
+    assert 'width = "0.1 nm"' in j.to_toml()
+    s = Setup(j)
+    assert s.packet["width"][0] == pytest.approx(0.1e-9 / BOHR_M, rel=1e-12)
+    assert s.packet["center"][0] == pytest.approx(-1e-9 / BOHR_M, rel=1e-12)
+    assert s.dt == pytest.approx(2e-18 / AU_TIME_S, rel=1e-12)
+    assert (s.total_steps, s.sample_steps, s.snapshot_steps) == (40, 4, 20)
+
+
+def test_number_in_job_units_equals_string_with_that_unit():
+    in_units = job_from_dict({**copy.deepcopy(JOB), "units": {"length": "nm"},
+                              "grid": {"x": {"min": -3.0, "max": 3.0, "points": 256}},
+                              "packet": {"center": -1.0, "width": 0.1, "momentum": 0.0},
+                              "detector": []})
+    as_strings = job(grid__x={"min": "-3 nm", "max": "3 nm", "points": 256},
+                     packet={"center": "-1 nm", "width": "0.1 nm", "momentum": 0.0}, detector=[])
+    a, b = Setup(in_units), Setup(as_strings)
+    assert a.grid.axes[0].dx == pytest.approx(b.grid.axes[0].dx, rel=1e-12)
+    assert a.packet["center"][0] == pytest.approx(b.packet["center"][0], rel=1e-12)
+
+
+@pytest.mark.parametrize(("patch", "field", "piece"), [
+    ({"packet__width": "3 fs"}, "packet.width", "not a length"),
+    ({"evolve__dt": "1 nm"}, "evolve.dt", "not a time"),
+    ({"packet__width": "3 parsec"}, "packet.width", "unknown unit 'parsec'"),
+    ({"packet__width": "three nm"}, "packet.width", "cannot read"),
+])
+def test_bad_quantities_name_the_field(patch, field, piece):
+    with pytest.raises(JobError) as info:
+        job(**patch)
+    assert info.value.field == field
+    assert piece in str(info.value)
+
+
+# -- messages ---------------------------------------------------------------------------
+@pytest.mark.parametrize(("patch", "field", "pieces"), [
+    ({"evolv": {"dt": 1.0}}, "evolv", ["'evolve'", "top level"]),
+    ({"packet": {"center": -20.0, "widht": 2.0}}, "packet.widht", ["'width'"]),
+    ({"grid": {"x": {"min": -60.0, "max": 60.0, "pionts": 256}}}, "grid.x.pionts", ["'points'"]),
+    ({"evolve": {"duration": 4.0}}, "evolve.dt", ["missing", "dt = "]),
+    ({"units": "nm"}, "units", ["table"]),
+    ({"packet": {"kind": ["gaussian"], "center": 0.0, "width": 1.0}}, "packet.kind", ["string"]),
+    ({"packet": {"kind": "gausian", "center": 0.0, "width": 1.0}}, "packet.kind", ["'gaussian'"]),
+    ({"evolve": {"dt": 0.02, "duration": 4.0, "fft": "fastest"}}, "evolve.fft", ["'scipy'"]),
+    ({"record": {"every": 0.03}}, "record.every", ["whole number", "0.02", "0.04"]),
+    ({"record": {"every": 0.2, "snapshot_every": 0.3}}, "record.snapshot_every", ["multiple"]),
+    ({"evolve": {"dt": 0.02, "duration": 4.1}}, "evolve.duration", ["multiple of record.every"]),
+    ({"grid": {"x": {"min": 60.0, "max": -60.0, "points": 256}}}, "grid.x.max", ["larger"]),
+    ({"grid": {"x": {"min": -60.0, "max": 60.0, "points": 2}}}, "grid.x.points", ["at least 4"]),
+    ({"detector": [{"name": "a", "x": 1.0}, {"name": "a", "x": 2.0}]}, "detector.1.name", ["twice"]),
+])
+def test_errors_name_the_field(patch, field, pieces):
+    table = copy.deepcopy(JOB)
+    table.update(patch)
+    e = error(table)
+    assert e.field == field, str(e)
+    for piece in pieces:
+        assert piece in str(e), str(e)
+    assert "\n" not in str(e)
+
+
+@pytest.mark.parametrize(("content", "piece"), [
+    (None, "not found"),
+    (b'title = "caf\xe9"\n', "not UTF-8"),
+    (b'title = "x"\n[grid\n', "not valid TOML"),
+])
+def test_unreadable_job_files(tmp_path, content, piece):
+    path = tmp_path / "job.toml"
+    if content is not None:
+        path.write_bytes(content)
+    with pytest.raises(JobError) as info:
+        load_job(path)
+    assert piece in str(info.value)
+    assert "\n" not in str(info.value)
+
+
+def test_absurd_momentum_is_a_grid_error_not_an_overflow():
+    """p0 = 1e300 used to overflow while tuning the CAP (p^2) before the grid
+    check ran; the grid check now comes first."""
+    j = job(packet__momentum=1e300, absorber={"kind": "cap", "thickness": 10.0})
+    with pytest.raises(JobError) as info:
+        Setup(j)
+    assert info.value.field == "grid.x.points"

@@ -1,0 +1,280 @@
+"""Units: conversion factors against CODATA, quantity strings, unit errors,
+and a job written in nm / meV / fs that must give the same physics as the
+same job converted to atomic units by hand.
+
+Reference values come from :mod:`scipy.constants` (CODATA).  Where possible
+the test uses a *different* CODATA entry from the one ``wavesweep.units``
+builds its factors from (``atomic unit of time`` instead of hbar / E_h,
+``Hartree energy in eV`` instead of the joule value, ``electron mass in u``
+instead of the dalton in kg), so that a slip in how the factors are combined
+cannot cancel out.  Values written as literals are from memory.
+"""
+from __future__ import annotations
+
+import copy
+import math
+
+import numpy as np
+import pytest
+import scipy.constants as sc
+
+from conftest import make_job, run_table, setup_of
+from wavesweep.errors import JobError
+from wavesweep.units import UnitSet, parse_unit, quantity_to_atomic
+
+PC = sc.physical_constants
+# CODATA (scipy.constants): atomic units in SI
+BOHR_M = PC["Bohr radius"][0]
+AU_TIME_S = PC["atomic unit of time"][0]
+HARTREE_EV = PC["Hartree energy in eV"][0]
+ELECTRON_MASS_U = PC["electron mass in u"][0]
+
+NM = 1e-9 / BOHR_M                 # bohr per nm
+MEV = 1e-3 / HARTREE_EV            # hartree per meV
+FS = 1e-15 / AU_TIME_S             # atomic time units per fs
+DALTON = 1.0 / ELECTRON_MASS_U     # electron masses per dalton
+
+
+# --- conversion factors ---------------------------------------------------------
+
+def test_factors_match_codata():
+    # CODATA via scipy.constants; see the module docstring for the entries
+    nm_meV_fs = UnitSet.from_table({"length": "nm", "energy": "meV", "time": "fs", "mass": "Da"})
+    assert nm_meV_fs.factor("length") == pytest.approx(NM, rel=1e-12)
+    assert nm_meV_fs.factor("energy") == pytest.approx(MEV, rel=1e-12)
+    assert nm_meV_fs.factor("time") == pytest.approx(FS, rel=1e-12)
+    # "electron mass in u" and the dalton in kg agree to ~3e-12 in CODATA 2022
+    assert nm_meV_fs.factor("mass") == pytest.approx(DALTON, rel=1e-10)
+
+
+def test_factors_match_values_from_memory():
+    # from memory (CODATA 2018 digits): 1 nm = 18.8972612 bohr,
+    # 1 meV = 3.67493222e-5 hartree, 1 fs = 41.3413734 hbar/E_h,
+    # 1 Da = 1822.888486 m_e
+    assert parse_unit("nm")[0] == pytest.approx(18.8972612, rel=1e-8)
+    assert parse_unit("meV")[0] == pytest.approx(3.67493222e-5, rel=1e-8)
+    assert parse_unit("fs")[0] == pytest.approx(41.3413734, rel=1e-8)
+    assert parse_unit("Da")[0] == pytest.approx(1822.888486, rel=1e-9)
+
+
+def test_bohr_and_hartree_from_fundamental_constants():
+    # textbook definitions (e.g. Bransden & Joachain, Physics of Atoms and
+    # Molecules, appendix on atomic units; from memory):
+    #   a0 = hbar / (m_e c alpha),  E_h = alpha^2 m_e c^2
+    a0 = sc.hbar / (sc.m_e * sc.c * sc.alpha)
+    e_h = sc.alpha**2 * sc.m_e * sc.c**2
+    assert parse_unit("angstrom")[0] == pytest.approx(1e-10 / a0, rel=1e-10)
+    assert parse_unit("eV")[0] == pytest.approx(sc.eV / e_h, rel=1e-10)
+    # wavenumber energy h c (1/cm), kelvin k_B: CODATA conversion entries
+    assert parse_unit("invcm")[0] == pytest.approx(
+        PC["inverse meter-hartree relationship"][0] * 100.0, rel=1e-10)
+    assert parse_unit("K")[0] == pytest.approx(PC["kelvin-hartree relationship"][0], rel=1e-10)
+
+
+def test_derived_time_unit_is_hbar_over_energy_unit():
+    # design.md: with no time unit the time unit is hbar / (energy unit);
+    # hbar / 1 meV in seconds from CODATA
+    u = UnitSet.from_table({"length": "nm", "energy": "meV"})
+    hbar_over_mev_s = sc.hbar / (1e-3 * sc.eV)
+    assert u.factor("time") == pytest.approx(hbar_over_mev_s / AU_TIME_S, rel=1e-12)
+    # and it is not silently the femtosecond: hbar = 6.582119569e-16 eV s
+    # (from memory), so hbar / meV = 658.2 fs
+    assert hbar_over_mev_s / 1e-15 == pytest.approx(658.2119569, rel=1e-9)
+    assert u.factor("time") == pytest.approx(658.2119569 * FS, rel=1e-9)
+
+
+def test_compound_units():
+    # momentum m_e nm / fs and an inverse time written two ways
+    assert parse_unit("m_e*nm/fs")[0] == pytest.approx(NM / FS, rel=1e-12)
+    assert parse_unit("1/fs")[0] == pytest.approx(1.0 / FS, rel=1e-12)
+    assert parse_unit("fs^-1")[0] == pytest.approx(1.0 / FS, rel=1e-12)
+    assert parse_unit("nm**2")[0] == pytest.approx(NM**2, rel=1e-12)
+    # meV/nm: an energy per length; V/nm: a field (volt = J/C)
+    assert parse_unit("meV/nm")[0] == pytest.approx(MEV / NM, rel=1e-12)
+    field_au = PC["atomic unit of electric field"][0]   # V/m
+    assert parse_unit("V/nm")[0] == pytest.approx(1e9 / field_au, rel=1e-10)
+
+
+def test_momentum_kind_in_job_units():
+    # the job unit of momentum is mass * length / time (design.md)
+    u = UnitSet.from_table({"length": "nm", "energy": "meV", "time": "fs", "mass": "m_e"})
+    assert u.factor("momentum") == pytest.approx(NM / FS, rel=1e-12)
+    assert u.factor("frequency") == pytest.approx(1.0 / FS, rel=1e-12)
+    assert u.factor("electric_field") == pytest.approx(MEV / NM, rel=1e-12)
+
+
+# --- quantity strings -----------------------------------------------------------
+
+@pytest.mark.parametrize(("text", "kind", "expected"), [
+    ("3 nm", "length", 3 * NM),
+    ("0.5 meV", "energy", 0.5 * MEV),
+    ("1e-3 eV", "energy", 1.0 * MEV),
+    ("2.5fs", "time", 2.5 * FS),
+    ("-150 nm", "length", -150 * NM),
+    ("0.2 m_e*nm/fs", "momentum", 0.2 * NM / FS),
+    ("12 Da", "mass", 12 * DALTON),
+])
+def test_quantity_strings(text, kind, expected):
+    assert quantity_to_atomic(text, kind) == pytest.approx(expected, rel=1e-10)
+
+
+BASE_NM = {
+    "units": {"length": "nm", "energy": "meV", "time": "fs"},
+    "particle": {"mass": 0.067},
+    "grid": {"x": {"min": -100.0, "max": 100.0, "points": 512}},
+    "potential": [{"kind": "barrier", "height": 150.0, "width": 2.0}],
+    "packet": {"kind": "gaussian", "center": -40.0, "width": 6.0, "energy": 60.0},
+    "evolve": {"dt": 0.5, "duration": 5.0},
+}
+
+
+def test_strings_with_units_equal_the_numbers():
+    plain = setup_of(BASE_NM)
+    table = copy.deepcopy(BASE_NM)
+    table["potential"][0]["height"] = "0.15 eV"
+    table["potential"][0]["width"] = "20 angstrom"
+    table["packet"]["center"] = "-400 angstrom"
+    table["packet"]["width"] = "6 nm"
+    table["packet"]["energy"] = "60 meV"
+    table["evolve"]["dt"] = "500 as"
+    strings = setup_of(table)
+    assert strings.packet["center"][0] == pytest.approx(plain.packet["center"][0], rel=1e-12)
+    assert strings.packet["width"][0] == pytest.approx(plain.packet["width"][0], rel=1e-12)
+    assert strings.packet["energy"] == pytest.approx(plain.packet["energy"], rel=1e-12)
+    assert strings.dt == pytest.approx(plain.dt, rel=1e-12)
+    np.testing.assert_allclose(strings.hamiltonian.static_potential,
+                               plain.hamiltonian.static_potential, rtol=1e-12)
+    # and both are the hand-converted values (CODATA)
+    assert plain.packet["center"][0] == pytest.approx(-40 * NM, rel=1e-12)
+    assert plain.dt == pytest.approx(0.5 * FS, rel=1e-12)
+    assert plain.mass == pytest.approx(0.067, rel=1e-15)
+    assert plain.hamiltonian.static_potential.max() == pytest.approx(150 * MEV, rel=1e-12)
+
+
+def test_strings_with_units_in_an_atomic_job():
+    table = {
+        "grid": {"x": {"min": "-10 nm", "max": "10 nm", "points": 256}},
+        "potential": [{"kind": "step", "height": "0.5 meV", "position": "1 nm"}],
+        "packet": {"kind": "gaussian", "center": "-3 nm", "width": "0.5 nm", "momentum": 0.0},
+        "evolve": {"dt": "1 fs", "duration": "10 fs"},
+        "particle": {"mass": "1 Da"},
+    }
+    s = setup_of(table)
+    ax = s.grid.axes[0]
+    assert (ax.min, ax.max) == (pytest.approx(-10 * NM, rel=1e-12), pytest.approx(10 * NM, rel=1e-12))
+    assert s.packet["center"][0] == pytest.approx(-3 * NM, rel=1e-12)
+    assert s.dt == pytest.approx(FS, rel=1e-12)
+    assert s.mass == pytest.approx(DALTON, rel=1e-10)
+    v = s.hamiltonian.static_potential
+    x = ax.coordinates
+    # no grid point lies within 1e-3 dx of the step (dx = 20 nm / 256)
+    assert np.min(np.abs(x - NM)) > 1e-3 * ax.dx
+    np.testing.assert_allclose(v, np.where(x >= NM, 0.5 * MEV, 0.0), rtol=1e-12, atol=0)
+
+
+# --- errors name the field --------------------------------------------------------
+
+@pytest.mark.parametrize(("where", "value", "field"), [
+    (("units", "length"), "meV", "units.length"),          # an energy unit for length
+    (("units", "energy"), "parsec", "units.energy"),       # unknown unit
+    (("units", "time"), 3, "units.time"),                  # not a string
+    (("packet", "center"), "3 meV", "packet.center"),      # wrong dimension
+    (("packet", "width"), "3 nmm", "packet.width"),        # typo
+    (("potential", 0, "height"), "2 nm", "potential.0.height"),
+    (("evolve", "dt"), "1 nm", "evolve.dt"),
+    (("particle", "mass"), "3 fs", "particle.mass"),
+    (("packet", "energy"), "60", "packet.energy"),         # no unit on a dimensioned value
+    (("grid", "x", "max"), "100 nm/", "grid.x.max"),       # unreadable unit
+])
+def test_bad_units_name_the_field(where, value, field):
+    table = copy.deepcopy(BASE_NM)
+    node = table
+    for key in where[:-1]:
+        node = node[key]
+    node[where[-1]] = value
+    with pytest.raises(JobError) as info:
+        setup_of(table)
+    assert info.value.field == field, str(info.value)
+
+
+def test_unknown_units_key_suggests_the_closest():
+    table = copy.deepcopy(BASE_NM)
+    table["units"] = {"lenght": "nm", "energy": "meV"}
+    with pytest.raises(JobError) as info:
+        make_job(table)
+    assert info.value.field == "units.lenght"
+    assert "'length'" in str(info.value)
+
+
+def test_unknown_unit_suggests_the_closest():
+    with pytest.raises(JobError) as info:
+        quantity_to_atomic("3 nmm", "length", "grid.x.min")
+    assert info.value.field == "grid.x.min"
+    assert "'nm'" in str(info.value)
+
+
+def test_per_axis_error_names_the_element():
+    table = copy.deepcopy(BASE_NM)
+    table["grid"]["y"] = {"min": -20.0, "max": 20.0, "points": 64}
+    table["packet"] = {"kind": "gaussian", "center": [-40.0, "2 meV"], "width": [6.0, 3.0],
+                       "momentum": [0.0, 0.0]}
+    with pytest.raises(JobError) as info:
+        make_job(table)
+    assert info.value.field == "packet.center.1"
+
+
+# --- same physics in nm / meV / fs and in atomic units -----------------------------
+
+NM_JOB = {
+    "units": {"length": "nm", "energy": "meV", "time": "fs"},
+    "particle": {"mass": 0.067},
+    "grid": {"x": {"min": -150.0, "max": 150.0, "points": 1024}},
+    "potential": [{"kind": "double_barrier", "height": 150.0, "width": 2.0, "gap": 4.0},
+                  {"kind": "harmonic", "omega": 0.002}],
+    "packet": {"kind": "gaussian", "center": -50.0, "width": 6.0, "energy": 60.0},
+    "evolve": {"dt": 0.5, "duration": 100.0},
+    "absorber": {"kind": "cap", "thickness": 30.0, "strength": 20.0},
+    "record": {"every": 5.0, "snapshot_every": 50.0},
+    "detector": [{"name": "after", "x": 20.0}],
+}
+
+
+def _by_hand_in_atomic_units(job):
+    """The nm / meV / fs job converted with CODATA factors, no [units] table."""
+    au = copy.deepcopy(job)
+    del au["units"]
+    for key in ("min", "max"):
+        au["grid"]["x"][key] *= NM
+    pot = au["potential"]
+    pot[0].update(height=pot[0]["height"] * MEV, width=pot[0]["width"] * NM, gap=pot[0]["gap"] * NM)
+    pot[1]["omega"] /= FS
+    pk = au["packet"]
+    pk.update(center=pk["center"] * NM, width=pk["width"] * NM, energy=pk["energy"] * MEV)
+    au["evolve"].update(dt=au["evolve"]["dt"] * FS, duration=au["evolve"]["duration"] * FS)
+    au["absorber"].update(thickness=au["absorber"]["thickness"] * NM,
+                          strength=au["absorber"]["strength"] * MEV)
+    au["record"].update(every=au["record"]["every"] * FS,
+                        snapshot_every=au["record"]["snapshot_every"] * FS)
+    au["detector"][0]["x"] *= NM
+    return au
+
+
+def test_job_units_give_the_same_physics(tmp_path):
+    nm = run_table(NM_JOB, tmp_path / "nm")
+    au = run_table(_by_hand_in_atomic_units(NM_JOB), tmp_path / "au")
+    # the run did something: the packet moved and hit the barriers
+    assert nm.x_mean.values[-1] - nm.x_mean.values[0] > 20.0
+    np.testing.assert_allclose(nm.time.values * FS, au.time.values, rtol=1e-12)
+    np.testing.assert_allclose(nm.x.values * NM, au.x.values, rtol=1e-12)
+    x_nm, x_au = nm.x_mean.values * NM, au.x_mean.values
+    assert np.max(np.abs(x_nm - x_au)) <= 1e-10 * np.max(np.abs(x_au))
+    np.testing.assert_allclose(nm.x_std.values * NM, au.x_std.values, rtol=1e-10)
+    np.testing.assert_allclose(nm.norm.values, au.norm.values, rtol=1e-10)
+    np.testing.assert_allclose(nm.energy.values * MEV, au.energy.values, rtol=1e-10)
+    # momentum in m_e nm/fs, flux per fs
+    np.testing.assert_allclose(nm.p_mean.values * NM / FS, au.p_mean.values, rtol=1e-9, atol=1e-12)
+    flux_nm, flux_au = nm.flux.values[:, 0] / FS, au.flux.values[:, 0]
+    assert np.max(np.abs(flux_nm - flux_au)) <= 1e-10 * np.max(np.abs(flux_au))
+    # the result says which units it is in
+    assert nm.x.attrs["units"] == "nm" and nm.time.attrs["units"] == "fs"
+    assert nm.attrs["length_to_bohr"] == pytest.approx(NM, rel=1e-12)
