@@ -159,7 +159,8 @@ class SplitOperator(Propagator):
             return
         phases = [z.copy() for z in self._zero_phase]
         for axis, g, f in self._axis_terms:
-            phases[axis] += sum(tj * f(t) for tj, t in pieces) * g
+            # as3d pads leading axes, so grid axis a is view axis a + (3 - ndim)
+            phases[axis + 3 - self.grid.ndim] += sum(tj * f(t) for tj, t in pieces) * g
         if self._full_terms:
             mesh = self.grid.mesh()
             v = 0.0
@@ -201,7 +202,8 @@ class SplitOperator(Propagator):
 
 
 def _slab3(slab):
-    return tuple(slab) + (slice(None),) * (3 - len(slab))
+    """A grid slab index as an index of the as3d view (leading padding)."""
+    return (slice(None),) * (3 - len(slab)) + tuple(slab)
 
 
 class Strang(SplitOperator):
