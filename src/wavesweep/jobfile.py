@@ -62,7 +62,8 @@ ABSORBER = {
     "faces": Field("list", None),
     "strength": Field("energy", None, nonnegative=True, per_axis=True,
                       doc="CAP strength (one per axis allowed); omitted: tuned to the packet"),
-    "power": Field("number", 2.0, positive=True),
+    "power": Field("number", None, positive=True,
+                   doc="CAP exponent; omitted with the strength: the better of 2 and 3"),
     "mask_exponent": Field("number", 0.125, positive=True),
 }
 RECORD = {

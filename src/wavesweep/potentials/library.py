@@ -88,13 +88,16 @@ class DoubleBarrier(PotentialTerm):
         "width": Field("length", positive=True),
         "gap": Field("length", positive=True, doc="distance between the inner edges"),
         "center": Field("length", 0.0),
+        "smoothing": Field("length", 0.0, nonnegative=True, doc="tanh edge length (0: sharp)"),
         "axis": _AXIS,
     }
 
     def static(self, mesh):
         x = np.abs(_along(self, mesh) - self.p["center"])
-        inner = self.p["gap"] / 2
-        return self.p["height"] * ((x > inner) & (x < inner + self.p["width"]))
+        inner, outer, s = self.p["gap"] / 2, self.p["gap"] / 2 + self.p["width"], self.p["smoothing"]
+        if s > 0:
+            return self.p["height"] * _sharp_or_smooth(x - inner, s) * _sharp_or_smooth(outer - x, s)
+        return self.p["height"] * ((x > inner) & (x < outer))
 
 
 @register
