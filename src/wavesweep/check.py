@@ -98,8 +98,9 @@ def representability(setup, findings=None):
             need = math.ceil(ax.length * reach6 / math.pi) + 1
             if reach3 > kmax:
                 raise JobError(f"grid.{ax.name}.points",
-                               f"the grid resolves |p| up to {kmax / pf:.4g} but the packet reaches "
-                               f"{reach3 / pf:.4g} (|p0| + 3 sigma); use at least {need} points")
+                               f"the grid resolves |p| up to {kmax / pf:.4g} {u.unit_label('momentum')} but "
+                               f"the packet reaches {reach3 / pf:.4g} (|p0| + 3 sigma); use at least "
+                               f"{need} points")
             if findings is not None:
                 level = "ok" if reach6 <= kmax else "warn"
                 findings.append(Finding(
@@ -167,6 +168,21 @@ def check_job(job: Job, trial_seconds: float = 1.0) -> Report:
         prop = Chebyshev(setup.hamiltonian, dt, make_transform(setup.grid, "scipy"), setup.absorber)
         findings.append(Finding("time step", "ok",
             f"chebyshev: {len(prop.coefficients)} terms per step", {"terms": len(prop.coefficients)}))
+
+    # detectors: one inside an absorbing layer sees a current already reduced by it
+    for n, det in enumerate(setup.detectors):
+        ax = setup.grid.axes[det.axis]
+        for layer in setup.absorber.layers:
+            if layer.axis != det.axis:
+                continue
+            inner = ax.max - th if layer.name.endswith("+") else ax.min + th
+            inside = det.position > inner if layer.name.endswith("+") else det.position < inner
+            if inside:
+                findings.append(Finding("detector", "warn",
+                    f"{det.name!r} at {ax.name} = {det.position / lf:.4g} {L} lies inside the {layer.name} "
+                    f"absorber (which starts at {inner / lf:.4g} {L}): its flux is reduced by the "
+                    f"absorption; move it out, or read the absorbed probability of {layer.name} instead",
+                    {"detector": det.name, "face": layer.name}, field=f"detector.{n}.{ax.name}"))
 
     # absorber
     if setup.absorber.active:
@@ -270,8 +286,10 @@ def _aliasing_finding(setup, T, tf) -> Finding:
         worst = max(worst, float(power[k > k_alias].sum() / total))
         ok = np.nonzero(above <= ALIASED_WEIGHT_MAX)[0]
         k_needed = max(k_needed, float(k[order][ok[0]]) if ok.size else ax.k_max)
-    dt_limit = min(2 * mass * math.pi / max(k_needed, 1e-300) ** 2,
-                   math.pi / grid.kinetic_max(mass))
+    # below k_needed the potential's weight is harmless; no mode above it may wrap
+    dt_limit = math.pi / grid.kinetic_max(mass)
+    if k_needed > 0:
+        dt_limit = max(dt_limit, min(2 * mass * math.pi / k_needed**2, dt_limit * 1e12))
     if worst <= ALIASED_WEIGHT_MAX:
         return Finding("splitting", "ok",
             f"potential's spectral weight in modes with kinetic phase > pi per step: {worst:.1e} "

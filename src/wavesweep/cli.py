@@ -79,13 +79,17 @@ def _one_line(message) -> str:
 
 
 def _run(args) -> int:
-    from .jobfile import load_job
+    from .batch.sweep import load_study
     from .simulation import Simulation
 
-    job = load_job(args.job, args.set)
-    sim = Simulation(job, fft=args.fft)
-    path = sim.run(args.output, progress=not args.quiet)
-    print(path)
+    study = load_study(args.job, args.set)   # validates every run before any starts
+    n = len(study.runs)
+    for i, spec in enumerate(study.runs, 1):
+        if n > 1 and not args.quiet:
+            where = ", ".join(f"{k} = {v!r}" for k, v in spec.params.items())
+            print(f"run {i}/{n}: {where}", file=sys.stderr)
+        path = Simulation(spec.job, fft=args.fft).run(args.output, progress=not args.quiet)
+        print(path, flush=True)
     return EXIT_OK
 
 

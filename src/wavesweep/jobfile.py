@@ -29,7 +29,7 @@ from .schema import Field, check_unknown, validate_table
 from .states import PACKET_SCHEMAS
 from .units import UnitSet
 
-__all__ = ["Job", "load_job", "job_from_dict", "apply_overrides", "parse_override"]
+__all__ = ["Job", "load_job", "read_job_file", "job_from_dict", "apply_overrides", "parse_override"]
 
 FFT_BACKENDS = ("auto", "scipy", "pyfftw")
 # Keys that choose how a run is computed, not what is computed: left out of the run id.
@@ -100,13 +100,13 @@ class Job:
 
     def resolve(self) -> "Job":
         """Fill in the values that need the physics to choose, so that the
-        table is the complete job: today the CAP strength, tuned to the
+        table is the complete job: today the CAP strength and exponent, tuned to the
         packet's energies by :class:`~wavesweep.simulation.Setup` (which
         records it in ``table``).  Idempotent; ``to_toml``, ``canonical`` and
         ``run_id`` call it, so the id is the same before and after a run and
         for a rerun of the job text stored in the result."""
         ab = self.table.get("absorber") or {}
-        if ab.get("kind") == "cap" and ab.get("strength") is None:
+        if ab.get("kind") == "cap" and (ab.get("strength") is None or ab.get("power") is None):
             from .simulation import Setup
             Setup(self)
         return self
@@ -224,22 +224,30 @@ def _list_item(seq, part, where):
 
 
 # -- loading ---------------------------------------------------------------------
-def load_job(path, overrides=()) -> Job:
-    """Read and validate a job file; ``overrides`` are ``"key=value"`` strings."""
+def read_job_file(path) -> dict:
+    """The raw table of a job file (TOML), with one-line errors."""
     path = Path(path)
     try:
         text = path.read_text()
     except FileNotFoundError:
         raise JobError("", f"job file {str(path)!r} not found") from None
+    except IsADirectoryError:
+        raise JobError("", f"{str(path)!r} is a folder, not a job file") from None
     except OSError as e:
         raise JobError("", f"cannot read job file {str(path)!r}: {e.strerror}") from None
     except UnicodeDecodeError as e:
         raise JobError("", f"{path.name} is not UTF-8 text (byte {e.start}); TOML files are UTF-8") from None
     try:
-        raw = tomllib.loads(text)
+        return tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:
         raise JobError("", f"{path.name} is not valid TOML: {e}") from None
-    return job_from_dict(raw, overrides, source=path)
+
+
+def load_job(path, overrides=()) -> Job:
+    """Read and validate a job file; ``overrides`` are ``"key=value"`` strings.
+    A ``[sweep]`` table is validated and kept; expand it with
+    :func:`wavesweep.batch.sweep.load_study`."""
+    return job_from_dict(read_job_file(path), overrides, source=Path(path))
 
 
 def job_from_dict(raw: dict, overrides=(), source: Path | None = None) -> Job:

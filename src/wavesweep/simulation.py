@@ -59,7 +59,8 @@ class Setup:
         self.packet = self._packet_atomic(t["packet"])
         from .check import representability
         representability(self)  # before the absorber's tuning squares the packet's momenta
-        self.psi0 = build_state(self.packet, self.grid, self.mass)
+        self.psi0 = build_state(self.packet, self.grid, self.mass,
+                                length_unit=(u.factor("length"), u.unit_label("length")))
         self.absorber = self._absorber(t["absorber"])
         self.hamiltonian = Hamiltonian(self.grid, self.mass, self.terms, self.absorber.rate)
         self.detectors = [self._detector(i, d) for i, d in enumerate(t["detector"])]
@@ -223,7 +224,10 @@ class Simulation:
         self.setup = Setup(job, fft, threads)
 
     def output_path(self, outdir) -> Path:
-        return Path(outdir) / f"{self.job.name}.nc"
+        """``OUTDIR/NAME-RUNID.nc``: runs of other physics (another --set, a
+        sweep point) never overwrite each other; a rerun of the same physics
+        replaces its own file."""
+        return Path(outdir) / f"{self.job.name}-{self.job.run_id}.nc"
 
     def run(self, outdir=None, path=None, progress: bool = True, on_sample=None) -> Path:
         """Propagate and write the result; returns the file path.

@@ -73,13 +73,15 @@ def central_momenta(packet: dict, mass: float, ndim: int, field: str) -> list[fl
     return list(p)
 
 
-def build_state(packet: dict, grid, mass: float, field: str = "packet") -> np.ndarray:
-    """psi on the grid (complex128, normalised) from a packet table in atomic units."""
+def build_state(packet: dict, grid, mass: float, field: str = "packet",
+                length_unit: tuple[float, str] = (1.0, "bohr")) -> np.ndarray:
+    """psi on the grid (complex128, normalised) from a packet table in atomic
+    units; ``length_unit`` (bohr per unit, label) is for messages only."""
     kind = packet.get("kind", "gaussian")
     if kind == "gaussian":
-        psi = _gaussian_state(packet, grid, mass, field)
+        psi = _gaussian_state(packet, grid, mass, field, length_unit)
     elif kind == "superposition":
-        psi = _superposition(packet, grid, mass, field)
+        psi = _superposition(packet, grid, mass, field, length_unit)
     elif kind == "file":
         psi = _from_file(packet, grid, field)
     else:  # validated upstream; a programming error here
@@ -90,15 +92,16 @@ def build_state(packet: dict, grid, mass: float, field: str = "packet") -> np.nd
     return psi / math.sqrt(norm)
 
 
-def _gaussian_state(packet, grid, mass, field):
+def _gaussian_state(packet, grid, mass, field, length_unit=(1.0, "bohr")):
+    lf, lu = length_unit
     x0s, widths = packet["center"], packet["width"]
     p0s = central_momenta(packet, mass, grid.ndim, field)
     psi = np.ones((1,) * grid.ndim, complex)
     for i, ax in enumerate(grid.axes):
         x0, w = x0s[i], widths[i]
         if not (ax.min < x0 < ax.max):
-            raise JobError(f"{field}.center", f"{ax.name} = {x0:g} bohr lies outside the grid "
-                                              f"[{ax.min:g}, {ax.max:g}] bohr")
+            raise JobError(f"{field}.center", f"{ax.name} = {x0 / lf:g} {lu} lies outside the grid "
+                                              f"[{ax.min / lf:g}, {ax.max / lf:g}] {lu}")
         line = gaussian_packet(ax.coordinates, x0, w, p0s[i])
         # the packet must be on the grid, not cut by an edge (beyond 1e-8 of its weight)
         on_grid = float(np.sum(np.abs(line) ** 2)) * ax.dx
@@ -119,7 +122,7 @@ def _gaussian_state(packet, grid, mass, field):
     return psi
 
 
-def _superposition(packet, grid, mass, field):
+def _superposition(packet, grid, mass, field, length_unit=(1.0, "bohr")):
     parts = packet["packets"]
     if not parts:
         raise JobError(f"{field}.packets", "needs at least one packet table")
@@ -129,7 +132,7 @@ def _superposition(packet, grid, mass, field):
         raise JobError(f"{field}.amplitudes", "needs one amplitude and one phase per packet")
     psi = 0.0
     for j, (sub, a, ph) in enumerate(zip(parts, amps, phases)):
-        psi = psi + float(a) * np.exp(1j * float(ph)) * build_state(sub, grid, mass, f"{field}.packets.{j}")
+        psi = psi + float(a) * np.exp(1j * float(ph)) * build_state(sub, grid, mass, f"{field}.packets.{j}", length_unit)
     return np.broadcast_to(psi, grid.shape).astype(complex)
 
 

@@ -76,6 +76,7 @@ UNITS: dict[str, tuple[float, Dims]] = {
     "u": _unit(sc.atomic_mass, _MASS), "Da": _unit(sc.atomic_mass, _MASS),
     "dalton": _unit(sc.atomic_mass, _MASS), "amu": _unit(sc.atomic_mass, _MASS),
     "C": _unit(1.0, _CHG),
+    "rad": (1.0, _DIM_NONE),                         # "rad/s" for angular frequencies
     "V": _unit(1.0, (1, 2, -2, -1)),                 # volt = J / C
     "Hz": _unit(1.0, (0, 0, -1, 0)), "kHz": _unit(1e3, (0, 0, -1, 0)),
     "MHz": _unit(1e6, (0, 0, -1, 0)), "GHz": _unit(1e9, (0, 0, -1, 0)),
@@ -158,20 +159,29 @@ def parse_unit(text: str, field: str = "unit") -> tuple[float, Dims]:
             sign = -1 if tok == "/" else 1
             need_factor, i = True, i + 1
             continue
+        if not need_factor and kind == "name":   # "m_e nm fs-1": a space multiplies (CF)
+            sign, need_factor = 1, True
         if not (need_factor and kind == "name"):
             raise bad
+        power = 1
+        if tok not in UNITS:   # CF style with the power glued on: "m2", "s-1" is name + num
+            m = re.fullmatch(r"(.*?)(\d+)", tok)
+            if m and m.group(1) in UNITS:
+                tok, power = m.group(1), int(m.group(2))
         if tok not in UNITS:
             import difflib
             near = difflib.get_close_matches(tok, UNITS, n=3)
             hint = f" (did you mean {', '.join(map(repr, near))}?)" if near else ""
             raise JobError(field, f"unknown unit {tok!r} in {text!r}{hint}; "
                                   f"known: {', '.join(sorted(UNITS))}")
-        power = 1
         if i + 1 < len(tokens) and tokens[i + 1][0] == "pow":
             if i + 2 >= len(tokens) or tokens[i + 2][0] != "num":
                 raise bad
             power = int(tokens[i + 2][1])
             i += 2
+        elif i + 1 < len(tokens) and tokens[i + 1][0] == "num" and tokens[i + 1][1][0] in "+-":
+            power = int(tokens[i + 1][1])   # "s-1", "nm-2" (CF units, as results write them)
+            i += 1
         f, d = UNITS[tok]
         factor *= f ** (sign * power)
         for j in range(4):
@@ -303,4 +313,10 @@ def quantity_to_atomic(text: str, kind: str, field: str = "value") -> float:
     factor, dims = parse_unit(unit, field)
     if dims != want:
         raise JobError(field, f"{text!r} is not a {kind.replace('_', ' ')}")
+    if kind == "frequency" and _CYCLES.search(unit):
+        # angular-frequency fields (omega): "100 Hz" means 100 cycles per second
+        factor *= 2.0 * math.pi
     return number * factor
+
+
+_CYCLES = re.compile(r"(?<![A-Za-z])[kMGT]?Hz(?![A-Za-z])")

@@ -57,9 +57,16 @@ def test_sharp_barrier_is_flagged_where_the_error_stops_following_dt2(tmp_path):
     flagged = _finding(_with(evolve__dt=0.2))
     assert flagged.level == "warn" and flagged.values["aliased_weight"] > 1e-5
     assert _finding(_with(evolve__dt=0.1)).level == "warn"
+    # the suggested step passes, and it is no smaller than the step that has no
+    # wrapped modes at all (T_max dt = pi)
+    limit = flagged.values["dt_limit"]
     dx = 300.0 / 1024
     t_max = (np.pi / dx) ** 2 / 2
-    assert flagged.values["dt_limit"] <= np.pi / t_max * (1 + 1e-9)
+    assert limit >= np.pi / t_max * (1 - 1e-9)
+    steps = 10 * np.ceil(110.0 / (0.999 * limit) / 10)    # whole steps, 10 per sample
+    safe = 110.0 / steps
+    assert _finding(_with(evolve__dt=safe, record__every=110.0 / 10,
+                          record__snapshot_every=110.0)).level == "ok"
     assert _finding(_with(evolve__dt=0.05)).level == "ok"
     # and the flag means something: there the Strang error is erratic instead of
     # falling as dt^2 (measured against dt = 0.01: 1.6e-4 at dt 0.2, 7.9e-4 at 0.1)
@@ -79,3 +86,22 @@ def test_smooth_potential_passes_and_converges_as_dt2(tmp_path):
     e1 = abs(_transmitted(smooth(0.1), tmp_path / "b") - ref)
     # Strang is second order (halving dt divides the error by 4; measured 3.9)
     assert 2.8 < e2 / e1 < 5.2, (e2, e1)
+
+
+def test_free_packet_and_detector_inside_absorber():
+    # no static potential at all (a regression: the aliasing estimate divided by zero)
+    free = {
+        "grid": {"x": {"min": -100.0, "max": 100.0, "points": 512}},
+        "packet": {"center": -20.0, "width": 3.0, "momentum": 1.0},
+        "evolve": {"dt": 0.05, "duration": 10.0},
+        "absorber": {"kind": "cap", "thickness": 20.0},
+        "detector": [{"name": "in", "x": 90.0}, {"name": "out", "x": 50.0}],
+    }
+    report = check_job(make_job(free), trial_seconds=0.05)
+    assert not report.errors
+    split = next(f for f in report.findings if f.topic == "splitting")
+    assert split.level == "ok"
+    det = [f for f in report.findings if f.topic == "detector"]
+    # only the detector inside the x+ layer (80..100) is flagged, naming its field
+    assert [f.values["detector"] for f in det] == ["in"]
+    assert det[0].level == "warn" and det[0].field == "detector.0.x"

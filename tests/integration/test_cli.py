@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import copy
 import json
+import tomllib
 import os
 import re
 import subprocess
@@ -236,11 +237,34 @@ def test_run_prints_the_result_path(tmp_path):
     proc = cli("run", job, "-o", out, "--quiet", cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr
     assert proc.stderr == ""  # --quiet: no progress, no chatter
-    assert proc.stdout.splitlines() == [str(out / "tiny.nc")]
-    assert leftovers(out) == ["tiny.nc"]
-    with xr.open_dataset(out / "tiny.nc") as ds:
+    (line,) = proc.stdout.splitlines()
+    path = Path(line)
+    assert path.parent == out and path.name.startswith("tiny-") and path.suffix == ".nc"
+    assert leftovers(out) == [path.name]
+    with xr.open_dataset(path) as ds:
         assert ds.attrs["title"] == "tiny cli job"
         assert ds.sizes["time"] == 11
+        # NAME-RUNID.nc: other physics never overwrites this file
+        assert path.name == f"tiny-{ds.attrs['run_id']}.nc"
+    other = cli("run", job, "-o", out, "--quiet", "--set", "packet.width=1.1", cwd=tmp_path)
+    assert other.returncode == 0, other.stderr
+    assert len(leftovers(out)) == 2
+
+
+def test_run_executes_every_point_of_a_sweep(tmp_path):
+    table = dict(TINY)
+    table["sweep"] = {"packet.width": [1.0, 1.1, 1.2]}
+    job = write_job(tmp_path, table, "swept.toml")
+    out = tmp_path / "results"
+    proc = cli("run", job, "-o", out, "--quiet", cwd=tmp_path)
+    assert proc.returncode == 0, proc.stderr
+    paths = [Path(p) for p in proc.stdout.splitlines()]
+    assert len(paths) == 3 and len(set(paths)) == 3
+    widths = []
+    for p in paths:
+        with xr.open_dataset(p) as ds:
+            widths.append(tomllib.loads(ds.attrs["job"])["packet"]["width"])
+    assert widths == [1.0, 1.1, 1.2]
 
 
 def test_module_and_console_script_agree(tmp_path):
@@ -254,7 +278,7 @@ def test_module_and_console_script_agree(tmp_path):
     b = cli("run", job, "-o", tmp_path / "b", "--quiet", cwd=tmp_path, exe=script)
     assert (a.returncode, b.returncode) == (0, 0), (a.stderr, b.stderr)
     assert a.stdout.replace(str(tmp_path / "a"), "OUT") == b.stdout.replace(str(tmp_path / "b"), "OUT")
-    da, db = (xr.load_dataset(tmp_path / name / "tiny.nc") for name in "ab")
+    da, db = (xr.load_dataset(Path(p.stdout.strip())) for p in (a, b))
     assert da.attrs["run_id"] == db.attrs["run_id"]
     for ds in (da, db):
         assert ds.attrs.pop("wall_seconds") >= 0
@@ -290,7 +314,8 @@ def test_quiet_means_no_progress_bar(tmp_path, monkeypatch, capsys, quiet):
     job = write_job(tmp_path, TINY)
     args = ["run", str(job), "-o", str(tmp_path / "out")] + (["--quiet"] if quiet else [])
     assert main(args) == 0
-    assert capsys.readouterr().out.strip() == str(tmp_path / "out" / "job.nc")
+    printed = Path(capsys.readouterr().out.strip())
+    assert printed.parent == tmp_path / "out" and printed.name.startswith("job-")
     if quiet:
         assert _FakeBar.made == []
     else:

@@ -1,0 +1,145 @@
+"""Studies: a job with a ``[sweep]`` table expands into runs.
+
+::
+
+    [sweep]
+    mode = "grid"                                   # cartesian product (default), or "zip"
+    "potential.0.height" = [100.0, 150.0, 200.0]    # a list of values
+    "packet.energy" = { start = 40.0, stop = 200.0, num = 9 }              # evenly spaced
+    "packet.width" = { start = 5.0, stop = 50.0, num = 4, spacing = "log" }  # geometric
+
+Keys are dotted paths into any job field, array tables by index.  Each run
+is the fully resolved job for one point; its id is the content hash of that
+job's canonical form (:attr:`wavesweep.jobfile.Job.run_id`), so the same
+physics always has the same id.  Every point is validated when the study is
+expanded: a bad point is a JobError naming the sweep key and value, and
+nothing is queued.
+"""
+from __future__ import annotations
+
+import copy
+import itertools
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import JobError
+from ..jobfile import Job, job_from_dict, read_job_file
+
+__all__ = ["RunSpec", "Study", "expand_study", "load_study", "sweep_axes"]
+
+MODES = ("grid", "zip")
+RANGE_KEYS = ("start", "stop", "num", "spacing")
+
+
+@dataclass
+class RunSpec:
+    """One run of a study: its resolved job and the swept values (job units)."""
+
+    job: Job
+    params: dict = field(default_factory=dict)     # dotted key -> value
+
+    @property
+    def run_id(self) -> str:
+        return self.job.run_id
+
+
+@dataclass
+class Study:
+    name: str
+    runs: list
+    axes: dict            # dotted key -> list of values (grid) or values per run (zip)
+    mode: str
+    source: Path | None = None
+
+
+def _values(key: str, spec) -> list:
+    where = f"sweep.{key}"
+    if isinstance(spec, list):
+        if not spec:
+            raise JobError(where, "needs at least one value")
+        return list(spec)
+    if isinstance(spec, dict):
+        for k in spec:
+            if k not in RANGE_KEYS:
+                raise JobError(f"{where}.{k}", f"unknown key; a range has {', '.join(RANGE_KEYS)}")
+        try:
+            start, stop, num = spec["start"], spec["stop"], spec["num"]
+        except KeyError as e:
+            raise JobError(f"{where}.{e.args[0]}", "missing; a range is { start, stop, num }") from None
+        for k, v in (("start", start), ("stop", stop)):
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+                raise JobError(f"{where}.{k}", f"must be a number, got {v!r}")
+        if isinstance(num, bool) or not isinstance(num, int) or num < 1:
+            raise JobError(f"{where}.num", f"must be a positive integer, got {num!r}")
+        spacing = spec.get("spacing", "linear")
+        if spacing == "linear":
+            vals = np.linspace(start, stop, num)
+        elif spacing == "log":
+            if start <= 0 or stop <= 0:
+                raise JobError(f"{where}.start", "a log-spaced range needs start and stop > 0")
+            vals = np.geomspace(start, stop, num)
+        else:
+            raise JobError(f"{where}.spacing", f"{spacing!r} is not 'linear' or 'log'")
+        # 12 significant digits: the same range always gives the same numbers
+        return [float(f"{v:.12g}") for v in vals]
+    raise JobError(where, f"must be a list of values or a range {{ start, stop, num }}, got {spec!r}")
+
+
+def sweep_axes(sweep: dict) -> tuple[str, dict]:
+    """(mode, {dotted key: values}) from a raw ``[sweep]`` table."""
+    if not isinstance(sweep, dict):
+        raise JobError("sweep", "must be a table")
+    mode = sweep.get("mode", "grid")
+    if mode not in MODES:
+        raise JobError("sweep.mode", f"{mode!r} is not one of {', '.join(map(repr, MODES))}")
+    axes = {k: _values(k, v) for k, v in sweep.items() if k != "mode"}
+    if not axes:
+        raise JobError("sweep", "names no field to sweep; add e.g. \"packet.energy\" = [40.0, 80.0]")
+    if mode == "zip":
+        lengths = {k: len(v) for k, v in axes.items()}
+        if len(set(lengths.values())) > 1:
+            raise JobError("sweep.mode", f"'zip' needs lists of one length, got {lengths}")
+    return mode, axes
+
+
+def expand_study(raw: dict, source: Path | None = None, name: str | None = None,
+                 overrides=()) -> Study:
+    """All runs of a job table (``[sweep]`` optional: one run without it)."""
+    raw = copy.deepcopy(raw)
+    sweep = raw.pop("sweep", None)
+    study_name = name or (source.stem if source else "study")
+    if sweep is None:
+        job = job_from_dict(raw, overrides, source=source)
+        return Study(study_name, [RunSpec(job, {})], {}, "grid", source)
+    mode, axes = sweep_axes(sweep)
+    keys = list(axes)
+    points = (zip(*axes.values()) if mode == "zip" else itertools.product(*axes.values()))
+    runs, seen = [], set()
+    for values in points:
+        point = dict(zip(keys, values))
+        sets = list(overrides) + [(k, v) for k, v in point.items()]
+        try:
+            job = job_from_dict(raw, sets, source=source)
+            job.resolve()
+        except JobError as e:
+            where = ", ".join(f"{k} = {v!r}" for k, v in point.items())
+            raise JobError(e.field, f"{e.message} (in the sweep point {where})") from None
+        if job.run_id in seen:   # two points giving the same physics run once
+            continue
+        seen.add(job.run_id)
+        runs.append(RunSpec(job, point))
+    return Study(study_name, runs, axes, mode, source)
+
+
+def load_study(path, overrides=(), name: str | None = None) -> Study:
+    """Read a job file and expand its sweep (``--set`` overrides apply to
+    every run; a swept key set with --set is swept all the same)."""
+    path = Path(path)
+    raw = read_job_file(path)
+    # --set may also target the sweep table itself ("sweep.packet.energy" is
+    # not a dotted path into the sweep, whose keys contain dots, so only
+    # plain job fields are overridden here)
+    return expand_study(raw, source=path, name=name, overrides=overrides)
