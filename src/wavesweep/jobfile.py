@@ -389,7 +389,22 @@ def _packet(raw, units, ndim, base, name) -> dict:
 
 
 def _absorber(raw, units, grid) -> dict:
+    per_face = None
+    if isinstance(raw, dict) and isinstance(raw.get("strength"), dict):
+        # strength = { "x-" = 0.5, "x+" = 2.0 }: one CAP strength per face
+        raw = dict(raw)
+        per_face = raw.pop("strength")
+        allowed = _face_names_of(grid)
+        for face, value in per_face.items():
+            if face not in allowed:
+                raise JobError(f"absorber.strength.{face}",
+                               f"not a face of this grid; faces: {', '.join(allowed)}")
+            v = units.to_atomic(value, "energy", f"absorber.strength.{face}")
+            if v < 0:
+                raise JobError(f"absorber.strength.{face}", f"must not be negative, got {value!r}")
     t = validate_table(raw, ABSORBER, "absorber", units, len(grid_axes(grid)))
+    if per_face is not None:
+        t["strength"] = per_face
     if t["kind"] == "none":
         return {"kind": "none"}
     if t.get("thickness") is None:
@@ -398,9 +413,15 @@ def _absorber(raw, units, grid) -> dict:
     for name in grid_axes(grid):
         lo = units.to_atomic(grid[name]["min"], "length")
         hi = units.to_atomic(grid[name]["max"], "length")
+        if name == "r":   # one layer only, at r_max
+            if th >= hi:
+                raise JobError("absorber.thickness", f"the layer is thicker than the radial grid "
+                                                     f"(r max = {grid[name]['max']!r}); make it thinner")
+            continue
         if 2 * th >= hi - lo:
             raise JobError("absorber.thickness", f"two layers do not fit on the {name} axis "
-                                                 f"(length {grid[name]['max']!r} - {grid[name]['min']!r})")
+                                                 f"(from {grid[name]['min']!r} to {grid[name]['max']!r}); "
+                                                 "make them thinner or the grid longer")
     faces = t.get("faces")
     if faces is not None:
         allowed = _face_names_of(grid)

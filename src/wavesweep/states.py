@@ -154,6 +154,9 @@ def _from_file(packet, grid, field):
         raise
     except (OSError, ValueError) as e:
         raise JobError(f"{field}.path", f"cannot read {path!r} as netCDF: {e}") from e
+    dims = tuple(d.removesuffix("_full") for d in re.dims)
+    if dims != grid.names:
+        raise JobError(f"{field}.path", f"the state has dims {re.dims}, the grid has axes {grid.names}")
     if re.shape != grid.shape:
         raise JobError(f"{field}.path", f"the state has shape {re.shape}, the grid {grid.shape}")
     for dim, ax in zip(re.dims, grid.axes):

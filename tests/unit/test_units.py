@@ -239,6 +239,13 @@ NM_JOB = {
 }
 
 
+def _scaled(value, factor):
+    """A strength as written in a job: a number, or one per face."""
+    if isinstance(value, dict):
+        return {k: v * factor for k, v in value.items()}
+    return value * factor
+
+
 def _by_hand_in_atomic_units(job):
     """The nm / meV / fs job converted with CODATA factors, no [units] table."""
     au = copy.deepcopy(job)
@@ -252,7 +259,7 @@ def _by_hand_in_atomic_units(job):
     pk.update(center=pk["center"] * NM, width=pk["width"] * NM, energy=pk["energy"] * MEV)
     au["evolve"].update(dt=au["evolve"]["dt"] * FS, duration=au["evolve"]["duration"] * FS)
     au["absorber"].update(thickness=au["absorber"]["thickness"] * NM,
-                          strength=au["absorber"]["strength"] * MEV)
+                          strength=_scaled(au["absorber"]["strength"], MEV))
     au["record"].update(every=au["record"]["every"] * FS,
                         snapshot_every=au["record"]["snapshot_every"] * FS)
     au["detector"][0]["x"] *= NM

@@ -54,8 +54,8 @@ class Absorber:
     kind : ``"cap"``, ``"mask"`` or ``"none"``
     thickness : layer thickness (bohr)
     faces : face names to cover (default: all of the grid's faces)
-    strength : CAP strength (hartree), one number or one per grid axis
-        (required here; tuning happens upstream)
+    strength : CAP strength (hartree): one number, one per grid axis, or a
+        dict by face name (required here; tuning happens upstream)
     power : CAP exponent n
     dt : time step (atomic units), needed by ``mask``
     mask_exponent : exponent of the cosine mask (default 1/8)
@@ -87,7 +87,13 @@ class Absorber:
                 continue
             s = depth[inside] / self.thickness
             if kind == "cap":
-                w = (strength[i] if isinstance(strength, (list, tuple)) else strength) * s**power
+                if isinstance(strength, dict):
+                    value = strength.get(face, 0.0)
+                elif isinstance(strength, (list, tuple)):
+                    value = strength[i]
+                else:
+                    value = strength
+                w = value * s**power
             else:
                 m = np.cos(0.5 * np.pi * np.clip(s, 0.0, 1.0)) ** mask_exponent
                 w = -np.log(np.maximum(m, 1e-300)) / dt

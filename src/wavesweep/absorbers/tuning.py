@@ -37,6 +37,27 @@ cells and energies.  The wall condition then gives ``r`` in closed form from
 the total matrix ``M`` (mapping ``y(0)`` to ``y(L)``):
 
     M11 psi(0) + M12 psi'(0) = 0   =>   r = (M11 + i k M12) / (i k M12 - M11).
+
+Periodic axes
+-------------
+On a periodic grid there is no wall: what crosses the x+ layer once wraps
+round into the x- layer (where it is booked as absorbed at the wrong face, or
+leaks back into the interior).  ``layer_scattering`` therefore treats the
+layer with free space (``V = W = 0``) on *both* sides,
+``psi = t exp(ik(s - L))`` for ``s > L``, and returns ``R = |r|^2`` and the
+one-way transmission ``T = |t|^2``.  With ``y(0) = (1 + r, ik(1 - r))``,
+``y(L) = t (1, ik)`` and ``det M = 1`` (traceless generators):
+
+    r = -(ik M11 - M21 - k^2 M12 - ik M22) / D,
+    t = 2ik / D,     D = ik M11 - M21 + k^2 M12 + ik M22.
+
+``t`` needs the absolute size of ``M``, not only ratios of its entries, so the
+tree product also returns the logarithm of the scale factors it divided out.
+Note that a power-law layer ends on a step ``W: strength -> 0`` at ``s = L``;
+the part of the wave it reflects comes back through the layer and is part of
+``R`` (about ``T^2 |r_step|^2``, far below ``T`` for a useful layer).  For
+the tuner, ``R + T`` is the figure of merit on a periodic axis: ``T`` is what
+wraps round.
 """
 from __future__ import annotations
 
@@ -48,7 +69,7 @@ from scipy.optimize import minimize_scalar
 
 from wavesweep.errors import JobError
 
-__all__ = ["cap_profile", "return_probability", "tune_cap_strength"]
+__all__ = ["cap_profile", "layer_scattering", "return_probability", "tune_cap_strength"]
 
 # Resolution criterion of the sub-grid: every cell satisfies
 #     |q|_max * h <= _CELL_PHASE,   |q|_max = sqrt(2 m |E_max + i W_max|),
@@ -142,16 +163,21 @@ def _cosh_sinhc(mu2: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return np.cosh(mu), np.where(tiny, 1.0, np.sinh(safe) / safe)
 
 
-def _tree_product(a, b, c, d):
+def _tree_product(a, b, c, d, track_scale=False):
     """Ordered product M[N-1] @ ... @ M[0] of 2x2 matrices stored as entry
-    arrays of shape (N, nE); returns four arrays of shape (nE,).
+    arrays of shape (N, nE); returns four arrays of shape (nE,), and with
+    ``track_scale`` also ``log_scale`` of shape (nE,) such that the true
+    product is ``exp(log_scale)`` times the returned entries.
 
     Only the ratio of entries matters for r, so partial products are divided
     by their largest entry every few levels: the layer amplifies one solution
     by exp(integral Im q ds), which would otherwise overflow for strong CAPs.
     Every cell matrix has determinant 1, so entries never underflow.
+    Each rescaled partial product enters the final product exactly once, so
+    the logarithms of all scale factors applied sum to ``log_scale``.
     """
     level = 0
+    log_scale = np.zeros(a.shape[1]) if track_scale else None
     while a.shape[0] > 1:
         if a.shape[0] % 2:
             # Identity at the far end keeps the order of the product intact.
@@ -175,6 +201,10 @@ def _tree_product(a, b, c, d):
             scale = np.maximum(np.maximum(np.abs(a), np.abs(b)),
                                np.maximum(np.abs(c), np.abs(d)))
             a, b, c, d = a / scale, b / scale, c / scale, d / scale
+            if track_scale:
+                log_scale += np.log(scale).sum(axis=0)
+    if track_scale:
+        return a[0], b[0], c[0], d[0], log_scale
     return a[0], b[0], c[0], d[0]
 
 
@@ -211,6 +241,68 @@ def return_probability(depth, rate, mass, energies) -> np.ndarray:
     ``|q| h`` per cell below ``_CELL_PHASE``, which converges ``|r|^2`` to
     ~1e-11 absolute or better.
     """
+    e_in, e_flat, cells = _layer_cells(depth, rate, mass, energies)
+    mass = cells[0]
+    out = np.empty(e_flat.shape)
+    for sl, e, (m11, m12, _, _) in _layer_matrices(cells, e_flat):
+        ik = 1j * np.sqrt(2.0 * mass * e)
+        num = m11 + ik * m12
+        den = ik * m12 - m11
+        out[sl] = (np.abs(num) / np.abs(den)) ** 2
+    return out.reshape(e_in.shape)
+
+
+def layer_scattering(depth, rate, mass, energies) -> tuple[np.ndarray, np.ndarray]:
+    """(R, T): reflection and one-way transmission probabilities of the absorbing layer
+    with free space (V = 0) on both sides, vectorised over energies (hartree).
+
+    Parameters
+    ----------
+    depth, rate, mass, energies
+        As for ``return_probability``, except that ``depth[-1]`` is the back
+        face of the layer with free space (``W = 0``) behind it instead of a
+        wall.
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray)
+        ``R = |r|^2`` (back out of the inner face) and ``T = |t|^2`` (out of
+        the back face, i.e. what wraps round on a periodic grid), both of the
+        shape of ``energies``.  ``R = 0`` and ``T = 1`` for ``W = 0``;
+        ``1 - R - T >= 0`` is the absorbed fraction.
+
+    Notes
+    -----
+    Same transfer matrices and sub-grid as ``return_probability`` (see the
+    module docstring for the formulas for ``r`` and ``t``).
+    """
+    e_in, e_flat, cells = _layer_cells(depth, rate, mass, energies)
+    mass = cells[0]
+    refl = np.empty(e_flat.shape)
+    trans = np.empty(e_flat.shape)
+    for sl, e, (m11, m12, m21, m22, log_scale) in _layer_matrices(
+            cells, e_flat, track_scale=True):
+        k = np.sqrt(2.0 * mass * e)
+        ik = 1j * k
+        a = ik * m11 - m21
+        b = -(k * k) * m12 - ik * m22
+        den = np.abs(a - b)
+        refl[sl] = (np.abs(a + b) / den) ** 2
+        # |t|^2 = (2k)^2 / (exp(log_scale) |D_scaled|)^2, in logs so that an
+        # opaque layer underflows to 0 instead of overflowing to inf / inf.
+        trans[sl] = np.exp(2.0 * (np.log(2.0 * k) - log_scale - np.log(den)))
+    return refl.reshape(e_in.shape), trans.reshape(e_in.shape)
+
+
+def _layer_cells(depth, rate, mass, energies):
+    """Validate the inputs of ``return_probability`` / ``layer_scattering``
+    and build the Magnus sub-grid.
+
+    Returns ``(e_in, e_flat, (mass, h, w1, w2))``: the energies as given and
+    flattened, the validated mass, the cell width and ``W`` at the two Gauss
+    nodes of every cell (column vectors; ``None`` for them when no energies
+    were given).
+    """
     mass = _positive("mass", mass)
     depth = np.asarray(depth, dtype=float)
     rate = np.asarray(rate, dtype=float)
@@ -230,7 +322,7 @@ def return_probability(depth, rate, mass, energies) -> np.ndarray:
     e_in = np.asarray(energies, dtype=float)
     e_flat = e_in.ravel()
     if e_flat.size == 0:
-        return np.zeros(e_in.shape)
+        return e_in, e_flat, (mass, None, None, None)
     if not (np.all(np.isfinite(e_flat)) and np.all(e_flat > 0.0)):
         raise JobError("energies", "must be finite and > 0 hartree")
 
@@ -258,8 +350,20 @@ def return_probability(depth, rate, mass, energies) -> np.ndarray:
     w1 = np.maximum(w1, 0.0)
     w2 = np.maximum(w2, 0.0)
 
-    out = np.empty(e_flat.shape)
-    chunk = max(1, _CHUNK // left.size)
+    return e_in, e_flat, (mass, h, w1, w2)
+
+
+def _layer_matrices(cells, e_flat, track_scale=False):
+    """Total transfer matrix of the layer, chunk by chunk over energies.
+
+    Yields ``(slice, e, entries)`` with ``e`` the energies of the chunk and
+    ``entries`` the output of ``_tree_product`` (scaled ``M11, M12, M21,
+    M22``, plus ``log_scale`` with ``track_scale``).
+    """
+    if e_flat.size == 0:
+        return
+    mass, h, w1, w2 = cells
+    chunk = max(1, _CHUNK // w1.shape[0])
     for start in range(0, e_flat.size, chunk):
         e = e_flat[None, start:start + chunk]
         # y' = A y with A = [[0, 1], [g, 0]], g = -q^2 = -2m(E + iW), at the
@@ -271,29 +375,26 @@ def return_probability(depth, rate, mass, energies) -> np.ndarray:
         mu2 = diag * diag + h * lower                # -det(Omega)
         ch, sh = _cosh_sinhc(mu2)
         shd = sh * diag
-        m11, m12, _, _ = _tree_product(ch + shd, sh * h,
-                                       sh * lower, ch - shd)
-        ik = 1j * np.sqrt(2.0 * mass * e[0])
-        num = m11 + ik * m12
-        den = ik * m12 - m11
-        out[start:start + chunk] = (np.abs(num) / np.abs(den)) ** 2
-    return out.reshape(e_in.shape)
+        entries = _tree_product(ch + shd, sh * h, sh * lower, ch - shd,
+                                track_scale=track_scale)
+        yield slice(start, start + chunk), e[0], entries
 
 
-def _strength_bracket(thickness, mass, e_min, e_max, power):
+def _strength_bracket(thickness, mass, e_min, e_max, power, passes=2):
     """Wide bracket (hartree) for the optimal strength, from two estimates.
 
-    Lower end: the semiclassical round-trip survival
-    ``exp(-4 integral(W ds) / (hbar v))`` with ``integral(W ds) = S L/(p+1)``
-    equals 1/e at the fastest energy -- any weaker CAP returns more than
-    a third of the wave even without reflection.
+    Lower end: the semiclassical survival ``exp(-2 passes integral(W ds) /
+    (hbar v))`` with ``integral(W ds) = S L/(p+1)`` equals 1/e at the fastest
+    energy -- any weaker CAP returns (``passes = 2``, round trip to a wall) or
+    transmits (``passes = 1``, periodic axis) more than a third of the wave
+    even without reflection.
     Upper end: ``W`` reaches ``E_min`` within ``1/k_min`` of the inner edge,
     i.e. the CAP looks like a step of height ~E to the slowest wave, whose
     reflection |(k-q)/(k+q)|^2 ~ 5e-2 is far above any useful optimum.
     """
     v_max = math.sqrt(2.0 * e_max / mass)
     k_min = math.sqrt(2.0 * mass * e_min)
-    s_lo = (power + 1.0) * v_max / (4.0 * thickness)
+    s_lo = (power + 1.0) * v_max / (2.0 * passes * thickness)
     s_hi = e_min * (k_min * thickness) ** power
     # Thin layers (a wavelength or less) make the two estimates cross; keep a
     # bracket of at least three decades around the lower estimate then.
@@ -301,9 +402,15 @@ def _strength_bracket(thickness, mass, e_min, e_max, power):
     return s_lo, s_hi
 
 
-def tune_cap_strength(thickness, mass, e_min, e_max, power=2.0, samples=64) -> tuple[float, float]:
-    """(strength in hartree, worst return probability over [e_min, e_max]) that
-    minimises the worst return probability.
+def tune_cap_strength(thickness, mass, e_min, e_max, power=2.0, samples=64,
+                      periodic=False) -> tuple[float, float]:
+    """(strength in hartree, worst figure of merit over [e_min, e_max]) that
+    minimises the worst figure of merit.
+
+    The figure of merit is the return probability with a wall behind the
+    layer (``periodic=False``, box axes) or ``R + T`` of the layer with free
+    space behind it (``periodic=True``; ``T`` is what wraps round into the
+    opposite layer).
 
     Parameters
     ----------
@@ -319,16 +426,21 @@ def tune_cap_strength(thickness, mass, e_min, e_max, power=2.0, samples=64) -> t
         Number of energies, spread geometrically over the window with both
         ends included (low energies are the hardest to absorb, so they get
         the denser sampling).
+    periodic : bool
+        Tune for a periodic axis: minimise ``max_E (R + T)`` from
+        ``layer_scattering`` instead of ``max_E |r|^2`` from
+        ``return_probability``.
 
     Returns
     -------
     (float, float)
-        Optimal ``strength`` (``W`` at the wall, hartree) and the worst return
-        probability over the sampled energies at that strength.
+        Optimal ``strength`` (``W`` at the back face, hartree) and the worst
+        return probability (or ``R + T``) over the sampled energies at that
+        strength.
 
     Notes
     -----
-    The objective ``max_E |r(E)|^2`` is minimised over ``log(strength)``: a
+    The objective (``max_E |r(E)|^2`` or ``max_E (R + T)``) is minimised over ``log(strength)``: a
     coarse scan of the physical bracket (see ``_strength_bracket``) picks the
     basin, then ``scipy.optimize.minimize_scalar(method="bounded")`` (Brent)
     refines it between the neighbouring scan points.  The scan guards against
@@ -352,11 +464,18 @@ def tune_cap_strength(thickness, mass, e_min, e_max, power=2.0, samples=64) -> t
     depth = np.linspace(0.0, thickness, _PROFILE_SAMPLES)
     shape = cap_profile(depth, thickness, 1.0, power)
 
-    def worst(log_strength: float) -> float:
-        rate = math.exp(log_strength) * shape
-        return float(return_probability(depth, rate, mass, energies).max())
+    if periodic:
+        def worst(log_strength: float) -> float:
+            rate = math.exp(log_strength) * shape
+            refl, trans = layer_scattering(depth, rate, mass, energies)
+            return float((refl + trans).max())
+    else:
+        def worst(log_strength: float) -> float:
+            rate = math.exp(log_strength) * shape
+            return float(return_probability(depth, rate, mass, energies).max())
 
-    s_lo, s_hi = _strength_bracket(thickness, mass, e_min, e_max, power)
+    s_lo, s_hi = _strength_bracket(thickness, mass, e_min, e_max, power,
+                                   passes=1 if periodic else 2)
     # Scan upward in factors of 2 from the weak end.  Past the optimum the
     # gradient reflection grows steadily with strength, so the scan stops
     # once the objective has risen twice in a row to 100x its best value;
