@@ -7,7 +7,7 @@ on.
 """
 from __future__ import annotations
 
-__all__ = ["JobError", "RunFailed"]
+__all__ = ["JobError", "RunFailed", "RunInterrupted"]
 
 
 class JobError(ValueError):
@@ -36,3 +36,13 @@ class RunFailed(RuntimeError):
         self.step = step
         self.time = time
         super().__init__(reason)
+
+
+class RunInterrupted(RuntimeError):
+    """A run stopped on request (signal, ``--until``) after writing a
+    checkpoint; ``checkpoint`` is its path, ``step`` the step it reached."""
+
+    def __init__(self, checkpoint=None, step: int | None = None):
+        self.checkpoint = checkpoint
+        self.step = step
+        super().__init__(f"interrupted at step {step}; checkpoint {checkpoint}")

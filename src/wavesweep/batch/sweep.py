@@ -54,6 +54,18 @@ class Study:
     mode: str
     source: Path | None = None
 
+    def manifest(self) -> dict:
+        """JSON-ready description: mode, swept axes and each run's id and
+        values (written to ``ROOT/STUDY/study.json`` on submit; ``collect``
+        reads it)."""
+        return {
+            "name": self.name,
+            "mode": self.mode,
+            "axes": {k: list(v) for k, v in self.axes.items()},
+            "source": str(self.source) if self.source else None,
+            "runs": [{"run_id": r.run_id, "params": r.params} for r in self.runs],
+        }
+
 
 def _values(key: str, spec) -> list:
     where = f"sweep.{key}"
