@@ -38,6 +38,38 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--set", action="append", default=[], metavar="KEY=VALUE")
     c.add_argument("--json", action="store_true", help="print the findings as JSON")
     c.add_argument("--trial-seconds", type=float, default=1.0, help="length of the timed trial")
+
+    root_help = "queue folder (default: $WAVESWEEP_ROOT or ./wavesweep-runs)"
+    sb = sub.add_parser("submit", help="queue every run of a study (idempotent)")
+    sb.add_argument("job")
+    sb.add_argument("--root", default=None, help=root_help)
+    sb.add_argument("--study", default=None, help="study name (default: the job file's name)")
+    sb.add_argument("--set", action="append", default=[], metavar="KEY=VALUE")
+
+    w = sub.add_parser("work", help="run queued runs with worker processes")
+    w.add_argument("--root", default=None, help=root_help)
+    w.add_argument("--workers", type=int, default=1, help="worker processes (they share the cores)")
+    w.add_argument("--until", default=None, metavar="HH:MM",
+                   help="claim nothing new after this time (HH:MM: the next one; or a date-time)")
+    w.add_argument("--checkpoint-minutes", type=float, default=5.0, help="wall time between checkpoints")
+    w.add_argument("--lease-seconds", type=float, default=60.0,
+                   help="a run whose worker has not reported for this long is requeued")
+    w.add_argument("--max-attempts", type=int, default=3, help="attempts before a run is failed")
+
+    st = sub.add_parser("status", help="counts by state, progress of running runs")
+    st.add_argument("--root", default=None, help=root_help)
+    st.add_argument("--json", action="store_true", help="print one JSON object")
+
+    for name, what in (("retry", "requeue failed runs (or the named ones)"),
+                       ("cancel", "cancel queued runs (or the named ones)")):
+        q = sub.add_parser(name, help=what)
+        q.add_argument("run_ids", nargs="*", metavar="RUN_ID")
+        q.add_argument("--root", default=None, help=root_help)
+        q.add_argument("--study", default=None, help="only this study")
+
+    co = sub.add_parser("collect", help="one dataset of a study: parameters as dimensions")
+    co.add_argument("study")
+    co.add_argument("--root", default=None, help=root_help)
     return p
 
 
@@ -109,7 +141,57 @@ def _check(args) -> int:
     return EXIT_OK
 
 
-_COMMANDS = {"run": _run, "check": _check}
+def _submit(args) -> int:
+    from .batch.api import default_root, submit
+
+    out = submit(args.job, args.root, args.study, args.set)
+    print(f"{out['study']}: {out['runs']} runs; added {out['added']}, already queued or done "
+          f"{out['existing']}, reused from other studies {out['reused']} "
+          f"(root {default_root(args.root)})")
+    return EXIT_OK
+
+
+def _work(args) -> int:
+    from .batch.api import work
+
+    out = work(args.root, args.workers, args.until, checkpoint_seconds=60.0 * args.checkpoint_minutes,
+               lease_seconds=args.lease_seconds, max_attempts=args.max_attempts)
+    if out.get("until_passed"):
+        print(f"wavesweep work: --until {args.until} has passed; nothing claimed", file=sys.stderr)
+    elif out.get("stopped"):
+        print("wavesweep work: stopped; running runs were checkpointed and requeued", file=sys.stderr)
+    return EXIT_OK
+
+
+def _status(args) -> int:
+    from .batch.api import format_status, status
+
+    st = status(args.root)
+    print(json.dumps(st) if args.json else format_status(st))
+    return EXIT_OK
+
+
+def _retry_or_cancel(args) -> int:
+    from .batch.api import default_root
+    from .batch.queue import Queue
+
+    queue = Queue(default_root(args.root))
+    op = queue.retry if args.command == "retry" else queue.cancel
+    n = op(run_ids=args.run_ids or None, study=args.study)
+    print(f"{'requeued' if args.command == 'retry' else 'cancelled'} {n} run(s)")
+    return EXIT_OK
+
+
+def _collect(args) -> int:
+    from .batch.api import default_root
+    from .batch.collect import collect
+
+    print(collect(default_root(args.root), args.study))
+    return EXIT_OK
+
+
+_COMMANDS = {"run": _run, "check": _check, "submit": _submit, "work": _work, "status": _status,
+             "retry": _retry_or_cancel, "cancel": _retry_or_cancel, "collect": _collect}
 
 if __name__ == "__main__":  # pragma: no cover
     sys.exit(main())

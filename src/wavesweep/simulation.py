@@ -8,6 +8,8 @@ and density every ``record.snapshot_every``, and writes the result through
 """
 from __future__ import annotations
 
+import functools
+import logging
 import math
 import os
 import sys
@@ -18,11 +20,13 @@ import numpy as np
 
 from . import __version__
 from .absorbers.layers import Absorber
-from .absorbers.tuning import tune_cap_strength
-from .errors import JobError, RunFailed
+from .absorbers.tuning import tune_cap_strength as _tune_cap_strength
+from .errors import JobError, RunFailed, RunInterrupted
 from .fft import make_transform
 from .grid import Axis, Grid
 from .hamiltonian import Hamiltonian
+from .io.checkpoint import (CheckpointCorrupt, CheckpointMismatch, CheckpointState, CheckpointStore,
+                            ResultExists, result_complete)
 from .io.recorder import ResultWriter
 from .jobfile import Job, grid_axes, load_job
 from .observables import Detector, Observer
@@ -32,6 +36,15 @@ from .schema import Field, to_atomic
 from .states import PACKET_SCHEMAS, build_state, central_momenta, momentum_spread
 
 __all__ = ["Setup", "Simulation", "run_job"]
+
+
+@functools.lru_cache(maxsize=512)
+def tune_cap_strength(thickness, mass, e_min, e_max, power, periodic=False):
+    """Cached: both faces of an axis, and the runs of a study, often ask for
+    the same layer (a tuning costs about 0.3 s)."""
+    return _tune_cap_strength(thickness, mass, e_min, e_max, power, periodic=periodic)
+
+_log = logging.getLogger(__name__)
 
 AXIS_LONG = {"x": "position x", "y": "position y", "z": "position z", "r": "radius r"}
 
@@ -275,53 +288,172 @@ class Simulation:
         replaces its own file."""
         return Path(outdir) / f"{self.job.name}-{self.job.run_id}.nc"
 
-    def run(self, outdir=None, path=None, progress: bool = True, on_sample=None) -> Path:
+    def run(self, outdir=None, path=None, progress: bool = True, on_sample=None,
+            checkpoint=None, should_stop=None) -> Path:
         """Propagate and write the result; returns the file path.
 
         ``on_sample(step, total, rate)`` is called after every sample (for
-        queue progress).  Raises :class:`RunFailed` on numerical failure (the
-        partial file is removed)."""
+        queue progress; ``rate`` is steps per second of this session).
+        Raises :class:`RunFailed` on numerical failure (the partial file is
+        removed).
+
+        ``checkpoint``, a :class:`~wavesweep.io.checkpoint.CheckpointPolicy`,
+        makes the run crash-safe: it resumes from the policy's checkpoint if
+        there is one of this job (one of another job is refused with
+        :class:`~wavesweep.io.checkpoint.CheckpointMismatch`; an unreadable
+        one is discarded with a warning and the run starts from scratch),
+        saves a checkpoint at a sample boundary every
+        ``checkpoint.every_seconds`` of wall time, and deletes it when the run
+        completes.  With a policy, an existing finished result at the output
+        path is never overwritten
+        (:class:`~wavesweep.io.checkpoint.ResultExists`).
+
+        ``should_stop()`` is asked after every sample before the last; when
+        it returns True the run saves a checkpoint (if it has a policy) and
+        raises :class:`~wavesweep.errors.RunInterrupted` with the
+        checkpoint's path (None without a policy) and the step reached."""
         s = self.setup
         path = Path(path) if path else self.output_path(outdir)
         _check_writable(path.parent)
+        store = resume = None
+        if checkpoint is not None:
+            store = CheckpointStore(checkpoint)
+            if result_complete(path):
+                self._discard_own_checkpoint(store)
+                raise ResultExists(path)
+            resume = self._load_checkpoint(store)
         prop = s.make_propagator()
         observer = s.make_observer()
-        u = s.units
-        tf, lf = u.factor("time"), u.factor("length")
-        writer = ResultWriter(path, self._layout(), self._attrs())
-        psi = s.psi0.astype(s.dtype)
+        lf = s.units.factor("length")
         conv = self._converters()
-        wall0 = _time.perf_counter()
+        if resume is None:
+            writer = ResultWriter(path, self._layout(), self._attrs())
+            psi = s.psi0.astype(s.dtype)
+            wall_before = 0.0
+        else:
+            writer = ResultWriter.resume(path, self._layout(), resume.result_copy, resume.n_time,
+                                         resume.n_snap, attrs=self._attrs())
+            psi = np.array(resume.psi, dtype=s.dtype, copy=True)
+            prop.steps_done = resume.steps
+            prop.absorbed[:] = resume.absorbed
+            wall_before = resume.wall_seconds
+        wall0 = last_checkpoint = _time.perf_counter()
+        done = start = int(prop.steps_done)
         bar = _progress(s.total_steps, progress, self.job.name)
+        if bar is not None and done:
+            bar.update(done)
         try:
-            self._sample(writer, observer, prop, psi, conv)
-            writer.add_snapshot(0.0, self._density(psi))
-            done = 0
+            if resume is None:
+                self._sample(writer, observer, prop, psi, conv)
+                writer.add_snapshot(0.0, self._density(psi))
             while done < s.total_steps:
                 n = min(s.sample_steps, s.total_steps - done)
                 psi = prop.step(psi, n)
                 done += n
-                values = self._sample(writer, observer, prop, psi, conv)
-                self._health(values, prop, done)
-                if done % s.snapshot_steps == 0:
-                    writer.add_snapshot(prop.t / tf, self._density(psi))
+                self._record(writer, observer, prop, psi, conv, done)
                 if bar is not None:
                     bar.update(n)
                 if on_sample is not None:
                     elapsed = _time.perf_counter() - wall0
-                    on_sample(done, s.total_steps, done / elapsed if elapsed > 0 else 0.0)
+                    on_sample(done, s.total_steps, (done - start) / elapsed if elapsed > 0 else 0.0)
+                if done >= s.total_steps:
+                    break
+                if should_stop is not None and should_stop():
+                    saved = None
+                    if store is not None:
+                        saved = self._checkpoint(store, writer, prop, psi,
+                                                 wall_before + _time.perf_counter() - wall0, reopen=False)
+                    raise RunInterrupted(saved, done)
+                now = _time.perf_counter()
+                if store is not None and now - last_checkpoint >= checkpoint.every_seconds:
+                    self._checkpoint(store, writer, prop, psi, wall_before + now - wall0)
+                    last_checkpoint = _time.perf_counter()
             if s.job.table["record"]["final_state"]:
                 writer.set_final_state(np.asarray(psi, np.complex128) * lf ** (s.grid.ndim / 2))
-            wall = _time.perf_counter() - wall0
-            out = writer.close({"steps": int(prop.steps_done), "wall_seconds": float(wall)})
-        except BaseException:
+            wall = wall_before + _time.perf_counter() - wall0
+            try:
+                out = writer.close({"steps": int(prop.steps_done), "wall_seconds": float(wall)},
+                                   replace=store is None)
+            except FileExistsError:   # another worker finished this run meanwhile
+                raise ResultExists(path) from None
+        except BaseException as e:
             writer.abort()
+            if store is not None and isinstance(e, (RunFailed, ResultExists)):
+                store.discard()   # a failed or finished run has nothing to resume
             raise
         finally:
             if bar is not None:
                 bar.close()
+        if store is not None:
+            store.discard()
         self.psi = psi
         return out
+
+    def _record(self, writer, observer, prop, psi, conv, done) -> None:
+        """The sample (and snapshot, when due) after ``done`` steps."""
+        s = self.setup
+        values = self._sample(writer, observer, prop, psi, conv)
+        self._health(values, prop, done)
+        if done % s.snapshot_steps == 0:
+            writer.add_snapshot(prop.t / s.units.factor("time"), self._density(psi))
+
+    def _expected_position(self, steps: int) -> tuple[int, int]:
+        """(samples, snapshots) the loop has written after ``steps`` steps
+        (a sample boundary before the end)."""
+        s = self.setup
+        k = steps // s.sample_steps
+        # sample j is a snapshot when j * sample_steps is a multiple of snapshot_steps
+        period = s.snapshot_steps // math.gcd(s.sample_steps, s.snapshot_steps)
+        return k + 1, 1 + k // period
+
+    def _checkpoint(self, store, writer, prop, psi, wall: float, reopen: bool = True) -> Path:
+        n_time, n_snap = writer.position
+        state = CheckpointState(run_id=self.job.run_id, steps=int(prop.steps_done),
+                                absorbed=prop.absorbed.copy(), n_time=n_time, n_snap=n_snap,
+                                wall_seconds=float(wall), psi=np.asarray(psi),
+                                extra={"job_name": self.job.name, "total_steps": int(self.setup.total_steps),
+                                       "scheme": self.setup.scheme.name,
+                                       "wavesweep_version": __version__})
+        return store.save(state, writer, reopen=reopen)
+
+    def _load_checkpoint(self, store):
+        """The checkpoint to resume from, or None (none there, or unusable:
+        discarded with a warning, and the run starts from scratch)."""
+        s = self.setup
+        try:
+            state = store.load(self.job.run_id)
+            if state is None:
+                return None
+            n_faces = len(s.absorber.layers) if s.absorber.active else 0
+            if state.psi.shape != tuple(s.grid.shape) or state.psi.dtype != np.dtype(s.dtype):
+                raise CheckpointCorrupt(f"psi is {state.psi.dtype} {state.psi.shape}, the job needs "
+                                        f"{np.dtype(s.dtype)} {tuple(s.grid.shape)}")
+            if state.absorbed.shape != (n_faces,):
+                raise CheckpointCorrupt(f"{state.absorbed.size} absorbed values for {n_faces} faces")
+            if not (0 < state.steps < s.total_steps and state.steps % s.sample_steps == 0):
+                raise CheckpointCorrupt(f"step {state.steps} is not a sample boundary inside the run")
+            if (state.n_time, state.n_snap) != self._expected_position(state.steps):
+                raise CheckpointCorrupt(f"{state.n_time} samples and {state.n_snap} snapshots do not "
+                                        f"match step {state.steps}")
+        except CheckpointCorrupt as e:
+            _log.warning("unusable checkpoint %s (%s); starting %s from scratch", store.path, e, self.job.name)
+            store.discard()
+            return None
+        _log.info("resuming %s from %s at step %d of %d", self.job.name, store.path, state.steps,
+                  s.total_steps)
+        return state
+
+    def _discard_own_checkpoint(self, store) -> None:
+        """A finished result is there: a checkpoint of this run left behind
+        (a kill between the result's rename and the clean-up) is stale, and
+        so is an unreadable one; a checkpoint of another run is left alone."""
+        try:
+            store.load(self.job.run_id)
+        except CheckpointMismatch:
+            return
+        except CheckpointCorrupt:
+            pass
+        store.discard()
 
     # -- helpers ---------------------------------------------------------------
     def _converters(self):

@@ -6,12 +6,19 @@ grow with the duration.  The file is written under a temporary name in the
 output folder, flushed, fsync'ed and renamed into place when complete (an
 HDF5 file cut off mid-write can be unreadable, so a reader never sees one).
 
+For checkpoints (:mod:`wavesweep.io.checkpoint`) the writer can close its
+partial file, copy it away (fsync'ed, renamed into place) and reopen it for
+append (:meth:`ResultWriter.save_copy`), and a resumed run starts a writer
+from such a copy at the recorded position (:meth:`ResultWriter.resume`).
+
 All values are written in the job's units; every coordinate and variable has
 ``units`` and ``long_name`` attributes (CF conventions).
 """
 from __future__ import annotations
 
+import errno
 import os
+import shutil
 from pathlib import Path
 
 import netCDF4
@@ -19,27 +26,70 @@ import numpy as np
 
 from ..errors import JobError
 
-__all__ = ["ResultWriter", "atomic_rename"]
+__all__ = ["ResultWriter", "atomic_rename", "copy_file", "fsync_folder"]
 
 SCALARS = ("norm", "x_mean", "x_std", "p_mean", "energy")
 
 
-def atomic_rename(tmp: Path, final: Path) -> None:
-    """fsync ``tmp``, rename it to ``final`` and fsync the folder."""
-    fd = os.open(tmp, os.O_RDONLY)
+def fsync_folder(folder: Path) -> None:
+    """fsync a folder (its entries: renames, new and deleted files)."""
     try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-    os.replace(tmp, final)
-    try:
-        dfd = os.open(final.parent, os.O_RDONLY)
+        dfd = os.open(folder, os.O_RDONLY)
         try:
             os.fsync(dfd)
         finally:
             os.close(dfd)
     except OSError:  # some filesystems do not fsync folders
         pass
+
+
+def atomic_rename(tmp: Path, final: Path, replace: bool = True) -> None:
+    """fsync ``tmp``, rename it to ``final`` and fsync the folder.
+
+    With ``replace=False`` an existing ``final`` is never replaced: the file
+    is hard-linked into place (which fails atomically if the name exists) and
+    the temporary name removed; :class:`FileExistsError` if ``final`` exists.
+    """
+    tmp, final = Path(tmp), Path(final)
+    fd = os.open(tmp, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+    if replace:
+        os.replace(tmp, final)
+    else:
+        try:
+            os.link(tmp, final)
+        except FileExistsError:
+            raise FileExistsError(errno.EEXIST, "a finished file is already there", str(final)) from None
+        except OSError:  # no hard links on this filesystem: check, then rename
+            if final.exists():
+                raise FileExistsError(errno.EEXIST, "a finished file is already there", str(final)) from None
+            os.replace(tmp, final)
+        else:
+            os.unlink(tmp)
+    fsync_folder(final.parent)
+
+
+def copy_file(src: Path, dst: Path) -> None:
+    """Copy ``src`` to ``dst`` in the kernel (``copy_file_range``: a
+    reflink on filesystems that have them), else with ``shutil``."""
+    try:
+        with open(src, "rb") as fin, open(dst, "wb") as fout:
+            n = os.fstat(fin.fileno()).st_size
+            done = 0
+            while done < n:
+                k = os.copy_file_range(fin.fileno(), fout.fileno(), n - done)
+                if k == 0:
+                    break
+                done += k
+            if done == n:
+                return
+    except (OSError, AttributeError):
+        pass
+    shutil.copyfile(src, dst)
+
 
 
 class ResultWriter:
@@ -67,17 +117,52 @@ class ResultWriter:
         self._buf: list[dict] = []
         self._n_time = 0
         self._n_snap = 0
-        try:
-            ds = netCDF4.Dataset(self.tmp, "w", format="NETCDF4")
-        except OSError as e:  # permissions, a full disk, a folder that vanished
-            raise JobError("--output", f"cannot write {str(self.tmp.parent)!r}: "
-                                       f"{e.strerror or e}; choose another folder with -o") from None
-        self.ds = ds
+        self.ds = self._open("w")
         try:
             self._define(layout, attrs)
         except Exception:
             self.abort()
             raise
+
+    @classmethod
+    def resume(cls, path, layout: dict, source, n_time: int, n_snap: int,
+               attrs: dict | None = None) -> "ResultWriter":
+        """A writer continuing from ``source``, a copy of the partial file
+        taken at a checkpoint that held ``n_time`` samples and ``n_snap``
+        snapshots: the copy becomes the temporary file again, opened for
+        append at that position (later writes overwrite anything beyond).
+        ``attrs`` (the global attributes of the job that continues it)
+        are written again."""
+        self = cls.__new__(cls)
+        self.path = Path(path)
+        self.tmp = self.path.with_name(f".{self.path.name}.part")
+        self.layout = layout
+        self._buf = []
+        self._n_time = int(n_time)
+        self._n_snap = int(n_snap)
+        try:
+            copy_file(Path(source), self.tmp)
+        except OSError as e:
+            raise JobError("--output", f"cannot write {str(self.tmp.parent)!r}: "
+                                       f"{e.strerror or e}; choose another folder with -o") from None
+        self.ds = self._open("a")
+        if attrs:
+            self.ds.setncatts({k: v for k, v in attrs.items() if v is not None})
+        return self
+
+    def _open(self, mode: str):
+        try:
+            if mode == "w":
+                return netCDF4.Dataset(self.tmp, "w", format="NETCDF4")
+            return netCDF4.Dataset(self.tmp, mode)
+        except OSError as e:  # permissions, a full disk, a folder that vanished
+            raise JobError("--output", f"cannot write {str(self.tmp.parent)!r}: "
+                                       f"{e.strerror or e}; choose another folder with -o") from None
+
+    @property
+    def position(self) -> tuple[int, int]:
+        """(scalar samples, snapshots) written or buffered so far."""
+        return self._n_time + len(self._buf), self._n_snap
 
     # -- layout ------------------------------------------------------------
     def _define(self, lay, attrs):
@@ -197,13 +282,34 @@ class ResultWriter:
             self.ds["psi_real"][:] = psi.real
             self.ds["psi_imag"][:] = psi.imag
 
-    def close(self, attrs: dict | None = None) -> Path:
-        """Write the closing attributes, close and move into place."""
+    def save_copy(self, dest: Path, tmp: Path | None = None, reopen: bool = True) -> int:
+        """Flush the sample buffer, close the file and copy it to ``dest``
+        (written as ``tmp``, fsync'ed and renamed: ``dest`` is complete or
+        absent); reopen for append unless ``reopen`` is False.  Returns the
+        size of the copy in bytes."""
+        dest = Path(dest)
+        tmp = Path(tmp) if tmp is not None else dest.with_name(f".{dest.name}.tmp")
+        self.flush()
+        self.ds.close()
+        try:
+            copy_file(self.tmp, tmp)
+            size = tmp.stat().st_size
+            atomic_rename(tmp, dest)
+        finally:
+            if reopen:
+                self.ds = self._open("a")
+        return size
+
+    def close(self, attrs: dict | None = None, replace: bool = True) -> Path:
+        """Write the closing attributes, close and move into place.  With
+        ``replace=False`` an existing final file is left alone and
+        :class:`FileExistsError` raised (the temporary file stays, for
+        :meth:`abort`)."""
         self.flush()
         if attrs:
             self.ds.setncatts({k: v for k, v in attrs.items() if v is not None})
         self.ds.close()
-        atomic_rename(self.tmp, self.path)
+        atomic_rename(self.tmp, self.path, replace=replace)
         return self.path
 
     def abort(self) -> None:

@@ -1,0 +1,106 @@
+"""Study operations as library calls (the CLI's submit/work/status/retry/
+cancel/collect only parse arguments and call these)."""
+from __future__ import annotations
+
+import os
+import time
+from datetime import datetime, timedelta
+from pathlib import Path
+
+from ..errors import JobError
+
+__all__ = ["default_root", "submit", "work", "status", "format_status", "parse_until"]
+
+
+def default_root(root=None) -> Path:
+    """ROOT: the argument, else ``$WAVESWEEP_ROOT``, else ``./wavesweep-runs``."""
+    return Path(root or os.environ.get("WAVESWEEP_ROOT") or "wavesweep-runs")
+
+
+def submit(job_path, root=None, study: str | None = None, overrides=()) -> dict:
+    """Validate every run of a job file's study and queue the new ones.
+    Nothing is queued when any run is invalid (a JobError)."""
+    from .queue import Queue
+    from .sweep import load_study
+
+    st = load_study(job_path, overrides, name=study)
+    counts = Queue(default_root(root)).submit(st)
+    return {"study": st.name, "runs": len(st.runs), **counts}
+
+
+def parse_until(text: str | None, now: datetime | None = None) -> float | None:
+    """``--until``: ``HH:MM`` is the next such time (at 23:00, 07:00 means
+    tomorrow morning); an ISO date-time (``2026-12-02T07:00``) is taken as
+    written, so it may lie in the past.  Returns epoch seconds."""
+    if text is None:
+        return None
+    now = now or datetime.now()
+    try:
+        hh, mm = text.split(":")
+        if len(hh) <= 2 and len(mm) == 2:
+            target = now.replace(hour=int(hh), minute=int(mm), second=0, microsecond=0)
+            if target <= now:
+                target += timedelta(days=1)
+            return target.timestamp()
+    except ValueError:
+        pass
+    try:
+        return datetime.fromisoformat(text).timestamp()
+    except ValueError:
+        raise JobError("--until", f"{text!r} is not HH:MM or a date-time like 2026-12-02T07:00") from None
+
+
+def work(root=None, workers: int = 1, until: str | None = None, executor="local", **settings) -> dict:
+    """Drain the queue at ROOT with an executor (by name or class)."""
+    from .executors import EXECUTORS, WorkerSettings
+
+    if workers < 1:
+        raise JobError("--workers", f"must be at least 1, got {workers}")
+    root = default_root(root)
+    if not (root / "queue.sqlite").exists():
+        raise JobError("--root", f"no queue at {str(root)!r}; submit a study first (wavesweep submit JOB --root ...)")
+    deadline = parse_until(until)
+    cls = EXECUTORS[executor] if isinstance(executor, str) else executor
+    ex = cls(root, workers=workers, settings=WorkerSettings(until=deadline, **settings))
+    return ex.drain()
+
+
+def status(root=None, verify: bool = True) -> dict:
+    from .queue import Queue
+
+    root = default_root(root)
+    if not (root / "queue.sqlite").exists():
+        raise JobError("--root", f"no queue at {str(root)!r}")
+    return Queue(root).status(verify=verify)
+
+
+def _eta(seconds) -> str:
+    if seconds is None:
+        return "?"
+    seconds = int(seconds)
+    return f"{seconds // 3600}h{seconds % 3600 // 60:02d}m" if seconds >= 3600 else f"{seconds // 60}m{seconds % 60:02d}s"
+
+
+def format_status(st: dict) -> str:
+    """Human-readable status: counts per study, then running and failed runs."""
+    lines = []
+    states = ("queued", "running", "done", "failed", "cancelled")
+    lines.append(f"{'study':<24}" + "".join(f"{s:>10}" for s in states))
+    for name, counts in sorted(st["studies"].items()):
+        lines.append(f"{name:<24}" + "".join(f"{counts.get(s, 0):>10}" for s in states))
+    running = [r for r in st["runs"] if r["state"] == "running"]
+    if running:
+        lines.append("")
+        lines.append("running:")
+        for r in running:
+            step, total = r.get("step") or 0, r.get("total") or 0
+            pct = f"{100 * step / total:5.1f}%" if total else "   ?  "
+            rate = f"{r['rate']:.0f} steps/s" if r.get("rate") else "? steps/s"
+            lines.append(f"  {r['study']}/{r['run_id']}  {pct}  {rate}  eta {_eta(r.get('eta_seconds'))}")
+    failed = [r for r in st["runs"] if r["state"] == "failed"]
+    if failed:
+        lines.append("")
+        lines.append("failed:")
+        for r in failed:
+            lines.append(f"  {r['study']}/{r['run_id']}  {r.get('reason') or ''}")
+    return "\n".join(lines)

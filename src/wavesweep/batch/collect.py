@@ -1,0 +1,582 @@
+"""One dataset per study: the runs' results side by side, parameters as dimensions.
+
+:func:`collect` reads ``ROOT/STUDY/study.json`` (the manifest written on
+submit, possibly the union of several submissions) and the finished runs'
+results ``ROOT/STUDY/RUN_ID.nc``, and writes ``ROOT/STUDY/summary.nc``.
+
+Layout of ``summary.nc``
+------------------------
+* ``grid`` mode: each swept job field is a dimension, named by the last part
+  of its dotted key (``potential.0.height`` -> ``height``; when two keys end
+  alike, or the name is taken or starts with a digit, more parts are used:
+  ``packet_width``, ``potential_0_width``).  Numeric values are sorted (so
+  line plots against them are lines); other values keep their order.  The
+  coordinate carries ``sweep_key`` (the dotted key), ``units`` (the job's
+  unit of that field) and ``long_name``.
+* ``zip`` mode: one dimension ``run`` (the manifest's order) with every swept
+  field a coordinate along it.
+
+Variables, with ``P`` the parameter dimensions (or ``run``):
+
+=================  ==========================  ==========================================
+``norm``           P, time                     probability on the grid
+``absorbed``       P, time, boundary           probability removed at each face, cumulative
+``flux``           P, time, detector           probability current through each detector
+``final_norm``     P                           norm at the run's own last sample
+``final_absorbed`` P, boundary                 absorbed at the run's own last sample
+``final_time``     P                           time of the run's last sample
+``wall_seconds``   P                           wall-clock time of the run
+``run_id``         P                           id of the result found ("" if none)
+``expected_run_id`` P                          id the manifest plans there ("" if none)
+``has_result``     P                           1 where a result was found, else 0
+=================  ==========================  ==========================================
+
+A point without a result (queued, running, failed, or never planned in a
+union of submissions that does not fill the grid) is NaN everywhere, with
+``run_id = ""`` and ``has_result = 0``.
+
+Time alignment: ``time`` is the union of all runs' sample times (times closer
+than 1e-9 of the largest time are one sample, so rounding in ``n * dt`` does not
+split a sample in two).  A run has NaN at the times it did not sample, e.g.
+after its end when the duration is swept; ``final_*`` hold each run's own last
+sample.  The ``boundary`` and ``detector`` coordinates are likewise unions.
+
+Everything is in the job's units (the runs of a study must share one unit set);
+every coordinate and variable has ``units`` and ``long_name`` (CF-1.8).
+The file is written under a temporary name, fsync'ed and renamed into place.
+"""
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import os
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+from .. import __version__
+from ..errors import JobError
+from ..io.recorder import atomic_rename
+from ..jobfile import ABSORBER, AXIS, EVOLVE, PARTICLE, RECORD
+from ..potentials import term_class
+from ..schema import Field
+from ..states import PACKET_SCHEMAS
+from ..units import KINDS, UnitSet
+
+__all__ = ["collect", "SUMMARY_NAME", "MANIFEST_NAME"]
+
+MANIFEST_NAME = "study.json"
+SUMMARY_NAME = "summary.nc"
+UNIT_ATTRS = ("units_length", "units_energy", "units_time", "units_mass")
+TIME_MERGE = 1e-9          # relative to the largest |time|: samples this close are one
+_BASE_KINDS = {"length", "energy", "time", "mass"}
+_RESERVED = {"time", "boundary", "detector", "detector_x", "run", "norm", "absorbed", "flux",
+             "final_norm", "final_absorbed", "final_time", "wall_seconds", "run_id",
+             "expected_run_id", "has_result"}
+
+
+@dataclass
+class _Result:
+    """What collect takes from one run's result file (job units)."""
+
+    run_id: str
+    time: np.ndarray
+    norm: np.ndarray
+    absorbed: dict          # face -> array over time
+    flux: dict              # detector -> array over time
+    detector_x: dict        # detector -> position
+    wall_seconds: float
+    unit_attrs: dict
+    var_units: dict         # "time", "flux" -> units attribute
+    job: dict = field(default_factory=dict)
+
+
+@dataclass
+class _Param:
+    key: str                # dotted job path
+    name: str = ""          # coordinate / dimension name
+    units: str = "1"
+    description: str = ""
+    kind: str | None = None
+    values: list = field(default_factory=list)
+
+
+# -- entry point -------------------------------------------------------------------
+def collect(root, study: str) -> Path:
+    """Collect the finished runs of ``study`` under ``root`` into
+    ``ROOT/STUDY/summary.nc`` and return its path.
+
+    Raises :class:`~wavesweep.errors.JobError` when the study was never
+    submitted (the message lists the submitted ones) or none of its runs has
+    a result yet.
+    """
+    root = Path(root)
+    folder = _study_folder(root, study)
+    manifest = _read_manifest(folder / MANIFEST_NAME)
+    mode = manifest["mode"]
+    runs = manifest["runs"]
+    notes: list[str] = []
+
+    results = {}
+    for run in runs:
+        path = folder / f"{run['run_id']}.nc"
+        if path.is_file():
+            try:
+                result = _read_result(path)
+            except Exception as e:   # a foreign or damaged file is a missing run, not a crash
+                notes.append(f"{path.name} is unreadable ({type(e).__name__}: {e}); counted as missing")
+                continue
+            if result.run_id != run["run_id"]:
+                notes.append(f"{path.name} says it is run {result.run_id}")
+            results[run["run_id"]] = result
+    if not results:
+        raise JobError("", f"study {study!r} has no finished run yet: none of its {len(runs)} runs "
+                           f"has a result in {str(folder)!r}; run `wavesweep work --root {root}` "
+                           "and see `wavesweep status`")
+    first = next(iter(results.values()))
+    _check_one_unit_set(study, results)
+    units = UnitSet.from_table(first.job.get("units"))
+
+    params = _params(manifest, runs, first, units)
+    for p in params:   # a key that a submission did not sweep: its value is in the run's job
+        for run in runs:
+            if p.key not in run["params"] and run["run_id"] in results:
+                value = _get_dotted(results[run["run_id"]].job, p.key)
+                if value is not None:
+                    run["params"][p.key] = value
+    _name_params(params)
+
+    times = _time_union([r.time for r in results.values()])
+    faces = _union([list(r.absorbed) for r in results.values()])
+    detectors = _union([list(r.flux) for r in results.values()])
+
+    if mode == "grid":
+        shape, where = _grid_cells(params, manifest["axes"], runs, results, units, notes)
+        pdims = [p.name for p in params]
+    else:
+        shape, where = (len(runs),), {(i,): run for i, run in enumerate(runs)}
+        pdims = ["run"]
+        for p in params:
+            p.values = [_convert(p, run["params"][p.key], units) if p.key in run["params"] else None
+                        for run in runs]
+
+    data = _fill(shape, where, results, times, faces, detectors)
+    ds = _dataset(data, params, pdims, mode, times, faces, detectors, results, first)
+    found = sum(1 for run in where.values() if run["run_id"] in results)
+    missing = [run["run_id"] for run in runs if run["run_id"] not in results]
+    ds.attrs = _global_attrs(manifest, study, first, found, len(runs), missing, params, notes)
+    return _write(ds, folder / SUMMARY_NAME)
+
+
+# -- the study on disk -----------------------------------------------------------------
+def _submitted(root: Path) -> list[str]:
+    if not root.is_dir():
+        return []
+    return sorted(p.name for p in root.iterdir() if (p / MANIFEST_NAME).is_file())
+
+
+def _study_folder(root: Path, study: str) -> Path:
+    if not isinstance(study, str) or not study or Path(study).name != study or study in (".", ".."):
+        raise JobError("study", f"{study!r} is not a study name (a folder name under the root, "
+                                "e.g. 'barrier-scan')")
+    folder = root / study
+    if not (folder / MANIFEST_NAME).is_file():
+        names = _submitted(root)
+        where = f"in {str(root)!r}" if root.is_dir() else f"(the root {str(root)!r} does not exist)"
+        raise JobError("", f"no such study {study!r} {where}; submitted studies: "
+                           f"{', '.join(names) if names else 'none'}")
+    return folder
+
+
+def _read_manifest(path: Path) -> dict:
+    bad = f"{str(path)!r} is not a study manifest"
+    try:
+        m = json.loads(path.read_text())
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as e:
+        raise JobError("", f"{bad}: {e}") from None
+    if not isinstance(m, dict) or not isinstance(m.get("runs"), list):
+        raise JobError("", f"{bad}: it has no list of runs")
+    mode = m.get("mode", "grid")
+    if mode not in ("grid", "zip"):
+        raise JobError("", f"{bad}: mode {mode!r} is not 'grid' or 'zip'")
+    axes = m.get("axes") or {}
+    if not isinstance(axes, dict):
+        raise JobError("", f"{bad}: axes must be a table of dotted keys")
+    runs, seen = [], set()
+    for i, run in enumerate(m["runs"]):
+        if not isinstance(run, dict) or not isinstance(run.get("run_id"), str) or not run["run_id"]:
+            raise JobError("", f"{bad}: run {i} has no run_id")
+        if run["run_id"] in seen:      # the same physics submitted twice
+            continue
+        seen.add(run["run_id"])
+        runs.append({"run_id": run["run_id"], "params": dict(run.get("params") or {})})
+    return {**m, "mode": mode, "axes": axes, "runs": runs}
+
+
+def _read_result(path: Path) -> _Result:
+    with xr.open_dataset(path, engine="netcdf4") as ds:
+        time = np.asarray(ds["time"].values, float)
+        faces = [str(b) for b in ds["boundary"].values] if "boundary" in ds.coords else []
+        dets = [str(d) for d in ds["detector"].values] if "detector" in ds.coords else []
+        absorbed = ds["absorbed"].values if faces else np.zeros((len(time), 0))
+        flux = ds["flux"].values if dets else np.zeros((len(time), 0))
+        det_x = ds["detector_x"].values if dets and "detector_x" in ds else [np.nan] * len(dets)
+        attrs = dict(ds.attrs)
+        result = _Result(
+            run_id=str(attrs.get("run_id", path.stem)),
+            time=time,
+            norm=np.asarray(ds["norm"].values, float),
+            absorbed={f: np.asarray(absorbed[:, i], float) for i, f in enumerate(faces)},
+            flux={d: np.asarray(flux[:, i], float) for i, d in enumerate(dets)},
+            detector_x={d: float(det_x[i]) for i, d in enumerate(dets)},
+            wall_seconds=float(attrs.get("wall_seconds", np.nan)),
+            unit_attrs={k: str(attrs[k]) for k in UNIT_ATTRS if k in attrs},
+            var_units={"time": ds["time"].attrs.get("units", ""),
+                       "flux": ds["flux"].attrs.get("units", "")},
+            job=tomllib.loads(attrs["job"]) if "job" in attrs else {},
+        )
+    if len(result.time) == 0:
+        raise ValueError("it holds no samples")
+    return result
+
+
+def _check_one_unit_set(study, results) -> None:
+    sets = {}
+    for r in results.values():
+        sets.setdefault(tuple(sorted(r.unit_attrs.items())), r.run_id)
+    if len(sets) > 1:
+        shown = "; ".join(f"{rid}: " + ", ".join(f"{k[6:]}={v}" for k, v in key)
+                          for key, rid in sets.items())
+        raise JobError("units", f"the runs of study {study!r} use different unit sets ({shown}); "
+                                "their numbers cannot share one dataset")
+
+
+# -- the swept parameters -----------------------------------------------------------------
+def _params(manifest, runs, first: _Result, units: UnitSet) -> list[_Param]:
+    keys = list(manifest["axes"])
+    for run in runs:
+        keys += [k for k in run["params"] if k not in keys]
+    out = []
+    for key in keys:
+        f = _field_of(first.job, key)
+        p = _Param(key)
+        if f is None:
+            p.description = f"swept job field {key} (its unit is not known to wavesweep)"
+        else:
+            p.kind = f.kind
+            p.description = f.doc
+            if f.kind in KINDS and f.kind != "dimensionless":
+                attr = f"units_{f.kind}"
+                p.units = (first.unit_attrs.get(attr) if f.kind in _BASE_KINDS else None) \
+                    or units.unit_label(f.kind)
+        out.append(p)
+    return out
+
+
+def _field_of(job: dict, key: str) -> Field | None:
+    """The schema field a dotted job key points at (None if unknown)."""
+    parts = key.split(".")
+    try:
+        top, rest = parts[0], parts[1:]
+        if top in ("title", "units"):
+            return Field("str", doc="job title" if top == "title" else f"unit of {rest[0]}")
+        if top in ("particle", "evolve", "record", "absorber"):
+            return {"particle": PARTICLE, "evolve": EVOLVE, "record": RECORD,
+                    "absorber": ABSORBER}[top].get(rest[0])
+        if top == "grid":
+            if rest[0] in ("x", "y", "z", "r"):
+                return AXIS.get(rest[1])
+            return {"boundary": Field("str", doc="grid boundary"),
+                    "l": Field("int", doc="angular momentum quantum number")}.get(rest[0])
+        if top == "potential":
+            table = job["potential"][int(rest[0])]
+            if rest[1] == "kind":
+                return Field("str", doc="potential kind")
+            return term_class(table["kind"], key).parameters.get(rest[1])
+        if top == "packet":
+            table = job["packet"]
+            while rest[0] == "packets":
+                table, rest = table["packets"][int(rest[1])], rest[2:]
+            return PACKET_SCHEMAS[table.get("kind", "gaussian")].get(rest[0])
+        if top == "detector":
+            if rest[1] in ("x", "y", "z", "r"):
+                return Field("length", doc=f"detector position {rest[1]}")
+            return Field("str", doc="detector name")
+    except (KeyError, IndexError, ValueError, TypeError, JobError):
+        return None
+    return None
+
+
+def _get_dotted(table, key: str):
+    node = table
+    for part in key.split("."):
+        try:
+            node = node[int(part)] if isinstance(node, list) else node[part]
+        except (KeyError, IndexError, ValueError, TypeError):
+            return None
+    return node
+
+
+def _convert(p: _Param, value, units: UnitSet):
+    """A swept value as a coordinate value: a quantity in the job's unit (a
+    string like "3 nm" is converted), a plain scalar as is, a list as text."""
+    if isinstance(value, str) and p.kind in KINDS:
+        return units.to_atomic(value, p.kind, p.key) / units.factor(p.kind)
+    if isinstance(value, (list, dict)):
+        return json.dumps(value)
+    return value
+
+
+def _name_params(params: list[_Param]) -> None:
+    """Short unique names: the last key part, more parts on a clash."""
+    depth = {p.key: 1 for p in params}
+
+    def name(p):
+        parts = p.key.split(".")
+        return "_".join(parts[-depth[p.key]:])
+
+    for _ in range(64):
+        names = {p.key: name(p) for p in params}
+        counts = {}
+        for n in names.values():
+            counts[n] = counts.get(n, 0) + 1
+        bad = [p for p in params
+               if (counts[names[p.key]] > 1 or names[p.key] in _RESERVED or names[p.key][0].isdigit())
+               and depth[p.key] < len(p.key.split("."))]
+        if not bad:
+            break
+        for p in bad:
+            depth[p.key] += 1
+    taken = set()
+    for p in params:
+        n = name(p).replace("-", "_")
+        while n in taken or n in _RESERVED or n[0].isdigit():
+            n = f"param_{n}"
+        taken.add(n)
+        p.name = n
+
+
+def _coord_values(values: list) -> list:
+    uniq = []
+    for v in values:
+        if not any(_same(v, u) for u in uniq):
+            uniq.append(v)
+    if all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in uniq):
+        uniq.sort()
+    return uniq
+
+
+def _same(a, b) -> bool:
+    return type(a) is type(b) and a == b or (
+        isinstance(a, (int, float)) and isinstance(b, (int, float))
+        and not isinstance(a, bool) and not isinstance(b, bool) and float(a) == float(b))
+
+
+def _grid_cells(params, axes, runs, results, units, notes):
+    """Coordinate values of each parameter and the grid cell of each run."""
+    placed = []
+    for run in runs:
+        if all(p.key in run["params"] for p in params):
+            placed.append((run, [_convert(p, run["params"][p.key], units) for p in params]))
+        else:
+            lacking = [p.key for p in params if p.key not in run["params"]]
+            notes.append(f"run {run['run_id']} names no value for {', '.join(lacking)} and has no "
+                         "result to read it from; left out")
+    # an axis value without a run still gets its place (a NaN slice)
+    values = {p.key: [] for p in params}
+    for p in params:
+        for v in axes.get(p.key, []):
+            values[p.key].append(_convert(p, v, units))
+    for _, point in placed:
+        for p, v in zip(params, point):
+            values[p.key].append(v)
+    for p in params:
+        p.values = _coord_values(values[p.key])
+    where: dict = {}
+    for run, point in placed:
+        cell = tuple(next(i for i, u in enumerate(p.values) if _same(v, u))
+                     for p, v in zip(params, point))
+        old = where.get(cell)
+        if old is not None and (old["run_id"] in results and run["run_id"] not in results):
+            continue       # the point already has a result; keep it
+        if old is not None:
+            notes.append(f"runs {old['run_id']} and {run['run_id']} share the sweep point "
+                         f"{dict(zip([p.key for p in params], point))}; kept {run['run_id']}")
+        where[cell] = run
+    return tuple(len(p.values) for p in params), where
+
+
+# -- assembling ---------------------------------------------------------------------
+def _union(lists) -> list:
+    out = []
+    for names in lists:
+        out += [n for n in names if n not in out]
+    return out
+
+
+def _time_union(arrays) -> np.ndarray:
+    t = np.sort(np.concatenate(arrays))
+    tol = TIME_MERGE * max(float(np.max(np.abs(t))), 0.0)
+    keep = np.concatenate([[True], np.diff(t) > tol])
+    return t[keep]
+
+
+def _time_index(union: np.ndarray, t: np.ndarray) -> np.ndarray:
+    i = np.clip(np.searchsorted(union, t), 1, max(len(union) - 1, 1))
+    if len(union) == 1:
+        return np.zeros(len(t), int)
+    left = np.abs(t - union[i - 1]) <= np.abs(union[i] - t)
+    return np.where(left, i - 1, i)
+
+
+def _fill(shape, where, results, times, faces, detectors) -> dict:
+    nt, nb, nd = len(times), len(faces), len(detectors)
+    nan = np.nan
+    d = {
+        "norm": np.full(shape + (nt,), nan),
+        "absorbed": np.full(shape + (nt, nb), nan),
+        "flux": np.full(shape + (nt, nd), nan),
+        "final_norm": np.full(shape, nan),
+        "final_absorbed": np.full(shape + (nb,), nan),
+        "final_time": np.full(shape, nan),
+        "wall_seconds": np.full(shape, nan),
+        "run_id": np.full(shape, "", dtype=object),
+        "expected_run_id": np.full(shape, "", dtype=object),
+        "has_result": np.zeros(shape, np.int8),
+    }
+    for cell, run in where.items():
+        d["expected_run_id"][cell] = run["run_id"]
+        r = results.get(run["run_id"])
+        if r is None:
+            continue
+        it = _time_index(times, r.time)
+        d["norm"][cell][it] = r.norm
+        for j, face in enumerate(faces):
+            if face in r.absorbed:
+                d["absorbed"][cell][it, j] = r.absorbed[face]
+                d["final_absorbed"][cell][j] = r.absorbed[face][-1]
+        for j, det in enumerate(detectors):
+            if det in r.flux:
+                d["flux"][cell][it, j] = r.flux[det]
+        d["final_norm"][cell] = r.norm[-1]
+        d["final_time"][cell] = r.time[-1]
+        d["wall_seconds"][cell] = r.wall_seconds
+        d["run_id"][cell] = r.run_id
+        d["has_result"][cell] = 1
+    return d
+
+
+_META = {
+    "norm": ("1", "probability on the grid"),
+    "absorbed": ("1", "probability removed at the face, cumulative"),
+    "flux": (None, "probability current through the detector"),
+    "final_norm": ("1", "probability on the grid at the run's last sample"),
+    "final_absorbed": ("1", "probability removed at the face by the run's last sample"),
+    "final_time": (None, "time of the run's last sample"),
+    "wall_seconds": ("s", "wall-clock time of the run"),
+    "run_id": ("1", "id of the run whose result is here (empty: no result)"),
+    "expected_run_id": ("1", "id of the run the study manifest plans here (empty: none)"),
+    "has_result": ("1", "whether a result was found for this point"),
+}
+
+
+def _dataset(data, params, pdims, mode, times, faces, detectors, results, first) -> xr.Dataset:
+    units = UnitSet.from_table(first.job.get("units"))
+    tunit = first.var_units["time"] or first.unit_attrs.get("units_time", "")
+    funit = first.var_units["flux"] or f"{tunit}-1"
+    dims = {
+        "norm": pdims + ["time"], "absorbed": pdims + ["time", "boundary"],
+        "flux": pdims + ["time", "detector"], "final_absorbed": pdims + ["boundary"],
+    }
+    ds = xr.Dataset()
+    for name, values in data.items():
+        unit, long = _META[name]
+        unit = {"flux": funit, "final_time": tunit}.get(name, unit)
+        if values.dtype == object:
+            values = values.astype(str)
+        attrs = {"units": unit, "long_name": long}
+        if name == "has_result":
+            attrs.update(flag_values=np.array([0, 1], np.int8), flag_meanings="missing found")
+        ds[name] = xr.DataArray(values, dims=dims.get(name, pdims), attrs=attrs)
+    coords = {
+        "time": ("time", times, {"units": tunit, "long_name":
+                                 "time of the scalar samples (union over the runs)"}),
+        "boundary": ("boundary", np.array(faces, dtype=str),
+                     {"units": "1", "long_name": "absorbing face"}),
+        "detector": ("detector", np.array(detectors, dtype=str),
+                     {"units": "1", "long_name": "detector name"}),
+    }
+    positions = {}
+    for r in results.values():
+        for det, x in r.detector_x.items():
+            positions.setdefault(det, set()).add(x)
+    if all(len(v) == 1 for v in positions.values()):
+        coords["detector_x"] = ("detector", np.array([next(iter(positions[d])) for d in detectors], float),
+                                {"units": first.unit_attrs.get("units_length", units.unit_label("length")),
+                                 "long_name": "detector position along its axis"})
+    if mode == "zip":
+        coords["run"] = ("run", np.arange(data["has_result"].shape[0]),
+                         {"units": "1", "long_name": "index of the run in the study manifest"})
+    for p in params:
+        long = f"{p.description} ({p.key})" if p.kind is not None and p.description else p.key
+        attrs = {"units": p.units, "long_name": long, "sweep_key": p.key}
+        if p.kind is None:
+            attrs["comment"] = p.description
+        if mode == "grid":
+            coords[p.name] = (p.name, _array(p.values), attrs)
+        else:
+            coords[p.name] = ("run", _array(p.values), attrs)
+    return ds.assign_coords({k: xr.Variable(*v) for k, v in coords.items()})
+
+
+def _array(values) -> np.ndarray:
+    if all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in values if v is not None):
+        return np.array([np.nan if v is None else v for v in values],
+                        float if any(isinstance(v, float) or v is None for v in values) else int)
+    return np.array(["" if v is None else str(v) for v in values], dtype=str)
+
+
+def _global_attrs(manifest, study, first, found, expected, missing, params, notes) -> dict:
+    attrs = {
+        "title": f"study {study}: {first.job.get('title', '')}".rstrip(": "),
+        "study": study,
+        "sweep_mode": manifest["mode"],
+        "sweep_keys": " ".join(p.key for p in params),
+        "sweep_dimensions": " ".join(p.name for p in params) if manifest["mode"] == "grid" else "run",
+        "runs_found": int(found),
+        "runs_expected": int(expected),
+        "runs_missing": " ".join(missing),
+        **first.unit_attrs,
+        "time_alignment": ("time is the union of the runs' sample times (samples closer than "
+                           f"{TIME_MERGE:g} of the largest time are one); a run is NaN at times it "
+                           "did not sample; final_* hold each run's own last sample"),
+        "missing_values": "a point without a result is NaN in every variable, run_id empty, has_result 0",
+        "Conventions": "CF-1.8",
+        "wavesweep_version": __version__,
+        "history": f"{_dt.datetime.now(_dt.timezone.utc).isoformat(timespec='seconds')} "
+                   f"wavesweep collect {study}",
+    }
+    if manifest.get("source"):
+        attrs["source"] = str(manifest["source"])
+    if notes:
+        attrs["collect_notes"] = "; ".join(notes)
+    return attrs
+
+
+def _write(ds: xr.Dataset, path: Path) -> Path:
+    """Write under a temporary name, fsync, rename into place (a reader never
+    sees a half-written file, and a failed write leaves the old summary)."""
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.part")
+    try:
+        ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4")
+        atomic_rename(tmp, path)
+    except BaseException:
+        try:
+            tmp.unlink()
+        except FileNotFoundError:
+            pass
+        raise
+    return path

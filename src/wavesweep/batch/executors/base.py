@@ -1,0 +1,171 @@
+"""What every executor shares: running one claimed run of the queue.
+
+An executor drains the queue (:class:`wavesweep.batch.queue.Queue`) with some
+pool of workers.  Whatever the pool, one claimed run is executed by
+:func:`execute_claim`: it rebuilds the resolved job from the queue, runs it
+with checkpoints, reports progress through heartbeats, and ends the run in
+the queue as done, failed (with a one-line reason and the log), or released
+back to queued when it was asked to stop.
+
+To add an executor: subclass :class:`Executor`, implement ``drain()``, and
+make each worker call :func:`execute_claim` for every run it claims.
+"""
+from __future__ import annotations
+
+import os
+import threading
+import time
+import tomllib
+import traceback
+from dataclasses import dataclass
+from datetime import datetime
+from pathlib import Path
+
+from ...errors import JobError, RunFailed, RunInterrupted
+
+__all__ = ["Executor", "WorkerSettings", "execute_claim", "thread_environment"]
+
+
+@dataclass(frozen=True)
+class WorkerSettings:
+    """How workers behave (seconds of wall time)."""
+
+    lease_seconds: float = 60.0        # a heartbeat older than this means the worker died
+    heartbeat_seconds: float = 5.0
+    checkpoint_seconds: float = 300.0
+    max_attempts: int = 3
+    until: float | None = None         # epoch seconds: claim nothing new after this
+
+
+class Executor:
+    """Base class: ``drain()`` works the queue until it is empty, the
+    deadline passes, or a stop is requested; returns a summary dict."""
+
+    name = "base"
+
+    def __init__(self, root, settings: WorkerSettings | None = None):
+        self.root = Path(root)
+        self.settings = settings or WorkerSettings()
+
+    def drain(self) -> dict:
+        raise NotImplementedError
+
+
+def thread_environment(threads: int) -> dict:
+    """Environment for a worker process that may use ``threads`` cores: FFT
+    and numba threads follow it; BLAS stays single-threaded (numerics notes)."""
+    return {
+        "WAVESWEEP_THREADS": str(threads),
+        "NUMBA_NUM_THREADS": str(threads),
+        "OMP_NUM_THREADS": "1",
+        "OPENBLAS_NUM_THREADS": "1",
+        "MKL_NUM_THREADS": "1",
+    }
+
+
+def _log(path: Path, text: str) -> None:
+    with open(path, "a") as f:
+        f.write(f"{datetime.now().isoformat(timespec='seconds')} {text}\n")
+
+
+def _finish_log(part: Path, final: Path) -> None:
+    """The log of a finished (done or failed) run appears whole, by rename."""
+    try:
+        with open(part, "rb") as f:
+            os.fsync(f.fileno())
+        os.replace(part, final)
+    except FileNotFoundError:
+        pass
+
+
+def execute_claim(queue, claim: dict, worker: str, settings: WorkerSettings,
+                  stop_requested=lambda: False) -> str:
+    """Run one claimed run to its end in the queue; returns the new state
+    ("done", "failed", "queued").  Never raises for a run's own failure."""
+    from ...io.checkpoint import CheckpointPolicy
+    from ...jobfile import job_from_dict
+    from ...simulation import Simulation
+
+    study, run_id = claim["study"], claim["run_id"]
+    result = Path(claim["result"])
+    log_part = result.with_name(f"{run_id}.log.part")
+    log_final = Path(claim["log"])
+    result.parent.mkdir(parents=True, exist_ok=True)
+    _log(log_part, f"attempt {claim['attempt']} on {worker} (pid {os.getpid()})")
+
+    progress = {"step": 0, "total": None, "rate": None}
+    lost = threading.Event()
+    done = threading.Event()
+
+    def beat():
+        while not done.wait(settings.heartbeat_seconds):
+            if not queue.heartbeat(study, run_id, worker, progress["step"], progress["total"],
+                                   progress["rate"]):
+                lost.set()   # requeued or cancelled elsewhere: stop at the next sample
+                return
+
+    def on_sample(step, total, rate):
+        progress.update(step=step, total=total, rate=rate)
+
+    def should_stop():
+        past = settings.until is not None and time.time() >= settings.until
+        return stop_requested() or past or lost.is_set()
+
+    beater = threading.Thread(target=beat, name=f"heartbeat-{run_id}", daemon=True)
+    beater.start()
+    t0 = time.perf_counter()
+    try:
+        job = job_from_dict(tomllib.loads(claim["job_toml"]))
+        if job.run_id != run_id:
+            raise JobError("", f"the queued job text hashes to {job.run_id}, not {run_id}")
+        sim = Simulation(job)
+        sim.run(path=result, progress=False, on_sample=on_sample,
+                checkpoint=CheckpointPolicy(Path(claim["checkpoint"]), settings.checkpoint_seconds),
+                should_stop=should_stop)
+    except RunInterrupted as e:
+        done.set()
+        if lost.is_set():
+            _log(log_part, "stopped: the queue gave this run to another worker or cancelled it")
+            return "lost"
+        _log(log_part, f"interrupted at step {e.step}; checkpoint kept")
+        queue.release(study, run_id, worker, f"interrupted at step {e.step}")
+        return "queued"
+    except FileExistsError as e:   # ResultExists: another attempt finished it; never overwritten
+        done.set()
+        from ...io.checkpoint import ResultExists
+        if not isinstance(e, ResultExists):
+            return _fail(queue, claim, worker, f"{e.strerror or e}", log_part, log_final, done)
+        _log(log_part, "the result already exists; kept as it is")
+        _finish_log(log_part, log_final)
+        queue.complete(study, run_id, worker, time.perf_counter() - t0)
+        return "done"
+    except (RunFailed, JobError) as e:
+        return _fail(queue, claim, worker, str(e) if isinstance(e, JobError) else e.reason,
+                     log_part, log_final, done)
+    except MemoryError:
+        return _fail(queue, claim, worker, "out of memory", log_part, log_final, done)
+    except OSError as e:
+        where = f" ({e.filename})" if e.filename else ""
+        return _fail(queue, claim, worker, f"{e.strerror or e}{where}", log_part, log_final, done,
+                     traceback.format_exc())
+    except Exception as e:  # a bug: the run fails with its cause, the others go on
+        return _fail(queue, claim, worker, f"{type(e).__name__}: {e}", log_part, log_final, done,
+                     traceback.format_exc())
+    done.set()
+    wall = time.perf_counter() - t0
+    _log(log_part, f"done in {wall:.1f} s")
+    _finish_log(log_part, log_final)
+    queue.complete(study, run_id, worker, wall)
+    return "done"
+
+
+def _fail(queue, claim, worker, reason, log_part, log_final, done, trace=None) -> str:
+    done.set()
+    reason = " ".join(str(reason).split())   # one line
+    _log(log_part, f"failed: {reason}")
+    if trace:
+        with open(log_part, "a") as f:
+            f.write(trace)
+    _finish_log(log_part, log_final)
+    queue.fail(claim["study"], claim["run_id"], worker, reason)
+    return "failed"

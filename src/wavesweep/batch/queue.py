@@ -1,0 +1,770 @@
+"""The run queue: one SQLite database, ``ROOT/queue.sqlite``, that is the
+single source of truth of what every run of every study is doing.
+
+A run is one resolved job of a study, keyed by ``(study, run_id)``.  Its
+state is one of
+
+``queued`` -> ``running`` -> ``done`` | ``failed``;  ``queued`` -> ``cancelled``
+
+and back: a worker that is asked to stop *releases* its run (``queued``), a
+worker that stops heart-beating has its run requeued by
+:meth:`Queue.requeue_stale` (or failed after ``max_attempts`` deaths),
+:meth:`Queue.retry` puts failed, cancelled or done runs back in the queue.
+
+Files of a run live beside the database: ``ROOT/STUDY/RUN_ID.nc`` (result),
+``.log`` and ``.ckpt``; ``ROOT/STUDY/study.json`` is the study's manifest,
+the union of every submission of that study.
+
+Reliability
+-----------
+* WAL journal, ``synchronous=FULL`` for every state change: a committed
+  transition survives a power cut, and WAL never leaves a torn database.
+  Heartbeats (progress reports, not state changes) commit with
+  ``synchronous=NORMAL``: a power cut may lose the last few, which only
+  makes a dead worker look dead a little sooner.
+* Every transition is one short ``BEGIN IMMEDIATE`` transaction: the write
+  lock is taken before the read, so two workers can never both see the same
+  run as queued.  File work (linking reused results, opening result files to
+  verify them) happens outside transactions, except the few-hundred-byte
+  manifest write of ``submit``, which is serialised with its database
+  update on purpose.
+* A busy timeout makes concurrent processes wait for the lock instead of
+  failing.  Each process (and each thread: executors heart-beat from a
+  thread) opens its own connection; a Queue handed to a child process, by
+  fork or by pickling, reconnects there.
+* The database needs a local filesystem (WAL relies on shared memory
+  between the processes of one machine): on a cluster, let the processes
+  on the host that owns ROOT talk to the queue.
+
+Counters: ``attempts`` is the number of claims since the last retry that did
+not end in a release (so, while a run is queued or running, the number of
+times a worker died on it, plus the current one); ``executions`` counts
+every claim ever, for bookkeeping and tests.
+"""
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import sqlite3
+import threading
+import time
+from contextlib import contextmanager
+from datetime import datetime
+from pathlib import Path
+
+from ..errors import JobError
+
+__all__ = ["Queue", "STATES", "SCHEMA_VERSION", "check_result"]
+
+STATES = ("queued", "running", "done", "failed", "cancelled")
+SCHEMA_VERSION = 1
+DB_NAME = "queue.sqlite"
+REASON_CHARS = 500            # reasons are one line; a traceback belongs in the log
+_CHUNK = 500                  # ids per "IN (...)" query, well below SQLite's variable limit
+
+_SCHEMA = (
+    """CREATE TABLE IF NOT EXISTS studies (
+        name      TEXT PRIMARY KEY,
+        manifest  TEXT NOT NULL,          -- JSON: union of every submission
+        submitted REAL NOT NULL,          -- epoch seconds, first submission
+        updated   REAL NOT NULL           -- epoch seconds, last submission
+    )""",
+    f"""CREATE TABLE IF NOT EXISTS runs (
+        seq          INTEGER PRIMARY KEY, -- submission order, also the claim order
+        study        TEXT NOT NULL REFERENCES studies(name),
+        run_id       TEXT NOT NULL,
+        state        TEXT NOT NULL CHECK (state IN ({", ".join(f"'{s}'" for s in STATES)})),
+        job_toml     TEXT NOT NULL,       -- the complete resolved job
+        params       TEXT NOT NULL,       -- JSON: swept key -> value (job units)
+        attempts     INTEGER NOT NULL DEFAULT 0,
+        executions   INTEGER NOT NULL DEFAULT 0,
+        worker       TEXT,                -- who holds (or last held) it
+        heartbeat    REAL,                -- epoch seconds of the last report
+        step         INTEGER,
+        total        INTEGER,
+        rate         REAL,                -- steps per second
+        submitted    REAL NOT NULL,
+        started      REAL,
+        finished     REAL,
+        wall_seconds REAL,
+        reason       TEXT,                -- one line: why failed / requeued / released
+        reused_from  TEXT,                -- study whose result this done run shares
+        verified     TEXT,                -- stat signature of the result when last verified
+        UNIQUE (study, run_id)
+    )""",
+    "CREATE INDEX IF NOT EXISTS runs_by_state ON runs (state, seq)",
+    "CREATE INDEX IF NOT EXISTS runs_by_id ON runs (run_id, state)",
+    """CREATE TABLE IF NOT EXISTS events (
+        id     INTEGER PRIMARY KEY,
+        time   REAL NOT NULL,
+        study  TEXT NOT NULL,
+        run_id TEXT NOT NULL,
+        old    TEXT,                      -- NULL when the run was added
+        new    TEXT NOT NULL,
+        worker TEXT,
+        note   TEXT
+    )""",
+    "CREATE INDEX IF NOT EXISTS events_by_run ON events (study, run_id)",
+)
+
+_RUN_COLUMNS = ("seq", "study", "run_id", "state", "params", "attempts", "executions", "worker",
+                "heartbeat", "step", "total", "rate", "submitted", "started", "finished",
+                "wall_seconds", "reason", "reused_from")
+
+# connections inherited through fork: closing one in the child could disturb
+# the parent's locks and WAL, so they are kept, unused, for the process's life
+_INHERITED: list = []
+
+
+def _one_line(text, limit: int = REASON_CHARS) -> str:
+    line = " ".join(str(text).split())
+    return line if len(line) <= limit else line[: limit - 3] + "..."
+
+
+def _stamp(epoch: float | None) -> str:
+    if epoch is None:
+        return "never"
+    return datetime.fromtimestamp(epoch).astimezone().isoformat(timespec="seconds")
+
+
+def _json_default(obj):
+    item = getattr(obj, "item", None)   # numpy scalars
+    if callable(item):
+        return item()
+    raise TypeError(f"sweep value {obj!r} of type {type(obj).__name__} is not JSON-serialisable")
+
+
+def _dumps(obj) -> str:
+    return json.dumps(obj, default=_json_default, sort_keys=True)
+
+
+def _check_study_name(name) -> str:
+    if not isinstance(name, str) or not name.strip():
+        raise JobError("study", f"a study needs a non-empty name, got {name!r}")
+    bad = [c for c in ("/", "\\", "\0") if c in name]
+    if bad or name.startswith(".") or name.startswith(DB_NAME) or len(name) > 200:
+        raise JobError("study", f"{name!r} cannot name a folder of ROOT; use letters, digits, "
+                                "'-', '_' and inner dots (e.g. --study barrier-scan)")
+    return name
+
+
+def _stat_signature(path: Path) -> str | None:
+    try:
+        st = os.stat(path)
+    except FileNotFoundError:
+        return None
+    # ctime cannot be set by a user: a replaced or rewritten file always differs
+    return f"{st.st_size}:{st.st_mtime_ns}:{st.st_ctime_ns}:{st.st_ino}"
+
+
+def check_result(path, run_id: str) -> str | None:
+    """``None`` if ``path`` is a readable result file of run ``run_id``,
+    else the reason it is not (``"result file missing"`` or
+    ``"result file unreadable: ..."``, one line)."""
+    path = Path(path)
+    if not path.exists():
+        return "result file missing"
+    import netCDF4
+
+    try:
+        with netCDF4.Dataset(path, "r") as ds:
+            got = ds.getncattr("run_id") if "run_id" in ds.ncattrs() else None
+    except Exception as e:   # netCDF4 and HDF5 raise OSError, RuntimeError, ...
+        return _one_line(f"result file unreadable: {e}")
+    if got is None:
+        return "result file unreadable: it has no run_id attribute"
+    if str(got) != run_id:
+        return f"result file unreadable: it holds run {str(got)!r}, not {run_id!r}"
+    return None
+
+
+def _fsync_dir(folder: Path) -> None:
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:   # some filesystems do not fsync folders
+        pass
+    finally:
+        os.close(fd)
+
+
+def _link_or_copy(src: Path, dst: Path) -> str:
+    """Put ``src`` at ``dst`` atomically: a hard link when the filesystem
+    allows (no data copied), else a copy; returns "linked" or "copied".
+    A later rerun of either run renames a new file into place, so the other
+    study's file is never touched by it."""
+    dst.parent.mkdir(parents=True, exist_ok=True)
+    tmp = dst.with_name(f".{dst.name}.{os.getpid()}.{threading.get_ident()}.tmp")
+    tmp.unlink(missing_ok=True)
+    try:
+        os.link(src, tmp)
+        how = "linked"
+    except OSError:
+        shutil.copyfile(src, tmp)
+        fd = os.open(tmp, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+        how = "copied"
+    os.replace(tmp, dst)
+    _fsync_dir(dst.parent)
+    return how
+
+
+def _write_json(path: Path, obj) -> None:
+    """Write-then-rename, fsync'ed: a reader sees the old file or the new one."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.{threading.get_ident()}.tmp")
+    with open(tmp, "w", encoding="utf-8") as f:
+        json.dump(obj, f, indent=1, default=_json_default)
+        f.write("\n")
+        f.flush()
+        os.fsync(f.fileno())
+    os.replace(tmp, path)
+    _fsync_dir(path.parent)
+
+
+def _merge_manifest(old: dict | None, new: dict) -> dict:
+    """The union of two submissions of one study: every run of either (the
+    newer params win for a run in both), each axis's values in the order they
+    were first submitted (grid), or per run (zip)."""
+    if old is None:
+        return {**new, "submissions": 1}
+    runs = {r["run_id"]: dict(r) for r in old.get("runs", [])}
+    for r in new["runs"]:
+        if r["run_id"] in runs:
+            runs[r["run_id"]]["params"] = {**runs[r["run_id"]].get("params", {}), **r["params"]}
+        else:
+            runs[r["run_id"]] = dict(r)
+    merged_runs = list(runs.values())
+    mode = new["mode"]
+    keys = list(dict.fromkeys([*old.get("axes", {}), *new["axes"]]))
+    if mode == "zip":
+        axes = {k: [r["params"].get(k) for r in merged_runs] for k in keys}
+    else:
+        axes = {}
+        for k in keys:
+            seen = {}
+            for v in [*old.get("axes", {}).get(k, []), *new["axes"].get(k, [])]:
+                seen.setdefault(_dumps(v), v)
+            axes[k] = list(seen.values())
+    return {**new, "axes": axes, "runs": merged_runs,
+            "submissions": int(old.get("submissions", 1)) + 1}
+
+
+class Queue:
+    """The queue at ``root`` (created with its schema if missing).
+
+    Parameters
+    ----------
+    root : folder holding ``queue.sqlite`` and one folder per study.
+    busy_timeout : seconds a process waits for the database lock before an
+        ``sqlite3.OperationalError`` ("database is locked").
+    clock : callable returning epoch seconds (tests pass a fake one); every
+        time stamp in the database comes from it.
+    """
+
+    def __init__(self, root, busy_timeout: float = 60.0, clock=None):
+        self.root = Path(root).expanduser().absolute()
+        self.path = self.root / DB_NAME
+        self.busy_timeout = float(busy_timeout)
+        self._clock = clock or time.time
+        self._local = threading.local()
+        self.root.mkdir(parents=True, exist_ok=True)
+        self._ensure_schema()
+
+    # ------------------------------------------------------------ plumbing
+    def __getstate__(self):
+        return {"root": self.root, "busy_timeout": self.busy_timeout,
+                "clock": None if self._clock is time.time else self._clock}
+
+    def __setstate__(self, state):
+        self.root = state["root"]
+        self.path = self.root / DB_NAME
+        self.busy_timeout = state["busy_timeout"]
+        self._clock = state["clock"] or time.time
+        self._local = threading.local()
+
+    def __repr__(self) -> str:
+        return f"Queue({str(self.root)!r})"
+
+    def _connect(self) -> sqlite3.Connection:
+        conn = sqlite3.connect(self.path, timeout=self.busy_timeout, isolation_level=None)
+        # the first switch to WAL takes an exclusive lock; a racing opener waits
+        deadline = time.monotonic() + self.busy_timeout
+        while True:
+            try:
+                mode = conn.execute("PRAGMA journal_mode=WAL").fetchone()[0]
+                break
+            except sqlite3.OperationalError as e:
+                if "locked" not in str(e) or time.monotonic() > deadline:
+                    raise
+                time.sleep(0.01)
+        if mode.lower() != "wal":
+            conn.close()
+            raise OSError(f"the queue at {str(self.path)!r} cannot use a WAL journal (got {mode!r}); "
+                          "put ROOT on a local filesystem")
+        conn.execute("PRAGMA synchronous=FULL")
+        conn.execute(f"PRAGMA busy_timeout={int(self.busy_timeout * 1000)}")
+        return conn
+
+    def _conn(self) -> sqlite3.Connection:
+        loc = self._local
+        if getattr(loc, "pid", None) != os.getpid():
+            if getattr(loc, "conn", None) is not None:
+                _INHERITED.append(loc.conn)
+            loc.conn, loc.pid = self._connect(), os.getpid()
+        return loc.conn
+
+    def close(self) -> None:
+        """Close this thread's connection (another call reopens it)."""
+        loc = self._local
+        if getattr(loc, "conn", None) is not None and loc.pid == os.getpid():
+            loc.conn.close()
+        loc.conn, loc.pid = None, None
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+    @contextmanager
+    def _write(self, durable: bool = True):
+        """One ``BEGIN IMMEDIATE`` transaction (the write lock before any
+        read); ``durable=False`` commits without waiting for the disk."""
+        c = self._conn()
+        if not durable:
+            c.execute("PRAGMA synchronous=NORMAL")
+        try:
+            c.execute("BEGIN IMMEDIATE")
+            try:
+                yield c
+                c.execute("COMMIT")
+            except BaseException:
+                if c.in_transaction:
+                    c.execute("ROLLBACK")
+                raise
+        finally:
+            if not durable:
+                c.execute("PRAGMA synchronous=FULL")
+
+    @contextmanager
+    def _read(self):
+        """One read transaction: every SELECT in it sees the same snapshot."""
+        c = self._conn()
+        c.execute("BEGIN")
+        try:
+            yield c
+        finally:
+            if c.in_transaction:
+                c.execute("COMMIT")
+
+    def _ensure_schema(self) -> None:
+        c = self._conn()
+        version = c.execute("PRAGMA user_version").fetchone()[0]
+        if version == SCHEMA_VERSION:
+            return
+        if version > SCHEMA_VERSION:
+            raise OSError(f"the queue at {str(self.path)!r} has schema version {version}; this "
+                          f"wavesweep knows version {SCHEMA_VERSION}: upgrade wavesweep")
+        with self._write() as c:
+            if c.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION:
+                return       # another process made it while we waited
+            for statement in _SCHEMA:
+                c.execute(statement)
+            c.execute(f"PRAGMA user_version={SCHEMA_VERSION}")
+
+    def _event(self, c, now, study, run_id, old, new, worker=None, note=None) -> None:
+        c.execute("INSERT INTO events (time, study, run_id, old, new, worker, note) "
+                  "VALUES (?, ?, ?, ?, ?, ?, ?)", (now, study, run_id, old, new, worker, note))
+
+    # --------------------------------------------------------------- paths
+    def study_dir(self, study: str) -> Path:
+        return self.root / _check_study_name(study)
+
+    def result_path(self, study: str, run_id: str) -> Path:
+        return self.study_dir(study) / f"{run_id}.nc"
+
+    def log_path(self, study: str, run_id: str) -> Path:
+        return self.study_dir(study) / f"{run_id}.log"
+
+    def checkpoint_path(self, study: str, run_id: str) -> Path:
+        return self.study_dir(study) / f"{run_id}.ckpt"
+
+    # -------------------------------------------------------------- submit
+    def submit(self, study) -> dict:
+        """Queue every run of ``study`` (a :class:`~wavesweep.batch.sweep.Study`)
+        not yet in it.  Returns ``{"added", "existing", "reused"}`` counts.
+
+        Idempotent: runs already in the study, whatever their state, are
+        left alone (``existing``; a cancelled run comes back with ``retry``).
+        A new run whose id is done in another study, with a readable result,
+        is not run again: the result is hard-linked (or copied) to
+        ``ROOT/STUDY/RUN_ID.nc`` and the run is done (``reused``).
+        ``ROOT/STUDY/study.json`` becomes the union of every submission."""
+        name = _check_study_name(study.name)
+        specs = {}
+        for r in study.runs:     # a study built by hand may repeat a run: first wins
+            if r.run_id not in specs:
+                specs[r.run_id] = (r.job.to_toml(), _dumps(r.params))
+        manifest = study.manifest()
+        manifest["name"] = name
+
+        c = self._conn()
+        known = {row[0] for row in c.execute("SELECT run_id FROM runs WHERE study = ?", (name,))}
+        fresh = [rid for rid in specs if rid not in known]
+        donors: dict[str, list] = {}
+        for i in range(0, len(fresh), _CHUNK):
+            chunk = fresh[i:i + _CHUNK]
+            rows = c.execute(
+                f"SELECT run_id, study, wall_seconds FROM runs WHERE state = 'done' AND study != ? "
+                f"AND run_id IN ({', '.join('?' * len(chunk))}) ORDER BY finished DESC",
+                (name, *chunk))
+            for rid, src, wall in rows:
+                donors.setdefault(rid, []).append((src, wall))
+        reused = {}
+        for rid, candidates in donors.items():
+            for src, wall in candidates:
+                source = self.result_path(src, rid)
+                if check_result(source, rid) is None:
+                    how = _link_or_copy(source, self.result_path(name, rid))
+                    reused[rid] = (src, wall, how)
+                    break
+
+        now = self._clock()
+        counts = {"added": 0, "existing": 0, "reused": 0}
+        with self._write() as c:
+            row = c.execute("SELECT manifest FROM studies WHERE name = ?", (name,)).fetchone()
+            merged = _merge_manifest(json.loads(row[0]) if row else None, manifest)
+            c.execute("INSERT INTO studies (name, manifest, submitted, updated) VALUES (?, ?, ?, ?) "
+                      "ON CONFLICT (name) DO UPDATE SET manifest = excluded.manifest, "
+                      "updated = excluded.updated", (name, _dumps(merged), now, now))
+            for rid, (job_toml, params) in specs.items():
+                if rid in reused:
+                    src, wall, how = reused[rid]
+                    cur = c.execute(
+                        "INSERT OR IGNORE INTO runs (study, run_id, state, job_toml, params, "
+                        "submitted, finished, wall_seconds, reused_from) "
+                        "VALUES (?, ?, 'done', ?, ?, ?, ?, ?, ?)",
+                        (name, rid, job_toml, params, now, now, wall, src))
+                    kind, note = "reused", f"result of study {src!r} {how}"
+                else:
+                    cur = c.execute(
+                        "INSERT OR IGNORE INTO runs (study, run_id, state, job_toml, params, submitted) "
+                        "VALUES (?, ?, 'queued', ?, ?, ?)", (name, rid, job_toml, params, now))
+                    kind, note = "added", None
+                if cur.rowcount == 1:
+                    counts[kind] += 1
+                    self._event(c, now, name, rid, None, "done" if kind == "reused" else "queued",
+                                note=note)
+                else:
+                    counts["existing"] += 1
+            # inside the transaction: two submissions of one study cannot
+            # interleave their manifests
+            _write_json(self.study_dir(name) / "study.json", merged)
+        return counts
+
+    def manifest(self, study: str) -> dict | None:
+        """The study's merged manifest (as in ``study.json``), or None."""
+        row = self._conn().execute("SELECT manifest FROM studies WHERE name = ?", (study,)).fetchone()
+        return json.loads(row[0]) if row else None
+
+    # ------------------------------------------------------- worker side
+    def claim(self, worker: str, study: str | None = None) -> dict | None:
+        """Take the oldest queued run (of ``study``, if given) for ``worker``:
+        it becomes running, ``attempts`` and ``executions`` go up by one.
+        Returns ``{"study", "run_id", "job_toml", "params", "attempt",
+        "execution", "worker", "result", "log", "checkpoint"}`` (absolute
+        paths as strings), or None when nothing is queued."""
+        now = self._clock()
+        where, args = ("AND study = ?", (study,)) if study is not None else ("", ())
+        with self._write() as c:
+            row = c.execute(
+                "UPDATE runs SET state = 'running', attempts = attempts + 1, "
+                "executions = executions + 1, worker = ?, heartbeat = ?, started = ?, "
+                "rate = NULL, reason = NULL "
+                f"WHERE seq = (SELECT seq FROM runs WHERE state = 'queued' {where} ORDER BY seq LIMIT 1) "
+                "RETURNING study, run_id, job_toml, params, attempts, executions",
+                (worker, now, now, *args)).fetchall()   # to the end: the statement is finished
+            if not row:
+                return None
+            st, rid, job_toml, params, attempts, executions = row[0]
+            self._event(c, now, st, rid, "queued", "running", worker, f"attempt {attempts}")
+        return {"study": st, "run_id": rid, "job_toml": job_toml, "params": json.loads(params),
+                "attempt": attempts, "execution": executions, "worker": worker,
+                "result": str(self.result_path(st, rid)), "log": str(self.log_path(st, rid)),
+                "checkpoint": str(self.checkpoint_path(st, rid))}
+
+    @staticmethod
+    def _owner(execution):
+        """WHERE clause of "this run is running and held by this worker" (and,
+        with ``execution``, by this very claim: a worker name reused by a
+        later process cannot act for an earlier one's claim)."""
+        sql = "study = ? AND run_id = ? AND state = 'running' AND worker = ?"
+        return (sql + " AND executions = ?", (execution,)) if execution is not None else (sql, ())
+
+    def heartbeat(self, study, run_id, worker, step=None, total=None, rate=None,
+                  execution: int | None = None) -> bool:
+        """Report that ``worker`` is alive on the run, with its progress
+        (``step`` of ``total`` steps, ``rate`` steps per second; None keeps
+        the last value).  False when the run is no longer this worker's
+        (requeued, cancelled, finished): the worker should stop it."""
+        sql, extra = self._owner(execution)
+        # numpy scalars cannot be bound: plain numbers
+        step, total = (None if v is None else int(v) for v in (step, total))
+        rate = None if rate is None else float(rate)
+        now = self._clock()
+        with self._write(durable=False) as c:
+            cur = c.execute(
+                "UPDATE runs SET heartbeat = ?, step = COALESCE(?, step), "
+                f"total = COALESCE(?, total), rate = COALESCE(?, rate) WHERE {sql}",
+                (now, step, total, rate, study, run_id, worker, *extra))
+        return cur.rowcount == 1
+
+    def _finish(self, study, run_id, worker, new, sets, args, note, execution) -> bool:
+        sql, extra = self._owner(execution)
+        now = self._clock()
+        with self._write() as c:
+            cur = c.execute(f"UPDATE runs SET state = ?, {sets} WHERE {sql}",
+                            (new, *[now if a is _NOW else a for a in args],
+                             study, run_id, worker, *extra))
+            if cur.rowcount != 1:
+                return False
+            self._event(c, now, study, run_id, "running", new, worker, note)
+        return True
+
+    def complete(self, study, run_id, worker, wall_seconds, execution: int | None = None) -> bool:
+        """The worker's run is done (its result file is in place).  False,
+        and nothing changes, if the run is no longer this worker's."""
+        return self._finish(study, run_id, worker, "done",
+                            "finished = ?, heartbeat = ?, wall_seconds = ?, rate = NULL, "
+                            "step = COALESCE(total, step), reason = NULL, verified = NULL",
+                            (_NOW, _NOW, float(wall_seconds)), f"{float(wall_seconds):.3f} s", execution)
+
+    def fail(self, study, run_id, worker, reason: str, execution: int | None = None) -> bool:
+        """The worker's run failed; ``reason`` is kept as one line."""
+        reason = _one_line(reason)
+        return self._finish(study, run_id, worker, "failed",
+                            "finished = ?, heartbeat = ?, rate = NULL, reason = ?",
+                            (_NOW, _NOW, reason), reason, execution)
+
+    def release(self, study, run_id, worker, reason: str, execution: int | None = None) -> bool:
+        """The worker was asked to stop (signal, --until) and kept a
+        checkpoint: the run goes back to queued, first in line, and this
+        attempt does not count towards ``max_attempts``."""
+        reason = _one_line(reason)
+        return self._finish(study, run_id, worker, "queued",
+                            "heartbeat = ?, worker = NULL, rate = NULL, attempts = attempts - 1, "
+                            "reason = ?", (_NOW, reason), reason, execution)
+
+    def requeue_stale(self, lease_seconds: float, max_attempts: int = 3) -> dict:
+        """Running runs whose last heartbeat is more than ``lease_seconds``
+        old lost their worker: each is requeued, or failed with "worker died
+        N times (last heartbeat at ...)" once ``attempts >= max_attempts``.
+        Returns ``{"requeued": n, "failed": n, "runs": [{"study", "run_id",
+        "worker", "state"}]}``."""
+        if not lease_seconds >= 0:
+            raise ValueError(f"lease_seconds must be >= 0, got {lease_seconds!r}")
+        if isinstance(max_attempts, bool) or not isinstance(max_attempts, int) or max_attempts < 1:
+            raise ValueError(f"max_attempts must be a positive integer, got {max_attempts!r}")
+        now = self._clock()
+        out = {"requeued": 0, "failed": 0, "runs": []}
+        with self._write() as c:
+            stale = c.execute("SELECT seq, study, run_id, worker, heartbeat, attempts FROM runs "
+                              "WHERE state = 'running' AND (heartbeat IS NULL OR heartbeat < ?) "
+                              "ORDER BY seq", (now - lease_seconds,)).fetchall()
+            for seq, st, rid, worker, beat, attempts in stale:
+                last = f"last heartbeat at {_stamp(beat)} from {worker}"
+                if attempts >= max_attempts:
+                    new = "failed"
+                    times = "1 time" if attempts == 1 else f"{attempts} times"
+                    reason = f"worker died {times} ({last})"
+                    c.execute("UPDATE runs SET state = 'failed', finished = ?, rate = NULL, "
+                              "reason = ? WHERE seq = ?", (now, reason, seq))
+                else:
+                    new = "queued"
+                    reason = f"requeued: worker stopped reporting ({last}); attempt {attempts} of {max_attempts}"
+                    c.execute("UPDATE runs SET state = 'queued', worker = NULL, rate = NULL, "
+                              "reason = ? WHERE seq = ?", (reason, seq))
+                self._event(c, now, st, rid, "running", new, worker, reason)
+                out["requeued" if new == "queued" else "failed"] += 1
+                out["runs"].append({"study": st, "run_id": rid, "worker": worker, "state": new})
+        return out
+
+    # -------------------------------------------------------- user side
+    def _select(self, c, run_ids, study, states):
+        """seq, study, run_id, state, worker of the named runs (all, when
+        ``run_ids`` is None) in ``states``; a named id that is not in the
+        queue (or not in ``study``) is a JobError, before anything changes."""
+        where, args = [f"state IN ({', '.join('?' * len(states))})"], list(states)
+        if study is not None:
+            where.append("study = ?")
+            args.append(study)
+        rows = []
+        if run_ids is None:
+            return c.execute(f"SELECT seq, study, run_id, state, worker FROM runs "
+                             f"WHERE {' AND '.join(where)} ORDER BY seq", args).fetchall()
+        ids = list(dict.fromkeys(run_ids))
+        found = set()
+        for i in range(0, len(ids), _CHUNK):
+            chunk = ids[i:i + _CHUNK]
+            inside = f"run_id IN ({', '.join('?' * len(chunk))})"
+            scope = " AND study = ?" if study is not None else ""
+            found |= {r[0] for r in c.execute(f"SELECT run_id FROM runs WHERE {inside}{scope}",
+                                              (*chunk, *([study] if study is not None else [])))}
+            rows += c.execute(f"SELECT seq, study, run_id, state, worker FROM runs "
+                              f"WHERE {inside} AND {' AND '.join(where)} ORDER BY seq",
+                              (*chunk, *args)).fetchall()
+        unknown = [i for i in ids if i not in found]
+        if unknown:
+            scope = f" in study {study!r}" if study is not None else ""
+            raise JobError("run_id", f"{', '.join(map(repr, unknown))} not in the queue at "
+                                     f"{str(self.root)!r}{scope}; `wavesweep status` lists the runs")
+        return rows
+
+    def retry(self, run_ids=None, study=None) -> int:
+        """Put runs back in the queue with a fresh attempt count; returns how
+        many.  Without ``run_ids``: every failed run, and every done run
+        whose result file is missing.  With ``run_ids``: those runs if
+        failed, cancelled or done (a done run is run again)."""
+        missing = set()
+        if run_ids is None:    # stat outside the transaction
+            q = "SELECT seq, study, run_id FROM runs WHERE state = 'done'"
+            for seq, st, rid in self._conn().execute(
+                    q + (" AND study = ?" if study is not None else ""),
+                    (study,) if study is not None else ()):
+                if not self.result_path(st, rid).exists():
+                    missing.add(seq)
+        now = self._clock()
+        with self._write() as c:
+            if run_ids is None:
+                rows = [r for r in self._select(c, None, study, ("failed", "done"))
+                        if r[3] == "failed" or r[0] in missing]
+            else:
+                rows = self._select(c, run_ids, study, ("failed", "cancelled", "done"))
+            for seq, st, rid, old, _ in rows:
+                c.execute("UPDATE runs SET state = 'queued', attempts = 0, worker = NULL, "
+                          "heartbeat = NULL, step = NULL, total = NULL, rate = NULL, started = NULL, "
+                          "finished = NULL, wall_seconds = NULL, reason = NULL, reused_from = NULL, "
+                          "verified = NULL WHERE seq = ?", (seq,))
+                note = "result file missing" if seq in missing else "retry"
+                self._event(c, now, st, rid, old, "queued", note=note)
+        return len(rows)
+
+    def cancel(self, run_ids=None, study=None) -> int:
+        """Cancel queued runs (all, or of ``study``, or the named ones);
+        returns how many.  A named running run is cancelled too: its
+        worker's next heartbeat returns False and it stops."""
+        now = self._clock()
+        with self._write() as c:
+            states = ("queued",) if run_ids is None else ("queued", "running")
+            rows = self._select(c, run_ids, study, states)
+            for seq, st, rid, old, worker in rows:
+                reason = f"cancelled while running on {worker}" if old == "running" else "cancelled"
+                c.execute("UPDATE runs SET state = 'cancelled', rate = NULL, finished = ?, "
+                          "reason = ? WHERE seq = ?", (now, reason, seq))
+                self._event(c, now, st, rid, old, "cancelled", worker if old == "running" else None)
+        return len(rows)
+
+    # ------------------------------------------------------------ reading
+    def _as_dict(self, row, now) -> dict:
+        r = dict(zip(_RUN_COLUMNS, row))
+        r.pop("seq")
+        r["params"] = json.loads(r["params"])
+        eta = None
+        if r["state"] == "running" and r["rate"] and r["rate"] > 0 \
+                and r["total"] is not None and r["step"] is not None:
+            since = max(0.0, now - r["heartbeat"]) if r["heartbeat"] is not None else 0.0
+            eta = max(0.0, (r["total"] - r["step"]) / r["rate"] - since)
+        r["eta_seconds"] = eta
+        r["result"] = str(self.result_path(r["study"], r["run_id"])) if r["state"] == "done" else None
+        r["log"] = str(self.log_path(r["study"], r["run_id"]))
+        return r
+
+    def runs(self, study=None) -> list[dict]:
+        """Every run (of ``study``), in submission order: ``study, run_id,
+        state, params, attempts, executions, worker, heartbeat, step, total,
+        rate, eta_seconds, submitted, started, finished, wall_seconds,
+        reason, reused_from, result`` (path, done runs only), ``log``.
+        Times are epoch seconds; ``eta_seconds`` (running runs reporting a
+        rate) counts from now."""
+        q = f"SELECT {', '.join(_RUN_COLUMNS)} FROM runs"
+        rows = self._conn().execute(q + (" WHERE study = ? ORDER BY seq" if study is not None
+                                         else " ORDER BY seq"), (study,) if study is not None else ())
+        now = self._clock()
+        return [self._as_dict(row, now) for row in rows]
+
+    def run(self, study: str, run_id: str) -> dict | None:
+        """One run as in :meth:`runs`, with its ``job_toml``; None if unknown."""
+        c = self._conn()
+        row = c.execute(f"SELECT {', '.join(_RUN_COLUMNS)}, job_toml FROM runs "
+                        "WHERE study = ? AND run_id = ?", (study, run_id)).fetchone()
+        if row is None:
+            return None
+        out = self._as_dict(row[:-1], self._clock())
+        out["job_toml"] = row[-1]
+        return out
+
+    def history(self, study: str, run_id: str) -> list[dict]:
+        """Every state change of a run, oldest first: ``time, old, new,
+        worker, note``."""
+        rows = self._conn().execute("SELECT time, old, new, worker, note FROM events "
+                                    "WHERE study = ? AND run_id = ? ORDER BY id", (study, run_id))
+        return [dict(zip(("time", "old", "new", "worker", "note"), r)) for r in rows]
+
+    def verify(self) -> list[dict]:
+        """Check every done run's result file (opening it with netCDF4 and
+        comparing its ``run_id`` attribute); one that is missing or not a
+        readable result of that run becomes failed with the reason.  A file
+        unchanged since its last check is not opened again.  Returns the runs
+        that failed: ``[{"study", "run_id", "reason"}]``."""
+        rows = self._conn().execute("SELECT seq, study, run_id, verified FROM runs "
+                                    "WHERE state = 'done' ORDER BY seq").fetchall()
+        bad, good = [], []
+        for seq, st, rid, known in rows:
+            path = self.result_path(st, rid)
+            sig = _stat_signature(path)
+            if sig is not None and sig == known:
+                continue
+            problem = "result file missing" if sig is None else check_result(path, rid)
+            (bad if problem else good).append((seq, st, rid, problem or sig))
+        if not (bad or good):
+            return []
+        failed = []
+        now = self._clock()
+        with self._write() as c:
+            for seq, st, rid, reason in bad:
+                cur = c.execute("UPDATE runs SET state = 'failed', reason = ?, verified = NULL "
+                                "WHERE seq = ? AND state = 'done'", (reason, seq))
+                if cur.rowcount == 1:    # a retry in between wins
+                    self._event(c, now, st, rid, "done", "failed", note=reason)
+                    failed.append({"study": st, "run_id": rid, "reason": reason})
+            for seq, _, _, sig in good:
+                c.execute("UPDATE runs SET verified = ? WHERE seq = ? AND state = 'done'", (sig, seq))
+        return failed
+
+    def status(self, verify: bool = True) -> dict:
+        """``{"studies": {NAME: {"queued": n, "running": n, "done": n,
+        "failed": n, "cancelled": n}}, "runs": [...]}`` (runs as in
+        :meth:`runs`), one consistent snapshot.  With ``verify``, done runs
+        whose result file is missing or unreadable become failed first."""
+        if verify:
+            self.verify()
+        now = self._clock()
+        with self._read() as c:
+            names = [r[0] for r in c.execute("SELECT name FROM studies ORDER BY submitted, name")]
+            rows = c.execute(f"SELECT {', '.join(_RUN_COLUMNS)} FROM runs ORDER BY seq").fetchall()
+        runs = [self._as_dict(row, now) for row in rows]
+        studies = {name: dict.fromkeys(STATES, 0) for name in names}
+        for r in runs:
+            studies.setdefault(r["study"], dict.fromkeys(STATES, 0))[r["state"]] += 1
+        return {"studies": studies, "runs": runs}
+
+
+_NOW = object()    # placeholder for "the clock's time" in _finish arguments

@@ -1,0 +1,140 @@
+"""The overnight queue end to end: worker processes, kill -9, failures, --until.
+
+Real processes through the real CLI (`python -m wavesweep work`), so that
+signals, leases and the SQLite locking are exercised as at night.
+"""
+from __future__ import annotations
+
+import copy
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+import tomli_w
+import xarray as xr
+
+from wavesweep.batch.queue import Queue
+
+TINY = {
+    "title": "worker test",
+    "grid": {"x": {"min": -40.0, "max": 40.0, "points": 128}},
+    "packet": {"kind": "gaussian", "center": -5.0, "width": 2.0, "momentum": 1.0},
+    "evolve": {"dt": 0.05, "duration": 2.0},
+    "record": {"every": 0.5, "snapshot_every": 1.0},
+}
+
+
+def write(tmp_path, table, name="study.toml") -> Path:
+    p = tmp_path / name
+    p.write_text(tomli_w.dumps(table))
+    return p
+
+
+def cli(*args, env=None, timeout=240, **kw):
+    full_env = {**os.environ, "WAVESWEEP_THREADS": "1", **(env or {})}
+    return subprocess.run([sys.executable, "-m", "wavesweep", *map(str, args)], capture_output=True,
+                          text=True, timeout=timeout, env=full_env, **kw)
+
+
+def states(root):
+    return json.loads(cli("status", "--root", root, "--json").stdout)
+
+
+def test_four_workers_run_each_of_40_runs_exactly_once(tmp_path):
+    table = copy.deepcopy(TINY)
+    table["sweep"] = {"packet.width": {"start": 1.5, "stop": 2.5, "num": 40}}
+    root = tmp_path / "root"
+    sub = cli("submit", write(tmp_path, table), "--root", root)
+    assert sub.returncode == 0, sub.stderr
+    w = cli("work", "--root", root, "--workers", 4)
+    assert w.returncode == 0, w.stderr
+    st = states(root)
+    assert st["studies"]["study"]["done"] == 40
+    runs = Queue(root).runs("study")
+    # executions, not only states: each run was claimed and executed once
+    assert sorted(r["executions"] for r in runs) == [1] * 40
+    logs = [(root / "study" / f"{r['run_id']}.log").read_text() for r in runs]
+    assert all(log.count("attempt") == 1 for log in logs)
+    assert len({r["run_id"] for r in runs}) == 40
+
+
+def test_a_diverging_run_fails_with_its_reason_and_the_others_finish(tmp_path):
+    table = copy.deepcopy(TINY)
+    # the third point's potential turns into NaN half-way through the run
+    table["potential"] = [{"kind": "expression", "expression": "where(t > b, log(0.0 - a), 0.0 * x)",
+                           "params": {"a": 1.0, "b": 1.0}}]
+    table["sweep"] = {"potential.0.params.b": [100.0, 200.0, 1.0, 300.0]}
+    root = tmp_path / "root"
+    assert cli("submit", write(tmp_path, table), "--root", root).returncode == 0
+    assert cli("work", "--root", root, "--workers", 2).returncode == 0
+    st = states(root)
+    assert st["studies"]["study"] == {"queued": 0, "running": 0, "done": 3, "failed": 1, "cancelled": 0}
+    (bad,) = [r for r in st["runs"] if r["state"] == "failed"]
+    assert "not finite" in bad["reason"] and "\n" not in bad["reason"]
+    log = (root / "study" / f"{bad['run_id']}.log").read_text()
+    assert "failed" in log
+    assert not (root / "study" / f"{bad['run_id']}.nc").exists()
+
+
+def test_until_in_the_past_claims_nothing(tmp_path):
+    table = copy.deepcopy(TINY)
+    table["sweep"] = {"packet.width": [1.5, 2.0]}
+    root = tmp_path / "root"
+    assert cli("submit", write(tmp_path, table), "--root", root).returncode == 0
+    w = cli("work", "--root", root, "--until", "2020-01-01T00:00")
+    assert w.returncode == 0
+    assert "nothing claimed" in w.stderr
+    assert states(root)["studies"]["study"]["queued"] == 2
+    assert all(r["executions"] == 0 for r in Queue(root).runs("study"))
+
+
+@pytest.mark.slow
+def test_kill_9_of_a_worker_then_work_again(tmp_path):
+    """A worker killed with SIGKILL in the middle of a run: the next `work`
+    (after the lease) requeues it, it resumes from its checkpoint, and its
+    result equals an uninterrupted run of the same job."""
+    table = copy.deepcopy(TINY)
+    table["grid"]["x"]["points"] = 4096
+    table["evolve"].update(dt=0.001, duration=16.0)      # 16000 steps: several seconds
+    table["record"].update(every=0.1, snapshot_every=0.5)
+    root = tmp_path / "root"
+    assert cli("submit", write(tmp_path, table, "long.toml"), "--root", root).returncode == 0
+    env = {**os.environ, "WAVESWEEP_THREADS": "1"}
+    proc = subprocess.Popen([sys.executable, "-m", "wavesweep", "work", "--root", str(root),
+                             "--checkpoint-minutes", "0.005", "--lease-seconds", "2"],
+                            env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            start_new_session=True)
+    (run,) = Queue(root).runs("long")
+    ckpt_dir = root / "long"
+    deadline = time.time() + 120
+    while time.time() < deadline:            # wait until it has checkpointed at least once
+        if any(p.name.startswith(run["run_id"]) and "ckpt" in p.name for p in ckpt_dir.iterdir()):
+            break
+        time.sleep(0.1)
+    else:
+        proc.kill()
+        pytest.fail("no checkpoint appeared")
+    os.killpg(proc.pid, signal.SIGKILL)      # the worker and its parent, no clean-up
+    proc.wait()
+    assert Queue(root).runs("long")[0]["state"] == "running"     # as a power cut leaves it
+    time.sleep(2.5)                                            # the lease expires
+    again = cli("work", "--root", root, "--lease-seconds", "2")
+    assert again.returncode == 0, again.stderr
+    (run,) = Queue(root).runs("long")
+    assert run["state"] == "done" and run["executions"] == 2
+    resumed = xr.load_dataset(root / "long" / f"{run['run_id']}.nc")
+    out = tmp_path / "plain"
+    plain_run = cli("run", write(tmp_path, table, "long.toml"), "-o", out, "--quiet")
+    plain = xr.load_dataset(Path(plain_run.stdout.strip().splitlines()[-1]))
+    assert resumed.attrs["run_id"] == plain.attrs["run_id"]
+    np.testing.assert_array_equal(resumed.snapshot_time, plain.snapshot_time)
+    np.testing.assert_array_equal(resumed.time, plain.time)
+    for name in plain.data_vars:
+        np.testing.assert_allclose(resumed[name].values, plain[name].values, rtol=0, atol=1e-12,
+                                   err_msg=name)
