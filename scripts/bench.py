@@ -97,12 +97,74 @@ def bench(name, grid, repeats, backend):
           f"{t_plain / t_step:10.2f}   ({tr.threads} thread(s))", flush=True)
 
 
+QUEUE_JOB = {
+    "title": "queue bench",
+    "grid": {"x": {"min": -80.0, "max": 80.0, "points": 4096}},
+    "potential": [{"kind": "harmonic", "omega": 0.05}],
+    "packet": {"center": -5.0, "width": 2.0, "momentum": 1.0},
+    "evolve": {"dt": 0.005, "duration": 100.0},
+    "record": {"every": 0.5},
+}
+
+
+def bench_queue(runs: int, repeats: int):
+    """Queue overhead per run (claim + 10 heartbeats + complete, median over
+    dummy runs) and the throughput of 2 workers against 1 on CPU-bound runs."""
+    import copy
+    import tempfile
+    from pathlib import Path
+
+    import tomli_w
+
+    from wavesweep.batch.api import work
+    from wavesweep.batch.queue import Queue
+    from wavesweep.batch.sweep import expand_study
+
+    with tempfile.TemporaryDirectory() as tmp:
+        tmp = Path(tmp)
+        table = copy.deepcopy(QUEUE_JOB)
+        table["evolve"]["duration"] = 0.01
+        table["record"] = {"every": 0.01}
+        table["sweep"] = {"packet.width": {"start": 1.0, "stop": 3.0, "num": 200}}
+        q = Queue(tmp / "overhead")
+        q.submit(expand_study(table))
+        costs = []
+        while (c := (time.perf_counter(), q.claim("bench"))) and c[1] is not None:
+            t0, claim = c
+            for i in range(10):
+                q.heartbeat(claim["study"], claim["run_id"], "bench", i, 10, 1.0)
+            q.complete(claim["study"], claim["run_id"], "bench", 0.0)
+            costs.append(time.perf_counter() - t0)
+        print(f"queue overhead per run (claim + 10 heartbeats + complete): median "
+              f"{statistics.median(costs) * 1e3:.2f} ms over {len(costs)} runs")
+        walls = {1: [], 2: []}
+        for rep in range(repeats):
+            for workers in (1, 2):
+                table = copy.deepcopy(QUEUE_JOB)
+                table["sweep"] = {"packet.momentum": {"start": 0.5, "stop": 1.5, "num": runs}}
+                root = tmp / f"w{workers}-{rep}"
+                path = tmp / f"study{workers}{rep}.toml"
+                path.write_text(tomli_w.dumps(table))
+                from wavesweep.batch.api import submit
+                submit(path, root)
+                t0 = time.perf_counter()
+                work(root, workers=workers, checkpoint_seconds=3600.0)
+                walls[workers].append(time.perf_counter() - t0)
+        one, two = statistics.median(walls[1]), statistics.median(walls[2])
+        print(f"throughput, {runs} CPU-bound runs (1D 4096, 20000 steps): 2 workers vs 1 = "
+              f"{one / two:.2f}x (medians over {repeats})")
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--repeats", type=int, default=7)
     ap.add_argument("--quick", action="store_true", help="1D and 2D 512^2 only, 3 repeats")
     ap.add_argument("--backend", default="auto")
+    ap.add_argument("--queue", action="store_true", help="queue overhead and worker throughput only")
     args = ap.parse_args()
+    if args.queue:
+        bench_queue(8, 3 if args.quick else 3)
+        return
     grids = dict(list(GRIDS.items())[:2]) if args.quick else GRIDS
     repeats = 3 if args.quick else args.repeats
     print("medians over", repeats, "repeats; ratios only (shared machine)")

@@ -138,3 +138,57 @@ def test_kill_9_of_a_worker_then_work_again(tmp_path):
     for name in plain.data_vars:
         np.testing.assert_allclose(resumed[name].values, plain[name].values, rtol=0, atol=1e-12,
                                    err_msg=name)
+
+
+def test_an_invalid_sweep_point_queues_nothing(tmp_path):
+    table = copy.deepcopy(TINY)
+    table["sweep"] = {"packet.width": [1.5, -2.0, 2.5]}       # one impossible width
+    root = tmp_path / "root"
+    sub = cli("submit", write(tmp_path, table), "--root", root)
+    assert sub.returncode == 2
+    lines = sub.stderr.strip().splitlines()
+    assert len(lines) == 1 and "packet.width" in lines[0] and "Traceback" not in sub.stderr
+    assert not (root / "queue.sqlite").exists() or Queue(root).runs() == []
+
+
+def test_sigterm_checkpoints_and_requeues_then_work_finishes(tmp_path):
+    table = copy.deepcopy(TINY)
+    table["grid"]["x"]["points"] = 4096
+    table["evolve"].update(dt=0.001, duration=16.0)
+    table["record"].update(every=0.1, snapshot_every=0.5)
+    root = tmp_path / "root"
+    assert cli("submit", write(tmp_path, table, "term.toml"), "--root", root).returncode == 0
+    env = {**os.environ, "WAVESWEEP_THREADS": "1"}
+    proc = subprocess.Popen([sys.executable, "-m", "wavesweep", "work", "--root", str(root)],
+                            env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.time() + 120
+    while time.time() < deadline and Queue(root).runs("term")[0]["state"] != "running":
+        time.sleep(0.1)
+    time.sleep(1.0)
+    proc.send_signal(signal.SIGTERM)
+    _, err = proc.communicate(timeout=120)
+    assert proc.returncode == 0, err
+    (run,) = Queue(root).runs("term")
+    assert run["state"] == "queued" and run["executions"] == 1
+    again = cli("work", "--root", root)
+    assert again.returncode == 0, again.stderr
+    (run,) = Queue(root).runs("term")
+    assert run["state"] == "done" and run["executions"] == 2
+
+
+def test_status_finds_a_missing_result_and_retry_runs_it_again(tmp_path):
+    table = copy.deepcopy(TINY)
+    table["sweep"] = {"packet.width": [1.5, 2.0]}
+    root = tmp_path / "root"
+    assert cli("submit", write(tmp_path, table), "--root", root).returncode == 0
+    assert cli("work", "--root", root).returncode == 0
+    victim = Queue(root).runs("study")[0]["run_id"]
+    (root / "study" / f"{victim}.nc").unlink()
+    st = states(root)
+    assert st["studies"]["study"]["failed"] == 1
+    (bad,) = [r for r in st["runs"] if r["state"] == "failed"]
+    assert bad["run_id"] == victim and "missing" in bad["reason"]
+    assert cli("retry", "--root", root).returncode == 0
+    assert cli("work", "--root", root).returncode == 0
+    assert states(root)["studies"]["study"]["done"] == 2
+    assert (root / "study" / f"{victim}.nc").exists()
