@@ -153,8 +153,8 @@ def test_an_invalid_sweep_point_queues_nothing(tmp_path):
 
 def test_sigterm_checkpoints_and_requeues_then_work_finishes(tmp_path):
     table = copy.deepcopy(TINY)
-    table["grid"]["x"]["points"] = 4096
-    table["evolve"].update(dt=0.001, duration=16.0)
+    table["grid"]["x"]["points"] = 8192
+    table["evolve"].update(dt=0.0005, duration=20.0)     # 40000 steps: several seconds
     table["record"].update(every=0.1, snapshot_every=0.5)
     root = tmp_path / "root"
     assert cli("submit", write(tmp_path, table, "term.toml"), "--root", root).returncode == 0
@@ -164,7 +164,7 @@ def test_sigterm_checkpoints_and_requeues_then_work_finishes(tmp_path):
     deadline = time.time() + 120
     while time.time() < deadline and Queue(root).runs("term")[0]["state"] != "running":
         time.sleep(0.1)
-    time.sleep(1.0)
+    time.sleep(0.5)
     proc.send_signal(signal.SIGTERM)
     _, err = proc.communicate(timeout=120)
     assert proc.returncode == 0, err
