@@ -172,10 +172,9 @@ def _status(args) -> int:
 
 
 def _retry_or_cancel(args) -> int:
-    from .batch.api import default_root
-    from .batch.queue import Queue
+    from .batch.api import existing_queue
 
-    queue = Queue(default_root(args.root))
+    queue = existing_queue(args.root)
     op = queue.retry if args.command == "retry" else queue.cancel
     n = op(run_ids=args.run_ids or None, study=args.study)
     print(f"{'requeued' if args.command == 'retry' else 'cancelled'} {n} run(s)")

@@ -42,6 +42,23 @@ def cli(*args, env=None, timeout=240, **kw):
                           text=True, timeout=timeout, env=full_env, **kw)
 
 
+def long_study(tmp_path, name, points, dt, duration):
+    """Submit a one-run study that steps for several seconds; returns ROOT."""
+    table = copy.deepcopy(TINY)
+    table["grid"]["x"]["points"] = points
+    table["evolve"].update(dt=dt, duration=duration)
+    table["record"].update(every=0.1, snapshot_every=0.5)
+    root = tmp_path / "root"
+    assert cli("submit", write(tmp_path, table, f"{name}.toml"), "--root", root).returncode == 0
+    return root, table
+
+
+def start_work(root, *extra, **popen):
+    env = {**os.environ, "WAVESWEEP_THREADS": "1"}
+    return subprocess.Popen([sys.executable, "-m", "wavesweep", "work", "--root", str(root), *extra],
+                            env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, **popen)
+
+
 def states(root):
     return json.loads(cli("status", "--root", root, "--json").stdout)
 
@@ -99,17 +116,9 @@ def test_kill_9_of_a_worker_then_work_again(tmp_path):
     """A worker killed with SIGKILL in the middle of a run: the next `work`
     (after the lease) requeues it, it resumes from its checkpoint, and its
     result equals an uninterrupted run of the same job."""
-    table = copy.deepcopy(TINY)
-    table["grid"]["x"]["points"] = 4096
-    table["evolve"].update(dt=0.001, duration=16.0)      # 16000 steps: several seconds
-    table["record"].update(every=0.1, snapshot_every=0.5)
-    root = tmp_path / "root"
-    assert cli("submit", write(tmp_path, table, "long.toml"), "--root", root).returncode == 0
-    env = {**os.environ, "WAVESWEEP_THREADS": "1"}
-    proc = subprocess.Popen([sys.executable, "-m", "wavesweep", "work", "--root", str(root),
-                             "--checkpoint-minutes", "0.005", "--lease-seconds", "2"],
-                            env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                            start_new_session=True)
+    root, table = long_study(tmp_path, "long", 4096, 0.001, 16.0)   # 16000 steps
+    proc = start_work(root, "--checkpoint-minutes", "0.005", "--lease-seconds", "2",
+                      start_new_session=True)
     (run,) = Queue(root).runs("long")
     ckpt_dir = root / "long"
     deadline = time.time() + 120
@@ -152,15 +161,8 @@ def test_an_invalid_sweep_point_queues_nothing(tmp_path):
 
 
 def test_sigterm_checkpoints_and_requeues_then_work_finishes(tmp_path):
-    table = copy.deepcopy(TINY)
-    table["grid"]["x"]["points"] = 8192
-    table["evolve"].update(dt=0.0005, duration=20.0)     # 40000 steps: several seconds
-    table["record"].update(every=0.1, snapshot_every=0.5)
-    root = tmp_path / "root"
-    assert cli("submit", write(tmp_path, table, "term.toml"), "--root", root).returncode == 0
-    env = {**os.environ, "WAVESWEEP_THREADS": "1"}
-    proc = subprocess.Popen([sys.executable, "-m", "wavesweep", "work", "--root", str(root)],
-                            env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    root, _ = long_study(tmp_path, "term", 8192, 0.0005, 20.0)     # 40000 steps
+    proc = start_work(root, text=True)
     deadline = time.time() + 120
     while time.time() < deadline and Queue(root).runs("term")[0]["state"] != "running":
         time.sleep(0.1)

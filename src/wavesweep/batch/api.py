@@ -65,13 +65,19 @@ def work(root=None, workers: int = 1, until: str | None = None, executor="local"
     return ex.drain()
 
 
-def status(root=None, verify: bool = True) -> dict:
+def existing_queue(root=None):
+    """The queue at ROOT; a JobError (not a new, empty queue) if there is none."""
     from .queue import Queue
 
     root = default_root(root)
     if not (root / "queue.sqlite").exists():
-        raise JobError("--root", f"no queue at {str(root)!r}")
-    return Queue(root).status(verify=verify)
+        raise JobError("--root", f"no queue at {str(root)!r}; submit a study first "
+                                 "(wavesweep submit JOB --root ...)")
+    return Queue(root)
+
+
+def status(root=None, verify: bool = True) -> dict:
+    return existing_queue(root).status(verify=verify)
 
 
 def _eta(seconds) -> str:
