@@ -102,8 +102,8 @@ QUEUE_JOB = {
     "grid": {"x": {"min": -80.0, "max": 80.0, "points": 4096}},
     "potential": [{"kind": "harmonic", "omega": 0.05}],
     "packet": {"center": -5.0, "width": 2.0, "momentum": 1.0},
-    "evolve": {"dt": 0.005, "duration": 100.0},
-    "record": {"every": 0.5},
+    "evolve": {"dt": 0.005, "duration": 400.0},
+    "record": {"every": 2.0},
 }
 
 
@@ -137,6 +137,15 @@ def bench_queue(runs: int, repeats: int):
             costs.append(time.perf_counter() - t0)
         print(f"queue overhead per run (claim + 10 heartbeats + complete): median "
               f"{statistics.median(costs) * 1e3:.2f} ms over {len(costs)} runs")
+        # Fixed cost of a drain: spawning workers, imports, numba cache load.
+        starts = []
+        for rep in range(repeats):
+            empty = tmp / f"empty{rep}"
+            Queue(empty).close()
+            t0 = time.perf_counter()
+            work(empty, workers=2)
+            starts.append(time.perf_counter() - t0)
+        print(f"worker start-up (2 workers, empty queue): median {statistics.median(starts):.2f} s")
         walls = {1: [], 2: []}
         for rep in range(repeats):
             for workers in (1, 2):
@@ -151,7 +160,7 @@ def bench_queue(runs: int, repeats: int):
                 work(root, workers=workers, checkpoint_seconds=3600.0)
                 walls[workers].append(time.perf_counter() - t0)
         one, two = statistics.median(walls[1]), statistics.median(walls[2])
-        print(f"throughput, {runs} CPU-bound runs (1D 4096, 20000 steps): 2 workers vs 1 = "
+        print(f"throughput, {runs} CPU-bound runs (1D 4096, 80000 steps): 2 workers vs 1 = "
               f"{one / two:.2f}x (medians over {repeats})")
 
 
