@@ -70,6 +70,17 @@ def _parser() -> argparse.ArgumentParser:
     co = sub.add_parser("collect", help="one dataset of a study: parameters as dimensions")
     co.add_argument("study")
     co.add_argument("--root", default=None, help=root_help)
+
+    ar = sub.add_parser("arrivals", help="arrival-time distributions at the detectors of a run")
+    ar.add_argument("result", metavar="RUN.nc")
+    ar.add_argument("--detector", default=None, help="only this detector")
+    ar.add_argument("--json", action="store_true", help="print one JSON object")
+    ar.add_argument("--plot", default=None, metavar="FILE", help="draw the distributions (.png/.pdf/.svg)")
+
+    tr = sub.add_parser("transmission", help="transmission and reflection of a run, and T(E)")
+    tr.add_argument("result", metavar="RUN.nc")
+    tr.add_argument("--detector", default=None, help="detector beyond the scatterer for T(E)")
+    tr.add_argument("--json", action="store_true", help="print one JSON object")
     return p
 
 
@@ -189,8 +200,84 @@ def _collect(args) -> int:
     return EXIT_OK
 
 
+def _finite(x):
+    """JSON has no NaN: missing numbers become null."""
+    if isinstance(x, dict):
+        return {k: _finite(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_finite(v) for v in x]
+    if hasattr(x, "tolist"):
+        return _finite(x.tolist())
+    if isinstance(x, float) and x != x:
+        return None
+    return x
+
+
+def _warn(command, warnings) -> None:
+    for w in dict.fromkeys(warnings):          # once each, in order
+        print(f"wavesweep {command}: warning: {_one_line(w)}", file=sys.stderr)
+
+
+ARRIVAL_KEYS = ("probability", "mean", "std", "median", "q10", "q90", "most_probable", "backflow",
+                "classical_mean")
+
+
+def _arrivals(args) -> int:
+    from .analysis.arrivals import arrival_times
+
+    dists = arrival_times(args.result, args.detector)
+    units = next(iter(dists.values())).time_units
+    if args.plot:
+        from .viz.arrivals import plot_arrivals
+        plot_arrivals(dists, args.plot, title=os.path.basename(args.result))
+    if args.json:
+        print(json.dumps(_finite({"detectors": {n: d.as_dict() for n, d in dists.items()},
+                                  "time_units": units})))
+    else:
+        print(f"{'detector':<12}{'definition':<12}" + "".join(f"{k:>15}" for k in ARRIVAL_KEYS))
+        for n, d in dists.items():
+            print(f"{n:<12}{d.definition:<12}" + "".join(f"{d.stats[k]:>15.6g}" for k in ARRIVAL_KEYS))
+        print(f"times in {units}; probability and backflow dimensionless")
+        if args.plot:
+            print(f"figure: {args.plot}")
+    _warn("arrivals", [w for d in dists.values() for w in d.warnings])
+    return EXIT_OK
+
+
+def _transmission(args) -> int:
+    from .analysis.transmission import transmission
+
+    out = transmission(args.result, args.detector)
+    er, tot = out["energy_resolved"], out["totals"]
+    if args.json:
+        body = {"energy": er.get("energy", []), "T": er.get("T", []),
+                "energy_units": er.get("energy_units"), "weight": er.get("weight", []),
+                "detector": er.get("detector"), "totals": tot}
+        if "reason" in er:
+            body["reason"] = er["reason"]
+        print(json.dumps(_finite(body)))
+    else:
+        for face, a in tot["absorbed"].items():
+            print(f"absorbed at {face:<4} {a:.6g}")
+        for name, d in tot["detectors"].items():
+            print(f"beyond detector {name!r} (on the grid + absorbed at {d['far_face']}): {d['beyond']:.6g}; "
+                  f"crossed it (flux): {d['crossed']:.6g}")
+        print(f"still on the grid: {tot['final_norm']:.6g}")
+        if "T" in er:
+            print(f"\nT(E) at detector {er['detector']!r}:")
+            print(f"{'E (' + er['energy_units'] + ')':>14}{'T':>12}{'weight':>10}")
+            step = max(1, len(er["energy"]) // 20)
+            for e, t, w in list(zip(er["energy"], er["T"], er["weight"]))[::step]:
+                print(f"{e:14.6g}{t:12.6f}{w:10.3f}")
+    if "reason" in er:
+        out["warnings"].append(f"no energy-resolved T: {er['reason']}")
+    _warn("transmission", out["warnings"])
+    return EXIT_OK
+
+
 _COMMANDS = {"run": _run, "check": _check, "submit": _submit, "work": _work, "status": _status,
-             "retry": _retry_or_cancel, "cancel": _retry_or_cancel, "collect": _collect}
+             "retry": _retry_or_cancel, "cancel": _retry_or_cancel, "collect": _collect,
+             "arrivals": _arrivals, "transmission": _transmission}
 
 if __name__ == "__main__":  # pragma: no cover
     sys.exit(main())

@@ -8,6 +8,8 @@
 * flux through each detector: J = (hbar/m) Im(conj(psi) dpsi/dx) at x_d,
   with psi and dpsi/dx at x_d by spectral interpolation along the detector's
   axis, integrated over the other axes (Parseval in transform space);
+* on a 1D (or radial) grid, psi(x_d) at each detector, the amplitude whose
+  time-energy Fourier transform gives energy-resolved transmission;
 * autocorrelation <psi(0)|psi(t)>.
 """
 from __future__ import annotations
@@ -63,6 +65,7 @@ class Observer:
         self.transform = transform
         self.detectors = list(detectors)
         self.psi0_conj = None if psi0 is None else np.conj(psi0).astype(np.complex128)
+        self.records_amplitude = grid.ndim == 1
         self.dv = grid.cell_volume
         self.x = grid.coordinate(0)
         self.kinetic = grid.kinetic_energy(mass)
@@ -95,15 +98,20 @@ class Observer:
             "x_std": float(np.sqrt(max(x2, 0.0))),
             "p_mean": p_mean,
             "energy": (kin + pot) / safe,
-            "flux": np.array([self._flux(phi, d, row) for d, row in zip(self.detectors, self._rows)]),
         }
+        at = [self._at_detector(phi, d, row) for d, row in zip(self.detectors, self._rows)]
+        out["flux"] = np.array([f for f, _ in at], dtype=float)
+        if self.records_amplitude:
+            out["detector_psi"] = np.array([a for _, a in at], dtype=complex)
         if self.psi0_conj is not None:
             c = complex(np.sum(self.psi0_conj * psi)) * dv
             out["autocorrelation_real"], out["autocorrelation_imag"] = c.real, c.imag
         return out
 
-    def _flux(self, phi, det, row) -> float:
+    def _at_detector(self, phi, det, row) -> tuple[float, complex]:
+        """(flux, psi at the detector); the amplitude only means psi(x_d) in 1D."""
         value, deriv, weight = row
         a = np.tensordot(value, phi, axes=([0], [det.axis]))
         b = np.tensordot(deriv, phi, axes=([0], [det.axis]))
-        return float(np.sum(np.conj(a) * b).imag) * weight / self.mass
+        flux = float(np.sum(np.conj(a) * b).imag) * weight / self.mass
+        return flux, complex(a) if a.ndim == 0 else complex("nan")

@@ -459,7 +459,8 @@ class Simulation:
     def _converters(self):
         u = self.setup.units
         return {"length": 1 / u.factor("length"), "energy": 1 / u.factor("energy"),
-                "momentum": 1 / u.factor("momentum"), "flux": u.factor("time")}
+                "momentum": 1 / u.factor("momentum"), "flux": u.factor("time"),
+                "amplitude": math.sqrt(u.factor("length"))}   # |psi|^2 dx is invariant
 
     def _sample(self, writer, observer, prop, psi, conv):
         s = self.setup
@@ -471,6 +472,8 @@ class Simulation:
         row["p_mean"] *= conv["momentum"]
         row["energy"] *= conv["energy"]
         row["flux"] = values["flux"] * conv["flux"]
+        if "detector_psi" in values:
+            row["detector_psi"] = values["detector_psi"] * conv["amplitude"]
         writer.add_sample(prop.t / s.units.factor("time"), row)
         return values
 
@@ -513,6 +516,7 @@ class Simulation:
             "boundaries": [layer.name for layer in s.absorber.layers],
             "potential": s.hamiltonian.static_potential / s.units.factor("energy"),
             "autocorrelation": True,
+            "detector_amplitude": s.grid.ndim == 1,
             "final_state": bool(s.job.table["record"]["final_state"]),
         }
 

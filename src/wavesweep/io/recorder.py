@@ -104,7 +104,8 @@ class ResultWriter:
         (length, time, energy, momentum, density, flux);
         ``detectors``: list of (name, axis_name, position_job_units);
         ``boundaries``: list of face names; ``potential``: static V (job units,
-        full grid); ``autocorrelation``: bool; ``final_state``: bool.
+        full grid); ``autocorrelation``: bool; ``final_state``: bool;
+        ``detector_amplitude``: bool, psi at each detector per sample (1D).
     attrs : global attributes written at open (the job text, units, ...).
     """
 
@@ -221,6 +222,12 @@ class ResultWriter:
         f = ds.createVariable("flux", "f8", ("time", "detector"))
         f.units, f.long_name = u["flux"], "probability current through the detector"
         f.coordinates = "detector_x detector_axis"  # CF: auxiliary coordinates of `detector`
+        if lay.get("detector_amplitude") and ndet:
+            for part in ("real", "imag"):
+                v = ds.createVariable(f"detector_psi_{part}", "f8", ("time", "detector"))
+                v.units = f"{u['length']}-0.5"
+                v.long_name = f"{part} part of psi at the detector"
+                v.coordinates = "detector_x detector_axis"
         a = ds.createVariable("absorbed", "f8", ("time", "boundary"))
         a.units, a.long_name = "1", "probability removed at the face, cumulative"
         if lay.get("autocorrelation", True):
@@ -271,6 +278,10 @@ class ResultWriter:
                 ds[key][i0:i0 + n] = np.array([b[key] for b in self._buf])
         if len(self.layout["detectors"]):
             ds["flux"][i0:i0 + n, :] = np.array([b["flux"] for b in self._buf])
+            if "detector_psi_real" in ds.variables:
+                amp = np.array([b["detector_psi"] for b in self._buf])
+                ds["detector_psi_real"][i0:i0 + n, :] = amp.real
+                ds["detector_psi_imag"][i0:i0 + n, :] = amp.imag
         if len(self.layout["boundaries"]):
             ds["absorbed"][i0:i0 + n, :] = np.array([b["absorbed"] for b in self._buf])
         self._n_time += n

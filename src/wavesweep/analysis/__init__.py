@@ -1,0 +1,6 @@
+"""Analysis of results: arrival times, transmission, stationary states."""
+from .arrivals import ArrivalDistribution, arrival_statistics, arrival_times
+from .transmission import energy_resolved_transmission, transmission, transmission_totals
+
+__all__ = ["ArrivalDistribution", "arrival_statistics", "arrival_times", "energy_resolved_transmission",
+           "transmission", "transmission_totals"]

@@ -1,0 +1,267 @@
+"""Arrival-time distributions at detectors.
+
+Flux definition (the standard one for a detector outside any absorber): the
+arrival-time density is the probability current through the detector,
+Pi(t) = J(x_d, t) / P with P = int J dt the probability that crossed
+(e.g. Muga & Leavens, Phys. Rep. 338, 353 (2000), sec. 4; Leavens 1998).
+Where J < 0 probability flows back (backflow); it is kept in Pi and its
+weight, int max(-J, 0) dt, is reported apart.
+
+Absorption-rate definition (a detector placed inside an absorbing layer):
+Pi(t) = dA_f/dt / P, A_f the probability the face's layer has removed by
+time t, P its total; the layer is the detector (e.g. Muga, Palao, Navarro
+& Egusquiza, Phys. Rep. 395, 357 (2004), on absorbing detector models).
+
+Classical estimate: free flight from the initial mean position x0 with the
+initial momentum distribution |phi(p)|^2 along the detector's axis:
+t(p) = m (x_d - x0) / p for the momenta that move towards the detector, so
+Pi_cl(t) = |phi(p(t))|^2 m |x_d - x0| / t^2.  Its mean beside the quantum one
+shows the quantum (and potential) correction.
+
+Moments need a window containing the whole peak: the statistics are over
+the run's samples, and a run that ended while the flux was still large is
+flagged with an estimate of the probability still to come.  Integrals use
+the trapezoidal rule on the (uniform) samples.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..errors import JobError
+from ..io.results import open_result, result_setup, result_units
+
+__all__ = ["ArrivalDistribution", "arrival_statistics", "arrival_times", "classical_free_flight"]
+
+# The run is "truncated" when the last |density| exceeds this fraction of the
+# peak, or when more than TRUNCATED_TO_COME of probability may still arrive.
+TRUNCATED_TAIL = 1e-3
+TRUNCATED_TO_COME = 1e-4
+
+
+@dataclass
+class ArrivalDistribution:
+    """One detector's arrival-time distribution, in the job's time units.
+
+    ``density`` is J (or dA/dt) in probability per time unit, not yet divided
+    by ``stats["probability"]``; ``classical_density`` is the free-flight
+    estimate on the same times, per time unit, normalised to the classical
+    probability of moving towards the detector."""
+
+    detector: str
+    definition: str                  # "flux" or "absorption"
+    time: np.ndarray
+    density: np.ndarray
+    classical_density: np.ndarray
+    stats: dict
+    time_units: str
+    warnings: list = field(default_factory=list)
+
+    def as_dict(self) -> dict:
+        return {"definition": self.definition, **self.stats}
+
+
+def _trapezoid(y, t) -> float:
+    return float(np.trapezoid(y, t)) if len(t) > 1 else 0.0
+
+
+def _first_crossing(cum, t, level) -> float:
+    """First time the cumulative curve reaches ``level`` (linear between samples)."""
+    above = np.nonzero(cum >= level)[0]
+    if above.size == 0:
+        return math.nan
+    i = int(above[0])
+    if i == 0:
+        return float(t[0])
+    c0, c1 = cum[i - 1], cum[i]
+    return float(t[i - 1] + (level - c0) / (c1 - c0) * (t[i] - t[i - 1]))
+
+
+def arrival_statistics(time, density) -> dict:
+    """Statistics of an arrival-time density sampled at ``time``.
+
+    Returns probability P = int rho dt, mean and standard deviation of rho/P,
+    median and 10/90 % quantiles (first times the cumulative int_0^t rho / P
+    reaches 0.5, 0.1, 0.9), the most probable time (maximum of rho, refined
+    by a parabola through the three samples around it) and ``backflow``,
+    int max(-rho, 0) dt.  All times in the units of ``time``."""
+    t = np.asarray(time, float)
+    rho = np.asarray(density, float)
+    p = _trapezoid(rho, t)
+    nan = math.nan
+    out = {"probability": p, "mean": nan, "std": nan, "median": nan, "q10": nan, "q90": nan,
+           "most_probable": nan, "backflow": _trapezoid(np.maximum(-rho, 0.0), t)}
+    if not len(t) or not p > 0:
+        return out
+    mean = _trapezoid(t * rho, t) / p
+    var = _trapezoid((t - mean) ** 2 * rho, t) / p
+    cum = np.concatenate([[0.0], np.cumsum(0.5 * (rho[1:] + rho[:-1]) * np.diff(t))]) / p
+    i = int(np.argmax(rho))
+    t_peak = float(t[i])
+    if 0 < i < len(t) - 1:
+        a, b, c = rho[i - 1], rho[i], rho[i + 1]
+        den = a - 2 * b + c
+        if den < 0:
+            t_peak += 0.5 * (a - c) / den * (t[i + 1] - t[i])
+    out.update(mean=mean, std=math.sqrt(max(var, 0.0)), median=_first_crossing(cum, t, 0.5),
+               q10=_first_crossing(cum, t, 0.1), q90=_first_crossing(cum, t, 0.9),
+               most_probable=float(t_peak))
+    return out
+
+
+def classical_free_flight(psi0, grid, axis: int, mass: float, x_detector: float,
+                          time_atomic: np.ndarray) -> tuple[np.ndarray, float, float]:
+    """Free-flight arrival estimate from psi(t=0) (atomic units throughout).
+
+    Returns (density on ``time_atomic`` per atomic time unit, probability of
+    moving towards the detector, mean arrival time of that part)."""
+    ax = grid.axes[axis]
+    dens = np.abs(psi0) ** 2
+    other = tuple(i for i in range(grid.ndim) if i != axis)
+    line = dens.sum(axis=other) if other else dens
+    x0 = float(np.sum(line * ax.coordinates) / np.sum(line))
+    distance = x_detector - x0
+    # momentum density along the axis, zero-padded for a fine p grid
+    pad = 4 * ax.points
+    c = np.fft.fft(psi0, n=pad, axis=axis)
+    w = np.abs(c) ** 2
+    w = w.sum(axis=other) if other else w
+    k = 2 * np.pi * np.fft.fftfreq(pad, ax.dx)
+    order = np.argsort(k)
+    k, w = k[order], w[order]
+    w = w / np.sum(w)
+    towards = (k * distance > 0)
+    prob = float(np.sum(w[towards]))
+    if prob <= 0 or distance == 0:
+        return np.zeros_like(time_atomic), 0.0, math.nan
+    mean = float(np.sum(w[towards] * mass * distance / k[towards])) / prob
+    dk = k[1] - k[0]
+    t = np.asarray(time_atomic, float)
+    out = np.zeros_like(t)
+    pos = t > 0
+    p_of_t = mass * distance / t[pos]
+    out[pos] = np.interp(p_of_t, k, w / dk, left=0.0, right=0.0) * mass * abs(distance) / t[pos] ** 2
+    return out, prob, mean
+
+
+def _layer_holding(setup, axis: int, x: float) -> str | None:
+    """The absorbing face whose layer contains the point x on ``axis``."""
+    ab = setup.absorber
+    if not ab.active:
+        return None
+    ax = setup.grid.axes[axis]
+    for layer in ab.layers:
+        if layer.axis != axis:
+            continue
+        if layer.name.endswith("+") and x > ax.max - ab.thickness:
+            return layer.name
+        if layer.name.endswith("-") and x < ax.min + ab.thickness:
+            return layer.name
+    return None
+
+
+def _upstream_probability(ds, setup, axis: int, x_det: float, side: float) -> float | None:
+    """Probability on the grid on the packet's side of the detector at the end
+    of the run (job units are fine: |psi|^2 dV is invariant): from the final
+    state, else from a last snapshot at the final time; None when neither."""
+    lf = result_units(ds)["length"]
+    t_end = float(ds.time.values[-1])
+    if "psi_real" in ds:
+        dens = np.asarray(ds.psi_real.values) ** 2 + np.asarray(ds.psi_imag.values) ** 2
+        dims = ds.psi_real.dims
+    elif ds.sizes.get("snapshot_time", 0) and \
+            abs(float(ds.snapshot_time.values[-1]) - t_end) <= 1e-9 * max(1.0, abs(t_end)):
+        dens = np.asarray(ds.density.isel(snapshot_time=-1).values, float)
+        dims = ds.density.dims[1:]
+    else:
+        return None
+    coords = [np.asarray(ds[d].values, float) for d in dims]
+    dv = float(np.prod([abs(c[1] - c[0]) for c in coords]))
+    # each point stands for a cell of width dx: count the part of its cell
+    # on the packet's side (a detector on a grid point splits that cell)
+    x, dx = coords[axis] * lf, abs(coords[axis][1] - coords[axis][0]) * lf
+    fraction = np.clip(0.5 + (x - x_det) * side / dx, 0.0, 1.0)
+    shape = [1] * dens.ndim
+    shape[axis] = len(x)
+    return float(np.sum(dens * fraction.reshape(shape)) * dv)
+
+
+def arrival_times(result, detector: str | None = None) -> dict[str, ArrivalDistribution]:
+    """Arrival-time distributions of a run's detectors (``detector``: only
+    that one), from a result file path or an open dataset."""
+    ds = open_result(result, require=("flux", "time"))
+    try:
+        return _arrivals(ds, detector)
+    finally:
+        if ds is not result:   # close only what was opened here
+            ds.close()
+
+
+def _arrivals(ds, detector):
+    names = [str(d) for d in ds["detector"].values] if "detector" in ds.coords else []
+    if not names:
+        raise JobError("RUN.nc", "the run recorded no detector flux; add a [[detector]] table "
+                                 "to the job and run it again")
+    if detector is not None and detector not in names:
+        raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
+    from ..check import splitting_warning
+
+    uc = result_units(ds)
+    setup = result_setup(ds)
+    run_warning = splitting_warning(setup)
+    t = np.asarray(ds["time"].values, float)
+    if len(t) < 3:
+        raise JobError("RUN.nc", f"the run holds {len(t)} samples; arrival times need at least 3")
+    flux = np.asarray(ds["flux"].values, float)
+    out = {}
+    for j, name in enumerate(names):
+        if detector is not None and name != detector:
+            continue
+        det = setup.detectors[j]
+        face = _layer_holding(setup, det.axis, det.position)
+        warnings = [f"the run's time step: {run_warning}"] if run_warning else []
+        if face is not None:
+            if "absorbed" not in ds or face not in [str(b) for b in ds["boundary"].values]:
+                raise JobError("RUN.nc", f"detector {name!r} lies in the {face} absorber but the run "
+                                         "recorded no absorbed probability there")
+            a = np.asarray(ds["absorbed"].sel(boundary=face).values, float)
+            rho = np.gradient(a, t)
+            definition = "absorption"
+        else:
+            rho = flux[:, j]
+            definition = "flux"
+        stats = arrival_statistics(t, rho)
+        x0_side = _packet_side(setup, det.axis, det.position)
+        cl, cl_prob, cl_mean = classical_free_flight(setup.psi0, setup.grid, det.axis, setup.mass,
+                                                     det.position, t * uc["time"])
+        stats["classical_probability"] = cl_prob
+        stats["classical_mean"] = cl_mean / uc["time"] if math.isfinite(cl_mean) else math.nan
+        peak = float(np.max(np.abs(rho))) if len(rho) else 0.0
+        tail = abs(float(rho[-1])) / peak if peak > 0 else 0.0
+        to_come = _upstream_probability(ds, setup, det.axis, det.position, x0_side)
+        if definition == "absorption":
+            to_come = float(ds["norm"].values[-1]) if "norm" in ds else to_come
+        stats["still_on_grid_before"] = to_come if to_come is not None else math.nan
+        stats["truncated"] = bool(tail > TRUNCATED_TAIL or (to_come or 0.0) > TRUNCATED_TO_COME)
+        if stats["truncated"]:
+            more = (f"up to {to_come:.3g} of probability is still on the grid before it"
+                    if to_come is not None else "the final state was not recorded to say how much more")
+            warnings.append(f"detector {name!r}: the run ended before the flux died out (last value "
+                            f"{tail:.1%} of the peak; {more}); the distribution is truncated: "
+                            "extend evolve.duration")
+        if not stats["probability"] > 0:
+            warnings.append(f"detector {name!r}: no probability crossed it during the run")
+        out[name] = ArrivalDistribution(name, definition, t, rho, cl * uc["time"], stats,
+                                        uc["time_label"], warnings)
+    return out
+
+
+def _packet_side(setup, axis: int, x_det: float) -> float:
+    """+1 when the initial packet lies above the detector on its axis, else -1."""
+    dens = np.abs(setup.psi0) ** 2
+    other = tuple(i for i in range(setup.grid.ndim) if i != axis)
+    line = dens.sum(axis=other) if other else dens
+    x0 = float(np.sum(line * setup.grid.axes[axis].coordinates) / np.sum(line))
+    return 1.0 if x0 > x_det else -1.0

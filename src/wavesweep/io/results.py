@@ -1,0 +1,85 @@
+"""Reading a run's result file back for analysis.
+
+``open_result`` refuses, with a one-line :class:`JobError`, anything that is
+not a result of this tool (no ``run_id``/``job`` attributes), cannot be read
+as netCDF, or lacks a variable the analysis needs.  ``result_setup`` rebuilds
+the atomic-unit :class:`~wavesweep.simulation.Setup` of the run from the job
+text stored in the file, so analysis uses the same grid, initial state,
+potential and absorber as the run did.
+"""
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import xarray as xr
+
+from ..errors import JobError
+
+__all__ = ["open_result", "result_setup", "result_units"]
+
+REQUIRED_ATTRS = ("run_id", "job", "wavesweep_version")
+
+
+def open_result(path, require: tuple[str, ...] = (), field: str = "RUN.nc") -> xr.Dataset:
+    """The result at ``path`` as a lazily loaded dataset (close it, or use it
+    in a ``with`` block).  ``require``: variables that must be present;
+    ``field`` names the argument in error messages."""
+    if isinstance(path, xr.Dataset):
+        ds = path
+    else:
+        path = Path(path)
+        if not path.exists():
+            raise JobError(field, f"no such file {str(path)!r}")
+        try:
+            ds = xr.open_dataset(path, engine="netcdf4")
+        except (OSError, ValueError) as e:
+            raise JobError(field, f"{str(path)!r} is not a readable netCDF file "
+                                  f"({' '.join(str(e).split())})") from None
+    missing = [a for a in REQUIRED_ATTRS if a not in ds.attrs]
+    if missing:
+        ds.close()
+        raise JobError(field, f"{_name(path)} is not a result of wavesweep (no {', '.join(missing)} "
+                              "attribute); give a file written by `wavesweep run` or `work`")
+    absent = [v for v in require if v not in ds.variables]
+    if absent:
+        ds.close()
+        raise JobError(field, f"{_name(path)} has no {', '.join(absent)} variable; "
+                              "it was written without it (re-run the job with this version)")
+    return ds
+
+
+def result_setup(ds: xr.Dataset, field: str = "RUN.nc"):
+    """The run's Setup, rebuilt from the job text in the file's attributes."""
+    from ..jobfile import job_from_dict
+    from ..simulation import Setup
+    import tomllib
+
+    try:
+        table = tomllib.loads(ds.attrs["job"])
+    except tomllib.TOMLDecodeError as e:
+        raise JobError(field, f"the job text stored in the result cannot be read: {e}") from None
+    table.pop("sweep", None)
+    try:
+        return Setup(job_from_dict(table))
+    except JobError as e:
+        raise JobError(field, f"the run's job cannot be rebuilt here ({e}); "
+                              "files it refers to must still exist") from None
+
+
+def result_units(ds: xr.Dataset) -> dict:
+    """Factors from job units to atomic units and labels, from the attributes."""
+    a = ds.attrs
+    return {
+        "length": float(a.get("length_to_bohr", 1.0)),
+        "energy": float(a.get("energy_to_hartree", 1.0)),
+        "time": float(a.get("time_to_atomic", 1.0)),
+        "mass": float(a.get("mass_to_electron_mass", 1.0)),
+        "length_label": str(a.get("units_length", "bohr")),
+        "energy_label": str(a.get("units_energy", "hartree")),
+        "time_label": str(a.get("units_time", "hbar/E_h")),
+    }
+
+
+def _name(path) -> str:
+    return repr(os.fspath(path)) if not isinstance(path, xr.Dataset) else "the dataset"
