@@ -110,7 +110,7 @@ def test_a_run_that_ends_too_early_is_flagged_with_what_is_still_to_come(tmp_pat
     assert d.stats["truncated"]
     remaining = quad(_current, 24.0, 200.0, limit=400)[0]   # closed form, what will still cross
     # what is left before the detector bounds what is still to come, and is it here
-    assert d.stats["still_on_grid_before"] == pytest.approx(remaining, rel=1e-3)
+    assert d.stats["still_to_come"] == pytest.approx(remaining, rel=1e-3)
     assert any("extend evolve.duration" in w for w in d.warnings)
 
 
@@ -225,3 +225,22 @@ def test_a_detector_outside_the_grid_is_refused(tmp_path, capsys):
     assert main(["run", str(path), "-o", str(tmp_path)]) == 2
     err = capsys.readouterr().err.strip()
     assert len(err.splitlines()) == 1 and "detector.0" in err
+
+
+@pytest.mark.slow
+def test_detectors_in_front_of_and_behind_a_barrier(barrier_result):
+    """In front: the incident wave crosses, then the reflected one comes back;
+    the times are the forward crossings' and the probability the net one,
+    which equals what lies beyond at the end (continuity).  Behind: the
+    reflected part still on the grid (moving away) is not "still to come"."""
+    dists = arrival_times(barrier_result)
+    tot = transmission(barrier_result)["totals"]["detectors"]
+    front, behind = dists["before"], dists["after"]
+    assert front.definition == "positive flux" and behind.definition == "flux"
+    assert front.stats["backflow"] > 0.5
+    assert any("flows back" in w for w in front.warnings)
+    assert front.stats["probability"] == pytest.approx(tot["before"]["beyond"], abs=1e-5)
+    assert front.stats["mean"] < behind.stats["mean"]
+    with xr.open_dataset(barrier_result) as ds:
+        assert float(ds.norm.values[-1]) > 0.1          # the reflected part, still on the grid
+    assert behind.stats["still_to_come"] < 1e-6 and not behind.stats["truncated"]

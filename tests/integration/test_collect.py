@@ -220,6 +220,31 @@ def test_transmission_through_the_eckart_barrier(eckart):
             assert abs(got - ref) < 3e-4, (p0, v0, got, ref)
 
 
+def test_arrival_statistics_and_transmission_per_run(eckart):
+    """The summary holds, per run and detector, what `arrivals` and
+    `transmission` give for the run's own file, and T beyond 'after' is the
+    closed form again (as above)."""
+    from wavesweep.analysis import arrival_times, transmission
+
+    root, study, _, ds = eckart
+    for spec in study.runs:
+        point = _point(spec)
+        path = root / "eckart-scan" / f"{spec.run_id}.nc"
+        stats = arrival_times(path)["after"].stats
+        for key in ("mean", "std", "median", "probability", "backflow", "classical_mean"):
+            assert ds[f"arrival_{key}"].sel(detector="after", **point).item() == stats[key]
+        beyond = transmission(path)["totals"]["detectors"]["after"]["beyond"]
+        assert ds.transmitted_beyond.sel(detector="after", **point).item() == beyond
+        ref = packet_transmission(point["momentum"], 0.5 / SIGMA_X, point["height"], ECKART_A)
+        assert abs(beyond - ref) < 3e-4
+    assert ds.arrival_mean.attrs["units"] == ds.time.attrs["units"]
+    # one line: the mean arrival at 'after' against V0 for p0 = 1.4; faster
+    # packets arrive earlier
+    line = ds.arrival_mean.sel(detector="after", momentum=1.4)
+    assert line.dims == ("height",) and np.isfinite(line).all()
+    assert (ds.arrival_mean.sel(detector="after").diff("momentum") < 0).all()
+
+
 # -- incomplete studies ----------------------------------------------------------------
 def test_runs_without_a_result_are_nan(eckart, tmp_path):
     root, study, _, full = eckart

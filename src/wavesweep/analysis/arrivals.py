@@ -4,8 +4,13 @@ Flux definition (the standard one for a detector outside any absorber): the
 arrival-time density is the probability current through the detector,
 Pi(t) = J(x_d, t) / P with P = int J dt the probability that crossed
 (e.g. Muga & Leavens, Phys. Rep. 338, 353 (2000), sec. 4; Leavens 1998).
-Where J < 0 probability flows back (backflow); it is kept in Pi and its
-weight, int max(-J, 0) dt, is reported apart.
+J is oriented from the initial packet towards the detector.  Where J < 0
+probability flows back (backflow); it is kept in Pi and its weight,
+int max(-J, 0) dt, is reported apart.  When the backflow exceeds 1 % of the
+forward flux (a detector in front of a scatterer sees the incident wave and
+then the reflected one) the net flux is no probability density: the times
+are then those of the forward flux max(J, 0) ("positive flux"), the
+probability stays the net crossing.
 
 Absorption-rate definition (a detector placed inside an absorbing layer):
 Pi(t) = dA_f/dt / P, A_f the probability the face's layer has removed by
@@ -39,6 +44,10 @@ __all__ = ["ArrivalDistribution", "arrival_statistics", "arrival_times", "classi
 # peak, or when more than TRUNCATED_TO_COME of probability may still arrive.
 TRUNCATED_TAIL = 1e-3
 TRUNCATED_TO_COME = 1e-4
+# Above this backflow (relative to the forward flux) the times are taken from
+# the forward flux alone (our choice; 1 % keeps the backflow of a free
+# packet, ~1e-4 at most for Gaussians, in the standard definition).
+BACKFLOW_SWITCH = 1e-2
 
 
 @dataclass
@@ -51,7 +60,7 @@ class ArrivalDistribution:
     probability of moving towards the detector."""
 
     detector: str
-    definition: str                  # "flux" or "absorption"
+    definition: str                  # "flux", "positive flux" or "absorption"
     time: np.ndarray
     density: np.ndarray
     classical_density: np.ndarray
@@ -162,30 +171,55 @@ def _layer_holding(setup, axis: int, x: float) -> str | None:
     return None
 
 
-def _upstream_probability(ds, setup, axis: int, x_det: float, side: float) -> float | None:
-    """Probability on the grid on the packet's side of the detector at the end
-    of the run (job units are fine: |psi|^2 dV is invariant): from the final
-    state, else from a last snapshot at the final time; None when neither."""
-    lf = result_units(ds)["length"]
+def _final_density(ds):
+    """(density or psi, dims, is_psi) at the end of the run, in job units, or
+    None: the final state if recorded, else a last snapshot at the final time."""
     t_end = float(ds.time.values[-1])
     if "psi_real" in ds:
-        dens = np.asarray(ds.psi_real.values) ** 2 + np.asarray(ds.psi_imag.values) ** 2
-        dims = ds.psi_real.dims
-    elif ds.sizes.get("snapshot_time", 0) and \
+        psi = np.asarray(ds.psi_real.values) + 1j * np.asarray(ds.psi_imag.values)
+        return psi, ds.psi_real.dims, True
+    if ds.sizes.get("snapshot_time", 0) and \
             abs(float(ds.snapshot_time.values[-1]) - t_end) <= 1e-9 * max(1.0, abs(t_end)):
-        dens = np.asarray(ds.density.isel(snapshot_time=-1).values, float)
-        dims = ds.density.dims[1:]
-    else:
+        return np.asarray(ds.density.isel(snapshot_time=-1).values, float), ds.density.dims[1:], False
+    return None
+
+
+def _upstream_probability(ds, setup, axis: int, x_det: float, side: float,
+                          towards: bool = False) -> float | None:
+    """Probability on the grid on the ``side`` (+1: above) of the detector at
+    the end of the run (|psi|^2 dV is the same in job units); with
+    ``towards``, only the part whose momentum points at the detector (from
+    the final state's transform; the reflected part running away does not
+    count).  None when the run kept neither final state nor a last snapshot."""
+    found = _final_density(ds)
+    if found is None:
         return None
+    values, dims, is_psi = found
+    lf = result_units(ds)["length"]
     coords = [np.asarray(ds[d].values, float) for d in dims]
     dv = float(np.prod([abs(c[1] - c[0]) for c in coords]))
     # each point stands for a cell of width dx: count the part of its cell
-    # on the packet's side (a detector on a grid point splits that cell)
+    # on that side (a detector on a grid point splits that cell)
     x, dx = coords[axis] * lf, abs(coords[axis][1] - coords[axis][0]) * lf
     fraction = np.clip(0.5 + (x - x_det) * side / dx, 0.0, 1.0)
-    shape = [1] * dens.ndim
+    shape = [1] * values.ndim
     shape[axis] = len(x)
-    return float(np.sum(dens * fraction.reshape(shape)) * dv)
+    fraction = fraction.reshape(shape)
+    if not is_psi:
+        return float(np.sum(values * fraction) * dv)
+    total = float(np.sum(np.abs(values) ** 2 * fraction) * dv)
+    if not towards or total == 0.0:
+        return total
+    # The share moving towards the detector, from the transform of psi cut
+    # off smoothly (a tanh ramp over a few wavelengths: a sharp cut at a
+    # detector the packet is crossing puts ~1 % into spurious momenta).
+    k = (2 * np.pi * np.fft.fftfreq(len(x), dx)).reshape(shape)
+    c = np.abs(np.fft.fft(values, axis=axis)) ** 2
+    k_rms = math.sqrt(float(np.sum(c * k**2) / np.sum(c))) or 1.0 / dx
+    ramp = 0.5 * (1 + np.tanh((x - x_det) * side * k_rms / 4.0)).reshape(shape)
+    c = np.abs(np.fft.fft(values * ramp, axis=axis)) ** 2
+    moving = float(np.sum(c * (k * -side > 0)) + 0.5 * np.sum(c * (k == 0)))
+    return total * moving / float(np.sum(c))
 
 
 def arrival_times(result, detector: str | None = None) -> dict[str, ArrivalDistribution]:
@@ -229,24 +263,36 @@ def _arrivals(ds, detector):
             a = np.asarray(ds["absorbed"].sel(boundary=face).values, float)
             rho = np.gradient(a, t)
             definition = "absorption"
-        else:
-            rho = flux[:, j]
+        x0_side = _packet_side(setup, det.axis, det.position)
+        if face is None:
+            # oriented from the packet towards the detector: arrivals count positive
+            rho = flux[:, j] * -x0_side
             definition = "flux"
         stats = arrival_statistics(t, rho)
-        x0_side = _packet_side(setup, det.axis, det.position)
+        forward = _trapezoid(np.maximum(rho, 0.0), t)
+        if definition == "flux" and stats["backflow"] > BACKFLOW_SWITCH * forward:
+            # the flux changes sign (a detector before a scatterer sees the
+            # incident wave, then the reflected one): the signed density is no
+            # probability density, so the times are those of the forward crossings
+            first = arrival_statistics(t, np.maximum(rho, 0.0))
+            stats.update({k: first[k] for k in ("mean", "std", "median", "q10", "q90", "most_probable")})
+            definition = "positive flux"
+            warnings.append(f"detector {name!r}: {stats['backflow']:.3g} of probability flows back across "
+                            f"it against {forward:.3g} forward; the times are those of the forward "
+                            "flux, the probability is the net crossing")
         cl, cl_prob, cl_mean = classical_free_flight(setup.psi0, setup.grid, det.axis, setup.mass,
                                                      det.position, t * uc["time"])
         stats["classical_probability"] = cl_prob
         stats["classical_mean"] = cl_mean / uc["time"] if math.isfinite(cl_mean) else math.nan
         peak = float(np.max(np.abs(rho))) if len(rho) else 0.0
         tail = abs(float(rho[-1])) / peak if peak > 0 else 0.0
-        to_come = _upstream_probability(ds, setup, det.axis, det.position, x0_side)
+        to_come = _upstream_probability(ds, setup, det.axis, det.position, x0_side, towards=True)
         if definition == "absorption":
             to_come = float(ds["norm"].values[-1]) if "norm" in ds else to_come
-        stats["still_on_grid_before"] = to_come if to_come is not None else math.nan
+        stats["still_to_come"] = to_come if to_come is not None else math.nan
         stats["truncated"] = bool(tail > TRUNCATED_TAIL or (to_come or 0.0) > TRUNCATED_TO_COME)
         if stats["truncated"]:
-            more = (f"up to {to_come:.3g} of probability is still on the grid before it"
+            more = (f"{to_come:.3g} of probability is still on the grid before it, moving towards it"
                     if to_come is not None else "the final state was not recorded to say how much more")
             warnings.append(f"detector {name!r}: the run ended before the flux died out (last value "
                             f"{tail:.1%} of the peak; {more}); the distribution is truncated: "

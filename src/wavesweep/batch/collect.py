@@ -75,7 +75,10 @@ TIME_MERGE = 1e-9          # relative to the largest |time|: samples this close 
 _BASE_KINDS = {"length", "energy", "time", "mass"}
 _RESERVED = {"time", "boundary", "detector", "detector_x", "run", "norm", "absorbed", "flux",
              "final_norm", "final_absorbed", "final_time", "wall_seconds", "run_id",
-             "expected_run_id", "has_result"}
+             "expected_run_id", "has_result", "transmitted_beyond",
+             *(f"arrival_{k}" for k in ("probability", "mean", "std", "median", "q10", "q90",
+                                        "most_probable", "backflow", "classical_mean",
+                                        "still_to_come"))}
 
 
 @dataclass
@@ -92,6 +95,9 @@ class _Result:
     unit_attrs: dict
     var_units: dict         # "time", "flux" -> units attribute
     job: dict = field(default_factory=dict)
+    arrivals: dict = field(default_factory=dict)    # detector -> arrival statistics (job units)
+    beyond: dict = field(default_factory=dict)      # detector -> probability beyond it at the end
+    analysis_note: str = ""
 
 
 @dataclass
@@ -132,6 +138,8 @@ def collect(root, study: str) -> Path:
             if result.run_id != run["run_id"]:
                 notes.append(f"{path.name} says it is run {result.run_id}")
             results[run["run_id"]] = result
+            if result.analysis_note:
+                notes.append(result.analysis_note)
     if not results:
         raise JobError("", f"study {study!r} has no finished run yet: none of its {len(runs)} runs "
                            f"has a result in {str(folder)!r}; run `wavesweep work --root {root}` "
@@ -238,9 +246,28 @@ def _read_result(path: Path) -> _Result:
                        "flux": ds["flux"].attrs.get("units", "")},
             job=tomllib.loads(attrs["job"]) if "job" in attrs else {},
         )
-    if len(result.time) == 0:
-        raise ValueError("it holds no samples")
+        if len(result.time) == 0:
+            raise ValueError("it holds no samples")
+        if dets and len(result.time) >= 3:
+            _analyse(ds, result)
     return result
+
+
+def _analyse(ds, result: _Result) -> None:
+    """Arrival statistics and transmission beyond each detector, as
+    ``wavesweep arrivals`` / ``transmission`` give them for the run."""
+    from ..analysis.arrivals import arrival_times
+    from ..analysis.transmission import transmission_totals
+    from ..io.results import result_setup
+
+    try:
+        dists = arrival_times(ds)
+        totals = transmission_totals(ds, result_setup(ds))
+    except JobError as e:     # e.g. a file potential that has moved: the books stay, stats are NaN
+        result.analysis_note = f"run {result.run_id}: no arrival statistics ({e})"
+        return
+    result.arrivals = {name: d.stats for name, d in dists.items()}
+    result.beyond = {name: d["beyond"] for name, d in totals["detectors"].items()}
 
 
 def _check_one_unit_set(study, results) -> None:
@@ -446,6 +473,8 @@ def _fill(shape, where, results, times, faces, detectors) -> dict:
         "run_id": np.full(shape, "", dtype=object),
         "expected_run_id": np.full(shape, "", dtype=object),
         "has_result": np.zeros(shape, np.int8),
+        "transmitted_beyond": np.full(shape + (nd,), nan),
+        **{f"arrival_{k}": np.full(shape + (nd,), nan) for k in ARRIVAL_STATS},
     }
     for cell, run in where.items():
         d["expected_run_id"][cell] = run["run_id"]
@@ -461,6 +490,10 @@ def _fill(shape, where, results, times, faces, detectors) -> dict:
         for j, det in enumerate(detectors):
             if det in r.flux:
                 d["flux"][cell][it, j] = r.flux[det]
+            if det in r.arrivals:
+                for k in ARRIVAL_STATS:
+                    d[f"arrival_{k}"][cell][j] = r.arrivals[det][k]
+                d["transmitted_beyond"][cell][j] = r.beyond.get(det, nan)
         d["final_norm"][cell] = r.norm[-1]
         d["final_time"][cell] = r.time[-1]
         d["wall_seconds"][cell] = r.wall_seconds
@@ -480,7 +513,22 @@ _META = {
     "run_id": ("1", "id of the run whose result is here (empty: no result)"),
     "expected_run_id": ("1", "id of the run the study manifest plans here (empty: none)"),
     "has_result": ("1", "whether a result was found for this point"),
+    "transmitted_beyond": ("1", "probability beyond the detector at the end (on the grid + absorbed "
+                                "by the face beyond it)"),
+    "arrival_probability": ("1", "probability that crossed the detector (int J dt)"),
+    "arrival_mean": (None, "mean arrival time at the detector"),
+    "arrival_std": (None, "standard deviation of the arrival time"),
+    "arrival_median": (None, "median arrival time"),
+    "arrival_q10": (None, "10 % quantile of the arrival time"),
+    "arrival_q90": (None, "90 % quantile of the arrival time"),
+    "arrival_most_probable": (None, "most probable arrival time"),
+    "arrival_backflow": ("1", "probability carried back across the detector (negative flux)"),
+    "arrival_classical_mean": (None, "classical free-flight estimate of the mean arrival time"),
+    "arrival_still_to_come": ("1", "probability before the detector at the end, moving towards it "
+                                   "(what may still arrive)"),
 }
+ARRIVAL_STATS = ("probability", "mean", "std", "median", "q10", "q90", "most_probable", "backflow",
+                 "classical_mean", "still_to_come")
 
 
 def _dataset(data, params, pdims, mode, times, faces, detectors, results, first) -> xr.Dataset:
@@ -490,11 +538,13 @@ def _dataset(data, params, pdims, mode, times, faces, detectors, results, first)
     dims = {
         "norm": pdims + ["time"], "absorbed": pdims + ["time", "boundary"],
         "flux": pdims + ["time", "detector"], "final_absorbed": pdims + ["boundary"],
+        "transmitted_beyond": pdims + ["detector"],
+        **{f"arrival_{k}": pdims + ["detector"] for k in ARRIVAL_STATS},
     }
     ds = xr.Dataset()
     for name, values in data.items():
         unit, long = _META[name]
-        unit = {"flux": funit, "final_time": tunit}.get(name, unit)
+        unit = {"flux": funit, "final_time": tunit}.get(name, unit if unit is not None else tunit)
         if values.dtype == object:
             values = values.astype(str)
         attrs = {"units": unit, "long_name": long}
