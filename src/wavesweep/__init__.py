@@ -28,10 +28,11 @@ from .hamiltonian import Hamiltonian
 from .observables import Observer, Detector
 from .simulation import Setup, Simulation, run_job
 from .check import check_job
+from .analysis.spectra import stationary_states, autocorrelation_levels
 
 __all__ = [
     "__version__", "JobError", "RunFailed", "UnitSet", "Axis", "Grid", "Job", "load_job",
     "job_from_dict", "PotentialTerm", "POTENTIALS", "register_potential", "Propagator", "SCHEMES",
     "Strang", "Order4", "Chebyshev", "CrankNicolson", "Hamiltonian", "Observer", "Detector",
-    "Setup", "Simulation", "run_job", "check_job",
+    "Setup", "Simulation", "run_job", "check_job", "stationary_states", "autocorrelation_levels",
 ]

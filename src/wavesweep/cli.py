@@ -81,6 +81,39 @@ def _parser() -> argparse.ArgumentParser:
     tr.add_argument("result", metavar="RUN.nc")
     tr.add_argument("--detector", default=None, help="detector beyond the scatterer for T(E)")
     tr.add_argument("--json", action="store_true", help="print one JSON object")
+
+    mv = sub.add_parser("movie", help="a movie of the probability density of a run (.mp4 or .gif)")
+    mv.add_argument("result", metavar="RUN.nc")
+    mv.add_argument("-o", "--output", required=True, metavar="FILE", help="FILE.mp4 (H.264) or FILE.gif")
+    mv.add_argument("--every", type=int, default=1, metavar="K", help="use every K-th snapshot")
+    mv.add_argument("--fps", type=float, default=20.0, help="frames per second")
+    mv.add_argument("--dpi", type=int, default=100, help="dots per inch (text and line sizes)")
+    mv.add_argument("--size", default="960x540", metavar="WxH", help="frame size in pixels")
+    mv.add_argument("--scale", default="linear", choices=("linear", "log"), help="density scale")
+    mv.add_argument("--floor", type=float, default=1e-6, help="log scale: lowest density / peak")
+    mv.add_argument("--parts", action="store_true", help="1D: Re psi, Im psi and |psi| "
+                                                         "(needs record.snapshot_psi = true)")
+    mv.add_argument("--projection", default=None, metavar="AXIS", help="3D: integrate over AXIS (default z)")
+    mv.add_argument("--slice", default=None, metavar="AXIS=VALUE", help="3D: the plane AXIS = VALUE instead")
+
+    pl = sub.add_parser("plot", help="a summary figure of a run, or of a study's summary.nc")
+    pl.add_argument("result", metavar="RUN.nc")
+    pl.add_argument("-o", "--output", required=True, metavar="FILE", help="FILE.png, .pdf or .svg")
+    pl.add_argument("--size", default="1200x900", metavar="WxH", help="figure size in pixels")
+    pl.add_argument("--dpi", type=int, default=100, help="dots per inch")
+
+    lv = sub.add_parser("levels", help="lowest stationary energies of a job, or the levels in a run")
+    lv.add_argument("job", nargs="?", default=None, metavar="JOB.toml", help="job file (not with --from)")
+    lv.add_argument("--count", type=int, default=None, metavar="K",
+                    help="how many levels (required with JOB.toml; with --from the K lowest found)")
+    lv.add_argument("--json", action="store_true", help="print one JSON object")
+    lv.add_argument("--set", action="append", default=[], metavar="KEY=VALUE", help="override a job field")
+    lv.add_argument("--states", default=None, metavar="FILE.nc",
+                    help="write the states (netCDF; [packet] kind = 'file' with state = i reads one)")
+    lv.add_argument("--from", dest="from_run", default=None, metavar="RUN.nc",
+                    help="the levels in a run's autocorrelation instead (no JOB.toml)")
+    lv.add_argument("--min-weight", type=float, default=1e-6, metavar="W",
+                    help="with --from: smallest weight |c_n|^2 reported")
     return p
 
 
@@ -275,9 +308,85 @@ def _transmission(args) -> int:
     return EXIT_OK
 
 
+def _movie(args) -> int:
+    from .viz.movie import MovieOptions, parse_size, render_movie
+
+    cut = None
+    if args.slice:
+        axis, _, value = args.slice.partition("=")
+        try:
+            cut = (axis.strip(), float(value))
+        except ValueError:
+            raise JobError("--slice", f"expected AXIS=VALUE such as z=0.0, got {args.slice!r}") from None
+    opt = MovieOptions(every=args.every, fps=args.fps, dpi=args.dpi, size=parse_size(args.size),
+                       scale=args.scale, floor=args.floor, parts=args.parts,
+                       projection=args.projection, slice=cut)
+    out = render_movie(args.result, args.output, opt)
+    print(f"{out['path']}: {out['frames']} frames in {out['seconds']:.1f} s "
+          f"({out['frames_per_second']:.0f} frames/s)")
+    return EXIT_OK
+
+
+def _plot(args) -> int:
+    from .viz.movie import parse_size
+    from .viz.summary import plot_result
+
+    print(plot_result(args.result, args.output, parse_size(args.size), args.dpi))
+    return EXIT_OK
+
+
+def _levels(args) -> int:
+    from .analysis.spectra import autocorrelation_levels, stationary_states, write_states
+
+    if args.from_run is not None:
+        if args.job is not None:
+            raise JobError("--from", "give either JOB.toml or --from RUN.nc, not both")
+        for flag, given in (("--states", args.states is not None), ("--set", bool(args.set))):
+            if given:
+                raise JobError(flag, "applies to JOB.toml; --from reads the levels of a finished run")
+        found = autocorrelation_levels(args.from_run, args.count, min_weight=args.min_weight, field="--from")
+        energies, weights, units = found.energies, found.weights, found.energy_units
+        notes = []
+        if args.count is not None and len(energies) < args.count:
+            notes.append(f"found {len(energies)} levels with weight >= {args.min_weight:g}, not {args.count}")
+        broad = [f"{e:.6g}" for e, blended in zip(energies, found.blended) if blended]
+        if broad:
+            notes.append(f"the lines at {', '.join(broad)} {units} are wider than the window's: a level "
+                         "nearby or decay shifts them; a longer run resolves them")
+    else:
+        if args.job is None:
+            raise JobError("JOB.toml", "give a job file, or --from RUN.nc for the levels of a run")
+        if args.count is None:
+            raise JobError("--count", "required with a job file: how many levels, e.g. --count 10")
+        from .jobfile import load_job
+        from .simulation import Setup
+
+        setup = Setup(load_job(args.job, args.set))
+        energies_au, states = stationary_states(setup, args.count, field="--count")
+        units = setup.units.unit_label("energy")
+        energies, weights, notes = energies_au / setup.units.factor("energy"), None, []
+        if args.states:
+            write_states(args.states, setup, energies_au, states)
+    if args.json:
+        body = {"energies": [float(e) for e in energies], "energy_units": units}
+        if weights is not None:
+            body["weights"] = [float(w) for w in weights]
+        print(json.dumps(body))
+    else:
+        head = f"{'level':>5}  {'energy (' + units + ')':>22}"
+        print(head + (f"  {'weight':>12}" if weights is not None else ""))
+        for n, e in enumerate(energies):
+            print(f"{n:>5}  {e:>22.12g}" + (f"  {weights[n]:>12.6g}" if weights is not None else ""))
+        if args.from_run is None and args.states:
+            print(f"states: {args.states}")
+    _warn("levels", notes)
+    return EXIT_OK
+
+
 _COMMANDS = {"run": _run, "check": _check, "submit": _submit, "work": _work, "status": _status,
              "retry": _retry_or_cancel, "cancel": _retry_or_cancel, "collect": _collect,
-             "arrivals": _arrivals, "transmission": _transmission}
+             "arrivals": _arrivals, "transmission": _transmission, "movie": _movie, "plot": _plot,
+             "levels": _levels}
 
 if __name__ == "__main__":  # pragma: no cover
     sys.exit(main())

@@ -71,6 +71,8 @@ RECORD = {
     "snapshot_every": Field("time", None, positive=True, doc="time between density snapshots"),
     "stride": Field("int", 1, positive=True),
     "final_state": Field("bool", True),
+    # None (not False) by default: absent keys stay out of the run id
+    "snapshot_psi": Field("bool", None, doc="store psi (real and imaginary parts) with each snapshot"),
 }
 DETECTOR = {
     "name": Field("str", None),
@@ -385,6 +387,11 @@ def _packet(raw, units, ndim, base, name) -> dict:
                         for j, p in enumerate(t["packets"])]
     if kind == "file":
         t["path"] = str((base / t["path"]).resolve())
+    if kind == "eigenstate" and t.get("potential") is not None:
+        try:   # the same checks as the job's [[potential]] tables, named under this packet
+            t["potential"] = _potentials(t["potential"], units, ndim, base) if t["potential"] else []
+        except JobError as e:
+            raise JobError(f"{name}.{e.field}", e.message.replace("[potential.", f"[{name}.potential.")) from None
     return t
 
 

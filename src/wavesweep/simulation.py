@@ -73,7 +73,7 @@ class Setup:
         from .check import representability
         representability(self)  # before the absorber's tuning squares the packet's momenta
         self.psi0 = build_state(self.packet, self.grid, self.mass,
-                                length_unit=(u.factor("length"), u.unit_label("length")))
+                                length_unit=(u.factor("length"), u.unit_label("length")), terms=self.terms)
         self.absorber = self._absorber(t["absorber"])
         self.hamiltonian = Hamiltonian(self.grid, self.mass, self.terms, self.absorber.rate)
         self.detectors = [self._detector(i, d) for i, d in enumerate(t["detector"])]
@@ -91,11 +91,13 @@ class Setup:
                              int(a["points"]), a.get("boundary") or g["boundary"]))
         return Grid(tuple(axes), radial="r" in g, angular_momentum=int(g.get("l", 0)))
 
-    def _term(self, i, table):
-        cls = term_class(table["kind"], f"potential.{i}.kind")
+    def _term(self, i, table, prefix="potential"):
+        """A potential term from its table; ``prefix.i`` names it in messages."""
+        where = f"{prefix}.{i}"
+        cls = term_class(table["kind"], f"{where}.kind")
         params = to_atomic({k: v for k, v in table.items() if k != "kind"}, cls.parameters,
-                           self.units, f"potential.{i}", self.grid.ndim)
-        ctx = PotentialContext(self.grid, self.mass, self.charge, self.units, f"potential.{i}")
+                           self.units, where, self.grid.ndim)
+        ctx = PotentialContext(self.grid, self.mass, self.charge, self.units, where)
         return cls(params, ctx)
 
     def _packet_atomic(self, table, name="packet") -> dict:
@@ -103,6 +105,9 @@ class Setup:
         p = to_atomic(table, PACKET_SCHEMAS[kind], self.units, name, self.grid.ndim)
         if kind == "superposition":
             p["packets"] = [self._packet_atomic(s, f"{name}.packets.{j}") for j, s in enumerate(table["packets"])]
+        if kind == "eigenstate" and table.get("potential") is not None:
+            # the trap's own terms, named under the packet in messages
+            p["trap_terms"] = [self._term(i, tab, f"{name}.potential") for i, tab in enumerate(table["potential"])]
         return p
 
     def momentum_window(self) -> list[tuple[float, float]]:
@@ -345,7 +350,7 @@ class Simulation:
         try:
             if resume is None:
                 self._sample(writer, observer, prop, psi, conv)
-                writer.add_snapshot(0.0, self._density(psi))
+                self._snapshot(writer, 0.0, psi)
             while done < s.total_steps:
                 n = min(s.sample_steps, s.total_steps - done)
                 psi = prop.step(psi, n)
@@ -395,7 +400,7 @@ class Simulation:
         values = self._sample(writer, observer, prop, psi, conv)
         self._health(values, prop, done)
         if done % s.snapshot_steps == 0:
-            writer.add_snapshot(prop.t / s.units.factor("time"), self._density(psi))
+            self._snapshot(writer, prop.t / s.units.factor("time"), psi)
 
     def _expected_position(self, steps: int) -> tuple[int, int]:
         """(samples, snapshots) the loop has written after ``steps`` steps
@@ -499,6 +504,13 @@ class Simulation:
                             "although every absorbed part is booked: the scheme is unstable for "
                             "this dt", step, t)
 
+    def _snapshot(self, writer, t_job: float, psi) -> None:
+        """A density frame, and psi itself when record.snapshot_psi asks for it."""
+        amp = None
+        if self.job.table["record"].get("snapshot_psi"):
+            amp = np.asarray(psi, np.complex128) * math.sqrt(self.setup.units.factor("length")) ** self.setup.grid.ndim
+        writer.add_snapshot(t_job, self._density(psi), amp)
+
     def _density(self, psi) -> np.ndarray:
         lf = self.setup.units.factor("length")
         d = np.abs(psi.astype(np.complex128)) ** 2
@@ -517,6 +529,7 @@ class Simulation:
             "potential": s.hamiltonian.static_potential / s.units.factor("energy"),
             "autocorrelation": True,
             "detector_amplitude": s.grid.ndim == 1,
+            "snapshot_psi": bool(s.job.table["record"].get("snapshot_psi")),
             "final_state": bool(s.job.table["record"]["final_state"]),
         }
 

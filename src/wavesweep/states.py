@@ -6,7 +6,14 @@
   ``momentum`` means p0 = direction * sqrt(2 m E) (1D/radial).
 * ``superposition``: sum_j a_j exp(i phase_j) psi_j of packets in ``packets``.
 * ``file``: psi from the ``psi_real``/``psi_imag`` variables of a netCDF file
-  (a result of this tool, or anything on the same grid).
+  (a result of this tool, or anything on the same grid); ``state = i`` picks
+  one along a ``state`` dimension (a file of ``wavesweep levels --states``).
+* ``eigenstate``: the stationary state number ``n`` (0 = ground, in energy
+  order) of the job's Hamiltonian at t = 0 without the absorber, or of the
+  trap given by its own ``potential`` tables, from
+  :func:`wavesweep.analysis.spectra.eigenpairs`; optionally boosted,
+  psi(r) exp(i p.r) (``momentum``, per axis), which adds p to <p>.  A level
+  that is degenerate has no unique state and is refused.
 
 Every state is normalised on the grid.  A packet whose analytic norm is not
 on the grid (centre outside, or cut by an edge) is an error.
@@ -45,7 +52,17 @@ _FILE = {
     "real": Field("str", "psi_real"),
     "imag": Field("str", "psi_imag"),
 }
-PACKET_SCHEMAS = {"gaussian": _GAUSSIAN, "superposition": _SUPERPOSITION, "file": _FILE}
+_FILE["state"] = Field("int", None, nonnegative=True,
+                       doc="which state along the file's `state` dimension (0-based)")
+_EIGENSTATE = {
+    "kind": Field("str"),
+    "n": Field("int", 0, nonnegative=True, doc="which stationary state: 0 = ground, in energy order"),
+    "momentum": Field("momentum", None, per_axis=True, doc="boost p: psi(r) exp(i p.r)"),
+    "potential": Field("list", None, doc="[[potential]]-style tables of the trap the state is "
+                                         "prepared in (default: the job's own potential)"),
+}
+PACKET_SCHEMAS = {"gaussian": _GAUSSIAN, "superposition": _SUPERPOSITION, "file": _FILE,
+                  "eigenstate": _EIGENSTATE}
 
 
 def gaussian_packet(coord: np.ndarray, x0: float, width: float, p0: float) -> np.ndarray:
@@ -74,14 +91,18 @@ def central_momenta(packet: dict, mass: float, ndim: int, field: str) -> list[fl
 
 
 def build_state(packet: dict, grid, mass: float, field: str = "packet",
-                length_unit: tuple[float, str] = (1.0, "bohr")) -> np.ndarray:
+                length_unit: tuple[float, str] = (1.0, "bohr"), terms=None) -> np.ndarray:
     """psi on the grid (complex128, normalised) from a packet table in atomic
-    units; ``length_unit`` (bohr per unit, label) is for messages only."""
+    units; ``length_unit`` (bohr per unit, label) is for messages only.
+    ``terms``: the job's potential terms, the default trap of an
+    ``eigenstate`` packet (whose own trap, if any, is ``packet["trap_terms"]``)."""
     kind = packet.get("kind", "gaussian")
     if kind == "gaussian":
         psi = _gaussian_state(packet, grid, mass, field, length_unit)
     elif kind == "superposition":
-        psi = _superposition(packet, grid, mass, field, length_unit)
+        psi = _superposition(packet, grid, mass, field, length_unit, terms)
+    elif kind == "eigenstate":
+        psi = _eigenstate(packet, grid, mass, field, terms)
     elif kind == "file":
         psi = _from_file(packet, grid, field)
     else:  # validated upstream; a programming error here
@@ -122,7 +143,7 @@ def _gaussian_state(packet, grid, mass, field, length_unit=(1.0, "bohr")):
     return psi
 
 
-def _superposition(packet, grid, mass, field, length_unit=(1.0, "bohr")):
+def _superposition(packet, grid, mass, field, length_unit=(1.0, "bohr"), terms=None):
     parts = packet["packets"]
     if not parts:
         raise JobError(f"{field}.packets", "needs at least one packet table")
@@ -132,8 +153,63 @@ def _superposition(packet, grid, mass, field, length_unit=(1.0, "bohr")):
         raise JobError(f"{field}.amplitudes", "needs one amplitude and one phase per packet")
     psi = 0.0
     for j, (sub, a, ph) in enumerate(zip(parts, amps, phases)):
-        psi = psi + float(a) * np.exp(1j * float(ph)) * build_state(sub, grid, mass, f"{field}.packets.{j}", length_unit)
+        psi = psi + float(a) * np.exp(1j * float(ph)) * build_state(sub, grid, mass, f"{field}.packets.{j}",
+                                                                     length_unit, terms)
     return np.broadcast_to(psi, grid.shape).astype(complex)
+
+
+def _eigenstate(packet, grid, mass, field, terms):
+    from .analysis.spectra import eigenpairs
+    from .hamiltonian import Hamiltonian
+
+    trap = packet.get("trap_terms")
+    if trap is None:
+        if terms is None:
+            raise ValueError("an eigenstate packet needs the job's potential terms")
+        trap = terms
+    n = int(packet.get("n", 0))
+    if n >= grid.size:
+        raise JobError(f"{field}.n", f"the grid has only {grid.size} states (0..{grid.size - 1}); got {n}")
+    # one level more than asked for, to tell whether level n is degenerate
+    energies, states = eigenpairs(Hamiltonian(grid, mass, trap), min(n + 2, grid.size), t=0.0,
+                                  field=f"{field}.n")
+    gap_tol = 1e-8 * max(abs(float(energies[n])), float(energies[-1] - energies[0]), 1e-300)
+    for j in (n - 1, n + 1):
+        if 0 <= j < len(energies) and abs(float(energies[j] - energies[n])) <= gap_tol:
+            raise JobError(f"{field}.n", f"level {n} is degenerate with level {j} (E = {energies[n]:.10g} "
+                                         "hartree): its state is not unique; break the symmetry of the trap "
+                                         "or superpose the degenerate states yourself")
+    psi = states[n].astype(complex)
+    if packet.get("momentum") is not None:
+        psi = _boost(psi, grid, packet["momentum"], field)
+    return psi
+
+
+def _boost(psi, grid, momenta, field):
+    """psi exp(i p.r); refused where the boosted state outruns the grid's
+    momenta (|p| + 3 sigma_p > k_max on an axis, as for Gaussian packets)."""
+    import scipy.fft
+
+    if grid.radial:
+        raise JobError(f"{field}.momentum", "a radial state u(r) has no direction to boost; remove momentum")
+    phase = 0.0
+    for i, (ax, p) in enumerate(zip(grid.axes, momenta)):
+        if not p:
+            continue
+        c = (scipy.fft.fft(psi, axis=i) if ax.boundary == "periodic"
+             else scipy.fft.dst(psi, type=1, axis=i, norm="ortho"))
+        k = ax.wavenumbers.reshape([-1 if j == i else 1 for j in range(grid.ndim)])
+        weight = np.abs(c) ** 2
+        sigma = math.sqrt(float(np.sum(k**2 * weight) / np.sum(weight)))  # psi is real: <p> = 0
+        reach = abs(p) + 3.0 * sigma
+        if reach > ax.k_max:
+            need = math.ceil(ax.length * (abs(p) + 6.0 * sigma) / math.pi) + 1
+            raise JobError(f"{field}.momentum", f"the boosted state reaches {reach / ax.k_max:.2f} times the "
+                                                f"largest momentum the grid resolves along {ax.name} "
+                                                f"(|p| + 3 sigma_p); use at least {need} points or a "
+                                                "smaller boost")
+        phase = phase + p * grid.coordinate(i)
+    return psi * np.exp(1j * phase)
 
 
 def _from_file(packet, grid, field):
@@ -150,6 +226,7 @@ def _from_file(packet, grid, field):
             re = ds[packet["real"]].load()
             im = ds[packet["imag"]].load()
             lf = float(ds.attrs.get("length_to_bohr", 1.0))
+            re, im = _pick_state(re, im, packet.get("state"), path, field)
     except JobError:  # a JobError is a ValueError: keep its own field
         raise
     except (OSError, ValueError) as e:
@@ -164,3 +241,19 @@ def _from_file(packet, grid, field):
         if not np.allclose(c, ax.coordinates, rtol=0, atol=1e-6 * ax.dx):
             raise JobError(f"{field}.path", f"the state's {dim} coordinates differ from the grid's")
     return np.asarray(re.values, float) + 1j * np.asarray(im.values, float)
+
+
+def _pick_state(re, im, index, path, field):
+    """One state along a ``state`` dimension (``wavesweep levels --states``)."""
+    if "state" not in re.dims:
+        if index is not None:
+            raise JobError(f"{field}.state", f"{path!r} holds one state (no state dimension); remove state")
+        return re, im
+    n = re.sizes["state"]
+    if index is None:
+        if n != 1:
+            raise JobError(f"{field}.state", f"{path!r} holds {n} states; choose one with state = 0..{n - 1}")
+        index = 0
+    if index >= n:
+        raise JobError(f"{field}.state", f"{path!r} holds {n} states (0..{n - 1}); got {index}")
+    return re.isel(state=index, drop=True), im.isel(state=index, drop=True)

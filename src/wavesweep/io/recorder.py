@@ -105,7 +105,8 @@ class ResultWriter:
         ``detectors``: list of (name, axis_name, position_job_units);
         ``boundaries``: list of face names; ``potential``: static V (job units,
         full grid); ``autocorrelation``: bool; ``final_state``: bool;
-        ``detector_amplitude``: bool, psi at each detector per sample (1D).
+        ``detector_amplitude``: bool, psi at each detector per sample (1D);
+        ``snapshot_psi``: bool, psi (float32 parts) with each snapshot.
     attrs : global attributes written at open (the job text, units, ...).
     """
 
@@ -206,6 +207,12 @@ class ResultWriter:
                                  complevel=4, shuffle=True, chunksizes=chunks)
         dens.units = u["density"]
         dens.long_name = "probability density |psi|^2"
+        if lay.get("snapshot_psi"):
+            for part in ("real", "imag"):
+                v = ds.createVariable(f"psi_snapshot_{part}", "f4", ("snapshot_time", *names), zlib=True,
+                                      complevel=4, shuffle=True, chunksizes=chunks)
+                v.units = f"{u['length']}-{len(names) / 2:g}"
+                v.long_name = f"{part} part of psi at the snapshot"
         pot = ds.createVariable("potential", "f8", tuple(names), zlib=True, complevel=4)
         pot.units, pot.long_name = u["energy"], "static part of the potential V"
         pot[:] = np.asarray(lay["potential"])[tuple(slice(None, None, s) for _ in names)]
@@ -258,13 +265,17 @@ class ResultWriter:
         if len(self._buf) >= self.block:
             self.flush()
 
-    def add_snapshot(self, time: float, density: np.ndarray) -> None:
-        """One density frame (job units, full grid; decimated here)."""
+    def add_snapshot(self, time: float, density: np.ndarray, psi: np.ndarray | None = None) -> None:
+        """One density frame (job units, full grid; decimated here), and psi
+        (job units) when the layout stores it."""
         s = self.layout["stride"]
-        frame = density[tuple(slice(None, None, s) for _ in range(density.ndim))]
+        cut = tuple(slice(None, None, s) for _ in range(density.ndim))
         i = self._n_snap
         self.ds["snapshot_time"][i] = time
-        self.ds["density"][i] = frame.astype(np.float32)
+        self.ds["density"][i] = density[cut].astype(np.float32)
+        if psi is not None and "psi_snapshot_real" in self.ds.variables:
+            self.ds["psi_snapshot_real"][i] = psi.real[cut].astype(np.float32)
+            self.ds["psi_snapshot_imag"][i] = psi.imag[cut].astype(np.float32)
         self._n_snap += 1
 
     def flush(self) -> None:

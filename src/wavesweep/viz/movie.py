@@ -1,0 +1,420 @@
+"""Movies of the probability density, one frame per selected snapshot.
+
+Frames are streamed: each snapshot is read from the netCDF file, drawn by
+updating the artists of one figure (the static parts -- axes, potential,
+absorbing layers, detectors, colour bar -- are rendered once and restored
+as a background, then only the moving artists are drawn: matplotlib's
+blitting), and piped as raw RGB to the ffmpeg binary that the imageio-ffmpeg
+package ships (H.264 in MP4, or GIF with a palette per frame).  Memory is
+independent of the number of frames.  The file is written under a temporary
+name and renamed into place when complete.
+
+1D and radial: the density (radial: the radial probability density |u(r)|^2)
+against position, the static potential on its own axis, absorbing layers
+shaded, detectors marked, the time in a corner; ``parts`` draws Re psi,
+Im psi and +-|psi| instead (needs ``record.snapshot_psi = true``).
+2D: the density as an image on one colour scale for all frames (linear or
+logarithmic), potential contours over it, equal aspect.  3D: the projection
+(integral along an axis) or a slice, drawn as in 2D.
+"""
+from __future__ import annotations
+
+import os
+import subprocess
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import JobError
+from . import style
+from .scene import FrameReader, Scene, read_scene
+
+__all__ = ["MovieOptions", "render_movie", "VideoWriter", "parse_size"]
+
+FORMATS = (".mp4", ".gif")
+
+
+@dataclass
+class MovieOptions:
+    """``every``: use every K-th snapshot; ``fps``: frames per second;
+    ``dpi``; ``size``: (width, height) pixels; ``scale``: "linear" or "log"
+    (2D/3D); ``floor``: lowest density of the log scale relative to the
+    largest; ``parts``: Re/Im psi (1D); ``projection``: axis to integrate
+    over (3D, default the last); ``slice``: (axis, value) instead."""
+
+    every: int = 1
+    fps: float = 20.0
+    dpi: int = 100
+    size: tuple[int, int] = (960, 540)
+    scale: str = "linear"
+    floor: float = 1e-6
+    parts: bool = False
+    projection: str | None = None
+    slice: tuple[str, float] | None = None
+
+
+def parse_size(text: str) -> tuple[int, int]:
+    """"WIDTHxHEIGHT" in pixels (even numbers: H.264 needs them)."""
+    try:
+        w, h = (int(v) for v in text.lower().split("x"))
+    except ValueError:
+        raise JobError("--size", f"expected WIDTHxHEIGHT in pixels such as 960x540, got {text!r}") from None
+    if not (16 <= w <= 7680 and 16 <= h <= 4320):
+        raise JobError("--size", f"{w}x{h} is outside 16x16 .. 7680x4320 pixels")
+    return w - w % 2, h - h % 2
+
+
+# -- the video file --------------------------------------------------------------
+class VideoWriter:
+    """Raw RGB frames in, an MP4 (H.264) or GIF file out, through ffmpeg."""
+
+    def __init__(self, path, size: tuple[int, int], fps: float):
+        self.path = Path(path)
+        self.size = size
+        suffix = self.path.suffix.lower()
+        if suffix not in FORMATS:
+            raise JobError("-o", f"unknown movie type {self.path.suffix or '(none)'!r}; "
+                                 f"use one of {', '.join(FORMATS)}")
+        folder = self.path.parent if str(self.path.parent) else Path(".")
+        if not folder.is_dir() or not os.access(folder, os.W_OK):
+            raise JobError("-o", f"cannot write into {str(folder)!r}: no such folder or no permission")
+        self.tmp = self.path.with_name(f".{self.path.stem}.part{suffix}")
+        ffmpeg = _ffmpeg()
+        w, h = size
+        cmd = [ffmpeg, "-y", "-loglevel", "error", "-f", "rawvideo", "-pix_fmt", "rgb24",
+               "-s", f"{w}x{h}", "-r", f"{fps:g}", "-i", "-"]
+        if suffix == ".mp4":
+            cmd += ["-c:v", "libx264", "-pix_fmt", "yuv420p", "-preset", "fast", "-crf", "20",
+                    "-movflags", "+faststart", "-f", "mp4"]
+        else:   # one palette per frame keeps the stream flowing (no whole-movie palette pass)
+            cmd += ["-filter_complex", "split[a][b];[a]palettegen=stats_mode=single[p];"
+                                       "[b][p]paletteuse=new=1", "-loop", "0", "-f", "gif"]
+        self.proc = subprocess.Popen(cmd + [str(self.tmp)], stdin=subprocess.PIPE,
+                                     stderr=subprocess.PIPE)
+        self.frames = 0
+
+    def write(self, rgb: np.ndarray) -> None:
+        if rgb.shape != (self.size[1], self.size[0], 3):
+            raise ValueError(f"frame of shape {rgb.shape}, expected {(self.size[1], self.size[0], 3)}")
+        try:
+            self.proc.stdin.write(np.ascontiguousarray(rgb, dtype=np.uint8).tobytes())
+        except BrokenPipeError:
+            self._fail()
+        self.frames += 1
+
+    def close(self) -> Path:
+        self.proc.stdin.close()
+        if self.proc.wait() != 0:
+            self._fail()
+        os.replace(self.tmp, self.path)
+        return self.path
+
+    def abort(self) -> None:
+        try:
+            self.proc.stdin.close()
+        except OSError:
+            pass
+        self.proc.kill()
+        self.proc.wait()
+        self.tmp.unlink(missing_ok=True)
+
+    def _fail(self):
+        err = self.proc.stderr.read().decode(errors="replace").strip().splitlines()
+        self.abort()
+        raise JobError("-o", f"ffmpeg could not write {str(self.path)!r}: {err[-1] if err else 'unknown error'}")
+
+
+def _ffmpeg() -> str:
+    try:
+        import imageio_ffmpeg
+    except ImportError:
+        raise JobError("movie", "needs the imageio-ffmpeg package: pip install 'wavesweep[video]'") from None
+    return imageio_ffmpeg.get_ffmpeg_exe()
+
+
+# -- painters -------------------------------------------------------------------------
+class Painter:
+    """Draws one run's frames into one figure; subclasses know the geometry.
+
+    ``prepare(reader, indices)`` may make a first pass over the frames (the
+    colour or y scale is fixed over the movie); ``update(frame, t)`` sets the
+    moving artists and returns them."""
+
+    def __init__(self, scene: Scene, options: MovieOptions):
+        self.scene = scene
+        self.opt = options
+        with style.style():
+            self.fig = style.figure(*options.size, options.dpi)
+        self.animated = []
+
+    def frame_of(self, reader, i):
+        return reader.frame(i)
+
+    def prepare(self, reader, indices) -> None:
+        raise NotImplementedError
+
+    def update(self, frame, t) -> list:
+        raise NotImplementedError
+
+    def _time_text(self, ax):
+        txt = ax.text(0.015, 0.97, "", transform=ax.transAxes, ha="left", va="top", fontsize=10,
+                      bbox=dict(boxstyle="round,pad=0.25", fc="white", ec="none", alpha=0.8))
+        self.animated.append(txt)
+        return txt
+
+    def _time_label(self, t) -> str:
+        return f"t = {t:.6g} {self.scene.units['time']}"
+
+
+class Painter1D(Painter):
+    def prepare(self, reader, indices):
+        sc, opt = self.scene, self.opt
+        name = sc.axes[0]
+        self.x = sc.coords[name]
+        L = style.pretty_unit(sc.units["length"])
+        if opt.parts and not sc.has_psi:
+            raise JobError("--parts", "the run stored no psi with its snapshots; run it with "
+                                      "record.snapshot_psi = true")
+        with style.style():
+            ax = self.fig.add_subplot(111)
+            self.fig.subplots_adjust(left=0.09, right=0.9 if self._has_potential() else 0.97,
+                                     bottom=0.13, top=0.93)
+            top = 0.0
+            for i in indices:                      # one streaming pass: a fixed y scale
+                top = max(top, float(np.nanmax(np.abs(self._values(reader, i)[0]))))
+            top = top * 1.08 if top > 0 else 1.0
+            self.fill = None
+            if opt.parts:
+                ax.set_ylim(-top, top)
+                ax.set_ylabel(f"psi ({L}$^{{-1/2}}$)")
+                self.lines = [ax.plot(self.x, np.zeros_like(self.x), color=c, lw=w, label=l,
+                                      animated=True)[0]
+                              for c, w, l in ((style.DENSITY, 2.2, "|psi|"), (style.DENSITY, 2.2, None),
+                                              (style.REAL, 1.0, "Re psi"), (style.IMAG, 1.0, "Im psi"))]
+                ax.legend(loc="upper right", frameon=False)
+            else:
+                if opt.scale == "log":
+                    ax.set_yscale("log")
+                    ax.set_ylim(top * opt.floor, top)
+                else:
+                    ax.set_ylim(0, top)
+                label = "radial probability density |u(r)|$^2$" if sc.radial else "probability density"
+                ax.set_ylabel(f"{label} ({style.pretty_unit(sc.units['density'])})")
+                self.lines = [ax.plot(self.x, np.zeros_like(self.x), color=style.DENSITY, lw=1.6,
+                                      animated=True)[0]]
+                self._floor = ax.get_ylim()[0]
+                self.fill = ax.fill_between(self.x, self._floor, self._floor, color=style.DENSITY,
+                                            alpha=0.25, lw=0, animated=True)
+            ax.set_xlim(self.x[0], self.x[-1])
+            ax.set_xlabel(f"{name} ({sc.units['length']})")
+            for layer in sc.layers:
+                ax.axvspan(layer.start, layer.stop, color=style.ABSORBER, alpha=0.45, lw=0)
+                ax.text((layer.start + layer.stop) / 2, 0.015, "absorber", transform=ax.get_xaxis_transform(),
+                        ha="center", va="bottom", fontsize=7, color="#555555")
+            for dname, dax, pos in sc.detectors:
+                if dax == name:
+                    ax.axvline(pos, color=style.DETECTOR, lw=0.9, ls="--")
+                    ax.text(pos, 0.985, f" {dname}", transform=ax.get_xaxis_transform(),
+                            ha="left", va="top", fontsize=7, color=style.DETECTOR)
+            if self._has_potential():
+                v = sc.potential
+                span = float(np.ptp(v))
+                vax = ax.twinx()
+                vax.spines["right"].set_visible(True)
+                vax.plot(self.x, v, color=style.POTENTIAL, lw=1.0, alpha=0.9)
+                # V's minimum on the zero line of the left axis, its maximum below the top
+                below = 1.15 * span if opt.parts else 0.0
+                vax.set_ylim(float(v.min()) - below, float(v.min()) + 1.15 * span)
+                vax.set_ylabel(f"V ({style.pretty_unit(sc.units['energy'])})", color=style.POTENTIAL)
+                vax.tick_params(axis="y", colors=style.POTENTIAL)
+            ax.set_title(sc.title, loc="left")
+            self.text = self._time_text(ax)
+        self.animated[:0] = self.lines + ([self.fill] if self.fill is not None else [])
+
+    def _has_potential(self) -> bool:
+        v = self.scene.potential
+        return v is not None and v.ndim == 1 and float(np.ptp(v)) > 0
+
+    def _values(self, reader, i):
+        if self.opt.parts:
+            re = reader.frame(i, "psi_snapshot_real")
+            im = reader.frame(i, "psi_snapshot_imag")
+            return np.hypot(re, im), re, im
+        return (reader.frame(i),)
+
+    def frame_of(self, reader, i):
+        return self._values(reader, i)
+
+    def update(self, frame, t):
+        if self.opt.parts:
+            mod, re, im = frame
+            for line, y in zip(self.lines, (mod, -mod, re, im)):
+                line.set_ydata(y)
+        else:
+            y = np.maximum(frame[0], self._floor)
+            self.lines[0].set_ydata(y)
+            verts = np.concatenate([np.column_stack([self.x, y]),
+                                    [[self.x[-1], self._floor], [self.x[0], self._floor]]])
+            self.fill.set_verts([verts])
+        self.text.set_text(self._time_label(t))
+        return self.animated
+
+
+class Painter2D(Painter):
+    """2D grids, and 3D grids through a projection or a slice."""
+
+    def prepare(self, reader, indices):
+        from matplotlib.colors import LogNorm, Normalize
+
+        sc, opt = self.scene, self.opt
+        self._plane(sc)
+        vmax = 0.0
+        for i in indices:
+            vmax = max(vmax, float(np.max(self.reduce(reader.frame(i)))))
+        vmax = vmax if vmax > 0 else 1.0
+        norm = (LogNorm(vmin=vmax * opt.floor, vmax=vmax) if opt.scale == "log"
+                else Normalize(vmin=0.0, vmax=vmax))
+        a, b = self.plane
+        xa, xb = sc.coords[a], sc.coords[b]
+        da, db = (xa[1] - xa[0]) / 2, (xb[1] - xb[0]) / 2
+        from mpl_toolkits.axes_grid1 import make_axes_locatable
+
+        extent = (xa[0] - da, xa[-1] + da, xb[0] - db, xb[-1] + db)
+        overlays = []      # drawn over the image each frame (the image is drawn after the background)
+        with style.style():
+            ax = self.fig.add_subplot(111)
+            self.image = ax.imshow(np.zeros((len(xb), len(xa))), origin="lower", norm=norm,
+                                   cmap=style.DENSITY_CMAP, aspect="equal", interpolation="nearest",
+                                   extent=extent, animated=True)
+            ax.set_xlim(extent[0], extent[1])
+            ax.set_ylim(extent[2], extent[3])
+            cax = make_axes_locatable(ax).append_axes("right", size="3%", pad=0.12)
+            bar = self.fig.colorbar(self.image, cax=cax)
+            bar.set_label(self.density_label + (" (log scale)" if opt.scale == "log" else ""))
+            v = self._plane_potential()
+            if v is not None and float(np.ptp(v)) > 0:
+                levels = np.linspace(float(v.min()), float(v.max()), 7)[1:-1]
+                overlays.append(ax.contour(xa, xb, v.T, levels=levels, colors="white",
+                                           linewidths=0.7, alpha=0.85))
+            for layer in sc.layers:
+                span = ax.axvspan if layer.axis == a else (ax.axhspan if layer.axis == b else None)
+                if span is not None:
+                    overlays.append(span(layer.start, layer.stop, color="white", alpha=0.18, lw=0))
+            for dname, dax, pos in sc.detectors:
+                line = ax.axvline if dax == a else (ax.axhline if dax == b else None)
+                if line is not None:
+                    overlays.append(line(pos, color=style.DETECTOR, lw=1.0, ls="--"))
+            for o in overlays:
+                o.set_animated(True)
+            ax.set_xlabel(f"{a} ({sc.units['length']})")
+            ax.set_ylabel(f"{b} ({sc.units['length']})")
+            ax.set_title(sc.title + self.subtitle, loc="left")
+            self.fig.subplots_adjust(left=0.08, right=0.9, bottom=0.11, top=0.92)
+            self.text = self._time_text(ax)
+        self.animated[:0] = [self.image, *overlays]
+
+    def _plane(self, sc):
+        if sc.ndim == 2:
+            self.plane, self.reduce = tuple(sc.axes), (lambda f: f)
+            self.density_label = f"probability density ({style.pretty_unit(sc.units['density'])})"
+            self.subtitle = ""
+            self._cut = None
+            return
+        opt = self.opt
+        if opt.slice is not None:
+            axis, value = opt.slice
+            if axis not in sc.axes:
+                raise JobError("--slice", f"no axis {axis!r}; the run has {', '.join(sc.axes)}")
+            k = sc.axes.index(axis)
+            j = int(np.argmin(np.abs(sc.coords[axis] - value)))
+            self.reduce = lambda f: np.take(f, j, axis=k)
+            self._cut = ("slice", k, j)
+            self.density_label = f"probability density ({style.pretty_unit(sc.units['density'])})"
+            self.subtitle = f"  (slice {axis} = {sc.coords[axis][j]:.4g} {sc.units['length']})"
+        else:
+            axis = opt.projection or sc.axes[-1]
+            if axis not in sc.axes:
+                raise JobError("--projection", f"no axis {axis!r}; the run has {', '.join(sc.axes)}")
+            k = sc.axes.index(axis)
+            d = abs(float(sc.coords[axis][1] - sc.coords[axis][0]))
+            self.reduce = lambda f: f.sum(axis=k) * d
+            self._cut = ("projection", k, None)
+            self.density_label = f"integrated over {axis} ({sc.units['length']}$^{{-2}}$)"
+            self.subtitle = f"  (integrated over {axis})"
+        self.plane = tuple(n for n in sc.axes if n != axis)
+
+    def _plane_potential(self):
+        v = self.scene.potential
+        if v is None or self._cut is None:
+            return v
+        kind, k, j = self._cut
+        return np.take(v, j, axis=k) if kind == "slice" else v.mean(axis=k)
+
+    def update(self, frame, t):
+        self.image.set_data(self.reduce(frame).T)
+        self.text.set_text(self._time_label(t))
+        return self.animated
+
+
+def painter_for(scene: Scene, options: MovieOptions) -> Painter:
+    if options.scale not in ("linear", "log"):
+        raise JobError("--scale", f"unknown scale {options.scale!r}; use linear or log")
+    if scene.ndim == 1:
+        if options.projection or options.slice:
+            raise JobError("--projection", "a 1D run has nothing to project or slice")
+        return Painter1D(scene, options)
+    if options.parts:
+        raise JobError("--parts", "real and imaginary parts are drawn for 1D runs only")
+    if scene.ndim == 2 and (options.projection or options.slice):
+        raise JobError("--projection", "a 2D run is drawn whole; --projection and --slice are for 3D")
+    return Painter2D(scene, options)
+
+
+# -- the loop ----------------------------------------------------------------------
+def render_frames(scene: Scene, options: MovieOptions, sink, indices=None) -> dict:
+    """Draw the selected frames of ``scene`` and hand each RGB array to
+    ``sink(rgb)``; returns counts and timings."""
+    if options.every < 1:
+        raise JobError("--every", f"must be at least 1, got {options.every}")
+    indices = list(range(0, scene.n_snapshots, options.every)) if indices is None else list(indices)
+    painter = painter_for(scene, options)
+    with FrameReader(scene.path) as reader:
+        t0 = time.perf_counter()
+        painter.prepare(reader, indices)
+        canvas = painter.fig.canvas
+        canvas.draw()                                   # everything but the animated artists
+        background = canvas.copy_from_bbox(painter.fig.bbox)
+        t1 = time.perf_counter()
+        for i in indices:
+            artists = painter.update(painter.frame_of(reader, i), float(reader.times[i]))
+            canvas.restore_region(background)
+            for a in artists:
+                painter.fig.draw_artist(a)
+            rgb = np.asarray(canvas.buffer_rgba())[:, :, :3]
+            sink(rgb)
+        t2 = time.perf_counter()
+    return {"frames": len(indices), "prepare_seconds": t1 - t0, "render_seconds": t2 - t1}
+
+
+def render_movie(result, output, options: MovieOptions | None = None, **kw) -> dict:
+    """Write the movie of the result at ``result`` to ``output`` (.mp4 or
+    .gif); keyword arguments are :class:`MovieOptions` fields.  Returns
+    ``{"path", "frames", "seconds", "frames_per_second"}``."""
+    options = options or MovieOptions(**kw)
+    scene = read_scene(result)
+    if options.fps <= 0:
+        raise JobError("--fps", f"must be positive, got {options.fps}")
+    options.size = (options.size[0] - options.size[0] % 2, options.size[1] - options.size[1] % 2)
+    writer = VideoWriter(output, options.size, options.fps)
+    t0 = time.perf_counter()
+    try:
+        info = render_frames(scene, options, writer.write)
+        path = writer.close()
+    except BaseException:
+        writer.abort()
+        raise
+    seconds = time.perf_counter() - t0
+    return {"path": path, "frames": info["frames"], "seconds": seconds,
+            "frames_per_second": info["frames"] / seconds if seconds > 0 else float("inf")}

@@ -1,0 +1,125 @@
+"""What a figure or movie needs to know about a run, read once from its
+result file (job units): axes, potential, absorbing layers, detectors, units,
+and a streaming reader for the snapshot frames.
+
+Frames are read one at a time with netCDF4 (each frame is one chunk on
+disk), so memory does not depend on the number of snapshots.
+"""
+from __future__ import annotations
+
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import netCDF4
+import numpy as np
+
+from ..errors import JobError
+from ..io.results import open_result
+
+__all__ = ["Scene", "FrameReader", "read_scene"]
+
+
+@dataclass
+class Layer:
+    face: str          # "x-", "y+", ...
+    axis: str
+    start: float       # the layer spans [start, stop] along ``axis`` (job length units)
+    stop: float
+
+
+@dataclass
+class Scene:
+    path: Path
+    title: str
+    axes: list                       # axis names of the snapshots, e.g. ["x", "y"]
+    coords: dict                     # name -> coordinates (job length units)
+    radial: bool
+    potential: np.ndarray | None     # static V on the snapshot grid (job energy units)
+    layers: list = field(default_factory=list)
+    detectors: list = field(default_factory=list)   # (name, axis name, position)
+    units: dict = field(default_factory=dict)       # length, energy, time, density, flux labels
+    n_snapshots: int = 0
+    has_psi: bool = False
+
+    @property
+    def ndim(self) -> int:
+        return len(self.axes)
+
+
+def read_scene(path, field_name: str = "RUN.nc") -> Scene:
+    """The scene of the result at ``path``; JobError when it is not a result."""
+    ds = open_result(path, require=("density", "snapshot_time"), field=field_name)
+    try:
+        axes = [d for d in ds["density"].dims if d != "snapshot_time"]
+        coords = {a: np.asarray(ds[a].values, float) for a in axes}
+        job = tomllib.loads(ds.attrs["job"])
+        pot = np.asarray(ds["potential"].values, float) if "potential" in ds else None
+        dets = []
+        if "detector" in ds.coords and ds.sizes.get("detector", 0):
+            names = [str(v) for v in ds["detector"].values]
+            xs = np.asarray(ds["detector_x"].values, float)
+            ax_names = ([str(v) for v in ds["detector_axis"].values] if "detector_axis" in ds
+                        else [axes[0]] * len(names))
+            dets = list(zip(names, ax_names, xs))
+        units = {
+            "length": ds.attrs.get("units_length", ""),
+            "energy": ds.attrs.get("units_energy", ""),
+            "time": ds.attrs.get("units_time", ""),
+            "density": ds["density"].attrs.get("units", ""),
+            "flux": ds["flux"].attrs.get("units", "") if "flux" in ds else "",
+        }
+        scene = Scene(Path(path), str(ds.attrs.get("title", "")), axes, coords,
+                      ds.attrs.get("grid_kind") == "radial", pot, _layers(job, axes, coords), dets,
+                      units, int(ds.sizes.get("snapshot_time", 0)), "psi_snapshot_real" in ds)
+    finally:
+        ds.close()
+    if scene.n_snapshots == 0:
+        raise JobError(field_name, f"{str(path)!r} holds no density snapshots; run the job with "
+                                   "record.snapshot_every shorter than evolve.duration")
+    return scene
+
+
+def _layers(job: dict, axes, coords) -> list[Layer]:
+    """Absorbing layers from the resolved job (thickness in job units)."""
+    ab = job.get("absorber") or {}
+    if ab.get("kind", "none") == "none":
+        return []
+    th = float(ab.get("thickness", 0.0))
+    grid = job.get("grid", {})
+    faces = ab.get("faces") or [f"{a}{s}" for a in axes for s in "-+" if not (a == "r" and s == "-")]
+    out = []
+    for face in faces:
+        a, side = face[:-1], face[-1]
+        if a not in coords:
+            continue
+        lo = float(grid.get(a, {}).get("min", coords[a][0]))
+        hi = float(grid.get(a, {}).get("max", coords[a][-1]))
+        out.append(Layer(face, a, hi - th, hi) if side == "+" else Layer(face, a, lo, lo + th))
+    return out
+
+
+class FrameReader:
+    """Streams snapshot frames (float64) of one variable from a result file."""
+
+    def __init__(self, path, variable: str = "density"):
+        self._nc = netCDF4.Dataset(path, "r")
+        self._nc.set_auto_mask(False)
+        self._var = self._nc[variable]
+        self.times = np.asarray(self._nc["snapshot_time"][:], float)
+
+    def __len__(self) -> int:
+        return len(self.times)
+
+    def frame(self, i: int, variable: str | None = None) -> np.ndarray:
+        var = self._var if variable is None else self._nc[variable]
+        return np.asarray(var[i], dtype=np.float64)
+
+    def close(self) -> None:
+        self._nc.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()

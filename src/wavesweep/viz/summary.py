@@ -1,0 +1,251 @@
+"""One-page figures: of a run (density map over position and time, the
+probability books, detector fluxes, energy drift) and of a study (what was
+transmitted, reflected and when it arrived, against the swept parameters).
+
+Every axis is labelled with its unit; colours follow :mod:`.style`.
+"""
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+from ..errors import JobError
+from ..io.results import open_result
+from . import style
+from .scene import FrameReader, read_scene
+
+__all__ = ["plot_result", "plot_run", "plot_study", "FIGURE_TYPES"]
+
+FIGURE_TYPES = (".png", ".pdf", ".svg")
+MAP_FLOOR = 1e-6            # the density map's log scale spans six decades below its peak
+
+
+def _check_output(path) -> Path:
+    path = Path(path)
+    if path.suffix.lower() not in FIGURE_TYPES:
+        raise JobError("-o", f"unknown figure type {path.suffix or '(none)'!r}; use one of "
+                             f"{', '.join(FIGURE_TYPES)}")
+    folder = path.parent if str(path.parent) else Path(".")
+    if not folder.is_dir() or not os.access(folder, os.W_OK):
+        raise JobError("-o", f"cannot write into {str(folder)!r}: no such folder or no permission")
+    return path
+
+
+def _save(fig, path: Path) -> Path:
+    tmp = path.with_name(f".{path.stem}.part{path.suffix}")
+    try:
+        fig.savefig(tmp, dpi=fig.dpi, format=path.suffix[1:].lower())
+        os.replace(tmp, path)
+    except OSError as e:
+        tmp.unlink(missing_ok=True)
+        raise JobError("-o", f"cannot write {str(path)!r}: {e.strerror or e}") from None
+    return path
+
+
+def plot_result(path, output, size=(1200, 900), dpi: int = 100) -> Path:
+    """A run's figure, or a study's when ``path`` is a ``summary.nc``."""
+    if not Path(path).exists():
+        raise JobError("RUN.nc", f"no such file {str(path)!r}")
+    try:
+        with xr.open_dataset(path, engine="netcdf4") as ds:
+            is_study = "study" in ds.attrs and "final_absorbed" in ds
+    except (OSError, ValueError) as e:
+        raise JobError("RUN.nc", f"{str(path)!r} is not a readable netCDF file ({' '.join(str(e).split())})") from None
+    return (plot_study if is_study else plot_run)(path, output, size, dpi)
+
+
+# -- one run ---------------------------------------------------------------------------
+def _density_map(scene):
+    """(snapshot times, first-axis coordinates, density integrated over the
+    other axes), streamed frame by frame."""
+    axis = scene.axes[0]
+    others = [scene.coords[a] for a in scene.axes[1:]]
+    cell = float(np.prod([abs(c[1] - c[0]) for c in others])) if others else 1.0
+    with FrameReader(scene.path) as reader:
+        rows = []
+        for i in range(len(reader)):
+            f = reader.frame(i)
+            rows.append(f.sum(axis=tuple(range(1, f.ndim))) * cell if f.ndim > 1 else f)
+        return reader.times, scene.coords[axis], np.array(rows)
+
+
+def plot_run(path, output, size=(1200, 900), dpi: int = 100) -> Path:
+    """Four panels of one run, written to ``output`` (.png/.pdf/.svg)."""
+    from matplotlib.colors import LogNorm
+
+    output = _check_output(output)
+    scene = read_scene(path)
+    ds = open_result(path, require=("time", "norm"))
+    try:
+        ds = ds.load()
+    finally:
+        ds.close()
+    T, L = scene.units["time"], scene.units["length"]
+    t = ds.time.values
+    with style.style():
+        fig = style.figure(*size, dpi)
+        axes = fig.subplots(2, 2, gridspec_kw={"height_ratios": [1.25, 1]})
+        (amap, abooks), (aflux, aenergy) = axes
+
+        times, x, dens = _density_map(scene)
+        peak = float(np.max(dens)) if dens.size else 0.0
+        if peak > 0 and len(times) > 1:
+            mesh = amap.pcolormesh(x, times, np.maximum(dens, peak * MAP_FLOOR * 0.1), shading="nearest",
+                                   cmap=style.DENSITY_CMAP, norm=LogNorm(vmin=peak * MAP_FLOOR, vmax=peak),
+                                   rasterized=True)
+            bar = fig.colorbar(mesh, ax=amap, fraction=0.05, pad=0.02)
+            what = "density" if scene.ndim == 1 else f"density integrated over {', '.join(scene.axes[1:])}"
+            unit = scene.units["density"] if scene.ndim == 1 else f"{L}-1"
+            bar.set_label(f"{what} ({style.pretty_unit(unit)})")
+        else:
+            amap.plot(x, dens[0] if len(dens) else np.zeros_like(x), color=style.DENSITY)
+            amap.text(0.5, 0.9, "one snapshot only", transform=amap.transAxes, ha="center")
+        for layer in scene.layers:
+            if layer.axis == scene.axes[0]:
+                amap.axvspan(layer.start, layer.stop, color="white", alpha=0.15, lw=0)
+        for name, dax, pos in scene.detectors:
+            if dax == scene.axes[0]:
+                amap.axvline(pos, color=style.DETECTOR, lw=0.8, ls="--")
+        amap.set_xlabel(f"{scene.axes[0]} ({L})")
+        amap.set_ylabel(f"time ({T})")
+        amap.set_title("probability density over position and time (log scale)", loc="left")
+
+        colors = style.line_colors()
+        abooks.plot(t, ds.norm.values, color=colors[0], label="on the grid")
+        if "absorbed" in ds and ds.sizes.get("boundary", 0):
+            for j, face in enumerate(ds.boundary.values):
+                abooks.plot(t, ds.absorbed.values[:, j], color=colors[(j + 1) % len(colors)],
+                            label=f"absorbed at {face}")
+            total = ds.norm.values + ds.absorbed.values.sum(axis=1)
+            abooks.plot(t, total, color="black", lw=0.8, ls=":", label="sum")
+        abooks.set_ylim(-0.03, 1.05)
+        abooks.set_xlabel(f"time ({T})")
+        abooks.set_ylabel("probability")
+        abooks.set_title("where the probability is", loc="left")
+        abooks.legend(frameon=False, loc="center right")
+
+        if "flux" in ds and ds.sizes.get("detector", 0):
+            for j, name in enumerate(ds.detector.values):
+                aflux.plot(t, ds.flux.values[:, j], color=colors[j % len(colors)],
+                           label=f"{name} ({float(ds.detector_x.values[j]):.4g} {L})")
+            aflux.axhline(0, color="black", lw=0.5)
+            aflux.legend(frameon=False)
+            aflux.set_ylabel(f"probability current ({style.pretty_unit(ds.flux.attrs.get('units', ''))})")
+        else:
+            aflux.text(0.5, 0.5, "no detectors in this run", transform=aflux.transAxes,
+                       ha="center", va="center", color="#777777")
+        aflux.set_xlabel(f"time ({T})")
+        aflux.set_title("flux through the detectors", loc="left")
+
+        if "energy" in ds:
+            e = ds.energy.values
+            E = style.pretty_unit(ds.energy.attrs.get("units", ""))
+            # <H> is per unit of what is on the grid: once the absorbers take
+            # the fast parts it changes for that reason alone
+            taken = (ds.absorbed.values.sum(axis=1) if "absorbed" in ds and ds.sizes.get("boundary", 0)
+                     else np.zeros_like(t))
+            clean = taken <= 1e-6
+            aenergy.plot(t[clean], (e - e[0])[clean], color=colors[2], label="nothing absorbed yet")
+            if not clean.all():
+                aenergy.plot(t[~clean], (e - e[0])[~clean], color=colors[2], ls=":",
+                             label="after absorption began (<H> of what remains)")
+                aenergy.legend(frameon=False)
+            aenergy.axhline(0, color="black", lw=0.5)
+            aenergy.set_ylabel(f"<H>(t) - <H>(0) ({E})")
+            aenergy.set_title(f"energy drift of what is on the grid (<H>(0) = {e[0]:.6g} {E})", loc="left")
+        aenergy.set_xlabel(f"time ({T})")
+        fig.suptitle(f"{scene.title}   [{ds.attrs.get('run_id', '')}, {ds.attrs.get('scheme', '')}, "
+                     f"dt = {ds.attrs.get('dt', '')} {T}]", fontsize=10)
+        fig.tight_layout()
+        return _save(fig, output)
+
+
+# -- a study ---------------------------------------------------------------------------
+_STUDY_PANELS = (
+    ("final_absorbed", "boundary", "absorbed at the end (transmission / reflection)", "probability"),
+    ("transmitted_beyond", "detector", "beyond each detector at the end", "probability"),
+    ("arrival_mean", "detector", "mean arrival time", "time"),
+)
+
+
+def plot_study(path, output, size=(1200, 900), dpi: int = 100) -> Path:
+    """Transmission, reflection and mean arrival time against the swept
+    parameters: curves for one parameter, a family of curves for two (one
+    per value of the second, up to 8; a colour map beyond)."""
+    output = _check_output(output)
+    with xr.open_dataset(path, engine="netcdf4") as ds:
+        ds = ds.load()
+    dims = [d for d in ds.attrs.get("sweep_dimensions", "").split() if d]
+    if not dims:
+        raise JobError("RUN.nc", f"{str(path)!r} names no swept parameter; it is not a study summary")
+    if dims == ["run"]:                    # zip mode: the first parameter along the runs
+        keys = [c for c in ds.coords if ds[c].dims == ("run",) and c != "run"]
+        if keys:
+            ds = ds.swap_dims({"run": keys[0]})
+            dims = [keys[0]]
+    panels = [p for p in _STUDY_PANELS if p[0] in ds and np.isfinite(ds[p[0]].values).any()]
+    T = ds.time.attrs.get("units", "")
+    with style.style():
+        fig = style.figure(*size, dpi)
+        axs = fig.subplots(len(panels), 1, squeeze=False)[:, 0]
+        for ax, (var, member_dim, title, kind) in zip(axs, panels):
+            da = ds[var]
+            members = [str(m) for m in ds[member_dim].values] if member_dim in da.dims else [None]
+            quantity = "probability" if kind == "probability" else f"time ({T})"
+            prefix = "absorbed at " if member_dim == "boundary" else "detector "
+            if not _draw_against(ax, da, member_dim, members, dims, ds, quantity, prefix):
+                ax.set_ylabel(quantity)
+                v = da.values[np.isfinite(da.values)]
+                if kind == "probability" and v.size and v.min() > 0 and v.max() / v.min() > 30:
+                    ax.set_yscale("log")     # transmission spans decades across a resonance
+                if var == "arrival_mean" and len(dims) == 1 and "arrival_q10" in ds:
+                    for j, m in enumerate(members):
+                        ax.fill_between(ds[dims[0]].values, ds.arrival_q10.sel(detector=m).values,
+                                        ds.arrival_q90.sel(detector=m).values,
+                                        color=style.line_colors()[j % 7], alpha=0.15, lw=0)
+                    ax.text(0.5, 0.97, "bands: 10-90 % of arrivals", transform=ax.transAxes,
+                            ha="center", va="top", fontsize=7, color="#555555")
+            ax.set_title(title, loc="left")
+        fig.suptitle(ds.attrs.get("title", ""), fontsize=10)
+        fig.tight_layout()
+        return _save(fig, output)
+
+
+def _label(ds, dim) -> str:
+    c = ds[dim]
+    unit = c.attrs.get("units", "")
+    return f"{c.attrs.get('sweep_key', dim)}" + (f" ({unit})" if unit and unit != "1" else "")
+
+
+def _draw_against(ax, da, member_dim, members, dims, ds, quantity, prefix="") -> bool:
+    """Curves (False) or, for two parameters with many values, a map (True)."""
+    colors = style.line_colors()
+    styles = ("-", "--", ":", "-.")
+    x = dims[0]
+    if len(dims) == 1:
+        for j, m in enumerate(members):
+            y = da.sel({member_dim: m}) if m is not None else da
+            ax.plot(ds[x].values, y.values, marker="o", ms=3, color=colors[j % len(colors)],
+                    label=f"{prefix}{m}" if m is not None else None)
+    elif len(dims) == 2 and ds.sizes[dims[1]] <= 8:
+        for j, m in enumerate(members):
+            for k, v in enumerate(ds[dims[1]].values):
+                y = (da.sel({member_dim: m}) if m is not None else da).sel({dims[1]: v})
+                ax.plot(ds[x].values, y.values, marker="o", ms=3, color=colors[k % len(colors)],
+                        ls=styles[j % len(styles)], label=f"{m}, {dims[1]} = {v:g}" if m else f"{dims[1]} = {v:g}")
+    else:                                   # a map of the first member over the first two dims
+        y = da.sel({member_dim: members[0]}) if members[0] is not None else da
+        y = y.transpose(dims[1], dims[0], ...)
+        mesh = ax.pcolormesh(ds[dims[0]].values, ds[dims[1]].values, y.values, shading="nearest",
+                             cmap=style.DENSITY_CMAP)
+        ax.figure.colorbar(mesh, ax=ax, label=f"{members[0] or ''} {quantity}".strip())
+        ax.set_ylabel(_label(ds, dims[1]))
+        ax.set_xlabel(_label(ds, x))
+        return True
+    ax.set_xlabel(_label(ds, x))
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(frameon=False, fontsize=7, ncol=2)
+    return False
