@@ -4,9 +4,14 @@ studies, and their analysis.
 Run a job from Python as from the shell::
 
     import wavesweep as ws
-    job = ws.load_job("jobs/resonant-tunnelling.toml", overrides=["packet.energy=90"])
+    job = ws.load_job("jobs/kestrel-diode.toml", overrides=["packet.energy=90"])
     print(ws.check_job(job).text())
     path = ws.Simulation(job).run("out/")
+    print(ws.arrival_times(path)["after"].stats["mean"])
+    ws.render_movie(path, "out/diode.mp4")
+
+and a study: ``ws.submit("jobs/kestrel-scan.toml", "runs")``,
+``ws.work("runs", workers=2)``, ``ws.collect("runs", "kestrel-scan")``.
 """
 __version__ = "0.1.0"
 
@@ -29,10 +34,26 @@ from .observables import Observer, Detector
 from .simulation import Setup, Simulation, run_job
 from .check import check_job
 from .analysis.spectra import stationary_states, autocorrelation_levels
+from .analysis import arrival_times, transmission
+from .batch.api import submit, work, status
+from .batch.collect import collect
+
+_VIZ = {"render_movie": "movie", "MovieOptions": "movie", "plot_result": "summary",
+        "plot_run": "summary", "plot_study": "summary", "plot_arrivals": "arrivals"}
+
+
+def __getattr__(name):
+    """Figures and movies load matplotlib only when first asked for."""
+    if name in _VIZ:
+        import importlib
+        return getattr(importlib.import_module(f".viz.{_VIZ[name]}", __name__), name)
+    raise AttributeError(f"module 'wavesweep' has no attribute {name!r}")
+
 
 __all__ = [
     "__version__", "JobError", "RunFailed", "UnitSet", "Axis", "Grid", "Job", "load_job",
     "job_from_dict", "PotentialTerm", "POTENTIALS", "register_potential", "Propagator", "SCHEMES",
     "Strang", "Order4", "Chebyshev", "CrankNicolson", "Hamiltonian", "Observer", "Detector",
     "Setup", "Simulation", "run_job", "check_job", "stationary_states", "autocorrelation_levels",
+    "arrival_times", "transmission", "submit", "work", "status", "collect", *_VIZ,
 ]
