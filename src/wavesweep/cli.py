@@ -251,6 +251,16 @@ def _warn(command, warnings) -> None:
         print(f"wavesweep {command}: warning: {_one_line(w)}", file=sys.stderr)
 
 
+def _run_title(path) -> str:
+    """'<job title> (run <id>)' from a result's attributes, else the file name."""
+    import xarray as xr
+    try:
+        with xr.open_dataset(path) as ds:
+            return f"{ds.attrs.get('title', '')} (run {ds.attrs.get('run_id', '?')})".strip()
+    except (OSError, ValueError):
+        return os.path.basename(path)
+
+
 ARRIVAL_KEYS = ("probability", "mean", "std", "median", "q10", "q90", "most_probable", "backflow",
                 "classical_mean")
 
@@ -262,7 +272,7 @@ def _arrivals(args) -> int:
     units = next(iter(dists.values())).time_units
     if args.plot:
         from .viz.arrivals import plot_arrivals
-        plot_arrivals(dists, args.plot, title=os.path.basename(args.result))
+        plot_arrivals(dists, args.plot, title=_run_title(args.result))
     if args.json:
         print(json.dumps(_finite({"detectors": {n: d.as_dict() for n, d in dists.items()},
                                   "time_units": units})))

@@ -270,6 +270,7 @@ def _arrivals(ds, detector):
             definition = "flux"
         stats = arrival_statistics(t, rho)
         forward = _trapezoid(np.maximum(rho, 0.0), t)
+        stats["forward"] = forward
         if definition == "flux" and stats["backflow"] > BACKFLOW_SWITCH * forward:
             # the flux changes sign (a detector before a scatterer sees the
             # incident wave, then the reflected one): the signed density is no

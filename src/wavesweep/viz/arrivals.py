@@ -29,12 +29,16 @@ def plot_arrivals(distributions: dict, path, title: str = "", dpi: int = 100) ->
     fig, axes = plt.subplots(n, 1, figsize=(7, 2.8 * n + 0.4), squeeze=False, constrained_layout=True)
     for ax, (name, d) in zip(axes[:, 0], distributions.items()):
         p = d.stats["probability"]
-        scale = 1.0 / p if p > 0 else 1.0
+        # normalised by what the times describe: the net crossing, or the
+        # forward flux where the flux changes sign
+        norm = d.stats.get("forward", p) if d.definition == "positive flux" else p
+        scale = 1.0 / norm if norm > 0 else 1.0
         rho = d.density * scale
-        ax.plot(d.time, rho, color=QUANTUM, lw=1.6,
-                label=f"quantum ({'flux' if d.definition == 'flux' else 'absorption rate'})")
+        label = {"flux": "quantum (flux J / P)", "positive flux": "quantum (flux / forward flux)",
+                 "absorption": "quantum (absorption rate / P)"}.get(d.definition, d.definition)
+        ax.plot(d.time, rho, color=QUANTUM, lw=1.6, label=label)
         neg = np.where(rho < 0, rho, np.nan)
-        if np.any(np.isfinite(neg)):
+        if d.stats.get("backflow", 0.0) > 1e-6 * max(abs(norm), 1e-300):
             ax.fill_between(d.time, 0, neg, color=BACKFLOW, alpha=0.6, label="backflow")
         cp = d.stats.get("classical_probability", 0.0)
         if cp > 0:
@@ -44,10 +48,18 @@ def plot_arrivals(distributions: dict, path, title: str = "", dpi: int = 100) ->
             v = d.stats.get(key)
             if v is not None and np.isfinite(v):
                 ax.axvline(v, color=QUANTUM, lw=0.8, ls=style, alpha=0.7)
+        # zoom on where something arrives (1e-3 of the peak), quantum or classical
+        signal = np.maximum(np.abs(rho), np.abs(d.classical_density / cp) if cp > 0 else 0.0)
+        busy = np.nonzero(signal > 1e-3 * signal.max())[0] if signal.max() > 0 else []
+        if len(busy):
+            lo, hi = d.time[busy[0]], d.time[busy[-1]]
+            pad = 0.1 * (hi - lo) if hi > lo else 1.0
+            ax.set_xlim(max(d.time[0], lo - pad), min(d.time[-1], hi + pad))
         ax.set_xlabel(f"time ({d.time_units})")
         ax.set_ylabel(f"arrival density ({d.time_units}$^{{-1}}$)")
-        ax.set_title(f"detector {name!r}: P = {p:.4g}, mean {d.stats['mean']:.4g} {d.time_units}",
-                     fontsize=10)
+        back = d.stats.get("backflow", 0.0)
+        ax.set_title(f"detector {name!r}: crossed P = {p:.4g}" + (f", backflow {back:.3g}" if back > 1e-6 else "")
+                     + f"; mean {d.stats['mean']:.4g} {d.time_units}", fontsize=10)
         ax.legend(fontsize=8, frameon=False)
         ax.axhline(0, color="black", lw=0.5)
     if title:
