@@ -277,10 +277,13 @@ def _arrivals(args) -> int:
         print(json.dumps(_finite({"detectors": {n: d.as_dict() for n, d in dists.items()},
                                   "time_units": units})))
     else:
-        print(f"{'detector':<12}{'definition':<12}" + "".join(f"{k:>15}" for k in ARRIVAL_KEYS))
+        print(f"{'detector':<12}{'definition':<15}" + "".join(f"{k:>15}" for k in ARRIVAL_KEYS) + "  note")
         for n, d in dists.items():
-            print(f"{n:<12}{d.definition:<12}" + "".join(f"{d.stats[k]:>15.6g}" for k in ARRIVAL_KEYS))
-        print(f"times in {units}; probability and backflow dimensionless")
+            note = ("nothing arrived" if d.stats["mean"] != d.stats["mean"] else
+                    "truncated: run longer" if d.stats.get("truncated") else "")
+            print(f"{n:<12}{d.definition:<15}" + "".join(f"{d.stats[k]:>15.6g}" for k in ARRIVAL_KEYS)
+                  + f"  {note}")
+        print(f"times in {units}; probability and backflow dimensionless; nan: not defined")
         if args.plot:
             print(f"figure: {args.plot}")
     _warn("arrivals", [w for d in dists.values() for w in d.warnings])
@@ -312,9 +315,11 @@ def _transmission(args) -> int:
             step = max(1, len(er["energy"]) // 20)
             for e, t, w in list(zip(er["energy"], er["T"], er["weight"]))[::step]:
                 print(f"{e:14.6g}{t:12.6f}{w:10.3f}")
-    if "reason" in er:
+    if "reason" in er and not er.get("requested"):
         out["warnings"].append(f"no energy-resolved T: {er['reason']}")
     _warn("transmission", out["warnings"])
+    if er.get("requested"):          # the totals are out; the detector asked for could not give T(E)
+        raise er["error"]
     return EXIT_OK
 
 
@@ -332,8 +337,8 @@ def _movie(args) -> int:
                        scale=args.scale, floor=args.floor, parts=args.parts,
                        projection=args.projection, slice=cut)
     out = render_movie(args.result, args.output, opt)
-    print(f"{out['path']}: {out['frames']} frames in {out['seconds']:.1f} s "
-          f"({out['frames_per_second']:.0f} frames/s)")
+    print(f"{out['path']}: {out['frames']} frames, {out['frames'] / out['fps']:.1f} s at {out['fps']:g} "
+          f"frames/s (made in {out['seconds']:.1f} s)")
     return EXIT_OK
 
 

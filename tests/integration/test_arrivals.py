@@ -34,7 +34,7 @@ FREE = {
     "evolve": {"dt": 0.02, "duration": 60.0, "scheme": "strang"},
     "absorber": {"kind": "cap", "thickness": 25.0},
     "record": {"every": 0.1, "snapshot_every": 60.0},
-    "detector": [{"name": "d", "x": XD}, {"name": "layer", "x": 90.0}],
+    "detector": [{"name": "d", "x": XD}, {"name": "layer", "x": 90.0}, {"name": "behind", "x": -30.0}],
 }
 
 
@@ -90,6 +90,12 @@ def test_classical_free_flight_mean(free_result):
     assert d.stats["classical_mean"] == pytest.approx(expected, rel=1e-6)
     assert d.stats["classical_probability"] == pytest.approx(1.0, abs=1e-9)
     assert np.trapezoid(d.classical_density, d.time) == pytest.approx(1.0, abs=1e-3)
+    # The Wigner function of this Gaussian is the product of its normal
+    # marginals (Hillery, O'Connell, Scully & Wigner, Phys. Rep. 106, 121
+    # (1984), from memory) and free motion carries it classically, so the
+    # ensemble's arrival density is the quantum current itself.
+    exact = np.array([_current(t) for t in d.time])
+    assert np.max(np.abs(d.classical_density - exact)) <= 5e-4 * exact.max()   # measured 2.1e-4
 
 
 def test_a_detector_inside_an_absorber_uses_the_absorption_rate(free_result):
@@ -244,3 +250,26 @@ def test_detectors_in_front_of_and_behind_a_barrier(barrier_result):
     with xr.open_dataset(barrier_result) as ds:
         assert float(ds.norm.values[-1]) > 0.1          # the reflected part, still on the grid
     assert behind.stats["still_to_come"] < 1e-6 and not behind.stats["truncated"]
+
+
+def test_a_detector_behind_the_packet_gives_no_times(free_result):
+    d = arrival_times(free_result, "behind")["behind"]
+    assert d.stats["forward"] < 1e-9
+    assert all(math.isnan(d.stats[k]) for k in ("mean", "std", "median", "q10", "q90", "most_probable"))
+    assert math.isnan(d.stats["classical_mean"])
+    assert any("nothing arrived" in w for w in d.warnings)
+
+
+def test_free_particle_t_of_e_is_one_and_skips_the_absorbed_detector(free_result, capsys):
+    """T(E) = 1 for no scatterer (the identity the formula must reproduce);
+    the detector inside the x+ layer is not used, and asking for it fails
+    after the totals are printed."""
+    er = transmission(free_result)["energy_resolved"]
+    assert er["detector"] == "d"
+    keep = er["weight"] > 1e-2
+    assert np.max(np.abs(er["T"][keep] - 1.0)) < 1e-3
+    capsys.readouterr()
+    assert main(["transmission", str(free_result), "--detector", "layer"]) == 2
+    out, err = capsys.readouterr()
+    assert "absorbed at x+" in out and "inside the x+ absorbing layer" in err
+    assert len(err.strip().splitlines()) == 1

@@ -17,11 +17,12 @@ Pi(t) = dA_f/dt / P, A_f the probability the face's layer has removed by
 time t, P its total; the layer is the detector (e.g. Muga, Palao, Navarro
 & Egusquiza, Phys. Rep. 395, 357 (2004), on absorbing detector models).
 
-Classical estimate: free flight from the initial mean position x0 with the
-initial momentum distribution |phi(p)|^2 along the detector's axis:
-t(p) = m (x_d - x0) / p for the momenta that move towards the detector, so
-Pi_cl(t) = |phi(p(t))|^2 m |x_d - x0| / t^2.  Its mean beside the quantum one
-shows the quantum (and potential) correction.
+Classical estimate: free flight of the ensemble whose positions follow
+|psi0(x)|^2 and momenta |phi(p)|^2 independently (the Wigner function of a
+minimum-uncertainty Gaussian), each member arriving at t = m (x_d - x) / p.
+For a free Gaussian it coincides with the quantum flux (free motion moves
+the Wigner function classically), so beside the quantum curve it shows what
+the potential and interference change.
 
 Moments need a window containing the whole peak: the statistics are over
 the run's samples, and a run that ended while the flux was still large is
@@ -48,6 +49,8 @@ TRUNCATED_TO_COME = 1e-4
 # the forward flux alone (our choice; 1 % keeps the backflow of a free
 # packet, ~1e-4 at most for Gaussians, in the standard definition).
 BACKFLOW_SWITCH = 1e-2
+# Below this forward probability nothing arrived: no statistics are given.
+NOTHING_ARRIVED = 1e-9
 
 
 @dataclass
@@ -122,16 +125,22 @@ def arrival_statistics(time, density) -> dict:
 
 def classical_free_flight(psi0, grid, axis: int, mass: float, x_detector: float,
                           time_atomic: np.ndarray) -> tuple[np.ndarray, float, float]:
-    """Free-flight arrival estimate from psi(t=0) (atomic units throughout).
+    """Classical free-flight arrival estimate from psi(t=0), atomic units.
+
+    The ensemble draws positions from |psi0|^2 and momenta from |phi(p)|^2
+    (both marginals along ``axis``) independently -- the Wigner function of
+    a minimum-uncertainty Gaussian, exactly; an approximation for other
+    states -- and each member arrives at t = m (x_d - x) / p if it moves
+    towards the detector.  So Pi_cl(t) = int dx rho(x) w(p(x, t)) m |x_d - x| / t^2
+    with p(x, t) = m (x_d - x) / t, and the mean is <m (x_d - x) / p>.
 
     Returns (density on ``time_atomic`` per atomic time unit, probability of
     moving towards the detector, mean arrival time of that part)."""
     ax = grid.axes[axis]
     dens = np.abs(psi0) ** 2
     other = tuple(i for i in range(grid.ndim) if i != axis)
-    line = dens.sum(axis=other) if other else dens
-    x0 = float(np.sum(line * ax.coordinates) / np.sum(line))
-    distance = x_detector - x0
+    rho = dens.sum(axis=other) if other else dens
+    rho = rho / np.sum(rho)
     # momentum density along the axis, zero-padded for a fine p grid
     pad = 4 * ax.points
     c = np.fft.fft(psi0, n=pad, axis=axis)
@@ -141,17 +150,29 @@ def classical_free_flight(psi0, grid, axis: int, mass: float, x_detector: float,
     order = np.argsort(k)
     k, w = k[order], w[order]
     w = w / np.sum(w)
-    towards = (k * distance > 0)
-    prob = float(np.sum(w[towards]))
-    if prob <= 0 or distance == 0:
-        return np.zeros_like(time_atomic), 0.0, math.nan
-    mean = float(np.sum(w[towards] * mass * distance / k[towards])) / prob
     dk = k[1] - k[0]
+    # the positions that carry the packet, on its side of the detector
+    # (arrivals come from the packet's side, as for the oriented flux)
+    x0 = float(np.sum(rho * ax.coordinates))
+    keep = (rho > 1e-12 * rho.max()) & ((ax.coordinates - x_detector) * (x0 - x_detector) > 0)
+    x, rho = ax.coordinates[keep], rho[keep]
+    distance = x_detector - x                    # per position
+    towards = k[None, :] * distance[:, None] > 0
+    weight = rho[:, None] * w[None, :] * towards
+    prob = float(weight.sum())
+    if prob <= 0:
+        return np.zeros_like(np.asarray(time_atomic, float)), 0.0, math.nan
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t_of = np.where(towards, mass * distance[:, None] / k[None, :], 0.0)
+    mean = float(np.sum(weight * t_of)) / prob
     t = np.asarray(time_atomic, float)
     out = np.zeros_like(t)
-    pos = t > 0
-    p_of_t = mass * distance / t[pos]
-    out[pos] = np.interp(p_of_t, k, w / dk, left=0.0, right=0.0) * mass * abs(distance) / t[pos] ** 2
+    pos = np.nonzero(t > 0)[0]
+    for i0 in range(0, len(pos), 512):                 # blocks bound the memory
+        tt = t[pos[i0:i0 + 512]]
+        p_of = mass * distance[None, :] / tt[:, None]  # (times, positions)
+        dens_p = np.interp(p_of, k, w / dk, left=0.0, right=0.0)
+        out[pos[i0:i0 + 512]] = (dens_p * rho[None, :] * mass * np.abs(distance)[None, :]).sum(axis=1) / tt**2
     return out, prob, mean
 
 
@@ -263,6 +284,9 @@ def _arrivals(ds, detector):
             a = np.asarray(ds["absorbed"].sel(boundary=face).values, float)
             rho = np.gradient(a, t)
             definition = "absorption"
+            warnings.append(f"detector {name!r} lies in the {face} absorbing layer: the layer is the "
+                            "detector, and its times are those of absorption anywhere in the layer "
+                            "(the detector's position inside it does not enter)")
         x0_side = _packet_side(setup, det.axis, det.position)
         if face is None:
             # oriented from the packet towards the detector: arrivals count positive
@@ -287,9 +311,10 @@ def _arrivals(ds, detector):
         stats["classical_mean"] = cl_mean / uc["time"] if math.isfinite(cl_mean) else math.nan
         peak = float(np.max(np.abs(rho))) if len(rho) else 0.0
         tail = abs(float(rho[-1])) / peak if peak > 0 else 0.0
-        to_come = _upstream_probability(ds, setup, det.axis, det.position, x0_side, towards=True)
-        if definition == "absorption":
-            to_come = float(ds["norm"].values[-1]) if "norm" in ds else to_come
+        # what may still arrive: before the detector (for a layer, before
+        # the layer's inner edge), moving towards it
+        edge = det.position if face is None else _layer_edge(setup, face)
+        to_come = _upstream_probability(ds, setup, det.axis, edge, x0_side, towards=True)
         stats["still_to_come"] = to_come if to_come is not None else math.nan
         stats["truncated"] = bool(tail > TRUNCATED_TAIL or (to_come or 0.0) > TRUNCATED_TO_COME)
         if stats["truncated"]:
@@ -298,11 +323,27 @@ def _arrivals(ds, detector):
             warnings.append(f"detector {name!r}: the run ended before the flux died out (last value "
                             f"{tail:.1%} of the peak; {more}); the distribution is truncated: "
                             "extend evolve.duration")
-        if not stats["probability"] > 0:
-            warnings.append(f"detector {name!r}: no probability crossed it during the run")
+        if not forward > NOTHING_ARRIVED:
+            # nothing arrived: statistics of rounding noise would only mislead
+            for key in ("mean", "std", "median", "q10", "q90", "most_probable"):
+                stats[key] = math.nan
+            stats["truncated"] = bool((to_come or 0.0) > TRUNCATED_TO_COME)
+            warnings[:] = [w for w in warnings if "ended before" not in w]
+            warnings.append(f"detector {name!r}: nothing arrived during the run (forward probability "
+                            f"{forward:.1e}); no times are given" + (
+                                f"; {to_come:.3g} is still on its way" if stats["truncated"] else ""))
+        if not cl_prob > NOTHING_ARRIVED:
+            stats["classical_mean"] = math.nan
         out[name] = ArrivalDistribution(name, definition, t, rho, cl * uc["time"], stats,
                                         uc["time_label"], warnings)
     return out
+
+
+def _layer_edge(setup, face: str) -> float:
+    """Inner edge (bohr) of a face's absorbing layer."""
+    ax = setup.grid.axes[setup.grid.axis_index(face[:-1])]
+    th = setup.absorber.thickness
+    return ax.max - th if face.endswith("+") else ax.min + th
 
 
 def _packet_side(setup, axis: int, x_det: float) -> float:

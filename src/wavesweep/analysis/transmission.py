@@ -42,6 +42,7 @@ __all__ = ["transmission", "energy_resolved_transmission", "transmission_totals"
 WEIGHT_FLOOR = 1e-2       # report T(E) where the incident weight is above 1 % of its peak
 BAND_FLOOR = 1e-8         # the band that must not alias: weight above 1e-8 of the peak
 AMPLITUDE_AT_START = 1e-6  # |psi(x_d, 0)|^2 / max |psi(x_d, t)|^2 allowed
+NOTHING_CROSSED = 1e-9     # net probability through a detector below which nothing arrived
 
 
 def transmission_totals(ds, setup) -> dict:
@@ -73,9 +74,13 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
     """T(E) at a detector beyond the scatterer (see the module notes).
 
     Returns energies (job units), T, the incident weight |phi|^2 per energy
-    normalised to its peak, and the detector used.  Raises JobError when the
-    run cannot give it (multi-D, time-dependent potential, too coarse
-    sampling, no amplitude recorded)."""
+    normalised to its peak, and the detector used.  Without ``detector`` the
+    detectors outside the absorbing layers are tried from the farthest along
+    the packet's motion back, and the first that can give T(E) is used.
+    Raises JobError when none can (multi-D, time-dependent potential, too
+    coarse sampling, no amplitude recorded, the flux not died out)."""
+    from .arrivals import _layer_holding
+
     if setup.grid.ndim != 1 or setup.grid.radial:
         raise JobError("RUN.nc", "energy-resolved transmission needs a 1D cartesian run "
                                  "(the totals are given for any run)")
@@ -85,33 +90,64 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
     if "detector_psi_real" not in ds:
         raise JobError("RUN.nc", "the run did not record psi at its detectors "
                                  "(written by an older version); run the job again")
-    uc = result_units(ds)
     names = [str(d) for d in ds["detector"].values]
+    if not names:
+        raise JobError("RUN.nc", "the run has no detector; add a [[detector]] beyond the scatterer")
     x = setup.grid.axes[0].coordinates
-    dens0 = np.abs(setup.psi0) ** 2
-    x0 = float(np.sum(dens0 * x) / np.sum(dens0))
-    # incident momentum amplitude (continuous normalisation) on a fine k grid
-    # (zero-padded FFT: |phi|^2 on a k grid 8 times finer than the grid's own)
+    # incident momentum density (continuous normalisation, int |phi|^2 dk = 1)
+    # on a k grid 8 times finer than the grid's own (zero-padded FFT)
     dx = setup.grid.axes[0].dx
     pad = 8 * len(x)
     k_all = np.fft.fftshift(2 * math.pi * np.fft.fftfreq(pad, dx))
     w_all = np.fft.fftshift(np.abs(np.fft.fft(setup.psi0, n=pad)) ** 2) * dx**2 / (2 * math.pi)
     p_mean = float(np.sum(k_all * w_all) / np.sum(w_all))
-    j = _choose_detector(names, setup, p_mean, detector)
+    if detector is not None:
+        if detector not in names:
+            raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
+        j = names.index(detector)
+        face = _layer_holding(setup, 0, setup.detectors[j].position)
+        if face is not None:
+            raise JobError("--detector", f"detector {detector!r} lies inside the {face} absorbing layer, "
+                                         "where psi is no longer the transmitted wave; use one before it")
+        return _at_detector(ds, setup, j, k_all, w_all, points)
+    sign = 1.0 if p_mean >= 0 else -1.0
+    order = sorted(range(len(names)), key=lambda i: -sign * setup.detectors[i].position)
+    usable = [i for i in order if _layer_holding(setup, 0, setup.detectors[i].position) is None]
+    if not usable:
+        raise JobError("RUN.nc", "every detector lies inside an absorbing layer; T(E) needs one "
+                                 "between the scatterer and the layer")
+    first = None
+    for i in usable:
+        try:
+            return _at_detector(ds, setup, i, k_all, w_all, points)
+        except JobError as e:
+            first = first or e
+    raise first
+
+
+def _at_detector(ds, setup, j, k_all, w_all, points) -> dict:
+    uc = result_units(ds)
+    name = str(ds["detector"].values[j])
+    x = setup.grid.axes[0].coordinates
+    dens0 = np.abs(setup.psi0) ** 2
+    x0 = float(np.sum(dens0 * x) / np.sum(dens0))
     x_d = setup.detectors[j].position
     direction = 1.0 if x_d > x0 else -1.0
 
     t = np.asarray(ds["time"].values, float) * uc["time"]
+    crossed = abs(float(np.trapezoid(ds["flux"].values[:, j], ds["time"].values)))
+    if crossed < NOTHING_CROSSED:
+        raise JobError("--detector", f"nothing reached detector {name!r} during the run "
+                                     f"(net crossing {crossed:.1e}); place it beyond the scatterer, "
+                                     "on the packet's path, or run longer")
     amp = (np.asarray(ds["detector_psi_real"].values[:, j], float)
            + 1j * np.asarray(ds["detector_psi_imag"].values[:, j], float)) / math.sqrt(uc["length"])
     peak = float(np.max(np.abs(amp) ** 2))
-    if not peak > 0:
-        raise JobError("--detector", f"nothing reached detector {names[j]!r} during the run")
     if abs(amp[0]) ** 2 > AMPLITUDE_AT_START * peak:
-        raise JobError("packet.center", f"the initial packet already overlaps detector {names[j]!r}; "
+        raise JobError("packet.center", f"the initial packet already overlaps detector {name!r}; "
                                         "start it farther from the detector")
     if abs(amp[-1]) ** 2 > 1e-6 * peak:
-        raise JobError("evolve.duration", f"psi at detector {names[j]!r} has not died out by the end "
+        raise JobError("evolve.duration", f"psi at detector {name!r} has not died out by the end "
                                           f"(|psi|^2 at {abs(amp[-1]) ** 2 / peak:.1e} of its peak); "
                                           "extend evolve.duration")
 
@@ -146,7 +182,7 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
     T = 2 * math.pi * v_in * v_out * np.abs(amp_e) ** 2 / np.abs(phi) ** 2
     T[kinetic_det <= 0] = 0.0
     return {
-        "detector": names[j],
+        "detector": name,
         "energy": energy / uc["energy"],
         "T": T,
         "weight": np.abs(phi) ** 2 / w_fwd.max(),
@@ -165,19 +201,6 @@ def _momentum_amplitude(psi, x, k) -> np.ndarray:
     return out
 
 
-def _choose_detector(names, setup, p_mean, detector) -> int:
-    if not names:
-        raise JobError("RUN.nc", "the run has no detector; add a [[detector]] beyond the scatterer")
-    if detector is not None:
-        if detector not in names:
-            raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
-        return names.index(detector)
-    # the detector farthest along the packet's direction of motion
-    sign = 1.0 if p_mean >= 0 else -1.0
-    pos = [d.position for d in setup.detectors]
-    return int(np.argmax(np.array(pos) * sign))
-
-
 def transmission(result, detector: str | None = None) -> dict:
     """Totals and (where the run allows) T(E), from a result path or dataset.
     ``energy_resolved`` holds T(E) or the reason it is missing."""
@@ -192,9 +215,10 @@ def transmission(result, detector: str | None = None) -> dict:
         try:
             out["energy_resolved"] = energy_resolved_transmission(ds, setup, detector)
         except JobError as e:
-            if detector is not None:     # asked for by name: its failure is the answer
-                raise
-            out["energy_resolved"] = {"reason": f"{e.field}: {e.message}"}
+            # the totals stand; a detector asked for by name makes its failure an error (the CLI
+            # prints the totals first)
+            out["energy_resolved"] = {"reason": f"{e.field}: {e.message}", "error": e,
+                                      "requested": detector is not None}
         return out
     finally:
         if ds is not result:

@@ -39,15 +39,16 @@ def plot_arrivals(distributions: dict, path, title: str = "", dpi: int = 100) ->
         ax.plot(d.time, rho, color=QUANTUM, lw=1.6, label=label)
         neg = np.where(rho < 0, rho, np.nan)
         if d.stats.get("backflow", 0.0) > 1e-6 * max(abs(norm), 1e-300):
-            ax.fill_between(d.time, 0, neg, color=BACKFLOW, alpha=0.6, label="backflow")
+            ax.fill_between(d.time, 0, neg, color=BACKFLOW, alpha=0.6,
+                            label="negative flux (flowing back)")
         cp = d.stats.get("classical_probability", 0.0)
         if cp > 0:
             ax.plot(d.time, d.classical_density / cp, color=CLASSICAL, lw=1.2, ls="--",
                     label="classical free flight")
-        for key, style in (("mean", "-"), ("q10", ":"), ("q90", ":")):
+        for key, style, text in (("mean", "-", "mean"), ("q10", ":", "10 / 90 %"), ("q90", ":", None)):
             v = d.stats.get(key)
             if v is not None and np.isfinite(v):
-                ax.axvline(v, color=QUANTUM, lw=0.8, ls=style, alpha=0.7)
+                ax.axvline(v, color=QUANTUM, lw=0.8, ls=style, alpha=0.7, label=text)
         # zoom on where something arrives (1e-3 of the peak), quantum or classical
         signal = np.maximum(np.abs(rho), np.abs(d.classical_density / cp) if cp > 0 else 0.0)
         busy = np.nonzero(signal > 1e-3 * signal.max())[0] if signal.max() > 0 else []
@@ -58,8 +59,12 @@ def plot_arrivals(distributions: dict, path, title: str = "", dpi: int = 100) ->
         ax.set_xlabel(f"time ({d.time_units})")
         ax.set_ylabel(f"arrival density ({d.time_units}$^{{-1}}$)")
         back = d.stats.get("backflow", 0.0)
-        ax.set_title(f"detector {name!r}: crossed P = {p:.4g}" + (f", backflow {back:.3g}" if back > 1e-6 else "")
-                     + f"; mean {d.stats['mean']:.4g} {d.time_units}", fontsize=10)
+        note = "" if np.isfinite(d.stats["mean"]) else " (nothing arrived)"
+        if d.stats.get("truncated"):
+            note += " (truncated: the run ended too early)"
+        ax.set_title(f"detector {name!r}: net crossing P = {p:.4g}"
+                     + (f", flowing back {back:.3g}" if back > 1e-6 else "")
+                     + f"; mean {d.stats['mean']:.4g} {d.time_units}{note}", fontsize=10)
         ax.legend(fontsize=8, frameon=False)
         ax.axhline(0, color="black", lw=0.5)
     if title:

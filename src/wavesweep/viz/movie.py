@@ -165,7 +165,7 @@ class Painter:
         return txt
 
     def _time_label(self, t) -> str:
-        return f"t = {t:.6g} {self.scene.units['time']}"
+        return f"t = {t:.6g} {style.pretty_unit(self.scene.units['time'])}"
 
 
 class Painter1D(Painter):
@@ -193,7 +193,7 @@ class Painter1D(Painter):
                                       animated=True)[0]
                               for c, w, l in ((style.DENSITY, 2.2, "|psi|"), (style.DENSITY, 2.2, None),
                                               (style.REAL, 1.0, "Re psi"), (style.IMAG, 1.0, "Im psi"))]
-                ax.legend(loc="upper right", frameon=False)
+                ax.legend(loc="lower right", frameon=False)
             else:
                 if opt.scale == "log":
                     ax.set_yscale("log")
@@ -208,7 +208,7 @@ class Painter1D(Painter):
                 self.fill = ax.fill_between(self.x, self._floor, self._floor, color=style.DENSITY,
                                             alpha=0.25, lw=0, animated=True)
             ax.set_xlim(self.x[0], self.x[-1])
-            ax.set_xlabel(f"{name} ({sc.units['length']})")
+            ax.set_xlabel(f"{name} ({L})")
             for layer in sc.layers:
                 ax.axvspan(layer.start, layer.stop, color=style.ABSORBER, alpha=0.45, lw=0)
                 ax.text((layer.start + layer.stop) / 2, 0.015, "absorber", transform=ax.get_xaxis_transform(),
@@ -303,13 +303,19 @@ class Painter2D(Painter):
                 if span is not None:
                     overlays.append(span(layer.start, layer.stop, color="white", alpha=0.18, lw=0))
             for dname, dax, pos in sc.detectors:
-                line = ax.axvline if dax == a else (ax.axhline if dax == b else None)
-                if line is not None:
-                    overlays.append(line(pos, color=style.DETECTOR, lw=1.0, ls="--"))
+                if dax == a:
+                    overlays.append(ax.axvline(pos, color=style.DETECTOR, lw=1.0, ls="--"))
+                    overlays.append(ax.text(pos, 0.985, f" {dname}", transform=ax.get_xaxis_transform(),
+                                            ha="left", va="top", fontsize=7, color=style.DETECTOR))
+                elif dax == b:
+                    overlays.append(ax.axhline(pos, color=style.DETECTOR, lw=1.0, ls="--"))
+                    overlays.append(ax.text(0.005, pos, f"{dname} ", transform=ax.get_yaxis_transform(),
+                                            ha="left", va="bottom", fontsize=7, color=style.DETECTOR))
             for o in overlays:
                 o.set_animated(True)
-            ax.set_xlabel(f"{a} ({sc.units['length']})")
-            ax.set_ylabel(f"{b} ({sc.units['length']})")
+            L = style.pretty_unit(sc.units["length"])
+            ax.set_xlabel(f"{a} ({L})")
+            ax.set_ylabel(f"{b} ({L})")
             ax.set_title(sc.title + self.subtitle, loc="left")
             self.fig.subplots_adjust(left=0.08, right=0.9, bottom=0.11, top=0.92)
             self.text = self._time_text(ax)
@@ -328,7 +334,12 @@ class Painter2D(Painter):
             if axis not in sc.axes:
                 raise JobError("--slice", f"no axis {axis!r}; the run has {', '.join(sc.axes)}")
             k = sc.axes.index(axis)
-            j = int(np.argmin(np.abs(sc.coords[axis] - value)))
+            c = sc.coords[axis]
+            half = abs(c[1] - c[0]) / 2
+            if not (min(c) - half <= value <= max(c) + half):
+                raise JobError("--slice", f"{axis} = {value:g} lies outside the grid "
+                                          f"[{c.min():g}, {c.max():g}] {sc.units['length']}")
+            j = int(np.argmin(np.abs(c - value)))
             self.reduce = lambda f: np.take(f, j, axis=k)
             self._cut = ("slice", k, j)
             self.density_label = f"probability density ({style.pretty_unit(sc.units['density'])})"
@@ -341,7 +352,7 @@ class Painter2D(Painter):
             d = abs(float(sc.coords[axis][1] - sc.coords[axis][0]))
             self.reduce = lambda f: f.sum(axis=k) * d
             self._cut = ("projection", k, None)
-            self.density_label = f"integrated over {axis} ({sc.units['length']}$^{{-2}}$)"
+            self.density_label = f"integrated over {axis} ({style.pretty_unit(sc.units['length'])}$^{{-2}}$)"
             self.subtitle = f"  (integrated over {axis})"
         self.plane = tuple(n for n in sc.axes if n != axis)
 
@@ -361,14 +372,20 @@ class Painter2D(Painter):
 def painter_for(scene: Scene, options: MovieOptions) -> Painter:
     if options.scale not in ("linear", "log"):
         raise JobError("--scale", f"unknown scale {options.scale!r}; use linear or log")
+    if options.scale == "log" and not (0 < options.floor < 1):
+        raise JobError("--floor", f"must lie between 0 and 1 (a fraction of the peak), got {options.floor:g}")
+    if not (10 <= options.dpi <= 1000):
+        raise JobError("--dpi", f"must lie between 10 and 1000, got {options.dpi}")
     if scene.ndim == 1:
         if options.projection or options.slice:
-            raise JobError("--projection", "a 1D run has nothing to project or slice")
+            raise JobError("--slice" if options.slice else "--projection",
+                           "a 1D run has nothing to project or slice")
         return Painter1D(scene, options)
     if options.parts:
         raise JobError("--parts", "real and imaginary parts are drawn for 1D runs only")
     if scene.ndim == 2 and (options.projection or options.slice):
-        raise JobError("--projection", "a 2D run is drawn whole; --projection and --slice are for 3D")
+        raise JobError("--slice" if options.slice else "--projection",
+                       "a 2D run is drawn whole; --projection and --slice are for 3D")
     return Painter2D(scene, options)
 
 
@@ -416,5 +433,5 @@ def render_movie(result, output, options: MovieOptions | None = None, **kw) -> d
         writer.abort()
         raise
     seconds = time.perf_counter() - t0
-    return {"path": path, "frames": info["frames"], "seconds": seconds,
+    return {"path": path, "frames": info["frames"], "seconds": seconds, "fps": options.fps,
             "frames_per_second": info["frames"] / seconds if seconds > 0 else float("inf")}

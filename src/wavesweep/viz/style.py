@@ -51,7 +51,11 @@ def pretty_unit(unit: str) -> str:
         exp = {"-0.5": "-1/2", "0.5": "1/2", "-1.5": "-3/2", "1.5": "3/2"}.get(exp, exp)
         return f"{base}$^{{{exp}}}$"
 
-    return re.sub(r"([A-Za-zµ_]+)(-?\d+(?:\.\d+)?)", power, unit or "")
+    unit = (unit or "").strip()
+    if unit.startswith("(") and unit.endswith(")"):
+        unit = unit[1:-1]                       # "(hbar/meV)" inside "time (...)"
+    unit = re.sub(r"\bu(m|s)\b", r"µ\1", unit)    # um, us
+    return re.sub(r"([A-Za-zµ_]+)(-?\d+(?:\.\d+)?)", power, unit)
 
 
 def line_colors() -> list[str]:

@@ -83,7 +83,7 @@ def plot_run(path, output, size=(1200, 900), dpi: int = 100) -> Path:
         ds = ds.load()
     finally:
         ds.close()
-    T, L = scene.units["time"], scene.units["length"]
+    T, L = style.pretty_unit(scene.units["time"]), style.pretty_unit(scene.units["length"])
     t = ds.time.values
     with style.style():
         fig = style.figure(*size, dpi)
@@ -98,7 +98,7 @@ def plot_run(path, output, size=(1200, 900), dpi: int = 100) -> Path:
                                    rasterized=True)
             bar = fig.colorbar(mesh, ax=amap, fraction=0.05, pad=0.02)
             what = "density" if scene.ndim == 1 else f"density integrated over {', '.join(scene.axes[1:])}"
-            unit = scene.units["density"] if scene.ndim == 1 else f"{L}-1"
+            unit = scene.units["density"] if scene.ndim == 1 else f"{scene.units['length']}-1"
             bar.set_label(f"{what} ({style.pretty_unit(unit)})")
         else:
             amap.plot(x, dens[0] if len(dens) else np.zeros_like(x), color=style.DENSITY)
@@ -187,7 +187,8 @@ def plot_study(path, output, size=(1200, 900), dpi: int = 100) -> Path:
             ds = ds.swap_dims({"run": keys[0]})
             dims = [keys[0]]
     panels = [p for p in _STUDY_PANELS if p[0] in ds and np.isfinite(ds[p[0]].values).any()]
-    T = ds.time.attrs.get("units", "")
+    T = style.pretty_unit(ds.time.attrs.get("units", ""))
+    unfinished = float(np.nanmax(ds.final_norm.values)) if "final_norm" in ds else 0.0
     with style.style():
         fig = style.figure(*size, dpi)
         axs = fig.subplots(len(panels), 1, squeeze=False)[:, 0]
@@ -209,14 +210,18 @@ def plot_study(path, output, size=(1200, 900), dpi: int = 100) -> Path:
                     ax.text(0.5, 0.97, "bands: 10-90 % of arrivals", transform=ax.transAxes,
                             ha="center", va="top", fontsize=7, color="#555555")
             ax.set_title(title, loc="left")
-        fig.suptitle(ds.attrs.get("title", ""), fontsize=10)
+        title = ds.attrs.get("title", "")
+        if unfinished > 1e-3:       # the books are not closed: the numbers are not final
+            title += (f"\n(some runs ended with up to {unfinished:.3g} of probability still on the grid: "
+                      "absorbed and arrival numbers are not final)")
+        fig.suptitle(title, fontsize=10)
         fig.tight_layout()
         return _save(fig, output)
 
 
 def _label(ds, dim) -> str:
     c = ds[dim]
-    unit = c.attrs.get("units", "")
+    unit = style.pretty_unit(c.attrs.get("units", ""))
     return f"{c.attrs.get('sweep_key', dim)}" + (f" ({unit})" if unit and unit != "1" else "")
 
 
@@ -235,7 +240,8 @@ def _draw_against(ax, da, member_dim, members, dims, ds, quantity, prefix="") ->
             for k, v in enumerate(ds[dims[1]].values):
                 y = (da.sel({member_dim: m}) if m is not None else da).sel({dims[1]: v})
                 ax.plot(ds[x].values, y.values, marker="o", ms=3, color=colors[k % len(colors)],
-                        ls=styles[j % len(styles)], label=f"{m}, {dims[1]} = {v:g}" if m else f"{dims[1]} = {v:g}")
+                        ls=styles[j % len(styles)],
+                        label=f"{prefix}{m}, {_label(ds, dims[1])} = {v:g}" if m else f"{_label(ds, dims[1])} = {v:g}")
     else:                                   # a map of the first member over the first two dims
         y = da.sel({member_dim: members[0]}) if members[0] is not None else da
         y = y.transpose(dims[1], dims[0], ...)
