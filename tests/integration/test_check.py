@@ -68,12 +68,14 @@ def test_sharp_barrier_is_flagged_where_the_error_stops_following_dt2(tmp_path):
     assert _finding(_with(evolve__dt=safe, record__every=110.0 / 10,
                           record__snapshot_every=110.0)).level == "ok"
     assert _finding(_with(evolve__dt=0.05)).level == "ok"
-    # and the flag means something: there the Strang error is erratic instead of
-    # falling as dt^2 (measured against dt = 0.01: 1.6e-4 at dt 0.2, 7.9e-4 at 0.1)
+    # and the flag means something: there the Strang error does not fall as
+    # dt^2 (a factor 4 from dt 0.2 to 0.1, as the smooth case below does).
+    # Measured against dt = 0.01: with point-sampled edges 1.6e-4 at dt 0.2 and
+    # 7.9e-4 at 0.1 (it grew); with cell-averaged edges 8.5e-4 and 3.0e-4 (x2.8).
     ref = _transmitted(_with(evolve__dt=0.01), tmp_path / "ref")
     e2 = abs(_transmitted(_with(evolve__dt=0.2), tmp_path / "a") - ref)
     e1 = abs(_transmitted(_with(evolve__dt=0.1), tmp_path / "b") - ref)
-    assert e1 > e2 / 2
+    assert e2 / e1 < 3.3, (e2, e1)
 
 
 def test_smooth_potential_passes_and_converges_as_dt2(tmp_path):

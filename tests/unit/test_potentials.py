@@ -87,9 +87,12 @@ def test_free():
 
 def test_step_sharp_and_smooth():
     # Heaviside step; smoothed form (1 + tanh(s / l)) / 2 (common practice)
-    _, c, v = static([{"kind": "step", "height": 0.7, "position": 1.1}])
-    x = c["x"]
-    assert_close(v, np.where(x >= 1.1, 0.7, 0.0))
+    # sharp: the step's indicator averaged over each grid cell [x - dx/2, x + dx/2]
+    s, c, v = static([{"kind": "step", "height": 0.7, "position": 1.1}])
+    x, dx = c["x"], s.grid.axes[0].dx
+    assert_close(v, 0.7 * np.clip((x + dx / 2 - 1.1) / dx, 0.0, 1.0))
+    assert 0.0 < v[np.argmin(np.abs(x - 1.1))] < 0.7          # the cell holding the edge is split
+    assert_close(v[np.abs(x - 1.1) > dx], np.where(x >= 1.1, 0.7, 0.0)[np.abs(x - 1.1) > dx])
     _, c, v = static([{"kind": "step", "height": -0.4, "position": 0.3, "smoothing": 0.8}])
     assert_close(v, -0.4 * 0.5 * (1 + np.tanh((c["x"] - 0.3) / 0.8)))
 
@@ -114,8 +117,13 @@ def test_double_barrier():
     _, c, v = static([{"kind": "double_barrier", "height": 0.9, "width": 1.5, "gap": 2.2,
                        "center": 0.4}])
     d = np.abs(c["x"] - 0.4)
-    assert_close(v, np.where((d > 1.1) & (d < 2.6), 0.9, 0.0))
-    assert np.count_nonzero(v) > 4
+    # away from the edges: V0 inside, 0 outside; in all: the area is 2 w V0 exactly
+    s, _, _ = static([{"kind": "double_barrier", "height": 0.9, "width": 1.5, "gap": 2.2,
+                       "center": 0.4}])
+    dx = s.grid.axes[0].dx
+    far = (np.abs(d - 1.1) > dx) & (np.abs(d - 2.6) > dx)
+    assert_close(v[far], np.where((d > 1.1) & (d < 2.6), 0.9, 0.0)[far])
+    assert v.sum() * dx == pytest.approx(2 * 1.5 * 0.9, rel=1e-12)
 
 
 def test_slits_in_2d():
@@ -273,7 +281,10 @@ def test_barrier_and_lattice_in_job_units():
     _, c, v = static([{"kind": "barrier", "height": 150.0, "width": 5.0, "center": 0.1},
                       {"kind": "lattice", "depth": 10.0, "spacing": 1.5}], None, NM_UNITS)
     x = c["x"]
-    want = np.where(np.abs(x - 0.1) < 2.5, 150.0, 0.0) + 10.0 * np.sin(np.pi * x / 1.5) ** 2
+    s, _, _ = static([{"kind": "barrier", "height": 150.0, "width": 5.0, "center": 0.1}], None, NM_UNITS)
+    dx = s.grid.axes[0].dx / NM
+    cell = np.clip((np.minimum(x + dx / 2, 2.6) - np.maximum(x - dx / 2, -2.4)) / dx, 0.0, 1.0)
+    want = 150.0 * cell + 10.0 * np.sin(np.pi * x / 1.5) ** 2
     assert_close(v / MEV, want, rtol=1e-11)
 
 
@@ -446,9 +457,10 @@ def test_file_errors_name_the_field(tmp_path):
 
 def test_terms_add_up():
     # several [[potential]] tables are summed (design.md)
-    _, c, v = static([{"kind": "gaussian", "height": 0.6, "width": 1.7},
+    s, c, v = static([{"kind": "gaussian", "height": 0.6, "width": 1.7},
                       {"kind": "lattice", "depth": 0.35, "spacing": 2.2},
                       {"kind": "step", "height": 0.2, "position": 3.0}])
-    x = c["x"]
-    want = 0.6 * np.exp(-(x**2) / (2 * 1.7**2)) + 0.35 * np.sin(np.pi * x / 2.2) ** 2 + np.where(x >= 3.0, 0.2, 0.0)
+    x, dx = c["x"], s.grid.axes[0].dx
+    step = 0.2 * np.clip((x + dx / 2 - 3.0) / dx, 0.0, 1.0)     # cell-averaged edge
+    want = 0.6 * np.exp(-(x**2) / (2 * 1.7**2)) + 0.35 * np.sin(np.pi * x / 2.2) ** 2 + step
     assert_close(v, want)

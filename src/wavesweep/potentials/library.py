@@ -19,11 +19,29 @@ def _along(term: PotentialTerm, mesh) -> np.ndarray:
     return mesh[term.ctx.grid.names[i]]
 
 
-def _sharp_or_smooth(s: np.ndarray, smoothing: float) -> np.ndarray:
-    """Heaviside(s) or, with a smoothing length, (1 + tanh(s/smoothing))/2."""
+def _sharp_or_smooth(s: np.ndarray, smoothing: float, dx: float = 0.0) -> np.ndarray:
+    """(1 + tanh(s/smoothing))/2 with a smoothing length; without, the
+    Heaviside step averaged over the grid cell of width ``dx`` around each
+    point (``dx`` = 0: the bare step)."""
     if smoothing > 0:
         return 0.5 * (1.0 + np.tanh(s / smoothing))
+    if dx > 0:
+        return np.clip(0.5 + s / dx, 0.0, 1.0)
     return (s >= 0).astype(float)
+
+
+def _cell_overlap(x: np.ndarray, lo: float, hi: float, dx: float) -> np.ndarray:
+    """Fraction of the cell [x - dx/2, x + dx/2] inside [lo, hi].
+
+    A sharp edge is represented by the cell averages of its indicator: the
+    sampled barrier then has its nominal width and area on any grid, where
+    point samples made it a whole number of cells wide (a 2 nm barrier on a
+    0.29 nm grid became 2.05 nm and T came out 13 % low; review finding)."""
+    return np.clip((np.minimum(x + dx / 2, hi) - np.maximum(x - dx / 2, lo)) / dx, 0.0, 1.0)
+
+
+def _cell(term) -> float:
+    return float(term.ctx.grid.axes[term.axis_of()].dx)
 
 
 def _radius2(term, mesh, center) -> np.ndarray:
@@ -56,13 +74,13 @@ class Step(PotentialTerm):
 
     def static(self, mesh):
         x = _along(self, mesh)
-        return self.p["height"] * _sharp_or_smooth(x - self.p["position"], self.p["smoothing"])
+        return self.p["height"] * _sharp_or_smooth(x - self.p["position"], self.p["smoothing"], _cell(self))
 
 
 @register
 class Barrier(PotentialTerm):
     kind = "barrier"
-    summary = "rectangular barrier: V = height for |x - center| < width/2"
+    summary = "rectangular barrier: V = height for |x - center| < width/2 (edges cell-averaged)"
     parameters = {
         "height": Field("energy", doc="barrier height (negative for a well)"),
         "width": Field("length", doc="full width", positive=True),
@@ -76,7 +94,7 @@ class Barrier(PotentialTerm):
         half, s = self.p["width"] / 2, self.p["smoothing"]
         if s > 0:
             return self.p["height"] * _sharp_or_smooth(x + half, s) * _sharp_or_smooth(half - x, s)
-        return self.p["height"] * (np.abs(x) < half)
+        return self.p["height"] * _cell_overlap(x, -half, half, _cell(self))
 
 
 @register
@@ -93,11 +111,13 @@ class DoubleBarrier(PotentialTerm):
     }
 
     def static(self, mesh):
-        x = np.abs(_along(self, mesh) - self.p["center"])
+        xs = _along(self, mesh) - self.p["center"]
+        x = np.abs(xs)
         inner, outer, s = self.p["gap"] / 2, self.p["gap"] / 2 + self.p["width"], self.p["smoothing"]
         if s > 0:
             return self.p["height"] * _sharp_or_smooth(x - inner, s) * _sharp_or_smooth(outer - x, s)
-        return self.p["height"] * ((x > inner) & (x < outer))
+        dx = _cell(self)
+        return self.p["height"] * (_cell_overlap(xs, inner, outer, dx) + _cell_overlap(xs, -outer, -inner, dx))
 
 
 @register
