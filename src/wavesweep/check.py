@@ -8,6 +8,10 @@ Each item is a finding with numbers, in the job's units:
   error, raised by :func:`representability` for ``run`` as well;
 * distance of the packet centre from edges and absorbers in units of its
   width (8 sigma_x of margin is common practice);
+* packets that are not Gaussian parts only (eigenstates, files, mixed
+  superpositions) are measured on the actual initial state instead: the
+  momenta where the tails of its momentum distribution fall to those of a
+  Gaussian beyond 6 and 3 sigma_p, its centre <x> and spread;
 * time step: phase per step E dt / hbar of the packet's highest kinetic
   energy and of the grid's kinetic range;
 * absorber: thickness against the longest wavelength it must absorb, and
@@ -84,6 +88,100 @@ def _gaussian_parts(packet):
     return []
 
 
+def _all_gaussian(packet) -> bool:
+    """Whether the packet is Gaussian parts only (its momenta are then known in closed form)."""
+    if packet["kind"] == "gaussian":
+        return True
+    if packet["kind"] == "superposition":
+        return all(_all_gaussian(p) for p in packet["packets"])
+    return False
+
+
+# One-sided tail weights of a Gaussian beyond 6 and 3 standard deviations,
+# (1/2) erfc(n / sqrt 2): what |p0| + 6 sigma_p and |p0| + 3 sigma_p leave
+# out of a Gaussian packet's momenta, the quantiles a measured state's
+# momenta are read at (closed form; 9.9e-10 and 1.3e-3).
+TAIL_6 = 0.5 * math.erfc(6.0 / math.sqrt(2.0))
+TAIL_3 = 0.5 * math.erfc(3.0 / math.sqrt(2.0))
+
+
+def _momentum_marginal(psi, grid, i):
+    """(k, weight) along axis i of psi: |transform|^2 summed over the other
+    axes (FFT on periodic axes, orthonormal DST-I on box and radial ones),
+    k ascending, weights summing to 1."""
+    import scipy.fft
+
+    ax = grid.axes[i]
+    c = (scipy.fft.fft(psi, axis=i) if ax.boundary == "periodic"
+         else scipy.fft.dst(psi, type=1, axis=i, norm="ortho"))
+    other = tuple(j for j in range(grid.ndim) if j != i)
+    weight = np.sum(np.abs(c) ** 2, axis=other) if other else np.abs(c) ** 2
+    k = ax.wavenumbers
+    order = np.argsort(k)
+    weight = weight[order]
+    return k[order], weight / weight.sum()
+
+
+def _upper_quantile(k, weight, tail):
+    """The k above which ``tail`` of the weight lies, each bin's weight
+    spread evenly over its width (k ascending, evenly spaced)."""
+    dk = float(k[1] - k[0]) if k.size > 1 else 0.0
+    above = np.concatenate([np.cumsum(weight[::-1])[::-1][1:], [0.0]])   # weight above bin j
+    j = int(np.nonzero(above <= tail)[0][0])
+    inside = (tail - above[j]) / weight[j] if weight[j] > 0 else 0.0
+    return float(k[j] + 0.5 * dk - min(inside, 1.0) * dk)
+
+
+def measured_momentum_reach(setup, tail):
+    """Per axis, the largest |p| (atomic units) of the initial state up to a
+    one-sided ``tail`` of its momentum distribution on either side: for a
+    Gaussian packet |p0| + n sigma_p with tail = (1/2) erfc(n / sqrt 2), to
+    within the grid's dk.  Measured from Setup.psi0 (any packet kind)."""
+    out = []
+    for i, ax in enumerate(setup.grid.axes):
+        k, w = _momentum_marginal(setup.psi0, setup.grid, i)
+        hi = _upper_quantile(k, w, tail)
+        lo = -_upper_quantile(-k[::-1], w[::-1], tail) if ax.boundary == "periodic" else 0.0
+        out.append(max(abs(hi), abs(lo)))
+    return out
+
+
+def packet_reach(setup):
+    """Per axis (|p0| + 6 sigma_p, |p0| + 3 sigma_p) of the packet, atomic
+    units, and whether they were measured: closed forms for Gaussian parts
+    (the largest over parts), else the quantiles of the actual initial
+    state's momentum distribution (:func:`measured_momentum_reach`)."""
+    if _all_gaussian(setup.packet):
+        reach6 = [0.0] * setup.grid.ndim
+        reach3 = [0.0] * setup.grid.ndim
+        for part in _gaussian_parts(setup.packet):
+            p0 = central_momenta(part, setup.mass, setup.grid.ndim, "packet")
+            for i in range(setup.grid.ndim):
+                sp = momentum_spread(part["width"][i])
+                reach6[i] = max(reach6[i], abs(p0[i]) + 6 * sp)
+                reach3[i] = max(reach3[i], abs(p0[i]) + 3 * sp)
+        return reach6, reach3, False
+    return measured_momentum_reach(setup, TAIL_6), measured_momentum_reach(setup, TAIL_3), True
+
+
+def _measured_momentum_findings(setup, findings):
+    """The momentum finding of a packet that is not Gaussian parts only."""
+    u = setup.units
+    pf, pu = u.factor("momentum"), u.unit_label("momentum")
+    reach6, reach3, _ = packet_reach(setup)
+    for ax, r6, r3 in zip(setup.grid.axes, reach6, reach3):
+        kmax = math.pi / ax.dx
+        need = math.ceil(ax.length * r6 / math.pi) + 1
+        level = "ok" if r6 < kmax else ("warn" if r3 < kmax else "error")
+        findings.append(Finding(
+            "momentum", level,
+            f"{ax.name}: grid resolves |p| <= {kmax / pf:.4g} {pu}; the state's momenta (measured) reach "
+            f"{r6 / pf:.4g} ({r6 / kmax:.0%} of the range; the |p0| + 6 sigma_p of a Gaussian)"
+            + ("" if level == "ok" else f"; use >= {need} points"),
+            {"axis": ax.name, "k_max": kmax / pf, "packet_reach": r6 / pf, "measured": True},
+            field=f"grid.{ax.name}.points"))
+
+
 def representability(setup, findings=None):
     """Momentum coverage per axis; raises JobError if the grid cannot
     represent the packet (|p0| + 3 sigma_p > pi/dx)."""
@@ -121,12 +219,17 @@ def check_job(job: Job, trial_seconds: float = 1.0) -> Report:
     u = setup.units
     lf, tf, ef = u.factor("length"), u.factor("time"), u.factor("energy")
     L, T, E = u.unit_label("length"), u.unit_label("time"), u.unit_label("energy")
-    representability(setup, findings)
+    # a packet of Gaussian parts has its momenta and margins in closed form; any other
+    # (eigenstate, file, or mixed superposition) is measured on the actual initial state
+    gaussian = _all_gaussian(setup.packet)
+    representability(setup, findings if gaussian else None)
+    if not gaussian:
+        _measured_momentum_findings(setup, findings)
     table = job.table
 
     # distances from edges and absorbers
     th = u.to_atomic(table["absorber"]["thickness"], "length") if setup.absorber.active else 0.0
-    for part in _gaussian_parts(setup.packet):
+    for part in _gaussian_parts(setup.packet) if gaussian else ():
         for i, ax in enumerate(setup.grid.axes):
             x0, w = part["center"][i], part["width"][i]
             edges = [(x0 - ax.min, f"{ax.name}-"), (ax.max - x0, f"{ax.name}+")]
@@ -143,13 +246,19 @@ def check_job(job: Job, trial_seconds: float = 1.0) -> Report:
                     + ("; move the packet inward or narrow it" if level == "error" else ""),
                     {"face": face, "widths": margin}, field="packet.center"))
 
+    if not gaussian:
+        findings.extend(_measured_margins(setup, th, L, lf))
+
     # time step
     dt = setup.dt
     e_pk = 0.0
-    for part in _gaussian_parts(setup.packet):
-        p0 = central_momenta(part, setup.mass, setup.grid.ndim, "packet")
-        e_pk = max(e_pk, sum((abs(p) + 6 * momentum_spread(w)) ** 2 for p, w in zip(p0, part["width"]))
-                   / (2 * setup.mass))
+    if gaussian:
+        for part in _gaussian_parts(setup.packet):
+            p0 = central_momenta(part, setup.mass, setup.grid.ndim, "packet")
+            e_pk = max(e_pk, sum((abs(p) + 6 * momentum_spread(w)) ** 2 for p, w in zip(p0, part["width"]))
+                       / (2 * setup.mass))
+    else:   # the actual state's momenta, measured
+        e_pk = sum(r**2 for r in packet_reach(setup)[0]) / (2 * setup.mass)
     t_max = setup.grid.kinetic_max(setup.mass)
     v = setup.hamiltonian.static_potential
     v_span = float(v.max() - v.min())
@@ -261,6 +370,35 @@ def check_job(job: Job, trial_seconds: float = 1.0) -> Report:
     # timed trial
     findings.append(_trial(setup, trial_seconds))
     return Report(job.title, findings)
+
+
+def _measured_margins(setup, th, L, lf) -> list:
+    """Margins of a packet that is not Gaussian parts only: its measured
+    centre <x> and spread (the standard deviation of |psi|^2, a Gaussian
+    packet's width) along each axis, from Setup.psi0."""
+    grid, out = setup.grid, []
+    dens = np.abs(setup.psi0) ** 2
+    dens = dens / dens.sum()
+    for i, ax in enumerate(grid.axes):
+        other = tuple(j for j in range(grid.ndim) if j != i)
+        line = np.sum(dens, axis=other) if other else dens
+        x = ax.coordinates
+        x0 = float(np.sum(line * x))
+        w = math.sqrt(max(float(np.sum(line * (x - x0) ** 2)), 0.0)) or ax.dx
+        edges = [(x0 - ax.min, f"{ax.name}-"), (ax.max - x0, f"{ax.name}+")]
+        if grid.radial:
+            edges = [(ax.max - x0, "r+")]   # u(r) vanishes at r = 0 by itself
+        for dist, face in edges:
+            layer = th if any(layer.name == face for layer in setup.absorber.layers) else 0.0
+            margin = (dist - layer) / w
+            level = "ok" if margin >= 8 else ("warn" if margin > 3 else "error")
+            what = "absorber" if layer else "edge"
+            out.append(Finding("margin", level,
+                f"the state's centre (measured) is {margin:.1f} spreads from the {face} {what} "
+                f"({(dist - layer) / lf:.4g} {L}, spread {w / lf:.4g} {L}; 8 is common practice)"
+                + ("; enlarge the grid or move its trap inward" if level == "error" else ""),
+                {"face": face, "widths": margin, "measured": True}, field=f"grid.{ax.name}"))
+    return out
 
 
 # Spectral weight of V (relative power) allowed in grid modes whose kinetic

@@ -196,7 +196,7 @@ def _submit(args) -> int:
 
 
 def _work(args) -> int:
-    from .batch.api import work
+    from .batch.api import format_work, work
 
     out = work(args.root, args.workers, args.until, checkpoint_seconds=60.0 * args.checkpoint_minutes,
                lease_seconds=args.lease_seconds, max_attempts=args.max_attempts)
@@ -204,6 +204,7 @@ def _work(args) -> int:
         print(f"wavesweep work: --until {args.until} has passed; nothing claimed", file=sys.stderr)
     elif out.get("stopped"):
         print("wavesweep work: stopped; running runs were checkpointed and requeued", file=sys.stderr)
+    print(format_work(out), flush=True)    # the drain's summary: counts and where the results are
     return EXIT_OK
 
 
@@ -351,8 +352,10 @@ def _plot(args) -> int:
 
 
 def _levels(args) -> int:
-    from .analysis.spectra import autocorrelation_levels, stationary_states, write_states
+    from .analysis.spectra import (DEGENERATE_TOL, autocorrelation_levels, check_states_path, degenerate_groups,
+                                   stationary_states, write_states)
 
+    member = {}   # level -> the degenerate level it belongs to (job files only)
     if args.from_run is not None:
         if args.job is not None:
             raise JobError("--from", "give either JOB.toml or --from RUN.nc, not both")
@@ -376,12 +379,24 @@ def _levels(args) -> int:
         from .jobfile import load_job
         from .simulation import Setup
 
+        if args.states:
+            check_states_path(args.states)   # before the solve: a path that cannot be written costs nothing
         setup = Setup(load_job(args.job, args.set))
-        energies_au, states = stationary_states(setup, args.count, field="--count")
+        energies_au = states = None
+        if args.count >= 1:
+            try:   # one level more, to tell whether the last one asked for is degenerate with the next
+                energies_au, states = stationary_states(setup, args.count + 1, field="--count")
+            except JobError:   # the grid holds no more states
+                pass
+        if energies_au is None:   # the count's own answer, or its own message
+            energies_au, states = stationary_states(setup, args.count, field="--count")
+        for a, b in degenerate_groups(energies_au):
+            label = f"levels {a}-{b}" + (" (or more)" if b >= args.count else "")
+            member.update((n, label) for n in range(a, min(b + 1, args.count)))
+        energies_au, states = energies_au[:args.count], states[:args.count]
         units = setup.units.unit_label("energy")
         energies, weights, notes = energies_au / setup.units.factor("energy"), None, []
-        if args.states:
-            write_states(args.states, setup, energies_au, states)
+    # the levels first: a states file that fails to write loses nothing computed
     if args.json:
         body = {"energies": [float(e) for e in energies], "energy_units": units}
         if weights is not None:
@@ -389,10 +404,15 @@ def _levels(args) -> int:
         print(json.dumps(body))
     else:
         head = f"{'level':>5}  {'energy (' + units + ')':>22}"
-        print(head + (f"  {'weight':>12}" if weights is not None else ""))
-        for n, e in enumerate(energies):
-            print(f"{n:>5}  {e:>22.12g}" + (f"  {weights[n]:>12.6g}" if weights is not None else ""))
-        if args.from_run is None and args.states:
+        head += f"  {'weight':>12}" if weights is not None else ""
+        print(head + (f"  degenerate (within {DEGENERATE_TOL:g} relative)" if member else ""))
+        for n, e in enumerate(energies):   # in energy order, 0 the lowest
+            row = f"{n:>5}  {e:>22.12g}" + (f"  {weights[n]:>12.6g}" if weights is not None else "")
+            print((row + f"  {member[n]}") if n in member else row)
+    if args.from_run is None and args.states:
+        sys.stdout.flush()
+        write_states(args.states, setup, energies_au, states)   # JobError: exit 2, one line
+        if not args.json:
             print(f"states: {args.states}")
     _warn("levels", notes)
     return EXIT_OK

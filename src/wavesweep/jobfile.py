@@ -226,19 +226,31 @@ def _list_item(seq, part, where):
 
 
 # -- loading ---------------------------------------------------------------------
+# First bytes of files that are data, not text: netCDF classic (1), 64-bit
+# offset (2) and 64-bit data (5) formats, and HDF5 (netCDF-4 files are HDF5).
+DATA_FILE_MAGIC = (b"CDF\x01", b"CDF\x02", b"CDF\x05", b"\x89HDF")
+
+
 def read_job_file(path) -> dict:
     """The raw table of a job file (TOML), with one-line errors."""
     path = Path(path)
     try:
-        text = path.read_text()
+        data = path.read_bytes()
     except FileNotFoundError:
         raise JobError("", f"job file {str(path)!r} not found") from None
     except IsADirectoryError:
         raise JobError("", f"{str(path)!r} is a folder, not a job file") from None
     except OSError as e:
         raise JobError("", f"cannot read job file {str(path)!r}: {e.strerror}") from None
+    if data.startswith(DATA_FILE_MAGIC):
+        raise JobError("", f"{path.name} is a netCDF/HDF5 data file (a result or a states file), not a "
+                           "job file; read a result with `wavesweep plot`, `arrivals`, `transmission` or "
+                           "`movie`, or give the job's TOML (a result keeps it in its `job` attribute)")
+    try:
+        text = data.decode("utf-8")
     except UnicodeDecodeError as e:
         raise JobError("", f"{path.name} is not UTF-8 text (byte {e.start}); TOML files are UTF-8") from None
+    text = text.replace("\r\n", "\n").replace("\r", "\n")   # newlines as read_text reads them
     try:
         return tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:
@@ -248,8 +260,13 @@ def read_job_file(path) -> dict:
 def load_job(path, overrides=()) -> Job:
     """Read and validate a job file; ``overrides`` are ``"key=value"`` strings.
     A ``[sweep]`` table is validated and kept; expand it with
-    :func:`wavesweep.batch.sweep.load_study`."""
-    return job_from_dict(read_job_file(path), overrides, source=Path(path))
+    :func:`wavesweep.batch.sweep.load_study`.  An override of a key the
+    sweep sweeps is a JobError (the sweep would decide its value)."""
+    from .batch.sweep import refuse_swept_overrides
+
+    raw = read_job_file(path)
+    refuse_swept_overrides(raw, overrides, Path(path))
+    return job_from_dict(raw, overrides, source=Path(path))
 
 
 def job_from_dict(raw: dict, overrides=(), source: Path | None = None) -> Job:

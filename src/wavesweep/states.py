@@ -104,7 +104,7 @@ def build_state(packet: dict, grid, mass: float, field: str = "packet",
     elif kind == "eigenstate":
         psi = _eigenstate(packet, grid, mass, field, terms)
     elif kind == "file":
-        psi = _from_file(packet, grid, field)
+        psi = _from_file(packet, grid, field, length_unit)
     else:  # validated upstream; a programming error here
         raise JobError(f"{field}.kind", f"unknown packet kind {kind!r}")
     norm = float(np.sum(np.abs(psi) ** 2)) * grid.cell_volume
@@ -212,7 +212,7 @@ def _boost(psi, grid, momenta, field):
     return psi * np.exp(1j * phase)
 
 
-def _from_file(packet, grid, field):
+def _from_file(packet, grid, field, length_unit=(1.0, "bohr")):
     import xarray as xr
 
     path = packet["path"]
@@ -226,21 +226,68 @@ def _from_file(packet, grid, field):
             re = ds[packet["real"]].load()
             im = ds[packet["imag"]].load()
             lf = float(ds.attrs.get("length_to_bohr", 1.0))
+            its_grid = _grid_of_file(ds)
             re, im = _pick_state(re, im, packet.get("state"), path, field)
     except JobError:  # a JobError is a ValueError: keep its own field
         raise
     except (OSError, ValueError) as e:
         raise JobError(f"{field}.path", f"cannot read {path!r} as netCDF: {e}") from e
     dims = tuple(d.removesuffix("_full") for d in re.dims)
-    if dims != grid.names:
-        raise JobError(f"{field}.path", f"the state has dims {re.dims}, the grid has axes {grid.names}")
-    if re.shape != grid.shape:
-        raise JobError(f"{field}.path", f"the state has shape {re.shape}, the grid {grid.shape}")
-    for dim, ax in zip(re.dims, grid.axes):
-        c = np.asarray(re[dim].values, float) * lf
-        if not np.allclose(c, ax.coordinates, rtol=0, atol=1e-6 * ax.dx):
-            raise JobError(f"{field}.path", f"the state's {dim} coordinates differ from the grid's")
+    same = dims == grid.names and re.shape == grid.shape
+    differ = "" if same else "axes" if dims != grid.names else "points"
+    if same:
+        for dim, ax in zip(re.dims, grid.axes):
+            c = np.asarray(re[dim].values, float) * lf
+            if not np.allclose(c, ax.coordinates, rtol=0, atol=1e-6 * ax.dx):
+                differ = f"{dim.removesuffix('_full')} coordinates"
+                break
+    if differ:
+        raise JobError(f"{field}.path", _other_grid(path, re, dims, lf, its_grid, grid, differ, length_unit))
     return np.asarray(re.values, float) + 1j * np.asarray(im.values, float)
+
+
+def _grid_of_file(ds) -> str | None:
+    """The [grid] a wavesweep file was made on, as written in its job
+    (results and ``levels --states`` files keep the job), else None."""
+    import tomllib
+
+    try:
+        grid = tomllib.loads(str(ds.attrs["job"]))["grid"]
+        unit = str(ds.attrs.get("units_length", ""))
+        parts = []
+        for name in ("x", "y", "z", "r"):
+            if isinstance(grid.get(name), dict):
+                a = grid[name]
+                parts.append(f"{name} = {{ min = {a.get('min', 0.0)!r}, max = {a['max']!r}, "
+                             f"points = {a['points']!r} }}")
+        if not parts:
+            return None
+        extras = [unit] if unit else []
+        if "boundary" in grid:
+            extras.append(f"boundary {grid['boundary']!r}")
+        return "; ".join(parts) + (f" ({', '.join(extras)})" if extras else "")
+    except (KeyError, TypeError, ValueError, tomllib.TOMLDecodeError):
+        return None
+
+
+def _other_grid(path, re, dims, lf, its_grid, grid, differ, length_unit) -> str:
+    """One line: how the file's grid and the job's differ, and what to do."""
+    factor, label = length_unit
+    if its_grid is None:   # a foreign file: describe it by its coordinates
+        parts = []
+        for dim, name in zip(re.dims, dims):
+            c = np.asarray(re[dim].values, float) * lf / factor
+            ends = f" from {c[0]:g} to {c[-1]:g} {label}" if c.size else ""
+            parts.append(f"{name}: {c.size} points{ends}")
+        its_grid = "; ".join(parts) if parts else "no axes"
+    ours = "; ".join(f"{ax.name} = {{ min = {ax.min / factor:g}, max = {ax.max / factor:g}, "
+                     f"points = {ax.points} }}" for ax in grid.axes)
+    boundaries = sorted({ax.boundary for ax in grid.axes})
+    ours += f" ({label}, boundary {', '.join(map(repr, boundaries))})"
+    return (f"the state in {path!r} is on another grid (its {differ} differ): it was made on {its_grid}, "
+            f"this job's grid is {ours}; use a state on this grid (same axes, min, max, points and "
+            f"boundary): re-run the job that wrote it with this job's [grid], or write the states of "
+            f"this grid with `wavesweep levels JOB.toml --count K --states FILE.nc`")
 
 
 def _pick_state(re, im, index, path, field):

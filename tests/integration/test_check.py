@@ -107,3 +107,41 @@ def test_free_packet_and_detector_inside_absorber():
     # only the detector inside the x+ layer (80..100) is flagged, naming its field
     assert [f.values["detector"] for f in det] == ["in"]
     assert det[0].level == "warn" and det[0].field == "detector.0.x"
+
+
+@pytest.mark.parametrize("boundary", ["periodic", "box"])
+def test_eigenstate_packet_momenta_are_measured(boundary):
+    """The ground state of a harmonic trap (m = 1, w = 0.5) is the Gaussian of
+    width sqrt(hbar / 2 m w) = 1 (Griffiths sec. 2.3; from memory), and a
+    boost exp(i p x) shifts its momenta by p, so check must find for the
+    boosted eigenstate what it finds for that Gaussian packet: momenta up to
+    |p| + 6 sigma_p = 8 + 3 (here measured from the state's transform, to
+    within 1.5 dk of the grid; measured 1.03 dk on the box, unboosted), the phase per step (|p| + 6 sigma_p)^2 dt / 2m =
+    1.21 rad (before: 0 rad for any eigenstate or file packet) and the
+    margins in widths."""
+    def job(packet):
+        return make_job({"grid": {"x": {"min": -40.0, "max": 40.0, "points": 512}, "boundary": boundary},
+                         "potential": [{"kind": "harmonic", "omega": 0.5}], "packet": packet,
+                         "evolve": {"dt": 0.02, "duration": 1.0}})
+
+    def findings(packet):
+        report = check_job(job(packet), trial_seconds=0.05)
+        return {topic: [f for f in report.findings if f.topic == topic]
+                for topic in ("momentum", "margin", "time step")}
+
+    p, sigma_p, dt = 8.0, 0.5, 0.02
+    measured = findings({"kind": "eigenstate", "n": 0, "momentum": p})
+    gaussian = findings({"kind": "gaussian", "center": 0.0, "width": 1.0, "momentum": p})
+    dk = (2 * np.pi if boundary == "periodic" else np.pi) / 80.0
+    reach = measured["momentum"][0].values["packet_reach"]
+    assert measured["momentum"][0].values["measured"] and measured["momentum"][0].level == "ok"
+    assert abs(reach - (p + 6 * sigma_p)) < 1.5 * dk
+    assert reach == pytest.approx(gaussian["momentum"][0].values["packet_reach"], abs=1.5 * dk)
+    phase = measured["time step"][0].values["packet_phase"]
+    assert phase == pytest.approx((p + 6 * sigma_p) ** 2 / 2 * dt, rel=3 * dk / (p + 6 * sigma_p))
+    assert measured["time step"][0].level == gaussian["time step"][0].level == "warn"   # 1.21 rad > 1
+    assert [f.values["widths"] for f in measured["margin"]] == pytest.approx(
+        [f.values["widths"] for f in gaussian["margin"]], rel=1e-6)
+    # without the boost the phase is that of the trap's own momenta, 6 sigma_p, not 0
+    still = findings({"kind": "eigenstate", "n": 0})["time step"][0].values["packet_phase"]
+    assert still == pytest.approx((6 * sigma_p) ** 2 / 2 * dt, rel=3 * dk / (6 * sigma_p))

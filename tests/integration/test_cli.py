@@ -373,3 +373,207 @@ def test_check_json_with_an_error_finding(tmp_path):
     errors = [f for f in report["findings"] if f["level"] == "error"]
     assert [f["field"] for f in errors] == ["packet.center"]
     assert errors[0]["values"]["widths"] == pytest.approx(2.0)
+
+
+# -- --set and [sweep] -------------------------------------------------------------
+SWEPT = merged(TINY, {"sweep": {"packet.width": [1.0, 1.1]}})
+
+
+@pytest.mark.parametrize("command", ["run", "submit", "check"])
+def test_set_of_a_swept_key_is_refused(tmp_path, command):
+    """The sweep would decide packet.width in every run: the override would
+    be lost, so it is bad input naming --set packet.width and both fixes."""
+    job = write_job(tmp_path, SWEPT, "scan.toml")
+    out, root = tmp_path / "out", tmp_path / "root"
+    extra = {"run": ["-o", out, "--quiet"], "submit": ["--root", root],
+             "check": ["--trial-seconds", "0.01"]}[command]
+    proc = cli(command, job, *extra, "--set", "packet.width=1e9", cwd=tmp_path)
+    assert_bad_input(proc, "--set packet.width", "[sweep] of scan.toml",
+                     "remove 'packet.width' from [sweep]", "drop --set packet.width")
+    assert leftovers(out) == []
+    assert not root.exists()
+
+
+def test_set_of_a_key_not_swept_reaches_every_run(tmp_path):
+    job = write_job(tmp_path, SWEPT, "scan.toml")
+    out = tmp_path / "out"
+    proc = cli("run", job, "-o", out, "--quiet", "--set", "packet.center=-12.0", cwd=tmp_path)
+    assert proc.returncode == 0, proc.stderr
+    packets = []
+    for line in proc.stdout.splitlines():
+        with xr.open_dataset(line) as ds:
+            packets.append(tomllib.loads(ds.attrs["job"])["packet"])
+    assert [p["width"] for p in packets] == [1.0, 1.1]
+    assert [p["center"] for p in packets] == [-12.0, -12.0]
+
+
+# -- a study worked once for the tests below ----------------------------------------
+# three points; the second one's potential turns non-finite at t = 0.5
+DIVERGING = merged(TINY, {
+    "potential": [{"kind": "expression", "expression": "where(t > b, log(0.0 - a), 0.0 * x)",
+                   "params": {"a": 1.0, "b": 100.0}}],
+    "sweep": {"potential.0.params.b": [100.0, 0.5, 200.0]},
+})
+
+
+@pytest.fixture(scope="module")
+def worked(tmp_path_factory):
+    """(folder, root, the first `work`'s process) of the study 'scan'."""
+    folder = tmp_path_factory.mktemp("worked")
+    root = folder / "root"
+    job = write_job(folder, DIVERGING, "scan.toml")
+    sub = cli("submit", job, "--root", root, cwd=folder)
+    assert sub.returncode == 0, sub.stderr
+    first = cli("work", "--root", root, cwd=folder)
+    assert first.returncode == 0, first.stderr
+    return folder, root, first
+
+
+def _copy_root(worked, tmp_path) -> Path:
+    import shutil
+
+    root = tmp_path / "root"
+    shutil.copytree(worked[1], root)
+    return root
+
+
+def test_work_prints_one_line_summary(worked, tmp_path):
+    folder, root, first = worked
+    (line,) = first.stdout.splitlines()
+    assert "2 done, 1 failed, 0 requeued" in line, line
+    assert f"results in {root.resolve() / 'scan'}" in line, line
+    assert "wavesweep status --root" in line
+    assert "Traceback" not in first.stderr
+    again = cli("work", "--root", _copy_root(worked, tmp_path), cwd=tmp_path)
+    assert again.returncode == 0, again.stderr
+    (line,) = again.stdout.splitlines()
+    assert "0 done, 0 failed, 0 requeued" in line and "nothing ran" in line, line
+
+
+def _unusable_root(tmp_path, kind) -> Path:
+    (tmp_path / "plain-file").write_text("not a folder\n")
+    if kind == "file":
+        return tmp_path / "plain-file"
+    if kind == "under-file":
+        return tmp_path / "plain-file" / "root"
+    if not os.path.isdir("/proc/self"):
+        pytest.skip("no /proc here")
+    return Path("/proc/wavesweep-no-such-root")
+
+
+ROOT_COMMANDS = {"submit": ["submit", "JOB"], "work": ["work"], "status": ["status"],
+                 "retry": ["retry"], "cancel": ["cancel"], "collect": ["collect", "scan"]}
+
+
+@pytest.mark.parametrize("kind", ["file", "under-file", "proc"])
+@pytest.mark.parametrize("command", list(ROOT_COMMANDS))
+def test_a_root_that_cannot_be_used_is_bad_input(tmp_path, command, kind):
+    if kind == "under-file" and command != "submit":
+        pytest.skip("the other commands need an existing queue: covered by 'file'")
+    root = _unusable_root(tmp_path, kind)
+    job = write_job(tmp_path, TINY, "free.toml")
+    args = [job if a == "JOB" else a for a in ROOT_COMMANDS[command]]
+    proc = cli(*args, "--root", root, cwd=tmp_path)
+    assert_bad_input(proc, "--root", str(root))
+    assert (tmp_path / "plain-file").read_text() == "not a folder\n"
+
+
+@pytest.mark.skipif(not hasattr(os, "geteuid") or os.geteuid() == 0,
+                    reason="root writes through chmod 555; the read-only queue is tested in "
+                           "tests/unit/test_queue.py with SQLite's query_only")
+def test_a_read_only_root_is_bad_input_and_keeps_the_queue(worked, tmp_path):
+    root = _copy_root(worked, tmp_path)
+    job = write_job(tmp_path, TINY, "free.toml")
+    before = {p: p.read_bytes() for p in root.rglob("*") if p.is_file()}
+    paths = [root, *[p for p in root.rglob("*")]]
+    for p in paths:
+        p.chmod(0o555 if p.is_dir() else 0o444)
+    try:
+        for args in (["submit", job], ["work"], ["retry", "--study", "scan"], ["collect", "scan"]):
+            proc = cli(*args, "--root", root, cwd=tmp_path)
+            assert_bad_input(proc, "--root", str(root), stdout_empty=False)
+    finally:
+        for p in paths:
+            p.chmod(0o755 if p.is_dir() else 0o644)
+    assert {p: p.read_bytes() for p in root.rglob("*") if p.is_file() and "sqlite" not in p.name} == \
+        {p: b for p, b in before.items() if "sqlite" not in p.name}
+
+
+# -- collect's output ----------------------------------------------------------------
+def test_collect_refuses_a_summary_path_that_is_a_folder(worked, tmp_path):
+    root = _copy_root(worked, tmp_path)
+    blocker = root / "scan" / "summary.nc"
+    blocker.mkdir()
+    (blocker / "notes.txt").write_text("mine\n")
+    proc = cli("collect", "scan", "--root", root, cwd=tmp_path)
+    line = assert_bad_input(proc, str(blocker), "is a folder", "move or remove")
+    assert (blocker / "notes.txt").read_text() == "mine\n"
+    assert [p.name for p in (root / "scan").iterdir() if p.name.endswith(".part")] == []
+    blocker.joinpath("notes.txt").unlink()
+    blocker.rmdir()
+    ok = cli("collect", "scan", "--root", root, cwd=tmp_path)
+    assert ok.returncode == 0, ok.stderr or line
+    assert Path(ok.stdout.strip()) == blocker and blocker.is_file()
+
+
+@pytest.mark.parametrize(("code", "status", "field"), [(30, 2, "--root"), (13, 2, "--root"),
+                                                      (28, 1, "internal error")])
+def test_a_failed_summary_write_keeps_the_previous_summary(worked, tmp_path, monkeypatch, capsys,
+                                                           code, status, field):
+    """In-process, with the netCDF write failing as a read-only filesystem
+    (EROFS) or a refused permission (EACCES) would make it: bad input, exit 2,
+    one line naming --root; a full disk (ENOSPC) is the environment's failure,
+    exit 1.  Either way the previous summary stays byte for byte and no
+    partial file is left."""
+    from wavesweep.cli import main
+
+    root = _copy_root(worked, tmp_path)
+    assert main(["collect", "scan", "--root", str(root)]) == 0
+    summary = root / "scan" / "summary.nc"
+    previous = summary.read_bytes()
+    capsys.readouterr()
+
+    def refuse(self, path, *args, **kwargs):
+        Path(path).write_bytes(b"half a file")          # as a write that stopped part-way
+        raise OSError(code, os.strerror(code), str(path))
+
+    monkeypatch.setattr(xr.Dataset, "to_netcdf", refuse)
+    assert main(["collect", "scan", "--root", str(root)]) == status
+    err = capsys.readouterr().err
+    assert len(err.splitlines()) == 1 and field in err, err
+    if status == 2:
+        assert "unchanged" in err and str(root / "scan") in err, err
+    assert summary.read_bytes() == previous
+    assert [p.name for p in (root / "scan").iterdir() if p.name.endswith(".part")] == []
+
+
+# -- files that are not job files, and states on another grid --------------------------
+def _a_result(worked) -> Path:
+    return sorted((worked[1] / "scan").glob("*.nc"))[0]
+
+
+@pytest.mark.parametrize("command", ["run", "submit"])
+def test_a_result_given_as_job_file_is_named_as_data(worked, tmp_path, command):
+    result = _a_result(worked)
+    out = tmp_path / "out"
+    extra = ["-o", out, "--quiet"] if command == "run" else ["--root", tmp_path / "root"]
+    proc = cli(command, result, *extra, cwd=tmp_path)
+    assert_bad_input(proc, result.name, "netCDF/HDF5 data file", "not a job file", "wavesweep plot",
+                     "arrivals", "TOML")
+    assert leftovers(out) == [] and not (tmp_path / "root").exists()
+
+
+@pytest.mark.parametrize(("grid", "differ", "pieces"), [
+    ({"points": 256}, "points", ["points = 128", "points = 256"]),
+    ({"min": -50.0, "max": 50.0}, "x coordinates", ["min = -40.0, max = 40.0", "min = -50, max = 50"]),
+])
+def test_a_state_on_another_grid_says_what_to_do(worked, tmp_path, grid, differ, pieces):
+    job = write_job(tmp_path, merged(TINY, {"grid": {"x": grid},
+                                            "packet": {"kind": "file", "path": str(_a_result(worked)),
+                                                       "center": None, "width": None,
+                                                       "momentum": None}}))
+    out = tmp_path / "out"
+    proc = cli("run", job, "-o", out, "--quiet", cwd=tmp_path)
+    assert_bad_input(proc, "packet.path", f"its {differ} differ", *pieces,
+                     "same axes, min, max, points", "[grid]", "wavesweep levels", "--states")
+    assert leftovers(out) == []

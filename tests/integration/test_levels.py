@@ -12,11 +12,13 @@ import math
 import numpy as np
 import pytest
 import scipy.constants as sc
+import scipy.linalg
 import xarray as xr
 
 from conftest import make_job, run_table
 from test_cli import assert_bad_input, cli, write_job
 from wavesweep.analysis.spectra import autocorrelation_levels, stationary_states
+from wavesweep.errors import JobError
 
 
 def test_hydrogen_s_levels_in_ev():
@@ -144,3 +146,152 @@ def test_levels_bad_input(tmp_path, well_run):
     sparse = tmp_path / "sparse.nc"
     ds.isel(time=slice(None, None, 20)).to_netcdf(sparse)     # every 2.0: aliases by pi hartree
     assert_bad_input(cli("levels", "--from", sparse, cwd=tmp_path), "record.every", "use record.every <=")
+
+
+# -- weak levels, aliasing, the states file, degeneracy ------------------------------------------
+# A GaAs electron (0.067 m_e) in a 10 meV trap, prepared in the ground state of a 20 meV trap
+QUENCH = {
+    "title": "quenched trap",
+    "units": {"length": "nm", "energy": "meV"},
+    "particle": {"mass": 0.067},
+    "grid": {"x": {"min": -120.0, "max": 120.0, "points": 128}},
+    "potential": [{"kind": "harmonic", "omega": 10.0}],
+    "packet": {"kind": "eigenstate", "n": 0, "potential": [{"kind": "harmonic", "omega": 20.0}]},
+    "evolve": {"dt": 0.02, "duration": 6.0, "scheme": "chebyshev"},
+    "record": {"every": 0.02, "snapshot_every": 6.0},
+}
+
+
+def test_weak_levels_of_a_quench_are_found(tmp_path):
+    """The ground state of w0 = 2w released into w is a squeezed vacuum with
+    e^(2r) = w0 / w: only even levels, |c_2k|^2 = (2k)! / (2^k k!)^2
+    tanh(r)^2k / cosh(r) (sudden quench of an oscillator; e.g. Gerry &
+    Knight, Introductory Quantum Optics, sec. 7.1; from memory), at E =
+    (2k + 1/2) hbar w.  With --min-weight 1e-5 all five levels of weight >=
+    1e-5 are found, 45 and 65 meV (4.4e-3, 4.0e-4) among them, which
+    <H> +/- 6 Delta H (up to 38 meV) had left out; no odd level appears."""
+    run_table(QUENCH, tmp_path)
+    path = next(tmp_path.glob("*.nc"))
+    proc = cli("levels", "--from", path, "--min-weight", "1e-5", "--json", cwd=tmp_path)
+    assert proc.returncode == 0, proc.stderr
+    body = json.loads(proc.stdout)
+    r = 0.5 * math.log(2.0)
+    k = np.arange(5)
+    closed = np.array([math.factorial(2 * j) / (2**j * math.factorial(j)) ** 2 for j in k]) \
+        * math.tanh(r) ** (2 * k) / math.cosh(r)
+    np.testing.assert_allclose(body["energies"], (2 * k + 0.5) * 10.0, rtol=1e-6)
+    np.testing.assert_allclose(body["weights"], closed, rtol=1e-4)
+    assert closed[-1] > 1e-5 > closed[-1] * math.tanh(r) ** 2 * 10 / 12     # the next one, 3.9e-6, is below
+
+
+DOUBLE_WELL = {
+    "title": "packet in a double well",
+    "grid": {"x": {"min": -8.0, "max": 8.0, "points": 128}},
+    "potential": [{"kind": "double_well", "height": 5.0, "separation": 4.0}],
+    "packet": {"kind": "gaussian", "center": -2.0, "width": 0.5},
+    "evolve": {"dt": 0.05, "duration": 60.0, "scheme": "chebyshev"},
+    "record": {"every": 0.05, "snapshot_every": 60.0},
+}
+
+
+def test_no_aliased_lines_in_a_double_well(tmp_path):
+    """A Gaussian packet in a quartic double well holds levels of weight
+    1e-6 up to ~60 hartree, 34 Delta H above <H>.  Sampled every 0.1 (a
+    period of 62.8 hartree) the levels above it alias into the band: before
+    this check two lines at 0.7525 and 10.947 hartree (weights 7e-7 and
+    2e-7, the aliases of E_27 and E_30) came out at --min-weight 1e-7, and
+    <H> +/- 6 Delta H hid every level above 12.  Now that sampling is refused
+    at 1e-6 with a record.every that would do; at 1e-4 (where it does) and
+    on the 0.05 record at 1e-6, every line found is a level of the dense
+    spectrum (scipy.linalg.eigh of the grid's H) with its weight |<n|psi>|^2,
+    and every resolved level of weight >= 1e-6 is found."""
+    run_table(DOUBLE_WELL, tmp_path)
+    path = next(tmp_path.glob("*.nc"))
+    setup = result_setup_of(path)
+    energies, vectors = scipy.linalg.eigh(setup.hamiltonian.static_matrix())
+    weights = np.abs(vectors.T @ setup.psi0.reshape(-1)) ** 2 * setup.grid.cell_volume
+
+    def matches(found, atol):
+        for e, w, blended in zip(found.energies, found.weights, found.blended):
+            # a level, or a group closer than the line width (the tunnelling pair E_0, E_1: one
+            # line at their weighted mean, as two Gaussians much closer than their width are)
+            near = np.abs(energies - e) < 3 * found.resolution
+            assert near.any(), e
+            if not blended:
+                assert abs(e - np.average(energies[near], weights=weights[near])) < atol, e
+                assert w == pytest.approx(weights[near].sum(), rel=1e-3, abs=1e-8), e
+
+    fine = autocorrelation_levels(path, min_weight=1e-6)
+    matches(fine, atol=1e-5)
+    alone = [n for n in range(len(energies)) if weights[n] >= 1.2e-6
+             and np.all(np.abs(np.delete(energies, n) - energies[n]) > 6 * fine.resolution)]
+    assert len(alone) >= 20
+    for n in alone:
+        assert np.min(np.abs(fine.energies - energies[n])) < 1e-5, energies[n]
+    sparse = tmp_path / "sparse.nc"
+    with xr.open_dataset(path) as ds:
+        ds.isel(time=slice(None, None, 2)).to_netcdf(sparse)          # every 0.1
+    with pytest.raises(JobError, match=r"record.every <= 0.0[5-9].*--min-weight") as info:
+        autocorrelation_levels(sparse, min_weight=1e-6)
+    assert info.value.field == "record.every"
+    # levels beyond the period, each below 1e-4, still alias in and pull the lines a little
+    # (measured: 1.3e-5 hartree at 25.3, 1e-4 of a line width)
+    matches(autocorrelation_levels(sparse, min_weight=1e-4), atol=1e-4)
+
+
+def result_setup_of(path):
+    from wavesweep.io.results import result_setup
+
+    with xr.open_dataset(path) as ds:
+        return result_setup(ds)
+
+
+def test_levels_are_printed_before_the_states_are_written(tmp_path, monkeypatch, capsys):
+    """A states path that cannot be written is refused before the solve (exit
+    2, one line, nothing on stdout): a folder that does not take files
+    (/proc), or a folder given as the file.  If the write fails after the
+    solve anyway (a full disk here, injected), the levels are already on
+    stdout and the failure is one line with exit 2."""
+    from wavesweep import cli as wavesweep_cli
+    from wavesweep.analysis import spectra
+
+    job = write_job(tmp_path, WELL)
+    assert_bad_input(cli("levels", job, "--count", "3", "--states", "/proc/s.nc", cwd=tmp_path), "--states",
+                     "cannot write")
+    assert_bad_input(cli("levels", job, "--count", "3", "--states", tmp_path, cwd=tmp_path), "--states",
+                     "is a folder")
+
+    def full_disk(path, *args):
+        raise JobError("--states", f"cannot write {str(path)!r}: No space left on device; choose another path")
+
+    monkeypatch.setattr(spectra, "write_states", full_disk)
+    for extra in ((), ("--json",)):
+        code = wavesweep_cli.main(["levels", str(job), "--count", "3", "--states", str(tmp_path / "s.nc"), *extra])
+        out, err = capsys.readouterr()
+        assert code == 2 and err.count("\n") == 1 and "No space left" in err
+        if extra:
+            np.testing.assert_allclose(json.loads(out)["energies"], [0.5, 1.5, 2.5], rtol=1e-10)
+        else:
+            rows = out.splitlines()[1:]
+            np.testing.assert_allclose([float(r.split()[1]) for r in rows], [0.5, 1.5, 2.5], rtol=1e-10)
+    assert not list(tmp_path.glob("*s.nc*"))
+
+
+def test_degenerate_levels_are_marked(tmp_path):
+    """2D isotropic oscillator: E = (n + 1) hbar w, (n + 1)-fold (e.g.
+    Sakurai sec. 2.3 problems; from memory).  Levels are numbered in energy
+    order and the text output names the degenerate groups; the last one
+    asked for (level 6, E = 4) shares its energy with levels beyond."""
+    table = {"grid": {"x": {"min": -6.0, "max": 6.0, "points": 24}, "y": {"min": -6.0, "max": 6.0, "points": 24}},
+             "potential": [{"kind": "harmonic", "omega": 1.0}],
+             "packet": {"kind": "gaussian", "center": [0.0, 0.0], "width": [1.0, 1.0]},
+             "evolve": {"dt": 0.01, "duration": 0.1}}
+    proc = cli("levels", write_job(tmp_path, table), "--count", "7", cwd=tmp_path)
+    assert proc.returncode == 0, proc.stderr
+    head, *rows = proc.stdout.splitlines()
+    assert "degenerate" in head and len(rows) == 7
+    cells = [r.split(None, 2) for r in rows]
+    assert [int(c[0]) for c in cells] == list(range(7))
+    np.testing.assert_allclose([float(c[1]) for c in cells], [1, 2, 2, 3, 3, 3, 4], rtol=1e-8)
+    assert [c[2] if len(c) > 2 else "" for c in cells] == ["", "levels 1-2", "levels 1-2", "levels 3-5",
+                                                          "levels 3-5", "levels 3-5", "levels 6-7 (or more)"]

@@ -315,3 +315,81 @@ def test_absurd_momentum_is_a_grid_error_not_an_overflow():
     with pytest.raises(JobError) as info:
         Setup(j)
     assert info.value.field == "grid.x.points"
+
+
+# -- data files given as job files ---------------------------------------------------
+@pytest.mark.parametrize("head", [b"CDF\x01", b"CDF\x02", b"\x89HDF\r\n\x1a\n"])
+def test_a_netcdf_or_hdf5_file_is_named_as_data_not_job(tmp_path, head):
+    path = tmp_path / "RUN.nc"
+    path.write_bytes(head + bytes(range(256)) * 4)     # not UTF-8 after the magic either
+    with pytest.raises(JobError) as info:
+        load_job(path)
+    text = str(info.value)
+    assert "RUN.nc" in text and "netCDF/HDF5" in text and "not a job file" in text
+    assert "wavesweep plot" in text and "arrivals" in text and "TOML" in text
+    assert "UTF-8" not in text and "\n" not in text
+
+
+def test_a_real_netcdf4_file_is_recognised(tmp_path):
+    import netCDF4
+
+    path = tmp_path / "states.nc"
+    with netCDF4.Dataset(path, "w", format="NETCDF4") as ds:
+        ds.setncattr("title", "a result")
+    with pytest.raises(JobError, match="netCDF/HDF5 data file"):
+        load_job(path)
+
+
+def test_windows_line_endings_still_load(tmp_path):
+    path = tmp_path / "crlf.toml"
+    path.write_bytes(tomli_w.dumps(JOB).replace("\n", "\r\n").encode())
+    assert load_job(path).table["packet"]["width"] == 2.0
+
+
+# -- --set and [sweep] ---------------------------------------------------------------
+def _swept_file(tmp_path, sweep):
+    table = copy.deepcopy(JOB)
+    table["sweep"] = sweep
+    path = tmp_path / "scan.toml"
+    path.write_text(tomli_w.dumps(table))
+    return path
+
+
+@pytest.mark.parametrize(("override", "swept"), [
+    ("packet.width=3", "packet.width"),                         # the swept key itself
+    ("packet={kind = 'gaussian', center = -20.0, width = 3.0}", "packet.width"),   # its table
+    ("potential.-1.height=0.2", "potential.1.height"),          # the same entry, counted from the end
+    ("potential.1.params.a=1", "potential.1.params"),           # a field inside a swept table
+])
+def test_an_override_of_a_swept_key_is_refused(tmp_path, override, swept):
+    from wavesweep.batch.sweep import load_study
+
+    values = [{"a": 0.0}, {"a": 1.0}] if swept.endswith("params") else [1.5, 2.5]
+    path = _swept_file(tmp_path, {"packet.center": [-25.0, -20.0], swept: values})
+    key = override.split("=", 1)[0]
+    for load in (load_job, load_study):        # check and levels / run and submit
+        with pytest.raises(JobError) as info:
+            load(path, [override])
+        e = info.value
+        assert e.field == f"--set {key}", str(e)
+        assert f"'{swept}'" in str(e) and "[sweep] of scan.toml" in str(e)
+        assert f"drop --set {key}" in str(e) and "remove" in str(e) and "\n" not in str(e)
+
+
+def test_an_override_of_a_key_not_swept_reaches_every_run(tmp_path):
+    from wavesweep.batch.sweep import expand_study, load_study
+
+    path = _swept_file(tmp_path, {"packet.width": [1.5, 2.5]})
+    study = load_study(path, ["packet.center=-25.0", "potential.0.height=0.4"])
+    assert [r.job.table["packet"]["width"] for r in study.runs] == [1.5, 2.5]
+    assert {r.job.table["packet"]["center"] for r in study.runs} == {-25.0}
+    assert {r.job.table["potential"][0]["height"] for r in study.runs} == {0.4}
+    assert load_job(path, ["packet.center=-25.0"]).table["packet"]["center"] == -25.0
+    # without [sweep] every key may be set; a library caller's tuples are checked too
+    plain_file = tmp_path / "plain.toml"
+    plain_file.write_text(tomli_w.dumps(JOB))
+    assert load_job(plain_file, ["packet.width=3"]).table["packet"]["width"] == 3
+    with pytest.raises(JobError, match="--set packet.width"):
+        expand_study(tomllib.loads(path.read_text()), overrides=[("packet.width", 3.0)])
+    plain = copy.deepcopy(JOB)
+    assert expand_study(plain, overrides=["packet.width=3"]).runs[0].job.table["packet"]["width"] == 3

@@ -4,10 +4,12 @@ from __future__ import annotations
 
 import copy
 import multiprocessing
+import os
 import pickle
 import sqlite3
 import threading
 import tomllib
+from pathlib import Path
 
 import netCDF4
 import pytest
@@ -456,3 +458,132 @@ def test_a_fresh_queue_on_the_same_root_sees_everything(tmp_path):
     assert raw.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
     assert raw.execute("PRAGMA user_version").fetchone()[0] == 1
     raw.close()
+
+
+# ------------------------------------------------- roots that cannot be used
+def _assert_root_error(info, *pieces):
+    e = info.value
+    assert e.field == "--root", str(e)
+    assert "\n" not in str(e)
+    for piece in pieces:
+        assert piece in str(e), str(e)
+
+
+@pytest.mark.parametrize("where", ["a-file", "a-file/sub", "proc"])
+def test_a_root_that_cannot_be_created_is_a_root_error(tmp_path, where):
+    """A file where the folder should be, a folder under a file, a folder
+    the kernel refuses (/proc): JobError("--root") naming the path."""
+    (tmp_path / "a-file").write_text("not a folder\n")
+    if where == "proc":
+        if not os.path.isdir("/proc/self"):
+            pytest.skip("no /proc here")
+        root = Path("/proc/wavesweep-no-such-queue")
+    else:
+        root = tmp_path / where
+    with pytest.raises(JobError) as info:
+        Queue(root)
+    _assert_root_error(info, str(root), "--root")
+    assert (tmp_path / "a-file").read_text() == "not a folder\n"
+
+
+@pytest.mark.parametrize("what", ["folder", "garbage"])
+def test_a_queue_file_that_is_not_a_queue_is_a_root_error(tmp_path, what):
+    db = tmp_path / "queue.sqlite"
+    if what == "folder":
+        db.mkdir()
+    else:
+        db.write_bytes(b"this is not an SQLite database, just some bytes\n" * 20)
+    before = db.read_bytes() if what == "garbage" else None
+    with pytest.raises(JobError) as info:
+        Queue(tmp_path)
+    _assert_root_error(info, str(db))
+    if before is not None:
+        assert db.read_bytes() == before          # never "repaired" or overwritten
+
+
+@pytest.fixture
+def read_only(monkeypatch):
+    """Every new connection refuses writes as a read-only database does
+    (SQLite's query_only: SQLITE_READONLY on the first write)."""
+    original = Queue._connect
+
+    def connect(self):
+        conn = original(self)
+        conn.execute("PRAGMA query_only=ON")
+        return conn
+
+    def switch(on=True):
+        if on:
+            monkeypatch.setattr(Queue, "_connect", connect)
+        else:
+            monkeypatch.setattr(Queue, "_connect", original)
+    return switch
+
+
+def test_a_read_only_queue_refuses_changes_and_keeps_everything(tmp_path, read_only):
+    q = Queue(tmp_path)
+    q.submit(study("a", [0.5, 1.0, 1.5]))
+    finish(q)
+    failed = q.claim("w")
+    q.fail("a", failed["run_id"], "w", "norm grew")
+    before = q.status()                        # done, failed, queued
+    manifest = (tmp_path / "a" / "study.json").read_bytes()
+    q.close()
+
+    read_only(True)
+    ro = Queue(tmp_path)                       # opening and reading still work
+    assert ro.runs() == before["runs"]
+    changes = {"check_writable": lambda: ro.check_writable(),
+               "submit more": lambda: ro.submit(study("a", [0.5, 1.0, 2.0])),
+               "submit reusing": lambda: ro.submit(study("b", [0.5])),   # a's result, linked
+               "retry": lambda: ro.retry(),
+               "cancel": lambda: ro.cancel(),
+               "claim": lambda: ro.claim("w2")}
+    for name, change in changes.items():
+        with pytest.raises(JobError) as info:
+            change()
+        _assert_root_error(info, "read-only", str(tmp_path))
+    ro.close()
+
+    read_only(False)
+    again = Queue(tmp_path)
+    assert again.status() == before            # nothing changed, nothing lost
+    assert (tmp_path / "a" / "study.json").read_bytes() == manifest
+    assert list((tmp_path / "b").glob("*.nc")) == []     # the link made for b was taken back
+
+
+def test_check_writable_needs_the_study_folders_too(tmp_path):
+    q = Queue(tmp_path)
+    q.submit(study("a", [0.5]))
+    q.check_writable(["a"])                    # a writable queue: no error, nothing made
+    assert sorted(p.name for p in (tmp_path / "a").iterdir()) == ["study.json"]
+    (tmp_path / "b").write_text("a file where the study folder b should be\n")
+    with pytest.raises(JobError) as info:
+        q.check_writable(["a", "b"])
+    _assert_root_error(info, str(tmp_path / "b"))
+
+
+def test_drain_summary_counts_what_one_drains_workers_did(tmp_path):
+    clock = Clock()
+    q = Queue(tmp_path, clock=clock)
+    q.submit(study("a", [0.5, 1.0, 1.5, 2.0, 2.5]))
+    q.submit(study("b", [3.0]))
+    earlier = q.claim("host:1:0")              # before the mark: a dead worker's run
+    mark = q.last_event()
+    assert mark > 0
+    c = q.claim("host:7:0")
+    q.complete(c["study"], c["run_id"], "host:7:0", 1.0)
+    c = q.claim("host:7:1")
+    q.fail(c["study"], c["run_id"], "host:7:1", "norm grew")
+    c = q.claim("host:7:0")
+    q.release(c["study"], c["run_id"], "host:7:0", "interrupted at step 3")
+    other = q.claim("host:70:0")               # another drain's worker, same prefix digits
+    q.complete(other["study"], other["run_id"], "host:70:0", 1.0)
+    clock.t += 1000
+    q.requeue_stale(60)                        # the earlier claim: requeued, not this drain's worker
+    assert q.drain_summary(mark, worker_prefix="host:7:") == {
+        "done": 1, "failed": 1, "requeued": 1, "studies": ["a"]}
+    everyone = q.drain_summary(mark)
+    assert (everyone["done"], everyone["failed"], everyone["requeued"]) == (2, 1, 1)
+    assert q.drain_summary(q.last_event()) == {"done": 0, "failed": 0, "requeued": 0, "studies": []}
+    assert earlier["run_id"] in {r["run_id"] for r in q.runs() if r["state"] == "queued"}

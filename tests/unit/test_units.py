@@ -167,9 +167,11 @@ def test_strings_with_units_in_an_atomic_job():
     assert s.mass == pytest.approx(DALTON, rel=1e-10)
     v = s.hamiltonian.static_potential
     x = ax.coordinates
-    # no grid point lies within 1e-3 dx of the step (dx = 20 nm / 256)
-    assert np.min(np.abs(x - NM)) > 1e-3 * ax.dx
-    np.testing.assert_allclose(v, np.where(x >= NM, 0.5 * MEV, 0.0), rtol=1e-12, atol=0)
+    # the step at 1 nm, its edge cell-averaged over dx = 20 nm / 256: the
+    # height and position arrive in atomic units
+    cell = np.clip((x + ax.dx / 2 - NM) / ax.dx, 0.0, 1.0)
+    np.testing.assert_allclose(v, 0.5 * MEV * cell, rtol=1e-12, atol=1e-12 * MEV)
+    assert v.sum() * ax.dx == pytest.approx(0.5 * MEV * (x[-1] + ax.dx / 2 - NM), rel=1e-10)
 
 
 # --- errors name the field --------------------------------------------------------

@@ -56,9 +56,34 @@ Autocorrelation levels (:func:`autocorrelation_levels`)
     of their spacing (measured on two equal lines: 2.3e-3 at u = 4, 8e-4 at
     4.3, 6e-5 at 5, 3e-8 at 6.5), and widen the fitted line by 4-5 times
     that (``line_width_ratio``; :attr:`AutocorrelationLevels.blended` flags
-    more than :data:`BLENDED_WIDTH`).  Samples dt apart alias every energy
-    by 2 pi hbar / dt: the band the state occupies must fit inside, which
-    is checked.
+    more than :data:`BLENDED_WIDTH`).
+
+    Samples dt apart alias every energy by 2 pi hbar / dt, so every level of
+    weight >= min_weight must lie in one period.  Where they lie comes from
+    the Gauss quadrature of psi(0)'s energy distribution that 20 to 240
+    Lanczos steps give, whose Chebyshev-Markov-Stieltjes inequalities bound
+    the weight beyond each node (:func:`energy_band`).  <H> +/- 6 Delta H
+    was used before and is not enough: a sudden quench from a trap of 2w
+    into w has |c_4|^2 = 4.4e-3 at 7.3 Delta H above <H> (it was missed),
+    and a Gaussian packet in a double well (tests/integration/test_levels.py)
+    has levels of weight 1e-6 at 34 Delta H, which aliased into the band as
+    lines that are not levels.  That band is the one searched, and a
+    sampling that aliases it is refused.
+
+    A peak is a level only if its fitted line is no narrower than the
+    window's and it rises above the truncation floor.  ln S of a sum of
+    window lines with positive weights is -(E tau)^2 / 2 plus a log-sum-exp
+    of functions linear in E, which is convex, so its second difference over
+    any three evenly spaced points is never below the window's: a fitted
+    width ratio below 1 (beyond :data:`NARROW_WIDTH`), on the scan's points
+    or on the refined ones, is a side lobe or noise.  (Next to a close level
+    ln S is no parabola over +/- hbar/tau and the refined vertex runs off
+    towards the neighbour; the scan's vertex is kept then.)  Cutting the
+    record at T adds at most w(T) tau^2 / T / pi to S next to a line, and
+    that falls off as 1 / distance (:func:`truncation_floor`); with the
+    default window (w(T) = 1.5e-8) it is 2e-9 of a line of unit weight, with
+    a window tau = T / 2 (w(T) = 0.14) 5e-2.  Peaks below twice what the
+    other lines put there are dropped.
 """
 from __future__ import annotations
 
@@ -76,8 +101,9 @@ from ..errors import JobError, RunFailed
 from ..grid import Axis, Grid
 from ..hamiltonian import Hamiltonian
 
-__all__ = ["stationary_states", "eigenpairs", "write_states", "autocorrelation_levels",
-           "AutocorrelationLevels", "walled_potential", "DENSE_MAX_POINTS"]
+__all__ = ["stationary_states", "eigenpairs", "write_states", "check_states_path", "degenerate_groups",
+           "autocorrelation_levels", "AutocorrelationLevels", "energy_band", "lanczos_quadrature",
+           "quadrature_band", "truncation_floor", "walled_potential", "DENSE_MAX_POINTS"]
 
 # Largest grid diagonalised densely (8 bytes x size^2: 34 MB).  Measured
 # (one thread): dense eigh with a subset took 0.09 s at 1024 points, 1.1 s at
@@ -392,6 +418,65 @@ def _lobpcg(h, v, keep, x0, count, tol, maxiter):
         before = worst
 
 
+# Levels closer than this, relative to the largest of |E| and the span of the
+# levels, are degenerate: the tolerance eigenstate packets refuse a level by
+# (states.py).  Measured on isotropic 2D harmonic wells (levels 1..4, dense
+# and LOBPCG, 24^2 to 128^2 points): members of a degenerate level differ by
+# 4e-16 ... 2e-11 of that (2e-11: the discretisation error of a 24^2 grid,
+# which differs between E_3 + E_0 and E_2 + E_1 of the 1D levels).  A true
+# splitting below it (the tunnelling pair of a very deep double well) is
+# reported as degenerate too.
+DEGENERATE_TOL = 1e-8
+
+
+def degenerate_groups(energies, rel_tol: float = DEGENERATE_TOL) -> list[tuple[int, int]]:
+    """``(first, last)`` index ranges (inclusive, two or more levels) of
+    ``energies`` (ascending) whose neighbours lie within ``rel_tol`` times
+    max(|E|, E_last - E_first) of each other."""
+    e = np.asarray(energies, float)
+    if e.size < 2:
+        return []
+    tol = rel_tol * max(float(np.max(np.abs(e))), float(e[-1] - e[0]), 1e-300)
+    groups, first = [], 0
+    for n in range(1, e.size + 1):
+        if n == e.size or e[n] - e[n - 1] > tol:
+            if n - 1 > first:
+                groups.append((first, n - 1))
+            first = n
+    return groups
+
+
+def check_states_path(path, field: str = "--states") -> Path:
+    """Refuse, before any work, a states file that cannot be written: a
+    folder in its place, a folder that is not one or not writable (probed
+    by creating and removing the temporary name :func:`write_states` uses),
+    or the nearest existing parent of a folder still to be made not
+    writable."""
+    path = Path(path)
+    if path.is_dir():
+        raise JobError(field, f"{str(path)!r} is a folder; give a file name such as {str(path / 'states.nc')!r}")
+    folder = path.parent if str(path.parent) else Path(".")
+    if folder.exists():
+        if not folder.is_dir():
+            raise JobError(field, f"cannot write {str(path)!r}: {str(folder)!r} is not a folder; choose another path")
+        probe = folder / f".{path.name}.part"
+        try:
+            with open(probe, "xb"):
+                pass
+        except FileExistsError:
+            return path    # a write under way or left over: write_states replaces it
+        except OSError as e:
+            raise JobError(field, f"cannot write {str(path)!r}: {e.strerror or e}; choose another path") from None
+        probe.unlink(missing_ok=True)
+        return path
+    parent = folder
+    while not parent.exists() and parent != parent.parent:
+        parent = parent.parent
+    if not parent.is_dir() or not os.access(parent, os.W_OK | os.X_OK):
+        raise JobError(field, f"cannot create the folder {str(folder)!r} in {str(parent)!r}; choose another path")
+    return path
+
+
 def write_states(path, setup, energies_hartree, states) -> Path:
     """Write stationary states as netCDF (job units): coordinates of the
     grid, ``energy(state)``, ``psi_real``/``psi_imag(state, ...)``.  The
@@ -477,14 +562,191 @@ class AutocorrelationLevels:
                 "energy_units": self.energy_units}
 
 
-# Band the state occupies: <H> +/- BAND_SIGMAS standard deviations of H (by
-# Chebyshev's inequality at most 1/36 of any distribution lies beyond; for
-# the light-tailed distributions of packets, far less).
-BAND_SIGMAS = 6.0
 # Window: tau = T / WINDOW_RATIO, so that w(T) = exp(-18) = 1.5e-8.
 WINDOW_RATIO = 6.0
 # A fitted line this much wider than the window's is blended (see the notes).
 BLENDED_WIDTH = 1.005
+# A fitted line narrower than the window's by more than this is no line: at
+# any peak of a sum of window lines with positive weights the fitted width is
+# at least the window's (see the notes); what is narrower is a side lobe of
+# the record's truncation or noise.  The slack covers rounding and the
+# truncation's own distortion of true lines (measured: isolated lines fit
+# 1 +/- 1e-6 at tau = T/6, a weak line 1 - 4e-6 at tau = T/4.6).
+NARROW_WIDTH = 0.98
+# Lanczos steps for the energy distribution of psi(0) (at most), in chunks
+# of BAND_CHUNK until the band fits the sampling's period (energy_band).
+BAND_STEPS = 240
+BAND_CHUNK = 20
+
+
+class _Lanczos:
+    """Lanczos recurrence of a Hermitian ``apply`` from psi, extended on
+    demand; keeps three vectors and the tridiagonal matrix."""
+
+    def __init__(self, apply, psi, scale):
+        self.apply, self.shape, self.scale = apply, np.shape(psi), scale
+        q = np.array(psi, dtype=complex).reshape(-1)
+        self.q, self.q_prev = q / np.linalg.norm(q), None
+        self.alphas, self.betas, self.exhausted = [], [], False
+
+    def extend(self, steps):
+        for _ in range(int(steps)):
+            if self.exhausted:
+                return
+            q = self.q
+            w = np.asarray(self.apply(q.reshape(self.shape)), complex).reshape(-1)
+            if self.q_prev is not None:
+                w -= self.betas[-1] * self.q_prev
+            a = float(np.vdot(q, w).real)
+            w -= a * q
+            c = np.vdot(q, w)          # a second pass against q keeps the local orthogonality
+            w -= c * q
+            self.alphas.append(a + float(c.real))
+            beta = float(np.linalg.norm(w))
+            if not beta > 1e-13 * self.scale:
+                self.exhausted = True
+                return
+            self.betas.append(beta)
+            self.q_prev, self.q = q, w / beta
+
+    @property
+    def steps(self):
+        return len(self.alphas)
+
+    def quadrature(self):
+        k = len(self.alphas)
+        nodes, vectors = scipy.linalg.eigh_tridiagonal(np.array(self.alphas), np.array(self.betas[:k - 1]))
+        weights = vectors[0] ** 2
+        return nodes, weights / weights.sum()
+
+
+def lanczos_quadrature(apply, psi, steps: int, scale: float):
+    """The Gauss quadrature of psi's spectral measure mu(E) = sum_n
+    |<n|psi>|^2 delta(E - E_n) for the Hermitian operator ``apply``, from
+    ``steps`` Lanczos steps started at psi: ``(nodes, weights, exhausted)``,
+    nodes ascending, weights summing to 1.  ``exhausted``: the Krylov space
+    became invariant (a residual below 1e-13 ``scale``), so the nodes and
+    weights are the measure itself (an eigenstate gives one node of weight 1).
+    The nodes are the eigenvalues of the Lanczos tridiagonal matrix and the
+    weights the squared first components of its eigenvectors (Golub &
+    Welsch, Math. Comp. 23, 221 (1969); from memory).  No
+    reorthogonalisation: only three vectors are kept; in floating point the
+    quadrature stays that of a measure with each level spread over a tiny
+    interval (Greenbaum, Linear Algebra Appl. 113, 7 (1989); from memory),
+    which is all :func:`quadrature_band` needs."""
+    lanczos = _Lanczos(apply, psi, scale)
+    lanczos.extend(steps)
+    return (*lanczos.quadrature(), lanczos.exhausted)
+
+
+def quadrature_band(nodes, weights, threshold: float):
+    """``(lo, hi)`` such that the measure whose Gauss quadrature is (nodes,
+    weights) puts less than ``threshold`` on E <= lo and less than
+    ``threshold`` on E >= hi; either is None where the quadrature cannot
+    tell (the outermost node alone carries ``threshold`` or more).  By the
+    Chebyshev-Markov-Stieltjes inequalities, mu(E <= x_j) <= sum_{i<=j} w_i
+    and mu(E >= x_j) <= sum_{i>=j} w_i for the Gauss nodes x_1 < ... < x_k
+    (Szego, Orthogonal Polynomials, sec. 3.41; Golub & Meurant, Matrices,
+    Moments and Quadrature with Applications, ch. 6; from memory): every
+    level of weight >= threshold lies strictly between lo and hi."""
+    nodes, weights = np.asarray(nodes, float), np.asarray(weights, float)
+    below = np.nonzero(np.cumsum(weights) < threshold)[0]
+    above = np.nonzero(np.cumsum(weights[::-1])[::-1] < threshold)[0]
+    lo = float(nodes[below[-1]]) if below.size else None
+    hi = float(nodes[above[0]]) if above.size else None
+    return lo, hi
+
+
+def energy_band(h, psi, threshold: float, resolution: float, width: float | None = None):
+    """The energies (hartree) outside of which psi holds no level of weight
+    >= ``threshold``: ``(lo, hi)``.  Lanczos quadratures of psi's energy
+    distribution (:func:`lanczos_quadrature`, H with the eigensolvers'
+    walls, :func:`walled_potential`) bound the tails
+    (:func:`quadrature_band`).  Every quadrature gives valid bounds, so the
+    tightest over chunks of :data:`BAND_CHUNK` steps is kept (widened by
+    ``resolution``), until the band is at most ``width`` wide (all a caller
+    needs), or, without ``width``, until a chunk moves no edge by more than
+    ``resolution``; at most :data:`BAND_STEPS` steps.  Where the outermost
+    node carries ``threshold`` or more (below, that is the rule: the lowest
+    node is the ground level), the edge is the spectrum's own bound: the
+    grid's largest V + T above; below V_min + T_min, or the ground level
+    (one eigenpair) when the band would be too wide with V_min.  Measured:
+    hydrogen's upper edge for a packet at r = 10 bohr (4096 radial points)
+    stayed at 44 hartree for 40 steps and fell to 3.3 by 240, so the chunks
+    go on while the band is too wide; 240 steps cost 0.3 s there and 3 s
+    on 256^2 points (a loaded 2-core machine)."""
+    v, _ = walled_potential(h, None)
+    spectrum_lo = float(v.min()) + float(h.kinetic.min())
+    spectrum_hi = float(v.max()) + float(h.kinetic.max())
+    scale = spectrum_hi - spectrum_lo + 1e-300
+
+    def apply(x):
+        return h.apply_static(x, potential=v)
+
+    def fits(lo_, hi_):
+        return width is not None and hi_ - lo_ <= width
+
+    lo, hi = -math.inf, math.inf
+    lanczos = _Lanczos(apply, psi, scale)
+    while lanczos.steps < BAND_STEPS and not lanczos.exhausted:
+        lanczos.extend(BAND_CHUNK)
+        nodes, weights = lanczos.quadrature()
+        new_lo, new_hi = quadrature_band(nodes, weights, threshold)
+        if lanczos.exhausted:   # the measure itself: its levels of weight >= threshold
+            big = nodes[weights >= threshold]
+            new_lo, new_hi = float(big.min()), float(big.max())
+        # In floating point a converged node gets copies (Greenbaum's clusters) that share its
+        # weight, so a copy just below (above) a level can be the edge: the bounds hold up to the
+        # clusters' width, far below a line width (measured: 1e-13 on a quench, where the copy
+        # of E = 8.5 hbar w was the edge at 1e-5).
+        moved = False
+        if new_lo is not None:
+            moved |= new_lo - resolution > lo + resolution
+            lo = max(lo, new_lo - resolution)
+        if new_hi is not None:
+            moved |= new_hi + resolution < hi - resolution
+            hi = min(hi, new_hi + resolution)
+        if math.isfinite(hi):
+            if fits(lo if math.isfinite(lo) else spectrum_lo, hi):
+                break
+            if width is None and lanczos.steps > BAND_CHUNK and not moved:
+                break
+    if not math.isfinite(hi):
+        hi = spectrum_hi
+    if not math.isfinite(lo):
+        lo = spectrum_lo
+        if width is not None and not fits(lo, hi):
+            lo = ground_energy(h) - resolution
+    return max(lo, spectrum_lo), min(hi, spectrum_hi)
+
+
+def ground_energy(h) -> float:
+    """The lowest level of H (hartree): a lower bound of any state's energies."""
+    energies, _ = eigenpairs(h, 1, t=None, field="--from")
+    return float(energies[0])
+
+
+def truncation_floor(at, line_energies, line_weights, duration, tau, period, rest=None):
+    """A bound, as a weight, on what cutting the windowed record at t = T
+    adds to the spectrum at the energies ``at`` (hartree): from the lines
+    ``line_energies`` with ``line_weights``, and the weight ``rest`` (by
+    default what the lines leave of the norm) counted at distance 0.  With
+    |C| <= 1 and a line at distance d (taken modulo the sampling's period),
+    |sum_{t_j > T} dt w(t_j) exp(i d t_j)| <= w(T) min(tau^2 / T, pi / |d|):
+    the Gaussian's tail integral (Mills' ratio, e.g. Abramowitz & Stegun
+    7.1.13; from memory) and summation by parts (|2 sin(d dt / 2) / dt| >=
+    2 |d| / pi within the period).  S takes 1 / pi of it; divided by
+    tau / sqrt(2 pi), the height of a line of unit weight."""
+    at = np.atleast_1d(np.asarray(at, float))
+    w_end = math.exp(-0.5 * (duration / tau) ** 2)
+    near = tau**2 / duration
+    if rest is None:
+        rest = max(1.0 - float(np.sum(line_weights)), 0.0)
+    total = np.full(at.shape, rest * near)
+    for e_n, w_n in zip(np.atleast_1d(line_energies), np.atleast_1d(line_weights)):
+        d = np.abs((at - e_n + 0.5 * period) % period - 0.5 * period)
+        total += w_n * np.minimum(near, math.pi / np.maximum(d, 1e-300))
+    return total * w_end / math.pi * math.sqrt(2.0 * math.pi) / tau
 
 
 def autocorrelation_levels(result, count: int | None = None, min_weight: float = 1e-6,
@@ -537,18 +799,11 @@ def _levels_from_dataset(ds, count, min_weight, window, field) -> Autocorrelatio
     if h.time_dependent:
         raise JobError("potential", "the run's Hamiltonian depends on time, so its autocorrelation has "
                                     "no stationary lines; use wavesweep levels JOB.toml for H at t = 0")
-    # the band psi(0) occupies: <H> +/- BAND_SIGMAS Delta H, inside the grid's spectrum
+    # the band psi(0) holds every level of weight >= min_weight in (Lanczos quadrature)
     psi0 = setup.psi0
-    dv = setup.grid.cell_volume
-    h_psi = h.apply_static(psi0, None)
-    norm = float(np.sum(np.abs(psi0) ** 2)) * dv
-    mean = float(np.real(np.vdot(psi0, h_psi))) * dv / norm
-    spread = math.sqrt(max(float(np.sum(np.abs(h_psi) ** 2)) * dv / norm - mean**2, 0.0))
-    lo_bound, hi_bound = h.spectral_range()
-    e_lo = max(mean - BAND_SIGMAS * spread, lo_bound)
-    e_hi = min(mean + BAND_SIGMAS * spread, hi_bound)
-    margin = 6.0 / tau   # where a line has fallen to exp(-18)
     period = 2.0 * math.pi / step  # hbar = 1
+    margin = 6.0 / tau   # where a line has fallen to exp(-18)
+    e_lo, e_hi = energy_band(h, psi0, min_weight, 1.0 / tau, width=(1.0 - 1e-9) * period - 2.0 * margin)
     need = (e_hi - e_lo) + 2.0 * margin
     if need >= period:
         dt = setup.dt
@@ -560,9 +815,10 @@ def _levels_from_dataset(ds, count, min_weight, window, field) -> Autocorrelatio
             fix = (f"that needs samples every {best / tf:.4g} {t_units}, less than evolve.dt; "
                    "reduce evolve.dt and use record.every = evolve.dt")
         raise JobError("record.every", f"samples every {step / tf:g} {t_units} resolve a band of "
-                                       f"2 pi hbar / dt = {period / ef:.4g} {e_units}, but the state spans "
-                                       f"{need / ef:.4g} {e_units} (<H> +/- {BAND_SIGMAS:g} Delta H and the "
-                                       f"line width); {fix}")
+                                       f"2 pi hbar / dt = {period / ef:.4g} {e_units}, but the levels of "
+                                       f"weight >= {min_weight:g} in psi(0) span {e_lo / ef:.4g}..{e_hi / ef:.4g} "
+                                       f"{e_units}, {need / ef:.4g} {e_units} with the line width; "
+                                       f"{fix} (or a larger --min-weight)")
 
     weights_t = np.exp(-0.5 * (times / tau) ** 2)
     # S(E) = (dt / 2 pi) [w0 C0 + 2 Re sum_{j>0} w_j C_j exp(i E t_j)]: C(-t) = conj C(t)
@@ -588,25 +844,49 @@ def _levels_from_dataset(ds, count, min_weight, window, field) -> Autocorrelatio
     inside = e_scan <= e_hi + margin
     e_scan, scan = e_scan[inside], scan[inside]
     line_height = tau / math.sqrt(2.0 * math.pi)       # S at a line of unit weight
+    # rounding of the sums: eps times the sum of the magnitudes, as a weight
+    rounding = 64 * np.finfo(float).eps * 2.0 * float(np.sum(np.abs(half_weights))) / line_height
     floor = min_weight * line_height
-    found = []
+    candidates = []
     for k in range(1, scan.size - 1):
         if not (scan[k] > floor and scan[k] > scan[k - 1] and scan[k] >= scan[k + 1]):
             continue
         if scan[k - 1] <= 0 or scan[k + 1] <= 0:
             continue
-        e_peak, _, _ = _vertex(e_scan[k - 1:k + 2], scan[k - 1:k + 2])
+        e_scanned, log_scanned, curvature = _vertex(e_scan[k - 1:k + 2], scan[k - 1:k + 2])
+        if _width_ratio(curvature, tau) < NARROW_WIDTH:
+            continue   # narrower than any sum of lines: a side lobe or noise (module notes)
         # once more with three direct values centred on the estimate
-        probe = e_peak + np.array([-1.0, 0.0, 1.0]) / tau
+        probe = e_scanned + np.array([-1.0, 0.0, 1.0]) / tau
         values = spectrum(probe)
         if np.any(values <= 0):
             continue
         e_peak, log_height, curvature = _vertex(probe, values)
+        width_ratio = _width_ratio(curvature, tau)
+        if width_ratio < NARROW_WIDTH:
+            continue
+        if abs(e_peak - e_scanned) > 0.5 / tau:
+            # ln S is no parabola over +/- hbar/tau, as next to a close level: the scan's vertex
+            # is the hump's (measured: a pair 2.2 hbar/tau apart pulled it 0.6 hbar/tau inward)
+            e_peak, log_height = e_scanned, log_scanned
         weight = math.exp(log_height) / line_height
         if weight < min_weight or not (lo <= e_peak <= e_hi + margin):
             continue
-        width_ratio = math.sqrt(tau**2 / max(-2.0 * curvature, 1e-300))
-        found.append((e_peak, weight, width_ratio))
+        candidates.append((e_peak, weight, width_ratio))
+    # a line is no narrower than the window's, and rises above what the record's truncation
+    # (of the other lines and of the weight not found) and rounding can put there
+    lines = [p for p in candidates if p[2] >= NARROW_WIDTH]
+    found = []
+    if lines:
+        energies_c = np.array([p[0] for p in lines])
+        weights_c = np.array([p[1] for p in lines])
+        rest = max(1.0 - float(weights_c.sum()), 0.0)
+        for i, (e_peak, weight, width_ratio) in enumerate(lines):
+            others = np.arange(len(lines)) != i
+            noise = truncation_floor(e_peak, energies_c[others], weights_c[others], duration, tau, period,
+                                     rest=rest)[0] + rounding
+            if weight > 2.0 * noise:
+                found.append((e_peak, weight, width_ratio))
     found.sort()
     if count is not None:
         found = found[:count]
@@ -615,6 +895,12 @@ def _levels_from_dataset(ds, count, min_weight, window, field) -> Autocorrelatio
                                  energy_units=e_units, resolution=(1.0 / tau) / ef,
                                  band=(e_lo / ef, e_hi / ef),
                                  line_width_ratio=np.array([p[2] for p in found]))
+
+
+def _width_ratio(curvature, tau):
+    """Width of a fitted line (ln S = curvature (E - E_n)^2 + ...) over the
+    window's, hbar / tau."""
+    return math.sqrt(tau**2 / max(-2.0 * curvature, 1e-300))
 
 
 def _vertex(x, y):

@@ -9,7 +9,8 @@ from pathlib import Path
 
 from ..errors import JobError
 
-__all__ = ["default_root", "submit", "work", "status", "format_status", "parse_until"]
+__all__ = ["default_root", "submit", "work", "format_work", "status", "format_status", "parse_until",
+           "existing_queue"]
 
 
 def default_root(root=None) -> Path:
@@ -51,26 +52,62 @@ def parse_until(text: str | None, now: datetime | None = None) -> float | None:
 
 
 def work(root=None, workers: int = 1, until: str | None = None, executor="local", **settings) -> dict:
-    """Drain the queue at ROOT with an executor (by name or class)."""
+    """Drain the queue at ROOT with an executor (by name or class).
+
+    Returns the executor's summary with what this drain did added:
+    ``done``, ``failed`` and ``requeued`` (runs its workers finished,
+    failed, or released when stopped, plus the runs of dead workers that
+    it requeued or failed at the start), ``studies`` (the studies they
+    belong to), ``folders`` (where their results are) and ``root``."""
+    import socket
+
     from .executors import EXECUTORS, WorkerSettings
+    from .executors.local import LocalExecutor
 
     if workers < 1:
         raise JobError("--workers", f"must be at least 1, got {workers}")
-    root = default_root(root)
-    if not (root / "queue.sqlite").exists():
-        raise JobError("--root", f"no queue at {str(root)!r}; submit a study first (wavesweep submit JOB --root ...)")
+    queue = existing_queue(root)
     deadline = parse_until(until)
     cls = EXECUTORS[executor] if isinstance(executor, str) else executor
-    ex = cls(root, workers=workers, settings=WorkerSettings(until=deadline, **settings))
-    return ex.drain()
+    # before any worker starts: a read-only root would make each of them crash
+    queue.check_writable(sorted({r["study"] for r in queue.runs() if r["state"] == "queued"}))
+    since = queue.last_event()
+    ex = cls(queue.root, workers=workers, settings=WorkerSettings(until=deadline, **settings))
+    out = ex.drain()
+    # the local executor names its workers HOST:PID:i after this process
+    prefix = f"{socket.gethostname()}:{os.getpid()}:" if issubclass(cls, LocalExecutor) else None
+    done = queue.drain_summary(since, worker_prefix=prefix)
+    stale = out.get("stale") or {}
+    done["requeued"] += int(stale.get("requeued", 0))
+    done["failed"] += int(stale.get("failed", 0))
+    done["studies"] = sorted(set(done["studies"]) | {r["study"] for r in stale.get("runs", [])})
+    done["folders"] = [str(queue.study_dir(s)) for s in done["studies"]]
+    return {**out, **done, "root": str(queue.root)}
+
+
+def format_work(out: dict) -> str:
+    """One line: what a drain did and where the results are."""
+    counts = f"{out.get('done', 0)} done, {out.get('failed', 0)} failed, {out.get('requeued', 0)} requeued"
+    folders = out.get("folders") or []
+    if len(folders) == 1:
+        where = f"results in {folders[0]}"
+    elif folders:
+        where = f"results in {len(folders)} study folders under {out.get('root')}"
+    else:
+        where = f"nothing ran; queue at {out.get('root')}"
+    hint = f"`wavesweep status --root {out.get('root')}` lists the runs"
+    return f"wavesweep work: {counts} in this drain; {where}; {hint}"
 
 
 def existing_queue(root=None):
     """The queue at ROOT; a JobError (not a new, empty queue) if there is none."""
-    from .queue import Queue
+    from .queue import DB_NAME, Queue
 
     root = default_root(root)
-    if not (root / "queue.sqlite").exists():
+    if root.exists() and not root.is_dir():
+        raise JobError("--root", f"{str(root)!r} is a file, not a queue folder; give the folder "
+                                 "you submitted to (wavesweep submit JOB --root FOLDER)")
+    if not (root / DB_NAME).exists():
         raise JobError("--root", f"no queue at {str(root)!r}; submit a study first "
                                  "(wavesweep submit JOB --root ...)")
     return Queue(root)

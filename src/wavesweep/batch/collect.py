@@ -48,6 +48,7 @@ The file is written under a temporary name, fsync'ed and renamed into place.
 from __future__ import annotations
 
 import datetime as _dt
+import errno
 import json
 import os
 import tomllib
@@ -120,7 +121,18 @@ def collect(root, study: str) -> Path:
     a result yet.
     """
     root = Path(root)
+    # the summary goes under ROOT: it must be a folder that is there
+    if root.exists() and not root.is_dir():
+        raise JobError("--root", f"{str(root)!r} is a file, not a queue folder; give the folder the "
+                                 "study was submitted to (wavesweep collect STUDY --root FOLDER)")
+    if not root.exists():
+        raise JobError("--root", f"no such study {study!r}: there is no queue folder {str(root)!r} "
+                                 "(submitted studies: none); give the folder the study was submitted "
+                                 "to (wavesweep collect STUDY --root FOLDER)")
     folder = _study_folder(root, study)
+    problem = _output_error(folder / SUMMARY_NAME)   # before the work, not after it
+    if problem is not None:
+        raise problem
     manifest = _read_manifest(folder / MANIFEST_NAME)
     mode = manifest["mode"]
     runs = manifest["runs"]
@@ -616,17 +628,51 @@ def _global_attrs(manifest, study, first, found, expected, missing, params, note
     return attrs
 
 
+def _output_error(path: Path, error: OSError | None = None) -> JobError | None:
+    """The one-line JobError for a summary that cannot be written at
+    ``path`` because of what the user chose (a folder or other non-file in
+    its place, a folder without write permission, a read-only filesystem);
+    None when nothing is in the way, or ``error`` is the environment's
+    failure (a full disk stays an OSError)."""
+    where = str(path)
+    if path.is_dir():
+        return JobError(where, "is a folder, so the study's summary cannot be written there; move or "
+                               "remove that folder (its contents are not the summary) and collect again")
+    if path.exists() and not path.is_file():
+        return JobError(where, "is not a regular file; move or remove it and collect again")
+    if error is None:
+        return None
+    code = getattr(error, "errno", None)
+    if code in (errno.EACCES, errno.EPERM, errno.EROFS):
+        why = "read-only filesystem" if code == errno.EROFS else "no permission"
+        return JobError("--root", f"cannot write {where!r} ({why}); make {str(path.parent)!r} writable "
+                                  "and collect again (the previous summary, if any, is unchanged)")
+    if code in (errno.EISDIR, errno.ENOTDIR, errno.EEXIST):   # something else took the name
+        return JobError(where, f"cannot be written ({error.strerror or error}); move what is in the way "
+                               "and collect again (the previous summary, if any, is unchanged)")
+    return None    # a full disk, an I/O error: the environment failed, not the input (exit 1)
+
+
 def _write(ds: xr.Dataset, path: Path) -> Path:
     """Write under a temporary name, fsync, rename into place (a reader never
-    sees a half-written file, and a failed write leaves the old summary)."""
+    sees a half-written file, and a failed write leaves the old summary).
+    A path that cannot be written is a JobError naming it and the fix."""
+    problem = _output_error(path)
+    if problem is not None:
+        raise problem
     tmp = path.with_name(f".{path.name}.{os.getpid()}.part")
     try:
         ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4")
         atomic_rename(tmp, path)
-    except BaseException:
+    except BaseException as e:
         try:
             tmp.unlink()
         except FileNotFoundError:
             pass
+        except OSError:   # the folder refuses even that: there is no temporary file to remove
+            pass
+        problem = _output_error(path, e) if isinstance(e, OSError) else None
+        if problem is not None:
+            raise problem from None
         raise
     return path

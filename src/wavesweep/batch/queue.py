@@ -35,6 +35,11 @@ Reliability
 * The database needs a local filesystem (WAL relies on shared memory
   between the processes of one machine): on a cluster, let the processes
   on the host that owns ROOT talk to the queue.
+* A ROOT that cannot be created, opened or written (no permission, a file
+  where the folder should be, a read-only filesystem, a file that is not a
+  queue) is a :class:`~wavesweep.errors.JobError` on ``--root`` naming the
+  path and the fix, never a crash; a refused change leaves the queue as it
+  was (the transaction rolls back).
 
 Counters: ``attempts`` is the number of claims since the last retry that did
 not end in a release (so, while a run is queued or running, the number of
@@ -43,10 +48,12 @@ every claim ever, for bookkeeping and tests.
 """
 from __future__ import annotations
 
+import errno
 import json
 import os
 import shutil
 import sqlite3
+import tempfile
 import threading
 import time
 from contextlib import contextmanager
@@ -152,7 +159,7 @@ def _check_study_name(name) -> str:
 def _stat_signature(path: Path) -> str | None:
     try:
         st = os.stat(path)
-    except FileNotFoundError:
+    except (FileNotFoundError, NotADirectoryError):   # no such file, or its folder is a file
         return None
     # ctime cannot be set by a user: a replaced or rewritten file always differs
     return f"{st.st_size}:{st.st_mtime_ns}:{st.st_ctime_ns}:{st.st_ino}"
@@ -177,6 +184,54 @@ def check_result(path, run_id: str) -> str | None:
     if str(got) != run_id:
         return f"result file unreadable: it holds run {str(got)!r}, not {run_id!r}"
     return None
+
+
+_ROOT_FIX = "give a folder you can write with --root (or $WAVESWEEP_ROOT), e.g. --root ./wavesweep-runs"
+
+
+def root_error(root, exc: BaseException, doing: str = "use") -> JobError | None:
+    """The one-line ``JobError("--root", ...)`` for a failure to create,
+    open or write the queue folder ``root`` that the input is to blame for
+    (no permission, a file in the way, a read-only filesystem, a file that
+    is not a queue), or None when ``exc`` is something else (a full disk,
+    an I/O error, a locked database, a bug): that one propagates as it is."""
+    root = str(root)
+    if isinstance(exc, sqlite3.Error):
+        name = getattr(exc, "sqlite_errorname", "") or ""
+        text = str(exc).lower()
+        db = os.path.join(root, DB_NAME)
+        if name == "SQLITE_READONLY_DIRECTORY":
+            why = (f"the folder {root!r} is read-only (SQLite keeps its journal files beside the queue); "
+                   f"make it writable, or copy ROOT to a writable place and give that with --root")
+        elif name.startswith("SQLITE_READONLY") or "readonly" in text:
+            why = (f"{db!r} is read-only (file permissions or a read-only filesystem); make ROOT and "
+                   f"its files writable, or copy ROOT to a writable place and give that with --root")
+        elif name.startswith("SQLITE_CANTOPEN") or "unable to open" in text:
+            why = (f"cannot open {db!r} (it must be a file, in a folder you can write); "
+                   + _ROOT_FIX)
+        elif name in ("SQLITE_NOTADB", "SQLITE_CORRUPT") or "not a database" in text or "malformed" in text:
+            why = f"{db!r} is not a wavesweep queue or is damaged; give the folder you submitted to with --root"
+        else:   # a full disk, an I/O error, a lock held too long: not the input's fault
+            return None
+    elif isinstance(exc, OSError):
+        filename = os.fsdecode(exc.filename) if exc.filename else root
+        it = "it" if filename == root else repr(filename)
+        code = exc.errno
+        if code in (errno.EEXIST, errno.ENOTDIR):
+            why = f"a file is in the way ({it} or a folder above it is not a folder); {_ROOT_FIX}"
+        elif code == errno.EROFS:
+            why = f"{it} is on a read-only filesystem; {_ROOT_FIX}"
+        elif code in (errno.EACCES, errno.EPERM):
+            why = f"no permission to write {it}; {_ROOT_FIX}"
+        elif code == errno.ENOENT:
+            why = f"{it} cannot be created there; {_ROOT_FIX}"
+        elif code is None:    # our own OSErrors (journal mode, schema version) carry their fix
+            why = str(exc)
+        else:   # a full disk, an I/O error: the environment failed (exit 1)
+            return None
+    else:
+        return None
+    return JobError("--root", f"cannot {doing} {root!r}: {why}")
 
 
 def _fsync_dir(folder: Path) -> None:
@@ -220,12 +275,19 @@ def _write_json(path: Path, obj) -> None:
     """Write-then-rename, fsync'ed: a reader sees the old file or the new one."""
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(f".{path.name}.{os.getpid()}.{threading.get_ident()}.tmp")
-    with open(tmp, "w", encoding="utf-8") as f:
-        json.dump(obj, f, indent=1, default=_json_default)
-        f.write("\n")
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
+    try:
+        with open(tmp, "w", encoding="utf-8") as f:
+            json.dump(obj, f, indent=1, default=_json_default)
+            f.write("\n")
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:   # a full disk, or study.json is a folder: the old file stays
+        try:
+            tmp.unlink()
+        except OSError:
+            pass
+        raise
     _fsync_dir(path.parent)
 
 
@@ -275,8 +337,15 @@ class Queue:
         self.busy_timeout = float(busy_timeout)
         self._clock = clock or time.time
         self._local = threading.local()
-        self.root.mkdir(parents=True, exist_ok=True)
-        self._ensure_schema()
+        try:
+            self.root.mkdir(parents=True, exist_ok=True)
+            self._ensure_schema()
+        except (OSError, sqlite3.Error) as e:
+            problem = root_error(self.root, e, "use the queue folder")
+            if problem is None:
+                raise
+            self.close()
+            raise problem from None
 
     # ------------------------------------------------------------ plumbing
     def __getstate__(self):
@@ -294,16 +363,23 @@ class Queue:
         return f"Queue({str(self.root)!r})"
 
     def _connect(self) -> sqlite3.Connection:
-        conn = sqlite3.connect(self.path, timeout=self.busy_timeout, isolation_level=None)
+        try:
+            conn = sqlite3.connect(self.path, timeout=self.busy_timeout, isolation_level=None)
+        except sqlite3.Error as e:
+            raise root_error(self.root, e, "open the queue at") or e from None
         # the first switch to WAL takes an exclusive lock; a racing opener waits
         deadline = time.monotonic() + self.busy_timeout
         while True:
             try:
                 mode = conn.execute("PRAGMA journal_mode=WAL").fetchone()[0]
                 break
-            except sqlite3.OperationalError as e:
+            except sqlite3.DatabaseError as e:
                 if "locked" not in str(e) or time.monotonic() > deadline:
-                    raise
+                    conn.close()
+                    problem = root_error(self.root, e, "open the queue at")
+                    if problem is None:
+                        raise
+                    raise problem from None
                 time.sleep(0.01)
         if mode.lower() != "wal":
             conn.close()
@@ -350,6 +426,11 @@ class Queue:
                 if c.in_transaction:
                     c.execute("ROLLBACK")
                 raise
+        except sqlite3.Error as e:    # a read-only or vanished database: nothing changed
+            problem = root_error(self.root, e, "write the queue at")
+            if problem is None:
+                raise
+            raise problem from None
         finally:
             if not durable:
                 c.execute("PRAGMA synchronous=FULL")
@@ -379,6 +460,59 @@ class Queue:
             for statement in _SCHEMA:
                 c.execute(statement)
             c.execute(f"PRAGMA user_version={SCHEMA_VERSION}")
+
+    def check_writable(self, studies=()) -> None:
+        """A ``JobError("--root", ...)`` unless this process can change the
+        database and create files in ROOT and in the folders of ``studies``
+        (as workers must, before they claim anything).  Changes nothing."""
+        c = self._conn()
+        try:
+            c.execute("BEGIN IMMEDIATE")
+            try:   # a real write (the same value), undone: read-only files refuse it
+                c.execute(f"PRAGMA user_version={SCHEMA_VERSION}")
+            finally:
+                if c.in_transaction:
+                    c.execute("ROLLBACK")
+        except sqlite3.Error as e:
+            problem = root_error(self.root, e, "write the queue at")
+            if problem is None:
+                raise
+            raise problem from None
+        for folder in [self.root, *(self.study_dir(s) for s in dict.fromkeys(studies))]:
+            try:
+                folder.mkdir(parents=True, exist_ok=True)
+                fd, probe = tempfile.mkstemp(prefix=".write-test.", dir=folder)
+                os.close(fd)
+                os.unlink(probe)
+            except OSError as e:
+                raise root_error(self.root, e, "write in the queue folder") from None
+
+    def last_event(self) -> int:
+        """The id of the newest event (0 for none): a mark to pass to
+        :meth:`drain_summary` later."""
+        return int(self._conn().execute("SELECT COALESCE(MAX(id), 0) FROM events").fetchone()[0])
+
+    def drain_summary(self, since: int, worker_prefix: str | None = None) -> dict:
+        """What the workers that claimed runs after event ``since`` did with
+        them: ``{"done": n, "failed": n, "requeued": n, "studies": [...]}``
+        (requeued: released when asked to stop).  ``worker_prefix`` keeps
+        only workers whose names start with it (one drain's workers, when
+        several drain the queue at once)."""
+        mine, args = "", [since]
+        if worker_prefix:
+            mine, args = " AND substr(worker, 1, ?) = ?", [since, len(worker_prefix), worker_prefix]
+        rows = self._conn().execute(
+            "SELECT new, study, COUNT(*) FROM events WHERE id > ? AND old = 'running' "
+            "AND new IN ('done', 'failed', 'queued') AND worker IN (SELECT worker FROM events "
+            f"WHERE id > ? AND old = 'queued' AND new = 'running'{mine}) GROUP BY new, study",
+            (since, *args)).fetchall()
+        out = {"done": 0, "failed": 0, "requeued": 0, "studies": []}
+        for new, study, n in rows:
+            out["requeued" if new == "queued" else new] += int(n)
+            if study not in out["studies"]:
+                out["studies"].append(study)
+        out["studies"].sort()
+        return out
 
     def _event(self, c, now, study, run_id, old, new, worker=None, note=None) -> None:
         c.execute("INSERT INTO events (time, study, run_id, old, new, worker, note) "
@@ -428,12 +562,37 @@ class Queue:
                 (name, *chunk))
             for rid, src, wall in rows:
                 donors.setdefault(rid, []).append((src, wall))
+        try:
+            return self._submit(name, specs, manifest, donors)
+        except OSError as e:   # the study folder or its files cannot be written: nothing queued
+            problem = root_error(self.root, e, "write the study folder in")
+            if problem is None:
+                raise
+            raise problem from None
+
+    def _submit(self, name, specs, manifest, donors) -> dict:
+        made = []        # results linked here by this call: removed again if it fails
+        try:
+            return self._submit_linked(name, specs, manifest, donors, made)
+        except BaseException:
+            for path in made:
+                try:
+                    path.unlink()
+                except OSError:
+                    pass
+            raise
+
+    def _submit_linked(self, name, specs, manifest, donors, made) -> dict:
         reused = {}
         for rid, candidates in donors.items():
             for src, wall in candidates:
                 source = self.result_path(src, rid)
                 if check_result(source, rid) is None:
-                    how = _link_or_copy(source, self.result_path(name, rid))
+                    dst = self.result_path(name, rid)
+                    fresh_file = not dst.exists()
+                    how = _link_or_copy(source, dst)
+                    if fresh_file:
+                        made.append(dst)
                     reused[rid] = (src, wall, how)
                     break
 

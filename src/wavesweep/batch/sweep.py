@@ -14,6 +14,10 @@ job's canonical form (:attr:`wavesweep.jobfile.Job.run_id`), so the same
 physics always has the same id.  Every point is validated when the study is
 expanded: a bad point is a JobError naming the sweep key and value, and
 nothing is queued.
+
+``--set`` overrides apply to every run, but not to a swept key (or a table
+holding one, or a field inside one): the sweep would decide the value, so
+such an override is a JobError (:func:`refuse_swept_overrides`).
 """
 from __future__ import annotations
 
@@ -26,9 +30,9 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import JobError
-from ..jobfile import Job, job_from_dict, read_job_file
+from ..jobfile import Job, job_from_dict, parse_override, read_job_file
 
-__all__ = ["RunSpec", "Study", "expand_study", "load_study", "sweep_axes"]
+__all__ = ["RunSpec", "Study", "expand_study", "load_study", "sweep_axes", "refuse_swept_overrides"]
 
 MODES = ("grid", "zip")
 RANGE_KEYS = ("start", "stop", "num", "spacing")
@@ -117,10 +121,69 @@ def sweep_axes(sweep: dict) -> tuple[str, dict]:
     return mode, axes
 
 
+def _canonical_path(raw: dict, key: str) -> tuple:
+    """A dotted key as a tuple of parts, with list indices made
+    non-negative where ``raw`` has that list (``potential.-1.height`` and
+    ``potential.1.height`` of two potentials are the same field)."""
+    parts, node = [], raw
+    for part in key.split("."):
+        if isinstance(node, list):
+            try:
+                i = int(part)
+            except ValueError:
+                node = None
+            else:
+                if -len(node) <= i < len(node):
+                    part, node = str(i % len(node)), node[i]
+                else:
+                    node = None
+        elif isinstance(node, dict):
+            node = node.get(part)
+        else:
+            node = None
+        parts.append(part)
+    return tuple(parts)
+
+
+def refuse_swept_overrides(raw: dict, overrides=(), source: Path | None = None) -> None:
+    """A JobError naming ``--set KEY`` when an override targets a key the
+    job's ``[sweep]`` table sweeps (or a table holding it, or a field inside
+    it): every run takes that value from the sweep, so the override would be
+    silently lost.  Overrides of other keys are fine (they apply to every
+    run); a job without ``[sweep]`` accepts any override."""
+    sweep = raw.get("sweep")
+    if not isinstance(sweep, dict) or not overrides:
+        return
+    swept = {k: _canonical_path(raw, k) for k in sweep if k != "mode" and isinstance(k, str)}
+    where = f"[sweep] of {source.name}" if source else "[sweep]"
+    for item in overrides:
+        key = (parse_override(item) if isinstance(item, str) else item)[0]
+        mine = _canonical_path(raw, key)
+        hits = [name for name, path in swept.items()
+                if mine[:min(len(mine), len(path))] == path[:min(len(mine), len(path))]]
+        if not hits:
+            continue
+        names = " and ".join(map(repr, hits))
+        path = swept[hits[0]]
+        if mine == path:
+            what = (f"{key} is swept in {where}, so every run would take the sweep's values "
+                    "and ignore the override")
+        elif len(mine) < len(path):
+            what = (f"{key} holds {names}, swept in {where}: the sweep would overwrite that "
+                    "part of the override in every run")
+        else:
+            what = (f"{key} lies inside {names}, swept in {where}: the sweep would replace it, "
+                    "override and all, in every run")
+        raise JobError(f"--set {key}", f"{what}; remove {names} from [sweep] to run with {key} "
+                                       f"fixed, or drop --set {key}")
+
+
 def expand_study(raw: dict, source: Path | None = None, name: str | None = None,
                  overrides=()) -> Study:
-    """All runs of a job table (``[sweep]`` optional: one run without it)."""
+    """All runs of a job table (``[sweep]`` optional: one run without it).
+    An override of a swept key is a JobError (:func:`refuse_swept_overrides`)."""
     raw = copy.deepcopy(raw)
+    refuse_swept_overrides(raw, overrides, source)
     sweep = raw.pop("sweep", None)
     study_name = name or (source.stem if source else "study")
     if sweep is None:
@@ -148,7 +211,7 @@ def expand_study(raw: dict, source: Path | None = None, name: str | None = None,
 
 def load_study(path, overrides=(), name: str | None = None) -> Study:
     """Read a job file and expand its sweep (``--set`` overrides apply to
-    every run; a swept key set with --set is swept all the same)."""
+    every run; a swept key set with --set is a JobError naming it)."""
     path = Path(path)
     raw = read_job_file(path)
     # --set may also target the sweep table itself ("sweep.packet.energy" is
