@@ -434,7 +434,11 @@ def _absorber(raw, units, grid) -> dict:
     if t.get("thickness") is None:
         raise JobError("absorber.thickness", f"required for kind = {t['kind']!r}")
     th = units.to_atomic(t["thickness"], "length", "absorber.thickness")
+    covered = {f[:-1] for f in t["faces"]} if t.get("faces") is not None else None
     for name in grid_axes(grid):
+        if covered is not None and name not in covered:
+            continue              # no layer on this axis: nothing to fit
+        both = covered is None or {f"{name}-", f"{name}+"} <= set(t["faces"])
         lo = units.to_atomic(grid[name]["min"], "length")
         hi = units.to_atomic(grid[name]["max"], "length")
         if name == "r":   # one layer only, at r_max
@@ -442,8 +446,8 @@ def _absorber(raw, units, grid) -> dict:
                 raise JobError("absorber.thickness", f"the layer is thicker than the radial grid "
                                                      f"(r max = {grid[name]['max']!r}); make it thinner")
             continue
-        if 2 * th >= hi - lo:
-            raise JobError("absorber.thickness", f"two layers do not fit on the {name} axis "
+        if (2 if both else 1) * th >= hi - lo:
+            raise JobError("absorber.thickness", f"{'two layers do' if both else 'the layer does'} not fit on the {name} axis "
                                                  f"(from {grid[name]['min']!r} to {grid[name]['max']!r}); "
                                                  "make them thinner or the grid longer")
     faces = t.get("faces")

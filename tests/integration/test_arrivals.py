@@ -273,3 +273,20 @@ def test_free_particle_t_of_e_is_one_and_skips_the_absorbed_detector(free_result
     out, err = capsys.readouterr()
     assert "absorbed at x+" in out and "inside the x+ absorbing layer" in err
     assert len(err.strip().splitlines()) == 1
+
+
+def test_t_of_e_for_a_packet_moving_left_and_a_detector_behind_the_start(tmp_path, free_result, capsys):
+    """Mirror image of the free run: T(E) = 1 again, energies ascending; a
+    detector behind the packet's start is refused as such (a review
+    finding: it was told to sample faster)."""
+    table = copy.deepcopy(FREE)
+    table["grid"]["x"] = {"min": -100.0, "max": 60.0, "points": 1024}
+    table["packet"].update(center=-X0, momentum=-P0)
+    table["detector"] = [{"name": "d", "x": -XD}]
+    er = transmission(_run(table, tmp_path))["energy_resolved"]
+    assert np.all(np.diff(er["energy"]) > 0)
+    keep = er["weight"] > 1e-2
+    assert np.max(np.abs(er["T"][keep] - 1.0)) < 1e-3
+    capsys.readouterr()
+    assert main(["transmission", str(free_result), "--detector", "behind"]) == 2
+    assert "behind the packet's start" in capsys.readouterr().err

@@ -393,3 +393,20 @@ def test_an_override_of_a_key_not_swept_reaches_every_run(tmp_path):
         expand_study(tomllib.loads(path.read_text()), overrides=[("packet.width", 3.0)])
     plain = copy.deepcopy(JOB)
     assert expand_study(plain, overrides=["packet.width=3"]).runs[0].job.table["packet"]["width"] == 3
+
+
+def test_layers_on_one_axis_only_need_room_on_that_axis():
+    """absorber.faces = y only: a short x axis is fine (a review finding: it
+    was refused as if x had two layers)."""
+    from wavesweep.jobfile import job_from_dict
+    table = {
+        "grid": {"x": {"min": -10.0, "max": 10.0, "points": 64}, "y": {"min": -60.0, "max": 60.0, "points": 256}},
+        "packet": {"center": [0.0, -20.0], "width": [2.0, 3.0], "momentum": [0.0, 1.0]},
+        "evolve": {"dt": 0.05, "duration": 1.0},
+        "absorber": {"kind": "cap", "thickness": 15.0, "faces": ["y-", "y+"]},
+    }
+    job_from_dict(table)                       # x is 20 long, under two 15-thick layers: no matter
+    table["absorber"]["faces"] = ["x+"]
+    with pytest.raises(JobError) as info:
+        job_from_dict(table | {"absorber": {"kind": "cap", "thickness": 25.0, "faces": ["x+"]}})
+    assert info.value.field == "absorber.thickness" and "the layer does not fit" in info.value.message

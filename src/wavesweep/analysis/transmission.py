@@ -133,6 +133,10 @@ def _at_detector(ds, setup, j, k_all, w_all, points) -> dict:
     x0 = float(np.sum(dens0 * x) / np.sum(dens0))
     x_d = setup.detectors[j].position
     direction = 1.0 if x_d > x0 else -1.0
+    p_mean = float(np.sum(k_all * w_all) / np.sum(w_all))
+    if direction * p_mean <= 0:
+        raise JobError("--detector", f"detector {name!r} lies behind the packet's start (it moves the "
+                                     "other way); T(E) needs a detector beyond the scatterer on its path")
 
     t = np.asarray(ds["time"].values, float) * uc["time"]
     crossed = abs(float(np.trapezoid(ds["flux"].values[:, j], ds["time"].values)))
@@ -169,6 +173,7 @@ def _at_detector(ds, setup, j, k_all, w_all, points) -> dict:
                                        f"use record.every < {need:.3g} {uc['time_label']}")
     k_rep = k_all[w_fwd > WEIGHT_FLOOR * w_fwd.max()]
     k = np.linspace(k_rep.min(), k_rep.max(), points)
+    k = k[np.argsort(np.abs(k))]          # energies ascending whichever way the packet moves
     energy = v_start + k**2 / (2 * mass)
     phi = _momentum_amplitude(setup.psi0, x, k)
     v_in = np.abs(k) / mass
