@@ -236,10 +236,7 @@ def check_job(job: Job, trial_seconds: float = 1.0) -> Report:
             if setup.grid.radial:
                 edges = [(x0, "r = 0"), (ax.max - x0, "r+")]
             for dist, face in edges:
-                layer = th if any(layer.name == face for layer in setup.absorber.layers) else 0.0
-                margin = (dist - layer) / w
-                level = "ok" if margin >= 8 else ("warn" if margin > 3 else "error")
-                what = "absorber" if layer else "edge"
+                layer, margin, level, what = _margin(setup, th, face, dist, w)
                 findings.append(Finding("margin", level,
                     f"packet centre is {margin:.1f} widths from the {face} {what} "
                     f"({(dist - layer) / lf:.4g} {L}; 8 widths is common practice)"
@@ -372,6 +369,16 @@ def check_job(job: Job, trial_seconds: float = 1.0) -> Report:
     return Report(job.title, findings)
 
 
+def _margin(setup, th, face, dist, w):
+    """(layer thickness, margin in widths, level, "absorber"/"edge") of a
+    packet centre ``dist`` from ``face``; 8 widths is common practice, 3 the
+    least that keeps the tail (1e-3 of it and more) off the layer."""
+    layer = th if any(lay.name == face for lay in setup.absorber.layers) else 0.0
+    margin = (dist - layer) / w
+    level = "ok" if margin >= 8 else ("warn" if margin > 3 else "error")
+    return layer, margin, level, "absorber" if layer else "edge"
+
+
 def _measured_margins(setup, th, L, lf) -> list:
     """Margins of a packet that is not Gaussian parts only: its measured
     centre <x> and spread (the standard deviation of |psi|^2, a Gaussian
@@ -389,10 +396,7 @@ def _measured_margins(setup, th, L, lf) -> list:
         if grid.radial:
             edges = [(ax.max - x0, "r+")]   # u(r) vanishes at r = 0 by itself
         for dist, face in edges:
-            layer = th if any(layer.name == face for layer in setup.absorber.layers) else 0.0
-            margin = (dist - layer) / w
-            level = "ok" if margin >= 8 else ("warn" if margin > 3 else "error")
-            what = "absorber" if layer else "edge"
+            layer, margin, level, what = _margin(setup, th, face, dist, w)
             out.append(Finding("margin", level,
                 f"the state's centre (measured) is {margin:.1f} spreads from the {face} {what} "
                 f"({(dist - layer) / lf:.4g} {L}, spread {w / lf:.4g} {L}; 8 is common practice)"
