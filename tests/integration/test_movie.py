@@ -218,3 +218,9 @@ def test_bad_input_exits_2_with_one_line(case, free_result, tmp_path, capsys):
     err = capsys.readouterr().err.strip()
     assert len(err.splitlines()) == 1 and word in err, err
     assert not list(tmp_path.glob("*.mp4")) and not list(tmp_path.glob(".*part*"))
+
+
+def test_plot_refuses_a_nonsense_dpi(free_result, tmp_path, capsys):
+    assert main(["plot", str(free_result), "-o", str(tmp_path / "p.png"), "--dpi", "-5"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "--dpi" in err

@@ -47,6 +47,8 @@ def _save(fig, path: Path) -> Path:
 
 def plot_result(path, output, size=(1200, 900), dpi: int = 100) -> Path:
     """A run's figure, or a study's when ``path`` is a ``summary.nc``."""
+    if not (10 <= dpi <= 1000):
+        raise JobError("--dpi", f"must lie between 10 and 1000, got {dpi}")
     if not Path(path).exists():
         raise JobError("RUN.nc", f"no such file {str(path)!r}")
     try:
