@@ -4,7 +4,9 @@ A :class:`Transform` maps psi on the grid to its coefficients on the
 wave-number grid of :class:`~wavesweep.grid.Grid` and back: a complex FFT
 along periodic axes (unnormalised forward, 1/N on the way back, as
 numpy/scipy do) and the orthonormal DST-I along box axes (its own inverse).
-It is made once per run, so backends that plan (pyFFTW) plan once.
+It is made once per run, so backends that plan (pyFFTW) plan once.  With
+``members`` it transforms a batch: arrays of shape ``(members, *grid.shape)``,
+each member along the grid's axes only.
 
 Backends register by name in :data:`BACKENDS`; ``make_transform(grid,
 backend="auto")`` picks the best available.
@@ -22,14 +24,22 @@ __all__ = ["Transform", "ScipyTransform", "PyFFTWTransform", "BACKENDS", "make_t
 
 class Transform:
     """Interface: ``forward(a)`` and ``backward(c)`` may overwrite their input
-    and return the result (possibly the same array)."""
+    and return the result (possibly the same array); ``transform_of(a)``
+    leaves ``a`` alone."""
 
     name = "base"
 
-    def __init__(self, grid, dtype=np.complex128, threads: int | None = None):
+    def __init__(self, grid, dtype=np.complex128, threads: int | None = None,
+                 members: int | None = None):
         self.grid = grid
         self.dtype = np.dtype(dtype)
-        self.threads = threads or default_threads(grid.size)
+        self.members = None if members is None else int(members)
+        self.shape = tuple(grid.shape) if members is None else (self.members, *grid.shape)
+        self.threads = threads or default_threads(int(np.prod(self.shape)))
+        lead = 0 if members is None else 1
+        kinds = grid.transform_kinds
+        self._fft_axes = tuple(lead + i for i, k in enumerate(kinds) if k == "fft")
+        self._dst_axes = tuple(lead + i for i, k in enumerate(kinds) if k == "dst1")
 
     def forward(self, a: np.ndarray) -> np.ndarray:
         raise NotImplementedError
@@ -37,17 +47,16 @@ class Transform:
     def backward(self, c: np.ndarray) -> np.ndarray:
         raise NotImplementedError
 
+    def transform_of(self, a: np.ndarray) -> np.ndarray:
+        """The forward transform of ``a`` (in this transform's precision)
+        without touching ``a``."""
+        return self.forward(np.array(a, dtype=self.dtype, copy=True))
+
 
 class ScipyTransform(Transform):
     """scipy.fft with ``workers`` threads; DST-I with ``norm="ortho"``."""
 
     name = "scipy"
-
-    def __init__(self, grid, dtype=np.complex128, threads=None):
-        super().__init__(grid, dtype, threads)
-        kinds = grid.transform_kinds
-        self._fft_axes = tuple(i for i, k in enumerate(kinds) if k == "fft")
-        self._dst_axes = tuple(i for i, k in enumerate(kinds) if k == "dst1")
 
     def forward(self, a):
         if self._fft_axes:
@@ -117,12 +126,9 @@ class PyFFTWTransform(Transform):
 
     name = "pyfftw"
 
-    def __init__(self, grid, dtype=np.complex128, threads=None, effort="FFTW_MEASURE"):
-        super().__init__(grid, dtype, threads)
-        kinds = grid.transform_kinds
-        self._fft_axes = tuple(i for i, k in enumerate(kinds) if k == "fft")
-        self._dst_axes = tuple(i for i, k in enumerate(kinds) if k == "dst1")
-        self.buffer = _pyfftw.empty_aligned(grid.shape, dtype=self.dtype)
+    def __init__(self, grid, dtype=np.complex128, threads=None, members=None, effort="FFTW_MEASURE"):
+        super().__init__(grid, dtype, threads, members)
+        self.buffer = _pyfftw.empty_aligned(self.shape, dtype=self.dtype)
         self._fwd = self._bwd = None
         if self._fft_axes:
             _load_wisdom(_pyfftw)
@@ -138,6 +144,9 @@ class PyFFTWTransform(Transform):
             np.copyto(self.buffer, a)
         return self.buffer
 
+    def transform_of(self, a):
+        return self.forward(a)   # copied into the buffer first: ``a`` is untouched
+
     def forward(self, a):
         b = self._into_buffer(a)
         if self._fwd is not None:
@@ -152,7 +161,7 @@ class PyFFTWTransform(Transform):
             b[...] = scipy.fft.idstn(b, type=1, axes=self._dst_axes, norm="ortho", workers=self.threads)
         if self._bwd is not None:
             self._bwd.execute()
-            b *= 1.0 / int(np.prod([self.grid.shape[i] for i in self._fft_axes]))
+            b *= 1.0 / int(np.prod([self.shape[i] for i in self._fft_axes]))
         return b
 
 
@@ -185,10 +194,11 @@ def default_threads(size: int | None = None) -> int:
 
 
 def make_transform(grid, backend: str | type[Transform] = "auto", dtype=np.complex128,
-                   threads: int | None = None) -> Transform:
-    """A transform for ``grid`` from a backend name, a class, or ``"auto"``."""
+                   threads: int | None = None, members: int | None = None) -> Transform:
+    """A transform for ``grid`` (or a batch of ``members`` states on it) from
+    a backend name, a class, or ``"auto"``."""
     if isinstance(backend, type):
-        return backend(grid, dtype, threads)
+        return backend(grid, dtype, threads, members)
     if backend == "auto":
         backend = "pyfftw" if "pyfftw" in BACKENDS else "scipy"
     try:
@@ -196,4 +206,4 @@ def make_transform(grid, backend: str | type[Transform] = "auto", dtype=np.compl
     except KeyError:
         raise ValueError(f"fft backend {backend!r} is not available; choose from "
                          f"{', '.join(sorted(BACKENDS))}") from None
-    return cls(grid, dtype, threads)
+    return cls(grid, dtype, threads, members)

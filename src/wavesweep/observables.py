@@ -57,61 +57,117 @@ def spectral_derivative(psi: np.ndarray, ax, axis: int) -> np.ndarray:
 
 
 class Observer:
-    """Computes the recorded observables of one run."""
+    """Computes the recorded observables of one run, or of each member of a
+    batch (``members`` states stacked along a leading axis).
 
-    def __init__(self, grid, mass: float, transform, detectors=(), psi0=None):
+    ``transform`` is the observer's own (never the propagator's, whose
+    buffer holds psi), made for the same ``members``; ``psi0`` the initial
+    state(s) for the autocorrelation.  One pass over psi gives the density
+    moments, the potential energy and the autocorrelation; one transform
+    and one pass over the coefficients give the kinetic energy and, on a
+    periodic first axis, the mean momentum; each detector is one more pass
+    (spectral interpolation along its axis).  Sums are float64 whatever the
+    precision of psi."""
+
+    def __init__(self, grid, mass: float, transform, detectors=(), psi0=None, members=None):
+        from .kernels import observe_kernels_for, view4
         self.grid = grid
         self.mass = mass
         self.transform = transform
+        self.members = members
         self.detectors = list(detectors)
-        self.psi0_conj = None if psi0 is None else np.conj(psi0).astype(np.complex128)
         self.records_amplitude = grid.ndim == 1
         self.dv = grid.cell_volume
-        self.x = grid.coordinate(0)
-        self.kinetic = grid.kinetic_energy(mass)
+        self._nb = members or 1
+        nd = grid.ndim
+        self._view4 = lambda a: view4(a, nd)
+        self._kernels = observe_kernels_for(grid.size * self._nb, getattr(transform, "threads", 1) or 1)
+        self._psi0 = None if psi0 is None else self._view4(np.ascontiguousarray(psi0))
+        pad = 3 - nd
+        one_axis = [np.zeros(1)] * pad
+        # x along the first grid axis, relative to its middle (the sums of x
+        # and x^2 then lose no digits to a far-off origin)
+        ax0 = grid.axes[0]
+        self._x_origin = 0.5 * (float(ax0.coordinates[0]) + float(ax0.coordinates[-1]))
+        self._x = one_axis + [ax0.coordinates - self._x_origin] + [np.zeros(a.points) for a in grid.axes[1:]]
+        self._t = one_axis + [a.wavenumbers**2 / (2.0 * mass) for a in grid.axes]
+        k0 = ax0.wavenumbers.astype(float).copy()
+        self._momentum_from_spectrum = ax0.boundary == "periodic"
+        if ax0.points % 2 == 0 and self._momentum_from_spectrum:
+            k0[ax0.points // 2] = 0.0   # the Nyquist mode has no well-defined derivative
+        self._k = one_axis + [k0] + [np.zeros(a.points) for a in grid.axes[1:]]
         self._rows = []
         for d in self.detectors:
             value, deriv = grid.axes[d.axis].interpolation_rows(d.position)
-            others = [i for i in range(grid.ndim) if i != d.axis]
+            others = [i for i in range(nd) if i != d.axis]
             par = float(np.prod([grid.axes[i].parseval_factor() for i in others]))
             dv_other = float(np.prod([grid.axes[i].dx for i in others]))
-            self._rows.append((value, deriv, par * dv_other))
+            view_shape = (self._nb,) + (1,) * pad + grid.shape
+            rest = tuple(n for i, n in enumerate(view_shape[1:]) if i != d.axis + pad)
+            self._rows.append((d.axis + pad + 1, np.ascontiguousarray(value, dtype=complex),
+                               np.ascontiguousarray(deriv, dtype=complex), par * dv_other, rest))
 
     def measure(self, psi: np.ndarray, potential: np.ndarray) -> dict:
-        """All scalar observables of ``psi`` given the real potential (hartree)."""
-        psi = np.asarray(psi, dtype=np.complex128)
-        dens = psi.real**2 + psi.imag**2
-        dv = self.dv
-        norm = float(dens.sum()) * dv
-        safe = norm if norm > 0 else np.nan
-        xm = float(np.sum(dens * self.x)) * dv / safe
-        x2 = float(np.sum(dens * (self.x - xm) ** 2)) * dv / safe
-        dpsi = spectral_derivative(psi, self.grid.axes[0], 0)
-        p_mean = float(np.sum(np.conj(psi) * dpsi).imag) * dv / safe
-        phi = self.transform.forward(psi.copy())
-        phi_dens = phi.real**2 + phi.imag**2
-        kin = float(np.sum(self.kinetic * phi_dens)) * self.grid.parseval_factor * dv
-        pot = float(np.sum(potential * dens)) * dv
-        out = {
-            "norm": norm,
-            "x_mean": xm,
-            "x_std": float(np.sqrt(max(x2, 0.0))),
-            "p_mean": p_mean,
-            "energy": (kin + pot) / safe,
-        }
-        at = [self._at_detector(phi, d, row) for d, row in zip(self.detectors, self._rows)]
-        out["flux"] = np.array([f for f, _ in at], dtype=float)
-        if self.records_amplitude:
-            out["detector_psi"] = np.array([a for _, a in at], dtype=complex)
-        if self.psi0_conj is not None:
-            c = complex(np.sum(self.psi0_conj * psi)) * dv
-            out["autocorrelation_real"], out["autocorrelation_imag"] = c.real, c.imag
+        """All scalar observables of ``psi`` (one run) given the real
+        potential (hartree); see :meth:`measure_members` for a batch."""
+        if self.members is not None:
+            raise ValueError("this observer measures a batch: use measure_members")
+        return self.measure_members(psi, potential)[0]
+
+    def measure_members(self, psi: np.ndarray, potential: np.ndarray) -> list[dict]:
+        """The observables of every member (a list of dicts, in order)."""
+        k, nb, dv = self._kernels, self._nb, self.dv
+        psi4 = self._view4(np.ascontiguousarray(psi))
+        v3 = self._view4(np.ascontiguousarray(np.broadcast_to(potential, self.grid.shape), dtype=float))[0]
+        dens = np.empty((nb, 6))
+        psi0 = self._psi0 if self._psi0 is not None else psi4[:1]
+        k.density_sums(psi4, *self._x, v3, psi0, self._psi0 is not None, dens)
+        phi = self.transform.transform_of(psi)
+        phi4 = self._view4(phi)
+        spec = np.empty((nb, 2))
+        k.spectrum_sums(phi4, *self._t, *self._k, spec)
+        par = self.grid.parseval_factor
+        norm = dens[:, 0] * dv
+        safe = np.where(norm > 0, norm, np.nan)
+        x_rel = dens[:, 1] * dv / safe
+        x2 = dens[:, 2] * dv / safe - x_rel**2
+        energy = (spec[:, 0] * par * dv + dens[:, 3] * dv) / safe
+        if self._momentum_from_spectrum:
+            p_mean = spec[:, 1] * par * dv / safe
+        else:
+            p_mean = self._momentum_box(psi4, safe)
+        at = [self._at_detector(phi4, row) for row in self._rows]
+        out = []
+        for b in range(nb):
+            r = {"norm": float(norm[b]), "x_mean": float(x_rel[b] + self._x_origin),
+                 "x_std": float(np.sqrt(max(x2[b], 0.0))), "p_mean": float(p_mean[b]),
+                 "energy": float(energy[b]),
+                 "flux": np.array([f[b] for f, _ in at], dtype=float)}
+            if self.records_amplitude:
+                r["detector_psi"] = np.array([a[b] for _, a in at], dtype=complex)
+            if self._psi0 is not None:
+                r["autocorrelation_real"] = float(dens[b, 4] * dv)
+                r["autocorrelation_imag"] = float(dens[b, 5] * dv)
+            out.append(r)
         return out
 
-    def _at_detector(self, phi, det, row) -> tuple[float, complex]:
-        """(flux, psi at the detector); the amplitude only means psi(x_d) in 1D."""
-        value, deriv, weight = row
-        a = np.tensordot(value, phi, axes=([0], [det.axis]))
-        b = np.tensordot(deriv, phi, axes=([0], [det.axis]))
-        flux = float(np.sum(np.conj(a) * b).imag) * weight / self.mass
-        return flux, complex(a) if a.ndim == 0 else complex("nan")
+    def _momentum_box(self, psi4, safe):
+        """<p> on a box first axis: Im sum conj(psi) dpsi/dx dV (the sine
+        coefficients do not give it by Parseval)."""
+        out = np.empty(self._nb)
+        for b in range(self._nb):
+            one = psi4[b].reshape(self.grid.shape).astype(np.complex128)
+            dpsi = spectral_derivative(one, self.grid.axes[0], 0)
+            out[b] = float(np.vdot(one, dpsi).imag) * self.dv / safe[b]
+        return out
+
+    def _at_detector(self, phi4, row):
+        """(flux per member, psi at the detector per member); the amplitude
+        only means psi(x_d) in 1D."""
+        axis, value, deriv, weight, rest = row
+        a = np.empty((self._nb, *rest), complex)
+        d = np.empty_like(a)
+        self._kernels.contract(phi4, axis, value, deriv, a, d)
+        flux = np.einsum("bpq,bpq->b", a.conj(), d).imag * (weight / self.mass)
+        amp = a[:, 0, 0] if a[0].size == 1 else np.full(self._nb, complex("nan"))
+        return flux, amp

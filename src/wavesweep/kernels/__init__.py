@@ -1,9 +1,11 @@
 """Numba kernels: pure functions of arrays and scalars, no orchestration.
 
-Arrays are handled as 3D views (a 1D or 2D grid is padded with length-1
-axes by :func:`as3d`), so one kernel serves every dimension.
+Arrays are handled as 4D views ``(member, i, j, k)`` (:func:`view4`: a
+batch of states, a 1D or 2D grid padded with leading length-1 axes), so
+one kernel serves every dimension and batches alike.
 """
-from .split import abs2_weighted_sum, as3d, kick_general, kick_separable, multiply_inplace, real_matvec
+from .observe import ObserveKernels, observe_kernels_for
+from .split import KernelSet, as3d, kernels_for, real_matvec, view4
 
-__all__ = ["as3d", "multiply_inplace", "kick_separable", "kick_general", "abs2_weighted_sum",
-           "real_matvec"]
+__all__ = ["view4", "as3d", "KernelSet", "kernels_for", "real_matvec", "ObserveKernels",
+           "observe_kernels_for"]

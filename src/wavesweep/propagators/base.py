@@ -9,7 +9,11 @@ by whole time steps ``dt`` (atomic units).  Subclasses implement:
    ``self.absorbed`` (one float64 per face, in the order of
    ``absorber.layers``);
 3. optionally ``check_supported(hamiltonian, absorber, grid)`` raising
-   :class:`~wavesweep.errors.JobError` for a combination the method cannot do.
+   :class:`~wavesweep.errors.JobError` for a combination the method cannot do;
+4. optionally ``batched = True`` when ``_step_impl`` can advance a batch:
+   ``members`` states of one grid stacked along a leading axis, each with
+   its own absorber (same layer geometry, strengths may differ) and its own
+   row of ``self.absorbed`` (shape ``(members, faces)``).
 
 The public :meth:`Propagator.step` keeps the books (time, step count) so
 that subclasses only compute.
@@ -26,20 +30,33 @@ __all__ = ["Propagator"]
 class Propagator:
     name: ClassVar[str] = ""
     order: ClassVar[int] = 0
+    batched: ClassVar[bool] = False
 
     def __init__(self, hamiltonian, dt: float, transform=None, absorber=None,
-                 dtype=np.complex128, t0: float = 0.0):
+                 dtype=np.complex128, t0: float = 0.0, members: int | None = None):
         self.hamiltonian = hamiltonian
         self.grid = hamiltonian.grid
         self.dt = float(dt)
         self.transform = transform
-        self.absorber = absorber
         self.dtype = np.dtype(dtype)
         self.t0 = float(t0)
         self.steps_done = 0
-        n_faces = len(absorber.layers) if absorber is not None and absorber.active else 0
-        self.absorbed = np.zeros(n_faces)
-        self.check_supported(hamiltonian, absorber, self.grid)
+        self.members = None if members is None else int(members)
+        if self.members is None:
+            self.absorbers = [absorber]
+        else:
+            if not self.batched:
+                raise ValueError(f"the {self.name} propagator cannot advance a batch of states")
+            self.absorbers = (list(absorber) if isinstance(absorber, (list, tuple))
+                              else [absorber] * self.members)
+            if len(self.absorbers) != self.members:
+                raise ValueError(f"{len(self.absorbers)} absorbers for {self.members} members")
+        self.absorber = self.absorbers[0]
+        first = self.absorber
+        n_faces = len(first.layers) if first is not None and first.active else 0
+        self.absorbed = np.zeros(n_faces if self.members is None else (self.members, n_faces))
+        for a in self.absorbers:
+            self.check_supported(hamiltonian, a, self.grid)
 
     @classmethod
     def check_supported(cls, hamiltonian, absorber, grid) -> None:
