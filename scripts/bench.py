@@ -25,34 +25,31 @@ GRIDS = {
 }
 
 
-def job_for(grid, precision="double"):
+def job_for(grid, precision="double", duration=1.0):
     ndim = len(grid)
     return job_from_dict({
         "grid": {**grid, "boundary": "periodic"},
         "potential": [{"kind": "harmonic", "omega": 0.05}],
         "packet": {"center": [-5.0] * ndim, "width": [2.0] * ndim, "momentum": [1.0] + [0.0] * (ndim - 1)},
-        "evolve": {"dt": 0.01, "duration": 1.0, "precision": precision},
+        "evolve": {"dt": 0.01, "duration": duration, "precision": precision},
         "record": {"every": 0.1},
         "detector": [{"name": "a", "x": 5.0}, {"name": "b", "x": -8.0}],
     })
 
 
-def median_time(fn, repeats, inner):
-    times = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        for _ in range(inner):
-            fn()
-        times.append((time.perf_counter() - t0) / inner)
-    return statistics.median(times)
+def timed(fn, inner):
+    t0 = time.perf_counter()
+    for _ in range(inner):
+        fn()
+    return (time.perf_counter() - t0) / inner
 
 
 def numpy_loop(setup):
     """The textbook loop: numpy.fft and fresh arrays for every operation."""
     v = setup.hamiltonian.static_potential
-    half = np.exp(-0.5j * v * setup.dt)
-    kin = np.exp(-1j * setup.hamiltonian.kinetic * setup.dt)
-    psi = setup.psi0.copy()
+    half = np.exp(-0.5j * v * setup.dt).astype(setup.dtype)
+    kin = np.exp(-1j * setup.hamiltonian.kinetic * setup.dt).astype(setup.dtype)
+    psi = setup.psi0.astype(setup.dtype)
 
     def step():
         nonlocal psi
@@ -62,26 +59,61 @@ def numpy_loop(setup):
     return step
 
 
-def bench(name, grid, repeats, backend):
-    setup = Setup(job_for(grid))
+_PEAK_RUN = """
+import sys, tracemalloc, json
+sys.path.insert(0, sys.argv[3])
+from bench import GRIDS, job_for
+import wavesweep.simulation, numpy as np
+tracemalloc.start()
+from wavesweep.simulation import Simulation
+job = job_for(GRIDS[sys.argv[1]], sys.argv[2], duration=0.2)
+sim = Simulation(job)
+import tempfile
+with tempfile.TemporaryDirectory() as tmp:
+    sim.run(tmp, progress=False)
+print(json.dumps({"peak": tracemalloc.get_traced_memory()[1],
+                  "psi": int(np.prod(sim.setup.grid.shape)) * np.dtype(sim.setup.dtype).itemsize}))
+"""
+
+
+def peak_memory(name, precision):
+    """Peak of numpy and Python allocations (tracemalloc) of a whole short
+    run -- set-up, propagation with recording, the result file -- in a fresh
+    process, in units of the bytes of psi."""
+    import json
+    import os
+    import subprocess
+    import sys
+    out = subprocess.run([sys.executable, "-c", _PEAK_RUN, name, precision, os.path.dirname(__file__)],
+                         capture_output=True, text=True, check=True)
+    r = json.loads(out.stdout.strip().splitlines()[-1])
+    return r["peak"] / r["psi"]
+
+
+def bench(name, grid, repeats, backend, precision, memory=True):
+    """One line: step / pair, recorded step / pair, numpy loop / step and
+    peak memory / psi, each ratio the median over ``repeats`` rounds in
+    which the pair and the steps are timed one after the other."""
+    setup = Setup(job_for(grid, precision))
     setup.fft_backend = backend
     prop = setup.make_propagator()
     tr = prop.transform
-    buf = tr.forward(setup.psi0.astype(setup.dtype))
-    buf = tr.backward(buf)
-    inner = max(1, int(2e6 / setup.grid.size))
+    # the floor: an identical transform of its own (psi lives in the
+    # propagator's buffer), bare forward + inverse without the 1/N pass;
+    # zeros stay zeros (repeated unscaled pairs would overflow)
+    from wavesweep.fft import make_transform
+    floor = make_transform(setup.grid, tr.name, setup.dtype, tr.threads)
+    buf = floor.forward(np.zeros(setup.grid.shape, setup.dtype))
+    inner = max(2, int(4e6 / setup.grid.size))
 
     def pair():
-        tr.backward(tr.forward(buf))
+        floor.backward(floor.forward(buf), scaled=False)
 
-    psi = setup.psi0.astype(setup.dtype)
-    psi = prop.step(psi, 2)
-    holder = {"psi": psi}
+    holder = {"psi": prop.step(setup.psi0.astype(setup.dtype), 2)}
+    obs = setup.make_observer()
 
     def step10():
         holder["psi"] = prop.step(holder["psi"], 10)
-
-    obs = setup.make_observer()
 
     def step10_recorded():
         holder["psi"] = prop.step(holder["psi"], 10)
@@ -89,12 +121,44 @@ def bench(name, grid, repeats, backend):
 
     plain = numpy_loop(setup)
     plain()
-    t_pair = median_time(pair, repeats, inner)
-    t_step = median_time(step10, repeats, max(1, inner // 10)) / 10
-    t_rec = median_time(step10_recorded, repeats, max(1, inner // 10)) / 10
-    t_plain = median_time(plain, repeats, inner)
-    print(f"{name:<10} {tr.name:<7} {t_step / t_pair:8.2f} {t_rec / t_pair:10.2f} "
-          f"{t_plain / t_step:10.2f}   ({tr.threads} thread(s))", flush=True)
+    step10_recorded()
+    ratios = {"step": [], "rec": [], "plain": []}
+    for _ in range(repeats):
+        t_pair = timed(pair, inner)
+        t_step = timed(step10, max(1, inner // 10)) / 10
+        t_rec = timed(step10_recorded, max(1, inner // 10)) / 10
+        t_pair2 = timed(pair, inner)
+        t_plain = timed(plain, max(1, inner // 4))
+        pair_mean = 0.5 * (t_pair + t_pair2)
+        ratios["step"].append(t_step / pair_mean)
+        ratios["rec"].append(t_rec / pair_mean)
+        ratios["plain"].append(t_plain / t_step)
+    med = {k: statistics.median(v) for k, v in ratios.items()}
+    mem = f"{peak_memory(name, precision):8.1f}" if memory else f"{'-':>8}"
+    print(f"{name:<10} {precision:<6} {tr.name:<7} {med['step']:8.2f} {med['rec']:10.2f} "
+          f"{med['plain']:10.2f} {mem}   ({tr.threads} thread(s), "
+          f"{'threaded' if prop._kernels.threaded else 'serial'} kernels)", flush=True)
+    return med
+
+
+def single_vs_double(grid, repeats, backend):
+    """Step time (with recording every 10 steps) of double over single,
+    median over rounds that time one after the other."""
+    runs = {}
+    for precision in ("double", "single"):
+        setup = Setup(job_for(grid, precision))
+        setup.fft_backend = backend
+        prop, obs = setup.make_propagator(), setup.make_observer()
+        holder = {"psi": prop.step(setup.psi0.astype(setup.dtype), 2)}
+
+        def rec(prop=prop, obs=obs, holder=holder, setup=setup):
+            holder["psi"] = prop.step(holder["psi"], 10)
+            obs.measure(holder["psi"], setup.hamiltonian.static_potential)
+        rec()
+        runs[precision] = rec
+    inner = max(1, int(4e5 / int(np.prod([a["points"] for a in grid.values()]))))
+    ratios = [timed(runs["double"], inner) / timed(runs["single"], inner) for _ in range(repeats)]
+    return statistics.median(ratios)
 
 
 QUEUE_JOB = {
@@ -248,10 +312,21 @@ def main():
         return
     grids = dict(list(GRIDS.items())[:2]) if args.quick else GRIDS
     repeats = 3 if args.quick else args.repeats
-    print("medians over", repeats, "repeats; ratios only (shared machine)")
-    print(f"{'grid':<10} {'fft':<7} {'step/pair':>8} {'+record/10':>10} {'numpy/step':>10}")
+    print(f"medians over {repeats} rounds (pair and steps timed one after the other); ratios only "
+          "(shared machine)")
+    print("step/pair: strang step / bare forward+inverse FFT pair of the same backend and grid; "
+          "+record/10: with norm, moments, energy and 2 detector fluxes every 10 steps; "
+          "numpy/step: plain numpy loop / step; memory: peak of a whole run / bytes of psi")
+    print(f"{'grid':<10} {'prec':<6} {'fft':<7} {'step/pair':>8} {'+record/10':>10} {'numpy/step':>10} "
+          f"{'memory':>8}")
+    steps = {}
     for name, grid in grids.items():
-        bench(name, grid, repeats, args.backend)
+        for precision in ("double", "single"):
+            steps[name, precision] = bench(name, grid, repeats, args.backend, precision,
+                                           memory=not args.quick)
+    for name, grid in grids.items():
+        print(f"{name:<10} single precision vs double: {single_vs_double(grid, repeats, args.backend):.2f}x "
+              "faster per step (recorded every 10 steps)")
 
 
 if __name__ == "__main__":

@@ -21,7 +21,10 @@ import os as _os
 # kernels the FFT threads then compete with them for the cores.  Measured on
 # 2 cores at 512^2: a split-operator step cost 9.8 FFT pairs with spinning
 # threads and 1.0 with passive ones.  Must be set before libgomp loads.
-_os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+if "WAVESWEEP_SPIN" in _os.environ:
+    _os.environ.setdefault("GOMP_SPINCOUNT", _os.environ["WAVESWEEP_SPIN"])
+else:
+    _os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 from .errors import JobError, RunFailed
 from .units import UnitSet

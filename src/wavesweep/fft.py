@@ -25,7 +25,9 @@ __all__ = ["Transform", "ScipyTransform", "PyFFTWTransform", "BACKENDS", "make_t
 class Transform:
     """Interface: ``forward(a)`` and ``backward(c)`` may overwrite their input
     and return the result (possibly the same array); ``transform_of(a)``
-    leaves ``a`` alone."""
+    leaves ``a`` alone.  ``backward(c, scaled=False)`` skips the 1/N of the
+    periodic axes (:attr:`backward_scale`), for callers that fold it into a
+    factor they multiply by anyway (it is one more pass over memory)."""
 
     name = "base"
 
@@ -41,16 +43,27 @@ class Transform:
         self._fft_axes = tuple(lead + i for i, k in enumerate(kinds) if k == "fft")
         self._dst_axes = tuple(lead + i for i, k in enumerate(kinds) if k == "dst1")
 
+    @property
+    def backward_scale(self) -> float:
+        """1/N of the inverse FFT (N the points of the periodic axes)."""
+        return 1.0 / int(np.prod([self.shape[i] for i in self._fft_axes]))
+
     def forward(self, a: np.ndarray) -> np.ndarray:
         raise NotImplementedError
 
-    def backward(self, c: np.ndarray) -> np.ndarray:
+    def backward(self, c: np.ndarray, scaled: bool = True) -> np.ndarray:
         raise NotImplementedError
 
     def transform_of(self, a: np.ndarray) -> np.ndarray:
         """The forward transform of ``a`` (in this transform's precision)
         without touching ``a``."""
         return self.forward(np.array(a, dtype=self.dtype, copy=True))
+
+    def in_place(self):
+        """``(forward, backward, buffer)`` when the backend transforms one
+        buffer in place with argument-free calls (the unscaled inverse), so
+        a stepping loop can skip the per-call checks; None otherwise."""
+        return None
 
 
 class ScipyTransform(Transform):
@@ -66,12 +79,13 @@ class ScipyTransform(Transform):
                                overwrite_x=True, workers=self.threads)
         return a
 
-    def backward(self, c):
+    def backward(self, c, scaled=True):
         if self._dst_axes:
             c = scipy.fft.idstn(c, type=1, axes=self._dst_axes, norm="ortho",
                                 overwrite_x=True, workers=self.threads)
         if self._fft_axes:
-            c = scipy.fft.ifftn(c, axes=self._fft_axes, overwrite_x=True, workers=self.threads)
+            c = scipy.fft.ifftn(c, axes=self._fft_axes, overwrite_x=True, workers=self.threads,
+                                norm="backward" if scaled else "forward")
         return c
 
 
@@ -147,6 +161,11 @@ class PyFFTWTransform(Transform):
     def transform_of(self, a):
         return self.forward(a)   # copied into the buffer first: ``a`` is untouched
 
+    def in_place(self):
+        if self._dst_axes or self._fwd is None:
+            return None
+        return self._fwd.execute, self._bwd.execute, self.buffer
+
     def forward(self, a):
         b = self._into_buffer(a)
         if self._fwd is not None:
@@ -155,13 +174,14 @@ class PyFFTWTransform(Transform):
             b[...] = scipy.fft.dstn(b, type=1, axes=self._dst_axes, norm="ortho", workers=self.threads)
         return b
 
-    def backward(self, c):
+    def backward(self, c, scaled=True):
         b = self._into_buffer(c)
         if self._dst_axes:
             b[...] = scipy.fft.idstn(b, type=1, axes=self._dst_axes, norm="ortho", workers=self.threads)
         if self._bwd is not None:
             self._bwd.execute()
-            b *= 1.0 / int(np.prod([self.shape[i] for i in self._fft_axes]))
+            if scaled:
+                b *= self.backward_scale
         return b
 
 

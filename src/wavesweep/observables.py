@@ -96,16 +96,17 @@ class Observer:
         if ax0.points % 2 == 0 and self._momentum_from_spectrum:
             k0[ax0.points // 2] = 0.0   # the Nyquist mode has no well-defined derivative
         self._k = one_axis + [k0] + [np.zeros(a.points) for a in grid.axes[1:]]
-        self._rows = []
-        for d in self.detectors:
-            value, deriv = grid.axes[d.axis].interpolation_rows(d.position)
-            others = [i for i in range(nd) if i != d.axis]
+        # detectors grouped by axis, each group one matrix product (BLAS)
+        # with the stacked value and derivative rows
+        self._groups = []   # (view axis, detector indices, rows (2M, n), weight)
+        for axis in sorted({d.axis for d in self.detectors}):
+            idx = [n for n, d in enumerate(self.detectors) if d.axis == axis]
+            rows = [grid.axes[axis].interpolation_rows(self.detectors[n].position) for n in idx]
+            others = [i for i in range(nd) if i != axis]
             par = float(np.prod([grid.axes[i].parseval_factor() for i in others]))
             dv_other = float(np.prod([grid.axes[i].dx for i in others]))
-            view_shape = (self._nb,) + (1,) * pad + grid.shape
-            rest = tuple(n for i, n in enumerate(view_shape[1:]) if i != d.axis + pad)
-            self._rows.append((d.axis + pad + 1, np.ascontiguousarray(value, dtype=complex),
-                               np.ascontiguousarray(deriv, dtype=complex), par * dv_other, rest))
+            stacked = np.array([r[0] for r in rows] + [r[1] for r in rows], dtype=complex)
+            self._groups.append((axis + pad + 1, idx, stacked, par * dv_other))
 
     def measure(self, psi: np.ndarray, potential: np.ndarray) -> dict:
         """All scalar observables of ``psi`` (one run) given the real
@@ -136,15 +137,18 @@ class Observer:
             p_mean = spec[:, 1] * par * dv / safe
         else:
             p_mean = self._momentum_box(psi4, safe)
-        at = [self._at_detector(phi4, row) for row in self._rows]
+        flux = np.zeros((nb, len(self.detectors)))
+        amp = np.full((nb, len(self.detectors)), complex("nan"))
+        for group in self._groups:
+            self._at_detectors(phi4, group, flux, amp)
         out = []
         for b in range(nb):
             r = {"norm": float(norm[b]), "x_mean": float(x_rel[b] + self._x_origin),
                  "x_std": float(np.sqrt(max(x2[b], 0.0))), "p_mean": float(p_mean[b]),
                  "energy": float(energy[b]),
-                 "flux": np.array([f[b] for f, _ in at], dtype=float)}
+                 "flux": flux[b].copy()}
             if self.records_amplitude:
-                r["detector_psi"] = np.array([a[b] for _, a in at], dtype=complex)
+                r["detector_psi"] = amp[b].copy()
             if self._psi0 is not None:
                 r["autocorrelation_real"] = float(dens[b, 4] * dv)
                 r["autocorrelation_imag"] = float(dens[b, 5] * dv)
@@ -161,13 +165,23 @@ class Observer:
             out[b] = float(np.vdot(one, dpsi).imag) * self.dv / safe[b]
         return out
 
-    def _at_detector(self, phi4, row):
-        """(flux per member, psi at the detector per member); the amplitude
-        only means psi(x_d) in 1D."""
-        axis, value, deriv, weight, rest = row
-        a = np.empty((self._nb, *rest), complex)
-        d = np.empty_like(a)
-        self._kernels.contract(phi4, axis, value, deriv, a, d)
-        flux = np.einsum("bpq,bpq->b", a.conj(), d).imag * (weight / self.mass)
-        amp = a[:, 0, 0] if a[0].size == 1 else np.full(self._nb, complex("nan"))
-        return flux, amp
+    def _at_detectors(self, phi4, group, flux, amp):
+        """Fill ``flux[b, n]`` and ``amp[b, n]`` (psi at the detector; only
+        meaningful in 1D) for the detectors of one axis: psi(x_d) and
+        psi'(x_d) are the interpolation rows times the coefficients along
+        that axis, a matrix product over the view's last two axes."""
+        axis, idx, rows, weight = group
+        m = len(idx)
+        rows = rows.astype(phi4.dtype, copy=False)
+        if axis == 3:        # (.., n1, n2) @ (n2, 2M) -> (.., n1, 2M)
+            both = np.moveaxis(phi4 @ rows.T, -1, 0)
+        elif axis == 2:      # (2M, n1) @ (.., n1, n2) -> (.., 2M, n2)
+            both = np.moveaxis(rows @ phi4, -2, 0)
+        else:                # (2M, n0) @ (b, n0, n1 n2) -> (b, 2M, n1 n2)
+            nb, n0 = phi4.shape[:2]
+            both = np.moveaxis(rows @ phi4.reshape(nb, n0, -1), -2, 0)
+        a, d = both[:m], both[m:]
+        f = (a.conj() * d).imag.reshape(m, self._nb, -1).sum(axis=2).T * (weight / self.mass)
+        flux[:, idx] = f
+        if a[0, 0].size == 1:
+            amp[:, idx] = a.reshape(m, self._nb).T

@@ -97,53 +97,54 @@ def spectrum_sums(phi, t0, t1, t2, k0, k1, k2, out):
         out[r // (n0 * n1), 1] += part[r, 1]
 
 
+# Elements of the contiguous axis one task of contract() handles when it
+# contracts along a middle axis (contiguous reads, enough tasks for threads).
+CHUNK = 64
+
+
 def contract(phi, axis, value, deriv, a, d):
-    """Contract the transform coefficients with two rows along view axis
-    ``axis`` (1, 2 or 3): a[b, p, q] = sum_n value[n] phi[..n..], d likewise
-    with ``deriv``; (p, q) are the two other grid view axes in order."""
+    """Contract the transform coefficients with rows along view axis
+    ``axis`` (1, 2 or 3), several detectors on that axis in one pass:
+    a[m, b, p, q] = sum_n value[m, n] phi[..n..], d likewise with ``deriv``;
+    (p, q) are the two other view axes in order."""
     nb, n0, n1, n2 = phi.shape
+    nm = value.shape[0]
     if axis == 3:
         for r in numba.prange(nb * n0 * n1):
             b = r // (n0 * n1)
             ij = r % (n0 * n1)
             i = ij // n1
             j = ij % n1
-            sa = 0j
-            sd = 0j
-            for k in range(n2):
-                z = phi[b, i, j, k]
-                sa += value[k] * z
-                sd += deriv[k] * z
-            a[b, i, j] = sa
-            d[b, i, j] = sd
-    elif axis == 2:
-        for r in numba.prange(nb * n0):
-            b = r // n0
-            i = r % n0
-            for k in range(n2):
-                a[b, i, k] = 0j
-                d[b, i, k] = 0j
-            for j in range(n1):
-                vj = value[j]
-                dj = deriv[j]
+            for m in range(nm):
+                sa = 0j
+                sd = 0j
                 for k in range(n2):
                     z = phi[b, i, j, k]
-                    a[b, i, k] += vj * z
-                    d[b, i, k] += dj * z
+                    sa += value[m, k] * z
+                    sd += deriv[m, k] * z
+                a[m, b, i, j] = sa
+                d[m, b, i, j] = sd
     else:
-        for r in numba.prange(nb * n1):
-            b = r // n1
-            j = r % n1
-            for k in range(n2):
-                a[b, j, k] = 0j
-                d[b, j, k] = 0j
-            for i in range(n0):
-                vi = value[i]
-                di = deriv[i]
-                for k in range(n2):
-                    z = phi[b, i, j, k]
-                    a[b, j, k] += vi * z
-                    d[b, j, k] += di * z
+        # along axis 1 or 2: tasks over (b, other axis, chunk of the last axis)
+        n_other = n1 if axis == 1 else n0
+        n_axis = n0 if axis == 1 else n1
+        chunks = (n2 + CHUNK - 1) // CHUNK
+        for r in numba.prange(nb * n_other * chunks):
+            b = r // (n_other * chunks)
+            o = (r // chunks) % n_other
+            k0 = (r % chunks) * CHUNK
+            k1 = min(k0 + CHUNK, n2)
+            for m in range(nm):
+                for k in range(k0, k1):
+                    a[m, b, o, k] = 0j
+                    d[m, b, o, k] = 0j
+                for n in range(n_axis):
+                    vn = value[m, n]
+                    dn = deriv[m, n]
+                    for k in range(k0, k1):
+                        z = phi[b, n, o, k] if axis == 1 else phi[b, o, n, k]
+                        a[m, b, o, k] += vn * z
+                        d[m, b, o, k] += dn * z
 
 
 _KERNELS = {name: _twins(fn) for name, fn in

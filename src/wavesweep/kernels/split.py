@@ -166,10 +166,11 @@ def kick_measured(psi, factor, squared, scale, before, after):
         after[r // (n0 * n1)] += part_a[r]
 
 
-def kinetic(psi, e0, e1, e2):
-    """psi *= e0[i] e1[j] e2[k]: the kinetic phase exp(-i T tau) of a
-    Cartesian grid is a product of one 1D factor per axis, so no full-grid
-    array is stored."""
+def kinetic(psi, e0, e12):
+    """psi *= e0[i] e12[j, k]: the kinetic phase exp(-i T tau) of a
+    Cartesian grid is a product of one factor per axis, so a 3D grid keeps
+    a 1D and a 2D table instead of a full-grid array (1D and 2D grids have
+    n0 = 1 and e12 is the whole factor)."""
     nb, n0, n1, n2 = psi.shape
     rows = nb * n0 * n1
     for r in numba.prange(rows):
@@ -177,9 +178,13 @@ def kinetic(psi, e0, e1, e2):
         b = r // (n0 * n1)
         i = ij // n1
         j = ij % n1
-        e_ij = e0[i] * e1[j]
-        for k in range(n2):
-            psi[b, i, j, k] *= e_ij * e2[k]
+        if n0 == 1:
+            for k in range(n2):
+                psi[b, i, j, k] *= e12[j, k]
+        else:
+            e_i = e0[i]
+            for k in range(n2):
+                psi[b, i, j, k] *= e_i * e12[j, k]
 
 
 def layer_loss(psi, w, out):

@@ -62,6 +62,10 @@ RADIAL_DENSE_MAX = 4096
 
 __all__ = ["SplitOperator", "Strang", "Order4", "Order4Suzuki"]
 
+# Single precision: one kick in this many measures the norm (the error
+# between two measurements, ~1e-7 per step, stays below 2e-6).
+RENORMALISE_EVERY = 8
+
 _EMPTY_TERMS = np.zeros((0, 1, 1, 1))
 _NO_V = np.zeros((1, 1, 1))
 
@@ -109,6 +113,13 @@ class SplitOperator(Propagator):
         self._kinetic_factors = {}
         for tau in set(np.round(w, 15)):
             self._kinetic_factor(float(tau))
+        self._plan = (_key(w[0] / 2, self.dt / 2),
+                      [_key((w[j] + w[j + 1]) / 2, 0.0) for j in range(len(w) - 1)],
+                      _key((w[-1] + w[0]) / 2, self.dt), _key(w[-1] / 2, self.dt / 2),
+                      [float(x) for x in w])
+        self._ones = np.ones(self._nb)
+        self._kick_count = 0
+        self._lost_since = 0.0
         if h.time_dependent:
             self._prepare_dynamic()
 
@@ -161,18 +172,24 @@ class SplitOperator(Propagator):
         return self._stack([r.astype(self.dtype) for r in rows])
 
     def _kinetic_factor(self, tau: float):
-        """exp(-i T tau): three 1D factors (padded axes first), or on a dense
-        radial grid the eigenvalue phases."""
+        """exp(-i T tau) as (e0, e12): e0 along the first padded axis and the
+        table e12 over the last two, psi *= e0[i] e12[j, k] (in 1D/2D e12 is
+        the whole factor and e0 = [1]).  The 1/N of the inverse FFT is folded
+        in (it would be one more pass over psi).  On a dense radial grid: the
+        eigenvalue phases."""
         key = round(tau, 15)
         out = self._kinetic_factors.get(key)
         if out is None:
+            m = self.hamiltonian.mass
             if self._radial_basis is not None:
                 out = np.exp(-1j * self._radial_basis[2] * tau).astype(self.dtype)
             else:
-                one = np.ones(1, self.dtype)
-                out = [one] * (3 - self.grid.ndim) + [
-                    np.exp(-1j * (a.wavenumbers**2 / (2.0 * self.hamiltonian.mass)) * tau).astype(self.dtype)
-                    for a in self.grid.axes]
+                axes = [None] * (3 - self.grid.ndim) + list(self.grid.axes)
+                phase = [np.ones(1, complex) if a is None else np.exp(-1j * (a.wavenumbers**2 / (2.0 * m)) * tau)
+                         for a in axes]
+                scale = self.transform.backward_scale
+                e12 = np.ascontiguousarray((phase[1][:, None] * phase[2][None, :] * scale).astype(self.dtype))
+                out = (np.ascontiguousarray(phase[0].astype(self.dtype)), e12)
             self._kinetic_factors[key] = out
         return out
 
@@ -191,9 +208,9 @@ class SplitOperator(Propagator):
         """exp(-i K tau) psi with K the kinetic step's operator."""
         if self._radial_basis is None:
             phi = self.transform.forward(psi)
-            e0, e1, e2 = self._kinetic_factor(tau)
-            self._kernels.kinetic(view4(phi, self.grid.ndim), e0, e1, e2)
-            return self.transform.backward(phi)
+            e0, e12 = self._kinetic_factor(tau)
+            self._kernels.kinetic(view4(phi, self.grid.ndim), e0, e12)
+            return self.transform.backward(phi, scaled=False)
         q, qt, _ = self._radial_basis
         phases = self._kinetic_factor(tau)
         rows = psi.reshape(self._nb, -1)
@@ -226,6 +243,43 @@ class SplitOperator(Propagator):
         self._view_shape = view4(np.empty(grid.shape, bool), grid.ndim).shape[1:]
 
     # -- the kicks ------------------------------------------------------------
+    def _book_losses(self, psi4, key):
+        """Add what the kick ``key`` will remove to the books (from |psi|^2
+        before it); returns the removed sum |psi|^2 w per member (no dV)."""
+        losses = self._losses.get(key)
+        if losses is None:
+            return 0.0
+        dv = self.grid.cell_volume
+        books = self.absorbed.reshape(self._nb, -1)
+        lead = (slice(None),) * (4 - self.grid.ndim)
+        lost = np.zeros(self._nb)
+        for n, (layer, lw) in enumerate(zip(self.absorber.layers, losses)):
+            out = np.zeros(self._nb)
+            self._kernels.layer_loss(psi4[lead + layer.slab], lw, out)
+            books[:, n] += out * dv
+            lost += out
+        return lost
+
+    def _measuring(self, lost) -> bool:
+        """Whether this kick measures the norm (single precision, one kick in
+        RENORMALISE_EVERY); keeps the count of what unmeasured kicks removed."""
+        if not self._renormalise:
+            return False
+        self._lost_since = self._lost_since + lost
+        self._kick_count += 1
+        return (self._kick_count - 1) % RENORMALISE_EVERY == 0
+
+    def _kick_static(self, psi4, key):
+        """A kick of a time-independent Hamiltonian (``key`` = (tau, absorb))
+        on the 4D view of psi."""
+        factor, squared = self._factors[key]
+        lost = self._book_losses(psi4, key) if self._absorbing else 0.0
+        if self._measuring(lost):
+            self._kernels.kick_measured(psi4, factor, squared, self._scale, self._before, self._after)
+            self._renormalised()
+        elif factor is not None:
+            self._kernels.kick(psi4, factor, squared)
+
     def _apply_kick(self, psi, pieces, absorb):
         """Kick by the sum of (tau_j, t_j) pieces: static part of total length
         sum(tau_j); dynamic part integrated as sum_j tau_j V_dyn(t_j); the
@@ -234,29 +288,11 @@ class SplitOperator(Propagator):
         key = _key(tau, absorb)
         if key not in self._factors:
             self._build_kick(key)
-        factor, squared = self._factors[key]
-        nd = self.grid.ndim
-        psi4 = view4(psi, nd)
-        losses = self._losses.get(key)
-        lost = 0.0
-        if losses is not None:
-            dv = self.grid.cell_volume
-            books = self.absorbed.reshape(self._nb, -1)
-            lead = (slice(None),) * (4 - nd)
-            lost = np.zeros(self._nb)
-            for n, (layer, lw) in enumerate(zip(self.absorber.layers, losses)):
-                out = np.zeros(self._nb)
-                self._kernels.layer_loss(psi4[lead + tuple(layer.slab)], lw, out)
-                books[:, n] += out * dv
-                lost += out
-        k = self._kernels
         if not self.hamiltonian.time_dependent:
-            if self._renormalise:
-                k.kick_measured(psi4, factor, squared, self._scale, self._before, self._after)
-                self._renormalised(lost)
-            elif factor is not None:
-                k.kick(psi4, factor, squared)
-            return
+            return self._kick_static(view4(psi, self.grid.ndim), key)
+        factor, squared = self._factors[key]
+        psi4 = view4(psi, self.grid.ndim)
+        lost = self._book_losses(psi4, key) if self._absorbing else 0.0
         phases = [np.zeros(n) for n in self._view_shape]
         for axis, g, f in self._axis_terms:
             phases[axis] += sum(tj * f(t) for tj, t in pieces) * g
@@ -269,10 +305,12 @@ class SplitOperator(Propagator):
                 for term in self._general:
                     total = total + tj * np.asarray(term.at_time(mesh, t), dtype=float)
             v, has_v = self._general_phase(total, phases)
-        k.kick_dynamic(psi4, factor, squared, phases[0], phases[1], phases[2], self._full_g, coef,
-                       v, has_v, self._scale, self._before, self._after, self._renormalise)
-        if self._renormalise:
-            self._renormalised(lost)
+        measure = self._measuring(lost)
+        self._kernels.kick_dynamic(psi4, factor, squared, phases[0], phases[1], phases[2], self._full_g,
+                                   coef, v, has_v, self._scale if measure else self._ones,
+                                   self._before, self._after, measure)
+        if measure:
+            self._renormalised()
 
     def _general_phase(self, total, phases):
         """A general term's sum tau V(t) joins the 1D phases when it varies
@@ -290,9 +328,11 @@ class SplitOperator(Propagator):
             return _NO_V, False
         return np.ascontiguousarray(view4(np.broadcast_to(total, self.grid.shape), nd)[0]), True
 
-    def _renormalised(self, lost):
-        """After a measured kick that removed ``lost`` (sum |psi|^2 w, no dV,
-        per member): the scale of the next kick, sqrt(expected / measured)."""
+    def _renormalised(self):
+        """After a measured kick: the scale the next measured kick applies,
+        sqrt(expected / measured), the expected norm being the previous one
+        less what the layers booked since (sum |psi|^2, no dV, per member)."""
+        lost, self._lost_since = self._lost_since, 0.0
         if self._norm_expected is None:
             self._norm_expected = self._before.copy()   # the first kick: psi's own norm
         self._norm_expected = self._norm_expected - lost
@@ -303,6 +343,8 @@ class SplitOperator(Propagator):
     # -- the step -------------------------------------------------------------
     def _step_impl(self, psi, nsteps):
         psi = np.ascontiguousarray(psi, dtype=self.dtype)
+        if not self.hamiltonian.time_dependent:
+            return self._step_static(psi, nsteps)
         w = self.weights
         taus = [wi * self.dt for wi in w]
         t = self.t
@@ -321,6 +363,44 @@ class SplitOperator(Propagator):
                 pending = [(tau / 2, tm)]
                 psi = self._free_step(psi, tau)
         self._apply_kick(psi, pending, self.dt / 2)
+        return psi
+
+    def _step_static(self, psi, nsteps):
+        """The same composition for a time-independent H, with the kicks'
+        keys worked out once (per-step Python overhead is what limits small
+        grids): half kick, then per step the free sub-steps with the fused
+        kicks between them, the last kick split off at the end.  With a
+        backend that transforms one buffer in place, psi stays in it and
+        the loop calls the plans directly."""
+        first, inner, across, last, taus = self._plan
+        kick, nd = self._kick_static, self.grid.ndim
+        direct = self.transform.in_place() if self._radial_basis is None else None
+        if direct is not None:
+            fwd, bwd, buf = direct
+            if psi is not buf:
+                np.copyto(buf, psi)
+                psi = buf
+            psi4 = view4(buf, nd)
+            kinetic = self._kernels.kinetic
+            phases = [self._kinetic_factor(tau) for tau in taus]
+
+            def free(psi, j):
+                fwd()
+                e0, e12 = phases[j]
+                kinetic(psi4, e0, e12)
+                bwd()
+                return psi
+        else:
+            def free(psi, j):
+                return self._free_step(psi, taus[j])
+        kick(view4(psi, nd), first)
+        m = len(taus) - 1
+        for n in range(nsteps):
+            for j in range(m):
+                psi = free(psi, j)
+                kick(psi4 if direct else view4(psi, nd), inner[j])
+            psi = free(psi, m)
+            kick(psi4 if direct else view4(psi, nd), across if n < nsteps - 1 else last)
         return psi
 
 
