@@ -320,88 +320,118 @@ class Simulation:
         checkpoint's path (None without a policy) and the step reached."""
         s = self.setup
         path = Path(path) if path else self.output_path(outdir)
+        book = self._open(path, checkpoint)
+        if book is None:
+            raise ResultExists(path)
+        prop = s.make_propagator()
+        observer = s.make_observer()
+        psi = book.psi
+        prop.steps_done = book.steps
+        prop.absorbed[:] = book.absorbed
+        done = start = int(prop.steps_done)
+        bar = _progress(s.total_steps, progress, self.job.name)
+        if bar is not None and done:
+            bar.update(done)
+        try:
+            if book.fresh:
+                self._observe(book, observer.measure(psi, s.hamiltonian.potential(prop.t)), prop.t, prop.absorbed)
+                self._snapshot(book.writer, 0.0, psi)
+            while done < s.total_steps:
+                n = min(s.sample_steps, s.total_steps - done)
+                psi = prop.step(psi, n)
+                done += n
+                values = observer.measure(psi, s.hamiltonian.potential(prop.t))
+                self._record(book, values, prop.t, prop.absorbed, psi, done)
+                if bar is not None:
+                    bar.update(n)
+                if on_sample is not None:
+                    on_sample(done, s.total_steps, book.rate(done - start))
+                if done >= s.total_steps:
+                    break
+                if should_stop is not None and should_stop():
+                    saved = self._checkpoint(book, done, prop.absorbed, psi, reopen=False) \
+                        if book.store is not None else None
+                    raise RunInterrupted(saved, done)
+                if book.checkpoint_due():
+                    self._checkpoint(book, done, prop.absorbed, psi)
+            out = self._close(book, psi, int(prop.steps_done))
+        except BaseException as e:
+            self._abort(book, e)
+            raise
+        finally:
+            if bar is not None:
+                bar.close()
+        self.psi = psi
+        return out
+
+    # -- one run's books (shared with batched runs) -----------------------------
+    def _open(self, path: Path, checkpoint=None) -> "_RunBook | None":
+        """The run's writer, initial (or resumed) psi, steps and books; None
+        when a checkpoint policy finds the finished result already there."""
+        s = self.setup
         _check_writable(path.parent)
         store = resume = None
         if checkpoint is not None:
             store = CheckpointStore(checkpoint)
             if result_complete(path):
                 self._discard_own_checkpoint(store)
-                raise ResultExists(path)
+                return None
             resume = self._load_checkpoint(store)
-        prop = s.make_propagator()
-        observer = s.make_observer()
-        lf = s.units.factor("length")
-        conv = self._converters()
+        n_faces = len(s.absorber.layers) if s.absorber.active else 0
         if resume is None:
             writer = ResultWriter(path, self._layout(), self._attrs())
-            psi = s.psi0.astype(s.dtype)
-            wall_before = 0.0
-        else:
-            writer = ResultWriter.resume(path, self._layout(), resume.result_copy, resume.n_time,
-                                         resume.n_snap, attrs=self._attrs())
-            psi = np.array(resume.psi, dtype=s.dtype, copy=True)
-            prop.steps_done = resume.steps
-            prop.absorbed[:] = resume.absorbed
-            wall_before = resume.wall_seconds
-        wall0 = last_checkpoint = _time.perf_counter()
-        done = start = int(prop.steps_done)
-        bar = _progress(s.total_steps, progress, self.job.name)
-        if bar is not None and done:
-            bar.update(done)
+            return _RunBook(path, writer, store, checkpoint, s.psi0.astype(s.dtype), 0, np.zeros(n_faces), 0.0,
+                            True)
+        writer = ResultWriter.resume(path, self._layout(), resume.result_copy, resume.n_time,
+                                     resume.n_snap, attrs=self._attrs())
+        return _RunBook(path, writer, store, checkpoint, np.array(resume.psi, dtype=s.dtype, copy=True),
+                        int(resume.steps), np.asarray(resume.absorbed, float).copy(), resume.wall_seconds, False)
+
+    def _observe(self, book, values, t_au, absorbed) -> dict:
+        """Write one sample (``values`` from the observer, atomic units)."""
+        s = self.setup
+        conv = book.conv or self._converters()
+        book.conv = conv
+        values["absorbed"] = np.array(absorbed, dtype=float, copy=True)
+        row = dict(values)
+        row["x_mean"] *= conv["length"]
+        row["x_std"] *= conv["length"]
+        row["p_mean"] *= conv["momentum"]
+        row["energy"] *= conv["energy"]
+        row["flux"] = values["flux"] * conv["flux"]
+        if "detector_psi" in values:
+            row["detector_psi"] = values["detector_psi"] * conv["amplitude"]
+        book.writer.add_sample(t_au / s.units.factor("time"), row)
+        return values
+
+    def _record(self, book, values, t_au, absorbed, psi, done) -> None:
+        """The sample (and snapshot, when due) after ``done`` steps; raises
+        RunFailed when the books say the state is broken."""
+        s = self.setup
+        values = self._observe(book, values, t_au, absorbed)
+        self._health(values, absorbed, t_au, done)
+        if done % s.snapshot_steps == 0:
+            self._snapshot(book.writer, t_au / s.units.factor("time"), psi)
+
+    def _close(self, book, psi, steps: int) -> Path:
+        """Final state, run attributes, the file in place; the checkpoint gone."""
+        s = self.setup
+        if s.job.table["record"]["final_state"]:
+            book.writer.set_final_state(np.asarray(psi, np.complex128) * s.units.factor("length") ** (s.grid.ndim / 2))
         try:
-            if resume is None:
-                self._sample(writer, observer, prop, psi, conv)
-                self._snapshot(writer, 0.0, psi)
-            while done < s.total_steps:
-                n = min(s.sample_steps, s.total_steps - done)
-                psi = prop.step(psi, n)
-                done += n
-                self._record(writer, observer, prop, psi, conv, done)
-                if bar is not None:
-                    bar.update(n)
-                if on_sample is not None:
-                    elapsed = _time.perf_counter() - wall0
-                    on_sample(done, s.total_steps, (done - start) / elapsed if elapsed > 0 else 0.0)
-                if done >= s.total_steps:
-                    break
-                if should_stop is not None and should_stop():
-                    saved = None
-                    if store is not None:
-                        saved = self._checkpoint(store, writer, prop, psi,
-                                                 wall_before + _time.perf_counter() - wall0, reopen=False)
-                    raise RunInterrupted(saved, done)
-                now = _time.perf_counter()
-                if store is not None and now - last_checkpoint >= checkpoint.every_seconds:
-                    self._checkpoint(store, writer, prop, psi, wall_before + now - wall0)
-                    last_checkpoint = _time.perf_counter()
-            if s.job.table["record"]["final_state"]:
-                writer.set_final_state(np.asarray(psi, np.complex128) * lf ** (s.grid.ndim / 2))
-            wall = wall_before + _time.perf_counter() - wall0
-            try:
-                out = writer.close({"steps": int(prop.steps_done), "wall_seconds": float(wall)},
-                                   replace=store is None)
-            except FileExistsError:   # another worker finished this run meanwhile
-                raise ResultExists(path) from None
-        except BaseException as e:
-            writer.abort()
-            if store is not None and isinstance(e, (RunFailed, ResultExists)):
-                store.discard()   # a failed or finished run has nothing to resume
-            raise
-        finally:
-            if bar is not None:
-                bar.close()
-        if store is not None:
-            store.discard()
-        self.psi = psi
+            out = book.writer.close({"steps": int(steps), "wall_seconds": float(book.wall())},
+                                    replace=book.store is None)
+        except FileExistsError:   # another worker finished this run meanwhile
+            raise ResultExists(book.path) from None
+        if book.store is not None:
+            book.store.discard()
         return out
 
-    def _record(self, writer, observer, prop, psi, conv, done) -> None:
-        """The sample (and snapshot, when due) after ``done`` steps."""
-        s = self.setup
-        values = self._sample(writer, observer, prop, psi, conv)
-        self._health(values, prop, done)
-        if done % s.snapshot_steps == 0:
-            self._snapshot(writer, prop.t / s.units.factor("time"), psi)
+    def _abort(self, book, exc: BaseException) -> None:
+        """The partial result goes; a failed or finished run keeps no checkpoint."""
+        book.writer.abort()
+        if book.store is not None and isinstance(exc, (RunFailed, ResultExists)):
+            book.store.discard()   # a failed or finished run has nothing to resume
 
     def _expected_position(self, steps: int) -> tuple[int, int]:
         """(samples, snapshots) the loop has written after ``steps`` steps
@@ -412,15 +442,18 @@ class Simulation:
         period = s.snapshot_steps // math.gcd(s.sample_steps, s.snapshot_steps)
         return k + 1, 1 + k // period
 
-    def _checkpoint(self, store, writer, prop, psi, wall: float, reopen: bool = True) -> Path:
+    def _checkpoint(self, book, steps: int, absorbed, psi, reopen: bool = True) -> Path:
+        writer = book.writer
         n_time, n_snap = writer.position
-        state = CheckpointState(run_id=self.job.run_id, steps=int(prop.steps_done),
-                                absorbed=prop.absorbed.copy(), n_time=n_time, n_snap=n_snap,
-                                wall_seconds=float(wall), psi=np.asarray(psi),
+        state = CheckpointState(run_id=self.job.run_id, steps=int(steps),
+                                absorbed=np.array(absorbed, dtype=float, copy=True), n_time=n_time, n_snap=n_snap,
+                                wall_seconds=float(book.wall()), psi=np.asarray(psi),
                                 extra={"job_name": self.job.name, "total_steps": int(self.setup.total_steps),
                                        "scheme": self.setup.scheme.name,
                                        "wavesweep_version": __version__})
-        return store.save(state, writer, reopen=reopen)
+        out = book.store.save(state, writer, reopen=reopen)
+        book.last_checkpoint = _time.perf_counter()
+        return out
 
     def _load_checkpoint(self, store):
         """The checkpoint to resume from, or None (none there, or unusable:
@@ -468,24 +501,9 @@ class Simulation:
                 "momentum": 1 / u.factor("momentum"), "flux": u.factor("time"),
                 "amplitude": math.sqrt(u.factor("length"))}   # |psi|^2 dx is invariant
 
-    def _sample(self, writer, observer, prop, psi, conv):
-        s = self.setup
-        values = observer.measure(psi, s.hamiltonian.potential(prop.t))
-        values["absorbed"] = prop.absorbed.copy()
-        row = dict(values)
-        row["x_mean"] *= conv["length"]
-        row["x_std"] *= conv["length"]
-        row["p_mean"] *= conv["momentum"]
-        row["energy"] *= conv["energy"]
-        row["flux"] = values["flux"] * conv["flux"]
-        if "detector_psi" in values:
-            row["detector_psi"] = values["detector_psi"] * conv["amplitude"]
-        writer.add_sample(prop.t / s.units.factor("time"), row)
-        return values
-
-    def _health(self, values, prop, step):
-        total = values["norm"] + float(np.sum(prop.absorbed))
-        t = prop.t / self.setup.units.factor("time")
+    def _health(self, values, absorbed, t_au, step):
+        total = values["norm"] + float(np.sum(absorbed))
+        t = t_au / self.setup.units.factor("time")
         if not math.isfinite(total):
             raise RunFailed(f"psi became NaN/inf at t = {t:g} (step {step}); reduce evolve.dt "
                             "or check the potential for non-finite values", step, t)
@@ -561,6 +579,30 @@ class Simulation:
             "angular_momentum": int(s.grid.angular_momentum),
             "absorber": s.absorber.kind,
         }
+
+
+class _RunBook:
+    """What one run carries through its loop: the writer, the checkpoint
+    store and policy, psi and books to start from, and the wall clock."""
+
+    def __init__(self, path, writer, store, policy, psi, steps, absorbed, wall_before, fresh):
+        self.path, self.writer, self.store, self.policy = path, writer, store, policy
+        self.psi, self.steps, self.absorbed = psi, steps, absorbed
+        self.wall_before, self.fresh = wall_before, fresh
+        self.conv = None
+        self.wall0 = self.last_checkpoint = _time.perf_counter()
+
+    def wall(self) -> float:
+        """Wall seconds of the run so far, over all its sessions."""
+        return self.wall_before + _time.perf_counter() - self.wall0
+
+    def rate(self, steps_this_session: int) -> float:
+        elapsed = _time.perf_counter() - self.wall0
+        return steps_this_session / elapsed if elapsed > 0 else 0.0
+
+    def checkpoint_due(self) -> bool:
+        return (self.store is not None
+                and _time.perf_counter() - self.last_checkpoint >= self.policy.every_seconds)
 
 
 def _set_kernel_threads(n: int) -> None:

@@ -353,11 +353,11 @@ def test_failed_run_discards_its_checkpoint(tmp_path, monkeypatch):
     calls = [0]
     orig = Simulation._health
 
-    def fail_at_fifth(self, values, prop, step):
+    def fail_at_fifth(self, values, absorbed, t_au, step):
         calls[0] += 1
         if calls[0] == 5:
             raise RunFailed("simulated blow-up", step)
-        return orig(self, values, prop, step)
+        return orig(self, values, absorbed, t_au, step)
     monkeypatch.setattr(Simulation, "_health", fail_at_fifth)
     with pytest.raises(RunFailed):
         run(JOB_1D, tmp_path / "out.nc", checkpoint=policy)
