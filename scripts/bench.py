@@ -123,16 +123,21 @@ def bench(name, grid, repeats, backend, precision, memory=True):
     plain()
     step10_recorded()
     ratios = {"step": [], "rec": [], "plain": []}
+    n_pair, n_step = inner, max(1, inner // 10)
     for _ in range(repeats):
-        t_pair = timed(pair, inner)
-        t_step = timed(step10, max(1, inner // 10)) / 10
-        t_rec = timed(step10_recorded, max(1, inner // 10)) / 10
-        t_pair2 = timed(pair, inner)
+        # each step timing between two pair timings: the ratio to their mean
+        p1 = timed(pair, n_pair)
+        t_step = timed(step10, n_step) / 10
+        p2 = timed(pair, n_pair)
+        t_rec = timed(step10_recorded, n_step) / 10
+        p3 = timed(pair, n_pair)
+        ratios["step"].append(2 * t_step / (p1 + p2))
+        ratios["rec"].append(2 * t_rec / (p2 + p3))
+    for _ in range(repeats):   # the numpy loop churns memory: timed apart
+        s1 = timed(step10, n_step) / 10
         t_plain = timed(plain, max(1, inner // 4))
-        pair_mean = 0.5 * (t_pair + t_pair2)
-        ratios["step"].append(t_step / pair_mean)
-        ratios["rec"].append(t_rec / pair_mean)
-        ratios["plain"].append(t_plain / t_step)
+        s2 = timed(step10, n_step) / 10
+        ratios["plain"].append(2 * t_plain / (s1 + s2))
     med = {k: statistics.median(v) for k, v in ratios.items()}
     mem = f"{peak_memory(name, precision):8.1f}" if memory else f"{'-':>8}"
     print(f"{name:<10} {precision:<6} {tr.name:<7} {med['step']:8.2f} {med['rec']:10.2f} "

@@ -20,24 +20,35 @@ from __future__ import annotations
 import numpy as np
 import scipy.fft
 
-__all__ = ["Hamiltonian"]
+__all__ = ["Hamiltonian", "static_potential_of"]
+
+
+def static_potential_of(grid, mass: float, terms) -> np.ndarray:
+    """V0 (hartree): the time-independent terms plus the centrifugal term,
+    full grid shape, float64 (the one copy a run keeps)."""
+    mesh = grid.mesh()
+    v0 = np.zeros(grid.shape)
+    for term in terms:
+        if not term.time_dependent:
+            v0 += term.static(mesh)
+    if grid.radial:
+        v0 += grid.centrifugal_potential(mass)
+    return v0
 
 
 class Hamiltonian:
     """Parameters: grid, mass (m_e), list of potential terms, absorber rate
     W (hartree, full grid shape, or None)."""
 
-    def __init__(self, grid, mass: float, terms, absorber_rate=None):
+    def __init__(self, grid, mass: float, terms, absorber_rate=None, static_potential=None):
         self.grid = grid
         self.mass = float(mass)
         self.terms = list(terms)
         mesh = grid.mesh()
-        v0 = np.zeros(grid.shape)
         self.separable = []   # (g array, f callable)
         self.general = []     # terms evaluated in full per step
         for term in self.terms:
             if not term.time_dependent:
-                v0 = v0 + term.static(mesh)
                 continue
             sep = term.separable()
             if sep is not None:
@@ -45,11 +56,17 @@ class Hamiltonian:
                 self.separable.append((np.asarray(g(mesh), float), f))
             else:
                 self.general.append(term)
-        v0 = v0 + grid.centrifugal_potential(self.mass)
-        self.static_potential = np.ascontiguousarray(np.broadcast_to(v0, grid.shape), dtype=float)
-        self.kinetic = grid.kinetic_energy(self.mass)
+        if static_potential is None:
+            static_potential = static_potential_of(grid, self.mass, self.terms)
+        self.static_potential = np.ascontiguousarray(np.broadcast_to(static_potential, grid.shape), dtype=float)
         self.absorber_rate = absorber_rate
         self._mesh = mesh
+
+    @property
+    def kinetic(self) -> np.ndarray:
+        """T(k) (hartree) on the full transform grid; made when first asked
+        for (the split-operator step never needs it in full)."""
+        return self.grid.kinetic_energy(self.mass)
 
     @property
     def time_dependent(self) -> bool:

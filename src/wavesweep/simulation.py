@@ -24,7 +24,7 @@ from .absorbers.tuning import tune_cap_strength as _tune_cap_strength
 from .errors import JobError, RunFailed, RunInterrupted
 from .fft import make_transform
 from .grid import Axis, Grid
-from .hamiltonian import Hamiltonian
+from .hamiltonian import Hamiltonian, static_potential_of
 from .io.checkpoint import (CheckpointCorrupt, CheckpointMismatch, CheckpointState, CheckpointStore,
                             ResultExists, result_complete)
 from .io.recorder import ResultWriter
@@ -74,8 +74,11 @@ class Setup:
         representability(self)  # before the absorber's tuning squares the packet's momenta
         self.psi0 = build_state(self.packet, self.grid, self.mass,
                                 length_unit=(u.factor("length"), u.unit_label("length")), terms=self.terms)
+        if self.dtype == np.complex64:   # single precision end to end (half the bytes)
+            self.psi0 = self.psi0.astype(np.complex64)
         self.absorber = self._absorber(t["absorber"])
-        self.hamiltonian = Hamiltonian(self.grid, self.mass, self.terms, self.absorber.rate)
+        self.hamiltonian = Hamiltonian(self.grid, self.mass, self.terms, self.absorber.rate,
+                                       static_potential=self.hamiltonian_static_potential())
         self.detectors = [self._detector(i, d) for i, d in enumerate(t["detector"])]
         self.fft_backend = fft or ev.get("fft", "auto")
         self.threads = threads or ev.get("threads")
@@ -179,12 +182,7 @@ class Setup:
     def hamiltonian_static_potential(self) -> np.ndarray:
         """Static V on the grid (hartree), before the Hamiltonian exists."""
         if getattr(self, "_v_static", None) is None:
-            mesh = self.grid.mesh()
-            v = np.zeros(self.grid.shape)
-            for term in self.terms:
-                if not term.time_dependent:
-                    v = v + term.static(mesh)
-            self._v_static = v + self.grid.centrifugal_potential(self.mass)
+            self._v_static = static_potential_of(self.grid, self.mass, self.terms)
         return self._v_static
 
     def _absorber(self, table) -> Absorber:
@@ -325,7 +323,7 @@ class Simulation:
             raise ResultExists(path)
         prop = s.make_propagator()
         observer = s.make_observer()
-        psi = book.psi
+        psi, book.psi = prop.load(book.psi), None
         prop.steps_done = book.steps
         prop.absorbed[:] = book.absorbed
         done = start = int(prop.steps_done)
@@ -380,8 +378,8 @@ class Simulation:
         n_faces = len(s.absorber.layers) if s.absorber.active else 0
         if resume is None:
             writer = ResultWriter(path, self._layout(), self._attrs())
-            return _RunBook(path, writer, store, checkpoint, s.psi0.astype(s.dtype), 0, np.zeros(n_faces), 0.0,
-                            True)
+            # psi0 itself: the propagator's load() copies it into its own array
+            return _RunBook(path, writer, store, checkpoint, s.psi0, 0, np.zeros(n_faces), 0.0, True)
         writer = ResultWriter.resume(path, self._layout(), resume.result_copy, resume.n_time,
                                      resume.n_snap, attrs=self._attrs())
         return _RunBook(path, writer, store, checkpoint, np.array(resume.psi, dtype=s.dtype, copy=True),
@@ -417,7 +415,7 @@ class Simulation:
         """Final state, run attributes, the file in place; the checkpoint gone."""
         s = self.setup
         if s.job.table["record"]["final_state"]:
-            book.writer.set_final_state(np.asarray(psi, np.complex128) * s.units.factor("length") ** (s.grid.ndim / 2))
+            book.writer.set_final_state(psi, s.units.factor("length") ** (s.grid.ndim / 2))
         try:
             out = book.writer.close({"steps": int(steps), "wall_seconds": float(book.wall())},
                                     replace=book.store is None)
@@ -533,9 +531,10 @@ class Simulation:
         writer.add_snapshot(t_job, self._density(psi), amp)
 
     def _density(self, psi) -> np.ndarray:
-        lf = self.setup.units.factor("length")
-        d = np.abs(psi.astype(np.complex128)) ** 2
-        return d * lf ** self.setup.grid.ndim
+        """|psi|^2 in job units, float32 as the result file stores it (a
+        quarter of the bytes of psi in double, no other temporary)."""
+        from .kernels import density_of
+        return density_of(psi, self.setup.units.factor("length") ** self.setup.grid.ndim, np.float32)
 
     def _layout(self) -> dict:
         s = self.setup

@@ -92,6 +92,10 @@ def copy_file(src: Path, dst: Path) -> None:
 
 
 
+def _without_potential(layout: dict) -> dict:
+    return {k: v for k, v in layout.items() if k != "potential"}
+
+
 class ResultWriter:
     """Writes the result of one run.
 
@@ -115,7 +119,7 @@ class ResultWriter:
     def __init__(self, path, layout: dict, attrs: dict):
         self.path = Path(path)
         self.tmp = self.path.with_name(f".{self.path.name}.part")
-        self.layout = layout
+        self.layout = _without_potential(layout)   # written once; not kept for the whole run
         self._buf: list[dict] = []
         self._n_time = 0
         self._n_snap = 0
@@ -138,7 +142,7 @@ class ResultWriter:
         self = cls.__new__(cls)
         self.path = Path(path)
         self.tmp = self.path.with_name(f".{self.path.name}.part")
-        self.layout = layout
+        self.layout = _without_potential(layout)
         self._buf = []
         self._n_time = int(n_time)
         self._n_snap = int(n_snap)
@@ -272,7 +276,7 @@ class ResultWriter:
         cut = tuple(slice(None, None, s) for _ in range(density.ndim))
         i = self._n_snap
         self.ds["snapshot_time"][i] = time
-        self.ds["density"][i] = density[cut].astype(np.float32)
+        self.ds["density"][i] = density[cut].astype(np.float32, copy=False)
         if psi is not None and "psi_snapshot_real" in self.ds.variables:
             self.ds["psi_snapshot_real"][i] = psi.real[cut].astype(np.float32)
             self.ds["psi_snapshot_imag"][i] = psi.imag[cut].astype(np.float32)
@@ -299,10 +303,14 @@ class ResultWriter:
         self._buf.clear()
         ds.sync()
 
-    def set_final_state(self, psi: np.ndarray) -> None:
+    def set_final_state(self, psi: np.ndarray, scale: float = 1.0) -> None:
+        """psi times ``scale`` (to job units), written part by part and an
+        eighth of the grid at a time (no temporary of the grid's size)."""
         if "psi_real" in self.ds.variables:
-            self.ds["psi_real"][:] = psi.real
-            self.ds["psi_imag"][:] = psi.imag
+            rows = max(1, psi.shape[0] // 8)   # an eighth of the grid at a time
+            for part, name in ((psi.real, "psi_real"), (psi.imag, "psi_imag")):
+                for i in range(0, psi.shape[0], rows):
+                    self.ds[name][i:i + rows] = np.multiply(part[i:i + rows], scale, dtype=np.float64)
 
     def save_copy(self, dest: Path, tmp: Path | None = None, reopen: bool = True) -> int:
         """Flush the sample buffer, close the file and copy it to ``dest``

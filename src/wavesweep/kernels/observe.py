@@ -14,7 +14,7 @@ import numpy as np
 
 from .split import _twins
 
-__all__ = ["ObserveKernels", "observe_kernels_for", "DENSITY_SUMS", "SPECTRUM_SUMS"]
+__all__ = ["ObserveKernels", "observe_kernels_for", "density_of", "DENSITY_SUMS", "SPECTRUM_SUMS"]
 
 # Columns of density_sums' output.
 DENSITY_SUMS = ("norm", "x", "x2", "potential", "overlap_real", "overlap_imag")
@@ -145,6 +145,22 @@ def contract(phi, axis, value, deriv, a, d):
                         z = phi[b, n, o, k] if axis == 1 else phi[b, o, n, k]
                         a[m, b, o, k] += vn * z
                         d[m, b, o, k] += dn * z
+
+
+@numba.njit(cache=True, parallel=True, fastmath=False)
+def _density_into(psi, scale, out):
+    for i in numba.prange(psi.size):
+        z = psi[i]
+        out[i] = (np.float64(z.real) * z.real + np.float64(z.imag) * z.imag) * scale
+
+
+def density_of(psi: np.ndarray, scale: float = 1.0, dtype=np.float64) -> np.ndarray:
+    """|psi|^2 times ``scale`` (summed in float64) as a new array of psi's
+    shape and ``dtype``."""
+    psi = np.ascontiguousarray(psi)
+    out = np.empty(psi.shape, dtype=dtype)
+    _density_into(psi.reshape(-1), float(scale), out.reshape(-1))
+    return out
 
 
 _KERNELS = {name: _twins(fn) for name, fn in

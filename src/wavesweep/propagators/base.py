@@ -68,6 +68,12 @@ class Propagator:
         it does not drift by repeated addition."""
         return self.t0 + self.steps_done * self.dt
 
+    def load(self, psi: np.ndarray) -> np.ndarray:
+        """A copy of ``psi`` (the propagator's dtype) to step from; ``psi``
+        itself is never written to.  Backends with a working buffer put
+        the copy there."""
+        return np.array(psi, dtype=self.dtype, copy=True)
+
     def step(self, psi: np.ndarray, nsteps: int = 1) -> np.ndarray:
         """Advance ``psi`` by ``nsteps`` steps; returns the new psi (which may
         be the same array, updated in place)."""

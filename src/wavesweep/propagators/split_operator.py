@@ -123,6 +123,14 @@ class SplitOperator(Propagator):
         if h.time_dependent:
             self._prepare_dynamic()
 
+    def load(self, psi):
+        direct = self.transform.in_place() if self._radial_basis is None and self.transform else None
+        if direct is None:
+            return super().load(psi)
+        buf = direct[2]
+        np.copyto(buf, psi)
+        return buf
+
     # -- precomputed factors --------------------------------------------------
     def _check_layers(self):
         slabs = [[layer.slab for layer in a.layers] if a is not None and a.active else None
@@ -160,16 +168,27 @@ class SplitOperator(Propagator):
         return np.ascontiguousarray(np.concatenate([view4(np.asarray(a), self.grid.ndim) for a in arrays]))
 
     def _kick_array(self, tau, absorb):
+        """The 4D factor array (one row, or one per member when their
+        absorbers differ), built in place: cos and sin of the phase straight
+        into the complex array, the absorber's decay only where W > 0."""
         v = self._kick_potential
-        if (absorb == 0 or not self._absorbing) and not np.any(v) and not self._renormalise \
-                and not self.hamiltonian.time_dependent:
+        absorbing = self._absorbing and absorb > 0
+        if not absorbing and not np.any(v) and not self._renormalise and not self.hamiltonian.time_dependent:
             return None   # exp(0): nothing to multiply (radial grids without absorber)
-        arg = -1j * v * tau
-        rows = []
-        for a in (self.absorbers if self._absorbing and absorb > 0 else self.absorbers[:1]):
-            rows.append(np.exp(arg - a.rate * absorb) if a is not None and a.active and absorb > 0
-                        else np.exp(arg))
-        return self._stack([r.astype(self.dtype) for r in rows])
+        members = self.absorbers if absorbing else self.absorbers[:1]
+        if absorbing and all(a is members[0] or np.array_equal(a.rate, members[0].rate) for a in members[1:]):
+            members = members[:1]
+        nd = self.grid.ndim
+        out = np.empty((len(members),) + view4(v, nd).shape[1:], dtype=self.dtype)
+        phase = v * -tau
+        for b, a in enumerate(members):
+            row = out[b].reshape(self.grid.shape)
+            np.cos(phase, out=row.real, casting="same_kind")
+            np.sin(phase, out=row.imag, casting="same_kind")
+            if absorbing and a is not None and a.active:
+                where = np.nonzero(a.rate.reshape(-1))[0]
+                row.reshape(-1)[where] *= np.exp(-a.rate.reshape(-1)[where] * absorb)
+        return out
 
     def _kinetic_factor(self, tau: float):
         """exp(-i T tau) as (e0, e12): e0 along the first padded axis and the
