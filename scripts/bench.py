@@ -146,6 +146,67 @@ def bench(name, grid, repeats, backend, precision, memory=True):
     return med
 
 
+BATCH_JOB = {
+    "title": "batch bench",
+    "grid": {"x": {"min": -150.0, "max": 150.0, "points": 2048}},
+    "potential": [{"kind": "barrier", "height": 0.5, "width": 1.0}],
+    "packet": {"center": -40.0, "width": 6.0, "momentum": 1.0},
+    "absorber": {"kind": "cap", "thickness": 20.0, "strength": 0.02, "power": 2.0},
+    "evolve": {"dt": 0.02, "duration": 100.0},
+    "record": {"every": 0.5, "snapshot_every": 10.0},
+    "detector": [{"name": "beyond", "x": 30.0}, {"name": "before", "x": -60.0}],
+}
+
+_BATCH_RUN = """
+import sys, json, time, copy, tempfile
+sys.path.insert(0, sys.argv[1])
+from bench import BATCH_JOB
+from wavesweep.jobfile import job_from_dict
+from wavesweep.simulation import Simulation
+from wavesweep.batched import BatchedRun
+runs, mode = int(sys.argv[2]), sys.argv[3]
+jobs = []
+for i in range(runs):
+    t = copy.deepcopy(BATCH_JOB)
+    t["packet"]["momentum"] = 0.7 + 0.8 * i / max(runs - 1, 1)
+    jobs.append(job_from_dict(t))
+with tempfile.TemporaryDirectory() as tmp:
+    # warm: numba's cache and FFTW wisdom loaded, as in a worker's second run
+    Simulation(job_from_dict({**copy.deepcopy(BATCH_JOB), "evolve": {"dt": 0.02, "duration": 0.2}})).run(tmp, progress=False)
+    BatchedRun([job_from_dict({**copy.deepcopy(BATCH_JOB), "evolve": {"dt": 0.02, "duration": 0.2}})] * 2).run(
+        [tmp + "/w1.nc", tmp + "/w2.nc"])
+    t0 = time.perf_counter()
+    if mode == "solo":
+        for j in jobs:
+            Simulation(j).run(tmp, progress=False)
+    else:
+        BatchedRun(jobs).run([f"{tmp}/{j.name}-{j.run_id}.nc" for j in jobs])
+    print(json.dumps({"seconds": time.perf_counter() - t0}))
+"""
+
+
+def bench_batch(runs: int, repeats: int):
+    """Throughput of an energy sweep of ``runs`` runs x 2048 points run as
+    one batch against the same runs one after the other in one process
+    (whole runs: set-up, propagation, recording, result files), each mode
+    in a fresh process per round, rounds alternating."""
+    import json
+    import os
+    import subprocess
+    import sys
+    ratios = []
+    for _ in range(repeats):
+        t = {}
+        for mode in ("solo", "batch"):
+            out = subprocess.run([sys.executable, "-c", _BATCH_RUN, os.path.dirname(__file__), str(runs), mode],
+                                 capture_output=True, text=True, check=True)
+            t[mode] = json.loads(out.stdout.strip().splitlines()[-1])["seconds"]
+        ratios.append(t["solo"] / t["batch"])
+    print(f"batched study, {runs} runs x 2048 points ({BATCH_JOB['evolve']['duration'] / BATCH_JOB['evolve']['dt']:.0f}"
+          f" steps each): {statistics.median(ratios):.2f}x the throughput of running them one by one "
+          f"(median over {repeats} rounds)")
+
+
 def single_vs_double(grid, repeats, backend):
     """Step time (with recording every 10 steps) of double over single,
     median over rounds that time one after the other."""
@@ -308,9 +369,13 @@ def main():
     ap.add_argument("--backend", default="auto")
     ap.add_argument("--queue", action="store_true", help="queue overhead and worker throughput only")
     ap.add_argument("--movie", action="store_true", help="movie frames per second and peak memory only")
+    ap.add_argument("--batch", action="store_true", help="batched-study throughput only")
     args = ap.parse_args()
     if args.movie:
         bench_movie(3)
+        return
+    if args.batch:
+        bench_batch(32, 3)
         return
     if args.queue:
         bench_queue(8, 3 if args.quick else 3)
@@ -332,6 +397,7 @@ def main():
     for name, grid in grids.items():
         print(f"{name:<10} single precision vs double: {single_vs_double(grid, repeats, args.backend):.2f}x "
               "faster per step (recorded every 10 steps)")
+    bench_batch(32, 1 if args.quick else 3)
 
 
 if __name__ == "__main__":

@@ -21,10 +21,7 @@ import os as _os
 # kernels the FFT threads then compete with them for the cores.  Measured on
 # 2 cores at 512^2: a split-operator step cost 9.8 FFT pairs with spinning
 # threads and 1.0 with passive ones.  Must be set before libgomp loads.
-if "WAVESWEEP_SPIN" in _os.environ:
-    _os.environ.setdefault("GOMP_SPINCOUNT", _os.environ["WAVESWEEP_SPIN"])
-else:
-    _os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+_os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 from .errors import JobError, RunFailed
 from .units import UnitSet
@@ -35,6 +32,7 @@ from .propagators import Propagator, SCHEMES, Strang, Order4, Chebyshev, CrankNi
 from .hamiltonian import Hamiltonian
 from .observables import Observer, Detector
 from .simulation import Setup, Simulation, run_job
+from .batched import BatchedRun, batch_key
 from .check import check_job
 from .analysis.spectra import stationary_states, autocorrelation_levels
 from .analysis import arrival_times, transmission
@@ -54,6 +52,7 @@ def __getattr__(name):
 
 
 __all__ = [
+    "BatchedRun", "batch_key",
     "__version__", "JobError", "RunFailed", "UnitSet", "Axis", "Grid", "Job", "load_job",
     "job_from_dict", "PotentialTerm", "POTENTIALS", "register_potential", "Propagator", "SCHEMES",
     "Strang", "Order4", "Chebyshev", "CrankNicolson", "Hamiltonian", "Observer", "Detector",

@@ -660,6 +660,49 @@ class Queue:
                 "result": str(self.result_path(st, rid)), "log": str(self.log_path(st, rid)),
                 "checkpoint": str(self.checkpoint_path(st, rid))}
 
+    def claim_batch(self, worker: str, limit: int, group_of, share: int = 1, window: int = 512,
+                    study: str | None = None) -> list[dict]:
+        """Claim the oldest queued run and, with it, later queued runs of
+        the same study that ``group_of(job_toml)`` -> ``(key, most)`` puts
+        in its group (None: never grouped), in submission order: up to
+        ``min(limit, most)`` runs in all, and at most
+        the ``share``-th part of the group queued (rounded up), so that
+        ``share`` workers all get some.  Only the next ``window`` queued
+        runs of the study are looked at.  One transaction: two workers never
+        claim the same run.  Returns claims as :meth:`claim` does, the
+        oldest first; empty when nothing is queued."""
+        now = self._clock()
+        where, args = ("AND study = ?", (study,)) if study is not None else ("", ())
+        with self._write() as c:
+            head = c.execute(f"SELECT seq, study, job_toml FROM runs WHERE state = 'queued' {where} "
+                             "ORDER BY seq LIMIT 1", args).fetchone()
+            if head is None:
+                return []
+            seqs = [head[0]]
+            group = group_of(head[2]) if limit > 1 else None
+            if group is not None:
+                key, most = group
+                rows = c.execute("SELECT seq, job_toml FROM runs WHERE state = 'queued' AND study = ? "
+                                 "AND seq > ? ORDER BY seq LIMIT ?", (head[1], head[0], window)).fetchall()
+                mates = [seq for seq, text in rows if (group_of(text) or (None,))[0] == key]
+                take = min(limit, most, -(-(1 + len(mates)) // max(1, share)))
+                seqs += mates[:take - 1]
+            out = []
+            for seq in seqs:
+                st, rid, job_toml, params, attempts, executions = c.execute(
+                    "UPDATE runs SET state = 'running', attempts = attempts + 1, "
+                    "executions = executions + 1, worker = ?, heartbeat = ?, started = ?, "
+                    "rate = NULL, reason = NULL WHERE seq = ? "
+                    "RETURNING study, run_id, job_toml, params, attempts, executions",
+                    (worker, now, now, seq)).fetchall()[0]
+                self._event(c, now, st, rid, "queued", "running", worker,
+                            f"attempt {attempts}" + (f", batch of {len(seqs)}" if len(seqs) > 1 else ""))
+                out.append({"study": st, "run_id": rid, "job_toml": job_toml, "params": json.loads(params),
+                            "attempt": attempts, "execution": executions, "worker": worker,
+                            "result": str(self.result_path(st, rid)), "log": str(self.log_path(st, rid)),
+                            "checkpoint": str(self.checkpoint_path(st, rid))})
+        return out
+
     @staticmethod
     def _owner(execution):
         """WHERE clause of "this run is running and held by this worker" (and,

@@ -7,8 +7,13 @@ with checkpoints, reports progress through heartbeats, and ends the run in
 the queue as done, failed (with a one-line reason and the log), or released
 back to queued when it was asked to stop.
 
+Runs of one study that differ only in their packet are claimed together
+(:func:`claim_next`) and stepped as one batch by :func:`execute_batch`
+(:mod:`wavesweep.batched`); each still ends on its own in the queue.
+
 To add an executor: subclass :class:`Executor`, implement ``drain()``, and
-make each worker call :func:`execute_claim` for every run it claims.
+make each worker call :func:`claim_next` and :func:`execute_batch` (or
+:func:`execute_claim` for one run) for what it claims.
 """
 from __future__ import annotations
 
@@ -23,7 +28,8 @@ from pathlib import Path
 
 from ...errors import JobError, RunFailed, RunInterrupted
 
-__all__ = ["Executor", "WorkerSettings", "execute_claim", "thread_environment"]
+__all__ = ["Executor", "WorkerSettings", "execute_claim", "execute_batch", "claim_next",
+           "thread_environment"]
 
 
 @dataclass(frozen=True)
@@ -35,6 +41,8 @@ class WorkerSettings:
     checkpoint_seconds: float = 300.0
     max_attempts: int = 3
     until: float | None = None         # epoch seconds: claim nothing new after this
+    batch: int = 32                    # most runs stepped together (1: never batch)
+    share: int = 1                     # workers sharing the queue (a batch takes 1/share of a group)
 
 
 class Executor:
@@ -169,3 +177,108 @@ def _fail(queue, claim, worker, reason, log_part, log_final, done, trace=None) -
     _finish_log(log_part, log_final)
     queue.fail(claim["study"], claim["run_id"], worker, reason)
     return "failed"
+
+
+def claim_next(queue, worker: str, settings: WorkerSettings) -> list[dict]:
+    """The next claims of a worker: one run, or a batch of runs that can be
+    stepped together (up to ``settings.batch``); empty when none is queued."""
+    from ...batched import batch_group
+    return queue.claim_batch(worker, max(1, settings.batch), batch_group, share=settings.share)
+
+
+def execute_batch(queue, claims: list[dict], worker: str, settings: WorkerSettings,
+                  stop_requested=lambda: False) -> list[str]:
+    """Run claimed runs as one batch to their ends in the queue; returns
+    their new states.  Each member keeps its own log, checkpoint and
+    outcome; if the jobs cannot be batched after all (a job error in one
+    of them), they run one after the other through :func:`execute_claim`."""
+    from ...batched import BatchedRun
+    from ...io.checkpoint import CheckpointPolicy, ResultExists
+    from ...jobfile import job_from_dict
+
+    if len(claims) == 1:
+        return [execute_claim(queue, claims[0], worker, settings, stop_requested)]
+    try:
+        jobs = [job_from_dict(tomllib.loads(c["job_toml"])) for c in claims]
+        if any(j.run_id != c["run_id"] for j, c in zip(jobs, claims)):
+            raise JobError("", "a queued job text does not hash to its run id")
+        batch = BatchedRun(jobs)
+    except (JobError, ValueError):
+        return [execute_claim(queue, c, worker, settings, stop_requested) for c in claims]
+
+    n = len(claims)
+    parts, finals, results = [], [], []
+    for c in claims:
+        result = Path(c["result"])
+        result.parent.mkdir(parents=True, exist_ok=True)
+        part = result.with_name(f"{c['run_id']}.log.part")
+        _log(part, f"attempt {c['attempt']} on {worker} (pid {os.getpid()}), in a batch of {n}")
+        parts.append(part)
+        finals.append(Path(c["log"]))
+        results.append(result)
+    progress = [{"step": 0, "total": None, "rate": None} for _ in claims]
+    lost = [False] * n
+    ended = [False] * n
+    done = threading.Event()
+
+    def beat():
+        while not done.wait(settings.heartbeat_seconds):
+            for i, c in enumerate(claims):
+                if ended[i] or lost[i]:
+                    continue
+                p = progress[i]
+                if not queue.heartbeat(c["study"], c["run_id"], worker, p["step"], p["total"], p["rate"]):
+                    lost[i] = True
+
+    def on_sample(i, step, total, rate):
+        progress[i].update(step=step, total=total, rate=rate)
+
+    def should_stop(i):
+        past = settings.until is not None and time.time() >= settings.until
+        return stop_requested() or past or lost[i]
+
+    beater = threading.Thread(target=beat, name=f"heartbeat-batch-{claims[0]['run_id']}", daemon=True)
+    beater.start()
+    t0 = time.perf_counter()
+    states = []
+    try:
+        outcomes = batch.run(results, on_sample=on_sample, should_stop=should_stop,
+                             checkpoints=[CheckpointPolicy(Path(c["checkpoint"]), settings.checkpoint_seconds)
+                                          for c in claims])
+    except Exception as e:   # a bug or the machine: every member fails with the cause
+        done.set()
+        if isinstance(e, MemoryError):
+            reason = "out of memory"
+        elif isinstance(e, OSError):
+            reason = f"{e.strerror or e}" + (f" ({e.filename})" if e.filename else "")
+        else:
+            reason = f"{type(e).__name__}: {e}"
+        for i, c in enumerate(claims):
+            states.append(_fail(queue, c, worker, reason, parts[i], finals[i], done,
+                                traceback.format_exc()))
+        return states
+    finally:
+        done.set()   # an interrupt: the leases run out and the runs are requeued
+    done.set()
+    wall = time.perf_counter() - t0
+    for i, (c, outcome) in enumerate(zip(claims, outcomes)):
+        ended[i] = True
+        study, run_id = c["study"], c["run_id"]
+        if isinstance(outcome, RunInterrupted):
+            if lost[i]:
+                _log(parts[i], "stopped: the queue gave this run to another worker or cancelled it")
+                states.append("lost")
+            else:
+                _log(parts[i], f"interrupted at step {outcome.step}; checkpoint kept")
+                queue.release(study, run_id, worker, f"interrupted at step {outcome.step}")
+                states.append("queued")
+        elif isinstance(outcome, RunFailed):
+            states.append(_fail(queue, c, worker, outcome.reason, parts[i], finals[i], done))
+        else:
+            note = ("the result already exists; kept as it is" if isinstance(outcome, ResultExists)
+                    else f"done in {wall:.1f} s (batch of {n})")
+            _log(parts[i], note)
+            _finish_log(parts[i], finals[i])
+            queue.complete(study, run_id, worker, wall)
+            states.append("done")
+    return states

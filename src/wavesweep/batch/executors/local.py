@@ -16,8 +16,9 @@ import os
 import signal
 import socket
 import time
+from dataclasses import replace
 
-from .base import Executor, WorkerSettings, execute_claim, thread_environment
+from .base import Executor, WorkerSettings, claim_next, execute_batch, thread_environment
 
 __all__ = ["LocalExecutor"]
 
@@ -34,10 +35,10 @@ def _worker_main(root: str, name: str, settings: WorkerSettings, stop) -> None:
     while not stop.is_set():
         if settings.until is not None and time.time() >= settings.until:
             break
-        claim = queue.claim(name)
-        if claim is None:
+        claims = claim_next(queue, name, settings)
+        if not claims:
             break
-        execute_claim(queue, claim, name, settings, stop.is_set)
+        execute_batch(queue, claims, name, settings, stop.is_set)
 
 
 class LocalExecutor(Executor):
@@ -81,9 +82,10 @@ class LocalExecutor(Executor):
         try:
             for s in previous:
                 signal.signal(s, request_stop)
+            settings = replace(self.settings, share=self.workers)
             for i in range(self.workers):
                 name = f"{host}:{os.getpid()}:{i}"
-                p = ctx.Process(target=_worker_main, args=(str(self.root), name, self.settings, stop),
+                p = ctx.Process(target=_worker_main, args=(str(self.root), name, settings, stop),
                                 name=f"wavesweep-worker-{i}")
                 p.start()
                 procs.append(p)

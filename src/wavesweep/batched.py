@@ -1,0 +1,221 @@
+"""Runs that differ only in their initial state, stepped together.
+
+The runs of an energy or position sweep share grid, potential, time step
+and recording; only the packet differs (and, when the CAP is tuned to each
+packet's energies, the absorber's strength).  :class:`BatchedRun` stacks
+their states along a leading member axis and advances them with one
+propagator (the transform runs along the grid axes only, the kicks and
+observables are one pass over all members), while every member keeps its
+own books: its own result file, checkpoints, health checks and outcome.
+A member's file is the one a solo run of its job writes (to rounding).
+
+Batching pays on small grids, where the per-step Python and per-call
+overheads of a solo run cost more than its transforms, and where one run
+is too small to use more than one core (threads start paying from
+``THREADED_MIN_ELEMENTS`` elements, counted over all members).
+"""
+from __future__ import annotations
+
+import copy
+import hashlib
+import json
+from pathlib import Path
+
+import numpy as np
+
+from .errors import RunFailed, RunInterrupted
+from .fft import make_transform
+from .io.checkpoint import ResultExists
+from .observables import Observer
+from .propagators import propagator_class
+from .simulation import Simulation, _progress, _set_kernel_threads
+
+__all__ = ["BatchedRun", "batch_key", "batch_group", "members_for", "BATCH_MAX_ELEMENTS", "BATCH_MAX_MEMBERS"]
+
+# A batch holds at most this many complex numbers over all members (32 MiB
+# of psi in double precision) and at most this many members: beyond, one
+# run already keeps the cores busy and a batch only costs memory.
+BATCH_MAX_ELEMENTS = 1 << 21
+BATCH_MAX_MEMBERS = 64
+
+
+def batch_key(table: dict) -> str | None:
+    """Jobs (resolved tables) with the same key can be stepped as one batch:
+    everything but the packet, the title, and the CAP's strength and
+    exponent must agree.  None for jobs that are never batched: a scheme
+    that cannot step a batch, or a grid too large for two members."""
+    try:
+        scheme = propagator_class(table["evolve"]["scheme"])
+    except Exception:
+        return None
+    if not getattr(scheme, "batched", False):
+        return None
+    points = 1
+    for name in ("x", "y", "z", "r"):
+        axis = table.get("grid", {}).get(name)
+        if isinstance(axis, dict):
+            points *= int(axis.get("points", 0))
+    if 2 * points > BATCH_MAX_ELEMENTS:
+        return None
+    rest = copy.deepcopy({k: v for k, v in table.items() if k not in ("packet", "title")})
+    absorber = rest.get("absorber")
+    if isinstance(absorber, dict):
+        absorber.pop("strength", None)
+        absorber.pop("power", None)
+    text = json.dumps(rest, sort_keys=True, default=str)
+    return hashlib.sha256(text.encode()).hexdigest()[:20]
+
+
+def batch_group(job_toml: str) -> tuple[str, int] | None:
+    """(batch key, most members) of a queued job's text, or None (for
+    :meth:`wavesweep.batch.queue.Queue.claim_batch`)."""
+    import tomllib
+    try:
+        table = tomllib.loads(job_toml)
+    except (tomllib.TOMLDecodeError, TypeError):
+        return None
+    key = batch_key(table)
+    if key is None:
+        return None
+    points = 1
+    for name in ("x", "y", "z", "r"):
+        axis = table["grid"].get(name)
+        if isinstance(axis, dict):
+            points *= int(axis.get("points", 0))
+    return key, members_for(points)
+
+
+def members_for(grid_points: int, limit: int = BATCH_MAX_MEMBERS) -> int:
+    """How many members of a grid of ``grid_points`` fit one batch."""
+    return max(1, min(limit, BATCH_MAX_MEMBERS, BATCH_MAX_ELEMENTS // max(grid_points, 1)))
+
+
+class BatchedRun:
+    """Several jobs of one :func:`batch_key`, run as one batch.
+
+    >>> outcomes = BatchedRun(jobs).run(paths)          # doctest: +SKIP
+
+    ``run`` returns one outcome per job, in order: the result's path, or
+    the exception that ended that member (:class:`RunFailed`,
+    :class:`RunInterrupted` with its checkpoint, :class:`ResultExists`);
+    one member's end never stops the others."""
+
+    def __init__(self, jobs, fft: str | None = None, threads: int | None = None):
+        jobs = list(jobs)
+        if not jobs:
+            raise ValueError("a batch needs at least one job")
+        keys = {batch_key(j.table) for j in jobs}
+        if None in keys or len(keys) != 1:
+            raise ValueError("these jobs cannot share a batch: they differ in more than their packets "
+                             "(or their scheme cannot step a batch)")
+        self.jobs = jobs
+        self.sims = [Simulation(j, fft, threads) for j in jobs]
+        self.fft, self.threads = fft, threads
+
+    def run(self, paths, progress: bool = False, on_sample=None, checkpoints=None, should_stop=None) -> list:
+        """Propagate every member and write its result to ``paths[i]``.
+
+        ``checkpoints`` (one :class:`~wavesweep.io.checkpoint.CheckpointPolicy`
+        or None per member) make members crash-safe as in
+        :meth:`Simulation.run`; members resuming from different steps are
+        stepped in groups, one group after the other.  ``on_sample(i, step,
+        total, rate)`` follows every sample of member ``i``;
+        ``should_stop(i)`` is asked after every sample before the last, and
+        True ends that member with a checkpoint (:class:`RunInterrupted`)."""
+        n = len(self.sims)
+        paths = [Path(p) for p in paths]
+        checkpoints = list(checkpoints) if checkpoints is not None else [None] * n
+        if len(paths) != n or len(checkpoints) != n:
+            raise ValueError(f"{n} jobs need {n} paths and {n} checkpoint policies")
+        outcomes: list = [None] * n
+        books = {}
+        try:
+            for i, (sim, path, policy) in enumerate(zip(self.sims, paths, checkpoints)):
+                book = sim._open(path, policy)
+                if book is None:
+                    outcomes[i] = ResultExists(path)
+                else:
+                    books[i] = book
+            groups: dict[int, list[int]] = {}
+            for i, book in books.items():
+                groups.setdefault(int(book.steps), []).append(i)
+            for steps in sorted(groups):
+                self._run_group(groups[steps], books, outcomes, progress, on_sample, should_stop)
+        except BaseException as e:
+            for i, book in books.items():
+                if outcomes[i] is None:
+                    self.sims[i]._abort(book, e)
+            raise
+        return outcomes
+
+    def _run_group(self, members, books, outcomes, progress, on_sample, should_stop):
+        sims = [self.sims[i] for i in members]
+        s0 = sims[0].setup
+        nb = len(members)
+        transform = make_transform(s0.grid, s0.fft_backend if s0.scheme.in_place_transform else "scipy",
+                                   s0.dtype, s0.threads, members=nb)
+        _set_kernel_threads(transform.threads)
+        prop = s0.scheme(s0.hamiltonian, s0.dt, transform, [s.setup.absorber for s in sims], s0.dtype,
+                         members=nb)
+        observer = Observer(s0.grid, s0.mass, make_transform(s0.grid, s0.fft_backend, s0.dtype, s0.threads,
+                                                             members=nb),
+                            s0.detectors, np.stack([s.setup.psi0 for s in sims]), members=nb)
+        group_books = [books[i] for i in members]
+        psi = prop.load(np.stack([b.psi for b in group_books]))
+        for b in group_books:
+            b.psi = None
+        prop.steps_done = group_books[0].steps
+        prop.absorbed[:] = np.stack([b.absorbed for b in group_books])
+        active = set(range(nb))
+        done = start = int(prop.steps_done)
+        total = s0.total_steps
+        bar = _progress(total, progress, f"batch of {nb}")
+
+        def end(k, outcome):
+            outcomes[members[k]] = outcome
+            active.discard(k)
+
+        def record(values, t):
+            for k in sorted(active):
+                try:
+                    if done == start and group_books[k].fresh:
+                        sims[k]._observe(group_books[k], values[k], t, prop.absorbed[k])
+                        sims[k]._snapshot(group_books[k].writer, 0.0, psi[k])
+                    else:
+                        sims[k]._record(group_books[k], values[k], t, prop.absorbed[k], psi[k], done)
+                except RunFailed as e:
+                    sims[k]._abort(group_books[k], e)
+                    end(k, e)
+
+        try:
+            if group_books[0].fresh:
+                record(observer.measure_members(psi, s0.hamiltonian.potential(prop.t)), prop.t)
+            while done < total and active:
+                step = min(s0.sample_steps, total - done)
+                psi = prop.step(psi, step)
+                done += step
+                record(observer.measure_members(psi, s0.hamiltonian.potential(prop.t)), prop.t)
+                if bar is not None:
+                    bar.update(step)
+                for k in sorted(active):
+                    if on_sample is not None:
+                        on_sample(members[k], done, total, group_books[k].rate(done - start))
+                if done >= total:
+                    break
+                for k in sorted(active):
+                    book = group_books[k]
+                    if should_stop is not None and should_stop(members[k]):
+                        saved = sims[k]._checkpoint(book, done, prop.absorbed[k], psi[k], reopen=False) \
+                            if book.store is not None else None
+                        end(k, RunInterrupted(saved, done))
+                    elif book.checkpoint_due():
+                        sims[k]._checkpoint(book, done, prop.absorbed[k], psi[k])
+            for k in sorted(active):
+                try:
+                    end(k, sims[k]._close(group_books[k], psi[k], int(prop.steps_done)))
+                except ResultExists as e:
+                    sims[k]._abort(group_books[k], e)
+                    end(k, e)
+        finally:
+            if bar is not None:
+                bar.close()
