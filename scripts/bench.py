@@ -172,8 +172,8 @@ for i in range(runs):
     jobs.append(job_from_dict(t))
 with tempfile.TemporaryDirectory() as tmp:
     # warm: numba's cache and FFTW wisdom loaded, as in a worker's second run
-    Simulation(job_from_dict({**copy.deepcopy(BATCH_JOB), "evolve": {"dt": 0.02, "duration": 0.2}})).run(tmp, progress=False)
-    BatchedRun([job_from_dict({**copy.deepcopy(BATCH_JOB), "evolve": {"dt": 0.02, "duration": 0.2}})] * 2).run(
+    Simulation(job_from_dict({**copy.deepcopy(BATCH_JOB), "evolve": {"dt": 0.02, "duration": 1.0}})).run(tmp, progress=False)
+    BatchedRun([job_from_dict({**copy.deepcopy(BATCH_JOB), "evolve": {"dt": 0.02, "duration": 1.0}})] * 2).run(
         [tmp + "/w1.nc", tmp + "/w2.nc"])
     t0 = time.perf_counter()
     if mode == "solo":

@@ -148,53 +148,72 @@ class BatchedRun:
             raise
         return outcomes
 
+    def _lanes(self, sims, group_books):
+        """The group split into lanes, one per core when one member's
+        transform is too small for threads: each lane is a batch of its
+        own (propagator, observer, psi), stepped in a thread of its own
+        (the transforms and kernels release the GIL)."""
+        from .fft import THREADS_MIN_POINTS, default_threads
+        s0 = sims[0].setup
+        nb = len(sims)
+        cores = s0.threads or default_threads()
+        n_lanes = max(1, min(nb, cores)) if s0.grid.size < THREADS_MIN_POINTS else 1
+        bounds = np.linspace(0, nb, n_lanes + 1).round().astype(int)
+        lanes = []
+        for lo, hi in zip(bounds[:-1], bounds[1:]):
+            if hi > lo:
+                lanes.append(_Lane(list(range(lo, hi)), [sims[k] for k in range(lo, hi)],
+                                   [group_books[k] for k in range(lo, hi)],
+                                   threads=1 if n_lanes > 1 else s0.threads))
+        return lanes
+
     def _run_group(self, members, books, outcomes, progress, on_sample, should_stop):
+        from concurrent.futures import ThreadPoolExecutor
         sims = [self.sims[i] for i in members]
         s0 = sims[0].setup
         nb = len(members)
-        transform = make_transform(s0.grid, s0.fft_backend if s0.scheme.in_place_transform else "scipy",
-                                   s0.dtype, s0.threads, members=nb)
-        _set_kernel_threads(transform.threads)
-        prop = s0.scheme(s0.hamiltonian, s0.dt, transform, [s.setup.absorber for s in sims], s0.dtype,
-                         members=nb)
-        observer = Observer(s0.grid, s0.mass, make_transform(s0.grid, s0.fft_backend, s0.dtype, s0.threads,
-                                                             members=nb),
-                            s0.detectors, np.stack([s.setup.psi0 for s in sims]), members=nb)
         group_books = [books[i] for i in members]
-        psi = prop.load(np.stack([b.psi for b in group_books]))
-        for b in group_books:
-            b.psi = None
-        prop.steps_done = group_books[0].steps
-        prop.absorbed[:] = np.stack([b.absorbed for b in group_books])
+        lanes = self._lanes(sims, group_books)
+        where = {k: (lane, j) for lane in lanes for j, k in enumerate(lane.positions)}
         active = set(range(nb))
-        done = start = int(prop.steps_done)
+        done = start = int(group_books[0].steps)
         total = s0.total_steps
+        t_now = lanes[0].prop.t
         bar = _progress(total, progress, f"batch of {nb}")
+        pool = ThreadPoolExecutor(len(lanes)) if len(lanes) > 1 else None
+
+        def each(fn):
+            return list(pool.map(fn, lanes)) if pool is not None else [fn(lane) for lane in lanes]
 
         def end(k, outcome):
             outcomes[members[k]] = outcome
             active.discard(k)
 
-        def record(values, t):
-            for k in sorted(active):
-                try:
-                    if done == start and group_books[k].fresh:
-                        sims[k]._observe(group_books[k], values[k], t, prop.absorbed[k])
-                        sims[k]._snapshot(group_books[k].writer, 0.0, psi[k])
-                    else:
-                        sims[k]._record(group_books[k], values[k], t, prop.absorbed[k], psi[k], done)
-                except RunFailed as e:
-                    sims[k]._abort(group_books[k], e)
-                    end(k, e)
+        def record():
+            for lane, values in zip(lanes, each(lambda lane: lane.measure())):
+                for j, k in enumerate(lane.positions):
+                    if k not in active:
+                        continue
+                    psi_k, absorbed_k = lane.psi[j], lane.prop.absorbed[j]
+                    try:
+                        if done == start and group_books[k].fresh:
+                            sims[k]._observe(group_books[k], values[j], t_now, absorbed_k)
+                            sims[k]._snapshot(group_books[k].writer, 0.0, psi_k)
+                        else:
+                            sims[k]._record(group_books[k], values[j], t_now, absorbed_k, psi_k, done)
+                    except RunFailed as e:
+                        sims[k]._abort(group_books[k], e)
+                        end(k, e)
 
         try:
             if group_books[0].fresh:
-                record(observer.measure_members(psi, s0.hamiltonian.potential(prop.t)), prop.t)
+                record()
             while done < total and active:
                 step = min(s0.sample_steps, total - done)
-                psi = prop.step(psi, step)
+                each(lambda lane: lane.step(step))
                 done += step
-                record(observer.measure_members(psi, s0.hamiltonian.potential(prop.t)), prop.t)
+                t_now = lanes[0].prop.t
+                record()
                 if bar is not None:
                     bar.update(step)
                 for k in sorted(active):
@@ -204,18 +223,52 @@ class BatchedRun:
                     break
                 for k in sorted(active):
                     book = group_books[k]
+                    lane, j = where[k]
                     if should_stop is not None and should_stop(members[k]):
-                        saved = sims[k]._checkpoint(book, done, prop.absorbed[k], psi[k], reopen=False) \
-                            if book.store is not None else None
+                        saved = sims[k]._checkpoint(book, done, lane.prop.absorbed[j], lane.psi[j],
+                                                    reopen=False) if book.store is not None else None
                         end(k, RunInterrupted(saved, done))
                     elif book.checkpoint_due():
-                        sims[k]._checkpoint(book, done, prop.absorbed[k], psi[k])
+                        sims[k]._checkpoint(book, done, lane.prop.absorbed[j], lane.psi[j])
             for k in sorted(active):
+                lane, j = where[k]
                 try:
-                    end(k, sims[k]._close(group_books[k], psi[k], int(prop.steps_done)))
+                    end(k, sims[k]._close(group_books[k], lane.psi[j], int(lane.prop.steps_done)))
                 except ResultExists as e:
                     sims[k]._abort(group_books[k], e)
                     end(k, e)
         finally:
+            if pool is not None:
+                pool.shutdown()
             if bar is not None:
                 bar.close()
+
+
+class _Lane:
+    """Members of a batch stepped by one propagator and measured by one
+    observer (positions: their places in the group)."""
+
+    def __init__(self, positions, sims, books, threads=None):
+        s0 = sims[0].setup
+        nb = len(sims)
+        self.positions = positions
+        backend = s0.fft_backend if s0.scheme.in_place_transform else "scipy"
+        transform = make_transform(s0.grid, backend, s0.dtype, threads, members=nb)
+        _set_kernel_threads(transform.threads)
+        self.prop = s0.scheme(s0.hamiltonian, s0.dt, transform, [s.setup.absorber for s in sims], s0.dtype,
+                              members=nb)
+        self.observer = Observer(s0.grid, s0.mass, make_transform(s0.grid, s0.fft_backend, s0.dtype,
+                                                                  transform.threads, members=nb),
+                                 s0.detectors, np.stack([s.setup.psi0 for s in sims]), members=nb)
+        self.psi = self.prop.load(np.stack([b.psi for b in books]))
+        for b in books:
+            b.psi = None
+        self.prop.steps_done = books[0].steps
+        self.prop.absorbed[:] = np.stack([b.absorbed for b in books])
+        self.potential = s0.hamiltonian.potential
+
+    def step(self, n: int) -> None:
+        self.psi = self.prop.step(self.psi, n)
+
+    def measure(self) -> list[dict]:
+        return self.observer.measure_members(self.psi, self.potential(self.prop.t))

@@ -147,7 +147,7 @@ def contract(phi, axis, value, deriv, a, d):
                         d[m, b, o, k] += dn * z
 
 
-@numba.njit(cache=True, parallel=True, fastmath=False)
+@numba.njit(cache=True, parallel=True, fastmath=False, nogil=True)
 def _density_into(psi, scale, out):
     for i in numba.prange(psi.size):
         z = psi[i]

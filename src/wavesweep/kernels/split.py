@@ -44,13 +44,14 @@ def _twins(fn):
     """(threaded, serial) numba builds of one kernel.  The serial copy gets
     its own qualified name: numba's disk cache is keyed by name and line,
     not by the ``parallel`` flag, so two builds of one function would load
-    each other's machine code."""
+    each other's machine code.  Both release the GIL (nogil): the lanes
+    of a batch step in threads of one process."""
     serial = types.FunctionType(fn.__code__, fn.__globals__, fn.__name__ + "_serial",
                                 fn.__defaults__, fn.__closure__)
     serial.__qualname__ = fn.__qualname__ + "_serial"
     serial.__doc__ = fn.__doc__
-    return (numba.njit(cache=True, parallel=True, fastmath=False)(fn),
-            numba.njit(cache=True, parallel=False, fastmath=False)(serial))
+    return (numba.njit(cache=True, parallel=True, fastmath=False, nogil=True)(fn),
+            numba.njit(cache=True, parallel=False, fastmath=False, nogil=True)(serial))
 
 
 # -- the kernels (pure functions of arrays; prange is range in the serial build)
@@ -209,7 +210,7 @@ def layer_loss(psi, w, out):
         out[r // (n0 * n1)] += part[r]
 
 
-@numba.njit(cache=True, parallel=True, fastmath=False)
+@numba.njit(cache=True, parallel=True, fastmath=False, nogil=True)
 def real_matvec(q, x, out):
     """out = q @ x for a real C-contiguous (n, n) matrix q and a complex vector x
     (the dense kinetic step of a radial grid; rows in parallel, no BLAS threads)."""

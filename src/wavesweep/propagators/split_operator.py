@@ -100,6 +100,9 @@ class SplitOperator(Propagator):
         self._absorbing = any(a is not None and a.active for a in self.absorbers)
         if self._absorbing:
             self._check_layers()
+        self._dv = self.grid.cell_volume
+        self._loss_out = np.zeros(self._nb)
+        self._slab_views: dict = {}
         w = np.asarray(self.weights) * self.dt
         # The distinct kicks (potential length, absorber length): the call's
         # ends, across steps, inside a step (no absorber).
@@ -268,15 +271,29 @@ class SplitOperator(Propagator):
         losses = self._losses.get(key)
         if losses is None:
             return 0.0
-        dv = self.grid.cell_volume
+        slabs = self._slab_views.get(id(psi4))
+        if slabs is None:   # the slabs of this psi's view, made once per array
+            lead = (slice(None),) * (4 - self.grid.ndim)
+            slabs = [psi4[lead + layer.slab] for layer in self.absorber.layers]
+            self._slab_views = {id(psi4): slabs}
+            self._slab_owner = psi4
+        out, kernel = self._loss_out, self._kernels.layer_loss
+        if self._nb == 1:   # one run: plain floats (numpy calls on 1-element arrays cost ~1 us each)
+            books, lost, dv = self.absorbed.reshape(-1), 0.0, self._dv
+            for n, (slab, lw) in enumerate(zip(slabs, losses)):
+                out[0] = 0.0
+                kernel(slab, lw, out)
+                taken = float(out[0])
+                books[n] += taken * dv
+                lost += taken
+            return lost
         books = self.absorbed.reshape(self._nb, -1)
-        lead = (slice(None),) * (4 - self.grid.ndim)
-        lost = np.zeros(self._nb)
-        for n, (layer, lw) in enumerate(zip(self.absorber.layers, losses)):
-            out = np.zeros(self._nb)
-            self._kernels.layer_loss(psi4[lead + layer.slab], lw, out)
-            books[:, n] += out * dv
-            lost += out
+        lost = 0.0
+        for n, (slab, lw) in enumerate(zip(slabs, losses)):
+            out[:] = 0.0
+            kernel(slab, lw, out)
+            books[:, n] += out * self._dv
+            lost = lost + out
         return lost
 
     def _measuring(self, lost) -> bool:
