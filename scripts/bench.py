@@ -207,6 +207,40 @@ def bench_batch(runs: int, repeats: int):
           f"(median over {repeats} rounds)")
 
 
+_START = r"""
+import sys, time
+t0 = float(sys.argv[1])
+from wavesweep.jobfile import job_from_dict
+from wavesweep.simulation import Setup
+job = job_from_dict({"grid": {"x": {"min": -60.0, "max": 60.0, "points": 2048}},
+    "potential": [{"kind": "barrier", "height": 0.5, "width": 1.0}],
+    "packet": {"center": -20.0, "width": 3.0, "momentum": 1.0},
+    "absorber": {"kind": "cap", "thickness": 10.0},
+    "evolve": {"dt": 0.02, "duration": 1.0}, "record": {"every": 0.1}, "detector": [{"name": "d", "x": 10.0}]})
+s = Setup(job)
+p, o = s.make_propagator(), s.make_observer()
+psi = p.step(p.load(s.psi0), 1)
+o.measure(psi, s.hamiltonian.static_potential)
+print(time.time() - t0)
+"""
+
+
+def bench_startup(repeats: int):
+    """Seconds from a fresh process's start to its first step and sample of
+    a job another process ran before (numba's disk cache, FFTW wisdom and
+    the CAP tuning cache warm): an absolute time, because the target is one."""
+    import subprocess
+    import sys
+    times = []
+    for i in range(repeats + 1):
+        out = subprocess.run([sys.executable, "-c", _START, str(time.time())], capture_output=True, text=True,
+                             check=True)
+        if i:   # the first process fills the caches
+            times.append(float(out.stdout.strip().splitlines()[-1]))
+    print(f"start-up of a second process to its first step (imports, set-up, cached kernels): median "
+          f"{statistics.median(times):.2f} s over {repeats}")
+
+
 def single_vs_double(grid, repeats, backend):
     """Step time (with recording every 10 steps) of double over single,
     median over rounds that time one after the other."""
@@ -398,6 +432,7 @@ def main():
         print(f"{name:<10} single precision vs double: {single_vs_double(grid, repeats, args.backend):.2f}x "
               "faster per step (recorded every 10 steps)")
     bench_batch(32, 1 if args.quick else 3)
+    bench_startup(3)
 
 
 if __name__ == "__main__":

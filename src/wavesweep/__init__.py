@@ -34,20 +34,20 @@ from .observables import Observer, Detector
 from .simulation import Setup, Simulation, run_job
 from .batched import BatchedRun, batch_key
 from .check import check_job
-from .analysis.spectra import stationary_states, autocorrelation_levels
-from .analysis import arrival_times, transmission
 from .batch.api import submit, work, status
-from .batch.collect import collect
 
-_VIZ = {"render_movie": "movie", "MovieOptions": "movie", "plot_result": "summary",
-        "plot_run": "summary", "plot_study": "summary", "plot_arrivals": "arrivals"}
+# Loaded when first asked for: analysis and collect need xarray (0.35 s to
+# import), figures and movies matplotlib; a worker that only steps needs neither.
+_LAZY = {"render_movie": ".viz.movie", "MovieOptions": ".viz.movie", "plot_result": ".viz.summary",
+         "plot_run": ".viz.summary", "plot_study": ".viz.summary", "plot_arrivals": ".viz.arrivals",
+         "stationary_states": ".analysis.spectra", "autocorrelation_levels": ".analysis.spectra",
+         "arrival_times": ".analysis", "transmission": ".analysis", "collect": ".batch.collect"}
 
 
 def __getattr__(name):
-    """Figures and movies load matplotlib only when first asked for."""
-    if name in _VIZ:
+    if name in _LAZY:
         import importlib
-        return getattr(importlib.import_module(f".viz.{_VIZ[name]}", __name__), name)
+        return getattr(importlib.import_module(_LAZY[name], __name__), name)
     raise AttributeError(f"module 'wavesweep' has no attribute {name!r}")
 
 
@@ -56,6 +56,6 @@ __all__ = [
     "__version__", "JobError", "RunFailed", "UnitSet", "Axis", "Grid", "Job", "load_job",
     "job_from_dict", "PotentialTerm", "POTENTIALS", "register_potential", "Propagator", "SCHEMES",
     "Strang", "Order4", "Chebyshev", "CrankNicolson", "Hamiltonian", "Observer", "Detector",
-    "Setup", "Simulation", "run_job", "check_job", "stationary_states", "autocorrelation_levels",
-    "arrival_times", "transmission", "submit", "work", "status", "collect", *_VIZ,
+    "Setup", "Simulation", "run_job", "check_job",
+    "submit", "work", "status", *_LAZY,
 ]

@@ -40,9 +40,18 @@ __all__ = ["Setup", "Simulation", "run_job"]
 
 @functools.lru_cache(maxsize=512)
 def tune_cap_strength(thickness, mass, e_min, e_max, power, periodic=False):
-    """Cached: both faces of an axis, and the runs of a study, often ask for
-    the same layer (a tuning costs about 0.3 s)."""
-    return _tune_cap_strength(thickness, mass, e_min, e_max, power, periodic=periodic)
+    """Cached in memory and on disk: both faces of an axis, the runs of a
+    study, and every run of the same job in a later process ask for the same
+    layer (a tuning costs 0.3-0.5 s, most of a worker's start-up)."""
+    from .absorbers.tuning import tuning_cache
+    key = repr((float(thickness), float(mass), float(e_min), float(e_max), float(power), bool(periodic)))
+    cache = tuning_cache()
+    hit = cache.get(key)
+    if hit is not None:
+        return hit
+    out = _tune_cap_strength(thickness, mass, e_min, e_max, power, periodic=periodic)
+    cache.put(key, out)
+    return out
 
 _log = logging.getLogger(__name__)
 

@@ -64,8 +64,6 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy.interpolate import CubicSpline
-from scipy.optimize import minimize_scalar
 
 from wavesweep.errors import JobError
 
@@ -329,6 +327,7 @@ def _layer_cells(depth, rate, mass, energies):
     # Exactly uniform knots measured from the inner edge.
     x = step * np.arange(depth.size)
     if depth.size >= 4:
+        from scipy.interpolate import CubicSpline   # here: scipy.interpolate costs 0.28 s to import
         profile = CubicSpline(x, rate, bc_type="not-a-knot")
     else:
         def profile(s, _x=x, _w=rate):
@@ -492,8 +491,66 @@ def tune_cap_strength(thickness, mass, e_min, e_max, power=2.0, samples=64,
             break
     i = int(np.argmin(values))
     lo, hi = grid[max(i - 1, 0)], grid[min(i + 1, len(values) - 1)]
+    from scipy.optimize import minimize_scalar
     res = minimize_scalar(worst, bounds=(lo, hi), method="bounded",
                           options={"xatol": 1e-3})
     if res.fun <= values[i]:
         return math.exp(res.x), float(res.fun)
     return math.exp(grid[i]), float(values[i])
+
+
+class _TuningCache:
+    """Tuned strengths on disk (``$WAVESWEEP_CACHE`` or the user cache
+    folder, beside the FFTW wisdom), keyed by the tuning's arguments and by
+    this module's source, so a change of the method never reuses old values.
+    Written by temporary file and rename; concurrent writers may drop each
+    other's entries, never corrupt the file."""
+
+    def __init__(self):
+        import hashlib
+        import os
+        from ..fft import wisdom_path
+        self.path = os.path.join(os.path.dirname(wisdom_path()), "cap-tuning.json")
+        with open(__file__, "rb") as f:
+            self.revision = hashlib.sha256(f.read()).hexdigest()[:16]
+        self._entries = None
+
+    def _load(self) -> dict:
+        import json
+        if self._entries is None:
+            try:
+                with open(self.path) as f:
+                    data = json.load(f)
+                self._entries = data.get(self.revision, {}) if isinstance(data, dict) else {}
+            except (OSError, ValueError):
+                self._entries = {}
+        return self._entries
+
+    def get(self, key: str):
+        hit = self._load().get(key)
+        return None if hit is None else (float(hit[0]), float(hit[1]))
+
+    def put(self, key: str, value) -> None:
+        import json
+        import os
+        import tempfile
+        entries = self._load()
+        entries[key] = [float(value[0]), float(value[1])]
+        try:
+            os.makedirs(os.path.dirname(self.path), exist_ok=True)
+            fd, tmp = tempfile.mkstemp(dir=os.path.dirname(self.path), prefix=".cap-tuning-")
+            with os.fdopen(fd, "w") as f:
+                json.dump({self.revision: entries}, f)
+            os.replace(tmp, self.path)
+        except OSError:
+            pass   # a read-only cache folder: tune again next time
+
+
+_CACHE = None
+
+
+def tuning_cache() -> _TuningCache:
+    global _CACHE
+    if _CACHE is None:
+        _CACHE = _TuningCache()
+    return _CACHE
