@@ -148,16 +148,23 @@ class BatchedRun:
             raise
         return outcomes
 
+    def lane_count(self, members: int) -> int:
+        """Lanes for a group of ``members``: one per core (``evolve.threads``
+        or ``WAVESWEEP_THREADS`` or all cores) when one member's grid is too
+        small for threaded transforms, else one."""
+        from .fft import THREADS_MIN_POINTS, default_threads
+        s0 = self.sims[0].setup
+        cores = s0.threads or default_threads()
+        return max(1, min(members, cores)) if s0.grid.size < THREADS_MIN_POINTS else 1
+
     def _lanes(self, sims, group_books):
         """The group split into lanes, one per core when one member's
         transform is too small for threads: each lane is a batch of its
         own (propagator, observer, psi), stepped in a thread of its own
         (the transforms and kernels release the GIL)."""
-        from .fft import THREADS_MIN_POINTS, default_threads
         s0 = sims[0].setup
         nb = len(sims)
-        cores = s0.threads or default_threads()
-        n_lanes = max(1, min(nb, cores)) if s0.grid.size < THREADS_MIN_POINTS else 1
+        n_lanes = self.lane_count(nb)
         bounds = np.linspace(0, nb, n_lanes + 1).round().astype(int)
         lanes = []
         for lo, hi in zip(bounds[:-1], bounds[1:]):

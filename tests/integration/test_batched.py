@@ -85,6 +85,21 @@ def test_members_write_the_files_of_solo_runs(tmp_path, table, precision, rtol):
         assert len(strengths) > 1   # the members had absorbers of their own
 
 
+def test_lanes_in_threads_write_the_files_of_solo_runs(tmp_path):
+    """With two cores for a batch of small grids the members are split into
+    two lanes stepped in threads of one process (scripts/test gives every
+    test one thread, so this one asks for two through evolve.threads)."""
+    table = copy.deepcopy(SWEEP_1D)
+    table["evolve"]["threads"] = 2
+    jobs = members(table, [0.8, 1.0, 1.25, 1.5, 1.7])
+    run = BatchedRun(jobs)
+    assert run.lane_count(len(jobs)) == 2
+    solo = [Simulation(j).run(tmp_path / "solo", progress=False) for j in jobs]
+    out = run.run([tmp_path / "batch" / p.name for p in solo])
+    for a, b in zip(solo, out):
+        assert_same_file(a, b, 1e-10)
+
+
 def test_an_interrupted_member_resumes_later_and_matches(tmp_path):
     jobs = members(SWEEP_1D, [0.9, 1.1, 1.3])
     policies = [CheckpointPolicy(tmp_path / f"ck{i}", every_seconds=3600.0) for i in range(3)]
