@@ -12,7 +12,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from .split import _twins
+from .split import _twins, row_indices
 
 __all__ = ["ObserveKernels", "observe_kernels_for", "density_of", "DENSITY_SUMS", "SPECTRUM_SUMS"]
 
@@ -30,10 +30,7 @@ def density_sums(psi, x0, x1, x2, v, psi0, has_psi0, out):
     rows = nb * n0 * n1
     part = np.zeros((rows, 6))
     for r in numba.prange(rows):
-        b = r // (n0 * n1)
-        ij = r % (n0 * n1)
-        i = ij // n1
-        j = ij % n1
+        b, i, j = row_indices(r, n0, n1)
         b0 = b if per_member else 0
         x_ij = x0[i] + x1[j]
         s0 = 0.0
@@ -75,15 +72,13 @@ def spectrum_sums(phi, t0, t1, t2, k0, k1, k2, out):
     rows = nb * n0 * n1
     part = np.zeros((rows, 2))
     for r in numba.prange(rows):
-        ij = r % (n0 * n1)
-        i = ij // n1
-        j = ij % n1
+        b, i, j = row_indices(r, n0, n1)
         t_ij = t0[i] + t1[j]
         k_ij = k0[i] + k1[j]
         s0 = 0.0
         s1 = 0.0
         for k in range(n2):
-            z = phi[r // (n0 * n1), i, j, k]
+            z = phi[b, i, j, k]
             d = z.real * z.real + z.imag * z.imag
             s0 += d * (t_ij + t2[k])
             s1 += d * (k_ij + k2[k])
@@ -111,10 +106,7 @@ def contract(phi, axis, value, deriv, a, d):
     nm = value.shape[0]
     if axis == 3:
         for r in numba.prange(nb * n0 * n1):
-            b = r // (n0 * n1)
-            ij = r % (n0 * n1)
-            i = ij // n1
-            j = ij % n1
+            b, i, j = row_indices(r, n0, n1)
             for m in range(nm):
                 sa = 0j
                 sd = 0j

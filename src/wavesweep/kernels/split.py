@@ -54,6 +54,23 @@ def _twins(fn):
             numba.njit(cache=True, parallel=False, fastmath=False, nogil=True)(serial))
 
 
+@numba.njit(cache=True, inline="always")
+def row_indices(r, n0, n1):
+    """(member, i, j) of row ``r`` of a (member, i, j, k) array: kernels run
+    over rows in parallel and along k inside."""
+    ij = r % (n0 * n1)
+    return r // (n0 * n1), ij // n1, ij % n1
+
+
+@numba.njit(cache=True, inline="always")
+def sum_rows(part, rows_per_member, out):
+    """out[b] = sum of part[r] over the rows of member b."""
+    for b in range(out.shape[0]):
+        out[b] = 0.0
+    for r in range(part.shape[0]):
+        out[r // rows_per_member] += part[r]
+
+
 # -- the kernels (pure functions of arrays; prange is range in the serial build)
 
 def kick(psi, factor, squared):
@@ -63,10 +80,7 @@ def kick(psi, factor, squared):
     per_member = factor.shape[0] > 1
     rows = nb * n0 * n1
     for r in numba.prange(rows):
-        b = r // (n0 * n1)
-        ij = r % (n0 * n1)
-        i = ij // n1
-        j = ij % n1
+        b, i, j = row_indices(r, n0, n1)
         bf = b if per_member else 0
         if squared:
             for k in range(n2):
@@ -95,10 +109,7 @@ def kick_dynamic(psi, factor, squared, ph0, ph1, ph2, g, coef, v, has_v, scale, 
     part_b = np.zeros(rows)
     part_a = np.zeros(rows)
     for r in numba.prange(rows):
-        b = r // (n0 * n1)
-        ij = r % (n0 * n1)
-        i = ij // n1
-        j = ij % n1
+        b, i, j = row_indices(r, n0, n1)
         bf = b if per_member else 0
         s = scale[b]
         p_ij = ph0[i] + ph1[j]
@@ -123,12 +134,8 @@ def kick_dynamic(psi, factor, squared, ph0, ph1, ph2, g, coef, v, has_v, scale, 
         part_b[r] = sb
         part_a[r] = sa
     if measure:
-        for b in range(nb):
-            before[b] = 0.0
-            after[b] = 0.0
-        for r in range(rows):
-            before[r // (n0 * n1)] += part_b[r]
-            after[r // (n0 * n1)] += part_a[r]
+        sum_rows(part_b, n0 * n1, before)
+        sum_rows(part_a, n0 * n1, after)
 
 
 def kick_measured(psi, factor, squared, scale, before, after):
@@ -140,10 +147,7 @@ def kick_measured(psi, factor, squared, scale, before, after):
     part_b = np.zeros(rows)
     part_a = np.zeros(rows)
     for r in numba.prange(rows):
-        b = r // (n0 * n1)
-        ij = r % (n0 * n1)
-        i = ij // n1
-        j = ij % n1
+        b, i, j = row_indices(r, n0, n1)
         bf = b if per_member else 0
         s = scale[b]
         sb = 0.0
@@ -159,12 +163,8 @@ def kick_measured(psi, factor, squared, scale, before, after):
             sa += z.real * z.real + z.imag * z.imag
         part_b[r] = sb
         part_a[r] = sa
-    for b in range(nb):
-        before[b] = 0.0
-        after[b] = 0.0
-    for r in range(rows):
-        before[r // (n0 * n1)] += part_b[r]
-        after[r // (n0 * n1)] += part_a[r]
+    sum_rows(part_b, n0 * n1, before)
+    sum_rows(part_a, n0 * n1, after)
 
 
 def kinetic(psi, e0, e12):
@@ -175,10 +175,7 @@ def kinetic(psi, e0, e12):
     nb, n0, n1, n2 = psi.shape
     rows = nb * n0 * n1
     for r in numba.prange(rows):
-        ij = r % (n0 * n1)
-        b = r // (n0 * n1)
-        i = ij // n1
-        j = ij % n1
+        b, i, j = row_indices(r, n0, n1)
         if n0 == 1:
             for k in range(n2):
                 psi[b, i, j, k] *= e12[j, k]
@@ -196,17 +193,14 @@ def layer_loss(psi, w, out):
     rows = nb * n0 * n1
     part = np.zeros(rows)
     for r in numba.prange(rows):
-        b = r // (n0 * n1)
-        ij = r % (n0 * n1)
-        i = ij // n1
-        j = ij % n1
+        b, i, j = row_indices(r, n0, n1)
         bw = b if per_member else 0
         s = 0.0
         for k in range(n2):
             z = psi[b, i, j, k]
             s += (z.real * z.real + z.imag * z.imag) * w[bw, i, j, k]
         part[r] = s
-    for r in range(rows):
+    for r in range(rows):   # adds to out (the books of several kicks)
         out[r // (n0 * n1)] += part[r]
 
 
