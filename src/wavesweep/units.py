@@ -17,6 +17,7 @@ is converted to atomic units on input, so the physics never sees the choice.
 """
 from __future__ import annotations
 
+import functools
 import math
 import re
 from dataclasses import dataclass
@@ -130,6 +131,19 @@ _TOKEN = re.compile(r"\s*(?:(?P<name>[A-Za-zµÅ_][A-Za-z0-9µÅ_]*)|(?P<pow>\*\
 
 
 def parse_unit(text: str, field: str = "unit") -> tuple[float, Dims]:
+    """See :func:`_parse_unit`; strings are cached (a run converts its
+    samples' units hundreds of times)."""
+    if isinstance(text, str) and isinstance(field, str):
+        return _parse_unit_cached(text, field)
+    return _parse_unit(text, field)
+
+
+@functools.lru_cache(maxsize=1024)
+def _parse_unit_cached(text: str, field: str) -> tuple[float, Dims]:
+    return _parse_unit(text, field)
+
+
+def _parse_unit(text: str, field: str = "unit") -> tuple[float, Dims]:
     """Parse a unit expression such as ``"nm"``, ``"meV/nm"``, ``"m_e*nm/fs"``,
     ``"1/fs"``, ``"fs^-1"`` or ``"nm**2"`` into (factor to atomic units, dims).
 
