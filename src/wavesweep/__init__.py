@@ -45,9 +45,11 @@ _LAZY = {"render_movie": ".viz.movie", "MovieOptions": ".viz.movie", "plot_resul
 
 
 def __getattr__(name):
+    import importlib
     if name in _LAZY:
-        import importlib
         return getattr(importlib.import_module(_LAZY[name], __name__), name)
+    if name in ("analysis", "viz"):   # subpackages not imported up front
+        return importlib.import_module(f".{name}", __name__)
     raise AttributeError(f"module 'wavesweep' has no attribute {name!r}")
 
 

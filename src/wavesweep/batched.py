@@ -112,7 +112,8 @@ class BatchedRun:
         self.sims = [Simulation(j, fft, threads) for j in jobs]
         self.fft, self.threads = fft, threads
 
-    def run(self, paths, progress: bool = False, on_sample=None, checkpoints=None, should_stop=None) -> list:
+    def run(self, paths, progress: bool = False, on_sample=None, checkpoints=None, should_stop=None,
+            on_end=None) -> list:
         """Propagate every member and write its result to ``paths[i]``.
 
         ``checkpoints`` (one :class:`~wavesweep.io.checkpoint.CheckpointPolicy`
@@ -121,7 +122,14 @@ class BatchedRun:
         stepped in groups, one group after the other.  ``on_sample(i, step,
         total, rate)`` follows every sample of member ``i``;
         ``should_stop(i)`` is asked after every sample before the last, and
-        True ends that member with a checkpoint (:class:`RunInterrupted`)."""
+        True ends that member with a checkpoint (:class:`RunInterrupted`);
+        ``on_end(i, outcome)`` is called as soon as member ``i`` ends.
+
+        An error that is not a member's own (a full disk, memory, a bug)
+        ends the members of the group it struck, with that exception as
+        their outcome; members already finished keep their results and
+        other groups still run.  Only an interrupt (KeyboardInterrupt)
+        propagates, after every unfinished member's partial file is gone."""
         n = len(self.sims)
         paths = [Path(p) for p in paths]
         checkpoints = list(checkpoints) if checkpoints is not None else [None] * n
@@ -129,18 +137,35 @@ class BatchedRun:
             raise ValueError(f"{n} jobs need {n} paths and {n} checkpoint policies")
         outcomes: list = [None] * n
         books = {}
+
+        def end(i, outcome):
+            outcomes[i] = outcome
+            if on_end is not None:
+                on_end(i, outcome)
+
         try:
             for i, (sim, path, policy) in enumerate(zip(self.sims, paths, checkpoints)):
-                book = sim._open(path, policy)
+                try:
+                    book = sim._open(path, policy)
+                except Exception as e:   # this member's folder, checkpoint, ...: its own outcome
+                    end(i, e)
+                    continue
                 if book is None:
-                    outcomes[i] = ResultExists(path)
+                    end(i, ResultExists(path))
                 else:
                     books[i] = book
             groups: dict[int, list[int]] = {}
             for i, book in books.items():
                 groups.setdefault(int(book.steps), []).append(i)
             for steps in sorted(groups):
-                self._run_group(groups[steps], books, outcomes, progress, on_sample, should_stop)
+                members = groups[steps]
+                try:
+                    self._run_group(members, books, outcomes, progress, on_sample, should_stop, end)
+                except Exception as e:
+                    for i in members:
+                        if outcomes[i] is None:
+                            self.sims[i]._abort(books[i], e)
+                            end(i, e)
         except BaseException as e:
             for i, book in books.items():
                 if outcomes[i] is None:
@@ -155,6 +180,8 @@ class BatchedRun:
         from .fft import THREADS_MIN_POINTS, default_threads
         s0 = self.sims[0].setup
         cores = s0.threads or default_threads()
+        if s0.grid.radial:   # the dense radial step is a threaded kernel of its own
+            return 1
         return max(1, min(members, cores)) if s0.grid.size < THREADS_MIN_POINTS else 1
 
     def _lanes(self, sims, group_books):
@@ -174,7 +201,7 @@ class BatchedRun:
                                    threads=1 if n_lanes > 1 else s0.threads))
         return lanes
 
-    def _run_group(self, members, books, outcomes, progress, on_sample, should_stop):
+    def _run_group(self, members, books, outcomes, progress, on_sample, should_stop, on_end):
         from concurrent.futures import ThreadPoolExecutor
         sims = [self.sims[i] for i in members]
         s0 = sims[0].setup
@@ -193,8 +220,8 @@ class BatchedRun:
             return list(pool.map(fn, lanes)) if pool is not None else [fn(lane) for lane in lanes]
 
         def end(k, outcome):
-            outcomes[members[k]] = outcome
             active.discard(k)
+            on_end(members[k], outcome)
 
         def record():
             for lane, values in zip(lanes, each(lambda lane: lane.measure())):
@@ -234,7 +261,9 @@ class BatchedRun:
                     if should_stop is not None and should_stop(members[k]):
                         saved = sims[k]._checkpoint(book, done, lane.prop.absorbed[j], lane.psi[j],
                                                     reopen=False) if book.store is not None else None
-                        end(k, RunInterrupted(saved, done))
+                        stopped = RunInterrupted(saved, done)
+                        sims[k]._abort(book, stopped)   # the partial file goes; the checkpoint stays
+                        end(k, stopped)
                     elif book.checkpoint_due():
                         sims[k]._checkpoint(book, done, lane.prop.absorbed[j], lane.psi[j])
             for k in sorted(active):

@@ -66,8 +66,9 @@ class Observer:
     moments, the potential energy and the autocorrelation; one transform
     and one pass over the coefficients give the kinetic energy and, on a
     periodic first axis, the mean momentum; each detector is one more pass
-    (spectral interpolation along its axis).  Sums are float64 whatever the
-    precision of psi."""
+    (spectral interpolation along its axis).  The reductions sum in float64
+    whatever the precision of psi; the detector products (BLAS) run in
+    psi's precision (complex64 in single-precision runs)."""
 
     def __init__(self, grid, mass: float, transform, detectors=(), psi0=None, members=None):
         from .kernels import observe_kernels_for, view4

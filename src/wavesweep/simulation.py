@@ -330,16 +330,17 @@ class Simulation:
         book = self._open(path, checkpoint)
         if book is None:
             raise ResultExists(path)
-        prop = s.make_propagator()
-        observer = s.make_observer()
-        psi, book.psi = prop.load(book.psi), None
-        prop.steps_done = book.steps
-        prop.absorbed[:] = book.absorbed
-        done = start = int(prop.steps_done)
-        bar = _progress(s.total_steps, progress, self.job.name)
-        if bar is not None and done:
-            bar.update(done)
-        try:
+        bar = None
+        try:   # from here on, anything that goes wrong removes the partial file
+            prop = s.make_propagator()
+            observer = s.make_observer()
+            psi, book.psi = prop.load(book.psi), None
+            prop.steps_done = book.steps
+            prop.absorbed[:] = book.absorbed
+            done = start = int(prop.steps_done)
+            bar = _progress(s.total_steps, progress, self.job.name)
+            if bar is not None and done:
+                bar.update(done)
             if book.fresh:
                 self._observe(book, observer.measure(psi, s.hamiltonian.potential(prop.t)), prop.t, prop.absorbed)
                 self._snapshot(book.writer, 0.0, psi)

@@ -209,3 +209,90 @@ def test_work_drains_a_study_in_batches_like_solo_runs(tmp_path):
         job = make_job(tomllib.loads(q.run(run["study"], run["run_id"])["job_toml"]))
         solo = Simulation(job).run(tmp_path / "solo", progress=False)
         assert_same_file(solo, q.result_path(run["study"], run["run_id"]), 1e-10)
+
+
+def test_stopped_members_leave_no_partial_file(tmp_path):
+    """Review finding: a member stopped with a checkpoint left its .part file."""
+    jobs = members(SWEEP_1D, [0.9, 1.1])
+    policies = [CheckpointPolicy(tmp_path / f"ck{i}", every_seconds=3600.0) for i in range(2)]
+    out = BatchedRun(jobs).run([tmp_path / "b" / f"{i}.nc" for i in range(2)], checkpoints=policies,
+                               should_stop=lambda i: True)
+    assert all(isinstance(o, RunInterrupted) and o.checkpoint is not None for o in out)
+    assert list((tmp_path / "b").glob(".*.part")) == []
+
+
+def test_a_solo_run_failing_in_its_set_up_leaves_no_partial_file(tmp_path, monkeypatch):
+    from wavesweep.simulation import Setup
+
+    def broken(self):
+        raise MemoryError
+    monkeypatch.setattr(Setup, "make_observer", broken)
+    with pytest.raises(MemoryError):
+        Simulation(members(SWEEP_1D, [1.0])[0]).run(tmp_path, progress=False)
+    assert list(tmp_path.glob(".*")) == []
+
+
+def test_errors_end_only_the_members_they_strike(tmp_path, monkeypatch):
+    """A member whose file cannot be opened, and a group that hits an error
+    after another group finished: each ends with its own outcome, reported
+    through on_end as it happens; the finished results stay."""
+    import wavesweep.batched as batched
+    jobs = members(SWEEP_1D, [0.9, 1.1, 1.3])
+    policies = [CheckpointPolicy(tmp_path / f"ck{i}", every_seconds=3600.0) for i in range(3)]
+    paths = [tmp_path / "b" / f"{i}.nc" for i in range(3)]
+    BatchedRun(jobs).run(paths, checkpoints=policies, should_stop=lambda i: i == 1)
+    paths[0].unlink()                       # member 0 starts afresh, member 1 resumes: two groups
+    (tmp_path / "blocked").write_text("a file where a folder should be")
+    paths[2] = tmp_path / "blocked" / "2.nc"
+    orig_init, orig_step = batched._Lane.__init__, batched._Lane.step
+
+    def init(self, positions, sims, books, threads=None):
+        self.resumed = books[0].steps > 0
+        orig_init(self, positions, sims, books, threads)
+
+    def step(self, n):
+        if self.resumed:
+            raise MemoryError
+        orig_step(self, n)
+    monkeypatch.setattr(batched._Lane, "__init__", init)
+    monkeypatch.setattr(batched._Lane, "step", step)
+    ended = []
+    out = BatchedRun(jobs).run(paths, checkpoints=policies, on_end=lambda i, o: ended.append(i))
+    assert out[0] == paths[0] and paths[0].exists()
+    assert isinstance(out[1], MemoryError)
+    assert type(out[2]).__name__ == "JobError"
+    assert sorted(ended) == [0, 1, 2] and ended[0] == 2     # the open error first, as it happened
+    assert list((tmp_path / "b").glob(".*.part")) == []
+
+
+def test_radial_batches_step_in_one_lane():
+    """The dense radial step is a threaded kernel of its own: no lanes."""
+    table = {"grid": {"r": {"min": 0.0, "max": 40.0, "points": 256}, "l": 0},
+             "potential": [{"kind": "harmonic", "omega": 0.2}],
+             "packet": {"center": 8.0, "width": 1.5, "momentum": 0.0},
+             "evolve": {"dt": 0.05, "duration": 1.0, "threads": 2}, "record": {"every": 0.5}}
+    jobs = [make_job({**copy.deepcopy(table), "packet": {"center": c, "width": 1.5, "momentum": 0.0}})
+            for c in (14.0, 16.0)]
+    assert BatchedRun(jobs).lane_count(2) == 1
+
+
+def test_claims_that_cannot_be_batched_go_back_to_the_queue(tmp_path):
+    """Review finding: a batch that could not be built kept its other claims
+    waiting without heartbeats; now the first runs alone and the rest are
+    released (first in line, the attempt not counted)."""
+    from wavesweep.batch.executors import WorkerSettings, execute_batch
+    from wavesweep.batch.queue import Queue
+    from wavesweep.batch.sweep import expand_study
+    table = copy.deepcopy(SWEEP_1D)
+    table["sweep"] = {"packet.momentum": {"start": 0.9, "stop": 1.3, "num": 3}}
+    q = Queue(tmp_path / "q")
+    q.submit(expand_study(table, name="s"))
+    claims = q.claim_batch("w", 8, batch_group)
+    assert len(claims) == 3
+    claims[0]["job_toml"] = claims[0]["job_toml"].replace("momentum = 0.9", "momentum = 0.95")
+    states = execute_batch(q, claims, "w", WorkerSettings())
+    assert states == ["failed", "queued", "queued"]
+    by_id = {r["run_id"]: r for r in q.runs()}
+    assert "hashes to" in by_id[claims[0]["run_id"]]["reason"]
+    assert [by_id[c["run_id"]]["state"] for c in claims[1:]] == ["queued", "queued"]
+    assert [by_id[c["run_id"]]["attempts"] for c in claims[1:]] == [0, 0]

@@ -521,14 +521,18 @@ class _TuningCache:
             try:
                 with open(self.path) as f:
                     data = json.load(f)
-                self._entries = data.get(self.revision, {}) if isinstance(data, dict) else {}
+                entries = data.get(self.revision) if isinstance(data, dict) else None
+                self._entries = entries if isinstance(entries, dict) else {}
             except (OSError, ValueError):
                 self._entries = {}
         return self._entries
 
     def get(self, key: str):
         hit = self._load().get(key)
-        return None if hit is None else (float(hit[0]), float(hit[1]))
+        try:
+            return None if hit is None else (float(hit[0]), float(hit[1]))
+        except (TypeError, ValueError, IndexError):
+            return None   # a damaged entry: tune again
 
     def put(self, key: str, value) -> None:
         import json

@@ -152,8 +152,10 @@ class SplitOperator(Propagator):
         the same as kicking with V - iW.  A kick twice as long as one already
         built is that one squared, in the kernel (no second array)."""
         tau, absorb = key
-        half = _key(tau / 2, absorb / 2)
-        if half in self._factors and self._factors[half][0] is not None and not self._factors[half][1]:
+        half = next((k for k, (arr, sq) in self._factors.items() if arr is not None and not sq
+                     and abs(2 * k[0] - tau) <= 1e-13 * abs(tau) and abs(2 * k[1] - absorb) <= 1e-13 * abs(tau)),
+                    None)   # by closeness: round(tau, 15) / 2 is not always round(tau / 2, 15)
+        if half is not None:
             self._factors[key] = (self._factors[half][0], True)
         else:
             self._factors[key] = (self._kick_array(tau, absorb), False)

@@ -167,8 +167,9 @@ def execute_claim(queue, claim: dict, worker: str, settings: WorkerSettings,
     return "done"
 
 
-def _fail(queue, claim, worker, reason, log_part, log_final, done, trace=None) -> str:
-    done.set()
+def _fail(queue, claim, worker, reason, log_part, log_final, done=None, trace=None) -> str:
+    if done is not None:
+        done.set()
     reason = " ".join(str(reason).split())   # one line
     _log(log_part, f"failed: {reason}")
     if trace:
@@ -190,22 +191,16 @@ def execute_batch(queue, claims: list[dict], worker: str, settings: WorkerSettin
                   stop_requested=lambda: False) -> list[str]:
     """Run claimed runs as one batch to their ends in the queue; returns
     their new states.  Each member keeps its own log, checkpoint and
-    outcome; if the jobs cannot be batched after all (a job error in one
-    of them), they run one after the other through :func:`execute_claim`."""
+    outcome, and ends in the queue as soon as it ends.  If the jobs cannot
+    be batched after all (an error building one of them), the first runs on
+    its own and the others go back to the queue (first in line, the attempt
+    not counted), so that no claim waits unattended."""
     from ...batched import BatchedRun
     from ...io.checkpoint import CheckpointPolicy, ResultExists
     from ...jobfile import job_from_dict
 
     if len(claims) == 1:
         return [execute_claim(queue, claims[0], worker, settings, stop_requested)]
-    try:
-        jobs = [job_from_dict(tomllib.loads(c["job_toml"])) for c in claims]
-        if any(j.run_id != c["run_id"] for j, c in zip(jobs, claims)):
-            raise JobError("", "a queued job text does not hash to its run id")
-        batch = BatchedRun(jobs)
-    except (JobError, ValueError):
-        return [execute_claim(queue, c, worker, settings, stop_requested) for c in claims]
-
     n = len(claims)
     parts, finals, results = [], [], []
     for c in claims:
@@ -218,67 +213,82 @@ def execute_batch(queue, claims: list[dict], worker: str, settings: WorkerSettin
         results.append(result)
     progress = [{"step": 0, "total": None, "rate": None} for _ in claims]
     lost = [False] * n
-    ended = [False] * n
+    states: list = [None] * n
     done = threading.Event()
 
-    def beat():
+    def beat():   # from before the set-up: building 32 members can take a while
         while not done.wait(settings.heartbeat_seconds):
             for i, c in enumerate(claims):
-                if ended[i] or lost[i]:
+                if states[i] is not None or lost[i]:
                     continue
                 p = progress[i]
                 if not queue.heartbeat(c["study"], c["run_id"], worker, p["step"], p["total"], p["rate"]):
                     lost[i] = True
 
-    def on_sample(i, step, total, rate):
-        progress[i].update(step=step, total=total, rate=rate)
-
-    def should_stop(i):
-        past = settings.until is not None and time.time() >= settings.until
-        return stop_requested() or past or lost[i]
-
     beater = threading.Thread(target=beat, name=f"heartbeat-batch-{claims[0]['run_id']}", daemon=True)
     beater.start()
     t0 = time.perf_counter()
-    states = []
-    try:
-        outcomes = batch.run(results, on_sample=on_sample, should_stop=should_stop,
-                             checkpoints=[CheckpointPolicy(Path(c["checkpoint"]), settings.checkpoint_seconds)
-                                          for c in claims])
-    except Exception as e:   # a bug or the machine: every member fails with the cause
-        done.set()
-        if isinstance(e, MemoryError):
-            reason = "out of memory"
-        elif isinstance(e, OSError):
-            reason = f"{e.strerror or e}" + (f" ({e.filename})" if e.filename else "")
-        else:
-            reason = f"{type(e).__name__}: {e}"
-        for i, c in enumerate(claims):
-            states.append(_fail(queue, c, worker, reason, parts[i], finals[i], done,
-                                traceback.format_exc()))
-        return states
-    finally:
-        done.set()   # an interrupt: the leases run out and the runs are requeued
-    done.set()
-    wall = time.perf_counter() - t0
-    for i, (c, outcome) in enumerate(zip(claims, outcomes)):
-        ended[i] = True
+
+    def finish(i, outcome):
+        """End member i in the queue the moment it ends."""
+        c = claims[i]
         study, run_id = c["study"], c["run_id"]
         if isinstance(outcome, RunInterrupted):
             if lost[i]:
                 _log(parts[i], "stopped: the queue gave this run to another worker or cancelled it")
-                states.append("lost")
+                states[i] = "lost"
             else:
                 _log(parts[i], f"interrupted at step {outcome.step}; checkpoint kept")
                 queue.release(study, run_id, worker, f"interrupted at step {outcome.step}")
-                states.append("queued")
-        elif isinstance(outcome, RunFailed):
-            states.append(_fail(queue, c, worker, outcome.reason, parts[i], finals[i], done))
-        else:
-            note = ("the result already exists; kept as it is" if isinstance(outcome, ResultExists)
-                    else f"done in {wall:.1f} s (batch of {n})")
-            _log(parts[i], note)
+                states[i] = "queued"
+        elif isinstance(outcome, ResultExists) or isinstance(outcome, Path):
+            wall = time.perf_counter() - t0
+            _log(parts[i], "the result already exists; kept as it is" if isinstance(outcome, ResultExists)
+                 else f"done in {wall:.1f} s (batch of {n}; the batch's wall time)")
             _finish_log(parts[i], finals[i])
             queue.complete(study, run_id, worker, wall)
-            states.append("done")
+            states[i] = "done"
+        else:
+            states[i] = _fail(queue, c, worker, _reason(outcome), parts[i], finals[i], None,
+                              None if isinstance(outcome, (RunFailed, JobError)) else
+                              "".join(traceback.format_exception(outcome)))
+
+    try:
+        try:
+            jobs = [job_from_dict(tomllib.loads(c["job_toml"])) for c in claims]
+            if any(j.run_id != c["run_id"] for j, c in zip(jobs, claims)):
+                raise JobError("", "a queued job text does not hash to its run id")
+            batch = BatchedRun(jobs)
+        except Exception:
+            done.set()
+            for i in range(1, n):
+                _log(parts[i], "not batched after all: back to the queue")
+                queue.release(claims[i]["study"], claims[i]["run_id"], worker, "not batched after all")
+            return [execute_claim(queue, claims[0], worker, settings, stop_requested)] + ["queued"] * (n - 1)
+
+        def on_sample(i, step, total, rate):
+            progress[i].update(step=step, total=total, rate=rate)
+
+        def should_stop(i):
+            past = settings.until is not None and time.time() >= settings.until
+            return stop_requested() or past or lost[i]
+
+        batch.run(results, on_sample=on_sample, should_stop=should_stop, on_end=finish,
+                  checkpoints=[CheckpointPolicy(Path(c["checkpoint"]), settings.checkpoint_seconds)
+                               for c in claims])
+    finally:
+        done.set()   # an interrupt: the leases run out and the runs are requeued
     return states
+
+
+def _reason(outcome) -> str:
+    """The one-line reason of a member's failure (as execute_claim words it)."""
+    if isinstance(outcome, RunFailed):
+        return outcome.reason
+    if isinstance(outcome, JobError):
+        return str(outcome)
+    if isinstance(outcome, MemoryError):
+        return "out of memory"
+    if isinstance(outcome, OSError):
+        return f"{outcome.strerror or outcome}" + (f" ({outcome.filename})" if outcome.filename else "")
+    return f"{type(outcome).__name__}: {outcome}"
