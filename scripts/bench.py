@@ -1,10 +1,14 @@
 """Split-operator step cost against the FFT floor (see scripts/bench).
 
-For each grid: the median time of a bare forward+inverse transform pair, of
-a strang step without recording, of a strang step with the recorded
-observables sampled every 10 steps, and of a plain numpy split-operator loop
-(numpy.fft, new arrays per operation) -- all measured in one run, reported as
-ratios, because the machine is shared and absolute times are noise.
+For each grid, in double and single precision: a strang step without
+recording and with the observables sampled every 10 steps, each against the
+bare forward+inverse pair of an identical transform timed before and after
+it; a plain numpy split-operator loop (numpy.fft, new arrays per operation)
+against the step; the peak memory of a whole run against the bytes of psi;
+single against double.  Then the throughput of a batched study against its
+runs one by one, and the start-up of a second process.  Ratios, medians over
+rounds: the machine is shared and absolute times are noise (the start-up is
+the exception: its target is absolute).
 """
 from __future__ import annotations
 
