@@ -17,7 +17,7 @@ WANT="$(cat "$ROOT/pyproject.toml" | sha256sum | cut -d' ' -f1)"
 if [ ! -f "$STAMP" ] || [ "$(cat "$STAMP")" != "$WANT" ] || ! "$VENV/bin/python" -c 'import wavesweep' 2>/dev/null; then
     echo "installing wavesweep and its dependencies into $VENV ..." >&2
     "$VENV/bin/python" -m pip install --quiet --upgrade pip >&2
-    "$VENV/bin/python" -m pip install --quiet -e "$ROOT[test,fast,video]" >&2
+    "$VENV/bin/python" -m pip install --quiet -e "$ROOT[test,fast,video,cluster]" >&2
     echo "$WANT" > "$STAMP"
 fi
 export PATH="$VENV/bin:$PATH"

@@ -55,6 +55,9 @@ def _parser() -> argparse.ArgumentParser:
     w.add_argument("--lease-seconds", type=float, default=60.0,
                    help="a run whose worker has not reported for this long is requeued")
     w.add_argument("--max-attempts", type=int, default=3, help="attempts before a run is failed")
+    w.add_argument("--dask", default=None, metavar="ADDRESS",
+                   help="run on the Dask cluster whose scheduler is at ADDRESS (tcp://host:8786), or "
+                        "local:N for N local worker processes")
     w.add_argument("--batch", type=int, default=32, metavar="N",
                    help="step up to N runs that differ only in their packet together (1: one at a time)")
 
@@ -203,7 +206,8 @@ def _work(args) -> int:
     if args.batch < 1:
         raise JobError("--batch", f"{args.batch} runs per batch; give 1 (no batching) or more")
     out = work(args.root, args.workers, args.until, checkpoint_seconds=60.0 * args.checkpoint_minutes,
-               lease_seconds=args.lease_seconds, max_attempts=args.max_attempts, batch=args.batch)
+               lease_seconds=args.lease_seconds, max_attempts=args.max_attempts, batch=args.batch,
+               dask=args.dask)
     if out.get("until_passed"):
         print(f"wavesweep work: --until {args.until} has passed; nothing claimed", file=sys.stderr)
     elif out.get("stopped"):

@@ -51,14 +51,17 @@ def parse_until(text: str | None, now: datetime | None = None) -> float | None:
         raise JobError("--until", f"{text!r} is not HH:MM or a date-time like 2026-12-02T07:00") from None
 
 
-def work(root=None, workers: int = 1, until: str | None = None, executor="local", **settings) -> dict:
+def work(root=None, workers: int = 1, until: str | None = None, executor="local", dask: str | None = None,
+         **settings) -> dict:
     """Drain the queue at ROOT with an executor (by name or class).
 
     Returns the executor's summary with what this drain did added:
     ``done``, ``failed`` and ``requeued`` (runs its workers finished,
     failed, or released when stopped, plus the runs of dead workers that
     it requeued or failed at the start), ``studies`` (the studies they
-    belong to), ``folders`` (where their results are) and ``root``."""
+    belong to), ``folders`` (where their results are) and ``root``.
+    ``dask``: drain on the Dask cluster at that scheduler address (or
+    ``local:N``, a LocalCluster of N worker processes) instead."""
     import socket
 
     from .executors import EXECUTORS, WorkerSettings
@@ -72,7 +75,12 @@ def work(root=None, workers: int = 1, until: str | None = None, executor="local"
     # before any worker starts: a read-only root would make each of them crash
     queue.check_writable(sorted({r["study"] for r in queue.runs() if r["state"] == "queued"}))
     since = queue.last_event()
-    ex = cls(queue.root, workers=workers, settings=WorkerSettings(until=deadline, **settings))
+    if dask is not None:
+        from .executors.cluster import DaskExecutor
+        cls = DaskExecutor
+        ex = DaskExecutor(queue.root, address=dask, settings=WorkerSettings(until=deadline, **settings))
+    else:
+        ex = cls(queue.root, workers=workers, settings=WorkerSettings(until=deadline, **settings))
     out = ex.drain()
     # the local executor names its workers HOST:PID:i after this process
     prefix = f"{socket.gethostname()}:{os.getpid()}:" if issubclass(cls, LocalExecutor) else None
