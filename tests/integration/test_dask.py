@@ -132,3 +132,44 @@ def test_a_killed_worker_s_run_resumes_and_ends_like_an_uninterrupted_one(tmp_pa
     assert_identical(want[victim["run_id"]], got[victim["run_id"]])
     log = Path(Queue(root).log_path(victim["study"], victim["run_id"])).read_text()
     assert log.count("attempt") >= 2   # it ran again after the kill
+
+
+def test_a_failing_run_keeps_its_reason_and_the_others_go_on(tmp_path):
+    """One run's potential turns non-finite mid-run (log of a negative number
+    once t > 2): it fails with its one-line reason; the others are done."""
+    table = copy.deepcopy(STUDY)
+    table["potential"] = [{"kind": "expression", "expression": "where(t > a, log(-1.0 - x * x), 0.0 * x)",
+                           "params": {"a": 2.0}}]
+    table["sweep"] = {"potential.0.params.a": [2.0, 100.0, 200.0]}
+    root = queued(tmp_path, table, "failing")
+    out = work(root, dask="local:2")
+    runs = {r["params"]["potential.0.params.a"]: r for r in Queue(root).runs()}
+    assert out["done"] == 2 and out["failed"] == 1
+    assert runs[2.0]["state"] == "failed" and "not finite" in runs[2.0]["reason"]
+    assert runs[100.0]["state"] == runs[200.0]["state"] == "done"
+
+
+def test_ctrl_c_leaves_the_queue_consistent_and_the_runs_resume(tmp_path):
+    """SIGINT to `work --dask local:2`: running runs checkpoint and go back to
+    the queue (exit 0); a second drain finishes them."""
+    table = copy.deepcopy(STUDY)
+    table["grid"]["x"].update({"min": -150.0, "max": 150.0, "points": 2048})
+    table["evolve"] = {"dt": 0.005, "duration": 10000.0}   # ~20 s a run: stopped well before the end
+    table["record"] = {"every": 10.0}
+    table["sweep"] = {"packet.momentum": {"start": 0.9, "stop": 1.2, "num": 2}}
+    root = queued(tmp_path, table, "interrupted")
+    proc = subprocess.Popen([sys.executable, "-m", "wavesweep", "work", "--root", str(root), "--dask", "local:2",
+                             "--checkpoint-minutes", "0.02"], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True)
+    q = Queue(root)
+    deadline = time.time() + 120
+    while time.time() < deadline and not any((r["step"] or 0) > 0 for r in q.runs()):
+        time.sleep(0.3)
+    time.sleep(1.5)   # past a checkpoint
+    proc.send_signal(signal.SIGINT)
+    out, err = proc.communicate(timeout=120)
+    assert proc.returncode == 0, err
+    assert {r["state"] for r in q.runs()} == {"queued"}
+    assert all(r["attempts"] == 0 for r in q.runs())   # a stop does not count as an attempt
+    assert work(root, dask="local:2")["done"] == 2
+    assert {r["state"] for r in q.runs()} == {"done"}
