@@ -201,8 +201,12 @@ class DaskExecutor(Executor):
                         settle(fut, claim)
                     else:
                         p = progress.get((claim["study"], claim["run_id"]), {})
-                        queue.heartbeat(claim["study"], claim["run_id"], name, p.get("step"), p.get("total"),
-                                        p.get("rate"))
+                        if not queue.heartbeat(claim["study"], claim["run_id"], name, p.get("step"),
+                                               p.get("total"), p.get("rate")):
+                            # cancelled or requeued elsewhere: forget it (a task already running
+                            # finishes on its worker; its result never overwrites another's)
+                            fut.cancel()
+                            del pending[fut]
                 claim_more()
         finally:
             if handlers:
