@@ -342,7 +342,7 @@ def check_job(job: Job, trial_seconds: float = 1.0) -> Report:
         # psi0, psi, the observer's buffer, the kick factors (Strang: one,
         # its whole kick is the half kick squared), V and W in float64, half
         # a psi of transients (density frames, the final state); measured
-        # 5.4x psi at 128^3 for Strang (scripts/bench)
+        # 5.2x psi at 128^3 for Strang (scripts/bench)
         n_kicks = {"strang": 1, "order4": 2}.get(setup.scheme.name, 3)
         w_arrays = 1 if setup.absorber.active else 0
         estimate = psi_bytes * (3.5 + n_kicks) + setup.grid.size * 8 * (1 + w_arrays)

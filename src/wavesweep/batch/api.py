@@ -69,6 +69,9 @@ def work(root=None, workers: int = 1, until: str | None = None, executor="local"
 
     if workers < 1:
         raise JobError("--workers", f"must be at least 1, got {workers}")
+    if dask is not None and workers != 1:
+        raise JobError("--workers", "with --dask the cluster's workers run the study; drop --workers "
+                                    "(use --dask local:N for N local worker processes)")
     queue = existing_queue(root)
     deadline = parse_until(until)
     cls = EXECUTORS[executor] if isinstance(executor, str) else executor

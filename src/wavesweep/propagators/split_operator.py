@@ -264,6 +264,7 @@ class SplitOperator(Propagator):
                         if full else _EMPTY_TERMS)
         self._full_f = [f for _, f in full]
         self._general = list(h.general)
+        self._mesh = grid.mesh()
         self._view_shape = view4(np.empty(grid.shape, bool), grid.ndim).shape[1:]
 
     # -- the kicks ------------------------------------------------------------
@@ -337,7 +338,7 @@ class SplitOperator(Propagator):
         coef = np.array([sum(tj * f(t) for tj, t in pieces) for f in self._full_f], dtype=float)
         v, has_v = _NO_V, False
         if self._general:
-            mesh = self.grid.mesh()
+            mesh = self._mesh   # made once: the coordinate arrays do not change per kick
             total = 0.0
             for tj, t in pieces:
                 for term in self._general:
