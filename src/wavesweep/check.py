@@ -22,10 +22,9 @@ from __future__ import annotations
 
 import math
 import time as _time
-from dataclasses import dataclass, field
-
 import numpy as np
 
+from .adequacy import Finding, Report
 from .absorbers.tuning import cap_profile, layer_scattering, return_probability
 from .errors import JobError
 from .fft import make_transform
@@ -33,51 +32,6 @@ from .jobfile import Job
 from .states import central_momenta, momentum_spread
 
 __all__ = ["Finding", "Report", "check_job", "representability"]
-
-
-@dataclass
-class Finding:
-    topic: str
-    level: str        # "ok", "warn", "error"
-    message: str
-    values: dict = field(default_factory=dict)
-    field: str = ""   # the job field to change, for an error ("packet.center")
-
-
-@dataclass
-class Report:
-    title: str
-    findings: list
-
-    @property
-    def errors(self):
-        return [f for f in self.findings if f.level == "error"]
-
-    def text(self) -> str:
-        mark = {"ok": "  ok ", "warn": "WARN ", "error": "ERROR"}
-        lines = [f"check: {self.title}"]
-        lines += [f"{mark[f.level]} {f.topic:<10} {f.message}" for f in self.findings]
-        n_w = sum(f.level == "warn" for f in self.findings)
-        lines.append(f"{len(self.errors)} error(s), {n_w} warning(s)")
-        return "\n".join(lines)
-
-    def as_dict(self) -> dict:
-        """Plain JSON-ready data (numpy numbers as Python ones, non-finite as None)."""
-        return _plain({"title": self.title, "findings": [dict(f.__dict__) for f in self.findings]})
-
-
-def _plain(obj):
-    if isinstance(obj, dict):
-        return {str(k): _plain(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_plain(v) for v in obj]
-    if isinstance(obj, (bool, np.bool_)):
-        return bool(obj)
-    if isinstance(obj, (int, np.integer)):
-        return int(obj)
-    if isinstance(obj, (float, np.floating)):
-        return float(obj) if math.isfinite(obj) else None
-    return obj
 
 
 def _gaussian_parts(packet):
