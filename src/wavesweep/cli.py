@@ -32,6 +32,8 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--quiet", action="store_true", help="no progress bar")
     r.add_argument("--fft", default=None, choices=("auto", "scipy", "pyfftw"),
                    help="FFT backend (default: evolve.fft of the job, else auto)")
+    r.add_argument("--force", action="store_true",
+                   help="run even when `wavesweep check` finds errors (they are printed as warnings)")
 
     c = sub.add_parser("check", help="is the grid and time step adequate? memory, disk, time")
     c.add_argument("job")
@@ -45,6 +47,8 @@ def _parser() -> argparse.ArgumentParser:
     sb.add_argument("--root", default=None, help=root_help)
     sb.add_argument("--study", default=None, help="study name (default: the job file's name)")
     sb.add_argument("--set", action="append", default=[], metavar="KEY=VALUE")
+    sb.add_argument("--force", action="store_true",
+                    help="queue even when `wavesweep check` finds errors at some sweep points")
 
     w = sub.add_parser("work", help="run queued runs with worker processes")
     w.add_argument("--root", default=None, help=root_help)
@@ -163,7 +167,10 @@ def _run(args) -> int:
     from .batch.sweep import load_study
     from .simulation import Simulation
 
+    from .check import preflight
+
     study = load_study(args.job, args.set)   # validates every run before any starts
+    _warn("run", preflight(study.runs, force=args.force))   # judges every run before any starts
     n = len(study.runs)
     for i, spec in enumerate(study.runs, 1):
         if n > 1 and not args.quiet:
@@ -175,10 +182,17 @@ def _run(args) -> int:
 
 
 def _check(args) -> int:
-    from .check import check_job
-    from .jobfile import load_job
+    from .batch.sweep import load_study
+    from .check import check_study
 
-    report = check_job(load_job(args.job, args.set), trial_seconds=args.trial_seconds)
+    study = load_study(args.job, args.set)
+    progress = None
+    if len(study.runs) > 1 and not args.json:
+        def progress(n, total):
+            print(f"\rcheck: point {n + 1}/{total}", end="", file=sys.stderr, flush=True)
+    report = check_study(study, trial_seconds=args.trial_seconds, progress=progress)
+    if progress:
+        print(file=sys.stderr)
     if args.json:
         print(json.dumps(report.as_dict()))
     else:
@@ -193,7 +207,8 @@ def _check(args) -> int:
 def _submit(args) -> int:
     from .batch.api import default_root, submit
 
-    out = submit(args.job, args.root, args.study, args.set)
+    out = submit(args.job, args.root, args.study, args.set, force=args.force)
+    _warn("submit", out.get("warnings", []))
     print(f"{out['study']}: {out['runs']} runs; added {out['added']}, already queued or done "
           f"{out['existing']}, reused from other studies {out['reused']} "
           f"(root {default_root(args.root)})")

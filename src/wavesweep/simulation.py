@@ -20,6 +20,7 @@ import numpy as np
 
 from . import __version__
 from .absorbers.layers import Absorber
+from .adequacy import dynamics, representability
 from .absorbers.tuning import tune_cap_strength as _tune_cap_strength
 from .errors import JobError, RunFailed, RunInterrupted
 from .fft import make_transform
@@ -79,7 +80,6 @@ class Setup:
         self.dtype = np.complex64 if ev["precision"] == "single" else np.complex128
         self.terms = [self._term(i, p) for i, p in enumerate(t["potential"])]
         self.packet = self._packet_atomic(t["packet"])
-        from .check import representability
         representability(self)  # before the absorber's tuning squares the packet's momenta
         self.psi0 = build_state(self.packet, self.grid, self.mass,
                                 length_unit=(u.factor("length"), u.unit_label("length")), terms=self.terms)
@@ -122,71 +122,14 @@ class Setup:
             p["trap_terms"] = [self._term(i, tab, f"{name}.potential") for i, tab in enumerate(table["potential"])]
         return p
 
-    def momentum_window(self) -> list[tuple[float, float]]:
-        """Per axis (p_lo, p_hi) covering the packet's momenta (+/- 6 sigma_p),
-        atomic units; for superpositions the union of the parts."""
-        def window(p):
-            if p["kind"] == "gaussian":
-                p0 = central_momenta(p, self.mass, self.grid.ndim, "packet")
-                return [(c - 6 * momentum_spread(w), c + 6 * momentum_spread(w)) for c, w in zip(p0, p["width"])]
-            if p["kind"] == "superposition":
-                parts = [window(s) for s in p["packets"]]
-                return [(min(w[i][0] for w in parts), max(w[i][1] for w in parts)) for i in range(self.grid.ndim)]
-            # a state from a file: measure its momentum content
-            return self._measured_window()
-        return window(self.packet)
-
-    def _measured_window(self):
-        out = []
-        for i, ax in enumerate(self.grid.axes):
-            c = np.fft.fft(self.psi0, axis=i)
-            other = tuple(j for j in range(self.grid.ndim) if j != i)
-            w = np.sum(np.abs(c) ** 2, axis=other) if other else np.abs(c) ** 2
-            k = 2 * np.pi * np.fft.fftfreq(ax.points, ax.dx)
-            keep = k[w > 1e-12 * w.max()]
-            out.append((float(keep.min()), float(keep.max())))
-        return out
-
-    def energy_window(self, axis: int, face: str | None = None) -> tuple[float, float]:
-        """Kinetic energies (hartree) along one axis that the absorber must
-        take *inside its layers*: the packet's momentum window, shifted by the
-        potential drop from the packet to each layer of that axis (a packet
-        running down a step arrives faster: review finding, return 9e-4
-        instead of 3e-7 when tuned for the energies at the start), and floored
-        where the wavelength reaches the layer thickness (slower parts cannot
-        be absorbed by any layer of that thickness; ``check`` says so)."""
-        lo, hi = self.momentum_window()[axis]
-        pmax = max(abs(lo), abs(hi))
-        pmin = 0.0 if lo <= 0 <= hi else min(abs(lo), abs(hi))
-        th = self.units.to_atomic(self.job.table["absorber"]["thickness"], "length")
-        e_lo, e_hi = pmin**2 / (2 * self.mass), pmax**2 / (2 * self.mass)
-        drops = self._layer_drops(axis, th, face) or [0.0]
-        e_lo = min(max(e_lo + d, 0.0) for d in drops)
-        e_hi = max(e_hi + d for d in drops)
-        e_floor = (2 * math.pi / th) ** 2 / (2 * self.mass)
-        e_lo = max(e_lo, e_floor)
-        e_hi = max(e_hi, 4 * e_lo)
-        return e_lo, e_hi
-
-    def _layer_drops(self, axis: int, th: float, face: str | None = None) -> list[float]:
-        """V at the packet minus the mean V in each absorbing layer of an axis
-        (or only ``face``'s), in hartree: the kinetic energy gained on the way."""
-        v = self.hamiltonian_static_potential()
-        dens = np.abs(self.psi0) ** 2
-        v_packet = float(np.sum(v * dens) / np.sum(dens))
-        ax = self.grid.axes[axis]
-        x = ax.coordinates
-        out = []
-        sides = {"+": x > ax.max - th, "-": x < ax.min + th}
-        if self.grid.radial:
-            sides.pop("-")   # no layer at r = 0
-        for side, inside in sides.items():
-            if face is not None and face != f"{ax.name}{side}":
-                continue
-            idx = np.nonzero(inside)[0]
-            if idx.size:
-                out.append(v_packet - float(np.take(v, idx, axis=axis).mean()))
-        return out
+    def energy_window(self, axis: int, face: str) -> tuple[float, float]:
+        """Kinetic energies (hartree) normal to ``face`` that its absorbing
+        layer must take over the run (:func:`wavesweep.adequacy.dynamics`:
+        the packet's momenta shifted by the potential drop to the layer,
+        widened by what classical trajectories under V(r, t) bring there,
+        by diffraction where V couples the axes and by electrons a field
+        frees, floored where the wavelength reaches the layer thickness)."""
+        return dynamics(self).windows[face]
 
     def hamiltonian_static_potential(self) -> np.ndarray:
         """Static V on the grid (hartree), before the Hamiltonian exists."""

@@ -261,7 +261,7 @@ def _arrivals(ds, detector):
                                  "to the job and run it again")
     if detector is not None and detector not in names:
         raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
-    from ..check import splitting_warning
+    from ..adequacy import splitting_warning
 
     uc = result_units(ds)
     setup = result_setup(ds)

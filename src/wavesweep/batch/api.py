@@ -18,15 +18,19 @@ def default_root(root=None) -> Path:
     return Path(root or os.environ.get("WAVESWEEP_ROOT") or "wavesweep-runs")
 
 
-def submit(job_path, root=None, study: str | None = None, overrides=()) -> dict:
-    """Validate every run of a job file's study and queue the new ones.
-    Nothing is queued when any run is invalid (a JobError)."""
+def submit(job_path, root=None, study: str | None = None, overrides=(), force: bool = False) -> dict:
+    """Validate and judge every run of a job file's study and queue the new
+    ones.  Nothing is queued when any run is invalid, or when ``wavesweep
+    check`` finds an error at any point unless ``force`` (a JobError);
+    ``warnings`` lists the warnings, one line per criterion."""
+    from ..check import preflight
     from .queue import Queue
     from .sweep import load_study
 
     st = load_study(job_path, overrides, name=study)
+    warnings = preflight(st.runs, force=force)
     counts = Queue(default_root(root)).submit(st)
-    return {"study": st.name, "runs": len(st.runs), **counts}
+    return {"study": st.name, "runs": len(st.runs), **counts, "warnings": warnings}
 
 
 def parse_until(text: str | None, now: datetime | None = None) -> float | None:

@@ -277,6 +277,8 @@ class Slits(PotentialTerm):
         "opening_width": Field("length", positive=True),
         "axis": _AXIS,
         "across": Field("str", None, "axis along which the openings lie (default: the second)"),
+        "smoothing": Field("length", 0.0, nonnegative=True,
+                           doc="tanh edge length of the wall and its openings (0: sharp)"),
     }
 
     def validate(self):
@@ -293,6 +295,16 @@ class Slits(PotentialTerm):
         if across not in names or across == names[self.axis_of()]:
             raise JobError(f"{self.ctx.field}.across", f"must be another axis of {', '.join(names)}")
         y = mesh[across]
+        s = self.p.get("smoothing") or 0.0
+        if s > 0:   # tanh edges: the wall's spectrum falls off exponentially (resolvable)
+            half = self.p["thickness"] / 2
+            d = x - self.p["position"]
+            wall = _sharp_or_smooth(d + half, s) * _sharp_or_smooth(half - d, s)
+            hole = np.zeros(np.shape(y))
+            for c in self.open_at:
+                w = self.p["opening_width"] / 2
+                hole = np.maximum(hole, _sharp_or_smooth(y - c + w, s) * _sharp_or_smooth(c + w - y, s))
+            return self.p["height"] * wall * (1.0 - hole)
         wall = np.abs(x - self.p["position"]) < self.p["thickness"] / 2
         hole = np.zeros(np.broadcast_shapes(np.shape(y)), bool)
         for c in self.open_at:
