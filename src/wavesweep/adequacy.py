@@ -176,11 +176,13 @@ def packet_moments(setup) -> list[Moments]:
         x0.append(m)
         sx.append(math.sqrt(max(float(np.sum(line * (x - m) ** 2)), 0.0)) or ax.dx)
         k, w = momentum_marginal(setup.psi0, grid, i)
-        if ax.boundary != "periodic":   # standing waves: +k and -k alike
-            k, w = np.concatenate([-k[::-1], k]), np.concatenate([w[::-1], w]) / 2
-        mp = float(np.sum(w * k))
+        # a box axis holds standing waves: +k and -k alike, mean 0; the spread
+        # is read from the tail (the k beyond which TAIL_6 lies), so that
+        # p0 +/- 6 sigma_p spans what the state holds to that tail
+        mp = float(np.sum(w * k)) if ax.boundary == "periodic" else 0.0
         p0.append(mp)
-        sp.append(math.sqrt(max(float(np.sum(w * (k - mp) ** 2)), 0.0)) or 2 * math.pi / ax.length)
+        reach = measured_momentum_reach(setup.psi0, grid, TAIL_6)[i]
+        sp.append(max(reach - abs(mp), 0.0) / 6.0 or 2 * math.pi / ax.length)
     return [Moments(np.array(x0), np.array(sx), np.array(p0), np.array(sp))]
 
 
@@ -315,6 +317,8 @@ class Reach:
     motion normal to the face with which trajectories enter its absorbing
     layer (absent: none arrived); ``visited``: per axis (lowest, highest)
     coordinate the trajectories reached outside the layers (bohr);
+    ``edges_reached``: per axis, whether a trajectory reached a grid edge
+    (wrapping round a periodic axis, or reflecting off a box wall);
     ``time_steps``: classical steps taken."""
 
     momentum: np.ndarray
@@ -322,6 +326,7 @@ class Reach:
     sampled: np.ndarray
     arrivals: dict
     visited: list
+    edges_reached: list
     time_steps: int
 
 
@@ -375,8 +380,12 @@ def classical_reach(setup, n_random: int = 96, seed: int = 1) -> Reach | None:
     dx_min = min(ax.dx for ax in grid.axes)
     omega = _fastest_carrier(setup)
     t, steps = 0.0, 0
-    f = force.force(x, 0.0)
+    try:
+        f = force.force(x, 0.0)
+    except (ArithmeticError, ValueError):
+        return None
     lo_seen, hi_seen = x.min(axis=0), x.max(axis=0)
+    edges_reached = [False] * grid.ndim
     while t < duration and alive.any() and steps < 4 * MAX_CLASSICAL_STEPS:
         v_max = float(np.abs(p[alive]).max()) / m if alive.any() else 0.0
         a_max = float(np.abs(f[alive]).max()) / m if alive.any() else 0.0
@@ -390,8 +399,14 @@ def classical_reach(setup, n_random: int = 96, seed: int = 1) -> Reach | None:
         tau = min(tau, duration - t)
         p_half = p + 0.5 * tau * f
         x_new = x + tau * p_half / m
+        for i, ax in enumerate(grid.axes):   # which edges the ensemble reaches
+            crossing = alive & ((x_new[:, i] >= ax.max) | (x_new[:, i] < ax.min))
+            edges_reached[i] = edges_reached[i] or bool(crossing.any())
         x_new, p_half = _walls(x_new, p_half, grid, layers)
-        f_new = force.force(x_new, t + tau)
+        try:
+            f_new = force.force(x_new, t + tau)
+        except (ArithmeticError, ValueError):   # V(r, t) itself fails there (JobError included):
+            break                               # the run will say so; judge what came before
         p_new = p_half + 0.5 * tau * f_new
         if static:
             allowed = np.maximum(energy - force.potential(x_new, 0.0), 0.0)
@@ -418,7 +433,8 @@ def classical_reach(setup, n_random: int = 96, seed: int = 1) -> Reach | None:
                     arrivals[face] = (min(lo, float(e.min())), max(hi, float(e.max())))
             alive &= ~entered
     sampled = peak[random]
-    return Reach(peak.max(axis=0), peak[0], sampled, arrivals, list(zip(lo_seen, hi_seen)), steps)
+    return Reach(peak.max(axis=0), peak[0], sampled, arrivals, list(zip(lo_seen, hi_seen)), edges_reached,
+                 steps)
 
 
 def _fastest_carrier(setup) -> float:
@@ -724,6 +740,7 @@ def momentum_findings(setup, dyn: Dynamics) -> list[Finding]:
         out.append(Finding("momentum", level, msg,
                            {"axis": ax.name, "k_max": kmax / pf, "packet_reach": i6 / pf,
                             "run_reach": r6 / pf, "share_beyond": share, "centre_beyond": centre,
+                            "measured": not all_gaussian(setup.packet),
                             "points_needed": points_for(ax, r6)},
                            field=f"grid.{ax.name}.points"))
     return out
@@ -909,8 +926,10 @@ def time_step_finding(setup, dyn: Dynamics) -> Finding:
         msg += f"; use dt <= {dt_ok / tf:.3g} {T}"
         if v_span * dt > 1e3 * math.pi:
             msg += "; a potential phase this large usually means an energy unit is not the one meant ([units])"
+    e_packet = sum(r**2 for r in dyn.initial[6]) / (2 * setup.mass)
     return Finding("time step", level, msg,
-                   {"packet_phase": kin_phase, "potential_phase": pot_phase, "grid_phase":
+                   {"packet_phase": e_packet * dt, "run_phase": kin_phase, "potential_phase": pot_phase,
+                    "grid_phase":
                     setup.grid.kinetic_max(setup.mass) * dt, "grid_potential_phase": v_span * dt},
                    field="evolve.dt")
 
@@ -959,7 +978,9 @@ def resolution_finding(setup) -> Finding | None:
         text = ", ".join(f"{n}: {a:.1e} (tail ratio {b:.2f})" for n, (a, b) in ratios.items())
         return Finding("resolution", "ok",
                        f"V's spectral power above half the resolved wave numbers {text}: its features are "
-                       f"resolved (power falls off faster than a sharp edge's)", {"ratios": ratios},
+                       f"resolved (power falls off faster than a sharp edge's)",
+                       {"unresolved_weight": max((a for a, _ in ratios.values()), default=0.0),
+                        "ratios": ratios},
                        field=f"grid.{setup.grid.axes[0].name}.points")
     return Finding("resolution", "warn",
                    f"{axis.name}: V has features sharper than the grid resolves ({worst:.1e} of its spectral power "
@@ -1006,11 +1027,25 @@ def absorber_findings(setup, dyn: Dynamics) -> list[Finding]:
     ef, E = u.factor("energy"), u.unit_label("energy")
     table = setup.job.table
     if not setup.absorber.active:
-        box = all(ax.boundary == "box" for ax in setup.grid.axes)
-        return [Finding("absorber", "ok" if box else "warn",
-                        "no absorber: probability reaching the edges "
-                        + ("reflects off the walls" if box else "wraps around the periodic grid"),
-                        field="absorber.kind")]
+        out = []
+        for i, ax in enumerate(setup.grid.axes):
+            reached = True if dyn.reach is None else dyn.reach.edges_reached[i]
+            if ax.boundary == "box" or setup.grid.radial:
+                out.append(Finding("absorber", "ok", f"no absorber: on {ax.name} what reaches the walls "
+                                   "reflects off them (a box)", {"axis": ax.name, "edges_reached": reached},
+                                   field="absorber.kind"))
+            elif reached:
+                out.append(Finding("absorber", "warn",
+                                   f"no absorber: on {ax.name} the packet reaches the edges within the run "
+                                   "(classical trajectories of its phase-space ensemble) and wraps round the "
+                                   "periodic grid; add [absorber] kind = 'cap' with a thickness, or a longer axis",
+                                   {"axis": ax.name, "edges_reached": reached}, field="absorber.kind"))
+            else:
+                out.append(Finding("absorber", "ok",
+                                   f"no absorber: on {ax.name} the packet's phase-space ensemble (to 3 sigma_x, "
+                                   "6 sigma_p) stays off the edges over the run",
+                                   {"axis": ax.name, "edges_reached": reached}, field="absorber.kind"))
+        return out
     th = setup.absorber.thickness
     depth = np.linspace(0.0, th, 513)
     out = []

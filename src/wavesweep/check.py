@@ -19,9 +19,13 @@ __all__ = ["Finding", "Report", "check_job", "check_study", "preflight", "splitt
 
 
 def _units_finding(job: Job) -> Finding:
-    describe = getattr(job.units, "describe", None)
-    text = describe() if describe else ", ".join(f"{k} {v}" for k, v in job.units.as_table().items())
-    return Finding("units", "ok", text or "atomic units", {"units": job.units.as_table()})
+    u = job.units
+    describe = getattr(u, "describe", None)
+    atomic = {"length": "bohr", "time": "au", "energy": "hartree", "mass": "m_e"}
+    text = describe() if describe else ", ".join(
+        f"{k} {u.unit_label(k)} (= {u.factor(k):.6g} {atomic[k]})" for k in ("length", "time", "energy", "mass"))
+    factors = {f"{kind}_in_atomic_units": u.factor(kind) for kind in ("length", "time", "energy", "mass")}
+    return Finding("units", "ok", text or "atomic units", {"units": u.as_table(), **factors})
 
 
 def _scheme_findings(setup) -> list[Finding]:
