@@ -23,7 +23,10 @@ from test_arrivals import FREE
 from test_scattering import barrier_job, barrier_transmission
 from wavesweep.analysis.transmission import UNCERTAINTY_TARGET, transmission
 from wavesweep.cli import main
+from wavesweep.jobfile import load_job
 from wavesweep.simulation import Simulation
+
+DEMO = __import__("pathlib").Path(__file__).resolve().parents[2] / "jobs" / "kestrel-diode.toml"
 
 
 def _barrier(duration):
@@ -83,12 +86,12 @@ def test_a_run_ended_early_gives_t_of_e_with_its_uncertainty(short_run):
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("duration", [70.0, 82.0, 100.0])
+@pytest.mark.parametrize("duration", [70.0, 82.0])
 def test_the_uncertainty_covers_what_a_longer_run_changes(tmp_path, short_run, long_run, duration):
-    """Honesty: the same job ended early (|psi|^2 at the end 3e-4, 6e-6,
-    3e-8 of its peak) and run to the end; where the packet has weight, the
-    two T(E) differ by less than their uncertainties (measured: at most
-    0.74 of them).  The long run's uncertainty is small: below the target
+    """Honesty: the same job ended early (|psi|^2 at the end 3e-4 and 6e-6
+    of its peak) and run to the end; where the packet has weight, the two
+    T(E) differ by less than their uncertainties (measured: at most 0.74 of
+    them; 0.63 when ended at 3e-8).  The long run's uncertainty is small: below the target
     and at the absorbers' floor (measured 1.8e-5)."""
     short = short_run if duration == 82.0 else _run(_barrier(duration), tmp_path)
     s = transmission(short)["energy_resolved"]
@@ -111,6 +114,27 @@ def test_the_duration_needed_settles_t(tmp_path, short_run):
     duration = 0.2 * math.ceil(needed / 0.2)               # whole record intervals
     er = transmission(_run(_barrier(duration), tmp_path))["energy_resolved"]
     assert er["largest_uncertainty"] < 2 * UNCERTAINTY_TARGET
+
+
+@pytest.mark.slow
+def test_a_ringing_resonance_is_covered_and_its_decay_sets_the_duration(tmp_path):
+    """The demo double barrier rings at its resonance (~42 meV) long after
+    the packet has gone: at 2000 fs |psi|^2 at "after" is still 4e-2 of its
+    peak.  T(E) from 2000 fs and from 8150 fs differ by less than their
+    uncertainties (measured 0.91 of them, at the resonance), and both runs
+    ask for about the same duration: the resonance's decay, not free flight,
+    sets it (measured 14020 and 14370 fs; a run of 14030 fs is settled to
+    1.3e-4)."""
+    runs = [transmission(Simulation(load_job(DEMO, [f"evolve.duration={d}"])).run(
+        tmp_path / str(d), progress=False))["energy_resolved"] for d in (2000, 8150)]
+    short, long = runs
+    keep = short["weight"] > 1e-2
+    diff = np.abs(short["T"] - long["T"])[keep]
+    assert np.all(diff <= (short["T_uncertainty"] + long["T_uncertainty"])[keep])
+    assert short["largest_uncertainty"] > 0.1 and long["largest_uncertainty"] < 0.02   # 0.55, 8.6e-3
+    assert short["time_units"] == "fs"
+    assert short["duration_needed"] == pytest.approx(long["duration_needed"], rel=0.2)
+    assert short["duration_needed"] > 8150
 
 
 @pytest.mark.parametrize("duration", [40.0, 45.0])
