@@ -354,7 +354,7 @@ def _still_to_come(psi, x, v_static, mass, x_d, direction, v_inc, energy, k_inc,
     upstream = direction * (x_d - x) > 0
     v_det = float(np.interp(x_d, x, v_static))
     k_rms = math.sqrt(float(np.mean(k_inc**2)))
-    ramp = 4.0 / k_rms          # as in arrivals: a cut much shorter than a wavelength
+    ramp = 4.0 / k_rms          # as in arrivals: shorter than a wavelength, 2 pi / k
     e_kin = float(np.mean(energy)) - v_inc
     varies = upstream & (np.abs(v_static - v_inc) > VARIES * abs(e_kin))
     before = 0.5 * (1 + np.tanh(direction * (x_d - x) / ramp))
