@@ -321,8 +321,10 @@ def _transmission(args) -> int:
     er, tot = out["energy_resolved"], out["totals"]
     if args.json:
         body = {"energy": er.get("energy", []), "T": er.get("T", []),
+                "T_uncertainty": er.get("T_uncertainty", []),
                 "energy_units": er.get("energy_units"), "weight": er.get("weight", []),
-                "detector": er.get("detector"), "totals": tot}
+                "detector": er.get("detector"), "duration_needed": er.get("duration_needed"),
+                "time_units": out["time_units"], "totals": tot}
         if "reason" in er:
             body["reason"] = er["reason"]
         print(json.dumps(_finite(body)))
@@ -335,10 +337,11 @@ def _transmission(args) -> int:
         print(f"still on the grid: {tot['final_norm']:.6g}")
         if "T" in er:
             print(f"\nT(E) at detector {er['detector']!r}:")
-            print(f"{'E (' + er['energy_units'] + ')':>14}{'T':>12}{'weight':>10}")
+            print(f"{'E (' + er['energy_units'] + ')':>14}{'T':>12}{'+/-':>10}{'weight':>10}")
             step = max(1, len(er["energy"]) // 20)
-            for e, t, w in list(zip(er["energy"], er["T"], er["weight"]))[::step]:
-                print(f"{e:14.6g}{t:12.6f}{w:10.3f}")
+            rows = zip(er["energy"], er["T"], er["T_uncertainty"], er["weight"])
+            for e, t, dt, w in list(rows)[::step]:
+                print(f"{e:14.6g}{t:12.6f}{dt:10.1e}{w:10.3f}")
     if "reason" in er and not er.get("requested"):
         out["warnings"].append(f"no energy-resolved T: {er['reason']}")
     _warn("transmission", out["warnings"])

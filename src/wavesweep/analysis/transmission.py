@@ -22,11 +22,56 @@ v and v' the speeds where the packet started and at the detector, phi the
 momentum amplitude of psi(t=0) (continuous normalisation, int |phi|^2 dk =
 1).  This is the flux-based energy analysis of e.g. Tannor, Introduction to
 Quantum Mechanics: A Time-Dependent Perspective (2007), ch. 7 (from
-memory); it needs the whole transmitted amplitude inside the run (the flux
-at the detector must have died out) and the incident packet entirely on the
-other side of the scatterer at t = 0.  The samples are a trapezoidal sum,
-which is exact up to aliasing: the band of energies the packet holds must be
-narrower than 2 pi hbar / (sample spacing).
+memory); it needs the incident packet entirely on the other side of the
+scatterer at t = 0.  The samples are a trapezoidal sum, which is exact up
+to aliasing: the band of energies the packet holds must be narrower than
+2 pi hbar / (sample spacing).
+
+A run that ends before the whole transmitted amplitude has passed the
+detector still gives T(E), with an uncertainty per energy.  The integral
+misses its tail b(E) = int_{t_end}^inf psi(x_d, t) exp(i E t) dt / 2 pi,
+and with T = c |a|^2 (c = 2 pi v v' / |phi|^2, a the recorded transform)
+the full T = c |a + b|^2 differs from it by at most
+
+    dT = 2 sqrt(T B) + B,        sqrt(B) = sqrt(c) |b| <= sqrt(B_cut) + sqrt(B_come),
+
+the phase of b being unknown.  Two parts bound |b|, both from the run:
+
+- the cut: the record stops while psi(x_d) is still psi_end, turning at
+  the energy E_end then arriving (-hbar d arg psi / dt).  Continued as
+  psi_end exp(-i E_end s - gamma s), gamma the decay rate of |psi| over the
+  last samples, the tail integrates to |psi_end| / (2 pi |E - E_end + i gamma|),
+  a leak into every energy (integration by parts, as for any truncated
+  Fourier integral);
+- what is still to come: the final state's probability that may yet cross
+  the detector, per energy, U(E) (_still_to_come: moving towards it before
+  it, either way where V still varies, coming back from beyond it).
+  At most U(E) dE of probability arrives with energies in dE, against the
+  incident |phi|^2 dk = |phi|^2 dE / (hbar v): B_come = U(E) hbar v / |phi|^2.
+  Slow components come last, so U sits at low energies.
+
+dT is an estimate, not a rigorous bound (the continuation of the tail is a
+model, and the momentum of a part cut out of psi by smooth ramps is blurred
+by about 1 / ramp length).  Measured against the same job run longer
+(rectangular barrier, free packet, a smooth step down, and a double barrier
+ringing at its resonance; runs ended when |psi(x_d)|^2 was 4e-2 .. 1e-8
+of its peak), |T_short - T_long| stayed below 0.93 of dT_short + dT_long
+at every energy of weight above 1 %.  What the absorbers send back sets
+the floor: about 1e-5 (T of a run ended at |psi|^2 = 3e-10 of its peak
+changes by 1.4e-5 when it goes on 30 hbar/E_h longer).
+
+``duration_needed`` (job time unit) is the run length that would bring dT
+below UNCERTAINTY_TARGET wherever the weight is above WEIGHT_FLOOR.  dT,
+led by 2 sqrt(T B), scales with the amplitude still arriving.  While the
+packet disperses, the energy E(t) arriving falls with time and that
+amplitude goes as sqrt(w(E_end)), w the incident weight: the run must last
+until the energy of weight w(E_end) (target / dT_max)^2 arrives, at the
+time the free-flight law t(E) = t0 + D / v'(E), fitted to the record's
+peak and its end, gives.  A resonance instead rings at a fixed energy and
+decays as exp(-gamma t): ln(dT_max / target) / gamma more.  (Measured:
+asked for 107 hbar/E_h, a barrier run was then settled to 1.4e-4; the
+double barrier asked for 14020 fs from 2000 fs and 14370 fs from 8150 fs,
+and at 14030 fs it was settled to 1.3e-4.)
 """
 from __future__ import annotations
 
@@ -37,12 +82,17 @@ import numpy as np
 from ..errors import JobError
 from ..io.results import open_result, result_setup, result_units
 
-__all__ = ["transmission", "energy_resolved_transmission", "transmission_totals"]
+__all__ = ["transmission", "energy_resolved_transmission", "transmission_totals", "truncation_warning",
+           "UNCERTAINTY_TARGET"]
 
 WEIGHT_FLOOR = 1e-2       # report T(E) where the incident weight is above 1 % of its peak
 BAND_FLOOR = 1e-8         # the band that must not alias: weight above 1e-8 of the peak
 AMPLITUDE_AT_START = 1e-6  # |psi(x_d, 0)|^2 / max |psi(x_d, t)|^2 allowed
 NOTHING_CROSSED = 1e-9     # net probability through a detector below which nothing arrived
+AMPLITUDE_AT_END = 1e-6    # |psi(x_d, t_end)|^2 / peak below which the record has died out
+UNCERTAINTY_TARGET = 1e-4  # T(E) counts as settled when uncertain by less (duration_needed aims here)
+RINGING = 0.3              # E(t) at the end falls slower than this x free flight: a resonance rings
+VARIES = 1e-6              # V differs from its value at the start by more (x mean kinetic energy)
 
 
 def transmission_totals(ds, setup) -> dict:
@@ -73,12 +123,18 @@ def transmission_totals(ds, setup) -> dict:
 def energy_resolved_transmission(ds, setup, detector: str | None = None, points: int = 201) -> dict:
     """T(E) at a detector beyond the scatterer (see the module notes).
 
-    Returns energies (job units), T, the incident weight |phi|^2 per energy
-    normalised to its peak, and the detector used.  Without ``detector`` the
-    detectors outside the absorbing layers are tried from the farthest along
-    the packet's motion back, and the first that can give T(E) is used.
+    Returns energies (job units), T, its uncertainty ``T_uncertainty`` (what
+    had not passed the detector by the end), the incident weight |phi|^2 per
+    energy normalised to its peak, the detector used, ``duration_needed``
+    (job time unit; None when T is settled to UNCERTAINTY_TARGET wherever
+    the weight is above WEIGHT_FLOOR), ``largest_uncertainty`` there and
+    ``uncertain_span`` (the energies where it is above the target, or None).
+    Without ``detector`` the detectors outside the absorbing layers are
+    tried from the farthest along the packet's motion back: the first whose
+    T(E) is settled is used, else the first that gives an estimate.
     Raises JobError when none can (multi-D, time-dependent potential, too
-    coarse sampling, no amplitude recorded, the flux not died out)."""
+    coarse sampling, no amplitude recorded, the flux not died out in a run
+    that kept no final state)."""
     from .arrivals import _layer_holding
 
     if setup.grid.ndim != 1 or setup.grid.radial:
@@ -116,12 +172,18 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
     if not usable:
         raise JobError("RUN.nc", "every detector lies inside an absorbing layer; T(E) needs one "
                                  "between the scatterer and the layer")
-    first = None
+    first, estimate = None, None
     for i in usable:
         try:
-            return _at_detector(ds, setup, i, k_all, w_all, points)
+            found = _at_detector(ds, setup, i, k_all, w_all, points)
         except JobError as e:
             first = first or e
+            continue
+        if found["uncertain_span"] is None:
+            return found
+        estimate = estimate or found          # a nearer detector may have seen it all
+    if estimate is not None:
+        return estimate
     raise first
 
 
@@ -150,10 +212,14 @@ def _at_detector(ds, setup, j, k_all, w_all, points) -> dict:
     if abs(amp[0]) ** 2 > AMPLITUDE_AT_START * peak:
         raise JobError("packet.center", f"the initial packet already overlaps detector {name!r}; "
                                         "start it farther from the detector")
-    if abs(amp[-1]) ** 2 > 1e-6 * peak:
+    psi_end = _final_psi(ds, uc)
+    end_ratio = abs(amp[-1]) ** 2 / peak
+    if psi_end is None and end_ratio > AMPLITUDE_AT_END:
+        # what is still to come cannot be told without the final state
         raise JobError("evolve.duration", f"psi at detector {name!r} has not died out by the end "
-                                          f"(|psi|^2 at {abs(amp[-1]) ** 2 / peak:.1e} of its peak); "
-                                          "extend evolve.duration")
+                                          f"(|psi|^2 at {end_ratio:.1e} of its peak) and the run kept no "
+                                          "final state to tell what is still to come; extend "
+                                          "evolve.duration or set record.final_state = true")
 
     v_static = setup.hamiltonian.static_potential
     v_start = float(np.sum(v_static * dens0) / np.sum(dens0))
@@ -184,15 +250,204 @@ def _at_detector(ds, setup, j, k_all, w_all, points) -> dict:
     if not np.allclose(np.diff(t), dt_rec, rtol=1e-6, atol=0):
         wq = np.gradient(t)                 # uneven samples (a resumed run is still even)
     amp_e = (np.exp(1j * np.outer(energy, t)) @ (amp * wq)) / (2 * math.pi)
-    T = 2 * math.pi * v_in * v_out * np.abs(amp_e) ** 2 / np.abs(phi) ** 2
-    T[kinetic_det <= 0] = 0.0
+    to_T = 2 * math.pi * v_in * v_out / np.abs(phi) ** 2     # |amplitude per energy|^2 -> T
+    T = to_T * np.abs(amp_e) ** 2
+    passes = kinetic_det > 0
+    T[~passes] = 0.0
+
+    # --- what had not passed the detector by the end (module notes) ---
+    e_center = 0.5 * float(e_band.min() + e_band.max())
+    e_local = _local_energy(amp, dt_rec, e_center)
+    tail_cut = to_T * _cut_tail(amp, t, energy, e_local[-1]) ** 2
+    if psi_end is not None:
+        to_come = _still_to_come(psi_end, x, v_static, mass, x_d, direction, v_start, energy, k,
+                                 _far_layer(setup, direction))
+        incident = np.abs(phi) ** 2 * mass / np.abs(k)       # |phi|^2 dk/dE, per hartree
+        tail_come = to_come / incident
+    else:                                   # died out (checked above): the cut bounds the rest
+        tail_come = np.zeros_like(energy)
+    tail = np.sqrt(tail_cut) + np.sqrt(tail_come)          # |tail amplitude| in units of sqrt(T)
+    uncertainty = 2 * np.sqrt(np.maximum(T, 0.0)) * tail + tail**2
+    uncertainty = np.minimum(uncertainty, np.maximum(T, np.abs(1 - T)))   # T lies in [0, 1]
+    uncertainty[~passes] = 0.0
+    weight = np.abs(phi) ** 2 / w_fwd.max()
+    significant = weight > WEIGHT_FLOOR
+    largest = float(np.max(uncertainty[significant], initial=0.0))
+    largest_at = float(energy[significant][np.argmax(uncertainty[significant])]) if significant.any() \
+        else math.nan
+    needed, span = None, None
+    if largest > UNCERTAINTY_TARGET:
+        needed = _duration_needed(t, amp, e_local, k_all, w_fwd, v_start, v_det, mass,
+                                  largest) / uc["time"]
+        over = energy[significant & (uncertainty > UNCERTAINTY_TARGET)] / uc["energy"]
+        span = (float(over.min()), float(over.max()))
     return {
         "detector": name,
         "energy": energy / uc["energy"],
         "T": T,
-        "weight": np.abs(phi) ** 2 / w_fwd.max(),
+        "T_uncertainty": uncertainty,
+        "weight": weight,
         "energy_units": uc["energy_label"],
+        "duration": float(t[-1] - t[0]) / uc["time"],
+        "duration_needed": needed,
+        "time_units": uc["time_label"],
+        "largest_uncertainty": largest,
+        "largest_at": largest_at / uc["energy"],
+        "uncertain_span": span,
+        "peak_energy": float(energy[np.argmax(weight)]) / uc["energy"],
     }
+
+
+def _final_psi(ds, uc) -> np.ndarray | None:
+    """psi at the end of the run (atomic units, 1D), or None if not kept."""
+    if "psi_real" not in ds:
+        return None
+    return (np.asarray(ds["psi_real"].values, float)
+            + 1j * np.asarray(ds["psi_imag"].values, float)) / math.sqrt(uc["length"])
+
+
+def _local_energy(amp, dt, e_center) -> np.ndarray:
+    """E(t) = -hbar d(arg psi)/dt at the detector, between samples (the
+    energy arriving then), on the branch nearest the packet's band (the
+    band is narrower than 2 pi / dt, checked before)."""
+    turn = np.angle(amp[1:] * np.conj(amp[:-1]))
+    e = -turn / dt
+    return e + 2 * math.pi / dt * np.round((e_center - e) * dt / (2 * math.pi))
+
+
+def _cut_tail(amp, t, energy, e_end) -> np.ndarray:
+    """|int_{t_end}^inf psi(x_d, t) exp(i E t) dt| / (2 pi) for a tail that
+    goes on as psi_end exp(-i E_end (t - t_end) - gamma (t - t_end)): the
+    sharp end of the record leaks |psi_end| / (2 pi |E - E_end|) into every
+    energy.  gamma is the decay rate of |psi| over the last samples (at
+    least 1 / the record's length)."""
+    a = np.abs(amp)
+    last = max(2, len(a) // 50)              # the last 2 % of the samples
+    span = float(t[-1] - t[-last])
+    gamma = math.log(a[-last] / a[-1]) / span if a[-1] > 0 and a[-last] > 0 and span > 0 else 0.0
+    gamma = max(gamma, 1.0 / float(t[-1] - t[0]))
+    return a[-1] / (2 * math.pi * np.sqrt((energy - e_end) ** 2 + gamma**2))
+
+
+def _still_to_come(psi, x, v_static, mass, x_d, direction, v_inc, energy, k_inc,
+                   far_layer) -> np.ndarray:
+    """Probability per energy (per hartree) of the final state that may
+    still cross the detector.  Smooth ramps split psi into three parts:
+
+    - the run-up: before the detector and beyond the far side of where V
+      differs from its value at the start (V flat there): counted moving
+      towards the detector, E = V_start + k^2 / 2m;
+    - the scattering zone, between that side and the detector: counted
+      moving either way (the potential may still turn it round),
+      E = V(x_d) + k^2 / 2m (what crosses the detector has that kinetic
+      energy there);
+    - past the detector and before the absorbing layer there (inner edge
+      ``far_layer``, None without one): counted moving back towards it
+      (what the layer or a structure further on has sent back),
+      E = V(x_d) + k^2 / 2m.  Inside that layer the damping bends the
+      outgoing wave into all momenta: it is not counted there.
+
+    Each part's momentum density |c(k)|^2 (int |c|^2 dk = its probability)
+    becomes a density in energy with dk/dE = m / |k|.  The layer behind
+    the packet is counted like the rest: what it passes round a periodic
+    grid or sends back is still to come."""
+    upstream = direction * (x_d - x) > 0
+    v_det = float(np.interp(x_d, x, v_static))
+    k_rms = math.sqrt(float(np.mean(k_inc**2)))
+    ramp = 4.0 / k_rms          # as in arrivals: shorter than a wavelength, 2 pi / k
+    e_kin = float(np.mean(energy)) - v_inc
+    varies = upstream & (np.abs(v_static - v_inc) > VARIES * abs(e_kin))
+    before = 0.5 * (1 + np.tanh(direction * (x_d - x) / ramp))
+    if varies.any():
+        far = float(x[varies][np.argmin(direction * x[varies])])
+        run_up = 0.5 * (1 + np.tanh(direction * (far - x) / ramp))
+    else:
+        run_up = np.ones_like(x)
+    parts = ((before * run_up, v_inc, (direction,)),
+             (before * (1 - run_up), v_det, (direction, -direction)),
+             ((1 - before) * _short_of(x, far_layer, direction, ramp), v_det, (-direction,)))
+    out = np.zeros_like(energy)
+    for share, v_part, signs in parts:
+        part = psi * share
+        if not np.any(np.abs(part) > 0):
+            continue
+        kinetic = energy - v_part
+        moving = kinetic > 0
+        kk = np.sqrt(2 * mass * kinetic[moving])
+        for sign in signs:
+            out[moving] += np.abs(_momentum_amplitude(part, x, sign * kk)) ** 2 * mass / kk
+    return out
+
+
+def _short_of(x, edge, direction, ramp) -> np.ndarray:
+    """1 before ``edge`` (going in ``direction``), 0 after, a tanh ramp between."""
+    if edge is None:
+        return np.ones_like(x)
+    return 0.5 * (1 + np.tanh(direction * (edge - x) / ramp))
+
+
+def _far_layer(setup, direction) -> float | None:
+    """Inner edge of the absorbing layer the packet runs into (1D), or None."""
+    from .arrivals import _layer_edge
+
+    face = "x+" if direction > 0 else "x-"
+    ab = setup.absorber
+    if not ab.active or face not in [layer.name for layer in ab.layers]:
+        return None
+    return _layer_edge(setup, face)
+
+
+def _duration_needed(t, amp, e_local, k_all, w_fwd, v_start, v_det, mass, largest) -> float:
+    """Run length (atomic units, from the first sample) after which the
+    uncertainty would be below UNCERTAINTY_TARGET (module notes).
+
+    Two regimes, told apart by how fast the energy arriving at the end
+    falls.  Dispersing (the slow parts come last): E(t) follows the
+    free-flight law t(E) = t0 + D / v(E), v the speed at the detector,
+    fitted to the record's peak and its end, and the run lasts until the
+    energy of incident weight w(E_end) (target / largest)^2 arrives.
+    Ringing (a resonance decays at a fixed energy, E(t) falling at less than
+    RINGING of the free-flight rate): |psi(x_d)| decays as exp(-gamma t),
+    measured over the last tenth of the record, and so does the
+    uncertainty: ln(largest / target) / gamma more."""
+    a = np.abs(amp)
+    e_end = float(e_local[-1])
+    span = float(t[-1] - t[0])
+
+    def speed(e):
+        return math.sqrt(max(2 * (e - v_det) / mass, 0.0))
+
+    i_peak = int(np.argmax(a))
+    t_peak, e_peak = float(t[i_peak]), float(e_local[max(i_peak - 1, 0)])
+    v_end, v_peak = speed(e_end), speed(e_peak)
+    dispersing = v_peak > v_end > 0 and t[-1] > t_peak
+    if dispersing:
+        distance = (t[-1] - t_peak) / (1 / v_end - 1 / v_peak)
+        t0 = t[-1] - distance / v_end
+        # dE/dt of free flight at the end against what the record shows
+        m = max(2, len(t) // 10)
+        falls = (e_local[-m] - e_local[-1]) / (t[-1] - t[-m])
+        dispersing = falls > RINGING * mass * v_end**3 / distance
+    if not dispersing:
+        m = max(2, len(t) // 10)
+        gamma = math.log(a[-m] / a[-1]) / (t[-1] - t[-m]) if a[-1] > 0 and a[-m] > a[-1] else 0.0
+        if gamma <= 0:
+            return 2.0 * span            # not decaying yet: at least twice as long
+        return span + math.log(largest / UNCERTAINTY_TARGET) / gamma
+    weight = w_fwd / w_fwd.max()
+    fwd = w_fwd > 0
+    kk, weight = np.abs(k_all[fwd]), weight[fwd]
+    order = np.argsort(kk)
+    kk, weight = kk[order], weight[order]
+    k_end = math.sqrt(max(2 * mass * (e_end - v_start), 0.0))
+    w_need = float(np.interp(k_end, kk, weight)) * (UNCERTAINTY_TARGET / largest) ** 2
+    # the slowest momentum still carrying w_need, on the slow side of the peak
+    slow = (kk <= kk[np.argmax(weight)]) & (weight >= w_need)
+    k_slow = float(kk[slow].min()) if slow.any() else k_end
+    v_slow = speed(v_start + k_slow**2 / (2 * mass))
+    if not v_slow > 0:
+        return 2.0 * span
+    return max(float(t0 + distance / v_slow - t[0]), span)
 
 
 def _momentum_amplitude(psi, x, k) -> np.ndarray:
@@ -206,19 +461,40 @@ def _momentum_amplitude(psi, x, k) -> np.ndarray:
     return out
 
 
+def truncation_warning(er: dict) -> str:
+    """One line: where T(E) is uncertain and the duration that would settle it."""
+    lo, hi = er["uncertain_span"]
+    unit = er["energy_units"]
+    if hi < er["peak_energy"]:
+        where = f"below E = {hi:.4g} {unit}"
+    elif lo > er["peak_energy"]:
+        where = f"above E = {lo:.4g} {unit}"
+    else:
+        where = f"from E = {lo:.4g} to {hi:.4g} {unit}"
+    return (f"the run ended before all of the packet had passed detector {er['detector']!r}: T(E) is "
+            f"uncertain by up to {er['largest_uncertainty']:.2g} (at E = {er['largest_at']:.4g} {unit}; "
+            f"by more than {UNCERTAINTY_TARGET:g} {where}); evolve.duration = "
+            f"{er['duration_needed']:.4g} {er['time_units']} would bring it below {UNCERTAINTY_TARGET:g}")
+
+
 def transmission(result, detector: str | None = None) -> dict:
     """Totals and (where the run allows) T(E), from a result path or dataset.
-    ``energy_resolved`` holds T(E) or the reason it is missing."""
+    ``energy_resolved`` holds T(E) with its uncertainty, or the reason it is
+    missing; ``warnings`` says when the run was too short for T(E) to be
+    settled to UNCERTAINTY_TARGET."""
     ds = open_result(result, require=("time", "norm", "flux"))
     try:
         from ..check import splitting_warning
 
         setup = result_setup(ds)
-        out = {"totals": transmission_totals(ds, setup), "warnings": []}
+        out = {"totals": transmission_totals(ds, setup), "warnings": [],
+               "time_units": result_units(ds)["time_label"]}
         if (w := splitting_warning(setup)) is not None:
             out["warnings"].append(f"the run's time step: {w}")
         try:
-            out["energy_resolved"] = energy_resolved_transmission(ds, setup, detector)
+            er = out["energy_resolved"] = energy_resolved_transmission(ds, setup, detector)
+            if er["uncertain_span"] is not None:
+                out["warnings"].append(truncation_warning(er))
         except JobError as e:
             # the totals stand; a detector asked for by name makes its failure an error (the CLI
             # prints the totals first)
