@@ -484,7 +484,7 @@ def transmission(result, detector: str | None = None) -> dict:
     settled to UNCERTAINTY_TARGET."""
     ds = open_result(result, require=("time", "norm", "flux"))
     try:
-        from ..check import splitting_warning
+        from ..adequacy import splitting_warning
 
         setup = result_setup(ds)
         out = {"totals": transmission_totals(ds, setup), "warnings": [],
