@@ -163,7 +163,7 @@ def test_default_sampling_is_written_as_by_hand():
 
 
 def test_default_sampling_in_femtoseconds():
-    t = job_from_dict({**copy.deepcopy(JOB), "units": {"time": "fs"},
+    t = job_from_dict({**copy.deepcopy(JOB), "units": {"length": "bohr", "energy": "hartree", "time": "fs"},
                        "evolve": {"dt": 0.3, "duration": 3000.0}, "record": {}}).table
     assert t["record"]["every"] == 3.0            # 10 000 steps -> every 10 steps
     assert t["record"]["snapshot_every"] == 30.0
@@ -242,7 +242,7 @@ def test_strings_with_units_are_accepted_and_kept_as_written():
 
 
 def test_number_in_job_units_equals_string_with_that_unit():
-    in_units = job_from_dict({**copy.deepcopy(JOB), "units": {"length": "nm"},
+    in_units = job_from_dict({**copy.deepcopy(JOB), "units": {"length": "nm", "energy": "hartree"},
                               "grid": {"x": {"min": -3.0, "max": 3.0, "points": 256}},
                               "packet": {"center": -1.0, "width": 0.1, "momentum": 0.0},
                               "detector": []})
