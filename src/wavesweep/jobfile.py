@@ -277,9 +277,11 @@ def job_from_dict(raw: dict, overrides=(), source: Path | None = None) -> Job:
     Every independent error is collected and they are raised together, in
     the order of the job file (:class:`~wavesweep.errors.JobErrors`; a lone
     error is raised as itself).  Checks that need another part of the job
-    run only when that part is valid: the grid for detectors, absorber faces
-    and each potential's own checks; ``evolve.dt`` for the record's
-    sampling; a valid ``[units]`` for comparisons between values.
+    run only when that part is valid, so that no error is a consequence of
+    another: an axis's min and max for the detectors and absorber layers on
+    it, the whole grid and the particle for each potential's own checks,
+    ``evolve.dt`` and ``evolve.duration`` for the record's sampling, valid
+    ``[units]`` for any comparison between values.
     """
     raw = apply_overrides(raw, overrides)
     found = ErrorCollector()
@@ -324,21 +326,26 @@ def job_from_dict(raw: dict, overrides=(), source: Path | None = None) -> Job:
     if "evolve" in raw or "evolve" not in suggested:
         with found.check():
             out["evolve"] = validate_table(_need(raw, "evolve"), EVOLVE, "evolve", u)
-    grid = out.get("grid") if units is not None else None
+    # what the later tables are compared with, from the parts that are valid
+    # (an axis with a bad point count still has its extent)
+    layout = raw["grid"] if isinstance(raw.get("grid"), dict) else {}
+    extents = _extents(layout, u) if units is not None else None
+    timing = _valid_part(raw.get("evolve"), EVOLVE, ("dt", "duration"), "evolve", u) \
+        if units is not None else None
     with found.check():
-        out["absorber"] = _absorber(raw.get("absorber", {}), u, grid, ndim)
+        out["absorber"] = _absorber(raw.get("absorber", {}), u, layout, extents, ndim)
     with found.check():
-        out["record"] = _record(raw.get("record", {}), u, out.get("evolve") if units is not None else None)
-    with found.check():
-        axes = grid_axes(grid if grid is not None else raw.get("grid") if isinstance(raw.get("grid"), dict)
-                         else {})
-        out["detector"] = _detectors(raw.get("detector", []), u, grid, axes)
+        out["record"] = _record(raw.get("record", {}), u, timing)
+    axes = grid_axes(out["grid"] if "grid" in out else layout)
+    if axes or "grid" in out:   # without any axis the position keys cannot be told
+        with found.check():
+            out["detector"] = _detectors(raw.get("detector", []), u, extents, axes)
     if "sweep" in raw:
         with found.check():
             if not isinstance(raw["sweep"], dict):
                 raise JobError("sweep", "must be a table")
             out["sweep"] = raw["sweep"]
-    if grid is not None and "particle" in out:
+    if units is not None and "grid" in out and "particle" in out:
         # each potential's own checks (parameter combinations, the grid it
         # needs, the particle's charge): they need the grid and the particle
         _check_terms(out, potentials or [], u, found)
@@ -373,6 +380,37 @@ def file_position(raw: dict, field: str) -> list[int]:
         else:
             break
     return pos
+
+
+def _valid_part(raw, schema: dict, keys, prefix: str, units) -> dict | None:
+    """``keys`` of table ``raw`` validated (defaults filled), or None if any
+    of them is bad or missing (their errors are the table's own to report)."""
+    if not isinstance(raw, dict):
+        return None
+    try:
+        return validate_table({k: raw[k] for k in keys if k in raw}, {k: schema[k] for k in keys},
+                              prefix, units)
+    except JobError:
+        return None
+
+
+def _extents(layout: dict, units: UnitSet) -> dict:
+    """``axis -> (min, max)`` in bohr, for the axes of a raw [grid] table
+    whose min and max are valid and in order (radial: min = 0)."""
+    radial = "r" in layout
+    out = {}
+    for name in grid_axes(layout):
+        table = layout[name]
+        if radial and isinstance(table, dict):
+            table = {**table, "min": 0.0}
+        ax = _valid_part(table, AXIS, ("min", "max"), f"grid.{name}", units)
+        if ax is None or ax.get("min") is None:
+            continue
+        lo = units.to_atomic(ax["min"], "length")
+        hi = units.to_atomic(ax["max"], "length")
+        if hi > lo:
+            out[name] = (lo, hi, ax["min"], ax["max"])
+    return out
 
 
 def _check_terms(out: dict, potentials: list, units: UnitSet, found: ErrorCollector) -> None:
@@ -575,16 +613,17 @@ def _packet(raw, units, ndim, base, name) -> dict:
     return t
 
 
-def _absorber(raw, units, grid, ndim) -> dict:
-    """The [absorber] table; its fit on the grid is checked only when
-    ``grid`` (a valid [grid] table, in valid units) is given."""
+def _absorber(raw, units, layout, extents, ndim) -> dict:
+    """The [absorber] table; faces are checked against the axes of the raw
+    [grid] table ``layout``, and the layers' fit against ``extents`` (see
+    :func:`_extents`; None: not checked)."""
     found = ErrorCollector()
+    allowed = _face_names_of(layout) if grid_axes(layout) else None
     per_face = None
     if isinstance(raw, dict) and isinstance(raw.get("strength"), dict):
         # strength = { "x-" = 0.5, "x+" = 2.0 }: one CAP strength per face
         raw = dict(raw)
         per_face = raw.pop("strength")
-        allowed = _face_names_of(grid) if grid is not None else None
         for face, value in per_face.items():
             with found.check():
                 if allowed is not None and face not in allowed:
@@ -605,11 +644,10 @@ def _absorber(raw, units, grid, ndim) -> dict:
         return {"kind": "none"}
     if t.get("thickness") is None:
         found.add(JobError("absorber.thickness", f"required for kind = {t['kind']!r}"))
-    elif grid is not None:
+    elif extents is not None:
         with found.check():
-            _absorber_fits(t, units, grid)
-    if grid is not None and t.get("faces") is not None:
-        allowed = _face_names_of(grid)
+            _absorber_fits(t, units, extents, grid_axes(layout))
+    if allowed is not None and t.get("faces") is not None:
         for f in t["faces"]:
             if f not in allowed:
                 found.add(JobError("absorber.faces", f"{f!r} is not a face of this grid; "
@@ -623,24 +661,25 @@ def _absorber(raw, units, grid, ndim) -> dict:
     return t
 
 
-def _absorber_fits(t, units, grid) -> None:
-    """The layers fit on the axes they cover."""
+def _absorber_fits(t, units, extents, axes) -> None:
+    """The layers fit on the axes they cover (those with a valid extent)."""
     th = units.to_atomic(t["thickness"], "length", "absorber.thickness")
     covered = {f[:-1] for f in t["faces"]} if t.get("faces") is not None else None
-    for name in grid_axes(grid):
+    for name in axes:
         if covered is not None and name not in covered:
             continue              # no layer on this axis: nothing to fit
+        if name not in extents:
+            continue              # its min or max is wrong: said already
+        lo, hi, min_text, max_text = extents[name]
         both = covered is None or {f"{name}-", f"{name}+"} <= set(t["faces"])
-        lo = units.to_atomic(grid[name]["min"], "length")
-        hi = units.to_atomic(grid[name]["max"], "length")
         if name == "r":   # one layer only, at r_max
             if th >= hi:
                 raise JobError("absorber.thickness", f"the layer is thicker than the radial grid "
-                                                     f"(r max = {grid[name]['max']!r}); make it thinner")
+                                                     f"(r max = {max_text!r}); make it thinner")
             continue
         if (2 if both else 1) * th >= hi - lo:
             raise JobError("absorber.thickness", f"{'two layers do' if both else 'the layer does'} not fit on the {name} axis "
-                                                 f"(from {grid[name]['min']!r} to {grid[name]['max']!r}); "
+                                                 f"(from {min_text!r} to {max_text!r}); "
                                                  "make them thinner or the grid longer")
 
 
@@ -670,8 +709,8 @@ def _job_number(x: float) -> float:
 
 def _record(raw, units, evolve) -> dict:
     """The [record] table; its sampling on whole time steps is checked (and
-    the defaults derived) only when ``evolve`` (a valid [evolve] table, in
-    valid units) is given."""
+    the defaults derived) only when ``evolve`` (valid ``dt`` and
+    ``duration``, in valid units) is given."""
     t = validate_table(raw, RECORD, "record", units)
     if evolve is None:
         return t
@@ -697,10 +736,10 @@ def _record(raw, units, evolve) -> dict:
     return t
 
 
-def _detectors(raw, units, grid, axes) -> list[dict]:
-    """The [[detector]] tables, each on its own; positions are compared with
-    the grid only when ``grid`` (valid, in valid units) is given, else the
-    keys are checked against the axes the job names (``axes``)."""
+def _detectors(raw, units, extents, axes) -> list[dict]:
+    """The [[detector]] tables, each on its own, with a position key for
+    each of ``axes``; positions are compared with the axis extents
+    (:func:`_extents`; None: not compared)."""
     if isinstance(raw, dict):
         raw = [raw]
     if not isinstance(raw, list) or not all(isinstance(t, dict) for t in raw):
@@ -720,13 +759,11 @@ def _detectors(raw, units, grid, axes) -> list[dict]:
             if t["name"] in names:
                 raise JobError(f"{field}.name", f"{t['name']!r} is used twice")
             names.add(t["name"])
-            if grid is not None:
+            if extents is not None and a in extents:
+                lo, hi, min_text, max_text = extents[a]
                 pos = units.to_atomic(t[a], "length", f"{field}.{a}")
-                lo = units.to_atomic(grid[a]["min"], "length")
-                hi = units.to_atomic(grid[a]["max"], "length")
                 if not lo < pos < hi:
-                    raise JobError(f"{field}.{a}", f"{t[a]!r} lies outside the grid "
-                                                   f"[{grid[a]['min']!r}, {grid[a]['max']!r}]")
+                    raise JobError(f"{field}.{a}", f"{t[a]!r} lies outside the grid [{min_text!r}, {max_text!r}]")
             out.append(t)
     found.raise_if_any()
     return out
