@@ -14,6 +14,9 @@ job's unit for it is built from the job's four base units.  The four base
 units need not be mutually consistent in the ``E = M L^2 / T^2`` sense
 (nm / meV / fs / m_e are not): each kind has its own job unit, and everything
 is converted to atomic units on input, so the physics never sees the choice.
+A unit left out of ``[units]`` is derived from the given ones where they
+determine it, or refused (:meth:`UnitSet.from_table`): never silently atomic
+beside units that are not.
 """
 from __future__ import annotations
 
