@@ -195,10 +195,8 @@ def validate_table(table, schema: dict[str, Field], prefix: str, units: UnitSet 
     # the table's order, as written (the schema's order is not the user's)
     order = {key: i for i, key in enumerate(table)}
     found.raise_if_any(order=lambda e: order.get(_last_key(e.field, prefix), len(order)))
-    for key in schema:     # defaults and values in the schema's order, as before
-        if key in checked:
-            out[key] = checked[key]
-    out = {key: out[key] for key in schema if key in out}
+    out.update(checked)
+    out = {key: out[key] for key in schema if key in out}   # the schema's order, as before
     for key in extra_ok:
         if key in table:
             out[key] = table[key]
