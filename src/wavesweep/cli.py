@@ -12,6 +12,8 @@ import sys
 from .errors import JobError, RunFailed
 
 EXIT_OK, EXIT_FAIL, EXIT_INPUT = 0, 1, 2
+# Bad input prints one line per error; a job with more prints this many, then a count.
+MAX_ERROR_LINES = 20
 
 
 class _Parser(argparse.ArgumentParser):
@@ -138,7 +140,12 @@ def main(argv=None) -> int:
     try:
         return _COMMANDS[args.command](args)
     except JobError as e:
-        print(f"wavesweep {args.command}: {_one_line(e)}", file=sys.stderr)
+        lines = e.lines()    # one per independent error, in the order of the job file
+        for line in lines[:MAX_ERROR_LINES]:
+            print(f"wavesweep {args.command}: {_one_line(line)}", file=sys.stderr)
+        if len(lines) > MAX_ERROR_LINES:
+            print(f"wavesweep {args.command}: ... and {len(lines) - MAX_ERROR_LINES} more errors",
+                  file=sys.stderr)
         return EXIT_INPUT
     except RunFailed as e:
         print(f"wavesweep {args.command}: run failed: {_one_line(e.reason)}", file=sys.stderr)

@@ -1,13 +1,18 @@
 """Exceptions that carry enough context for a one-line message.
 
 ``JobError`` is bad input: the CLI prints ``"<field>: <message>"`` on one
-line and exits with status 2.  ``RunFailed`` is a numerical failure of a run
-(NaN, norm blow-up): a result with a reason, so a queue can record it and go
-on.
+line and exits with status 2.  Validation does not stop at the first one: it
+gathers every independent error in an :class:`ErrorCollector` and raises them
+together as :class:`JobErrors` (a JobError itself, so callers that catch
+JobError keep working), and the CLI prints one line each.  ``RunFailed`` is a
+numerical failure of a run (NaN, norm blow-up): a result with a reason, so a
+queue can record it and go on.
 """
 from __future__ import annotations
 
-__all__ = ["JobError", "RunFailed", "RunInterrupted"]
+from contextlib import contextmanager
+
+__all__ = ["JobError", "JobErrors", "ErrorCollector", "combine_errors", "RunFailed", "RunInterrupted"]
 
 
 class JobError(ValueError):
@@ -26,6 +31,93 @@ class JobError(ValueError):
         self.field = field
         self.message = message
         super().__init__(f"{field}: {message}" if field else message)
+
+    @property
+    def errors(self) -> list["JobError"]:
+        """The single errors this one stands for: itself."""
+        return [self]
+
+    def lines(self) -> list[str]:
+        """One ``"field: message"`` line per error."""
+        return [str(e) for e in self.errors]
+
+
+class JobErrors(JobError):
+    """Several independent errors of one job, found in one pass.
+
+    ``errors`` lists them (in the order of the job file where the validator
+    knows it); ``field`` and the start of ``message`` are the first one's, so
+    code written for a single :class:`JobError` still names a real field, and
+    ``str()`` is every error on one line, separated by ``" | "``.  Build it
+    with :func:`combine_errors`, which returns the lone error unchanged when
+    there is only one.
+    """
+
+    def __init__(self, errors):
+        self._errors = list(errors)
+        first, rest = self._errors[0], self._errors[1:]
+        message = " | ".join([first.message, *(str(e) for e in rest)])
+        super().__init__(first.field, message)
+
+    @property
+    def errors(self) -> list[JobError]:
+        return list(self._errors)
+
+
+def combine_errors(errors) -> JobError | None:
+    """One exception for a list of JobErrors: None for none, the error itself
+    for one, else :class:`JobErrors`.  Nested JobErrors are flattened and an
+    error repeated with the same field and message is kept once."""
+    flat, seen = [], set()
+    for e in errors:
+        for one in e.errors:
+            key = (one.field, one.message)
+            if key not in seen:
+                seen.add(key)
+                flat.append(one)
+    if not flat:
+        return None
+    return flat[0] if len(flat) == 1 else JobErrors(flat)
+
+
+class ErrorCollector:
+    """Gathers the JobErrors of independent checks instead of stopping at
+    the first::
+
+        found = ErrorCollector()
+        with found.check():
+            out["grid"] = validate_grid(...)     # on error "grid" stays unset
+        found.raise_if_any()
+
+    A check that depends on an earlier one should run only if that one
+    passed (test for its result): a consequence of an error is not an error
+    of its own.
+    """
+
+    def __init__(self):
+        self.errors: list[JobError] = []
+
+    def __len__(self) -> int:
+        return len(self.errors)
+
+    def add(self, error: JobError) -> None:
+        self.errors.extend(error.errors)
+
+    @contextmanager
+    def check(self):
+        """Run the block; a JobError it raises is recorded and swallowed."""
+        try:
+            yield self
+        except JobError as e:
+            self.add(e)
+
+    def raise_if_any(self, order=None) -> None:
+        """Raise the errors gathered (sorted by ``order(error)`` if given,
+        a stable sort), as one JobError or :class:`JobErrors`."""
+        errors = sorted(self.errors, key=order) if order is not None else self.errors
+        combined = combine_errors(errors)
+        if combined is not None:
+            raise combined
 
 
 class RunFailed(RuntimeError):

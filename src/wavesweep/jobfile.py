@@ -6,7 +6,9 @@
 in (``Job.to_toml()`` is a complete job file that reproduces the run) and the
 unit set.  Physical objects are built from it by :mod:`wavesweep.simulation`.
 
-Every problem is a :class:`~wavesweep.errors.JobError` naming the field.
+Every problem is a :class:`~wavesweep.errors.JobError` naming the field;
+independent problems are all reported at once, in the order of the job file
+(:class:`~wavesweep.errors.JobErrors`).
 """
 from __future__ import annotations
 
@@ -21,11 +23,11 @@ from pathlib import Path
 import tomli_w
 
 from .absorbers.layers import face_names
-from .errors import JobError
-from .grid import BOUNDARIES
-from .potentials import REGISTRY, term_class
+from .errors import ErrorCollector, JobError
+from .grid import BOUNDARIES, Axis, Grid
+from .potentials import REGISTRY, PotentialContext, make_term, term_class
 from .propagators import SCHEMES
-from .schema import Field, check_unknown, validate_table
+from .schema import Field, check_unknown, unknown_keys, validate_table
 from .states import PACKET_SCHEMAS
 from .units import UnitSet
 
@@ -270,34 +272,188 @@ def load_job(path, overrides=()) -> Job:
 
 
 def job_from_dict(raw: dict, overrides=(), source: Path | None = None) -> Job:
-    """Validate a job given as a dict (as parsed from TOML)."""
+    """Validate a job given as a dict (as parsed from TOML).
+
+    Every independent error is collected and they are raised together, in
+    the order of the job file (:class:`~wavesweep.errors.JobErrors`; a lone
+    error is raised as itself).  Checks that need another part of the job
+    run only when that part is valid, so that no error is a consequence of
+    another: an axis's min and max for the detectors and absorber layers on
+    it, the whole grid and the particle for each potential's own checks,
+    ``evolve.dt`` and ``evolve.duration`` for the record's sampling, valid
+    ``[units]`` for any comparison between values.
+    """
     raw = apply_overrides(raw, overrides)
-    check_unknown(raw, TOP_LEVEL, "")
-    if not isinstance(raw.get("units", {}), dict):
-        raise JobError("units", f"must be a table such as {{ length = 'nm', energy = 'meV' }}, "
-                                f"got {raw['units']!r}")
-    units = UnitSet.from_table(raw.get("units"))
+    found = ErrorCollector()
+    suggested = set()   # a misspelled table is reported once, not also as missing
+    for error, near in unknown_keys(raw, TOP_LEVEL, ""):
+        found.add(error)
+        suggested.add(near)
+    units = None
+    with found.check():
+        if not isinstance(raw.get("units", {}), dict):
+            raise JobError("units", f"must be a table such as {{ length = 'nm', energy = 'meV' }}, "
+                                    f"got {raw['units']!r}")
+        units = UnitSet.from_table(raw.get("units"))
+    # with bad [units] each value is still checked on its own (type, sign,
+    # a unit of the right kind); comparisons between values wait for the units
+    u = units or UnitSet()
     out: dict = {}
-    title = raw.get("title", source.stem if source else "untitled")
-    if not isinstance(title, str):
-        raise JobError("title", f"must be a string, got {title!r}")
-    out["title"] = title
-    out["units"] = units.as_table()
-    out["particle"] = validate_table(raw.get("particle", {}), PARTICLE, "particle", units)
-    out["grid"] = _grid(raw.get("grid"), units)
-    ndim = len(grid_axes(out["grid"]))
+    with found.check():
+        title = raw.get("title", source.stem if source else "untitled")
+        if not isinstance(title, str):
+            raise JobError("title", f"must be a string, got {title!r}")
+        out["title"] = title
+    if units is not None:
+        out["units"] = units.as_table()
+    with found.check():
+        out["particle"] = validate_table(raw.get("particle", {}), PARTICLE, "particle", u)
+    if "grid" in raw or "grid" not in suggested:
+        with found.check():
+            out["grid"] = _grid(raw.get("grid"), u, compare=units is not None)
+    if "grid" in out:
+        ndim = len(grid_axes(out["grid"]))
+    else:   # the axes the user wrote, for per-axis lists; none: not checked
+        ndim = len(grid_axes(raw["grid"])) if isinstance(raw.get("grid"), dict) else 0
+        ndim = ndim or None
     base = source.parent if source else Path.cwd()
-    out["potential"] = _potentials(raw.get("potential"), units, ndim, base)
-    out["packet"] = _packet(raw.get("packet"), units, ndim, base, "packet")
-    out["evolve"] = validate_table(_need(raw, "evolve"), EVOLVE, "evolve", units)
-    out["absorber"] = _absorber(raw.get("absorber", {}), units, out["grid"])
-    out["record"] = _record(raw.get("record", {}), units, out["evolve"])
-    out["detector"] = _detectors(raw.get("detector", []), units, out["grid"])
+    potentials = _potentials(raw.get("potential"), u, ndim, base, found)
+    if potentials is not None and None not in potentials:
+        out["potential"] = potentials
+    if "packet" in raw or "packet" not in suggested:
+        with found.check():
+            out["packet"] = _packet(raw.get("packet"), u, ndim, base, "packet")
+    if "evolve" in raw or "evolve" not in suggested:
+        with found.check():
+            out["evolve"] = validate_table(_need(raw, "evolve"), EVOLVE, "evolve", u)
+    # what the later tables are compared with, from the parts that are valid
+    # (an axis with a bad point count still has its extent)
+    layout = raw["grid"] if isinstance(raw.get("grid"), dict) else {}
+    extents = _extents(layout, u) if units is not None else None
+    timing = _valid_part(raw.get("evolve"), EVOLVE, ("dt", "duration"), "evolve", u) \
+        if units is not None else None
+    with found.check():
+        out["absorber"] = _absorber(raw.get("absorber", {}), u, layout, extents, ndim)
+    with found.check():
+        out["record"] = _record(raw.get("record", {}), u, timing)
+    axes = grid_axes(out["grid"] if "grid" in out else layout)
+    if axes or "grid" in out:   # without any axis the position keys cannot be told
+        with found.check():
+            out["detector"] = _detectors(raw.get("detector", []), u, extents, axes)
     if "sweep" in raw:
-        if not isinstance(raw["sweep"], dict):
-            raise JobError("sweep", "must be a table")
-        out["sweep"] = raw["sweep"]
+        with found.check():
+            if not isinstance(raw["sweep"], dict):
+                raise JobError("sweep", "must be a table")
+            out["sweep"] = raw["sweep"]
+    if units is not None and "grid" in out and "particle" in out:
+        # each potential's own checks (parameter combinations, the grid it
+        # needs, the particle's charge): they need the grid and the particle
+        _check_terms(out, potentials or [], u, found)
+    found.raise_if_any(order=lambda e: file_position(raw, e.field))
     return Job(out, units, source)
+
+
+def file_position(raw: dict, field: str) -> list[int]:
+    """Where a dotted field sits in the job table ``raw``, as a sort key:
+    the index of each part among its table's keys (as written: TOML tables
+    keep the file's order) or its list index; a key the table lacks sorts
+    after the keys it has, a field outside the job (``--set ...``) last."""
+    pos, node = [], raw
+    for part in field.split("."):
+        if isinstance(node, dict):
+            keys = list(node)
+            if part not in node:
+                pos.append(len(keys))
+                break
+            pos.append(keys.index(part))
+            node = node[part]
+        elif isinstance(node, list):
+            try:
+                i = int(part)
+            except ValueError:
+                break
+            if not -len(node) <= i < len(node):
+                pos.append(len(node))
+                break
+            pos.append(i % len(node))
+            node = node[i]
+        else:
+            break
+    return pos
+
+
+def _valid_part(raw, schema: dict, keys, prefix: str, units) -> dict | None:
+    """``keys`` of table ``raw`` validated (defaults filled), or None if any
+    of them is bad or missing (their errors are the table's own to report)."""
+    if not isinstance(raw, dict):
+        return None
+    try:
+        return validate_table({k: raw[k] for k in keys if k in raw}, {k: schema[k] for k in keys},
+                              prefix, units)
+    except JobError:
+        return None
+
+
+def _extents(layout: dict, units: UnitSet) -> dict:
+    """``axis -> (min, max)`` in bohr, for the axes of a raw [grid] table
+    whose min and max are valid and in order (radial: min = 0)."""
+    radial = "r" in layout
+    out = {}
+    for name in grid_axes(layout):
+        table = layout[name]
+        if radial and isinstance(table, dict):
+            table = {**table, "min": 0.0}
+        ax = _valid_part(table, AXIS, ("min", "max"), f"grid.{name}", units)
+        if ax is None or ax.get("min") is None:
+            continue
+        lo = units.to_atomic(ax["min"], "length")
+        hi = units.to_atomic(ax["max"], "length")
+        if hi > lo:
+            out[name] = (lo, hi, ax["min"], ax["max"])
+    return out
+
+
+def _check_terms(out: dict, potentials: list, units: UnitSet, found: ErrorCollector) -> None:
+    """Build each valid potential term once, so that its ``validate()`` runs
+    at load time (the job's own and those of an eigenstate packet's trap)."""
+    try:
+        grid = grid_object(out["grid"], units)
+        mass = units.to_atomic(out["particle"]["mass"], "mass", "particle.mass")
+        charge = out["particle"].get("charge")
+        charge = None if charge is None else units.to_atomic(charge, "charge", "particle.charge")
+    except JobError:   # reported already by the table checks
+        return
+    groups = [("potential", potentials)]
+    groups += _packet_traps(out.get("packet"), "packet")
+    for prefix, tables in groups:
+        for i, table in enumerate(tables):
+            if table is None:
+                continue
+            with found.check():
+                make_term(table, PotentialContext(grid, mass, charge, units, f"{prefix}.{i}"))
+
+
+def _packet_traps(packet, name) -> list[tuple[str, list]]:
+    """(prefix, potential tables) of every eigenstate packet's own trap."""
+    if not isinstance(packet, dict):
+        return []
+    out = []
+    if packet.get("kind") == "eigenstate" and packet.get("potential"):
+        out.append((f"{name}.potential", packet["potential"]))
+    if packet.get("kind") == "superposition":
+        for j, p in enumerate(packet.get("packets") or []):
+            out += _packet_traps(p, f"{name}.packets.{j}")
+    return out
+
+
+def grid_object(grid: dict, units: UnitSet) -> Grid:
+    """The :class:`~wavesweep.grid.Grid` (atomic units) of a validated [grid] table."""
+    axes = []
+    for name in grid_axes(grid):
+        a = grid[name]
+        axes.append(Axis(name, units.to_atomic(a["min"], "length"), units.to_atomic(a["max"], "length"),
+                         int(a["points"]), a.get("boundary") or grid["boundary"]))
+    return Grid(tuple(axes), radial="r" in grid, angular_momentum=int(grid.get("l", 0)))
 
 
 def _need(raw, key):
@@ -310,73 +466,111 @@ def grid_axes(grid: dict) -> list[str]:
     return [k for k in ("x", "y", "z", "r") if k in grid]
 
 
-def _grid(raw, units) -> dict:
+def _grid(raw, units, compare: bool = True) -> dict:
+    """The [grid] table checked; every axis on its own.  ``compare=False``
+    (the units are wrong) skips comparing values with each other."""
     if raw is None:
         raise JobError("grid", "missing [grid] table; e.g. x = { min = -100, max = 100, points = 1024 }")
     if not isinstance(raw, dict):
         raise JobError("grid", "must be a table")
-    check_unknown(raw, ("x", "y", "z", "r", "boundary", "l"), "grid")
+    found = ErrorCollector()
+    with found.check():
+        check_unknown(raw, ("x", "y", "z", "r", "boundary", "l"), "grid")
     axes = grid_axes(raw)
     if not axes:
-        raise JobError("grid.x", "missing; give at least one axis, e.g. x = { min = -100, max = 100, points = 1024 }")
+        found.add(JobError("grid.x", "missing; give at least one axis, "
+                                     "e.g. x = { min = -100, max = 100, points = 1024 }"))
+        found.raise_if_any()
     if "r" in axes and len(axes) > 1:
-        raise JobError("grid.r", "a radial grid has only r; remove the Cartesian axes")
+        found.add(JobError("grid.r", "a radial grid has only r; remove the Cartesian axes"))
+        found.raise_if_any()
     cart = [a for a in ("x", "y", "z") if a in raw]
     if cart and cart != ["x", "y", "z"][: len(cart)]:
-        raise JobError(f"grid.{cart[-1]}", "Cartesian axes are x, then y, then z")
+        found.add(JobError(f"grid.{cart[-1]}", "Cartesian axes are x, then y, then z"))
     radial = "r" in axes
     boundary = raw.get("boundary", "box" if radial else "periodic")
     out = {}
-    if not isinstance(boundary, str) or boundary not in BOUNDARIES:
-        raise JobError("grid.boundary", f"{boundary!r} is not one of {', '.join(map(repr, BOUNDARIES))}")
-    if radial and boundary != "box":
-        raise JobError("grid.boundary", "a radial grid has u(0) = 0: it is always 'box'")
+    with found.check():
+        if not isinstance(boundary, str) or boundary not in BOUNDARIES:
+            raise JobError("grid.boundary", f"{boundary!r} is not one of {', '.join(map(repr, BOUNDARIES))}")
+        if radial and boundary != "box":
+            raise JobError("grid.boundary", "a radial grid has u(0) = 0: it is always 'box'")
     for name in axes:
-        ax = validate_table(raw[name], AXIS, f"grid.{name}", units)
-        if radial:
-            if ax.get("min") not in (None, 0, 0.0):
-                raise JobError("grid.r.min", "a radial grid starts at r = 0; remove min")
-            ax["min"] = 0.0
-        elif ax.get("min") is None:
-            raise JobError(f"grid.{name}.min", "missing; the lower end of the axis")
-        lo = units.to_atomic(ax["min"], "length", f"grid.{name}.min")
-        hi = units.to_atomic(ax["max"], "length", f"grid.{name}.max")
-        if not hi > lo:
-            raise JobError(f"grid.{name}.max", f"must be larger than min ({ax['min']!r})")
-        if ax["points"] < 4:
-            raise JobError(f"grid.{name}.points", f"must be at least 4, got {ax['points']}")
-        if radial and ax.get("boundary", "box") != "box":
-            raise JobError(f"grid.{name}.boundary", "a radial axis is always 'box'")
-        out[name] = ax
+        with found.check():
+            out[name] = _axis(raw[name], name, radial, units, compare)
     out["boundary"] = boundary
-    l_value = raw.get("l", 0)
-    if isinstance(l_value, bool) or not isinstance(l_value, int) or l_value < 0:
-        raise JobError("grid.l", f"angular momentum must be an integer >= 0, got {l_value!r}")
-    if l_value and not radial:
-        raise JobError("grid.l", "angular momentum l applies to a radial grid (grid.r)")
-    if radial:
-        out["l"] = l_value
+    with found.check():
+        l_value = raw.get("l", 0)
+        if isinstance(l_value, bool) or not isinstance(l_value, int) or l_value < 0:
+            raise JobError("grid.l", f"angular momentum must be an integer >= 0, got {l_value!r}")
+        if l_value and not radial:
+            raise JobError("grid.l", "angular momentum l applies to a radial grid (grid.r)")
+        if radial:
+            out["l"] = l_value
+    found.raise_if_any()
     return out
 
 
-def _potentials(raw, units, ndim, base) -> list[dict]:
+def _axis(raw, name, radial, units, compare) -> dict:
+    """One axis table: its keys, then (if they are valid) their relations."""
+    ax = validate_table(raw, AXIS, f"grid.{name}", units)
+    found = ErrorCollector()
+    if radial:
+        if ax.get("min") not in (None, 0, 0.0):
+            found.add(JobError("grid.r.min", "a radial grid starts at r = 0; remove min"))
+        ax["min"] = 0.0
+        if ax.get("boundary", "box") != "box":
+            found.add(JobError(f"grid.{name}.boundary", "a radial axis is always 'box'"))
+    elif ax.get("min") is None:
+        found.add(JobError(f"grid.{name}.min", "missing; the lower end of the axis"))
+    if ax["points"] < 4:
+        found.add(JobError(f"grid.{name}.points", f"must be at least 4, got {ax['points']}"))
+    if compare and ax.get("min") is not None:
+        lo = units.to_atomic(ax["min"], "length", f"grid.{name}.min")
+        hi = units.to_atomic(ax["max"], "length", f"grid.{name}.max")
+        if not hi > lo:
+            found.add(JobError(f"grid.{name}.max", f"must be larger than min ({ax['min']!r})"))
+    found.raise_if_any()
+    return ax
+
+
+def _potentials(raw, units, ndim, base, found: ErrorCollector | None = None,
+                prefix: str = "potential") -> list | None:
+    """The [[potential]] tables checked, each on its own.  With ``found``,
+    errors are recorded there and a table with errors is None in the list
+    (None for the whole list if it is not a list of tables); without, they
+    are raised."""
+    own = found is None
+    if own:
+        found = ErrorCollector()
+    out = None
+    with found.check():
+        out = _potential_tables(raw, units, ndim, base, prefix, found)
+    if own:
+        found.raise_if_any()
+    return out
+
+
+def _potential_tables(raw, units, ndim, base, prefix, found: ErrorCollector) -> list:
     if raw is None:
         return [{"kind": "free"}]
     if isinstance(raw, dict):
         raw = [raw]
     if not isinstance(raw, list) or not all(isinstance(t, dict) for t in raw):
-        raise JobError("potential", "must be [[potential]] tables")
+        raise JobError(prefix, f"must be [[{prefix}]] tables")
     out = []
     for i, table in enumerate(raw):
-        name = f"potential.{i}"
-        if "kind" not in table:
-            raise JobError(f"{name}.kind", f"missing; known kinds: {', '.join(sorted(REGISTRY))}")
-        cls = term_class(table["kind"], f"{name}.kind")
-        schema = {"kind": Field("str"), **cls.parameters}
-        t = validate_table(table, schema, name, units, ndim)
-        if "path" in t:
-            t["path"] = str((base / t["path"]).resolve())
-        out.append(t)
+        name = f"{prefix}.{i}"
+        out.append(None)
+        with found.check():
+            if "kind" not in table:
+                raise JobError(f"{name}.kind", f"missing; known kinds: {', '.join(sorted(REGISTRY))}")
+            cls = term_class(table["kind"], f"{name}.kind")
+            schema = {"kind": Field("str"), **cls.parameters}
+            t = validate_table(table, schema, name, units, ndim)
+            if "path" in t:
+                t["path"] = str((base / t["path"]).resolve())
+            out[-1] = t
     return out
 
 
@@ -393,75 +587,100 @@ def _packet(raw, units, ndim, base, name) -> dict:
         near = difflib.get_close_matches(str(kind), PACKET_SCHEMAS, n=1)
         hint = f"did you mean {near[0]!r}? " if near else ""
         raise JobError(f"{name}.kind", f"unknown packet kind {kind!r}; {hint}known: {', '.join(PACKET_SCHEMAS)}")
-    t = validate_table(raw, PACKET_SCHEMAS[kind], name, units, ndim)
-    t["kind"] = kind
-    if kind == "gaussian" and t.get("momentum") is not None and t.get("energy") is not None:
-        raise JobError(f"{name}.energy", "give either momentum or energy, not both")
-    if kind == "gaussian" and t.get("energy") is not None and ndim != 1:
-        raise JobError(f"{name}.energy", "in 2D/3D give `momentum` per axis instead")
-    if kind == "superposition":
-        t["packets"] = [_packet(p, units, ndim, base, f"{name}.packets.{j}")
-                        for j, p in enumerate(t["packets"])]
-    if kind == "file":
+    found = ErrorCollector()
+    # combinations of keys need only their presence: checked even when a value is bad
+    if kind == "gaussian" and raw.get("momentum") is not None and raw.get("energy") is not None:
+        found.add(JobError(f"{name}.energy", "give either momentum or energy, not both"))
+    elif kind == "gaussian" and raw.get("energy") is not None and ndim not in (None, 1):
+        found.add(JobError(f"{name}.energy", "in 2D/3D give `momentum` per axis instead"))
+    t = None
+    with found.check():
+        t = validate_table(raw, PACKET_SCHEMAS[kind], name, units, ndim)
+        t["kind"] = kind
+    if t is not None and kind == "superposition":
+        parts = []
+        for j, p in enumerate(t["packets"]):
+            with found.check():
+                parts.append(_packet(p, units, ndim, base, f"{name}.packets.{j}"))
+        t["packets"] = parts
+    if t is not None and kind == "file":
         t["path"] = str((base / t["path"]).resolve())
-    if kind == "eigenstate" and t.get("potential") is not None:
-        try:   # the same checks as the job's [[potential]] tables, named under this packet
-            t["potential"] = _potentials(t["potential"], units, ndim, base) if t["potential"] else []
-        except JobError as e:
-            raise JobError(f"{name}.{e.field}", e.message.replace("[potential.", f"[{name}.potential.")) from None
+    if t is not None and kind == "eigenstate" and t.get("potential") is not None:
+        # the same checks as the job's [[potential]] tables, named under this packet
+        t["potential"] = (_potentials(t["potential"], units, ndim, base, found, f"{name}.potential")
+                          if t["potential"] else [])
+    found.raise_if_any()
     return t
 
 
-def _absorber(raw, units, grid) -> dict:
+def _absorber(raw, units, layout, extents, ndim) -> dict:
+    """The [absorber] table; faces are checked against the axes of the raw
+    [grid] table ``layout``, and the layers' fit against ``extents`` (see
+    :func:`_extents`; None: not checked)."""
+    found = ErrorCollector()
+    allowed = _face_names_of(layout) if grid_axes(layout) else None
     per_face = None
     if isinstance(raw, dict) and isinstance(raw.get("strength"), dict):
         # strength = { "x-" = 0.5, "x+" = 2.0 }: one CAP strength per face
         raw = dict(raw)
         per_face = raw.pop("strength")
-        allowed = _face_names_of(grid)
         for face, value in per_face.items():
-            if face not in allowed:
-                raise JobError(f"absorber.strength.{face}",
-                               f"not a face of this grid; faces: {', '.join(allowed)}")
-            v = units.to_atomic(value, "energy", f"absorber.strength.{face}")
-            if v < 0:
-                raise JobError(f"absorber.strength.{face}", f"must not be negative, got {value!r}")
-    t = validate_table(raw, ABSORBER, "absorber", units, len(grid_axes(grid)))
+            with found.check():
+                if allowed is not None and face not in allowed:
+                    raise JobError(f"absorber.strength.{face}",
+                                   f"not a face of this grid; faces: {', '.join(allowed)}")
+                v = units.to_atomic(value, "energy", f"absorber.strength.{face}")
+                if v < 0:
+                    raise JobError(f"absorber.strength.{face}", f"must not be negative, got {value!r}")
+    t = None
+    with found.check():
+        t = validate_table(raw, ABSORBER, "absorber", units, ndim)
+    if t is None:
+        found.raise_if_any()
     if per_face is not None:
         t["strength"] = per_face
     if t["kind"] == "none":
+        found.raise_if_any()
         return {"kind": "none"}
     if t.get("thickness") is None:
-        raise JobError("absorber.thickness", f"required for kind = {t['kind']!r}")
-    th = units.to_atomic(t["thickness"], "length", "absorber.thickness")
-    covered = {f[:-1] for f in t["faces"]} if t.get("faces") is not None else None
-    for name in grid_axes(grid):
-        if covered is not None and name not in covered:
-            continue              # no layer on this axis: nothing to fit
-        both = covered is None or {f"{name}-", f"{name}+"} <= set(t["faces"])
-        lo = units.to_atomic(grid[name]["min"], "length")
-        hi = units.to_atomic(grid[name]["max"], "length")
-        if name == "r":   # one layer only, at r_max
-            if th >= hi:
-                raise JobError("absorber.thickness", f"the layer is thicker than the radial grid "
-                                                     f"(r max = {grid[name]['max']!r}); make it thinner")
-            continue
-        if (2 if both else 1) * th >= hi - lo:
-            raise JobError("absorber.thickness", f"{'two layers do' if both else 'the layer does'} not fit on the {name} axis "
-                                                 f"(from {grid[name]['min']!r} to {grid[name]['max']!r}); "
-                                                 "make them thinner or the grid longer")
-    faces = t.get("faces")
-    if faces is not None:
-        allowed = _face_names_of(grid)
-        for f in faces:
+        found.add(JobError("absorber.thickness", f"required for kind = {t['kind']!r}"))
+    elif extents is not None:
+        with found.check():
+            _absorber_fits(t, units, extents, grid_axes(layout))
+    if allowed is not None and t.get("faces") is not None:
+        for f in t["faces"]:
             if f not in allowed:
-                raise JobError("absorber.faces", f"{f!r} is not a face of this grid; faces: {', '.join(allowed)}")
+                found.add(JobError("absorber.faces", f"{f!r} is not a face of this grid; "
+                                                     f"faces: {', '.join(allowed)}"))
+    found.raise_if_any()
     if t["kind"] == "mask":
         t.pop("strength", None)
         t.pop("power", None)
     else:
         t.pop("mask_exponent", None)
     return t
+
+
+def _absorber_fits(t, units, extents, axes) -> None:
+    """The layers fit on the axes they cover (those with a valid extent)."""
+    th = units.to_atomic(t["thickness"], "length", "absorber.thickness")
+    covered = {f[:-1] for f in t["faces"]} if t.get("faces") is not None else None
+    for name in axes:
+        if covered is not None and name not in covered:
+            continue              # no layer on this axis: nothing to fit
+        if name not in extents:
+            continue              # its min or max is wrong: said already
+        lo, hi, min_text, max_text = extents[name]
+        both = covered is None or {f"{name}-", f"{name}+"} <= set(t["faces"])
+        if name == "r":   # one layer only, at r_max
+            if th >= hi:
+                raise JobError("absorber.thickness", f"the layer is thicker than the radial grid "
+                                                     f"(r max = {max_text!r}); make it thinner")
+            continue
+        if (2 if both else 1) * th >= hi - lo:
+            raise JobError("absorber.thickness", f"{'two layers do' if both else 'the layer does'} not fit on the {name} axis "
+                                                 f"(from {min_text!r} to {max_text!r}); "
+                                                 "make them thinner or the grid longer")
 
 
 def _face_names_of(grid) -> list[str]:
@@ -489,7 +708,12 @@ def _job_number(x: float) -> float:
 
 
 def _record(raw, units, evolve) -> dict:
+    """The [record] table; its sampling on whole time steps is checked (and
+    the defaults derived) only when ``evolve`` (valid ``dt`` and
+    ``duration``, in valid units) is given."""
     t = validate_table(raw, RECORD, "record", units)
+    if evolve is None:
+        return t
     dt = units.to_atomic(evolve["dt"], "time", "evolve.dt")
     duration = units.to_atomic(evolve["duration"], "time", "evolve.duration")
     if duration < dt:
@@ -512,29 +736,34 @@ def _record(raw, units, evolve) -> dict:
     return t
 
 
-def _detectors(raw, units, grid) -> list[dict]:
+def _detectors(raw, units, extents, axes) -> list[dict]:
+    """The [[detector]] tables, each on its own, with a position key for
+    each of ``axes``; positions are compared with the axis extents
+    (:func:`_extents`; None: not compared)."""
     if isinstance(raw, dict):
         raw = [raw]
     if not isinstance(raw, list) or not all(isinstance(t, dict) for t in raw):
         raise JobError("detector", "must be [[detector]] tables")
-    axes = grid_axes(grid)
+    found = ErrorCollector()
     out, names = [], set()
     for i, table in enumerate(raw):
         field = f"detector.{i}"
         schema = {**DETECTOR, **{a: Field("length", None) for a in axes}}
-        t = validate_table(table, schema, field, units)
-        where = [a for a in axes if t.get(a) is not None]
-        if len(where) != 1:
-            raise JobError(field, f"give exactly one position, one of {', '.join(axes)} = ...")
-        a = where[0]
-        pos = units.to_atomic(t[a], "length", f"{field}.{a}")
-        lo = units.to_atomic(grid[a]["min"], "length")
-        hi = units.to_atomic(grid[a]["max"], "length")
-        if not lo < pos < hi:
-            raise JobError(f"{field}.{a}", f"{t[a]!r} lies outside the grid [{grid[a]['min']!r}, {grid[a]['max']!r}]")
-        t["name"] = t.get("name") or f"{a}={t[a]}"
-        if t["name"] in names:
-            raise JobError(f"{field}.name", f"{t['name']!r} is used twice")
-        names.add(t["name"])
-        out.append(t)
+        with found.check():
+            t = validate_table(table, schema, field, units)
+            where = [a for a in axes if t.get(a) is not None]
+            if len(where) != 1:
+                raise JobError(field, f"give exactly one position, one of {', '.join(axes)} = ...")
+            a = where[0]
+            t["name"] = t.get("name") or f"{a}={t[a]}"
+            if t["name"] in names:
+                raise JobError(f"{field}.name", f"{t['name']!r} is used twice")
+            names.add(t["name"])
+            if extents is not None and a in extents:
+                lo, hi, min_text, max_text = extents[a]
+                pos = units.to_atomic(t[a], "length", f"{field}.{a}")
+                if not lo < pos < hi:
+                    raise JobError(f"{field}.{a}", f"{t[a]!r} lies outside the grid [{min_text!r}, {max_text!r}]")
+            out.append(t)
+    found.raise_if_any()
     return out

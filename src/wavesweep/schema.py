@@ -4,7 +4,8 @@ A table's schema is a dict ``name -> Field``.  :func:`validate_table` checks a
 raw TOML table against it and returns the table with defaults filled in (still
 in the job's units, so it can be written back as a job file), and
 :func:`to_atomic` converts a validated table to atomic units.  Every error is a
-:class:`~wavesweep.errors.JobError` naming the dotted field.
+:class:`~wavesweep.errors.JobError` naming the dotted field; a table's
+independent errors are raised together (:class:`~wavesweep.errors.JobErrors`).
 """
 from __future__ import annotations
 
@@ -13,10 +14,10 @@ import math
 from dataclasses import dataclass
 from typing import Any
 
-from .errors import JobError
+from .errors import ErrorCollector, JobError
 from .units import KINDS, UnitSet
 
-__all__ = ["Field", "REQUIRED", "validate_table", "to_atomic", "check_unknown"]
+__all__ = ["Field", "REQUIRED", "validate_table", "to_atomic", "check_unknown", "unknown_keys"]
 
 
 class _Required:
@@ -56,15 +57,29 @@ class Field:
 
 
 def check_unknown(table: dict, allowed, prefix: str) -> None:
-    """Raise for the first key not in ``allowed``, suggesting the closest."""
+    """Raise for every key not in ``allowed`` (one error each), suggesting
+    the closest allowed key."""
+    found = ErrorCollector()
+    for error, _ in unknown_keys(table, allowed, prefix):
+        found.add(error)
+    found.raise_if_any()
+
+
+def unknown_keys(table: dict, allowed, prefix: str) -> list[tuple[JobError, str | None]]:
+    """``(error, suggestion)`` for each key of ``table`` not in ``allowed``;
+    ``suggestion`` is the closest allowed key, if one is close (a missing
+    required key that was suggested is a misspelling, not a second error)."""
     allowed = list(allowed)
+    out = []
     for key in table:
         if key not in allowed:
             near = difflib.get_close_matches(str(key), allowed, n=1, cutoff=0.5)
             hint = f"did you mean {near[0]!r}? " if near else ""
             where = "at the top level" if not prefix else f"in [{prefix}]"
-            raise JobError(_join(prefix, key),
-                           f"unknown key; {hint}allowed {where}: {', '.join(allowed)}")
+            out.append((JobError(_join(prefix, key),
+                                 f"unknown key; {hint}allowed {where}: {', '.join(allowed)}"),
+                        near[0] if near else None))
+    return out
 
 
 def _join(prefix: str, key) -> str:
@@ -131,35 +146,68 @@ def _check_scalar(f: Field, value, name: str, units: UnitSet | None):
 
 
 def validate_table(table, schema: dict[str, Field], prefix: str, units: UnitSet | None = None,
-                   ndim: int = 1, extra_ok: tuple = ()) -> dict:
+                   ndim: int | None = 1, extra_ok: tuple = ()) -> dict:
     """Check ``table`` against ``schema``; return it with defaults filled in.
 
     Values stay in the job's units (strings with units are kept as written).
+    Every key is checked on its own: all unknown, missing and bad keys are
+    raised together (:class:`~wavesweep.errors.JobErrors`), in the order of
+    the table, missing keys last.  A required key that is missing because it
+    was misspelled is reported once, as the unknown key with its suggestion.
+    ``ndim=None`` (the grid is not known) skips the check that per-axis lists
+    have one value per axis.
     """
     if not isinstance(table, dict):
         raise JobError(prefix, f"must be a table, got {_type_name(table)} {table!r}")
-    check_unknown(table, list(schema) + list(extra_ok), prefix)
-    out = {}
+    found = ErrorCollector()
+    suggested = set()
+    for error, near in unknown_keys(table, list(schema) + list(extra_ok), prefix):
+        found.add(error)
+        suggested.add(near)
+    out, checked = {}, {}
+    missing = []
     for key, f in schema.items():
         name = _join(prefix, key)
         if key not in table:
             if f.required:
-                what = f" ({f.doc})" if f.doc else ""
-                raise JobError(name, f"missing; add {key} = ...{what}")
-            if f.default is not None:
+                if key not in suggested:
+                    what = f" ({f.doc})" if f.doc else ""
+                    missing.append(JobError(name, f"missing; add {key} = ...{what}"))
+            elif f.default is not None:
                 out[key] = f.default
             continue
-        value = table[key]
-        if f.per_axis and isinstance(value, list):
-            if len(value) != ndim:
-                raise JobError(name, f"needs one value per grid axis ({ndim}), got {len(value)}")
-            out[key] = [_check_scalar(f, v, f"{name}.{i}", units) for i, v in enumerate(value)]
-        else:
-            out[key] = _check_scalar(f, value, name, units)
+        with found.check():
+            value = table[key]
+            if f.per_axis and isinstance(value, list):
+                if ndim is not None and len(value) != ndim:
+                    raise JobError(name, f"needs one value per grid axis ({ndim}), got {len(value)}")
+                per_value = ErrorCollector()
+                values = []
+                for i, v in enumerate(value):
+                    with per_value.check():
+                        values.append(_check_scalar(f, v, f"{name}.{i}", units))
+                per_value.raise_if_any()
+                checked[key] = values
+            else:
+                checked[key] = _check_scalar(f, value, name, units)
+    for e in missing:
+        found.add(e)
+    # the table's order, as written (the schema's order is not the user's)
+    order = {key: i for i, key in enumerate(table)}
+    found.raise_if_any(order=lambda e: order.get(_last_key(e.field, prefix), len(order)))
+    out.update(checked)
+    out = {key: out[key] for key in schema if key in out}   # the schema's order, as before
     for key in extra_ok:
         if key in table:
             out[key] = table[key]
     return out
+
+
+def _last_key(field: str, prefix: str) -> str:
+    """The key of ``prefix``'s table that ``field`` names (``grid.x.min`` ->
+    ``min`` for prefix ``grid.x``)."""
+    rest = field[len(prefix) + 1:] if prefix and field.startswith(prefix + ".") else field
+    return rest.split(".", 1)[0]
 
 
 def to_atomic(table: dict, schema: dict[str, Field], units: UnitSet, prefix: str = "",

@@ -31,7 +31,7 @@ from .io.checkpoint import (CheckpointCorrupt, CheckpointMismatch, CheckpointSta
 from .io.recorder import ResultWriter
 from .jobfile import Job, grid_axes, load_job
 from .observables import Detector, Observer
-from .potentials import PotentialContext, term_class
+from .potentials import PotentialContext, make_term
 from .propagators import propagator_class
 from .schema import Field, to_atomic
 from .states import PACKET_SCHEMAS, build_state, central_momenta, momentum_spread
@@ -105,12 +105,8 @@ class Setup:
 
     def _term(self, i, table, prefix="potential"):
         """A potential term from its table; ``prefix.i`` names it in messages."""
-        where = f"{prefix}.{i}"
-        cls = term_class(table["kind"], f"{where}.kind")
-        params = to_atomic({k: v for k, v in table.items() if k != "kind"}, cls.parameters,
-                           self.units, where, self.grid.ndim)
-        ctx = PotentialContext(self.grid, self.mass, self.charge, self.units, where)
-        return cls(params, ctx)
+        ctx = PotentialContext(self.grid, self.mass, self.charge, self.units, f"{prefix}.{i}")
+        return make_term(table, ctx)
 
     def _packet_atomic(self, table, name="packet") -> dict:
         kind = table["kind"]

@@ -14,19 +14,22 @@ job's unit for it is built from the job's four base units.  The four base
 units need not be mutually consistent in the ``E = M L^2 / T^2`` sense
 (nm / meV / fs / m_e are not): each kind has its own job unit, and everything
 is converted to atomic units on input, so the physics never sees the choice.
+A unit left out of ``[units]`` is derived from the given ones where they
+determine it, or refused (:meth:`UnitSet.from_table`): never silently atomic
+beside units that are not.
 """
 from __future__ import annotations
 
 import functools
 import math
 import re
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import scipy.constants as sc
 
-from .errors import JobError
+from .errors import ErrorCollector, JobError
 
-__all__ = ["UnitSet", "KINDS", "parse_unit", "ATOMIC"]
+__all__ = ["UnitSet", "KINDS", "parse_unit", "symbol_powers", "ATOMIC", "MECHANICAL"]
 
 # --- atomic units in SI (CODATA via scipy.constants) -------------------------
 _M_AU = sc.m_e                                   # kg
@@ -151,8 +154,34 @@ def _parse_unit(text: str, field: str = "unit") -> tuple[float, Dims]:
     next factor); a factor is a unit symbol with an optional integer power,
     or the number 1.
     """
+    factor, dims = 1.0, [0, 0, 0, 0]
+    for tok, power in _symbol_powers(text, field):
+        f, d = UNITS[tok]
+        factor *= f ** power
+        for j in range(4):
+            dims[j] += power * d[j]
+    return factor, tuple(dims)
+
+
+def symbol_powers(text: str, field: str = "unit") -> list[tuple[str, int]]:
+    """A unit expression as its symbols and their integer powers, in the
+    order written (``"m_e*nm/fs^2"`` -> ``[("m_e", 1), ("nm", 1), ("fs", -2)]``);
+    see :func:`parse_unit` for the grammar.  Cached, like :func:`parse_unit`."""
+    if isinstance(text, str) and isinstance(field, str):
+        return list(_symbol_powers_cached(text, field))
+    return _symbol_powers(text, field)
+
+
+@functools.lru_cache(maxsize=1024)
+def _symbol_powers_cached(text: str, field: str) -> tuple:
+    return tuple(_symbol_powers(text, field))
+
+
+def _symbol_powers(text, field: str = "unit") -> list[tuple[str, int]]:
     bad = JobError(field, f"cannot read unit {text!r}; write e.g. 'nm', 'meV/nm', "
                           "'m_e*nm/fs' or 'fs^-1'")
+    if not isinstance(text, str):
+        raise bad
     tokens, pos = [], 0
     while pos < len(text):
         m = _TOKEN.match(text, pos)
@@ -162,7 +191,7 @@ def _parse_unit(text: str, field: str = "unit") -> tuple[float, Dims]:
             raise bad
         pos = m.end()
         tokens.append((m.lastgroup, m.group(m.lastgroup)))
-    factor, dims = 1.0, [0, 0, 0, 0]
+    out = []
     sign, i, need_factor = 1, 0, True
     while i < len(tokens):
         kind, tok = tokens[i]
@@ -196,26 +225,68 @@ def _parse_unit(text: str, field: str = "unit") -> tuple[float, Dims]:
         elif i + 1 < len(tokens) and tokens[i + 1][0] == "num" and tokens[i + 1][1][0] in "+-":
             power = int(tokens[i + 1][1])   # "s-1", "nm-2" (CF units, as results write them)
             i += 1
-        f, d = UNITS[tok]
-        factor *= f ** (sign * power)
-        for j in range(4):
-            dims[j] += sign * power * d[j]
+        out.append((tok, sign * power))
         need_factor, i = False, i + 1
     if need_factor:
         raise bad
-    return factor, tuple(dims)
+    return out
+
+
+def _merge_powers(parts) -> list[tuple[str, int]]:
+    """Symbol powers with each symbol once (powers added; first place kept),
+    zero powers dropped."""
+    total: dict[str, int] = {}
+    for sym, p in parts:
+        total[sym] = total.get(sym, 0) + p
+    return [(sym, p) for sym, p in total.items() if p != 0]
+
+
+def _write_powers(parts, caret: bool = False) -> str:
+    """Symbol powers as a unit string the parser reads back: CF style
+    (``"m_e nm2 fs-2"``), or with ``^`` (``"m_e nm^2 fs^-2"``) when ``caret``
+    or where a symbol ends in a digit (``a0^2``, not ``a02``)."""
+    out = []
+    for sym, p in parts:
+        if p == 1:
+            out.append(sym)
+        elif caret or sym[-1].isdigit():
+            out.append(f"{sym}^{p}")
+        else:
+            out.append(f"{sym}{p}")
+    return " ".join(out) if out else "1"
 
 
 _QUANTITY = re.compile(r"^\s*(?P<num>[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?)\s*(?P<unit>.*?)\s*$")
+
+
+# The four mechanical base units: energy = mass length^2 / time^2 relates them.
+MECHANICAL = ("length", "energy", "time", "mass")
 
 
 @dataclass(frozen=True)
 class UnitSet:
     """The job's units: the name of each base unit and its factor to atomic units.
 
-    ``UnitSet.from_table({"length": "nm", "energy": "meV"})`` gives a set where
-    the time unit follows from hbar / energy unit unless given, as the job-file
-    contract says.  Factors are derived once; conversion is multiplication.
+    :meth:`from_table` reads a ``[units]`` table.  No table (or an empty one):
+    atomic units.  Otherwise a unit left out is derived from the given ones
+    where they determine it, or the table is refused naming it, so that no
+    unit is silently atomic beside units that are not:
+
+    * ``mass`` left out is ``m_e`` (a stated default; ``particle.mass`` is
+      then in electron masses);
+    * ``time`` left out, ``energy`` given: time follows as hbar / energy
+      (``hbar/meV`` = 0.658 ps), as the job-file contract says;
+    * ``energy`` left out, ``length`` and ``time`` given: energy follows as
+      mass length^2 / time^2 (nm, fs and m_e: m_e nm^2 fs^-2 = 5.686 eV);
+    * ``length`` left out, or ``energy`` and ``time`` both left out: refused
+      (:class:`~wavesweep.errors.JobError` on ``units.length`` /
+      ``units.energy``), unless every unit given is the atomic one.
+
+    ``describe()`` says which units are given, derived or defaults.  The
+    derived energy is written out as a unit string (``energy``), so the
+    resolved job states it; the derived time is written as ``hbar/<energy>``
+    in labels and left out of the resolved table (it is derived again the
+    same way).
     """
 
     length: str = "bohr"
@@ -224,31 +295,69 @@ class UnitSet:
     mass: str = "m_e"
     charge: str = "e_charge"
     time_derived: bool = False
+    energy_derived: bool = False
+    given: tuple = field(default=(), compare=False)   # the keys the [units] table gave
 
     @classmethod
     def from_table(cls, table: dict | None, field: str = "units") -> "UnitSet":
+        """The unit set of a ``[units]`` table (see the class docstring for
+        the rules); every independent error is raised together."""
         table = dict(table or {})
         allowed = ("length", "energy", "time", "mass", "charge")
+        found = ErrorCollector()
         for key in table:
             if key not in allowed:
                 import difflib
                 near = difflib.get_close_matches(key, allowed, n=1)
                 hint = f" (did you mean {near[0]!r}?)" if near else ""
-                raise JobError(f"{field}.{key}", f"unknown key{hint}; allowed: {', '.join(allowed)}")
-            if not isinstance(table[key], str):
-                raise JobError(f"{field}.{key}", f"must be a unit name as a string, got {table[key]!r}")
-        names = {}
+                found.add(JobError(f"{field}.{key}", f"unknown key{hint}; allowed: {', '.join(allowed)}"))
+        names, factors = {}, {}
         for key in allowed:
-            name = table.get(key, _DEFAULT_NAMES[key])
-            _, dims = parse_unit(name, f"{field}.{key}")
-            want = KINDS[key].dims
-            if dims != want:
-                raise JobError(f"{field}.{key}", f"{name!r} is not a unit of {key}")
-            names[key] = name
-        derived = "time" not in table and "energy" in table
-        if derived:
+            if key not in table:
+                continue
+            with found.check():
+                name = table[key]
+                if not isinstance(name, str):
+                    raise JobError(f"{field}.{key}", f"must be a unit name as a string, got {name!r}")
+                factor, dims = parse_unit(name, f"{field}.{key}")
+                if dims != KINDS[key].dims:
+                    raise JobError(f"{field}.{key}", f"{name!r} is not a unit of {key}")
+                names[key], factors[key] = name, factor
+        given = tuple(k for k in MECHANICAL if k in table)
+        # a left-out unit that nothing derives would silently be atomic beside
+        # units that are not; all given units atomic (valid ones: a bad one
+        # is reported on its own) is a consistent atomic set
+        atomic = all(math.isclose(factors[k], 1.0, rel_tol=1e-12) for k in given if k in names)
+        if given and not atomic:
+            found_units = ", ".join(f"{k} {table[k]!r}" for k in given)
+            if "length" not in table:
+                found.add(JobError(f"{field}.length",
+                                   f"left out while [units] gives {found_units}: lengths would silently "
+                                   "be bohr; add length = 'nm' (or another length unit; 'bohr' for "
+                                   "atomic lengths)"))
+            if "energy" not in table and "time" not in table:
+                found.add(JobError(f"{field}.energy",
+                                   f"left out, and with no time unit nothing determines it ([units] gives "
+                                   f"{found_units}): energies would silently be hartree; add energy = "
+                                   "'meV' (time then follows as hbar/meV) or time = 'fs' (energy then "
+                                   "follows as mass length^2/time^2), or energy = 'hartree' for atomic "
+                                   "energies"))
+        found.raise_if_any(order=lambda e: list(table).index(e.field.split(".")[-1])
+                           if e.field.split(".")[-1] in table else len(table))
+        for key in allowed:
+            names.setdefault(key, _DEFAULT_NAMES[key])
+        time_derived = "time" not in table and "energy" in table
+        energy_derived = "energy" not in table and "time" in table and "length" in table
+        if time_derived:
             names["time"] = f"hbar/{names['energy']}"
-        return cls(**names, time_derived=derived)
+        if energy_derived:
+            # E = M L^2 / T^2, written as a unit string the parser reads back
+            parts = [(s, p) for s, p in symbol_powers(names["mass"])]
+            parts += [(s, 2 * p) for s, p in symbol_powers(names["length"])]
+            parts += [(s, -2 * p) for s, p in symbol_powers(names["time"])]
+            names["energy"] = _write_powers(_merge_powers(parts), caret=True)
+        return cls(**names, time_derived=time_derived, energy_derived=energy_derived,
+                   given=tuple(k for k in allowed if k in table))
 
     # -- factors -----------------------------------------------------------
     def base_factor(self, base: str) -> float:
@@ -267,14 +376,16 @@ class UnitSet:
         return f
 
     def unit_label(self, kind: str) -> str:
-        """A CF-style unit string for ``kind`` in this unit set (``"nm-1"``)."""
+        """A CF-style unit string for ``kind`` in this unit set (``"nm-1"``;
+        a derived energy is spelled out: ``"m_e nm2 fs-2"``)."""
         parts = []
         for base, power in KINDS[kind].job_unit:
             name = getattr(self, base)
             if base == "time" and self.time_derived:
-                name = f"(hbar/{self.energy})"
-            parts.append(name if power == 1 else f"{name}{power}")
-        return " ".join(parts) if parts else "1"
+                parts.append((f"(hbar/{self.energy})", power))
+            else:
+                parts += [(sym, p * power) for sym, p in symbol_powers(name)]
+        return _write_powers(_merge_powers(parts))
 
     def density_label(self, ndim: int) -> str:
         name = self.length
@@ -300,6 +411,35 @@ class UnitSet:
         """Atomic units -> numbers in the job's unit for ``kind``."""
         return value_au / self.factor(kind)
 
+    def describe(self) -> str:
+        """One line naming the unit of each base quantity, and whether it is
+        given, derived (with its value in a familiar unit) or a default::
+
+            units: length nm, energy m_e nm^2 fs^-2 (derived: mass length^2/time^2 = 5.686 eV),
+            time fs, mass m_e (default)
+        """
+        if not any(k in self.given for k in MECHANICAL):
+            charge = f", charge {self.charge}" if "charge" in self.given else ""
+            return (f"units: atomic (length bohr, energy hartree, time au_time = "
+                    f"{_familiar(_T_AU, 'time')}, mass m_e{charge}); no [units] table")
+        items = []
+        for base in MECHANICAL:
+            name = getattr(self, base)
+            if base == "time" and self.time_derived:
+                au = self.base_factor("time")
+                items.append(f"time {name} (derived: hbar/energy = {_familiar(au * _T_AU, 'time')})")
+            elif base == "energy" and self.energy_derived:
+                au = self.base_factor("energy")
+                items.append(f"energy {name} (derived: mass length^2/time^2 = "
+                             f"{_familiar(au * _E_AU, 'energy')})")
+            elif base not in self.given:
+                items.append(f"{base} {name} (default)")
+            else:
+                items.append(f"{base} {name}")
+        if "charge" in self.given:
+            items.append(f"charge {self.charge}")
+        return "units: " + ", ".join(items)
+
     def as_table(self) -> dict:
         out = {"length": self.length, "energy": self.energy, "mass": self.mass}
         if not self.time_derived:
@@ -310,6 +450,26 @@ class UnitSet:
 
 
 ATOMIC = UnitSet()
+
+# Familiar units a derived unit's size is quoted in (SI value of each).
+_FAMILIAR = {
+    "time": [("as", 1e-18), ("fs", 1e-15), ("ps", 1e-12), ("ns", 1e-9), ("us", 1e-6), ("ms", 1e-3),
+             ("s", 1.0)],
+    "energy": [("nK", 1e-9 * sc.k), ("uK", 1e-6 * sc.k), ("neV", 1e-9 * sc.eV), ("ueV", 1e-6 * sc.eV),
+               ("meV", 1e-3 * sc.eV), ("eV", sc.eV), ("keV", 1e3 * sc.eV), ("MeV", 1e6 * sc.eV)],
+}
+
+
+def _familiar(si_value: float, base: str) -> str:
+    """``si_value`` (J or s) in the largest familiar unit not above it,
+    four significant digits (``"5.686 eV"``; energies below 1 neV as
+    temperatures k_B T in nK or uK, as cold-atom work quotes them)."""
+    choices = _FAMILIAR[base]
+    name, size = choices[0]
+    for n, v in choices:
+        if si_value >= v * (1 - 1e-9):
+            name, size = n, v
+    return f"{si_value / size:.4g} {name}"
 
 
 def quantity_to_atomic(text: str, kind: str, field: str = "value") -> float:

@@ -377,6 +377,65 @@ def test_check_json_with_an_error_finding(tmp_path):
     assert errors[0]["values"]["widths"] == pytest.approx(2.0)
 
 
+# -- all errors at once (issue 12) ----------------------------------------------------
+FIVE_MISTAKES = """\
+title = "five mistakes"
+[particle]
+mass = -1.0
+[grid]
+x = { min = -40.0, max = 40.0, points = 0 }
+[[potential]]
+kind = "barrier"
+height = 0.5
+widht = 1.0
+center = 0.0
+[packet]
+center = -10.0
+width = 2.0
+momentum = 1.0
+[evolve]
+dt = 0.05
+duration = 1.0
+scheme = "leapfrog"
+[record]
+every = 0.07
+"""
+
+
+@pytest.mark.parametrize("command", ["run", "check"])
+def test_five_mistakes_are_five_lines_in_file_order(tmp_path, command):
+    """A job with five mistakes took five runs to fix (issue 12): now one run
+    prints one line per mistake, ``wavesweep <command>: <field>: ...``, in
+    the order of the job file, and exits 2 with nothing written."""
+    job = tmp_path / "job.toml"
+    job.write_text(FIVE_MISTAKES)
+    args = ["-o", tmp_path / "out", "--quiet"] if command == "run" else []
+    proc = cli(command, job, *args, cwd=tmp_path)
+    assert "Traceback" not in proc.stdout + proc.stderr, proc.stderr
+    assert proc.returncode == 2, proc.stderr
+    assert proc.stdout == ""
+    lines = proc.stderr.splitlines()
+    fields = ["particle.mass", "grid.x.points", "potential.0.widht", "evolve.scheme", "record.every"]
+    assert len(lines) == 5, proc.stderr
+    for line, field in zip(lines, fields):
+        assert line.startswith(f"wavesweep {command}: {field}: "), line
+    assert "'width'" in lines[2] and "0.05" in lines[4]
+    assert leftovers(tmp_path / "out") == []
+
+
+def test_many_errors_are_capped_with_a_count(tmp_path, capsys):
+    """30 detectors outside the grid: 20 lines, then how many more (in-process)."""
+    from wavesweep.cli import MAX_ERROR_LINES, main
+
+    table = merged(TINY, {"detector": [{"name": f"d{i}", "x": 100.0 + i} for i in range(30)]})
+    code = main(["check", str(write_job(tmp_path, table))])
+    assert code == 2
+    lines = capsys.readouterr().err.splitlines()
+    assert len(lines) == MAX_ERROR_LINES + 1 == 21
+    assert lines[0].startswith("wavesweep check: detector.0.x: 100.0 lies outside the grid")
+    assert lines[-1] == "wavesweep check: ... and 10 more errors"
+
+
 # -- --set and [sweep] -------------------------------------------------------------
 SWEPT = merged(TINY, {"sweep": {"packet.width": [1.0, 1.1]}})
 

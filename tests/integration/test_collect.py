@@ -355,7 +355,9 @@ def test_times_that_differ_by_rounding_are_one_sample(tmp_path):
 
 
 def test_runs_in_different_unit_sets_are_an_error(tmp_path):
-    submit_and_run(TINY | {"sweep": {"units.length": ["bohr", "angstrom"]}}, tmp_path, "m")
+    # energy given: a length in angstrom beside atomic energies is then not a silent default
+    submit_and_run(TINY | {"units": {"energy": "hartree"}, "sweep": {"units.length": ["bohr", "angstrom"]}},
+                   tmp_path, "m")
     with pytest.raises(JobError, match=r"different unit sets .*length=bohr.*length=angstrom"):
         collect(tmp_path, "m")
 

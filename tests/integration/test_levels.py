@@ -28,7 +28,7 @@ def test_hydrogen_s_levels_in_ev():
     The -1/r cusp makes the sine grid converge as dx^2 (measured: 1.1e-3 at
     dx = 0.039 bohr), so 8192 points, which the iterative path solves."""
     rydberg_ev = sc.physical_constants["Rydberg constant times hc in eV"][0]
-    job = make_job({"units": {"energy": "eV"},
+    job = make_job({"units": {"length": "bohr", "energy": "eV"},
                     "grid": {"r": {"max": 80.0, "points": 8192}, "l": 0},
                     "potential": [{"kind": "coulomb"}],
                     "packet": {"kind": "gaussian", "center": 10.0, "width": 1.0},

@@ -163,7 +163,7 @@ def test_default_sampling_is_written_as_by_hand():
 
 
 def test_default_sampling_in_femtoseconds():
-    t = job_from_dict({**copy.deepcopy(JOB), "units": {"time": "fs"},
+    t = job_from_dict({**copy.deepcopy(JOB), "units": {"length": "bohr", "energy": "hartree", "time": "fs"},
                        "evolve": {"dt": 0.3, "duration": 3000.0}, "record": {}}).table
     assert t["record"]["every"] == 3.0            # 10 000 steps -> every 10 steps
     assert t["record"]["snapshot_every"] == 30.0
@@ -242,7 +242,7 @@ def test_strings_with_units_are_accepted_and_kept_as_written():
 
 
 def test_number_in_job_units_equals_string_with_that_unit():
-    in_units = job_from_dict({**copy.deepcopy(JOB), "units": {"length": "nm"},
+    in_units = job_from_dict({**copy.deepcopy(JOB), "units": {"length": "nm", "energy": "hartree"},
                               "grid": {"x": {"min": -3.0, "max": 3.0, "points": 256}},
                               "packet": {"center": -1.0, "width": 0.1, "momentum": 0.0},
                               "detector": []})
@@ -410,3 +410,111 @@ def test_layers_on_one_axis_only_need_room_on_that_axis():
     with pytest.raises(JobError) as info:
         job_from_dict(table | {"absorber": {"kind": "cap", "thickness": 25.0, "faces": ["x+"]}})
     assert info.value.field == "absorber.thickness" and "the layer does not fit" in info.value.message
+
+
+# -- all errors at once (issue 12) -----------------------------------------------------
+def test_independent_errors_are_reported_together_in_file_order():
+    """Five mistakes in five tables: one JobError (JobErrors) listing all
+    five in the order of the job file; ``field`` is the first one's, and
+    ``str()`` stays one line, so callers written for one error still work."""
+    from wavesweep.errors import JobErrors
+
+    text = """
+title = "five mistakes"
+[particle]
+mass = -1.0
+[grid]
+x = { min = -60.0, max = 60.0, points = 0 }
+[[potential]]
+kind = "barrier"
+height = 0.3
+widht = 1.0
+center = 10.0
+[packet]
+center = -20.0
+width = 2.0
+momentum = 1.0
+[evolve]
+dt = 0.02
+duration = 4.0
+scheme = "leapfrog"
+[record]
+every = 0.03
+"""
+    with pytest.raises(JobError) as info:
+        job_from_dict(tomllib.loads(text))
+    e = info.value
+    assert isinstance(e, JobErrors)
+    assert [x.field for x in e.errors] == ["particle.mass", "grid.x.points", "potential.0.widht",
+                                          "evolve.scheme", "record.every"]
+    assert e.field == "particle.mass" and "positive" in e.message
+    assert len(e.lines()) == 5 and all("\n" not in line for line in e.lines())
+    assert "\n" not in str(e) and "record.every" in str(e)
+    # the order is the file's, not the validator's: [record] first, then [particle]
+    moved = text.replace("[record]\nevery = 0.03\n", "").replace("[particle]", "[record]\nevery = 0.03\n[particle]")
+    with pytest.raises(JobError) as info:
+        job_from_dict(tomllib.loads(moved))
+    assert [x.field for x in info.value.errors][:2] == ["record.every", "particle.mass"]
+
+
+def test_every_bad_key_of_one_table_is_reported():
+    e = error({**copy.deepcopy(JOB), "packet": {"center": "3 meV", "width": -2.0, "momentum": "x",
+                                                 "colour": 1}})
+    assert [x.field for x in e.errors] == ["packet.center", "packet.width", "packet.momentum",
+                                          "packet.colour"]
+
+
+@pytest.mark.parametrize(("patch", "fields"), [
+    # a misspelled key is not also missing
+    ({"packet": {"center": -20.0, "widht": 2.0}}, ["packet.widht"]),
+    ({"evolve": None, "evolv": {"dt": 0.02, "duration": 4.0}}, ["evolv"]),
+    # the record's sampling needs evolve.dt: not judged without it
+    ({"evolve": {"duration": 4.0}, "record": {"every": 0.03}}, ["evolve.dt"]),
+    # detectors and absorber layers need the axis extent: not judged without it
+    ({"grid": {"x": {"min": 60.0, "max": -60.0, "points": 256}}, "detector": [{"x": 100.0}],
+      "absorber": {"kind": "cap", "thickness": 100.0}}, ["grid.x.max"]),
+    ({"grid": None, "detector": [{"x": 1.0}]}, ["grid"]),
+    # ... but a bad point count does not hide a detector outside the axis
+    ({"grid": {"x": {"min": -60.0, "max": 60.0, "points": 0}}, "detector": [{"x": 100.0}]},
+     ["grid.x.points", "detector.0.x"]),
+    # bad [units]: values are still checked one by one, not compared
+    ({"units": {"length": "nmm", "energy": "meV"}, "packet": {"center": -20.0, "width": -2.0, "momentum": 1.0},
+      "detector": [{"x": 100.0}]}, ["packet.width", "units.length"]),
+])
+def test_a_consequence_of_an_error_is_not_an_error_of_its_own(patch, fields):
+    table = copy.deepcopy(JOB)
+    for key, value in patch.items():
+        if value is None:
+            table.pop(key)
+        else:
+            table[key] = value
+    assert [x.field for x in error(table).errors] == fields
+
+
+def test_each_potential_checks_itself_at_load_time():
+    """A term's own checks (here: a driving field needs the particle's
+    charge; slits need a 2D grid) ran only when the run was set up, after
+    the table checks: they now come with the job's other errors."""
+    table = copy.deepcopy(JOB)
+    table["potential"] = [{"kind": "field", "amplitude": 0.01, "omega": 0.05},
+                          {"kind": "slits", "position": 0.0, "height": 1.0, "thickness": 1.0,
+                           "opening_width": 1.0, "openings": [0.0]}]
+    table["packet"]["width"] = -2.0
+    e = error(table)
+    assert [x.field for x in e.errors] == ["potential.1.kind", "packet.width", "particle.charge"]
+
+
+def test_a_study_reports_each_error_once_with_the_points_it_occurs_at():
+    from wavesweep.batch.sweep import expand_study
+    from wavesweep.errors import JobErrors
+
+    table = copy.deepcopy(JOB)
+    table["packet"]["center"] = "-20 meV"           # wrong at every point
+    table["sweep"] = {"packet.width": [2.0, -1.0], "potential.0.height": [0.1, 0.2, 0.3]}
+    with pytest.raises(JobErrors) as info:
+        expand_study(table)
+    lines = info.value.lines()
+    assert len(lines) == 2, lines
+    assert lines[0].startswith("packet.center:") and lines[0].endswith("(in all 6 sweep points)")
+    assert lines[1].startswith("packet.width: must be positive, got -1.0 (in 3 of 6 sweep points: "
+                               "packet.width = -1.0, potential.0.height = 0.1;")

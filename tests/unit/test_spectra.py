@@ -294,7 +294,7 @@ def test_states_file_round_trip(tmp_path):
     """write_states -> [packet] kind = "file", state = i gives back state i
     (the file is in nm: coordinates convert through length_to_bohr)."""
     table = _job({"x": {"min": -0.6, "max": 0.6, "points": 64}}, [{"kind": "harmonic", "omega": 1.0}],
-                 units={"length": "nm"})
+                 units={"length": "nm", "energy": "hartree"})
     setup = setup_of(table)
     energies, states = stationary_states(setup, 3)
     path = write_states(tmp_path / "states.nc", setup, energies, states)

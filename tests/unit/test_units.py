@@ -287,3 +287,106 @@ def test_job_units_give_the_same_physics(tmp_path):
     # the result says which units it is in
     assert nm.x.attrs["units"] == "nm" and nm.time.attrs["units"] == "fs"
     assert nm.attrs["length_to_bohr"] == pytest.approx(NM, rel=1e-12)
+
+
+# --- a left-out unit: derived where the others determine it, else refused (issue 12) ---
+
+# CODATA (scipy.constants): m_e nm^2 / fs^2 in joule and in hartree; by hand
+# from memory: 9.109e-31 kg x 1e-18 m^2 / 1e-30 s^2 = 9.109e-19 J = 5.686 eV.
+M_E_NM2_PER_FS2_J = sc.m_e * (1e-9) ** 2 / (1e-15) ** 2
+HARTREE_J = PC["Hartree energy"][0]
+
+
+def test_left_out_energy_is_mass_length2_over_time2():
+    """length, time and mass given, energy left out: energies were silently
+    hartree (issue 12); now E = M L^2 / T^2, against CODATA."""
+    u = UnitSet.from_table({"length": "nm", "time": "fs", "mass": "m_e"})
+    assert u.energy_derived
+    assert u.factor("energy") == pytest.approx(M_E_NM2_PER_FS2_J / HARTREE_J, rel=1e-12)
+    assert M_E_NM2_PER_FS2_J / sc.eV == pytest.approx(5.686, rel=1e-3)    # from memory
+    # the other kinds follow: a force in energy / length is M L / T^2
+    assert u.factor("energy_per_length") == pytest.approx(
+        sc.m_e * 1e-9 / (1e-15) ** 2 / (HARTREE_J / BOHR_M), rel=1e-12)
+    # a cold-atom set (um, ms, Da): 1 Da um^2/ms^2 = 1.6605e-33 J
+    cold = UnitSet.from_table({"length": "um", "time": "ms", "mass": "Da"})
+    assert cold.factor("energy") == pytest.approx(sc.atomic_mass * 1e-12 / 1e-6 / HARTREE_J, rel=1e-12)
+    # the mass left out as well: m_e, the stated default
+    assert UnitSet.from_table({"length": "nm", "time": "fs"}).factor("energy") == pytest.approx(
+        u.factor("energy"), rel=1e-12)
+
+
+def test_derived_energy_is_written_as_a_unit_the_parser_reads_back():
+    """The derived energy is a unit string (resolved job, result attributes),
+    and every kind's label converts back to the same factor."""
+    u = UnitSet.from_table({"length": "nm", "time": "fs", "mass": "Da"})
+    assert u.as_table()["energy"] == "Da nm^2 fs^-2"
+    assert UnitSet.from_table(u.as_table()).factor("energy") == pytest.approx(u.factor("energy"), rel=1e-14)
+    assert u.unit_label("energy") == "Da nm2 fs-2"
+    for kind in ("length", "energy", "time", "mass", "momentum", "velocity", "wavenumber",
+                 "frequency", "energy_per_length", "energy_length", "electric_field"):
+        assert parse_unit(u.unit_label(kind))[0] == pytest.approx(u.factor(kind), rel=1e-12), kind
+    assert u.unit_label("energy_per_length") == "Da nm fs-2"      # powers of one symbol combined
+
+
+@pytest.mark.parametrize(("table", "fields"), [
+    ({"length": "nm"}, ["units.energy"]),                 # energies would be hartree beside nm
+    ({"energy": "eV"}, ["units.length"]),                 # lengths would be bohr beside eV
+    ({"time": "fs"}, ["units.length"]),                   # energy follows once a length is given
+    ({"mass": "amu"}, ["units.length", "units.energy"]),  # two independent gaps: both said at once
+    ({"mass": "amu", "time": "fs", "energy": "meV"}, ["units.length"]),
+])
+def test_a_left_out_unit_nothing_determines_is_refused(table, fields):
+    with pytest.raises(JobError) as info:
+        UnitSet.from_table(table)
+    assert [e.field for e in info.value.errors] == fields, str(info.value)
+    for e in info.value.errors:
+        assert "silently" in e.message and "add " in e.message and "\n" not in e.message
+
+
+@pytest.mark.parametrize("table", [None, {}, {"length": "bohr"}, {"mass": "m_e"},
+                                   {"energy": "hartree", "charge": "e_charge"},
+                                   {"length": "nm", "energy": "meV"},           # time = hbar/meV
+                                   {"length": "nm", "energy": "meV", "time": "fs"}])
+def test_atomic_or_determined_sets_are_accepted(table):
+    UnitSet.from_table(table)
+
+
+def test_describe_names_given_derived_and_default_units():
+    assert UnitSet.from_table({"length": "nm", "time": "fs"}).describe() == (
+        "units: length nm, energy m_e nm^2 fs^-2 (derived: mass length^2/time^2 = 5.686 eV), "
+        "time fs, mass m_e (default)")
+    # hbar/meV = 0.6582 ps (CODATA: hbar / 1 meV = 6.582e-13 s)
+    hbar_mev_fs = sc.hbar / (1e-3 * sc.eV) / 1e-15
+    assert f"{hbar_mev_fs:.4g} fs" == "658.2 fs"
+    assert UnitSet.from_table({"length": "nm", "energy": "meV"}).describe() == (
+        "units: length nm, energy meV, time hbar/meV (derived: hbar/energy = 658.2 fs), mass m_e (default)")
+    assert "no [units] table" in UnitSet.from_table(None).describe()
+    assert "(derived" not in UnitSet.from_table({"length": "nm", "energy": "meV", "time": "fs",
+                                                 "mass": "Da"}).describe()
+
+
+def test_a_job_with_energy_left_out_runs_in_the_derived_unit(tmp_path):
+    """A free Gaussian packet in nm / fs / m_e: the result's energy, read in
+    the unit its attribute names, is <H> = p0^2/2m + hbar^2/(8 m sigma^2)
+    (sigma the standard deviation of |psi|^2; closed form of a Gaussian,
+    from memory), in joule with CODATA factors."""
+    table = {
+        "units": {"length": "nm", "time": "fs", "mass": "m_e"},
+        "grid": {"x": {"min": -60.0, "max": 60.0, "points": 512}},
+        "packet": {"kind": "gaussian", "center": 0.0, "width": 3.0, "momentum": 0.5},
+        "evolve": {"dt": 0.5, "duration": 5.0},
+        "record": {"every": 2.5, "snapshot_every": 5.0},
+    }
+    job = make_job(table)
+    assert job.table["units"]["energy"] == "m_e nm^2 fs^-2"     # written in the resolved job
+    ds = run_table(table, tmp_path)
+    p0_si = 0.5 * sc.m_e * 1e-9 / 1e-15
+    sigma_si = 3.0e-9
+    expected_j = p0_si**2 / (2 * sc.m_e) + sc.hbar**2 / (8 * sc.m_e * sigma_si**2)
+    unit = ds["energy"].attrs["units"]
+    assert unit == "m_e nm2 fs-2"
+    energy_j = float(ds["energy"].values[0]) * parse_unit(unit)[0] * HARTREE_J
+    assert energy_j == pytest.approx(expected_j, rel=1e-6)
+    # by hand: 1/2 m_e (5e5 m/s)^2 = 0.7107 eV plus 1.06 meV of spread; the
+    # number in the file, 0.125, read as hartree would have been 3.4 eV
+    assert expected_j / sc.eV == pytest.approx(0.7118, rel=1e-3)

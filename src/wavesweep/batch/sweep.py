@@ -12,8 +12,8 @@ Keys are dotted paths into any job field, array tables by index.  Each run
 is the fully resolved job for one point; its id is the content hash of that
 job's canonical form (:attr:`wavesweep.jobfile.Job.run_id`), so the same
 physics always has the same id.  Every point is validated when the study is
-expanded: a bad point is a JobError naming the sweep key and value, and
-nothing is queued.
+expanded: every error is reported, once, with the sweep points it occurs
+at (a JobError, or JobErrors for several), and nothing is queued.
 
 ``--set`` overrides apply to every run, but not to a swept key (or a table
 holding one, or a field inside one): the sweep would decide the value, so
@@ -29,8 +29,8 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import JobError
-from ..jobfile import Job, job_from_dict, parse_override, read_job_file
+from ..errors import ErrorCollector, JobError, combine_errors
+from ..jobfile import Job, file_position, job_from_dict, parse_override, read_job_file
 
 __all__ = ["RunSpec", "Study", "expand_study", "load_study", "sweep_axes", "refuse_swept_overrides"]
 
@@ -111,7 +111,13 @@ def sweep_axes(sweep: dict) -> tuple[str, dict]:
     mode = sweep.get("mode", "grid")
     if mode not in MODES:
         raise JobError("sweep.mode", f"{mode!r} is not one of {', '.join(map(repr, MODES))}")
-    axes = {k: _values(k, v) for k, v in sweep.items() if k != "mode"}
+    found = ErrorCollector()
+    axes = {}
+    for k, v in sweep.items():
+        if k != "mode":
+            with found.check():
+                axes[k] = _values(k, v)
+    found.raise_if_any()
     if not axes:
         raise JobError("sweep", "names no field to sweep; add e.g. \"packet.energy\" = [40.0, 80.0]")
     if mode == "zip":
@@ -193,7 +199,10 @@ def expand_study(raw: dict, source: Path | None = None, name: str | None = None,
     keys = list(axes)
     points = (zip(*axes.values()) if mode == "zip" else itertools.product(*axes.values()))
     runs, seen = [], set()
+    failed: dict[tuple[str, str], list[str]] = {}   # (field, message) -> the points it occurs at
+    count = 0
     for values in points:
+        count += 1
         point = dict(zip(keys, values))
         sets = list(overrides) + [(k, v) for k, v in point.items()]
         try:
@@ -201,12 +210,39 @@ def expand_study(raw: dict, source: Path | None = None, name: str | None = None,
             job.resolve()
         except JobError as e:
             where = ", ".join(f"{k} = {v!r}" for k, v in point.items())
-            raise JobError(e.field, f"{e.message} (in the sweep point {where})") from None
+            for one in e.errors:
+                failed.setdefault((one.field, one.message), []).append(where)
+            continue
         if job.run_id in seen:   # two points giving the same physics run once
             continue
         seen.add(job.run_id)
         runs.append(RunSpec(job, point))
+    if failed:
+        raise _sweep_errors(failed, count, raw)
     return Study(study_name, runs, axes, mode, source)
+
+
+# How many sweep points a message names before "and N more".
+POINTS_NAMED = 3
+
+
+def _sweep_errors(failed: dict, count: int, raw: dict) -> JobError:
+    """One error per distinct (field, message), in the order of the job
+    file, saying which sweep points it occurs at (all of them: once, not
+    once per point)."""
+    errors = []
+    for (field_name, message), wheres in failed.items():
+        if len(wheres) == count and count > 1:
+            where = f"in all {count} sweep points"
+        elif len(wheres) == 1:
+            where = f"in the sweep point {wheres[0]}"
+        else:
+            named = "; ".join(wheres[:POINTS_NAMED])
+            more = f" and {len(wheres) - POINTS_NAMED} more" if len(wheres) > POINTS_NAMED else ""
+            where = f"in {len(wheres)} of {count} sweep points: {named}{more}"
+        errors.append(JobError(field_name, f"{message} ({where})"))
+    errors.sort(key=lambda e: file_position(raw, e.field))
+    return combine_errors(errors)
 
 
 def load_study(path, overrides=(), name: str | None = None) -> Study:

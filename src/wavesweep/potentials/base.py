@@ -19,9 +19,9 @@ from typing import ClassVar
 import numpy as np
 
 from ..errors import JobError
-from ..schema import Field
+from ..schema import Field, to_atomic
 
-__all__ = ["PotentialTerm", "PotentialContext", "REGISTRY", "register", "term_class"]
+__all__ = ["PotentialTerm", "PotentialContext", "REGISTRY", "register", "term_class", "make_term"]
 
 
 @dataclass(frozen=True)
@@ -60,7 +60,11 @@ class PotentialTerm:
         self.validate()
 
     def validate(self) -> None:
-        """Check parameter combinations; raise JobError naming the field."""
+        """Check parameter combinations; raise JobError naming the field
+        (several independent ones together with
+        :class:`~wavesweep.errors.ErrorCollector`).  Called when the term
+        is built, which the job loader does once for every valid table
+        (:func:`make_term`), so these errors come with the job's others."""
 
     def axis_of(self, name: str = "axis") -> int:
         """Index of the grid axis named by parameter ``name`` (default ``x``)."""
@@ -104,3 +108,13 @@ def term_class(kind, field: str) -> type[PotentialTerm]:
         hint = f"did you mean {near[0]!r}? " if near else ""
         raise JobError(field, f"unknown potential kind {kind!r}; {hint}"
                               f"known kinds: {', '.join(sorted(REGISTRY))}") from None
+
+
+def make_term(table: dict, ctx: PotentialContext) -> PotentialTerm:
+    """A term from its validated job table (job units; ``kind`` names the
+    class) in the context ``ctx``: the parameters converted to atomic units,
+    then the term built, which runs its :meth:`~PotentialTerm.validate`."""
+    cls = term_class(table["kind"], f"{ctx.field}.kind")
+    params = to_atomic({k: v for k, v in table.items() if k != "kind"}, cls.parameters,
+                       ctx.units, ctx.field, ctx.grid.ndim)
+    return cls(params, ctx)
