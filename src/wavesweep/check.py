@@ -12,7 +12,7 @@ report judges every sweep point and names the points that fail.
 from __future__ import annotations
 
 from .adequacy import (Finding, Report, assess, memory_finding, run_time_finding, splitting_warning)
-from .errors import JobError
+from .errors import JobError, combine_errors
 from .jobfile import Job
 
 __all__ = ["Finding", "Report", "check_job", "check_study", "preflight", "splitting_warning"]
@@ -156,11 +156,12 @@ def preflight(jobs, force: bool = False) -> list[str]:
             entry = bucket.setdefault(_key(f), [f, []])
             if where:
                 entry[1].append(where)
-    if errors and not force:
-        f, points = next(iter(errors.values()))
-        at = f" (at {len(points)} points, e.g. {points[0]})" if points else ""
-        more = f"; {len(errors) - 1} more error(s): see wavesweep check" if len(errors) > 1 else ""
-        raise JobError(f.field or f.topic, f"{f.message}{at}{more}; --force runs it anyway")
+    if errors and not force:   # every error at once, one line each
+        found = []
+        for f, points in errors.values():
+            at = f" (at {len(points)} sweep points, e.g. {points[0]})" if points else ""
+            found.append(JobError(f.field or f.topic, f"{f.message}{at}; --force runs it anyway"))
+        raise combine_errors(found)
     out = []
     for f, points in list(errors.values()) + list(warnings.values()):
         at = f" [at {len(points)} points, e.g. {points[0]}]" if points else ""
