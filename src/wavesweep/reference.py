@@ -20,6 +20,7 @@ import difflib
 import textwrap
 from typing import NamedTuple
 
+from .adequacy import Finding
 from .batch.sweep import MODES, RANGE_KEYS
 from .errors import JobError
 from .jobfile import (ABSORBER, AXIS, DETECTOR, DETECTOR_POSITION, EVOLVE, GRID, PARTICLE, RECORD,
@@ -30,7 +31,7 @@ from .schema import Field
 from .states import PACKET_FORMULAS, PACKET_SCHEMAS
 from .units import KINDS, UNITS
 
-__all__ = ["reference", "render_text", "topics", "physics_defaults", "PhysicsDefault",
+__all__ = ["reference", "render_text", "topics", "physics_defaults", "PhysicsDefault", "default_findings",
            "TABLE_DOCS", "UNIT_KEYS", "SWEEP", "SWEEP_RANGE"]
 
 # What each top-level entry of a job file is for.
@@ -424,3 +425,12 @@ def physics_defaults(job: Job, raw: dict | None = None) -> list[PhysicsDefault]:
     for i, (g, u) in enumerate(zip(_as_list(raw.get("detector")), t.get("detector") or [])):
         out += _missing(DETECTOR, g, u, f"detector.{i}", units)
     return out
+
+
+def default_findings(job: Job, raw: dict | None = None) -> list[Finding]:
+    """:func:`physics_defaults` as ``check`` findings: one "ok" line per key
+    (topic "defaults", ``field`` the key, ``values`` its value as text), so
+    that every value the job did not choose itself is on the report."""
+    return [Finding("defaults", "ok", f"{d.field} = {d.value} by default: {d.doc}; give it in the job "
+                                      "to choose another", {"value": d.value}, d.field)
+            for d in physics_defaults(job, raw)]

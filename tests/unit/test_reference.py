@@ -14,8 +14,8 @@ from wavesweep.errors import JobError
 from wavesweep.jobfile import (ABSORBER, AXIS, DETECTOR, DETECTOR_POSITION, EVOLVE, GRID, PARTICLE,
                                RECORD, TOP_LEVEL, job_from_dict)
 from wavesweep.potentials import REGISTRY
-from wavesweep.reference import (SWEEP, SWEEP_RANGE, TABLE_DOCS, UNIT_KEYS, physics_defaults, reference,
-                                 render_text, topics)
+from wavesweep.reference import (SWEEP, SWEEP_RANGE, TABLE_DOCS, UNIT_KEYS, default_findings,
+                                 physics_defaults, reference, render_text, topics)
 from wavesweep.states import PACKET_FORMULAS, PACKET_SCHEMAS
 from wavesweep.units import UnitSet
 
@@ -203,3 +203,10 @@ def test_the_resolved_job_holds_the_physics_defaults():
     again = job_from_dict(resolved)
     assert physics_defaults(again) == []                    # nothing left to default
     assert again.run_id == job.run_id
+
+
+def test_default_findings_for_check():
+    findings = default_findings(job_from_dict(copy.deepcopy(DRIVEN)))
+    phase = next(f for f in findings if f.field == "potential.1.phase")
+    assert phase.topic == "defaults" and phase.level == "ok" and phase.values == {"value": "0.0"}
+    assert phase.message.startswith("potential.1.phase = 0.0 by default")
