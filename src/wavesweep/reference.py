@@ -374,36 +374,57 @@ def _as_list(raw):
     return [raw] if isinstance(raw, dict) else raw if isinstance(raw, list) else []
 
 
-def _potential_defaults(given, used, prefix, units) -> list[PhysicsDefault]:
+# Keys whose absence means a choice but which stay out of the resolved job
+# (writing them would change the run id of every existing job): listed only.
+def _potential_defaults(given, used, prefix, units, axes) -> list[PhysicsDefault]:
     out = []
     for i, (g, u) in enumerate(zip(_as_list(given), used or [])):
         cls = REGISTRY.get(u.get("kind"))
-        if cls is not None:
-            out += _missing(cls.parameters, g, u, f"{prefix}.{i}", units)
+        if cls is None or not isinstance(g, dict):
+            continue
+        out += _missing(cls.parameters, g, u, f"{prefix}.{i}", units)
+        # on a 2D/3D grid the direction a term acts along is a choice
+        for key, position in (("axis", 0), ("across", 1)):
+            if key in cls.parameters and key not in g and 1 < len(axes) and position < len(axes):
+                out.append(PhysicsDefault(f"{prefix}.{i}.{key}", f'"{axes[position]}"',
+                                          cls.parameters[key].doc))
     return out
 
 
-def _packet_defaults(given, used, prefix, units) -> list[PhysicsDefault]:
+def _packet_defaults(given, used, prefix, units, axes) -> list[PhysicsDefault]:
     if not isinstance(given, dict) or not isinstance(used, dict):
         return []
     kind = used.get("kind", "gaussian")
     # the sign of p0 matters only when p0 comes from the energy
     skip = ("direction",) if kind == "gaussian" and used.get("energy") is None else ()
     out = _missing(PACKET_SCHEMAS.get(kind, {}), given, used, prefix, units, skip)
+    if kind == "gaussian" and "momentum" not in given and "energy" not in given:
+        out.append(PhysicsDefault(f"{prefix}.momentum", f"0.0 {units.unit_label('momentum')}",
+                                  "neither momentum nor energy given: a packet at rest"))
     if kind == "superposition":
+        n = len(used.get("packets") or [])
+        for key, value, doc in (("amplitudes", 1.0, "weights of the packets"),
+                                ("phases", 0.0, "phases of the packets (rad)")):
+            if key not in given:
+                out.append(PhysicsDefault(f"{prefix}.{key}", repr([value] * n), doc))
         for j, (g, u) in enumerate(zip(_as_list(given.get("packets")), used.get("packets") or [])):
-            out += _packet_defaults(g, u, f"{prefix}.packets.{j}", units)
+            out += _packet_defaults(g, u, f"{prefix}.packets.{j}", units, axes)
     if kind == "eigenstate" and used.get("potential"):
-        out += _potential_defaults(given.get("potential"), used["potential"], f"{prefix}.potential", units)
+        out += _potential_defaults(given.get("potential"), used["potential"], f"{prefix}.potential",
+                                   units, axes)
     return out
 
 
 def physics_defaults(job: Job, raw: dict | None = None) -> list[PhysicsDefault]:
     """The keys marked ``physics=True`` that ``raw`` (the job as written,
     after ``--set``; default ``job.raw``) leaves out, with the value the job
-    uses in its units: ``[PhysicsDefault(field, value, doc), ...]``.  A job
-    loaded from its resolved form (``Job.to_toml``) gives none: every such
-    value is written there."""
+    uses in its units: ``[PhysicsDefault(field, value, doc), ...]``.  The
+    resolved job (``Job.to_toml``) holds every such value, so a job loaded
+    from it lists none of them.  Listed besides, though absent from the
+    resolved job (writing them would change the run id of existing jobs):
+    a Gaussian packet with neither momentum nor energy (at rest), a
+    superposition's amplitudes and phases, and on a 2D/3D grid the axis a
+    potential term acts along."""
     raw = job.raw if raw is None else raw
     if raw is None:
         return []
@@ -418,8 +439,8 @@ def physics_defaults(job: Job, raw: dict | None = None) -> list[PhysicsDefault]:
                     skip=("boundary",) if every_axis_set or radial else ())
     for a in axes:
         out += _missing(AXIS, grid_raw.get(a), t["grid"][a], f"grid.{a}", units)
-    out += _potential_defaults(raw.get("potential"), t.get("potential"), "potential", units)
-    out += _packet_defaults(raw.get("packet"), t.get("packet"), "packet", units)
+    out += _potential_defaults(raw.get("potential"), t.get("potential"), "potential", units, axes)
+    out += _packet_defaults(raw.get("packet"), t.get("packet"), "packet", units, axes)
     for name, schema in (("evolve", EVOLVE), ("absorber", ABSORBER), ("record", RECORD)):
         out += _missing(schema, raw.get(name, {}), t.get(name), name, units)
     for i, (g, u) in enumerate(zip(_as_list(raw.get("detector")), t.get("detector") or [])):

@@ -210,3 +210,18 @@ def test_default_findings_for_check():
     phase = next(f for f in findings if f.field == "potential.1.phase")
     assert phase.topic == "defaults" and phase.level == "ok" and phase.values == {"value": "0.0"}
     assert phase.message.startswith("potential.1.phase = 0.0 by default")
+
+
+def test_physics_defaults_name_the_implicit_choices():
+    # no momentum or energy: at rest; 2D: a barrier acts along the first axis unless told
+    table = copy.deepcopy(DRIVEN)
+    table["grid"]["y"] = {"min": -100.0, "max": 100.0, "points": 64}
+    table["potential"] = [{"kind": "barrier", "height": 50.0, "width": 4.0, "center": 0.0,
+                           "smoothing": 0.0}]
+    table["packet"] = {"kind": "superposition", "packets": [
+        {"center": [-50.0, 0.0], "width": 10.0}, {"center": [50.0, 0.0], "width": 10.0, "momentum": 0.0}]}
+    found = {d.field: d.value for d in physics_defaults(job_from_dict(table))}
+    assert found["potential.0.axis"] == '"x"'
+    assert found["packet.amplitudes"] == "[1.0, 1.0]" and found["packet.phases"] == "[0.0, 0.0]"
+    assert found["packet.packets.0.momentum"].startswith("0.0 ")
+    assert "packet.packets.1.momentum" not in found and "potential.0.center" not in found
