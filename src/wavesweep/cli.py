@@ -125,6 +125,12 @@ def _parser() -> argparse.ArgumentParser:
                     help="the levels in a run's autocorrelation instead (no JOB.toml)")
     lv.add_argument("--min-weight", type=float, default=1e-6, metavar="W",
                     help="with --from: smallest weight |c_n|^2 reported")
+
+    ks = sub.add_parser("keys", help="the job-file keys: units, defaults, allowed values, formulas of V(r, t)")
+    ks.add_argument("topic", nargs="?", default=None, metavar="TOPIC",
+                    help="a table (grid, evolve, packet, units, ...) or a potential or packet kind "
+                         "(barrier, field, eigenstate, ...); none: every table and the kinds")
+    ks.add_argument("--json", action="store_true", help="print one JSON object")
     return p
 
 
@@ -451,7 +457,15 @@ def _levels(args) -> int:
     return EXIT_OK
 
 
-_COMMANDS = {"run": _run, "check": _check, "submit": _submit, "work": _work, "status": _status,
+def _keys(args) -> int:
+    from .reference import reference, render_text
+
+    ref = reference(args.topic)
+    print(json.dumps(ref) if args.json else render_text(ref), end="" if not args.json else "\n")
+    return EXIT_OK
+
+
+_COMMANDS = {"keys": _keys, "run": _run, "check": _check, "submit": _submit, "work": _work, "status": _status,
              "retry": _retry_or_cancel, "cancel": _retry_or_cancel, "collect": _collect,
              "arrivals": _arrivals, "transmission": _transmission, "movie": _movie, "plot": _plot,
              "levels": _levels}

@@ -41,44 +41,76 @@ TOP_LEVEL = ("title", "units", "particle", "grid", "potential", "packet", "evolv
              "absorber", "record", "detector", "sweep")
 
 PARTICLE = {
-    "mass": Field("mass", 1.0, positive=True, doc="particle mass in the job's mass unit"),
-    "charge": Field("charge", None, doc="charge in units of e (needed by a driving field)"),
+    "mass": Field("mass", 1.0, positive=True, physics=True,
+                  doc="particle mass (1 = one job mass unit: the electron mass in atomic units)"),
+    "charge": Field("charge", None, doc="charge q in units of e, e.g. -1 for an electron "
+                                        "(required by a driving field)"),
 }
 AXIS = {
-    "min": Field("length", None),
+    "min": Field("length", None, doc="lower end of the axis (required on x, y, z; a radial axis "
+                                     "starts at r = 0: leave it out)"),
     "max": Field("length", doc="upper end of the axis"),
-    "points": Field("int", positive=True, doc="number of grid points"),
-    "boundary": Field("str", None, choices=BOUNDARIES),
+    "points": Field("int", positive=True, doc="number of grid points, at least 4; periodic: "
+                                              "dx = (max - min) / points, min on the grid, max not; "
+                                              "box: dx = (max - min) / (points + 1), walls off the grid"),
+    "boundary": Field("str", None, choices=BOUNDARIES, doc="this axis' boundary; default: grid.boundary"),
+}
+# [grid] itself (validated by _grid): its axes are AXIS tables.
+GRID = {
+    "x": Field("table", None, doc="the first Cartesian axis: { min, max, points } (keys below)"),
+    "y": Field("table", None, doc="the second Cartesian axis (2D, 3D)"),
+    "z": Field("table", None, doc="the third Cartesian axis (3D)"),
+    "r": Field("table", None, doc="a radial axis { max, points } instead of x, y, z: u(r) = r R(r), "
+                                  "u(0) = 0"),
+    "boundary": Field("str", "periodic", choices=BOUNDARIES, physics=True,
+                      doc="periodic (FFT: what leaves one side enters the other) or box (hard "
+                          "walls, psi = 0, sine transform); a radial grid is always box"),
+    "l": Field("int", 0, nonnegative=True, physics=True,
+               doc="angular momentum on a radial grid: adds l (l + 1) / (2 m r^2) to V"),
 }
 EVOLVE = {
     "dt": Field("time", positive=True, doc="time step"),
-    "duration": Field("time", positive=True, doc="total propagation time"),
-    "scheme": Field("str", "strang", choices=tuple(SCHEMES)),
-    "precision": Field("str", "double", choices=("double", "single")),
+    "duration": Field("time", positive=True, doc="total propagation time, a whole number of steps"),
+    "scheme": Field("str", "strang", choices=tuple(SCHEMES),
+                    doc="propagator: strang (2nd-order split-operator), order4 (Yoshida), "
+                        "order4_suzuki, chebyshev (time-independent H), crank_nicolson (1D)"),
+    "precision": Field("str", "double", choices=("double", "single"),
+                       doc="complex128 (double) or complex64 (single) arithmetic"),
     "fft": Field("str", "auto", choices=FFT_BACKENDS, doc="FFT backend: auto, scipy, pyfftw"),
-    "threads": Field("int", None, positive=True),
+    "threads": Field("int", None, positive=True,
+                     doc="threads of the transforms and kernels (default: WAVESWEEP_THREADS, else "
+                         "chosen by the grid size)"),
 }
 ABSORBER = {
-    "kind": Field("str", "none", choices=("cap", "mask", "none")),
-    "thickness": Field("length", None, positive=True),
-    "faces": Field("list", None),
+    "kind": Field("str", "none", choices=("cap", "mask", "none"),
+                  doc="cap: -i W with W = strength (s/thickness)^power, s the depth into the layer; "
+                      "mask: psi times cos(pi s / (2 thickness))^mask_exponent each step; none"),
+    "thickness": Field("length", None, positive=True, doc="layer thickness (required for cap and mask)"),
+    "faces": Field("list", None, doc="faces with a layer, e.g. ['x-', 'x+'] (default: every face; "
+                                     "a radial grid has only 'r+')"),
     "strength": Field("energy", None, nonnegative=True, per_axis=True,
                       doc="CAP strength (one per axis allowed); omitted: tuned to the packet"),
     "power": Field("number", None, positive=True,
                    doc="CAP exponent; omitted with the strength: the better of 2 and 3"),
-    "mask_exponent": Field("number", 0.125, positive=True),
+    "mask_exponent": Field("number", 0.125, positive=True, doc="mask: exponent of the cosine profile"),
 }
 RECORD = {
-    "every": Field("time", None, positive=True, doc="time between scalar samples"),
-    "snapshot_every": Field("time", None, positive=True, doc="time between density snapshots"),
-    "stride": Field("int", 1, positive=True),
-    "final_state": Field("bool", True),
+    "every": Field("time", None, positive=True,
+                   doc="time between scalar samples (default: about 1000 samples, on whole steps)"),
+    "snapshot_every": Field("time", None, positive=True,
+                            doc="time between density snapshots, a multiple of every "
+                                "(default: about 100 snapshots)"),
+    "stride": Field("int", 1, positive=True, doc="snapshots keep every stride-th grid point"),
+    "final_state": Field("bool", True, doc="store the final psi in the result"),
     # None (not False) by default: absent keys stay out of the run id
     "snapshot_psi": Field("bool", None, doc="store psi (real and imaginary parts) with each snapshot"),
 }
 DETECTOR = {
-    "name": Field("str", None),
+    "name": Field("str", None, doc="the detector's name (default: 'x=<position>')"),
 }
+# The detector's position: one of the grid's axis names as the key.
+DETECTOR_POSITION = Field("length", None, doc="position of the detector plane on this axis "
+                                              "(give exactly one axis)")
 
 
 @dataclass
@@ -89,6 +121,9 @@ class Job:
     units: UnitSet
     source: Path | None = None
     notes: list = field(default_factory=list)
+    # the table as written (after --set), to tell the keys the job gave from
+    # the defaults filled in (wavesweep.reference.physics_defaults)
+    raw: dict | None = field(default=None, repr=False, compare=False)
 
     @property
     def title(self) -> str:
@@ -350,7 +385,7 @@ def job_from_dict(raw: dict, overrides=(), source: Path | None = None) -> Job:
         # needs, the particle's charge): they need the grid and the particle
         _check_terms(out, potentials or [], u, found)
     found.raise_if_any(order=lambda e: file_position(raw, e.field))
-    return Job(out, units, source)
+    return Job(out, units, source, raw=raw)
 
 
 def file_position(raw: dict, field: str) -> list[int]:
@@ -748,7 +783,7 @@ def _detectors(raw, units, extents, axes) -> list[dict]:
     out, names = [], set()
     for i, table in enumerate(raw):
         field = f"detector.{i}"
-        schema = {**DETECTOR, **{a: Field("length", None) for a in axes}}
+        schema = {**DETECTOR, **{a: DETECTOR_POSITION for a in axes}}
         with found.check():
             t = validate_table(table, schema, field, units)
             where = [a for a in axes if t.get(a) is not None]

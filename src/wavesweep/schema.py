@@ -39,8 +39,12 @@ class Field:
     quantity: a number in job units or a string with a unit), or one of
     ``int``, ``str``, ``bool``, ``number`` (dimensionless float), ``table``,
     ``list``.  ``per_axis`` accepts a scalar or a list with one value per grid
-    axis.  ``minimum`` / ``exclusive_minimum`` bound numeric values (after
-    conversion, for quantities).
+    axis.  ``positive`` / ``nonnegative`` bound numeric values (after
+    conversion, for quantities).  ``doc`` is the key's one-line description
+    (``wavesweep keys`` prints it; every key has one).  ``physics`` marks a
+    default that sets the physics (a centre, an edge width, a phase, the
+    mass): when a job leaves such a key out, ``check`` prints the value used
+    (:func:`wavesweep.reference.physics_defaults`), and the resolved job holds it.
     """
 
     kind: str
@@ -50,6 +54,7 @@ class Field:
     per_axis: bool = False
     positive: bool = False
     nonnegative: bool = False
+    physics: bool = False
 
     @property
     def required(self) -> bool:

@@ -28,41 +28,58 @@ import numpy as np
 from .errors import JobError
 from .schema import Field
 
-__all__ = ["PACKET_SCHEMAS", "build_state", "gaussian_packet", "momentum_spread"]
+__all__ = ["PACKET_SCHEMAS", "PACKET_FORMULAS", "build_state", "gaussian_packet", "momentum_spread"]
 
 _GAUSSIAN = {
-    "kind": Field("str", "gaussian"),
+    "kind": Field("str", "gaussian", doc="gaussian (the default), superposition, file or eigenstate"),
     "center": Field("length", per_axis=True, doc="packet centre x0 (one per axis in 2D/3D)"),
     "width": Field("length", per_axis=True, positive=True,
                    doc="standard deviation of |psi|^2 in position"),
     "momentum": Field("momentum", None, per_axis=True, doc="central momentum p0"),
     "energy": Field("energy", None, nonnegative=True,
                     doc="kinetic energy p0^2/2m of the central momentum (1D)"),
-    "direction": Field("number", 1.0, choices=(1, -1, 1.0, -1.0), doc="sign of p0 with `energy`"),
+    "direction": Field("number", 1.0, choices=(1, -1, 1.0, -1.0), physics=True,
+                       doc="sign of p0 with `energy`: 1 towards +x, -1 towards -x"),
 }
 _SUPERPOSITION = {
-    "kind": Field("str"),
+    "kind": Field("str", doc="superposition"),
     "packets": Field("list", doc="packet tables to superpose"),
     "amplitudes": Field("list", None, doc="real weights a_j (default all 1)"),
     "phases": Field("list", None, doc="phases in radians (default all 0)"),
 }
 _FILE = {
-    "kind": Field("str"),
-    "path": Field("str", doc="netCDF file with psi_real and psi_imag on this grid"),
-    "real": Field("str", "psi_real"),
-    "imag": Field("str", "psi_imag"),
+    "kind": Field("str", doc="file"),
+    "path": Field("str", doc="netCDF file with psi_real and psi_imag on this grid "
+                             "(relative to the job file's folder)"),
+    "real": Field("str", "psi_real", doc="variable holding Re psi"),
+    "imag": Field("str", "psi_imag", doc="variable holding Im psi"),
 }
 _FILE["state"] = Field("int", None, nonnegative=True,
                        doc="which state along the file's `state` dimension (0-based)")
 _EIGENSTATE = {
-    "kind": Field("str"),
-    "n": Field("int", 0, nonnegative=True, doc="which stationary state: 0 = ground, in energy order"),
+    "kind": Field("str", doc="eigenstate"),
+    "n": Field("int", 0, nonnegative=True, physics=True,
+               doc="which stationary state: 0 = ground, in energy order"),
     "momentum": Field("momentum", None, per_axis=True, doc="boost p: psi(r) exp(i p.r)"),
     "potential": Field("list", None, doc="[[potential]]-style tables of the trap the state is "
                                          "prepared in (default: the job's own potential)"),
 }
 PACKET_SCHEMAS = {"gaussian": _GAUSSIAN, "superposition": _SUPERPOSITION, "file": _FILE,
                   "eigenstate": _EIGENSTATE}
+# psi(r, 0) of each kind, in the keys' names (``wavesweep keys packet.KIND`` prints it).
+PACKET_FORMULAS = {
+    "gaussian": "psi(r) = prod_i (2 pi width_i^2)^(-1/4) exp(-(x_i - center_i)^2 / (4 width_i^2) "
+                "+ i p_i (x_i - center_i)), p = momentum (hbar = 1); width is the standard "
+                "deviation of |psi|^2, the momentum spread is hbar / (2 width).  With energy "
+                "instead (1D): p = direction * sqrt(2 m energy).  Neither: p = 0",
+    "superposition": "psi = sum_j amplitudes_j exp(i phases_j) psi_j, psi_j the packet tables in "
+                     "packets, then normalised on the grid",
+    "file": "psi = real + i imag, the two netCDF variables (on exactly this grid); state picks "
+            "one along a `state` dimension",
+    "eigenstate": "psi = the n-th stationary state (0 = ground) of the Hamiltonian at t = 0 "
+                  "without the absorber (the job's potential, or the tables in `potential`), "
+                  "times exp(i momentum . r) when momentum is given; a degenerate level is refused",
+}
 
 
 def gaussian_packet(coord: np.ndarray, x0: float, width: float, p0: float) -> np.ndarray:

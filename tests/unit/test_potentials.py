@@ -333,7 +333,7 @@ def test_field_envelopes_atomic_units(envelope, extra, shape):
 
 def test_field_needs_a_charge():
     with pytest.raises(JobError) as info:
-        static([{"kind": "field", "amplitude": 0.05, "envelope": "constant"}])
+        static([{"kind": "field", "amplitude": 0.05, "omega": 0.0, "envelope": "constant"}])
     assert info.value.field == "particle.charge"
 
 

@@ -214,7 +214,7 @@ def test_time_dependent_terms_enter_at_t0():
     is zero at t = 0 and shifts nothing."""
     q, field, mass, omega = -1.0, 0.1, 1.3, 0.9
     table = _job(HO_GRID, [{"kind": "harmonic", "omega": omega},
-                           {"kind": "field", "amplitude": field, "envelope": "constant"}], mass=mass,
+                           {"kind": "field", "amplitude": field, "omega": 0.0, "envelope": "constant"}], mass=mass,
                  packet={"kind": "gaussian", "center": 0.0, "width": 1.0})
     table["particle"]["charge"] = q
     energies, _ = stationary_states(make_job(table), 3)

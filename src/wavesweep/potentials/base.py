@@ -7,9 +7,12 @@ implement :meth:`PotentialTerm.static`; time-dependent ones implement
 with :meth:`separable` so the propagator evaluates ``g`` once and only the
 scalar ``f(t)`` per step.
 
-To add a kind: subclass, set ``kind`` and ``parameters`` (a schema of
-:class:`~wavesweep.schema.Field`), implement ``static`` (or ``at_time``), and
-decorate with :func:`register`.
+To add a kind: subclass, set ``kind``, ``summary``, ``formula`` (V(r, t) in
+plain text with the parameter names as symbols) and ``parameters`` (a schema
+of :class:`~wavesweep.schema.Field`, each with a ``doc``), implement
+``static`` (or ``at_time``), and decorate with :func:`register`.
+``wavesweep keys KIND`` prints the formula and the keys; a test fails for a
+registered kind without them.
 """
 from __future__ import annotations
 
@@ -40,8 +43,11 @@ class PotentialTerm:
 
     Subclasses define:
 
-    1. ``kind``: the name used in job files;
-    2. ``parameters``: ``name -> Field`` with unit kinds, defaults and checks;
+    1. ``kind``: the name used in job files; ``summary``: one line;
+       ``formula``: V(r, t) in plain text, symbols named as the parameters
+       (edges, gauge, what each length spans);
+    2. ``parameters``: ``name -> Field`` with unit kinds, defaults, checks and
+       a ``doc`` each (``physics=True`` on a default that sets the physics);
     3. ``static(mesh)`` returning V in hartree for time-independent terms, or
        ``at_time(mesh, t)`` with ``time_dependent = True``;
     4. optionally ``separable()`` -> ``(g(mesh) array, f(t) callable)``.
@@ -53,6 +59,7 @@ class PotentialTerm:
     parameters: ClassVar[dict[str, Field]] = {}
     time_dependent: ClassVar[bool] = False
     summary: ClassVar[str] = ""
+    formula: ClassVar[str] = ""
 
     def __init__(self, params: dict, ctx: PotentialContext):
         self.p = params

@@ -9,7 +9,7 @@ from ..errors import JobError
 from ..schema import Field
 from ..units import KINDS, parse_unit, quantity_to_atomic, _QUANTITY
 from .base import PotentialTerm, register
-from .expression import Expression
+from .expression import ALLOWED_FUNCTIONS, CONSTANTS, Expression
 
 
 def _param_in_job_units(value, units, field: str) -> float:
@@ -38,6 +38,12 @@ class ExpressionTerm(PotentialTerm):
     kind = "expression"
     summary = ("V from a formula in the job's units: coordinates x, y, z (or r), time t, "
                "parameters from `params`; numpy math functions and where(); never runs code")
+    formula = ("V(r, t) = the expression, read in the job's units: x, y, z (or r) in its length "
+               "unit, t in its time unit, the value in its energy unit; `params` numbers as "
+               "written, strings with a unit ('20 angstrom') converted to the job's unit of that "
+               "dimension.  Arithmetic (+ - * / ** % //), comparisons, the named constants "
+               f"({', '.join(CONSTANTS)}) and the functions {', '.join(ALLOWED_FUNCTIONS)} "
+               "(radians); V depends on time only if t appears; the text is never run as code")
     parameters = {
         "expression": Field("str", doc="formula for V in the job's energy unit"),
         "params": Field("table", None, doc="named numbers used in the formula"),
@@ -74,9 +80,13 @@ class ExpressionTerm(PotentialTerm):
 class FileTerm(PotentialTerm):
     kind = "file"
     summary = "V read from a netCDF variable, linearly interpolated onto the grid"
+    formula = ("V(r) = `variable` of the netCDF file at `path` (dims named as the grid's axes), linearly "
+               "interpolated onto the grid; its values in the variable's `units` attribute (else "
+               "the job's energy unit), its coordinates in their `units` (else the job's length "
+               "unit); the file's coordinates must cover the grid")
     parameters = {
         "path": Field("str", doc="netCDF file (relative to the job file's folder)"),
-        "variable": Field("str", "potential"),
+        "variable": Field("str", "potential", doc="name of the variable holding V"),
     }
 
     def validate(self):

@@ -1,7 +1,9 @@
 """A driving electric field in the length gauge: V(r, t) = -q E(t) x_axis.
 
 E(t) = amplitude * envelope(t) * cos(omega (t - start) + phase), with the
-particle's charge q (units of e) from ``particle.charge``.  The term is
+particle's charge q (units of e) from ``particle.charge``.  ``omega`` has no
+default: a field without it was silently a zero-frequency pulse (issue 12);
+a static field says ``omega = 0``.  The term is
 separable, V = f(t) g(r) with g = -q x and f = E(t), so the propagator
 evaluates the grid part once and only the scalar E(t) per step (at the middle
 of each step, for second order).
@@ -25,12 +27,30 @@ class DrivingField(PotentialTerm):
     time_dependent = True
     summary = ("electric field along `axis`, V = -q E(t) x, E(t) = amplitude envelope(t) "
                "cos(omega (t - start) + phase)")
+    formula = "\n".join((
+        "V(r, t) = -q * E(t) * x  (length gauge; q = particle.charge in units of e, x the "
+        "coordinate along `axis`; the force is q E(t) along +x)",
+        "E(t) = amplitude * envelope(t) * cos(omega (t - start) + phase)  (the carrier has phase "
+        "`phase` at t = start: phase = 0 is a cosine at its crest; omega = 0 is a static field "
+        "amplitude * cos(phase) under the envelope)",
+        "envelope(t), s = t - start:",
+        "  constant:  1 for s >= 0; 0 again for s > duration if duration is given",
+        "  sin2:      sin^2(pi s / duration) for 0 <= s <= duration, else 0",
+        "  trapezoid: min(1, s / ramp, (duration - s) / ramp) for 0 <= s <= duration, else 0",
+        "  gaussian:  exp(-2 ln 2 ((t - peak) / fwhm)^2), fwhm that of the intensity E^2; never "
+        "cut off (start only sets the carrier's time origin)",
+        "duration spans the whole pulse, from start to the end of the switch-off (both ramps "
+        "of a trapezoid included).  The propagator takes E(t) at the middle of each (sub)step.  "
+        "amplitude is in [units] energy/(charge*length), e.g. meV/(e nm) with meV and nm.",
+    ))
     parameters = {
-        "amplitude": Field("electric_field", doc="peak field strength"),
-        "omega": Field("frequency", 0.0, nonnegative=True, doc="carrier angular frequency (0: static)"),
-        "phase": Field("number", 0.0, doc="carrier phase (rad)"),
-        "envelope": Field("str", "sin2", choices=ENVELOPES),
-        "start": Field("time", 0.0, doc="switch-on time"),
+        "amplitude": Field("electric_field", doc="peak field strength E0"),
+        "omega": Field("frequency", nonnegative=True,
+                       doc="carrier angular frequency (0 for a static field)"),
+        "phase": Field("number", 0.0, physics=True, doc="carrier phase at t = start (rad)"),
+        "envelope": Field("str", "sin2", choices=ENVELOPES, physics=True,
+                          doc="pulse shape: constant, sin2, trapezoid or gaussian"),
+        "start": Field("time", 0.0, physics=True, doc="switch-on time (the carrier's time origin)"),
         "duration": Field("time", None, positive=True,
                           doc="total length of a sin2/trapezoid pulse; constant: optional switch-off"),
         "ramp": Field("time", None, positive=True, doc="trapezoid rise and fall time"),

@@ -13,6 +13,21 @@ from .base import PotentialTerm, register
 
 _AXIS = Field("str", None, "axis the term varies along (default: the first)")
 
+# How every term with sharp edges (step, barrier, double_barrier) samples them.
+EDGES = ("Edges: smoothing = 0 makes them sharp and cell-averaged: a grid point takes the "
+         "fraction of its cell [x - dx/2, x + dx/2] that lies inside, so the feature keeps its "
+         "width and area on any grid; smoothing > 0 makes each edge S(s) = (1 + tanh(s / "
+         "smoothing)) / 2, s the signed distance past the edge.")
+
+
+def _center(doc: str = "centre", per_axis: bool = False) -> Field:
+    return Field("length", 0.0, per_axis=per_axis, physics=True, doc=doc)
+
+
+def _smoothing() -> Field:
+    return Field("length", 0.0, nonnegative=True, physics=True,
+                 doc="edge length of the tanh profile (0: sharp, cell-averaged edges)")
+
 
 def _along(term: PotentialTerm, mesh) -> np.ndarray:
     i = term.axis_of()
@@ -55,6 +70,7 @@ def _radius2(term, mesh, center) -> np.ndarray:
 class Free(PotentialTerm):
     kind = "free"
     summary = "V = 0"
+    formula = "V(r) = 0 (a free particle; the default when a job has no [[potential]])"
     parameters = {}
 
     def static(self, mesh):
@@ -65,10 +81,12 @@ class Free(PotentialTerm):
 class Step(PotentialTerm):
     kind = "step"
     summary = "V = height for x >= position (optionally smoothed over `smoothing`)"
+    formula = ("V(x) = height * Theta(x - position), x the coordinate along `axis`: 0 below "
+               "position, height above.\n" + EDGES)
     parameters = {
-        "height": Field("energy", doc="step height"),
-        "position": Field("length", 0.0),
-        "smoothing": Field("length", 0.0, nonnegative=True),
+        "height": Field("energy", doc="step height (V beyond position)"),
+        "position": Field("length", 0.0, physics=True, doc="where the step is"),
+        "smoothing": _smoothing(),
         "axis": _AXIS,
     }
 
@@ -81,11 +99,14 @@ class Step(PotentialTerm):
 class Barrier(PotentialTerm):
     kind = "barrier"
     summary = "rectangular barrier: V = height for |x - center| < width/2 (edges cell-averaged)"
+    formula = ("V(x) = height for |x - center| < width / 2, else 0; x along `axis`.  With "
+               "smoothing > 0: V = height * S(x - center + width/2) * S(center + width/2 - x).\n"
+               + EDGES)
     parameters = {
         "height": Field("energy", doc="barrier height (negative for a well)"),
         "width": Field("length", doc="full width", positive=True),
-        "center": Field("length", 0.0),
-        "smoothing": Field("length", 0.0, nonnegative=True),
+        "center": _center("centre of the barrier"),
+        "smoothing": _smoothing(),
         "axis": _AXIS,
     }
 
@@ -101,12 +122,15 @@ class Barrier(PotentialTerm):
 class DoubleBarrier(PotentialTerm):
     kind = "double_barrier"
     summary = "two rectangular barriers of `width` with a `gap` between their inner edges"
+    formula = ("V(x) = height for gap/2 < |x - center| < gap/2 + width, else 0; x along `axis` "
+               "(two barriers of `width`, a well of `gap` between them).  With smoothing > 0: "
+               "V = height * S(u - gap/2) * S(gap/2 + width - u), u = |x - center|.\n" + EDGES)
     parameters = {
-        "height": Field("energy"),
-        "width": Field("length", positive=True),
+        "height": Field("energy", doc="height of both barriers"),
+        "width": Field("length", positive=True, doc="width of each barrier"),
         "gap": Field("length", positive=True, doc="distance between the inner edges"),
-        "center": Field("length", 0.0),
-        "smoothing": Field("length", 0.0, nonnegative=True, doc="tanh edge length (0: sharp)"),
+        "center": _center("midpoint of the gap"),
+        "smoothing": _smoothing(),
         "axis": _AXIS,
     }
 
@@ -124,10 +148,12 @@ class DoubleBarrier(PotentialTerm):
 class Gaussian(PotentialTerm):
     kind = "gaussian"
     summary = "V = height exp(-|r - center|^2 / (2 width^2)); width is a standard deviation"
+    formula = ("V(r) = height * exp(-sum_i (x_i - center_i)^2 / (2 width_i^2)), the sum over the "
+               "grid's axes; width is the standard deviation (FWHM = 2.355 width)")
     parameters = {
         "height": Field("energy", doc="peak value (negative for a well)"),
-        "width": Field("length", per_axis=True, positive=True),
-        "center": Field("length", 0.0, per_axis=True),
+        "width": Field("length", per_axis=True, positive=True, doc="standard deviation along each axis"),
+        "center": _center("position of the peak", per_axis=True),
     }
 
     def static(self, mesh):
@@ -142,10 +168,11 @@ class Gaussian(PotentialTerm):
 class Eckart(PotentialTerm):
     kind = "eckart"
     summary = "symmetric Eckart barrier V = height / cosh^2((x - center)/width)"
+    formula = "V(x) = height / cosh^2((x - center) / width); x along `axis`"
     parameters = {
-        "height": Field("energy"),
-        "width": Field("length", positive=True),
-        "center": Field("length", 0.0),
+        "height": Field("energy", doc="peak value (negative for a Poeschl-Teller well)"),
+        "width": Field("length", positive=True, doc="length scale a of the cosh^2 profile"),
+        "center": _center("position of the peak"),
         "axis": _AXIS,
     }
 
@@ -158,9 +185,12 @@ class Eckart(PotentialTerm):
 class Harmonic(PotentialTerm):
     kind = "harmonic"
     summary = "V = m/2 sum_i omega_i^2 (x_i - center_i)^2 (omega: angular frequency)"
+    formula = ("V(r) = (m / 2) * sum_i omega_i^2 (x_i - center_i)^2, m = particle.mass; levels "
+               "hbar omega (n + 1/2) per axis")
     parameters = {
-        "omega": Field("frequency", per_axis=True, nonnegative=True),
-        "center": Field("length", 0.0, per_axis=True),
+        "omega": Field("frequency", per_axis=True, nonnegative=True,
+                       doc="angular frequency of the oscillator along each axis"),
+        "center": _center("position of the minimum", per_axis=True),
     }
 
     def static(self, mesh):
@@ -176,10 +206,13 @@ class Morse(PotentialTerm):
     kind = "morse"
     summary = ("V = depth (1 - exp(-stiffness (x - center)))^2 (zero at the minimum; the "
                "repulsive wall is capped at ~2.4e17 depth, 20/stiffness inside the minimum)")
+    formula = ("V(x) = depth * (1 - exp(-stiffness (x - center)))^2; x along `axis`; 0 at the "
+               "minimum x = center, depth far outside; the repulsive wall is capped where "
+               "stiffness (center - x) > 20")
     parameters = {
-        "depth": Field("energy", positive=True),
-        "stiffness": Field("wavenumber", positive=True),
-        "center": Field("length", 0.0),
+        "depth": Field("energy", positive=True, doc="dissociation energy D"),
+        "stiffness": Field("wavenumber", positive=True, doc="range parameter a of exp(-a (x - center))"),
+        "center": _center("position of the minimum"),
         "axis": _AXIS,
     }
 
@@ -199,10 +232,12 @@ class Morse(PotentialTerm):
 class DoubleWell(PotentialTerm):
     kind = "double_well"
     summary = "quartic double well V = height ((x-center)^2/a^2 - 1)^2, minima at center +/- a"
+    formula = ("V(x) = height * ((x - center)^2 / a^2 - 1)^2, a = separation / 2; x along "
+               "`axis`; minima V = 0 at center +/- a, V = height at center")
     parameters = {
         "height": Field("energy", positive=True, doc="barrier height between the wells"),
         "separation": Field("length", positive=True, doc="distance between the minima (2a)"),
-        "center": Field("length", 0.0),
+        "center": _center("midpoint between the minima"),
         "axis": _AXIS,
     }
 
@@ -216,10 +251,13 @@ class DoubleWell(PotentialTerm):
 class SoftCoulomb(PotentialTerm):
     kind = "soft_coulomb"
     summary = "V = -Z / sqrt(|r - center|^2 + softening^2) (Z in units of e)"
+    formula = ("V(r) = -charge / sqrt(|r - center|^2 + softening^2) in atomic units (charge = Z "
+               "in units of e; the attraction of a particle of charge -e: particle.charge is "
+               "not used)")
     parameters = {
-        "charge": Field("number", 1.0, doc="Z of the attracting centre"),
-        "softening": Field("length", positive=True),
-        "center": Field("length", 0.0, per_axis=True),
+        "charge": Field("number", 1.0, physics=True, doc="Z of the attracting centre"),
+        "softening": Field("length", positive=True, doc="softening length (V(center) = -charge / softening)"),
+        "center": _center("position of the centre", per_axis=True),
     }
 
     def static(self, mesh):
@@ -231,9 +269,12 @@ class SoftCoulomb(PotentialTerm):
 class Coulomb(PotentialTerm):
     kind = "coulomb"
     summary = "V = -Z / |r - center|; on a radial grid -Z/r"
+    formula = ("V(r) = -charge / |r - center| in atomic units (charge = Z in units of e; the "
+               "attraction of a particle of charge -e: particle.charge is not used); on a radial "
+               "grid V = -charge / r.  No grid point may sit on the singularity")
     parameters = {
-        "charge": Field("number", 1.0, doc="Z of the attracting centre"),
-        "center": Field("length", 0.0, per_axis=True),
+        "charge": Field("number", 1.0, physics=True, doc="Z of the attracting centre"),
+        "center": _center("position of the centre (r = 0 on a radial grid)", per_axis=True),
     }
 
     def static(self, mesh):
@@ -253,10 +294,13 @@ class Coulomb(PotentialTerm):
 class Lattice(PotentialTerm):
     kind = "lattice"
     summary = "optical lattice V = depth sin^2(pi (x - origin) / spacing), minima at origin + n spacing"
+    formula = ("V(x) = depth * sin^2(pi (x - origin) / spacing); x along `axis`; minima V = 0 at "
+               "origin + n spacing, maxima V = depth between them")
     parameters = {
-        "depth": Field("energy"),
-        "spacing": Field("length", positive=True),
-        "origin": Field("length", 0.0),
+        "depth": Field("energy", doc="lattice depth (maximum minus minimum of V)"),
+        "spacing": Field("length", positive=True, doc="lattice period (half the laser wavelength "
+                                                      "for a retro-reflected beam)"),
+        "origin": Field("length", 0.0, physics=True, doc="position of one minimum"),
         "axis": _AXIS,
     }
 
@@ -269,12 +313,15 @@ class Lattice(PotentialTerm):
 class Slits(PotentialTerm):
     kind = "slits"
     summary = "a wall of `height` across `axis` at `position`, with openings along `across`"
+    formula = ("V(r) = height where |x - position| < thickness / 2 and |y - c| >= opening_width / 2 "
+               "for every c in openings, else 0; x along `axis`, y along `across`.  The wall's "
+               "edges are sampled at the grid points (not cell-averaged)")
     parameters = {
-        "height": Field("energy", positive=True),
-        "position": Field("length", 0.0),
-        "thickness": Field("length", positive=True),
+        "height": Field("energy", positive=True, doc="height of the wall"),
+        "position": Field("length", 0.0, physics=True, doc="centre of the wall along `axis`"),
+        "thickness": Field("length", positive=True, doc="thickness of the wall along `axis`"),
         "openings": Field("list", doc="centres of the openings along `across`"),
-        "opening_width": Field("length", positive=True),
+        "opening_width": Field("length", positive=True, doc="full width of each opening"),
         "axis": _AXIS,
         "across": Field("str", None, "axis along which the openings lie (default: the second)"),
         "smoothing": Field("length", 0.0, nonnegative=True,
