@@ -38,6 +38,12 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--set", action="append", default=[], metavar="KEY=VALUE")
     c.add_argument("--json", action="store_true", help="print the findings as JSON")
     c.add_argument("--trial-seconds", type=float, default=1.0, help="length of the timed trial")
+    c.add_argument("--tolerance", type=float, default=None, metavar="TOL",
+                   help="also run a pilot that measures the error of the run's outputs (the job run "
+                        "again with 1.5x the points per axis and with another dt; about 3x the run "
+                        "in 1D, printed before it starts) and names the setting that misses TOL: "
+                        "probabilities (absorbed per face, beyond each detector) absolutely, arrival "
+                        "mean and spread and the final energy relative to their value")
 
     root_help = "queue folder (default: $WAVESWEEP_ROOT or ./wavesweep-runs)"
     sb = sub.add_parser("submit", help="queue every run of a study (idempotent)")
@@ -178,7 +184,19 @@ def _check(args) -> int:
     from .check import check_job
     from .jobfile import load_job
 
-    report = check_job(load_job(args.job, args.set), trial_seconds=args.trial_seconds)
+    if args.tolerance is not None:
+        from .pilot import plan_pilot, run_pilot, validate_tolerance
+        validate_tolerance(args.tolerance)      # before anything is computed
+    job = load_job(args.job, args.set)
+    report = check_job(job, trial_seconds=args.trial_seconds)
+    if args.tolerance is not None and report.errors:
+        print("wavesweep check: no accuracy pilot: the job has errors", file=sys.stderr)
+    elif args.tolerance is not None:
+        plan = plan_pilot(job, args.tolerance)
+        print(f"wavesweep check: {plan.text()}", file=sys.stderr, flush=True)
+        say = (lambda line: print(f"wavesweep check: {line}", file=sys.stderr, flush=True))
+        report.findings.extend(run_pilot(job, args.tolerance, progress=say, plan=plan,
+                                         bars=sys.stderr.isatty()))
     if args.json:
         print(json.dumps(report.as_dict()))
     else:
