@@ -19,7 +19,8 @@ share of the error of the base run:
   converges as dx^2 (measured: rectangular barrier, tests/integration/
   test_scattering.py; a double barrier about as dx^2.5), smooth potentials
   spectrally, i.e. faster; the lower order gives the larger error for the
-  same difference, so the estimate is conservative for both.
+  same difference, so the estimate is conservative for both (and exact in
+  kind for ``crank_nicolson``, whose 3-point Laplacian is second order).
 * **dt**, one run with ``evolve.dt`` multiplied by s (coarser, s about 2, so
   the measure costs half a run; finer when ``record.every`` is a single
   step): E_dt = (Q(s tau) - Q(tau)) / (s^q - 1), with the scheme's known
@@ -166,8 +167,8 @@ def _job_number(x: float) -> float:
 
 
 def _fast_points(n: int, boundary: str) -> int:
-    """The smallest count >= n whose transform is fast (2, 3, 5, 7-smooth: N
-    for the FFT, N + 1 for the sine transform, DST-I)."""
+    """The smallest count >= n whose transform is fast (scipy.fft.next_fast_len:
+    N for the FFT, N + 1 for the sine transform, DST-I, which works on N + 1)."""
     if boundary == "periodic":
         return int(scipy.fft.next_fast_len(n))
     return int(scipy.fft.next_fast_len(n + 1)) - 1
@@ -201,7 +202,7 @@ def plan_pilot(job: Job, tolerance: float, timing_seconds: float = 0.3) -> Pilot
     grid = setup.grid
     steps0, points0 = setup.total_steps, grid.size
     runs = [PilotRun("base", "", {}, 1.0, 1.0, steps0, points0)]
-    for i, ax in enumerate(grid.axes):
+    for ax in grid.axes:
         n_fine = _fast_points(math.ceil(DX_RATIO * _cells(ax.points, ax.boundary))
                               - _cells(0, ax.boundary), ax.boundary)
         ratio = _cells(ax.points, ax.boundary) / _cells(n_fine, ax.boundary)   # h_run / h_base
@@ -316,36 +317,42 @@ def run_pilot(job: Job, tolerance: float, progress=None, plan: PilotPlan | None 
     tol = plan.tolerance
     say = progress or (lambda message: None)
     table = _base_table(job)
-    results = []
+    results, skipped = [], []
     wall0 = _time.perf_counter()
     with tempfile.TemporaryDirectory(prefix="wavesweep-pilot-") as tmp:
         folder = Path(tmp)
         for i, run in enumerate(plan.runs, 1):
-            say(f"pilot run {i}/{len(plan.runs)}: {run.label} ({run.steps} steps x {run.points} points)")
+            where = f"pilot run {i}/{len(plan.runs)}"
+            say(f"{where}: {run.label} ({run.steps} steps x {run.points} points)")
             t0 = _time.perf_counter()
             try:
-                outputs, setup = _run_once(table, run.overrides, folder, bars)
-            except RunFailed as e:
-                if run.setting == "evolve.dt" and run.ratio > 1:
-                    # the coarser step failed (the books broke): measure with a finer one instead
-                    run = _finer_dt_run(plan, run)
-                    say(f"pilot run {i}/{len(plan.runs)}: the coarser step failed ({e.reason}); "
-                        f"{run.label} instead")
+                try:
                     outputs, setup = _run_once(table, run.overrides, folder, bars)
-                    plan.runs[i - 1] = run
-                elif i == 1:
+                except RunFailed as e:
+                    if not (run.setting == "evolve.dt" and run.ratio > 1):
+                        raise
+                    # the coarser step broke the books: measure with a finer one instead
+                    run = plan.runs[i - 1] = _finer_dt_run(plan)
+                    say(f"{where}: the coarser step failed ({e.reason}); {run.label} instead")
+                    outputs, setup = _run_once(table, run.overrides, folder, bars)
+            except (RunFailed, JobError) as e:
+                if i == 1:      # the job itself: its own error, as `run` would give it
                     raise
-                else:
-                    raise RunFailed(f"pilot run {run.label}: {e.reason}") from None
+                # e.g. a packet read from a file on the run's grid: that setting goes unmeasured
+                reason = e.reason if isinstance(e, RunFailed) else f"{e.field}: {e.message}"
+                skipped.append((run, reason))
+                say(f"{where}: not measured ({reason})")
+                continue
             results.append((run, outputs))
             if i == 1:
                 base_setup = setup
-            say(f"pilot run {i}/{len(plan.runs)}: done in {_human(_time.perf_counter() - t0)}")
+            say(f"{where}: done in {_human(_time.perf_counter() - t0)}")
     wall = _time.perf_counter() - wall0
-    return _findings(plan, results, base_setup, tol, wall)
+    return _findings(plan, results, base_setup, tol, wall, skipped)
 
 
-def _finer_dt_run(plan: PilotPlan, coarse: PilotRun) -> PilotRun:
+def _finer_dt_run(plan: PilotPlan) -> PilotRun:
+    """The dt run at half the step (record.every stays a whole number of steps)."""
     base = plan.runs[0]
     setup = Setup(job_from_dict(_base_table(plan.job)))
     m = 2 * setup.sample_steps
@@ -374,7 +381,7 @@ def _share_targets(errors: dict, tol: float) -> dict:
     return targets
 
 
-def _findings(plan: PilotPlan, results, base_setup: Setup, tol: float, wall: float) -> list:
+def _findings(plan: PilotPlan, results, base_setup: Setup, tol: float, wall: float, skipped=()) -> list:
     u = base_setup.units
     grid = base_setup.grid
     T = u.unit_label("time")
@@ -455,7 +462,7 @@ def _findings(plan: PilotPlan, results, base_setup: Setup, tol: float, wall: flo
                    if out.kind == "energy" else "nothing arrived there in the run")
             findings.append(Finding("accuracy", "ok", f"{out.name}: not judged ({why})",
                                     {"output": out.name, "value": None}))
-    findings.append(_summary(plan, results, base_setup, wall, need_points, need_dt))
+    findings.append(_summary(plan, results, base_setup, wall, need_points, need_dt, skipped))
     return findings
 
 
@@ -466,7 +473,7 @@ def _whole_sample_dt(setup: Setup, dt_au: float) -> float:
     return _job_number(setup.units.to_job(every / m, "time"))
 
 
-def _summary(plan, results, setup, wall, need_points, need_dt) -> Finding:
+def _summary(plan, results, setup, wall, need_points, need_dt, skipped=()) -> Finding:
     u = setup.units
     T = u.unit_label("time")
     runs = [r for r, _ in results]
@@ -479,7 +486,10 @@ def _summary(plan, results, setup, wall, need_points, need_dt) -> Finding:
         settings.append(f"evolve.dt = {_whole_sample_dt(setup, need_dt):g} {T}")
     reach = ("; every output reaches the tolerance with " + ", ".join(settings)) if settings else ""
     notes = "".join(f"; {n}" for n in plan.notes if "exact in time" not in n)
-    return Finding("accuracy", "ok",
+    if skipped:
+        notes += "; not measured, so their share of the errors is unknown: " + "; ".join(
+            f"{run.setting} ({run.label}: {reason})" for run, reason in skipped)
+    return Finding("accuracy", "warn" if skipped else "ok",
         f"pilot of {len(runs)} runs ({', '.join(r.label for r in runs)}): {cost:.2g}x the run's steps x "
         f"points, {_human(wall)}; dx order {plan.dx_order:g} assumed (conservative), {dt_note}"
         + reach + notes,
@@ -487,7 +497,9 @@ def _summary(plan, results, setup, wall, need_points, need_dt) -> Finding:
                    "cost": r.cost} for r in runs],
          "cost": cost, "seconds": wall, "tolerance": plan.tolerance, "dx_order": plan.dx_order,
          "dx_order_kind": "assumed", "dt_order": q, "points_needed": need_points,
-         "dt_needed": _whole_sample_dt(setup, need_dt)})
+         "dt_needed": _whole_sample_dt(setup, need_dt),
+         "not_measured": [run.setting for run, _ in skipped]},
+        field=skipped[0][0].setting if skipped else "")
 
 
 def _short(setting: str) -> str:
