@@ -210,3 +210,47 @@ def test_cli_tolerance_out_of_range_is_one_line_and_exit_2(tmp_path, capsys, val
     assert main(["check", str(path), "--tolerance", value]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "--tolerance" in err[0] and "between 0 and 1" in err[0]
+
+
+def test_a_state_read_on_the_run_grid_leaves_dx_unmeasured_and_says_so(tmp_path):
+    """A packet from a file lives on the run's grid only: the dx run cannot be
+    made, and the pilot says that share is unknown instead of calling it 0."""
+    short = {**FREE, "grid": {"x": {"min": -70.0, "max": 70.0, "points": 256}},
+             "evolve": {"dt": 0.05, "duration": 4.0}, "record": {"every": 0.2, "final_state": True}}
+    ds = run_table(short, tmp_path / "state")
+    path = next((tmp_path / "state").glob("*.nc"))
+    assert "psi_real" in ds
+    from_file = {**short, "packet": {"kind": "file", "path": str(path)},
+                 "record": {"every": 0.2}}
+    findings = run_pilot(make_job(from_file), 1e-3)
+    summary = _summary(findings)
+    assert summary.level == "warn" and summary.field == "grid.x.points"
+    assert summary.values["not_measured"] == ["grid.x.points"]
+    assert "not measured" in summary.message and "packet.path" in summary.message
+    # the dt run was made: its share is there
+    assert all("evolve.dt" in f.values["errors"] for f in findings if "errors" in f.values)
+
+
+def test_plans_per_axis_dt_and_box_counts():
+    """What the pilot will run, without running it: a dx run per axis (2D:
+    4.5x the run's steps x points), the dt run on whole samples, none for
+    Chebyshev (exact in time), and box axes refined to N with a fast N + 1."""
+    two_d = {**FREE, "grid": {"x": {"min": -70.0, "max": 70.0, "points": 128},
+                              "y": {"min": -30.0, "max": 30.0, "points": 48}},
+             "packet": {"kind": "gaussian", "center": [-20.0, 0.0], "width": [4.0, 4.0], "momentum": [1.0, 0.0]},
+             "absorber": {"kind": "none"}}
+    plan = plan_pilot(make_job(two_d), 0.01, timing_seconds=0.0)
+    assert [r.setting for r in plan.runs] == ["", "grid.x.points", "grid.y.points", "evolve.dt"]
+    assert [r.overrides for r in plan.runs[1:3]] == [{"grid.x.points": 192}, {"grid.y.points": 72}]
+    assert plan.cost == pytest.approx(4.5)
+    # every = 0.2 = 4 steps of 0.05: the dt run takes 2 steps per sample
+    assert plan.runs[3].overrides == {"evolve.dt": 0.1} and plan.runs[3].ratio == 2.0
+    cheb = plan_pilot(make_job({**FREE, "evolve": {**FREE["evolve"], "scheme": "chebyshev"},
+                                "absorber": {"kind": "mask", "thickness": 20.0}}), 0.01, timing_seconds=0.0)
+    assert [r.setting for r in cheb.runs] == ["", "grid.x.points"]
+    assert "exact in time" in cheb.text()
+    box = plan_pilot(make_job({**FREE, "grid": {"x": {"min": -70.0, "max": 70.0, "points": 511},
+                                                 "boundary": "box"}}), 0.01, timing_seconds=0.0)
+    n = box.runs[1].overrides["grid.x.points"]
+    assert n + 1 == 768 and box.runs[1].ratio == pytest.approx(512 / 768)   # dx = L / (N + 1)
+    assert "pilot: 3 runs, 3x the run's steps x points" in box.text()
