@@ -43,7 +43,8 @@ def _parser() -> argparse.ArgumentParser:
                         "again with 1.5x the points per axis and with another dt; about 3x the run "
                         "in 1D, printed before it starts) and names the setting that misses TOL: "
                         "probabilities (absorbed per face, beyond each detector) absolutely, arrival "
-                        "mean and spread and the final energy relative to their value")
+                        "mean and spread relative to their value, the final energy relative to the "
+                        "larger of |<H>| at the start and the end")
 
     root_help = "queue folder (default: $WAVESWEEP_ROOT or ./wavesweep-runs)"
     sb = sub.add_parser("submit", help="queue every run of a study (idempotent)")
