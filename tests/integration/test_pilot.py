@@ -185,11 +185,11 @@ def test_double_barrier_at_1nm_check_is_silent_the_pilot_names_the_grid(tmp_path
 
 
 def test_cli_check_tolerance_prints_cost_then_progress_and_keeps_the_json_shape(tmp_path):
-    path = tmp_path / "double-barrier.toml"
-    path.write_text(tomli_w.dumps(DOUBLE_BARRIER))
+    path = tmp_path / "barrier.toml"
+    path.write_text(tomli_w.dumps(barrier_job(560)))       # misses 2e-3 in dx (see above)
     env = dict(os.environ, WAVESWEEP_THREADS="1", NUMBA_NUM_THREADS="1")
     env.pop("WAVESWEEP_DEBUG", None)
-    p = subprocess.run([sys.executable, "-m", "wavesweep", "check", str(path), "--tolerance", "0.01",
+    p = subprocess.run([sys.executable, "-m", "wavesweep", "check", str(path), "--tolerance", "2e-3",
                         "--json", "--trial-seconds", "0.1"], capture_output=True, text=True, env=env)
     assert p.returncode == 0, p.stderr
     data = json.loads(p.stdout)
