@@ -14,6 +14,7 @@ from __future__ import annotations
 from .adequacy import (Finding, Report, assess, memory_finding, run_time_finding, splitting_warning)
 from .errors import JobError, combine_errors
 from .jobfile import Job
+from .reference import default_findings
 
 __all__ = ["Finding", "Report", "check_job", "check_study", "preflight", "splitting_warning"]
 
@@ -52,7 +53,7 @@ def check_job(job: Job, trial_seconds: float = 1.0) -> Report:
     the set-up's criteria and a timed trial of ``trial_seconds`` (0: none)."""
     from .simulation import Setup
 
-    findings = [_units_finding(job)]
+    findings = [_units_finding(job), *default_findings(job)]
     mem = memory_finding(job)
     findings.append(mem)
     if mem.level == "error":      # building the set-up would allocate what does not fit
@@ -112,7 +113,7 @@ def check_study(study, trial_seconds: float = 1.0, progress=None) -> Report:
             if f.level != "ok":
                 entry["failing"].append({"point": n, "params": spec.params, "level": f.level,
                                          "where": where})
-    findings = [_units_finding(first)]
+    findings = [_units_finding(first), *default_findings(first)]
     for key in order:
         entry = merged[key]
         f, failing = entry["worst"], entry["failing"]

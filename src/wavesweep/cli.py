@@ -42,6 +42,13 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--set", action="append", default=[], metavar="KEY=VALUE")
     c.add_argument("--json", action="store_true", help="print the findings as JSON")
     c.add_argument("--trial-seconds", type=float, default=1.0, help="length of the timed trial")
+    c.add_argument("--tolerance", type=float, default=None, metavar="TOL",
+                   help="also run a pilot that measures the error of the run's outputs (the job run "
+                        "again with 1.5x the points per axis and with another dt; about 3x the run "
+                        "in 1D, printed before it starts) and names the setting that misses TOL: "
+                        "probabilities (absorbed per face, beyond each detector) absolutely, arrival "
+                        "mean and spread relative to their value, the final energy relative to the "
+                        "larger of |<H>| at the start and the end")
 
     root_help = "queue folder (default: $WAVESWEEP_ROOT or ./wavesweep-runs)"
     sb = sub.add_parser("submit", help="queue every run of a study (idempotent)")
@@ -194,10 +201,21 @@ def _run(args) -> int:
     return EXIT_OK
 
 
+def _run_cost(job) -> float:
+    """Steps x grid points of a job, from its table (no set-up built)."""
+    from .adequacy import memory_estimate
+    ev = job.table["evolve"]
+    steps = job.units.to_atomic(ev["duration"], "time") / job.units.to_atomic(ev["dt"], "time")
+    return steps * memory_estimate(job)["points"]
+
+
 def _check(args) -> int:
     from .batch.sweep import load_study
     from .check import check_study
 
+    if args.tolerance is not None:
+        from .pilot import plan_pilot, run_pilot, validate_tolerance
+        validate_tolerance(args.tolerance)      # before anything is computed
     study = load_study(args.job, args.set)
     progress = None
     if len(study.runs) > 1 and not args.json:
@@ -206,6 +224,19 @@ def _check(args) -> int:
     report = check_study(study, trial_seconds=args.trial_seconds, progress=progress)
     if progress:
         print(file=sys.stderr)
+    if args.tolerance is not None and report.errors:
+        print("wavesweep check: no accuracy pilot: the job has errors", file=sys.stderr)
+    elif args.tolerance is not None:
+        # a study's pilot measures the point that runs longest (steps x points)
+        spec = max(study.runs, key=lambda r: _run_cost(r.job))
+        if len(study.runs) > 1:
+            where = ", ".join(f"{k} = {v!r}" for k, v in spec.params.items())
+            print(f"wavesweep check: accuracy pilot on the longest point ({where})", file=sys.stderr)
+        plan = plan_pilot(spec.job, args.tolerance)
+        print(f"wavesweep check: {plan.text()}", file=sys.stderr, flush=True)
+        say = (lambda line: print(f"wavesweep check: {line}", file=sys.stderr, flush=True))
+        report.findings.extend(run_pilot(spec.job, args.tolerance, progress=say, plan=plan,
+                                         bars=sys.stderr.isatty()))
     if args.json:
         print(json.dumps(report.as_dict()))
     else:

@@ -243,18 +243,22 @@ def _upstream_probability(ds, setup, axis: int, x_det: float, side: float,
     return total * moving / float(np.sum(c))
 
 
-def arrival_times(result, detector: str | None = None) -> dict[str, ArrivalDistribution]:
+def arrival_times(result, detector: str | None = None,
+                  classical: bool = True) -> dict[str, ArrivalDistribution]:
     """Arrival-time distributions of a run's detectors (``detector``: only
-    that one), from a result file path or an open dataset."""
+    that one), from a result file path or an open dataset.  ``classical =
+    False`` leaves out the classical estimate (its curve is zeros, its
+    probability and mean NaN): the accuracy pilot needs only the quantum
+    statistics, and the estimate costs more than they do."""
     ds = open_result(result, require=("flux", "time"))
     try:
-        return _arrivals(ds, detector)
+        return _arrivals(ds, detector, classical)
     finally:
         if ds is not result:   # close only what was opened here
             ds.close()
 
 
-def _arrivals(ds, detector):
+def _arrivals(ds, detector, classical=True):
     names = [str(d) for d in ds["detector"].values] if "detector" in ds.coords else []
     if not names:
         raise JobError("RUN.nc", "the run recorded no detector flux; add a [[detector]] table "
@@ -305,8 +309,11 @@ def _arrivals(ds, detector):
             warnings.append(f"detector {name!r}: {stats['backflow']:.3g} of probability flows back across "
                             f"it against {forward:.3g} forward; the times are those of the forward "
                             "flux, the probability is the net crossing")
-        cl, cl_prob, cl_mean = classical_free_flight(setup.psi0, setup.grid, det.axis, setup.mass,
-                                                     det.position, t * uc["time"])
+        if classical:
+            cl, cl_prob, cl_mean = classical_free_flight(setup.psi0, setup.grid, det.axis, setup.mass,
+                                                         det.position, t * uc["time"])
+        else:
+            cl, cl_prob, cl_mean = np.zeros_like(t), math.nan, math.nan
         stats["classical_probability"] = cl_prob
         stats["classical_mean"] = cl_mean / uc["time"] if math.isfinite(cl_mean) else math.nan
         peak = float(np.max(np.abs(rho))) if len(rho) else 0.0
