@@ -2,6 +2,8 @@
 
 :class:`Setup` turns a :class:`~wavesweep.jobfile.Job` into atomic-unit
 objects (grid, Hamiltonian, absorber, initial state, detectors, propagator).
+:class:`Model`, its first half, is the particle, grid, potential and real
+Hamiltonian alone: stationary states (``levels``) need no packet.
 :class:`Simulation` runs the loop, records observables every ``record.every``
 and density every ``record.snapshot_every``, and writes the result through
 :class:`~wavesweep.io.recorder.ResultWriter`.
@@ -35,7 +37,7 @@ from .propagators import propagator_class
 from .schema import Field, to_atomic
 from .states import PACKET_SCHEMAS, build_state, central_momenta, momentum_spread
 
-__all__ = ["Setup", "Simulation", "run_job"]
+__all__ = ["Model", "Setup", "Simulation", "run_job"]
 
 
 @functools.lru_cache(maxsize=512)
@@ -58,43 +60,31 @@ _log = logging.getLogger(__name__)
 AXIS_LONG = {"x": "position x", "y": "position y", "z": "position z", "r": "radius r"}
 
 
-class Setup:
-    """Atomic-unit objects of a job (no time stepping)."""
+class Model:
+    """The job's particle, grid and potential terms in atomic units, and the
+    real Hamiltonian they make: what stationary states need, and nothing of
+    the run (no packet, absorber, detectors or time stepping), so nothing
+    about the packet can stop it.
 
-    def __init__(self, job: Job, fft: str | None = None, threads: int | None = None):
+    ``grid`` replaces the job's grid (the terms are evaluated on it): the
+    same physics on another grid, as convergence studies need.
+    ``hamiltonian`` is T + V0 + the time-dependent terms, without the
+    absorber (:class:`Setup` replaces it by the run's, with the absorber)."""
+
+    def __init__(self, job: Job, grid: Grid | None = None):
         self.job = job
         t, u = job.table, job.units
         self.units = u
         self.mass = u.to_atomic(t["particle"]["mass"], "mass", "particle.mass")
         charge = t["particle"].get("charge")
         self.charge = None if charge is None else u.to_atomic(charge, "charge", "particle.charge")
-        self.grid = self._grid(t["grid"])
-        ev = t["evolve"]
-        self.dt = u.to_atomic(ev["dt"], "time", "evolve.dt")
-        self.duration = u.to_atomic(ev["duration"], "time", "evolve.duration")
-        self.total_steps = round(self.duration / self.dt)
-        rec = t["record"]
-        self.sample_steps = round(u.to_atomic(rec["every"], "time") / self.dt)
-        self.snapshot_steps = round(u.to_atomic(rec["snapshot_every"], "time") / self.dt)
-        self.dtype = np.complex64 if ev["precision"] == "single" else np.complex128
+        self.grid = self._grid(t["grid"]) if grid is None else grid
         self.terms = [self._term(i, p) for i, p in enumerate(t["potential"])]
-        self.packet = self._packet_atomic(t["packet"])
-        from .check import representability
-        representability(self)  # before the absorber's tuning squares the packet's momenta
-        self.psi0 = build_state(self.packet, self.grid, self.mass,
-                                length_unit=(u.factor("length"), u.unit_label("length")), terms=self.terms)
-        if self.dtype == np.complex64:   # single precision end to end (half the bytes)
-            self.psi0 = self.psi0.astype(np.complex64)
-        self.absorber = self._absorber(t["absorber"])
-        self.hamiltonian = Hamiltonian(self.grid, self.mass, self.terms, self.absorber.rate,
-                                       static_potential=self.hamiltonian_static_potential())
-        self.detectors = [self._detector(i, d) for i, d in enumerate(t["detector"])]
-        self.fft_backend = fft or ev.get("fft", "auto")
-        self.threads = threads or ev.get("threads")
-        self.scheme = propagator_class(ev["scheme"])
-        self.scheme.check_supported(self.hamiltonian, self.absorber, self.grid)
 
-    # -- pieces ----------------------------------------------------------------
+    @functools.cached_property
+    def hamiltonian(self) -> Hamiltonian:
+        return Hamiltonian(self.grid, self.mass, self.terms, static_potential=self.hamiltonian_static_potential())
+
     def _grid(self, g) -> Grid:
         u, axes = self.units, []
         for name in grid_axes(g):
@@ -112,6 +102,44 @@ class Setup:
         ctx = PotentialContext(self.grid, self.mass, self.charge, self.units, where)
         return cls(params, ctx)
 
+    def hamiltonian_static_potential(self) -> np.ndarray:
+        """Static V on the grid (hartree), before the Hamiltonian exists."""
+        if getattr(self, "_v_static", None) is None:
+            self._v_static = static_potential_of(self.grid, self.mass, self.terms)
+        return self._v_static
+
+
+class Setup(Model):
+    """Atomic-unit objects of a job (no time stepping)."""
+
+    def __init__(self, job: Job, fft: str | None = None, threads: int | None = None):
+        super().__init__(job)
+        t, u = job.table, job.units
+        ev = t["evolve"]
+        self.dt = u.to_atomic(ev["dt"], "time", "evolve.dt")
+        self.duration = u.to_atomic(ev["duration"], "time", "evolve.duration")
+        self.total_steps = round(self.duration / self.dt)
+        rec = t["record"]
+        self.sample_steps = round(u.to_atomic(rec["every"], "time") / self.dt)
+        self.snapshot_steps = round(u.to_atomic(rec["snapshot_every"], "time") / self.dt)
+        self.dtype = np.complex64 if ev["precision"] == "single" else np.complex128
+        self.packet = self._packet_atomic(t["packet"])
+        from .check import representability
+        representability(self)  # before the absorber's tuning squares the packet's momenta
+        self.psi0 = build_state(self.packet, self.grid, self.mass,
+                                length_unit=(u.factor("length"), u.unit_label("length")), terms=self.terms)
+        if self.dtype == np.complex64:   # single precision end to end (half the bytes)
+            self.psi0 = self.psi0.astype(np.complex64)
+        self.absorber = self._absorber(t["absorber"])
+        self.hamiltonian = Hamiltonian(self.grid, self.mass, self.terms, self.absorber.rate,
+                                       static_potential=self.hamiltonian_static_potential())
+        self.detectors = [self._detector(i, d) for i, d in enumerate(t["detector"])]
+        self.fft_backend = fft or ev.get("fft", "auto")
+        self.threads = threads or ev.get("threads")
+        self.scheme = propagator_class(ev["scheme"])
+        self.scheme.check_supported(self.hamiltonian, self.absorber, self.grid)
+
+    # -- pieces ----------------------------------------------------------------
     def _packet_atomic(self, table, name="packet") -> dict:
         kind = table["kind"]
         p = to_atomic(table, PACKET_SCHEMAS[kind], self.units, name, self.grid.ndim)
@@ -187,12 +215,6 @@ class Setup:
             if idx.size:
                 out.append(v_packet - float(np.take(v, idx, axis=axis).mean()))
         return out
-
-    def hamiltonian_static_potential(self) -> np.ndarray:
-        """Static V on the grid (hartree), before the Hamiltonian exists."""
-        if getattr(self, "_v_static", None) is None:
-            self._v_static = static_potential_of(self.grid, self.mass, self.terms)
-        return self._v_static
 
     def _absorber(self, table) -> Absorber:
         kind = table["kind"]

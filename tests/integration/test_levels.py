@@ -113,8 +113,13 @@ def test_levels_json_and_states(tmp_path):
     proc = cli("levels", job, "--count", "4", "--json", "--states", "states.nc", cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr
     body = json.loads(proc.stdout)   # exactly one JSON object, nothing else on stdout
-    assert set(body) == {"energies", "energy_units"} and body["energy_units"] == "hartree"
+    assert set(body) == {"energies", "energy_units", "energy_errors", "refine", "extrapolated"}
+    assert body["energy_units"] == "hartree" and body["refine"] == "grid.x.points"
     np.testing.assert_allclose(body["energies"], [0.5, 1.5, 2.5, 3.5], rtol=1e-10)  # (n + 1/2) hbar w
+    # every estimate bounds the true error, and this grid is converged to rounding
+    assert len(body["energy_errors"]) == 4
+    for e, err, exact in zip(body["energies"], body["energy_errors"], [0.5, 1.5, 2.5, 3.5]):
+        assert abs(e - exact) <= err < 1e-11
     assert sorted(p.name for p in tmp_path.iterdir() if "states" in p.name) == ["states.nc"]
     with xr.open_dataset(tmp_path / "states.nc") as ds:
         assert ds.psi_real.dims == ("state", "x") and ds.sizes["state"] == 4
@@ -261,7 +266,7 @@ def test_levels_are_printed_before_the_states_are_written(tmp_path, monkeypatch,
     assert_bad_input(cli("levels", job, "--count", "3", "--states", tmp_path, cwd=tmp_path), "--states",
                      "is a folder")
 
-    def full_disk(path, *args):
+    def full_disk(path, *args, **kwargs):
         raise JobError("--states", f"cannot write {str(path)!r}: No space left on device; choose another path")
 
     monkeypatch.setattr(spectra, "write_states", full_disk)
@@ -289,9 +294,10 @@ def test_degenerate_levels_are_marked(tmp_path):
     proc = cli("levels", write_job(tmp_path, table), "--count", "7", cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr
     head, *rows = proc.stdout.splitlines()
-    assert "degenerate" in head and len(rows) == 7
-    cells = [r.split(None, 2) for r in rows]
+    assert "degenerate" in head and "error" in head and len(rows) == 7
+    cells = [r.split(None, 3) for r in rows]
     assert [int(c[0]) for c in cells] == list(range(7))
     np.testing.assert_allclose([float(c[1]) for c in cells], [1, 2, 2, 3, 3, 3, 4], rtol=1e-8)
-    assert [c[2] if len(c) > 2 else "" for c in cells] == ["", "levels 1-2", "levels 1-2", "levels 3-5",
+    assert all(abs(float(c[1]) - e) <= float(c[2]) for c, e in zip(cells, [1, 2, 2, 3, 3, 3, 4]))
+    assert [c[3] if len(c) > 3 else "" for c in cells] == ["", "levels 1-2", "levels 1-2", "levels 3-5",
                                                           "levels 3-5", "levels 3-5", "levels 6-7 (or more)"]
