@@ -37,6 +37,29 @@ Stationary states (:func:`stationary_states`, :func:`eigenpairs`)
     degenerate level any orthonormal basis is an answer; which one is
     returned is not defined.
 
+Error estimates (:func:`level_errors`)
+    Resolution: the same Hamiltonian (its terms evaluated on each grid) on
+    grids with 0.8 and 0.64 times the points per axis.  Differences that
+    grow towards the coarser grid give the observed order p and the error
+    1.25 |E1 - E0| / (h1^p - 1) of the job's level (Richardson's estimate;
+    Aitken's for the geometric or faster convergence of smooth potentials,
+    whose levels alternate in sign, so magnitudes count).  Grids 0.8 apart
+    keep that near the truth when convergence is faster than geometric.
+    Where the convergence is algebraic (order <= 8, one sign: a cusp, a kink
+    or a step of V; the radial -Z/r cusp gives dr^2 for l = 0, dr^3 for
+    l = 1) the levels are Richardson-extrapolated from five grids (0.8^k, k
+    = 0..4) in powers q..q+3 of dx, with 1.25 times the distance to the
+    four-grid fit as the error bar, and reported when that bar is the
+    smaller.  Measured, hydrogen on 3999 radial points (80 bohr): 1s, 2s,
+    3s within 4e-9, 2e-9, 1.3e-9 relative (error bars 1.6e-8, 1e-8, 1.1e-8;
+    the grid's own eigenvalues are off by 2.6e-4 ... 8.7e-5); the extra
+    solves cost 0.5 s, against 2 s for the job's grid.
+    Edge: a state that decays into an edge of the grid is shifted by it;
+    the shift comes from the state's value next to the edge (see
+    :func:`_edge_errors`), and its face names the setting (``grid.x.max``)
+    when it dominates.
+    Rounding: a few eps ||H|| plus r^2 / gap of the states' residuals.
+
 Autocorrelation levels (:func:`autocorrelation_levels`)
     C(t) = <psi(0)|psi(t)> = sum_n |c_n|^2 exp(-i E_n t / hbar) of a run
     whose Hamiltonian does not depend on time; the windowed Fourier
