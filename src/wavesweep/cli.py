@@ -391,22 +391,22 @@ def _levels(args) -> int:
 
         if args.states:
             check_states_path(args.states)   # before the solve: a path that cannot be written costs nothing
-        setup = Model(load_job(args.job, args.set))   # the packet plays no part in the levels
+        model = Model(load_job(args.job, args.set))   # the packet plays no part in the levels
         energies_au = states = None
         if args.count >= 1:
             try:   # one level more, to tell whether the last one asked for is degenerate with the next
-                energies_au, states = stationary_states(setup, args.count + 1, field="--count")
+                energies_au, states = stationary_states(model, args.count + 1, field="--count")
             except JobError:   # the grid holds no more states
                 pass
         if energies_au is None:   # the count's own answer, or its own message
-            energies_au, states = stationary_states(setup, args.count, field="--count")
+            energies_au, states = stationary_states(model, args.count, field="--count")
         for a, b in degenerate_groups(energies_au):
             label = f"levels {a}-{b}" + (" (or more)" if b >= args.count else "")
             member.update((n, label) for n in range(a, min(b + 1, args.count)))
         energies_au, states = energies_au[:args.count], states[:args.count]
-        estimate = level_errors(setup, energies_au, states)
-        units = setup.units.unit_label("energy")
-        ef = setup.units.factor("energy")
+        estimate = level_errors(model, energies_au, states)
+        units = model.units.unit_label("energy")
+        ef = model.units.factor("energy")
         energies, errors, weights = estimate.energies / ef, estimate.errors / ef, None
         notes = [f"{estimate.refine}: {estimate.advice}"] if estimate.advice else []
     # the levels first: a states file that fails to write loses nothing computed
@@ -431,7 +431,7 @@ def _levels(args) -> int:
             print((row + f"  {member[n]}") if n in member else row)
     if args.from_run is None and args.states:
         sys.stdout.flush()
-        write_states(args.states, setup, estimate.grid_energies, states,   # JobError: exit 2, one line
+        write_states(args.states, model, estimate.grid_energies, states,   # JobError: exit 2, one line
                      errors=estimate)
         if not args.json:
             print(f"states: {args.states}")

@@ -615,3 +615,24 @@ def test_stationary_states_never_build_the_packet():
                         packet={"kind": "gaussian", "center": 11.99, "width": 2.0}))
     energies, _ = stationary_states(job, 3)
     np.testing.assert_allclose(energies, [0.5, 1.5, 2.5], rtol=1e-10)
+
+
+def test_a_period_that_cuts_a_well_is_an_edge_a_lattice_period_is_not():
+    """A harmonic well on a periodic grid of +/- 4 bohr: the levels above V
+    at the seam (8 hartree) are held by the period, and their estimates
+    still bound the distance from (n + 1/2) hbar w (Griffiths sec. 2.3; from
+    memory) with refine = grid.x.max.  A lattice of period 2 on 8 bohr:
+    the period is the physics, so no level gets an edge error."""
+    from wavesweep.analysis.spectra import level_errors
+    from wavesweep.simulation import Model
+
+    model = Model(make_job(_job({"x": {"min": -4.0, "max": 4.0, "points": 64}}, [{"kind": "harmonic", "omega": 1.0}])))
+    energies, states = stationary_states(model, 12)
+    found = level_errors(model, energies, states)
+    assert np.all(np.abs(found.energies - (np.arange(12) + 0.5)) <= found.errors)
+    assert found.refine == "grid.x.max" and "grid.x.max" in found.advice
+    model = Model(make_job(_job({"x": {"min": 0.0, "max": 8.0, "points": 64}},
+                                [{"kind": "lattice", "depth": 3.0, "spacing": 2.0}])))
+    energies, states = stationary_states(model, 12)
+    found = level_errors(model, energies, states)
+    assert np.all(found.edge_errors == 0.0) and np.all(found.errors < 1e-12) and found.refine == "grid.x.points"

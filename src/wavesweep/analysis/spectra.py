@@ -618,8 +618,9 @@ def _scaled_grid(grid: Grid, factor: float) -> Grid | None:
 def _comparison_levels(model, factor, count, states, method, tol=ITERATIVE_TOL):
     """``(dx ratio, energies)`` of the job's Hamiltonian on the grid with
     ``factor`` times the points (the terms evaluated on that grid), or None
-    when that grid cannot hold ``count`` levels.  Iterative solves start
-    from the job's states, truncated to the smaller grid's modes."""
+    when there is no such grid or its solve fails; levels beyond what that
+    grid holds are NaN.  Iterative solves start from the job's states,
+    truncated to the smaller grid's modes."""
     from ..simulation import Model
 
     grid = model.hamiltonian.grid
@@ -632,17 +633,19 @@ def _comparison_levels(model, factor, count, states, method, tol=ITERATIVE_TOL):
         hc = _coarse_hamiltonian(model.hamiltonian, model.hamiltonian.real_potential(0.0), coarse)
     ratios = [c.dx / a.dx for a, c in zip(grid.axes, coarse.axes) if c.points != a.points]
     spacing = float(np.exp(np.mean(np.log(ratios))))
+    _, keep = walled_potential(hc, 0.0)
+    held = min(count, coarse.size if keep is None else int(keep.sum()))
     try:
         if method == "dense" or coarse.size <= COMPARISON_DENSE_POINTS:
-            energies, _ = eigenpairs(hc, count, t=0.0, method="dense")
+            energies, _ = eigenpairs(hc, held, t=0.0, method="dense")
         else:
             try:
-                energies, _ = _iterative_from(hc, count, states, grid, tol)
+                energies, _ = _iterative_from(hc, held, states[:held], grid, tol)
             except RunFailed:
-                energies, _ = eigenpairs(hc, count, t=0.0, method=method)
+                energies, _ = eigenpairs(hc, held, t=0.0, method=method)
     except (JobError, RunFailed):
         return None
-    return spacing, energies
+    return spacing, np.concatenate([energies, np.full(count - held, np.nan)])
 
 
 def _iterative_from(hc, count, states, fine, tol=POLISH_TOL):
@@ -704,6 +707,8 @@ def _three_grid_error(e0, e1, e2, h1, h2, floor):
     The order is returned negative when the differences change sign (no
     Richardson extrapolation then)."""
     d1, d2 = e1 - e0, e2 - e1
+    if not (math.isfinite(d1) and math.isfinite(d2)):   # beyond what a comparison grid holds
+        return math.nan, math.nan
     noise = 4.0 * floor
     if abs(d1) <= noise and abs(d2) <= noise:
         return floor, math.nan
@@ -764,8 +769,11 @@ def _edge_errors(model, v, energies, states):
     by the same formula, hbar^2 kappa (a^2 + b^2) / m in all (a state even
     or odd about the seam alike).  Where the state does not decay
     (E > V at the edge), a box axis's wall and a periodic axis's period are
-    the job's physics (a particle in a box, a ring), but r_max of a radial
-    grid never is: there the level is a box level, and moving the wall from
+    the job's physics (a particle in a box, a ring, a lattice), unless V has
+    a kink at the seam (second difference above 4 times the largest
+    elsewhere: a well cut by the period), where the estimate is the flux
+    density (hbar^2 / 2m) (psi'^2 + k^2 psi^2) at the seam over the period
+    L; r_max of a radial grid never is: there the level is a box level, and moving the wall from
     a by da moves it by -(hbar^2 / 2m) psi'(a)^2 da (the Hadamard formula
     for a Dirichlet wall; e.g. Garabedian, Partial Differential Equations,
     ch. 15; from memory): the estimate is that for da = L, psi'(a) from the
@@ -780,6 +788,12 @@ def _edge_errors(model, v, energies, states):
         periodic = ax.boundary == "periodic"
         sides = [(f"{ax.name}+", ax.points - 1)] if (periodic or grid.radial) else \
             [(f"{ax.name}-", 0), (f"{ax.name}+", ax.points - 1)]
+        if periodic:   # V's second difference at the seam against the largest elsewhere
+            second = np.roll(v, -1, axis=i) - 2.0 * v + np.roll(v, 1, axis=i)
+            seam = np.abs(np.take(second, 0, axis=i))
+            inside = np.max(np.abs(np.take(second, np.arange(1, ax.points), axis=i)), axis=i) if ax.points > 1 \
+                else np.zeros_like(seam)
+            kinked = seam > 4.0 * inside + 1e-12 * (1.0 + np.abs(np.take(v, 0, axis=i)))
         for face, index in sides:
             v_face = np.take(v, 0 if periodic else index, axis=i)
             for n, (e, psi) in enumerate(zip(energies, states)):
@@ -795,6 +809,12 @@ def _edge_errors(model, v, energies, states):
                     det = 2.0 * np.sinh(2.0 * step)
                     a, b = (before * grow - after * fall) / det, (after * grow - before * fall) / det
                     shift = np.where(forbidden, kappa * (a**2 + b**2) / mass, 0.0)
+                    # above V at a seam where V has a kink (a well cut by the period, not a lattice),
+                    # the period confines the state: the flux density there over the period
+                    slope = (after - before) / (2.0 * ax.dx)
+                    wave2 = np.maximum(2.0 * mass * (e - v_face), 0.0)
+                    allowed = (slope**2 + wave2 * psi_face**2) / (2.0 * mass) * ax.length
+                    shift = np.where(forbidden | ~kinked, shift, allowed)
                 else:
                     amplitude2 = psi_face**2 / np.sinh(np.minimum(kappa * ax.dx, 300.0)) ** 2
                     shift = np.where(forbidden, kappa * amplitude2 / (4.0 * mass), 0.0)
@@ -827,7 +847,8 @@ def _smooth_count(n: int, box: bool) -> int:
 def _advice(model, best, errors, resolution, edge, faces, orders, extrapolated, ladder, states):
     """``(refine, advice)``: the job field that gives the worst level more
     digits, and a line for stderr naming it and a value for ADVICE_TARGET
-    when that level's relative error exceeds NOTE_RELATIVE."""
+    when that level's relative error (to max(|E|, the levels' span))
+    exceeds NOTE_RELATIVE.  A level without an estimate is the worst."""
     grid = model.hamiltonian.grid
     units = model.units
     lf, length = units.factor("length"), units.unit_label("length")
@@ -835,6 +856,11 @@ def _advice(model, best, errors, resolution, edge, faces, orders, extrapolated, 
     relative = np.where(np.isfinite(errors), errors / np.maximum(scale, 1e-300), np.inf)
     worst = int(np.argmax(relative))
     rel = float(relative[worst])
+    if not np.isfinite(rel):
+        ax = max(grid.axes, key=lambda a: a.dx)
+        return f"grid.{ax.name}.points", (f"level {worst}: no error estimate (the comparison grids, with 0.8 and "
+                                          f"0.64 times the points, cannot hold the levels); ask for fewer levels "
+                                          f"or use more points")
     if edge[worst] > (resolution[worst] if np.isfinite(resolution[worst]) else 0.0):
         face, (_, kappa) = max(faces[worst].items(), key=lambda item: item[1][0])
         name, side = face[:-1], face[-1]
@@ -869,9 +895,6 @@ def _advice(model, best, errors, resolution, edge, faces, orders, extrapolated, 
         return refine, None
     box = ax.boundary != "periodic"
     order = abs(float(orders[worst]))
-    if not np.isfinite(rel):
-        return refine, (f"level {worst}: no error estimate (the smaller comparison grids cannot hold the "
-                        f"levels); more points along {ax.name} (set {refine}) tell")
     if not np.isfinite(order):
         target = 2 * ax.points
         how = "the levels are not yet converging steadily"
