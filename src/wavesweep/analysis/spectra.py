@@ -569,7 +569,7 @@ def level_errors(model, energies_hartree, states, method: str = "auto") -> Level
                     best[n], resolution[n], extrapolated[n] = value, error, True
     edge, faces = _edge_errors(model, v, e0, states)
     errors = resolution + edge
-    refine, advice = _advice(model, best, errors, resolution, edge, faces, orders, extrapolated, ladder, states)
+    refine, advice = _advice(model, best, errors, resolution, edge, faces, orders, extrapolated, states)
     return LevelErrors(energies=best, errors=errors, grid_energies=e0, resolution_errors=resolution,
                        edge_errors=edge, extrapolated=extrapolated, orders=np.abs(orders), refine=refine,
                        advice=advice)
@@ -844,7 +844,7 @@ def _smooth_count(n: int, box: bool) -> int:
         n += 1
 
 
-def _advice(model, best, errors, resolution, edge, faces, orders, extrapolated, ladder, states):
+def _advice(model, best, errors, resolution, edge, faces, orders, extrapolated, states):
     """``(refine, advice)``: the job field that gives the worst level more
     digits, and a line for stderr naming it and a value for ADVICE_TARGET
     when that level's relative error (to max(|E|, the levels' span))
@@ -858,9 +858,9 @@ def _advice(model, best, errors, resolution, edge, faces, orders, extrapolated, 
     rel = float(relative[worst])
     if not np.isfinite(rel):
         ax = max(grid.axes, key=lambda a: a.dx)
-        return f"grid.{ax.name}.points", (f"level {worst}: no error estimate (the comparison grids, with 0.8 and "
-                                          f"0.64 times the points, cannot hold the levels); ask for fewer levels "
-                                          f"or use more points")
+        return f"grid.{ax.name}.points", (f"level {worst}: no error estimate (the grids with 0.8 and 0.64 times "
+                                          f"the points hold too few levels or points); ask for fewer levels or "
+                                          f"use more points")
     if edge[worst] > (resolution[worst] if np.isfinite(resolution[worst]) else 0.0):
         face, (_, kappa) = max(faces[worst].items(), key=lambda item: item[1][0])
         name, side = face[:-1], face[-1]
