@@ -23,8 +23,8 @@ def _units_finding(job: Job) -> Finding:
     u = job.units
     describe = getattr(u, "describe", None)
     atomic = {"length": "bohr", "time": "au", "energy": "hartree", "mass": "m_e"}
-    text = describe() if describe else ", ".join(
-        f"{k} {u.unit_label(k)} (= {u.factor(k):.6g} {atomic[k]})" for k in ("length", "time", "energy", "mass"))
+    inside = ", ".join(f"1 {u.unit_label(k)} = {u.factor(k):.6g} {atomic[k]}" for k in ("length", "time", "energy", "mass"))
+    text = (describe() + f" ({inside})") if describe else inside
     factors = {f"{kind}_in_atomic_units": u.factor(kind) for kind in ("length", "time", "energy", "mass")}
     return Finding("units", "ok", text or "atomic units", {"units": u.as_table(), **factors})
 

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import os
 import sys
 
@@ -423,9 +424,10 @@ def _plot(args) -> int:
 
 def _levels(args) -> int:
     from .analysis.spectra import (DEGENERATE_TOL, autocorrelation_levels, check_states_path, degenerate_groups,
-                                   stationary_states, write_states)
+                                   level_errors, stationary_states, write_states)
 
     member = {}   # level -> the degenerate level it belongs to (job files only)
+    errors = estimate = None
     if args.from_run is not None:
         if args.job is not None:
             raise JobError("--from", "give either JOB.toml or --from RUN.nc, not both")
@@ -447,41 +449,52 @@ def _levels(args) -> int:
         if args.count is None:
             raise JobError("--count", "required with a job file: how many levels, e.g. --count 10")
         from .jobfile import load_job
-        from .simulation import Setup
+        from .simulation import Model
 
         if args.states:
             check_states_path(args.states)   # before the solve: a path that cannot be written costs nothing
-        setup = Setup(load_job(args.job, args.set))
+        model = Model(load_job(args.job, args.set))   # the packet plays no part in the levels
         energies_au = states = None
         if args.count >= 1:
             try:   # one level more, to tell whether the last one asked for is degenerate with the next
-                energies_au, states = stationary_states(setup, args.count + 1, field="--count")
+                energies_au, states = stationary_states(model, args.count + 1, field="--count")
             except JobError:   # the grid holds no more states
                 pass
         if energies_au is None:   # the count's own answer, or its own message
-            energies_au, states = stationary_states(setup, args.count, field="--count")
+            energies_au, states = stationary_states(model, args.count, field="--count")
         for a, b in degenerate_groups(energies_au):
             label = f"levels {a}-{b}" + (" (or more)" if b >= args.count else "")
             member.update((n, label) for n in range(a, min(b + 1, args.count)))
         energies_au, states = energies_au[:args.count], states[:args.count]
-        units = setup.units.unit_label("energy")
-        energies, weights, notes = energies_au / setup.units.factor("energy"), None, []
+        estimate = level_errors(model, energies_au, states)
+        units = model.units.unit_label("energy")
+        ef = model.units.factor("energy")
+        energies, errors, weights = estimate.energies / ef, estimate.errors / ef, None
+        notes = [f"{estimate.refine}: {estimate.advice}"] if estimate.advice else []
     # the levels first: a states file that fails to write loses nothing computed
     if args.json:
         body = {"energies": [float(e) for e in energies], "energy_units": units}
         if weights is not None:
             body["weights"] = [float(w) for w in weights]
+        if errors is not None:
+            body["energy_errors"] = [float(d) if math.isfinite(d) else None for d in errors]
+            body["refine"] = estimate.refine
+            body["extrapolated"] = [bool(x) for x in estimate.extrapolated]
         print(json.dumps(body))
     else:
         head = f"{'level':>5}  {'energy (' + units + ')':>22}"
+        head += f"  {'error':>9}" if errors is not None else ""
         head += f"  {'weight':>12}" if weights is not None else ""
         print(head + (f"  degenerate (within {DEGENERATE_TOL:g} relative)" if member else ""))
         for n, e in enumerate(energies):   # in energy order, 0 the lowest
-            row = f"{n:>5}  {e:>22.12g}" + (f"  {weights[n]:>12.6g}" if weights is not None else "")
+            row = f"{n:>5}  {e:>22.12g}"
+            row += f"  {errors[n]:>9.2g}" if errors is not None else ""
+            row += f"  {weights[n]:>12.6g}" if weights is not None else ""
             print((row + f"  {member[n]}") if n in member else row)
     if args.from_run is None and args.states:
         sys.stdout.flush()
-        write_states(args.states, setup, energies_au, states)   # JobError: exit 2, one line
+        write_states(args.states, model, estimate.grid_energies, states,   # JobError: exit 2, one line
+                     errors=estimate)
         if not args.json:
             print(f"states: {args.states}")
     _warn("levels", notes)

@@ -453,5 +453,13 @@ def default_findings(job: Job, raw: dict | None = None) -> list[Finding]:
     (topic "defaults", ``field`` the key, ``values`` its value as text), so
     that every value the job did not choose itself is on the report."""
     return [Finding("defaults", "ok", f"{d.field} = {d.value} by default: {d.doc}; give it in the job "
-                                      "to choose another", {"value": d.value}, d.field)
+                                      "to choose another", {"value": d.value, **_number_of(d.value)}, d.field)
             for d in physics_defaults(job, raw)]
+
+
+def _number_of(text) -> dict:
+    """``{"number": x}`` when a default's text starts with a number ("0.0 nm"), else {}."""
+    try:
+        return {"number": float(str(text).split()[0])}
+    except (ValueError, IndexError):
+        return {}

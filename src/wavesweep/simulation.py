@@ -2,6 +2,8 @@
 
 :class:`Setup` turns a :class:`~wavesweep.jobfile.Job` into atomic-unit
 objects (grid, Hamiltonian, absorber, initial state, detectors, propagator).
+:class:`Model`, its first half, is the particle, grid, potential and real
+Hamiltonian alone: stationary states (``levels``) need no packet.
 :class:`Simulation` runs the loop, records observables every ``record.every``
 and density every ``record.snapshot_every``, and writes the result through
 :class:`~wavesweep.io.recorder.ResultWriter`.
@@ -34,9 +36,9 @@ from .observables import Detector, Observer
 from .potentials import PotentialContext, make_term
 from .propagators import propagator_class
 from .schema import Field, to_atomic
-from .states import PACKET_SCHEMAS, build_state, central_momenta, momentum_spread
+from .states import PACKET_SCHEMAS, build_state
 
-__all__ = ["Setup", "Simulation", "run_job"]
+__all__ = ["Model", "Setup", "Simulation", "run_job"]
 
 
 @functools.lru_cache(maxsize=512)
@@ -59,17 +61,57 @@ _log = logging.getLogger(__name__)
 AXIS_LONG = {"x": "position x", "y": "position y", "z": "position z", "r": "radius r"}
 
 
-class Setup:
-    """Atomic-unit objects of a job (no time stepping)."""
+class Model:
+    """The job's particle, grid and potential terms in atomic units, and the
+    real Hamiltonian they make: what stationary states need, and nothing of
+    the run (no packet, absorber, detectors or time stepping), so nothing
+    about the packet can stop it.
 
-    def __init__(self, job: Job, fft: str | None = None, threads: int | None = None):
+    ``grid`` replaces the job's grid (the terms are evaluated on it): the
+    same physics on another grid, as convergence studies need.
+    ``hamiltonian`` is T + V0 + the time-dependent terms, without the
+    absorber (:class:`Setup` replaces it by the run's, with the absorber)."""
+
+    def __init__(self, job: Job, grid: Grid | None = None):
         self.job = job
         t, u = job.table, job.units
         self.units = u
         self.mass = u.to_atomic(t["particle"]["mass"], "mass", "particle.mass")
         charge = t["particle"].get("charge")
         self.charge = None if charge is None else u.to_atomic(charge, "charge", "particle.charge")
-        self.grid = self._grid(t["grid"])
+        self.grid = self._grid(t["grid"]) if grid is None else grid
+        self.terms = [self._term(i, p) for i, p in enumerate(t["potential"])]
+
+    @functools.cached_property
+    def hamiltonian(self) -> Hamiltonian:
+        return Hamiltonian(self.grid, self.mass, self.terms, static_potential=self.hamiltonian_static_potential())
+
+    def _grid(self, g) -> Grid:
+        u, axes = self.units, []
+        for name in grid_axes(g):
+            a = g[name]
+            axes.append(Axis(name, u.to_atomic(a["min"], "length"), u.to_atomic(a["max"], "length"),
+                             int(a["points"]), a.get("boundary") or g["boundary"]))
+        return Grid(tuple(axes), radial="r" in g, angular_momentum=int(g.get("l", 0)))
+
+    def _term(self, i, table, prefix="potential"):
+        """A potential term from its table; ``prefix.i`` names it in messages."""
+        ctx = PotentialContext(self.grid, self.mass, self.charge, self.units, f"{prefix}.{i}")
+        return make_term(table, ctx)
+
+    def hamiltonian_static_potential(self) -> np.ndarray:
+        """Static V on the grid (hartree), before the Hamiltonian exists."""
+        if getattr(self, "_v_static", None) is None:
+            self._v_static = static_potential_of(self.grid, self.mass, self.terms)
+        return self._v_static
+
+
+class Setup(Model):
+    """Atomic-unit objects of a job (no time stepping)."""
+
+    def __init__(self, job: Job, fft: str | None = None, threads: int | None = None):
+        super().__init__(job)
+        t, u = job.table, job.units
         ev = t["evolve"]
         self.dt = u.to_atomic(ev["dt"], "time", "evolve.dt")
         self.duration = u.to_atomic(ev["duration"], "time", "evolve.duration")
@@ -78,7 +120,6 @@ class Setup:
         self.sample_steps = round(u.to_atomic(rec["every"], "time") / self.dt)
         self.snapshot_steps = round(u.to_atomic(rec["snapshot_every"], "time") / self.dt)
         self.dtype = np.complex64 if ev["precision"] == "single" else np.complex128
-        self.terms = [self._term(i, p) for i, p in enumerate(t["potential"])]
         self.packet = self._packet_atomic(t["packet"])
         representability(self)  # before the absorber's tuning squares the packet's momenta
         self.psi0 = build_state(self.packet, self.grid, self.mass,
@@ -95,19 +136,6 @@ class Setup:
         self.scheme.check_supported(self.hamiltonian, self.absorber, self.grid)
 
     # -- pieces ----------------------------------------------------------------
-    def _grid(self, g) -> Grid:
-        u, axes = self.units, []
-        for name in grid_axes(g):
-            a = g[name]
-            axes.append(Axis(name, u.to_atomic(a["min"], "length"), u.to_atomic(a["max"], "length"),
-                             int(a["points"]), a.get("boundary") or g["boundary"]))
-        return Grid(tuple(axes), radial="r" in g, angular_momentum=int(g.get("l", 0)))
-
-    def _term(self, i, table, prefix="potential"):
-        """A potential term from its table; ``prefix.i`` names it in messages."""
-        ctx = PotentialContext(self.grid, self.mass, self.charge, self.units, f"{prefix}.{i}")
-        return make_term(table, ctx)
-
     def _packet_atomic(self, table, name="packet") -> dict:
         kind = table["kind"]
         p = to_atomic(table, PACKET_SCHEMAS[kind], self.units, name, self.grid.ndim)
@@ -126,12 +154,6 @@ class Setup:
         by diffraction where V couples the axes and by electrons a field
         frees, floored where the wavelength reaches the layer thickness)."""
         return dynamics(self).windows[face]
-
-    def hamiltonian_static_potential(self) -> np.ndarray:
-        """Static V on the grid (hartree), before the Hamiltonian exists."""
-        if getattr(self, "_v_static", None) is None:
-            self._v_static = static_potential_of(self.grid, self.mass, self.terms)
-        return self._v_static
 
     def _absorber(self, table) -> Absorber:
         kind = table["kind"]

@@ -525,3 +525,114 @@ def test_degenerate_groups():
     assert degenerate_groups(energies) == [(1, 2), (3, 5), (6, 9)]
     assert degenerate_groups([1.509, 1.514, 4.06]) == []
     assert degenerate_groups([0.5]) == []
+
+
+# -- error estimates (levels) ------------------------------------------------------------
+def _morse_levels(n, depth, stiffness, mass):
+    """Morse, Phys. Rev. 34, 57 (1929) (from memory): hbar w (n + 1/2) -
+    [hbar w (n + 1/2)]^2 / 4D with w = a sqrt(2 D / m)."""
+    w = stiffness * math.sqrt(2 * depth / mass)
+    return w * (n + 0.5) - (w * (n + 0.5)) ** 2 / (4 * depth)
+
+
+def _hydrogenic(n, charge):
+    """Bohr levels -Z^2 / (2 n^2) hartree, infinite nuclear mass (Griffiths
+    eq. 4.70 with Z e^2; from memory)."""
+    return -(charge**2) / (2.0 * n**2)
+
+
+n4 = np.arange(4)
+ERROR_CASES = {
+    # (grid, potential, count, closed form, what should give more digits)
+    "oscillator, periodic, coarse": ({"x": {"min": -12.0, "max": 12.0, "points": 36}},
+                                     [{"kind": "harmonic", "omega": 1.0}], n4 + 0.5, "grid.x.points"),
+    "oscillator, box, coarse": ({"x": {"min": -12.0, "max": 12.0, "points": 36}, "boundary": "box"},
+                                [{"kind": "harmonic", "omega": 1.0}], n4 + 0.5, "grid.x.points"),
+    "oscillator, periodic, short": ({"x": {"min": -4.0, "max": 4.0, "points": 128}},
+                                    [{"kind": "harmonic", "omega": 1.0}], n4 + 0.5, "grid.x.m"),
+    "oscillator, box, short": ({"x": {"min": -4.0, "max": 4.0, "points": 128}, "boundary": "box"},
+                               [{"kind": "harmonic", "omega": 1.0}], n4 + 0.5, "grid.x.m"),
+    "Morse, 256 points": ({"x": {"min": -20.0, "max": 20.0, "points": 256}},
+                          [{"kind": "morse", "depth": 10.0, "stiffness": 1.0}], _morse_levels(n4, 10.0, 1.0, 1.0),
+                          "grid.x.points"),
+    "hydrogen p, 999 points": ({"r": {"max": 80.0, "points": 999}, "l": 1}, [{"kind": "coulomb"}],
+                               _hydrogenic(n4 + 2, 1.0), "grid.r.max"),     # 5p reaches r = 80
+    "He+ s, 999 points": ({"r": {"max": 40.0, "points": 999}, "l": 0}, [{"kind": "coulomb", "charge": 2.0}],
+                          _hydrogenic(n4[:3] + 1, 2.0), "grid.r.points"),
+}
+
+
+@pytest.mark.parametrize("case", list(ERROR_CASES))
+def test_level_errors_bound_the_true_error(case):
+    """Each level's estimated error bounds its distance from the closed form
+    and is not more than 100 times it (where that distance is above
+    rounding, 1e-11 of the levels' scale); ``refine`` names the setting that
+    limits the worst level: the point count when resolution does (a coarse
+    grid; the radial -Z/r cusp), the grid's end when the states reach it (a
+    well on a short grid, 5p at 80 bohr), and a note says by how much when
+    its relative error exceeds 1e-6."""
+    from wavesweep.analysis.spectra import level_errors
+    from wavesweep.simulation import Model
+
+    grid, potential, exact, refine = ERROR_CASES[case]
+    model = Model(make_job(_job(grid, potential)))
+    energies, states = stationary_states(model, len(exact))
+    found = level_errors(model, energies, states)
+    true = np.abs(found.energies - exact)
+    assert np.all(true <= found.errors), (true, found.errors)
+    above = true > 1e-11 * max(1.0, float(np.max(np.abs(exact))))
+    assert np.all(found.errors[above] <= 100 * true[above]), (true, found.errors)
+    assert found.refine.startswith(refine)
+    relative = found.errors / np.abs(found.energies)
+    if np.max(relative) > 1e-6:
+        assert found.advice and f"set {found.refine} to" in found.advice
+    else:
+        assert found.advice is None
+    np.testing.assert_array_equal(found.grid_energies, energies)
+
+
+def test_walls_of_a_box_are_physics_not_an_edge_error():
+    """A particle in a box (closed form E_n = n^2 pi^2 / 2 m L^2, Griffiths
+    sec. 2.2; tests/analytic.py) is exact on the sine grid: the estimates sit
+    at rounding and the walls, which the states reach, add nothing."""
+    from wavesweep.analysis.spectra import level_errors
+    from wavesweep.simulation import Model
+
+    mass, lo, hi = 0.7, -3.0, 5.0
+    model = Model(make_job(_job({"x": {"min": lo, "max": hi, "points": 127}, "boundary": "box"}, [{"kind": "free"}],
+                                mass=mass)))
+    energies, states = stationary_states(model, 6)
+    found = level_errors(model, energies, states)
+    true = np.abs(found.energies - an.box_energy(np.arange(1, 7), hi - lo, mass))
+    assert np.all(true <= found.errors) and np.all(found.errors < 1e-11)
+    assert np.all(found.edge_errors == 0.0) and found.refine == "grid.x.points" and found.advice is None
+
+
+def test_stationary_states_never_build_the_packet():
+    """A job whose packet could not start a run (centred on the grid's edge)
+    still has its levels: (n + 1/2) hbar w (Griffiths sec. 2.3; from memory)."""
+    job = make_job(_job(HO_GRID, [{"kind": "harmonic", "omega": 1.0}],
+                        packet={"kind": "gaussian", "center": 11.99, "width": 2.0}))
+    energies, _ = stationary_states(job, 3)
+    np.testing.assert_allclose(energies, [0.5, 1.5, 2.5], rtol=1e-10)
+
+
+def test_a_period_that_cuts_a_well_is_an_edge_a_lattice_period_is_not():
+    """A harmonic well on a periodic grid of +/- 4 bohr: the levels above V
+    at the seam (8 hartree) are held by the period, and their estimates
+    still bound the distance from (n + 1/2) hbar w (Griffiths sec. 2.3; from
+    memory) with refine = grid.x.max.  A lattice of period 2 on 8 bohr:
+    the period is the physics, so no level gets an edge error."""
+    from wavesweep.analysis.spectra import level_errors
+    from wavesweep.simulation import Model
+
+    model = Model(make_job(_job({"x": {"min": -4.0, "max": 4.0, "points": 64}}, [{"kind": "harmonic", "omega": 1.0}])))
+    energies, states = stationary_states(model, 12)
+    found = level_errors(model, energies, states)
+    assert np.all(np.abs(found.energies - (np.arange(12) + 0.5)) <= found.errors)
+    assert found.refine == "grid.x.max" and "grid.x.max" in found.advice
+    model = Model(make_job(_job({"x": {"min": 0.0, "max": 8.0, "points": 64}},
+                                [{"kind": "lattice", "depth": 3.0, "spacing": 2.0}])))
+    energies, states = stationary_states(model, 12)
+    found = level_errors(model, energies, states)
+    assert np.all(found.edge_errors == 0.0) and np.all(found.errors < 1e-12) and found.refine == "grid.x.points"
