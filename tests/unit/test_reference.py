@@ -208,7 +208,7 @@ def test_the_resolved_job_holds_the_physics_defaults():
 def test_default_findings_for_check():
     findings = default_findings(job_from_dict(copy.deepcopy(DRIVEN)))
     phase = next(f for f in findings if f.field == "potential.1.phase")
-    assert phase.topic == "defaults" and phase.level == "ok" and phase.values == {"value": "0.0"}
+    assert phase.topic == "defaults" and phase.level == "ok" and phase.values == {"value": "0.0", "number": 0.0}
     assert phase.message.startswith("potential.1.phase = 0.0 by default")
 
 
