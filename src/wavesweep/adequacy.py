@@ -1332,3 +1332,12 @@ def assess(setup) -> list[Finding]:
     out += absorber_findings(setup, dyn)
     out.append(disk_finding(setup))
     return out
+
+
+def run_warnings(setup) -> list[str]:
+    """The set-up's warn and error findings as one line each
+    (``"field: message"``): what analysis of a finished run repeats beside
+    its numbers, so that a number from an inadequate run never comes alone."""
+    return [f"the run's set-up: {f.field or f.topic}: {f.message}"
+            for f in assess(setup) if f.level != "ok" and f.topic not in ("disk", "defaults")]
+

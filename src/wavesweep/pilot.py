@@ -287,7 +287,7 @@ def _read_outputs(path: Path, setup: Setup) -> dict:
             out[f"beyond {name}"] = _Output(f"beyond detector {name!r}", "probability", d["beyond"], "")
         if totals["detectors"]:
             time_label = str(ds.attrs.get("units_time", ""))
-            for name, dist in arrival_times(ds, classical=False).items():
+            for name, dist in arrival_times(ds, classical=False, warnings=False).items():
                 s = dist.stats
                 arrived = s.get("forward", s["probability"])
                 for key, what in (("mean", "arrival mean"), ("std", "arrival spread")):

@@ -77,7 +77,8 @@ def test_free_flux_arrival_density_and_moments_match_the_closed_form(free_result
     assert s["median"] == pytest.approx(median, rel=1e-4)
     assert s["q10"] < s["median"] < s["q90"]
     assert s["backflow"] < 1e-12
-    assert not s["truncated"] and not d.warnings
+    # the set-up's own findings (a 3.8-width margin here) are check's business
+    assert not s["truncated"] and not _analysis_warnings(d.warnings)
 
 
 def test_classical_free_flight_mean(free_result):
@@ -168,7 +169,7 @@ def test_energy_resolved_transmission_of_a_rectangular_barrier(barrier_result):
     # measured 4.7e-4: the check has room, but a wrong velocity factor (v
     # instead of sqrt(v v')) or 2 pi would fail it by far
     assert np.max(np.abs(t[keep] - exact)) <= 2e-3
-    assert not out["warnings"]
+    assert not _analysis_warnings(out["warnings"])   # the sharp barrier's resolution is check's business
 
 
 @pytest.mark.slow
@@ -273,7 +274,9 @@ def test_free_particle_t_of_e_is_one_and_skips_the_absorbed_detector(free_result
     assert main(["transmission", str(free_result), "--detector", "layer"]) == 2
     out, err = capsys.readouterr()
     assert "absorbed at x+" in out and "inside the x+ absorbing layer" in err
-    assert len(err.strip().splitlines()) == 1
+    # the error is one line, after the warnings the set-up's findings repeat
+    lines = err.strip().splitlines()
+    assert len([ln for ln in lines if ": warning: " not in ln]) == 1
 
 
 def test_t_of_e_for_a_packet_moving_left_and_a_detector_behind_the_start(tmp_path, free_result, capsys):
@@ -291,3 +294,9 @@ def test_t_of_e_for_a_packet_moving_left_and_a_detector_behind_the_start(tmp_pat
     capsys.readouterr()
     assert main(["transmission", str(free_result), "--detector", "behind"]) == 2
     assert "behind the packet's start" in capsys.readouterr().err
+
+
+def _analysis_warnings(warnings):
+    """The warnings of the analysis itself, without the set-up's findings it repeats."""
+    return [w for w in warnings if not w.startswith("the run's set-up:")]
+

@@ -244,32 +244,37 @@ def _upstream_probability(ds, setup, axis: int, x_det: float, side: float,
 
 
 def arrival_times(result, detector: str | None = None,
-                  classical: bool = True) -> dict[str, ArrivalDistribution]:
+                  classical: bool = True, warnings: bool = True) -> dict[str, ArrivalDistribution]:
     """Arrival-time distributions of a run's detectors (``detector``: only
     that one), from a result file path or an open dataset.  ``classical =
     False`` leaves out the classical estimate (its curve is zeros, its
     probability and mean NaN): the accuracy pilot needs only the quantum
-    statistics, and the estimate costs more than they do."""
+    statistics, and the estimate costs more than they do.  ``warnings =
+    False`` leaves out the run's set-up judged again (its adequacy
+    findings), for callers that judge it themselves or only tabulate."""
     ds = open_result(result, require=("flux", "time"))
     try:
-        return _arrivals(ds, detector, classical)
+        return _arrivals(ds, detector, classical, warnings)
     finally:
         if ds is not result:   # close only what was opened here
             ds.close()
 
 
-def _arrivals(ds, detector, classical=True):
+def _arrivals(ds, detector, classical=True, warnings=True):
     names = [str(d) for d in ds["detector"].values] if "detector" in ds.coords else []
     if not names:
         raise JobError("RUN.nc", "the run recorded no detector flux; add a [[detector]] table "
                                  "to the job and run it again")
     if detector is not None and detector not in names:
         raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
-    from ..adequacy import splitting_warning
+    from ..adequacy import run_warnings
 
     uc = result_units(ds)
     setup = result_setup(ds)
-    run_warning = splitting_warning(setup)
+    # the adequacy criteria of the run's set-up (momentum over the run,
+    # absorbers at what arrives, resolution, time step and splitting):
+    # ``warnings=False`` skips them where a caller judges the set-up itself
+    said = run_warnings(setup) if warnings else []
     t = np.asarray(ds["time"].values, float)
     if len(t) < 3:
         raise JobError("RUN.nc", f"the run holds {len(t)} samples; arrival times need at least 3")
@@ -280,7 +285,7 @@ def _arrivals(ds, detector, classical=True):
             continue
         det = setup.detectors[j]
         face = _layer_holding(setup, det.axis, det.position)
-        warnings = [f"the run's time step: {run_warning}"] if run_warning else []
+        notes = list(said)
         if face is not None:
             if "absorbed" not in ds or face not in [str(b) for b in ds["boundary"].values]:
                 raise JobError("RUN.nc", f"detector {name!r} lies in the {face} absorber but the run "
@@ -288,7 +293,7 @@ def _arrivals(ds, detector, classical=True):
             a = np.asarray(ds["absorbed"].sel(boundary=face).values, float)
             rho = np.gradient(a, t)
             definition = "absorption"
-            warnings.append(f"detector {name!r} lies in the {face} absorbing layer: the layer is the "
+            notes.append(f"detector {name!r} lies in the {face} absorbing layer: the layer is the "
                             "detector, and its times are those of absorption anywhere in the layer "
                             "(the detector's position inside it does not enter)")
         x0_side = _packet_side(setup, det.axis, det.position)
@@ -306,7 +311,7 @@ def _arrivals(ds, detector, classical=True):
             first = arrival_statistics(t, np.maximum(rho, 0.0))
             stats.update({k: first[k] for k in ("mean", "std", "median", "q10", "q90", "most_probable")})
             definition = "positive flux"
-            warnings.append(f"detector {name!r}: {stats['backflow']:.3g} of probability flows back across "
+            notes.append(f"detector {name!r}: {stats['backflow']:.3g} of probability flows back across "
                             f"it against {forward:.3g} forward; the times are those of the forward "
                             "flux, the probability is the net crossing")
         if classical:
@@ -327,7 +332,7 @@ def _arrivals(ds, detector, classical=True):
         if stats["truncated"]:
             more = (f"{to_come:.3g} of probability is still on the grid before it, moving towards it"
                     if to_come is not None else "the final state was not recorded to say how much more")
-            warnings.append(f"detector {name!r}: the run ended before the flux died out (last value "
+            notes.append(f"detector {name!r}: the run ended before the flux died out (last value "
                             f"{tail:.1%} of the peak; {more}); the distribution is truncated: "
                             "extend evolve.duration")
         if not forward > NOTHING_ARRIVED:
@@ -335,14 +340,14 @@ def _arrivals(ds, detector, classical=True):
             for key in ("mean", "std", "median", "q10", "q90", "most_probable"):
                 stats[key] = math.nan
             stats["truncated"] = bool((to_come or 0.0) > TRUNCATED_TO_COME)
-            warnings[:] = [w for w in warnings if "ended before" not in w]
-            warnings.append(f"detector {name!r}: nothing arrived during the run (forward probability "
+            notes[:] = [w for w in notes if "ended before" not in w]
+            notes.append(f"detector {name!r}: nothing arrived during the run (forward probability "
                             f"{forward:.1e}); no times are given" + (
                                 f"; {to_come:.3g} is still on its way" if stats["truncated"] else ""))
         if not cl_prob > NOTHING_ARRIVED:
             stats["classical_mean"] = math.nan
         out[name] = ArrivalDistribution(name, definition, t, rho, cl * uc["time"], stats,
-                                        uc["time_label"], warnings)
+                                        uc["time_label"], notes)
     return out
 
 

@@ -484,13 +484,12 @@ def transmission(result, detector: str | None = None) -> dict:
     settled to UNCERTAINTY_TARGET."""
     ds = open_result(result, require=("time", "norm", "flux"))
     try:
-        from ..adequacy import splitting_warning
+        from ..adequacy import run_warnings
 
         setup = result_setup(ds)
         out = {"totals": transmission_totals(ds, setup), "warnings": [],
                "time_units": result_units(ds)["time_label"]}
-        if (w := splitting_warning(setup)) is not None:
-            out["warnings"].append(f"the run's time step: {w}")
+        out["warnings"].extend(run_warnings(setup))
         try:
             er = out["energy_resolved"] = energy_resolved_transmission(ds, setup, detector)
             if er["uncertain_span"] is not None:

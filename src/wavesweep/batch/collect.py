@@ -273,7 +273,7 @@ def _analyse(ds, result: _Result) -> None:
     from ..io.results import result_setup
 
     try:
-        dists = arrival_times(ds)
+        dists = arrival_times(ds, warnings=False)   # the figures only; check judges the set-ups
         totals = transmission_totals(ds, result_setup(ds))
     except JobError as e:     # e.g. a file potential that has moved: the books stay, stats are NaN
         result.analysis_note = f"run {result.run_id}: no arrival statistics ({e})"
