@@ -14,6 +14,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .hamiltonian import split_time_dependent
+
 __all__ = ["Finding", "Report"]
 
 
@@ -264,17 +266,7 @@ class ForceField:
     def __init__(self, setup):
         self.grid = setup.grid
         self.v_static = setup.hamiltonian_static_potential()
-        mesh = self.grid.mesh()
-        self.separable, self.general = [], []
-        for term in setup.terms:
-            if not term.time_dependent:
-                continue
-            sep = term.separable()
-            if sep is not None:
-                g, f = sep
-                self.separable.append((np.asarray(g(mesh), float), f))
-            else:
-                self.general.append(term)
+        self.separable, self.general = split_time_dependent(setup.terms, self.grid.mesh())
         self.h = np.array([ax.dx for ax in self.grid.axes])
         # gradients on the grid, made once: one interpolation per axis and
         # step instead of two (kept to grids whose gradients fit in ~64 MiB)
@@ -1268,17 +1260,16 @@ def disk_finding(setup) -> Finding:
 # ---------------------------------------------------------------------------
 # Run time, measured
 # ---------------------------------------------------------------------------
-def run_time_finding(setup, seconds: float = 1.0) -> Finding:
-    """Time per step and per sample from a short trial after warm-up (the
-    kernels compiled, the plans made, the observer's buffers touched), and
-    the run's total: steps x per step + samples x per sample.  A sample's
-    cost is the median of several measurements: the first one pays for
-    planning its transform, which a run pays once."""
+def trial_costs(setup, seconds: float = 1.0) -> tuple[float, float, int]:
+    """(seconds per step, seconds per sample, trial steps) of the run, from a
+    short trial after warm-up: the kernels compiled by a first step, and the
+    observer's first measurement (which plans its transform, as a run does
+    once) left out; a sample's cost is the median of five measurements."""
     import time as _time
 
     prop = setup.make_propagator()
-    psi = setup.psi0.astype(setup.dtype)
-    psi = prop.step(psi, 1)   # compiles the kernels and warms the caches
+    psi = prop.load(setup.psi0.astype(setup.dtype))
+    psi = prop.step(psi, 1)
     chunk = max(1, min(setup.sample_steps, 50))
     n, t0 = 0, _time.perf_counter()
     while _time.perf_counter() - t0 < seconds and n < setup.total_steps:
@@ -1287,13 +1278,20 @@ def run_time_finding(setup, seconds: float = 1.0) -> Finding:
     per_step = (_time.perf_counter() - t0) / max(n, 1)
     obs = setup.make_observer()
     v = setup.hamiltonian.potential(prop.t)
-    obs.measure(psi, v)       # plans its transform
+    obs.measure(psi, v)
     times = []
     for _ in range(5):
         t1 = _time.perf_counter()
         obs.measure(psi, v)
         times.append(_time.perf_counter() - t1)
-    per_sample = float(np.median(times))
+    return per_step, float(np.median(times)), n
+
+
+def run_time_finding(setup, seconds: float = 1.0) -> Finding:
+    """The run's time: steps x per step + samples x per sample, from
+    :func:`trial_costs` (the sample's cost was once taken from its first,
+    planning call: an estimate of 37 s for a run of 1 s)."""
+    per_step, per_sample, n = trial_costs(setup, seconds)
     n_samples = setup.total_steps // setup.sample_steps + 1
     total = per_step * setup.total_steps + per_sample * n_samples
     return Finding("run time", "ok",

@@ -20,7 +20,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.fft
 
-__all__ = ["Hamiltonian", "static_potential_of"]
+__all__ = ["Hamiltonian", "static_potential_of", "split_time_dependent"]
 
 
 def static_potential_of(grid, mass: float, terms) -> np.ndarray:
@@ -36,6 +36,23 @@ def static_potential_of(grid, mass: float, terms) -> np.ndarray:
     return v0
 
 
+def split_time_dependent(terms, mesh) -> tuple[list, list]:
+    """The time-dependent terms split into ``[(g array on mesh, f), ...]``
+    for V = f(t) g(r) (the kick evaluates only the scalar f per step) and the
+    general ones, evaluated in full at each time."""
+    separable, general = [], []
+    for term in terms:
+        if not term.time_dependent:
+            continue
+        sep = term.separable()
+        if sep is not None:
+            g, f = sep
+            separable.append((np.asarray(g(mesh), float), f))
+        else:
+            general.append(term)
+    return separable, general
+
+
 class Hamiltonian:
     """Parameters: grid, mass (m_e), list of potential terms, absorber rate
     W (hartree, full grid shape, or None)."""
@@ -45,17 +62,8 @@ class Hamiltonian:
         self.mass = float(mass)
         self.terms = list(terms)
         mesh = grid.mesh()
-        self.separable = []   # (g array, f callable)
-        self.general = []     # terms evaluated in full per step
-        for term in self.terms:
-            if not term.time_dependent:
-                continue
-            sep = term.separable()
-            if sep is not None:
-                g, f = sep
-                self.separable.append((np.asarray(g(mesh), float), f))
-            else:
-                self.general.append(term)
+        # (g array, f callable) pairs, and terms evaluated in full per step
+        self.separable, self.general = split_time_dependent(self.terms, mesh)
         if static_potential is None:
             static_potential = static_potential_of(grid, self.mass, self.terms)
         self.static_potential = np.ascontiguousarray(np.broadcast_to(static_potential, grid.shape), dtype=float)

@@ -67,7 +67,7 @@ from pathlib import Path
 import numpy as np
 import scipy.fft
 
-from .adequacy import Finding
+from .adequacy import Finding, trial_costs
 from .errors import JobError, RunFailed
 from .jobfile import Job, job_from_dict
 from .simulation import Setup, Simulation
@@ -236,25 +236,9 @@ def plan_pilot(job: Job, tolerance: float, timing_seconds: float = 0.3) -> Pilot
 
 
 def _time_steps(setup: Setup, seconds: float) -> tuple[float, float]:
-    """Wall seconds per step and per sample (the observer) of the run, from
-    a short trial after a first step that compiles the kernels."""
-    prop = setup.make_propagator()
-    psi = prop.load(setup.psi0.astype(setup.dtype))
-    psi = prop.step(psi, 1)
-    n, t0 = 0, _time.perf_counter()
-    chunk = max(1, min(setup.sample_steps, 50))
-    while _time.perf_counter() - t0 < seconds and n < setup.total_steps:
-        psi = prop.step(psi, chunk)
-        n += chunk
-    per_step = (_time.perf_counter() - t0) / max(n, 1)
-    observer = setup.make_observer()
-    v = setup.hamiltonian.potential(prop.t)
-    observer.measure(psi, v)
-    t1, k = _time.perf_counter(), 0
-    while k < 3 or _time.perf_counter() - t1 < 0.05 * seconds:
-        observer.measure(psi, v)
-        k += 1
-    return per_step, (_time.perf_counter() - t1) / k
+    """Wall seconds per step and per sample of the run (check's trial)."""
+    per_step, per_sample, _ = trial_costs(setup, seconds)
+    return per_step, per_sample
 
 
 # -- the outputs of one run ----------------------------------------------------------
