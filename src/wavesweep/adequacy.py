@@ -1180,8 +1180,8 @@ def size_findings(grid) -> list[Finding]:
 # Memory and disk from shapes, before anything is allocated
 # ---------------------------------------------------------------------------
 def _job_points(table) -> list[int]:
-    from .jobfile import grid_axes
-    return [int(table["grid"][a]["points"]) for a in grid_axes(table["grid"])]
+    """Point counts of the job's axes (x, y, z or r), from the table alone."""
+    return [int(table["grid"][a]["points"]) for a in ("x", "y", "z", "r") if a in table["grid"]]
 
 
 def memory_estimate(job) -> dict:
