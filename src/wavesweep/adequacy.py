@@ -343,9 +343,11 @@ class Reach:
     trajectory (the stencil reaches 6 sigma_p); ``centre``: that of the
     packet's centre (x0, p0); ``sampled``: per Wigner sample (equal
     weights) and axis, its largest |p_i|, so that the share of the state
-    beyond a momentum can be estimated; ``arrivals[face]``: (smallest, largest) kinetic energy of the
-    motion normal to the face with which trajectories enter its absorbing
-    layer (absent: none arrived); ``visited``: per axis (lowest, highest)
+    beyond a momentum can be estimated; ``arrivals[face]``: (slow end,
+    largest) kinetic energy of the motion normal to the face with which
+    trajectories enter its absorbing layer, the slow end the 5th percentile
+    of the Wigner samples' (the slowest tail trajectory's if only tails
+    arrived; absent: none arrived); ``visited``: per axis (lowest, highest)
     coordinate the trajectories reached outside the layers (bohr);
     ``edges_reached``: per axis, whether a trajectory reached a grid edge
     (wrapping round a periodic axis, or reflecting off a box wall);
@@ -459,10 +461,17 @@ def classical_reach(setup, n_random: int = 96, seed: int = 1) -> Reach | None:
                 hit = entered & ((x[:, i] > edge) if side == "+" else (x[:, i] < edge))
                 if hit.any():
                     e = p[hit, i] ** 2 / (2 * m)
-                    lo, hi = arrivals.get(face, (math.inf, 0.0))
-                    arrivals[face] = (min(lo, float(e.min())), max(hi, float(e.max())))
+                    got = arrivals.setdefault(face, {"weighted": [], "hi": 0.0, "lo": math.inf})
+                    got["hi"] = max(got["hi"], float(e.max()))
+                    got["lo"] = min(got["lo"], float(e.min()))
+                    got["weighted"].extend(e[random[hit]].tolist())
             alive &= ~entered
     sampled = peak[random]
+    # the slow end from the Wigner samples (equal weights): its 5th percentile,
+    # so that a grazing tail trajectory does not set it; the fast end from all
+    # (only tail trajectories arrived: the slowest of them)
+    arrivals = {face: (float(np.percentile(got["weighted"], 5)) if got["weighted"] else got["lo"], got["hi"])
+                for face, got in arrivals.items()}
     return Reach(peak.max(axis=0), peak[0], sampled, arrivals, list(zip(lo_seen, hi_seen)), edges_reached,
                  steps)
 
@@ -585,6 +594,7 @@ class Dynamics:
     windows: dict
     nonseparable: bool
     bound: bool
+    unreached: set = field(default_factory=set)   # faces nothing of the packet reaches in the run
 
 
 def _initial_reach(setup) -> dict:
@@ -646,13 +656,14 @@ def dynamics(setup) -> Dynamics:
     freed = field_driven_momentum(setup) if bound else {}
     for i, p in freed.items():
         over[6][i] = max(over[6][i], p)
-    windows = _windows(setup, moms, reach, freed, nonsep, v, v_packet, e_total)
-    out = Dynamics(initial, over, reach, freed, windows, nonsep, bound)
+    unreached: set = set()
+    windows = _windows(setup, moms, reach, freed, nonsep, v, v_packet, e_total, unreached)
+    out = Dynamics(initial, over, reach, freed, windows, nonsep, bound, unreached)
     setup._dynamics = out
     return out
 
 
-def _windows(setup, moms, reach, freed, nonsep, v, v_packet, e_total) -> dict:
+def _windows(setup, moms, reach, freed, nonsep, v, v_packet, e_total, unreached: set) -> dict:
     """face -> (e_lo, e_hi) in hartree: kinetic energy normal to the face
     that the absorber must take inside its layer.  The packet's momentum
     window (+/- 6 sigma_p) shifted by the potential drop to the layer (a
@@ -660,7 +671,10 @@ def _windows(setup, moms, reach, freed, nonsep, v, v_packet, e_total) -> dict:
     classical trajectories bring there, by energy conservation where V
     couples the axes (diffraction turns forward motion sideways), and by
     electrons a field frees; floored where the wavelength reaches the layer
-    thickness (slower parts cannot be absorbed by any layer that thick)."""
+    thickness (slower parts cannot be absorbed by any layer that thick).
+    A face that no trajectory reaches and that the packet's momenta cannot
+    reach in free flight within the run is added to ``unreached`` (its
+    window stays the packet's own, for a tuning that costs little)."""
     table = setup.job.table.get("absorber") or {}
     if table.get("kind", "none") == "none":
         return {}
@@ -681,21 +695,28 @@ def _windows(setup, moms, reach, freed, nonsep, v, v_packet, e_total) -> dict:
         pmin = 0.0 if lo_p <= 0 <= hi_p else min(abs(lo_p), abs(hi_p))
         e_lo = max(pmin**2 / (2 * m) + drop, 0.0)
         e_hi = pmax**2 / (2 * m) + drop
-        if reach is not None and face in reach.arrivals:
-            a_lo, a_hi = reach.arrivals[face]
-            e_lo, e_hi = min(e_lo, a_lo), max(e_hi, a_hi)
-        if nonsep:
+        if nonsep:    # diffraction can turn all of the packet's energy into this axis's motion
             e_hi = max(e_hi, e_total - v_layer)
         if i in freed:
             e_hi = max(e_hi, freed[i] ** 2 / (2 * m))
-        # what starts D away from the layer and gets there within the run
-        # moves at least D / duration on average (a free-flight bound: the
-        # trajectories above cover what forces speed up)
+        # the packet's own window: what starts D away from the layer and gets
+        # there within the run moves at least D / duration on average (free
+        # flight; where the packet's momenta cannot make it at all, the
+        # window is left as it is: nothing of it arrives, and tuning for
+        # energies far above it costs minutes for nothing)
         near = min((mo.x0[i] + 3 * mo.sigma_x[i]) if side == "+" else (mo.x0[i] - 3 * mo.sigma_x[i])
                    for mo in moms)
         distance = (edge - near) if side == "+" else (near - edge)
-        if distance > 0:
-            e_lo = max(e_lo, (m * distance / setup.duration) ** 2 / (2 * m))
+        e_geo = (m * distance / setup.duration) ** 2 / (2 * m) if distance > 0 else 0.0
+        if e_geo < e_hi:
+            e_lo = max(e_lo, e_geo)
+        # then what the trajectories bring there (forces slow or speed it up)
+        arrived = reach is not None and face in reach.arrivals
+        if arrived:
+            a_lo, a_hi = reach.arrivals[face]
+            e_lo, e_hi = (e_lo if a_lo is None else min(e_lo, a_lo)), max(e_hi, a_hi)
+        elif e_geo >= e_hi:
+            unreached.add(face)
         e_floor = (2 * math.pi / th) ** 2 / (2 * m)
         e_lo = max(e_lo, e_floor)
         e_hi = max(e_hi, 4 * e_lo)
@@ -942,6 +963,7 @@ def time_step_finding(setup, dyn: Dynamics) -> Finding:
     v = setup.hamiltonian_static_potential()
     v_span = float(v.max() - v.min())
     v_seen = v_span
+    box = None
     if dyn.reach is not None:
         box = tuple(slice(max(0, int(np.searchsorted(ax.coordinates, lo)) - 1),
                           int(np.searchsorted(ax.coordinates, hi)) + 1)
@@ -949,6 +971,18 @@ def time_step_finding(setup, dyn: Dynamics) -> Finding:
         seen = v[box] if v.ndim == setup.grid.ndim else v
         if seen.size:
             v_seen = float(seen.max() - seen.min())
+    # time-dependent terms f(t) g(r): their largest swing over the run, on the
+    # grid and where the packet goes (a field's -q E x grows with |x|)
+    separable, _ = split_time_dependent(setup.terms, setup.grid.mesh())
+    if separable:
+        times = np.linspace(0.0, setup.duration, 2001)
+        for g, f in separable:
+            f_max = max(abs(f(t)) for t in times)
+            g_full = np.broadcast_to(g, setup.grid.shape)
+            v_span += f_max * float(np.ptp(g_full))
+            g_seen = g_full[box] if box is not None else g_full
+            if g_seen.size:
+                v_seen += f_max * float(np.ptp(g_seen))
     kin_phase, pot_phase = e_run * dt, v_seen * dt
     phase = max(kin_phase, pot_phase)
     level = "ok" if phase <= 1.0 else ("warn" if phase <= math.pi else "error")
@@ -1000,8 +1034,12 @@ def resolution_finding(setup) -> Finding | None:
     if float(np.ptp(v)) == 0.0:
         return None
     worst, axis, ratios = 0.0, None, {}
+    span = float(np.ptp(v))
     for i, ax in enumerate(setup.grid.axes):
-        spec = np.abs(np.fft.fft(_interior(setup, v, i), axis=i)) ** 2
+        rest = _interior(setup, v, i)
+        if float(np.abs(rest).max()) <= 1e-9 * span:   # linear along this axis (a uniform force)
+            continue
+        spec = np.abs(np.fft.fft(rest, axis=i)) ** 2
         other = tuple(j for j in range(setup.grid.ndim) if j != i)
         power = spec.sum(axis=other) if other else spec
         k = np.abs(2 * np.pi * np.fft.fftfreq(ax.points, ax.dx))
@@ -1014,6 +1052,9 @@ def resolution_finding(setup) -> Finding | None:
         if share > UNRESOLVED_WEIGHT_MAX and slope > TAIL_RATIO_MIN and share > worst:
             worst, axis = share, ax
         ratios[ax.name] = (share, slope)
+    if axis is None and not ratios:
+        return Finding("resolution", "ok", "V is linear along every axis (a uniform force): nothing to resolve",
+                       {"unresolved_weight": 0.0}, field=f"grid.{setup.grid.axes[0].name}.points")
     if axis is None:
         text = ", ".join(f"{n}: {a:.1e} (tail ratio {b:.2f})" for n, (a, b) in ratios.items())
         return Finding("resolution", "ok",
@@ -1109,6 +1150,14 @@ def absorber_findings(setup, dyn: Dynamics) -> list[Finding]:
             worst = float(np.max(return_probability(depth, rate, setup.mass, energies)))
             what = "return probability"
         floored = abs(lam - th) < 1e-9 * th
+        if face in dyn.unreached:
+            out.append(Finding("absorber", "ok",
+                               f"{face}: nothing of the packet reaches this layer within the run (no classical "
+                               f"trajectory; in free flight it would need more than the packet's momenta); "
+                               f"worst {what} {worst:.2e} over {e_lo / ef:.4g}..{e_hi / ef:.4g} {E}",
+                               {"face": face, "axis": ax.name, "worst_return": worst, "reached": False,
+                                "e_min": e_lo / ef, "e_max": e_hi / ef}, field="absorber.thickness"))
+            continue
         level = "ok" if worst <= ABSORBER_TARGET else "warn"
         msg = (f"{face}: thickness {th / lf:.4g} {L} vs longest wavelength {lam / lf:.4g} {L}; worst {what} "
                f"{worst:.2e} over {e_lo / ef:.4g}..{e_hi / ef:.4g} {E}, the energies that arrive there over the "
@@ -1116,7 +1165,12 @@ def absorber_findings(setup, dyn: Dynamics) -> list[Finding]:
         if floored:
             msg += "; slower parts, with wavelengths above the thickness, are not absorbed"
         if level != "ok":
-            msg += "; make the layers thicker (absorber.thickness), or leave the strength to the tuning"
+            given = ((getattr(setup.job, "raw", None) or {}).get("absorber") or {}).get("strength")
+            tuned = setup.absorber.kind == "cap" and given is None
+            msg += ("; the tuned strength does no better at this thickness: make the layers thicker "
+                    "(absorber.thickness)" if tuned else
+                    "; make the layers thicker (absorber.thickness), or leave out absorber.strength to "
+                    "have it tuned to these energies")
         out.append(Finding("absorber", level, msg,
                            {"face": face, "axis": ax.name, "worst_return": worst,
                             "e_min": e_lo / ef, "e_max": e_hi / ef}, field="absorber.thickness"))
@@ -1248,9 +1302,13 @@ def disk_finding(setup) -> Finding:
     table = setup.job.table
     stride = table["record"]["stride"]
     frame = int(np.prod([math.ceil(a.points / stride) for a in setup.grid.axes])) * 4
+    if table["record"].get("snapshot_psi"):
+        frame *= 3                       # density, Re psi and Im psi
     n_snap = setup.total_steps // setup.snapshot_steps + 1
     n_samp = setup.total_steps // setup.sample_steps + 1
     disk = frame * n_snap + n_samp * 8 * (8 + len(setup.detectors) + len(setup.absorber.layers))
+    if table["record"].get("final_state", True):
+        disk += setup.grid.size * 16     # the final psi, complex128
     return Finding("disk", "ok",
                    f"{n_snap} snapshots of {frame / 2**10:.0f} KiB, {n_samp} samples: at most "
                    f"{disk / 2**20:.1f} MiB before compression",

@@ -73,6 +73,24 @@ def _key(f: Finding) -> tuple:
 
 RANK = {"ok": 0, "warn": 1, "error": 2}
 
+# Within a level, the number that says how bad a finding is (larger: worse).
+SEVERITY = {"time step": lambda v: max(v.get("run_phase", 0.0), v.get("potential_phase", 0.0)),
+            "absorber": lambda v: v.get("worst_return", 0.0),
+            "momentum": lambda v: v.get("run_reach", 0.0) / (v.get("k_max") or 1.0),
+            "resolution": lambda v: v.get("unresolved_weight", 0.0),
+            "margin": lambda v: -v.get("widths", 0.0),
+            "splitting": lambda v: v.get("aliased_weight", 0.0),
+            "memory": lambda v: v.get("estimate_bytes", 0.0),
+            "disk": lambda v: v.get("bytes", 0.0)}
+
+
+def _severity(f: Finding) -> float:
+    rule = SEVERITY.get(f.topic)
+    try:
+        return float(rule(f.values or {})) if rule else 0.0
+    except (TypeError, ValueError):
+        return 0.0
+
 
 def check_study(study, trial_seconds: float = 1.0, progress=None) -> Report:
     """Every sweep point judged; per criterion the worst point's finding,
@@ -108,9 +126,9 @@ def check_study(study, trial_seconds: float = 1.0, progress=None) -> Report:
                 merged[key] = {"worst": f, "failing": []}
                 order.append(key)
             entry = merged[key]
-            if RANK[f.level] > RANK[entry["worst"].level]:
+            if (RANK[f.level], _severity(f)) > (RANK[entry["worst"].level], _severity(entry["worst"])):
                 entry["worst"] = f
-            if f.level != "ok":
+            if f.level != "ok" and not any(p["point"] == n for p in entry["failing"]):
                 entry["failing"].append({"point": n, "params": spec.params, "level": f.level,
                                          "where": where})
     findings = [_units_finding(first), *default_findings(first)]
@@ -149,22 +167,26 @@ def preflight(jobs, force: bool = False) -> list[str]:
         where = ", ".join(f"{k} = {v!r}" for k, v in params.items())
         fs = [memory_finding(job)]
         if fs[0].level != "error":
-            fs += assess(Setup(job))
+            try:
+                fs += assess(Setup(job))
+            except JobError as e:   # this point cannot be set up: say which, judge the others
+                fs.append(Finding("set-up", "error", e.message, field=e.field))
         for f in fs:
             bucket = errors if f.level == "error" else warnings if f.level == "warn" else None
             if bucket is None:
                 continue
             entry = bucket.setdefault(_key(f), [f, []])
-            if where:
+            if where and where not in entry[1]:
                 entry[1].append(where)
     if errors and not force:   # every error at once, one line each
         found = []
         for f, points in errors.values():
-            at = f" (at {len(points)} sweep points, e.g. {points[0]})" if points else ""
+            at = (f" (at {len(points)} sweep point{'s' if len(points) > 1 else ''}, e.g. {points[0]})"
+                  if points else "")
             found.append(JobError(f.field or f.topic, f"{f.message}{at}; --force runs it anyway"))
         raise combine_errors(found)
     out = []
     for f, points in list(errors.values()) + list(warnings.values()):
-        at = f" [at {len(points)} points, e.g. {points[0]}]" if points else ""
+        at = f" [at {len(points)} sweep point{'s' if len(points) > 1 else ''}, e.g. {points[0]}]" if points else ""
         out.append(f"{f.field or f.topic}: {f.message}{at}")
     return out

@@ -164,6 +164,12 @@ def main(argv=None) -> int:
     except RunFailed as e:
         print(f"wavesweep {args.command}: run failed: {_one_line(e.reason)}", file=sys.stderr)
         return EXIT_FAIL
+    except BrokenPipeError:   # the reader (head, less) closed early: what it read is what it wanted
+        try:
+            os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        except OSError:
+            pass
+        return EXIT_OK
     except KeyboardInterrupt:
         print(f"wavesweep {args.command}: interrupted", file=sys.stderr)
         return 130

@@ -755,8 +755,13 @@ def _record(raw, units, evolve) -> dict:
         raise JobError("evolve.duration", "is shorter than one time step")
     total = _steps(duration, dt, "evolve.duration", units)
     if t.get("every") is None:
-        # default: about 1000 samples, on whole steps
-        t["every"] = _job_number(max(1, total // 1000) * dt / units.factor("time"))
+        # default: about 1000 samples (at least), on whole steps that divide
+        # the duration, so that the last sample falls at the end (a default
+        # that did not divide it was refused as if the user had given it)
+        k = max(1, total // 1000)
+        while total % k:
+            k -= 1
+        t["every"] = _job_number(k * dt / units.factor("time"))
     every = units.to_atomic(t["every"], "time", "record.every")
     k = _steps(every, dt, "record.every", units)
     if t.get("snapshot_every") is None:

@@ -246,3 +246,33 @@ def test_readme_jobs_have_no_warnings():
         report = check_job(make_job(table), trial_seconds=0)
         noisy = [f"{f.topic}: {f.message}" for f in report.findings if f.level != "ok"]
         assert noisy == [], table.get("title")
+
+
+# -- review findings ------------------------------------------------------------------
+def test_uniform_force_is_not_an_unresolved_feature_and_uphill_arrivals_count():
+    """V = F x has no feature to resolve (its residual after the linear trend
+    is rounding).  Uphill towards x+, the packet arrives there slower than it
+    started: the window of x+ reaches down to what the trajectories bring
+    (energy conservation: p0^2/2m - F (x_layer - x0), closed form)."""
+    table = {"grid": {"x": {"min": -100.0, "max": 100.0, "points": 1024}},
+             "potential": [{"kind": "expression", "expression": "0.02 * x"}],
+             "packet": {"center": -20.0, "width": 3.0, "momentum": 2.0},
+             "evolve": {"dt": 0.01, "duration": 60.0}, "absorber": {"kind": "cap", "thickness": 20.0}}
+    report = check_job(make_job(table), trial_seconds=0)
+    (res,) = _by_topic(report, "resolution")
+    assert res.level == "ok"
+    setup = Setup(make_job(table))
+    dyn = dynamics(setup)
+    e_lo = dyn.windows["x+"][0]
+    # free flight over the 91 bohr from x0 + 3 sigma_x to the layer in 60
+    # would need (91/60)^2/2 = 1.15 hartree; climbing, the packet arrives with less
+    assert e_lo == pytest.approx(dyn.reach.arrivals["x+"][0]) and e_lo < 1.15
+
+
+def test_default_sampling_divides_the_duration():
+    """1500 / 0.2 = 7500 steps: the default sample interval is a whole
+    number of steps that divides them (it was 7 steps, and the job refused)."""
+    job = make_job({"grid": {"x": {"min": -50.0, "max": 50.0, "points": 256}},
+                    "packet": {"center": 0.0, "width": 3.0}, "evolve": {"dt": 0.2, "duration": 1500.0}})
+    every = job.table["record"]["every"]
+    assert round(1500.0 / every) * every == pytest.approx(1500.0)
