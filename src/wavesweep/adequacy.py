@@ -1288,13 +1288,20 @@ def memory_finding(job) -> Finding:
     avail, total = available_memory()
     need = est["estimate_bytes"]
     level = "ok" if need <= 0.8 * avail else ("warn" if need <= avail else "error")
-    msg = (f"psi {est['psi_bytes'] / 2**20:.1f} MiB; run about {need / 2**20:.0f} MiB "
+    msg = (f"psi {_bytes(est['psi_bytes'])}; run about {_bytes(need)} "
            f"(this machine: {avail / 2**30:.1f} GiB available of {total / 2**30:.1f} GiB)")
     if level != "ok":
         msg += "; use fewer points, precision = 'single', or a machine with more memory"
     axes = [k for k in ("x", "y", "z", "r") if k in job.table["grid"]]
     return Finding("memory", level, msg, {**est, "available_bytes": avail},
                    field=f"grid.{axes[-1]}.points" if axes else "grid")
+
+
+def _bytes(n: float) -> str:
+    for unit, size in (("GiB", 2**30), ("MiB", 2**20), ("KiB", 2**10)):
+        if n >= size:
+            return f"{n / size:.3g} {unit}"
+    return f"{n:.0f} B"
 
 
 def disk_finding(setup) -> Finding:
