@@ -712,9 +712,18 @@ def _windows(setup, moms, reach, freed, nonsep, v, v_packet, e_total, unreached:
             e_lo = max(e_lo, e_geo)
         # then what the trajectories bring there (forces slow or speed it up)
         arrived = reach is not None and face in reach.arrivals
+        # the packet's own fastest motion towards the face, without the drop
+        # (a fall to a layer the run never reaches gains nothing)
+        e_own = max(pmax**2 / (2 * m), e_hi - drop if not nonsep and i not in freed else e_hi)
         if arrived:
             a_lo, a_hi = reach.arrivals[face]
             e_lo, e_hi = (e_lo if a_lo is None else min(e_lo, a_lo)), max(e_hi, a_hi)
+        elif reach is not None and e_geo >= e_own:
+            # no trajectory gets there, and not even the packet's fastest
+            # momenta cover the distance in free flight: nothing arrives; its
+            # own window (no drop) keeps the tuning cheap
+            unreached.add(face)
+            e_lo, e_hi = max(pmin**2 / (2 * m), 0.0), e_own
         elif e_geo >= e_hi:
             unreached.add(face)
         e_floor = (2 * math.pi / th) ** 2 / (2 * m)
