@@ -300,3 +300,40 @@ def _analysis_warnings(warnings):
     """The warnings of the analysis itself, without the set-up's findings it repeats."""
     return [w for w in warnings if not w.startswith("the run's set-up:")]
 
+
+
+def test_a_damaged_result_is_one_line_naming_the_variable(free_result, tmp_path, capsys):
+    """Results carry HDF5 Fletcher-32 checksums: a flipped bit in a data
+    block is an error naming the file and the variable (exit 2), not a wrong
+    number.  A file without checksums that holds nonsense in a probability
+    (arrival probability 5.02) is refused too."""
+    import netCDF4
+    import shutil
+
+    with netCDF4.Dataset(free_result) as nc:
+        assert nc["flux"].filters()["fletcher32"] and nc["norm"].filters()["fletcher32"]
+        flux_before = nc["flux"][:].copy()
+    # flip one bit in the middle of the flux's bytes as stored (found by value)
+    damaged = tmp_path / "damaged.nc"
+    shutil.copy(free_result, damaged)
+    raw = bytearray(damaged.read_bytes())
+    value = np.ravel(flux_before[len(flux_before) // 2])[0]
+    needle = np.asarray(value, "<f8").tobytes()
+    at = raw.find(needle)
+    if at < 0:
+        at = raw.find(np.asarray(value, ">f8").tobytes())
+    assert at > 0
+    raw[at + 3] ^= 0x10
+    damaged.write_bytes(bytes(raw))
+    assert main(["arrivals", str(damaged)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "'flux'" in err and "damaged" in err
+    # written without checksums and holding a flux five times too large
+    plain = tmp_path / "plain.nc"
+    with xr.open_dataset(free_result) as ds:
+        bad = ds.load()
+    bad["flux"] = bad["flux"] * 5.0
+    bad.to_netcdf(plain)
+    assert main(["arrivals", str(plain), "--json"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "damaged" in err

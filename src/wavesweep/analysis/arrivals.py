@@ -91,6 +91,11 @@ def _first_crossing(cum, t, level) -> float:
     return float(t[i - 1] + (level - c0) / (c1 - c0) * (t[i] - t[i - 1]))
 
 
+# A probability that crossed a detector may exceed 1 by the quadrature error
+# of the sampled flux (trapezoid rule over record.every), never by more.
+ARRIVED_SLACK = 1e-3
+
+
 def arrival_statistics(time, density) -> dict:
     """Statistics of an arrival-time density sampled at ``time``.
 
@@ -302,6 +307,10 @@ def _arrivals(ds, detector, classical=True, warnings=True):
             rho = flux[:, j] * -x0_side
             definition = "flux"
         stats = arrival_statistics(t, rho)
+        if not abs(stats["probability"]) <= 1 + ARRIVED_SLACK:   # NaN too
+            raise JobError("RUN.nc", f"detector {name!r}: the recorded flux carries {stats['probability']:.6g} "
+                                     "of probability across it, which no state can: the file is damaged; "
+                                     "run the job again")
         forward = _trapezoid(np.maximum(rho, 0.0), t)
         stats["forward"] = forward
         if definition == "flux" and stats["backflow"] > BACKFLOW_SWITCH * forward:

@@ -179,7 +179,7 @@ class ResultWriter:
         for name, coords, long in lay["axes"]:
             c = np.asarray(coords)[::s]
             ds.createDimension(name, len(c))
-            v = ds.createVariable(name, "f8", (name,))
+            v = self._var(name, "f8", (name,))
             v[:] = c
             v.units, v.long_name, v.axis = u["length"], long, name.upper() if name in "xyz" else "X"
             full_shape.append(len(coords))
@@ -191,33 +191,33 @@ class ResultWriter:
         ndet, nb = len(lay["detectors"]), len(lay["boundaries"])
         ds.createDimension("detector", ndet if ndet else None)
         ds.createDimension("boundary", nb if nb else None)
-        d = ds.createVariable("detector", str, ("detector",))
+        d = self._var("detector", str, ("detector",))
         d.long_name, d.units = "detector name", "1"
         for i, det in enumerate(lay["detectors"]):
             d[i] = det[0]
-        dx = ds.createVariable("detector_x", "f8", ("detector",))
+        dx = self._var("detector_x", "f8", ("detector",))
         dx.units, dx.long_name = u["length"], "detector position along its axis"
-        da = ds.createVariable("detector_axis", str, ("detector",))
+        da = self._var("detector_axis", str, ("detector",))
         da.units, da.long_name = "1", "axis the detector is perpendicular to"
         for i, det in enumerate(lay["detectors"]):
             dx[i] = det[2]
             da[i] = det[1]
-        b = ds.createVariable("boundary", str, ("boundary",))
+        b = self._var("boundary", str, ("boundary",))
         b.long_name, b.units = "absorbing face", "1"
         for i, face in enumerate(lay["boundaries"]):
             b[i] = face
         chunks = [1] + [len(np.asarray(a[1])[::s]) for a in lay["axes"]]
-        dens = ds.createVariable("density", "f4", ("snapshot_time", *names), zlib=True,
+        dens = self._var("density", "f4", ("snapshot_time", *names), zlib=True,
                                  complevel=4, shuffle=True, chunksizes=chunks)
         dens.units = u["density"]
         dens.long_name = "probability density |psi|^2"
         if lay.get("snapshot_psi"):
             for part in ("real", "imag"):
-                v = ds.createVariable(f"psi_snapshot_{part}", "f4", ("snapshot_time", *names), zlib=True,
+                v = self._var(f"psi_snapshot_{part}", "f4", ("snapshot_time", *names), zlib=True,
                                       complevel=4, shuffle=True, chunksizes=chunks)
                 v.units = f"{u['length']}-{len(names) / 2:g}"
                 v.long_name = f"{part} part of psi at the snapshot"
-        pot = ds.createVariable("potential", "f8", tuple(names), zlib=True, complevel=4)
+        pot = self._var("potential", "f8", tuple(names), zlib=True, complevel=4)
         pot.units, pot.long_name = u["energy"], "static part of the potential V"
         pot[:] = np.asarray(lay["potential"])[tuple(slice(None, None, s) for _ in names)]
         meta = {
@@ -228,38 +228,45 @@ class ResultWriter:
             "energy": (u["energy"], "<H> of the probability on the grid, per unit norm"),
         }
         for key, (unit, long) in meta.items():
-            v = ds.createVariable(key, "f8", ("time",))
+            v = self._var(key, "f8", ("time",))
             v.units, v.long_name = unit, long
-        f = ds.createVariable("flux", "f8", ("time", "detector"))
+        f = self._var("flux", "f8", ("time", "detector"))
         f.units, f.long_name = u["flux"], "probability current through the detector"
         f.coordinates = "detector_x detector_axis"  # CF: auxiliary coordinates of `detector`
         if lay.get("detector_amplitude") and ndet:
             for part in ("real", "imag"):
-                v = ds.createVariable(f"detector_psi_{part}", "f8", ("time", "detector"))
+                v = self._var(f"detector_psi_{part}", "f8", ("time", "detector"))
                 v.units = f"{u['length']}-0.5"
                 v.long_name = f"{part} part of psi at the detector"
                 v.coordinates = "detector_x detector_axis"
-        a = ds.createVariable("absorbed", "f8", ("time", "boundary"))
+        a = self._var("absorbed", "f8", ("time", "boundary"))
         a.units, a.long_name = "1", "probability removed at the face, cumulative"
         if lay.get("autocorrelation", True):
             for part in ("real", "imag"):
-                v = ds.createVariable(f"autocorrelation_{part}", "f8", ("time",))
+                v = self._var(f"autocorrelation_{part}", "f8", ("time",))
                 v.units, v.long_name = "1", f"{part} part of <psi(0)|psi(t)>"
         if lay.get("final_state", True):
             state_dims = names if s == 1 else [f"{n}_full" for n in names]
             if s != 1:
                 for (name, coords, long), n in zip(lay["axes"], state_dims):
                     ds.createDimension(n, len(coords))
-                    v = ds.createVariable(n, "f8", (n,))
+                    v = self._var(n, "f8", (n,))
                     v[:] = coords
                     v.units, v.long_name = u["length"], f"{long} (full grid)"
             for part in ("real", "imag"):
-                v = ds.createVariable(f"psi_{part}", "f8", tuple(state_dims), zlib=True, complevel=4)
+                v = self._var(f"psi_{part}", "f8", tuple(state_dims), zlib=True, complevel=4)
                 v.units = f"{u['length']}-{len(names) / 2:g}"
                 v.long_name = f"{part} part of the final wave function"
 
+    def _var(self, name, dtype, dims, **kw):
+        """A variable; numeric ones carry HDF5 Fletcher-32 checksums, so that
+        a damaged block is an error when read, never a silently wrong number."""
+        if dtype is not str:
+            kw.setdefault("fletcher32", True)
+        return self.ds.createVariable(name, dtype, dims, **kw)
+
     def _coord(self, name, dim, unit, long):
-        v = self.ds.createVariable(name, "f8", (dim,))
+        v = self._var(name, "f8", (dim,))
         v.units, v.long_name = unit, long
 
     # -- appending -----------------------------------------------------------

@@ -16,7 +16,7 @@ import xarray as xr
 
 from ..errors import JobError
 
-__all__ = ["open_result", "result_setup", "result_units"]
+__all__ = ["open_result", "result_setup", "result_units", "verify_readable"]
 
 REQUIRED_ATTRS = ("run_id", "job", "wavesweep_version")
 
@@ -46,7 +46,41 @@ def open_result(path, require: tuple[str, ...] = (), field: str = "RUN.nc") -> x
         ds.close()
         raise JobError(field, f"{_name(path)} has no {', '.join(absent)} variable; "
                               "it was written without it (re-run the job with this version)")
+    try:
+        verify_readable(ds, path, field)
+    except JobError:
+        ds.close()
+        raise
     return ds
+
+
+# Variables up to this many elements are read (checksums verified) when a
+# result is opened; larger ones (density frames) are streamed and checked by
+# their readers.
+VERIFY_MAX_ELEMENTS = 2**22
+# Rounding allowed around [0, 1] for probabilities (norm, absorbed).
+PROBABILITY_SLACK = 1e-6
+
+
+def verify_readable(ds: xr.Dataset, path, field: str = "RUN.nc") -> None:
+    """Read every variable of up to VERIFY_MAX_ELEMENTS elements: a block
+    whose HDF5 checksum (results are written with Fletcher-32) or
+    compression fails is one line naming the file and the variable; and
+    ``norm`` and ``absorbed`` must be probabilities (in [0, 1] to rounding):
+    a file without checksums can still be caught holding nonsense there."""
+    for name, var in ds.variables.items():
+        if var.size > VERIFY_MAX_ELEMENTS:
+            continue
+        try:
+            values = var.values
+        except (RuntimeError, OSError, ValueError) as e:
+            raise JobError(field, f"{_name(path)}: variable {name!r} cannot be read, the file is damaged "
+                                  f"({' '.join(str(e).split())}); run the job again") from None
+        if name in ("norm", "absorbed") and values.size:
+            lo, hi = float(values.min()), float(values.max())
+            if not (-PROBABILITY_SLACK <= lo and hi <= 1 + PROBABILITY_SLACK):
+                raise JobError(field, f"{_name(path)}: variable {name!r} holds {hi if hi > 1 else lo:.6g}, "
+                                      "which is not a probability: the file is damaged; run the job again")
 
 
 def result_setup(ds: xr.Dataset, field: str = "RUN.nc"):
