@@ -337,3 +337,19 @@ def test_a_damaged_result_is_one_line_naming_the_variable(free_result, tmp_path,
     assert main(["arrivals", str(plain), "--json"]) == 2
     err = capsys.readouterr().err.strip()
     assert len(err.splitlines()) == 1 and "damaged" in err
+
+
+@pytest.mark.parametrize("fraction", [0.5, 0.9])
+def test_a_flipped_byte_anywhere_is_exit_2_for_plot_and_arrivals(free_result, tmp_path, capsys, fraction):
+    """One byte of a result flipped inside its data (here at half and 90 % of
+    the file: density and final-state blocks of this run): `plot` and
+    `arrivals` answer with one line and exit 2, never a traceback or a
+    number (before: exit 1, an HDF error)."""
+    raw = bytearray(free_result.read_bytes())
+    raw[int(len(raw) * fraction)] ^= 0x40
+    damaged = tmp_path / "damaged.nc"
+    damaged.write_bytes(bytes(raw))
+    for argv in (["plot", str(damaged), "-o", str(tmp_path / "d.png")], ["arrivals", str(damaged)]):
+        code = main(argv)
+        out, err = capsys.readouterr()
+        assert code == 2 and len(err.strip().splitlines()) == 1, err

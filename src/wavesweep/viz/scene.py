@@ -113,7 +113,12 @@ class FrameReader:
 
     def frame(self, i: int, variable: str | None = None) -> np.ndarray:
         var = self._var if variable is None else self._nc[variable]
-        return np.asarray(var[i], dtype=np.float64)
+        try:
+            return np.asarray(var[i], dtype=np.float64)
+        except (RuntimeError, OSError) as e:   # a block whose checksum or compression fails
+            raise JobError("RUN.nc", f"{self._nc.filepath()!r}: variable {var.name!r} cannot be read at "
+                                     f"snapshot {i}, the file is damaged ({' '.join(str(e).split())}); "
+                                     "run the job again") from None
 
     def close(self) -> None:
         self._nc.close()
