@@ -1276,6 +1276,34 @@ def memory_estimate(job) -> dict:
     return {"psi_bytes": psi_bytes, "estimate_bytes": estimate, "points": size}
 
 
+# Grids up to this many points are diagonalised densely by ``levels``
+# (analysis/spectra.py's DENSE_MAX_POINTS; kept here so that the estimate
+# needs no import from the analysis layer).
+LEVELS_DENSE_MAX_POINTS = 2048
+
+
+def levels_memory_estimate(job, count: int) -> float:
+    """Bytes ``levels`` holds for ``count`` states of ``job``, from shapes:
+    dense eigh up to 2048 points (the matrix, its eigenvectors and eigh's
+    work space: three N x N float64), else LOBPCG blocks (about eight
+    vectors per state, float64) plus V and the kinetic factors, and the
+    coarser grids of the error estimate (under a half more)."""
+    size = float(np.prod(_job_points(job.table), dtype=np.float64))
+    if size <= LEVELS_DENSE_MAX_POINTS:
+        return 3 * 8.0 * size * size
+    return 1.5 * (8.0 * size * 8 * (count + 2) + 8.0 * size * 4)
+
+
+def memory_error(need: float, what: str, field: str):
+    """A JobError when ``need`` bytes exceed this machine's available memory, else None."""
+    from .errors import JobError
+    avail, total = available_memory()
+    if need <= avail:
+        return None
+    return JobError(field, f"{what} needs about {_bytes(need)}, more than the {_bytes(avail)} available "
+                           f"here (of {_bytes(total)}); use fewer points or a machine with more memory")
+
+
 def available_memory() -> tuple[float, float]:
     """(available, total) bytes of this machine's memory (MemAvailable of
     /proc/meminfo where there is one, else the physical size for both)."""
@@ -1307,7 +1335,7 @@ def memory_finding(job) -> Finding:
 
 
 def _bytes(n: float) -> str:
-    for unit, size in (("GiB", 2**30), ("MiB", 2**20), ("KiB", 2**10)):
+    for unit, size in (("TiB", 2**40), ("GiB", 2**30), ("MiB", 2**20), ("KiB", 2**10)):
         if n >= size:
             return f"{n / size:.3g} {unit}"
     return f"{n:.0f} B"

@@ -459,7 +459,14 @@ def _levels(args) -> int:
 
         if args.states:
             check_states_path(args.states)   # before the solve: a path that cannot be written costs nothing
-        model = Model(load_job(args.job, args.set))   # the packet plays no part in the levels
+        job = load_job(args.job, args.set)
+        from .adequacy import levels_memory_estimate, memory_error
+        axes = [a for a in ("x", "y", "z", "r") if a in job.table["grid"]]
+        too_big = memory_error(levels_memory_estimate(job, args.count + 1), f"{args.count} levels of this grid",
+                               f"grid.{axes[-1]}.points")
+        if too_big is not None:   # judged from shapes, before anything is allocated
+            raise too_big
+        model = Model(job)   # the packet plays no part in the levels
         energies_au = states = None
         if args.count >= 1:
             try:   # one level more, to tell whether the last one asked for is degenerate with the next

@@ -282,3 +282,20 @@ def test_default_sampling_divides_the_duration():
                     "packet": {"center": 0.0, "width": 3.0}, "evolve": {"dt": 0.2, "duration": 1500.0}})
     every = job.table["record"]["every"]
     assert round(1500.0 / every) * every == pytest.approx(1500.0)
+
+
+def test_levels_refuses_a_grid_that_cannot_fit_before_allocating(tmp_path, capsys):
+    """`levels` on a 4096^3 grid was 'out of memory' (exit 1) after trying to
+    allocate it; now it is one line from the shapes, naming the points."""
+    from wavesweep.adequacy import LEVELS_DENSE_MAX_POINTS
+    from wavesweep.analysis.spectra import DENSE_MAX_POINTS
+    from wavesweep.cli import main
+
+    assert LEVELS_DENSE_MAX_POINTS == DENSE_MAX_POINTS   # the estimate follows the solver
+    job = tmp_path / "big.toml"
+    job.write_text('[grid]\nx = { min = -1.0, max = 1.0, points = 4096 }\ny = { min = -1.0, max = 1.0, points = 4096 }\n'
+                   'z = { min = -1.0, max = 1.0, points = 4096 }\n[packet]\ncenter = [0.0, 0.0, 0.0]\n'
+                   'width = [0.1, 0.1, 0.1]\n[evolve]\ndt = 0.01\nduration = 0.1\n')
+    assert main(["levels", str(job), "--count", "2"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "grid.z.points" in err and "TiB" in err

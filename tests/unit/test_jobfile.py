@@ -518,3 +518,21 @@ def test_a_study_reports_each_error_once_with_the_points_it_occurs_at():
     assert lines[0].startswith("packet.center:") and lines[0].endswith("(in all 6 sweep points)")
     assert lines[1].startswith("packet.width: must be positive, got -1.0 (in 3 of 6 sweep points: "
                                "packet.width = -1.0, potential.0.height = 0.1;")
+
+
+def test_a_study_too_large_is_refused_from_its_sizes():
+    """A product of 1000 x 1000 x 1000 runs, or a range of 1e9 values, was
+    expanded (hanging, or out of memory) before it was judged; now the sizes
+    are refused first, naming the key."""
+    import pytest
+    from wavesweep.batch.sweep import MAX_RUNS, sweep_axes
+    from wavesweep.errors import JobError
+
+    rng = {"start": 1.0, "stop": 2.0, "num": 1000}
+    with pytest.raises(JobError) as err:
+        sweep_axes({"a.b": rng, "c.d": rng, "e.f": rng})
+    assert err.value.field == "sweep" and "1000000000 runs" in str(err.value)
+    with pytest.raises(JobError) as err:
+        sweep_axes({"a.b": {"start": 1.0, "stop": 2.0, "num": 10**9}})
+    assert err.value.field == "sweep.a.b.num"
+    assert len(sweep_axes({"a.b": {**rng, "num": MAX_RUNS}})[1]["a.b"]) == MAX_RUNS

@@ -35,6 +35,10 @@ from ..jobfile import Job, file_position, job_from_dict, parse_override, read_jo
 __all__ = ["RunSpec", "Study", "expand_study", "load_study", "sweep_axes", "refuse_swept_overrides"]
 
 MODES = ("grid", "zip")
+# Runs of one study at the most: each is validated and resolved on submit
+# (milliseconds each), and a product of ranges must not be made first to be
+# counted (1000 x 1000 x 1000 hung; a range of 1e9 values ran out of memory).
+MAX_RUNS = 100_000
 RANGE_KEYS = ("start", "stop", "num", "spacing")
 
 
@@ -90,6 +94,9 @@ def _values(key: str, spec) -> list:
                 raise JobError(f"{where}.{k}", f"must be a number, got {v!r}")
         if isinstance(num, bool) or not isinstance(num, int) or num < 1:
             raise JobError(f"{where}.num", f"must be a positive integer, got {num!r}")
+        if num > MAX_RUNS:   # before any array of that length exists
+            raise JobError(f"{where}.num", f"{num} values; a study holds at most {MAX_RUNS} runs "
+                                           "(split it into several studies)")
         spacing = spec.get("spacing", "linear")
         if spacing == "linear":
             vals = np.linspace(start, stop, num)
@@ -124,6 +131,12 @@ def sweep_axes(sweep: dict) -> tuple[str, dict]:
         lengths = {k: len(v) for k, v in axes.items()}
         if len(set(lengths.values())) > 1:
             raise JobError("sweep.mode", f"'zip' needs lists of one length, got {lengths}")
+    else:   # the product's size from the lengths, before a run is made
+        runs = math.prod(len(v) for v in axes.values())
+        if runs > MAX_RUNS:
+            sizes = " x ".join(str(len(v)) for v in axes.values())
+            raise JobError("sweep", f"{sizes} = {runs} runs; a study holds at most {MAX_RUNS} "
+                                    "(split it into several studies, or use mode = 'zip')")
     return mode, axes
 
 
