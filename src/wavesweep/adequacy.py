@@ -525,7 +525,7 @@ def _walls(x, p, grid, layers):
 # ---------------------------------------------------------------------------
 # Electrons freed by a driving field: the simple-man model
 # ---------------------------------------------------------------------------
-def field_driven_momentum(setup, n_times: int = 4000) -> dict:
+def field_driven_momentum(setup, n_times: int | None = None) -> dict:
     """Per axis index, the largest |p| (a.u.) that an electron set free at
     rest at any time of the run reaches in the job's spatially uniform
     time-dependent forces alone: directly, |A(t) - A(t0)|, or after one
@@ -550,6 +550,9 @@ def field_driven_momentum(setup, n_times: int = 4000) -> dict:
                 forces.setdefault(i, []).append((-slope, f))
     if not forces:
         return {}
+    if n_times is None:   # 64 samples per carrier period (4000 at least, 200000 at most)
+        cycles = _fastest_carrier(setup) * setup.duration / (2 * math.pi)
+        n_times = int(min(max(4000, 64 * cycles), 200_000))
     t = np.linspace(0.0, setup.duration, n_times)
     out = {}
     for i, parts in forces.items():
@@ -984,7 +987,8 @@ def time_step_finding(setup, dyn: Dynamics) -> Finding:
     # grid and where the packet goes (a field's -q E x grows with |x|)
     separable, _ = split_time_dependent(setup.terms, setup.grid.mesh())
     if separable:
-        times = np.linspace(0.0, setup.duration, 2001)
+        cycles = _fastest_carrier(setup) * setup.duration / (2 * math.pi)   # 64 samples a period
+        times = np.linspace(0.0, setup.duration, int(min(max(2001, 64 * cycles), 200_000)))
         for g, f in separable:
             f_max = max(abs(f(t)) for t in times)
             g_full = np.broadcast_to(g, setup.grid.shape)
@@ -1404,6 +1408,7 @@ def run_time_finding(setup, seconds: float = 1.0) -> Finding:
 
 
 def human_seconds(seconds: float) -> str:
+    """A duration as people read it: 3.2 s, 41 s, 17 min, 2.5 h."""
     if seconds < 90:
         return f"{seconds:.2g} s" if seconds < 10 else f"{seconds:.0f} s"
     if seconds < 5400:

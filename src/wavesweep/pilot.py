@@ -67,7 +67,7 @@ from pathlib import Path
 import numpy as np
 import scipy.fft
 
-from .adequacy import Finding, trial_costs
+from .adequacy import Finding, human_seconds as _human, trial_costs
 from .errors import JobError, RunFailed
 from .jobfile import Job, job_from_dict
 from .simulation import Setup, Simulation
@@ -509,11 +509,3 @@ def _short(setting: str) -> str:
 
 def _fmt(out: _Output) -> str:
     return f"{out.value:.6g} {out.units}".rstrip()
-
-
-def _human(seconds: float) -> str:
-    if seconds < 90:
-        return f"{seconds:.2g} s" if seconds < 10 else f"{seconds:.0f} s"
-    if seconds < 5400:
-        return f"{seconds / 60:.0f} min"
-    return f"{seconds / 3600:.1f} h"
