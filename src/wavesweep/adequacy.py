@@ -1000,11 +1000,16 @@ def time_step_finding(setup, dyn: Dynamics) -> Finding:
     phase = max(kin_phase, pot_phase)
     level = "ok" if phase <= 1.0 else ("warn" if phase <= math.pi else "error")
     exact = getattr(setup.scheme, "name", "") == "chebyshev"
+    if setup.grid.radial and getattr(setup.scheme, "in_place_transform", False) and not separable:
+        from .propagators.split_operator import RADIAL_DENSE_MAX
+        # a static radial H is stepped exactly in its dense eigenbasis (no splitting)
+        exact = exact or (setup.grid.axes[0].points <= RADIAL_DENSE_MAX
+                          and not any(t.time_dependent for t in setup.terms))
     if exact:   # a converged expansion of exp(-i H dt): no splitting, no phase to wrap
         level = "ok"
     if v_span * dt > 1e3 * math.pi and level == "ok":
         level = "warn"   # no wall needs a phase of thousands of turns per step: a unit is off
-    msg = ("chebyshev (exact for a static H at any dt): " if exact else "") + (
+    msg = ("exact for a static H at any dt (chebyshev, or the radial eigenbasis): " if exact else "") + (
            f"phase per step: highest kinetic energy over the run {kin_phase:.3g} rad, potential over the "
            f"region the packet visits {pot_phase:.3g} rad (<= 1 is common practice; above pi it wraps), "
            f"over the whole grid {v_span * dt:.3g} rad (dt = {dt / tf:g} {T})")
@@ -1199,12 +1204,14 @@ def _largest_prime_factor(n: int) -> int:
     return max(big, n) if n > 1 else big
 
 
-# FFTW and scipy.fft have fast codelets for the factors 2, 3, 5 and 7 (and
-# 11, 13 in FFTW); a larger prime factor goes through Rader's or
+# FFTW and scipy.fft have fast codelets for the factors 2, 3, 5, 7, 11 and
+# 13 (common practice, from memory); a larger prime factor goes through Rader's or
 # Bluestein's algorithm, several times slower (measured here: a 1D box of
 # 8192 points, whose sine transform works on 8193 = 3 x 2731, stepped
 # 12-60x slower than 8191).
-FAST_PRIME_MAX = 7
+FAST_PRIME_MAX = 13
+# Below this transform length a slow factor costs microseconds: not worth a warning.
+SLOW_SIZE_MIN = 256
 
 
 def transform_length(ax) -> int:
@@ -1231,13 +1238,13 @@ def size_findings(grid) -> list[Finding]:
     for ax in grid.axes:
         n = transform_length(ax)
         big = _largest_prime_factor(n)
-        if big <= FAST_PRIME_MAX:
+        if big <= FAST_PRIME_MAX or n < SLOW_SIZE_MIN:
             continue
         fast = nearest_fast_points(ax)
         what = "its FFT" if ax.boundary == "periodic" else "its sine transform (which works on points + 1)"
         out.append(Finding("size", "warn",
                            f"{ax.name}: {ax.points} points: {what} has length {n} with prime factor {big}, "
-                           f"several times slower than a length with factors 2, 3, 5, 7 only; use "
+                           f"several times slower than a length with factors up to 13 only; use "
                            f"{fast} points", {"axis": ax.name, "points": ax.points, "prime_factor": big,
                                               "fast_points": fast}, field=f"grid.{ax.name}.points"))
     return out
