@@ -625,11 +625,37 @@ def _nonseparable(v) -> bool:
     return float(np.abs(rest).max()) > 1e-9 * scale
 
 
+# Dynamics of recent jobs in this process: `run` builds the set-up of a job
+# up to three times (resolving its CAP, judging it, running it) and the
+# trajectories cost ~0.3 s each time; they do not depend on the absorber's
+# strength, which the first of them chooses.
+_DYNAMICS_CACHE: dict = {}
+_DYNAMICS_CACHE_SIZE = 64
+
+
+def _dynamics_key(setup) -> str | None:
+    import json
+    table = dict(setup.job.table)
+    if isinstance(table.get("absorber"), dict):
+        table["absorber"] = {k: v for k, v in table["absorber"].items() if k not in ("strength", "power")}
+    table.pop("title", None)
+    table.pop("sweep", None)
+    try:
+        return json.dumps(table, sort_keys=True, default=str) + repr(setup.units.as_table())
+    except (TypeError, ValueError):
+        return None
+
+
 def dynamics(setup) -> Dynamics:
-    """:class:`Dynamics` of a set-up, computed once and kept on it."""
+    """:class:`Dynamics` of a set-up, computed once and kept on it (and for
+    the same physics in this process)."""
     cached = getattr(setup, "_dynamics", None)
     if cached is not None:
         return cached
+    key = _dynamics_key(setup)
+    if key is not None and key in _DYNAMICS_CACHE:
+        setup._dynamics = _DYNAMICS_CACHE[key]
+        return setup._dynamics
     grid, m = setup.grid, setup.mass
     v = setup.hamiltonian_static_potential()
     initial = _initial_reach(setup)
@@ -663,6 +689,10 @@ def dynamics(setup) -> Dynamics:
     windows = _windows(setup, moms, reach, freed, nonsep, v, v_packet, e_total, unreached)
     out = Dynamics(initial, over, reach, freed, windows, nonsep, bound, unreached)
     setup._dynamics = out
+    if key is not None:
+        if len(_DYNAMICS_CACHE) >= _DYNAMICS_CACHE_SIZE:
+            _DYNAMICS_CACHE.pop(next(iter(_DYNAMICS_CACHE)))
+        _DYNAMICS_CACHE[key] = out
     return out
 
 
