@@ -33,6 +33,11 @@ def open_result(path, require: tuple[str, ...] = (), field: str = "RUN.nc") -> x
             raise JobError(field, f"no such file {str(path)!r}")
         try:
             ds = xr.open_dataset(path, engine="netcdf4")
+        except RuntimeError as e:   # netCDF4's HDF error: an index coordinate read at opening failed
+            where = _unreadable_variable(path)
+            raise JobError(field, f"{_name(path)}: {f'variable {where!r} ' if where else ''}cannot be "
+                                  f"read, the file is damaged ({' '.join(str(e).split())}); "
+                                  "run the job again") from None
         except (OSError, ValueError) as e:
             raise JobError(field, f"{str(path)!r} is not a readable netCDF file "
                                   f"({' '.join(str(e).split())})") from None
@@ -81,6 +86,27 @@ def verify_readable(ds: xr.Dataset, path, field: str = "RUN.nc") -> None:
             if not (-PROBABILITY_SLACK <= lo and hi <= 1 + PROBABILITY_SLACK):
                 raise JobError(field, f"{_name(path)}: variable {name!r} holds {hi if hi > 1 else lo:.6g}, "
                                       "which is not a probability: the file is damaged; run the job again")
+
+
+def _unreadable_variable(path) -> str | None:
+    """The first variable of the file at ``path`` whose data cannot be read
+    (coordinates first: xarray reads those when it opens a file)."""
+    import netCDF4
+
+    try:
+        with netCDF4.Dataset(path) as nc:
+            names = sorted(nc.variables, key=lambda n: n not in nc.dimensions)
+            for name in names:
+                var = nc.variables[name]
+                if var.size > VERIFY_MAX_ELEMENTS:
+                    continue
+                try:
+                    var[...]
+                except (RuntimeError, OSError, ValueError):
+                    return name
+    except (RuntimeError, OSError, ValueError):
+        return None
+    return None
 
 
 def result_setup(ds: xr.Dataset, field: str = "RUN.nc"):

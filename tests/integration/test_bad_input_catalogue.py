@@ -1,0 +1,362 @@
+"""A catalogue of bad inputs, as careless and hostile users give them.
+
+The contract (design.md, "Command line"): bad input exits with status 2 and
+one line on stderr naming the field (or argument, or file) and the fix; no
+traceback; nothing already on disk is changed and no result or partial
+file is left behind.  A warning line may come before the error (a set-up
+finding printed by ``run``), nothing else.
+
+Each case is one row: the class it belongs to (the classes of issue 13:
+sizes, job fields, units, expressions, damaged files, flags, files that are
+not regular files, outputs, the queue database, smaller ones), the command
+line, the field the line must name and other pieces it must hold.  Cases
+run in-process through ``wavesweep.cli.main`` (an interpreter start per
+case would cost the suite minutes); the subprocess contract itself (exit
+status of a real process, a real pipe) is tested in test_cli.py.
+
+Place-holders in a command line: ``{job}`` the case's job file (TINY with
+the case's patch), ``{result}`` a good result file of TINY, ``{damaged}``
+the file the case's ``prepare`` made, ``{tmp}`` the case's folder.
+"""
+from __future__ import annotations
+
+import copy
+import hashlib
+import math
+import os
+import shutil
+from dataclasses import dataclass, field as dc_field
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import pytest
+import tomli_w
+
+from wavesweep.cli import main
+
+# A 1D barrier job in atomic units (test_cli.py's TINY): 20 steps, adequate
+# as it stands, so that every error below comes from the case's change.
+TINY = {
+    "title": "catalogue job",
+    "grid": {"x": {"min": -40.0, "max": 40.0, "points": 128}, "boundary": "periodic"},
+    "potential": [{"kind": "barrier", "height": 0.5, "width": 1.0, "center": 0.0, "smoothing": 1.5}],
+    "packet": {"kind": "gaussian", "center": -10.0, "width": 2.0, "momentum": 1.0},
+    "evolve": {"dt": 0.05, "duration": 1.0, "scheme": "strang"},
+    "record": {"every": 0.1, "snapshot_every": 0.5},
+    "detector": [{"name": "far", "x": 10.0}],
+}
+
+
+def merged(base: dict, patch: dict) -> dict:
+    """``base`` with ``patch`` merged in recursively (None deletes a key)."""
+    out = copy.deepcopy(base)
+    for key, value in patch.items():
+        if value is None:
+            out.pop(key, None)
+        elif isinstance(value, dict) and isinstance(out.get(key), dict):
+            out[key] = merged(out[key], value)
+        else:
+            out[key] = copy.deepcopy(value)
+    return out
+
+
+@dataclass
+class Case:
+    klass: str
+    name: str
+    argv: list
+    field: str
+    pieces: tuple = ()
+    job: dict = dc_field(default_factory=dict)   # patch of TINY
+    prepare: Callable | None = None              # prepare(folder, result) -> path for {damaged}
+    job_text: str | None = None                  # the job file's text, verbatim (instead of a patch)
+
+
+CASES: list[Case] = []
+
+
+def case(klass, name, argv, field, *pieces, job=None, prepare=None, job_text=None):
+    CASES.append(Case(klass, name, list(argv), field, pieces, job or {}, prepare, job_text))
+
+
+RUN = ["run", "{job}", "-o", "{tmp}/out", "--quiet"]
+CHECK = ["check", "{job}", "--trial-seconds", "0.01"]
+SUBMIT = ["submit", "{job}", "--root", "{tmp}/root"]
+LEVELS = ["levels", "{job}", "--count", "2"]
+JOB_COMMANDS = {"run": RUN, "check": CHECK, "submit": SUBMIT, "levels": LEVELS}
+
+
+def job_case(klass, name, patch, field, *pieces, commands=("run", "check")):
+    """The same bad job through several commands that read jobs."""
+    for command in commands:
+        case(klass, f"{command}-{name}", JOB_COMMANDS[command], field, *pieces, job=patch)
+
+
+# -- 1. sizes, judged from shapes before anything is allocated ---------------------
+for command in ("run", "check", "submit", "levels"):
+    case("sizes", f"{command}-points-1e20", JOB_COMMANDS[command], "grid.x.points",
+         job={"grid": {"x": {"points": 10**20}}})
+    case("sizes", f"{command}-points-2e9", JOB_COMMANDS[command], "grid", "memory",
+         job={"grid": {"x": {"points": 2 * 10**9}}, "detector": None})
+    case("sizes", f"{command}-3d-4096-cubed", JOB_COMMANDS[command], "grid", "memory",
+         job={"grid": {"y": {"min": -40.0, "max": 40.0, "points": 4096},
+                       "z": {"min": -40.0, "max": 40.0, "points": 4096}, "x": {"points": 4096}},
+              "packet": {"center": [-10.0, 0.0, 0.0], "width": [2.0, 2.0, 2.0],
+                         "momentum": [1.0, 0.0, 0.0]},
+              "potential": None, "detector": None})
+for command in ("run", "check", "submit"):
+    case("sizes", f"{command}-sweep-1e9-values", JOB_COMMANDS[command], "sweep",
+         job={"sweep": {"potential.0.height": {"start": 0.1, "stop": 1.0, "num": 10**9}}})
+    case("sizes", f"{command}-sweep-1000-cubed", JOB_COMMANDS[command], "sweep",
+         job={"sweep": {"potential.0.height": {"start": 0.1, "stop": 1.0, "num": 1000},
+                        "potential.0.width": {"start": 0.5, "stop": 1.5, "num": 1000},
+                        "packet.momentum": {"start": 0.5, "stop": 1.5, "num": 1000}}})
+
+
+# -- job fields: wrong types, non-finite numbers, out-of-range values ---------------
+NAN, INF = float("nan"), float("inf")
+POSITIVE = ["grid.x.points", "evolve.dt", "evolve.duration", "packet.width", "record.every",
+            "record.snapshot_every", "record.stride", "particle.mass"]
+
+
+def patch_at(dotted: str, value) -> dict:
+    """{"a": {"b": value}} for "a.b" (lists by index are not used here)."""
+    keys = dotted.split(".")
+    out: dict = {keys[-1]: value}
+    for key in reversed(keys[:-1]):
+        out = {key: out}
+    return out
+
+
+for key in POSITIVE:
+    short = key.replace(".", "-")
+    job_case("fields", f"{short}-negative", patch_at(key, -2), key, commands=("run",))
+    job_case("fields", f"{short}-text", patch_at(key, "plenty"), key, commands=("run",))
+for key in ("evolve.dt", "evolve.duration", "packet.width", "packet.center", "packet.momentum",
+            "grid.x.max", "particle.mass"):
+    short = key.replace(".", "-")
+    job_case("fields", f"{short}-nan", patch_at(key, NAN), key, "finite", commands=("run",))
+    job_case("fields", f"{short}-inf", patch_at(key, INF), key, "finite", commands=("run",))
+job_case("fields", "grid-min-above-max", {"grid": {"x": {"min": 50.0}}}, "grid.x")
+job_case("fields", "points-float", {"grid": {"x": {"points": 128.5}}}, "grid.x.points", "integer")
+job_case("fields", "points-bool", {"grid": {"x": {"points": True}}}, "grid.x.points")
+job_case("fields", "dt-longer-than-duration", {"evolve": {"dt": 2.0}}, "evolve")
+job_case("fields", "unknown-boundary", {"grid": {"boundary": "mirror"}}, "grid.boundary", "periodic")
+job_case("fields", "unknown-potential-kind", {"potential": [{"kind": "volcano"}]},
+         "potential.0.kind", "barrier")
+job_case("fields", "potential-a-string", {"potential": "barrier"}, "potential")
+job_case("fields", "packet-unknown-kind", {"packet": {"kind": "cloud"}}, "packet.kind", "gaussian")
+job_case("fields", "absorber-without-thickness", {"absorber": {"kind": "cap"}},
+         "absorber.thickness")
+job_case("fields", "absorber-thicker-than-grid", {"absorber": {"kind": "cap", "thickness": 100.0}},
+         "absorber.thickness")
+job_case("fields", "absorber-unknown-face", {"absorber": {"kind": "cap", "thickness": 8.0,
+                                                           "faces": ["x-", "w+"]}}, "absorber.faces")
+job_case("fields", "detector-two-axes", {"detector": [{"name": "d", "x": 1.0, "y": 2.0}]}, "detector.0")
+job_case("fields", "detector-names-repeat", {"detector": [{"name": "d", "x": 10.0},
+                                                          {"name": "d", "x": 20.0}]}, "detector.1.name")
+job_case("fields", "precision-unknown", {"evolve": {"precision": "quad"}}, "evolve.precision", "double")
+job_case("fields", "title-a-number", {"title": 12}, "title")
+job_case("fields", "sweep-empty-list", {"sweep": {"potential.0.height": []}}, "sweep")
+job_case("fields", "sweep-unknown-key", {"sweep": {"potential.0.heigth": [0.1, 0.2]}},
+         "potential.0.heigth", "'height'")
+job_case("fields", "sweep-zip-lengths-differ", {"sweep": {"mode": "zip", "potential.0.height": [0.1, 0.2],
+                                                          "packet.momentum": [1.0, 1.1, 1.2]}}, "sweep")
+case("fields", "toml-duplicate-key", RUN, "job.toml", "TOML",
+     job_text='title = "a"\ntitle = "b"\n')
+job_case("fields", "evolve-missing", {"evolve": None}, "evolve", "missing")
+case("fields", "toml-binary", RUN, "job.toml", job_text="\x00\x01\x02 not toml")
+
+
+# -- units ---------------------------------------------------------------------------
+job_case("units", "unknown-length-unit", {"units": {"length": "parsec-ish"}}, "units.length")
+job_case("units", "energy-unit-for-length", {"units": {"length": "eV"}}, "units.length")
+job_case("units", "quantity-wrong-dimension", {"packet": {"width": "2 fs"}}, "packet.width", "length")
+job_case("units", "quantity-unknown-unit", {"packet": {"width": "2 furlongs"}}, "packet.width")
+job_case("units", "quantity-not-a-number", {"packet": {"width": "two nm"}}, "packet.width")
+job_case("units", "mass-unit-for-time", {"units": {"time": "kg"}}, "units.time")
+
+
+# -- expressions: never run code, refuse what cannot be a potential -------------------
+def expression(text, **extra):
+    return {"potential": [{"kind": "expression", "expression": text, **extra}]}
+
+
+EXPRESSION_CASES = [
+    ("import", "__import__('os').system('touch PWNED')", "__import__"),
+    ("dunder-attribute", "x.__class__", "__class__"),
+    ("lambda", "(lambda: 1)()", "lambda"),
+    ("comprehension", "[i for i in range(3)]", "potential.0.expression"),
+    ("unknown-name", "0.5 * xx", "xx"),
+    ("unknown-function", "open('job.toml')", "open"),
+    ("syntax-error", "0.5 * (x", "potential.0.expression"),
+    ("string-literal", "'abc'", "potential.0.expression"),
+    ("huge-power", "x ** 10**10", "potential.0.expression"),
+    ("not-finite-on-grid", "1 / x", "potential.0.expression"),
+]
+for name, text, piece in EXPRESSION_CASES:
+    job_case("expressions", name, expression(text), "potential.0.expression", piece,
+             commands=("run",))
+
+
+# -- damaged result files -------------------------------------------------------------
+def flipped_at(fraction, mask=0x40):
+    def prepare(folder: Path, result: Path) -> Path:
+        raw = bytearray(result.read_bytes())
+        raw[int(len(raw) * fraction)] ^= mask
+        out = folder / "damaged.nc"
+        out.write_bytes(bytes(raw))
+        return out
+    return prepare
+
+
+def flipped_in(variable):
+    """One bit flipped inside ``variable``'s stored data (found by the bytes
+    of its largest element), where the Fletcher-32 checksum must catch it."""
+    def prepare(folder: Path, result: Path) -> Path:
+        import netCDF4
+        with netCDF4.Dataset(result) as nc:
+            values = np.ravel(np.asarray(nc[variable][:]))
+        value = values[np.argmax(np.abs(values))]
+        raw = bytearray(result.read_bytes())
+        at = raw.find(np.asarray(value).astype("<" + values.dtype.str[1:]).tobytes())
+        assert at > 0, f"{variable}'s bytes not found"
+        raw[at + 2] ^= 0x10
+        out = folder / "damaged.nc"
+        out.write_bytes(bytes(raw))
+        return out
+    return prepare
+
+
+def truncated(fraction):
+    def prepare(folder: Path, result: Path) -> Path:
+        raw = result.read_bytes()
+        out = folder / "damaged.nc"
+        out.write_bytes(raw[: int(len(raw) * fraction)])
+        return out
+    return prepare
+
+
+def text_file(folder: Path, result: Path) -> Path:
+    out = folder / "damaged.nc"
+    out.write_text("this is not a result\n")
+    return out
+
+
+def empty_file(folder: Path, result: Path) -> Path:
+    out = folder / "damaged.nc"
+    out.write_bytes(b"")
+    return out
+
+
+def scaled(variable, factor):
+    """A file without checksums (written by xarray) that holds a probability
+    scaled by ``factor``: the checksum cannot catch it, the range check must."""
+    def prepare(folder: Path, result: Path) -> Path:
+        import xarray as xr
+        with xr.open_dataset(result) as ds:
+            bad = ds.load()
+        bad[variable] = bad[variable] * factor
+        out = folder / "damaged.nc"
+        bad.to_netcdf(out)
+        return out
+    return prepare
+
+
+READERS = {
+    "arrivals": ["arrivals", "{damaged}"],
+    "transmission": ["transmission", "{damaged}"],
+    "plot": ["plot", "{damaged}", "-o", "{tmp}/figure.png"],
+    "movie": ["movie", "{damaged}", "-o", "{tmp}/movie.gif"],
+    "levels-from": ["levels", "--from", "{damaged}"],
+}
+# what each reader reads first (a flip elsewhere is caught when it reads that)
+# (density is compressed: its bytes cannot be found by value; the flips at 90 %
+# of the file land in its blocks)
+READS = {"arrivals": "flux", "transmission": "norm", "plot": "norm", "movie": "x",
+         "levels-from": "norm"}
+DAMAGE = [("byte-at-90pct", flipped_at(0.9)),
+          ("truncated-half", truncated(0.5)), ("text", text_file), ("empty", empty_file)]
+for reader, argv in READERS.items():
+    for name, prepare in DAMAGE:
+        case("damaged", f"{reader}-{name}", argv, "damaged.nc", prepare=prepare)
+    case("damaged", f"{reader}-bit-in-{READS[reader]}", argv, "damaged.nc", f"'{READS[reader]}'",
+         prepare=flipped_in(READS[reader]))
+for reader in ("arrivals", "transmission", "levels-from"):
+    case("damaged", f"{reader}-norm-above-one", READERS[reader], "norm", prepare=scaled("norm", 3.0))
+case("damaged", "arrivals-flux-scaled-up", READERS["arrivals"], "RUN.nc", "detector 'far'",
+     prepare=scaled("flux", 1e20))
+
+
+# -- the harness ----------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def good_result(tmp_path_factory):
+    from wavesweep.jobfile import job_from_dict
+    from wavesweep.simulation import Simulation
+
+    # long enough for `levels --from` (it needs 16 autocorrelation samples)
+    table = merged(TINY, {"evolve": {"duration": 2.0}, "record": {"every": 0.05}})
+    folder = tmp_path_factory.mktemp("good")
+    return Simulation(job_from_dict(table)).run(folder, progress=False)
+
+
+def _fingerprint(folder: Path) -> dict:
+    out = {}
+    for path in sorted(folder.rglob("*")):
+        if path.is_file() and not path.is_symlink():
+            out[str(path.relative_to(folder))] = hashlib.sha256(path.read_bytes()).hexdigest()
+    return out
+
+
+def _fill(argv, values) -> list[str]:
+    return [str(a).format(**values) for a in argv]
+
+
+@pytest.mark.parametrize("item", [pytest.param(c, id=f"{c.klass}-{c.name}") for c in CASES])
+def test_bad_input(item: Case, tmp_path, good_result, monkeypatch, capsys):
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.setenv("WAVESWEEP_CACHE", str(tmp_path / ".cache"))
+    monkeypatch.delenv("WAVESWEEP_DEBUG", raising=False)
+    job = tmp_path / "job.toml"
+    if item.job_text is not None:
+        job.write_text(item.job_text)
+    else:
+        job.write_text(tomli_w.dumps(merged(TINY, item.job)))
+    result = tmp_path / "result.nc"
+    shutil.copy(good_result, result)
+    damaged = item.prepare(tmp_path, result) if item.prepare else result
+    before = _fingerprint(tmp_path)
+
+    argv = _fill(item.argv, {"job": job, "result": result, "damaged": damaged, "tmp": tmp_path})
+    try:
+        code = main(argv)
+    except SystemExit as exit_:            # argparse's own exit
+        code = exit_.code
+    out, err = capsys.readouterr()
+
+    assert "Traceback" not in out + err, err
+    assert code == 2, (code, err)
+    lines = err.splitlines()
+    assert 1 <= len(lines) <= 2, err
+    if len(lines) == 2:
+        assert "warning" in lines[0], err
+    line = lines[-1]
+    assert item.field in line, line
+    for piece in item.pieces:
+        assert piece in line, line
+    assert "internal error" not in line, line
+    # nothing already on disk changed, no result or partial file appeared
+    after = _fingerprint(tmp_path)
+    changed = [name for name, digest in before.items() if after.get(name) != digest]
+    assert changed == [], changed
+    new = [name for name in after if name not in before and not name.startswith(".cache")]
+    assert [n for n in new if n.endswith((".nc", ".part", ".png", ".gif", ".mp4"))] == [], new
+    assert not (tmp_path / "PWNED").exists()
+
+
+def test_the_catalogue_covers_every_class():
+    """Issue 13 asks for at least 120 bad inputs across its classes."""
+    classes = {c.klass for c in CASES}
+    assert len(CASES) >= 120, len(CASES)
+    assert {"sizes", "fields", "units", "expressions", "damaged"} <= classes
