@@ -762,7 +762,13 @@ def _windows(setup, moms, reach, freed, nonsep, v, v_packet, e_total, unreached:
         e_floor = (2 * math.pi / th) ** 2 / (2 * m)
         e_lo = max(e_lo, e_floor)
         e_hi = max(e_hi, 4 * e_lo)
-        out[face] = (e_lo, e_hi)
+        # the grid holds no kinetic energy above (pi/dx)^2 / 2m (the momentum
+        # findings report what outruns it): a window beyond it (a barrier of
+        # 1e30 hartree) would size the layer's transfer-matrix sub-grid by
+        # momenta no step carries, terabytes for nothing
+        e_grid = ax.k_max ** 2 / (2 * m)
+        e_hi = min(e_hi, e_grid)
+        out[face] = (min(e_lo, e_hi), e_hi)
     return out
 
 
@@ -786,15 +792,25 @@ def representability(setup) -> None:
             if reach3 > ax.k_max:
                 raise JobError(f"grid.{ax.name}.points",
                                f"the grid resolves |p| up to {ax.k_max / pf:.4g} {u.unit_label('momentum')} but "
-                               f"the packet reaches {reach3 / pf:.4g} (|p0| + 3 sigma); use at least "
-                               f"{points_for(ax, reach6)} points")
+                               f"the packet reaches {reach3 / pf:.4g} (|p0| + 3 sigma); use "
+                               f"{points_text(points_for(ax, reach6))} points")
+
+
+# Point counts beyond this are said as "more than": no machine holds them,
+# and a momentum of 1e308 must not overflow the count (int(inf)).
+POINTS_SAYABLE = 10**15
 
 
 def points_for(ax, p_reach: float) -> int:
-    """The point count at which an axis resolves |p| <= p_reach (a.u.), same extent."""
-    if ax.boundary == "periodic":
-        return math.ceil(ax.length * p_reach / math.pi) + 1
-    return math.ceil(ax.length * p_reach / math.pi)
+    """The point count at which an axis resolves |p| <= p_reach (a.u.), same
+    extent; at most POINTS_SAYABLE (see ``points_text``)."""
+    n = ax.length * p_reach / math.pi + (1 if ax.boundary == "periodic" else 0)
+    return math.ceil(n) if n < POINTS_SAYABLE else POINTS_SAYABLE
+
+
+def points_text(n: int) -> str:
+    """'at least N' for a message; 'more than 1e+15' (no machine's) at the cap."""
+    return f"more than {POINTS_SAYABLE:.0e}" if n >= POINTS_SAYABLE else f"at least {n}"
 
 
 # Share of the state (its Wigner samples) whose momentum may outrun the grid
@@ -837,7 +853,7 @@ def momentum_findings(setup, dyn: Dynamics) -> list[Finding]:
                 if gained else f"the packet's |p0| + 6 sigma_p = {r6 / pf:.4g}")
         msg = (f"{ax.name}: grid resolves |p| <= {kmax / pf:.4g} {pu}; {what} ({r6 / kmax:.0%} of the range)")
         if level != "ok":
-            msg += (f"; beyond it momentum wraps round the grid; use >= {points_for(ax, r6)} points "
+            msg += (f"; beyond it momentum wraps round the grid; use {points_text(points_for(ax, r6))} points "
                     f"(same extent) or a shorter duration")
         out.append(Finding("momentum", level, msg,
                            {"axis": ax.name, "k_max": kmax / pf, "packet_reach": i6 / pf,
@@ -1341,6 +1357,18 @@ def memory_error(need: float, what: str, field: str):
         return None
     return JobError(field, f"{what} needs about {_bytes(need)}, more than the {_bytes(avail)} available "
                            f"here (of {_bytes(total)}); use fewer points or a machine with more memory")
+
+
+def physical_memory_error(need: float):
+    """A JobError (naming the grid) when ``need`` bytes exceed this machine's
+    physical memory: what cannot be built at all, even with --force (which
+    accepts runs above the *available* memory), else None."""
+    from .errors import JobError
+    _, total = available_memory()
+    if need <= total:
+        return None
+    return JobError("grid", f"the run needs about {_bytes(need)}, more than this machine's "
+                            f"{_bytes(total)} of memory; use fewer points or a machine with more memory")
 
 
 def available_memory() -> tuple[float, float]:

@@ -146,7 +146,13 @@ class Job:
         for a rerun of the job text stored in the result."""
         ab = self.table.get("absorber") or {}
         if ab.get("kind") == "cap" and (ab.get("strength") is None or ab.get("power") is None):
+            from .adequacy import memory_estimate, physical_memory_error
             from .simulation import Setup
+            # the tuning builds the set-up (psi0, V): judged from the grid's
+            # shape first, a grid no machine holds is one line, not an allocation
+            error = physical_memory_error(memory_estimate(self)["estimate_bytes"])
+            if error is not None:
+                raise error
             Setup(self)
         return self
 

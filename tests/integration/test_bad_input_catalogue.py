@@ -105,7 +105,15 @@ for command in ("run", "check", "submit", "levels"):
               "packet": {"center": [-10.0, 0.0, 0.0], "width": [2.0, 2.0, 2.0],
                          "momentum": [1.0, 0.0, 0.0]},
               "potential": None, "detector": None})
+CAP = {"absorber": {"kind": "cap", "thickness": 8.0}}
 for command in ("run", "check", "submit"):
+    # the absorber's tuning builds the set-up while the study is read: judged first
+    case("sizes", f"{command}-points-1e30-with-absorber-tuning", JOB_COMMANDS[command], "grid",
+         "memory", job={**CAP, "grid": {"x": {"points": 10**30}}, "detector": None,
+                        "sweep": {"potential.0.height": [0.4, 0.5]}})
+    # momenta and extents no count of points holds: said, not overflowed
+    case("sizes", f"{command}-momentum-1e308", JOB_COMMANDS[command], "grid.x.points", "more than",
+         job={"packet": {"momentum": -1e308}})
     case("sizes", f"{command}-sweep-1e9-values", JOB_COMMANDS[command], "sweep",
          job={"sweep": {"potential.0.height": {"start": 0.1, "stop": 1.0, "num": 10**9}}})
     case("sizes", f"{command}-sweep-1000-cubed", JOB_COMMANDS[command], "sweep",
@@ -326,6 +334,9 @@ def test_bad_input(item: Case, tmp_path, good_result, monkeypatch, capsys):
     result = tmp_path / "result.nc"
     shutil.copy(good_result, result)
     damaged = item.prepare(tmp_path, result) if item.prepare else result
+    # an earlier result in the output folder: a bad input must leave it alone
+    (tmp_path / "out").mkdir()
+    shutil.copy(good_result, tmp_path / "out" / "earlier.nc")
     before = _fingerprint(tmp_path)
 
     argv = _fill(item.argv, {"job": job, "result": result, "damaged": damaged, "tmp": tmp_path})
