@@ -225,7 +225,7 @@ def _check(args) -> int:
         validate_tolerance(args.tolerance)      # before anything is computed
     study = load_study(args.job, args.set)
     progress = None
-    if len(study.runs) > 1 and not args.json:
+    if len(study.runs) > 1 and not args.json and sys.stderr.isatty():   # a log keeps no \r counter
         def progress(n, total):
             print(f"\rcheck: point {n + 1}/{total}", end="", file=sys.stderr, flush=True)
     report = check_study(study, trial_seconds=args.trial_seconds, progress=progress)

@@ -167,6 +167,9 @@ job_case("fields", "detector-names-repeat", {"detector": [{"name": "d", "x": 10.
 job_case("fields", "precision-unknown", {"evolve": {"precision": "quad"}}, "evolve.precision", "double")
 job_case("fields", "title-a-number", {"title": 12}, "title")
 job_case("fields", "sweep-empty-list", {"sweep": {"potential.0.height": []}}, "sweep")
+# an integer beyond any float in a range (numpy made an object array of 10**30)
+job_case("fields", "sweep-range-start-1e400", {"sweep": {"potential.0.height": {
+    "start": 10**400, "stop": 10**401, "num": 2}}}, "potential.0.height.start", "1.8e308")
 job_case("fields", "sweep-unknown-key", {"sweep": {"potential.0.heigth": [0.1, 0.2]}},
          "potential.0.heigth", "'height'")
 job_case("fields", "sweep-zip-lengths-differ", {"sweep": {"mode": "zip", "potential.0.height": [0.1, 0.2],

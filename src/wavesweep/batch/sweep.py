@@ -89,9 +89,18 @@ def _values(key: str, spec) -> list:
             start, stop, num = spec["start"], spec["stop"], spec["num"]
         except KeyError as e:
             raise JobError(f"{where}.{e.args[0]}", "missing; a range is { start, stop, num }") from None
+        bounds = {}
         for k, v in (("start", start), ("stop", stop)):
-            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+            if isinstance(v, bool) or not isinstance(v, (int, float)):
                 raise JobError(f"{where}.{k}", f"must be a number, got {v!r}")
+            try:   # an integer beyond int64 would make numpy's range an object array
+                bounds[k] = float(v)
+            except OverflowError:
+                raise JobError(f"{where}.{k}", "an integer beyond the range of numbers "
+                                               "(about 1.8e308); give a number") from None
+            if not math.isfinite(bounds[k]):
+                raise JobError(f"{where}.{k}", f"must be a finite number, got {v!r}")
+        start, stop = bounds["start"], bounds["stop"]
         if isinstance(num, bool) or not isinstance(num, int) or num < 1:
             raise JobError(f"{where}.num", f"must be a positive integer, got {num!r}")
         if num > MAX_RUNS:   # before any array of that length exists
