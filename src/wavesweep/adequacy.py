@@ -1463,20 +1463,33 @@ def run_time_finding(setup, seconds: float = 1.0) -> Finding:
     per_step, per_sample, n = trial_costs(setup, seconds)
     n_samples = setup.total_steps // setup.sample_steps + 1
     total = per_step * setup.total_steps + per_sample * n_samples
-    return Finding("run time", "ok",
-                   f"{per_step * 1e3:.3g} ms per step over {n} trial steps and {per_sample * 1e3:.3g} ms per "
-                   f"sample; {setup.total_steps} steps and {n_samples} samples: about {human_seconds(total)}",
+    msg = (f"{per_step * 1e3:.3g} ms per step over {n} trial steps and {per_sample * 1e3:.3g} ms per "
+           f"sample; {setup.total_steps} steps and {n_samples} samples: about {human_seconds(total)}")
+    long = total > LONG_RUN_SECONDS
+    if long:
+        msg += ("; a run this long is best queued (wavesweep submit; work checkpoints it) -- "
+                "check evolve.duration and evolve.dt")
+    return Finding("run time", "warn" if long else "ok", msg,
                    {"seconds_per_step": per_step, "seconds_per_sample": per_sample,
                     "estimate_seconds": total})
 
 
+# A run estimated above a week is told (a duration or dt off by a factor
+# of 1000 looks like this); it still runs: long runs are legitimate.
+LONG_RUN_SECONDS = 7 * 86400.0
+
+
 def human_seconds(seconds: float) -> str:
-    """A duration as people read it: 3.2 s, 41 s, 17 min, 2.5 h."""
+    """A duration as people read it: 3.2 s, 41 s, 17 min, 2.5 h, 9.3 days, 2.1e+04 years."""
     if seconds < 90:
         return f"{seconds:.2g} s" if seconds < 10 else f"{seconds:.0f} s"
     if seconds < 5400:
         return f"{seconds / 60:.0f} min"
-    return f"{seconds / 3600:.1f} h"
+    if seconds < 3 * 86400:
+        return f"{seconds / 3600:.1f} h"
+    if seconds < 365.25 * 86400:
+        return f"{seconds / 86400:.1f} days"
+    return f"{seconds / (365.25 * 86400):.3g} years"
 
 
 def assess(setup) -> list[Finding]:

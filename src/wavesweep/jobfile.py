@@ -731,8 +731,18 @@ def _face_names_of(grid) -> list[str]:
     return face_names(_G)
 
 
+# Step counts are exact in float64 times (t = n dt) up to 2^53; no run comes
+# near it (1e15 steps of a 64-point grid take a year), so beyond it is a typo.
+MAX_STEPS = 2**53
+
+
 def _steps(value, dt, field, units) -> int:
-    n = round(value / dt)
+    ratio = value / dt
+    if not ratio <= MAX_STEPS:    # NaN too
+        raise JobError(field, f"{ratio:.3g} time steps of dt = {dt / units.factor('time'):g}; a run counts "
+                              f"at most 2^53 ({MAX_STEPS:.2g}) steps; use a larger evolve.dt or a shorter "
+                              "duration")
+    n = round(ratio)
     if n < 1 or abs(n * dt - value) > 1e-9 * max(abs(value), dt):
         lo = max(1, math.floor(value / dt)) * dt
         hi = math.ceil(value / dt) * dt
@@ -740,6 +750,16 @@ def _steps(value, dt, field, units) -> int:
         raise JobError(field, f"must be a whole number of time steps (dt = {dt / tf:g}), "
                               f"got {value / tf:g}; use {lo / tf:g} or {hi / tf:g}")
     return n
+
+
+def _divisor_near(total: int, target: int, tries: int = 100_000) -> int | None:
+    """The largest divisor of ``total`` at most ``target``, searched over
+    ``tries`` candidates below it (a prime count of 1e13 steps would
+    otherwise take 1e10 trial divisions); None when none is that close."""
+    for k in range(target, max(0, target - tries), -1):
+        if total % k == 0:
+            return k
+    return None
 
 
 def _job_number(x: float) -> float:
@@ -764,9 +784,10 @@ def _record(raw, units, evolve) -> dict:
         # default: about 1000 samples (at least), on whole steps that divide
         # the duration, so that the last sample falls at the end (a default
         # that did not divide it was refused as if the user had given it)
-        k = max(1, total // 1000)
-        while total % k:
-            k -= 1
+        k = _divisor_near(total, max(1, total // 1000))
+        if k is None:
+            raise JobError("record.every", f"no whole number of steps near {total // 1000} divides the "
+                                           f"run's {total} steps; give record.every")
         t["every"] = _job_number(k * dt / units.factor("time"))
     every = units.to_atomic(t["every"], "time", "record.every")
     k = _steps(every, dt, "record.every", units)

@@ -122,6 +122,14 @@ for command in ("run", "check", "submit"):
                         "packet.momentum": {"start": 0.5, "stop": 1.5, "num": 1000}}})
 
 
+# steps beyond exact counting (a hang in the default sampling, an attribute
+# netCDF cannot store); a prime step count has no default sampling near
+# duration / 1000 (the search for one took 1e10 divisions)
+job_case("sizes", "duration-1e30", {"evolve": {"duration": 1e30}, "record": None}, "evolve.duration", "2^53")
+job_case("sizes", "prime-step-count", {"evolve": {"duration": 200000033 * 0.05}, "record": None},
+         "record.every", "200000033")
+
+
 # -- job fields: wrong types, non-finite numbers, out-of-range values ---------------
 NAN, INF = float("nan"), float("inf")
 POSITIVE = ["grid.x.points", "evolve.dt", "evolve.duration", "packet.width", "record.every",
