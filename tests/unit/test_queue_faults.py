@@ -319,3 +319,34 @@ def test_a_twin_whose_run_fails_is_computed_in_its_own_study(tmp_path):
     q.fail(first["study"], first["run_id"], "w1", "norm grew")
     second = q.claim("w2")
     assert second is not None and second["study"] == "b"
+
+
+def test_a_dask_task_stopped_by_a_full_disk_comes_back_queued_with_its_reason(tmp_path, monkeypatch):
+    """The Dask driver settles a task from what it returns: the same
+    outcome handling gives it the reason and the stop-claiming mark."""
+    pytest.importorskip("distributed")
+    from wavesweep.batch.executors import cluster
+
+    class Stub:
+        def put(self, msg):
+            pass
+
+        def is_set(self):
+            return False
+
+    real = cluster._TaskBooks
+
+    def books(topic, stop_name):      # no cluster: the books without their distributed queue and event
+        b = real.__new__(real)
+        b.progress, b.stop, b.end, b._checked, b._stopped = Stub(), Stub(), None, 0.0, False
+        return b
+
+    monkeypatch.setattr(cluster, "_TaskBooks", books)
+    q = Queue(tmp_path / "root")
+    q.submit(study("s", [2.0]))
+    no_room_after(monkeypatch, frames=2)
+    claim = q.claim("host:1:dask", lease_seconds=60)
+    end = cluster._task(claim, WorkerSettings(checkpoint_seconds=NEVER, heartbeat_seconds=60.0), "t", "s")
+    assert end["outcome"] == DISK_FULL and end["state"] == "queued"
+    assert end["reason"].startswith("disk full: cannot write the result ")
+    assert q.runs()[0]["state"] == "running"      # the driver, not the task, settles it

@@ -812,7 +812,6 @@ class Queue:
         sql = "study = ? AND run_id = ? AND state = 'running' AND worker = ?"
         return (sql + " AND executions = ?", (execution,)) if execution is not None else (sql, ())
 
-    @_room_for_the_queue
     def heartbeat(self, study, run_id, worker, step=None, total=None, rate=None,
                   execution: int | None = None) -> bool:
         """Report that ``worker`` is alive on the run, with its progress
@@ -1177,7 +1176,10 @@ class Queue:
         :meth:`runs`), one consistent snapshot.  With ``verify``, done runs
         whose result file is missing or unreadable become failed first."""
         if verify:
-            self.verify()
+            try:
+                self.verify()
+            except DiskFull:   # no room to record a verdict: the counts are still worth showing
+                pass
         now = self._clock()
         with self._read() as c:
             names = [r[0] for r in c.execute("SELECT name FROM studies ORDER BY submitted, name")]
