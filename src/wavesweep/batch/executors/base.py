@@ -139,7 +139,13 @@ def execute_claim(queue, claim: dict, worker: str, settings: WorkerSettings,
     result = Path(claim["result"])
     log_part = result.with_name(f"{run_id}.log.part")
     log_final = Path(claim["log"])
-    result.parent.mkdir(parents=True, exist_ok=True)
+    try:
+        result.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        full = _disk_full_of(e, result)
+        if full is None:
+            raise
+        return _park(queue, claim, worker, full, log_part)
     _log(log_part, f"attempt {claim['attempt']} on {worker} (pid {os.getpid()})")
 
     progress = {"step": 0, "total": None, "rate": None}
@@ -256,9 +262,17 @@ def execute_batch(queue, claims: list[dict], worker: str, settings: WorkerSettin
         return [execute_claim(queue, claims[0], worker, settings, stop_requested)]
     n = len(claims)
     parts, finals, results = [], [], []
+    try:
+        for c in claims:
+            Path(c["result"]).parent.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        full = _disk_full_of(e, c["result"])
+        if full is None:
+            raise
+        return [_park(queue, c, worker, full, Path(c["result"]).with_name(f"{c['run_id']}.log.part"))
+                for c in claims]
     for c in claims:
         result = Path(c["result"])
-        result.parent.mkdir(parents=True, exist_ok=True)
         part = result.with_name(f"{c['run_id']}.log.part")
         _log(part, f"attempt {c['attempt']} on {worker} (pid {os.getpid()}), in a batch of {n}")
         parts.append(part)
