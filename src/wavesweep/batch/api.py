@@ -91,12 +91,6 @@ def work(root=None, workers: int = 1, until: str | None = None, executor="local"
     cls = EXECUTORS[executor] if isinstance(executor, str) else executor
     # before any worker starts: a read-only root would make each of them crash
     queue.check_writable(sorted({r["study"] for r in queue.runs() if r["state"] == "queued"}))
-    if not queue.keep_reserve():
-        from ..errors import DiskFull
-        from ..io.diskspace import free_bytes
-        from .queue import RESERVE_BYTES
-        raise DiskFull(queue.root, free_bytes(queue.root), RESERVE_BYTES, what="the queue folder",
-                       need="the queue needs a reserve of", basis="to record runs' ends when the disk fills")
     since = queue.last_event()
     if dask is not None:
         from .executors.cluster import DaskExecutor
@@ -104,7 +98,19 @@ def work(root=None, workers: int = 1, until: str | None = None, executor="local"
         ex = DaskExecutor(queue.root, address=dask, settings=WorkerSettings(until=deadline, **settings))
     else:
         ex = cls(queue.root, workers=workers, settings=WorkerSettings(until=deadline, **settings))
-    out = ex.drain()
+    had_reserve = queue.reserve_path.exists()
+    if not queue.keep_reserve():
+        from ..errors import DiskFull
+        from ..io.diskspace import free_bytes
+        from .queue import RESERVE_BYTES
+        raise DiskFull(queue.root, free_bytes(queue.root), RESERVE_BYTES, what="the queue folder",
+                       need="the queue needs a reserve of", basis="to record runs' ends when the disk fills")
+    try:
+        out = ex.drain()
+    except JobError:   # bad input found by the executor (a --dask address): ROOT as it was
+        if not had_reserve:
+            queue.release_reserve()
+        raise
     # the local executor names its workers HOST:PID:i after this process
     prefix = f"{socket.gethostname()}:{os.getpid()}:" if issubclass(cls, LocalExecutor) else None
     done = queue.drain_summary(since, worker_prefix=prefix)
