@@ -113,7 +113,7 @@ class BatchedRun:
         self.fft, self.threads = fft, threads
 
     def run(self, paths, progress: bool = False, on_sample=None, checkpoints=None, should_stop=None,
-            on_end=None) -> list:
+            on_end=None, on_resume=None) -> list:
         """Propagate every member and write its result to ``paths[i]``.
 
         ``checkpoints`` (one :class:`~wavesweep.io.checkpoint.CheckpointPolicy`
@@ -123,7 +123,9 @@ class BatchedRun:
         total, rate)`` follows every sample of member ``i``;
         ``should_stop(i)`` is asked after every sample before the last, and
         True ends that member with a checkpoint (:class:`RunInterrupted`);
-        ``on_end(i, outcome)`` is called as soon as member ``i`` ends.
+        ``on_end(i, outcome)`` is called as soon as member ``i`` ends;
+        ``on_resume(i, step, total)`` when member ``i`` continues from a
+        checkpoint, before its first step.
 
         An error that is not a member's own (a full disk, memory, a bug)
         ends the members of the group it struck, with that exception as
@@ -154,6 +156,8 @@ class BatchedRun:
                     end(i, ResultExists(path))
                 else:
                     books[i] = book
+                    if not book.fresh and on_resume is not None:
+                        on_resume(i, int(book.steps), int(sim.setup.total_steps))
             groups: dict[int, list[int]] = {}
             for i, book in books.items():
                 groups.setdefault(int(book.steps), []).append(i)
@@ -270,7 +274,7 @@ class BatchedRun:
                 lane, j = where[k]
                 try:
                     end(k, sims[k]._close(group_books[k], lane.psi[j], int(lane.prop.steps_done)))
-                except ResultExists as e:
+                except (ResultExists, RunFailed) as e:   # a full disk is this member's end, not the group's
                     sims[k]._abort(group_books[k], e)
                     end(k, e)
         finally:

@@ -268,18 +268,26 @@ def _submit(args) -> int:
 
 def _work(args) -> int:
     from .batch.api import format_work, work
+    from .errors import DiskFull
 
     if args.batch < 1:
         raise JobError("--batch", f"{args.batch} runs per batch; give 1 (no batching) or more")
-    out = work(args.root, args.workers, args.until, checkpoint_seconds=60.0 * args.checkpoint_minutes,
-               lease_seconds=args.lease_seconds, max_attempts=args.max_attempts, batch=args.batch,
-               dask=args.dask)
+    try:
+        out = work(args.root, args.workers, args.until, checkpoint_seconds=60.0 * args.checkpoint_minutes,
+                   lease_seconds=args.lease_seconds, max_attempts=args.max_attempts, batch=args.batch,
+                   dask=args.dask)
+    except DiskFull as e:   # before any claim: nothing ran
+        print(f"wavesweep work: {_one_line(e.reason)}; nothing claimed", file=sys.stderr)
+        return EXIT_FAIL
     if out.get("until_passed"):
         print(f"wavesweep work: --until {args.until} has passed; nothing claimed", file=sys.stderr)
     elif out.get("stopped"):
         print("wavesweep work: stopped; running runs were checkpointed and requeued", file=sys.stderr)
+    if out.get("disk_full_reason"):
+        print(f"wavesweep work: {_one_line(out['disk_full_reason'])}", file=sys.stderr)
     print(format_work(out), flush=True)    # the drain's summary: counts and where the results are
-    return EXIT_OK
+    # a drain cut short by its environment (a full disk, a dead worker) is not a success
+    return EXIT_OK if out.get("ok", True) else EXIT_FAIL
 
 
 def _status(args) -> int:

@@ -6,13 +6,17 @@ gathers every independent error in an :class:`ErrorCollector` and raises them
 together as :class:`JobErrors` (a JobError itself, so callers that catch
 JobError keep working), and the CLI prints one line each.  ``RunFailed`` is a
 numerical failure of a run (NaN, norm blow-up): a result with a reason, so a
-queue can record it and go on.
+queue can record it and go on.  ``DiskFull`` is a run stopped by a full
+disk or an exhausted quota: a RunFailed (the command exits 1: the
+environment failed, not the input), which a queue does not count against the
+run (it goes back to the queue and resumes from its last checkpoint).
 """
 from __future__ import annotations
 
 from contextlib import contextmanager
 
-__all__ = ["JobError", "JobErrors", "ErrorCollector", "combine_errors", "RunFailed", "RunInterrupted"]
+__all__ = ["JobError", "JobErrors", "ErrorCollector", "combine_errors", "RunFailed", "DiskFull",
+           "RunInterrupted"]
 
 
 class JobError(ValueError):
@@ -128,6 +132,51 @@ class RunFailed(RuntimeError):
         self.step = step
         self.time = time
         super().__init__(reason)
+
+
+class DiskFull(RunFailed):
+    """A write failed because the filesystem (or the user's quota) had no room.
+
+    Parameters
+    ----------
+    path : the file that could not be written.
+    free_bytes : bytes free for this user on that filesystem when the write
+        failed (``os.statvfs``: ``f_bavail * f_frsize``), None if unknown.
+    need_bytes : bytes the write still needed, as far as the writer knows
+        them from the shapes of what it writes (an estimate before
+        compression), None if unknown.
+    what : what was being written ("the result", "the checkpoint", "the queue").
+    need, basis : how the message says ``need_bytes`` and how it was found.
+
+    ``reason`` is one line: ``"disk full: cannot write the result '...':
+    12 KiB free there, and the rest of its data is about 1.4 MiB (from its
+    shapes, before compression); free space there (or write elsewhere) and
+    run again"``.
+    """
+
+    def __init__(self, path, free_bytes=None, need_bytes=None, what: str = "the result",
+                 need: str = "the rest of its data is about",
+                 basis: str = "from its shapes, before compression", step: int | None = None):
+        self.path = str(path)
+        self.free_bytes = None if free_bytes is None else int(free_bytes)
+        self.need_bytes = None if need_bytes is None else int(need_bytes)
+        self.what = what
+        room = [] if self.free_bytes is None else [f"{human_bytes(self.free_bytes)} free there"]
+        if self.need_bytes is not None:
+            room.append(f"{need} {human_bytes(self.need_bytes)}" + (f" ({basis})" if basis else ""))
+        text = f"disk full: cannot write {what} {self.path!r}"
+        if room:
+            text += ": " + ", and ".join(room)
+        super().__init__(text + "; free space there (or write elsewhere) and run again", step=step)
+
+
+def human_bytes(n: float) -> str:
+    """A size as people read it: 812 B, 12.0 KiB, 1.4 MiB, 3.2 GiB."""
+    n = float(n)
+    for unit, size in (("TiB", 2**40), ("GiB", 2**30), ("MiB", 2**20), ("KiB", 2**10)):
+        if abs(n) >= size:
+            return f"{n / size:.3g} {unit}"
+    return f"{n:.0f} B"
 
 
 class RunInterrupted(RuntimeError):

@@ -24,7 +24,7 @@ from . import __version__
 from .absorbers.layers import Absorber
 from .adequacy import dynamics, representability
 from .absorbers.tuning import tune_cap_strength as _tune_cap_strength
-from .errors import JobError, RunFailed, RunInterrupted
+from .errors import DiskFull, JobError, RunFailed, RunInterrupted
 from .fft import make_transform
 from .grid import Axis, Grid
 from .hamiltonian import Hamiltonian, static_potential_of
@@ -263,7 +263,7 @@ class Simulation:
         return Path(outdir) / f"{self.job.name}-{self.job.run_id}.nc"
 
     def run(self, outdir=None, path=None, progress: bool = True, on_sample=None,
-            checkpoint=None, should_stop=None) -> Path:
+            checkpoint=None, should_stop=None, on_resume=None) -> Path:
         """Propagate and write the result; returns the file path.
 
         ``on_sample(step, total, rate)`` is called after every sample (for
@@ -285,7 +285,12 @@ class Simulation:
         ``should_stop()`` is asked after every sample before the last; when
         it returns True the run saves a checkpoint (if it has a policy) and
         raises :class:`~wavesweep.errors.RunInterrupted` with the
-        checkpoint's path (None without a policy) and the step reached."""
+        checkpoint's path (None without a policy) and the step reached.
+        ``on_resume(step, total)`` is called when the run continues from a
+        checkpoint, before its first step.
+
+        A full disk (or quota) raises :class:`~wavesweep.errors.DiskFull`
+        (a RunFailed): the partial file is removed, the last checkpoint kept."""
         s = self.setup
         path = Path(path) if path else self.output_path(outdir)
         book = self._open(path, checkpoint)
@@ -293,6 +298,8 @@ class Simulation:
             raise ResultExists(path)
         bar = None
         try:   # from here on, anything that goes wrong removes the partial file
+            if not book.fresh and on_resume is not None:
+                on_resume(int(book.steps), int(s.total_steps))
             prop = s.make_propagator()
             observer = s.make_observer()
             psi, book.psi = prop.load(book.psi), None
@@ -397,9 +404,11 @@ class Simulation:
         return out
 
     def _abort(self, book, exc: BaseException) -> None:
-        """The partial result goes; a failed or finished run keeps no checkpoint."""
+        """The partial result goes; a failed or finished run keeps no
+        checkpoint (a run stopped by a full disk keeps it: it resumes)."""
         book.writer.abort()
-        if book.store is not None and isinstance(exc, (RunFailed, ResultExists)):
+        if book.store is not None and isinstance(exc, (RunFailed, ResultExists)) \
+                and not isinstance(exc, DiskFull):
             book.store.discard()   # a failed or finished run has nothing to resume
 
     def _expected_position(self, steps: int) -> tuple[int, int]:
@@ -522,6 +531,9 @@ class Simulation:
             "detector_amplitude": s.grid.ndim == 1,
             "snapshot_psi": bool(s.job.table["record"].get("snapshot_psi")),
             "final_state": bool(s.job.table["record"]["final_state"]),
+            # the run's totals, so that a full disk can say how much the file still needs
+            "expected": {"samples": -(-s.total_steps // s.sample_steps) + 1,
+                         "snapshots": s.total_steps // s.snapshot_steps + 1},
         }
 
     def _attrs(self) -> dict:

@@ -14,10 +14,7 @@ import sys
 import time
 from pathlib import Path
 
-import numpy as np
-import pytest
 import tomli_w
-import xarray as xr
 
 from wavesweep.batch.queue import Queue
 
@@ -109,44 +106,6 @@ def test_until_in_the_past_claims_nothing(tmp_path):
     assert "nothing claimed" in w.stderr
     assert states(root)["studies"]["study"]["queued"] == 2
     assert all(r["executions"] == 0 for r in Queue(root).runs("study"))
-
-
-@pytest.mark.slow
-def test_kill_9_of_a_worker_then_work_again(tmp_path):
-    """A worker killed with SIGKILL in the middle of a run: the next `work`
-    (after the lease) requeues it, it resumes from its checkpoint, and its
-    result equals an uninterrupted run of the same job."""
-    root, table = long_study(tmp_path, "long", 4096, 0.001, 16.0)   # 16000 steps
-    proc = start_work(root, "--checkpoint-minutes", "0.005", "--lease-seconds", "2",
-                      start_new_session=True)
-    (run,) = Queue(root).runs("long")
-    ckpt_dir = root / "long"
-    deadline = time.time() + 120
-    while time.time() < deadline:            # wait until it has checkpointed at least once
-        if any(p.name.startswith(run["run_id"]) and "ckpt" in p.name for p in ckpt_dir.iterdir()):
-            break
-        time.sleep(0.1)
-    else:
-        proc.kill()
-        pytest.fail("no checkpoint appeared")
-    os.killpg(proc.pid, signal.SIGKILL)      # the worker and its parent, no clean-up
-    proc.wait()
-    assert Queue(root).runs("long")[0]["state"] == "running"     # as a power cut leaves it
-    time.sleep(2.5)                                            # the lease expires
-    again = cli("work", "--root", root, "--lease-seconds", "2")
-    assert again.returncode == 0, again.stderr
-    (run,) = Queue(root).runs("long")
-    assert run["state"] == "done" and run["executions"] == 2
-    resumed = xr.load_dataset(root / "long" / f"{run['run_id']}.nc")
-    out = tmp_path / "plain"
-    plain_run = cli("run", write(tmp_path, table, "long.toml"), "-o", out, "--quiet")
-    plain = xr.load_dataset(Path(plain_run.stdout.strip().splitlines()[-1]))
-    assert resumed.attrs["run_id"] == plain.attrs["run_id"]
-    np.testing.assert_array_equal(resumed.snapshot_time, plain.snapshot_time)
-    np.testing.assert_array_equal(resumed.time, plain.time)
-    for name in plain.data_vars:
-        np.testing.assert_allclose(resumed[name].values, plain[name].values, rtol=0, atol=1e-12,
-                                   err_msg=name)
 
 
 def test_an_invalid_sweep_point_queues_nothing(tmp_path):

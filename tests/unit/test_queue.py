@@ -582,8 +582,10 @@ def test_drain_summary_counts_what_one_drains_workers_did(tmp_path):
     clock.t += 1000
     q.requeue_stale(60)                        # the earlier claim: requeued, not this drain's worker
     assert q.drain_summary(mark, worker_prefix="host:7:") == {
-        "done": 1, "failed": 1, "requeued": 1, "studies": ["a"]}
+        "done": 1, "failed": 1, "requeued": 1, "disk_full": 0, "disk_full_reason": None, "shared": 0,
+        "studies": ["a"]}
     everyone = q.drain_summary(mark)
     assert (everyone["done"], everyone["failed"], everyone["requeued"]) == (2, 1, 1)
-    assert q.drain_summary(q.last_event()) == {"done": 0, "failed": 0, "requeued": 0, "studies": []}
+    assert q.drain_summary(q.last_event()) == {"done": 0, "failed": 0, "requeued": 0, "disk_full": 0,
+                                               "disk_full_reason": None, "shared": 0, "studies": []}
     assert earlier["run_id"] in {r["run_id"] for r in q.runs() if r["state"] == "queued"}

@@ -61,9 +61,19 @@ def work(root=None, workers: int = 1, until: str | None = None, executor="local"
 
     Returns the executor's summary with what this drain did added:
     ``done``, ``failed`` and ``requeued`` (runs its workers finished,
-    failed, or released when stopped, plus the runs of dead workers that
-    it requeued or failed at the start), ``studies`` (the studies they
-    belong to), ``folders`` (where their results are) and ``root``.
+    failed, or released when stopped or for a full disk, plus the runs of
+    dead workers that it requeued or failed), ``disk_full`` (runs released
+    for a full disk, their attempts not counted) with ``disk_full_reason``,
+    ``shared`` (runs of other studies done with a result computed here),
+    ``dead_workers`` (workers of this drain that died, each with the runs it
+    held, requeued at once), ``studies`` (the studies they belong to),
+    ``folders`` (where their results are), ``root``, and ``ok``: False when
+    the drain was cut short by its environment (a full disk, a dead
+    worker), which `work` reports with exit status 1.
+
+    A disk with no room for the queue's reserve (:data:`~.queue.RESERVE_BYTES`
+    kept in ``ROOT/.disk-reserve``, so that a full disk can still be recorded)
+    is a :class:`~wavesweep.errors.DiskFull` before any run is claimed.
     ``dask``: drain on the Dask cluster at that scheduler address (or
     ``local:N``, a LocalCluster of N worker processes) instead."""
     import socket
@@ -88,7 +98,19 @@ def work(root=None, workers: int = 1, until: str | None = None, executor="local"
         ex = DaskExecutor(queue.root, address=dask, settings=WorkerSettings(until=deadline, **settings))
     else:
         ex = cls(queue.root, workers=workers, settings=WorkerSettings(until=deadline, **settings))
-    out = ex.drain()
+    had_reserve = queue.reserve_path.exists()
+    if not queue.keep_reserve():
+        from ..errors import DiskFull
+        from ..io.diskspace import free_bytes
+        from .queue import RESERVE_BYTES
+        raise DiskFull(queue.root, free_bytes(queue.root), RESERVE_BYTES, what="the queue folder",
+                       need="the queue needs a reserve of", basis="to record runs' ends when the disk fills")
+    try:
+        out = ex.drain()
+    except JobError:   # bad input found by the executor (a --dask address): ROOT as it was
+        if not had_reserve:
+            queue.release_reserve()
+        raise
     # the local executor names its workers HOST:PID:i after this process
     prefix = f"{socket.gethostname()}:{os.getpid()}:" if issubclass(cls, LocalExecutor) else None
     done = queue.drain_summary(since, worker_prefix=prefix)
@@ -97,21 +119,42 @@ def work(root=None, workers: int = 1, until: str | None = None, executor="local"
     done["failed"] += int(stale.get("failed", 0))
     done["studies"] = sorted(set(done["studies"]) | {r["study"] for r in stale.get("runs", [])})
     done["folders"] = [str(queue.study_dir(s)) for s in done["studies"]]
-    return {**out, **done, "root": str(queue.root)}
+    dead = out.get("dead_workers") or []
+    ok = not (done["disk_full"] or out.get("disk_full_stop") or dead)
+    return {**out, **done, "dead_workers": dead, "ok": ok, "root": str(queue.root)}
 
 
 def format_work(out: dict) -> str:
-    """One line: what a drain did and where the results are."""
-    counts = f"{out.get('done', 0)} done, {out.get('failed', 0)} failed, {out.get('requeued', 0)} requeued"
+    """One line: what a drain did, what cut it short, where the results are."""
+    said = [f"{out.get('done', 0)} done, {out.get('failed', 0)} failed, {out.get('requeued', 0)} requeued"
+            + (f", {out['shared']} shared with other studies" if out.get("shared") else "")
+            + " in this drain"]
+    dead = out.get("dead_workers") or []
+    if dead:
+        ways = sorted({d["why"] for d in dead})
+        held = sum(len(d.get("runs", [])) for d in dead)
+        back = sum(int(d.get("requeued", 0)) for d in dead)
+        lost = sum(int(d.get("failed", 0)) for d in dead)
+        text = (f"{len(dead)} worker{'s' if len(dead) != 1 else ''} died ({', '.join(ways)}) holding "
+                f"{held} run{'s' if held != 1 else ''}: {back} requeued")
+        if lost:
+            text += f", {lost} failed after too many attempts"
+        if any(d.get("unrecorded") for d in dead):
+            text += "; the queue could not record it: their runs stay running until the lease lapses"
+        said.append(text)
+    if out.get("disk_full") or out.get("disk_full_stop"):
+        n = out.get("disk_full", 0)
+        said.append(f"stopped by a full disk: {n} run{'s' if n != 1 else ''} back in the queue, "
+                    "no attempt counted; free space, then work again")
     folders = out.get("folders") or []
     if len(folders) == 1:
-        where = f"results in {folders[0]}"
+        said.append(f"results in {folders[0]}")
     elif folders:
-        where = f"results in {len(folders)} study folders under {out.get('root')}"
+        said.append(f"results in {len(folders)} study folders under {out.get('root')}")
     else:
-        where = f"nothing ran; queue at {out.get('root')}"
-    hint = f"`wavesweep status --root {out.get('root')}` lists the runs"
-    return f"wavesweep work: {counts} in this drain; {where}; {hint}"
+        said.append(f"nothing ran; queue at {out.get('root')}")
+    said.append(f"`wavesweep status --root {out.get('root')}` lists the runs")
+    return "wavesweep work: " + "; ".join(said)
 
 
 def existing_queue(root=None):
@@ -139,8 +182,14 @@ def _eta(seconds) -> str:
     return f"{seconds // 3600}h{seconds % 3600 // 60:02d}m" if seconds >= 3600 else f"{seconds // 60}m{seconds % 60:02d}s"
 
 
+def _ago(seconds) -> str:
+    return "never reported" if seconds is None else f"silent for {_eta(seconds)}"
+
+
 def format_status(st: dict) -> str:
-    """Human-readable status: counts per study, then running and failed runs."""
+    """Human-readable status: counts per study, then running runs (those
+    whose lease lapsed marked, with what the next `work` does), queued runs
+    with a reason (requeued, released, a full disk) and failed runs."""
     lines = []
     states = ("queued", "running", "done", "failed", "cancelled")
     lines.append(f"{'study':<24}" + "".join(f"{s:>10}" for s in states))
@@ -153,8 +202,20 @@ def format_status(st: dict) -> str:
         for r in running:
             step, total = r.get("step") or 0, r.get("total") or 0
             pct = f"{100 * step / total:5.1f}%" if total else "   ?  "
+            if r.get("lease_lapsed"):
+                lease = r.get("lease_seconds")
+                lines.append(f"  {r['study']}/{r['run_id']}  {pct}  LEASE LAPSED: {_ago(r.get('silent_seconds'))}"
+                             f" (lease {lease:g} s) on {r.get('worker')}; its worker is gone: the next "
+                             "`wavesweep work` requeues it, resuming from its last checkpoint")
+                continue
             rate = f"{r['rate']:.0f} steps/s" if r.get("rate") else "? steps/s"
             lines.append(f"  {r['study']}/{r['run_id']}  {pct}  {rate}  eta {_eta(r.get('eta_seconds'))}")
+    waiting = [r for r in st["runs"] if r["state"] == "queued" and r.get("reason")]
+    if waiting:
+        lines.append("")
+        lines.append("queued again:")
+        for r in waiting:
+            lines.append(f"  {r['study']}/{r['run_id']}  {r['reason']}")
     failed = [r for r in st["runs"] if r["state"] == "failed"]
     if failed:
         lines.append("")

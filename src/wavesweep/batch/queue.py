@@ -49,8 +49,10 @@ every claim ever, for bookkeeping and tests.
 from __future__ import annotations
 
 import errno
+import functools
 import json
 import os
+import re
 import shutil
 import sqlite3
 import tempfile
@@ -60,15 +62,24 @@ from contextlib import contextmanager
 from datetime import datetime
 from pathlib import Path
 
-from ..errors import JobError
+from ..errors import DiskFull, JobError
+from ..io.diskspace import NO_SPACE, free_bytes, is_no_space
 
-__all__ = ["Queue", "STATES", "SCHEMA_VERSION", "check_result"]
+__all__ = ["Queue", "STATES", "SCHEMA_VERSION", "check_result", "DEFAULT_LEASE_SECONDS", "RESERVE_BYTES"]
 
 STATES = ("queued", "running", "done", "failed", "cancelled")
 SCHEMA_VERSION = 1
 DB_NAME = "queue.sqlite"
 REASON_CHARS = 500            # reasons are one line; a traceback belongs in the log
 _CHUNK = 500                  # ids per "IN (...)" query, well below SQLite's variable limit
+DEFAULT_LEASE_SECONDS = 60.0  # a claim recorded without its lease (older queues) is judged by this
+# ROOT/.disk-reserve: bytes held back so that a full disk can still be
+# recorded in the queue (a commit writes a few 4 KiB pages to the WAL; this is
+# room for some hundred of them).  Freed when SQLite reports a full disk,
+# made again by the next `work`.
+RESERVE_NAME = ".disk-reserve"
+RESERVE_BYTES = 1 << 20
+_LEASE_NOTE = re.compile(r"lease ([0-9.]+(?:e[+-]?[0-9]+)?) s")
 
 _SCHEMA = (
     """CREATE TABLE IF NOT EXISTS studies (
@@ -232,6 +243,21 @@ def root_error(root, exc: BaseException, doing: str = "use") -> JobError | None:
     else:
         return None
     return JobError("--root", f"cannot {doing} {root!r}: {why}")
+
+
+def _room_for_the_queue(method):
+    """Run a state change again once if the disk was too full to commit it
+    and the reserve (:data:`RESERVE_NAME`) could be freed for it: that a
+    run ended for a full disk must be recorded on that very disk."""
+    @functools.wraps(method)
+    def again(self, *args, **kwargs):
+        try:
+            return method(self, *args, **kwargs)
+        except DiskFull as e:
+            if e.what != "the queue" or not self.release_reserve():
+                raise
+            return method(self, *args, **kwargs)
+    return again
 
 
 def _fsync_dir(folder: Path) -> None:
@@ -427,13 +453,18 @@ class Queue:
                     c.execute("ROLLBACK")
                 raise
         except sqlite3.Error as e:    # a read-only or vanished database: nothing changed
+            if is_no_space(e):        # a full disk: said as one, never as a crash
+                raise DiskFull(self.path, free_bytes(self.root), what="the queue", need="") from None
             problem = root_error(self.root, e, "write the queue at")
             if problem is None:
                 raise
             raise problem from None
         finally:
             if not durable:
-                c.execute("PRAGMA synchronous=FULL")
+                try:
+                    c.execute("PRAGMA synchronous=FULL")
+                except sqlite3.Error:
+                    pass
 
     @contextmanager
     def _read(self):
@@ -487,6 +518,54 @@ class Queue:
             except OSError as e:
                 raise root_error(self.root, e, "write in the queue folder") from None
 
+    # ------------------------------------------------------ disk reserve
+    @property
+    def reserve_path(self) -> Path:
+        return self.root / RESERVE_NAME
+
+    def keep_reserve(self, nbytes: int = RESERVE_BYTES) -> bool:
+        """Make sure ``ROOT/.disk-reserve`` holds ``nbytes`` (allocated, not
+        sparse), so that freeing it leaves room for the queue's records when
+        the disk fills.  False when there is no room for it: the disk is
+        already full (the caller should not start work)."""
+        path = self.reserve_path
+        try:
+            if path.stat().st_size >= nbytes:
+                return True
+        except OSError:
+            pass
+        tmp = path.with_name(f"{RESERVE_NAME}.{os.getpid()}.tmp")
+        try:
+            fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+            try:
+                try:
+                    os.posix_fallocate(fd, 0, nbytes)
+                except OSError as e:
+                    if e.errno in NO_SPACE:
+                        raise
+                    os.ftruncate(fd, 0)      # no fallocate here: write the bytes
+                    os.write(fd, b"\0" * nbytes)
+                os.fsync(fd)
+            finally:
+                os.close(fd)
+            os.replace(tmp, path)
+        except OSError as e:
+            tmp.unlink(missing_ok=True)
+            if e.errno in NO_SPACE:
+                return False
+            raise
+        return True
+
+    def release_reserve(self) -> bool:
+        """Delete the reserve (True if there was one to free)."""
+        try:
+            self.reserve_path.unlink()
+        except FileNotFoundError:
+            return False
+        except OSError:
+            return False
+        return True
+
     def last_event(self) -> int:
         """The id of the newest event (0 for none): a mark to pass to
         :meth:`drain_summary` later."""
@@ -494,21 +573,32 @@ class Queue:
 
     def drain_summary(self, since: int, worker_prefix: str | None = None) -> dict:
         """What the workers that claimed runs after event ``since`` did with
-        them: ``{"done": n, "failed": n, "requeued": n, "studies": [...]}``
-        (requeued: released when asked to stop).  ``worker_prefix`` keeps
-        only workers whose names start with it (one drain's workers, when
-        several drain the queue at once)."""
+        them: ``{"done": n, "failed": n, "requeued": n, "disk_full": n,
+        "disk_full_reason": str or None, "shared": n, "studies": [...]}``
+        (requeued: released when asked to stop or for a full disk;
+        disk_full: those released for a full disk, the last one's reason
+        beside; shared: runs of other studies that became done with a result
+        these workers computed).  ``worker_prefix`` keeps only workers whose
+        names start with it (one drain's workers, when several drain the
+        queue at once)."""
         mine, args = "", [since]
         if worker_prefix:
             mine, args = " AND substr(worker, 1, ?) = ?", [since, len(worker_prefix), worker_prefix]
+        workers = f"worker IN (SELECT worker FROM events WHERE id > ? AND old = 'queued' AND new = 'running'{mine})"
         rows = self._conn().execute(
-            "SELECT new, study, COUNT(*) FROM events WHERE id > ? AND old = 'running' "
-            "AND new IN ('done', 'failed', 'queued') AND worker IN (SELECT worker FROM events "
-            f"WHERE id > ? AND old = 'queued' AND new = 'running'{mine}) GROUP BY new, study",
-            (since, *args)).fetchall()
-        out = {"done": 0, "failed": 0, "requeued": 0, "studies": []}
-        for new, study, n in rows:
-            out["requeued" if new == "queued" else new] += int(n)
+            "SELECT new, study, note, old FROM events WHERE id > ? AND ((old = 'running' "
+            "AND new IN ('done', 'failed', 'queued')) OR (old = 'queued' AND new = 'done')) "
+            f"AND {workers} ORDER BY id", (since, *args)).fetchall()
+        out = {"done": 0, "failed": 0, "requeued": 0, "disk_full": 0, "disk_full_reason": None,
+               "shared": 0, "studies": []}
+        for new, study, note, old in rows:
+            if old == "queued":
+                out["shared"] += 1
+            else:
+                out["requeued" if new == "queued" else new] += 1
+                if new == "queued" and (note or "").startswith("disk full"):
+                    out["disk_full"] += 1
+                    out["disk_full_reason"] = note
             if study not in out["studies"]:
                 out["studies"].append(study)
         out["studies"].sort()
@@ -635,9 +725,15 @@ class Queue:
         return json.loads(row[0]) if row else None
 
     # ------------------------------------------------------- worker side
-    def claim(self, worker: str, study: str | None = None) -> dict | None:
+    @_room_for_the_queue
+    def claim(self, worker: str, study: str | None = None,
+              lease_seconds: float | None = None) -> dict | None:
         """Take the oldest queued run (of ``study``, if given) for ``worker``:
         it becomes running, ``attempts`` and ``executions`` go up by one.
+        A run whose run_id is running in another study is not taken: its
+        result is shared when that one ends (:meth:`complete`), so one run
+        id is computed once.  ``lease_seconds``, the worker's lease, is
+        recorded with the claim (for :meth:`status`).
         Returns ``{"study", "run_id", "job_toml", "params", "attempt",
         "execution", "worker", "result", "log", "checkpoint"}`` (absolute
         paths as strings), or None when nothing is queued."""
@@ -648,20 +744,22 @@ class Queue:
                 "UPDATE runs SET state = 'running', attempts = attempts + 1, "
                 "executions = executions + 1, worker = ?, heartbeat = ?, started = ?, "
                 "rate = NULL, reason = NULL "
-                f"WHERE seq = (SELECT seq FROM runs WHERE state = 'queued' {where} ORDER BY seq LIMIT 1) "
+                f"WHERE seq = (SELECT seq FROM runs WHERE state = 'queued' {where} AND {_NOT_RUNNING_ELSEWHERE} "
+                "ORDER BY seq LIMIT 1) "
                 "RETURNING study, run_id, job_toml, params, attempts, executions",
                 (worker, now, now, *args)).fetchall()   # to the end: the statement is finished
             if not row:
                 return None
             st, rid, job_toml, params, attempts, executions = row[0]
-            self._event(c, now, st, rid, "queued", "running", worker, f"attempt {attempts}")
+            self._event(c, now, st, rid, "queued", "running", worker, _claim_note(attempts, lease_seconds))
         return {"study": st, "run_id": rid, "job_toml": job_toml, "params": json.loads(params),
                 "attempt": attempts, "execution": executions, "worker": worker,
                 "result": str(self.result_path(st, rid)), "log": str(self.log_path(st, rid)),
                 "checkpoint": str(self.checkpoint_path(st, rid))}
 
+    @_room_for_the_queue
     def claim_batch(self, worker: str, limit: int, group_of, share: int = 1, window: int = 512,
-                    study: str | None = None) -> list[dict]:
+                    study: str | None = None, lease_seconds: float | None = None) -> list[dict]:
         """Claim the oldest queued run and, with it, later queued runs of
         the same study that ``group_of(job_toml)`` -> ``(key, most)`` puts
         in its group (None: never grouped), in submission order: up to
@@ -669,13 +767,14 @@ class Queue:
         the ``share``-th part of the group queued (rounded up), so that
         ``share`` workers all get some.  Only the next ``window`` queued
         runs of the study are looked at.  One transaction: two workers never
-        claim the same run.  Returns claims as :meth:`claim` does, the
-        oldest first; empty when nothing is queued."""
+        claim the same run, and a run id running in another study is left
+        queued (as in :meth:`claim`).  Returns claims as :meth:`claim` does,
+        the oldest first; empty when nothing is queued."""
         now = self._clock()
         where, args = ("AND study = ?", (study,)) if study is not None else ("", ())
         with self._write() as c:
             head = c.execute(f"SELECT seq, study, job_toml FROM runs WHERE state = 'queued' {where} "
-                             "ORDER BY seq LIMIT 1", args).fetchone()
+                             f"AND {_NOT_RUNNING_ELSEWHERE} ORDER BY seq LIMIT 1", args).fetchone()
             if head is None:
                 return []
             seqs = [head[0]]
@@ -683,7 +782,8 @@ class Queue:
             if group is not None:
                 key, most = group
                 rows = c.execute("SELECT seq, job_toml FROM runs WHERE state = 'queued' AND study = ? "
-                                 "AND seq > ? ORDER BY seq LIMIT ?", (head[1], head[0], window)).fetchall()
+                                 f"AND seq > ? AND {_NOT_RUNNING_ELSEWHERE} ORDER BY seq LIMIT ?",
+                                 (head[1], head[0], window)).fetchall()
                 mates = [seq for seq, text in rows if (group_of(text) or (None,))[0] == key]
                 take = min(limit, most, -(-(1 + len(mates)) // max(1, share)))
                 seqs += mates[:take - 1]
@@ -696,7 +796,8 @@ class Queue:
                     "RETURNING study, run_id, job_toml, params, attempts, executions",
                     (worker, now, now, seq)).fetchall()[0]
                 self._event(c, now, st, rid, "queued", "running", worker,
-                            f"attempt {attempts}" + (f", batch of {len(seqs)}" if len(seqs) > 1 else ""))
+                            _claim_note(attempts, lease_seconds)
+                            + (f", batch of {len(seqs)}" if len(seqs) > 1 else ""))
                 out.append({"study": st, "run_id": rid, "job_toml": job_toml, "params": json.loads(params),
                             "attempt": attempts, "execution": executions, "worker": worker,
                             "result": str(self.result_path(st, rid)), "log": str(self.log_path(st, rid)),
@@ -729,6 +830,7 @@ class Queue:
                 (now, step, total, rate, study, run_id, worker, *extra))
         return cur.rowcount == 1
 
+    @_room_for_the_queue
     def _finish(self, study, run_id, worker, new, sets, args, note, execution) -> bool:
         sql, extra = self._owner(execution)
         now = self._clock()
@@ -743,11 +845,63 @@ class Queue:
 
     def complete(self, study, run_id, worker, wall_seconds, execution: int | None = None) -> bool:
         """The worker's run is done (its result file is in place).  False,
-        and nothing changes, if the run is no longer this worker's."""
-        return self._finish(study, run_id, worker, "done",
-                            "finished = ?, heartbeat = ?, wall_seconds = ?, rate = NULL, "
-                            "step = COALESCE(total, step), reason = NULL, verified = NULL",
-                            (_NOW, _NOW, float(wall_seconds)), f"{float(wall_seconds):.3f} s", execution)
+        and nothing changes, if the run is no longer this worker's.  The
+        same run id queued in other studies becomes done too, sharing this
+        result (:meth:`share_result`): it is never computed twice."""
+        ok = self._finish(study, run_id, worker, "done",
+                          "finished = ?, heartbeat = ?, wall_seconds = ?, rate = NULL, "
+                          "step = COALESCE(total, step), reason = NULL, verified = NULL",
+                          (_NOW, _NOW, float(wall_seconds)), f"{float(wall_seconds):.3f} s", execution)
+        if ok:
+            self.share_result(study, run_id, worker)
+        return ok
+
+    def share_result(self, study, run_id, worker=None) -> list[str]:
+        """Give the done run ``run_id`` of ``study`` to the other studies
+        where that run id is queued: its result is hard-linked (or copied)
+        to their folders and they become done, ``reused_from`` naming
+        ``study``, as :meth:`submit` does for a run already done.  Returns
+        the studies served.  A run claimed meanwhile keeps its claim (the
+        link is undone unless that worker's own result is already there);
+        a failure to link (a full disk) leaves the run queued."""
+        c = self._conn()
+        twins = c.execute("SELECT seq, study FROM runs WHERE run_id = ? AND study != ? AND state = 'queued' "
+                          "ORDER BY seq", (run_id, study)).fetchall()
+        if not twins:
+            return []
+        source = self.result_path(study, run_id)
+        if check_result(source, run_id) is not None:
+            return []
+        row = c.execute("SELECT wall_seconds FROM runs WHERE study = ? AND run_id = ?", (study, run_id)).fetchone()
+        wall = row[0] if row else None
+        served = []
+        for seq, other in twins:
+            dst = self.result_path(other, run_id)
+            fresh_file = not os.path.lexists(dst)
+            try:
+                how = _link_or_copy(source, dst) if fresh_file else "kept"
+            except OSError:
+                continue
+            note = f"result of study {study!r} {how}"
+            now = self._clock()
+            try:
+                with self._write() as w:
+                    cur = w.execute("UPDATE runs SET state = 'done', finished = ?, wall_seconds = ?, "
+                                    "reused_from = ?, reason = NULL, verified = NULL, rate = NULL "
+                                    "WHERE seq = ? AND state = 'queued'", (now, wall, study, seq))
+                    if cur.rowcount == 1:
+                        self._event(w, now, other, run_id, "queued", "done", worker, note)
+            except DiskFull:
+                cur = None
+            if cur is not None and cur.rowcount == 1:
+                served.append(other)
+            elif fresh_file:
+                try:   # claimed meanwhile: its worker writes its own (never over an existing one)
+                    if os.path.samefile(dst, source):
+                        dst.unlink()
+                except OSError:
+                    pass
+        return served
 
     def fail(self, study, run_id, worker, reason: str, execution: int | None = None) -> bool:
         """The worker's run failed; ``reason`` is kept as one line."""
@@ -765,6 +919,7 @@ class Queue:
                             "heartbeat = ?, worker = NULL, rate = NULL, attempts = attempts - 1, "
                             "reason = ?", (_NOW, reason), reason, execution)
 
+    @_room_for_the_queue
     def requeue_stale(self, lease_seconds: float, max_attempts: int = 3) -> dict:
         """Running runs whose last heartbeat is more than ``lease_seconds``
         old lost their worker: each is requeued, or failed with "worker died
@@ -773,31 +928,73 @@ class Queue:
         "worker", "state"}]}``."""
         if not lease_seconds >= 0:
             raise ValueError(f"lease_seconds must be >= 0, got {lease_seconds!r}")
-        if isinstance(max_attempts, bool) or not isinstance(max_attempts, int) or max_attempts < 1:
-            raise ValueError(f"max_attempts must be a positive integer, got {max_attempts!r}")
+        _check_max_attempts(max_attempts)
         now = self._clock()
-        out = {"requeued": 0, "failed": 0, "runs": []}
         with self._write() as c:
             stale = c.execute("SELECT seq, study, run_id, worker, heartbeat, attempts FROM runs "
                               "WHERE state = 'running' AND (heartbeat IS NULL OR heartbeat < ?) "
                               "ORDER BY seq", (now - lease_seconds,)).fetchall()
-            for seq, st, rid, worker, beat, attempts in stale:
-                last = f"last heartbeat at {_stamp(beat)} from {worker}"
-                if attempts >= max_attempts:
-                    new = "failed"
-                    times = "1 time" if attempts == 1 else f"{attempts} times"
-                    reason = f"worker died {times} ({last})"
-                    c.execute("UPDATE runs SET state = 'failed', finished = ?, rate = NULL, "
-                              "reason = ? WHERE seq = ?", (now, reason, seq))
-                else:
-                    new = "queued"
-                    reason = f"requeued: worker stopped reporting ({last}); attempt {attempts} of {max_attempts}"
-                    c.execute("UPDATE runs SET state = 'queued', worker = NULL, rate = NULL, "
-                              "reason = ? WHERE seq = ?", (reason, seq))
-                self._event(c, now, st, rid, "running", new, worker, reason)
-                out["requeued" if new == "queued" else "failed"] += 1
-                out["runs"].append({"study": st, "run_id": rid, "worker": worker, "state": new})
+            return self._requeue_dead(c, now, stale, max_attempts, None)
+
+    @_room_for_the_queue
+    def requeue_worker(self, worker: str, why: str, max_attempts: int = 3,
+                       count_attempt: bool = True) -> dict:
+        """The runs held by ``worker``, a process known to be gone (``why``:
+        "was killed by SIGKILL", "exited with status 1"), go back to the queue
+        at once, without waiting for their lease; as in
+        :meth:`requeue_stale` the death counts as an attempt, and a run is
+        failed once ``attempts >= max_attempts``.  With ``count_attempt``
+        False (a worker stopped by a full disk before it could record its
+        runs) the runs are requeued with the reason "disk full: ...", the
+        attempt not counted.  Returns as :meth:`requeue_stale` does."""
+        _check_max_attempts(max_attempts)
+        now = self._clock()
+        with self._write() as c:
+            held = c.execute("SELECT seq, study, run_id, worker, heartbeat, attempts FROM runs "
+                             "WHERE state = 'running' AND worker = ? ORDER BY seq", (worker,)).fetchall()
+            if count_attempt:
+                return self._requeue_dead(c, now, held, max_attempts, why)
+            out = {"requeued": 0, "failed": 0, "runs": []}
+            for seq, st, rid, name, beat, attempts in held:
+                reason = f"disk full: worker {name} {why}; requeued, attempt not counted"
+                c.execute("UPDATE runs SET state = 'queued', worker = NULL, rate = NULL, "
+                          "attempts = attempts - 1, reason = ? WHERE seq = ?", (reason, seq))
+                self._event(c, now, st, rid, "running", "queued", name, reason)
+                out["requeued"] += 1
+                out["runs"].append({"study": st, "run_id": rid, "worker": name, "state": "queued"})
+            return out
+
+    def _requeue_dead(self, c, now, rows, max_attempts, why) -> dict:
+        out = {"requeued": 0, "failed": 0, "runs": []}
+        """Requeue (or fail, after ``max_attempts``) the runs of dead workers;
+        ``why`` is how the worker is known to have died, None when it only
+        stopped reporting."""
+        for seq, st, rid, worker, beat, attempts in rows:
+            last = f"last heartbeat at {_stamp(beat)} from {worker}"
+            if attempts >= max_attempts:
+                new = "failed"
+                times = "1 time" if attempts == 1 else f"{attempts} times"
+                reason = f"worker died {times} ({last}" + (f", which {why})" if why else ")")
+                c.execute("UPDATE runs SET state = 'failed', finished = ?, rate = NULL, "
+                          "reason = ? WHERE seq = ?", (now, reason, seq))
+            else:
+                new = "queued"
+                what = f"worker {worker} {why} (last heartbeat at {_stamp(beat)})" if why \
+                    else f"worker stopped reporting ({last})"
+                reason = f"requeued: {what}; attempt {attempts} of {max_attempts}"
+                c.execute("UPDATE runs SET state = 'queued', worker = NULL, rate = NULL, "
+                          "reason = ? WHERE seq = ?", (reason, seq))
+            self._event(c, now, st, rid, "running", new, worker, reason)
+            out["requeued" if new == "queued" else "failed"] += 1
+            out["runs"].append({"study": st, "run_id": rid, "worker": worker, "state": new})
         return out
+
+    def blocked(self) -> int:
+        """Queued runs that wait because their run id is running in another
+        study (they become done when it ends, or claimable if it fails)."""
+        return int(self._conn().execute(
+            "SELECT COUNT(*) FROM runs WHERE state = 'queued' AND NOT "
+            + _NOT_RUNNING_ELSEWHERE).fetchone()[0])
 
     # -------------------------------------------------------- user side
     def _select(self, c, run_ids, study, states):
@@ -875,15 +1072,32 @@ class Queue:
         return len(rows)
 
     # ------------------------------------------------------------ reading
-    def _as_dict(self, row, now) -> dict:
+    def _leases(self, c) -> dict:
+        """The lease each running run was claimed with (from its claim's
+        event note; :data:`DEFAULT_LEASE_SECONDS` when the note has none)."""
+        rows = c.execute(
+            "SELECT e.study, e.run_id, e.note FROM events AS e JOIN "
+            "(SELECT ev.study, ev.run_id, MAX(ev.id) AS id FROM events AS ev JOIN runs AS r "
+            "ON r.study = ev.study AND r.run_id = ev.run_id AND r.state = 'running' "
+            "WHERE ev.new = 'running' GROUP BY ev.study, ev.run_id) AS m ON e.id = m.id").fetchall()
+        return {(st, rid): _lease_of(note) for st, rid, note in rows}
+
+    def _as_dict(self, row, now, leases=None) -> dict:
         r = dict(zip(_RUN_COLUMNS, row))
         r.pop("seq")
         r["params"] = json.loads(r["params"])
         eta = None
-        if r["state"] == "running" and r["rate"] and r["rate"] > 0 \
+        r["lease_seconds"] = r["silent_seconds"] = None
+        r["lease_lapsed"] = False
+        if r["state"] == "running":
+            lease = (leases or {}).get((r["study"], r["run_id"]), DEFAULT_LEASE_SECONDS)
+            silent = max(0.0, now - r["heartbeat"]) if r["heartbeat"] is not None else None
+            r["lease_seconds"], r["silent_seconds"] = lease, silent
+            # its worker is gone (or hung): the next `work` requeues it
+            r["lease_lapsed"] = silent is None or silent > lease
+        if r["state"] == "running" and not r["lease_lapsed"] and r["rate"] and r["rate"] > 0 \
                 and r["total"] is not None and r["step"] is not None:
-            since = max(0.0, now - r["heartbeat"]) if r["heartbeat"] is not None else 0.0
-            eta = max(0.0, (r["total"] - r["step"]) / r["rate"] - since)
+            eta = max(0.0, (r["total"] - r["step"]) / r["rate"] - (r["silent_seconds"] or 0.0))
         r["eta_seconds"] = eta
         r["result"] = str(self.result_path(r["study"], r["run_id"])) if r["state"] == "done" else None
         r["log"] = str(self.log_path(r["study"], r["run_id"]))
@@ -893,14 +1107,19 @@ class Queue:
         """Every run (of ``study``), in submission order: ``study, run_id,
         state, params, attempts, executions, worker, heartbeat, step, total,
         rate, eta_seconds, submitted, started, finished, wall_seconds,
-        reason, reused_from, result`` (path, done runs only), ``log``.
-        Times are epoch seconds; ``eta_seconds`` (running runs reporting a
-        rate) counts from now."""
+        reason, reused_from, result`` (path, done runs only), ``log``, and for
+        running runs ``lease_seconds`` (the lease it was claimed with),
+        ``silent_seconds`` (since its last heartbeat) and ``lease_lapsed``
+        (silent longer than its lease: its worker died, and the next `work`
+        requeues it).  Times are epoch seconds; ``eta_seconds`` (running
+        runs reporting a rate, lease not lapsed) counts from now."""
         q = f"SELECT {', '.join(_RUN_COLUMNS)} FROM runs"
-        rows = self._conn().execute(q + (" WHERE study = ? ORDER BY seq" if study is not None
-                                         else " ORDER BY seq"), (study,) if study is not None else ())
+        with self._read() as c:
+            rows = c.execute(q + (" WHERE study = ? ORDER BY seq" if study is not None
+                                  else " ORDER BY seq"), (study,) if study is not None else ()).fetchall()
+            leases = self._leases(c)
         now = self._clock()
-        return [self._as_dict(row, now) for row in rows]
+        return [self._as_dict(row, now, leases) for row in rows]
 
     def run(self, study: str, run_id: str) -> dict | None:
         """One run as in :meth:`runs`, with its ``job_toml``; None if unknown."""
@@ -909,7 +1128,7 @@ class Queue:
                         "WHERE study = ? AND run_id = ?", (study, run_id)).fetchone()
         if row is None:
             return None
-        out = self._as_dict(row[:-1], self._clock())
+        out = self._as_dict(row[:-1], self._clock(), self._leases(c) if row[3] == "running" else None)
         out["job_toml"] = row[-1]
         return out
 
@@ -957,12 +1176,16 @@ class Queue:
         :meth:`runs`), one consistent snapshot.  With ``verify``, done runs
         whose result file is missing or unreadable become failed first."""
         if verify:
-            self.verify()
+            try:
+                self.verify()
+            except DiskFull:   # no room to record a verdict: the counts are still worth showing
+                pass
         now = self._clock()
         with self._read() as c:
             names = [r[0] for r in c.execute("SELECT name FROM studies ORDER BY submitted, name")]
             rows = c.execute(f"SELECT {', '.join(_RUN_COLUMNS)} FROM runs ORDER BY seq").fetchall()
-        runs = [self._as_dict(row, now) for row in rows]
+            leases = self._leases(c)
+        runs = [self._as_dict(row, now, leases) for row in rows]
         studies = {name: dict.fromkeys(STATES, 0) for name in names}
         for r in runs:
             studies.setdefault(r["study"], dict.fromkeys(STATES, 0))[r["state"]] += 1
@@ -970,3 +1193,27 @@ class Queue:
 
 
 _NOW = object()    # placeholder for "the clock's time" in _finish arguments
+
+# a queued run may be claimed unless its run id is running in another study
+# (the outer table is the queued run's; runs_by_id serves the lookup)
+_NOT_RUNNING_ELSEWHERE = ("NOT EXISTS (SELECT 1 FROM runs AS twin WHERE twin.run_id = runs.run_id "
+                          "AND twin.state = 'running')")
+
+
+def _claim_note(attempt: int, lease_seconds: float | None) -> str:
+    """The claim event's note: the attempt and the worker's lease, which
+    :meth:`Queue.status` reads back to judge whether the lease lapsed."""
+    note = f"attempt {attempt}"
+    if lease_seconds is not None:
+        note += f", lease {float(lease_seconds):g} s"
+    return note
+
+
+def _check_max_attempts(max_attempts) -> None:
+    if isinstance(max_attempts, bool) or not isinstance(max_attempts, int) or max_attempts < 1:
+        raise ValueError(f"max_attempts must be a positive integer, got {max_attempts!r}")
+
+
+def _lease_of(note) -> float:
+    found = _LEASE_NOTE.search(note or "")
+    return float(found.group(1)) if found else DEFAULT_LEASE_SECONDS

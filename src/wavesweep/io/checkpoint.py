@@ -23,7 +23,8 @@ committed in an order that is always consistent:
 
 Killed before the state's rename, the previous state still names the
 previous copy, which is still there; killed after it, the new pair is
-complete.  Temporary files and copies no state names are removed by the next
+complete.  A save that fails (a full disk: :class:`~wavesweep.errors.DiskFull`)
+removes what it had written and leaves the previous checkpoint as it was.  Temporary files and copies no state names are removed by the next
 run.
 """
 from __future__ import annotations
@@ -39,6 +40,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import JobError
+from .diskspace import disk_full_from
 from .recorder import atomic_rename, fsync_folder
 
 __all__ = ["CheckpointPolicy", "CheckpointState", "CheckpointStore", "CheckpointCorrupt",
@@ -168,11 +170,22 @@ class CheckpointStore:
             "saved_at": time.time(),
         }
         tmp = self._tmp(self.path)
-        with open(tmp, "wb") as f:
-            np.savez(f, meta=np.array(json.dumps(meta)), psi=np.ascontiguousarray(state.psi),
-                     absorbed=np.asarray(state.absorbed, dtype=np.float64))
-            f.flush()
-            os.fsync(f.fileno())
+        try:
+            with open(tmp, "wb") as f:
+                np.savez(f, meta=np.array(json.dumps(meta)), psi=np.ascontiguousarray(state.psi),
+                         absorbed=np.asarray(state.absorbed, dtype=np.float64))
+                f.flush()
+                os.fsync(f.fileno())
+        except BaseException as e:
+            # the previous state and its copy stay committed; this attempt leaves nothing
+            _unlink(tmp)
+            _unlink(copy)
+            full = disk_full_from(e, self.path, int(np.asarray(state.psi).nbytes), what="the checkpoint",
+                                  need="it needs about", basis="the size of psi") \
+                if isinstance(e, OSError) else None
+            if full is not None:
+                raise full from e
+            raise
         atomic_rename(tmp, self.path)     # the commit point
         self.generation = gen
         for old in self._leftovers(keep=copy):

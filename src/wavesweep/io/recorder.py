@@ -13,18 +13,26 @@ from such a copy at the recorded position (:meth:`ResultWriter.resume`).
 
 All values are written in the job's units; every coordinate and variable has
 ``units`` and ``long_name`` attributes (CF conventions).
+
+A write that fails for lack of room (ENOSPC / EDQUOT, or netCDF4's opaque
+"NetCDF: HDF error" on a folder found full, :mod:`wavesweep.io.diskspace`)
+raises :class:`~wavesweep.errors.DiskFull` naming the file, the bytes free
+and the bytes the rest of the file needs from its shapes; the caller's
+:meth:`ResultWriter.abort` then removes the partial file.
 """
 from __future__ import annotations
 
 import errno
 import os
 import shutil
+from contextlib import contextmanager
 from pathlib import Path
 
 import netCDF4
 import numpy as np
 
-from ..errors import JobError
+from ..errors import DiskFull, JobError
+from .diskspace import NO_SPACE, disk_full_from
 
 __all__ = ["ResultWriter", "atomic_rename", "copy_file", "fsync_folder"]
 
@@ -92,6 +100,13 @@ def copy_file(src: Path, dst: Path) -> None:
 
 
 
+def _size(path) -> int:
+    try:
+        return os.stat(path).st_size
+    except OSError:
+        return 0
+
+
 def _without_potential(layout: dict) -> dict:
     return {k: v for k, v in layout.items() if k != "potential"}
 
@@ -110,7 +125,9 @@ class ResultWriter:
         ``boundaries``: list of face names; ``potential``: static V (job units,
         full grid); ``autocorrelation``: bool; ``final_state``: bool;
         ``detector_amplitude``: bool, psi at each detector per sample (1D);
-        ``snapshot_psi``: bool, psi (float32 parts) with each snapshot.
+        ``snapshot_psi``: bool, psi (float32 parts) with each snapshot;
+        ``expected``: optional ``{"samples": n, "snapshots": m}``, the run's
+        totals, so that a full disk can be told how much the file still needs.
     attrs : global attributes written at open (the job text, units, ...).
     """
 
@@ -125,7 +142,9 @@ class ResultWriter:
         self._n_snap = 0
         self.ds = self._open("w")
         try:
-            self._define(layout, attrs)
+            potential = np.asarray(layout["potential"])
+            with self._room(potential.size * potential.itemsize):
+                self._define(layout, attrs)
         except Exception:
             self.abort()
             raise
@@ -147,8 +166,13 @@ class ResultWriter:
         self._n_time = int(n_time)
         self._n_snap = int(n_snap)
         try:
-            copy_file(Path(source), self.tmp)
+            with self._room(_size(source)):
+                copy_file(Path(source), self.tmp)
+        except DiskFull:
+            self.tmp.unlink(missing_ok=True)
+            raise
         except OSError as e:
+            self.tmp.unlink(missing_ok=True)
             raise JobError("--output", f"cannot write {str(self.tmp.parent)!r}: "
                                        f"{e.strerror or e}; choose another folder with -o") from None
         self.ds = self._open("a")
@@ -161,9 +185,53 @@ class ResultWriter:
             if mode == "w":
                 return netCDF4.Dataset(self.tmp, "w", format="NETCDF4")
             return netCDF4.Dataset(self.tmp, mode)
-        except OSError as e:  # permissions, a full disk, a folder that vanished
+        except OSError as e:  # permissions, a folder that vanished: the input's; a full disk is not
+            if e.errno in NO_SPACE:
+                raise disk_full_from(e, self.path, 0, more_bytes=self._remaining_bytes()) from None
             raise JobError("--output", f"cannot write {str(self.tmp.parent)!r}: "
                                        f"{e.strerror or e}; choose another folder with -o") from None
+
+    # -- room on the disk ----------------------------------------------------
+    def _frame_bytes(self) -> int:
+        lay = self.layout
+        s = lay["stride"]
+        frame = 4 * int(np.prod([len(np.asarray(a[1])[::s]) for a in lay["axes"]]))
+        return frame * (3 if lay.get("snapshot_psi") else 1)
+
+    def _row_bytes(self) -> int:
+        lay = self.layout
+        per_detector = 3 if lay.get("detector_amplitude") else 1
+        return 8 * (1 + len(SCALARS) + 2 + per_detector * len(lay["detectors"]) + len(lay["boundaries"]))
+
+    def _remaining_bytes(self) -> int | None:
+        """Bytes of data the file still needs from its shapes (before
+        compression): the snapshots and samples not yet written, and the
+        final state; None when the layout does not give the run's totals."""
+        expected = self.layout.get("expected")
+        if not expected:
+            return None
+        n_time, n_snap = self.position
+        rest = max(0, int(expected["snapshots"]) - n_snap) * self._frame_bytes()
+        rest += max(0, int(expected["samples"]) - n_time) * self._row_bytes()
+        if self.layout.get("final_state", True):
+            rest += 16 * int(np.prod([len(np.asarray(a[1])) for a in self.layout["axes"]]))
+        return rest
+
+    @contextmanager
+    def _room(self, need_bytes: int, target=None, what: str = "the result", **words):
+        """Turn a write failure for lack of room into DiskFull (a write of
+        about ``need_bytes`` into ``target``, default the result)."""
+        try:
+            yield
+        except (DiskFull, JobError):
+            raise
+        except (OSError, RuntimeError) as e:
+            rest = self._remaining_bytes() if target is None else None
+            full = disk_full_from(e, target or self.path, int(need_bytes), what=what,
+                                  more_bytes=max(int(need_bytes), rest or 0), **words)
+            if full is None:
+                raise
+            raise full from e
 
     @property
     def position(self) -> tuple[int, int]:
@@ -282,16 +350,21 @@ class ResultWriter:
         s = self.layout["stride"]
         cut = tuple(slice(None, None, s) for _ in range(density.ndim))
         i = self._n_snap
-        self.ds["snapshot_time"][i] = time
-        self.ds["density"][i] = density[cut].astype(np.float32, copy=False)
-        if psi is not None and "psi_snapshot_real" in self.ds.variables:
-            self.ds["psi_snapshot_real"][i] = psi.real[cut].astype(np.float32)
-            self.ds["psi_snapshot_imag"][i] = psi.imag[cut].astype(np.float32)
+        with self._room(self._frame_bytes()):
+            self.ds["snapshot_time"][i] = time
+            self.ds["density"][i] = density[cut].astype(np.float32, copy=False)
+            if psi is not None and "psi_snapshot_real" in self.ds.variables:
+                self.ds["psi_snapshot_real"][i] = psi.real[cut].astype(np.float32)
+                self.ds["psi_snapshot_imag"][i] = psi.imag[cut].astype(np.float32)
         self._n_snap += 1
 
     def flush(self) -> None:
         if not self._buf:
             return
+        with self._room(len(self._buf) * self._row_bytes()):
+            self._flush()
+
+    def _flush(self) -> None:
         i0, n = self._n_time, len(self._buf)
         ds = self.ds
         ds["time"][i0:i0 + n] = np.array([b["time"] for b in self._buf])
@@ -315,9 +388,10 @@ class ResultWriter:
         eighth of the grid at a time (no temporary of the grid's size)."""
         if "psi_real" in self.ds.variables:
             rows = max(1, psi.shape[0] // 8)   # an eighth of the grid at a time
-            for part, name in ((psi.real, "psi_real"), (psi.imag, "psi_imag")):
-                for i in range(0, psi.shape[0], rows):
-                    self.ds[name][i:i + rows] = np.multiply(part[i:i + rows], scale, dtype=np.float64)
+            with self._room(16 * psi.size):
+                for part, name in ((psi.real, "psi_real"), (psi.imag, "psi_imag")):
+                    for i in range(0, psi.shape[0], rows):
+                        self.ds[name][i:i + rows] = np.multiply(part[i:i + rows], scale, dtype=np.float64)
 
     def save_copy(self, dest: Path, tmp: Path | None = None, reopen: bool = True) -> int:
         """Flush the sample buffer, close the file and copy it to ``dest``
@@ -327,11 +401,17 @@ class ResultWriter:
         dest = Path(dest)
         tmp = Path(tmp) if tmp is not None else dest.with_name(f".{dest.name}.tmp")
         self.flush()
-        self.ds.close()
+        with self._room(0):
+            self.ds.close()
         try:
-            copy_file(self.tmp, tmp)
-            size = tmp.stat().st_size
-            atomic_rename(tmp, dest)
+            with self._room(_size(self.tmp), target=dest, what="the checkpoint's copy of the result",
+                            need="it needs about", basis="the partial result's size"):
+                copy_file(self.tmp, tmp)
+                size = tmp.stat().st_size
+                atomic_rename(tmp, dest)
+        except BaseException:
+            tmp.unlink(missing_ok=True)    # a torn copy is never left behind
+            raise
         finally:
             if reopen:
                 self.ds = self._open("a")
@@ -343,9 +423,10 @@ class ResultWriter:
         :class:`FileExistsError` raised (the temporary file stays, for
         :meth:`abort`)."""
         self.flush()
-        if attrs:
-            self.ds.setncatts({k: v for k, v in attrs.items() if v is not None})
-        self.ds.close()
+        with self._room(0):
+            if attrs:
+                self.ds.setncatts({k: v for k, v in attrs.items() if v is not None})
+            self.ds.close()
         atomic_rename(self.tmp, self.path, replace=replace)
         return self.path
 

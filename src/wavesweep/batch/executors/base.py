@@ -26,10 +26,15 @@ from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
 
-from ...errors import JobError, RunFailed, RunInterrupted
+from ...errors import DiskFull, JobError, RunFailed, RunInterrupted
 
 __all__ = ["Executor", "WorkerSettings", "execute_claim", "execute_batch", "claim_next",
-           "thread_environment"]
+           "thread_environment", "DISK_FULL"]
+
+# The state execute_claim / execute_batch return for a run stopped by a full
+# disk: it is back in the queue (queued, its attempt not counted, the reason
+# recorded) and the worker should claim nothing more.
+DISK_FULL = "disk full"
 
 
 @dataclass(frozen=True)
@@ -72,8 +77,14 @@ def thread_environment(threads: int) -> dict:
 
 
 def _log(path: Path, text: str) -> None:
-    with open(path, "a") as f:
-        f.write(f"{datetime.now().isoformat(timespec='seconds')} {text}\n")
+    """Append a line to a run's log; best effort: a log that cannot be
+    written (a full disk) never stops the run's end from being recorded
+    in the queue, which holds the reason too."""
+    try:
+        with open(path, "a") as f:
+            f.write(f"{datetime.now().isoformat(timespec='seconds')} {text}\n")
+    except OSError:
+        pass
 
 
 def _finish_log(part: Path, final: Path) -> None:
@@ -82,14 +93,44 @@ def _finish_log(part: Path, final: Path) -> None:
         with open(part, "rb") as f:
             os.fsync(f.fileno())
         os.replace(part, final)
-    except FileNotFoundError:
+    except OSError:   # missing, or a full disk: the .part stays as it is
         pass
+
+
+def _resumed(log_part: Path, step: int, total: int, checkpoint) -> None:
+    _log(log_part, f"resumed from the checkpoint {str(checkpoint)!r} at step {step} of {total}")
+
+
+def _disk_full_of(exc: BaseException, path) -> DiskFull | None:
+    """``exc`` as a DiskFull when it is one or an ENOSPC / EDQUOT /
+    SQLITE_FULL error that no writer translated (None otherwise)."""
+    from ...io.diskspace import free_bytes, is_no_space
+    if isinstance(exc, DiskFull):
+        return exc
+    if not is_no_space(exc):
+        return None
+    where = Path(getattr(exc, "filename", None) or path)
+    return DiskFull(where, free_bytes(where.parent), what="a file of the run", need="")
+
+
+def _park(queue, claim, worker, full: DiskFull, log_part, done=None) -> str:
+    """A run stopped by a full disk goes back to the queue, first in line,
+    its attempt not counted (the disk, not the run, failed), with the
+    reason; its last checkpoint is kept."""
+    if done is not None:
+        done.set()
+    _log(log_part, f"stopped: {full.reason}; back to the queue, resuming from its last checkpoint")
+    queue.release(claim["study"], claim["run_id"], worker, full.reason)
+    return DISK_FULL
 
 
 def execute_claim(queue, claim: dict, worker: str, settings: WorkerSettings,
                   stop_requested=lambda: False) -> str:
     """Run one claimed run to its end in the queue; returns the new state
-    ("done", "failed", "queued").  Never raises for a run's own failure."""
+    ("done", "failed", "queued", or :data:`DISK_FULL`: queued again, its
+    attempt not counted, because the disk is full).  Never raises for a
+    run's own failure; a queue that cannot record the end (its disk full
+    even after its reserve was freed) raises DiskFull."""
     from ...io.checkpoint import CheckpointPolicy
     from ...jobfile import job_from_dict
     from ...simulation import Simulation
@@ -98,7 +139,13 @@ def execute_claim(queue, claim: dict, worker: str, settings: WorkerSettings,
     result = Path(claim["result"])
     log_part = result.with_name(f"{run_id}.log.part")
     log_final = Path(claim["log"])
-    result.parent.mkdir(parents=True, exist_ok=True)
+    try:
+        result.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        full = _disk_full_of(e, result)
+        if full is None:
+            raise
+        return _park(queue, claim, worker, full, log_part)
     _log(log_part, f"attempt {claim['attempt']} on {worker} (pid {os.getpid()})")
 
     progress = {"step": 0, "total": None, "rate": None}
@@ -107,8 +154,12 @@ def execute_claim(queue, claim: dict, worker: str, settings: WorkerSettings,
 
     def beat():
         while not done.wait(settings.heartbeat_seconds):
-            if not queue.heartbeat(study, run_id, worker, progress["step"], progress["total"],
-                                   progress["rate"]):
+            try:
+                held = queue.heartbeat(study, run_id, worker, progress["step"], progress["total"],
+                                       progress["rate"])
+            except Exception:   # a full disk or a busy database: the next beat tries again
+                continue
+            if not held:
                 lost.set()   # requeued or cancelled elsewhere: stop at the next sample
                 return
 
@@ -129,7 +180,10 @@ def execute_claim(queue, claim: dict, worker: str, settings: WorkerSettings,
         sim = Simulation(job)
         sim.run(path=result, progress=False, on_sample=on_sample,
                 checkpoint=CheckpointPolicy(Path(claim["checkpoint"]), settings.checkpoint_seconds),
-                should_stop=should_stop)
+                should_stop=should_stop,
+                on_resume=lambda step, total: _resumed(log_part, step, total, claim["checkpoint"]))
+    except DiskFull as e:
+        return _park(queue, claim, worker, e, log_part, done)
     except RunInterrupted as e:
         done.set()
         if lost.is_set():
@@ -152,11 +206,15 @@ def execute_claim(queue, claim: dict, worker: str, settings: WorkerSettings,
                      log_part, log_final, done)
     except MemoryError:
         return _fail(queue, claim, worker, "out of memory", log_part, log_final, done)
-    except OSError as e:
-        where = f" ({e.filename})" if e.filename else ""
-        return _fail(queue, claim, worker, f"{e.strerror or e}{where}", log_part, log_final, done,
-                     traceback.format_exc())
-    except Exception as e:  # a bug: the run fails with its cause, the others go on
+    except Exception as e:
+        full = _disk_full_of(e, result)
+        if full is not None:
+            return _park(queue, claim, worker, full, log_part, done)
+        if isinstance(e, OSError):
+            where = f" ({e.filename})" if e.filename else ""
+            return _fail(queue, claim, worker, f"{e.strerror or e}{where}", log_part, log_final, done,
+                         traceback.format_exc())
+        # a bug: the run fails with its cause, the others go on
         return _fail(queue, claim, worker, f"{type(e).__name__}: {e}", log_part, log_final, done,
                      traceback.format_exc())
     done.set()
@@ -184,7 +242,8 @@ def claim_next(queue, worker: str, settings: WorkerSettings) -> list[dict]:
     """The next claims of a worker: one run, or a batch of runs that can be
     stepped together (up to ``settings.batch``); empty when none is queued."""
     from ...batched import batch_group
-    return queue.claim_batch(worker, max(1, settings.batch), batch_group, share=settings.share)
+    return queue.claim_batch(worker, max(1, settings.batch), batch_group, share=settings.share,
+                             lease_seconds=settings.lease_seconds)
 
 
 def execute_batch(queue, claims: list[dict], worker: str, settings: WorkerSettings,
@@ -203,9 +262,17 @@ def execute_batch(queue, claims: list[dict], worker: str, settings: WorkerSettin
         return [execute_claim(queue, claims[0], worker, settings, stop_requested)]
     n = len(claims)
     parts, finals, results = [], [], []
+    try:
+        for c in claims:
+            Path(c["result"]).parent.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        full = _disk_full_of(e, c["result"])
+        if full is None:
+            raise
+        return [_park(queue, c, worker, full, Path(c["result"]).with_name(f"{c['run_id']}.log.part"))
+                for c in claims]
     for c in claims:
         result = Path(c["result"])
-        result.parent.mkdir(parents=True, exist_ok=True)
         part = result.with_name(f"{c['run_id']}.log.part")
         _log(part, f"attempt {c['attempt']} on {worker} (pid {os.getpid()}), in a batch of {n}")
         parts.append(part)
@@ -222,7 +289,11 @@ def execute_batch(queue, claims: list[dict], worker: str, settings: WorkerSettin
                 if states[i] is not None or lost[i]:
                     continue
                 p = progress[i]
-                if not queue.heartbeat(c["study"], c["run_id"], worker, p["step"], p["total"], p["rate"]):
+                try:
+                    held = queue.heartbeat(c["study"], c["run_id"], worker, p["step"], p["total"], p["rate"])
+                except Exception:   # a full disk or a busy database: the next beat tries again
+                    continue
+                if not held:
                     lost[i] = True
 
     beater = threading.Thread(target=beat, name=f"heartbeat-batch-{claims[0]['run_id']}", daemon=True)
@@ -233,7 +304,10 @@ def execute_batch(queue, claims: list[dict], worker: str, settings: WorkerSettin
         """End member i in the queue the moment it ends."""
         c = claims[i]
         study, run_id = c["study"], c["run_id"]
-        if isinstance(outcome, RunInterrupted):
+        full = _disk_full_of(outcome, results[i]) if isinstance(outcome, BaseException) else None
+        if full is not None:
+            states[i] = _park(queue, c, worker, full, parts[i])
+        elif isinstance(outcome, RunInterrupted):
             if lost[i]:
                 _log(parts[i], "stopped: the queue gave this run to another worker or cancelled it")
                 states[i] = "lost"
@@ -273,9 +347,12 @@ def execute_batch(queue, claims: list[dict], worker: str, settings: WorkerSettin
             past = settings.until is not None and time.time() >= settings.until
             return stop_requested() or past or lost[i]
 
+        def on_resume(i, step, total):
+            _resumed(parts[i], step, total, claims[i]["checkpoint"])
+
         batch.run(results, on_sample=on_sample, should_stop=should_stop, on_end=finish,
                   checkpoints=[CheckpointPolicy(Path(c["checkpoint"]), settings.checkpoint_seconds)
-                               for c in claims])
+                               for c in claims], on_resume=on_resume)
     finally:
         done.set()   # an interrupt: the leases run out and the runs are requeued
     return states

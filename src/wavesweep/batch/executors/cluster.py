@@ -26,7 +26,7 @@ import time
 import uuid
 
 from ...errors import JobError
-from .base import Executor, WorkerSettings, _reason
+from .base import DISK_FULL, Executor, WorkerSettings, _reason
 
 __all__ = ["DaskExecutor", "connect"]
 
@@ -106,7 +106,7 @@ def _task(claim: dict, settings: WorkerSettings, topic: str, stop_name: str) -> 
     from .base import execute_claim
     books = _TaskBooks(topic, stop_name)
     state = execute_claim(books, claim, claim["worker"], settings, books.stop_requested)
-    return books.end or {"state": state}
+    return {**(books.end or {"state": state}), "outcome": state}
 
 
 class DaskExecutor(Executor):
@@ -138,6 +138,7 @@ class DaskExecutor(Executor):
         pending: dict = {}
         progress: dict = {}
         stopping = {"yes": False}
+        full = {"yes": False}      # a task stopped by a full disk: claim nothing more
         previous = {s: signal.getsignal(s) for s in (signal.SIGINT, signal.SIGTERM)}
         counts = {"claimed": 0}
 
@@ -146,10 +147,10 @@ class DaskExecutor(Executor):
 
         def claim_more():
             slots = max(1, sum(client.nthreads().values()))
-            while not stopping["yes"] and len(pending) < slots:
+            while not (stopping["yes"] or full["yes"]) and len(pending) < slots:
                 if st.until is not None and time.time() >= st.until:
                     return
-                claim = queue.claim(name)
+                claim = queue.claim(name, lease_seconds=st.lease_seconds)
                 if claim is None:
                     return
                 counts["claimed"] += 1
@@ -162,6 +163,8 @@ class DaskExecutor(Executor):
             if fut.status == "finished":
                 end = fut.result()
                 state = end.get("state")
+                if end.get("outcome") == DISK_FULL:
+                    full["yes"] = True
                 if state == "done":
                     queue.complete(study, run_id, name, end.get("wall_seconds", 0.0))
                 elif state == "failed":
@@ -218,4 +221,4 @@ class DaskExecutor(Executor):
             if cluster is not None:
                 cluster.close()
         return {"executor": "dask", "address": self.address, "claimed": counts["claimed"], "stale": stale,
-                "stopped": stopping["yes"]}
+                "stopped": stopping["yes"], "disk_full_stop": full["yes"]}
