@@ -77,7 +77,7 @@ EVOLVE = {
     "precision": Field("str", "double", choices=("double", "single"),
                        doc="complex128 (double) or complex64 (single) arithmetic"),
     "fft": Field("str", "auto", choices=FFT_BACKENDS, doc="FFT backend: auto, scipy, pyfftw"),
-    "threads": Field("int", None, positive=True,
+    "threads": Field("int", None, positive=True, maximum=4096,
                      doc="threads of the transforms and kernels (default: WAVESWEEP_THREADS, else "
                          "chosen by the grid size)"),
 }
@@ -207,11 +207,21 @@ def parse_override(text: str) -> tuple[str, object]:
     key, raw = key.strip(), raw.strip()
     if not key:
         raise JobError("--set", f"{text!r} has no key")
+    if any(ord(c) < 32 or c == "\x7f" for c in key):
+        raise JobError("--set", f"the key of {text!r} holds a line break or control character; "
+                                "give a dotted key such as packet.width")
     try:
-        value = tomllib.loads(f"v = {raw}")["v"]
+        parsed = tomllib.loads(f"v = {raw}")
     except tomllib.TOMLDecodeError:
-        value = raw
-    return key, value
+        parsed = None
+    if parsed is not None and set(parsed) == {"v"}:
+        return key, parsed["v"]   # one TOML value (a multi-line list is one value too)
+    if parsed is not None or "\n" in raw or "\r" in raw:
+        # the text after the first value would be dropped: refuse, never truncate
+        raise JobError(f"--set {key}", f"the value {raw!r} is more than one value (it runs over lines or "
+                                       "holds more TOML after the first); give one value on one line, "
+                                       "such as 15, 'text' or [1, 2]")
+    return key, raw   # a bare word is a string
 
 
 def apply_overrides(table: dict, overrides) -> dict:
@@ -299,9 +309,9 @@ def load_job(path, overrides=()) -> Job:
     A ``[sweep]`` table is validated and kept; expand it with
     :func:`wavesweep.batch.sweep.load_study`.  An override of a key the
     sweep sweeps is a JobError (the sweep would decide its value)."""
-    from .batch.sweep import refuse_swept_overrides
+    from .batch.sweep import apply_sweep_overrides, refuse_swept_overrides
 
-    raw = read_job_file(path)
+    raw, overrides = apply_sweep_overrides(read_job_file(path), overrides)
     refuse_swept_overrides(raw, overrides, Path(path))
     return job_from_dict(raw, overrides, source=Path(path))
 
@@ -725,8 +735,18 @@ def _face_names_of(grid) -> list[str]:
     return face_names(_G)
 
 
+# Steps of one run at the most: step counts are int64 in results and
+# checkpoints, and 2^53 is where float times stop telling steps apart.
+MAX_STEPS = 2**53
+
+
 def _steps(value, dt, field, units) -> int:
-    n = round(value / dt)
+    ratio = value / dt
+    if not ratio <= MAX_STEPS:   # also inf and nan
+        tf = units.factor("time")
+        raise JobError(field, f"{value / tf:g} is {ratio:.3g} time steps of dt = {dt / tf:g}, more than "
+                              f"{MAX_STEPS:.3g}; shorten it or lengthen evolve.dt")
+    n = round(ratio)
     if n < 1 or abs(n * dt - value) > 1e-9 * max(abs(value), dt):
         lo = max(1, math.floor(value / dt)) * dt
         hi = math.ceil(value / dt) * dt
