@@ -558,7 +558,9 @@ def _levels(args) -> int:
 
         if args.states:
             check_states_path(args.states)   # before the solve: a path that cannot be written costs nothing
-        job = load_job(args.job, args.set)
+        from .jobfile import read_job_file
+        swept = [k for k in (read_job_file(args.job).get("sweep") or {}) if k != "mode"]
+        job = load_job(args.job, args.set, sweep=False)   # the levels of one job: the sweep plays no part
         from .adequacy import levels_memory_estimate, memory_error
         axes = [a for a in ("x", "y", "z", "r") if a in job.table["grid"]]
         too_big = memory_error(levels_memory_estimate(job, args.count + 1), f"{args.count} levels of this grid",
@@ -583,6 +585,9 @@ def _levels(args) -> int:
         ef = model.units.factor("energy")
         energies, errors, weights = estimate.energies / ef, estimate.errors / ef, None
         notes = [f"{estimate.refine}: {estimate.advice}"] if estimate.advice else []
+        if swept:
+            notes.insert(0, f"sweep: the levels are those of the job without its [sweep] ({', '.join(swept)} "
+                            "as written outside it, or as --set); --set them for a point of the sweep")
     # the levels first: a states file that fails to write loses nothing computed
     if args.json:
         body = {"energies": [float(e) for e in energies], "energy_units": units}

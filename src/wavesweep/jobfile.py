@@ -304,14 +304,26 @@ def read_job_file(path) -> dict:
         raise JobError("", f"{path.name} is not valid TOML: {e}") from None
 
 
-def load_job(path, overrides=()) -> Job:
+def load_job(path, overrides=(), sweep: bool = True) -> Job:
     """Read and validate a job file; ``overrides`` are ``"key=value"`` strings.
     A ``[sweep]`` table is validated and kept; expand it with
     :func:`wavesweep.batch.sweep.load_study`.  An override of a key the
-    sweep sweeps is a JobError (the sweep would decide its value)."""
+    sweep sweeps is a JobError (the sweep would decide its value).
+    ``sweep=False``: the job as written outside its ``[sweep]`` (dropped, so
+    an override of a swept key sets it; an override of the sweep is a
+    JobError, as it would be lost)."""
     from .batch.sweep import apply_sweep_overrides, refuse_swept_overrides
 
-    raw, overrides = apply_sweep_overrides(read_job_file(path), overrides)
+    raw = read_job_file(path)
+    if not sweep:
+        for item in overrides:
+            key = (parse_override(item) if isinstance(item, str) else item)[0]
+            if key == "sweep" or key.startswith("sweep."):
+                raise JobError(f"--set {key}", "the job is used without its [sweep] here; set the swept "
+                                               "field itself, e.g. --set packet.energy=40")
+        raw.pop("sweep", None)
+        return job_from_dict(raw, overrides, source=Path(path))
+    raw, overrides = apply_sweep_overrides(raw, overrides)
     refuse_swept_overrides(raw, overrides, Path(path))
     return job_from_dict(raw, overrides, source=Path(path))
 

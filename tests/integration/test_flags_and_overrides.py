@@ -308,3 +308,16 @@ def test_the_memory_limit_is_named_and_can_be_set(tmp_path, capsys, monkeypatch)
     assert memory_finding(job_from_dict(big)).level == "error"
     monkeypatch.setenv("WAVESWEEP_MAX_MEMORY", "lots")
     bad_input(capsys, ["check", job, "--trial-seconds", "0"], "WAVESWEEP_MAX_MEMORY", "not a memory size")
+
+
+def test_levels_of_a_study_file_say_the_sweep_plays_no_part(tmp_path, capsys):
+    """levels solves one job: an override of the sweep would be lost (refused),
+    a swept field may be set for the point wanted, and a study file's levels
+    come with one warning line saying which fields the sweep would vary."""
+    job = write_job(tmp_path, SCAN)
+    bad_input(capsys, ["levels", job, "--count", "1", "--set", "sweep.mode=zip"], "--set sweep.mode")
+    assert main(["levels", str(job), "--count", "1", "--set", "potential.0.height=0.4", "--json"]) == 0
+    out, err = capsys.readouterr()
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and "warning: sweep:" in lines[0] and "potential.0.height" in lines[0], err
+    assert '"energies"' in out
