@@ -31,9 +31,11 @@ def _number_type(convert, low=None, high=None, low_open=False, high_open=False, 
     """An argparse type: ``convert(text)`` (int or float), finite, and in
     ``[low, high]`` (an open end with ``low_open`` / ``high_open``)."""
     bounds = []
-    if low is not None:
+    if low is not None and high is not None and low_open and high_open:
+        bounds.append(f"between {low:g} and {high:g} (exclusive)")
+    elif low is not None:
         bounds.append(f"above {low:g}" if low_open else f"at least {low:g}")
-    if high is not None:
+    if high is not None and not (low is not None and low_open and high_open):
         bounds.append(f"below {high:g}" if high_open else f"at most {high:g}")
     need = f"{what}, {' and '.join(bounds)}" if bounds else f"{what}, finite"
 

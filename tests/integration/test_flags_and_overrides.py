@@ -100,7 +100,7 @@ FLAGS = [
 def test_a_numeric_flag_out_of_range_is_one_line_naming_it(tmp_path, capsys, argv, flag):
     argv = [str(tmp_path / a) if a in ("JOB", "RUN.nc") else a for a in argv]
     line = bad_input(capsys, argv, flag, "must")
-    assert "at least" in line or "above" in line or "16x16" in line or "WIDTHxHEIGHT" in line
+    assert any(w in line for w in ("at least", "above", "between", "16x16", "WIDTHxHEIGHT")), line
 
 
 def test_flags_at_their_bounds_are_taken():
