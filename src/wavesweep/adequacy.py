@@ -1349,14 +1349,46 @@ def levels_memory_estimate(job, count: int) -> float:
     return 1.5 * (8.0 * size * 8 * (count + 2) + 8.0 * size * 4)
 
 
-def memory_error(need: float, what: str, field: str):
-    """A JobError when ``need`` bytes exceed this machine's available memory, else None."""
+MAX_MEMORY_VARIABLE = "WAVESWEEP_MAX_MEMORY"
+_SIZE_UNITS = {"": 1, "B": 1, "K": 2**10, "KB": 10**3, "KIB": 2**10, "M": 2**20, "MB": 10**6, "MIB": 2**20,
+               "G": 2**30, "GB": 10**9, "GIB": 2**30, "T": 2**40, "TB": 10**12, "TIB": 2**40}
+
+
+def memory_limit() -> tuple[float, str]:
+    """(bytes, what they are) a run or ``levels`` may use: this machine's
+    available memory, or ``WAVESWEEP_MAX_MEMORY`` (``64GiB``, ``500MB``,
+    bytes) where it is set -- how to judge a job for the bigger machine it
+    will run on, or to allow more than is free now."""
+    text = os.environ.get(MAX_MEMORY_VARIABLE)
+    if text is None or not text.strip():
+        avail, total = available_memory()
+        return avail, f"the {_bytes(avail)} available here (of {_bytes(total)})"
+    import re
+
     from .errors import JobError
-    avail, total = available_memory()
-    if need <= avail:
+    m = re.fullmatch(r"\s*([0-9]*\.?[0-9]+(?:[eE][+-]?[0-9]+)?)\s*([A-Za-z]*)\s*", text)
+    unit = m.group(2).upper() if m else None
+    if m is None or unit not in _SIZE_UNITS or not 0 < float(m.group(1)) * _SIZE_UNITS[unit] < math.inf:
+        raise JobError(MAX_MEMORY_VARIABLE, f"{text!r} is not a memory size; give e.g. 64GiB, 500MB or a "
+                                            "number of bytes, or unset it to use the available memory")
+    limit = float(m.group(1)) * _SIZE_UNITS[unit]
+    return limit, f"the limit {MAX_MEMORY_VARIABLE}={text.strip()} ({_bytes(limit)})"
+
+
+def _memory_advice() -> str:
+    if os.environ.get(MAX_MEMORY_VARIABLE, "").strip():
+        return f"use fewer points, or raise {MAX_MEMORY_VARIABLE}"
+    return (f"use fewer points or a machine with more memory (set {MAX_MEMORY_VARIABLE}=SIZE, "
+            "e.g. 64GiB, to judge for the machine that will run it)")
+
+
+def memory_error(need: float, what: str, field: str):
+    """A JobError when ``need`` bytes exceed :func:`memory_limit`, else None."""
+    from .errors import JobError
+    limit, said = memory_limit()
+    if need <= limit:
         return None
-    return JobError(field, f"{what} needs about {_bytes(need)}, more than the {_bytes(avail)} available "
-                           f"here (of {_bytes(total)}); use fewer points or a machine with more memory")
+    return JobError(field, f"{what} needs about {_bytes(need)}, more than {said}; {_memory_advice()}")
 
 
 def physical_memory_error(need: float):
@@ -1386,18 +1418,19 @@ def available_memory() -> tuple[float, float]:
 
 
 def memory_finding(job) -> Finding:
-    """The run's memory from shapes against this machine's: an error above
-    the available memory (the run would be killed or swap for hours)."""
+    """The run's memory from shapes against :func:`memory_limit` (this
+    machine's available memory unless ``WAVESWEEP_MAX_MEMORY`` says
+    otherwise): an error above it (the run would be killed or swap for
+    hours), a warning above 80 % of it."""
     est = memory_estimate(job)
-    avail, total = available_memory()
+    limit, said = memory_limit()
     need = est["estimate_bytes"]
-    level = "ok" if need <= 0.8 * avail else ("warn" if need <= avail else "error")
-    msg = (f"psi {_bytes(est['psi_bytes'])}; run about {_bytes(need)} "
-           f"(this machine: {avail / 2**30:.1f} GiB available of {total / 2**30:.1f} GiB)")
+    level = "ok" if need <= 0.8 * limit else ("warn" if need <= limit else "error")
+    msg = f"psi {_bytes(est['psi_bytes'])}; run about {_bytes(need)} (against {said})"
     if level != "ok":
-        msg += "; use fewer points, precision = 'single', or a machine with more memory"
+        msg += "; precision = 'single' halves it; " + _memory_advice()
     axes = [k for k in ("x", "y", "z", "r") if k in job.table["grid"]]
-    return Finding("memory", level, msg, {**est, "available_bytes": avail},
+    return Finding("memory", level, msg, {**est, "available_bytes": limit},
                    field=f"grid.{axes[-1]}.points" if axes else "grid")
 
 

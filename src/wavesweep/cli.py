@@ -22,6 +22,92 @@ class _Parser(argparse.ArgumentParser):
         self.exit(EXIT_INPUT, f"wavesweep: {message} (see {self.prog} --help)\n")
 
 
+# -- numeric flags -------------------------------------------------------------------
+# Every numeric flag is read by one of these (argparse ``type=``): a value that
+# is not a finite number in the flag's range is bad input, one line naming the
+# flag and the range (argparse prefixes "argument --flag:"), exit 2, before
+# anything is read or computed.
+def _number_type(convert, low=None, high=None, low_open=False, high_open=False, what="a number"):
+    """An argparse type: ``convert(text)`` (int or float), finite, and in
+    ``[low, high]`` (an open end with ``low_open`` / ``high_open``)."""
+    bounds = []
+    if low is not None and high is not None and low_open and high_open:
+        bounds.append(f"between {low:g} and {high:g} (exclusive)")
+    elif low is not None:
+        bounds.append(f"above {low:g}" if low_open else f"at least {low:g}")
+    if high is not None and not (low is not None and low_open and high_open):
+        bounds.append(f"below {high:g}" if high_open else f"at most {high:g}")
+    need = f"{what}, {' and '.join(bounds)}" if bounds else f"{what}, finite"
+
+    def parse(text):
+        try:
+            value = convert(text)
+        except (TypeError, ValueError, OverflowError):
+            raise argparse.ArgumentTypeError(f"must be {need}; got {text!r}") from None
+        outside = (not math.isfinite(value)
+                   or (low is not None and (value <= low if low_open else value < low))
+                   or (high is not None and (value >= high if high_open else value > high)))
+        if outside:
+            raise argparse.ArgumentTypeError(f"must be {need}; got {text!r}")
+        return value
+
+    parse.__name__ = convert.__name__   # argparse names the type in its own messages
+    return parse
+
+
+def positive_float(high, what="a number"):
+    """A finite float above 0 and at most ``high``."""
+    return _number_type(float, 0.0, high, low_open=True, what=what)
+
+
+def float_range(low, high, what="a number"):
+    """A finite float in ``[low, high]``."""
+    return _number_type(float, low, high, what=what)
+
+
+def fraction(what="a fraction"):
+    """A finite float strictly between 0 and 1."""
+    return _number_type(float, 0.0, 1.0, low_open=True, high_open=True, what=what)
+
+
+def int_range(low, high, what="an integer"):
+    """An integer in ``[low, high]`` (digits only: no fraction, no exponent)."""
+    return _number_type(int, low, high, what=what)
+
+
+def pixel_size(text):
+    """``WIDTHxHEIGHT`` in pixels, each within what a frame or figure can be
+    (16x16 .. 7680x4320), as ``(width, height)``."""
+    try:
+        width, height = (int(v) for v in str(text).lower().split("x"))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be WIDTHxHEIGHT in pixels such as 960x540; got {text!r}") from None
+    if not (16 <= width <= 7680 and 16 <= height <= 4320):
+        raise argparse.ArgumentTypeError(f"must lie within 16x16 .. 7680x4320 pixels; got {text!r}")
+    return width, height
+
+
+# The ranges: wide enough for any real use, narrow enough that a slip (a sign,
+# a unit, a missing decimal point) is caught before anything runs.
+WEEK_SECONDS = 7 * 24 * 3600.0
+FLAG_TYPES = {
+    "--trial-seconds": float_range(0.0, 3600.0, "a number of seconds (0: no trial)"),
+    "--tolerance": fraction("a tolerance"),
+    "--workers": int_range(1, 1024, "a number of worker processes"),
+    "--checkpoint-minutes": positive_float(WEEK_SECONDS / 60.0, "a number of minutes"),
+    "--lease-seconds": positive_float(WEEK_SECONDS, "a number of seconds"),
+    "--max-attempts": int_range(1, 1000, "a number of attempts"),
+    "--batch": int_range(1, 1024, "a number of runs per batch"),
+    "--every": int_range(1, 10**9, "a whole number of snapshots"),
+    "--fps": float_range(0.1, 1000.0, "a number of frames per second"),
+    "--size": pixel_size,
+    "--dpi": int_range(10, 1000, "a number of dots per inch"),
+    "--floor": fraction("a fraction of the peak density"),
+    "--count": int_range(1, 100_000, "a number of levels"),
+    "--min-weight": fraction("a weight |c_n|^2"),
+}
+
+
 def _parser() -> argparse.ArgumentParser:
     p = _Parser(prog="wavesweep", description="Wave-packet simulations on grids, studies and analysis.")
     p.add_argument("--version", action="store_true", help="print the version and exit")
@@ -42,8 +128,8 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("job")
     c.add_argument("--set", action="append", default=[], metavar="KEY=VALUE")
     c.add_argument("--json", action="store_true", help="print the findings as JSON")
-    c.add_argument("--trial-seconds", type=float, default=1.0, help="length of the timed trial")
-    c.add_argument("--tolerance", type=float, default=None, metavar="TOL",
+    c.add_argument("--trial-seconds", type=FLAG_TYPES["--trial-seconds"], default=1.0, help="length of the timed trial")
+    c.add_argument("--tolerance", type=FLAG_TYPES["--tolerance"], default=None, metavar="TOL",
                    help="also run a pilot that measures the error of the run's outputs (the job run "
                         "again with 1.5x the points per axis and with another dt; about 3x the run "
                         "in 1D, printed before it starts) and names the setting that misses TOL: "
@@ -62,17 +148,17 @@ def _parser() -> argparse.ArgumentParser:
 
     w = sub.add_parser("work", help="run queued runs with worker processes")
     w.add_argument("--root", default=None, help=root_help)
-    w.add_argument("--workers", type=int, default=1, help="worker processes (they share the cores)")
+    w.add_argument("--workers", type=FLAG_TYPES["--workers"], default=1, help="worker processes (they share the cores)")
     w.add_argument("--until", default=None, metavar="HH:MM",
                    help="claim nothing new after this time (HH:MM: the next one; or a date-time)")
-    w.add_argument("--checkpoint-minutes", type=float, default=5.0, help="wall time between checkpoints")
-    w.add_argument("--lease-seconds", type=float, default=60.0,
+    w.add_argument("--checkpoint-minutes", type=FLAG_TYPES["--checkpoint-minutes"], default=5.0, help="wall time between checkpoints")
+    w.add_argument("--lease-seconds", type=FLAG_TYPES["--lease-seconds"], default=60.0,
                    help="a run whose worker has not reported for this long is requeued")
-    w.add_argument("--max-attempts", type=int, default=3, help="attempts before a run is failed")
+    w.add_argument("--max-attempts", type=FLAG_TYPES["--max-attempts"], default=3, help="attempts before a run is failed")
     w.add_argument("--dask", default=None, metavar="ADDRESS",
                    help="run on the Dask cluster whose scheduler is at ADDRESS (tcp://host:8786), or "
                         "local:N for N local worker processes")
-    w.add_argument("--batch", type=int, default=32, metavar="N",
+    w.add_argument("--batch", type=FLAG_TYPES["--batch"], default=32, metavar="N",
                    help="step up to N runs that differ only in their packet together (1: one at a time)")
 
     st = sub.add_parser("status", help="counts by state, progress of running runs")
@@ -104,12 +190,12 @@ def _parser() -> argparse.ArgumentParser:
     mv = sub.add_parser("movie", help="a movie of the probability density of a run (.mp4 or .gif)")
     mv.add_argument("result", metavar="RUN.nc")
     mv.add_argument("-o", "--output", required=True, metavar="FILE", help="FILE.mp4 (H.264) or FILE.gif")
-    mv.add_argument("--every", type=int, default=1, metavar="K", help="use every K-th snapshot")
-    mv.add_argument("--fps", type=float, default=20.0, help="frames per second")
-    mv.add_argument("--dpi", type=int, default=100, help="dots per inch (text and line sizes)")
-    mv.add_argument("--size", default="960x540", metavar="WxH", help="frame size in pixels")
+    mv.add_argument("--every", type=FLAG_TYPES["--every"], default=1, metavar="K", help="use every K-th snapshot")
+    mv.add_argument("--fps", type=FLAG_TYPES["--fps"], default=20.0, help="frames per second")
+    mv.add_argument("--dpi", type=FLAG_TYPES["--dpi"], default=100, help="dots per inch (text and line sizes)")
+    mv.add_argument("--size", type=FLAG_TYPES["--size"], default="960x540", metavar="WxH", help="frame size in pixels")
     mv.add_argument("--scale", default="linear", choices=("linear", "log"), help="density scale")
-    mv.add_argument("--floor", type=float, default=1e-6, help="log scale: lowest density / peak")
+    mv.add_argument("--floor", type=FLAG_TYPES["--floor"], default=1e-6, help="log scale: lowest density / peak")
     mv.add_argument("--parts", action="store_true", help="1D: Re psi, Im psi and |psi| "
                                                          "(needs record.snapshot_psi = true)")
     mv.add_argument("--projection", default=None, metavar="AXIS", help="3D: integrate over AXIS (default z)")
@@ -118,12 +204,12 @@ def _parser() -> argparse.ArgumentParser:
     pl = sub.add_parser("plot", help="a summary figure of a run, or of a study's summary.nc")
     pl.add_argument("result", metavar="RUN.nc")
     pl.add_argument("-o", "--output", required=True, metavar="FILE", help="FILE.png, .pdf or .svg")
-    pl.add_argument("--size", default="1200x900", metavar="WxH", help="figure size in pixels")
-    pl.add_argument("--dpi", type=int, default=100, help="dots per inch")
+    pl.add_argument("--size", type=FLAG_TYPES["--size"], default="1200x900", metavar="WxH", help="figure size in pixels")
+    pl.add_argument("--dpi", type=FLAG_TYPES["--dpi"], default=100, help="dots per inch")
 
     lv = sub.add_parser("levels", help="lowest stationary energies of a job, or the levels in a run")
     lv.add_argument("job", nargs="?", default=None, metavar="JOB.toml", help="job file (not with --from)")
-    lv.add_argument("--count", type=int, default=None, metavar="K",
+    lv.add_argument("--count", type=FLAG_TYPES["--count"], default=None, metavar="K",
                     help="how many levels (required with JOB.toml; with --from the K lowest found)")
     lv.add_argument("--json", action="store_true", help="print one JSON object")
     lv.add_argument("--set", action="append", default=[], metavar="KEY=VALUE", help="override a job field")
@@ -131,7 +217,7 @@ def _parser() -> argparse.ArgumentParser:
                     help="write the states (netCDF; [packet] kind = 'file' with state = i reads one)")
     lv.add_argument("--from", dest="from_run", default=None, metavar="RUN.nc",
                     help="the levels in a run's autocorrelation instead (no JOB.toml)")
-    lv.add_argument("--min-weight", type=float, default=1e-6, metavar="W",
+    lv.add_argument("--min-weight", type=FLAG_TYPES["--min-weight"], default=1e-6, metavar="W",
                     help="with --from: smallest weight |c_n|^2 reported")
 
     ks = sub.add_parser("keys", help="the job-file keys: units, defaults, allowed values, formulas of V(r, t)")
@@ -143,7 +229,12 @@ def _parser() -> argparse.ArgumentParser:
 
 
 def main(argv=None) -> int:
-    args = _parser().parse_args(argv)
+    """Run one command; returns the exit status (also for argument errors
+    and ``--help``, which argparse reports by raising SystemExit)."""
+    try:
+        args = _parser().parse_args(argv)
+    except SystemExit as e:    # the message is printed: one line for bad arguments
+        return e.code if isinstance(e.code, int) else EXIT_INPUT
     if args.version:
         from . import __version__
         print(__version__)
@@ -152,7 +243,12 @@ def main(argv=None) -> int:
         _parser().print_help()
         return EXIT_INPUT
     try:
-        return _COMMANDS[args.command](args)
+        status = _COMMANDS[args.command](args)
+        # what is still buffered goes out here, where a reader that has gone
+        # (`| head -1`) is a BrokenPipeError handled below, and not at the
+        # interpreter's exit ("Exception ignored ... BrokenPipeError", status 120)
+        sys.stdout.flush()
+        return status
     except JobError as e:
         lines = e.lines()    # one per independent error, in the order of the job file
         for line in lines[:MAX_ERROR_LINES]:
@@ -267,13 +363,14 @@ def _submit(args) -> int:
 
 
 def _work(args) -> int:
-    from .batch.api import format_work, work
+    from .batch.api import format_work, until_deadline, work
     from .errors import DiskFull
 
-    if args.batch < 1:
-        raise JobError("--batch", f"{args.batch} runs per batch; give 1 (no batching) or more")
+    deadline, note = until_deadline(args.until)
+    if note:
+        _warn("work", [note])
     try:
-        out = work(args.root, args.workers, args.until, checkpoint_seconds=60.0 * args.checkpoint_minutes,
+        out = work(args.root, args.workers, deadline, checkpoint_seconds=60.0 * args.checkpoint_minutes,
                    lease_seconds=args.lease_seconds, max_attempts=args.max_attempts, batch=args.batch,
                    dask=args.dask)
     except DiskFull as e:   # before any claim: nothing ran
@@ -310,9 +407,11 @@ def _retry_or_cancel(args) -> int:
 
 def _collect(args) -> int:
     from .batch.api import default_root
-    from .batch.collect import collect
+    from .batch.collect import collect_study, missing_points
 
-    print(collect(default_root(args.root), args.study))
+    out = collect_study(default_root(args.root), args.study)
+    print(out["path"])
+    _warn("collect", [missing_points(out)] if out["missing"] else [])
     return EXIT_OK
 
 
@@ -410,7 +509,7 @@ def _transmission(args) -> int:
 
 
 def _movie(args) -> int:
-    from .viz.movie import MovieOptions, parse_size, render_movie
+    from .viz.movie import MovieOptions, render_movie
 
     cut = None
     if args.slice:
@@ -418,8 +517,11 @@ def _movie(args) -> int:
         try:
             cut = (axis.strip(), float(value))
         except ValueError:
-            raise JobError("--slice", f"expected AXIS=VALUE such as z=0.0, got {args.slice!r}") from None
-    opt = MovieOptions(every=args.every, fps=args.fps, dpi=args.dpi, size=parse_size(args.size),
+            cut = None
+        if cut is None or not math.isfinite(cut[1]):
+            raise JobError("--slice", f"expected AXIS=VALUE with a finite VALUE, such as z=0.0, "
+                                      f"got {args.slice!r}")
+    opt = MovieOptions(every=args.every, fps=args.fps, dpi=args.dpi, size=args.size,
                        scale=args.scale, floor=args.floor, parts=args.parts,
                        projection=args.projection, slice=cut)
     out = render_movie(args.result, args.output, opt)
@@ -429,10 +531,9 @@ def _movie(args) -> int:
 
 
 def _plot(args) -> int:
-    from .viz.movie import parse_size
     from .viz.summary import plot_result
 
-    print(plot_result(args.result, args.output, parse_size(args.size), args.dpi))
+    print(plot_result(args.result, args.output, args.size, args.dpi))
     return EXIT_OK
 
 
@@ -467,7 +568,9 @@ def _levels(args) -> int:
 
         if args.states:
             check_states_path(args.states)   # before the solve: a path that cannot be written costs nothing
-        job = load_job(args.job, args.set)
+        from .jobfile import read_job_file
+        swept = [k for k in (read_job_file(args.job).get("sweep") or {}) if k != "mode"]
+        job = load_job(args.job, args.set, sweep=False)   # the levels of one job: the sweep plays no part
         from .adequacy import levels_memory_estimate, memory_error
         axes = [a for a in ("x", "y", "z", "r") if a in job.table["grid"]]
         too_big = memory_error(levels_memory_estimate(job, args.count + 1), f"{args.count} levels of this grid",
@@ -492,6 +595,9 @@ def _levels(args) -> int:
         ef = model.units.factor("energy")
         energies, errors, weights = estimate.energies / ef, estimate.errors / ef, None
         notes = [f"{estimate.refine}: {estimate.advice}"] if estimate.advice else []
+        if swept:
+            notes.insert(0, f"sweep: the levels are those of the job without its [sweep] ({', '.join(swept)} "
+                            "as written outside it, or as --set); --set them for a point of the sweep")
     # the levels first: a states file that fails to write loses nothing computed
     if args.json:
         body = {"energies": [float(e) for e in energies], "energy_units": units}

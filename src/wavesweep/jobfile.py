@@ -23,11 +23,11 @@ from pathlib import Path
 import tomli_w
 
 from .absorbers.layers import face_names
-from .errors import ErrorCollector, JobError
+from .errors import ErrorCollector, JobError, combine_errors
 from .grid import BOUNDARIES, Axis, Grid
 from .potentials import REGISTRY, PotentialContext, make_term, term_class
 from .propagators import SCHEMES
-from .schema import Field, check_unknown, unknown_keys, validate_table
+from .schema import MAX_INT, Field, check_unknown, unknown_keys, validate_table
 from .states import PACKET_SCHEMAS
 from .units import UnitSet
 
@@ -77,7 +77,7 @@ EVOLVE = {
     "precision": Field("str", "double", choices=("double", "single"),
                        doc="complex128 (double) or complex64 (single) arithmetic"),
     "fft": Field("str", "auto", choices=FFT_BACKENDS, doc="FFT backend: auto, scipy, pyfftw"),
-    "threads": Field("int", None, positive=True,
+    "threads": Field("int", None, positive=True, maximum=4096,
                      doc="threads of the transforms and kernels (default: WAVESWEEP_THREADS, else "
                          "chosen by the grid size)"),
 }
@@ -213,11 +213,21 @@ def parse_override(text: str) -> tuple[str, object]:
     key, raw = key.strip(), raw.strip()
     if not key:
         raise JobError("--set", f"{text!r} has no key")
+    if any(ord(c) < 32 or c == "\x7f" for c in key):
+        raise JobError("--set", f"the key of {text!r} holds a line break or control character; "
+                                "give a dotted key such as packet.width")
     try:
-        value = tomllib.loads(f"v = {raw}")["v"]
+        parsed = tomllib.loads(f"v = {raw}")
     except tomllib.TOMLDecodeError:
-        value = raw
-    return key, value
+        parsed = None
+    if parsed is not None and set(parsed) == {"v"}:
+        return key, parsed["v"]   # one TOML value (a multi-line list is one value too)
+    if parsed is not None or "\n" in raw or "\r" in raw:
+        # the text after the first value would be dropped: refuse, never truncate
+        raise JobError(f"--set {key}", f"the value {raw!r} is more than one value (it runs over lines or "
+                                       "holds more TOML after the first); give one value on one line, "
+                                       "such as 15, 'text' or [1, 2]")
+    return key, raw   # a bare word is a string
 
 
 def apply_overrides(table: dict, overrides) -> dict:
@@ -300,16 +310,44 @@ def read_job_file(path) -> dict:
         raise JobError("", f"{path.name} is not valid TOML: {e}") from None
 
 
-def load_job(path, overrides=()) -> Job:
+def load_job(path, overrides=(), sweep: bool = True) -> Job:
     """Read and validate a job file; ``overrides`` are ``"key=value"`` strings.
     A ``[sweep]`` table is validated and kept; expand it with
     :func:`wavesweep.batch.sweep.load_study`.  An override of a key the
-    sweep sweeps is a JobError (the sweep would decide its value)."""
-    from .batch.sweep import refuse_swept_overrides
+    sweep sweeps is a JobError (the sweep would decide its value).
+    ``sweep=False``: the job as written outside its ``[sweep]`` (dropped, so
+    an override of a swept key sets it; an override of the sweep is a
+    JobError, as it would be lost)."""
+    from .batch.sweep import apply_sweep_overrides, refuse_swept_overrides
 
     raw = read_job_file(path)
+    if not sweep:
+        for item in overrides:
+            key = (parse_override(item) if isinstance(item, str) else item)[0]
+            if key == "sweep" or key.startswith("sweep."):
+                raise JobError(f"--set {key}", "the job is used without its [sweep] here; set the swept "
+                                               "field itself, e.g. --set packet.energy=40")
+        raw.pop("sweep", None)
+        return job_from_dict(raw, overrides, source=Path(path))
+    raw, overrides = apply_sweep_overrides(raw, overrides)
     refuse_swept_overrides(raw, overrides, Path(path))
     return job_from_dict(raw, overrides, source=Path(path))
+
+
+def _huge_integers(value, field: str):
+    """A JobError for each integer anywhere in the job (a table, a list, a
+    sweep's values, an expression's parameters) beyond 64 bits: TOML reads
+    10**400 as a Python integer, which no float holds (an OverflowError
+    wherever it was first converted)."""
+    if isinstance(value, dict):
+        for key, item in value.items():
+            yield from _huge_integers(item, f"{field}.{key}" if field else str(key))
+    elif isinstance(value, list):
+        for i, item in enumerate(value):
+            yield from _huge_integers(item, f"{field}.{i}")
+    elif isinstance(value, int) and not isinstance(value, bool) and abs(value) > MAX_INT:
+        yield JobError(field, f"an integer of {len(str(abs(value)))} digits, beyond 64 bits (at most {MAX_INT:.3g}); "
+                              "give a number (e.g. 1e30) or check it")
 
 
 def job_from_dict(raw: dict, overrides=(), source: Path | None = None) -> Job:
@@ -325,6 +363,9 @@ def job_from_dict(raw: dict, overrides=(), source: Path | None = None) -> Job:
     ``[units]`` for any comparison between values.
     """
     raw = apply_overrides(raw, overrides)
+    huge = combine_errors(list(_huge_integers(raw, "")))
+    if huge is not None:    # first: every later conversion of them would overflow
+        raise huge
     found = ErrorCollector()
     suggested = set()   # a misspelled table is reported once, not also as missing
     for error, near in unknown_keys(raw, TOP_LEVEL, ""):
@@ -731,17 +772,17 @@ def _face_names_of(grid) -> list[str]:
     return face_names(_G)
 
 
-# Step counts are exact in float64 times (t = n dt) up to 2^53; no run comes
-# near it (1e15 steps of a 64-point grid take a year), so beyond it is a typo.
+# Steps of one run at the most: step counts are int64 in results and
+# checkpoints, and 2^53 is where float times stop telling steps apart.
 MAX_STEPS = 2**53
 
 
 def _steps(value, dt, field, units) -> int:
     ratio = value / dt
-    if not ratio <= MAX_STEPS:    # NaN too
-        raise JobError(field, f"{ratio:.3g} time steps of dt = {dt / units.factor('time'):g}; a run counts "
-                              f"at most 2^53 ({MAX_STEPS:.2g}) steps; use a larger evolve.dt or a shorter "
-                              "duration")
+    if not ratio <= MAX_STEPS:   # also inf and nan
+        tf = units.factor("time")
+        raise JobError(field, f"{value / tf:g} is {ratio:.3g} time steps of dt = {dt / tf:g}, more than "
+                              f"{MAX_STEPS:.3g}; shorten it or lengthen evolve.dt")
     n = round(ratio)
     if n < 1 or abs(n * dt - value) > 1e-9 * max(abs(value), dt):
         lo = max(1, math.floor(value / dt)) * dt

@@ -30,6 +30,14 @@ REQUIRED: Any = _Required()
 # Value types that are not physical quantities.
 _PLAIN = ("int", "str", "bool", "number", "table", "list")
 
+# Integers beyond 64 bits overflow in numpy and C libraries; no count in a
+# job comes near (grid points are judged by memory long before).
+MAX_INT = 2**63 - 1
+# Numbers in atomic units beyond this overflow when multiplied (the square
+# of 1e200 is already inf): no physical value comes near (1 s is 4e16 au,
+# 1 kg 1e30 au).
+MAX_MAGNITUDE = 1e100
+
 
 @dataclass(frozen=True)
 class Field:
@@ -40,7 +48,7 @@ class Field:
     ``int``, ``str``, ``bool``, ``number`` (dimensionless float), ``table``,
     ``list``.  ``per_axis`` accepts a scalar or a list with one value per grid
     axis.  ``positive`` / ``nonnegative`` bound numeric values (after
-    conversion, for quantities).  ``doc`` is the key's one-line description
+    conversion, for quantities); ``maximum`` bounds integers and plain numbers.  ``doc`` is the key's one-line description
     (``wavesweep keys`` prints it; every key has one).  ``physics`` marks a
     default that sets the physics (a centre, an edge width, a phase, the
     mass): when a job leaves such a key out, ``check`` prints the value used
@@ -55,6 +63,7 @@ class Field:
     positive: bool = False
     nonnegative: bool = False
     physics: bool = False
+    maximum: float | None = None
 
     @property
     def required(self) -> bool:
@@ -120,6 +129,9 @@ def _check_scalar(f: Field, value, name: str, units: UnitSet | None):
             raise JobError(name, f"must be a positive integer, got {value}")
         if f.nonnegative and value < 0:
             raise JobError(name, f"must be zero or positive, got {value}")
+        limit = MAX_INT if f.maximum is None else f.maximum
+        if abs(value) > limit:
+            raise JobError(name, f"must be at most {limit:g}, got {value:.6g}")
         return value
     if k == "table":
         if not isinstance(value, dict):
@@ -141,6 +153,12 @@ def _check_scalar(f: Field, value, name: str, units: UnitSet | None):
         number = (units or UnitSet()).to_atomic(value, k, name)
     if not math.isfinite(number):
         raise JobError(name, f"must be finite, got {value!r}")
+    if number != 0.0 and not (1.0 / MAX_MAGNITUDE <= abs(number) <= MAX_MAGNITUDE):
+        raise JobError(name, f"{value!r} is {abs(number):.3g} in atomic units, outside "
+                             f"{1 / MAX_MAGNITUDE:g}..{MAX_MAGNITUDE:g} (beyond it products of values "
+                             "overflow); check the number and its unit")
+    if f.maximum is not None and k == "number" and number > f.maximum:
+        raise JobError(name, f"must be at most {f.maximum:g}, got {value!r}")
     if f.positive and number <= 0:
         raise JobError(name, f"must be positive, got {value!r}")
     if f.nonnegative and number < 0:

@@ -130,6 +130,10 @@ _DEFAULT_NAMES = {"length": "bohr", "energy": "hartree", "time": "au_time",
                   "mass": "m_e", "charge": "e_charge"}
 
 
+# Powers of one unit symbol at the most: the kinds here need up to 4 (energy
+# is mass length^2 time^-2, a field strength energy/length); 400 overflowed.
+MAX_UNIT_POWER = 12
+
 _TOKEN = re.compile(r"\s*(?:(?P<name>[A-Za-zµÅ_][A-Za-z0-9µÅ_]*)|(?P<pow>\*\*|\^)|(?P<op>[*/])|(?P<num>[+-]?\d+))")
 
 
@@ -155,11 +159,18 @@ def _parse_unit(text: str, field: str = "unit") -> tuple[float, Dims]:
     or the number 1.
     """
     factor, dims = 1.0, [0, 0, 0, 0]
-    for tok, power in _symbol_powers(text, field):
+    # each symbol once, powers added: "m**4/m**3" is m, not (1.9e10)**4 first
+    for tok, power in _merge_powers(_symbol_powers(text, field)):
         f, d = UNITS[tok]
-        factor *= f ** power
+        try:
+            factor *= f ** power
+        except OverflowError:
+            factor = math.inf
         for j in range(4):
             dims[j] += power * d[j]
+    if not (math.isfinite(factor) and factor > 0.0):   # e.g. "m^9*km^9*Mm^9"
+        raise JobError(field, f"unit {text!r} is too large or too small to compute with; "
+                              "write the value in a unit near its size")
     return factor, tuple(dims)
 
 
@@ -225,6 +236,10 @@ def _symbol_powers(text, field: str = "unit") -> list[tuple[str, int]]:
         elif i + 1 < len(tokens) and tokens[i + 1][0] == "num" and tokens[i + 1][1][0] in "+-":
             power = int(tokens[i + 1][1])   # "s-1", "nm-2" (CF units, as results write them)
             i += 1
+        if abs(power) > MAX_UNIT_POWER:
+            raise JobError(field, f"power {power} of {tok!r} in unit {text!r} is beyond "
+                                  f"+-{MAX_UNIT_POWER}; no quantity here needs more (a density in "
+                                  "3D is length^-3): write the unit with its plain power")
         out.append((tok, sign * power))
         need_factor, i = False, i + 1
     if need_factor:

@@ -108,11 +108,13 @@ for command in ("run", "check", "submit", "levels"):
 CAP = {"absorber": {"kind": "cap", "thickness": 8.0}}
 for command in ("run", "check", "submit"):
     # the absorber's tuning builds the set-up while the study is read: judged first
-    case("sizes", f"{command}-points-1e30-with-absorber-tuning", JOB_COMMANDS[command], "grid",
-         "memory", job={**CAP, "grid": {"x": {"points": 10**30}}, "detector": None,
+    case("sizes", f"{command}-points-1e18-with-absorber-tuning", JOB_COMMANDS[command], "grid",
+         "memory", job={**CAP, "grid": {"x": {"points": 10**18}}, "detector": None,
                         "sweep": {"potential.0.height": [0.4, 0.5]}})
     # momenta and extents no count of points holds: said, not overflowed
-    case("sizes", f"{command}-momentum-1e308", JOB_COMMANDS[command], "grid.x.points", "more than",
+    case("sizes", f"{command}-momentum-1e90", JOB_COMMANDS[command], "grid.x.points", "more than",
+         job={"packet": {"momentum": -1e90}})
+    case("sizes", f"{command}-momentum-1e308", JOB_COMMANDS[command], "packet.momentum", "outside",
          job={"packet": {"momentum": -1e308}})
     case("sizes", f"{command}-sweep-1e9-values", JOB_COMMANDS[command], "sweep",
          job={"sweep": {"potential.0.height": {"start": 0.1, "stop": 1.0, "num": 10**9}}})
@@ -125,7 +127,8 @@ for command in ("run", "check", "submit"):
 # steps beyond exact counting (a hang in the default sampling, an attribute
 # netCDF cannot store); a prime step count has no default sampling near
 # duration / 1000 (the search for one took 1e10 divisions)
-job_case("sizes", "duration-1e30", {"evolve": {"duration": 1e30}, "record": None}, "evolve.duration", "2^53")
+job_case("sizes", "duration-1e30", {"evolve": {"duration": 1e30}, "record": None}, "evolve.duration",
+         "time steps")
 job_case("sizes", "prime-step-count", {"evolve": {"duration": 200000033 * 0.05}, "record": None},
          "record.every", "200000033")
 
@@ -175,6 +178,16 @@ job_case("fields", "detector-names-repeat", {"detector": [{"name": "d", "x": 10.
 job_case("fields", "precision-unknown", {"evolve": {"precision": "quad"}}, "evolve.precision", "double")
 job_case("fields", "title-a-number", {"title": 12}, "title")
 job_case("fields", "sweep-empty-list", {"sweep": {"potential.0.height": []}}, "sweep")
+# integers beyond 64 bits anywhere (TOML reads them exactly; the first float()
+# of them overflowed: exit 1)
+for key in ("packet.width", "grid.x.points", "evolve.dt", "packet.center", "record.stride"):
+    job_case("fields", f"{key.replace('.', '-')}-401-digits", patch_at(key, 10**400), key, "64 bits",
+             commands=("run",))
+job_case("fields", "expression-parameter-401-digits",
+         {"potential": [{"kind": "expression", "expression": "a * x**2", "params": {"a": 10**400}}]},
+         "potential.0.params.a", "64 bits", commands=("check",))
+job_case("fields", "sweep-value-401-digits", {"sweep": {"packet.momentum": [1.0, 10**400]}},
+         "sweep.packet.momentum.1", "64 bits", commands=("check", "submit"))
 # an integer beyond any float in a range (numpy made an object array of 10**30)
 job_case("fields", "sweep-range-start-1e400", {"sweep": {"potential.0.height": {
     "start": 10**400, "stop": 10**401, "num": 2}}}, "potential.0.height.start", "1.8e308")

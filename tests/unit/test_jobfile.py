@@ -309,12 +309,16 @@ def test_unreadable_job_files(tmp_path, content, piece):
 
 
 def test_absurd_momentum_is_a_grid_error_not_an_overflow():
-    """p0 = 1e300 used to overflow while tuning the CAP (p^2) before the grid
-    check ran; the grid check now comes first."""
-    j = job(packet__momentum=1e300, absorber={"kind": "cap", "thickness": 10.0})
+    """p0 = 1e50 used to overflow while tuning the CAP (p^2 ... p^8) before the
+    grid check ran; the grid check now comes first.  p0 = 1e300 is refused
+    when the job is read: beyond 1e100 atomic units products overflow."""
+    j = job(packet__momentum=1e50, absorber={"kind": "cap", "thickness": 10.0})
     with pytest.raises(JobError) as info:
         Setup(j)
     assert info.value.field == "grid.x.points"
+    with pytest.raises(JobError) as info:
+        job(packet__momentum=1e300)
+    assert info.value.field == "packet.momentum" and "1e-100..1e+100" in info.value.message
 
 
 # -- data files given as job files ---------------------------------------------------

@@ -10,6 +10,7 @@ from pathlib import Path
 from ..errors import JobError
 
 __all__ = ["default_root", "submit", "work", "format_work", "status", "format_status", "parse_until",
+           "until_deadline",
            "existing_queue"]
 
 
@@ -37,25 +38,37 @@ def parse_until(text: str | None, now: datetime | None = None) -> float | None:
     """``--until``: ``HH:MM`` is the next such time (at 23:00, 07:00 means
     tomorrow morning); an ISO date-time (``2026-12-02T07:00``) is taken as
     written, so it may lie in the past.  Returns epoch seconds."""
+    return until_deadline(text, now)[0]
+
+
+def until_deadline(text: str | None, now: datetime | None = None) -> tuple[float | None, str | None]:
+    """``--until`` as ``(epoch seconds, note)``: the note (one line, else
+    None) says when ``HH:MM`` has already passed today and so means
+    tomorrow, with the date and how long from now."""
     if text is None:
-        return None
+        return None, None
     now = now or datetime.now()
     try:
         hh, mm = text.split(":")
         if len(hh) <= 2 and len(mm) == 2:
             target = now.replace(hour=int(hh), minute=int(mm), second=0, microsecond=0)
+            note = None
             if target <= now:
                 target += timedelta(days=1)
-            return target.timestamp()
+                left = int((target - now).total_seconds()) // 60
+                note = (f"--until {text}: {now:%H:%M} is past {target:%H:%M} today, so it means tomorrow, "
+                        f"{target:%Y-%m-%d %H:%M} ({left // 60} h {left % 60:02d} min from now); give a "
+                        f"date-time such as {target:%Y-%m-%dT%H:%M} to be explicit")
+            return target.timestamp(), note
     except ValueError:
         pass
     try:
-        return datetime.fromisoformat(text).timestamp()
+        return datetime.fromisoformat(text).timestamp(), None
     except ValueError:
         raise JobError("--until", f"{text!r} is not HH:MM or a date-time like 2026-12-02T07:00") from None
 
 
-def work(root=None, workers: int = 1, until: str | None = None, executor="local", dask: str | None = None,
+def work(root=None, workers: int = 1, until: str | float | None = None, executor="local", dask: str | None = None,
          **settings) -> dict:
     """Drain the queue at ROOT with an executor (by name or class).
 
@@ -74,6 +87,7 @@ def work(root=None, workers: int = 1, until: str | None = None, executor="local"
     A disk with no room for the queue's reserve (:data:`~.queue.RESERVE_BYTES`
     kept in ``ROOT/.disk-reserve``, so that a full disk can still be recorded)
     is a :class:`~wavesweep.errors.DiskFull` before any run is claimed.
+    ``until``: ``--until`` text (:func:`parse_until`) or epoch seconds.
     ``dask``: drain on the Dask cluster at that scheduler address (or
     ``local:N``, a LocalCluster of N worker processes) instead."""
     import socket
@@ -87,7 +101,7 @@ def work(root=None, workers: int = 1, until: str | None = None, executor="local"
         raise JobError("--workers", "with --dask the cluster's workers run the study; drop --workers "
                                     "(use --dask local:N for N local worker processes)")
     queue = existing_queue(root)
-    deadline = parse_until(until)
+    deadline = until if until is None or isinstance(until, (int, float)) else parse_until(until)
     cls = EXECUTORS[executor] if isinstance(executor, str) else executor
     # before any worker starts: a read-only root would make each of them crash
     queue.check_writable(sorted({r["study"] for r in queue.runs() if r["state"] == "queued"}))

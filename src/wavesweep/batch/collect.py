@@ -67,7 +67,7 @@ from ..schema import Field
 from ..states import PACKET_SCHEMAS
 from ..units import KINDS, UnitSet
 
-__all__ = ["collect", "SUMMARY_NAME", "MANIFEST_NAME"]
+__all__ = ["collect", "collect_study", "missing_points", "SUMMARY_NAME", "MANIFEST_NAME"]
 
 MANIFEST_NAME = "study.json"
 SUMMARY_NAME = "summary.nc"
@@ -118,8 +118,16 @@ def collect(root, study: str) -> Path:
 
     Raises :class:`~wavesweep.errors.JobError` when the study was never
     submitted (the message lists the submitted ones) or none of its runs has
-    a result yet.
+    a result yet.  :func:`collect_study` also says which points are missing.
     """
+    return collect_study(root, study)["path"]
+
+
+def collect_study(root, study: str) -> dict:
+    """:func:`collect`, returning ``{"path", "found", "expected", "missing"}``:
+    ``missing`` lists the planned runs without a result, each
+    ``{"run_id", "params"}`` (swept key -> value, job units), in the
+    manifest's order (:func:`missing_points` says them in one line)."""
     root = Path(root)
     # the summary goes under ROOT: it must be a folder that is there
     if root.exists() and not root.is_dir():
@@ -188,7 +196,33 @@ def collect(root, study: str) -> Path:
     found = sum(1 for run in where.values() if run["run_id"] in results)
     missing = [run["run_id"] for run in runs if run["run_id"] not in results]
     ds.attrs = _global_attrs(manifest, study, first, found, len(runs), missing, params, notes)
-    return _write(ds, folder / SUMMARY_NAME)
+    path = _write(ds, folder / SUMMARY_NAME)
+    return {"path": path, "found": len(results), "expected": len(runs),
+            "missing": [{"run_id": run["run_id"], "params": dict(run.get("params") or {})}
+                        for run in runs if run["run_id"] not in results]}
+
+
+# How many missing points a message names before "and N more".
+POINTS_NAMED = 5
+
+
+def missing_points(out: dict, named: int = POINTS_NAMED) -> str | None:
+    """One line naming the points of :func:`collect_study`'s result that
+    have no result file: their swept values and run ids, the first
+    ``named`` of them and how many more (None when nothing is missing)."""
+    missing = out["missing"]
+    if not missing:
+        return None
+
+    def point(run):
+        values = ", ".join(f"{k} = {v!r}" for k, v in run["params"].items())
+        return f"{values} (run {run['run_id']})" if values else f"run {run['run_id']}"
+
+    listed = "; ".join(point(run) for run in missing[:named])
+    more = f"; and {len(missing) - named} more" if len(missing) > named else ""
+    return (f"{len(missing)} of {out['expected']} points have no result and are NaN in the summary "
+            f"(runs_missing lists them all): {listed}{more}; `wavesweep status` says why "
+            "(queued, running or failed), `wavesweep work` runs them")
 
 
 # -- the study on disk -----------------------------------------------------------------

@@ -41,6 +41,22 @@ Reliability
   path and the fix, never a crash; a refused change leaves the queue as it
   was (the transaction rolls back).
 
+Identity and damage
+-------------------
+Our database carries ``PRAGMA application_id = 0x77767371`` (the bytes
+"wvsq") and ``PRAGMA user_version`` = :data:`SCHEMA_VERSION`.  Every
+connection reads them, and the table names, before it writes anything (even
+the switch to WAL): a file that is not SQLite, or an SQLite file of another
+program (another application_id, or tables other than ours), is refused
+with one line and left untouched.  A database with exactly our tables and
+no application_id was made by an earlier wavesweep: it is adopted and
+marked.  Opening a queue runs ``PRAGMA quick_check`` (0.4 s for 100000
+runs); a damaged database, found then or by any later statement, is one
+line with the check's first verdict and the way to rebuild: move
+``queue.sqlite`` aside and submit each study again -- result files already
+in ``ROOT/STUDY/`` are taken as done (:meth:`Queue.submit`), and the
+study's ``study.json`` keeps the earlier submissions' runs for ``collect``.
+
 Counters: ``attempts`` is the number of claims since the last retry that did
 not end in a release (so, while a run is queued or running, the number of
 times a worker died on it, plus the current one); ``executions`` counts
@@ -65,10 +81,14 @@ from pathlib import Path
 from ..errors import DiskFull, JobError
 from ..io.diskspace import NO_SPACE, free_bytes, is_no_space
 
-__all__ = ["Queue", "STATES", "SCHEMA_VERSION", "check_result", "DEFAULT_LEASE_SECONDS", "RESERVE_BYTES"]
+__all__ = ["Queue", "STATES", "SCHEMA_VERSION", "APPLICATION_ID", "check_result", "REBUILD",
+           "DEFAULT_LEASE_SECONDS", "RESERVE_BYTES"]
 
 STATES = ("queued", "running", "done", "failed", "cancelled")
 SCHEMA_VERSION = 1
+# PRAGMA application_id of our databases: the ASCII bytes "wvsq" (wavesweep
+# queue) as a big-endian 32-bit integer, as the SQLite file format asks.
+APPLICATION_ID = 0x77767371
 DB_NAME = "queue.sqlite"
 REASON_CHARS = 500            # reasons are one line; a traceback belongs in the log
 _CHUNK = 500                  # ids per "IN (...)" query, well below SQLite's variable limit
@@ -220,8 +240,11 @@ def root_error(root, exc: BaseException, doing: str = "use") -> JobError | None:
         elif name.startswith("SQLITE_CANTOPEN") or "unable to open" in text:
             why = (f"cannot open {db!r} (it must be a file, in a folder you can write); "
                    + _ROOT_FIX)
-        elif name in ("SQLITE_NOTADB", "SQLITE_CORRUPT") or "not a database" in text or "malformed" in text:
-            why = f"{db!r} is not a wavesweep queue or is damaged; give the folder you submitted to with --root"
+        elif name == "SQLITE_NOTADB" or "not a database" in text:
+            why = (f"{db!r} is not a wavesweep queue (not an SQLite database); it was left as it is: move it "
+                   "away, or give the folder you submitted to with --root")
+        elif _is_damage(exc):
+            why = f"{db!r} is damaged ({_one_line(exc)}); {REBUILD}"
         else:   # a full disk, an I/O error, a lock held too long: not the input's fault
             return None
     elif isinstance(exc, OSError):
@@ -258,6 +281,43 @@ def _room_for_the_queue(method):
                 raise
             return method(self, *args, **kwargs)
     return again
+
+
+REBUILD = ("to rebuild the queue from the result files, move queue.sqlite aside and submit each study "
+           "again (wavesweep submit JOB --root ROOT --study NAME): results already in ROOT/NAME/ count as "
+           "done")
+
+
+def _is_damage(exc: BaseException) -> bool:
+    """Whether an SQLite error says the database file is damaged or not a
+    database at all (as opposed to locked, read-only, full, ...)."""
+    if isinstance(exc, json.JSONDecodeError):   # a JSON column we wrote no longer parses
+        return True
+    if not isinstance(exc, sqlite3.DatabaseError):
+        return False
+    name = getattr(exc, "sqlite_errorname", "") or ""
+    text = str(exc).lower()
+    return (name.startswith("SQLITE_CORRUPT") or name == "SQLITE_NOTADB"
+            or "malformed" in text or "not a database" in text
+            or "could not decode to utf-8" in text)    # a text column we wrote holds other bytes
+
+
+@functools.lru_cache(maxsize=1)
+def _our_columns() -> dict:
+    """Table -> column names, as :data:`_SCHEMA` makes them."""
+    mem = sqlite3.connect(":memory:")
+    try:
+        for statement in _SCHEMA:
+            mem.execute(statement)
+        return _columns(mem)
+    finally:
+        mem.close()
+
+
+def _columns(conn) -> dict:
+    tables = [r[0] for r in conn.execute("SELECT name FROM sqlite_master WHERE type = 'table' "
+                                         "AND name NOT LIKE 'sqlite_%' ORDER BY name")]
+    return {t: tuple(r[1] for r in conn.execute(f'PRAGMA table_info("{t}")')) for t in tables}
 
 
 def _fsync_dir(folder: Path) -> None:
@@ -317,6 +377,16 @@ def _write_json(path: Path, obj) -> None:
     _fsync_dir(path.parent)
 
 
+def _read_manifest_file(path: Path) -> dict | None:
+    """A study.json as written by :func:`_write_json`, or None when there is
+    none or it is not one (it is rewritten from the submission then)."""
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    return data if isinstance(data, dict) and isinstance(data.get("runs"), list) else None
+
+
 def _merge_manifest(old: dict | None, new: dict) -> dict:
     """The union of two submissions of one study: every run of either (the
     newer params win for a run in both), each axis's values in the order they
@@ -366,12 +436,16 @@ class Queue:
         try:
             self.root.mkdir(parents=True, exist_ok=True)
             self._ensure_schema()
+            self._check_integrity()
         except (OSError, sqlite3.Error) as e:
             problem = root_error(self.root, e, "use the queue folder")
             if problem is None:
                 raise
             self.close()
             raise problem from None
+        except JobError:
+            self.close()
+            raise
 
     # ------------------------------------------------------------ plumbing
     def __getstate__(self):
@@ -393,6 +467,11 @@ class Queue:
             conn = sqlite3.connect(self.path, timeout=self.busy_timeout, isolation_level=None)
         except sqlite3.Error as e:
             raise root_error(self.root, e, "open the queue at") or e from None
+        try:   # before anything is written, even the journal mode
+            self._identify(conn)
+        except BaseException:
+            conn.close()
+            raise
         # the first switch to WAL takes an exclusive lock; a racing opener waits
         deadline = time.monotonic() + self.busy_timeout
         while True:
@@ -477,19 +556,77 @@ class Queue:
             if c.in_transaction:
                 c.execute("COMMIT")
 
+    def _identify(self, conn) -> None:
+        """Refuse, before anything is written, a file that is not our queue:
+        not SQLite, another program's application_id, or tables other than
+        ours (a JobError on --root; the file is left as it is).  An empty
+        database and an unmarked one with exactly our tables (made by an
+        earlier wavesweep) pass; :meth:`_ensure_schema` marks them."""
+        db = str(self.path)
+        try:
+            app = conn.execute("PRAGMA application_id").fetchone()[0]
+            tables = _columns(conn) if app != APPLICATION_ID else None
+        except sqlite3.DatabaseError as e:
+            if not _is_damage(e):
+                raise
+            if "not a database" in str(e).lower() or getattr(e, "sqlite_errorname", "") == "SQLITE_NOTADB":
+                raise JobError("--root", f"cannot use the queue folder {str(self.root)!r}: {db!r} is not a "
+                                         "wavesweep queue (not an SQLite database); it was left as it is: move "
+                                         "it away, or give another folder with --root") from None
+            raise self._damaged(conn, e) from None
+        if app == APPLICATION_ID or not tables or tables == _our_columns():
+            return
+        what = f"application_id {app:#x}, " if app else ""
+        names = ", ".join(tables)
+        raise JobError("--root", f"cannot use the queue folder {str(self.root)!r}: {db!r} is another "
+                                 f"program's SQLite database ({what}tables {names}), not a wavesweep queue; "
+                                 "it was left as it is: give a folder of its own with --root")
+
+    def _damaged(self, conn, exc: BaseException) -> JobError:
+        """The one-line JobError for a damaged database: the first verdict of
+        ``PRAGMA quick_check`` (else the error itself) and how to rebuild."""
+        try:
+            rows = conn.execute("PRAGMA quick_check(1)").fetchall()
+            verdict = rows[0][0] if rows else "ok"
+        except sqlite3.Error as e:
+            verdict = str(e)
+        if verdict == "ok":   # sound pages, changed content: say what the read found
+            detail = f"{_one_line(exc, 200)}; SQLite quick_check finds its pages sound"
+        else:
+            detail = f"SQLite quick_check: {_one_line(verdict, 200)}"
+        return JobError("--root", f"cannot use the queue folder {str(self.root)!r}: {str(self.path)!r} is "
+                                  f"damaged ({detail}); {REBUILD}")
+
+    def _check_integrity(self) -> None:
+        """``PRAGMA quick_check`` of the whole database (a damaged page
+        anywhere): a JobError with the first verdict and the way to rebuild."""
+        c = self._conn()
+        try:
+            rows = c.execute("PRAGMA quick_check(1)").fetchall()
+        except sqlite3.DatabaseError as e:
+            if not _is_damage(e):
+                raise
+            raise self._damaged(c, e) from None
+        if rows and rows[0][0] != "ok":
+            raise JobError("--root", f"cannot use the queue folder {str(self.root)!r}: {str(self.path)!r} is "
+                                     f"damaged (SQLite quick_check: {_one_line(rows[0][0], 200)}); {REBUILD}")
+
     def _ensure_schema(self) -> None:
         c = self._conn()
+        app = c.execute("PRAGMA application_id").fetchone()[0]
         version = c.execute("PRAGMA user_version").fetchone()[0]
-        if version == SCHEMA_VERSION:
+        if version == SCHEMA_VERSION and app == APPLICATION_ID:
             return
         if version > SCHEMA_VERSION:
             raise OSError(f"the queue at {str(self.path)!r} has schema version {version}; this "
                           f"wavesweep knows version {SCHEMA_VERSION}: upgrade wavesweep")
         with self._write() as c:
-            if c.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION:
+            if (c.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
+                    and c.execute("PRAGMA application_id").fetchone()[0] == APPLICATION_ID):
                 return       # another process made it while we waited
-            for statement in _SCHEMA:
+            for statement in _SCHEMA:    # IF NOT EXISTS: an earlier version's queue keeps its rows
                 c.execute(statement)
+            c.execute(f"PRAGMA application_id={APPLICATION_ID}")
             c.execute(f"PRAGMA user_version={SCHEMA_VERSION}")
 
     def check_writable(self, studies=()) -> None:
@@ -643,6 +780,11 @@ class Queue:
         c = self._conn()
         known = {row[0] for row in c.execute("SELECT run_id FROM runs WHERE study = ?", (name,))}
         fresh = [rid for rid in specs if rid not in known]
+        # a result already in the study folder (a queue rebuilt after damage,
+        # see REBUILD): written under a temporary name and renamed, so whole,
+        # and it names its run -- the run is done, not computed again
+        on_disk = {rid for rid in fresh if check_result(self.result_path(name, rid), rid) is None}
+        fresh = [rid for rid in fresh if rid not in on_disk]
         donors: dict[str, list] = {}
         for i in range(0, len(fresh), _CHUNK):
             chunk = fresh[i:i + _CHUNK]
@@ -653,17 +795,17 @@ class Queue:
             for rid, src, wall in rows:
                 donors.setdefault(rid, []).append((src, wall))
         try:
-            return self._submit(name, specs, manifest, donors)
+            return self._submit(name, specs, manifest, donors, on_disk)
         except OSError as e:   # the study folder or its files cannot be written: nothing queued
             problem = root_error(self.root, e, "write the study folder in")
             if problem is None:
                 raise
             raise problem from None
 
-    def _submit(self, name, specs, manifest, donors) -> dict:
+    def _submit(self, name, specs, manifest, donors, on_disk=frozenset()) -> dict:
         made = []        # results linked here by this call: removed again if it fails
         try:
-            return self._submit_linked(name, specs, manifest, donors, made)
+            return self._submit_linked(name, specs, manifest, donors, made, on_disk)
         except BaseException:
             for path in made:
                 try:
@@ -672,7 +814,7 @@ class Queue:
                     pass
             raise
 
-    def _submit_linked(self, name, specs, manifest, donors, made) -> dict:
+    def _submit_linked(self, name, specs, manifest, donors, made, on_disk=frozenset()) -> dict:
         reused = {}
         for rid, candidates in donors.items():
             for src, wall in candidates:
@@ -690,11 +832,23 @@ class Queue:
         counts = {"added": 0, "existing": 0, "reused": 0}
         with self._write() as c:
             row = c.execute("SELECT manifest FROM studies WHERE name = ?", (name,)).fetchone()
-            merged = _merge_manifest(json.loads(row[0]) if row else None, manifest)
+            # a study new to this database may have a manifest on disk (a
+            # rebuilt queue): the earlier submissions' runs stay in it
+            old = json.loads(row[0]) if row else _read_manifest_file(self.study_dir(name) / "study.json")
+            merged = _merge_manifest(old, manifest)
             c.execute("INSERT INTO studies (name, manifest, submitted, updated) VALUES (?, ?, ?, ?) "
                       "ON CONFLICT (name) DO UPDATE SET manifest = excluded.manifest, "
                       "updated = excluded.updated", (name, _dumps(merged), now, now))
             for rid, (job_toml, params) in specs.items():
+                if rid in on_disk:
+                    cur = c.execute(
+                        "INSERT OR IGNORE INTO runs (study, run_id, state, job_toml, params, submitted, "
+                        "finished) VALUES (?, ?, 'done', ?, ?, ?, ?)", (name, rid, job_toml, params, now, now))
+                    if cur.rowcount == 1:
+                        self._event(c, now, name, rid, None, "done",
+                                    note="result file already in the study folder")
+                    counts["existing"] += 1     # already done: its result is there
+                    continue
                 if rid in reused:
                     src, wall, how = reused[rid]
                     cur = c.execute(
@@ -1217,3 +1371,28 @@ def _check_max_attempts(max_attempts) -> None:
 def _lease_of(note) -> float:
     found = _LEASE_NOTE.search(note or "")
     return float(found.group(1)) if found else DEFAULT_LEASE_SECONDS
+
+
+def _reports_damage(method):
+    """``method`` with a damaged database (found by any statement, after
+    the check on opening) turned into the one-line JobError of
+    :meth:`Queue._damaged` instead of an internal DatabaseError."""
+    @functools.wraps(method)
+    def wrapper(self, *args, **kwargs):
+        try:
+            return method(self, *args, **kwargs)
+        except (sqlite3.DatabaseError, json.JSONDecodeError) as e:
+            if not _is_damage(e):
+                raise
+            raise self._damaged(self._conn(), e) from None
+    return wrapper
+
+
+# every public call that reads or writes the database (wrapped here, not in
+# each body: the transitions keep their own error handling for the rest)
+for _name in ("submit", "manifest", "claim", "claim_batch", "heartbeat", "complete", "fail", "release",
+              "requeue_stale", "retry", "cancel", "runs", "run", "history", "verify", "status",
+              "check_writable", "last_event", "drain_summary", "share_result", "requeue_worker",
+              "blocked"):
+    setattr(Queue, _name, _reports_damage(getattr(Queue, _name)))
+del _name

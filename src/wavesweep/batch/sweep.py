@@ -17,13 +17,18 @@ at (a JobError, or JobErrors for several), and nothing is queued.
 
 ``--set`` overrides apply to every run, but not to a swept key (or a table
 holding one, or a field inside one): the sweep would decide the value, so
-such an override is a JobError (:func:`refuse_swept_overrides`).
+such an override is a JobError (:func:`refuse_swept_overrides`).  An
+override of the sweep itself changes the sweep (:func:`apply_sweep_overrides`):
+``--set sweep.mode=zip``, ``--set 'sweep.packet.energy=[40.0, 80.0]'`` (the
+axis's values, or a new axis), ``--set sweep.packet.energy.num=5`` (a key of
+a range).
 """
 from __future__ import annotations
 
 import copy
 import itertools
 import math
+import os
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -32,13 +37,37 @@ import numpy as np
 from ..errors import ErrorCollector, JobError, combine_errors
 from ..jobfile import Job, file_position, job_from_dict, parse_override, read_job_file
 
-__all__ = ["RunSpec", "Study", "expand_study", "load_study", "sweep_axes", "refuse_swept_overrides"]
+__all__ = ["RunSpec", "Study", "expand_study", "load_study", "sweep_axes", "refuse_swept_overrides",
+           "apply_sweep_overrides", "max_runs"]
 
 MODES = ("grid", "zip")
 # Runs of one study at the most: each is validated and resolved on submit
 # (milliseconds each), and a product of ranges must not be made first to be
 # counted (1000 x 1000 x 1000 hung; a range of 1e9 values ran out of memory).
 MAX_RUNS = 100_000
+MAX_RUNS_VARIABLE = "WAVESWEEP_MAX_RUNS"
+
+
+def max_runs() -> int:
+    """The most runs a study may hold: :data:`MAX_RUNS`, or the environment
+    variable ``WAVESWEEP_MAX_RUNS`` (a positive integer) where it is set,
+    which is how a user who means a bigger study raises the limit."""
+    text = os.environ.get(MAX_RUNS_VARIABLE)
+    if text is None or not text.strip():
+        return MAX_RUNS
+    try:
+        value = int(text.strip().replace("_", ""))
+    except ValueError:
+        value = 0
+    if value < 1:
+        raise JobError(MAX_RUNS_VARIABLE, f"must be a positive whole number of runs, got {text!r}; "
+                                          f"unset it for the default {MAX_RUNS}")
+    return value
+
+
+def _limit_advice() -> str:
+    return (f"split it into several studies, or raise the limit with {MAX_RUNS_VARIABLE}=N "
+            "(each run is validated on submit, a few ms each)")
 RANGE_KEYS = ("start", "stop", "num", "spacing")
 
 
@@ -80,6 +109,10 @@ def _values(key: str, spec) -> list:
     if isinstance(spec, list):
         if not spec:
             raise JobError(where, "needs at least one value")
+        for i, v in enumerate(spec):   # before the value is written into every point's message
+            if isinstance(v, int) and not isinstance(v, bool) and abs(v) > 2**63 - 1:
+                raise JobError(f"{where}.{i}", f"an integer of {len(str(abs(v)))} digits, beyond 64 bits; "
+                                               "give a number (e.g. 1e30) or check it")
         return list(spec)
     if isinstance(spec, dict):
         for k in spec:
@@ -103,9 +136,10 @@ def _values(key: str, spec) -> list:
         start, stop = bounds["start"], bounds["stop"]
         if isinstance(num, bool) or not isinstance(num, int) or num < 1:
             raise JobError(f"{where}.num", f"must be a positive integer, got {num!r}")
-        if num > MAX_RUNS:   # before any array of that length exists
-            raise JobError(f"{where}.num", f"{num} values; a study holds at most {MAX_RUNS} runs "
-                                           "(split it into several studies)")
+        limit = max_runs()
+        if num > limit:   # before any array of that length exists
+            raise JobError(f"{where}.num", f"{num} values; a study holds at most {limit} runs: "
+                                           f"{_limit_advice()}")
         spacing = spec.get("spacing", "linear")
         if spacing == "linear":
             vals = np.linspace(start, stop, num)
@@ -142,10 +176,11 @@ def sweep_axes(sweep: dict) -> tuple[str, dict]:
             raise JobError("sweep.mode", f"'zip' needs lists of one length, got {lengths}")
     else:   # the product's size from the lengths, before a run is made
         runs = math.prod(len(v) for v in axes.values())
-        if runs > MAX_RUNS:
+        limit = max_runs()
+        if runs > limit:
             sizes = " x ".join(str(len(v)) for v in axes.values())
-            raise JobError("sweep", f"{sizes} = {runs} runs; a study holds at most {MAX_RUNS} "
-                                    "(split it into several studies, or use mode = 'zip')")
+            raise JobError("sweep", f"{sizes} = {runs} runs; a study holds at most {limit}: use "
+                                    f"mode = 'zip', {_limit_advice()}")
     return mode, axes
 
 
@@ -206,11 +241,51 @@ def refuse_swept_overrides(raw: dict, overrides=(), source: Path | None = None) 
                                        f"fixed, or drop --set {key}")
 
 
+def apply_sweep_overrides(raw: dict, overrides=()) -> tuple[dict, list]:
+    """``(raw, rest)``: ``raw`` (a copy) with the overrides of the sweep
+    applied to its ``[sweep]`` table, and the other overrides, in order.
+
+    The sweep's keys hold dots (``"packet.energy"``), so ``sweep.KEY`` is not
+    a path into nested tables: ``sweep`` replaces the whole table,
+    ``sweep.mode`` the mode, ``sweep.KEY`` the values of the axis ``KEY``
+    (or adds it), and ``sweep.KEY.PART`` one key of the range ``KEY``
+    (``start``, ``stop``, ``num``, ``spacing``).  Without this the runs
+    would carry a stray ``sweep`` table and the override would be lost."""
+    raw = copy.deepcopy(raw)
+    rest = []
+    for item in overrides or ():
+        key, value = parse_override(item) if isinstance(item, str) else item
+        if key == "sweep":
+            if not isinstance(value, dict):
+                raise JobError("--set sweep", f"the sweep is a table such as {{ mode = 'zip', "
+                                              f"\"packet.energy\" = [40.0, 80.0] }}, got {value!r}")
+            raw["sweep"] = value
+            continue
+        if not key.startswith("sweep."):
+            rest.append(item)
+            continue
+        sweep = raw.setdefault("sweep", {})
+        if not isinstance(sweep, dict):
+            raise JobError("sweep", "must be a table")
+        inner = key[len("sweep."):]
+        if inner == "mode" or inner in sweep:
+            sweep[inner] = value
+            continue
+        ranges = [k for k in sweep if isinstance(sweep[k], dict) and inner.startswith(k + ".")]
+        if ranges:
+            axis = max(ranges, key=len)
+            sweep[axis][inner[len(axis) + 1:]] = value
+        else:
+            sweep[inner] = value
+    return raw, rest
+
+
 def expand_study(raw: dict, source: Path | None = None, name: str | None = None,
                  overrides=()) -> Study:
     """All runs of a job table (``[sweep]`` optional: one run without it).
-    An override of a swept key is a JobError (:func:`refuse_swept_overrides`)."""
-    raw = copy.deepcopy(raw)
+    Overrides of the sweep change it (:func:`apply_sweep_overrides`); an
+    override of a swept key is a JobError (:func:`refuse_swept_overrides`)."""
+    raw, overrides = apply_sweep_overrides(raw, overrides)
     refuse_swept_overrides(raw, overrides, source)
     sweep = raw.pop("sweep", None)
     study_name = name or (source.stem if source else "study")
@@ -272,7 +347,5 @@ def load_study(path, overrides=(), name: str | None = None) -> Study:
     every run; a swept key set with --set is a JobError naming it)."""
     path = Path(path)
     raw = read_job_file(path)
-    # --set may also target the sweep table itself ("sweep.packet.energy" is
-    # not a dotted path into the sweep, whose keys contain dots, so only
-    # plain job fields are overridden here)
+    # --set sweep.* changes the sweep itself (apply_sweep_overrides)
     return expand_study(raw, source=path, name=name, overrides=overrides)
