@@ -71,13 +71,14 @@ class Case:
     job: dict = dc_field(default_factory=dict)   # patch of TINY
     prepare: Callable | None = None              # prepare(folder, result) -> path for {damaged}
     job_text: str | None = None                  # the job file's text, verbatim (instead of a patch)
+    env: dict = dc_field(default_factory=dict)   # environment variables of the case
 
 
 CASES: list[Case] = []
 
 
-def case(klass, name, argv, field, *pieces, job=None, prepare=None, job_text=None):
-    CASES.append(Case(klass, name, list(argv), field, pieces, job or {}, prepare, job_text))
+def case(klass, name, argv, field, *pieces, job=None, prepare=None, job_text=None, env=None):
+    CASES.append(Case(klass, name, list(argv), field, pieces, job or {}, prepare, job_text, env or {}))
 
 
 RUN = ["run", "{job}", "-o", "{tmp}/out", "--quiet"]
@@ -321,6 +322,134 @@ case("damaged", "arrivals-flux-scaled-up", READERS["arrivals"], "RUN.nc", "detec
      prepare=scaled("flux", 1e20))
 
 
+# -- numeric flags: finite and in range, read by one argparse type each --------------
+WORK = ["work", "--root", "{tmp}/root"]
+MOVIE = ["movie", "{result}", "-o", "{tmp}/m.gif"]
+PLOT = ["plot", "{result}", "-o", "{tmp}/p.png"]
+FLAGS = [
+    (WORK, "--checkpoint-minutes", ["-5", "0", "inf", "nan"]),
+    (WORK, "--lease-seconds", ["-1", "nan"]),
+    (WORK, "--max-attempts", ["0", "2.5"]),
+    (WORK, "--workers", ["0", "99999999999999999999999"]),
+    (WORK, "--batch", ["0", "-3"]),
+    (CHECK, "--trial-seconds", ["nan", "-1", "inf"]),
+    (CHECK, "--tolerance", ["0", "1.5", "nan"]),
+    (MOVIE, "--fps", ["nan", "0"]),
+    (MOVIE, "--every", ["0"]),
+    (MOVIE, "--dpi", ["5"]),
+    (MOVIE, "--floor", ["0", "2"]),
+    (MOVIE, "--size", ["0x0", "big"]),
+    (PLOT, "--dpi", ["nan"]),
+    (PLOT, "--size", ["99999x5"]),
+    (LEVELS, "--count", ["0", "1e3"]),
+    (["levels", "--from", "{result}"], "--min-weight", ["nan", "1"]),
+]
+for argv, flag, values in FLAGS:
+    for value in values:
+        case("flags", f"{argv[0]}{flag}={value}", [*argv, flag, value], flag)
+case("flags", "unknown-command", ["frobnicate"], "frobnicate")
+case("flags", "fft-unknown", [*RUN, "--fft", "fastest"], "--fft")
+case("flags", "run-without-output", ["run", "{job}"], "-o/--output")
+
+# -- --set: one value each, numbers that fit, the sweep changed or refused --------------
+SETS = [
+    ("multi-line", "packet.width=3\nevolve.dt=0.1", "--set packet.width", "more than one value"),
+    ("toml-after-value", 'title="a"\n[grid]', "--set title", "more than one value"),
+    ("unit-power-400", 'packet.width="3 m**400/m**399"', "packet.width", "power 400"),
+    ("unit-power-13", 'packet.width="3 nm^13"', "packet.width", "power 13"),
+    ("threads-huge", "evolve.threads=99999999999999999999999", "evolve.threads", "at most"),
+    ("duration-1e308", "evolve.duration=1e308", "evolve.duration", "outside"),
+    ("max-1e308", "grid.x.max=1e308", "grid.x.max", "outside"),
+    ("mass-1e-308", "particle.mass=1e-308", "particle.mass", "outside"),
+    ("duration-1e99", "evolve.duration=1e99", "evolve.duration", "time steps"),
+    ("sweep-mode-unknown", "sweep.mode=diagonal", "sweep.mode", "'diagonal'"),
+    ("sweep-mode-without-sweep", "sweep.mode=zip", "sweep", "no field"),
+    ("without-equals", "packet.width", "--set", "key=value"),
+    ("unknown-key", "evolve.dtt=0.1", "evolve.dtt", "'dt'"),
+    ("index-out-of-range", "potential.5.height=1", "potential.5", "range"),
+]
+for name, text, field, piece in SETS:
+    case("set", name, [*CHECK, "--set", text.replace("\\n", "\n")], field, piece)
+case("set", "levels-sweep-mode", [*LEVELS, "--set", "sweep.mode=zip"], "--set sweep.mode", "[sweep]",
+     job={"sweep": {"packet.momentum": [0.9, 1.1]}})
+
+
+# -- limits, and the documented way to raise them --------------------------------------
+case("sizes", "memory-limit-from-environment", [*RUN, "--set", "grid.x.points=100000"], "grid.x.points",
+     "WAVESWEEP_MAX_MEMORY", env={"WAVESWEEP_MAX_MEMORY": "1MiB"})
+case("sizes", "memory-limit-not-a-size", RUN, "WAVESWEEP_MAX_MEMORY", "not a memory size",
+     env={"WAVESWEEP_MAX_MEMORY": "lots"})
+case("sizes", "runs-limit-from-environment", SUBMIT, "sweep", "WAVESWEEP_MAX_RUNS",
+     job={"sweep": {"packet.momentum": [0.9, 1.0, 1.1, 1.2], "packet.width": [1.8, 1.9, 2.0, 2.1]}},
+     env={"WAVESWEEP_MAX_RUNS": "10"})
+
+
+# -- the queue database: ours, or refused untouched ------------------------------------
+def _root(folder: Path) -> Path:
+    root = folder / "root"
+    root.mkdir()
+    return root
+
+
+def foreign_sqlite(folder: Path, result: Path) -> Path:
+    import sqlite3
+    root = _root(folder)
+    raw = sqlite3.connect(root / "queue.sqlite")
+    raw.execute("CREATE TABLE notes (id INTEGER PRIMARY KEY, text TEXT)")
+    raw.execute("INSERT INTO notes (text) VALUES ('keep me')")
+    raw.commit()
+    raw.close()
+    return root
+
+
+def not_sqlite(folder: Path, result: Path) -> Path:
+    root = _root(folder)
+    (root / "queue.sqlite").write_bytes(bytes(range(256)) * 40)
+    return root
+
+
+_DAMAGED_QUEUE: list[bytes] = []
+
+
+def damaged_queue(folder: Path, result: Path) -> Path:
+    """A queue of 400 runs whose middle page is overwritten (made once)."""
+    import sqlite3
+    from wavesweep.batch.queue import Queue
+    from wavesweep.batch.sweep import expand_study
+
+    root = _root(folder)
+    db = root / "queue.sqlite"
+    if not _DAMAGED_QUEUE:
+        q = Queue(folder / "donor")
+        q.submit(expand_study(merged(TINY, {"sweep": {"packet.momentum": [0.5 + 0.001 * i for i in range(400)]}}),
+                              name="s"))
+        q.close()
+        raw = sqlite3.connect(folder / "donor" / "queue.sqlite")
+        raw.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+        raw.close()
+        data = bytearray((folder / "donor" / "queue.sqlite").read_bytes())
+        shutil.rmtree(folder / "donor")
+        page = int.from_bytes(data[16:18], "big")
+        middle = (len(data) // page // 2) * page
+        data[middle:middle + page] = bytes((37 * i + 11) % 256 for i in range(page))
+        _DAMAGED_QUEUE.append(bytes(data))
+    db.write_bytes(_DAMAGED_QUEUE[0])
+    return root
+
+
+QUEUE_COMMANDS = {
+    "status": ["status", "--root", "{damaged}"],
+    "retry": ["retry", "--root", "{damaged}"],
+    "cancel": ["cancel", "--root", "{damaged}"],
+    "submit": ["submit", "{job}", "--root", "{damaged}"],
+    "work": ["work", "--root", "{damaged}"],
+}   # (collect reads the study folders, not the database)
+for command, argv in QUEUE_COMMANDS.items():
+    case("queue", f"{command}-foreign-sqlite", argv, "--root", "another program's", prepare=foreign_sqlite)
+    case("queue", f"{command}-not-sqlite", argv, "--root", "not an SQLite database", prepare=not_sqlite)
+    case("queue", f"{command}-damaged", argv, "--root", "damaged", "submit", prepare=damaged_queue)
+
+
 # -- the harness ----------------------------------------------------------------------
 @pytest.fixture(scope="module")
 def good_result(tmp_path_factory):
@@ -350,6 +479,8 @@ def test_bad_input(item: Case, tmp_path, good_result, monkeypatch, capsys):
     monkeypatch.chdir(tmp_path)
     monkeypatch.setenv("WAVESWEEP_CACHE", str(tmp_path / ".cache"))
     monkeypatch.delenv("WAVESWEEP_DEBUG", raising=False)
+    for key, value in item.env.items():
+        monkeypatch.setenv(key, value)
     job = tmp_path / "job.toml"
     if item.job_text is not None:
         job.write_text(item.job_text)
@@ -394,4 +525,4 @@ def test_the_catalogue_covers_every_class():
     """Issue 13 asks for at least 120 bad inputs across its classes."""
     classes = {c.klass for c in CASES}
     assert len(CASES) >= 120, len(CASES)
-    assert {"sizes", "fields", "units", "expressions", "damaged"} <= classes
+    assert {"sizes", "fields", "units", "expressions", "damaged", "flags", "set", "queue"} <= classes
