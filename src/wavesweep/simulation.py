@@ -35,6 +35,7 @@ from .jobfile import Job, grid_axes, load_job
 from .observables import Detector, Observer
 from .potentials import PotentialContext, make_term
 from .propagators import propagator_class
+from .record import analysis_record
 from .schema import Field, to_atomic
 from .states import PACKET_SCHEMAS, build_state
 
@@ -348,7 +349,9 @@ class Simulation:
             resume = self._load_checkpoint(store)
         n_faces = len(s.absorber.layers) if s.absorber.active else 0
         if resume is None:
-            writer = ResultWriter(path, self._layout(), self._attrs())
+            # what analysis needs of the set-up, written once with the file (a resumed file has it)
+            record = analysis_record(s)
+            writer = ResultWriter(path, {**self._layout(), "record": record}, {**self._attrs(), **record["attrs"]})
             # psi0 itself: the propagator's load() copies it into its own array
             return _RunBook(path, writer, store, checkpoint, s.psi0, 0, np.zeros(n_faces), 0.0, True)
         writer = ResultWriter.resume(path, self._layout(), resume.result_copy, resume.n_time,

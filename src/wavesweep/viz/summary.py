@@ -13,6 +13,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import JobError
+from ..io.paths import input_file, output_file
 from ..io.results import open_result
 from . import style
 from .scene import FrameReader, read_scene
@@ -49,8 +50,7 @@ def plot_result(path, output, size=(1200, 900), dpi: int = 100) -> Path:
     """A run's figure, or a study's when ``path`` is a ``summary.nc``."""
     if not (10 <= dpi <= 1000):
         raise JobError("--dpi", f"must lie between 10 and 1000, got {dpi}")
-    if not Path(path).exists():
-        raise JobError("RUN.nc", f"no such file {str(path)!r}")
+    input_file(path, "RUN.nc", "file")    # a FIFO, a device or a folder: refused, never opened
     try:
         with xr.open_dataset(path, engine="netcdf4") as ds:
             is_study = "study" in ds.attrs and "final_absorbed" in ds
