@@ -150,7 +150,6 @@ def initial_marginals(psi0, grid, axis: int) -> tuple[np.ndarray, np.ndarray, np
     ax = grid.axes[axis]
     psi0 = np.asarray(psi0)
     others = tuple(i for i in range(psi0.ndim) if i != axis)
-    dens = None
     pad = MOMENTUM_PAD * ax.points
     w = np.zeros(pad)
     rho = np.zeros(ax.points)
@@ -161,13 +160,11 @@ def initial_marginals(psi0, grid, axis: int) -> tuple[np.ndarray, np.ndarray, np
         o = others[0]
         rest = int(np.prod([psi0.shape[i] for i in others[1:]], dtype=np.int64)) or 1
         per = max(1, SLAB_ELEMENTS // (pad * rest))
-        a = axis if axis < o else axis - 1
         for start in range(0, psi0.shape[o], per):
-            slab = np.take(psi0, range(start, min(start + per, psi0.shape[o])), axis=o)
-            dens = np.abs(slab) ** 2
-            keep = tuple(i for i in range(slab.ndim) if i != a)
-            rho += dens.sum(axis=keep)
-            c = np.fft.fft(slab, n=pad, axis=a)
+            slab = psi0[(slice(None),) * o + (slice(start, start + per),)]   # a view: the axes stay
+            keep = tuple(i for i in range(slab.ndim) if i != axis)
+            rho += (np.abs(slab) ** 2).sum(axis=keep)
+            c = np.fft.fft(slab, n=pad, axis=axis)
             w += (np.abs(c) ** 2).sum(axis=keep)
     k = 2 * np.pi * np.fft.fftfreq(pad, ax.dx)
     order = np.argsort(k, kind="stable")

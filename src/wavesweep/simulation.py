@@ -340,6 +340,12 @@ class Simulation:
         when a checkpoint policy finds the finished result already there."""
         s = self.setup
         _check_writable(path.parent)
+        if os.path.lexists(path) and not path.is_file():
+            # found now, before the run is computed, not when its finished file is renamed into place
+            from .io.paths import file_kind
+            raise JobError("--output", f"{str(path)!r}, where this run's result goes, is "
+                                       f"{file_kind(os.stat(path).st_mode) if path.exists() else 'a broken link'}; "
+                                       "move or remove it, or choose another folder with -o")
         store = resume = None
         if checkpoint is not None:
             store = CheckpointStore(checkpoint)

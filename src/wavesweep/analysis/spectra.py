@@ -944,35 +944,16 @@ def degenerate_groups(energies, rel_tol: float = DEGENERATE_TOL) -> list[tuple[i
     return groups
 
 
-def check_states_path(path, field: str = "--states") -> Path:
-    """Refuse, before any work, a states file that cannot be written: a
-    folder in its place, a folder that is not one or not writable (probed
-    by creating and removing the temporary name :func:`write_states` uses),
+def check_states_path(path, field: str = "--states", overwrite: bool = True) -> Path:
+    """Refuse, before any work, a states file that cannot be written: not a
+    ``.nc`` name, a folder or other non-file in its place, an existing file
+    without ``overwrite`` (the CLI's ``--overwrite``), a parent that is a
+    file, a folder that cannot be written (probed by creating a file there),
     or the nearest existing parent of a folder still to be made not
-    writable."""
-    path = Path(path)
-    if path.is_dir():
-        raise JobError(field, f"{str(path)!r} is a folder; give a file name such as {str(path / 'states.nc')!r}")
-    folder = path.parent if str(path.parent) else Path(".")
-    if folder.exists():
-        if not folder.is_dir():
-            raise JobError(field, f"cannot write {str(path)!r}: {str(folder)!r} is not a folder; choose another path")
-        probe = folder / f".{path.name}.part"
-        try:
-            with open(probe, "xb"):
-                pass
-        except FileExistsError:
-            return path    # a write under way or left over: write_states replaces it
-        except OSError as e:
-            raise JobError(field, f"cannot write {str(path)!r}: {e.strerror or e}; choose another path") from None
-        probe.unlink(missing_ok=True)
-        return path
-    parent = folder
-    while not parent.exists() and parent != parent.parent:
-        parent = parent.parent
-    if not parent.is_dir() or not os.access(parent, os.W_OK | os.X_OK):
-        raise JobError(field, f"cannot create the folder {str(folder)!r} in {str(parent)!r}; choose another path")
-    return path
+    writable (:func:`wavesweep.io.paths.output_file`)."""
+    from ..io.paths import output_file
+
+    return output_file(path, field, (".nc",), overwrite=overwrite, make_folders=True, kind="states file")
 
 
 def write_states(path, setup, energies_hartree, states, errors: LevelErrors | None = None) -> Path:

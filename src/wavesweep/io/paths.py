@@ -77,17 +77,15 @@ def output_folder(path, field: str) -> Path:
 
 
 def output_file(path, field: str, suffixes=None, overwrite: bool = True,
-                flag: str = "--overwrite", make_folders: bool = False) -> Path:
+                flag: str = "--overwrite", make_folders: bool = False, kind: str = "file") -> Path:
     """A file about to be written, checked before the work that makes it:
-    its suffix among ``suffixes`` (lower case, with the dot; None: any), no
-    folder or special file in its place, an existing file only with
-    ``overwrite`` (else the message names ``flag``), and a writable folder
-    (``make_folders``: a missing folder is made later, so its nearest
-    existing parent must be writable; otherwise the folder must exist)."""
+    no folder or special file in its place, its suffix among ``suffixes``
+    (lower case, with the dot; None: any; ``kind`` names the file type in
+    the message), an existing file only with ``overwrite`` (else the
+    message names ``flag``), and a writable folder (``make_folders``: a
+    missing folder is made later, so its nearest existing parent must be
+    writable; otherwise the folder must exist)."""
     path = Path(os.fspath(path))
-    if suffixes is not None and path.suffix.lower() not in suffixes:
-        raise JobError(field, f"unknown file type {path.suffix or '(none)'!r} in {str(path)!r}; "
-                              f"use one of {', '.join(suffixes)}")
     try:
         mode = os.stat(path).st_mode
     except FileNotFoundError:
@@ -102,6 +100,10 @@ def output_file(path, field: str, suffixes=None, overwrite: bool = True,
                                   f"{str(path / ('out' + (suffixes[0] if suffixes else '')))!r}")
         if not stat.S_ISREG(mode):
             raise JobError(field, f"{str(path)!r} is {file_kind(mode)}, not a regular file; choose another path")
+    if suffixes is not None and path.suffix.lower() not in suffixes:
+        raise JobError(field, f"unknown {kind} type {path.suffix or '(none)'!r} in {str(path)!r}; "
+                              f"use one of {', '.join(suffixes)}")
+    if mode is not None:
         if not overwrite:
             raise JobError(field, f"{str(path)!r} already exists; give {flag} to replace it, or another name")
     folder = path.parent if str(path.parent) else Path(".")
