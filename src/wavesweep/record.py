@@ -18,11 +18,15 @@ So the run writes, once, the few things analysis needs
 - in 1D, psi0 itself (``initial_psi_real/imag``) and the static potential
   on the full grid (``potential_full`` where snapshots are decimated), for
   energy-resolved transmission;
-- for a static Hamiltonian on up to LANCZOS_MAX_POINTS points, the Lanczos recurrence of psi0
-  (``lanczos_alpha``/``lanczos_beta``, :data:`LANCZOS_STEPS` steps at most)
-  and the spectrum's bounds (``spectrum_min``/``spectrum_max``): the energy
-  band psi0 holds, which ``levels --from`` needs (see
-  :func:`wavesweep.analysis.spectra.energy_band`);
+- for a static Hamiltonian on up to LANCZOS_MAX_POINTS points, the Lanczos
+  recurrence of psi0 (``lanczos_alpha``/``lanczos_beta``: the steps the
+  energy band psi0 holds takes for ``levels --from``'s defaults, at most
+  240 and a tenth of the run's steps, each costing about two of them), the
+  spectrum's bounds (``spectrum_min``/``spectrum_max``) and, where the band
+  needed it and the grid has at most 2048 points, the ground level
+  (``ground_energy``): see :func:`wavesweep.analysis.spectra.energy_band`
+  (a band the recorded steps cannot tighten enough is refused by ``levels
+  --from`` with the sampling it would need, as a live one is);
 - the set-up's adequacy warnings (``adequacy_warnings``, a JSON list of
   lines: :func:`wavesweep.adequacy.run_warnings`, judged once).
 
@@ -50,8 +54,6 @@ RECORD_VERSION = 1
 # The momentum marginal is sampled on a grid this many times finer than the axis's own
 # (zero-padded transform), as the classical free-flight estimate interpolates it.
 MOMENTUM_PAD = 4
-# Lanczos steps of psi0 recorded (analysis/spectra.py's BAND_STEPS: energy_band uses at most these).
-LANCZOS_STEPS = 240
 # Grids up to this many points record the recurrence: it keeps three complex vectors of the
 # grid's size at the run's start (above, `levels --from` says the run did not record its band).
 LANCZOS_MAX_POINTS = 2**22
@@ -92,8 +94,8 @@ class RecordedRun:
     ``k`` (ascending), both summing to 1.  ``psi0`` and ``static_potential``
     are kept for 1D runs only (None otherwise).  ``warnings`` is None when
     the file does not say (then analysis says the warnings are unavailable).
-    ``lanczos`` is ``(alphas, betas, exhausted, spectrum_min, spectrum_max)``
-    (hartree) for a static Hamiltonian, else None."""
+    ``lanczos`` is ``(alphas, betas, exhausted, spectrum_min, spectrum_max,
+    ground or None)`` (hartree) for a static Hamiltonian, else None."""
 
     grid: Grid
     mass: float
@@ -115,13 +117,12 @@ class RecordedRun:
     @classmethod
     def from_setup(cls, setup, lanczos: bool = False) -> "RecordedRun":
         """The record of a set-up in memory (what the run writes), without a
-        file; ``lanczos``: with the recurrence of psi0 (LANCZOS_STEPS
+        file; ``lanczos``: with the recurrence of psi0 (up to 240
         applications of H)."""
         rec = analysis_record(setup, warnings=False, lanczos=lanczos)
         lanczos = None
         if rec["lanczos"] is not None:
-            a, b, exhausted, lo, hi = rec["lanczos"]
-            lanczos = (a, b, exhausted, lo, hi)
+            lanczos = tuple(rec["lanczos"])
         ab = setup.absorber
         return cls(grid=setup.grid, mass=float(setup.mass),
                    detectors=[RecordedDetector(d.name, d.axis, float(d.position)) for d in setup.detectors],
@@ -203,11 +204,21 @@ def analysis_record(setup, warnings: bool = True, lanczos: bool = True) -> dict:
         out["initial_psi"] = np.asarray(setup.psi0, np.complex128) * math.sqrt(lf)
         out["potential_full"] = np.asarray(setup.hamiltonian.static_potential, float) / ef
     if lanczos and not setup.hamiltonian.time_dependent and grid.size <= LANCZOS_MAX_POINTS:
-        from .analysis.spectra import lanczos_recurrence   # lazy: the run needs it once, at its start
-        alphas, betas, exhausted, lo, hi = lanczos_recurrence(setup.hamiltonian, setup.psi0, LANCZOS_STEPS)
-        out["lanczos"] = (alphas, betas, exhausted, lo, hi)
+        # lazy: the run needs it once, at its start
+        from .analysis.spectra import (BAND_CHUNK, BAND_STEPS, DEFAULT_MIN_WEIGHT, DENSE_MAX_POINTS, band_window,
+                                       lanczos_recurrence)
+        resolution, width = band_window(setup.total_steps * setup.dt, setup.sample_steps * setup.dt)
+        # a bounded share of the run: at most a tenth of its steps (each costs about two of them), and
+        # the ground level only where it is a dense eigh of a few thousand points
+        steps = min(BAND_STEPS, max(2 * BAND_CHUNK, setup.total_steps // 10))
+        recorded = lanczos_recurrence(setup.hamiltonian, setup.psi0, DEFAULT_MIN_WEIGHT, resolution, width,
+                                      max_steps=steps, ground=grid.size <= DENSE_MAX_POINTS)
+        out["lanczos"] = recorded
+        alphas, betas, exhausted, lo, hi, ground = recorded
         attrs.update({"lanczos_exhausted": int(exhausted), "spectrum_min": float(lo / ef),
                       "spectrum_max": float(hi / ef)})
+        if ground is not None:
+            attrs["ground_energy"] = float(ground / ef)
     return out
 
 
@@ -264,7 +275,8 @@ def _read(ds) -> RecordedRun:
         lanczos = (np.asarray(ds["lanczos_alpha"].values, float) * ef,
                    betas[np.isfinite(betas)] * ef,       # NaN past the last (an exhausted recurrence)
                    bool(int(a["lanczos_exhausted"])), float(a["spectrum_min"]) * ef,
-                   float(a["spectrum_max"]) * ef)
+                   float(a["spectrum_max"]) * ef,
+                   float(a["ground_energy"]) * ef if "ground_energy" in a else None)
     warnings = json.loads(a["adequacy_warnings"]) if "adequacy_warnings" in a else None
     return RecordedRun(grid=grid, mass=mass, detectors=dets, absorber=absorber,
                        time_dependent=bool(int(a["time_dependent"])), marginals=marginals,

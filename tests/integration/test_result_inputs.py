@@ -186,8 +186,9 @@ def test_the_recorded_band_is_the_live_one():
 
     setup = setup_of(WELL)
     h, psi0 = setup.hamiltonian, setup.psi0
-    recorded = lanczos_recurrence(h, psi0)
-    for threshold, resolution, width in ((1e-6, 0.05, None), (1e-8, 0.01, 40.0), (1e-4, 0.1, 60.0)):
+    for threshold, resolution, width in ((1e-6, 0.05, None), (1e-8, 0.01, 40.0), (1e-4, 0.1, 60.0),
+                                         (1e-6, 0.12, 0.5)):     # too narrow: the ground level is the edge
+        recorded = lanczos_recurrence(h, psi0, threshold, resolution, width)
         assert recorded_energy_band(recorded, threshold, resolution, width) == \
             energy_band(h, psi0, threshold, resolution, width)
 

@@ -1142,19 +1142,46 @@ class _RecordedLanczos(_Lanczos):
         return len(self.alphas) < len(self._alphas)
 
 
-def lanczos_recurrence(h, psi, steps: int = BAND_STEPS):
-    """``(alphas, betas, exhausted, spectrum_min, spectrum_max)``: ``steps``
-    Lanczos steps of H (with the eigensolvers' walls, :func:`walled_potential`)
-    from psi, and the bounds V_min + T_min, V_max + T_max of its spectrum
-    (hartree).  A run writes them into its result, and
-    :func:`recorded_energy_band` gives psi's energy band from them as
-    :func:`energy_band` does from H (``levels --from`` needs no H)."""
+# What a run records for `levels --from` is the band its defaults ask for (--min-weight, the window).
+DEFAULT_MIN_WEIGHT = 1e-6
+
+
+def band_window(duration: float, sample_step: float) -> tuple[float, float]:
+    """``(resolution, width)`` (hartree) :func:`autocorrelation_levels`
+    asks :func:`energy_band` for, with the default window tau = duration /
+    WINDOW_RATIO, for samples ``sample_step`` apart (atomic units)."""
+    tau = duration / WINDOW_RATIO
+    period = 2.0 * math.pi / sample_step
+    return 1.0 / tau, (1.0 - 1e-9) * period - 2.0 * (6.0 / tau)
+
+
+def lanczos_recurrence(h, psi, threshold: float = DEFAULT_MIN_WEIGHT, resolution: float = 0.0,
+                       width: float | None = None, max_steps: int = BAND_STEPS, ground: bool = True):
+    """``(alphas, betas, exhausted, spectrum_min, spectrum_max, ground)``:
+    the Lanczos steps of H (with the eigensolvers' walls,
+    :func:`walled_potential`) from psi that :func:`energy_band` takes for
+    these arguments, the bounds V_min + T_min, V_max + T_max of the spectrum
+    and the ground level where it needed one (else None), in hartree.  A run
+    writes them into its result for the arguments of ``levels --from``'s
+    defaults (:func:`band_window`), and :func:`recorded_energy_band` gives
+    psi's band from them as :func:`energy_band` does from H (``levels
+    --from`` needs no H; other arguments may need steps not recorded, and
+    then give a looser band).  ``max_steps`` caps the steps and
+    ``ground=False`` leaves the ground level out (the band is then looser:
+    a run bounds what it spends on this)."""
     v, _ = walled_potential(h, None)
     lo = float(v.min()) + float(h.kinetic.min())
     hi = float(v.max()) + float(h.kinetic.max())
     lanczos = _Lanczos(lambda x: h.apply_static(x, potential=v), psi, hi - lo + 1e-300)
-    lanczos.extend(steps)
-    return np.array(lanczos.alphas), np.array(lanczos.betas), lanczos.exhausted, lo, hi
+    found = []
+
+    def ground_level():
+        found.append(ground_energy(h))
+        return found[-1]
+    _band(lanczos, lo, hi, threshold, resolution, width, ground=ground_level if ground else None,
+          max_steps=max_steps)
+    return (np.array(lanczos.alphas), np.array(lanczos.betas), lanczos.exhausted, lo, hi,
+            found[-1] if found else None)
 
 
 def lanczos_quadrature(apply, psi, steps: int, scale: float):
@@ -1226,21 +1253,23 @@ def energy_band(h, psi, threshold: float, resolution: float, width: float | None
 
 def recorded_energy_band(recorded, threshold: float, resolution: float, width: float | None = None):
     """:func:`energy_band` from a recurrence a run recorded,
-    ``(alphas, betas, exhausted, spectrum_min, spectrum_max)``
-    (:func:`lanczos_recurrence`).  Where :func:`energy_band` would take
-    the ground level as the lower edge, the spectrum's bound V_min + T_min
-    stays the edge (a looser bound: no Hamiltonian to diagonalise here)."""
-    alphas, betas, exhausted, spectrum_lo, spectrum_hi = recorded
+    ``(alphas, betas, exhausted, spectrum_min, spectrum_max, ground)``
+    (:func:`lanczos_recurrence`): the same band for the arguments it was
+    recorded for.  Others may need more steps than were recorded (the band
+    is then the one the recorded steps give, looser) or the ground level
+    where none was recorded (the spectrum's bound V_min + T_min stays the
+    lower edge: no Hamiltonian to diagonalise here)."""
+    alphas, betas, exhausted, spectrum_lo, spectrum_hi, ground = recorded
     return _band(_RecordedLanczos(alphas, betas, exhausted), float(spectrum_lo), float(spectrum_hi),
-                 threshold, resolution, width, ground=None)
+                 threshold, resolution, width, ground=None if ground is None else (lambda: float(ground)))
 
 
-def _band(lanczos, spectrum_lo, spectrum_hi, threshold, resolution, width, ground):
+def _band(lanczos, spectrum_lo, spectrum_hi, threshold, resolution, width, ground, max_steps=BAND_STEPS):
     def fits(lo_, hi_):
         return width is not None and hi_ - lo_ <= width
 
     lo, hi = -math.inf, math.inf
-    while lanczos.steps < BAND_STEPS and not lanczos.exhausted and lanczos.more:
+    while lanczos.steps < max_steps and not lanczos.exhausted and lanczos.more:
         lanczos.extend(BAND_CHUNK)
         nodes, weights = lanczos.quadrature()
         new_lo, new_hi = quadrature_band(nodes, weights, threshold)

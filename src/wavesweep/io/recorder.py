@@ -292,7 +292,7 @@ class ResultWriter:
                 v[:] = rec["potential_full"]
                 v.units, v.long_name = u["energy"], "static part of the potential V (full grid)"
         if rec.get("lanczos") is not None:
-            alphas, betas, _, _, _ = rec["lanczos"]
+            alphas, betas = rec["lanczos"][:2]
             factor = rec["energy_factor"]
             ds.createDimension("lanczos_step", len(alphas))
             v = self._var("lanczos_alpha", "f8", ("lanczos_step",))
