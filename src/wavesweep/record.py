@@ -54,6 +54,29 @@ RECORD_VERSION = 1
 # The momentum marginal is sampled on a grid this many times finer than the axis's own
 # (zero-padded transform), as the classical free-flight estimate interpolates it.
 MOMENTUM_PAD = 4
+# Global attributes read_record relies on: HDF5 checksums cover variables, not attributes, so
+# the writer adds a CRC-32 of these (record_checksum) and the reader refuses a mismatch.
+CHECKED_ATTRS = ("analysis_record", "grid_axes", "absorber_thickness", "time_dependent", "adequacy_warnings",
+                 "lanczos_exhausted", "spectrum_min", "spectrum_max", "ground_energy", "absorber", "grid_kind",
+                 "angular_momentum", "particle_mass", "dt", "length_to_bohr", "energy_to_hartree",
+                 "time_to_atomic", "mass_to_electron_mass")
+
+
+def record_checksum(attrs) -> int:
+    """CRC-32 of the attributes the record is read from (CHECKED_ATTRS and
+    the grid_<axis>_* ones), each as written: a flipped bit in one of them
+    is damage, never a silently different set-up."""
+    import zlib
+
+    keys = sorted(k for k in attrs if k in CHECKED_ATTRS or k.startswith("grid_"))
+    parts = []
+    for k in keys:
+        v = attrs[k]
+        v = v.item() if hasattr(v, "item") else v
+        parts.append(f"{k}={type(v).__name__ if not isinstance(v, (int, float, str)) else ''}{v!r}")
+    return zlib.crc32("\n".join(parts).encode())
+
+
 # Grids up to this many points record the recurrence: it keeps three complex vectors of the
 # grid's size at the run's start (above, `levels --from` says the run did not record its band).
 LANCZOS_MAX_POINTS = 2**22
@@ -231,6 +254,9 @@ def read_record(ds, field: str = "RUN.nc", lanczos: bool = False) -> RecordedRun
     a = ds.attrs
     if int(a.get("analysis_record", 0) or 0) < 1:
         return _rebuilt(ds, field, lanczos)
+    if "analysis_record_crc32" not in a or int(a["analysis_record_crc32"]) != record_checksum(a):
+        raise JobError(field, f"{_name(ds)}: the attributes of the run's set-up fail their checksum, the file is "
+                              "damaged; run the job again")
     try:
         return _read(ds)
     except (KeyError, ValueError, TypeError) as e:

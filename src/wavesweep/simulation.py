@@ -35,7 +35,7 @@ from .jobfile import Job, grid_axes, load_job
 from .observables import Detector, Observer
 from .potentials import PotentialContext, make_term
 from .propagators import propagator_class
-from .record import analysis_record
+from .record import analysis_record, record_checksum
 from .schema import Field, to_atomic
 from .states import PACKET_SCHEMAS, build_state
 
@@ -357,7 +357,9 @@ class Simulation:
         if resume is None:
             # what analysis needs of the set-up, written once with the file (a resumed file has it)
             record = analysis_record(s)
-            writer = ResultWriter(path, {**self._layout(), "record": record}, {**self._attrs(), **record["attrs"]})
+            attrs = {**self._attrs(), **record["attrs"]}
+            attrs["analysis_record_crc32"] = record_checksum(attrs)   # attributes have no HDF5 checksum
+            writer = ResultWriter(path, {**self._layout(), "record": record}, attrs)
             # psi0 itself: the propagator's load() copies it into its own array
             return _RunBook(path, writer, store, checkpoint, s.psi0, 0, np.zeros(n_faces), 0.0, True)
         writer = ResultWriter.resume(path, self._layout(), resume.result_copy, resume.n_time,

@@ -347,3 +347,14 @@ def test_titles_and_names_are_drawn_as_plain_text(tmp_path, capsys):
                  ["arrivals", path, "--plot", tmp_path / "a.png"]):
         code, _, err = _output([str(a) for a in argv], capsys)
         assert code == 0, err
+
+
+def test_a_changed_set_up_attribute_is_damage(free_result, tmp_path, capsys):
+    """Attributes carry no HDF5 checksum: the record's CRC-32 catches a
+    changed grid bound (before the record, analysis read the job text)."""
+    edited = tmp_path / "edited.nc"
+    shutil.copy(free_result, edited)
+    with netCDF4.Dataset(edited, "a") as ds:
+        ds.setncattr("grid_x_min", -41.0)
+    _refused(["arrivals", edited], capsys, "RUN.nc", "checksum", "damaged")
+    _refused(["transmission", edited], capsys, "RUN.nc", "checksum", "damaged")
