@@ -181,6 +181,7 @@ def _parser() -> argparse.ArgumentParser:
     ar.add_argument("--detector", default=None, help="only this detector")
     ar.add_argument("--json", action="store_true", help="print one JSON object")
     ar.add_argument("--plot", default=None, metavar="FILE", help="draw the distributions (.png/.pdf/.svg)")
+    ar.add_argument("--overwrite", action="store_true", help="replace FILE if it exists (without it an existing file is refused)")
 
     tr = sub.add_parser("transmission", help="transmission and reflection of a run, and T(E)")
     tr.add_argument("result", metavar="RUN.nc")
@@ -200,12 +201,14 @@ def _parser() -> argparse.ArgumentParser:
                                                          "(needs record.snapshot_psi = true)")
     mv.add_argument("--projection", default=None, metavar="AXIS", help="3D: integrate over AXIS (default z)")
     mv.add_argument("--slice", default=None, metavar="AXIS=VALUE", help="3D: the plane AXIS = VALUE instead")
+    mv.add_argument("--overwrite", action="store_true", help="replace FILE if it exists (without it an existing file is refused)")
 
     pl = sub.add_parser("plot", help="a summary figure of a run, or of a study's summary.nc")
     pl.add_argument("result", metavar="RUN.nc")
     pl.add_argument("-o", "--output", required=True, metavar="FILE", help="FILE.png, .pdf or .svg")
     pl.add_argument("--size", type=FLAG_TYPES["--size"], default="1200x900", metavar="WxH", help="figure size in pixels")
     pl.add_argument("--dpi", type=FLAG_TYPES["--dpi"], default=100, help="dots per inch")
+    pl.add_argument("--overwrite", action="store_true", help="replace FILE if it exists (without it an existing file is refused)")
 
     lv = sub.add_parser("levels", help="lowest stationary energies of a job, or the levels in a run")
     lv.add_argument("job", nargs="?", default=None, metavar="JOB.toml", help="job file (not with --from)")
@@ -215,6 +218,8 @@ def _parser() -> argparse.ArgumentParser:
     lv.add_argument("--set", action="append", default=[], metavar="KEY=VALUE", help="override a job field")
     lv.add_argument("--states", default=None, metavar="FILE.nc",
                     help="write the states (netCDF; [packet] kind = 'file' with state = i reads one)")
+    lv.add_argument("--overwrite", action="store_true", help="replace the --states file if it exists "
+                                                             "(without it an existing file is refused)")
     lv.add_argument("--from", dest="from_run", default=None, metavar="RUN.nc",
                     help="the levels in a run's autocorrelation instead (no JOB.toml)")
     lv.add_argument("--min-weight", type=FLAG_TYPES["--min-weight"], default=1e-6, metavar="W",
@@ -291,7 +296,9 @@ def _run(args) -> int:
     from .simulation import Simulation
 
     from .check import preflight
+    from .io.paths import output_folder
 
+    output_folder(args.output, "--output")   # a file in its place or an unwritable folder: before any work
     study = load_study(args.job, args.set)   # validates every run before any starts
     _warn("run", preflight(study.runs, force=args.force))   # judges every run before any starts
     n = len(study.runs)
@@ -449,12 +456,16 @@ ARRIVAL_KEYS = ("probability", "mean", "std", "median", "q10", "q90", "most_prob
 
 def _arrivals(args) -> int:
     from .analysis.arrivals import arrival_times
+    from .io.paths import output_file
+    from .viz.arrivals import FIGURE_TYPES
 
+    if args.plot:   # before the distributions are computed
+        output_file(args.plot, "--plot", FIGURE_TYPES, overwrite=args.overwrite, kind="figure")
     dists = arrival_times(args.result, args.detector)
     units = next(iter(dists.values())).time_units
     if args.plot:
         from .viz.arrivals import plot_arrivals
-        plot_arrivals(dists, args.plot, title=_run_title(args.result))
+        plot_arrivals(dists, args.plot, title=_run_title(args.result), overwrite=args.overwrite)
     if args.json:
         print(json.dumps(_finite({"detectors": {n: d.as_dict() for n, d in dists.items()},
                                   "time_units": units})))
@@ -524,7 +535,7 @@ def _movie(args) -> int:
     opt = MovieOptions(every=args.every, fps=args.fps, dpi=args.dpi, size=args.size,
                        scale=args.scale, floor=args.floor, parts=args.parts,
                        projection=args.projection, slice=cut)
-    out = render_movie(args.result, args.output, opt)
+    out = render_movie(args.result, args.output, opt, overwrite=args.overwrite)
     print(f"{out['path']}: {out['frames']} frames, {out['frames'] / out['fps']:.1f} s at {out['fps']:g} "
           f"frames/s (made in {out['seconds']:.1f} s)")
     return EXIT_OK
@@ -533,7 +544,7 @@ def _movie(args) -> int:
 def _plot(args) -> int:
     from .viz.summary import plot_result
 
-    print(plot_result(args.result, args.output, args.size, args.dpi))
+    print(plot_result(args.result, args.output, args.size, args.dpi, overwrite=args.overwrite))
     return EXIT_OK
 
 
@@ -546,7 +557,8 @@ def _levels(args) -> int:
     if args.from_run is not None:
         if args.job is not None:
             raise JobError("--from", "give either JOB.toml or --from RUN.nc, not both")
-        for flag, given in (("--states", args.states is not None), ("--set", bool(args.set))):
+        for flag, given in (("--states", args.states is not None), ("--set", bool(args.set)),
+                            ("--overwrite", args.overwrite)):
             if given:
                 raise JobError(flag, "applies to JOB.toml; --from reads the levels of a finished run")
         found = autocorrelation_levels(args.from_run, args.count, min_weight=args.min_weight, field="--from")
@@ -566,8 +578,8 @@ def _levels(args) -> int:
         from .jobfile import load_job
         from .simulation import Model
 
-        if args.states:
-            check_states_path(args.states)   # before the solve: a path that cannot be written costs nothing
+        if args.states:   # before the solve: a path that cannot be written (or is taken) costs nothing
+            check_states_path(args.states, overwrite=args.overwrite)
         from .jobfile import read_job_file
         swept = [k for k in (read_job_file(args.job).get("sweep") or {}) if k != "mode"]
         job = load_job(args.job, args.set, sweep=False)   # the levels of one job: the sweep plays no part

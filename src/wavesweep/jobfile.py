@@ -16,6 +16,8 @@ import copy
 import hashlib
 import json
 import math
+import os
+import stat
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -25,6 +27,7 @@ import tomli_w
 from .absorbers.layers import face_names
 from .errors import ErrorCollector, JobError, combine_errors
 from .grid import BOUNDARIES, Axis, Grid
+from .io.paths import file_kind
 from .potentials import REGISTRY, PotentialContext, make_term, term_class
 from .propagators import SCHEMES
 from .schema import MAX_INT, Field, check_unknown, unknown_keys, validate_table
@@ -288,11 +291,15 @@ def read_job_file(path) -> dict:
     """The raw table of a job file (TOML), with one-line errors."""
     path = Path(path)
     try:
+        # a FIFO or a device (/dev/zero) would block or never end: only regular files are read
+        mode = os.stat(path).st_mode
+        if stat.S_ISDIR(mode):
+            raise JobError("", f"{str(path)!r} is a folder, not a job file")
+        if not stat.S_ISREG(mode):
+            raise JobError("", f"{str(path)!r} is {file_kind(mode)}, not a regular file; give a job file on disk")
         data = path.read_bytes()
-    except FileNotFoundError:
+    except (FileNotFoundError, NotADirectoryError):
         raise JobError("", f"job file {str(path)!r} not found") from None
-    except IsADirectoryError:
-        raise JobError("", f"{str(path)!r} is a folder, not a job file") from None
     except OSError as e:
         raise JobError("", f"cannot read job file {str(path)!r}: {e.strerror}") from None
     if data.startswith(DATA_FILE_MAGIC):

@@ -260,11 +260,12 @@ def _read_outputs(path: Path, setup: Setup) -> dict:
 
     from .analysis.arrivals import arrival_times
     from .analysis.transmission import transmission_totals
+    from .record import read_record
 
     out = {}
     with xr.open_dataset(path) as ds:
         ds.load()
-        totals = transmission_totals(ds, setup)
+        totals = transmission_totals(ds, read_record(ds))   # the run's record, as analysis reads it
         for face, value in totals["absorbed"].items():
             out[f"absorbed {face}"] = _Output(f"absorbed at {face}", "probability", value, "")
         for name, d in totals["detectors"].items():

@@ -35,6 +35,7 @@ from .jobfile import Job, grid_axes, load_job
 from .observables import Detector, Observer
 from .potentials import PotentialContext, make_term
 from .propagators import propagator_class
+from .record import analysis_record, record_checksum
 from .schema import Field, to_atomic
 from .states import PACKET_SCHEMAS, build_state
 
@@ -346,6 +347,12 @@ class Simulation:
         when a checkpoint policy finds the finished result already there."""
         s = self.setup
         _check_writable(path.parent)
+        if os.path.lexists(path) and not path.is_file():
+            # found now, before the run is computed, not when its finished file is renamed into place
+            from .io.paths import file_kind
+            raise JobError("--output", f"{str(path)!r}, where this run's result goes, is "
+                                       f"{file_kind(os.stat(path).st_mode) if path.exists() else 'a broken link'}; "
+                                       "move or remove it, or choose another folder with -o")
         store = resume = None
         if checkpoint is not None:
             store = CheckpointStore(checkpoint)
@@ -355,7 +362,11 @@ class Simulation:
             resume = self._load_checkpoint(store)
         n_faces = len(s.absorber.layers) if s.absorber.active else 0
         if resume is None:
-            writer = ResultWriter(path, self._layout(), self._attrs())
+            # what analysis needs of the set-up, written once with the file (a resumed file has it)
+            record = analysis_record(s)
+            attrs = {**self._attrs(), **record["attrs"]}
+            attrs["analysis_record_crc32"] = record_checksum(attrs)   # attributes have no HDF5 checksum
+            writer = ResultWriter(path, {**self._layout(), "record": record}, attrs)
             # psi0 itself: the propagator's load() copies it into its own array
             return _RunBook(path, writer, store, checkpoint, s.psi0, 0, np.zeros(n_faces), 0.0, True)
         writer = ResultWriter.resume(path, self._layout(), resume.result_copy, resume.n_time,

@@ -21,11 +21,11 @@ on the grid (centre outside, or cut by an edge) is an error.
 from __future__ import annotations
 
 import math
-import os
 
 import numpy as np
 
 from .errors import JobError
+from .io.paths import input_file
 from .schema import Field
 
 __all__ = ["PACKET_SCHEMAS", "PACKET_FORMULAS", "build_state", "gaussian_packet", "momentum_spread"]
@@ -233,8 +233,7 @@ def _from_file(packet, grid, field, length_unit=(1.0, "bohr")):
     import xarray as xr
 
     path = packet["path"]
-    if not os.path.exists(path):
-        raise JobError(f"{field}.path", f"no such file {path!r}")
+    input_file(path, f"{field}.path", "state file")   # a FIFO or /dev/zero would block or never end
     try:
         with xr.open_dataset(path) as ds:
             for key in ("real", "imag"):

@@ -341,15 +341,38 @@ def test_a_damaged_result_is_one_line_naming_the_variable(free_result, tmp_path,
 
 @pytest.mark.parametrize("fraction", [0.5, 0.9])
 def test_a_flipped_byte_anywhere_is_exit_2_for_plot_and_arrivals(free_result, tmp_path, capsys, fraction):
-    """One byte of a result flipped inside its data (here at half and 90 % of
-    the file: density and final-state blocks of this run): `plot` and
+    """One byte of a result flipped inside its data (the first byte from half
+    and from 90 % of the file on, in steps of 4 KiB, whose flip changes what
+    the file holds: a byte of free space holds nothing): `plot` and
     `arrivals` answer with one line and exit 2, never a traceback or a
     number (before: exit 1, an HDF error)."""
-    raw = bytearray(free_result.read_bytes())
-    raw[int(len(raw) * fraction)] ^= 0x40
+    raw = bytes(free_result.read_bytes())
     damaged = tmp_path / "damaged.nc"
-    damaged.write_bytes(bytes(raw))
+    for offset in range(int(len(raw) * fraction), len(raw), 4096):
+        flipped = bytearray(raw)
+        flipped[offset] ^= 0x40
+        damaged.write_bytes(bytes(flipped))
+        if _holds_something_else(free_result, damaged):
+            break
+    else:
+        pytest.fail("no flipped byte changed the file's content")
     for argv in (["plot", str(damaged), "-o", str(tmp_path / "d.png")], ["arrivals", str(damaged)]):
         code = main(argv)
         out, err = capsys.readouterr()
         assert code == 2 and len(err.strip().splitlines()) == 1, err
+
+
+def _holds_something_else(original, damaged) -> bool:
+    """Whether the data of ``damaged`` reads differently from ``original``'s
+    (a variable, or an error where the original reads)."""
+    try:
+        with xr.open_dataset(original) as a, xr.open_dataset(damaged) as b:
+            if set(a.variables) != set(b.variables):
+                return True
+            for name in a.variables:
+                va, vb = a[name].values, b[name].values
+                if va.shape != vb.shape or not np.array_equal(va, vb, equal_nan=va.dtype.kind == "f"):
+                    return True
+    except Exception:
+        return True
+    return False

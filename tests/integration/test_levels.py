@@ -19,6 +19,7 @@ from conftest import make_job, run_table
 from test_cli import assert_bad_input, cli, write_job
 from wavesweep.analysis.spectra import autocorrelation_levels, stationary_states
 from wavesweep.errors import JobError
+from wavesweep.simulation import Setup
 
 
 def test_hydrogen_s_levels_in_ev():
@@ -342,10 +343,14 @@ def test_no_aliased_lines_in_a_double_well(tmp_path):
 
 
 def result_setup_of(path):
-    from wavesweep.io.results import result_setup
+    """The run's Setup, rebuilt here from the job the result keeps (the
+    reference computation needs H; analysis itself never rebuilds it)."""
+    import tomllib
+
+    from wavesweep.jobfile import job_from_dict
 
     with xr.open_dataset(path) as ds:
-        return result_setup(ds)
+        return Setup(job_from_dict(tomllib.loads(ds.attrs["job"])))
 
 
 def test_levels_are_printed_before_the_states_are_written(tmp_path, monkeypatch, capsys):

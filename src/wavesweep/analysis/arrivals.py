@@ -37,7 +37,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import JobError
-from ..io.results import open_result, result_setup, result_units
+from ..io.results import open_result, result_units
+from ..record import as_record, read_record
 
 __all__ = ["ArrivalDistribution", "arrival_statistics", "arrival_times", "classical_free_flight"]
 
@@ -128,7 +129,7 @@ def arrival_statistics(time, density) -> dict:
     return out
 
 
-def classical_free_flight(psi0, grid, axis: int, mass: float, x_detector: float,
+def classical_free_flight(x_axis, rho, k, w, mass: float, x_detector: float,
                           time_atomic: np.ndarray) -> tuple[np.ndarray, float, float]:
     """Classical free-flight arrival estimate from psi(t=0), atomic units.
 
@@ -139,28 +140,20 @@ def classical_free_flight(psi0, grid, axis: int, mass: float, x_detector: float,
     towards the detector.  So Pi_cl(t) = int dx rho(x) w(p(x, t)) m |x_d - x| / t^2
     with p(x, t) = m (x_d - x) / t, and the mean is <m (x_d - x) / p>.
 
+    The marginals are the run's record (:func:`wavesweep.record.initial_marginals`):
+    ``rho`` on the axis's coordinates ``x_axis``, ``w`` on the ascending wave
+    numbers ``k`` (a zero-padded transform: a fine p grid), each summing to 1.
+
     Returns (density on ``time_atomic`` per atomic time unit, probability of
     moving towards the detector, mean arrival time of that part)."""
-    ax = grid.axes[axis]
-    dens = np.abs(psi0) ** 2
-    other = tuple(i for i in range(grid.ndim) if i != axis)
-    rho = dens.sum(axis=other) if other else dens
-    rho = rho / np.sum(rho)
-    # momentum density along the axis, zero-padded for a fine p grid
-    pad = 4 * ax.points
-    c = np.fft.fft(psi0, n=pad, axis=axis)
-    w = np.abs(c) ** 2
-    w = w.sum(axis=other) if other else w
-    k = 2 * np.pi * np.fft.fftfreq(pad, ax.dx)
-    order = np.argsort(k)
-    k, w = k[order], w[order]
-    w = w / np.sum(w)
+    x_axis, rho = np.asarray(x_axis, float), np.asarray(rho, float)
+    k, w = np.asarray(k, float), np.asarray(w, float)
     dk = k[1] - k[0]
     # the positions that carry the packet, on its side of the detector
     # (arrivals come from the packet's side, as for the oriented flux)
-    x0 = float(np.sum(rho * ax.coordinates))
-    keep = (rho > 1e-12 * rho.max()) & ((ax.coordinates - x_detector) * (x0 - x_detector) > 0)
-    x, rho = ax.coordinates[keep], rho[keep]
+    x0 = float(np.sum(rho * x_axis))
+    keep = (rho > 1e-12 * rho.max()) & ((x_axis - x_detector) * (x0 - x_detector) > 0)
+    x, rho = x_axis[keep], rho[keep]
     distance = x_detector - x                    # per position
     towards = k[None, :] * distance[:, None] > 0
     weight = rho[:, None] * w[None, :] * towards
@@ -255,8 +248,9 @@ def arrival_times(result, detector: str | None = None,
     False`` leaves out the classical estimate (its curve is zeros, its
     probability and mean NaN): the accuracy pilot needs only the quantum
     statistics, and the estimate costs more than they do.  ``warnings =
-    False`` leaves out the run's set-up judged again (its adequacy
-    findings), for callers that judge it themselves or only tabulate."""
+    False`` leaves out the adequacy findings of the run's set-up (judged
+    once, at run time, and read from the file), for callers that judge it
+    themselves or only tabulate."""
     ds = open_result(result, require=("flux", "time"))
     try:
         return _arrivals(ds, detector, classical, warnings)
@@ -272,14 +266,13 @@ def _arrivals(ds, detector, classical=True, warnings=True):
                                  "to the job and run it again")
     if detector is not None and detector not in names:
         raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
-    from ..adequacy import run_warnings
-
     uc = result_units(ds)
-    setup = result_setup(ds)
+    # what the run wrote for analysis: never a set-up rebuilt from the job attribute
+    setup = read_record(ds)
     # the adequacy criteria of the run's set-up (momentum over the run,
-    # absorbers at what arrives, resolution, time step and splitting):
-    # ``warnings=False`` skips them where a caller judges the set-up itself
-    said = run_warnings(setup) if warnings else []
+    # absorbers at what arrives, resolution, time step and splitting), judged
+    # at run time: ``warnings=False`` skips them where a caller judges the set-up itself
+    said = recorded_warnings(setup) if warnings else []
     t = np.asarray(ds["time"].values, float)
     if len(t) < 3:
         raise JobError("RUN.nc", f"the run holds {len(t)} samples; arrival times need at least 3")
@@ -324,8 +317,9 @@ def _arrivals(ds, detector, classical=True, warnings=True):
                             f"it against {forward:.3g} forward; the times are those of the forward "
                             "flux, the probability is the net crossing")
         if classical:
-            cl, cl_prob, cl_mean = classical_free_flight(setup.psi0, setup.grid, det.axis, setup.mass,
-                                                         det.position, t * uc["time"])
+            rho0, k0, w0 = setup.marginals[det.axis]
+            cl, cl_prob, cl_mean = classical_free_flight(setup.grid.axes[det.axis].coordinates, rho0, k0, w0,
+                                                         setup.mass, det.position, t * uc["time"])
         else:
             cl, cl_prob, cl_mean = np.zeros_like(t), math.nan, math.nan
         stats["classical_probability"] = cl_prob
@@ -360,6 +354,15 @@ def _arrivals(ds, detector, classical=True, warnings=True):
     return out
 
 
+def recorded_warnings(record) -> list[str]:
+    """The run's adequacy warnings as its file holds them, or one line saying
+    they are unavailable (a file that does not say)."""
+    if record.warnings is None:
+        return ["the run's set-up: its adequacy findings are unavailable (the file does not hold "
+                "them); `wavesweep check` on its job judges them"]
+    return list(record.warnings)
+
+
 def _layer_edge(setup, face: str) -> float:
     """Inner edge (bohr) of a face's absorbing layer."""
     ax = setup.grid.axes[setup.grid.axis_index(face[:-1])]
@@ -368,9 +371,7 @@ def _layer_edge(setup, face: str) -> float:
 
 
 def _packet_side(setup, axis: int, x_det: float) -> float:
-    """+1 when the initial packet lies above the detector on its axis, else -1."""
-    dens = np.abs(setup.psi0) ** 2
-    other = tuple(i for i in range(setup.grid.ndim) if i != axis)
-    line = dens.sum(axis=other) if other else dens
-    x0 = float(np.sum(line * setup.grid.axes[axis].coordinates) / np.sum(line))
+    """+1 when the initial packet lies above the detector on its axis, else -1
+    (``setup``: the run's record, :class:`wavesweep.record.RecordedRun`)."""
+    x0 = as_record(setup).packet_center(axis)
     return 1.0 if x0 > x_det else -1.0

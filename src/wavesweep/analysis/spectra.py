@@ -126,6 +126,7 @@ from ..hamiltonian import Hamiltonian
 
 __all__ = ["stationary_states", "eigenpairs", "level_errors", "LevelErrors", "write_states", "check_states_path", "degenerate_groups",
            "autocorrelation_levels", "AutocorrelationLevels", "energy_band", "lanczos_quadrature",
+           "lanczos_recurrence", "recorded_energy_band",
            "quadrature_band", "truncation_floor", "walled_potential", "DENSE_MAX_POINTS"]
 
 # Largest grid diagonalised densely (8 bytes x size^2: 34 MB).  Measured
@@ -943,35 +944,16 @@ def degenerate_groups(energies, rel_tol: float = DEGENERATE_TOL) -> list[tuple[i
     return groups
 
 
-def check_states_path(path, field: str = "--states") -> Path:
-    """Refuse, before any work, a states file that cannot be written: a
-    folder in its place, a folder that is not one or not writable (probed
-    by creating and removing the temporary name :func:`write_states` uses),
+def check_states_path(path, field: str = "--states", overwrite: bool = True) -> Path:
+    """Refuse, before any work, a states file that cannot be written: not a
+    ``.nc`` name, a folder or other non-file in its place, an existing file
+    without ``overwrite`` (the CLI's ``--overwrite``), a parent that is a
+    file, a folder that cannot be written (probed by creating a file there),
     or the nearest existing parent of a folder still to be made not
-    writable."""
-    path = Path(path)
-    if path.is_dir():
-        raise JobError(field, f"{str(path)!r} is a folder; give a file name such as {str(path / 'states.nc')!r}")
-    folder = path.parent if str(path.parent) else Path(".")
-    if folder.exists():
-        if not folder.is_dir():
-            raise JobError(field, f"cannot write {str(path)!r}: {str(folder)!r} is not a folder; choose another path")
-        probe = folder / f".{path.name}.part"
-        try:
-            with open(probe, "xb"):
-                pass
-        except FileExistsError:
-            return path    # a write under way or left over: write_states replaces it
-        except OSError as e:
-            raise JobError(field, f"cannot write {str(path)!r}: {e.strerror or e}; choose another path") from None
-        probe.unlink(missing_ok=True)
-        return path
-    parent = folder
-    while not parent.exists() and parent != parent.parent:
-        parent = parent.parent
-    if not parent.is_dir() or not os.access(parent, os.W_OK | os.X_OK):
-        raise JobError(field, f"cannot create the folder {str(folder)!r} in {str(parent)!r}; choose another path")
-    return path
+    writable (:func:`wavesweep.io.paths.output_file`)."""
+    from ..io.paths import output_file
+
+    return output_file(path, field, (".nc",), overwrite=overwrite, make_folders=True, kind="states file")
 
 
 def write_states(path, setup, energies_hartree, states, errors: LevelErrors | None = None) -> Path:
@@ -1127,6 +1109,8 @@ class _Lanczos:
             self.betas.append(beta)
             self.q_prev, self.q = q, w / beta
 
+    more = True    # steps can always be added (a recorded recurrence runs out)
+
     @property
     def steps(self):
         return len(self.alphas)
@@ -1136,6 +1120,68 @@ class _Lanczos:
         nodes, vectors = scipy.linalg.eigh_tridiagonal(np.array(self.alphas), np.array(self.betas[:k - 1]))
         weights = vectors[0] ** 2
         return nodes, weights / weights.sum()
+
+
+class _RecordedLanczos(_Lanczos):
+    """A Lanczos recurrence written at run time (:func:`lanczos_recurrence`),
+    replayed: ``extend`` reveals recorded steps, so every quadrature is the
+    one the live recurrence gives after as many steps."""
+
+    def __init__(self, alphas, betas, exhausted):
+        self._alphas, self._betas = list(map(float, alphas)), list(map(float, betas))
+        self._exhausted = bool(exhausted)
+        self.alphas, self.betas, self.exhausted = [], [], False
+
+    def extend(self, steps):
+        n = min(len(self.alphas) + int(steps), len(self._alphas))
+        self.alphas, self.betas = self._alphas[:n], self._betas[:n]
+        self.exhausted = self._exhausted and n == len(self._alphas)
+
+    @property
+    def more(self):
+        return len(self.alphas) < len(self._alphas)
+
+
+# What a run records for `levels --from` is the band its defaults ask for (--min-weight, the window).
+DEFAULT_MIN_WEIGHT = 1e-6
+
+
+def band_window(duration: float, sample_step: float) -> tuple[float, float]:
+    """``(resolution, width)`` (hartree) :func:`autocorrelation_levels`
+    asks :func:`energy_band` for, with the default window tau = duration /
+    WINDOW_RATIO, for samples ``sample_step`` apart (atomic units)."""
+    tau = duration / WINDOW_RATIO
+    period = 2.0 * math.pi / sample_step
+    return 1.0 / tau, (1.0 - 1e-9) * period - 2.0 * (6.0 / tau)
+
+
+def lanczos_recurrence(h, psi, threshold: float = DEFAULT_MIN_WEIGHT, resolution: float = 0.0,
+                       width: float | None = None, max_steps: int = BAND_STEPS, ground: bool = True):
+    """``(alphas, betas, exhausted, spectrum_min, spectrum_max, ground)``:
+    the Lanczos steps of H (with the eigensolvers' walls,
+    :func:`walled_potential`) from psi that :func:`energy_band` takes for
+    these arguments, the bounds V_min + T_min, V_max + T_max of the spectrum
+    and the ground level where it needed one (else None), in hartree.  A run
+    writes them into its result for the arguments of ``levels --from``'s
+    defaults (:func:`band_window`), and :func:`recorded_energy_band` gives
+    psi's band from them as :func:`energy_band` does from H (``levels
+    --from`` needs no H; other arguments may need steps not recorded, and
+    then give a looser band).  ``max_steps`` caps the steps and
+    ``ground=False`` leaves the ground level out (the band is then looser:
+    a run bounds what it spends on this)."""
+    v, _ = walled_potential(h, None)
+    lo = float(v.min()) + float(h.kinetic.min())
+    hi = float(v.max()) + float(h.kinetic.max())
+    lanczos = _Lanczos(lambda x: h.apply_static(x, potential=v), psi, hi - lo + 1e-300)
+    found = []
+
+    def ground_level():
+        found.append(ground_energy(h))
+        return found[-1]
+    _band(lanczos, lo, hi, threshold, resolution, width, ground=ground_level if ground else None,
+          max_steps=max_steps)
+    return (np.array(lanczos.alphas), np.array(lanczos.betas), lanczos.exhausted, lo, hi,
+            found[-1] if found else None)
 
 
 def lanczos_quadrature(apply, psi, steps: int, scale: float):
@@ -1201,12 +1247,29 @@ def energy_band(h, psi, threshold: float, resolution: float, width: float | None
     def apply(x):
         return h.apply_static(x, potential=v)
 
+    return _band(_Lanczos(apply, psi, scale), spectrum_lo, spectrum_hi, threshold, resolution, width,
+                 ground=lambda: ground_energy(h))
+
+
+def recorded_energy_band(recorded, threshold: float, resolution: float, width: float | None = None):
+    """:func:`energy_band` from a recurrence a run recorded,
+    ``(alphas, betas, exhausted, spectrum_min, spectrum_max, ground)``
+    (:func:`lanczos_recurrence`): the same band for the arguments it was
+    recorded for.  Others may need more steps than were recorded (the band
+    is then the one the recorded steps give, looser) or the ground level
+    where none was recorded (the spectrum's bound V_min + T_min stays the
+    lower edge: no Hamiltonian to diagonalise here)."""
+    alphas, betas, exhausted, spectrum_lo, spectrum_hi, ground = recorded
+    return _band(_RecordedLanczos(alphas, betas, exhausted), float(spectrum_lo), float(spectrum_hi),
+                 threshold, resolution, width, ground=None if ground is None else (lambda: float(ground)))
+
+
+def _band(lanczos, spectrum_lo, spectrum_hi, threshold, resolution, width, ground, max_steps=BAND_STEPS):
     def fits(lo_, hi_):
         return width is not None and hi_ - lo_ <= width
 
     lo, hi = -math.inf, math.inf
-    lanczos = _Lanczos(apply, psi, scale)
-    while lanczos.steps < BAND_STEPS and not lanczos.exhausted:
+    while lanczos.steps < max_steps and not lanczos.exhausted and lanczos.more:
         lanczos.extend(BAND_CHUNK)
         nodes, weights = lanczos.quadrature()
         new_lo, new_hi = quadrature_band(nodes, weights, threshold)
@@ -1233,8 +1296,8 @@ def energy_band(h, psi, threshold: float, resolution: float, width: float | None
         hi = spectrum_hi
     if not math.isfinite(lo):
         lo = spectrum_lo
-        if width is not None and not fits(lo, hi):
-            lo = ground_energy(h) - resolution
+        if width is not None and not fits(lo, hi) and ground is not None:
+            lo = ground() - resolution
     return max(lo, spectrum_lo), min(hi, spectrum_hi)
 
 
@@ -1294,7 +1357,8 @@ def autocorrelation_levels(result, count: int | None = None, min_weight: float =
 
 
 def _levels_from_dataset(ds, count, min_weight, window, field) -> AutocorrelationLevels:
-    from ..io.results import result_setup, result_units
+    from ..io.results import result_units
+    from ..record import LANCZOS_MAX_POINTS, read_record
 
     u = result_units(ds)
     tf, ef, e_units, t_units = u["time"], u["energy"], u["energy_label"], u["time_label"]
@@ -1312,19 +1376,23 @@ def _levels_from_dataset(ds, count, min_weight, window, field) -> Autocorrelatio
         raise JobError("--window", f"must be positive and at most the run's duration "
                                    f"({duration / tf:g} {t_units})")
 
-    setup = result_setup(ds, field)
-    h = setup.hamiltonian
-    if h.time_dependent:
+    # what the run wrote for analysis: never a set-up rebuilt from the job attribute
+    record = read_record(ds, field, lanczos=True)
+    if record.time_dependent:
         raise JobError("potential", "the run's Hamiltonian depends on time, so its autocorrelation has "
                                     "no stationary lines; use wavesweep levels JOB.toml for H at t = 0")
-    # the band psi(0) holds every level of weight >= min_weight in (Lanczos quadrature)
-    psi0 = setup.psi0
+    if record.lanczos is None:
+        raise JobError(field, f"the run did not record the energy band of psi(0) (its grid has "
+                              f"{record.grid.size} points; runs record it up to {LANCZOS_MAX_POINTS}); "
+                              "use wavesweep levels JOB.toml for the levels of H")
+    # the band psi(0) holds every level of weight >= min_weight in (Lanczos quadrature, recorded by the run)
     period = 2.0 * math.pi / step  # hbar = 1
     margin = 6.0 / tau   # where a line has fallen to exp(-18)
-    e_lo, e_hi = energy_band(h, psi0, min_weight, 1.0 / tau, width=(1.0 - 1e-9) * period - 2.0 * margin)
+    e_lo, e_hi = recorded_energy_band(record.lanczos, min_weight, 1.0 / tau,
+                                      width=(1.0 - 1e-9) * period - 2.0 * margin)
     need = (e_hi - e_lo) + 2.0 * margin
     if need >= period:
-        dt = setup.dt
+        dt = record.dt
         best = 2.0 * math.pi / need
         suggestion = math.floor(best / dt * (1 - 1e-9)) * dt
         if suggestion >= dt:

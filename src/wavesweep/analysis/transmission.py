@@ -80,7 +80,8 @@ import math
 import numpy as np
 
 from ..errors import JobError
-from ..io.results import open_result, result_setup, result_units
+from ..io.results import open_result, result_units
+from ..record import as_record, read_record
 
 __all__ = ["transmission", "energy_resolved_transmission", "transmission_totals", "truncation_warning",
            "UNCERTAINTY_TARGET"]
@@ -99,8 +100,12 @@ def transmission_totals(ds, setup) -> dict:
     """Per face: absorbed at the end.  Per detector: ``beyond`` (on the grid
     beyond it at the end + absorbed by the faces beyond it) and ``crossed``
     (int J dt), both probabilities; ``side`` is +1 when "beyond" is the +
-    direction of the detector's axis (away from the initial packet)."""
+    direction of the detector's axis (away from the initial packet).
+    ``setup``: the run's record (:func:`wavesweep.record.read_record`), or a
+    Setup in memory."""
     from .arrivals import _packet_side, _upstream_probability   # one room for the geometry
+
+    setup = as_record(setup)
 
     faces = [str(b) for b in ds["boundary"].values] if "boundary" in ds.coords else []
     absorbed = {f: float(ds["absorbed"].sel(boundary=f).values[-1]) for f in faces} \
@@ -137,10 +142,11 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
     that kept no final state)."""
     from .arrivals import _layer_holding
 
+    setup = as_record(setup)
     if setup.grid.ndim != 1 or setup.grid.radial:
         raise JobError("RUN.nc", "energy-resolved transmission needs a 1D cartesian run "
                                  "(the totals are given for any run)")
-    if setup.hamiltonian.time_dependent:
+    if setup.time_dependent:
         raise JobError("RUN.nc", "energy-resolved transmission needs a static potential: with a "
                                  "time-dependent one, energy is not conserved")
     if "detector_psi_real" not in ds:
@@ -221,7 +227,7 @@ def _at_detector(ds, setup, j, k_all, w_all, points) -> dict:
                                           "final state to tell what is still to come; extend "
                                           "evolve.duration or set record.final_state = true")
 
-    v_static = setup.hamiltonian.static_potential
+    v_static = setup.static_potential
     v_start = float(np.sum(v_static * dens0) / np.sum(dens0))
     v_det = float(np.interp(x_d, x, v_static))
     mass = setup.mass
@@ -482,14 +488,14 @@ def transmission(result, detector: str | None = None) -> dict:
     ``energy_resolved`` holds T(E) with its uncertainty, or the reason it is
     missing; ``warnings`` says when the run was too short for T(E) to be
     settled to UNCERTAINTY_TARGET."""
+    from .arrivals import recorded_warnings
+
     ds = open_result(result, require=("time", "norm", "flux"))
     try:
-        from ..adequacy import run_warnings
-
-        setup = result_setup(ds)
+        setup = read_record(ds)    # what the run wrote for analysis: never a set-up rebuilt from its job
         out = {"totals": transmission_totals(ds, setup), "warnings": [],
                "time_units": result_units(ds)["time_label"]}
-        out["warnings"].extend(run_warnings(setup))
+        out["warnings"].extend(recorded_warnings(setup))
         try:
             er = out["energy_resolved"] = energy_resolved_transmission(ds, setup, detector)
             if er["uncertain_span"] is not None:

@@ -304,11 +304,11 @@ def _analyse(ds, result: _Result) -> None:
     ``wavesweep arrivals`` / ``transmission`` give them for the run."""
     from ..analysis.arrivals import arrival_times
     from ..analysis.transmission import transmission_totals
-    from ..io.results import result_setup
+    from ..record import read_record
 
     try:
         dists = arrival_times(ds, warnings=False)   # the figures only; check judges the set-ups
-        totals = transmission_totals(ds, result_setup(ds))
+        totals = transmission_totals(ds, read_record(ds))   # what the run wrote, never its job rebuilt
     except JobError as e:     # e.g. a file potential that has moved: the books stay, stats are NaN
         result.analysis_note = f"run {result.run_id}: no arrival statistics ({e})"
         return

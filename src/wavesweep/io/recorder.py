@@ -108,7 +108,8 @@ def _size(path) -> int:
 
 
 def _without_potential(layout: dict) -> dict:
-    return {k: v for k, v in layout.items() if k != "potential"}
+    """The layout without its large arrays (written once, not kept for the whole run)."""
+    return {k: v for k, v in layout.items() if k not in ("potential", "record")}
 
 
 class ResultWriter:
@@ -128,6 +129,9 @@ class ResultWriter:
         ``snapshot_psi``: bool, psi (float32 parts) with each snapshot;
         ``expected``: optional ``{"samples": n, "snapshots": m}``, the run's
         totals, so that a full disk can be told how much the file still needs.
+        ``record``: what analysis needs of the set-up
+        (:func:`wavesweep.record.analysis_record`; its ``attrs`` go into
+        ``attrs``), written once.
     attrs : global attributes written at open (the job text, units, ...).
     """
 
@@ -313,18 +317,60 @@ class ResultWriter:
             for part in ("real", "imag"):
                 v = self._var(f"autocorrelation_{part}", "f8", ("time",))
                 v.units, v.long_name = "1", f"{part} part of <psi(0)|psi(t)>"
+        # the full grid: the snapshot axes, or (decimated snapshots) axes of their own
+        state_dims = names if s == 1 else [f"{n}_full" for n in names]
+        if s != 1 and (lay.get("final_state", True) or lay.get("record") is not None):
+            for (name, coords, long), n in zip(lay["axes"], state_dims):
+                ds.createDimension(n, len(coords))
+                v = self._var(n, "f8", (n,))
+                v[:] = coords
+                v.units, v.long_name = u["length"], f"{long} (full grid)"
+        if lay.get("record") is not None:
+            self._define_record(lay["record"], state_dims, u)
         if lay.get("final_state", True):
-            state_dims = names if s == 1 else [f"{n}_full" for n in names]
-            if s != 1:
-                for (name, coords, long), n in zip(lay["axes"], state_dims):
-                    ds.createDimension(n, len(coords))
-                    v = self._var(n, "f8", (n,))
-                    v[:] = coords
-                    v.units, v.long_name = u["length"], f"{long} (full grid)"
             for part in ("real", "imag"):
                 v = self._var(f"psi_{part}", "f8", tuple(state_dims), zlib=True, complevel=4)
                 v.units = f"{u['length']}-{len(names) / 2:g}"
                 v.long_name = f"{part} part of the final wave function"
+
+    def _define_record(self, rec, full_dims, u):
+        """What analysis reads instead of rebuilding the set-up
+        (:mod:`wavesweep.record`): the initial packet's marginals, psi0 and
+        V on the full grid (1D), the Lanczos recurrence of psi0."""
+        ds = self.ds
+        for dim, (name, (rho, k, w)) in zip(full_dims, rec["marginals"].items()):
+            v = self._var(f"initial_position_marginal_{name}", "f8", (dim,))
+            v[:] = rho
+            v.units, v.long_name = "1", f"initial |psi|^2 summed over the other axes, per point along {name}"
+            ds.createDimension(f"k_{name}", len(k))
+            v = self._var(f"k_{name}", "f8", (f"k_{name}",))
+            v[:] = k
+            v.units, v.long_name = f"{u['length']}-1", f"wave number along {name} (transform padded 4x)"
+            v = self._var(f"initial_momentum_marginal_{name}", "f8", (f"k_{name}",))
+            v[:] = w
+            v.units, v.long_name = "1", f"initial momentum distribution along {name}, per wave number sample"
+        if rec.get("initial_psi") is not None:
+            for part, values in (("real", rec["initial_psi"].real), ("imag", rec["initial_psi"].imag)):
+                v = self._var(f"initial_psi_{part}", "f8", tuple(full_dims))
+                v[:] = values
+                v.units = f"{u['length']}-0.5"
+                v.long_name = f"{part} part of the initial wave function"
+            if tuple(full_dims) != tuple(self.ds["potential"].dimensions):
+                v = self._var("potential_full", "f8", tuple(full_dims))
+                v[:] = rec["potential_full"]
+                v.units, v.long_name = u["energy"], "static part of the potential V (full grid)"
+        if rec.get("lanczos") is not None:
+            alphas, betas = rec["lanczos"][:2]
+            factor = rec["energy_factor"]
+            ds.createDimension("lanczos_step", len(alphas))
+            v = self._var("lanczos_alpha", "f8", ("lanczos_step",))
+            v[:] = np.asarray(alphas) / factor
+            v.units, v.long_name = u["energy"], "diagonal of the Lanczos matrix of H from psi0"
+            v = self._var("lanczos_beta", "f8", ("lanczos_step",))
+            b = np.full(len(alphas), np.nan)
+            b[:len(betas)] = np.asarray(betas) / factor
+            v[:] = b
+            v.units, v.long_name = u["energy"], "off-diagonal of the Lanczos matrix (NaN past the last)"
 
     def _var(self, name, dtype, dims, **kw):
         """A variable; numeric ones carry HDF5 Fletcher-32 checksums, so that

@@ -1,22 +1,23 @@
 """Reading a run's result file back for analysis.
 
 ``open_result`` refuses, with a one-line :class:`JobError`, anything that is
-not a result of this tool (no ``run_id``/``job`` attributes), cannot be read
-as netCDF, or lacks a variable the analysis needs.  ``result_setup`` rebuilds
-the atomic-unit :class:`~wavesweep.simulation.Setup` of the run from the job
-text stored in the file, so analysis uses the same grid, initial state,
-potential and absorber as the run did.
+not a regular file (a FIFO, a device, a folder), not a result of this tool
+(no ``run_id``/``job`` attributes), cannot be read as netCDF, or lacks a
+variable the analysis needs.  What analysis needs of the run's set-up
+(grid, initial packet, absorber, adequacy warnings) the run wrote into the
+file: :func:`wavesweep.record.read_record` reads it; no set-up is rebuilt
+from the ``job`` attribute.
 """
 from __future__ import annotations
 
 import os
-from pathlib import Path
 
 import xarray as xr
 
 from ..errors import JobError
+from .paths import input_file
 
-__all__ = ["open_result", "result_setup", "result_units", "verify_readable"]
+__all__ = ["open_result", "result_units", "verify_readable"]
 
 REQUIRED_ATTRS = ("run_id", "job", "wavesweep_version")
 
@@ -28,9 +29,7 @@ def open_result(path, require: tuple[str, ...] = (), field: str = "RUN.nc") -> x
     if isinstance(path, xr.Dataset):
         ds = path
     else:
-        path = Path(path)
-        if not path.exists():
-            raise JobError(field, f"no such file {str(path)!r}")
+        path = input_file(path, field, "file")   # a FIFO, a device or a folder: refused, never opened
         try:
             ds = xr.open_dataset(path, engine="netcdf4")
         except RuntimeError as e:   # netCDF4's HDF error: an index coordinate read at opening failed
@@ -107,24 +106,6 @@ def _unreadable_variable(path) -> str | None:
     except (RuntimeError, OSError, ValueError):
         return None
     return None
-
-
-def result_setup(ds: xr.Dataset, field: str = "RUN.nc"):
-    """The run's Setup, rebuilt from the job text in the file's attributes."""
-    from ..jobfile import job_from_dict
-    from ..simulation import Setup
-    import tomllib
-
-    try:
-        table = tomllib.loads(ds.attrs["job"])
-    except tomllib.TOMLDecodeError as e:
-        raise JobError(field, f"the job text stored in the result cannot be read: {e}") from None
-    table.pop("sweep", None)
-    try:
-        return Setup(job_from_dict(table))
-    except JobError as e:
-        raise JobError(field, f"the run's job cannot be rebuilt here ({e}); "
-                              "files it refers to must still exist") from None
 
 
 def result_units(ds: xr.Dataset) -> dict:

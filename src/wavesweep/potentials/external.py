@@ -1,11 +1,10 @@
 """Potentials from outside the library: user expressions and netCDF files."""
 from __future__ import annotations
 
-import os
-
 import numpy as np
 
 from ..errors import JobError
+from ..io.paths import input_file
 from ..schema import Field
 from ..units import KINDS, parse_unit, quantity_to_atomic, _QUANTITY
 from .base import PotentialTerm, register
@@ -90,9 +89,8 @@ class FileTerm(PotentialTerm):
     }
 
     def validate(self):
-        path = self.p["path"]
-        if not os.path.exists(path):
-            raise JobError(f"{self.ctx.field}.path", f"no such file {path!r}")
+        # a FIFO or a device named as the file would block or never end: refused here, at load time
+        input_file(self.p["path"], f"{self.ctx.field}.path", "potential file")
 
     def static(self, mesh):
         import xarray as xr

@@ -7,6 +7,8 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import JobError
+from ..io.paths import output_file
+from .style import plain
 
 __all__ = ["plot_arrivals"]
 
@@ -14,7 +16,11 @@ __all__ = ["plot_arrivals"]
 QUANTUM, CLASSICAL, BACKFLOW = "#0072B2", "#D55E00", "#999999"
 
 
-def plot_arrivals(distributions: dict, path, title: str = "", dpi: int = 100) -> Path:
+# Figure files plot_arrivals writes (by the suffix).
+FIGURE_TYPES = (".png", ".pdf", ".svg")
+
+
+def plot_arrivals(distributions: dict, path, title: str = "", dpi: int = 100, overwrite: bool = True) -> Path:
     """One panel per detector: Pi(t) = J / P (or dA/dt / P), the classical
     curve, the mean and the 10/90 % quantiles; written to ``path`` (PNG, PDF
     or SVG by its extension)."""
@@ -22,9 +28,7 @@ def plot_arrivals(distributions: dict, path, title: str = "", dpi: int = 100) ->
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    path = Path(path)
-    if path.suffix.lower() not in (".png", ".pdf", ".svg"):
-        raise JobError("--plot", f"unknown figure type {path.suffix!r}; use .png, .pdf or .svg")
+    path = output_file(path, "--plot", FIGURE_TYPES, overwrite=overwrite, kind="figure")
     n = len(distributions)
     fig, axes = plt.subplots(n, 1, figsize=(7, 2.8 * n + 0.4), squeeze=False, constrained_layout=True)
     for ax, (name, d) in zip(axes[:, 0], distributions.items()):
@@ -62,13 +66,13 @@ def plot_arrivals(distributions: dict, path, title: str = "", dpi: int = 100) ->
         note = "" if np.isfinite(d.stats["mean"]) else " (nothing arrived)"
         if d.stats.get("truncated"):
             note += " (truncated: the run ended too early)"
-        ax.set_title(f"detector {name!r}: net crossing P = {p:.4g}"
+        ax.set_title(f"detector {plain(repr(name))}: net crossing P = {p:.4g}"
                      + (f", flowing back {back:.3g}" if back > 1e-6 else "")
                      + f"; mean {d.stats['mean']:.4g} {d.time_units}{note}", fontsize=10)
         ax.legend(fontsize=8, frameon=False)
         ax.axhline(0, color="black", lw=0.5)
     if title:
-        fig.suptitle(title, fontsize=11)
+        fig.suptitle(plain(title), fontsize=11)
     try:
         fig.savefig(path, dpi=dpi)
     except OSError as e:

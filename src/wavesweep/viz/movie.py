@@ -28,6 +28,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import JobError
+from ..io.paths import output_file
 from . import style
 from .scene import FrameReader, Scene, read_scene
 
@@ -216,7 +217,7 @@ class Painter1D(Painter):
             for dname, dax, pos in sc.detectors:
                 if dax == name:
                     ax.axvline(pos, color=style.DETECTOR, lw=0.9, ls="--")
-                    ax.text(pos, 0.985, f" {dname}", transform=ax.get_xaxis_transform(),
+                    ax.text(pos, 0.985, f" {style.plain(dname)}", transform=ax.get_xaxis_transform(),
                             ha="left", va="top", fontsize=7, color=style.DETECTOR)
             if self._has_potential():
                 v = sc.potential
@@ -229,7 +230,7 @@ class Painter1D(Painter):
                 vax.set_ylim(float(v.min()) - below, float(v.min()) + 1.15 * span)
                 vax.set_ylabel(f"V ({style.pretty_unit(sc.units['energy'])})", color=style.POTENTIAL)
                 vax.tick_params(axis="y", colors=style.POTENTIAL)
-            ax.set_title(sc.title, loc="left")
+            ax.set_title(style.plain(sc.title), loc="left")
             self.text = self._time_text(ax)
         self.animated[:0] = self.lines + ([self.fill] if self.fill is not None else [])
 
@@ -305,18 +306,18 @@ class Painter2D(Painter):
             for dname, dax, pos in sc.detectors:
                 if dax == a:
                     overlays.append(ax.axvline(pos, color=style.DETECTOR, lw=1.0, ls="--"))
-                    overlays.append(ax.text(pos, 0.985, f" {dname}", transform=ax.get_xaxis_transform(),
+                    overlays.append(ax.text(pos, 0.985, f" {style.plain(dname)}", transform=ax.get_xaxis_transform(),
                                             ha="left", va="top", fontsize=7, color=style.DETECTOR))
                 elif dax == b:
                     overlays.append(ax.axhline(pos, color=style.DETECTOR, lw=1.0, ls="--"))
-                    overlays.append(ax.text(0.005, pos, f"{dname} ", transform=ax.get_yaxis_transform(),
+                    overlays.append(ax.text(0.005, pos, f"{style.plain(dname)} ", transform=ax.get_yaxis_transform(),
                                             ha="left", va="bottom", fontsize=7, color=style.DETECTOR))
             for o in overlays:
                 o.set_animated(True)
             L = style.pretty_unit(sc.units["length"])
             ax.set_xlabel(f"{a} ({L})")
             ax.set_ylabel(f"{b} ({L})")
-            ax.set_title(sc.title + self.subtitle, loc="left")
+            ax.set_title(style.plain(sc.title) + self.subtitle, loc="left")
             self.fig.subplots_adjust(left=0.08, right=0.9, bottom=0.11, top=0.92)
             self.text = self._time_text(ax)
         self.animated[:0] = [self.image, *overlays]
@@ -415,11 +416,13 @@ def render_frames(scene: Scene, options: MovieOptions, sink, indices=None) -> di
     return {"frames": len(indices), "prepare_seconds": t1 - t0, "render_seconds": t2 - t1}
 
 
-def render_movie(result, output, options: MovieOptions | None = None, **kw) -> dict:
+def render_movie(result, output, options: MovieOptions | None = None, overwrite: bool = True, **kw) -> dict:
     """Write the movie of the result at ``result`` to ``output`` (.mp4 or
-    .gif); keyword arguments are :class:`MovieOptions` fields.  Returns
+    .gif); keyword arguments are :class:`MovieOptions` fields; an existing
+    ``output`` is replaced only with ``overwrite``.  Returns
     ``{"path", "frames", "seconds", "frames_per_second"}``."""
     options = options or MovieOptions(**kw)
+    output_file(output, "-o", FORMATS, overwrite=overwrite, kind="movie")   # before the result is even read
     scene = read_scene(result)
     if options.fps <= 0:
         raise JobError("--fps", f"must be positive, got {options.fps}")

@@ -53,7 +53,7 @@ def read_scene(path, field_name: str = "RUN.nc") -> Scene:
     try:
         axes = [d for d in ds["density"].dims if d != "snapshot_time"]
         coords = {a: np.asarray(ds[a].values, float) for a in axes}
-        job = tomllib.loads(ds.attrs["job"])
+        job = _absorber_and_grid(ds)
         pot = np.asarray(ds["potential"].values, float) if "potential" in ds else None
         dets = []
         if "detector" in ds.coords and ds.sizes.get("detector", 0):
@@ -78,6 +78,24 @@ def read_scene(path, field_name: str = "RUN.nc") -> Scene:
         raise JobError(field_name, f"{str(path)!r} holds no density snapshots; run the job with "
                                    "record.snapshot_every shorter than evolve.duration")
     return scene
+
+
+def _absorber_and_grid(ds) -> dict:
+    """The [absorber] and [grid] tables the layers need: from the run's
+    record (:mod:`wavesweep.record`) where the file has one, else from the
+    job text (a file of an older version)."""
+    attrs = ds.attrs
+    if "absorber_thickness" in attrs and "grid_axes" in attrs:
+        faces = [str(b) for b in ds["boundary"].values] if "boundary" in ds.coords else []
+        grid = {a: {"min": float(attrs[f"grid_{a}_min"]), "max": float(attrs[f"grid_{a}_max"])}
+                for a in str(attrs["grid_axes"]).split()}
+        return {"absorber": {"kind": str(attrs.get("absorber", "none")),
+                             "thickness": float(attrs["absorber_thickness"]), "faces": faces},
+                "grid": grid}
+    try:
+        return tomllib.loads(str(attrs["job"]))
+    except tomllib.TOMLDecodeError:
+        return {}
 
 
 def _layers(job: dict, axes, coords) -> list[Layer]:

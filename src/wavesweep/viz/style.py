@@ -41,6 +41,13 @@ RC = {
 }
 
 
+def plain(text) -> str:
+    """User text (a job's title, a detector's name) drawn as written: every
+    ``$`` escaped, so matplotlib never reads it as math text (a title such as
+    "bad $\\frac{1}{$ title" made plot and movie fail)."""
+    return str(text).replace("$", r"\$")
+
+
 def pretty_unit(unit: str) -> str:
     """A CF unit string for a label: "nm-1" -> nm$^{-1}$, "nm-0.5" -> nm$^{-1/2}$,
     "m2 s-1" -> m$^{2}$ s$^{-1}$."""

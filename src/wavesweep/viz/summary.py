@@ -13,6 +13,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import JobError
+from ..io.paths import input_file, output_file
 from ..io.results import open_result
 from . import style
 from .scene import FrameReader, read_scene
@@ -23,15 +24,9 @@ FIGURE_TYPES = (".png", ".pdf", ".svg")
 MAP_FLOOR = 1e-6            # the density map's log scale spans six decades below its peak
 
 
-def _check_output(path) -> Path:
-    path = Path(path)
-    if path.suffix.lower() not in FIGURE_TYPES:
-        raise JobError("-o", f"unknown figure type {path.suffix or '(none)'!r}; use one of "
-                             f"{', '.join(FIGURE_TYPES)}")
-    folder = path.parent if str(path.parent) else Path(".")
-    if not folder.is_dir() or not os.access(folder, os.W_OK):
-        raise JobError("-o", f"cannot write into {str(folder)!r}: no such folder or no permission")
-    return path
+def _check_output(path, overwrite: bool = True) -> Path:
+    """The figure's path, checked before anything is drawn (io.paths.output_file)."""
+    return output_file(path, "-o", FIGURE_TYPES, overwrite=overwrite, kind="figure")
 
 
 def _save(fig, path: Path) -> Path:
@@ -45,12 +40,13 @@ def _save(fig, path: Path) -> Path:
     return path
 
 
-def plot_result(path, output, size=(1200, 900), dpi: int = 100) -> Path:
-    """A run's figure, or a study's when ``path`` is a ``summary.nc``."""
+def plot_result(path, output, size=(1200, 900), dpi: int = 100, overwrite: bool = True) -> Path:
+    """A run's figure, or a study's when ``path`` is a ``summary.nc``; an
+    existing ``output`` is replaced only with ``overwrite``."""
+    _check_output(output, overwrite)   # before the result is read
     if not (10 <= dpi <= 1000):
         raise JobError("--dpi", f"must lie between 10 and 1000, got {dpi}")
-    if not Path(path).exists():
-        raise JobError("RUN.nc", f"no such file {str(path)!r}")
+    input_file(path, "RUN.nc", "file")    # a FIFO, a device or a folder: refused, never opened
     try:
         with xr.open_dataset(path, engine="netcdf4") as ds:
             is_study = "study" in ds.attrs and "final_absorbed" in ds
@@ -132,7 +128,7 @@ def plot_run(path, output, size=(1200, 900), dpi: int = 100) -> Path:
         if "flux" in ds and ds.sizes.get("detector", 0):
             for j, name in enumerate(ds.detector.values):
                 aflux.plot(t, ds.flux.values[:, j], color=colors[j % len(colors)],
-                           label=f"{name} ({float(ds.detector_x.values[j]):.4g} {L})")
+                           label=f"{style.plain(name)} ({float(ds.detector_x.values[j]):.4g} {L})")
             aflux.axhline(0, color="black", lw=0.5)
             aflux.legend(frameon=False)
             aflux.set_ylabel(f"probability current ({style.pretty_unit(ds.flux.attrs.get('units', ''))})")
@@ -159,7 +155,7 @@ def plot_run(path, output, size=(1200, 900), dpi: int = 100) -> Path:
             aenergy.set_ylabel(f"<H>(t) - <H>(0) ({E})")
             aenergy.set_title(f"energy drift of what is on the grid (<H>(0) = {e[0]:.6g} {E})", loc="left")
         aenergy.set_xlabel(f"time ({T})")
-        fig.suptitle(f"{scene.title}   [{ds.attrs.get('run_id', '')}, {ds.attrs.get('scheme', '')}, "
+        fig.suptitle(f"{style.plain(scene.title)}   [{ds.attrs.get('run_id', '')}, {ds.attrs.get('scheme', '')}, "
                      f"dt = {ds.attrs.get('dt', '')} {T}]", fontsize=10)
         fig.tight_layout()
         return _save(fig, output)
@@ -212,7 +208,7 @@ def plot_study(path, output, size=(1200, 900), dpi: int = 100) -> Path:
                     ax.text(0.5, 0.97, "bands: 10-90 % of arrivals", transform=ax.transAxes,
                             ha="center", va="top", fontsize=7, color="#555555")
             ax.set_title(title, loc="left")
-        title = ds.attrs.get("title", "")
+        title = style.plain(ds.attrs.get("title", ""))
         if unfinished > 1e-3:       # the books are not closed: the numbers are not final
             title += (f"\n(some runs ended with up to {unfinished:.3g} of probability still on the grid: "
                       "absorbed and arrival numbers are not final)")
