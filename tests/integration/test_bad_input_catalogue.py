@@ -246,14 +246,22 @@ def flipped_at(fraction, mask=0x40):
 
 def flipped_in(variable):
     """One bit flipped inside ``variable``'s stored data (found by the bytes
-    of its largest element), where the Fletcher-32 checksum must catch it."""
+    of four consecutive elements around its largest one, which no attribute
+    holds), where the Fletcher-32 checksum must catch it."""
     def prepare(folder: Path, result: Path) -> Path:
         import netCDF4
         with netCDF4.Dataset(result) as nc:
             values = np.ravel(np.asarray(nc[variable][:]))
-        value = values[np.argmax(np.abs(values))]
+        at_max = int(np.argmax(np.abs(values)))
+        start = max(0, min(at_max, values.size - 4))
+        run = values[start:start + 4]
         raw = bytearray(result.read_bytes())
-        at = raw.find(np.asarray(value).astype("<" + values.dtype.str[1:]).tobytes())
+        little = "<" + values.dtype.str[1:]
+        at = raw.find(run.astype(little).tobytes())
+        if at > 0:
+            at += (at_max - start) * values.dtype.itemsize
+        else:   # stored in chunks of single elements: the value's last copy (data follow attributes)
+            at = raw.rfind(values[at_max:at_max + 1].astype(little).tobytes())
         assert at > 0, f"{variable}'s bytes not found"
         raw[at + 2] ^= 0x10
         out = folder / "damaged.nc"
@@ -318,7 +326,7 @@ for reader, argv in READERS.items():
          prepare=flipped_in(READS[reader]))
 for reader in ("arrivals", "transmission", "levels-from"):
     case("damaged", f"{reader}-norm-above-one", READERS[reader], "norm", prepare=scaled("norm", 3.0))
-case("damaged", "arrivals-flux-scaled-up", READERS["arrivals"], "RUN.nc", "detector 'far'",
+case("damaged", "arrivals-flux-scaled-up", READERS["arrivals"], "damaged.nc", "detector 'far'",
      prepare=scaled("flux", 1e20))
 
 

@@ -37,7 +37,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import JobError
-from ..io.results import open_result, result_units
+from ..io.results import open_result, result_units, source_name
 from ..record import as_record, read_record
 
 __all__ = ["ArrivalDistribution", "arrival_statistics", "arrival_times", "classical_free_flight"]
@@ -262,7 +262,7 @@ def arrival_times(result, detector: str | None = None,
 def _arrivals(ds, detector, classical=True, warnings=True):
     names = [str(d) for d in ds["detector"].values] if "detector" in ds.coords else []
     if not names:
-        raise JobError("RUN.nc", "the run recorded no detector flux; add a [[detector]] table "
+        raise JobError("RUN.nc", f"{source_name(ds)}: the run recorded no detector flux; add a [[detector]] table "
                                  "to the job and run it again")
     if detector is not None and detector not in names:
         raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
@@ -275,7 +275,7 @@ def _arrivals(ds, detector, classical=True, warnings=True):
     said = recorded_warnings(setup) if warnings else []
     t = np.asarray(ds["time"].values, float)
     if len(t) < 3:
-        raise JobError("RUN.nc", f"the run holds {len(t)} samples; arrival times need at least 3")
+        raise JobError("RUN.nc", f"{source_name(ds)}: the run holds {len(t)} samples; arrival times need at least 3")
     flux = np.asarray(ds["flux"].values, float)
     out = {}
     for j, name in enumerate(names):
@@ -286,7 +286,7 @@ def _arrivals(ds, detector, classical=True, warnings=True):
         notes = list(said)
         if face is not None:
             if "absorbed" not in ds or face not in [str(b) for b in ds["boundary"].values]:
-                raise JobError("RUN.nc", f"detector {name!r} lies in the {face} absorber but the run "
+                raise JobError("RUN.nc", f"{source_name(ds)}: detector {name!r} lies in the {face} absorber but the run "
                                          "recorded no absorbed probability there")
             a = np.asarray(ds["absorbed"].sel(boundary=face).values, float)
             rho = np.gradient(a, t)
@@ -301,7 +301,7 @@ def _arrivals(ds, detector, classical=True, warnings=True):
             definition = "flux"
         stats = arrival_statistics(t, rho)
         if not abs(stats["probability"]) <= 1 + ARRIVED_SLACK:   # NaN too
-            raise JobError("RUN.nc", f"detector {name!r}: the recorded flux carries {stats['probability']:.6g} "
+            raise JobError("RUN.nc", f"{source_name(ds)}: detector {name!r}: the recorded flux carries {stats['probability']:.6g} "
                                      "of probability across it, which no state can: the file is damaged; "
                                      "run the job again")
         forward = _trapezoid(np.maximum(rho, 0.0), t)

@@ -80,7 +80,7 @@ import math
 import numpy as np
 
 from ..errors import JobError
-from ..io.results import open_result, result_units
+from ..io.results import open_result, result_units, source_name
 from ..record import as_record, read_record
 
 __all__ = ["transmission", "energy_resolved_transmission", "transmission_totals", "truncation_warning",
@@ -144,17 +144,17 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
 
     setup = as_record(setup)
     if setup.grid.ndim != 1 or setup.grid.radial:
-        raise JobError("RUN.nc", "energy-resolved transmission needs a 1D cartesian run "
+        raise JobError("RUN.nc", f"{source_name(ds)}: energy-resolved transmission needs a 1D cartesian run "
                                  "(the totals are given for any run)")
     if setup.time_dependent:
-        raise JobError("RUN.nc", "energy-resolved transmission needs a static potential: with a "
+        raise JobError("RUN.nc", f"{source_name(ds)}: energy-resolved transmission needs a static potential: with a "
                                  "time-dependent one, energy is not conserved")
     if "detector_psi_real" not in ds:
-        raise JobError("RUN.nc", "the run did not record psi at its detectors "
+        raise JobError("RUN.nc", f"{source_name(ds)}: the run did not record psi at its detectors "
                                  "(written by an older version); run the job again")
     names = [str(d) for d in ds["detector"].values]
     if not names:
-        raise JobError("RUN.nc", "the run has no detector; add a [[detector]] beyond the scatterer")
+        raise JobError("RUN.nc", f"{source_name(ds)}: the run has no detector; add a [[detector]] beyond the scatterer")
     x = setup.grid.axes[0].coordinates
     # incident momentum density (continuous normalisation, int |phi|^2 dk = 1)
     # on a k grid 8 times finer than the grid's own (zero-padded FFT)
@@ -176,7 +176,7 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
     order = sorted(range(len(names)), key=lambda i: -sign * setup.detectors[i].position)
     usable = [i for i in order if _layer_holding(setup, 0, setup.detectors[i].position) is None]
     if not usable:
-        raise JobError("RUN.nc", "every detector lies inside an absorbing layer; T(E) needs one "
+        raise JobError("RUN.nc", f"{source_name(ds)}: every detector lies inside an absorbing layer; T(E) needs one "
                                  "between the scatterer and the layer")
     first, estimate = None, None
     for i in usable:

@@ -17,7 +17,7 @@ import xarray as xr
 from ..errors import JobError
 from .paths import input_file
 
-__all__ = ["open_result", "result_units", "verify_readable"]
+__all__ = ["open_result", "source_name", "result_units", "verify_readable"]
 
 REQUIRED_ATTRS = ("run_id", "job", "wavesweep_version")
 
@@ -32,6 +32,9 @@ def open_result(path, require: tuple[str, ...] = (), field: str = "RUN.nc") -> x
         path = input_file(path, field, "file")   # a FIFO, a device or a folder: refused, never opened
         try:
             ds = xr.open_dataset(path, engine="netcdf4")
+        except AttributeError as e:   # netCDF4's error for an attribute HDF5 cannot read
+            raise JobError(field, f"{_name(path)}: its attributes cannot be read, the file is damaged "
+                                  f"({' '.join(str(e).split())}); run the job again") from None
         except RuntimeError as e:   # netCDF4's HDF error: an index coordinate read at opening failed
             where = _unreadable_variable(path)
             raise JobError(field, f"{_name(path)}: {f'variable {where!r} ' if where else ''}cannot be "
@@ -120,6 +123,13 @@ def result_units(ds: xr.Dataset) -> dict:
         "energy_label": str(a.get("units_energy", "hartree")),
         "time_label": str(a.get("units_time", "hbar/E_h")),
     }
+
+
+def source_name(ds: xr.Dataset) -> str:
+    """The file a dataset was read from, quoted, for messages ("the dataset"
+    for one made in memory)."""
+    source = ds.encoding.get("source") if isinstance(ds, xr.Dataset) else None
+    return repr(os.fspath(source)) if source else "the dataset"
 
 
 def _name(path) -> str:
