@@ -1551,7 +1551,75 @@ def assess(setup) -> list[Finding]:
 def run_warnings(setup) -> list[str]:
     """The set-up's warn and error findings as one line each
     (``"field: message"``): what analysis of a finished run repeats beside
-    its numbers, so that a number from an inadequate run never comes alone."""
+    its numbers, so that a number from an inadequate run never comes alone.
+
+    Judged once per physics: ``preflight`` (run, submit) stores them with
+    :func:`remember_run_warnings` and a worker's run reads them back instead
+    of integrating the trajectories again (0.6 s of a 20-step run)."""
+    key = _warnings_key(setup)
+    hit = _read_warnings(key)
+    if hit is not None:
+        return hit
+    lines = warning_lines(assess(setup))
+    _write_warnings(key, lines)
+    return lines
+
+
+def warning_lines(findings) -> list[str]:
+    """:func:`run_warnings`' lines of a list of findings (from :func:`assess`)."""
     return [f"the run's set-up: {f.field or f.topic}: {f.message}"
-            for f in assess(setup) if f.level != "ok" and f.topic not in ("disk", "defaults")]
+            for f in findings if f.level != "ok" and f.topic not in ("disk", "defaults")]
+
+
+def remember_run_warnings(setup, findings) -> None:
+    """Store the run warnings of ``findings`` (:func:`assess` of ``setup``)
+    for the run of this physics, wherever it runs (same cache folder)."""
+    _write_warnings(_warnings_key(setup), warning_lines(findings))
+
+
+def _warnings_key(setup) -> str:
+    """The run id (the physics) and this module's source: a change of a
+    criterion never reuses old lines."""
+    import hashlib
+    global _REVISION
+    if _REVISION is None:
+        with open(__file__, "rb") as f:
+            _REVISION = hashlib.sha256(f.read()).hexdigest()[:16]
+    return f"{setup.job.run_id}-{_REVISION}"
+
+
+_REVISION = None
+
+
+def _warnings_path(key: str) -> str:
+    import os
+    from .fft import wisdom_path
+    return os.path.join(os.path.dirname(wisdom_path()), "run-warnings", f"{key}.json")
+
+
+def _read_warnings(key: str):
+    import json
+    try:
+        with open(_warnings_path(key)) as f:
+            lines = json.load(f)
+    except (OSError, ValueError):
+        return None
+    if isinstance(lines, list) and all(isinstance(x, str) for x in lines):
+        return lines
+    return None     # a damaged entry: judge again
+
+
+def _write_warnings(key: str, lines) -> None:
+    import json
+    import os
+    import tempfile
+    path = _warnings_path(key)
+    try:
+        os.makedirs(os.path.dirname(path), exist_ok=True)
+        fd, tmp = tempfile.mkstemp(dir=os.path.dirname(path), prefix=".warnings-")
+        with os.fdopen(fd, "w") as f:
+            json.dump(list(lines), f)
+        os.replace(tmp, path)
+    except OSError:
+        pass   # a read-only or full cache folder: the run judges them itself
 

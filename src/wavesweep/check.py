@@ -11,7 +11,8 @@ report judges every sweep point and names the points that fail.
 """
 from __future__ import annotations
 
-from .adequacy import (Finding, Report, assess, memory_finding, run_time_finding, splitting_warning)
+from .adequacy import (Finding, Report, assess, memory_finding, remember_run_warnings, run_time_finding,
+                       splitting_warning)
 from .errors import JobError, combine_errors
 from .jobfile import Job
 from .reference import default_findings
@@ -168,7 +169,10 @@ def preflight(jobs, force: bool = False) -> list[str]:
         fs = [memory_finding(job)]
         if fs[0].level != "error":
             try:
-                fs += assess(Setup(job))
+                setup = Setup(job)
+                found = assess(setup)
+                remember_run_warnings(setup, found)   # the run records them without judging again
+                fs += found
             except JobError as e:   # this point cannot be set up: say which, judge the others
                 fs.append(Finding("set-up", "error", e.message, field=e.field))
         for f in fs:

@@ -93,7 +93,7 @@ def test_a_killed_worker_s_run_resumes_and_ends_like_an_uninterrupted_one(tmp_pa
     uninterrupted one (it resumed from its checkpoint)."""
     table = copy.deepcopy(STUDY)
     table["grid"]["x"].update({"min": -150.0, "max": 150.0, "points": 2048})
-    table["evolve"] = {"dt": 0.005, "duration": 3000.0}     # ~6 s a run: time to kill it mid-way
+    table["evolve"] = {"dt": 0.005, "duration": 1500.0}     # ~3 s a run: time to kill it mid-way
     table["record"] = {"every": 10.0}
     table["sweep"] = {"packet.momentum": {"start": 0.9, "stop": 1.2, "num": 2}}
     root = queued(tmp_path, table, "killed")
@@ -154,7 +154,9 @@ def test_ctrl_c_leaves_the_queue_consistent_and_the_runs_resume(tmp_path):
     the queue (exit 0); a second drain finishes them."""
     table = copy.deepcopy(STUDY)
     table["grid"]["x"].update({"min": -150.0, "max": 150.0, "points": 2048})
-    table["evolve"] = {"dt": 0.005, "duration": 10000.0}   # ~20 s a run: stopped well before the end
+    # ~6 s a run on an idle core: stopped 1.5 s after its first step, well
+    # before the end (a 20 s run cost the second drain most of a minute)
+    table["evolve"] = {"dt": 0.005, "duration": 3000.0}
     table["record"] = {"every": 10.0}
     table["sweep"] = {"packet.momentum": {"start": 0.9, "stop": 1.2, "num": 2}}
     root = queued(tmp_path, table, "interrupted")
