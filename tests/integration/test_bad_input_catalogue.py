@@ -458,6 +458,74 @@ for command, argv in QUEUE_COMMANDS.items():
     case("queue", f"{command}-damaged", argv, "--root", "damaged", "submit", prepare=damaged_queue)
 
 
+# -- files that are not regular files, as inputs: refused at once (a FIFO hung) -------
+def fifo(folder: Path, result: Path) -> Path:
+    path = folder / "pipe"
+    os.mkfifo(path)
+    return path
+
+
+def folder_input(folder: Path, result: Path) -> Path:
+    path = folder / "a-folder"
+    path.mkdir()
+    return path
+
+
+SPECIAL = {"fifo": (fifo, "pipe", "FIFO"), "folder": (folder_input, "a-folder", "folder"),
+           "dev-zero": (lambda folder, result: Path("/dev/zero"), "/dev/zero", "character device")}
+JOB_READERS = {"run": ["run", "{damaged}", "-o", "{tmp}/out", "--quiet"], "check": ["check", "{damaged}"],
+               "submit": ["submit", "{damaged}", "--root", "{tmp}/root"],
+               "levels": ["levels", "{damaged}", "--count", "2"]}
+for name, (prepare, shown, what) in SPECIAL.items():
+    for command, argv in JOB_READERS.items():
+        case("special", f"{command}-job-{name}", argv, shown, what, prepare=prepare)
+    for reader, argv in READERS.items():
+        case("special", f"{reader}-result-{name}", argv, shown, what, prepare=prepare)
+case("special", "potential-file-fifo", CHECK, "potential.0.path", "FIFO", prepare=fifo,
+     job={"potential": [{"kind": "file", "path": "pipe", "variable": "V"}]})
+case("special", "state-file-fifo", CHECK, "packet.path", "FIFO", prepare=fifo,
+     job={"packet": {"kind": "file", "path": "pipe", "center": None, "width": None, "momentum": None}})
+
+
+# -- outputs: checked before any work, never replaced without --overwrite ---------------
+def existing(name):
+    def prepare(folder: Path, result: Path) -> Path:
+        path = folder / name
+        path.write_bytes(b"an earlier output\n")
+        return path
+    return prepare
+
+
+def folder_named(name):
+    def prepare(folder: Path, result: Path) -> Path:
+        path = folder / name
+        path.mkdir()
+        return path
+    return prepare
+
+
+OUTPUTS = [
+    ("plot-existing", ["plot", "{result}", "-o", "{damaged}"], "-o", "already exists", existing("p.png")),
+    ("movie-existing", ["movie", "{result}", "-o", "{damaged}"], "-o", "already exists", existing("m.gif")),
+    ("arrivals-plot-existing", ["arrivals", "{result}", "--plot", "{damaged}"], "--plot", "already exists",
+     existing("a.png")),
+    ("levels-states-existing", [*LEVELS, "--states", "{damaged}"], "--states", "already exists",
+     existing("s.nc")),
+    ("plot-folder", ["plot", "{result}", "-o", "{damaged}"], "-o", "folder", folder_named("p.png")),
+    ("movie-folder", ["movie", "{result}", "-o", "{damaged}"], "-o", "folder", folder_named("m.gif")),
+    ("levels-states-folder", [*LEVELS, "--states", "{damaged}"], "--states", "folder", folder_named("s.nc")),
+    ("plot-parent-a-file", ["plot", "{result}", "-o", "{job}/x.png"], "-o", "not a folder", None),
+    ("plot-device", ["plot", "{result}", "-o", "/dev/null"], "-o", "character device", None),
+    ("movie-suffix", ["movie", "{result}", "-o", "{tmp}/m.avi"], "-o", "'.avi'", None),
+    ("plot-suffix", ["plot", "{result}", "-o", "{tmp}/p.txt"], "-o", "figure type", None),
+    ("levels-states-suffix", [*LEVELS, "--states", "{tmp}/s.txt"], "--states", "'.txt'", None),
+    ("run-output-a-file", ["run", "{job}", "-o", "{job}", "--quiet"], "--output", "not a folder", None),
+    ("levels-from-overwrite", ["levels", "--from", "{result}", "--overwrite"], "--overwrite", "", None),
+]
+for name, argv, field, piece, prepare in OUTPUTS:
+    case("outputs", name, argv, field, piece, prepare=prepare)
+
+
 # -- the harness ----------------------------------------------------------------------
 @pytest.fixture(scope="module")
 def good_result(tmp_path_factory):
@@ -533,4 +601,5 @@ def test_the_catalogue_covers_every_class():
     """Issue 13 asks for at least 120 bad inputs across its classes."""
     classes = {c.klass for c in CASES}
     assert len(CASES) >= 120, len(CASES)
-    assert {"sizes", "fields", "units", "expressions", "damaged", "flags", "set", "queue"} <= classes
+    assert {"sizes", "fields", "units", "expressions", "damaged", "flags", "set", "queue", "special",
+            "outputs"} <= classes
