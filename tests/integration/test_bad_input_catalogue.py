@@ -31,6 +31,7 @@ from typing import Callable
 
 import numpy as np
 import pytest
+from tables import merged
 import tomli_w
 
 from wavesweep.cli import main
@@ -46,19 +47,6 @@ TINY = {
     "record": {"every": 0.1, "snapshot_every": 0.5},
     "detector": [{"name": "far", "x": 10.0}],
 }
-
-
-def merged(base: dict, patch: dict) -> dict:
-    """``base`` with ``patch`` merged in recursively (None deletes a key)."""
-    out = copy.deepcopy(base)
-    for key, value in patch.items():
-        if value is None:
-            out.pop(key, None)
-        elif isinstance(value, dict) and isinstance(out.get(key), dict):
-            out[key] = merged(out[key], value)
-        else:
-            out[key] = copy.deepcopy(value)
-    return out
 
 
 @dataclass

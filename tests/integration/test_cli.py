@@ -21,6 +21,7 @@ import sys
 from pathlib import Path
 
 import pytest
+from tables import merged
 import tomli_w
 import xarray as xr
 
@@ -61,19 +62,6 @@ def cli(*args, cwd: Path, exe=None) -> subprocess.CompletedProcess:
     cmd = [str(exe)] if exe else [sys.executable, "-m", "wavesweep"]
     return subprocess.run(cmd + [str(a) for a in args], capture_output=True, text=True,
                           cwd=cwd, env=_env(cwd), timeout=120)
-
-
-def merged(base: dict, patch: dict) -> dict:
-    """``base`` with ``patch`` merged in recursively (None deletes a key)."""
-    out = copy.deepcopy(base)
-    for key, value in patch.items():
-        if value is None:
-            out.pop(key, None)
-        elif isinstance(value, dict) and isinstance(out.get(key), dict):
-            out[key] = merged(out[key], value)
-        else:
-            out[key] = copy.deepcopy(value)
-    return out
 
 
 def write_job(folder: Path, table: dict, name: str = "job.toml") -> Path:
