@@ -13,7 +13,7 @@ Run a job from Python as from the shell::
 and a study: ``ws.submit("jobs/kestrel-scan.toml", "runs")``,
 ``ws.work("runs", workers=2)``, ``ws.collect("runs", "kestrel-scan")``.
 """
-__version__ = "0.1.0"
+from ._version import __version__
 
 import os as _os
 

@@ -14,6 +14,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .marginals import momentum_marginal
+
 from .hamiltonian import split_time_dependent
 
 __all__ = ["Finding", "Report"]
@@ -98,23 +100,6 @@ def all_gaussian(packet) -> bool:
     if packet["kind"] == "superposition":
         return all(all_gaussian(p) for p in packet["packets"])
     return False
-
-
-def momentum_marginal(psi, grid, i):
-    """(k, weight) along axis i of psi: |transform|^2 summed over the other
-    axes (FFT on periodic axes, orthonormal DST-I on box and radial ones),
-    k ascending, weights summing to 1."""
-    import scipy.fft
-
-    ax = grid.axes[i]
-    c = (scipy.fft.fft(psi, axis=i) if ax.boundary == "periodic"
-         else scipy.fft.dst(psi, type=1, axis=i, norm="ortho"))
-    other = tuple(j for j in range(grid.ndim) if j != i)
-    weight = np.sum(np.abs(c) ** 2, axis=other) if other else np.abs(c) ** 2
-    k = ax.wavenumbers
-    order = np.argsort(k)
-    weight = weight[order]
-    return k[order], weight / weight.sum()
 
 
 def _upper_quantile(k, weight, tail):

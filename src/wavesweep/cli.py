@@ -10,6 +10,7 @@ import math
 import os
 import sys
 
+from ._version import __version__
 from .errors import JobError, RunFailed
 
 EXIT_OK, EXIT_FAIL, EXIT_INPUT = 0, 1, 2
@@ -241,7 +242,6 @@ def main(argv=None) -> int:
     except SystemExit as e:    # the message is printed: one line for bad arguments
         return e.code if isinstance(e.code, int) else EXIT_INPUT
     if args.version:
-        from . import __version__
         print(__version__)
         return EXIT_OK
     if not args.command:
@@ -549,7 +549,8 @@ def _plot(args) -> int:
 
 
 def _levels(args) -> int:
-    from .analysis.spectra import (DEGENERATE_TOL, autocorrelation_levels, check_states_path, degenerate_groups,
+    from .eigen import DEGENERATE_TOL, degenerate_groups
+    from .analysis.spectra import (autocorrelation_levels, check_states_path,
                                    level_errors, stationary_states, write_states)
 
     member = {}   # level -> the degenerate level it belongs to (job files only)

@@ -24,7 +24,7 @@ So the run writes, once, the few things analysis needs
   240 and a tenth of the run's steps, each costing about two of them), the
   spectrum's bounds (``spectrum_min``/``spectrum_max``) and, where the band
   needed it and the grid has at most 2048 points, the ground level
-  (``ground_energy``): see :func:`wavesweep.analysis.spectra.energy_band`
+  (``ground_energy``): see :func:`wavesweep.eigen.energy_band`
   (a band the recorded steps cannot tighten enough is refused by ``levels
   --from`` with the sampling it would need, as a live one is);
 - the set-up's adequacy warnings (``adequacy_warnings``, a JSON list of
@@ -46,14 +46,12 @@ import numpy as np
 
 from .errors import JobError
 from .grid import Axis, Grid
+from .marginals import free_space_marginals
 
-__all__ = ["RecordedRun", "analysis_record", "initial_marginals", "read_record", "RECORD_VERSION"]
+__all__ = ["RecordedRun", "analysis_record", "read_record", "RECORD_VERSION"]
 
 # Bumped when the record's content changes; files without it are rebuilt (bounded).
 RECORD_VERSION = 1
-# The momentum marginal is sampled on a grid this many times finer than the axis's own
-# (zero-padded transform), as the classical free-flight estimate interpolates it.
-MOMENTUM_PAD = 4
 # Global attributes read_record relies on: HDF5 checksums cover variables, not attributes, so
 # the writer adds a CRC-32 of these (record_checksum) and the reader refuses a mismatch.
 CHECKED_ATTRS = ("analysis_record", "grid_axes", "absorber_thickness", "time_dependent", "adequacy_warnings",
@@ -80,8 +78,6 @@ def record_checksum(attrs) -> int:
 # Grids up to this many points record the recurrence: it keeps three complex vectors of the
 # grid's size at the run's start (above, `levels --from` says the run did not record its band).
 LANCZOS_MAX_POINTS = 2**22
-# Elements of a slab transformed at once for the momentum marginal (bounded memory on 3D grids).
-SLAB_ELEMENTS = 2**22
 
 
 @dataclass
@@ -164,40 +160,6 @@ def as_record(obj) -> RecordedRun:
 
 
 # -- at run time ----------------------------------------------------------------------
-def initial_marginals(psi0, grid, axis: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """``(rho, k, w)`` of psi0 along ``axis`` (atomic units): the position
-    marginal |psi0|^2 summed over the other axes, and the momentum marginal
-    |FFT_axis psi0|^2 summed over them on a MOMENTUM_PAD times finer k grid
-    (zero padding), k ascending; each normalised to sum 1.  The transform
-    goes slab by slab along another axis, so no temporary of the grid's
-    size (times the padding) is made."""
-    ax = grid.axes[axis]
-    psi0 = np.asarray(psi0)
-    others = tuple(i for i in range(psi0.ndim) if i != axis)
-    pad = MOMENTUM_PAD * ax.points
-    w = np.zeros(pad)
-    rho = np.zeros(ax.points)
-    if not others:
-        rho = np.abs(psi0) ** 2
-        w = np.abs(np.fft.fft(psi0, n=pad)) ** 2
-    else:
-        o = others[0]
-        rest = int(np.prod([psi0.shape[i] for i in others[1:]], dtype=np.int64)) or 1
-        per = max(1, SLAB_ELEMENTS // (pad * rest))
-        for start in range(0, psi0.shape[o], per):
-            slab = psi0[(slice(None),) * o + (slice(start, start + per),)]   # a view: the axes stay
-            keep = tuple(i for i in range(slab.ndim) if i != axis)
-            rho += (np.abs(slab) ** 2).sum(axis=keep)
-            c = np.fft.fft(slab, n=pad, axis=axis)
-            w += (np.abs(c) ** 2).sum(axis=keep)
-    k = 2 * np.pi * np.fft.fftfreq(pad, ax.dx)
-    order = np.argsort(k, kind="stable")
-    total_w = float(np.sum(w))
-    total_rho = float(np.sum(rho))
-    return (rho / total_rho if total_rho > 0 else rho, k[order],
-            w[order] / total_w if total_w > 0 else w[order])
-
-
 def analysis_record(setup, warnings: bool = True, lanczos: bool = True) -> dict:
     """What the run writes for analysis (see the module notes), from its set-up:
     ``attrs`` (global attributes, job units), ``marginals`` (per axis name:
@@ -219,7 +181,7 @@ def analysis_record(setup, warnings: bool = True, lanczos: bool = True) -> dict:
     if warnings:
         from .adequacy import run_warnings
         attrs["adequacy_warnings"] = json.dumps(run_warnings(setup))
-    marginals_au = [initial_marginals(setup.psi0, grid, i) for i in range(grid.ndim)]
+    marginals_au = [free_space_marginals(setup.psi0, grid, i) for i in range(grid.ndim)]
     marginals = {a.name: (rho, k * lf, w) for a, (rho, k, w) in zip(grid.axes, marginals_au)}
     out = {"attrs": attrs, "marginals": marginals, "marginals_au": marginals_au, "energy_factor": ef,
            "initial_psi": None, "potential_full": None, "lanczos": None}
@@ -228,7 +190,7 @@ def analysis_record(setup, warnings: bool = True, lanczos: bool = True) -> dict:
         out["potential_full"] = np.asarray(setup.hamiltonian.static_potential, float) / ef
     if lanczos and not setup.hamiltonian.time_dependent and grid.size <= LANCZOS_MAX_POINTS:
         # lazy: the run needs it once, at its start
-        from .analysis.spectra import (BAND_CHUNK, BAND_STEPS, DEFAULT_MIN_WEIGHT, DENSE_MAX_POINTS, band_window,
+        from .eigen import (BAND_CHUNK, BAND_STEPS, DEFAULT_MIN_WEIGHT, DENSE_MAX_POINTS, band_window,
                                        lanczos_recurrence)
         resolution, width = band_window(setup.total_steps * setup.dt, setup.sample_steps * setup.dt)
         # a bounded share of the run: at most a tenth of its steps (each costs about two of them), and

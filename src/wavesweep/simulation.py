@@ -20,7 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
+from ._version import __version__
 from .absorbers.layers import Absorber
 from .adequacy import dynamics, representability
 from .absorbers.tuning import tune_cap_strength as _tune_cap_strength

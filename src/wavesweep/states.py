@@ -11,7 +11,7 @@
 * ``eigenstate``: the stationary state number ``n`` (0 = ground, in energy
   order) of the job's Hamiltonian at t = 0 without the absorber, or of the
   trap given by its own ``potential`` tables, from
-  :func:`wavesweep.analysis.spectra.eigenpairs`; optionally boosted,
+  :func:`wavesweep.eigen.eigenpairs`; optionally boosted,
   psi(r) exp(i p.r) (``momentum``, per axis), which adds p to <p>.  A level
   that is degenerate has no unique state and is refused.
 
@@ -24,8 +24,11 @@ import math
 
 import numpy as np
 
+from .eigen import degenerate_groups, eigenpairs
 from .errors import JobError
+from .hamiltonian import Hamiltonian
 from .io.paths import input_file
+from .marginals import momentum_marginal
 from .schema import Field
 
 __all__ = ["PACKET_SCHEMAS", "PACKET_FORMULAS", "build_state", "gaussian_packet", "momentum_spread"]
@@ -176,9 +179,6 @@ def _superposition(packet, grid, mass, field, length_unit=(1.0, "bohr"), terms=N
 
 
 def _eigenstate(packet, grid, mass, field, terms):
-    from .analysis.spectra import eigenpairs
-    from .hamiltonian import Hamiltonian
-
     trap = packet.get("trap_terms")
     if trap is None:
         if terms is None:
@@ -190,9 +190,9 @@ def _eigenstate(packet, grid, mass, field, terms):
     # one level more than asked for, to tell whether level n is degenerate
     energies, states = eigenpairs(Hamiltonian(grid, mass, trap), min(n + 2, grid.size), t=0.0,
                                   field=f"{field}.n")
-    gap_tol = 1e-8 * max(abs(float(energies[n])), float(energies[-1] - energies[0]), 1e-300)
-    for j in (n - 1, n + 1):
-        if 0 <= j < len(energies) and abs(float(energies[j] - energies[n])) <= gap_tol:
+    for first, last in degenerate_groups(energies):
+        if first <= n <= last:
+            j = n + 1 if n < last else n - 1
             raise JobError(f"{field}.n", f"level {n} is degenerate with level {j} (E = {energies[n]:.10g} "
                                          "hartree): its state is not unique; break the symmetry of the trap "
                                          "or superpose the degenerate states yourself")
@@ -205,19 +205,14 @@ def _eigenstate(packet, grid, mass, field, terms):
 def _boost(psi, grid, momenta, field):
     """psi exp(i p.r); refused where the boosted state outruns the grid's
     momenta (|p| + 3 sigma_p > k_max on an axis, as for Gaussian packets)."""
-    import scipy.fft
-
     if grid.radial:
         raise JobError(f"{field}.momentum", "a radial state u(r) has no direction to boost; remove momentum")
     phase = 0.0
     for i, (ax, p) in enumerate(zip(grid.axes, momenta)):
         if not p:
             continue
-        c = (scipy.fft.fft(psi, axis=i) if ax.boundary == "periodic"
-             else scipy.fft.dst(psi, type=1, axis=i, norm="ortho"))
-        k = ax.wavenumbers.reshape([-1 if j == i else 1 for j in range(grid.ndim)])
-        weight = np.abs(c) ** 2
-        sigma = math.sqrt(float(np.sum(k**2 * weight) / np.sum(weight)))  # psi is real: <p> = 0
+        k, weight = momentum_marginal(psi, grid, i)
+        sigma = math.sqrt(float(np.sum(k**2 * weight)))  # psi is real: <p> = 0
         reach = abs(p) + 3.0 * sigma
         if reach > ax.k_max:
             need = math.ceil(ax.length * (abs(p) + 6.0 * sigma) / math.pi) + 1

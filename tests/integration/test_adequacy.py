@@ -288,7 +288,7 @@ def test_levels_refuses_a_grid_that_cannot_fit_before_allocating(tmp_path, capsy
     """`levels` on a 4096^3 grid was 'out of memory' (exit 1) after trying to
     allocate it; now it is one line from the shapes, naming the points."""
     from wavesweep.adequacy import LEVELS_DENSE_MAX_POINTS
-    from wavesweep.analysis.spectra import DENSE_MAX_POINTS
+    from wavesweep.eigen import DENSE_MAX_POINTS
     from wavesweep.cli import main
 
     assert LEVELS_DENSE_MAX_POINTS == DENSE_MAX_POINTS   # the estimate follows the solver

@@ -182,7 +182,7 @@ def test_the_recorded_band_is_the_live_one():
     exactly (the same quadratures, step for step), on a displaced packet in
     a harmonic well (reference: the live computation on the same H)."""
     from conftest import setup_of
-    from wavesweep.analysis.spectra import energy_band, lanczos_recurrence, recorded_energy_band
+    from wavesweep.eigen import energy_band, lanczos_recurrence, recorded_energy_band
 
     setup = setup_of(WELL)
     h, psi0 = setup.hamiltonian, setup.psi0

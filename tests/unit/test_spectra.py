@@ -18,7 +18,8 @@ import xarray as xr
 
 import analytic as an
 from conftest import make_job, setup_of
-from wavesweep.analysis.spectra import autocorrelation_levels, eigenpairs, stationary_states, write_states
+from wavesweep.analysis.spectra import autocorrelation_levels, stationary_states, write_states
+from wavesweep.eigen import eigenpairs
 from wavesweep.errors import JobError
 from wavesweep.grid import Axis, Grid
 from wavesweep.hamiltonian import Hamiltonian
@@ -160,11 +161,11 @@ def test_separable_2d_levels_through_the_iterative_path():
     problems (separation of variables; from memory).  The 1D levels come from
     scipy.linalg.eigh of the 1D Fourier-grid Hamiltonians built here; the 2D
     grid (64 x 72 points) is beyond the dense limit, so LOBPCG does it."""
-    from wavesweep.analysis import spectra
+    from wavesweep import eigen
 
     mass, omega = 1.0, 1.1
     nx, ny = 64, 72
-    assert nx * ny > spectra.DENSE_MAX_POINTS
+    assert nx * ny > eigen.DENSE_MAX_POINTS
     job = make_job(_job({"x": {"min": -9.0, "max": 9.0, "points": nx}, "y": {"min": -10.0, "max": 10.0, "points": ny}},
                         [{"kind": "harmonic", "omega": [omega, 0.0]},
                          {"kind": "double_well", "height": 1.5, "separation": 3.0, "axis": "y"}], mass=mass))
@@ -190,7 +191,7 @@ def test_coarse_to_fine_interpolation_is_exact_for_band_limited_states(boundary)
     2 pi x / L and its Nyquist mode cos(pi N_c x / L) (periodic), or sin(n pi
     (x - min) / L) for n <= N_c (box), comes out as its values on the fine
     grid (the wrong Nyquist split or DST scaling would not)."""
-    from wavesweep.analysis.spectra import _coarser, _resample
+    from wavesweep.eigen import _coarser, _resample
 
     lo, hi = -3.0, 5.0
     length = hi - lo
@@ -417,7 +418,7 @@ def test_lanczos_band_bounds_the_weight_outside(threshold):
     weights from scipy.linalg.eigh), and the band is no wider than needed
     (the tightest band, from the eigh weights, plus 0.4 of the measure's spread;
     measured 0.3-0.4 after 80 steps, 0.1-0.4 after 160)."""
-    from wavesweep.analysis.spectra import lanczos_quadrature, quadrature_band
+    from wavesweep.eigen import lanczos_quadrature, quadrature_band
 
     a, energies, weights, psi = _known_measure()
     nodes, node_weights, exhausted = lanczos_quadrature(lambda x: a @ x, psi, 80, np.ptp(energies))
@@ -433,7 +434,7 @@ def test_lanczos_band_bounds_the_weight_outside(threshold):
 def test_lanczos_of_an_eigenvector_is_exhausted():
     """psi an eigenvector (scipy.linalg.eigh): the Krylov space is psi alone,
     one node at its eigenvalue with weight 1."""
-    from wavesweep.analysis.spectra import lanczos_quadrature
+    from wavesweep.eigen import lanczos_quadrature
 
     a, energies, _, _ = _known_measure(size=60)
     _, vectors = scipy.linalg.eigh(a)
@@ -450,7 +451,7 @@ def test_band_of_a_quenched_oscillator_holds_its_weak_levels():
     holds levels up to n = 8 (E = 8.5, weight 3.9e-5) that <H> +/- 6 Delta H
     (<H> = 0.625, Delta H = 0.53: up to 3.8) cut off, and ends below level 12
     (weight 4.0e-7), far below the grid's largest energy."""
-    from wavesweep.analysis.spectra import energy_band
+    from wavesweep.eigen import energy_band
 
     setup = setup_of(_job(HO_GRID, [{"kind": "harmonic", "omega": 1.0}],
                           packet={"kind": "eigenstate", "n": 0,
@@ -516,7 +517,7 @@ def test_degenerate_groups():
     oscillator's (n + 1)-fold levels E = (n + 1) hbar w (e.g. Sakurai
     problem 2.x; from memory) from the dense path, and a tunnelling pair
     split by 5e-3 of its energy that is not degenerate."""
-    from wavesweep.analysis.spectra import degenerate_groups
+    from wavesweep.eigen import degenerate_groups
 
     job = make_job(_job({"x": {"min": -6.0, "max": 6.0, "points": 24}, "y": {"min": -6.0, "max": 6.0, "points": 24}},
                         [{"kind": "harmonic", "omega": 1.0}]))

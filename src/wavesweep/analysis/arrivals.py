@@ -140,7 +140,7 @@ def classical_free_flight(x_axis, rho, k, w, mass: float, x_detector: float,
     towards the detector.  So Pi_cl(t) = int dx rho(x) w(p(x, t)) m |x_d - x| / t^2
     with p(x, t) = m (x_d - x) / t, and the mean is <m (x_d - x) / p>.
 
-    The marginals are the run's record (:func:`wavesweep.record.initial_marginals`):
+    The marginals are the run's record (:func:`wavesweep.marginals.free_space_marginals`):
     ``rho`` on the axis's coordinates ``x_axis``, ``w`` on the ascending wave
     numbers ``k`` (a zero-padded transform: a fine p grid), each summing to 1.
 

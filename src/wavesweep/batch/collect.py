@@ -58,7 +58,7 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from .. import __version__
+from .._version import __version__
 from ..errors import JobError
 from ..io.recorder import atomic_rename
 from ..jobfile import ABSORBER, AXIS, EVOLVE, PARTICLE, RECORD
