@@ -18,8 +18,8 @@ import time
 
 import numpy as np
 
-from wavesweep.jobfile import job_from_dict
-from wavesweep.simulation import Setup
+from wavesweep.job import job_from_dict
+from wavesweep.setup import Setup
 
 GRIDS = {
     "1D 4096": {"x": {"min": -200.0, "max": 200.0, "points": 4096}},
@@ -67,9 +67,9 @@ _PEAK_RUN = """
 import sys, tracemalloc, json
 sys.path.insert(0, sys.argv[3])
 from bench import GRIDS, job_for
-import wavesweep.simulation, numpy as np
+import wavesweep.run, numpy as np
 tracemalloc.start()
-from wavesweep.simulation import Simulation
+from wavesweep.run import Simulation
 job = job_for(GRIDS[sys.argv[1]], sys.argv[2], duration=0.2)
 sim = Simulation(job)
 import tempfile
@@ -165,8 +165,8 @@ _BATCH_RUN = """
 import sys, json, time, copy, tempfile
 sys.path.insert(0, sys.argv[1])
 from bench import BATCH_JOB
-from wavesweep.jobfile import job_from_dict
-from wavesweep.simulation import Simulation
+from wavesweep.job import job_from_dict
+from wavesweep.run import Simulation
 from wavesweep.batched import BatchedRun
 runs, mode = int(sys.argv[2]), sys.argv[3]
 jobs = []
@@ -214,8 +214,8 @@ def bench_batch(runs: int, repeats: int):
 _START = r"""
 import sys, time
 t0 = float(sys.argv[1])
-from wavesweep.jobfile import job_from_dict
-from wavesweep.simulation import Setup
+from wavesweep.job import job_from_dict
+from wavesweep.setup import Setup
 job = job_from_dict({"grid": {"x": {"min": -60.0, "max": 60.0, "points": 2048}},
     "potential": [{"kind": "barrier", "height": 0.5, "width": 1.0}],
     "packet": {"center": -20.0, "width": 3.0, "momentum": 1.0},
@@ -284,9 +284,9 @@ def bench_queue(runs: int, repeats: int):
 
     import tomli_w
 
-    from wavesweep.batch.api import work
-    from wavesweep.batch.queue import Queue
-    from wavesweep.batch.sweep import expand_study
+    from wavesweep.studies.api import work
+    from wavesweep.studies.queue import Queue
+    from wavesweep.study import expand_study
 
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
@@ -322,7 +322,7 @@ def bench_queue(runs: int, repeats: int):
                 root = tmp / f"w{workers}-{rep}"
                 path = tmp / f"study{workers}{rep}.toml"
                 path.write_text(tomli_w.dumps(table))
-                from wavesweep.batch.api import submit
+                from wavesweep.studies.api import submit
                 submit(path, root)
                 t0 = time.perf_counter()
                 work(root, workers=workers, checkpoint_seconds=3600.0)
@@ -359,7 +359,7 @@ def bench_movie(repeats: int):
     import tempfile
     from pathlib import Path
 
-    from wavesweep.simulation import Simulation
+    from wavesweep.run import Simulation
     from wavesweep.viz.movie import MovieOptions, render_frames, render_movie
     from wavesweep.viz.scene import read_scene
 

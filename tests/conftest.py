@@ -5,8 +5,9 @@ import copy
 
 import pytest
 
-from wavesweep.jobfile import job_from_dict
-from wavesweep.simulation import Setup, Simulation
+from wavesweep.job import job_from_dict
+from wavesweep.run import Simulation
+from wavesweep.setup import Setup, resolve_job
 
 FREE_1D = {
     "title": "free packet",
@@ -23,7 +24,8 @@ def free_job():
 
 
 def make_job(table, overrides=()):
-    return job_from_dict(copy.deepcopy(table), overrides)
+    """The complete job of a table (a CAP left open is tuned: resolve_job)."""
+    return resolve_job(job_from_dict(copy.deepcopy(table), overrides))
 
 
 def run_table(table, outdir, overrides=(), **kw):

@@ -8,15 +8,27 @@ scripts); a :class:`Report` is the list of them for one job or study.
 """
 from __future__ import annotations
 
+import hashlib
+import json
 import math
 import os
+import re
+import tempfile
+import time as _time
 from dataclasses import dataclass, field
 
 import numpy as np
 
-from .marginals import momentum_marginal
-
+from .absorbers.layers import face_names
+from .absorbers.tuning import cap_profile, layer_scattering, return_probability
+from .eigen import DENSE_MAX_POINTS
+from .errors import JobError
+from .fft import wisdom_path
 from .hamiltonian import split_time_dependent
+from .marginals import momentum_marginal
+from .propagators import propagator_class
+from .propagators.split_operator import RADIAL_DENSE_MAX
+from .states import central_momenta, momentum_spread
 
 __all__ = ["Finding", "Report"]
 
@@ -141,7 +153,6 @@ def packet_moments(setup) -> list[Moments]:
     """Closed-form moments of each Gaussian part, or the measured moments of
     the actual initial state (eigenstates, files, mixed superpositions):
     <x>, std x from |psi0|^2 and <p>, std p from the momentum marginal."""
-    from .states import central_momenta, momentum_spread
 
     grid = setup.grid
     if all_gaussian(setup.packet):
@@ -479,7 +490,6 @@ def _layer_bounds(setup) -> dict:
     table = setup.job.table.get("absorber") or {}
     if table.get("kind", "none") == "none":
         return {}
-    from .absorbers.layers import face_names
     th = setup.units.to_atomic(table["thickness"], "length")
     out = {}
     for face in table.get("faces") or face_names(setup.grid):
@@ -623,7 +633,6 @@ _DYNAMICS_CACHE_SIZE = 64
 
 
 def _dynamics_key(setup) -> str | None:
-    import json
     table = dict(setup.job.table)
     if isinstance(table.get("absorber"), dict):
         table["absorber"] = {k: v for k, v in table["absorber"].items() if k not in ("strength", "power")}
@@ -768,8 +777,6 @@ def representability(setup) -> None:
     """Raise JobError when the grid cannot represent the initial packet at
     all (|p0| + 3 sigma_p of a Gaussian part above the axis's largest k): the
     state itself would be wrong, before any step."""
-    from .errors import JobError
-    from .states import central_momenta, momentum_spread
 
     u = setup.units
     pf = u.factor("momentum")
@@ -938,7 +945,7 @@ def splitting_warning(setup) -> str | None:
     repeats it: fluxes and amplitudes at a point suffer first (measured on a
     sharp 1 hartree barrier: at a weight of 1.6e-2 the flux through a
     detector beyond it summed to 0.130 where 0.168 crossed; at 0, to 3e-6)."""
-    if not getattr(setup.scheme, "in_place_transform", False):
+    if not setup.scheme.in_place_transform:
         return None
     u = setup.units
     f = _aliasing_finding(setup, u.unit_label("time"), u.factor("time"))
@@ -1033,8 +1040,7 @@ def time_step_finding(setup, dyn: Dynamics) -> Finding:
     phase = max(kin_phase, pot_phase)
     level = "ok" if phase <= 1.0 else ("warn" if phase <= math.pi else "error")
     exact = getattr(setup.scheme, "name", "") == "chebyshev"
-    if setup.grid.radial and getattr(setup.scheme, "in_place_transform", False) and not separable:
-        from .propagators.split_operator import RADIAL_DENSE_MAX
+    if setup.grid.radial and setup.scheme.in_place_transform and not separable:
         # a static radial H is stepped exactly in its dense eigenbasis (no splitting)
         exact = exact or (setup.grid.axes[0].points <= RADIAL_DENSE_MAX
                           and not any(t.time_dependent for t in setup.terms))
@@ -1152,7 +1158,6 @@ def absorber_findings(setup, dyn: Dynamics) -> list[Finding]:
     the wall; periodic: reflection plus one-way transmission, which wraps
     round) over the energies that arrive there over the run
     (:attr:`Dynamics.windows`).  A figure above the target is never "ok"."""
-    from .absorbers.tuning import cap_profile, layer_scattering, return_probability
 
     u = setup.units
     lf, L = u.factor("length"), u.unit_label("length")
@@ -1293,37 +1298,17 @@ def _job_points(table) -> list[int]:
 
 def memory_estimate(job) -> dict:
     """Bytes a run of ``job`` holds at its peak, from the grid's shape, the
-    precision and the scheme alone (nothing is allocated).  Split-operator
-    steps keep psi0, psi, the observer's buffer, the kick factors (Strang:
-    one, its whole kick is the half kick squared; order 4: two; others:
-    three) and half a psi of transients, plus V and the absorber's W in
-    float64 -- measured 5.2x psi at 128^3 for Strang (scripts/bench); other
-    schemes keep about seven arrays of psi and three of float64."""
-    from .propagators import propagator_class
-    from .propagators.split_operator import RADIAL_DENSE_MAX
-
+    precision and the scheme alone (nothing is allocated): the scheme's own
+    :meth:`~wavesweep.propagators.Propagator.peak_bytes`."""
     table = job.table
     size = int(np.prod(_job_points(table), dtype=np.float64)) if _job_points(table) else 0
     itemsize = 8 if table["evolve"].get("precision") == "single" else 16
     psi_bytes = float(size) * itemsize
     scheme = propagator_class(table["evolve"].get("scheme", "strang"))
-    w_arrays = 0 if (table.get("absorber") or {}).get("kind", "none") == "none" else 1
-    if getattr(scheme, "in_place_transform", False):
-        n_kicks = getattr(scheme, "kick_factors", {"strang": 1, "order4": 2}.get(scheme.name, 3))
-        estimate = psi_bytes * (3.5 + n_kicks) + size * 8.0 * (1 + w_arrays)
-    else:
-        estimate = psi_bytes * 7 + size * 8.0 * 3
-    if "r" in table["grid"] and getattr(scheme, "in_place_transform", False):
-        n = int(table["grid"]["r"]["points"])
-        if n <= RADIAL_DENSE_MAX:
-            estimate += 16.0 * n * n   # the dense radial eigenbasis (two N x N matrices)
+    absorbing = (table.get("absorber") or {}).get("kind", "none") != "none"
+    radial = int(table["grid"]["r"]["points"]) if "r" in table["grid"] else None
+    estimate = scheme.peak_bytes(size, itemsize, absorbing, radial)
     return {"psi_bytes": psi_bytes, "estimate_bytes": estimate, "points": size}
-
-
-# Grids up to this many points are diagonalised densely by ``levels``
-# (analysis/spectra.py's DENSE_MAX_POINTS; kept here so that the estimate
-# needs no import from the analysis layer).
-LEVELS_DENSE_MAX_POINTS = 2048
 
 
 def levels_memory_estimate(job, count: int) -> float:
@@ -1333,7 +1318,7 @@ def levels_memory_estimate(job, count: int) -> float:
     vectors per state, float64) plus V and the kinetic factors, and the
     coarser grids of the error estimate (under a half more)."""
     size = float(np.prod(_job_points(job.table), dtype=np.float64))
-    if size <= LEVELS_DENSE_MAX_POINTS:
+    if size <= DENSE_MAX_POINTS:
         return 3 * 8.0 * size * size
     return 1.5 * (8.0 * size * 8 * (count + 2) + 8.0 * size * 4)
 
@@ -1352,9 +1337,7 @@ def memory_limit() -> tuple[float, str]:
     if text is None or not text.strip():
         avail, total = available_memory()
         return avail, f"the {_bytes(avail)} available here (of {_bytes(total)})"
-    import re
 
-    from .errors import JobError
     m = re.fullmatch(r"\s*([0-9]*\.?[0-9]+(?:[eE][+-]?[0-9]+)?)\s*([A-Za-z]*)\s*", text)
     unit = m.group(2).upper() if m else None
     if m is None or unit not in _SIZE_UNITS or not 0 < float(m.group(1)) * _SIZE_UNITS[unit] < math.inf:
@@ -1373,7 +1356,6 @@ def _memory_advice() -> str:
 
 def memory_error(need: float, what: str, field: str):
     """A JobError when ``need`` bytes exceed :func:`memory_limit`, else None."""
-    from .errors import JobError
     limit, said = memory_limit()
     if need <= limit:
         return None
@@ -1384,7 +1366,6 @@ def physical_memory_error(need: float):
     """A JobError (naming the grid) when ``need`` bytes exceed this machine's
     physical memory: what cannot be built at all, even with --force (which
     accepts runs above the *available* memory), else None."""
-    from .errors import JobError
     _, total = available_memory()
     if need <= total:
         return None
@@ -1456,7 +1437,6 @@ def trial_costs(setup, seconds: float = 1.0) -> tuple[float, float, int]:
     short trial after warm-up: the kernels compiled by a first step, and the
     observer's first measurement (which plans its transform, as a run does
     once) left out; a sample's cost is the median of five measurements."""
-    import time as _time
 
     prop = setup.make_propagator()
     psi = prop.load(setup.psi0.astype(setup.dtype))
@@ -1524,7 +1504,7 @@ def assess(setup) -> list[Finding]:
     out = momentum_findings(setup, dyn)
     out += margin_findings(setup)
     out.append(time_step_finding(setup, dyn))
-    if getattr(setup.scheme, "in_place_transform", False):
+    if setup.scheme.in_place_transform:
         u = setup.units
         out.append(_aliasing_finding(setup, u.unit_label("time"), u.factor("time")))
     res = resolution_finding(setup)
@@ -1569,7 +1549,6 @@ def remember_run_warnings(setup, findings) -> None:
 def _warnings_key(setup) -> str:
     """The run id (the physics) and this module's source: a change of a
     criterion never reuses old lines."""
-    import hashlib
     global _REVISION
     if _REVISION is None:
         with open(__file__, "rb") as f:
@@ -1581,13 +1560,10 @@ _REVISION = None
 
 
 def _warnings_path(key: str) -> str:
-    import os
-    from .fft import wisdom_path
     return os.path.join(os.path.dirname(wisdom_path()), "run-warnings", f"{key}.json")
 
 
 def _read_warnings(key: str):
-    import json
     try:
         with open(_warnings_path(key)) as f:
             lines = json.load(f)
@@ -1599,9 +1575,6 @@ def _read_warnings(key: str):
 
 
 def _write_warnings(key: str, lines) -> None:
-    import json
-    import os
-    import tempfile
     path = _warnings_path(key)
     try:
         os.makedirs(os.path.dirname(path), exist_ok=True)

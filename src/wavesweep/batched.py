@@ -19,16 +19,19 @@ from __future__ import annotations
 import copy
 import hashlib
 import json
+import tomllib
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
 
 from .errors import RunFailed, RunInterrupted
-from .fft import make_transform
+from .fft import THREADS_MIN_POINTS, default_threads, make_transform
 from .io.checkpoint import ResultExists
 from .observables import Observer
 from .propagators import propagator_class
-from .simulation import Simulation, _progress, _set_kernel_threads
+from .run import Simulation, progress_bar
+from .setup import set_kernel_threads
 
 __all__ = ["BatchedRun", "batch_key", "batch_group", "members_for", "BATCH_MAX_ELEMENTS", "BATCH_MAX_MEMBERS"]
 
@@ -68,8 +71,7 @@ def batch_key(table: dict) -> str | None:
 
 def batch_group(job_toml: str) -> tuple[str, int] | None:
     """(batch key, most members) of a queued job's text, or None (for
-    :meth:`wavesweep.batch.queue.Queue.claim_batch`)."""
-    import tomllib
+    :meth:`wavesweep.studies.queue.Queue.claim_batch`)."""
     try:
         table = tomllib.loads(job_toml)
     except (tomllib.TOMLDecodeError, TypeError):
@@ -148,7 +150,7 @@ class BatchedRun:
         try:
             for i, (sim, path, policy) in enumerate(zip(self.sims, paths, checkpoints)):
                 try:
-                    book = sim._open(path, policy)
+                    book = sim.begin(path, policy)
                 except Exception as e:   # this member's folder, checkpoint, ...: its own outcome
                     end(i, e)
                     continue
@@ -168,12 +170,12 @@ class BatchedRun:
                 except Exception as e:
                     for i in members:
                         if outcomes[i] is None:
-                            self.sims[i]._abort(books[i], e)
+                            self.sims[i].abort(books[i], e)
                             end(i, e)
         except BaseException as e:
             for i, book in books.items():
                 if outcomes[i] is None:
-                    self.sims[i]._abort(book, e)
+                    self.sims[i].abort(book, e)
             raise
         return outcomes
 
@@ -181,7 +183,6 @@ class BatchedRun:
         """Lanes for a group of ``members``: one per core (``evolve.threads``
         or ``WAVESWEEP_THREADS`` or all cores) when one member's grid is too
         small for threaded transforms, else one."""
-        from .fft import THREADS_MIN_POINTS, default_threads
         s0 = self.sims[0].setup
         cores = s0.threads or default_threads()
         if s0.grid.radial:   # the dense radial step is a threaded kernel of its own
@@ -206,7 +207,6 @@ class BatchedRun:
         return lanes
 
     def _run_group(self, members, books, outcomes, progress, on_sample, should_stop, on_end):
-        from concurrent.futures import ThreadPoolExecutor
         sims = [self.sims[i] for i in members]
         s0 = sims[0].setup
         nb = len(members)
@@ -217,7 +217,7 @@ class BatchedRun:
         done = start = int(group_books[0].steps)
         total = s0.total_steps
         t_now = lanes[0].prop.t
-        bar = _progress(total, progress, f"batch of {nb}")
+        bar = progress_bar(total, progress, f"batch of {nb}")
         pool = ThreadPoolExecutor(len(lanes)) if len(lanes) > 1 else None
 
         def each(fn):
@@ -235,12 +235,12 @@ class BatchedRun:
                     psi_k, absorbed_k = lane.psi[j], lane.prop.absorbed[j]
                     try:
                         if done == start and group_books[k].fresh:
-                            sims[k]._observe(group_books[k], values[j], t_now, absorbed_k)
-                            sims[k]._snapshot(group_books[k].writer, 0.0, psi_k)
+                            sims[k].observe(group_books[k], values[j], t_now, absorbed_k)
+                            sims[k].write_snapshot(group_books[k].writer, 0.0, psi_k)
                         else:
-                            sims[k]._record(group_books[k], values[j], t_now, absorbed_k, psi_k, done)
+                            sims[k].record_sample(group_books[k], values[j], t_now, absorbed_k, psi_k, done)
                     except RunFailed as e:
-                        sims[k]._abort(group_books[k], e)
+                        sims[k].abort(group_books[k], e)
                         end(k, e)
 
         try:
@@ -263,19 +263,19 @@ class BatchedRun:
                     book = group_books[k]
                     lane, j = where[k]
                     if should_stop is not None and should_stop(members[k]):
-                        saved = sims[k]._checkpoint(book, done, lane.prop.absorbed[j], lane.psi[j],
+                        saved = sims[k].save_checkpoint(book, done, lane.prop.absorbed[j], lane.psi[j],
                                                     reopen=False) if book.store is not None else None
                         stopped = RunInterrupted(saved, done)
-                        sims[k]._abort(book, stopped)   # the partial file goes; the checkpoint stays
+                        sims[k].abort(book, stopped)   # the partial file goes; the checkpoint stays
                         end(k, stopped)
                     elif book.checkpoint_due():
-                        sims[k]._checkpoint(book, done, lane.prop.absorbed[j], lane.psi[j])
+                        sims[k].save_checkpoint(book, done, lane.prop.absorbed[j], lane.psi[j])
             for k in sorted(active):
                 lane, j = where[k]
                 try:
-                    end(k, sims[k]._close(group_books[k], lane.psi[j], int(lane.prop.steps_done)))
+                    end(k, sims[k].finish(group_books[k], lane.psi[j], int(lane.prop.steps_done)))
                 except (ResultExists, RunFailed) as e:   # a full disk is this member's end, not the group's
-                    sims[k]._abort(group_books[k], e)
+                    sims[k].abort(group_books[k], e)
                     end(k, e)
         finally:
             if pool is not None:
@@ -294,7 +294,7 @@ class _Lane:
         self.positions = positions
         backend = s0.fft_backend if s0.scheme.in_place_transform else "scipy"
         transform = make_transform(s0.grid, backend, s0.dtype, threads, members=nb)
-        _set_kernel_threads(transform.threads)
+        set_kernel_threads(transform.threads)
         self.prop = s0.scheme(s0.hamiltonian, s0.dt, transform, [s.setup.absorber for s in sims], s0.dtype,
                               members=nb)
         self.observer = Observer(s0.grid, s0.mass, make_transform(s0.grid, s0.fft_backend, s0.dtype,

@@ -14,8 +14,12 @@ from __future__ import annotations
 from .adequacy import (Finding, Report, assess, memory_finding, remember_run_warnings, run_time_finding,
                        splitting_warning)
 from .errors import JobError, combine_errors
-from .jobfile import Job
-from .reference import default_findings
+from .fft import make_transform
+from .job import Job
+from .job.reference import default_findings
+from .propagators.chebyshev import Chebyshev
+from .propagators.split_operator import RADIAL_DENSE_MAX
+from .setup import Setup
 
 __all__ = ["Finding", "Report", "check_job", "check_study", "preflight", "splitting_warning"]
 
@@ -33,13 +37,10 @@ def _units_finding(job: Job) -> Finding:
 def _scheme_findings(setup) -> list[Finding]:
     out = []
     if setup.scheme.name == "chebyshev":
-        from .fft import make_transform
-        from .propagators.chebyshev import Chebyshev
         prop = Chebyshev(setup.hamiltonian, setup.dt, make_transform(setup.grid, "scipy"), setup.absorber)
         out.append(Finding("time step", "ok", f"chebyshev: {len(prop.coefficients)} terms per step",
                            {"terms": len(prop.coefficients)}))
-    if setup.grid.radial and getattr(setup.scheme, "in_place_transform", False):
-        from .propagators.split_operator import RADIAL_DENSE_MAX
+    if setup.grid.radial and setup.scheme.in_place_transform:
         n = setup.grid.axes[0].points
         if n > RADIAL_DENSE_MAX:
             out.append(Finding("time step", "warn",
@@ -52,7 +53,6 @@ def _scheme_findings(setup) -> list[Finding]:
 def check_job(job: Job, trial_seconds: float = 1.0) -> Report:
     """Findings for a job: units, memory from shapes, then (when it fits)
     the set-up's criteria and a timed trial of ``trial_seconds`` (0: none)."""
-    from .simulation import Setup
 
     findings = [_units_finding(job), *default_findings(job)]
     mem = memory_finding(job)
@@ -98,7 +98,6 @@ def check_study(study, trial_seconds: float = 1.0, progress=None) -> Report:
     its message naming the points that fail (their swept values) and
     ``values["failing_points"]`` listing them.  The timed trial runs on the
     point with the most steps x points (the longest run)."""
-    from .simulation import Setup
 
     if len(study.runs) == 1:
         return check_job(study.runs[0].job, trial_seconds)
@@ -158,7 +157,6 @@ def preflight(jobs, force: bool = False) -> list[str]:
     criteria (no trial).  Error-level findings raise one JobError naming
     the field (and, in a study, the points) unless ``force``; warnings are
     returned as one line each, once per criterion."""
-    from .simulation import Setup
 
     warnings: dict = {}
     errors: dict = {}

@@ -292,9 +292,11 @@ def _one_line(message) -> str:
 
 
 def _run(args) -> int:
-    from .batch.sweep import load_study
-    from .simulation import Simulation
+    # lazy: each command loads only what it needs (every command's start-up)
+    from .study import load_study
+    from .run import Simulation
 
+    # lazy: each command loads only what it needs (every command's start-up)
     from .check import preflight
     from .io.paths import output_folder
 
@@ -313,6 +315,7 @@ def _run(args) -> int:
 
 def _run_cost(job) -> float:
     """Steps x grid points of a job, from its table (no set-up built)."""
+    # lazy: each command loads only what it needs (every command's start-up)
     from .adequacy import memory_estimate
     ev = job.table["evolve"]
     steps = job.units.to_atomic(ev["duration"], "time") / job.units.to_atomic(ev["dt"], "time")
@@ -320,10 +323,12 @@ def _run_cost(job) -> float:
 
 
 def _check(args) -> int:
-    from .batch.sweep import load_study
+    # lazy: each command loads only what it needs (every command's start-up)
+    from .study import load_study
     from .check import check_study
 
     if args.tolerance is not None:
+        # lazy: each command loads only what it needs (every command's start-up)
         from .pilot import plan_pilot, run_pilot, validate_tolerance
         validate_tolerance(args.tolerance)      # before anything is computed
     study = load_study(args.job, args.set)
@@ -359,7 +364,8 @@ def _check(args) -> int:
 
 
 def _submit(args) -> int:
-    from .batch.api import default_root, submit
+    # lazy: each command loads only what it needs (every command's start-up)
+    from .studies.api import default_root, submit
 
     out = submit(args.job, args.root, args.study, args.set, force=args.force)
     _warn("submit", out.get("warnings", []))
@@ -370,7 +376,8 @@ def _submit(args) -> int:
 
 
 def _work(args) -> int:
-    from .batch.api import format_work, until_deadline, work
+    # lazy: each command loads only what it needs (every command's start-up)
+    from .studies.api import format_work, until_deadline, work
     from .errors import DiskFull
 
     deadline, note = until_deadline(args.until)
@@ -395,7 +402,8 @@ def _work(args) -> int:
 
 
 def _status(args) -> int:
-    from .batch.api import format_status, status
+    # lazy: each command loads only what it needs (every command's start-up)
+    from .studies.api import format_status, status
 
     st = status(args.root)
     print(json.dumps(st) if args.json else format_status(st))
@@ -403,7 +411,8 @@ def _status(args) -> int:
 
 
 def _retry_or_cancel(args) -> int:
-    from .batch.api import existing_queue
+    # lazy: each command loads only what it needs (every command's start-up)
+    from .studies.api import existing_queue
 
     queue = existing_queue(args.root)
     op = queue.retry if args.command == "retry" else queue.cancel
@@ -413,8 +422,9 @@ def _retry_or_cancel(args) -> int:
 
 
 def _collect(args) -> int:
-    from .batch.api import default_root
-    from .batch.collect import collect_study, missing_points
+    # lazy: each command loads only what it needs (every command's start-up)
+    from .studies.api import default_root
+    from .studies.collect import collect_study, missing_points
 
     out = collect_study(default_root(args.root), args.study)
     print(out["path"])
@@ -442,6 +452,7 @@ def _warn(command, warnings) -> None:
 
 def _run_title(path) -> str:
     """'<job title> (run <id>)' from a result's attributes, else the file name."""
+    # lazy: each command loads only what it needs (every command's start-up)
     import xarray as xr
     try:
         with xr.open_dataset(path) as ds:
@@ -455,6 +466,7 @@ ARRIVAL_KEYS = ("probability", "mean", "std", "median", "q10", "q90", "most_prob
 
 
 def _arrivals(args) -> int:
+    # lazy: each command loads only what it needs (every command's start-up)
     from .analysis.arrivals import arrival_times
     from .io.paths import output_file
     from .viz.arrivals import FIGURE_TYPES
@@ -464,6 +476,7 @@ def _arrivals(args) -> int:
     dists = arrival_times(args.result, args.detector)
     units = next(iter(dists.values())).time_units
     if args.plot:
+        # lazy: each command loads only what it needs (every command's start-up)
         from .viz.arrivals import plot_arrivals
         plot_arrivals(dists, args.plot, title=_run_title(args.result), overwrite=args.overwrite)
     if args.json:
@@ -484,6 +497,7 @@ def _arrivals(args) -> int:
 
 
 def _transmission(args) -> int:
+    # lazy: each command loads only what it needs (every command's start-up)
     from .analysis.transmission import transmission
 
     out = transmission(args.result, args.detector)
@@ -520,6 +534,7 @@ def _transmission(args) -> int:
 
 
 def _movie(args) -> int:
+    # lazy: each command loads only what it needs (every command's start-up)
     from .viz.movie import MovieOptions, render_movie
 
     cut = None
@@ -542,6 +557,7 @@ def _movie(args) -> int:
 
 
 def _plot(args) -> int:
+    # lazy: each command loads only what it needs (every command's start-up)
     from .viz.summary import plot_result
 
     print(plot_result(args.result, args.output, args.size, args.dpi, overwrite=args.overwrite))
@@ -549,6 +565,7 @@ def _plot(args) -> int:
 
 
 def _levels(args) -> int:
+    # lazy: each command loads only what it needs (every command's start-up)
     from .eigen import DEGENERATE_TOL, degenerate_groups
     from .analysis.spectra import (autocorrelation_levels, check_states_path,
                                    level_errors, stationary_states, write_states)
@@ -576,14 +593,17 @@ def _levels(args) -> int:
             raise JobError("JOB.toml", "give a job file, or --from RUN.nc for the levels of a run")
         if args.count is None:
             raise JobError("--count", "required with a job file: how many levels, e.g. --count 10")
-        from .jobfile import load_job
-        from .simulation import Model
+        # lazy: each command loads only what it needs (every command's start-up)
+        from .job import load_job
+        from .setup import Model
 
         if args.states:   # before the solve: a path that cannot be written (or is taken) costs nothing
             check_states_path(args.states, overwrite=args.overwrite)
-        from .jobfile import read_job_file
+        # lazy: each command loads only what it needs (every command's start-up)
+        from .job import read_job_file
         swept = [k for k in (read_job_file(args.job).get("sweep") or {}) if k != "mode"]
         job = load_job(args.job, args.set, sweep=False)   # the levels of one job: the sweep plays no part
+        # lazy: each command loads only what it needs (every command's start-up)
         from .adequacy import levels_memory_estimate, memory_error
         axes = [a for a in ("x", "y", "z", "r") if a in job.table["grid"]]
         too_big = memory_error(levels_memory_estimate(job, args.count + 1), f"{args.count} levels of this grid",
@@ -642,7 +662,8 @@ def _levels(args) -> int:
 
 
 def _keys(args) -> int:
-    from .reference import reference, render_text
+    # lazy: each command loads only what it needs (every command's start-up)
+    from .job.reference import reference, render_text
 
     ref = reference(args.topic)
     print(json.dumps(ref) if args.json else render_text(ref), end="" if not args.json else "\n")

@@ -219,7 +219,7 @@ def coarse_hamiltonian(h, v, coarse: Grid) -> Hamiltonian:
     """H on ``coarse`` with the fine grid's V sampled linearly: the
     potential terms are not evaluated again (a file potential belongs to
     its grid).  The coarse grid adds its own centrifugal term."""
-    from scipy.interpolate import RegularGridInterpolator   # lazy: only the iterative cascade
+    from scipy.interpolate import RegularGridInterpolator  # lazy: only the iterative cascade
 
     v = np.asarray(v - h.grid.centrifugal_potential(h.mass), float)
     interp = RegularGridInterpolator([a.coordinates for a in h.grid.axes], v, bounds_error=False,
@@ -288,7 +288,7 @@ def _cascade(h, v, keep, count, m, top=False):
 
 
 def lobpcg_from(h, v, keep, x0, count, tol, maxiter):
-    from scipy.sparse.linalg import LinearOperator, lobpcg   # lazy: only grids beyond the dense limit
+    from scipy.sparse.linalg import LinearOperator, lobpcg  # lazy: only grids beyond the dense limit
 
     grid = h.grid
     shape, size = grid.shape, grid.size

@@ -67,10 +67,16 @@ from pathlib import Path
 import numpy as np
 import scipy.fft
 
-from .adequacy import Finding, human_seconds as _human, trial_costs
+from .adequacy import Finding
+from .adequacy import human_seconds as _human
+from .adequacy import trial_costs
+from .analysis.arrivals import arrival_times
+from .analysis.recorded import run_record
+from .analysis.transmission import transmission_totals
 from .errors import JobError, RunFailed
-from .jobfile import Job, job_from_dict
-from .simulation import Setup, Simulation
+from .job import Job, job_from_dict
+from .run import Simulation
+from .setup import Setup, resolve_job
 
 __all__ = ["PilotPlan", "PilotRun", "plan_pilot", "run_pilot", "validate_tolerance", "DX_RATIO", "DX_ORDER"]
 
@@ -160,7 +166,7 @@ def _base_table(job: Job) -> dict:
     """The resolved job (CAP strength tuned once, then fixed for every pilot
     run) with light recording: snapshots at the start and the end only (the
     last gives what lies beyond each detector), no final state."""
-    table = tomllib.loads(job.to_toml())
+    table = tomllib.loads(resolve_job(job).to_toml())
     table.pop("sweep", None)
     rec = table.setdefault("record", {})
     rec["snapshot_every"] = table["evolve"]["duration"]
@@ -256,16 +262,12 @@ def _read_outputs(path: Path, setup: Setup) -> dict:
     """The run's main outputs from its result file, by the analysis
     functions users call: absorbed probability per face, probability beyond
     each detector and arrival mean and spread per detector, final energy."""
-    import xarray as xr
-
-    from .analysis.arrivals import arrival_times
-    from .analysis.transmission import transmission_totals
-    from .record import read_record
+    import xarray as xr   # lazy: only the pilot's runs are read back
 
     out = {}
     with xr.open_dataset(path) as ds:
         ds.load()
-        totals = transmission_totals(ds, read_record(ds))   # the run's record, as analysis reads it
+        totals = transmission_totals(ds, run_record(ds))   # the run's record, as analysis reads it
         for face, value in totals["absorbed"].items():
             out[f"absorbed {face}"] = _Output(f"absorbed at {face}", "probability", value, "")
         for name, d in totals["detectors"].items():

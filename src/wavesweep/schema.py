@@ -52,7 +52,7 @@ class Field:
     (``wavesweep keys`` prints it; every key has one).  ``physics`` marks a
     default that sets the physics (a centre, an edge width, a phase, the
     mass): when a job leaves such a key out, ``check`` prints the value used
-    (:func:`wavesweep.reference.physics_defaults`), and the resolved job holds it.
+    (:func:`wavesweep.job.reference.physics_defaults`), and the resolved job holds it.
     """
 
     kind: str

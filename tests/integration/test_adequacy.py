@@ -20,11 +20,11 @@ import tomllib
 
 from wavesweep.adequacy import (dynamics, field_driven_momentum, memory_estimate, nearest_fast_points,
                                 size_findings)
-from wavesweep.batch.sweep import expand_study
+from wavesweep.study import expand_study
 from wavesweep.check import check_job, check_study, preflight
 from wavesweep.errors import JobError
-from wavesweep.jobfile import load_job
-from wavesweep.simulation import Setup
+from wavesweep.job import load_job
+from wavesweep.setup import Setup
 
 from conftest import make_job
 
@@ -238,7 +238,7 @@ def _readme_jobs():
 
 @pytest.mark.parametrize("path", sorted((ROOT / "jobs").glob("*.toml")), ids=lambda p: p.name)
 def test_demo_jobs_have_no_warnings(path):
-    from wavesweep.batch.sweep import load_study
+    from wavesweep.study import load_study
 
     report = check_study(load_study(path), trial_seconds=0)
     noisy = [f"{f.topic}: {f.message}" for f in report.findings if f.level != "ok"]
@@ -287,11 +287,8 @@ def test_default_sampling_divides_the_duration():
 def test_levels_refuses_a_grid_that_cannot_fit_before_allocating(tmp_path, capsys):
     """`levels` on a 4096^3 grid was 'out of memory' (exit 1) after trying to
     allocate it; now it is one line from the shapes, naming the points."""
-    from wavesweep.adequacy import LEVELS_DENSE_MAX_POINTS
-    from wavesweep.eigen import DENSE_MAX_POINTS
     from wavesweep.cli import main
 
-    assert LEVELS_DENSE_MAX_POINTS == DENSE_MAX_POINTS   # the estimate follows the solver
     job = tmp_path / "big.toml"
     job.write_text('[grid]\nx = { min = -1.0, max = 1.0, points = 4096 }\ny = { min = -1.0, max = 1.0, points = 4096 }\n'
                    'z = { min = -1.0, max = 1.0, points = 4096 }\n[packet]\ncenter = [0.0, 0.0, 0.0]\n'

@@ -24,7 +24,7 @@ from test_scattering import barrier_job, barrier_transmission
 from wavesweep.analysis.arrivals import arrival_statistics, arrival_times
 from wavesweep.analysis.transmission import transmission
 from wavesweep.cli import main
-from wavesweep.simulation import Simulation
+from wavesweep.run import Simulation
 
 X0, SIGMA, P0, XD = -20.0, 4.0, 1.5, 20.0
 FREE = {

@@ -410,8 +410,8 @@ _DAMAGED_QUEUE: list[bytes] = []
 def damaged_queue(folder: Path, result: Path) -> Path:
     """A queue of 400 runs whose middle page is overwritten (made once)."""
     import sqlite3
-    from wavesweep.batch.queue import Queue
-    from wavesweep.batch.sweep import expand_study
+    from wavesweep.studies.queue import Queue
+    from wavesweep.study import expand_study
 
     root = _root(folder)
     db = root / "queue.sqlite"
@@ -517,8 +517,8 @@ for name, argv, field, piece, prepare in OUTPUTS:
 # -- the harness ----------------------------------------------------------------------
 @pytest.fixture(scope="module")
 def good_result(tmp_path_factory):
-    from wavesweep.jobfile import job_from_dict
-    from wavesweep.simulation import Simulation
+    from wavesweep.job import job_from_dict
+    from wavesweep.run import Simulation
 
     # long enough for `levels --from` (it needs 16 autocorrelation samples)
     table = merged(TINY, {"evolve": {"duration": 2.0}, "record": {"every": 0.05}})

@@ -16,7 +16,7 @@ from conftest import make_job
 from wavesweep.batched import BatchedRun, batch_group, batch_key
 from wavesweep.errors import RunFailed, RunInterrupted
 from wavesweep.io.checkpoint import CheckpointPolicy, ResultExists
-from wavesweep.simulation import Simulation
+from wavesweep.run import Simulation
 
 SWEEP_1D = {
     "title": "batch sweep",
@@ -169,8 +169,8 @@ def test_batch_keys():
 def test_the_queue_claims_compatible_runs_together(tmp_path):
     """claim_batch: the head and its mates of the same key, in order, at
     most limit and the share-th part of the group; other keys wait."""
-    from wavesweep.batch.queue import Queue
-    from wavesweep.batch.sweep import expand_study
+    from wavesweep.studies.queue import Queue
+    from wavesweep.study import expand_study
     table = copy.deepcopy(SWEEP_1D)
     table["sweep"] = {"packet.momentum": {"start": 0.8, "stop": 1.5, "num": 6}}
     q = Queue(tmp_path / "q")
@@ -196,8 +196,8 @@ def test_work_drains_a_study_in_batches_like_solo_runs(tmp_path):
     run; the events say the runs went in a batch."""
     import tomli_w
 
-    from wavesweep.batch.api import submit, work
-    from wavesweep.batch.queue import Queue
+    from wavesweep.studies.api import submit, work
+    from wavesweep.studies.queue import Queue
     table = copy.deepcopy(SWEEP_1D)
     table["sweep"] = {"packet.momentum": {"start": 0.8, "stop": 1.4, "num": 4}}
     path = tmp_path / "study.toml"
@@ -226,7 +226,7 @@ def test_stopped_members_leave_no_partial_file(tmp_path):
 
 
 def test_a_solo_run_failing_in_its_set_up_leaves_no_partial_file(tmp_path, monkeypatch):
-    from wavesweep.simulation import Setup
+    from wavesweep.setup import Setup
 
     def broken(self):
         raise MemoryError
@@ -284,9 +284,9 @@ def test_claims_that_cannot_be_batched_go_back_to_the_queue(tmp_path):
     """Review finding: a batch that could not be built kept its other claims
     waiting without heartbeats; now the first runs alone and the rest are
     released (first in line, the attempt not counted)."""
-    from wavesweep.batch.executors import WorkerSettings, execute_batch
-    from wavesweep.batch.queue import Queue
-    from wavesweep.batch.sweep import expand_study
+    from wavesweep.studies.executors import WorkerSettings, execute_batch
+    from wavesweep.studies.queue import Queue
+    from wavesweep.study import expand_study
     table = copy.deepcopy(SWEEP_1D)
     table["sweep"] = {"packet.momentum": {"start": 0.9, "stop": 1.3, "num": 3}}
     q = Queue(tmp_path / "q")

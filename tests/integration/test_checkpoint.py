@@ -30,8 +30,9 @@ from wavesweep.errors import JobError, RunFailed, RunInterrupted
 from wavesweep.io import checkpoint as ckmod
 from wavesweep.io.checkpoint import CheckpointMismatch, CheckpointPolicy, ResultExists
 from wavesweep.io.recorder import ResultWriter
-from wavesweep.jobfile import job_from_dict
-from wavesweep.simulation import Simulation
+from wavesweep.job import job_from_dict
+from wavesweep.run import Simulation
+from wavesweep.setup import resolve_job
 
 JOB_1D = {
     "title": "checkpoint 1D",
@@ -61,7 +62,7 @@ NEVER = 1e9   # every_seconds: only should_stop checkpoints
 def job(table, **evolve):
     t = copy.deepcopy(table)
     t["evolve"].update(evolve)
-    return job_from_dict(t)
+    return resolve_job(job_from_dict(t))
 
 
 def run(table, path, **kw):
@@ -159,8 +160,8 @@ def test_timed_checkpoints_leave_the_result_unchanged(tmp_path):
 CHILD = textwrap.dedent("""
     import json, sys, time
     from wavesweep.io.checkpoint import CheckpointPolicy
-    from wavesweep.jobfile import job_from_dict
-    from wavesweep.simulation import Simulation
+    from wavesweep.job import job_from_dict
+    from wavesweep.run import Simulation
     table = json.loads(sys.argv[1])
     # a slow job: 10 ms of pretend work per sample on top of the stepping
     Simulation(job_from_dict(table)).run(path=sys.argv[2], progress=False,

@@ -28,10 +28,10 @@ import pytest
 import xarray as xr
 from scipy.integrate import quad
 
-from wavesweep.batch.collect import collect
-from wavesweep.batch.sweep import expand_study
+from wavesweep.studies.collect import collect
+from wavesweep.study import expand_study
 from wavesweep.errors import JobError
-from wavesweep.simulation import Simulation
+from wavesweep.run import Simulation
 from wavesweep.units import UnitSet
 
 HALF, LAYER, SIGMA_X, ECKART_A = 50.0, 20.0, 3.0, 1.0

@@ -21,8 +21,8 @@ import xarray as xr
 
 distributed = pytest.importorskip("distributed")
 
-from wavesweep.batch.api import submit, work  # noqa: E402
-from wavesweep.batch.queue import Queue  # noqa: E402
+from wavesweep.studies.api import submit, work  # noqa: E402
+from wavesweep.studies.queue import Queue  # noqa: E402
 
 STUDY = {
     "title": "dask study",

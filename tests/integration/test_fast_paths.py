@@ -17,7 +17,7 @@ from plain import observables as plain_observables
 from plain import strang as plain_strang
 from wavesweep.fft import BACKENDS
 from wavesweep.kernels import KernelSet
-from wavesweep.simulation import Setup
+from wavesweep.setup import Setup
 
 BOX_2D = {"x": {"min": -20.0, "max": 20.0, "points": 64},
           "y": {"min": -15.0, "max": 15.0, "points": 48, "boundary": "box"}}

@@ -20,13 +20,13 @@ import pytest
 import scipy.constants as sc
 import tomli_w
 
-from wavesweep.batch.api import until_deadline
-from wavesweep.batch.collect import missing_points
-from wavesweep.batch.queue import Queue
-from wavesweep.batch.sweep import expand_study, load_study
+from wavesweep.studies.api import until_deadline
+from wavesweep.studies.collect import missing_points
+from wavesweep.studies.queue import Queue
+from wavesweep.study import expand_study, load_study
 from wavesweep.cli import _parser, main
 from wavesweep.errors import JobError
-from wavesweep.jobfile import parse_override
+from wavesweep.job import parse_override
 from wavesweep.units import parse_unit, quantity_to_atomic
 
 # A 1D barrier job in atomic units (as test_cli.TINY): 20 steps, no absorber.
@@ -287,7 +287,7 @@ def test_the_study_size_limit_is_named_and_can_be_raised(tmp_path, monkeypatch):
 
 def test_the_memory_limit_is_named_and_can_be_set(tmp_path, capsys, monkeypatch):
     from wavesweep.adequacy import memory_finding, memory_limit
-    from wavesweep.jobfile import job_from_dict
+    from wavesweep.job import job_from_dict
 
     job = write_job(tmp_path, TINY)
     monkeypatch.delenv("WAVESWEEP_MAX_MEMORY", raising=False)

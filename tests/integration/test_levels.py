@@ -19,7 +19,7 @@ from conftest import make_job, run_table
 from test_cli import assert_bad_input, cli, write_job
 from wavesweep.analysis.spectra import autocorrelation_levels, stationary_states
 from wavesweep.errors import JobError
-from wavesweep.simulation import Setup
+from wavesweep.setup import Setup
 
 
 def test_hydrogen_s_levels_in_ev():
@@ -347,7 +347,7 @@ def result_setup_of(path):
     reference computation needs H; analysis itself never rebuilds it)."""
     import tomllib
 
-    from wavesweep.jobfile import job_from_dict
+    from wavesweep.job import job_from_dict
 
     with xr.open_dataset(path) as ds:
         return Setup(job_from_dict(tomllib.loads(ds.attrs["job"])))

@@ -17,7 +17,7 @@ import xarray as xr
 
 from conftest import make_job
 from wavesweep.cli import main
-from wavesweep.simulation import Simulation
+from wavesweep.run import Simulation
 from wavesweep.viz.movie import MovieOptions, render_frames, render_movie
 from wavesweep.viz.scene import read_scene
 
@@ -186,7 +186,7 @@ def test_plot_writes_a_png_of_the_requested_size(which, free_result, plane_resul
 def test_plot_of_a_study_summary(tmp_path):
     import matplotlib.image
     from test_collect import TINY, submit_and_run
-    from wavesweep.batch.collect import collect
+    from wavesweep.studies.collect import collect
 
     table = copy.deepcopy(TINY)
     table["sweep"] = {"packet.momentum": [0.8, 1.0, 1.2], "potential.0.height": [0.1, 0.3]}

@@ -27,7 +27,7 @@ from conftest import make_job, run_table, setup_of
 from wavesweep.fft import make_transform
 from wavesweep.observables import Detector, Observer
 from wavesweep.propagators import SCHEMES, SplitOperator, propagator_class
-from wavesweep.simulation import Simulation
+from wavesweep.run import Simulation
 
 # Every registered scheme runs through the reference problems (DEVELOPERS.md:
 # a new one is picked up from SCHEMES); step sizes and expected slopes follow

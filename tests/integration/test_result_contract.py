@@ -23,8 +23,9 @@ import xarray as xr
 
 import wavesweep
 from wavesweep.io.recorder import ResultWriter
-from wavesweep.jobfile import job_from_dict, load_job
-from wavesweep.simulation import Simulation
+from wavesweep.job import job_from_dict, load_job
+from wavesweep.run import Simulation
+from wavesweep.setup import resolve_job
 
 BASE_1D = {
     "title": "contract 1D",
@@ -74,7 +75,7 @@ def run_1d(tmp_path_factory):
     folder = tmp_path_factory.mktemp("contract1d")
     src = folder / "job.toml"
     src.write_text(tomli_w.dumps(BASE_1D))
-    run_id_before = load_job(src).run_id  # before any Setup has tuned the CAP
+    run_id_before = resolve_job(load_job(src)).run_id  # the complete job, the loaded one unchanged
     path = Simulation(load_job(src)).run(folder / "out", progress=False)
     return {"path": path, "run_id_before": run_id_before, "folder": folder}
 

@@ -30,9 +30,9 @@ import pytest
 
 from conftest import make_job
 from test_cli import write_job
-from wavesweep import simulation
+from wavesweep import setup as setup_layer
 from wavesweep.cli import main
-from wavesweep.simulation import Simulation
+from wavesweep.run import Simulation
 
 FREE = {
     "title": "free packet past a detector",
@@ -96,7 +96,7 @@ def _output(argv, capsys):
 def _forbid_setups(monkeypatch):
     def refuse(self, *args, **kwargs):
         raise AssertionError("analysis built a set-up from the job attribute")
-    monkeypatch.setattr(simulation.Model, "__init__", refuse)
+    monkeypatch.setattr(setup_layer.Model, "__init__", refuse)
 
 
 # --- item 2: analysis reads the record ------------------------------------------------
@@ -161,7 +161,7 @@ def test_the_record_holds_the_set_up_in_job_units(free_result):
     recorded first)."""
     import xarray as xr
 
-    from wavesweep.record import read_record
+    from wavesweep.io.record import read_record
 
     with xr.open_dataset(free_result) as ds:
         rec = read_record(ds)
@@ -325,7 +325,7 @@ def test_a_folder_where_the_result_goes_is_found_before_the_run(tmp_path, capsys
     job = make_job(copy.deepcopy(FREE))
     (tmp_path / "out" / f"job-{job.run_id}.nc").mkdir(parents=True)
     stepped = []
-    monkeypatch.setattr(Simulation, "_snapshot", lambda *a: stepped.append(1))
+    monkeypatch.setattr(Simulation, "write_snapshot", lambda *a: stepped.append(1))
     _refused(["run", write_job(tmp_path, FREE), "-o", tmp_path / "out", "--quiet"], capsys, "--output",
              "is a folder")
     assert not stepped

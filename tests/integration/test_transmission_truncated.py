@@ -23,8 +23,8 @@ from test_arrivals import FREE
 from test_scattering import barrier_job, barrier_transmission
 from wavesweep.analysis.transmission import UNCERTAINTY_TARGET, transmission
 from wavesweep.cli import main
-from wavesweep.jobfile import load_job
-from wavesweep.simulation import Simulation
+from wavesweep.job import load_job
+from wavesweep.run import Simulation
 
 DEMO = __import__("pathlib").Path(__file__).resolve().parents[2] / "jobs" / "kestrel-diode.toml"
 

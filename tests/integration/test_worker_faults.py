@@ -29,11 +29,11 @@ import tomli_w
 import xarray as xr
 
 from wavesweep import cli as wavesweep_cli
-from wavesweep.batch import api
-from wavesweep.batch.queue import Queue
-from wavesweep.batch.sweep import expand_study
-from wavesweep.jobfile import job_from_dict
-from wavesweep.simulation import Simulation
+from wavesweep.studies import api
+from wavesweep.studies.queue import Queue
+from wavesweep.study import expand_study
+from wavesweep.job import job_from_dict
+from wavesweep.run import Simulation
 
 TINY = {
     "title": "fault test",

@@ -16,7 +16,7 @@ from pathlib import Path
 
 import tomli_w
 
-from wavesweep.batch.queue import Queue
+from wavesweep.studies.queue import Queue
 
 TINY = {
     "title": "worker test",

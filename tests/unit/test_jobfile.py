@@ -10,8 +10,8 @@ import scipy.constants as sc
 import tomli_w
 
 from wavesweep.errors import JobError
-from wavesweep.jobfile import apply_overrides, job_from_dict, load_job, parse_override
-from wavesweep.simulation import Setup
+from wavesweep.job import apply_overrides, job_from_dict, load_job, parse_override
+from wavesweep.setup import Setup, resolve_job
 
 BOHR_M = sc.physical_constants["Bohr radius"][0]
 AU_TIME_S = sc.hbar / sc.physical_constants["Hartree energy"][0]
@@ -170,7 +170,7 @@ def test_default_sampling_in_femtoseconds():
 
 
 def test_resolved_job_is_a_fixed_point():
-    first = job(absorber={"kind": "cap", "thickness": 10.0})
+    first = resolve_job(job(absorber={"kind": "cap", "thickness": 10.0}))
     text = first.to_toml()
     second = job_from_dict(tomllib.loads(text))
     assert second.to_toml() == text
@@ -214,18 +214,26 @@ def test_run_id_changes_with_the_physics(override):
     assert job([override]).run_id != job().run_id
 
 
-def test_run_id_is_the_same_before_and_after_setup():
-    """The CAP strength is tuned by Setup and written into the job; the id
-    must not depend on whether that has happened yet."""
+def test_resolution_is_a_function_with_a_result_and_no_side_effect():
+    """The CAP strength is tuned by resolve_job, which returns a new, complete
+    Job: the given one is not changed, has no id or TOML of its own (a clear
+    error, not a silently different id), and the id is the same however the
+    complete job is reached (resolve_job, a Setup, its stored TOML)."""
     j = job(absorber={"kind": "cap", "thickness": 10.0})
-    assert "strength" not in j.table["absorber"]
-    before = j.run_id
-    assert all(v > 0 for v in j.table["absorber"]["strength"].values())   # one per face
-    Setup(j)
-    assert j.run_id == before
-    fresh = job(absorber={"kind": "cap", "thickness": 10.0})
-    Setup(fresh)
-    assert fresh.run_id == before
+    table_before = copy.deepcopy(j.table)
+    assert j.needs_tuning and j.table["absorber"].get("strength") is None
+    with pytest.raises(ValueError, match="resolve_job"):
+        j.run_id
+    complete = resolve_job(j)
+    assert j.table == table_before                    # the document is untouched
+    assert not complete.needs_tuning
+    assert all(v > 0 for v in complete.table["absorber"]["strength"].values())   # one per face
+    assert Setup(j).job.run_id == complete.run_id     # a Setup reaches the same complete job
+    assert j.table == table_before
+    again = job_from_dict(tomllib.loads(complete.to_toml()))
+    assert resolve_job(again) is again and again.run_id == complete.run_id
+    given = job()                                      # nothing to choose: the job itself
+    assert resolve_job(given) is given
 
 
 # -- quantities with units ------------------------------------------------------------
@@ -366,7 +374,7 @@ def _swept_file(tmp_path, sweep):
     ("potential.1.params.a=1", "potential.1.params"),           # a field inside a swept table
 ])
 def test_an_override_of_a_swept_key_is_refused(tmp_path, override, swept):
-    from wavesweep.batch.sweep import load_study
+    from wavesweep.study import load_study
 
     values = [{"a": 0.0}, {"a": 1.0}] if swept.endswith("params") else [1.5, 2.5]
     path = _swept_file(tmp_path, {"packet.center": [-25.0, -20.0], swept: values})
@@ -381,7 +389,7 @@ def test_an_override_of_a_swept_key_is_refused(tmp_path, override, swept):
 
 
 def test_an_override_of_a_key_not_swept_reaches_every_run(tmp_path):
-    from wavesweep.batch.sweep import expand_study, load_study
+    from wavesweep.study import expand_study, load_study
 
     path = _swept_file(tmp_path, {"packet.width": [1.5, 2.5]})
     study = load_study(path, ["packet.center=-25.0", "potential.0.height=0.4"])
@@ -402,7 +410,7 @@ def test_an_override_of_a_key_not_swept_reaches_every_run(tmp_path):
 def test_layers_on_one_axis_only_need_room_on_that_axis():
     """absorber.faces = y only: a short x axis is fine (a review finding: it
     was refused as if x had two layers)."""
-    from wavesweep.jobfile import job_from_dict
+    from wavesweep.job import job_from_dict
     table = {
         "grid": {"x": {"min": -10.0, "max": 10.0, "points": 64}, "y": {"min": -60.0, "max": 60.0, "points": 256}},
         "packet": {"center": [0.0, -20.0], "width": [2.0, 3.0], "momentum": [0.0, 1.0]},
@@ -509,7 +517,7 @@ def test_each_potential_checks_itself_at_load_time():
 
 
 def test_a_study_reports_each_error_once_with_the_points_it_occurs_at():
-    from wavesweep.batch.sweep import expand_study
+    from wavesweep.study import expand_study
     from wavesweep.errors import JobErrors
 
     table = copy.deepcopy(JOB)
@@ -529,7 +537,7 @@ def test_a_study_too_large_is_refused_from_its_sizes():
     expanded (hanging, or out of memory) before it was judged; now the sizes
     are refused first, naming the key."""
     import pytest
-    from wavesweep.batch.sweep import MAX_RUNS, sweep_axes
+    from wavesweep.job.sweep import MAX_RUNS, sweep_axes
     from wavesweep.errors import JobError
 
     rng = {"start": 1.0, "stop": 2.0, "num": 1000}

@@ -14,10 +14,10 @@ from pathlib import Path
 import netCDF4
 import pytest
 
-from wavesweep.batch.queue import STATES, Queue
-from wavesweep.batch.sweep import expand_study
+from wavesweep.studies.queue import STATES, Queue
+from wavesweep.study import expand_study
 from wavesweep.errors import JobError
-from wavesweep.jobfile import job_from_dict
+from wavesweep.job import job_from_dict
 
 FREE_1D = {   # as tests/conftest.py FREE_1D
     "title": "free packet",
@@ -423,7 +423,7 @@ def test_verify_fails_missing_and_corrupt_results_and_retry_requeues_them(tmp_pa
 
 
 def test_verify_reopens_a_result_only_when_it_changed(tmp_path, monkeypatch):
-    import wavesweep.batch.queue as queue_module
+    import wavesweep.studies.queue as queue_module
 
     q = Queue(tmp_path)
     q.submit(study("s", [1.0]))

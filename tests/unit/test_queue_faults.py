@@ -20,16 +20,16 @@ import pytest
 import xarray as xr
 
 from wavesweep import cli
-from wavesweep.batch import api
-from wavesweep.batch.executors.base import DISK_FULL, WorkerSettings, execute_claim
-from wavesweep.batch.queue import Queue
-from wavesweep.batch.sweep import expand_study
+from wavesweep.studies import api
+from wavesweep.studies.executors.base import DISK_FULL, WorkerSettings, execute_claim
+from wavesweep.studies.queue import Queue
+from wavesweep.study import expand_study
 from wavesweep.errors import DiskFull, RunFailed, RunInterrupted
 from wavesweep.io import diskspace
 from wavesweep.io.checkpoint import CheckpointPolicy
 from wavesweep.io.recorder import ResultWriter
-from wavesweep.jobfile import job_from_dict
-from wavesweep.simulation import Simulation
+from wavesweep.job import job_from_dict
+from wavesweep.run import Simulation
 
 TINY = {
     "title": "faults",
@@ -325,7 +325,7 @@ def test_a_dask_task_stopped_by_a_full_disk_comes_back_queued_with_its_reason(tm
     """The Dask driver settles a task from what it returns: the same
     outcome handling gives it the reason and the stop-claiming mark."""
     pytest.importorskip("distributed")
-    from wavesweep.batch.executors import cluster
+    from wavesweep.studies.executors import cluster
 
     class Stub:
         def put(self, msg):

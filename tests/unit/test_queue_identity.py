@@ -18,8 +18,8 @@ from pathlib import Path
 import netCDF4
 import pytest
 
-from wavesweep.batch.queue import APPLICATION_ID, SCHEMA_VERSION, Queue
-from wavesweep.batch.sweep import expand_study
+from wavesweep.studies.queue import APPLICATION_ID, SCHEMA_VERSION, Queue
+from wavesweep.study import expand_study
 from wavesweep.cli import main
 from wavesweep.errors import JobError
 

@@ -8,13 +8,14 @@ import tomllib
 
 import pytest
 
-from wavesweep.batch.sweep import MODES, RANGE_KEYS
+from wavesweep.job.sweep import MODES, RANGE_KEYS
 from wavesweep.cli import main
 from wavesweep.errors import JobError
-from wavesweep.jobfile import (ABSORBER, AXIS, DETECTOR, DETECTOR_POSITION, EVOLVE, GRID, PARTICLE,
-                               RECORD, TOP_LEVEL, job_from_dict)
+from wavesweep.job import job_from_dict
+from wavesweep.job.schemas import (ABSORBER, AXIS, DETECTOR, DETECTOR_POSITION, EVOLVE, GRID, PARTICLE, RECORD,
+                                   TOP_LEVEL)
 from wavesweep.potentials import REGISTRY
-from wavesweep.reference import (SWEEP, SWEEP_RANGE, TABLE_DOCS, UNIT_KEYS, default_findings,
+from wavesweep.job.reference import (SWEEP, SWEEP_RANGE, TABLE_DOCS, UNIT_KEYS, default_findings,
                                  physics_defaults, reference, render_text, topics)
 from wavesweep.states import PACKET_FORMULAS, PACKET_SCHEMAS
 from wavesweep.units import UnitSet

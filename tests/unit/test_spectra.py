@@ -573,7 +573,7 @@ def test_level_errors_bound_the_true_error(case):
     well on a short grid, 5p at 80 bohr), and a note says by how much when
     its relative error exceeds 1e-6."""
     from wavesweep.analysis.spectra import level_errors
-    from wavesweep.simulation import Model
+    from wavesweep.setup import Model
 
     grid, potential, exact, refine = ERROR_CASES[case]
     model = Model(make_job(_job(grid, potential)))
@@ -597,7 +597,7 @@ def test_walls_of_a_box_are_physics_not_an_edge_error():
     sec. 2.2; tests/analytic.py) is exact on the sine grid: the estimates sit
     at rounding and the walls, which the states reach, add nothing."""
     from wavesweep.analysis.spectra import level_errors
-    from wavesweep.simulation import Model
+    from wavesweep.setup import Model
 
     mass, lo, hi = 0.7, -3.0, 5.0
     model = Model(make_job(_job({"x": {"min": lo, "max": hi, "points": 127}, "boundary": "box"}, [{"kind": "free"}],
@@ -625,7 +625,7 @@ def test_a_period_that_cuts_a_well_is_an_edge_a_lattice_period_is_not():
     memory) with refine = grid.x.max.  A lattice of period 2 on 8 bohr:
     the period is the physics, so no level gets an edge error."""
     from wavesweep.analysis.spectra import level_errors
-    from wavesweep.simulation import Model
+    from wavesweep.setup import Model
 
     model = Model(make_job(_job({"x": {"min": -4.0, "max": 4.0, "points": 64}}, [{"kind": "harmonic", "omega": 1.0}])))
     energies, states = stationary_states(model, 12)

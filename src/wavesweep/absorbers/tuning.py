@@ -61,13 +61,19 @@ wraps round.
 """
 from __future__ import annotations
 
+import functools
+import hashlib
+import json
 import math
+import os
+import tempfile
 
 import numpy as np
 
-from wavesweep.errors import JobError
+from ..errors import JobError
+from ..fft import wisdom_path
 
-__all__ = ["cap_profile", "layer_scattering", "return_probability", "tune_cap_strength"]
+__all__ = ["cap_profile", "layer_scattering", "return_probability", "tune_cap_strength", "cached_cap_strength"]
 
 # Resolution criterion of the sub-grid: every cell satisfies
 #     |q|_max * h <= _CELL_PHASE,   |q|_max = sqrt(2 m |E_max + i W_max|),
@@ -327,7 +333,7 @@ def _layer_cells(depth, rate, mass, energies):
     # Exactly uniform knots measured from the inner edge.
     x = step * np.arange(depth.size)
     if depth.size >= 4:
-        from scipy.interpolate import CubicSpline   # here: scipy.interpolate costs 0.28 s to import
+        from scipy.interpolate import CubicSpline  # here: scipy.interpolate costs 0.28 s to import
         profile = CubicSpline(x, rate, bc_type="not-a-knot")
     else:
         def profile(s, _x=x, _w=rate):
@@ -491,7 +497,7 @@ def tune_cap_strength(thickness, mass, e_min, e_max, power=2.0, samples=64,
             break
     i = int(np.argmin(values))
     lo, hi = grid[max(i - 1, 0)], grid[min(i + 1, len(values) - 1)]
-    from scipy.optimize import minimize_scalar
+    from scipy.optimize import minimize_scalar   # lazy: scipy.optimize only when a layer is tuned
     res = minimize_scalar(worst, bounds=(lo, hi), method="bounded",
                           options={"xatol": 1e-3})
     if res.fun <= values[i]:
@@ -507,16 +513,12 @@ class _TuningCache:
     other's entries, never corrupt the file."""
 
     def __init__(self):
-        import hashlib
-        import os
-        from ..fft import wisdom_path
         self.path = os.path.join(os.path.dirname(wisdom_path()), "cap-tuning.json")
         with open(__file__, "rb") as f:
             self.revision = hashlib.sha256(f.read()).hexdigest()[:16]
         self._entries = None
 
     def _load(self) -> dict:
-        import json
         if self._entries is None:
             try:
                 with open(self.path) as f:
@@ -535,9 +537,6 @@ class _TuningCache:
             return None   # a damaged entry: tune again
 
     def put(self, key: str, value) -> None:
-        import json
-        import os
-        import tempfile
         entries = self._load()
         entries[key] = [float(value[0]), float(value[1])]
         try:
@@ -558,3 +557,19 @@ def tuning_cache() -> _TuningCache:
     if _CACHE is None:
         _CACHE = _TuningCache()
     return _CACHE
+
+
+@functools.lru_cache(maxsize=512)
+def cached_cap_strength(thickness, mass, e_min, e_max, power, periodic=False) -> tuple[float, float]:
+    """:func:`tune_cap_strength`, cached in memory and on disk
+    (:func:`tuning_cache`): both faces of an axis, the runs of a study, and
+    every run of the same job in a later process ask for the same layer (a
+    tuning costs 0.3-0.5 s, most of a worker's start-up)."""
+    key = repr((float(thickness), float(mass), float(e_min), float(e_max), float(power), bool(periodic)))
+    cache = tuning_cache()
+    hit = cache.get(key)
+    if hit is not None:
+        return hit
+    out = tune_cap_strength(thickness, mass, e_min, e_max, power, periodic=periodic)
+    cache.put(key, out)
+    return out

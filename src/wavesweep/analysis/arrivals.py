@@ -38,7 +38,8 @@ import numpy as np
 
 from ..errors import JobError
 from ..io.results import open_result, result_units, source_name
-from ..record import as_record, read_record
+from .recorded import as_record
+from .recorded import run_record as read_record
 
 __all__ = ["ArrivalDistribution", "arrival_statistics", "arrival_times", "classical_free_flight"]
 
@@ -174,7 +175,7 @@ def classical_free_flight(x_axis, rho, k, w, mass: float, x_detector: float,
     return out, prob, mean
 
 
-def _layer_holding(setup, axis: int, x: float) -> str | None:
+def layer_holding(setup, axis: int, x: float) -> str | None:
     """The absorbing face whose layer contains the point x on ``axis``."""
     ab = setup.absorber
     if not ab.active:
@@ -203,7 +204,7 @@ def _final_density(ds):
     return None
 
 
-def _upstream_probability(ds, setup, axis: int, x_det: float, side: float,
+def upstream_probability(ds, setup, axis: int, x_det: float, side: float,
                           towards: bool = False) -> float | None:
     """Probability on the grid on the ``side`` (+1: above) of the detector at
     the end of the run (|psi|^2 dV is the same in job units); with
@@ -282,7 +283,7 @@ def _arrivals(ds, detector, classical=True, warnings=True):
         if detector is not None and name != detector:
             continue
         det = setup.detectors[j]
-        face = _layer_holding(setup, det.axis, det.position)
+        face = layer_holding(setup, det.axis, det.position)
         notes = list(said)
         if face is not None:
             if "absorbed" not in ds or face not in [str(b) for b in ds["boundary"].values]:
@@ -294,7 +295,7 @@ def _arrivals(ds, detector, classical=True, warnings=True):
             notes.append(f"detector {name!r} lies in the {face} absorbing layer: the layer is the "
                             "detector, and its times are those of absorption anywhere in the layer "
                             "(the detector's position inside it does not enter)")
-        x0_side = _packet_side(setup, det.axis, det.position)
+        x0_side = packet_side(setup, det.axis, det.position)
         if face is None:
             # oriented from the packet towards the detector: arrivals count positive
             rho = flux[:, j] * -x0_side
@@ -328,8 +329,8 @@ def _arrivals(ds, detector, classical=True, warnings=True):
         tail = abs(float(rho[-1])) / peak if peak > 0 else 0.0
         # what may still arrive: before the detector (for a layer, before
         # the layer's inner edge), moving towards it
-        edge = det.position if face is None else _layer_edge(setup, face)
-        to_come = _upstream_probability(ds, setup, det.axis, edge, x0_side, towards=True)
+        edge = det.position if face is None else layer_edge(setup, face)
+        to_come = upstream_probability(ds, setup, det.axis, edge, x0_side, towards=True)
         stats["still_to_come"] = to_come if to_come is not None else math.nan
         stats["truncated"] = bool(tail > TRUNCATED_TAIL or (to_come or 0.0) > TRUNCATED_TO_COME)
         if stats["truncated"]:
@@ -363,15 +364,15 @@ def recorded_warnings(record) -> list[str]:
     return list(record.warnings)
 
 
-def _layer_edge(setup, face: str) -> float:
+def layer_edge(setup, face: str) -> float:
     """Inner edge (bohr) of a face's absorbing layer."""
     ax = setup.grid.axes[setup.grid.axis_index(face[:-1])]
     th = setup.absorber.thickness
     return ax.max - th if face.endswith("+") else ax.min + th
 
 
-def _packet_side(setup, axis: int, x_det: float) -> float:
+def packet_side(setup, axis: int, x_det: float) -> float:
     """+1 when the initial packet lies above the detector on its axis, else -1
-    (``setup``: the run's record, :class:`wavesweep.record.RecordedRun`)."""
+    (``setup``: the run's record, :class:`wavesweep.io.record.RecordedRun`)."""
     x0 = as_record(setup).packet_center(axis)
     return 1.0 if x0 > x_det else -1.0

@@ -74,6 +74,7 @@ Autocorrelation levels (:func:`autocorrelation_levels`)
 """
 from __future__ import annotations
 
+import copy
 import math
 import os
 from dataclasses import dataclass
@@ -83,12 +84,18 @@ import numpy as np
 import scipy.fft
 import scipy.linalg
 
+from .._version import __version__
+from ..eigen import (DEGENERATE_TOL, ITERATIVE_TOL, MAX_ITERATIONS, WINDOW_RATIO, block_size, check_residuals,
+                     coarse_hamiltonian, eigenpairs, lobpcg_from, recorded_energy_band, walled_potential)
 from ..errors import JobError, RunFailed
 from ..grid import Axis, Grid
-from .._version import __version__
-from ..eigen import (DEGENERATE_TOL, ITERATIVE_TOL, MAX_ITERATIONS, WINDOW_RATIO, block_size,
-                     check_residuals, coarse_hamiltonian, eigenpairs, lobpcg_from,
-                     recorded_energy_band, walled_potential)
+from ..io.paths import output_file
+from ..io.record import LANCZOS_MAX_POINTS
+from ..io.recorder import atomic_rename
+from ..io.results import open_result, result_units
+from ..job import Job, job_from_dict, load_job
+from ..setup import Model
+from .recorded import run_record
 
 __all__ = ["stationary_states", "level_errors", "LevelErrors", "write_states", "check_states_path",
            "autocorrelation_levels", "AutocorrelationLevels", "truncation_floor"]
@@ -97,8 +104,8 @@ __all__ = ["stationary_states", "level_errors", "LevelErrors", "write_states", "
 def stationary_states(setup_or_job, count: int, method: str = "auto", field: str = "count"):
     """The ``count`` lowest stationary states of a job.
 
-    ``setup_or_job`` is a :class:`~wavesweep.simulation.Model` (or
-    Setup), a :class:`~wavesweep.jobfile.Job` or the path of a job file; the
+    ``setup_or_job`` is a :class:`~wavesweep.run.Model` (or
+    Setup), a :class:`~wavesweep.job.Job` or the path of a job file; the
     packet plays no part (a job or a path gets a Model, which never builds it).  Returns
     ``(energies_hartree, states)``: energies (hartree, ascending) and real
     states of shape ``(count, *grid.shape)`` in bohr^(-ndim/2), normalised on
@@ -110,10 +117,8 @@ def stationary_states(setup_or_job, count: int, method: str = "auto", field: str
 
 
 def _as_setup(obj):
-    """A :class:`~wavesweep.simulation.Model` (a Setup is one) of a job: a
+    """A :class:`~wavesweep.run.Model` (a Setup is one) of a job: a
     job or a job file gets a Model, which never builds the packet."""
-    from ..jobfile import Job, load_job
-    from ..simulation import Model
 
     if isinstance(obj, Model):
         return obj
@@ -192,7 +197,7 @@ def level_errors(model, energies_hartree, states, method: str = "auto") -> Level
     """Error estimates of the lowest levels of a job's grid (see the module
     notes, "Error estimates").
 
-    ``model``: the :class:`~wavesweep.simulation.Model` (or Setup) the
+    ``model``: the :class:`~wavesweep.run.Model` (or Setup) the
     levels belong to; ``energies_hartree`` and ``states`` as
     :func:`stationary_states` returns them for it.  The same Hamiltonian
     (terms evaluated anew) is solved on grids with 0.8 and 0.64 times the
@@ -301,7 +306,6 @@ def _comparison_levels(model, factor, count, states, method, tol=ITERATIVE_TOL):
     when there is no such grid or its solve fails; levels beyond what that
     grid holds are NaN.  Iterative solves start from the job's states,
     truncated to the smaller grid's modes."""
-    from ..simulation import Model
 
     grid = model.hamiltonian.grid
     coarse = _scaled_grid(grid, factor)
@@ -602,7 +606,6 @@ def check_states_path(path, field: str = "--states", overwrite: bool = True) -> 
     file, a folder that cannot be written (probed by creating a file there),
     or the nearest existing parent of a folder still to be made not
     writable (:func:`wavesweep.io.paths.output_file`)."""
-    from ..io.paths import output_file
 
     return output_file(path, field, (".nc",), overwrite=overwrite, make_folders=True, kind="states file")
 
@@ -616,12 +619,8 @@ def write_states(path, setup, energies_hartree, states, errors: LevelErrors | No
     written under a temporary name in the same folder and renamed into place
     (a reader never sees a partial file).  A ``[packet] kind = "file"`` with
     ``state = i`` reads one state back."""
-    import copy
 
-    import xarray as xr
-
-    from ..io.recorder import atomic_rename
-    from ..jobfile import job_from_dict
+    import xarray as xr   # lazy: only writing a states file needs it (0.35 s to import)
 
     path = Path(path)
     u, grid = setup.units, setup.grid
@@ -636,13 +635,11 @@ def write_states(path, setup, energies_hartree, states, errors: LevelErrors | No
     psi = np.asarray(states, float) * lf ** (grid.ndim / 2)
     psi_units = f"{length}-{grid.ndim / 2:g}"
     job = setup.job
-    try:
-        job_text, run_id = job.to_toml(), job.run_id
-    except JobError:
-        # resolving the job tunes a CAP absorber to the packet, which may not fit the grid: the
-        # states do not depend on the absorber, so the job is recorded without one
-        bare = job_from_dict({**copy.deepcopy(job.table), "absorber": {"kind": "none"}})
-        job_text, run_id = bare.to_toml(), bare.run_id
+    if job.needs_tuning:
+        # a CAP still to be tuned to the packet (a Model never builds it): the states do not
+        # depend on the absorber, so the job is recorded without one
+        job = job_from_dict({**copy.deepcopy(job.table), "absorber": {"kind": "none"}})
+    job_text, run_id = job.to_toml(), job.run_id
     ds = xr.Dataset(
         {"energy": ("state", np.asarray(energies_hartree, float) / ef,
                     {"units": u.unit_label("energy"), "long_name": "energy of the stationary state"}),
@@ -756,7 +753,6 @@ def autocorrelation_levels(result, count: int | None = None, min_weight: float =
     autocorrelation, samples too far apart for the state's energy band) is a
     :class:`~wavesweep.errors.JobError` naming ``field`` or the job field to
     change."""
-    from ..io.results import open_result
 
     if count is not None and (isinstance(count, bool) or not isinstance(count, (int, np.integer)) or count < 1):
         raise JobError("--count", f"must be a whole number of at least 1, got {count!r}")
@@ -771,8 +767,6 @@ def autocorrelation_levels(result, count: int | None = None, min_weight: float =
 
 
 def _levels_from_dataset(ds, count, min_weight, window, field) -> AutocorrelationLevels:
-    from ..io.results import result_units
-    from ..record import LANCZOS_MAX_POINTS, read_record
 
     u = result_units(ds)
     tf, ef, e_units, t_units = u["time"], u["energy"], u["energy_label"], u["time_label"]
@@ -791,7 +785,7 @@ def _levels_from_dataset(ds, count, min_weight, window, field) -> Autocorrelatio
                                    f"({duration / tf:g} {t_units})")
 
     # what the run wrote for analysis: never a set-up rebuilt from the job attribute
-    record = read_record(ds, field, lanczos=True)
+    record = run_record(ds, field, lanczos=True)
     if record.time_dependent:
         raise JobError("potential", "the run's Hamiltonian depends on time, so its autocorrelation has "
                                     "no stationary lines; use wavesweep levels JOB.toml for H at t = 0")

@@ -81,7 +81,9 @@ import numpy as np
 
 from ..errors import JobError
 from ..io.results import open_result, result_units, source_name
-from ..record import as_record, read_record
+from .arrivals import layer_edge, layer_holding, packet_side, recorded_warnings, upstream_probability
+from .recorded import as_record
+from .recorded import run_record as read_record
 
 __all__ = ["transmission", "energy_resolved_transmission", "transmission_totals", "truncation_warning",
            "UNCERTAINTY_TARGET"]
@@ -101,9 +103,8 @@ def transmission_totals(ds, setup) -> dict:
     beyond it at the end + absorbed by the faces beyond it) and ``crossed``
     (int J dt), both probabilities; ``side`` is +1 when "beyond" is the +
     direction of the detector's axis (away from the initial packet).
-    ``setup``: the run's record (:func:`wavesweep.record.read_record`), or a
+    ``setup``: the run's record (:func:`wavesweep.analysis.recorded.run_record`), or a
     Setup in memory."""
-    from .arrivals import _packet_side, _upstream_probability   # one room for the geometry
 
     setup = as_record(setup)
 
@@ -115,10 +116,10 @@ def transmission_totals(ds, setup) -> dict:
     t = np.asarray(ds["time"].values, float)
     for j, name in enumerate(names):
         det = setup.detectors[j]
-        side = _packet_side(setup, det.axis, det.position)     # where the packet is
+        side = packet_side(setup, det.axis, det.position)     # where the packet is
         axis_name = setup.grid.names[det.axis]
         far_face = f"{axis_name}{'-' if side > 0 else '+'}"
-        on_grid = _upstream_probability(ds, setup, det.axis, det.position, -side)
+        on_grid = upstream_probability(ds, setup, det.axis, det.position, -side)
         beyond = (on_grid if on_grid is not None else math.nan) + absorbed.get(far_face, 0.0)
         crossed = float(np.trapezoid(ds["flux"].values[:, j], t)) * (-side)
         out["detectors"][name] = {"beyond": beyond, "crossed": crossed, "far_face": far_face}
@@ -140,7 +141,6 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
     Raises JobError when none can (multi-D, time-dependent potential, too
     coarse sampling, no amplitude recorded, the flux not died out in a run
     that kept no final state)."""
-    from .arrivals import _layer_holding
 
     setup = as_record(setup)
     if setup.grid.ndim != 1 or setup.grid.radial:
@@ -167,14 +167,14 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
         if detector not in names:
             raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
         j = names.index(detector)
-        face = _layer_holding(setup, 0, setup.detectors[j].position)
+        face = layer_holding(setup, 0, setup.detectors[j].position)
         if face is not None:
             raise JobError("--detector", f"detector {detector!r} lies inside the {face} absorbing layer, "
                                          "where psi is no longer the transmitted wave; use one before it")
         return _at_detector(ds, setup, j, k_all, w_all, points)
     sign = 1.0 if p_mean >= 0 else -1.0
     order = sorted(range(len(names)), key=lambda i: -sign * setup.detectors[i].position)
-    usable = [i for i in order if _layer_holding(setup, 0, setup.detectors[i].position) is None]
+    usable = [i for i in order if layer_holding(setup, 0, setup.detectors[i].position) is None]
     if not usable:
         raise JobError("RUN.nc", f"{source_name(ds)}: every detector lies inside an absorbing layer; T(E) needs one "
                                  "between the scatterer and the layer")
@@ -394,13 +394,12 @@ def _short_of(x, edge, direction, ramp) -> np.ndarray:
 
 def _far_layer(setup, direction) -> float | None:
     """Inner edge of the absorbing layer the packet runs into (1D), or None."""
-    from .arrivals import _layer_edge
 
     face = "x+" if direction > 0 else "x-"
     ab = setup.absorber
     if not ab.active or face not in [layer.name for layer in ab.layers]:
         return None
-    return _layer_edge(setup, face)
+    return layer_edge(setup, face)
 
 
 def _duration_needed(t, amp, e_local, k_all, w_fwd, v_start, v_det, mass, largest) -> float:
@@ -488,7 +487,6 @@ def transmission(result, detector: str | None = None) -> dict:
     ``energy_resolved`` holds T(E) with its uncertainty, or the reason it is
     missing; ``warnings`` says when the run was too short for T(E) to be
     settled to UNCERTAINTY_TARGET."""
-    from .arrivals import recorded_warnings
 
     ds = open_result(result, require=("time", "norm", "flux"))
     try:

@@ -130,7 +130,7 @@ class ResultWriter:
         ``expected``: optional ``{"samples": n, "snapshots": m}``, the run's
         totals, so that a full disk can be told how much the file still needs.
         ``record``: what analysis needs of the set-up
-        (:func:`wavesweep.record.analysis_record`; its ``attrs`` go into
+        (:func:`wavesweep.setup.analysis_record`; its ``attrs`` go into
         ``attrs``), written once.
     attrs : global attributes written at open (the job text, units, ...).
     """
@@ -335,7 +335,7 @@ class ResultWriter:
 
     def _define_record(self, rec, full_dims, u):
         """What analysis reads instead of rebuilding the set-up
-        (:mod:`wavesweep.record`): the initial packet's marginals, psi0 and
+        (:mod:`wavesweep.io.record`): the initial packet's marginals, psi0 and
         V on the full grid (1D), the Lanczos recurrence of psi0."""
         ds = self.ds
         for dim, (name, (rho, k, w)) in zip(full_dims, rec["marginals"].items()):

@@ -5,7 +5,7 @@ not a regular file (a FIFO, a device, a folder), not a result of this tool
 (no ``run_id``/``job`` attributes), cannot be read as netCDF, or lacks a
 variable the analysis needs.  What analysis needs of the run's set-up
 (grid, initial packet, absorber, adequacy warnings) the run wrote into the
-file: :func:`wavesweep.record.read_record` reads it; no set-up is rebuilt
+file: :func:`wavesweep.analysis.recorded.run_record` reads it; no set-up is rebuilt
 from the ``job`` attribute.
 """
 from __future__ import annotations

@@ -13,7 +13,16 @@ by whole time steps ``dt`` (atomic units).  Subclasses implement:
 4. optionally ``batched = True`` when ``_step_impl`` can advance a batch:
    ``members`` states of one grid stacked along a leading axis, each with
    its own absorber (same layer geometry, strengths may differ) and its own
-   row of ``self.absorbed`` (shape ``(members, faces)``).
+   row of ``self.absorbed`` (shape ``(members, faces)``);
+5. optionally ``in_place_transform = True`` when psi may live in a fast FFT
+   backend's planned buffer (the set-up then gives it the job's backend;
+   others get scipy.fft), ``renormalises_single = True`` when the method
+   keeps a single-precision norm itself (the run then does not), and
+   :meth:`peak_bytes` when its memory differs from the default estimate.
+
+Everything the rest of the package reads of a propagator class is declared
+here: ``name``, ``order``, ``batched``, ``in_place_transform``,
+``renormalises_single``, :meth:`check_supported` and :meth:`peak_bytes`.
 
 The public :meth:`Propagator.step` keeps the books (time, step count) so
 that subclasses only compute.
@@ -31,6 +40,8 @@ class Propagator:
     name: ClassVar[str] = ""
     order: ClassVar[int] = 0
     batched: ClassVar[bool] = False
+    in_place_transform: ClassVar[bool] = False
+    renormalises_single: ClassVar[bool] = False
 
     def __init__(self, hamiltonian, dt: float, transform=None, absorber=None,
                  dtype=np.complex128, t0: float = 0.0, members: int | None = None):
@@ -61,6 +72,16 @@ class Propagator:
     @classmethod
     def check_supported(cls, hamiltonian, absorber, grid) -> None:
         """Raise JobError if this method cannot propagate that problem."""
+
+    @classmethod
+    def peak_bytes(cls, points: int, complex_bytes: int, absorbing: bool, radial_points: int | None = None) -> float:
+        """Bytes a run with this method holds at its peak, from shapes alone
+        (nothing is allocated): ``points`` grid points of ``complex_bytes``
+        each (16 double, 8 single), an absorber's W where ``absorbing``, and
+        ``radial_points`` on a radial grid.  The default, for methods that
+        keep several states at once (Crank-Nicolson, Chebyshev): about seven
+        arrays of psi and three of float64."""
+        return float(points) * complex_bytes * 7 + float(points) * 8.0 * 3
 
     @property
     def t(self) -> float:

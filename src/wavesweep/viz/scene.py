@@ -82,7 +82,7 @@ def read_scene(path, field_name: str = "RUN.nc") -> Scene:
 
 def _absorber_and_grid(ds) -> dict:
     """The [absorber] and [grid] tables the layers need: from the run's
-    record (:mod:`wavesweep.record`) where the file has one, else from the
+    record (:mod:`wavesweep.io.record`) where the file has one, else from the
     job text (a file of an older version)."""
     attrs = ds.attrs
     if "absorber_thickness" in attrs and "grid_axes" in attrs:

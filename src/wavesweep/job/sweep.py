@@ -1,4 +1,5 @@
-"""Studies: a job with a ``[sweep]`` table expands into runs.
+"""The ``[sweep]`` table of a job: its grammar, its values and its overrides
+(:func:`wavesweep.study.expand_study` makes the runs).
 
 ::
 
@@ -10,7 +11,7 @@
 
 Keys are dotted paths into any job field, array tables by index.  Each run
 is the fully resolved job for one point; its id is the content hash of that
-job's canonical form (:attr:`wavesweep.jobfile.Job.run_id`), so the same
+job's canonical form (:attr:`wavesweep.job.Job.run_id`), so the same
 physics always has the same id.  Every point is validated when the study is
 expanded: every error is reported, once, with the sweep points it occurs
 at (a JobError, or JobErrors for several), and nothing is queued.
@@ -26,19 +27,17 @@ a range).
 from __future__ import annotations
 
 import copy
-import itertools
 import math
 import os
-from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
 from ..errors import ErrorCollector, JobError, combine_errors
-from ..jobfile import Job, file_position, job_from_dict, parse_override, read_job_file
+from .dotted import canonical_path, file_position, parse_override
 
-__all__ = ["RunSpec", "Study", "expand_study", "load_study", "sweep_axes", "refuse_swept_overrides",
-           "apply_sweep_overrides", "max_runs"]
+__all__ = ["sweep_axes", "refuse_swept_overrides", "apply_sweep_overrides", "sweep_errors", "max_runs",
+           "MODES", "RANGE_KEYS"]
 
 MODES = ("grid", "zip")
 # Runs of one study at the most: each is validated and resolved on submit
@@ -69,39 +68,6 @@ def _limit_advice() -> str:
     return (f"split it into several studies, or raise the limit with {MAX_RUNS_VARIABLE}=N "
             "(each run is validated on submit, a few ms each)")
 RANGE_KEYS = ("start", "stop", "num", "spacing")
-
-
-@dataclass
-class RunSpec:
-    """One run of a study: its resolved job and the swept values (job units)."""
-
-    job: Job
-    params: dict = field(default_factory=dict)     # dotted key -> value
-
-    @property
-    def run_id(self) -> str:
-        return self.job.run_id
-
-
-@dataclass
-class Study:
-    name: str
-    runs: list
-    axes: dict            # dotted key -> list of values (grid) or values per run (zip)
-    mode: str
-    source: Path | None = None
-
-    def manifest(self) -> dict:
-        """JSON-ready description: mode, swept axes and each run's id and
-        values (written to ``ROOT/STUDY/study.json`` on submit; ``collect``
-        reads it)."""
-        return {
-            "name": self.name,
-            "mode": self.mode,
-            "axes": {k: list(v) for k, v in self.axes.items()},
-            "source": str(self.source) if self.source else None,
-            "runs": [{"run_id": r.run_id, "params": r.params} for r in self.runs],
-        }
 
 
 def _values(key: str, spec) -> list:
@@ -184,30 +150,6 @@ def sweep_axes(sweep: dict) -> tuple[str, dict]:
     return mode, axes
 
 
-def _canonical_path(raw: dict, key: str) -> tuple:
-    """A dotted key as a tuple of parts, with list indices made
-    non-negative where ``raw`` has that list (``potential.-1.height`` and
-    ``potential.1.height`` of two potentials are the same field)."""
-    parts, node = [], raw
-    for part in key.split("."):
-        if isinstance(node, list):
-            try:
-                i = int(part)
-            except ValueError:
-                node = None
-            else:
-                if -len(node) <= i < len(node):
-                    part, node = str(i % len(node)), node[i]
-                else:
-                    node = None
-        elif isinstance(node, dict):
-            node = node.get(part)
-        else:
-            node = None
-        parts.append(part)
-    return tuple(parts)
-
-
 def refuse_swept_overrides(raw: dict, overrides=(), source: Path | None = None) -> None:
     """A JobError naming ``--set KEY`` when an override targets a key the
     job's ``[sweep]`` table sweeps (or a table holding it, or a field inside
@@ -217,11 +159,11 @@ def refuse_swept_overrides(raw: dict, overrides=(), source: Path | None = None) 
     sweep = raw.get("sweep")
     if not isinstance(sweep, dict) or not overrides:
         return
-    swept = {k: _canonical_path(raw, k) for k in sweep if k != "mode" and isinstance(k, str)}
+    swept = {k: canonical_path(raw, k) for k in sweep if k != "mode" and isinstance(k, str)}
     where = f"[sweep] of {source.name}" if source else "[sweep]"
     for item in overrides:
         key = (parse_override(item) if isinstance(item, str) else item)[0]
-        mine = _canonical_path(raw, key)
+        mine = canonical_path(raw, key)
         hits = [name for name, path in swept.items()
                 if mine[:min(len(mine), len(path))] == path[:min(len(mine), len(path))]]
         if not hits:
@@ -280,50 +222,11 @@ def apply_sweep_overrides(raw: dict, overrides=()) -> tuple[dict, list]:
     return raw, rest
 
 
-def expand_study(raw: dict, source: Path | None = None, name: str | None = None,
-                 overrides=()) -> Study:
-    """All runs of a job table (``[sweep]`` optional: one run without it).
-    Overrides of the sweep change it (:func:`apply_sweep_overrides`); an
-    override of a swept key is a JobError (:func:`refuse_swept_overrides`)."""
-    raw, overrides = apply_sweep_overrides(raw, overrides)
-    refuse_swept_overrides(raw, overrides, source)
-    sweep = raw.pop("sweep", None)
-    study_name = name or (source.stem if source else "study")
-    if sweep is None:
-        job = job_from_dict(raw, overrides, source=source)
-        return Study(study_name, [RunSpec(job, {})], {}, "grid", source)
-    mode, axes = sweep_axes(sweep)
-    keys = list(axes)
-    points = (zip(*axes.values()) if mode == "zip" else itertools.product(*axes.values()))
-    runs, seen = [], set()
-    failed: dict[tuple[str, str], list[str]] = {}   # (field, message) -> the points it occurs at
-    count = 0
-    for values in points:
-        count += 1
-        point = dict(zip(keys, values))
-        sets = list(overrides) + [(k, v) for k, v in point.items()]
-        try:
-            job = job_from_dict(raw, sets, source=source)
-            job.resolve()
-        except JobError as e:
-            where = ", ".join(f"{k} = {v!r}" for k, v in point.items())
-            for one in e.errors:
-                failed.setdefault((one.field, one.message), []).append(where)
-            continue
-        if job.run_id in seen:   # two points giving the same physics run once
-            continue
-        seen.add(job.run_id)
-        runs.append(RunSpec(job, point))
-    if failed:
-        raise _sweep_errors(failed, count, raw)
-    return Study(study_name, runs, axes, mode, source)
-
-
 # How many sweep points a message names before "and N more".
 POINTS_NAMED = 3
 
 
-def _sweep_errors(failed: dict, count: int, raw: dict) -> JobError:
+def sweep_errors(failed: dict, count: int, raw: dict) -> JobError:
     """One error per distinct (field, message), in the order of the job
     file, saying which sweep points it occurs at (all of them: once, not
     once per point)."""
@@ -340,12 +243,3 @@ def _sweep_errors(failed: dict, count: int, raw: dict) -> JobError:
         errors.append(JobError(field_name, f"{message} ({where})"))
     errors.sort(key=lambda e: file_position(raw, e.field))
     return combine_errors(errors)
-
-
-def load_study(path, overrides=(), name: str | None = None) -> Study:
-    """Read a job file and expand its sweep (``--set`` overrides apply to
-    every run; a swept key set with --set is a JobError naming it)."""
-    path = Path(path)
-    raw = read_job_file(path)
-    # --set sweep.* changes the sweep itself (apply_sweep_overrides)
-    return expand_study(raw, source=path, name=name, overrides=overrides)

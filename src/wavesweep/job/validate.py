@@ -1,10 +1,11 @@
-"""Job files: TOML -> a validated, resolved job.
+"""Job files: TOML -> a validated job.
 
 :func:`load_job` reads a file (or :func:`job_from_dict` a dict), applies
 ``--set`` overrides, checks every table against its schema and returns a
 :class:`Job`: the resolved table in the job's units with every default filled
 in (``Job.to_toml()`` is a complete job file that reproduces the run) and the
-unit set.  Physical objects are built from it by :mod:`wavesweep.simulation`.
+unit set.  Physical objects are built from it by :mod:`wavesweep.setup`
+(which also tunes what the physics chooses: :func:`wavesweep.setup.resolve_job`).
 
 Every problem is a :class:`~wavesweep.errors.JobError` naming the field;
 independent problems are all reported at once, in the order of the job file
@@ -12,274 +13,27 @@ independent problems are all reported at once, in the order of the job file
 """
 from __future__ import annotations
 
-import copy
-import hashlib
-import json
+import difflib
 import math
 import os
 import stat
 import tomllib
-from dataclasses import dataclass, field
 from pathlib import Path
 
-import tomli_w
+from ..absorbers.layers import face_names
+from ..errors import ErrorCollector, JobError, combine_errors
+from ..grid import BOUNDARIES, Axis, Grid
+from ..io.paths import file_kind
+from ..potentials import REGISTRY, PotentialContext, make_term, term_class
+from ..schema import MAX_INT, Field, check_unknown, unknown_keys, validate_table
+from ..states import PACKET_SCHEMAS
+from ..units import UnitSet
+from .document import Job, grid_axes
+from .dotted import apply_overrides, file_position, parse_override
+from .schemas import ABSORBER, AXIS, DETECTOR, DETECTOR_POSITION, EVOLVE, PARTICLE, RECORD, TOP_LEVEL
+from .sweep import apply_sweep_overrides, refuse_swept_overrides
 
-from .absorbers.layers import face_names
-from .errors import ErrorCollector, JobError, combine_errors
-from .grid import BOUNDARIES, Axis, Grid
-from .io.paths import file_kind
-from .potentials import REGISTRY, PotentialContext, make_term, term_class
-from .propagators import SCHEMES
-from .schema import MAX_INT, Field, check_unknown, unknown_keys, validate_table
-from .states import PACKET_SCHEMAS
-from .units import UnitSet
-
-__all__ = ["Job", "load_job", "read_job_file", "job_from_dict", "apply_overrides", "parse_override"]
-
-FFT_BACKENDS = ("auto", "scipy", "pyfftw")
-# Keys that choose how a run is computed, not what is computed: left out of the run id.
-NOT_PHYSICS = {"evolve": ("fft", "threads")}
-
-TOP_LEVEL = ("title", "units", "particle", "grid", "potential", "packet", "evolve",
-             "absorber", "record", "detector", "sweep")
-
-PARTICLE = {
-    "mass": Field("mass", 1.0, positive=True, physics=True,
-                  doc="particle mass (1 = one job mass unit: the electron mass in atomic units)"),
-    "charge": Field("charge", None, doc="charge q in units of e, e.g. -1 for an electron "
-                                        "(required by a driving field)"),
-}
-AXIS = {
-    "min": Field("length", None, doc="lower end of the axis (required on x, y, z; a radial axis "
-                                     "starts at r = 0: leave it out)"),
-    "max": Field("length", doc="upper end of the axis"),
-    "points": Field("int", positive=True, doc="number of grid points, at least 4; periodic: "
-                                              "dx = (max - min) / points, min on the grid, max not; "
-                                              "box: dx = (max - min) / (points + 1), walls off the grid"),
-    "boundary": Field("str", None, choices=BOUNDARIES, doc="this axis' boundary; default: grid.boundary"),
-}
-# [grid] itself (validated by _grid): its axes are AXIS tables.
-GRID = {
-    "x": Field("table", None, doc="the first Cartesian axis: { min, max, points } (keys below)"),
-    "y": Field("table", None, doc="the second Cartesian axis (2D, 3D)"),
-    "z": Field("table", None, doc="the third Cartesian axis (3D)"),
-    "r": Field("table", None, doc="a radial axis { max, points } instead of x, y, z: u(r) = r R(r), "
-                                  "u(0) = 0"),
-    "boundary": Field("str", "periodic", choices=BOUNDARIES, physics=True,
-                      doc="periodic (FFT: what leaves one side enters the other) or box (hard "
-                          "walls, psi = 0, sine transform); a radial grid is always box"),
-    "l": Field("int", 0, nonnegative=True, physics=True,
-               doc="angular momentum on a radial grid: adds l (l + 1) / (2 m r^2) to V"),
-}
-EVOLVE = {
-    "dt": Field("time", positive=True, doc="time step"),
-    "duration": Field("time", positive=True, doc="total propagation time, a whole number of steps"),
-    "scheme": Field("str", "strang", choices=tuple(SCHEMES),
-                    doc="propagator: strang (2nd-order split-operator), order4 (Yoshida), "
-                        "order4_suzuki, chebyshev (time-independent H), crank_nicolson (1D)"),
-    "precision": Field("str", "double", choices=("double", "single"),
-                       doc="complex128 (double) or complex64 (single) arithmetic"),
-    "fft": Field("str", "auto", choices=FFT_BACKENDS, doc="FFT backend: auto, scipy, pyfftw"),
-    "threads": Field("int", None, positive=True, maximum=4096,
-                     doc="threads of the transforms and kernels (default: WAVESWEEP_THREADS, else "
-                         "chosen by the grid size)"),
-}
-ABSORBER = {
-    "kind": Field("str", "none", choices=("cap", "mask", "none"),
-                  doc="cap: -i W with W = strength (s/thickness)^power, s the depth into the layer; "
-                      "mask: psi times cos(pi s / (2 thickness))^mask_exponent each step; none"),
-    "thickness": Field("length", None, positive=True, doc="layer thickness (required for cap and mask)"),
-    "faces": Field("list", None, doc="faces with a layer, e.g. ['x-', 'x+'] (default: every face; "
-                                     "a radial grid has only 'r+')"),
-    "strength": Field("energy", None, nonnegative=True, per_axis=True,
-                      doc="CAP strength (one per axis allowed); omitted: tuned to the packet"),
-    "power": Field("number", None, positive=True,
-                   doc="CAP exponent; omitted with the strength: the better of 2 and 3"),
-    "mask_exponent": Field("number", 0.125, positive=True, doc="mask: exponent of the cosine profile"),
-}
-RECORD = {
-    "every": Field("time", None, positive=True,
-                   doc="time between scalar samples (default: about 1000 samples, on whole steps)"),
-    "snapshot_every": Field("time", None, positive=True,
-                            doc="time between density snapshots, a multiple of every "
-                                "(default: about 100 snapshots)"),
-    "stride": Field("int", 1, positive=True, doc="snapshots keep every stride-th grid point"),
-    "final_state": Field("bool", True, doc="store the final psi in the result"),
-    # None (not False) by default: absent keys stay out of the run id
-    "snapshot_psi": Field("bool", None, doc="store psi (real and imaginary parts) with each snapshot"),
-}
-DETECTOR = {
-    "name": Field("str", None, doc="the detector's name (default: 'x=<position>')"),
-}
-# The detector's position: one of the grid's axis names as the key.
-DETECTOR_POSITION = Field("length", None, doc="position of the detector plane on this axis "
-                                              "(give exactly one axis)")
-
-
-@dataclass
-class Job:
-    """A validated job: ``table`` in the job's units with defaults filled in."""
-
-    table: dict
-    units: UnitSet
-    source: Path | None = None
-    notes: list = field(default_factory=list)
-    # the table as written (after --set), to tell the keys the job gave from
-    # the defaults filled in (wavesweep.reference.physics_defaults)
-    raw: dict | None = field(default=None, repr=False, compare=False)
-
-    @property
-    def title(self) -> str:
-        return self.table.get("title", "")
-
-    @property
-    def name(self) -> str:
-        return self.source.stem if self.source else "job"
-
-    @property
-    def ndim(self) -> int:
-        return len(grid_axes(self.table["grid"]))
-
-    def resolve(self) -> "Job":
-        """Fill in the values that need the physics to choose, so that the
-        table is the complete job: today the CAP strength and exponent, tuned to the
-        packet's energies by :class:`~wavesweep.simulation.Setup` (which
-        records it in ``table``).  Idempotent; ``to_toml``, ``canonical`` and
-        ``run_id`` call it, so the id is the same before and after a run and
-        for a rerun of the job text stored in the result."""
-        ab = self.table.get("absorber") or {}
-        if ab.get("kind") == "cap" and (ab.get("strength") is None or ab.get("power") is None):
-            from .adequacy import memory_estimate, physical_memory_error
-            from .simulation import Setup
-            # the tuning builds the set-up (psi0, V): judged from the grid's
-            # shape first, a grid no machine holds is one line, not an allocation
-            error = physical_memory_error(memory_estimate(self)["estimate_bytes"])
-            if error is not None:
-                raise error
-            Setup(self)
-        return self
-
-    def to_toml(self) -> str:
-        """The complete job as TOML; loading it gives back the same table."""
-        self.resolve()
-        table = dict(self.table)
-        if isinstance(table.get("absorber"), dict):  # the tuned strength in its schema place
-            ab = table["absorber"]
-            table["absorber"] = {**{k: ab[k] for k in ABSORBER if k in ab},
-                                 **{k: v for k, v in ab.items() if k not in ABSORBER}}
-        return tomli_w.dumps(_toml_ready(table))
-
-    def canonical(self) -> str:
-        """Key-order-free JSON of the physics, for hashing: the title, the
-        sweep and the keys in :data:`NOT_PHYSICS` are left out; numbers are
-        compared as floats (1 and 1.0 are the same)."""
-        self.resolve()
-        t = {k: v for k, v in self.table.items() if k not in ("title", "sweep")}
-        for table, keys in NOT_PHYSICS.items():
-            if isinstance(t.get(table), dict):
-                t[table] = {k: v for k, v in t[table].items() if k not in keys}
-        return json.dumps(_canonical_numbers(t), sort_keys=True, separators=(",", ":"))
-
-    @property
-    def run_id(self) -> str:
-        """Content hash of the canonical job: same physics, same id."""
-        return hashlib.sha256(self.canonical().encode()).hexdigest()[:12]
-
-
-def _canonical_numbers(obj):
-    if isinstance(obj, dict):
-        return {k: _canonical_numbers(v) for k, v in obj.items()}
-    if isinstance(obj, list):
-        return [_canonical_numbers(v) for v in obj]
-    if isinstance(obj, bool) or obj is None:
-        return obj
-    if isinstance(obj, (int, float)):
-        return float(repr(float(obj))) if math.isfinite(obj) else str(obj)
-    return obj
-
-
-def _toml_ready(obj):
-    if isinstance(obj, dict):
-        return {k: _toml_ready(v) for k, v in obj.items() if v is not None}
-    if isinstance(obj, list):
-        return [_toml_ready(v) for v in obj]
-    return obj
-
-
-# -- overrides -------------------------------------------------------------------
-def parse_override(text: str) -> tuple[str, object]:
-    """``"packet.width=15"`` -> ("packet.width", 15); values are read as TOML
-    (numbers, strings, lists, booleans), bare words as strings."""
-    if "=" not in text:
-        raise JobError("--set", f"{text!r} is not key=value, e.g. --set packet.width=15")
-    key, raw = text.split("=", 1)
-    key, raw = key.strip(), raw.strip()
-    if not key:
-        raise JobError("--set", f"{text!r} has no key")
-    if any(ord(c) < 32 or c == "\x7f" for c in key):
-        raise JobError("--set", f"the key of {text!r} holds a line break or control character; "
-                                "give a dotted key such as packet.width")
-    try:
-        parsed = tomllib.loads(f"v = {raw}")
-    except tomllib.TOMLDecodeError:
-        parsed = None
-    if parsed is not None and set(parsed) == {"v"}:
-        return key, parsed["v"]   # one TOML value (a multi-line list is one value too)
-    if parsed is not None or "\n" in raw or "\r" in raw:
-        # the text after the first value would be dropped: refuse, never truncate
-        raise JobError(f"--set {key}", f"the value {raw!r} is more than one value (it runs over lines or "
-                                       "holds more TOML after the first); give one value on one line, "
-                                       "such as 15, 'text' or [1, 2]")
-    return key, raw   # a bare word is a string
-
-
-def apply_overrides(table: dict, overrides) -> dict:
-    """Set dotted keys (``potential.0.height``) in a copy of ``table``."""
-    out = copy.deepcopy(table)
-    for item in overrides or ():
-        key, value = parse_override(item) if isinstance(item, str) else item
-        set_dotted(out, key, value)
-    return out
-
-
-def set_dotted(table: dict, key: str, value) -> None:
-    parts = key.split(".")
-    node = table
-    for depth, part in enumerate(parts[:-1]):
-        here = ".".join(parts[: depth + 1])
-        if isinstance(node, list):
-            node = _list_item(node, part, here)
-        else:
-            if part not in node:
-                if parts[depth + 1].lstrip("-").isdigit():
-                    raise JobError(key, f"the job has no {here} entries to index; "
-                                        f"add a [[{here}]] table to the job file first")
-                node[part] = {}
-            node = node[part]
-        if not isinstance(node, (dict, list)):
-            raise JobError(key, f"{here} is a value, not a table")
-    last = parts[-1]
-    if isinstance(node, list):
-        idx = _index(node, last, key)
-        node[idx] = value
-    else:
-        node[last] = value
-
-
-def _index(seq: list, part: str, where: str) -> int:
-    try:
-        i = int(part)
-    except ValueError:
-        raise JobError(where, f"{part!r} must be an index into the list (0..{len(seq) - 1})") from None
-    if not -len(seq) <= i < len(seq):
-        valid = f"valid indices are 0..{len(seq) - 1}" if seq else "there are no entries"
-        raise JobError(where, f"index {i} is out of range; {valid} (negative ones count from the end)")
-    return i
-
-
-def _list_item(seq, part, where):
-    return seq[_index(seq, part, where)]
-
+__all__ = ["load_job", "read_job_file", "job_from_dict", "grid_object"]
 
 # -- loading ---------------------------------------------------------------------
 # First bytes of files that are data, not text: netCDF classic (1), 64-bit
@@ -320,13 +74,11 @@ def read_job_file(path) -> dict:
 def load_job(path, overrides=(), sweep: bool = True) -> Job:
     """Read and validate a job file; ``overrides`` are ``"key=value"`` strings.
     A ``[sweep]`` table is validated and kept; expand it with
-    :func:`wavesweep.batch.sweep.load_study`.  An override of a key the
+    :func:`wavesweep.study.load_study`.  An override of a key the
     sweep sweeps is a JobError (the sweep would decide its value).
     ``sweep=False``: the job as written outside its ``[sweep]`` (dropped, so
     an override of a swept key sets it; an override of the sweep is a
     JobError, as it would be lost)."""
-    from .batch.sweep import apply_sweep_overrides, refuse_swept_overrides
-
     raw = read_job_file(path)
     if not sweep:
         for item in overrides:
@@ -442,35 +194,6 @@ def job_from_dict(raw: dict, overrides=(), source: Path | None = None) -> Job:
     return Job(out, units, source, raw=raw)
 
 
-def file_position(raw: dict, field: str) -> list[int]:
-    """Where a dotted field sits in the job table ``raw``, as a sort key:
-    the index of each part among its table's keys (as written: TOML tables
-    keep the file's order) or its list index; a key the table lacks sorts
-    after the keys it has, a field outside the job (``--set ...``) last."""
-    pos, node = [], raw
-    for part in field.split("."):
-        if isinstance(node, dict):
-            keys = list(node)
-            if part not in node:
-                pos.append(len(keys))
-                break
-            pos.append(keys.index(part))
-            node = node[part]
-        elif isinstance(node, list):
-            try:
-                i = int(part)
-            except ValueError:
-                break
-            if not -len(node) <= i < len(node):
-                pos.append(len(node))
-                break
-            pos.append(i % len(node))
-            node = node[i]
-        else:
-            break
-    return pos
-
-
 def _valid_part(raw, schema: dict, keys, prefix: str, units) -> dict | None:
     """``keys`` of table ``raw`` validated (defaults filled), or None if any
     of them is bad or missing (their errors are the table's own to report)."""
@@ -549,10 +272,6 @@ def _need(raw, key):
     if key not in raw:
         raise JobError(key, f"missing [{key}] table")
     return raw[key]
-
-
-def grid_axes(grid: dict) -> list[str]:
-    return [k for k in ("x", "y", "z", "r") if k in grid]
 
 
 def _grid(raw, units, compare: bool = True) -> dict:
@@ -672,7 +391,6 @@ def _packet(raw, units, ndim, base, name) -> dict:
     if not isinstance(kind, str):
         raise JobError(f"{name}.kind", f"must be a string, one of {', '.join(PACKET_SCHEMAS)}; got {kind!r}")
     if kind not in PACKET_SCHEMAS:
-        import difflib
         near = difflib.get_close_matches(str(kind), PACKET_SCHEMAS, n=1)
         hint = f"did you mean {near[0]!r}? " if near else ""
         raise JobError(f"{name}.kind", f"unknown packet kind {kind!r}; {hint}known: {', '.join(PACKET_SCHEMAS)}")

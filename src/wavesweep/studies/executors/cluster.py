@@ -22,11 +22,13 @@ from __future__ import annotations
 import os
 import signal
 import socket
+import threading
 import time
 import uuid
 
 from ...errors import JobError
-from .base import DISK_FULL, Executor, WorkerSettings, _reason
+from ..queue import Queue
+from .base import DISK_FULL, Executor, WorkerSettings, _reason, execute_claim
 
 __all__ = ["DaskExecutor", "connect"]
 
@@ -42,7 +44,7 @@ def connect(address: str, connect_seconds: float = CONNECT_SECONDS):
     other address is a running scheduler.  A JobError on ``--dask`` when it
     cannot be reached or understood."""
     try:
-        from distributed import Client, LocalCluster
+        from distributed import Client, LocalCluster   # lazy: dask.distributed only on a cluster run
     except ImportError:
         raise JobError("--dask", "dask.distributed is not installed; pip install 'dask[distributed]'") from None
     if address.startswith("local:"):
@@ -69,7 +71,7 @@ class _TaskBooks:
     become progress messages; the run's end is kept for the driver."""
 
     def __init__(self, topic: str, stop_name: str):
-        from distributed import Event, Queue
+        from distributed import Event, Queue   # lazy: as above
         self.progress = Queue(topic)
         self.stop = Event(stop_name)
         self.end = None
@@ -103,7 +105,6 @@ class _TaskBooks:
 def _task(claim: dict, settings: WorkerSettings, topic: str, stop_name: str) -> dict:
     """One claimed run on a Dask worker; returns how it ended."""
     os.environ["WAVESWEEP_THREADS"] = "1"   # a worker's threads are its task slots
-    from .base import execute_claim
     books = _TaskBooks(topic, stop_name)
     state = execute_claim(books, claim, claim["worker"], settings, books.stop_requested)
     return {**(books.end or {"state": state}), "outcome": state}
@@ -121,10 +122,9 @@ class DaskExecutor(Executor):
         self.connect_seconds = connect_seconds
 
     def drain(self) -> dict:
-        from distributed import Queue as ProgressQueue
+        from distributed import Queue as ProgressQueue   # lazy: as above
         from distributed import wait
 
-        from ..queue import Queue
         queue = Queue(self.root)
         client, cluster = connect(self.address, self.connect_seconds)   # before anything is claimed
         st = self.settings
@@ -132,7 +132,7 @@ class DaskExecutor(Executor):
         name = f"{socket.gethostname()}:{os.getpid()}:dask"
         tag = uuid.uuid4().hex[:12]
         topic, stop_name = f"wavesweep-progress-{tag}", f"wavesweep-stop-{tag}"
-        from distributed import Event
+        from distributed import Event   # lazy: as above
         stop = Event(stop_name, client=client)
         updates = ProgressQueue(topic, client=client)
         pending: dict = {}
@@ -176,7 +176,6 @@ class DaskExecutor(Executor):
             else:
                 queue.fail(study, run_id, name, f"on the Dask cluster: {_reason(fut.exception())}")
 
-        import threading
         handlers = threading.current_thread() is threading.main_thread()   # signals: main thread only
         try:
             if handlers:

@@ -1,6 +1,6 @@
 """What every executor shares: running one claimed run of the queue.
 
-An executor drains the queue (:class:`wavesweep.batch.queue.Queue`) with some
+An executor drains the queue (:class:`wavesweep.studies.queue.Queue`) with some
 pool of workers.  Whatever the pool, one claimed run is executed by
 :func:`execute_claim`: it rebuilds the resolved job from the queue, runs it
 with checkpoints, reports progress through heartbeats, and ends the run in
@@ -26,7 +26,12 @@ from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
 
+from ...batched import BatchedRun, batch_group
 from ...errors import DiskFull, JobError, RunFailed, RunInterrupted
+from ...io.checkpoint import CheckpointPolicy, ResultExists
+from ...io.diskspace import free_bytes, is_no_space
+from ...job import job_from_dict
+from ...run import Simulation
 
 __all__ = ["Executor", "WorkerSettings", "execute_claim", "execute_batch", "claim_next",
            "thread_environment", "DISK_FULL"]
@@ -104,7 +109,6 @@ def _resumed(log_part: Path, step: int, total: int, checkpoint) -> None:
 def _disk_full_of(exc: BaseException, path) -> DiskFull | None:
     """``exc`` as a DiskFull when it is one or an ENOSPC / EDQUOT /
     SQLITE_FULL error that no writer translated (None otherwise)."""
-    from ...io.diskspace import free_bytes, is_no_space
     if isinstance(exc, DiskFull):
         return exc
     if not is_no_space(exc):
@@ -131,9 +135,6 @@ def execute_claim(queue, claim: dict, worker: str, settings: WorkerSettings,
     attempt not counted, because the disk is full).  Never raises for a
     run's own failure; a queue that cannot record the end (its disk full
     even after its reserve was freed) raises DiskFull."""
-    from ...io.checkpoint import CheckpointPolicy
-    from ...jobfile import job_from_dict
-    from ...simulation import Simulation
 
     study, run_id = claim["study"], claim["run_id"]
     result = Path(claim["result"])
@@ -194,7 +195,6 @@ def execute_claim(queue, claim: dict, worker: str, settings: WorkerSettings,
         return "queued"
     except FileExistsError as e:   # ResultExists: another attempt finished it; never overwritten
         done.set()
-        from ...io.checkpoint import ResultExists
         if not isinstance(e, ResultExists):
             return _fail(queue, claim, worker, f"{e.strerror or e}", log_part, log_final, done)
         _log(log_part, "the result already exists; kept as it is")
@@ -241,7 +241,6 @@ def _fail(queue, claim, worker, reason, log_part, log_final, done=None, trace=No
 def claim_next(queue, worker: str, settings: WorkerSettings) -> list[dict]:
     """The next claims of a worker: one run, or a batch of runs that can be
     stepped together (up to ``settings.batch``); empty when none is queued."""
-    from ...batched import batch_group
     return queue.claim_batch(worker, max(1, settings.batch), batch_group, share=settings.share,
                              lease_seconds=settings.lease_seconds)
 
@@ -254,9 +253,6 @@ def execute_batch(queue, claims: list[dict], worker: str, settings: WorkerSettin
     be batched after all (an error building one of them), the first runs on
     its own and the others go back to the queue (first in line, the attempt
     not counted), so that no claim waits unattended."""
-    from ...batched import BatchedRun
-    from ...io.checkpoint import CheckpointPolicy, ResultExists
-    from ...jobfile import job_from_dict
 
     if len(claims) == 1:
         return [execute_claim(queue, claims[0], worker, settings, stop_requested)]

@@ -6,7 +6,7 @@ EXECUTORS = {LocalExecutor.name: LocalExecutor}
 
 
 def __getattr__(name):
-    if name == "DaskExecutor":   # imports dask only when asked for
+    if name == "DaskExecutor":   # lazy: imports dask only when asked for
         from .cluster import DaskExecutor
         return DaskExecutor
     raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -3,11 +3,17 @@ cancel/collect only parse arguments and call these)."""
 from __future__ import annotations
 
 import os
-import time
+import socket
 from datetime import datetime, timedelta
 from pathlib import Path
 
-from ..errors import JobError
+from ..check import preflight
+from ..errors import DiskFull, JobError
+from ..io.diskspace import free_bytes
+from ..study import load_study
+from .executors import EXECUTORS, WorkerSettings
+from .executors.local import LocalExecutor
+from .queue import DB_NAME, RESERVE_BYTES, Queue
 
 __all__ = ["default_root", "submit", "work", "format_work", "status", "format_status", "parse_until",
            "until_deadline",
@@ -24,9 +30,6 @@ def submit(job_path, root=None, study: str | None = None, overrides=(), force: b
     ones.  Nothing is queued when any run is invalid, or when ``wavesweep
     check`` finds an error at any point unless ``force`` (a JobError);
     ``warnings`` lists the warnings, one line per criterion."""
-    from ..check import preflight
-    from .queue import Queue
-    from .sweep import load_study
 
     st = load_study(job_path, overrides, name=study)
     warnings = preflight(st.runs, force=force)
@@ -90,10 +93,6 @@ def work(root=None, workers: int = 1, until: str | float | None = None, executor
     ``until``: ``--until`` text (:func:`parse_until`) or epoch seconds.
     ``dask``: drain on the Dask cluster at that scheduler address (or
     ``local:N``, a LocalCluster of N worker processes) instead."""
-    import socket
-
-    from .executors import EXECUTORS, WorkerSettings
-    from .executors.local import LocalExecutor
 
     if workers < 1:
         raise JobError("--workers", f"must be at least 1, got {workers}")
@@ -107,16 +106,13 @@ def work(root=None, workers: int = 1, until: str | float | None = None, executor
     queue.check_writable(sorted({r["study"] for r in queue.runs() if r["state"] == "queued"}))
     since = queue.last_event()
     if dask is not None:
-        from .executors.cluster import DaskExecutor
+        from .executors.cluster import DaskExecutor   # lazy: dask.distributed only for --dask
         cls = DaskExecutor
         ex = DaskExecutor(queue.root, address=dask, settings=WorkerSettings(until=deadline, **settings))
     else:
         ex = cls(queue.root, workers=workers, settings=WorkerSettings(until=deadline, **settings))
     had_reserve = queue.reserve_path.exists()
     if not queue.keep_reserve():
-        from ..errors import DiskFull
-        from ..io.diskspace import free_bytes
-        from .queue import RESERVE_BYTES
         raise DiskFull(queue.root, free_bytes(queue.root), RESERVE_BYTES, what="the queue folder",
                        need="the queue needs a reserve of", basis="to record runs' ends when the disk fills")
     try:
@@ -173,7 +169,6 @@ def format_work(out: dict) -> str:
 
 def existing_queue(root=None):
     """The queue at ROOT; a JobError (not a new, empty queue) if there is none."""
-    from .queue import DB_NAME, Queue
 
     root = default_root(root)
     if root.exists() and not root.is_dir():

@@ -59,9 +59,12 @@ import numpy as np
 import xarray as xr
 
 from .._version import __version__
+from ..analysis.arrivals import arrival_times
+from ..analysis.recorded import run_record
+from ..analysis.transmission import transmission_totals
 from ..errors import JobError
 from ..io.recorder import atomic_rename
-from ..jobfile import ABSORBER, AXIS, EVOLVE, PARTICLE, RECORD
+from ..job.schemas import ABSORBER, AXIS, EVOLVE, PARTICLE, RECORD
 from ..potentials import term_class
 from ..schema import Field
 from ..states import PACKET_SCHEMAS
@@ -302,13 +305,10 @@ def _read_result(path: Path) -> _Result:
 def _analyse(ds, result: _Result) -> None:
     """Arrival statistics and transmission beyond each detector, as
     ``wavesweep arrivals`` / ``transmission`` give them for the run."""
-    from ..analysis.arrivals import arrival_times
-    from ..analysis.transmission import transmission_totals
-    from ..record import read_record
 
     try:
         dists = arrival_times(ds, warnings=False)   # the figures only; check judges the set-ups
-        totals = transmission_totals(ds, read_record(ds))   # what the run wrote, never its job rebuilt
+        totals = transmission_totals(ds, run_record(ds))   # what the run wrote, never its job rebuilt
     except JobError as e:     # e.g. a file potential that has moved: the books stay, stats are NaN
         result.analysis_note = f"run {result.run_id}: no arrival statistics ({e})"
         return

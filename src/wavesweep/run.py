@@ -1,16 +1,18 @@
-"""One run: a validated job -> physical objects -> the stepping loop -> a result file.
+"""One run: a job's set-up (:mod:`wavesweep.setup`) -> the stepping loop ->
+a result file.
 
-:class:`Setup` turns a :class:`~wavesweep.jobfile.Job` into atomic-unit
-objects (grid, Hamiltonian, absorber, initial state, detectors, propagator).
-:class:`Model`, its first half, is the particle, grid, potential and real
-Hamiltonian alone: stationary states (``levels``) need no packet.
-:class:`Simulation` runs the loop, records observables every ``record.every``
-and density every ``record.snapshot_every``, and writes the result through
-:class:`~wavesweep.io.recorder.ResultWriter`.
+:class:`Simulation` runs the loop, records observables every
+``record.every`` and density every ``record.snapshot_every``, and writes the
+result through :class:`~wavesweep.io.recorder.ResultWriter`, with
+checkpoints.  Its run-book methods (:meth:`Simulation.begin`,
+:meth:`~Simulation.observe`, :meth:`~Simulation.record_sample`,
+:meth:`~Simulation.write_snapshot`, :meth:`~Simulation.save_checkpoint`,
+:meth:`~Simulation.finish`, :meth:`~Simulation.abort`) are the declared
+protocol :class:`wavesweep.batched.BatchedRun` drives for each member of a
+batch, so a solo run and a batched one write the same file.
 """
 from __future__ import annotations
 
-import functools
 import logging
 import math
 import os
@@ -21,229 +23,19 @@ from pathlib import Path
 import numpy as np
 
 from ._version import __version__
-from .absorbers.layers import Absorber
-from .adequacy import dynamics, representability
-from .absorbers.tuning import tune_cap_strength as _tune_cap_strength
 from .errors import DiskFull, JobError, RunFailed, RunInterrupted
-from .fft import make_transform
-from .grid import Axis, Grid
-from .hamiltonian import Hamiltonian, static_potential_of
-from .io.checkpoint import (CheckpointCorrupt, CheckpointMismatch, CheckpointState, CheckpointStore,
-                            ResultExists, result_complete)
+from .io.checkpoint import (CheckpointCorrupt, CheckpointMismatch, CheckpointState, CheckpointStore, ResultExists,
+                            result_complete)
+from .io.paths import file_kind
+from .io.record import record_checksum
 from .io.recorder import ResultWriter
-from .jobfile import Job, grid_axes, load_job
-from .observables import Detector, Observer
-from .potentials import PotentialContext, make_term
-from .propagators import propagator_class
-from .record import analysis_record, record_checksum
-from .schema import Field, to_atomic
-from .states import PACKET_SCHEMAS, build_state
+from .job import Job, job_from_dict, load_job
+from .kernels import density_of
+from .setup import AXIS_LONG, Setup, analysis_record
 
-__all__ = ["Model", "Setup", "Simulation", "run_job"]
-
-
-@functools.lru_cache(maxsize=512)
-def tune_cap_strength(thickness, mass, e_min, e_max, power, periodic=False):
-    """Cached in memory and on disk: both faces of an axis, the runs of a
-    study, and every run of the same job in a later process ask for the same
-    layer (a tuning costs 0.3-0.5 s, most of a worker's start-up)."""
-    from .absorbers.tuning import tuning_cache
-    key = repr((float(thickness), float(mass), float(e_min), float(e_max), float(power), bool(periodic)))
-    cache = tuning_cache()
-    hit = cache.get(key)
-    if hit is not None:
-        return hit
-    out = _tune_cap_strength(thickness, mass, e_min, e_max, power, periodic=periodic)
-    cache.put(key, out)
-    return out
+__all__ = ["Simulation", "RunBook", "run_job", "progress_bar"]
 
 _log = logging.getLogger(__name__)
-
-AXIS_LONG = {"x": "position x", "y": "position y", "z": "position z", "r": "radius r"}
-
-
-class Model:
-    """The job's particle, grid and potential terms in atomic units, and the
-    real Hamiltonian they make: what stationary states need, and nothing of
-    the run (no packet, absorber, detectors or time stepping), so nothing
-    about the packet can stop it.
-
-    ``grid`` replaces the job's grid (the terms are evaluated on it): the
-    same physics on another grid, as convergence studies need.
-    ``hamiltonian`` is T + V0 + the time-dependent terms, without the
-    absorber (:class:`Setup` replaces it by the run's, with the absorber)."""
-
-    def __init__(self, job: Job, grid: Grid | None = None):
-        self.job = job
-        t, u = job.table, job.units
-        self.units = u
-        self.mass = u.to_atomic(t["particle"]["mass"], "mass", "particle.mass")
-        charge = t["particle"].get("charge")
-        self.charge = None if charge is None else u.to_atomic(charge, "charge", "particle.charge")
-        self.grid = self._grid(t["grid"]) if grid is None else grid
-        self.terms = [self._term(i, p) for i, p in enumerate(t["potential"])]
-
-    @functools.cached_property
-    def hamiltonian(self) -> Hamiltonian:
-        return Hamiltonian(self.grid, self.mass, self.terms, static_potential=self.hamiltonian_static_potential())
-
-    def _grid(self, g) -> Grid:
-        u, axes = self.units, []
-        for name in grid_axes(g):
-            a = g[name]
-            axes.append(Axis(name, u.to_atomic(a["min"], "length"), u.to_atomic(a["max"], "length"),
-                             int(a["points"]), a.get("boundary") or g["boundary"]))
-        return Grid(tuple(axes), radial="r" in g, angular_momentum=int(g.get("l", 0)))
-
-    def _term(self, i, table, prefix="potential"):
-        """A potential term from its table; ``prefix.i`` names it in messages."""
-        ctx = PotentialContext(self.grid, self.mass, self.charge, self.units, f"{prefix}.{i}")
-        return make_term(table, ctx)
-
-    def hamiltonian_static_potential(self) -> np.ndarray:
-        """Static V on the grid (hartree), before the Hamiltonian exists."""
-        if getattr(self, "_v_static", None) is None:
-            self._v_static = static_potential_of(self.grid, self.mass, self.terms)
-        return self._v_static
-
-
-class Setup(Model):
-    """Atomic-unit objects of a job (no time stepping)."""
-
-    def __init__(self, job: Job, fft: str | None = None, threads: int | None = None):
-        super().__init__(job)
-        t, u = job.table, job.units
-        ev = t["evolve"]
-        self.dt = u.to_atomic(ev["dt"], "time", "evolve.dt")
-        self.duration = u.to_atomic(ev["duration"], "time", "evolve.duration")
-        self.total_steps = round(self.duration / self.dt)
-        rec = t["record"]
-        self.sample_steps = round(u.to_atomic(rec["every"], "time") / self.dt)
-        self.snapshot_steps = round(u.to_atomic(rec["snapshot_every"], "time") / self.dt)
-        self.dtype = np.complex64 if ev["precision"] == "single" else np.complex128
-        self.packet = self._packet_atomic(t["packet"])
-        representability(self)  # before the absorber's tuning squares the packet's momenta
-        self.psi0 = build_state(self.packet, self.grid, self.mass,
-                                length_unit=(u.factor("length"), u.unit_label("length")), terms=self.terms)
-        if self.dtype == np.complex64:   # single precision end to end (half the bytes)
-            self.psi0 = self.psi0.astype(np.complex64)
-        self.absorber = self._absorber(t["absorber"])
-        self.hamiltonian = Hamiltonian(self.grid, self.mass, self.terms, self.absorber.rate,
-                                       static_potential=self.hamiltonian_static_potential())
-        self.detectors = [self._detector(i, d) for i, d in enumerate(t["detector"])]
-        self.fft_backend = fft or ev.get("fft", "auto")
-        self.threads = threads or ev.get("threads")
-        self.scheme = propagator_class(ev["scheme"])
-        self.scheme.check_supported(self.hamiltonian, self.absorber, self.grid)
-
-    # -- pieces ----------------------------------------------------------------
-    def _packet_atomic(self, table, name="packet") -> dict:
-        kind = table["kind"]
-        p = to_atomic(table, PACKET_SCHEMAS[kind], self.units, name, self.grid.ndim)
-        if kind == "superposition":
-            p["packets"] = [self._packet_atomic(s, f"{name}.packets.{j}") for j, s in enumerate(table["packets"])]
-        if kind == "eigenstate" and table.get("potential") is not None:
-            # the trap's own terms, named under the packet in messages
-            p["trap_terms"] = [self._term(i, tab, f"{name}.potential") for i, tab in enumerate(table["potential"])]
-        return p
-
-    def energy_window(self, axis: int, face: str) -> tuple[float, float]:
-        """Kinetic energies (hartree) normal to ``face`` that its absorbing
-        layer must take over the run (:func:`wavesweep.adequacy.dynamics`:
-        the packet's momenta shifted by the potential drop to the layer,
-        widened by what classical trajectories under V(r, t) bring there,
-        by diffraction where V couples the axes and by electrons a field
-        frees, floored where the wavelength reaches the layer thickness)."""
-        return dynamics(self).windows[face]
-
-    def _absorber(self, table) -> Absorber:
-        kind = table["kind"]
-        if kind == "none":
-            return Absorber(self.grid, "none")
-        u = self.units
-        th = u.to_atomic(table["thickness"], "length", "absorber.thickness")
-        faces = table.get("faces")
-        if kind == "cap":
-            if table.get("strength") is None:
-                self._tune_cap(table, th, faces)
-            elif table.get("power") is None:
-                table["power"] = 2.0   # a given strength with no exponent: quadratic
-            raw = table["strength"]
-            if isinstance(raw, dict):
-                strength_au = {f: u.to_atomic(v, "energy", f"absorber.strength.{f}") for f, v in raw.items()}
-            elif isinstance(raw, list):
-                strength_au = [u.to_atomic(v, "energy", f"absorber.strength.{i}") for i, v in enumerate(raw)]
-            else:
-                strength_au = u.to_atomic(raw, "energy", "absorber.strength")
-            return Absorber(self.grid, "cap", th, faces, strength=strength_au, power=table["power"])
-        return Absorber(self.grid, "mask", th, faces, dt=self.dt, mask_exponent=table["mask_exponent"])
-
-    # Exponents tried when absorber.power is not given: 2 is best for layers
-    # of about one wavelength, 3 from a few wavelengths on (measured worst
-    # return at 0.5..2 hartree, m = 1: 10 bohr 7e-6 vs 3e-5; 20 bohr 5e-7 vs
-    # 1e-8; 40 bohr 1e-8 vs 5e-11).
-    CAP_POWERS = (2.0, 3.0)
-
-    def _tune_cap(self, table, th, faces) -> None:
-        """Choose the CAP exponent (unless given) and one strength per face,
-        tuned to the kinetic energies that arrive there (a packet fast along x
-        and spreading slowly along y, or one running down a step towards x+,
-        needs different layers); both are written into the resolved job, so a
-        rerun uses the same layers.  On a periodic axis the figure of merit is
-        the reflection plus the one-way transmission (what passes wraps round
-        into the opposite layer); on a box axis the return with the wall."""
-        from .absorbers.layers import face_names
-        u = self.units
-        faces = list(faces) if faces else face_names(self.grid)
-        powers = (table["power"],) if table.get("power") is not None else self.CAP_POWERS
-        best = None
-        for power in powers:
-            tuned, tuning = {}, {}
-            for face in faces:
-                i = self.grid.axis_index(face[:-1])
-                e_min, e_max = self.energy_window(i, face)
-                periodic = self.grid.axes[i].boundary == "periodic"
-                s_au, worst = tune_cap_strength(th, self.mass, e_min, e_max, power, periodic=periodic)
-                tuning[face] = {"e_min": e_min, "e_max": e_max, "worst_return": worst,
-                                "periodic": periodic}
-                tuned[face] = float(f"{u.to_job(s_au, 'energy'):.12g}")
-            score = max(t["worst_return"] for t in tuning.values())
-            if best is None or score < best[0]:
-                best = (score, power, tuned, tuning)
-        _, power, tuned, self.cap_tuning = best
-        table["power"] = power
-        table["strength"] = tuned
-
-    def _detector(self, i, d) -> Detector:
-        axis = next(a for a in self.grid.names if d.get(a) is not None)
-        return Detector(d["name"], self.grid.axis_index(axis),
-                        self.units.to_atomic(d[axis], "length", f"detector.{i}.{axis}"))
-
-    def make_transform(self):
-        """The propagator's transform.  Only split-operator steps work in the
-        planned in-place buffer of a fast backend; the others keep several
-        arrays alive at once and use scipy.fft."""
-        backend = self.fft_backend if getattr(self.scheme, "in_place_transform", False) else "scipy"
-        return make_transform(self.grid, backend, self.dtype, self.threads)
-
-    def make_propagator(self, transform=None):
-        transform = transform if transform is not None else self.make_transform()
-        _set_kernel_threads(transform.threads)
-        return self.scheme(self.hamiltonian, self.dt, transform, self.absorber, self.dtype)
-
-    def make_observer(self):
-        """Observables use a transform of their own (same backend and
-        precision as the run's): they must never touch the propagator's
-        buffer, which holds psi."""
-        return Observer(self.grid, self.mass, make_transform(self.grid, self.fft_backend, self.dtype, self.threads),
-                        self.detectors, self.psi0)
-
-    def unit_labels(self) -> dict:
-        u = self.units
-        return {"length": u.unit_label("length"), "time": u.unit_label("time"),
-                "energy": u.unit_label("energy"), "momentum": u.unit_label("momentum"),
-                "density": f"{u.unit_label('length')}-{self.grid.ndim}",
-                "flux": f"{u.unit_label('time')}-1"}
 
 
 class Simulation:
@@ -254,8 +46,8 @@ class Simulation:
     """
 
     def __init__(self, job: Job, fft: str | None = None, threads: int | None = None):
-        self.job = job
         self.setup = Setup(job, fft, threads)
+        self.job = self.setup.job     # the complete job (a tuned CAP written in)
 
     def output_path(self, outdir) -> Path:
         """``OUTDIR/NAME-RUNID.nc``: runs of other physics (another --set, a
@@ -294,7 +86,7 @@ class Simulation:
         (a RunFailed): the partial file is removed, the last checkpoint kept."""
         s = self.setup
         path = Path(path) if path else self.output_path(outdir)
-        book = self._open(path, checkpoint)
+        book = self.begin(path, checkpoint)
         if book is None:
             raise ResultExists(path)
         bar = None
@@ -307,18 +99,18 @@ class Simulation:
             prop.steps_done = book.steps
             prop.absorbed[:] = book.absorbed
             done = start = int(prop.steps_done)
-            bar = _progress(s.total_steps, progress, self.job.name)
+            bar = progress_bar(s.total_steps, progress, self.job.name)
             if bar is not None and done:
                 bar.update(done)
             if book.fresh:
-                self._observe(book, observer.measure(psi, s.hamiltonian.potential(prop.t)), prop.t, prop.absorbed)
-                self._snapshot(book.writer, 0.0, psi)
+                self.observe(book, observer.measure(psi, s.hamiltonian.potential(prop.t)), prop.t, prop.absorbed)
+                self.write_snapshot(book.writer, 0.0, psi)
             while done < s.total_steps:
                 n = min(s.sample_steps, s.total_steps - done)
                 psi = prop.step(psi, n)
                 done += n
                 values = observer.measure(psi, s.hamiltonian.potential(prop.t))
-                self._record(book, values, prop.t, prop.absorbed, psi, done)
+                self.record_sample(book, values, prop.t, prop.absorbed, psi, done)
                 if bar is not None:
                     bar.update(n)
                 if on_sample is not None:
@@ -326,14 +118,14 @@ class Simulation:
                 if done >= s.total_steps:
                     break
                 if should_stop is not None and should_stop():
-                    saved = self._checkpoint(book, done, prop.absorbed, psi, reopen=False) \
+                    saved = self.save_checkpoint(book, done, prop.absorbed, psi, reopen=False) \
                         if book.store is not None else None
                     raise RunInterrupted(saved, done)
                 if book.checkpoint_due():
-                    self._checkpoint(book, done, prop.absorbed, psi)
-            out = self._close(book, psi, int(prop.steps_done))
+                    self.save_checkpoint(book, done, prop.absorbed, psi)
+            out = self.finish(book, psi, int(prop.steps_done))
         except BaseException as e:
-            self._abort(book, e)
+            self.abort(book, e)
             raise
         finally:
             if bar is not None:
@@ -342,14 +134,13 @@ class Simulation:
         return out
 
     # -- one run's books (shared with batched runs) -----------------------------
-    def _open(self, path: Path, checkpoint=None) -> "_RunBook | None":
+    def begin(self, path: Path, checkpoint=None) -> "RunBook | None":
         """The run's writer, initial (or resumed) psi, steps and books; None
         when a checkpoint policy finds the finished result already there."""
         s = self.setup
         _check_writable(path.parent)
         if os.path.lexists(path) and not path.is_file():
             # found now, before the run is computed, not when its finished file is renamed into place
-            from .io.paths import file_kind
             raise JobError("--output", f"{str(path)!r}, where this run's result goes, is "
                                        f"{file_kind(os.stat(path).st_mode) if path.exists() else 'a broken link'}; "
                                        "move or remove it, or choose another folder with -o")
@@ -368,13 +159,13 @@ class Simulation:
             attrs["analysis_record_crc32"] = record_checksum(attrs)   # attributes have no HDF5 checksum
             writer = ResultWriter(path, {**self._layout(), "record": record}, attrs)
             # psi0 itself: the propagator's load() copies it into its own array
-            return _RunBook(path, writer, store, checkpoint, s.psi0, 0, np.zeros(n_faces), 0.0, True)
+            return RunBook(path, writer, store, checkpoint, s.psi0, 0, np.zeros(n_faces), 0.0, True)
         writer = ResultWriter.resume(path, self._layout(), resume.result_copy, resume.n_time,
                                      resume.n_snap, attrs=self._attrs())
-        return _RunBook(path, writer, store, checkpoint, np.array(resume.psi, dtype=s.dtype, copy=True),
+        return RunBook(path, writer, store, checkpoint, np.array(resume.psi, dtype=s.dtype, copy=True),
                         int(resume.steps), np.asarray(resume.absorbed, float).copy(), resume.wall_seconds, False)
 
-    def _observe(self, book, values, t_au, absorbed) -> dict:
+    def observe(self, book, values, t_au, absorbed) -> dict:
         """Write one sample (``values`` from the observer, atomic units)."""
         s = self.setup
         conv = book.conv or self._converters()
@@ -391,16 +182,16 @@ class Simulation:
         book.writer.add_sample(t_au / s.units.factor("time"), row)
         return values
 
-    def _record(self, book, values, t_au, absorbed, psi, done) -> None:
+    def record_sample(self, book, values, t_au, absorbed, psi, done) -> None:
         """The sample (and snapshot, when due) after ``done`` steps; raises
         RunFailed when the books say the state is broken."""
         s = self.setup
-        values = self._observe(book, values, t_au, absorbed)
+        values = self.observe(book, values, t_au, absorbed)
         self._health(values, absorbed, t_au, done)
         if done % s.snapshot_steps == 0:
-            self._snapshot(book.writer, t_au / s.units.factor("time"), psi)
+            self.write_snapshot(book.writer, t_au / s.units.factor("time"), psi)
 
-    def _close(self, book, psi, steps: int) -> Path:
+    def finish(self, book, psi, steps: int) -> Path:
         """Final state, run attributes, the file in place; the checkpoint gone."""
         s = self.setup
         if s.job.table["record"]["final_state"]:
@@ -414,7 +205,7 @@ class Simulation:
             book.store.discard()
         return out
 
-    def _abort(self, book, exc: BaseException) -> None:
+    def abort(self, book, exc: BaseException) -> None:
         """The partial result goes; a failed or finished run keeps no
         checkpoint (a run stopped by a full disk keeps it: it resumes)."""
         book.writer.abort()
@@ -431,7 +222,7 @@ class Simulation:
         period = s.snapshot_steps // math.gcd(s.sample_steps, s.snapshot_steps)
         return k + 1, 1 + k // period
 
-    def _checkpoint(self, book, steps: int, absorbed, psi, reopen: bool = True) -> Path:
+    def save_checkpoint(self, book, steps: int, absorbed, psi, reopen: bool = True) -> Path:
         writer = book.writer
         n_time, n_snap = writer.position
         state = CheckpointState(run_id=self.job.run_id, steps=int(steps),
@@ -500,7 +291,7 @@ class Simulation:
             # split-operator steps renormalise single-precision rounding one
             # kick later (the error stays ~1e-7); the other schemes round
             # to float32 after each step, which drifts ~2e-8 per step
-            renormalised = getattr(self.setup.scheme, "renormalises_single", False)
+            renormalised = self.setup.scheme.renormalises_single
             tol = 1e-5 if renormalised else max(1e-3, 5e-8 * step)
             if abs(total - 1) > tol:
                 raise RunFailed(f"single-precision rounding moved the total probability to {total:.6g} "
@@ -514,7 +305,7 @@ class Simulation:
                             "although every absorbed part is booked: the scheme is unstable for "
                             "this dt", step, t)
 
-    def _snapshot(self, writer, t_job: float, psi) -> None:
+    def write_snapshot(self, writer, t_job: float, psi) -> None:
         """A density frame, and psi itself when record.snapshot_psi asks for it."""
         amp = None
         if self.job.table["record"].get("snapshot_psi"):
@@ -524,7 +315,6 @@ class Simulation:
     def _density(self, psi) -> np.ndarray:
         """|psi|^2 in job units, float32 as the result file stores it (a
         quarter of the bytes of psi in double, no other temporary)."""
-        from .kernels import density_of
         return density_of(psi, self.setup.units.factor("length") ** self.setup.grid.ndim, np.float32)
 
     def _layout(self) -> dict:
@@ -574,7 +364,7 @@ class Simulation:
         }
 
 
-class _RunBook:
+class RunBook:
     """What one run carries through its loop: the writer, the checkpoint
     store and policy, psi and books to start from, and the wall clock."""
 
@@ -598,12 +388,6 @@ class _RunBook:
                 and _time.perf_counter() - self.last_checkpoint >= self.policy.every_seconds)
 
 
-def _set_kernel_threads(n: int) -> None:
-    """numba's parallel kernels use as many threads as the transforms."""
-    import numba
-    numba.set_num_threads(max(1, min(int(n), numba.config.NUMBA_NUM_THREADS)))
-
-
 def _check_writable(folder: Path) -> None:
     try:
         folder.mkdir(parents=True, exist_ok=True)
@@ -613,10 +397,10 @@ def _check_writable(folder: Path) -> None:
         raise JobError("--output", f"{str(folder)!r} is not writable; choose another folder with -o")
 
 
-def _progress(total, enabled, name):
+def progress_bar(total, enabled, name):
     if not enabled:
         return None
-    from tqdm import tqdm
+    from tqdm import tqdm  # lazy: only runs that show progress
     tty = sys.stderr.isatty()
     # on a terminal: live bar after 2 s; in a log file: a line every 30 s at most
     return tqdm(total=total, unit="step", desc=name, file=sys.stderr, delay=2.0,
@@ -626,6 +410,5 @@ def _progress(total, enabled, name):
 def run_job(job, outdir=".", overrides=(), progress=True, **kwargs) -> Path:
     """Run a job (a path, a dict or a :class:`Job`) and return the result path."""
     if not isinstance(job, Job):
-        from .jobfile import job_from_dict
         job = load_job(job, overrides) if isinstance(job, (str, Path)) else job_from_dict(job, overrides)
     return Simulation(job, **kwargs).run(outdir, progress=progress)

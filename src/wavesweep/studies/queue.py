@@ -203,7 +203,7 @@ def check_result(path, run_id: str) -> str | None:
     path = Path(path)
     if not path.exists():
         return "result file missing"
-    import netCDF4
+    import netCDF4   # lazy: only checking a result's completeness reads netCDF
 
     try:
         with netCDF4.Dataset(path, "r") as ds:
@@ -760,7 +760,7 @@ class Queue:
 
     # -------------------------------------------------------------- submit
     def submit(self, study) -> dict:
-        """Queue every run of ``study`` (a :class:`~wavesweep.batch.sweep.Study`)
+        """Queue every run of ``study`` (a :class:`~wavesweep.study.Study`)
         not yet in it.  Returns ``{"added", "existing", "reused"}`` counts.
 
         Idempotent: runs already in the study, whatever their state, are

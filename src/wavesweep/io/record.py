@@ -6,7 +6,8 @@ reads a result file, never a set-up rebuilt from the file's ``job``
 attribute: that rebuild allocates what the job names (a 173 KB file naming a
 512^3 grid took 5.4 GB) and opens the files the job names (a FIFO hangs).
 So the run writes, once, the few things analysis needs
-(:func:`analysis_record`, written by :class:`~wavesweep.io.recorder.ResultWriter`):
+(:func:`wavesweep.setup.analysis_record`, written by
+:class:`~wavesweep.io.recorder.ResultWriter`):
 
 - the grid (``grid_axes`` and ``grid_<axis>_min/max/points/boundary``
   attributes), the absorber's ``absorber_thickness``, whether V depends on
@@ -32,7 +33,7 @@ So the run writes, once, the few things analysis needs
 
 :func:`read_record` gives a :class:`RecordedRun` (atomic units) from a
 dataset.  A file written before the record existed is rebuilt from its job
-only when that is bounded: its memory judged from the job's grid shape
+(:func:`wavesweep.analysis.recorded.run_record`) only when that is bounded: its memory judged from the job's grid shape
 before anything is built (refused, naming the file, above the machine's
 memory), and a file the job names must be a regular file.
 """
@@ -41,14 +42,15 @@ from __future__ import annotations
 import json
 import math
 from dataclasses import dataclass, field
+import zlib
 
 import numpy as np
 
-from .errors import JobError
-from .grid import Axis, Grid
-from .marginals import free_space_marginals
+from ..errors import JobError
+from ..grid import Axis, Grid
 
-__all__ = ["RecordedRun", "analysis_record", "read_record", "RECORD_VERSION"]
+__all__ = ["RecordedRun", "RecordedDetector", "RecordedAbsorber", "RecordedLayer", "read_record", "has_record",
+           "record_checksum", "result_name", "RECORD_VERSION", "LANCZOS_MAX_POINTS"]
 
 # Bumped when the record's content changes; files without it are rebuilt (bounded).
 RECORD_VERSION = 1
@@ -64,7 +66,6 @@ def record_checksum(attrs) -> int:
     """CRC-32 of the attributes the record is read from (CHECKED_ATTRS and
     the grid_<axis>_* ones), each as written: a flipped bit in one of them
     is damage, never a silently different set-up."""
-    import zlib
 
     keys = sorted(k for k in attrs if k in CHECKED_ATTRS or k.startswith("grid_"))
     parts = []
@@ -133,96 +134,28 @@ class RecordedRun:
         rho = self.marginals[axis][0]
         return float(np.sum(rho * self.grid.axes[axis].coordinates) / np.sum(rho))
 
-    @classmethod
-    def from_setup(cls, setup, lanczos: bool = False) -> "RecordedRun":
-        """The record of a set-up in memory (what the run writes), without a
-        file; ``lanczos``: with the recurrence of psi0 (up to 240
-        applications of H)."""
-        rec = analysis_record(setup, warnings=False, lanczos=lanczos)
-        lanczos = None
-        if rec["lanczos"] is not None:
-            lanczos = tuple(rec["lanczos"])
-        ab = setup.absorber
-        return cls(grid=setup.grid, mass=float(setup.mass),
-                   detectors=[RecordedDetector(d.name, d.axis, float(d.position)) for d in setup.detectors],
-                   absorber=RecordedAbsorber(ab.kind, float(ab.thickness),
-                                             [RecordedLayer(layer.name, layer.axis) for layer in ab.layers]),
-                   time_dependent=bool(setup.hamiltonian.time_dependent),
-                   marginals={i: m for i, m in enumerate(rec["marginals_au"])}, dt=float(setup.dt),
-                   psi0=setup.psi0 if setup.grid.ndim == 1 else None,
-                   static_potential=setup.hamiltonian.static_potential if setup.grid.ndim == 1 else None,
-                   warnings=None, lanczos=lanczos)
-
-
-def as_record(obj) -> RecordedRun:
-    """A RecordedRun as it is, a Setup recorded in memory."""
-    return obj if isinstance(obj, RecordedRun) else RecordedRun.from_setup(obj)
-
-
-# -- at run time ----------------------------------------------------------------------
-def analysis_record(setup, warnings: bool = True, lanczos: bool = True) -> dict:
-    """What the run writes for analysis (see the module notes), from its set-up:
-    ``attrs`` (global attributes, job units), ``marginals`` (per axis name:
-    rho, k in 1/length job units, w), ``marginals_au`` (the same in atomic
-    units, by axis index), ``initial_psi`` (1D, job units) and
-    ``potential_full`` (1D, job energy units) or None, and ``lanczos``
-    (alphas, betas, exhausted, spectrum min, max; hartree) or None.
-    ``warnings=False`` leaves out the adequacy warnings (they need the
-    classical trajectories, which a caller may not want to pay for);
-    ``lanczos=False`` the recurrence."""
-    u, grid = setup.units, setup.grid
-    lf, ef = u.factor("length"), u.factor("energy")
-    attrs = {"analysis_record": RECORD_VERSION, "grid_axes": " ".join(grid.names),
-             "absorber_thickness": float(setup.absorber.thickness / lf),
-             "time_dependent": int(bool(setup.hamiltonian.time_dependent))}
-    for a in grid.axes:
-        attrs.update({f"grid_{a.name}_min": float(a.min / lf), f"grid_{a.name}_max": float(a.max / lf),
-                      f"grid_{a.name}_points": int(a.points), f"grid_{a.name}_boundary": a.boundary})
-    if warnings:
-        from .adequacy import run_warnings
-        attrs["adequacy_warnings"] = json.dumps(run_warnings(setup))
-    marginals_au = [free_space_marginals(setup.psi0, grid, i) for i in range(grid.ndim)]
-    marginals = {a.name: (rho, k * lf, w) for a, (rho, k, w) in zip(grid.axes, marginals_au)}
-    out = {"attrs": attrs, "marginals": marginals, "marginals_au": marginals_au, "energy_factor": ef,
-           "initial_psi": None, "potential_full": None, "lanczos": None}
-    if grid.ndim == 1:
-        out["initial_psi"] = np.asarray(setup.psi0, np.complex128) * math.sqrt(lf)
-        out["potential_full"] = np.asarray(setup.hamiltonian.static_potential, float) / ef
-    if lanczos and not setup.hamiltonian.time_dependent and grid.size <= LANCZOS_MAX_POINTS:
-        # lazy: the run needs it once, at its start
-        from .eigen import (BAND_CHUNK, BAND_STEPS, DEFAULT_MIN_WEIGHT, DENSE_MAX_POINTS, band_window,
-                                       lanczos_recurrence)
-        resolution, width = band_window(setup.total_steps * setup.dt, setup.sample_steps * setup.dt)
-        # a bounded share of the run: at most a tenth of its steps (each costs about two of them), and
-        # the ground level only where it is a dense eigh of a few thousand points
-        steps = min(BAND_STEPS, max(2 * BAND_CHUNK, setup.total_steps // 10))
-        recorded = lanczos_recurrence(setup.hamiltonian, setup.psi0, DEFAULT_MIN_WEIGHT, resolution, width,
-                                      max_steps=steps, ground=grid.size <= DENSE_MAX_POINTS)
-        out["lanczos"] = recorded
-        alphas, betas, exhausted, lo, hi, ground = recorded
-        attrs.update({"lanczos_exhausted": int(exhausted), "spectrum_min": float(lo / ef),
-                      "spectrum_max": float(hi / ef)})
-        if ground is not None:
-            attrs["ground_energy"] = float(ground / ef)
-    return out
-
-
 # -- at analysis time -----------------------------------------------------------------
-def read_record(ds, field: str = "RUN.nc", lanczos: bool = False) -> RecordedRun:
-    """The run's record from an open result (atomic units).  A file without
-    one (written before it existed) is rebuilt from its job when that is
-    bounded (see the module notes; ``lanczos``: with the recurrence of psi0,
-    which only ``levels --from`` needs); JobError(field) otherwise."""
+def has_record(ds) -> bool:
+    """Whether an open result holds the analysis record (files written
+    before it existed do not: :func:`wavesweep.analysis.recorded.run_record`
+    rebuilds theirs, bounded)."""
+    return int(ds.attrs.get("analysis_record", 0) or 0) >= 1
+
+
+def read_record(ds, field: str = "RUN.nc") -> RecordedRun:
+    """The run's record from an open result that holds one (atomic units);
+    JobError(field) where it is missing, fails its checksum or is incomplete."""
     a = ds.attrs
-    if int(a.get("analysis_record", 0) or 0) < 1:
-        return _rebuilt(ds, field, lanczos)
+    if not has_record(ds):
+        raise JobError(field, f"{result_name(ds)} was written before results kept what analysis needs; "
+                              "run the job again")
     if "analysis_record_crc32" not in a or int(a["analysis_record_crc32"]) != record_checksum(a):
-        raise JobError(field, f"{_name(ds)}: the attributes of the run's set-up fail their checksum, the file is "
+        raise JobError(field, f"{result_name(ds)}: the attributes of the run's set-up fail their checksum, the file is "
                               "damaged; run the job again")
     try:
         return _read(ds)
     except (KeyError, ValueError, TypeError) as e:
-        raise JobError(field, f"{_name(ds)}: the analysis record is incomplete or damaged ({e}); "
+        raise JobError(field, f"{result_name(ds)}: the analysis record is incomplete or damaged ({e}); "
                               "run the job again") from None
 
 
@@ -272,44 +205,7 @@ def _read(ds) -> RecordedRun:
                        warnings=warnings, lanczos=lanczos)
 
 
-def _rebuilt(ds, field, lanczos: bool) -> RecordedRun:
-    """An older file's record, from its job rebuilt in memory: the memory a
-    run of that job holds is judged from the grid's shape first (nothing is
-    built above the machine's available memory), and files the job names
-    must be regular files (checked as the job loads)."""
-    import tomllib
-
-    from .adequacy import memory_error, memory_estimate, run_warnings
-    from .jobfile import job_from_dict
-    from .simulation import Setup
-
-    try:
-        table = tomllib.loads(str(ds.attrs["job"]))
-    except tomllib.TOMLDecodeError as e:
-        raise JobError(field, f"{_name(ds)}: the job text stored in the result cannot be read: {e}") from None
-    table.pop("sweep", None)
-    try:
-        job = job_from_dict(table)
-    except JobError as e:
-        raise JobError(field, f"{_name(ds)} was written before results kept what analysis needs, and "
-                              f"its job cannot be rebuilt here ({e}); run the job again") from None
-    need = memory_estimate(job)["estimate_bytes"]
-    points = memory_estimate(job)["points"]
-    too_big = memory_error(need, f"{_name(ds)} was written before results kept what analysis needs: "
-                                 f"rebuilding its set-up ({points:.0f} grid points)", field)
-    if too_big is not None:   # judged from the shape: nothing was allocated
-        raise JobError(field, f"{too_big.message}; or run the job again with this version, whose "
-                              "results keep what analysis needs")
-    try:
-        setup = Setup(job)
-    except JobError as e:
-        raise JobError(field, f"{_name(ds)}: the run's job cannot be rebuilt here ({e}); "
-                              "files it refers to must still exist") from None
-    rec = RecordedRun.from_setup(setup, lanczos=lanczos)
-    rec.warnings = run_warnings(setup)
-    return rec
-
-
-def _name(ds) -> str:
+def result_name(ds) -> str:
+    """The file an open dataset was read from, quoted, for messages."""
     source = getattr(ds, "encoding", {}).get("source")
     return repr(str(source)) if source else "the result"

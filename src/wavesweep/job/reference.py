@@ -2,7 +2,7 @@
 
 Every table of a job file, every potential kind and every packet kind is
 described here from the declarations the validation itself uses: the
-:class:`~wavesweep.schema.Field` schemas in :mod:`wavesweep.jobfile`, the
+:class:`~wavesweep.schema.Field` schemas in :mod:`wavesweep.job`, the
 ``parameters`` and ``formula`` of each registered
 :class:`~wavesweep.potentials.PotentialTerm`, :data:`wavesweep.states.PACKET_SCHEMAS`
 and the unit tables of :mod:`wavesweep.units`.  A new key or kind appears
@@ -20,16 +20,16 @@ import difflib
 import textwrap
 from typing import NamedTuple
 
-from .adequacy import Finding
-from .batch.sweep import MODES, RANGE_KEYS
-from .errors import JobError
-from .jobfile import (ABSORBER, AXIS, DETECTOR, DETECTOR_POSITION, EVOLVE, GRID, PARTICLE, RECORD,
-                      TOP_LEVEL, Job)
-from .potentials import REGISTRY
-from .potentials.library import EDGES
-from .schema import Field
-from .states import PACKET_FORMULAS, PACKET_SCHEMAS
-from .units import KINDS, UNITS
+from ..adequacy import Finding
+from ..errors import JobError
+from ..potentials import REGISTRY
+from ..potentials.library import EDGES
+from ..schema import Field
+from ..states import PACKET_FORMULAS, PACKET_SCHEMAS
+from ..units import KINDS, UNITS
+from .document import Job
+from .schemas import ABSORBER, AXIS, DETECTOR, DETECTOR_POSITION, EVOLVE, GRID, PARTICLE, RECORD, TOP_LEVEL
+from .sweep import MODES
 
 __all__ = ["reference", "render_text", "topics", "physics_defaults", "PhysicsDefault", "default_findings",
            "TABLE_DOCS", "UNIT_KEYS", "SWEEP", "SWEEP_RANGE"]

@@ -25,12 +25,12 @@ import multiprocessing as mp
 import os
 import signal
 import socket
+import sys
 import time
 from dataclasses import replace
 
-import sys
-
 from ...errors import DiskFull
+from ..queue import Queue
 from .base import DISK_FULL, Executor, WorkerSettings, claim_next, execute_batch, thread_environment
 
 __all__ = ["LocalExecutor", "EXIT_DISK_FULL"]
@@ -44,7 +44,6 @@ WAIT_SECONDS = 0.5
 
 
 def _worker_main(root: str, name: str, settings: WorkerSettings, stop, full) -> None:
-    from ..queue import Queue
 
     def request_stop(signum, frame):
         stop.set()
@@ -98,7 +97,6 @@ class LocalExecutor(Executor):
         self.cores = cores or os.cpu_count() or 1
 
     def drain(self) -> dict:
-        from ..queue import Queue
 
         queue = Queue(self.root)
         stale = queue.requeue_stale(self.settings.lease_seconds, self.settings.max_attempts)

@@ -1,0 +1,88 @@
+"""The schemas of a job file's tables: every key, its kind (a unit kind or a
+plain type), its default and its documentation (``wavesweep keys`` prints
+them).  The schemas of potentials and packets live with their kinds
+(:data:`wavesweep.potentials.REGISTRY`, :data:`wavesweep.states.PACKET_SCHEMAS`)."""
+from __future__ import annotations
+
+from ..grid import BOUNDARIES
+from ..propagators import SCHEMES
+from ..schema import Field
+
+FFT_BACKENDS = ("auto", "scipy", "pyfftw")
+# Keys that choose how a run is computed, not what is computed: left out of the run id.
+NOT_PHYSICS = {"evolve": ("fft", "threads")}
+
+TOP_LEVEL = ("title", "units", "particle", "grid", "potential", "packet", "evolve",
+             "absorber", "record", "detector", "sweep")
+
+PARTICLE = {
+    "mass": Field("mass", 1.0, positive=True, physics=True,
+                  doc="particle mass (1 = one job mass unit: the electron mass in atomic units)"),
+    "charge": Field("charge", None, doc="charge q in units of e, e.g. -1 for an electron "
+                                        "(required by a driving field)"),
+}
+AXIS = {
+    "min": Field("length", None, doc="lower end of the axis (required on x, y, z; a radial axis "
+                                     "starts at r = 0: leave it out)"),
+    "max": Field("length", doc="upper end of the axis"),
+    "points": Field("int", positive=True, doc="number of grid points, at least 4; periodic: "
+                                              "dx = (max - min) / points, min on the grid, max not; "
+                                              "box: dx = (max - min) / (points + 1), walls off the grid"),
+    "boundary": Field("str", None, choices=BOUNDARIES, doc="this axis' boundary; default: grid.boundary"),
+}
+# [grid] itself (validated by _grid): its axes are AXIS tables.
+GRID = {
+    "x": Field("table", None, doc="the first Cartesian axis: { min, max, points } (keys below)"),
+    "y": Field("table", None, doc="the second Cartesian axis (2D, 3D)"),
+    "z": Field("table", None, doc="the third Cartesian axis (3D)"),
+    "r": Field("table", None, doc="a radial axis { max, points } instead of x, y, z: u(r) = r R(r), "
+                                  "u(0) = 0"),
+    "boundary": Field("str", "periodic", choices=BOUNDARIES, physics=True,
+                      doc="periodic (FFT: what leaves one side enters the other) or box (hard "
+                          "walls, psi = 0, sine transform); a radial grid is always box"),
+    "l": Field("int", 0, nonnegative=True, physics=True,
+               doc="angular momentum on a radial grid: adds l (l + 1) / (2 m r^2) to V"),
+}
+EVOLVE = {
+    "dt": Field("time", positive=True, doc="time step"),
+    "duration": Field("time", positive=True, doc="total propagation time, a whole number of steps"),
+    "scheme": Field("str", "strang", choices=tuple(SCHEMES),
+                    doc="propagator: strang (2nd-order split-operator), order4 (Yoshida), "
+                        "order4_suzuki, chebyshev (time-independent H), crank_nicolson (1D)"),
+    "precision": Field("str", "double", choices=("double", "single"),
+                       doc="complex128 (double) or complex64 (single) arithmetic"),
+    "fft": Field("str", "auto", choices=FFT_BACKENDS, doc="FFT backend: auto, scipy, pyfftw"),
+    "threads": Field("int", None, positive=True, maximum=4096,
+                     doc="threads of the transforms and kernels (default: WAVESWEEP_THREADS, else "
+                         "chosen by the grid size)"),
+}
+ABSORBER = {
+    "kind": Field("str", "none", choices=("cap", "mask", "none"),
+                  doc="cap: -i W with W = strength (s/thickness)^power, s the depth into the layer; "
+                      "mask: psi times cos(pi s / (2 thickness))^mask_exponent each step; none"),
+    "thickness": Field("length", None, positive=True, doc="layer thickness (required for cap and mask)"),
+    "faces": Field("list", None, doc="faces with a layer, e.g. ['x-', 'x+'] (default: every face; "
+                                     "a radial grid has only 'r+')"),
+    "strength": Field("energy", None, nonnegative=True, per_axis=True,
+                      doc="CAP strength (one per axis allowed); omitted: tuned to the packet"),
+    "power": Field("number", None, positive=True,
+                   doc="CAP exponent; omitted with the strength: the better of 2 and 3"),
+    "mask_exponent": Field("number", 0.125, positive=True, doc="mask: exponent of the cosine profile"),
+}
+RECORD = {
+    "every": Field("time", None, positive=True,
+                   doc="time between scalar samples (default: about 1000 samples, on whole steps)"),
+    "snapshot_every": Field("time", None, positive=True,
+                            doc="time between density snapshots, a multiple of every "
+                                "(default: about 100 snapshots)"),
+    "stride": Field("int", 1, positive=True, doc="snapshots keep every stride-th grid point"),
+    "final_state": Field("bool", True, doc="store the final psi in the result"),
+    # None (not False) by default: absent keys stay out of the run id
+    "snapshot_psi": Field("bool", None, doc="store psi (real and imaginary parts) with each snapshot"),
+}
+DETECTOR = {
+    "name": Field("str", None, doc="the detector's name (default: 'x=<position>')"),
+}
+# The detector's position: one of the grid's axis names as the key.
+DETECTOR_POSITION = Field("length", None, doc="position of the detector plane on this axis "
+                                              "(give exactly one axis)")

@@ -1,0 +1,366 @@
+"""A job's physics in atomic units: the grid, the Hamiltonian, the packet,
+the absorber, the detectors and the propagator, with nothing stepped.
+
+:class:`Model` is the particle, grid, potential and real Hamiltonian alone:
+stationary states (``levels``) need no packet.  :class:`Setup` adds the
+packet, the absorber (tuning a CAP the job leaves open), the detectors and
+the propagator.  :func:`resolve_job` gives the complete job (a tuned CAP
+written in): a new :class:`~wavesweep.job.Job`, the given one unchanged.
+
+The run's analysis record (what analysis reads from a result instead of a
+rebuilt set-up; :mod:`wavesweep.io.record`) is made here from a set-up:
+:func:`analysis_record` (written by the run), :func:`recorded_run` (the
+same in memory), and :func:`rebuilt_record` for a file written before
+results kept it.
+"""
+from __future__ import annotations
+
+import functools
+import json
+import math
+import tomllib
+
+import numpy as np
+
+from .absorbers.layers import Absorber, face_names
+from .absorbers.tuning import cached_cap_strength
+from .adequacy import dynamics, memory_error, memory_estimate, physical_memory_error, representability, run_warnings
+from .eigen import BAND_CHUNK, BAND_STEPS, DEFAULT_MIN_WEIGHT, DENSE_MAX_POINTS, band_window, lanczos_recurrence
+from .errors import JobError
+from .fft import make_transform
+from .grid import Axis, Grid
+from .hamiltonian import Hamiltonian, static_potential_of
+from .io.record import (LANCZOS_MAX_POINTS, RECORD_VERSION, RecordedAbsorber, RecordedDetector, RecordedLayer,
+                        RecordedRun, result_name)
+from .job import Job, grid_axes, job_from_dict
+from .marginals import free_space_marginals
+from .observables import Detector, Observer
+from .potentials import PotentialContext, make_term
+from .propagators import propagator_class
+from .schema import to_atomic
+from .states import PACKET_SCHEMAS, build_state
+
+__all__ = ["Model", "Setup", "resolve_job", "analysis_record", "recorded_run", "rebuilt_record",
+           "set_kernel_threads", "AXIS_LONG"]
+
+AXIS_LONG = {"x": "position x", "y": "position y", "z": "position z", "r": "radius r"}
+
+
+def resolve_job(job: Job) -> Job:
+    """The complete job: ``job`` itself when nothing is left for the physics
+    to choose, else a new Job with the CAP's strength (one per face) and
+    exponent tuned to what arrives at each layer (see
+    :meth:`Setup._tuned_cap`; the tuning is cached in memory and on disk).
+    ``job`` is not changed.  Run ids and job TOML are those of the
+    complete job, so the id is the same before and after a run, and for a
+    rerun of the job text stored in the result."""
+    if not job.needs_tuning:
+        return job
+    # the tuning builds the set-up (psi0, V): judged from the grid's shape
+    # first, a grid no machine holds is one line, not an allocation
+    error = physical_memory_error(memory_estimate(job)["estimate_bytes"])
+    if error is not None:
+        raise error
+    return Setup(job).job
+
+
+class Model:
+    """The job's particle, grid and potential terms in atomic units, and the
+    real Hamiltonian they make: what stationary states need, and nothing of
+    the run (no packet, absorber, detectors or time stepping), so nothing
+    about the packet can stop it.
+
+    ``grid`` replaces the job's grid (the terms are evaluated on it): the
+    same physics on another grid, as convergence studies need.
+    ``hamiltonian`` is T + V0 + the time-dependent terms, without the
+    absorber (:class:`Setup` replaces it by the run's, with the absorber)."""
+
+    def __init__(self, job: Job, grid: Grid | None = None):
+        self.job = job
+        t, u = job.table, job.units
+        self.units = u
+        self.mass = u.to_atomic(t["particle"]["mass"], "mass", "particle.mass")
+        charge = t["particle"].get("charge")
+        self.charge = None if charge is None else u.to_atomic(charge, "charge", "particle.charge")
+        self.grid = self._grid(t["grid"]) if grid is None else grid
+        self.terms = [self._term(i, p) for i, p in enumerate(t["potential"])]
+
+    @functools.cached_property
+    def hamiltonian(self) -> Hamiltonian:
+        return Hamiltonian(self.grid, self.mass, self.terms, static_potential=self.hamiltonian_static_potential())
+
+    def _grid(self, g) -> Grid:
+        u, axes = self.units, []
+        for name in grid_axes(g):
+            a = g[name]
+            axes.append(Axis(name, u.to_atomic(a["min"], "length"), u.to_atomic(a["max"], "length"),
+                             int(a["points"]), a.get("boundary") or g["boundary"]))
+        return Grid(tuple(axes), radial="r" in g, angular_momentum=int(g.get("l", 0)))
+
+    def _term(self, i, table, prefix="potential"):
+        """A potential term from its table; ``prefix.i`` names it in messages."""
+        ctx = PotentialContext(self.grid, self.mass, self.charge, self.units, f"{prefix}.{i}")
+        return make_term(table, ctx)
+
+    def hamiltonian_static_potential(self) -> np.ndarray:
+        """Static V on the grid (hartree), before the Hamiltonian exists."""
+        if getattr(self, "_v_static", None) is None:
+            self._v_static = static_potential_of(self.grid, self.mass, self.terms)
+        return self._v_static
+
+
+class Setup(Model):
+    """Atomic-unit objects of a job (no time stepping)."""
+
+    def __init__(self, job: Job, fft: str | None = None, threads: int | None = None):
+        super().__init__(job)
+        t, u = job.table, job.units
+        ev = t["evolve"]
+        self.dt = u.to_atomic(ev["dt"], "time", "evolve.dt")
+        self.duration = u.to_atomic(ev["duration"], "time", "evolve.duration")
+        self.total_steps = round(self.duration / self.dt)
+        rec = t["record"]
+        self.sample_steps = round(u.to_atomic(rec["every"], "time") / self.dt)
+        self.snapshot_steps = round(u.to_atomic(rec["snapshot_every"], "time") / self.dt)
+        self.dtype = np.complex64 if ev["precision"] == "single" else np.complex128
+        self.packet = self._packet_atomic(t["packet"])
+        representability(self)  # before the absorber's tuning squares the packet's momenta
+        self.psi0 = build_state(self.packet, self.grid, self.mass,
+                                length_unit=(u.factor("length"), u.unit_label("length")), terms=self.terms)
+        if self.dtype == np.complex64:   # single precision end to end (half the bytes)
+            self.psi0 = self.psi0.astype(np.complex64)
+        self.cap_tuning = None   # per face, when the CAP is tuned here: e_min, e_max (hartree), worst_return
+        absorber = self._resolved_absorber(t["absorber"])
+        if absorber is not t["absorber"]:   # the complete job: a new Job, the given one unchanged
+            self.job = job.with_absorber(absorber)
+        self.absorber = self._absorber(absorber)
+        self.hamiltonian = Hamiltonian(self.grid, self.mass, self.terms, self.absorber.rate,
+                                       static_potential=self.hamiltonian_static_potential())
+        self.detectors = [self._detector(i, d) for i, d in enumerate(t["detector"])]
+        self.fft_backend = fft or ev.get("fft", "auto")
+        self.threads = threads or ev.get("threads")
+        self.scheme = propagator_class(ev["scheme"])
+        self.scheme.check_supported(self.hamiltonian, self.absorber, self.grid)
+
+    # -- pieces ----------------------------------------------------------------
+    def _packet_atomic(self, table, name="packet") -> dict:
+        kind = table["kind"]
+        p = to_atomic(table, PACKET_SCHEMAS[kind], self.units, name, self.grid.ndim)
+        if kind == "superposition":
+            p["packets"] = [self._packet_atomic(s, f"{name}.packets.{j}") for j, s in enumerate(table["packets"])]
+        if kind == "eigenstate" and table.get("potential") is not None:
+            # the trap's own terms, named under the packet in messages
+            p["trap_terms"] = [self._term(i, tab, f"{name}.potential") for i, tab in enumerate(table["potential"])]
+        return p
+
+    def energy_window(self, axis: int, face: str) -> tuple[float, float]:
+        """Kinetic energies (hartree) normal to ``face`` that its absorbing
+        layer must take over the run (:func:`wavesweep.adequacy.dynamics`:
+        the packet's momenta shifted by the potential drop to the layer,
+        widened by what classical trajectories under V(r, t) bring there,
+        by diffraction where V couples the axes and by electrons a field
+        frees, floored where the wavelength reaches the layer thickness)."""
+        return dynamics(self).windows[face]
+
+    def _resolved_absorber(self, table: dict) -> dict:
+        """The absorber table with what the physics chooses filled in: a new
+        dict where something was open (the CAP's strength, tuned with its
+        exponent unless that is given; a given strength without an exponent
+        is quadratic), ``table`` itself otherwise."""
+        if table["kind"] != "cap":
+            return table
+        if table.get("strength") is None:
+            th = self.units.to_atomic(table["thickness"], "length", "absorber.thickness")
+            table, self.cap_tuning = self._tuned_cap(table, th, table.get("faces"))
+            return table
+        if table.get("power") is None:
+            return {**table, "power": 2.0}
+        return table
+
+    def _absorber(self, table) -> Absorber:
+        kind = table["kind"]
+        if kind == "none":
+            return Absorber(self.grid, "none")
+        u = self.units
+        th = u.to_atomic(table["thickness"], "length", "absorber.thickness")
+        faces = table.get("faces")
+        if kind == "cap":
+            raw = table["strength"]
+            if isinstance(raw, dict):
+                strength_au = {f: u.to_atomic(v, "energy", f"absorber.strength.{f}") for f, v in raw.items()}
+            elif isinstance(raw, list):
+                strength_au = [u.to_atomic(v, "energy", f"absorber.strength.{i}") for i, v in enumerate(raw)]
+            else:
+                strength_au = u.to_atomic(raw, "energy", "absorber.strength")
+            return Absorber(self.grid, "cap", th, faces, strength=strength_au, power=table["power"])
+        return Absorber(self.grid, "mask", th, faces, dt=self.dt, mask_exponent=table["mask_exponent"])
+
+    # Exponents tried when absorber.power is not given: 2 is best for layers
+    # of about one wavelength, 3 from a few wavelengths on (measured worst
+    # return at 0.5..2 hartree, m = 1: 10 bohr 7e-6 vs 3e-5; 20 bohr 5e-7 vs
+    # 1e-8; 40 bohr 1e-8 vs 5e-11).
+    CAP_POWERS = (2.0, 3.0)
+
+    def _tuned_cap(self, table, th, faces) -> tuple[dict, dict]:
+        """``(table, tuning)``: ``table`` (a copy) with the CAP exponent (unless given) and one
+        strength per face, tuned to the kinetic energies that arrive there (a
+        packet fast along x and spreading slowly along y, or one running down
+        a step towards x+, needs different layers): the resolved job carries
+        both, so a rerun uses the same layers.  On a periodic axis the figure of merit is
+        the reflection plus the one-way transmission (what passes wraps round
+        into the opposite layer); on a box axis the return with the wall."""
+        u = self.units
+        faces = list(faces) if faces else face_names(self.grid)
+        powers = (table["power"],) if table.get("power") is not None else self.CAP_POWERS
+        best = None
+        for power in powers:
+            tuned, tuning = {}, {}
+            for face in faces:
+                i = self.grid.axis_index(face[:-1])
+                e_min, e_max = self.energy_window(i, face)
+                periodic = self.grid.axes[i].boundary == "periodic"
+                s_au, worst = cached_cap_strength(th, self.mass, e_min, e_max, power, periodic=periodic)
+                tuning[face] = {"e_min": e_min, "e_max": e_max, "worst_return": worst,
+                                "periodic": periodic}
+                tuned[face] = float(f"{u.to_job(s_au, 'energy'):.12g}")
+            score = max(t["worst_return"] for t in tuning.values())
+            if best is None or score < best[0]:
+                best = (score, power, tuned, tuning)
+        _, power, tuned, tuning = best
+        return {**table, "power": power, "strength": tuned}, tuning
+
+    def _detector(self, i, d) -> Detector:
+        axis = next(a for a in self.grid.names if d.get(a) is not None)
+        return Detector(d["name"], self.grid.axis_index(axis),
+                        self.units.to_atomic(d[axis], "length", f"detector.{i}.{axis}"))
+
+    def propagator_transform(self):
+        """The propagator's transform.  Only split-operator steps work in the
+        planned in-place buffer of a fast backend; the others keep several
+        arrays alive at once and use scipy.fft."""
+        backend = self.fft_backend if self.scheme.in_place_transform else "scipy"
+        return make_transform(self.grid, backend, self.dtype, self.threads)
+
+    def make_propagator(self, transform=None):
+        transform = transform if transform is not None else self.propagator_transform()
+        set_kernel_threads(transform.threads)
+        return self.scheme(self.hamiltonian, self.dt, transform, self.absorber, self.dtype)
+
+    def make_observer(self):
+        """Observables use a transform of their own (same backend and
+        precision as the run's): they must never touch the propagator's
+        buffer, which holds psi."""
+        return Observer(self.grid, self.mass, make_transform(self.grid, self.fft_backend, self.dtype, self.threads),
+                        self.detectors, self.psi0)
+
+    def unit_labels(self) -> dict:
+        u = self.units
+        return {"length": u.unit_label("length"), "time": u.unit_label("time"),
+                "energy": u.unit_label("energy"), "momentum": u.unit_label("momentum"),
+                "density": f"{u.unit_label('length')}-{self.grid.ndim}",
+                "flux": f"{u.unit_label('time')}-1"}
+
+    def recorded(self, lanczos: bool = False) -> RecordedRun:
+        """This set-up as analysis reads a result's record (:func:`recorded_run`)."""
+        return recorded_run(self, lanczos=lanczos)
+
+
+def set_kernel_threads(n: int) -> None:
+    """numba's parallel kernels use as many threads as the transforms."""
+    import numba  # lazy: the kernels' own import loads it; this only sets its threads
+    numba.set_num_threads(max(1, min(int(n), numba.config.NUMBA_NUM_THREADS)))
+
+
+# -- the analysis record -------------------------------------------------------------
+def analysis_record(setup, warnings: bool = True, lanczos: bool = True) -> dict:
+    """What the run writes for analysis (see the module notes), from its set-up:
+    ``attrs`` (global attributes, job units), ``marginals`` (per axis name:
+    rho, k in 1/length job units, w), ``marginals_au`` (the same in atomic
+    units, by axis index), ``initial_psi`` (1D, job units) and
+    ``potential_full`` (1D, job energy units) or None, and ``lanczos``
+    (alphas, betas, exhausted, spectrum min, max; hartree) or None.
+    ``warnings=False`` leaves out the adequacy warnings (they need the
+    classical trajectories, which a caller may not want to pay for);
+    ``lanczos=False`` the recurrence."""
+    u, grid = setup.units, setup.grid
+    lf, ef = u.factor("length"), u.factor("energy")
+    attrs = {"analysis_record": RECORD_VERSION, "grid_axes": " ".join(grid.names),
+             "absorber_thickness": float(setup.absorber.thickness / lf),
+             "time_dependent": int(bool(setup.hamiltonian.time_dependent))}
+    for a in grid.axes:
+        attrs.update({f"grid_{a.name}_min": float(a.min / lf), f"grid_{a.name}_max": float(a.max / lf),
+                      f"grid_{a.name}_points": int(a.points), f"grid_{a.name}_boundary": a.boundary})
+    if warnings:
+        attrs["adequacy_warnings"] = json.dumps(run_warnings(setup))
+    marginals_au = [free_space_marginals(setup.psi0, grid, i) for i in range(grid.ndim)]
+    marginals = {a.name: (rho, k * lf, w) for a, (rho, k, w) in zip(grid.axes, marginals_au)}
+    out = {"attrs": attrs, "marginals": marginals, "marginals_au": marginals_au, "energy_factor": ef,
+           "initial_psi": None, "potential_full": None, "lanczos": None}
+    if grid.ndim == 1:
+        out["initial_psi"] = np.asarray(setup.psi0, np.complex128) * math.sqrt(lf)
+        out["potential_full"] = np.asarray(setup.hamiltonian.static_potential, float) / ef
+    if lanczos and not setup.hamiltonian.time_dependent and grid.size <= LANCZOS_MAX_POINTS:
+        resolution, width = band_window(setup.total_steps * setup.dt, setup.sample_steps * setup.dt)
+        # a bounded share of the run: at most a tenth of its steps (each costs about two of them), and
+        # the ground level only where it is a dense eigh of a few thousand points
+        steps = min(BAND_STEPS, max(2 * BAND_CHUNK, setup.total_steps // 10))
+        recorded = lanczos_recurrence(setup.hamiltonian, setup.psi0, DEFAULT_MIN_WEIGHT, resolution, width,
+                                      max_steps=steps, ground=grid.size <= DENSE_MAX_POINTS)
+        out["lanczos"] = recorded
+        alphas, betas, exhausted, lo, hi, ground = recorded
+        attrs.update({"lanczos_exhausted": int(exhausted), "spectrum_min": float(lo / ef),
+                      "spectrum_max": float(hi / ef)})
+        if ground is not None:
+            attrs["ground_energy"] = float(ground / ef)
+    return out
+
+
+def recorded_run(setup, lanczos: bool = False) -> RecordedRun:
+    """The record of a set-up in memory (what the run writes), without a
+    file; ``lanczos``: with the recurrence of psi0 (up to 240 applications
+    of H)."""
+    rec = analysis_record(setup, warnings=False, lanczos=lanczos)
+    recurrence = None if rec["lanczos"] is None else tuple(rec["lanczos"])
+    ab = setup.absorber
+    one_d = setup.grid.ndim == 1
+    return RecordedRun(grid=setup.grid, mass=float(setup.mass),
+                       detectors=[RecordedDetector(d.name, d.axis, float(d.position)) for d in setup.detectors],
+                       absorber=RecordedAbsorber(ab.kind, float(ab.thickness),
+                                                 [RecordedLayer(layer.name, layer.axis) for layer in ab.layers]),
+                       time_dependent=bool(setup.hamiltonian.time_dependent),
+                       marginals={i: m for i, m in enumerate(rec["marginals_au"])}, dt=float(setup.dt),
+                       psi0=setup.psi0 if one_d else None,
+                       static_potential=setup.hamiltonian.static_potential if one_d else None,
+                       warnings=None, lanczos=recurrence)
+
+
+def rebuilt_record(ds, field: str, lanczos: bool) -> RecordedRun:
+    """An older file's record, from its job rebuilt in memory: the memory a
+    run of that job holds is judged from the grid's shape first (nothing is
+    built above the machine's available memory), and files the job names
+    must be regular files (checked as the job loads)."""
+    try:
+        table = tomllib.loads(str(ds.attrs["job"]))
+    except tomllib.TOMLDecodeError as e:
+        raise JobError(field, f"{result_name(ds)}: the job text stored in the result cannot be read: {e}") from None
+    table.pop("sweep", None)
+    try:
+        job = job_from_dict(table)
+    except JobError as e:
+        raise JobError(field, f"{result_name(ds)} was written before results kept what analysis needs, and "
+                              f"its job cannot be rebuilt here ({e}); run the job again") from None
+    need = memory_estimate(job)["estimate_bytes"]
+    points = memory_estimate(job)["points"]
+    too_big = memory_error(need, f"{result_name(ds)} was written before results kept what analysis needs: "
+                                 f"rebuilding its set-up ({points:.0f} grid points)", field)
+    if too_big is not None:   # judged from the shape: nothing was allocated
+        raise JobError(field, f"{too_big.message}; or run the job again with this version, whose "
+                              "results keep what analysis needs")
+    try:
+        setup = Setup(job)
+    except JobError as e:
+        raise JobError(field, f"{result_name(ds)}: the run's job cannot be rebuilt here ({e}); "
+                              "files it refers to must still exist") from None
+    rec = recorded_run(setup, lanczos=lanczos)
+    rec.warnings = run_warnings(setup)
+    return rec
