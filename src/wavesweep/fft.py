@@ -13,7 +13,12 @@ backend="auto")`` picks the best available.
 """
 from __future__ import annotations
 
+import importlib.machinery
+import importlib.util
 import os
+import pickle
+import sys
+import tempfile
 
 import numpy as np
 import scipy.fft
@@ -105,7 +110,6 @@ def wisdom_path():
 
 
 def _load_wisdom(pyfftw) -> None:
-    import pickle
     try:
         with open(wisdom_path(), "rb") as f:
             pyfftw.import_wisdom(pickle.load(f))
@@ -114,8 +118,6 @@ def _load_wisdom(pyfftw) -> None:
 
 
 def _save_wisdom(pyfftw) -> None:
-    import pickle
-    import tempfile
     path = wisdom_path()
     try:
         os.makedirs(os.path.dirname(path), exist_ok=True)
@@ -127,10 +129,63 @@ def _save_wisdom(pyfftw) -> None:
         pass
 
 
-try:  # pyFFTW is optional: a faster FFT for periodic axes
-    import pyfftw as _pyfftw
-except ImportError:  # pragma: no cover - exercised only without pyFFTW
-    _pyfftw = None
+# pyFFTW is optional: a faster FFT for periodic axes.  It is registered when
+# it is installed (a finder look-up, nothing imported) and loaded by the first
+# PyFFTWTransform: a process that never builds one (check, submit, analysis)
+# does not pay for it.
+_PYFFTW_INSTALLED = importlib.util.find_spec("pyfftw") is not None
+_pyfftw = None   # the module with FFTW, empty_aligned and the wisdom functions, once loaded
+
+# What PyFFTWTransform uses; all of it lives in pyFFTW's compiled core.
+_PYFFTW_NAMES = ("FFTW", "empty_aligned", "import_wisdom", "export_wisdom")
+
+
+def _load_pyfftw():
+    """pyFFTW's compiled core (``pyfftw.pyfftw``), loaded once, on first use.
+
+    ``import pyfftw`` also imports ``pyfftw.interfaces``, which imports
+    ``dask.array`` (and with it pandas) whenever dask is installed: 0.34 of the
+    0.36 s the package took to import here, for wrappers wavesweep never calls.
+    Every name wavesweep uses (:data:`_PYFFTW_NAMES`) is defined in the
+    compiled core, which imports only numpy and the standard library, so the
+    core is loaded by itself under its own name ``pyfftw.pyfftw`` (importlib's
+    documented recipe for loading a module from its spec).  It is the very
+    module ``pyfftw/__init__.py`` re-exports: should the package be imported
+    later, its ``from .pyfftw import ...`` finds it in ``sys.modules`` and reuses
+    it, so there is one FFTW state (threads, wisdom) whichever came first, and
+    the transforms are the same machine code either way.  If pyFFTW is already
+    imported, or its layout is not the one expected (another version), the
+    plain ``import pyfftw`` is used instead.
+    """
+    global _pyfftw
+    if _pyfftw is not None:
+        return _pyfftw
+    core = sys.modules.get("pyfftw.pyfftw")   # set by either way of loading it
+    if core is None:
+        core = _load_pyfftw_core()
+    if core is None or not all(hasattr(core, n) for n in _PYFFTW_NAMES):
+        import pyfftw as core   # lazy: the whole package (see above), as a fallback only
+    _pyfftw = core
+    return core
+
+
+def _load_pyfftw_core():
+    """The module ``pyfftw.pyfftw`` loaded without running ``pyfftw/__init__.py``,
+    or None when it cannot be found that way."""
+    package = importlib.util.find_spec("pyfftw")
+    if package is None or not package.submodule_search_locations:
+        return None
+    spec = importlib.machinery.PathFinder.find_spec("pyfftw.pyfftw", package.submodule_search_locations)
+    if spec is None or not isinstance(spec.loader, importlib.machinery.ExtensionFileLoader):
+        return None
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[spec.name] = module
+    try:
+        spec.loader.exec_module(module)
+    except BaseException:
+        del sys.modules[spec.name]
+        raise
+    return module
 
 
 class PyFFTWTransform(Transform):
@@ -146,16 +201,17 @@ class PyFFTWTransform(Transform):
 
     def __init__(self, grid, dtype=np.complex128, threads=None, members=None, effort="FFTW_MEASURE"):
         super().__init__(grid, dtype, threads, members)
-        self.buffer = _pyfftw.empty_aligned(self.shape, dtype=self.dtype)
+        pyfftw = _load_pyfftw()
+        self.buffer = pyfftw.empty_aligned(self.shape, dtype=self.dtype)
         self._fwd = self._bwd = None
         if self._fft_axes:
-            _load_wisdom(_pyfftw)
+            _load_wisdom(pyfftw)
             flags = (effort, "FFTW_DESTROY_INPUT")
-            self._fwd = _pyfftw.FFTW(self.buffer, self.buffer, axes=self._fft_axes,
-                                     direction="FFTW_FORWARD", flags=flags, threads=self.threads)
-            self._bwd = _pyfftw.FFTW(self.buffer, self.buffer, axes=self._fft_axes,
-                                     direction="FFTW_BACKWARD", flags=flags, threads=self.threads)
-            _save_wisdom(_pyfftw)
+            self._fwd = pyfftw.FFTW(self.buffer, self.buffer, axes=self._fft_axes,
+                                    direction="FFTW_FORWARD", flags=flags, threads=self.threads)
+            self._bwd = pyfftw.FFTW(self.buffer, self.buffer, axes=self._fft_axes,
+                                    direction="FFTW_BACKWARD", flags=flags, threads=self.threads)
+            _save_wisdom(pyfftw)
 
     def _into_buffer(self, a):
         if a is not self.buffer:
@@ -189,7 +245,7 @@ class PyFFTWTransform(Transform):
         return b
 
 
-if _pyfftw is not None:
+if _PYFFTW_INSTALLED:
     BACKENDS["pyfftw"] = PyFFTWTransform
 
 
@@ -225,6 +281,11 @@ def make_transform(grid, backend: str | type[Transform] = "auto", dtype=np.compl
         return backend(grid, dtype, threads, members)
     if backend == "auto":
         backend = "pyfftw" if "pyfftw" in BACKENDS else "scipy"
+        if backend == "pyfftw":
+            try:
+                _load_pyfftw()
+            except ImportError:   # installed but broken: auto means the best that works
+                backend = "scipy"
     try:
         cls = BACKENDS[backend]
     except KeyError:
