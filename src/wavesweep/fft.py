@@ -13,12 +13,12 @@ backend="auto")`` picks the best available.
 """
 from __future__ import annotations
 
-import importlib.machinery
 import importlib.util
 import os
 import pickle
 import sys
 import tempfile
+import threading
 
 import numpy as np
 import scipy.fft
@@ -130,62 +130,61 @@ def _save_wisdom(pyfftw) -> None:
 
 
 # pyFFTW is optional: a faster FFT for periodic axes.  It is registered when
-# it is installed (a finder look-up, nothing imported) and loaded by the first
-# PyFFTWTransform: a process that never builds one (check, submit, analysis)
-# does not pay for it.
+# it is installed (a finder look-up, nothing imported) and imported by the
+# first PyFFTWTransform: a process that never builds one (check, submit,
+# analysis) does not pay for it.
 _PYFFTW_INSTALLED = importlib.util.find_spec("pyfftw") is not None
-_pyfftw = None   # the module with FFTW, empty_aligned and the wisdom functions, once loaded
+_pyfftw = None   # the pyfftw module, once imported
+_pyfftw_lock = threading.Lock()
 
-# What PyFFTWTransform uses; all of it lives in pyFFTW's compiled core.
-_PYFFTW_NAMES = ("FFTW", "empty_aligned", "import_wisdom", "export_wisdom")
+# pyFFTW's optional dask interface imports this module (and with it dask.array
+# and pandas); see _load_pyfftw.
+_PYFFTW_SKIPPED = "dask.array.fft"
 
 
 def _load_pyfftw():
-    """pyFFTW's compiled core (``pyfftw.pyfftw``), loaded once, on first use.
+    """The ``pyfftw`` module, imported once, on first use, without its dask
+    interface.
 
-    ``import pyfftw`` also imports ``pyfftw.interfaces``, which imports
-    ``dask.array`` (and with it pandas) whenever dask is installed: 0.34 of the
-    0.36 s the package took to import here, for wrappers wavesweep never calls.
-    Every name wavesweep uses (:data:`_PYFFTW_NAMES`) is defined in the
-    compiled core, which imports only numpy and the standard library, so the
-    core is loaded by itself under its own name ``pyfftw.pyfftw`` (importlib's
-    documented recipe for loading a module from its spec).  It is the very
-    module ``pyfftw/__init__.py`` re-exports: should the package be imported
-    later, its ``from .pyfftw import ...`` finds it in ``sys.modules`` and reuses
-    it, so there is one FFTW state (threads, wisdom) whichever came first, and
-    the transforms are the same machine code either way.  If pyFFTW is already
-    imported, or its layout is not the one expected (another version), the
-    plain ``import pyfftw`` is used instead.
+    ``pyfftw/__init__.py`` imports ``pyfftw.interfaces``, which imports
+    ``dask.array.fft`` whenever dask is installed, to offer FFT wrappers for
+    dask arrays.  That is 0.34 of the 0.36 s the package took to import here
+    (dask.array brings pandas), for wrappers wavesweep never calls; without
+    it pyFFTW costs 7-11 ms once scipy.fft is loaded.  pyFFTW treats that
+    interface as optional (it skips it on ImportError), so pyFFTW is imported
+    with ``dask.array.fft`` marked missing (``None`` in ``sys.modules``: the
+    import system's documented way to make an import fail) and the mark is
+    removed straight after.  The package is then whole but for
+    ``pyfftw.interfaces.dask_fft``, and ``dask.array.fft`` stays importable
+    for any later caller.  Nothing is marked when pyFFTW or dask.array.fft is
+    already imported, and should a pyFFTW version need dask.array.fft, the
+    plain import is made instead.  The FFTW plans wavesweep makes are the
+    same either way, so the transforms are bit-identical.  (Another thread
+    importing ``dask.array.fft`` during these milliseconds would get an
+    ImportError; wavesweep's threads never import it.)
     """
     global _pyfftw
-    if _pyfftw is not None:
+    with _pyfftw_lock:
+        if _pyfftw is None:
+            if "pyfftw" in sys.modules or _PYFFTW_SKIPPED in sys.modules:
+                _pyfftw = _import_pyfftw()
+            else:
+                sys.modules[_PYFFTW_SKIPPED] = None
+                try:
+                    _pyfftw = _import_pyfftw()
+                except ImportError:   # this pyFFTW needs dask.array.fft after all
+                    _pyfftw = None
+                finally:
+                    if sys.modules.get(_PYFFTW_SKIPPED, 0) is None:
+                        del sys.modules[_PYFFTW_SKIPPED]
+                if _pyfftw is None:
+                    _pyfftw = _import_pyfftw()
         return _pyfftw
-    core = sys.modules.get("pyfftw.pyfftw")   # set by either way of loading it
-    if core is None:
-        core = _load_pyfftw_core()
-    if core is None or not all(hasattr(core, n) for n in _PYFFTW_NAMES):
-        import pyfftw as core   # lazy: the whole package (see above), as a fallback only
-    _pyfftw = core
-    return core
 
 
-def _load_pyfftw_core():
-    """The module ``pyfftw.pyfftw`` loaded without running ``pyfftw/__init__.py``,
-    or None when it cannot be found that way."""
-    package = importlib.util.find_spec("pyfftw")
-    if package is None or not package.submodule_search_locations:
-        return None
-    spec = importlib.machinery.PathFinder.find_spec("pyfftw.pyfftw", package.submodule_search_locations)
-    if spec is None or not isinstance(spec.loader, importlib.machinery.ExtensionFileLoader):
-        return None
-    module = importlib.util.module_from_spec(spec)
-    sys.modules[spec.name] = module
-    try:
-        spec.loader.exec_module(module)
-    except BaseException:
-        del sys.modules[spec.name]
-        raise
-    return module
+def _import_pyfftw():
+    import pyfftw   # lazy: pyFFTW loads with the first PyFFTWTransform (see _load_pyfftw)
+    return pyfftw
 
 
 class PyFFTWTransform(Transform):
