@@ -13,7 +13,12 @@ backend="auto")`` picks the best available.
 """
 from __future__ import annotations
 
+import importlib.util
 import os
+import pickle
+import sys
+import tempfile
+import threading
 
 import numpy as np
 import scipy.fft
@@ -105,7 +110,6 @@ def wisdom_path():
 
 
 def _load_wisdom(pyfftw) -> None:
-    import pickle
     try:
         with open(wisdom_path(), "rb") as f:
             pyfftw.import_wisdom(pickle.load(f))
@@ -114,8 +118,6 @@ def _load_wisdom(pyfftw) -> None:
 
 
 def _save_wisdom(pyfftw) -> None:
-    import pickle
-    import tempfile
     path = wisdom_path()
     try:
         os.makedirs(os.path.dirname(path), exist_ok=True)
@@ -127,10 +129,62 @@ def _save_wisdom(pyfftw) -> None:
         pass
 
 
-try:  # pyFFTW is optional: a faster FFT for periodic axes
-    import pyfftw as _pyfftw
-except ImportError:  # pragma: no cover - exercised only without pyFFTW
-    _pyfftw = None
+# pyFFTW is optional: a faster FFT for periodic axes.  It is registered when
+# it is installed (a finder look-up, nothing imported) and imported by the
+# first PyFFTWTransform: a process that never builds one (check, submit,
+# analysis) does not pay for it.
+_PYFFTW_INSTALLED = importlib.util.find_spec("pyfftw") is not None
+_pyfftw = None   # the pyfftw module, once imported
+_pyfftw_lock = threading.Lock()
+
+# pyFFTW's optional dask interface imports this module (and with it dask.array
+# and pandas); see _load_pyfftw.
+_PYFFTW_SKIPPED = "dask.array.fft"
+
+
+def _load_pyfftw():
+    """The ``pyfftw`` module, imported once, on first use, without its dask
+    interface.
+
+    ``pyfftw/__init__.py`` imports ``pyfftw.interfaces``, which imports
+    ``dask.array.fft`` whenever dask is installed, to offer FFT wrappers for
+    dask arrays.  That is 0.34 of the 0.36 s the package took to import here
+    (dask.array brings pandas), for wrappers wavesweep never calls; without
+    it pyFFTW costs 7-11 ms once scipy.fft is loaded.  pyFFTW treats that
+    interface as optional (it skips it on ImportError), so pyFFTW is imported
+    with ``dask.array.fft`` marked missing (``None`` in ``sys.modules``: the
+    import system's documented way to make an import fail) and the mark is
+    removed straight after.  The package is then whole but for
+    ``pyfftw.interfaces.dask_fft``, and ``dask.array.fft`` stays importable
+    for any later caller.  Nothing is marked when pyFFTW or dask.array.fft is
+    already imported, and should a pyFFTW version need dask.array.fft, the
+    plain import is made instead.  The FFTW plans wavesweep makes are the
+    same either way, so the transforms are bit-identical.  (Another thread
+    importing ``dask.array.fft`` during these milliseconds would get an
+    ImportError; wavesweep's threads never import it.)
+    """
+    global _pyfftw
+    with _pyfftw_lock:
+        if _pyfftw is None:
+            if "pyfftw" in sys.modules or _PYFFTW_SKIPPED in sys.modules:
+                _pyfftw = _import_pyfftw()
+            else:
+                sys.modules[_PYFFTW_SKIPPED] = None
+                try:
+                    _pyfftw = _import_pyfftw()
+                except ImportError:   # this pyFFTW needs dask.array.fft after all
+                    _pyfftw = None
+                finally:
+                    if sys.modules.get(_PYFFTW_SKIPPED, 0) is None:
+                        del sys.modules[_PYFFTW_SKIPPED]
+                if _pyfftw is None:
+                    _pyfftw = _import_pyfftw()
+        return _pyfftw
+
+
+def _import_pyfftw():
+    import pyfftw   # lazy: pyFFTW loads with the first PyFFTWTransform (see _load_pyfftw)
+    return pyfftw
 
 
 class PyFFTWTransform(Transform):
@@ -146,16 +200,17 @@ class PyFFTWTransform(Transform):
 
     def __init__(self, grid, dtype=np.complex128, threads=None, members=None, effort="FFTW_MEASURE"):
         super().__init__(grid, dtype, threads, members)
-        self.buffer = _pyfftw.empty_aligned(self.shape, dtype=self.dtype)
+        pyfftw = _load_pyfftw()
+        self.buffer = pyfftw.empty_aligned(self.shape, dtype=self.dtype)
         self._fwd = self._bwd = None
         if self._fft_axes:
-            _load_wisdom(_pyfftw)
+            _load_wisdom(pyfftw)
             flags = (effort, "FFTW_DESTROY_INPUT")
-            self._fwd = _pyfftw.FFTW(self.buffer, self.buffer, axes=self._fft_axes,
-                                     direction="FFTW_FORWARD", flags=flags, threads=self.threads)
-            self._bwd = _pyfftw.FFTW(self.buffer, self.buffer, axes=self._fft_axes,
-                                     direction="FFTW_BACKWARD", flags=flags, threads=self.threads)
-            _save_wisdom(_pyfftw)
+            self._fwd = pyfftw.FFTW(self.buffer, self.buffer, axes=self._fft_axes,
+                                    direction="FFTW_FORWARD", flags=flags, threads=self.threads)
+            self._bwd = pyfftw.FFTW(self.buffer, self.buffer, axes=self._fft_axes,
+                                    direction="FFTW_BACKWARD", flags=flags, threads=self.threads)
+            _save_wisdom(pyfftw)
 
     def _into_buffer(self, a):
         if a is not self.buffer:
@@ -189,7 +244,7 @@ class PyFFTWTransform(Transform):
         return b
 
 
-if _pyfftw is not None:
+if _PYFFTW_INSTALLED:
     BACKENDS["pyfftw"] = PyFFTWTransform
 
 
@@ -225,6 +280,11 @@ def make_transform(grid, backend: str | type[Transform] = "auto", dtype=np.compl
         return backend(grid, dtype, threads, members)
     if backend == "auto":
         backend = "pyfftw" if "pyfftw" in BACKENDS else "scipy"
+        if backend == "pyfftw":
+            try:
+                _load_pyfftw()
+            except ImportError:   # installed but broken: auto means the best that works
+                backend = "scipy"
     try:
         cls = BACKENDS[backend]
     except KeyError:

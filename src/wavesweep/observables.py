@@ -19,6 +19,8 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.fft
 
+from .kernels import view4
+
 __all__ = ["Detector", "Observer", "spectral_derivative"]
 
 
@@ -71,7 +73,7 @@ class Observer:
     psi's precision (complex64 in single-precision runs)."""
 
     def __init__(self, grid, mass: float, transform, detectors=(), psi0=None, members=None):
-        from .kernels import observe_kernels_for, view4
+        from .kernels import observe_kernels_for   # lazy: numba kernels load on first use
         self.grid = grid
         self.mass = mass
         self.transform = transform

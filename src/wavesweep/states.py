@@ -21,6 +21,7 @@ on the grid (centre outside, or cut by an edge) is an error.
 from __future__ import annotations
 
 import math
+import tomllib
 
 import numpy as np
 
@@ -225,7 +226,7 @@ def _boost(psi, grid, momenta, field):
 
 
 def _from_file(packet, grid, field, length_unit=(1.0, "bohr")):
-    import xarray as xr
+    import xarray as xr   # lazy: xarray (0.3 s with pandas), only for a state read from a file
 
     path = packet["path"]
     input_file(path, f"{field}.path", "state file")   # a FIFO or /dev/zero would block or never end
@@ -260,8 +261,6 @@ def _from_file(packet, grid, field, length_unit=(1.0, "bohr")):
 def _grid_of_file(ds) -> str | None:
     """The [grid] a wavesweep file was made on, as written in its job
     (results and ``levels --states`` files keep the job), else None."""
-    import tomllib
-
     try:
         grid = tomllib.loads(str(ds.attrs["job"]))["grid"]
         unit = str(ds.attrs.get("units_length", ""))

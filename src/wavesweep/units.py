@@ -20,6 +20,7 @@ beside units that are not.
 """
 from __future__ import annotations
 
+import difflib
 import functools
 import math
 import re
@@ -223,7 +224,6 @@ def _symbol_powers(text, field: str = "unit") -> list[tuple[str, int]]:
             if m and m.group(1) in UNITS:
                 tok, power = m.group(1), int(m.group(2))
         if tok not in UNITS:
-            import difflib
             near = difflib.get_close_matches(tok, UNITS, n=3)
             hint = f" (did you mean {', '.join(map(repr, near))}?)" if near else ""
             raise JobError(field, f"unknown unit {tok!r} in {text!r}{hint}; "
@@ -322,7 +322,6 @@ class UnitSet:
         found = ErrorCollector()
         for key in table:
             if key not in allowed:
-                import difflib
                 near = difflib.get_close_matches(key, allowed, n=1)
                 hint = f" (did you mean {near[0]!r}?)" if near else ""
                 found.add(JobError(f"{field}.{key}", f"unknown key{hint}; allowed: {', '.join(allowed)}"))

@@ -346,12 +346,11 @@ def test_writer_reports_an_unwritable_folder_as_bad_output(tmp_path, monkeypatch
     """netCDF4 refusing to create the file (permissions, full disk) is a
     one-line error about --output, not a traceback."""
     from wavesweep.errors import JobError
-    from wavesweep.io import recorder
 
     def refuse(*args, **kwargs):
         raise PermissionError(13, "Permission denied")
 
-    monkeypatch.setattr(recorder.netCDF4, "Dataset", refuse)
+    monkeypatch.setattr(netCDF4, "Dataset", refuse)   # the recorder imports netCDF4 on first use
     _, layout = _layout(8)
     with pytest.raises(JobError) as info:
         ResultWriter(tmp_path / "r.nc", layout, {})

@@ -333,7 +333,7 @@ def _layer_cells(depth, rate, mass, energies):
     # Exactly uniform knots measured from the inner edge.
     x = step * np.arange(depth.size)
     if depth.size >= 4:
-        from scipy.interpolate import CubicSpline  # here: scipy.interpolate costs 0.28 s to import
+        from scipy.interpolate import CubicSpline  # lazy: scipy.interpolate costs 0.28 s to import
         profile = CubicSpline(x, rate, bc_type="not-a-knot")
     else:
         def profile(s, _x=x, _w=rate):

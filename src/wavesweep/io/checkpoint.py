@@ -29,6 +29,7 @@ run.
 """
 from __future__ import annotations
 
+import glob
 import json
 import logging
 import math
@@ -251,7 +252,7 @@ class CheckpointStore:
         if actual != size:
             raise CheckpointCorrupt(f"the result copy {str(copy)!r} has {actual} bytes, the checkpoint "
                                     f"recorded {size}")
-        import netCDF4
+        import netCDF4   # lazy: netCDF4/HDF5 load with the first checkpoint read
         try:
             with netCDF4.Dataset(copy, "r") as ds:
                 rid = getattr(ds, "run_id", None)
@@ -288,5 +289,4 @@ def _unlink(p: Path) -> bool:
 
 
 def _glob_escape(name: str) -> str:
-    import glob
     return glob.escape(name)

@@ -28,7 +28,6 @@ import shutil
 from contextlib import contextmanager
 from pathlib import Path
 
-import netCDF4
 import numpy as np
 
 from ..errors import DiskFull, JobError
@@ -185,6 +184,7 @@ class ResultWriter:
         return self
 
     def _open(self, mode: str):
+        import netCDF4   # lazy: netCDF4/HDF5 load with the first result file, not with the module
         try:
             if mode == "w":
                 return netCDF4.Dataset(self.tmp, "w", format="NETCDF4")

@@ -93,7 +93,7 @@ def verify_readable(ds: xr.Dataset, path, field: str = "RUN.nc") -> None:
 def _unreadable_variable(path) -> str | None:
     """The first variable of the file at ``path`` whose data cannot be read
     (coordinates first: xarray reads those when it opens a file)."""
-    import netCDF4
+    import netCDF4   # lazy: read only to diagnose a damaged file (xarray loads its own engine)
 
     try:
         with netCDF4.Dataset(path) as nc:

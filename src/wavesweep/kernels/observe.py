@@ -12,7 +12,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from .split import _twins, row_indices
+from .split import THREADED_MIN_ELEMENTS, _twins, row_indices
 
 __all__ = ["ObserveKernels", "observe_kernels_for", "density_of", "DENSITY_SUMS", "SPECTRUM_SUMS"]
 
@@ -169,5 +169,4 @@ class ObserveKernels:
 
 
 def observe_kernels_for(elements: int, threads: int) -> ObserveKernels:
-    from .split import THREADED_MIN_ELEMENTS
     return ObserveKernels(threads > 1 and elements >= THREADED_MIN_ELEMENTS)

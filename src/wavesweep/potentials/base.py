@@ -16,6 +16,7 @@ registered kind without them.
 """
 from __future__ import annotations
 
+import difflib
 from dataclasses import dataclass
 from typing import ClassVar
 
@@ -110,7 +111,6 @@ def term_class(kind, field: str) -> type[PotentialTerm]:
     try:
         return REGISTRY[kind]
     except (KeyError, TypeError):
-        import difflib
         near = difflib.get_close_matches(str(kind), REGISTRY, n=1)
         hint = f"did you mean {near[0]!r}? " if near else ""
         raise JobError(field, f"unknown potential kind {kind!r}; {hint}"

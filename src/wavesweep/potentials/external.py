@@ -93,8 +93,8 @@ class FileTerm(PotentialTerm):
         input_file(self.p["path"], f"{self.ctx.field}.path", "potential file")
 
     def static(self, mesh):
-        import xarray as xr
-        from scipy.interpolate import RegularGridInterpolator
+        import xarray as xr   # lazy: xarray (0.3 s with pandas), only for a potential read from a file
+        from scipy.interpolate import RegularGridInterpolator   # lazy: as above
 
         f, grid, units = self.ctx.field, self.ctx.grid, self.ctx.units
         try:

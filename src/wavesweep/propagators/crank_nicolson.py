@@ -13,8 +13,6 @@ their instantaneous loss rates sum(W_face |psi|^2).
 from __future__ import annotations
 
 import numpy as np
-import scipy.sparse as sp
-from scipy.sparse.linalg import splu
 
 from ..errors import JobError
 from .base import Propagator
@@ -32,6 +30,9 @@ class CrankNicolson(Propagator):
             raise JobError("evolve.scheme", "'crank_nicolson' is 1D only; use 'strang' or 'order4' in 2D/3D")
 
     def __init__(self, *args, **kwargs):
+        import scipy.sparse as sp   # lazy: scipy.sparse and its LU (0.06 s) load with the first run
+        from scipy.sparse.linalg import splu   # lazy: as above
+        self._sparse, self._splu = sp, splu   # bound once: _factor runs every step when H(t)
         super().__init__(*args, **kwargs)
         ax = self.grid.axes[0]
         n, dx, m = ax.points, ax.dx, self.hamiltonian.mass
@@ -57,11 +58,12 @@ class CrankNicolson(Propagator):
         diag = v.astype(complex)
         if self._w is not None:
             diag = diag - 1j * self._w
+        sp = self._sparse
         h = self._t_matrix + sp.diags(diag, 0, format="csc")
         eye = sp.identity(h.shape[0], format="csc", dtype=complex)
         a = (eye + 0.5j * self.dt * h).tocsc()
         b = (eye - 0.5j * self.dt * h).tocsr()
-        return splu(a), b
+        return self._splu(a), b
 
     def _step_impl(self, psi, nsteps):
         psi = np.asarray(psi, dtype=np.complex128).reshape(-1)

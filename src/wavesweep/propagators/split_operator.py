@@ -50,9 +50,8 @@ from __future__ import annotations
 from typing import ClassVar
 
 import numpy as np
-import scipy.linalg
 
-from ..kernels import kernels_for, real_matvec, view4
+from ..kernels import view4
 from .base import Propagator
 from .coefficients import STRANG, SUZUKI4, YOSHIDA4
 
@@ -96,6 +95,8 @@ class SplitOperator(Propagator):
         return estimate
 
     def __init__(self, *args, **kwargs):
+        # lazy: the numba kernels (numba import, 0.12 s) load with the first propagator
+        from ..kernels import kernels_for
         super().__init__(*args, **kwargs)
         h, grid = self.hamiltonian, self.grid
         self._nb = self.members or 1
@@ -232,6 +233,9 @@ class SplitOperator(Propagator):
 
     def _setup_radial(self):
         """T + V_l + V0 = Q diag(lambda) Q^T on a radial grid (see the module notes)."""
+        import scipy.linalg   # lazy: 0.04 s, needed only by a radial run
+        from ..kernels import real_matvec   # lazy: numba kernels, as in __init__
+        self._real_matvec = real_matvec   # bound once: _free_step calls it every step
         h = self.hamiltonian
         # T + V0 in the sine basis; V0 includes the centrifugal term, and the
         # time-dependent terms stay out (they are kicked)
@@ -254,9 +258,9 @@ class SplitOperator(Propagator):
         out = np.empty_like(rows)
         c = np.empty(rows.shape[1], self.dtype)
         for b in range(self._nb):
-            real_matvec(qt, rows[b], c)
+            self._real_matvec(qt, rows[b], c)
             c *= phases
-            real_matvec(q, c, out[b])
+            self._real_matvec(q, c, out[b])
         return out.reshape(psi.shape)
 
     def _prepare_dynamic(self):

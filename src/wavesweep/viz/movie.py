@@ -129,7 +129,7 @@ class VideoWriter:
 
 def _ffmpeg() -> str:
     try:
-        import imageio_ffmpeg
+        import imageio_ffmpeg   # lazy: optional (the video extra), needed only to encode
     except ImportError:
         raise JobError("movie", "needs the imageio-ffmpeg package: pip install 'wavesweep[video]'") from None
     return imageio_ffmpeg.get_ffmpeg_exe()
@@ -267,7 +267,7 @@ class Painter2D(Painter):
     """2D grids, and 3D grids through a projection or a slice."""
 
     def prepare(self, reader, indices):
-        from matplotlib.colors import LogNorm, Normalize
+        from matplotlib.colors import LogNorm, Normalize   # lazy: matplotlib loads with the first frame
 
         sc, opt = self.scene, self.opt
         self._plane(sc)
@@ -280,7 +280,7 @@ class Painter2D(Painter):
         a, b = self.plane
         xa, xb = sc.coords[a], sc.coords[b]
         da, db = (xa[1] - xa[0]) / 2, (xb[1] - xb[0]) / 2
-        from mpl_toolkits.axes_grid1 import make_axes_locatable
+        from mpl_toolkits.axes_grid1 import make_axes_locatable   # lazy: matplotlib, as above
 
         extent = (xa[0] - da, xa[-1] + da, xb[0] - db, xb[-1] + db)
         overlays = []      # drawn over the image each frame (the image is drawn after the background)

@@ -9,6 +9,7 @@ colour-blind readers.  Text sizes are chosen for a figure seen at 100 dpi.
 from __future__ import annotations
 
 import contextlib
+import re
 
 __all__ = ["PALETTE", "DENSITY_CMAP", "POTENTIAL", "ABSORBER", "DETECTOR", "figure", "line_colors",
            "pretty_unit", "style"]
@@ -51,8 +52,6 @@ def plain(text) -> str:
 def pretty_unit(unit: str) -> str:
     """A CF unit string for a label: "nm-1" -> nm$^{-1}$, "nm-0.5" -> nm$^{-1/2}$,
     "m2 s-1" -> m$^{2}$ s$^{-1}$."""
-    import re
-
     def power(m):
         base, exp = m.group(1), m.group(2)
         exp = {"-0.5": "-1/2", "0.5": "1/2", "-1.5": "-3/2", "1.5": "3/2"}.get(exp, exp)
@@ -74,9 +73,9 @@ def line_colors() -> list[str]:
 def figure(width_px: int, height_px: int, dpi: int):
     """A matplotlib Figure with an Agg canvas (no display needed) in the
     house style, ``width_px`` x ``height_px`` pixels."""
-    import matplotlib
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
+    import matplotlib   # lazy: matplotlib (0.2-0.4 s) loads with the first figure
+    from matplotlib.backends.backend_agg import FigureCanvasAgg   # lazy: as above
+    from matplotlib.figure import Figure   # lazy: as above
 
     with matplotlib.rc_context(RC):
         fig = Figure(figsize=(width_px / dpi, height_px / dpi), dpi=dpi)
@@ -87,7 +86,7 @@ def figure(width_px: int, height_px: int, dpi: int):
 @contextlib.contextmanager
 def style():
     """The house rc settings for code that builds its own axes."""
-    import matplotlib
+    import matplotlib   # lazy: matplotlib loads with the first figure
 
     with matplotlib.rc_context(RC):
         yield

@@ -72,7 +72,7 @@ def _density_map(scene):
 
 def plot_run(path, output, size=(1200, 900), dpi: int = 100) -> Path:
     """Four panels of one run, written to ``output`` (.png/.pdf/.svg)."""
-    from matplotlib.colors import LogNorm
+    from matplotlib.colors import LogNorm   # lazy: matplotlib loads with the first figure
 
     output = _check_output(output)
     scene = read_scene(path)
