@@ -26,7 +26,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import RunFailed, RunInterrupted
-from .fft import THREADS_MIN_POINTS, default_threads, make_transform
+from .fft import THREADS_MIN_POINTS, default_threads
 from .io.checkpoint import ResultExists
 from .observables import Observer
 from .propagators import propagator_class
@@ -292,13 +292,11 @@ class _Lane:
         s0 = sims[0].setup
         nb = len(sims)
         self.positions = positions
-        backend = s0.fft_backend if s0.scheme.in_place_transform else "scipy"
-        transform = make_transform(s0.grid, backend, s0.dtype, threads, members=nb)
+        transform = s0.propagator_transform(members=nb, threads=threads)
         set_kernel_threads(transform.threads)
         self.prop = s0.scheme(s0.hamiltonian, s0.dt, transform, [s.setup.absorber for s in sims], s0.dtype,
                               members=nb)
-        self.observer = Observer(s0.grid, s0.mass, make_transform(s0.grid, s0.fft_backend, s0.dtype,
-                                                                  transform.threads, members=nb),
+        self.observer = Observer(s0.grid, s0.mass, s0.observer_transform(members=nb, threads=transform.threads),
                                  s0.detectors, np.stack([s.setup.psi0 for s in sims]), members=nb)
         self.psi = self.prop.load(np.stack([b.psi for b in books]))
         for b in books:

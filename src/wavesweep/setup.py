@@ -234,12 +234,18 @@ class Setup(Model):
         return Detector(d["name"], self.grid.axis_index(axis),
                         self.units.to_atomic(d[axis], "length", f"detector.{i}.{axis}"))
 
-    def propagator_transform(self):
-        """The propagator's transform.  Only split-operator steps work in the
-        planned in-place buffer of a fast backend; the others keep several
-        arrays alive at once and use scipy.fft."""
+    def propagator_transform(self, members: int | None = None, threads: int | None = None):
+        """The propagator's transform (``members``: for a batch of that many
+        states).  Only split-operator steps work in the planned in-place
+        buffer of a fast backend; the others keep several arrays alive at
+        once and use scipy.fft."""
         backend = self.fft_backend if self.scheme.in_place_transform else "scipy"
-        return make_transform(self.grid, backend, self.dtype, self.threads)
+        return make_transform(self.grid, backend, self.dtype, threads or self.threads, members=members)
+
+    def observer_transform(self, members: int | None = None, threads: int | None = None):
+        """The observer's own transform (same backend and precision as the
+        run's): it must never touch the propagator's buffer, which holds psi."""
+        return make_transform(self.grid, self.fft_backend, self.dtype, threads or self.threads, members=members)
 
     def make_propagator(self, transform=None):
         transform = transform if transform is not None else self.propagator_transform()
@@ -250,8 +256,7 @@ class Setup(Model):
         """Observables use a transform of their own (same backend and
         precision as the run's): they must never touch the propagator's
         buffer, which holds psi."""
-        return Observer(self.grid, self.mass, make_transform(self.grid, self.fft_backend, self.dtype, self.threads),
-                        self.detectors, self.psi0)
+        return Observer(self.grid, self.mass, self.observer_transform(), self.detectors, self.psi0)
 
     def unit_labels(self) -> dict:
         u = self.units

@@ -64,6 +64,7 @@ from ..analysis.recorded import run_record
 from ..analysis.transmission import transmission_totals
 from ..errors import JobError
 from ..io.recorder import atomic_rename
+from ..job.dotted import get_dotted
 from ..job.schemas import ABSORBER, AXIS, EVOLVE, PARTICLE, RECORD
 from ..potentials import term_class
 from ..schema import Field
@@ -175,7 +176,7 @@ def collect_study(root, study: str) -> dict:
     for p in params:   # a key that a submission did not sweep: its value is in the run's job
         for run in runs:
             if p.key not in run["params"] and run["run_id"] in results:
-                value = _get_dotted(results[run["run_id"]].job, p.key)
+                value = get_dotted(results[run["run_id"]].job, p.key)
                 if value is not None:
                     run["params"][p.key] = value
     _name_params(params)
@@ -381,16 +382,6 @@ def _field_of(job: dict, key: str) -> Field | None:
     except (KeyError, IndexError, ValueError, TypeError, JobError):
         return None
     return None
-
-
-def _get_dotted(table, key: str):
-    node = table
-    for part in key.split("."):
-        try:
-            node = node[int(part)] if isinstance(node, list) else node[part]
-        except (KeyError, IndexError, ValueError, TypeError):
-            return None
-    return node
 
 
 def _convert(p: _Param, value, units: UnitSet):
