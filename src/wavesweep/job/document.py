@@ -21,7 +21,7 @@ def grid_axes(grid: dict) -> list[str]:
     return [k for k in ("x", "y", "z", "r") if k in grid]
 
 
-@dataclass
+@dataclass(frozen=True)
 class Job:
     """A validated job: ``table`` in the job's units with defaults filled in.
 
@@ -32,7 +32,6 @@ class Job:
     table: dict
     units: UnitSet
     source: Path | None = None
-    notes: list = field(default_factory=list)
     # the table as written (after --set), to tell the keys the job gave from
     # the defaults filled in (wavesweep.job.reference.physics_defaults)
     raw: dict | None = field(default=None, repr=False, compare=False)
@@ -59,7 +58,7 @@ class Job:
 
     def with_absorber(self, absorber: dict) -> "Job":
         """A new Job with ``absorber`` as its absorber table (this one unchanged)."""
-        return replace(self, table={**self.table, "absorber": absorber}, notes=list(self.notes))
+        return replace(self, table={**self.table, "absorber": absorber})
 
     def _complete(self, what: str) -> None:
         if self.needs_tuning:
