@@ -75,6 +75,7 @@ from .analysis.recorded import run_record
 from .analysis.transmission import transmission_totals
 from .errors import JobError, RunFailed
 from .job import Job, job_from_dict
+from .job.document import job_number
 from .run import Simulation
 from .setup import Setup, resolve_job
 
@@ -176,10 +177,6 @@ def _base_table(job: Job) -> dict:
     return table
 
 
-def _job_number(x: float) -> float:
-    return float(f"{x:.12g}")
-
-
 def _fast_points(n: int, boundary: str) -> int:
     """The smallest count >= n whose transform is fast (scipy.fft.next_fast_len:
     N for the FFT, N + 1 for the sine transform, DST-I, which works on N + 1)."""
@@ -230,7 +227,7 @@ def plan_pilot(job: Job, tolerance: float, timing_seconds: float = 0.3) -> Pilot
     else:
         m = _dt_run_steps(setup.sample_steps)
         every = setup.sample_steps * setup.dt
-        dt_run = _job_number(u.to_job(every / m, "time"))
+        dt_run = job_number(u.to_job(every / m, "time"))
         ratio = setup.sample_steps / m
         steps = setup.total_steps // setup.sample_steps * m
         runs.append(PilotRun(f"evolve.dt {dt_run:g}", "evolve.dt", {"evolve.dt": dt_run}, ratio,
@@ -355,7 +352,7 @@ def _finer_dt_run(plan: PilotPlan) -> PilotRun:
     base = plan.runs[0]
     setup = Setup(job_from_dict(_base_table(plan.job)))
     m = 2 * setup.sample_steps
-    dt_run = _job_number(setup.units.to_job(setup.sample_steps * setup.dt / m, "time"))
+    dt_run = job_number(setup.units.to_job(setup.sample_steps * setup.dt / m, "time"))
     steps = setup.total_steps * 2
     return PilotRun(f"evolve.dt {dt_run:g}", "evolve.dt", {"evolve.dt": dt_run}, 0.5,
                     steps / base.steps, steps, base.points)
@@ -474,7 +471,7 @@ def _whole_sample_dt(setup: Setup, dt_au: float) -> float:
     """The largest step <= dt_au (atomic units) that divides record.every, in job units."""
     every = setup.sample_steps * setup.dt
     m = max(1, math.ceil(every / dt_au - 1e-9))
-    return _job_number(setup.units.to_job(every / m, "time"))
+    return job_number(setup.units.to_job(every / m, "time"))
 
 
 def _summary(plan, results, setup, wall, need_points, need_dt, skipped=()) -> Finding:

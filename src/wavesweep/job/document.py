@@ -14,7 +14,14 @@ import tomli_w
 from ..units import UnitSet
 from .schemas import ABSORBER, NOT_PHYSICS
 
-__all__ = ["Job", "grid_axes"]
+__all__ = ["Job", "grid_axes", "job_number"]
+
+
+def job_number(x: float) -> float:
+    """A derived value as it would be written by hand in a job file (12
+    significant digits: 0.05, not 0.05000000000000001), so that the same
+    derivation always gives the same text and the same run id."""
+    return float(f"{x:.12g}")
 
 
 def grid_axes(grid: dict) -> list[str]:

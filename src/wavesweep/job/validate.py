@@ -28,7 +28,7 @@ from ..potentials import REGISTRY, PotentialContext, make_term, term_class
 from ..schema import MAX_INT, Field, check_unknown, unknown_keys, validate_table
 from ..states import PACKET_SCHEMAS
 from ..units import UnitSet
-from .document import Job, grid_axes
+from .document import Job, grid_axes, job_number
 from .dotted import apply_overrides, file_position, parse_override
 from .schemas import ABSORBER, AXIS, DETECTOR, DETECTOR_POSITION, EVOLVE, PARTICLE, RECORD, TOP_LEVEL
 from .sweep import apply_sweep_overrides, refuse_swept_overrides
@@ -528,12 +528,6 @@ def _divisor_near(total: int, target: int, tries: int = 100_000) -> int | None:
     return None
 
 
-def _job_number(x: float) -> float:
-    """A derived default as it would be written by hand (12 significant
-    digits: 0.05, not 0.05000000000000001)."""
-    return float(f"{x:.12g}")
-
-
 def _record(raw, units, evolve) -> dict:
     """The [record] table; its sampling on whole time steps is checked (and
     the defaults derived) only when ``evolve`` (valid ``dt`` and
@@ -554,11 +548,11 @@ def _record(raw, units, evolve) -> dict:
         if k is None:
             raise JobError("record.every", f"no whole number of steps near {total // 1000} divides the "
                                            f"run's {total} steps; give record.every")
-        t["every"] = _job_number(k * dt / units.factor("time"))
+        t["every"] = job_number(k * dt / units.factor("time"))
     every = units.to_atomic(t["every"], "time", "record.every")
     k = _steps(every, dt, "record.every", units)
     if t.get("snapshot_every") is None:
-        t["snapshot_every"] = _job_number(max(1, (total // k) // 100) * k * dt / units.factor("time"))
+        t["snapshot_every"] = job_number(max(1, (total // k) // 100) * k * dt / units.factor("time"))
     snap = units.to_atomic(t["snapshot_every"], "time", "record.snapshot_every")
     m = _steps(snap, dt, "record.snapshot_every", units)
     if m % k:
