@@ -27,7 +27,7 @@ from .absorbers.tuning import cached_cap_strength
 from .adequacy import dynamics, memory_error, memory_estimate, physical_memory_error, representability, run_warnings
 from .eigen import BAND_CHUNK, BAND_STEPS, DEFAULT_MIN_WEIGHT, DENSE_MAX_POINTS, band_window, lanczos_recurrence
 from .errors import JobError
-from .fft import make_transform
+from .fft import AUTO, PLAIN, make_transform
 from .grid import Axis, Grid
 from .hamiltonian import Hamiltonian, static_potential_of
 from .io.record import (LANCZOS_MAX_POINTS, RECORD_VERSION, RecordedAbsorber, RecordedDetector, RecordedLayer,
@@ -137,7 +137,7 @@ class Setup(Model):
         self.hamiltonian = Hamiltonian(self.grid, self.mass, self.terms, self.absorber.rate,
                                        static_potential=self.hamiltonian_static_potential())
         self.detectors = [self._detector(i, d) for i, d in enumerate(t["detector"])]
-        self.fft_backend = fft or ev.get("fft", "auto")
+        self.fft_backend = fft or ev.get("fft", AUTO)
         self.threads = threads or ev.get("threads")
         self.scheme = propagator_class(ev["scheme"])
         self.scheme.check_supported(self.hamiltonian, self.absorber, self.grid)
@@ -238,7 +238,7 @@ class Setup(Model):
         """The propagator's transform.  Only split-operator steps work in the
         planned in-place buffer of a fast backend; the others keep several
         arrays alive at once and use scipy.fft."""
-        backend = self.fft_backend if self.scheme.in_place_transform else "scipy"
+        backend = self.fft_backend if self.scheme.in_place_transform else PLAIN
         return make_transform(self.grid, backend, self.dtype, self.threads)
 
     def make_propagator(self, transform=None):

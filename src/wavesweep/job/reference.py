@@ -22,8 +22,10 @@ from typing import NamedTuple
 
 from ..adequacy import Finding
 from ..errors import JobError
+from ..fft import BACKENDS
 from ..potentials import REGISTRY
 from ..potentials.library import EDGES
+from ..propagators import SCHEMES
 from ..schema import Field
 from ..states import PACKET_FORMULAS, PACKET_SCHEMAS
 from ..units import KINDS, UNITS
@@ -198,7 +200,9 @@ def _table_sections(name: str) -> list[dict]:
                          notes=["kind = one of the kinds above (default gaussian; wavesweep keys "
                                 "packet.KIND: its keys)"])]
     if name == "evolve":
-        return [_section("evolve", "[evolve]", doc, _keys(EVOLVE))]
+        schemes = [f"scheme = {n!r}: {cls.summary}" for n, cls in SCHEMES.items()]
+        backends = [f"fft = {n!r}: {cls.summary}" for n, cls in BACKENDS.items()]
+        return [_section("evolve", "[evolve]", doc, _keys(EVOLVE), notes=schemes + backends)]
     if name == "absorber":
         return [_section("absorber", "[absorber]", doc, _keys(ABSORBER, skip=()),
                          notes=["strength may also be a table by face, e.g. "

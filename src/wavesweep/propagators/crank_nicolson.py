@@ -15,14 +15,16 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import JobError
-from .base import Propagator
+from .base import Propagator, register_scheme
 
 __all__ = ["CrankNicolson"]
 
 
+@register_scheme
 class CrankNicolson(Propagator):
     name = "crank_nicolson"
     order = 2
+    summary = "Crank-Nicolson (1D only): second order, unitary, a sparse solve per step"
 
     @classmethod
     def check_supported(cls, hamiltonian, absorber, grid):
