@@ -28,7 +28,7 @@ from .hamiltonian import split_time_dependent
 from .marginals import momentum_marginal
 from .propagators import DEFAULT_SCHEME, propagator_class
 from .propagators.split_operator import RADIAL_DENSE_MAX
-from .states import central_momenta, momentum_spread
+from .states import PACKETS, central_momenta, momentum_spread
 
 __all__ = ["Finding", "Report"]
 
@@ -97,21 +97,14 @@ TAIL_3 = 0.5 * math.erfc(3.0 / math.sqrt(2.0))
 
 
 def gaussian_parts(packet) -> list:
-    """The Gaussian packets a packet table (atomic units) is made of."""
-    if packet["kind"] == "gaussian":
-        return [packet]
-    if packet["kind"] == "superposition":
-        return [q for p in packet["packets"] for q in gaussian_parts(p)]
-    return []
+    """The Gaussian packets a packet table (atomic units) is made of
+    (:meth:`~wavesweep.states.PacketKind.gaussian_parts` of its kind)."""
+    return PACKETS[packet["kind"]].gaussian_parts(packet)
 
 
 def all_gaussian(packet) -> bool:
     """Whether the packet is Gaussian parts only (its momenta are then known in closed form)."""
-    if packet["kind"] == "gaussian":
-        return True
-    if packet["kind"] == "superposition":
-        return all(all_gaussian(p) for p in packet["packets"])
-    return False
+    return PACKETS[packet["kind"]].all_gaussian(packet)
 
 
 def _upper_quantile(k, weight, tail):

@@ -38,7 +38,7 @@ from .observables import Detector, Observer
 from .potentials import PotentialContext, make_term
 from .propagators import propagator_class
 from .schema import to_atomic
-from .states import PACKET_SCHEMAS, build_state
+from .states import PACKET_SCHEMAS, PACKETS, build_state
 
 __all__ = ["Model", "Setup", "resolve_job", "analysis_record", "recorded_run", "rebuilt_record",
            "set_kernel_threads", "AXIS_LONG"]
@@ -145,12 +145,14 @@ class Setup(Model):
     # -- pieces ----------------------------------------------------------------
     def _packet_atomic(self, table, name="packet") -> dict:
         kind = table["kind"]
+        cls = PACKETS[kind]
         p = to_atomic(table, PACKET_SCHEMAS[kind], self.units, name, self.grid.ndim)
-        if kind == "superposition":
-            p["packets"] = [self._packet_atomic(s, f"{name}.packets.{j}") for j, s in enumerate(table["packets"])]
-        if kind == "eigenstate" and table.get("potential") is not None:
+        if cls.nested:
+            p[cls.nested] = [self._packet_atomic(s, f"{name}.{cls.nested}.{j}")
+                             for j, s in enumerate(table[cls.nested])]
+        if cls.trap and table.get(cls.trap) is not None:
             # the trap's own terms, named under the packet in messages
-            p["trap_terms"] = [self._term(i, tab, f"{name}.potential") for i, tab in enumerate(table["potential"])]
+            p["trap_terms"] = [self._term(i, tab, f"{name}.{cls.trap}") for i, tab in enumerate(table[cls.trap])]
         return p
 
     def energy_window(self, axis: int, face: str) -> tuple[float, float]:
