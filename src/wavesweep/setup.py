@@ -34,7 +34,7 @@ from .io.record import (LANCZOS_MAX_POINTS, RECORD_VERSION, RecordedAbsorber, Re
                         RecordedRun, result_name)
 from .job import Job, grid_axes, job_from_dict
 from .marginals import free_space_marginals
-from .observables import Detector, Observer
+from .observables import SCALARS, Detector, Observer
 from .potentials import PotentialContext, make_term
 from .propagators import propagator_class
 from .schema import to_atomic
@@ -256,8 +256,11 @@ class Setup(Model):
                         self.detectors, self.psi0)
 
     def unit_labels(self) -> dict:
+        """Unit labels by quantity kind: those of the recorded scalars
+        (observables.SCALARS), the axes, densities and fluxes."""
         u = self.units
-        return {"length": u.unit_label("length"), "time": u.unit_label("time"),
+        return {**{s.kind: u.unit_label(s.kind) for s in SCALARS if s.kind},
+                "length": u.unit_label("length"), "time": u.unit_label("time"),
                 "energy": u.unit_label("energy"), "momentum": u.unit_label("momentum"),
                 "density": f"{u.unit_label('length')}-{self.grid.ndim}",
                 "flux": f"{u.unit_label('time')}-1"}

@@ -323,3 +323,37 @@ def test_the_second_list_check_can_fail(tmp_path):
     (tmp_path / "wavesweep" / "cli.py").write_text(
         f'CHOICES = ("{AUTO}", "{next(iter(BACKENDS))}")\nOK = ("{next(iter(BACKENDS))}", "other")\n')
     assert [line.split(": ")[0] for line in second_lists(tmp_path / "wavesweep")] == ["wavesweep/cli.py:1"]
+
+
+# -- recorded scalars --------------------------------------------------------------
+def test_a_declared_scalar_is_recorded_with_its_unit_from_its_declaration_alone(monkeypatch, tmp_path):
+    """A Scalar appended to observables.SCALARS, computed by the observer, is
+    converted, declared and written without an edit of the run or the
+    writer: one atomic unit of time (hbar / E_h, CODATA via scipy.constants)
+    recorded in a job whose time unit is the femtosecond."""
+    import scipy.constants as sc
+    import xarray as xr
+    from wavesweep import observables
+    from wavesweep.run import Simulation
+
+    au_time_fs = sc.hbar / sc.physical_constants["Hartree energy"][0] / 1e-15
+    scalar = observables.Scalar("time_unit_for_test", "time", "one atomic time unit along {axis}")
+    observables.SCALARS.append(scalar)
+    try:
+        measured = observables.Observer.measure_members
+
+        def measure_members(self, psi, potential):
+            return [{**r, scalar.name: 1.0} for r in measured(self, psi, potential)]   # 1 au of time
+
+        monkeypatch.setattr(observables.Observer, "measure_members", measure_members)
+        job = job_from_dict(merged(JOB, {"units": {"length": "bohr", "energy": "hartree", "time": "fs"}, "absorber": None,
+                                         "evolve": {"dt": 0.0005, "duration": 0.01},
+                                         "record": {"every": 0.001, "snapshot_every": 0.005}}))
+        path = Simulation(job).run(tmp_path, progress=False)
+        with xr.open_dataset(path) as ds:
+            v = ds[scalar.name]
+            assert v.attrs["units"] == "fs" and v.attrs["long_name"] == "one atomic time unit along x"
+            assert v.sizes["time"] == ds.sizes["time"] == 11
+            assert np.allclose(v.values, au_time_fs, rtol=1e-12, atol=0)
+    finally:
+        observables.SCALARS.remove(scalar)
