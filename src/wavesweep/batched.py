@@ -26,7 +26,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import RunFailed, RunInterrupted
-from .fft import PLAIN, THREADS_MIN_POINTS, default_threads, make_transform
+from .fft import THREADS_MIN_POINTS, default_threads, make_transform
 from .io.checkpoint import ResultExists
 from .observables import Observer
 from .propagators import propagator_class
@@ -292,7 +292,7 @@ class _Lane:
         s0 = sims[0].setup
         nb = len(sims)
         self.positions = positions
-        backend = s0.fft_backend if s0.scheme.in_place_transform else PLAIN
+        backend = s0.fft_backend if s0.scheme.in_place_transform else "scipy"
         transform = make_transform(s0.grid, backend, s0.dtype, threads, members=nb)
         set_kernel_threads(transform.threads)
         self.prop = s0.scheme(s0.hamiltonian, s0.dt, transform, [s.setup.absorber for s in sims], s0.dtype,
