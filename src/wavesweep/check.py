@@ -16,6 +16,7 @@ from .adequacy import (Finding, Report, assess, memory_finding, remember_run_war
 from .errors import JobError, combine_errors
 from .job import Job
 from .job.reference import default_findings
+from .propagators import SCHEMES
 from .propagators.split_operator import RADIAL_DENSE_MAX
 from .setup import Setup
 
@@ -41,9 +42,10 @@ def _scheme_findings(setup) -> list[Finding]:
     if setup.grid.radial and setup.scheme.in_place_transform:
         n = setup.grid.axes[0].points
         if n > RADIAL_DENSE_MAX:
+            exact = " or ".join(f"scheme = {name!r}" for name, cls in SCHEMES.items() if cls.exact_in_time)
             out.append(Finding("time step", "warn",
                 f"radial grid of {n} points (> {RADIAL_DENSE_MAX}): the singular radial terms are "
-                "kicked, which converges slowly; use fewer points or scheme = 'chebyshev'",
+                "kicked, which converges slowly; use fewer points" + (f" or {exact}" if exact else ""),
                 {"points": n}, field="grid.r.points"))
     return out
 

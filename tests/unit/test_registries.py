@@ -95,6 +95,21 @@ def test_an_unregistered_scheme_is_refused_with_the_registered_ones():
     assert all(name in str(e.value) for name in SCHEMES)
 
 
+def test_a_scheme_that_cannot_run_a_job_names_the_registered_ones_that_can(twin_scheme):
+    """The advice of check_supported comes from the registry: a 2D job with
+    the 1D-only Crank-Nicolson is told of the split-operator schemes,
+    the test's twin among them, and of nothing unregistered."""
+    plane = merged(JOB, {"grid": {"y": {"min": -20.0, "max": 20.0, "points": 32}},
+                         "packet": {"center": [-20.0, 0.0], "width": [2.0, 2.0], "momentum": [1.0, 0.0]},
+                         "evolve": {"scheme": "crank_nicolson"}, "absorber": None})
+    with pytest.raises(JobError) as e:
+        Setup(job_from_dict(plane))
+    assert e.value.field == "evolve.scheme"
+    can = [name for name, cls in SCHEMES.items() if cls.in_place_transform] + ["chebyshev"]
+    assert all(repr(name) in str(e.value) for name in can) and twin_scheme in str(e.value)
+    assert "'crank_nicolson' is 1D only" in str(e.value) and len(str(e.value).splitlines()) == 1
+
+
 # -- FFT backends ------------------------------------------------------------------
 class CountingScipy(ScipyTransform):
     """scipy.fft under another name, counting its instances."""

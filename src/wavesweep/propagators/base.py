@@ -39,11 +39,14 @@ that subclasses only compute.
 """
 from __future__ import annotations
 
+import threading
 from typing import ClassVar
 
 import numpy as np
 
-__all__ = ["Propagator", "SCHEMES", "register_scheme"]
+from ..errors import JobError
+
+__all__ = ["Propagator", "SCHEMES", "register_scheme", "other_schemes"]
 
 
 class Propagator:
@@ -146,3 +149,28 @@ def register_scheme(cls: type[Propagator]) -> type[Propagator]:
         raise ValueError(f"{cls.__name__} has no name to register")
     SCHEMES[cls.name] = cls
     return cls
+
+
+_probing = threading.local()   # other_schemes is asking the schemes: their messages need no advice
+
+
+def other_schemes(cls, hamiltonian, absorber, grid) -> str:
+    """For a ``check_supported`` message: the registered schemes besides
+    ``cls`` that can propagate this problem, as "'a' or 'b'" (read from
+    :data:`SCHEMES`, so the advice names no scheme that is not there)."""
+    if getattr(_probing, "active", False):
+        return "another scheme"
+    _probing.active = True
+    try:
+        names = []
+        for name, other in SCHEMES.items():
+            if other is cls:
+                continue
+            try:
+                other.check_supported(hamiltonian, absorber, grid)
+            except JobError:
+                continue
+            names.append(repr(name))
+    finally:
+        _probing.active = False
+    return " or ".join(names) if names else "another scheme"

@@ -18,7 +18,7 @@ import numpy as np
 from scipy.special import jv
 
 from ..errors import JobError
-from .base import Propagator, register_scheme
+from .base import Propagator, other_schemes, register_scheme
 
 __all__ = ["Chebyshev"]
 
@@ -33,11 +33,13 @@ class Chebyshev(Propagator):
     @classmethod
     def check_supported(cls, hamiltonian, absorber, grid):
         if hamiltonian.time_dependent:
-            raise JobError("evolve.scheme", "'chebyshev' needs a time-independent Hamiltonian; "
-                                            "this job has a time-dependent potential: use 'strang' or 'order4'")
+            raise JobError("evolve.scheme", f"{cls.name!r} needs a time-independent Hamiltonian; this job has "
+                                            "a time-dependent potential: use "
+                                            f"{other_schemes(cls, hamiltonian, absorber, grid)}")
         if absorber is not None and absorber.active and absorber.kind == "cap":
-            raise JobError("absorber.kind", "'chebyshev' cannot use a CAP (non-Hermitian H); "
-                                            "use absorber.kind = 'mask' or another scheme")
+            raise JobError("absorber.kind", f"{cls.name!r} cannot use a CAP (non-Hermitian H); use "
+                                            "absorber.kind = 'mask' or another scheme: "
+                                            f"{other_schemes(cls, hamiltonian, absorber, grid)}")
 
     @staticmethod
     def _expansion(hamiltonian, dt):
