@@ -26,9 +26,9 @@ from .errors import JobError
 from .fft import wisdom_path
 from .hamiltonian import split_time_dependent
 from .marginals import momentum_marginal
-from .propagators import propagator_class
+from .propagators import DEFAULT_SCHEME, propagator_class
 from .propagators.split_operator import RADIAL_DENSE_MAX
-from .states import central_momenta, momentum_spread
+from .states import PACKETS, central_momenta, momentum_spread
 
 __all__ = ["Finding", "Report"]
 
@@ -97,21 +97,14 @@ TAIL_3 = 0.5 * math.erfc(3.0 / math.sqrt(2.0))
 
 
 def gaussian_parts(packet) -> list:
-    """The Gaussian packets a packet table (atomic units) is made of."""
-    if packet["kind"] == "gaussian":
-        return [packet]
-    if packet["kind"] == "superposition":
-        return [q for p in packet["packets"] for q in gaussian_parts(p)]
-    return []
+    """The Gaussian packets a packet table (atomic units) is made of
+    (:meth:`~wavesweep.states.PacketKind.gaussian_parts` of its kind)."""
+    return PACKETS[packet["kind"]].gaussian_parts(packet)
 
 
 def all_gaussian(packet) -> bool:
     """Whether the packet is Gaussian parts only (its momenta are then known in closed form)."""
-    if packet["kind"] == "gaussian":
-        return True
-    if packet["kind"] == "superposition":
-        return all(all_gaussian(p) for p in packet["packets"])
-    return False
+    return PACKETS[packet["kind"]].all_gaussian(packet)
 
 
 def _upper_quantile(k, weight, tail):
@@ -1039,7 +1032,7 @@ def time_step_finding(setup, dyn: Dynamics) -> Finding:
     kin_phase, pot_phase = e_run * dt, v_seen * dt
     phase = max(kin_phase, pot_phase)
     level = "ok" if phase <= 1.0 else ("warn" if phase <= math.pi else "error")
-    exact = getattr(setup.scheme, "name", "") == "chebyshev"
+    exact = setup.scheme.exact_in_time
     if setup.grid.radial and setup.scheme.in_place_transform and not separable:
         # a static radial H is stepped exactly in its dense eigenbasis (no splitting)
         exact = exact or (setup.grid.axes[0].points <= RADIAL_DENSE_MAX
@@ -1304,7 +1297,7 @@ def memory_estimate(job) -> dict:
     size = int(np.prod(_job_points(table), dtype=np.float64)) if _job_points(table) else 0
     itemsize = 8 if table["evolve"].get("precision") == "single" else 16
     psi_bytes = float(size) * itemsize
-    scheme = propagator_class(table["evolve"].get("scheme", "strang"))
+    scheme = propagator_class(table["evolve"].get("scheme", DEFAULT_SCHEME))
     absorbing = (table.get("absorber") or {}).get("kind", "none") != "none"
     radial = int(table["grid"]["r"]["points"]) if "r" in table["grid"] else None
     estimate = scheme.peak_bytes(size, itemsize, absorbing, radial)

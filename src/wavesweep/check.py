@@ -14,10 +14,9 @@ from __future__ import annotations
 from .adequacy import (Finding, Report, assess, memory_finding, remember_run_warnings, run_time_finding,
                        splitting_warning)
 from .errors import JobError, combine_errors
-from .fft import make_transform
 from .job import Job
 from .job.reference import default_findings
-from .propagators.chebyshev import Chebyshev
+from .propagators import SCHEMES
 from .propagators.split_operator import RADIAL_DENSE_MAX
 from .setup import Setup
 
@@ -36,16 +35,17 @@ def _units_finding(job: Job) -> Finding:
 
 def _scheme_findings(setup) -> list[Finding]:
     out = []
-    if setup.scheme.name == "chebyshev":
-        prop = Chebyshev(setup.hamiltonian, setup.dt, make_transform(setup.grid, "scipy"), setup.absorber)
-        out.append(Finding("time step", "ok", f"chebyshev: {len(prop.coefficients)} terms per step",
-                           {"terms": len(prop.coefficients)}))
+    terms = setup.scheme.expansion_terms(setup.hamiltonian, setup.dt)
+    if terms is not None:
+        out.append(Finding("time step", "ok", f"{setup.scheme.name}: {terms} terms per step",
+                           {"terms": terms}))
     if setup.grid.radial and setup.scheme.in_place_transform:
         n = setup.grid.axes[0].points
         if n > RADIAL_DENSE_MAX:
+            exact = " or ".join(f"scheme = {name!r}" for name, cls in SCHEMES.items() if cls.exact_in_time)
             out.append(Finding("time step", "warn",
                 f"radial grid of {n} points (> {RADIAL_DENSE_MAX}): the singular radial terms are "
-                "kicked, which converges slowly; use fewer points or scheme = 'chebyshev'",
+                "kicked, which converges slowly; use fewer points" + (f" or {exact}" if exact else ""),
                 {"points": n}, field="grid.r.points"))
     return out
 

@@ -12,6 +12,7 @@ import sys
 
 from ._version import __version__
 from .errors import JobError, RunFailed
+from .registry import Names
 
 EXIT_OK, EXIT_FAIL, EXIT_INPUT = 0, 1, 2
 # Bad input prints one line per error; a job with more prints this many, then a count.
@@ -109,6 +110,20 @@ FLAG_TYPES = {
 }
 
 
+# -- names from registries ---------------------------------------------------------
+# Choices that are registered names are read from their registry when argparse
+# checks or lists them (registry.Names), so a registered one is accepted; the
+# registry's module loads then, not with every command.
+def _fft_backends():
+    from .fft import backend_choices   # lazy: numpy and scipy.fft, only when --fft is given or listed
+    return backend_choices()
+
+
+def _executors():
+    from .studies.executors import EXECUTORS   # lazy: the queue's modules, only when --executor is used
+    return EXECUTORS
+
+
 def _parser() -> argparse.ArgumentParser:
     p = _Parser(prog="wavesweep", description="Wave-packet simulations on grids, studies and analysis.")
     p.add_argument("--version", action="store_true", help="print the version and exit")
@@ -120,8 +135,8 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
                    help="override a job field, e.g. --set packet.width=15 (repeatable)")
     r.add_argument("--quiet", action="store_true", help="no progress bar")
-    r.add_argument("--fft", default=None, choices=("auto", "scipy", "pyfftw"),
-                   help="FFT backend (default: evolve.fft of the job, else auto)")
+    r.add_argument("--fft", default=None, choices=Names(_fft_backends),
+                   help="FFT backend (default: evolve.fft of the job; `wavesweep keys evolve` lists them)")
     r.add_argument("--force", action="store_true",
                    help="run even when `wavesweep check` finds errors (they are printed as warnings)")
 
@@ -156,6 +171,9 @@ def _parser() -> argparse.ArgumentParser:
     w.add_argument("--lease-seconds", type=FLAG_TYPES["--lease-seconds"], default=60.0,
                    help="a run whose worker has not reported for this long is requeued")
     w.add_argument("--max-attempts", type=FLAG_TYPES["--max-attempts"], default=3, help="attempts before a run is failed")
+    w.add_argument("--executor", default=None, choices=Names(_executors), metavar="NAME",
+                   help="the executor that drains the queue: one of %(choices)s (default: worker "
+                        "processes on this machine; --dask ADDRESS for a Dask cluster)")
     w.add_argument("--dask", default=None, metavar="ADDRESS",
                    help="run on the Dask cluster whose scheduler is at ADDRESS (tcp://host:8786), or "
                         "local:N for N local worker processes")
@@ -386,7 +404,7 @@ def _work(args) -> int:
     try:
         out = work(args.root, args.workers, deadline, checkpoint_seconds=60.0 * args.checkpoint_minutes,
                    lease_seconds=args.lease_seconds, max_attempts=args.max_attempts, batch=args.batch,
-                   dask=args.dask)
+                   executor=args.executor, dask=args.dask)
     except DiskFull as e:   # before any claim: nothing ran
         print(f"wavesweep work: {_one_line(e.reason)}; nothing claimed", file=sys.stderr)
         return EXIT_FAIL

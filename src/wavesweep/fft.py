@@ -8,8 +8,10 @@ It is made once per run, so backends that plan (pyFFTW) plan once.  With
 ``members`` it transforms a batch: arrays of shape ``(members, *grid.shape)``,
 each member along the grid's axes only.
 
-Backends register by name in :data:`BACKENDS`; ``make_transform(grid,
-backend="auto")`` picks the best available.
+Backends register by name in :data:`BACKENDS` (:func:`register_backend`),
+the one list of them: the job's ``evolve.fft``, ``run --fft`` and
+``wavesweep keys evolve`` read it.  ``make_transform(grid, backend=AUTO)``
+picks the best available.
 """
 from __future__ import annotations
 
@@ -23,8 +25,8 @@ import threading
 import numpy as np
 import scipy.fft
 
-__all__ = ["Transform", "ScipyTransform", "PyFFTWTransform", "BACKENDS", "make_transform",
-           "register_backend", "wisdom_path"]
+__all__ = ["Transform", "ScipyTransform", "PyFFTWTransform", "BACKENDS", "AUTO", "PLAIN", "make_transform",
+           "register_backend", "backend_choices", "wisdom_path"]
 
 
 class Transform:
@@ -35,6 +37,7 @@ class Transform:
     factor they multiply by anyway (it is one more pass over memory)."""
 
     name = "base"
+    summary = ""   # one line for `wavesweep keys evolve`
 
     def __init__(self, grid, dtype=np.complex128, threads: int | None = None,
                  members: int | None = None):
@@ -79,6 +82,7 @@ class ScipyTransform(Transform):
     """scipy.fft with ``workers`` threads; DST-I with ``norm="ortho"``."""
 
     name = "scipy"
+    summary = "scipy.fft: always available, no planning"
 
     def forward(self, a):
         if self._fft_axes:
@@ -98,7 +102,13 @@ class ScipyTransform(Transform):
         return c
 
 
-BACKENDS: dict[str, type[Transform]] = {"scipy": ScipyTransform}
+# name -> Transform class: the one list of FFT backends.
+BACKENDS: dict[str, type[Transform]] = {ScipyTransform.name: ScipyTransform}
+# Not a backend: the best registered one that loads (make_transform).
+AUTO = "auto"
+# The backend of methods that transform out of place (Chebyshev, Crank-Nicolson,
+# apply_hamiltonian), where planning would not pay: always registered.
+PLAIN = ScipyTransform.name
 
 
 def wisdom_path():
@@ -197,6 +207,7 @@ class PyFFTWTransform(Transform):
     """
 
     name = "pyfftw"
+    summary = "FFTW through pyFFTW (when installed): planned once, in place; box axes by scipy.fft"
 
     def __init__(self, grid, dtype=np.complex128, threads=None, members=None, effort="FFTW_MEASURE"):
         super().__init__(grid, dtype, threads, members)
@@ -244,14 +255,21 @@ class PyFFTWTransform(Transform):
         return b
 
 
-if _PYFFTW_INSTALLED:
-    BACKENDS["pyfftw"] = PyFFTWTransform
-
-
 def register_backend(cls: type[Transform]) -> type[Transform]:
-    """Class decorator: make a Transform subclass available by its ``name``."""
+    """Class decorator: make a Transform subclass available by its ``name``
+    (to jobs, ``run --fft`` and ``wavesweep keys``)."""
     BACKENDS[cls.name] = cls
     return cls
+
+
+if _PYFFTW_INSTALLED:
+    register_backend(PyFFTWTransform)
+
+
+def backend_choices() -> tuple[str, ...]:
+    """Every name ``evolve.fft`` and ``run --fft`` accept: :data:`AUTO`, then
+    the registered backends."""
+    return (AUTO, *BACKENDS)
 
 
 # Below this many grid points a transform is too short for threads to pay:
@@ -272,19 +290,19 @@ def default_threads(size: int | None = None) -> int:
     return cap
 
 
-def make_transform(grid, backend: str | type[Transform] = "auto", dtype=np.complex128,
+def make_transform(grid, backend: str | type[Transform] = AUTO, dtype=np.complex128,
                    threads: int | None = None, members: int | None = None) -> Transform:
     """A transform for ``grid`` (or a batch of ``members`` states on it) from
-    a backend name, a class, or ``"auto"``."""
+    a backend name, a class, or :data:`AUTO`."""
     if isinstance(backend, type):
         return backend(grid, dtype, threads, members)
-    if backend == "auto":
-        backend = "pyfftw" if "pyfftw" in BACKENDS else "scipy"
-        if backend == "pyfftw":
+    if backend == AUTO:
+        backend = PyFFTWTransform.name if PyFFTWTransform.name in BACKENDS else PLAIN
+        if backend == PyFFTWTransform.name:
             try:
                 _load_pyfftw()
             except ImportError:   # installed but broken: auto means the best that works
-                backend = "scipy"
+                backend = PLAIN
     try:
         cls = BACKENDS[backend]
     except KeyError:

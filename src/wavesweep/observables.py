@@ -15,13 +15,38 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 import scipy.fft
 
 from .kernels import view4
 
-__all__ = ["Detector", "Observer", "spectral_derivative"]
+__all__ = ["Detector", "Observer", "Scalar", "SCALARS", "spectral_derivative"]
+
+
+class Scalar(NamedTuple):
+    """A scalar observable recorded at every sample: the result variable
+    ``name`` (dimension ``time``), its quantity kind (a unit kind of the
+    result's ``units`` table, such as ``"length"``; None for a pure number)
+    and its ``long_name`` (``{axis}`` is the first grid axis' name).  The
+    run converts it from atomic units by its kind and the result writer
+    declares and writes it from this entry alone."""
+
+    name: str
+    kind: str | None
+    long_name: str
+
+
+# The scalars every run records, in the order of the result's variables;
+# Observer.measure_members computes each (atomic units) under its name.
+SCALARS: list[Scalar] = [
+    Scalar("norm", None, "probability on the grid"),
+    Scalar("x_mean", "length", "mean {axis} of the probability on the grid"),
+    Scalar("x_std", "length", "standard deviation of {axis}"),
+    Scalar("p_mean", "momentum", "mean momentum along {axis}"),
+    Scalar("energy", "energy", "<H> of the probability on the grid, per unit norm"),
+]
 
 
 @dataclass(frozen=True)

@@ -31,6 +31,7 @@ from .io.record import record_checksum
 from .io.recorder import ResultWriter
 from .job import Job, job_from_dict, load_job
 from .kernels import density_of
+from .observables import SCALARS
 from .setup import AXIS_LONG, Setup, analysis_record
 
 __all__ = ["Simulation", "RunBook", "run_job", "progress_bar"]
@@ -172,10 +173,9 @@ class Simulation:
         book.conv = conv
         values["absorbed"] = np.array(absorbed, dtype=float, copy=True)
         row = dict(values)
-        row["x_mean"] *= conv["length"]
-        row["x_std"] *= conv["length"]
-        row["p_mean"] *= conv["momentum"]
-        row["energy"] *= conv["energy"]
+        for scalar in SCALARS:   # each by its declared quantity kind
+            if scalar.kind:
+                row[scalar.name] *= conv[scalar.kind]
         row["flux"] = values["flux"] * conv["flux"]
         if "detector_psi" in values:
             row["detector_psi"] = values["detector_psi"] * conv["amplitude"]
@@ -277,7 +277,8 @@ class Simulation:
     # -- helpers ---------------------------------------------------------------
     def _converters(self):
         u = self.setup.units
-        return {"length": 1 / u.factor("length"), "energy": 1 / u.factor("energy"),
+        return {**{s.kind: 1 / u.factor(s.kind) for s in SCALARS if s.kind},   # the recorded scalars' kinds
+                "length": 1 / u.factor("length"), "energy": 1 / u.factor("energy"),
                 "momentum": 1 / u.factor("momentum"), "flux": u.factor("time"),
                 "amplitude": math.sqrt(u.factor("length"))}   # |psi|^2 dx is invariant
 

@@ -27,18 +27,18 @@ from .absorbers.tuning import cached_cap_strength
 from .adequacy import dynamics, memory_error, memory_estimate, physical_memory_error, representability, run_warnings
 from .eigen import BAND_CHUNK, BAND_STEPS, DEFAULT_MIN_WEIGHT, DENSE_MAX_POINTS, band_window, lanczos_recurrence
 from .errors import JobError
-from .fft import make_transform
+from .fft import AUTO, PLAIN, make_transform
 from .grid import Axis, Grid
 from .hamiltonian import Hamiltonian, static_potential_of
 from .io.record import (LANCZOS_MAX_POINTS, RECORD_VERSION, RecordedAbsorber, RecordedDetector, RecordedLayer,
                         RecordedRun, result_name)
 from .job import Job, grid_axes, job_from_dict
 from .marginals import free_space_marginals
-from .observables import Detector, Observer
+from .observables import SCALARS, Detector, Observer
 from .potentials import PotentialContext, make_term
 from .propagators import propagator_class
 from .schema import to_atomic
-from .states import PACKET_SCHEMAS, build_state
+from .states import PACKET_SCHEMAS, PACKETS, build_state
 
 __all__ = ["Model", "Setup", "resolve_job", "analysis_record", "recorded_run", "rebuilt_record",
            "set_kernel_threads", "AXIS_LONG"]
@@ -137,7 +137,7 @@ class Setup(Model):
         self.hamiltonian = Hamiltonian(self.grid, self.mass, self.terms, self.absorber.rate,
                                        static_potential=self.hamiltonian_static_potential())
         self.detectors = [self._detector(i, d) for i, d in enumerate(t["detector"])]
-        self.fft_backend = fft or ev.get("fft", "auto")
+        self.fft_backend = fft or ev.get("fft", AUTO)
         self.threads = threads or ev.get("threads")
         self.scheme = propagator_class(ev["scheme"])
         self.scheme.check_supported(self.hamiltonian, self.absorber, self.grid)
@@ -145,12 +145,14 @@ class Setup(Model):
     # -- pieces ----------------------------------------------------------------
     def _packet_atomic(self, table, name="packet") -> dict:
         kind = table["kind"]
+        cls = PACKETS[kind]
         p = to_atomic(table, PACKET_SCHEMAS[kind], self.units, name, self.grid.ndim)
-        if kind == "superposition":
-            p["packets"] = [self._packet_atomic(s, f"{name}.packets.{j}") for j, s in enumerate(table["packets"])]
-        if kind == "eigenstate" and table.get("potential") is not None:
+        if cls.nested:
+            p[cls.nested] = [self._packet_atomic(s, f"{name}.{cls.nested}.{j}")
+                             for j, s in enumerate(table[cls.nested])]
+        if cls.trap and table.get(cls.trap) is not None:
             # the trap's own terms, named under the packet in messages
-            p["trap_terms"] = [self._term(i, tab, f"{name}.potential") for i, tab in enumerate(table["potential"])]
+            p["trap_terms"] = [self._term(i, tab, f"{name}.{cls.trap}") for i, tab in enumerate(table[cls.trap])]
         return p
 
     def energy_window(self, axis: int, face: str) -> tuple[float, float]:
@@ -239,7 +241,7 @@ class Setup(Model):
         states).  Only split-operator steps work in the planned in-place
         buffer of a fast backend; the others keep several arrays alive at
         once and use scipy.fft."""
-        backend = self.fft_backend if self.scheme.in_place_transform else "scipy"
+        backend = self.fft_backend if self.scheme.in_place_transform else PLAIN
         return make_transform(self.grid, backend, self.dtype, threads or self.threads, members=members)
 
     def observer_transform(self, members: int | None = None, threads: int | None = None):
@@ -259,8 +261,11 @@ class Setup(Model):
         return Observer(self.grid, self.mass, self.observer_transform(), self.detectors, self.psi0)
 
     def unit_labels(self) -> dict:
+        """Unit labels by quantity kind: those of the recorded scalars
+        (observables.SCALARS), the axes, densities and fluxes."""
         u = self.units
-        return {"length": u.unit_label("length"), "time": u.unit_label("time"),
+        return {**{s.kind: u.unit_label(s.kind) for s in SCALARS if s.kind},
+                "length": u.unit_label("length"), "time": u.unit_label("time"),
                 "energy": u.unit_label("energy"), "momentum": u.unit_label("momentum"),
                 "density": f"{u.unit_label('length')}-{self.grid.ndim}",
                 "flux": f"{u.unit_label('time')}-1"}

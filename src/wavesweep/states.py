@@ -22,6 +22,8 @@ from __future__ import annotations
 
 import math
 import tomllib
+from collections.abc import Mapping
+from typing import ClassVar
 
 import numpy as np
 
@@ -32,58 +34,103 @@ from .io.paths import input_file
 from .marginals import momentum_marginal
 from .schema import Field
 
-__all__ = ["PACKET_SCHEMAS", "PACKET_FORMULAS", "build_state", "gaussian_packet", "momentum_spread"]
+__all__ = ["PACKETS", "PACKET_SCHEMAS", "DEFAULT_PACKET", "PacketKind", "register_packet", "build_state",
+           "gaussian_packet", "momentum_spread"]
 
-_GAUSSIAN = {
-    "kind": Field("str", "gaussian", doc="gaussian (the default), superposition, file or eigenstate"),
-    "center": Field("length", per_axis=True, doc="packet centre x0 (one per axis in 2D/3D)"),
-    "width": Field("length", per_axis=True, positive=True,
-                   doc="standard deviation of |psi|^2 in position"),
-    "momentum": Field("momentum", None, per_axis=True, doc="central momentum p0"),
-    "energy": Field("energy", None, nonnegative=True,
-                    doc="kinetic energy p0^2/2m of the central momentum (1D)"),
-    "direction": Field("number", 1.0, choices=(1, -1, 1.0, -1.0), physics=True,
-                       doc="sign of p0 with `energy`: 1 towards +x, -1 towards -x"),
-}
-_SUPERPOSITION = {
-    "kind": Field("str", doc="superposition"),
-    "packets": Field("list", doc="packet tables to superpose"),
-    "amplitudes": Field("list", None, doc="real weights a_j (default all 1)"),
-    "phases": Field("list", None, doc="phases in radians (default all 0)"),
-}
-_FILE = {
-    "kind": Field("str", doc="file"),
-    "path": Field("str", doc="netCDF file with psi_real and psi_imag on this grid "
-                             "(relative to the job file's folder)"),
-    "real": Field("str", "psi_real", doc="variable holding Re psi"),
-    "imag": Field("str", "psi_imag", doc="variable holding Im psi"),
-}
-_FILE["state"] = Field("int", None, nonnegative=True,
-                       doc="which state along the file's `state` dimension (0-based)")
-_EIGENSTATE = {
-    "kind": Field("str", doc="eigenstate"),
-    "n": Field("int", 0, nonnegative=True, physics=True,
-               doc="which stationary state: 0 = ground, in energy order"),
-    "momentum": Field("momentum", None, per_axis=True, doc="boost p: psi(r) exp(i p.r)"),
-    "potential": Field("list", None, doc="[[potential]]-style tables of the trap the state is "
-                                         "prepared in (default: the job's own potential)"),
-}
-PACKET_SCHEMAS = {"gaussian": _GAUSSIAN, "superposition": _SUPERPOSITION, "file": _FILE,
-                  "eigenstate": _EIGENSTATE}
-# psi(r, 0) of each kind, in the keys' names (``wavesweep keys packet.KIND`` prints it).
-PACKET_FORMULAS = {
-    "gaussian": "psi(r) = prod_i (2 pi width_i^2)^(-1/4) exp(-(x_i - center_i)^2 / (4 width_i^2) "
-                "+ i p_i (x_i - center_i)), p = momentum (hbar = 1); width is the standard "
-                "deviation of |psi|^2, the momentum spread is hbar / (2 width).  With energy "
-                "instead (1D): p = direction * sqrt(2 m energy).  Neither: p = 0",
-    "superposition": "psi = sum_j amplitudes_j exp(i phases_j) psi_j, psi_j the packet tables in "
-                     "packets, then normalised on the grid",
-    "file": "psi = real + i imag, the two netCDF variables (on exactly this grid); state picks "
-            "one along a `state` dimension",
-    "eigenstate": "psi = the n-th stationary state (0 = ground) of the Hamiltonian at t = 0 "
-                  "without the absorber (the job's potential, or the tables in `potential`), "
-                  "times exp(i momentum . r) when momentum is given; a degenerate level is refused",
-}
+
+class PacketKind:
+    """One kind of initial state (``[packet] kind = ...``): its keys, its
+    formula and how psi is built.  A subclass sets
+
+    * ``kind``: the job-file name; ``parameters``: key -> :class:`Field`
+      (``kind`` itself is added by :meth:`schema`); ``formula``: psi(r, 0) in
+      the keys' names (``wavesweep keys packet.KIND`` prints both);
+    * ``nested``: the key holding packet tables of its own (validated,
+      converted and built as packets, named ``packet.KEY.j``), else None;
+      ``trap``: the key holding ``[[potential]]``-style tables (validated
+      like the job's; built into ``packet["trap_terms"]``), else None.  A
+      ``path`` key is a file relative to the job file's folder;
+
+    and implements :meth:`build`, and where they apply :meth:`key_conflicts`,
+    :meth:`ignored_keys`, :meth:`unstated_defaults`, :meth:`gaussian_parts`
+    and :meth:`all_gaussian`.  :func:`register_packet` makes it a kind: the
+    job's validation, the set-up, ``wavesweep keys`` and ``check`` read
+    :data:`PACKETS` only.
+    """
+
+    kind: ClassVar[str] = ""
+    parameters: ClassVar[dict] = {}
+    formula: ClassVar[str] = ""
+    nested: ClassVar[str | None] = None
+    trap: ClassVar[str | None] = None
+
+    @classmethod
+    def schema(cls) -> dict:
+        """The table's schema: ``kind`` first, then :attr:`parameters`."""
+        return {"kind": Field("str", cls.kind, doc="the packet kind (wavesweep keys packet lists them)"),
+                **cls.parameters}
+
+    @classmethod
+    def key_conflicts(cls, raw: dict, ndim: int | None) -> list[tuple[str, str]]:
+        """``(key, message)`` for keys that may not be given together, from
+        their presence alone (checked even when a value is bad)."""
+        return []
+
+    @classmethod
+    def build(cls, packet: dict, grid, mass: float, field: str, length_unit, terms) -> np.ndarray:
+        """psi on the grid (any norm; :func:`build_state` normalises it) from
+        the packet table in atomic units; see :func:`build_state`."""
+        raise NotImplementedError
+
+    @classmethod
+    def ignored_keys(cls, used: dict) -> tuple:
+        """Keys whose default does not matter given the others (not listed by
+        ``check`` as physics defaults)."""
+        return ()
+
+    @classmethod
+    def unstated_defaults(cls, given: dict, used: dict, units) -> list[tuple[str, str, str]]:
+        """``(key, value in job units, what it is)`` for choices a job left
+        out that stay out of the resolved job (``check`` lists them)."""
+        return []
+
+    @classmethod
+    def gaussian_parts(cls, packet: dict) -> list:
+        """The Gaussian packets (atomic units) this packet is made of."""
+        return []
+
+    @classmethod
+    def all_gaussian(cls, packet: dict) -> bool:
+        """Whether it is Gaussian parts only (momenta known in closed form)."""
+        return False
+
+
+# kind -> PacketKind subclass: the one list of packet kinds.
+PACKETS: dict[str, type[PacketKind]] = {}
+
+
+def register_packet(cls: type[PacketKind]) -> type[PacketKind]:
+    """Class decorator: make a PacketKind subclass a ``[packet] kind``."""
+    if not cls.kind:
+        raise ValueError(f"{cls.__name__} has no kind to register")
+    PACKETS[cls.kind] = cls
+    return cls
+
+
+class _Schemas(Mapping):
+    """kind -> schema of every registered packet kind, read from :data:`PACKETS`."""
+
+    def __getitem__(self, kind):
+        return PACKETS[kind].schema()
+
+    def __iter__(self):
+        return iter(PACKETS)
+
+    def __len__(self):
+        return len(PACKETS)
+
+
+PACKET_SCHEMAS: Mapping[str, dict] = _Schemas()
 
 
 def gaussian_packet(coord: np.ndarray, x0: float, width: float, p0: float) -> np.ndarray:
@@ -117,17 +164,10 @@ def build_state(packet: dict, grid, mass: float, field: str = "packet",
     units; ``length_unit`` (bohr per unit, label) is for messages only.
     ``terms``: the job's potential terms, the default trap of an
     ``eigenstate`` packet (whose own trap, if any, is ``packet["trap_terms"]``)."""
-    kind = packet.get("kind", "gaussian")
-    if kind == "gaussian":
-        psi = _gaussian_state(packet, grid, mass, field, length_unit)
-    elif kind == "superposition":
-        psi = _superposition(packet, grid, mass, field, length_unit, terms)
-    elif kind == "eigenstate":
-        psi = _eigenstate(packet, grid, mass, field, terms)
-    elif kind == "file":
-        psi = _from_file(packet, grid, field, length_unit)
-    else:  # validated upstream; a programming error here
+    kind = packet.get("kind", DEFAULT_PACKET)
+    if kind not in PACKETS:  # validated upstream; a programming error here
         raise JobError(f"{field}.kind", f"unknown packet kind {kind!r}")
+    psi = PACKETS[kind].build(packet, grid, mass, field, length_unit, terms)
     norm = float(np.sum(np.abs(psi) ** 2)) * grid.cell_volume
     if not np.isfinite(norm) or norm <= 0:
         raise JobError(field, "the initial state is zero or not finite on the grid")
@@ -314,3 +354,133 @@ def _pick_state(re, im, index, path, field):
     if index >= n:
         raise JobError(f"{field}.state", f"{path!r} holds {n} states (0..{n - 1}); got {index}")
     return re.isel(state=index, drop=True), im.isel(state=index, drop=True)
+
+
+# ---------------------------------------------------------------------------
+# The kinds (registered in this order: `wavesweep keys packet` lists them so)
+# ---------------------------------------------------------------------------
+@register_packet
+class GaussianPacket(PacketKind):
+    kind = "gaussian"
+    parameters = {
+        "center": Field("length", per_axis=True, doc="packet centre x0 (one per axis in 2D/3D)"),
+        "width": Field("length", per_axis=True, positive=True,
+                       doc="standard deviation of |psi|^2 in position"),
+        "momentum": Field("momentum", None, per_axis=True, doc="central momentum p0"),
+        "energy": Field("energy", None, nonnegative=True,
+                        doc="kinetic energy p0^2/2m of the central momentum (1D)"),
+        "direction": Field("number", 1.0, choices=(1, -1, 1.0, -1.0), physics=True,
+                           doc="sign of p0 with `energy`: 1 towards +x, -1 towards -x"),
+    }
+    formula = ("psi(r) = prod_i (2 pi width_i^2)^(-1/4) exp(-(x_i - center_i)^2 / (4 width_i^2) "
+               "+ i p_i (x_i - center_i)), p = momentum (hbar = 1); width is the standard "
+               "deviation of |psi|^2, the momentum spread is hbar / (2 width).  With energy "
+               "instead (1D): p = direction * sqrt(2 m energy).  Neither: p = 0")
+
+    @classmethod
+    def key_conflicts(cls, raw, ndim):
+        if raw.get("momentum") is not None and raw.get("energy") is not None:
+            return [("energy", "give either momentum or energy, not both")]
+        if raw.get("energy") is not None and ndim not in (None, 1):
+            return [("energy", "in 2D/3D give `momentum` per axis instead")]
+        return []
+
+    @classmethod
+    def build(cls, packet, grid, mass, field, length_unit, terms):
+        return _gaussian_state(packet, grid, mass, field, length_unit)
+
+    @classmethod
+    def ignored_keys(cls, used):
+        # the sign of p0 matters only when p0 comes from the energy
+        return ("direction",) if used.get("energy") is None else ()
+
+    @classmethod
+    def unstated_defaults(cls, given, used, units):
+        if "momentum" not in given and "energy" not in given:
+            return [("momentum", f"0.0 {units.unit_label('momentum')}",
+                     "neither momentum nor energy given: a packet at rest")]
+        return []
+
+    @classmethod
+    def gaussian_parts(cls, packet):
+        return [packet]
+
+    @classmethod
+    def all_gaussian(cls, packet):
+        return True
+
+
+# The kind of a [packet] table that names none.
+DEFAULT_PACKET = GaussianPacket.kind
+
+
+@register_packet
+class Superposition(PacketKind):
+    kind = "superposition"
+    parameters = {
+        "packets": Field("list", doc="packet tables to superpose"),
+        "amplitudes": Field("list", None, doc="real weights a_j (default all 1)"),
+        "phases": Field("list", None, doc="phases in radians (default all 0)"),
+    }
+    formula = ("psi = sum_j amplitudes_j exp(i phases_j) psi_j, psi_j the packet tables in "
+               "packets, then normalised on the grid")
+    nested = "packets"
+
+    @classmethod
+    def build(cls, packet, grid, mass, field, length_unit, terms):
+        return _superposition(packet, grid, mass, field, length_unit, terms)
+
+    @classmethod
+    def unstated_defaults(cls, given, used, units):
+        n = len(used.get("packets") or [])
+        return [(key, repr([value] * n), doc)
+                for key, value, doc in (("amplitudes", 1.0, "weights of the packets"),
+                                        ("phases", 0.0, "phases of the packets (rad)"))
+                if key not in given]
+
+    @classmethod
+    def gaussian_parts(cls, packet):
+        return [q for p in packet["packets"] for q in PACKETS[p["kind"]].gaussian_parts(p)]
+
+    @classmethod
+    def all_gaussian(cls, packet):
+        return all(PACKETS[p["kind"]].all_gaussian(p) for p in packet["packets"])
+
+
+@register_packet
+class FilePacket(PacketKind):
+    kind = "file"
+    parameters = {
+        "path": Field("str", doc="netCDF file with psi_real and psi_imag on this grid "
+                                 "(relative to the job file's folder)"),
+        "real": Field("str", "psi_real", doc="variable holding Re psi"),
+        "imag": Field("str", "psi_imag", doc="variable holding Im psi"),
+        "state": Field("int", None, nonnegative=True,
+                       doc="which state along the file's `state` dimension (0-based)"),
+    }
+    formula = ("psi = real + i imag, the two netCDF variables (on exactly this grid); state picks "
+               "one along a `state` dimension")
+
+    @classmethod
+    def build(cls, packet, grid, mass, field, length_unit, terms):
+        return _from_file(packet, grid, field, length_unit)
+
+
+@register_packet
+class Eigenstate(PacketKind):
+    kind = "eigenstate"
+    parameters = {
+        "n": Field("int", 0, nonnegative=True, physics=True,
+                   doc="which stationary state: 0 = ground, in energy order"),
+        "momentum": Field("momentum", None, per_axis=True, doc="boost p: psi(r) exp(i p.r)"),
+        "potential": Field("list", None, doc="[[potential]]-style tables of the trap the state is "
+                                             "prepared in (default: the job's own potential)"),
+    }
+    formula = ("psi = the n-th stationary state (0 = ground) of the Hamiltonian at t = 0 "
+               "without the absorber (the job's potential, or the tables in `potential`), "
+               "times exp(i momentum . r) when momentum is given; a degenerate level is refused")
+    trap = "potential"
+
+    @classmethod
+    def build(cls, packet, grid, mass, field, length_unit, terms):
+        return _eigenstate(packet, grid, mass, field, terms)

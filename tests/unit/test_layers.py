@@ -20,7 +20,7 @@ PACKAGE = Path(__file__).resolve().parents[2] / "src" / "wavesweep"
 
 # Bottom to top.  A module may import from its own layer and the layers below.
 LAYERS = [
-    ("foundation", ["_version", "errors", "units", "schema", "io.paths", "io.diskspace", "io.atomic"]),
+    ("foundation", ["_version", "errors", "registry", "units", "schema", "io.paths", "io.diskspace", "io.atomic"]),
     ("kernels", ["kernels", "kernels.*"]),
     ("numerics", ["grid", "fft", "marginals", "hamiltonian", "potentials", "potentials.*", "eigen",
                   "absorbers", "absorbers.*", "states", "propagators", "propagators.*", "observables"]),

@@ -17,7 +17,7 @@ from wavesweep.job.schemas import (ABSORBER, AXIS, DETECTOR, DETECTOR_POSITION, 
 from wavesweep.potentials import REGISTRY
 from wavesweep.job.reference import (SWEEP, SWEEP_RANGE, TABLE_DOCS, UNIT_KEYS, default_findings,
                                  physics_defaults, reference, render_text, topics)
-from wavesweep.states import PACKET_FORMULAS, PACKET_SCHEMAS
+from wavesweep.states import PACKET_SCHEMAS, PACKETS
 from wavesweep.units import UnitSet
 
 NM_UNITS = {"length": "nm", "energy": "meV", "time": "fs"}
@@ -67,8 +67,8 @@ def test_every_key_of_every_schema_has_a_description():
 
 def test_every_table_and_packet_kind_is_described():
     assert set(TABLE_DOCS) == set(TOP_LEVEL)
-    assert set(PACKET_FORMULAS) == set(PACKET_SCHEMAS)
-    assert all(text.strip() for text in PACKET_FORMULAS.values())
+    assert set(PACKET_SCHEMAS) == set(PACKETS)
+    assert all(cls.formula.strip() for cls in PACKETS.values())
 
 
 def test_physics_marks_sit_on_real_defaults():

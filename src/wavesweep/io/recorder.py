@@ -31,11 +31,10 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import DiskFull, JobError
+from ..observables import SCALARS
 from .diskspace import NO_SPACE, disk_full_from
 
 __all__ = ["ResultWriter", "atomic_rename", "copy_file", "fsync_folder"]
-
-SCALARS = ("norm", "x_mean", "x_std", "p_mean", "energy")
 
 
 def fsync_folder(folder: Path) -> None:
@@ -292,16 +291,10 @@ class ResultWriter:
         pot = self._var("potential", "f8", tuple(names), zlib=True, complevel=4)
         pot.units, pot.long_name = u["energy"], "static part of the potential V"
         pot[:] = np.asarray(lay["potential"])[tuple(slice(None, None, s) for _ in names)]
-        meta = {
-            "norm": ("1", "probability on the grid"),
-            "x_mean": (u["length"], f"mean {names[0]} of the probability on the grid"),
-            "x_std": (u["length"], f"standard deviation of {names[0]}"),
-            "p_mean": (u["momentum"], f"mean momentum along {names[0]}"),
-            "energy": (u["energy"], "<H> of the probability on the grid, per unit norm"),
-        }
-        for key, (unit, long) in meta.items():
-            v = self._var(key, "f8", ("time",))
-            v.units, v.long_name = unit, long
+        for scalar in SCALARS:   # declared with the observables
+            v = self._var(scalar.name, "f8", ("time",))
+            v.units = u[scalar.kind] if scalar.kind else "1"
+            v.long_name = scalar.long_name.format(axis=names[0])
         f = self._var("flux", "f8", ("time", "detector"))
         f.units, f.long_name = u["flux"], "probability current through the detector"
         f.coordinates = "detector_x detector_axis"  # CF: auxiliary coordinates of `detector`
@@ -414,7 +407,7 @@ class ResultWriter:
         i0, n = self._n_time, len(self._buf)
         ds = self.ds
         ds["time"][i0:i0 + n] = np.array([b["time"] for b in self._buf])
-        for key in SCALARS + ("autocorrelation_real", "autocorrelation_imag"):
+        for key in [s.name for s in SCALARS] + ["autocorrelation_real", "autocorrelation_imag"]:
             if key in ds.variables and key in self._buf[0]:
                 ds[key][i0:i0 + n] = np.array([b[key] for b in self._buf])
         if len(self.layout["detectors"]):

@@ -22,10 +22,12 @@ from typing import NamedTuple
 
 from ..adequacy import Finding
 from ..errors import JobError
+from ..fft import BACKENDS
 from ..potentials import REGISTRY
 from ..potentials.library import EDGES
+from ..propagators import SCHEMES
 from ..schema import Field
-from ..states import PACKET_FORMULAS, PACKET_SCHEMAS
+from ..states import DEFAULT_PACKET, PACKET_SCHEMAS, PACKETS
 from ..units import KINDS, UNITS
 from .document import Job
 from .schemas import ABSORBER, AXIS, DETECTOR, DETECTOR_POSITION, EVOLVE, GRID, PARTICLE, RECORD, TOP_LEVEL
@@ -165,7 +167,7 @@ def _potential_section(kind: str) -> dict:
 
 def _packet_section(kind: str) -> dict:
     return _section(f"packet.{kind}", f'[packet] kind = "{kind}"', "", _keys(PACKET_SCHEMAS[kind]),
-                    PACKET_FORMULAS.get(kind))
+                    PACKETS[kind].formula)
 
 
 def _kind_list(names, summaries) -> list[dict]:
@@ -194,11 +196,13 @@ def _table_sections(name: str) -> list[dict]:
     if name == "packet":
         kinds = list(PACKET_SCHEMAS)
         return [_section("packet", "[packet]", doc, [],
-                         kinds=_kind_list(kinds, [PACKET_FORMULAS.get(k, "") for k in kinds]),
-                         notes=["kind = one of the kinds above (default gaussian; wavesweep keys "
+                         kinds=_kind_list(kinds, [PACKETS[k].formula for k in kinds]),
+                         notes=[f"kind = one of the kinds above (default {DEFAULT_PACKET}; wavesweep keys "
                                 "packet.KIND: its keys)"])]
     if name == "evolve":
-        return [_section("evolve", "[evolve]", doc, _keys(EVOLVE))]
+        schemes = [f"scheme = {n!r}: {cls.summary}" for n, cls in SCHEMES.items()]
+        backends = [f"fft = {n!r}: {cls.summary}" for n, cls in BACKENDS.items()]
+        return [_section("evolve", "[evolve]", doc, _keys(EVOLVE), notes=schemes + backends)]
     if name == "absorber":
         return [_section("absorber", "[absorber]", doc, _keys(ABSORBER, skip=()),
                          notes=["strength may also be a table by face, e.g. "
@@ -394,23 +398,18 @@ def _potential_defaults(given, used, prefix, units, axes) -> list[PhysicsDefault
 def _packet_defaults(given, used, prefix, units, axes) -> list[PhysicsDefault]:
     if not isinstance(given, dict) or not isinstance(used, dict):
         return []
-    kind = used.get("kind", "gaussian")
-    # the sign of p0 matters only when p0 comes from the energy
-    skip = ("direction",) if kind == "gaussian" and used.get("energy") is None else ()
-    out = _missing(PACKET_SCHEMAS.get(kind, {}), given, used, prefix, units, skip)
-    if kind == "gaussian" and "momentum" not in given and "energy" not in given:
-        out.append(PhysicsDefault(f"{prefix}.momentum", f"0.0 {units.unit_label('momentum')}",
-                                  "neither momentum nor energy given: a packet at rest"))
-    if kind == "superposition":
-        n = len(used.get("packets") or [])
-        for key, value, doc in (("amplitudes", 1.0, "weights of the packets"),
-                                ("phases", 0.0, "phases of the packets (rad)")):
-            if key not in given:
-                out.append(PhysicsDefault(f"{prefix}.{key}", repr([value] * n), doc))
-        for j, (g, u) in enumerate(zip(_as_list(given.get("packets")), used.get("packets") or [])):
-            out += _packet_defaults(g, u, f"{prefix}.packets.{j}", units, axes)
-    if kind == "eigenstate" and used.get("potential"):
-        out += _potential_defaults(given.get("potential"), used["potential"], f"{prefix}.potential",
+    kind = used.get("kind", DEFAULT_PACKET)
+    cls = PACKETS.get(kind) if isinstance(kind, str) else None
+    if cls is None:
+        return []
+    out = _missing(PACKET_SCHEMAS[kind], given, used, prefix, units, cls.ignored_keys(used))
+    out += [PhysicsDefault(f"{prefix}.{key}", value, doc)
+            for key, value, doc in cls.unstated_defaults(given, used, units)]
+    if cls.nested:
+        for j, (g, u) in enumerate(zip(_as_list(given.get(cls.nested)), used.get(cls.nested) or [])):
+            out += _packet_defaults(g, u, f"{prefix}.{cls.nested}.{j}", units, axes)
+    if cls.trap and used.get(cls.trap):
+        out += _potential_defaults(given.get(cls.trap), used[cls.trap], f"{prefix}.{cls.trap}",
                                    units, axes)
     return out
 

@@ -1,14 +1,18 @@
 """The schemas of a job file's tables: every key, its kind (a unit kind or a
 plain type), its default and its documentation (``wavesweep keys`` prints
 them).  The schemas of potentials and packets live with their kinds
-(:data:`wavesweep.potentials.REGISTRY`, :data:`wavesweep.states.PACKET_SCHEMAS`)."""
+(:data:`wavesweep.potentials.REGISTRY`, :data:`wavesweep.states.PACKETS`);
+the names of schemes and FFT backends are read from their registries
+(:data:`wavesweep.propagators.SCHEMES`, :data:`wavesweep.fft.BACKENDS`) when
+a job is validated, so a registered one is accepted."""
 from __future__ import annotations
 
+from ..fft import AUTO, backend_choices
 from ..grid import BOUNDARIES
-from ..propagators import SCHEMES
+from ..propagators import DEFAULT_SCHEME, SCHEMES
+from ..registry import Names
 from ..schema import Field
 
-FFT_BACKENDS = ("auto", "scipy", "pyfftw")
 # Keys that choose how a run is computed, not what is computed: left out of the run id.
 NOT_PHYSICS = {"evolve": ("fft", "threads")}
 
@@ -46,12 +50,12 @@ GRID = {
 EVOLVE = {
     "dt": Field("time", positive=True, doc="time step"),
     "duration": Field("time", positive=True, doc="total propagation time, a whole number of steps"),
-    "scheme": Field("str", "strang", choices=tuple(SCHEMES),
-                    doc="propagator: strang (2nd-order split-operator), order4 (Yoshida), "
-                        "order4_suzuki, chebyshev (time-independent H), crank_nicolson (1D)"),
+    "scheme": Field("str", DEFAULT_SCHEME, choices=Names(SCHEMES),
+                    doc="propagator (the schemes are listed below)"),
     "precision": Field("str", "double", choices=("double", "single"),
                        doc="complex128 (double) or complex64 (single) arithmetic"),
-    "fft": Field("str", "auto", choices=FFT_BACKENDS, doc="FFT backend: auto, scipy, pyfftw"),
+    "fft": Field("str", AUTO, choices=Names(backend_choices),
+                 doc=f"FFT backend (listed below); {AUTO}: the fastest one installed"),
     "threads": Field("int", None, positive=True, maximum=4096,
                      doc="threads of the transforms and kernels (default: WAVESWEEP_THREADS, else "
                          "chosen by the grid size)"),

@@ -26,7 +26,7 @@ from ..grid import BOUNDARIES, Axis, Grid
 from ..io.paths import file_kind
 from ..potentials import REGISTRY, PotentialContext, make_term, term_class
 from ..schema import MAX_INT, Field, check_unknown, unknown_keys, validate_table
-from ..states import PACKET_SCHEMAS
+from ..states import DEFAULT_PACKET, PACKET_SCHEMAS, PACKETS
 from ..units import UnitSet
 from .document import Job, grid_axes, job_number
 from .dotted import apply_overrides, file_position, parse_override
@@ -250,11 +250,14 @@ def _packet_traps(packet, name) -> list[tuple[str, list]]:
     if not isinstance(packet, dict):
         return []
     out = []
-    if packet.get("kind") == "eigenstate" and packet.get("potential"):
-        out.append((f"{name}.potential", packet["potential"]))
-    if packet.get("kind") == "superposition":
-        for j, p in enumerate(packet.get("packets") or []):
-            out += _packet_traps(p, f"{name}.packets.{j}")
+    kind = PACKETS.get(packet.get("kind")) if isinstance(packet.get("kind"), str) else None
+    if kind is None:
+        return out
+    if kind.trap and packet.get(kind.trap):
+        out.append((f"{name}.{kind.trap}", packet[kind.trap]))
+    if kind.nested:
+        for j, p in enumerate(packet.get(kind.nested) or []):
+            out += _packet_traps(p, f"{name}.{kind.nested}.{j}")
     return out
 
 
@@ -387,35 +390,34 @@ def _packet(raw, units, ndim, base, name) -> dict:
         raise JobError(name, f"missing [{name}] table; e.g. kind = 'gaussian', center, width, momentum")
     if not isinstance(raw, dict):
         raise JobError(name, "must be a table")
-    kind = raw.get("kind", "gaussian")
+    kind = raw.get("kind", DEFAULT_PACKET)
     if not isinstance(kind, str):
         raise JobError(f"{name}.kind", f"must be a string, one of {', '.join(PACKET_SCHEMAS)}; got {kind!r}")
     if kind not in PACKET_SCHEMAS:
         near = difflib.get_close_matches(str(kind), PACKET_SCHEMAS, n=1)
         hint = f"did you mean {near[0]!r}? " if near else ""
         raise JobError(f"{name}.kind", f"unknown packet kind {kind!r}; {hint}known: {', '.join(PACKET_SCHEMAS)}")
+    cls = PACKETS[kind]
     found = ErrorCollector()
     # combinations of keys need only their presence: checked even when a value is bad
-    if kind == "gaussian" and raw.get("momentum") is not None and raw.get("energy") is not None:
-        found.add(JobError(f"{name}.energy", "give either momentum or energy, not both"))
-    elif kind == "gaussian" and raw.get("energy") is not None and ndim not in (None, 1):
-        found.add(JobError(f"{name}.energy", "in 2D/3D give `momentum` per axis instead"))
+    for key, message in cls.key_conflicts(raw, ndim):
+        found.add(JobError(f"{name}.{key}", message))
     t = None
     with found.check():
         t = validate_table(raw, PACKET_SCHEMAS[kind], name, units, ndim)
         t["kind"] = kind
-    if t is not None and kind == "superposition":
+    if t is not None and cls.nested:
         parts = []
-        for j, p in enumerate(t["packets"]):
+        for j, p in enumerate(t[cls.nested]):
             with found.check():
-                parts.append(_packet(p, units, ndim, base, f"{name}.packets.{j}"))
-        t["packets"] = parts
-    if t is not None and kind == "file":
+                parts.append(_packet(p, units, ndim, base, f"{name}.{cls.nested}.{j}"))
+        t[cls.nested] = parts
+    if t is not None and t.get("path") is not None:
         t["path"] = str((base / t["path"]).resolve())
-    if t is not None and kind == "eigenstate" and t.get("potential") is not None:
+    if t is not None and cls.trap and t.get(cls.trap) is not None:
         # the same checks as the job's [[potential]] tables, named under this packet
-        t["potential"] = (_potentials(t["potential"], units, ndim, base, found, f"{name}.potential")
-                          if t["potential"] else [])
+        t[cls.trap] = (_potentials(t[cls.trap], units, ndim, base, found, f"{name}.{cls.trap}")
+                       if t[cls.trap] else [])
     found.raise_if_any()
     return t
 

@@ -1,15 +1,20 @@
-"""Propagators by name (or class): one interface, see :mod:`.base`."""
+"""Propagators by name (or class): one interface, see :mod:`.base`.
+
+:data:`SCHEMES` is the one list of them: a class decorated with
+:func:`register_scheme` in its own module is a scheme once that module is
+imported below (one line each; the order of the imports is the order
+``wavesweep keys`` lists them in)."""
 from __future__ import annotations
 
 from ..errors import JobError
-from .base import Propagator
+from .base import SCHEMES, Propagator, register_scheme
+# the split-operator schemes first: SCHEMES lists them in the order of these imports
+from .split_operator import Order4, Order4Suzuki, SplitOperator, Strang
 from .chebyshev import Chebyshev
 from .crank_nicolson import CrankNicolson
-from .split_operator import Order4, Order4Suzuki, SplitOperator, Strang
 
-SCHEMES: dict[str, type[Propagator]] = {
-    cls.name: cls for cls in (Strang, Order4, Order4Suzuki, Chebyshev, CrankNicolson)
-}
+# The scheme of a job that names none (validated against SCHEMES like any other).
+DEFAULT_SCHEME = Strang.name
 
 
 def propagator_class(scheme) -> type[Propagator]:
@@ -24,4 +29,4 @@ def propagator_class(scheme) -> type[Propagator]:
 
 
 __all__ = ["Propagator", "SplitOperator", "Strang", "Order4", "Order4Suzuki", "Chebyshev",
-           "CrankNicolson", "SCHEMES", "propagator_class"]
+           "CrankNicolson", "SCHEMES", "DEFAULT_SCHEME", "propagator_class", "register_scheme"]

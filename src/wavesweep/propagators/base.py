@@ -3,7 +3,8 @@
 A propagator advances psi on a grid under a :class:`~wavesweep.hamiltonian.Hamiltonian`
 by whole time steps ``dt`` (atomic units).  Subclasses implement:
 
-1. ``name`` and ``order`` (class attributes);
+1. ``name``, ``order`` and ``summary`` (class attributes; the name is the
+   job's ``evolve.scheme``, the summary one line of ``wavesweep keys evolve``);
 2. ``_step_impl(psi, nsteps)`` returning psi advanced by ``nsteps`` steps from
    ``self.t``, adding the probability removed at each absorber face to
    ``self.absorbed`` (one float64 per face, in the order of
@@ -18,30 +19,44 @@ by whole time steps ``dt`` (atomic units).  Subclasses implement:
    backend's planned buffer (the set-up then gives it the job's backend;
    others get scipy.fft), ``renormalises_single = True`` when the method
    keeps a single-precision norm itself (the run then does not), and
-   :meth:`peak_bytes` when its memory differs from the default estimate.
+   :meth:`peak_bytes` when its memory differs from the default estimate;
+6. optionally ``exact_in_time = True`` for a converged expansion of
+   exp(-i H dt) (no splitting error: ``check``'s time-step criterion does not
+   judge the phase per step), with :meth:`expansion_terms` for ``check`` to
+   report the expansion's length.
 
 Everything the rest of the package reads of a propagator class is declared
-here: ``name``, ``order``, ``batched``, ``in_place_transform``,
-``renormalises_single``, :meth:`check_supported` and :meth:`peak_bytes`.
+here: ``name``, ``order``, ``summary``, ``batched``, ``in_place_transform``,
+``renormalises_single``, ``exact_in_time``, :meth:`check_supported`,
+:meth:`peak_bytes` and :meth:`expansion_terms`.
+
+A propagator is known by its name once :func:`register_scheme` has seen its
+class (a decorator); :data:`SCHEMES` is the one list of them, read by the
+job's validation, ``wavesweep keys`` and ``check``.
 
 The public :meth:`Propagator.step` keeps the books (time, step count) so
 that subclasses only compute.
 """
 from __future__ import annotations
 
+import threading
 from typing import ClassVar
 
 import numpy as np
 
-__all__ = ["Propagator"]
+from ..errors import JobError
+
+__all__ = ["Propagator", "SCHEMES", "register_scheme", "other_schemes"]
 
 
 class Propagator:
     name: ClassVar[str] = ""
     order: ClassVar[int] = 0
+    summary: ClassVar[str] = ""
     batched: ClassVar[bool] = False
     in_place_transform: ClassVar[bool] = False
     renormalises_single: ClassVar[bool] = False
+    exact_in_time: ClassVar[bool] = False
 
     def __init__(self, hamiltonian, dt: float, transform=None, absorber=None,
                  dtype=np.complex128, t0: float = 0.0, members: int | None = None):
@@ -83,6 +98,12 @@ class Propagator:
         arrays of psi and three of float64."""
         return float(points) * complex_bytes * 7 + float(points) * 8.0 * 3
 
+    @classmethod
+    def expansion_terms(cls, hamiltonian, dt: float) -> int | None:
+        """Terms per step of a method that expands exp(-i H dt) in a series
+        (``check`` reports it); None for any other method."""
+        return None
+
     @property
     def t(self) -> float:
         """Current time (atomic units); computed from the step count so that
@@ -115,3 +136,41 @@ class Propagator:
         out = self.transform.backward(tk)
         out += h.potential(self.t if t is None else t) * psi
         return out
+
+
+# name -> propagator class: the one list of schemes (register_scheme adds to it).
+SCHEMES: dict[str, type[Propagator]] = {}
+
+
+def register_scheme(cls: type[Propagator]) -> type[Propagator]:
+    """Class decorator: make a Propagator subclass a scheme of the job's
+    ``evolve.scheme`` by its ``name``."""
+    if not cls.name:
+        raise ValueError(f"{cls.__name__} has no name to register")
+    SCHEMES[cls.name] = cls
+    return cls
+
+
+_probing = threading.local()   # other_schemes is asking the schemes: their messages need no advice
+
+
+def other_schemes(cls, hamiltonian, absorber, grid) -> str:
+    """For a ``check_supported`` message: the registered schemes besides
+    ``cls`` that can propagate this problem, as "'a' or 'b'" (read from
+    :data:`SCHEMES`, so the advice names no scheme that is not there)."""
+    if getattr(_probing, "active", False):
+        return "another scheme"
+    _probing.active = True
+    try:
+        names = []
+        for name, other in SCHEMES.items():
+            if other is cls:
+                continue
+            try:
+                other.check_supported(hamiltonian, absorber, grid)
+            except JobError:
+                continue
+            names.append(repr(name))
+    finally:
+        _probing.active = False
+    return " or ".join(names) if names else "another scheme"

@@ -18,37 +18,55 @@ import numpy as np
 from scipy.special import jv
 
 from ..errors import JobError
-from .base import Propagator
+from .base import Propagator, other_schemes, register_scheme
 
 __all__ = ["Chebyshev"]
 
 
+@register_scheme
 class Chebyshev(Propagator):
     name = "chebyshev"
     order = 0  # spectrally exact in time (no power-law error)
+    summary = "Chebyshev expansion of exp(-i H dt): time-independent H, no CAP; exact in time"
+    exact_in_time = True
 
     @classmethod
     def check_supported(cls, hamiltonian, absorber, grid):
         if hamiltonian.time_dependent:
-            raise JobError("evolve.scheme", "'chebyshev' needs a time-independent Hamiltonian; "
-                                            "this job has a time-dependent potential: use 'strang' or 'order4'")
+            raise JobError("evolve.scheme", f"{cls.name!r} needs a time-independent Hamiltonian; this job has "
+                                            "a time-dependent potential: use "
+                                            f"{other_schemes(cls, hamiltonian, absorber, grid)}")
         if absorber is not None and absorber.active and absorber.kind == "cap":
-            raise JobError("absorber.kind", "'chebyshev' cannot use a CAP (non-Hermitian H); "
-                                            "use absorber.kind = 'mask' or another scheme")
+            raise JobError("absorber.kind", f"{cls.name!r} cannot use a CAP (non-Hermitian H); use "
+                                            "absorber.kind = 'mask' or another scheme: "
+                                            f"{other_schemes(cls, hamiltonian, absorber, grid)}")
 
-    def __init__(self, *args, **kwargs):
-        super().__init__(*args, **kwargs)
-        lo, hi = self.hamiltonian.spectral_range()
+    @staticmethod
+    def _expansion(hamiltonian, dt):
+        """(E_mid, E_half, coefficients): the spectral range's centre and
+        half width (hartree, padded by 1e-3 of the width) and the expansion's
+        coefficients 2 (-i)^n J_n(E_half dt) exp(-i E_mid dt) (the first
+        without the 2), cut where they fall below 1e-17 of the largest
+        (Tal-Ezer and Kosloff, J. Chem. Phys. 81, 3967 (1984))."""
+        lo, hi = hamiltonian.spectral_range()
         pad = 1e-3 * (hi - lo) + 1e-12
         lo, hi = lo - pad, hi + pad
-        self.e_mid = 0.5 * (hi + lo)
-        self.e_half = 0.5 * (hi - lo)
-        alpha = self.e_half * self.dt
+        e_mid = 0.5 * (hi + lo)
+        e_half = 0.5 * (hi - lo)
+        alpha = e_half * dt
         n = np.arange(int(alpha + 40 + 10 * alpha ** (1 / 3)) + 1)
         coeff = jv(n, alpha) * (-1j) ** n
         coeff[1:] *= 2.0
         big = np.nonzero(np.abs(coeff) > 1e-17 * max(1.0, np.abs(coeff).max()))[0]
-        self.coefficients = coeff[: big[-1] + 1] * np.exp(-1j * self.e_mid * self.dt)
+        return e_mid, e_half, coeff[: big[-1] + 1] * np.exp(-1j * e_mid * dt)
+
+    @classmethod
+    def expansion_terms(cls, hamiltonian, dt):
+        return len(cls._expansion(hamiltonian, float(dt))[2])
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.e_mid, self.e_half, self.coefficients = self._expansion(self.hamiltonian, self.dt)
         self._v = self.hamiltonian.static_potential
         self._mask = None
         absorber = self.absorber

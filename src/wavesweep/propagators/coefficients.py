@@ -19,5 +19,3 @@ _P = 1.0 / (4.0 - 4.0 ** (1.0 / 3.0))
 STRANG = (1.0,)
 YOSHIDA4 = (_W1, -_CBRT2 * _W1, _W1)
 SUZUKI4 = (_P, _P, 1.0 - 4.0 * _P, _P, _P)
-
-TABLES = {"strang": (STRANG, 2), "order4": (YOSHIDA4, 4), "order4_suzuki": (SUZUKI4, 4)}

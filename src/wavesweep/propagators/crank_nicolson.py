@@ -15,19 +15,22 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import JobError
-from .base import Propagator
+from .base import Propagator, other_schemes, register_scheme
 
 __all__ = ["CrankNicolson"]
 
 
+@register_scheme
 class CrankNicolson(Propagator):
     name = "crank_nicolson"
     order = 2
+    summary = "Crank-Nicolson (1D only): second order, unitary, a sparse solve per step"
 
     @classmethod
     def check_supported(cls, hamiltonian, absorber, grid):
         if grid.ndim != 1:
-            raise JobError("evolve.scheme", "'crank_nicolson' is 1D only; use 'strang' or 'order4' in 2D/3D")
+            raise JobError("evolve.scheme", f"{cls.name!r} is 1D only; in 2D/3D use "
+                                            f"{other_schemes(cls, hamiltonian, absorber, grid)}")
 
     def __init__(self, *args, **kwargs):
         import scipy.sparse as sp   # lazy: scipy.sparse and its LU (0.06 s) load with the first run

@@ -52,7 +52,7 @@ from typing import ClassVar
 import numpy as np
 
 from ..kernels import view4
-from .base import Propagator
+from .base import Propagator, register_scheme
 from .coefficients import STRANG, SUZUKI4, YOSHIDA4
 
 # Largest radial grid whose static Hamiltonian is diagonalised densely (two
@@ -460,28 +460,34 @@ class SplitOperator(Propagator):
         return psi
 
 
+@register_scheme
 class Strang(SplitOperator):
     """Second-order Strang splitting (Strang, SIAM J. Numer. Anal. 5, 506 (1968))."""
 
     name = "strang"
     order = 2
+    summary = "second-order split-operator (Strang): 1 FFT pair per step"
     weights = STRANG
     kick_factors = 1   # its whole kick is the half kick squared
 
 
+@register_scheme
 class Order4(SplitOperator):
     """Fourth order: Yoshida's triple jump of Strang sub-steps (3 FFT pairs)."""
 
     name = "order4"
     order = 4
+    summary = "fourth-order split-operator (Yoshida's triple jump): 3 FFT pairs per step"
     weights = YOSHIDA4
     kick_factors = 2
 
 
+@register_scheme
 class Order4Suzuki(SplitOperator):
     """Fourth order: Suzuki's five-stage composition (5 FFT pairs, smaller error)."""
 
     name = "order4_suzuki"
     order = 4
+    summary = "fourth-order split-operator (Suzuki, five stages): 5 FFT pairs, a smaller error"
     weights = SUZUKI4
 

@@ -11,7 +11,7 @@ from ..check import preflight
 from ..errors import DiskFull, JobError
 from ..io.diskspace import free_bytes
 from ..study import load_study
-from .executors import EXECUTORS, WorkerSettings
+from .executors import CLUSTER_EXECUTOR, DEFAULT_EXECUTOR, WorkerSettings, executor_class
 from .executors.local import LocalExecutor
 from .queue import DB_NAME, RESERVE_BYTES, Queue
 
@@ -71,9 +71,11 @@ def until_deadline(text: str | None, now: datetime | None = None) -> tuple[float
         raise JobError("--until", f"{text!r} is not HH:MM or a date-time like 2026-12-02T07:00") from None
 
 
-def work(root=None, workers: int = 1, until: str | float | None = None, executor="local", dask: str | None = None,
+def work(root=None, workers: int = 1, until: str | float | None = None, executor=None, dask: str | None = None,
          **settings) -> dict:
-    """Drain the queue at ROOT with an executor (by name or class).
+    """Drain the queue at ROOT with an executor: a name registered in
+    :data:`~.executors.EXECUTORS` (default :data:`~.executors.DEFAULT_EXECUTOR`)
+    or an Executor class.
 
     Returns the executor's summary with what this drain did added:
     ``done``, ``failed`` and ``requeued`` (runs its workers finished,
@@ -91,24 +93,29 @@ def work(root=None, workers: int = 1, until: str | float | None = None, executor
     kept in ``ROOT/.disk-reserve``, so that a full disk can still be recorded)
     is a :class:`~wavesweep.errors.DiskFull` before any run is claimed.
     ``until``: ``--until`` text (:func:`parse_until`) or epoch seconds.
-    ``dask``: drain on the Dask cluster at that scheduler address (or
-    ``local:N``, a LocalCluster of N worker processes) instead."""
+    ``dask``: drain with :data:`~.executors.CLUSTER_EXECUTOR` on the Dask
+    cluster at that scheduler address (or ``local:N``, a LocalCluster of N
+    worker processes)."""
 
     if workers < 1:
         raise JobError("--workers", f"must be at least 1, got {workers}")
     if dask is not None and workers != 1:
         raise JobError("--workers", "with --dask the cluster's workers run the study; drop --workers "
                                     "(use --dask local:N for N local worker processes)")
+    if dask is not None and executor not in (None, CLUSTER_EXECUTOR):
+        raise JobError("--executor", f"--dask runs the {CLUSTER_EXECUTOR} executor; drop --executor {executor}")
+    if dask is None and executor == CLUSTER_EXECUTOR:
+        raise JobError("--dask", f"the {CLUSTER_EXECUTOR} executor needs a scheduler: --dask ADDRESS "
+                                 "(or local:N for N local worker processes)")
+    name = CLUSTER_EXECUTOR if dask is not None else executor or DEFAULT_EXECUTOR
+    cls = executor_class(name) if isinstance(name, str) else name
     queue = existing_queue(root)
     deadline = until if until is None or isinstance(until, (int, float)) else parse_until(until)
-    cls = EXECUTORS[executor] if isinstance(executor, str) else executor
     # before any worker starts: a read-only root would make each of them crash
     queue.check_writable(sorted({r["study"] for r in queue.runs() if r["state"] == "queued"}))
     since = queue.last_event()
     if dask is not None:
-        from .executors.cluster import DaskExecutor   # lazy: dask.distributed only for --dask
-        cls = DaskExecutor
-        ex = DaskExecutor(queue.root, address=dask, settings=WorkerSettings(until=deadline, **settings))
+        ex = cls(queue.root, address=dask, settings=WorkerSettings(until=deadline, **settings))
     else:
         ex = cls(queue.root, workers=workers, settings=WorkerSettings(until=deadline, **settings))
     had_reserve = queue.reserve_path.exists()
