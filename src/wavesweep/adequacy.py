@@ -26,7 +26,7 @@ from .errors import JobError
 from .fft import wisdom_path
 from .hamiltonian import split_time_dependent
 from .marginals import momentum_marginal
-from .propagators import DEFAULT_SCHEME, propagator_class
+from .propagators import DEFAULT_SCHEME, scheme_class
 from .propagators.split_operator import RADIAL_DENSE_MAX
 from .states import PACKETS, central_momenta, momentum_spread
 
@@ -1297,7 +1297,7 @@ def memory_estimate(job) -> dict:
     size = int(np.prod(_job_points(table), dtype=np.float64)) if _job_points(table) else 0
     itemsize = 8 if table["evolve"].get("precision") == "single" else 16
     psi_bytes = float(size) * itemsize
-    scheme = propagator_class(table["evolve"].get("scheme", DEFAULT_SCHEME))
+    scheme = scheme_class(table["evolve"].get("scheme", DEFAULT_SCHEME))
     absorbing = (table.get("absorber") or {}).get("kind", "none") != "none"
     radial = int(table["grid"]["r"]["points"]) if "r" in table["grid"] else None
     estimate = scheme.peak_bytes(size, itemsize, absorbing, radial)

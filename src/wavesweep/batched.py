@@ -29,7 +29,7 @@ from .errors import RunFailed, RunInterrupted
 from .fft import THREADS_MIN_POINTS, default_threads
 from .io.checkpoint import ResultExists
 from .observables import Observer
-from .propagators import propagator_class
+from .propagators import scheme_class
 from .run import Simulation, progress_bar
 from .setup import set_kernel_threads
 
@@ -48,7 +48,7 @@ def batch_key(table: dict) -> str | None:
     exponent must agree.  None for jobs that are never batched: a scheme
     that cannot step a batch, or a grid too large for two members."""
     try:
-        scheme = propagator_class(table["evolve"]["scheme"])
+        scheme = scheme_class(table["evolve"]["scheme"])
     except Exception:
         return None
     if not getattr(scheme, "batched", False):

@@ -327,7 +327,7 @@ class Simulation:
             "stride": int(s.job.table["record"]["stride"]),
             "units": s.unit_labels(),
             "detectors": [(d.name, s.grid.names[d.axis], d.position / lf) for d in s.detectors],
-            "boundaries": [layer.name for layer in s.absorber.layers],
+            "faces": [layer.name for layer in s.absorber.layers],
             "potential": s.hamiltonian.static_potential / s.units.factor("energy"),
             "autocorrelation": True,
             "detector_amplitude": s.grid.ndim == 1,

@@ -36,7 +36,7 @@ from .job import Job, grid_axes, job_from_dict
 from .marginals import free_space_marginals
 from .observables import SCALARS, Detector, Observer
 from .potentials import PotentialContext, make_term
-from .propagators import propagator_class
+from .propagators import scheme_class
 from .schema import to_atomic
 from .states import PACKET_SCHEMAS, PACKETS, build_state
 
@@ -139,7 +139,7 @@ class Setup(Model):
         self.detectors = [self._detector(i, d) for i, d in enumerate(t["detector"])]
         self.fft_backend = fft or ev.get("fft", AUTO)
         self.threads = threads or ev.get("threads")
-        self.scheme = propagator_class(ev["scheme"])
+        self.scheme = scheme_class(ev["scheme"])
         self.scheme.check_supported(self.hamiltonian, self.absorber, self.grid)
 
     # -- pieces ----------------------------------------------------------------

@@ -26,7 +26,7 @@ import analytic as an
 from conftest import make_job, run_table, setup_of
 from wavesweep.fft import make_transform
 from wavesweep.observables import Detector, Observer
-from wavesweep.propagators import SCHEMES, SplitOperator, propagator_class
+from wavesweep.propagators import SCHEMES, SplitOperator, scheme_class
 from wavesweep.run import Simulation
 
 # Every registered scheme runs through the reference problems (DEVELOPERS.md:
@@ -326,7 +326,7 @@ def test_time_step_order(scheme, boundary, well_periodic, well_box):
     transform = make_transform(setup.grid, "scipy")
     errors = []
     for n in steps:
-        prop = propagator_class(scheme)(setup.hamiltonian, t_end / n, transform)
+        prop = scheme_class(scheme)(setup.hamiltonian, t_end / n, transform)
         errors.append(np.max(np.abs(prop.step(setup.psi0.copy(), n) - reference)))
     dts = t_end / np.asarray(steps)
     assert errors[-1] > 1e-11, "finest step is at rounding level: the fit would be meaningless"
@@ -339,7 +339,7 @@ def test_time_step_order(scheme, boundary, well_periodic, well_box):
 @pytest.mark.parametrize("boundary", ["periodic", "box"])
 def test_chebyshev_matches_exact_propagator(dt, steps, boundary, well_periodic, well_box):
     setup, exact = well_periodic if boundary == "periodic" else well_box
-    prop = propagator_class("chebyshev")(setup.hamiltonian, dt, make_transform(setup.grid, "scipy"))
+    prop = scheme_class("chebyshev")(setup.hamiltonian, dt, make_transform(setup.grid, "scipy"))
     psi = prop.step(setup.psi0.copy(), steps)
     assert np.max(np.abs(psi - exact(setup.psi0, dt * steps))) <= 1e-10
 
@@ -361,7 +361,7 @@ def test_crank_nicolson_converges(boundary):
 
     coarse = 128 if boundary == "periodic" else 127
     ref_setup = setup_of(job(coarse, 0.1))
-    reference = propagator_class("chebyshev")(ref_setup.hamiltonian, t_end,
+    reference = scheme_class("chebyshev")(ref_setup.hamiltonian, t_end,
                                               make_transform(ref_setup.grid, "scipy")).step(ref_setup.psi0.copy(), 1)
     # the packet is really at the edge at the end (wrap-around or reflection)
     assert np.max(np.abs(reference[-3:]) ** 2) > 0.05
@@ -485,7 +485,7 @@ def test_crank_nicolson_time_dependent_order():
     reference = sol.y[:, -1]
     dts = (0.1, 0.05, 0.025, 0.0125)
     transform = make_transform(setup.grid, "scipy")
-    errors = [np.max(np.abs(propagator_class("crank_nicolson")(setup.hamiltonian, dt, transform)
+    errors = [np.max(np.abs(scheme_class("crank_nicolson")(setup.hamiltonian, dt, transform)
                             .step(setup.psi0.copy(), round(t_end / dt)) - reference)) for dt in dts]
     slope = _slope(dts, errors)
     assert abs(slope - 2.0) <= 0.15, (errors, slope)
@@ -553,7 +553,7 @@ def test_radial_oscillator_is_stationary(scheme, dt):
     setup = _radial_setup(512)
     u = _radial_state(setup)
     obs = Observer(setup.grid, setup.mass, make_transform(setup.grid, "scipy"), psi0=u)
-    prop = propagator_class(scheme)(setup.hamiltonian, dt, make_transform(setup.grid, "scipy"))
+    prop = scheme_class(scheme)(setup.hamiltonian, dt, make_transform(setup.grid, "scipy"))
     energy = an.oscillator_energy_3d(RADIAL["l"], RADIAL["omega"])
     psi = u.copy()
     for _ in range(4):
@@ -584,7 +584,7 @@ def test_radial_static_step_is_exact():
     reference = exact(u, t_end)
     transform = make_transform(setup.grid, "scipy")
     for k in (1, 10, 100):
-        psi = propagator_class("strang")(setup.hamiltonian, t_end / k, transform).step(u.copy(), k)
+        psi = scheme_class("strang")(setup.hamiltonian, t_end / k, transform).step(u.copy(), k)
         assert np.max(np.abs(psi - reference)) < 1e-10, k
 
 
@@ -616,7 +616,7 @@ def test_radial_time_dependent_strang_order():
     reference = sol.y[:, -1]
     transform = make_transform(setup.grid, "scipy")
     steps = (20, 40, 80, 160)
-    errors = [np.max(np.abs(propagator_class("strang")(setup.hamiltonian, t_end / k, transform)
+    errors = [np.max(np.abs(scheme_class("strang")(setup.hamiltonian, t_end / k, transform)
                             .step(u.copy(), k) - reference)) for k in steps]
     slope = _slope(t_end / np.asarray(steps), errors)
     assert abs(slope - 2.0) <= 0.15, (errors, slope)
@@ -653,7 +653,7 @@ def test_box_eigenstate(scheme, dt):
         phase_per_time = energy
     obs = Observer(setup.grid, setup.mass, make_transform(setup.grid, "scipy"), psi0=psi0)
     assert obs.measure(psi0, setup.hamiltonian.potential(0.0))["energy"] == pytest.approx(energy, rel=1e-12)
-    prop = propagator_class(scheme)(setup.hamiltonian, dt, make_transform(setup.grid, "scipy"))
+    prop = scheme_class(scheme)(setup.hamiltonian, dt, make_transform(setup.grid, "scipy"))
     psi = psi0.copy()
     for _ in range(5):
         psi = prop.step(psi, round(1.0 / dt))

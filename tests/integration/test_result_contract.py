@@ -290,7 +290,7 @@ def _layout(n):
     units = {"length": "bohr", "time": "au_time", "energy": "hartree", "momentum": "m_e bohr au_time-1",
              "density": "bohr-1", "flux": "au_time-1"}
     return x, {"axes": [("x", x, "position x")], "stride": 1, "units": units, "detectors": [],
-               "boundaries": [], "potential": np.zeros(n), "autocorrelation": True, "final_state": False}
+               "faces": [], "potential": np.zeros(n), "autocorrelation": True, "final_state": False}
 
 
 def _sample(i):

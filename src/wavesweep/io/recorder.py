@@ -121,7 +121,7 @@ class ResultWriter:
         ``stride``: snapshot decimation; ``units``: dict of unit labels by kind
         (length, time, energy, momentum, density, flux);
         ``detectors``: list of (name, axis_name, position_job_units);
-        ``boundaries``: list of face names; ``potential``: static V (job units,
+        ``faces``: list of absorbing face names (the result's ``boundary`` coordinate); ``potential``: static V (job units,
         full grid); ``autocorrelation``: bool; ``final_state``: bool;
         ``detector_amplitude``: bool, psi at each detector per sample (1D);
         ``snapshot_psi``: bool, psi (float32 parts) with each snapshot;
@@ -204,7 +204,7 @@ class ResultWriter:
     def _row_bytes(self) -> int:
         lay = self.layout
         per_detector = 3 if lay.get("detector_amplitude") else 1
-        return 8 * (1 + len(SCALARS) + 2 + per_detector * len(lay["detectors"]) + len(lay["boundaries"]))
+        return 8 * (1 + len(SCALARS) + 2 + per_detector * len(lay["detectors"]) + len(lay["faces"]))
 
     def _remaining_bytes(self) -> int | None:
         """Bytes of data the file still needs from its shapes (before
@@ -259,7 +259,7 @@ class ResultWriter:
         ds.createDimension("snapshot_time", None)
         self._coord("time", "time", u["time"], "time of the scalar samples")
         self._coord("snapshot_time", "snapshot_time", u["time"], "time of the density snapshots")
-        ndet, nb = len(lay["detectors"]), len(lay["boundaries"])
+        ndet, nb = len(lay["detectors"]), len(lay["faces"])
         ds.createDimension("detector", ndet if ndet else None)
         ds.createDimension("boundary", nb if nb else None)
         d = self._var("detector", str, ("detector",))
@@ -275,7 +275,7 @@ class ResultWriter:
             da[i] = det[1]
         b = self._var("boundary", str, ("boundary",))
         b.long_name, b.units = "absorbing face", "1"
-        for i, face in enumerate(lay["boundaries"]):
+        for i, face in enumerate(lay["faces"]):
             b[i] = face
         chunks = [1] + [len(np.asarray(a[1])[::s]) for a in lay["axes"]]
         dens = self._var("density", "f4", ("snapshot_time", *names), zlib=True,
@@ -416,7 +416,7 @@ class ResultWriter:
                 amp = np.array([b["detector_psi"] for b in self._buf])
                 ds["detector_psi_real"][i0:i0 + n, :] = amp.real
                 ds["detector_psi_imag"][i0:i0 + n, :] = amp.imag
-        if len(self.layout["boundaries"]):
+        if len(self.layout["faces"]):
             ds["absorbed"][i0:i0 + n, :] = np.array([b["absorbed"] for b in self._buf])
         self._n_time += n
         self._buf.clear()

@@ -17,8 +17,8 @@ from .crank_nicolson import CrankNicolson
 DEFAULT_SCHEME = Strang.name
 
 
-def propagator_class(scheme) -> type[Propagator]:
-    """A propagator class from a scheme name or a Propagator subclass."""
+def scheme_class(scheme) -> type[Propagator]:
+    """The class of a scheme, from its name (or the class itself)."""
     if isinstance(scheme, type) and issubclass(scheme, Propagator):
         return scheme
     try:
@@ -29,4 +29,4 @@ def propagator_class(scheme) -> type[Propagator]:
 
 
 __all__ = ["Propagator", "SplitOperator", "Strang", "Order4", "Order4Suzuki", "Chebyshev",
-           "CrankNicolson", "SCHEMES", "DEFAULT_SCHEME", "propagator_class", "register_scheme"]
+           "CrankNicolson", "SCHEMES", "DEFAULT_SCHEME", "scheme_class", "register_scheme"]
