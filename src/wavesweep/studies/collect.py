@@ -50,7 +50,6 @@ from __future__ import annotations
 import datetime as _dt
 import errno
 import json
-import os
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -63,7 +62,7 @@ from ..analysis.arrivals import arrival_times
 from ..analysis.recorded import run_record
 from ..analysis.transmission import transmission_totals
 from ..errors import JobError
-from ..io.recorder import atomic_rename
+from ..io.atomic import atomic_output
 from ..job.schemas import ABSORBER, AXIS, EVOLVE, PARTICLE, RECORD
 from ..potentials import term_class
 from ..schema import Field
@@ -694,18 +693,11 @@ def _write(ds: xr.Dataset, path: Path) -> Path:
     problem = _output_error(path)
     if problem is not None:
         raise problem
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.part")
     try:
-        ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4")
-        atomic_rename(tmp, path)
-    except BaseException as e:
-        try:
-            tmp.unlink()
-        except FileNotFoundError:
-            pass
-        except OSError:   # the folder refuses even that: there is no temporary file to remove
-            pass
-        problem = _output_error(path, e) if isinstance(e, OSError) else None
+        with atomic_output(path, ".part") as tmp:
+            ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4")
+    except OSError as e:
+        problem = _output_error(path, e)
         if problem is not None:
             raise problem from None
         raise

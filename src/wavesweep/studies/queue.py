@@ -79,6 +79,7 @@ from datetime import datetime
 from pathlib import Path
 
 from ..errors import DiskFull, JobError
+from ..io.atomic import atomic_output, write_text_atomic
 from ..io.diskspace import NO_SPACE, free_bytes, is_no_space
 
 __all__ = ["Queue", "STATES", "SCHEMA_VERSION", "APPLICATION_ID", "check_result", "REBUILD",
@@ -320,61 +321,27 @@ def _columns(conn) -> dict:
     return {t: tuple(r[1] for r in conn.execute(f'PRAGMA table_info("{t}")')) for t in tables}
 
 
-def _fsync_dir(folder: Path) -> None:
-    try:
-        fd = os.open(folder, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:   # some filesystems do not fsync folders
-        pass
-    finally:
-        os.close(fd)
-
-
 def _link_or_copy(src: Path, dst: Path) -> str:
     """Put ``src`` at ``dst`` atomically: a hard link when the filesystem
     allows (no data copied), else a copy; returns "linked" or "copied".
     A later rerun of either run renames a new file into place, so the other
     study's file is never touched by it."""
     dst.parent.mkdir(parents=True, exist_ok=True)
-    tmp = dst.with_name(f".{dst.name}.{os.getpid()}.{threading.get_ident()}.tmp")
-    tmp.unlink(missing_ok=True)
-    try:
-        os.link(src, tmp)
-        how = "linked"
-    except OSError:
-        shutil.copyfile(src, tmp)
-        fd = os.open(tmp, os.O_RDONLY)
+    with atomic_output(dst, ".tmp") as tmp:
         try:
-            os.fsync(fd)
-        finally:
-            os.close(fd)
-        how = "copied"
-    os.replace(tmp, dst)
-    _fsync_dir(dst.parent)
+            os.link(src, tmp)
+            how = "linked"
+        except OSError:
+            shutil.copyfile(src, tmp)
+            how = "copied"
     return how
 
 
 def _write_json(path: Path, obj) -> None:
-    """Write-then-rename, fsync'ed: a reader sees the old file or the new one."""
+    """Write-then-rename, fsync'ed: a reader sees the old file or the new
+    one (a full disk, or study.json a folder: the old file stays)."""
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.{threading.get_ident()}.tmp")
-    try:
-        with open(tmp, "w", encoding="utf-8") as f:
-            json.dump(obj, f, indent=1, default=_json_default)
-            f.write("\n")
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except BaseException:   # a full disk, or study.json is a folder: the old file stays
-        try:
-            tmp.unlink()
-        except OSError:
-            pass
-        raise
-    _fsync_dir(path.parent)
+    write_text_atomic(path, json.dumps(obj, indent=1, default=_json_default) + "\n")
 
 
 def _read_manifest_file(path: Path) -> dict | None:
@@ -671,23 +638,20 @@ class Queue:
                 return True
         except OSError:
             pass
-        tmp = path.with_name(f"{RESERVE_NAME}.{os.getpid()}.tmp")
         try:
-            fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
-            try:
+            with atomic_output(path, ".tmp") as tmp:
+                fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
                 try:
-                    os.posix_fallocate(fd, 0, nbytes)
-                except OSError as e:
-                    if e.errno in NO_SPACE:
-                        raise
-                    os.ftruncate(fd, 0)      # no fallocate here: write the bytes
-                    os.write(fd, b"\0" * nbytes)
-                os.fsync(fd)
-            finally:
-                os.close(fd)
-            os.replace(tmp, path)
+                    try:
+                        os.posix_fallocate(fd, 0, nbytes)
+                    except OSError as e:
+                        if e.errno in NO_SPACE:
+                            raise
+                        os.ftruncate(fd, 0)      # no fallocate here: write the bytes
+                        os.write(fd, b"\0" * nbytes)
+                finally:
+                    os.close(fd)
         except OSError as e:
-            tmp.unlink(missing_ok=True)
             if e.errno in NO_SPACE:
                 return False
             raise

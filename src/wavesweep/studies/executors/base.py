@@ -29,6 +29,7 @@ from pathlib import Path
 from ...batched import BatchedRun, batch_group
 from ...errors import DiskFull, JobError, RunFailed, RunInterrupted
 from ...io.checkpoint import CheckpointPolicy, ResultExists
+from ...io.atomic import atomic_rename
 from ...io.diskspace import free_bytes, is_no_space
 from ...job import job_from_dict
 from ...run import Simulation
@@ -95,9 +96,7 @@ def _log(path: Path, text: str) -> None:
 def _finish_log(part: Path, final: Path) -> None:
     """The log of a finished (done or failed) run appears whole, by rename."""
     try:
-        with open(part, "rb") as f:
-            os.fsync(f.fileno())
-        os.replace(part, final)
+        atomic_rename(part, final)
     except OSError:   # missing, or a full disk: the .part stays as it is
         pass
 
