@@ -13,7 +13,7 @@ worker that stops heart-beating has its run requeued by
 
 Files of a run live beside the database: ``ROOT/STUDY/RUN_ID.nc`` (result),
 ``.log`` and ``.ckpt``; ``ROOT/STUDY/study.json`` is the study's manifest,
-the union of every submission of that study.
+the union of every submission of that study (every path: :class:`~.layout.StudyLayout`).
 
 Reliability
 -----------
@@ -81,6 +81,7 @@ from pathlib import Path
 from ..errors import DiskFull, JobError
 from ..io.atomic import atomic_output, write_text_atomic
 from ..io.diskspace import NO_SPACE, free_bytes, is_no_space
+from .layout import StudyLayout
 
 __all__ = ["Queue", "STATES", "SCHEMA_VERSION", "APPLICATION_ID", "check_result", "REBUILD",
            "DEFAULT_LEASE_SECONDS", "RESERVE_BYTES"]
@@ -90,15 +91,13 @@ SCHEMA_VERSION = 1
 # PRAGMA application_id of our databases: the ASCII bytes "wvsq" (wavesweep
 # queue) as a big-endian 32-bit integer, as the SQLite file format asks.
 APPLICATION_ID = 0x77767371
-DB_NAME = "queue.sqlite"
 REASON_CHARS = 500            # reasons are one line; a traceback belongs in the log
 _CHUNK = 500                  # ids per "IN (...)" query, well below SQLite's variable limit
 DEFAULT_LEASE_SECONDS = 60.0  # a claim recorded without its lease (older queues) is judged by this
-# ROOT/.disk-reserve: bytes held back so that a full disk can still be
-# recorded in the queue (a commit writes a few 4 KiB pages to the WAL; this is
-# room for some hundred of them).  Freed when SQLite reports a full disk,
-# made again by the next `work`.
-RESERVE_NAME = ".disk-reserve"
+# ROOT/.disk-reserve (StudyLayout.reserve): bytes held back so that a full
+# disk can still be recorded in the queue (a commit writes a few 4 KiB pages to
+# the WAL; this is room for some hundred of them).  Freed when SQLite reports a
+# full disk, made again by the next `work`.
 RESERVE_BYTES = 1 << 20
 _LEASE_NOTE = re.compile(r"lease ([0-9.]+(?:e[+-]?[0-9]+)?) s")
 
@@ -178,16 +177,6 @@ def _dumps(obj) -> str:
     return json.dumps(obj, default=_json_default, sort_keys=True)
 
 
-def _check_study_name(name) -> str:
-    if not isinstance(name, str) or not name.strip():
-        raise JobError("study", f"a study needs a non-empty name, got {name!r}")
-    bad = [c for c in ("/", "\\", "\0") if c in name]
-    if bad or name.startswith(".") or name.startswith(DB_NAME) or len(name) > 200:
-        raise JobError("study", f"{name!r} cannot name a folder of ROOT; use letters, digits, "
-                                "'-', '_' and inner dots (e.g. --study barrier-scan)")
-    return name
-
-
 def _stat_signature(path: Path) -> str | None:
     try:
         st = os.stat(path)
@@ -231,7 +220,7 @@ def root_error(root, exc: BaseException, doing: str = "use") -> JobError | None:
     if isinstance(exc, sqlite3.Error):
         name = getattr(exc, "sqlite_errorname", "") or ""
         text = str(exc).lower()
-        db = os.path.join(root, DB_NAME)
+        db = str(StudyLayout(root).queue_db)
         if name == "SQLITE_READONLY_DIRECTORY":
             why = (f"the folder {root!r} is read-only (SQLite keeps its journal files beside the queue); "
                    f"make it writable, or copy ROOT to a writable place and give that with --root")
@@ -271,7 +260,7 @@ def root_error(root, exc: BaseException, doing: str = "use") -> JobError | None:
 
 def _room_for_the_queue(method):
     """Run a state change again once if the disk was too full to commit it
-    and the reserve (:data:`RESERVE_NAME`) could be freed for it: that a
+    and the reserve (:attr:`StudyLayout.reserve`) could be freed for it: that a
     run ended for a full disk must be recorded on that very disk."""
     @functools.wraps(method)
     def again(self, *args, **kwargs):
@@ -396,7 +385,8 @@ class Queue:
 
     def __init__(self, root, busy_timeout: float = 60.0, clock=None):
         self.root = Path(root).expanduser().absolute()
-        self.path = self.root / DB_NAME
+        self.layout = StudyLayout(self.root)
+        self.path = self.layout.queue_db
         self.busy_timeout = float(busy_timeout)
         self._clock = clock or time.time
         self._local = threading.local()
@@ -421,7 +411,8 @@ class Queue:
 
     def __setstate__(self, state):
         self.root = state["root"]
-        self.path = self.root / DB_NAME
+        self.layout = StudyLayout(self.root)
+        self.path = self.layout.queue_db
         self.busy_timeout = state["busy_timeout"]
         self._clock = state["clock"] or time.time
         self._local = threading.local()
@@ -625,7 +616,7 @@ class Queue:
     # ------------------------------------------------------ disk reserve
     @property
     def reserve_path(self) -> Path:
-        return self.root / RESERVE_NAME
+        return self.layout.reserve
 
     def keep_reserve(self, nbytes: int = RESERVE_BYTES) -> bool:
         """Make sure ``ROOT/.disk-reserve`` holds ``nbytes`` (allocated, not
@@ -710,17 +701,18 @@ class Queue:
                   "VALUES (?, ?, ?, ?, ?, ?, ?)", (now, study, run_id, old, new, worker, note))
 
     # --------------------------------------------------------------- paths
+    # (where they are: StudyLayout; here a study's name is checked first)
     def study_dir(self, study: str) -> Path:
-        return self.root / _check_study_name(study)
+        return self.layout.study_dir(StudyLayout.check_study_name(study))
 
     def result_path(self, study: str, run_id: str) -> Path:
-        return self.study_dir(study) / f"{run_id}.nc"
+        return self.layout.result(StudyLayout.check_study_name(study), run_id)
 
     def log_path(self, study: str, run_id: str) -> Path:
-        return self.study_dir(study) / f"{run_id}.log"
+        return self.layout.log(StudyLayout.check_study_name(study), run_id)
 
     def checkpoint_path(self, study: str, run_id: str) -> Path:
-        return self.study_dir(study) / f"{run_id}.ckpt"
+        return self.layout.checkpoint(StudyLayout.check_study_name(study), run_id)
 
     # -------------------------------------------------------------- submit
     def submit(self, study) -> dict:
@@ -733,7 +725,7 @@ class Queue:
         is not run again: the result is hard-linked (or copied) to
         ``ROOT/STUDY/RUN_ID.nc`` and the run is done (``reused``).
         ``ROOT/STUDY/study.json`` becomes the union of every submission."""
-        name = _check_study_name(study.name)
+        name = StudyLayout.check_study_name(study.name)
         specs = {}
         for r in study.runs:     # a study built by hand may repeat a run: first wins
             if r.run_id not in specs:
@@ -798,7 +790,7 @@ class Queue:
             row = c.execute("SELECT manifest FROM studies WHERE name = ?", (name,)).fetchone()
             # a study new to this database may have a manifest on disk (a
             # rebuilt queue): the earlier submissions' runs stay in it
-            old = json.loads(row[0]) if row else _read_manifest_file(self.study_dir(name) / "study.json")
+            old = json.loads(row[0]) if row else _read_manifest_file(self.layout.manifest(name))
             merged = _merge_manifest(old, manifest)
             c.execute("INSERT INTO studies (name, manifest, submitted, updated) VALUES (?, ?, ?, ?) "
                       "ON CONFLICT (name) DO UPDATE SET manifest = excluded.manifest, "
@@ -834,7 +826,7 @@ class Queue:
                     counts["existing"] += 1
             # inside the transaction: two submissions of one study cannot
             # interleave their manifests
-            _write_json(self.study_dir(name) / "study.json", merged)
+            _write_json(self.layout.manifest(name), merged)
         return counts
 
     def manifest(self, study: str) -> dict | None:
