@@ -6,7 +6,6 @@ ROOT/queue.sqlite, ROOT/STUDY/RUN_ID.nc, .log, .ckpt, study.json).
 """
 from __future__ import annotations
 
-import copy
 import re
 from pathlib import Path
 
@@ -17,15 +16,6 @@ from wavesweep.studies import layout as layout_module
 from wavesweep.studies.layout import StudyLayout
 from wavesweep.studies.queue import Queue
 from wavesweep.study import expand_study
-
-TINY = {
-    "title": "layout",
-    "grid": {"x": {"min": -20.0, "max": 20.0, "points": 64}},
-    "packet": {"kind": "gaussian", "center": -5.0, "width": 2.0, "momentum": 1.0},
-    "evolve": {"dt": 0.05, "duration": 0.2},
-    "record": {"every": 0.1, "snapshot_every": 0.1},
-}
-
 
 def test_every_path_of_a_queue_folder(tmp_path):
     lay = StudyLayout(tmp_path)
@@ -40,8 +30,8 @@ def test_every_path_of_a_queue_folder(tmp_path):
     assert lay.checkpoint("scan", "ab12") == tmp_path / "scan" / "ab12.ckpt"
 
 
-def test_the_queue_and_its_claims_use_the_layout(tmp_path):
-    raw = copy.deepcopy(TINY)
+def test_the_queue_and_its_claims_use_the_layout(tmp_path, free_job):
+    raw = free_job             # submitted, never run
     raw["sweep"] = {"packet.width": [1.5, 2.0]}
     q = Queue(tmp_path)
     q.submit(expand_study(raw, name="scan"))
