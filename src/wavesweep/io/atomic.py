@@ -44,15 +44,20 @@ __all__ = ["atomic_output", "atomic_rename", "fsync_folder", "temporary_path", "
 _TOKEN_BYTES = 6
 
 
+def _fsync(path) -> None:
+    """Flush the file or folder ``path`` to the disk."""
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
 def fsync_folder(folder) -> None:
     """fsync a folder (its entries: renames, new and deleted files); a
     filesystem that cannot fsync folders is passed over."""
     try:
-        dfd = os.open(folder, os.O_RDONLY)
-        try:
-            os.fsync(dfd)
-        finally:
-            os.close(dfd)
+        _fsync(folder)
     except OSError:  # some filesystems do not fsync folders
         pass
 
@@ -77,11 +82,7 @@ def atomic_rename(tmp, final, replace: bool = True) -> None:
     the temporary name removed; :class:`FileExistsError` if ``final`` exists.
     """
     tmp, final = Path(tmp), Path(final)
-    fd = os.open(tmp, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
+    _fsync(tmp)
     if replace:
         os.replace(tmp, final)
     else:
