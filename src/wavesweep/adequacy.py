@@ -13,7 +13,6 @@ import json
 import math
 import os
 import re
-import tempfile
 import time as _time
 from dataclasses import dataclass, field
 
@@ -25,6 +24,7 @@ from .eigen import DENSE_MAX_POINTS
 from .errors import JobError
 from .fft import wisdom_path
 from .hamiltonian import split_time_dependent
+from .io.atomic import write_text_atomic
 from .marginals import momentum_marginal
 from .propagators import DEFAULT_SCHEME, scheme_class
 from .propagators.split_operator import RADIAL_DENSE_MAX
@@ -1571,10 +1571,7 @@ def _write_warnings(key: str, lines) -> None:
     path = _warnings_path(key)
     try:
         os.makedirs(os.path.dirname(path), exist_ok=True)
-        fd, tmp = tempfile.mkstemp(dir=os.path.dirname(path), prefix=".warnings-")
-        with os.fdopen(fd, "w") as f:
-            json.dump(list(lines), f)
-        os.replace(tmp, path)
+        write_text_atomic(path, json.dumps(list(lines)))
     except OSError:
         pass   # a read-only or full cache folder: the run judges them itself
 

@@ -19,11 +19,12 @@ import importlib.util
 import os
 import pickle
 import sys
-import tempfile
 import threading
 
 import numpy as np
 import scipy.fft
+
+from .io.atomic import write_bytes_atomic
 
 __all__ = ["Transform", "ScipyTransform", "PyFFTWTransform", "BACKENDS", "AUTO", "PLAIN", "make_transform",
            "register_backend", "backend_choices", "wisdom_path"]
@@ -131,10 +132,8 @@ def _save_wisdom(pyfftw) -> None:
     path = wisdom_path()
     try:
         os.makedirs(os.path.dirname(path), exist_ok=True)
-        fd, tmp = tempfile.mkstemp(dir=os.path.dirname(path), prefix=".wisdom-")
-        with os.fdopen(fd, "wb") as f:
-            pickle.dump(pyfftw.export_wisdom(), f)
-        os.replace(tmp, path)  # concurrent workers: last complete writer wins
+        # concurrent workers: each writes its own temporary file; the last complete writer wins
+        write_bytes_atomic(path, pickle.dumps(pyfftw.export_wisdom()))
     except OSError:
         pass
 

@@ -66,12 +66,12 @@ import hashlib
 import json
 import math
 import os
-import tempfile
 
 import numpy as np
 
 from ..errors import JobError
 from ..fft import wisdom_path
+from ..io.atomic import write_text_atomic
 
 __all__ = ["cap_profile", "layer_scattering", "return_probability", "tune_cap_strength", "cached_cap_strength"]
 
@@ -541,10 +541,7 @@ class _TuningCache:
         entries[key] = [float(value[0]), float(value[1])]
         try:
             os.makedirs(os.path.dirname(self.path), exist_ok=True)
-            fd, tmp = tempfile.mkstemp(dir=os.path.dirname(self.path), prefix=".cap-tuning-")
-            with os.fdopen(fd, "w") as f:
-                json.dump({self.revision: entries}, f)
-            os.replace(tmp, self.path)
+            write_text_atomic(self.path, json.dumps({self.revision: entries}))
         except OSError:
             pass   # a read-only cache folder: tune again next time
 

@@ -91,7 +91,7 @@ from ..errors import JobError, RunFailed
 from ..grid import Axis, Grid
 from ..io.paths import output_file
 from ..io.record import LANCZOS_MAX_POINTS
-from ..io.recorder import atomic_rename
+from ..io.atomic import atomic_output
 from ..io.results import open_result, result_units
 from ..job import Job, job_from_dict, load_job
 from ..setup import Model
@@ -666,17 +666,12 @@ def write_states(path, setup, energies_hartree, states, errors: LevelErrors | No
                               {"units": u.unit_label("energy"),
                                "long_name": "estimated absolute error of energy_estimate",
                                "refine": errors.refine})
-    tmp = path.with_name(f".{path.name}.part")
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
-        ds.to_netcdf(tmp, engine="netcdf4")
-        atomic_rename(tmp, path)
+        with atomic_output(path, ".part", unique=False) as tmp:
+            ds.to_netcdf(tmp, engine="netcdf4")
     except OSError as e:
-        tmp.unlink(missing_ok=True)
         raise JobError("--states", f"cannot write {str(path)!r}: {e.strerror or e}; choose another path") from None
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
     return path
 
 

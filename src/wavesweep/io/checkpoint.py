@@ -42,7 +42,7 @@ import numpy as np
 
 from ..errors import JobError
 from .diskspace import disk_full_from
-from .recorder import atomic_rename, fsync_folder
+from .atomic import atomic_rename, fsync_folder, temporary_path
 
 __all__ = ["CheckpointPolicy", "CheckpointState", "CheckpointStore", "CheckpointCorrupt",
            "CheckpointMismatch", "ResultExists", "result_complete"]
@@ -138,7 +138,7 @@ class CheckpointStore:
         return self.path.with_name(f"{self.path.name}.result-{generation:06d}.nc")
 
     def _tmp(self, target: Path) -> Path:
-        return target.with_name(f".{target.name}.tmp")
+        return temporary_path(target, ".tmp", unique=False)   # found by name: _leftovers
 
     def _leftovers(self, keep: Path | None = None) -> list[Path]:
         """Result copies and temporary files of this checkpoint except ``keep``."""

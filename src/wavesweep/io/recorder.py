@@ -22,7 +22,6 @@ and the bytes the rest of the file needs from its shapes; the caller's
 """
 from __future__ import annotations
 
-import errno
 import os
 import shutil
 from contextlib import contextmanager
@@ -32,50 +31,10 @@ import numpy as np
 
 from ..errors import DiskFull, JobError
 from ..observables import SCALARS
+from .atomic import atomic_output, atomic_rename, temporary_path
 from .diskspace import NO_SPACE, disk_full_from
 
-__all__ = ["ResultWriter", "atomic_rename", "copy_file", "fsync_folder"]
-
-
-def fsync_folder(folder: Path) -> None:
-    """fsync a folder (its entries: renames, new and deleted files)."""
-    try:
-        dfd = os.open(folder, os.O_RDONLY)
-        try:
-            os.fsync(dfd)
-        finally:
-            os.close(dfd)
-    except OSError:  # some filesystems do not fsync folders
-        pass
-
-
-def atomic_rename(tmp: Path, final: Path, replace: bool = True) -> None:
-    """fsync ``tmp``, rename it to ``final`` and fsync the folder.
-
-    With ``replace=False`` an existing ``final`` is never replaced: the file
-    is hard-linked into place (which fails atomically if the name exists) and
-    the temporary name removed; :class:`FileExistsError` if ``final`` exists.
-    """
-    tmp, final = Path(tmp), Path(final)
-    fd = os.open(tmp, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-    if replace:
-        os.replace(tmp, final)
-    else:
-        try:
-            os.link(tmp, final)
-        except FileExistsError:
-            raise FileExistsError(errno.EEXIST, "a finished file is already there", str(final)) from None
-        except OSError:  # no hard links on this filesystem: check, then rename
-            if final.exists():
-                raise FileExistsError(errno.EEXIST, "a finished file is already there", str(final)) from None
-            os.replace(tmp, final)
-        else:
-            os.unlink(tmp)
-    fsync_folder(final.parent)
+__all__ = ["ResultWriter", "copy_file"]
 
 
 def copy_file(src: Path, dst: Path) -> None:
@@ -137,7 +96,7 @@ class ResultWriter:
 
     def __init__(self, path, layout: dict, attrs: dict):
         self.path = Path(path)
-        self.tmp = self.path.with_name(f".{self.path.name}.part")
+        self.tmp = temporary_path(self.path, ".part", unique=False)
         self.layout = _without_potential(layout)   # written once; not kept for the whole run
         self._buf: list[dict] = []
         self._n_time = 0
@@ -162,7 +121,7 @@ class ResultWriter:
         are written again."""
         self = cls.__new__(cls)
         self.path = Path(path)
-        self.tmp = self.path.with_name(f".{self.path.name}.part")
+        self.tmp = temporary_path(self.path, ".part", unique=False)
         self.layout = _without_potential(layout)
         self._buf = []
         self._n_time = int(n_time)
@@ -437,20 +396,16 @@ class ResultWriter:
         (written as ``tmp``, fsync'ed and renamed: ``dest`` is complete or
         absent); reopen for append unless ``reopen`` is False.  Returns the
         size of the copy in bytes."""
-        dest = Path(dest)
-        tmp = Path(tmp) if tmp is not None else dest.with_name(f".{dest.name}.tmp")
         self.flush()
         with self._room(0):
             self.ds.close()
         try:
             with self._room(_size(self.tmp), target=dest, what="the checkpoint's copy of the result",
                             need="it needs about", basis="the partial result's size"):
-                copy_file(self.tmp, tmp)
-                size = tmp.stat().st_size
-                atomic_rename(tmp, dest)
-        except BaseException:
-            tmp.unlink(missing_ok=True)    # a torn copy is never left behind
-            raise
+                # a torn copy is never left behind
+                with atomic_output(dest, ".tmp", unique=False, temporary=tmp) as part:
+                    copy_file(self.tmp, part)
+                    size = part.stat().st_size
         finally:
             if reopen:
                 self.ds = self._open("a")

@@ -13,7 +13,8 @@ from ..io.diskspace import free_bytes
 from ..study import load_study
 from .executors import CLUSTER_EXECUTOR, DEFAULT_EXECUTOR, WorkerSettings, executor_class
 from .executors.local import LocalExecutor
-from .queue import DB_NAME, RESERVE_BYTES, Queue
+from .layout import StudyLayout
+from .queue import RESERVE_BYTES, Queue
 
 __all__ = ["default_root", "submit", "work", "format_work", "status", "format_status", "parse_until",
            "until_deadline",
@@ -181,7 +182,7 @@ def existing_queue(root=None):
     if root.exists() and not root.is_dir():
         raise JobError("--root", f"{str(root)!r} is a file, not a queue folder; give the folder "
                                  "you submitted to (wavesweep submit JOB --root FOLDER)")
-    if not (root / DB_NAME).exists():
+    if not StudyLayout(root).queue_db.exists():
         raise JobError("--root", f"no queue at {str(root)!r}; submit a study first "
                                  "(wavesweep submit JOB --root ...)")
     return Queue(root)

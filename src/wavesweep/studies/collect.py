@@ -50,7 +50,6 @@ from __future__ import annotations
 import datetime as _dt
 import errno
 import json
-import os
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -63,18 +62,17 @@ from ..analysis.arrivals import arrival_times
 from ..analysis.recorded import run_record
 from ..analysis.transmission import transmission_totals
 from ..errors import JobError
-from ..io.recorder import atomic_rename
+from ..io.atomic import atomic_output
 from ..job.dotted import get_dotted
 from ..job.schemas import ABSORBER, AXIS, EVOLVE, PARTICLE, RECORD
 from ..potentials import term_class
 from ..schema import Field
 from ..states import PACKET_SCHEMAS
 from ..units import KINDS, UnitSet
+from .layout import MANIFEST_NAME, SUMMARY_NAME, StudyLayout
 
 __all__ = ["collect", "collect_study", "missing_points", "SUMMARY_NAME", "MANIFEST_NAME"]
 
-MANIFEST_NAME = "study.json"
-SUMMARY_NAME = "summary.nc"
 UNIT_ATTRS = ("units_length", "units_energy", "units_time", "units_mass")
 TIME_MERGE = 1e-9          # relative to the largest |time|: samples this close are one
 _BASE_KINDS = {"length", "energy", "time", "mass"}
@@ -141,18 +139,19 @@ def collect_study(root, study: str) -> dict:
         raise JobError("--root", f"no such study {study!r}: there is no queue folder {str(root)!r} "
                                  "(submitted studies: none); give the folder the study was submitted "
                                  "to (wavesweep collect STUDY --root FOLDER)")
-    folder = _study_folder(root, study)
-    problem = _output_error(folder / SUMMARY_NAME)   # before the work, not after it
+    layout = StudyLayout(root)
+    folder = _study_folder(layout, study)
+    problem = _output_error(layout.summary(study))   # before the work, not after it
     if problem is not None:
         raise problem
-    manifest = _read_manifest(folder / MANIFEST_NAME)
+    manifest = _read_manifest(layout.manifest(study))
     mode = manifest["mode"]
     runs = manifest["runs"]
     notes: list[str] = []
 
     results = {}
     for run in runs:
-        path = folder / f"{run['run_id']}.nc"
+        path = layout.result(study, run["run_id"])
         if path.is_file():
             try:
                 result = _read_result(path)
@@ -200,7 +199,7 @@ def collect_study(root, study: str) -> dict:
     found = sum(1 for run in where.values() if run["run_id"] in results)
     missing = [run["run_id"] for run in runs if run["run_id"] not in results]
     ds.attrs = _global_attrs(manifest, study, first, found, len(runs), missing, params, notes)
-    path = _write(ds, folder / SUMMARY_NAME)
+    path = _write(ds, layout.summary(study))
     return {"path": path, "found": len(results), "expected": len(runs),
             "missing": [{"run_id": run["run_id"], "params": dict(run.get("params") or {})}
                         for run in runs if run["run_id"] not in results]}
@@ -230,23 +229,17 @@ def missing_points(out: dict, named: int = POINTS_NAMED) -> str | None:
 
 
 # -- the study on disk -----------------------------------------------------------------
-def _submitted(root: Path) -> list[str]:
-    if not root.is_dir():
-        return []
-    return sorted(p.name for p in root.iterdir() if (p / MANIFEST_NAME).is_file())
-
-
-def _study_folder(root: Path, study: str) -> Path:
+def _study_folder(layout: StudyLayout, study: str) -> Path:
     if not isinstance(study, str) or not study or Path(study).name != study or study in (".", ".."):
         raise JobError("study", f"{study!r} is not a study name (a folder name under the root, "
                                 "e.g. 'barrier-scan')")
-    folder = root / study
-    if not (folder / MANIFEST_NAME).is_file():
-        names = _submitted(root)
+    root = layout.root
+    if not layout.manifest(study).is_file():
+        names = layout.studies()
         where = f"in {str(root)!r}" if root.is_dir() else f"(the root {str(root)!r} does not exist)"
         raise JobError("", f"no such study {study!r} {where}; submitted studies: "
                            f"{', '.join(names) if names else 'none'}")
-    return folder
+    return layout.study_dir(study)
 
 
 def _read_manifest(path: Path) -> dict:
@@ -685,18 +678,11 @@ def _write(ds: xr.Dataset, path: Path) -> Path:
     problem = _output_error(path)
     if problem is not None:
         raise problem
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.part")
     try:
-        ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4")
-        atomic_rename(tmp, path)
-    except BaseException as e:
-        try:
-            tmp.unlink()
-        except FileNotFoundError:
-            pass
-        except OSError:   # the folder refuses even that: there is no temporary file to remove
-            pass
-        problem = _output_error(path, e) if isinstance(e, OSError) else None
+        with atomic_output(path, ".part") as tmp:
+            ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4")
+    except OSError as e:
+        problem = _output_error(path, e)
         if problem is not None:
             raise problem from None
         raise

@@ -13,7 +13,7 @@ worker that stops heart-beating has its run requeued by
 
 Files of a run live beside the database: ``ROOT/STUDY/RUN_ID.nc`` (result),
 ``.log`` and ``.ckpt``; ``ROOT/STUDY/study.json`` is the study's manifest,
-the union of every submission of that study.
+the union of every submission of that study (every path: :class:`~.layout.StudyLayout`).
 
 Reliability
 -----------
@@ -79,7 +79,9 @@ from datetime import datetime
 from pathlib import Path
 
 from ..errors import DiskFull, JobError
+from ..io.atomic import atomic_output, write_text_atomic
 from ..io.diskspace import NO_SPACE, free_bytes, is_no_space
+from .layout import StudyLayout
 
 __all__ = ["Queue", "STATES", "SCHEMA_VERSION", "APPLICATION_ID", "check_result", "REBUILD",
            "DEFAULT_LEASE_SECONDS", "RESERVE_BYTES"]
@@ -89,15 +91,13 @@ SCHEMA_VERSION = 1
 # PRAGMA application_id of our databases: the ASCII bytes "wvsq" (wavesweep
 # queue) as a big-endian 32-bit integer, as the SQLite file format asks.
 APPLICATION_ID = 0x77767371
-DB_NAME = "queue.sqlite"
 REASON_CHARS = 500            # reasons are one line; a traceback belongs in the log
 _CHUNK = 500                  # ids per "IN (...)" query, well below SQLite's variable limit
 DEFAULT_LEASE_SECONDS = 60.0  # a claim recorded without its lease (older queues) is judged by this
-# ROOT/.disk-reserve: bytes held back so that a full disk can still be
-# recorded in the queue (a commit writes a few 4 KiB pages to the WAL; this is
-# room for some hundred of them).  Freed when SQLite reports a full disk,
-# made again by the next `work`.
-RESERVE_NAME = ".disk-reserve"
+# ROOT/.disk-reserve (StudyLayout.reserve): bytes held back so that a full
+# disk can still be recorded in the queue (a commit writes a few 4 KiB pages to
+# the WAL; this is room for some hundred of them).  Freed when SQLite reports a
+# full disk, made again by the next `work`.
 RESERVE_BYTES = 1 << 20
 _LEASE_NOTE = re.compile(r"lease ([0-9.]+(?:e[+-]?[0-9]+)?) s")
 
@@ -177,16 +177,6 @@ def _dumps(obj) -> str:
     return json.dumps(obj, default=_json_default, sort_keys=True)
 
 
-def _check_study_name(name) -> str:
-    if not isinstance(name, str) or not name.strip():
-        raise JobError("study", f"a study needs a non-empty name, got {name!r}")
-    bad = [c for c in ("/", "\\", "\0") if c in name]
-    if bad or name.startswith(".") or name.startswith(DB_NAME) or len(name) > 200:
-        raise JobError("study", f"{name!r} cannot name a folder of ROOT; use letters, digits, "
-                                "'-', '_' and inner dots (e.g. --study barrier-scan)")
-    return name
-
-
 def _stat_signature(path: Path) -> str | None:
     try:
         st = os.stat(path)
@@ -230,7 +220,7 @@ def root_error(root, exc: BaseException, doing: str = "use") -> JobError | None:
     if isinstance(exc, sqlite3.Error):
         name = getattr(exc, "sqlite_errorname", "") or ""
         text = str(exc).lower()
-        db = os.path.join(root, DB_NAME)
+        db = str(StudyLayout(root).queue_db)
         if name == "SQLITE_READONLY_DIRECTORY":
             why = (f"the folder {root!r} is read-only (SQLite keeps its journal files beside the queue); "
                    f"make it writable, or copy ROOT to a writable place and give that with --root")
@@ -270,7 +260,7 @@ def root_error(root, exc: BaseException, doing: str = "use") -> JobError | None:
 
 def _room_for_the_queue(method):
     """Run a state change again once if the disk was too full to commit it
-    and the reserve (:data:`RESERVE_NAME`) could be freed for it: that a
+    and the reserve (:attr:`StudyLayout.reserve`) could be freed for it: that a
     run ended for a full disk must be recorded on that very disk."""
     @functools.wraps(method)
     def again(self, *args, **kwargs):
@@ -320,61 +310,27 @@ def _columns(conn) -> dict:
     return {t: tuple(r[1] for r in conn.execute(f'PRAGMA table_info("{t}")')) for t in tables}
 
 
-def _fsync_dir(folder: Path) -> None:
-    try:
-        fd = os.open(folder, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:   # some filesystems do not fsync folders
-        pass
-    finally:
-        os.close(fd)
-
-
 def _link_or_copy(src: Path, dst: Path) -> str:
     """Put ``src`` at ``dst`` atomically: a hard link when the filesystem
     allows (no data copied), else a copy; returns "linked" or "copied".
     A later rerun of either run renames a new file into place, so the other
     study's file is never touched by it."""
     dst.parent.mkdir(parents=True, exist_ok=True)
-    tmp = dst.with_name(f".{dst.name}.{os.getpid()}.{threading.get_ident()}.tmp")
-    tmp.unlink(missing_ok=True)
-    try:
-        os.link(src, tmp)
-        how = "linked"
-    except OSError:
-        shutil.copyfile(src, tmp)
-        fd = os.open(tmp, os.O_RDONLY)
+    with atomic_output(dst, ".tmp") as tmp:
         try:
-            os.fsync(fd)
-        finally:
-            os.close(fd)
-        how = "copied"
-    os.replace(tmp, dst)
-    _fsync_dir(dst.parent)
+            os.link(src, tmp)
+            how = "linked"
+        except OSError:
+            shutil.copyfile(src, tmp)
+            how = "copied"
     return how
 
 
 def _write_json(path: Path, obj) -> None:
-    """Write-then-rename, fsync'ed: a reader sees the old file or the new one."""
+    """Write-then-rename, fsync'ed: a reader sees the old file or the new
+    one (a full disk, or study.json a folder: the old file stays)."""
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.{threading.get_ident()}.tmp")
-    try:
-        with open(tmp, "w", encoding="utf-8") as f:
-            json.dump(obj, f, indent=1, default=_json_default)
-            f.write("\n")
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except BaseException:   # a full disk, or study.json is a folder: the old file stays
-        try:
-            tmp.unlink()
-        except OSError:
-            pass
-        raise
-    _fsync_dir(path.parent)
+    write_text_atomic(path, json.dumps(obj, indent=1, default=_json_default) + "\n")
 
 
 def _read_manifest_file(path: Path) -> dict | None:
@@ -429,7 +385,8 @@ class Queue:
 
     def __init__(self, root, busy_timeout: float = 60.0, clock=None):
         self.root = Path(root).expanduser().absolute()
-        self.path = self.root / DB_NAME
+        self.layout = StudyLayout(self.root)
+        self.path = self.layout.queue_db
         self.busy_timeout = float(busy_timeout)
         self._clock = clock or time.time
         self._local = threading.local()
@@ -454,7 +411,8 @@ class Queue:
 
     def __setstate__(self, state):
         self.root = state["root"]
-        self.path = self.root / DB_NAME
+        self.layout = StudyLayout(self.root)
+        self.path = self.layout.queue_db
         self.busy_timeout = state["busy_timeout"]
         self._clock = state["clock"] or time.time
         self._local = threading.local()
@@ -658,7 +616,7 @@ class Queue:
     # ------------------------------------------------------ disk reserve
     @property
     def reserve_path(self) -> Path:
-        return self.root / RESERVE_NAME
+        return self.layout.reserve
 
     def keep_reserve(self, nbytes: int = RESERVE_BYTES) -> bool:
         """Make sure ``ROOT/.disk-reserve`` holds ``nbytes`` (allocated, not
@@ -671,23 +629,20 @@ class Queue:
                 return True
         except OSError:
             pass
-        tmp = path.with_name(f"{RESERVE_NAME}.{os.getpid()}.tmp")
         try:
-            fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
-            try:
+            with atomic_output(path, ".tmp") as tmp:
+                fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
                 try:
-                    os.posix_fallocate(fd, 0, nbytes)
-                except OSError as e:
-                    if e.errno in NO_SPACE:
-                        raise
-                    os.ftruncate(fd, 0)      # no fallocate here: write the bytes
-                    os.write(fd, b"\0" * nbytes)
-                os.fsync(fd)
-            finally:
-                os.close(fd)
-            os.replace(tmp, path)
+                    try:
+                        os.posix_fallocate(fd, 0, nbytes)
+                    except OSError as e:
+                        if e.errno in NO_SPACE:
+                            raise
+                        os.ftruncate(fd, 0)      # no fallocate here: write the bytes
+                        os.write(fd, b"\0" * nbytes)
+                finally:
+                    os.close(fd)
         except OSError as e:
-            tmp.unlink(missing_ok=True)
             if e.errno in NO_SPACE:
                 return False
             raise
@@ -746,17 +701,18 @@ class Queue:
                   "VALUES (?, ?, ?, ?, ?, ?, ?)", (now, study, run_id, old, new, worker, note))
 
     # --------------------------------------------------------------- paths
+    # (where they are: StudyLayout; here a study's name is checked first)
     def study_dir(self, study: str) -> Path:
-        return self.root / _check_study_name(study)
+        return self.layout.study_dir(StudyLayout.check_study_name(study))
 
     def result_path(self, study: str, run_id: str) -> Path:
-        return self.study_dir(study) / f"{run_id}.nc"
+        return self.layout.result(StudyLayout.check_study_name(study), run_id)
 
     def log_path(self, study: str, run_id: str) -> Path:
-        return self.study_dir(study) / f"{run_id}.log"
+        return self.layout.log(StudyLayout.check_study_name(study), run_id)
 
     def checkpoint_path(self, study: str, run_id: str) -> Path:
-        return self.study_dir(study) / f"{run_id}.ckpt"
+        return self.layout.checkpoint(StudyLayout.check_study_name(study), run_id)
 
     # -------------------------------------------------------------- submit
     def submit(self, study) -> dict:
@@ -769,7 +725,7 @@ class Queue:
         is not run again: the result is hard-linked (or copied) to
         ``ROOT/STUDY/RUN_ID.nc`` and the run is done (``reused``).
         ``ROOT/STUDY/study.json`` becomes the union of every submission."""
-        name = _check_study_name(study.name)
+        name = StudyLayout.check_study_name(study.name)
         specs = {}
         for r in study.runs:     # a study built by hand may repeat a run: first wins
             if r.run_id not in specs:
@@ -834,7 +790,7 @@ class Queue:
             row = c.execute("SELECT manifest FROM studies WHERE name = ?", (name,)).fetchone()
             # a study new to this database may have a manifest on disk (a
             # rebuilt queue): the earlier submissions' runs stay in it
-            old = json.loads(row[0]) if row else _read_manifest_file(self.study_dir(name) / "study.json")
+            old = json.loads(row[0]) if row else _read_manifest_file(self.layout.manifest(name))
             merged = _merge_manifest(old, manifest)
             c.execute("INSERT INTO studies (name, manifest, submitted, updated) VALUES (?, ?, ?, ?) "
                       "ON CONFLICT (name) DO UPDATE SET manifest = excluded.manifest, "
@@ -870,7 +826,7 @@ class Queue:
                     counts["existing"] += 1
             # inside the transaction: two submissions of one study cannot
             # interleave their manifests
-            _write_json(self.study_dir(name) / "study.json", merged)
+            _write_json(self.layout.manifest(name), merged)
         return counts
 
     def manifest(self, study: str) -> dict | None:

@@ -28,6 +28,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import JobError
+from ..io.atomic import atomic_rename, temporary_path
 from ..io.paths import output_file
 from . import style
 from .scene import FrameReader, Scene, read_scene
@@ -81,7 +82,7 @@ class VideoWriter:
         folder = self.path.parent if str(self.path.parent) else Path(".")
         if not folder.is_dir() or not os.access(folder, os.W_OK):
             raise JobError("-o", f"cannot write into {str(folder)!r}: no such folder or no permission")
-        self.tmp = self.path.with_name(f".{self.path.stem}.part{suffix}")
+        self.tmp = temporary_path(self.path, ".part" + suffix, unique=False)   # ffmpeg reads the format from it
         ffmpeg = _ffmpeg()
         w, h = size
         cmd = [ffmpeg, "-y", "-loglevel", "error", "-f", "rawvideo", "-pix_fmt", "rgb24",
@@ -109,7 +110,7 @@ class VideoWriter:
         self.proc.stdin.close()
         if self.proc.wait() != 0:
             self._fail()
-        os.replace(self.tmp, self.path)
+        atomic_rename(self.tmp, self.path)
         return self.path
 
     def abort(self) -> None:

@@ -6,13 +6,13 @@ Every axis is labelled with its unit; colours follow :mod:`.style`.
 """
 from __future__ import annotations
 
-import os
 from pathlib import Path
 
 import numpy as np
 import xarray as xr
 
 from ..errors import JobError
+from ..io.atomic import atomic_output
 from ..io.paths import input_file, output_file
 from ..io.results import open_result
 from . import style
@@ -30,12 +30,10 @@ def _check_output(path, overwrite: bool = True) -> Path:
 
 
 def _save(fig, path: Path) -> Path:
-    tmp = path.with_name(f".{path.stem}.part{path.suffix}")
-    try:
-        fig.savefig(tmp, dpi=fig.dpi, format=path.suffix[1:].lower())
-        os.replace(tmp, path)
+    try:   # the temporary name keeps the suffix: matplotlib reads the format from it
+        with atomic_output(path, ".part" + path.suffix, unique=False) as tmp:
+            fig.savefig(tmp, dpi=fig.dpi, format=path.suffix[1:].lower())
     except OSError as e:
-        tmp.unlink(missing_ok=True)
         raise JobError("-o", f"cannot write {str(path)!r}: {e.strerror or e}") from None
     return path
 

@@ -11,6 +11,11 @@ Runs of one study that differ only in their packet are claimed together
 (:func:`claim_next`) and stepped as one batch by :func:`execute_batch`
 (:mod:`wavesweep.batched`); each still ends on its own in the queue.
 
+However a run was executed (alone, in a batch, or as a Dask task against a
+stand-in queue), its end is settled by one method, :meth:`ClaimedRun.settle`:
+the rules of what is done, failed, requeued with which reason, and what
+counts as an attempt live there and nowhere else.
+
 To add an executor: subclass :class:`Executor`, implement ``drain()``, and
 make each worker call :func:`claim_next` and :func:`execute_batch` (or
 :func:`execute_claim` for one run) for what it claims.
@@ -22,6 +27,7 @@ import threading
 import time
 import tomllib
 import traceback
+from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
@@ -29,12 +35,14 @@ from pathlib import Path
 from ...batched import BatchedRun, batch_group
 from ...errors import DiskFull, JobError, RunFailed, RunInterrupted
 from ...io.checkpoint import CheckpointPolicy, ResultExists
+from ...io.atomic import atomic_rename
 from ...io.diskspace import free_bytes, is_no_space
 from ...job import job_from_dict
 from ...run import Simulation
+from ..layout import StudyLayout
 
-__all__ = ["Executor", "WorkerSettings", "execute_claim", "execute_batch", "claim_next",
-           "thread_environment", "DISK_FULL"]
+__all__ = ["Executor", "WorkerSettings", "ClaimedRun", "execute_claim", "execute_batch", "claim_next",
+           "failure_reason", "thread_environment", "DISK_FULL"]
 
 # The state execute_claim / execute_batch return for a run stopped by a full
 # disk: it is back in the queue (queued, its attempt not counted, the reason
@@ -95,15 +103,9 @@ def _log(path: Path, text: str) -> None:
 def _finish_log(part: Path, final: Path) -> None:
     """The log of a finished (done or failed) run appears whole, by rename."""
     try:
-        with open(part, "rb") as f:
-            os.fsync(f.fileno())
-        os.replace(part, final)
+        atomic_rename(part, final)
     except OSError:   # missing, or a full disk: the .part stays as it is
         pass
-
-
-def _resumed(log_part: Path, step: int, total: int, checkpoint) -> None:
-    _log(log_part, f"resumed from the checkpoint {str(checkpoint)!r} at step {step} of {total}")
 
 
 def _disk_full_of(exc: BaseException, path) -> DiskFull | None:
@@ -117,125 +119,211 @@ def _disk_full_of(exc: BaseException, path) -> DiskFull | None:
     return DiskFull(where, free_bytes(where.parent), what="a file of the run", need="")
 
 
-def _park(queue, claim, worker, full: DiskFull, log_part, done=None) -> str:
-    """A run stopped by a full disk goes back to the queue, first in line,
-    its attempt not counted (the disk, not the run, failed), with the
-    reason; its last checkpoint is kept."""
-    if done is not None:
-        done.set()
-    _log(log_part, f"stopped: {full.reason}; back to the queue, resuming from its last checkpoint")
-    queue.release(claim["study"], claim["run_id"], worker, full.reason)
-    return DISK_FULL
+def failure_reason(outcome: BaseException) -> str:
+    """The one-line reason a run failed with ``outcome``, as the queue records it."""
+    if isinstance(outcome, RunFailed):
+        return outcome.reason
+    if isinstance(outcome, JobError):
+        return str(outcome)
+    if isinstance(outcome, MemoryError):
+        return "out of memory"
+    if isinstance(outcome, OSError):
+        return f"{outcome.strerror or outcome}" + (f" ({outcome.filename})" if outcome.filename else "")
+    return f"{type(outcome).__name__}: {outcome}"
+
+
+_reason = failure_reason   # the name the Dask driver imports
+
+
+class ClaimedRun:
+    """One run a worker has claimed, from the claim to its end in the queue:
+    its log (``RUN_ID.log.part`` while it goes on), its progress for the
+    heartbeats, and :meth:`settle`, the one place where the way a run ended
+    becomes its new state in the queue -- for solo runs
+    (:func:`execute_claim`), members of a batch (:func:`execute_batch`) and
+    Dask tasks (which run :func:`execute_claim` against a stand-in queue).
+
+    The rules :meth:`settle` applies:
+
+    ==========================================  =====================================================
+    how the run ended                           in the queue
+    ==========================================  =====================================================
+    finished (None, or its result's Path)       done, with its wall time; the log renamed whole
+    ResultExists (another attempt finished it)  done; the finished result is kept, never overwritten
+    a full disk (DiskFull, or ENOSPC / EDQUOT   released, first in line, its attempt not counted,
+    / SQLITE_FULL anywhere in the chain)        the DiskFull reason recorded; state DISK_FULL: the
+                                                worker claims nothing more; checkpoint kept
+    RunInterrupted (asked to stop, --until)     released ("interrupted at step N"), attempt not
+                                                counted; checkpoint kept
+    RunInterrupted after the queue gave the     nothing recorded ("lost": the queue has moved on)
+    run away (requeued or cancelled elsewhere)
+    RunFailed, JobError, MemoryError            failed with its one-line reason; the log renamed
+    any other exception (an OSError, a bug)     failed with its reason and the traceback in the log
+    ==========================================  =====================================================
+
+    A claim counts as an attempt in the queue (``attempts``) unless it is
+    released; :meth:`release` is also how a claim goes back unrun.
+    """
+
+    def __init__(self, queue, claim: dict, worker: str):
+        self.queue, self.claim, self.worker = queue, claim, worker
+        self.study, self.run_id = claim["study"], claim["run_id"]
+        self.result = Path(claim["result"])
+        self.log_final = Path(claim["log"])
+        self.log_part = StudyLayout.log_in_progress(self.log_final)
+        self.progress = {"step": 0, "total": None, "rate": None}
+        self.lost = False      # the queue gave the run to another worker, or cancelled it
+        self.state = None      # its state in the queue once settled
+
+    def log(self, text: str) -> None:
+        _log(self.log_part, text)
+
+    def checkpoint_policy(self, settings: WorkerSettings) -> CheckpointPolicy:
+        return CheckpointPolicy(Path(self.claim["checkpoint"]), settings.checkpoint_seconds)
+
+    def on_sample(self, step, total, rate) -> None:
+        self.progress.update(step=step, total=total, rate=rate)
+
+    def on_resume(self, step, total) -> None:
+        self.log(f"resumed from the checkpoint {str(self.claim['checkpoint'])!r} at step {step} of {total}")
+
+    def should_stop(self, settings: WorkerSettings, stop_requested) -> bool:
+        past = settings.until is not None and time.time() >= settings.until
+        return stop_requested() or past or self.lost
+
+    def beat(self) -> None:
+        """One heartbeat with the run's progress; a run the queue no longer
+        gives this worker is marked lost (it stops at its next sample)."""
+        p = self.progress
+        try:
+            held = self.queue.heartbeat(self.study, self.run_id, self.worker, p["step"], p["total"], p["rate"])
+        except Exception:   # a full disk or a busy database: the next beat tries again
+            return
+        if not held:
+            self.lost = True
+
+    # -- the end -------------------------------------------------------------
+    def settle(self, outcome, wall_seconds: float, batch_of: int = 1) -> str:
+        """End the run in the queue by the rules above; returns its new
+        state ("done", "failed", "queued", "lost" or :data:`DISK_FULL`)."""
+        full = _disk_full_of(outcome, self.result) if isinstance(outcome, BaseException) else None
+        if full is not None:
+            return self.park(full)
+        if isinstance(outcome, RunInterrupted):
+            if self.lost:
+                self.log("stopped: the queue gave this run to another worker or cancelled it")
+                return self._ended("lost")
+            self.log(f"interrupted at step {outcome.step}; checkpoint kept")
+            return self.release(f"interrupted at step {outcome.step}")
+        if outcome is None or isinstance(outcome, (Path, ResultExists)):
+            if isinstance(outcome, ResultExists):
+                self.log("the result already exists; kept as it is")
+            elif batch_of > 1:
+                self.log(f"done in {wall_seconds:.1f} s (batch of {batch_of}; the batch's wall time)")
+            else:
+                self.log(f"done in {wall_seconds:.1f} s")
+            _finish_log(self.log_part, self.log_final)
+            self.queue.complete(self.study, self.run_id, self.worker, wall_seconds)
+            return self._ended("done")
+        trace = None if isinstance(outcome, (RunFailed, JobError, MemoryError)) else \
+            "".join(traceback.format_exception(outcome))
+        return self.fail(failure_reason(outcome), trace)
+
+    def park(self, full: DiskFull) -> str:
+        """Stopped by a full disk: back to the queue, first in line, its
+        attempt not counted (the disk, not the run, failed), with the
+        reason; its last checkpoint is kept."""
+        self.log(f"stopped: {full.reason}; back to the queue, resuming from its last checkpoint")
+        self.queue.release(self.study, self.run_id, self.worker, full.reason)
+        return self._ended(DISK_FULL)
+
+    def release(self, reason: str) -> str:
+        """Back to the queue (queued, first in line, the attempt not counted)."""
+        self.queue.release(self.study, self.run_id, self.worker, reason)
+        return self._ended("queued")
+
+    def fail(self, reason: str, trace: str | None = None) -> str:
+        reason = " ".join(str(reason).split())   # one line
+        self.log(f"failed: {reason}")
+        if trace:
+            try:
+                with open(self.log_part, "a") as f:
+                    f.write(trace)
+            except OSError:   # as _log: the queue holds the reason
+                pass
+        _finish_log(self.log_part, self.log_final)
+        self.queue.fail(self.study, self.run_id, self.worker, reason)
+        return self._ended("failed")
+
+    def _ended(self, state: str) -> str:
+        self.state = state
+        return state
+
+
+def _make_folders(runs: list[ClaimedRun]) -> list[str] | None:
+    """Make the runs' study folders; None when done, else (a full disk)
+    the runs parked (:meth:`ClaimedRun.park`); other errors propagate."""
+    for run in runs:
+        try:
+            run.result.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as e:
+            full = _disk_full_of(e, run.result)
+            if full is None:
+                raise
+            return [r.park(full) for r in runs]
+    return None
+
+
+@contextmanager
+def _heartbeats(runs: list[ClaimedRun], settings: WorkerSettings, name: str):
+    """Heartbeats for the runs not yet settled nor lost, from a thread,
+    for as long as the block runs."""
+    done = threading.Event()
+
+    def beat():
+        while not done.wait(settings.heartbeat_seconds):
+            for run in runs:
+                if run.state is None and not run.lost:
+                    run.beat()
+
+    threading.Thread(target=beat, name=name, daemon=True).start()
+    try:
+        yield
+    finally:
+        done.set()   # an interrupt: the leases run out and the runs are requeued
+
+
+def _queued_job(claim: dict):
+    """The resolved job of a claim, checked against its run id."""
+    job = job_from_dict(tomllib.loads(claim["job_toml"]))
+    if job.run_id != claim["run_id"]:
+        raise JobError("", f"the queued job text hashes to {job.run_id}, not {claim['run_id']}")
+    return job
 
 
 def execute_claim(queue, claim: dict, worker: str, settings: WorkerSettings,
                   stop_requested=lambda: False) -> str:
     """Run one claimed run to its end in the queue; returns the new state
-    ("done", "failed", "queued", or :data:`DISK_FULL`: queued again, its
-    attempt not counted, because the disk is full).  Never raises for a
+    ("done", "failed", "queued", "lost", or :data:`DISK_FULL`: queued again,
+    its attempt not counted, because the disk is full).  Never raises for a
     run's own failure; a queue that cannot record the end (its disk full
     even after its reserve was freed) raises DiskFull."""
-
-    study, run_id = claim["study"], claim["run_id"]
-    result = Path(claim["result"])
-    log_part = result.with_name(f"{run_id}.log.part")
-    log_final = Path(claim["log"])
-    try:
-        result.parent.mkdir(parents=True, exist_ok=True)
-    except OSError as e:
-        full = _disk_full_of(e, result)
-        if full is None:
-            raise
-        return _park(queue, claim, worker, full, log_part)
-    _log(log_part, f"attempt {claim['attempt']} on {worker} (pid {os.getpid()})")
-
-    progress = {"step": 0, "total": None, "rate": None}
-    lost = threading.Event()
-    done = threading.Event()
-
-    def beat():
-        while not done.wait(settings.heartbeat_seconds):
-            try:
-                held = queue.heartbeat(study, run_id, worker, progress["step"], progress["total"],
-                                       progress["rate"])
-            except Exception:   # a full disk or a busy database: the next beat tries again
-                continue
-            if not held:
-                lost.set()   # requeued or cancelled elsewhere: stop at the next sample
-                return
-
-    def on_sample(step, total, rate):
-        progress.update(step=step, total=total, rate=rate)
-
-    def should_stop():
-        past = settings.until is not None and time.time() >= settings.until
-        return stop_requested() or past or lost.is_set()
-
-    beater = threading.Thread(target=beat, name=f"heartbeat-{run_id}", daemon=True)
-    beater.start()
+    run = ClaimedRun(queue, claim, worker)
+    parked = _make_folders([run])
+    if parked is not None:
+        return parked[0]
+    run.log(f"attempt {claim['attempt']} on {worker} (pid {os.getpid()})")
     t0 = time.perf_counter()
-    try:
-        job = job_from_dict(tomllib.loads(claim["job_toml"]))
-        if job.run_id != run_id:
-            raise JobError("", f"the queued job text hashes to {job.run_id}, not {run_id}")
-        sim = Simulation(job)
-        sim.run(path=result, progress=False, on_sample=on_sample,
-                checkpoint=CheckpointPolicy(Path(claim["checkpoint"]), settings.checkpoint_seconds),
-                should_stop=should_stop,
-                on_resume=lambda step, total: _resumed(log_part, step, total, claim["checkpoint"]))
-    except DiskFull as e:
-        return _park(queue, claim, worker, e, log_part, done)
-    except RunInterrupted as e:
-        done.set()
-        if lost.is_set():
-            _log(log_part, "stopped: the queue gave this run to another worker or cancelled it")
-            return "lost"
-        _log(log_part, f"interrupted at step {e.step}; checkpoint kept")
-        queue.release(study, run_id, worker, f"interrupted at step {e.step}")
-        return "queued"
-    except FileExistsError as e:   # ResultExists: another attempt finished it; never overwritten
-        done.set()
-        if not isinstance(e, ResultExists):
-            return _fail(queue, claim, worker, f"{e.strerror or e}", log_part, log_final, done)
-        _log(log_part, "the result already exists; kept as it is")
-        _finish_log(log_part, log_final)
-        queue.complete(study, run_id, worker, time.perf_counter() - t0)
-        return "done"
-    except (RunFailed, JobError) as e:
-        return _fail(queue, claim, worker, str(e) if isinstance(e, JobError) else e.reason,
-                     log_part, log_final, done)
-    except MemoryError:
-        return _fail(queue, claim, worker, "out of memory", log_part, log_final, done)
-    except Exception as e:
-        full = _disk_full_of(e, result)
-        if full is not None:
-            return _park(queue, claim, worker, full, log_part, done)
-        if isinstance(e, OSError):
-            where = f" ({e.filename})" if e.filename else ""
-            return _fail(queue, claim, worker, f"{e.strerror or e}{where}", log_part, log_final, done,
-                         traceback.format_exc())
-        # a bug: the run fails with its cause, the others go on
-        return _fail(queue, claim, worker, f"{type(e).__name__}: {e}", log_part, log_final, done,
-                     traceback.format_exc())
-    done.set()
-    wall = time.perf_counter() - t0
-    _log(log_part, f"done in {wall:.1f} s")
-    _finish_log(log_part, log_final)
-    queue.complete(study, run_id, worker, wall)
-    return "done"
-
-
-def _fail(queue, claim, worker, reason, log_part, log_final, done=None, trace=None) -> str:
-    if done is not None:
-        done.set()
-    reason = " ".join(str(reason).split())   # one line
-    _log(log_part, f"failed: {reason}")
-    if trace:
-        with open(log_part, "a") as f:
-            f.write(trace)
-    _finish_log(log_part, log_final)
-    queue.fail(claim["study"], claim["run_id"], worker, reason)
-    return "failed"
+    outcome = None
+    with _heartbeats([run], settings, f"heartbeat-{run.run_id}"):
+        try:
+            Simulation(_queued_job(claim)).run(
+                path=run.result, progress=False, on_sample=run.on_sample,
+                checkpoint=run.checkpoint_policy(settings),
+                should_stop=lambda: run.should_stop(settings, stop_requested), on_resume=run.on_resume)
+        except Exception as e:   # the run's end, whatever it is, is settled below
+            outcome = e
+    return run.settle(outcome, time.perf_counter() - t0)
 
 
 def claim_next(queue, worker: str, settings: WorkerSettings) -> list[dict]:
@@ -249,119 +337,38 @@ def execute_batch(queue, claims: list[dict], worker: str, settings: WorkerSettin
                   stop_requested=lambda: False) -> list[str]:
     """Run claimed runs as one batch to their ends in the queue; returns
     their new states.  Each member keeps its own log, checkpoint and
-    outcome, and ends in the queue as soon as it ends.  If the jobs cannot
-    be batched after all (an error building one of them), the first runs on
-    its own and the others go back to the queue (first in line, the attempt
-    not counted), so that no claim waits unattended."""
+    outcome, and ends in the queue as soon as it ends
+    (:meth:`ClaimedRun.settle`).  If the jobs cannot be batched after all
+    (an error building one of them), the first runs on its own and the
+    others go back to the queue (first in line, the attempt not counted),
+    so that no claim waits unattended."""
 
     if len(claims) == 1:
         return [execute_claim(queue, claims[0], worker, settings, stop_requested)]
     n = len(claims)
-    parts, finals, results = [], [], []
-    try:
-        for c in claims:
-            Path(c["result"]).parent.mkdir(parents=True, exist_ok=True)
-    except OSError as e:
-        full = _disk_full_of(e, c["result"])
-        if full is None:
-            raise
-        return [_park(queue, c, worker, full, Path(c["result"]).with_name(f"{c['run_id']}.log.part"))
-                for c in claims]
-    for c in claims:
-        result = Path(c["result"])
-        part = result.with_name(f"{c['run_id']}.log.part")
-        _log(part, f"attempt {c['attempt']} on {worker} (pid {os.getpid()}), in a batch of {n}")
-        parts.append(part)
-        finals.append(Path(c["log"]))
-        results.append(result)
-    progress = [{"step": 0, "total": None, "rate": None} for _ in claims]
-    lost = [False] * n
-    states: list = [None] * n
-    done = threading.Event()
-
-    def beat():   # from before the set-up: building 32 members can take a while
-        while not done.wait(settings.heartbeat_seconds):
-            for i, c in enumerate(claims):
-                if states[i] is not None or lost[i]:
-                    continue
-                p = progress[i]
-                try:
-                    held = queue.heartbeat(c["study"], c["run_id"], worker, p["step"], p["total"], p["rate"])
-                except Exception:   # a full disk or a busy database: the next beat tries again
-                    continue
-                if not held:
-                    lost[i] = True
-
-    beater = threading.Thread(target=beat, name=f"heartbeat-batch-{claims[0]['run_id']}", daemon=True)
-    beater.start()
+    runs = [ClaimedRun(queue, c, worker) for c in claims]
+    parked = _make_folders(runs)
+    if parked is not None:
+        return parked
+    for run in runs:
+        run.log(f"attempt {run.claim['attempt']} on {worker} (pid {os.getpid()}), in a batch of {n}")
     t0 = time.perf_counter()
-
-    def finish(i, outcome):
-        """End member i in the queue the moment it ends."""
-        c = claims[i]
-        study, run_id = c["study"], c["run_id"]
-        full = _disk_full_of(outcome, results[i]) if isinstance(outcome, BaseException) else None
-        if full is not None:
-            states[i] = _park(queue, c, worker, full, parts[i])
-        elif isinstance(outcome, RunInterrupted):
-            if lost[i]:
-                _log(parts[i], "stopped: the queue gave this run to another worker or cancelled it")
-                states[i] = "lost"
-            else:
-                _log(parts[i], f"interrupted at step {outcome.step}; checkpoint kept")
-                queue.release(study, run_id, worker, f"interrupted at step {outcome.step}")
-                states[i] = "queued"
-        elif isinstance(outcome, ResultExists) or isinstance(outcome, Path):
-            wall = time.perf_counter() - t0
-            _log(parts[i], "the result already exists; kept as it is" if isinstance(outcome, ResultExists)
-                 else f"done in {wall:.1f} s (batch of {n}; the batch's wall time)")
-            _finish_log(parts[i], finals[i])
-            queue.complete(study, run_id, worker, wall)
-            states[i] = "done"
-        else:
-            states[i] = _fail(queue, c, worker, _reason(outcome), parts[i], finals[i], None,
-                              None if isinstance(outcome, (RunFailed, JobError)) else
-                              "".join(traceback.format_exception(outcome)))
-
-    try:
+    # heart-beating from before the set-up: building 32 members can take a while
+    with _heartbeats(runs, settings, f"heartbeat-batch-{claims[0]['run_id']}"):
         try:
-            jobs = [job_from_dict(tomllib.loads(c["job_toml"])) for c in claims]
-            if any(j.run_id != c["run_id"] for j, c in zip(jobs, claims)):
-                raise JobError("", "a queued job text does not hash to its run id")
-            batch = BatchedRun(jobs)
+            batch = BatchedRun([_queued_job(c) for c in claims])
         except Exception:
-            done.set()
-            for i in range(1, n):
-                _log(parts[i], "not batched after all: back to the queue")
-                queue.release(claims[i]["study"], claims[i]["run_id"], worker, "not batched after all")
-            return [execute_claim(queue, claims[0], worker, settings, stop_requested)] + ["queued"] * (n - 1)
-
-        def on_sample(i, step, total, rate):
-            progress[i].update(step=step, total=total, rate=rate)
-
-        def should_stop(i):
-            past = settings.until is not None and time.time() >= settings.until
-            return stop_requested() or past or lost[i]
-
-        def on_resume(i, step, total):
-            _resumed(parts[i], step, total, claims[i]["checkpoint"])
-
-        batch.run(results, on_sample=on_sample, should_stop=should_stop, on_end=finish,
-                  checkpoints=[CheckpointPolicy(Path(c["checkpoint"]), settings.checkpoint_seconds)
-                               for c in claims], on_resume=on_resume)
-    finally:
-        done.set()   # an interrupt: the leases run out and the runs are requeued
-    return states
-
-
-def _reason(outcome) -> str:
-    """The one-line reason of a member's failure (as execute_claim words it)."""
-    if isinstance(outcome, RunFailed):
-        return outcome.reason
-    if isinstance(outcome, JobError):
-        return str(outcome)
-    if isinstance(outcome, MemoryError):
-        return "out of memory"
-    if isinstance(outcome, OSError):
-        return f"{outcome.strerror or outcome}" + (f" ({outcome.filename})" if outcome.filename else "")
-    return f"{type(outcome).__name__}: {outcome}"
+            batch = None
+        if batch is not None:
+            batch.run([run.result for run in runs],
+                      on_sample=lambda i, step, total, rate: runs[i].on_sample(step, total, rate),
+                      should_stop=lambda i: runs[i].should_stop(settings, stop_requested),
+                      on_end=lambda i, outcome: runs[i].settle(outcome, time.perf_counter() - t0, batch_of=n),
+                      checkpoints=[run.checkpoint_policy(settings) for run in runs],
+                      on_resume=lambda i, step, total: runs[i].on_resume(step, total))
+    if batch is None:
+        for run in runs[1:]:
+            run.log("not batched after all: back to the queue")
+            run.release("not batched after all")
+        return [execute_claim(queue, claims[0], worker, settings, stop_requested)] + ["queued"] * (n - 1)
+    return [run.state for run in runs]
