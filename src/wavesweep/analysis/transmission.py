@@ -95,6 +95,9 @@ NOTHING_CROSSED = 1e-9     # net probability through a detector below which noth
 AMPLITUDE_AT_END = 1e-6    # |psi(x_d, t_end)|^2 / peak below which the record has died out
 UNCERTAINTY_TARGET = 1e-4  # T(E) counts as settled when uncertain by less (duration_needed aims here)
 RINGING = 0.3              # E(t) at the end falls slower than this x free flight: a resonance rings
+# Elements (wave numbers x grid points) of one block of the momentum amplitude's direct sum:
+# its complex temporaries stay ~16 MB whatever the grid (256 rows of a 131072-point grid took 1 GB).
+AMPLITUDE_BLOCK = 2**20
 VARIES = 1e-6              # V differs from its value at the start by more (x mean kinetic energy)
 
 
@@ -463,9 +466,11 @@ def _momentum_amplitude(psi, x, k) -> np.ndarray:
     for a band-limited psi on the grid), in blocks to bound the memory."""
     out = np.empty(len(k), complex)
     dx = x[1] - x[0]
-    for i in range(0, len(k), 256):
-        kk = k[i:i + 256]
-        out[i:i + 256] = np.exp(-1j * np.outer(kk, x)) @ psi * dx / math.sqrt(2 * math.pi)
+    # (wave numbers x grid) per block: bounded; 256 rows up to 4096 points, as before
+    rows = min(256, max(1, AMPLITUDE_BLOCK // len(x)))
+    for i in range(0, len(k), rows):
+        kk = k[i:i + rows]
+        out[i:i + rows] = np.exp(-1j * np.outer(kk, x)) @ psi * dx / math.sqrt(2 * math.pi)
     return out
 
 
