@@ -13,6 +13,7 @@ from __future__ import annotations
 import inspect
 import os
 
+import numpy as np
 import xarray as xr
 
 from ..errors import JobError
@@ -77,6 +78,10 @@ def open_result(path, require: tuple[str, ...] = (), field: str = "RUN.nc", veri
 # result is opened; larger ones (density frames) are streamed and checked by
 # their readers.
 VERIFY_MAX_ELEMENTS = 2**22
+# netCDF's default fill values (NC_FILL_DOUBLE, NC_FILL_FLOAT in netCDF-C's netcdf.h; by
+# itemsize): what a block absent from a variable's chunk index reads as.  The writer fills
+# every block (variables that may stay unwritten declare NaN as their fill value).
+NETCDF_DEFAULT_FILL = {8: np.float64(9.9692099683868690e36), 4: np.float32(9.9692099683868690e36)}
 # Rounding allowed around [0, 1] for probabilities (norm, absorbed).
 PROBABILITY_SLACK = 1e-6
 
@@ -105,6 +110,10 @@ def verify_readable(ds: xr.Dataset, path, field: str = "RUN.nc", skip_dims=()) -
         except (RuntimeError, OSError, ValueError) as e:
             raise JobError(field, f"{_name(path)}: variable {name!r} cannot be read, the file is damaged "
                                   f"({' '.join(str(e).split())}); run the job again") from None
+        if values.dtype.kind == "f" and values.size and np.any(values == NETCDF_DEFAULT_FILL[values.dtype.itemsize]):
+            # a chunk missing from a damaged index reads as the default fill value, without an error
+            raise JobError(field, f"{_name(path)}: variable {name!r} has blocks that read as never written, "
+                                  "the file is damaged; run the job again")
         if name in ("norm", "absorbed") and values.size:
             lo, hi = float(values.min()), float(values.max())
             if not (-PROBABILITY_SLACK <= lo and hi <= 1 + PROBABILITY_SLACK):
