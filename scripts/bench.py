@@ -400,6 +400,48 @@ def bench_movie(repeats: int):
                       f"{peaks[0][1]:.0f} MiB after the imports alone")
 
 
+COLLECT_JOB = {
+    "title": "collect bench",
+    "potential": [{"kind": "barrier", "height": 2.0, "width": 1.0, "smoothing": 0.5}],
+    "packet": {"center": -20.0, "width": 3.0, "momentum": 3.0},
+    "absorber": {"kind": "cap", "thickness": 15.0},
+    "evolve": {"dt": 0.05, "duration": 10.0}, "record": {"every": 0.05, "snapshot_every": 0.1},
+    "detector": [{"name": "before", "x": -8.0}, {"name": "after", "x": 8.0}]}
+
+
+def bench_collect(repeats: int, small: int = 1024, large: int = 131072, runs: int = 3):
+    """What collect pays per run (reading a result: its books, arrival
+    statistics and transmission beyond each detector) at ``large`` grid
+    points against ``small``, each run with 100 density snapshots, 200
+    samples, two detectors and a CAP: the ratio says whether the cost grows
+    with the grid (1 when it does not); the milliseconds per run are given
+    beside it because the target (50 ms) is absolute."""
+    import copy
+    import tempfile
+    from pathlib import Path
+
+    from wavesweep.job import job_from_dict
+    from wavesweep.run import Simulation
+    from wavesweep.studies.collect import _read_result
+
+    per_run = {}
+    with tempfile.TemporaryDirectory() as tmp:
+        for points in (small, large):
+            files = []
+            for i in range(runs):
+                table = copy.deepcopy(COLLECT_JOB)
+                table["grid"] = {"x": {"min": -60.0, "max": 60.0, "points": points}}
+                table["packet"]["momentum"] += 0.1 * i
+                files.append(Simulation(job_from_dict(table)).run(Path(tmp) / str(points), progress=False))
+            _read_result(files[0])                          # imports and caches warm
+            per_run[points] = [timed(lambda: [_read_result(f) for f in files], 1) / runs for _ in range(repeats)]
+    ms = {n: 1e3 * statistics.median(v) for n, v in per_run.items()}
+    ratios = [a / b for a, b in zip(per_run[large], per_run[small])]
+    print(f"collect per run, {large} vs {small} points (100 snapshots, 2 detectors, CAP): "
+          f"{statistics.median(ratios):.2f}x ({ms[large]:.0f} vs {ms[small]:.0f} ms per run; target <= 50 ms "
+          f"whatever the grid), median over {repeats}")
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--repeats", type=int, default=7)
@@ -408,7 +450,11 @@ def main():
     ap.add_argument("--queue", action="store_true", help="queue overhead and worker throughput only")
     ap.add_argument("--movie", action="store_true", help="movie frames per second and peak memory only")
     ap.add_argument("--batch", action="store_true", help="batched-study throughput only")
+    ap.add_argument("--collect", action="store_true", help="collect's cost per run against the grid only")
     args = ap.parse_args()
+    if args.collect:
+        bench_collect(3 if args.quick else 5)
+        return
     if args.movie:
         bench_movie(3)
         return
@@ -436,6 +482,7 @@ def main():
         print(f"{name:<10} single precision vs double: {single_vs_double(grid, repeats, args.backend):.2f}x "
               "faster per step (recorded every 10 steps)")
     bench_batch(32, 1 if args.quick else 3)
+    bench_collect(3)
     bench_startup(3)
 
 

@@ -32,7 +32,7 @@ from .io.recorder import ResultWriter
 from .job import Job, job_from_dict, load_job
 from .kernels import density_of
 from .observables import SCALARS
-from .setup import AXIS_LONG, Setup, analysis_record
+from .setup import AXIS_LONG, Setup, analysis_record, final_detector_values
 
 __all__ = ["Simulation", "RunBook", "run_job", "progress_bar"]
 
@@ -195,7 +195,11 @@ class Simulation:
         """Final state, run attributes, the file in place; the checkpoint gone."""
         s = self.setup
         if s.job.table["record"]["final_state"]:
-            book.writer.set_final_state(psi, s.units.factor("length") ** (s.grid.ndim / 2))
+            scale = s.units.factor("length") ** (s.grid.ndim / 2)
+            book.writer.set_final_state(psi, scale)
+            values = final_detector_values(s, psi, scale)   # what analysis would read psi for (1D)
+            if values is not None:
+                book.writer.set_detector_values(values)
         try:
             out = book.writer.close({"steps": int(steps), "wall_seconds": float(book.wall())},
                                     replace=book.store is None)

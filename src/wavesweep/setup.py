@@ -31,7 +31,8 @@ from .fft import AUTO, PLAIN, make_transform
 from .grid import Axis, Grid
 from .hamiltonian import Hamiltonian, static_potential_of
 from .io.record import (LANCZOS_MAX_POINTS, RECORD_VERSION, RecordedAbsorber, RecordedDetector, RecordedLayer,
-                        RecordedRun, result_name)
+                        RecordedRun, classical_share, layer_edge, layer_holding, packet_side_positions, result_name,
+                        side_probability)
 from .job import Job, grid_axes, job_from_dict
 from .marginals import free_space_marginals
 from .observables import SCALARS, Detector, Observer
@@ -41,7 +42,7 @@ from .schema import to_atomic
 from .states import PACKET_SCHEMAS, PACKETS, build_state
 
 __all__ = ["Model", "Setup", "resolve_job", "analysis_record", "recorded_run", "rebuilt_record",
-           "set_kernel_threads", "AXIS_LONG"]
+           "final_detector_values", "records_final_values", "set_kernel_threads", "AXIS_LONG"]
 
 AXIS_LONG = {"x": "position x", "y": "position y", "z": "position z", "r": "radius r"}
 
@@ -305,7 +306,9 @@ def analysis_record(setup, warnings: bool = True, lanczos: bool = True) -> dict:
     marginals_au = [free_space_marginals(setup.psi0, grid, i) for i in range(grid.ndim)]
     marginals = {a.name: (rho, k * lf, w) for a, (rho, k, w) in zip(grid.axes, marginals_au)}
     out = {"attrs": attrs, "marginals": marginals, "marginals_au": marginals_au, "energy_factor": ef,
-           "initial_psi": None, "potential_full": None, "lanczos": None}
+           "initial_psi": None, "potential_full": None, "lanczos": None,
+           "detectors": _initial_detector_values(setup, marginals_au),
+           "final_values": records_final_values(setup)}
     if grid.ndim == 1:
         out["initial_psi"] = np.asarray(setup.psi0, np.complex128) * math.sqrt(lf)
         out["potential_full"] = np.asarray(setup.hamiltonian.static_potential, float) / ef
@@ -323,6 +326,68 @@ def analysis_record(setup, warnings: bool = True, lanczos: bool = True) -> dict:
         if ground is not None:
             attrs["ground_energy"] = float(ground / ef)
     return out
+
+
+def _initial_detector_values(setup, marginals_au) -> dict:
+    """Per detector (job units): the initial packet's mean position along
+    its axis and the classical free-flight probability and mean arrival
+    time (:func:`wavesweep.io.record.classical_share`), as analysis computes
+    them from the marginals (O(grid), once, at run time)."""
+    lf, tf = setup.units.factor("length"), setup.units.factor("time")
+    out = {"detector_initial_mean": [], "classical_arrival_probability": [], "classical_arrival_mean": []}
+    for d in setup.detectors:
+        rho, k, w = marginals_au[d.axis]
+        coords = setup.grid.axes[d.axis].coordinates
+        _, rho_kept, distance = packet_side_positions(coords, rho, d.position)
+        prob, mean = classical_share(rho_kept, distance, k, w, float(setup.mass))
+        out["detector_initial_mean"].append(float(np.sum(rho * coords) / np.sum(rho)) / lf)
+        out["classical_arrival_probability"].append(prob)
+        out["classical_arrival_mean"].append(mean / tf)
+    return {name: np.asarray(v, float) for name, v in out.items()}
+
+
+def records_final_values(setup) -> bool:
+    """Whether the run records its detectors' final values
+    (:func:`final_detector_values`): 1D runs that keep their final state
+    (the few arrays it takes are small beside a run's; analysis of other
+    runs reads the final state, or the last snapshot, instead)."""
+    return bool(setup.detectors) and setup.grid.ndim == 1 and bool(setup.job.table["record"]["final_state"])
+
+
+def final_detector_values(setup, psi, length_scale: float) -> dict | None:
+    """``final_probability_beyond`` and ``final_probability_to_come`` per
+    detector from the final psi (atomic units; ``length_scale`` takes it to
+    job units, as the file stores it), computed as analysis computes them
+    from the file (:func:`wavesweep.io.record.side_probability` on the
+    stored psi, coordinates and detector positions), or None where the run
+    does not record them (:func:`records_final_values`)."""
+    if not records_final_values(setup):
+        return None
+    lf = setup.units.factor("length")
+    psi_job = (np.multiply(psi.real, length_scale, dtype=np.float64)
+               + 1j * np.multiply(psi.imag, length_scale, dtype=np.float64))
+    coords = [setup.grid.axes[0].coordinates / lf]
+    # the geometry as the file gives it back (job units times the factor)
+    ax = setup.grid.axes[0]
+    stored = RecordedRun(grid=Grid((Axis(ax.name, float(ax.min / lf) * lf, float(ax.max / lf) * lf, ax.points,
+                                         ax.boundary),)),
+                         mass=float(setup.mass), detectors=[], marginals={}, dt=float(setup.dt),
+                         time_dependent=False,
+                         absorber=RecordedAbsorber(setup.absorber.kind, float(setup.absorber.thickness / lf) * lf,
+                                                   [RecordedLayer(layer.name, layer.axis)
+                                                    for layer in setup.absorber.layers]))
+    density0 = np.abs(setup.psi0) ** 2
+    x0 = float(np.sum(density0 * ax.coordinates) / np.sum(density0))
+    beyond, to_come = [], []
+    for d in setup.detectors:
+        x_det = float(d.position / lf) * lf
+        side = 1.0 if x0 > x_det else -1.0
+        face = layer_holding(stored, 0, x_det)
+        edge = x_det if face is None else layer_edge(stored, face)
+        beyond.append(side_probability(psi_job, coords, lf, 0, x_det, -side))
+        to_come.append(side_probability(psi_job, coords, lf, 0, edge, side, towards=True))
+    return {"final_probability_beyond": np.asarray(beyond, float),
+            "final_probability_to_come": np.asarray(to_come, float)}
 
 
 def recorded_run(setup, lanczos: bool = False) -> RecordedRun:

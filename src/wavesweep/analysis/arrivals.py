@@ -37,6 +37,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import JobError
+from ..io.record import classical_share, layer_edge, layer_holding, packet_side_positions, side_probability
 from ..io.results import open_result, result_units, source_name
 from .recorded import as_record
 from .recorded import run_record as read_record
@@ -51,6 +52,9 @@ TRUNCATED_TO_COME = 1e-4
 # the forward flux alone (our choice; 1 % keeps the backflow of a free
 # packet, ~1e-4 at most for Gaussians, in the standard definition).
 BACKFLOW_SWITCH = 1e-2
+# Elements (times x positions) of one block of the classical curve: bounds its temporaries
+# (~8 MB each) whatever the grid and the number of samples.
+CURVE_BLOCK = 2**20
 # Below this forward probability nothing arrived: no statistics are given.
 NOTHING_ARRIVED = 1e-9
 
@@ -131,7 +135,7 @@ def arrival_statistics(time, density) -> dict:
 
 
 def classical_free_flight(x_axis, rho, k, w, mass: float, x_detector: float,
-                          time_atomic: np.ndarray) -> tuple[np.ndarray, float, float]:
+                          time_atomic: np.ndarray, curve: bool = True) -> tuple[np.ndarray, float, float]:
     """Classical free-flight arrival estimate from psi(t=0), atomic units.
 
     The ensemble draws positions from |psi0|^2 and momenta from |phi(p)|^2
@@ -145,50 +149,34 @@ def classical_free_flight(x_axis, rho, k, w, mass: float, x_detector: float,
     ``rho`` on the axis's coordinates ``x_axis``, ``w`` on the ascending wave
     numbers ``k`` (a zero-padded transform: a fine p grid), each summing to 1.
 
+    The positions kept all lie on the packet's side of the detector, so the
+    towards-moving momenta are one half-line and the probability and the
+    mean factor into a sum over positions times one over momenta (O(grid),
+    :func:`classical_share`); the curve is a sum over positions per time,
+    in blocks of CURVE_BLOCK elements (``curve=False``: zeros, not computed).
+
     Returns (density on ``time_atomic`` per atomic time unit, probability of
     moving towards the detector, mean arrival time of that part)."""
     x_axis, rho = np.asarray(x_axis, float), np.asarray(rho, float)
     k, w = np.asarray(k, float), np.asarray(w, float)
     dk = k[1] - k[0]
-    # the positions that carry the packet, on its side of the detector
-    # (arrivals come from the packet's side, as for the oriented flux)
-    x0 = float(np.sum(rho * x_axis))
-    keep = (rho > 1e-12 * rho.max()) & ((x_axis - x_detector) * (x0 - x_detector) > 0)
-    x, rho = x_axis[keep], rho[keep]
-    distance = x_detector - x                    # per position
-    towards = k[None, :] * distance[:, None] > 0
-    weight = rho[:, None] * w[None, :] * towards
-    prob = float(weight.sum())
-    if prob <= 0:
-        return np.zeros_like(np.asarray(time_atomic, float)), 0.0, math.nan
-    with np.errstate(divide="ignore", invalid="ignore"):
-        t_of = np.where(towards, mass * distance[:, None] / k[None, :], 0.0)
-    mean = float(np.sum(weight * t_of)) / prob
+    x, rho, distance = packet_side_positions(x_axis, rho, x_detector)
     t = np.asarray(time_atomic, float)
+    prob, mean = classical_share(rho, distance, k, w, mass)
     out = np.zeros_like(t)
+    if prob <= 0 or not curve:
+        return out, prob, mean
+    # Pi_cl(t) = sum_x rho(x) w(m d / t) / dk * m |d| / t^2: (times x positions) in blocks of at
+    # most CURVE_BLOCK elements, so the memory stays bounded whatever the grid and the record
     pos = np.nonzero(t > 0)[0]
-    for i0 in range(0, len(pos), 512):                 # blocks bound the memory
-        tt = t[pos[i0:i0 + 512]]
+    rows = max(1, CURVE_BLOCK // max(len(distance), 1))
+    density_k = w / dk
+    for i0 in range(0, len(pos), rows):
+        tt = t[pos[i0:i0 + rows]]
         p_of = mass * distance[None, :] / tt[:, None]  # (times, positions)
-        dens_p = np.interp(p_of, k, w / dk, left=0.0, right=0.0)
-        out[pos[i0:i0 + 512]] = (dens_p * rho[None, :] * mass * np.abs(distance)[None, :]).sum(axis=1) / tt**2
+        dens_p = np.interp(p_of, k, density_k, left=0.0, right=0.0)
+        out[pos[i0:i0 + rows]] = (dens_p * rho[None, :] * mass * np.abs(distance)[None, :]).sum(axis=1) / tt**2
     return out, prob, mean
-
-
-def layer_holding(setup, axis: int, x: float) -> str | None:
-    """The absorbing face whose layer contains the point x on ``axis``."""
-    ab = setup.absorber
-    if not ab.active:
-        return None
-    ax = setup.grid.axes[axis]
-    for layer in ab.layers:
-        if layer.axis != axis:
-            continue
-        if layer.name.endswith("+") and x > ax.max - ab.thickness:
-            return layer.name
-        if layer.name.endswith("-") and x < ax.min + ab.thickness:
-            return layer.name
-    return None
 
 
 def _final_density(ds):
@@ -210,40 +198,24 @@ def upstream_probability(ds, setup, axis: int, x_det: float, side: float,
     the end of the run (|psi|^2 dV is the same in job units); with
     ``towards``, only the part whose momentum points at the detector (from
     the final state's transform; the reflected part running away does not
-    count).  None when the run kept neither final state nor a last snapshot."""
+    count).  None when the run kept neither final state nor a last snapshot.
+    Reads the final state (or the last snapshot only): O(grid)."""
     found = _final_density(ds)
     if found is None:
         return None
     values, dims, is_psi = found
-    lf = result_units(ds)["length"]
     coords = [np.asarray(ds[d].values, float) for d in dims]
-    dv = float(np.prod([abs(c[1] - c[0]) for c in coords]))
-    # each point stands for a cell of width dx: count the part of its cell
-    # on that side (a detector on a grid point splits that cell)
-    x, dx = coords[axis] * lf, abs(coords[axis][1] - coords[axis][0]) * lf
-    fraction = np.clip(0.5 + (x - x_det) * side / dx, 0.0, 1.0)
-    shape = [1] * values.ndim
-    shape[axis] = len(x)
-    fraction = fraction.reshape(shape)
-    if not is_psi:
-        return float(np.sum(values * fraction) * dv)
-    total = float(np.sum(np.abs(values) ** 2 * fraction) * dv)
-    if not towards or total == 0.0:
-        return total
-    # The share moving towards the detector, from the transform of psi cut
-    # off smoothly (a tanh ramp over a few wavelengths: a sharp cut at a
-    # detector the packet is crossing puts ~1 % into spurious momenta).
-    k = (2 * np.pi * np.fft.fftfreq(len(x), dx)).reshape(shape)
-    c = np.abs(np.fft.fft(values, axis=axis)) ** 2
-    k_rms = math.sqrt(float(np.sum(c * k**2) / np.sum(c))) or 1.0 / dx
-    ramp = 0.5 * (1 + np.tanh((x - x_det) * side * k_rms / 4.0)).reshape(shape)
-    c = np.abs(np.fft.fft(values * ramp, axis=axis)) ** 2
-    moving = float(np.sum(c * (k * -side > 0)) + 0.5 * np.sum(c * (k == 0)))
-    return total * moving / float(np.sum(c))
+    return side_probability(values, coords, result_units(ds)["length"], axis, x_det, side, towards, is_psi)
 
 
-def arrival_times(result, detector: str | None = None,
-                  classical: bool = True, warnings: bool = True) -> dict[str, ArrivalDistribution]:
+def recorded_or(record, name: str, j: int, compute):
+    """Detector ``j``'s value ``name`` as the run recorded it, else ``compute()``."""
+    value = record.detector_value(name, j) if hasattr(record, "detector_value") else None
+    return value if value is not None else compute()
+
+
+def arrival_times(result, detector: str | None = None, classical: bool = True, warnings: bool = True,
+                  curves: bool = True, verify: str = "file") -> dict[str, ArrivalDistribution]:
     """Arrival-time distributions of a run's detectors (``detector``: only
     that one), from a result file path or an open dataset.  ``classical =
     False`` leaves out the classical estimate (its curve is zeros, its
@@ -251,16 +223,21 @@ def arrival_times(result, detector: str | None = None,
     statistics, and the estimate costs more than they do.  ``warnings =
     False`` leaves out the adequacy findings of the run's set-up (judged
     once, at run time, and read from the file), for callers that judge it
-    themselves or only tabulate."""
-    ds = open_result(result, require=("flux", "time"))
+    themselves or only tabulate.  ``curves = False`` gives the statistics
+    only (the classical curve is zeros; its probability and mean stay):
+    with a record that holds the detectors' values (:mod:`wavesweep.io.record`),
+    nothing of the grid's size is then read.  ``verify``: as
+    :func:`~wavesweep.io.results.open_result` (``"used"``: only the
+    variables without a grid dimension are checked when opened)."""
+    ds = open_result(result, require=("flux", "time"), verify=verify)
     try:
-        return _arrivals(ds, detector, classical, warnings)
+        return _arrivals(ds, detector, classical, warnings, curves)
     finally:
         if ds is not result:   # close only what was opened here
             ds.close()
 
 
-def _arrivals(ds, detector, classical=True, warnings=True):
+def _arrivals(ds, detector, classical=True, warnings=True, curves=True):
     names = [str(d) for d in ds["detector"].values] if "detector" in ds.coords else []
     if not names:
         raise JobError("RUN.nc", f"{source_name(ds)}: the run recorded no detector flux; add a [[detector]] table "
@@ -289,13 +266,15 @@ def _arrivals(ds, detector, classical=True, warnings=True):
             if "absorbed" not in ds or face not in [str(b) for b in ds["boundary"].values]:
                 raise JobError("RUN.nc", f"{source_name(ds)}: detector {name!r} lies in the {face} absorber but the run "
                                          "recorded no absorbed probability there")
-            a = np.asarray(ds["absorbed"].sel(boundary=face).values, float)
+            # by position: a dataset opened without indexes (collect's) has no label lookup
+            column = [str(b) for b in ds["boundary"].values].index(face)
+            a = np.asarray(ds["absorbed"][:, column].values, float)
             rho = np.gradient(a, t)
             definition = "absorption"
             notes.append(f"detector {name!r} lies in the {face} absorbing layer: the layer is the "
                             "detector, and its times are those of absorption anywhere in the layer "
                             "(the detector's position inside it does not enter)")
-        x0_side = packet_side(setup, det.axis, det.position)
+        x0_side = detector_side(setup, j)
         if face is None:
             # oriented from the packet towards the detector: arrivals count positive
             rho = flux[:, j] * -x0_side
@@ -318,9 +297,15 @@ def _arrivals(ds, detector, classical=True, warnings=True):
                             f"it against {forward:.3g} forward; the times are those of the forward "
                             "flux, the probability is the net crossing")
         if classical:
-            rho0, k0, w0 = setup.marginals[det.axis]
-            cl, cl_prob, cl_mean = classical_free_flight(setup.grid.axes[det.axis].coordinates, rho0, k0, w0,
-                                                         setup.mass, det.position, t * uc["time"])
+            cl = np.zeros_like(t)
+            recorded = [setup.detector_value(f"classical_arrival_{v}", j) for v in ("probability", "mean")]
+            if curves or recorded[0] is None:
+                rho0, k0, w0 = setup.marginals[det.axis]
+                cl, cl_prob, cl_mean = classical_free_flight(setup.grid.axes[det.axis].coordinates, rho0, k0, w0,
+                                                             setup.mass, det.position, t * uc["time"], curves)
+            if recorded[0] is not None:   # the run's own numbers (the same sums, over its arrays)
+                cl_prob = recorded[0]
+                cl_mean = recorded[1] if recorded[1] is not None else math.nan
         else:
             cl, cl_prob, cl_mean = np.zeros_like(t), math.nan, math.nan
         stats["classical_probability"] = cl_prob
@@ -330,7 +315,8 @@ def _arrivals(ds, detector, classical=True, warnings=True):
         # what may still arrive: before the detector (for a layer, before
         # the layer's inner edge), moving towards it
         edge = det.position if face is None else layer_edge(setup, face)
-        to_come = upstream_probability(ds, setup, det.axis, edge, x0_side, towards=True)
+        to_come = recorded_or(setup, "final_probability_to_come", j,
+                               lambda: upstream_probability(ds, setup, det.axis, edge, x0_side, towards=True))
         stats["still_to_come"] = to_come if to_come is not None else math.nan
         stats["truncated"] = bool(tail > TRUNCATED_TAIL or (to_come or 0.0) > TRUNCATED_TO_COME)
         if stats["truncated"]:
@@ -364,11 +350,12 @@ def recorded_warnings(record) -> list[str]:
     return list(record.warnings)
 
 
-def layer_edge(setup, face: str) -> float:
-    """Inner edge (bohr) of a face's absorbing layer."""
-    ax = setup.grid.axes[setup.grid.axis_index(face[:-1])]
-    th = setup.absorber.thickness
-    return ax.max - th if face.endswith("+") else ax.min + th
+def detector_side(record, j: int) -> float:
+    """+1 when the initial packet lies above detector ``j`` on its axis,
+    else -1: from the recorded mean position where the file holds it."""
+    det = record.detectors[j]
+    x0 = recorded_or(record, "detector_initial_mean", j, lambda: as_record(record).packet_center(det.axis))
+    return 1.0 if x0 > det.position else -1.0
 
 
 def packet_side(setup, axis: int, x_det: float) -> float:

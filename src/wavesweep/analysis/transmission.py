@@ -81,7 +81,7 @@ import numpy as np
 
 from ..errors import JobError
 from ..io.results import open_result, result_units, source_name
-from .arrivals import layer_edge, layer_holding, packet_side, recorded_warnings, upstream_probability
+from .arrivals import recorded_or, detector_side, layer_edge, layer_holding, recorded_warnings, upstream_probability
 from .recorded import as_record
 from .recorded import run_record as read_record
 
@@ -95,6 +95,9 @@ NOTHING_CROSSED = 1e-9     # net probability through a detector below which noth
 AMPLITUDE_AT_END = 1e-6    # |psi(x_d, t_end)|^2 / peak below which the record has died out
 UNCERTAINTY_TARGET = 1e-4  # T(E) counts as settled when uncertain by less (duration_needed aims here)
 RINGING = 0.3              # E(t) at the end falls slower than this x free flight: a resonance rings
+# Elements (wave numbers x grid points) of one block of the momentum amplitude's direct sum:
+# its complex temporaries stay ~16 MB whatever the grid (256 rows of a 131072-point grid took 1 GB).
+AMPLITUDE_BLOCK = 2**20
 VARIES = 1e-6              # V differs from its value at the start by more (x mean kinetic energy)
 
 
@@ -109,17 +112,20 @@ def transmission_totals(ds, setup) -> dict:
     setup = as_record(setup)
 
     faces = [str(b) for b in ds["boundary"].values] if "boundary" in ds.coords else []
-    absorbed = {f: float(ds["absorbed"].sel(boundary=f).values[-1]) for f in faces} \
+    # by position: a dataset opened without indexes (collect's) has no label lookup
+    absorbed = {f: float(ds["absorbed"][-1, i].values) for i, f in enumerate(faces)} \
         if faces and ds.sizes.get("time", 0) else {f: 0.0 for f in faces}
     out = {"absorbed": absorbed, "final_norm": float(ds["norm"].values[-1]), "detectors": {}}
     names = [str(d) for d in ds["detector"].values] if "detector" in ds.coords else []
     t = np.asarray(ds["time"].values, float)
     for j, name in enumerate(names):
         det = setup.detectors[j]
-        side = packet_side(setup, det.axis, det.position)     # where the packet is
+        side = detector_side(setup, j)     # where the packet is
         axis_name = setup.grid.names[det.axis]
         far_face = f"{axis_name}{'-' if side > 0 else '+'}"
-        on_grid = upstream_probability(ds, setup, det.axis, det.position, -side)
+        # as the run recorded it (1D, final state kept), else from the file's final state
+        on_grid = recorded_or(setup, "final_probability_beyond", j,
+                               lambda: upstream_probability(ds, setup, det.axis, det.position, -side))
         beyond = (on_grid if on_grid is not None else math.nan) + absorbed.get(far_face, 0.0)
         crossed = float(np.trapezoid(ds["flux"].values[:, j], t)) * (-side)
         out["detectors"][name] = {"beyond": beyond, "crossed": crossed, "far_face": far_face}
@@ -460,9 +466,11 @@ def _momentum_amplitude(psi, x, k) -> np.ndarray:
     for a band-limited psi on the grid), in blocks to bound the memory."""
     out = np.empty(len(k), complex)
     dx = x[1] - x[0]
-    for i in range(0, len(k), 256):
-        kk = k[i:i + 256]
-        out[i:i + 256] = np.exp(-1j * np.outer(kk, x)) @ psi * dx / math.sqrt(2 * math.pi)
+    # (wave numbers x grid) per block: bounded; 256 rows up to 4096 points, as before
+    rows = min(256, max(1, AMPLITUDE_BLOCK // len(x)))
+    for i in range(0, len(k), rows):
+        kk = k[i:i + rows]
+        out[i:i + rows] = np.exp(-1j * np.outer(kk, x)) @ psi * dx / math.sqrt(2 * math.pi)
     return out
 
 

@@ -29,7 +29,17 @@ So the run writes, once, the few things analysis needs
   (a band the recorded steps cannot tighten enough is refused by ``levels
   --from`` with the sampling it would need, as a live one is);
 - the set-up's adequacy warnings (``adequacy_warnings``, a JSON list of
-  lines: :func:`wavesweep.adequacy.run_warnings`, judged once).
+  lines: :func:`wavesweep.adequacy.run_warnings`, judged once);
+- per detector, the few numbers analysis would otherwise take from
+  grid-sized arrays (so ``collect`` reads no array of the grid's size):
+  ``detector_initial_mean`` (the initial packet's mean position along the
+  detector's axis), ``classical_arrival_probability`` and
+  ``classical_arrival_mean`` (:func:`classical_share` of the marginals), and
+  in 1D runs that keep their final state, from it at the end,
+  ``final_probability_beyond`` (on the grid beyond the detector) and
+  ``final_probability_to_come`` (before it, or before the inner edge of the
+  layer holding it, moving towards it): :func:`side_probability`.  A file
+  without them gets the same numbers from its arrays, as before.
 
 :func:`read_record` gives a :class:`RecordedRun` (atomic units) from a
 dataset.  A file written before the record existed is rebuilt from its job
@@ -39,10 +49,12 @@ memory), and a file the job names must be a regular file.
 """
 from __future__ import annotations
 
+import functools
 import json
 import math
-from dataclasses import dataclass, field
 import zlib
+from collections.abc import Mapping
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -50,7 +62,8 @@ from ..errors import JobError
 from ..grid import Axis, Grid
 
 __all__ = ["RecordedRun", "RecordedDetector", "RecordedAbsorber", "RecordedLayer", "read_record", "has_record",
-           "record_checksum", "result_name", "RECORD_VERSION", "LANCZOS_MAX_POINTS"]
+           "record_checksum", "result_name", "RECORD_VERSION", "LANCZOS_MAX_POINTS", "DETECTOR_VALUES", "FINAL_DETECTOR_VALUES",
+           "side_probability", "classical_share", "packet_side_positions", "layer_holding", "layer_edge"]
 
 # Bumped when the record's content changes; files without it are rebuilt (bounded).
 RECORD_VERSION = 1
@@ -79,6 +92,22 @@ def record_checksum(attrs) -> int:
 # Grids up to this many points record the recurrence: it keeps three complex vectors of the
 # grid's size at the run's start (above, `levels --from` says the run did not record its band).
 LANCZOS_MAX_POINTS = 2**22
+
+
+# Per-detector values of the record (variables on the ``detector`` dimension): name -> (kind
+# of unit, long_name).  Each may be missing (older files; final_* where the run kept no final
+# state or is not 1D): analysis then computes it from the file's arrays.
+DETECTOR_VALUES = {
+    "detector_initial_mean": ("length", "mean position of the initial packet along the detector's axis"),
+    "classical_arrival_probability": ("1", "classical free-flight probability of moving towards the detector"),
+    "classical_arrival_mean": ("time", "classical free-flight mean arrival time at the detector"),
+    "final_probability_beyond": ("1", "probability on the grid beyond the detector at the run's end"),
+    "final_probability_to_come": ("1", "probability before the detector (or the inner edge of the layer "
+                                       "holding it) at the run's end, moving towards it"),
+}
+
+# Those the run computes from its final state (1D runs that keep it).
+FINAL_DETECTOR_VALUES = ("final_probability_beyond", "final_probability_to_come")
 
 
 @dataclass
@@ -128,11 +157,65 @@ class RecordedRun:
     static_potential: np.ndarray | None = None
     warnings: list | None = None
     lanczos: tuple | None = None
+    detector_values: dict = field(default_factory=dict)
+
+    def __getattribute__(self, name):
+        # arrays of the grid's size read from a file are loaded on first use (_OnFirstUse)
+        value = object.__getattribute__(self, name)
+        if type(value) is _OnFirstUse:
+            value = value.load()
+            object.__setattr__(self, name, value)
+        return value
 
     def packet_center(self, axis: int) -> float:
         """Mean of the initial packet's position along ``axis`` (bohr)."""
         rho = self.marginals[axis][0]
         return float(np.sum(rho * self.grid.axes[axis].coordinates) / np.sum(rho))
+
+    def detector_value(self, name: str, j: int) -> float | None:
+        """Detector ``j``'s recorded value ``name`` (a DETECTOR_VALUES key,
+        atomic units), or None where the file does not hold it."""
+        values = self.detector_values.get(name)
+        if values is None or not math.isfinite(float(values[j])):
+            return None
+        return float(values[j])
+
+
+class _OnFirstUse:
+    """A value of a RecordedRun read from its file when first used."""
+
+    def __init__(self, load):
+        self.load = load
+
+
+class _AxesOnFirstUse(Mapping):
+    """Per-axis values read from the file when an axis is first asked for."""
+
+    def __init__(self, loaders: dict):
+        self._loaders, self._values = loaders, {}
+
+    def __getitem__(self, axis):
+        if axis not in self._values:
+            self._values[axis] = self._loaders[axis]()
+        return self._values[axis]
+
+    def __iter__(self):
+        return iter(self._loaders)
+
+    def __len__(self):
+        return len(self._loaders)
+
+
+def _damage_as_job_error(load, ds, field):
+    """``load`` with a missing or malformed array of the record as the
+    JobError read_record gives (the array is read after read_record returned)."""
+    def checked():
+        try:
+            return load()
+        except (KeyError, ValueError, TypeError, RuntimeError, OSError) as e:
+            raise JobError(field, f"{result_name(ds)}: the analysis record is incomplete or damaged ({e}); "
+                                  "run the job again") from None
+    return checked
 
 # -- at analysis time -----------------------------------------------------------------
 def has_record(ds) -> bool:
@@ -174,22 +257,35 @@ def _read(ds) -> RecordedRun:
     faces = [str(b) for b in ds["boundary"].values] if "boundary" in ds.coords else []
     absorber = RecordedAbsorber(str(a.get("absorber", "none")), float(a["absorber_thickness"]) * lf,
                                 [RecordedLayer(f, names.index(f[:-1])) for f in faces])
-    marginals = {}
-    for i, n in enumerate(names):
-        rho = np.asarray(ds[f"initial_position_marginal_{n}"].values, float)
-        k = np.asarray(ds[f"k_{n}"].values, float) / lf
-        w = np.asarray(ds[f"initial_momentum_marginal_{n}"].values, float)
-        if rho.shape != (axes[i].points,) or k.shape != w.shape:
-            raise ValueError(f"the marginals along {n} do not match the grid")
-        marginals[i] = (rho, k, w)
+    def marginal(i, n):
+        def load():
+            rho = np.asarray(ds[f"initial_position_marginal_{n}"].values, float)
+            k = np.asarray(ds[f"k_{n}"].values, float) / lf
+            w = np.asarray(ds[f"initial_momentum_marginal_{n}"].values, float)
+            if rho.shape != (axes[i].points,) or k.shape != w.shape:
+                raise ValueError(f"the marginals along {n} do not match the grid")
+            return rho, k, w
+        return _damage_as_job_error(load, ds, field)
+
+    for n in names:   # present, or the record is incomplete (said now, not at first use)
+        for v in (f"initial_position_marginal_{n}", f"k_{n}", f"initial_momentum_marginal_{n}"):
+            if v not in ds.variables:
+                raise KeyError(v)
+    marginals = _AxesOnFirstUse({i: marginal(i, n) for i, n in enumerate(names)})
     psi0 = v_full = None
     if len(names) == 1 and "initial_psi_real" in ds:
-        psi0 = (np.asarray(ds["initial_psi_real"].values, float)
-                + 1j * np.asarray(ds["initial_psi_imag"].values, float)) / math.sqrt(lf)
         v_name = "potential_full" if "potential_full" in ds else "potential"
-        v_full = np.asarray(ds[v_name].values, float) * ef
-        if psi0.shape != grid.shape or v_full.shape != grid.shape:
-            raise ValueError("psi0 or the potential does not match the grid")
+
+        def initial():
+            psi = (np.asarray(ds["initial_psi_real"].values, float)
+                   + 1j * np.asarray(ds["initial_psi_imag"].values, float)) / math.sqrt(lf)
+            v = np.asarray(ds[v_name].values, float) * ef
+            if psi.shape != grid.shape or v.shape != grid.shape:
+                raise ValueError("psi0 or the potential does not match the grid")
+            return psi, v
+        both = functools.cache(_damage_as_job_error(initial, ds, field))   # one read for the two
+        psi0 = _OnFirstUse(lambda: both()[0])
+        v_full = _OnFirstUse(lambda: both()[1])
     lanczos = None
     if "lanczos_alpha" in ds:
         betas = np.asarray(ds["lanczos_beta"].values, float)
@@ -199,13 +295,113 @@ def _read(ds) -> RecordedRun:
                    float(a["spectrum_max"]) * ef,
                    float(a["ground_energy"]) * ef if "ground_energy" in a else None)
     warnings = json.loads(a["adequacy_warnings"]) if "adequacy_warnings" in a else None
+    factors = {"1": 1.0, "length": lf, "time": tf}
+    values = {}
+    for name, (kind, _) in DETECTOR_VALUES.items():
+        if name in ds.variables and dets:
+            v = np.asarray(ds[name].values, float) * factors[kind]
+            if v.shape != (len(dets),):
+                raise ValueError(f"{name} does not match the detectors")
+            values[name] = v
     return RecordedRun(grid=grid, mass=mass, detectors=dets, absorber=absorber,
                        time_dependent=bool(int(a["time_dependent"])), marginals=marginals,
                        dt=float(a["dt"]) * tf, psi0=psi0, static_potential=v_full,
-                       warnings=warnings, lanczos=lanczos)
+                       warnings=warnings, lanczos=lanczos, detector_values=values)
 
 
 def result_name(ds) -> str:
     """The file an open dataset was read from, quoted, for messages."""
     source = getattr(ds, "encoding", {}).get("source")
     return repr(str(source)) if source else "the result"
+
+
+# -- values of the record, computed the same way at run time and from an older file -------
+def packet_side_positions(x_axis, rho, x_detector):
+    """The positions that carry the packet on its side of the detector
+    (arrivals come from the packet's side, as for the oriented flux):
+    (x, rho there, x_detector - x); ``rho`` sums to 1 on ``x_axis``."""
+    x_axis, rho = np.asarray(x_axis, float), np.asarray(rho, float)
+    x0 = float(np.sum(rho * x_axis))
+    keep = (rho > 1e-12 * rho.max()) & ((x_axis - x_detector) * (x0 - x_detector) > 0)
+    x = x_axis[keep]
+    return x, rho[keep], x_detector - x
+
+
+def classical_share(rho, distance, k, w, mass: float) -> tuple[float, float]:
+    """(probability of moving towards the detector, mean arrival time) of
+    the classical free-flight ensemble (:func:`wavesweep.analysis.arrivals.classical_free_flight`):
+    positions ``rho`` at signed distances ``distance`` from the detector
+    (all of one sign: the packet's side, :func:`packet_side_positions`),
+    momenta ``w`` on ``k``.  The ensemble's weight rho(x) w(k) on the pairs
+    with k d > 0 factors, so P = sum rho * sum_{k d > 0} w and
+    <m d / k> = m sum(rho d) sum_{k d > 0} (w / k) / P: O(grid), where the
+    sum over pairs was O(grid^2) (atomic units)."""
+    if not len(distance):
+        return 0.0, math.nan
+    k, w = np.asarray(k, float), np.asarray(w, float)
+    towards = k * distance[0] > 0
+    w_towards = w[towards]
+    prob = float(np.sum(rho) * np.sum(w_towards))
+    if prob <= 0:
+        return 0.0, math.nan
+    mean = float(mass * np.sum(rho * distance) * np.sum(w_towards / k[towards])) / prob
+    return prob, mean
+
+
+def side_probability(values, coords, length_factor: float, axis: int, x_det: float, side: float,
+                     towards: bool = False, is_psi: bool = True) -> float:
+    """Probability on the ``side`` (+1: above) of the plane x_det (bohr) on
+    ``axis``, from psi (``is_psi``) or |psi|^2 on the grid ``coords`` (job
+    units, one array per axis; |psi|^2 dV is the same in job units); with
+    ``towards``, only the part whose momentum points at the plane (from the
+    transform of psi; the part running away does not count).  O(grid):
+    a few arrays of psi's size."""
+    coords = [np.asarray(c, float) for c in coords]
+    lf = length_factor
+    dv = float(np.prod([abs(c[1] - c[0]) for c in coords]))
+    # each point stands for a cell of width dx: count the part of its cell
+    # on that side (a detector on a grid point splits that cell)
+    x, dx = coords[axis] * lf, abs(coords[axis][1] - coords[axis][0]) * lf
+    fraction = np.clip(0.5 + (x - x_det) * side / dx, 0.0, 1.0)
+    shape = [1] * values.ndim
+    shape[axis] = len(x)
+    fraction = fraction.reshape(shape)
+    if not is_psi:
+        return float(np.sum(values * fraction) * dv)
+    total = float(np.sum(np.abs(values) ** 2 * fraction) * dv)
+    if not towards or total == 0.0:
+        return total
+    # The share moving towards the detector, from the transform of psi cut
+    # off smoothly (a tanh ramp over a few wavelengths: a sharp cut at a
+    # detector the packet is crossing puts ~1 % into spurious momenta).
+    k = (2 * np.pi * np.fft.fftfreq(len(x), dx)).reshape(shape)
+    c = np.abs(np.fft.fft(values, axis=axis)) ** 2
+    k_rms = math.sqrt(float(np.sum(c * k**2) / np.sum(c))) or 1.0 / dx
+    ramp = 0.5 * (1 + np.tanh((x - x_det) * side * k_rms / 4.0)).reshape(shape)
+    c = np.abs(np.fft.fft(values * ramp, axis=axis)) ** 2
+    moving = float(np.sum(c * (k * -side > 0)) + 0.5 * np.sum(c * (k == 0)))
+    return total * moving / float(np.sum(c))
+
+
+def layer_holding(setup, axis: int, x: float) -> str | None:
+    """The absorbing face whose layer contains the point x (bohr) on
+    ``axis``; ``setup``: a RecordedRun or a set-up (``absorber``, ``grid``)."""
+    ab = setup.absorber
+    if not ab.active:
+        return None
+    ax = setup.grid.axes[axis]
+    for layer in ab.layers:
+        if layer.axis != axis:
+            continue
+        if layer.name.endswith("+") and x > ax.max - ab.thickness:
+            return layer.name
+        if layer.name.endswith("-") and x < ax.min + ab.thickness:
+            return layer.name
+    return None
+
+
+def layer_edge(setup, face: str) -> float:
+    """Inner edge (bohr) of a face's absorbing layer."""
+    ax = setup.grid.axes[setup.grid.axis_index(face[:-1])]
+    th = setup.absorber.thickness
+    return ax.max - th if face.endswith("+") else ax.min + th

@@ -33,6 +33,7 @@ from ..errors import DiskFull, JobError
 from ..observables import SCALARS
 from .atomic import atomic_output, atomic_rename, temporary_path
 from .diskspace import NO_SPACE, disk_full_from
+from .record import DETECTOR_VALUES, FINAL_DETECTOR_VALUES
 
 __all__ = ["ResultWriter", "copy_file"]
 
@@ -311,6 +312,16 @@ class ResultWriter:
                 v = self._var("potential_full", "f8", tuple(full_dims))
                 v[:] = rec["potential_full"]
                 v.units, v.long_name = u["energy"], "static part of the potential V (full grid)"
+        # per detector: the few numbers analysis would otherwise take from grid-sized arrays
+        if len(ds.dimensions["detector"]) and rec.get("detectors") is not None:
+            names = list(rec["detectors"]) + (list(FINAL_DETECTOR_VALUES) if rec.get("final_values") else [])
+            for name in names:
+                kind, long = DETECTOR_VALUES[name]
+                v = self._var(name, "f8", ("detector",), fill_value=np.nan)
+                v.units, v.long_name = u.get(kind, "1"), long
+                v.coordinates = "detector_x detector_axis"
+                if name in rec["detectors"]:
+                    v[:] = rec["detectors"][name]
         if rec.get("lanczos") is not None:
             alphas, betas = rec["lanczos"][:2]
             factor = rec["energy_factor"]
@@ -390,6 +401,13 @@ class ResultWriter:
                 for part, name in ((psi.real, "psi_real"), (psi.imag, "psi_imag")):
                     for i in range(0, psi.shape[0], rows):
                         self.ds[name][i:i + rows] = np.multiply(part[i:i + rows], scale, dtype=np.float64)
+
+    def set_detector_values(self, values: dict) -> None:
+        """The detectors' final values of the record (name -> one number per
+        detector, job units), where the file defined them."""
+        for name, v in values.items():
+            if name in self.ds.variables:
+                self.ds[name][:] = np.asarray(v, float)
 
     def save_copy(self, dest: Path, tmp: Path | None = None, reopen: bool = True) -> int:
         """Flush the sample buffer, close the file and copy it to ``dest``

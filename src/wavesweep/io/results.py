@@ -10,22 +10,35 @@ from the ``job`` attribute.
 """
 from __future__ import annotations
 
+import inspect
 import os
 
+import numpy as np
 import xarray as xr
 
 from ..errors import JobError
 from .paths import input_file
 
-__all__ = ["open_result", "source_name", "result_units", "verify_readable"]
+__all__ = ["open_result", "source_name", "result_units", "verify_readable", "grid_dimensions", "WITHOUT_INDEXES"]
+
+# xarray reads every dimension coordinate when it opens a file, to index it: the grid's axes and
+# the padded wave numbers among them, an O(grid) read.  A reader that looks nothing up by label
+# (collect; analysis selects by position) opens without them where xarray allows it (2025.x on).
+WITHOUT_INDEXES = ({"create_default_indexes": False}
+                   if "create_default_indexes" in inspect.signature(xr.open_dataset).parameters else {})
 
 REQUIRED_ATTRS = ("run_id", "job", "wavesweep_version")
 
 
-def open_result(path, require: tuple[str, ...] = (), field: str = "RUN.nc") -> xr.Dataset:
+def open_result(path, require: tuple[str, ...] = (), field: str = "RUN.nc", verify: str = "file") -> xr.Dataset:
     """The result at ``path`` as a lazily loaded dataset (close it, or use it
     in a ``with`` block).  ``require``: variables that must be present;
-    ``field`` names the argument in error messages."""
+    ``field`` names the argument in error messages.  ``verify``: ``"file"``
+    reads every variable of up to VERIFY_MAX_ELEMENTS elements (a damaged
+    block anywhere is refused now); ``"used"`` only those without a grid or
+    snapshot dimension (:func:`grid_dimensions`): a caller that reads no
+    grid-sized array (``collect``) then pays nothing that grows with the
+    grid, and a damaged grid-sized array fails when (if ever) it is read."""
     if isinstance(path, xr.Dataset):
         ds = path
     else:
@@ -54,7 +67,7 @@ def open_result(path, require: tuple[str, ...] = (), field: str = "RUN.nc") -> x
         raise JobError(field, f"{_name(path)} has no {', '.join(absent)} variable; "
                               "it was written without it (re-run the job with this version)")
     try:
-        verify_readable(ds, path, field)
+        verify_readable(ds, path, field, skip_dims=grid_dimensions(ds) if verify == "used" else ())
     except JobError:
         ds.close()
         raise
@@ -65,24 +78,42 @@ def open_result(path, require: tuple[str, ...] = (), field: str = "RUN.nc") -> x
 # result is opened; larger ones (density frames) are streamed and checked by
 # their readers.
 VERIFY_MAX_ELEMENTS = 2**22
+# netCDF's default fill values (NC_FILL_DOUBLE, NC_FILL_FLOAT in netCDF-C's netcdf.h; by
+# itemsize): what a block absent from a variable's chunk index reads as.  The writer fills
+# every block (variables that may stay unwritten declare NaN as their fill value).
+NETCDF_DEFAULT_FILL = {8: np.float64(9.9692099683868690e36), 4: np.float32(9.9692099683868690e36)}
 # Rounding allowed around [0, 1] for probabilities (norm, absorbed).
 PROBABILITY_SLACK = 1e-6
 
 
-def verify_readable(ds: xr.Dataset, path, field: str = "RUN.nc") -> None:
+def grid_dimensions(ds: xr.Dataset) -> set[str]:
+    """The dimensions that grow with the grid or the snapshots: the grid's
+    axes (the snapshot grid, ``<axis>_full``, the padded ``k_<axis>``) and
+    ``snapshot_time``."""
+    axes = str(ds.attrs.get("grid_axes", "")).split() or \
+        [str(d) for d in (ds["potential"].dims if "potential" in ds.variables else ())]
+    return {"snapshot_time", *axes, *(f"{n}_full" for n in axes), *(f"k_{n}" for n in axes)}
+
+
+def verify_readable(ds: xr.Dataset, path, field: str = "RUN.nc", skip_dims=()) -> None:
     """Read every variable of up to VERIFY_MAX_ELEMENTS elements: a block
     whose HDF5 checksum (results are written with Fletcher-32) or
     compression fails is one line naming the file and the variable; and
     ``norm`` and ``absorbed`` must be probabilities (in [0, 1] to rounding):
     a file without checksums can still be caught holding nonsense there."""
+    skip_dims = set(skip_dims)
     for name, var in ds.variables.items():
-        if var.size > VERIFY_MAX_ELEMENTS:
+        if var.size > VERIFY_MAX_ELEMENTS or skip_dims.intersection(var.dims):
             continue
         try:
             values = var.values
         except (RuntimeError, OSError, ValueError) as e:
             raise JobError(field, f"{_name(path)}: variable {name!r} cannot be read, the file is damaged "
                                   f"({' '.join(str(e).split())}); run the job again") from None
+        if values.dtype.kind == "f" and values.size and np.any(values == NETCDF_DEFAULT_FILL[values.dtype.itemsize]):
+            # a chunk missing from a damaged index reads as the default fill value, without an error
+            raise JobError(field, f"{_name(path)}: variable {name!r} has blocks that read as never written, "
+                                  "the file is damaged; run the job again")
         if name in ("norm", "absorbed") and values.size:
             lo, hi = float(values.min()), float(values.max())
             if not (-PROBABILITY_SLACK <= lo and hi <= 1 + PROBABILITY_SLACK):

@@ -63,6 +63,7 @@ from ..analysis.recorded import run_record
 from ..analysis.transmission import transmission_totals
 from ..errors import JobError
 from ..io.atomic import atomic_output
+from ..io.results import WITHOUT_INDEXES
 from ..job.dotted import get_dotted
 from ..job.schemas import ABSORBER, AXIS, EVOLVE, PARTICLE, RECORD
 from ..potentials import term_class
@@ -268,7 +269,8 @@ def _read_manifest(path: Path) -> dict:
 
 
 def _read_result(path: Path) -> _Result:
-    with xr.open_dataset(path, engine="netcdf4") as ds:
+    # without indexes: reading the grid's coordinates to index them would grow with the grid
+    with xr.open_dataset(path, engine="netcdf4", **WITHOUT_INDEXES) as ds:
         time = np.asarray(ds["time"].values, float)
         faces = [str(b) for b in ds["boundary"].values] if "boundary" in ds.coords else []
         dets = [str(d) for d in ds["detector"].values] if "detector" in ds.coords else []
@@ -301,7 +303,10 @@ def _analyse(ds, result: _Result) -> None:
     ``wavesweep arrivals`` / ``transmission`` give them for the run."""
 
     try:
-        dists = arrival_times(ds, warnings=False)   # the figures only; check judges the set-ups
+        # the figures only (check judges the set-ups): statistics without curves, from the
+        # variables without a grid dimension and the record (no array of the grid's size is read
+        # where the run recorded its detectors' values, so the cost does not grow with the grid)
+        dists = arrival_times(ds, warnings=False, curves=False, verify="used")
         totals = transmission_totals(ds, run_record(ds))   # what the run wrote, never its job rebuilt
     except JobError as e:     # e.g. a file potential that has moved: the books stay, stats are NaN
         result.analysis_note = f"run {result.run_id}: no arrival statistics ({e})"
