@@ -24,7 +24,7 @@ from ..absorbers.layers import face_names
 from ..errors import ErrorCollector, JobError, combine_errors
 from ..grid import BOUNDARIES, Axis, Grid
 from ..io.paths import file_kind
-from ..potentials import REGISTRY, PotentialContext, make_term, term_class
+from ..potentials import DEFAULT_POTENTIAL, REGISTRY, PotentialContext, make_term, term_class
 from ..schema import MAX_INT, Field, check_unknown, unknown_keys, validate_table
 from ..states import DEFAULT_PACKET, PACKET_SCHEMAS, PACKETS
 from ..units import UnitSet
@@ -364,7 +364,7 @@ def _potentials(raw, units, ndim, base, found: ErrorCollector | None = None,
 
 def _potential_tables(raw, units, ndim, base, prefix, found: ErrorCollector) -> list:
     if raw is None:
-        return [{"kind": "free"}]
+        return [{"kind": DEFAULT_POTENTIAL}]
     if isinstance(raw, dict):
         raw = [raw]
     if not isinstance(raw, list) or not all(isinstance(t, dict) for t in raw):

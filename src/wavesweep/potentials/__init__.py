@@ -2,4 +2,7 @@
 from .base import REGISTRY, PotentialContext, PotentialTerm, make_term, register, term_class
 from . import library, field, external  # noqa: F401  (register the kinds)
 
-__all__ = ["REGISTRY", "PotentialContext", "PotentialTerm", "make_term", "register", "term_class"]
+# A job without [[potential]] is a free particle.
+DEFAULT_POTENTIAL = library.Free.kind
+
+__all__ = ["REGISTRY", "DEFAULT_POTENTIAL", "PotentialContext", "PotentialTerm", "make_term", "register", "term_class"]

@@ -68,7 +68,7 @@ from ..job.dotted import get_dotted
 from ..job.schemas import ABSORBER, AXIS, EVOLVE, PARTICLE, RECORD
 from ..potentials import term_class
 from ..schema import Field
-from ..states import PACKET_SCHEMAS
+from ..states import DEFAULT_PACKET, PACKET_SCHEMAS, PACKETS
 from ..units import KINDS, UnitSet
 from .layout import MANIFEST_NAME, SUMMARY_NAME, StudyLayout
 
@@ -370,9 +370,11 @@ def _field_of(job: dict, key: str) -> Field | None:
             return term_class(table["kind"], key).parameters.get(rest[1])
         if top == "packet":
             table = job["packet"]
-            while rest[0] == "packets":
-                table, rest = table["packets"][int(rest[1])], rest[2:]
-            return PACKET_SCHEMAS[table.get("kind", "gaussian")].get(rest[0])
+            kind = PACKETS[table.get("kind", DEFAULT_PACKET)]
+            while kind.nested is not None and rest[0] == kind.nested:   # a member of a superposition
+                table, rest = table[kind.nested][int(rest[1])], rest[2:]
+                kind = PACKETS[table.get("kind", DEFAULT_PACKET)]
+            return PACKET_SCHEMAS[kind.kind].get(rest[0])
         if top == "detector":
             if rest[1] in ("x", "y", "z", "r"):
                 return Field("length", doc=f"detector position {rest[1]}")

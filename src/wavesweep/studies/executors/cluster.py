@@ -219,5 +219,5 @@ class DaskExecutor(Executor):
             client.close()
             if cluster is not None:
                 cluster.close()
-        return {"executor": "dask", "address": self.address, "claimed": counts["claimed"], "stale": stale,
+        return {"executor": self.name, "address": self.address, "claimed": counts["claimed"], "stale": stale,
                 "stopped": stopping["yes"], "disk_full_stop": full["yes"]}
