@@ -57,3 +57,22 @@ def test_heavy_dependencies_load_on_first_use(tmp_path):
     assert seen["interfaces_error"] < 1e-12
     if has_dask:
         assert seen["dask_fft"]
+
+
+READER_PROBE = r"""
+import json, sys
+import wavesweep.analysis.arrivals, wavesweep.analysis.transmission, wavesweep.studies.collect
+import wavesweep.viz.summary
+print(json.dumps([m for m in ("numba", "pyfftw", "wavesweep.setup", "wavesweep.run", "wavesweep.kernels.split",
+                              "wavesweep.analysis.spectra") if m in sys.modules]))
+"""
+
+
+def test_reading_results_loads_no_stepping_code(tmp_path):
+    """Analysis and collect read result files (the layers of
+    tests/unit/test_layers.py): importing them loads neither the run layer
+    nor numba or the FFT libraries, so a process that only reads pays for
+    none of it."""
+    out = subprocess.run([sys.executable, "-c", READER_PROBE], capture_output=True, text=True, check=True,
+                         cwd=tmp_path, env={**os.environ, "WAVESWEEP_CACHE": str(tmp_path)})
+    assert json.loads(out.stdout.strip().splitlines()[-1]) == []
