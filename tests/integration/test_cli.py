@@ -1,4 +1,4 @@
-"""The command line, through a real process: exit status, stdout, stderr, files.
+"""The command line: exit status, stdout, stderr, files.
 
 Contract (design.md, "Command line"): exit 0 on success, 2 on bad input with
 a one-line cause on stderr, 1 otherwise; ``--json`` prints one JSON object
@@ -6,8 +6,15 @@ on stdout and nothing else there.  For every bad input we also require: the
 line names the field, no traceback anywhere, nothing on stdout for ``run``,
 and no result or partial file left in the output folder.
 
-Jobs are tiny (128 points, 20 steps) so that a run takes well under a second
-and each case costs about one interpreter start.
+Most cases call ``wavesweep.cli.main`` in this process (``wavesweep()``,
+tests/inprocess.py): ``python -m wavesweep`` is ``sys.exit(main())``, so the
+status, the text on the descriptors 1 and 2 and the files left are the same,
+without an interpreter start per case.  Real processes (``cli()``) remain
+where the process is the point: the module and the console script as entry
+points (exit 0 with the same output and result; exit 2 with one line and no
+traceback) and ``work``, which starts worker processes.
+
+Jobs are tiny (128 points, 20 steps) so that a run takes well under a second.
 """
 from __future__ import annotations
 
@@ -21,6 +28,7 @@ import sys
 from pathlib import Path
 
 import pytest
+from inprocess import child_environment, run_main
 from tables import merged
 import tomli_w
 import xarray as xr
@@ -62,6 +70,12 @@ def cli(*args, cwd: Path, exe=None) -> subprocess.CompletedProcess:
     cmd = [str(exe)] if exe else [sys.executable, "-m", "wavesweep"]
     return subprocess.run(cmd + [str(a) for a in args], capture_output=True, text=True,
                           cwd=cwd, env=_env(cwd), timeout=120)
+
+
+def wavesweep(*args, cwd: Path) -> subprocess.CompletedProcess:
+    """The command line called in this process (tests/inprocess.py), with the
+    environment ``cli()`` gives a real process."""
+    return run_main(*args, cwd=cwd, env=child_environment(cwd / "cache"))
 
 
 def write_job(folder: Path, table: dict, name: str = "job.toml") -> Path:
@@ -141,7 +155,7 @@ def test_bad_input_is_one_line_exit_2(tmp_path, command, patch, extra, field, pi
     job = write_job(tmp_path, merged(TINY, patch))
     out = tmp_path / "out"
     args = ["-o", out, "--quiet"] if command == "run" else ["--trial-seconds", "0.01"]
-    proc = cli(command, job, *args, *extra, cwd=tmp_path)
+    proc = wavesweep(command, job, *args, *extra, cwd=tmp_path)
     assert_bad_input(proc, field, *pieces)
     assert leftovers(out) == []
     assert not (tmp_path / "PWNED").exists()  # the expression case ran nothing
@@ -152,7 +166,7 @@ def test_toml_syntax_error(tmp_path, command):
     job = tmp_path / "broken.toml"
     job.write_text('title = "unterminated\n[grid\n')
     args = ["-o", tmp_path / "out"] if command == "run" else []
-    line = assert_bad_input(cli(command, job, *args, cwd=tmp_path), "broken.toml", "TOML", "line 1")
+    line = assert_bad_input(wavesweep(command, job, *args, cwd=tmp_path), "broken.toml", "TOML", "line 1")
     assert re.search(r"column \d+", line)
     assert leftovers(tmp_path / "out") == []
 
@@ -160,8 +174,18 @@ def test_toml_syntax_error(tmp_path, command):
 @pytest.mark.parametrize("command", ["run", "check"])
 def test_missing_job_file(tmp_path, command):
     args = ["-o", tmp_path / "out"] if command == "run" else []
-    assert_bad_input(cli(command, "no-such-job.toml", *args, cwd=tmp_path), "no-such-job.toml", "not found")
+    assert_bad_input(wavesweep(command, "no-such-job.toml", *args, cwd=tmp_path), "no-such-job.toml", "not found")
     assert not (tmp_path / "out").exists()
+
+
+def test_bad_input_through_the_real_process(tmp_path):
+    """``python -m wavesweep`` itself (the cases above call its ``main`` in
+    this process): exit 2, one line naming the field on stderr, no
+    traceback, nothing on stdout, no file written."""
+    job = write_job(tmp_path, merged(TINY, {"packet": {"width": None, "widht": 3.0}}))
+    proc = cli("run", job, "-o", tmp_path / "out", "--quiet", cwd=tmp_path)
+    assert_bad_input(proc, "packet.widht", "'width'")
+    assert leftovers(tmp_path / "out") == []
 
 
 @pytest.mark.parametrize(("args", "field"), [
@@ -185,7 +209,7 @@ def test_output_under_a_regular_file(tmp_path):
     """A folder that cannot be created (its parent is a file): exit 2, nothing written."""
     job = write_job(tmp_path, TINY)
     (tmp_path / "plain-file").write_text("not a folder\n")
-    proc = cli("run", job, "-o", tmp_path / "plain-file" / "out", "--quiet", cwd=tmp_path)
+    proc = wavesweep("run", job, "-o", tmp_path / "plain-file" / "out", "--quiet", cwd=tmp_path)
     assert_bad_input(proc, "--output", "plain-file")
     assert leftovers(tmp_path) == []
 
@@ -199,7 +223,7 @@ def test_output_in_read_only_folder(tmp_path):
     locked.chmod(0o555)
     try:
         for out in (locked, locked / "sub"):
-            proc = cli("run", job, "-o", out, "--quiet", cwd=tmp_path)
+            proc = wavesweep("run", job, "-o", out, "--quiet", cwd=tmp_path)
             assert_bad_input(proc, "--output", str(locked))
             assert leftovers(locked) == []
     finally:
@@ -212,7 +236,7 @@ def test_failure_mid_run_leaves_no_file(tmp_path):
     job = write_job(tmp_path, merged(TINY, {"potential": [
         {"kind": "expression", "expression": "where(t > 0.15, log(-1.0 - x * x), 0.0)"}]}))
     out = tmp_path / "out"
-    proc = cli("run", job, "-o", out, "--quiet", cwd=tmp_path)
+    proc = wavesweep("run", job, "-o", out, "--quiet", cwd=tmp_path)
     assert_bad_input(proc, "potential.0.expression", "t = 0.")
     assert out.is_dir()  # the run had started writing
     assert leftovers(out) == []
@@ -222,7 +246,7 @@ def test_failure_mid_run_leaves_no_file(tmp_path):
 def test_run_prints_the_result_path(tmp_path):
     job = write_job(tmp_path, TINY, "tiny.toml")
     out = tmp_path / "results"
-    proc = cli("run", job, "-o", out, "--quiet", cwd=tmp_path)
+    proc = wavesweep("run", job, "-o", out, "--quiet", cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr
     assert proc.stderr == ""  # --quiet: no progress, no chatter
     (line,) = proc.stdout.splitlines()
@@ -234,7 +258,7 @@ def test_run_prints_the_result_path(tmp_path):
         assert ds.sizes["time"] == 11
         # NAME-RUNID.nc: other physics never overwrites this file
         assert path.name == f"tiny-{ds.attrs['run_id']}.nc"
-    other = cli("run", job, "-o", out, "--quiet", "--set", "packet.width=1.1", cwd=tmp_path)
+    other = wavesweep("run", job, "-o", out, "--quiet", "--set", "packet.width=1.1", cwd=tmp_path)
     assert other.returncode == 0, other.stderr
     assert len(leftovers(out)) == 2
 
@@ -244,7 +268,7 @@ def test_run_executes_every_point_of_a_sweep(tmp_path):
     table["sweep"] = {"packet.width": [1.0, 1.1, 1.2]}
     job = write_job(tmp_path, table, "swept.toml")
     out = tmp_path / "results"
-    proc = cli("run", job, "-o", out, "--quiet", cwd=tmp_path)
+    proc = wavesweep("run", job, "-o", out, "--quiet", cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr
     paths = [Path(p) for p in proc.stdout.splitlines()]
     assert len(paths) == 3 and len(set(paths)) == 3
@@ -314,7 +338,7 @@ def test_quiet_means_no_progress_bar(tmp_path, monkeypatch, capsys, quiet):
 
 # -- check -------------------------------------------------------------------------
 def test_check_demo_job_reports_numbers(tmp_path):
-    proc = cli("check", DEMO, "--trial-seconds", "0.05", cwd=tmp_path)
+    proc = wavesweep("check", DEMO, "--trial-seconds", "0.05", cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr
     assert "Traceback" not in proc.stderr
     lines = proc.stdout.strip().splitlines()
@@ -335,7 +359,7 @@ def _one_json_object(text: str) -> dict:
 
 
 def test_check_json_demo_job(tmp_path):
-    proc = cli("check", DEMO, "--json", "--trial-seconds", "0.05", cwd=tmp_path)
+    proc = wavesweep("check", DEMO, "--json", "--trial-seconds", "0.05", cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr
     report = _one_json_object(proc.stdout)
     assert report["title"].startswith("Kestrel diode")
@@ -353,7 +377,7 @@ def test_check_json_with_an_error_finding(tmp_path):
     """A packet 2 widths from the absorber: check refuses (exit 2) with one
     line naming the field, and stdout still holds exactly one JSON object."""
     job = write_job(tmp_path, merged(TINY, {**CAP, "packet": {"center": -28.0}}))
-    proc = cli("check", job, "--json", "--trial-seconds", "0.01", cwd=tmp_path)
+    proc = wavesweep("check", job, "--json", "--trial-seconds", "0.01", cwd=tmp_path)
     assert proc.returncode == 2, proc.stderr
     line = assert_bad_input(proc, "packet.center", "widths", stdout_empty=False)
     assert "2.0 widths" in line
@@ -396,7 +420,7 @@ def test_five_mistakes_are_five_lines_in_file_order(tmp_path, command):
     job = tmp_path / "job.toml"
     job.write_text(FIVE_MISTAKES)
     args = ["-o", tmp_path / "out", "--quiet"] if command == "run" else []
-    proc = cli(command, job, *args, cwd=tmp_path)
+    proc = wavesweep(command, job, *args, cwd=tmp_path)
     assert "Traceback" not in proc.stdout + proc.stderr, proc.stderr
     assert proc.returncode == 2, proc.stderr
     assert proc.stdout == ""
@@ -434,7 +458,7 @@ def test_set_of_a_swept_key_is_refused(tmp_path, command):
     out, root = tmp_path / "out", tmp_path / "root"
     extra = {"run": ["-o", out, "--quiet"], "submit": ["--root", root],
              "check": ["--trial-seconds", "0.01"]}[command]
-    proc = cli(command, job, *extra, "--set", "packet.width=1e9", cwd=tmp_path)
+    proc = wavesweep(command, job, *extra, "--set", "packet.width=1e9", cwd=tmp_path)
     assert_bad_input(proc, "--set packet.width", "[sweep] of scan.toml",
                      "remove 'packet.width' from [sweep]", "drop --set packet.width")
     assert leftovers(out) == []
@@ -444,7 +468,7 @@ def test_set_of_a_swept_key_is_refused(tmp_path, command):
 def test_set_of_a_key_not_swept_reaches_every_run(tmp_path):
     job = write_job(tmp_path, SWEPT, "scan.toml")
     out = tmp_path / "out"
-    proc = cli("run", job, "-o", out, "--quiet", "--set", "packet.center=-12.0", cwd=tmp_path)
+    proc = wavesweep("run", job, "-o", out, "--quiet", "--set", "packet.center=-12.0", cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr
     packets = []
     for line in proc.stdout.splitlines():
@@ -469,9 +493,9 @@ def worked(tmp_path_factory):
     folder = tmp_path_factory.mktemp("worked")
     root = folder / "root"
     job = write_job(folder, DIVERGING, "scan.toml")
-    sub = cli("submit", job, "--root", root, cwd=folder)
+    sub = wavesweep("submit", job, "--root", root, cwd=folder)
     assert sub.returncode == 0, sub.stderr
-    first = cli("work", "--root", root, cwd=folder)
+    first = cli("work", "--root", root, cwd=folder)      # worker processes: a real process
     assert first.returncode == 0, first.stderr
     return folder, root, first
 
@@ -520,7 +544,7 @@ def test_a_root_that_cannot_be_used_is_bad_input(tmp_path, command, kind):
     root = _unusable_root(tmp_path, kind)
     job = write_job(tmp_path, TINY, "free.toml")
     args = [job if a == "JOB" else a for a in ROOT_COMMANDS[command]]
-    proc = cli(*args, "--root", root, cwd=tmp_path)
+    proc = wavesweep(*args, "--root", root, cwd=tmp_path)
     assert_bad_input(proc, "--root", str(root))
     assert (tmp_path / "plain-file").read_text() == "not a folder\n"
 
@@ -537,7 +561,7 @@ def test_a_read_only_root_is_bad_input_and_keeps_the_queue(worked, tmp_path):
         p.chmod(0o555 if p.is_dir() else 0o444)
     try:
         for args in (["submit", job], ["work"], ["retry", "--study", "scan"], ["collect", "scan"]):
-            proc = cli(*args, "--root", root, cwd=tmp_path)
+            proc = wavesweep(*args, "--root", root, cwd=tmp_path)
             assert_bad_input(proc, "--root", str(root), stdout_empty=False)
     finally:
         for p in paths:
@@ -552,13 +576,13 @@ def test_collect_refuses_a_summary_path_that_is_a_folder(worked, tmp_path):
     blocker = root / "scan" / "summary.nc"
     blocker.mkdir()
     (blocker / "notes.txt").write_text("mine\n")
-    proc = cli("collect", "scan", "--root", root, cwd=tmp_path)
+    proc = wavesweep("collect", "scan", "--root", root, cwd=tmp_path)
     line = assert_bad_input(proc, str(blocker), "is a folder", "move or remove")
     assert (blocker / "notes.txt").read_text() == "mine\n"
     assert [p.name for p in (root / "scan").iterdir() if p.name.endswith(".part")] == []
     blocker.joinpath("notes.txt").unlink()
     blocker.rmdir()
-    ok = cli("collect", "scan", "--root", root, cwd=tmp_path)
+    ok = wavesweep("collect", "scan", "--root", root, cwd=tmp_path)
     assert ok.returncode == 0, ok.stderr or line
     assert Path(ok.stdout.strip()) == blocker and blocker.is_file()
 
@@ -604,7 +628,7 @@ def test_a_result_given_as_job_file_is_named_as_data(worked, tmp_path, command):
     result = _a_result(worked)
     out = tmp_path / "out"
     extra = ["-o", out, "--quiet"] if command == "run" else ["--root", tmp_path / "root"]
-    proc = cli(command, result, *extra, cwd=tmp_path)
+    proc = wavesweep(command, result, *extra, cwd=tmp_path)
     assert_bad_input(proc, result.name, "netCDF/HDF5 data file", "not a job file", "wavesweep plot",
                      "arrivals", "TOML")
     assert leftovers(out) == [] and not (tmp_path / "root").exists()
@@ -620,7 +644,7 @@ def test_a_state_on_another_grid_says_what_to_do(worked, tmp_path, grid, differ,
                                                        "center": None, "width": None,
                                                        "momentum": None}}))
     out = tmp_path / "out"
-    proc = cli("run", job, "-o", out, "--quiet", cwd=tmp_path)
+    proc = wavesweep("run", job, "-o", out, "--quiet", cwd=tmp_path)
     assert_bad_input(proc, "packet.path", f"its {differ} differ", *pieces,
                      "same axes, min, max, points", "[grid]", "wavesweep levels", "--states")
     assert leftovers(out) == []

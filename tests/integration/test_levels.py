@@ -2,6 +2,9 @@
 run's autocorrelation against `levels`, eigenstate packets released into
 their trap, and the `levels` command line (contract: design.md, "Command
 line": one JSON object with --json; exit 2 and one line on bad input).
+The command line is called in this process (``wavesweep()`` of test_cli.py:
+the CLI's ``main``, as ``python -m wavesweep`` runs it); the entry point
+itself is tested through a real process in test_cli.py.
 """
 from __future__ import annotations
 
@@ -16,7 +19,7 @@ import scipy.linalg
 import xarray as xr
 
 from conftest import make_job, run_table
-from test_cli import assert_bad_input, cli, write_job
+from test_cli import assert_bad_input, wavesweep, write_job
 from wavesweep.analysis.spectra import autocorrelation_levels, stationary_states
 from wavesweep.errors import JobError
 from wavesweep.setup import Setup
@@ -111,7 +114,7 @@ def test_boosted_eigenstate_oscillates_classically(tmp_path):
 # -- the command line ---------------------------------------------------------------------
 def test_levels_json_and_states(tmp_path):
     job = write_job(tmp_path, WELL)
-    proc = cli("levels", job, "--count", "4", "--json", "--states", "states.nc", cwd=tmp_path)
+    proc = wavesweep("levels", job, "--count", "4", "--json", "--states", "states.nc", cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr
     body = json.loads(proc.stdout)   # exactly one JSON object, nothing else on stdout
     assert set(body) == {"energies", "energy_units", "energy_errors", "refine", "extrapolated"}
@@ -130,12 +133,12 @@ def test_levels_json_and_states(tmp_path):
 
 def test_levels_from_a_run(tmp_path, well_run):
     path, _ = well_run
-    proc = cli("levels", "--from", path, "--count", "3", "--json", cwd=tmp_path)
+    proc = wavesweep("levels", "--from", path, "--count", "3", "--json", cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr
     body = json.loads(proc.stdout)
     assert set(body) == {"energies", "weights", "energy_units"}
     np.testing.assert_allclose(body["energies"], [0.5, 1.5, 2.5], atol=1e-3)
-    table = cli("levels", "--from", path, "--count", "2", cwd=tmp_path)
+    table = wavesweep("levels", "--from", path, "--count", "2", cwd=tmp_path)
     assert table.returncode == 0 and len(table.stdout.splitlines()) == 3   # header and two levels
 
 
@@ -143,15 +146,15 @@ def test_levels_bad_input(tmp_path, well_run):
     """Exit 2 and one line: count 0; a file that is not a result; a result
     without the autocorrelation; samples too sparse for the state's band."""
     job = write_job(tmp_path, WELL)
-    assert_bad_input(cli("levels", job, "--count", "0", cwd=tmp_path), "--count", "at least 1")
-    assert_bad_input(cli("levels", "--from", job, cwd=tmp_path), "--from", "netCDF")
+    assert_bad_input(wavesweep("levels", job, "--count", "0", cwd=tmp_path), "--count", "at least 1")
+    assert_bad_input(wavesweep("levels", "--from", job, cwd=tmp_path), "--from", "netCDF")
     path, ds = well_run
     stripped = tmp_path / "no-autocorrelation.nc"
     ds.drop_vars(["autocorrelation_real", "autocorrelation_imag"]).to_netcdf(stripped)
-    assert_bad_input(cli("levels", "--from", stripped, cwd=tmp_path), "--from", "autocorrelation_real")
+    assert_bad_input(wavesweep("levels", "--from", stripped, cwd=tmp_path), "--from", "autocorrelation_real")
     sparse = tmp_path / "sparse.nc"
     ds.isel(time=slice(None, None, 20)).to_netcdf(sparse)     # every 2.0: aliases by pi hartree
-    assert_bad_input(cli("levels", "--from", sparse, cwd=tmp_path), "record.every", "use record.every <=")
+    assert_bad_input(wavesweep("levels", "--from", sparse, cwd=tmp_path), "record.every", "use record.every <=")
 
 
 # -- levels ignore the packet; error estimates ------------------------------------------------------
@@ -161,7 +164,7 @@ def test_levels_ignore_a_packet_at_the_grid_edge(tmp_path):
     (Griffiths sec. 2.3; from memory) whatever the packet."""
     table = copy.deepcopy(WELL)
     table["packet"] = {"kind": "gaussian", "center": 11.9, "width": 1.0}
-    proc = cli("levels", write_job(tmp_path, table), "--count", "3", "--json", cwd=tmp_path)
+    proc = wavesweep("levels", write_job(tmp_path, table), "--count", "3", "--json", cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr
     np.testing.assert_allclose(json.loads(proc.stdout)["energies"], [0.5, 1.5, 2.5], rtol=1e-10)
 
@@ -275,7 +278,7 @@ def test_weak_levels_of_a_quench_are_found(tmp_path):
     <H> +/- 6 Delta H (up to 38 meV) had left out; no odd level appears."""
     run_table(QUENCH, tmp_path)
     path = next(tmp_path.glob("*.nc"))
-    proc = cli("levels", "--from", path, "--min-weight", "1e-5", "--json", cwd=tmp_path)
+    proc = wavesweep("levels", "--from", path, "--min-weight", "1e-5", "--json", cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr
     body = json.loads(proc.stdout)
     r = 0.5 * math.log(2.0)
@@ -363,9 +366,9 @@ def test_levels_are_printed_before_the_states_are_written(tmp_path, monkeypatch,
     from wavesweep.analysis import spectra
 
     job = write_job(tmp_path, WELL)
-    assert_bad_input(cli("levels", job, "--count", "3", "--states", "/proc/s.nc", cwd=tmp_path), "--states",
+    assert_bad_input(wavesweep("levels", job, "--count", "3", "--states", "/proc/s.nc", cwd=tmp_path), "--states",
                      "cannot write")
-    assert_bad_input(cli("levels", job, "--count", "3", "--states", tmp_path, cwd=tmp_path), "--states",
+    assert_bad_input(wavesweep("levels", job, "--count", "3", "--states", tmp_path, cwd=tmp_path), "--states",
                      "is a folder")
 
     def full_disk(path, *args, **kwargs):
@@ -393,7 +396,7 @@ def test_degenerate_levels_are_marked(tmp_path):
              "potential": [{"kind": "harmonic", "omega": 1.0}],
              "packet": {"kind": "gaussian", "center": [0.0, 0.0], "width": [1.0, 1.0]},
              "evolve": {"dt": 0.01, "duration": 0.1}}
-    proc = cli("levels", write_job(tmp_path, table), "--count", "7", cwd=tmp_path)
+    proc = wavesweep("levels", write_job(tmp_path, table), "--count", "7", cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr
     head, *rows = proc.stdout.splitlines()
     assert "degenerate" in head and "error" in head and len(rows) == 7

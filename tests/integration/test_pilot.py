@@ -13,9 +13,6 @@ from __future__ import annotations
 
 import json
 import math
-import os
-import subprocess
-import sys
 
 import numpy as np
 import pytest
@@ -25,6 +22,7 @@ from scipy.special import erfc
 
 from analytic import free_gaussian_current, free_gaussian_width
 from conftest import make_job, run_table, setup_of
+from inprocess import run_main
 from test_scattering import packet_transmission
 from wavesweep.analysis.transmission import transmission_totals
 from wavesweep.check import check_job
@@ -187,10 +185,9 @@ def test_double_barrier_at_1nm_check_is_silent_the_pilot_names_the_grid(tmp_path
 def test_cli_check_tolerance_prints_cost_then_progress_and_keeps_the_json_shape(tmp_path):
     path = tmp_path / "barrier.toml"
     path.write_text(tomli_w.dumps(barrier_job(560)))       # misses 2e-3 in dx (see above)
-    env = dict(os.environ, WAVESWEEP_THREADS="1", NUMBA_NUM_THREADS="1")
-    env.pop("WAVESWEEP_DEBUG", None)
-    p = subprocess.run([sys.executable, "-m", "wavesweep", "check", str(path), "--tolerance", "2e-3",
-                        "--json", "--trial-seconds", "0.1"], capture_output=True, text=True, env=env)
+    # the CLI's main in this process, as `python -m wavesweep` runs it (tests/inprocess.py)
+    p = run_main("check", path, "--tolerance", "2e-3", "--json", "--trial-seconds", "0.1", cwd=tmp_path,
+                 env={"WAVESWEEP_THREADS": "1", "WAVESWEEP_DEBUG": None})
     assert p.returncode == 0, p.stderr
     data = json.loads(p.stdout)
     assert all(set(f) == {"topic", "level", "field", "message", "values"} for f in data["findings"])

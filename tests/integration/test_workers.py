@@ -1,7 +1,10 @@
 """The overnight queue end to end: worker processes, kill -9, failures, --until.
 
 Real processes through the real CLI (`python -m wavesweep work`), so that
-signals, leases and the SQLite locking are exercised as at night.
+signals, leases and the SQLite locking are exercised as at night.  The
+commands around it (submit, status, retry) start no process of their own:
+they call the CLI's ``main`` in this process (tests/inprocess.py), which is
+what ``python -m wavesweep`` runs, without an interpreter start each.
 """
 from __future__ import annotations
 
@@ -15,6 +18,7 @@ import time
 from pathlib import Path
 
 import tomli_w
+from inprocess import run_main
 
 from wavesweep.studies.queue import Queue
 
@@ -34,9 +38,15 @@ def write(tmp_path, table, name="study.toml") -> Path:
 
 
 def cli(*args, env=None, timeout=240, **kw):
+    """``wavesweep ARGS`` in a real process (``work``: it starts workers)."""
     full_env = {**os.environ, "WAVESWEEP_THREADS": "1", **(env or {})}
     return subprocess.run([sys.executable, "-m", "wavesweep", *map(str, args)], capture_output=True,
                           text=True, timeout=timeout, env=full_env, **kw)
+
+
+def wavesweep(*args):
+    """``wavesweep ARGS`` called in this process (a command that starts no process)."""
+    return run_main(*args, cwd=os.getcwd(), env={"WAVESWEEP_THREADS": "1"})
 
 
 def long_study(tmp_path, name, points, dt, duration):
@@ -46,7 +56,7 @@ def long_study(tmp_path, name, points, dt, duration):
     table["evolve"].update(dt=dt, duration=duration)
     table["record"].update(every=0.1, snapshot_every=0.5)
     root = tmp_path / "root"
-    assert cli("submit", write(tmp_path, table, f"{name}.toml"), "--root", root).returncode == 0
+    assert wavesweep("submit", write(tmp_path, table, f"{name}.toml"), "--root", root).returncode == 0
     return root, table
 
 
@@ -57,14 +67,14 @@ def start_work(root, *extra, **popen):
 
 
 def states(root):
-    return json.loads(cli("status", "--root", root, "--json").stdout)
+    return json.loads(wavesweep("status", "--root", root, "--json").stdout)
 
 
 def test_four_workers_run_each_of_40_runs_exactly_once(tmp_path):
     table = copy.deepcopy(TINY)
     table["sweep"] = {"packet.width": {"start": 1.5, "stop": 2.5, "num": 40}}
     root = tmp_path / "root"
-    sub = cli("submit", write(tmp_path, table), "--root", root)
+    sub = wavesweep("submit", write(tmp_path, table), "--root", root)
     assert sub.returncode == 0, sub.stderr
     w = cli("work", "--root", root, "--workers", 4)
     assert w.returncode == 0, w.stderr
@@ -85,7 +95,7 @@ def test_a_diverging_run_fails_with_its_reason_and_the_others_finish(tmp_path):
                            "params": {"a": 1.0, "b": 1.0}}]
     table["sweep"] = {"potential.0.params.b": [100.0, 200.0, 1.0, 300.0]}
     root = tmp_path / "root"
-    assert cli("submit", write(tmp_path, table), "--root", root).returncode == 0
+    assert wavesweep("submit", write(tmp_path, table), "--root", root).returncode == 0
     assert cli("work", "--root", root, "--workers", 2).returncode == 0
     st = states(root)
     assert st["studies"]["study"] == {"queued": 0, "running": 0, "done": 3, "failed": 1, "cancelled": 0}
@@ -100,7 +110,7 @@ def test_until_in_the_past_claims_nothing(tmp_path):
     table = copy.deepcopy(TINY)
     table["sweep"] = {"packet.width": [1.5, 2.0]}
     root = tmp_path / "root"
-    assert cli("submit", write(tmp_path, table), "--root", root).returncode == 0
+    assert wavesweep("submit", write(tmp_path, table), "--root", root).returncode == 0
     w = cli("work", "--root", root, "--until", "2020-01-01T00:00")
     assert w.returncode == 0
     assert "nothing claimed" in w.stderr
@@ -112,7 +122,7 @@ def test_an_invalid_sweep_point_queues_nothing(tmp_path):
     table = copy.deepcopy(TINY)
     table["sweep"] = {"packet.width": [1.5, -2.0, 2.5]}       # one impossible width
     root = tmp_path / "root"
-    sub = cli("submit", write(tmp_path, table), "--root", root)
+    sub = wavesweep("submit", write(tmp_path, table), "--root", root)
     assert sub.returncode == 2
     lines = sub.stderr.strip().splitlines()
     assert len(lines) == 1 and "packet.width" in lines[0] and "Traceback" not in sub.stderr
@@ -141,7 +151,7 @@ def test_status_finds_a_missing_result_and_retry_runs_it_again(tmp_path):
     table = copy.deepcopy(TINY)
     table["sweep"] = {"packet.width": [1.5, 2.0]}
     root = tmp_path / "root"
-    assert cli("submit", write(tmp_path, table), "--root", root).returncode == 0
+    assert wavesweep("submit", write(tmp_path, table), "--root", root).returncode == 0
     assert cli("work", "--root", root).returncode == 0
     victim = Queue(root).runs("study")[0]["run_id"]
     (root / "study" / f"{victim}.nc").unlink()
@@ -149,7 +159,7 @@ def test_status_finds_a_missing_result_and_retry_runs_it_again(tmp_path):
     assert st["studies"]["study"]["failed"] == 1
     (bad,) = [r for r in st["runs"] if r["state"] == "failed"]
     assert bad["run_id"] == victim and "missing" in bad["reason"]
-    assert cli("retry", "--root", root).returncode == 0
+    assert wavesweep("retry", "--root", root).returncode == 0
     assert cli("work", "--root", root).returncode == 0
     assert states(root)["studies"]["study"]["done"] == 2
     assert (root / "study" / f"{victim}.nc").exists()
