@@ -14,6 +14,7 @@ import math
 import os
 import re
 import time as _time
+import weakref
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -622,6 +623,8 @@ def _nonseparable(v) -> bool:
 # trajectories cost ~0.3 s each time; they do not depend on the absorber's
 # strength, which the first of them chooses.
 _DYNAMICS_CACHE: dict = {}
+# Per set-up object, without writing onto it (the set-up's class is a layer above).
+_DYNAMICS_OF: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
 _DYNAMICS_CACHE_SIZE = 64
 
 
@@ -640,13 +643,13 @@ def _dynamics_key(setup) -> str | None:
 def dynamics(setup) -> Dynamics:
     """:class:`Dynamics` of a set-up, computed once and kept on it (and for
     the same physics in this process)."""
-    cached = getattr(setup, "_dynamics", None)
+    cached = _DYNAMICS_OF.get(setup)
     if cached is not None:
         return cached
     key = _dynamics_key(setup)
     if key is not None and key in _DYNAMICS_CACHE:
-        setup._dynamics = _DYNAMICS_CACHE[key]
-        return setup._dynamics
+        _DYNAMICS_OF[setup] = _DYNAMICS_CACHE[key]
+        return _DYNAMICS_OF[setup]
     grid, m = setup.grid, setup.mass
     v = setup.hamiltonian_static_potential()
     initial = _initial_reach(setup)
@@ -679,7 +682,7 @@ def dynamics(setup) -> Dynamics:
     unreached: set = set()
     windows = _windows(setup, moms, reach, freed, nonsep, v, v_packet, e_total, unreached)
     out = Dynamics(initial, over, reach, freed, windows, nonsep, bound, unreached)
-    setup._dynamics = out
+    _DYNAMICS_OF[setup] = out
     if key is not None:
         if len(_DYNAMICS_CACHE) >= _DYNAMICS_CACHE_SIZE:
             _DYNAMICS_CACHE.pop(next(iter(_DYNAMICS_CACHE)))
