@@ -25,6 +25,7 @@ import numpy as np
 import scipy.fft
 
 from .io.atomic import write_bytes_atomic
+from .registry import registrar
 
 __all__ = ["Transform", "ScipyTransform", "PyFFTWTransform", "BACKENDS", "AUTO", "PLAIN", "make_transform",
            "register_backend", "backend_choices", "wisdom_path"]
@@ -192,7 +193,7 @@ def _load_pyfftw():
 
 
 def _import_pyfftw():
-    import pyfftw   # lazy: pyFFTW loads with the first PyFFTWTransform (see _load_pyfftw)
+    import pyfftw  # lazy: pyFFTW loads with the first PyFFTWTransform (see _load_pyfftw)
     return pyfftw
 
 
@@ -254,11 +255,7 @@ class PyFFTWTransform(Transform):
         return b
 
 
-def register_backend(cls: type[Transform]) -> type[Transform]:
-    """Class decorator: make a Transform subclass available by its ``name``
-    (to jobs, ``run --fft`` and ``wavesweep keys``)."""
-    BACKENDS[cls.name] = cls
-    return cls
+register_backend = registrar(BACKENDS, "name", "an FFT backend (of jobs, ``run --fft`` and ``wavesweep keys``)")
 
 
 if _PYFFTW_INSTALLED:

@@ -12,7 +12,7 @@ parser with these before it loads anything else.
 """
 from __future__ import annotations
 
-__all__ = ["Names"]
+__all__ = ["Names", "registrar"]
 
 
 class Names:
@@ -45,3 +45,19 @@ class Names:
 
     def __repr__(self) -> str:
         return f"Names({list(self._names())!r})"
+
+
+def registrar(registry: dict, key: str, what: str):
+    """The class decorator that registers a class in ``registry`` under its
+    attribute ``key`` (``name`` of a scheme or backend, ``kind`` of a
+    potential or packet), refusing a class that has none: the one way every
+    registry is filled.  ``what`` names the entry in the decorator's
+    docstring and its error."""
+    def register(cls):
+        name = getattr(cls, key, None)
+        if not name:
+            raise ValueError(f"{cls.__name__} has no {key} to register it as {what} by")
+        registry[name] = cls
+        return cls
+    register.__doc__ = f"Class decorator: make a class {what}, by its ``{key}``."
+    return register

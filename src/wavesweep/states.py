@@ -32,6 +32,7 @@ from .errors import JobError
 from .hamiltonian import Hamiltonian
 from .io.paths import input_file
 from .marginals import momentum_marginal
+from .registry import registrar
 from .schema import Field
 
 __all__ = ["PACKETS", "PACKET_SCHEMAS", "DEFAULT_PACKET", "PacketKind", "register_packet", "build_state",
@@ -109,12 +110,7 @@ class PacketKind:
 PACKETS: dict[str, type[PacketKind]] = {}
 
 
-def register_packet(cls: type[PacketKind]) -> type[PacketKind]:
-    """Class decorator: make a PacketKind subclass a ``[packet] kind``."""
-    if not cls.kind:
-        raise ValueError(f"{cls.__name__} has no kind to register")
-    PACKETS[cls.kind] = cls
-    return cls
+register_packet = registrar(PACKETS, "kind", "a ``[packet] kind``")
 
 
 class _Schemas(Mapping):
@@ -266,7 +262,7 @@ def _boost(psi, grid, momenta, field):
 
 
 def _from_file(packet, grid, field, length_unit=(1.0, "bohr")):
-    import xarray as xr   # lazy: xarray (0.3 s with pandas), only for a state read from a file
+    import xarray as xr  # lazy: xarray (0.3 s with pandas), only for a state read from a file
 
     path = packet["path"]
     input_file(path, f"{field}.path", "state file")   # a FIFO or /dev/zero would block or never end

@@ -23,6 +23,7 @@ from typing import ClassVar
 import numpy as np
 
 from ..errors import JobError
+from ..registry import registrar
 from ..schema import Field, to_atomic
 
 __all__ = ["PotentialTerm", "PotentialContext", "REGISTRY", "register", "term_class", "make_term"]
@@ -96,12 +97,7 @@ class PotentialTerm:
 REGISTRY: dict[str, type[PotentialTerm]] = {}
 
 
-def register(cls: type[PotentialTerm]) -> type[PotentialTerm]:
-    """Class decorator adding a term to the registry under ``cls.kind``."""
-    if not cls.kind:
-        raise TypeError(f"{cls.__name__} needs a kind")
-    REGISTRY[cls.kind] = cls
-    return cls
+register = registrar(REGISTRY, "kind", "a potential kind of ``[[potential]]`` tables")
 
 
 def term_class(kind, field: str) -> type[PotentialTerm]:

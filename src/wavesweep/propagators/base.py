@@ -45,6 +45,7 @@ from typing import ClassVar
 import numpy as np
 
 from ..errors import JobError
+from ..registry import registrar
 
 __all__ = ["Propagator", "SCHEMES", "register_scheme", "other_schemes"]
 
@@ -142,13 +143,7 @@ class Propagator:
 SCHEMES: dict[str, type[Propagator]] = {}
 
 
-def register_scheme(cls: type[Propagator]) -> type[Propagator]:
-    """Class decorator: make a Propagator subclass a scheme of the job's
-    ``evolve.scheme`` by its ``name``."""
-    if not cls.name:
-        raise ValueError(f"{cls.__name__} has no name to register")
-    SCHEMES[cls.name] = cls
-    return cls
+register_scheme = registrar(SCHEMES, "name", "a scheme of the job's ``evolve.scheme``")
 
 
 _probing = threading.local()   # other_schemes is asking the schemes: their messages need no advice
