@@ -220,6 +220,8 @@ def _parser() -> argparse.ArgumentParser:
                                                          "(needs record.snapshot_psi = true)")
     mv.add_argument("--projection", default=None, metavar="AXIS", help="3D: integrate over AXIS (default z)")
     mv.add_argument("--slice", default=None, metavar="AXIS=VALUE", help="3D: the plane AXIS = VALUE instead")
+    mv.add_argument("--column", default=None, metavar="AXIS",
+                    help="2D/3D: the column density along AXIS (what a camera looking along it sees)")
     mv.add_argument("--overwrite", action="store_true", help="replace FILE if it exists (without it an existing file is refused)")
 
     pl = sub.add_parser("plot", help="a summary figure of a run, or of a study's summary.nc")
@@ -567,7 +569,7 @@ def _movie(args) -> int:
                                       f"got {args.slice!r}")
     opt = MovieOptions(every=args.every, fps=args.fps, dpi=args.dpi, size=args.size,
                        scale=args.scale, floor=args.floor, parts=args.parts,
-                       projection=args.projection, slice=cut)
+                       projection=args.projection, slice=cut, column=args.column)
     out = render_movie(args.result, args.output, opt, overwrite=args.overwrite)
     print(f"{out['path']}: {out['frames']} frames, {out['frames'] / out['fps']:.1f} s at {out['fps']:g} "
           f"frames/s (made in {out['seconds']:.1f} s)")

@@ -140,6 +140,34 @@ def test_a_2d_movie_on_one_colour_scale(plane_result, tmp_path):
     assert len(got) == 7 and not np.array_equal(got[0], got[-1])
 
 
+def test_a_2d_column_density_is_the_marginal_of_the_packet(plane_result, tmp_path):
+    """--column y on a 2D run: each frame is the density integrated over y
+    (sum times dy).  At t = 0 that is the x-marginal of the initial Gaussian,
+    |psi|^2 = (2 pi w^2)^(-1/2) exp(-(x - x0)^2 / (2 w^2)) (the Gaussian's
+    own normalisation; from memory), up to the grid's truncation of the
+    y-tails, which is far below the tolerance; the movie draws it."""
+    from wavesweep.viz.scene import FrameReader, column_scene
+
+    scene = column_scene(read_scene(plane_result), "y")
+    assert scene.axes == ["x"] and scene.potential is None
+    assert scene.units["density"] == f"{scene.units['length']}-1"
+    assert [d[1] for d in scene.detectors] == ["x"]      # the line x = 5 crosses the column
+    x = scene.coords["x"]
+    with FrameReader(scene.path, column=scene.column) as reader:
+        first = reader.frame(0)
+        last = reader.frame(len(reader) - 1)
+    expected = np.exp(-(x + 8.0) ** 2 / (2 * 2.0**2)) / np.sqrt(2 * np.pi * 2.0**2)
+    np.testing.assert_allclose(first, expected, rtol=0, atol=2e-6 * expected.max())   # float32 storage
+    assert abs(np.sum(last) * (x[1] - x[0]) - 1.0) < 0.05    # the norm, less what the run absorbed
+    out = tmp_path / "column.mp4"
+    assert main(["movie", str(plane_result), "-o", str(out), "--column", "y", "--size", "640x360"]) == 0
+    meta, frames = _frames(out)
+    assert len(frames) == 7
+    assert _packet_column(frames[-1]) > _packet_column(frames[0])   # the packet moves towards +x
+    for bad in (["--column", "z"], ["--column", "y", "--parts"]):
+        assert main(["movie", str(plane_result), "-o", str(tmp_path / "bad.mp4"), *bad]) == 2
+
+
 def test_3d_projection_and_slice(tmp_path):
     table = {
         "title": "3D packet",
@@ -150,7 +178,7 @@ def test_3d_projection_and_slice(tmp_path):
         "record": {"every": 0.5, "snapshot_every": 0.5},
     }
     path = _run(table, tmp_path)
-    for extra in (["--projection", "y"], ["--slice", "z=0.0"], []):
+    for extra in (["--projection", "y"], ["--slice", "z=0.0"], [], ["--column", "x"]):
         out = tmp_path / f"cube{len(extra)}{extra[-1][0] if extra else ''}.mp4"
         assert main(["movie", str(path), "-o", str(out), "--size", "480x270", *extra]) == 0
         assert len(_frames(out)[1]) == 3

@@ -22,7 +22,7 @@ from __future__ import annotations
 import os
 import subprocess
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -31,7 +31,7 @@ from ..errors import JobError
 from ..io.atomic import atomic_rename, temporary_path
 from ..io.paths import output_file
 from . import style
-from .scene import FrameReader, Scene, read_scene
+from .scene import FrameReader, Scene, column_scene, read_scene
 
 __all__ = ["MovieOptions", "render_movie", "VideoWriter", "parse_size"]
 
@@ -44,7 +44,10 @@ class MovieOptions:
     ``dpi``; ``size``: (width, height) pixels; ``scale``: "linear" or "log"
     (2D/3D); ``floor``: lowest density of the log scale relative to the
     largest; ``parts``: Re/Im psi (1D); ``projection``: axis to integrate
-    over (3D, default the last); ``slice``: (axis, value) instead."""
+    over (3D, default the last); ``slice``: (axis, value) instead;
+    ``column``: the column density along that axis, what a camera looking
+    along it sees (2D: a curve over the other axis; 3D: an image, as
+    ``projection``)."""
 
     every: int = 1
     fps: float = 20.0
@@ -55,6 +58,7 @@ class MovieOptions:
     parts: bool = False
     projection: str | None = None
     slice: tuple[str, float] | None = None
+    column: str | None = None
 
 
 def parse_size(text: str) -> tuple[int, int]:
@@ -202,7 +206,8 @@ class Painter1D(Painter):
                     ax.set_ylim(top * opt.floor, top)
                 else:
                     ax.set_ylim(0, top)
-                label = "radial probability density |u(r)|$^2$" if sc.radial else "probability density"
+                label = ("radial probability density |u(r)|$^2$" if sc.radial
+                         else f"column density along {sc.column[0]}" if sc.column else "probability density")
                 ax.set_ylabel(f"{label} ({style.pretty_unit(sc.units['density'])})")
                 self.lines = [ax.plot(self.x, np.zeros_like(self.x), color=style.DENSITY, lw=1.6,
                                       animated=True)[0]]
@@ -231,7 +236,8 @@ class Painter1D(Painter):
                 vax.set_ylim(float(v.min()) - below, float(v.min()) + 1.15 * span)
                 vax.set_ylabel(f"V ({style.pretty_unit(sc.units['energy'])})", color=style.POTENTIAL)
                 vax.tick_params(axis="y", colors=style.POTENTIAL)
-            ax.set_title(style.plain(sc.title), loc="left")
+            ax.set_title(style.plain(sc.title) + (f"  (integrated over {sc.column[0]})" if sc.column else ""),
+                         loc="left")
             self.text = self._time_text(ax)
         self.animated[:0] = self.lines + ([self.fill] if self.fill is not None else [])
 
@@ -391,15 +397,32 @@ def painter_for(scene: Scene, options: MovieOptions) -> Painter:
     return Painter2D(scene, options)
 
 
+def _with_column(scene: Scene, options: MovieOptions) -> tuple[Scene, MovieOptions]:
+    """``--column AXIS``: a 3D run's column density is its projection along
+    AXIS (an image); a 2D run's is a curve over the other axis."""
+    if options.column is None:
+        return scene, options
+    if options.projection or options.slice:
+        raise JobError("--column", "give one of --column, --projection and --slice")
+    if options.parts:
+        raise JobError("--parts", "real and imaginary parts are drawn for 1D runs only, not for a column")
+    if scene.ndim == 3:
+        if options.column not in scene.axes:
+            raise JobError("--column", f"no axis {options.column!r}; the run has {', '.join(scene.axes)}")
+        return scene, replace(options, projection=options.column, column=None)
+    return column_scene(scene, options.column), replace(options, column=None)
+
+
 # -- the loop ----------------------------------------------------------------------
 def render_frames(scene: Scene, options: MovieOptions, sink, indices=None) -> dict:
     """Draw the selected frames of ``scene`` and hand each RGB array to
     ``sink(rgb)``; returns counts and timings."""
     if options.every < 1:
         raise JobError("--every", f"must be at least 1, got {options.every}")
+    scene, options = _with_column(scene, options)
     indices = list(range(0, scene.n_snapshots, options.every)) if indices is None else list(indices)
     painter = painter_for(scene, options)
-    with FrameReader(scene.path) as reader:
+    with FrameReader(scene.path, column=scene.column) as reader:
         t0 = time.perf_counter()
         painter.prepare(reader, indices)
         canvas = painter.fig.canvas

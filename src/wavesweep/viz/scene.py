@@ -8,7 +8,7 @@ disk), so memory does not depend on the number of snapshots.
 from __future__ import annotations
 
 import tomllib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import netCDF4
@@ -41,6 +41,9 @@ class Scene:
     units: dict = field(default_factory=dict)       # length, energy, time, density, flux labels
     n_snapshots: int = 0
     has_psi: bool = False
+    # a column scene (column_scene): the frames are summed over this axis of the
+    # stored snapshots, ``(name, index among the stored axes, spacing)``
+    column: tuple | None = None
 
     @property
     def ndim(self) -> int:
@@ -117,10 +120,36 @@ def _layers(job: dict, axes, coords) -> list[Layer]:
     return out
 
 
-class FrameReader:
-    """Streams snapshot frames (float64) of one variable from a result file."""
+def column_scene(scene: Scene, axis: str) -> Scene:
+    """What a camera looking along ``axis`` sees of a 2D or 3D run: the
+    frames integrated over ``axis`` (the column density, probability per
+    length^(ndim-1) in the job's units: the sum over the axis times its
+    spacing), on the remaining axes, with the absorbers and detectors that
+    lie across them.  The potential is left out (V differs along a column)."""
+    if scene.ndim < 2 or scene.radial:
+        raise JobError("--column", "a column density needs a 2D or 3D Cartesian run; this one is "
+                                   f"{'radial' if scene.radial else '1D'}")
+    if axis not in scene.axes:
+        raise JobError("--column", f"no axis {axis!r}; the run has {', '.join(scene.axes)}")
+    k = scene.axes.index(axis)
+    c = scene.coords[axis]
+    spacing = abs(float(c[1] - c[0])) if len(c) > 1 else 1.0
+    rest = [a for a in scene.axes if a != axis]
+    units = dict(scene.units)
+    units["density"] = f"{units['length']}-{len(rest)}"
+    return replace(scene, axes=rest, coords={a: scene.coords[a] for a in rest}, potential=None,
+                   layers=[layer for layer in scene.layers if layer.axis in rest],
+                   detectors=[d for d in scene.detectors if d[1] in rest], units=units,
+                   column=(axis, k, spacing))
 
-    def __init__(self, path, variable: str = "density"):
+
+class FrameReader:
+    """Streams snapshot frames (float64) of one variable from a result file;
+    ``column``: ``(name, axis index, spacing)`` sums each frame over that axis
+    (:func:`column_scene`)."""
+
+    def __init__(self, path, variable: str = "density", column: tuple | None = None):
+        self._column = column
         self._nc = netCDF4.Dataset(path, "r")
         self._nc.set_auto_mask(False)
         self._var = self._nc[variable]
@@ -132,7 +161,11 @@ class FrameReader:
     def frame(self, i: int, variable: str | None = None) -> np.ndarray:
         var = self._var if variable is None else self._nc[variable]
         try:
-            return np.asarray(var[i], dtype=np.float64)
+            frame = np.asarray(var[i], dtype=np.float64)
+            if self._column is not None:
+                _, k, spacing = self._column
+                frame = frame.sum(axis=k) * spacing
+            return frame
         except (RuntimeError, OSError) as e:   # a block whose checksum or compression fails
             raise JobError("RUN.nc", f"{self._nc.filepath()!r}: variable {var.name!r} cannot be read at "
                                      f"snapshot {i}, the file is damaged ({' '.join(str(e).split())}); "
