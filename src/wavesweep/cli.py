@@ -229,6 +229,8 @@ def _parser() -> argparse.ArgumentParser:
     pl.add_argument("-o", "--output", required=True, metavar="FILE", help="FILE.png, .pdf or .svg")
     pl.add_argument("--size", type=FLAG_TYPES["--size"], default="1200x900", metavar="WxH", help="figure size in pixels")
     pl.add_argument("--dpi", type=FLAG_TYPES["--dpi"], default=100, help="dots per inch")
+    pl.add_argument("--column", default=None, metavar="AXIS",
+                    help="2D/3D: show the column density along AXIS (what a camera looking along it sees)")
     pl.add_argument("--overwrite", action="store_true", help="replace FILE if it exists (without it an existing file is refused)")
 
     lv = sub.add_parser("levels", help="lowest stationary energies of a job, or the levels in a run")
@@ -580,7 +582,7 @@ def _plot(args) -> int:
     # lazy: each command loads only what it needs (every command's start-up)
     from .viz.summary import plot_result
 
-    print(plot_result(args.result, args.output, args.size, args.dpi, overwrite=args.overwrite))
+    print(plot_result(args.result, args.output, args.size, args.dpi, overwrite=args.overwrite, column=args.column))
     return EXIT_OK
 
 

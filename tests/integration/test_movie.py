@@ -211,6 +211,25 @@ def test_plot_writes_a_png_of_the_requested_size(which, free_result, plane_resul
     assert img.std() > 0.05
 
 
+def test_plot_column_of_a_2d_and_a_3d_run(plane_result, tmp_path):
+    """plot --column: a 2D run's column density over the other axis and
+    time, a 3D run's camera image; bad axes and a 1D run are one line."""
+    import matplotlib.image
+    out = tmp_path / "plane-column.png"
+    assert main(["plot", str(plane_result), "-o", str(out), "--size", "800x600", "--column", "x"]) == 0
+    assert matplotlib.image.imread(out).std() > 0.05
+    cube = _run({"title": "3D packet", "grid": {a: {"min": -8.0, "max": 8.0, "points": 24} for a in "xyz"}
+                 | {"boundary": "periodic"},
+                 "packet": {"kind": "gaussian", "center": [-1.0, 0.0, 0.0], "width": [1.2, 1.0, 1.5]},
+                 "evolve": {"dt": 0.05, "duration": 0.5}, "record": {"every": 0.25, "snapshot_every": 0.25}},
+                tmp_path)
+    out = tmp_path / "cube-column.png"
+    assert main(["plot", str(cube), "-o", str(out), "--size", "800x600", "--column", "z"]) == 0
+    assert matplotlib.image.imread(out).std() > 0.05
+    free = tmp_path / "free-column.png"
+    assert main(["plot", str(plane_result), "-o", str(free), "--column", "w"]) == 2
+
+
 def test_plot_of_a_study_summary(tmp_path):
     import matplotlib.image
     from test_collect import TINY, submit_and_run

@@ -16,7 +16,7 @@ from ..io.atomic import atomic_output
 from ..io.paths import input_file, output_file
 from ..io.results import open_result
 from . import style
-from .scene import FrameReader, read_scene
+from .scene import FrameReader, column_scene, read_scene
 
 __all__ = ["plot_result", "plot_run", "plot_study", "FIGURE_TYPES"]
 
@@ -38,9 +38,12 @@ def _save(fig, path: Path) -> Path:
     return path
 
 
-def plot_result(path, output, size=(1200, 900), dpi: int = 100, overwrite: bool = True) -> Path:
+def plot_result(path, output, size=(1200, 900), dpi: int = 100, overwrite: bool = True,
+                column: str | None = None) -> Path:
     """A run's figure, or a study's when ``path`` is a ``summary.nc``; an
-    existing ``output`` is replaced only with ``overwrite``."""
+    existing ``output`` is replaced only with ``overwrite``; ``column``: the
+    density panel shows what a camera looking along that axis sees
+    (:func:`plot_run`)."""
     _check_output(output, overwrite)   # before the result is read
     if not (10 <= dpi <= 1000):
         raise JobError("--dpi", f"must lie between 10 and 1000, got {dpi}")
@@ -50,7 +53,11 @@ def plot_result(path, output, size=(1200, 900), dpi: int = 100, overwrite: bool 
             is_study = "study" in ds.attrs and "final_absorbed" in ds
     except (OSError, ValueError) as e:
         raise JobError("RUN.nc", f"{str(path)!r} is not a readable netCDF file ({' '.join(str(e).split())})") from None
-    return (plot_study if is_study else plot_run)(path, output, size, dpi)
+    if is_study:
+        if column is not None:
+            raise JobError("--column", "a study's summary holds no densities; plot one of its runs")
+        return plot_study(path, output, size, dpi)
+    return plot_run(path, output, size, dpi, column=column)
 
 
 # -- one run ---------------------------------------------------------------------------
@@ -60,7 +67,7 @@ def _density_map(scene):
     axis = scene.axes[0]
     others = [scene.coords[a] for a in scene.axes[1:]]
     cell = float(np.prod([abs(c[1] - c[0]) for c in others])) if others else 1.0
-    with FrameReader(scene.path) as reader:
+    with FrameReader(scene.path, column=scene.column) as reader:
         rows = []
         for i in range(len(reader)):
             f = reader.frame(i)
@@ -68,12 +75,66 @@ def _density_map(scene):
         return reader.times, scene.coords[axis], np.array(rows)
 
 
-def plot_run(path, output, size=(1200, 900), dpi: int = 100) -> Path:
-    """Four panels of one run, written to ``output`` (.png/.pdf/.svg)."""
+def _density_panel(fig, amap, scene, T, L) -> None:
+    """Position (the first axis) against time, log scale: the density
+    integrated over the other axes (and the column's, for a column scene)."""
     from matplotlib.colors import LogNorm   # lazy: matplotlib loads with the first figure
 
+    times, x, dens = _density_map(scene)
+    peak = float(np.max(dens)) if dens.size else 0.0
+    if peak > 0 and len(times) > 1:
+        mesh = amap.pcolormesh(x, times, np.maximum(dens, peak * MAP_FLOOR * 0.1), shading="nearest",
+                               cmap=style.DENSITY_CMAP, norm=LogNorm(vmin=peak * MAP_FLOOR, vmax=peak),
+                               rasterized=True)
+        bar = fig.colorbar(mesh, ax=amap, fraction=0.05, pad=0.02)
+        integrated = scene.axes[1:] + ([scene.column[0]] if scene.column else [])
+        what = "density" if not integrated else f"density integrated over {', '.join(integrated)}"
+        unit = scene.units["density"] if scene.ndim == 1 else f"{scene.units['length']}-1"
+        bar.set_label(f"{what} ({style.pretty_unit(unit)})")
+    else:
+        amap.plot(x, dens[0] if len(dens) else np.zeros_like(x), color=style.DENSITY)
+        amap.text(0.5, 0.9, "one snapshot only", transform=amap.transAxes, ha="center")
+    for layer in scene.layers:
+        if layer.axis == scene.axes[0]:
+            amap.axvspan(layer.start, layer.stop, color="white", alpha=0.15, lw=0)
+    for name, dax, pos in scene.detectors:
+        if dax == scene.axes[0]:
+            amap.axvline(pos, color=style.DETECTOR, lw=0.8, ls="--")
+    amap.set_xlabel(f"{scene.axes[0]} ({L})")
+    amap.set_ylabel(f"time ({T})")
+    amap.set_title("probability density over position and time (log scale)", loc="left")
+
+
+def _column_image(fig, amap, scene) -> None:
+    """A 3D run's column density along ``scene.column`` at its last
+    snapshot: the image a camera looking along that axis records."""
+    a, b = scene.axes
+    with FrameReader(scene.path, column=scene.column) as reader:
+        t = float(reader.times[-1])
+        frame = reader.frame(len(reader) - 1)
+    mesh = amap.pcolormesh(scene.coords[a], scene.coords[b], frame.T, shading="nearest",
+                           cmap=style.DENSITY_CMAP, rasterized=True)
+    bar = fig.colorbar(mesh, ax=amap, fraction=0.05, pad=0.02)
+    bar.set_label(f"column density along {scene.column[0]} ({style.pretty_unit(scene.units['density'])})")
+    for name, dax, pos in scene.detectors:
+        (amap.axvline if dax == a else amap.axhline)(pos, color=style.DETECTOR, lw=0.8, ls="--")
+    L = style.pretty_unit(scene.units["length"])
+    amap.set_xlabel(f"{a} ({L})")
+    amap.set_ylabel(f"{b} ({L})")
+    amap.set_aspect("equal")
+    amap.set_title(f"seen along {scene.column[0]} at t = {t:.6g} {style.pretty_unit(scene.units['time'])}",
+                   loc="left")
+
+
+def plot_run(path, output, size=(1200, 900), dpi: int = 100, column: str | None = None) -> Path:
+    """Four panels of one run, written to ``output`` (.png/.pdf/.svg).
+    ``column``: the density panel shows the column density along that axis
+    (:func:`~wavesweep.viz.scene.column_scene`): for a 2D run over the other
+    axis and time, for a 3D run the camera's image at the last snapshot."""
     output = _check_output(output)
     scene = read_scene(path)
+    if column is not None:
+        scene = column_scene(scene, column)
     ds = open_result(path, require=("time", "norm"))
     try:
         ds = ds.load()
@@ -86,28 +147,10 @@ def plot_run(path, output, size=(1200, 900), dpi: int = 100) -> Path:
         axes = fig.subplots(2, 2, gridspec_kw={"height_ratios": [1.25, 1]})
         (amap, abooks), (aflux, aenergy) = axes
 
-        times, x, dens = _density_map(scene)
-        peak = float(np.max(dens)) if dens.size else 0.0
-        if peak > 0 and len(times) > 1:
-            mesh = amap.pcolormesh(x, times, np.maximum(dens, peak * MAP_FLOOR * 0.1), shading="nearest",
-                                   cmap=style.DENSITY_CMAP, norm=LogNorm(vmin=peak * MAP_FLOOR, vmax=peak),
-                                   rasterized=True)
-            bar = fig.colorbar(mesh, ax=amap, fraction=0.05, pad=0.02)
-            what = "density" if scene.ndim == 1 else f"density integrated over {', '.join(scene.axes[1:])}"
-            unit = scene.units["density"] if scene.ndim == 1 else f"{scene.units['length']}-1"
-            bar.set_label(f"{what} ({style.pretty_unit(unit)})")
+        if scene.column is not None and scene.ndim == 2:
+            _column_image(fig, amap, scene)
         else:
-            amap.plot(x, dens[0] if len(dens) else np.zeros_like(x), color=style.DENSITY)
-            amap.text(0.5, 0.9, "one snapshot only", transform=amap.transAxes, ha="center")
-        for layer in scene.layers:
-            if layer.axis == scene.axes[0]:
-                amap.axvspan(layer.start, layer.stop, color="white", alpha=0.15, lw=0)
-        for name, dax, pos in scene.detectors:
-            if dax == scene.axes[0]:
-                amap.axvline(pos, color=style.DETECTOR, lw=0.8, ls="--")
-        amap.set_xlabel(f"{scene.axes[0]} ({L})")
-        amap.set_ylabel(f"time ({T})")
-        amap.set_title("probability density over position and time (log scale)", loc="left")
+            _density_panel(fig, amap, scene, T, L)
 
         colors = style.line_colors()
         abooks.plot(t, ds.norm.values, color=colors[0], label="on the grid")
