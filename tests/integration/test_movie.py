@@ -218,9 +218,9 @@ def test_plot_column_of_a_2d_and_a_3d_run(plane_result, tmp_path):
     out = tmp_path / "plane-column.png"
     assert main(["plot", str(plane_result), "-o", str(out), "--size", "800x600", "--column", "x"]) == 0
     assert matplotlib.image.imread(out).std() > 0.05
-    cube = _run({"title": "3D packet", "grid": {a: {"min": -8.0, "max": 8.0, "points": 24} for a in "xyz"}
+    cube = _run({"title": "3D packet", "grid": {a: {"min": -9.0, "max": 9.0, "points": 24} for a in "xyz"}
                  | {"boundary": "periodic"},
-                 "packet": {"kind": "gaussian", "center": [-1.0, 0.0, 0.0], "width": [1.2, 1.0, 1.5]},
+                 "packet": {"kind": "gaussian", "center": [-1.0, 0.0, 0.0], "width": [1.2, 1.0, 1.1]},
                  "evolve": {"dt": 0.05, "duration": 0.5}, "record": {"every": 0.25, "snapshot_every": 0.25}},
                 tmp_path)
     out = tmp_path / "cube-column.png"
