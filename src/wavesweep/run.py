@@ -336,6 +336,10 @@ class Simulation:
             "autocorrelation": True,
             "detector_amplitude": s.grid.ndim == 1,
             "snapshot_psi": bool(s.job.table["record"].get("snapshot_psi")),
+            # record.column: (axis index, its spacing in the job's length unit)
+            "column": (None if s.job.table["record"].get("column") is None else
+                       (s.grid.axis_index(s.job.table["record"]["column"]),
+                        s.grid.axes[s.grid.axis_index(s.job.table["record"]["column"])].dx / lf)),
             "final_state": bool(s.job.table["record"]["final_state"]),
             # the run's totals, so that a full disk can say how much the file still needs
             "expected": {"samples": -(-s.total_steps // s.sample_steps) + 1,

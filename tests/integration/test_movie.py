@@ -18,6 +18,7 @@ import xarray as xr
 from conftest import make_job
 from wavesweep.cli import main
 from wavesweep.run import Simulation
+from wavesweep.errors import JobError
 from wavesweep.viz.movie import MovieOptions, render_frames, render_movie
 from wavesweep.viz.scene import read_scene
 
@@ -166,6 +167,37 @@ def test_a_2d_column_density_is_the_marginal_of_the_packet(plane_result, tmp_pat
     assert _packet_column(frames[-1]) > _packet_column(frames[0])   # the packet moves towards +x
     for bad in (["--column", "z"], ["--column", "y", "--parts"]):
         assert main(["movie", str(plane_result), "-o", str(tmp_path / "bad.mp4"), *bad]) == 2
+
+
+def test_record_column_stores_the_column_density(tmp_path):
+    """record.column = "y": the result holds column_density(snapshot_time,
+    x), the density integrated along y on the full grid.  At t = 0 it is the
+    x-marginal of the Gaussian packet (closed form, as in the test above);
+    with stride 2 it is decimated like the density; a 1D grid or an unknown
+    axis is one line naming record.column."""
+    import xarray as xr
+
+    table = copy.deepcopy(PLANE)
+    table["record"] = {**table["record"], "column": "y", "stride": 2}
+    path = _run(table, tmp_path)
+    with xr.open_dataset(path) as ds:
+        col = ds.column_density
+        assert col.dims == ("snapshot_time", "x") and col.sizes["x"] == ds.sizes["x"] == 48
+        assert col.attrs["units"] == f"{ds.x.attrs['units']}-1"
+        x = ds.x.values
+        expected = np.exp(-(x + 8.0) ** 2 / (2 * 2.0**2)) / np.sqrt(2 * np.pi * 2.0**2)
+        np.testing.assert_allclose(col.values[0], expected, rtol=0, atol=2e-6 * expected.max())
+        # every second x (stride 2) times twice dx: the norm of the last frame (no absorber)
+        assert float(col.values[-1].sum()) * (x[1] - x[0]) == pytest.approx(1.0, abs=1e-4)
+    for grid, column in ((FREE["grid"], "x"), (PLANE["grid"], "w")):
+        bad = copy.deepcopy(PLANE)
+        bad["grid"] = grid
+        if grid is FREE["grid"]:
+            bad["packet"] = FREE["packet"]
+            bad.pop("detector")
+        bad["record"] = {**bad["record"], "column": column}
+        with pytest.raises(JobError, match="record.column"):
+            make_job(bad)
 
 
 def test_3d_projection_and_slice(tmp_path):

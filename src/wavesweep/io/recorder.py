@@ -242,6 +242,13 @@ class ResultWriter:
                                  complevel=4, shuffle=True, chunksizes=chunks)
         dens.units = u["density"]
         dens.long_name = "probability density |psi|^2"
+        if lay.get("column") is not None:
+            k = lay["column"][0]
+            rest = tuple(n for j, n in enumerate(names) if j != k)
+            col = self._var("column_density", "f4", ("snapshot_time", *rest), zlib=True, complevel=4, shuffle=True,
+                            chunksizes=[c for j, c in enumerate(chunks) if j != k + 1])
+            col.units = f"{u['length']}-{len(rest)}"
+            col.long_name = f"probability density integrated along {names[k]} (column density)"
         if lay.get("snapshot_psi"):
             for part in ("real", "imag"):
                 v = self._var(f"psi_snapshot_{part}", "f4", ("snapshot_time", *names), zlib=True,
@@ -362,6 +369,10 @@ class ResultWriter:
         with self._room(self._frame_bytes()):
             self.ds["snapshot_time"][i] = time
             self.ds["density"][i] = density[cut].astype(np.float32, copy=False)
+            if self.layout.get("column") is not None:   # on the full grid, then decimated like the density
+                k, spacing = self.layout["column"]
+                column = density.sum(axis=k, dtype=np.float64) * spacing
+                self.ds["column_density"][i] = column[cut[:-1]].astype(np.float32)
             if psi is not None and "psi_snapshot_real" in self.ds.variables:
                 self.ds["psi_snapshot_real"][i] = psi.real[cut].astype(np.float32)
                 self.ds["psi_snapshot_imag"][i] = psi.imag[cut].astype(np.float32)

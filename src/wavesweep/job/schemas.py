@@ -83,6 +83,8 @@ RECORD = {
     "final_state": Field("bool", True, doc="store the final psi in the result"),
     # None (not False) by default: absent keys stay out of the run id
     "snapshot_psi": Field("bool", None, doc="store psi (real and imaginary parts) with each snapshot"),
+    "column": Field("str", None, doc="2D/3D: also store column_density, the density integrated along this "
+                                     "axis at each snapshot (what a camera looking along it sees)"),
 }
 DETECTOR = {
     "name": Field("str", None, doc="the detector's name (default: 'x=<position>')"),

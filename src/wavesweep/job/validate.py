@@ -176,7 +176,7 @@ def job_from_dict(raw: dict, overrides=(), source: Path | None = None) -> Job:
     with found.check():
         out["absorber"] = _absorber(raw.get("absorber", {}), u, layout, extents, ndim)
     with found.check():
-        out["record"] = _record(raw.get("record", {}), u, timing)
+        out["record"] = _record(raw.get("record", {}), u, timing, layout)
     axes = grid_axes(out["grid"] if "grid" in out else layout)
     if axes or "grid" in out:   # without any axis the position keys cannot be told
         with found.check():
@@ -530,11 +530,18 @@ def _divisor_near(total: int, target: int, tries: int = 100_000) -> int | None:
     return None
 
 
-def _record(raw, units, evolve) -> dict:
+def _record(raw, units, evolve, layout=None) -> dict:
     """The [record] table; its sampling on whole time steps is checked (and
     the defaults derived) only when ``evolve`` (valid ``dt`` and
     ``duration``, in valid units) is given."""
     t = validate_table(raw, RECORD, "record", units)
+    if t.get("column") is not None:
+        axes = grid_axes(layout) if isinstance(layout, dict) else []
+        if "r" in axes or len(axes) < 2:
+            raise JobError("record.column", "a column density needs a 2D or 3D Cartesian grid; remove "
+                                            "record.column")
+        if t["column"] not in axes:
+            raise JobError("record.column", f"no axis {t['column']!r}; the grid has {', '.join(axes)}")
     if evolve is None:
         return t
     dt = units.to_atomic(evolve["dt"], "time", "evolve.dt")
