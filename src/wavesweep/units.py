@@ -17,6 +17,16 @@ is converted to atomic units on input, so the physics never sees the choice.
 A unit left out of ``[units]`` is derived from the given ones where they
 determine it, or refused (:meth:`UnitSet.from_table`): never silently atomic
 beside units that are not.
+
+Energies may be written in the units of the trade (:func:`unit_factor`):
+temperatures ``K``, ``mK``, ``uK``, ``nK`` are energies k_B T; a frequency
+unit read where an energy is wanted is the energy of that frequency,
+``Hz``, ``kHz``, ``MHz``, ``GHz``, ``THz`` (cycles per second) as h nu and
+``rad/s`` (radians per time) as hbar omega, alone (``"2.5 kHz"``, ``[units]
+energy = "kHz"``) or in a compound energy kind (``"kHz/um"`` for an energy
+per length, ``"Hz um"`` for an energy times a length).  A bare inverse time
+(``"1/s"``) says neither and is refused there.  A frequency field (``omega``)
+keeps its own reading: ``"100 Hz"`` is 2 pi x 100 rad/s.
 """
 from __future__ import annotations
 
@@ -30,7 +40,8 @@ import scipy.constants as sc
 
 from .errors import ErrorCollector, JobError
 
-__all__ = ["UnitSet", "KINDS", "parse_unit", "symbol_powers", "ATOMIC", "MECHANICAL"]
+__all__ = ["UnitSet", "KINDS", "parse_unit", "unit_factor", "symbol_powers", "ATOMIC", "MECHANICAL",
+           "CYCLE_SYMBOLS"]
 
 # --- atomic units in SI (CODATA via scipy.constants) -------------------------
 _M_AU = sc.m_e                                   # kg
@@ -86,12 +97,20 @@ UNITS: dict[str, tuple[float, Dims]] = {
     "Hz": _unit(1.0, (0, 0, -1, 0)), "kHz": _unit(1e3, (0, 0, -1, 0)),
     "MHz": _unit(1e6, (0, 0, -1, 0)), "GHz": _unit(1e9, (0, 0, -1, 0)),
     "THz": _unit(1e12, (0, 0, -1, 0)),
+    # as an energy: h x frequency (unit_factor); "rad/s" is hbar x angular frequency
     # energy equivalents that are conventional in spectroscopy / cold atoms
     "K": _unit(sc.k, _ENERGY),                      # k_B * 1 K
     "mK": _unit(1e-3 * sc.k, _ENERGY), "uK": _unit(1e-6 * sc.k, _ENERGY),
     "µK": _unit(1e-6 * sc.k, _ENERGY), "nK": _unit(1e-9 * sc.k, _ENERGY),
     "invcm": _unit(sc.h * sc.c * 100.0, _ENERGY),   # wavenumber, h c / 1 cm
 }
+
+# Frequency symbols that count cycles (1 Hz = 1 cycle per second) and the time
+# unit each is the reciprocal of: an angular-frequency field multiplies them by
+# 2 pi, an energy field reads them as h nu, and an energy unit given as one of
+# them makes the time unit its period unit (kHz: ms).
+CYCLE_SYMBOLS = {"Hz": "s", "kHz": "ms", "MHz": "us", "GHz": "ns", "THz": "ps"}
+_FREQUENCY: Dims = (0, 0, -1, 0)
 
 
 @dataclass(frozen=True)
@@ -290,7 +309,10 @@ class UnitSet:
     * ``mass`` left out is ``m_e`` (a stated default; ``particle.mass`` is
       then in electron masses);
     * ``time`` left out, ``energy`` given: time follows as hbar / energy
-      (``hbar/meV`` = 0.658 ps), as the job-file contract says;
+      (``hbar/meV`` = 0.658 ps), as the job-file contract says; an energy
+      given as a frequency makes time the reciprocal of that frequency
+      (``kHz``, h x 1 kHz: ``ms`` = h / energy; ``rad/s``, hbar x 1 rad/s:
+      ``s`` = hbar / energy), written as a plain time unit;
     * ``energy`` left out, ``length`` and ``time`` given: energy follows as
       mass length^2 / time^2 (nm, fs and m_e: m_e nm^2 fs^-2 = 5.686 eV);
     * ``length`` left out, or ``energy`` and ``time`` both left out: refused
@@ -300,8 +322,8 @@ class UnitSet:
     ``describe()`` says which units are given, derived or defaults.  The
     derived energy is written out as a unit string (``energy``), so the
     resolved job states it; the derived time is written as ``hbar/<energy>``
-    in labels and left out of the resolved table (it is derived again the
-    same way).
+    in labels (a plain time unit when the energy is a frequency) and left
+    out of the resolved table (it is derived again the same way).
     """
 
     length: str = "bohr"
@@ -333,10 +355,7 @@ class UnitSet:
                 name = table[key]
                 if not isinstance(name, str):
                     raise JobError(f"{field}.{key}", f"must be a unit name as a string, got {name!r}")
-                factor, dims = parse_unit(name, f"{field}.{key}")
-                if dims != KINDS[key].dims:
-                    raise JobError(f"{field}.{key}", f"{name!r} is not a unit of {key}")
-                names[key], factors[key] = name, factor
+                names[key], factors[key] = name, unit_factor(name, key, f"{field}.{key}")
         given = tuple(k for k in MECHANICAL if k in table)
         # a left-out unit that nothing derives would silently be atomic beside
         # units that are not; all given units atomic (valid ones: a bad one
@@ -363,7 +382,7 @@ class UnitSet:
         time_derived = "time" not in table and "energy" in table
         energy_derived = "energy" not in table and "time" in table and "length" in table
         if time_derived:
-            names["time"] = f"hbar/{names['energy']}"
+            names["time"] = _period_unit(names["energy"]) or f"hbar/{names['energy']}"
         if energy_derived:
             # E = M L^2 / T^2, written as a unit string the parser reads back
             parts = [(s, p) for s, p in symbol_powers(names["mass"])]
@@ -374,13 +393,18 @@ class UnitSet:
                    given=tuple(k for k in allowed if k in table))
 
     # -- factors -----------------------------------------------------------
+    @property
+    def _time_is_hbar_over_energy(self) -> bool:
+        """Time derived as hbar / energy and named so (not a period unit)."""
+        return self.time_derived and self.time.startswith("hbar/")
+
     def base_factor(self, base: str) -> float:
         """Atomic units per one job unit of a base quantity."""
         name = getattr(self, base)
-        if base == "time" and self.time_derived:
+        if base == "time" and self._time_is_hbar_over_energy:
             # hbar / E_unit in atomic units is 1 / (E_unit in hartree).
-            return 1.0 / parse_unit(self.energy)[0]
-        return parse_unit(name)[0]
+            return 1.0 / unit_factor(self.energy, "energy")
+        return unit_factor(name, base)
 
     def factor(self, kind: str) -> float:
         """Atomic units per one job unit of quantity ``kind``."""
@@ -395,7 +419,7 @@ class UnitSet:
         parts = []
         for base, power in KINDS[kind].job_unit:
             name = getattr(self, base)
-            if base == "time" and self.time_derived:
+            if base == "time" and self._time_is_hbar_over_energy:
                 parts.append((f"(hbar/{self.energy})", power))
             else:
                 parts += [(sym, p * power) for sym, p in symbol_powers(name)]
@@ -439,9 +463,15 @@ class UnitSet:
         items = []
         for base in MECHANICAL:
             name = getattr(self, base)
-            if base == "time" and self.time_derived:
+            if base == "time" and self._time_is_hbar_over_energy:
                 au = self.base_factor("time")
                 items.append(f"time {name} (derived: hbar/energy = {_familiar(au * _T_AU, 'time')})")
+            elif base == "time" and self.time_derived:
+                items.append(f"time {name} (derived: 1/frequency of the energy unit {self.energy})")
+            elif base == "energy" and _is_frequency(name):
+                au = self.base_factor("energy")
+                reading = "hbar omega" if "rad" in dict(symbol_powers(name)) else "h nu"
+                items.append(f"energy {name} ({reading} = {_familiar(au * _E_AU, 'energy')})")
             elif base == "energy" and self.energy_derived:
                 au = self.base_factor("energy")
                 items.append(f"energy {name} (derived: mass length^2/time^2 = "
@@ -474,6 +504,26 @@ _FAMILIAR = {
 }
 
 
+def _is_frequency(unit: str) -> bool:
+    """Whether a (valid) unit is an inverse time: an energy written as a frequency."""
+    return parse_unit(unit)[1] == _FREQUENCY
+
+
+def _period_unit(energy_unit: str) -> str | None:
+    """The time unit that is the reciprocal of an energy unit given as a
+    frequency (``"kHz"`` -> ``"ms"``, ``"rad/s"`` -> ``"s"``, ``"rad/ms"`` ->
+    ``"ms"``), a string the parser reads back; None for a true energy unit."""
+    if not _is_frequency(energy_unit):
+        return None
+    parts = []
+    for sym, p in _merge_powers(symbol_powers(energy_unit)):
+        if sym in CYCLE_SYMBOLS:
+            parts.append((CYCLE_SYMBOLS[sym], p))    # 1 / kHz^p = ms^p
+        elif sym != "rad":
+            parts.append((sym, -p))
+    return _write_powers(_merge_powers(parts), caret=True)
+
+
 def _familiar(si_value: float, base: str) -> str:
     """``si_value`` (J or s) in the largest familiar unit not above it,
     four significant digits (``"5.686 eV"``; energies below 1 neV as
@@ -486,8 +536,93 @@ def _familiar(si_value: float, base: str) -> str:
     return f"{si_value / size:.4g} {name}"
 
 
+def _article(kind: str) -> str:
+    name = kind.replace("_", " ")
+    return f"an {name}" if name[0] in "aeiou" else f"a {name}"
+
+
+def _energy_power(kind: str) -> int:
+    """The power of the energy unit in ``kind``'s job unit (1 for energy,
+    energy per length, ...; 0 for a length)."""
+    return sum(p for base, p in KINDS[kind].job_unit if base == "energy")
+
+
+def _energy_from_frequency(unit: str, field: str, what: str) -> float:
+    """hbar omega per unit (``omega`` in atomic units) of a frequency unit
+    read as an energy: 2 pi for cycles (``Hz``, ``kHz``, ...: E = h nu with
+    h = 2 pi hbar, hbar = 1 in atomic units), 1 for radians (``rad/s``:
+    E = hbar omega).  A unit that says neither (``1/s``) or both is refused."""
+    powers = dict(_merge_powers(symbol_powers(unit, field)))
+    cycles = sum(p for sym, p in powers.items() if sym in CYCLE_SYMBOLS)
+    radians = powers.get("rad", 0)
+    if cycles == 1 and radians == 0:
+        return 2.0 * math.pi
+    if radians == 1 and cycles == 0:
+        return 1.0
+    fix = "write Hz, kHz or MHz (cycles per second, read as h nu) or rad/s (read as hbar omega)"
+    if cycles == 0 and radians == 0:
+        raise JobError(field, f"{what} is a frequency in neither cycles nor radians, so as an energy "
+                              f"it is ambiguous (h nu or hbar omega); {fix}")
+    raise JobError(field, f"{what} mixes cycles and radians; as an energy {fix}")
+
+
+def _kind_factor(unit: str, kind: str, field: str, what: str) -> float | None:
+    """Atomic units per one ``unit`` read as a quantity of ``kind``, or None
+    when the unit does not have the dimension of ``kind``.  ``what`` names
+    the value in a message (``"'3 s-1'"``)."""
+    factor, dims = parse_unit(unit, field)
+    want = KINDS[kind].dims
+    if dims == want:
+        if kind == "frequency" and _CYCLES.search(unit):
+            # angular-frequency fields (omega): "100 Hz" means 100 cycles per second
+            factor *= 2.0 * math.pi
+        return factor
+    if _energy_power(kind) == 1:
+        # an energy written as a frequency: the unit has the kind's dimension
+        # with its energy E replaced by E / hbar (an inverse time)
+        as_frequency = tuple(w - e + f for w, e, f in zip(want, _ENERGY, _FREQUENCY))
+        if dims == as_frequency:
+            return factor * _energy_from_frequency(unit, field, what)
+    return None
+
+
+def _fix_hint(kind: str, dims: Dims) -> str:
+    """How to write a value of ``kind`` whose unit had ``dims`` (a message's fix)."""
+    if kind == "energy":
+        return ("; write it in an energy unit such as 'meV', a temperature ('uK': k_B T) or a "
+                "frequency ('kHz': h nu; 'rad/s': hbar omega)")
+    if _energy_power(kind) == 1:
+        return ("; its energy may be in an energy unit ('meV'), a temperature ('uK': k_B T) or a "
+                "frequency ('kHz': h nu; 'rad/s': hbar omega)")
+    if kind == "frequency" and dims == _ENERGY:
+        return ("; an angular frequency is written in rad/s (or Hz, kHz, ..., multiplied by 2 pi), "
+                "not as an energy")
+    return ""
+
+
+def unit_factor(unit: str, kind: str, field: str = "unit") -> float:
+    """Atomic units per one ``unit`` of a quantity of ``kind``.
+
+    The unit must have the dimension of ``kind``, with two readings of the
+    trade: a frequency field (``kind = "frequency"``, angular) takes ``Hz``,
+    ``kHz``, ... as cycles per second, x 2 pi; a kind holding one energy
+    (energy, energy per length, energy x length, field) takes the energy as a
+    frequency: ``Hz`` ... ``THz`` as h nu, ``rad/s`` as hbar omega (CODATA h =
+    2 pi hbar, from :mod:`scipy.constants` through the atomic unit of time).
+    Temperatures (``uK``) are energies k_B T already.  Anything else raises
+    :class:`~wavesweep.errors.JobError` on ``field``.
+    """
+    factor = _kind_factor(unit, kind, field, repr(unit))
+    if factor is None:
+        raise JobError(field, f"{unit!r} is not a unit of {kind.replace('_', ' ')}"
+                              f"{_fix_hint(kind, parse_unit(unit, field)[1])}")
+    return factor
+
+
 def quantity_to_atomic(text: str, kind: str, field: str = "value") -> float:
-    """``"3 nm"`` -> 3 nm in bohr; the unit must have the dimension of ``kind``."""
+    """``"3 nm"`` -> 3 nm in bohr; the unit must have the dimension of
+    ``kind`` (or be an energy of the trade, see :func:`unit_factor`):
+    ``"2.5 kHz"`` as an energy is h x 2.5 kHz, as a frequency 2 pi x 2.5 kHz."""
     m = _QUANTITY.match(text)
     if not m:
         raise JobError(field, f"cannot read quantity {text!r}; write a number and a unit, e.g. '3 nm'")
@@ -498,12 +633,9 @@ def quantity_to_atomic(text: str, kind: str, field: str = "value") -> float:
         if want != _DIM_NONE:
             raise JobError(field, f"{text!r} has no unit; write it as a number, or with a {kind} unit")
         return number
-    factor, dims = parse_unit(unit, field)
-    if dims != want:
-        raise JobError(field, f"{text!r} is not a {kind.replace('_', ' ')}")
-    if kind == "frequency" and _CYCLES.search(unit):
-        # angular-frequency fields (omega): "100 Hz" means 100 cycles per second
-        factor *= 2.0 * math.pi
+    factor = _kind_factor(unit, kind, field, repr(text))
+    if factor is None:
+        raise JobError(field, f"{text!r} is not {_article(kind)}{_fix_hint(kind, parse_unit(unit, field)[1])}")
     return number * factor
 
 

@@ -197,6 +197,27 @@ job_case("units", "quantity-wrong-dimension", {"packet": {"width": "2 fs"}}, "pa
 job_case("units", "quantity-unknown-unit", {"packet": {"width": "2 furlongs"}}, "packet.width")
 job_case("units", "quantity-not-a-number", {"packet": {"width": "two nm"}}, "packet.width")
 job_case("units", "mass-unit-for-time", {"units": {"time": "kg"}}, "units.time")
+# units of the trade (issue 15): an energy as h nu (Hz) or hbar omega (rad/s), never a bare 1/s
+job_case("units", "energy-in-bare-inverse-seconds",
+         {"potential": [{"kind": "barrier", "height": "2 s-1", "width": 1.0}]},
+         "potential.0.height", "ambiguous", "Hz", "rad/s")
+job_case("units", "energy-mixing-cycles-and-radians",
+         {"potential": [{"kind": "barrier", "height": "2 kHz*rad", "width": 1.0}]},
+         "potential.0.height", "mixes")
+job_case("units", "energy-per-length-for-an-energy",
+         {"potential": [{"kind": "barrier", "height": "2 kHz/um", "width": 1.0}]},
+         "potential.0.height", "not an energy", "'uK'")
+job_case("units", "cap-strength-in-bare-inverse-seconds",
+         {"absorber": {"kind": "cap", "thickness": 8.0, "strength": "3 1/s"}},
+         "absorber.strength", "ambiguous")
+job_case("units", "temperature-for-an-angular-frequency",
+         {"potential": [{"kind": "harmonic", "omega": "2 uK"}]}, "potential.0.omega", "rad/s")
+job_case("units", "units-energy-bare-inverse-seconds", {"units": {"length": "um", "energy": "1/s"}},
+         "units.energy", "ambiguous")
+job_case("units", "units-energy-a-length", {"units": {"length": "um", "energy": "um"}},
+         "units.energy", "'kHz'")
+job_case("units", "units-time-in-hertz", {"units": {"length": "um", "energy": "kHz", "time": "kHz"}},
+         "units.time", "not a unit of time")
 
 
 # -- expressions: never run code, refuse what cannot be a potential -------------------

@@ -390,3 +390,276 @@ def test_a_job_with_energy_left_out_runs_in_the_derived_unit(tmp_path):
     # by hand: 1/2 m_e (5e5 m/s)^2 = 0.7107 eV plus 1.06 meV of spread; the
     # number in the file, 0.125, read as hartree would have been 3.4 eV
     assert expected_j / sc.eV == pytest.approx(0.7118, rel=1e-3)
+
+
+# --- units of the trade: energies as h nu, hbar omega and k_B T (issue 15) -----------------
+
+# CODATA (scipy.constants): E_h / h in Hz and E_h / k_B in K, entries other than
+# the hbar / E_h that units.py builds h nu from
+HARTREE_HZ = PC["hartree-hertz relationship"][0]          # 1 E_h = h x 6.58e15 Hz
+KELVIN_HARTREE = PC["kelvin-hartree relationship"][0]     # k_B x 1 K in E_h
+HZ_TO_HARTREE = 1.0 / HARTREE_HZ
+
+
+@pytest.mark.parametrize(("text", "hertz"), [("1 Hz", 1.0), ("1 kHz", 1e3), ("2.5 kHz", 2.5e3),
+                                             ("1 MHz", 1e6), ("1 GHz", 1e9), ("-3 kHz", -3e3)])
+def test_an_energy_in_hertz_is_h_nu(text, hertz):
+    """E = h nu, against CODATA's hartree-hertz relationship."""
+    assert quantity_to_atomic(text, "energy") == pytest.approx(hertz * HZ_TO_HARTREE, rel=1e-12)
+
+
+def test_an_energy_in_rad_per_s_is_hbar_omega():
+    """E = hbar omega: 1 rad/s is 1/(2 pi) of h x 1 Hz; and hbar x 1 rad/s in
+    hartree is the atomic unit of time in seconds (hbar / E_h, CODATA)."""
+    assert quantity_to_atomic("1 rad/s", "energy") == pytest.approx(HZ_TO_HARTREE / (2 * math.pi), rel=1e-12)
+    assert quantity_to_atomic("1 rad/s", "energy") == pytest.approx(AU_TIME_S, rel=1e-12)
+    assert quantity_to_atomic("2 rad/ms", "energy") == pytest.approx(2e3 * AU_TIME_S, rel=1e-12)
+
+
+@pytest.mark.parametrize(("text", "kelvin"), [("1 K", 1.0), ("1 mK", 1e-3), ("1 uK", 1e-6),
+                                              ("1 µK", 1e-6), ("250 nK", 250e-9)])
+def test_an_energy_in_kelvin_is_k_b_t(text, kelvin):
+    """E = k_B T, against CODATA's kelvin-hartree relationship."""
+    assert quantity_to_atomic(text, "energy") == pytest.approx(kelvin * KELVIN_HARTREE, rel=1e-12)
+
+
+def test_energy_kinds_take_the_energy_as_a_frequency():
+    """h nu in compound energy kinds: a force 'kHz/um' (energy per length)
+    and a 1D coupling 'Hz um' (energy x length), CODATA factors."""
+    um = 1e-6 / BOHR_M
+    assert quantity_to_atomic("2 kHz/um", "energy_per_length") == pytest.approx(
+        2e3 * HZ_TO_HARTREE / um, rel=1e-12)
+    assert quantity_to_atomic("3 Hz*um", "energy_length") == pytest.approx(3 * HZ_TO_HARTREE * um, rel=1e-12)
+    assert quantity_to_atomic("1 uK/um", "energy_per_length") == pytest.approx(
+        1e-6 * KELVIN_HARTREE / um, rel=1e-12)
+
+
+def test_a_frequency_field_keeps_its_reading():
+    """omega given '100 Hz' is 2 pi x 100 rad/s as before (cycles x 2 pi),
+    '100 rad/s' and '0.1 rad/ms' are 100 rad/s; in atomic units rad per
+    hbar/E_h (CODATA atomic unit of time)."""
+    two_pi_100 = 2 * math.pi * 100 * AU_TIME_S
+    assert quantity_to_atomic("100 Hz", "frequency") == pytest.approx(two_pi_100, rel=1e-12)
+    assert quantity_to_atomic("0.1 kHz", "frequency") == pytest.approx(two_pi_100, rel=1e-12)
+    assert quantity_to_atomic("100 rad/s", "frequency") == pytest.approx(100 * AU_TIME_S, rel=1e-12)
+    assert quantity_to_atomic("0.1 rad/ms", "frequency") == pytest.approx(100 * AU_TIME_S, rel=1e-12)
+    assert quantity_to_atomic("100 s-1", "frequency") == pytest.approx(100 * AU_TIME_S, rel=1e-12)
+
+
+def test_a_khz_unit_set():
+    """[units] energy = "kHz": energies are h x kHz (CODATA), time left out
+    follows as the reciprocal, ms (= h / energy unit); the labels read back
+    to the same factors."""
+    u = UnitSet.from_table({"length": "um", "energy": "kHz", "mass": "Da"})
+    assert u.factor("energy") == pytest.approx(1e3 * HZ_TO_HARTREE, rel=1e-12)
+    assert u.time == "ms" and u.time_derived
+    assert u.factor("time") == pytest.approx(1e-3 / AU_TIME_S, rel=1e-12)
+    # h / (h x 1 kHz) = 1 ms: the phase E t / hbar of 1 kHz over 1 ms is 2 pi
+    assert u.factor("energy") * u.factor("time") == pytest.approx(2 * math.pi, rel=1e-12)
+    assert u.unit_label("energy") == "kHz" and u.unit_label("time") == "ms"
+    assert u.unit_label("energy_per_length") == "kHz um-1"
+    assert u.as_table() == {"length": "um", "energy": "kHz", "mass": "Da"}   # time derived again
+    from wavesweep.units import unit_factor
+    for kind in ("energy", "time", "frequency", "energy_per_length", "energy_length", "electric_field"):
+        assert unit_factor(u.unit_label(kind), kind) == pytest.approx(u.factor(kind), rel=1e-12), kind
+    # h x 1 kHz = 47.99 nK x k_B (CODATA ratio h / k_B = 4.799e-11 K s)
+    assert "energy kHz (h nu = 47.99 nK)" in u.describe()
+    assert "time ms (derived" in u.describe()
+    # hbar omega units: time follows as s; given units are kept
+    w = UnitSet.from_table({"length": "um", "energy": "rad/s", "mass": "Da"})
+    assert w.factor("energy") == pytest.approx(AU_TIME_S, rel=1e-12) and w.time == "s"
+    assert w.factor("time") == pytest.approx(1.0 / AU_TIME_S, rel=1e-12)
+    assert UnitSet.from_table({"length": "um", "energy": "MHz", "time": "ms"}).time == "ms"
+    # a temperature unit keeps time = hbar / energy
+    t = UnitSet.from_table({"length": "um", "energy": "uK", "mass": "Da"})
+    assert t.time == "hbar/uK"
+    assert t.factor("time") == pytest.approx(1.0 / (1e-6 * KELVIN_HARTREE), rel=1e-12)
+
+
+@pytest.mark.parametrize(("text", "kind", "pieces"), [
+    ("100 s-1", "energy", ("ambiguous", "Hz", "rad/s")),           # nu or omega: not said
+    ("100 1/s", "energy", ("ambiguous",)),
+    ("2 kHz*rad", "energy", ("mixes",)),
+    ("2 kHz/um", "energy", ("not an energy", "'kHz'", "'uK'")),   # an energy per length
+    ("3 uK", "frequency", ("not a frequency", "rad/s")),          # an energy for omega
+    ("3 kHz", "length", ("not a length",)),
+    ("3 s-1/um", "energy_per_length", ("ambiguous",)),
+])
+def test_units_of_the_trade_wrong_for_the_field(text, kind, pieces):
+    with pytest.raises(JobError) as info:
+        quantity_to_atomic(text, kind, "potential.0.height")
+    assert info.value.field == "potential.0.height"
+    for piece in pieces:
+        assert piece in str(info.value), str(info.value)
+    assert "\n" not in str(info.value)
+
+
+@pytest.mark.parametrize(("energy", "pieces"), [("1/s", ("ambiguous",)), ("um", ("not a unit of energy", "kHz")),
+                                                ("Hz*rad", ("mixes",))])
+def test_a_units_table_with_a_frequency_energy_it_cannot_read(energy, pieces):
+    with pytest.raises(JobError) as info:
+        UnitSet.from_table({"length": "um", "energy": energy})
+    assert info.value.field == "units.energy"
+    for piece in pieces:
+        assert piece in str(info.value), str(info.value)
+
+
+# Rb-87, 86.909180531 u (atomic mass, from memory), in a 100 Hz trap
+RB87_DA = 86.909180531
+M_RB_KG = RB87_DA * sc.atomic_mass
+OMEGA_TRAP = 2 * math.pi * 100.0                                   # rad/s
+A_HO_UM = math.sqrt(sc.hbar / (M_RB_KG * OMEGA_TRAP)) / 1e-6      # oscillator length, 1.08 um
+
+KHZ_TRAP = {
+    "units": {"length": "um", "energy": "kHz", "mass": "Da"},     # time: ms
+    "particle": {"mass": RB87_DA},
+    "grid": {"x": {"min": -16.0, "max": 16.0, "points": 128}},
+    "potential": [{"kind": "harmonic", "omega": "100 Hz"}],
+    "packet": {"kind": "gaussian", "center": 2.0, "width": A_HO_UM / math.sqrt(2)},
+    "evolve": {"dt": 0.02, "duration": 2.0, "scheme": "chebyshev"},
+    "record": {"every": 0.5, "snapshot_every": 2.0},
+}
+
+
+def test_a_harmonic_trap_given_in_hertz_is_unchanged():
+    """omega = "100 Hz" in a kHz / ms job is the trap of 2 pi x 100 rad/s,
+    V = m omega^2 x^2 / 2 (the harmonic kind's formula), as the number
+    2 pi x 0.1 rad/ms gives it; V in kHz against SI by hand (CODATA)."""
+    s = setup_of(KHZ_TRAP)
+    table = copy.deepcopy(KHZ_TRAP)
+    table["potential"][0]["omega"] = 2 * math.pi * 0.1          # rad per job time unit, ms
+    np.testing.assert_allclose(setup_of(table).hamiltonian.static_potential, s.hamiltonian.static_potential,
+                               rtol=1e-12)
+    x_m = s.grid.axes[0].coordinates * BOHR_M
+    v_khz = 0.5 * M_RB_KG * OMEGA_TRAP**2 * x_m**2 / (sc.h * 1e3)
+    np.testing.assert_allclose(s.hamiltonian.static_potential / s.units.factor("energy"), v_khz,
+                               rtol=1e-9, atol=1e-12 * v_khz.max())
+
+
+def test_energy_fields_given_as_frequencies_and_temperatures():
+    """A barrier height "2.5 kHz" is h x 2.5 kHz, "120 nK" is k_B x 120 nK,
+    in an atomic-units job and in a kHz job alike; a CAP strength in kHz."""
+    table = copy.deepcopy(KHZ_TRAP)
+    table["potential"] = [{"kind": "barrier", "height": "2.5 kHz", "width": 1.0}]
+    assert setup_of(table).hamiltonian.static_potential.max() == pytest.approx(2.5e3 * HZ_TO_HARTREE, rel=1e-12)
+    table["potential"][0]["height"] = 2.5                         # a number: the job's kHz
+    assert setup_of(table).hamiltonian.static_potential.max() == pytest.approx(2.5e3 * HZ_TO_HARTREE, rel=1e-12)
+    table["potential"][0]["height"] = "120 nK"
+    assert setup_of(table).hamiltonian.static_potential.max() == pytest.approx(120e-9 * KELVIN_HARTREE,
+                                                                               rel=1e-12)
+    table["evolve"]["scheme"] = "strang"                          # a CAP: not chebyshev
+    table["absorber"] = {"kind": "cap", "thickness": 4.0, "strength": "0.5 kHz", "power": 2}
+    assert make_job(table).table["absorber"]["strength"] == "0.5 kHz"
+    rate_khz = setup_of(table).absorber.rate
+    table["absorber"]["strength"] = 0.5                           # the job's kHz
+    np.testing.assert_allclose(setup_of(table).absorber.rate, rate_khz, rtol=1e-12)
+    # the same profile as a strength of 0.5 meV, scaled by h x 500 Hz / 0.5 meV (CODATA)
+    table["absorber"]["strength"] = "0.5 meV"
+    rate_mev = setup_of(table).absorber.rate
+    assert rate_khz.max() > 0
+    np.testing.assert_allclose(rate_khz, rate_mev * (sc.h * 500.0) / (0.5e-3 * sc.eV), rtol=1e-12)
+    atomic = {"grid": {"x": {"min": -20.0, "max": 20.0, "points": 64}},
+              "potential": [{"kind": "barrier", "height": "2.5 kHz", "width": 1.0}],
+              "packet": {"kind": "gaussian", "center": -5.0, "width": 1.0},
+              "evolve": {"dt": 0.1, "duration": 1.0}}
+    assert setup_of(atomic).hamiltonian.static_potential.max() == pytest.approx(2.5e3 * HZ_TO_HARTREE,
+                                                                                rel=1e-12)
+
+
+def test_a_khz_job_writes_its_energies_in_khz(tmp_path, capsys):
+    """A displaced ground state (a coherent state) of a 100 Hz Rb-87 trap in
+    um / kHz / Da: the result's energy, labelled kHz, is
+    hbar omega / 2 + m omega^2 x0^2 / 2 (textbook coherent-state energy, from
+    memory) in h x kHz, computed in SI with CODATA; times are in ms; and
+    `levels --json` gives (n + 1/2) x 0.1 kHz labelled kHz."""
+    ds = run_table(KHZ_TRAP, tmp_path)
+    assert ds["energy"].attrs["units"] == "kHz" and ds.attrs["units_energy"] == "kHz"
+    assert ds["time"].attrs["units"] == "ms" and ds.attrs["units_time"] == "ms"
+    assert ds.attrs["energy_to_hartree"] == pytest.approx(1e3 * HZ_TO_HARTREE, rel=1e-12)
+    x0_m = 2.0e-6
+    expected_j = sc.hbar * OMEGA_TRAP / 2 + 0.5 * M_RB_KG * OMEGA_TRAP**2 * x0_m**2
+    np.testing.assert_allclose(ds["energy"].values, expected_j / (sc.h * 1e3), rtol=1e-8)
+    # by hand: hbar omega = h x 100 Hz = 0.1 kHz, so 0.05 kHz of zero-point
+    # energy plus (x0 / a_ho)^2 x 0.05 kHz = (2 / 1.078)^2 x 0.05 = 0.172 kHz
+    assert expected_j / (sc.h * 1e3) == pytest.approx(0.222, abs=0.001)
+    # the packet oscillates with the 10 ms period: at 2 ms, x0 cos(2 pi / 5)
+    np.testing.assert_allclose(ds["x_mean"].values[-1], 2.0 * math.cos(2 * math.pi * 0.2), rtol=1e-8)
+
+    import tomli_w
+    from wavesweep.cli import main
+    job = tmp_path / "trap.toml"
+    job.write_text(tomli_w.dumps(KHZ_TRAP))
+    assert main(["levels", str(job), "--count", "3", "--json"]) == 0
+    import json
+    body = json.loads(capsys.readouterr().out)
+    assert body["energy_units"] == "kHz"
+    np.testing.assert_allclose(body["energies"], [0.05, 0.15, 0.25], rtol=1e-8)
+
+
+# A Rb-87 atom at a thin barrier in um / kHz / Da (time: ms).  Grid step
+# 0.125 um; the barrier's edges fall midway between grid points (centre dx/2),
+# so 4 cells span exactly its 0.5 um width.
+KHZ_BARRIER = {
+    "units": {"length": "um", "energy": "kHz", "mass": "Da"},
+    "particle": {"mass": RB87_DA},
+    "grid": {"x": {"min": -60.0, "max": 60.0, "points": 960}},
+    "potential": [{"kind": "barrier", "height": "1.2 kHz", "width": 0.5, "center": 0.0625}],
+    "packet": {"kind": "gaussian", "center": -20.0, "width": 3.0, "energy": "1 kHz"},
+    "evolve": {"dt": 0.01, "duration": 25.0},
+    "absorber": {"kind": "cap", "thickness": 10.0, "strength": 0.2, "power": 2},
+    "record": {"every": 0.05, "snapshot_every": 25.0},
+    "detector": [{"name": "after", "x": 10.0}],
+}
+
+
+def _barrier_transmission_si(energy_j, height_j, width_m, mass_kg):
+    """Rectangular-barrier T(E) (Griffiths, Introduction to Quantum Mechanics,
+    2nd ed., problem 2.33; from memory), in SI with CODATA hbar."""
+    if energy_j < height_j:
+        kappa = math.sqrt(2 * mass_kg * (height_j - energy_j)) / sc.hbar
+        return 1.0 / (1.0 + height_j**2 * math.sinh(kappa * width_m) ** 2 / (4 * energy_j * (height_j - energy_j)))
+    q = math.sqrt(2 * mass_kg * (energy_j - height_j)) / sc.hbar
+    return 1.0 / (1.0 + height_j**2 * math.sin(q * width_m) ** 2 / (4 * energy_j * (energy_j - height_j)))
+
+
+def test_transmission_and_arrivals_of_a_khz_job(tmp_path):
+    """`transmission` gives T(E) with E in kHz and `arrivals` times in ms: the
+    same numbers as the job converted to atomic units by hand (CODATA h,
+    Bohr radius, dalton), and T(E) near the textbook rectangular barrier's
+    (sharp edges converge slowly with dx: 1.4e-2 measured at this grid, 9e-3
+    at half the step; a slip of 2 pi in the energies would move T by ~0.3)."""
+    from wavesweep.analysis.arrivals import arrival_times
+    from wavesweep.analysis.transmission import transmission
+
+    um, khz = 1e-6 / BOHR_M, 1e3 * HZ_TO_HARTREE
+    ms = 1e-3 / AU_TIME_S
+    mass = RB87_DA * PC["atomic mass constant"][0] / sc.m_e
+    by_hand = copy.deepcopy(KHZ_BARRIER)
+    del by_hand["units"]
+    by_hand["particle"]["mass"] = mass
+    by_hand["grid"]["x"].update(min=-60.0 * um, max=60.0 * um)
+    by_hand["potential"][0].update(height=1.2 * khz, width=0.5 * um, center=0.0625 * um)
+    by_hand["packet"].update(center=-20.0 * um, width=3.0 * um, energy=khz)
+    by_hand["evolve"].update(dt=0.01 * ms, duration=25.0 * ms)
+    by_hand["absorber"].update(thickness=10.0 * um, strength=0.2 * khz)
+    by_hand["record"].update(every=0.05 * ms, snapshot_every=25.0 * ms)
+    by_hand["detector"][0]["x"] = 10.0 * um
+
+    run_table(KHZ_BARRIER, tmp_path / "khz")
+    run_table(by_hand, tmp_path / "au")
+    (path_khz,), (path_au,) = (tmp_path / "khz").glob("*.nc"), (tmp_path / "au").glob("*.nc")
+    t_khz, t_au = (transmission(p)["energy_resolved"] for p in (path_khz, path_au))
+    assert t_khz["energy_units"] == "kHz"
+    np.testing.assert_allclose(np.asarray(t_khz["energy"]) * khz, t_au["energy"], rtol=1e-9)
+    np.testing.assert_allclose(t_khz["T"], t_au["T"], rtol=1e-7, atol=1e-9)
+    a_khz, a_au = arrival_times(path_khz)["after"], arrival_times(path_au)["after"]
+    assert a_khz.time_units == "ms"
+    assert a_khz.stats["mean"] * ms == pytest.approx(a_au.stats["mean"], rel=1e-9)
+    assert a_khz.stats["std"] * ms == pytest.approx(a_au.stats["std"], rel=1e-8)
+    # against the textbook T(E), where the packet carries weight
+    energy, weight = np.asarray(t_khz["energy"]), np.asarray(t_khz["weight"])
+    textbook = [_barrier_transmission_si(e * 1e3 * sc.h, 1.2e3 * sc.h, 0.5e-6, RB87_DA * sc.atomic_mass)
+                for e in energy]
+    carried = weight > 0.1
+    assert carried.sum() > 20
+    np.testing.assert_allclose(np.asarray(t_khz["T"])[carried], np.asarray(textbook)[carried], atol=0.02)

@@ -28,7 +28,7 @@ from ..potentials.library import EDGES
 from ..propagators import SCHEMES
 from ..schema import Field
 from ..states import DEFAULT_PACKET, PACKET_SCHEMAS, PACKETS
-from ..units import KINDS, UNITS
+from ..units import CYCLE_SYMBOLS, KINDS, UNITS, UnitSet
 from .document import Job
 from .schemas import ABSORBER, AXIS, DETECTOR, DETECTOR_POSITION, EVOLVE, GRID, PARTICLE, RECORD, TOP_LEVEL
 from .sweep import MODES
@@ -55,14 +55,16 @@ TABLE_DOCS = {
 # The values are unit names (strings); the symbols of each are listed with the unit kinds.
 UNIT_KEYS = {
     "length": Field("str", "bohr", doc="unit of lengths, e.g. 'nm', 'angstrom', 'um'"),
-    "energy": Field("str", "hartree", doc="unit of energies, e.g. 'meV', 'eV', 'K', 'invcm'"),
+    "energy": Field("str", "hartree", doc="unit of energies, e.g. 'meV', 'eV', 'invcm', a temperature "
+                                         "'uK' (k_B T), a frequency 'kHz' (h nu) or 'rad/s' (hbar omega)"),
     "time": Field("str", "au_time", doc="unit of times, e.g. 'fs', 'ps'"),
     "mass": Field("str", "m_e", doc="unit of masses, e.g. 'm_e', 'Da', 'kg'"),
     "charge": Field("str", "e_charge", doc="unit of charges: 'e_charge' (e) or 'C'"),
 }
 UNITS_NOTE = ("Without [units] every number is in Hartree atomic units.  A unit left out of "
               "[units] follows from the others where they determine it (time = hbar / energy "
-              "unit when energy is given); `wavesweep check` prints the unit set in use.  Any "
+              "unit when energy is given; for an energy given as a frequency, its reciprocal: "
+              "ms for kHz, s for rad/s); `wavesweep check` prints the unit set in use.  Any "
               "quantity may instead be a string with its own unit, such as '3 nm' or "
               "'0.2 m_e*nm/fs'.")
 
@@ -138,6 +140,13 @@ def unit_kind(kind: str) -> dict:
     if kind == "frequency":
         out["note"] = ("angular frequency: a number is rad per job time unit; 'Hz', 'kHz', ... "
                        "mean cycles per second and are multiplied by 2 pi")
+    elif any(base == "energy" and power == 1 for base, power in KINDS[kind].job_unit):
+        # units.unit_factor: an energy of the trade, h nu or hbar omega (K, uK: k_B T, in symbols)
+        out["energy_as_frequency"] = {"h_nu": list(CYCLE_SYMBOLS), "hbar_omega": ["rad/s"]}
+        example = UnitSet.from_table({"length": "um", "energy": "kHz", "time": "ms"}).unit_label(kind)
+        out["note"] = ("the energy may be a frequency: " + ", ".join(CYCLE_SYMBOLS)
+                       + " read as h nu, rad/s as hbar omega (a bare 1/s is refused); K, mK, uK, "
+                       f"nK are k_B T; e.g. '2 {example}'")
     return out
 
 
