@@ -464,3 +464,17 @@ def test_terms_add_up():
     step = 0.2 * np.clip((x + dx / 2 - 3.0) / dx, 0.0, 1.0)     # cell-averaged edge
     want = 0.6 * np.exp(-(x**2) / (2 * 1.7**2)) + 0.35 * np.sin(np.pi * x / 2.2) ** 2 + step
     assert_close(v, want)
+
+
+def test_an_expression_parameter_in_cycles_is_refused_as_ambiguous():
+    """'2 kHz' in an expression's params could be the energy h x 2 kHz or the
+    angular frequency 2 pi x 2 kHz (the two differ by 2 pi): one line naming
+    the parameter; rad/s and lengths convert as before."""
+    from wavesweep.potentials.external import _param_in_job_units
+    from wavesweep.units import UnitSet
+
+    units = UnitSet.from_table({"length": "um", "energy": "kHz"})
+    with pytest.raises(JobError, match=r"potential\.0\.params\.f.*rad/s"):
+        _param_in_job_units("2 kHz", units, "potential.0.params.f")
+    assert _param_in_job_units("3 rad/ms", units, "p") == pytest.approx(3.0)   # kHz energy -> ms time
+    assert _param_in_job_units("2 um", units, "p") == pytest.approx(2.0)

@@ -6,7 +6,7 @@ import numpy as np
 from ..errors import JobError
 from ..io.paths import input_file
 from ..schema import Field
-from ..units import KINDS, parse_unit, quantity_to_atomic, _QUANTITY
+from ..units import _QUANTITY, CYCLE_SYMBOLS, KINDS, parse_unit, quantity_to_atomic, symbol_powers
 from .base import PotentialTerm, register
 from .expression import ALLOWED_FUNCTIONS, CONSTANTS, Expression
 
@@ -25,6 +25,12 @@ def _param_in_job_units(value, units, field: str) -> float:
     if not m.group("unit"):
         return float(m.group("num"))
     _, dims = parse_unit(m.group("unit"), field)
+    if any(sym in CYCLE_SYMBOLS for sym, _ in symbol_powers(m.group("unit"), field)):
+        # an energy h nu or an angular frequency 2 pi nu: a formula's parameter says not which
+        raise JobError(field, f"{value!r} is in cycles per time, which a formula's parameter may mean as an "
+                              "energy (h nu) or as an angular frequency (2 pi nu); give an angular frequency "
+                              "in rad/s, or an energy in the job's energy unit (e.g. [units] energy = 'kHz' "
+                              "and the number alone)")
     for kind in KINDS.values():
         if kind.dims == dims:
             return quantity_to_atomic(value, kind.name, field) / units.factor(kind.name)
