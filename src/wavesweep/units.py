@@ -501,7 +501,8 @@ def quantity_to_atomic(text: str, kind: str, field: str = "value") -> float:
         return number
     factor, dims = parse_unit(unit, field)
     if dims != want:
-        raise JobError(field, f"{text!r} is not a {kind.replace('_', ' ')}")
+        what = kind.replace("_", " ")
+        raise JobError(field, f"{text!r} is not {'an' if what[0] in 'aeiou' else 'a'} {what}")
     if kind == "frequency" and _CYCLES.search(unit):
         # angular-frequency fields (omega): "100 Hz" means 100 cycles per second
         factor *= 2.0 * math.pi
