@@ -139,6 +139,7 @@ KINDS: dict[str, Kind] = dict([
     _k("charge", _CHG, ("charge", 1)),
     _k("momentum", (1, 1, -1, 0), ("mass", 1), ("length", 1), ("time", -1)),
     _k("velocity", (0, 1, -1, 0), ("length", 1), ("time", -1)),
+    _k("acceleration", (0, 1, -2, 0), ("length", 1), ("time", -2)),   # gravity's g
     _k("wavenumber", (0, -1, 0, 0), ("length", -1)),
     _k("frequency", (0, 0, -1, 0), ("time", -1)),          # angular, rad per time
     _k("electric_field", (1, 1, -2, -1), ("energy", 1), ("charge", -1), ("length", -1)),

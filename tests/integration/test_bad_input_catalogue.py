@@ -187,6 +187,16 @@ job_case("fields", "sweep-zip-lengths-differ", {"sweep": {"mode": "zip", "potent
 case("fields", "toml-duplicate-key", RUN, "job.toml", "TOML",
      job_text='title = "a"\ntitle = "b"\n')
 job_case("fields", "evolve-missing", {"evolve": None}, "evolve", "missing")
+# gravity: a uniform force is not periodic (its kick jumps at the wrap); a radial grid has no direction
+job_case("fields", "gravity-along-a-periodic-axis", {"potential": [{"kind": "gravity"}]},
+         "grid.x.boundary", "'box'", "potential.0")
+job_case("fields", "gravity-unknown-axis", {"grid": {"boundary": "box"},
+                                            "potential": [{"kind": "gravity", "axis": "z"}]},
+         "potential.0.axis", "'z'", "x")
+job_case("fields", "gravity-on-a-radial-grid",
+         {"grid": {"x": None, "boundary": None, "r": {"max": 40.0, "points": 128}},
+          "potential": [{"kind": "gravity"}], "packet": {"center": 15.0, "width": 1.5, "momentum": 0.0},
+          "detector": None}, "potential.0.kind", "radial", commands=("run", "check", "levels"))
 case("fields", "toml-binary", RUN, "job.toml", job_text="\x00\x01\x02 not toml")
 
 
@@ -218,6 +228,9 @@ job_case("units", "units-energy-a-length", {"units": {"length": "um", "energy": 
          "units.energy", "'kHz'")
 job_case("units", "units-time-in-hertz", {"units": {"length": "um", "energy": "kHz", "time": "kHz"}},
          "units.time", "not a unit of time")
+job_case("units", "gravity-acceleration-a-velocity",
+         {"grid": {"boundary": "box"}, "potential": [{"kind": "gravity", "acceleration": "9.8 m/s"}]},
+         "potential.0.acceleration", "not an acceleration")
 
 
 # -- expressions: never run code, refuse what cannot be a potential -------------------

@@ -73,7 +73,7 @@ def test_every_named_kind_is_covered_here():
     # the list of the job-file contract (design.md) plus the ones this file checks
     tested = {"free", "step", "barrier", "double_barrier", "gaussian", "eckart", "harmonic",
               "morse", "double_well", "soft_coulomb", "coulomb", "lattice", "slits", "field",
-              "expression", "file"}
+              "expression", "file", "gravity"}
     assert tested <= set(REGISTRY), tested - set(REGISTRY)
     assert set(REGISTRY) <= tested, f"untested kinds: {set(REGISTRY) - tested}"
 
@@ -335,6 +335,94 @@ def test_field_needs_a_charge():
     with pytest.raises(JobError) as info:
         static([{"kind": "field", "amplitude": 0.05, "omega": 0.0, "envelope": "constant"}])
     assert info.value.field == "particle.charge"
+
+
+# --- gravity: V = m g s along the vertical axis ----------------------------------------
+# A cold-atom unit set (um, ms, Da; energy derived as Da um^2 / ms^2) and Rb-87,
+# 86.909180527 u (atomic mass evaluation; from memory).  V = m g s in SI from
+# CODATA (scipy.constants: atomic_mass, g = 9.80665 m s^-2, standard gravity).
+COLD_UNITS = {"length": "um", "time": "ms", "mass": "Da"}
+RB87_U = 86.909180527
+DA_UM2_PER_MS2_J = sc.atomic_mass * 1e-12 / 1e-6     # the derived energy unit in J
+GRID_BOX_1D = {"x": {"min": -10.0, "max": 10.0, "points": 64}, "boundary": "box"}
+
+
+def _gravity_v(potentials, grid, **kw):
+    """(coordinates in um by axis, V in J) of a cold-atom job."""
+    s = setup_of(_job(potentials, grid, COLD_UNITS, {"mass": RB87_U}))
+    um = 1e-6 / BOHR_M
+    coords = {name: c / um for name, c in s.grid.mesh().items()}
+    return coords, s.hamiltonian.static_potential * HARTREE_J
+
+
+def test_gravity_default_is_standard_gravity_along_the_last_axis():
+    # 1D: along x; the default acceleration is scipy.constants.g (9.80665 m/s^2)
+    c, v = _gravity_v([{"kind": "gravity"}], GRID_BOX_1D)
+    m_kg = RB87_U * sc.atomic_mass
+    assert sc.g == 9.80665                               # standard gravity (CGPM 1901; from memory)
+    assert_close(v, m_kg * sc.g * c["x"] * 1e-6, rtol=1e-11)
+    # in the job's units V = m g x with g = 9.80665 um/ms^2 (m/s^2 = 1e6 um / 1e6 ms^2)
+    assert_close(v / DA_UM2_PER_MS2_J, RB87_U * 9.80665 * c["x"], rtol=1e-11)
+    # 2D: along y, constant along x; 3D: along z
+    grid_2d = {**GRID_2D, "boundary": "box"}
+    c, v = _gravity_v([{"kind": "gravity"}], grid_2d)
+    assert v.shape == (1, 16) or v.shape == (64, 16)
+    assert_close(np.broadcast_to(v, (64, 16)), np.broadcast_to(m_kg * sc.g * c["y"] * 1e-6, (64, 16)),
+                 rtol=1e-11)
+    grid_3d = {**grid_2d, "z": {"min": -8.0, "max": 9.0, "points": 24}}
+    c, v = _gravity_v([{"kind": "gravity"}], grid_3d)
+    assert_close(np.broadcast_to(v, (64, 16, 24)),
+                 np.broadcast_to(m_kg * sc.g * c["z"] * 1e-6, (64, 16, 24)), rtol=1e-11)
+
+
+def test_gravity_acceleration_in_job_units_a_string_and_negative():
+    m_kg = RB87_U * sc.atomic_mass
+    grid_2d = {**GRID_2D, "boundary": "box"}
+    # a number is in [units] length/time^2: 2.5 um/ms^2 = 2.5 m/s^2
+    c, v = _gravity_v([{"kind": "gravity", "acceleration": 2.5, "axis": "x"}], grid_2d)
+    assert_close(np.broadcast_to(v, (64, 16)), np.broadcast_to(m_kg * 2.5 * c["x"] * 1e-6, (64, 16)),
+                 rtol=1e-11)
+    # a string with its own unit; negative pulls toward +s
+    c, v = _gravity_v([{"kind": "gravity", "acceleration": "-162 cm/s^2"}], GRID_BOX_1D)
+    assert_close(v, m_kg * -1.62 * c["x"] * 1e-6, rtol=1e-11)
+    # the force is -m g on the vertical axis (hartree/bohr), 0 on the others
+    s = setup_of(_job([{"kind": "gravity", "acceleration": 2.5}], grid_2d, COLD_UNITS, {"mass": RB87_U}))
+    newton = HARTREE_J / BOHR_M
+    np.testing.assert_allclose(s.terms[0].force() * newton, [0.0, -m_kg * 2.5], rtol=1e-11, atol=0)
+
+
+def test_acceleration_kind_against_codata():
+    # m/s^2 in atomic units: a_0 / t_au^2 (CODATA, scipy.constants)
+    from wavesweep.units import UnitSet, quantity_to_atomic
+
+    au = BOHR_M / AU_TIME_S**2
+    cold = UnitSet.from_table(COLD_UNITS)
+    assert cold.factor("acceleration") == pytest.approx(1e-6 / 1e-6 / au, rel=1e-12)
+    assert quantity_to_atomic("9.80665 m/s^2", "acceleration") == pytest.approx(sc.g / au, rel=1e-12)
+    assert quantity_to_atomic("981 cm s^-2", "acceleration") == pytest.approx(9.81 / au, rel=1e-12)
+    with pytest.raises(JobError, match="'9.8 m/s' is not an acceleration"):
+        quantity_to_atomic("9.8 m/s", "acceleration")
+
+
+@pytest.mark.parametrize(("grid", "extra", "field", "piece"), [
+    ({"x": {"min": -10.0, "max": 10.0, "points": 64}, "boundary": "periodic"}, {}, "grid.x.boundary", "box"),
+    ({**GRID_2D, "boundary": "periodic", "y": {**GRID_2D["y"], "boundary": "box"}}, {"axis": "x"},
+     "grid.x.boundary", "box"),
+    (GRID_BOX_1D, {"axis": "z"}, "potential.0.axis", "not an axis"),
+])
+def test_gravity_refusals(grid, extra, field, piece):
+    with pytest.raises(JobError) as info:
+        setup_of(_job([{"kind": "gravity", **extra}], grid, COLD_UNITS, {"mass": RB87_U}))
+    assert info.value.field == field and piece in info.value.message
+
+
+def test_gravity_along_a_box_axis_of_a_mixed_grid():
+    # x periodic, y box: gravity along y is fine
+    grid = {**GRID_2D, "boundary": "periodic", "y": {**GRID_2D["y"], "boundary": "box"}}
+    c, v = _gravity_v([{"kind": "gravity"}], grid)
+    m_kg = RB87_U * sc.atomic_mass
+    assert_close(np.broadcast_to(v, (64, 16)), np.broadcast_to(m_kg * sc.g * c["y"] * 1e-6, (64, 16)),
+                 rtol=1e-11)
 
 
 # --- expressions: job units and safety -------------------------------------------------

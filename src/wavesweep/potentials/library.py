@@ -6,6 +6,7 @@ terms with a centre take one value per axis in 2D/3D.
 from __future__ import annotations
 
 import numpy as np
+import scipy.constants as sc
 
 from ..errors import JobError
 from ..schema import Field
@@ -357,6 +358,69 @@ class Slits(PotentialTerm):
         for c in self.open_at:
             hole = hole | (np.abs(y - c) < self.p["opening_width"] / 2)
         return self.p["height"] * (wall & ~hole)
+
+
+@register
+class Gravity(PotentialTerm):
+    """A uniform gravitational field: V = m g s along one axis.
+
+    The force -dV/ds = -m g pulls toward negative s for g > 0 (the axis
+    points up).  The term is linear in s, so the split-operator kick
+    exp(-i m g s dt / hbar) is a momentum shift of -m g dt per step: exact
+    on a box axis (hard walls, DST-I), but on a periodic axis V jumps by
+    m g L at the wrap, where the kick cannot be periodic (its phase is
+    continuous round the ring only if m g L dt / hbar is a multiple of
+    2 pi): refused there.  A radial grid has no direction: refused.
+    """
+
+    kind = "gravity"
+    summary = ("uniform gravity V = m g s along `axis` (default: the last Cartesian axis), "
+               "pulling toward -s; g defaults to standard gravity")
+    formula = ("V(r) = m * acceleration * s, m = particle.mass, s the coordinate along `axis` "
+               "(default: the last Cartesian axis: x in 1D, y in 2D, z in 3D), measured from s = 0 "
+               "of the grid's coordinates (V = 0 there).  The force is -m * acceleration along "
+               "`axis`: toward -s for acceleration > 0 (the axis points up); a negative "
+               "acceleration pulls toward +s (an axis that points down).  The axis must have "
+               "boundary = 'box' (a uniform force is not periodic); not on a radial grid.")
+    parameters = {
+        "acceleration": Field("acceleration", f"{sc.g!r} m/s^2", physics=True,
+                              doc="free-fall acceleration g in [units] length/time^2 (default: "
+                                  "standard gravity 9.80665 m/s^2); negative pulls toward +s"),
+        "axis": Field("str", None, "vertical axis, pointing up (default: the last Cartesian axis)"),
+    }
+
+    def axis_index(self) -> int:
+        """Index of the vertical axis: ``axis``, or the grid's last axis."""
+        names = self.ctx.grid.names
+        axis = self.p.get("axis") or names[-1]
+        if axis not in names:
+            raise JobError(f"{self.ctx.field}.axis",
+                           f"{axis!r} is not an axis of this grid ({', '.join(names)})")
+        return names.index(axis)
+
+    def validate(self):
+        grid, f = self.ctx.grid, self.ctx.field
+        if grid.radial:
+            raise JobError(f"{f}.kind", "gravity has a direction and a radial grid has none; "
+                                        "use a Cartesian grid (x, y, z) with a box axis")
+        i = self.axis_index()
+        ax = grid.axes[i]
+        if ax.boundary == "periodic":
+            raise JobError(f"grid.{ax.name}.boundary",
+                           f"gravity along {ax.name} ({f}) needs a box axis: a uniform force is not "
+                           f"periodic (V jumps by m g L at the wrap); set grid.{ax.name}.boundary = "
+                           "'box' (or grid.boundary = 'box')")
+
+    def force(self) -> np.ndarray:
+        """The uniform force -grad V per grid axis (hartree/bohr): -m g on
+        the vertical axis, 0 on the others."""
+        out = np.zeros(self.ctx.grid.ndim)
+        out[self.axis_index()] = -self.ctx.mass * self.p["acceleration"]
+        return out
+
+    def static(self, mesh):
+        s = mesh[self.ctx.grid.names[self.axis_index()]]
+        return self.ctx.mass * self.p["acceleration"] * s
 
 
 def _each(value, n: int) -> list:
