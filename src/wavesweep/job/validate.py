@@ -526,9 +526,12 @@ def _interaction(raw, units, ndim, radial: bool) -> dict:
             where = "2D" if key == "axial_omega" else "1D"
             found.add(JobError(f"interaction.{key}", f"used only with scattering_length on a {where} grid; "
                                                      "remove it"))
+    schema, later = interaction_schema(ndim), ()
+    if ndim is None:   # the grid is wrong: the coupling's unit (energy x length^d) waits for it
+        schema, later = {k: f for k, f in schema.items() if k != "coupling"}, ("coupling",)
     t = None
     with found.check():
-        t = validate_table(raw, interaction_schema(ndim), "interaction", units, ndim)
+        t = validate_table(raw, schema, "interaction", units, ndim, extra_ok=later)
     found.raise_if_any()
     return t
 
