@@ -30,11 +30,12 @@ from .errors import JobError
 from .fft import AUTO, PLAIN, make_transform
 from .grid import Axis, Grid
 from .hamiltonian import Hamiltonian, static_potential_of
-from .interaction import COUPLING_KINDS, ContactInteraction
+from .interaction import ContactInteraction
 from .io.record import (LANCZOS_MAX_POINTS, RECORD_VERSION, RecordedAbsorber, RecordedDetector, RecordedLayer,
                         RecordedRun, classical_share, layer_edge, layer_holding, packet_side_positions, result_name,
                         side_probability)
 from .job import Job, grid_axes, job_from_dict
+from .job.schemas import interaction_schema
 from .marginals import free_space_marginals
 from .observables import Detector, Observer, recorded_scalars
 from .potentials import PotentialContext, make_term
@@ -103,11 +104,7 @@ class Model:
         if table is None:
             return None
         nd = self.grid.ndim
-        schema = {"atoms": "number", "coupling": COUPLING_KINDS[nd], "scattering_length": "length",
-                  "axial_omega": "frequency", "transverse_omega": "frequency"}
-        au = {key: (float(table[key]) if kind == "number" else
-                    self.units.to_atomic(table[key], kind, f"interaction.{key}"))
-              for key, kind in schema.items() if table.get(key) is not None}
+        au = to_atomic(table, interaction_schema(nd), self.units, "interaction", nd)
         return ContactInteraction.from_table(au, self.mass, nd)
 
     def _grid(self, g) -> Grid:
