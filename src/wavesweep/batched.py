@@ -297,7 +297,8 @@ class _Lane:
         self.prop = s0.scheme(s0.hamiltonian, s0.dt, transform, [s.setup.absorber for s in sims], s0.dtype,
                               members=nb)
         self.observer = Observer(s0.grid, s0.mass, s0.observer_transform(members=nb, threads=transform.threads),
-                                 s0.detectors, np.stack([s.setup.psi0 for s in sims]), members=nb)
+                                 s0.detectors, np.stack([s.setup.psi0 for s in sims]), members=nb,
+                                 contact=s0.contact if s0.interaction is not None else None)
         self.psi = self.prop.load(np.stack([b.psi for b in books]))
         for b in books:
             b.psi = None

@@ -55,10 +55,16 @@ def split_time_dependent(terms, mesh) -> tuple[list, list]:
 
 class Hamiltonian:
     """Parameters: grid, mass (m_e), list of potential terms, absorber rate
-    W (hartree, full grid shape, or None)."""
+    W (hartree, full grid shape, or None), and ``contact`` g N (hartree
+    bohr^d) of a condensate's mean-field term g N |psi|^2 (0: linear; see
+    :mod:`wavesweep.interaction`).  The operators below are the linear part:
+    the mean-field term depends on psi and enters the split-operator kicks
+    and the observables."""
 
-    def __init__(self, grid, mass: float, terms, absorber_rate=None, static_potential=None):
+    def __init__(self, grid, mass: float, terms, absorber_rate=None, static_potential=None,
+                 contact: float = 0.0):
         self.grid = grid
+        self.contact = float(contact)
         self.mass = float(mass)
         self.terms = list(terms)
         mesh = grid.mesh()

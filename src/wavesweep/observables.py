@@ -10,7 +10,11 @@
   axis, integrated over the other axes (Parseval in transform space);
 * on a 1D (or radial) grid, psi(x_d) at each detector, the amplitude whose
   time-energy Fourier transform gives energy-resolved transmission;
-* autocorrelation <psi(0)|psi(t)>.
+* autocorrelation <psi(0)|psi(t)>;
+* with a condensate's contact interaction g N |psi|^2 (:mod:`wavesweep.interaction`),
+  the energy is the Gross-Pitaevskii functional per atom,
+  (<T> + <V> + (g N / 2) sum |psi|^4 dV) / norm, and the chemical potential
+  (<T> + <V> + g N sum |psi|^4 dV) / norm is recorded beside it.
 """
 from __future__ import annotations
 
@@ -22,7 +26,8 @@ import scipy.fft
 
 from .kernels import view4
 
-__all__ = ["Detector", "Observer", "Scalar", "SCALARS", "spectral_derivative"]
+__all__ = ["Detector", "Observer", "Scalar", "SCALARS", "CHEMICAL_POTENTIAL", "recorded_scalars",
+           "spectral_derivative"]
 
 
 class Scalar(NamedTuple):
@@ -47,6 +52,16 @@ SCALARS: list[Scalar] = [
     Scalar("p_mean", "momentum", "mean momentum along {axis}"),
     Scalar("energy", "energy", "<H> of the probability on the grid, per unit norm"),
 ]
+
+# Recorded only by runs with an [interaction] (a job without one keeps its variables).
+CHEMICAL_POTENTIAL = Scalar("chemical_potential", "energy",
+                            "chemical potential <T> + <V> + g N <|psi|^2>, per unit norm")
+
+
+def recorded_scalars(interacting: bool = False) -> list[Scalar]:
+    """The scalars a run records: :data:`SCALARS`, and the chemical
+    potential when the run has a mean-field interaction."""
+    return SCALARS + [CHEMICAL_POTENTIAL] if interacting else SCALARS
 
 
 @dataclass(frozen=True)
@@ -95,15 +110,21 @@ class Observer:
     periodic first axis, the mean momentum; each detector is one more pass
     (spectral interpolation along its axis).  The reductions sum in float64
     whatever the precision of psi; the detector products (BLAS) run in
-    psi's precision (complex64 in single-precision runs)."""
+    psi's precision (complex64 in single-precision runs).
 
-    def __init__(self, grid, mass: float, transform, detectors=(), psi0=None, members=None):
+    ``contact`` is g N (hartree bohr^d) of a mean-field interaction, or None
+    for a linear run (no chemical potential; 0.0 records it, equal to the
+    energy).  It costs one more pass over psi (sum |psi|^4)."""
+
+    def __init__(self, grid, mass: float, transform, detectors=(), psi0=None, members=None,
+                 contact: float | None = None):
         from .kernels import observe_kernels_for   # lazy: numba kernels load on first use
         self.grid = grid
         self.mass = mass
         self.transform = transform
         self.members = members
         self.detectors = list(detectors)
+        self.contact = None if contact is None else float(contact)
         self.records_amplitude = grid.ndim == 1
         self.dv = grid.cell_volume
         self._nb = members or 1
@@ -161,6 +182,13 @@ class Observer:
         x_rel = dens[:, 1] * dv / safe
         x2 = dens[:, 2] * dv / safe - x_rel**2
         energy = (spec[:, 0] * par * dv + dens[:, 3] * dv) / safe
+        if self.contact is not None:
+            # the mean-field energy per atom: (g N / 2) sum |psi|^4 dV, over the norm
+            rho = psi4.real.astype(float)**2 + psi4.imag.astype(float)**2
+            quartic = (rho * rho).reshape(nb, -1).sum(axis=1) * dv
+            mean_field = self.contact * quartic / safe
+            chemical = energy + mean_field
+            energy = energy + 0.5 * mean_field
         if self._momentum_from_spectrum:
             p_mean = spec[:, 1] * par * dv / safe
         else:
@@ -175,6 +203,8 @@ class Observer:
                  "x_std": float(np.sqrt(max(x2[b], 0.0))), "p_mean": float(p_mean[b]),
                  "energy": float(energy[b]),
                  "flux": flux[b].copy()}
+            if self.contact is not None:
+                r["chemical_potential"] = float(chemical[b])
             if self.records_amplitude:
                 r["detector_psi"] = amp[b].copy()
             if self._psi0 is not None:

@@ -31,7 +31,6 @@ from .io.record import record_checksum
 from .io.recorder import ResultWriter
 from .job import Job, job_from_dict, load_job
 from .kernels import density_of
-from .observables import SCALARS
 from .setup import AXIS_LONG, Setup, analysis_record, final_detector_values
 
 __all__ = ["Simulation", "RunBook", "run_job", "progress_bar"]
@@ -173,7 +172,7 @@ class Simulation:
         book.conv = conv
         values["absorbed"] = np.array(absorbed, dtype=float, copy=True)
         row = dict(values)
-        for scalar in SCALARS:   # each by its declared quantity kind
+        for scalar in s.scalars:   # each by its declared quantity kind
             if scalar.kind:
                 row[scalar.name] *= conv[scalar.kind]
         row["flux"] = values["flux"] * conv["flux"]
@@ -281,7 +280,7 @@ class Simulation:
     # -- helpers ---------------------------------------------------------------
     def _converters(self):
         u = self.setup.units
-        return {**{s.kind: 1 / u.factor(s.kind) for s in SCALARS if s.kind},   # the recorded scalars' kinds
+        return {**{s.kind: 1 / u.factor(s.kind) for s in self.setup.scalars if s.kind},   # the recorded scalars' kinds
                 "length": 1 / u.factor("length"), "energy": 1 / u.factor("energy"),
                 "momentum": 1 / u.factor("momentum"), "flux": u.factor("time"),
                 "amplitude": math.sqrt(u.factor("length"))}   # |psi|^2 dx is invariant
@@ -334,6 +333,7 @@ class Simulation:
             "faces": [layer.name for layer in s.absorber.layers],
             "potential": s.hamiltonian.static_potential / s.units.factor("energy"),
             "autocorrelation": True,
+            "scalars": s.scalars,
             "detector_amplitude": s.grid.ndim == 1,
             "snapshot_psi": bool(s.job.table["record"].get("snapshot_psi")),
             # record.column: (axis index, its spacing in the job's length unit)

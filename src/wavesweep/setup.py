@@ -30,12 +30,14 @@ from .errors import JobError
 from .fft import AUTO, PLAIN, make_transform
 from .grid import Axis, Grid
 from .hamiltonian import Hamiltonian, static_potential_of
+from .interaction import ContactInteraction
 from .io.record import (LANCZOS_MAX_POINTS, RECORD_VERSION, RecordedAbsorber, RecordedDetector, RecordedLayer,
                         RecordedRun, classical_share, layer_edge, layer_holding, packet_side_positions, result_name,
                         side_probability)
 from .job import Job, grid_axes, job_from_dict
+from .job.schemas import interaction_schema
 from .marginals import free_space_marginals
-from .observables import SCALARS, Detector, Observer
+from .observables import Detector, Observer, recorded_scalars
 from .potentials import PotentialContext, make_term
 from .propagators import scheme_class
 from .schema import to_atomic
@@ -85,10 +87,25 @@ class Model:
         self.charge = None if charge is None else u.to_atomic(charge, "charge", "particle.charge")
         self.grid = self._grid(t["grid"]) if grid is None else grid
         self.terms = [self._term(i, p) for i, p in enumerate(t["potential"])]
+        self.interaction = self._interaction(t.get("interaction"))
 
     @functools.cached_property
     def hamiltonian(self) -> Hamiltonian:
-        return Hamiltonian(self.grid, self.mass, self.terms, static_potential=self.hamiltonian_static_potential())
+        return Hamiltonian(self.grid, self.mass, self.terms, static_potential=self.hamiltonian_static_potential(),
+                           contact=self.contact)
+
+    @property
+    def contact(self) -> float:
+        """g N (hartree bohr^d) of the job's [interaction]; 0 without one."""
+        return 0.0 if self.interaction is None else self.interaction.strength
+
+    def _interaction(self, table) -> ContactInteraction | None:
+        """The [interaction] in atomic units (None without the table)."""
+        if table is None:
+            return None
+        nd = self.grid.ndim
+        au = to_atomic(table, interaction_schema(nd), self.units, "interaction", nd)
+        return ContactInteraction.from_table(au, self.mass, nd)
 
     def _grid(self, g) -> Grid:
         u, axes = self.units, []
@@ -136,7 +153,9 @@ class Setup(Model):
             self.job = job.with_absorber(absorber)
         self.absorber = self._absorber(absorber)
         self.hamiltonian = Hamiltonian(self.grid, self.mass, self.terms, self.absorber.rate,
-                                       static_potential=self.hamiltonian_static_potential())
+                                       static_potential=self.hamiltonian_static_potential(),
+                                       contact=self.contact)
+        self.scalars = recorded_scalars(interacting=self.interaction is not None)
         self.detectors = [self._detector(i, d) for i, d in enumerate(t["detector"])]
         self.fft_backend = fft or ev.get("fft", AUTO)
         self.threads = threads or ev.get("threads")
@@ -259,13 +278,14 @@ class Setup(Model):
         """Observables use a transform of their own (same backend and
         precision as the run's): they must never touch the propagator's
         buffer, which holds psi."""
-        return Observer(self.grid, self.mass, self.observer_transform(), self.detectors, self.psi0)
+        return Observer(self.grid, self.mass, self.observer_transform(), self.detectors, self.psi0,
+                        contact=self.contact if self.interaction is not None else None)
 
     def unit_labels(self) -> dict:
         """Unit labels by quantity kind: those of the recorded scalars
         (observables.SCALARS), the axes, densities and fluxes."""
         u = self.units
-        return {**{s.kind: u.unit_label(s.kind) for s in SCALARS if s.kind},
+        return {**{s.kind: u.unit_label(s.kind) for s in self.scalars if s.kind},
                 "length": u.unit_label("length"), "time": u.unit_label("time"),
                 "energy": u.unit_label("energy"), "momentum": u.unit_label("momentum"),
                 "density": f"{u.unit_label('length')}-{self.grid.ndim}",

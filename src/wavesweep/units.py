@@ -145,6 +145,9 @@ KINDS: dict[str, Kind] = dict([
     _k("electric_field", (1, 1, -2, -1), ("energy", 1), ("charge", -1), ("length", -1)),
     _k("energy_per_length", (1, 1, -2, 0), ("energy", 1), ("length", -1)),
     _k("energy_length", (1, 3, -2, 0), ("energy", 1), ("length", 1)),
+    # a contact coupling g in 2D and 3D (energy x length^d; in 1D energy_length)
+    _k("energy_area", (1, 4, -2, 0), ("energy", 1), ("length", 2)),
+    _k("energy_volume", (1, 5, -2, 0), ("energy", 1), ("length", 3)),
 ])
 
 _DEFAULT_NAMES = {"length": "bohr", "energy": "hartree", "time": "au_time",

@@ -199,6 +199,25 @@ job_case("fields", "gravity-on-a-radial-grid",
           "detector": None}, "potential.0.kind", "radial", commands=("run", "check", "levels"))
 case("fields", "toml-binary", RUN, "job.toml", job_text="\x00\x01\x02 not toml")
 
+# [interaction] (issue 15): the coupling given twice or not at all, the
+# confinement a reduced dimension needs, and linear-only schemes
+GAS = {"atoms": 1000, "scattering_length": 0.01, "transverse_omega": 0.1}
+GRID_2D = {"grid": {"y": {"min": -40.0, "max": 40.0, "points": 16}}, "potential": None,
+           "packet": {"center": [-10.0, 0.0], "width": [2.0, 2.0], "momentum": [1.0, 0.0]}}
+job_case("fields", "interaction-coupling-and-scattering-length",
+         {"interaction": {**GAS, "coupling": -0.001}}, "interaction.scattering_length", "not both")
+job_case("fields", "interaction-without-coupling", {"interaction": {"atoms": 1000}},
+         "interaction.coupling", "scattering_length")
+job_case("fields", "interaction-1d-without-transverse-omega",
+         {"interaction": {"atoms": 1000, "scattering_length": 0.01}}, "interaction.transverse_omega",
+         "required")
+job_case("fields", "interaction-2d-without-axial-omega",
+         {**GRID_2D, "interaction": {"atoms": 1000, "scattering_length": 0.01}}, "interaction.axial_omega",
+         "required")
+for scheme in ("chebyshev", "crank_nicolson"):
+    job_case("fields", f"interaction-with-{scheme}",
+             {"interaction": GAS, "evolve": {"scheme": scheme}}, "evolve.scheme", "[interaction]", "strang")
+
 
 # -- units ---------------------------------------------------------------------------
 job_case("units", "unknown-length-unit", {"units": {"length": "parsec-ish"}}, "units.length")

@@ -164,7 +164,7 @@ class ResultWriter:
     def _row_bytes(self) -> int:
         lay = self.layout
         per_detector = 3 if lay.get("detector_amplitude") else 1
-        return 8 * (1 + len(SCALARS) + 2 + per_detector * len(lay["detectors"]) + len(lay["faces"]))
+        return 8 * (1 + len(lay.get("scalars", SCALARS)) + 2 + per_detector * len(lay["detectors"]) + len(lay["faces"]))
 
     def _remaining_bytes(self) -> int | None:
         """Bytes of data the file still needs from its shapes (before
@@ -258,7 +258,7 @@ class ResultWriter:
         pot = self._var("potential", "f8", tuple(names), zlib=True, complevel=4)
         pot.units, pot.long_name = u["energy"], "static part of the potential V"
         pot[:] = np.asarray(lay["potential"])[tuple(slice(None, None, s) for _ in names)]
-        for scalar in SCALARS:   # declared with the observables
+        for scalar in lay.get("scalars", SCALARS):   # declared with the observables
             v = self._var(scalar.name, "f8", ("time",))
             v.units = u[scalar.kind] if scalar.kind else "1"
             v.long_name = scalar.long_name.format(axis=names[0])
@@ -388,7 +388,8 @@ class ResultWriter:
         i0, n = self._n_time, len(self._buf)
         ds = self.ds
         ds["time"][i0:i0 + n] = np.array([b["time"] for b in self._buf])
-        for key in [s.name for s in SCALARS] + ["autocorrelation_real", "autocorrelation_imag"]:
+        for key in [s.name for s in self.layout.get("scalars", SCALARS)] + ["autocorrelation_real",
+                                                                           "autocorrelation_imag"]:
             if key in ds.variables and key in self._buf[0]:
                 ds[key][i0:i0 + n] = np.array([b[key] for b in self._buf])
         if len(self.layout["detectors"]):

@@ -30,7 +30,8 @@ from ..schema import Field
 from ..states import DEFAULT_PACKET, PACKET_SCHEMAS, PACKETS
 from ..units import CYCLE_SYMBOLS, KINDS, UNITS, UnitSet
 from .document import Job
-from .schemas import ABSORBER, AXIS, DETECTOR, DETECTOR_POSITION, EVOLVE, GRID, PARTICLE, RECORD, TOP_LEVEL
+from .schemas import (ABSORBER, AXIS, DETECTOR, DETECTOR_POSITION, EVOLVE, GRID, INTERACTION, PARTICLE, RECORD,
+                      TOP_LEVEL)
 from .sweep import MODES
 
 __all__ = ["reference", "render_text", "topics", "physics_defaults", "PhysicsDefault", "default_findings",
@@ -49,6 +50,7 @@ TABLE_DOCS = {
     "record": "what the result file keeps, and how often",
     "detector": "planes where the probability current is recorded, one table each",
     "sweep": "a study: job fields to vary, one run per point",
+    "interaction": "the condensate's mean-field contact interaction (Gross-Pitaevskii); none: linear",
 }
 
 # [units] (read by UnitSet.from_table; the unit each base quantity is written in).
@@ -226,6 +228,14 @@ def _table_sections(name: str) -> list[dict]:
         return [_section("sweep", "[sweep]", doc, _keys(SWEEP, skip=())),
                 _section("sweep.range", '[sweep] "KEY" = { ... }', "a range of values",
                          _keys(SWEEP_RANGE, skip=()))]
+    if name == "interaction":
+        return [_section("interaction", "[interaction]", doc, _keys(INTERACTION, skip=()),
+                         "i hbar dpsi/dt = [T + V + g N |psi|^2] psi, sum |psi|^2 dV = 1",
+                         ["coupling is in energy x length^d on a d-dimensional grid (energy x length in 1D, "
+                          "x area in 2D, x volume in 3D)",
+                          "energy is the Gross-Pitaevskii functional per atom, <T> + <V> + (g N / 2) "
+                          "<|psi|^2>; the result also records chemical_potential, <T> + <V> + g N <|psi|^2>",
+                          "split-operator schemes only (strang, order4, order4_suzuki): the others are linear"])]
     raise KeyError(name)
 
 

@@ -7,8 +7,11 @@ the names of schemes and FFT backends are read from their registries
 a job is validated, so a registered one is accepted."""
 from __future__ import annotations
 
+from dataclasses import replace
+
 from ..fft import AUTO, backend_choices
 from ..grid import BOUNDARIES
+from ..interaction import COUPLING_KINDS
 from ..propagators import DEFAULT_SCHEME, SCHEMES
 from ..registry import Names
 from ..schema import Field
@@ -17,7 +20,7 @@ from ..schema import Field
 NOT_PHYSICS = {"evolve": ("fft", "threads")}
 
 TOP_LEVEL = ("title", "units", "particle", "grid", "potential", "packet", "evolve",
-             "absorber", "record", "detector", "sweep")
+             "absorber", "record", "detector", "sweep", "interaction")
 
 PARTICLE = {
     "mass": Field("mass", 1.0, positive=True, physics=True,
@@ -92,3 +95,27 @@ DETECTOR = {
 # The detector's position: one of the grid's axis names as the key.
 DETECTOR_POSITION = Field("length", None, doc="position of the detector plane on this axis "
                                               "(give exactly one axis)")
+# [interaction] (validated by validate._interaction): the coupling's kind
+# follows the grid's dimension (energy x length^d, COUPLING_KINDS).
+INTERACTION = {
+    "kind": Field("str", "contact", choices=("contact",),
+                  doc="contact: the mean-field (Gross-Pitaevskii) potential g N |psi|^2, psi normalised to 1"),
+    "atoms": Field("number", positive=True, doc="N, the number of atoms in the condensate"),
+    "coupling": Field("energy_length", None,
+                      doc="g in energy x length^d (d the grid's dimension); or give scattering_length"),
+    "scattering_length": Field("length", None,
+                               doc="s-wave scattering length a (negative: attractive): 3D g = 4 pi hbar^2 a / m; "
+                                   "2D g = sqrt(8 pi) hbar^2 a / (m a_z), a_z = sqrt(hbar / (m axial_omega)); "
+                                   "1D g = 2 hbar transverse_omega a"),
+    "axial_omega": Field("frequency", None, positive=True,
+                         doc="2D with scattering_length: angular frequency of the trap along the frozen axis"),
+    "transverse_omega": Field("frequency", None, positive=True,
+                              doc="1D with scattering_length: angular frequency of the transverse trap"),
+}
+
+
+def interaction_schema(ndim: int | None) -> dict:
+    """[interaction]'s keys on a grid of ``ndim`` axes (the coupling's unit kind)."""
+    if ndim not in COUPLING_KINDS:
+        return INTERACTION
+    return {**INTERACTION, "coupling": replace(INTERACTION["coupling"], kind=COUPLING_KINDS[ndim])}

@@ -30,7 +30,8 @@ from ..states import DEFAULT_PACKET, PACKET_SCHEMAS, PACKETS
 from ..units import UnitSet
 from .document import Job, grid_axes, job_number
 from .dotted import apply_overrides, file_position, parse_override
-from .schemas import ABSORBER, AXIS, DETECTOR, DETECTOR_POSITION, EVOLVE, PARTICLE, RECORD, TOP_LEVEL
+from .schemas import (ABSORBER, AXIS, DETECTOR, DETECTOR_POSITION, EVOLVE, PARTICLE, RECORD, TOP_LEVEL,
+                      interaction_schema)
 from .sweep import apply_sweep_overrides, refuse_swept_overrides
 
 __all__ = ["load_job", "read_job_file", "job_from_dict", "grid_object"]
@@ -181,6 +182,9 @@ def job_from_dict(raw: dict, overrides=(), source: Path | None = None) -> Job:
     if axes or "grid" in out:   # without any axis the position keys cannot be told
         with found.check():
             out["detector"] = _detectors(raw.get("detector", []), u, extents, axes)
+    if "interaction" in raw:   # absent: nothing added, the job (and its run id) as before
+        with found.check():
+            out["interaction"] = _interaction(raw["interaction"], u, ndim, "r" in layout)
     if "sweep" in raw:
         with found.check():
             if not isinstance(raw["sweep"], dict):
@@ -490,6 +494,46 @@ def _absorber_fits(t, units, extents, axes) -> None:
             raise JobError("absorber.thickness", f"{'two layers do' if both else 'the layer does'} not fit on the {name} axis "
                                                  f"(from {min_text!r} to {max_text!r}); "
                                                  "make them thinner or the grid longer")
+
+
+def _interaction(raw, units, ndim, radial: bool) -> dict:
+    """The [interaction] table: N and either the coupling g (energy x
+    length^d) or the scattering length with the confinement its
+    dimension needs (2D: axial_omega, 1D: transverse_omega)."""
+    if not isinstance(raw, dict):
+        raise JobError("interaction", "must be a table such as { kind = 'contact', atoms = 1e4, "
+                                      "scattering_length = '5.3 nm' }")
+    if radial:
+        raise JobError("interaction", "a contact interaction needs a Cartesian grid (x, y, z): a radial grid "
+                                      "holds u = r R(r); remove [interaction] or use grid.x, y, z")
+    found = ErrorCollector()
+    given = {k for k in ("coupling", "scattering_length") if k in raw}
+    if len(given) == 2:
+        found.add(JobError("interaction.scattering_length", "give either coupling or scattering_length, "
+                                                            "not both; remove one"))
+    elif not given:
+        found.add(JobError("interaction.coupling", "missing; give coupling = g (energy x length^d) or "
+                                                   "scattering_length = a"))
+    confinement = {2: "axial_omega", 1: "transverse_omega"}
+    if given == {"scattering_length"} and ndim in confinement and confinement[ndim] not in raw:
+        what = "the trap along the frozen axis, a_z = sqrt(hbar / (m omega_z))" if ndim == 2 else \
+            "the transverse trap, g = 2 hbar omega_perp a"
+        found.add(JobError(f"interaction.{confinement[ndim]}",
+                           f"required with scattering_length on a {ndim}D grid: the angular frequency of {what} "
+                           "(radians per job time unit); add it, or give coupling = g"))
+    for key in ("axial_omega", "transverse_omega"):
+        if key in raw and ndim is not None and (confinement.get(ndim) != key or "scattering_length" not in raw):
+            where = "2D" if key == "axial_omega" else "1D"
+            found.add(JobError(f"interaction.{key}", f"used only with scattering_length on a {where} grid; "
+                                                     "remove it"))
+    schema, later = interaction_schema(ndim), ()
+    if ndim is None:   # the grid is wrong: the coupling's unit (energy x length^d) waits for it
+        schema, later = {k: f for k, f in schema.items() if k != "coupling"}, ("coupling",)
+    t = None
+    with found.check():
+        t = validate_table(raw, schema, "interaction", units, ndim, extra_ok=later)
+    found.raise_if_any()
+    return t
 
 
 def _face_names_of(grid) -> list[str]:

@@ -32,6 +32,9 @@ class Chebyshev(Propagator):
 
     @classmethod
     def check_supported(cls, hamiltonian, absorber, grid):
+        if getattr(hamiltonian, "contact", 0.0):
+            raise JobError("evolve.scheme", f"{cls.name!r} is linear and cannot step the [interaction] "
+                                            f"(g N |psi|^2); use {other_schemes(cls, hamiltonian, absorber, grid)}")
         if hamiltonian.time_dependent:
             raise JobError("evolve.scheme", f"{cls.name!r} needs a time-independent Hamiltonian; this job has "
                                             "a time-dependent potential: use "

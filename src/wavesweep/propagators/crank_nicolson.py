@@ -28,6 +28,9 @@ class CrankNicolson(Propagator):
 
     @classmethod
     def check_supported(cls, hamiltonian, absorber, grid):
+        if getattr(hamiltonian, "contact", 0.0):
+            raise JobError("evolve.scheme", f"{cls.name!r} is linear and cannot step the [interaction] "
+                                            f"(g N |psi|^2); use {other_schemes(cls, hamiltonian, absorber, grid)}")
         if grid.ndim != 1:
             raise JobError("evolve.scheme", f"{cls.name!r} is 1D only; in 2D/3D use "
                                             f"{other_schemes(cls, hamiltonian, absorber, grid)}")
