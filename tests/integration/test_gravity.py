@@ -134,3 +134,21 @@ def test_check_sees_the_momentum_a_long_drop_gains():
     table["grid"]["x"]["points"] = 2559
     bad = [f.message for f in assess(setup_of(table)) if f.level != "ok"]
     assert not bad, bad
+
+
+def test_arrivals_say_the_free_flight_estimate_is_no_reference_under_gravity(tmp_path):
+    """The classical column of `arrivals` is free flight; under gravity that
+    is off by orders of magnitude (190 ms against 2.3 ms was seen for a
+    drop), so the detector's notes say so rather than print it silently."""
+    from conftest import make_job
+
+    from wavesweep.analysis.arrivals import arrival_times
+    from wavesweep.run import Simulation
+
+    table = {**DROP, "detector": [{"name": "floor", "x": -3.0}], "evolve": {**DROP["evolve"], "duration": 1.5}}
+    path = Simulation(make_job(table)).run(tmp_path, progress=False)
+    floor = arrival_times(path)["floor"]
+    assert any("free-flight" in n and "gravity" in n for n in floor.warnings)
+    free = {**table, "potential": [{"kind": "free"}]}
+    path = Simulation(make_job(free)).run(tmp_path / "free", progress=False)
+    assert not any("free-flight" in n for n in arrival_times(path)["floor"].warnings)

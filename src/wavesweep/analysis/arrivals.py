@@ -32,6 +32,7 @@ the trapezoidal rule on the (uniform) samples.
 from __future__ import annotations
 
 import math
+import tomllib
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -39,6 +40,7 @@ import numpy as np
 from ..errors import JobError
 from ..io.record import classical_share, layer_edge, layer_holding, packet_side_positions, side_probability
 from ..io.results import open_result, result_units, source_name
+from ..potentials import REGISTRY
 from .recorded import as_record
 from .recorded import run_record as read_record
 
@@ -255,6 +257,7 @@ def _arrivals(ds, detector, classical=True, warnings=True, curves=True):
     if len(t) < 3:
         raise JobError("RUN.nc", f"{source_name(ds)}: the run holds {len(t)} samples; arrival times need at least 3")
     flux = np.asarray(ds["flux"].values, float)
+    forced = _uniform_forces(ds)
     out = {}
     for j, name in enumerate(names):
         if detector is not None and name != detector:
@@ -336,9 +339,24 @@ def _arrivals(ds, detector, classical=True, warnings=True, curves=True):
                                 f"; {to_come:.3g} is still on its way" if stats["truncated"] else ""))
         if not cl_prob > NOTHING_ARRIVED:
             stats["classical_mean"] = math.nan
+        if classical and forced:
+            notes.append(f"detector {name!r}: classical_mean is the free-flight estimate, and this run's "
+                         f"{' and '.join(forced)} acts all along the path: it is no reference here")
         out[name] = ArrivalDistribution(name, definition, t, rho, cl * uc["time"], stats,
                                         uc["time_label"], notes)
     return out
+
+
+def _uniform_forces(ds) -> list[str]:
+    """Kinds of the run's potential terms that push the packet all along its
+    path (:attr:`~wavesweep.potentials.PotentialTerm.uniform_force`), read
+    from the job text the result stores."""
+    try:
+        table = tomllib.loads(str(ds.attrs.get("job", "")))
+    except tomllib.TOMLDecodeError:
+        return []
+    kinds = [t.get("kind") for t in table.get("potential", []) if isinstance(t, dict)]
+    return sorted({k for k in kinds if k in REGISTRY and REGISTRY[k].uniform_force})
 
 
 def recorded_warnings(record) -> list[str]:

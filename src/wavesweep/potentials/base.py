@@ -60,6 +60,9 @@ class PotentialTerm:
     kind: ClassVar[str] = ""
     parameters: ClassVar[dict[str, Field]] = {}
     time_dependent: ClassVar[bool] = False
+    # a force that acts everywhere along the packet's path (gravity): a free-flight
+    # estimate of arrival times means nothing then, and analysis says so
+    uniform_force: ClassVar[bool] = False
     summary: ClassVar[str] = ""
     formula: ClassVar[str] = ""
 

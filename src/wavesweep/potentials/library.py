@@ -374,6 +374,7 @@ class Gravity(PotentialTerm):
     """
 
     kind = "gravity"
+    uniform_force = True
     summary = ("uniform gravity V = m g s along `axis` (default: the last Cartesian axis), "
                "pulling toward -s; g defaults to standard gravity")
     formula = ("V(r) = m * acceleration * s, m = particle.mass, s the coordinate along `axis` "
