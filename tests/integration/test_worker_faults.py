@@ -284,7 +284,9 @@ def test_a_60_run_study_survives_two_kills_and_a_full_disk(tmp_path, request):
         return sum("was killed by SIGKILL" in (e["note"] or "") for e in q.history("target", run_id))
     # the disk, not the run, failed: only kills spent attempts (a run may be both)
     assert parked and all(r["attempts"] == kills_of(r["run_id"]) for r in parked), out
-    assert not [r for r in st["runs"] if r["state"] in ("running", "failed")]
+    stuck = [r for r in st["runs"] if r["state"] in ("running", "failed")]
+    assert not stuck, [(r["run_id"], r["state"], r["attempts"], r["reason"],
+                        [(e["old"], e["new"], e["note"]) for e in q.history("target", r["run_id"])]) for r in stuck]
     text = api.format_status(st)
     # the reason says disk full: the write that failed ("cannot write ...") or,
     # when the worker's own record of it could not be written either, the
