@@ -54,11 +54,11 @@ def test_bright_soliton_is_the_ground_state_of_the_focusing_equation():
     exact = 1.0 / np.cosh(x / XI) / math.sqrt(2 * XI)
     psi = setup.psi0
     assert np.max(np.abs(psi.imag)) == 0.0
-    # measured: 6e-11 of the peak
+    # measured: 3.8e-9 of the peak (the walls at 40 bohr)
     assert np.max(np.abs(np.abs(psi) - exact)) < 1e-6 * exact.max()
     obs = setup.make_observer()
     values = obs.measure(psi, setup.hamiltonian.potential(0.0))
-    # measured: 5e-12 (mu), 4e-16 (E)
+    # measured: 4.2e-11 (mu), 1.3e-15 (E)
     assert abs(values["chemical_potential"] / MU - 1) < 1e-8
     assert abs(values["energy"] / (MU / 3) - 1) < 1e-8
 
@@ -71,6 +71,7 @@ def test_boosted_soliton_moves_at_p_over_m_without_changing_shape():
     psi = prop.step(prop.load(setup.psi0), 200)
     x = setup.grid.coordinate(0)
     moved = 1.0 / (2 * XI) / np.cosh((x - 4.0) / XI) ** 2
+    # measured: 9.4e-10 of the peak, centre to 9e-11 bohr
     assert np.max(np.abs(np.abs(psi) ** 2 - moved)) < 1e-6 * moved.max()
     values = setup.make_observer().measure(psi, setup.hamiltonian.potential(prop.t))
     assert abs(values["x_mean"] - 4.0) < 1e-8
@@ -91,7 +92,7 @@ def test_a_linear_job_gives_eigenstate_zero():
     h, psi = relaxed.hamiltonian, relaxed.psi0
     dv = relaxed.grid.cell_volume
     mean_energy = float(np.real(np.vdot(psi, h.apply_static(psi, t=0.0)))) * dv
-    # measured: 1e-15
+    # measured: 2e-16 (energy), 1.5e-14 (1 - overlap)
     assert abs(mean_energy / energies[0] - 1) < 1e-10
     overlap = abs(np.vdot(exact.psi0, psi)) * dv
     assert 1 - overlap < 1e-10
@@ -112,7 +113,8 @@ def test_thomas_fermi_chemical_potential_is_approached_in_a_harmonic_trap():
         g_n = mu_tf**1.5 * 4 * math.sqrt(2) / 3
         psi, mu, energy, info = _harmonic_gpe(g_n)
         gaps.append(abs(mu / mu_tf - 1))
-    # measured: see the report
+    # measured (512 points on [-16, 16]): mu / mu_TF - 1 = 8.9e-3 at mu_TF = 5, 2.5e-3 at 10,
+    # 7.0e-4 at 20, 1.3e-4 at 50, 3.5e-5 at 100
     assert gaps[1] < 0.01, gaps
     assert gaps[1] < gaps[0], gaps
 
