@@ -16,6 +16,7 @@ Sources of the numbers:
 """
 from __future__ import annotations
 
+import json
 import math
 
 import numpy as np
@@ -126,3 +127,29 @@ def test_a_relaxation_that_cannot_settle_is_refused():
     with pytest.raises(JobError) as caught:
         ground_state(Hamiltonian(grid, 1.0, [], contact=G_N), 1e-300, max_steps=2000)
     assert caught.value.field == "packet.tolerance"
+
+
+def test_levels_reports_the_condensate_ground_state(tmp_path, capsys):
+    """``levels --json`` on an interacting job adds the ground state's
+    chemical_potential and energy (per atom) in the job's energy unit: the
+    soliton's mu = -1/8 hartree and E = mu / 3 (Zakharov & Shabat), here in
+    eV (CODATA hartree, scipy.constants)."""
+    import scipy.constants as sc
+    import tomli_w
+
+    from wavesweep.cli import main
+
+    table = {"units": {"energy": "eV", "length": "bohr"},
+             "grid": {"x": {"min": -HALF_LENGTH, "max": HALF_LENGTH, "points": POINTS}, "boundary": "box"},
+             "interaction": {"atoms": ATOMS,
+                             "coupling": G_N / ATOMS * sc.physical_constants["Hartree energy in eV"][0]},
+             "packet": {"kind": "gaussian", "center": 0.0, "width": 2.0},
+             "evolve": {"dt": 0.02, "duration": 1.0}, "record": {"every": 1.0, "snapshot_every": 1.0}}
+    path = tmp_path / "soliton.toml"
+    path.write_text(tomli_w.dumps(table))
+    assert main(["levels", str(path), "--count", "1", "--json"]) == 0
+    body = json.loads(capsys.readouterr().out)
+    hartree_ev = sc.physical_constants["Hartree energy in eV"][0]
+    assert body["energy_units"] == "eV"
+    assert abs(body["chemical_potential"] / (MU * hartree_ev) - 1) < 1e-8
+    assert abs(body["energy"] / (MU / 3 * hartree_ev) - 1) < 1e-8
