@@ -589,11 +589,11 @@ def _plot(args) -> int:
 def _levels(args) -> int:
     # lazy: each command loads only what it needs (every command's start-up)
     from .eigen import DEGENERATE_TOL, degenerate_groups
-    from .analysis.spectra import (autocorrelation_levels, check_states_path,
+    from .analysis.spectra import (autocorrelation_levels, check_states_path, condensate_ground_state,
                                    level_errors, stationary_states, write_states)
 
     member = {}   # level -> the degenerate level it belongs to (job files only)
-    errors = estimate = None
+    errors = estimate = condensate = None
     if args.from_run is not None:
         if args.job is not None:
             raise JobError("--from", "give either JOB.toml or --from RUN.nc, not both")
@@ -650,6 +650,11 @@ def _levels(args) -> int:
         ef = model.units.factor("energy")
         energies, errors, weights = estimate.energies / ef, estimate.errors / ef, None
         notes = [f"{estimate.refine}: {estimate.advice}"] if estimate.advice else []
+        if model.interaction is not None:   # the condensate's ground state: mu and E per atom
+            mu, energy, _ = condensate_ground_state(model)
+            condensate = (mu / ef, energy / ef)
+            notes.insert(0, "the levels are those of T + V without the mean field g N |psi|^2; the chemical "
+                            "potential and energy are the condensate ground state's (imaginary time)")
         if swept:
             notes.insert(0, f"sweep: the levels are those of the job without its [sweep] ({', '.join(swept)} "
                             "as written outside it, or as --set); --set them for a point of the sweep")
@@ -662,6 +667,8 @@ def _levels(args) -> int:
             body["energy_errors"] = [float(d) if math.isfinite(d) else None for d in errors]
             body["refine"] = estimate.refine
             body["extrapolated"] = [bool(x) for x in estimate.extrapolated]
+        if condensate is not None:
+            body["chemical_potential"], body["energy"] = condensate
         print(json.dumps(body))
     else:
         head = f"{'level':>5}  {'energy (' + units + ')':>22}"
@@ -673,6 +680,9 @@ def _levels(args) -> int:
             row += f"  {errors[n]:>9.2g}" if errors is not None else ""
             row += f"  {weights[n]:>12.6g}" if weights is not None else ""
             print((row + f"  {member[n]}") if n in member else row)
+        if condensate is not None:
+            print(f"ground state with the interaction: chemical potential {condensate[0]:.12g} {units}, "
+                  f"energy per atom {condensate[1]:.12g} {units}")
     if args.from_run is None and args.states:
         sys.stdout.flush()
         write_states(args.states, model, estimate.grid_energies, states,   # JobError: exit 2, one line

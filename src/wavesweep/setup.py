@@ -173,6 +173,8 @@ class Setup(Model):
         if cls.trap and table.get(cls.trap) is not None:
             # the trap's own terms, named under the packet in messages
             p["trap_terms"] = [self._term(i, tab, f"{name}.{cls.trap}") for i, tab in enumerate(table[cls.trap])]
+        if cls.interacting:   # the state depends on the atoms' interaction (g N)
+            p["contact"] = self.contact
         return p
 
     def energy_window(self, axis: int, face: str) -> tuple[float, float]:

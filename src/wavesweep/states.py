@@ -14,6 +14,12 @@
   :func:`wavesweep.eigen.eigenpairs`; optionally boosted,
   psi(r) exp(i p.r) (``momentum``, per axis), which adds p to <p>.  A level
   that is degenerate has no unique state and is refused.
+* ``ground_state``: the lowest state of the job's Hamiltonian at t = 0
+  including its [interaction] (Gross-Pitaevskii; g N from the set-up in
+  ``packet["contact"]``), or of the trap in its own ``potential`` tables with
+  the job's interaction, by imaginary time to a relative ``tolerance`` on mu
+  (:func:`wavesweep.imaginary_time.ground_state`); boosted by ``momentum`` as
+  ``eigenstate``.  Without an interaction it is ``eigenstate``, n = 0.
 
 Every state is normalised on the grid.  A packet whose analytic norm is not
 on the grid (centre outside, or cut by an edge) is an error.
@@ -30,6 +36,7 @@ import numpy as np
 from .eigen import degenerate_groups, eigenpairs
 from .errors import JobError
 from .hamiltonian import Hamiltonian
+from .imaginary_time import DEFAULT_TOLERANCE, ground_state
 from .io.paths import input_file
 from .marginals import momentum_marginal
 from .registry import registrar
@@ -51,6 +58,8 @@ class PacketKind:
       ``trap``: the key holding ``[[potential]]``-style tables (validated
       like the job's; built into ``packet["trap_terms"]``), else None.  A
       ``path`` key is a file relative to the job file's folder;
+      ``interacting``: True when the state depends on the job's
+      [interaction] (the set-up puts g N in ``packet["contact"]``);
 
     and implements :meth:`build`, and where they apply :meth:`key_conflicts`,
     :meth:`ignored_keys`, :meth:`unstated_defaults`, :meth:`gaussian_parts`
@@ -64,6 +73,7 @@ class PacketKind:
     formula: ClassVar[str] = ""
     nested: ClassVar[str | None] = None
     trap: ClassVar[str | None] = None
+    interacting: ClassVar[bool] = False
 
     @classmethod
     def schema(cls) -> dict:
@@ -480,3 +490,42 @@ class Eigenstate(PacketKind):
     @classmethod
     def build(cls, packet, grid, mass, field, length_unit, terms):
         return _eigenstate(packet, grid, mass, field, terms)
+
+
+def _ground_state(packet, grid, mass, field, terms):
+    trap = packet.get("trap_terms")
+    if trap is None:
+        if terms is None:
+            raise ValueError("a ground_state packet needs the job's potential terms")
+        trap = terms
+    hamiltonian = Hamiltonian(grid, mass, trap, contact=packet.get("contact", 0.0))
+    tolerance = packet.get("tolerance")
+    psi, *_ = ground_state(hamiltonian, DEFAULT_TOLERANCE if tolerance is None else tolerance,
+                           field=field)
+    psi = psi.astype(complex)
+    if packet.get("momentum") is not None:
+        psi = _boost(psi, grid, packet["momentum"], field)
+    return psi
+
+
+@register_packet
+class GroundState(PacketKind):
+    kind = "ground_state"
+    parameters = {
+        "tolerance": Field("number", DEFAULT_TOLERANCE, positive=True, maximum=0.1, physics=True,
+                           doc="relative accuracy of the chemical potential mu (imaginary time, "
+                               "splitting error included)"),
+        "momentum": Field("momentum", None, per_axis=True, doc="boost p: psi(r) exp(i p.r)"),
+        "potential": Field("list", None, doc="[[potential]]-style tables of the trap the state is "
+                                             "prepared in (default: the job's own potential)"),
+    }
+    formula = ("psi = the lowest stationary state of T + V + g N |psi|^2 at t = 0 without the absorber "
+               "(the job's potential, or the tables in `potential`; g N from the job's [interaction], "
+               "0 without one), by imaginary time (normalised gradient flow, Bao & Du 2004) until mu "
+               "is converged to `tolerance` (relative), times exp(i momentum . r) when momentum is given")
+    trap = "potential"
+    interacting = True
+
+    @classmethod
+    def build(cls, packet, grid, mass, field, length_unit, terms):
+        return _ground_state(packet, grid, mass, field, terms)

@@ -217,6 +217,15 @@ job_case("fields", "interaction-2d-without-axial-omega",
 for scheme in ("chebyshev", "crank_nicolson"):
     job_case("fields", f"interaction-with-{scheme}",
              {"interaction": GAS, "evolve": {"scheme": scheme}}, "evolve.scheme", "[interaction]", "strang")
+# [packet] kind = "ground_state" (issue 15): a relative tolerance must lie in (0, 0.1];
+# a Gaussian's keys are not its own
+GROUND = {"kind": "ground_state", "center": None, "width": None, "momentum": None}
+for name, value, piece in (("zero", 0.0, "positive"), ("negative", -1e-8, "positive"),
+                           ("one", 1.0, "at most"), ("two", 2.0, "at most")):
+    job_case("fields", f"ground-state-tolerance-{name}", {"packet": {**GROUND, "tolerance": value}},
+             "packet.tolerance", piece)
+job_case("fields", "ground-state-with-width", {"packet": {**GROUND, "width": 2.0}}, "packet.width")
+job_case("fields", "ground-state-with-n", {"packet": {**GROUND, "n": 0}}, "packet.n")
 
 
 # -- units ---------------------------------------------------------------------------

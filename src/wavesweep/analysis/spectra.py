@@ -89,6 +89,7 @@ from ..eigen import (DEGENERATE_TOL, ITERATIVE_TOL, MAX_ITERATIONS, WINDOW_RATIO
                      coarse_hamiltonian, eigenpairs, lobpcg_from, recorded_energy_band, walled_potential)
 from ..errors import JobError, RunFailed
 from ..grid import Axis, Grid
+from ..imaginary_time import DEFAULT_TOLERANCE, ground_state
 from ..io.paths import output_file
 from ..io.record import LANCZOS_MAX_POINTS
 from ..io.atomic import atomic_output
@@ -97,7 +98,7 @@ from ..job import Job, job_from_dict, load_job
 from ..setup import Model
 from .recorded import run_record
 
-__all__ = ["stationary_states", "level_errors", "LevelErrors", "write_states", "check_states_path",
+__all__ = ["stationary_states", "condensate_ground_state", "level_errors", "LevelErrors", "write_states", "check_states_path",
            "autocorrelation_levels", "AutocorrelationLevels", "truncation_floor"]
 
 # -- stationary states -----------------------------------------------------------------
@@ -114,6 +115,17 @@ def stationary_states(setup_or_job, count: int, method: str = "auto", field: str
     ``"dense"`` or ``"iterative"``).  ``field`` names ``count`` in errors."""
     setup = _as_setup(setup_or_job)
     return eigenpairs(setup.hamiltonian, count, t=0.0, method=method, field=field)
+
+
+def condensate_ground_state(setup_or_job, tolerance: float = DEFAULT_TOLERANCE):
+    """The Gross-Pitaevskii ground state of a job with an [interaction]
+    (its Hamiltonian at t = 0 without the absorber, g N included) by
+    imaginary time (:func:`wavesweep.imaginary_time.ground_state`):
+    ``(chemical_potential_hartree, energy_per_atom_hartree, psi)``, mu to
+    ``tolerance`` (relative)."""
+    setup = _as_setup(setup_or_job)
+    psi, mu, energy, _ = ground_state(setup.hamiltonian, tolerance, field="interaction")
+    return mu, energy, psi
 
 
 def _as_setup(obj):
