@@ -205,14 +205,15 @@ def _relax(stepper, psi, tau, mu, tolerance, budget, hamiltonian):
 
 
 def ground_state(hamiltonian, tolerance: float = DEFAULT_TOLERANCE, field: str = "packet",
-                 potential=None, guess=None, max_steps: int = MAX_STEPS):
+                 potential=None, guess=None, max_steps: int = MAX_STEPS, tolerance_field: str | None = None):
     """The ground state of the Gross-Pitaevskii Hamiltonian ``hamiltonian``
     (its linear part at t = 0, its ``contact`` g N) by imaginary time (see
     the module notes): ``(psi, mu_hartree, energy_hartree, info)``, psi real
     and normalised on the grid, mu converged to ``tolerance`` (relative),
     ``info`` the step sizes and steps taken.  A relaxation that does not
     settle within ``max_steps`` steps (all sizes together) or :data:`MAX_HALVINGS` halvings
-    is refused (``JobError`` on ``field.tolerance``)."""
+    is refused (``JobError`` on ``tolerance_field``, by default ``field.tolerance``)."""
+    tolerance_field = tolerance_field or f"{field}.tolerance"
     if not (0.0 < tolerance < 1.0):
         raise JobError(f"{field}.tolerance", f"must lie between 0 and 1 (relative), got {tolerance!r}")
     v = np.ascontiguousarray(np.broadcast_to(hamiltonian.real_potential(0.0) if potential is None
@@ -252,6 +253,6 @@ def ground_state(hamiltonian, tolerance: float = DEFAULT_TOLERANCE, field: str =
                         "mu": [f[2] for f in fixed], "mu_extrapolated": extrapolated}
                 return combined, mu_r, gp_energy(hamiltonian, combined, v), info
         tau *= 0.5
-    raise JobError(f"{field}.tolerance", f"the imaginary-time relaxation did not reach mu to {tolerance:g} "
-                                         f"(relative) within {max_steps} steps; ask for a looser tolerance "
-                                         "or a finer grid")
+    raise JobError(tolerance_field, f"the imaginary-time relaxation did not reach mu to {tolerance:g} "
+                                    f"(relative) within {max_steps} steps; ask for a looser tolerance "
+                                    "or a finer grid")

@@ -124,7 +124,9 @@ def condensate_ground_state(setup_or_job, tolerance: float = DEFAULT_TOLERANCE):
     ``(chemical_potential_hartree, energy_per_atom_hartree, psi)``, mu to
     ``tolerance`` (relative)."""
     setup = _as_setup(setup_or_job)
-    psi, mu, energy, _ = ground_state(setup.hamiltonian, tolerance, field="interaction")
+    # levels has no tolerance key of its own: a relaxation that cannot settle names the table
+    psi, mu, energy, _ = ground_state(setup.hamiltonian, tolerance, field="interaction",
+                                      tolerance_field="interaction")
     return mu, energy, psi
 
 
