@@ -225,12 +225,19 @@ def _superposition(packet, grid, mass, field, length_unit=(1.0, "bohr"), terms=N
     return np.broadcast_to(psi, grid.shape).astype(complex)
 
 
-def _eigenstate(packet, grid, mass, field, terms):
+def _trap_of(packet, terms, kind: str):
+    """The terms a state is prepared in: the packet's own ``potential`` (its
+    trap) or the job's."""
     trap = packet.get("trap_terms")
     if trap is None:
         if terms is None:
-            raise ValueError("an eigenstate packet needs the job's potential terms")
+            raise ValueError(f"a {kind} packet needs the job's potential terms")
         trap = terms
+    return trap
+
+
+def _eigenstate(packet, grid, mass, field, terms):
+    trap = _trap_of(packet, terms, "eigenstate")
     n = int(packet.get("n", 0))
     if n >= grid.size:
         raise JobError(f"{field}.n", f"the grid has only {grid.size} states (0..{grid.size - 1}); got {n}")
@@ -493,11 +500,7 @@ class Eigenstate(PacketKind):
 
 
 def _ground_state(packet, grid, mass, field, terms):
-    trap = packet.get("trap_terms")
-    if trap is None:
-        if terms is None:
-            raise ValueError("a ground_state packet needs the job's potential terms")
-        trap = terms
+    trap = _trap_of(packet, terms, "ground_state")
     hamiltonian = Hamiltonian(grid, mass, trap, contact=packet.get("contact", 0.0))
     tolerance = packet.get("tolerance")
     psi, *_ = ground_state(hamiltonian, DEFAULT_TOLERANCE if tolerance is None else tolerance,
