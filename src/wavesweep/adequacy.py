@@ -1523,7 +1523,50 @@ def assess(setup) -> list[Finding]:
     out += size_findings(setup.grid)
     out += detector_findings(setup)
     out += absorber_findings(setup, dyn)
+    out += mean_field_findings(setup, dyn)
     out.append(disk_finding(setup))
+    return out
+
+
+def mean_field_findings(setup, dyn: Dynamics) -> list[Finding]:
+    """What the classical criteria above leave out for a Gross-Pitaevskii
+    job: the mean-field energy per atom g N |psi|^2 (at most |g N|
+    max|psi0|^2, hartree) can turn into kinetic energy when the cloud
+    expands, so it can give momenta up to p = sqrt(2 m |g N| max|psi0|^2)
+    that neither the momentum reach nor the absorbers' energy windows
+    (:attr:`Dynamics.windows`, classical trajectories of the linear
+    Hamiltonian) contain.  Each axis whose k_max that p exceeds, and each
+    absorbing face whose window ends below that energy, is a warning naming
+    the setting; no interaction, no finding."""
+    g_n = float(getattr(setup.hamiltonian, "contact", 0.0) or 0.0)
+    if g_n == 0.0:
+        return []
+    u = setup.units
+    ef, E = u.factor("energy"), u.unit_label("energy")
+    e_mf = abs(g_n) * float(np.max(np.abs(setup.psi0) ** 2))
+    p_mf = math.sqrt(2.0 * setup.mass * e_mf)
+    out = []
+    for ax in setup.grid.axes:
+        if p_mf > ax.k_max:
+            out.append(Finding("momentum", "warn",
+                f"the mean-field energy {e_mf / ef:.4g} {E} per atom can become momentum up to "
+                f"{p_mf / ax.k_max:.2f} times the grid's largest along {ax.name} as the cloud expands "
+                "(the classical reach leaves the interaction out); use more points",
+                {"mean_field_energy": e_mf / ef, "mean_field_momentum_ratio": p_mf / ax.k_max},
+                field=f"grid.{ax.name}.points"))
+    if setup.absorber.active:
+        short = sorted(face for face, (_, e_hi) in dyn.windows.items() if e_hi < e_mf)
+        if short:
+            out.append(Finding("absorbers", "warn",
+                f"the mean-field energy {e_mf / ef:.4g} {E} per atom lies above the energies the "
+                f"absorber at {', '.join(short)} was judged for (classical, without the interaction): "
+                "what the expanding cloud brings there may reflect; give absorber.strength for it or "
+                "widen the grid so the cloud never reaches the layers",
+                {"mean_field_energy": e_mf / ef, "faces": short}, field="absorber.strength"))
+    if not out:
+        out.append(Finding("momentum", "ok",
+            f"mean-field energy {e_mf / ef:.4g} {E} per atom: within the grid's momenta and the "
+            "absorbers' windows", {"mean_field_energy": e_mf / ef}))
     return out
 
 

@@ -236,3 +236,25 @@ def test_time_step_check_judges_the_mean_field_phase(tmp_path):
     assert finding.level == "warn" and "mean field" in finding.message and "dt <=" in finding.message
     calm = Setup(job_from_dict(merged(table, {"evolve": {"dt": 0.005, "duration": 1.0}})))
     assert time_step_finding(calm, dynamics(calm)).level == "ok"
+
+
+def test_check_sees_the_momentum_and_energy_the_mean_field_can_release():
+    """The classical criteria leave the interaction out; the mean-field
+    energy per atom e = |g N| max|psi0|^2 can become momentum sqrt(2 m e) as
+    the cloud expands (energy conservation of the GP functional, by hand).
+    A grid whose k_max lies below that, or an absorber judged for lower
+    energies, is a warning naming the setting, not silence."""
+    from wavesweep.check import check_job
+
+    base = {"grid": {"x": {"min": -20.0, "max": 20.0, "points": 128}, "boundary": "box"},
+            "packet": {"center": 0.0, "width": 2.0}, "evolve": {"dt": 0.001, "duration": 0.05}}
+    strong = job_from_dict({**base, "interaction": {"atoms": 1000, "coupling": 2.0}})
+    found = [f for f in check_job(strong, trial_seconds=0).findings if "mean-field" in f.message]
+    setup = Setup(strong)
+    e = 2000.0 * float(np.max(np.abs(setup.psi0) ** 2))
+    ratio = math.sqrt(2.0 * e) / setup.grid.axes[0].k_max
+    assert ratio > 1.0
+    assert [f.field for f in found if f.level == "warn"] == ["grid.x.points"]
+    assert found[0].values["mean_field_momentum_ratio"] == pytest.approx(ratio, rel=1e-12)
+    weak = job_from_dict({**base, "interaction": {"atoms": 10, "coupling": 0.01}})
+    assert all(f.level == "ok" for f in check_job(weak, trial_seconds=0).findings if "mean-field" in f.message)
