@@ -22,6 +22,7 @@ and the bytes the rest of the file needs from its shapes; the caller's
 """
 from __future__ import annotations
 
+import errno
 import os
 import shutil
 from contextlib import contextmanager
@@ -32,7 +33,7 @@ import numpy as np
 from ..errors import DiskFull, JobError
 from ..observables import SCALARS
 from .atomic import atomic_output, atomic_rename, temporary_path
-from .diskspace import NO_SPACE, disk_full_from
+from .diskspace import NO_SPACE, disk_full_from, out_of_space
 from .record import DETECTOR_VALUES, FINAL_DETECTOR_VALUES
 
 __all__ = ["ResultWriter", "copy_file"]
@@ -143,13 +144,17 @@ class ResultWriter:
         return self
 
     def _open(self, mode: str):
-        import netCDF4   # lazy: netCDF4/HDF5 load with the first result file, not with the module
+        import netCDF4  # lazy: netCDF4/HDF5 load with the first result file, not with the module
         try:
             if mode == "w":
                 return netCDF4.Dataset(self.tmp, "w", format="NETCDF4")
             return netCDF4.Dataset(self.tmp, mode)
         except OSError as e:  # permissions, a folder that vanished: the input's; a full disk is not
-            if e.errno in NO_SPACE:
+            # HDF5 may say EACCES when it cannot create a file on a full disk: in a folder the
+            # permissions let us write, that is judged by the room there (a probe), not believed
+            opaque = e.errno == errno.EACCES and os.access(self.tmp.parent, os.W_OK)
+            if e.errno in NO_SPACE or (opaque and out_of_space(RuntimeError(str(e)), self.tmp.parent,
+                                                                self._remaining_bytes() or 0)):
                 raise disk_full_from(e, self.path, 0, more_bytes=self._remaining_bytes()) from None
             raise JobError("--output", f"cannot write {str(self.tmp.parent)!r}: "
                                        f"{e.strerror or e}; choose another folder with -o") from None
