@@ -474,8 +474,10 @@ def _fastest_carrier(setup) -> float:
     """The largest carrier angular frequency of the job's driving terms (a.u.), 0 if none."""
     out = 0.0
     for term in setup.terms:
-        if term.time_dependent:
-            out = max(out, float(term.p.get("omega") or 0.0))
+        # a lab term seen from a falling grid varies only as the grid moves: no carrier of its own
+        own = getattr(term, "inner", term)
+        if own.time_dependent:
+            out = max(out, float(own.p.get("omega") or 0.0))
     return out
 
 
@@ -1143,6 +1145,8 @@ def detector_findings(setup) -> list[Finding]:
     u = setup.units
     lf, L = u.factor("length"), u.unit_label("length")
     th = setup.absorber.thickness if setup.absorber.active else 0.0
+    if getattr(setup, "frame", None) is not None:
+        return _falling_detector_findings(setup, th)
     out = []
     for n, det in enumerate(setup.detectors):
         ax = setup.grid.axes[det.axis]
@@ -1157,6 +1161,32 @@ def detector_findings(setup) -> list[Finding]:
                     f"absorber (which starts at {inner / lf:.4g} {L}): its flux is reduced by the "
                     f"absorption; move it out, or read the absorbed probability of {layer.name} instead",
                     {"detector": det.name, "face": layer.name}, field=f"detector.{n}.{ax.name}"))
+    return out
+
+
+def _falling_detector_findings(setup, th: float) -> list[Finding]:
+    """On a falling grid the detectors stay in the lab: one the grid's
+    interior (inside the absorbing layers) never reaches during the run
+    records no flux at all."""
+    u = setup.units
+    lf, L = u.factor("length"), u.unit_label("length")
+    times = np.linspace(0.0, setup.duration, 1025)
+    offsets = np.array([setup.frame.offset(t) for t in times])
+    out = []
+    for n, det in enumerate(setup.detectors):
+        ax = setup.grid.axes[det.axis]
+        faces = {layer.name for layer in setup.absorber.layers if layer.axis == det.axis}
+        lo = ax.min + (th if f"{ax.name}-" in faces else 0.0)
+        hi = ax.max - (th if f"{ax.name}+" in faces else 0.0)
+        y = det.position - offsets[:, det.axis]
+        if np.any((y > lo) & (y < hi)):
+            continue
+        seen_lo, seen_hi = offsets[:, det.axis].min() + lo, offsets[:, det.axis].max() + hi
+        out.append(Finding("detector", "warn",
+            f"{det.name!r} at {ax.name} = {det.position / lf:.4g} {L} (lab) is never inside the falling grid's "
+            f"interior: over the run it covers {ax.name} = {seen_lo / lf:.4g} to {seen_hi / lf:.4g} {L}, so the "
+            "detector records no flux; lengthen evolve.duration or move the detector",
+            {"detector": det.name}, field=f"detector.{n}.{ax.name}"))
     return out
 
 

@@ -19,9 +19,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["Axis", "Grid", "BOUNDARIES"]
+__all__ = ["Axis", "Grid", "BOUNDARIES", "FRAMES"]
 
 BOUNDARIES = ("periodic", "box")
+# grid.frame: the grid stays in the lab, or falls with the packet (wavesweep.frame)
+FRAMES = ("lab", "free_fall")
 
 
 @dataclass(frozen=True)

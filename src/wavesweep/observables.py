@@ -27,7 +27,7 @@ import scipy.fft
 from .kernels import view4
 
 __all__ = ["Detector", "Observer", "Scalar", "SCALARS", "CHEMICAL_POTENTIAL", "recorded_scalars",
-           "spectral_derivative"]
+           "spectral_derivative", "mean_position_momentum"]
 
 
 class Scalar(NamedTuple):
@@ -98,6 +98,25 @@ def spectral_derivative(psi: np.ndarray, ax, axis: int) -> np.ndarray:
     return d[tuple(sl)] * (0.5 * np.sqrt(2.0 / (n + 1)))
 
 
+def mean_position_momentum(psi, grid) -> tuple[np.ndarray, np.ndarray, float]:
+    """(<r_i>, <p_i>, norm) of psi on the grid (bohr, hbar/bohr, one per
+    axis, each normalised by the norm; norm = sum |psi|^2 dV): positions
+    from the marginals, momenta as Im sum conj(psi) dpsi/dx_i over sum
+    |psi|^2 with the spectral derivative (:func:`spectral_derivative`)."""
+    one = np.asarray(psi, np.complex128).reshape(grid.shape)
+    dens = one.real ** 2 + one.imag ** 2
+    norm_sum = float(dens.sum())
+    if not norm_sum > 0:
+        return np.zeros(grid.ndim), np.zeros(grid.ndim), 0.0
+    pos, mom = np.empty(grid.ndim), np.empty(grid.ndim)
+    for i, ax in enumerate(grid.axes):
+        other = tuple(j for j in range(grid.ndim) if j != i)
+        line = dens.sum(axis=other) if other else dens
+        pos[i] = float(line @ ax.coordinates) / norm_sum
+        mom[i] = float(np.vdot(one, spectral_derivative(one, ax, i)).imag) / norm_sum
+    return pos, mom, norm_sum * grid.cell_volume
+
+
 class Observer:
     """Computes the recorded observables of one run, or of each member of a
     batch (``members`` states stacked along a leading axis).
@@ -114,10 +133,21 @@ class Observer:
 
     ``contact`` is g N (hartree bohr^d) of a mean-field interaction, or None
     for a linear run (no chemical potential; 0.0 records it, equal to the
-    energy).  It costs one more pass over psi (sum |psi|^4)."""
+    energy).  It costs one more pass over psi (sum |psi|^4).
+
+    ``frame``: a falling grid (:class:`wavesweep.frame.FreeFallFrame`, one
+    run, no batch).  psi is then phi on the grid's coordinates and every
+    value is converted to the lab at the sample's time ``t``: x_mean +
+    X(t), p_mean + m u(t), the energy (and chemical potential) + u . <p>
+    + m u^2/2 - F . <r_lab> (the uniform forces' potential, which the
+    frame removed from H), each detector's flux the lab current J_phi + u
+    rho through its lab position (zero while the grid does not reach it)
+    and its amplitude the lab psi there; ``frame_offset`` X(t) is added
+    to the values.  Costs one pass and one spectral derivative per axis
+    more per sample (the mean position and momentum of every axis)."""
 
     def __init__(self, grid, mass: float, transform, detectors=(), psi0=None, members=None,
-                 contact: float | None = None):
+                 contact: float | None = None, frame=None):
         from .kernels import observe_kernels_for   # lazy: numba kernels load on first use
         self.grid = grid
         self.mass = mass
@@ -125,6 +155,9 @@ class Observer:
         self.members = members
         self.detectors = list(detectors)
         self.contact = None if contact is None else float(contact)
+        self.frame = frame
+        if frame is not None and members is not None:
+            raise ValueError("a falling frame is one run's: its trajectory follows its own packet")
         self.records_amplitude = grid.ndim == 1
         self.dv = grid.cell_volume
         self._nb = members or 1
@@ -146,25 +179,37 @@ class Observer:
             k0[ax0.points // 2] = 0.0   # the Nyquist mode has no well-defined derivative
         self._k = one_axis + [k0] + [np.zeros(a.points) for a in grid.axes[1:]]
         # detectors grouped by axis, each group one matrix product (BLAS)
-        # with the stacked value and derivative rows
-        self._groups = []   # (view axis, detector indices, rows (2M, n), weight)
-        for axis in sorted({d.axis for d in self.detectors}):
-            idx = [n for n, d in enumerate(self.detectors) if d.axis == axis]
-            rows = [grid.axes[axis].interpolation_rows(self.detectors[n].position) for n in idx]
+        # with the stacked value and derivative rows (in a falling frame the
+        # detectors move across the grid: their rows are made per sample)
+        self._groups = [] if frame is not None else self._detector_groups(
+            [(n, d.position) for n, d in enumerate(self.detectors)])
+
+    def _detector_groups(self, where) -> list:
+        """``(view axis, detector indices, rows (2M, n), weight)`` per axis for
+        the detectors ``where`` = [(index, grid coordinate), ...]."""
+        grid, nd = self.grid, self.grid.ndim
+        groups = []
+        for axis in sorted({self.detectors[n].axis for n, _ in where}):
+            idx = [n for n, _ in where if self.detectors[n].axis == axis]
+            rows = [grid.axes[axis].interpolation_rows(y) for n, y in where if self.detectors[n].axis == axis]
             others = [i for i in range(nd) if i != axis]
             par = float(np.prod([grid.axes[i].parseval_factor() for i in others]))
             dv_other = float(np.prod([grid.axes[i].dx for i in others]))
             stacked = np.array([r[0] for r in rows] + [r[1] for r in rows], dtype=complex)
-            self._groups.append((axis + pad + 1, idx, stacked, par * dv_other))
+            groups.append((axis + 3 - nd + 1, idx, stacked, par * dv_other))
+        return groups
 
-    def measure(self, psi: np.ndarray, potential: np.ndarray) -> dict:
+    def measure(self, psi: np.ndarray, potential: np.ndarray, t: float | None = None) -> dict:
         """All scalar observables of ``psi`` (one run) given the real
-        potential (hartree); see :meth:`measure_members` for a batch."""
+        potential (hartree) at time ``t`` (atomic units; a falling frame
+        needs it); see :meth:`measure_members` for a batch."""
         if self.members is not None:
             raise ValueError("this observer measures a batch: use measure_members")
-        return self.measure_members(psi, potential)[0]
+        if self.frame is None:
+            return self.measure_members(psi, potential)[0]
+        return self._in_lab(self.measure_members(psi, potential, t)[0], psi, t)
 
-    def measure_members(self, psi: np.ndarray, potential: np.ndarray) -> list[dict]:
+    def measure_members(self, psi: np.ndarray, potential: np.ndarray, t: float | None = None) -> list[dict]:
         """The observables of every member (a list of dicts, in order)."""
         k, nb, dv = self._kernels, self._nb, self.dv
         psi4 = self._view4(np.ascontiguousarray(psi))
@@ -195,7 +240,13 @@ class Observer:
             p_mean = self._momentum_box(psi4, safe)
         flux = np.zeros((nb, len(self.detectors)))
         amp = np.full((nb, len(self.detectors)), complex("nan"))
-        for group in self._groups:
+        groups = self._groups
+        if self.frame is not None:   # the lab detectors the falling grid covers now
+            covered = [(n, self.frame.covered(self.grid, d.axis, d.position, t)) for n, d in enumerate(self.detectors)]
+            groups = self._detector_groups([(n, y) for n, y in covered if y is not None])
+            self._density_at = np.zeros(len(self.detectors))
+            amp[:] = 0.0
+        for group in groups:
             self._at_detectors(phi4, group, flux, amp)
         out = []
         for b in range(nb):
@@ -212,6 +263,27 @@ class Observer:
                 r["autocorrelation_imag"] = float(dens[b, 5] * dv)
             out.append(r)
         return out
+
+    def _in_lab(self, r: dict, psi, t: float) -> dict:
+        """One run's values on a falling grid turned into the lab's (see the
+        class notes), with ``frame_offset`` X(t) (bohr, per axis)."""
+        frame, m = self.frame, self.mass
+        x_off, u, force = frame.offset(t), frame.velocity(t), frame.force(t)
+        pos, mom, _ = mean_position_momentum(psi, self.grid)
+        shift = float(u @ mom + 0.5 * m * (u @ u) - force @ (pos + x_off))
+        r["x_mean"] += float(x_off[0])
+        r["p_mean"] += m * float(u[0])
+        r["energy"] += shift
+        if "chemical_potential" in r:
+            r["chemical_potential"] += shift
+        for n, det in enumerate(self.detectors):
+            r["flux"][n] += u[det.axis] * self._density_at[n]
+        if "detector_psi" in r:   # 1D: psi(x_d) = exp(i [m u x_d + theta]) phi(x_d - X)
+            theta = frame.phase(t)
+            for n, det in enumerate(self.detectors):
+                r["detector_psi"][n] *= np.exp(1j * (m * u[0] * det.position + theta))
+        r["frame_offset"] = np.array(x_off, float)
+        return r
 
     def _momentum_box(self, psi4, safe):
         """<p> on a box first axis: Im sum conj(psi) dpsi/dx dV (the sine
@@ -241,5 +313,7 @@ class Observer:
         a, d = both[:m], both[m:]
         f = (a.conj() * d).imag.reshape(m, self._nb, -1).sum(axis=2).T * (weight / self.mass)
         flux[:, idx] = f
+        if self.frame is not None:   # the density there, for the lab current (one run)
+            self._density_at[idx] = (a.real.astype(float) ** 2 + a.imag.astype(float) ** 2).reshape(m, -1).sum(axis=1) * weight
         if a[0, 0].size == 1:
             amp[:, idx] = a.reshape(m, self._nb).T

@@ -103,13 +103,14 @@ class Simulation:
             if bar is not None and done:
                 bar.update(done)
             if book.fresh:
-                self.observe(book, observer.measure(psi, s.hamiltonian.potential(prop.t)), prop.t, prop.absorbed)
+                self.observe(book, observer.measure(psi, s.hamiltonian.potential(prop.t), prop.t), prop.t,
+                             prop.absorbed)
                 self.write_snapshot(book.writer, 0.0, psi)
             while done < s.total_steps:
                 n = min(s.sample_steps, s.total_steps - done)
                 psi = prop.step(psi, n)
                 done += n
-                values = observer.measure(psi, s.hamiltonian.potential(prop.t))
+                values = observer.measure(psi, s.hamiltonian.potential(prop.t), prop.t)
                 self.record_sample(book, values, prop.t, prop.absorbed, psi, done)
                 if bar is not None:
                     bar.update(n)
@@ -178,6 +179,8 @@ class Simulation:
         row["flux"] = values["flux"] * conv["flux"]
         if "detector_psi" in values:
             row["detector_psi"] = values["detector_psi"] * conv["amplitude"]
+        if "frame_offset" in values:
+            row["frame_offset"] = values["frame_offset"] * conv["length"]
         book.writer.add_sample(t_au / s.units.factor("time"), row)
         return values
 
@@ -195,6 +198,7 @@ class Simulation:
         s = self.setup
         if s.job.table["record"]["final_state"]:
             scale = s.units.factor("length") ** (s.grid.ndim / 2)
+            psi = s.lab_state(psi, s.total_steps * s.dt)   # in a falling frame: the lab psi on the grid's lab positions
             book.writer.set_final_state(psi, scale)
             values = final_detector_values(s, psi, scale)   # what analysis would read psi for (1D)
             if values is not None:
@@ -311,10 +315,14 @@ class Simulation:
 
     def write_snapshot(self, writer, t_job: float, psi) -> None:
         """A density frame, and psi itself when record.snapshot_psi asks for it."""
-        amp = None
+        s = self.setup
+        amp = offset = None
+        t_au = t_job * s.units.factor("time")
         if self.job.table["record"].get("snapshot_psi"):
-            amp = np.asarray(psi, np.complex128) * math.sqrt(self.setup.units.factor("length")) ** self.setup.grid.ndim
-        writer.add_snapshot(t_job, self._density(psi), amp)
+            amp = np.asarray(s.lab_state(psi, t_au), np.complex128) * math.sqrt(s.units.factor("length")) ** s.grid.ndim
+        if s.frame is not None:   # where the falling grid is at the snapshot
+            offset = s.frame.offset(t_au) / s.units.factor("length")
+        writer.add_snapshot(t_job, self._density(psi), amp, frame_offset=offset)
 
     def _density(self, psi) -> np.ndarray:
         """|psi|^2 in job units, float32 as the result file stores it (a
@@ -331,8 +339,9 @@ class Simulation:
             "units": s.unit_labels(),
             "detectors": [(d.name, s.grid.names[d.axis], d.position / lf) for d in s.detectors],
             "faces": [layer.name for layer in s.absorber.layers],
-            "potential": s.hamiltonian.static_potential / s.units.factor("energy"),
-            "autocorrelation": True,
+            "potential": s.recorded_potential() / s.units.factor("energy"),
+            # <psi(0)|psi(t)> of the lab: a falling grid holds phi, on positions that move
+            "autocorrelation": s.frame is None,
             "scalars": s.scalars,
             "detector_amplitude": s.grid.ndim == 1,
             "snapshot_psi": bool(s.job.table["record"].get("snapshot_psi")),
@@ -341,6 +350,8 @@ class Simulation:
                        (s.grid.axis_index(s.job.table["record"]["column"]),
                         s.grid.axes[s.grid.axis_index(s.job.table["record"]["column"])].dx / lf)),
             "final_state": bool(s.job.table["record"]["final_state"]),
+            # a falling grid: frame_offset per sample and snapshot (the axes' names; None in the lab)
+            "frame_axes": None if s.frame is None else list(s.grid.names),
             # the run's totals, so that a full disk can say how much the file still needs
             "expected": {"samples": -(-s.total_steps // s.sample_steps) + 1,
                          "snapshots": s.total_steps // s.snapshot_steps + 1},
@@ -370,6 +381,7 @@ class Simulation:
             "grid_kind": "radial" if s.grid.radial else "cartesian",
             "angular_momentum": int(s.grid.angular_momentum),
             "absorber": s.absorber.kind,
+            "frame": s.job.table["grid"].get("frame", "lab") if s.frame is not None else None,
         }
 
 

@@ -37,7 +37,8 @@ from .io.record import (LANCZOS_MAX_POINTS, RECORD_VERSION, RecordedAbsorber, Re
 from .job import Job, grid_axes, job_from_dict
 from .job.schemas import interaction_schema
 from .marginals import free_space_marginals
-from .observables import Detector, Observer, recorded_scalars
+from .frame import FreeFallFrame, frame_terms
+from .observables import Detector, Observer, mean_position_momentum, recorded_scalars
 from .potentials import PotentialContext, make_term
 from .propagators import scheme_class
 from .schema import to_atomic
@@ -145,8 +146,16 @@ class Setup(Model):
         representability(self)  # before the absorber's tuning squares the packet's momenta
         self.psi0 = build_state(self.packet, self.grid, self.mass,
                                 length_unit=(u.factor("length"), u.unit_label("length")), terms=self.terms)
+        self.frame = None
+        if t["grid"].get("frame", "lab") == "free_fall":
+            self.psi0_lab = self.psi0   # the packet as prepared in the lab
+            self._enter_free_fall()
         if self.dtype == np.complex64:   # single precision end to end (half the bytes)
             self.psi0 = self.psi0.astype(np.complex64)
+            if self.frame is not None:
+                self.psi0_lab = self.psi0_lab.astype(np.complex64)
+        if self.frame is None:
+            self.psi0_lab = self.psi0   # the packet in the lab, as analysis reads its marginals
         self.cap_tuning = None   # per face, when the CAP is tuned here: e_min, e_max (hartree), worst_return
         absorber = self._resolved_absorber(t["absorber"])
         if absorber is not t["absorber"]:   # the complete job: a new Job, the given one unchanged
@@ -163,6 +172,24 @@ class Setup(Model):
         self.scheme.check_supported(self.hamiltonian, self.absorber, self.grid)
 
     # -- pieces ----------------------------------------------------------------
+    def _enter_free_fall(self) -> None:
+        """The grid falls (:mod:`wavesweep.frame`): the frame starts at the
+        lab grid with the packet's mean velocity; the uniform forces leave
+        the Hamiltonian, the other terms are seen at lab positions, and psi0
+        loses the frame's velocity (phi(y, 0) = exp(-i m u0 . y) psi(y, 0))."""
+        for i, term in enumerate(self.terms):
+            if term.kind == "file":
+                raise JobError(f"potential.{i}.kind", "a potential read from a file is tabulated on the lab "
+                                                      "grid and cannot follow a falling grid; give it as an "
+                                                      "expression, or use grid.frame = 'lab'")
+        _, momentum, _ = mean_position_momentum(self.psi0, self.grid)
+        uniform = [term for term in self.terms if term.uniform_force]
+        self.frame = FreeFallFrame(uniform, self.mass, momentum / self.mass, self.grid.ndim, self.duration)
+        self.lab_terms = self.terms
+        self.terms = frame_terms(self.terms, self.frame)
+        self._v_static = None
+        self.psi0 = self.psi0 * np.conj(self.frame.lab_phase(self.grid, 0.0))
+
     def _packet_atomic(self, table, name="packet") -> dict:
         kind = table["kind"]
         cls = PACKETS[kind]
@@ -280,8 +307,25 @@ class Setup(Model):
         """Observables use a transform of their own (same backend and
         precision as the run's): they must never touch the propagator's
         buffer, which holds psi."""
-        return Observer(self.grid, self.mass, self.observer_transform(), self.detectors, self.psi0,
-                        contact=self.contact if self.interaction is not None else None)
+        return Observer(self.grid, self.mass, self.observer_transform(), self.detectors,
+                        self.psi0 if self.frame is None else None,   # no lab autocorrelation in a falling frame
+                        contact=self.contact if self.interaction is not None else None, frame=self.frame)
+
+    def lab_state(self, psi, t: float):
+        """psi as the lab sees it at time ``t`` (atomic units) on the lab
+        positions the grid occupies: psi itself, or in a falling frame
+        phi times exp(i [m u . r + theta]) (:meth:`FreeFallFrame.lab_phase`)."""
+        return psi if self.frame is None else psi * self.frame.lab_phase(self.grid, t)
+
+    def recorded_potential(self) -> np.ndarray:
+        """The static potential the result records (hartree, full grid): the
+        Hamiltonian's V0; in a falling frame, the lab's static terms without
+        the uniform forces, at the lab positions of the grid at t = 0 (the
+        frame's V0 is zero: every lab term moves across it)."""
+        if self.frame is None:
+            return self.hamiltonian.static_potential
+        rest = [term for term in self.lab_terms if not term.uniform_force]
+        return np.broadcast_to(static_potential_of(self.grid, self.mass, rest), self.grid.shape)
 
     def unit_labels(self) -> dict:
         """Unit labels by quantity kind: those of the recorded scalars
@@ -325,16 +369,19 @@ def analysis_record(setup, warnings: bool = True, lanczos: bool = True) -> dict:
                       f"grid_{a.name}_points": int(a.points), f"grid_{a.name}_boundary": a.boundary})
     if warnings:
         attrs["adequacy_warnings"] = json.dumps(run_warnings(setup))
-    marginals_au = [free_space_marginals(setup.psi0, grid, i) for i in range(grid.ndim)]
+    psi0 = setup.psi0_lab   # the packet in the lab (in a falling frame, phi0 has lost the frame's velocity)
+    marginals_au = [free_space_marginals(psi0, grid, i) for i in range(grid.ndim)]
     marginals = {a.name: (rho, k * lf, w) for a, (rho, k, w) in zip(grid.axes, marginals_au)}
     out = {"attrs": attrs, "marginals": marginals, "marginals_au": marginals_au, "energy_factor": ef,
            "initial_psi": None, "potential_full": None, "lanczos": None,
            "detectors": _initial_detector_values(setup, marginals_au),
            "final_values": records_final_values(setup)}
     if grid.ndim == 1:
-        out["initial_psi"] = np.asarray(setup.psi0, np.complex128) * math.sqrt(lf)
-        out["potential_full"] = np.asarray(setup.hamiltonian.static_potential, float) / ef
-    if lanczos and not setup.hamiltonian.time_dependent and grid.size <= LANCZOS_MAX_POINTS:
+        out["initial_psi"] = np.asarray(psi0, np.complex128) * math.sqrt(lf)
+        out["potential_full"] = np.asarray(setup.recorded_potential(), float) / ef
+    # (a falling frame's H is not the lab's: its spectrum would mean nothing to levels)
+    if lanczos and not setup.hamiltonian.time_dependent and grid.size <= LANCZOS_MAX_POINTS \
+            and setup.frame is None:
         resolution, width = band_window(setup.total_steps * setup.dt, setup.sample_steps * setup.dt)
         # a bounded share of the run: at most a tenth of its steps (each costs about two of them), and
         # the ground level only where it is a dense eigh of a few thousand points
@@ -388,9 +435,11 @@ def final_detector_values(setup, psi, length_scale: float) -> dict | None:
     lf = setup.units.factor("length")
     psi_job = (np.multiply(psi.real, length_scale, dtype=np.float64)
                + 1j * np.multiply(psi.imag, length_scale, dtype=np.float64))
-    coords = [setup.grid.axes[0].coordinates / lf]
-    # the geometry as the file gives it back (job units times the factor)
     ax = setup.grid.axes[0]
+    # a falling grid is X(T) below where it started: lab position = coordinate + X
+    shift = 0.0 if setup.frame is None else float(setup.frame.offset(setup.total_steps * setup.dt)[0])
+    coords = [(ax.coordinates + shift) / lf]
+    # the geometry as the file gives it back (job units times the factor)
     stored = RecordedRun(grid=Grid((Axis(ax.name, float(ax.min / lf) * lf, float(ax.max / lf) * lf, ax.points,
                                          ax.boundary),)),
                          mass=float(setup.mass), detectors=[], marginals={}, dt=float(setup.dt),
@@ -404,8 +453,8 @@ def final_detector_values(setup, psi, length_scale: float) -> dict | None:
     for d in setup.detectors:
         x_det = float(d.position / lf) * lf
         side = 1.0 if x0 > x_det else -1.0
-        face = layer_holding(stored, 0, x_det)
-        edge = x_det if face is None else layer_edge(stored, face)
+        face = layer_holding(stored, 0, x_det - shift)
+        edge = x_det if face is None else layer_edge(stored, face) + shift
         beyond.append(side_probability(psi_job, coords, lf, 0, x_det, -side))
         to_come.append(side_probability(psi_job, coords, lf, 0, edge, side, towards=True))
     return {"final_probability_beyond": np.asarray(beyond, float),
@@ -426,8 +475,8 @@ def recorded_run(setup, lanczos: bool = False) -> RecordedRun:
                                                  [RecordedLayer(layer.name, layer.axis) for layer in ab.layers]),
                        time_dependent=bool(setup.hamiltonian.time_dependent),
                        marginals={i: m for i, m in enumerate(rec["marginals_au"])}, dt=float(setup.dt),
-                       psi0=setup.psi0 if one_d else None,
-                       static_potential=setup.hamiltonian.static_potential if one_d else None,
+                       psi0=setup.psi0_lab if one_d else None,
+                       static_potential=setup.recorded_potential() if one_d else None,
                        warnings=None, lanczos=recurrence)
 
 

@@ -207,6 +207,9 @@ def upstream_probability(ds, setup, axis: int, x_det: float, side: float,
         return None
     values, dims, is_psi = found
     coords = [np.asarray(ds[d].values, float) for d in dims]
+    if "frame_offset" in ds.variables:   # a falling grid: lab position = coordinate + offset at the end
+        final = np.atleast_1d(np.asarray(ds["frame_offset"][-1].values, float))
+        coords = [c + final[i] for i, c in enumerate(coords)]
     return side_probability(values, coords, result_units(ds)["length"], axis, x_det, side, towards, is_psi)
 
 
@@ -258,12 +261,14 @@ def _arrivals(ds, detector, classical=True, warnings=True, curves=True):
         raise JobError("RUN.nc", f"{source_name(ds)}: the run holds {len(t)} samples; arrival times need at least 3")
     flux = np.asarray(ds["flux"].values, float)
     forced = _uniform_forces(ds)
+    falling = "frame_offset" in ds.variables
     out = {}
     for j, name in enumerate(names):
         if detector is not None and name != detector:
             continue
         det = setup.detectors[j]
-        face = layer_holding(setup, det.axis, det.position)
+        # on a falling grid a lab detector crosses the layers: its flux is always the lab current
+        face = None if falling else layer_holding(setup, det.axis, det.position)
         notes = list(said)
         if face is not None:
             if "absorbed" not in ds or face not in [str(b) for b in ds["boundary"].values]:

@@ -169,7 +169,8 @@ class ResultWriter:
     def _row_bytes(self) -> int:
         lay = self.layout
         per_detector = 3 if lay.get("detector_amplitude") else 1
-        return 8 * (1 + len(lay.get("scalars", SCALARS)) + 2 + per_detector * len(lay["detectors"]) + len(lay["faces"]))
+        return 8 * (1 + len(lay.get("scalars", SCALARS)) + 2 + per_detector * len(lay["detectors"]) + len(lay["faces"])
+                    + len(lay.get("frame_axes") or ()))
 
     def _remaining_bytes(self) -> int | None:
         """Bytes of data the file still needs from its shapes (before
@@ -276,6 +277,8 @@ class ResultWriter:
                 v.units = f"{u['length']}-0.5"
                 v.long_name = f"{part} part of psi at the detector"
                 v.coordinates = "detector_x detector_axis"
+        if lay.get("frame_axes"):   # a falling grid: lab position = grid coordinate + frame_offset
+            self._define_frame_offset(lay["frame_axes"], u)
         a = self._var("absorbed", "f8", ("time", "boundary"))
         a.units, a.long_name = "1", "probability removed at the face, cumulative"
         if lay.get("autocorrelation", True):
@@ -297,6 +300,25 @@ class ResultWriter:
                 v = self._var(f"psi_{part}", "f8", tuple(state_dims), zlib=True, complevel=4)
                 v.units = f"{u['length']}-{len(names) / 2:g}"
                 v.long_name = f"{part} part of the final wave function"
+
+    def _define_frame_offset(self, axes, u):
+        """``frame_offset`` (time) in 1D, (time, axis) in 2D/3D, and
+        ``snapshot_frame_offset`` on the snapshots' times likewise."""
+        ds = self.ds
+        extra = ()
+        if len(axes) > 1:
+            ds.createDimension("axis", len(axes))
+            v = self._var("axis", str, ("axis",))
+            v.long_name, v.units = "grid axis", "1"
+            for i, name in enumerate(axes):
+                v[i] = name
+            extra = ("axis",)
+        for name, dim, when in (("frame_offset", "time", "sample"),
+                                ("snapshot_frame_offset", "snapshot_time", "snapshot")):
+            v = self._var(name, "f8", (dim,) + extra)
+            v.units = u["length"]
+            v.long_name = (f"lab position of the falling grid's zero at each {when}: lab position = "
+                           "grid coordinate + frame_offset")
 
     def _define_record(self, rec, full_dims, u):
         """What analysis reads instead of rebuilding the set-up
@@ -365,9 +387,11 @@ class ResultWriter:
         if len(self._buf) >= self.block:
             self.flush()
 
-    def add_snapshot(self, time: float, density: np.ndarray, psi: np.ndarray | None = None) -> None:
-        """One density frame (job units, full grid; decimated here), and psi
-        (job units) when the layout stores it."""
+    def add_snapshot(self, time: float, density: np.ndarray, psi: np.ndarray | None = None,
+                     frame_offset=None) -> None:
+        """One density frame (job units, full grid; decimated here), psi
+        (job units) when the layout stores it, and a falling grid's offset
+        (job length unit, per axis)."""
         s = self.layout["stride"]
         cut = tuple(slice(None, None, s) for _ in range(density.ndim))
         i = self._n_snap
@@ -378,6 +402,9 @@ class ResultWriter:
                 k, spacing = self.layout["column"]
                 column = density.sum(axis=k, dtype=np.float64) * spacing
                 self.ds["column_density"][i] = column[cut[:-1]].astype(np.float32)
+            if frame_offset is not None and "snapshot_frame_offset" in self.ds.variables:
+                offset = np.asarray(frame_offset, float)
+                self.ds["snapshot_frame_offset"][i] = offset[0] if offset.size == 1 else offset
             if psi is not None and "psi_snapshot_real" in self.ds.variables:
                 self.ds["psi_snapshot_real"][i] = psi.real[cut].astype(np.float32)
                 self.ds["psi_snapshot_imag"][i] = psi.imag[cut].astype(np.float32)
@@ -405,6 +432,9 @@ class ResultWriter:
                 ds["detector_psi_imag"][i0:i0 + n, :] = amp.imag
         if len(self.layout["faces"]):
             ds["absorbed"][i0:i0 + n, :] = np.array([b["absorbed"] for b in self._buf])
+        if "frame_offset" in ds.variables and "frame_offset" in self._buf[0]:
+            offset = np.array([b["frame_offset"] for b in self._buf])
+            ds["frame_offset"][i0:i0 + n] = offset[:, 0] if offset.shape[1] == 1 else offset
         self._n_time += n
         self._buf.clear()
         ds.sync()

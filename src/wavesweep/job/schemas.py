@@ -10,7 +10,7 @@ from __future__ import annotations
 from dataclasses import replace
 
 from ..fft import AUTO, backend_choices
-from ..grid import BOUNDARIES
+from ..grid import BOUNDARIES, FRAMES
 from ..interaction import COUPLING_KINDS
 from ..propagators import DEFAULT_SCHEME, SCHEMES
 from ..registry import Names
@@ -49,6 +49,11 @@ GRID = {
                           "walls, psi = 0, sine transform); a radial grid is always box"),
     "l": Field("int", 0, nonnegative=True, physics=True,
                doc="angular momentum on a radial grid: adds l (l + 1) / (2 m r^2) to V"),
+    "frame": Field("str", "lab", choices=FRAMES, physics=True,
+                   doc="lab (the grid stays put) or free_fall: the grid follows the classical "
+                       "trajectory of the packet's centre under the job's uniform forces (gravity, "
+                       "field), which the frame removes exactly; other potentials and the detectors "
+                       "stay in the lab; the result's frame_offset says where the grid was"),
 }
 EVOLVE = {
     "dt": Field("time", positive=True, doc="time step"),

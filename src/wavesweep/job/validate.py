@@ -22,7 +22,7 @@ from pathlib import Path
 
 from ..absorbers.layers import face_names
 from ..errors import ErrorCollector, JobError, combine_errors
-from ..grid import BOUNDARIES, Axis, Grid
+from ..grid import BOUNDARIES, FRAMES, Axis, Grid
 from ..io.paths import file_kind
 from ..potentials import DEFAULT_POTENTIAL, REGISTRY, PotentialContext, make_term, term_class
 from ..schema import MAX_INT, Field, check_unknown, unknown_keys, validate_table
@@ -176,12 +176,14 @@ def job_from_dict(raw: dict, overrides=(), source: Path | None = None) -> Job:
         if units is not None else None
     with found.check():
         out["absorber"] = _absorber(raw.get("absorber", {}), u, layout, extents, ndim)
+    # in a free-falling frame detectors stay in the lab: the grid may reach them only later
+    frame = out["grid"].get("frame", "lab") if "grid" in out else "lab"
     with found.check():
         out["record"] = _record(raw.get("record", {}), u, timing, layout)
     axes = grid_axes(out["grid"] if "grid" in out else layout)
     if axes or "grid" in out:   # without any axis the position keys cannot be told
         with found.check():
-            out["detector"] = _detectors(raw.get("detector", []), u, extents, axes)
+            out["detector"] = _detectors(raw.get("detector", []), u, extents if frame == "lab" else None, axes)
     if "interaction" in raw:   # absent: nothing added, the job (and its run id) as before
         with found.check():
             out["interaction"] = _interaction(raw["interaction"], u, ndim, "r" in layout)
@@ -246,7 +248,9 @@ def _check_terms(out: dict, potentials: list, units: UnitSet, found: ErrorCollec
             if table is None:
                 continue
             with found.check():
-                make_term(table, PotentialContext(grid, mass, charge, units, f"{prefix}.{i}"))
+                # a packet's own trap is where it was prepared: in the lab
+                frame = out["grid"].get("frame", "lab") if prefix == "potential" else "lab"
+                make_term(table, PotentialContext(grid, mass, charge, units, f"{prefix}.{i}", frame))
 
 
 def _packet_traps(packet, name) -> list[tuple[str, list]]:
@@ -290,7 +294,7 @@ def _grid(raw, units, compare: bool = True) -> dict:
         raise JobError("grid", "must be a table")
     found = ErrorCollector()
     with found.check():
-        check_unknown(raw, ("x", "y", "z", "r", "boundary", "l"), "grid")
+        check_unknown(raw, ("x", "y", "z", "r", "boundary", "l", "frame"), "grid")
     axes = grid_axes(raw)
     if not axes:
         found.add(JobError("grid.x", "missing; give at least one axis, "
@@ -322,6 +326,15 @@ def _grid(raw, units, compare: bool = True) -> dict:
             raise JobError("grid.l", "angular momentum l applies to a radial grid (grid.r)")
         if radial:
             out["l"] = l_value
+    with found.check():
+        frame = raw.get("frame", "lab")
+        if not isinstance(frame, str) or frame not in FRAMES:
+            raise JobError("grid.frame", f"{frame!r} is not one of {', '.join(map(repr, FRAMES))}")
+        if frame != "lab":   # absent when 'lab': a job without it keeps its text and run id
+            if radial:
+                raise JobError("grid.frame", "a radial grid has no direction to fall along; use a "
+                                             "Cartesian grid (x, y, z) for frame = 'free_fall'")
+            out["frame"] = frame
     found.raise_if_any()
     return out
 

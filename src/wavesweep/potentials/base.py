@@ -38,6 +38,7 @@ class PotentialContext:
     charge: float | None  # e, None when the job gives none
     units: object         # wavesweep.units.UnitSet (for expressions in job units)
     field: str            # dotted job path of this term, for error messages
+    frame: str = "lab"    # grid.frame: "free_fall" removes the uniform forces (wavesweep.frame)
 
 
 class PotentialTerm:
@@ -60,8 +61,10 @@ class PotentialTerm:
     kind: ClassVar[str] = ""
     parameters: ClassVar[dict[str, Field]] = {}
     time_dependent: ClassVar[bool] = False
-    # a force that acts everywhere along the packet's path (gravity): a free-flight
-    # estimate of arrival times means nothing then, and analysis says so
+    # a force that acts everywhere along the packet's path (gravity, a field):
+    # a free-flight estimate of arrival times means nothing then, and analysis
+    # says so; V = -F(t) . r exactly, so a free-falling frame removes it
+    # (:mod:`wavesweep.frame`), and the term gives F by :meth:`force_at`
     uniform_force: ClassVar[bool] = False
     summary: ClassVar[str] = ""
     formula: ClassVar[str] = ""
@@ -95,6 +98,11 @@ class PotentialTerm:
     def separable(self):
         """``(g, f)`` with V(r, t) = f(t) g(r), or None."""
         return None
+
+    def force_at(self, t: float) -> np.ndarray:
+        """A :attr:`uniform_force` term's force F(t) = -grad V (hartree/bohr,
+        one per grid axis), with V = -F(t) . r."""
+        raise NotImplementedError(f"{type(self).__name__} is no uniform force")
 
 
 REGISTRY: dict[str, type[PotentialTerm]] = {}

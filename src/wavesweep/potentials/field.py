@@ -25,6 +25,7 @@ ENVELOPES = ("constant", "sin2", "trapezoid", "gaussian")
 class DrivingField(PotentialTerm):
     kind = "field"
     time_dependent = True
+    uniform_force = True
     summary = ("electric field along `axis`, V = -q E(t) x, E(t) = amplitude envelope(t) "
                "cos(omega (t - start) + phase)")
     formula = "\n".join((
@@ -102,6 +103,12 @@ class DrivingField(PotentialTerm):
 
     def separable(self):
         return self.spatial, self.electric_field
+
+    def force_at(self, t: float) -> np.ndarray:
+        """q E(t) along the field's axis (hartree/bohr)."""
+        out = np.zeros(self.ctx.grid.ndim)
+        out[self.axis_of()] = self.ctx.charge * self.electric_field(t)
+        return out
 
     def at_time(self, mesh, t):
         return self.electric_field(t) * self.spatial(mesh)

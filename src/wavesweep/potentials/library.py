@@ -406,11 +406,11 @@ class Gravity(PotentialTerm):
                                         "use a Cartesian grid (x, y, z) with a box axis")
         i = self.axis_index()
         ax = grid.axes[i]
-        if ax.boundary == "periodic":
+        if ax.boundary == "periodic" and self.ctx.frame == "lab":   # a falling frame removes V
             raise JobError(f"grid.{ax.name}.boundary",
                            f"gravity along {ax.name} ({f}) needs a box axis: a uniform force is not "
                            f"periodic (V jumps by m g L at the wrap); set grid.{ax.name}.boundary = "
-                           "'box' (or grid.boundary = 'box')")
+                           "'box' (or grid.boundary = 'box'), or let the grid fall with it: grid.frame = 'free_fall'")
 
     def force(self) -> np.ndarray:
         """The uniform force -grad V per grid axis (hartree/bohr): -m g on
@@ -418,6 +418,9 @@ class Gravity(PotentialTerm):
         out = np.zeros(self.ctx.grid.ndim)
         out[self.axis_index()] = -self.ctx.mass * self.p["acceleration"]
         return out
+
+    def force_at(self, t: float) -> np.ndarray:
+        return self.force()
 
     def static(self, mesh):
         s = mesh[self.ctx.grid.names[self.axis_index()]]
