@@ -48,7 +48,7 @@ class FreeFallFrame:
     u0 per axis.  Time-independent forces are integrated in closed form;
     time-dependent ones (a pulse) by an explicit Runge-Kutta method of
     order 8 (DOP853; Hairer, Norsett & Wanner, Solving ODEs I, 1993) at a
-    relative tolerance of 1e-13, its dense output read at each kick."""
+    relative tolerance of 1e-12, its dense output read at each kick."""
 
     def __init__(self, forces, mass: float, velocity0, ndim: int, duration: float):
         self.mass = float(mass)
@@ -91,7 +91,7 @@ class FreeFallFrame:
                     scales.append(float(term.p[key]))
         y0 = np.concatenate([np.zeros(nd), self.velocity0, [0.0]])
         end = max(self.duration, 1e-300)
-        sol = solve_ivp(rhs, (0.0, end), y0, method="DOP853", rtol=1e-13, atol=1e-300,
+        sol = solve_ivp(rhs, (0.0, end), y0, method="DOP853", rtol=1e-12, atol=1e-15,
                         max_step=min(scales) / 40, dense_output=True)
         if not sol.success:   # cannot happen for a bounded force; say so if it does
             raise RuntimeError(f"the free-fall frame's trajectory could not be integrated: {sol.message}")

@@ -118,7 +118,9 @@ class Model:
 
     def _term(self, i, table, prefix="potential"):
         """A potential term from its table; ``prefix.i`` names it in messages."""
-        ctx = PotentialContext(self.grid, self.mass, self.charge, self.units, f"{prefix}.{i}")
+        # the job's terms see the grid's frame; a packet's own trap is where it was prepared: the lab
+        frame = self.job.table["grid"].get("frame", "lab") if prefix == "potential" else "lab"
+        ctx = PotentialContext(self.grid, self.mass, self.charge, self.units, f"{prefix}.{i}", frame)
         return make_term(table, ctx)
 
     def hamiltonian_static_potential(self) -> np.ndarray:
