@@ -1165,27 +1165,42 @@ def detector_findings(setup) -> list[Finding]:
 
 
 def _falling_detector_findings(setup, th: float) -> list[Finding]:
-    """On a falling grid the detectors stay in the lab: one the grid's
-    interior (inside the absorbing layers) never reaches during the run
-    records no flux at all."""
+    """On a falling grid: where the grid goes (said, "ok"), and for each
+    detector (fixed in the lab) when the grid's interior (inside the
+    absorbing layers) holds it; one it never reaches records no flux at
+    all (a warning)."""
     u = setup.units
     lf, L = u.factor("length"), u.unit_label("length")
-    times = np.linspace(0.0, setup.duration, 1025)
+    tf, T = u.factor("time"), u.unit_label("time")
+    times = np.linspace(0.0, setup.duration, 4097)
     offsets = np.array([setup.frame.offset(t) for t in times])
-    out = []
+    removed = sorted({term.kind for term in setup.lab_terms if term.uniform_force}) or ["none"]
+    moved = ", ".join(f"{ax.name} by {offsets[-1, i] / lf:.6g} {L}" for i, ax in enumerate(setup.grid.axes))
+    kept = sorted({term.kind for term in setup.terms})
+    out = [Finding("frame", "ok",
+                   f"the grid falls with the packet (uniform forces removed: {', '.join(removed)}); over the run "
+                   f"it moves {moved}; " + (f"lab terms seen at lab positions: {', '.join(kept)}" if kept
+                                            else "no other potential: the packet moves freely on the grid"),
+                   {"final_offset": [float(v / lf) for v in offsets[-1]]})]
     for n, det in enumerate(setup.detectors):
         ax = setup.grid.axes[det.axis]
         faces = {layer.name for layer in setup.absorber.layers if layer.axis == det.axis}
         lo = ax.min + (th if f"{ax.name}-" in faces else 0.0)
         hi = ax.max - (th if f"{ax.name}+" in faces else 0.0)
         y = det.position - offsets[:, det.axis]
-        if np.any((y > lo) & (y < hi)):
+        inside = (y > lo) & (y < hi)
+        where = f"{det.name!r} at {ax.name} = {det.position / lf:.6g} {L} (lab)"
+        if np.any(inside):
+            first, last = times[inside][0] / tf, times[inside][-1] / tf
+            out.append(Finding("detector", "ok", f"{where} is inside the falling grid's interior from t = "
+                                                 f"{first:.4g} to {last:.4g} {T}",
+                               {"detector": det.name, "from": first, "to": last}))
             continue
         seen_lo, seen_hi = offsets[:, det.axis].min() + lo, offsets[:, det.axis].max() + hi
         out.append(Finding("detector", "warn",
-            f"{det.name!r} at {ax.name} = {det.position / lf:.4g} {L} (lab) is never inside the falling grid's "
-            f"interior: over the run it covers {ax.name} = {seen_lo / lf:.4g} to {seen_hi / lf:.4g} {L}, so the "
-            "detector records no flux; lengthen evolve.duration or move the detector",
+            f"{where} is never inside the falling grid's interior: over the run it covers {ax.name} = "
+            f"{seen_lo / lf:.4g} to {seen_hi / lf:.4g} {L}, so the detector records no flux; lengthen "
+            "evolve.duration or move the detector",
             {"detector": det.name}, field=f"detector.{n}.{ax.name}"))
     return out
 
@@ -1489,11 +1504,11 @@ def trial_costs(setup, seconds: float = 1.0) -> tuple[float, float, int]:
     per_step = (_time.perf_counter() - t0) / max(n, 1)
     obs = setup.make_observer()
     v = setup.hamiltonian.potential(prop.t)
-    obs.measure(psi, v)
+    obs.measure(psi, v, prop.t)
     times = []
     for _ in range(5):
         t1 = _time.perf_counter()
-        obs.measure(psi, v)
+        obs.measure(psi, v, prop.t)
         times.append(_time.perf_counter() - t1)
     return per_step, float(np.median(times)), n
 

@@ -207,6 +207,8 @@ class Observer:
             raise ValueError("this observer measures a batch: use measure_members")
         if self.frame is None:
             return self.measure_members(psi, potential)[0]
+        if t is None:
+            raise ValueError("a falling grid's values need the sample's time t to be put in the lab")
         return self._in_lab(self.measure_members(psi, potential, t)[0], psi, t)
 
     def measure_members(self, psi: np.ndarray, potential: np.ndarray, t: float | None = None) -> list[dict]:

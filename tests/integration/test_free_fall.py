@@ -237,8 +237,10 @@ def test_the_frame_is_validated_and_said(tmp_path):
     short = copy.deepcopy(base)
     short["detector"] = [{"name": "far", "x": -1e5}]
     findings = [f for f in assess(setup_of(short)) if f.topic == "detector"]
-    assert findings and "never inside the falling grid" in findings[0].message
-    assert not [f for f in assess(setup_of(base)) if f.topic == "detector"]
+    assert findings[0].level == "warn" and "never inside the falling grid" in findings[0].message
+    said = {f.topic: f for f in assess(setup_of(base)) if f.topic in ("detector", "frame")}
+    assert said["detector"].level == "ok" and "inside the falling grid's interior from t = 1" in said["detector"].message
+    assert said["frame"].level == "ok" and "gravity" in said["frame"].message
     # never batched (each run's frame follows its own packet); no lab autocorrelation recorded
     assert batch_key(make_job(base).table) is None
     ds = run_table({**base, "evolve": {**base["evolve"], "duration": 0.5}, "detector": []}, tmp_path)
