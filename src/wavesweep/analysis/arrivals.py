@@ -344,6 +344,8 @@ def _arrivals(ds, detector, classical=True, warnings=True, curves=True):
                                 f"; {to_come:.3g} is still on its way" if stats["truncated"] else ""))
         if not cl_prob > NOTHING_ARRIVED:
             stats["classical_mean"] = math.nan
+        # the free-flight estimate is a reference only where no uniform force acts along the path
+        stats["classical_is_reference"] = bool(classical and not forced)
         if classical and forced:
             notes.append(f"detector {name!r}: classical_mean is the free-flight estimate, and this run's "
                          f"{' and '.join(forced)} acts all along the path: it is no reference here")

@@ -46,6 +46,8 @@ def plot_arrivals(distributions: dict, path, title: str = "", dpi: int = 100, ov
             ax.fill_between(d.time, 0, neg, color=BACKFLOW, alpha=0.6,
                             label="negative flux (flowing back)")
         cp = d.stats.get("classical_probability", 0.0)
+        if not d.stats.get("classical_is_reference", True):
+            cp = 0.0   # a free-flight curve under gravity or a field would only mislead: not drawn
         if cp > 0:
             ax.plot(d.time, d.classical_density / cp, color=CLASSICAL, lw=1.2, ls="--",
                     label="classical free flight")
