@@ -16,6 +16,19 @@ Im psi and +-|psi| instead (needs ``record.snapshot_psi = true``).
 2D: the density as an image on one colour scale for all frames (linear or
 logarithmic), potential contours over it, equal aspect.  3D: the projection
 (integral along an axis) or a slice, drawn as in 2D.
+
+A run in a falling frame (``frame_offset`` in the result) is drawn in the
+lab: each frame at its lab positions (grid coordinate + the snapshot's
+``snapshot_frame_offset``), axes labelled "lab x (...)", detectors and the
+potential fixed where they are in the lab, absorbing layers moving with
+the grid, the grid's offset printed beside the time.  The view spans the
+whole region the grid visits over the movie, so the packet is seen
+falling, unless along some axis that region is longer than
+``FOLLOW_SPAN`` grid extents (a 10 cm fall of a 100 um grid is a thousand
+of them, where the packet would shrink to a line): along such an axis the
+view follows the grid, a window of the grid's own extent at its lab
+position in each frame (the tick labels are lab positions; the frame is
+then drawn whole, not blitted, since the axes move).
 """
 from __future__ import annotations
 
@@ -31,7 +44,7 @@ from ..errors import JobError
 from ..io.atomic import atomic_rename, temporary_path
 from ..io.paths import output_file
 from . import style
-from .scene import FrameReader, Scene, column_scene, read_scene
+from .scene import FOLLOW_SPAN, FrameReader, Scene, column_scene, read_scene
 
 __all__ = ["MovieOptions", "render_movie", "VideoWriter", "parse_size"]
 
@@ -145,8 +158,11 @@ class Painter:
     """Draws one run's frames into one figure; subclasses know the geometry.
 
     ``prepare(reader, indices)`` may make a first pass over the frames (the
-    colour or y scale is fixed over the movie); ``update(frame, t)`` sets the
-    moving artists and returns them."""
+    colour or y scale is fixed over the movie); ``update(frame, t, i)`` sets
+    the moving artists for snapshot ``i`` and returns them.  ``redraw``: the
+    axes move from frame to frame (a view following a falling grid), so each
+    frame is drawn whole instead of over a fixed background.  ``limits``:
+    axis name -> the (lab) view limits of the current frame."""
 
     def __init__(self, scene: Scene, options: MovieOptions):
         self.scene = scene
@@ -154,6 +170,54 @@ class Painter:
         with style.style():
             self.fig = style.figure(*options.size, options.dpi)
         self.animated = []
+        self.following: list[str] = []
+        self.redraw = False
+        self.limits: dict = {}
+        self._pad: dict = {}
+        self._moving_layers = []     # (patch, label or None, layer, "v" or "h")
+
+    def _plan_view(self, axes, indices, pad: dict) -> None:
+        """The view along each drawn axis: the grid (lab runs, as always),
+        the lab region a falling grid visits over ``indices`` (each padded by
+        ``pad[axis]``), or, when that region exceeds ``FOLLOW_SPAN`` grid
+        extents, a window following the grid (``self.following``)."""
+        sc = self.scene
+        self._pad = dict(pad)
+        for a in axes:
+            c = sc.coords[a]
+            extent = float(np.max(c) - np.min(c)) + 2 * pad[a]
+            lo, hi = sc.visited(a, indices)
+            if sc.moves(a) and (hi - lo) + 2 * pad[a] > FOLLOW_SPAN * extent:
+                self.following.append(a)
+            self.limits[a] = (lo - pad[a], hi + pad[a])
+        self.redraw = bool(self.following)
+        if self.following and indices:
+            self._follow(indices[0])
+
+    def _follow(self, i: int) -> None:
+        """The view limits of snapshot ``i`` along the followed axes: the grid's lab extent."""
+        for a in self.following:
+            lo, hi = self.scene.visited(a, [i])
+            self.limits[a] = (lo - self._pad[a], hi + self._pad[a])
+
+    def _move_layers(self, i: int) -> None:
+        """Absorbing layers of a falling grid at snapshot ``i`` (they fall with it)."""
+        for patch, label, layer, orient in self._moving_layers:
+            lo, hi = self.scene.layer_span(layer, i)
+            if orient == "v":
+                patch.set_x(lo)
+                patch.set_width(hi - lo)
+            else:
+                patch.set_y(lo)
+                patch.set_height(hi - lo)
+            if label is not None:
+                label.set_x((lo + hi) / 2)
+
+    def _view_note(self) -> str:
+        """A title's note on a view that follows the grid."""
+        if not self.following:
+            return ""
+        return f"  (view follows the falling grid along {', '.join(self.following)})"
 
     def frame_of(self, reader, i):
         return reader.frame(i)
@@ -164,21 +228,35 @@ class Painter:
     def update(self, frame, t) -> list:
         raise NotImplementedError
 
-    def _time_text(self, ax):
-        txt = ax.text(0.015, 0.97, "", transform=ax.transAxes, ha="left", va="top", fontsize=10,
-                      bbox=dict(boxstyle="round,pad=0.25", fc="white", ec="none", alpha=0.8))
+    def _time_text(self, ax, corner: bool = False):
+        """The time in the axes' top left corner, or with ``corner`` in the
+        figure's bottom left one (a 2D falling grid's view may leave the
+        axes too narrow for the grid's offset)."""
+        where = (dict(x=0.01, y=0.01, transform=self.fig.transFigure, va="bottom") if corner
+                 else dict(x=0.015, y=0.97, transform=ax.transAxes, va="top"))
+        txt = ax.text(s="", ha="left", fontsize=10,
+                      bbox=dict(boxstyle="round,pad=0.25", fc="white", ec="none", alpha=0.8), **where)
         self.animated.append(txt)
         return txt
 
-    def _time_label(self, t) -> str:
-        return f"t = {t:.6g} {style.pretty_unit(self.scene.units['time'])}"
+    def _time_label(self, t, i: int = 0) -> str:
+        """The time, and for a falling grid its lab offset at snapshot ``i``."""
+        text = f"t = {t:.6g} {style.pretty_unit(self.scene.units['time'])}"
+        sc = self.scene
+        moving = [a for a in sc.axes if sc.moves(a)]
+        if moving:
+            L = style.pretty_unit(sc.units["length"])
+            text += "\ngrid offset " + ", ".join(f"{a} = {sc.offset(a, i):+.6g} {L}" for a in moving)
+        return text
 
 
 class Painter1D(Painter):
     def prepare(self, reader, indices):
         sc, opt = self.scene, self.opt
         name = sc.axes[0]
-        self.x = sc.coords[name]
+        self.name = name
+        self.x = sc.lab_coords(name, indices[0] if indices else 0)
+        self._plan_view([name], indices, {name: 0.0})
         L = style.pretty_unit(sc.units["length"])
         if opt.parts and not sc.has_psi:
             raise JobError("--parts", "the run stored no psi with its snapshots; run it with "
@@ -214,32 +292,42 @@ class Painter1D(Painter):
                 self._floor = ax.get_ylim()[0]
                 self.fill = ax.fill_between(self.x, self._floor, self._floor, color=style.DENSITY,
                                             alpha=0.25, lw=0, animated=True)
-            ax.set_xlim(self.x[0], self.x[-1])
-            ax.set_xlabel(f"{name} ({L})")
+            self.ax = ax
+            ax.set_xlim(*self.limits[name])
+            ax.set_xlabel(sc.axis_label(name))
+            falling = sc.offsets is not None
             for layer in sc.layers:
-                ax.axvspan(layer.start, layer.stop, color=style.ABSORBER, alpha=0.45, lw=0)
-                ax.text((layer.start + layer.stop) / 2, 0.015, "absorber", transform=ax.get_xaxis_transform(),
-                        ha="center", va="bottom", fontsize=7, color="#555555")
+                moves = sc.moves(layer.axis)
+                patch = ax.axvspan(layer.start, layer.stop, color=style.ABSORBER, alpha=0.45, lw=0,
+                                   animated=moves)
+                label = ax.text((layer.start + layer.stop) / 2, 0.015, "absorber", transform=ax.get_xaxis_transform(),
+                                ha="center", va="bottom", fontsize=7, color="#555555", animated=moves,
+                                clip_on=falling)
+                if moves:   # the layers belong to the grid: they fall with it
+                    self._moving_layers.append((patch, label, layer, "v"))
             for dname, dax, pos in sc.detectors:
-                if dax == name:
+                if dax == name:   # detectors are fixed in the lab
                     ax.axvline(pos, color=style.DETECTOR, lw=0.9, ls="--")
                     ax.text(pos, 0.985, f" {style.plain(dname)}", transform=ax.get_xaxis_transform(),
-                            ha="left", va="top", fontsize=7, color=style.DETECTOR)
+                            ha="left", va="top", fontsize=7, color=style.DETECTOR, clip_on=falling)
             if self._has_potential():
                 v = sc.potential
                 span = float(np.ptp(v))
                 vax = ax.twinx()
                 vax.spines["right"].set_visible(True)
-                vax.plot(self.x, v, color=style.POTENTIAL, lw=1.0, alpha=0.9)
+                # fixed in the lab: recorded at the grid's lab positions at t = 0 (offset zero)
+                vax.plot(sc.coords[name], v, color=style.POTENTIAL, lw=1.0, alpha=0.9)
                 # V's minimum on the zero line of the left axis, its maximum below the top
                 below = 1.15 * span if opt.parts else 0.0
                 vax.set_ylim(float(v.min()) - below, float(v.min()) + 1.15 * span)
                 vax.set_ylabel(f"V ({style.pretty_unit(sc.units['energy'])})", color=style.POTENTIAL)
                 vax.tick_params(axis="y", colors=style.POTENTIAL)
-            ax.set_title(style.plain(sc.title) + (f"  (integrated over {sc.column[0]})" if sc.column else ""),
-                         loc="left")
+            ax.set_title(style.plain(sc.title) + (f"  (integrated over {sc.column[0]})" if sc.column else "")
+                         + self._view_note(), loc="left")
             self.text = self._time_text(ax)
-        self.animated[:0] = self.lines + ([self.fill] if self.fill is not None else [])
+        self.animated[:0] = ([p for p, _, _, _ in self._moving_layers] + self.lines
+                             + ([self.fill] if self.fill is not None else [])
+                             + [lab for _, lab, _, _ in self._moving_layers])
 
     def _has_potential(self) -> bool:
         v = self.scene.potential
@@ -255,18 +343,24 @@ class Painter1D(Painter):
     def frame_of(self, reader, i):
         return self._values(reader, i)
 
-    def update(self, frame, t):
+    def update(self, frame, t, i: int = 0):
+        if self.scene.offsets is not None:   # a falling grid: this snapshot's lab positions
+            self.x = self.scene.lab_coords(self.name, i)
+            self._move_layers(i)
+            if self.following:
+                self._follow(i)
+                self.ax.set_xlim(*self.limits[self.name])
         if self.opt.parts:
             mod, re, im = frame
             for line, y in zip(self.lines, (mod, -mod, re, im)):
-                line.set_ydata(y)
+                line.set_data(self.x, y)
         else:
             y = np.maximum(frame[0], self._floor)
-            self.lines[0].set_ydata(y)
+            self.lines[0].set_data(self.x, y)
             verts = np.concatenate([np.column_stack([self.x, y]),
                                     [[self.x[-1], self._floor], [self.x[0], self._floor]]])
             self.fill.set_verts([verts])
-        self.text.set_text(self._time_label(t))
+        self.text.set_text(self._time_label(t, i))
         return self.animated
 
 
@@ -287,46 +381,55 @@ class Painter2D(Painter):
         a, b = self.plane
         xa, xb = sc.coords[a], sc.coords[b]
         da, db = (xa[1] - xa[0]) / 2, (xb[1] - xb[0]) / 2
+        self._half = (da, db)
         from mpl_toolkits.axes_grid1 import make_axes_locatable   # lazy: matplotlib, as above
 
-        extent = (xa[0] - da, xa[-1] + da, xb[0] - db, xb[-1] + db)
+        first = indices[0] if indices else 0
+        oa, ob = sc.offset(a, first), sc.offset(b, first)
+        extent = (xa[0] - da + oa, xa[-1] + da + oa, xb[0] - db + ob, xb[-1] + db + ob)
+        self._plan_view([a, b], indices, {a: abs(da), b: abs(db)})
         overlays = []      # drawn over the image each frame (the image is drawn after the background)
         with style.style():
             ax = self.fig.add_subplot(111)
             self.image = ax.imshow(np.zeros((len(xb), len(xa))), origin="lower", norm=norm,
                                    cmap=style.DENSITY_CMAP, aspect="equal", interpolation="nearest",
                                    extent=extent, animated=True)
-            ax.set_xlim(extent[0], extent[1])
-            ax.set_ylim(extent[2], extent[3])
+            self.ax = ax
+            ax.set_xlim(*self.limits[a])
+            ax.set_ylim(*self.limits[b])
             cax = make_axes_locatable(ax).append_axes("right", size="3%", pad=0.12)
             bar = self.fig.colorbar(self.image, cax=cax)
             bar.set_label(self.density_label + (" (log scale)" if opt.scale == "log" else ""))
             v = self._plane_potential()
             if v is not None and float(np.ptp(v)) > 0:
                 levels = np.linspace(float(v.min()), float(v.max()), 7)[1:-1]
+                # fixed in the lab: recorded at the grid's lab positions at t = 0 (offset zero)
                 overlays.append(ax.contour(xa, xb, v.T, levels=levels, colors="white",
                                            linewidths=0.7, alpha=0.85))
             for layer in sc.layers:
                 span = ax.axvspan if layer.axis == a else (ax.axhspan if layer.axis == b else None)
                 if span is not None:
                     overlays.append(span(layer.start, layer.stop, color="white", alpha=0.18, lw=0))
+                    if sc.moves(layer.axis):   # the layers belong to the grid: they fall with it
+                        self._moving_layers.append((overlays[-1], None, layer, "v" if layer.axis == a else "h"))
             for dname, dax, pos in sc.detectors:
                 if dax == a:
                     overlays.append(ax.axvline(pos, color=style.DETECTOR, lw=1.0, ls="--"))
                     overlays.append(ax.text(pos, 0.985, f" {style.plain(dname)}", transform=ax.get_xaxis_transform(),
-                                            ha="left", va="top", fontsize=7, color=style.DETECTOR))
+                                            ha="left", va="top", fontsize=7, color=style.DETECTOR,
+                                            clip_on=sc.offsets is not None))
                 elif dax == b:
                     overlays.append(ax.axhline(pos, color=style.DETECTOR, lw=1.0, ls="--"))
                     overlays.append(ax.text(0.005, pos, f"{style.plain(dname)} ", transform=ax.get_yaxis_transform(),
-                                            ha="left", va="bottom", fontsize=7, color=style.DETECTOR))
+                                            ha="left", va="bottom", fontsize=7, color=style.DETECTOR,
+                                            clip_on=sc.offsets is not None))
             for o in overlays:
                 o.set_animated(True)
-            L = style.pretty_unit(sc.units["length"])
-            ax.set_xlabel(f"{a} ({L})")
-            ax.set_ylabel(f"{b} ({L})")
-            ax.set_title(style.plain(sc.title) + self.subtitle, loc="left")
+            ax.set_xlabel(sc.axis_label(a))
+            ax.set_ylabel(sc.axis_label(b))
+            ax.set_title(style.plain(sc.title) + self.subtitle + self._view_note(), loc="left")
             self.fig.subplots_adjust(left=0.08, right=0.9, bottom=0.11, top=0.92)
-            self.text = self._time_text(ax)
+            self.text = self._time_text(ax, corner=any(sc.moves(n) for n in sc.axes))
         self.animated[:0] = [self.image, *overlays]
 
     def _plane(self, sc):
@@ -351,7 +454,9 @@ class Painter2D(Painter):
             self.reduce = lambda f: np.take(f, j, axis=k)
             self._cut = ("slice", k, j)
             self.density_label = f"probability density ({style.pretty_unit(sc.units['density'])})"
-            self.subtitle = f"  (slice {axis} = {sc.coords[axis][j]:.4g} {sc.units['length']})"
+            # a falling grid is sliced at a grid coordinate: the slice falls with the grid
+            self.subtitle = (f"  (slice {axis} = {sc.coords[axis][j]:.4g} {sc.units['length']}"
+                             + (" of the falling grid)" if sc.moves(axis) else ")"))
         else:
             axis = opt.projection or sc.axes[-1]
             if axis not in sc.axes:
@@ -371,9 +476,20 @@ class Painter2D(Painter):
         kind, k, j = self._cut
         return np.take(v, j, axis=k) if kind == "slice" else v.mean(axis=k)
 
-    def update(self, frame, t):
+    def update(self, frame, t, i: int = 0):
+        sc = self.scene
+        if sc.offsets is not None:   # a falling grid: this snapshot's lab positions
+            a, b = self.plane
+            xa, xb = sc.lab_coords(a, i), sc.lab_coords(b, i)
+            da, db = self._half
+            self.image.set_extent((xa[0] - da, xa[-1] + da, xb[0] - db, xb[-1] + db))
+            self._move_layers(i)
+            if self.following:
+                self._follow(i)
+                self.ax.set_xlim(*self.limits[a])
+                self.ax.set_ylim(*self.limits[b])
         self.image.set_data(self.reduce(frame).T)
-        self.text.set_text(self._time_label(t))
+        self.text.set_text(self._time_label(t, i))
         return self.animated
 
 
@@ -430,8 +546,11 @@ def render_frames(scene: Scene, options: MovieOptions, sink, indices=None) -> di
         background = canvas.copy_from_bbox(painter.fig.bbox)
         t1 = time.perf_counter()
         for i in indices:
-            artists = painter.update(painter.frame_of(reader, i), float(reader.times[i]))
-            canvas.restore_region(background)
+            artists = painter.update(painter.frame_of(reader, i), float(reader.times[i]), i)
+            if painter.redraw:        # the view moved with a falling grid: axes and ticks anew
+                canvas.draw()
+            else:
+                canvas.restore_region(background)
             for a in artists:
                 painter.fig.draw_artist(a)
             rgb = np.asarray(canvas.buffer_rgba())[:, :, :3]

@@ -2,6 +2,16 @@
 result file (job units): axes, potential, absorbing layers, detectors, units,
 and a streaming reader for the snapshot frames.
 
+A run in a falling frame (``[grid] frame = "free_fall"``) stores where its
+grid was: lab position = grid coordinate + ``snapshot_frame_offset`` at each
+snapshot.  The scene keeps those offsets per axis (:attr:`Scene.offsets`)
+and draws in the lab: :meth:`Scene.lab_coords` gives a frame's lab
+positions, :meth:`Scene.visited` the region the grid sweeps over the run.
+Detectors and the recorded potential are fixed in the lab (the potential
+is recorded at the grid's lab positions at t = 0, where the offset is zero
+by construction); absorbing layers belong to the grid and move with it
+(:meth:`Scene.layer_span`).
+
 Frames are read one at a time with netCDF4 (each frame is one chunk on
 disk), so memory does not depend on the number of snapshots.
 """
@@ -16,8 +26,15 @@ import numpy as np
 
 from ..errors import JobError
 from ..io.results import open_result
+from .style import pretty_unit
 
 __all__ = ["Scene", "FrameReader", "read_scene"]
+
+# a falling grid whose visited lab region exceeds this many grid extents
+# along an axis is followed by a movie's view along it (a fixed view would
+# show the packet as a sliver; 4 keeps the grid at least a quarter of the
+# view, common practice for a readable figure rather than a derived number)
+FOLLOW_SPAN = 4.0
 
 
 @dataclass
@@ -44,10 +61,48 @@ class Scene:
     # a column scene (column_scene): the frames are summed over this axis of the
     # stored snapshots, ``(name, index among the stored axes, spacing)``
     column: tuple | None = None
+    # a falling grid: axis name -> lab offset of the grid at each snapshot
+    # (job length units, snapshot_frame_offset); None for a grid fixed in the lab
+    offsets: dict | None = None
 
     @property
     def ndim(self) -> int:
         return len(self.axes)
+
+    def offset(self, axis: str, i: int) -> float:
+        """The lab offset of the grid along ``axis`` at snapshot ``i`` (0 in the lab frame)."""
+        if self.offsets is None or axis not in self.offsets:
+            return 0.0
+        return float(self.offsets[axis][i])
+
+    def moves(self, axis: str) -> bool:
+        """Whether the grid moves along ``axis`` during the run."""
+        return self.offsets is not None and axis in self.offsets and bool(np.any(self.offsets[axis] != 0))
+
+    def lab_coords(self, axis: str, i: int) -> np.ndarray:
+        """Lab positions of the snapshot coordinates along ``axis`` at
+        snapshot ``i``: coordinate + snapshot_frame_offset (job length units)."""
+        return self.coords[axis] + self.offset(axis, i)
+
+    def visited(self, axis: str, indices=None) -> tuple[float, float]:
+        """(lowest, highest) lab position of the snapshot coordinates along
+        ``axis`` over the snapshots ``indices`` (default all)."""
+        c = self.coords[axis]
+        lo, hi = float(np.min(c)), float(np.max(c))
+        if self.offsets is None or axis not in self.offsets:
+            return lo, hi
+        off = self.offsets[axis] if indices is None else self.offsets[axis][list(indices)]
+        return lo + float(np.min(off)), hi + float(np.max(off))
+
+    def layer_span(self, layer, i: int) -> tuple[float, float]:
+        """Lab positions (start, stop) of an absorbing layer at snapshot ``i``:
+        the layers belong to the grid and fall with it."""
+        off = self.offset(layer.axis, i)
+        return layer.start + off, layer.stop + off
+
+    def axis_label(self, axis: str) -> str:
+        """"x (nm)" for a lab grid; "lab x (nm)" for a falling one."""
+        return f"{'lab ' if self.offsets is not None else ''}{axis} ({pretty_unit(self.units['length'])})"
 
 
 def read_scene(path, field_name: str = "RUN.nc") -> Scene:
@@ -74,13 +129,28 @@ def read_scene(path, field_name: str = "RUN.nc") -> Scene:
         }
         scene = Scene(Path(path), str(ds.attrs.get("title", "")), axes, coords,
                       ds.attrs.get("grid_kind") == "radial", pot, _layers(job, axes, coords), dets,
-                      units, int(ds.sizes.get("snapshot_time", 0)), "psi_snapshot_real" in ds)
+                      units, int(ds.sizes.get("snapshot_time", 0)), "psi_snapshot_real" in ds,
+                      offsets=_snapshot_offsets(ds, axes))
     finally:
         ds.close()
     if scene.n_snapshots == 0:
         raise JobError(field_name, f"{str(path)!r} holds no density snapshots; run the job with "
                                    "record.snapshot_every shorter than evolve.duration")
     return scene
+
+
+def _snapshot_offsets(ds, axes) -> dict | None:
+    """Axis name -> the grid's lab offset at each snapshot (job length
+    units), from ``snapshot_frame_offset``: dims (snapshot_time) in 1D,
+    (snapshot_time, axis) in 2D/3D; None for a run whose grid stays in the lab."""
+    if "snapshot_frame_offset" not in ds:
+        return None
+    off = ds["snapshot_frame_offset"]
+    if "axis" in off.dims:
+        names = [str(v) for v in ds["axis"].values]
+        values = np.asarray(off.transpose("snapshot_time", "axis").values, float)
+        return {a: values[:, names.index(a)] for a in axes if a in names}
+    return {axes[0]: np.asarray(off.values, float)}
 
 
 def _absorber_and_grid(ds) -> dict:
@@ -137,7 +207,8 @@ def column_scene(scene: Scene, axis: str) -> Scene:
     rest = [a for a in scene.axes if a != axis]
     units = dict(scene.units)
     units["density"] = f"{units['length']}-{len(rest)}"
-    return replace(scene, axes=rest, coords={a: scene.coords[a] for a in rest}, potential=None,
+    offsets = None if scene.offsets is None else {a: o for a, o in scene.offsets.items() if a in rest}
+    return replace(scene, axes=rest, coords={a: scene.coords[a] for a in rest}, potential=None, offsets=offsets,
                    layers=[layer for layer in scene.layers if layer.axis in rest],
                    detectors=[d for d in scene.detectors if d[1] in rest], units=units,
                    column=(axis, k, spacing))

@@ -3,6 +3,17 @@ probability books, detector fluxes, energy drift) and of a study (what was
 transmitted, reflected and when it arrived, against the swept parameters).
 
 Every axis is labelled with its unit; colours follow :mod:`.style`.
+
+A run in a falling frame (``frame_offset`` in the result) is drawn in the
+lab: each snapshot's row of the density map at its lab positions (grid
+coordinate + ``snapshot_frame_offset``), so the map shows the fall itself;
+detectors stay where they are in the lab, absorbing layers fall with the
+grid, and the axes read "lab x (...)".  The x_mean, flux and energy
+records of such a run are lab values already.  Where the fall is long
+against the grid (its visited region more than ``FOLLOW_SPAN`` grid
+extents, the band of the packet a sliver of the map) the grid's edges are
+drawn over the map so its path stays visible; the movie follows the grid
+instead (:mod:`.movie`).
 """
 from __future__ import annotations
 
@@ -11,14 +22,17 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
+from dataclasses import dataclass
+
 from ..errors import JobError
 from ..io.atomic import atomic_output
 from ..io.paths import input_file, output_file
 from ..io.results import open_result
 from . import style
-from .scene import FrameReader, column_scene, read_scene
+from .scene import FOLLOW_SPAN, FrameReader, column_scene, read_scene
 
-__all__ = ["plot_result", "plot_run", "plot_study", "FIGURE_TYPES"]
+__all__ = ["plot_result", "plot_run", "run_figure", "plot_study", "density_map", "DensityMap",
+           "FIGURE_TYPES"]
 
 FIGURE_TYPES = (".png", ".pdf", ".svg")
 MAP_FLOOR = 1e-6            # the density map's log scale spans six decades below its peak
@@ -61,9 +75,25 @@ def plot_result(path, output, size=(1200, 900), dpi: int = 100, overwrite: bool 
 
 
 # -- one run ---------------------------------------------------------------------------
-def _density_map(scene):
-    """(snapshot times, first-axis coordinates, density integrated over the
-    other axes), streamed frame by frame."""
+@dataclass
+class DensityMap:
+    """What the density panel draws: ``times`` (n,) of the snapshots,
+    ``positions`` of the first axis, (x,) on a lab grid or (n, x) lab
+    positions of a falling grid (coordinate + snapshot_frame_offset), and
+    ``density`` (n, x) integrated over the other axes (job units)."""
+    times: np.ndarray
+    positions: np.ndarray
+    density: np.ndarray
+
+    def lab_positions(self, i: int) -> np.ndarray:
+        """Lab positions of snapshot ``i``'s row."""
+        return self.positions[i] if self.positions.ndim == 2 else self.positions
+
+
+def density_map(scene) -> DensityMap:
+    """The density over position (the first axis) and time, integrated over
+    the other axes, streamed frame by frame; a falling grid's rows at their
+    lab positions."""
     axis = scene.axes[0]
     others = [scene.coords[a] for a in scene.axes[1:]]
     cell = float(np.prod([abs(c[1] - c[0]) for c in others])) if others else 1.0
@@ -72,7 +102,11 @@ def _density_map(scene):
         for i in range(len(reader)):
             f = reader.frame(i)
             rows.append(f.sum(axis=tuple(range(1, f.ndim))) * cell if f.ndim > 1 else f)
-        return reader.times, scene.coords[axis], np.array(rows)
+        times = reader.times
+    positions = scene.coords[axis]
+    if scene.moves(axis):
+        positions = np.array([scene.lab_coords(axis, i) for i in range(len(times))])
+    return DensityMap(times, positions, np.array(rows))
 
 
 def _density_panel(fig, amap, scene, T, L) -> None:
@@ -80,9 +114,14 @@ def _density_panel(fig, amap, scene, T, L) -> None:
     integrated over the other axes (and the column's, for a column scene)."""
     from matplotlib.colors import LogNorm   # lazy: matplotlib loads with the first figure
 
-    times, x, dens = _density_map(scene)
+    dmap = density_map(scene)
+    times, x, dens = dmap.times, dmap.positions, dmap.density
+    axis = scene.axes[0]
+    falls = x.ndim == 2
+    if falls:   # each row at its own lab positions: cells follow the grid's fall between snapshots
+        times = np.broadcast_to(times[:, None], x.shape)
     peak = float(np.max(dens)) if dens.size else 0.0
-    if peak > 0 and len(times) > 1:
+    if peak > 0 and len(dmap.times) > 1:
         mesh = amap.pcolormesh(x, times, np.maximum(dens, peak * MAP_FLOOR * 0.1), shading="nearest",
                                cmap=style.DENSITY_CMAP, norm=LogNorm(vmin=peak * MAP_FLOOR, vmax=peak),
                                rasterized=True)
@@ -92,17 +131,32 @@ def _density_panel(fig, amap, scene, T, L) -> None:
         unit = scene.units["density"] if scene.ndim == 1 else f"{scene.units['length']}-1"
         bar.set_label(f"{what} ({style.pretty_unit(unit)})")
     else:
-        amap.plot(x, dens[0] if len(dens) else np.zeros_like(x), color=style.DENSITY)
+        amap.plot(dmap.lab_positions(0), dens[0] if len(dens) else np.zeros_like(dmap.lab_positions(0)),
+                  color=style.DENSITY)
         amap.text(0.5, 0.9, "one snapshot only", transform=amap.transAxes, ha="center")
+    t = dmap.times
     for layer in scene.layers:
-        if layer.axis == scene.axes[0]:
-            amap.axvspan(layer.start, layer.stop, color="white", alpha=0.15, lw=0)
+        if layer.axis == axis:
+            if falls and len(t) > 1:   # the layers belong to the grid: they fall with it
+                spans = np.array([scene.layer_span(layer, i) for i in range(len(t))])
+                amap.fill_betweenx(t, spans[:, 0], spans[:, 1], color="white", alpha=0.15, lw=0)
+            else:
+                lo, hi = scene.layer_span(layer, 0)
+                amap.axvspan(lo, hi, color="white", alpha=0.15, lw=0)
     for name, dax, pos in scene.detectors:
-        if dax == scene.axes[0]:
+        if dax == axis:   # fixed in the lab
             amap.axvline(pos, color=style.DETECTOR, lw=0.8, ls="--")
-    amap.set_xlabel(f"{scene.axes[0]} ({L})")
+    if falls:
+        lo, hi = scene.visited(axis)
+        extent = float(np.ptp(scene.coords[axis]))
+        if hi - lo > FOLLOW_SPAN * extent:   # the packet's band is a sliver: mark the grid's path
+            for edge in (x[:, 0], x[:, -1]):
+                amap.plot(edge, t, color=style.ABSORBER, lw=0.6, ls=":")
+        amap.set_xlim(min(lo, float(x.min())), max(hi, float(x.max())))
+    amap.set_xlabel(scene.axis_label(axis))
     amap.set_ylabel(f"time ({T})")
-    amap.set_title("probability density over position and time (log scale)", loc="left")
+    amap.set_title("probability density over " + ("lab " if scene.offsets is not None else "")
+                   + "position and time (log scale)", loc="left")
 
 
 def _column_image(fig, amap, scene) -> None:
@@ -111,16 +165,17 @@ def _column_image(fig, amap, scene) -> None:
     a, b = scene.axes
     with FrameReader(scene.path, column=scene.column) as reader:
         t = float(reader.times[-1])
-        frame = reader.frame(len(reader) - 1)
-    mesh = amap.pcolormesh(scene.coords[a], scene.coords[b], frame.T, shading="nearest",
+        last = len(reader) - 1
+        frame = reader.frame(last)
+    # a falling grid: at its lab positions of that snapshot
+    mesh = amap.pcolormesh(scene.lab_coords(a, last), scene.lab_coords(b, last), frame.T, shading="nearest",
                            cmap=style.DENSITY_CMAP, rasterized=True)
     bar = fig.colorbar(mesh, ax=amap, fraction=0.05, pad=0.02)
     bar.set_label(f"column density along {scene.column[0]} ({style.pretty_unit(scene.units['density'])})")
     for name, dax, pos in scene.detectors:
         (amap.axvline if dax == a else amap.axhline)(pos, color=style.DETECTOR, lw=0.8, ls="--")
-    L = style.pretty_unit(scene.units["length"])
-    amap.set_xlabel(f"{a} ({L})")
-    amap.set_ylabel(f"{b} ({L})")
+    amap.set_xlabel(scene.axis_label(a))
+    amap.set_ylabel(scene.axis_label(b))
     amap.set_aspect("equal")
     amap.set_title(f"seen along {scene.column[0]} at t = {t:.6g} {style.pretty_unit(scene.units['time'])}",
                    loc="left")
@@ -132,6 +187,13 @@ def plot_run(path, output, size=(1200, 900), dpi: int = 100, column: str | None 
     (:func:`~wavesweep.viz.scene.column_scene`): for a 2D run over the other
     axis and time, for a 3D run the camera's image at the last snapshot."""
     output = _check_output(output)
+    fig = run_figure(path, size, dpi, column)
+    with style.style():
+        return _save(fig, output)
+
+
+def run_figure(path, size=(1200, 900), dpi: int = 100, column: str | None = None):
+    """The matplotlib Figure :func:`plot_run` writes (density panel first)."""
     scene = read_scene(path)
     if column is not None:
         scene = column_scene(scene, column)
@@ -199,7 +261,7 @@ def plot_run(path, output, size=(1200, 900), dpi: int = 100, column: str | None 
         fig.suptitle(f"{style.plain(scene.title)}   [{ds.attrs.get('run_id', '')}, {ds.attrs.get('scheme', '')}, "
                      f"dt = {ds.attrs.get('dt', '')} {T}]", fontsize=10)
         fig.tight_layout()
-        return _save(fig, output)
+        return fig
 
 
 # -- a study ---------------------------------------------------------------------------
