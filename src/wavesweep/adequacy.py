@@ -1164,6 +1164,13 @@ def detector_findings(setup) -> list[Finding]:
     return out
 
 
+# A lab detector on a falling grid: samples of the flux while the grid's
+# interior holds it, at least (common practice: a bell-shaped arrival
+# density sampled at a few points per width integrates to ~1e-10 by the
+# trapezoidal rule; the window is several widths).
+SAMPLES_PER_CROSSING = 40
+
+
 def _falling_detector_findings(setup, th: float) -> list[Finding]:
     """On a falling grid: where the grid goes (said, "ok"), and for each
     detector (fixed in the lab) when the grid's interior (inside the
@@ -1192,9 +1199,17 @@ def _falling_detector_findings(setup, th: float) -> list[Finding]:
         where = f"{det.name!r} at {ax.name} = {det.position / lf:.6g} {L} (lab)"
         if np.any(inside):
             first, last = times[inside][0] / tf, times[inside][-1] / tf
-            out.append(Finding("detector", "ok", f"{where} is inside the falling grid's interior from t = "
-                                                 f"{first:.4g} to {last:.4g} {T}",
-                               {"detector": det.name, "from": first, "to": last}))
+            sample = setup.sample_steps * setup.dt / tf
+            window = f"{where} is inside the falling grid's interior from t = {first:.4g} to {last:.4g} {T}"
+            if last - first < SAMPLES_PER_CROSSING * sample:
+                # everything that crosses it does so while the grid holds it: the flux must be sampled there
+                out.append(Finding("detector", "warn",
+                    f"{window}, only {(last - first) / sample:.3g} samples of record.every = {sample:.4g} {T}: "
+                    f"the crossing's flux is sampled too coarsely (or missed); give record.every <= "
+                    f"{(last - first) / SAMPLES_PER_CROSSING:.3g} {T}",
+                    {"detector": det.name, "from": first, "to": last}, field="record.every"))
+                continue
+            out.append(Finding("detector", "ok", window, {"detector": det.name, "from": first, "to": last}))
             continue
         seen_lo, seen_hi = offsets[:, det.axis].min() + lo, offsets[:, det.axis].max() + hi
         out.append(Finding("detector", "warn",

@@ -238,6 +238,13 @@ def test_the_frame_is_validated_and_said(tmp_path):
     short["detector"] = [{"name": "far", "x": -1e5}]
     findings = [f for f in assess(setup_of(short)) if f.topic == "detector"]
     assert findings[0].level == "warn" and "never inside the falling grid" in findings[0].message
+    # a detector the grid holds for fewer samples than its crossing needs is said, naming record.every
+    coarse = copy.deepcopy(base)
+    coarse["record"] = {"every": 0.5, "snapshot_every": base["evolve"]["duration"]}
+    coarse["evolve"]["duration"] = 15.5
+    coarse["record"]["snapshot_every"] = 15.5
+    findings = [f for f in assess(setup_of(coarse)) if f.topic == "detector"]
+    assert findings[0].level == "warn" and findings[0].field == "record.every"
     said = {f.topic: f for f in assess(setup_of(base)) if f.topic in ("detector", "frame")}
     assert said["detector"].level == "ok" and "inside the falling grid's interior from t = 1" in said["detector"].message
     assert said["frame"].level == "ok" and "gravity" in said["frame"].message
