@@ -88,6 +88,7 @@ class Model:
         self.charge = None if charge is None else u.to_atomic(charge, "charge", "particle.charge")
         self.grid = self._grid(t["grid"]) if grid is None else grid
         self.terms = [self._term(i, p) for i, p in enumerate(t["potential"])]
+        self.lab_terms = self.terms   # the job's terms in the lab (a falling grid's Hamiltonian has others)
         self.interaction = self._interaction(t.get("interaction"))
 
     @functools.cached_property
@@ -187,8 +188,7 @@ class Setup(Model):
         _, momentum, _ = mean_position_momentum(self.psi0, self.grid)
         uniform = [term for term in self.terms if term.uniform_force]
         self.frame = FreeFallFrame(uniform, self.mass, momentum / self.mass, self.grid.ndim, self.duration)
-        self.lab_terms = self.terms
-        self.terms = frame_terms(self.terms, self.frame)
+        self.terms = frame_terms(self.lab_terms, self.frame)
         self._v_static = None
         self.psi0 = self.psi0 * np.conj(self.frame.lab_phase(self.grid, 0.0))
 
@@ -337,7 +337,8 @@ class Setup(Model):
                 "length": u.unit_label("length"), "time": u.unit_label("time"),
                 "energy": u.unit_label("energy"), "momentum": u.unit_label("momentum"),
                 "density": f"{u.unit_label('length')}-{self.grid.ndim}",
-                "flux": f"{u.unit_label('time')}-1"}
+                "flux": f"{u.unit_label('time')}-1",
+                "acceleration": f"{u.unit_label('length')} {u.unit_label('time')}-2"}
 
     def recorded(self, lanczos: bool = False) -> RecordedRun:
         """This set-up as analysis reads a result's record (:func:`recorded_run`)."""
@@ -406,15 +407,30 @@ def _initial_detector_values(setup, marginals_au) -> dict:
     them from the marginals (O(grid), once, at run time)."""
     lf, tf = setup.units.factor("length"), setup.units.factor("time")
     out = {"detector_initial_mean": [], "classical_arrival_probability": [], "classical_arrival_mean": []}
+    accel = classical_acceleration(setup)
     for d in setup.detectors:
         rho, k, w = marginals_au[d.axis]
         coords = setup.grid.axes[d.axis].coordinates
         _, rho_kept, distance = packet_side_positions(coords, rho, d.position)
-        prob, mean = classical_share(rho_kept, distance, k, w, float(setup.mass))
+        a = 0.0 if accel is None else float(accel[d.axis])
+        prob, mean = classical_share(rho_kept, distance, k, w, float(setup.mass), a)
         out["detector_initial_mean"].append(float(np.sum(rho * coords) / np.sum(rho)) / lf)
         out["classical_arrival_probability"].append(prob)
         out["classical_arrival_mean"].append(mean / tf)
+    if accel is not None and setup.detectors:   # absent in free flight: those files stay as they were
+        out["classical_acceleration"] = [float(accel[d.axis]) / (lf / tf**2) for d in setup.detectors]
     return {name: np.asarray(v, float) for name, v in out.items()}
+
+
+def classical_acceleration(setup) -> np.ndarray | None:
+    """The constant acceleration (bohr per atomic time unit squared, per
+    axis) the job's uniform forces give the classical estimate, or None:
+    no uniform force, or one that changes in time (a pulse; the estimate
+    is then free flight, and analysis says it is no reference)."""
+    terms = [term for term in setup.lab_terms if term.uniform_force]
+    if not terms or any(term.time_dependent for term in terms):
+        return None
+    return sum(term.force_at(0.0) for term in terms) / setup.mass
 
 
 def records_final_values(setup) -> bool:

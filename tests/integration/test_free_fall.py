@@ -155,6 +155,15 @@ def test_arrival_at_a_lab_detector_1_mm_and_10_cm_below(tmp_path, height, points
     assert abs(got.stats["mean"] - mean_ref) < 1e-6 * mean_ref
     assert abs(got.stats["std"] - std_ref) < 1e-5 * std_ref
     assert got.stats["truncated"] is False
+    # the classical estimate falls too: for a Gaussian in a uniform force the Wigner function moves
+    # classically (exact for a potential at most quadratic), so it is the same first arrival
+    assert got.stats["classical_is_reference"] is True
+    assert got.stats["classical_acceleration"] == pytest.approx(-G, rel=1e-12)
+    assert abs(got.stats["classical_mean"] - mean_ref) < 1e-8 * mean_ref
+    assert got.stats["classical_probability"] == pytest.approx(1.0, abs=1e-9)
+    curve = got.classical_density / got.stats["classical_probability"]
+    quantum = got.density / got.stats["probability"]
+    assert np.max(np.abs(curve - quantum)) < 1e-4 * quantum.max()
 
 
 def test_a_trap_fixed_in_the_lab_is_seen_from_the_falling_grid(tmp_path):
@@ -264,3 +273,18 @@ def test_a_file_potential_cannot_follow_the_grid(tmp_path):
     with pytest.raises(JobError) as e:
         setup_of(table)
     assert e.value.field == "potential.1.kind" and "frame = 'lab'" in e.value.message
+
+
+def test_first_arrival_is_the_smaller_positive_root():
+    """Against numpy.roots of (a/2) t^2 + v t - d (any algebra text)."""
+    from wavesweep.io.record import first_arrival
+    rng = np.random.default_rng(7)
+    for _ in range(200):
+        d, v, a = rng.normal(size=3) * [5.0, 2.0, 3.0]
+        roots = [r.real for r in np.roots([a / 2, v, -d]) if abs(r.imag) < 1e-12 and r.real > 0]
+        got = float(first_arrival(d, v, a))
+        if roots:
+            assert got == pytest.approx(min(roots), rel=1e-10)
+        else:
+            assert math.isnan(got)
+

@@ -137,8 +137,11 @@ def arrival_statistics(time, density) -> dict:
 
 
 def classical_free_flight(x_axis, rho, k, w, mass: float, x_detector: float,
-                          time_atomic: np.ndarray, curve: bool = True) -> tuple[np.ndarray, float, float]:
-    """Classical free-flight arrival estimate from psi(t=0), atomic units.
+                          time_atomic: np.ndarray, curve: bool = True,
+                          acceleration: float = 0.0) -> tuple[np.ndarray, float, float]:
+    """Classical free-flight arrival estimate from psi(t=0), atomic units;
+    with a constant ``acceleration`` along the axis (gravity), the same
+    ensemble falling (see below).
 
     The ensemble draws positions from |psi0|^2 and momenta from |phi(p)|^2
     (both marginals along ``axis``) independently -- the Wigner function of
@@ -157,16 +160,39 @@ def classical_free_flight(x_axis, rho, k, w, mass: float, x_detector: float,
     :func:`classical_share`); the curve is a sum over positions per time,
     in blocks of CURVE_BLOCK elements (``curve=False``: zeros, not computed).
 
+    Accelerated: a member at (x, v = p/m) first reaches the detector at the
+    smaller positive root of x + v t + a t^2/2 = x_d, so at time t it
+    started with v(x, t) = d / t - a t / 2 and Pi_cl(t) = int dx rho(x)
+    m w(m v) (v + a t) s / t over the first crossings ((v + a t) s > 0, s
+    the sign of d: moving away from the packet's side), the Jacobian of
+    t -> v at fixed x; the probability and mean sum every pair
+    (:func:`~wavesweep.io.record.classical_share`).  For a Gaussian in a
+    uniform force the Wigner function moves classically (exact for a
+    potential at most quadratic), so the estimate is the quantum first
+    arrival up to backflow.
+
     Returns (density on ``time_atomic`` per atomic time unit, probability of
-    moving towards the detector, mean arrival time of that part)."""
+    arriving, mean arrival time of that part)."""
     x_axis, rho = np.asarray(x_axis, float), np.asarray(rho, float)
     k, w = np.asarray(k, float), np.asarray(w, float)
     dk = k[1] - k[0]
     x, rho, distance = packet_side_positions(x_axis, rho, x_detector)
     t = np.asarray(time_atomic, float)
-    prob, mean = classical_share(rho, distance, k, w, mass)
+    prob, mean = classical_share(rho, distance, k, w, mass, acceleration)
     out = np.zeros_like(t)
     if prob <= 0 or not curve:
+        return out, prob, mean
+    if acceleration:
+        pos = np.nonzero(t > 0)[0]
+        rows = max(1, CURVE_BLOCK // max(len(distance), 1))
+        density_k = w / dk
+        side = np.sign(distance)[None, :]
+        for i0 in range(0, len(pos), rows):
+            tt = t[pos[i0:i0 + rows]][:, None]
+            v = distance[None, :] / tt - 0.5 * acceleration * tt
+            arriving = (v + acceleration * tt) * side          # > 0: a first crossing
+            dens_p = np.interp(mass * v, k, density_k, left=0.0, right=0.0)
+            out[pos[i0:i0 + rows]] = (dens_p * rho[None, :] * mass * np.maximum(arriving, 0.0)).sum(axis=1) / tt[:, 0]
         return out, prob, mean
     # Pi_cl(t) = sum_x rho(x) w(m d / t) / dk * m |d| / t^2: (times x positions) in blocks of at
     # most CURVE_BLOCK elements, so the memory stays bounded whatever the grid and the record
@@ -307,10 +333,12 @@ def _arrivals(ds, detector, classical=True, warnings=True, curves=True):
         if classical:
             cl = np.zeros_like(t)
             recorded = [setup.detector_value(f"classical_arrival_{v}", j) for v in ("probability", "mean")]
+            accel = setup.detector_value("classical_acceleration", j) or 0.0
             if curves or recorded[0] is None:
                 rho0, k0, w0 = setup.marginals[det.axis]
                 cl, cl_prob, cl_mean = classical_free_flight(setup.grid.axes[det.axis].coordinates, rho0, k0, w0,
-                                                             setup.mass, det.position, t * uc["time"], curves)
+                                                             setup.mass, det.position, t * uc["time"], curves,
+                                                             acceleration=accel)
             if recorded[0] is not None:   # the run's own numbers (the same sums, over its arrays)
                 cl_prob = recorded[0]
                 cl_mean = recorded[1] if recorded[1] is not None else math.nan
@@ -344,9 +372,14 @@ def _arrivals(ds, detector, classical=True, warnings=True, curves=True):
                                 f"; {to_come:.3g} is still on its way" if stats["truncated"] else ""))
         if not cl_prob > NOTHING_ARRIVED:
             stats["classical_mean"] = math.nan
-        # the free-flight estimate is a reference only where no uniform force acts along the path
-        stats["classical_is_reference"] = bool(classical and not forced)
-        if classical and forced:
+        # the classical estimate is a reference unless a force it leaves out acts along the path (a
+        # constant uniform force, gravity, is in it: the run recorded its acceleration)
+        falls = setup.detector_value("classical_acceleration", j) is not None
+        stats["classical_is_reference"] = bool(classical and (not forced or falls))
+        if classical and falls:   # job units, as the run recorded it
+            stats["classical_acceleration"] = setup.detector_value("classical_acceleration", j) \
+                / (uc["length"] / uc["time"] ** 2)
+        if classical and forced and not falls:
             notes.append(f"detector {name!r}: classical_mean is the free-flight estimate, and this run's "
                          f"{' and '.join(forced)} acts all along the path: it is no reference here")
         out[name] = ArrivalDistribution(name, definition, t, rho, cl * uc["time"], stats,

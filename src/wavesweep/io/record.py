@@ -63,7 +63,8 @@ from ..grid import Axis, Grid
 
 __all__ = ["RecordedRun", "RecordedDetector", "RecordedAbsorber", "RecordedLayer", "read_record", "has_record",
            "record_checksum", "result_name", "RECORD_VERSION", "LANCZOS_MAX_POINTS", "DETECTOR_VALUES", "FINAL_DETECTOR_VALUES",
-           "side_probability", "classical_share", "packet_side_positions", "layer_holding", "layer_edge"]
+           "side_probability", "classical_share", "first_arrival", "packet_side_positions", "layer_holding",
+           "layer_edge"]
 
 # Bumped when the record's content changes; files without it are rebuilt (bounded).
 RECORD_VERSION = 1
@@ -101,6 +102,9 @@ DETECTOR_VALUES = {
     "detector_initial_mean": ("length", "mean position of the initial packet along the detector's axis"),
     "classical_arrival_probability": ("1", "classical free-flight probability of moving towards the detector"),
     "classical_arrival_mean": ("time", "classical free-flight mean arrival time at the detector"),
+    # written only where a constant uniform force (gravity) acts along the detector's axis
+    "classical_acceleration": ("acceleration", "constant acceleration along the detector's axis in the "
+                                               "classical estimate (uniform forces; absent: free flight)"),
     "final_probability_beyond": ("1", "probability on the grid beyond the detector at the run's end"),
     "final_probability_to_come": ("1", "probability before the detector (or the inner edge of the layer "
                                        "holding it) at the run's end, moving towards it"),
@@ -295,7 +299,7 @@ def _read(ds) -> RecordedRun:
                    float(a["spectrum_max"]) * ef,
                    float(a["ground_energy"]) * ef if "ground_energy" in a else None)
     warnings = json.loads(a["adequacy_warnings"]) if "adequacy_warnings" in a else None
-    factors = {"1": 1.0, "length": lf, "time": tf}
+    factors = {"1": 1.0, "length": lf, "time": tf, "acceleration": lf / tf**2}
     values = {}
     for name, (kind, _) in DETECTOR_VALUES.items():
         if name in ds.variables and dets:
@@ -327,18 +331,59 @@ def packet_side_positions(x_axis, rho, x_detector):
     return x, rho[keep], x_detector - x
 
 
-def classical_share(rho, distance, k, w, mass: float) -> tuple[float, float]:
-    """(probability of moving towards the detector, mean arrival time) of
-    the classical free-flight ensemble (:func:`wavesweep.analysis.arrivals.classical_free_flight`):
+# Position-momentum pairs summed at once by the accelerated classical estimate
+PAIR_BLOCK = 2**20
+
+
+def first_arrival(distance, velocity, acceleration: float):
+    """The first t > 0 at which x(t) = x + v t + a t^2 / 2 has moved by
+    ``distance`` d (broadcast arrays; atomic units), NaN where it never
+    does: the smaller positive root of (a/2) t^2 + v t - d = 0, in the
+    cancellation-free form q = -(v + sign(v) sqrt(v^2 + 2 a d)) / 2,
+    t = q / (a/2) and -d / q (Press et al., Numerical Recipes, sec. 5.6)."""
+    d = np.asarray(distance, float)
+    v = np.asarray(velocity, float)
+    half_a = 0.5 * acceleration
+    disc = v * v + 2.0 * acceleration * d
+    root = np.sqrt(np.maximum(disc, 0.0))
+    q = -0.5 * (v + np.where(v >= 0, root, -root))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t1 = q / half_a
+        t2 = -d / q
+    t1 = np.where(t1 > 0, t1, np.inf)
+    t2 = np.where(t2 > 0, t2, np.inf)
+    t = np.minimum(t1, t2)
+    return np.where((disc >= 0) & np.isfinite(t), t, np.nan)
+
+
+def classical_share(rho, distance, k, w, mass: float, acceleration: float = 0.0) -> tuple[float, float]:
+    """(probability of arriving at the detector, mean arrival time) of the
+    classical ensemble (:func:`wavesweep.analysis.arrivals.classical_free_flight`):
     positions ``rho`` at signed distances ``distance`` from the detector
     (all of one sign: the packet's side, :func:`packet_side_positions`),
-    momenta ``w`` on ``k``.  The ensemble's weight rho(x) w(k) on the pairs
-    with k d > 0 factors, so P = sum rho * sum_{k d > 0} w and
-    <m d / k> = m sum(rho d) sum_{k d > 0} (w / k) / P: O(grid), where the
-    sum over pairs was O(grid^2) (atomic units)."""
+    momenta ``w`` on ``k``, and a constant ``acceleration`` along the axis
+    (a uniform force such as gravity; 0: free flight).  In free flight the
+    ensemble's weight rho(x) w(k) on the pairs with k d > 0 factors, so
+    P = sum rho * sum_{k d > 0} w and <m d / k> = m sum(rho d) sum_{k d > 0}
+    (w / k) / P: O(grid), where the sum over pairs is O(grid^2).  With an
+    acceleration every pair (of non-negligible weight) is summed with its
+    first arrival time (:func:`first_arrival`), in blocks (atomic units)."""
     if not len(distance):
         return 0.0, math.nan
     k, w = np.asarray(k, float), np.asarray(w, float)
+    if acceleration:
+        weight_k = w > 1e-14 * w.max()
+        k, w = k[weight_k], w[weight_k]
+        rho, distance = np.asarray(rho, float), np.asarray(distance, float)
+        prob = total = 0.0
+        rows = max(1, PAIR_BLOCK // max(len(k), 1))
+        for i0 in range(0, len(rho), rows):
+            t = first_arrival(distance[i0:i0 + rows, None], k[None, :] / mass, acceleration)
+            reach = np.isfinite(t)
+            pair = rho[i0:i0 + rows, None] * w[None, :]
+            prob += float(np.sum(pair, where=reach))
+            total += float(np.sum(pair * np.where(reach, t, 0.0)))
+        return (prob, total / prob) if prob > 0 else (0.0, math.nan)
     towards = k * distance[0] > 0
     w_towards = w[towards]
     prob = float(np.sum(rho) * np.sum(w_towards))

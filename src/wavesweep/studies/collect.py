@@ -560,7 +560,8 @@ _META = {
     "arrival_q90": (None, "90 % quantile of the arrival time"),
     "arrival_most_probable": (None, "most probable arrival time"),
     "arrival_backflow": ("1", "probability carried back across the detector (negative flux)"),
-    "arrival_classical_mean": (None, "classical free-flight estimate of the mean arrival time"),
+    "arrival_classical_mean": (None, "classical estimate of the mean arrival time (free flight, or under "
+                                     "the run's constant uniform force)"),
     "arrival_still_to_come": ("1", "probability before the detector at the end, moving towards it "
                                    "(what may still arrive)"),
 }

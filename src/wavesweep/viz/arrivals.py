@@ -1,5 +1,6 @@
 """Figure of arrival-time distributions: the quantum density per detector
-with the classical free-flight estimate beside it."""
+with the classical estimate beside it (free flight, or falling under the
+run's constant uniform force)."""
 from __future__ import annotations
 
 from pathlib import Path
@@ -50,7 +51,8 @@ def plot_arrivals(distributions: dict, path, title: str = "", dpi: int = 100, ov
             cp = 0.0   # a free-flight curve under gravity or a field would only mislead: not drawn
         if cp > 0:
             ax.plot(d.time, d.classical_density / cp, color=CLASSICAL, lw=1.2, ls="--",
-                    label="classical free flight")
+                    label="classical, uniform force" if "classical_acceleration" in d.stats
+                    else "classical free flight")
         for key, style, text in (("mean", "-", "mean"), ("q10", ":", "10 / 90 %"), ("q90", ":", None)):
             v = d.stats.get(key)
             if v is not None and np.isfinite(v):
