@@ -683,6 +683,11 @@ def dynamics(setup) -> Dynamics:
         over[6][i] = max(over[6][i], p)
     unreached: set = set()
     windows = _windows(setup, moms, reach, freed, nonsep, v, v_packet, e_total, unreached)
+    e_mf = mean_field_energy(setup)
+    if e_mf > 0:
+        # the classical trajectories leave the interaction out: an expanding cloud turns up to
+        # |g N| max|psi0|^2 per atom into motion, which the layers must take as well
+        windows = {face: (lo, hi + e_mf) for face, (lo, hi) in windows.items()}
     out = Dynamics(initial, over, reach, freed, windows, nonsep, bound, unreached)
     _DYNAMICS_OF[setup] = out
     if key is not None:
@@ -1593,17 +1598,16 @@ def mean_field_findings(setup, dyn: Dynamics) -> list[Finding]:
     job: the mean-field energy per atom g N |psi|^2 (at most |g N|
     max|psi0|^2, hartree) can turn into kinetic energy when the cloud
     expands, so it can give momenta up to p = sqrt(2 m |g N| max|psi0|^2)
-    that neither the momentum reach nor the absorbers' energy windows
-    (:attr:`Dynamics.windows`, classical trajectories of the linear
-    Hamiltonian) contain.  Each axis whose k_max that p exceeds, and each
-    absorbing face whose window ends below that energy, is a warning naming
-    the setting; no interaction, no finding."""
-    g_n = float(getattr(setup.hamiltonian, "contact", 0.0) or 0.0)
-    if g_n == 0.0:
+    that the momentum reach (classical trajectories of the linear
+    Hamiltonian) does not contain.  Each axis whose k_max that p exceeds is
+    a warning naming the setting (the absorbers' windows,
+    :attr:`Dynamics.windows`, add that energy and their tuning with them);
+    no interaction, no finding."""
+    e_mf = mean_field_energy(setup)
+    if e_mf == 0.0:
         return []
     u = setup.units
     ef, E = u.factor("energy"), u.unit_label("energy")
-    e_mf = abs(g_n) * float(np.max(np.abs(setup.psi0) ** 2))
     p_mf = math.sqrt(2.0 * setup.mass * e_mf)
     out = []
     for ax in setup.grid.axes:
@@ -1614,20 +1618,18 @@ def mean_field_findings(setup, dyn: Dynamics) -> list[Finding]:
                 "(the classical reach leaves the interaction out); use more points",
                 {"mean_field_energy": e_mf / ef, "mean_field_momentum_ratio": p_mf / ax.k_max},
                 field=f"grid.{ax.name}.points"))
-    if setup.absorber.active:
-        short = sorted(face for face, (_, e_hi) in dyn.windows.items() if e_hi < e_mf)
-        if short:
-            out.append(Finding("absorbers", "warn",
-                f"the mean-field energy {e_mf / ef:.4g} {E} per atom lies above the energies the "
-                f"absorber at {', '.join(short)} was judged for (classical, without the interaction): "
-                "what the expanding cloud brings there may reflect; give absorber.strength for it or "
-                "widen the grid so the cloud never reaches the layers",
-                {"mean_field_energy": e_mf / ef, "faces": short}, field="absorber.strength"))
     if not out:
         out.append(Finding("momentum", "ok",
-            f"mean-field energy {e_mf / ef:.4g} {E} per atom: within the grid's momenta and the "
-            "absorbers' windows", {"mean_field_energy": e_mf / ef}))
+            f"mean-field energy {e_mf / ef:.4g} {E} per atom: within the grid's momenta (the absorbers' "
+            "windows include it)", {"mean_field_energy": e_mf / ef}))
     return out
+
+
+def mean_field_energy(setup) -> float:
+    """|g N| max|psi0|^2 (hartree): the most mean-field energy per atom an
+    expanding condensate can turn into motion; 0 without an interaction."""
+    g_n = float(getattr(setup, "contact", 0.0) or 0.0)
+    return abs(g_n) * float(np.max(np.abs(setup.psi0) ** 2)) if g_n else 0.0
 
 
 def run_warnings(setup) -> list[str]:

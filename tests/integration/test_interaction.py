@@ -258,3 +258,20 @@ def test_check_sees_the_momentum_and_energy_the_mean_field_can_release():
     assert found[0].values["mean_field_momentum_ratio"] == pytest.approx(ratio, rel=1e-12)
     weak = job_from_dict({**base, "interaction": {"atoms": 10, "coupling": 0.01}})
     assert all(f.level == "ok" for f in check_job(weak, trial_seconds=0).findings if "mean-field" in f.message)
+
+
+def test_the_absorbers_are_tuned_for_what_the_mean_field_releases():
+    """The CAP's windows (and so its tuned strength) take the mean-field
+    energy per atom |g N| max|psi0|^2 on top of the classical window of the
+    linear Hamiltonian: an expanding cloud brings that much more energy to
+    the layers (energy conservation of the GP functional, by hand)."""
+    base = {"grid": {"x": {"min": -40.0, "max": 40.0, "points": 256}, "boundary": "box"},
+            "packet": {"center": 0.0, "width": 2.0}, "evolve": {"dt": 0.005, "duration": 2.0},
+            "absorber": {"kind": "cap", "thickness": 8.0}}
+    linear = Setup(job_from_dict(base))
+    cloud = Setup(job_from_dict({**base, "interaction": {"atoms": 100, "coupling": 0.5}}))
+    e_mf = 50.0 * float(np.max(np.abs(cloud.psi0) ** 2))
+    for face in ("x-", "x+"):
+        lo, hi = linear.energy_window(0, face)
+        assert cloud.energy_window(0, face) == pytest.approx((lo, hi + e_mf), rel=1e-12)
+    assert cloud.job.table["absorber"]["strength"] != linear.job.table["absorber"]["strength"]
