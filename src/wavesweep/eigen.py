@@ -14,23 +14,30 @@ Stationary states (:func:`stationary_states`, :func:`eigenpairs`)
     J. Chem. Phys. 91, 3571 (1989)), built and applied by
     :class:`~wavesweep.hamiltonian.Hamiltonian`.
 
-    Up to :data:`DENSE_MAX_POINTS` grid points the dense matrix is
-    diagonalised (``scipy.linalg.eigh`` with ``subset_by_index``).  Larger
-    grids use LOBPCG (Knyazev, SIAM J. Sci. Comput. 23, 517 (2001);
-    ``scipy.sparse.linalg.lobpcg``) on the FFT-applied operator, with the
-    kinetic preconditioner (T + s)^-1 applied in transform space, started
-    from the states of a grid with half the points per axis (the same
-    method, down to a grid small enough to diagonalise densely), spectrally
-    interpolated: a cascade.  Measured for 10 levels of 2D harmonic wells
-    (one thread on a shared 2-core machine): Lanczos (``eigsh``,
-    which="SA") took 0.4 s at 128^2 and 5 s at 256^2 but skipped one member
-    of a degenerate pair on the 256^2 isotropic well, which a block method
-    cannot; Chebyshev-filtered subspace iteration took 1.1 s and 8.5 s,
-    LOBPCG from random vectors 2.6 s and 9 s, the cascade 0.9-1.0 s and
-    3.3-3.8 s (dense eigh: 1.1 s at 48^2, 6.5 s at 64^2).  Lanczos needed
-    118 s for hydrogen on 4096 radial points, the cascade 1.2 s.  Points far
-    above the potential's minimum are walls (:func:`walled_potential`).
-    Every result is checked by its residual ||H psi - E psi||.
+    Points far above the potential's minimum are walls
+    (:func:`walled_potential`): psi = 0 there, so the problem's size is the
+    number of points below them.  Up to :data:`DENSE_MAX_POINTS` such points
+    the dense matrix on them is diagonalised (``scipy.linalg.eigh`` with
+    ``subset_by_index``), however large the grid: a narrow trap on a wide
+    grid (a released cloud's 100 Hz trap on 4095 points of 0.41 um keeps
+    443 points; 8191 points keep 1771, 0.04 s and 0.7 s) is a small problem.
+    Larger ones use LOBPCG (Knyazev, SIAM J. Sci. Comput. 23, 517 (2001);
+    ``scipy.sparse.linalg.lobpcg``) on the FFT-applied operator, with a
+    preconditioner built from (T + s)^-1 in transform space and the
+    potential's excess over the wanted energies (see :func:`lobpcg_from`),
+    started from the states of a grid with half the points per axis and the
+    same walls (the same method, down to a problem small enough to
+    diagonalise densely), spectrally interpolated: a cascade.  Measured for
+    10 levels of 2D harmonic wells (one thread on a shared 2-core machine):
+    Lanczos (``eigsh``, which="SA") took 0.4 s at 128^2 and 5 s at 256^2
+    but skipped one member of a degenerate pair on the 256^2 isotropic
+    well, which a block method cannot; Chebyshev-filtered subspace
+    iteration took 1.1 s and 8.5 s, LOBPCG from random vectors 2.6 s and
+    9 s, the cascade 0.9-1.0 s and 3.3-3.8 s (dense eigh: 1.1 s at 48^2,
+    6.5 s at 64^2).  Lanczos needed 118 s for hydrogen on 4096 radial
+    points, the cascade 1.2 s.  The trap's ground state on 16383 points
+    (7083 below the walls) took the cascade 0.7 s, on 255 x 1023 points
+    4 s.  Every result is checked by its residual ||H psi - E psi||.
 
     States are real, normalised on the grid (sum psi^2 dV = 1, in
     bohr^(-ndim/2)), with a deterministic sign: positive at the first grid
@@ -65,9 +72,10 @@ __all__ = ["eigenpairs", "walled_potential", "degenerate_groups", "energy_band",
            "lanczos_recurrence", "lanczos_quadrature", "quadrature_band", "band_window", "ground_energy",
            "DENSE_MAX_POINTS", "DEGENERATE_TOL"]
 
-# Largest grid diagonalised densely (8 bytes x size^2: 34 MB).  Measured
-# (one thread): dense eigh with a subset took 0.09 s at 1024 points, 1.1 s at
-# 2304 and 6.5 s at 4096; the cascade 0.07-0.2 s at 4096.
+# Largest problem diagonalised densely: points below the walls (8 bytes x
+# size^2: 34 MB).  Measured (one thread): dense eigh with a subset took
+# 0.09 s at 1024 points, 1.1 s at 2304 and 6.5 s at 4096; the cascade
+# 0.07-0.2 s at 4096.
 DENSE_MAX_POINTS = 2048
 
 # The residual ||H psi - E psi|| (psi of unit Euclidean norm) LOBPCG aims at
@@ -108,7 +116,9 @@ def eigenpairs(hamiltonian: Hamiltonian, count: int, t: float | None = 0.0, meth
         raise JobError(field, f"only {int(keep.sum())} grid points lie below the potential's walls, so at "
                               f"most {int(keep.sum())} states; got {count}")
     if method == "auto":
-        method = "dense" if grid.size <= DENSE_MAX_POINTS else "iterative"
+        # the walls leave psi = 0 there: the problem's size is the points below them
+        points = grid.size if keep is None else int(keep.sum())
+        method = "dense" if points <= DENSE_MAX_POINTS else "iterative"
     if method == "dense":
         energies, vectors = _dense(hamiltonian, count, v, keep)
     elif method == "iterative":
@@ -149,18 +159,58 @@ def walled_potential(h, t: float | None = 0.0):
 
 
 def _dense(h, count, v, keep=None):
-    if h.grid.size > 8 * DENSE_MAX_POINTS:
-        raise ValueError(f"a dense matrix of {h.grid.size} points needs "
-                         f"{8 * h.grid.size**2 / 1e9:.1f} GB; use method='iterative'")
-    matrix = h.static_matrix(potential=v)
+    points = h.grid.size if keep is None else int(keep.sum())
+    if points > 8 * DENSE_MAX_POINTS:
+        raise ValueError(f"a dense matrix of {points} points needs "
+                         f"{8 * points**2 / 1e9:.1f} GB; use method='iterative'")
     if keep is None:
+        matrix = h.static_matrix(potential=v)
         return scipy.linalg.eigh(matrix, subset_by_index=[0, count - 1], overwrite_a=True)
-    inside = np.flatnonzero(keep.reshape(-1))
-    energies, sub = scipy.linalg.eigh(matrix[np.ix_(inside, inside)], subset_by_index=[0, count - 1],
+    energies, sub = scipy.linalg.eigh(_walled_matrix(h, v, keep), subset_by_index=[0, count - 1],
                                       overwrite_a=True)
     vectors = np.zeros((h.grid.size, count))
-    vectors[inside] = sub
+    vectors[np.flatnonzero(keep.reshape(-1))] = sub
     return energies, vectors
+
+
+def _walled_matrix(h, v, keep):
+    """The rows and columns of ``h.static_matrix(potential=v)`` at the
+    points where ``keep`` is True (row-major order), built without the full
+    matrix: the Kronecker sum of the axes' kinetic matrices sampled at the
+    kept points' coordinates, plus V on the diagonal; size^2 of the kept
+    points only (a narrow well on a wide grid, the trap of a released cloud
+    on 4095 points, keeps 443)."""
+    grid = h.grid
+    where = np.nonzero(keep)                 # coordinates of the kept points along each axis
+    matrix = np.zeros((where[0].size,) * 2)
+    for i in range(grid.ndim):
+        part = _axis_kinetic(h, i, where[i])
+        if grid.ndim > 1:                    # T_i couples points that share every other coordinate
+            others = [w for j, w in enumerate(where) if j != i]
+            line = np.ravel_multi_index(others, [a.points for j, a in enumerate(grid.axes) if j != i])
+            part = np.where(line[:, None] == line[None, :], part, 0.0)
+        matrix += part
+    matrix[np.diag_indices(matrix.shape[0])] += np.asarray(v)[keep]
+    return matrix
+
+
+def _axis_kinetic(h, i, index):
+    """The kinetic matrix of axis ``i`` alone (hartree), rows and columns at
+    the coordinates ``index`` along it: the stretch of the axis they span,
+    from the axis's transform of unit vectors (256 at a time), symmetrised."""
+    axis = h.grid.axes[i]
+    line = h
+    if h.grid.ndim > 1:
+        line = Hamiltonian(Grid((axis,)), h.mass, [], static_potential=np.zeros(axis.points))
+    lo, hi = int(index.min()), int(index.max()) + 1
+    stretch = np.empty((hi - lo, hi - lo))
+    for start in range(lo, hi, 256):
+        stop = min(start + 256, hi)
+        units = np.zeros((stop - start, axis.points))
+        units[np.arange(stop - start), np.arange(start, stop)] = 1.0
+        stretch[start - lo:stop - lo] = line.apply_kinetic(units)[:, lo:hi]
+    stretch = 0.5 * (stretch + stretch.T)    # symmetric to rounding; exactly, for eigh
+    return stretch[np.ix_(index - lo, index - lo)]
 
 
 def block_size(count: int) -> int:
@@ -266,13 +316,25 @@ def _cascade(h, v, keep, count, m, top=False):
     (dense at the bottom)."""
     grid = h.grid
     inside = grid.size if keep is None else int(keep.sum())
-    if grid.size <= DENSE_MAX_POINTS and m <= inside:
-        return _dense(h, m, v, keep)
+    if inside <= DENSE_MAX_POINTS:
+        return _dense(h, min(m, inside), v, keep)
     coarse = _coarser(grid)
     rng = np.random.default_rng(1982)   # a fixed seed: the same answer every time
-    if coarse is not None and coarse.size >= 4 * m:
+    hc = None
+    if coarse is not None:
         hc = coarse_hamiltonian(h, v, coarse)
-        _, xc = _cascade(hc, hc.static_potential, None, count, m)
+        vc, keep_c = hc.static_potential, None
+        if keep is not None:
+            # the same walls on the coarse grid: where the sampled V reaches the cap (without
+            # them, a released cloud's trap on 4095 points made the 2047-point grid a dense
+            # problem of 2047 points instead of 221)
+            ceiling = float(v.max())
+            keep_c = vc < ceiling
+            vc = np.minimum(vc, ceiling)
+        if (coarse.size if keep_c is None else int(keep_c.sum())) < 4 * m:
+            hc = None
+    if hc is not None:
+        _, xc = _cascade(hc, vc, keep_c, count, m)
         x0 = _resample(xc, coarse, grid)
         # The interpolated states share one error shape (e.g. the cusp at
         # r = 0 that the coarse grid misses, with another amplitude in each),
@@ -288,6 +350,9 @@ def _cascade(h, v, keep, count, m, top=False):
 
 
 def lobpcg_from(h, v, keep, x0, count, tol, maxiter):
+    """``(energies, vectors)``: LOBPCG on T + ``v`` (walls where ``keep`` is
+    False) from the columns ``x0``, until the ``count`` lowest residuals are
+    below ``tol`` times the energy scale, or stall, or ``maxiter``."""
     from scipy.sparse.linalg import LinearOperator, lobpcg  # lazy: only grids beyond the dense limit
 
     grid = h.grid
@@ -309,24 +374,45 @@ def lobpcg_from(h, v, keep, x0, count, tol, maxiter):
         y = h.apply_static(block(x), workers=workers, potential=v)
         return y.reshape(y.shape[0], size).T * inside
 
-    # Preconditioner (T + s)^-1 in transform space, s the largest kinetic
-    # energy <T> of the wanted start vectors (Teter, Payne & Allan, Phys. Rev.
-    # B 40, 12255 (1989) scale theirs by <T> the same way).  Measured: s = 0.5
-    # (<T> of hydrogen 1s) took 10 iterations on 4096 radial points, s = 50
-    # (E - V_min) 93; on 2D harmonic wells s = <T> was within 1.5x of the best.
+    # Preconditioner: an approximate inverse of T + w + s, w = max(V - E, 0)
+    # the potential's excess over E, the largest Rayleigh quotient of the
+    # wanted start vectors, and s their largest kinetic energy <T> (Teter,
+    # Payne & Allan, Phys. Rev. B 40, 12255 (1989) scale their kinetic
+    # preconditioner by <T> the same way; measured: s = 0.5 (<T> of hydrogen
+    # 1s) took 10 iterations on 4096 radial points, s = 50 (E - V_min) 93):
+    #     M = D (T + s)^-1 D + (1 - D^2) / (w + t + s),   D^2 = s / (s + w),
+    # t the mean of T over the transform grid (the diagonal of T on the
+    # grid).  Where w << s, M is (T + s)^-1; where w >> s, the kinetic term
+    # is damped by s / w and the diagonal one gives about 1 / (w + t).  For a
+    # wave of kinetic energy T where the excess is w, M (T + w + s) stays
+    # bounded however large w is (0.6 ... 2.4 for t = 23 s, 0.04 ... 3 for
+    # t = 1e4 s; 0 <= T <= 3 t), where (T + s)^-1 alone is off by (w + s) / s:
+    # up to 7000 under the walls (100 T_max above V_min) of the 100 Hz Rb-87
+    # trap's ground state on 4095 points (+-836 um).  Measured there with
+    # (T + s)^-1: LOBPCG's residual fell from 1.3e-3 to 5e-7 of the scale in
+    # 390 iterations, and the chunks below stalled at 3e-5 (each restart
+    # drops the search directions, and scipy returns the iterate of least
+    # mean residual over the block, here the chunk's start).  With M: at
+    # most 20 iterations to 1e-9 on 4095, 8191 and 16383 points and on
+    # 255 x 1023, and 20 instead of 240 for the separable 2D test well.
     kinetic = np.sum(block(x0) * h.apply_kinetic(block(x0), workers=workers), axis=tuple(range(1, grid.ndim + 1)))
     t_max = float(h.kinetic.max())
     shift = max(float(np.max(kinetic[:count])), 1e-6 * t_max)
     inverse = 1.0 / (h.kinetic + shift)
+    rayleigh = np.sum(x0 * apply_h(x0), axis=0)
+    e_top = float(np.sort(rayleigh)[count - 1])
+    excess = np.maximum(v - e_top, 0.0).reshape(-1, 1)
+    outer = np.sqrt(shift / (shift + excess)) * inside
+    diagonal = excess / ((shift + excess) * (excess + float(np.mean(h.kinetic)) + shift)) * inside
 
     def apply_m(x):
-        y = h.apply_kinetic(block(columns(x) * inside), inverse, workers=workers)
-        return y.reshape(y.shape[0], size).T * inside
+        x = columns(x)
+        y = h.apply_kinetic(block(x * outer), inverse, workers=workers)
+        return y.reshape(y.shape[0], size).T * outer + diagonal * x
 
     a_op = LinearOperator((size, size), matvec=apply_h, matmat=apply_h, dtype=float)
     m_op = LinearOperator((size, size), matvec=apply_m, matmat=apply_m, dtype=float)
-    rayleigh = np.sum(x0 * apply_h(x0), axis=0)
-    scale = _energy_scale(h, v, float(np.sort(rayleigh)[count - 1]))
+    scale = _energy_scale(h, v, e_top)
     # scipy's lobpcg stops when every block vector has converged, and the
     # buffer vectors next to the block's edge converge slowly (measured: 233
     # iterations where the wanted ones needed far fewer), so it runs in

@@ -156,6 +156,28 @@ def test_huge_step_is_the_hard_wall_limit():
     assert np.all(states[:, ~inside] == 0.0)
 
 
+def test_huge_step_in_2d_is_the_hard_wall_limit():
+    """The same limit on a 2D box grid, a wall along y only: the levels equal
+    those of the Kronecker sum T_x (x) 1 + 1 (x) T_y + V (row-major, x
+    first) without the wall's points, by scipy.linalg.eigh of the
+    definitions (the eigensolver builds only the kept points' block)."""
+    nx, ny = 18, 22
+    job = make_job(_job({"x": {"min": -6.0, "max": 6.0, "points": nx}, "y": {"min": -7.0, "max": 7.0, "points": ny},
+                         "boundary": "box"},
+                        [{"kind": "harmonic", "omega": [1.0, 1.3]},
+                         {"kind": "step", "height": 1e12, "position": 1.5, "axis": "y"}]))
+    energies, states = stationary_states(job, 4)
+    x, y = _coordinates(-6.0, 6.0, nx, "box"), _coordinates(-7.0, 7.0, ny, "box")
+    xx, yy = np.meshgrid(x, y, indexing="ij")
+    inside = (yy < 1.5).reshape(-1)
+    h = (np.kron(_dense_kinetic(-6.0, 6.0, nx, "box", 1.0), np.eye(ny))
+         + np.kron(np.eye(nx), _dense_kinetic(-7.0, 7.0, ny, "box", 1.0))
+         + np.diag(0.5 * (xx**2 + 1.3**2 * yy**2).reshape(-1)))
+    reference = scipy.linalg.eigh(h[np.ix_(inside, inside)], eigvals_only=True, subset_by_index=[0, 3])
+    np.testing.assert_allclose(energies, reference, rtol=1e-12)
+    assert np.all(states.reshape(4, -1)[:, ~inside] == 0.0)
+
+
 def test_separable_2d_levels_through_the_iterative_path():
     """A separable V(x, y) = Vx(x) + Vy(y) has the levels E_i + E_j of the two 1D
     problems (separation of variables; from memory).  The 1D levels come from
@@ -182,6 +204,58 @@ def test_separable_2d_levels_through_the_iterative_path():
     dv = (18.0 / nx) * (20.0 / ny)
     gram = states.reshape(count, -1) @ states.reshape(count, -1).T * dv
     np.testing.assert_allclose(gram, np.eye(count), atol=1e-8)
+
+
+# -- a released cloud's trap on a wide grid -----------------------------------------------
+def _rb87_trap(grid, omega):
+    """A Rb-87 atom (86.909 u) in a harmonic trap of angular frequency
+    ``omega`` ("100 Hz": 2 pi x 100 rad/s) on ``grid`` (um)."""
+    return make_job({"units": {"length": "um", "time": "ms", "mass": "u"}, "particle": {"mass": 86.909},
+                     "grid": grid, "potential": [{"kind": "harmonic", "omega": omega}],
+                     "packet": {"kind": "gaussian", "center": 0.0, "width": 1.0},
+                     "evolve": {"dt": 0.01, "duration": 0.1}})
+
+
+@pytest.mark.parametrize("points", [4095, 16383])
+def test_a_released_clouds_trap_ground_state_on_a_wide_grid(points):
+    """The 100 Hz trap's ground state (sigma0 = 0.76 um) on a grid of
+    +-836 um, sized for the cloud's expansion after release: E0 = hbar w / 2
+    (Griffiths sec. 2.3; from memory) with hbar and the hartree from CODATA
+    (scipy.constants), to 1e-10 relative, and psi0 = (2 pi s^2)^(-1/4)
+    exp(-x^2 / (4 s^2)), s^2 = hbar / (2 m w) (the same section), to 1e-6
+    of its peak (what LOBPCG's tolerance allows: a residual of 1e-9 T_max
+    over the gap hbar w, 6e-7 on 16383 points; measured 4e-10).  Of 4095 points 443 lie below the walls (the dense path on
+    them), of 16383 points 7083 (LOBPCG); the iterative solver stalled on
+    both at a residual of 3e-5 of its scale and failed its check."""
+    import scipy.constants as sc
+
+    job = _rb87_trap({"x": {"min": -836.0, "max": 836.0, "points": points}, "boundary": "box"}, "100 Hz")
+    energies, states = stationary_states(job, 1)
+    omega = 2.0 * math.pi * 100.0
+    hartree = sc.physical_constants["Hartree energy"][0]
+    np.testing.assert_allclose(energies[0], sc.hbar * omega / 2.0 / hartree, rtol=1e-10)
+    bohr_um = sc.physical_constants["Bohr radius"][0] * 1e6
+    s2 = sc.hbar / (2.0 * 86.909 * sc.atomic_mass * omega) / (bohr_um * 1e-6) ** 2          # bohr^2
+    x = _coordinates(-836.0, 836.0, points, "box") / bohr_um                                  # bohr
+    exact = (2.0 * math.pi * s2) ** -0.25 * np.exp(-x**2 / (4.0 * s2))
+    np.testing.assert_allclose(states[0], exact, rtol=0.0, atol=1e-6 * exact.max())
+
+
+def test_an_anisotropic_trap_on_a_wide_2d_grid():
+    """A 100 x 140 Hz trap's ground state on 31 x 511 points of 0.45 um
+    (11121 below the walls: LOBPCG): E0 = hbar (w_x + w_y) / 2 (separation
+    of variables, Griffiths sec. 2.3; from memory; CODATA via
+    scipy.constants) to 1e-10 relative; the iterative solver failed here
+    before."""
+    import scipy.constants as sc
+
+    dx = 0.45
+    job = _rb87_trap({"x": {"min": -16 * dx, "max": 16 * dx, "points": 31},
+                      "y": {"min": -256 * dx, "max": 256 * dx, "points": 511}, "boundary": "box"},
+                     ["100 Hz", "140 Hz"])
+    energies, _ = stationary_states(job, 1)
+    hartree = sc.physical_constants["Hartree energy"][0]
+    np.testing.assert_allclose(energies[0], sc.hbar * 2.0 * math.pi * (100.0 + 140.0) / 2.0 / hartree, rtol=1e-10)
 
 
 @pytest.mark.parametrize("boundary", ["periodic", "box"])
