@@ -98,18 +98,21 @@ def spectral_derivative(psi: np.ndarray, ax, axis: int) -> np.ndarray:
     return d[tuple(sl)] * (0.5 * np.sqrt(2.0 / (n + 1)))
 
 
-def mean_position_momentum(psi, grid) -> tuple[np.ndarray, np.ndarray, float]:
+def mean_position_momentum(psi, grid, axes=None) -> tuple[np.ndarray, np.ndarray, float]:
     """(<r_i>, <p_i>, norm) of psi on the grid (bohr, hbar/bohr, one per
     axis, each normalised by the norm; norm = sum |psi|^2 dV): positions
     from the marginals, momenta as Im sum conj(psi) dpsi/dx_i over sum
-    |psi|^2 with the spectral derivative (:func:`spectral_derivative`)."""
+    |psi|^2 with the spectral derivative (:func:`spectral_derivative`).
+    ``axes``: only those axes (the others are left 0)."""
     one = np.asarray(psi, np.complex128).reshape(grid.shape)
     dens = one.real ** 2 + one.imag ** 2
     norm_sum = float(dens.sum())
+    pos, mom = np.zeros(grid.ndim), np.zeros(grid.ndim)
     if not norm_sum > 0:
-        return np.zeros(grid.ndim), np.zeros(grid.ndim), 0.0
-    pos, mom = np.empty(grid.ndim), np.empty(grid.ndim)
+        return pos, mom, 0.0
     for i, ax in enumerate(grid.axes):
+        if axes is not None and i not in axes:
+            continue
         other = tuple(j for j in range(grid.ndim) if j != i)
         line = dens.sum(axis=other) if other else dens
         pos[i] = float(line @ ax.coordinates) / norm_sum
@@ -144,7 +147,8 @@ class Observer:
     rho through its lab position (zero while the grid does not reach it)
     and its amplitude the lab psi there; ``frame_offset`` X(t) is added
     to the values.  Costs one pass and one spectral derivative per axis
-    more per sample (the mean position and momentum of every axis)."""
+    beyond the first more per sample (the mean position and momentum of
+    every axis), and the detectors' interpolation rows, made per sample."""
 
     def __init__(self, grid, mass: float, transform, detectors=(), psi0=None, members=None,
                  contact: float | None = None, frame=None):
@@ -271,7 +275,9 @@ class Observer:
         class notes), with ``frame_offset`` X(t) (bohr, per axis)."""
         frame, m = self.frame, self.mass
         x_off, u, force = frame.offset(t), frame.velocity(t), frame.force(t)
-        pos, mom, _ = mean_position_momentum(psi, self.grid)
+        # the first axis' means are measured already; the others cost a pass and a derivative each
+        pos, mom, _ = mean_position_momentum(psi, self.grid, axes=range(1, self.grid.ndim))
+        pos[0], mom[0] = r["x_mean"], r["p_mean"]
         shift = float(u @ mom + 0.5 * m * (u @ u) - force @ (pos + x_off))
         r["x_mean"] += float(x_off[0])
         r["p_mean"] += m * float(u[0])
