@@ -195,6 +195,10 @@ def _relax(stepper, psi, tau, mu, tolerance, budget, hamiltonian):
         used += WINDOW
         changes.append(abs(mu - previous))
         scale = max(abs(mu), 1e-300)
+        if changes[-1] <= 0.1 * ROUNDING_FLOOR * scale:
+            # mu no longer moves but by its last bits: at a fixed point met exactly, the changes
+            # alternate by one ulp, their ratio is 1, and the geometric estimate below never settles
+            return psi, mu, used, "settled"
         if len(changes) >= 3:
             d1, d2 = changes[-2], changes[-1]
             ratio = d2 / d1 if d1 > 0 else 0.0
