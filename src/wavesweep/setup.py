@@ -467,6 +467,10 @@ def final_detector_values(setup, psi, length_scale: float) -> dict | None:
                                                     for layer in setup.absorber.layers]))
     density0 = np.abs(setup.psi0) ** 2
     x0 = float(np.sum(density0 * ax.coordinates) / np.sum(density0))
+    # a falling grid's lab psi carries exp(i m u x), beyond the grid's k_max in general: which way
+    # it moves is read from psi with that plane wave divided out, its momenta shifted by m u
+    p_frame = 0.0 if setup.frame is None else float(setup.mass * setup.frame.velocity(setup.total_steps * setup.dt)[0])
+    psi_slow = psi_job if p_frame == 0.0 else psi_job * np.exp(-1j * p_frame * (ax.coordinates + shift))
     beyond, to_come = [], []
     for d in setup.detectors:
         x_det = float(d.position / lf) * lf
@@ -474,7 +478,7 @@ def final_detector_values(setup, psi, length_scale: float) -> dict | None:
         face = layer_holding(stored, 0, x_det - shift)
         edge = x_det if face is None else layer_edge(stored, face) + shift
         beyond.append(side_probability(psi_job, coords, lf, 0, x_det, -side))
-        to_come.append(side_probability(psi_job, coords, lf, 0, edge, side, towards=True))
+        to_come.append(side_probability(psi_slow, coords, lf, 0, edge, side, towards=True, momentum_offset=p_frame))
     return {"final_probability_beyond": np.asarray(beyond, float),
             "final_probability_to_come": np.asarray(to_come, float)}
 

@@ -288,3 +288,27 @@ def test_first_arrival_is_the_smaller_positive_root():
         else:
             assert math.isnan(got)
 
+
+
+@pytest.mark.parametrize("ndim", [1, 2])
+def test_a_detector_above_the_drop_expects_nothing_more(tmp_path, ndim):
+    # Released at rest, the cloud only falls: a detector 5 um above its start sees nothing arrive
+    # and nothing is on its way at the end (classical kinematics).  At the end the lab momentum
+    # -m g T (5.4e3 Da um/ms at 6 ms) lies beyond the grid's k_max (1.7e3): the stored lab psi's
+    # transform aliases it to an upward momentum, which read "1 of probability still on its way"
+    # (1D: the run's recorded final_probability_to_come; 2D: analysis from the final psi).
+    table = drop_job(20.0, 255, 15.0, 0.01)
+    table["evolve"]["duration"] = 6.0
+    table["record"]["snapshot_every"] = 6.0
+    table["detector"] = [{"name": "above", "x": 5.0}, {"name": "sheet", "x": -20.0}]
+    if ndim == 2:
+        table["grid"]["y"] = table["grid"].pop("x")
+        table["grid"]["x"] = {"min": -10.0, "max": 10.0, "points": 21}
+        table["packet"].update(center=[0.0, 0.0], width=[1.5, SIGMA0])
+        table["detector"] = [{"name": d["name"], "y": d["x"]} for d in table["detector"]]
+    path = Simulation(make_job(table)).run(tmp_path, progress=False)
+    got = arrival_times(path)
+    assert got["above"].stats["still_to_come"] < 1e-12
+    assert got["above"].stats["truncated"] is False
+    assert got["sheet"].stats["still_to_come"] < 1e-6
+    assert got["sheet"].stats["probability"] == pytest.approx(1.0, abs=1e-6)

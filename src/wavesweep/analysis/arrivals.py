@@ -233,10 +233,34 @@ def upstream_probability(ds, setup, axis: int, x_det: float, side: float,
         return None
     values, dims, is_psi = found
     coords = [np.asarray(ds[d].values, float) for d in dims]
+    units = result_units(ds)
+    p_frame = 0.0
     if "frame_offset" in ds.variables:   # a falling grid: lab position = coordinate + offset at the end
         final = np.atleast_1d(np.asarray(ds["frame_offset"][-1].values, float))
         coords = [c + final[i] for i, c in enumerate(coords)]
-    return side_probability(values, coords, result_units(ds)["length"], axis, x_det, side, towards, is_psi)
+        if towards and is_psi:
+            # the lab psi carries exp(i m u x), u the grid's velocity at the end (the quadratic
+            # through the last three samples: exact under a constant force), beyond its k_max in general
+            p_frame = float(setup.mass) * _final_frame_velocity(ds, axis) * units["length"] / units["time"]
+            values = values * np.exp(-1j * p_frame * units["length"] * coords[axis]).reshape(
+                [-1 if i == axis else 1 for i in range(values.ndim)])
+    return side_probability(values, coords, units["length"], axis, x_det, side, towards, is_psi,
+                            momentum_offset=p_frame)
+
+
+def _final_frame_velocity(ds, axis: int) -> float:
+    """The falling grid's velocity along ``axis`` at the last sample (job
+    length per job time): the derivative of the quadratic through the last
+    three (time, frame_offset) samples (0 with fewer)."""
+    offset = np.asarray(ds["frame_offset"].values, float)
+    offset = offset if offset.ndim == 1 else offset[:, axis]
+    t = np.asarray(ds["time"].values, float)
+    if len(t) < 3:
+        return 0.0
+    (t0, t1, t2), (x0, x1, x2) = t[-3:], offset[-3:]
+    # d/dt of the Lagrange quadratic at t2
+    return float(x0 * (t2 - t1) / ((t0 - t1) * (t0 - t2)) + x1 * (t2 - t0) / ((t1 - t0) * (t1 - t2))
+                 + x2 * (2 * t2 - t0 - t1) / ((t2 - t0) * (t2 - t1)))
 
 
 def recorded_or(record, name: str, j: int, compute):

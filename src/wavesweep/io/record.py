@@ -394,13 +394,20 @@ def classical_share(rho, distance, k, w, mass: float, acceleration: float = 0.0)
 
 
 def side_probability(values, coords, length_factor: float, axis: int, x_det: float, side: float,
-                     towards: bool = False, is_psi: bool = True) -> float:
+                     towards: bool = False, is_psi: bool = True, momentum_offset: float = 0.0) -> float:
     """Probability on the ``side`` (+1: above) of the plane x_det (bohr) on
     ``axis``, from psi (``is_psi``) or |psi|^2 on the grid ``coords`` (job
     units, one array per axis; |psi|^2 dV is the same in job units); with
     ``towards``, only the part whose momentum points at the plane (from the
     transform of psi; the part running away does not count).  O(grid):
-    a few arrays of psi's size."""
+    a few arrays of psi's size.
+
+    ``momentum_offset`` (hbar/bohr, along ``axis``): ``values`` is psi with
+    the plane wave exp(i momentum_offset x) divided out, and its momenta
+    are those of the transform plus the offset.  A falling grid's lab psi
+    carries m u(t), which its spacing need not resolve (a 1 mm drop of
+    Rb-87 reaches ~30 times the grid's k_max): its transform would alias
+    the direction of motion, the demodulated one does not."""
     coords = [np.asarray(c, float) for c in coords]
     lf = length_factor
     dv = float(np.prod([abs(c[1] - c[0]) for c in coords]))
@@ -424,7 +431,8 @@ def side_probability(values, coords, length_factor: float, axis: int, x_det: flo
     k_rms = math.sqrt(float(np.sum(c * k**2) / np.sum(c))) or 1.0 / dx
     ramp = 0.5 * (1 + np.tanh((x - x_det) * side * k_rms / 4.0)).reshape(shape)
     c = np.abs(np.fft.fft(values * ramp, axis=axis)) ** 2
-    moving = float(np.sum(c * (k * -side > 0)) + 0.5 * np.sum(c * (k == 0)))
+    k_lab = k + momentum_offset
+    moving = float(np.sum(c * (k_lab * -side > 0)) + 0.5 * np.sum(c * (k_lab == 0)))
     return total * moving / float(np.sum(c))
 
 
