@@ -910,9 +910,17 @@ def _aliasing_finding(setup, T, tf) -> Finding:
     spurious waves.  Reports the potential's spectral weight in such modes
     and the time step that avoids them."""
     grid, mass, dt = setup.grid, setup.mass, setup.dt
-    v = setup.hamiltonian.static_potential
     if setup.grid.radial:
         return Finding("splitting", "ok", "radial grid: the static H is propagated exactly")
+    samples = lab_potential_samples(setup) if getattr(setup, "frame", None) is not None \
+        else [setup.hamiltonian.static_potential]
+    findings = [_aliasing_of(setup, v, T, tf) for v in samples]   # a falling grid: the worst time
+    return max(findings, key=lambda f: f.values["aliased_weight"])
+
+
+def _aliasing_of(setup, v, T, tf) -> Finding:
+    """:func:`_aliasing_finding` of one potential ``v`` (hartree, the grid's shape)."""
+    grid, mass, dt = setup.grid, setup.mass, setup.dt
     k_alias = math.sqrt(2 * mass * math.pi / dt)
     worst, k_needed = 0.0, 0.0
     span = float(np.ptp(v))
@@ -1021,17 +1029,17 @@ def time_step_finding(setup, dyn: Dynamics) -> Finding:
     tf, T = u.factor("time"), u.unit_label("time")
     dt = setup.dt
     e_run = sum(r**2 for r in dyn.over_run[6]) / (2 * setup.mass)
-    v = setup.hamiltonian_static_potential()
-    v_span = float(v.max() - v.min())
+    samples = lab_potential_samples(setup)   # a falling grid: the lab terms where it passes
+    v_span = max(float(v.max() - v.min()) for v in samples)
     v_seen = v_span
     box = None
     if dyn.reach is not None:
         box = tuple(slice(max(0, int(np.searchsorted(ax.coordinates, lo)) - 1),
                           int(np.searchsorted(ax.coordinates, hi)) + 1)
                     for ax, (lo, hi) in zip(setup.grid.axes, dyn.reach.visited))
-        seen = v[box] if v.ndim == setup.grid.ndim else v
-        if seen.size:
-            v_seen = float(seen.max() - seen.min())
+        seen = [v[box] if v.ndim == setup.grid.ndim else v for v in samples]
+        if all(part.size for part in seen):
+            v_seen = max(float(part.max() - part.min()) for part in seen)
     # time-dependent terms f(t) g(r): their largest swing over the run, on the
     # grid and where the packet goes (a field's -q E x grows with |x|)
     separable, _ = split_time_dependent(setup.terms, setup.grid.mesh())
@@ -1104,7 +1112,14 @@ def resolution_finding(setup) -> Finding | None:
     of spectrally; ``check --tolerance`` measures how far."""
     if setup.grid.radial:
         return None
-    v = setup.hamiltonian_static_potential()
+    if getattr(setup, "frame", None) is not None:   # the lab terms where the falling grid passes: the worst
+        found = [f for f in (_resolution_of(setup, v) for v in lab_potential_samples(setup)) if f is not None]
+        return max(found, key=lambda f: (f.level != "ok", f.values.get("unresolved_weight", 0.0)), default=None)
+    return _resolution_of(setup, setup.hamiltonian_static_potential())
+
+
+def _resolution_of(setup, v) -> Finding | None:
+    """:func:`resolution_finding` of one potential ``v`` (hartree)."""
     if float(np.ptp(v)) == 0.0:
         return None
     worst, axis, ratios = 0.0, None, {}
@@ -1174,6 +1189,31 @@ def detector_findings(setup) -> list[Finding]:
 # density sampled at a few points per width integrates to ~1e-10 by the
 # trapezoidal rule; the window is several widths).
 SAMPLES_PER_CROSSING = 40
+
+
+# A falling grid's lab potential is judged at times the grid moves at most
+# half its length apart (each lab feature then lies inside it at one of
+# them), at most this many grid points in all.
+FRAME_SAMPLE_POINTS = 2**24
+
+
+def lab_potential_samples(setup) -> list[np.ndarray]:
+    """On a falling grid: the Hamiltonian's real potential (the lab terms at
+    the grid's lab positions) at times over the run the grid moves at most
+    half its shortest extent apart, within :data:`FRAME_SAMPLE_POINTS`
+    grid points in all; otherwise the one static potential.  What the
+    time-step, aliasing and resolution criteria judge: on a falling grid
+    the static potential is zero and every lab term moves across it."""
+    if getattr(setup, "frame", None) is None or not setup.terms:
+        return [setup.hamiltonian_static_potential()]
+    fine = np.linspace(0.0, setup.duration, 4097)
+    path = np.array([setup.frame.offset(t) for t in fine])
+    travelled = np.concatenate([[0.0], np.cumsum(np.linalg.norm(np.diff(path, axis=0), axis=1))])
+    step = 0.5 * min(ax.length for ax in setup.grid.axes)
+    count = int(min(travelled[-1] / step, FRAME_SAMPLE_POINTS // setup.grid.size)) + 2
+    times = np.interp(np.linspace(0.0, travelled[-1], count), travelled, fine) if travelled[-1] > 0 \
+        else np.zeros(1)
+    return [np.broadcast_to(setup.hamiltonian.potential(float(t)), setup.grid.shape) for t in times]
 
 
 def _falling_detector_findings(setup, th: float) -> list[Finding]:

@@ -42,7 +42,7 @@ from .observables import Detector, Observer, mean_position_momentum, recorded_sc
 from .potentials import PotentialContext, make_term
 from .propagators import scheme_class
 from .schema import to_atomic
-from .states import PACKET_SCHEMAS, PACKETS, build_state
+from .states import PACKET_SCHEMAS, PACKETS, build_state, without_momentum
 
 __all__ = ["Model", "Setup", "resolve_job", "analysis_record", "recorded_run", "rebuilt_record",
            "final_detector_values", "records_final_values", "set_kernel_threads", "AXIS_LONG"]
@@ -146,13 +146,17 @@ class Setup(Model):
         self.snapshot_steps = round(u.to_atomic(rec["snapshot_every"], "time") / self.dt)
         self.dtype = np.complex64 if ev["precision"] == "single" else np.complex128
         self.packet = self._packet_atomic(t["packet"])
+        self.frame = None
+        falling = t["grid"].get("frame", "lab") == "free_fall"
+        declared = PACKETS[self.packet["kind"]].declared_momentum(self.packet, self.mass, self.grid.ndim) \
+            if falling else None
+        if declared is not None:   # a falling grid carries the launch: the packet is built at rest on it
+            self.packet = without_momentum(self.packet)
         representability(self)  # before the absorber's tuning squares the packet's momenta
         self.psi0 = build_state(self.packet, self.grid, self.mass,
                                 length_unit=(u.factor("length"), u.unit_label("length")), terms=self.terms)
-        self.frame = None
-        if t["grid"].get("frame", "lab") == "free_fall":
-            self.psi0_lab = self.psi0   # the packet as prepared in the lab
-            self._enter_free_fall()
+        if falling:
+            self._enter_free_fall(declared)
         if self.dtype == np.complex64:   # single precision end to end (half the bytes)
             self.psi0 = self.psi0.astype(np.complex64)
             if self.frame is not None:
@@ -175,22 +179,49 @@ class Setup(Model):
         self.scheme.check_supported(self.hamiltonian, self.absorber, self.grid)
 
     # -- pieces ----------------------------------------------------------------
-    def _enter_free_fall(self) -> None:
+    def _enter_free_fall(self, declared) -> None:
         """The grid falls (:mod:`wavesweep.frame`): the frame starts at the
-        lab grid with the packet's mean velocity; the uniform forces leave
-        the Hamiltonian, the other terms are seen at lab positions, and psi0
-        loses the frame's velocity (phi(y, 0) = exp(-i m u0 . y) psi(y, 0))."""
+        lab grid with the packet's velocity, the ``declared`` centre
+        momentum (the packet was then built at rest: psi0 is phi0 already,
+        however fast the launch) or else the built state's measured mean
+        momentum (psi0 then loses it, phi(y, 0) = exp(-i m u0 . y) psi(y, 0));
+        the uniform forces leave the Hamiltonian and the other terms are seen
+        at lab positions.  ``psi0_lab`` is the lab state on the grid's points
+        (a launch beyond k_max is aliased there: analysis reads phi0 and the
+        frame's momentum instead, :meth:`initial_marginals`)."""
         for i, term in enumerate(self.terms):
             if term.kind == "file":
                 raise JobError(f"potential.{i}.kind", "a potential read from a file is tabulated on the lab "
                                                       "grid and cannot follow a falling grid; give it as an "
                                                       "expression, or use grid.frame = 'lab'")
-        _, momentum, _ = mean_position_momentum(self.psi0, self.grid)
+        if declared is None:
+            _, momentum, _ = mean_position_momentum(self.psi0, self.grid)
+        else:
+            momentum = np.asarray(declared, float)
         uniform = [term for term in self.terms if term.uniform_force]
         self.frame = FreeFallFrame(uniform, self.mass, momentum / self.mass, self.grid.ndim, self.duration)
         self.terms = frame_terms(self.lab_terms, self.frame)
         self._v_static = None
-        self.psi0 = self.psi0 * np.conj(self.frame.lab_phase(self.grid, 0.0))
+        lab_phase = self.frame.lab_phase(self.grid, 0.0)
+        if declared is None:
+            self.psi0_lab = self.psi0
+            self.psi0 = self.psi0 * np.conj(lab_phase)
+        else:
+            self.psi0_lab = self.psi0 * lab_phase
+
+    def initial_marginals(self) -> list:
+        """Per axis (rho, k, w) of the initial lab state (atomic units;
+        :func:`~wavesweep.marginals.free_space_marginals`): on a falling grid
+        those of phi0 with k shifted by the frame's momentum m u0 (the lab
+        state's own transform would alias a launch beyond k_max)."""
+        if self.frame is None:
+            return [free_space_marginals(self.psi0_lab, self.grid, i) for i in range(self.grid.ndim)]
+        shift = self.mass * self.frame.velocity0
+        out = []
+        for i in range(self.grid.ndim):
+            rho, k, w = free_space_marginals(self.psi0, self.grid, i)
+            out.append((rho, k + shift[i], w))
+        return out
 
     def _packet_atomic(self, table, name="packet") -> dict:
         kind = table["kind"]
@@ -373,7 +404,7 @@ def analysis_record(setup, warnings: bool = True, lanczos: bool = True) -> dict:
     if warnings:
         attrs["adequacy_warnings"] = json.dumps(run_warnings(setup))
     psi0 = setup.psi0_lab   # the packet in the lab (in a falling frame, phi0 has lost the frame's velocity)
-    marginals_au = [free_space_marginals(psi0, grid, i) for i in range(grid.ndim)]
+    marginals_au = setup.initial_marginals()
     marginals = {a.name: (rho, k * lf, w) for a, (rho, k, w) in zip(grid.axes, marginals_au)}
     out = {"attrs": attrs, "marginals": marginals, "marginals_au": marginals_au, "energy_factor": ef,
            "initial_psi": None, "potential_full": None, "lanczos": None,

@@ -42,7 +42,7 @@ from .marginals import momentum_marginal
 from .registry import registrar
 from .schema import Field
 
-__all__ = ["PACKETS", "PACKET_SCHEMAS", "DEFAULT_PACKET", "PacketKind", "register_packet", "build_state",
+__all__ = ["without_momentum", "PACKETS", "PACKET_SCHEMAS", "DEFAULT_PACKET", "PacketKind", "register_packet", "build_state",
            "gaussian_packet", "momentum_spread"]
 
 
@@ -114,6 +114,16 @@ class PacketKind:
     def all_gaussian(cls, packet: dict) -> bool:
         """Whether it is Gaussian parts only (momenta known in closed form)."""
         return False
+
+    @classmethod
+    def declared_momentum(cls, packet: dict, mass: float, ndim: int) -> list[float] | None:
+        """The packet's centre momentum as the job declares it (atomic
+        units, per axis), or None where only the built state can tell (a
+        falling grid then measures it).  A falling grid removes it before
+        the state meets the grid's transform, so a launch faster than the
+        grid resolves stays exact (a sampled plane wave times its conjugate
+        is the envelope, point by point)."""
+        return None
 
 
 # kind -> PacketKind subclass: the one list of packet kinds.
@@ -254,6 +264,27 @@ def _eigenstate(packet, grid, mass, field, terms):
     if packet.get("momentum") is not None:
         psi = _boost(psi, grid, packet["momentum"], field)
     return psi
+
+
+def _boost_momentum(packet, ndim) -> list[float]:
+    """A stationary state's mean momentum: its boost (a real state has <p> = 0)."""
+    p = packet.get("momentum")
+    return [0.0] * ndim if p is None else [float(v) for v in p]
+
+
+# The keys that set a packet's centre momentum (removed by without_momentum).
+MOMENTUM_KEYS = ("momentum", "energy", "direction")
+
+
+def without_momentum(packet: dict) -> dict:
+    """The packet table (atomic units) at rest: its momentum keys removed,
+    in its members too.  A falling grid builds this and carries the
+    declared momentum in its own velocity."""
+    out = {k: v for k, v in packet.items() if k not in MOMENTUM_KEYS}
+    kind = PACKETS.get(out.get("kind", DEFAULT_PACKET))
+    if kind is not None and kind.nested and isinstance(out.get(kind.nested), list):
+        out[kind.nested] = [without_momentum(p) for p in out[kind.nested]]
+    return out
 
 
 def _boost(psi, grid, momenta, field):
@@ -422,6 +453,10 @@ class GaussianPacket(PacketKind):
     def all_gaussian(cls, packet):
         return True
 
+    @classmethod
+    def declared_momentum(cls, packet, mass, ndim):
+        return [float(p) for p in central_momenta(packet, mass, ndim, "packet")]
+
 
 # The kind of a [packet] table that names none.
 DEFAULT_PACKET = GaussianPacket.kind
@@ -454,6 +489,13 @@ class Superposition(PacketKind):
     @classmethod
     def gaussian_parts(cls, packet):
         return [q for p in packet["packets"] for q in PACKETS[p["kind"]].gaussian_parts(p)]
+
+    @classmethod
+    def declared_momentum(cls, packet, mass, ndim):
+        """The members' common momentum, if they share one (else None: measured)."""
+        each = [PACKETS[p["kind"]].declared_momentum(p, mass, ndim) for p in packet["packets"]]
+        return each[0] if each and all(e is not None and np.allclose(e, each[0], rtol=0, atol=0) for e in each) \
+            else None
 
     @classmethod
     def all_gaussian(cls, packet):
@@ -498,6 +540,10 @@ class Eigenstate(PacketKind):
     def build(cls, packet, grid, mass, field, length_unit, terms):
         return _eigenstate(packet, grid, mass, field, terms)
 
+    @classmethod
+    def declared_momentum(cls, packet, mass, ndim):
+        return _boost_momentum(packet, ndim)
+
 
 def _ground_state(packet, grid, mass, field, terms):
     trap = _trap_of(packet, terms, "ground_state")
@@ -532,3 +578,7 @@ class GroundState(PacketKind):
     @classmethod
     def build(cls, packet, grid, mass, field, length_unit, terms):
         return _ground_state(packet, grid, mass, field, terms)
+
+    @classmethod
+    def declared_momentum(cls, packet, mass, ndim):
+        return _boost_momentum(packet, ndim)
