@@ -854,6 +854,9 @@ def momentum_findings(setup, dyn: Dynamics) -> list[Finding]:
         if level != "ok":
             msg += (f"; beyond it momentum wraps round the grid; use {points_text(points_for(ax, r6))} points "
                     f"(same extent) or a shorter duration")
+            if getattr(setup, "frame", None) is not None and gained:
+                # what a lab potential gives the packet against the falling grid: it does not fall with it
+                msg += "; or grid.frame = 'lab' (held or deflected in the lab, the packet does not fall with the grid)"
         out.append(Finding("momentum", level, msg,
                            {"axis": ax.name, "k_max": kmax / pf, "packet_reach": i6 / pf,
                             "run_reach": r6 / pf, "share_beyond": share, "centre_beyond": centre,

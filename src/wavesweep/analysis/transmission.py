@@ -152,6 +152,11 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
     if setup.grid.ndim != 1 or setup.grid.radial:
         raise JobError("RUN.nc", f"{source_name(ds)}: energy-resolved transmission needs a 1D cartesian run "
                                  "(the totals are given for any run)")
+    if "frame_offset" in ds.variables:
+        raise JobError("RUN.nc", f"{source_name(ds)}: the run's grid fell with the packet (grid.frame = 'free_fall'); "
+                                 "energy-resolved transmission needs a grid fixed in the lab and free motion beyond "
+                                 "the scatterer: use `wavesweep arrivals` for what crossed each lab detector, or run "
+                                 "the job with grid.frame = 'lab'")
     if setup.time_dependent:
         raise JobError("RUN.nc", f"{source_name(ds)}: energy-resolved transmission needs a static potential: with a "
                                  "time-dependent one, energy is not conserved")

@@ -176,8 +176,10 @@ def job_from_dict(raw: dict, overrides=(), source: Path | None = None) -> Job:
         if units is not None else None
     with found.check():
         out["absorber"] = _absorber(raw.get("absorber", {}), u, layout, extents, ndim)
-    # in a free-falling frame detectors stay in the lab: the grid may reach them only later
-    frame = out["grid"].get("frame", "lab") if "grid" in out else "lab"
+    # in a free-falling frame detectors stay in the lab: the grid may reach them only later (a
+    # frame the grid table gives, even a wrong one, spares the detectors a consequential error)
+    frame = (out["grid"].get("frame", "lab") if "grid" in out
+             else layout.get("frame", "lab") if isinstance(layout, dict) else "lab")
     with found.check():
         out["record"] = _record(raw.get("record", {}), u, timing, layout)
     axes = grid_axes(out["grid"] if "grid" in out else layout)
