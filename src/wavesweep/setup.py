@@ -82,6 +82,11 @@ class Model:
     def __init__(self, job: Job, grid: Grid | None = None):
         self.job = job
         t, u = job.table, job.units
+        if t.get("surface"):
+            # the job file's tables are read and checked (wavesweep.surfaces holds the numerics), but
+            # runs, levels and results do not carry surfaces yet: refused rather than run on one surface
+            raise JobError("surface", "coupled surfaces ([[surface]], [[coupling]]) are checked but not yet "
+                                      "run by this version; remove them to run the job on one surface")
         self.units = u
         self.mass = u.to_atomic(t["particle"]["mass"], "mass", "particle.mass")
         charge = t["particle"].get("charge")

@@ -30,8 +30,8 @@ from ..schema import Field
 from ..states import DEFAULT_PACKET, PACKET_SCHEMAS, PACKETS
 from ..units import CYCLE_SYMBOLS, KINDS, UNITS, UnitSet
 from .document import Job
-from .schemas import (ABSORBER, AXIS, DETECTOR, DETECTOR_POSITION, EVOLVE, GRID, INTERACTION, PARTICLE, RECORD,
-                      TOP_LEVEL)
+from .schemas import (ABSORBER, AXIS, COUPLING, DETECTOR, DETECTOR_POSITION, EVOLVE, GRID, INTERACTION, PARTICLE,
+                      RECORD, SURFACE, TOP_LEVEL)
 from .sweep import MODES
 
 __all__ = ["reference", "render_text", "topics", "physics_defaults", "PhysicsDefault", "default_findings",
@@ -51,6 +51,8 @@ TABLE_DOCS = {
     "detector": "planes where the probability current is recorded, one table each",
     "sweep": "a study: job fields to vary, one run per point",
     "interaction": "the condensate's mean-field contact interaction (Gross-Pitaevskii); none: linear",
+    "surface": "several potential-energy surfaces one packet moves on, one table each (none: one surface)",
+    "coupling": "the off-diagonal potential between two surfaces, one table per coupled pair",
 }
 
 # [units] (read by UnitSet.from_table; the unit each base quantity is written in).
@@ -236,6 +238,15 @@ def _table_sections(name: str) -> list[dict]:
                           "energy is the Gross-Pitaevskii functional per atom, <T> + <V> + (g N / 2) "
                           "<|psi|^2>; the result also records chemical_potential, <T> + <V> + g N <|psi|^2>",
                           "split-operator schemes only (strang, order4, order4_suzuki): the others are linear"])]
+    if name == "surface":
+        return [_section("surface", "[[surface]]", doc, _keys(SURFACE, skip=()),
+                         notes=["the packet names the surface it starts on: [packet] surface = NAME (or one "
+                                "per member of a superposition)",
+                                "checked, not yet run by this version: a job with surfaces is refused "
+                                "before it runs"])]
+    if name == "coupling":
+        return [_section("coupling", "[[coupling]]", doc, _keys(COUPLING, skip=()),
+                         "H = T + V(r, t), V_ab = V_ba the coupling's potential, V_aa the surface's")]
     raise KeyError(name)
 
 

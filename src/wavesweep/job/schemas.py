@@ -20,7 +20,20 @@ from ..schema import Field
 NOT_PHYSICS = {"evolve": ("fft", "threads")}
 
 TOP_LEVEL = ("title", "units", "particle", "grid", "potential", "packet", "evolve",
-             "absorber", "record", "detector", "sweep", "interaction")
+             "absorber", "record", "detector", "sweep", "interaction", "surface", "coupling")
+
+# [[surface]] and [[coupling]]: several potential-energy surfaces one packet moves on
+# (wavesweep.surfaces); their potential lists are [[potential]] tables.
+SURFACE = {
+    "name": Field("str", doc="the surface's name (the result's `surface` coordinate)"),
+    "potential": Field("list", None, doc="[[potential]]-style tables summed into this surface's V_ss "
+                                         "(the job's [[potential]] tables are added to every surface)"),
+}
+COUPLING = {
+    "surfaces": Field("list", doc="the two surfaces it couples, by name: [\"A\", \"B\"]"),
+    "potential": Field("list", doc="[[potential]]-style tables summed into the off-diagonal element "
+                                   "V_AB(r, t) (real; V_BA = V_AB)"),
+}
 
 PARTICLE = {
     "mass": Field("mass", 1.0, positive=True, physics=True,

@@ -30,7 +30,8 @@ from ..states import DEFAULT_PACKET, PACKET_SCHEMAS, PACKETS
 from ..units import UnitSet
 from .document import Job, grid_axes, job_number
 from .dotted import apply_overrides, file_position, parse_override
-from .schemas import (ABSORBER, AXIS, DETECTOR, DETECTOR_POSITION, EVOLVE, PARTICLE, RECORD, TOP_LEVEL,
+from .schemas import (ABSORBER, AXIS, COUPLING, DETECTOR, DETECTOR_POSITION, EVOLVE, PARTICLE, RECORD, SURFACE,
+                      TOP_LEVEL,
                       interaction_schema)
 from .sweep import apply_sweep_overrides, refuse_swept_overrides
 
@@ -186,6 +187,13 @@ def job_from_dict(raw: dict, overrides=(), source: Path | None = None) -> Job:
     if axes or "grid" in out:   # without any axis the position keys cannot be told
         with found.check():
             out["detector"] = _detectors(raw.get("detector", []), u, extents if frame == "lab" else None, axes)
+    if "surface" in raw or "coupling" in raw:   # absent: nothing added, the job (and its run id) as before
+        with found.check():
+            out["surface"], out["coupling"] = _surfaces(raw.get("surface"), raw.get("coupling"), u, ndim,
+                                                        base, found)
+            _packet_surfaces(out.get("packet"), [t["name"] for t in out["surface"]], "packet")
+    elif isinstance(out.get("packet"), dict):
+        _packet_surfaces(out["packet"], None, "packet", found)
     if "interaction" in raw:   # absent: nothing added, the job (and its run id) as before
         with found.check():
             out["interaction"] = _interaction(raw["interaction"], u, ndim, "r" in layout)
@@ -404,6 +412,93 @@ def _potential_tables(raw, units, ndim, base, prefix, found: ErrorCollector) -> 
     return out
 
 
+def _surfaces(raw_surfaces, raw_couplings, units, ndim, base, found: ErrorCollector) -> tuple[list, list]:
+    """The [[surface]] and [[coupling]] tables: names unique, each coupling
+    between two different named surfaces and each pair coupled once; their
+    potential lists checked as [[potential]] tables."""
+    if raw_surfaces is None:
+        raise JobError("surface", "[[coupling]] needs [[surface]] tables to couple; e.g. "
+                                  "[[surface]] name = 'A' potential = [{ kind = 'step', ... }]")
+    if isinstance(raw_surfaces, dict):
+        raw_surfaces = [raw_surfaces]
+    if not isinstance(raw_surfaces, list) or not all(isinstance(t, dict) for t in raw_surfaces):
+        raise JobError("surface", "must be [[surface]] tables")
+    surfaces, names = [], []
+    for i, table in enumerate(raw_surfaces):
+        field = f"surface.{i}"
+        with found.check():
+            t = validate_table(table, SURFACE, field, units)
+            name = t["name"]
+            if not name or not name.strip():
+                raise JobError(f"{field}.name", "must not be empty")
+            if name in names:
+                raise JobError(f"{field}.name", f"{name!r} is used twice")
+            names.append(name)
+            t["potential"] = (_potentials(t["potential"], units, ndim, base, found, f"{field}.potential")
+                              if t.get("potential") else [])
+            surfaces.append(t)
+    couplings, pairs = [], set()
+    raw_couplings = [raw_couplings] if isinstance(raw_couplings, dict) else (raw_couplings or [])
+    if not isinstance(raw_couplings, list) or not all(isinstance(t, dict) for t in raw_couplings):
+        raise JobError("coupling", "must be [[coupling]] tables")
+    for i, table in enumerate(raw_couplings):
+        field = f"coupling.{i}"
+        with found.check():
+            t = validate_table(table, COUPLING, field, units)
+            pair = t["surfaces"]
+            if len(pair) != 2 or not all(isinstance(n, str) for n in pair):
+                raise JobError(f"{field}.surfaces", f"give two surface names, e.g. [\"A\", \"B\"]; got {pair!r}")
+            for n in pair:
+                if n not in names:
+                    near = difflib.get_close_matches(n, names, n=1)
+                    hint = f"did you mean {near[0]!r}? " if near else ""
+                    raise JobError(f"{field}.surfaces", f"no surface {n!r}; {hint}the surfaces are "
+                                                        f"{', '.join(map(repr, names))}")
+            if pair[0] == pair[1]:
+                raise JobError(f"{field}.surfaces", f"couples {pair[0]!r} with itself: a surface's own potential "
+                                                    "goes in its [[surface]] table")
+            key = frozenset(pair)
+            if key in pairs:
+                raise JobError(f"{field}.surfaces", f"{pair[0]!r} and {pair[1]!r} are coupled twice; sum the "
+                                                    "potentials in one [[coupling]] table")
+            pairs.add(key)
+            t["potential"] = _potentials(t["potential"], units, ndim, base, found, f"{field}.potential")
+            couplings.append(t)
+    return surfaces, couplings
+
+
+def _packet_surfaces(packet, names, name, found: ErrorCollector | None = None) -> None:
+    """``surface`` of the packet (or of each member of a superposition):
+    required and one of ``names`` when the job has surfaces; refused
+    without (``names`` None)."""
+    if not isinstance(packet, dict):
+        return
+    own = found is None
+    if own:
+        found = ErrorCollector()
+    kind = PACKETS.get(packet.get("kind"))
+    members = packet.get(kind.nested) if kind is not None and kind.nested else None
+    with found.check():
+        value = packet.get("surface")
+        if names is None:
+            if value is not None:
+                raise JobError(f"{name}.surface", "the job has no [[surface]] tables: remove it, or add the surfaces")
+        elif members and value is None and all(isinstance(m, dict) and m.get("surface") is not None
+                                               for m in members):
+            pass   # each member says its own surface
+        elif value is None:
+            raise JobError(f"{name}.surface", f"which surface the packet starts on: one of "
+                                              f"{', '.join(map(repr, names))}")
+        elif value not in names:
+            raise JobError(f"{name}.surface", f"no surface {value!r}; the surfaces are {', '.join(map(repr, names))}")
+    if members:
+        for j, member in enumerate(members):
+            if isinstance(member, dict) and (member.get("surface") is not None or names is None):
+                _packet_surfaces(member, names, f"{name}.{kind.nested}.{j}", found)
+    if own:
+        found.raise_if_any()
+
+
 def _packet(raw, units, ndim, base, name) -> dict:
     if raw is None:
         raise JobError(name, f"missing [{name}] table; e.g. kind = 'gaussian', center, width, momentum")
@@ -423,8 +518,13 @@ def _packet(raw, units, ndim, base, name) -> dict:
         found.add(JobError(f"{name}.{key}", message))
     t = None
     with found.check():
-        t = validate_table(raw, PACKET_SCHEMAS[kind], name, units, ndim)
+        # `surface` (issue 16) belongs to any kind: checked against the job's [[surface]] tables
+        t = validate_table({k: v for k, v in raw.items() if k != "surface"}, PACKET_SCHEMAS[kind], name, units, ndim)
         t["kind"] = kind
+        if "surface" in raw:
+            if not isinstance(raw["surface"], str):
+                raise JobError(f"{name}.surface", f"must be a surface's name, got {raw['surface']!r}")
+            t["surface"] = raw["surface"]
     if t is not None and cls.nested:
         parts = []
         for j, p in enumerate(t[cls.nested]):
