@@ -43,6 +43,7 @@ from .potentials import PotentialContext, make_term
 from .propagators import scheme_class
 from .schema import to_atomic
 from .states import PACKET_SCHEMAS, PACKETS, build_state, without_momentum
+from .surfaces import SurfaceHamiltonian
 
 __all__ = ["Model", "Setup", "resolve_job", "analysis_record", "recorded_run", "rebuilt_record",
            "final_detector_values", "records_final_values", "set_kernel_threads", "AXIS_LONG"]
@@ -82,11 +83,6 @@ class Model:
     def __init__(self, job: Job, grid: Grid | None = None):
         self.job = job
         t, u = job.table, job.units
-        if t.get("surface"):
-            # the job file's tables are read and checked (wavesweep.surfaces holds the numerics), but
-            # runs, levels and results do not carry surfaces yet: refused rather than run on one surface
-            raise JobError("surface", "coupled surfaces ([[surface]], [[coupling]]) are checked but not yet "
-                                      "run by this version; remove them to run the job on one surface")
         self.units = u
         self.mass = u.to_atomic(t["particle"]["mass"], "mass", "particle.mass")
         charge = t["particle"].get("charge")
@@ -95,6 +91,28 @@ class Model:
         self.terms = [self._term(i, p) for i, p in enumerate(t["potential"])]
         self.lab_terms = self.terms   # the job's terms in the lab (a falling grid's Hamiltonian has others)
         self.interaction = self._interaction(t.get("interaction"))
+        # coupled surfaces ([[surface]], [[coupling]]): names, each surface's terms (the job's
+        # [[potential]] terms on every one) and each coupled pair's; none: one surface
+        self.surfaces = [s["name"] for s in t.get("surface", [])]
+        self.surface_terms = [self.terms + [self._term(k, p, f"surface.{i}.potential")
+                                            for k, p in enumerate(s["potential"])]
+                              for i, s in enumerate(t.get("surface", []))]
+        self.coupling_terms = {}
+        for i, c in enumerate(t.get("coupling", [])):
+            a, b = sorted(self.surfaces.index(n) for n in c["surfaces"])
+            self.coupling_terms[a, b] = [self._term(k, p, f"coupling.{i}.potential") for k, p in enumerate(c["potential"])]
+
+    @property
+    def coupled(self) -> bool:
+        """Whether the job has several surfaces ([[surface]] tables)."""
+        return bool(self.surfaces)
+
+    @functools.cached_property
+    def surface_hamiltonian(self) -> SurfaceHamiltonian:
+        """H = T + V(r, t) on the job's surfaces, without the absorber (:mod:`wavesweep.surfaces`)."""
+        if not self.coupled:
+            raise ValueError("the job has one surface: use Model.hamiltonian")
+        return SurfaceHamiltonian(self.grid, self.mass, self.surfaces, self.surface_terms, self.coupling_terms)
 
     @functools.cached_property
     def hamiltonian(self) -> Hamiltonian:
@@ -142,6 +160,12 @@ class Setup(Model):
     def __init__(self, job: Job, fft: str | None = None, threads: int | None = None):
         super().__init__(job)
         t, u = job.table, job.units
+        if self.coupled:
+            # the job file's tables are read and checked and the numerics exist (wavesweep.surfaces),
+            # but runs and their results do not carry surfaces yet: refused rather than run on one surface
+            raise JobError("surface", "a run on coupled surfaces ([[surface]], [[coupling]]) is not yet made by "
+                                      "this version (the job is checked; `levels` reads it); remove them to run "
+                                      "on one surface")
         ev = t["evolve"]
         self.dt = u.to_atomic(ev["dt"], "time", "evolve.dt")
         self.duration = u.to_atomic(ev["duration"], "time", "evolve.duration")

@@ -253,13 +253,15 @@ def _check_terms(out: dict, potentials: list, units: UnitSet, found: ErrorCollec
         return
     groups = [("potential", potentials)]
     groups += _packet_traps(out.get("packet"), "packet")
+    groups += [(f"surface.{i}.potential", t["potential"]) for i, t in enumerate(out.get("surface", []))]
+    groups += [(f"coupling.{i}.potential", t["potential"]) for i, t in enumerate(out.get("coupling", []))]
     for prefix, tables in groups:
         for i, table in enumerate(tables):
             if table is None:
                 continue
             with found.check():
                 # a packet's own trap is where it was prepared: in the lab
-                frame = out["grid"].get("frame", "lab") if prefix == "potential" else "lab"
+                frame = out["grid"].get("frame", "lab") if not prefix.startswith("packet") else "lab"
                 make_term(table, PotentialContext(grid, mass, charge, units, f"{prefix}.{i}", frame))
 
 
