@@ -42,10 +42,10 @@ from .observables import Detector, Observer, mean_position_momentum, recorded_sc
 from .potentials import PotentialContext, make_term
 from .propagators import scheme_class
 from .schema import to_atomic
-from .states import PACKET_SCHEMAS, PACKETS, build_state, without_momentum
-from .surfaces import SurfaceHamiltonian
+from .states import PACKET_SCHEMAS, PACKETS, build_state, build_surface_state, without_momentum
+from .surfaces import CoupledSplitOperator, SurfaceHamiltonian, coupled_weights
 
-__all__ = ["Model", "Setup", "resolve_job", "analysis_record", "recorded_run", "rebuilt_record",
+__all__ = ["Model", "Setup", "CoupledSetup", "resolve_job", "analysis_record", "recorded_run", "rebuilt_record",
            "final_detector_values", "records_final_values", "set_kernel_threads", "AXIS_LONG"]
 
 AXIS_LONG = {"x": "position x", "y": "position y", "z": "position z", "r": "radius r"}
@@ -592,3 +592,99 @@ def rebuilt_record(ds, field: str, lanczos: bool) -> RecordedRun:
     rec = recorded_run(setup, lanczos=lanczos)
     rec.warnings = run_warnings(setup)
     return rec
+
+
+class CoupledSetup(Setup):
+    """A job on coupled surfaces ([[surface]], [[coupling]]; issue 16, in
+    progress): the grid, each surface's and each pair's terms, psi0 of shape
+    (S, *grid) (:func:`~wavesweep.states.build_surface_state`), the absorber
+    (the same layers on every surface), the :class:`SurfaceHamiltonian`
+    with its rate, the coupled split-operator propagator and an observer
+    per surface.  Runs and their result files do not use it yet
+    (:class:`Setup` refuses a coupled job); it is what they will build on,
+    and what the tests propagate in memory."""
+
+    def __init__(self, job: Job, fft: str | None = None, threads: int | None = None):
+        Model.__init__(self, job)
+        if not self.coupled:
+            raise ValueError("a CoupledSetup needs [[surface]] tables; use Setup")
+        t, u = job.table, job.units
+        ev, rec = t["evolve"], t["record"]
+        self.frame = None
+        self.dt = u.to_atomic(ev["dt"], "time", "evolve.dt")
+        self.duration = u.to_atomic(ev["duration"], "time", "evolve.duration")
+        self.total_steps = round(self.duration / self.dt)
+        self.sample_steps = round(u.to_atomic(rec["every"], "time") / self.dt)
+        self.snapshot_steps = round(u.to_atomic(rec["snapshot_every"], "time") / self.dt)
+        refusals = (
+            (ev["precision"] == "single", "evolve.precision",
+             "coupled surfaces run in double precision (population moves between surfaces: the "
+             "single-precision norm keeping of one surface does not apply); use 'double'"),
+            (t.get("interaction") is not None, "interaction", "a mean-field interaction on coupled surfaces is not "
+                                                              "supported; remove [interaction]"),
+            (t["grid"].get("frame", "lab") != "lab", "grid.frame", "a falling grid on coupled surfaces is not "
+                                                                   "supported; use frame = 'lab'"),
+            (t["absorber"]["kind"] == "cap" and t["absorber"].get("strength") is None, "absorber.strength",
+             "a CAP on coupled surfaces is not tuned yet: give its strength (energy), or use kind = 'mask'"),
+        )
+        for refused, field, message in refusals:
+            if refused:
+                raise JobError(field, message)
+        try:
+            self.weights = coupled_weights(ev["scheme"])
+        except ValueError:
+            raise JobError("evolve.scheme", f"{ev['scheme']!r} cannot propagate coupled surfaces; use a "
+                                            "split-operator scheme: 'strang', 'order4' or 'order4_suzuki'") from None
+        self.scheme = scheme_class(ev["scheme"])
+        self.dtype = np.complex128
+        self.packet = self._packet_atomic(t["packet"])
+        self.psi0 = build_surface_state(self.packet, self.grid, self.mass, self.surface_terms, self.surfaces,
+                                        length_unit=(u.factor("length"), u.unit_label("length")))
+        self.psi0_lab = self.psi0
+        table = t["absorber"] if t["absorber"]["kind"] != "cap" or t["absorber"].get("power") is not None \
+            else {**t["absorber"], "power": 2.0}
+        self.absorber = self._absorber(table)
+        self.hamiltonian = SurfaceHamiltonian(self.grid, self.mass, self.surfaces, self.surface_terms,
+                                              self.coupling_terms, self.absorber.rate)
+        self.detectors = [self._detector(i, d) for i, d in enumerate(t["detector"])]
+        self.fft_backend = fft or ev.get("fft", AUTO)
+        self.threads = threads or ev.get("threads")
+
+    def _packet_atomic(self, table, name="packet") -> dict:
+        """As :meth:`Setup._packet_atomic`, keeping each table's ``surface``."""
+        out = super()._packet_atomic({k: v for k, v in table.items() if k != "surface"}, name)
+        if table.get("surface") is not None:
+            out["surface"] = table["surface"]
+        nested = PACKETS[table["kind"]].nested
+        if nested:
+            for member, raw in zip(out[nested], table[nested]):
+                if raw.get("surface") is not None:
+                    member["surface"] = raw["surface"]
+        return out
+
+    def make_propagator(self, transform=None) -> CoupledSplitOperator:
+        return CoupledSplitOperator(self.hamiltonian, self.dt, self.weights,
+                                    self.absorber if self.absorber.active else None)
+
+    def make_observer(self) -> Observer:
+        """One observer for all surfaces: each is a member of its batch."""
+        n = len(self.surfaces)
+        transform = make_transform(self.grid, PLAIN, np.complex128, self.threads, members=n)
+        return Observer(self.grid, self.mass, transform, self.detectors, members=n)
+
+    def measure(self, observer, psi, t: float) -> dict:
+        """The sample's values (atomic units): per surface (arrays over the
+        surfaces, in their order) ``norm``, ``x_mean``, ``x_std``,
+        ``p_mean``, ``flux`` (surface, detector) and, 1D, ``detector_psi``;
+        and ``energy``, <T + V> over the total norm with the couplings'
+        2 Re <psi_a|V_ab|psi_b> (the per-surface observables see no V)."""
+        each = observer.measure_members(psi, np.zeros(self.grid.shape))
+        out = {key: np.array([e[key] for e in each]) for key in ("norm", "x_mean", "x_std", "p_mean", "flux")}
+        if "detector_psi" in each[0]:
+            out["detector_psi"] = np.array([e["detector_psi"] for e in each])
+        kinetic = float(sum(e["energy"] * e["norm"] for e in each if e["norm"] > 0))
+        v = self.hamiltonian.matrix(t if self.hamiltonian.time_dependent else None)
+        potential = float(np.real(np.sum(np.conj(psi)[:, None] * v * psi[None, :]))) * self.grid.cell_volume
+        total = float(out["norm"].sum())
+        out["energy"] = (kinetic + potential) / total if total > 0 else float("nan")
+        return out

@@ -42,7 +42,7 @@ from .marginals import momentum_marginal
 from .registry import registrar
 from .schema import Field
 
-__all__ = ["without_momentum", "PACKETS", "PACKET_SCHEMAS", "DEFAULT_PACKET", "PacketKind", "register_packet", "build_state",
+__all__ = ["without_momentum", "build_surface_state", "PACKETS", "PACKET_SCHEMAS", "DEFAULT_PACKET", "PacketKind", "register_packet", "build_state",
            "gaussian_packet", "momentum_spread"]
 
 
@@ -233,6 +233,33 @@ def _superposition(packet, grid, mass, field, length_unit=(1.0, "bohr"), terms=N
         psi = psi + float(a) * np.exp(1j * float(ph)) * build_state(sub, grid, mass, f"{field}.packets.{j}",
                                                                      length_unit, terms)
     return np.broadcast_to(psi, grid.shape).astype(complex)
+
+
+def build_surface_state(packet: dict, grid, mass: float, surface_terms, names, field: str = "packet",
+                        length_unit: tuple[float, str] = (1.0, "bohr")) -> np.ndarray:
+    """psi (S, *grid) on coupled surfaces (complex128, normalised over all of
+    them) from a packet table in atomic units: the packet on the surface its
+    ``surface`` names, or a superposition whose members each name theirs
+    (amplitudes and phases as for one surface).  A stationary packet is of
+    its own surface's potential (``surface_terms[s]``) unless it names a trap."""
+    psi = np.zeros((len(names),) + grid.shape, complex)
+    if packet.get("surface") is not None:
+        s = names.index(packet["surface"])
+        psi[s] = build_state({k: v for k, v in packet.items() if k != "surface"}, grid, mass, field,
+                             length_unit, surface_terms[s])
+        return psi
+    parts = packet["packets"]   # validated: a superposition whose members name their surfaces
+    amps = packet.get("amplitudes") or [1.0] * len(parts)
+    phases = packet.get("phases") or [0.0] * len(parts)
+    for j, (sub, a, ph) in enumerate(zip(parts, amps, phases)):
+        s = names.index(sub["surface"])
+        one = build_state({k: v for k, v in sub.items() if k != "surface"}, grid, mass,
+                          f"{field}.packets.{j}", length_unit, surface_terms[s])
+        psi[s] += float(a) * np.exp(1j * float(ph)) * one
+    norm = float(np.sum(np.abs(psi) ** 2)) * grid.cell_volume
+    if not np.isfinite(norm) or norm <= 0:
+        raise JobError(f"{field}.amplitudes", "the superposition vanishes on the grid (its members cancel)")
+    return psi / np.sqrt(norm)
 
 
 def _trap_of(packet, terms, kind: str):

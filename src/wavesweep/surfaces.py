@@ -170,6 +170,10 @@ class CoupledSplitOperator:
     def t(self) -> float:
         return self.t0 + self.steps_done * self.dt
 
+    def load(self, psi: np.ndarray) -> np.ndarray:
+        """A complex128 copy of psi (S, *grid) to step from."""
+        return np.array(psi, dtype=np.complex128, copy=True)
+
     # -- pieces ------------------------------------------------------------------
     def _kinetic(self, psi, tau):
         """exp(-i T tau) on every surface (the grid's transform along its axes)."""
