@@ -27,6 +27,14 @@ scatterer at t = 0.  The samples are a trapezoidal sum, which is exact up
 to aliasing: the band of energies the packet holds must be narrower than
 2 pi hbar / (sample spacing).
 
+The method's core works on plain arrays (``transmission_from_samples``:
+sample times, psi(x_d, t), the incident momentum density, the final
+channel's potential V_f beyond the detector; a run's T(E) uses V_f =
+V(x_d)).  On coupled surfaces (``surface_transmission``) it is applied per
+final surface s, v' the speed on s beyond the detector, k_s(E) =
+sqrt(2 m (E - V_s)) / hbar: T_s(E) = 2 pi hbar^2 v v_s |psi~_s(E)|^2 /
+|phi(k)|^2, zero where s is closed (derived there).
+
 A run that ends before the whole transmitted amplitude has passed the
 detector still gives T(E), with an uncertainty per energy.  The integral
 misses its tail b(E) = int_{t_end}^inf psi(x_d, t) exp(i E t) dt / 2 pi,
@@ -76,6 +84,7 @@ and at 14030 fs it was settled to 1.3e-4.)
 from __future__ import annotations
 
 import math
+from typing import NamedTuple
 
 import numpy as np
 
@@ -86,7 +95,8 @@ from .recorded import as_record
 from .recorded import run_record as read_record
 
 __all__ = ["transmission", "energy_resolved_transmission", "transmission_totals", "truncation_warning",
-           "UNCERTAINTY_TARGET"]
+           "UNCERTAINTY_TARGET", "transmission_from_samples", "surface_transmission", "incident_wave_numbers",
+           "SampledTransmission"]
 
 WEIGHT_FLOOR = 1e-2       # report T(E) where the incident weight is above 1 % of its peak
 BAND_FLOOR = 1e-8         # the band that must not alias: weight above 1e-8 of the peak
@@ -166,13 +176,7 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
     names = [str(d) for d in ds["detector"].values]
     if not names:
         raise JobError("RUN.nc", f"{source_name(ds)}: the run has no detector; add a [[detector]] beyond the scatterer")
-    x = setup.grid.axes[0].coordinates
-    # incident momentum density (continuous normalisation, int |phi|^2 dk = 1)
-    # on a k grid 8 times finer than the grid's own (zero-padded FFT)
-    dx = setup.grid.axes[0].dx
-    pad = 8 * len(x)
-    k_all = np.fft.fftshift(2 * math.pi * np.fft.fftfreq(pad, dx))
-    w_all = np.fft.fftshift(np.abs(np.fft.fft(setup.psi0, n=pad)) ** 2) * dx**2 / (2 * math.pi)
+    k_all, w_all = _padded_momentum_density(setup.psi0, setup.grid.axes[0].dx)
     p_mean = float(np.sum(k_all * w_all) / np.sum(w_all))
     if detector is not None:
         if detector not in names:
@@ -254,23 +258,12 @@ def _at_detector(ds, setup, j, k_all, w_all, points) -> dict:
         raise JobError("record.every", f"samples {dt_rec / uc['time']:g} {uc['time_label']} apart alias "
                                        f"the packet's band of {width / uc['energy']:.3g} {uc['energy_label']}; "
                                        f"use record.every < {need:.3g} {uc['time_label']}")
-    k_rep = k_all[w_fwd > WEIGHT_FLOOR * w_fwd.max()]
-    k = np.linspace(k_rep.min(), k_rep.max(), points)
-    k = k[np.argsort(np.abs(k))]          # energies ascending whichever way the packet moves
-    energy = v_start + k**2 / (2 * mass)
+    k = _wave_numbers_with_weight(k_all, w_fwd, points)
     phi = _momentum_amplitude(setup.psi0, x, k)
-    v_in = np.abs(k) / mass
-    kinetic_det = energy - v_det
-    v_out = np.sqrt(np.maximum(2 * kinetic_det / mass, 0.0))
-    wq = np.full(len(t), dt_rec)          # trapezoid weights
-    wq[0] = wq[-1] = dt_rec / 2
-    if not np.allclose(np.diff(t), dt_rec, rtol=1e-6, atol=0):
-        wq = np.gradient(t)                 # uneven samples (a resumed run is still even)
-    amp_e = (np.exp(1j * np.outer(energy, t)) @ (amp * wq)) / (2 * math.pi)
-    to_T = 2 * math.pi * v_in * v_out / np.abs(phi) ** 2     # |amplitude per energy|^2 -> T
-    T = to_T * np.abs(amp_e) ** 2
-    passes = kinetic_det > 0
-    T[~passes] = 0.0
+    # the detector's side is the final channel: its potential there is V_f
+    spectrum = transmission_from_samples(t, amp, k, np.abs(phi) ** 2, mass, v_start, v_det)
+    energy, T, to_T = spectrum.energy, spectrum.transmission, spectrum.to_transmission
+    passes = energy - v_det > 0
 
     # --- what had not passed the detector by the end (module notes) ---
     e_center = 0.5 * float(e_band.min() + e_band.max())
@@ -313,6 +306,147 @@ def _at_detector(ds, setup, j, k_all, w_all, points) -> dict:
         "uncertain_span": span,
         "peak_energy": float(energy[np.argmax(weight)]) / uc["energy"],
     }
+
+
+class SampledTransmission(NamedTuple):
+    """T(E) from psi sampled at a detector (:func:`transmission_from_samples`).
+    All arrays are per incident wave number, atomic units."""
+
+    energy: np.ndarray           # E = V_in + hbar^2 k^2 / 2m (hartree), ascending when k is sorted by |k|
+    transmission: np.ndarray     # T(E) into the final channel (0 where it is closed)
+    energy_amplitude: np.ndarray  # psi~(E) = (1 / 2 pi hbar) int psi(x_d, t) exp(i E t / hbar) dt
+    to_transmission: np.ndarray  # T = to_transmission |psi~(E)|^2 (2 pi hbar^2 v_in v_f / |phi|^2)
+
+
+def transmission_from_samples(time, psi_detector, wave_number, momentum_density, mass,
+                              incident_potential, final_potential) -> SampledTransmission:
+    """T(E) into one final channel from psi sampled at a detector beyond the
+    scatterer (the module notes' method, on plain arrays; atomic units,
+    hbar = 1).
+
+    ``time``: the sample times; ``psi_detector``: psi(x_d, t) there
+    (bohr^-1/2 in 1D), its trapezoidal sum standing for the time integral
+    (uneven samples get np.gradient weights); ``wave_number``: the incident
+    packet's wave numbers k (bohr^-1, signed: the direction it moves) where
+    T is wanted; ``momentum_density``: |phi(k)|^2 there (continuous
+    normalisation, int |phi|^2 dk = 1, phi of psi(t = 0) where the incident
+    potential is ``incident_potential``); ``final_potential``: the final
+    channel's potential energy V_f at and beyond the detector (hartree).
+
+    E = V_in + k^2 / 2m; the wave arriving with energy E has k_f =
+    sqrt(2 m (E - V_f)) there, speed v_f = k_f / m, and
+
+        T(E) = 2 pi hbar^2 v_in v_f |psi~(E)|^2 / |phi(k)|^2,
+
+    v_in = |k| / m; T = 0 where E <= V_f (the channel is closed: nothing
+    crosses a detector far beyond the scatterer).  The samples must not
+    alias the packet's band (spacing < 2 pi hbar / its width) and psi must
+    have died out at the detector by the last one (see the module notes
+    for what a truncated record misses)."""
+    t = np.asarray(time, float)
+    amp = np.asarray(psi_detector, complex)
+    k = np.asarray(wave_number, float)
+    density = np.asarray(momentum_density, float)
+    if t.ndim != 1 or amp.shape != t.shape or t.size < 2:
+        raise ValueError(f"time and psi_detector must be 1D of the same length (>= 2); got shapes "
+                         f"{t.shape} and {amp.shape}")
+    if k.shape != density.shape:
+        raise ValueError(f"wave_number and momentum_density must have the same shape; got {k.shape} "
+                         f"and {density.shape}")
+    energy = incident_potential + k**2 / (2 * mass)
+    v_in = np.abs(k) / mass
+    kinetic_final = energy - final_potential
+    v_final = np.sqrt(np.maximum(2 * kinetic_final / mass, 0.0))
+    dt_rec = float(np.median(np.diff(t)))
+    wq = np.full(len(t), dt_rec)          # trapezoid weights
+    wq[0] = wq[-1] = dt_rec / 2
+    if not np.allclose(np.diff(t), dt_rec, rtol=1e-6, atol=0):
+        wq = np.gradient(t)                 # uneven samples (a resumed run is still even)
+    amp_e = (np.exp(1j * np.outer(energy, t)) @ (amp * wq)) / (2 * math.pi)
+    to_T = 2 * math.pi * v_in * v_final / density     # |amplitude per energy|^2 -> T
+    T = to_T * np.abs(amp_e) ** 2
+    T[~(kinetic_final > 0)] = 0.0
+    return SampledTransmission(energy, T, amp_e, to_T)
+
+
+def surface_transmission(time, psi_detector, wave_number, momentum_density, mass, incident_potential,
+                         final_potentials) -> tuple[np.ndarray, np.ndarray]:
+    """T_s(E) into each final surface s from one packet on coupled surfaces
+    (1D; atomic units, hbar = 1): the single-surface method
+    (:func:`transmission_from_samples`, module notes) per surface.
+
+    ``psi_detector``: (S, samples), psi_s(x_d, t) at a detector beyond the
+    scatterer, where the couplings vanish and each V_ss is flat (its
+    asymptote ``final_potentials[s]``, hartree); ``time``,
+    ``wave_number``, ``momentum_density`` and ``incident_potential`` are
+    the incident surface's packet's, as in :func:`transmission_from_samples`
+    (the packet starts on that surface only, entirely on the other side of
+    the scatterer, where that surface is flat at V_in and uncoupled).
+    Returns (energy (K,), T (S, K)); T_s = 0 where surface s is closed.
+
+    Derivation.  Expand psi(t = 0) = int dk phi(k) Psi_k in the scattering
+    states Psi_k of energy E = V_in + hbar^2 k^2 / 2m that come in on the
+    incident surface as exp(i k x) / sqrt(2 pi).  Beyond the scatterer (no
+    coupling, V_ss = V_s) the component of Psi_k on surface s is
+    t_s(k) exp(i k_s x) / sqrt(2 pi), k_s(E) = sqrt(2 m (E - V_s)) / hbar,
+    when E > V_s; below, it decays away from the scatterer and is nothing at
+    a detector far from it.  So psi_s(x_d, t) = int dk phi t_s exp(i k_s x_d
+    - i E t / hbar) / sqrt(2 pi), and with dE = hbar v_in dk
+
+        psi~_s(E) = (1 / 2 pi hbar) int psi_s(x_d, t) exp(i E t / hbar) dt
+                  = phi(k) t_s(k) exp(i k_s x_d) / (sqrt(2 pi) hbar v_in).
+
+    The flux of t_s exp(i k_s x) against that of the incoming wave is
+    T_s = (v_s / v_in) |t_s|^2, v_s = hbar k_s / m, hence
+
+        T_s(E) = 2 pi hbar^2 v_in v_s |psi~_s(E)|^2 / |phi(k)|^2,
+
+    the single-surface formula with the final speed taken on surface s.
+    The channels are the diabatic surfaces because the couplings vanish at
+    the detector.  Single-channel method: Tannor, Introduction to Quantum
+    Mechanics: A Time-Dependent Perspective (2007), ch. 7 (from memory), as
+    in the module notes; sum_s T_s + R = 1 for a real potential matrix."""
+    psi = np.asarray(psi_detector, complex)
+    v_final = np.atleast_1d(np.asarray(final_potentials, float))
+    if psi.ndim != 2 or psi.shape[0] != v_final.size:
+        raise ValueError(f"psi_detector must be (surfaces, samples) with one final potential per surface; "
+                         f"got shape {psi.shape} and {v_final.size} potentials")
+    runs = [transmission_from_samples(time, psi[s], wave_number, momentum_density, mass,
+                                      incident_potential, v_final[s]) for s in range(v_final.size)]
+    return runs[0].energy, np.stack([run.transmission for run in runs])
+
+
+def incident_wave_numbers(psi0, x, direction, points: int = 201) -> tuple[np.ndarray, np.ndarray]:
+    """The incident packet's wave numbers where energy-resolved T is given
+    and its momentum density there, as :func:`energy_resolved_transmission`
+    chooses them: ``points`` evenly spaced wave numbers (bohr^-1) moving in
+    ``direction`` (+1 or -1) across the band where |phi|^2 is above
+    WEIGHT_FLOOR of its peak, ordered by |k|; and |phi(k)|^2 (bohr, int
+    |phi|^2 dk = 1) of ``psi0`` on the uniform grid ``x`` (1D, bohr)."""
+    x = np.asarray(x, float)
+    k_all, w_all = _padded_momentum_density(psi0, x[1] - x[0])
+    w_fwd = np.where(k_all * direction > 0, w_all, 0.0)
+    k = _wave_numbers_with_weight(k_all, w_fwd, points)
+    return k, np.abs(_momentum_amplitude(psi0, x, k)) ** 2
+
+
+def _padded_momentum_density(psi0, dx) -> tuple[np.ndarray, np.ndarray]:
+    """Incident momentum density (continuous normalisation, int |phi|^2 dk
+    = 1) on a k grid 8 times finer than the grid's own (zero-padded FFT):
+    (k, |phi(k)|^2), k ascending."""
+    pad = 8 * len(psi0)
+    k_all = np.fft.fftshift(2 * math.pi * np.fft.fftfreq(pad, dx))
+    w_all = np.fft.fftshift(np.abs(np.fft.fft(psi0, n=pad)) ** 2) * dx**2 / (2 * math.pi)
+    return k_all, w_all
+
+
+def _wave_numbers_with_weight(k_all, w_fwd, points) -> np.ndarray:
+    """``points`` wave numbers evenly across those where the forward weight
+    is above WEIGHT_FLOOR of its peak, energies ascending whichever way the
+    packet moves."""
+    k_rep = k_all[w_fwd > WEIGHT_FLOOR * w_fwd.max()]
+    k = np.linspace(k_rep.min(), k_rep.max(), points)
+    return k[np.argsort(np.abs(k))]
 
 
 def _final_psi(ds, uc) -> np.ndarray | None:
