@@ -636,8 +636,8 @@ def _levels(args) -> int:
             raise too_big
         model = Model(job)   # the packet plays no part in the levels
         if model.coupled and model.interaction is not None:
-            raise JobError("interaction", "levels of coupled surfaces have no mean field g N |psi|^2; "
-                                          "remove [interaction] for their levels")
+            raise JobError("interaction", "levels on coupled surfaces do not take a mean field g N |psi|^2; "
+                                          "remove [interaction] for the levels of T + V")
         # coupled surfaces: the full matrix Hamiltonian, states (count, S, *grid)
         solve = coupled_stationary_states if model.coupled else stationary_states
         energies_au = states = None
