@@ -99,8 +99,8 @@ from ..job import Job, job_from_dict, load_job
 from ..setup import Model
 from .recorded import run_record
 
-__all__ = ["stationary_states", "coupled_stationary_states", "coupled_level_errors", "condensate_ground_state", "level_errors", "LevelErrors", "write_states", "check_states_path",
-           "autocorrelation_levels", "AutocorrelationLevels", "truncation_floor"]
+__all__ = ["stationary_states", "condensate_ground_state", "level_errors", "LevelErrors", "write_states", "check_states_path",
+           "coupled_stationary_states", "coupled_level_errors", "autocorrelation_levels", "AutocorrelationLevels", "truncation_floor"]
 
 # -- stationary states -----------------------------------------------------------------
 def stationary_states(setup_or_job, count: int, method: str = "auto", field: str = "count"):
@@ -639,10 +639,22 @@ def coupled_level_errors(model, energies_hartree, states, method: str = "auto") 
     e0 = np.asarray(energies_hartree, float)
     count = e0.size
     v, keep = coupled_walls(h, 0.0)
-    # the eigensolver's rounding (dense eigh is backward stable): ROUNDING eps ||H||, ||H|| off the walls
+    # what the eigensolver leaves in each level (as _rounding_floor): ROUNDING eps ||H|| (||H|| off
+    # the walls) plus r^2 / gap of the state's residual r (an iterative answer's)
     scale = float(h.kinetic_operator.kinetic.max()) + float(np.max(np.abs(v if keep is None else
                                                                            v[:, :, keep.any(axis=0)])))
-    floor = np.full(count, ROUNDING * np.finfo(float).eps * scale)
+    unit = np.asarray(states, float) * math.sqrt(model.grid.cell_volume)
+    residual = np.stack([h.apply(u) for u in unit]) - e0.reshape((-1,) + (1,) * (unit.ndim - 1)) * unit
+    if keep is not None:
+        residual *= keep
+    r2 = np.sum(residual**2, axis=tuple(range(1, unit.ndim)))
+    gaps = np.full(count, scale)
+    for n in range(count):
+        others = np.abs(np.delete(e0, n) - e0[n])
+        others = others[others > DEGENERATE_TOL * max(float(np.max(np.abs(e0))), 1e-300)]
+        if others.size:
+            gaps[n] = float(others.min())
+    floor = ROUNDING * np.finfo(float).eps * scale + r2 / gaps
     rungs = []
     for factor in (GRID_RATIO, GRID_RATIO**2):
         coarse = _scaled_grid(model.grid, factor)
@@ -717,6 +729,13 @@ def write_states(path, setup, energies_hartree, states, errors: LevelErrors | No
     if coupled:
         coords["surface"] = ("surface", np.array(setup.surfaces, dtype=object),
                              {"long_name": "potential-energy surface ([[surface]] name)"})
+    if coupled:   # each surface's own V_ss
+        v = setup.surface_hamiltonian.matrix(0.0)
+        potential = (("surface",) + grid.names, np.stack([v[a, a] for a in range(v.shape[0])]) / ef,
+                     {"units": u.unit_label("energy"), "long_name": "each surface's own potential V_ss at t = 0"})
+    else:
+        potential = (grid.names, setup.hamiltonian.real_potential(0.0) / ef,
+                     {"units": u.unit_label("energy"), "long_name": "real potential at t = 0 the states belong to"})
     psi = np.asarray(states, float) * lf ** (grid.ndim / 2)
     psi_units = f"{length}-{grid.ndim / 2:g}"
     job = setup.job
@@ -731,12 +750,7 @@ def write_states(path, setup, energies_hartree, states, errors: LevelErrors | No
          "psi_real": (dims, psi, {"units": psi_units, "long_name": "real part of the stationary state"}),
          "psi_imag": (dims, np.zeros_like(psi), {"units": psi_units,
                                                  "long_name": "imaginary part of the stationary state"}),
-         "potential": ((("surface",) + grid.names, np.stack([setup.surface_hamiltonian.matrix(0.0)[a, a]
-                                                            for a in range(len(setup.surfaces))]) / ef)
-                       if coupled else (grid.names, setup.hamiltonian.real_potential(0.0) / ef))
-                      + ({"units": u.unit_label("energy"),
-                          "long_name": ("each surface's own potential V_ss at t = 0" if coupled else
-                                        "real potential at t = 0 the states belong to")},)},
+         "potential": potential},
         coords=coords,
         attrs={"title": job.title, "job": job_text, "run_id": run_id,
                "wavesweep_version": __version__, "content": "stationary states",
