@@ -241,3 +241,22 @@ def test_two_dimensional_surfaces_iterative_against_dense():
     dv = model.grid.cell_volume
     np.testing.assert_allclose(surface_weights(iterative_states, dv), surface_weights(dense_states, dv),
                                rtol=0, atol=1e-8)
+
+
+def test_degenerate_levels_of_uncoupled_copies(tmp_path):
+    """Two identical uncoupled surfaces: every level is doubly degenerate
+    (the degeneracy rule of one surface marks it), the states of a level are
+    any basis of it, and their weights on each surface sum to 1 over the
+    level (the trace of the level's projector on that surface: one state
+    per surface); a note on stderr says the weights are per level only."""
+    table = coupled(WELL_A, WELL_A, points=64)
+    job = write_job(tmp_path, table)
+    proc = wavesweep("levels", job, "--count", "4", cwd=tmp_path)
+    assert proc.returncode == 0, proc.stderr
+    rows = proc.stdout.splitlines()[1:]
+    assert [r.split()[-1] for r in rows] == ["0-1", "0-1", "2-3", "2-3"]
+    assert "summed over the level" in proc.stderr
+    energies, states = coupled_stationary_states(make_job(table), 4)
+    np.testing.assert_allclose(energies, [0.1, 0.1, 0.3, 0.3], rtol=0, atol=1e-10)
+    weights = surface_weights(states, Model(make_job(table)).grid.cell_volume)
+    np.testing.assert_allclose(weights[0::2] + weights[1::2], 1.0, rtol=0, atol=1e-12)
