@@ -588,12 +588,14 @@ def _plot(args) -> int:
 
 def _levels(args) -> int:
     # lazy: each command loads only what it needs (every command's start-up)
-    from .eigen import DEGENERATE_TOL, degenerate_groups
+    from .eigen import DEGENERATE_TOL, degenerate_groups, surface_weights
     from .analysis.spectra import (autocorrelation_levels, check_states_path, condensate_ground_state,
-                                   level_errors, stationary_states, write_states)
+                                   coupled_level_errors, coupled_stationary_states, level_errors,
+                                   stationary_states, write_states)
 
     member = {}   # level -> the degenerate level it belongs to (job files only)
     errors = estimate = condensate = None
+    surfaces = on_surface = None   # coupled jobs: the surface names, each level's weight on each (count, S)
     if args.from_run is not None:
         if args.job is not None:
             raise JobError("--from", "give either JOB.toml or --from RUN.nc, not both")
@@ -633,19 +635,29 @@ def _levels(args) -> int:
         if too_big is not None:   # judged from shapes, before anything is allocated
             raise too_big
         model = Model(job)   # the packet plays no part in the levels
+        if model.coupled and model.interaction is not None:
+            raise JobError("interaction", "levels on coupled surfaces do not take a mean field g N |psi|^2; "
+                                          "remove [interaction] for the levels of T + V")
+        # coupled surfaces: the full matrix Hamiltonian, states (count, S, *grid)
+        solve = coupled_stationary_states if model.coupled else stationary_states
         energies_au = states = None
         if args.count >= 1:
             try:   # one level more, to tell whether the last one asked for is degenerate with the next
-                energies_au, states = stationary_states(model, args.count + 1, field="--count")
+                energies_au, states = solve(model, args.count + 1, field="--count")
             except JobError:   # the grid holds no more states
                 pass
         if energies_au is None:   # the count's own answer, or its own message
-            energies_au, states = stationary_states(model, args.count, field="--count")
+            energies_au, states = solve(model, args.count, field="--count")
         for a, b in degenerate_groups(energies_au):
             label = f"levels {a}-{b}" + (" (or more)" if b >= args.count else "")
             member.update((n, label) for n in range(a, min(b + 1, args.count)))
         energies_au, states = energies_au[:args.count], states[:args.count]
-        estimate = level_errors(model, energies_au, states)
+        if model.coupled:
+            surfaces = model.surfaces
+            on_surface = surface_weights(states, model.grid.cell_volume)
+            estimate = coupled_level_errors(model, energies_au, states)
+        else:
+            estimate = level_errors(model, energies_au, states)
         units = model.units.unit_label("energy")
         ef = model.units.factor("energy")
         energies, errors, weights = estimate.energies / ef, estimate.errors / ef, None
@@ -655,6 +667,9 @@ def _levels(args) -> int:
             condensate = (mu / ef, energy / ef)
             notes.insert(0, "the levels are those of T + V without the mean field g N |psi|^2; the chemical "
                             "potential and energy are the condensate ground state's (imaginary time)")
+        if surfaces is not None and member:
+            notes.append("the states of a degenerate level are any orthonormal basis of it: their weights on "
+                         "the surfaces are not defined one by one, only summed over the level")
         if swept:
             notes.insert(0, f"sweep: the levels are those of the job without its [sweep] ({', '.join(swept)} "
                             "as written outside it, or as --set); --set them for a point of the sweep")
@@ -669,16 +684,21 @@ def _levels(args) -> int:
             body["extrapolated"] = [bool(x) for x in estimate.extrapolated]
         if condensate is not None:
             body["chemical_potential"], body["energy"] = condensate
+        if surfaces is not None:
+            body["surfaces"] = list(surfaces)
+            body["surface_weights"] = [{name: float(w) for name, w in zip(surfaces, row)} for row in on_surface]
         print(json.dumps(body))
     else:
         head = f"{'level':>5}  {'energy (' + units + ')':>22}"
         head += f"  {'error':>9}" if errors is not None else ""
         head += f"  {'weight':>12}" if weights is not None else ""
+        head += "".join(f"  {'on ' + name:>12}" for name in surfaces) if surfaces is not None else ""
         print(head + (f"  degenerate (within {DEGENERATE_TOL:g} relative)" if member else ""))
         for n, e in enumerate(energies):   # in energy order, 0 the lowest
             row = f"{n:>5}  {e:>22.12g}"
             row += f"  {errors[n]:>9.2g}" if errors is not None else ""
             row += f"  {weights[n]:>12.6g}" if weights is not None else ""
+            row += "".join(f"  {w:>12.6f}" for w in on_surface[n]) if surfaces is not None else ""
             print((row + f"  {member[n]}") if n in member else row)
         if condensate is not None:
             print(f"ground state with the interaction: chemical potential {condensate[0]:.12g} {units}, "

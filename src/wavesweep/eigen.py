@@ -68,7 +68,7 @@ from .fft import default_threads
 from .grid import Axis, Grid
 from .hamiltonian import Hamiltonian
 
-__all__ = ["eigenpairs", "walled_potential", "degenerate_groups", "energy_band", "recorded_energy_band",
+__all__ = ["eigenpairs", "coupled_eigenpairs", "coupled_walls", "surface_weights", "walled_potential", "degenerate_groups", "energy_band", "recorded_energy_band",
            "lanczos_recurrence", "lanczos_quadrature", "quadrature_band", "band_window", "ground_energy",
            "DENSE_MAX_POINTS", "DEGENERATE_TOL"]
 
@@ -433,6 +433,201 @@ def lobpcg_from(h, v, keep, x0, count, tol, maxiter):
         if worst <= tol * scale or stalled or done >= maxiter:
             return energies, x
         before = worst
+
+
+# -- coupled surfaces ---------------------------------------------------------------------
+def coupled_eigenpairs(hamiltonian, count: int, t: float | None = 0.0, method: str = "auto",
+                       field: str = "count"):
+    """The ``count`` lowest eigenpairs of H = T (x) 1 + V(r, t) on S coupled
+    surfaces (a :class:`~wavesweep.surfaces.SurfaceHamiltonian`; atomic
+    units): ``(energies_hartree, states)``, energies ascending and real
+    states of shape ``(count, S, *grid.shape)`` in bohr^(-ndim/2), normalised
+    over all surfaces (sum_s sum_r psi_s^2 dV = 1), with the sign rule of
+    :func:`eigenpairs` applied to the whole (S, *grid) array.
+
+    The matrix is S N x S N for N grid points: the blocks T + diag(V_ss) on
+    the diagonal, diag(V_ab) off it (the Fourier-grid Hamiltonian of each
+    surface, coupled point by point).  Walls as for one surface
+    (:func:`coupled_walls`), per surface.  Up to :data:`DENSE_MAX_POINTS`
+    (surface, point) pairs below the walls, dense ``scipy.linalg.eigh`` with
+    ``subset_by_index``; beyond, LOBPCG on the operator (:func:`lobpcg_from`
+    with the same preconditioner on each surface), started from the lowest
+    states of each surface alone (each by the single-surface cascade, to a
+    loose tolerance), the lowest of them in energy taken.  ``t`` as in
+    :func:`eigenpairs`.  Every answer's residual is checked."""
+    grid, surfaces = hamiltonian.grid, hamiltonian.size
+    total = surfaces * grid.size
+    if isinstance(count, bool) or not isinstance(count, (int, np.integer)):
+        raise JobError(field, f"must be a whole number of states, got {count!r}")
+    if count < 1:
+        raise JobError(field, f"must be at least 1, got {count}")
+    if count > total:
+        raise JobError(field, f"{surfaces} surfaces of {grid.size} grid points hold at most {total} states; "
+                              f"got {count}")
+    count = int(count)
+    v, keep = coupled_walls(hamiltonian, t)
+    points = total if keep is None else int(keep.sum())
+    if keep is not None and count > points:
+        raise JobError(field, f"only {points} (surface, point) pairs lie below the potentials' walls, so at most "
+                              f"{points} states; got {count}")
+    if method == "auto":
+        method = "dense" if points <= DENSE_MAX_POINTS else "iterative"
+    problem = _CoupledOperator(hamiltonian, v)
+    diagonal = problem.diagonal
+    if method == "dense":
+        energies, vectors = _coupled_dense(hamiltonian, count, v, keep)
+    elif method == "iterative":
+        m = block_size(count)
+        x0 = _coupled_start(hamiltonian, v, keep, m)
+        energies, vectors = lobpcg_from(problem, diagonal, keep, x0, count, tol=ITERATIVE_TOL,
+                                        maxiter=MAX_ITERATIONS)
+        energies, vectors = energies[:count], vectors[:, :count]
+    else:
+        raise ValueError(f"method must be 'auto', 'dense' or 'iterative', got {method!r}")
+    states = vectors.T.reshape((count, surfaces) + grid.shape)
+    check_residuals(problem, diagonal, keep, energies, states, method)
+    states = states / math.sqrt(grid.cell_volume)
+    for s in states:
+        flat = s.reshape(-1)
+        big = np.abs(flat)
+        first = int(np.argmax(big >= 0.5 * big.max()))
+        if flat[first] < 0:
+            s *= -1.0
+    return np.asarray(energies, float), states
+
+
+def surface_weights(states, cell_volume: float) -> np.ndarray:
+    """Each state's weight on each surface, sum_r |psi_s(r)|^2 dV:
+    ``(count, S)`` for states ``(count, S, *grid)`` (bohr^(-ndim/2)) on cells
+    of ``cell_volume`` (bohr^ndim); a normalised state's weights sum to 1."""
+    states = np.asarray(states)
+    axes = tuple(range(2, states.ndim))
+    return np.sum(np.abs(states) ** 2, axis=axes) * float(cell_volume)
+
+
+def coupled_walls(h, t: float | None = 0.0):
+    """``(v, keep)``: V(r, t) as (S, S, *grid) (hartree) with each diagonal
+    capped at the ceiling, and the mask (S, *grid) of the (surface, point)
+    pairs below it, or None when all are.  The ceiling is
+    :func:`walled_potential`'s, WALL_HEIGHT T_max above the lowest local
+    level, bounded below by Gershgorin's circles (V_ss - sum_b |V_sb|).  At
+    a wall psi_s = 0, and the couplings to it drop out: the V_ss -> infinity
+    limit."""
+    v = np.array(h.matrix(t), float)
+    s = v.shape[0]
+    diagonal = np.stack([v[a, a] for a in range(s)])
+    radius = np.sum(np.abs(v), axis=1) - np.abs(diagonal)
+    ceiling = float(np.min(diagonal - radius)) + WALL_HEIGHT * float(h.kinetic_operator.kinetic.max())
+    if not float(diagonal.max()) > ceiling:
+        return v, None
+    for a in range(s):
+        v[a, a] = np.minimum(v[a, a], ceiling)
+    return v, diagonal <= ceiling
+
+
+class _CoupledGrid:
+    """The shape of a coupled problem's vectors, (S, *grid), for the solvers
+    written for one grid (:func:`lobpcg_from`, :func:`check_residuals`)."""
+
+    def __init__(self, grid, surfaces: int):
+        self.shape = (surfaces,) + tuple(grid.shape)
+        self.size = surfaces * grid.size
+        self.ndim = grid.ndim + 1
+
+
+class _CoupledOperator:
+    """T (x) 1 + V on (S, *grid) arrays, with the single-surface operator's
+    interface that :func:`lobpcg_from` and :func:`check_residuals` use:
+    ``apply_static(psi, potential=diagonal)`` applies V with its diagonal
+    replaced by ``diagonal`` (S, *grid) when given (the walls' cap);
+    ``kinetic`` is T(k) of one surface (the same on every one)."""
+
+    def __init__(self, hamiltonian, v):
+        self.kinetic_operator = hamiltonian.kinetic_operator
+        self.grid = _CoupledGrid(hamiltonian.grid, hamiltonian.size)
+        self.v = v
+        self.diagonal = np.stack([v[a, a] for a in range(v.shape[0])])
+
+    @property
+    def kinetic(self):
+        return self.kinetic_operator.kinetic
+
+    def apply_kinetic(self, psi, factor=None, workers=None):
+        return self.kinetic_operator.apply_kinetic(psi, factor, workers=workers)
+
+    def apply_static(self, psi, t=None, workers=None, potential=None):
+        out = self.kinetic_operator.apply_kinetic(psi, workers=workers)
+        out += _local(self.v, psi)
+        if potential is not None:   # the diagonal as given instead of v's
+            out += (np.asarray(potential) - self.diagonal) * psi
+        return out
+
+
+def _local(v, psi):
+    """sum_b V_ab psi_b at every point, for psi (..., S, *grid)."""
+    s = v.shape[0]
+    lead = psi.ndim - v.ndim + 1
+    psi_m = psi.reshape((-1, s) + psi.shape[lead + 1:])
+    out = np.einsum("ab...,mb...->ma...", v, psi_m)
+    return out.reshape(psi.shape)
+
+
+def _coupled_dense(h, count, v, keep):
+    """Dense eigh of the coupled matrix on the (surface, point) pairs below
+    the walls: per surface the walled single-surface block
+    (:func:`_walled_matrix`), and V_ab on the diagonal of block (a, b) where
+    both pairs are kept.  Returns columns of length S N (zeros at walls)."""
+    grid, surfaces = h.grid, h.size
+    mask = np.ones((surfaces,) + grid.shape, bool) if keep is None else keep
+    index = [np.flatnonzero(mask[a].reshape(-1)) for a in range(surfaces)]
+    offsets = np.concatenate([[0], np.cumsum([i.size for i in index])]).astype(int)
+    points = int(offsets[-1])
+    if points > 8 * DENSE_MAX_POINTS:
+        raise ValueError(f"a dense matrix of {points} (surface, point) pairs needs "
+                         f"{8 * points**2 / 1e9:.1f} GB; use method='iterative'")
+    matrix = np.zeros((points, points))
+    kinetic = h.kinetic_operator
+    for a in range(surfaces):
+        if index[a].size:
+            matrix[offsets[a]:offsets[a + 1], offsets[a]:offsets[a + 1]] = _walled_matrix(kinetic, v[a, a], mask[a])
+    for a in range(surfaces):
+        for b in range(a + 1, surfaces):
+            common, ia, ib = np.intersect1d(index[a], index[b], assume_unique=True, return_indices=True)
+            coupling = v[a, b].reshape(-1)[common]
+            matrix[offsets[a] + ia, offsets[b] + ib] = coupling
+            matrix[offsets[b] + ib, offsets[a] + ia] = coupling
+    energies, sub = scipy.linalg.eigh(matrix, subset_by_index=[0, count - 1], overwrite_a=True)
+    vectors = np.zeros((surfaces * grid.size, count))
+    for a in range(surfaces):
+        vectors[a * grid.size + index[a]] = sub[offsets[a]:offsets[a + 1]]
+    return energies, vectors
+
+
+def _coupled_start(h, v, keep, m):
+    """``m`` start columns (length S N) for LOBPCG on the coupled operator:
+    the lowest states of each surface alone (T + V_ss with its walls, the
+    single-surface cascade to COARSE_TOL), the ``m`` lowest in energy of
+    them all, each on its own surface, slightly perturbed (as the cascade
+    does: nearly parallel start vectors break LOBPCG's orthonormalisation)."""
+    grid, surfaces = h.grid, h.size
+    found = []
+    for a in range(surfaces):
+        ka = None if keep is None else keep[a]
+        inside = grid.size if ka is None else int(ka.sum())
+        if inside == 0:
+            continue
+        ha = Hamiltonian(grid, h.mass, [], static_potential=v[a, a])
+        energies, vectors = _cascade(ha, v[a, a], None if ka is None or ka.all() else ka, min(m, inside),
+                                     min(m, inside))
+        for e, x in zip(energies, vectors.T):
+            found.append((float(e), a, x))
+    found.sort(key=lambda item: item[0])
+    x0 = np.zeros((surfaces * grid.size, m))
+    for j, (_, a, x) in enumerate(found[:m]):
+        x0[a * grid.size:(a + 1) * grid.size, j] = x
+    rng = np.random.default_rng(1982)
+    x0[:, len(found[:m]):] = rng.standard_normal((x0.shape[0], m - len(found[:m])))
+    return x0 + 1e-8 * np.linalg.norm(x0, axis=0) / math.sqrt(x0.shape[0]) * rng.standard_normal(x0.shape)
 
 
 # Levels closer than this, relative to the largest of |E| and the span of the

@@ -86,7 +86,8 @@ import scipy.linalg
 
 from .._version import __version__
 from ..eigen import (DEGENERATE_TOL, ITERATIVE_TOL, MAX_ITERATIONS, WINDOW_RATIO, block_size, check_residuals,
-                     coarse_hamiltonian, eigenpairs, lobpcg_from, recorded_energy_band, walled_potential)
+                     coarse_hamiltonian, coupled_eigenpairs, coupled_walls, eigenpairs, lobpcg_from,
+                     recorded_energy_band, surface_weights, walled_potential)
 from ..errors import JobError, RunFailed
 from ..grid import Axis, Grid
 from ..imaginary_time import DEFAULT_TOLERANCE, ground_state
@@ -99,7 +100,7 @@ from ..setup import Model
 from .recorded import run_record
 
 __all__ = ["stationary_states", "condensate_ground_state", "level_errors", "LevelErrors", "write_states", "check_states_path",
-           "autocorrelation_levels", "AutocorrelationLevels", "truncation_floor"]
+           "coupled_stationary_states", "coupled_level_errors", "autocorrelation_levels", "AutocorrelationLevels", "truncation_floor"]
 
 # -- stationary states -----------------------------------------------------------------
 def stationary_states(setup_or_job, count: int, method: str = "auto", field: str = "count"):
@@ -613,6 +614,80 @@ def _advice(model, best, errors, resolution, edge, faces, orders, extrapolated, 
                     f"{_smooth_count(math.ceil(n), box)} for {ADVICE_TARGET:g}")
 
 
+# -- coupled surfaces --------------------------------------------------------------------
+def coupled_stationary_states(setup_or_job, count: int, method: str = "auto", field: str = "count"):
+    """The ``count`` lowest stationary states of a job with coupled surfaces
+    ([[surface]], [[coupling]]): ``(energies_hartree, states)``, states of
+    shape ``(count, S, *grid.shape)`` (bohr^(-ndim/2)), normalised over all
+    surfaces; the full matrix Hamiltonian T (x) 1 + V at t = 0, no absorber
+    (:func:`wavesweep.eigen.coupled_eigenpairs`).  Each state's weight on
+    each surface: :func:`wavesweep.eigen.surface_weights`."""
+    setup = _as_setup(setup_or_job)
+    if not setup.coupled:
+        raise JobError("surface", "the job has one surface (no [[surface]] tables): use stationary_states")
+    return coupled_eigenpairs(setup.surface_hamiltonian, count, t=0.0, method=method, field=field)
+
+
+def coupled_level_errors(model, energies_hartree, states, method: str = "auto") -> LevelErrors:
+    """Resolution error estimates of a coupled job's levels: the same
+    surfaces and couplings (terms evaluated anew) on grids with 0.8 and 0.64
+    times the points per axis, and the three-grid estimate of
+    :func:`_three_grid_error` (module notes, "Error estimates").  Neither
+    the Richardson extrapolation nor the edge estimate is made for coupled
+    surfaces yet: ``edge_errors`` are zero and nothing is extrapolated."""
+    h = model.surface_hamiltonian
+    e0 = np.asarray(energies_hartree, float)
+    count = e0.size
+    v, keep = coupled_walls(h, 0.0)
+    # what the eigensolver leaves in each level (as _rounding_floor): ROUNDING eps ||H|| (||H|| off
+    # the walls) plus r^2 / gap of the state's residual r (an iterative answer's)
+    scale = float(h.kinetic_operator.kinetic.max()) + float(np.max(np.abs(v if keep is None else
+                                                                           v[:, :, keep.any(axis=0)])))
+    unit = np.asarray(states, float) * math.sqrt(model.grid.cell_volume)
+    residual = np.stack([h.apply(u) for u in unit]) - e0.reshape((-1,) + (1,) * (unit.ndim - 1)) * unit
+    if keep is not None:
+        residual *= keep
+    r2 = np.sum(residual**2, axis=tuple(range(1, unit.ndim)))
+    gaps = np.full(count, scale)
+    for n in range(count):
+        others = np.abs(np.delete(e0, n) - e0[n])
+        others = others[others > DEGENERATE_TOL * max(float(np.max(np.abs(e0))), 1e-300)]
+        if others.size:
+            gaps[n] = float(others.min())
+    floor = ROUNDING * np.finfo(float).eps * scale + r2 / gaps
+    rungs = []
+    for factor in (GRID_RATIO, GRID_RATIO**2):
+        coarse = _scaled_grid(model.grid, factor)
+        if coarse is None:
+            rungs.append(None)
+            continue
+        ratios = [c.dx / a.dx for a, c in zip(model.grid.axes, coarse.axes) if c.points != a.points]
+        try:
+            hc = Model(model.job, grid=coarse).surface_hamiltonian
+            _, keep_c = coupled_walls(hc, 0.0)
+            held = min(count, hc.size * coarse.size if keep_c is None else int(keep_c.sum()))
+            energies, _ = coupled_eigenpairs(hc, held, t=0.0, method=method)
+        except (JobError, RunFailed):
+            rungs.append(None)
+            continue
+        rungs.append((float(np.exp(np.mean(np.log(ratios)))),
+                      np.concatenate([energies, np.full(count - held, np.nan)])))
+    resolution, orders = np.full(count, np.nan), np.full(count, np.nan)
+    if None not in rungs:
+        (h1, e1), (h2, e2) = rungs
+        for n in range(count):
+            resolution[n], orders[n] = _three_grid_error(e0[n], e1[n], e2[n], h1, h2, floor[n])
+    edge = np.zeros(count)
+    weights = surface_weights(states, model.grid.cell_volume)
+    # the advice reads one array per level: the state on the surface it weighs most on
+    dominant = np.stack([states[n, int(np.argmax(weights[n]))] for n in range(count)])
+    refine, advice = _advice(model, e0, resolution, resolution, edge, [{} for _ in range(count)], orders,
+                             np.zeros(count, bool), dominant)
+    return LevelErrors(energies=e0.copy(), errors=resolution, grid_energies=e0, resolution_errors=resolution,
+                       edge_errors=edge, extrapolated=np.zeros(count, bool), orders=np.abs(orders),
+                       refine=refine, advice=advice)
+
+
 def check_states_path(path, field: str = "--states", overwrite: bool = True) -> Path:
     """Refuse, before any work, a states file that cannot be written: not a
     ``.nc`` name, a folder or other non-file in its place, an existing file
@@ -632,7 +707,11 @@ def write_states(path, setup, energies_hartree, states, errors: LevelErrors | No
     ``energy_error(state)``.  ``setup`` is a Model or a Setup.  The file is
     written under a temporary name in the same folder and renamed into place
     (a reader never sees a partial file).  A ``[packet] kind = "file"`` with
-    ``state = i`` reads one state back."""
+    ``state = i`` reads one state back.  States of coupled surfaces
+    (``(state, S, *grid)``, :func:`coupled_stationary_states`) have a
+    ``surface`` dimension (coordinate: the names) before the grid's, the
+    ``weight(state, surface)`` on each, and ``potential(surface, ...)``, each
+    surface's V_ss; a single-surface packet does not read them."""
 
     import xarray as xr   # lazy: only writing a states file needs it (0.35 s to import)
 
@@ -640,12 +719,23 @@ def write_states(path, setup, energies_hartree, states, errors: LevelErrors | No
     u, grid = setup.units, setup.grid
     lf, ef = u.factor("length"), u.factor("energy")
     length = u.unit_label("length")
-    dims = ("state",) + grid.names
+    coupled = bool(getattr(setup, "coupled", False))
+    dims = ("state",) + (("surface",) if coupled else ()) + grid.names
     long_names = {"x": "position x", "y": "position y", "z": "position z", "r": "radius r"}
     coords = {a.name: (a.name, a.coordinates / lf, {"units": length, "long_name": long_names[a.name]})
               for a in grid.axes}
     coords["state"] = ("state", np.arange(len(energies_hartree)),
                        {"units": "1", "long_name": "index of the state in energy order (0: ground)"})
+    if coupled:
+        coords["surface"] = ("surface", np.array(setup.surfaces, dtype=object),
+                             {"long_name": "potential-energy surface ([[surface]] name)"})
+    if coupled:   # each surface's own V_ss
+        v = setup.surface_hamiltonian.matrix(0.0)
+        potential = (("surface",) + grid.names, np.stack([v[a, a] for a in range(v.shape[0])]) / ef,
+                     {"units": u.unit_label("energy"), "long_name": "each surface's own potential V_ss at t = 0"})
+    else:
+        potential = (grid.names, setup.hamiltonian.real_potential(0.0) / ef,
+                     {"units": u.unit_label("energy"), "long_name": "real potential at t = 0 the states belong to"})
     psi = np.asarray(states, float) * lf ** (grid.ndim / 2)
     psi_units = f"{length}-{grid.ndim / 2:g}"
     job = setup.job
@@ -660,9 +750,7 @@ def write_states(path, setup, energies_hartree, states, errors: LevelErrors | No
          "psi_real": (dims, psi, {"units": psi_units, "long_name": "real part of the stationary state"}),
          "psi_imag": (dims, np.zeros_like(psi), {"units": psi_units,
                                                  "long_name": "imaginary part of the stationary state"}),
-         "potential": (grid.names, setup.hamiltonian.real_potential(0.0) / ef,
-                       {"units": u.unit_label("energy"),
-                        "long_name": "real potential at t = 0 the states belong to"})},
+         "potential": potential},
         coords=coords,
         attrs={"title": job.title, "job": job_text, "run_id": run_id,
                "wavesweep_version": __version__, "content": "stationary states",
@@ -672,6 +760,9 @@ def write_states(path, setup, energies_hartree, states, errors: LevelErrors | No
                "time_to_atomic": float(u.factor("time")),
                "grid_kind": "radial" if grid.radial else "cartesian",
                "angular_momentum": int(grid.angular_momentum), "Conventions": "CF-1.8"})
+    if coupled:
+        ds["weight"] = (("state", "surface"), surface_weights(states, grid.cell_volume),
+                        {"units": "1", "long_name": "weight of the state on the surface, sum |psi_s|^2 dV"})
     if errors is not None:
         ds["energy_estimate"] = ("state", np.asarray(errors.energies, float) / ef,
                                  {"units": u.unit_label("energy"),
