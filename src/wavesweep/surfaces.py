@@ -25,7 +25,7 @@ import functools
 
 import numpy as np
 
-from .hamiltonian import Hamiltonian, static_potential_of
+from .hamiltonian import Hamiltonian
 from .propagators import scheme_class
 from .propagators.coefficients import STRANG
 
@@ -45,10 +45,12 @@ def coupled_weights(scheme: str) -> tuple:
 def _terms_at(grid, mass, terms, t: float | None) -> np.ndarray:
     """Sum of ``terms`` on the grid (hartree, full shape): the static ones,
     plus the time-dependent ones at ``t`` (None: left out)."""
-    v = np.array(np.broadcast_to(static_potential_of(grid, mass, [term for term in terms
-                                                                   if not term.time_dependent]), grid.shape))
+    mesh = grid.mesh()
+    v = np.zeros(grid.shape)
+    for term in terms:   # the terms' own sum: a radial grid's centrifugal term is the diagonal's, once
+        if not term.time_dependent:
+            v = v + np.broadcast_to(np.asarray(term.static(mesh), float), grid.shape)
     if t is not None:
-        mesh = grid.mesh()
         for term in terms:
             if term.time_dependent:
                 v = v + np.broadcast_to(np.asarray(term.at_time(mesh, t), float), grid.shape)
