@@ -172,7 +172,8 @@ def preflight(jobs, force: bool = False) -> list[str]:
                 remember_run_warnings(setup, found)   # the run records them without judging again
                 fs += found
             except JobError as e:   # this point cannot be set up: say which, judge the others
-                fs.append(Finding("set-up", "error", e.message, field=e.field))
+                # (no --force makes a set-up that cannot be built run)
+                fs.append(Finding("set-up", "error", e.message, {"forceable": False}, field=e.field))
         for f in fs:
             bucket = errors if f.level == "error" else warnings if f.level == "warn" else None
             if bucket is None:
@@ -180,12 +181,15 @@ def preflight(jobs, force: bool = False) -> list[str]:
             entry = bucket.setdefault(_key(f), [f, []])
             if where and where not in entry[1]:
                 entry[1].append(where)
-    if errors and not force:   # every error at once, one line each
+    # every error at once, one line each; --force passes over the criteria, never over a set-up that fails
+    refused = [(f, points) for f, points in errors.values() if not force or not f.values.get("forceable", True)]
+    if refused:
         found = []
-        for f, points in errors.values():
+        for f, points in refused:
             at = (f" (at {len(points)} sweep point{'s' if len(points) > 1 else ''}, e.g. {points[0]})"
                   if points else "")
-            found.append(JobError(f.field or f.topic, f"{f.message}{at}; --force runs it anyway"))
+            hint = "; --force runs it anyway" if f.values.get("forceable", True) else ""
+            found.append(JobError(f.field or f.topic, f"{f.message}{at}{hint}"))
         raise combine_errors(found)
     out = []
     for f, points in list(errors.values()) + list(warnings.values()):
