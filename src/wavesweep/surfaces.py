@@ -213,7 +213,7 @@ class CoupledSplitOperator:
             self._kinetic_factor(tau)
         self._kicks: dict[tuple, tuple[np.ndarray, bool]] = {}
         self._losses: dict[tuple, list[np.ndarray]] = {}
-        self._slabs = None     # (psi4, its layer slabs): the books' views of the buffer
+        self._slabs = None     # (psi, its layers' slab views): the books' views, kept per array
         self._loss_out = np.zeros(s)
         if not hamiltonian.time_dependent:
             w = self._taus
@@ -225,7 +225,7 @@ class CoupledSplitOperator:
             for key in sorted({first, across, last, *inner}, key=lambda k: (abs(k[0]), k[1])):
                 self._build_kick(key)
             if self.absorber is not None:   # the books of the kick across steps (_book_across)
-                u_end = self._kicks[last][0]
+                u_end = self._kicks[last][0]   # a matrix of its own: no kick is half of it
                 lead = (slice(None),) * (4 - self._nd)
                 slabs = [lead + layer.slab for layer in self.absorber.layers]
                 self._boundary = ([np.ascontiguousarray(u_end[slab]) for slab in slabs],
