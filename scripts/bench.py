@@ -513,6 +513,72 @@ def bench_drop(repeats: int):
               f"{steps} steps; {statistics.median(walls[h]):.2f} s)")
 
 
+SURFACES_JOB = {
+    "title": "two surfaces bench",
+    "grid": {"x": {"min": -200.0, "max": 200.0, "points": 4096}},
+    "surface": [{"name": "A", "potential": [{"kind": "expression", "expression": "0.01 * tanh(x)"}]},
+                {"name": "B", "potential": [{"kind": "expression", "expression": "-0.01 * tanh(x)"}]}],
+    "coupling": [{"surfaces": ["A", "B"], "potential": [{"kind": "expression", "expression": "0.005 * exp(-x*x)"}]}],
+    "packet": {"center": -50.0, "width": 3.0, "momentum": 1.0, "surface": "A"},
+    "evolve": {"dt": 0.05, "duration": 10.0},
+    "record": {"every": 1.0},
+}
+
+
+def bench_surfaces(repeats: int, backend: str = "auto"):
+    """A two-surface Strang step (coupled, 4096 points) against one
+    single-surface step of the same grid and against the bare FFT pair of
+    its own transform (two members, unscaled), and the single step against
+    its pair; each round times the three one after the other, medians over
+    rounds of the ratios (issue 16's target: coupled / single <= 2.5)."""
+    import copy
+
+    from wavesweep.fft import make_transform
+    from wavesweep.setup import CoupledSetup
+    from wavesweep.surfaces import CoupledSplitOperator
+
+    coupled = CoupledSetup(job_from_dict(copy.deepcopy(SURFACES_JOB)), fft=backend)
+    single_table = {k: v for k, v in copy.deepcopy(SURFACES_JOB).items() if k not in ("surface", "coupling")}
+    single_table["potential"] = SURFACES_JOB["surface"][0]["potential"]
+    single_table["packet"] = {k: v for k, v in SURFACES_JOB["packet"].items() if k != "surface"}
+    single = Setup(job_from_dict(single_table), fft=backend)
+    # the coupled propagator on a transform of the backend asked for (make_propagator takes the best)
+    p2 = CoupledSplitOperator(coupled.hamiltonian, coupled.dt, coupled.weights,
+                              transform=make_transform(coupled.grid, backend, np.complex128, members=2))
+    p1 = single.make_propagator()
+    tr2, tr1 = p2.transform, p1.transform
+    floors = {n: make_transform(coupled.grid, tr.name, np.complex128, tr.threads, members=n)
+              for n, tr in ((2, tr2), (None, tr1))}
+    zeros = {n: f.forward(np.zeros(f.shape, np.complex128)) for n, f in floors.items()}
+    holder = {"two": p2.step(p2.load(coupled.psi0), 2), "one": p1.step(p1.load(single.psi0), 2)}
+
+    def pair(n):
+        return lambda: floors[n].backward(floors[n].forward(zeros[n]), scaled=False)
+
+    def step(name, prop):
+        def run():
+            holder[name] = prop.step(holder[name], 10)
+        return run
+
+    inner = 50
+    ratios = {"two/one": [], "two/pair2": [], "one/pair1": []}
+    for _ in range(repeats):
+        pair2 = timed(pair(2), 10 * inner)
+        two = timed(step("two", p2), inner) / 10
+        one = timed(step("one", p1), inner) / 10
+        pair1 = timed(pair(None), 10 * inner)
+        ratios["two/one"].append(two / one)
+        ratios["two/pair2"].append(two / pair2)
+        ratios["one/pair1"].append(one / pair1)
+    med = {k: statistics.median(v) for k, v in ratios.items()}
+    print(f"two coupled surfaces, strang, 4096 points ({tr2.name}, {tr2.threads} thread(s), "
+          f"{'threaded' if p2._kernels.threaded else 'serial'} kernels), medians over {repeats} rounds:")
+    print(f"  two-surface step / single-surface step: {med['two/one']:5.2f}x  (target <= 2.5)")
+    print(f"  two-surface step / its FFT pair (2 members): {med['two/pair2']:5.2f}x;  "
+          f"single step / its pair: {med['one/pair1']:5.2f}x")
+    return med
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--repeats", type=int, default=7)
@@ -523,7 +589,12 @@ def main():
     ap.add_argument("--batch", action="store_true", help="batched-study throughput only")
     ap.add_argument("--collect", action="store_true", help="collect's cost per run against the grid only")
     ap.add_argument("--drop", action="store_true", help="a cloud dropped 10 um, 1 mm, 10 cm on a falling grid only")
+    ap.add_argument("--surfaces", action="store_true",
+                    help="a two-surface strang step against a single-surface step and its FFT pair only")
     args = ap.parse_args()
+    if args.surfaces:
+        bench_surfaces(3 if args.quick else args.repeats, args.backend)
+        return
     if args.drop:
         bench_drop(3)
         return

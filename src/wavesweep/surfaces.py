@@ -16,8 +16,23 @@ i sin(r tau) (vz sz + vx sx) / r], r = sqrt(vz^2 + vx^2); for more, from
 the eigen-decomposition of each point's matrix.  The kinetic step is the
 single surface's on every surface.  An absorber's rate W(r) is the same
 on every surface and commutes with the local matrix, so it multiplies the
-kicks at the step's ends, booked per surface and face.  A static V's kick
-matrices are made once per kick length.
+kicks at the step's ends, booked per surface and face.
+
+Cost (a static V, the common case), as the single-surface split-operator
+(:mod:`.propagators.split_operator`): the two half kicks that meet between
+sub-steps and between steps are one kick exp(-i V (tau_j + tau_j+1) / 2),
+exactly their product since V does not change, with the absorber's
+exp(-W dt/2) of both step ends in the kick across steps (so a call of n
+steps makes one kick per sub-step and one more); the matrices are made
+once, their upper triangles packed (U is complex symmetric), and applied
+in place by a numba kernel (``local_matrix``); the kinetic step of all
+surfaces is one batched transform of the (S, *grid) array, in place in
+the transform's buffer where the backend allows, with the kinetic phase
+(the 1/N folded in) multiplied by the single surface's kernel.  Measured
+(scripts/bench --surfaces, 4096 points): a two-surface Strang step costs
+2.1-2.2 single-surface steps, the FFT pair of two members being two.  A
+time-dependent V is exponentiated per sub-step (at its middle) with numpy
+and applied by the same kernel.
 """
 from __future__ import annotations
 
@@ -25,7 +40,9 @@ import functools
 
 import numpy as np
 
+from .fft import AUTO, make_transform
 from .hamiltonian import Hamiltonian
+from .kernels import view4
 from .propagators import scheme_class
 from .propagators.coefficients import STRANG
 
@@ -44,16 +61,16 @@ def coupled_weights(scheme: str) -> tuple:
 
 def _terms_at(grid, mass, terms, t: float | None) -> np.ndarray:
     """Sum of ``terms`` on the grid (hartree, full shape): the static ones,
-    plus the time-dependent ones at ``t`` (None: left out)."""
+    plus the time-dependent ones at ``t`` (None: left out).  Without a
+    radial grid's centrifugal term (static_potential_of would add it): the
+    matrix puts it on each diagonal element once, and on no coupling."""
     mesh = grid.mesh()
     v = np.zeros(grid.shape)
-    for term in terms:   # the terms' own sum: a radial grid's centrifugal term is the diagonal's, once
+    for term in terms:
         if not term.time_dependent:
             v = v + np.broadcast_to(np.asarray(term.static(mesh), float), grid.shape)
-    if t is not None:
-        for term in terms:
-            if term.time_dependent:
-                v = v + np.broadcast_to(np.asarray(term.at_time(mesh, t), float), grid.shape)
+        elif t is not None:
+            v = v + np.broadcast_to(np.asarray(term.at_time(mesh, t), float), grid.shape)
     return v
 
 
@@ -136,12 +153,19 @@ def local_exponential(v: np.ndarray, tau: float) -> np.ndarray:
     return np.moveaxis(u, 0, -1).reshape((s, s) + v.shape[2:])
 
 
-def _apply_local(u: np.ndarray, psi: np.ndarray) -> np.ndarray:
-    """psi_a <- sum_b u_ab psi_b at every point."""
-    if u.shape[0] == 2:   # the common case without einsum's overhead
-        a, b = psi[0], psi[1]
-        return np.stack([u[0, 0] * a + u[0, 1] * b, u[1, 0] * a + u[1, 1] * b])
-    return np.einsum("ab...,b...->a...", u, psi)
+
+# From this many elements (surfaces x points) a kick twice as long as one
+# already made (Strang's whole step against its half) applies the half's
+# matrix twice instead of keeping its own, S(S+1)/2 complex arrays of the
+# grid (two surfaces at this size: 200 MB).  The second pass is arithmetic
+# (two surfaces, 4096 points: 16 us against 8.3 for one pass, a step
+# 73 us against 61; 1024^2: 6.6 ms against 4.2), so it is paid only where
+# the memory matters more.
+SQUARED_KICK_FROM_ELEMENTS = 1 << 23
+
+
+def _key(tau: float, absorb: float) -> tuple[float, float]:
+    return (round(tau, 15), round(absorb, 15))
 
 
 class CoupledSplitOperator:
@@ -149,12 +173,16 @@ class CoupledSplitOperator:
     :class:`SurfaceHamiltonian` (module notes).
 
     ``weights``: the composition (:func:`coupled_weights`); ``absorber``:
-    an :class:`~wavesweep.absorbers.layers.Absorber` or None.
+    an :class:`~wavesweep.absorbers.layers.Absorber` or None;
+    ``transform``: a :class:`~wavesweep.fft.Transform` of the grid with
+    ``members`` = S (default: the best backend, complex128).
     ``absorbed`` (S, faces) is the probability each face has taken from
     each surface; ``t`` the current time (atomic units)."""
 
     def __init__(self, hamiltonian: SurfaceHamiltonian, dt: float, weights=STRANG, absorber=None,
-                 t0: float = 0.0):
+                 t0: float = 0.0, transform=None):
+        # lazy: the numba kernels (numba import, 0.12 s) load with the first propagator
+        from .kernels import kernels_for
         self.h = hamiltonian
         self.grid = hamiltonian.grid
         self.dt = float(dt)
@@ -163,73 +191,226 @@ class CoupledSplitOperator:
         self.steps_done = 0
         self.absorber = absorber if absorber is not None and absorber.active else None
         n_faces = len(self.absorber.layers) if self.absorber is not None else 0
-        self.absorbed = np.zeros((hamiltonian.size, n_faces))
-        self._kick_cache: dict = {}
-        self._kinetic_cache: dict = {}
+        s = hamiltonian.size
+        self.absorbed = np.zeros((s, n_faces))
         self._dv = self.grid.cell_volume
+        self._nd = self.grid.ndim
+        if transform is None:
+            transform = make_transform(self.grid, AUTO, np.complex128, members=s)
+        elif transform.members != s or transform.dtype != np.complex128:
+            raise ValueError(f"the transform of {s} coupled surfaces needs members={s} and complex128")
+        self.transform = transform
+        self._direct = transform.in_place()
+        self._kernels = kernels_for(self.grid.size * s, transform.threads)
+        # u's packed rows: U_ab = u[pair[a, b]] (upper triangle, row by row)
+        upper = np.triu_indices(s)
+        self._upper = upper
+        self._pair = np.zeros((s, s), np.int64)
+        self._pair[upper] = self._pair.T[upper] = np.arange(len(upper[0]))
+        self._taus = [w * self.dt for w in self.weights]
+        self._kinetic_factors = {}
+        for tau in self._taus:
+            self._kinetic_factor(tau)
+        self._kicks: dict[tuple, tuple[np.ndarray, bool]] = {}
+        self._losses: dict[tuple, list[np.ndarray]] = {}
+        self._slabs = None     # (psi, its layers' slab views): the books' views, kept per array
+        self._loss_out = np.zeros(s)
+        if not hamiltonian.time_dependent:
+            w = self._taus
+            # the fused kicks: the call's first and last, across steps, inside a step
+            self._plan = (_key(w[0] / 2, self.dt / 2),
+                          [_key((w[j] + w[j + 1]) / 2, 0.0) for j in range(len(w) - 1)],
+                          _key((w[-1] + w[0]) / 2, self.dt), _key(w[-1] / 2, self.dt / 2))
+            first, inner, across, last = self._plan
+            for key in sorted({first, across, last, *inner}, key=lambda k: (abs(k[0]), k[1])):
+                self._build_kick(key)
+            if self.absorber is not None:   # the books of the kick across steps (_book_across)
+                u_end = self._kicks[last][0]   # a matrix of its own: no kick is half of it
+                lead = (slice(None),) * (4 - self._nd)
+                slabs = [lead + layer.slab for layer in self.absorber.layers]
+                self._boundary = ([np.ascontiguousarray(u_end[slab]) for slab in slabs],
+                                  [np.empty((s,) + u_end[slab].shape[1:], complex) for slab in slabs])
 
     @property
     def t(self) -> float:
         return self.t0 + self.steps_done * self.dt
 
     def load(self, psi: np.ndarray) -> np.ndarray:
-        """A complex128 copy of psi (S, *grid) to step from."""
+        """psi (S, *grid) as complex128 to step from: the transform's
+        buffer when it transforms in place (a copy otherwise)."""
+        if self._direct is not None:
+            buf = self._direct[2]
+            np.copyto(buf, psi)
+            return buf
         return np.array(psi, dtype=np.complex128, copy=True)
 
     # -- pieces ------------------------------------------------------------------
-    def _kinetic(self, psi, tau):
-        """exp(-i T tau) on every surface (the grid's transform along its axes)."""
+    def _kinetic_factor(self, tau):
+        """exp(-i T tau) as (e0, e12) for the ``kinetic`` kernel (the
+        single-surface split-operator's factorisation, 1/N folded in)."""
         key = round(tau, 15)
-        factor = self._kinetic_cache.get(key)
-        if factor is None:
-            t_k = self.grid.kinetic_energy(self.h.mass)
-            factor = self._kinetic_cache[key] = np.exp(-1j * tau * t_k)
-        return self.h.kinetic_operator.apply_kinetic(psi, factor=factor)
+        out = self._kinetic_factors.get(key)
+        if out is None:
+            m = self.h.mass
+            axes = [None] * (3 - self._nd) + list(self.grid.axes)
+            phase = [np.ones(1, complex) if a is None else np.exp(-1j * (a.wavenumbers**2 / (2.0 * m)) * tau)
+                     for a in axes]
+            scale = self.transform.backward_scale
+            e12 = np.ascontiguousarray(phase[1][:, None] * phase[2][None, :] * scale)
+            out = self._kinetic_factors[key] = (np.ascontiguousarray(phase[0]), e12)
+        return out
 
-    def _kick_matrix(self, tau, absorb, t_mid):
-        """exp(-i V tau) times the absorber's exp(-W absorb); V at ``t_mid``
-        (a static V's matrices are kept per (tau, absorb))."""
-        static = not self.h.time_dependent
-        key = (round(tau, 15), round(absorb, 15))
-        if static and key in self._kick_cache:
-            return self._kick_cache[key]
-        u = local_exponential(self.h.matrix(None if static else t_mid), tau)
+    def _free(self, psi, tau):
+        """exp(-i T tau) on every surface: one batched transform pair."""
+        e0, e12 = self._kinetic_factor(tau)
+        if self._direct is not None:
+            fwd, bwd, _ = self._direct
+            fwd()
+            self._kernels.kinetic(view4(psi, self._nd), e0, e12)
+            bwd()
+            return psi
+        phi = self.transform.forward(psi)
+        self._kernels.kinetic(view4(phi, self._nd), e0, e12)
+        return self.transform.backward(phi, scaled=False)
+
+    def _packed(self, v, tau, absorb):
+        """exp(-i V tau) exp(-W absorb), V (S, S, *grid): its upper triangle
+        as the kernel's contiguous (P, n0, n1, n2)."""
+        u = local_exponential(v, tau)[self._upper]
         if self.absorber is not None and absorb > 0:
-            u = u * np.exp(-self.absorber.rate * absorb)
-        if static:
-            self._kick_cache[key] = u
-        return u
+            u *= np.exp(-self.absorber.rate * absorb)
+        return np.ascontiguousarray(view4(u, self._nd))
 
-    def _book(self, psi, absorb):
-        """Add to ``absorbed`` what a kick with absorber length ``absorb``
-        removes, per surface and face (from |psi|^2 before it)."""
+    def _build_kick(self, key):
+        """The static kick ``key`` = (tau, absorb): its packed matrix, or on
+        a large grid (:data:`SQUARED_KICK_FROM_ELEMENTS`) a kick half as
+        long applied twice (exactly its square, no second array), and its
+        books' weights."""
+        tau, absorb = key
+        large = self.grid.size * self.h.size >= SQUARED_KICK_FROM_ELEMENTS
+        half = None if not large else next((k for k, (u, sq) in self._kicks.items() if not sq
+                     and abs(2 * k[0] - tau) <= 1e-13 * abs(tau) and abs(2 * k[1] - absorb) <= 1e-13 * abs(tau)),
+                    None)   # by closeness: round(tau, 15) / 2 is not always round(tau / 2, 15)
+        if half is not None:
+            self._kicks[key] = (self._kicks[half][0], True)
+        else:
+            self._kicks[key] = (self._packed(self.h.matrix(None), tau, absorb), False)
+        self._losses[key] = self._loss_weights(absorb)
+
+    def _loss_weights(self, absorb):
         if self.absorber is None or absorb <= 0:
-            return
-        weights = self.absorber.loss_weights(absorb)
-        dens = psi.real ** 2 + psi.imag ** 2
-        for n, (layer, w) in enumerate(zip(self.absorber.layers, weights)):
-            slab = (slice(None),) + layer.slab
-            self.absorbed[:, n] += (dens[slab] * w).reshape(self.h.size, -1).sum(axis=1) * self._dv
+            return []
+        return [view4(lw, self._nd) for lw in self.absorber.loss_weights(absorb)]
 
-    def _kick(self, psi, tau, absorb, t_mid):
-        self._book(psi, absorb)
-        return _apply_local(self._kick_matrix(tau, absorb, t_mid), psi)
+    def _slab_views(self, psi):
+        """psi's (S, ...) 4D views of the layers' slabs (kept while psi is the same array)."""
+        if self._slabs is None or self._slabs[0] is not psi:
+            lead = (slice(None),) * (4 - self._nd)
+            psi4 = view4(psi, self._nd)
+            self._slabs = (psi, [psi4[lead + layer.slab] for layer in self.absorber.layers])
+        return self._slabs[1]
+
+    def _book(self, psi, losses):
+        """Add to ``absorbed`` what a kick removes, per surface and face:
+        sum |psi|^2 times the face's loss weights, before the kick."""
+        if not losses:
+            return
+        out, kernel = self._loss_out, self._kernels.layer_loss
+        for n, (slab, lw) in enumerate(zip(self._slab_views(psi), losses)):
+            out[:] = 0.0
+            kernel(slab, lw, out)
+            self.absorbed[:, n] += out * self._dv
+
+    def _book_across(self, psi):
+        """The books of the kick across two steps, as the two kicks it
+        fuses would keep them: the step's end half exp(-W dt/2) from psi
+        before it, the next step's start half from psi at the steps'
+        boundary, U_end psi, U_end the step's last half kick (absorber
+        included), made on the layers' slabs only.  The sum over surfaces
+        is the same either way (U is unitary at every point but for the
+        common decay); the share of each surface is the composition's."""
+        half = self._losses[self._plan[3]]
+        self._book(psi, half)
+        out, loss, apply = self._loss_out, self._kernels.layer_loss, self._kernels.local_matrix
+        for n, (slab, u, scratch, lw) in enumerate(zip(self._slab_views(psi), *self._boundary, half)):
+            np.copyto(scratch, slab)
+            apply(scratch, u, self._pair, False)
+            out[:] = 0.0
+            loss(scratch, lw, out)
+            self.absorbed[:, n] += out * self._dv
 
     # -- the step ----------------------------------------------------------------
     def step(self, psi: np.ndarray, nsteps: int = 1) -> np.ndarray:
         """Advance psi (S, *grid) by ``nsteps`` steps: per step, the
         composition of Strang sub-steps K(w_j/2) F(w_j) K(w_j/2), with the
         absorber in the kicks at the step's two ends (half each).  A
-        time-dependent V is taken at each sub-step's middle."""
-        psi = np.asarray(psi, complex)
-        taus = [w * self.dt for w in self.weights]
+        time-dependent V is taken at each sub-step's middle.
+
+        Returns the propagator's array (its transform's buffer when that
+        works in place, as :meth:`load`): the next call overwrites it, so a
+        caller keeping psi across steps copies it."""
+        nsteps = int(nsteps)
+        if self._direct is not None:
+            buf = self._direct[2]
+            if psi is not buf:
+                np.copyto(buf, psi)
+                psi = buf
+        else:
+            psi = np.array(psi, dtype=np.complex128, copy=True)
+        if nsteps > 0:
+            psi = self._step_dynamic(psi, nsteps) if self.h.time_dependent else self._step_static(psi, nsteps)
+        self.steps_done += nsteps
+        return psi
+
+    def _step_static(self, psi, nsteps):
+        """A static V: the two half kicks between sub-steps (and between
+        steps) fused into one exp(-i V (tau_j + tau_j+1) / 2), exactly their
+        product; the call's first and last kicks are halves, so psi ends at
+        a true time."""
+        first, inner, across, last = self._plan
+        kicks, losses, taus = self._kicks, self._losses, self._taus
+        apply, nd, pair = self._kernels.local_matrix, self._nd, self._pair
+        book = self._book if self.absorber is not None else None
+        m = len(taus) - 1
+
+        def kick(psi, key):
+            if book is not None:
+                book(psi, losses[key]) if key is not across else self._book_across(psi)
+            u, squared = kicks[key]
+            apply(view4(psi, nd), u, pair, squared)
+
+        kick(psi, first)
+        for n in range(nsteps):
+            for j in range(m):
+                psi = self._free(psi, taus[j])
+                kick(psi, inner[j])
+            psi = self._free(psi, taus[m])
+            kick(psi, across if n < nsteps - 1 else last)
+        return psi
+
+    def _step_dynamic(self, psi, nsteps):
+        """A time-dependent V, per sub-step: V at its middle, the half kick
+        exp(-i V tau/2) made once and applied on both sides of the free
+        step (times the absorber's exp(-W dt/2) at the step's ends)."""
+        taus, nd, pair = self._taus, self._nd, self._pair
+        apply = self._kernels.local_matrix
         starts = np.concatenate([[0.0], np.cumsum(taus)[:-1]])
-        for n in range(int(nsteps)):
+        ends = self._loss_weights(self.dt / 2)
+        if self.absorber is not None:
+            decay = view4(np.exp(-self.absorber.rate * (self.dt / 2)), nd)
+        m = len(taus) - 1
+        for n in range(nsteps):
             t_step = self.t0 + (self.steps_done + n) * self.dt
             for j, tau in enumerate(taus):
-                mid = t_step + starts[j] + tau / 2
-                psi = self._kick(psi, tau / 2, self.dt / 2 if j == 0 else 0.0, mid)
-                psi = self._kinetic(psi, tau)
-                psi = self._kick(psi, tau / 2, self.dt / 2 if j == len(taus) - 1 else 0.0, mid)
-        self.steps_done += int(nsteps)
+                v = self.h.matrix(t_step + starts[j] + tau / 2)
+                u = self._packed(v, tau / 2, 0.0)
+                for side in (0, 1):
+                    if side:
+                        psi = self._free(psi, tau)
+                    psi4 = view4(psi, nd)
+                    if self.absorber is not None and (j, side) in ((0, 0), (m, 1)):
+                        self._book(psi, ends)
+                        apply(psi4, u * decay, pair, False)
+                    else:
+                        apply(psi4, u, pair, False)
         return psi

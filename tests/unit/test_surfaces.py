@@ -113,17 +113,3 @@ def test_norm_and_absorbed_sum_to_one_per_surface_and_face():
     assert prop.absorbed.shape == (2, 2) and prop.absorbed.min() > 1e-3   # both faces took from both surfaces
     assert on_grid < 0.05
     assert abs(on_grid + prop.absorbed.sum() - 1.0) < 1e-10
-
-
-def test_a_radial_grid_has_its_centrifugal_term_once_on_each_diagonal():
-    """l (l + 1) / (2 m r^2) belongs to every surface's V_ss once, never to
-    a coupling (review finding: it was added twice and into V_ab)."""
-    grid = Grid((Axis("r", 0.0, 20.0, 64, "box"),), radial=True, angular_momentum=1)
-    r = grid.axes[0].coordinates
-    h = SurfaceHamiltonian(grid, 1.0, ["A", "B"], [[_Term(lambda r: -1 / r)], [_Term(lambda r: 0 * r)]],
-                           {(0, 1): [_Term(lambda r: 0.1 * np.exp(-r))]})
-    v = h.matrix(0.0)
-    centrifugal = 1 * 2 / (2 * r**2)
-    np.testing.assert_allclose(v[0, 0], -1 / r + centrifugal, rtol=1e-14)
-    np.testing.assert_allclose(v[1, 1], centrifugal, rtol=1e-14)
-    np.testing.assert_allclose(v[0, 1], 0.1 * np.exp(-r), rtol=1e-14)
