@@ -1426,7 +1426,8 @@ def memory_estimate(job) -> dict:
     absorbing = (table.get("absorber") or {}).get("kind", "none") != "none"
     radial = int(table["grid"]["r"]["points"]) if "r" in table["grid"] else None
     estimate = scheme.peak_bytes(size, itemsize, absorbing, radial)
-    return {"psi_bytes": psi_bytes, "estimate_bytes": estimate, "points": size}
+    surfaces = len(table.get("surface") or ()) or 1   # coupled surfaces: psi and its buffers per surface
+    return {"psi_bytes": psi_bytes * surfaces, "estimate_bytes": estimate * surfaces, "points": size}
 
 
 def levels_memory_estimate(job, count: int) -> float:
@@ -1538,9 +1539,11 @@ def disk_finding(setup) -> Finding:
         frame *= 3                       # density, Re psi and Im psi
     n_snap = setup.total_steps // setup.snapshot_steps + 1
     n_samp = setup.total_steps // setup.sample_steps + 1
-    disk = frame * n_snap + n_samp * 8 * (8 + len(setup.detectors) + len(setup.absorber.layers))
+    surfaces = len(setup.surfaces) or 1   # coupled surfaces: a frame, samples and psi per surface
+    frame *= surfaces
+    disk = frame * n_snap + n_samp * 8 * (8 + surfaces * (len(setup.detectors) + len(setup.absorber.layers)))
     if table["record"].get("final_state", True):
-        disk += setup.grid.size * 16     # the final psi, complex128
+        disk += setup.grid.size * 16 * surfaces     # the final psi, complex128
     return Finding("disk", "ok",
                    f"{n_snap} snapshots of {frame / 2**10:.0f} KiB, {n_samp} samples: at most "
                    f"{disk / 2**20:.1f} MiB before compression",
@@ -1632,6 +1635,54 @@ def assess(setup) -> list[Finding]:
     out += detector_findings(setup)
     out += absorber_findings(setup, dyn)
     out += mean_field_findings(setup, dyn)
+    out.append(disk_finding(setup))
+    return out
+
+
+def coupled_findings(setup) -> list[Finding]:
+    """The criteria of a job on coupled surfaces (a
+    :class:`~wavesweep.setup.CoupledSetup`) that hold without the
+    single-surface machinery: the time step's phase per step, sizes and
+    disk; and one line saying that the classical-trajectory criteria
+    (momentum reach, margins, resolution, absorber windows) are not judged.
+
+    Phase per step (<= 1 rad is common practice; above pi it wraps): of the
+    potential matrix, the range of the eigenvalues of V(r, t) over the grid
+    (numpy.linalg.eigvalsh per point; a time-dependent V at 33 times over
+    the run); of the kinetic energy, at most the packet's momentum reach
+    (6 sigma of psi0's momentum distribution on every surface) squared over
+    2m plus that range (energy conservation bounds what falling adds)."""
+    u = setup.units
+    tf, T = u.factor("time"), u.unit_label("time")
+    dt, h = setup.dt, setup.hamiltonian
+    times = np.linspace(0.0, setup.duration, 33) if h.time_dependent else [None]
+    lowest, highest = math.inf, -math.inf
+    for t in times:
+        v = np.moveaxis(h.matrix(t).reshape(h.size, h.size, -1), -1, 0)   # (points, S, S)
+        eig = np.linalg.eigvalsh(v)
+        lowest, highest = min(lowest, float(eig.min())), max(highest, float(eig.max()))
+    v_span = highest - lowest
+    reach = [max(measured_momentum_reach(psi, setup.grid, TAIL_6)) for psi in setup.psi0
+             if np.vdot(psi, psi).real * setup.grid.cell_volume > 1e-12]
+    e_kin = max(reach, default=0.0) ** 2 / (2 * setup.mass) + v_span
+    kin_phase, pot_phase = e_kin * dt, v_span * dt
+    phase = max(kin_phase, pot_phase)
+    level = "ok" if phase <= 1.0 else ("warn" if phase <= math.pi else "error")
+    msg = (f"coupled surfaces, phase per step: kinetic energy at most (packet's reach, plus the potential's "
+           f"range) {kin_phase:.3g} rad, eigenvalues of the potential matrix over the grid "
+           f"{pot_phase:.3g} rad (<= 1 is common practice; above pi it wraps); the grid's highest kinetic "
+           f"energy {setup.grid.kinetic_max(setup.mass) * dt:.3g} rad (dt = {dt / tf:g} {T})")
+    if level != "ok":
+        msg += f"; use dt <= {1.0 / max(e_kin, v_span, 1e-300) / tf:.3g} {T}"
+    out = [Finding("time step", level, msg,
+                   {"run_phase": kin_phase, "potential_phase": pot_phase,
+                    "grid_phase": setup.grid.kinetic_max(setup.mass) * dt}, field="evolve.dt")]
+    out += size_findings(setup.grid)
+    out.append(Finding("coupled surfaces", "warn",
+                       "the classical-trajectory criteria (momentum reach over the run, margins, resolution of V, "
+                       "absorber windows, detectors) are not judged for coupled surfaces yet: converge the grid, "
+                       "dt and absorber by hand (halve dx and dt, thicken the layers)",
+                       {"surfaces": list(setup.surfaces)}, field="surface"))
     out.append(disk_finding(setup))
     return out
 

@@ -11,14 +11,14 @@ report judges every sweep point and names the points that fail.
 """
 from __future__ import annotations
 
-from .adequacy import (Finding, Report, assess, memory_finding, remember_run_warnings, run_time_finding,
-                       splitting_warning)
+from .adequacy import (Finding, Report, assess, coupled_findings, memory_finding, remember_run_warnings,
+                       run_time_finding, splitting_warning)
 from .errors import JobError, combine_errors
 from .job import Job
 from .job.reference import default_findings
 from .propagators import SCHEMES
 from .propagators.split_operator import RADIAL_DENSE_MAX
-from .setup import Setup
+from .setup import CoupledSetup, Setup
 
 __all__ = ["Finding", "Report", "check_job", "check_study", "preflight", "splitting_warning"]
 
@@ -50,6 +50,16 @@ def _scheme_findings(setup) -> list[Finding]:
     return out
 
 
+def _judged(job: Job):
+    """The job's set-up and its criteria without a trial: :func:`assess`,
+    or on coupled surfaces the few that hold there (:func:`coupled_findings`)."""
+    if job.table.get("surface"):
+        setup = CoupledSetup(job)
+        return setup, coupled_findings(setup)
+    setup = Setup(job)
+    return setup, assess(setup)
+
+
 def check_job(job: Job, trial_seconds: float = 1.0) -> Report:
     """Findings for a job: units, memory from shapes, then (when it fits)
     the set-up's criteria and a timed trial of ``trial_seconds`` (0: none)."""
@@ -59,8 +69,10 @@ def check_job(job: Job, trial_seconds: float = 1.0) -> Report:
     findings.append(mem)
     if mem.level == "error":      # building the set-up would allocate what does not fit
         return Report(job.title, findings)
-    setup = Setup(job)
-    findings += assess(setup)
+    setup, found = _judged(job)
+    findings += found
+    if setup.coupled:   # no trial yet: the timed trial drives a single-surface propagator
+        return Report(job.title, findings)
     findings += _scheme_findings(setup)
     if trial_seconds > 0:
         findings.append(run_time_finding(setup, trial_seconds))
@@ -112,11 +124,11 @@ def check_study(study, trial_seconds: float = 1.0, progress=None) -> Report:
         fs = [memory_finding(spec.job)]
         if fs[0].level != "error":
             try:
-                setup = Setup(spec.job)
+                setup, found = _judged(spec.job)
             except JobError as e:
                 fs.append(Finding("set-up", "error", e.message, field=e.field))
             else:
-                fs += assess(setup) + _scheme_findings(setup)
+                fs += found + ([] if setup.coupled else _scheme_findings(setup))
                 cost = setup.total_steps * setup.grid.size
                 if longest is None or cost > longest[0]:
                     longest = (cost, n)
@@ -145,7 +157,7 @@ def check_study(study, trial_seconds: float = 1.0, progress=None) -> Report:
         else:
             msg = f"all {len(study.runs)} points; e.g. {f.message}"
         findings.append(Finding(f.topic, f.level, msg, values, f.field))
-    if trial_seconds > 0 and longest is not None:
+    if trial_seconds > 0 and longest is not None and not study.runs[longest[1]].job.table.get("surface"):
         trial = run_time_finding(Setup(study.runs[longest[1]].job), trial_seconds)
         trial.message = f"longest run ({study.runs[longest[1]].params}): {trial.message}"
         findings.append(trial)
@@ -167,8 +179,7 @@ def preflight(jobs, force: bool = False) -> list[str]:
         fs = [memory_finding(job)]
         if fs[0].level != "error":
             try:
-                setup = Setup(job)
-                found = assess(setup)
+                setup, found = _judged(job)
                 remember_run_warnings(setup, found)   # the run records them without judging again
                 fs += found
             except JobError as e:   # this point cannot be set up: say which, judge the others

@@ -31,7 +31,7 @@ from .io.record import record_checksum
 from .io.recorder import ResultWriter
 from .job import Job, job_from_dict, load_job
 from .kernels import density_of
-from .setup import AXIS_LONG, Setup, analysis_record, final_detector_values
+from .setup import AXIS_LONG, CoupledSetup, Setup, analysis_record, final_detector_values
 
 __all__ = ["Simulation", "RunBook", "run_job", "progress_bar"]
 
@@ -46,7 +46,9 @@ class Simulation:
     """
 
     def __init__(self, job: Job, fft: str | None = None, threads: int | None = None):
-        self.setup = Setup(job, fft, threads)
+        # coupled surfaces ([[surface]]): psi (surface, *grid), a result with a surface dimension
+        self.coupled = bool(job.table.get("surface"))
+        self.setup = (CoupledSetup if self.coupled else Setup)(job, fft, threads)
         self.job = self.setup.job     # the complete job (a tuned CAP written in)
 
     def output_path(self, outdir) -> Path:
@@ -103,14 +105,13 @@ class Simulation:
             if bar is not None and done:
                 bar.update(done)
             if book.fresh:
-                self.observe(book, observer.measure(psi, s.hamiltonian.potential(prop.t), prop.t), prop.t,
-                             prop.absorbed)
+                self.observe(book, s.measure(observer, psi, prop.t), prop.t, prop.absorbed)
                 self.write_snapshot(book.writer, 0.0, psi)
             while done < s.total_steps:
                 n = min(s.sample_steps, s.total_steps - done)
                 psi = prop.step(psi, n)
                 done += n
-                values = observer.measure(psi, s.hamiltonian.potential(prop.t), prop.t)
+                values = s.measure(observer, psi, prop.t)
                 self.record_sample(book, values, prop.t, prop.absorbed, psi, done)
                 if bar is not None:
                     bar.update(n)
@@ -152,15 +153,16 @@ class Simulation:
                 self._discard_own_checkpoint(store)
                 return None
             resume = self._load_checkpoint(store)
-        n_faces = len(s.absorber.layers) if s.absorber.active else 0
         if resume is None:
-            # what analysis needs of the set-up, written once with the file (a resumed file has it)
-            record = analysis_record(s)
-            attrs = {**self._attrs(), **record["attrs"]}
-            attrs["analysis_record_crc32"] = record_checksum(attrs)   # attributes have no HDF5 checksum
+            if self.coupled:   # the analysis record is one surface's: a coupled file has the run's attributes
+                record, attrs = None, {**self._attrs(), "surfaces": list(s.surfaces)}
+            else:   # what analysis needs of the set-up, written once with the file (a resumed file has it)
+                record = analysis_record(s)
+                attrs = {**self._attrs(), **record["attrs"]}
+                attrs["analysis_record_crc32"] = record_checksum(attrs)   # attributes have no HDF5 checksum
             writer = ResultWriter(path, {**self._layout(), "record": record}, attrs)
             # psi0 itself: the propagator's load() copies it into its own array
-            return RunBook(path, writer, store, checkpoint, s.psi0, 0, np.zeros(n_faces), 0.0, True)
+            return RunBook(path, writer, store, checkpoint, s.psi0, 0, np.zeros(self._absorbed_shape()), 0.0, True)
         writer = ResultWriter.resume(path, self._layout(), resume.result_copy, resume.n_time,
                                      resume.n_snap, attrs=self._attrs())
         return RunBook(path, writer, store, checkpoint, np.array(resume.psi, dtype=s.dtype, copy=True),
@@ -250,12 +252,13 @@ class Simulation:
             state = store.load(self.job.run_id)
             if state is None:
                 return None
-            n_faces = len(s.absorber.layers) if s.absorber.active else 0
-            if state.psi.shape != tuple(s.grid.shape) or state.psi.dtype != np.dtype(s.dtype):
+            shape = tuple(np.shape(s.psi0))   # the grid's; (surface, *grid) on coupled surfaces
+            if state.psi.shape != shape or state.psi.dtype != np.dtype(s.dtype):
                 raise CheckpointCorrupt(f"psi is {state.psi.dtype} {state.psi.shape}, the job needs "
-                                        f"{np.dtype(s.dtype)} {tuple(s.grid.shape)}")
-            if state.absorbed.shape != (n_faces,):
-                raise CheckpointCorrupt(f"{state.absorbed.size} absorbed values for {n_faces} faces")
+                                        f"{np.dtype(s.dtype)} {shape}")
+            if state.absorbed.shape != self._absorbed_shape():
+                raise CheckpointCorrupt(f"{state.absorbed.size} absorbed values for the job's "
+                                        f"{self._absorbed_shape()} (surfaces, faces)")
             if not (0 < state.steps < s.total_steps and state.steps % s.sample_steps == 0):
                 raise CheckpointCorrupt(f"step {state.steps} is not a sample boundary inside the run")
             if (state.n_time, state.n_snap) != self._expected_position(state.steps):
@@ -282,6 +285,12 @@ class Simulation:
         store.discard()
 
     # -- helpers ---------------------------------------------------------------
+    def _absorbed_shape(self) -> tuple:
+        """The books' shape: (faces,), or (surfaces, faces) on coupled surfaces."""
+        s = self.setup
+        n_faces = len(s.absorber.layers) if s.absorber.active else 0
+        return (len(s.surfaces), n_faces) if self.coupled else (n_faces,)
+
     def _converters(self):
         u = self.setup.units
         return {**{s.kind: 1 / u.factor(s.kind) for s in self.setup.scalars if s.kind},   # the recorded scalars' kinds
@@ -290,7 +299,7 @@ class Simulation:
                 "amplitude": math.sqrt(u.factor("length"))}   # |psi|^2 dx is invariant
 
     def _health(self, values, absorbed, t_au, step):
-        total = values["norm"] + float(np.sum(absorbed))
+        total = float(np.sum(values["norm"])) + float(np.sum(absorbed))   # summed over surfaces
         t = t_au / self.setup.units.factor("time")
         if not math.isfinite(total):
             raise RunFailed(f"psi became NaN/inf at t = {t:g} (step {step}); reduce evolve.dt "
@@ -340,8 +349,12 @@ class Simulation:
             "detectors": [(d.name, s.grid.names[d.axis], d.position / lf) for d in s.detectors],
             "faces": [layer.name for layer in s.absorber.layers],
             "potential": s.recorded_potential() / s.units.factor("energy"),
+            # coupled surfaces: their names (the surface dimension) and each coupled pair's static V_ab
+            "surfaces": list(s.surfaces) if self.coupled else None,
+            "coupling_potential": ({f"{s.surfaces[a]},{s.surfaces[b]}": v / s.units.factor("energy")
+                                    for (a, b), v in s.recorded_couplings().items()} if self.coupled else None),
             # <psi(0)|psi(t)> of the lab: a falling grid holds phi, on positions that move
-            "autocorrelation": s.frame is None,
+            "autocorrelation": s.frame is None and not self.coupled,   # coupled surfaces: not recorded yet
             "scalars": s.scalars,
             "detector_amplitude": s.grid.ndim == 1,
             "snapshot_psi": bool(s.job.table["record"].get("snapshot_psi")),

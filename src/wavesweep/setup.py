@@ -66,7 +66,7 @@ def resolve_job(job: Job) -> Job:
     error = physical_memory_error(memory_estimate(job)["estimate_bytes"])
     if error is not None:
         raise error
-    return Setup(job).job
+    return (CoupledSetup if job.table.get("surface") else Setup)(job).job   # coupled: a CAP's power written in
 
 
 class Model:
@@ -373,6 +373,12 @@ class Setup(Model):
                         self.psi0 if self.frame is None else None,   # no lab autocorrelation in a falling frame
                         contact=self.contact if self.interaction is not None else None, frame=self.frame)
 
+    def measure(self, observer, psi, t: float) -> dict:
+        """The sample's values (atomic units) from ``observer``
+        (:meth:`make_observer`) at time ``t``: the loop's one call for a
+        single surface and coupled ones (:meth:`CoupledSetup.measure`)."""
+        return observer.measure(psi, self.hamiltonian.potential(t), t)
+
     def lab_state(self, psi, t: float):
         """psi as the lab sees it at time ``t`` (atomic units) on the lab
         positions the grid occupies: psi itself, or in a falling frame
@@ -498,7 +504,8 @@ def records_final_values(setup) -> bool:
     (:func:`final_detector_values`): 1D runs that keep their final state
     (the few arrays it takes are small beside a run's; analysis of other
     runs reads the final state, or the last snapshot, instead)."""
-    return bool(setup.detectors) and setup.grid.ndim == 1 and bool(setup.job.table["record"]["final_state"])
+    return (not setup.coupled and bool(setup.detectors) and setup.grid.ndim == 1
+            and bool(setup.job.table["record"]["final_state"]))
 
 
 def final_detector_values(setup, psi, length_scale: float) -> dict | None:
@@ -626,6 +633,10 @@ class CoupledSetup(Setup):
                                                                    "supported; use frame = 'lab'"),
             (t["absorber"]["kind"] == "cap" and t["absorber"].get("strength") is None, "absorber.strength",
              "a CAP on coupled surfaces is not tuned yet: give its strength (energy), or use kind = 'mask'"),
+            (rec.get("column") is not None, "record.column", "a column density of coupled surfaces is not "
+                                                             "recorded yet; remove record.column"),
+            (bool(rec.get("snapshot_psi")), "record.snapshot_psi", "psi at snapshots of coupled surfaces is not "
+                                                                    "recorded yet; remove record.snapshot_psi"),
         )
         for refused, field, message in refusals:
             if refused:
@@ -643,12 +654,25 @@ class CoupledSetup(Setup):
         self.psi0_lab = self.psi0
         table = t["absorber"] if t["absorber"]["kind"] != "cap" or t["absorber"].get("power") is not None \
             else {**t["absorber"], "power": 2.0}
+        if table is not t["absorber"]:   # the complete job (its TOML and run id): a new Job, the given one unchanged
+            self.job = job.with_absorber(table)
         self.absorber = self._absorber(table)
         self.hamiltonian = SurfaceHamiltonian(self.grid, self.mass, self.surfaces, self.surface_terms,
                                               self.coupling_terms, self.absorber.rate)
         self.detectors = [self._detector(i, d) for i, d in enumerate(t["detector"])]
+        self.scalars = recorded_scalars()   # norm, x_mean, x_std, p_mean per surface; energy in total
         self.fft_backend = fft or ev.get("fft", AUTO)
         self.threads = threads or ev.get("threads")
+
+    def recorded_potential(self) -> np.ndarray:
+        """Each surface's static diagonal V_ss (hartree), (surface, *grid)."""
+        v = self.hamiltonian.matrix(None)
+        return np.stack([v[a, a] for a in range(len(self.surfaces))])
+
+    def recorded_couplings(self) -> dict:
+        """Each coupled pair's static V_ab (hartree, the grid's shape) by (a, b), a < b."""
+        v = self.hamiltonian.matrix(None)
+        return {(a, b): v[a, b] for a, b in sorted(self.hamiltonian.couplings)}
 
     def _packet_atomic(self, table, name="packet") -> dict:
         """As :meth:`Setup._packet_atomic`, keeping each table's ``surface``."""

@@ -68,7 +68,11 @@ def _size(path) -> int:
 
 def _without_potential(layout: dict) -> dict:
     """The layout without its large arrays (written once, not kept for the whole run)."""
-    return {k: v for k, v in layout.items() if k not in ("potential", "record")}
+    return {k: v for k, v in layout.items() if k not in ("potential", "coupling_potential", "record")}
+
+
+# the scalars a coupled run records per surface (the rest, the energy, is the total)
+PER_SURFACE = ("norm", "x_mean", "x_std", "p_mean")
 
 
 class ResultWriter:
@@ -86,6 +90,13 @@ class ResultWriter:
         full grid); ``autocorrelation``: bool; ``final_state``: bool;
         ``detector_amplitude``: bool, psi at each detector per sample (1D);
         ``snapshot_psi``: bool, psi (float32 parts) with each snapshot;
+        ``surfaces``: None, or the names of coupled surfaces: a ``surface``
+        dimension (coordinate: the names) leads the grid axes of ``density``,
+        ``potential`` (each surface's V_ss) and psi and follows ``time`` in
+        ``norm``, ``x_mean``, ``x_std``, ``p_mean``, ``flux``,
+        ``detector_psi_*`` and ``absorbed`` (``energy`` is the total);
+        ``coupling_potential``: ``{"A,B": V_AB}`` (job units, full grid),
+        each coupled pair's static off-diagonal element;
         ``expected``: optional ``{"samples": n, "snapshots": m}``, the run's
         totals, so that a full disk can be told how much the file still needs.
         ``record``: what analysis needs of the set-up
@@ -160,17 +171,20 @@ class ResultWriter:
                                        f"{e.strerror or e}; choose another folder with -o") from None
 
     # -- room on the disk ----------------------------------------------------
+    def _n_surfaces(self) -> int:
+        return len(self.layout.get("surfaces") or ()) or 1
+
     def _frame_bytes(self) -> int:
         lay = self.layout
         s = lay["stride"]
-        frame = 4 * int(np.prod([len(np.asarray(a[1])[::s]) for a in lay["axes"]]))
+        frame = 4 * int(np.prod([len(np.asarray(a[1])[::s]) for a in lay["axes"]])) * self._n_surfaces()
         return frame * (3 if lay.get("snapshot_psi") else 1)
 
     def _row_bytes(self) -> int:
         lay = self.layout
         per_detector = 3 if lay.get("detector_amplitude") else 1
-        return 8 * (1 + len(lay.get("scalars", SCALARS)) + 2 + per_detector * len(lay["detectors"]) + len(lay["faces"])
-                    + len(lay.get("frame_axes") or ()))
+        return 8 * (1 + self._n_surfaces() * (len(lay.get("scalars", SCALARS)) + per_detector * len(lay["detectors"])
+                                              + len(lay["faces"])) + 2 + len(lay.get("frame_axes") or ()))
 
     def _remaining_bytes(self) -> int | None:
         """Bytes of data the file still needs from its shapes (before
@@ -183,7 +197,7 @@ class ResultWriter:
         rest = max(0, int(expected["snapshots"]) - n_snap) * self._frame_bytes()
         rest += max(0, int(expected["samples"]) - n_time) * self._row_bytes()
         if self.layout.get("final_state", True):
-            rest += 16 * int(np.prod([len(np.asarray(a[1])) for a in self.layout["axes"]]))
+            rest += 16 * int(np.prod([len(np.asarray(a[1])) for a in self.layout["axes"]])) * self._n_surfaces()
         return rest
 
     @contextmanager
@@ -221,6 +235,14 @@ class ResultWriter:
             v.units, v.long_name, v.axis = u["length"], long, name.upper() if name in "xyz" else "X"
             full_shape.append(len(coords))
         names = [a[0] for a in lay["axes"]]
+        surfaces = lay.get("surfaces")
+        lead = ("surface",) if surfaces else ()   # before the grid axes
+        if surfaces:
+            ds.createDimension("surface", len(surfaces))
+            v = self._var("surface", str, ("surface",))
+            v.long_name, v.units = "potential-energy surface (electronic state)", "1"
+            for i, name in enumerate(surfaces):
+                v[i] = name
         ds.createDimension("time", None)
         ds.createDimension("snapshot_time", None)
         self._coord("time", "time", u["time"], "time of the scalar samples")
@@ -243,11 +265,11 @@ class ResultWriter:
         b.long_name, b.units = "absorbing face", "1"
         for i, face in enumerate(lay["faces"]):
             b[i] = face
-        chunks = [1] + [len(np.asarray(a[1])[::s]) for a in lay["axes"]]
-        dens = self._var("density", "f4", ("snapshot_time", *names), zlib=True,
+        chunks = [1] + ([len(surfaces)] if surfaces else []) + [len(np.asarray(a[1])[::s]) for a in lay["axes"]]
+        dens = self._var("density", "f4", ("snapshot_time", *lead, *names), zlib=True,
                                  complevel=4, shuffle=True, chunksizes=chunks)
         dens.units = u["density"]
-        dens.long_name = "probability density |psi|^2"
+        dens.long_name = "probability density |psi|^2" + (" on each surface" if surfaces else "")
         if lay.get("column") is not None:
             k = lay["column"][0]
             rest = tuple(n for j, n in enumerate(names) if j != k)
@@ -261,25 +283,41 @@ class ResultWriter:
                                       complevel=4, shuffle=True, chunksizes=chunks)
                 v.units = f"{u['length']}-{len(names) / 2:g}"
                 v.long_name = f"{part} part of psi at the snapshot"
-        pot = self._var("potential", "f8", tuple(names), zlib=True, complevel=4)
-        pot.units, pot.long_name = u["energy"], "static part of the potential V"
-        pot[:] = np.asarray(lay["potential"])[tuple(slice(None, None, s) for _ in names)]
+        pot = self._var("potential", "f8", (*lead, *names), zlib=True, complevel=4)
+        pot.units = u["energy"]
+        pot.long_name = "static part of the potential V" + (" on each surface (diagonal V_ss)" if surfaces else "")
+        cut = tuple(slice(None, None, s) for _ in names)
+        pot[:] = np.asarray(lay["potential"])[(slice(None),) * len(lead) + cut]
+        if lay.get("coupling_potential"):
+            pairs = list(lay["coupling_potential"])
+            ds.createDimension("pair", len(pairs))
+            v = self._var("pair", str, ("pair",))
+            v.long_name, v.units = "coupled surfaces, their names separated by a comma", "1"
+            for i, pair in enumerate(pairs):
+                v[i] = pair
+            v = self._var("coupling_potential", "f8", ("pair", *names), zlib=True, complevel=4)
+            v.units = u["energy"]
+            v.long_name = "static off-diagonal element V_ab of each coupled pair (pair, grid axes)"
+            v[:] = np.stack([np.asarray(lay["coupling_potential"][p])[cut] for p in pairs])
         for scalar in lay.get("scalars", SCALARS):   # declared with the observables
-            v = self._var(scalar.name, "f8", ("time",))
+            each = bool(surfaces) and scalar.name in PER_SURFACE
+            v = self._var(scalar.name, "f8", ("time", "surface") if each else ("time",))
             v.units = u[scalar.kind] if scalar.kind else "1"
-            v.long_name = scalar.long_name.format(axis=names[0])
-        f = self._var("flux", "f8", ("time", "detector"))
+            v.long_name = scalar.long_name.format(axis=names[0]) + (", per surface" if each else "")
+            if surfaces and scalar.name == "energy":
+                v.long_name = "<H> of all surfaces (couplings included), per unit total norm"
+        f = self._var("flux", "f8", ("time", *lead, "detector"))
         f.units, f.long_name = u["flux"], "probability current through the detector"
         f.coordinates = "detector_x detector_axis"  # CF: auxiliary coordinates of `detector`
         if lay.get("detector_amplitude") and ndet:
             for part in ("real", "imag"):
-                v = self._var(f"detector_psi_{part}", "f8", ("time", "detector"))
+                v = self._var(f"detector_psi_{part}", "f8", ("time", *lead, "detector"))
                 v.units = f"{u['length']}-0.5"
                 v.long_name = f"{part} part of psi at the detector"
                 v.coordinates = "detector_x detector_axis"
         if lay.get("frame_axes"):   # a falling grid: lab position = grid coordinate + frame_offset
             self._define_frame_offset(lay["frame_axes"], u)
-        a = self._var("absorbed", "f8", ("time", "boundary"))
+        a = self._var("absorbed", "f8", ("time", *lead, "boundary"))
         a.units, a.long_name = "1", "probability removed at the face, cumulative"
         if lay.get("autocorrelation", True):
             for part in ("real", "imag"):
@@ -297,7 +335,7 @@ class ResultWriter:
             self._define_record(lay["record"], state_dims, u)
         if lay.get("final_state", True):
             for part in ("real", "imag"):
-                v = self._var(f"psi_{part}", "f8", tuple(state_dims), zlib=True, complevel=4)
+                v = self._var(f"psi_{part}", "f8", (*lead, *state_dims), zlib=True, complevel=4)
                 v.units = f"{u['length']}-{len(names) / 2:g}"
                 v.long_name = f"{part} part of the final wave function"
 
@@ -393,7 +431,8 @@ class ResultWriter:
         (job units) when the layout stores it, and a falling grid's offset
         (job length unit, per axis)."""
         s = self.layout["stride"]
-        cut = tuple(slice(None, None, s) for _ in range(density.ndim))
+        lead = 1 if self.layout.get("surfaces") else 0   # the surface axis is never decimated
+        cut = (slice(None),) * lead + tuple(slice(None, None, s) for _ in range(density.ndim - lead))
         i = self._n_snap
         with self._room(self._frame_bytes()):
             self.ds["snapshot_time"][i] = time
@@ -425,13 +464,13 @@ class ResultWriter:
             if key in ds.variables and key in self._buf[0]:
                 ds[key][i0:i0 + n] = np.array([b[key] for b in self._buf])
         if len(self.layout["detectors"]):
-            ds["flux"][i0:i0 + n, :] = np.array([b["flux"] for b in self._buf])
+            ds["flux"][i0:i0 + n, ...] = np.array([b["flux"] for b in self._buf])
             if "detector_psi_real" in ds.variables:
                 amp = np.array([b["detector_psi"] for b in self._buf])
-                ds["detector_psi_real"][i0:i0 + n, :] = amp.real
-                ds["detector_psi_imag"][i0:i0 + n, :] = amp.imag
+                ds["detector_psi_real"][i0:i0 + n, ...] = amp.real
+                ds["detector_psi_imag"][i0:i0 + n, ...] = amp.imag
         if len(self.layout["faces"]):
-            ds["absorbed"][i0:i0 + n, :] = np.array([b["absorbed"] for b in self._buf])
+            ds["absorbed"][i0:i0 + n, ...] = np.array([b["absorbed"] for b in self._buf])
         if "frame_offset" in ds.variables and "frame_offset" in self._buf[0]:
             offset = np.array([b["frame_offset"] for b in self._buf])
             ds["frame_offset"][i0:i0 + n] = offset[:, 0] if offset.shape[1] == 1 else offset

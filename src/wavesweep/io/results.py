@@ -19,7 +19,7 @@ import xarray as xr
 from ..errors import JobError
 from .paths import input_file
 
-__all__ = ["open_result", "source_name", "result_units", "verify_readable", "grid_dimensions", "WITHOUT_INDEXES"]
+__all__ = ["open_result", "coupled_refusal", "source_name", "result_units", "verify_readable", "grid_dimensions", "WITHOUT_INDEXES"]
 
 # xarray reads every dimension coordinate when it opens a file, to index it: the grid's axes and
 # the padded wave numbers among them, an O(grid) read.  A reader that looks nothing up by label
@@ -30,7 +30,8 @@ WITHOUT_INDEXES = ({"create_default_indexes": False}
 REQUIRED_ATTRS = ("run_id", "job", "wavesweep_version")
 
 
-def open_result(path, require: tuple[str, ...] = (), field: str = "RUN.nc", verify: str = "file") -> xr.Dataset:
+def open_result(path, require: tuple[str, ...] = (), field: str = "RUN.nc", verify: str = "file",
+                surfaces: bool = False) -> xr.Dataset:
     """The result at ``path`` as a lazily loaded dataset (close it, or use it
     in a ``with`` block).  ``require``: variables that must be present;
     ``field`` names the argument in error messages.  ``verify``: ``"file"``
@@ -38,7 +39,9 @@ def open_result(path, require: tuple[str, ...] = (), field: str = "RUN.nc", veri
     block anywhere is refused now); ``"used"`` only those without a grid or
     snapshot dimension (:func:`grid_dimensions`): a caller that reads no
     grid-sized array (``collect``) then pays nothing that grows with the
-    grid, and a damaged grid-sized array fails when (if ever) it is read."""
+    grid, and a damaged grid-sized array fails when (if ever) it is read.
+    ``surfaces``: whether the caller reads a result of coupled surfaces (a
+    ``surface`` dimension); without it such a result is refused, one line."""
     if isinstance(path, xr.Dataset):
         ds = path
     else:
@@ -61,6 +64,9 @@ def open_result(path, require: tuple[str, ...] = (), field: str = "RUN.nc", veri
         ds.close()
         raise JobError(field, f"{_name(path)} is not a result of wavesweep (no {', '.join(missing)} "
                               "attribute); give a file written by `wavesweep run` or `work`")
+    if "surface" in ds.dims and not surfaces:
+        ds.close()
+        raise JobError(field, coupled_refusal(path))
     absent = [v for v in require if v not in ds.variables]
     if absent:
         ds.close()
@@ -161,6 +167,12 @@ def source_name(ds: xr.Dataset) -> str:
     for one made in memory)."""
     source = ds.encoding.get("source") if isinstance(ds, xr.Dataset) else None
     return repr(os.fspath(source)) if source else "the dataset"
+
+
+def coupled_refusal(path) -> str:
+    """The one line that refuses a result of coupled surfaces to a command that does not analyse them yet."""
+    return (f"{_name(path)} is a result of coupled surfaces (a 'surface' dimension), which this command "
+            "does not analyse yet; read it with xarray (xr.open_dataset); the per-surface commands come next")
 
 
 def _name(path) -> str:

@@ -63,7 +63,7 @@ from ..analysis.recorded import run_record
 from ..analysis.transmission import transmission_totals
 from ..errors import JobError
 from ..io.atomic import atomic_output
-from ..io.results import WITHOUT_INDEXES
+from ..io.results import WITHOUT_INDEXES, coupled_refusal
 from ..job.dotted import get_dotted
 from ..job.schemas import ABSORBER, AXIS, EVOLVE, PARTICLE, RECORD
 from ..potentials import term_class
@@ -154,6 +154,8 @@ def collect_study(root, study: str) -> dict:
     for run in runs:
         path = layout.result(study, run["run_id"])
         if path.is_file():
+            if _coupled(path):   # refused, not counted as missing: its analysis is not built yet
+                raise JobError("STUDY", coupled_refusal(path))
             try:
                 result = _read_result(path)
             except Exception as e:   # a foreign or damaged file is a missing run, not a crash
@@ -266,6 +268,15 @@ def _read_manifest(path: Path) -> dict:
         seen.add(run["run_id"])
         runs.append({"run_id": run["run_id"], "params": dict(run.get("params") or {})})
     return {**m, "mode": mode, "axes": axes, "runs": runs}
+
+
+def _coupled(path: Path) -> bool:
+    """Whether the result at ``path`` is of coupled surfaces (False for one that cannot be read)."""
+    try:
+        with xr.open_dataset(path, engine="netcdf4", **WITHOUT_INDEXES) as ds:
+            return "surface" in ds.dims
+    except Exception:   # a foreign or damaged file: _read_result's notes say what it is
+        return False
 
 
 def _read_result(path: Path) -> _Result:

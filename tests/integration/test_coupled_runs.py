@@ -1,0 +1,148 @@
+"""`wavesweep run` on coupled surfaces: the result file's surface dimension
+(issue 16, item 3).
+
+Sources: the Landau-Zener probability of a diabatic passage,
+P = exp(-2 pi V12^2 / (hbar v |F1 - F2|)) (Landau 1932; Zener 1932; from
+memory; tests/coupled_reference.py); the file's final psi against the
+in-memory propagation of the same set-up (CoupledSetup, tested in
+test_coupled_setup.py against single-surface runs and the matrix
+Hamiltonian); conservation of probability (norm on the grid plus what the
+absorber removed, over every surface and face) and of the energy <T + V>.
+"""
+from __future__ import annotations
+
+import copy
+import math
+
+import numpy as np
+import pytest
+import xarray as xr
+
+from coupled_reference import landau_zener_probability
+from test_checkpoint import assert_same_result, stop_after
+from test_coupled_setup import D_F, LZ_JOB, P0, V12
+from wavesweep.check import check_job, preflight
+from wavesweep.cli import main
+from wavesweep.errors import JobError, RunInterrupted
+from wavesweep.io.checkpoint import CheckpointPolicy
+from wavesweep.job import job_from_dict
+from wavesweep.run import Simulation
+from wavesweep.setup import CoupledSetup, resolve_job
+
+# a packet that runs into a CAP of given strength on both faces within the run (a small grid)
+ABSORBED_JOB = {
+    **copy.deepcopy(LZ_JOB),
+    "grid": {"x": {"min": -60.0, "max": 60.0, "points": 512}},
+    "packet": {"kind": "gaussian", "center": -10.0, "width": 4.0, "momentum": 3.0, "surface": "A"},
+    "evolve": {"dt": 0.02, "duration": 24.0, "scheme": "strang"},
+    "record": {"every": 0.4, "snapshot_every": 2.0},
+    "absorber": {"kind": "cap", "thickness": 15.0, "strength": 1.0},
+    "detector": [{"name": "right", "x": 30.0}],
+}
+
+
+def _job(table):
+    return resolve_job(job_from_dict(copy.deepcopy(table)))
+
+
+def test_landau_zener_run_writes_each_surface(tmp_path):
+    table = {**copy.deepcopy(LZ_JOB), "detector": [{"name": "after", "x": 60.0}],
+             "record": {**LZ_JOB["record"], "snapshot_every": 9.6}}
+    job = _job(table)
+    sim = Simulation(job)
+    path = sim.run(tmp_path, progress=False)
+    with xr.open_dataset(path) as ds:
+        assert list(ds["surface"].values) == ["A", "B"]
+        n_time, n_snap = len(ds["time"]), len(ds["snapshot_time"])
+        assert ds["density"].dims == ("snapshot_time", "surface", "x") and ds["density"].shape == (n_snap, 2, 2048)
+        for name in ("norm", "x_mean", "x_std", "p_mean"):
+            assert ds[name].dims == ("time", "surface"), name
+        assert ds["energy"].dims == ("time",)
+        assert ds["flux"].dims == ("time", "surface", "detector")
+        assert ds["detector_psi_real"].dims == ("time", "surface", "detector")
+        assert ds["absorbed"].dims == ("time", "surface", "boundary")
+        assert ds["psi_real"].dims == ("surface", "x") and ds["potential"].dims == ("surface", "x")
+        assert ds["coupling_potential"].dims == ("pair", "x") and list(ds["pair"].values) == ["A,B"]
+        assert list(ds.attrs["surfaces"]) == ["A", "B"]
+        assert "autocorrelation_real" not in ds and "initial_position_marginal_x" not in ds
+        x = ds["x"].values
+        np.testing.assert_allclose(ds["potential"].sel(surface="A"), D_F / 2 * x, rtol=0, atol=1e-12)
+        np.testing.assert_allclose(ds["potential"].sel(surface="B"), -D_F / 2 * x, rtol=0, atol=1e-12)
+        np.testing.assert_allclose(ds["coupling_potential"].sel(pair="A,B"), V12, rtol=0, atol=1e-15)
+        # Landau-Zener (in its regime; the same tolerance as the in-memory check of test_coupled_setup)
+        velocity = math.sqrt(2 * (P0**2 / 2 + D_F / 2 * -120.0))
+        stay = float(ds["norm"].sel(surface="A")[-1])
+        assert abs(stay / landau_zener_probability(V12, velocity, D_F) - 1) < 1.2e-3
+        # the snapshots' density integrates to each surface's norm at the same time
+        dx = x[1] - x[0]
+        last = ds["density"].isel(snapshot_time=-1).sum("x").values * dx
+        np.testing.assert_allclose(last, ds["norm"].isel(time=-1).values, rtol=1e-6)
+        assert ds["flux"].sel(surface="A").max() > 0 and ds["flux"].sel(surface="B").max() > 0
+        assert ds["energy"].values == pytest.approx(ds["energy"].values[0], rel=1e-6)
+        psi = ds["psi_real"].values + 1j * ds["psi_imag"].values
+        assert n_time == 101
+    # the file's final state is the set-up's propagation in memory
+    s = CoupledSetup(job)
+    prop = s.make_propagator()
+    ref = prop.step(prop.load(s.psi0), s.total_steps)
+    np.testing.assert_allclose(psi, ref, rtol=0, atol=1e-12)
+
+
+def test_absorbed_on_each_surface_and_resume_from_a_checkpoint(tmp_path):
+    job = _job(ABSORBED_JOB)
+    ref = Simulation(job).run(path=tmp_path / "ref.nc", progress=False)
+    with xr.open_dataset(ref) as ds:
+        absorbed = ds["absorbed"].sum(("surface", "boundary"))
+        total = ds["norm"].sum("surface") + absorbed
+        assert float(absorbed[-1]) > 0.3          # the CAP took a good part, on both surfaces
+        assert (ds["absorbed"].isel(time=-1).sum("boundary") > 1e-3).all()
+        np.testing.assert_allclose(total, 1.0, rtol=0, atol=1e-10)
+    policy = CheckpointPolicy(tmp_path / "run.ckpt", every_seconds=1e9)
+    out = tmp_path / "out" / "result.nc"
+    with pytest.raises(RunInterrupted) as info:
+        Simulation(job).run(path=out, progress=False, checkpoint=policy, should_stop=stop_after(7))
+    assert info.value.step == 7 * 20 and policy.path.exists()
+    assert Simulation(job).run(path=out, progress=False, checkpoint=policy) == out
+    assert_same_result(ref, out)
+
+
+def test_analysis_commands_refuse_a_coupled_result(tmp_path, capsys):
+    path = Simulation(_job({**ABSORBED_JOB, "evolve": {**ABSORBED_JOB["evolve"], "duration": 2.0},
+                            "record": {"every": 0.4, "snapshot_every": 0.8}})).run(tmp_path, progress=False)
+    capsys.readouterr()
+    for args in (["arrivals", str(path)], ["transmission", str(path)], ["movie", str(path), "-o",
+                 str(tmp_path / "m.gif")], ["plot", str(path), "-o", str(tmp_path / "p.png")],
+                 ["levels", "--from", str(path)]):
+        assert main(args) == 2, args
+        err = capsys.readouterr().err.strip()
+        assert len(err.splitlines()) == 1 and "coupled surfaces" in err and "xarray" in err, err
+
+
+def test_check_judges_a_coupled_job():
+    job = _job(ABSORBED_JOB)
+    report = check_job(job, trial_seconds=0)
+    topics = {f.topic: f for f in report.findings}
+    assert not report.errors
+    assert topics["coupled surfaces"].level == "warn"        # what is not judged, said
+    # the potential matrix's eigenvalues over the grid: +-sqrt((F x / 2)^2 + V12^2) (closed form, 2 x 2)
+    x_edge = 60.0
+    span = 2 * math.sqrt((D_F / 2 * x_edge) ** 2 + V12**2)
+    assert topics["time step"].values["potential_phase"] == pytest.approx(span * 0.02, rel=1e-3)
+    memory = topics["memory"].values
+    assert memory["psi_bytes"] == 2 * 512 * 16
+    assert preflight([job]) and all("classical-trajectory" in line for line in preflight([job])
+                                    if line.startswith("surface"))
+    too_coarse = _job({**ABSORBED_JOB, "evolve": {**ABSORBED_JOB["evolve"], "dt": 2.0, "duration": 24.0},
+                       "record": {"every": 4.0, "snapshot_every": 8.0}})
+    with pytest.raises(JobError) as e:
+        preflight([too_coarse])
+    assert e.value.field == "evolve.dt"
+
+
+@pytest.mark.parametrize("record, field", [({"column": "x"}, "record.column"),
+                                           ({"snapshot_psi": True}, "record.snapshot_psi")])
+def test_what_a_coupled_run_does_not_record_yet_is_refused(record, field):
+    table = {**copy.deepcopy(ABSORBED_JOB), "record": {**ABSORBED_JOB["record"], **record}}
+    with pytest.raises(JobError) as e:
+        Simulation(job_from_dict(table))
+    assert e.value.field == field
