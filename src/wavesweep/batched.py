@@ -46,14 +46,16 @@ def batch_key(table: dict) -> str | None:
     """Jobs (resolved tables) with the same key can be stepped as one batch:
     everything but the packet, the title, and the CAP's strength and
     exponent must agree.  None for jobs that are never batched: a scheme
-    that cannot step a batch, a falling grid, or a grid too large for two
-    members."""
+    that cannot step a batch, coupled surfaces, a falling grid, or a grid
+    too large for two members."""
     try:
         scheme = scheme_class(table["evolve"]["scheme"])
     except Exception:
         return None
     if not getattr(scheme, "batched", False):
         return None
+    if table.get("surface"):
+        return None   # coupled surfaces: each run steps alone (their batches are not built yet)
     if table.get("grid", {}).get("frame", "lab") != "lab":
         return None   # a falling grid follows its own packet: every member would need its own frame
     points = 1

@@ -161,11 +161,10 @@ class Setup(Model):
         super().__init__(job)
         t, u = job.table, job.units
         if self.coupled:
-            # the job file's tables are read and checked and the numerics exist (wavesweep.surfaces),
-            # but runs and their results do not carry surfaces yet: refused rather than run on one surface
-            raise JobError("surface", "a run on coupled surfaces ([[surface]], [[coupling]]) is not yet made by "
-                                      "this version (the job is checked; `levels` reads it); remove them to run "
-                                      "on one surface")
+            # one surface's set-up: a coupled job's is CoupledSetup (what run and check build);
+            # refused rather than run on one surface
+            raise JobError("surface", "coupled surfaces ([[surface]], [[coupling]]) are set up by CoupledSetup "
+                                      "(`wavesweep run` builds it), not by this single-surface Setup")
         ev = t["evolve"]
         self.dt = u.to_atomic(ev["dt"], "time", "evolve.dt")
         self.duration = u.to_atomic(ev["duration"], "time", "evolve.duration")
@@ -607,9 +606,11 @@ class CoupledSetup(Setup):
     (S, *grid) (:func:`~wavesweep.states.build_surface_state`), the absorber
     (the same layers on every surface), the :class:`SurfaceHamiltonian`
     with its rate, the coupled split-operator propagator and an observer
-    per surface.  Runs and their result files do not use it yet
-    (:class:`Setup` refuses a coupled job); it is what they will build on,
-    and what the tests propagate in memory."""
+    per surface.  :class:`~wavesweep.run.Simulation` builds it for a job
+    with surfaces (:class:`Setup` refuses one); the result file then has a
+    ``surface`` dimension.  Not supported yet, refused naming the field:
+    single precision, an interaction, a falling grid, an untuned CAP,
+    ``record.column`` and ``record.snapshot_psi``."""
 
     def __init__(self, job: Job, fft: str | None = None, threads: int | None = None):
         Model.__init__(self, job)
