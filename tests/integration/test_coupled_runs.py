@@ -143,6 +143,11 @@ def test_check_judges_a_coupled_job():
                                            ({"snapshot_psi": True}, "record.snapshot_psi")])
 def test_what_a_coupled_run_does_not_record_yet_is_refused(record, field):
     table = {**copy.deepcopy(ABSORBED_JOB), "record": {**ABSORBED_JOB["record"], **record}}
+    # a plane (a column density integrates along an axis of a 2D or 3D grid)
+    table["grid"] = {"x": {"min": -30.0, "max": 30.0, "points": 32}, "y": {"min": -20.0, "max": 20.0, "points": 16}}
+    table["packet"] = {"kind": "gaussian", "center": [-5.0, 0.0], "width": [3.0, 3.0], "momentum": [2.0, 0.0],
+                       "surface": "A"}
+    table["detector"] = []
     with pytest.raises(JobError) as e:
         Simulation(job_from_dict(table))
     assert e.value.field == field
