@@ -176,8 +176,8 @@ class Simulation:
         values["absorbed"] = np.array(absorbed, dtype=float, copy=True)
         row = dict(values)
         for scalar in s.scalars:   # each by its declared quantity kind
-            if scalar.kind:
-                row[scalar.name] *= conv[scalar.kind]
+            if scalar.kind:   # a new value: on coupled surfaces an array the observer's values share
+                row[scalar.name] = row[scalar.name] * conv[scalar.kind]
         row["flux"] = values["flux"] * conv["flux"]
         if "detector_psi" in values:
             row["detector_psi"] = values["detector_psi"] * conv["amplitude"]

@@ -165,3 +165,18 @@ def test_collect_refuses_a_study_of_coupled_runs_and_they_are_never_batched(tmp_
     with pytest.raises(JobError) as e:
         collect(tmp_path, "coupled")
     assert "coupled surfaces" in e.value.message and "xarray" in e.value.message
+
+
+def test_each_surface_in_the_job_units(tmp_path):
+    """The recorded V_ss and V_ab are the job's expressions, in its own units
+    (eV, angstrom); a surface without probability has NaN moments."""
+    table = {**copy.deepcopy(ABSORBED_JOB), "units": {"energy": "eV", "length": "angstrom"},
+             "evolve": {**ABSORBED_JOB["evolve"], "duration": 0.8}, "record": {"every": 0.4, "snapshot_every": 0.8}}
+    path = Simulation(_job(table)).run(tmp_path, progress=False)
+    with xr.open_dataset(path) as ds:
+        assert (ds.attrs["units_energy"], ds["potential"].attrs["units"]) == ("eV", "eV")
+        x = ds["x"].values
+        np.testing.assert_allclose(ds["potential"].sel(surface="B"), -D_F / 2 * x, rtol=0, atol=1e-12)
+        np.testing.assert_allclose(ds["coupling_potential"], V12, rtol=0, atol=1e-12)
+        assert float(ds["x_mean"].sel(surface="A")[0]) == pytest.approx(-10.0, abs=1e-9)   # angstrom, as given
+        assert np.isnan(float(ds["x_mean"].sel(surface="B")[0])) and float(ds["norm"].sel(surface="B")[0]) == 0
