@@ -242,8 +242,8 @@ def _table_sections(name: str) -> list[dict]:
         return [_section("surface", "[[surface]]", doc, _keys(SURFACE, skip=()),
                          notes=["the packet names the surface it starts on: [packet] surface = NAME (or one "
                                 "per member of a superposition)",
-                                "checked, not yet run by this version: a job with surfaces is refused "
-                                "before it runs"])]
+                                "split-operator schemes in double precision; the result has a `surface` "
+                                "dimension; the analysis commands do not read such results yet"])]
     if name == "coupling":
         return [_section("coupling", "[[coupling]]", doc, _keys(COUPLING, skip=()),
                          "H = T + V(r, t), V_ab = V_ba the coupling's potential, V_aa the surface's")]
