@@ -495,7 +495,9 @@ def _arrivals(args) -> int:
 
     if args.plot:   # before the distributions are computed
         output_file(args.plot, "--plot", FIGURE_TYPES, overwrite=args.overwrite, kind="figure")
-    dists = arrival_times(args.result, args.detector)
+    dists = arrival_times(args.result, args.detector, surfaces=True)
+    if isinstance(next(iter(dists.values())), dict):   # coupled surfaces: {detector: {surface: ...}}
+        return _surface_arrivals(args, dists)
     units = next(iter(dists.values())).time_units
     if args.plot:
         # lazy: each command loads only what it needs (every command's start-up)
@@ -518,11 +520,41 @@ def _arrivals(args) -> int:
     return EXIT_OK
 
 
+def _surface_arrivals(args, dists) -> int:
+    """``arrivals`` on coupled surfaces: one row per (detector, surface)."""
+    first = next(iter(next(iter(dists.values())).values()))
+    units = first.time_units
+    if args.plot:
+        # lazy: each command loads only what it needs (every command's start-up)
+        from .viz.arrivals import plot_surface_arrivals
+        plot_surface_arrivals(dists, args.plot, title=_run_title(args.result), overwrite=args.overwrite)
+    if args.json:
+        print(json.dumps(_finite({"detectors": {n: {"surfaces": {s: d.as_dict() for s, d in per.items()}}
+                                                for n, per in dists.items()},
+                                  "surfaces": list(next(iter(dists.values()))), "time_units": units})))
+    else:
+        keys = ARRIVAL_KEYS[:-1]     # no classical estimate on coupled surfaces
+        print(f"{'detector':<12}{'surface':<10}{'definition':<15}" + "".join(f"{k:>15}" for k in keys) + "  note")
+        for n, per in dists.items():
+            for surface, d in per.items():
+                note = ("nothing arrived" if d.stats["mean"] != d.stats["mean"] else
+                        "truncated: run longer" if d.stats.get("truncated") else "")
+                print(f"{n:<12}{surface:<10}{d.definition:<15}" + "".join(f"{d.stats[k]:>15.6g}" for k in keys)
+                      + f"  {note}")
+        print(f"times in {units}; probability and backflow dimensionless; nan: not defined")
+        if args.plot:
+            print(f"figure: {args.plot}")
+    _warn("arrivals", [w for per in dists.values() for d in per.values() for w in d.warnings])
+    return EXIT_OK
+
+
 def _transmission(args) -> int:
     # lazy: each command loads only what it needs (every command's start-up)
     from .analysis.transmission import transmission
 
     out = transmission(args.result, args.detector)
+    if "surfaces" in out:             # coupled surfaces
+        return _surface_transmission(args, out)
     er, tot = out["energy_resolved"], out["totals"]
     if args.json:
         body = {"energy": er.get("energy", []), "T": er.get("T", []),
@@ -551,6 +583,43 @@ def _transmission(args) -> int:
         out["warnings"].append(f"no energy-resolved T: {er['reason']}")
     _warn("transmission", out["warnings"])
     if er.get("requested"):          # the totals are out; the detector asked for could not give T(E)
+        raise er["error"]
+    return EXIT_OK
+
+
+def _surface_transmission(args, out) -> int:
+    """``transmission`` on coupled surfaces: totals per surface and face, T(E) per final surface."""
+    er, tot, surfaces = out["energy_resolved"], out["totals"], out["surfaces"]
+    if args.json:
+        body = {"surfaces": surfaces, "energy": er.get("energy", []), "T": er.get("T", {}),
+                "weight": er.get("weight", []), "energy_units": er.get("energy_units"),
+                "detector": er.get("detector"), "incident_surface": er.get("incident_surface"),
+                "final_potentials": er.get("final_potentials"), "time_units": out["time_units"], "totals": tot}
+        if "reason" in er:
+            body["reason"] = er["reason"]
+        print(json.dumps(_finite(body)))
+    else:
+        for surface in surfaces:
+            for face, a in tot["absorbed"][surface].items():
+                print(f"absorbed on {surface} at {face:<4} {a:.6g}")
+        for name, d in tot["detectors"].items():
+            for surface, v in d["surfaces"].items():
+                print(f"beyond detector {name!r} on {surface} (on the grid + absorbed at {d['far_face']}): "
+                      f"{v['beyond']:.6g}; crossed it (flux): {v['crossed']:.6g}")
+        for surface in surfaces:
+            print(f"still on the grid on {surface}: {tot['final_norm'][surface]:.6g}")
+        if "T" in er:
+            print(f"\nT(E) per final surface at detector {er['detector']!r} (packet on {er['incident_surface']}):")
+            print(f"{'E (' + er['energy_units'] + ')':>14}" + "".join(f"{'T ' + s:>12}" for s in surfaces)
+                  + f"{'weight':>10}")
+            step = max(1, len(er["energy"]) // 20)
+            for i in range(0, len(er["energy"]), step):
+                print(f"{er['energy'][i]:14.6g}" + "".join(f"{er['T'][s][i]:12.6f}" for s in surfaces)
+                      + f"{er['weight'][i]:10.3f}")
+    if "reason" in er and not er.get("requested"):
+        out["warnings"].append(f"no energy-resolved T: {er['reason']}")
+    _warn("transmission", out["warnings"])
+    if er.get("requested"):
         raise er["error"]
     return EXIT_OK
 

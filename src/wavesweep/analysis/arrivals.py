@@ -44,7 +44,8 @@ from ..potentials import REGISTRY
 from .recorded import as_record
 from .recorded import run_record as read_record
 
-__all__ = ["ArrivalDistribution", "arrival_statistics", "arrival_times", "classical_free_flight"]
+__all__ = ["ArrivalDistribution", "arrival_statistics", "arrival_times", "classical_free_flight",
+           "coupled_setup", "COUPLED_NOTE"]
 
 # The run is "truncated" when the last |density| exceeds this fraction of the
 # peak, or when more than TRUNCATED_TO_COME of probability may still arrive.
@@ -78,6 +79,7 @@ class ArrivalDistribution:
     stats: dict
     time_units: str
     warnings: list = field(default_factory=list)
+    surface: str | None = None       # on coupled surfaces: the surface whose flux this is
 
     def as_dict(self) -> dict:
         return {"definition": self.definition, **self.stats}
@@ -270,7 +272,7 @@ def recorded_or(record, name: str, j: int, compute):
 
 
 def arrival_times(result, detector: str | None = None, classical: bool = True, warnings: bool = True,
-                  curves: bool = True, verify: str = "file") -> dict[str, ArrivalDistribution]:
+                  curves: bool = True, verify: str = "file", surfaces: bool = False) -> dict:
     """Arrival-time distributions of a run's detectors (``detector``: only
     that one), from a result file path or an open dataset.  ``classical =
     False`` leaves out the classical estimate (its curve is zeros, its
@@ -283,9 +285,15 @@ def arrival_times(result, detector: str | None = None, classical: bool = True, w
     with a record that holds the detectors' values (:mod:`wavesweep.io.record`),
     nothing of the grid's size is then read.  ``verify``: as
     :func:`~wavesweep.io.results.open_result` (``"used"``: only the
-    variables without a grid dimension are checked when opened)."""
-    ds = open_result(result, require=("flux", "time"), verify=verify)
+    variables without a grid dimension are checked when opened).
+
+    ``surfaces = True`` reads a result of coupled surfaces too: it gives
+    ``{detector: {surface: ArrivalDistribution}}`` (:func:`_surface_arrivals`);
+    a result of one surface is then read as without it."""
+    ds = open_result(result, require=("flux", "time"), verify=verify, surfaces=surfaces)
     try:
+        if "surface" in ds.dims:
+            return _surface_arrivals(ds, detector)
         return _arrivals(ds, detector, classical, warnings, curves)
     finally:
         if ds is not result:   # close only what was opened here
@@ -408,6 +416,120 @@ def _arrivals(ds, detector, classical=True, warnings=True, curves=True):
                          f"{' and '.join(forced)} acts all along the path: it is no reference here")
         out[name] = ArrivalDistribution(name, definition, t, rho, cl * uc["time"], stats,
                                         uc["time_label"], notes)
+    return out
+
+
+# What a coupled result's arrival statistics leave out, said once.
+COUPLED_NOTE = ("coupled surfaces: the classical estimate and the probability still to come are not "
+                "given (NaN): the free-flight ensemble and the record they need are those of one surface")
+
+
+def coupled_setup(ds):
+    """The set-up of a run on coupled surfaces, rebuilt from the job text its
+    result stores (``job`` attribute): the absorber's layers, the initial
+    state and the grid in atomic units, which a coupled run does not record
+    for analysis.  A JobError names what cannot be rebuilt."""
+    # lazy: only a coupled result needs its set-up rebuilt (a single-surface one is read as recorded)
+    from ..job import job_from_dict
+    from ..setup import CoupledSetup
+    try:
+        table = tomllib.loads(str(ds.attrs.get("job", "")))
+    except tomllib.TOMLDecodeError as e:
+        raise JobError("RUN.nc", f"{source_name(ds)}: its job text cannot be read ({e}); run the job again") from None
+    return CoupledSetup(job_from_dict(table))
+
+
+def _initial_center(ds, axis_name: str) -> float:
+    """Mean position along ``axis_name`` at the first sample (job units) over
+    every surface, each weighted by its norm (an empty surface's mean is NaN)."""
+    norm = np.asarray(ds["norm"].values[0], float)
+    mean = np.asarray(ds[f"{axis_name}_mean"].values[0], float)
+    held = norm > 0
+    return float(np.sum(norm[held] * mean[held]) / np.sum(norm[held]))
+
+
+def _surface_arrivals(ds, detector=None) -> dict:
+    """Arrival-time statistics per detector and surface of a run on coupled
+    surfaces: the flux definition (or the absorption rate for a detector in
+    an absorbing layer) on each surface's own flux J_s(x_d, t), oriented from
+    the packet's start (its mean position over every surface) towards the
+    detector; the backflow switch and the "nothing arrived" rule as for one
+    surface.  Sum_s P_s is the probability that crossed the detector on any
+    surface.  The classical estimate and the probability still to come are
+    NaN (COUPLED_NOTE); a run still arriving at its end is flagged from the
+    flux's tail alone.  Returns {detector: {surface: ArrivalDistribution}}."""
+    names = [str(d) for d in ds["detector"].values] if "detector" in ds.coords else []
+    if not names:
+        raise JobError("RUN.nc", f"{source_name(ds)}: the run recorded no detector flux; add a [[detector]] table "
+                                 "to the job and run it again")
+    if detector is not None and detector not in names:
+        raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
+    surfaces = [str(s) for s in ds["surface"].values]
+    uc = result_units(ds)
+    t = np.asarray(ds["time"].values, float)
+    if len(t) < 3:
+        raise JobError("RUN.nc", f"{source_name(ds)}: the run holds {len(t)} samples; arrival times need at least 3")
+    flux = np.asarray(ds["flux"].values, float)          # (time, surface, detector)
+    faces = [str(b) for b in ds["boundary"].values] if "boundary" in ds.coords else []
+    # the absorbing layers are in the job only: the set-up is rebuilt when there are any
+    setup = coupled_setup(ds) if str(ds.attrs.get("absorber", "none")) != "none" else None
+    out = {}
+    for j, name in enumerate(names):
+        if detector is not None and name != detector:
+            continue
+        axis_name = str(ds["detector_axis"].values[j])
+        x_det = float(ds["detector_x"].values[j])
+        side = 1.0 if _initial_center(ds, axis_name) > x_det else -1.0
+        face = None
+        if setup is not None:
+            face = layer_holding(setup, setup.grid.axis_index(axis_name), x_det * uc["length"])
+        per_surface = {}
+        for s, surface in enumerate(surfaces):
+            label = f"detector {name!r} on surface {surface!r}"
+            notes = [COUPLED_NOTE]
+            if face is not None:
+                if face not in faces:
+                    raise JobError("RUN.nc", f"{source_name(ds)}: detector {name!r} lies in the {face} absorber but "
+                                             "the run recorded no absorbed probability there")
+                rho = np.gradient(np.asarray(ds["absorbed"][:, s, faces.index(face)].values, float), t)
+                definition = "absorption"
+                notes.append(f"detector {name!r} lies in the {face} absorbing layer: the layer is the detector, "
+                             "and its times are those of absorption anywhere in the layer on each surface")
+            else:
+                rho = flux[:, s, j] * -side
+                definition = "flux"
+            stats = arrival_statistics(t, rho)
+            if not abs(stats["probability"]) <= 1 + ARRIVED_SLACK:   # NaN too
+                raise JobError("RUN.nc", f"{source_name(ds)}: {label}: the recorded flux carries "
+                                         f"{stats['probability']:.6g} of probability across it, which no state can: "
+                                         "the file is damaged; run the job again")
+            forward = _trapezoid(np.maximum(rho, 0.0), t)
+            stats["forward"] = forward
+            if definition == "flux" and stats["backflow"] > BACKFLOW_SWITCH * forward:
+                first = arrival_statistics(t, np.maximum(rho, 0.0))
+                stats.update({k: first[k] for k in ("mean", "std", "median", "q10", "q90", "most_probable")})
+                definition = "positive flux"
+                notes.append(f"{label}: {stats['backflow']:.3g} of probability flows back across it against "
+                             f"{forward:.3g} forward; the times are those of the forward flux, the probability "
+                             "is the net crossing")
+            stats["classical_probability"] = math.nan
+            stats["classical_mean"] = math.nan
+            stats["still_to_come"] = math.nan
+            peak = float(np.max(np.abs(rho))) if len(rho) else 0.0
+            tail = abs(float(rho[-1])) / peak if peak > 0 else 0.0
+            stats["truncated"] = bool(tail > TRUNCATED_TAIL)
+            if stats["truncated"]:
+                notes.append(f"{label}: the run ended before the flux died out (last value {tail:.1%} of the "
+                             "peak); the distribution is truncated: extend evolve.duration")
+            if not forward > NOTHING_ARRIVED:
+                for key in ("mean", "std", "median", "q10", "q90", "most_probable"):
+                    stats[key] = math.nan
+                stats["truncated"] = False
+                notes = [n for n in notes if "ended before" not in n]
+            stats["classical_is_reference"] = False
+            per_surface[surface] = ArrivalDistribution(name, definition, t, rho, np.zeros_like(t), stats,
+                                                       uc["time_label"], notes, surface=surface)
+        out[name] = per_surface
     return out
 
 

@@ -90,13 +90,15 @@ import numpy as np
 
 from ..errors import JobError
 from ..io.results import open_result, result_units, source_name
-from .arrivals import recorded_or, detector_side, layer_edge, layer_holding, recorded_warnings, upstream_probability
+from ..io.record import side_probability
+from .arrivals import (coupled_setup, recorded_or, detector_side, layer_edge, layer_holding, recorded_warnings,
+                       upstream_probability)
 from .recorded import as_record
 from .recorded import run_record as read_record
 
 __all__ = ["transmission", "energy_resolved_transmission", "transmission_totals", "truncation_warning",
            "UNCERTAINTY_TARGET", "transmission_from_samples", "surface_transmission", "incident_wave_numbers",
-           "SampledTransmission"]
+           "SampledTransmission", "coupled_transmission"]
 
 WEIGHT_FLOOR = 1e-2       # report T(E) where the incident weight is above 1 % of its peak
 BAND_FLOOR = 1e-8         # the band that must not alias: weight above 1e-8 of the peak
@@ -109,6 +111,9 @@ RINGING = 0.3              # E(t) at the end falls slower than this x free fligh
 # its complex temporaries stay ~16 MB whatever the grid (256 rows of a 131072-point grid took 1 GB).
 AMPLITUDE_BLOCK = 2**20
 VARIES = 1e-6              # V differs from its value at the start by more (x mean kinetic energy)
+# On coupled surfaces: beyond the detector V_ss varies, or |V_ab| reaches, more than this x the mean
+# kinetic energy: the surfaces are not the flat, uncoupled channels T_s(E) assumes (common practice).
+FLAT_BEYOND = 1e-3
 
 
 def transmission_totals(ds, setup) -> dict:
@@ -633,10 +638,13 @@ def transmission(result, detector: str | None = None) -> dict:
     """Totals and (where the run allows) T(E), from a result path or dataset.
     ``energy_resolved`` holds T(E) with its uncertainty, or the reason it is
     missing; ``warnings`` says when the run was too short for T(E) to be
-    settled to UNCERTAINTY_TARGET."""
+    settled to UNCERTAINTY_TARGET.  A result of coupled surfaces:
+    :func:`coupled_transmission`."""
 
-    ds = open_result(result, require=("time", "norm", "flux"))
+    ds = open_result(result, require=("time", "norm", "flux"), surfaces=True)
     try:
+        if "surface" in ds.dims:
+            return coupled_transmission(ds, detector)
         setup = read_record(ds)    # what the run wrote for analysis: never a set-up rebuilt from its job
         out = {"totals": transmission_totals(ds, setup), "warnings": [],
                "time_units": result_units(ds)["time_label"]}
@@ -654,3 +662,167 @@ def transmission(result, detector: str | None = None) -> dict:
     finally:
         if ds is not result:
             ds.close()
+
+
+def coupled_totals(ds, setup) -> dict:
+    """Totals of a run on coupled surfaces (job units of length, probabilities):
+    ``absorbed`` {surface: {face: at the end}}, ``final_norm`` {surface: on
+    the grid at the end}, and per detector ``far_face`` and per surface
+    ``beyond`` (on surface s beyond the detector at the end, from the final
+    psi_s, plus what the far face absorbed on s; NaN without a final state)
+    and ``crossed`` (int J_s dt, oriented away from the packet's start).
+    ``setup``: the run's :class:`~wavesweep.setup.CoupledSetup`."""
+    surfaces = [str(v) for v in ds["surface"].values]
+    faces = [str(b) for b in ds["boundary"].values] if "boundary" in ds.coords else []
+    uc = result_units(ds)
+    n_time = ds.sizes.get("time", 0)
+    absorbed = {s: {f: float(ds["absorbed"][-1, i, k].values) if n_time else 0.0 for k, f in enumerate(faces)}
+                for i, s in enumerate(surfaces)}
+    norm = np.asarray(ds["norm"].values[-1], float)
+    out = {"absorbed": absorbed, "final_norm": {s: float(norm[i]) for i, s in enumerate(surfaces)}, "detectors": {}}
+    psi = None
+    if "psi_real" in ds:
+        psi = np.asarray(ds["psi_real"].values, float) + 1j * np.asarray(ds["psi_imag"].values, float)
+        coords = [np.asarray(ds[d].values, float) for d in ds["psi_real"].dims[1:]]
+    t = np.asarray(ds["time"].values, float)
+    flux = np.asarray(ds["flux"].values, float)
+    dens0 = np.abs(setup.psi0) ** 2
+    for j, name in enumerate(str(d) for d in ds["detector"].values):
+        det = setup.detectors[j]
+        center = float(np.sum(dens0 * setup.grid.coordinate(det.axis)) / np.sum(dens0))
+        side = 1.0 if center > det.position else -1.0
+        far_face = f"{setup.grid.names[det.axis]}{'-' if side > 0 else '+'}"
+        per = {}
+        for i, surface in enumerate(surfaces):
+            on_grid = side_probability(psi[i], coords, uc["length"], det.axis, det.position, -side) \
+                if psi is not None else math.nan
+            per[surface] = {"beyond": on_grid + absorbed[surface].get(far_face, 0.0),
+                            "crossed": float(np.trapezoid(flux[:, i, j], t)) * (-side)}
+        out["detectors"][name] = {"far_face": far_face, "surfaces": per}
+    return out
+
+
+def coupled_energy_resolved(ds, setup, detector: str | None = None, points: int = 201) -> dict:
+    """T_s(E) into each surface s from one packet on coupled surfaces (1D,
+    static potential matrix, detector amplitudes recorded; the packet on one
+    surface at the start): :func:`surface_transmission` on the file's
+    psi_s(x_d, t), the incident momentum density of the set-up's psi0
+    (:func:`incident_wave_numbers`), V_in = <V_in> over |psi0|^2 and V_s
+    from ``potential(surface, x)`` at the detector.  Without ``detector``
+    the farthest detector along the packet's motion outside the absorbing
+    layers is used.  Energies in job units.  No truncation uncertainty is
+    estimated on coupled surfaces: ``warnings`` says when psi had not died
+    out at the detector, and when the surfaces are not flat and uncoupled
+    beyond it or not flat where the packet starts (the method's premises)."""
+    uc = result_units(ds)
+    if setup.grid.ndim != 1 or setup.grid.radial:
+        raise JobError("RUN.nc", f"{source_name(ds)}: energy-resolved transmission needs a 1D cartesian run "
+                                 "(the totals are given for any run)")
+    if setup.hamiltonian.time_dependent:
+        raise JobError("RUN.nc", f"{source_name(ds)}: energy-resolved transmission needs a static potential matrix: "
+                                 "with a time-dependent one, energy is not conserved")
+    if "detector_psi_real" not in ds:
+        raise JobError("RUN.nc", f"{source_name(ds)}: the run did not record psi at its detectors; run the job again")
+    surfaces = [str(v) for v in ds["surface"].values]
+    names = [str(d) for d in ds["detector"].values]
+    if not names:
+        raise JobError("RUN.nc", f"{source_name(ds)}: the run has no detector; add a [[detector]] beyond the scatterer")
+    on = [i for i, s in enumerate(surfaces) if np.sum(np.abs(setup.psi0[i]) ** 2) > 1e-12]
+    if len(on) != 1:
+        raise JobError("packet.surface", "T(E) per final surface needs the packet on one surface at the start; "
+                                         f"it starts on {', '.join(surfaces[i] for i in on)}")
+    incident = on[0]
+    psi0 = setup.psi0[incident]
+    x = setup.grid.axes[0].coordinates
+    dens0 = np.abs(psi0) ** 2
+    x0 = float(np.sum(dens0 * x) / np.sum(dens0))
+    k_all, w_all = _padded_momentum_density(psi0, setup.grid.axes[0].dx)
+    moving = 1.0 if float(np.sum(k_all * w_all)) >= 0 else -1.0
+    if detector is not None:
+        if detector not in names:
+            raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
+        j = names.index(detector)
+        face = layer_holding(setup, 0, setup.detectors[j].position)
+        if face is not None:
+            raise JobError("--detector", f"detector {detector!r} lies inside the {face} absorbing layer, "
+                                         "where psi is no longer the transmitted wave; use one before it")
+    else:
+        usable = [i for i in range(len(names)) if layer_holding(setup, 0, setup.detectors[i].position) is None
+                  and moving * (setup.detectors[i].position - x0) > 0]
+        if not usable:
+            raise JobError("RUN.nc", f"{source_name(ds)}: no detector lies on the packet's path outside the absorbing "
+                                     "layers; T(E) needs one beyond the scatterer")
+        j = max(usable, key=lambda i: moving * setup.detectors[i].position)
+    name, x_d = names[j], setup.detectors[j].position
+    if moving * (x_d - x0) <= 0:
+        raise JobError("--detector", f"detector {name!r} lies behind the packet's start (it moves the other way); "
+                                     "T(E) needs a detector beyond the scatterer on its path")
+    t = np.asarray(ds["time"].values, float) * uc["time"]
+    amp = (np.asarray(ds["detector_psi_real"].values[:, :, j], float)
+           + 1j * np.asarray(ds["detector_psi_imag"].values[:, :, j], float)).T / math.sqrt(uc["length"])
+    peak = float(np.max(np.abs(amp) ** 2))
+    if not peak > 0:
+        raise JobError("--detector", f"nothing reached detector {name!r} during the run; place it beyond the "
+                                     "scatterer, on the packet's path, or run longer")
+    if np.max(np.abs(amp[:, 0]) ** 2) > AMPLITUDE_AT_START * peak:
+        raise JobError("packet.center", f"the initial packet already overlaps detector {name!r}; "
+                                        "start it farther from the detector")
+    w_fwd = np.where(k_all * moving > 0, w_all, 0.0)
+    k_band = k_all[w_fwd > BAND_FLOOR * w_fwd.max()]
+    potential = np.asarray(ds["potential"].values, float) * uc["energy"]      # (surface, x), hartree
+    v_in = float(np.sum(potential[incident] * dens0) / np.sum(dens0))
+    e_band = v_in + k_band**2 / (2 * setup.mass)
+    dt_rec = float(np.median(np.diff(t)))
+    width = float(e_band.max() - e_band.min())
+    if width >= 2 * math.pi / dt_rec:
+        need = 2 * math.pi / width / uc["time"]
+        raise JobError("record.every", f"samples {dt_rec / uc['time']:g} {uc['time_label']} apart alias "
+                                       f"the packet's band of {width / uc['energy']:.3g} {uc['energy_label']}; "
+                                       f"use record.every < {need:.3g} {uc['time_label']}")
+    k, w = incident_wave_numbers(psi0, x, moving, points)
+    v_final = np.array([float(np.interp(x_d, x, potential[s])) for s in range(len(surfaces))])
+    energy, T = surface_transmission(t, amp, k, w, setup.mass, v_in, v_final)
+    end_ratio = float(np.max(np.abs(amp[:, -1]) ** 2)) / peak
+    warnings = []
+    if end_ratio > AMPLITUDE_AT_END:
+        warnings.append(f"psi at detector {name!r} has not died out by the end (|psi|^2 at {end_ratio:.1e} of its "
+                        "peak): T(E) misses what is still to come; extend evolve.duration")
+    # the method's channels are flat, uncoupled surfaces from the detector on (module notes)
+    beyond = moving * (x - x_d) >= 0
+    far = layer_edge(setup, "x+" if moving > 0 else "x-") if _far_layer(setup, moving) is not None else None
+    if far is not None:
+        beyond &= moving * (far - x) > 0
+    e_kin = float(np.sum(k * k * w) / np.sum(w)) / (2 * setup.mass)
+    spread = float(np.max(np.ptp(potential[:, beyond], axis=1))) if beyond.any() else 0.0
+    coupling = float(np.max(np.abs(ds["coupling_potential"].values[:, beyond]))) * uc["energy"] \
+        if "coupling_potential" in ds and beyond.any() and ds.sizes.get("pair", 0) else 0.0
+    if max(spread, coupling) > FLAT_BEYOND * e_kin:
+        warnings.append(f"beyond detector {name!r} the surfaces are not flat and uncoupled (V_ss varies by "
+                        f"{spread / uc['energy']:.3g}, |V_ab| reaches {coupling / uc['energy']:.3g} "
+                        f"{uc['energy_label']}): T(E) per surface assumes they are; place the detector where "
+                        "the couplings vanish and each V_ss is constant")
+    if abs(float(np.ptp(potential[incident][dens0 > 1e-10 * dens0.max()]))) > FLAT_BEYOND * e_kin:
+        warnings.append(f"the packet starts where surface {surfaces[incident]!r} is not flat: T(E) assumes a free "
+                        "incident packet; start it where the potential is constant")
+    return {"energy": energy / uc["energy"], "T": {s: T[i] for i, s in enumerate(surfaces)},
+            "weight": w / w.max(), "detector": name, "incident_surface": surfaces[incident],
+            "energy_units": uc["energy_label"], "final_potentials": {s: v_final[i] / uc["energy"]
+                                                                     for i, s in enumerate(surfaces)},
+            "warnings": warnings}
+
+
+def coupled_transmission(ds, detector: str | None = None) -> dict:
+    """:func:`transmission` of a run on coupled surfaces (an open dataset):
+    ``totals`` (:func:`coupled_totals`), ``energy_resolved``
+    (:func:`coupled_energy_resolved`, or the reason it is missing),
+    ``surfaces``, ``warnings``.  The set-up (grid, psi0, absorber) is
+    rebuilt from the job text the result stores."""
+    setup = coupled_setup(ds)
+    out = {"surfaces": [str(v) for v in ds["surface"].values], "totals": coupled_totals(ds, setup),
+           "warnings": [], "time_units": result_units(ds)["time_label"]}
+    try:
+        er = out["energy_resolved"] = coupled_energy_resolved(ds, setup, detector)
+        out["warnings"].extend(er["warnings"])
+    except JobError as e:
+        out["energy_resolved"] = {"reason": f"{e.field}: {e.message}", "error": e, "requested": detector is not None}
+    return out
