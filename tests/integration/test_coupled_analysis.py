@@ -170,3 +170,23 @@ def test_other_commands_still_refuse_a_coupled_result(crossing_run):
     with pytest.raises(JobError) as e:
         arrival_times(crossing_run)
     assert "coupled surfaces" in e.value.message
+
+
+def test_a_detector_in_an_absorbing_layer_times_the_absorption_on_each_surface(tmp_path):
+    """A detector inside the x+ layer: each surface's times are those of its
+    absorption there, and its probability is what the layer took from that
+    surface by the end (the absorbed record itself, the layer's set-up
+    rebuilt from the stored job)."""
+    from test_coupled_runs import ABSORBED_JOB   # lazy: only this test runs the absorbing job
+
+    table = {**copy.deepcopy(ABSORBED_JOB), "detector": [{"name": "layer", "x": 50.0}, {"name": "open", "x": 30.0}]}
+    path = _run(table, tmp_path)
+    dists = arrival_times(path, surfaces=True)
+    with xr.open_dataset(path) as ds:
+        taken = ds["absorbed"].sel(boundary="x+").isel(time=-1)
+        for s in ("A", "B"):
+            d = dists["layer"][s]
+            assert d.definition == "absorption"
+            assert d.stats["probability"] == pytest.approx(float(taken.sel(surface=s)), abs=1e-9)
+            assert float(taken.sel(surface=s)) > 1e-3
+            assert dists["open"][s].definition in ("flux", "positive flux")

@@ -128,8 +128,8 @@ def plot_surface_arrivals(distributions: dict, path, title: str = "", dpi: int =
             ax.set_xlim(max(d.time[0], lo - pad), min(d.time[-1], hi + pad))
         ax.set_xlabel(f"time ({d.time_units})")
         ax.set_ylabel(f"arrival density ({d.time_units}$^{{-1}}$)")
-        ax.set_title(f"detector {plain(repr(name))}: crossed on all surfaces P = {total:.4g} "
-                     "(vertical lines: each surface's mean)", fontsize=10)
+        ax.set_title(f"detector {plain(repr(name))}: P = {total:.4g} on all surfaces; "
+                     "thin lines: each surface's mean", fontsize=10)
         ax.legend(fontsize=8, frameon=False)
         ax.axhline(0, color="black", lw=0.5)
     if title:
