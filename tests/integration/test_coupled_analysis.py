@@ -121,14 +121,15 @@ def test_transmission_per_surface_from_the_run_file(tmp_path):
     """T_s(E) of `transmission` on a coupled run's file is surface_transmission
     on that file's psi_s(x_d, t) with the incident momentum density of the
     job's initial packet (to rounding), and within 1e-3 of the coupled-channel
-    reference where the packet has weight.  The totals: all of the packet
+    reference where the packet has weight (measured: 3.5e-5 on A, 1.7e-6 on
+    B, as the in-memory propagation gives).  The totals: all of the packet
     crossed the detector, split between the surfaces."""
     path = _run(AVOIDED_JOB, tmp_path)
     out = transmission(path)
     er = out["energy_resolved"]
     assert "reason" not in er, er.get("reason")
     assert er["detector"] == "beyond" and er["incident_surface"] == "A"
-    assert not [w for w in out["warnings"] if "not flat" in w], out["warnings"]
+    assert not out["warnings"], out["warnings"]       # flat, uncoupled at start and detector; died out
     setup = CoupledSetup(job_from_dict(copy.deepcopy(AVOIDED_JOB)))
     x = setup.grid.axes[0].coordinates
     with xr.open_dataset(path) as ds:
