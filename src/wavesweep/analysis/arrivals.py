@@ -345,23 +345,8 @@ def _arrivals(ds, detector, classical=True, warnings=True, curves=True):
             # oriented from the packet towards the detector: arrivals count positive
             rho = flux[:, j] * -x0_side
             definition = "flux"
-        stats = arrival_statistics(t, rho)
-        if not abs(stats["probability"]) <= 1 + ARRIVED_SLACK:   # NaN too
-            raise JobError("RUN.nc", f"{source_name(ds)}: detector {name!r}: the recorded flux carries {stats['probability']:.6g} "
-                                     "of probability across it, which no state can: the file is damaged; "
-                                     "run the job again")
-        forward = _trapezoid(np.maximum(rho, 0.0), t)
-        stats["forward"] = forward
-        if definition == "flux" and stats["backflow"] > BACKFLOW_SWITCH * forward:
-            # the flux changes sign (a detector before a scatterer sees the
-            # incident wave, then the reflected one): the signed density is no
-            # probability density, so the times are those of the forward crossings
-            first = arrival_statistics(t, np.maximum(rho, 0.0))
-            stats.update({k: first[k] for k in ("mean", "std", "median", "q10", "q90", "most_probable")})
-            definition = "positive flux"
-            notes.append(f"detector {name!r}: {stats['backflow']:.3g} of probability flows back across "
-                            f"it against {forward:.3g} forward; the times are those of the forward "
-                            "flux, the probability is the net crossing")
+        stats, definition = _oriented_statistics(ds, t, rho, definition, f"detector {name!r}", notes)
+        forward = stats["forward"]
         if classical:
             cl = np.zeros_like(t)
             recorded = [setup.detector_value(f"classical_arrival_{v}", j) for v in ("probability", "mean")]
@@ -498,20 +483,8 @@ def _surface_arrivals(ds, detector=None) -> dict:
             else:
                 rho = flux[:, s, j] * -side
                 definition = "flux"
-            stats = arrival_statistics(t, rho)
-            if not abs(stats["probability"]) <= 1 + ARRIVED_SLACK:   # NaN too
-                raise JobError("RUN.nc", f"{source_name(ds)}: {label}: the recorded flux carries "
-                                         f"{stats['probability']:.6g} of probability across it, which no state can: "
-                                         "the file is damaged; run the job again")
-            forward = _trapezoid(np.maximum(rho, 0.0), t)
-            stats["forward"] = forward
-            if definition == "flux" and stats["backflow"] > BACKFLOW_SWITCH * forward:
-                first = arrival_statistics(t, np.maximum(rho, 0.0))
-                stats.update({k: first[k] for k in ("mean", "std", "median", "q10", "q90", "most_probable")})
-                definition = "positive flux"
-                notes.append(f"{label}: {stats['backflow']:.3g} of probability flows back across it against "
-                             f"{forward:.3g} forward; the times are those of the forward flux, the probability "
-                             "is the net crossing")
+            stats, definition = _oriented_statistics(ds, t, rho, definition, label, notes)
+            forward = stats["forward"]
             stats["classical_probability"] = math.nan
             stats["classical_mean"] = math.nan
             stats["still_to_come"] = math.nan
@@ -531,6 +504,31 @@ def _surface_arrivals(ds, detector=None) -> dict:
                                                        uc["time_label"], notes, surface=surface)
         out[name] = per_surface
     return out
+
+
+def _oriented_statistics(ds, t, rho, definition: str, label: str, notes: list) -> tuple[dict, str]:
+    """The statistics of one arrival density ``rho`` (oriented: arrivals
+    positive) and its definition: refused when it carries more probability
+    than any state can (a damaged file); where the flux changes sign (a
+    detector before a scatterer sees the incident wave, then the reflected
+    one) the signed density is no probability density, so the times are
+    those of the forward crossings (``definition`` becomes "positive
+    flux", a note says so).  One place for one surface and for several."""
+    stats = arrival_statistics(t, rho)
+    if not abs(stats["probability"]) <= 1 + ARRIVED_SLACK:   # NaN too
+        raise JobError("RUN.nc", f"{source_name(ds)}: {label}: the recorded flux carries {stats['probability']:.6g} "
+                                 "of probability across it, which no state can: the file is damaged; "
+                                 "run the job again")
+    forward = _trapezoid(np.maximum(rho, 0.0), t)
+    stats["forward"] = forward
+    if definition == "flux" and stats["backflow"] > BACKFLOW_SWITCH * forward:
+        first = arrival_statistics(t, np.maximum(rho, 0.0))
+        stats.update({k: first[k] for k in ("mean", "std", "median", "q10", "q90", "most_probable")})
+        definition = "positive flux"
+        notes.append(f"{label}: {stats['backflow']:.3g} of probability flows back across it against "
+                     f"{forward:.3g} forward; the times are those of the forward flux, the probability "
+                     "is the net crossing")
+    return stats, definition
 
 
 def _uniform_forces(ds) -> list[str]:

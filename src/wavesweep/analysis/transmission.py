@@ -184,13 +184,7 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
     k_all, w_all = _padded_momentum_density(setup.psi0, setup.grid.axes[0].dx)
     p_mean = float(np.sum(k_all * w_all) / np.sum(w_all))
     if detector is not None:
-        if detector not in names:
-            raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
-        j = names.index(detector)
-        face = layer_holding(setup, 0, setup.detectors[j].position)
-        if face is not None:
-            raise JobError("--detector", f"detector {detector!r} lies inside the {face} absorbing layer, "
-                                         "where psi is no longer the transmitted wave; use one before it")
+        j = _requested_detector(setup, names, detector)
         return _at_detector(ds, setup, j, k_all, w_all, points)
     sign = 1.0 if p_mean >= 0 else -1.0
     order = sorted(range(len(names)), key=lambda i: -sign * setup.detectors[i].position)
@@ -211,6 +205,20 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
     if estimate is not None:
         return estimate
     raise first
+
+
+def _requested_detector(setup, names, detector: str) -> int:
+    """The index of ``--detector``: refused when the run has no such detector
+    or it lies inside an absorbing layer (psi there is no longer the
+    transmitted wave)."""
+    if detector not in names:
+        raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
+    j = names.index(detector)
+    face = layer_holding(setup, 0, setup.detectors[j].position)
+    if face is not None:
+        raise JobError("--detector", f"detector {detector!r} lies inside the {face} absorbing layer, "
+                                     "where psi is no longer the transmitted wave; use one before it")
+    return j
 
 
 def _at_detector(ds, setup, j, k_all, w_all, points) -> dict:
@@ -739,13 +747,7 @@ def coupled_energy_resolved(ds, setup, detector: str | None = None, points: int 
     k_all, w_all = _padded_momentum_density(psi0, setup.grid.axes[0].dx)
     moving = 1.0 if float(np.sum(k_all * w_all)) >= 0 else -1.0
     if detector is not None:
-        if detector not in names:
-            raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
-        j = names.index(detector)
-        face = layer_holding(setup, 0, setup.detectors[j].position)
-        if face is not None:
-            raise JobError("--detector", f"detector {detector!r} lies inside the {face} absorbing layer, "
-                                         "where psi is no longer the transmitted wave; use one before it")
+        j = _requested_detector(setup, names, detector)
     else:
         usable = [i for i in range(len(names)) if layer_holding(setup, 0, setup.detectors[i].position) is None
                   and moving * (setup.detectors[i].position - x0) > 0]
