@@ -128,14 +128,7 @@ def eigenpairs(hamiltonian: Hamiltonian, count: int, t: float | None = 0.0, meth
         raise ValueError(f"method must be 'auto', 'dense' or 'iterative', got {method!r}")
     states = vectors.T.reshape((count,) + grid.shape)
     check_residuals(hamiltonian, v, keep, energies, states, method)
-    states = states / math.sqrt(grid.cell_volume)
-    for s in states:
-        flat = s.reshape(-1)
-        big = np.abs(flat)
-        first = int(np.argmax(big >= 0.5 * big.max()))
-        if flat[first] < 0:
-            s *= -1.0
-    return np.asarray(energies, float), states
+    return np.asarray(energies, float), _signed_states(states, grid.cell_volume)
 
 
 def walled_potential(h, t: float | None = 0.0):
@@ -156,6 +149,20 @@ def walled_potential(h, t: float | None = 0.0):
     if not float(v.max()) > ceiling:
         return v, None
     return np.minimum(v, ceiling), v <= ceiling
+
+
+def _signed_states(states, cell_volume: float):
+    """Unit-norm columns normalised on the grid (sum psi^2 dV = 1, bohr^(-ndim/2))
+    with the deterministic sign: positive at the first point (row-major)
+    where |psi| reaches half its maximum.  One rule for one surface and several."""
+    states = states / math.sqrt(cell_volume)
+    for s in states:
+        flat = s.reshape(-1)
+        big = np.abs(flat)
+        first = int(np.argmax(big >= 0.5 * big.max()))
+        if flat[first] < 0:
+            s *= -1.0
+    return states
 
 
 def _dense(h, count, v, keep=None):
@@ -486,14 +493,7 @@ def coupled_eigenpairs(hamiltonian, count: int, t: float | None = 0.0, method: s
         raise ValueError(f"method must be 'auto', 'dense' or 'iterative', got {method!r}")
     states = vectors.T.reshape((count, surfaces) + grid.shape)
     check_residuals(problem, diagonal, keep, energies, states, method)
-    states = states / math.sqrt(grid.cell_volume)
-    for s in states:
-        flat = s.reshape(-1)
-        big = np.abs(flat)
-        first = int(np.argmax(big >= 0.5 * big.max()))
-        if flat[first] < 0:
-            s *= -1.0
-    return np.asarray(energies, float), states
+    return np.asarray(energies, float), _signed_states(states, grid.cell_volume)
 
 
 def surface_weights(states, cell_volume: float) -> np.ndarray:

@@ -75,15 +75,7 @@ def plot_arrivals(distributions: dict, path, title: str = "", dpi: int = 100, ov
                      + f"; mean {d.stats['mean']:.4g} {d.time_units}{note}", fontsize=10)
         ax.legend(fontsize=8, frameon=False)
         ax.axhline(0, color="black", lw=0.5)
-    if title:
-        fig.suptitle(plain(title), fontsize=11)
-    try:
-        fig.savefig(path, dpi=dpi)
-    except OSError as e:
-        raise JobError("--plot", f"cannot write {str(path)!r}: {e.strerror or e}") from None
-    finally:
-        plt.close(fig)
-    return path
+    return _saved(fig, plt, path, title, dpi)
 
 
 # One curve per surface: Okabe & Ito (2008) colours with distinct line styles and widths, so the
@@ -132,6 +124,12 @@ def plot_surface_arrivals(distributions: dict, path, title: str = "", dpi: int =
                      "thin lines: each surface's mean", fontsize=10)
         ax.legend(fontsize=8, frameon=False)
         ax.axhline(0, color="black", lw=0.5)
+    return _saved(fig, plt, path, title, dpi)
+
+
+def _saved(fig, plt, path, title: str, dpi: int):
+    """The figure titled, written to ``path`` (a write error is one line on
+    --plot) and closed; returns the path."""
     if title:
         fig.suptitle(plain(title), fontsize=11)
     try:
