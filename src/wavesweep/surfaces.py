@@ -92,6 +92,8 @@ class SurfaceHamiltonian:
         every = [term for terms in self.surface_terms for term in terms]
         every += [term for terms in self.couplings.values() for term in terms]
         self.time_dependent = any(term.time_dependent for term in every)
+        self._mesh = grid.mesh()
+        self._static = None
         self._static = self.matrix(None)
 
     @property
@@ -105,9 +107,23 @@ class SurfaceHamiltonian:
 
     def matrix(self, t: float | None = 0.0) -> np.ndarray:
         """V(r, t) as (S, S, *grid) float64 (hartree); ``t`` None: the static part only."""
-        if t is None and getattr(self, "_static", None) is not None:
-            return self._static
+        static = getattr(self, "_static", None)
+        if static is not None and (t is None or not self.time_dependent):
+            return static
         grid, s = self.grid, self.size
+        if static is not None:   # per kick: the static matrix made once, plus the time-dependent terms only
+            out = static.copy()
+            mesh = self._mesh
+            for a, terms in enumerate(self.surface_terms):
+                for term in terms:
+                    if term.time_dependent:
+                        out[a, a] += np.broadcast_to(np.asarray(term.at_time(mesh, t), float), grid.shape)
+            for (a, b), terms in self.couplings.items():
+                for term in terms:
+                    if term.time_dependent:
+                        out[a, b] += np.broadcast_to(np.asarray(term.at_time(mesh, t), float), grid.shape)
+                        out[b, a] = out[a, b]
+            return out
         out = np.zeros((s, s) + grid.shape)
         for a, terms in enumerate(self.surface_terms):
             out[a, a] = _terms_at(grid, self.mass, terms, t)
