@@ -191,3 +191,23 @@ def test_a_detector_in_an_absorbing_layer_times_the_absorption_on_each_surface(t
             assert d.stats["probability"] == pytest.approx(float(taken.sel(surface=s)), abs=1e-9)
             assert float(taken.sel(surface=s)) > 1e-3
             assert dists["open"][s].definition in ("flux", "positive flux")
+
+
+def test_a_detector_where_the_surfaces_are_still_coupled_is_said(tmp_path):
+    """With the Landau-Zener job's constant coupling V12 = 0.2 and the
+    diabatic gap dF x = 5 at x = 100, the mixing ratio there is 0.04 (by
+    hand): the per-surface split beyond it is uncertain by ~ its square."""
+    import copy
+
+    from test_coupled_setup import LZ_JOB
+    from wavesweep.analysis.arrivals import arrival_times
+    from wavesweep.job import job_from_dict
+    from wavesweep.run import Simulation
+
+    table = copy.deepcopy(LZ_JOB)
+    table["detector"] = [{"name": "far", "x": 100.0}]
+    table["evolve"]["duration"] = 4.8
+    table["record"] = {"every": 0.48, "snapshot_every": 4.8}
+    path = Simulation(job_from_dict(table)).run(tmp_path, progress=False)
+    said = [w for w in arrival_times(path, surfaces=True)["far"]["A"].warnings if "still coupled" in w]
+    assert len(said) == 1 and "= 0.04" in said[0]

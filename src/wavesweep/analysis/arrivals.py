@@ -469,9 +469,14 @@ def _surface_arrivals(ds, detector=None) -> dict:
         if setup is not None:
             face = layer_holding(setup, setup.grid.axis_index(axis_name), x_det * uc["length"])
         per_surface = {}
+        coupled_there = _coupling_at(ds, axis_name, x_det)
         for s, surface in enumerate(surfaces):
             label = f"detector {name!r} on surface {surface!r}"
-            notes = [COUPLED_NOTE]
+            notes = [COUPLED_NOTE] + [
+                f"detector {name!r}: surfaces {pair} are still coupled there (|V_ab| / |V_aa - V_bb| = {r:.2g}): "
+                f"what crosses keeps changing surface beyond it, so the split between them is uncertain by "
+                f"about {r * r:.1g}; move the detector to where the coupling has died out"
+                for pair, r in coupled_there]
             if face is not None:
                 if face not in faces:
                     raise JobError("RUN.nc", f"{source_name(ds)}: detector {name!r} lies in the {face} absorber but "
@@ -503,6 +508,33 @@ def _surface_arrivals(ds, detector=None) -> dict:
             per_surface[surface] = ArrivalDistribution(name, definition, t, rho, np.zeros_like(t), stats,
                                                        uc["time_label"], notes, surface=surface)
         out[name] = per_surface
+    return out
+
+
+# Couplings at a detector above this share of the surfaces' gap are said
+# (the populations then still mix by about its square; common practice: a
+# diabatic split is read where the coupling has died out).
+COUPLING_AT_DETECTOR = 1e-3
+
+
+def _coupling_at(ds, axis_name: str, x_det: float) -> list[tuple[str, float]]:
+    """For a 1D coupled result: each pair whose static coupling at the
+    detector exceeds COUPLING_AT_DETECTOR of the gap between its two
+    diagonal potentials there, with that ratio (job units throughout)."""
+    if "coupling_potential" not in ds.variables or ds["potential"].dims != ("surface", axis_name):
+        return []
+    x = np.asarray(ds[axis_name].values, float)
+    surfaces = [str(v) for v in ds["surface"].values]
+    diag = {n: float(np.interp(x_det, x, np.asarray(ds["potential"].sel(surface=n).values, float)))
+            for n in surfaces}
+    out = []
+    for k, pair in enumerate(str(p) for p in ds["pair"].values):
+        a, b = pair.split(",")
+        v_ab = abs(float(np.interp(x_det, x, np.asarray(ds["coupling_potential"][k].values, float))))
+        gap = abs(diag[a] - diag[b])
+        ratio = v_ab / gap if gap > 0 else (math.inf if v_ab > 0 else 0.0)
+        if ratio > COUPLING_AT_DETECTOR:
+            out.append((pair, ratio))
     return out
 
 
