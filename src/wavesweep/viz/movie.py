@@ -17,6 +17,15 @@ Im psi and +-|psi| instead (needs ``record.snapshot_psi = true``).
 logarithmic), potential contours over it, equal aspect.  3D: the projection
 (integral along an axis) or a slice, drawn as in 2D.
 
+Coupled surfaces (a ``surface`` dimension): in 1D one axes with each
+surface's density (thick) and its potential V_ss (thin, right axis) in the
+surface's colour, line style and width (``style.SURFACE_STYLES``, apart
+in grey-scale print too), each coupled pair's |V_ab| on the potential
+axis, and a legend naming each curve with each surface's probability in
+the frame (the frame's integral) updated every frame; in 2D (and 3D through
+a projection or slice) one panel per surface side by side on one colour
+scale, each with its own potential's contours and its probability.
+
 A run in a falling frame (``frame_offset`` in the result) is drawn in the
 lab: each frame at its lab positions (grid coordinate + the snapshot's
 ``snapshot_frame_offset``), axes labelled "lab x (...)", detectors and the
@@ -536,9 +545,6 @@ class SurfacesPainter1D(Painter1D):
 
     def prepare(self, reader, indices):
         sc, opt = self.scene, self.opt
-        if opt.parts:
-            raise JobError("--parts", "real and imaginary parts are not drawn for coupled surfaces (their "
-                                      "snapshots hold no psi); draw the densities without --parts")
         name = sc.axes[0]
         self.name = name
         self.x = sc.lab_coords(name, indices[0] if indices else 0)
@@ -708,6 +714,9 @@ def painter_for(scene: Scene, options: MovieOptions) -> Painter:
     if not (10 <= options.dpi <= 1000):
         raise JobError("--dpi", f"must lie between 10 and 1000, got {options.dpi}")
     coupled = scene.surfaces is not None
+    if coupled and options.parts:
+        raise JobError("--parts", "real and imaginary parts are not drawn for coupled surfaces (their "
+                                  "snapshots hold no psi); draw the densities without --parts")
     if scene.ndim == 1:
         if options.projection or options.slice:
             raise JobError("--slice" if options.slice else "--projection",

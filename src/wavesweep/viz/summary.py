@@ -14,6 +14,12 @@ against the grid (its visited region more than ``FOLLOW_SPAN`` grid
 extents, the band of the packet a sliver of the map) the grid's edges are
 drawn over the map so its path stays visible; the movie follows the grid
 instead (:mod:`.movie`).
+
+A run on coupled surfaces (:func:`surfaces_figure`) shows each surface's
+density map (one colour scale), the population of each surface with the
+probability books, each surface's potential with the couplings |V_ab| on
+their own scale, the flux per surface and detector, and the total energy's
+drift; each surface keeps one colour, line style and width throughout.
 """
 from __future__ import annotations
 
