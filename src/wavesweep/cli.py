@@ -207,7 +207,8 @@ def _parser() -> argparse.ArgumentParser:
     tr.add_argument("--detector", default=None, help="detector beyond the scatterer for T(E)")
     tr.add_argument("--json", action="store_true", help="print one JSON object")
 
-    mv = sub.add_parser("movie", help="a movie of the probability density of a run (.mp4 or .gif)")
+    mv = sub.add_parser("movie", help="a movie of the probability density of a run (.mp4 or .gif); "
+                                      "each surface's, on coupled surfaces")
     mv.add_argument("result", metavar="RUN.nc")
     mv.add_argument("-o", "--output", required=True, metavar="FILE", help="FILE.mp4 (H.264) or FILE.gif")
     mv.add_argument("--every", type=FLAG_TYPES["--every"], default=1, metavar="K", help="use every K-th snapshot")
@@ -224,7 +225,8 @@ def _parser() -> argparse.ArgumentParser:
                     help="2D/3D: the column density along AXIS (what a camera looking along it sees)")
     mv.add_argument("--overwrite", action="store_true", help="replace FILE if it exists (without it an existing file is refused)")
 
-    pl = sub.add_parser("plot", help="a summary figure of a run, or of a study's summary.nc")
+    pl = sub.add_parser("plot", help="a summary figure of a run (each surface's, on coupled surfaces), "
+                                     "or of a study's summary.nc")
     pl.add_argument("result", metavar="RUN.nc")
     pl.add_argument("-o", "--output", required=True, metavar="FILE", help="FILE.png, .pdf or .svg")
     pl.add_argument("--size", type=FLAG_TYPES["--size"], default="1200x900", metavar="WxH", help="figure size in pixels")

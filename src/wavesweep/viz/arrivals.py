@@ -9,7 +9,7 @@ import numpy as np
 
 from ..errors import JobError
 from ..io.paths import output_file
-from .style import plain
+from .style import SURFACE_STYLES, plain
 
 __all__ = ["plot_arrivals", "plot_surface_arrivals"]
 
@@ -76,12 +76,6 @@ def plot_arrivals(distributions: dict, path, title: str = "", dpi: int = 100, ov
         ax.legend(fontsize=8, frameon=False)
         ax.axhline(0, color="black", lw=0.5)
     return _saved(fig, plt, path, title, dpi)
-
-
-# One curve per surface: Okabe & Ito (2008) colours with distinct line styles and widths, so the
-# surfaces stay apart in grey-scale too.
-SURFACE_STYLES = (("#0072B2", "-", 1.8), ("#D55E00", "--", 1.6), ("#009E73", ":", 2.0),
-                  ("#CC79A7", "-.", 1.6), ("#000000", (0, (5, 1, 1, 1, 1, 1)), 1.4), ("#E69F00", (0, (1, 1)), 1.4))
 
 
 def plot_surface_arrivals(distributions: dict, path, title: str = "", dpi: int = 100,

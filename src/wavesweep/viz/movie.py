@@ -17,6 +17,15 @@ Im psi and +-|psi| instead (needs ``record.snapshot_psi = true``).
 logarithmic), potential contours over it, equal aspect.  3D: the projection
 (integral along an axis) or a slice, drawn as in 2D.
 
+Coupled surfaces (a ``surface`` dimension): in 1D one axes with each
+surface's density (thick) and its potential V_ss (thin, right axis) in the
+surface's colour, line style and width (``style.SURFACE_STYLES``, apart
+in grey-scale print too), each coupled pair's |V_ab| on the potential
+axis, and a legend naming each curve with each surface's probability in
+the frame (the frame's integral) updated every frame; in 2D (and 3D through
+a projection or slice) one panel per surface side by side on one colour
+scale, each with its own potential's contours and its probability.
+
 A run in a falling frame (``frame_offset`` in the result) is drawn in the
 lab: each frame at its lab positions (grid coordinate + the snapshot's
 ``snapshot_frame_offset``), axes labelled "lab x (...)", detectors and the
@@ -295,21 +304,7 @@ class Painter1D(Painter):
             self.ax = ax
             ax.set_xlim(*self.limits[name])
             ax.set_xlabel(sc.axis_label(name))
-            falling = sc.offsets is not None
-            for layer in sc.layers:
-                moves = sc.moves(layer.axis)
-                patch = ax.axvspan(layer.start, layer.stop, color=style.ABSORBER, alpha=0.45, lw=0,
-                                   animated=moves)
-                label = ax.text((layer.start + layer.stop) / 2, 0.015, "absorber", transform=ax.get_xaxis_transform(),
-                                ha="center", va="bottom", fontsize=7, color="#555555", animated=moves,
-                                clip_on=falling)
-                if moves:   # the layers belong to the grid: they fall with it
-                    self._moving_layers.append((patch, label, layer, "v"))
-            for dname, dax, pos in sc.detectors:
-                if dax == name:   # detectors are fixed in the lab
-                    ax.axvline(pos, color=style.DETECTOR, lw=0.9, ls="--")
-                    ax.text(pos, 0.985, f" {style.plain(dname)}", transform=ax.get_xaxis_transform(),
-                            ha="left", va="top", fontsize=7, color=style.DETECTOR, clip_on=falling)
+            self._mark_layers_and_detectors(ax, name)
             if self._has_potential():
                 v = sc.potential
                 span = float(np.ptp(v))
@@ -328,6 +323,26 @@ class Painter1D(Painter):
         self.animated[:0] = ([p for p, _, _, _ in self._moving_layers] + self.lines
                              + ([self.fill] if self.fill is not None else [])
                              + [lab for _, lab, _, _ in self._moving_layers])
+
+    def _mark_layers_and_detectors(self, ax, name: str) -> None:
+        """The absorbing layers shaded (falling with a falling grid) and the
+        detectors along ``name`` marked (fixed in the lab)."""
+        sc = self.scene
+        falling = sc.offsets is not None
+        for layer in sc.layers:
+            moves = sc.moves(layer.axis)
+            patch = ax.axvspan(layer.start, layer.stop, color=style.ABSORBER, alpha=0.45, lw=0,
+                               animated=moves)
+            label = ax.text((layer.start + layer.stop) / 2, 0.015, "absorber", transform=ax.get_xaxis_transform(),
+                            ha="center", va="bottom", fontsize=7, color="#555555", animated=moves,
+                            clip_on=falling)
+            if moves:   # the layers belong to the grid: they fall with it
+                self._moving_layers.append((patch, label, layer, "v"))
+        for dname, dax, pos in sc.detectors:
+            if dax == name:   # detectors are fixed in the lab
+                ax.axvline(pos, color=style.DETECTOR, lw=0.9, ls="--")
+                ax.text(pos, 0.985, f" {style.plain(dname)}", transform=ax.get_xaxis_transform(),
+                        ha="left", va="top", fontsize=7, color=style.DETECTOR, clip_on=falling)
 
     def _has_potential(self) -> bool:
         v = self.scene.potential
@@ -406,23 +421,7 @@ class Painter2D(Painter):
                 # fixed in the lab: recorded at the grid's lab positions at t = 0 (offset zero)
                 overlays.append(ax.contour(xa, xb, v.T, levels=levels, colors="white",
                                            linewidths=0.7, alpha=0.85))
-            for layer in sc.layers:
-                span = ax.axvspan if layer.axis == a else (ax.axhspan if layer.axis == b else None)
-                if span is not None:
-                    overlays.append(span(layer.start, layer.stop, color="white", alpha=0.18, lw=0))
-                    if sc.moves(layer.axis):   # the layers belong to the grid: they fall with it
-                        self._moving_layers.append((overlays[-1], None, layer, "v" if layer.axis == a else "h"))
-            for dname, dax, pos in sc.detectors:
-                if dax == a:
-                    overlays.append(ax.axvline(pos, color=style.DETECTOR, lw=1.0, ls="--"))
-                    overlays.append(ax.text(pos, 0.985, f" {style.plain(dname)}", transform=ax.get_xaxis_transform(),
-                                            ha="left", va="top", fontsize=7, color=style.DETECTOR,
-                                            clip_on=sc.offsets is not None))
-                elif dax == b:
-                    overlays.append(ax.axhline(pos, color=style.DETECTOR, lw=1.0, ls="--"))
-                    overlays.append(ax.text(0.005, pos, f"{style.plain(dname)} ", transform=ax.get_yaxis_transform(),
-                                            ha="left", va="bottom", fontsize=7, color=style.DETECTOR,
-                                            clip_on=sc.offsets is not None))
+            overlays += self._layer_and_detector_marks(ax)
             for o in overlays:
                 o.set_animated(True)
             ax.set_xlabel(sc.axis_label(a))
@@ -431,6 +430,31 @@ class Painter2D(Painter):
             self.fig.subplots_adjust(left=0.08, right=0.9, bottom=0.11, top=0.92)
             self.text = self._time_text(ax, corner=any(sc.moves(n) for n in sc.axes))
         self.animated[:0] = [self.image, *overlays]
+
+    def _layer_and_detector_marks(self, ax) -> list:
+        """The absorbing layers and the detectors across the drawn plane, as
+        artists drawn over the image each frame."""
+        sc = self.scene
+        a, b = self.plane
+        marks = []
+        for layer in sc.layers:
+            span = ax.axvspan if layer.axis == a else (ax.axhspan if layer.axis == b else None)
+            if span is not None:
+                marks.append(span(layer.start, layer.stop, color="white", alpha=0.18, lw=0))
+                if sc.moves(layer.axis):   # the layers belong to the grid: they fall with it
+                    self._moving_layers.append((marks[-1], None, layer, "v" if layer.axis == a else "h"))
+        for dname, dax, pos in sc.detectors:
+            if dax == a:
+                marks.append(ax.axvline(pos, color=style.DETECTOR, lw=1.0, ls="--"))
+                marks.append(ax.text(pos, 0.985, f" {style.plain(dname)}", transform=ax.get_xaxis_transform(),
+                                     ha="left", va="top", fontsize=7, color=style.DETECTOR,
+                                     clip_on=sc.offsets is not None))
+            elif dax == b:
+                marks.append(ax.axhline(pos, color=style.DETECTOR, lw=1.0, ls="--"))
+                marks.append(ax.text(0.005, pos, f"{style.plain(dname)} ", transform=ax.get_yaxis_transform(),
+                                     ha="left", va="bottom", fontsize=7, color=style.DETECTOR,
+                                     clip_on=sc.offsets is not None))
+        return marks
 
     def _plane(self, sc):
         if sc.ndim == 2:
@@ -470,7 +494,11 @@ class Painter2D(Painter):
         self.plane = tuple(n for n in sc.axes if n != axis)
 
     def _plane_potential(self):
-        v = self.scene.potential
+        return self._cut_potential(self.scene.potential)
+
+    def _cut_potential(self, v):
+        """A potential on the grid, on the drawn plane: itself in 2D, a 3D
+        one sliced as the density is or averaged along the projection."""
         if v is None or self._cut is None:
             return v
         kind, k, j = self._cut
@@ -493,6 +521,191 @@ class Painter2D(Painter):
         return self.animated
 
 
+# -- coupled surfaces -------------------------------------------------------------
+def surface_density_label(surface: str, population: float | None = None) -> str:
+    """A coupled movie's legend entry of a surface's density, with the
+    probability on that surface when known."""
+    return f"density on {style.plain(surface)}" + ("" if population is None else f": P = {population:.3f}")
+
+
+def coupling_label(pair: str) -> str:
+    """The legend entry of the pair "A,B"'s coupling: the off-diagonal element's modulus."""
+    a, _, b = pair.partition(",")
+    return f"|V| coupling {style.plain(a)} and {style.plain(b)}"
+
+
+class SurfacesPainter1D(Painter1D):
+    """Coupled surfaces on a line, on one axes: each surface's density (left
+    axis; thick) and its static potential V_ss (right axis; thin) in the
+    surface's colour, line style and width (:data:`style.SURFACE_STYLES`:
+    the surfaces stay apart in grey-scale print), each coupled pair's
+    |V_ab| dark grey and dash-dotted on the potential axis.  The legend
+    names each curve and gives each surface's probability in the frame (the
+    frame's integral), updated every frame."""
+
+    def prepare(self, reader, indices):
+        sc, opt = self.scene, self.opt
+        name = sc.axes[0]
+        self.name = name
+        self.x = sc.lab_coords(name, indices[0] if indices else 0)
+        self._plan_view([name], indices, {name: 0.0})
+        curves = self._potential_curves()
+        with style.style():
+            ax = self.fig.add_subplot(111)
+            self.fig.subplots_adjust(left=0.09, right=0.9 if curves else 0.97, bottom=0.13, top=0.93)
+            top = 0.0
+            for i in indices:                      # one streaming pass: a fixed y scale for every surface
+                top = max(top, float(np.nanmax(reader.frame(i))))
+            top = top * 1.08 if top > 0 else 1.0
+            if opt.scale == "log":
+                ax.set_yscale("log")
+                ax.set_ylim(top * opt.floor, top)
+            else:
+                ax.set_ylim(0, top)
+            label = ("radial probability density |u(r)|$^2$" if sc.radial
+                     else f"column density along {sc.column[0]}" if sc.column else "probability density")
+            ax.set_ylabel(f"{label} ({style.pretty_unit(sc.units['density'])})")
+            self._floor = ax.get_ylim()[0]
+            self.fill = None
+            # the widest label the legend will hold sizes its box: the populations fit in every frame
+            self.lines = [ax.plot(self.x, np.zeros_like(self.x), animated=True,
+                                  label=surface_density_label(s, 0.0), **style.surface_style(j))[0]
+                          for j, s in enumerate(sc.surfaces)]
+            self.ax = ax
+            ax.set_xlim(*self.limits[name])
+            ax.set_xlabel(sc.axis_label(name))
+            self._mark_layers_and_detectors(ax, name)
+            handles = list(self.lines)
+            if curves:
+                vax = ax.twinx()
+                vax.spines["right"].set_visible(True)
+                for text, v, kw in curves:
+                    handles += vax.plot(sc.coords[name], v, label=text, alpha=0.9, **kw)
+                values = np.concatenate([v for _, v, _ in curves])
+                low, span = float(values.min()), float(np.ptp(values))
+                vax.set_ylim(low, low + 1.15 * span)
+                vax.set_ylabel(f"V ({style.pretty_unit(sc.units['energy'])})", color=style.POTENTIAL)
+                vax.tick_params(axis="y", colors=style.POTENTIAL)
+            # surface by surface (its density, then its potential), the couplings last; below the
+            # detectors' names along the top; redrawn each frame (the populations)
+            n = len(self.lines)
+            order = [k for j in range(n) for k in (j, n + j) if k < len(handles)] + list(range(2 * n, len(handles)))
+            self._legend_row = {j: order.index(j) for j in range(n)}
+            self.legend = ax.legend(handles=[handles[k] for k in order], loc="upper right",
+                                    bbox_to_anchor=(1.0, 0.93), frameon=True, framealpha=0.8,
+                                    edgecolor="none", fontsize=7)
+            self.legend.set_animated(True)
+            ax.set_title(style.plain(sc.title) + (f"  (integrated over {sc.column[0]})" if sc.column else "")
+                         + "  (coupled surfaces: thick lines density, thin lines potential)", loc="left")
+            self.text = self._time_text(ax)
+        self.animated[:0] = self.lines + [self.legend]
+
+    def _potential_curves(self) -> list:
+        """(label, values, line keywords) of each surface's V_ss (its
+        style, thinner than its density) and each pair's |V_ab|; empty when
+        they are all one constant (nothing to read off a flat line)."""
+        sc = self.scene
+        curves = []
+        for j, s in enumerate(sc.surfaces):
+            v = (sc.surface_potentials or {}).get(s)
+            if v is not None and v.ndim == 1:
+                kw = style.surface_style(j)
+                curves.append((f"V on {style.plain(s)}", v, {**kw, "lw": 0.55 * kw["lw"]}))
+        colour, ls, lw = style.COUPLING
+        for pair, v in (sc.couplings or {}).items():
+            if v.ndim == 1:
+                curves.append((coupling_label(pair), np.abs(v), {"color": colour, "ls": ls, "lw": lw}))
+        if not curves or float(np.ptp(np.concatenate([v for _, v, _ in curves]))) == 0:
+            return []
+        return curves
+
+    def frame_of(self, reader, i):
+        return reader.frame(i)
+
+    def update(self, frame, t, i: int = 0):
+        cell = self.scene.cell
+        texts = self.legend.get_texts()
+        for j, (line, s) in enumerate(zip(self.lines, self.scene.surfaces)):
+            line.set_data(self.x, np.maximum(frame[j], self._floor))
+            texts[self._legend_row[j]].set_text(surface_density_label(s, float(frame[j].sum()) * cell))
+        self.text.set_text(self._time_label(t, i))
+        return self.animated
+
+
+class SurfacesPainter2D(Painter2D):
+    """Coupled surfaces on a plane (2D, or 3D through a projection or a
+    slice): one panel per surface side by side, all on one colour scale,
+    each with its own potential's contours, the absorbers and detectors,
+    and its probability in the frame in the panel's corner."""
+
+    def prepare(self, reader, indices):
+        from matplotlib.colors import LogNorm, Normalize   # lazy: matplotlib loads with the first frame
+
+        sc, opt = self.scene, self.opt
+        self._plane(sc)
+        vmax = 0.0
+        for i in indices:
+            frame = reader.frame(i)
+            vmax = max(vmax, max(float(np.max(self.reduce(f))) for f in frame))
+        vmax = vmax if vmax > 0 else 1.0
+        norm = (LogNorm(vmin=vmax * opt.floor, vmax=vmax) if opt.scale == "log"
+                else Normalize(vmin=0.0, vmax=vmax))
+        a, b = self.plane
+        xa, xb = sc.coords[a], sc.coords[b]
+        da, db = (xa[1] - xa[0]) / 2, (xb[1] - xb[0]) / 2
+        extent = (xa[0] - da, xa[-1] + da, xb[0] - db, xb[-1] + db)
+        self._plan_view([a, b], indices, {a: abs(da), b: abs(db)})
+        n = len(sc.surfaces)
+        overlays, self.images, self.populations = [], [], []
+        with style.style():
+            axes = self.fig.subplots(1, n, squeeze=False)[0]
+            self.fig.subplots_adjust(left=0.07, right=0.88, bottom=0.12, top=0.86, wspace=0.12)
+            for j, (ax, s) in enumerate(zip(axes, sc.surfaces)):
+                image = ax.imshow(np.zeros((len(xb), len(xa))), origin="lower", norm=norm,
+                                  cmap=style.DENSITY_CMAP, aspect="equal", interpolation="nearest",
+                                  extent=extent, animated=True)
+                self.images.append(image)
+                ax.set_xlim(*self.limits[a])
+                ax.set_ylim(*self.limits[b])
+                v = self._cut_potential((sc.surface_potentials or {}).get(s))
+                if v is not None and float(np.ptp(v)) > 0:
+                    levels = np.linspace(float(v.min()), float(v.max()), 7)[1:-1]
+                    overlays.append(ax.contour(xa, xb, v.T, levels=levels, colors="white",
+                                               linewidths=0.7, alpha=0.85))
+                self.ax = ax
+                overlays += self._layer_and_detector_marks(ax)
+                ax.set_xlabel(sc.axis_label(a))
+                if j == 0:
+                    ax.set_ylabel(sc.axis_label(b))
+                else:
+                    ax.tick_params(labelleft=False)
+                colour = style.surface_style(j)["color"]
+                ax.set_title(f"surface {style.plain(s)}", loc="left", color=colour, fontweight="bold")
+                for spine in ax.spines.values():   # the panel framed in its surface's colour and line style
+                    spine.set_visible(True)
+                    spine.set(**style.surface_style(j))
+                self.populations.append(ax.text(0.02, 0.97, "", transform=ax.transAxes, ha="left", va="top",
+                                                fontsize=9, bbox=dict(boxstyle="round,pad=0.25", fc="white",
+                                                                      ec="none", alpha=0.8)))
+            for o in overlays:
+                o.set_animated(True)
+            cax = self.fig.add_axes((0.9, 0.12, 0.015, 0.74))
+            bar = self.fig.colorbar(self.images[0], cax=cax)
+            bar.set_label(self.density_label + (" (log scale)" if opt.scale == "log" else ""))
+            self.fig.suptitle(style.plain(sc.title) + self.subtitle + "  (coupled surfaces, one colour scale; "
+                              "white lines: each surface's potential)", x=0.07, ha="left", fontsize=9)
+            self.text = self._time_text(axes[0], corner=True)
+        self.animated[:0] = [*self.images, *overlays, *self.populations]
+
+    def update(self, frame, t, i: int = 0):
+        cell = self.scene.cell
+        for image, text, s, f in zip(self.images, self.populations, self.scene.surfaces, frame):
+            image.set_data(self.reduce(f).T)
+            text.set_text(f"P({style.plain(s)}) = {float(f.sum()) * cell:.3f}")
+        self.text.set_text(self._time_label(t, i))
+        return self.animated
+
+
 def painter_for(scene: Scene, options: MovieOptions) -> Painter:
     if options.scale not in ("linear", "log"):
         raise JobError("--scale", f"unknown scale {options.scale!r}; use linear or log")
@@ -500,17 +713,21 @@ def painter_for(scene: Scene, options: MovieOptions) -> Painter:
         raise JobError("--floor", f"must lie between 0 and 1 (a fraction of the peak), got {options.floor:g}")
     if not (10 <= options.dpi <= 1000):
         raise JobError("--dpi", f"must lie between 10 and 1000, got {options.dpi}")
+    coupled = scene.surfaces is not None
+    if coupled and options.parts:
+        raise JobError("--parts", "real and imaginary parts are not drawn for coupled surfaces (their "
+                                  "snapshots hold no psi); draw the densities without --parts")
     if scene.ndim == 1:
         if options.projection or options.slice:
             raise JobError("--slice" if options.slice else "--projection",
                            "a 1D run has nothing to project or slice")
-        return Painter1D(scene, options)
+        return (SurfacesPainter1D if coupled else Painter1D)(scene, options)
     if options.parts:
         raise JobError("--parts", "real and imaginary parts are drawn for 1D runs only")
     if scene.ndim == 2 and (options.projection or options.slice):
         raise JobError("--slice" if options.slice else "--projection",
                        "a 2D run is drawn whole; --projection and --slice are for 3D")
-    return Painter2D(scene, options)
+    return (SurfacesPainter2D if coupled else Painter2D)(scene, options)
 
 
 def _with_column(scene: Scene, options: MovieOptions) -> tuple[Scene, MovieOptions]:

@@ -12,6 +12,12 @@ is recorded at the grid's lab positions at t = 0, where the offset is zero
 by construction); absorbing layers belong to the grid and move with it
 (:meth:`Scene.layer_span`).
 
+A run on coupled surfaces (a ``surface`` dimension) has a scene with
+:attr:`Scene.surfaces` (the names, in the file's order), each surface's
+static potential V_ss in :attr:`Scene.surface_potentials` and each coupled
+pair's V_ab in :attr:`Scene.couplings`; :attr:`Scene.potential` is then
+None, and a frame is (surface, *grid).
+
 Frames are read one at a time with netCDF4 (each frame is one chunk on
 disk), so memory does not depend on the number of snapshots.
 """
@@ -64,10 +70,21 @@ class Scene:
     # a falling grid: axis name -> lab offset of the grid at each snapshot
     # (job length units, snapshot_frame_offset); None for a grid fixed in the lab
     offsets: dict | None = None
+    # coupled surfaces: their names (None for a run on one surface), name -> static V_ss on the
+    # snapshot grid, and pair name ("A,B") -> static off-diagonal V_ab (job energy units)
+    surfaces: list | None = None
+    surface_potentials: dict | None = None
+    couplings: dict | None = None
 
     @property
     def ndim(self) -> int:
         return len(self.axes)
+
+    @property
+    def cell(self) -> float:
+        """The volume of one grid cell of a frame (job length units to the
+        power ndim): a frame's sum times it is the probability it holds."""
+        return float(np.prod([abs(float(c[1] - c[0])) if len(c) > 1 else 1.0 for c in self.coords.values()]))
 
     def offset(self, axis: str, i: int) -> float:
         """The lab offset of the grid along ``axis`` at snapshot ``i`` (0 in the lab frame)."""
@@ -107,12 +124,23 @@ class Scene:
 
 def read_scene(path, field_name: str = "RUN.nc") -> Scene:
     """The scene of the result at ``path``; JobError when it is not a result."""
-    ds = open_result(path, require=("density", "snapshot_time"), field=field_name)
+    ds = open_result(path, require=("density", "snapshot_time"), field=field_name, surfaces=True)
     try:
-        axes = [d for d in ds["density"].dims if d != "snapshot_time"]
+        axes = [d for d in ds["density"].dims if d not in ("snapshot_time", "surface")]
         coords = {a: np.asarray(ds[a].values, float) for a in axes}
         job = _absorber_and_grid(ds)
         pot = np.asarray(ds["potential"].values, float) if "potential" in ds else None
+        surfaces = surface_potentials = couplings = None
+        if "surface" in ds["density"].dims:
+            surfaces = [str(v) for v in ds["surface"].values]
+            if pot is not None:
+                order = ds["potential"].transpose("surface", *axes).values
+                surface_potentials = {name: np.asarray(v, float) for name, v in zip(surfaces, order)}
+            pot = None
+            couplings = {}
+            if "coupling_potential" in ds and "pair" in ds["coupling_potential"].dims:
+                values = ds["coupling_potential"].transpose("pair", *axes).values
+                couplings = {str(p): np.asarray(v, float) for p, v in zip(ds["pair"].values, values)}
         dets = []
         if "detector" in ds.coords and ds.sizes.get("detector", 0):
             names = [str(v) for v in ds["detector"].values]
@@ -130,7 +158,8 @@ def read_scene(path, field_name: str = "RUN.nc") -> Scene:
         scene = Scene(Path(path), str(ds.attrs.get("title", "")), axes, coords,
                       ds.attrs.get("grid_kind") == "radial", pot, _layers(job, axes, coords), dets,
                       units, int(ds.sizes.get("snapshot_time", 0)), "psi_snapshot_real" in ds,
-                      offsets=_snapshot_offsets(ds, axes))
+                      offsets=_snapshot_offsets(ds, axes), surfaces=surfaces,
+                      surface_potentials=surface_potentials, couplings=couplings)
     finally:
         ds.close()
     if scene.n_snapshots == 0:
@@ -195,7 +224,8 @@ def column_scene(scene: Scene, axis: str) -> Scene:
     frames integrated over ``axis`` (the column density, probability per
     length^(ndim-1) in the job's units: the sum over the axis times its
     spacing), on the remaining axes, with the absorbers and detectors that
-    lie across them.  The potential is left out (V differs along a column)."""
+    lie across them.  The potential is left out (V differs along a column),
+    each surface's and the couplings too."""
     if scene.ndim < 2 or scene.radial:
         raise JobError("--column", "a column density needs a 2D or 3D Cartesian run; this one is "
                                    f"{'radial' if scene.radial else '1D'}")
@@ -209,6 +239,7 @@ def column_scene(scene: Scene, axis: str) -> Scene:
     units["density"] = f"{units['length']}-{len(rest)}"
     offsets = None if scene.offsets is None else {a: o for a, o in scene.offsets.items() if a in rest}
     return replace(scene, axes=rest, coords={a: scene.coords[a] for a in rest}, potential=None, offsets=offsets,
+                   surface_potentials=None, couplings=None,
                    layers=[layer for layer in scene.layers if layer.axis in rest],
                    detectors=[d for d in scene.detectors if d[1] in rest], units=units,
                    column=(axis, k, spacing))
@@ -217,7 +248,8 @@ def column_scene(scene: Scene, axis: str) -> Scene:
 class FrameReader:
     """Streams snapshot frames (float64) of one variable from a result file;
     ``column``: ``(name, axis index, spacing)`` sums each frame over that axis
-    (:func:`column_scene`)."""
+    (:func:`column_scene`; the index counts the grid axes, after the
+    ``surface`` axis of coupled surfaces)."""
 
     def __init__(self, path, variable: str = "density", column: tuple | None = None):
         self._column = column
@@ -235,7 +267,8 @@ class FrameReader:
             frame = np.asarray(var[i], dtype=np.float64)
             if self._column is not None:
                 _, k, spacing = self._column
-                frame = frame.sum(axis=k) * spacing
+                lead = 1 if var.dimensions[1:2] == ("surface",) else 0   # a frame (surface, *grid) of coupled surfaces
+                frame = frame.sum(axis=k + lead) * spacing
             return frame
         except (RuntimeError, OSError) as e:   # a block whose checksum or compression fails
             raise JobError("RUN.nc", f"{self._nc.filepath()!r}: variable {var.name!r} cannot be read at "

@@ -11,8 +11,8 @@ from __future__ import annotations
 import contextlib
 import re
 
-__all__ = ["PALETTE", "DENSITY_CMAP", "POTENTIAL", "ABSORBER", "DETECTOR", "figure", "line_colors",
-           "pretty_unit", "style"]
+__all__ = ["PALETTE", "DENSITY_CMAP", "POTENTIAL", "ABSORBER", "DETECTOR", "SURFACE_STYLES", "COUPLING",
+           "figure", "line_colors", "surface_style", "pretty_unit", "style"]
 
 PALETTE = {
     "blue": "#0072B2", "vermillion": "#D55E00", "green": "#009E73", "orange": "#E69F00",
@@ -24,6 +24,16 @@ POTENTIAL = "#555555"
 ABSORBER = "#BBBBBB"        # shaded layers, light enough to read the density over them
 DETECTOR = PALETTE["vermillion"]
 REAL, IMAG = PALETTE["green"], PALETTE["purple"]
+
+# One curve per surface of a coupled run (arrival densities, movie densities and potentials,
+# populations): Okabe & Ito (2008) colours with distinct line styles and widths, so the surfaces
+# stay apart in grey-scale print too, where blue and vermillion come out about equally light.
+# Entries: (colour, line style, line width in points).
+SURFACE_STYLES = (("#0072B2", "-", 1.8), ("#D55E00", "--", 1.6), ("#009E73", ":", 2.0),
+                  ("#CC79A7", "-.", 1.6), ("#000000", (0, (5, 1, 1, 1, 1, 1)), 1.4), ("#E69F00", (0, (1, 1)), 1.4))
+# The off-diagonal coupling |V_ab| beside the surfaces' potentials: dark grey, dash-dotted
+# thin, apart from every surface's style.
+COUPLING = ("#555555", (0, (3, 1, 1, 1)), 1.0)
 
 RC = {
     "font.size": 9,
@@ -68,6 +78,13 @@ def line_colors() -> list[str]:
     """Colours for a family of curves, in a fixed order."""
     order = ("blue", "vermillion", "green", "orange", "sky", "purple", "black")
     return [PALETTE[k] for k in order]
+
+
+def surface_style(i: int) -> dict:
+    """The line keywords (color, ls, lw) of the ``i``-th surface, in a fixed
+    order (:data:`SURFACE_STYLES`, repeating after six)."""
+    colour, ls, lw = SURFACE_STYLES[i % len(SURFACE_STYLES)]
+    return {"color": colour, "ls": ls, "lw": lw}
 
 
 def figure(width_px: int, height_px: int, dpi: int):

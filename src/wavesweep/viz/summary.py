@@ -14,6 +14,12 @@ against the grid (its visited region more than ``FOLLOW_SPAN`` grid
 extents, the band of the packet a sliver of the map) the grid's edges are
 drawn over the map so its path stays visible; the movie follows the grid
 instead (:mod:`.movie`).
+
+A run on coupled surfaces (:func:`surfaces_figure`) shows each surface's
+density map (one colour scale), the population of each surface with the
+probability books, each surface's potential with the couplings |V_ab| on
+their own scale, the flux per surface and detector, and the total energy's
+drift; each surface keeps one colour, line style and width throughout.
 """
 from __future__ import annotations
 
@@ -31,8 +37,8 @@ from ..io.results import open_result
 from . import style
 from .scene import FOLLOW_SPAN, FrameReader, column_scene, read_scene
 
-__all__ = ["plot_result", "plot_run", "run_figure", "plot_study", "density_map", "DensityMap",
-           "FIGURE_TYPES"]
+__all__ = ["plot_result", "plot_run", "run_figure", "surfaces_figure", "plot_study", "density_map",
+           "surface_density_maps", "DensityMap", "FIGURE_TYPES"]
 
 FIGURE_TYPES = (".png", ".pdf", ".svg")
 MAP_FLOOR = 1e-6            # the density map's log scale spans six decades below its peak
@@ -196,12 +202,17 @@ def run_figure(path, size=(1200, 900), dpi: int = 100, column: str | None = None
     """The matplotlib Figure :func:`plot_run` writes (density panel first)."""
     scene = read_scene(path)
     if column is not None:
+        if scene.surfaces is not None and scene.ndim == 3:
+            raise JobError("--column", "a 3D run on coupled surfaces is summed over its other axes in the "
+                                       "figure; see its column density with `wavesweep movie --column`")
         scene = column_scene(scene, column)
-    ds = open_result(path, require=("time", "norm"))
+    ds = open_result(path, require=("time", "norm"), surfaces=True)
     try:
         ds = ds.load()
     finally:
         ds.close()
+    if scene.surfaces is not None:
+        return surfaces_figure(scene, ds, size, dpi)
     T, L = style.pretty_unit(scene.units["time"]), style.pretty_unit(scene.units["length"])
     t = ds.time.values
     with style.style():
@@ -262,6 +273,197 @@ def run_figure(path, size=(1200, 900), dpi: int = 100, column: str | None = None
                      f"dt = {ds.attrs.get('dt', '')} {T}]", fontsize=10)
         fig.tight_layout()
         return fig
+
+
+# -- one run on coupled surfaces --------------------------------------------------------
+# The books of a coupled run beside each surface's population (style.SURFACE_STYLES): in
+# grey-scale told apart from the surfaces' lines and each other by line style and width.
+TOTAL_STYLE = {"color": "#000000", "ls": (0, (6, 2)), "lw": 1.0}
+ABSORBED_STYLE = {"color": "#777777", "ls": "-", "lw": 2.6, "alpha": 0.6}
+SUM_STYLE = {"color": "#000000", "ls": ":", "lw": 0.8}
+DETECTOR_MARKERS = ("", "o", "s", "^", "v", "D")
+
+
+def surface_density_maps(scene) -> dict:
+    """Surface name -> :class:`DensityMap` of a run on coupled surfaces: each
+    surface's density over position (the first axis) and time, integrated
+    over the other axes, read in one streaming pass over the snapshots."""
+    axis = scene.axes[0]
+    others = [scene.coords[a] for a in scene.axes[1:]]
+    cell = float(np.prod([abs(c[1] - c[0]) for c in others])) if others else 1.0
+    rows = {s: [] for s in scene.surfaces}
+    with FrameReader(scene.path, column=scene.column) as reader:
+        for i in range(len(reader)):
+            for s, f in zip(scene.surfaces, reader.frame(i)):
+                rows[s].append(f.sum(axis=tuple(range(1, f.ndim))) * cell if f.ndim > 1 else f)
+        times = reader.times
+    return {s: DensityMap(times, scene.coords[axis], np.array(r)) for s, r in rows.items()}
+
+
+def surfaces_figure(scene, ds, size=(1200, 900), dpi: int = 100):
+    """The summary figure of a run on coupled surfaces (``scene.surfaces``):
+    along the top each surface's density over position and time (log scale,
+    one colour scale for all); then each surface's population with what is
+    on the grid in all, what the absorbers took and their sum; each
+    surface's potential along the first axis with the couplings |V_ab| on a
+    right-hand scale; each surface's flux through the detectors; the drift
+    of the total energy.  Each surface keeps one colour, line style and width
+    throughout (:func:`style.surface_style`).  ``ds``: the loaded result."""
+    from matplotlib.colors import LogNorm   # lazy: matplotlib loads with the first figure
+
+    T, L = style.pretty_unit(scene.units["time"]), style.pretty_unit(scene.units["length"])
+    E = style.pretty_unit(scene.units["energy"])
+    t = ds.time.values
+    surfaces = scene.surfaces
+    axis = scene.axes[0]
+    c = scene.coords[axis]
+    half = abs(float(c[1] - c[0])) / 2 if len(c) > 1 else 0.5
+    span = (float(c.min()) - half, float(c.max()) + half)     # the grid's cells along the first axis
+    styles = {s: style.surface_style(j) for j, s in enumerate(surfaces)}
+    with style.style():
+        fig = style.figure(*size, dpi)
+        fig.set_layout_engine("constrained")   # the maps' shared colour bar takes its room from them only
+        grid = fig.add_gridspec(3, 2, height_ratios=[1.2, 1, 1])
+        maps = [fig.add_subplot(cell) for cell in grid[0, :].subgridspec(1, len(surfaces))]
+        apop, apot = fig.add_subplot(grid[1, 0]), fig.add_subplot(grid[1, 1])
+        aflux, aenergy = fig.add_subplot(grid[2, 0]), fig.add_subplot(grid[2, 1])
+
+        # -- each surface's density over position and time, one colour scale
+        dmaps = surface_density_maps(scene)
+        peak = max((float(np.max(m.density)) for m in dmaps.values() if m.density.size), default=0.0)
+        integrated = scene.axes[1:] + ([scene.column[0]] if scene.column else [])
+        mesh = None
+        for j, (amap, s) in enumerate(zip(maps, surfaces)):
+            m = dmaps[s]
+            if peak > 0 and len(m.times) > 1:
+                mesh = amap.pcolormesh(m.positions, m.times, np.maximum(m.density, peak * MAP_FLOOR * 0.1),
+                                       shading="nearest", cmap=style.DENSITY_CMAP,
+                                       norm=LogNorm(vmin=peak * MAP_FLOOR, vmax=peak), rasterized=True)
+            else:
+                amap.plot(m.positions, m.density[0] if len(m.density) else np.zeros_like(m.positions),
+                          **styles[s])
+                amap.text(0.5, 0.9, "one snapshot only", transform=amap.transAxes, ha="center")
+            _mark_layers_and_detectors(amap, scene, axis, colour="white", alpha=0.15)
+            amap.set_xlim(*span)
+            amap.set_xlabel(scene.axis_label(axis))
+            if j == 0:
+                amap.set_ylabel(f"time ({T})")
+            else:
+                amap.tick_params(labelleft=False)
+            amap.set_title(f"surface {style.plain(s)}", loc="left", color=styles[s]["color"], fontweight="bold")
+            for spine in amap.spines.values():   # the map framed in its surface's colour and line style
+                spine.set_visible(True)
+                spine.set(**styles[s])
+        if mesh is not None:
+            bar = fig.colorbar(mesh, ax=maps, fraction=0.05, pad=0.02)
+            what = "density" if not integrated else f"density integrated over {', '.join(integrated)}"
+            unit = scene.units["density"] if scene.ndim == 1 else f"{scene.units['length']}-1"
+            bar.set_label(f"{what} ({style.pretty_unit(unit)}), log scale")
+
+        # -- populations and the books
+        norm = ds.norm.transpose("time", "surface")
+        for s in surfaces:
+            apop.plot(t, norm.sel(surface=s).values, label=f"on {style.plain(s)}", **styles[s])
+        on_grid = norm.values.sum(axis=1)
+        apop.plot(t, on_grid, label="on the grid, all surfaces", **TOTAL_STYLE)
+        if "absorbed" in ds and ds.sizes.get("boundary", 0):
+            taken = ds.absorbed.transpose("time", "surface", "boundary").values.sum(axis=(1, 2))
+            apop.plot(t, taken, label="absorbed, all surfaces and faces", **ABSORBED_STYLE)
+            apop.plot(t, on_grid + taken, label="sum", **SUM_STYLE)
+        else:
+            taken = np.zeros_like(t)
+        apop.set_ylim(-0.03, 1.05)
+        apop.set_xlabel(f"time ({T})")
+        apop.set_ylabel("probability")
+        apop.set_title("population of each surface", loc="left")
+        apop.legend(frameon=False, loc="best", fontsize=7)
+
+        # -- the potentials along the first axis, the couplings on their own scale
+        _surface_potentials_panel(apot, scene, axis, styles, E)
+        apot.set_xlim(*span)
+
+        # -- flux through the detectors, per surface
+        if "flux" in ds and ds.sizes.get("detector", 0):
+            flux = ds.flux.transpose("time", "surface", "detector")
+            for k, name in enumerate(ds.detector.values):
+                marker = DETECTOR_MARKERS[k % len(DETECTOR_MARKERS)]
+                for s in surfaces:
+                    aflux.plot(t, flux.sel(surface=s).values[:, k], marker=marker or None, ms=3,
+                               markevery=max(1, len(t) // 12), label=f"{style.plain(name)} "
+                               f"({float(ds.detector_x.values[k]):.4g} {L}) on {style.plain(s)}", **styles[s])
+            aflux.axhline(0, color="black", lw=0.5)
+            aflux.legend(frameon=False, fontsize=7)
+            aflux.set_ylabel(f"probability current ({style.pretty_unit(ds.flux.attrs.get('units', ''))})")
+        else:
+            aflux.text(0.5, 0.5, "no detectors in this run", transform=aflux.transAxes,
+                       ha="center", va="center", color="#777777")
+        aflux.set_xlabel(f"time ({T})")
+        aflux.set_title("flux through the detectors on each surface", loc="left")
+
+        # -- the total energy (couplings included), as for one surface
+        if "energy" in ds:
+            e = ds.energy.values
+            clean = taken <= 1e-6
+            colors = style.line_colors()
+            aenergy.plot(t[clean], (e - e[0])[clean], color=colors[2], label="nothing absorbed yet")
+            if not clean.all():
+                aenergy.plot(t[~clean], (e - e[0])[~clean], color=colors[2], ls=":",
+                             label="after absorption began (<H> of what remains)")
+                aenergy.legend(frameon=False)
+            aenergy.axhline(0, color="black", lw=0.5)
+            aenergy.set_ylabel(f"<H>(t) - <H>(0) ({E})")
+            aenergy.set_title(f"energy drift, all surfaces (<H>(0) = {e[0]:.6g} {E})", loc="left")
+        aenergy.set_xlabel(f"time ({T})")
+        fig.suptitle(f"{style.plain(scene.title)}   [{ds.attrs.get('run_id', '')}, {ds.attrs.get('scheme', '')}, "
+                     f"dt = {ds.attrs.get('dt', '')} {T}; coupled surfaces "
+                     f"{', '.join(style.plain(s) for s in surfaces)}]", fontsize=10)
+        return fig
+
+
+def _mark_layers_and_detectors(ax, scene, axis, colour, alpha) -> None:
+    """Absorbing layers shaded and detectors marked along ``axis`` (a
+    coupled run's grid stays in the lab)."""
+    for layer in scene.layers:
+        if layer.axis == axis:
+            ax.axvspan(layer.start, layer.stop, color=colour, alpha=alpha, lw=0)
+    for name, dax, pos in scene.detectors:
+        if dax == axis:
+            ax.axvline(pos, color=style.DETECTOR, lw=0.8, ls="--")
+
+
+def _surface_potentials_panel(ax, scene, axis, styles, E) -> None:
+    """Each surface's V_ss along ``axis`` in its style (beyond 1D the lowest
+    value over the other axes: the valley floor a packet follows) and each
+    pair's |V_ab| on a right-hand scale (beyond 1D its largest value over
+    the other axes)."""
+    x = scene.coords[axis]
+    rest = tuple(range(1, scene.ndim))
+    handles = []
+    for s, v in (scene.surface_potentials or {}).items():
+        handles += ax.plot(x, v.min(axis=rest) if rest else v, label=f"V on {style.plain(s)}", **styles[s])
+    ax.set_xlabel(scene.axis_label(axis))
+    ax.set_ylabel(f"V ({E})" + (f", lowest over {', '.join(scene.axes[1:])}" if rest else ""))
+    _mark_layers_and_detectors(ax, scene, axis, colour=style.ABSORBER, alpha=0.3)
+    if scene.couplings:
+        colour, ls, lw = style.COUPLING
+        cax = ax.twinx()
+        cax.spines["right"].set_visible(True)
+        for pair, v in scene.couplings.items():
+            a, _, b = pair.partition(",")
+            values = np.abs(v).max(axis=rest) if rest else np.abs(v)
+            handles += cax.plot(x, values, color=colour, ls=ls, lw=lw,
+                                label=f"|V| coupling {style.plain(a)} and {style.plain(b)} (right scale)")
+        top = max(float(np.abs(v).max()) for v in scene.couplings.values())
+        cax.set_ylim(0, 1.1 * top if top > 0 else 1.0)
+        cax.set_ylabel(f"|V$_{{ab}}$| ({E})" + (f", largest over {', '.join(scene.axes[1:])}" if rest else ""),
+                       color=colour)
+        cax.tick_params(axis="y", colors=colour)
+    if scene.surface_potentials is None and not scene.couplings:
+        ax.text(0.5, 0.5, "potentials not drawn (a column density)", transform=ax.transAxes,
+                ha="center", va="center", color="#777777")
+    ax.set_title("potential of each surface and the coupling", loc="left")
+    if handles:
+        ax.legend(handles=handles, frameon=False, fontsize=7, loc="best")
 
 
 # -- a study ---------------------------------------------------------------------------
