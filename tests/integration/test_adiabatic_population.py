@@ -21,8 +21,10 @@ import pytest
 import xarray as xr
 
 from coupled_reference import landau_zener_probability
+from test_checkpoint import assert_same_result, stop_after
 from test_coupled_setup import D_F, LZ_JOB, P0, V12
-from wavesweep.errors import JobError, JobErrors
+from wavesweep.errors import JobError, JobErrors, RunInterrupted
+from wavesweep.io.checkpoint import CheckpointPolicy
 from wavesweep.job import job_from_dict
 from wavesweep.run import Simulation
 from wavesweep.setup import CoupledSetup, resolve_job
@@ -123,7 +125,8 @@ def test_the_local_basis_diagonalises_v_with_its_phases_fixed():
 
 def test_sum_over_states_is_the_norm_with_an_absorber(tmp_path):
     """Absorbing layers take probability from both surfaces: at every sample
-    the states' populations sum to the norm on the grid (1e-12)."""
+    the states' populations sum to the norm on the grid (1e-12); a run
+    stopped at a checkpoint and resumed writes the same file."""
     table = _with_adiabatic({**copy.deepcopy(LZ_JOB), "grid": {"x": {"min": -60.0, "max": 60.0, "points": 512}},
                              "packet": {"kind": "gaussian", "center": -10.0, "width": 4.0, "momentum": 3.0,
                                         "surface": "A"},
@@ -138,6 +141,12 @@ def test_sum_over_states_is_the_norm_with_an_absorber(tmp_path):
         assert pop.attrs["units"] == "1" and "real and positive" in pop.attrs["comment"]
         np.testing.assert_allclose(pop.sum("state"), ds["norm"].sum("surface"), rtol=0, atol=1e-12)
         assert float(ds["norm"].sum("surface")[-1]) < 0.7     # the layers took a good part
+    policy = CheckpointPolicy(tmp_path / "run.ckpt", every_seconds=1e9)
+    out = tmp_path / "resumed" / "result.nc"
+    with pytest.raises(RunInterrupted):
+        Simulation(_job(table)).run(path=out, progress=False, checkpoint=policy, should_stop=stop_after(9))
+    Simulation(_job(table)).run(path=out, progress=False, checkpoint=policy)
+    assert_same_result(path, out)
 
 
 def test_landau_zener_leaves_one_minus_p_on_the_initial_adiabatic_state(tmp_path):
