@@ -579,6 +579,37 @@ def bench_surfaces(repeats: int, backend: str = "auto"):
     return med
 
 
+def bench_adiabatic(repeats: int):
+    """record.adiabatic's cost per sample on the two surfaces of
+    SURFACES_JOB (4096 points): the populations from the cached basis (a
+    static V) and the local basis itself (what a time-dependent V adds per
+    sample), each against one two-surface Strang step; medians over rounds."""
+    import copy
+
+    from wavesweep.setup import CoupledSetup
+    from wavesweep.surfaces import adiabatic_populations, local_eigenvectors
+
+    s = CoupledSetup(job_from_dict({**copy.deepcopy(SURFACES_JOB), "record": {"every": 1.0, "adiabatic": True}}))
+    prop = s.make_propagator()
+    holder = {"psi": prop.step(prop.load(s.psi0), 2)}
+    basis, v = s.adiabatic_basis(0.0), s.hamiltonian.matrix(None)
+
+    def step():
+        holder["psi"] = prop.step(holder["psi"], 10)
+
+    inner = 50
+    ratios = {"populations": [], "basis": []}
+    for _ in range(repeats):
+        one = timed(step, inner) / 10
+        ratios["populations"].append(timed(lambda: adiabatic_populations(basis, holder["psi"], 1.0), 10 * inner) / one)
+        ratios["basis"].append(timed(lambda: local_eigenvectors(v), inner) / one)
+    med = {k: statistics.median(r) for k, r in ratios.items()}
+    print(f"record.adiabatic, two surfaces, 4096 points, medians over {repeats} rounds, per sample:")
+    print(f"  populations (cached basis, static V) / two-surface step: {med['populations']:5.2f}x")
+    print(f"  local basis (made per sample when V depends on time) / two-surface step: {med['basis']:5.2f}x")
+    return med
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--repeats", type=int, default=7)
@@ -591,7 +622,12 @@ def main():
     ap.add_argument("--drop", action="store_true", help="a cloud dropped 10 um, 1 mm, 10 cm on a falling grid only")
     ap.add_argument("--surfaces", action="store_true",
                     help="a two-surface strang step against a single-surface step and its FFT pair only")
+    ap.add_argument("--adiabatic", action="store_true",
+                    help="record.adiabatic's populations and local basis against a two-surface step only")
     args = ap.parse_args()
+    if args.adiabatic:
+        bench_adiabatic(3 if args.quick else args.repeats)
+        return
     if args.surfaces:
         bench_surfaces(3 if args.quick else args.repeats, args.backend)
         return

@@ -32,6 +32,7 @@ from .io.recorder import ResultWriter
 from .job import Job, job_from_dict, load_job
 from .kernels import density_of
 from .setup import AXIS_LONG, CoupledSetup, Setup, analysis_record, final_detector_values
+from .surfaces import PHASE_CONVENTION
 
 __all__ = ["Simulation", "RunBook", "run_job", "progress_bar"]
 
@@ -351,6 +352,9 @@ class Simulation:
             "potential": s.recorded_potential() / s.units.factor("energy"),
             # coupled surfaces: their names (the surface dimension) and each coupled pair's static V_ab
             "surfaces": list(s.surfaces) if self.coupled else None,
+            # record.adiabatic: population_adiabatic(time, state), one state per surface
+            "adiabatic": ({"states": len(s.surfaces), "comment": PHASE_CONVENTION}
+                          if self.coupled and s.adiabatic else None),
             "coupling_potential": ({f"{s.surfaces[a]},{s.surfaces[b]}": v / s.units.factor("energy")
                                     for (a, b), v in s.recorded_couplings().items()} if self.coupled else None),
             # <psi(0)|psi(t)> of the lab: a falling grid holds phi, on positions that move

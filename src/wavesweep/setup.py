@@ -43,7 +43,8 @@ from .potentials import PotentialContext, make_term
 from .propagators import scheme_class
 from .schema import to_atomic
 from .states import PACKET_SCHEMAS, PACKETS, build_state, build_surface_state, without_momentum
-from .surfaces import CoupledSplitOperator, SurfaceHamiltonian, coupled_weights
+from .surfaces import (CoupledSplitOperator, SurfaceHamiltonian, adiabatic_populations, coupled_weights,
+                       local_eigenvectors)
 
 __all__ = ["Model", "Setup", "CoupledSetup", "resolve_job", "analysis_record", "recorded_run", "rebuilt_record",
            "final_detector_values", "records_final_values", "set_kernel_threads", "AXIS_LONG"]
@@ -664,6 +665,22 @@ class CoupledSetup(Setup):
         self.scalars = recorded_scalars()   # norm, x_mean, x_std, p_mean per surface; energy in total
         self.fft_backend = fft or ev.get("fft", AUTO)
         self.threads = threads or ev.get("threads")
+        # record.adiabatic: population_adiabatic(time, state) per sample (adiabatic_basis)
+        self.adiabatic = bool(rec.get("adiabatic"))
+        self._static_basis = None
+
+    def adiabatic_basis(self, t: float) -> np.ndarray:
+        """The local eigenvectors of V(r, t) (:func:`~wavesweep.surfaces.local_eigenvectors`:
+        (S, S, *grid), ``[a, k]`` surface a's component of adiabatic state
+        k, ascending energies, phases by
+        :data:`~wavesweep.surfaces.PHASE_CONVENTION`); made once when V is
+        static, at every call (time ``t``, atomic units) otherwise."""
+        h = self.hamiltonian
+        if h.time_dependent:
+            return local_eigenvectors(h.matrix(t))[1]
+        if self._static_basis is None:
+            self._static_basis = local_eigenvectors(h.matrix(None))[1]
+        return self._static_basis
 
     def recorded_potential(self) -> np.ndarray:
         """Each surface's static diagonal V_ss (hartree), (surface, *grid)."""
@@ -702,7 +719,10 @@ class CoupledSetup(Setup):
         surfaces, in their order) ``norm``, ``x_mean``, ``x_std``,
         ``p_mean``, ``flux`` (surface, detector) and, 1D, ``detector_psi``;
         and ``energy``, <T + V> over the total norm with the couplings'
-        2 Re <psi_a|V_ab|psi_b> (the per-surface observables see no V)."""
+        2 Re <psi_a|V_ab|psi_b> (the per-surface observables see no V);
+        with ``record.adiabatic``, ``population_adiabatic`` (state,): the
+        probability on each adiabatic state at time ``t``
+        (:meth:`adiabatic_basis`, :func:`~wavesweep.surfaces.adiabatic_populations`)."""
         each = observer.measure_members(psi, np.zeros(self.grid.shape))
         out = {key: np.array([e[key] for e in each]) for key in ("norm", "x_mean", "x_std", "p_mean", "flux")}
         if "detector_psi" in each[0]:
@@ -712,4 +732,6 @@ class CoupledSetup(Setup):
         potential = float(np.real(np.sum(np.conj(psi)[:, None] * v * psi[None, :]))) * self.grid.cell_volume
         total = float(out["norm"].sum())
         out["energy"] = (kinetic + potential) / total if total > 0 else float("nan")
+        if self.adiabatic:
+            out["population_adiabatic"] = adiabatic_populations(self.adiabatic_basis(t), psi, self.grid.cell_volume)
         return out

@@ -46,7 +46,8 @@ from .kernels import view4
 from .propagators import scheme_class
 from .propagators.coefficients import STRANG
 
-__all__ = ["SurfaceHamiltonian", "local_exponential", "CoupledSplitOperator", "coupled_weights"]
+__all__ = ["SurfaceHamiltonian", "local_exponential", "CoupledSplitOperator", "coupled_weights",
+           "local_eigenvectors", "adiabatic_populations", "PHASE_CONVENTION"]
 
 # The split-operator compositions a coupled run can use: each registered
 # split-operator scheme's own weights (read from the registry, by name)
@@ -168,6 +169,94 @@ def local_exponential(v: np.ndarray, tau: float) -> np.ndarray:
     u = np.einsum("nij,nj,nkj->nik", q, np.exp(-1j * tau * lam), q)
     return np.moveaxis(u, 0, -1).reshape((s, s) + v.shape[2:])
 
+
+
+# How the local eigenvectors' phases are fixed (said in the result's attributes too).
+PHASE_CONVENTION = ("state k at each point is the k-th eigenvector of the local potential matrix V(r, t) in "
+                    "ascending order of its eigenvalue (state 0: the lowest adiabatic surface); its phase is "
+                    "fixed so that its largest-magnitude diabatic component is real and positive (a tie: the "
+                    "first surface in the job's order); populations do not depend on the phases. At an exact "
+                    "degeneracy (a crossing where the coupling is exactly zero) the states are any basis of the "
+                    "degenerate pair (two surfaces: the diabatic states, the first surface's as the lower), so "
+                    "only the degenerate states' summed population means anything there; with zero coupling "
+                    "state 0 is whichever surface is locally lower, and its population jumps as the packet "
+                    "crosses")
+
+
+def local_eigenvectors(v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The adiabatic states at every point: the eigen-decomposition of the
+    local potential matrix V (S, S, *grid), real symmetric or Hermitian.
+
+    Returns ``(energies, vectors)``: ``energies`` (S, *grid) ascending at
+    each point (state 0 the lowest adiabatic surface), ``vectors`` (S, S,
+    *grid) with ``vectors[a, k]`` the component on diabatic surface a of
+    adiabatic state k (real for a real V, complex otherwise), orthonormal
+    at every point.  Phases as :data:`PHASE_CONVENTION`: the
+    largest-magnitude component of each state real and positive (a tie: the
+    first surface).
+
+    Two surfaces in closed form by the two-level problem's mixing angle
+    (Cohen-Tannoudji, Diu & Laloe, *Quantum Mechanics*, ch. IV; from
+    memory): with vz = (V_00 - V_11) / 2 and
+    V_01 = |b| e^{i phi}, theta = atan2(|b|, vz) / 2 in [0, pi/2],
+    upper = (cos theta, e^{-i phi} sin theta), lower = (-sin theta,
+    e^{-i phi} cos theta); at an exact degeneracy (vz = b = 0) theta = pi/2,
+    so the lower state is the first surface's, as LAPACK's eigh gives for a
+    multiple of the identity.  More surfaces: numpy.linalg.eigh of each
+    point's matrix, vectorised over the points."""
+    s = v.shape[0]
+    shape = v.shape[2:]
+    if s == 1:
+        return np.real(v[0]).astype(float, copy=True)[None], np.ones((1, 1) + shape)
+    if s == 2:
+        v00, v11, b = np.real(v[0, 0]), np.real(v[1, 1]), v[0, 1]
+        v0 = 0.5 * (v00 + v11)
+        vz = 0.5 * (v00 - v11)
+        size = np.abs(b)
+        r = np.hypot(vz, size)
+        theta = 0.5 * np.arctan2(size, vz)
+        # uncoupled points exactly diabatic (cos(pi/2) is 6e-17, not 0); a degeneracy theta = pi/2
+        uncoupled = size == 0
+        c = np.where(uncoupled, np.where(vz > 0, 1.0, 0.0), np.cos(theta))
+        sn = np.where(uncoupled, np.where(vz > 0, 0.0, 1.0), np.sin(theta))
+        energies = np.stack([v0 - r, v0 + r])
+        complex_b = np.iscomplexobj(b)
+        ph = (np.where(size > 0, b / np.where(size > 0, size, 1.0), 1.0) if complex_b else
+              np.where(b < 0, -1.0, 1.0))   # e^{i phi}; real: the sign of V_01
+        out = np.empty((2, 2) + shape, complex if complex_b else float)
+        # the lower state (-s, conj(ph) c), its larger component made real positive
+        first = sn >= c
+        out[0, 0] = np.where(first, sn, -ph * sn)
+        out[1, 0] = np.where(first, -np.conj(ph) * c, c)
+        # the upper state (c, conj(ph) s)
+        first = c >= sn
+        out[0, 1] = np.where(first, c, ph * c)
+        out[1, 1] = np.where(first, np.conj(ph) * sn, sn)
+        return energies, out
+    flat = np.moveaxis(v.reshape(s, s, -1), -1, 0)           # (N, S, S)
+    lam, q = np.linalg.eigh(flat)                              # ascending; q[n, a, k]
+    big = np.take_along_axis(q, np.argmax(np.abs(q), axis=1)[:, None, :], axis=1)   # first on a tie
+    q = q * (np.conj(big) / np.abs(big))
+    return (np.moveaxis(lam, 0, -1).reshape((s,) + shape),
+            np.moveaxis(q, 0, -1).reshape((s, s) + shape))
+
+
+def adiabatic_populations(vectors: np.ndarray, psi: np.ndarray, cell_volume: float) -> np.ndarray:
+    """P_k = sum_r |sum_a U_ak(r)^* psi_a(r)|^2 dV for each adiabatic state
+    k: ``vectors`` (S, S, *grid) from :func:`local_eigenvectors`, ``psi``
+    (S, *grid), ``cell_volume`` dV.  Returns (S,); sum_k P_k is the norm
+    (U is unitary at every point), whatever the phases."""
+    s = psi.shape[0]
+    out = np.empty(s)
+    for k in range(s):
+        vec = vectors[:, k]
+        # psi_a times conj(U_ak): on a real basis the product stays real x complex (no complex copy of U)
+        phi = (vec[0] if not np.iscomplexobj(vec) else np.conj(vec[0])) * psi[0]
+        for a in range(1, s):
+            phi += (vec[a] if not np.iscomplexobj(vec) else np.conj(vec[a])) * psi[a]
+        flat = phi.reshape(-1)
+        out[k] = float(np.vdot(flat, flat).real) * cell_volume
+    return out
 
 
 # From this many elements (surfaces x points) a kick twice as long as one

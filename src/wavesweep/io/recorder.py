@@ -97,6 +97,10 @@ class ResultWriter:
         ``detector_psi_*`` and ``absorbed`` (``energy`` is the total);
         ``coupling_potential``: ``{"A,B": V_AB}`` (job units, full grid),
         each coupled pair's static off-diagonal element;
+        ``adiabatic``: None, or ``{"states": S, "comment": text}``: a
+        ``state`` dimension (coordinate 0..S-1) and ``population_adiabatic``
+        (time, state), the samples' ``population_adiabatic`` values
+        (record.adiabatic), ``comment`` its phase convention;
         ``expected``: optional ``{"samples": n, "snapshots": m}``, the run's
         totals, so that a full disk can be told how much the file still needs.
         ``record``: what analysis needs of the set-up
@@ -184,7 +188,8 @@ class ResultWriter:
         lay = self.layout
         per_detector = 3 if lay.get("detector_amplitude") else 1
         return 8 * (1 + self._n_surfaces() * (len(lay.get("scalars", SCALARS)) + per_detector * len(lay["detectors"])
-                                              + len(lay["faces"])) + 2 + len(lay.get("frame_axes") or ()))
+                                              + len(lay["faces"])) + 2 + len(lay.get("frame_axes") or ())
+                    + (lay["adiabatic"]["states"] if lay.get("adiabatic") else 0))
 
     def _remaining_bytes(self) -> int | None:
         """Bytes of data the file still needs from its shapes (before
@@ -306,6 +311,8 @@ class ResultWriter:
             v.long_name = scalar.long_name.format(axis=names[0]) + (", per surface" if each else "")
             if surfaces and scalar.name == "energy":
                 v.long_name = "<H> of all surfaces (couplings included), per unit total norm"
+        if lay.get("adiabatic"):
+            self._define_adiabatic(int(lay["adiabatic"]["states"]), str(lay["adiabatic"]["comment"]))
         f = self._var("flux", "f8", ("time", *lead, "detector"))
         f.units, f.long_name = u["flux"], "probability current through the detector"
         f.coordinates = "detector_x detector_axis"  # CF: auxiliary coordinates of `detector`
@@ -338,6 +345,19 @@ class ResultWriter:
                 v = self._var(f"psi_{part}", "f8", (*lead, *state_dims), zlib=True, complevel=4)
                 v.units = f"{u['length']}-{len(names) / 2:g}"
                 v.long_name = f"{part} part of the final wave function"
+
+    def _define_adiabatic(self, n_states: int, comment: str):
+        """``state`` (0..S-1, ascending local energy) and ``population_adiabatic``
+        (time, state); ``comment``: how the states' phases are fixed."""
+        self.ds.createDimension("state", n_states)
+        v = self._var("state", "i4", ("state",))
+        v[:] = np.arange(n_states)
+        v.long_name = "adiabatic state, in ascending order of the local potential matrix's eigenvalue"
+        v.units = "1"
+        v = self._var("population_adiabatic", "f8", ("time", "state"))
+        v.units = "1"
+        v.long_name = "probability on the adiabatic state, sum_r |sum_a U_ak(r)^* psi_a(r)|^2 dV"
+        v.comment = comment
 
     def _define_frame_offset(self, axes, u):
         """``frame_offset`` (time) in 1D, (time, axis) in 2D/3D, and
@@ -463,6 +483,8 @@ class ResultWriter:
                                                                            "autocorrelation_imag"]:
             if key in ds.variables and key in self._buf[0]:
                 ds[key][i0:i0 + n] = np.array([b[key] for b in self._buf])
+        if "population_adiabatic" in ds.variables:
+            ds["population_adiabatic"][i0:i0 + n, :] = np.array([b["population_adiabatic"] for b in self._buf])
         if len(self.layout["detectors"]):
             ds["flux"][i0:i0 + n, ...] = np.array([b["flux"] for b in self._buf])
             if "detector_psi_real" in ds.variables:

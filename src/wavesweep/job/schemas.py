@@ -106,6 +106,11 @@ RECORD = {
     "snapshot_psi": Field("bool", None, doc="store psi (real and imaginary parts) with each snapshot"),
     "column": Field("str", None, doc="2D/3D: also store column_density, the density integrated along this "
                                      "axis at each snapshot (what a camera looking along it sees)"),
+    # None (not False) by default, and an explicit false dropped: the job's text and run id as without it
+    "adiabatic": Field("bool", None, doc="coupled surfaces ([[surface]]): also store population_adiabatic(time, "
+                                         "state), the probability on each adiabatic state (the local "
+                                         "eigenvectors of the potential matrix, state 0 the lowest); default "
+                                         "false"),
 }
 DETECTOR = {
     "name": Field("str", None, doc="the detector's name (default: 'x=<position>')"),

@@ -194,6 +194,9 @@ def job_from_dict(raw: dict, overrides=(), source: Path | None = None) -> Job:
             _packet_surfaces(out.get("packet"), [t["name"] for t in out["surface"]], "packet")
     elif isinstance(out.get("packet"), dict):
         _packet_surfaces(out["packet"], None, "packet", found)
+    if isinstance(out.get("record"), dict) and out["record"].get("adiabatic") and not raw.get("surface"):
+        found.add(JobError("record.adiabatic", "adiabatic populations need coupled surfaces ([[surface]] tables); "
+                                               "remove record.adiabatic or add the surfaces"))
     if "interaction" in raw:   # absent: nothing added, the job (and its run id) as before
         with found.check():
             out["interaction"] = _interaction(raw["interaction"], u, ndim, "r" in layout)
@@ -696,6 +699,8 @@ def _record(raw, units, evolve, layout=None) -> dict:
     the defaults derived) only when ``evolve`` (valid ``dt`` and
     ``duration``, in valid units) is given."""
     t = validate_table(raw, RECORD, "record", units)
+    if t.get("adiabatic") is False:   # the default said: the same job (text and run id) as without it
+        del t["adiabatic"]
     if t.get("column") is not None:
         axes = grid_axes(layout) if isinstance(layout, dict) else []
         if "r" in axes or len(axes) < 2:

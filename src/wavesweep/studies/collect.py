@@ -35,6 +35,16 @@ A point without a result (queued, running, failed, or never planned in a
 union of submissions that does not fill the grid) is NaN everywhere, with
 ``run_id = ""`` and ``has_result = 0``.
 
+Coupled surfaces (runs with ``[[surface]]`` tables): a ``surface`` dimension
+(coordinate: the names) follows ``time`` in ``norm``, ``absorbed`` and
+``flux`` and leads ``boundary``/``detector`` in ``final_norm``,
+``final_absorbed``, ``transmitted_beyond`` and the ``arrival_*`` statistics
+(each surface's own, as ``wavesweep arrivals``/``transmission`` give them),
+as in a run's result; ``population_adiabatic`` (P, time, state) is there
+when a run recorded it (``record.adiabatic``; NaN for runs that did not).
+All runs of a study share the surface names, in order (a study that mixes
+surface sets, or one surface and several, is refused naming ``surface``).
+
 Time alignment: ``time`` is the union of all runs' sample times (times closer
 than 1e-9 of the largest time are one sample, so rounding in ``n * dt`` does not
 split a sample in two).  A run has NaN at the times it did not sample, e.g.
@@ -58,17 +68,18 @@ import numpy as np
 import xarray as xr
 
 from .._version import __version__
-from ..analysis.arrivals import arrival_times
+from ..analysis.arrivals import arrival_times, coupled_setup
 from ..analysis.recorded import run_record
-from ..analysis.transmission import transmission_totals
+from ..analysis.transmission import coupled_totals, transmission_totals
 from ..errors import JobError
 from ..io.atomic import atomic_output
-from ..io.results import WITHOUT_INDEXES, coupled_refusal
+from ..io.results import WITHOUT_INDEXES
 from ..job.dotted import get_dotted
 from ..job.schemas import ABSORBER, AXIS, EVOLVE, PARTICLE, RECORD
 from ..potentials import term_class
 from ..schema import Field
 from ..states import DEFAULT_PACKET, PACKET_SCHEMAS, PACKETS
+from ..surfaces import PHASE_CONVENTION
 from ..units import KINDS, UnitSet
 from .layout import MANIFEST_NAME, SUMMARY_NAME, StudyLayout
 
@@ -78,6 +89,7 @@ UNIT_ATTRS = ("units_length", "units_energy", "units_time", "units_mass")
 TIME_MERGE = 1e-9          # relative to the largest |time|: samples this close are one
 _BASE_KINDS = {"length", "energy", "time", "mass"}
 _RESERVED = {"time", "boundary", "detector", "detector_x", "run", "norm", "absorbed", "flux",
+             "surface", "state", "population_adiabatic",
              "final_norm", "final_absorbed", "final_time", "wall_seconds", "run_id",
              "expected_run_id", "has_result", "transmitted_beyond",
              *(f"arrival_{k}" for k in ("probability", "mean", "std", "median", "q10", "q90",
@@ -102,6 +114,10 @@ class _Result:
     arrivals: dict = field(default_factory=dict)    # detector -> arrival statistics (job units)
     beyond: dict = field(default_factory=dict)      # detector -> probability beyond it at the end
     analysis_note: str = ""
+    # coupled surfaces: their names; norm, absorbed, flux, arrivals and beyond then carry a trailing
+    # surface axis (norm (time, surface), absorbed[face] (time, surface), arrivals[det][stat] (surface,))
+    surfaces: list | None = None
+    population_adiabatic: np.ndarray | None = None   # (time, state), record.adiabatic
 
 
 @dataclass
@@ -154,8 +170,6 @@ def collect_study(root, study: str) -> dict:
     for run in runs:
         path = layout.result(study, run["run_id"])
         if path.is_file():
-            if _coupled(path):   # refused, not counted as missing: its analysis is not built yet
-                raise JobError("STUDY", coupled_refusal(path))
             try:
                 result = _read_result(path)
             except Exception as e:   # a foreign or damaged file is a missing run, not a crash
@@ -172,6 +186,7 @@ def collect_study(root, study: str) -> dict:
                            "and see `wavesweep status`")
     first = next(iter(results.values()))
     _check_one_unit_set(study, results)
+    _check_one_surface_set(study, results)
     units = UnitSet.from_table(first.job.get("units"))
 
     params = _params(manifest, runs, first, units)
@@ -197,7 +212,7 @@ def collect_study(root, study: str) -> dict:
             p.values = [_convert(p, run["params"][p.key], units) if p.key in run["params"] else None
                         for run in runs]
 
-    data = _fill(shape, where, results, times, faces, detectors)
+    data = _fill(shape, where, results, times, faces, detectors, first.surfaces)
     ds = _dataset(data, params, pdims, mode, times, faces, detectors, results, first)
     found = sum(1 for run in where.values() if run["run_id"] in results)
     missing = [run["run_id"] for run in runs if run["run_id"] not in results]
@@ -270,37 +285,33 @@ def _read_manifest(path: Path) -> dict:
     return {**m, "mode": mode, "axes": axes, "runs": runs}
 
 
-def _coupled(path: Path) -> bool:
-    """Whether the result at ``path`` is of coupled surfaces (False for one that cannot be read)."""
-    try:
-        with xr.open_dataset(path, engine="netcdf4", **WITHOUT_INDEXES) as ds:
-            return "surface" in ds.dims
-    except Exception:   # a foreign or damaged file: _read_result's notes say what it is
-        return False
-
-
 def _read_result(path: Path) -> _Result:
     # without indexes: reading the grid's coordinates to index them would grow with the grid
     with xr.open_dataset(path, engine="netcdf4", **WITHOUT_INDEXES) as ds:
         time = np.asarray(ds["time"].values, float)
         faces = [str(b) for b in ds["boundary"].values] if "boundary" in ds.coords else []
         dets = [str(d) for d in ds["detector"].values] if "detector" in ds.coords else []
+        # coupled surfaces: absorbed (time, surface, boundary), flux (time, surface, detector)
         absorbed = ds["absorbed"].values if faces else np.zeros((len(time), 0))
         flux = ds["flux"].values if dets else np.zeros((len(time), 0))
+        surfaces = [str(v) for v in ds["surface"].values] if "surface" in ds.dims else None
         det_x = ds["detector_x"].values if dets and "detector_x" in ds else [np.nan] * len(dets)
         attrs = dict(ds.attrs)
         result = _Result(
             run_id=str(attrs.get("run_id", path.stem)),
             time=time,
             norm=np.asarray(ds["norm"].values, float),
-            absorbed={f: np.asarray(absorbed[:, i], float) for i, f in enumerate(faces)},
-            flux={d: np.asarray(flux[:, i], float) for i, d in enumerate(dets)},
+            absorbed={f: np.asarray(absorbed[..., i], float) for i, f in enumerate(faces)},
+            flux={d: np.asarray(flux[..., i], float) for i, d in enumerate(dets)},
             detector_x={d: float(det_x[i]) for i, d in enumerate(dets)},
             wall_seconds=float(attrs.get("wall_seconds", np.nan)),
             unit_attrs={k: str(attrs[k]) for k in UNIT_ATTRS if k in attrs},
             var_units={"time": ds["time"].attrs.get("units", ""),
                        "flux": ds["flux"].attrs.get("units", "")},
             job=tomllib.loads(attrs["job"]) if "job" in attrs else {},
+            surfaces=surfaces,
+            population_adiabatic=(np.asarray(ds["population_adiabatic"].values, float)
+                                  if "population_adiabatic" in ds.variables else None),
         )
         if len(result.time) == 0:
             raise ValueError("it holds no samples")
@@ -311,9 +322,13 @@ def _read_result(path: Path) -> _Result:
 
 def _analyse(ds, result: _Result) -> None:
     """Arrival statistics and transmission beyond each detector, as
-    ``wavesweep arrivals`` / ``transmission`` give them for the run."""
+    ``wavesweep arrivals`` / ``transmission`` give them for the run (on
+    coupled surfaces per surface: arrays over the surfaces)."""
 
     try:
+        if result.surfaces is not None:
+            _analyse_surfaces(ds, result)
+            return
         # the figures only (check judges the set-ups): statistics without curves, from the
         # variables without a grid dimension and the record (no array of the grid's size is read
         # where the run recorded its detectors' values, so the cost does not grow with the grid)
@@ -326,6 +341,20 @@ def _analyse(ds, result: _Result) -> None:
     result.beyond = {name: d["beyond"] for name, d in totals["detectors"].items()}
 
 
+def _analyse_surfaces(ds, result: _Result) -> None:
+    """:func:`_analyse` on coupled surfaces: each statistic and what lies
+    beyond each detector as an array over the surfaces (the arrivals and
+    transmission of coupled surfaces; their set-up is rebuilt from the job
+    text the result stores, and the final psi is read)."""
+    names = result.surfaces
+    dists = arrival_times(ds, warnings=False, curves=False, verify="used", surfaces=True)
+    totals = coupled_totals(ds, coupled_setup(ds))
+    result.arrivals = {det: {k: np.array([per[s].stats[k] for s in names], float) for k in ARRIVAL_STATS}
+                       for det, per in dists.items()}
+    result.beyond = {det: np.array([d["surfaces"][s]["beyond"] for s in names], float)
+                     for det, d in totals["detectors"].items()}
+
+
 def _check_one_unit_set(study, results) -> None:
     sets = {}
     for r in results.values():
@@ -335,6 +364,19 @@ def _check_one_unit_set(study, results) -> None:
                           for key, rid in sets.items())
         raise JobError("units", f"the runs of study {study!r} use different unit sets ({shown}); "
                                 "their numbers cannot share one dataset")
+
+
+def _check_one_surface_set(study, results) -> None:
+    """The runs of a study share one set of surfaces (names, in order), or all have one surface."""
+    sets = {}
+    for r in results.values():
+        sets.setdefault(tuple(r.surfaces) if r.surfaces is not None else None, r.run_id)
+    if len(sets) > 1:
+        shown = "; ".join(f"{rid}: " + (", ".join(key) if key is not None else "one surface")
+                          for key, rid in sets.items())
+        raise JobError("surface", f"the runs of study {study!r} have different surfaces ({shown}); their "
+                                  "per-surface values cannot share one surface dimension: give every run "
+                                  "the same [[surface]] names, or collect them as separate studies")
 
 
 # -- the swept parameters -----------------------------------------------------------------
@@ -507,23 +549,30 @@ def _time_index(union: np.ndarray, t: np.ndarray) -> np.ndarray:
     return np.where(left, i - 1, i)
 
 
-def _fill(shape, where, results, times, faces, detectors) -> dict:
+def _fill(shape, where, results, times, faces, detectors, surfaces=None) -> dict:
+    """The study's arrays; on coupled surfaces (``surfaces`` their names) the
+    per-surface values carry a surface axis after time (before boundary and
+    detector, as in a run's result), and ``population_adiabatic`` (time,
+    state) is there when a run recorded it."""
     nt, nb, nd = len(times), len(faces), len(detectors)
+    per = (len(surfaces),) if surfaces else ()
     nan = np.nan
     d = {
-        "norm": np.full(shape + (nt,), nan),
-        "absorbed": np.full(shape + (nt, nb), nan),
-        "flux": np.full(shape + (nt, nd), nan),
-        "final_norm": np.full(shape, nan),
-        "final_absorbed": np.full(shape + (nb,), nan),
+        "norm": np.full(shape + (nt,) + per, nan),
+        "absorbed": np.full(shape + (nt,) + per + (nb,), nan),
+        "flux": np.full(shape + (nt,) + per + (nd,), nan),
+        "final_norm": np.full(shape + per, nan),
+        "final_absorbed": np.full(shape + per + (nb,), nan),
         "final_time": np.full(shape, nan),
         "wall_seconds": np.full(shape, nan),
         "run_id": np.full(shape, "", dtype=object),
         "expected_run_id": np.full(shape, "", dtype=object),
         "has_result": np.zeros(shape, np.int8),
-        "transmitted_beyond": np.full(shape + (nd,), nan),
-        **{f"arrival_{k}": np.full(shape + (nd,), nan) for k in ARRIVAL_STATS},
+        "transmitted_beyond": np.full(shape + per + (nd,), nan),
+        **{f"arrival_{k}": np.full(shape + per + (nd,), nan) for k in ARRIVAL_STATS},
     }
+    if surfaces and any(r.population_adiabatic is not None for r in results.values()):
+        d["population_adiabatic"] = np.full(shape + (nt, len(surfaces)), nan)
     for cell, run in where.items():
         d["expected_run_id"][cell] = run["run_id"]
         r = results.get(run["run_id"])
@@ -533,15 +582,17 @@ def _fill(shape, where, results, times, faces, detectors) -> dict:
         d["norm"][cell][it] = r.norm
         for j, face in enumerate(faces):
             if face in r.absorbed:
-                d["absorbed"][cell][it, j] = r.absorbed[face]
-                d["final_absorbed"][cell][j] = r.absorbed[face][-1]
+                d["absorbed"][cell][it, ..., j] = r.absorbed[face]
+                d["final_absorbed"][cell][..., j] = r.absorbed[face][-1]
         for j, det in enumerate(detectors):
             if det in r.flux:
-                d["flux"][cell][it, j] = r.flux[det]
+                d["flux"][cell][it, ..., j] = r.flux[det]
             if det in r.arrivals:
                 for k in ARRIVAL_STATS:
-                    d[f"arrival_{k}"][cell][j] = r.arrivals[det][k]
-                d["transmitted_beyond"][cell][j] = r.beyond.get(det, nan)
+                    d[f"arrival_{k}"][cell][..., j] = r.arrivals[det][k]
+                d["transmitted_beyond"][cell][..., j] = r.beyond.get(det, nan)
+        if r.population_adiabatic is not None and "population_adiabatic" in d:
+            d["population_adiabatic"][cell][it] = r.population_adiabatic
         d["final_norm"][cell] = r.norm[-1]
         d["final_time"][cell] = r.time[-1]
         d["wall_seconds"][cell] = r.wall_seconds
@@ -575,6 +626,8 @@ _META = {
                                      "the run's constant uniform force)"),
     "arrival_still_to_come": ("1", "probability before the detector at the end, moving towards it "
                                    "(what may still arrive)"),
+    "population_adiabatic": ("1", "probability on the adiabatic state (local eigenvectors of the potential "
+                                  "matrix, ascending energy)"),
 }
 ARRIVAL_STATS = ("probability", "mean", "std", "median", "q10", "q90", "most_probable", "backflow",
                  "classical_mean", "still_to_come")
@@ -584,11 +637,13 @@ def _dataset(data, params, pdims, mode, times, faces, detectors, results, first)
     units = UnitSet.from_table(first.job.get("units"))
     tunit = first.var_units["time"] or first.unit_attrs.get("units_time", "")
     funit = first.var_units["flux"] or f"{tunit}-1"
+    per = ["surface"] if first.surfaces else []   # coupled surfaces: after time, as in a run's result
     dims = {
-        "norm": pdims + ["time"], "absorbed": pdims + ["time", "boundary"],
-        "flux": pdims + ["time", "detector"], "final_absorbed": pdims + ["boundary"],
-        "transmitted_beyond": pdims + ["detector"],
-        **{f"arrival_{k}": pdims + ["detector"] for k in ARRIVAL_STATS},
+        "norm": pdims + ["time"] + per, "absorbed": pdims + ["time"] + per + ["boundary"],
+        "flux": pdims + ["time"] + per + ["detector"], "final_norm": pdims + per,
+        "final_absorbed": pdims + per + ["boundary"], "transmitted_beyond": pdims + per + ["detector"],
+        "population_adiabatic": pdims + ["time", "state"],
+        **{f"arrival_{k}": pdims + per + ["detector"] for k in ARRIVAL_STATS},
     }
     ds = xr.Dataset()
     for name, values in data.items():
@@ -596,9 +651,14 @@ def _dataset(data, params, pdims, mode, times, faces, detectors, results, first)
         unit = {"flux": funit, "final_time": tunit}.get(name, unit if unit is not None else tunit)
         if values.dtype == object:
             values = values.astype(str)
+        if per and name in ("norm", "absorbed", "flux", "final_norm", "final_absorbed", "transmitted_beyond") \
+                or per and name.startswith("arrival_"):
+            long += ", per surface"
         attrs = {"units": unit, "long_name": long}
         if name == "has_result":
             attrs.update(flag_values=np.array([0, 1], np.int8), flag_meanings="missing found")
+        if name == "population_adiabatic":
+            attrs["comment"] = PHASE_CONVENTION
         ds[name] = xr.DataArray(values, dims=dims.get(name, pdims), attrs=attrs)
     coords = {
         "time": ("time", times, {"units": tunit, "long_name":
@@ -608,6 +668,13 @@ def _dataset(data, params, pdims, mode, times, faces, detectors, results, first)
         "detector": ("detector", np.array(detectors, dtype=str),
                      {"units": "1", "long_name": "detector name"}),
     }
+    if first.surfaces:
+        coords["surface"] = ("surface", np.array(first.surfaces, dtype=str),
+                             {"units": "1", "long_name": "potential-energy surface (electronic state)"})
+    if "population_adiabatic" in data:
+        coords["state"] = ("state", np.arange(len(first.surfaces)),
+                           {"units": "1", "long_name": "adiabatic state, in ascending order of the local "
+                                                       "potential matrix's eigenvalue"})
     positions = {}
     for r in results.values():
         for det, x in r.detector_x.items():
