@@ -1773,8 +1773,9 @@ def _moved_moments(mom: Moments, gain: float, mass: float) -> Moments:
     return Moments(mom.x0.copy(), mom.sigma_x.copy(), p0, sp)
 
 
-def _reachable_surfaces(setup, start: set) -> set:
-    """The surfaces the couplings connect to those in ``start``."""
+def reachable_surfaces(setup, start: set) -> set:
+    """The surfaces (indices) the couplings of a coupled set-up connect, through
+    any chain of pairs, to those in ``start`` (``start`` included)."""
     pairs = [pair for pair, terms in setup.coupling_terms.items() if terms]
     seen, grew = set(start), True
     while grew:
@@ -1806,7 +1807,7 @@ def coupled_dynamics(setup) -> CoupledDynamics:
     parts = _surface_ensembles(setup)
     occupied = {s for s, _ in parts}
     curves = [(setup.surfaces[s], v[s, s], setup.surface_terms[s], True, s in occupied)
-              for s in sorted(_reachable_surfaces(setup, occupied))]
+              for s in sorted(reachable_surfaces(setup, occupied))]
     if any(terms for terms in setup.coupling_terms.values()) and n > 1:
         eig = np.linalg.eigvalsh(np.moveaxis(v.reshape(n, n, -1), -1, 0))   # (points, S), ascending
         curves += [(str(k + 1), eig[:, k].reshape(setup.grid.shape), [], False, False) for k in range(n)]
@@ -2014,12 +2015,13 @@ def run_warnings(setup) -> list[str]:
 
     Judged once per physics: ``preflight`` (run, submit) stores them with
     :func:`remember_run_warnings` and a worker's run reads them back instead
-    of integrating the trajectories again (0.6 s of a 20-step run)."""
+    of integrating the trajectories again (0.6 s of a 20-step run).  A
+    set-up on coupled surfaces: :func:`coupled_findings`."""
     key = _warnings_key(setup)
     hit = _read_warnings(key)
     if hit is not None:
         return hit
-    lines = warning_lines(assess(setup))
+    lines = warning_lines(coupled_findings(setup) if getattr(setup, "coupled", False) else assess(setup))
     _write_warnings(key, lines)
     return lines
 
