@@ -1672,7 +1672,11 @@ class SurfaceView:
     sqrt(p^2 + 2 m dV), 0 where the curve is closed there; a packet whose
     6-sigma range holds p = 0 stays centred at rest.  In 2D/3D the whole of
     dV goes to each axis (an upper bound).  Trajectories on the curve then
-    carry the energies the packet can have on it wherever it goes."""
+    carry the energies the packet can have on it wherever it goes.  Where
+    a coupling depends on time (a field driving the transition), the
+    transition is vertical (the Franck-Condon principle: position and
+    momentum kept, the field supplying the energy): the momenta are then
+    kept at least (dV < 0 counts as 0)."""
 
     def __init__(self, setup, name: str, potential, terms, ensemble, diabatic: bool, holds_packet: bool):
         self.name = name
@@ -1812,13 +1816,16 @@ def coupled_dynamics(setup) -> CoupledDynamics:
         eig = np.linalg.eigvalsh(np.moveaxis(v.reshape(n, n, -1), -1, 0))   # (points, S), ascending
         curves += [(str(k + 1), eig[:, k].reshape(setup.grid.shape), [], False, False) for k in range(n)]
     views, each = [], []
+    # a field that couples the surfaces moves the packet vertically (Franck-Condon: x and p kept, the
+    # photon's energy supplied): its momenta at least are kept on every curve
+    driven = any(term.time_dependent for terms in setup.coupling_terms.values() for term in terms)
     for name, potential, terms, diabatic, holds in curves:
         ensemble = []
         for s, mom in parts:
             at = mom.x0[None, :]
             gain = float(interpolate_on_grid(v[s, s], setup.grid, at)[0]
                          - interpolate_on_grid(potential, setup.grid, at)[0])
-            ensemble.append(_moved_moments(mom, gain, setup.mass))
+            ensemble.append(_moved_moments(mom, max(gain, 0.0) if driven else gain, setup.mass))
         view = SurfaceView(setup, name, potential, terms, ensemble, diabatic, holds)
         views.append(view)
         each.append(dynamics(view))
@@ -1867,16 +1874,19 @@ def coupled_findings(setup) -> list[Finding]:
     dt, h = setup.dt, setup.hamiltonian
     cd = coupled_dynamics(setup)
     out = []
-    for i in range(setup.grid.ndim):   # momentum: per axis, the curve that reaches farthest
-        k = max(range(len(cd.views)), key=lambda c: cd.each[c].over_run[6][i])
-        f = _driven_by(momentum_findings(cd.views[k], cd.each[k])[i], cd.views[k])
-        if not cd.views[k].holds_packet and f.level != "ok":
-            # how much of the packet a hop puts on this curve the classical criteria cannot tell: the
-            # shares above are of the ensemble moved onto it; a warning, not a refusal
-            f.level = "warn"
-            f.message += ("; shares are of the packet as if all of it moved onto this curve (a hop): how much "
-                          "does is not judged here")
-        out.append(f)
+    rank = {"ok": 0, "warn": 1, "error": 2}
+    for i in range(setup.grid.ndim):   # momentum: per axis, the worst curve (then the farthest-reaching)
+        found = []
+        for view, dyn in zip(cd.views, cd.each):
+            f = _driven_by(momentum_findings(view, dyn)[i], view)
+            if not view.holds_packet and f.level == "error":
+                # how much of the packet a hop puts on this curve the classical criteria cannot tell: the
+                # shares are of the ensemble moved onto it; a warning, not a refusal
+                f.level = "warn"
+                f.message += ("; shares are of the packet as if all of it moved onto this curve (a hop): how "
+                              "much does is not judged here")
+            found.append(f)
+        out.append(max(found, key=lambda f: (rank[f.level], f.values["run_reach"] / f.values["k_max"])))
     start = copy.copy(cd.views[0])
     start.ensemble = None   # the margins: where the packet starts, measured if it is not Gaussian parts
     out += margin_findings(start)

@@ -33,7 +33,11 @@ channel's potential V_f beyond the detector; a run's T(E) uses V_f =
 V(x_d)).  On coupled surfaces (``surface_transmission``) it is applied per
 final surface s, v' the speed on s beyond the detector, k_s(E) =
 sqrt(2 m (E - V_s)) / hbar: T_s(E) = 2 pi hbar^2 v v_s |psi~_s(E)|^2 /
-|phi(k)|^2, zero where s is closed (derived there).
+|phi(k)|^2, zero where s is closed (derived there).  Each T_s(E) comes
+with the uncertainty below, by the same code (``still_to_come``): E is the
+total energy, which a hop conserves, so what may still arrive on s is the
+final state's probability per energy on every surface the couplings
+connect to s, each part read with its own V_rr.
 
 A run that ends before the whole transmitted amplitude has passed the
 detector still gives T(E), with an uncertainty per energy.  The integral
