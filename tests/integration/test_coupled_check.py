@@ -154,3 +154,50 @@ def test_each_finding_names_the_curve_that_drives_it(job_table):
             assert "surface" in f.values, f.topic
         if f.topic == "absorber":
             assert {"surface_low", "surface_high"} <= set(f.values)
+
+
+def test_the_packets_own_surface_outrunning_the_grid_is_an_error():
+    """The well on the surface the packet starts on: its own momentum is
+    judged as on one surface (an error), not hidden behind a hop curve."""
+    table = copy.deepcopy(WELL_JOB)
+    table["packet"]["surface"] = "lower"
+    table["packet"]["momentum"] = 3.2       # the same kinetic energy above the lower surface's floor
+    report = check_job(resolve_job(job_from_dict(table)), trial_seconds=0)
+    (momentum,) = _topics(report)["momentum"]
+    assert momentum.level == "error" and momentum.values["surface"] in ("lower", "1")
+    assert momentum.field == "grid.x.points"
+
+
+def test_a_detector_no_curve_reaches_is_said_and_a_driven_coupling_is_judged():
+    table = {**copy.deepcopy(LZ_JOB), "detector": [{"name": "far behind", "x": -185.0},
+                                                   {"name": "after", "x": 60.0}]}
+    table["packet"]["center"] = -100.0
+    table["evolve"] = {**table["evolve"], "duration": 30.0}     # nothing comes round the periodic grid
+    table["record"] = {"every": 0.3, "snapshot_every": 30.0}
+    # a coupling driven at 0.5 hartree: the transitions are vertical, the momenta kept on every curve
+    table["coupling"][0]["potential"] = [{"kind": "expression", "expression": f"{0.2} * cos(0.5 * t) + 0 * x"}]
+    report = check_job(resolve_job(job_from_dict(table)), trial_seconds=0)
+    (behind,) = [f for f in _topics(report)["detector"] if f.values.get("detector") == "far behind"]
+    assert behind.level == "warn" and behind.field == "detector.0.x" and "tunnels" in behind.message
+    assert not report.errors
+    setup = CoupledSetup(resolve_job(job_from_dict(table)))
+    for view in coupled_dynamics(setup).views:   # |p0| - 6 sigma_p = 4.7 kept (3.6 for B by energy alone)
+        assert min(abs(m.p0[0]) - 6 * m.sigma_p[0] for m in view.ensemble) >= 4.7 - 1e-9, view.label
+
+
+def test_a_measured_packet_moves_onto_the_other_curves():
+    """An eigenstate (not Gaussian) on the upper surface: its measured
+    moments moved onto the lower surface gain V_upper(x0) - V_lower(x0)
+    of kinetic energy (closed form at the centre)."""
+    table = copy.deepcopy(LZ_JOB)
+    table["grid"]["x"] = {"min": -60.0, "max": 60.0, "points": 512}
+    table["packet"] = {"kind": "eigenstate", "n": 0, "surface": "A",
+                       "potential": [{"kind": "expression", "expression": "0.5 * 0.04 * (x - 20)**2"}]}
+    table["evolve"] = {"dt": 0.02, "duration": 10.0, "scheme": "strang"}
+    table["record"] = {"every": 1.0, "snapshot_every": 10.0}
+    setup = CoupledSetup(resolve_job(job_from_dict(table)))
+    views = {view.label: view for view in coupled_dynamics(setup).views}
+    (own,), (moved,) = views["surface A"].ensemble, views["surface B"].ensemble
+    assert own.x0[0] == pytest.approx(20.0, abs=1e-6) and own.p0[0] == 0.0
+    gain = 0.05 * 20.0                       # V_A(20) - V_B(20) = (F_A - F_B) x0, 1 hartree
+    assert 6 * moved.sigma_p[0] == pytest.approx(np.hypot(6 * own.sigma_p[0], np.sqrt(2 * gain)), rel=1e-9)
