@@ -24,7 +24,8 @@ import numpy as np
 
 from .absorbers.layers import Absorber, face_names
 from .absorbers.tuning import cached_cap_strength
-from .adequacy import coupled_dynamics, dynamics, memory_error, memory_estimate, physical_memory_error, representability, run_warnings
+from .adequacy import (coupled_dynamics, dynamics, memory_error, memory_estimate, physical_memory_error,
+                       representability, run_warnings)
 from .eigen import BAND_CHUNK, BAND_STEPS, DEFAULT_MIN_WEIGHT, DENSE_MAX_POINTS, band_window, lanczos_recurrence
 from .errors import JobError
 from .fft import AUTO, PLAIN, make_transform
