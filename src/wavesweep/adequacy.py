@@ -8,6 +8,7 @@ scripts); a :class:`Report` is the list of them for one job or study.
 """
 from __future__ import annotations
 
+import copy
 import hashlib
 import json
 import math
@@ -149,6 +150,9 @@ def packet_moments(setup) -> list[Moments]:
     <x>, std x from |psi0|^2 and <p>, std p from the momentum marginal."""
 
     grid = setup.grid
+    ensemble = getattr(setup, "ensemble", None)
+    if ensemble is not None:   # a coupled surface's view (:class:`SurfaceView`): its energy-shifted ensemble
+        return list(ensemble)
     if all_gaussian(setup.packet):
         out = []
         for part in gaussian_parts(setup.packet):
@@ -599,12 +603,19 @@ def _initial_reach(setup) -> dict:
     """{6: [...], 3: [...]}: |p0| + n sigma_p per axis for Gaussian parts
     (largest over parts), else quantiles of the measured momentum
     distribution of psi0 (:func:`measured_momentum_reach`)."""
-    if all_gaussian(setup.packet):
+    if _moments_closed(setup):
         moms = packet_moments(setup)
         return {n: [max(abs(m.p0[i]) + n * m.sigma_p[i] for m in moms) for i in range(setup.grid.ndim)]
                 for n in (6, 3)}
     return {6: measured_momentum_reach(setup.psi0, setup.grid, TAIL_6),
             3: measured_momentum_reach(setup.psi0, setup.grid, TAIL_3)}
+
+
+def _moments_closed(setup) -> bool:
+    """Whether the ensemble's moments stand for the state (Gaussian parts,
+    or a coupled surface's view, :class:`SurfaceView`), rather than the
+    measured momenta of psi0."""
+    return getattr(setup, "ensemble", None) is not None or all_gaussian(setup.packet)
 
 
 def _nonseparable(v) -> bool:
@@ -637,7 +648,8 @@ def _dynamics_key(setup) -> str | None:
     table.pop("title", None)
     table.pop("sweep", None)
     try:
-        return json.dumps(table, sort_keys=True, default=str) + repr(setup.units.as_table())
+        return (json.dumps(table, sort_keys=True, default=str) + repr(setup.units.as_table())
+                + getattr(setup, "curve_key", ""))   # a coupled surface's view: one per curve
     except (TypeError, ValueError):
         return None
 
@@ -670,7 +682,7 @@ def dynamics(setup) -> Dynamics:
         over[6] = [max(a, p_all) for a in over[6]]
     # bound: the packet's energy below V at every edge of the grid (a field frees electrons)
     edges = [float(np.take(v, [0, -1], axis=i).min()) for i in range(grid.ndim)]
-    if all_gaussian(setup.packet):
+    if _moments_closed(setup):
         e_mean = max(sum(mo.p0[i] ** 2 + mo.sigma_p[i] ** 2 for i in range(grid.ndim)) for mo in moms) / (2 * m)
     else:   # <T> of the actual state from its momentum marginals
         e_mean = 0.0
@@ -1639,51 +1651,351 @@ def assess(setup) -> list[Finding]:
     return out
 
 
+# ---------------------------------------------------------------------------
+# Coupled surfaces: the single-surface criteria per potential curve
+# ---------------------------------------------------------------------------
+class SurfaceView:
+    """One potential curve of a coupled set-up (a
+    :class:`~wavesweep.setup.CoupledSetup`) as the single-surface criteria
+    read a set-up: a diabatic surface V_ss (its own terms, time dependence
+    included) or an adiabatic curve (the k-th eigenvalue of the static
+    potential matrix at each point), the packet's phase-space ensemble
+    moved onto it.
+
+    A hop between surfaces conserves the total energy: a part of the packet
+    with centre x0 and momentum p on its own surface ``inc`` has, on the
+    curve c, kinetic energy p^2/2m + V_inc(x0) - V_c(x0) there.  The
+    ensemble (``ensemble``, one :class:`Moments` per Gaussian part, or the
+    measured moments of each surface's share of psi0) keeps its positions
+    and widths and takes momenta with that energy: per axis the fast end
+    |p0| + 6 sigma_p (and the slow one |p0| - 6 sigma_p) go to
+    sqrt(p^2 + 2 m dV), 0 where the curve is closed there; a packet whose
+    6-sigma range holds p = 0 stays centred at rest.  In 2D/3D the whole of
+    dV goes to each axis (an upper bound).  Trajectories on the curve then
+    carry the energies the packet can have on it wherever it goes.  Where
+    a coupling depends on time (a field driving the transition), the
+    transition is vertical (the Franck-Condon principle: position and
+    momentum kept, the field supplying the energy): the momenta are then
+    kept at least (dV < 0 counts as 0)."""
+
+    def __init__(self, setup, name: str, potential, terms, ensemble, diabatic: bool, holds_packet: bool):
+        self.name = name
+        self.diabatic = diabatic
+        self.holds_packet = holds_packet   # a diabatic surface the packet starts on (else reached by a hop)
+        self.curve_key = f"|curve {name}"
+        self.grid, self.mass, self.units = setup.grid, setup.mass, setup.units
+        self.dt, self.duration, self.total_steps = setup.dt, setup.duration, setup.total_steps
+        self.sample_steps = setup.sample_steps
+        self.scheme, self.detectors, self.packet = setup.scheme, setup.detectors, setup.packet
+        self.terms = self.lab_terms = list(terms)
+        self.frame, self.interaction, self.contact = None, None, 0.0
+        self.ensemble = ensemble
+        self.psi0 = np.sqrt(np.sum(np.abs(setup.psi0) ** 2, axis=0))   # where the packet is, on any surface
+        self._potential = np.asarray(potential, float)
+        self._setup = setup
+
+    @property
+    def absorber(self):
+        return self._setup.absorber
+
+    @property
+    def job(self):   # the set-up's, its CAP tuned once the set-up is built
+        return self._setup.job
+
+    @property
+    def label(self) -> str:
+        return f"surface {self.name}" if self.diabatic else f"adiabatic curve {self.name}"
+
+    def hamiltonian_static_potential(self) -> np.ndarray:
+        return self._potential
+
+
+@dataclass
+class CoupledDynamics:
+    """:class:`Dynamics` of each curve of a coupled set-up (``views``,
+    ``each``, in the same order) and what they make together: ``windows``
+    face -> (e_lo, e_hi), the union of the curves' windows that reach the
+    face (of all of them where none does), ``drivers`` face -> (the curve
+    setting e_lo, the one setting e_hi), ``unreached`` the faces no curve
+    reaches."""
+
+    views: list
+    each: list
+    windows: dict
+    drivers: dict
+    unreached: set
+
+    def merged(self) -> Dynamics:
+        """One :class:`Dynamics` for the criteria judged on the union
+        (absorber windows), its other fields the first curve's."""
+        first = self.each[0]
+        return Dynamics(first.initial, first.over_run, first.reach, first.freed, self.windows,
+                        first.nonseparable, first.bound, set(self.unreached))
+
+
+def _surface_ensembles(setup) -> list:
+    """(incident surface index, :class:`Moments`) of each part of a coupled
+    packet: its Gaussian parts with the surface each names, or the measured
+    moments of each surface's share of psi0."""
+    names, packet = list(setup.surfaces), setup.packet
+    if all_gaussian(packet):
+        members = [packet] if packet.get("surface") is not None else packet["packets"]
+        out = []
+        for member in members:
+            s = names.index(member["surface"])
+            one = _PlainPacket(setup.grid, setup.mass, {k: v for k, v in member.items() if k != "surface"}, None)
+            out += [(s, m) for m in packet_moments(one)]
+        return out
+    out = []
+    for s, psi in enumerate(setup.psi0):
+        if float(np.sum(np.abs(psi) ** 2)) * setup.grid.cell_volume > 1e-12:
+            out += [(s, m) for m in packet_moments(_PlainPacket(setup.grid, setup.mass, packet, psi))]
+    return out
+
+
+@dataclass
+class _PlainPacket:
+    """What :func:`packet_moments` reads of a set-up: grid, mass, packet, psi0."""
+    grid: object
+    mass: float
+    packet: dict
+    psi0: object
+
+
+def _moved_moments(mom: Moments, gain: float, mass: float) -> Moments:
+    """``mom`` with its momenta given ``gain`` (hartree) more kinetic energy
+    per axis (see :class:`SurfaceView`)."""
+    p0, sp = np.empty_like(mom.p0), np.empty_like(mom.sigma_p)
+    for i in range(mom.p0.size):
+        a, w = abs(float(mom.p0[i])), float(mom.sigma_p[i])
+        hi = math.sqrt(max((a + 6 * w) ** 2 + 2 * mass * gain, 0.0))
+        if a <= 6 * w:   # the packet holds p = 0 along this axis: it goes either way
+            p0[i], sp[i] = 0.0, hi / 6.0
+        else:
+            lo = math.sqrt(max((a - 6 * w) ** 2 + 2 * mass * gain, 0.0))
+            p0[i], sp[i] = math.copysign(0.5 * (hi + lo), float(mom.p0[i])), (hi - lo) / 12.0
+    return Moments(mom.x0.copy(), mom.sigma_x.copy(), p0, sp)
+
+
+def reachable_surfaces(setup, start: set) -> set:
+    """The surfaces (indices) the couplings of a coupled set-up connect, through
+    any chain of pairs, to those in ``start`` (``start`` included)."""
+    pairs = [pair for pair, terms in setup.coupling_terms.items() if terms]
+    seen, grew = set(start), True
+    while grew:
+        grew = False
+        for a, b in pairs:
+            if (a in seen) != (b in seen):
+                seen |= {a, b}
+                grew = True
+    return seen
+
+
+_COUPLED_OF: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
+
+
+def coupled_dynamics(setup) -> CoupledDynamics:
+    """The classical criteria's dynamics on every curve a coupled packet can
+    be on (kept per set-up): each diabatic surface the couplings connect to
+    the packet's and, where surfaces are coupled, each adiabatic curve of
+    the static potential matrix (a time-dependent matrix: its static part;
+    the diabatic surfaces carry their time dependence).  Each curve's
+    :class:`Dynamics` is the single surface's (:func:`dynamics` on a
+    :class:`SurfaceView`)."""
+    cached = _COUPLED_OF.get(setup)
+    if cached is not None:
+        return cached
+    h = setup.surface_hamiltonian
+    v = h.matrix(None)
+    n = len(setup.surfaces)
+    parts = _surface_ensembles(setup)
+    occupied = {s for s, _ in parts}
+    curves = [(setup.surfaces[s], v[s, s], setup.surface_terms[s], True, s in occupied)
+              for s in sorted(reachable_surfaces(setup, occupied))]
+    if any(terms for terms in setup.coupling_terms.values()) and n > 1:
+        eig = np.linalg.eigvalsh(np.moveaxis(v.reshape(n, n, -1), -1, 0))   # (points, S), ascending
+        curves += [(str(k + 1), eig[:, k].reshape(setup.grid.shape), [], False, False) for k in range(n)]
+    views, each = [], []
+    # a field that couples the surfaces moves the packet vertically (Franck-Condon: x and p kept, the
+    # photon's energy supplied): its momenta at least are kept on every curve
+    driven = any(term.time_dependent for terms in setup.coupling_terms.values() for term in terms)
+    for name, potential, terms, diabatic, holds in curves:
+        ensemble = []
+        for s, mom in parts:
+            at = mom.x0[None, :]
+            gain = float(interpolate_on_grid(v[s, s], setup.grid, at)[0]
+                         - interpolate_on_grid(potential, setup.grid, at)[0])
+            ensemble.append(_moved_moments(mom, max(gain, 0.0) if driven else gain, setup.mass))
+        view = SurfaceView(setup, name, potential, terms, ensemble, diabatic, holds)
+        views.append(view)
+        each.append(dynamics(view))
+    windows, drivers, unreached = {}, {}, set()
+    for face in set().union(*(d.windows for d in each)):
+        having = [(view, d) for view, d in zip(views, each) if face in d.windows]
+        reached = [(view, d) for view, d in having if face not in d.unreached]
+        if not reached:
+            unreached.add(face)
+        use = reached or having
+        lo_view, lo_dyn = min(use, key=lambda vd: vd[1].windows[face][0])
+        hi_view, hi_dyn = max(use, key=lambda vd: vd[1].windows[face][1])
+        windows[face] = (lo_dyn.windows[face][0], hi_dyn.windows[face][1])
+        drivers[face] = (lo_view.label, hi_view.label)
+    out = CoupledDynamics(views, each, windows, drivers, unreached)
+    _COUPLED_OF[setup] = out
+    return out
+
+
+def _driven_by(finding: Finding, view) -> Finding:
+    """``finding`` (a single-surface criterion judged on ``view``) saying which curve drives it."""
+    finding.message = f"{view.label}: {finding.message}"
+    finding.values = {**finding.values, "surface": view.name, "diabatic": view.diabatic}
+    return finding
+
+
 def coupled_findings(setup) -> list[Finding]:
     """The criteria of a job on coupled surfaces (a
-    :class:`~wavesweep.setup.CoupledSetup`) that hold without the
-    single-surface machinery: the time step's phase per step, sizes and
-    disk; and one line saying that the classical-trajectory criteria
-    (momentum reach, margins, resolution, absorber windows) are not judged.
+    :class:`~wavesweep.setup.CoupledSetup`): the single-surface criteria
+    judged on every curve the packet can be on (:func:`coupled_dynamics`:
+    each diabatic surface and each adiabatic curve, energy conserved by a
+    hop) and the worst kept, each finding naming the curve that drives it:
+    momentum reach over the run against k_max (per axis), the packet's
+    margins, the phase per step, the resolution of every V_ss, V_ab and
+    adiabatic curve, sizes, detectors (inside a layer; reached by no
+    curve's trajectories), the absorber per face over the union of the
+    curves' windows, and disk.
 
     Phase per step (<= 1 rad is common practice; above pi it wraps): of the
-    potential matrix, the range of the eigenvalues of V(r, t) over the grid
+    potential matrix, the range of the eigenvalues of V(r, t)
     (numpy.linalg.eigvalsh per point; a time-dependent V at 33 times over
-    the run); of the kinetic energy, at most the packet's momentum reach
-    (6 sigma of psi0's momentum distribution on every surface) squared over
-    2m plus that range (energy conservation bounds what falling adds)."""
+    the run) over the region the curves' trajectories visit (the whole
+    grid's range is reported too); of the kinetic energy, the largest the
+    curves' trajectories reach over the run."""
     u = setup.units
     tf, T = u.factor("time"), u.unit_label("time")
     dt, h = setup.dt, setup.hamiltonian
+    cd = coupled_dynamics(setup)
+    out = []
+    rank = {"ok": 0, "warn": 1, "error": 2}
+    for i in range(setup.grid.ndim):   # momentum: per axis, the worst curve (then the farthest-reaching)
+        found = []
+        for view, dyn in zip(cd.views, cd.each):
+            f = _driven_by(momentum_findings(view, dyn)[i], view)
+            if not view.holds_packet and f.level == "error":
+                # how much of the packet a hop puts on this curve the classical criteria cannot tell: the
+                # shares are of the ensemble moved onto it; a warning, not a refusal
+                f.level = "warn"
+                f.message += ("; shares are of the packet as if all of it moved onto this curve (a hop): how "
+                              "much does is not judged here")
+            found.append(f)
+        out.append(max(found, key=lambda f: (rank[f.level], f.values["run_reach"] / f.values["k_max"])))
+    start = copy.copy(cd.views[0])
+    start.ensemble = None   # the margins: where the packet starts, measured if it is not Gaussian parts
+    out += margin_findings(start)
+    # the region the curves' trajectories visit (as one surface judges V there: a wall never entered
+    # turns no phase that matters); the whole grid without trajectories
+    reaches = [d.reach for d in cd.each if d.reach is not None]
+    box = None
+    if reaches:
+        box = tuple(slice(max(0, int(np.searchsorted(ax.coordinates, min(r.visited[i][0] for r in reaches))) - 1),
+                          int(np.searchsorted(ax.coordinates, max(r.visited[i][1] for r in reaches))) + 1)
+                    for i, ax in enumerate(setup.grid.axes))
     times = np.linspace(0.0, setup.duration, 33) if h.time_dependent else [None]
-    lowest, highest = math.inf, -math.inf
+    lowest, highest, seen_lo, seen_hi = math.inf, -math.inf, math.inf, -math.inf
     for t in times:
-        v = np.moveaxis(h.matrix(t).reshape(h.size, h.size, -1), -1, 0)   # (points, S, S)
-        eig = np.linalg.eigvalsh(v)
+        eig = np.linalg.eigvalsh(np.moveaxis(h.matrix(t), (0, 1), (-2, -1)))   # (*grid, S)
         lowest, highest = min(lowest, float(eig.min())), max(highest, float(eig.max()))
+        seen = eig[box] if box is not None else eig
+        if seen.size:
+            seen_lo, seen_hi = min(seen_lo, float(seen.min())), max(seen_hi, float(seen.max()))
     v_span = highest - lowest
-    reach = [max(measured_momentum_reach(psi, setup.grid, TAIL_6)) for psi in setup.psi0
-             if np.vdot(psi, psi).real * setup.grid.cell_volume > 1e-12]
-    e_kin = max(reach, default=0.0) ** 2 / (2 * setup.mass) + v_span
-    kin_phase, pot_phase = e_kin * dt, v_span * dt
+    v_seen = seen_hi - seen_lo if seen_hi >= seen_lo else v_span
+    e_runs = [sum(r**2 for r in d.over_run[6]) / (2 * setup.mass) for d in cd.each]
+    k = int(np.argmax(e_runs))
+    e_kin = e_runs[k]
+    kin_phase, pot_phase = e_kin * dt, v_seen * dt
     phase = max(kin_phase, pot_phase)
     level = "ok" if phase <= 1.0 else ("warn" if phase <= math.pi else "error")
-    msg = (f"coupled surfaces, phase per step: kinetic energy at most (packet's reach, plus the potential's "
-           f"range) {kin_phase:.3g} rad, eigenvalues of the potential matrix over the grid "
-           f"{pot_phase:.3g} rad (<= 1 is common practice; above pi it wraps); the grid's highest kinetic "
-           f"energy {setup.grid.kinetic_max(setup.mass) * dt:.3g} rad (dt = {dt / tf:g} {T})")
-    if level != "ok":
-        msg += f"; use dt <= {1.0 / max(e_kin, v_span, 1e-300) / tf:.3g} {T}"
-    out = [Finding("time step", level, msg,
-                   {"run_phase": kin_phase, "potential_phase": pot_phase,
-                    "grid_phase": setup.grid.kinetic_max(setup.mass) * dt}, field="evolve.dt")]
+    exact = bool(getattr(setup.scheme, "exact_in_time", False)) and not h.time_dependent
+    if exact:   # a converged expansion of exp(-i H dt) (chebyshev): no splitting, no phase to wrap
+        level = "ok"
+    if v_span * dt > 1e3 * math.pi and level == "ok":
+        level = "warn"   # no wall needs a phase of thousands of turns per step: a unit is off
+    msg = ("exact for a static H at any dt (chebyshev): " if exact else "") + (
+           f"coupled surfaces, phase per step: highest kinetic energy over the run ({cd.views[k].label}) "
+           f"{kin_phase:.3g} rad, eigenvalues of the potential matrix over the region the packet visits "
+           f"{pot_phase:.3g} rad (<= 1 is common practice; above pi it wraps), over the whole grid "
+           f"{v_span * dt:.3g} rad; the grid's highest kinetic energy "
+           f"{setup.grid.kinetic_max(setup.mass) * dt:.3g} rad (dt = {dt / tf:g} {T})")
+    if level != "ok" and not exact:
+        msg += f"; use dt <= {1.0 / max(e_kin, v_seen, 1e-300) / tf:.3g} {T}"
+    out.append(Finding("time step", level, msg,
+                       {"run_phase": kin_phase, "potential_phase": pot_phase, "grid_potential_phase": v_span * dt,
+                        "surface": cd.views[k].name, "grid_phase": setup.grid.kinetic_max(setup.mass) * dt},
+                       field="evolve.dt"))
+    res = _coupled_resolution(setup, cd)
+    if res is not None:
+        out.append(res)
     out += size_findings(setup.grid)
-    out.append(Finding("coupled surfaces", "warn",
-                       "the classical-trajectory criteria (momentum reach over the run, margins, resolution of V, "
-                       "absorber windows, detectors) are not judged for coupled surfaces yet: converge the grid, "
-                       "dt and absorber by hand (halve dx and dt, thicken the layers)",
-                       {"surfaces": list(setup.surfaces)}, field="surface"))
+    out += detector_findings(cd.views[0])
+    out += _detectors_reached(setup, cd)
+    found = absorber_findings(cd.views[0], cd.merged())
+    for f in found:
+        face = f.values.get("face")
+        if face in cd.drivers:
+            lo, hi = cd.drivers[face]
+            f.message += (f"; window over the curves: its low end from {lo}, its high end from {hi}"
+                          if lo != hi else f"; window from {hi}")
+            f.values = {**f.values, "surface_low": lo, "surface_high": hi}
+    out += found
     out.append(disk_finding(setup))
+    return out
+
+
+def _coupled_resolution(setup, cd: CoupledDynamics) -> Finding | None:
+    """:func:`resolution_finding` of each V_ss, each V_ab and each adiabatic
+    curve (static parts), the worst kept, naming it."""
+    v = setup.hamiltonian.matrix(None)
+    n = len(setup.surfaces)
+    named = [(f"surface {setup.surfaces[a]}", v[a, a]) for a in range(n)]
+    named += [(f"coupling {setup.surfaces[a]}-{setup.surfaces[b]}", v[a, b]) for a, b in sorted(setup.coupling_terms)]
+    named += [(view.label, view.hamiltonian_static_potential()) for view in cd.views if not view.diabatic]
+    worst = None
+    for name, potential in named:
+        f = _resolution_of(cd.views[0], potential)
+        if f is None:
+            continue
+        key = (f.level != "ok", f.values.get("unresolved_weight", 0.0))
+        if worst is None or key > worst[0]:
+            worst = (key, name, f)
+    if worst is None:
+        return None
+    _, name, f = worst
+    f.message = f"{name}: {f.message}" if f.level != "ok" else f"{f.message} (worst: {name})"
+    f.values = {**f.values, "surface": name}
+    return f
+
+
+def _detectors_reached(setup, cd: CoupledDynamics) -> list[Finding]:
+    """A detector that no curve's classical trajectories reach within the
+    run (outside the layers) records nothing but what tunnels there: a
+    warning naming it."""
+    u = setup.units
+    lf, L = u.factor("length"), u.unit_label("length")
+    reaches = [d.reach for d in cd.each if d.reach is not None]
+    if not reaches:
+        return []
+    out = []
+    for n, det in enumerate(setup.detectors):
+        lo = min(r.visited[det.axis][0] for r in reaches)
+        hi = max(r.visited[det.axis][1] for r in reaches)
+        if lo <= det.position <= hi:
+            continue
+        ax = setup.grid.axes[det.axis]
+        out.append(Finding("detector", "warn",
+            f"{det.name!r} at {ax.name} = {det.position / lf:.4g} {L}: no classical trajectory of the packet "
+            f"reaches it within the run on any surface or adiabatic curve (they cover {ax.name} = "
+            f"{lo / lf:.4g} to {hi / lf:.4g} {L}); it records only what tunnels there: move it, or lengthen "
+            "evolve.duration", {"detector": det.name, "reached": False}, field=f"detector.{n}.{ax.name}"))
     return out
 
 
@@ -1733,12 +2045,13 @@ def run_warnings(setup) -> list[str]:
 
     Judged once per physics: ``preflight`` (run, submit) stores them with
     :func:`remember_run_warnings` and a worker's run reads them back instead
-    of integrating the trajectories again (0.6 s of a 20-step run)."""
+    of integrating the trajectories again (0.6 s of a 20-step run).  A
+    set-up on coupled surfaces: :func:`coupled_findings`."""
     key = _warnings_key(setup)
     hit = _read_warnings(key)
     if hit is not None:
         return hit
-    lines = warning_lines(assess(setup))
+    lines = warning_lines(coupled_findings(setup) if getattr(setup, "coupled", False) else assess(setup))
     _write_warnings(key, lines)
     return lines
 

@@ -594,6 +594,8 @@ def _surface_transmission(args, out) -> int:
     er, tot, surfaces = out["energy_resolved"], out["totals"], out["surfaces"]
     if args.json:
         body = {"surfaces": surfaces, "energy": er.get("energy", []), "T": er.get("T", {}),
+                "T_uncertainty": er.get("T_uncertainty", {}), "duration_needed": er.get("duration_needed"),
+                "largest_uncertainty": er.get("largest_uncertainty", {}),
                 "weight": er.get("weight", []), "energy_units": er.get("energy_units"),
                 "detector": er.get("detector"), "incident_surface": er.get("incident_surface"),
                 "final_potentials": er.get("final_potentials"), "time_units": out["time_units"], "totals": tot}
@@ -612,11 +614,12 @@ def _surface_transmission(args, out) -> int:
             print(f"still on the grid on {surface}: {tot['final_norm'][surface]:.6g}")
         if "T" in er:
             print(f"\nT(E) per final surface at detector {er['detector']!r} (packet on {er['incident_surface']}):")
-            print(f"{'E (' + er['energy_units'] + ')':>14}" + "".join(f"{'T ' + s:>12}" for s in surfaces)
-                  + f"{'weight':>10}")
+            print(f"{'E (' + er['energy_units'] + ')':>14}"
+                  + "".join(f"{'T ' + s:>12}{'+/-':>10}" for s in surfaces) + f"{'weight':>10}")
             step = max(1, len(er["energy"]) // 20)
             for i in range(0, len(er["energy"]), step):
-                print(f"{er['energy'][i]:14.6g}" + "".join(f"{er['T'][s][i]:12.6f}" for s in surfaces)
+                print(f"{er['energy'][i]:14.6g}"
+                      + "".join(f"{er['T'][s][i]:12.6f}{er['T_uncertainty'][s][i]:10.1e}" for s in surfaces)
                       + f"{er['weight'][i]:10.3f}")
     if "reason" in er and not er.get("requested"):
         out["warnings"].append(f"no energy-resolved T: {er['reason']}")

@@ -24,7 +24,8 @@ import numpy as np
 
 from .absorbers.layers import Absorber, face_names
 from .absorbers.tuning import cached_cap_strength
-from .adequacy import dynamics, memory_error, memory_estimate, physical_memory_error, representability, run_warnings
+from .adequacy import (coupled_dynamics, dynamics, memory_error, memory_estimate, physical_memory_error,
+                       representability, run_warnings)
 from .eigen import BAND_CHUNK, BAND_STEPS, DEFAULT_MIN_WEIGHT, DENSE_MAX_POINTS, band_window, lanczos_recurrence
 from .errors import JobError
 from .fft import AUTO, PLAIN, make_transform
@@ -609,9 +610,11 @@ class CoupledSetup(Setup):
     with its rate, the coupled split-operator propagator and an observer
     per surface.  :class:`~wavesweep.run.Simulation` builds it for a job
     with surfaces (:class:`Setup` refuses one); the result file then has a
-    ``surface`` dimension.  Not supported yet, refused naming the field:
-    single precision, an interaction, a falling grid, an untuned CAP,
-    ``record.column`` and ``record.snapshot_psi``."""
+    ``surface`` dimension.  A CAP without a strength is tuned per face to
+    the energies arriving on any surface (:meth:`energy_window`), as on one
+    surface.  Not supported yet, refused naming the field: single
+    precision, an interaction, a falling grid, ``record.column`` and
+    ``record.snapshot_psi``."""
 
     def __init__(self, job: Job, fft: str | None = None, threads: int | None = None):
         Model.__init__(self, job)
@@ -633,8 +636,6 @@ class CoupledSetup(Setup):
                                                               "supported; remove [interaction]"),
             (t["grid"].get("frame", "lab") != "lab", "grid.frame", "a falling grid on coupled surfaces is not "
                                                                    "supported; use frame = 'lab'"),
-            (t["absorber"]["kind"] == "cap" and t["absorber"].get("strength") is None, "absorber.strength",
-             "a CAP on coupled surfaces is not tuned yet: give its strength (energy), or use kind = 'mask'"),
             (rec.get("column") is not None, "record.column", "a column density of coupled surfaces is not "
                                                              "recorded yet; remove record.column"),
             (bool(rec.get("snapshot_psi")), "record.snapshot_psi", "psi at snapshots of coupled surfaces is not "
@@ -654,14 +655,15 @@ class CoupledSetup(Setup):
         self.psi0 = build_surface_state(self.packet, self.grid, self.mass, self.surface_terms, self.surfaces,
                                         length_unit=(u.factor("length"), u.unit_label("length")))
         self.psi0_lab = self.psi0
-        table = t["absorber"] if t["absorber"]["kind"] != "cap" or t["absorber"].get("power") is not None \
-            else {**t["absorber"], "power": 2.0}
+        self.detectors = [self._detector(i, d) for i, d in enumerate(t["detector"])]
+        # a CAP left open is tuned as on one surface, to the energies arriving on every curve (energy_window)
+        self.cap_tuning = None
+        table = self._resolved_absorber(t["absorber"])
         if table is not t["absorber"]:   # the complete job (its TOML and run id): a new Job, the given one unchanged
             self.job = job.with_absorber(table)
         self.absorber = self._absorber(table)
         self.hamiltonian = SurfaceHamiltonian(self.grid, self.mass, self.surfaces, self.surface_terms,
                                               self.coupling_terms, self.absorber.rate)
-        self.detectors = [self._detector(i, d) for i, d in enumerate(t["detector"])]
         self.scalars = recorded_scalars()   # norm, x_mean, x_std, p_mean per surface; energy in total
         self.fft_backend = fft or ev.get("fft", AUTO)
         self.threads = threads or ev.get("threads")
@@ -681,6 +683,16 @@ class CoupledSetup(Setup):
         if self._static_basis is None:
             self._static_basis = local_eigenvectors(h.matrix(None))[1]
         return self._static_basis
+
+    def energy_window(self, axis: int, face: str) -> tuple[float, float]:
+        """Kinetic energies (hartree) normal to ``face`` that its layer must
+        take over the run on any surface: the union over the diabatic
+        surfaces and adiabatic curves the packet can be on of each one's
+        single-surface window, the packet's energy conserved by a hop
+        (:func:`wavesweep.adequacy.coupled_dynamics`).  The layers are the
+        same on every surface, so one strength per face tuned to the union
+        meets the tuning's worst return on each."""
+        return coupled_dynamics(self).windows[face]
 
     def recorded_potential(self) -> np.ndarray:
         """Each surface's static diagonal V_ss (hartree), (surface, *grid)."""

@@ -58,6 +58,9 @@ AVOIDED_JOB = {
     "evolve": {"dt": 5.0, "duration": 12000.0, "scheme": "order4"},
     "record": {"every": 20.0, "snapshot_every": 12000.0},
     "detector": [{"name": "beyond", "x": 13.0}],
+    # a tuned CAP takes what has passed the detector: on the periodic grid it would come round to the
+    # detector again, which T(E)'s uncertainty counts as still to come (as on one surface)
+    "absorber": {"kind": "cap", "thickness": 10.0},
 }
 
 
@@ -129,7 +132,11 @@ def test_transmission_per_surface_from_the_run_file(tmp_path):
     er = out["energy_resolved"]
     assert "reason" not in er, er.get("reason")
     assert er["detector"] == "beyond" and er["incident_surface"] == "A"
-    assert not out["warnings"], out["warnings"]       # flat, uncoupled at start and detector; died out
+    # flat, uncoupled at start and detector: what is said is only how far T_s(E) can be trusted (the
+    # slowest energies, below 1 % of the peak weight's neighbourhood, still arriving: measured 3e-4, 8e-4)
+    assert all(w.startswith(("surface A: the run ended", "surface B: the run ended")) for w in out["warnings"]), \
+        out["warnings"]
+    assert max(er["largest_uncertainty"].values()) < 1e-3
     setup = CoupledSetup(job_from_dict(copy.deepcopy(AVOIDED_JOB)))
     x = setup.grid.axes[0].coordinates
     with xr.open_dataset(path) as ds:

@@ -33,7 +33,11 @@ channel's potential V_f beyond the detector; a run's T(E) uses V_f =
 V(x_d)).  On coupled surfaces (``surface_transmission``) it is applied per
 final surface s, v' the speed on s beyond the detector, k_s(E) =
 sqrt(2 m (E - V_s)) / hbar: T_s(E) = 2 pi hbar^2 v v_s |psi~_s(E)|^2 /
-|phi(k)|^2, zero where s is closed (derived there).
+|phi(k)|^2, zero where s is closed (derived there).  Each T_s(E) comes
+with the uncertainty below, by the same code (``still_to_come``): E is the
+total energy, which a hop conserves, so what may still arrive on s is the
+final state's probability per energy on every surface the couplings
+connect to s, each part read with its own V_rr.
 
 A run that ends before the whole transmitted amplitude has passed the
 detector still gives T(E), with an uncertainty per energy.  The integral
@@ -88,6 +92,7 @@ from typing import NamedTuple
 
 import numpy as np
 
+from ..adequacy import reachable_surfaces, run_warnings
 from ..errors import JobError
 from ..io.results import open_result, result_units, source_name
 from ..io.record import side_probability
@@ -97,7 +102,8 @@ from .recorded import as_record
 from .recorded import run_record as read_record
 
 __all__ = ["transmission", "energy_resolved_transmission", "transmission_totals", "truncation_warning",
-           "UNCERTAINTY_TARGET", "transmission_from_samples", "surface_transmission", "incident_wave_numbers",
+           "UNCERTAINTY_TARGET", "transmission_from_samples", "surface_transmission", "surface_spectra",
+           "incident_wave_numbers",
            "SampledTransmission", "coupled_transmission"]
 
 WEIGHT_FLOOR = 1e-2       # report T(E) where the incident weight is above 1 % of its peak
@@ -273,52 +279,47 @@ def _at_detector(ds, setup, j, k_all, w_all, points) -> dict:
                                        f"use record.every < {need:.3g} {uc['time_label']}")
     k = _wave_numbers_with_weight(k_all, w_fwd, points)
     phi = _momentum_amplitude(setup.psi0, x, k)
-    # the detector's side is the final channel: its potential there is V_f
-    spectrum = transmission_from_samples(t, amp, k, np.abs(phi) ** 2, mass, v_start, v_det)
-    energy, T, to_T = spectrum.energy, spectrum.transmission, spectrum.to_transmission
-    passes = energy - v_det > 0
-
     # --- what had not passed the detector by the end (module notes) ---
-    e_center = 0.5 * float(e_band.min() + e_band.max())
-    e_local = _local_energy(amp, dt_rec, e_center)
-    tail_cut = to_T * _cut_tail(amp, t, energy, e_local[-1]) ** 2
+    energy = v_start + k**2 / (2 * mass)
     if psi_end is not None:
         to_come = _still_to_come(psi_end, x, v_static, mass, x_d, direction, v_start, energy, k,
                                  _far_layer(setup, direction))
-        incident = np.abs(phi) ** 2 * mass / np.abs(k)       # |phi|^2 dk/dE, per hartree
-        tail_come = to_come / incident
     else:                                   # died out (checked above): the cut bounds the rest
-        tail_come = np.zeros_like(energy)
-    tail = np.sqrt(tail_cut) + np.sqrt(tail_come)          # |tail amplitude| in units of sqrt(T)
-    uncertainty = 2 * np.sqrt(np.maximum(T, 0.0)) * tail + tail**2
-    uncertainty = np.minimum(uncertainty, np.maximum(T, np.abs(1 - T)))   # T lies in [0, 1]
-    uncertainty[~passes] = 0.0
-    weight = np.abs(phi) ** 2 / w_fwd.max()
+        to_come = np.zeros_like(energy)
+    # the detector's side is the final channel: its potential there is V_f
+    spectrum = transmission_from_samples(t, amp, k, np.abs(phi) ** 2, mass, v_start, v_det,
+                                         still_to_come=to_come,
+                                         band_center=0.5 * float(e_band.min() + e_band.max()))
+    return {"detector": name, "energy": spectrum.energy / uc["energy"], "T": spectrum.transmission,
+            "energy_units": uc["energy_label"], "duration": float(t[-1] - t[0]) / uc["time"],
+            "time_units": uc["time_label"],
+            **_settled(spectrum, t, amp, k_all, w_fwd, v_start, v_det, mass, uc)}
+
+
+def _settled(spectrum, t, amp, k_all, w_fwd, v_start, v_det, mass, uc) -> dict:
+    """How far T(E) into one final channel can be trusted (job units), from
+    its :func:`transmission_from_samples` with ``still_to_come``: the
+    uncertainty per energy ``T_uncertainty``, the incident ``weight``
+    normalised to its peak, ``largest_uncertainty`` where the weight is
+    above WEIGHT_FLOOR and where (``largest_at``), ``uncertain_span`` (the
+    energies where it is above UNCERTAINTY_TARGET, or None),
+    ``duration_needed`` (None when settled) and ``peak_energy``.  One
+    surface's T(E) and each final surface's on coupled surfaces."""
+    energy, uncertainty = spectrum.energy, spectrum.uncertainty
+    weight = spectrum.momentum_density / w_fwd.max()
     significant = weight > WEIGHT_FLOOR
     largest = float(np.max(uncertainty[significant], initial=0.0))
     largest_at = float(energy[significant][np.argmax(uncertainty[significant])]) if significant.any() \
         else math.nan
     needed, span = None, None
     if largest > UNCERTAINTY_TARGET:
-        needed = _duration_needed(t, amp, e_local, k_all, w_fwd, v_start, v_det, mass,
+        needed = _duration_needed(t, amp, spectrum.arriving_energy, k_all, w_fwd, v_start, v_det, mass,
                                   largest) / uc["time"]
         over = energy[significant & (uncertainty > UNCERTAINTY_TARGET)] / uc["energy"]
         span = (float(over.min()), float(over.max()))
-    return {
-        "detector": name,
-        "energy": energy / uc["energy"],
-        "T": T,
-        "T_uncertainty": uncertainty,
-        "weight": weight,
-        "energy_units": uc["energy_label"],
-        "duration": float(t[-1] - t[0]) / uc["time"],
-        "duration_needed": needed,
-        "time_units": uc["time_label"],
-        "largest_uncertainty": largest,
-        "largest_at": largest_at / uc["energy"],
-        "uncertain_span": span,
-        "peak_energy": float(energy[np.argmax(weight)]) / uc["energy"],
-    }
+    return {"T_uncertainty": uncertainty, "weight": weight, "duration_needed": needed,
+            "largest_uncertainty": largest, "largest_at": largest_at / uc["energy"], "uncertain_span": span,
+            "peak_energy": float(energy[np.argmax(weight)]) / uc["energy"]}
 
 
 class SampledTransmission(NamedTuple):
@@ -329,10 +330,14 @@ class SampledTransmission(NamedTuple):
     transmission: np.ndarray     # T(E) into the final channel (0 where it is closed)
     energy_amplitude: np.ndarray  # psi~(E) = (1 / 2 pi hbar) int psi(x_d, t) exp(i E t / hbar) dt
     to_transmission: np.ndarray  # T = to_transmission |psi~(E)|^2 (2 pi hbar^2 v_in v_f / |phi|^2)
+    momentum_density: np.ndarray | None = None   # |phi(k)|^2 as given
+    uncertainty: np.ndarray | None = None        # dT(E): what had not passed by the end (with still_to_come)
+    arriving_energy: np.ndarray | None = None    # E(t) arriving at the detector between samples (idem)
 
 
 def transmission_from_samples(time, psi_detector, wave_number, momentum_density, mass,
-                              incident_potential, final_potential) -> SampledTransmission:
+                              incident_potential, final_potential, still_to_come=None,
+                              band_center=None) -> SampledTransmission:
     """T(E) into one final channel from psi sampled at a detector beyond the
     scatterer (the module notes' method, on plain arrays; atomic units,
     hbar = 1).
@@ -355,7 +360,16 @@ def transmission_from_samples(time, psi_detector, wave_number, momentum_density,
     crosses a detector far beyond the scatterer).  The samples must not
     alias the packet's band (spacing < 2 pi hbar / its width) and psi must
     have died out at the detector by the last one (see the module notes
-    for what a truncated record misses)."""
+    for what a truncated record misses).
+
+    ``still_to_come``: the final state's probability per energy (per
+    hartree, at the energies E) that may still cross the detector (zeros:
+    none); given, the result carries T's ``uncertainty`` per energy from
+    what had not passed by the end (the module notes: the cut record's
+    tail continued from its last samples, and what is still to come; 0
+    where the channel is closed) and the energy ``arriving_energy`` at the
+    detector between samples (on the branch nearest ``band_center``,
+    hartree; default the middle of the energies)."""
     t = np.asarray(time, float)
     amp = np.asarray(psi_detector, complex)
     k = np.asarray(wave_number, float)
@@ -379,7 +393,18 @@ def transmission_from_samples(time, psi_detector, wave_number, momentum_density,
     to_T = 2 * math.pi * v_in * v_final / density     # |amplitude per energy|^2 -> T
     T = to_T * np.abs(amp_e) ** 2
     T[~(kinetic_final > 0)] = 0.0
-    return SampledTransmission(energy, T, amp_e, to_T)
+    if still_to_come is None:
+        return SampledTransmission(energy, T, amp_e, to_T, density)
+    e_center = 0.5 * float(energy.min() + energy.max()) if band_center is None else float(band_center)
+    e_local = _local_energy(amp, dt_rec, e_center)
+    tail_cut = to_T * _cut_tail(amp, t, energy, e_local[-1]) ** 2
+    incident = density * mass / np.abs(k)       # |phi|^2 dk/dE, per hartree
+    tail_come = np.asarray(still_to_come, float) / incident
+    tail = np.sqrt(tail_cut) + np.sqrt(tail_come)          # |tail amplitude| in units of sqrt(T)
+    uncertainty = 2 * np.sqrt(np.maximum(T, 0.0)) * tail + tail**2
+    uncertainty = np.minimum(uncertainty, np.maximum(T, np.abs(1 - T)))   # T lies in [0, 1]
+    uncertainty[~(kinetic_final > 0)] = 0.0
+    return SampledTransmission(energy, T, amp_e, to_T, density, uncertainty, e_local)
 
 
 def surface_transmission(time, psi_detector, wave_number, momentum_density, mass, incident_potential,
@@ -424,9 +449,26 @@ def surface_transmission(time, psi_detector, wave_number, momentum_density, mass
     if psi.ndim != 2 or psi.shape[0] != v_final.size:
         raise ValueError(f"psi_detector must be (surfaces, samples) with one final potential per surface; "
                          f"got shape {psi.shape} and {v_final.size} potentials")
-    runs = [transmission_from_samples(time, psi[s], wave_number, momentum_density, mass,
-                                      incident_potential, v_final[s]) for s in range(v_final.size)]
+    runs = surface_spectra(time, psi, wave_number, momentum_density, mass, incident_potential, v_final)
     return runs[0].energy, np.stack([run.transmission for run in runs])
+
+
+def surface_spectra(time, psi_detector, wave_number, momentum_density, mass, incident_potential,
+                    final_potentials, still_to_come=None, band_center=None) -> list[SampledTransmission]:
+    """:func:`transmission_from_samples` into each final surface s (the
+    arguments as for :func:`surface_transmission`), with T_s's uncertainty
+    where ``still_to_come`` (per hartree of the total energy E, what may
+    still cross the detector on s, or reach s and then cross it) is
+    given: (K,) the same for every surface, or (S, K) per final surface."""
+    psi = np.asarray(psi_detector, complex)
+    v_final = np.atleast_1d(np.asarray(final_potentials, float))
+    if psi.ndim != 2 or psi.shape[0] != v_final.size:
+        raise ValueError(f"psi_detector must be (surfaces, samples) with one final potential per surface; "
+                         f"got shape {psi.shape} and {v_final.size} potentials")
+    come = [None] * v_final.size if still_to_come is None else \
+        np.broadcast_to(np.asarray(still_to_come, float), (v_final.size, np.size(wave_number)))
+    return [transmission_from_samples(time, psi[s], wave_number, momentum_density, mass, incident_potential,
+                                      v_final[s], come[s], band_center) for s in range(v_final.size)]
 
 
 def incident_wave_numbers(psi0, x, direction, points: int = 201) -> tuple[np.ndarray, np.ndarray]:
@@ -713,15 +755,27 @@ def coupled_totals(ds, setup) -> dict:
 def coupled_energy_resolved(ds, setup, detector: str | None = None, points: int = 201) -> dict:
     """T_s(E) into each surface s from one packet on coupled surfaces (1D,
     static potential matrix, detector amplitudes recorded; the packet on one
-    surface at the start): :func:`surface_transmission` on the file's
+    surface at the start): :func:`surface_spectra` on the file's
     psi_s(x_d, t), the incident momentum density of the set-up's psi0
     (:func:`incident_wave_numbers`), V_in = <V_in> over |psi0|^2 and V_s
     from ``potential(surface, x)`` at the detector.  Without ``detector``
     the farthest detector along the packet's motion outside the absorbing
-    layers is used.  Energies in job units.  No truncation uncertainty is
-    estimated on coupled surfaces: ``warnings`` says when psi had not died
-    out at the detector, and when the surfaces are not flat and uncoupled
-    beyond it or not flat where the packet starts (the method's premises)."""
+    layers is used.  Energies in job units.  Each T_s(E) comes with the
+    single surface's trust statement, by the same code
+    (:func:`transmission_from_samples` with ``still_to_come``, then
+    :func:`_settled`): ``T_uncertainty`` {surface: per energy},
+    ``largest_uncertainty`` and ``uncertain_span`` per surface (where the
+    weight is above WEIGHT_FLOOR), ``duration_needed`` (the longest any
+    surface needs; None when all are settled to UNCERTAINTY_TARGET).  What
+    may still cross the detector is the final state's on every surface
+    (each with its own V_rr), summed over the surfaces the couplings
+    connect to s: a part still on such a surface before the detector may
+    yet move to s.  Without a final state, a
+    record that has not died out is refused, as on one surface.
+    ``warnings`` says, per surface, where T_s is uncertain and the duration
+    that settles it, and when the surfaces are not flat and uncoupled
+    beyond the detector or not flat where the packet starts (the method's
+    premises)."""
     uc = result_units(ds)
     if setup.grid.ndim != 1 or setup.grid.radial:
         raise JobError("RUN.nc", f"{source_name(ds)}: energy-resolved transmission needs a 1D cartesian run "
@@ -783,12 +837,37 @@ def coupled_energy_resolved(ds, setup, detector: str | None = None, points: int 
                                        f"use record.every < {need:.3g} {uc['time_label']}")
     k, w = incident_wave_numbers(psi0, x, moving, points)
     v_final = np.array([float(np.interp(x_d, x, potential[s])) for s in range(len(surfaces))])
-    energy, T = surface_transmission(t, amp, k, w, setup.mass, v_in, v_final)
     end_ratio = float(np.max(np.abs(amp[:, -1]) ** 2)) / peak
+    psi_end = _final_psi(ds, uc)
+    if psi_end is None and end_ratio > AMPLITUDE_AT_END:
+        # what is still to come cannot be told without the final state (as on one surface)
+        raise JobError("evolve.duration", f"psi at detector {name!r} has not died out by the end "
+                                          f"(|psi|^2 at {end_ratio:.1e} of its peak) and the run kept no "
+                                          "final state to tell what is still to come; extend "
+                                          "evolve.duration or set record.final_state = true")
+    # what may still cross the detector, per hartree of the total energy E (conserved by a hop): each
+    # surface's share of the final state with its own V_rr, summed over the surfaces the couplings
+    # connect to s (an upper bound for s: what is on r may yet move to s before the detector)
+    energy = v_in + k**2 / (2 * setup.mass)
+    each = np.zeros((len(surfaces),) + energy.shape)
+    if psi_end is not None:
+        far_layer = _far_layer(setup, moving)
+        for r in range(len(surfaces)):
+            if np.any(np.abs(psi_end[r]) > 0):
+                each[r] = _still_to_come(psi_end[r], x, potential[r], setup.mass, x_d, moving, v_in, energy, k,
+                                         far_layer)
+    to_come = np.array([each[sorted(reachable_surfaces(setup, {s}))].sum(axis=0) for s in range(len(surfaces))])
+    spectra = surface_spectra(t, amp, k, w, setup.mass, v_in, v_final, still_to_come=to_come,
+                              band_center=0.5 * float(e_band.min() + e_band.max()))
+    energy = spectra[0].energy
+    settled = {s: _settled(spectra[i], t, amp[i], k_all, w_fwd, v_in, v_final[i], setup.mass, uc)
+               for i, s in enumerate(surfaces)}
     warnings = []
-    if end_ratio > AMPLITUDE_AT_END:
-        warnings.append(f"psi at detector {name!r} has not died out by the end (|psi|^2 at {end_ratio:.1e} of its "
-                        "peak): T(E) misses what is still to come; extend evolve.duration")
+    for s, found in settled.items():
+        if found["uncertain_span"] is not None:
+            warnings.append(f"surface {s}: " + truncation_warning({**found, "detector": name,
+                                                                   "energy_units": uc["energy_label"],
+                                                                   "time_units": uc["time_label"]}))
     # the method's channels are flat, uncoupled surfaces from the detector on (module notes)
     beyond = moving * (x - x_d) >= 0
     far = layer_edge(setup, "x+" if moving > 0 else "x-") if _far_layer(setup, moving) is not None else None
@@ -806,7 +885,13 @@ def coupled_energy_resolved(ds, setup, detector: str | None = None, points: int 
     if abs(float(np.ptp(potential[incident][dens0 > 1e-10 * dens0.max()]))) > FLAT_BEYOND * e_kin:
         warnings.append(f"the packet starts where surface {surfaces[incident]!r} is not flat: T(E) assumes a free "
                         "incident packet; start it where the potential is constant")
-    return {"energy": energy / uc["energy"], "T": {s: T[i] for i, s in enumerate(surfaces)},
+    needed = [f["duration_needed"] for f in settled.values() if f["duration_needed"] is not None]
+    return {"energy": energy / uc["energy"], "T": {s: spectra[i].transmission for i, s in enumerate(surfaces)},
+            "T_uncertainty": {s: f["T_uncertainty"] for s, f in settled.items()},
+            "largest_uncertainty": {s: f["largest_uncertainty"] for s, f in settled.items()},
+            "uncertain_span": {s: f["uncertain_span"] for s, f in settled.items()},
+            "duration_needed": max(needed) if needed else None,
+            "duration": float(t[-1] - t[0]) / uc["time"], "time_units": uc["time_label"],
             "weight": w / w.max(), "detector": name, "incident_surface": surfaces[incident],
             "energy_units": uc["energy_label"], "final_potentials": {s: v_final[i] / uc["energy"]
                                                                      for i, s in enumerate(surfaces)},
@@ -817,11 +902,14 @@ def coupled_transmission(ds, detector: str | None = None) -> dict:
     """:func:`transmission` of a run on coupled surfaces (an open dataset):
     ``totals`` (:func:`coupled_totals`), ``energy_resolved``
     (:func:`coupled_energy_resolved`, or the reason it is missing),
-    ``surfaces``, ``warnings``.  The set-up (grid, psi0, absorber) is
-    rebuilt from the job text the result stores."""
+    ``surfaces``, ``warnings`` (the set-up's warnings,
+    :func:`~wavesweep.adequacy.run_warnings`, then T(E)'s).  The set-up
+    (grid, psi0, absorber) is rebuilt from the job text the result stores."""
     setup = coupled_setup(ds)
     out = {"surfaces": [str(v) for v in ds["surface"].values], "totals": coupled_totals(ds, setup),
            "warnings": [], "time_units": result_units(ds)["time_label"]}
+    # the set-up's own findings (check's, per surface), as a single surface's file records them
+    out["warnings"].extend(run_warnings(setup))
     try:
         er = out["energy_resolved"] = coupled_energy_resolved(ds, setup, detector)
         out["warnings"].extend(er["warnings"])
