@@ -31,7 +31,7 @@ from .io.record import record_checksum
 from .io.recorder import ResultWriter
 from .job import Job, job_from_dict, load_job
 from .kernels import density_of
-from .setup import AXIS_LONG, CoupledSetup, Setup, analysis_record, final_detector_values
+from .setup import AXIS_LONG, CoupledSetup, Setup, analysis_record, coupled_attributes, final_detector_values
 from .surfaces import PHASE_CONVENTION
 
 __all__ = ["Simulation", "RunBook", "run_job", "progress_bar"]
@@ -155,8 +155,10 @@ class Simulation:
                 return None
             resume = self._load_checkpoint(store)
         if resume is None:
-            if self.coupled:   # the analysis record is one surface's: a coupled file has the run's attributes
-                record, attrs = None, {**self._attrs(), "surfaces": list(s.surfaces)}
+            if self.coupled:   # the analysis record is one surface's: a coupled file has the run's attributes,
+                # its grid's and the adequacy warnings judged at run time, which its analysis repeats
+                record = None
+                attrs = {**self._attrs(), **coupled_attributes(s)}
             else:   # what analysis needs of the set-up, written once with the file (a resumed file has it)
                 record = analysis_record(s)
                 attrs = {**self._attrs(), **record["attrs"]}

@@ -431,12 +431,7 @@ def analysis_record(setup, warnings: bool = True, lanczos: bool = True) -> dict:
     ``lanczos=False`` the recurrence."""
     u, grid = setup.units, setup.grid
     lf, ef = u.factor("length"), u.factor("energy")
-    attrs = {"analysis_record": RECORD_VERSION, "grid_axes": " ".join(grid.names),
-             "absorber_thickness": float(setup.absorber.thickness / lf),
-             "time_dependent": int(bool(setup.hamiltonian.time_dependent))}
-    for a in grid.axes:
-        attrs.update({f"grid_{a.name}_min": float(a.min / lf), f"grid_{a.name}_max": float(a.max / lf),
-                      f"grid_{a.name}_points": int(a.points), f"grid_{a.name}_boundary": a.boundary})
+    attrs = {"analysis_record": RECORD_VERSION, **grid_attributes(setup)}
     if warnings:
         attrs["adequacy_warnings"] = json.dumps(run_warnings(setup))
     psi0 = setup.psi0_lab   # the packet in the lab (in a falling frame, phi0 has lost the frame's velocity)
@@ -465,6 +460,30 @@ def analysis_record(setup, warnings: bool = True, lanczos: bool = True) -> dict:
         if ground is not None:
             attrs["ground_energy"] = float(ground / ef)
     return out
+
+
+def grid_attributes(setup) -> dict:
+    """The grid and absorber as a result file's global attributes (job
+    units): ``grid_axes`` (the axes' names, which tells readers the grid's
+    dimensions from the others: ``surface``, ``detector``...), each axis's
+    ``grid_<axis>_min/max/points/boundary``, ``absorber_thickness`` and
+    ``time_dependent``.  Written by every run, on one surface or several."""
+    lf = setup.units.factor("length")
+    attrs = {"grid_axes": " ".join(setup.grid.names), "absorber_thickness": float(setup.absorber.thickness / lf),
+             "time_dependent": int(bool(setup.hamiltonian.time_dependent))}
+    for a in setup.grid.axes:
+        attrs.update({f"grid_{a.name}_min": float(a.min / lf), f"grid_{a.name}_max": float(a.max / lf),
+                      f"grid_{a.name}_points": int(a.points), f"grid_{a.name}_boundary": a.boundary})
+    return attrs
+
+
+def coupled_attributes(setup) -> dict:
+    """What a run on coupled surfaces writes for analysis, as global
+    attributes: the surfaces' names, :func:`grid_attributes` and the
+    adequacy warnings judged at run time (``adequacy_warnings``, JSON), which
+    its analysis repeats as a single surface's does."""
+    return {"surfaces": list(setup.surfaces), **grid_attributes(setup),
+            "adequacy_warnings": json.dumps(run_warnings(setup))}
 
 
 def _initial_detector_values(setup, marginals_au) -> dict:

@@ -12,6 +12,7 @@ absorber removed, over every surface and face) and of the energy <T + V>.
 from __future__ import annotations
 
 import copy
+import json
 import math
 
 import numpy as np
@@ -180,3 +181,26 @@ def test_each_surface_in_the_job_units(tmp_path):
         np.testing.assert_allclose(ds["coupling_potential"], V12, rtol=0, atol=1e-12)
         assert float(ds["x_mean"].sel(surface="A")[0]) == pytest.approx(-10.0, abs=1e-9)   # angstrom, as given
         assert np.isnan(float(ds["x_mean"].sel(surface="B")[0])) and float(ds["norm"].sel(surface="B")[0]) == 0
+
+
+def test_a_coupled_file_keeps_its_grid_and_the_warnings_its_analysis_repeats(tmp_path):
+    """A coupled run stores its grid's attributes (``grid_axes`` tells the
+    grid's dimensions from ``surface``) and the adequacy warnings judged at
+    run time; arrivals and transmission repeat them from the file, as for
+    one surface.  Here dt is too long for the packet's kinetic phase (a
+    warning, not an error: common practice is <= 1 rad per step)."""
+    from wavesweep.analysis.arrivals import arrival_times
+    from wavesweep.analysis.transmission import transmission
+    table = {**copy.deepcopy(ABSORBED_JOB), "evolve": {"dt": 0.3, "duration": 24.0, "scheme": "strang"},
+             "record": {"every": 0.6, "snapshot_every": 6.0}}
+    job = _job(table)
+    said = [f.message for f in check_job(job).findings if f.level == "warn"]
+    assert any("phase per step" in m for m in said)
+    path = Simulation(job).run(tmp_path, progress=False)
+    with xr.open_dataset(path) as ds:
+        assert ds.attrs["grid_axes"] == "x" and ds.attrs["grid_x_points"] == 512
+        stored = json.loads(ds.attrs["adequacy_warnings"])
+    assert any("phase per step" in w for w in stored)
+    notes = arrival_times(path, surfaces=True)["right"]["A"].warnings
+    assert any("phase per step" in n for n in notes)
+    assert any("phase per step" in w for w in transmission(path)["warnings"])

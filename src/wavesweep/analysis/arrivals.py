@@ -31,6 +31,7 @@ the trapezoidal rule on the (uniform) samples.
 """
 from __future__ import annotations
 
+import json
 import math
 import tomllib
 from dataclasses import dataclass, field
@@ -458,6 +459,8 @@ def _surface_arrivals(ds, detector=None) -> dict:
     faces = [str(b) for b in ds["boundary"].values] if "boundary" in ds.coords else []
     # the absorbing layers are in the job only: the set-up is rebuilt when there are any
     setup = coupled_setup(ds) if str(ds.attrs.get("absorber", "none")) != "none" else None
+    said = stored_warnings(ds)
+    said = [WARNINGS_UNAVAILABLE] if said is None else said
     out = {}
     for j, name in enumerate(names):
         if detector is not None and name != detector:
@@ -472,7 +475,7 @@ def _surface_arrivals(ds, detector=None) -> dict:
         coupled_there = _coupling_at(ds, axis_name, x_det)
         for s, surface in enumerate(surfaces):
             label = f"detector {name!r} on surface {surface!r}"
-            notes = [COUPLED_NOTE] + [
+            notes = [COUPLED_NOTE] + said + [
                 f"detector {name!r}: surfaces {pair} are still coupled there (|V_ab| / |V_aa - V_bb| = {r:.2g}): "
                 f"what crosses keeps changing surface beyond it, so the split between them is uncertain by "
                 f"about {r * r:.1g}; move the detector to where the coupling has died out"
@@ -575,12 +578,24 @@ def _uniform_forces(ds) -> list[str]:
     return sorted({k for k in kinds if k in REGISTRY and REGISTRY[k].uniform_force})
 
 
+# Said in place of the adequacy warnings of a file that does not hold them.
+WARNINGS_UNAVAILABLE = ("the run's set-up: its adequacy findings are unavailable (the file does not hold "
+                        "them); `wavesweep check` on its job judges them")
+
+
+def stored_warnings(ds) -> list[str] | None:
+    """The adequacy warnings a run of coupled surfaces judged at run time
+    (its ``adequacy_warnings`` attribute, JSON), or None for a file written
+    before coupled runs stored them."""
+    raw = ds.attrs.get("adequacy_warnings")
+    return None if raw is None else [str(w) for w in json.loads(str(raw))]
+
+
 def recorded_warnings(record) -> list[str]:
     """The run's adequacy warnings as its file holds them, or one line saying
     they are unavailable (a file that does not say)."""
     if record.warnings is None:
-        return ["the run's set-up: its adequacy findings are unavailable (the file does not hold "
-                "them); `wavesweep check` on its job judges them"]
+        return [WARNINGS_UNAVAILABLE]
     return list(record.warnings)
 
 

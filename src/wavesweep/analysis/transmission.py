@@ -96,7 +96,7 @@ from ..adequacy import reachable_surfaces, run_warnings
 from ..errors import JobError
 from ..io.results import open_result, result_units, source_name
 from ..io.record import side_probability
-from .arrivals import (coupled_setup, recorded_or, detector_side, layer_edge, layer_holding, recorded_warnings,
+from .arrivals import (coupled_setup, recorded_or, stored_warnings, detector_side, layer_edge, layer_holding, recorded_warnings,
                        upstream_probability)
 from .recorded import as_record
 from .recorded import run_record as read_record
@@ -908,8 +908,10 @@ def coupled_transmission(ds, detector: str | None = None) -> dict:
     setup = coupled_setup(ds)
     out = {"surfaces": [str(v) for v in ds["surface"].values], "totals": coupled_totals(ds, setup),
            "warnings": [], "time_units": result_units(ds)["time_label"]}
-    # the set-up's own findings (check's, per surface), as a single surface's file records them
-    out["warnings"].extend(run_warnings(setup))
+    # the set-up's own findings (check's, per surface), judged at run time and stored in the file
+    # (judged here for a file written before runs stored them)
+    said = stored_warnings(ds)
+    out["warnings"].extend(run_warnings(setup) if said is None else said)
     try:
         er = out["energy_resolved"] = coupled_energy_resolved(ds, setup, detector)
         out["warnings"].extend(er["warnings"])
