@@ -91,3 +91,28 @@ def test_a_study_mixing_surface_sets_is_refused(tmp_path):
         collect(tmp_path, "mixed")
     assert e.value.field == "surface" and "A, B" in e.value.message and "A, C" in e.value.message
     assert len(str(e.value).splitlines()) == 1
+
+
+def test_the_study_figure_draws_each_surface(coupled_study, tmp_path, monkeypatch):
+    """`plot` on a coupled study's summary: one line per (detector,
+    surface), told apart by line style, holding the summary's numbers; with
+    two swept parameters the panels show all surfaces together (the sum of
+    the probabilities; the arrival mean over what crossed on any surface,
+    each surface's mean weighted by its probability)."""
+    from wavesweep.viz import summary
+    root, study, ds = coupled_study
+    figures = []
+    monkeypatch.setattr(summary, "_save", lambda fig, path: figures.append(fig) or path)
+    summary.plot_study(root / "coupled" / "summary.nc", tmp_path / "study.png")
+    beyond = next(ax for ax in figures[0].axes if ax.get_title(loc="left").startswith("beyond each detector"))
+    lines = {line.get_label(): line for line in beyond.get_lines()}
+    assert set(lines) == {"detector right on A", "detector right on B"}
+    assert lines["detector right on A"].get_linestyle() != lines["detector right on B"].get_linestyle()
+    for surface in ("A", "B"):
+        np.testing.assert_array_equal(lines[f"detector right on {surface}"].get_ydata(),
+                                      ds["transmitted_beyond"].sel(detector="right", surface=surface).values)
+    total = summary._over_all_surfaces(ds)
+    np.testing.assert_allclose(total["transmitted_beyond"], ds["transmitted_beyond"].sum("surface"), rtol=1e-15)
+    p, mean = ds["arrival_probability"], ds["arrival_mean"]
+    expected = (p * mean).sum("surface") / p.sum("surface")
+    np.testing.assert_allclose(total["arrival_mean"], expected, rtol=1e-12)

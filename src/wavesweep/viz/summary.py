@@ -491,7 +491,11 @@ def plot_study(path, output, size=(1200, 900), dpi: int = 100) -> Path:
             dims = [keys[0]]
     panels = [p for p in _STUDY_PANELS if p[0] in ds and np.isfinite(ds[p[0]].values).any()]
     T = style.pretty_unit(ds.time.attrs.get("units", ""))
-    unfinished = float(np.nanmax(ds.final_norm.values)) if "final_norm" in ds else 0.0
+    surfaces = [str(v) for v in ds["surface"].values] if "surface" in ds.dims else None
+    if surfaces is not None and len(dims) > 1:
+        ds = _over_all_surfaces(ds)   # families or maps per surface would be unreadable: the totals
+    unfinished = (float(np.nanmax(ds.final_norm.sum("surface").values if "surface" in ds.final_norm.dims
+                                  else ds.final_norm.values)) if "final_norm" in ds else 0.0)
     with style.style():
         fig = style.figure(*size, dpi)
         axs = fig.subplots(len(panels), 1, squeeze=False)[:, 0]
@@ -505,13 +509,17 @@ def plot_study(path, output, size=(1200, 900), dpi: int = 100) -> Path:
                 v = da.values[np.isfinite(da.values)]
                 if kind == "probability" and v.size and v.min() > 0 and v.max() / v.min() > 30:
                     ax.set_yscale("log")     # transmission spans decades across a resonance
-                if var == "arrival_mean" and len(dims) == 1 and "arrival_q10" in ds:
+                if var == "arrival_mean" and len(dims) == 1 and "arrival_q10" in ds and "surface" not in da.dims:
                     for j, m in enumerate(members):
                         ax.fill_between(ds[dims[0]].values, ds.arrival_q10.sel(detector=m).values,
                                         ds.arrival_q90.sel(detector=m).values,
                                         color=style.line_colors()[j % 7], alpha=0.15, lw=0)
                     ax.text(0.5, 0.97, "bands: 10-90 % of arrivals", transform=ax.transAxes,
                             ha="center", va="top", fontsize=7, color="#555555")
+            if surfaces is not None:
+                title += (" per surface (line style)" if "surface" in da.dims else
+                          " (all surfaces" + (": their sum" if kind == "probability" else
+                                              ": the mean over what crossed on any") + ")")
             ax.set_title(title, loc="left")
         title = style.plain(ds.attrs.get("title", ""))
         if unfinished > 1e-3:       # the books are not closed: the numbers are not final
@@ -520,6 +528,21 @@ def plot_study(path, output, size=(1200, 900), dpi: int = 100) -> Path:
         fig.suptitle(title, fontsize=10)
         fig.tight_layout()
         return _save(fig, output)
+
+
+def _over_all_surfaces(ds):
+    """A coupled study's panels summed over the surfaces: probabilities
+    added, the mean arrival time over what crossed on any surface (each
+    surface's mean weighted by its arrival probability)."""
+    out = ds.copy()
+    for var in ("final_absorbed", "transmitted_beyond", "final_norm"):
+        if var in ds and "surface" in ds[var].dims:
+            out[var] = ds[var].sum("surface", min_count=1).assign_attrs(ds[var].attrs)
+    if "arrival_mean" in ds and "surface" in ds["arrival_mean"].dims and "arrival_probability" in ds:
+        p = ds["arrival_probability"].where(np.isfinite(ds["arrival_mean"]), 0.0)
+        out["arrival_mean"] = ((ds["arrival_mean"].fillna(0.0) * p).sum("surface") / p.sum("surface")
+                               ).assign_attrs(ds["arrival_mean"].attrs)
+    return out
 
 
 def _label(ds, dim) -> str:
@@ -533,7 +556,15 @@ def _draw_against(ax, da, member_dim, members, dims, ds, quantity, prefix="") ->
     colors = style.line_colors()
     styles = ("-", "--", ":", "-.")
     x = dims[0]
-    if len(dims) == 1:
+    if len(dims) == 1 and "surface" in da.dims:   # coupled surfaces: colour per member, style per surface
+        for j, m in enumerate(members):
+            for i, surface in enumerate(str(v) for v in da["surface"].values):
+                y = (da.sel({member_dim: m}) if m is not None else da).sel(surface=surface)
+                line = style.surface_style(i)
+                ax.plot(ds[x].values, y.values, marker="os^vDx"[i % 6], ms=3.5, color=colors[j % len(colors)],
+                        ls=line["ls"], lw=line["lw"],
+                        label=(f"{prefix}{m} on {surface}" if m is not None else f"on {surface}"))
+    elif len(dims) == 1:
         for j, m in enumerate(members):
             y = da.sel({member_dim: m}) if m is not None else da
             ax.plot(ds[x].values, y.values, marker="o", ms=3, color=colors[j % len(colors)],
