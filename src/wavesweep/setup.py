@@ -687,9 +687,17 @@ class CoupledSetup(Setup):
                     member["surface"] = raw["surface"]
         return out
 
-    def make_propagator(self, transform=None) -> CoupledSplitOperator:
+    def make_propagator(self, transform=None, members: int | None = None,
+                        threads: int | None = None) -> CoupledSplitOperator:
+        """The coupled split-operator of this job; ``members``: for a batch of
+        that many runs differing only in their packets (psi (members, S,
+        *grid), :mod:`wavesweep.batched`), its transform with ``threads``."""
+        if transform is None and members is not None:
+            rows = int(members) * len(self.surfaces)
+            transform = make_transform(self.grid, AUTO, np.complex128, threads or self.threads, members=rows)
         return CoupledSplitOperator(self.hamiltonian, self.dt, self.weights,
-                                    self.absorber if self.absorber.active else None)
+                                    self.absorber if self.absorber.active else None, transform=transform,
+                                    members=members)
 
     def make_observer(self) -> Observer:
         """One observer for all surfaces: each is a member of its batch."""

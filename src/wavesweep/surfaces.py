@@ -193,10 +193,19 @@ class CoupledSplitOperator:
     ``transform``: a :class:`~wavesweep.fft.Transform` of the grid with
     ``members`` = S (default: the best backend, complex128).
     ``absorbed`` (S, faces) is the probability each face has taken from
-    each surface; ``t`` the current time (atomic units)."""
+    each surface; ``t`` the current time (atomic units).
+
+    ``members`` M: a batch of M runs that differ only in their packets
+    (:mod:`wavesweep.batched`), psi of shape (M, S, *grid) and
+    ``absorbed`` (M, S, faces).  The M S surfaces are one batched transform
+    (the transform's ``members`` = M S), the kicks one kernel call over all
+    members with the matrices made once; the absorber is the same for every
+    member (its layers are part of the batch's key).  Each member's psi is
+    the one a solo run gives, to rounding: the same operations in the same
+    order, only the transforms' batch is larger."""
 
     def __init__(self, hamiltonian: SurfaceHamiltonian, dt: float, weights=STRANG, absorber=None,
-                 t0: float = 0.0, transform=None):
+                 t0: float = 0.0, transform=None, members: int | None = None):
         # lazy: the numba kernels (numba import, 0.12 s) load with the first propagator
         from .kernels import kernels_for
         self.h = hamiltonian
@@ -208,16 +217,22 @@ class CoupledSplitOperator:
         self.absorber = absorber if absorber is not None and absorber.active else None
         n_faces = len(self.absorber.layers) if self.absorber is not None else 0
         s = hamiltonian.size
-        self.absorbed = np.zeros((s, n_faces))
+        self.members = None if members is None else int(members)
+        # the state's leading axes, and its rows: one per surface (and member), each a grid
+        self._lead = (s,) if self.members is None else (self.members, s)
+        rows = s if self.members is None else self.members * s
+        self.absorbed = np.zeros(self._lead + (n_faces,))
+        self._absorbed_rows = self.absorbed.reshape(rows, n_faces)   # a view: the books of each row
         self._dv = self.grid.cell_volume
         self._nd = self.grid.ndim
         if transform is None:
-            transform = make_transform(self.grid, AUTO, np.complex128, members=s)
-        elif transform.members != s or transform.dtype != np.complex128:
-            raise ValueError(f"the transform of {s} coupled surfaces needs members={s} and complex128")
+            transform = make_transform(self.grid, AUTO, np.complex128, members=rows)
+        elif transform.members != rows or transform.dtype != np.complex128:
+            raise ValueError(f"the transform of {rows} coupled surfaces (members x surfaces) needs "
+                             f"members={rows} and complex128")
         self.transform = transform
         self._direct = transform.in_place()
-        self._kernels = kernels_for(self.grid.size * s, transform.threads)
+        self._kernels = kernels_for(self.grid.size * rows, transform.threads)
         # u's packed rows: U_ab = u[pair[a, b]] (upper triangle, row by row)
         upper = np.triu_indices(s)
         self._upper = upper
@@ -230,7 +245,7 @@ class CoupledSplitOperator:
         self._kicks: dict[tuple, tuple[np.ndarray, bool]] = {}
         self._losses: dict[tuple, list[np.ndarray]] = {}
         self._slabs = None     # (psi, its layers' slab views): the books' views, kept per array
-        self._loss_out = np.zeros(s)
+        self._loss_out = np.zeros(rows)
         if not hamiltonian.time_dependent:
             w = self._taus
             # the fused kicks: the call's first and last, across steps, inside a step
@@ -245,20 +260,47 @@ class CoupledSplitOperator:
                 lead = (slice(None),) * (4 - self._nd)
                 slabs = [lead + layer.slab for layer in self.absorber.layers]
                 self._boundary = ([np.ascontiguousarray(u_end[slab]) for slab in slabs],
-                                  [np.empty((s,) + u_end[slab].shape[1:], complex) for slab in slabs])
+                                  [np.empty((rows,) + u_end[slab].shape[1:], complex) for slab in slabs])
 
     @property
     def t(self) -> float:
         return self.t0 + self.steps_done * self.dt
 
     def load(self, psi: np.ndarray) -> np.ndarray:
-        """psi (S, *grid) as complex128 to step from: the transform's
-        buffer when it transforms in place (a copy otherwise)."""
+        """psi (S, *grid), or (M, S, *grid) for a batch, as complex128 to
+        step from: the transform's buffer when it transforms in place (a
+        copy otherwise)."""
         if self._direct is not None:
-            buf = self._direct[2]
+            buf = self._buffer()
             np.copyto(buf, psi)
             return buf
         return np.array(psi, dtype=np.complex128, copy=True)
+
+    def _buffer(self) -> np.ndarray:
+        """The in-place transform's buffer shaped as the state, (S, *grid)
+        (the buffer itself) or (M, S, *grid) (one view of it, kept)."""
+        buf = self._direct[2]
+        if self.members is None:
+            return buf
+        if getattr(self, "_state_view", None) is None:
+            self._state_view = buf.reshape(self._lead + self.grid.shape)
+        return self._state_view
+
+    def _rows(self, psi) -> np.ndarray:
+        """psi as (rows, *grid), one row per surface (and member): a view."""
+        return psi if self.members is None else psi.reshape((-1,) + self.grid.shape)
+
+    def _apply(self, psi, u, squared):
+        """psi <- U psi at every point, psi the state (S, *grid) or (M, S, *grid)."""
+        self._apply_rows(view4(self._rows(psi), self._nd), u, squared)
+
+    def _apply_rows(self, rows4, u, squared):
+        """The kick U (packed, the ``local_matrix`` kernel's layout) on the
+        4D rows (surface, or member x surface, then i, j, k) of psi or of a slab."""
+        if self.members is None:
+            self._kernels.local_matrix(rows4, u, self._pair, squared)
+        else:
+            self._kernels.local_matrix_members(rows4.reshape(self._lead + rows4.shape[1:]), u, self._pair, squared)
 
     # -- pieces ------------------------------------------------------------------
     def _kinetic_factor(self, tau):
@@ -282,12 +324,12 @@ class CoupledSplitOperator:
         if self._direct is not None:
             fwd, bwd, _ = self._direct
             fwd()
-            self._kernels.kinetic(view4(psi, self._nd), e0, e12)
+            self._kernels.kinetic(view4(self._rows(psi), self._nd), e0, e12)
             bwd()
             return psi
-        phi = self.transform.forward(psi)
+        phi = self.transform.forward(self._rows(psi))
         self._kernels.kinetic(view4(phi, self._nd), e0, e12)
-        return self.transform.backward(phi, scaled=False)
+        return self.transform.backward(phi, scaled=False).reshape(psi.shape)
 
     def _packed(self, v, tau, absorb):
         """exp(-i V tau) exp(-W absorb), V (S, S, *grid): its upper triangle
@@ -322,7 +364,7 @@ class CoupledSplitOperator:
         """psi's (S, ...) 4D views of the layers' slabs (kept while psi is the same array)."""
         if self._slabs is None or self._slabs[0] is not psi:
             lead = (slice(None),) * (4 - self._nd)
-            psi4 = view4(psi, self._nd)
+            psi4 = view4(self._rows(psi), self._nd)
             self._slabs = (psi, [psi4[lead + layer.slab] for layer in self.absorber.layers])
         return self._slabs[1]
 
@@ -335,7 +377,7 @@ class CoupledSplitOperator:
         for n, (slab, lw) in enumerate(zip(self._slab_views(psi), losses)):
             out[:] = 0.0
             kernel(slab, lw, out)
-            self.absorbed[:, n] += out * self._dv
+            self._absorbed_rows[:, n] += out * self._dv
 
     def _book_across(self, psi):
         """The books of the kick across two steps, as the two kicks it
@@ -347,13 +389,13 @@ class CoupledSplitOperator:
         common decay); the share of each surface is the composition's."""
         half = self._losses[self._plan[3]]
         self._book(psi, half)
-        out, loss, apply = self._loss_out, self._kernels.layer_loss, self._kernels.local_matrix
+        out, loss = self._loss_out, self._kernels.layer_loss
         for n, (slab, u, scratch, lw) in enumerate(zip(self._slab_views(psi), *self._boundary, half)):
             np.copyto(scratch, slab)
-            apply(scratch, u, self._pair, False)
+            self._apply_rows(scratch, u, False)
             out[:] = 0.0
             loss(scratch, lw, out)
-            self.absorbed[:, n] += out * self._dv
+            self._absorbed_rows[:, n] += out * self._dv
 
     # -- the step ----------------------------------------------------------------
     def step(self, psi: np.ndarray, nsteps: int = 1) -> np.ndarray:
@@ -367,7 +409,7 @@ class CoupledSplitOperator:
         caller keeping psi across steps copies it."""
         nsteps = int(nsteps)
         if self._direct is not None:
-            buf = self._direct[2]
+            buf = self._buffer()
             if psi is not buf:
                 np.copyto(buf, psi)
                 psi = buf
@@ -385,7 +427,11 @@ class CoupledSplitOperator:
         a true time."""
         first, inner, across, last = self._plan
         kicks, losses, taus = self._kicks, self._losses, self._taus
-        apply, nd, pair = self._kernels.local_matrix, self._nd, self._pair
+        nd, pair = self._nd, self._pair
+        if self.members is None:
+            apply, shape = self._kernels.local_matrix, None
+        else:   # (member, surface, i, j, k)
+            apply, shape = self._kernels.local_matrix_members, self._lead + (1,) * (3 - nd) + self.grid.shape
         book = self._book if self.absorber is not None else None
         m = len(taus) - 1
 
@@ -393,7 +439,7 @@ class CoupledSplitOperator:
             if book is not None:
                 book(psi, losses[key]) if key is not across else self._book_across(psi)
             u, squared = kicks[key]
-            apply(view4(psi, nd), u, pair, squared)
+            apply(view4(psi, nd) if shape is None else psi.reshape(shape), u, pair, squared)
 
         kick(psi, first)
         for n in range(nsteps):
@@ -408,8 +454,8 @@ class CoupledSplitOperator:
         """A time-dependent V, per sub-step: V at its middle, the half kick
         exp(-i V tau/2) made once and applied on both sides of the free
         step (times the absorber's exp(-W dt/2) at the step's ends)."""
-        taus, nd, pair = self._taus, self._nd, self._pair
-        apply = self._kernels.local_matrix
+        taus, nd = self._taus, self._nd
+        apply = self._apply
         starts = np.concatenate([[0.0], np.cumsum(taus)[:-1]])
         ends = self._loss_weights(self.dt / 2)
         if self.absorber is not None:
@@ -423,10 +469,9 @@ class CoupledSplitOperator:
                 for side in (0, 1):
                     if side:
                         psi = self._free(psi, tau)
-                    psi4 = view4(psi, nd)
                     if self.absorber is not None and (j, side) in ((0, 0), (m, 1)):
                         self._book(psi, ends)
-                        apply(psi4, u * decay, pair, False)
+                        apply(psi, u * decay, False)
                     else:
-                        apply(psi4, u, pair, False)
+                        apply(psi, u, False)
         return psi
