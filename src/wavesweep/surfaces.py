@@ -46,7 +46,8 @@ from .kernels import view4
 from .propagators import scheme_class
 from .propagators.coefficients import STRANG
 
-__all__ = ["SurfaceHamiltonian", "local_exponential", "CoupledSplitOperator", "coupled_weights"]
+__all__ = ["SurfaceHamiltonian", "local_exponential", "CoupledSplitOperator", "CoupledChebyshev", "coupled_weights",
+           "COUPLED_EXPANSIONS"]
 
 # The split-operator compositions a coupled run can use: each registered
 # split-operator scheme's own weights (read from the registry, by name)
@@ -140,6 +141,18 @@ class SurfaceHamiltonian:
         out = self.kinetic_operator.apply_kinetic(psi)
         v = self.matrix(t) if self.time_dependent else self._static
         return out + np.einsum("ab...,b...->a...", v, psi)
+
+    def spectral_range(self, t: float | None = None) -> tuple[float, float]:
+        """Bounds (hartree) of the spectrum of the discretised H (static
+        part, or at ``t``): the eigenvalues of V(r) over the grid
+        (numpy.linalg.eigvalsh per point) plus the kinetic energies' range.
+        H = T (x) 1 + V with V block-diagonal in position, so by Weyl's
+        inequality its eigenvalues lie within [min T + min eig V, max T +
+        max eig V]; the Chebyshev expansion scales H into [-1, 1] with them."""
+        v = self.matrix(t if self.time_dependent else None)
+        eig = np.linalg.eigvalsh(np.moveaxis(v.reshape(self.size, self.size, -1), -1, 0))
+        kinetic = self.kinetic_operator.kinetic
+        return float(eig.min()) + float(kinetic.min()), float(eig.max()) + float(kinetic.max())
 
 
 def local_exponential(v: np.ndarray, tau: float) -> np.ndarray:
@@ -475,3 +488,89 @@ class CoupledSplitOperator:
                     else:
                         apply(psi, u, False)
         return psi
+
+
+class CoupledChebyshev:
+    """The Chebyshev expansion of exp(-i H dt) on coupled surfaces, H = T
+    (x) 1 + V(r) time-independent (Tal-Ezer & Kosloff, J. Chem. Phys. 81,
+    3967 (1984)), as the single surface's
+    (:class:`~wavesweep.propagators.chebyshev.Chebyshev`, whose expansion
+    it shares): H psi is T psi_a on every surface (the grid's transform,
+    FFT or DST-I) plus sum_b V_ab psi_b, and the spectral bounds those of
+    :meth:`SurfaceHamiltonian.spectral_range`.  Exact to rounding for any
+    dt; the cost per step grows like the spectral half width times dt.
+
+    Absorbers as on one surface: a mask, exp(-W dt) on every surface once
+    per step after the expansion, booked per surface and face from the
+    density before it; a CAP (non-Hermitian H) and a V that changes in time
+    are refused (ValueError; :class:`~wavesweep.setup.CoupledSetup` says it
+    in one line naming the field).  ``absorbed`` (S, faces), ``t`` as
+    :class:`CoupledSplitOperator`."""
+
+    name = "chebyshev"
+
+    def __init__(self, hamiltonian: SurfaceHamiltonian, dt: float, absorber=None, t0: float = 0.0):
+        # lazy: the expansion's coefficients are the single-surface scheme's (propagators imports no surfaces)
+        from .propagators.chebyshev import Chebyshev
+        if hamiltonian.time_dependent:
+            raise ValueError("the Chebyshev expansion needs time-independent surfaces and couplings")
+        self.absorber = absorber if absorber is not None and absorber.active else None
+        if self.absorber is not None and self.absorber.kind == "cap":
+            raise ValueError("the Chebyshev expansion cannot use a CAP (non-Hermitian H); use a mask")
+        self.h = hamiltonian
+        self.grid = hamiltonian.grid
+        self.dt = float(dt)
+        self.t0 = float(t0)
+        self.steps_done = 0
+        n_faces = len(self.absorber.layers) if self.absorber is not None else 0
+        self.absorbed = np.zeros((hamiltonian.size, n_faces))
+        self.e_mid, self.e_half, self.coefficients = Chebyshev._expansion(hamiltonian, self.dt)
+        self._v = hamiltonian.matrix(None)
+        self._kinetic = hamiltonian.kinetic_operator
+        if self.absorber is not None:
+            self._mask = np.exp(-self.absorber.rate * self.dt)
+            self._loss = self.absorber.loss_weights(self.dt)
+
+    @property
+    def t(self) -> float:
+        return self.t0 + self.steps_done * self.dt
+
+    def load(self, psi: np.ndarray) -> np.ndarray:
+        """A complex128 copy of psi (S, *grid) to step from."""
+        return np.array(psi, dtype=np.complex128, copy=True)
+
+    def _scaled_h(self, phi):
+        """(H phi - E_mid phi) / E_half on every surface."""
+        out = self._kinetic.apply_kinetic(phi)
+        out += np.einsum("ab...,b...->a...", self._v, phi)
+        out -= self.e_mid * phi
+        out /= self.e_half
+        return out
+
+    def step(self, psi: np.ndarray, nsteps: int = 1) -> np.ndarray:
+        """Advance psi (S, *grid) by ``nsteps`` steps (a new array)."""
+        psi = np.asarray(psi, dtype=np.complex128)
+        c = self.coefficients
+        dv = self.grid.cell_volume
+        for _ in range(int(nsteps)):
+            prev = psi
+            cur = self._scaled_h(psi)
+            out = c[0] * prev + c[1] * cur
+            for a in c[2:]:   # the recurrence T_n+1 = 2 H_n T_n - T_n-1
+                nxt = 2.0 * self._scaled_h(cur) - prev
+                out += a * nxt
+                prev, cur = cur, nxt
+            psi = out
+            if self.absorber is not None:
+                density = np.abs(psi) ** 2
+                for n, (layer, lw) in enumerate(zip(self.absorber.layers, self._loss)):
+                    slab = (slice(None),) + layer.slab
+                    self.absorbed[:, n] += np.sum(density[slab] * lw, axis=tuple(range(1, 1 + self.grid.ndim))) * dv
+                psi *= self._mask
+        self.steps_done += int(nsteps)
+        return psi
+
+
+# Schemes that expand exp(-i H dt) on coupled surfaces, by the job's evolve.scheme
+# (the split-operator schemes are read from the registry, coupled_weights)
+COUPLED_EXPANSIONS = {CoupledChebyshev.name: CoupledChebyshev}
