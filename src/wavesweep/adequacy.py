@@ -1668,7 +1668,11 @@ def coupled_findings(setup) -> list[Finding]:
     kin_phase, pot_phase = e_kin * dt, v_span * dt
     phase = max(kin_phase, pot_phase)
     level = "ok" if phase <= 1.0 else ("warn" if phase <= math.pi else "error")
-    msg = (f"coupled surfaces, phase per step: kinetic energy at most (packet's reach, plus the potential's "
+    exact = setup.scheme.exact_in_time   # chebyshev: a converged expansion of exp(-i H dt), no phase to wrap
+    if exact:
+        level = "ok"
+    msg = ("exact for a static H at any dt (chebyshev): " if exact else "") + (
+           f"coupled surfaces, phase per step: kinetic energy at most (packet's reach, plus the potential's "
            f"range) {kin_phase:.3g} rad, eigenvalues of the potential matrix over the grid "
            f"{pot_phase:.3g} rad (<= 1 is common practice; above pi it wraps); the grid's highest kinetic "
            f"energy {setup.grid.kinetic_max(setup.mass) * dt:.3g} rad (dt = {dt / tf:g} {T})")
