@@ -33,6 +33,16 @@ the transform's buffer where the backend allows, with the kinetic phase
 2.1-2.2 single-surface steps, the FFT pair of two members being two.  A
 time-dependent V is exponentiated per sub-step (at its middle) with numpy
 and applied by the same kernel.
+
+A batch of M runs that differ only in their packets
+(:mod:`wavesweep.batched`) is the same propagator with ``members`` = M:
+psi (M, S, *grid), the kinetic step one transform of all M S rows, each
+kick one kernel call over all members with the matrices made once.
+
+:class:`CoupledChebyshev` expands exp(-i H dt) for a time-independent V
+(``evolve.scheme = 'chebyshev'``; Tal-Ezer & Kosloff 1984), H applied as T
+on every surface plus the local matrix, its spectral bounds from the
+eigenvalues of V over the grid (:meth:`SurfaceHamiltonian.spectral_range`).
 """
 from __future__ import annotations
 

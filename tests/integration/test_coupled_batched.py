@@ -156,3 +156,25 @@ def test_a_study_of_coupled_runs_drains_in_batches(tmp_path):
         job = job_from_dict(tomllib.loads(q.run(run["study"], run["run_id"])["job_toml"]))
         solo = Simulation(job).run(tmp_path / "solo", progress=False)
         assert_same_file(solo, q.result_path(run["study"], run["run_id"]), 1e-12)
+
+
+def test_an_interrupted_coupled_member_resumes_later_and_matches(tmp_path):
+    """A member stopped with a checkpoint (psi (surfaces, *grid), absorbed
+    (surfaces, faces)) resumes in a later batch and ends as its solo run."""
+    from wavesweep.errors import RunInterrupted
+    from wavesweep.io.checkpoint import CheckpointPolicy, ResultExists
+    table = {**copy.deepcopy(ABSORBED_JOB), "evolve": {**ABSORBED_JOB["evolve"], "duration": 16.0}}
+    jobs = _jobs(table, PACKETS)
+    policies = [CheckpointPolicy(tmp_path / f"ck{i}", every_seconds=3600.0) for i in range(3)]
+    paths = [tmp_path / "batch" / f"{i}.nc" for i in range(3)]
+    asked = []
+
+    def stop_second(i):
+        asked.append(i)
+        return i == 1 and asked.count(1) == 20     # at the 20th sample, after the packets reached the CAP
+    first = BatchedRun(jobs).run(paths, checkpoints=policies, should_stop=stop_second)
+    assert isinstance(first[1], RunInterrupted) and first[1].checkpoint is not None
+    second = BatchedRun(jobs).run(paths, checkpoints=policies)
+    assert isinstance(second[0], ResultExists) and second[1] == paths[1]
+    solo = Simulation(jobs[1]).run(tmp_path / "solo", progress=False)
+    assert_same_file(solo, paths[1], 1e-12)
