@@ -255,6 +255,7 @@ class CoupledSplitOperator:
                              f"members={rows} and complex128")
         self.transform = transform
         self._direct = transform.in_place()
+        self._state_view = None   # a batch's (M, S, *grid) view of the in-place buffer (_buffer)
         self._kernels = kernels_for(self.grid.size * rows, transform.threads)
         # u's packed rows: U_ab = u[pair[a, b]] (upper triangle, row by row)
         upper = np.triu_indices(s)
@@ -305,7 +306,7 @@ class CoupledSplitOperator:
         buf = self._direct[2]
         if self.members is None:
             return buf
-        if getattr(self, "_state_view", None) is None:
+        if self._state_view is None:
             self._state_view = buf.reshape(self._lead + self.grid.shape)
         return self._state_view
 
