@@ -54,6 +54,7 @@ from .fft import AUTO, make_transform
 from .hamiltonian import Hamiltonian
 from .kernels import view4
 from .propagators import scheme_class
+from .propagators.chebyshev import chebyshev_expansion
 from .propagators.coefficients import STRANG
 
 __all__ = ["SurfaceHamiltonian", "local_exponential", "CoupledSplitOperator", "CoupledChebyshev", "coupled_weights",
@@ -506,7 +507,7 @@ class CoupledChebyshev:
     (x) 1 + V(r) time-independent (Tal-Ezer & Kosloff, J. Chem. Phys. 81,
     3967 (1984)), as the single surface's
     (:class:`~wavesweep.propagators.chebyshev.Chebyshev`, whose expansion
-    it shares): H psi is T psi_a on every surface (the grid's transform,
+    it shares: :func:`~wavesweep.propagators.chebyshev.chebyshev_expansion`): H psi is T psi_a on every surface (the grid's transform,
     FFT or DST-I) plus sum_b V_ab psi_b, and the spectral bounds those of
     :meth:`SurfaceHamiltonian.spectral_range`.  Exact to rounding for any
     dt; the cost per step grows like the spectral half width times dt.
@@ -521,8 +522,6 @@ class CoupledChebyshev:
     name = "chebyshev"
 
     def __init__(self, hamiltonian: SurfaceHamiltonian, dt: float, absorber=None, t0: float = 0.0):
-        # lazy: the expansion's coefficients are the single-surface scheme's (propagators imports no surfaces)
-        from .propagators.chebyshev import Chebyshev
         if hamiltonian.time_dependent:
             raise ValueError("the Chebyshev expansion needs time-independent surfaces and couplings")
         self.absorber = absorber if absorber is not None and absorber.active else None
@@ -535,7 +534,7 @@ class CoupledChebyshev:
         self.steps_done = 0
         n_faces = len(self.absorber.layers) if self.absorber is not None else 0
         self.absorbed = np.zeros((hamiltonian.size, n_faces))
-        self.e_mid, self.e_half, self.coefficients = Chebyshev._expansion(hamiltonian, self.dt)
+        self.e_mid, self.e_half, self.coefficients = chebyshev_expansion(hamiltonian, self.dt)
         self._v = hamiltonian.matrix(None)
         self._kinetic = hamiltonian.kinetic_operator
         if self.absorber is not None:

@@ -14,6 +14,7 @@ import copy
 
 import numpy as np
 import pytest
+import xarray as xr
 
 from test_batched import assert_same_file
 from test_coupled_runs import ABSORBED_JOB
@@ -56,7 +57,6 @@ def test_coupled_members_write_the_files_of_solo_runs(tmp_path, threads):
     assert all(not isinstance(o, BaseException) for o in out), out
     for a, b in zip(solo, out):
         assert_same_file(a, b, 1e-12)
-    import xarray as xr   # lazy: only to show the books were not empty
     with xr.open_dataset(out[0]) as ds:
         assert ds["absorbed"].dims == ("time", "surface", "boundary")
         assert float(ds["absorbed"][-1].sum()) > 1e-2 and float(ds["norm"][-1].sel(surface="B")) > 1e-3
