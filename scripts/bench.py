@@ -161,18 +161,33 @@ BATCH_JOB = {
     "detector": [{"name": "beyond", "x": 30.0}, {"name": "before", "x": -60.0}],
 }
 
+# the batched study on two coupled surfaces (--surfaces-batch): crossing curves, a
+# coupling where they cross, packets on either surface; a CAP of given strength
+SURFACES_BATCH_JOB = {
+    **{k: v for k, v in BATCH_JOB.items() if k != "potential"},
+    "title": "surfaces batch bench",
+    "surface": [{"name": "A", "potential": [{"kind": "expression", "expression": "0.02 * tanh(x / 5)"}]},
+                {"name": "B", "potential": [{"kind": "expression", "expression": "0.01 - 0.02 * tanh(x / 5)"}]}],
+    "coupling": [{"surfaces": ["A", "B"], "potential": [{"kind": "expression", "expression": "0.01 * exp(-x*x / 10)"}]}],
+    "packet": {"center": -40.0, "width": 6.0, "momentum": 1.0, "surface": "A"},
+    "evolve": {"dt": 0.02, "duration": 50.0},
+}
+
 _BATCH_RUN = """
 import sys, json, time, copy, tempfile
 sys.path.insert(0, sys.argv[1])
-from bench import BATCH_JOB
+from bench import BATCH_JOB, SURFACES_BATCH_JOB
 from wavesweep.job import job_from_dict
 from wavesweep.run import Simulation
 from wavesweep.batched import BatchedRun
 runs, mode = int(sys.argv[2]), sys.argv[3]
+BATCH_JOB = SURFACES_BATCH_JOB if sys.argv[4] == "coupled" else BATCH_JOB
 jobs = []
 for i in range(runs):
     t = copy.deepcopy(BATCH_JOB)
     t["packet"]["momentum"] = 0.7 + 0.8 * i / max(runs - 1, 1)
+    if "surface" in t:   # members on either surface
+        t["packet"]["surface"] = "AB"[i % 2]
     jobs.append(job_from_dict(t))
 with tempfile.TemporaryDirectory() as tmp:
     # warm: numba's cache and FFTW wisdom loaded, as in a worker's second run
@@ -189,11 +204,12 @@ with tempfile.TemporaryDirectory() as tmp:
 """
 
 
-def bench_batch(runs: int, repeats: int):
+def bench_batch(runs: int, repeats: int, coupled: bool = False):
     """Throughput of an energy sweep of ``runs`` runs x 2048 points run as
     one batch against the same runs one after the other in one process
     (whole runs: set-up, propagation, recording, result files), each mode
-    in a fresh process per round, rounds alternating."""
+    in a fresh process per round, rounds alternating; ``coupled``: runs on
+    two coupled surfaces (SURFACES_BATCH_JOB)."""
     import json
     import os
     import subprocess
@@ -202,13 +218,15 @@ def bench_batch(runs: int, repeats: int):
     for _ in range(repeats):
         t = {}
         for mode in ("solo", "batch"):
-            out = subprocess.run([sys.executable, "-c", _BATCH_RUN, os.path.dirname(__file__), str(runs), mode],
-                                 capture_output=True, text=True, check=True)
+            out = subprocess.run([sys.executable, "-c", _BATCH_RUN, os.path.dirname(__file__), str(runs), mode,
+                                  "coupled" if coupled else "single"], capture_output=True, text=True, check=True)
             t[mode] = json.loads(out.stdout.strip().splitlines()[-1])["seconds"]
         ratios.append(t["solo"] / t["batch"])
-    print(f"batched study, {runs} runs x 2048 points ({BATCH_JOB['evolve']['duration'] / BATCH_JOB['evolve']['dt']:.0f}"
+    job = SURFACES_BATCH_JOB if coupled else BATCH_JOB
+    print(f"batched study, {runs} runs x 2048 points{' x 2 coupled surfaces' if coupled else ''} "
+          f"({job['evolve']['duration'] / job['evolve']['dt']:.0f}"
           f" steps each): {statistics.median(ratios):.2f}x the throughput of running them one by one "
-          f"(median over {repeats} rounds)")
+          f"(median over {repeats} rounds; ratios {', '.join(f'{r:.2f}' for r in ratios)})")
 
 
 _START = r"""
@@ -624,9 +642,14 @@ def main():
                     help="a two-surface strang step against a single-surface step and its FFT pair only")
     ap.add_argument("--adiabatic", action="store_true",
                     help="record.adiabatic's populations and local basis against a two-surface step only")
+    ap.add_argument("--surfaces-batch", action="store_true",
+                    help="batched-study throughput on two coupled surfaces only (16 runs x 2048 points)")
     args = ap.parse_args()
     if args.adiabatic:
         bench_adiabatic(3 if args.quick else args.repeats)
+        return
+    if args.surfaces_batch:
+        bench_batch(16, 3 if args.quick else 5, coupled=True)
         return
     if args.surfaces:
         bench_surfaces(3 if args.quick else args.repeats, args.backend)

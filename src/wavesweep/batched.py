@@ -9,6 +9,15 @@ observables are one pass over all members), while every member keeps its
 own books: its own result file, checkpoints, health checks and outcome.
 A member's file is the one a solo run of its job writes (to rounding).
 
+Runs on coupled surfaces ([[surface]]) batch the same way when their jobs
+differ only in [packet] (its ``surface`` included): psi of shape
+(members, surfaces, *grid) under one
+:class:`~wavesweep.surfaces.CoupledSplitOperator` with ``members``, whose
+kinetic step is one transform of all members' surfaces and whose kicks are
+one kernel call over all members; each member is measured by its own
+set-up (:meth:`~wavesweep.setup.CoupledSetup.measure`).  Their absorber is
+part of the key as a whole (the kick carries it, made once for the batch).
+
 Batching pays on small grids, where the per-step Python and per-call
 overheads of a solo run cost more than its transforms, and where one run
 is too small to use more than one core (threads start paying from
@@ -45,29 +54,27 @@ BATCH_MAX_MEMBERS = 64
 def batch_key(table: dict) -> str | None:
     """Jobs (resolved tables) with the same key can be stepped as one batch:
     everything but the packet, the title, and the CAP's strength and
-    exponent must agree.  None for jobs that are never batched: a scheme
-    that cannot step a batch, coupled surfaces, a falling grid, or a grid
-    too large for two members."""
+    exponent must agree (on coupled surfaces the whole absorber: see the
+    module notes).  None for jobs that are never batched: a scheme that
+    cannot step a batch (on coupled surfaces: any but a split-operator
+    scheme), a falling grid, or a grid too large for two members."""
     try:
         scheme = scheme_class(table["evolve"]["scheme"])
     except Exception:
         return None
     if not getattr(scheme, "batched", False):
         return None
-    if table.get("surface"):
-        return None   # coupled surfaces: each run steps alone (their batches are not built yet)
+    coupled = bool(table.get("surface"))
+    if coupled and getattr(scheme, "weights", None) is None:
+        return None   # coupled surfaces step a batch with the coupled split-operator only
     if table.get("grid", {}).get("frame", "lab") != "lab":
         return None   # a falling grid follows its own packet: every member would need its own frame
-    points = 1
-    for name in ("x", "y", "z", "r"):
-        axis = table.get("grid", {}).get(name)
-        if isinstance(axis, dict):
-            points *= int(axis.get("points", 0))
+    points = _state_elements(table)
     if 2 * points > BATCH_MAX_ELEMENTS:
         return None
     rest = copy.deepcopy({k: v for k, v in table.items() if k not in ("packet", "title")})
     absorber = rest.get("absorber")
-    if isinstance(absorber, dict):
+    if isinstance(absorber, dict) and not coupled:
         absorber.pop("strength", None)
         absorber.pop("power", None)
     text = json.dumps(rest, sort_keys=True, default=str)
@@ -84,12 +91,17 @@ def batch_group(job_toml: str) -> tuple[str, int] | None:
     key = batch_key(table)
     if key is None:
         return None
+    return key, members_for(_state_elements(table))
+
+
+def _state_elements(table: dict) -> int:
+    """Complex numbers of one run's state: grid points, times the surfaces of a coupled job."""
     points = 1
     for name in ("x", "y", "z", "r"):
-        axis = table["grid"].get(name)
+        axis = table.get("grid", {}).get(name)
         if isinstance(axis, dict):
             points *= int(axis.get("points", 0))
-    return key, members_for(points)
+    return points * max(1, len(table.get("surface") or ()))
 
 
 def members_for(grid_points: int, limit: int = BATCH_MAX_MEMBERS) -> int:
@@ -206,7 +218,7 @@ class BatchedRun:
         lanes = []
         for lo, hi in zip(bounds[:-1], bounds[1:]):
             if hi > lo:
-                lanes.append(_Lane(list(range(lo, hi)), [sims[k] for k in range(lo, hi)],
+                lanes.append((_CoupledLane if sims[0].coupled else _Lane)(list(range(lo, hi)), [sims[k] for k in range(lo, hi)],
                                    [group_books[k] for k in range(lo, hi)],
                                    threads=1 if n_lanes > 1 else s0.threads))
         return lanes
@@ -316,3 +328,32 @@ class _Lane:
 
     def measure(self) -> list[dict]:
         return self.observer.measure_members(self.psi, self.potential(self.prop.t))
+
+
+class _CoupledLane:
+    """Members of a batch on coupled surfaces: psi (members, surfaces,
+    *grid) stepped by one :class:`~wavesweep.surfaces.CoupledSplitOperator`
+    with ``members``; each member measured by its own set-up and observer,
+    as its solo run measures it."""
+
+    def __init__(self, positions, sims, books, threads=None):
+        s0 = sims[0].setup
+        nb = len(sims)
+        self.positions = positions
+        self.prop = s0.make_propagator(members=nb, threads=threads)
+        set_kernel_threads(self.prop.transform.threads)
+        self.setups = [s.setup for s in sims]
+        self.observers = [s.setup.make_observer() for s in sims]
+        self.psi = self.prop.load(np.stack([b.psi for b in books]))
+        for b in books:
+            b.psi = None
+        self.prop.steps_done = books[0].steps
+        self.prop.absorbed[:] = np.stack([b.absorbed for b in books])
+
+    def step(self, n: int) -> None:
+        self.psi = self.prop.step(self.psi, n)
+
+    def measure(self) -> list[dict]:
+        t = self.prop.t
+        return [setup.measure(observer, self.psi[j], t)
+                for j, (setup, observer) in enumerate(zip(self.setups, self.observers))]

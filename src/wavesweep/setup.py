@@ -44,8 +44,8 @@ from .potentials import PotentialContext, make_term
 from .propagators import scheme_class
 from .schema import to_atomic
 from .states import PACKET_SCHEMAS, PACKETS, build_state, build_surface_state, without_momentum
-from .surfaces import (CoupledSplitOperator, SurfaceHamiltonian, adiabatic_populations, coupled_weights,
-                       local_eigenvectors)
+from .surfaces import (COUPLED_EXPANSIONS, CoupledChebyshev, CoupledSplitOperator, SurfaceHamiltonian,
+                       adiabatic_populations, coupled_weights, local_eigenvectors)
 
 __all__ = ["Model", "Setup", "CoupledSetup", "resolve_job", "analysis_record", "recorded_run", "rebuilt_record",
            "final_detector_values", "records_final_values", "set_kernel_threads", "AXIS_LONG"]
@@ -626,7 +626,9 @@ class CoupledSetup(Setup):
     progress): the grid, each surface's and each pair's terms, psi0 of shape
     (S, *grid) (:func:`~wavesweep.states.build_surface_state`), the absorber
     (the same layers on every surface), the :class:`SurfaceHamiltonian`
-    with its rate, the coupled split-operator propagator and an observer
+    with its rate, the coupled split-operator propagator (or, for
+    ``evolve.scheme = 'chebyshev'`` and a time-independent V, the Chebyshev
+    expansion, :class:`~wavesweep.surfaces.CoupledChebyshev`) and an observer
     per surface.  :class:`~wavesweep.run.Simulation` builds it for a job
     with surfaces (:class:`Setup` refuses one); the result file then has a
     ``surface`` dimension.  A CAP without a strength is tuned per face to
@@ -663,11 +665,17 @@ class CoupledSetup(Setup):
         for refused, field, message in refusals:
             if refused:
                 raise JobError(field, message)
-        try:
-            self.weights = coupled_weights(ev["scheme"])
-        except ValueError:
-            raise JobError("evolve.scheme", f"{ev['scheme']!r} cannot propagate coupled surfaces; use a "
-                                            "split-operator scheme: 'strang', 'order4' or 'order4_suzuki'") from None
+        self.weights = None   # an expansion of exp(-i H dt) (COUPLED_EXPANSIONS) has none
+        if ev["scheme"] in COUPLED_EXPANSIONS:
+            self._check_expansion(ev["scheme"], t["absorber"])
+        else:
+            try:
+                self.weights = coupled_weights(ev["scheme"])
+            except ValueError:
+                raise JobError("evolve.scheme", f"{ev['scheme']!r} cannot propagate coupled surfaces; use a "
+                                                "split-operator scheme: 'strang', 'order4' or 'order4_suzuki', or "
+                                                f"{', '.join(map(repr, COUPLED_EXPANSIONS))} (time-independent "
+                                                "surfaces and couplings)") from None
         self.scheme = scheme_class(ev["scheme"])
         self.dtype = np.complex128
         self.packet = self._packet_atomic(t["packet"])
@@ -713,6 +721,20 @@ class CoupledSetup(Setup):
         meets the tuning's worst return on each."""
         return coupled_dynamics(self).windows[face]
 
+    def _check_expansion(self, scheme: str, absorber: dict) -> None:
+        """Refuse what an expansion of exp(-i H dt) on coupled surfaces
+        (:class:`~wavesweep.surfaces.CoupledChebyshev`) cannot do, in one
+        line naming the field: a V that changes in time, a CAP."""
+        terms = [term for ts in self.surface_terms + list(self.coupling_terms.values()) for term in ts]
+        if any(term.time_dependent for term in terms):
+            raise JobError("evolve.scheme", f"{scheme!r} expands exp(-i H dt) for a time-independent H, and this "
+                                            "job's surfaces or couplings change in time; use a split-operator "
+                                            "scheme: evolve.scheme = 'strang', 'order4' or 'order4_suzuki'")
+        if absorber["kind"] == "cap":
+            raise JobError("absorber.kind", f"{scheme!r} cannot use a CAP (non-Hermitian H), on coupled surfaces "
+                                            "as on one; use absorber.kind = 'mask', or a split-operator scheme "
+                                            "('strang', 'order4' or 'order4_suzuki')")
+
     def recorded_potential(self) -> np.ndarray:
         """Each surface's static diagonal V_ss (hartree), (surface, *grid)."""
         v = self.hamiltonian.matrix(None)
@@ -735,9 +757,23 @@ class CoupledSetup(Setup):
                     member["surface"] = raw["surface"]
         return out
 
-    def make_propagator(self, transform=None) -> CoupledSplitOperator:
-        return CoupledSplitOperator(self.hamiltonian, self.dt, self.weights,
-                                    self.absorber if self.absorber.active else None)
+    def make_propagator(self, transform=None, members: int | None = None,
+                        threads: int | None = None) -> CoupledSplitOperator | CoupledChebyshev:
+        """The coupled split-operator of this job (or the expansion its
+        scheme names, :data:`~wavesweep.surfaces.COUPLED_EXPANSIONS`);
+        ``members``: for a batch of that many runs differing only in their
+        packets (psi (members, S, *grid), :mod:`wavesweep.batched`), its
+        transform with ``threads``."""
+        absorber = self.absorber if self.absorber.active else None
+        if self.weights is None:
+            if members is not None:
+                raise ValueError(f"{self.scheme.name!r} on coupled surfaces steps one run at a time")
+            return COUPLED_EXPANSIONS[self.scheme.name](self.hamiltonian, self.dt, absorber)
+        if transform is None and members is not None:
+            rows = int(members) * len(self.surfaces)
+            transform = make_transform(self.grid, AUTO, np.complex128, threads or self.threads, members=rows)
+        return CoupledSplitOperator(self.hamiltonian, self.dt, self.weights, absorber, transform=transform,
+                                    members=members)
 
     def make_observer(self) -> Observer:
         """One observer for all surfaces: each is a member of its batch."""

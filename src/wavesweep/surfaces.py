@@ -33,6 +33,16 @@ the transform's buffer where the backend allows, with the kinetic phase
 2.1-2.2 single-surface steps, the FFT pair of two members being two.  A
 time-dependent V is exponentiated per sub-step (at its middle) with numpy
 and applied by the same kernel.
+
+A batch of M runs that differ only in their packets
+(:mod:`wavesweep.batched`) is the same propagator with ``members`` = M:
+psi (M, S, *grid), the kinetic step one transform of all M S rows, each
+kick one kernel call over all members with the matrices made once.
+
+:class:`CoupledChebyshev` expands exp(-i H dt) for a time-independent V
+(``evolve.scheme = 'chebyshev'``; Tal-Ezer & Kosloff 1984), H applied as T
+on every surface plus the local matrix, its spectral bounds from the
+eigenvalues of V over the grid (:meth:`SurfaceHamiltonian.spectral_range`).
 """
 from __future__ import annotations
 
@@ -44,10 +54,11 @@ from .fft import AUTO, make_transform
 from .hamiltonian import Hamiltonian
 from .kernels import view4
 from .propagators import scheme_class
+from .propagators.chebyshev import chebyshev_expansion
 from .propagators.coefficients import STRANG
 
-__all__ = ["SurfaceHamiltonian", "local_exponential", "CoupledSplitOperator", "coupled_weights",
-           "local_eigenvectors", "adiabatic_populations", "PHASE_CONVENTION"]
+__all__ = ["SurfaceHamiltonian", "local_exponential", "CoupledSplitOperator", "CoupledChebyshev", "coupled_weights",
+           "COUPLED_EXPANSIONS", "local_eigenvectors", "adiabatic_populations", "PHASE_CONVENTION"]
 
 # The split-operator compositions a coupled run can use: each registered
 # split-operator scheme's own weights (read from the registry, by name)
@@ -141,6 +152,18 @@ class SurfaceHamiltonian:
         out = self.kinetic_operator.apply_kinetic(psi)
         v = self.matrix(t) if self.time_dependent else self._static
         return out + np.einsum("ab...,b...->a...", v, psi)
+
+    def spectral_range(self, t: float | None = None) -> tuple[float, float]:
+        """Bounds (hartree) of the spectrum of the discretised H (static
+        part, or at ``t``): the eigenvalues of V(r) over the grid
+        (numpy.linalg.eigvalsh per point) plus the kinetic energies' range.
+        H = T (x) 1 + V with V block-diagonal in position, so by Weyl's
+        inequality its eigenvalues lie within [min T + min eig V, max T +
+        max eig V]; the Chebyshev expansion scales H into [-1, 1] with them."""
+        v = self.matrix(t if self.time_dependent else None)
+        eig = np.linalg.eigvalsh(np.moveaxis(v.reshape(self.size, self.size, -1), -1, 0))
+        kinetic = self.kinetic_operator.kinetic
+        return float(eig.min()) + float(kinetic.min()), float(eig.max()) + float(kinetic.max())
 
 
 def local_exponential(v: np.ndarray, tau: float) -> np.ndarray:
@@ -282,10 +305,19 @@ class CoupledSplitOperator:
     ``transform``: a :class:`~wavesweep.fft.Transform` of the grid with
     ``members`` = S (default: the best backend, complex128).
     ``absorbed`` (S, faces) is the probability each face has taken from
-    each surface; ``t`` the current time (atomic units)."""
+    each surface; ``t`` the current time (atomic units).
+
+    ``members`` M: a batch of M runs that differ only in their packets
+    (:mod:`wavesweep.batched`), psi of shape (M, S, *grid) and
+    ``absorbed`` (M, S, faces).  The M S surfaces are one batched transform
+    (the transform's ``members`` = M S), the kicks one kernel call over all
+    members with the matrices made once; the absorber is the same for every
+    member (its layers are part of the batch's key).  Each member's psi is
+    the one a solo run gives, to rounding: the same operations in the same
+    order, only the transforms' batch is larger."""
 
     def __init__(self, hamiltonian: SurfaceHamiltonian, dt: float, weights=STRANG, absorber=None,
-                 t0: float = 0.0, transform=None):
+                 t0: float = 0.0, transform=None, members: int | None = None):
         # lazy: the numba kernels (numba import, 0.12 s) load with the first propagator
         from .kernels import kernels_for
         self.h = hamiltonian
@@ -297,16 +329,23 @@ class CoupledSplitOperator:
         self.absorber = absorber if absorber is not None and absorber.active else None
         n_faces = len(self.absorber.layers) if self.absorber is not None else 0
         s = hamiltonian.size
-        self.absorbed = np.zeros((s, n_faces))
+        self.members = None if members is None else int(members)
+        # the state's leading axes, and its rows: one per surface (and member), each a grid
+        self._lead = (s,) if self.members is None else (self.members, s)
+        rows = s if self.members is None else self.members * s
+        self.absorbed = np.zeros(self._lead + (n_faces,))
+        self._absorbed_rows = self.absorbed.reshape(rows, n_faces)   # a view: the books of each row
         self._dv = self.grid.cell_volume
         self._nd = self.grid.ndim
         if transform is None:
-            transform = make_transform(self.grid, AUTO, np.complex128, members=s)
-        elif transform.members != s or transform.dtype != np.complex128:
-            raise ValueError(f"the transform of {s} coupled surfaces needs members={s} and complex128")
+            transform = make_transform(self.grid, AUTO, np.complex128, members=rows)
+        elif transform.members != rows or transform.dtype != np.complex128:
+            raise ValueError(f"the transform of {rows} coupled surfaces (members x surfaces) needs "
+                             f"members={rows} and complex128")
         self.transform = transform
         self._direct = transform.in_place()
-        self._kernels = kernels_for(self.grid.size * s, transform.threads)
+        self._state_view = None   # a batch's (M, S, *grid) view of the in-place buffer (_buffer)
+        self._kernels = kernels_for(self.grid.size * rows, transform.threads)
         # u's packed rows: U_ab = u[pair[a, b]] (upper triangle, row by row)
         upper = np.triu_indices(s)
         self._upper = upper
@@ -319,7 +358,7 @@ class CoupledSplitOperator:
         self._kicks: dict[tuple, tuple[np.ndarray, bool]] = {}
         self._losses: dict[tuple, list[np.ndarray]] = {}
         self._slabs = None     # (psi, its layers' slab views): the books' views, kept per array
-        self._loss_out = np.zeros(s)
+        self._loss_out = np.zeros(rows)
         if not hamiltonian.time_dependent:
             w = self._taus
             # the fused kicks: the call's first and last, across steps, inside a step
@@ -334,20 +373,47 @@ class CoupledSplitOperator:
                 lead = (slice(None),) * (4 - self._nd)
                 slabs = [lead + layer.slab for layer in self.absorber.layers]
                 self._boundary = ([np.ascontiguousarray(u_end[slab]) for slab in slabs],
-                                  [np.empty((s,) + u_end[slab].shape[1:], complex) for slab in slabs])
+                                  [np.empty((rows,) + u_end[slab].shape[1:], complex) for slab in slabs])
 
     @property
     def t(self) -> float:
         return self.t0 + self.steps_done * self.dt
 
     def load(self, psi: np.ndarray) -> np.ndarray:
-        """psi (S, *grid) as complex128 to step from: the transform's
-        buffer when it transforms in place (a copy otherwise)."""
+        """psi (S, *grid), or (M, S, *grid) for a batch, as complex128 to
+        step from: the transform's buffer when it transforms in place (a
+        copy otherwise)."""
         if self._direct is not None:
-            buf = self._direct[2]
+            buf = self._buffer()
             np.copyto(buf, psi)
             return buf
         return np.array(psi, dtype=np.complex128, copy=True)
+
+    def _buffer(self) -> np.ndarray:
+        """The in-place transform's buffer shaped as the state, (S, *grid)
+        (the buffer itself) or (M, S, *grid) (one view of it, kept)."""
+        buf = self._direct[2]
+        if self.members is None:
+            return buf
+        if self._state_view is None:
+            self._state_view = buf.reshape(self._lead + self.grid.shape)
+        return self._state_view
+
+    def _rows(self, psi) -> np.ndarray:
+        """psi as (rows, *grid), one row per surface (and member): a view."""
+        return psi if self.members is None else psi.reshape((-1,) + self.grid.shape)
+
+    def _apply(self, psi, u, squared):
+        """psi <- U psi at every point, psi the state (S, *grid) or (M, S, *grid)."""
+        self._apply_rows(view4(self._rows(psi), self._nd), u, squared)
+
+    def _apply_rows(self, rows4, u, squared):
+        """The kick U (packed, the ``local_matrix`` kernel's layout) on the
+        4D rows (surface, or member x surface, then i, j, k) of psi or of a slab."""
+        if self.members is None:
+            self._kernels.local_matrix(rows4, u, self._pair, squared)
+        else:
+            self._kernels.local_matrix_members(rows4.reshape(self._lead + rows4.shape[1:]), u, self._pair, squared)
 
     # -- pieces ------------------------------------------------------------------
     def _kinetic_factor(self, tau):
@@ -371,12 +437,12 @@ class CoupledSplitOperator:
         if self._direct is not None:
             fwd, bwd, _ = self._direct
             fwd()
-            self._kernels.kinetic(view4(psi, self._nd), e0, e12)
+            self._kernels.kinetic(view4(self._rows(psi), self._nd), e0, e12)
             bwd()
             return psi
-        phi = self.transform.forward(psi)
+        phi = self.transform.forward(self._rows(psi))
         self._kernels.kinetic(view4(phi, self._nd), e0, e12)
-        return self.transform.backward(phi, scaled=False)
+        return self.transform.backward(phi, scaled=False).reshape(psi.shape)
 
     def _packed(self, v, tau, absorb):
         """exp(-i V tau) exp(-W absorb), V (S, S, *grid): its upper triangle
@@ -411,7 +477,7 @@ class CoupledSplitOperator:
         """psi's (S, ...) 4D views of the layers' slabs (kept while psi is the same array)."""
         if self._slabs is None or self._slabs[0] is not psi:
             lead = (slice(None),) * (4 - self._nd)
-            psi4 = view4(psi, self._nd)
+            psi4 = view4(self._rows(psi), self._nd)
             self._slabs = (psi, [psi4[lead + layer.slab] for layer in self.absorber.layers])
         return self._slabs[1]
 
@@ -424,7 +490,7 @@ class CoupledSplitOperator:
         for n, (slab, lw) in enumerate(zip(self._slab_views(psi), losses)):
             out[:] = 0.0
             kernel(slab, lw, out)
-            self.absorbed[:, n] += out * self._dv
+            self._absorbed_rows[:, n] += out * self._dv
 
     def _book_across(self, psi):
         """The books of the kick across two steps, as the two kicks it
@@ -436,13 +502,13 @@ class CoupledSplitOperator:
         common decay); the share of each surface is the composition's."""
         half = self._losses[self._plan[3]]
         self._book(psi, half)
-        out, loss, apply = self._loss_out, self._kernels.layer_loss, self._kernels.local_matrix
+        out, loss = self._loss_out, self._kernels.layer_loss
         for n, (slab, u, scratch, lw) in enumerate(zip(self._slab_views(psi), *self._boundary, half)):
             np.copyto(scratch, slab)
-            apply(scratch, u, self._pair, False)
+            self._apply_rows(scratch, u, False)
             out[:] = 0.0
             loss(scratch, lw, out)
-            self.absorbed[:, n] += out * self._dv
+            self._absorbed_rows[:, n] += out * self._dv
 
     # -- the step ----------------------------------------------------------------
     def step(self, psi: np.ndarray, nsteps: int = 1) -> np.ndarray:
@@ -456,7 +522,7 @@ class CoupledSplitOperator:
         caller keeping psi across steps copies it."""
         nsteps = int(nsteps)
         if self._direct is not None:
-            buf = self._direct[2]
+            buf = self._buffer()
             if psi is not buf:
                 np.copyto(buf, psi)
                 psi = buf
@@ -474,7 +540,11 @@ class CoupledSplitOperator:
         a true time."""
         first, inner, across, last = self._plan
         kicks, losses, taus = self._kicks, self._losses, self._taus
-        apply, nd, pair = self._kernels.local_matrix, self._nd, self._pair
+        nd, pair = self._nd, self._pair
+        if self.members is None:
+            apply, shape = self._kernels.local_matrix, None
+        else:   # (member, surface, i, j, k)
+            apply, shape = self._kernels.local_matrix_members, self._lead + (1,) * (3 - nd) + self.grid.shape
         book = self._book if self.absorber is not None else None
         m = len(taus) - 1
 
@@ -482,7 +552,7 @@ class CoupledSplitOperator:
             if book is not None:
                 book(psi, losses[key]) if key is not across else self._book_across(psi)
             u, squared = kicks[key]
-            apply(view4(psi, nd), u, pair, squared)
+            apply(view4(psi, nd) if shape is None else psi.reshape(shape), u, pair, squared)
 
         kick(psi, first)
         for n in range(nsteps):
@@ -497,8 +567,8 @@ class CoupledSplitOperator:
         """A time-dependent V, per sub-step: V at its middle, the half kick
         exp(-i V tau/2) made once and applied on both sides of the free
         step (times the absorber's exp(-W dt/2) at the step's ends)."""
-        taus, nd, pair = self._taus, self._nd, self._pair
-        apply = self._kernels.local_matrix
+        taus, nd = self._taus, self._nd
+        apply = self._apply
         starts = np.concatenate([[0.0], np.cumsum(taus)[:-1]])
         ends = self._loss_weights(self.dt / 2)
         if self.absorber is not None:
@@ -512,10 +582,93 @@ class CoupledSplitOperator:
                 for side in (0, 1):
                     if side:
                         psi = self._free(psi, tau)
-                    psi4 = view4(psi, nd)
                     if self.absorber is not None and (j, side) in ((0, 0), (m, 1)):
                         self._book(psi, ends)
-                        apply(psi4, u * decay, pair, False)
+                        apply(psi, u * decay, False)
                     else:
-                        apply(psi4, u, pair, False)
+                        apply(psi, u, False)
         return psi
+
+
+class CoupledChebyshev:
+    """The Chebyshev expansion of exp(-i H dt) on coupled surfaces, H = T
+    (x) 1 + V(r) time-independent (Tal-Ezer & Kosloff, J. Chem. Phys. 81,
+    3967 (1984)), as the single surface's
+    (:class:`~wavesweep.propagators.chebyshev.Chebyshev`, whose expansion
+    it shares: :func:`~wavesweep.propagators.chebyshev.chebyshev_expansion`): H psi is T psi_a on every surface (the grid's transform,
+    FFT or DST-I) plus sum_b V_ab psi_b, and the spectral bounds those of
+    :meth:`SurfaceHamiltonian.spectral_range`.  Exact to rounding for any
+    dt; the cost per step grows like the spectral half width times dt.
+
+    Absorbers as on one surface: a mask, exp(-W dt) on every surface once
+    per step after the expansion, booked per surface and face from the
+    density before it; a CAP (non-Hermitian H) and a V that changes in time
+    are refused (ValueError; :class:`~wavesweep.setup.CoupledSetup` says it
+    in one line naming the field).  ``absorbed`` (S, faces), ``t`` as
+    :class:`CoupledSplitOperator`."""
+
+    name = "chebyshev"
+
+    def __init__(self, hamiltonian: SurfaceHamiltonian, dt: float, absorber=None, t0: float = 0.0):
+        if hamiltonian.time_dependent:
+            raise ValueError("the Chebyshev expansion needs time-independent surfaces and couplings")
+        self.absorber = absorber if absorber is not None and absorber.active else None
+        if self.absorber is not None and self.absorber.kind == "cap":
+            raise ValueError("the Chebyshev expansion cannot use a CAP (non-Hermitian H); use a mask")
+        self.h = hamiltonian
+        self.grid = hamiltonian.grid
+        self.dt = float(dt)
+        self.t0 = float(t0)
+        self.steps_done = 0
+        n_faces = len(self.absorber.layers) if self.absorber is not None else 0
+        self.absorbed = np.zeros((hamiltonian.size, n_faces))
+        self.e_mid, self.e_half, self.coefficients = chebyshev_expansion(hamiltonian, self.dt)
+        self._v = hamiltonian.matrix(None)
+        self._kinetic = hamiltonian.kinetic_operator
+        if self.absorber is not None:
+            self._mask = np.exp(-self.absorber.rate * self.dt)
+            self._loss = self.absorber.loss_weights(self.dt)
+
+    @property
+    def t(self) -> float:
+        return self.t0 + self.steps_done * self.dt
+
+    def load(self, psi: np.ndarray) -> np.ndarray:
+        """A complex128 copy of psi (S, *grid) to step from."""
+        return np.array(psi, dtype=np.complex128, copy=True)
+
+    def _scaled_h(self, phi):
+        """(H phi - E_mid phi) / E_half on every surface."""
+        out = self._kinetic.apply_kinetic(phi)
+        out += np.einsum("ab...,b...->a...", self._v, phi)
+        out -= self.e_mid * phi
+        out /= self.e_half
+        return out
+
+    def step(self, psi: np.ndarray, nsteps: int = 1) -> np.ndarray:
+        """Advance psi (S, *grid) by ``nsteps`` steps (a new array)."""
+        psi = np.asarray(psi, dtype=np.complex128)
+        c = self.coefficients
+        dv = self.grid.cell_volume
+        for _ in range(int(nsteps)):
+            prev = psi
+            cur = self._scaled_h(psi)
+            out = c[0] * prev + c[1] * cur
+            for a in c[2:]:   # the recurrence T_n+1 = 2 H_n T_n - T_n-1
+                nxt = 2.0 * self._scaled_h(cur) - prev
+                out += a * nxt
+                prev, cur = cur, nxt
+            psi = out
+            if self.absorber is not None:
+                density = np.abs(psi) ** 2
+                for n, (layer, lw) in enumerate(zip(self.absorber.layers, self._loss)):
+                    slab = (slice(None),) + layer.slab
+                    self.absorbed[:, n] += np.sum(density[slab] * lw, axis=tuple(range(1, 1 + self.grid.ndim))) * dv
+                psi *= self._mask
+        self.steps_done += int(nsteps)
+        return psi
+
+
+# Schemes that expand exp(-i H dt) on coupled surfaces, by the job's evolve.scheme
+# (the split-operator schemes are read from the registry, coupled_weights)
+COUPLED_EXPANSIONS = {CoupledChebyshev.name: CoupledChebyshev}

@@ -155,15 +155,13 @@ def test_what_a_coupled_run_does_not_record_yet_is_refused(record, field):
     assert e.value.field == field
 
 
-def test_a_study_of_coupled_runs_collects_and_is_never_batched(tmp_path):
+def test_a_study_of_coupled_runs_collects(tmp_path):
     from test_collect import submit_and_run   # lazy: test_collect sets matplotlib's backend on import
 
-    from wavesweep.batched import batch_key
     from wavesweep.studies.collect import collect
     table = {**copy.deepcopy(ABSORBED_JOB), "evolve": {**ABSORBED_JOB["evolve"], "duration": 1.2},
              "record": {"every": 0.4, "snapshot_every": 1.2}, "sweep": {"packet.momentum": [2.5, 3.0]}}
-    study = submit_and_run(table, tmp_path, "coupled")
-    assert batch_key(study.runs[0].job.table) is None      # a batch steps one surface per member
+    submit_and_run(table, tmp_path, "coupled")   # (their batches: test_coupled_batched.py)
     with xr.open_dataset(collect(tmp_path, "coupled")) as ds:   # the surface dimension kept (test_coupled_collect.py)
         assert ds["norm"].dims == ("momentum", "time", "surface")
 

@@ -82,7 +82,7 @@ def test_coupled_jobs_say_what_is_not_there_yet():
         Setup(job)                       # a run on coupled surfaces: refused, never run on one surface
     assert e.value.field == "surface"
     for patch, field in (({"evolve": {**LZ_JOB["evolve"], "precision": "single"}}, "evolve.precision"),
-                         ({"evolve": {**LZ_JOB["evolve"], "scheme": "chebyshev"}}, "evolve.scheme")):
+                         ({"evolve": {**LZ_JOB["evolve"], "scheme": "crank_nicolson"}}, "evolve.scheme")):
         with pytest.raises(JobError) as e:
             CoupledSetup(job_from_dict({**copy.deepcopy(LZ_JOB), **patch}))
         assert e.value.field == field

@@ -244,6 +244,34 @@ def local_matrix(psi, u, pair, squared):
                         psi[a, i, j, k] = acc
 
 
+def local_matrix_members(psi, u, pair, squared):
+    """:func:`local_matrix` on a batch: psi (member, surface, i, j, k), the
+    same packed U for every member (a batch of coupled runs that differ
+    only in their packets).  One loop over all members' rows, so a batch
+    pays one kernel call per kick, not one per member."""
+    m, s, n0, n1, n2 = psi.shape
+    rows = n0 * n1
+    for r in numba.prange(m * rows):
+        b = r // rows
+        i = (r % rows) // n1
+        j = r % n1
+        if s == 2:
+            _apply_pair(psi[b, 0, i, j], psi[b, 1, i, j], u[0, i, j], u[1, i, j], u[2, i, j])
+            if squared:
+                _apply_pair(psi[b, 0, i, j], psi[b, 1, i, j], u[0, i, j], u[1, i, j], u[2, i, j])
+        else:
+            old = np.empty(s, psi.dtype)
+            for k in range(n2):
+                for _ in range(2 if squared else 1):
+                    for a in range(s):
+                        old[a] = psi[b, a, i, j, k]
+                    for a in range(s):
+                        acc = 0j
+                        for c in range(s):
+                            acc += u[pair[a, c], i, j, k] * old[c]
+                        psi[b, a, i, j, k] = acc
+
+
 @numba.njit(cache=True, nogil=True)
 def _apply_pair(p0, p1, u00, u01, u11):
     """(p0, p1) <- U (p0, p1) along a row, U = [[u00, u01], [u01, u11]]."""
@@ -270,7 +298,7 @@ def real_matvec(q, x, out):
 _KERNELS = {name: _twins(fn) for name, fn in
             (("kick", kick), ("kick_dynamic", kick_dynamic), ("kick_measured", kick_measured),
              ("kick_contact", kick_contact), ("kinetic", kinetic), ("layer_loss", layer_loss),
-             ("local_matrix", local_matrix))}
+             ("local_matrix", local_matrix), ("local_matrix_members", local_matrix_members))}
 
 
 class KernelSet:

@@ -20,7 +20,28 @@ from scipy.special import jv
 from ..errors import JobError
 from .base import Propagator, other_schemes, register_scheme
 
-__all__ = ["Chebyshev"]
+__all__ = ["Chebyshev", "chebyshev_expansion"]
+
+
+def chebyshev_expansion(hamiltonian, dt: float):
+    """(E_mid, E_half, coefficients) of exp(-i H dt) for any ``hamiltonian``
+    with ``spectral_range()`` (one surface's, or coupled surfaces'
+    :class:`~wavesweep.surfaces.SurfaceHamiltonian`): the spectral range's
+    centre and half width (hartree, padded by 1e-3 of the width) and the
+    expansion's coefficients 2 (-i)^n J_n(E_half dt) exp(-i E_mid dt) (the
+    first without the 2), cut where they fall below 1e-17 of the largest
+    (Tal-Ezer and Kosloff, J. Chem. Phys. 81, 3967 (1984))."""
+    lo, hi = hamiltonian.spectral_range()
+    pad = 1e-3 * (hi - lo) + 1e-12
+    lo, hi = lo - pad, hi + pad
+    e_mid = 0.5 * (hi + lo)
+    e_half = 0.5 * (hi - lo)
+    alpha = e_half * dt
+    n = np.arange(int(alpha + 40 + 10 * alpha ** (1 / 3)) + 1)
+    coeff = jv(n, alpha) * (-1j) ** n
+    coeff[1:] *= 2.0
+    big = np.nonzero(np.abs(coeff) > 1e-17 * max(1.0, np.abs(coeff).max()))[0]
+    return e_mid, e_half, coeff[: big[-1] + 1] * np.exp(-1j * e_mid * dt)
 
 
 @register_scheme
@@ -46,22 +67,7 @@ class Chebyshev(Propagator):
 
     @staticmethod
     def _expansion(hamiltonian, dt):
-        """(E_mid, E_half, coefficients): the spectral range's centre and
-        half width (hartree, padded by 1e-3 of the width) and the expansion's
-        coefficients 2 (-i)^n J_n(E_half dt) exp(-i E_mid dt) (the first
-        without the 2), cut where they fall below 1e-17 of the largest
-        (Tal-Ezer and Kosloff, J. Chem. Phys. 81, 3967 (1984))."""
-        lo, hi = hamiltonian.spectral_range()
-        pad = 1e-3 * (hi - lo) + 1e-12
-        lo, hi = lo - pad, hi + pad
-        e_mid = 0.5 * (hi + lo)
-        e_half = 0.5 * (hi - lo)
-        alpha = e_half * dt
-        n = np.arange(int(alpha + 40 + 10 * alpha ** (1 / 3)) + 1)
-        coeff = jv(n, alpha) * (-1j) ** n
-        coeff[1:] *= 2.0
-        big = np.nonzero(np.abs(coeff) > 1e-17 * max(1.0, np.abs(coeff).max()))[0]
-        return e_mid, e_half, coeff[: big[-1] + 1] * np.exp(-1j * e_mid * dt)
+        return chebyshev_expansion(hamiltonian, dt)
 
     @classmethod
     def expansion_terms(cls, hamiltonian, dt):
