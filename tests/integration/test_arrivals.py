@@ -376,3 +376,19 @@ def _holds_something_else(original, damaged) -> bool:
     except Exception:
         return True
     return False
+
+
+def test_rounding_level_flux_back_and_forth_is_no_backflow_to_report():
+    """A detector that nothing reached (the flux there is rounding, 1e-13,
+    changing sign) says nothing arrived, not that probability flows back
+    (the note was noise on a coupled run's empty surface)."""
+    from wavesweep.analysis.arrivals import NOTHING_ARRIVED, _oriented_statistics
+    t = np.linspace(0.0, 10.0, 201)
+    rho = 1e-13 * np.sin(3.0 * t) + 2e-14
+    notes = []
+    stats, definition = _oriented_statistics(None, t, rho, "flux", "detector 'd'", notes)
+    assert stats["forward"] < NOTHING_ARRIVED and notes == [] and definition == "flux"
+    # a real backflow is still said
+    rho = np.exp(-(t - 3.0) ** 2) - 0.6 * np.exp(-(t - 7.0) ** 2)
+    stats, definition = _oriented_statistics(None, t, rho, "flux", "detector 'd'", notes)
+    assert definition == "positive flux" and len(notes) == 1 and "flows back" in notes[0]

@@ -556,7 +556,8 @@ def _oriented_statistics(ds, t, rho, definition: str, label: str, notes: list) -
                                  "run the job again")
     forward = _trapezoid(np.maximum(rho, 0.0), t)
     stats["forward"] = forward
-    if definition == "flux" and stats["backflow"] > BACKFLOW_SWITCH * forward:
+    # (below NOTHING_ARRIVED nothing arrived: its rounding-level back and forth is no backflow to report)
+    if definition == "flux" and forward > NOTHING_ARRIVED and stats["backflow"] > BACKFLOW_SWITCH * forward:
         first = arrival_statistics(t, np.maximum(rho, 0.0))
         stats.update({k: first[k] for k in ("mean", "std", "median", "q10", "q90", "most_probable")})
         definition = "positive flux"
