@@ -15,8 +15,13 @@ differ only in [packet] (its ``surface`` included): psi of shape
 :class:`~wavesweep.surfaces.CoupledSplitOperator` with ``members``, whose
 kinetic step is one transform of all members' surfaces and whose kicks are
 one kernel call over all members; each member is measured by its own
-set-up (:meth:`~wavesweep.setup.CoupledSetup.measure`).  Their absorber is
-part of the key as a whole (the kick carries it, made once for the batch).
+set-up (:meth:`~wavesweep.setup.CoupledSetup.measure`).  As on one
+surface, the CAP's strength and exponent are left out of the key, so the
+runs of a packet sweep with a CAP tuned to each packet's energies batch
+too: the absorber (-i W times the identity on the surfaces) commutes with
+the potential matrix, so the kicks' matrices are shared and each member's
+own decay exp(-W_m tau) multiplies its rows on the layers' slabs, booked
+per member, surface and face as its solo run books them.
 
 Batching pays on small grids, where the per-step Python and per-call
 overheads of a solo run cost more than its transforms, and where one run
@@ -35,12 +40,13 @@ from pathlib import Path
 import numpy as np
 
 from .errors import RunFailed, RunInterrupted
-from .fft import THREADS_MIN_POINTS, default_threads
+from .fft import AUTO, THREADS_MIN_POINTS, default_threads, make_transform
 from .io.checkpoint import ResultExists
 from .observables import Observer
 from .propagators import scheme_class
 from .run import Simulation, progress_bar
 from .setup import set_kernel_threads
+from .surfaces import CoupledSplitOperator
 
 __all__ = ["BatchedRun", "batch_key", "batch_group", "members_for", "BATCH_MAX_ELEMENTS", "BATCH_MAX_MEMBERS"]
 
@@ -54,8 +60,8 @@ BATCH_MAX_MEMBERS = 64
 def batch_key(table: dict) -> str | None:
     """Jobs (resolved tables) with the same key can be stepped as one batch:
     everything but the packet, the title, and the CAP's strength and
-    exponent must agree (on coupled surfaces the whole absorber: see the
-    module notes).  None for jobs that are never batched: a scheme that
+    exponent must agree (one surface or coupled ones: see the module
+    notes).  None for jobs that are never batched: a scheme that
     cannot step a batch (on coupled surfaces: any but a split-operator
     scheme), a falling grid, or a grid too large for two members."""
     try:
@@ -74,7 +80,7 @@ def batch_key(table: dict) -> str | None:
         return None
     rest = copy.deepcopy({k: v for k, v in table.items() if k not in ("packet", "title")})
     absorber = rest.get("absorber")
-    if isinstance(absorber, dict) and not coupled:
+    if isinstance(absorber, dict):
         absorber.pop("strength", None)
         absorber.pop("power", None)
     text = json.dumps(rest, sort_keys=True, default=str)
@@ -333,14 +339,19 @@ class _Lane:
 class _CoupledLane:
     """Members of a batch on coupled surfaces: psi (members, surfaces,
     *grid) stepped by one :class:`~wavesweep.surfaces.CoupledSplitOperator`
-    with ``members``; each member measured by its own set-up and observer,
-    as its solo run measures it."""
+    with ``members`` and each member's own absorber (their CAP strengths
+    may differ); each member measured by its own set-up and observer, as
+    its solo run measures it."""
 
     def __init__(self, positions, sims, books, threads=None):
         s0 = sims[0].setup
         nb = len(sims)
         self.positions = positions
-        self.prop = s0.make_propagator(members=nb, threads=threads)
+        # the transform of CoupledSetup.make_propagator's batch: all members' surfaces at once
+        transform = make_transform(s0.grid, AUTO, np.complex128, threads or s0.threads,
+                                   members=nb * len(s0.surfaces))
+        self.prop = CoupledSplitOperator(s0.hamiltonian, s0.dt, s0.weights, [s.setup.absorber for s in sims],
+                                         transform=transform, members=nb)
         set_kernel_threads(self.prop.transform.threads)
         self.setups = [s.setup for s in sims]
         self.observers = [s.setup.make_observer() for s in sims]

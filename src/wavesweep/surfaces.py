@@ -311,10 +311,17 @@ class CoupledSplitOperator:
     (:mod:`wavesweep.batched`), psi of shape (M, S, *grid) and
     ``absorbed`` (M, S, faces).  The M S surfaces are one batched transform
     (the transform's ``members`` = M S), the kicks one kernel call over all
-    members with the matrices made once; the absorber is the same for every
-    member (its layers are part of the batch's key).  Each member's psi is
-    the one a solo run gives, to rounding: the same operations in the same
-    order, only the transforms' batch is larger."""
+    members with the matrices made once.  ``absorber`` may then be a list,
+    one per member, of one layer geometry (the batch's key) but their own
+    rates (a CAP tuned to each member's packet): W(r) times the identity
+    commutes with V(r), exp(-i (V - i W_m) tau) = exp(-W_m tau) exp(-i V
+    tau) exactly, so the shared matrices are made without the absorber and
+    each member's decay exp(-W_m tau) multiplies its rows on the layers'
+    slabs after the kick (the ``kick`` kernel with one factor row per
+    member and surface), booked with its own loss weights.  Each member's
+    psi is the one a solo run gives, to rounding: the same operations in
+    the same order (the decay a factor of its own rather than of the
+    matrix), only the transforms' batch is larger."""
 
     def __init__(self, hamiltonian: SurfaceHamiltonian, dt: float, weights=STRANG, absorber=None,
                  t0: float = 0.0, transform=None, members: int | None = None):
@@ -326,10 +333,10 @@ class CoupledSplitOperator:
         self.weights = tuple(weights)
         self.t0 = float(t0)
         self.steps_done = 0
-        self.absorber = absorber if absorber is not None and absorber.active else None
-        n_faces = len(self.absorber.layers) if self.absorber is not None else 0
         s = hamiltonian.size
         self.members = None if members is None else int(members)
+        self.absorber, self._member_absorbers = self._absorbers(absorber)
+        n_faces = len(self.absorber.layers) if self.absorber is not None else 0
         # the state's leading axes, and its rows: one per surface (and member), each a grid
         self._lead = (s,) if self.members is None else (self.members, s)
         rows = s if self.members is None else self.members * s
@@ -357,6 +364,7 @@ class CoupledSplitOperator:
             self._kinetic_factor(tau)
         self._kicks: dict[tuple, tuple[np.ndarray, bool]] = {}
         self._losses: dict[tuple, list[np.ndarray]] = {}
+        self._decays: dict[tuple, list[np.ndarray]] = {}   # per-member absorbers: (absorb, once) -> slab factors
         self._slabs = None     # (psi, its layers' slab views): the books' views, kept per array
         self._loss_out = np.zeros(rows)
         if not hamiltonian.time_dependent:
@@ -374,6 +382,24 @@ class CoupledSplitOperator:
                 slabs = [lead + layer.slab for layer in self.absorber.layers]
                 self._boundary = ([np.ascontiguousarray(u_end[slab]) for slab in slabs],
                                   [np.empty((rows,) + u_end[slab].shape[1:], complex) for slab in slabs])
+
+    def _absorbers(self, absorber):
+        """(the absorber whose layers the books use, or None; the members'
+        own absorbers when a batch's rates differ, else None)."""
+        given = list(absorber) if isinstance(absorber, (list, tuple)) else [absorber]
+        if len(given) > 1 and len(given) != (self.members or 1):
+            raise ValueError(f"{len(given)} absorbers for {self.members or 1} members")
+        active = [a for a in given if a is not None and a.active]
+        if not active:
+            return None, None
+        first = active[0]
+        if len(active) != len(given) or any([layer.slab for layer in a.layers] != [layer.slab for layer in first.layers]
+                                            for a in active[1:]):
+            raise ValueError("the members of a batch need absorbing layers of one geometry "
+                             "(kind, thickness and faces); only strengths may differ")
+        if all(a is first or np.array_equal(a.rate, first.rate) for a in active[1:]):
+            return first, None   # one absorber for the batch: in the kicks' matrices, as a solo run
+        return first, active
 
     @property
     def t(self) -> float:
@@ -446,9 +472,10 @@ class CoupledSplitOperator:
 
     def _packed(self, v, tau, absorb):
         """exp(-i V tau) exp(-W absorb), V (S, S, *grid): its upper triangle
-        as the kernel's contiguous (P, n0, n1, n2)."""
+        as the kernel's contiguous (P, n0, n1, n2); with the members' own
+        absorbers exp(-i V tau) alone (:meth:`_decay`)."""
         u = local_exponential(v, tau)[self._upper]
-        if self.absorber is not None and absorb > 0:
+        if self.absorber is not None and absorb > 0 and self._member_absorbers is None:
             u *= np.exp(-self.absorber.rate * absorb)
         return np.ascontiguousarray(view4(u, self._nd))
 
@@ -469,9 +496,49 @@ class CoupledSplitOperator:
         self._losses[key] = self._loss_weights(absorb)
 
     def _loss_weights(self, absorb):
+        """Per face, the books' weights of a kick absorbing over ``absorb``
+        (4D, one row for all rows of psi, or with the members' own
+        absorbers one row per member and surface)."""
         if self.absorber is None or absorb <= 0:
             return []
-        return [view4(lw, self._nd) for lw in self.absorber.loss_weights(absorb)]
+        if self._member_absorbers is None:
+            return [view4(lw, self._nd) for lw in self.absorber.loss_weights(absorb)]
+        each = [a.loss_weights(absorb) for a in self._member_absorbers]
+        return [self._member_rows([lw[n] for lw in each], float) for n in range(len(self.absorber.layers))]
+
+    def _member_rows(self, arrays, dtype=np.complex128) -> np.ndarray:
+        """One slab-shaped array per member as the 4D (M S, ...) rows of the
+        kernels, each member's repeated on its S surfaces."""
+        rows = np.concatenate([view4(np.asarray(a), self._nd) for a in arrays])
+        return np.ascontiguousarray(np.repeat(rows, self.h.size, axis=0), dtype=dtype)
+
+    def _decay_factors(self, absorb, once: bool = True):
+        """The members' own exp(-W_m absorb) on each layer's slab (the
+        (M S, ...) rows of :meth:`_member_rows`).  ``once``: 1 where an
+        earlier face's slab already took it (the corners two faces share in
+        2D and 3D), so that the slabs of psi together multiply every point
+        once; else the whole decay on every slab (for copies of the slabs,
+        :meth:`_book_across`)."""
+        key = (round(absorb, 15), once)
+        out = self._decays.get(key)
+        if out is None:
+            covered = np.zeros(self.grid.shape, bool)
+            out = []
+            for layer in self.absorber.layers:
+                fresh = ~covered[layer.slab]
+                out.append(self._member_rows([np.where(fresh, np.exp(-a.rate[layer.slab] * absorb), 1.0)
+                                              for a in self._member_absorbers]))
+                if once:
+                    covered[layer.slab] = True
+            self._decays[key] = out
+        return out
+
+    def _decay(self, slabs, absorb):
+        """The members' own absorbers over ``absorb`` on ``slabs`` (4D views
+        or copies of psi's layers, rows member x surface), after a kick
+        made without them: exp(-W_m absorb) commutes with the kick."""
+        for slab, factor in zip(slabs, self._decay_factors(absorb)):
+            self._kernels.kick(slab, factor, False)
 
     def _slab_views(self, psi):
         """psi's (S, ...) 4D views of the layers' slabs (kept while psi is the same array)."""
@@ -506,6 +573,8 @@ class CoupledSplitOperator:
         for n, (slab, u, scratch, lw) in enumerate(zip(self._slab_views(psi), *self._boundary, half)):
             np.copyto(scratch, slab)
             self._apply_rows(scratch, u, False)
+            if self._member_absorbers is not None:
+                self._kernels.kick(scratch, self._decay_factors(self._plan[3][1], once=False)[n], False)
             out[:] = 0.0
             loss(scratch, lw, out)
             self._absorbed_rows[:, n] += out * self._dv
@@ -546,6 +615,7 @@ class CoupledSplitOperator:
         else:   # (member, surface, i, j, k)
             apply, shape = self._kernels.local_matrix_members, self._lead + (1,) * (3 - nd) + self.grid.shape
         book = self._book if self.absorber is not None else None
+        decay = self._member_absorbers is not None
         m = len(taus) - 1
 
         def kick(psi, key):
@@ -553,6 +623,8 @@ class CoupledSplitOperator:
                 book(psi, losses[key]) if key is not across else self._book_across(psi)
             u, squared = kicks[key]
             apply(view4(psi, nd) if shape is None else psi.reshape(shape), u, pair, squared)
+            if decay and key[1] > 0:
+                self._decay(self._slab_views(psi), key[1])
 
         kick(psi, first)
         for n in range(nsteps):
@@ -571,7 +643,8 @@ class CoupledSplitOperator:
         apply = self._apply
         starts = np.concatenate([[0.0], np.cumsum(taus)[:-1]])
         ends = self._loss_weights(self.dt / 2)
-        if self.absorber is not None:
+        shared = self.absorber is not None and self._member_absorbers is None
+        if shared:
             decay = view4(np.exp(-self.absorber.rate * (self.dt / 2)), nd)
         m = len(taus) - 1
         for n in range(nsteps):
@@ -584,7 +657,11 @@ class CoupledSplitOperator:
                         psi = self._free(psi, tau)
                     if self.absorber is not None and (j, side) in ((0, 0), (m, 1)):
                         self._book(psi, ends)
-                        apply(psi, u * decay, False)
+                        if shared:
+                            apply(psi, u * decay, False)
+                        else:
+                            apply(psi, u, False)
+                            self._decay(self._slab_views(psi), self.dt / 2)
                     else:
                         apply(psi, u, False)
         return psi

@@ -11,6 +11,7 @@ every variable of the file, the per-surface ones included.
 from __future__ import annotations
 
 import copy
+import json
 
 import numpy as np
 import pytest
@@ -106,7 +107,8 @@ def test_three_surfaces_and_a_pulsed_coupling_step_as_solo(dynamic):
 
 def test_coupled_batch_keys():
     """Coupled jobs differing only in [packet] (its surface too) share a key;
-    a coupling, a surface's potential or the absorber tell them apart; a
+    a coupling, a surface's potential or the absorber's layers tell them
+    apart (its strength does not: test_a_tuned_cap_sweep_batches); a
     scheme other than a split-operator is never batched."""
     table = copy.deepcopy(ABSORBED_JOB)
     jobs = _jobs(table, PACKETS)
@@ -114,7 +116,7 @@ def test_coupled_batch_keys():
     assert key is not None and {batch_key(j.table) for j in jobs} == {key}
     for path, value in ((("coupling", 0, "potential", 0, "expression"), "0.3 + 0 * x"),
                         (("surface", 1, "potential", 0, "expression"), "-0.02 * x"),
-                        (("absorber", "strength"), 2.0)):
+                        (("absorber", "thickness"), 12.0)):
         t = copy.deepcopy(table)
         node = t
         for p in path[:-1]:
@@ -178,3 +180,72 @@ def test_an_interrupted_coupled_member_resumes_later_and_matches(tmp_path):
     assert isinstance(second[0], ResultExists) and second[1] == paths[1]
     solo = Simulation(jobs[1]).run(tmp_path / "solo", progress=False)
     assert_same_file(solo, paths[1], 1e-12)
+
+
+def test_a_tuned_cap_sweep_batches_and_writes_the_files_of_solo_runs(tmp_path):
+    """A sweep over the packet alone with a CAP tuned to each packet (no
+    ``strength``: resolve_job tunes it to the energies that arrive): the
+    members get strengths of their own, yet share one key and step as one
+    batch, each file its solo run's to 1e-12 (absorbed per surface and face
+    included).  Before the members' own decays, the strengths were part of
+    the coupled key and these runs never batched."""
+    table = copy.deepcopy(ABSORBED_JOB)
+    del table["absorber"]["strength"]
+    jobs = _jobs(table, PACKETS)
+    strengths = [json.dumps(j.table["absorber"]["strength"], sort_keys=True) for j in jobs]
+    assert len(set(strengths)) == len(jobs), strengths   # every member tuned to its own packet
+    assert len({batch_key(j.table) for j in jobs}) == 1
+    solo = [Simulation(j).run(tmp_path / "solo", progress=False) for j in jobs]
+    out = BatchedRun(jobs).run([tmp_path / "batch" / p.name for p in solo])
+    assert all(not isinstance(o, BaseException) for o in out), out
+    for a, b in zip(solo, out):
+        assert_same_file(a, b, 1e-12)
+    with xr.open_dataset(out[1]) as ds:   # the CAP was at work on both surfaces and both faces
+        assert float(ds["absorbed"][-1].sum()) > 1e-2 and float(ds["absorbed"][-1].sel(surface="B").sum()) > 1e-3
+
+
+@pytest.mark.parametrize("dynamic", [False, True])
+def test_members_own_caps_on_a_square_grid_step_as_solo(dynamic):
+    """Per-member CAPs of one geometry on all four faces of a 2D grid (the
+    corners two faces share must decay once), a static or a pulsed
+    coupling (the kick made per sub-step), the fourth-order composition:
+    the batch's psi and books against each member stepped alone with its
+    own absorber (the absorber then in the kick's matrix), to 1e-12."""
+    from wavesweep.absorbers.layers import Absorber   # lazy: only these tests build absorbers by hand
+    from wavesweep.grid import Axis, Grid
+    from wavesweep.potentials import PotentialContext, make_term
+    from wavesweep.propagators.coefficients import YOSHIDA4
+    from wavesweep.states import build_state
+
+    grid = Grid((Axis("x", -12.0, 12.0, 48, "periodic"), Axis("y", -12.0, 12.0, 40, "periodic")))
+    ctx = PotentialContext(grid, 1.0, None, job_from_dict(copy.deepcopy(ABSORBED_JOB)).units, "potential.0", "lab")
+
+    def term(expression):
+        return make_term({"kind": "expression", "expression": expression}, ctx)
+    coupling = "0.4 * exp(-(x**2 + y**2) / 8)" + (" * cos(0.9 * t)" if dynamic else "")
+    h = SurfaceHamiltonian(grid, 1.0, ["A", "B"], [[term("0.05 * x")], [term("-0.05 * x + 0.02 * y")]],
+                           {(0, 1): [term(coupling)]})
+    assert h.time_dependent == dynamic
+    strengths = (0.5, {"x-": 2.0, "x+": 0.3, "y-": 1.0, "y+": 4.0}, 1.5)
+    absorbers = [Absorber(grid, "cap", 4.0, None, strength, power=2.0 + k) for k, strength in enumerate(strengths)]
+    starts = []
+    for k, (center, momentum) in enumerate((((-4.0, 0.0), (3.0, 2.0)), ((2.0, 3.0), (-2.0, 3.0)),
+                                            ((0.0, -3.0), (2.5, -2.5)))):
+        psi = np.zeros((2, 48, 40), complex)
+        psi[k % 2] = build_state({"kind": "gaussian", "center": list(center), "width": [1.0, 1.0],
+                                  "momentum": list(momentum)}, grid, 1.0)
+        starts.append(psi)
+    dt = 0.05
+    solo = []
+    for psi0, absorber in zip(starts, absorbers):
+        prop = CoupledSplitOperator(h, dt, YOSHIDA4, absorber)
+        solo.append((prop.step(prop.load(psi0), 100).copy(), prop.absorbed.copy()))
+    batch = CoupledSplitOperator(h, dt, YOSHIDA4, absorbers, members=3)
+    psi = batch.load(np.stack(starts))
+    for n in (45, 55):   # two calls, as a run's samples: the kicks across the calls' ends
+        psi = batch.step(psi, n)
+    for j, (psi_alone, absorbed_alone) in enumerate(solo):
+        np.testing.assert_allclose(psi[j], psi_alone, rtol=0, atol=1e-12)
+        np.testing.assert_allclose(batch.absorbed[j], absorbed_alone, rtol=0, atol=1e-12)
+        assert (absorbed_alone.sum(axis=0) > 1e-4).sum() >= 3 and (absorbed_alone.sum(axis=1) > 1e-4).all()   # several faces, both surfaces
+    assert not np.allclose(solo[0][1], solo[2][1], atol=1e-6)   # the strengths made a difference
