@@ -260,3 +260,21 @@ def test_degenerate_levels_of_uncoupled_copies(tmp_path):
     np.testing.assert_allclose(energies, [0.1, 0.1, 0.3, 0.3], rtol=0, atol=1e-10)
     weights = surface_weights(states, Model(make_job(table)).grid.cell_volume)
     np.testing.assert_allclose(weights[0::2] + weights[1::2], 1.0, rtol=0, atol=1e-12)
+
+
+def test_continuum_states_of_an_open_face_are_said_surface_by_surface():
+    """Surface A a well 1 hartree up (its levels far above), B flat at 0 in
+    a box whose x+ face the job absorbs (open space): B's low levels are
+    the box's, E_n = n^2 pi^2 / 2 m L^2 (Griffiths sec. 2.2), continuum
+    states whose energies move with the wall; moving it out by L takes them
+    to E_n / 4.  The edge estimate, made on each surface against its own
+    V_ss, covers that, and the advice says they are no bound levels."""
+    table = coupled([{"kind": "harmonic", "omega": 1.0}, {"kind": "expression", "expression": "1.0"}],
+                    [{"kind": "free"}])
+    table["absorber"] = {"kind": "cap", "thickness": 2.0, "strength": 1.0, "faces": ["x+"]}
+    model = Model(make_job(table))
+    energies, states = coupled_stationary_states(model, 3)
+    np.testing.assert_allclose(energies, (np.arange(1, 4) * math.pi / 40.0) ** 2 / 2, rtol=1e-9)
+    estimate = coupled_level_errors(model, energies, states)
+    assert np.all(estimate.errors >= 0.75 * energies)
+    assert estimate.refine == "grid.x.max" and "continuum state" in estimate.advice

@@ -683,6 +683,35 @@ def test_walls_of_a_box_are_physics_not_an_edge_error():
     assert np.all(found.edge_errors == 0.0) and found.refine == "grid.x.points" and found.advice is None
 
 
+def test_a_box_wall_behind_an_absorber_is_open_space_not_physics():
+    """The same box with a CAP on its x+ face: the job says space is open
+    there, so its levels above V at that face are continuum states the box
+    discretises.  Moving the wall out by L (to 2L) moves them to E_n / 4
+    (closed form E_n = n^2 pi^2 / 2 m L^2, Griffiths sec. 2.2): the edge
+    estimate (the Hadamard wall formula, as at r_max) covers that, and the
+    advice says these are no bound levels.  A bound state in a well inside
+    the same open box keeps its tiny estimate."""
+    from wavesweep.analysis.spectra import level_errors
+    from wavesweep.setup import Model
+
+    mass, lo, hi = 0.7, -3.0, 5.0
+    open_box = {"kind": "cap", "thickness": 1.0, "strength": 1.0, "faces": ["x+"]}
+    model = Model(make_job(_job({"x": {"min": lo, "max": hi, "points": 127}, "boundary": "box"}, [{"kind": "free"}],
+                                mass=mass, absorber=open_box)))
+    energies, states = stationary_states(model, 3)
+    found = level_errors(model, energies, states)
+    exact = an.box_energy(np.arange(1, 4), hi - lo, mass)
+    np.testing.assert_allclose(found.grid_energies, exact, rtol=1e-10)
+    assert np.all(found.errors >= 0.75 * exact)           # the wall moved by L: E_n -> E_n / 4
+    assert found.refine == "grid.x.max" and "continuum state" in found.advice
+    # a well deep inside the same open box: its low levels decay long before the wall
+    model = Model(make_job(_job({"x": {"min": -12.0, "max": 12.0, "points": 255}, "boundary": "box"},
+                                [{"kind": "harmonic", "omega": 1.0}], absorber=open_box)))
+    energies, states = stationary_states(model, 3)
+    found = level_errors(model, energies, states)
+    assert np.all(found.edge_errors < 1e-12) and found.advice is None
+
+
 def test_stationary_states_never_build_the_packet():
     """A job whose packet could not start a run (centred on the grid's edge)
     still has its levels: (n + 1/2) hbar w (Griffiths sec. 2.3; from memory)."""

@@ -88,6 +88,7 @@ from .._version import __version__
 from ..eigen import (DEGENERATE_TOL, ITERATIVE_TOL, MAX_ITERATIONS, WINDOW_RATIO, block_size, check_residuals,
                      coarse_hamiltonian, coupled_eigenpairs, coupled_walls, eigenpairs, lobpcg_from,
                      recorded_energy_band, surface_weights, walled_potential)
+from ..absorbers.layers import face_names
 from ..errors import JobError, RunFailed
 from ..grid import Axis, Grid
 from ..imaginary_time import DEFAULT_TOLERANCE, ground_state
@@ -267,7 +268,7 @@ def level_errors(model, energies_hartree, states, method: str = "auto") -> Level
                 value, error = _richardson(spacings, table[:, n], orders[n], floor[n])
                 if error < resolution[n]:
                     best[n], resolution[n], extrapolated[n] = value, error, True
-    edge, faces = _edge_errors(model, v, e0, states)
+    edge, faces = _edge_errors(model, model.hamiltonian.real_potential(0.0), e0, states)
     errors = resolution + edge
     refine, advice = _advice(model, best, errors, resolution, edge, faces, orders, extrapolated, states)
     return LevelErrors(energies=best, errors=errors, grid_energies=e0, resolution_errors=resolution,
@@ -450,6 +451,16 @@ def _richardson(spacings, energies, order, floor):
     return value, SAFETY * abs(value - fewer) + amplification * floor
 
 
+def _open_faces(model) -> set[str]:
+    """The faces where the job has an absorbing layer: open space there, so
+    the wall the grid ends in behind the layer stands for nothing physical
+    (``levels`` solves without the absorber)."""
+    table = model.job.table.get("absorber") or {}
+    if table.get("kind", "none") == "none":
+        return set()
+    return set(table.get("faces") or face_names(model.grid))
+
+
 def _edge_errors(model, v, energies, states):
     """``(errors, faces)``: per level the estimated shift (hartree) its
     state takes from the grid's edges, and per level a dict face ->
@@ -468,7 +479,10 @@ def _edge_errors(model, v, energies, states):
     by the same formula, hbar^2 kappa (a^2 + b^2) / m in all (a state even
     or odd about the seam alike).  Where the state does not decay
     (E > V at the edge), a box axis's wall and a periodic axis's period are
-    the job's physics (a particle in a box, a ring, a lattice), unless V has
+    the job's physics (a particle in a box, a ring, a lattice), unless the
+    job puts an absorbing layer at that face (open space there: the state is
+    a continuum state the box discretises, and the wall's Hadamard estimate
+    below, as at r_max, applies), or V has
     a kink at the seam (second difference above 4 times the largest
     elsewhere: a well cut by the period), where the estimate is the flux
     density (hbar^2 / 2m) (psi'^2 + k^2 psi^2) at the seam over the period
@@ -477,9 +491,9 @@ def _edge_errors(model, v, energies, states):
     for a Dirichlet wall; e.g. Garabedian, Partial Differential Equations,
     ch. 15; from memory): the estimate is that for da = L, psi'(a) from the
     last grid point.  All times EDGE_SAFETY."""
-    h = model.hamiltonian
-    grid, mass = h.grid, h.mass
-    v = np.asarray(h.real_potential(0.0), float)
+    grid, mass = model.grid, model.mass
+    v = np.asarray(v, float)
+    opened = _open_faces(model)
     errors = np.zeros(len(energies))
     faces = [dict() for _ in energies]
     for i, ax in enumerate(grid.axes):
@@ -517,7 +531,7 @@ def _edge_errors(model, v, energies, states):
                 else:
                     amplitude2 = psi_face**2 / np.sinh(np.minimum(kappa * ax.dx, 300.0)) ** 2
                     shift = np.where(forbidden, kappa * amplitude2 / (4.0 * mass), 0.0)
-                    if grid.radial:   # the wall moved out by L: dE/da = -(hbar^2 / 2m) psi'(a)^2
+                    if grid.radial or face in opened:   # the wall moved out by L: dE/da = -(hbar^2 / 2m) psi'(a)^2
                         allowed = (psi_face / ax.dx) ** 2 / (2.0 * mass) * ax.length
                         shift = np.where(forbidden, shift, allowed)
                 total = EDGE_SAFETY * float(np.sum(shift)) * face_area
@@ -571,6 +585,10 @@ def _advice(model, best, errors, resolution, edge, faces, orders, extrapolated, 
             move = math.log(rel / ADVICE_TARGET) / (2.0 * kappa)
             to = (ax.max + move) if side == "+" else (ax.min - move)
             what = f"about {to / lf:.4g} {length} (the state decays as exp(-{kappa * lf:.3g} x/{length}) there)"
+        elif face in _open_faces(model):   # no bound level: a continuum state the box discretises
+            return refine, (f"level {worst} reaches the {face} edge, where the job absorbs (open space), with "
+                            f"its energy above V there: it is a continuum state the box discretises, and its "
+                            f"energy moves with the wall (estimated relative error {rel:.1e}), not a bound level")
         else:
             to = ax.max + ax.length if side == "+" else ax.min - ax.length
             what = f"at least {to / lf:.4g} {length} (the state does not decay before the edge)"
@@ -633,8 +651,9 @@ def coupled_level_errors(model, energies_hartree, states, method: str = "auto") 
     surfaces and couplings (terms evaluated anew) on grids with 0.8 and 0.64
     times the points per axis, and the three-grid estimate of
     :func:`_three_grid_error` (module notes, "Error estimates").  Neither
-    the Richardson extrapolation nor the edge estimate is made for coupled
-    surfaces yet: ``edge_errors`` are zero and nothing is extrapolated."""
+    the Richardson extrapolation is made for coupled surfaces yet; the edge
+    estimate (:func:`_edge_errors`) is made surface by surface, each
+    surface's part of a state against its own V_ss at the face."""
     h = model.surface_hamiltonian
     e0 = np.asarray(energies_hartree, float)
     count = e0.size
@@ -677,13 +696,26 @@ def coupled_level_errors(model, energies_hartree, states, method: str = "auto") 
         (h1, e1), (h2, e2) = rungs
         for n in range(count):
             resolution[n], orders[n] = _three_grid_error(e0[n], e1[n], e2[n], h1, h2, floor[n])
-    edge = np.zeros(count)
+    # the edges, surface by surface: each surface's part of a state against its own V_ss at the face
+    # (where the couplings have died out, the surfaces are the channels the edge estimate reads)
+    static = np.array(h.matrix(0.0), float)
+    edge, faces = np.zeros(count), [dict() for _ in range(count)]
+    for a in range(static.shape[0]):
+        part, where = _edge_errors(model, static[a, a], e0, states[:, a])
+        edge += part
+        for n, found in enumerate(where):
+            for face, (shift, kappa) in found.items():
+                before = faces[n].get(face)
+                # a part that does not decay there (kappa None) is what the face's advice must read
+                faces[n][face] = (shift + (before[0] if before else 0.0),
+                                  kappa if before is None else
+                                  (None if kappa is None or before[1] is None else max(kappa, before[1])))
+    errors = resolution + edge
     weights = surface_weights(states, model.grid.cell_volume)
     # the advice reads one array per level: the state on the surface it weighs most on
     dominant = np.stack([states[n, int(np.argmax(weights[n]))] for n in range(count)])
-    refine, advice = _advice(model, e0, resolution, resolution, edge, [{} for _ in range(count)], orders,
-                             np.zeros(count, bool), dominant)
-    return LevelErrors(energies=e0.copy(), errors=resolution, grid_energies=e0, resolution_errors=resolution,
+    refine, advice = _advice(model, e0, errors, resolution, edge, faces, orders, np.zeros(count, bool), dominant)
+    return LevelErrors(energies=e0.copy(), errors=errors, grid_energies=e0, resolution_errors=resolution,
                        edge_errors=edge, extrapolated=np.zeros(count, bool), orders=np.abs(orders),
                        refine=refine, advice=advice)
 
