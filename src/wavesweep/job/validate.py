@@ -474,8 +474,10 @@ def _surfaces(raw_surfaces, raw_couplings, units, ndim, base, found: ErrorCollec
 
 def _packet_surfaces(packet, names, name, found: ErrorCollector | None = None) -> None:
     """``surface`` of the packet (or of each member of a superposition):
-    required and one of ``names`` when the job has surfaces; refused
-    without (``names`` None)."""
+    required and one of ``names`` when the job has surfaces (not of a
+    kind whose state may hold every surface's part, a state file: the
+    set-up reads the file and asks for it then), on the packet or on
+    every member but not both; refused without surfaces (``names`` None)."""
     if not isinstance(packet, dict):
         return
     own = found is None
@@ -491,6 +493,12 @@ def _packet_surfaces(packet, names, name, found: ErrorCollector | None = None) -
         elif members and value is None and all(isinstance(m, dict) and m.get("surface") is not None
                                                for m in members):
             pass   # each member says its own surface
+        elif members and value is not None and any(isinstance(m, dict) and m.get("surface") is not None
+                                                   for m in members):
+            raise JobError(f"{name}.surface", f"give the surface per member or on the packet, not both: remove "
+                                              f"{name}.surface, or the members' surface keys")
+        elif value is None and kind is not None and kind.own_surfaces:
+            pass   # a state file may hold every surface's part: the set-up reads it and asks if not
         elif value is None:
             raise JobError(f"{name}.surface", f"which surface the packet starts on: one of "
                                               f"{', '.join(map(repr, names))}")
