@@ -205,3 +205,24 @@ def test_a_coupled_result_restarts_on_the_command_line(tmp_path):
     proc = wavesweep("run", write_job(tmp_path, table, "again.toml"), "-o", "b", "--quiet", cwd=tmp_path)
     assert proc.returncode == 0, proc.stderr
     assert "another grid" not in proc.stderr
+
+
+# -- P13: what `wavesweep keys` says of surfaces ------------------------------------------------
+def test_the_keys_reference_says_what_coupled_jobs_do():
+    """`keys packet` and every `keys packet.KIND` list `surface`; `keys
+    surface` no longer says the analysis commands cannot read the results
+    or that only split-operator schemes run; `keys coupling` says no kind
+    gives a complex coupling."""
+    from wavesweep.job.reference import reference
+    from wavesweep.states import PACKETS
+
+    def text(topic):
+        return str(reference(topic))
+
+    assert "surface" in [k["key"] for k in reference("packet")["sections"][0]["keys"]]
+    for kind in PACKETS:
+        assert "surface" in [k["key"] for k in reference(f"packet.{kind}")["sections"][0]["keys"]], kind
+    assert "not both" in text("packet.superposition") and "`surface` dimension" in text("packet.file")
+    surface = text("surface")
+    assert "do not read" not in surface and "chebyshev" in surface
+    assert "no potential kind gives a complex" in text("coupling")
