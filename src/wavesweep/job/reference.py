@@ -59,8 +59,10 @@ TABLE_DOCS = {
 # The values are unit names (strings); the symbols of each are listed with the unit kinds.
 UNIT_KEYS = {
     "length": Field("str", "bohr", doc="unit of lengths, e.g. 'nm', 'angstrom', 'um'"),
-    "energy": Field("str", "hartree", doc="unit of energies, e.g. 'meV', 'eV', 'invcm', a temperature "
-                                         "'uK' (k_B T), a frequency 'kHz' (h nu) or 'rad/s' (hbar omega)"),
+    "energy": Field("str", "hartree", doc="unit of energies, e.g. 'meV', 'eV', a molar energy per particle "
+                                         "'kcal/mol' or 'kJ/mol', a wavenumber 'cm-1' (h c / lambda), a "
+                                         "temperature 'uK' (k_B T), a frequency 'kHz' (h nu) or 'rad/s' "
+                                         "(hbar omega)"),
     "time": Field("str", "au_time", doc="unit of times, e.g. 'fs', 'ps'"),
     "mass": Field("str", "m_e", doc="unit of masses, e.g. 'm_e', 'Da', 'kg'"),
     "charge": Field("str", "e_charge", doc="unit of charges: 'e_charge' (e) or 'C'"),

@@ -684,12 +684,20 @@ def _steps(value, dt, field, units) -> int:
                               f"{MAX_STEPS:.3g}; shorten it or lengthen evolve.dt")
     n = round(ratio)
     if n < 1 or abs(n * dt - value) > 1e-9 * max(abs(value), dt):
-        lo = max(1, math.floor(value / dt)) * dt
-        hi = math.ceil(value / dt) * dt
         tf = units.factor("time")
         raise JobError(field, f"must be a whole number of time steps (dt = {dt / tf:g}), "
-                              f"got {value / tf:g}; use {lo / tf:g} or {hi / tf:g}")
+                              f"got {value / tf:g}; use {_nearest_multiples(value / tf, dt / tf)}")
     return n
+
+
+def _nearest_multiples(value: float, unit: float) -> str:
+    """The whole multiples of ``unit`` (at least one) on either side of
+    ``value``, as a fix in a message: ``"40 or 50"``, or one value when
+    both are the same (``"40"``: a value below one unit)."""
+    lo = max(1, math.floor(value / unit)) * unit
+    hi = max(1, math.ceil(value / unit)) * unit
+    a, b = f"{job_number(lo):g}", f"{job_number(hi):g}"
+    return a if a == b else f"{a} or {b}"
 
 
 def _divisor_near(total: int, target: int, tries: int = 100_000) -> int | None:
@@ -738,11 +746,14 @@ def _record(raw, units, evolve, layout=None) -> dict:
         t["snapshot_every"] = job_number(max(1, (total // k) // 100) * k * dt / units.factor("time"))
     snap = units.to_atomic(t["snapshot_every"], "time", "record.snapshot_every")
     m = _steps(snap, dt, "record.snapshot_every", units)
+    tf = units.factor("time")
     if m % k:
-        raise JobError("record.snapshot_every", f"must be a multiple of record.every ({t['every']!r})")
+        raise JobError("record.snapshot_every", f"must be a multiple of record.every ({t['every']!r}), got "
+                                                f"{snap / tf:g}; use {_nearest_multiples(snap / tf, k * dt / tf)}")
     if total % k:
         raise JobError("evolve.duration", f"must be a multiple of record.every ({t['every']!r}) "
-                                          "so that the last sample is at the end")
+                                          f"so that the last sample is at the end, got {duration / tf:g}; use "
+                                          f"{_nearest_multiples(duration / tf, k * dt / tf)}")
     return t
 
 
