@@ -33,6 +33,7 @@ from .job import Job, job_from_dict, load_job
 from .kernels import density_of
 from .setup import AXIS_LONG, CoupledSetup, Setup, analysis_record, coupled_attributes, final_detector_values
 from .surfaces import PHASE_CONVENTION
+from .units import decimal_multiple
 
 __all__ = ["Simulation", "RunBook", "run_job", "progress_bar"]
 
@@ -186,8 +187,27 @@ class Simulation:
             row["detector_psi"] = values["detector_psi"] * conv["amplitude"]
         if "frame_offset" in values:
             row["frame_offset"] = values["frame_offset"] * conv["length"]
-        book.writer.add_sample(t_au / s.units.factor("time"), row)
+        book.writer.add_sample(self.job_time(t_au), row)
         return values
+
+    def job_time(self, t_au: float) -> float:
+        """A sample's time ``t_au`` (atomic units, a whole number of steps)
+        in job units as the job writes its times: the step count times
+        evolve.dt (or the sample count times record.every) in job units,
+        multiplied in decimal (:func:`~wavesweep.units.decimal_multiple`):
+        1200 steps of 0.025 fs are 30.0 fs, not 30.000000000000004, so
+        ``ds.sel(time=30.0)`` finds it.  A step or interval given as a
+        string with its own unit has no written value in job units: then
+        t_au over the unit, as before."""
+        s = self.setup
+        steps = round(t_au / s.dt)
+        if abs(steps * s.dt - t_au) <= 1e-9 * max(abs(t_au), s.dt):
+            dt, every = self.job.table["evolve"]["dt"], self.job.table["record"]["every"]
+            if _plain_number(dt):
+                return decimal_multiple(steps, dt)
+            if _plain_number(every) and steps % s.sample_steps == 0:
+                return decimal_multiple(steps // s.sample_steps, every)
+        return t_au / s.units.factor("time")
 
     def record_sample(self, book, values, t_au, absorbed, psi, done) -> None:
         """The sample (and snapshot, when due) after ``done`` steps; raises
@@ -196,7 +216,7 @@ class Simulation:
         values = self.observe(book, values, t_au, absorbed)
         self._health(values, absorbed, t_au, done)
         if done % s.snapshot_steps == 0:
-            self.write_snapshot(book.writer, t_au / s.units.factor("time"), psi)
+            self.write_snapshot(book.writer, self.job_time(t_au), psi)
 
     def finish(self, book, psi, steps: int) -> Path:
         """Final state, run attributes, the file in place; the checkpoint gone."""
@@ -426,6 +446,11 @@ class RunBook:
     def checkpoint_due(self) -> bool:
         return (self.store is not None
                 and _time.perf_counter() - self.last_checkpoint >= self.policy.every_seconds)
+
+
+def _plain_number(value) -> bool:
+    """Whether a job value is a number in job units (not a string with its own unit)."""
+    return isinstance(value, (int, float)) and not isinstance(value, bool)
 
 
 def _check_writable(folder: Path) -> None:

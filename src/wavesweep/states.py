@@ -8,6 +8,8 @@
 * ``file``: psi from the ``psi_real``/``psi_imag`` variables of a netCDF file
   (a result of this tool, or anything on the same grid); ``state = i`` picks
   one along a ``state`` dimension (a file of ``wavesweep levels --states``).
+  A file with a ``surface`` dimension (coupled surfaces) starts a coupled
+  job on all its surfaces, matched by name (:func:`build_surface_state`).
 * ``eigenstate``: the stationary state number ``n`` (0 = ground, in energy
   order) of the job's Hamiltonian at t = 0 without the absorber, or of the
   trap given by its own ``potential`` tables, from
@@ -60,6 +62,9 @@ class PacketKind:
       ``path`` key is a file relative to the job file's folder;
       ``interacting``: True when the state depends on the job's
       [interaction] (the set-up puts g N in ``packet["contact"]``);
+      ``own_surfaces``: True when the state may carry a part on every
+      coupled surface itself (a state file with a ``surface`` dimension),
+      so a coupled job's ``[packet] surface`` is not required of it;
 
     and implements :meth:`build`, and where they apply :meth:`key_conflicts`,
     :meth:`ignored_keys`, :meth:`unstated_defaults`, :meth:`gaussian_parts`
@@ -74,6 +79,7 @@ class PacketKind:
     nested: ClassVar[str | None] = None
     trap: ClassVar[str | None] = None
     interacting: ClassVar[bool] = False
+    own_surfaces: ClassVar[bool] = False
 
     @classmethod
     def schema(cls) -> dict:
@@ -240,9 +246,24 @@ def build_surface_state(packet: dict, grid, mass: float, surface_terms, names, f
     """psi (S, *grid) on coupled surfaces (complex128, normalised over all of
     them) from a packet table in atomic units: the packet on the surface its
     ``surface`` names, or a superposition whose members each name theirs
-    (amplitudes and phases as for one surface).  A stationary packet is of
-    its own surface's potential (``surface_terms[s]``) unless it names a trap."""
+    (amplitudes and phases as for one surface), or a state file's state on
+    all surfaces (a ``file`` packet reading a ``surface`` dimension: a
+    coupled run's result or a coupled ``levels --states`` file; each part
+    goes to the job's surface of its name, the relative weights kept).  A
+    stationary packet is of its own surface's potential
+    (``surface_terms[s]``) unless it names a trap."""
     psi = np.zeros((len(names),) + grid.shape, complex)
+    if PACKETS[packet.get("kind", DEFAULT_PACKET)].own_surfaces:
+        state, its_names = _read_state_file(packet, grid, field, length_unit)
+        if its_names is not None:
+            psi[:] = _onto_surfaces(state, its_names, names, packet, field)
+            return _normalised_over_surfaces(psi, grid, field, "path", "the state in the file is zero")
+        if packet.get("surface") is None:
+            raise JobError(f"{field}.surface", f"which surface the state in {packet['path']!r} starts on (the "
+                                               f"file has one surface): one of {', '.join(map(repr, names))}")
+        s = names.index(packet["surface"])
+        psi[s] = state
+        return _normalised_over_surfaces(psi, grid, field, "path", "the state in the file is zero")
     if packet.get("surface") is not None:
         s = names.index(packet["surface"])
         psi[s] = build_state({k: v for k, v in packet.items() if k != "surface"}, grid, mass, field,
@@ -256,10 +277,33 @@ def build_surface_state(packet: dict, grid, mass: float, surface_terms, names, f
         one = build_state({k: v for k, v in sub.items() if k != "surface"}, grid, mass,
                           f"{field}.packets.{j}", length_unit, surface_terms[s])
         psi[s] += float(a) * np.exp(1j * float(ph)) * one
+    return _normalised_over_surfaces(psi, grid, field, "amplitudes",
+                                     "the superposition vanishes on the grid (its members cancel)")
+
+
+def _normalised_over_surfaces(psi, grid, field, key, vanished) -> np.ndarray:
+    """psi (S, *grid) over sqrt(sum_s integral |psi_s|^2 dV); ``field.key``
+    names the error when nothing is left."""
     norm = float(np.sum(np.abs(psi) ** 2)) * grid.cell_volume
     if not np.isfinite(norm) or norm <= 0:
-        raise JobError(f"{field}.amplitudes", "the superposition vanishes on the grid (its members cancel)")
+        raise JobError(f"{field}.{key}", vanished)
     return psi / np.sqrt(norm)
+
+
+def _onto_surfaces(state, its_names, names, packet, field) -> np.ndarray:
+    """A file's state (its surfaces ``its_names``, in its order) in the
+    job's order of surfaces ``names``; refused, naming the field, when the
+    packet names a surface too or the two sets of names differ."""
+    path = packet["path"]
+    listed = ", ".join(map(repr, its_names))
+    if packet.get("surface") is not None:
+        raise JobError(f"{field}.surface", f"the state in {path!r} has a part on each of its surfaces ({listed}), "
+                                           "which go to this job's surfaces of the same names; remove surface")
+    if sorted(its_names) != sorted(names) or len(set(its_names)) != len(its_names):
+        raise JobError(f"{field}.path", f"the state in {path!r} is on the surfaces {listed}, this job's are "
+                                        f"{', '.join(map(repr, names))}; use a state of a job with the same "
+                                        "surface names, or a single-surface state with packet.surface")
+    return state[[its_names.index(n) for n in names]]
 
 
 def _trap_of(packet, terms, kind: str):
@@ -337,6 +381,23 @@ def _boost(psi, grid, momenta, field):
 
 
 def _from_file(packet, grid, field, length_unit=(1.0, "bohr")):
+    """psi on one surface from a state file; a state on coupled surfaces (a
+    ``surface`` dimension) is refused: only a coupled job reads it, whole."""
+    psi, its_names = _read_state_file(packet, grid, field, length_unit)
+    if its_names is not None:
+        raise JobError(f"{field}.path", f"the state in {packet['path']!r} is on the coupled surfaces "
+                                        f"{', '.join(map(repr, its_names))}: only a job with [[surface]] tables "
+                                        "of those names reads it, as its whole [packet] (kind = 'file', "
+                                        "without surface); use a single-surface state here")
+    return psi
+
+
+def _read_state_file(packet, grid, field, length_unit=(1.0, "bohr")) -> tuple[np.ndarray, list[str] | None]:
+    """``(psi, surfaces)`` from the ``real``/``imag`` variables of a state
+    file: psi on the grid and ``surfaces`` None, or, where the file has a
+    ``surface`` dimension (a coupled run's result, a coupled ``levels
+    --states`` file), psi (S, *grid) and the file's surface names in its
+    order.  A file on another grid is refused naming ``path``."""
     import xarray as xr  # lazy: xarray (0.3 s with pandas), only for a state read from a file
 
     path = packet["path"]
@@ -351,22 +412,30 @@ def _from_file(packet, grid, field, length_unit=(1.0, "bohr")):
             lf = float(ds.attrs.get("length_to_bohr", 1.0))
             its_grid = _grid_of_file(ds)
             re, im = _pick_state(re, im, packet.get("state"), path, field)
+            surfaces = None
+            if "surface" in re.dims:   # the surface axis first, as a coupled job's psi; never a grid axis
+                re, im = re.transpose("surface", ...), im.transpose("surface", ...)
+                surfaces = ([str(v) for v in re["surface"].values] if "surface" in re.coords
+                            else [str(v) for v in range(re.sizes["surface"])])
     except JobError:  # a JobError is a ValueError: keep its own field
         raise
     except (OSError, ValueError) as e:
         raise JobError(f"{field}.path", f"cannot read {path!r} as netCDF: {e}") from e
-    dims = tuple(d.removesuffix("_full") for d in re.dims)
-    same = dims == grid.names and re.shape == grid.shape
+    axes = [d for d in re.dims if d != "surface"]
+    dims = tuple(d.removesuffix("_full") for d in axes)
+    shape = tuple(re.sizes[d] for d in axes)
+    same = dims == grid.names and shape == grid.shape
     differ = "" if same else "axes" if dims != grid.names else "points"
     if same:
-        for dim, ax in zip(re.dims, grid.axes):
+        for dim, ax in zip(axes, grid.axes):
             c = np.asarray(re[dim].values, float) * lf
             if not np.allclose(c, ax.coordinates, rtol=0, atol=1e-6 * ax.dx):
                 differ = f"{dim.removesuffix('_full')} coordinates"
                 break
     if differ:
-        raise JobError(f"{field}.path", _other_grid(path, re, dims, lf, its_grid, grid, differ, length_unit))
-    return np.asarray(re.values, float) + 1j * np.asarray(im.values, float)
+        raise JobError(f"{field}.path", _other_grid(path, re, axes, dims, lf, its_grid, grid, differ,
+                                                    length_unit))
+    return np.asarray(re.values, float) + 1j * np.asarray(im.values, float), surfaces
 
 
 def _grid_of_file(ds) -> str | None:
@@ -391,12 +460,13 @@ def _grid_of_file(ds) -> str | None:
         return None
 
 
-def _other_grid(path, re, dims, lf, its_grid, grid, differ, length_unit) -> str:
-    """One line: how the file's grid and the job's differ, and what to do."""
+def _other_grid(path, re, axes, dims, lf, its_grid, grid, differ, length_unit) -> str:
+    """One line: how the file's grid (its grid dimensions ``axes``, named
+    ``dims`` without a ``_full``) and the job's differ, and what to do."""
     factor, label = length_unit
     if its_grid is None:   # a foreign file: describe it by its coordinates
         parts = []
-        for dim, name in zip(re.dims, dims):
+        for dim, name in zip(axes, dims):
             c = np.asarray(re[dim].values, float) * lf / factor
             ends = f" from {c[0]:g} to {c[-1]:g} {label}" if c.size else ""
             parts.append(f"{name}: {c.size} points{ends}")
@@ -541,7 +611,10 @@ class FilePacket(PacketKind):
                        doc="which state along the file's `state` dimension (0-based)"),
     }
     formula = ("psi = real + i imag, the two netCDF variables (on exactly this grid); state picks "
-               "one along a `state` dimension")
+               "one along a `state` dimension.  On coupled surfaces: a file with a `surface` dimension "
+               "(a coupled run's result, a coupled `levels --states` file) gives each surface of the "
+               "same name its part (no packet surface); a file of one surface goes on packet.surface")
+    own_surfaces = True
 
     @classmethod
     def build(cls, packet, grid, mass, field, length_unit, terms):

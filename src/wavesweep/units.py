@@ -19,7 +19,9 @@ determine it, or refused (:meth:`UnitSet.from_table`): never silently atomic
 beside units that are not.
 
 Energies may be written in the units of the trade (:func:`unit_factor`):
-temperatures ``K``, ``mK``, ``uK``, ``nK`` are energies k_B T; a frequency
+temperatures ``K``, ``mK``, ``uK``, ``nK`` are energies k_B T; molar
+energies ``kcal/mol`` and ``kJ/mol`` are per particle (``mol`` is the
+count N_A); a wavenumber ``cm-1`` (``1/cm``, ``invcm``) is h c / lambda; a frequency
 unit read where an energy is wanted is the energy of that frequency,
 ``Hz``, ``kHz``, ``MHz``, ``GHz``, ``THz`` (cycles per second) as h nu and
 ``rad/s`` (radians per time) as hbar omega, alone (``"2.5 kHz"``, ``[units]
@@ -35,13 +37,14 @@ import functools
 import math
 import re
 from dataclasses import dataclass, field
+from decimal import Decimal
 
 import scipy.constants as sc
 
 from .errors import ErrorCollector, JobError
 
 __all__ = ["UnitSet", "KINDS", "parse_unit", "unit_factor", "symbol_powers", "ATOMIC", "MECHANICAL",
-           "CYCLE_SYMBOLS"]
+           "CYCLE_SYMBOLS", "decimal_multiple"]
 
 # --- atomic units in SI (CODATA via scipy.constants) -------------------------
 _M_AU = sc.m_e                                   # kg
@@ -103,6 +106,10 @@ UNITS: dict[str, tuple[float, Dims]] = {
     "mK": _unit(1e-3 * sc.k, _ENERGY), "uK": _unit(1e-6 * sc.k, _ENERGY),
     "µK": _unit(1e-6 * sc.k, _ENERGY), "nK": _unit(1e-9 * sc.k, _ENERGY),
     "invcm": _unit(sc.h * sc.c * 100.0, _ENERGY),   # wavenumber, h c / 1 cm
+    # chemists' molar energies, per particle: "kcal/mol" = 4184 J / N_A, "kJ/mol" = 1000 J / N_A
+    # (the thermochemical calorie, 4.184 J; the mole a count of N_A, exact in the 2019 SI)
+    "kcal": _unit(1e3 * sc.calorie, _ENERGY), "kJ": _unit(1e3, _ENERGY),
+    "mol": (sc.N_A, _DIM_NONE),
 }
 
 # Frequency symbols that count cycles (1 Hz = 1 cycle per second) and the time
@@ -111,6 +118,10 @@ UNITS: dict[str, tuple[float, Dims]] = {
 # them makes the time unit its period unit (kHz: ms).
 CYCLE_SYMBOLS = {"Hz": "s", "kHz": "ms", "MHz": "us", "GHz": "ns", "THz": "ps"}
 _FREQUENCY: Dims = (0, 0, -1, 0)
+# a wavenumber 1/lambda read as an energy h c / lambda: h c in hartree bohr (the atomic
+# energy unit as the table above builds it, M L^2 / T^2, so that "cm-1" is exactly "invcm")
+_WAVENUMBER: Dims = (0, -1, 0, 0)
+_HC_AU = sc.h * sc.c / (_au_in_si(_ENERGY) * _L_AU)
 
 
 @dataclass(frozen=True)
@@ -386,7 +397,7 @@ class UnitSet:
         time_derived = "time" not in table and "energy" in table
         energy_derived = "energy" not in table and "time" in table and "length" in table
         if time_derived:
-            names["time"] = _period_unit(names["energy"]) or f"hbar/{names['energy']}"
+            names["time"] = _period_unit(names["energy"]) or f"hbar/{_grouped(names['energy'])}"
         if energy_derived:
             # E = M L^2 / T^2, written as a unit string the parser reads back
             parts = [(s, p) for s, p in symbol_powers(names["mass"])]
@@ -424,7 +435,7 @@ class UnitSet:
         for base, power in KINDS[kind].job_unit:
             name = getattr(self, base)
             if base == "time" and self._time_is_hbar_over_energy:
-                parts.append((f"(hbar/{self.energy})", power))
+                parts.append((f"(hbar/{_grouped(self.energy)})", power))
             else:
                 parts += [(sym, p * power) for sym, p in symbol_powers(name)]
         return _write_powers(_merge_powers(parts))
@@ -508,6 +519,12 @@ _FAMILIAR = {
 }
 
 
+def _grouped(unit: str) -> str:
+    """A unit in parentheses where it is a compound (``"kcal/mol"`` ->
+    ``"(kcal/mol)"``), so that ``hbar/`` before it divides by all of it."""
+    return f"({unit})" if re.search(r"[/* ^]", unit.strip()) else unit
+
+
 def _is_frequency(unit: str) -> bool:
     """Whether a (valid) unit is an inverse time: an energy written as a frequency."""
     return parse_unit(unit)[1] == _FREQUENCY
@@ -587,17 +604,23 @@ def _kind_factor(unit: str, kind: str, field: str, what: str) -> float | None:
         as_frequency = tuple(w - e + f for w, e, f in zip(want, _ENERGY, _FREQUENCY))
         if dims == as_frequency:
             return factor * _energy_from_frequency(unit, field, what)
+        # an energy written as a spectroscopic wavenumber 1/lambda ("cm-1"): E = h c / lambda,
+        # E replaced by E / (h c) (an inverse length); an angular one ("rad/cm") is not the custom
+        as_wavenumber = tuple(w - e + f for w, e, f in zip(want, _ENERGY, _WAVENUMBER))
+        if dims == as_wavenumber and "rad" not in dict(symbol_powers(unit, field)):
+            return factor * _HC_AU
     return None
 
 
 def _fix_hint(kind: str, dims: Dims) -> str:
     """How to write a value of ``kind`` whose unit had ``dims`` (a message's fix)."""
     if kind == "energy":
-        return ("; write it in an energy unit such as 'meV', a temperature ('uK': k_B T) or a "
-                "frequency ('kHz': h nu; 'rad/s': hbar omega)")
+        return ("; write it in an energy unit such as 'meV' or 'kcal/mol' (per particle), a temperature "
+                "('uK': k_B T), a wavenumber ('cm-1': h c / lambda) or a frequency ('kHz': h nu; 'rad/s': "
+                "hbar omega)")
     if _energy_power(kind) == 1:
-        return ("; its energy may be in an energy unit ('meV'), a temperature ('uK': k_B T) or a "
-                "frequency ('kHz': h nu; 'rad/s': hbar omega)")
+        return ("; its energy may be in an energy unit ('meV', 'kcal/mol'), a temperature ('uK': k_B T), "
+                "a wavenumber ('cm-1') or a frequency ('kHz': h nu; 'rad/s': hbar omega)")
     if kind == "frequency" and dims == _ENERGY:
         return ("; an angular frequency is written in rad/s (or Hz, kHz, ..., multiplied by 2 pi), "
                 "not as an energy")
@@ -635,7 +658,8 @@ def quantity_to_atomic(text: str, kind: str, field: str = "value") -> float:
     want = KINDS[kind].dims
     if not unit:
         if want != _DIM_NONE:
-            raise JobError(field, f"{text!r} has no unit; write it as a number, or with a {kind} unit")
+            raise JobError(field, f"{text!r} has no unit; write it as a number, or with "
+                                  f"{_article(kind)} unit")
         return number
     factor = _kind_factor(unit, kind, field, repr(text))
     if factor is None:
@@ -644,3 +668,13 @@ def quantity_to_atomic(text: str, kind: str, field: str = "value") -> float:
 
 
 _CYCLES = re.compile(r"(?<![A-Za-z])[kMGT]?Hz(?![A-Za-z])")
+
+
+def decimal_multiple(count: int, step: float) -> float:
+    """``count`` times ``step`` as the decimal numbers a job file writes
+    them, rounded once to the nearest double: 60 x 0.5 is 30.0 and
+    1200 x 0.025 is 30.0 (the float product is 30.000000000000004), so a
+    time coordinate written this way is found by its written value
+    (``ds.sel(time=30.0)``).  ``step`` is read as its shortest repr."""
+    return float(Decimal(repr(float(step))) * int(count))
+

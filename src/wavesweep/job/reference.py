@@ -31,7 +31,7 @@ from ..states import DEFAULT_PACKET, PACKET_SCHEMAS, PACKETS
 from ..units import CYCLE_SYMBOLS, KINDS, UNITS, UnitSet
 from .document import Job
 from .schemas import (ABSORBER, AXIS, COUPLING, DETECTOR, DETECTOR_POSITION, EVOLVE, GRID, INTERACTION, PARTICLE,
-                      RECORD, SURFACE, TOP_LEVEL)
+                      PACKET_SURFACE, RECORD, SURFACE, TOP_LEVEL)
 from .sweep import MODES
 
 __all__ = ["reference", "render_text", "topics", "physics_defaults", "PhysicsDefault", "default_findings",
@@ -59,8 +59,10 @@ TABLE_DOCS = {
 # The values are unit names (strings); the symbols of each are listed with the unit kinds.
 UNIT_KEYS = {
     "length": Field("str", "bohr", doc="unit of lengths, e.g. 'nm', 'angstrom', 'um'"),
-    "energy": Field("str", "hartree", doc="unit of energies, e.g. 'meV', 'eV', 'invcm', a temperature "
-                                         "'uK' (k_B T), a frequency 'kHz' (h nu) or 'rad/s' (hbar omega)"),
+    "energy": Field("str", "hartree", doc="unit of energies, e.g. 'meV', 'eV', a molar energy per particle "
+                                         "'kcal/mol' or 'kJ/mol', a wavenumber 'cm-1' (h c / lambda), a "
+                                         "temperature 'uK' (k_B T), a frequency 'kHz' (h nu) or 'rad/s' "
+                                         "(hbar omega)"),
     "time": Field("str", "au_time", doc="unit of times, e.g. 'fs', 'ps'"),
     "mass": Field("str", "m_e", doc="unit of masses, e.g. 'm_e', 'Da', 'kg'"),
     "charge": Field("str", "e_charge", doc="unit of charges: 'e_charge' (e) or 'C'"),
@@ -179,8 +181,26 @@ def _potential_section(kind: str) -> dict:
 
 
 def _packet_section(kind: str) -> dict:
-    return _section(f"packet.{kind}", f'[packet] kind = "{kind}"', "", _keys(PACKET_SCHEMAS[kind]),
-                    PACKETS[kind].formula)
+    return _section(f"packet.{kind}", f'[packet] kind = "{kind}"', "",
+                    _keys(PACKET_SCHEMAS[kind]) + [_packet_surface_key(kind)], PACKETS[kind].formula)
+
+
+def _packet_surface_key(kind: str | None = None) -> dict:
+    """``surface``, which every packet kind takes on coupled surfaces, as
+    the kind reads it (``None``: any kind)."""
+    cls = PACKETS.get(kind)
+    doc = PACKET_SURFACE.doc
+    if cls is not None and cls.nested:
+        doc = (f"coupled surfaces ([[surface]]) only: the surface every member starts on; or give each "
+               f"member of {cls.nested} its own surface instead (not both)")
+    elif cls is not None and cls.own_surfaces:
+        doc = ("coupled surfaces ([[surface]]) only: the surface a state of one surface starts on; a "
+               "state with a `surface` dimension (a coupled run's result, a coupled `levels --states` "
+               "file) fills the job's surfaces of the same names and takes no surface")
+    elif cls is None:
+        doc += ("; a superposition gives it on the packet or on each member (not both); a file packet "
+                "whose state has a `surface` dimension fills the surfaces of the same names without it")
+    return _key("surface", Field(PACKET_SURFACE.kind, None, doc=doc))
 
 
 def _kind_list(names, summaries) -> list[dict]:
@@ -208,7 +228,7 @@ def _table_sections(name: str) -> list[dict]:
                                 "and keys)", EDGES])]
     if name == "packet":
         kinds = list(PACKET_SCHEMAS)
-        return [_section("packet", "[packet]", doc, [],
+        return [_section("packet", "[packet]", doc, [_packet_surface_key()],
                          kinds=_kind_list(kinds, [PACKETS[k].formula for k in kinds]),
                          notes=[f"kind = one of the kinds above (default {DEFAULT_PACKET}; wavesweep keys "
                                 "packet.KIND: its keys)"])]
@@ -241,12 +261,19 @@ def _table_sections(name: str) -> list[dict]:
     if name == "surface":
         return [_section("surface", "[[surface]]", doc, _keys(SURFACE, skip=()),
                          notes=["the packet names the surface it starts on: [packet] surface = NAME (or one "
-                                "per member of a superposition)",
-                                "split-operator schemes in double precision; the result has a `surface` "
-                                "dimension; the analysis commands do not read such results yet"])]
+                                "per member of a superposition, not both); a state file with a `surface` "
+                                "dimension starts on every surface of the same name",
+                                "schemes: the split-operator ones (strang, order4, order4_suzuki), and "
+                                "chebyshev when no surface or coupling changes in time (no CAP); double "
+                                "precision",
+                                "the result has a `surface` dimension; arrivals, transmission, collect, movie "
+                                "and plot read it per surface (levels --from not yet); levels of the job "
+                                "diagonalises the full matrix Hamiltonian"])]
     if name == "coupling":
         return [_section("coupling", "[[coupling]]", doc, _keys(COUPLING, skip=()),
-                         "H = T + V(r, t), V_ab = V_ba the coupling's potential, V_aa the surface's")]
+                         "H = T + V(r, t), V_ab = V_ba the coupling's potential, V_aa the surface's",
+                         notes=["V is a real symmetric matrix at each point: no potential kind gives a "
+                                "complex coupling"])]
     raise KeyError(name)
 
 

@@ -32,8 +32,12 @@ SURFACE = {
 COUPLING = {
     "surfaces": Field("list", doc="the two surfaces it couples, by name: [\"A\", \"B\"]"),
     "potential": Field("list", doc="[[potential]]-style tables summed into the off-diagonal element "
-                                   "V_AB(r, t) (real; V_BA = V_AB)"),
+                                   "V_AB(r, t) (real: no potential kind gives a complex value; "
+                                   "V_BA = V_AB)"),
 }
+# [packet] surface (any kind; validated by validate._packet_surfaces against the [[surface]] names)
+PACKET_SURFACE = Field("str", None, doc="coupled surfaces ([[surface]]) only, and required there: the "
+                                        "surface the packet starts on, by name")
 
 PARTICLE = {
     "mass": Field("mass", 1.0, positive=True, physics=True,

@@ -474,8 +474,10 @@ def _surfaces(raw_surfaces, raw_couplings, units, ndim, base, found: ErrorCollec
 
 def _packet_surfaces(packet, names, name, found: ErrorCollector | None = None) -> None:
     """``surface`` of the packet (or of each member of a superposition):
-    required and one of ``names`` when the job has surfaces; refused
-    without (``names`` None)."""
+    required and one of ``names`` when the job has surfaces (not of a
+    kind whose state may hold every surface's part, a state file: the
+    set-up reads the file and asks for it then), on the packet or on
+    every member but not both; refused without surfaces (``names`` None)."""
     if not isinstance(packet, dict):
         return
     own = found is None
@@ -491,6 +493,12 @@ def _packet_surfaces(packet, names, name, found: ErrorCollector | None = None) -
         elif members and value is None and all(isinstance(m, dict) and m.get("surface") is not None
                                                for m in members):
             pass   # each member says its own surface
+        elif members and value is not None and any(isinstance(m, dict) and m.get("surface") is not None
+                                                   for m in members):
+            raise JobError(f"{name}.surface", f"give the surface per member or on the packet, not both: remove "
+                                              f"{name}.surface, or the members' surface keys")
+        elif value is None and kind is not None and kind.own_surfaces:
+            pass   # a state file may hold every surface's part: the set-up reads it and asks if not
         elif value is None:
             raise JobError(f"{name}.surface", f"which surface the packet starts on: one of "
                                               f"{', '.join(map(repr, names))}")
@@ -676,12 +684,20 @@ def _steps(value, dt, field, units) -> int:
                               f"{MAX_STEPS:.3g}; shorten it or lengthen evolve.dt")
     n = round(ratio)
     if n < 1 or abs(n * dt - value) > 1e-9 * max(abs(value), dt):
-        lo = max(1, math.floor(value / dt)) * dt
-        hi = math.ceil(value / dt) * dt
         tf = units.factor("time")
         raise JobError(field, f"must be a whole number of time steps (dt = {dt / tf:g}), "
-                              f"got {value / tf:g}; use {lo / tf:g} or {hi / tf:g}")
+                              f"got {value / tf:g}; use {_nearest_multiples(value / tf, dt / tf)}")
     return n
+
+
+def _nearest_multiples(value: float, unit: float) -> str:
+    """The whole multiples of ``unit`` (at least one) on either side of
+    ``value``, as a fix in a message: ``"40 or 50"``, or one value when
+    both are the same (``"40"``: a value below one unit)."""
+    lo = max(1, math.floor(value / unit)) * unit
+    hi = max(1, math.ceil(value / unit)) * unit
+    a, b = f"{job_number(lo):g}", f"{job_number(hi):g}"
+    return a if a == b else f"{a} or {b}"
 
 
 def _divisor_near(total: int, target: int, tries: int = 100_000) -> int | None:
@@ -730,11 +746,14 @@ def _record(raw, units, evolve, layout=None) -> dict:
         t["snapshot_every"] = job_number(max(1, (total // k) // 100) * k * dt / units.factor("time"))
     snap = units.to_atomic(t["snapshot_every"], "time", "record.snapshot_every")
     m = _steps(snap, dt, "record.snapshot_every", units)
+    tf = units.factor("time")
     if m % k:
-        raise JobError("record.snapshot_every", f"must be a multiple of record.every ({t['every']!r})")
+        raise JobError("record.snapshot_every", f"must be a multiple of record.every ({t['every']!r}), got "
+                                                f"{snap / tf:g}; use {_nearest_multiples(snap / tf, k * dt / tf)}")
     if total % k:
         raise JobError("evolve.duration", f"must be a multiple of record.every ({t['every']!r}) "
-                                          "so that the last sample is at the end")
+                                          f"so that the last sample is at the end, got {duration / tf:g}; use "
+                                          f"{_nearest_multiples(duration / tf, k * dt / tf)}")
     return t
 
 
