@@ -224,6 +224,27 @@ def test_a_one_key_coupled_study_has_a_readable_log_axis(tmp_path, monkeypatch):
     assert beyond.get_yscale() == "log" and beyond.get_ylim()[0] > 1e-3   # nothing ignored: 0.02..0.98
 
 
+def test_a_coupled_study_mapped_per_surface_on_one_colour_scale(tmp_path, monkeypatch):
+    """More than 8 values of the second parameter: a map per surface, of the
+    face that took the probability (not the first face's round-off)."""
+    coupling, mass = np.array([0.01, 0.03, 0.05]), np.linspace(1.0, 10.0, 10)
+    on_a = (0.98 - 8 * (coupling[:, None] - 0.01)) * np.ones_like(mass)[None, :]
+    shares = np.stack([on_a, 1 - on_a], axis=-1)
+    ds = xr.Dataset({"final_absorbed": (["coupling", "mass", "surface", "boundary"],
+                                        np.stack([1e-29 * shares, shares], axis=-1))},
+                    coords={"coupling": coupling, "mass": mass, "surface": ["A", "B"], "boundary": ["x-", "x+"],
+                            "time": ("time", [0.0, 1.0], {"units": "fs"})},
+                    attrs={"study": "s", "sweep_dimensions": "coupling mass"})
+    ds.to_netcdf(tmp_path / "summary.nc")
+    fig = _figure(monkeypatch, tmp_path / "summary.nc", tmp_path)
+    meshes = {ax.get_title(loc="left").rsplit(" ", 1)[1]: ax.collections[0] for ax in fig.axes
+              if "on surface" in ax.get_title(loc="left")}
+    for surface in ("A", "B"):
+        np.testing.assert_array_equal(np.asarray(meshes[surface].get_array()).ravel(),
+                                      ds.final_absorbed.sel(surface=surface, boundary="x+").T.values.ravel())
+        assert meshes[surface].get_clim() == (pytest.approx(0.02), pytest.approx(0.98))   # both surfaces'
+
+
 def test_probability_scale():
     # round-off below 1e-12 of the largest neither chooses the scale nor sets the limits, which leave
     # 5 % of the decades spanned by the rest on either side (as matplotlib's own margins)

@@ -530,6 +530,11 @@ def plot_study(path, output, size=(1200, 900), dpi: int = 100) -> Path:
             quantity = "probability" if kind == "probability" else f"time ({T})"
             prefix = "absorbed at " if member_dim == "boundary" else "detector "
             limits = None
+            if surface is not None and members[0] is not None and ds.sizes[dims[1]] > 8:
+                # a map draws one member: the one holding the most probability on any surface (the
+                # first face of a packet that all went the other way would map round-off only)
+                peak = ds[var].max([d for d in ds[var].dims if d != member_dim], skipna=True)
+                members.sort(key=lambda m: -float(np.nan_to_num(peak.sel({member_dim: m}), nan=-np.inf)))
             if surface is not None:        # one scale for the rows of all surfaces: the branching reads off
                 whole = ds[var].sel({member_dim: members[0]}) if members[0] is not None else ds[var]
                 limits = _finite_range(whole.values)
