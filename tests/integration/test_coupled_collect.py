@@ -96,9 +96,9 @@ def test_a_study_mixing_surface_sets_is_refused(tmp_path):
 def test_the_study_figure_draws_each_surface(coupled_study, tmp_path, monkeypatch):
     """`plot` on a coupled study's summary: one line per (detector,
     surface), told apart by line style, holding the summary's numbers; with
-    two swept parameters the panels show all surfaces together (the sum of
-    the probabilities; the arrival mean over what crossed on any surface,
-    each surface's mean weighted by its probability)."""
+    two swept parameters (test_coupled_figures.py) a row per surface, the
+    arrival mean over what crossed on any surface (each surface's mean
+    weighted by its probability, checked here)."""
     from wavesweep.viz import summary
     root, study, ds = coupled_study
     figures = []

@@ -123,11 +123,13 @@ def test_a_1d_coupled_movie_draws_each_surface_apart(line_result, tmp_path):
         assert v_lines[f"V on {s}"].get_linestyle() == density[j].get_linestyle()
         assert v_lines[f"V on {s}"].get_linewidth() < density[j].get_linewidth()
     assert len(_styles([v_lines[f"V on {s}"] for s in surfaces])) == 2
-    np.testing.assert_array_equal(v_lines["|V| coupling A and B"].get_ydata(), np.abs(coupling))
+    # |V_ab| = 0.2 beside surfaces spanning 3 hartree: drawn x 5, the factor in its label
+    assert painter.coupling_factor == 5
+    np.testing.assert_allclose(v_lines["|V| coupling A and B (×5)"].get_ydata(), 5 * np.abs(coupling), rtol=1e-15)
     # the legend names each surface, with its population in the frame: the density's integral,
     # which is the file's norm of that surface at that time
     texts = [t.get_text() for t in painter.legend.get_texts()]
-    assert {"V on A", "V on B", "|V| coupling A and B"} <= set(texts)
+    assert {"V on A", "V on B", "|V| coupling A and B (×5)"} <= set(texts)
     for j, s in enumerate(surfaces):
         entry = next(t for t in texts if t.startswith(f"density on {s}: P = "))
         assert float(entry.rsplit("=", 1)[1]) == pytest.approx(norm_last[j], abs=5e-4 + 1e-6)

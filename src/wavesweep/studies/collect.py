@@ -60,6 +60,7 @@ from __future__ import annotations
 import datetime as _dt
 import errno
 import json
+import sqlite3
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -82,6 +83,7 @@ from ..states import DEFAULT_PACKET, PACKET_SCHEMAS, PACKETS
 from ..surfaces import PHASE_CONVENTION
 from ..units import KINDS, UnitSet
 from .layout import MANIFEST_NAME, SUMMARY_NAME, StudyLayout
+from .queue import Queue
 
 __all__ = ["collect", "collect_study", "missing_points", "SUMMARY_NAME", "MANIFEST_NAME"]
 
@@ -216,7 +218,8 @@ def collect_study(root, study: str) -> dict:
     ds = _dataset(data, params, pdims, mode, times, faces, detectors, results, first)
     found = sum(1 for run in where.values() if run["run_id"] in results)
     missing = [run["run_id"] for run in runs if run["run_id"] not in results]
-    ds.attrs = _global_attrs(manifest, study, first, found, len(runs), missing, params, notes)
+    title = _study_title(layout, study, runs, results, first)
+    ds.attrs = _global_attrs(manifest, study, first, title, found, len(runs), missing, params, notes)
     path = _write(ds, layout.summary(study))
     return {"path": path, "found": len(results), "expected": len(runs),
             "missing": [{"run_id": run["run_id"], "params": dict(run.get("params") or {})}
@@ -705,9 +708,34 @@ def _array(values) -> np.ndarray:
     return np.array(["" if v is None else str(v) for v in values], dtype=str)
 
 
-def _global_attrs(manifest, study, first, found, expected, missing, params, notes) -> dict:
+def _study_title(layout: StudyLayout, study: str, runs, results, first) -> str:
+    """The title of the study's own job.  A run's result file carries the
+    title of the study that computed it, which for a run reused from
+    another study (the same physics under another title) is that study's;
+    the queue keeps each study's own resolved job per run, so the title is
+    read from there, from the study's first run with a result.  Without a
+    readable queue (a study folder copied elsewhere): the result's title."""
+    fallback = first.job.get("title", "")
+    if not layout.queue_db.is_file():
+        return fallback
+    run_id = next((run["run_id"] for run in runs if run["run_id"] in results), None)
+    queue = None
+    try:
+        queue = Queue(layout.root)
+        row = queue.run(study, run_id)
+        job = tomllib.loads(row["job_toml"]) if row is not None else None
+    except (JobError, OSError, sqlite3.Error, tomllib.TOMLDecodeError):
+        return fallback            # a damaged queue loses the title, never the summary
+    finally:
+        if queue is not None:
+            queue.close()
+    title = job.get("title") if job is not None else None
+    return title if isinstance(title, str) else fallback
+
+
+def _global_attrs(manifest, study, first, title, found, expected, missing, params, notes) -> dict:
     attrs = {
-        "title": f"study {study}: {first.job.get('title', '')}".rstrip(": "),
+        "title": f"study {study}: {title}".rstrip(": "),
         "study": study,
         "sweep_mode": manifest["mode"],
         "sweep_keys": " ".join(p.key for p in params),

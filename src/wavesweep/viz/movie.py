@@ -21,7 +21,9 @@ Coupled surfaces (a ``surface`` dimension): in 1D one axes with each
 surface's density (thick) and its potential V_ss (thin, right axis) in the
 surface's colour, line style and width (``style.SURFACE_STYLES``, apart
 in grey-scale print too), each coupled pair's |V_ab| on the potential
-axis, and a legend naming each curve with each surface's probability in
+axis in a grey style of its own (``style.COUPLING_STYLES``), multiplied by
+a factor stated in its legend entry when it is below a fifth of the
+surfaces' span (0.03 eV beside 8 eV: x 100), and a legend naming each curve with each surface's probability in
 the frame (the frame's integral) updated every frame; in 2D (and 3D through
 a projection or slice) one panel per surface side by side on one colour
 scale, each with its own potential's contours and its probability.
@@ -534,12 +536,28 @@ def coupling_label(pair: str) -> str:
     return f"|V| coupling {style.plain(a)} and {style.plain(b)}"
 
 
+def coupling_factor(span: float, largest: float) -> float:
+    """The factor a 1D coupled movie draws the couplings |V_ab| by on the
+    potential axis: 1 when the largest, ``largest``, is at least a fifth of
+    the surfaces' potential span ``span`` (same units), else the largest of
+    1, 2, 5 times a power of ten that keeps it within half the span (a
+    coupling of 0.03 eV beside surfaces spanning 8 eV is drawn x 100,
+    reaching 3 eV)."""
+    if not (largest > 0 and span > 0) or largest >= 0.2 * span:
+        return 1.0
+    target = 0.5 * span / largest
+    decade = 10.0 ** np.floor(np.log10(target))
+    return float(max(m * decade for m in (1, 2, 5) if m * decade <= target * (1 + 1e-12)))
+
+
 class SurfacesPainter1D(Painter1D):
     """Coupled surfaces on a line, on one axes: each surface's density (left
     axis; thick) and its static potential V_ss (right axis; thin) in the
     surface's colour, line style and width (:data:`style.SURFACE_STYLES`:
     the surfaces stay apart in grey-scale print), each coupled pair's
-    |V_ab| dark grey and dash-dotted on the potential axis.  The legend
+    |V_ab| on the potential axis in a grey style of its own, scaled by a
+    factor its label states when it is small beside the surfaces' span
+    (:func:`coupling_factor`).  The legend
     names each curve and gives each surface's probability in the frame (the
     frame's integral), updated every frame."""
 
@@ -602,8 +620,11 @@ class SurfacesPainter1D(Painter1D):
 
     def _potential_curves(self) -> list:
         """(label, values, line keywords) of each surface's V_ss (its
-        style, thinner than its density) and each pair's |V_ab|; empty when
-        they are all one constant (nothing to read off a flat line)."""
+        style, thinner than its density) and each pair's |V_ab| (a grey
+        style per pair, :func:`style.coupling_style`), the couplings scaled
+        by :func:`coupling_factor` (stated in their label) so that a small
+        one stands out against the surfaces' span; empty when they are all
+        one constant (nothing to read off a flat line)."""
         sc = self.scene
         curves = []
         for j, s in enumerate(sc.surfaces):
@@ -611,10 +632,13 @@ class SurfacesPainter1D(Painter1D):
             if v is not None and v.ndim == 1:
                 kw = style.surface_style(j)
                 curves.append((f"V on {style.plain(s)}", v, {**kw, "lw": 0.55 * kw["lw"]}))
-        colour, ls, lw = style.COUPLING
-        for pair, v in (sc.couplings or {}).items():
-            if v.ndim == 1:
-                curves.append((coupling_label(pair), np.abs(v), {"color": colour, "ls": ls, "lw": lw}))
+        couplings = {pair: np.abs(v) for pair, v in (sc.couplings or {}).items() if v.ndim == 1}
+        span = float(np.ptp(np.concatenate([v for _, v, _ in curves]))) if curves else 0.0
+        self.coupling_factor = coupling_factor(span, max((float(v.max()) for v in couplings.values()),
+                                                         default=0.0))
+        for k, (pair, v) in enumerate(couplings.items()):
+            text = coupling_label(pair) + (f" (×{self.coupling_factor:g})" if self.coupling_factor != 1 else "")
+            curves.append((text, v * self.coupling_factor, style.coupling_style(k)))
         if not curves or float(np.ptp(np.concatenate([v for _, v, _ in curves]))) == 0:
             return []
         return curves

@@ -12,7 +12,8 @@ import contextlib
 import re
 
 __all__ = ["PALETTE", "DENSITY_CMAP", "POTENTIAL", "ABSORBER", "DETECTOR", "SURFACE_STYLES", "COUPLING",
-           "figure", "line_colors", "surface_style", "pretty_unit", "style"]
+           "COUPLING_STYLES", "ADIABATIC_STYLES", "figure", "line_colors", "surface_style", "coupling_style",
+           "adiabatic_style", "pretty_unit", "style"]
 
 PALETTE = {
     "blue": "#0072B2", "vermillion": "#D55E00", "green": "#009E73", "orange": "#E69F00",
@@ -31,9 +32,17 @@ REAL, IMAG = PALETTE["green"], PALETTE["purple"]
 # Entries: (colour, line style, line width in points).
 SURFACE_STYLES = (("#0072B2", "-", 1.8), ("#D55E00", "--", 1.6), ("#009E73", ":", 2.0),
                   ("#CC79A7", "-.", 1.6), ("#000000", (0, (5, 1, 1, 1, 1, 1)), 1.4), ("#E69F00", (0, (1, 1)), 1.4))
-# The off-diagonal coupling |V_ab| beside the surfaces' potentials: dark grey, dash-dotted
-# thin, apart from every surface's style.
-COUPLING = ("#555555", (0, (3, 1, 1, 1)), 1.0)
+# The off-diagonal couplings |V_ab| beside the surfaces' potentials: greys, thin, apart from every
+# surface's style and from each other in grey-scale by their dash pattern, grey level and marker
+# (the first pair: dark grey dash-dotted, no marker).  Entries: (colour, line style, width, marker).
+COUPLING_STYLES = (("#555555", (0, (3, 1, 1, 1)), 1.0, ""), ("#222222", (0, (8, 2)), 1.0, "x"),
+                   ("#888888", (0, (1, 1.5)), 1.3, "+"), ("#222222", (0, (3, 1, 1, 1, 1, 1)), 0.8, "|"),
+                   ("#888888", (0, (6, 1, 1, 1)), 1.0, "1"), ("#444444", (0, (2, 3)), 1.1, "."))
+COUPLING = COUPLING_STYLES[0][:3]
+# The adiabatic populations (record.adiabatic) beside the surfaces' (diabatic) ones: thin solid
+# greys with a marker per state, apart from the surfaces' coloured lines.  (colour, marker).
+ADIABATIC_STYLES = (("#333333", "o"), ("#777777", "s"), ("#333333", "^"), ("#777777", "v"),
+                    ("#333333", "D"), ("#777777", "x"))
 
 RC = {
     "font.size": 9,
@@ -85,6 +94,25 @@ def surface_style(i: int) -> dict:
     order (:data:`SURFACE_STYLES`, repeating after six)."""
     colour, ls, lw = SURFACE_STYLES[i % len(SURFACE_STYLES)]
     return {"color": colour, "ls": ls, "lw": lw}
+
+
+def coupling_style(i: int) -> dict:
+    """The line keywords of the ``i``-th coupled pair's |V_ab| (color, ls,
+    lw, and a marker spaced along the line from the second pair on), in a
+    fixed order (:data:`COUPLING_STYLES`, repeating after six)."""
+    colour, ls, lw, marker = COUPLING_STYLES[i % len(COUPLING_STYLES)]
+    keywords = {"color": colour, "ls": ls, "lw": lw}
+    if marker:   # spaced by distance along the drawn line (a fraction of the axes' diagonal)
+        keywords.update(marker=marker, ms=4, markevery=0.07)
+    return keywords
+
+
+def adiabatic_style(k: int) -> dict:
+    """The line keywords of adiabatic state ``k``'s population: thin, solid,
+    grey, with a marker per state (:data:`ADIABATIC_STYLES`)."""
+    colour, marker = ADIABATIC_STYLES[k % len(ADIABATIC_STYLES)]
+    return {"color": colour, "ls": "-", "lw": 0.8, "marker": marker, "ms": 3.5, "markevery": 0.06,
+            "mfc": "white"}
 
 
 def figure(width_px: int, height_px: int, dpi: int):

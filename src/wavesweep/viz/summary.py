@@ -303,8 +303,9 @@ def surface_density_maps(scene) -> dict:
 def surfaces_figure(scene, ds, size=(1200, 900), dpi: int = 100):
     """The summary figure of a run on coupled surfaces (``scene.surfaces``):
     along the top each surface's density over position and time (log scale,
-    one colour scale for all); then each surface's population with what is
-    on the grid in all, what the absorbers took and their sum; each
+    one colour scale for all); then each surface's population (and, when
+    the run recorded ``population_adiabatic``, each adiabatic state's, thin
+    grey lines with markers) with what is on the grid in all, what the absorbers took and their sum; each
     surface's potential along the first axis with the couplings |V_ab| on a
     right-hand scale; each surface's flux through the detectors; the drift
     of the total energy.  Each surface keeps one colour, line style and width
@@ -364,6 +365,11 @@ def surfaces_figure(scene, ds, size=(1200, 900), dpi: int = 100):
         norm = ds.norm.transpose("time", "surface")
         for s in surfaces:
             apop.plot(t, norm.sel(surface=s).values, label=f"on {style.plain(s)}", **styles[s])
+        if "population_adiabatic" in ds:   # record.adiabatic: on each local eigenstate, thin grey with markers
+            adiabatic = ds.population_adiabatic.transpose("time", "state")
+            for k, state in enumerate(adiabatic.state.values):
+                apop.plot(t, adiabatic.values[:, k], label=f"adiabatic state {int(state)}",
+                          **style.adiabatic_style(k))
         on_grid = norm.values.sum(axis=1)
         apop.plot(t, on_grid, label="on the grid, all surfaces", **TOTAL_STYLE)
         if "absorbed" in ds and ds.sizes.get("boundary", 0):
@@ -434,8 +440,9 @@ def _mark_layers_and_detectors(ax, scene, axis, colour, alpha) -> None:
 def _surface_potentials_panel(ax, scene, axis, styles, E) -> None:
     """Each surface's V_ss along ``axis`` in its style (beyond 1D the lowest
     value over the other axes: the valley floor a packet follows) and each
-    pair's |V_ab| on a right-hand scale (beyond 1D its largest value over
-    the other axes)."""
+    pair's |V_ab| on a right-hand scale, in a style per pair
+    (:func:`style.coupling_style`; beyond 1D its largest value over the
+    other axes)."""
     x = scene.coords[axis]
     rest = tuple(range(1, scene.ndim))
     handles = []
@@ -445,13 +452,13 @@ def _surface_potentials_panel(ax, scene, axis, styles, E) -> None:
     ax.set_ylabel(f"V ({E})" + (f", lowest over {', '.join(scene.axes[1:])}" if rest else ""))
     _mark_layers_and_detectors(ax, scene, axis, colour=style.ABSORBER, alpha=0.3)
     if scene.couplings:
-        colour, ls, lw = style.COUPLING
+        colour = style.COUPLING[0]
         cax = ax.twinx()
         cax.spines["right"].set_visible(True)
-        for pair, v in scene.couplings.items():
+        for k, (pair, v) in enumerate(scene.couplings.items()):   # each pair in a style of its own
             a, _, b = pair.partition(",")
             values = np.abs(v).max(axis=rest) if rest else np.abs(v)
-            handles += cax.plot(x, values, color=colour, ls=ls, lw=lw,
+            handles += cax.plot(x, values, **style.coupling_style(k),
                                 label=f"|V| coupling {style.plain(a)} and {style.plain(b)} (right scale)")
         top = max(float(np.abs(v).max()) for v in scene.couplings.values())
         cax.set_ylim(0, 1.1 * top if top > 0 else 1.0)
@@ -477,7 +484,16 @@ _STUDY_PANELS = (
 def plot_study(path, output, size=(1200, 900), dpi: int = 100) -> Path:
     """Transmission, reflection and mean arrival time against the swept
     parameters: curves for one parameter, a family of curves for two (one
-    per value of the second, up to 8; a colour map beyond)."""
+    per value of the second, up to 8; a colour map beyond).
+
+    A study of coupled surfaces draws each surface apart: with one swept
+    parameter a line per (member, surface), told apart by line style; with
+    two, each probability panel becomes one row per surface (on one shared
+    scale, so the branching between the surfaces reads off the rows), the
+    mean arrival time one row over what crossed on any surface.  A
+    probability panel takes a log scale when its values span more than a
+    factor 30, judged on the values above ``ROUND_OFF`` times its largest
+    only (:func:`probability_scale`)."""
     output = _check_output(output)
     with xr.open_dataset(path, engine="netcdf4") as ds:
         ds = ds.load()
@@ -492,23 +508,42 @@ def plot_study(path, output, size=(1200, 900), dpi: int = 100) -> Path:
     panels = [p for p in _STUDY_PANELS if p[0] in ds and np.isfinite(ds[p[0]].values).any()]
     T = style.pretty_unit(ds.time.attrs.get("units", ""))
     surfaces = [str(v) for v in ds["surface"].values] if "surface" in ds.dims else None
-    if surfaces is not None and len(dims) > 1:
-        ds = _over_all_surfaces(ds)   # families or maps per surface would be unreadable: the totals
+    per_surface_rows = surfaces is not None and len(dims) > 1
+    # each drawn row: (variable, its values, member dimension, title, kind, surface or None)
+    rows = []
+    totals = _over_all_surfaces(ds) if per_surface_rows else ds
+    for var, member_dim, title, kind in panels:
+        if per_surface_rows and kind == "probability" and "surface" in ds[var].dims:
+            # families or maps of every surface on one axes would be unreadable: a row per surface
+            rows += [(var, ds[var].sel(surface=s), member_dim, title, kind, s) for s in surfaces]
+        else:
+            rows.append((var, totals[var], member_dim, title, kind, None))
     unfinished = (float(np.nanmax(ds.final_norm.sum("surface").values if "surface" in ds.final_norm.dims
                                   else ds.final_norm.values)) if "final_norm" in ds else 0.0)
     with style.style():
         fig = style.figure(*size, dpi)
-        axs = fig.subplots(len(panels), 1, squeeze=False)[:, 0]
-        for ax, (var, member_dim, title, kind) in zip(axs, panels):
-            da = ds[var]
+        axs = fig.subplots(len(rows), 1, squeeze=False)[:, 0]
+        first_of = {}                      # variable -> its first row's axes (the rows share its scale)
+        scales = []                        # (axes, values) of the probability panels drawn as curves
+        for ax, (var, da, member_dim, title, kind, surface) in zip(axs, rows):
             members = [str(m) for m in ds[member_dim].values] if member_dim in da.dims else [None]
             quantity = "probability" if kind == "probability" else f"time ({T})"
             prefix = "absorbed at " if member_dim == "boundary" else "detector "
-            if not _draw_against(ax, da, member_dim, members, dims, ds, quantity, prefix):
+            limits = None
+            if surface is not None and members[0] is not None and ds.sizes[dims[1]] > 8:
+                # a map draws one member: the one holding the most probability on any surface (the
+                # first face of a packet that all went the other way would map round-off only)
+                peak = ds[var].max([d for d in ds[var].dims if d != member_dim], skipna=True)
+                members.sort(key=lambda m: -float(np.nan_to_num(peak.sel({member_dim: m}), nan=-np.inf)))
+            if surface is not None:        # one scale for the rows of all surfaces: the branching reads off
+                whole = ds[var].sel({member_dim: members[0]}) if members[0] is not None else ds[var]
+                limits = _finite_range(whole.values)
+                if var in first_of:
+                    ax.sharey(first_of[var])
+            if not _draw_against(ax, da, member_dim, members, dims, ds, quantity, prefix, limits=limits):
                 ax.set_ylabel(quantity)
-                v = da.values[np.isfinite(da.values)]
-                if kind == "probability" and v.size and v.min() > 0 and v.max() / v.min() > 30:
-                    ax.set_yscale("log")     # transmission spans decades across a resonance
+                if kind == "probability" and var not in first_of:
+                    scales.append((ax, (ds[var] if surface is not None else da).values))
                 if var == "arrival_mean" and len(dims) == 1 and "arrival_q10" in ds and "surface" not in da.dims:
                     for j, m in enumerate(members):
                         ax.fill_between(ds[dims[0]].values, ds.arrival_q10.sel(detector=m).values,
@@ -516,11 +551,23 @@ def plot_study(path, output, size=(1200, 900), dpi: int = 100) -> Path:
                                         color=style.line_colors()[j % 7], alpha=0.15, lw=0)
                     ax.text(0.5, 0.97, "bands: 10-90 % of arrivals", transform=ax.transAxes,
                             ha="center", va="top", fontsize=7, color="#555555")
-            if surfaces is not None:
+            first_of.setdefault(var, ax)
+            if surface is not None:
+                title += f", on surface {style.plain(surface)}"
+            elif surfaces is not None:
                 title += (" per surface (line style)" if "surface" in da.dims else
                           " (all surfaces" + (": their sum" if kind == "probability" else
                                               ": the mean over what crossed on any") + ")")
             ax.set_title(title, loc="left")
+        for ax, values in scales:          # once every row sharing the scale holds its lines
+            log, limits = probability_scale(values)
+            if log:                        # transmission spans decades across a resonance
+                ax.set_yscale("log")
+                if limits is not None:
+                    ax.set_ylim(*limits)
+                    for row in ax.get_shared_y_axes().get_siblings(ax):   # the rows of all surfaces
+                        row.set_title(row.get_title(loc="left") + f"   (values below {ROUND_OFF:.0e} of the "
+                                      "largest, round-off, lie below the axis)", loc="left")
         title = style.plain(ds.attrs.get("title", ""))
         if unfinished > 1e-3:       # the books are not closed: the numbers are not final
             title += (f"\n(some runs ended with up to {unfinished:.3g} of probability still on the grid: "
@@ -528,6 +575,44 @@ def plot_study(path, output, size=(1200, 900), dpi: int = 100) -> Path:
         fig.suptitle(title, fontsize=10)
         fig.tight_layout()
         return _save(fig, output)
+
+
+# A probability below this fraction of a panel's largest is round-off (1e-28 on a surface the
+# packet never reached): it neither chooses the panel's scale nor sets its lower limit.
+ROUND_OFF = 1e-12
+LOG_SPAN = 30.0          # values spanning more than this factor are drawn on a log scale
+
+
+def probability_scale(values) -> tuple[bool, tuple[float, float] | None]:
+    """Whether a probability panel with ``values`` takes a log scale, and
+    its (lower, upper) limits when values were left out (None: matplotlib's
+    own).
+
+    Judged on the finite values of at least ``ROUND_OFF`` times the largest:
+    log when they are all positive and span more than ``LOG_SPAN``; the
+    limits then leave the margin matplotlib leaves on a log axis (5 % of the
+    decades spanned) around those values only, so round-off values (below
+    the axis) do not squeeze 0.98 / 0.02 into the top decade of a 1e-28..1
+    axis."""
+    v = np.asarray(values, dtype=float)
+    v = v[np.isfinite(v)]
+    if not v.size or v.max() <= 0:
+        return False, None
+    kept = v[v >= ROUND_OFF * v.max()]
+    low, high = float(kept.min()), float(kept.max())
+    if high / low <= LOG_SPAN:
+        return False, None
+    if kept.size == v.size:
+        return True, None
+    margin = (high / low) ** 0.05
+    return True, (low / margin, high * margin)
+
+
+def _finite_range(values) -> tuple[float, float] | None:
+    """(smallest, largest) of the finite ``values``; None if there are none."""
+    v = np.asarray(values, dtype=float)
+    v = v[np.isfinite(v)]
+    return (float(v.min()), float(v.max())) if v.size else None
 
 
 def _over_all_surfaces(ds):
@@ -551,8 +636,10 @@ def _label(ds, dim) -> str:
     return f"{c.attrs.get('sweep_key', dim)}" + (f" ({unit})" if unit and unit != "1" else "")
 
 
-def _draw_against(ax, da, member_dim, members, dims, ds, quantity, prefix="") -> bool:
-    """Curves (False) or, for two parameters with many values, a map (True)."""
+def _draw_against(ax, da, member_dim, members, dims, ds, quantity, prefix="", limits=None) -> bool:
+    """Curves (False) or, for two parameters with many values, a map (True)
+    whose colour scale spans ``limits`` (smallest, largest) when given (the
+    rows of one quantity, one per surface, share it)."""
     colors = style.line_colors()
     styles = ("-", "--", ":", "-.")
     x = dims[0]
@@ -579,8 +666,9 @@ def _draw_against(ax, da, member_dim, members, dims, ds, quantity, prefix="") ->
     else:                                   # a map of the first member over the first two dims
         y = da.sel({member_dim: members[0]}) if members[0] is not None else da
         y = y.transpose(dims[1], dims[0], ...)
+        vmin, vmax = limits if limits is not None else (None, None)
         mesh = ax.pcolormesh(ds[dims[0]].values, ds[dims[1]].values, y.values, shading="nearest",
-                             cmap=style.DENSITY_CMAP)
+                             cmap=style.DENSITY_CMAP, vmin=vmin, vmax=vmax)
         ax.figure.colorbar(mesh, ax=ax, label=f"{members[0] or ''} {quantity}".strip())
         ax.set_ylabel(_label(ds, dims[1]))
         ax.set_xlabel(_label(ds, x))
