@@ -202,11 +202,26 @@ def _dt_run_steps(sample_steps: int) -> int:
     return min(candidates, key=lambda m: (abs(m - target), -m))
 
 
+def refuse_coupled(job: Job) -> None:
+    """A job on coupled surfaces has no pilot yet (its outputs are per
+    surface, the pilot's readers a single surface's): one JobError naming
+    the way to converge it by hand, raised before anything is computed."""
+    if not job.table.get("surface"):
+        return
+    dt = job.table["evolve"]["dt"]
+    points = " ".join(f"--set grid.{name}.points=N" for name in job.table["grid"]
+                      if isinstance(job.table["grid"][name], dict) and "points" in job.table["grid"][name])
+    raise JobError("--tolerance", "no accuracy pilot for coupled surfaces yet; converge by hand: run again "
+                                  f"with --set evolve.dt={dt / 2:g} and with about 1.5 times the points "
+                                  f"({points or '--set grid.<axis>.points=N'}) and compare each surface's results")
+
+
 def plan_pilot(job: Job, tolerance: float, timing_seconds: float = 0.3) -> PilotPlan:
     """The runs the pilot will do and their cost, relative to the run.
 
     ``timing_seconds`` > 0 times the run's steps briefly (after a first step
     that compiles the kernels) for the estimate in seconds."""
+    refuse_coupled(job)
     tol = validate_tolerance(tolerance)
     setup = Setup(job_from_dict(_base_table(job)))
     u = setup.units
