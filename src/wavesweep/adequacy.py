@@ -2238,10 +2238,14 @@ def _write_warnings(key: str, lines) -> None:
 # k_max, which wraps round the grid.  Our own choice, judged on the
 # trial's cases (DEVELOPERS.md "Momentum at the edge").
 EDGE_FRACTION = 0.9
-# Weight (of the whole packet, on one surface) in the edge band above which
-# a run says its numbers are wrong.  Measured: a converged run keeps < 1e-12
-# there (wren at 255 points: 3e-14; lz at 2559: 1e-26), an aliased one far
-# more (wren at 191: 0.14; lz at 1279: 0.2); our own choice between them.
+# Weight (of the whole packet, on one surface, largest over the run) in the
+# edge band above which a run says its numbers can be off.  Measured on the
+# Wren demo (jobs/wren-photodissociation.toml) by grid points: 191: 0.24
+# (dark yield 0.49 instead of 0.70), 255: 1.8e-3 (the dark population
+# 4e-6 off), 319: 9e-10, 383: 4e-16, 511: 5e-19; the linear crossing of
+# the trial (lz) at 1279 points: 0.43 (the flux on "slope" through its detector 1.6e-4
+# instead of 0.48), at 2559: 9e-20.  The limit matches the absorbers'
+# target (ABSORBER_TARGET); our own choice.
 EDGE_WEIGHT_MAX = 1e-6
 
 
@@ -2281,9 +2285,9 @@ def edge_warning_lines(setup, worst: np.ndarray, names=None) -> list[str]:
             more = nearest_fast_points_of(ax, math.ceil(1.5 * ax.points))
             out.append(f"grid.{ax.name}.points: measured during the run: {w:.2g} of the packet {on}had momentum "
                        f"within {1 - EDGE_FRACTION:.0%} of the grid's largest along {ax.name} (|k| > "
-                       f"{EDGE_FRACTION:g} k_max; limit {EDGE_WEIGHT_MAX:.0e}): momentum wrapped round the "
-                       f"grid and this run's numbers are wrong; use more points along {ax.name} (same extent), "
-                       f"e.g. {more} instead of {ax.points}, and run again")
+                       f"{EDGE_FRACTION:g} k_max; limit {EDGE_WEIGHT_MAX:.0e}): what goes beyond k_max wraps round "
+                       f"the grid, so this run's numbers can be wrong by up to about that share; use more points "
+                       f"along {ax.name} (same extent), e.g. {more} instead of {ax.points}, and run again")
     return out
 
 

@@ -353,11 +353,9 @@ def _check(args) -> int:
 
     if args.tolerance is not None:
         # lazy: each command loads only what it needs (every command's start-up)
-        from .pilot import plan_pilot, refuse_coupled, run_pilot, validate_tolerance
+        from .pilot import plan_pilot, run_pilot, validate_tolerance
         validate_tolerance(args.tolerance)      # before anything is computed
     study = load_study(args.job, args.set)
-    if args.tolerance is not None:
-        refuse_coupled(max(study.runs, key=lambda r: _run_cost(r.job)).job)   # before the report: nothing lost
     progress = None
     if len(study.runs) > 1 and not args.json and sys.stderr.isatty():   # a log keeps no \r counter
         def progress(n, total):
