@@ -1962,8 +1962,10 @@ def coupled_findings(setup) -> list[Finding]:
 
 
 # Point-times the phase check evaluates a time-dependent potential matrix
-# at (about 0.1 s of work); beyond, the times thin out to the record's samples.
+# at (about 0.1 s of work), and times at most (each evaluates the terms: about
+# 0.1 ms); beyond, the times thin out, to the record's samples at the most.
 PHASE_POINT_TIMES = 4_000_000
+PHASE_TIMES_MAX = 2000
 # The whole grid's range (a report only; the region visited is judged) at this many times.
 GRID_PHASE_TIMES = 33
 
@@ -1988,8 +1990,9 @@ def potential_eigen_range(setup, box=None) -> tuple[float, float, float, float]:
     grid and over the region ``box`` (a tuple of slices; None: the grid),
     hartree, over the run.  A time-dependent V is evaluated over ``box`` at
     every step's start (a pulse shorter than the record's interval is not
-    missed), or, where steps x points exceed :data:`PHASE_POINT_TIMES`, at
-    least at every sample of the record (finer as the budget allows); the
+    missed), or, where steps x points exceed :data:`PHASE_POINT_TIMES` or
+    steps :data:`PHASE_TIMES_MAX`, at every few steps, at least at every
+    sample of the record; the
     whole grid at :data:`GRID_PHASE_TIMES` times (reported, not judged).
     Only the time-dependent terms are evaluated per time, on the box's
     coordinates."""
@@ -2027,7 +2030,8 @@ def potential_eigen_range(setup, box=None) -> tuple[float, float, float, float]:
         else:
             factored.append((a, b, term, None, None))
     steps = int(setup.total_steps)
-    stride = max(1, math.ceil((steps + 1) * part[0, 0].size / PHASE_POINT_TIMES))
+    stride = max(1, math.ceil((steps + 1) * part[0, 0].size / PHASE_POINT_TIMES),
+                 math.ceil((steps + 1) / PHASE_TIMES_MAX))
     stride = min(stride, int(setup.sample_steps))   # the record's samples at least
     at = np.unique(np.append(np.arange(0, steps + 1, stride), steps)) * setup.dt
     seen_lo, seen_hi = math.inf, -math.inf
