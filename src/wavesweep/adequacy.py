@@ -1899,7 +1899,8 @@ def coupled_findings(setup) -> list[Finding]:
                 # shares are of the ensemble moved onto it; a warning, not a refusal
                 f.level = "warn"
                 f.message += ("; shares are of the packet as if all of it moved onto this curve (a hop): how "
-                              "much does is not judged here")
+                              "much does is not judged here (the run measures each surface's momentum at the "
+                              "grid's edge and says whether its numbers suffer)")
             found.append(f)
         out.append(max(found, key=lambda f: (rank[f.level], f.values["run_reach"] / f.values["k_max"])))
     start = copy.copy(cd.views[0])
