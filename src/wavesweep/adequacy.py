@@ -2252,6 +2252,15 @@ EDGE_FRACTION = 0.9
 # instead of 0.48), at 2559: 9e-20.  The limit matches the absorbers'
 # target (ABSORBER_TARGET); our own choice.
 EDGE_WEIGHT_MAX = 1e-6
+# The stored weights: two significant digits, and 0 below a millionth of the
+# limit (there a batch member and the same run alone differ in round-off,
+# and their files must be the same).
+EDGE_WEIGHT_FLOOR = 1e-12
+
+
+def stored_edge_weight(w: float) -> float:
+    """An edge weight as the result file stores it (see EDGE_WEIGHT_FLOOR)."""
+    return float(f"{w:.2g}") if w >= EDGE_WEIGHT_FLOOR else 0.0
 
 
 def momentum_edge_weights(psi, grid, fraction: float = EDGE_FRACTION) -> np.ndarray:

@@ -24,7 +24,7 @@ from pathlib import Path
 import numpy as np
 
 from ._version import __version__
-from .adequacy import edge_warning_lines, momentum_edge_weights
+from .adequacy import edge_warning_lines, momentum_edge_weights, stored_edge_weight
 from .errors import DiskFull, JobError, RunFailed, RunInterrupted
 from .io.checkpoint import (CheckpointCorrupt, CheckpointMismatch, CheckpointState, CheckpointStore, ResultExists,
                             result_complete)
@@ -228,7 +228,7 @@ class Simulation:
             for line in measured:
                 _log.warning("%s: %s", self.job.name, line)
             closing["momentum_edge_weight"] = json.dumps(
-                {name: {ax.name: float(w) for ax, w in zip(s.grid.axes, row)}
+                {name: {ax.name: stored_edge_weight(w) for ax, w in zip(s.grid.axes, row)}
                  for name, row in zip(s.surfaces, book.edge)})
             closing["adequacy_warnings"] = json.dumps(
                 [*book.warnings, *(f"the run, measured: {line}" for line in measured)])

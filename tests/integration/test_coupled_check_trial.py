@@ -29,7 +29,7 @@ from scipy.special import erfc
 from conftest import make_job, run_table
 from test_coupled_check import LEAVING_JOB, WELL_JOB
 from wavesweep.adequacy import (EDGE_FRACTION, EDGE_WEIGHT_MAX, coupled_findings, local_eigen_range,
-                                momentum_edge_weights)
+                                momentum_edge_weights, stored_edge_weight)
 from wavesweep.analysis.arrivals import stored_warnings
 from wavesweep.check import check_job
 from wavesweep.grid import Axis, Grid
@@ -40,7 +40,8 @@ from wavesweep.setup import CoupledSetup
 # --- P7: momentum at the grid's edge, measured during the run -----------------------
 def test_the_edge_weight_of_a_gaussian_is_its_momentum_tail():
     """A Gaussian packet's weight with k > 0.9 k_max is (1/2) erfc((0.9 k_max - p0) / (sqrt 2 sigma_p))
-    (its momentum density is a Gaussian of spread sigma_p = 1 / (2 sigma_x))."""
+    (its momentum density is a Gaussian of spread sigma_p = 1 / (2 sigma_x)); the file stores it to
+    two digits, 0 below 1e-12."""
     grid = Grid((Axis("x", -40.0, 40.0, 512, "periodic"),))
     x = grid.axes[0].coordinates
     k_max = grid.axes[0].k_max
@@ -55,6 +56,7 @@ def test_the_edge_weight_of_a_gaussian_is_its_momentum_tail():
     assert weights.shape == (2, 1)
     assert weights[0, 0] == pytest.approx(0.6 * expected, rel=2e-2)     # the grid's bins against the integral
     assert weights[1, 0] < 1e-12
+    assert stored_edge_weight(0.0228456) == 0.023 and stored_edge_weight(3e-13) == 0.0
 
 
 def _run(table, tmp_path, name):
@@ -215,7 +217,8 @@ def test_a_short_coupling_pulse_sets_the_potential_phase():
     span = max(e[1] for e in peak) - min(e[0] for e in peak)
     (step,) = [f for f in coupled_findings(setup) if f.topic == "time step"]
     assert step.level == "error" and step.field == "evolve.dt"
-    assert step.values["grid_potential_phase"] >= 0.99 * span * 0.1
+    # sampled every step or two (at most 2000 times): within 0.1 au of the peak, exp(-(0.1/0.5)^2) = 0.96
+    assert step.values["grid_potential_phase"] >= 0.95 * span * 0.1
     assert step.values["potential_phase"] > math.pi
 
 
