@@ -9,6 +9,7 @@ scripts); a :class:`Report` is the list of them for one job or study.
 from __future__ import annotations
 
 import copy
+import dataclasses
 import hashlib
 import json
 import math
@@ -1297,7 +1298,19 @@ def absorber_findings(setup, dyn: Dynamics) -> list[Finding]:
         out = []
         for i, ax in enumerate(setup.grid.axes):
             reached = True if dyn.reach is None else dyn.reach.edges_reached[i]
-            if ax.boundary == "box" or setup.grid.radial:
+            counted = [d.name for d in setup.detectors if d.axis == i]
+            if (ax.boundary == "box" or setup.grid.radial) and reached and counted:
+                # what the wall sends back crosses the detectors again: their flux counts it twice (net)
+                out.append(Finding("absorber", "warn",
+                                   f"no absorber: on {ax.name} the packet reaches the walls within the run "
+                                   "(classical trajectories of its phase-space ensemble) and what they reflect "
+                                   f"crosses detector{'s' if len(counted) > 1 else ''} "
+                                   f"{', '.join(repr(n) for n in counted)} again: transmitted probabilities and "
+                                   "arrival times there are wrong; add [absorber] kind = 'cap' with a thickness "
+                                   "(or a shorter evolve.duration, ending before the packet returns)",
+                                   {"axis": ax.name, "edges_reached": reached, "detectors": counted},
+                                   field="absorber.kind"))
+            elif ax.boundary == "box" or setup.grid.radial:
                 out.append(Finding("absorber", "ok", f"no absorber: on {ax.name} what reaches the walls "
                                    "reflects off them (a box)", {"axis": ax.name, "edges_reached": reached},
                                    field="absorber.kind"))
@@ -1859,15 +1872,16 @@ def coupled_findings(setup) -> list[Finding]:
     each diabatic surface and each adiabatic curve, energy conserved by a
     hop) and the worst kept, each finding naming the curve that drives it:
     momentum reach over the run against k_max (per axis), the packet's
-    margins, the phase per step, the resolution of every V_ss, V_ab and
-    adiabatic curve, sizes, detectors (inside a layer; reached by no
+    margins, the phase per step, the resolution of every V_ss and V_ab
+    (of the adiabatic curves with record.adiabatic, for its populations), sizes, detectors (inside a layer; reached by no
     curve's trajectories), the absorber per face over the union of the
     curves' windows, and disk.
 
     Phase per step (<= 1 rad is common practice; above pi it wraps): of the
     potential matrix, the range of the eigenvalues of V(r, t)
-    (numpy.linalg.eigvalsh per point; a time-dependent V at 33 times over
-    the run) over the region the curves' trajectories visit (the whole
+    (:func:`potential_eigen_range`: a time-dependent V at every step, or
+    at least at every sample of the record) over the region the curves'
+    trajectories visit (the whole
     grid's range is reported too); of the kinetic energy, the largest the
     curves' trajectories reach over the run."""
     u = setup.units
@@ -1885,7 +1899,8 @@ def coupled_findings(setup) -> list[Finding]:
                 # shares are of the ensemble moved onto it; a warning, not a refusal
                 f.level = "warn"
                 f.message += ("; shares are of the packet as if all of it moved onto this curve (a hop): how "
-                              "much does is not judged here")
+                              "much does is not judged here (the run measures each surface's momentum at the "
+                              "grid's edge and says whether its numbers suffer)")
             found.append(f)
         out.append(max(found, key=lambda f: (rank[f.level], f.values["run_reach"] / f.values["k_max"])))
     start = copy.copy(cd.views[0])
@@ -1899,14 +1914,7 @@ def coupled_findings(setup) -> list[Finding]:
         box = tuple(slice(max(0, int(np.searchsorted(ax.coordinates, min(r.visited[i][0] for r in reaches))) - 1),
                           int(np.searchsorted(ax.coordinates, max(r.visited[i][1] for r in reaches))) + 1)
                     for i, ax in enumerate(setup.grid.axes))
-    times = np.linspace(0.0, setup.duration, 33) if h.time_dependent else [None]
-    lowest, highest, seen_lo, seen_hi = math.inf, -math.inf, math.inf, -math.inf
-    for t in times:
-        eig = np.linalg.eigvalsh(np.moveaxis(h.matrix(t), (0, 1), (-2, -1)))   # (*grid, S)
-        lowest, highest = min(lowest, float(eig.min())), max(highest, float(eig.max()))
-        seen = eig[box] if box is not None else eig
-        if seen.size:
-            seen_lo, seen_hi = min(seen_lo, float(seen.min())), max(seen_hi, float(seen.max()))
+    lowest, highest, seen_lo, seen_hi = potential_eigen_range(setup, box)
     v_span = highest - lowest
     v_seen = seen_hi - seen_lo if seen_hi >= seen_lo else v_span
     e_runs = [sum(r**2 for r in d.over_run[6]) / (2 * setup.mass) for d in cd.each]
@@ -1932,13 +1940,16 @@ def coupled_findings(setup) -> list[Finding]:
                        {"run_phase": kin_phase, "potential_phase": pot_phase, "grid_potential_phase": v_span * dt,
                         "surface": cd.views[k].name, "grid_phase": setup.grid.kinetic_max(setup.mass) * dt},
                        field="evolve.dt"))
-    res = _coupled_resolution(setup, cd)
-    if res is not None:
-        out.append(res)
+    out += _coupled_resolution(setup, cd)
     out += size_findings(setup.grid)
     out += detector_findings(cd.views[0])
     out += _detectors_reached(setup, cd)
-    found = absorber_findings(cd.views[0], cd.merged())
+    merged = cd.merged()
+    if merged.reach is not None:   # a wall any curve's trajectories reach (without absorber: reflected)
+        edges = [any(d.reach.edges_reached[i] for d in cd.each if d.reach is not None)
+                 for i in range(setup.grid.ndim)]
+        merged.reach = dataclasses.replace(merged.reach, edges_reached=edges)
+    found = absorber_findings(cd.views[0], merged)
     for f in found:
         face = f.values.get("face")
         if face in cd.drivers:
@@ -1951,28 +1962,146 @@ def coupled_findings(setup) -> list[Finding]:
     return out
 
 
-def _coupled_resolution(setup, cd: CoupledDynamics) -> Finding | None:
-    """:func:`resolution_finding` of each V_ss, each V_ab and each adiabatic
-    curve (static parts), the worst kept, naming it."""
+# Point-times the phase check evaluates a time-dependent potential matrix
+# at (about 0.1 s of work), and times at most (each evaluates the terms: about
+# 0.1 ms); beyond, the times thin out, to the record's samples at the most.
+PHASE_POINT_TIMES = 4_000_000
+PHASE_TIMES_MAX = 2000
+# The whole grid's range (a report only; the region visited is judged) at this many times.
+GRID_PHASE_TIMES = 33
+
+
+def local_eigen_range(v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(lowest, highest) eigenvalue at each point of a real symmetric
+    potential matrix ``v`` (S, S, *points): for two surfaces the closed
+    form (V_aa + V_bb)/2 -/+ sqrt(((V_aa - V_bb)/2)^2 + V_ab^2), beyond
+    numpy.linalg.eigvalsh per point."""
+    if v.shape[0] == 1:
+        return v[0, 0], v[0, 0]
+    if v.shape[0] == 2:
+        mean, half = 0.5 * (v[0, 0] + v[1, 1]), 0.5 * (v[0, 0] - v[1, 1])
+        root = np.sqrt(half * half + v[0, 1] * v[0, 1])
+        return mean - root, mean + root
+    eig = np.linalg.eigvalsh(np.moveaxis(v, (0, 1), (-2, -1)))
+    return eig[..., 0], eig[..., -1]
+
+
+def potential_eigen_range(setup, box=None) -> tuple[float, float, float, float]:
+    """(lowest, highest) eigenvalue of the potential matrix V(r, t) over the
+    grid and over the region ``box`` (a tuple of slices; None: the grid),
+    hartree, over the run.  A time-dependent V is evaluated over ``box`` at
+    every step's start (a pulse shorter than the record's interval is not
+    missed), or, where steps x points exceed :data:`PHASE_POINT_TIMES` or
+    steps :data:`PHASE_TIMES_MAX`, at every few steps, at least at every
+    sample of the record; the
+    whole grid at :data:`GRID_PHASE_TIMES` times (reported, not judged).
+    Only the time-dependent terms are evaluated per time, on the box's
+    coordinates."""
+    h = setup.hamiltonian
+    static = h.matrix(None)
+    lo, hi = local_eigen_range(static)
+    lowest, highest = float(lo.min()), float(hi.max())
+    box = box if box is not None else tuple(slice(None) for _ in setup.grid.axes)
+    seen = (slice(None), slice(None)) + tuple(box)
+    if not h.time_dependent:
+        lo, hi = lo[box], hi[box]
+        return (lowest, highest, *((float(lo.min()), float(hi.max())) if lo.size else (lowest, highest)))
+    grid = setup.grid
+    for t in np.linspace(0.0, setup.duration, GRID_PHASE_TIMES):
+        lo, hi = local_eigen_range(h.matrix(float(t)))
+        lowest, highest = min(lowest, float(lo.min())), max(highest, float(hi.max()))
+    part = static[seen]
+    if part[0, 0].size == 0:
+        return lowest, highest, lowest, highest
+    # the box's coordinates, broadcastable as the grid's mesh is
+    mesh = {}
+    for i, ax in enumerate(grid.axes):
+        shape = [1] * grid.ndim
+        coords = ax.coordinates[box[i]]
+        shape[i] = coords.size
+        mesh[ax.name] = coords.reshape(shape)
+    moving = [(a, a, term) for a, terms in enumerate(h.surface_terms) for term in terms if term.time_dependent]
+    moving += [(a, b, term) for (a, b), terms in h.couplings.items() for term in terms if term.time_dependent]
+    factored = []
+    for a, b, term in moving:   # f(t) g(r): g once, only the scalar f(t) per time
+        sep = term.separable()
+        if sep is not None:
+            g, f = sep
+            factored.append((a, b, term, np.broadcast_to(np.asarray(g(mesh), float), part.shape[2:]), f))
+        else:
+            factored.append((a, b, term, None, None))
+    steps = int(setup.total_steps)
+    stride = max(1, math.ceil((steps + 1) * part[0, 0].size / PHASE_POINT_TIMES),
+                 math.ceil((steps + 1) / PHASE_TIMES_MAX))
+    stride = min(stride, int(setup.sample_steps))   # the record's samples at least
+    at = np.unique(np.append(np.arange(0, steps + 1, stride), steps)) * setup.dt
+    seen_lo, seen_hi = math.inf, -math.inf
+    for t in at:
+        v = part.copy()
+        for a, b, term, g, f in factored:
+            value = g * float(f(float(t))) if g is not None else np.broadcast_to(
+                np.asarray(term.at_time(mesh, float(t)), float), v.shape[2:])
+            v[a, b] += value
+            if a != b:
+                v[b, a] += value
+        lo, hi = local_eigen_range(v)
+        seen_lo, seen_hi = min(seen_lo, float(lo.min())), max(seen_hi, float(hi.max()))
+    return min(lowest, seen_lo), max(highest, seen_hi), seen_lo, seen_hi
+
+
+def _coupled_resolution(setup, cd: CoupledDynamics) -> list[Finding]:
+    """:func:`resolution_finding` of each V_ss and V_ab (static parts), the
+    worst kept, naming it: the dynamics run on this diabatic matrix (the
+    local exponential of V at each point, the kinetic step per surface), so
+    its elements are what the grid must resolve.  The adiabatic curves
+    (eigenvalues of V at each point) have a cusp where two of them meet (a
+    conical intersection, an avoided crossing of small coupling): it costs
+    the dynamics nothing, but ``record.adiabatic``'s populations are a
+    quadrature of the local eigenvectors, which turn there within a few dx,
+    so with record.adiabatic on, the curves' resolution is judged for those
+    populations (a second finding, field ``record.adiabatic``)."""
     v = setup.hamiltonian.matrix(None)
     n = len(setup.surfaces)
     named = [(f"surface {setup.surfaces[a]}", v[a, a]) for a in range(n)]
     named += [(f"coupling {setup.surfaces[a]}-{setup.surfaces[b]}", v[a, b]) for a, b in sorted(setup.coupling_terms)]
-    named += [(view.label, view.hamiltonian_static_potential()) for view in cd.views if not view.diabatic]
+    out = []
+    worst = _worst_resolution(cd.views[0], named)
+    if worst is not None:
+        name, f = worst
+        f.message = f"{name}: {f.message}" if f.level != "ok" else f"{f.message} (worst: {name})"
+        f.values = {**f.values, "surface": name}
+        out.append(f)
+    curves = [(view.label, view.hamiltonian_static_potential()) for view in cd.views if not view.diabatic]
+    if getattr(setup, "adiabatic", False) and curves:
+        worst = _worst_resolution(cd.views[0], curves)
+        if worst is not None and worst[1].level != "ok":
+            name, f = worst
+            axis = f.values.get("axis", setup.grid.axes[0].name)
+            f.message = (f"{name}: {axis}: features sharper than the grid resolves "
+                         f"({f.values.get('unresolved_weight', 0.0):.1e} of its spectral power above half the "
+                         f"resolved wave numbers; limit {UNRESOLVED_WEIGHT_MAX:.0e}), where adiabatic curves meet: "
+                         "the dynamics run on the diabatic matrix and do not suffer, but population_adiabatic "
+                         "(record.adiabatic) sums eigenvectors that turn within a few dx there and converges "
+                         f"only slowly with dx; for those populations use more points along {axis}, or leave "
+                         "record.adiabatic out")
+            f.values = {**f.values, "surface": name}
+            f.field = "record.adiabatic"
+            out.append(f)
+    return out
+
+
+def _worst_resolution(view, named) -> tuple | None:
+    """(name, :func:`_resolution_of` finding) of the worst of ``named``
+    (name, potential) pairs, or None where none has a finding."""
     worst = None
     for name, potential in named:
-        f = _resolution_of(cd.views[0], potential)
+        f = _resolution_of(view, potential)
         if f is None:
             continue
         key = (f.level != "ok", f.values.get("unresolved_weight", 0.0))
         if worst is None or key > worst[0]:
             worst = (key, name, f)
-    if worst is None:
-        return None
-    _, name, f = worst
-    f.message = f"{name}: {f.message}" if f.level != "ok" else f"{f.message} (worst: {name})"
-    f.values = {**f.values, "surface": name}
-    return f
+    return None if worst is None else (worst[1], worst[2])
 
 
 def _detectors_reached(setup, cd: CoupledDynamics) -> list[Finding]:
@@ -2104,3 +2233,83 @@ def _write_warnings(key: str, lines) -> None:
     except OSError:
         pass   # a read-only or full cache folder: the run judges them itself
 
+
+
+# ---------------------------------------------------------------------------
+# Measured during a run: momentum at the edge of the grid's range
+# ---------------------------------------------------------------------------
+# The band of each axis's wave numbers called "the edge": |k| > EDGE_FRACTION
+# k_max.  A state that holds weight there has (or soon has) momentum beyond
+# k_max, which wraps round the grid.  Our own choice, judged on the
+# trial's cases (DEVELOPERS.md "Momentum at the edge").
+EDGE_FRACTION = 0.9
+# Weight (of the whole packet, on one surface, largest over the run) in the
+# edge band above which a run says its numbers can be off.  Measured on the
+# Wren demo (jobs/wren-photodissociation.toml) by grid points: 191: 0.24
+# (dark yield 0.49 instead of 0.70), 255: 1.8e-3 (the dark population
+# 4e-6 off), 319: 9e-10, 383: 4e-16, 511: 5e-19; the linear crossing of
+# the trial (lz) at 1279 points: 0.43 (the flux on "slope" through its detector 1.6e-4
+# instead of 0.48), at 2559: 9e-20.  The limit matches the absorbers'
+# target (ABSORBER_TARGET); our own choice.
+EDGE_WEIGHT_MAX = 1e-6
+# The stored weights: two significant digits, and 0 below a millionth of the
+# limit (there a batch member and the same run alone differ in round-off,
+# and their files must be the same).
+EDGE_WEIGHT_FLOOR = 1e-12
+
+
+def stored_edge_weight(w: float) -> float:
+    """An edge weight as the result file stores it (see EDGE_WEIGHT_FLOOR)."""
+    return float(f"{w:.2g}") if w >= EDGE_WEIGHT_FLOOR else 0.0
+
+
+def momentum_edge_weights(psi, grid, fraction: float = EDGE_FRACTION) -> np.ndarray:
+    """(surfaces, axes): the probability (of the whole state, summed over
+    the other axes) with |k| > ``fraction`` k_max along each axis, per
+    surface of a coupled psi (S, *grid) (a single-surface psi: one row).
+    The momentum marginal of :func:`wavesweep.marginals.momentum_marginal`
+    (FFT on periodic axes, orthonormal DST-I on box ones, Parseval), scaled
+    by the surface's norm."""
+    psi = np.asarray(psi)
+    rows = psi[None] if psi.ndim == grid.ndim else psi
+    out = np.zeros((rows.shape[0], grid.ndim))
+    for s, one in enumerate(rows):
+        norm = float(np.sum(np.abs(one) ** 2)) * grid.cell_volume
+        if norm <= 0.0:
+            continue
+        for i, ax in enumerate(grid.axes):
+            k, w = momentum_marginal(one, grid, i)
+            out[s, i] = norm * float(np.sum(w[np.abs(k) > fraction * ax.k_max]))
+    return out
+
+
+def edge_warning_lines(setup, worst: np.ndarray, names=None) -> list[str]:
+    """One line per surface and axis whose largest edge weight over the run
+    (``worst``, (surfaces, axes) from :func:`momentum_edge_weights`) exceeds
+    :data:`EDGE_WEIGHT_MAX`: the run's numbers on it are wrong (momentum
+    wrapped round the grid), with the fix."""
+    out = []
+    names = list(names) if names is not None else [None] * worst.shape[0]
+    for s, row in enumerate(np.atleast_2d(worst)):
+        for i, ax in enumerate(setup.grid.axes):
+            w = float(row[i])
+            if not w > EDGE_WEIGHT_MAX:
+                continue
+            on = f"on surface {names[s]} " if names[s] is not None else ""
+            more = nearest_fast_points_of(ax, math.ceil(1.5 * ax.points))
+            out.append(f"grid.{ax.name}.points: measured during the run: {w:.2g} of the packet {on}had momentum "
+                       f"within {1 - EDGE_FRACTION:.0%} of the grid's largest along {ax.name} (|k| > "
+                       f"{EDGE_FRACTION:g} k_max; limit {EDGE_WEIGHT_MAX:.0e}): what goes beyond k_max wraps round "
+                       f"the grid, so this run's numbers can be wrong by up to about that share; use more points "
+                       f"along {ax.name} (same extent), e.g. {more} instead of {ax.points}, and run again")
+    return out
+
+
+def nearest_fast_points_of(ax, n: int) -> int:
+    """The smallest point count >= ``n`` whose transform length has no
+    prime factor above FAST_PRIME_MAX (:func:`transform_length` rule)."""
+    extra = transform_length(ax) - ax.points
+    m = n
+    while _largest_prime_factor(m + extra) > FAST_PRIME_MAX:
+        m += 1
+    return m

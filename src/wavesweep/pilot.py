@@ -42,6 +42,11 @@ keep the job's physics, absorber (its tuned strength is fixed first) and
 they record two density snapshots and no final state, into a temporary
 folder.
 
+On coupled surfaces (``[[surface]]``) the same runs measure each surface's
+outputs (:func:`_coupled_outputs`): its probability at the end (left +
+absorbed), absorbed per face, the net probability across each detector,
+the adiabatic populations (record.adiabatic) and the final energy.
+
 Tolerance: probabilities (absorbed per face, beyond a detector) are judged
 absolutely, they lie in [0, 1]; times (arrival mean and spread per
 detector) and the final energy relative to their value (the energy relative
@@ -77,7 +82,7 @@ from .errors import JobError, RunFailed
 from .job import Job, job_from_dict
 from .job.document import job_number
 from .run import Simulation
-from .setup import Setup, resolve_job
+from .setup import CoupledSetup, Setup, resolve_job
 
 __all__ = ["PilotPlan", "PilotRun", "plan_pilot", "run_pilot", "validate_tolerance", "DX_RATIO", "DX_ORDER"]
 
@@ -202,13 +207,20 @@ def _dt_run_steps(sample_steps: int) -> int:
     return min(candidates, key=lambda m: (abs(m - target), -m))
 
 
+def _setup_of(table: dict):
+    """The set-up of a pilot's job table: one surface's, or the coupled
+    surfaces' (:class:`~wavesweep.setup.CoupledSetup`)."""
+    job = job_from_dict(table)
+    return (CoupledSetup if job.table.get("surface") else Setup)(job)
+
+
 def plan_pilot(job: Job, tolerance: float, timing_seconds: float = 0.3) -> PilotPlan:
     """The runs the pilot will do and their cost, relative to the run.
 
     ``timing_seconds`` > 0 times the run's steps briefly (after a first step
     that compiles the kernels) for the estimate in seconds."""
     tol = validate_tolerance(tolerance)
-    setup = Setup(job_from_dict(_base_table(job)))
+    setup = _setup_of(_base_table(job))
     u = setup.units
     grid = setup.grid
     steps0, points0 = setup.total_steps, grid.size
@@ -239,9 +251,27 @@ def plan_pilot(job: Job, tolerance: float, timing_seconds: float = 0.3) -> Pilot
 
 
 def _time_steps(setup: Setup, seconds: float) -> tuple[float, float]:
-    """Wall seconds per step and per sample of the run (check's trial)."""
-    per_step, per_sample, _ = trial_costs(setup, seconds)
-    return per_step, per_sample
+    """Wall seconds per step and per sample of the run (check's trial; on
+    coupled surfaces the same measure of their propagator and observer)."""
+    if not setup.coupled:
+        per_step, per_sample, _ = trial_costs(setup, seconds)
+        return per_step, per_sample
+    prop = setup.make_propagator()
+    psi = prop.step(prop.load(setup.psi0), 1)    # the kernels compiled first
+    chunk = max(1, min(setup.sample_steps, 50))
+    n, t0 = 0, _time.perf_counter()
+    while _time.perf_counter() - t0 < seconds and n < setup.total_steps:
+        psi = prop.step(psi, chunk)
+        n += chunk
+    per_step = (_time.perf_counter() - t0) / max(n, 1)
+    observer = setup.make_observer()
+    setup.measure(observer, psi, prop.t)          # plans its transforms, as a run does once
+    times = []
+    for _ in range(5):
+        t1 = _time.perf_counter()
+        setup.measure(observer, psi, prop.t)
+        times.append(_time.perf_counter() - t1)
+    return per_step, float(np.median(times))
 
 
 # -- the outputs of one run ----------------------------------------------------------
@@ -264,6 +294,8 @@ def _read_outputs(path: Path, setup: Setup) -> dict:
     out = {}
     with xr.open_dataset(path) as ds:
         ds.load()
+        if "surface" in ds.dims:
+            return _coupled_outputs(ds)
         totals = transmission_totals(ds, run_record(ds))   # the run's record, as analysis reads it
         for face, value in totals["absorbed"].items():
             out[f"absorbed {face}"] = _Output(f"absorbed at {face}", "probability", value, "")
@@ -289,6 +321,42 @@ def _read_outputs(path: Path, setup: Setup) -> dict:
     for o in out.values():
         if o.kind == "time":
             o.scale = abs(o.value) if math.isfinite(o.value) else math.nan
+    return out
+
+
+def _coupled_outputs(ds) -> dict:
+    """The main outputs of a run on coupled surfaces, per surface: its
+    probability at the end (left on the grid + absorbed), absorbed per
+    face, the net probability that crossed each detector (the flux
+    integrated over the run, trapezoid rule, + along the detector's axis),
+    each adiabatic state's population at the end (record.adiabatic), and
+    the final energy (of all surfaces)."""
+    out = {}
+    names = [str(s) for s in ds["surface"].values]
+    t = np.asarray(ds["time"].values, float)
+    norm = np.asarray(ds["norm"].values, float)                      # (time, surface)
+    faces = [str(b) for b in ds["boundary"].values] if "boundary" in ds.coords else []
+    absorbed = np.asarray(ds["absorbed"].values, float) if faces else np.zeros((t.size, len(names), 0))
+    detectors = [str(d) for d in ds["detector"].values] if "detector" in ds.coords else []
+    for s, name in enumerate(names):
+        out[f"population {name}"] = _Output(f"on surface {name} at the end (left + absorbed)", "probability",
+                                            float(norm[-1, s] + absorbed[-1, s].sum()), "")
+        for f, face in enumerate(faces):
+            out[f"absorbed {name} {face}"] = _Output(f"absorbed on surface {name} at {face}", "probability",
+                                                     float(absorbed[-1, s, f]), "")
+        for j, det in enumerate(detectors):
+            crossed = float(np.trapezoid(np.asarray(ds["flux"].values, float)[:, s, j], t))
+            out[f"crossed {name} {det}"] = _Output(f"net probability across detector {det!r} on surface {name}",
+                                                   "probability", crossed, "")
+    if "population_adiabatic" in ds:
+        for k, p in enumerate(np.asarray(ds["population_adiabatic"].values, float)[-1]):
+            out[f"adiabatic {k}"] = _Output(f"adiabatic state {k} at the end", "probability", float(p), "")
+    if "energy" in ds:
+        energy = np.asarray(ds["energy"].values, float)
+        value = float(energy[-1])
+        out["energy"] = _Output("final energy", "energy", value, str(ds.attrs.get("units_energy", "")),
+                                scale=max(abs(float(energy[0])), abs(value)),
+                                judged=bool(norm[-1].sum() >= FINAL_NORM_MIN))
     return out
 
 
@@ -350,7 +418,7 @@ def run_pilot(job: Job, tolerance: float, progress=None, plan: PilotPlan | None 
 def _finer_dt_run(plan: PilotPlan) -> PilotRun:
     """The dt run at half the step (record.every stays a whole number of steps)."""
     base = plan.runs[0]
-    setup = Setup(job_from_dict(_base_table(plan.job)))
+    setup = _setup_of(_base_table(plan.job))
     m = 2 * setup.sample_steps
     dt_run = job_number(setup.units.to_job(setup.sample_steps * setup.dt / m, "time"))
     steps = setup.total_steps * 2

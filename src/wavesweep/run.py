@@ -13,6 +13,7 @@ batch, so a solo run and a batched one write the same file.
 """
 from __future__ import annotations
 
+import json
 import logging
 import math
 import os
@@ -23,6 +24,7 @@ from pathlib import Path
 import numpy as np
 
 from ._version import __version__
+from .adequacy import edge_warning_lines, momentum_edge_weights, stored_edge_weight
 from .errors import DiskFull, JobError, RunFailed, RunInterrupted
 from .io.checkpoint import (CheckpointCorrupt, CheckpointMismatch, CheckpointState, CheckpointStore, ResultExists,
                             result_complete)
@@ -166,11 +168,20 @@ class Simulation:
                 attrs["analysis_record_crc32"] = record_checksum(attrs)   # attributes have no HDF5 checksum
             writer = ResultWriter(path, {**self._layout(), "record": record}, attrs)
             # psi0 itself: the propagator's load() copies it into its own array
-            return RunBook(path, writer, store, checkpoint, s.psi0, 0, np.zeros(self._absorbed_shape()), 0.0, True)
+            book = RunBook(path, writer, store, checkpoint, s.psi0, 0, np.zeros(self._absorbed_shape()), 0.0, True)
+            if self.coupled:
+                book.warnings = json.loads(attrs["adequacy_warnings"])
+                book.edge = momentum_edge_weights(s.psi0, s.grid)
+            return book
         writer = ResultWriter.resume(path, self._layout(), resume.result_copy, resume.n_time,
                                      resume.n_snap, attrs=self._attrs())
-        return RunBook(path, writer, store, checkpoint, np.array(resume.psi, dtype=s.dtype, copy=True),
-                        int(resume.steps), np.asarray(resume.absorbed, float).copy(), resume.wall_seconds, False)
+        book = RunBook(path, writer, store, checkpoint, np.array(resume.psi, dtype=s.dtype, copy=True),
+                       int(resume.steps), np.asarray(resume.absorbed, float).copy(), resume.wall_seconds, False)
+        if self.coupled:   # the sessions before: their warnings (in the file) and edge weights (in the checkpoint)
+            book.warnings = json.loads(str(writer.ds.getncattr("adequacy_warnings")))
+            book.edge = np.array(resume.extra.get("momentum_edge_weight")
+                                 or momentum_edge_weights(book.psi, s.grid), float)
+        return book
 
     def observe(self, book, values, t_au, absorbed) -> dict:
         """Write one sample (``values`` from the observer, atomic units)."""
@@ -215,6 +226,9 @@ class Simulation:
         s = self.setup
         values = self.observe(book, values, t_au, absorbed)
         self._health(values, absorbed, t_au, done)
+        if self.coupled and (done % self._edge_steps() == 0 or done >= s.total_steps):
+            # a hop can give a surface momenta beyond the grid's, which the set-up's criteria cannot weigh
+            book.edge = np.maximum(book.edge, momentum_edge_weights(psi, s.grid))
         if done % s.snapshot_steps == 0:
             self.write_snapshot(book.writer, self.job_time(t_au), psi)
 
@@ -228,9 +242,18 @@ class Simulation:
             values = final_detector_values(s, psi, scale)   # what analysis would read psi for (1D)
             if values is not None:
                 book.writer.set_detector_values(values)
+        closing = {"steps": int(steps), "wall_seconds": float(book.wall())}
+        if self.coupled:   # measured over the run: beside the set-up's warnings, which analysis repeats
+            measured = edge_warning_lines(s, book.edge, s.surfaces)
+            for line in measured:
+                _log.warning("%s: %s", self.job.name, line)
+            closing["momentum_edge_weight"] = json.dumps(
+                {name: {ax.name: stored_edge_weight(w) for ax, w in zip(s.grid.axes, row)}
+                 for name, row in zip(s.surfaces, book.edge)})
+            closing["adequacy_warnings"] = json.dumps(
+                [*book.warnings, *(f"the run, measured: {line}" for line in measured)])
         try:
-            out = book.writer.close({"steps": int(steps), "wall_seconds": float(book.wall())},
-                                    replace=book.store is None)
+            out = book.writer.close(closing, replace=book.store is None)
         except FileExistsError:   # another worker finished this run meanwhile
             raise ResultExists(book.path) from None
         if book.store is not None:
@@ -262,7 +285,9 @@ class Simulation:
                                 wall_seconds=float(book.wall()), psi=np.asarray(psi),
                                 extra={"job_name": self.job.name, "total_steps": int(self.setup.total_steps),
                                        "scheme": self.setup.scheme.name,
-                                       "wavesweep_version": __version__})
+                                       "wavesweep_version": __version__,
+                                       **({"momentum_edge_weight": np.asarray(book.edge).tolist()}
+                                          if self.coupled else {})})
         out = book.store.save(state, writer, reopen=reopen)
         book.last_checkpoint = _time.perf_counter()
         return out
@@ -308,6 +333,15 @@ class Simulation:
         store.discard()
 
     # -- helpers ---------------------------------------------------------------
+    def _edge_steps(self) -> int:
+        """Steps between measurements of the momentum at the grid's edge on
+        coupled surfaces: every sample, or every few samples so that the
+        transforms cost a few percent of the stepping (at least
+        EDGE_EVERY_STEPS steps apart; a hop's fast part crosses a grid in
+        many more steps)."""
+        n = self.setup.sample_steps
+        return n * max(1, -(-EDGE_EVERY_STEPS // n))
+
     def _absorbed_shape(self) -> tuple:
         """The books' shape: (faces,), or (surfaces, faces) on coupled surfaces."""
         s = self.setup
@@ -424,9 +458,20 @@ class Simulation:
         }
 
 
+# Coupled runs measure the momentum at the grid's edge at least this many steps apart
+# (one transform per axis and surface against a step's two per surface: ~5 %).
+EDGE_EVERY_STEPS = 10
+
+
 class RunBook:
     """What one run carries through its loop: the writer, the checkpoint
-    store and policy, psi and books to start from, and the wall clock."""
+    store and policy, psi and books to start from, and the wall clock; on
+    coupled surfaces also the set-up's warnings (``warnings``) and the
+    largest momentum-edge weight so far per surface and axis (``edge``,
+    :func:`wavesweep.adequacy.momentum_edge_weights`)."""
+
+    warnings: list = []
+    edge = None
 
     def __init__(self, path, writer, store, policy, psi, steps, absorbed, wall_before, fresh):
         self.path, self.writer, self.store, self.policy = path, writer, store, policy
