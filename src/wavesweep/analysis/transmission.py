@@ -120,6 +120,13 @@ VARIES = 1e-6              # V differs from its value at the start by more (x me
 # On coupled surfaces: beyond the detector V_ss varies, or |V_ab| reaches, more than this x the mean
 # kinetic energy: the surfaces are not the flat, uncoupled channels T_s(E) assumes (common practice).
 FLAT_BEYOND = 1e-3
+# A premise's first-order effect on T (relative or absolute) above this: the first-order estimate no
+# longer bounds it (the linear crossing of the trial: a 1.4e-2 estimate against a sum of T_s 5.7e-2
+# above 1), and no T(E) is given, only why (a choice: T's range is [0, 1]).
+PREMISE_LIMIT = 1e-2
+# psi flowing back across the detector after its main passage, above this fraction of what went
+# forward: the far side sends it back (a wall, no absorber), which a longer run does not cure.
+CAME_BACK = UNCERTAINTY_TARGET
 
 
 def transmission_totals(ds, setup) -> dict:
@@ -290,36 +297,167 @@ def _at_detector(ds, setup, j, k_all, w_all, points) -> dict:
     spectrum = transmission_from_samples(t, amp, k, np.abs(phi) ** 2, mass, v_start, v_det,
                                          still_to_come=to_come,
                                          band_center=0.5 * float(e_band.min() + e_band.max()))
+    # the premises (module notes), as on coupled surfaces: a flat start, nothing sent back
+    weighty = spectrum.momentum_density / w_fwd.max() > WEIGHT_FLOOR
+    start_rel, sigma_v, _ = _start_effect(dens0, v_static, spectrum.energy, k, np.abs(phi) ** 2, mass)
+    worst_start = float(np.max(start_rel[weighty], initial=0.0))
+    failed = []
+    if worst_start > PREMISE_LIMIT:
+        failed.append(("packet.center", f"the packet starts where V is not flat (it varies by "
+                                        f"{sigma_v / uc['energy']:.3g} {uc['energy_label']} (rms) across it, as "
+                                        f"for a bound initial state: T(E) off by up to {worst_start:.2g} relative); "
+                                        "T(E) needs a free incident packet: start it where V is flat"))
+    back, forward = _came_back(np.asarray(ds["time"].values, float),
+                               np.asarray(ds["flux"].values, float)[:, j] * direction)
+    beyond_left = None
+    far_face = "x+" if direction > 0 else "x-"
+    if psi_end is not None and _far_layer(setup, direction) is None:
+        beyond_left = float(np.sum(np.abs(psi_end[direction * (x - x_d) > 0]) ** 2)) * setup.grid.axes[0].dx
+    comes_back = _comes_back_reason(name, back, forward, beyond_left, far_face) if forward > 0 else None
+    if comes_back is not None and max(back, beyond_left or 0.0) > PREMISE_LIMIT * forward:
+        failed.append(("absorber.faces", comes_back))
+    if failed:
+        raise JobError(failed[0][0], "; ".join(m for _, m in failed))
+    notes = [comes_back] if comes_back is not None else []
+    if worst_start > UNCERTAINTY_TARGET:
+        notes.append(f"the packet starts where V is not quite flat (T(E) off by up to {worst_start:.2g} "
+                     "relative, in its +/-): start it where V is flat")
     return {"detector": name, "energy": spectrum.energy / uc["energy"], "T": spectrum.transmission,
             "energy_units": uc["energy_label"], "duration": float(t[-1] - t[0]) / uc["time"],
-            "time_units": uc["time_label"],
-            **_settled(spectrum, t, amp, k_all, w_fwd, v_start, v_det, mass, uc)}
+            "time_units": uc["time_label"], "premise_warnings": notes,
+            **_settled(spectrum, t, amp, k_all, w_fwd, v_start, v_det, mass, uc,
+                       premise=spectrum.transmission * start_rel, no_promise=comes_back)}
 
 
-def _settled(spectrum, t, amp, k_all, w_fwd, v_start, v_det, mass, uc) -> dict:
+def _settled(spectrum, t, amp, k_all, w_fwd, v_start, v_det, mass, uc, premise=None,
+             no_promise: str | None = None) -> dict:
     """How far T(E) into one final channel can be trusted (job units), from
     its :func:`transmission_from_samples` with ``still_to_come``: the
     uncertainty per energy ``T_uncertainty``, the incident ``weight``
     normalised to its peak, ``largest_uncertainty`` where the weight is
     above WEIGHT_FLOOR and where (``largest_at``), ``uncertain_span`` (the
     energies where it is above UNCERTAINTY_TARGET, or None),
-    ``duration_needed`` (None when settled) and ``peak_energy``.  One
-    surface's T(E) and each final surface's on coupled surfaces."""
+    ``duration_needed`` (None when settled, and when no longer run is known
+    to settle it: ``unsettled_because`` then says why) and ``peak_energy``.
+    One surface's T(E) and each final surface's on coupled surfaces.
+
+    ``premise``: T's uncertainty per energy from the method's premises
+    holding only approximately (:func:`_start_effect`, :func:`_mixing_effect`),
+    added to what had not passed the detector; a longer run does not shrink
+    it, so where it alone is above the target no duration is promised.
+    ``no_promise``: why no longer run settles T whatever the tail (psi
+    comes back across the detector), or None."""
     energy, uncertainty = spectrum.energy, spectrum.uncertainty
     weight = spectrum.momentum_density / w_fwd.max()
     significant = weight > WEIGHT_FLOOR
+    truncated = float(np.max(uncertainty[significant], initial=0.0))
+    if premise is not None:
+        T = spectrum.transmission
+        open_channel = energy > v_det            # closed: T = 0 exactly, as the truncation's
+        uncertainty = np.where(open_channel,
+                               np.minimum(uncertainty + premise, np.maximum(T, np.abs(1 - T))), 0.0)
     largest = float(np.max(uncertainty[significant], initial=0.0))
     largest_at = float(energy[significant][np.argmax(uncertainty[significant])]) if significant.any() \
         else math.nan
-    needed, span = None, None
+    from_premise = float(np.max(premise[significant], initial=0.0)) if premise is not None else 0.0
+    needed, span, because = None, None, None
     if largest > UNCERTAINTY_TARGET:
-        needed = _duration_needed(t, amp, spectrum.arriving_energy, k_all, w_fwd, v_start, v_det, mass,
-                                  largest) / uc["time"]
         over = energy[significant & (uncertainty > UNCERTAINTY_TARGET)] / uc["energy"]
         span = (float(over.min()), float(over.max()))
+        span_run = float(t[-1] - t[0])
+        if no_promise is not None:
+            because = no_promise
+        elif from_premise > UNCERTAINTY_TARGET:
+            because = (f"{from_premise:.2g} of it comes from the method's premises holding only approximately "
+                       "(see the warnings), which a longer run does not change")
+        elif truncated > UNCERTAINTY_TARGET:
+            needed = _duration_needed(t, amp, spectrum.arriving_energy, k_all, w_fwd, v_start, v_det, mass,
+                                      truncated)
+            if not needed > span_run * (1 + 1e-6):
+                # the tail follows neither free flight nor a decay that a longer run would see out
+                needed, because = None, ("the record's tail at the detector cannot be extrapolated (it follows "
+                                         "neither free flight nor a steady decay)")
+            else:
+                needed /= uc["time"]
     return {"T_uncertainty": uncertainty, "weight": weight, "duration_needed": needed,
             "largest_uncertainty": largest, "largest_at": largest_at / uc["energy"], "uncertain_span": span,
-            "peak_energy": float(energy[np.argmax(weight)]) / uc["energy"]}
+            "peak_energy": float(energy[np.argmax(weight)]) / uc["energy"], "unsettled_because": because}
+
+
+def _start_effect(dens0, v_incident, energy, wave_number, momentum_density, mass,
+                  couplings=()) -> tuple[np.ndarray, float, float]:
+    """T(E)'s relative error from a packet that does not start where its
+    surface is flat and uncoupled (atomic units): (per energy, sigma_V, r).
+
+    The method counts the component of wave number k at E = V_in + k^2 / 2m,
+    V_in = <V> over |psi0|^2, and divides by the incident weight per energy
+    n(E) = |phi(k)|^2 m / |k|.  Where V varies across the packet, the
+    energy a component carries is V(x) + k^2 / 2m, spread about that by
+    sigma_V = (<(V - V_in)^2>)^(1/2); an energy label off by delta changes
+    the weight divided by, and so T, by |d ln n / dE| delta to first order.
+    With delta = 2 sigma_V, and 1 / (band width) added to |d ln n / dE|
+    for the spread itself (n changes where its slope vanishes too):
+
+        dT / T = 2 sigma_V (|d ln n / dE| + 1 / W).
+
+    Measured on the trial's tanh surface -0.02 tanh(x / 4) hartree with
+    packets at x = -25, -30, -40 bohr (mass 2000, 0.06 hartree kinetic,
+    sigma_V 1.7e-7, 1.4e-8, 9.5e-11 hartree), against T = 1: the error
+    (1.3e-4, 1.1e-5, 1.8e-7 at most) stayed below 0.31, 0.31 and 0.73 of
+    the whole +/- (this plus what had not passed the detector: 4.5e-4,
+    3.7e-5, 6.2e-7 at most) at every energy of weight above 1 %; without
+    this term the stated +/- was 100 times below the error at -30 bohr.
+    ``couplings``: (|V_ab|, V_aa - V_bb) over the grid for each surface b
+    coupled to the incident a: the packet then starts a mixture, about
+    r = <sin^2 theta>^(1/2) in amplitude of the other state, theta the
+    local mixing angle (:func:`_mixing_angle`; |V_ab| / |V_aa - V_bb| where
+    small), which changes T by up to 2 r relative."""
+    d = np.asarray(dens0, float) / float(np.sum(dens0))
+    v_in = float(np.sum(v_incident * d))
+    sigma = math.sqrt(float(np.sum((v_incident - v_in) ** 2 * d)))
+    weight = np.asarray(momentum_density, float) * mass / np.abs(wave_number)
+    slope = np.abs(np.gradient(np.log(np.maximum(weight, 1e-300)), energy)) if len(energy) > 1 \
+        else np.zeros_like(energy)
+    band = float(np.ptp(energy)) or 1.0
+    mixing = 0.0
+    for coupling, gap in couplings:
+        mixing = max(mixing, math.sqrt(float(np.sum(_mixing_angle(coupling, gap) ** 2 * d))))
+    return 2 * sigma * (slope + 1 / band) + 2 * mixing, sigma, mixing
+
+
+def _mixing_angle(coupling, gap) -> np.ndarray:
+    """sin theta of the local eigenvectors of [[V_aa, V_ab], [V_ab*, V_bb]]
+    (tan 2 theta = 2 |V_ab| / |V_aa - V_bb|): the amplitude of b in the
+    eigenvector nearest a, |V_ab| / |V_aa - V_bb| where that is small and
+    1 / sqrt 2 where the surfaces cross."""
+    return np.sin(0.5 * np.arctan2(2 * np.abs(coupling), np.abs(gap)))
+
+
+def _came_back(t, forward_flux) -> tuple[float, float]:
+    """(back, forward): the probability that crossed a detector against the
+    packet's motion and with it, int max(-J, 0) dt and int max(J, 0) dt
+    summed over the surfaces; ``forward_flux`` (time, ...) is J oriented
+    along the motion.  What crosses back after the main passage was sent
+    back by the far side (a wall without an absorber, or a grid's period)."""
+    j = np.asarray(forward_flux, float).reshape(len(t), -1)
+    back = float(np.sum([np.trapezoid(np.maximum(-j[:, i], 0.0), t) for i in range(j.shape[1])]))
+    forward = float(np.sum([np.trapezoid(np.maximum(j[:, i], 0.0), t) for i in range(j.shape[1])]))
+    return back, forward
+
+
+def _comes_back_reason(name, back, forward, beyond_left, far_face) -> str | None:
+    """Why T(E) at detector ``name`` is spoiled by what the far side sends
+    back (what came back, and what is beyond it at the end with no absorber
+    to take it), or None."""
+    parts = []
+    if back > CAME_BACK * forward:
+        parts.append(f"{back / forward:.2g} of what passed detector {name!r} came back across it")
+    if beyond_left is not None and beyond_left > CAME_BACK * forward:
+        parts.append(f"{beyond_left:.2g} is beyond it at the end with no absorber at {far_face} to take it")
+    if not parts:
+        return None
+    return (" and ".join(parts) + f": the far side sends psi back (a wall or the grid's period), which a longer "
+            f"run does not cure; add an absorbing layer at {far_face} ([absorber] faces)")
 
 
 class SampledTransmission(NamedTuple):
@@ -669,7 +807,8 @@ def _momentum_amplitude(psi, x, k) -> np.ndarray:
 
 
 def truncation_warning(er: dict) -> str:
-    """One line: where T(E) is uncertain and the duration that would settle it."""
+    """One line: where T(E) is uncertain and the duration that would settle
+    it, or why no longer run is known to (``unsettled_because``)."""
     lo, hi = er["uncertain_span"]
     unit = er["energy_units"]
     if hi < er["peak_energy"]:
@@ -678,10 +817,14 @@ def truncation_warning(er: dict) -> str:
         where = f"above E = {lo:.4g} {unit}"
     else:
         where = f"from E = {lo:.4g} to {hi:.4g} {unit}"
-    return (f"the run ended before all of the packet had passed detector {er['detector']!r}: T(E) is "
-            f"uncertain by up to {er['largest_uncertainty']:.2g} (at E = {er['largest_at']:.4g} {unit}; "
-            f"by more than {UNCERTAINTY_TARGET:g} {where}); evolve.duration = "
-            f"{er['duration_needed']:.4g} {er['time_units']} would bring it below {UNCERTAINTY_TARGET:g}")
+    said = (f"T(E) is uncertain by up to {er['largest_uncertainty']:.2g} (at E = {er['largest_at']:.4g} {unit}; "
+            f"by more than {UNCERTAINTY_TARGET:g} {where})")
+    if er.get("duration_needed") is None:
+        return f"at detector {er['detector']!r} {said}; no run length is said to settle it: " \
+               f"{er.get('unsettled_because') or 'its tail cannot be extrapolated'}"
+    return (f"the run ended before all of the packet had passed detector {er['detector']!r}: {said}; "
+            f"evolve.duration = {er['duration_needed']:.4g} {er['time_units']} would bring it below "
+            f"{UNCERTAINTY_TARGET:g}")
 
 
 def transmission(result, detector: str | None = None) -> dict:
@@ -701,6 +844,7 @@ def transmission(result, detector: str | None = None) -> dict:
         out["warnings"].extend(recorded_warnings(setup))
         try:
             er = out["energy_resolved"] = energy_resolved_transmission(ds, setup, detector)
+            out["warnings"].extend(er.get("premise_warnings", []))
             if er["uncertain_span"] is not None:
                 out["warnings"].append(truncation_warning(er))
         except JobError as e:
@@ -860,41 +1004,125 @@ def coupled_energy_resolved(ds, setup, detector: str | None = None, points: int 
     spectra = surface_spectra(t, amp, k, w, setup.mass, v_in, v_final, still_to_come=to_come,
                               band_center=0.5 * float(e_band.min() + e_band.max()))
     energy = spectra[0].energy
-    settled = {s: _settled(spectra[i], t, amp[i], k_all, w_fwd, v_in, v_final[i], setup.mass, uc)
-               for i, s in enumerate(surfaces)}
-    warnings = []
-    for s, found in settled.items():
-        if found["uncertain_span"] is not None:
-            warnings.append(f"surface {s}: " + truncation_warning({**found, "detector": name,
-                                                                   "energy_units": uc["energy_label"],
-                                                                   "time_units": uc["time_label"]}))
-    # the method's channels are flat, uncoupled surfaces from the detector on (module notes)
+    weighty = spectra[0].momentum_density / w_fwd.max() > WEIGHT_FLOOR
+    unit, elabel = uc["energy"], uc["energy_label"]
+    pairs = []                  # (a, b, V_ab over the grid, hartree)
+    if "coupling_potential" in ds and ds.sizes.get("pair", 0):
+        for p, values in zip(ds["pair"].values, np.asarray(ds["coupling_potential"].values, float)):
+            a, b = (surfaces.index(n.strip()) for n in str(p).split(","))
+            pairs.append((a, b, values * unit))
+    # --- the method's premises (module notes): where they fail beyond PREMISE_LIMIT, no T(E) ---
+    failed = []
+    # 1. the packet starts where its surface is flat and uncoupled
+    start_couplings = [(v, potential[incident] - potential[b if a == incident else a])
+                       for a, b, v in pairs if incident in (a, b)]
+    start_rel, sigma_v, r_start = _start_effect(dens0, potential[incident], energy, k, w, setup.mass,
+                                                start_couplings)
+    worst_start = float(np.max(start_rel[weighty], initial=0.0))
+    if worst_start > PREMISE_LIMIT:
+        what = []
+        # only what fails: each part on its own above the limit (both when neither is alone)
+        from_v, from_mixing = worst_start - 2 * r_start, 2 * r_start
+        if from_v > PREMISE_LIMIT or from_mixing <= PREMISE_LIMIT:
+            what.append(f"V varies by {sigma_v / unit:.3g} {elabel} (rms) across it, as for a bound initial state")
+        if from_mixing > PREMISE_LIMIT or from_v <= PREMISE_LIMIT:
+            what.append(f"the couplings mix in {r_start:.2g} of another surface there")
+        failed.append(("packet.center",
+                       f"the packet starts where surface {surfaces[incident]!r} is not flat and uncoupled "
+                       f"({'; '.join(what)}: T(E) off by up to {worst_start:.2g} "
+                       "relative); T(E) needs a free incident packet: start it where "
+                       "its surface is flat and uncoupled"))
+    # 2. beyond the detector the surfaces are flat and uncoupled: what a coupling there mixes into s
     beyond = moving * (x - x_d) >= 0
     far = layer_edge(setup, "x+" if moving > 0 else "x-") if _far_layer(setup, moving) is not None else None
     if far is not None:
         beyond &= moving * (far - x) > 0
-    e_kin = float(np.sum(k * k * w) / np.sum(w)) / (2 * setup.mass)
-    spread = float(np.max(np.ptp(potential[:, beyond], axis=1))) if beyond.any() else 0.0
-    coupling = float(np.max(np.abs(ds["coupling_potential"].values[:, beyond]))) * uc["energy"] \
-        if "coupling_potential" in ds and beyond.any() and ds.sizes.get("pair", 0) else 0.0
-    if max(spread, coupling) > FLAT_BEYOND * e_kin:
-        warnings.append(f"beyond detector {name!r} the surfaces are not flat and uncoupled (V_ss varies by "
-                        f"{spread / uc['energy']:.3g}, |V_ab| reaches {coupling / uc['energy']:.3g} "
-                        f"{uc['energy_label']}): T(E) per surface assumes they are; place the detector where "
-                        "the couplings vanish and each V_ss is constant")
-    if abs(float(np.ptp(potential[incident][dens0 > 1e-10 * dens0.max()]))) > FLAT_BEYOND * e_kin:
-        warnings.append(f"the packet starts where surface {surfaces[incident]!r} is not flat: T(E) assumes a free "
-                        "incident packet; start it where the potential is constant")
+    transmitted = [spectra[i].transmission for i in range(len(surfaces))]
+    speed = [np.sqrt(np.maximum(2 * (energy - v_final[i]) / setup.mass, 0.0)) for i in range(len(surfaces))]
+    is_open = [bool(np.any((energy > v_final[i]) & weighty)) for i in range(len(surfaces))]
+    mixed = [np.zeros_like(energy) for _ in surfaces]
+    mixings = []
+    for a, b, v_ab in pairs:
+        if not beyond.any() or not (is_open[a] and is_open[b]):
+            continue            # a closed surface carries nothing the detector counts
+        ratio = float(np.max(_mixing_angle(v_ab[beyond], (potential[a] - potential[b])[beyond])))
+        if ratio == 0:
+            continue
+        # an amplitude r (sin theta) of o's wave read on s with s's speed: dT_s = 2 r sqrt(T_s T_o v_s / v_o) + r^2 T_o v_s / v_o
+        for s_, o_ in ((a, b), (b, a)):
+            scale = np.divide(speed[s_], speed[o_], out=np.zeros_like(energy), where=speed[o_] > 0)
+            cross = np.maximum(transmitted[o_], 0.0) * scale
+            mixed[s_] += 2 * ratio * np.sqrt(np.maximum(transmitted[s_], 0.0) * cross) + ratio**2 * cross
+        mixings.append((surfaces[a], surfaces[b], ratio))
+    worst_mix = max((float(np.max(m[weighty], initial=0.0)) for m in mixed), default=0.0)
+    if worst_mix > PREMISE_LIMIT:
+        said = ", ".join(f"{sa} and {sb} mixed by {r:.2g} in amplitude" for sa, sb, r in mixings)
+        failed.append((f"detector.{j}.x",
+                       f"beyond detector {name!r} the surfaces are still coupled ({said}; T_s off by up to "
+                       f"{worst_mix:.2g}); T(E) per surface needs them uncoupled there: put the detector where "
+                       "the surfaces are flat and uncoupled"))
+    # 3. nothing comes back across the detector (a far side without an absorber sends psi back)
+    flux = np.asarray(ds["flux"].values, float)[:, :, j] * moving
+    back, forward = _came_back(np.asarray(ds["time"].values, float), flux)
+    beyond_left = None
+    far_face = "x+" if moving > 0 else "x-"
+    if psi_end is not None and _far_layer(setup, moving) is None:
+        beyond_left = float(np.sum(np.abs(psi_end[:, moving * (x - x_d) > 0]) ** 2)) * setup.grid.axes[0].dx
+    comes_back = _comes_back_reason(name, back, forward, beyond_left, far_face) if forward > 0 else None
+    if comes_back is not None and (back > PREMISE_LIMIT * forward or
+                                   (beyond_left or 0.0) > PREMISE_LIMIT * forward):
+        failed.append(("absorber.faces", comes_back))
+    if failed:
+        raise JobError(failed[0][0], "; ".join(m for _, m in failed))
+    premise = [transmitted[i] * start_rel + mixed[i] for i in range(len(surfaces))]
+    settled = {s: _settled(spectra[i], t, amp[i], k_all, w_fwd, v_in, v_final[i], setup.mass, uc,
+                           premise=premise[i], no_promise=comes_back)
+               for i, s in enumerate(surfaces)}
+    warnings = []
+    if comes_back is not None:
+        warnings.append(comes_back)
+    if worst_start > UNCERTAINTY_TARGET:
+        warnings.append(f"the packet starts where surface {surfaces[incident]!r} is not quite flat and uncoupled "
+                        f"(T(E) off by up to {worst_start:.2g} relative, in its +/-): start it where its surface "
+                        "is flat and uncoupled")
+    if worst_mix > UNCERTAINTY_TARGET:
+        warnings.append(f"beyond detector {name!r} the surfaces are still weakly coupled (T_s off by up to "
+                        f"{worst_mix:.2g}, in its +/-): put the detector where they are uncoupled")
+    for s, found in settled.items():
+        if found["uncertain_span"] is not None:
+            warnings.append(f"surface {s}: " + truncation_warning({**found, "detector": name,
+                                                                   "energy_units": elabel,
+                                                                   "time_units": uc["time_label"]}))
+    # an open surface whose V_ss still changes beyond the detector: its flux is read with the speed at
+    # the detector, right only while nothing there turns the wave round (common practice: flag it)
+    for i, s in enumerate(surfaces):
+        if is_open[i] and beyond.any():
+            change = float(np.ptp(potential[i, beyond]))
+            kinetic = float(np.min(energy[weighty])) - v_final[i]
+            if change > FLAT_BEYOND * kinetic:
+                warnings.append(f"beyond detector {name!r} V_{s}{s} changes by {change / unit:.3g} {elabel}: T_{s}(E) "
+                                "is read with the speed at the detector, right while nothing beyond turns the wave "
+                                "round; place the detector where each V_ss is constant")
+    # unitarity: the surfaces together cannot take more than came in
+    total = np.sum(transmitted, axis=0)
+    total_unc = np.sum([f["T_uncertainty"] for f in settled.values()], axis=0)
+    excess = np.where(weighty, total - 1 - total_unc, -np.inf)
+    if np.max(excess) > 0:
+        i = int(np.argmax(excess))
+        warnings.append(f"the T_s add up to {total[i]:.6g} at E = {energy[i] / unit:.4g} {elabel}, above 1 by more "
+                        f"than their uncertainty ({total_unc[i]:.2g}): a premise of the method fails beyond what "
+                        "the +/- accounts for; do not trust T(E) there")
     needed = [f["duration_needed"] for f in settled.values() if f["duration_needed"] is not None]
-    return {"energy": energy / uc["energy"], "T": {s: spectra[i].transmission for i, s in enumerate(surfaces)},
+    return {"energy": energy / unit, "T": {s: spectra[i].transmission for i, s in enumerate(surfaces)},
             "T_uncertainty": {s: f["T_uncertainty"] for s, f in settled.items()},
             "largest_uncertainty": {s: f["largest_uncertainty"] for s, f in settled.items()},
             "uncertain_span": {s: f["uncertain_span"] for s, f in settled.items()},
-            "duration_needed": max(needed) if needed else None,
+            # one number for all: none when a surface is unsettled and no run length settles it
+            "duration_needed": max(needed) if needed and not any(
+                f["uncertain_span"] is not None and f["duration_needed"] is None for f in settled.values()) else None,
             "duration": float(t[-1] - t[0]) / uc["time"], "time_units": uc["time_label"],
             "weight": w / w.max(), "detector": name, "incident_surface": surfaces[incident],
-            "energy_units": uc["energy_label"], "final_potentials": {s: v_final[i] / uc["energy"]
-                                                                     for i, s in enumerate(surfaces)},
+            "energy_units": elabel, "final_potentials": {s: v_final[i] / unit for i, s in enumerate(surfaces)},
             "warnings": warnings}
 
 
