@@ -944,6 +944,38 @@ def coupled_energy_resolved(ds, setup, detector: str | None = None, points: int 
     x0 = float(np.sum(dens0 * x) / np.sum(dens0))
     k_all, w_all = _padded_momentum_density(psi0, setup.grid.axes[0].dx)
     moving = 1.0 if float(np.sum(k_all * w_all)) >= 0 else -1.0
+    potential = np.asarray(ds["potential"].values, float) * uc["energy"]      # (surface, x), hartree
+    v_in = float(np.sum(potential[incident] * dens0) / np.sum(dens0))
+    unit, elabel = uc["energy"], uc["energy_label"]
+    pairs = []                  # (a, b, V_ab over the grid, hartree)
+    if "coupling_potential" in ds and ds.sizes.get("pair", 0):
+        for p, values in zip(ds["pair"].values, np.asarray(ds["coupling_potential"].values, float)):
+            a, b = (surfaces.index(n.strip()) for n in str(p).split(","))
+            pairs.append((a, b, values * unit))
+    # --- the method's premises (module notes): where they fail beyond PREMISE_LIMIT, no T(E) ---
+    # 1. the packet starts where its surface is flat and uncoupled
+    start_couplings = [(v, potential[incident] - potential[b if a == incident else a])
+                       for a, b, v in pairs if incident in (a, b)]
+    k, w = incident_wave_numbers(psi0, x, moving, points)
+    w_fwd = np.where(k_all * moving > 0, w_all, 0.0)
+    weighty = w / w_fwd.max() > WEIGHT_FLOOR
+    start_rel, sigma_v, r_start = _start_effect(dens0, potential[incident], v_in + k**2 / (2 * setup.mass), k, w,
+                                                setup.mass, start_couplings)
+    worst_start = float(np.max(start_rel[weighty], initial=0.0))
+    if worst_start > PREMISE_LIMIT:
+        what = []
+        # only what fails: each part on its own above the limit (both when neither is alone)
+        from_v, from_mixing = worst_start - 2 * r_start, 2 * r_start
+        if from_v > PREMISE_LIMIT or from_mixing <= PREMISE_LIMIT:
+            what.append(f"V varies by {sigma_v / unit:.3g} {elabel} (rms) across it, as for a bound initial state")
+        if from_mixing > PREMISE_LIMIT or from_v <= PREMISE_LIMIT:
+            what.append(f"the couplings mix in {r_start:.2g} of another surface there")
+        # judged first: a bound start has no direction to look for a detector in
+        raise JobError("packet.center",
+                       f"the packet starts where surface {surfaces[incident]!r} is not flat and uncoupled "
+                       f"({'; '.join(what)}: T(E) off by up to {worst_start:.2g} "
+                       "relative); T(E) needs a free incident packet: start it where "
+                       "its surface is flat and uncoupled")
     if detector is not None:
         j = _requested_detector(setup, names, detector)
     else:
@@ -967,10 +999,7 @@ def coupled_energy_resolved(ds, setup, detector: str | None = None, points: int 
     if np.max(np.abs(amp[:, 0]) ** 2) > AMPLITUDE_AT_START * peak:
         raise JobError("packet.center", f"the initial packet already overlaps detector {name!r}; "
                                         "start it farther from the detector")
-    w_fwd = np.where(k_all * moving > 0, w_all, 0.0)
     k_band = k_all[w_fwd > BAND_FLOOR * w_fwd.max()]
-    potential = np.asarray(ds["potential"].values, float) * uc["energy"]      # (surface, x), hartree
-    v_in = float(np.sum(potential[incident] * dens0) / np.sum(dens0))
     e_band = v_in + k_band**2 / (2 * setup.mass)
     dt_rec = float(np.median(np.diff(t)))
     width = float(e_band.max() - e_band.min())
@@ -979,7 +1008,6 @@ def coupled_energy_resolved(ds, setup, detector: str | None = None, points: int 
         raise JobError("record.every", f"samples {dt_rec / uc['time']:g} {uc['time_label']} apart alias "
                                        f"the packet's band of {width / uc['energy']:.3g} {uc['energy_label']}; "
                                        f"use record.every < {need:.3g} {uc['time_label']}")
-    k, w = incident_wave_numbers(psi0, x, moving, points)
     v_final = np.array([float(np.interp(x_d, x, potential[s])) for s in range(len(surfaces))])
     end_ratio = float(np.max(np.abs(amp[:, -1]) ** 2)) / peak
     psi_end = _final_psi(ds, uc)
@@ -1005,33 +1033,8 @@ def coupled_energy_resolved(ds, setup, detector: str | None = None, points: int 
                               band_center=0.5 * float(e_band.min() + e_band.max()))
     energy = spectra[0].energy
     weighty = spectra[0].momentum_density / w_fwd.max() > WEIGHT_FLOOR
-    unit, elabel = uc["energy"], uc["energy_label"]
-    pairs = []                  # (a, b, V_ab over the grid, hartree)
-    if "coupling_potential" in ds and ds.sizes.get("pair", 0):
-        for p, values in zip(ds["pair"].values, np.asarray(ds["coupling_potential"].values, float)):
-            a, b = (surfaces.index(n.strip()) for n in str(p).split(","))
-            pairs.append((a, b, values * unit))
     # --- the method's premises (module notes): where they fail beyond PREMISE_LIMIT, no T(E) ---
     failed = []
-    # 1. the packet starts where its surface is flat and uncoupled
-    start_couplings = [(v, potential[incident] - potential[b if a == incident else a])
-                       for a, b, v in pairs if incident in (a, b)]
-    start_rel, sigma_v, r_start = _start_effect(dens0, potential[incident], energy, k, w, setup.mass,
-                                                start_couplings)
-    worst_start = float(np.max(start_rel[weighty], initial=0.0))
-    if worst_start > PREMISE_LIMIT:
-        what = []
-        # only what fails: each part on its own above the limit (both when neither is alone)
-        from_v, from_mixing = worst_start - 2 * r_start, 2 * r_start
-        if from_v > PREMISE_LIMIT or from_mixing <= PREMISE_LIMIT:
-            what.append(f"V varies by {sigma_v / unit:.3g} {elabel} (rms) across it, as for a bound initial state")
-        if from_mixing > PREMISE_LIMIT or from_v <= PREMISE_LIMIT:
-            what.append(f"the couplings mix in {r_start:.2g} of another surface there")
-        failed.append(("packet.center",
-                       f"the packet starts where surface {surfaces[incident]!r} is not flat and uncoupled "
-                       f"({'; '.join(what)}: T(E) off by up to {worst_start:.2g} "
-                       "relative); T(E) needs a free incident packet: start it where "
-                       "its surface is flat and uncoupled"))
     # 2. beyond the detector the surfaces are flat and uncoupled: what a coupling there mixes into s
     beyond = moving * (x - x_d) >= 0
     far = layer_edge(setup, "x+" if moving > 0 else "x-") if _far_layer(setup, moving) is not None else None
@@ -1109,9 +1112,10 @@ def coupled_energy_resolved(ds, setup, detector: str | None = None, points: int 
     excess = np.where(weighty, total - 1 - total_unc, -np.inf)
     if np.max(excess) > 0:
         i = int(np.argmax(excess))
-        warnings.append(f"the T_s add up to {total[i]:.6g} at E = {energy[i] / unit:.4g} {elabel}, above 1 by more "
-                        f"than their uncertainty ({total_unc[i]:.2g}): a premise of the method fails beyond what "
-                        "the +/- accounts for; do not trust T(E) there")
+        warnings.append(f"the T_s add up to 1 + {total[i] - 1:.2g} at E = {energy[i] / unit:.4g} {elabel}, above 1 "
+                        f"by more than their +/- ({total_unc[i]:.2g}): something the +/- does not cover moves T "
+                        "there (the discretisation, dt and grid, or a premise beyond its estimate); a refined run "
+                        "or `wavesweep check --tolerance` tells which")
     needed = [f["duration_needed"] for f in settled.values() if f["duration_needed"] is not None]
     return {"energy": energy / unit, "T": {s: spectra[i].transmission for i, s in enumerate(surfaces)},
             "T_uncertainty": {s: f["T_uncertainty"] for s, f in settled.items()},
