@@ -72,6 +72,27 @@ at every energy of weight above 1 %.  What the absorbers send back sets
 the floor: about 1e-5 (T of a run ended at |psi|^2 = 3e-10 of its peak
 changes by 1.4e-5 when it goes on 30 hbar/E_h longer).
 
+The method's premises, judged from the run (on one surface and per
+final surface alike), each turned into T's error where it holds only
+approximately and added to dT, and refused (no T(E), the reason instead)
+where that error is above PREMISE_LIMIT, beyond which a first-order
+estimate no longer bounds it:
+
+- the packet starts where its surface is flat (_start_effect: V spread by
+  sigma_V across it mislabels the energies, dT / T = 2 sigma_V (|d ln n /
+  dE| + 1 / W)) and, on coupled surfaces, uncoupled (the other surface
+  mixed in by r, dT / T = 2 r).  A bound initial state fails it: its
+  fragments' energies are a spectrum's business, not T(E)'s;
+- beyond the detector the surfaces are uncoupled (a coupling mixes o's
+  wave into s by r = sin theta of the local eigenvectors:
+  dT_s = 2 r sqrt(T_s T_o v_s / v_o) + r^2 T_o v_s / v_o);
+- nothing comes back across the detector (_came_back: what a wall without
+  an absorber, or the grid's period, sends back; the fix is an absorber,
+  so no duration is promised).
+dT covers neither the discretisation (dt, grid), which ``check
+--tolerance`` or a refined run measures, nor what these estimates miss:
+where sum_s T_s exceeds 1 by more than its dT a warning says so.
+
 ``duration_needed`` (job time unit) is the run length that would bring dT
 below UNCERTAINTY_TARGET wherever the weight is above WEIGHT_FLOOR.  dT,
 led by 2 sqrt(T B), scales with the amplitude still arriving.  While the
@@ -83,7 +104,10 @@ peak and its end, gives.  A resonance instead rings at a fixed energy and
 decays as exp(-gamma t): ln(dT_max / target) / gamma more.  (Measured:
 asked for 107 hbar/E_h, a barrier run was then settled to 1.4e-4; the
 double barrier asked for 14020 fs from 2000 fs and 14370 fs from 8150 fs,
-and at 14030 fs it was settled to 1.3e-4.)
+and at 14030 fs it was settled to 1.3e-4.)  It is None, with the reason
+(``unsettled_because``), where no run length is known to settle T: the
+tail follows neither law (a suggestion not beyond the run's own length),
+the premises' part of dT alone is above the target, or psi comes back.
 """
 from __future__ import annotations
 
@@ -102,7 +126,7 @@ from .recorded import as_record
 from .recorded import run_record as read_record
 
 __all__ = ["transmission", "energy_resolved_transmission", "transmission_totals", "truncation_warning",
-           "UNCERTAINTY_TARGET", "transmission_from_samples", "surface_transmission", "surface_spectra",
+           "UNCERTAINTY_TARGET", "PREMISE_LIMIT", "transmission_from_samples", "surface_transmission", "surface_spectra",
            "incident_wave_numbers",
            "SampledTransmission", "coupled_transmission"]
 
