@@ -178,3 +178,25 @@ def test_the_table_says_what_its_uncertainty_covers(near_start, capsys):
     except SystemExit:
         pass
     assert "not the discretisation" in " ".join(capsys.readouterr().out.split())
+
+
+def test_a_bound_start_on_one_surface_is_said_as_such(tmp_path):
+    """The same premise on one surface (the shared code path): the demo's 'bright' Morse curve alone,
+    its bound start refused for what it is, not as a detector 'behind the packet's start'."""
+    table = {
+        "title": "bound start, one surface",
+        "units": {"length": "angstrom", "time": "fs", "energy": "eV", "mass": "Da"},
+        "particle": {"mass": 10.0},
+        "grid": {"x": {"min": 1.1, "max": 10.0, "points": 287}, "boundary": "box"},
+        "potential": [{"kind": "expression", "expression": "3.0 + 2.2 * (1 - exp(-1.4 * (x - 1.75)))**2"}],
+        "packet": {"kind": "ground_state", "potential": [{"kind": "morse", "depth": 4.0, "stiffness": 2.0,
+                                                          "center": 1.5}]},
+        "evolve": {"dt": 0.05, "duration": 50.0},
+        "record": {"every": 0.5, "snapshot_every": 50.0},
+        "absorber": {"kind": "cap", "thickness": 2.5, "faces": ["x+"]},
+        "detector": [{"name": "out", "x": 6.0}],
+    }
+    er = transmission(_run(table, tmp_path))["energy_resolved"]
+    assert "T" not in er
+    assert er["reason"].startswith("packet.center: the packet starts where V is not flat")
+    assert "bound initial state" in er["reason"]

@@ -221,6 +221,8 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
         raise JobError("RUN.nc", f"{source_name(ds)}: the run has no detector; add a [[detector]] beyond the scatterer")
     k_all, w_all = _padded_momentum_density(setup.psi0, setup.grid.axes[0].dx)
     p_mean = float(np.sum(k_all * w_all) / np.sum(w_all))
+    # judged first: a bound start has no direction to look for a detector in
+    _single_start(setup, k_all, w_all, 1.0 if p_mean >= 0 else -1.0, points, result_units(ds), refuse=True)
     if detector is not None:
         j = _requested_detector(setup, names, detector)
         return _at_detector(ds, setup, j, k_all, w_all, points)
@@ -243,6 +245,32 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
     if estimate is not None:
         return estimate
     raise first
+
+
+def _single_start(setup, k_all, w_all, direction, points, uc, refuse: bool = False):
+    """One surface's start premise (:func:`_start_effect`) at the energies
+    T(E) is given for: (relative error per energy, its largest where the
+    weight is above WEIGHT_FLOOR, the reason T(E) is refused or None);
+    with ``refuse``, that reason is raised as a JobError."""
+    x = setup.grid.axes[0].coordinates
+    dens0 = np.abs(setup.psi0) ** 2
+    v_static = setup.static_potential
+    w_fwd = np.where(k_all * direction > 0, w_all, 0.0)
+    k = _wave_numbers_with_weight(k_all, w_fwd, points)
+    density = np.abs(_momentum_amplitude(setup.psi0, x, k)) ** 2
+    v_start = float(np.sum(v_static * dens0) / np.sum(dens0))
+    energy = v_start + k**2 / (2 * setup.mass)
+    rel, mean_delta, _ = _start_effect(dens0, v_static, energy, k, density, setup.mass)
+    worst = float(np.max(rel[density / w_fwd.max() > WEIGHT_FLOOR], initial=0.0))
+    refusal = None
+    if worst > PREMISE_LIMIT:
+        refusal = (f"the packet starts where V is not flat (it differs from its mean by "
+                   f"{mean_delta / uc['energy']:.3g} {uc['energy_label']} on average across it, as for a bound "
+                   f"initial state: T(E) off by up to {worst:.2g} relative); T(E) needs a free incident packet: "
+                   "start it where V is flat")
+        if refuse:
+            raise JobError("packet.center", refusal)
+    return rel, worst, refusal
 
 
 def _requested_detector(setup, names, detector: str) -> int:
@@ -323,15 +351,8 @@ def _at_detector(ds, setup, j, k_all, w_all, points) -> dict:
                                          still_to_come=to_come,
                                          band_center=0.5 * float(e_band.min() + e_band.max()))
     # the premises (module notes), as on coupled surfaces: a flat start, nothing sent back
-    weighty = spectrum.momentum_density / w_fwd.max() > WEIGHT_FLOOR
-    start_rel, sigma_v, _ = _start_effect(dens0, v_static, spectrum.energy, k, np.abs(phi) ** 2, mass)
-    worst_start = float(np.max(start_rel[weighty], initial=0.0))
-    failed = []
-    if worst_start > PREMISE_LIMIT:
-        failed.append(("packet.center", f"the packet starts where V is not flat (it varies by "
-                                        f"{sigma_v / uc['energy']:.3g} {uc['energy_label']} on average across it, as "
-                                        f"for a bound initial state: T(E) off by up to {worst_start:.2g} relative); "
-                                        "T(E) needs a free incident packet: start it where V is flat"))
+    start_rel, worst_start, refusal = _single_start(setup, k_all, w_all, direction, points, uc)
+    failed = [("packet.center", refusal)] if refusal is not None else []
     back, forward = _came_back(np.asarray(ds["time"].values, float),
                                np.asarray(ds["flux"].values, float)[:, j] * direction)
     beyond_left = None
