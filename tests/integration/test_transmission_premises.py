@@ -200,3 +200,22 @@ def test_a_bound_start_on_one_surface_is_said_as_such(tmp_path):
     assert "T" not in er
     assert er["reason"].startswith("packet.center: the packet starts where V is not flat")
     assert "bound initial state" in er["reason"]
+
+
+def test_no_duration_is_promised_that_is_not_beyond_the_run(tmp_path, monkeypatch):
+    """P4: the wren demo was told evolve.duration = 700.0000000000001 fs after a 700 fs run.  A suggestion
+    not beyond the run's own length is no promise: duration_needed is None and the warning says why
+    (the extrapolation forced to give the run's own length, on a barrier run that ended early)."""
+    from test_coupled_transmission_trust import BARRIER, BARRIER_V
+
+    import importlib
+
+    module = importlib.import_module("wavesweep.analysis.transmission")   # the package re-exports a function by that name
+    path = _run({**copy.deepcopy(BARRIER), "potential": BARRIER_V}, tmp_path)
+    honest = transmission(path)["energy_resolved"]
+    assert honest["duration_needed"] > 16.0                       # it did end early: a real suggestion
+    monkeypatch.setattr(module, "_duration_needed", lambda t, *rest: float(t[-1] - t[0]) * (1 + 1e-15))
+    out = transmission(path)
+    assert out["energy_resolved"]["duration_needed"] is None
+    said = [w for w in out["warnings"] if "no run length is said to settle it" in w]
+    assert len(said) == 1 and "evolve.duration =" not in said[0]
