@@ -202,7 +202,13 @@ def _parser() -> argparse.ArgumentParser:
     ar.add_argument("--plot", default=None, metavar="FILE", help="draw the distributions (.png/.pdf/.svg)")
     ar.add_argument("--overwrite", action="store_true", help="replace FILE if it exists (without it an existing file is refused)")
 
-    tr = sub.add_parser("transmission", help="transmission and reflection of a run, and T(E)")
+    tr = sub.add_parser("transmission", help="transmission and reflection of a run, and T(E)",
+                        description="Totals per face and detector, and T(E) with its +/- per energy.  The +/- "
+                                    "covers what had not passed the detector by the end and the method's "
+                                    "premises (a packet starting where its surface is flat and uncoupled, "
+                                    "flat uncoupled surfaces beyond the detector, nothing sent back), not the "
+                                    "discretisation (dt, grid): `wavesweep check JOB --tolerance` or a refined "
+                                    "run measures that.  Where a premise fails, no T(E) is given, only why.")
     tr.add_argument("result", metavar="RUN.nc")
     tr.add_argument("--detector", default=None, help="detector beyond the scatterer for T(E)")
     tr.add_argument("--json", action="store_true", help="print one JSON object")
@@ -550,6 +556,10 @@ def _surface_arrivals(args, dists) -> int:
     return EXIT_OK
 
 
+# what the +/- of a T(E) table covers, in its header line
+TRUST_NOTE = "+/-: what had not passed it and the premises, not dt or the grid (check --tolerance)"
+
+
 def _transmission(args) -> int:
     # lazy: each command loads only what it needs (every command's start-up)
     from .analysis.transmission import transmission
@@ -575,13 +585,15 @@ def _transmission(args) -> int:
                   f"crossed it (flux): {d['crossed']:.6g}")
         print(f"still on the grid: {tot['final_norm']:.6g}")
         if "T" in er:
-            print(f"\nT(E) at detector {er['detector']!r}:")
+            print(f"\nT(E) at detector {er['detector']!r} ({TRUST_NOTE}):")
             print(f"{'E (' + er['energy_units'] + ')':>14}{'T':>12}{'+/-':>10}{'weight':>10}")
             step = max(1, len(er["energy"]) // 20)
             rows = zip(er["energy"], er["T"], er["T_uncertainty"], er["weight"])
             for e, t, dt, w in list(rows)[::step]:
                 print(f"{e:14.6g}{t:12.6f}{dt:10.1e}{w:10.3f}")
-    if "reason" in er and not er.get("requested"):
+        elif "reason" in er:
+            print(f"\nno T(E): {er['reason']}")
+    if "reason" in er and not er.get("requested") and args.json:    # the text says it on stdout
         out["warnings"].append(f"no energy-resolved T: {er['reason']}")
     _warn("transmission", out["warnings"])
     if er.get("requested"):          # the totals are out; the detector asked for could not give T(E)
@@ -613,7 +625,8 @@ def _surface_transmission(args, out) -> int:
         for surface in surfaces:
             print(f"still on the grid on {surface}: {tot['final_norm'][surface]:.6g}")
         if "T" in er:
-            print(f"\nT(E) per final surface at detector {er['detector']!r} (packet on {er['incident_surface']}):")
+            print(f"\nT(E) per final surface at detector {er['detector']!r} (packet on {er['incident_surface']}; "
+                  f"{TRUST_NOTE}):")
             print(f"{'E (' + er['energy_units'] + ')':>14}"
                   + "".join(f"{'T ' + s:>12}{'+/-':>10}" for s in surfaces) + f"{'weight':>10}")
             step = max(1, len(er["energy"]) // 20)
@@ -621,7 +634,9 @@ def _surface_transmission(args, out) -> int:
                 print(f"{er['energy'][i]:14.6g}"
                       + "".join(f"{er['T'][s][i]:12.6f}{er['T_uncertainty'][s][i]:10.1e}" for s in surfaces)
                       + f"{er['weight'][i]:10.3f}")
-    if "reason" in er and not er.get("requested"):
+        elif "reason" in er:
+            print(f"\nno T(E): {er['reason']}")
+    if "reason" in er and not er.get("requested") and args.json:    # the text says it on stdout
         out["warnings"].append(f"no energy-resolved T: {er['reason']}")
     _warn("transmission", out["warnings"])
     if er.get("requested"):

@@ -72,6 +72,28 @@ at every energy of weight above 1 %.  What the absorbers send back sets
 the floor: about 1e-5 (T of a run ended at |psi|^2 = 3e-10 of its peak
 changes by 1.4e-5 when it goes on 30 hbar/E_h longer).
 
+The method's premises, judged from the run (on one surface and per
+final surface alike), each turned into T's error where it holds only
+approximately and added to dT, and refused (no T(E), the reason instead)
+where that error is above PREMISE_LIMIT, beyond which a first-order
+estimate no longer bounds it:
+
+- the packet starts where its surface is flat (_start_effect: the part
+  d(x) of it where V differs by delta(x) from <V> has its energies
+  mislabelled, dT / T = sum_x d(x) min(n_peak / n, 2 delta (|d ln n / dE|
+  + 1 / W))) and, on coupled surfaces, uncoupled (the other surface
+  mixed in by r, dT / T = 2 r).  A bound initial state fails it: its
+  fragments' energies are a spectrum's business, not T(E)'s;
+- beyond the detector the surfaces are uncoupled (a coupling mixes o's
+  wave into s by r = sin theta of the local eigenvectors:
+  dT_s = 2 r sqrt(T_s T_o v_s / v_o) + r^2 T_o v_s / v_o);
+- nothing comes back across the detector (_came_back: what a wall without
+  an absorber, or the grid's period, sends back; the fix is an absorber,
+  so no duration is promised).
+dT covers neither the discretisation (dt, grid), which ``check
+--tolerance`` or a refined run measures, nor what these estimates miss:
+where sum_s T_s exceeds 1 by more than its dT a warning says so.
+
 ``duration_needed`` (job time unit) is the run length that would bring dT
 below UNCERTAINTY_TARGET wherever the weight is above WEIGHT_FLOOR.  dT,
 led by 2 sqrt(T B), scales with the amplitude still arriving.  While the
@@ -83,7 +105,10 @@ peak and its end, gives.  A resonance instead rings at a fixed energy and
 decays as exp(-gamma t): ln(dT_max / target) / gamma more.  (Measured:
 asked for 107 hbar/E_h, a barrier run was then settled to 1.4e-4; the
 double barrier asked for 14020 fs from 2000 fs and 14370 fs from 8150 fs,
-and at 14030 fs it was settled to 1.3e-4.)
+and at 14030 fs it was settled to 1.3e-4.)  It is None, with the reason
+(``unsettled_because``), where no run length is known to settle T: the
+tail follows neither law (a suggestion not beyond the run's own length),
+the premises' part of dT alone is above the target, or psi comes back.
 """
 from __future__ import annotations
 
@@ -102,7 +127,7 @@ from .recorded import as_record
 from .recorded import run_record as read_record
 
 __all__ = ["transmission", "energy_resolved_transmission", "transmission_totals", "truncation_warning",
-           "UNCERTAINTY_TARGET", "transmission_from_samples", "surface_transmission", "surface_spectra",
+           "UNCERTAINTY_TARGET", "PREMISE_LIMIT", "transmission_from_samples", "surface_transmission", "surface_spectra",
            "incident_wave_numbers",
            "SampledTransmission", "coupled_transmission"]
 
@@ -120,6 +145,13 @@ VARIES = 1e-6              # V differs from its value at the start by more (x me
 # On coupled surfaces: beyond the detector V_ss varies, or |V_ab| reaches, more than this x the mean
 # kinetic energy: the surfaces are not the flat, uncoupled channels T_s(E) assumes (common practice).
 FLAT_BEYOND = 1e-3
+# A premise's first-order effect on T (relative or absolute) above this: the first-order estimate no
+# longer bounds it (the linear crossing of the trial: a 1.4e-2 estimate against a sum of T_s 5.7e-2
+# above 1), and no T(E) is given, only why (a choice: T's range is [0, 1]).
+PREMISE_LIMIT = 1e-2
+# psi flowing back across the detector after its main passage, above this fraction of what went
+# forward: the far side sends it back (a wall, no absorber), which a longer run does not cure.
+CAME_BACK = UNCERTAINTY_TARGET
 
 
 def transmission_totals(ds, setup) -> dict:
@@ -189,6 +221,8 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
         raise JobError("RUN.nc", f"{source_name(ds)}: the run has no detector; add a [[detector]] beyond the scatterer")
     k_all, w_all = _padded_momentum_density(setup.psi0, setup.grid.axes[0].dx)
     p_mean = float(np.sum(k_all * w_all) / np.sum(w_all))
+    # judged first: a bound start has no direction to look for a detector in
+    _single_start(setup, k_all, w_all, 1.0 if p_mean >= 0 else -1.0, points, result_units(ds), refuse=True)
     if detector is not None:
         j = _requested_detector(setup, names, detector)
         return _at_detector(ds, setup, j, k_all, w_all, points)
@@ -211,6 +245,32 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
     if estimate is not None:
         return estimate
     raise first
+
+
+def _single_start(setup, k_all, w_all, direction, points, uc, refuse: bool = False):
+    """One surface's start premise (:func:`_start_effect`) at the energies
+    T(E) is given for: (relative error per energy, its largest where the
+    weight is above WEIGHT_FLOOR, the reason T(E) is refused or None);
+    with ``refuse``, that reason is raised as a JobError."""
+    x = setup.grid.axes[0].coordinates
+    dens0 = np.abs(setup.psi0) ** 2
+    v_static = setup.static_potential
+    w_fwd = np.where(k_all * direction > 0, w_all, 0.0)
+    k = _wave_numbers_with_weight(k_all, w_fwd, points)
+    density = np.abs(_momentum_amplitude(setup.psi0, x, k)) ** 2
+    v_start = float(np.sum(v_static * dens0) / np.sum(dens0))
+    energy = v_start + k**2 / (2 * setup.mass)
+    rel, mean_delta, _ = _start_effect(dens0, v_static, energy, k, density, setup.mass)
+    worst = float(np.max(rel[density / w_fwd.max() > WEIGHT_FLOOR], initial=0.0))
+    refusal = None
+    if worst > PREMISE_LIMIT:
+        refusal = (f"the packet starts where V is not flat (it differs from its mean by "
+                   f"{mean_delta / uc['energy']:.3g} {uc['energy_label']} on average across it, as for a bound "
+                   f"initial state: T(E) off by up to {worst:.2g} relative); T(E) needs a free incident packet: "
+                   "start it where V is flat")
+        if refuse:
+            raise JobError("packet.center", refusal)
+    return rel, worst, refusal
 
 
 def _requested_detector(setup, names, detector: str) -> int:
@@ -290,36 +350,172 @@ def _at_detector(ds, setup, j, k_all, w_all, points) -> dict:
     spectrum = transmission_from_samples(t, amp, k, np.abs(phi) ** 2, mass, v_start, v_det,
                                          still_to_come=to_come,
                                          band_center=0.5 * float(e_band.min() + e_band.max()))
+    # the premises (module notes), as on coupled surfaces: a flat start, nothing sent back
+    start_rel, worst_start, refusal = _single_start(setup, k_all, w_all, direction, points, uc)
+    failed = [("packet.center", refusal)] if refusal is not None else []
+    back, forward = _came_back(np.asarray(ds["time"].values, float),
+                               np.asarray(ds["flux"].values, float)[:, j] * direction)
+    beyond_left = None
+    far_face = "x+" if direction > 0 else "x-"
+    if psi_end is not None and _far_layer(setup, direction) is None:
+        beyond_left = float(np.sum(np.abs(psi_end[direction * (x - x_d) > 0]) ** 2)) * setup.grid.axes[0].dx
+    comes_back = _comes_back_reason(name, back, forward, beyond_left, far_face) if forward > 0 else None
+    if comes_back is not None and max(back, beyond_left or 0.0) > PREMISE_LIMIT * forward:
+        failed.append(("absorber.faces", comes_back))
+    if failed:
+        raise JobError(failed[0][0], "; ".join(m for _, m in failed))
+    notes = [comes_back] if comes_back is not None else []
+    if worst_start > UNCERTAINTY_TARGET:
+        notes.append(f"the packet starts where V is not quite flat (T(E) off by up to {worst_start:.2g} "
+                     "relative, in its +/-): start it where V is flat")
     return {"detector": name, "energy": spectrum.energy / uc["energy"], "T": spectrum.transmission,
             "energy_units": uc["energy_label"], "duration": float(t[-1] - t[0]) / uc["time"],
-            "time_units": uc["time_label"],
-            **_settled(spectrum, t, amp, k_all, w_fwd, v_start, v_det, mass, uc)}
+            "time_units": uc["time_label"], "premise_warnings": notes,
+            **_settled(spectrum, t, amp, k_all, w_fwd, v_start, v_det, mass, uc,
+                       premise=spectrum.transmission * start_rel, no_promise=comes_back)}
 
 
-def _settled(spectrum, t, amp, k_all, w_fwd, v_start, v_det, mass, uc) -> dict:
+def _settled(spectrum, t, amp, k_all, w_fwd, v_start, v_det, mass, uc, premise=None,
+             no_promise: str | None = None) -> dict:
     """How far T(E) into one final channel can be trusted (job units), from
     its :func:`transmission_from_samples` with ``still_to_come``: the
     uncertainty per energy ``T_uncertainty``, the incident ``weight``
     normalised to its peak, ``largest_uncertainty`` where the weight is
     above WEIGHT_FLOOR and where (``largest_at``), ``uncertain_span`` (the
     energies where it is above UNCERTAINTY_TARGET, or None),
-    ``duration_needed`` (None when settled) and ``peak_energy``.  One
-    surface's T(E) and each final surface's on coupled surfaces."""
+    ``duration_needed`` (None when settled, and when no longer run is known
+    to settle it: ``unsettled_because`` then says why) and ``peak_energy``.
+    One surface's T(E) and each final surface's on coupled surfaces.
+
+    ``premise``: T's uncertainty per energy from the method's premises
+    holding only approximately (:func:`_start_effect`, :func:`_mixing_effect`),
+    added to what had not passed the detector; a longer run does not shrink
+    it, so where it alone is above the target no duration is promised.
+    ``no_promise``: why no longer run settles T whatever the tail (psi
+    comes back across the detector), or None."""
     energy, uncertainty = spectrum.energy, spectrum.uncertainty
     weight = spectrum.momentum_density / w_fwd.max()
     significant = weight > WEIGHT_FLOOR
+    truncated = float(np.max(uncertainty[significant], initial=0.0))
+    if premise is not None:
+        T = spectrum.transmission
+        open_channel = energy > v_det            # closed: T = 0 exactly, as the truncation's
+        uncertainty = np.where(open_channel,
+                               np.minimum(uncertainty + premise, np.maximum(T, np.abs(1 - T))), 0.0)
     largest = float(np.max(uncertainty[significant], initial=0.0))
     largest_at = float(energy[significant][np.argmax(uncertainty[significant])]) if significant.any() \
         else math.nan
-    needed, span = None, None
+    from_premise = float(np.max(premise[significant], initial=0.0)) if premise is not None else 0.0
+    needed, span, because = None, None, None
     if largest > UNCERTAINTY_TARGET:
-        needed = _duration_needed(t, amp, spectrum.arriving_energy, k_all, w_fwd, v_start, v_det, mass,
-                                  largest) / uc["time"]
         over = energy[significant & (uncertainty > UNCERTAINTY_TARGET)] / uc["energy"]
         span = (float(over.min()), float(over.max()))
+        span_run = float(t[-1] - t[0])
+        if no_promise is not None:
+            because = no_promise
+        elif from_premise > UNCERTAINTY_TARGET:
+            because = (f"{from_premise:.2g} of it comes from the method's premises holding only approximately "
+                       "(see the warnings), which a longer run does not change")
+        elif truncated > UNCERTAINTY_TARGET:
+            needed = _duration_needed(t, amp, spectrum.arriving_energy, k_all, w_fwd, v_start, v_det, mass,
+                                      truncated)
+            if not needed > span_run * (1 + 1e-6):
+                # the tail follows neither free flight nor a decay that a longer run would see out
+                needed, because = None, ("the record's tail at the detector cannot be extrapolated (it follows "
+                                         "neither free flight nor a steady decay)")
+            else:
+                needed /= uc["time"]
     return {"T_uncertainty": uncertainty, "weight": weight, "duration_needed": needed,
             "largest_uncertainty": largest, "largest_at": largest_at / uc["energy"], "uncertain_span": span,
-            "peak_energy": float(energy[np.argmax(weight)]) / uc["energy"]}
+            "peak_energy": float(energy[np.argmax(weight)]) / uc["energy"], "unsettled_because": because}
+
+
+def _start_effect(dens0, v_incident, energy, wave_number, momentum_density, mass,
+                  couplings=()) -> tuple[np.ndarray, float, float]:
+    """T(E)'s relative error from a packet that does not start where its
+    surface is flat and uncoupled (atomic units): (per energy, the mean
+    |V - V_in| over the packet, r).
+
+    The method counts the component of wave number k at E = V_in + k^2 / 2m,
+    V_in = <V> over |psi0|^2, and divides by the incident weight per energy
+    n(E) = |phi(k)|^2 m / |k|.  Where V varies across the packet, the part
+    d(x) of the packet at x carries V(x) + k^2 / 2m, its energy label off by
+    delta(x) = |V(x) - V_in|; that changes the weight divided by, and so T,
+    by |d ln n / dE| delta to first order, and by at most n_peak / n(E)
+    (all of it moved to the energy of the peak).  With 2 delta, and
+    1 / (band width W) added to |d ln n / dE| for the spread itself (n
+    changes where its slope vanishes too):
+
+        dT / T = sum_x d(x) min(n_peak / n(E), 2 delta(x) (|d ln n / dE| + 1 / W)),
+
+    so that a far tail of the packet on a barrier counts by its weight.
+    Measured on the trial's tanh surface -0.02 tanh(x / 4) hartree with
+    packets at x = -25, -30, -40 bohr (mass 2000, 0.06 hartree kinetic;
+    mean delta 1.2e-7, 9.5e-9, 6.4e-11 hartree), against T = 1: the error
+    (1.3e-4, 1.1e-5, 1.8e-7 at most) stayed below 0.46, 0.46 and 0.77 of
+    the whole +/- (this plus what had not passed the detector: 3.0e-4,
+    2.5e-5, 5.3e-7 at most) at every energy of weight above 1 %; without
+    this term the stated +/- was 100 times below the error at -30 bohr.
+    ``couplings``: (|V_ab|, V_aa - V_bb) over the grid for each surface b
+    coupled to the incident a: the packet then starts a mixture, about
+    r = <sin^2 theta>^(1/2) in amplitude of the other state, theta the
+    local mixing angle (:func:`_mixing_angle`; |V_ab| / |V_aa - V_bb| where
+    small), which changes T by up to 2 r relative."""
+    d = np.asarray(dens0, float) / float(np.sum(dens0))
+    v_in = float(np.sum(v_incident * d))
+    delta = np.abs(np.asarray(v_incident, float) - v_in)
+    held = d > 0
+    mean_delta = float(np.sum(delta * d))
+    weight = np.asarray(momentum_density, float) * mass / np.abs(wave_number)
+    slope = np.abs(np.gradient(np.log(np.maximum(weight, 1e-300)), energy)) if len(energy) > 1 \
+        else np.zeros_like(energy)
+    band = float(np.ptp(energy)) or 1.0
+    cap = weight.max() / np.maximum(weight, 1e-300)
+    rel = np.zeros_like(energy)
+    rows = max(1, AMPLITUDE_BLOCK // max(len(energy), 1))
+    d_held, delta_held = d[held], delta[held]
+    for i in range(0, len(d_held), rows):      # (grid points x energies) in blocks, as the amplitudes
+        part = np.minimum(cap, 2 * np.outer(delta_held[i:i + rows], slope + 1 / band))
+        rel += d_held[i:i + rows] @ part
+    mixing = 0.0
+    for coupling, gap in couplings:
+        mixing = max(mixing, math.sqrt(float(np.sum(_mixing_angle(coupling, gap) ** 2 * d))))
+    return rel + 2 * mixing, mean_delta, mixing
+
+
+def _mixing_angle(coupling, gap) -> np.ndarray:
+    """sin theta of the local eigenvectors of [[V_aa, V_ab], [V_ab*, V_bb]]
+    (tan 2 theta = 2 |V_ab| / |V_aa - V_bb|): the amplitude of b in the
+    eigenvector nearest a, |V_ab| / |V_aa - V_bb| where that is small and
+    1 / sqrt 2 where the surfaces cross."""
+    return np.sin(0.5 * np.arctan2(2 * np.abs(coupling), np.abs(gap)))
+
+
+def _came_back(t, forward_flux) -> tuple[float, float]:
+    """(back, forward): the probability that crossed a detector against the
+    packet's motion and with it, int max(-J, 0) dt and int max(J, 0) dt
+    summed over the surfaces; ``forward_flux`` (time, ...) is J oriented
+    along the motion.  What crosses back after the main passage was sent
+    back by the far side (a wall without an absorber, or a grid's period)."""
+    j = np.asarray(forward_flux, float).reshape(len(t), -1)
+    back = float(np.sum([np.trapezoid(np.maximum(-j[:, i], 0.0), t) for i in range(j.shape[1])]))
+    forward = float(np.sum([np.trapezoid(np.maximum(j[:, i], 0.0), t) for i in range(j.shape[1])]))
+    return back, forward
+
+
+def _comes_back_reason(name, back, forward, beyond_left, far_face) -> str | None:
+    """Why T(E) at detector ``name`` is spoiled by what the far side sends
+    back (what came back, and what is beyond it at the end with no absorber
+    to take it), or None."""
+    parts = []
+    if back > CAME_BACK * forward:
+        parts.append(f"{back / forward:.2g} of what passed detector {name!r} came back across it")
+    if beyond_left is not None and beyond_left > CAME_BACK * forward:
+        parts.append(f"{beyond_left:.2g} is beyond it at the end with no absorber at {far_face} to take it")
+    if not parts:
+        return None
+    return (" and ".join(parts) + f": the far side sends psi back (a wall or the grid's period), which a longer "
+            f"run does not cure; add an absorbing layer at {far_face} ([absorber] faces)")
 
 
 class SampledTransmission(NamedTuple):
@@ -669,7 +865,8 @@ def _momentum_amplitude(psi, x, k) -> np.ndarray:
 
 
 def truncation_warning(er: dict) -> str:
-    """One line: where T(E) is uncertain and the duration that would settle it."""
+    """One line: where T(E) is uncertain and the duration that would settle
+    it, or why no longer run is known to (``unsettled_because``)."""
     lo, hi = er["uncertain_span"]
     unit = er["energy_units"]
     if hi < er["peak_energy"]:
@@ -678,10 +875,14 @@ def truncation_warning(er: dict) -> str:
         where = f"above E = {lo:.4g} {unit}"
     else:
         where = f"from E = {lo:.4g} to {hi:.4g} {unit}"
-    return (f"the run ended before all of the packet had passed detector {er['detector']!r}: T(E) is "
-            f"uncertain by up to {er['largest_uncertainty']:.2g} (at E = {er['largest_at']:.4g} {unit}; "
-            f"by more than {UNCERTAINTY_TARGET:g} {where}); evolve.duration = "
-            f"{er['duration_needed']:.4g} {er['time_units']} would bring it below {UNCERTAINTY_TARGET:g}")
+    said = (f"T(E) is uncertain by up to {er['largest_uncertainty']:.2g} (at E = {er['largest_at']:.4g} {unit}; "
+            f"by more than {UNCERTAINTY_TARGET:g} {where})")
+    if er.get("duration_needed") is None:
+        return f"at detector {er['detector']!r} {said}; no run length is said to settle it: " \
+               f"{er.get('unsettled_because') or 'its tail cannot be extrapolated'}"
+    return (f"the run ended before all of the packet had passed detector {er['detector']!r}: {said}; "
+            f"evolve.duration = {er['duration_needed']:.4g} {er['time_units']} would bring it below "
+            f"{UNCERTAINTY_TARGET:g}")
 
 
 def transmission(result, detector: str | None = None) -> dict:
@@ -701,6 +902,7 @@ def transmission(result, detector: str | None = None) -> dict:
         out["warnings"].extend(recorded_warnings(setup))
         try:
             er = out["energy_resolved"] = energy_resolved_transmission(ds, setup, detector)
+            out["warnings"].extend(er.get("premise_warnings", []))
             if er["uncertain_span"] is not None:
                 out["warnings"].append(truncation_warning(er))
         except JobError as e:
@@ -800,6 +1002,39 @@ def coupled_energy_resolved(ds, setup, detector: str | None = None, points: int 
     x0 = float(np.sum(dens0 * x) / np.sum(dens0))
     k_all, w_all = _padded_momentum_density(psi0, setup.grid.axes[0].dx)
     moving = 1.0 if float(np.sum(k_all * w_all)) >= 0 else -1.0
+    potential = np.asarray(ds["potential"].values, float) * uc["energy"]      # (surface, x), hartree
+    v_in = float(np.sum(potential[incident] * dens0) / np.sum(dens0))
+    unit, elabel = uc["energy"], uc["energy_label"]
+    pairs = []                  # (a, b, V_ab over the grid, hartree)
+    if "coupling_potential" in ds and ds.sizes.get("pair", 0):
+        for p, values in zip(ds["pair"].values, np.asarray(ds["coupling_potential"].values, float)):
+            a, b = (surfaces.index(n.strip()) for n in str(p).split(","))
+            pairs.append((a, b, values * unit))
+    # --- the method's premises (module notes): where they fail beyond PREMISE_LIMIT, no T(E) ---
+    # 1. the packet starts where its surface is flat and uncoupled
+    start_couplings = [(v, potential[incident] - potential[b if a == incident else a])
+                       for a, b, v in pairs if incident in (a, b)]
+    k, w = incident_wave_numbers(psi0, x, moving, points)
+    w_fwd = np.where(k_all * moving > 0, w_all, 0.0)
+    weighty = w / w_fwd.max() > WEIGHT_FLOOR
+    start_rel, sigma_v, r_start = _start_effect(dens0, potential[incident], v_in + k**2 / (2 * setup.mass), k, w,
+                                                setup.mass, start_couplings)
+    worst_start = float(np.max(start_rel[weighty], initial=0.0))
+    if worst_start > PREMISE_LIMIT:
+        what = []
+        # only what fails: each part on its own above the limit (both when neither is alone)
+        from_v, from_mixing = worst_start - 2 * r_start, 2 * r_start
+        if from_v > PREMISE_LIMIT or from_mixing <= PREMISE_LIMIT:
+            what.append(f"V differs from its mean by {sigma_v / unit:.3g} {elabel} on average across it, as for a "
+                        "bound initial state")
+        if from_mixing > PREMISE_LIMIT or from_v <= PREMISE_LIMIT:
+            what.append(f"the couplings mix in {r_start:.2g} of another surface there")
+        # judged first: a bound start has no direction to look for a detector in
+        raise JobError("packet.center",
+                       f"the packet starts where surface {surfaces[incident]!r} is not flat and uncoupled "
+                       f"({'; '.join(what)}: T(E) off by up to {worst_start:.2g} "
+                       "relative); T(E) needs a free incident packet: start it where "
+                       "its surface is flat and uncoupled")
     if detector is not None:
         j = _requested_detector(setup, names, detector)
     else:
@@ -823,10 +1058,7 @@ def coupled_energy_resolved(ds, setup, detector: str | None = None, points: int 
     if np.max(np.abs(amp[:, 0]) ** 2) > AMPLITUDE_AT_START * peak:
         raise JobError("packet.center", f"the initial packet already overlaps detector {name!r}; "
                                         "start it farther from the detector")
-    w_fwd = np.where(k_all * moving > 0, w_all, 0.0)
     k_band = k_all[w_fwd > BAND_FLOOR * w_fwd.max()]
-    potential = np.asarray(ds["potential"].values, float) * uc["energy"]      # (surface, x), hartree
-    v_in = float(np.sum(potential[incident] * dens0) / np.sum(dens0))
     e_band = v_in + k_band**2 / (2 * setup.mass)
     dt_rec = float(np.median(np.diff(t)))
     width = float(e_band.max() - e_band.min())
@@ -835,7 +1067,6 @@ def coupled_energy_resolved(ds, setup, detector: str | None = None, points: int 
         raise JobError("record.every", f"samples {dt_rec / uc['time']:g} {uc['time_label']} apart alias "
                                        f"the packet's band of {width / uc['energy']:.3g} {uc['energy_label']}; "
                                        f"use record.every < {need:.3g} {uc['time_label']}")
-    k, w = incident_wave_numbers(psi0, x, moving, points)
     v_final = np.array([float(np.interp(x_d, x, potential[s])) for s in range(len(surfaces))])
     end_ratio = float(np.max(np.abs(amp[:, -1]) ** 2)) / peak
     psi_end = _final_psi(ds, uc)
@@ -860,41 +1091,101 @@ def coupled_energy_resolved(ds, setup, detector: str | None = None, points: int 
     spectra = surface_spectra(t, amp, k, w, setup.mass, v_in, v_final, still_to_come=to_come,
                               band_center=0.5 * float(e_band.min() + e_band.max()))
     energy = spectra[0].energy
-    settled = {s: _settled(spectra[i], t, amp[i], k_all, w_fwd, v_in, v_final[i], setup.mass, uc)
-               for i, s in enumerate(surfaces)}
-    warnings = []
-    for s, found in settled.items():
-        if found["uncertain_span"] is not None:
-            warnings.append(f"surface {s}: " + truncation_warning({**found, "detector": name,
-                                                                   "energy_units": uc["energy_label"],
-                                                                   "time_units": uc["time_label"]}))
-    # the method's channels are flat, uncoupled surfaces from the detector on (module notes)
+    weighty = spectra[0].momentum_density / w_fwd.max() > WEIGHT_FLOOR
+    # --- the method's premises (module notes): where they fail beyond PREMISE_LIMIT, no T(E) ---
+    failed = []
+    # 2. beyond the detector the surfaces are flat and uncoupled: what a coupling there mixes into s
     beyond = moving * (x - x_d) >= 0
     far = layer_edge(setup, "x+" if moving > 0 else "x-") if _far_layer(setup, moving) is not None else None
     if far is not None:
         beyond &= moving * (far - x) > 0
-    e_kin = float(np.sum(k * k * w) / np.sum(w)) / (2 * setup.mass)
-    spread = float(np.max(np.ptp(potential[:, beyond], axis=1))) if beyond.any() else 0.0
-    coupling = float(np.max(np.abs(ds["coupling_potential"].values[:, beyond]))) * uc["energy"] \
-        if "coupling_potential" in ds and beyond.any() and ds.sizes.get("pair", 0) else 0.0
-    if max(spread, coupling) > FLAT_BEYOND * e_kin:
-        warnings.append(f"beyond detector {name!r} the surfaces are not flat and uncoupled (V_ss varies by "
-                        f"{spread / uc['energy']:.3g}, |V_ab| reaches {coupling / uc['energy']:.3g} "
-                        f"{uc['energy_label']}): T(E) per surface assumes they are; place the detector where "
-                        "the couplings vanish and each V_ss is constant")
-    if abs(float(np.ptp(potential[incident][dens0 > 1e-10 * dens0.max()]))) > FLAT_BEYOND * e_kin:
-        warnings.append(f"the packet starts where surface {surfaces[incident]!r} is not flat: T(E) assumes a free "
-                        "incident packet; start it where the potential is constant")
+    transmitted = [spectra[i].transmission for i in range(len(surfaces))]
+    speed = [np.sqrt(np.maximum(2 * (energy - v_final[i]) / setup.mass, 0.0)) for i in range(len(surfaces))]
+    is_open = [bool(np.any((energy > v_final[i]) & weighty)) for i in range(len(surfaces))]
+    mixed = [np.zeros_like(energy) for _ in surfaces]
+    mixings = []
+    for a, b, v_ab in pairs:
+        if not beyond.any() or not (is_open[a] and is_open[b]):
+            continue            # a closed surface carries nothing the detector counts
+        ratio = float(np.max(_mixing_angle(v_ab[beyond], (potential[a] - potential[b])[beyond])))
+        if ratio == 0:
+            continue
+        # an amplitude r (sin theta) of o's wave read on s with s's speed: dT_s = 2 r sqrt(T_s T_o v_s / v_o) + r^2 T_o v_s / v_o
+        for s_, o_ in ((a, b), (b, a)):
+            scale = np.divide(speed[s_], speed[o_], out=np.zeros_like(energy), where=speed[o_] > 0)
+            cross = np.maximum(transmitted[o_], 0.0) * scale
+            mixed[s_] += 2 * ratio * np.sqrt(np.maximum(transmitted[s_], 0.0) * cross) + ratio**2 * cross
+        mixings.append((surfaces[a], surfaces[b], ratio))
+    worst_mix = max((float(np.max(m[weighty], initial=0.0)) for m in mixed), default=0.0)
+    if worst_mix > PREMISE_LIMIT:
+        said = ", ".join(f"{sa} and {sb} mixed by {r:.2g} in amplitude" for sa, sb, r in mixings)
+        failed.append((f"detector.{j}.x",
+                       f"beyond detector {name!r} the surfaces are still coupled ({said}; T_s off by up to "
+                       f"{worst_mix:.2g}); T(E) per surface needs them uncoupled there: put the detector where "
+                       "the surfaces are flat and uncoupled"))
+    # 3. nothing comes back across the detector (a far side without an absorber sends psi back)
+    flux = np.asarray(ds["flux"].values, float)[:, :, j] * moving
+    back, forward = _came_back(np.asarray(ds["time"].values, float), flux)
+    beyond_left = None
+    far_face = "x+" if moving > 0 else "x-"
+    if psi_end is not None and _far_layer(setup, moving) is None:
+        beyond_left = float(np.sum(np.abs(psi_end[:, moving * (x - x_d) > 0]) ** 2)) * setup.grid.axes[0].dx
+    comes_back = _comes_back_reason(name, back, forward, beyond_left, far_face) if forward > 0 else None
+    if comes_back is not None and (back > PREMISE_LIMIT * forward or
+                                   (beyond_left or 0.0) > PREMISE_LIMIT * forward):
+        failed.append(("absorber.faces", comes_back))
+    if failed:
+        raise JobError(failed[0][0], "; ".join(m for _, m in failed))
+    premise = [transmitted[i] * start_rel + mixed[i] for i in range(len(surfaces))]
+    settled = {s: _settled(spectra[i], t, amp[i], k_all, w_fwd, v_in, v_final[i], setup.mass, uc,
+                           premise=premise[i], no_promise=comes_back)
+               for i, s in enumerate(surfaces)}
+    warnings = []
+    if comes_back is not None:
+        warnings.append(comes_back)
+    if worst_start > UNCERTAINTY_TARGET:
+        warnings.append(f"the packet starts where surface {surfaces[incident]!r} is not quite flat and uncoupled "
+                        f"(T(E) off by up to {worst_start:.2g} relative, in its +/-): start it where its surface "
+                        "is flat and uncoupled")
+    if worst_mix > UNCERTAINTY_TARGET:
+        warnings.append(f"beyond detector {name!r} the surfaces are still weakly coupled (T_s off by up to "
+                        f"{worst_mix:.2g}, in its +/-): put the detector where they are uncoupled")
+    for s, found in settled.items():
+        if found["uncertain_span"] is not None:
+            warnings.append(f"surface {s}: " + truncation_warning({**found, "detector": name,
+                                                                   "energy_units": elabel,
+                                                                   "time_units": uc["time_label"]}))
+    # an open surface whose V_ss still changes beyond the detector: its flux is read with the speed at
+    # the detector, right only while nothing there turns the wave round (common practice: flag it)
+    for i, s in enumerate(surfaces):
+        if is_open[i] and beyond.any():
+            change = float(np.ptp(potential[i, beyond]))
+            kinetic = float(np.min(energy[weighty])) - v_final[i]
+            if change > FLAT_BEYOND * kinetic:
+                warnings.append(f"beyond detector {name!r} V_{s}{s} changes by {change / unit:.3g} {elabel}: T_{s}(E) "
+                                "is read with the speed at the detector, right while nothing beyond turns the wave "
+                                "round; place the detector where each V_ss is constant")
+    # unitarity: the surfaces together cannot take more than came in
+    total = np.sum(transmitted, axis=0)
+    total_unc = np.sum([f["T_uncertainty"] for f in settled.values()], axis=0)
+    excess = np.where(weighty, total - 1 - total_unc, -np.inf)
+    if np.max(excess) > 0:
+        i = int(np.argmax(excess))
+        warnings.append(f"the T_s add up to 1 + {total[i] - 1:.2g} at E = {energy[i] / unit:.4g} {elabel}, above 1 "
+                        f"by more than their +/- ({total_unc[i]:.2g}): something the +/- does not cover moves T "
+                        "there (the discretisation, dt and grid, or a premise beyond its estimate); a refined run "
+                        "or `wavesweep check --tolerance` tells which")
     needed = [f["duration_needed"] for f in settled.values() if f["duration_needed"] is not None]
-    return {"energy": energy / uc["energy"], "T": {s: spectra[i].transmission for i, s in enumerate(surfaces)},
+    return {"energy": energy / unit, "T": {s: spectra[i].transmission for i, s in enumerate(surfaces)},
             "T_uncertainty": {s: f["T_uncertainty"] for s, f in settled.items()},
             "largest_uncertainty": {s: f["largest_uncertainty"] for s, f in settled.items()},
             "uncertain_span": {s: f["uncertain_span"] for s, f in settled.items()},
-            "duration_needed": max(needed) if needed else None,
+            # one number for all: none when a surface is unsettled and no run length settles it
+            "duration_needed": max(needed) if needed and not any(
+                f["uncertain_span"] is not None and f["duration_needed"] is None for f in settled.values()) else None,
             "duration": float(t[-1] - t[0]) / uc["time"], "time_units": uc["time_label"],
             "weight": w / w.max(), "detector": name, "incident_surface": surfaces[incident],
-            "energy_units": uc["energy_label"], "final_potentials": {s: v_final[i] / uc["energy"]
-                                                                     for i, s in enumerate(surfaces)},
+            "energy_units": elabel, "final_potentials": {s: v_final[i] / unit for i, s in enumerate(surfaces)},
             "warnings": warnings}
 
 
