@@ -251,27 +251,10 @@ def plan_pilot(job: Job, tolerance: float, timing_seconds: float = 0.3) -> Pilot
 
 
 def _time_steps(setup: Setup, seconds: float) -> tuple[float, float]:
-    """Wall seconds per step and per sample of the run (check's trial; on
-    coupled surfaces the same measure of their propagator and observer)."""
-    if not setup.coupled:
-        per_step, per_sample, _ = trial_costs(setup, seconds)
-        return per_step, per_sample
-    prop = setup.make_propagator()
-    psi = prop.step(prop.load(setup.psi0), 1)    # the kernels compiled first
-    chunk = max(1, min(setup.sample_steps, 50))
-    n, t0 = 0, _time.perf_counter()
-    while _time.perf_counter() - t0 < seconds and n < setup.total_steps:
-        psi = prop.step(psi, chunk)
-        n += chunk
-    per_step = (_time.perf_counter() - t0) / max(n, 1)
-    observer = setup.make_observer()
-    setup.measure(observer, psi, prop.t)          # plans its transforms, as a run does once
-    times = []
-    for _ in range(5):
-        t1 = _time.perf_counter()
-        setup.measure(observer, psi, prop.t)
-        times.append(_time.perf_counter() - t1)
-    return per_step, float(np.median(times))
+    """Wall seconds per step and per sample of the run (check's trial, on
+    one surface or several)."""
+    per_step, per_sample, _ = trial_costs(setup, seconds)
+    return per_step, per_sample
 
 
 # -- the outputs of one run ----------------------------------------------------------
