@@ -63,6 +63,7 @@ FORMATS = (".mp4", ".gif")
 
 
 @dataclass
+
 class MovieOptions:
     """``every``: use every K-th snapshot; ``fps``: frames per second;
     ``dpi``; ``size``: (width, height) pixels; ``scale``: "linear" or "log"
@@ -290,14 +291,7 @@ class Painter1D(Painter):
                                               (style.REAL, 1.0, "Re psi"), (style.IMAG, 1.0, "Im psi"))]
                 ax.legend(loc="lower right", frameon=False)
             else:
-                if opt.scale == "log":
-                    ax.set_yscale("log")
-                    ax.set_ylim(top * opt.floor, top)
-                else:
-                    ax.set_ylim(0, top)
-                label = ("radial probability density |u(r)|$^2$" if sc.radial
-                         else f"column density along {sc.column[0]}" if sc.column else "probability density")
-                ax.set_ylabel(f"{label} ({style.pretty_unit(sc.units['density'])})")
+                _density_axis(ax, sc, opt, top)
                 self.lines = [ax.plot(self.x, np.zeros_like(self.x), color=style.DENSITY, lw=1.6,
                                       animated=True)[0]]
                 self._floor = ax.get_ylim()[0]
@@ -575,14 +569,7 @@ class SurfacesPainter1D(Painter1D):
             for i in indices:                      # one streaming pass: a fixed y scale for every surface
                 top = max(top, float(np.nanmax(reader.frame(i))))
             top = top * 1.08 if top > 0 else 1.0
-            if opt.scale == "log":
-                ax.set_yscale("log")
-                ax.set_ylim(top * opt.floor, top)
-            else:
-                ax.set_ylim(0, top)
-            label = ("radial probability density |u(r)|$^2$" if sc.radial
-                     else f"column density along {sc.column[0]}" if sc.column else "probability density")
-            ax.set_ylabel(f"{label} ({style.pretty_unit(sc.units['density'])})")
+            _density_axis(ax, sc, opt, top)
             self._floor = ax.get_ylim()[0]
             self.fill = None
             # the widest label the legend will hold sizes its box: the populations fit in every frame
@@ -822,3 +809,17 @@ def render_movie(result, output, options: MovieOptions | None = None, overwrite:
     seconds = time.perf_counter() - t0
     return {"path": path, "frames": info["frames"], "seconds": seconds, "fps": options.fps,
             "frames_per_second": info["frames"] / seconds if seconds > 0 else float("inf")}
+
+
+def _density_axis(ax, sc, opt, top: float) -> None:
+    """A 1D movie's density axis: linear from 0 or log down to ``opt.floor``
+    of ``top``, labelled with what is drawn (|u(r)|^2 on a radial grid, a
+    column density, or the probability density) in the result's units."""
+    if opt.scale == "log":
+        ax.set_yscale("log")
+        ax.set_ylim(top * opt.floor, top)
+    else:
+        ax.set_ylim(0, top)
+    label = ("radial probability density |u(r)|$^2$" if sc.radial
+             else f"column density along {sc.column[0]}" if sc.column else "probability density")
+    ax.set_ylabel(f"{label} ({style.pretty_unit(sc.units['density'])})")
