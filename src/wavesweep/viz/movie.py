@@ -63,7 +63,6 @@ FORMATS = (".mp4", ".gif")
 
 
 @dataclass
-
 class MovieOptions:
     """``every``: use every K-th snapshot; ``fps``: frames per second;
     ``dpi``; ``size``: (width, height) pixels; ``scale``: "linear" or "log"
