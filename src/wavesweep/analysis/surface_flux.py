@@ -36,18 +36,27 @@ so); per energy the density is |b|^2 m / |p|.
 
 Sampling.  The run records psi(x_d) and d_x psi(x_d) at every sample
 (``detector_psi``, ``detector_dpsi``; both were already computed for the flux,
-so recording them costs nothing per step) and P, alpha, S (driven runs).  The
-time integral is the trapezoidal sum over the samples.  With V = 0 at x_d,
-psi(x_d, t) = int dk' c(k') exp(-i Phi_k'(t)) ..., so the integrand for k
-oscillates at Phi_k' - Phi_k, frequencies (k - qA)^2 / 2m - (k' - qA)^2 / 2m;
-the sum over samples of spacing dt_s reproduces int exp(i w t) dt exactly up to
-the aliases w + 2 pi n / dt_s, n != 0, which miss the spectrum only when
-every |w| < 2 pi / dt_s: the band W of local kinetic energies at the detector
-must satisfy W dt_s < 2 pi (the same condition as energy-resolved
-transmission's, which is the field-free case of this transform:
-:func:`time_transform`).  W is read from the record itself, k_loc = Im(psi' /
-psi) where |psi(x_d)|^2 is above BAND_FLOOR of its peak, and a coarser record
-is refused with the record.every that would do.
+so recording them adds no work per step, only two numbers per detector and
+sample) and P, alpha, S (driven runs).  The time integral is the trapezoidal
+sum over the samples.  Beyond the detector psi(x_d, t) = int dk' c(k')
+exp(-i Phi_k'(t)) ..., so the integrand for k oscillates at frequencies
+Phi_k' - Phi_k; the sum over samples dt_s apart reproduces int exp(i w t) dt
+exactly up to the aliases w + 2 pi n / dt_s, n != 0 (the Poisson summation
+formula), which miss the spectrum when every |w| < 2 pi / dt_s.  Bound and
+slow parts at the detector (energies from V_min up) are there too, so the
+spectrum is computed up to the energy pi / dt_s only, and a record whose
+spectrum is still above BAND_FLOOR of its peak at that energy (an aliased
+one fills the range) is refused with the record.every that would do: per
+sample, not per step, is then exact to rounding (the field-free case is
+energy-resolved transmission's transform: :func:`time_transform` is the
+one both call).  A record cut while parts still arrive leaves the
+trapezoid's end error (Euler-Maclaurin), which :func:`_end_correction`
+removes to leading order.
+
+Split-step sidebands.  The split-operator step is periodic in time: a
+potential with sharp features couples E to E + 2 pi / dt, a wave the grid
+carries where 2 pi / dt is below its largest energy; d_x psi weighs it by its
+large k, so a warning names the dt that keeps it off the grid.
 """
 from __future__ import annotations
 
@@ -63,7 +72,7 @@ from ..io.results import open_result, result_units, source_name
 __all__ = ["time_transform", "trapezoid_weights", "surface_flux_amplitude", "momentum_spectrum", "spectrum",
            "BAND_FLOOR", "STILL_TO_COME_WARN"]
 
-BAND_FLOOR = 1e-3          # |psi(x_d)|^2 above this fraction of its peak sets the band W
+BAND_FLOOR = 1e-8          # |psi(x_d)|^2 above this fraction of its peak sets the band W
 STILL_TO_COME_WARN = 1e-3  # a fraction still to come above this (of what crossed) is a warning
 SPECTRUM_FLOOR = 1e-6      # the momenta reported: where the density is above this fraction of its peak
 VARIES = 1e-3              # V counts as varying where it differs from V(x_d) by this fraction of <E_kin>
@@ -160,15 +169,25 @@ def _beyond_projection(psi0, x, x_detector, side, k) -> np.ndarray:
     return out
 
 
-def local_band(psi_detector, dpsi_detector, mass) -> float:
-    """W (hartree): the spread of the local kinetic energies (Im(psi'/psi))^2 / 2m
-    at the detector over the samples where |psi|^2 is above BAND_FLOOR of its peak."""
+def _initial_band(psi0, x, mass) -> float:
+    """The largest kinetic energy (hartree) in psi0 above BAND_FLOOR of its peak momentum density."""
+    dens = np.abs(np.fft.fft(psi0)) ** 2
+    k = 2 * math.pi * np.fft.fftfreq(len(x), x[1] - x[0])
+    return float(np.max(k[dens > BAND_FLOOR * dens.max()] ** 2)) / (2 * mass)
+
+
+def local_band(psi_detector, dpsi_detector, mass, highest: bool = False) -> float:
+    """The spread (or with ``highest`` the largest) of the local kinetic
+    energies (Im(psi'/psi))^2 / 2m at the detector (hartree) over the samples
+    where |psi|^2 is above BAND_FLOOR of its peak."""
     psi = np.asarray(psi_detector, complex)
     dens = np.abs(psi) ** 2
     keep = dens > BAND_FLOOR * dens.max()
     k_loc = (np.asarray(dpsi_detector, complex)[keep] / psi[keep]).imag
     e_loc = k_loc**2 / (2 * mass)
-    return float(e_loc.max() - e_loc.min()) if e_loc.size else 0.0
+    if not e_loc.size:
+        return 0.0
+    return float(e_loc.max()) if highest else float(e_loc.max() - e_loc.min())
 
 
 def momentum_spectrum(ds, setup, j: int, points: int = 401) -> dict:
@@ -195,21 +214,28 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401) -> dict:
                  "excursion": np.asarray(ds["field_excursion"].values, float) * uc["length"],
                  "field_phase": np.asarray(ds["field_phase"].values, float)}
     dt_s = float(np.median(np.diff(t)))
-    width = local_band(psi, dpsi, mass)
-    if width * dt_s >= 2 * math.pi:
-        every = 2 * math.pi / width / uc["time"]
-        raise JobError("record.every", f"{source_name(ds)}: samples {dt_s / uc['time']:g} {uc['time_label']} "
-                                       f"apart alias the band of {width / uc['energy']:.3g} {uc['energy_label']} "
-                                       f"arriving at detector {name!r}; use record.every < {every:.3g} "
-                                       f"{uc['time_label']}")
-    # momenta: outward, up to what the samples resolve and the grid holds
-    k_top = min(math.sqrt(2 * mass * 2 * math.pi / dt_s), math.pi / setup.grid.axes[0].dx)
+    # momenta: outward, up to the energy pi / dt_s (what lies between it and V_min + 2 pi / dt_s is where
+    # the aliases of slow and bound parts fall) and what the grid holds
+    k_grid = math.pi / setup.grid.axes[0].dx
+    k_top = min(math.sqrt(2 * mass * math.pi / dt_s), k_grid)
     p_end = float(field["field_momentum"][-1]) if field else 0.0
     coarse = side * np.linspace(0.0, k_top, 2048)[1:] - p_end
     b0 = lambda k: _beyond_projection(setup.psi0, x, x_d, side, k)   # noqa: E731
     dens_c = np.abs(surface_flux_amplitude(t, psi, dpsi, coarse, mass, x_d, side, initial=b0(coarse), **field)) ** 2
     if not np.any(dens_c > 0):
         raise JobError("--detector", f"nothing crossed detector {name!r} outwards during the run")
+    # the band (module notes): an aliased spectrum fills the whole range it is computed on, so one still
+    # above BAND_FLOOR of its peak at the top of a range the samples (not the grid) limit is refused
+    top = dens_c[-len(dens_c) // 20:].max()
+    v_min = min(float(np.min(setup.static_potential)), 0.0)
+    if (k_top < k_grid and top > BAND_FLOOR * dens_c.max()) or -v_min * dt_s >= math.pi:
+        highest = max(local_band(psi, dpsi, mass, highest=True), _initial_band(setup.psi0, x, mass)) - v_min
+        need = min(math.pi / highest, dt_s / 2) / uc["time"]
+        raise JobError("record.every", f"{source_name(ds)}: samples {dt_s / uc['time']:g} {uc['time_label']} "
+                                       f"apart alias the band of energies arriving at detector {name!r} (the "
+                                       f"spectrum is still {top / dens_c.max():.1e} of its peak at the "
+                                       f"{k_top * k_top / (2 * mass) / uc['energy']:.3g} {uc['energy_label']} "
+                                       f"they resolve); use record.every < {need:.3g} {uc['time_label']}")
     kept = coarse[dens_c > SPECTRUM_FLOOR * dens_c.max()]
     lo, hi = np.abs(kept + p_end).min(), np.abs(kept + p_end).max()
     step = k_top / 2047
@@ -229,6 +255,15 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401) -> dict:
         warnings.append(f"V at detector {name!r} is {v_d / uc['energy']:.3g} {uc['energy_label']}, not 0: plane "
                         "waves are not the outgoing states there and the energies are off by about that much; "
                         "place the detector where V vanishes")
+    step = float(ds.attrs.get("dt", 0.0)) * uc["time"]
+    e_grid = (math.pi / setup.grid.axes[0].dx) ** 2 / (2 * mass)
+    if step > 0 and 2 * math.pi / step < e_grid:
+        # the split step is periodic in time: a potential with sharp features couples E to E + 2 pi / dt,
+        # a wave the grid can carry; d psi / dx weighs it by its large k (measured: 3 % off at dx = 1/16 with
+        # a rectangular barrier and dt = 0.005, 7e-4 at dt = 0.004)
+        warnings.append(f"evolve.dt lets the split step's sidebands (E + 2 pi hbar / dt) travel on the grid, "
+                        f"which the surface flux counts; evolve.dt < {2 * math.pi / e_grid / uc['time']:.3g} "
+                        f"{uc['time_label']} keeps them off it")
     to_come = _still_to_come(ds, uc, x, v_static, x_d, side, e_mean)
     if to_come is not None and total > 0 and to_come > STILL_TO_COME_WARN * total:
         warnings.append(f"the run ended while slow parts were still arriving at detector {name!r}: "
@@ -243,8 +278,10 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401) -> dict:
 
 
 def _momentum_label(ds, uc) -> str:
-    mass = str(ds.attrs.get("units_mass", "m_e"))
-    return f"{mass} {uc['length_label']}/{uc['time_label']}"
+    """The job's momentum unit as the run labelled its own momenta (p_mean)."""
+    if "p_mean" in ds.variables and "units" in ds["p_mean"].attrs:
+        return str(ds["p_mean"].attrs["units"])
+    return f"{ds.attrs.get('units_mass', 'm_e')} {uc['length_label']} {uc['time_label']}-1"
 
 
 def _still_to_come(ds, uc, x, v_static, x_d, side, e_mean) -> float | None:
