@@ -28,12 +28,23 @@ __all__ = ["VolkovIntegrals", "uniform_force_along"]
 
 def uniform_force_along(terms, axis: int = 0):
     """F(t) along ``axis`` (hartree/bohr) summed over the uniform-force
-    terms that depend on time, or None when there are none."""
+    terms that depend on time, or None when there are none.  A driving
+    field's is q E(t) from its scalar E(t) (no array per call: it is asked
+    for twice a step)."""
     moving = [term for term in terms if getattr(term, "uniform_force", False)
               and getattr(term, "time_dependent", False)]
     if not moving:
         return None
-    return lambda t: float(sum(term.force_at(t)[axis] for term in moving))
+    parts = []
+    for term in moving:
+        if hasattr(term, "electric_field") and term.axis_of() == axis:
+            parts.append((term.ctx.charge, term.electric_field))
+        else:
+            parts.append((1.0, lambda t, term=term: float(term.force_at(t)[axis])))
+    if len(parts) == 1:
+        q, field = parts[0]
+        return lambda t: q * field(t)
+    return lambda t: sum(q * field(t) for q, field in parts)
 
 
 class VolkovIntegrals:
@@ -45,27 +56,30 @@ class VolkovIntegrals:
         self.force, self.mass, self.dt = force, float(mass), float(dt)
         self._t, self._y = 0.0, np.zeros(3)
 
-    def _rate(self, t, y):
-        p = y[0]
-        return np.array([self.force(t), p / self.mass, p * p / (2 * self.mass)])
-
     def at(self, t: float) -> np.ndarray:
-        """(P (hartree bohr^-1 atomic momentum), alpha (bohr), S (rad)) at ``t``."""
+        """(P (atomic momentum), alpha (bohr), S (rad)) at ``t``."""
         if t < self._t - 1e-12 * max(1.0, abs(t)):
             self._t, self._y = 0.0, np.zeros(3)
         span = t - self._t
         n = int(np.ceil(span / self.dt - 1e-9)) if span > 0 else 0
-        y, t0 = self._y, self._t
+        p, alpha, phase = (float(v) for v in self._y)
+        force, m, t0 = self.force, self.mass, self._t
+        h = span / n if n else 0.0
+        f_start = force(t0) if n else 0.0
+        # RK4 in plain floats (the forces are scalars; numpy's small arrays would cost more than the
+        # step's arithmetic); the force at a step's end is the next step's start: two evaluations a step
         for i in range(n):
-            h = span / n
             ti = t0 + i * h
-            k1 = self._rate(ti, y)
-            k2 = self._rate(ti + h / 2, y + h / 2 * k1)
-            k3 = self._rate(ti + h / 2, y + h / 2 * k2)
-            k4 = self._rate(ti + h, y + h * k3)
-            y = y + h / 6 * (k1 + 2 * k2 + 2 * k3 + k4)
-        self._t, self._y = t, y
-        return y.copy()
+            f_mid, f_end = force(ti + h / 2), force(ti + h)
+            p2 = p + h / 2 * f_start        # the P of the stages k2, k3, k4
+            p3 = p + h / 2 * f_mid
+            p4 = p + h * f_mid
+            alpha += h / 6 * (p + 2 * p2 + 2 * p3 + p4) / m
+            phase += h / 6 * (p * p + 2 * p2 * p2 + 2 * p3 * p3 + p4 * p4) / (2 * m)
+            p += h / 6 * (f_start + 4 * f_mid + f_end)
+            f_start = f_end
+        self._t, self._y = t, np.array([p, alpha, phase])
+        return self._y.copy()
 
     def in_job_units(self, t: float, conv: dict) -> dict:
         """The recorded values at ``t`` in the job's units (``conv``: the
