@@ -615,7 +615,6 @@ def _transmission(args) -> int:
 def _spectrum(args) -> int:
     # lazy: each command loads only what it needs (every command's start-up)
     import numpy as np
-
     from .analysis.surface_flux import spectrum
     from .io.paths import output_file
     from .viz.arrivals import FIGURE_TYPES

@@ -322,6 +322,7 @@ class ResultWriter:
                 v.units = f"{u['length']}-0.5"
                 v.long_name = f"{part} part of psi at the detector"
                 v.coordinates = "detector_x detector_axis"
+        if lay.get("detector_amplitude") and ndet and not surfaces:
             for part in ("real", "imag"):   # for the surface-flux spectrum (analysis.surface_flux)
                 v = self._var(f"detector_dpsi_{part}", "f8", ("time", *lead, "detector"))
                 v.units = f"{u['length']}-1.5"
