@@ -204,3 +204,36 @@ def test_a_driven_atom_spectrum_is_the_final_state_beyond_each_detector(tmp_path
         assert d["energy"][int(np.argmax(d["probability_density"]))] == pytest.approx(0.5, abs=0.05)
         assert d["still_to_come"] > 0
     assert any("still arriving" in w and "right" in w for w in out["warnings"])
+
+
+def test_t_of_e_goes_through_the_same_transform_unchanged():
+    """Item 3: transmission_from_samples calls time_transform; its psi~(E)
+    is the trapezoid sum written out, as it was before (to 1e-12)."""
+    from wavesweep.analysis.transmission import transmission_from_samples
+    t = np.arange(0.0, 80.0 + 1e-9, 0.25)
+    amp = np.exp(-((t - 30.0) ** 2) / 50.0 - 1.1j * t) * (1 + 0.1 * np.sin(0.3 * t))
+    k = np.linspace(1.2, 1.8, 31)
+    got = transmission_from_samples(t, amp, k, np.exp(-((k - 1.5) ** 2) / 0.02), 1.0, 0.0, 0.0)
+    weights = np.full(len(t), 0.25)
+    weights[0] = weights[-1] = 0.125
+    written_out = (np.exp(1j * np.outer(k**2 / 2, t)) @ (amp * weights)) / (2 * math.pi)
+    assert np.max(np.abs(got.energy_amplitude - written_out)) <= 1e-12 * np.max(np.abs(written_out))
+
+
+def test_the_plot_is_written_and_a_2d_run_is_refused_in_one_line(free_run, tmp_path, capsys):
+    figure = tmp_path / "spectrum.png"
+    assert main(["spectrum", str(free_run), "--plot", str(figure)]) == 0
+    assert figure.stat().st_size > 0
+    table = copy.deepcopy(FREE)
+    table["grid"] = {"x": {"min": -16.0, "max": 16.0, "points": 32}, "y": {"min": -16.0, "max": 16.0, "points": 32},
+                     "boundary": "periodic"}
+    table["packet"] = {"kind": "gaussian", "center": [-3.0, 0.0], "width": [1.5, 1.5], "momentum": [1.0, 0.0]}
+    table["absorber"] = {"kind": "none"}
+    table["evolve"]["duration"] = 1.0
+    table["record"] = {"every": 0.5, "snapshot_every": 1.0}
+    table["detector"] = [{"name": "d", "x": 5.0}]
+    path = _run(table, tmp_path / "2d")
+    capsys.readouterr()
+    assert main(["spectrum", str(path)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "1D" in err[0]
