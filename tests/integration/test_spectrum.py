@@ -78,14 +78,16 @@ def test_the_cli_prints_the_spectrum_as_json(free_run, capsys):
 
 def test_a_record_too_coarse_for_the_band_is_refused_with_the_sampling_that_would_do(tmp_path):
     """The trapezoid over samples dt_s apart is exact up to aliasing while
-    the band of local energies W arriving satisfies W dt_s < 2 pi (module
-    notes); here W ~ 2.4 hartree and dt_s = 4."""
+    what arrives lies in a band narrower than 2 pi / dt_s (module notes);
+    here the packet's energies reach 3.6 hartree and dt_s = 4 resolves up
+    to pi / 4: the aliased spectrum is still up there, refused with the
+    sampling that would do (pi / 3.6 = 0.87)."""
     table = copy.deepcopy(FREE)
     table["record"] = {"every": 4.0, "snapshot_every": 40.0}
     path = _run(table, tmp_path)
     with pytest.raises(JobError) as e:
         spectrum(path)
-    assert e.value.field == "record.every" and "use record.every <" in e.value.message
+    assert e.value.field == "record.every" and "use record.every < 0.85 au_time" in e.value.message
 
 
 def test_the_time_transform_is_exact_up_to_aliasing():
