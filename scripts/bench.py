@@ -628,6 +628,60 @@ def bench_adiabatic(repeats: int):
     return med
 
 
+def bench_spectrum(repeats: int):
+    """What the surface-flux spectrum adds to a 1D 4096-point run with a
+    driving field and two detectors, each against one Strang step; medians
+    over rounds.  Per sample it stores psi and dpsi/dx at the detectors (both
+    already computed for the flux: only the copy is new) and advances the
+    Volkov integrals (wavesweep.volkov) over the sample's steps (fourth-order
+    Runge-Kutta on the step: three force evaluations per step)."""
+    from wavesweep.observables import Observer
+    from wavesweep.volkov import VolkovIntegrals, uniform_force_along
+
+    grid = GRIDS["1D 4096"]
+    table = {
+        "grid": {**grid, "boundary": "periodic"},
+        "particle": {"charge": -1.0},
+        "potential": [{"kind": "soft_coulomb", "charge": 1.0, "softening": 1.41},
+                      {"kind": "field", "amplitude": 0.05, "omega": 1.0, "envelope": "sin2", "duration": 100.0}],
+        "packet": {"center": -5.0, "width": 2.0, "momentum": 1.0},
+        "evolve": {"dt": 0.05, "duration": 1.0},
+        "record": {"every": 0.05},
+        "detector": [{"name": "a", "x": 50.0}, {"name": "b", "x": -50.0}],
+    }
+    s = Setup(job_from_dict(table))
+    prop = s.make_propagator()
+    holder = {"psi": prop.step(prop.load(s.psi0), 2)}
+    observer = s.make_observer() if hasattr(s, "make_observer") else None
+    force = uniform_force_along(s.terms)
+
+    def step():
+        holder["psi"] = prop.step(holder["psi"], 10)
+
+    inner = 50
+    ratios = {"volkov": [], "observer": []}
+    for r in range(repeats):
+        one = timed(step, inner) / 10
+        vi = VolkovIntegrals(force, s.mass, s.dt)
+        clock = {"t": 0.0}
+
+        def advance():   # one step's share: the integrals advanced by dt
+            clock["t"] += s.dt
+            vi.at(clock["t"])
+
+        ratios["volkov"].append(timed(advance, 10 * inner) / one)
+        if observer is not None:
+            v = s.hamiltonian.static_potential
+            ratios["observer"].append(timed(lambda: observer.measure(holder["psi"], v), inner) / one)
+    med = {k: statistics.median(r) for k, r in ratios.items() if r}
+    print(f"surface-flux recording, 1D 4096 points, field + 2 detectors, medians over {repeats} rounds:")
+    print(f"  Volkov integrals, per step / Strang step: {med['volkov']:6.3f}x")
+    if "observer" in med:
+        print(f"  a whole sample (moments, energy, detector psi, dpsi, flux) / step: {med['observer']:6.3f}x "
+              "(psi and dpsi at the detectors were computed for the flux before; storing dpsi is new)")
+    return med
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--repeats", type=int, default=7)
@@ -644,7 +698,12 @@ def main():
                     help="record.adiabatic's populations and local basis against a two-surface step only")
     ap.add_argument("--surfaces-batch", action="store_true",
                     help="batched-study throughput on two coupled surfaces only (16 runs x 2048 points)")
+    ap.add_argument("--spectrum", action="store_true",
+                    help="what recording for the surface-flux spectrum adds to a 1D 4096 step only")
     args = ap.parse_args()
+    if args.spectrum:
+        bench_spectrum(3 if args.quick else args.repeats)
+        return
     if args.adiabatic:
         bench_adiabatic(3 if args.quick else args.repeats)
         return

@@ -56,7 +56,7 @@ def observables(grid, mass, psi, potential, detectors=(), psi0=None):
     """The recorded observables by their definitions: norm, <x>, std x,
     <p> = Im sum conj(psi) dpsi/dx dV / norm (spectral derivative), <H>,
     flux (hbar/m) Im(conj(psi) dpsi/dx) at each detector (spectral
-    interpolation, integrated over the other axes), psi at a 1D detector,
+    interpolation, integrated over the other axes), psi and dpsi/dx at a 1D detector,
     and <psi0|psi>."""
     from wavesweep.observables import spectral_derivative
     psi = np.asarray(psi, dtype=complex)
@@ -70,7 +70,7 @@ def observables(grid, mass, psi, potential, detectors=(), psi0=None):
     phi = transform(psi, grid)
     kin = np.sum(grid.kinetic_energy(mass) * np.abs(phi) ** 2) * grid.parseval_factor * dv
     out["energy"] = (kin + np.sum(potential * dens) * dv) / norm
-    flux, amp = [], []
+    flux, amp, slope = [], [], []
     for d in detectors:
         value, deriv = grid.axes[d.axis].interpolation_rows(d.position)
         others = [i for i in range(grid.ndim) if i != d.axis]
@@ -79,9 +79,11 @@ def observables(grid, mass, psi, potential, detectors=(), psi0=None):
         b = np.tensordot(deriv, phi, axes=([0], [d.axis]))
         flux.append(np.sum(np.conj(a) * b).imag * weight / mass)
         amp.append(complex(a) if a.ndim == 0 else complex("nan"))
+        slope.append(complex(b) if b.ndim == 0 else complex("nan"))
     out["flux"] = np.array(flux)
     if grid.ndim == 1:
         out["detector_psi"] = np.array(amp)
+        out["detector_dpsi"] = np.array(slope)
     if psi0 is not None:
         c = np.vdot(psi0, psi) * dv
         out["autocorrelation_real"], out["autocorrelation_imag"] = c.real, c.imag

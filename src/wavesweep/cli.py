@@ -213,6 +213,17 @@ def _parser() -> argparse.ArgumentParser:
     tr.add_argument("--detector", default=None, help="detector beyond the scatterer for T(E)")
     tr.add_argument("--json", action="store_true", help="print one JSON object")
 
+    sp = sub.add_parser("spectrum", help="momentum and energy spectra of what left through each detector (1D)",
+                        description="The surface-flux method (Tao & Scrinzi 2012): the momentum distribution of "
+                                    "what crossed each detector outwards by the end of the run, with a driving "
+                                    "field (Volkov phases) or without.  Slow parts still arriving at the end "
+                                    "are a warning with the probability still to come.")
+    sp.add_argument("result", metavar="RUN.nc")
+    sp.add_argument("--detector", default=None, help="only this detector")
+    sp.add_argument("--json", action="store_true", help="print one JSON object")
+    sp.add_argument("--plot", default=None, metavar="FILE", help="draw the spectra (.png/.pdf/.svg)")
+    sp.add_argument("--overwrite", action="store_true", help="replace FILE if it exists (without it an existing file is refused)")
+
     mv = sub.add_parser("movie", help="a movie of the probability density of a run (.mp4 or .gif); "
                                       "each surface's, on coupled surfaces")
     mv.add_argument("result", metavar="RUN.nc")
@@ -601,6 +612,35 @@ def _transmission(args) -> int:
     return EXIT_OK
 
 
+def _spectrum(args) -> int:
+    # lazy: each command loads only what it needs (every command's start-up)
+    import numpy as np
+    from .analysis.surface_flux import spectrum
+    from .io.paths import output_file
+    from .viz.arrivals import FIGURE_TYPES
+
+    if args.plot:   # before the spectra are computed
+        output_file(args.plot, "--plot", FIGURE_TYPES, overwrite=args.overwrite, kind="figure")
+    out = spectrum(args.result, args.detector)
+    if args.plot:
+        # lazy: as above
+        from .viz.spectrum import plot_spectrum
+        plot_spectrum(out, args.plot, title=_run_title(args.result), overwrite=args.overwrite)
+    if args.json:
+        print(json.dumps(_finite(out)))
+    else:
+        for d in out["detectors"]:
+            peak = int(np.argmax(d["probability_density"]))
+            come = "" if d["still_to_come"] is None else f"; still to come {d['still_to_come']:.3g}"
+            print(f"detector {d['detector']!r} (leaving to {d['side']}): total {d['total']:.6g}{come}; "
+                  f"peak at p = {d['momentum'][peak]:.4g} {d['momentum_units']} "
+                  f"(E = {d['energy'][peak]:.4g} {d['energy_units']})")
+        if args.plot:
+            print(f"figure: {args.plot}")
+    _warn("spectrum", out["warnings"])
+    return EXIT_OK
+
+
 def _surface_transmission(args, out) -> int:
     """``transmission`` on coupled surfaces: totals per surface and face, T(E) per final surface."""
     er, tot, surfaces = out["energy_resolved"], out["totals"], out["surfaces"]
@@ -813,7 +853,7 @@ def _keys(args) -> int:
 
 _COMMANDS = {"keys": _keys, "run": _run, "check": _check, "submit": _submit, "work": _work, "status": _status,
              "retry": _retry_or_cancel, "cancel": _retry_or_cancel, "collect": _collect,
-             "arrivals": _arrivals, "transmission": _transmission, "movie": _movie, "plot": _plot,
+             "arrivals": _arrivals, "transmission": _transmission, "spectrum": _spectrum, "movie": _movie, "plot": _plot,
              "levels": _levels}
 
 if __name__ == "__main__":  # pragma: no cover

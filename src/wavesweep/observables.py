@@ -9,7 +9,9 @@
   with psi and dpsi/dx at x_d by spectral interpolation along the detector's
   axis, integrated over the other axes (Parseval in transform space);
 * on a 1D (or radial) grid, psi(x_d) at each detector, the amplitude whose
-  time-energy Fourier transform gives energy-resolved transmission;
+  time-energy Fourier transform gives energy-resolved transmission, and
+  dpsi/dx there (both already computed for the flux), which with it gives
+  the surface-flux momentum spectrum (:mod:`wavesweep.analysis.surface_flux`);
 * autocorrelation <psi(0)|psi(t)>;
 * with a condensate's contact interaction g N |psi|^2 (:mod:`wavesweep.interaction`),
   the energy is the Gross-Pitaevskii functional per atom,
@@ -246,14 +248,16 @@ class Observer:
             p_mean = self._momentum_box(psi4, safe)
         flux = np.zeros((nb, len(self.detectors)))
         amp = np.full((nb, len(self.detectors)), complex("nan"))
+        slope = np.full((nb, len(self.detectors)), complex("nan"))
         groups = self._groups
         if self.frame is not None:   # the lab detectors the falling grid covers now
             covered = [(n, self.frame.covered(self.grid, d.axis, d.position, t)) for n, d in enumerate(self.detectors)]
             groups = self._detector_groups([(n, y) for n, y in covered if y is not None])
             self._density_at = np.zeros(len(self.detectors))
             amp[:] = 0.0
+            slope[:] = 0.0
         for group in groups:
-            self._at_detectors(phi4, group, flux, amp)
+            self._at_detectors(phi4, group, flux, amp, slope)
         out = []
         for b in range(nb):
             r = {"norm": float(norm[b]), "x_mean": float(x_rel[b] + self._x_origin),
@@ -264,6 +268,7 @@ class Observer:
                 r["chemical_potential"] = float(chemical[b])
             if self.records_amplitude:
                 r["detector_psi"] = amp[b].copy()
+                r["detector_dpsi"] = slope[b].copy()
             if self._psi0 is not None:
                 r["autocorrelation_real"] = float(dens[b, 4] * dv)
                 r["autocorrelation_imag"] = float(dens[b, 5] * dv)
@@ -289,7 +294,10 @@ class Observer:
         if "detector_psi" in r:   # 1D: psi(x_d) = exp(i [m u x_d + theta]) phi(x_d - X)
             theta = frame.phase(t)
             for n, det in enumerate(self.detectors):
-                r["detector_psi"][n] *= np.exp(1j * (m * u[0] * det.position + theta))
+                turn = np.exp(1j * (m * u[0] * det.position + theta))
+                if "detector_dpsi" in r:   # d/dx of the lab psi: the phase's slope m u times psi too
+                    r["detector_dpsi"][n] = turn * (r["detector_dpsi"][n] + 1j * m * u[0] * r["detector_psi"][n])
+                r["detector_psi"][n] *= turn
         r["frame_offset"] = np.array(x_off, float)
         return r
 
@@ -303,9 +311,9 @@ class Observer:
             out[b] = float(np.vdot(one, dpsi).imag) * self.dv / safe[b]
         return out
 
-    def _at_detectors(self, phi4, group, flux, amp):
-        """Fill ``flux[b, n]`` and ``amp[b, n]`` (psi at the detector; only
-        meaningful in 1D) for the detectors of one axis: psi(x_d) and
+    def _at_detectors(self, phi4, group, flux, amp, slope):
+        """Fill ``flux[b, n]``, ``amp[b, n]`` and ``slope[b, n]`` (psi and
+        dpsi/dx at the detector; only meaningful in 1D) for the detectors of one axis: psi(x_d) and
         psi'(x_d) are the interpolation rows times the coefficients along
         that axis, a matrix product over the view's last two axes."""
         axis, idx, rows, weight = group
@@ -325,3 +333,4 @@ class Observer:
             self._density_at[idx] = (a.real.astype(float) ** 2 + a.imag.astype(float) ** 2).reshape(m, -1).sum(axis=1) * weight
         if a[0, 0].size == 1:
             amp[:, idx] = a.reshape(m, self._nb).T
+            slope[:, idx] = d.reshape(m, self._nb).T

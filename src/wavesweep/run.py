@@ -36,6 +36,7 @@ from .kernels import density_of
 from .setup import AXIS_LONG, CoupledSetup, Setup, analysis_record, coupled_attributes, final_detector_values
 from .surfaces import PHASE_CONVENTION
 from .units import decimal_multiple
+from .volkov import VolkovIntegrals, uniform_force_along
 
 __all__ = ["Simulation", "RunBook", "run_job", "progress_bar"]
 
@@ -196,6 +197,12 @@ class Simulation:
         row["flux"] = values["flux"] * conv["flux"]
         if "detector_psi" in values:
             row["detector_psi"] = values["detector_psi"] * conv["amplitude"]
+        if "detector_dpsi" in values:   # |psi|^2 dx invariant: dpsi/dx scales as length^-3/2
+            row["detector_dpsi"] = values["detector_dpsi"] * conv["amplitude"] * conv["length"]
+        if self._driving_force() is not None:   # the field's momentum transfer and Volkov phases here
+            if book.volkov is None:
+                book.volkov = VolkovIntegrals(self._driving_force(), s.mass, s.dt)
+            row.update(book.volkov.in_job_units(t_au, conv))
         if "frame_offset" in values:
             row["frame_offset"] = values["frame_offset"] * conv["length"]
         book.writer.add_sample(self.job_time(t_au), row)
@@ -395,6 +402,15 @@ class Simulation:
         quarter of the bytes of psi in double, no other temporary)."""
         return density_of(psi, self.setup.units.factor("length") ** self.setup.grid.ndim, np.float32)
 
+    def _driving_force(self):
+        """F(t) along x of a 1D run in the lab under a time-dependent uniform
+        force (the ``field`` kind), for the surface-flux spectrum's Volkov
+        phases (:mod:`wavesweep.volkov`); None otherwise."""
+        s = self.setup
+        if self.coupled or s.frame is not None or s.grid.ndim != 1 or s.grid.radial:
+            return None
+        return uniform_force_along(s.terms)
+
     def _layout(self) -> dict:
         s = self.setup
         lf = s.units.factor("length")
@@ -417,6 +433,7 @@ class Simulation:
             "autocorrelation": s.frame is None and not self.coupled,   # coupled surfaces: not recorded yet
             "scalars": s.scalars,
             "detector_amplitude": s.grid.ndim == 1,
+            "volkov": self._driving_force() is not None,   # field_momentum/excursion/phase per sample
             "snapshot_psi": bool(s.job.table["record"].get("snapshot_psi")),
             # record.column: (axis index, its spacing in the job's length unit)
             "column": (None if s.job.table["record"].get("column") is None else
@@ -472,6 +489,7 @@ class RunBook:
 
     warnings: list = []
     edge = None
+    volkov = None     # VolkovIntegrals of a driven 1D run, made at its first sample
 
     def __init__(self, path, writer, store, policy, psi, steps, absorbed, wall_before, fresh):
         self.path, self.writer, self.store, self.policy = path, writer, store, policy

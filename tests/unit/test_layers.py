@@ -23,7 +23,7 @@ LAYERS = [
     ("foundation", ["_version", "errors", "registry", "units", "schema", "io.paths", "io.diskspace", "io.atomic"]),
     ("kernels", ["kernels", "kernels.*"]),
     ("numerics", ["grid", "fft", "marginals", "hamiltonian", "potentials", "potentials.*", "eigen",
-                  "absorbers", "absorbers.*", "interaction", "imaginary_time", "frame", "surfaces", "states", "propagators", "propagators.*", "observables"]),
+                  "absorbers", "absorbers.*", "interaction", "imaginary_time", "frame", "surfaces", "states", "propagators", "propagators.*", "observables", "volkov"]),
     ("adequacy", ["adequacy"]),
     ("job", ["job", "job.*"]),
     ("io", ["io", "io.record", "io.results", "io.recorder", "io.checkpoint"]),

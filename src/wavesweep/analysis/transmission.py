@@ -117,6 +117,7 @@ from typing import NamedTuple
 
 import numpy as np
 
+from .surface_flux import time_transform
 from ..adequacy import reachable_surfaces, run_warnings
 from ..errors import JobError
 from ..io.results import open_result, result_units, source_name
@@ -581,11 +582,8 @@ def transmission_from_samples(time, psi_detector, wave_number, momentum_density,
     kinetic_final = energy - final_potential
     v_final = np.sqrt(np.maximum(2 * kinetic_final / mass, 0.0))
     dt_rec = float(np.median(np.diff(t)))
-    wq = np.full(len(t), dt_rec)          # trapezoid weights
-    wq[0] = wq[-1] = dt_rec / 2
-    if not np.allclose(np.diff(t), dt_rec, rtol=1e-6, atol=0):
-        wq = np.gradient(t)                 # uneven samples (a resumed run is still even)
-    amp_e = (np.exp(1j * np.outer(energy, t)) @ (amp * wq)) / (2 * math.pi)
+    # the field-free case of the surface-flux transform (one implementation: surface_flux.time_transform)
+    amp_e = time_transform(t, amp, np.outer(energy, t))
     to_T = 2 * math.pi * v_in * v_final / density     # |amplitude per energy|^2 -> T
     T = to_T * np.abs(amp_e) ** 2
     T[~(kinetic_final > 0)] = 0.0

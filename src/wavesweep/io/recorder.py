@@ -322,6 +322,21 @@ class ResultWriter:
                 v.units = f"{u['length']}-0.5"
                 v.long_name = f"{part} part of psi at the detector"
                 v.coordinates = "detector_x detector_axis"
+        if lay.get("detector_amplitude") and ndet and not surfaces:
+            for part in ("real", "imag"):   # for the surface-flux spectrum (analysis.surface_flux)
+                v = self._var(f"detector_dpsi_{part}", "f8", ("time", *lead, "detector"))
+                v.units = f"{u['length']}-1.5"
+                v.long_name = f"{part} part of dpsi/dx at the detector"
+                v.coordinates = "detector_x detector_axis"
+        if lay.get("volkov"):   # a driving (uniform) force along the first axis: see wavesweep.volkov
+            for name, unit, long in (("field_momentum", u["momentum"], "momentum the uniform forces gave, "
+                                      "int_0^t F dt (-q A(t))"),
+                                     ("field_excursion", u["length"], "classical excursion int_0^t "
+                                      "field_momentum / m dt"),
+                                     ("field_phase", "1", "ponderomotive phase int_0^t field_momentum^2 / 2m dt "
+                                      "(per hbar)")):
+                v = self._var(name, "f8", ("time",))
+                v.units, v.long_name = unit, long
         if lay.get("frame_axes"):   # a falling grid: lab position = grid coordinate + frame_offset
             self._define_frame_offset(lay["frame_axes"], u)
         a = self._var("absorbed", "f8", ("time", *lead, "boundary"))
@@ -491,6 +506,13 @@ class ResultWriter:
                 amp = np.array([b["detector_psi"] for b in self._buf])
                 ds["detector_psi_real"][i0:i0 + n, ...] = amp.real
                 ds["detector_psi_imag"][i0:i0 + n, ...] = amp.imag
+            if "detector_dpsi_real" in ds.variables and "detector_dpsi" in self._buf[0]:
+                slope = np.array([b["detector_dpsi"] for b in self._buf])
+                ds["detector_dpsi_real"][i0:i0 + n, ...] = slope.real
+                ds["detector_dpsi_imag"][i0:i0 + n, ...] = slope.imag
+        for key in ("field_momentum", "field_excursion", "field_phase"):
+            if key in ds.variables and key in self._buf[0]:
+                ds[key][i0:i0 + n] = np.array([b[key] for b in self._buf])
         if len(self.layout["faces"]):
             ds["absorbed"][i0:i0 + n, ...] = np.array([b["absorbed"] for b in self._buf])
         if "frame_offset" in ds.variables and "frame_offset" in self._buf[0]:

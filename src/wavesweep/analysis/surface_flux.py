@@ -1,0 +1,352 @@
+"""Momentum spectra of what leaves through a detector, by the time-dependent
+surface-flux method (L. Tao and A. Scrinzi, New J. Phys. 14, 013021 (2012)),
+valid with a driving field (1D; atomic units, hbar = 1, charge q).
+
+Derivation.  Let a uniform force F(t) = q E(t) act (length gauge, V = -q E x;
+the ``field`` potential kind), A(t) = -int_0^t E dt', P(t) = -q A(t) the
+momentum it gave (:mod:`wavesweep.volkov`).  The length-gauge Volkov state of
+canonical momentum k,
+
+    chi_k(x, t) = (2 pi)^(-1/2) exp(i (k - q A) x - i Phi_k(t)),
+    Phi_k(t) = int_0^t (k - q A)^2 / 2m dt' = k^2 t / 2m + k alpha(t) + S(t),
+
+solves i d_t chi = [p^2 / 2m - q E x] chi (check: i d_t of the exponent gives
+q A' x + (k - qA)^2 / 2m with A' = -E).  Beyond the detector x_d the
+potential is that field alone, so chi_k are the outgoing states there and,
+with Theta = Theta(x - x_d),
+
+    b(k, t) = <chi_k(t)| Theta |psi(t)>,
+    d_t b = i <chi_k| [H, Theta] |psi> = i <chi_k| [T, Theta] |psi>
+
+(H = T + V(x, t) and V commutes with Theta).  [T, Theta] psi = -(1/2m)
+(delta' psi + 2 delta psi'), and an integration by parts with
+d_x chi_k^* = -i (k - qA) chi_k^* gives
+
+    d_t b = -(i / 2m) chi_k^*(x_d, t) [d_x psi + i (k - q A) psi](x_d, t),
+    b(k) = b(k, 0) - (i / 2m) int_0^T dt chi_k^*(x_d, t) [d_x psi + i (k - qA) psi](x_d, t).
+
+For the other side (Theta(x_d - x)) the sign of the integral flips.  b(k, 0)
+is the initial state beyond the detector projected on plane waves (A(0) = 0).
+|b(k)|^2 is the probability per unit canonical momentum k of what has crossed
+the detector by T; after the pulse (A(T) = 0) k is the final momentum; the
+momentum reported is the kinetic momentum at the end, p = k - q A(T).  The
+kinetic energy is p^2 / 2m (the potential beyond the detector is taken as 0:
+where it is not, plane waves are not the outgoing states, and a warning says
+so); per energy the density is |b|^2 m / |p|.
+
+Sampling.  The run records psi(x_d) and d_x psi(x_d) at every sample
+(``detector_psi``, ``detector_dpsi``; both were already computed for the flux,
+so recording them adds no work per step, only two numbers per detector and
+sample) and P, alpha, S (driven runs).  The time integral is the trapezoidal
+sum over the samples.  Beyond the detector psi(x_d, t) = int dk' c(k')
+exp(-i Phi_k'(t)) ..., so the integrand for k oscillates at frequencies
+Phi_k' - Phi_k; the sum over samples dt_s apart reproduces int exp(i w t) dt
+exactly up to the aliases w + 2 pi n / dt_s, n != 0 (the Poisson summation
+formula), which miss the spectrum when every |w| < 2 pi / dt_s.  Bound and
+slow parts at the detector (energies from V_min up) are there too, so the
+spectrum is computed up to the energy pi / dt_s only, and a record whose
+spectrum is still above BAND_FLOOR of its peak at that energy (an aliased
+one fills the range) is refused with the record.every that would do: per
+sample, not per step, is then exact to rounding (the field-free case is
+energy-resolved transmission's transform: :func:`time_transform` is the
+one both call).  A record cut while parts still arrive leaves the
+trapezoid's end error (Euler-Maclaurin), which :func:`_end_correction`
+removes to leading order.
+
+Split-step sidebands.  The split-operator step is periodic in time: a
+potential with sharp features couples E to E + 2 pi / dt, a wave the grid
+carries where 2 pi / dt is below its largest energy; d_x psi weighs it by its
+large k, so a warning names the dt that keeps it off the grid.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from ..errors import JobError
+from ..io.record import layer_holding
+from .recorded import run_record as read_record
+from ..io.results import open_result, result_units, source_name
+
+__all__ = ["time_transform", "trapezoid_weights", "surface_flux_amplitude", "momentum_spectrum", "spectrum",
+           "BAND_FLOOR", "STILL_TO_COME_WARN"]
+
+BAND_FLOOR = 1e-8          # |psi(x_d)|^2 above this fraction of its peak sets the band W
+STILL_TO_COME_WARN = 1e-3  # a fraction still to come above this (of what crossed) is a warning
+SPECTRUM_FLOOR = 1e-6      # the momenta reported: where the density is above this fraction of its peak
+VARIES = 1e-3              # V counts as varying where it differs from V(x_d) by this fraction of <E_kin>
+
+
+def trapezoid_weights(time) -> np.ndarray:
+    """Trapezoid weights of the samples ``time`` (np.gradient's for uneven ones)."""
+    t = np.asarray(time, float)
+    dt_rec = float(np.median(np.diff(t)))
+    wq = np.full(len(t), dt_rec)
+    wq[0] = wq[-1] = dt_rec / 2
+    if not np.allclose(np.diff(t), dt_rec, rtol=1e-6, atol=0):
+        wq = np.gradient(t)                 # uneven samples (a resumed run is still even)
+    return wq
+
+
+def time_transform(time, samples, phase) -> np.ndarray:
+    """(1 / 2 pi) int f(t) exp(i phase(t)) dt by the trapezoid over the
+    samples: ``samples`` f(t_n) (N,), ``phase`` (K, N) radians per output
+    row; returns (K,).  Energy-resolved transmission's psi~(E) is the case
+    phase = E t (``transmission_from_samples``); the surface-flux amplitude
+    the case phase = Phi_k(t) (:func:`surface_flux_amplitude`)."""
+    amp = np.asarray(samples, complex)
+    return (np.exp(1j * phase) @ (amp * trapezoid_weights(time))) / (2 * math.pi)
+
+
+def surface_flux_amplitude(time, psi_detector, dpsi_detector, momentum, mass, x_detector, side=1.0,
+                           field_momentum=None, excursion=None, field_phase=None, initial=None) -> np.ndarray:
+    """b(k) of the module notes (atomic units): the amplitude per unit
+    canonical momentum ``momentum`` k (bohr^-1) of what crossed the detector
+    at ``x_detector`` (bohr) towards ``side`` (+1: to larger x, -1: smaller)
+    between the first and last of ``time``, from psi and dpsi/dx there
+    (bohr^-1/2, bohr^-3/2).  ``field_momentum`` P(t) = -q A(t),
+    ``excursion`` alpha(t) = int P / m and ``field_phase`` S(t) = int P^2 / 2m
+    at the samples (None: no field); ``initial``: b(k, 0) (None: 0)."""
+    t = np.asarray(time, float)
+    k = np.asarray(momentum, float)
+    psi = np.asarray(psi_detector, complex)
+    dpsi = np.asarray(dpsi_detector, complex)
+    zero = np.zeros_like(t)
+    p_t = zero if field_momentum is None else np.asarray(field_momentum, float)
+    alpha = zero if excursion is None else np.asarray(excursion, float)
+    s_t = zero if field_phase is None else np.asarray(field_phase, float)
+    # chi_k^*(x_d, t) = (2 pi)^(-1/2) exp(-i k x_d) exp(i (k^2 t / 2m + k alpha)) exp(i (S - P x_d))
+    g = np.exp(1j * (s_t - p_t * x_detector))
+    phase = np.outer(k**2 / (2 * mass), t) + np.outer(k, alpha)
+    slope_samples, value_samples = g * (dpsi + 1j * p_t * psi), g * psi
+    slope_part = time_transform(t, slope_samples, phase)
+    value_part = time_transform(t, value_samples, phase)
+    # 2 pi from time_transform's 1 / 2 pi, (2 pi)^(-1/2) from chi
+    integral = 2 * math.pi * (slope_part + 1j * k * value_part)
+    integral -= _end_correction(t, slope_samples, value_samples, k, p_t, alpha, mass)
+    integral = integral * np.exp(-1j * k * x_detector) / math.sqrt(2 * math.pi)
+    b = -side * 1j / (2 * mass) * integral
+    return b if initial is None else b + initial
+
+
+def _end_correction(t, slope_samples, value_samples, k, p_t, alpha, mass) -> np.ndarray:
+    """The trapezoid's leading error on the record's window, (dt^2 / 12)
+    (f'(t_N) - f'(t_0)) (Euler-Maclaurin; e.g. Abramowitz & Stegun 25.4.32,
+    from memory), for f(t) = exp(i Phi_k(t)) h_k(t), h_k = slope + i k value:
+    the record is cut while what is slow still arrives, and the sum is exact
+    only for a whole band-limited signal.  f' = exp(i Phi_k) (i Phi_k' h_k +
+    h_k') with S and P held in h_k (Phi_k' taken exactly), h_k' by second-order one-sided
+    differences of the samples.  Zero for uneven samples (a correction
+    the trapezoid's np.gradient weights do not define)."""
+    if len(t) < 3:
+        return np.zeros(len(k), complex)
+    dt = float(np.median(np.diff(t)))
+    if not np.allclose(np.diff(t), dt, rtol=1e-6, atol=0):
+        return np.zeros(len(k), complex)
+    def h(i):
+        return slope_samples[i] + 1j * k * value_samples[i]
+
+    rate_end = k**2 / (2 * mass) + k * p_t[-1] / mass     # d/dt (k^2 t / 2m + k alpha); S, P sit in h
+    rate_start = k**2 / (2 * mass) + k * p_t[0] / mass
+    dh_end = (3 * h(-1) - 4 * h(-2) + h(-3)) / (2 * dt)
+    dh_start = -(3 * h(0) - 4 * h(1) + h(2)) / (2 * dt)
+    f_end = np.exp(1j * (k**2 * t[-1] / (2 * mass) + k * alpha[-1])) * (1j * rate_end * h(-1) + dh_end)
+    f_start = np.exp(1j * (k**2 * t[0] / (2 * mass) + k * alpha[0])) * (1j * rate_start * h(0) + dh_start)
+    out = f_end - f_start
+    return dt**2 / 12 * out
+
+
+def _beyond_projection(psi0, x, x_detector, side, k) -> np.ndarray:
+    """b(k, 0) = (2 pi)^(-1/2) sum_{x beyond x_d} exp(-i k x) psi0 dx."""
+    part = np.where(side * (x - x_detector) > 0, psi0, 0.0)
+    if not np.any(part):
+        return np.zeros(len(k), complex)
+    dx = x[1] - x[0]
+    out = np.empty(len(k), complex)
+    for i in range(0, len(k), 256):
+        out[i:i + 256] = np.exp(-1j * np.outer(k[i:i + 256], x)) @ part * dx / math.sqrt(2 * math.pi)
+    return out
+
+
+def _initial_band(psi0, x, mass) -> float:
+    """The largest kinetic energy (hartree) in psi0 above BAND_FLOOR of its peak momentum density."""
+    dens = np.abs(np.fft.fft(psi0)) ** 2
+    k = 2 * math.pi * np.fft.fftfreq(len(x), x[1] - x[0])
+    return float(np.max(k[dens > BAND_FLOOR * dens.max()] ** 2)) / (2 * mass)
+
+
+def local_band(psi_detector, dpsi_detector, mass, highest: bool = False) -> float:
+    """The spread (or with ``highest`` the largest) of the local kinetic
+    energies (Im(psi'/psi))^2 / 2m at the detector (hartree) over the samples
+    where |psi|^2 is above BAND_FLOOR of its peak."""
+    psi = np.asarray(psi_detector, complex)
+    dens = np.abs(psi) ** 2
+    keep = dens > BAND_FLOOR * dens.max()
+    k_loc = (np.asarray(dpsi_detector, complex)[keep] / psi[keep]).imag
+    e_loc = k_loc**2 / (2 * mass)
+    if not e_loc.size:
+        return 0.0
+    return float(e_loc.max()) if highest else float(e_loc.max() - e_loc.min())
+
+
+def momentum_spectrum(ds, setup, j: int, points: int = 401) -> dict:
+    """The spectrum through detector ``j`` of an open result (atomic units
+    inside, job units out); see :func:`spectrum`."""
+    uc = result_units(ds)
+    p_unit = uc["mass"] * uc["length"] / uc["time"]   # job momentum unit in atomic units
+    name = str(ds["detector"].values[j])
+    x = setup.grid.axes[0].coordinates
+    x_d = setup.detectors[j].position
+    dens0 = np.abs(setup.psi0) ** 2
+    x0 = float(np.sum(dens0 * x) / np.sum(dens0))
+    side = 1.0 if x_d >= x0 else -1.0
+    mass = setup.mass
+    t = np.asarray(ds["time"].values, float) * uc["time"]
+    amp_scale = 1 / math.sqrt(uc["length"])
+    psi = (np.asarray(ds["detector_psi_real"].values[:, j], float)
+           + 1j * np.asarray(ds["detector_psi_imag"].values[:, j], float)) * amp_scale
+    dpsi = (np.asarray(ds["detector_dpsi_real"].values[:, j], float)
+            + 1j * np.asarray(ds["detector_dpsi_imag"].values[:, j], float)) * amp_scale / uc["length"]
+    field = {}
+    if "field_momentum" in ds.variables:
+        field = {"field_momentum": np.asarray(ds["field_momentum"].values, float) * p_unit,
+                 "excursion": np.asarray(ds["field_excursion"].values, float) * uc["length"],
+                 "field_phase": np.asarray(ds["field_phase"].values, float)}
+    dt_s = float(np.median(np.diff(t)))
+    # momenta: outward, up to the energy pi / dt_s (what lies between it and V_min + 2 pi / dt_s is where
+    # the aliases of slow and bound parts fall) and what the grid holds
+    k_grid = math.pi / setup.grid.axes[0].dx
+    k_top = min(math.sqrt(2 * mass * math.pi / dt_s), k_grid)
+    p_end = float(field["field_momentum"][-1]) if field else 0.0
+    coarse = side * np.linspace(0.0, k_top, 2048)[1:] - p_end
+    b0 = lambda k: _beyond_projection(setup.psi0, x, x_d, side, k)   # noqa: E731
+    dens_c = np.abs(surface_flux_amplitude(t, psi, dpsi, coarse, mass, x_d, side, initial=b0(coarse), **field)) ** 2
+    if not np.any(dens_c > 0):
+        raise JobError("--detector", f"nothing crossed detector {name!r} outwards during the run")
+    # the band (module notes): an aliased spectrum fills the whole range it is computed on, so one still
+    # above BAND_FLOOR of its peak at the top of a range the samples (not the grid) limit is refused
+    top = dens_c[-len(dens_c) // 20:].max()
+    v_min = min(float(np.min(setup.static_potential)), 0.0)
+    if (k_top < k_grid and top > BAND_FLOOR * dens_c.max()) or -v_min * dt_s >= math.pi:
+        highest = max(local_band(psi, dpsi, mass, highest=True), _initial_band(setup.psi0, x, mass)) - v_min
+        need = min(math.pi / highest, dt_s / 2) / uc["time"]
+        raise JobError("record.every", f"{source_name(ds)}: samples {dt_s / uc['time']:g} {uc['time_label']} "
+                                       f"apart alias the band of energies arriving at detector {name!r} (the "
+                                       f"spectrum is still {top / dens_c.max():.1e} of its peak at the "
+                                       f"{k_top * k_top / (2 * mass) / uc['energy']:.3g} {uc['energy_label']} "
+                                       f"they resolve); use record.every < {need:.3g} {uc['time_label']}")
+    kept = coarse[dens_c > SPECTRUM_FLOOR * dens_c.max()]
+    lo, hi = np.abs(kept + p_end).min(), np.abs(kept + p_end).max()
+    step = k_top / 2047
+    lo, hi = max(lo - 2 * step, 0.0), min(hi + 2 * step, k_top)
+    p_kin = side * np.linspace(lo, hi, points)
+    k = p_kin - p_end
+    b = surface_flux_amplitude(t, psi, dpsi, k, mass, x_d, side, initial=b0(k), **field)
+    density = np.abs(b) ** 2                       # per bohr^-1
+    total = float(np.trapezoid(density, np.abs(p_kin)))
+    energy = p_kin**2 / (2 * mass)
+    energy_density = density * mass / np.maximum(np.abs(p_kin), 1e-300)
+    warnings = []
+    v_static = np.asarray(setup.static_potential, float)
+    e_mean = float(np.trapezoid(density * energy, np.abs(p_kin)) / total) if total > 0 else 0.0
+    v_d = float(np.interp(x_d, x, v_static))
+    if abs(v_d) > VARIES * max(e_mean, 1e-300):
+        warnings.append(f"V at detector {name!r} is {v_d / uc['energy']:.3g} {uc['energy_label']}, not 0: plane "
+                        "waves are not the outgoing states there and the energies are off by about that much; "
+                        "place the detector where V vanishes")
+    step = float(ds.attrs.get("dt", 0.0)) * uc["time"]
+    e_grid = (math.pi / setup.grid.axes[0].dx) ** 2 / (2 * mass)
+    if step > 0 and 2 * math.pi / step < e_grid:
+        # the split step is periodic in time: a potential with sharp features couples E to E + 2 pi / dt,
+        # a wave the grid can carry; d psi / dx weighs it by its large k (measured: 3 % off at dx = 1/16 with
+        # a rectangular barrier and dt = 0.005, 7e-4 at dt = 0.004)
+        warnings.append(f"evolve.dt lets the split step's sidebands (E + 2 pi hbar / dt) travel on the grid, "
+                        f"which the surface flux counts; evolve.dt < {2 * math.pi / e_grid / uc['time']:.3g} "
+                        f"{uc['time_label']} keeps them off it")
+    to_come = _still_to_come(ds, uc, x, v_static, x_d, side, e_mean)
+    if to_come is not None and total > 0 and to_come > STILL_TO_COME_WARN * total:
+        warnings.append(f"the run ended while slow parts were still arriving at detector {name!r}: "
+                        f"{to_come:.3g} more probability (against {total:.3g} that crossed) lies before it "
+                        "moving towards it; extend evolve.duration for the low momenta")
+    return {"detector": name, "side": "+" if side > 0 else "-",
+            "momentum": p_kin / p_unit, "probability_density": density * p_unit,
+            "energy": energy / uc["energy"], "energy_density": energy_density * uc["energy"],
+            "total": total, "still_to_come": to_come,
+            "momentum_units": _momentum_label(ds, uc), "energy_units": uc["energy_label"],
+            "warnings": warnings}
+
+
+def _momentum_label(ds, uc) -> str:
+    """The job's momentum unit as the run labelled its own momenta (p_mean)."""
+    if "p_mean" in ds.variables and "units" in ds["p_mean"].attrs:
+        return str(ds["p_mean"].attrs["units"])
+    return f"{ds.attrs.get('units_mass', 'm_e')} {uc['length_label']} {uc['time_label']}-1"
+
+
+def _still_to_come(ds, uc, x, v_static, x_d, side, e_mean) -> float | None:
+    """The final state's probability before the detector, where V is flat up
+    to it, moving towards it (None without a final state).  What is still
+    inside the region where V varies (a bound part, a slow fragment being
+    turned) is not counted: a lower estimate of what is to come."""
+    if "psi_real" not in ds:
+        return None
+    psi = (np.asarray(ds["psi_real"].values, float) + 1j * np.asarray(ds["psi_imag"].values, float)) \
+        / math.sqrt(uc["length"])
+    before = side * (x_d - x) > 0
+    v_d = float(np.interp(x_d, x, v_static))
+    varies = before & (np.abs(v_static - v_d) > VARIES * max(e_mean, 1e-300))
+    inner = float(x[varies][np.argmin(side * (x_d - x[varies]))]) if varies.any() else None
+    region = before if inner is None else before & (side * (x - inner) > 0)
+    part = np.where(region, psi, 0.0)
+    if not np.any(part):
+        return 0.0
+    dx = x[1] - x[0]
+    phi = np.fft.fft(part) * dx / math.sqrt(2 * math.pi)
+    k = 2 * math.pi * np.fft.fftfreq(len(x), dx)
+    dk = 2 * math.pi / (len(x) * dx)
+    return float(np.sum(np.abs(phi[side * k > 0]) ** 2) * dk)
+
+
+def spectrum(result, detector: str | None = None, points: int = 401) -> dict:
+    """Momentum and energy spectra of what left through each detector of a
+    1D run (or ``detector`` alone): ``{"detectors": [...], "warnings": [...]}``,
+    each detector's entry with ``momentum`` (the normal component, job units),
+    ``probability_density`` (per unit momentum), ``energy``, ``energy_density``
+    (per unit energy), ``total`` and ``still_to_come`` (probability; None
+    without a final state).  JobError where the run cannot give one."""
+    ds = open_result(result, require=("time", "flux"))
+    try:
+        setup = read_record(ds)
+        if setup.grid.ndim != 1 or setup.grid.radial:
+            raise JobError("RUN.nc", f"{source_name(ds)}: momentum spectra are given for 1D cartesian runs only "
+                                     "so far")
+        if "frame_offset" in ds.variables:
+            raise JobError("RUN.nc", f"{source_name(ds)}: the run's grid fell with the packet; the spectrum needs "
+                                     "a grid fixed in the lab (grid.frame = 'lab')")
+        if "detector_dpsi_real" not in ds:
+            raise JobError("RUN.nc", f"{source_name(ds)}: the run did not record dpsi/dx at its detectors "
+                                     "(written by an older version); run the job again")
+        if setup.time_dependent and "field_momentum" not in ds:
+            raise JobError("RUN.nc", f"{source_name(ds)}: the potential depends on time but not through a "
+                                     "uniform field; the surface-flux spectrum needs V beyond the detector to be "
+                                     "a driving field at most")
+        names = [str(d) for d in ds["detector"].values]
+        if not names:
+            raise JobError("RUN.nc", f"{source_name(ds)}: the run has no detector; add a [[detector]]")
+        if detector is not None:
+            if detector not in names:
+                raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
+            chosen = [names.index(detector)]
+        else:
+            chosen = [j for j in range(len(names))
+                      if layer_holding(setup, 0, setup.detectors[j].position) is None]
+        out = {"detectors": [], "warnings": []}
+        for j in chosen:
+            found = momentum_spectrum(ds, setup, j, points)
+            out["warnings"].extend(found.pop("warnings"))
+            out["detectors"].append(found)
+        return out
+    finally:
+        if ds is not result:
+            ds.close()
