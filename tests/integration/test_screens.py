@@ -184,3 +184,26 @@ def test_cli_arrivals_json_carries_the_pattern(screen_result, tmp_path):
     assert out.returncode == 0
     pattern = json.loads(out.stdout)["detectors"]["screen"]["pattern"]
     assert pattern["axis"] == "y" and len(pattern["position"]) == len(pattern["probability"]) == 64
+
+
+def test_the_run_figure_draws_the_pattern_and_the_movie_marks_the_screen(screen_result):
+    from wavesweep.viz.movie import MovieOptions, painter_for
+    from wavesweep.viz.scene import FrameReader, read_scene
+    from wavesweep.viz.summary import run_figure
+
+    fig = run_figure(screen_result)
+    panel = next(ax for ax in fig.axes if ax.get_title(loc="left").startswith("what arrived where"))
+    with xr.open_dataset(screen_result) as ds:
+        x, y = panel.lines[0].get_data()
+        np.testing.assert_array_equal(x, ds["y"].values)
+        np.testing.assert_array_equal(y, ds["screen_probability"].values[0])
+    scene = read_scene(screen_result)
+    assert scene.screens == ["screen"]
+    painter = painter_for(scene, MovieOptions(size=(640, 360)))
+    with FrameReader(scene.path) as reader:
+        painter.prepare(reader, [0])
+    labels = [t.get_text().strip() for ax in painter.fig.axes for t in ax.texts]
+    assert "screen (screen)" in labels and "plain" in labels   # the screen named apart from the plain detector
+    widths = {ln.get_linestyle(): ln.get_linewidth() for ax in painter.fig.axes for ln in ax.lines
+              if ln.get_color() == "#D55E00"}
+    assert widths["-"] > widths["--"]   # the screen solid and heavier, the plain detector dashed
