@@ -207,3 +207,19 @@ def test_the_run_figure_draws_the_pattern_and_the_movie_marks_the_screen(screen_
     widths = {ln.get_linestyle(): ln.get_linewidth() for ax in painter.fig.axes for ln in ax.lines
               if ln.get_color() == "#D55E00"}
     assert widths["-"] > widths["--"]   # the screen solid and heavier, the plain detector dashed
+
+
+def test_check_warns_when_the_samples_do_not_resolve_the_flux_through_a_screen():
+    from conftest import setup_of
+    from wavesweep.adequacy import assess
+
+    def warned(table):
+        return [f for f in assess(setup_of(table)) if f.field == "record.every" and "resolved" in f.message]
+
+    assert warned(FREE_2D) == []                 # every 0.05 against a passage of ~0.36 (2 bohr at 5.5 bohr/au)
+    coarse = copy.deepcopy(FREE_2D)
+    coarse["record"]["every"] = 1.0
+    (finding,) = warned(coarse)
+    assert finding.level == "warn" and finding.values["passing_time"] == pytest.approx(2.0 / 5.5, rel=0.05)
+    del coarse["detector"][0]["resolved"]
+    assert warned(coarse) == []                  # a plain detector's total flux: as before
