@@ -223,3 +223,35 @@ def test_check_warns_when_the_samples_do_not_resolve_the_flux_through_a_screen()
     assert finding.level == "warn" and finding.values["passing_time"] == pytest.approx(2.0 / 5.5, rel=0.05)
     del coarse["detector"][0]["resolved"]
     assert warned(coarse) == []                  # a plain detector's total flux: as before
+
+
+SHORT_2D = {**copy.deepcopy(FREE_2D), "evolve": {"dt": 0.05, "duration": 5.0, "scheme": "strang"},
+            "record": {"every": 0.1, "snapshot_every": 2.5, "stride": 2}}
+
+
+def test_a_resumed_run_integrates_every_sample_of_its_screen(tmp_path):
+    from test_checkpoint import NEVER, assert_same_result, run, stop_after
+    from wavesweep.io.checkpoint import CheckpointPolicy
+    from wavesweep.errors import RunInterrupted
+
+    ref = run(SHORT_2D, tmp_path / "ref.nc")
+    policy = CheckpointPolicy(tmp_path / "run.ckpt", every_seconds=NEVER)
+    out = tmp_path / "out" / "result.nc"
+    with pytest.raises(RunInterrupted):
+        run(SHORT_2D, out, checkpoint=policy, should_stop=stop_after(30))   # stopped mid-crossing
+    assert run(SHORT_2D, out, checkpoint=policy) == out
+    assert_same_result(ref, out)   # screen_flux and screen_probability included
+
+
+def test_batch_members_record_the_screens_of_their_solo_runs(tmp_path):
+    from test_batched import members
+    from wavesweep.batched import BatchedRun
+
+    jobs = members(SHORT_2D, [3.5, 4.0])
+    solo = [Simulation(j).run(tmp_path / "solo", progress=False) for j in jobs]
+    out = BatchedRun(jobs).run([tmp_path / "batch" / p.name for p in solo])
+    for a, b in zip(solo, out):
+        with xr.open_dataset(a) as one, xr.open_dataset(b) as two:
+            assert two["screen_flux"].shape[1:] == (1, 32)
+            for name in ("flux", "screen_flux", "screen_probability"):
+                np.testing.assert_allclose(two[name].values, one[name].values, rtol=0, atol=1e-12, err_msg=name)
