@@ -306,8 +306,8 @@ class Observer:
 
     def _screen_profile(self, a, d, normal: int) -> np.ndarray:
         """The flux density J_n = (hbar/m) Im(conj(psi) dpsi/dn) along a
-        resolved detector (hartree-free atomic units: probability per bohr^(d-1)
-        per atomic time unit), per member and transverse point, every
+        resolved detector (atomic units: probability per bohr^(d-1) per
+        atomic unit of time), per member and transverse point, every
         ``stride``-th point of each transverse axis: shape (members, *transverse).
 
         ``a``, ``d``: psi and dpsi/dn on the detector (already interpolated

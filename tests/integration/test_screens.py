@@ -255,3 +255,10 @@ def test_batch_members_record_the_screens_of_their_solo_runs(tmp_path):
             assert two["screen_flux"].shape[1:] == (1, 32)
             for name in ("flux", "screen_flux", "screen_probability"):
                 np.testing.assert_allclose(two[name].values, one[name].values, rtol=0, atol=1e-12, err_msg=name)
+
+
+def test_cli_arrivals_table_points_to_the_pattern(screen_result, tmp_path):
+    from inprocess import run_main
+
+    out = run_main("arrivals", str(screen_result), cwd=tmp_path)
+    assert out.returncode == 0 and "resolved: screen; the pattern" in out.stdout
