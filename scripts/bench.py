@@ -679,6 +679,85 @@ def bench_spectrum(repeats: int):
     if "observer" in med:
         print(f"  a whole sample (moments, energy, detector psi, dpsi, flux) / step: {med['observer']:6.3f}x "
               "(psi and dpsi at the detectors were computed for the flux before; storing dpsi is new)")
+def bench_screen(repeats: int, backend: str = "auto"):
+    """A resolved screen's cost (issue 17's target: at most 10 % of a step
+    at 1024^2): one sample measured with the detector resolved minus the
+    same detector plain, and the sample's write (buffered rows, a flush
+    every 256), each against one Strang step of the same run; also the
+    whole sample (observer and write) with the resolved screen per step
+    recorded every 10.  Medians over rounds; each round times the step
+    between the others."""
+    import copy
+    import tempfile
+    from pathlib import Path
+
+    from wavesweep.run import Simulation
+
+    grid = GRIDS["2D 1024^2"]
+    table = {
+        "grid": {**copy.deepcopy(grid), "boundary": "periodic"},
+        "potential": [{"kind": "harmonic", "omega": 0.05}],
+        "packet": {"center": [-5.0, 0.0], "width": [2.0, 2.0], "momentum": [1.0, 0.0]},
+        "evolve": {"dt": 0.01, "duration": 1.0},
+        "record": {"every": 0.1, "snapshot_every": 1.0},
+        "detector": [{"name": "screen", "x": 5.0}],
+    }
+    plain_sim = Simulation(job_from_dict(copy.deepcopy(table)))
+    table["detector"][0]["resolved"] = True
+    screen_sim = Simulation(job_from_dict(table))
+    for sim in (plain_sim, screen_sim):
+        sim.setup.fft_backend = backend
+    setup = screen_sim.setup
+    prop = setup.make_propagator()
+    holder = {"psi": prop.step(setup.psi0.astype(setup.dtype), 2)}
+    observers = {"plain": plain_sim.setup.make_observer(), "screen": setup.make_observer()}
+    v = setup.hamiltonian.static_potential
+    absorbed = np.zeros(0)
+
+    def step():
+        holder["psi"] = prop.step(holder["psi"], 1)
+
+    with tempfile.TemporaryDirectory() as folder:
+        books = {name: sim.begin(Path(folder) / f"{name}.nc")
+                 for name, sim in (("plain", plain_sim), ("screen", screen_sim))}
+        values = {name: obs.measure(holder["psi"], v) for name, obs in observers.items()}
+        samples = {"plain": 0, "screen": 0}
+
+        def write(name):
+            samples[name] += 1
+            sim = plain_sim if name == "plain" else screen_sim
+            sim.observe(books[name], dict(values[name]), 0.01 * samples[name], absorbed)
+
+        # the work the screen adds to the flux pass: its line (psi and dpsi/dn as transverse
+        # coefficients) transformed back and multiplied, timed on its own (a difference of two
+        # whole measurements drowns in the noise of a shared machine; printed beside it)
+        ny = setup.grid.axes[1].points
+        line = np.random.default_rng(1).standard_normal((2, 1, 1, ny)) + 0j
+        obs = observers["screen"]
+        ratios = {"profile": [], "measure": [], "write": [], "sample": []}
+        inner = 5
+        for _ in range(repeats):
+            one = timed(step, inner)
+            m_plain = timed(lambda: observers["plain"].measure(holder["psi"], v), inner)
+            m_screen = timed(lambda: obs.measure(holder["psi"], v), inner)
+            profile = timed(lambda: obs._screen_profile(line[0], line[1], 0), 100)
+            w_plain = timed(lambda: write("plain"), 256)
+            w_screen = timed(lambda: write("screen"), 256)
+            one = 0.5 * (one + timed(step, inner))
+            ratios["profile"].append(profile / one)
+            ratios["measure"].append((m_screen - m_plain) / one)
+            ratios["write"].append((w_screen - w_plain) / one)
+            ratios["sample"].append((m_screen + w_screen) / one)
+        for book in books.values():
+            book.writer.abort()
+    med = {k: statistics.median(r) for k, r in ratios.items()}
+    print(f"resolved screen, 2D 1024^2, strang, double ({prop.transform.name}, {prop.transform.threads} thread(s)), "
+          f"medians over {repeats} rounds, against one step:")
+    print(f"  the screen's profile (its line transformed back, J along it), per sample:      {med['profile']:6.3f}x")
+    print(f"  writing its row (1024 values; a flush every 256 samples), per sample:           {med['write']:6.3f}x")
+    print(f"  a whole measurement resolved minus plain (noisy: two large timings), per sample: {med['measure']:6.3f}x")
+    print(f"  the whole sample with the screen (all observables and the write), per sample:  {med['sample']:6.3f}x"
+          f" (recorded every 10 steps: {med['sample'] / 10:.3f}x per step)")
     return med
 
 
@@ -700,9 +779,14 @@ def main():
                     help="batched-study throughput on two coupled surfaces only (16 runs x 2048 points)")
     ap.add_argument("--spectrum", action="store_true",
                     help="what recording for the surface-flux spectrum adds to a 1D 4096 step only")
+    ap.add_argument("--screen", action="store_true",
+                    help="a resolved screen's cost at 1024^2 (measure and write) against a step only")
     args = ap.parse_args()
     if args.spectrum:
         bench_spectrum(3 if args.quick else args.repeats)
+        return
+    if args.screen:
+        bench_screen(3 if args.quick else args.repeats, args.backend)
         return
     if args.adiabatic:
         bench_adiabatic(3 if args.quick else args.repeats)

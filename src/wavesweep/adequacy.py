@@ -1667,9 +1667,44 @@ def assess(setup) -> list[Finding]:
         out.append(res)
     out += size_findings(setup.grid)
     out += detector_findings(setup)
+    out += screen_sampling_findings(setup, dyn)
     out += absorber_findings(setup, dyn)
     out += mean_field_findings(setup, dyn)
     out.append(disk_finding(setup))
+    return out
+
+
+def screen_sampling_findings(setup, dyn) -> list[Finding]:
+    """A resolved detector's time integral (screen_probability) is the
+    trapezoidal rule over the samples: it needs samples that resolve the
+    flux.  The flux at a point of the screen rises and falls while the
+    packet passes, in about T = sigma_x / v_max (sigma_x the narrowest
+    part's initial spread along the screen's normal, which only grows;
+    v_max the fastest motion along it over the run, the 6 sigma_p reach):
+    a warning when record.every exceeds T (common practice; for a Gaussian
+    peak of width s the trapezoid with spacing h errs by about
+    exp(-2 pi^2 s^2 / h^2), 3e-9 at h = s, by the Poisson summation formula)."""
+    screens = [(n, d) for n, d in enumerate(setup.detectors) if getattr(d, "resolved", False)]
+    if not screens:
+        return []
+    u = setup.units
+    tf, T = u.factor("time"), u.unit_label("time")
+    every = setup.sample_steps * setup.dt
+    out = []
+    for n, det in screens:
+        v_max = dyn.over_run[6][det.axis] / setup.mass
+        width = min(float(m.sigma_x[det.axis]) for m in packet_moments(setup))
+        if v_max <= 0 or not width > 0:
+            continue
+        passing = width / v_max
+        if every > passing:
+            out.append(Finding("detector", "warn",
+                f"{det.name!r} is resolved, and its pattern (screen_probability) integrates the samples by the "
+                f"trapezoidal rule: record.every = {every / tf:.4g} {T} is longer than the time the packet "
+                f"takes to pass a point of it (about {passing / tf:.4g} {T}: its spread "
+                f"{width / u.factor('length'):.4g} {u.unit_label('length')} over its fastest speed); set "
+                f"record.every to {passing / tf:.2g} {T} or less",
+                {"detector": det.name, "every": every / tf, "passing_time": passing / tf}, field="record.every"))
     return out
 
 

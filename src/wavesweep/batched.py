@@ -321,7 +321,8 @@ class _Lane:
                               members=nb)
         self.observer = Observer(s0.grid, s0.mass, s0.observer_transform(members=nb, threads=transform.threads),
                                  s0.detectors, np.stack([s.setup.psi0 for s in sims]), members=nb,
-                                 contact=s0.contact if s0.interaction is not None else None)
+                                 contact=s0.contact if s0.interaction is not None else None,
+                                 stride=int(s0.job.table["record"]["stride"]))
         self.psi = self.prop.load(np.stack([b.psi for b in books]))
         for b in books:
             b.psi = None

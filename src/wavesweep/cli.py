@@ -533,6 +533,10 @@ def _arrivals(args) -> int:
             print(f"{n:<12}{d.definition:<15}" + "".join(f"{d.stats[k]:>15.6g}" for k in ARRIVAL_KEYS)
                   + f"  {note}")
         print(f"times in {units}; probability and backflow dimensionless; nan: not defined")
+        screens = [n for n, d in dists.items() if d.pattern is not None]
+        if screens:   # resolved detectors: what arrived where is an array, for --json and `plot`
+            print(f"resolved: {', '.join(screens)}; the pattern (probability per position and mean arrival) "
+                  "is in --json and `wavesweep plot`")
         if args.plot:
             print(f"figure: {args.plot}")
     _warn("arrivals", [w for d in dists.values() for w in d.warnings])

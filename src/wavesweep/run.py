@@ -203,6 +203,8 @@ class Simulation:
             if book.volkov is None:
                 book.volkov = VolkovIntegrals(self._driving_force(), s.mass, s.dt)
             row.update(book.volkov.in_job_units(t_au, conv))
+        if "screen_flux" in values:   # resolved detectors: probability per unit length^(d-1) per unit time
+            row["screen_flux"] = values["screen_flux"] * (conv["flux"] * conv["length"] ** (1 - s.grid.ndim))
         if "frame_offset" in values:
             row["frame_offset"] = values["frame_offset"] * conv["length"]
         book.writer.add_sample(self.job_time(t_au), row)
@@ -434,6 +436,8 @@ class Simulation:
             "scalars": s.scalars,
             "detector_amplitude": s.grid.ndim == 1,
             "volkov": self._driving_force() is not None,   # field_momentum/excursion/phase per sample
+            # resolved detectors: screen_flux(time, screen, *transverse axes), screen_probability
+            "screens": _screens_layout(s),
             "snapshot_psi": bool(s.job.table["record"].get("snapshot_psi")),
             # record.column: (axis index, its spacing in the job's length unit)
             "column": (None if s.job.table["record"].get("column") is None else
@@ -509,6 +513,17 @@ class RunBook:
     def checkpoint_due(self) -> bool:
         return (self.store is not None
                 and _time.perf_counter() - self.last_checkpoint >= self.policy.every_seconds)
+
+
+def _screens_layout(setup) -> dict | None:
+    """The resolved detectors' names and the transverse axes' names (the
+    snapshot grid's, every record.stride-th point), or None without any."""
+    screens = [d for d in setup.detectors if d.resolved]
+    if not screens:
+        return None
+    normal = screens[0].axis   # validation keeps every resolved detector across one axis
+    return {"names": [d.name for d in screens], "normal": setup.grid.names[normal],
+            "transverse": [n for i, n in enumerate(setup.grid.names) if i != normal]}
 
 
 def _plain_number(value) -> bool:

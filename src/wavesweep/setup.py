@@ -203,6 +203,10 @@ class Setup(Model):
                                        contact=self.contact)
         self.scalars = recorded_scalars(interacting=self.interaction is not None)
         self.detectors = [self._detector(i, d) for i, d in enumerate(t["detector"])]
+        for i, d in enumerate(t["detector"]):
+            if d.get("resolved") and self.frame is not None:
+                raise JobError(f"detector.{i}.resolved", "a resolved screen on a falling grid is not supported "
+                                                          "yet; use grid.frame = 'lab' or remove resolved")
         self.fft_backend = fft or ev.get("fft", AUTO)
         self.threads = threads or ev.get("threads")
         self.scheme = scheme_class(ev["scheme"])
@@ -346,7 +350,8 @@ class Setup(Model):
     def _detector(self, i, d) -> Detector:
         axis = next(a for a in self.grid.names if d.get(a) is not None)
         return Detector(d["name"], self.grid.axis_index(axis),
-                        self.units.to_atomic(d[axis], "length", f"detector.{i}.{axis}"))
+                        self.units.to_atomic(d[axis], "length", f"detector.{i}.{axis}"),
+                        resolved=bool(d.get("resolved")))
 
     def propagator_transform(self, members: int | None = None, threads: int | None = None):
         """The propagator's transform (``members``: for a batch of that many
@@ -372,7 +377,8 @@ class Setup(Model):
         buffer, which holds psi."""
         return Observer(self.grid, self.mass, self.observer_transform(), self.detectors,
                         self.psi0 if self.frame is None else None,   # no lab autocorrelation in a falling frame
-                        contact=self.contact if self.interaction is not None else None, frame=self.frame)
+                        contact=self.contact if self.interaction is not None else None, frame=self.frame,
+                        stride=int(self.job.table["record"]["stride"]))
 
     def measure(self, observer, psi, t: float) -> dict:
         """The sample's values (atomic units) from ``observer``
@@ -661,6 +667,9 @@ class CoupledSetup(Setup):
                                                              "recorded yet; remove record.column"),
             (bool(rec.get("snapshot_psi")), "record.snapshot_psi", "psi at snapshots of coupled surfaces is not "
                                                                     "recorded yet; remove record.snapshot_psi"),
+            *((True, f"detector.{i}.resolved", "a resolved screen on coupled surfaces is not recorded yet; "
+                                               "remove resolved") for i, d in enumerate(t["detector"])
+              if d.get("resolved")),
         )
         for refused, field, message in refusals:
             if refused:

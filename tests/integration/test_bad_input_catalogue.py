@@ -164,6 +164,8 @@ job_case("fields", "absorber-unknown-face", {"absorber": {"kind": "cap", "thickn
 job_case("fields", "detector-two-axes", {"detector": [{"name": "d", "x": 1.0, "y": 2.0}]}, "detector.0")
 job_case("fields", "detector-names-repeat", {"detector": [{"name": "d", "x": 10.0},
                                                           {"name": "d", "x": 20.0}]}, "detector.1.name")
+job_case("fields", "detector-resolved-in-1d", {"detector": [{"name": "far", "x": 10.0, "resolved": True}]},
+         "detector.0.resolved", "line (2D) or plane (3D)")
 job_case("fields", "precision-unknown", {"evolve": {"precision": "quad"}}, "evolve.precision", "double")
 job_case("fields", "title-a-number", {"title": 12}, "title")
 job_case("fields", "sweep-empty-list", {"sweep": {"potential.0.height": []}}, "sweep")

@@ -46,7 +46,7 @@ from .recorded import as_record
 from .recorded import run_record as read_record
 
 __all__ = ["ArrivalDistribution", "arrival_statistics", "arrival_times", "classical_free_flight",
-           "coupled_setup", "COUPLED_NOTE"]
+           "coupled_setup", "COUPLED_NOTE", "pattern_statistics", "screen_pattern"]
 
 # The run is "truncated" when the last |density| exceeds this fraction of the
 # peak, or when more than TRUNCATED_TO_COME of probability may still arrive.
@@ -81,9 +81,72 @@ class ArrivalDistribution:
     time_units: str
     warnings: list = field(default_factory=list)
     surface: str | None = None       # on coupled surfaces: the surface whose flux this is
+    pattern: dict | None = None      # a resolved detector: what arrived where (:func:`screen_pattern`)
 
     def as_dict(self) -> dict:
-        return {"definition": self.definition, **self.stats}
+        out = {"definition": self.definition, **self.stats}
+        if self.pattern is not None:
+            out["pattern"] = self.pattern
+        return out
+
+
+def pattern_statistics(time, screen_flux, sign: float = 1.0) -> tuple[np.ndarray, np.ndarray]:
+    """What arrived where on a resolved screen, from its flux density
+    ``screen_flux`` (time first, then the transverse axes; per unit length
+    (area) per time unit): the probability per unit length (area) that
+    crossed, P(y) = int J(y, t) dt, and the mean arrival time per position,
+    int t J(y, t) dt / P(y) (the flux definition of this module, position
+    by position), both by the trapezoidal rule over the samples, oriented
+    by ``sign`` (+1: J counts positive).  The mean is NaN where P(y) is not
+    above NOTHING_ARRIVED times the pattern's peak."""
+    return _pattern_from_sums(*_trapezoid_sums(time, screen_flux, sign))
+
+
+def _trapezoid_sums(time, flux, sign: float) -> tuple[np.ndarray, np.ndarray]:
+    """int J dt and int t J dt (trapezoidal rule, time on the first axis)."""
+    t = np.asarray(time, float)
+    f = np.asarray(flux, float) * sign
+    w = np.zeros_like(t)   # the trapezoid's weights, for uneven samples too
+    w[:-1] += 0.5 * np.diff(t)
+    w[1:] += 0.5 * np.diff(t)
+    return np.tensordot(w, f, axes=1), np.tensordot(w * t, f, axes=1)
+
+
+def _pattern_from_sums(prob, first) -> tuple[np.ndarray, np.ndarray]:
+    peak = float(np.max(np.abs(prob))) if prob.size else 0.0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(prob > NOTHING_ARRIVED * peak, first / np.where(prob != 0, prob, 1.0), math.nan)
+    return prob, mean
+
+
+def screen_pattern(ds, screen: int, sign: float) -> dict:
+    """The ``pattern`` of the ``screen``-th resolved detector of a result
+    (``arrivals --json``): its transverse axis (``axis``, 2D) or axes
+    (``axes``, 3D), the positions (the snapshot grid's), ``probability``
+    per unit length (area) and ``mean_arrival`` per position, in the job's
+    units (``units``), by :func:`pattern_statistics`.  Reads the screen's
+    flux a block of samples at a time (no temporary of all samples times
+    the screen)."""
+    var = ds["screen_flux"]
+    across = [d for d in var.dims if d not in ("time", "screen")]
+    t = np.asarray(ds["time"].values, float)
+    block = max(2, CURVE_BLOCK // max(1, int(np.prod([ds.sizes[d] for d in across]))))
+    prob = np.zeros([ds.sizes[d] for d in across])
+    first = np.zeros_like(prob)
+    for i0 in range(0, max(1, t.size - 1), block - 1):   # consecutive blocks share their edge sample
+        i1 = min(t.size, i0 + block)
+        p, m = _trapezoid_sums(t[i0:i1], var[i0:i1, screen].values, sign)
+        prob += p
+        first += m
+    prob, mean = _pattern_from_sums(prob, first)
+    length = ds[across[0]].attrs.get("units", "")
+    out = {"position": [np.asarray(ds[d].values, float).tolist() for d in across],
+           "probability": prob.tolist(), "mean_arrival": mean.tolist(),
+           "units": {"position": length, "probability": f"{length}-{len(across)}",
+                     "mean_arrival": ds["time"].attrs.get("units", "")}}
+    if len(across) == 1:
+        return {"axis": across[0], **out, "position": out["position"][0]}
+    return {"axes": across, **out}
 
 
 def _trapezoid(y, t) -> float:
@@ -321,6 +384,7 @@ def _arrivals(ds, detector, classical=True, warnings=True, curves=True):
     flux = np.asarray(ds["flux"].values, float)
     forced = _uniform_forces(ds)
     falling = "frame_offset" in ds.variables
+    screens = [str(n) for n in ds["screen"].values] if "screen" in ds.variables else []
     out = {}
     for j, name in enumerate(names):
         if detector is not None and name != detector:
@@ -400,8 +464,12 @@ def _arrivals(ds, detector, classical=True, warnings=True, curves=True):
         if classical and forced and not falls:
             notes.append(f"detector {name!r}: classical_mean is the free-flight estimate, and this run's "
                          f"{' and '.join(forced)} acts all along the path: it is no reference here")
+        pattern = None
+        if curves and "screen_flux" in ds.variables and name in screens:
+            # what arrived where, oriented as the total flux (from the packet towards the detector)
+            pattern = screen_pattern(ds, screens.index(name), -x0_side)
         out[name] = ArrivalDistribution(name, definition, t, rho, cl * uc["time"], stats,
-                                        uc["time_label"], notes)
+                                        uc["time_label"], notes, pattern=pattern)
     return out
 
 

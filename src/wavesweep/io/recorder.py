@@ -89,6 +89,12 @@ class ResultWriter:
         ``faces``: list of absorbing face names (the result's ``boundary`` coordinate); ``potential``: static V (job units,
         full grid); ``autocorrelation``: bool; ``final_state``: bool;
         ``detector_amplitude``: bool, psi at each detector per sample (1D);
+        ``screens``: None, or ``{"names": [...], "normal": axis name,
+        "transverse": [axis names]}``: the resolved detectors, a ``screen``
+        dimension, ``screen_flux(time, screen, *transverse)`` (the samples'
+        ``screen_flux``, on the snapshot grid's transverse coordinates) and
+        ``screen_probability(screen, *transverse)``, its time integral,
+        written at :meth:`close`;
         ``snapshot_psi``: bool, psi (float32 parts) with each snapshot;
         ``surfaces``: None, or the names of coupled surfaces: a ``surface``
         dimension (coordinate: the names) leads the grid axes of ``density``,
@@ -189,7 +195,17 @@ class ResultWriter:
         per_detector = 3 if lay.get("detector_amplitude") else 1
         return 8 * (1 + self._n_surfaces() * (len(lay.get("scalars", SCALARS)) + per_detector * len(lay["detectors"])
                                               + len(lay["faces"])) + 2 + len(lay.get("frame_axes") or ())
-                    + (lay["adiabatic"]["states"] if lay.get("adiabatic") else 0))
+                    + (lay["adiabatic"]["states"] if lay.get("adiabatic") else 0)) + self._screen_row_bytes()
+
+    def _screen_points(self) -> list[int]:
+        """The transverse points of the screens' profiles (the snapshot grid's)."""
+        lay = self.layout
+        return [len(np.asarray(a[1])[::lay["stride"]]) for a in lay["axes"]
+                if a[0] in lay["screens"]["transverse"]]
+
+    def _screen_row_bytes(self) -> int:
+        screens = self.layout.get("screens")
+        return 0 if not screens else 8 * len(screens["names"]) * int(np.prod(self._screen_points()))
 
     def _remaining_bytes(self) -> int | None:
         """Bytes of data the file still needs from its shapes (before
@@ -337,6 +353,8 @@ class ResultWriter:
                                       "(per hbar)")):
                 v = self._var(name, "f8", ("time",))
                 v.units, v.long_name = unit, long
+        if lay.get("screens"):
+            self._define_screens(lay["screens"], u, len(names))
         if lay.get("frame_axes"):   # a falling grid: lab position = grid coordinate + frame_offset
             self._define_frame_offset(lay["frame_axes"], u)
         a = self._var("absorbed", "f8", ("time", *lead, "boundary"))
@@ -360,6 +378,45 @@ class ResultWriter:
                 v = self._var(f"psi_{part}", "f8", (*lead, *state_dims), zlib=True, complevel=4)
                 v.units = f"{u['length']}-{len(names) / 2:g}"
                 v.long_name = f"{part} part of the final wave function"
+
+    def _define_screens(self, screens: dict, u: dict, ndim: int):
+        """``screen`` (the resolved detectors' names), ``screen_flux`` and
+        ``screen_probability`` on the transverse snapshot axes."""
+        ds = self.ds
+        ds.createDimension("screen", len(screens["names"]))
+        v = self._var("screen", str, ("screen",))
+        v.long_name, v.units = "resolved detector (screen) name", "1"
+        for i, name in enumerate(screens["names"]):
+            v[i] = name
+        across = tuple(screens["transverse"])
+        per_area = f"{u['length']}-{ndim - 1}"
+        v = self._var("screen_flux", "f8", ("time", "screen", *across), zlib=True, complevel=4,
+                      chunksizes=[1, 1, *self._screen_points()])
+        v.units = f"{per_area} {u['time']}-1"
+        v.long_name = (f"probability current density through the screen (across {screens['normal']}), "
+                       f"per unit {'length' if ndim == 2 else 'area'} of the screen")
+        v = self._var("screen_probability", "f8", ("screen", *across), fill_value=np.nan)
+        v.units = per_area
+        v.long_name = (f"time integral of screen_flux over the run: probability per unit "
+                       f"{'length' if ndim == 2 else 'area'} of the screen that crossed it (net)")
+        v.comment = ("trapezoid rule over the samples (record.every); accurate when the samples resolve the "
+                     "flux and the flux is small at the run's start and end")
+
+    def _screen_integral(self) -> None:
+        """screen_probability from the file's screen_flux samples (all of
+        them, also a resumed run's earlier ones), a block of samples at a
+        time: the trapezoid rule, as ``arrivals`` integrates the total flux."""
+        ds = self.ds
+        t = np.asarray(ds["time"][:self._n_time], float)   # a resumed run's rows beyond it are overwritten
+        total = np.zeros(ds["screen_probability"].shape)
+        if t.size > 1:
+            block = max(2, 2 ** 22 // max(1, total.size))
+            for i0 in range(0, t.size - 1, block - 1):
+                i1 = min(t.size, i0 + block)
+                f = np.asarray(ds["screen_flux"][i0:i1], float)
+                dt = np.diff(t[i0:i1]).reshape(-1, *([1] * total.ndim))
+                total += (0.5 * (f[1:] + f[:-1]) * dt).sum(axis=0)
+        ds["screen_probability"][:] = total
 
     def _define_adiabatic(self, n_states: int, comment: str):
         """``state`` (0..S-1, ascending local energy) and ``population_adiabatic``
@@ -513,6 +570,8 @@ class ResultWriter:
         for key in ("field_momentum", "field_excursion", "field_phase"):
             if key in ds.variables and key in self._buf[0]:
                 ds[key][i0:i0 + n] = np.array([b[key] for b in self._buf])
+        if "screen_flux" in ds.variables:
+            ds["screen_flux"][i0:i0 + n, ...] = np.array([b["screen_flux"] for b in self._buf])
         if len(self.layout["faces"]):
             ds["absorbed"][i0:i0 + n, ...] = np.array([b["absorbed"] for b in self._buf])
         if "frame_offset" in ds.variables and "frame_offset" in self._buf[0]:
@@ -566,6 +625,8 @@ class ResultWriter:
         :meth:`abort`)."""
         self.flush()
         with self._room(0):
+            if "screen_probability" in self.ds.variables:
+                self._screen_integral()
             if attrs:
                 self.ds.setncatts({k: v for k, v in attrs.items() if v is not None})
             self.ds.close()

@@ -118,6 +118,9 @@ RECORD = {
 }
 DETECTOR = {
     "name": Field("str", None, doc="the detector's name (default: 'x=<position>')"),
+    "resolved": Field("bool", None, doc="2D/3D: also record the flux density along the line or plane "
+                                        "(screen_flux, its time integral screen_probability), on the "
+                                        "snapshot grid's transverse axes (record.stride)"),
 }
 # The detector's position: one of the grid's axis names as the key.
 DETECTOR_POSITION = Field("length", None, doc="position of the detector plane on this axis "

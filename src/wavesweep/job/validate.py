@@ -767,6 +767,7 @@ def _detectors(raw, units, extents, axes) -> list[dict]:
         raise JobError("detector", "must be [[detector]] tables")
     found = ErrorCollector()
     out, names = [], set()
+    screen_axis = None   # the axis every resolved detector lies across (one for now)
     for i, table in enumerate(raw):
         field = f"detector.{i}"
         schema = {**DETECTOR, **{a: DETECTOR_POSITION for a in axes}}
@@ -780,6 +781,17 @@ def _detectors(raw, units, extents, axes) -> list[dict]:
             if t["name"] in names:
                 raise JobError(f"{field}.name", f"{t['name']!r} is used twice")
             names.add(t["name"])
+            if t.get("resolved") is False:   # the default said: the same job (text and run id) as without it
+                del t["resolved"]
+            if t.get("resolved"):
+                if len(axes) < 2 or "r" in axes:
+                    raise JobError(f"{field}.resolved", "a resolved screen is a line (2D) or plane (3D); a point "
+                                                        "has no profile: remove resolved")
+                if screen_axis is not None and a != screen_axis:
+                    raise JobError(f"{field}.resolved", f"resolved screens across different axes are not "
+                                                        f"supported yet; keep them all across {screen_axis} "
+                                                        f"or remove resolved")
+                screen_axis = a
             if extents is not None and a in extents:
                 lo, hi, min_text, max_text = extents[a]
                 pos = units.to_atomic(t[a], "length", f"{field}.{a}")

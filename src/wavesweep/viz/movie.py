@@ -439,14 +439,17 @@ class Painter2D(Painter):
                 if sc.moves(layer.axis):   # the layers belong to the grid: they fall with it
                     self._moving_layers.append((marks[-1], None, layer, "v" if layer.axis == a else "h"))
         for dname, dax, pos in sc.detectors:
+            # a resolved detector (a screen) is a solid, heavier line, named as a screen
+            line = dict(lw=2.2, ls="-") if dname in sc.screens else dict(lw=1.0, ls="--")
+            label = f"{style.plain(dname)} (screen)" if dname in sc.screens else style.plain(dname)
             if dax == a:
-                marks.append(ax.axvline(pos, color=style.DETECTOR, lw=1.0, ls="--"))
-                marks.append(ax.text(pos, 0.985, f" {style.plain(dname)}", transform=ax.get_xaxis_transform(),
+                marks.append(ax.axvline(pos, color=style.DETECTOR, **line))
+                marks.append(ax.text(pos, 0.985, f" {label}", transform=ax.get_xaxis_transform(),
                                      ha="left", va="top", fontsize=7, color=style.DETECTOR,
                                      clip_on=sc.offsets is not None))
             elif dax == b:
-                marks.append(ax.axhline(pos, color=style.DETECTOR, lw=1.0, ls="--"))
-                marks.append(ax.text(0.005, pos, f"{style.plain(dname)} ", transform=ax.get_yaxis_transform(),
+                marks.append(ax.axhline(pos, color=style.DETECTOR, **line))
+                marks.append(ax.text(0.005, pos, f"{label} ", transform=ax.get_yaxis_transform(),
                                      ha="left", va="bottom", fontsize=7, color=style.DETECTOR,
                                      clip_on=sc.offsets is not None))
         return marks

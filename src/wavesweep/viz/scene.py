@@ -75,6 +75,8 @@ class Scene:
     surfaces: list | None = None
     surface_potentials: dict | None = None
     couplings: dict | None = None
+    # the resolved detectors' names (screens: drawn apart from the other detectors)
+    screens: list = field(default_factory=list)
 
     @property
     def ndim(self) -> int:
@@ -148,6 +150,7 @@ def read_scene(path, field_name: str = "RUN.nc") -> Scene:
             ax_names = ([str(v) for v in ds["detector_axis"].values] if "detector_axis" in ds
                         else [axes[0]] * len(names))
             dets = list(zip(names, ax_names, xs))
+        screens = [str(v) for v in ds["screen"].values] if "screen" in ds.variables else []
         units = {
             "length": ds.attrs.get("units_length", ""),
             "energy": ds.attrs.get("units_energy", ""),
@@ -159,7 +162,7 @@ def read_scene(path, field_name: str = "RUN.nc") -> Scene:
                       ds.attrs.get("grid_kind") == "radial", pot, _layers(job, axes, coords), dets,
                       units, int(ds.sizes.get("snapshot_time", 0)), "psi_snapshot_real" in ds,
                       offsets=_snapshot_offsets(ds, axes), surfaces=surfaces,
-                      surface_potentials=surface_potentials, couplings=couplings)
+                      surface_potentials=surface_potentials, couplings=couplings, screens=screens)
     finally:
         ds.close()
     if scene.n_snapshots == 0:

@@ -217,8 +217,14 @@ def run_figure(path, size=(1200, 900), dpi: int = 100, column: str | None = None
     t = ds.time.values
     with style.style():
         fig = style.figure(*size, dpi)
-        axes = fig.subplots(2, 2, gridspec_kw={"height_ratios": [1.25, 1]})
-        (amap, abooks), (aflux, aenergy) = axes
+        screens = "screen_probability" in ds and ds.sizes.get("screen", 0) > 0
+        if screens:   # resolved detectors: a third row, what arrived where on each screen
+            grid = fig.add_gridspec(3, 2, height_ratios=[1.25, 1, 1])
+            (amap, abooks), (aflux, aenergy) = [[fig.add_subplot(grid[r, c]) for c in range(2)] for r in range(2)]
+            _screen_panels(fig, grid[2, :], ds, L)
+        else:
+            axes = fig.subplots(2, 2, gridspec_kw={"height_ratios": [1.25, 1]})
+            (amap, abooks), (aflux, aenergy) = axes
 
         if scene.column is not None and scene.ndim == 2:
             _column_image(fig, amap, scene)
@@ -273,6 +279,37 @@ def run_figure(path, size=(1200, 900), dpi: int = 100, column: str | None = None
                      f"dt = {ds.attrs.get('dt', '')} {T}]", fontsize=10)
         fig.tight_layout()
         return fig
+
+
+def _screen_panels(fig, cell, ds, L) -> None:
+    """What arrived where: each resolved detector's screen_probability (the
+    time integral of its flux density) against the transverse position (2D:
+    one curve per screen; 3D: one map per screen)."""
+    var = ds.screen_probability
+    across = [d for d in var.dims if d != "screen"]
+    unit = style.pretty_unit(var.attrs.get("units", ""))
+    names = [str(n) for n in ds.screen.values]
+    colors = style.line_colors()
+    if len(across) == 1:
+        ax = fig.add_subplot(cell)
+        for i, name in enumerate(names):
+            ax.plot(ds[across[0]].values, var.values[i], color=colors[i % len(colors)], label=style.plain(name))
+        ax.axhline(0, color="black", lw=0.5)
+        ax.legend(frameon=False)
+        ax.set_xlabel(f"{across[0]} ({L})")
+        ax.set_ylabel(f"probability per length ({unit})")
+        ax.set_title("what arrived where: the time integral of the flux density along each screen", loc="left")
+        return
+    cells = cell.subgridspec(1, len(names))
+    for i, name in enumerate(names):
+        ax = fig.add_subplot(cells[0, i])
+        mesh = ax.pcolormesh(ds[across[0]].values, ds[across[1]].values, var.values[i].T, shading="nearest",
+                             cmap=style.DENSITY_CMAP, rasterized=True)
+        bar = fig.colorbar(mesh, ax=ax, fraction=0.05, pad=0.02)
+        bar.set_label(f"probability per area ({unit})")
+        ax.set_xlabel(f"{across[0]} ({L})")
+        ax.set_ylabel(f"{across[1]} ({L})")
+        ax.set_title(f"what arrived where on {style.plain(name)}", loc="left")
 
 
 # -- one run on coupled surfaces --------------------------------------------------------
