@@ -72,6 +72,9 @@ from ..io.results import open_result, result_units, source_name
 __all__ = ["time_transform", "trapezoid_weights", "surface_flux_amplitude", "momentum_spectrum", "spectrum",
            "BAND_FLOOR", "STILL_TO_COME_WARN"]
 
+# V beyond a detector (outwards) above this x the mean kinetic energy of what crossed: a scatterer lies
+# beyond it, and the surface flux is not the spectrum of what left (common practice: 1 %).
+SCATTERER_BEYOND = 1e-2
 BAND_FLOOR = 1e-8          # |psi(x_d)|^2 above this fraction of its peak sets the band W
 STILL_TO_COME_WARN = 1e-3  # a fraction still to come above this (of what crossed) is a warning
 SPECTRUM_FLOOR = 1e-6      # the momenta reported: where the density is above this fraction of its peak
@@ -97,6 +100,16 @@ def time_transform(time, samples, phase) -> np.ndarray:
     the case phase = Phi_k(t) (:func:`surface_flux_amplitude`)."""
     amp = np.asarray(samples, complex)
     return (np.exp(1j * phase) @ (amp * trapezoid_weights(time))) / (2 * math.pi)
+
+
+def _end_taper(t) -> np.ndarray:
+    """1 over the record, falling as cos^2 to 0 over its last tenth: a
+    record's end made smooth, so that a cut's leak into far energies fades
+    (an alias of the samples does not)."""
+    t = np.asarray(t, float)
+    start = t[0] + 0.9 * (t[-1] - t[0])
+    ramp = np.clip((t - start) / max(t[-1] - start, 1e-300), 0.0, 1.0)
+    return np.cos(0.5 * math.pi * ramp) ** 2
 
 
 def surface_flux_amplitude(time, psi_detector, dpsi_detector, momentum, mass, x_detector, side=1.0,
@@ -228,6 +241,15 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401) -> dict:
     # above BAND_FLOOR of its peak at the top of a range the samples (not the grid) limit is refused
     top = dens_c[-len(dens_c) // 20:].max()
     v_min = min(float(np.min(setup.static_potential)), 0.0)
+    if k_top < k_grid and top > BAND_FLOOR * dens_c.max():
+        # a record cut while psi still arrives leaks into every energy too (a truncated Fourier
+        # integral falls off only as 1 / (E - E_end)); an alias does not fade when the record's end is
+        # tapered smoothly to zero, the cut's leak does: only what stays is aliasing
+        upper = coarse[-len(coarse) // 20:]
+        taper = _end_taper(t)
+        tapered = np.abs(surface_flux_amplitude(t, psi * taper, dpsi * taper, upper, mass, x_d, side,
+                                                initial=b0(upper), **field)) ** 2
+        top = float(tapered.max())
     if (k_top < k_grid and top > BAND_FLOOR * dens_c.max()) or -v_min * dt_s >= math.pi:
         highest = max(local_band(psi, dpsi, mass, highest=True), _initial_band(setup.psi0, x, mass)) - v_min
         need = min(math.pi / highest, dt_s / 2) / uc["time"]
@@ -251,7 +273,16 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401) -> dict:
     v_static = np.asarray(setup.static_potential, float)
     e_mean = float(np.trapezoid(density * energy, np.abs(p_kin)) / total) if total > 0 else 0.0
     v_d = float(np.interp(x_d, x, v_static))
-    if abs(v_d) > VARIES * max(e_mean, 1e-300):
+    beyond = (x > x_d) if side > 0 else (x < x_d)
+    v_beyond = float(np.max(np.abs(v_static[beyond]))) if np.any(beyond) else 0.0
+    if v_beyond > SCATTERER_BEYOND * max(e_mean, 1e-300):
+        # the method's premise: beyond the detector H is the free (Volkov) one; a scatterer there acts on
+        # what crossed after it crossed, which the flux through the detector cannot know
+        warnings.append(f"detector {name!r}: V beyond it (outwards) reaches {v_beyond / uc['energy']:.3g} "
+                        f"{uc['energy_label']}: what crosses it still meets a potential, so this is not the "
+                        "spectrum of what left (not even its total); use a detector beyond the scatterer, "
+                        "where V vanishes")
+    elif abs(v_d) > VARIES * max(e_mean, 1e-300):
         warnings.append(f"V at detector {name!r} is {v_d / uc['energy']:.3g} {uc['energy_label']}, not 0: plane "
                         "waves are not the outgoing states there and the energies are off by about that much; "
                         "place the detector where V vanishes")
