@@ -31,6 +31,15 @@ Variables, with ``P`` the parameter dimensions (or ``run``):
 ``has_result``     P                           1 where a result was found, else 0
 =================  ==========================  ==========================================
 
+Momentum spectra (1D single-surface runs that recorded dpsi/dx at their
+detectors; :func:`wavesweep.analysis.surface_flux.detector_spectra`, the
+numbers of ``wavesweep spectrum``): ``spectrum_momentum``,
+``spectrum_probability_density``, ``spectrum_energy`` and
+``spectrum_energy_density`` on (P, detector, spectrum_point), each run on
+its own momenta (NaN-padded; ``spectrum_point`` rather than ``momentum``,
+which a sweep of packet.momentum takes), and ``spectrum_total`` (P,
+detector); NaN for a detector or run without one, absent when no run has one.
+
 A point without a result (queued, running, failed, or never planned in a
 union of submissions that does not fill the grid) is NaN everywhere, with
 ``run_id = ""`` and ``has_result = 0``.
