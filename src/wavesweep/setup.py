@@ -450,7 +450,7 @@ def analysis_record(setup, warnings: bool = True, lanczos: bool = True) -> dict:
     if grid.ndim == 1:
         out["initial_psi"] = np.asarray(psi0, np.complex128) * math.sqrt(lf)
         out["potential_full"] = np.asarray(setup.recorded_potential(), float) / ef
-        if setup.frame is None:   # the spectrum needs a grid fixed in the lab
+        if setup.frame is None and not grid.radial:   # the spectrum: a cartesian grid fixed in the lab
             out["potential_min"] = float(np.min(out["potential_full"]))
             out["initial_beyond"] = _initial_beyond_values(setup, out["detectors"], psi0)
     # (a falling frame's H is not the lab's: its spectrum would mean nothing to levels)

@@ -76,6 +76,7 @@ __all__ = ["time_transform", "trapezoid_weights", "surface_flux_amplitude", "mom
 BAND_FLOOR = 1e-8          # |psi(x_d)|^2 above this fraction of its peak sets the band W
 STILL_TO_COME_WARN = 1e-3  # a fraction still to come above this (of what crossed) is a warning
 SPECTRUM_FLOOR = 1e-6      # the momenta reported: where the density is above this fraction of its peak
+TRANSFORM_BLOCK = 2**21   # momenta x samples per block of the transform (32 MiB of complex phases)
 VARIES = 1e-3              # V counts as varying where it differs from V(x_d) by this fraction of <E_kin>
 
 
@@ -111,6 +112,13 @@ def surface_flux_amplitude(time, psi_detector, dpsi_detector, momentum, mass, x_
     at the samples (None: no field); ``initial``: b(k, 0) (None: 0)."""
     t = np.asarray(time, float)
     k = np.asarray(momentum, float)
+    rows = max(1, TRANSFORM_BLOCK // max(len(t), 1))
+    if len(k) > rows:   # blocks of momenta: no (momenta x samples) temporary beyond TRANSFORM_BLOCK
+        init = None if initial is None else np.asarray(initial, complex)
+        return np.concatenate([surface_flux_amplitude(t, psi_detector, dpsi_detector, k[i:i + rows], mass,
+                                                      x_detector, side, field_momentum, excursion, field_phase,
+                                                      None if init is None else init[i:i + rows])
+                               for i in range(0, len(k), rows)])
     psi = np.asarray(psi_detector, complex)
     dpsi = np.asarray(dpsi_detector, complex)
     zero = np.zeros_like(t)
