@@ -94,7 +94,9 @@ def _point(spec):
 def test_grid_study_dimensions_coordinates_and_attributes(eckart):
     root, study, path, ds = eckart
     assert path == root / "eckart-scan" / "summary.nc"
-    assert dict(ds.sizes) == {"momentum": 2, "height": 3, "time": 141, "boundary": 2, "detector": 2}
+    # spectrum_point: each run's momentum spectra (wavesweep spectrum's 401 points)
+    assert dict(ds.sizes) == {"momentum": 2, "height": 3, "time": 141, "boundary": 2, "detector": 2,
+                              "spectrum_point": 401}
     assert ds.momentum.values.tolist() == MOMENTA
     assert ds.height.values.tolist() == HEIGHTS
     assert ds.momentum.attrs["sweep_key"] == "packet.momentum"
