@@ -32,7 +32,7 @@ from .fft import AUTO, PLAIN, make_transform
 from .grid import Axis, Grid
 from .hamiltonian import Hamiltonian, static_potential_of
 from .interaction import ContactInteraction
-from .io.record import (LANCZOS_MAX_POINTS, RECORD_VERSION, RecordedAbsorber, RecordedDetector, RecordedLayer,
+from .io.record import (LANCZOS_MAX_POINTS, initial_beyond, RECORD_VERSION, RecordedAbsorber, RecordedDetector, RecordedLayer,
                         RecordedRun, classical_share, layer_edge, layer_holding, packet_side_positions, result_name,
                         side_probability)
 from .job import Job, grid_axes, job_from_dict
@@ -450,6 +450,9 @@ def analysis_record(setup, warnings: bool = True, lanczos: bool = True) -> dict:
     if grid.ndim == 1:
         out["initial_psi"] = np.asarray(psi0, np.complex128) * math.sqrt(lf)
         out["potential_full"] = np.asarray(setup.recorded_potential(), float) / ef
+        if setup.frame is None and not grid.radial:   # the spectrum: a cartesian grid fixed in the lab
+            out["potential_min"] = float(np.min(out["potential_full"]))
+            out["initial_beyond"] = _initial_beyond_values(setup, out["detectors"], psi0)
     # (a falling frame's H is not the lab's: its spectrum would mean nothing to levels)
     if lanczos and not setup.hamiltonian.time_dependent and grid.size <= LANCZOS_MAX_POINTS \
             and setup.frame is None:
@@ -512,6 +515,23 @@ def _initial_detector_values(setup, marginals_au) -> dict:
     if accel is not None and setup.detectors:   # absent in free flight: those files stay as they were
         out["classical_acceleration"] = [float(accel[d.axis]) / (lf / tf**2) for d in setup.detectors]
     return {name: np.asarray(v, float) for name, v in out.items()}
+
+
+def _initial_beyond_values(setup, detector_values, psi0) -> list:
+    """Per detector, (first grid index, psi0 beyond it in job units): the
+    part the momentum spectrum projects on plane waves as b(k, 0)
+    (:func:`wavesweep.io.record.initial_beyond`), beyond the detector away
+    from the packet's mean (the mean as the file gives it back, so that
+    analysis takes the same side)."""
+    lf = setup.units.factor("length")
+    x = setup.grid.axes[0].coordinates
+    out = []
+    for d, mean in zip(setup.detectors, detector_values["detector_initial_mean"]):
+        x_d = float(d.position / lf) * lf        # as the file gives it back
+        side = 1.0 if x_d >= float(mean) * lf else -1.0
+        first, values = initial_beyond(psi0, x, x_d, side)
+        out.append((first, values * math.sqrt(lf)))
+    return out
 
 
 def classical_acceleration(setup) -> np.ndarray | None:

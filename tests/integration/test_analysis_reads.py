@@ -28,6 +28,7 @@ from conftest import make_job
 from wavesweep.analysis.arrivals import CURVE_BLOCK, arrival_times, classical_free_flight
 from wavesweep.analysis.recorded import run_record
 from wavesweep.analysis.transmission import transmission_totals
+from wavesweep.errors import JobError
 from wavesweep.io.record import DETECTOR_VALUES
 from wavesweep.io.results import grid_dimensions
 from wavesweep.run import Simulation
@@ -163,3 +164,77 @@ def test_classical_estimate_factored_sums_and_bounded_memory():
     assert peak < 8 * 8 * CURVE_BLOCK, f"peak {peak / 2**20:.0f} MiB"
     # the curve integrates to the probability moving towards the detector (it all arrives by t = 200)
     assert np.trapezoid(curve, times) == pytest.approx(p, rel=1e-3)
+
+
+# -- momentum spectra (issue 17: `collect` carries the spectra per run) ----------------------
+# A free Gaussian (tests/integration/test_spectrum.py's FREE) with three detectors: 'd' well
+# beyond the packet, 'edge' 3.5 sigma ahead of it (psi0 beyond it is ~5 % of its peak, so the
+# spectrum's b(k, 0) matters), 'back' 2.5 sigma behind it (its spectrum is refused: NaN).
+SPECTRUM_JOB = {
+    "title": "spectra without the grid",
+    "grid": {"x": {"min": -64.0, "max": 40.0, "points": 640}, "boundary": "periodic"},
+    "packet": {"kind": "gaussian", "center": -16.0, "width": 4.0, "momentum": 2.0},
+    "evolve": {"dt": 0.01, "duration": 40.0, "scheme": "strang"},
+    "absorber": {"kind": "cap", "thickness": 12.0},
+    "record": {"every": 0.1, "snapshot_every": 20.0},
+    "detector": [{"name": "d", "x": 10.0}, {"name": "edge", "x": -2.0}, {"name": "back", "x": -6.0}],
+}
+SPECTRUM_KEYS = ("momentum", "probability_density", "energy", "energy_density")
+
+
+@pytest.fixture(scope="module")
+def spectrum_result(tmp_path_factory):
+    return Simulation(make_job(copy.deepcopy(SPECTRUM_JOB))).run(tmp_path_factory.mktemp("spectra"),
+                                                                 progress=False)
+
+
+def _close(a, b, rtol=1e-12):
+    a, b = np.asarray(a, float), np.asarray(b, float)
+    assert a.shape == b.shape
+    assert np.max(np.abs(a - b)) <= rtol * np.max(np.abs(b))
+
+
+def test_collect_carries_each_detectors_spectrum_without_the_grid(spectrum_result, tmp_path):
+    """collect's per-run spectra are `wavesweep spectrum`'s for each
+    detector, to 1e-12, read from a file whose every grid-sized array is
+    NaN (psi0 and the final psi included): b(k, 0) comes from the recorded
+    part of psi0 beyond the detector, the band check from the recorded
+    V_min.  A detector whose spectrum `spectrum` refuses is left out (NaN
+    in the summary), not refused."""
+    from wavesweep.analysis.surface_flux import spectrum
+
+    poisoned, names = _poisoned(spectrum_result, tmp_path)
+    assert {"initial_psi_real", "psi_real", "potential"} <= set(names)
+    with xr.open_dataset(spectrum_result) as ds:
+        first = int(ds["initial_beyond_first"].values[1])
+        assert first > 0 and np.isfinite(ds["initial_beyond_real"].values[1]).sum() > 10   # 'edge'
+    dirty = _read_result(poisoned)
+    assert not dirty.analysis_note, dirty.analysis_note
+    assert set(dirty.spectra) == {"d", "edge"}
+    for name in ("d", "edge"):
+        reference = spectrum(spectrum_result, detector=name)["detectors"][0]
+        for key in SPECTRUM_KEYS:
+            _close(dirty.spectra[name][key], reference[key])
+        assert dirty.spectra[name]["total"] == pytest.approx(reference["total"], rel=1e-12)
+    with pytest.raises(JobError, match="record.every"):
+        spectrum(spectrum_result, detector="back")
+
+
+def test_the_spectrum_from_the_record_is_the_one_from_psi0(spectrum_result):
+    """A file without the recorded pieces (written before the run kept
+    them) gets the spectrum from psi0 and V on the grid, as before: the same
+    numbers to 1e-12 (what the record drops of psi0 is below 1e-15 of its
+    peak)."""
+    from wavesweep.analysis.surface_flux import spectrum
+
+    with xr.open_dataset(spectrum_result) as ds:
+        full = ds.load()
+    older = full.drop_vars(["initial_beyond_first", "initial_beyond_real", "initial_beyond_imag",
+                            "potential_min", *DETECTOR_VALUES.keys() & set(full.variables)])
+    for name in ("d", "edge"):
+        new = spectrum(full, detector=name)["detectors"][0]
+        old = spectrum(older, detector=name)["detectors"][0]
+        for key in SPECTRUM_KEYS:
+            _close(new[key], old[key])
+        assert new["total"] == pytest.approx(old["total"], rel=1e-12)
+        assert new["still_to_come"] == pytest.approx(old["still_to_come"], rel=1e-12)

@@ -94,7 +94,9 @@ def _point(spec):
 def test_grid_study_dimensions_coordinates_and_attributes(eckart):
     root, study, path, ds = eckart
     assert path == root / "eckart-scan" / "summary.nc"
-    assert dict(ds.sizes) == {"momentum": 2, "height": 3, "time": 141, "boundary": 2, "detector": 2}
+    # spectrum_point: each run's momentum spectra (wavesweep spectrum's 401 points)
+    assert dict(ds.sizes) == {"momentum": 2, "height": 3, "time": 141, "boundary": 2, "detector": 2,
+                              "spectrum_point": 401}
     assert ds.momentum.values.tolist() == MOMENTA
     assert ds.height.values.tolist() == HEIGHTS
     assert ds.momentum.attrs["sweep_key"] == "packet.momentum"
@@ -423,3 +425,47 @@ def test_a_failed_write_keeps_the_previous_summary(tmp_path, monkeypatch):
         collect(tmp_path, "w")
     assert path.read_bytes() == before
     assert sorted(p.name for p in (tmp_path / "w").iterdir() if p.suffix != ".nc") == ["study.json"]
+
+
+# -- momentum spectra per run (issue 17) ------------------------------------------------------
+def test_the_summary_carries_each_runs_spectra(tmp_path):
+    """Per run and detector, `wavesweep spectrum --json`'s momenta,
+    densities against momentum and energy, and total, to 1e-12; each run on
+    its own momenta (the ``spectrum_point`` dimension); a detector whose
+    spectrum is refused ('back': the samples alias what crosses it) is NaN,
+    the summary still written."""
+    from wavesweep.analysis.surface_flux import spectrum
+
+    table = {
+        "title": "spectra",
+        "grid": {"x": {"min": -64.0, "max": 40.0, "points": 640}, "boundary": "periodic"},
+        "packet": {"kind": "gaussian", "center": -16.0, "width": 4.0, "momentum": 2.0},
+        "evolve": {"dt": 0.01, "duration": 40.0, "scheme": "strang"},
+        "absorber": {"kind": "cap", "thickness": 12.0},
+        "record": {"every": 0.1, "snapshot_every": 40.0},
+        "detector": [{"name": "d", "x": 10.0}, {"name": "back", "x": -6.0}],
+        "sweep": {"packet.momentum": [1.8, 2.2]},
+    }
+    study = submit_and_run(table, tmp_path, "sp")
+    with xr.open_dataset(collect(tmp_path, "sp")) as ds:
+        density = ds.spectrum_probability_density
+        assert density.dims == ("momentum", "detector", "spectrum_point")
+        assert ds.spectrum_momentum.attrs["units"] == "m_e bohr au_time-1"
+        assert density.attrs["units"] == "1/(m_e bohr au_time-1)"
+        assert ds.spectrum_energy_density.attrs["units"] == "1/(hartree)"
+        assert ds.spectrum_total.dims == ("momentum", "detector")
+        for spec in study.runs:
+            at = ds.sel(momentum=spec.params["packet.momentum"])
+            ref = spectrum(tmp_path / "sp" / f"{spec.run_id}.nc", detector="d")["detectors"][0]
+            for name, key in (("spectrum_momentum", "momentum"), ("spectrum_probability_density",
+                              "probability_density"), ("spectrum_energy", "energy"),
+                              ("spectrum_energy_density", "energy_density")):
+                got, want = at[name].sel(detector="d").values, np.asarray(ref[key])
+                assert np.max(np.abs(got - want)) <= 1e-12 * np.max(np.abs(want)), name
+            assert at.spectrum_total.sel(detector="d").item() == pytest.approx(ref["total"], rel=1e-12)
+            assert np.isnan(at.spectrum_probability_density.sel(detector="back")).all()
+            assert np.isnan(at.spectrum_total.sel(detector="back")).all()
+        # the peak moves with the packet's momentum
+        peak = ds.spectrum_momentum.sel(detector="d").isel(
+            spectrum_point=density.sel(detector="d").argmax("spectrum_point"))
+        assert peak.values == pytest.approx([1.8, 2.2], abs=0.01)

@@ -65,11 +65,12 @@ import math
 import numpy as np
 
 from ..errors import JobError
-from ..io.record import layer_holding
+from ..io.record import initial_beyond, layer_holding
 from .recorded import run_record as read_record
 from ..io.results import open_result, result_units, source_name
 
 __all__ = ["time_transform", "trapezoid_weights", "surface_flux_amplitude", "momentum_spectrum", "spectrum",
+           "detector_spectra",
            "BAND_FLOOR", "STILL_TO_COME_WARN"]
 
 # V beyond a detector (outwards) above this x the mean kinetic energy of what crossed: a scatterer lies
@@ -78,6 +79,7 @@ SCATTERER_BEYOND = 1e-2
 BAND_FLOOR = 1e-8          # |psi(x_d)|^2 above this fraction of its peak sets the band W
 STILL_TO_COME_WARN = 1e-3  # a fraction still to come above this (of what crossed) is a warning
 SPECTRUM_FLOOR = 1e-6      # the momenta reported: where the density is above this fraction of its peak
+TRANSFORM_BLOCK = 2**21   # momenta x samples per block of the transform (32 MiB of complex phases)
 VARIES = 1e-3              # V counts as varying where it differs from V(x_d) by this fraction of <E_kin>
 
 
@@ -123,6 +125,13 @@ def surface_flux_amplitude(time, psi_detector, dpsi_detector, momentum, mass, x_
     at the samples (None: no field); ``initial``: b(k, 0) (None: 0)."""
     t = np.asarray(time, float)
     k = np.asarray(momentum, float)
+    rows = max(1, TRANSFORM_BLOCK // max(len(t), 1))
+    if len(k) > rows:   # blocks of momenta: no (momenta x samples) temporary beyond TRANSFORM_BLOCK
+        init = None if initial is None else np.asarray(initial, complex)
+        return np.concatenate([surface_flux_amplitude(t, psi_detector, dpsi_detector, k[i:i + rows], mass,
+                                                      x_detector, side, field_momentum, excursion, field_phase,
+                                                      None if init is None else init[i:i + rows])
+                               for i in range(0, len(k), rows)])
     psi = np.asarray(psi_detector, complex)
     dpsi = np.asarray(dpsi_detector, complex)
     zero = np.zeros_like(t)
@@ -170,15 +179,17 @@ def _end_correction(t, slope_samples, value_samples, k, p_t, alpha, mass) -> np.
     return dt**2 / 12 * out
 
 
-def _beyond_projection(psi0, x, x_detector, side, k) -> np.ndarray:
-    """b(k, 0) = (2 pi)^(-1/2) sum_{x beyond x_d} exp(-i k x) psi0 dx."""
-    part = np.where(side * (x - x_detector) > 0, psi0, 0.0)
-    if not np.any(part):
+def _beyond_projection(first, values, x, k) -> np.ndarray:
+    """b(k, 0) = (2 pi)^(-1/2) sum_{x beyond x_d} exp(-i k x) psi0 dx over
+    the part of psi0 beyond the detector, ``values`` from grid index
+    ``first`` (:func:`wavesweep.io.record.initial_beyond`)."""
+    if not len(values):
         return np.zeros(len(k), complex)
+    xs = x[first:first + len(values)]
     dx = x[1] - x[0]
     out = np.empty(len(k), complex)
     for i in range(0, len(k), 256):
-        out[i:i + 256] = np.exp(-1j * np.outer(k[i:i + 256], x)) @ part * dx / math.sqrt(2 * math.pi)
+        out[i:i + 256] = np.exp(-1j * np.outer(k[i:i + 256], xs)) @ values * dx / math.sqrt(2 * math.pi)
     return out
 
 
@@ -203,16 +214,22 @@ def local_band(psi_detector, dpsi_detector, mass, highest: bool = False) -> floa
     return float(e_loc.max()) if highest else float(e_loc.max() - e_loc.min())
 
 
-def momentum_spectrum(ds, setup, j: int, points: int = 401) -> dict:
+def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True) -> dict:
     """The spectrum through detector ``j`` of an open result (atomic units
-    inside, job units out); see :func:`spectrum`."""
+    inside, job units out); see :func:`spectrum`.  ``details=False`` leaves
+    out the warnings and ``still_to_come`` (None), which read the grid's
+    potential and the final psi: what is left reads no array of the grid's
+    size where the run recorded ``potential_min``, the detector's initial
+    mean and ``initial_beyond`` (``collect``'s per-run spectra)."""
     uc = result_units(ds)
     p_unit = uc["mass"] * uc["length"] / uc["time"]   # job momentum unit in atomic units
     name = str(ds["detector"].values[j])
     x = setup.grid.axes[0].coordinates
     x_d = setup.detectors[j].position
-    dens0 = np.abs(setup.psi0) ** 2
-    x0 = float(np.sum(dens0 * x) / np.sum(dens0))
+    x0 = setup.detector_value("detector_initial_mean", j)
+    if x0 is None:   # an older file: from psi0
+        dens0 = np.abs(setup.psi0) ** 2
+        x0 = float(np.sum(dens0 * x) / np.sum(dens0))
     side = 1.0 if x_d >= x0 else -1.0
     mass = setup.mass
     t = np.asarray(ds["time"].values, float) * uc["time"]
@@ -233,14 +250,18 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401) -> dict:
     k_top = min(math.sqrt(2 * mass * math.pi / dt_s), k_grid)
     p_end = float(field["field_momentum"][-1]) if field else 0.0
     coarse = side * np.linspace(0.0, k_top, 2048)[1:] - p_end
-    b0 = lambda k: _beyond_projection(setup.psi0, x, x_d, side, k)   # noqa: E731
+    beyond = (setup.initial_beyond or {}).get(j)
+    if beyond is None:   # an older file: from psi0
+        beyond = initial_beyond(setup.psi0, x, x_d, side)
+    b0 = lambda k: _beyond_projection(*beyond, x, k)   # noqa: E731
     dens_c = np.abs(surface_flux_amplitude(t, psi, dpsi, coarse, mass, x_d, side, initial=b0(coarse), **field)) ** 2
     if not np.any(dens_c > 0):
         raise JobError("--detector", f"nothing crossed detector {name!r} outwards during the run")
     # the band (module notes): an aliased spectrum fills the whole range it is computed on, so one still
     # above BAND_FLOOR of its peak at the top of a range the samples (not the grid) limit is refused
     top = dens_c[-len(dens_c) // 20:].max()
-    v_min = min(float(np.min(setup.static_potential)), 0.0)
+    v_low = setup.potential_min if setup.potential_min is not None else float(np.min(setup.static_potential))
+    v_min = min(v_low, 0.0)
     if k_top < k_grid and top > BAND_FLOOR * dens_c.max():
         # a record cut while psi still arrives leaks into every energy too (a truncated Fourier
         # integral falls off only as 1 / (E - E_end)); an alias does not fade when the record's end is
@@ -251,6 +272,10 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401) -> dict:
                                                 initial=b0(upper), **field)) ** 2
         top = float(tapered.max())
     if (k_top < k_grid and top > BAND_FLOOR * dens_c.max()) or -v_min * dt_s >= math.pi:
+        if not details:
+            raise JobError("record.every", f"{source_name(ds)}: samples {dt_s / uc['time']:g} "
+                                           f"{uc['time_label']} apart alias the band of energies arriving at "
+                                           f"detector {name!r}; see `wavesweep spectrum`")
         highest = max(local_band(psi, dpsi, mass, highest=True), _initial_band(setup.psi0, x, mass)) - v_min
         need = min(math.pi / highest, dt_s / 2) / uc["time"]
         raise JobError("record.every", f"{source_name(ds)}: samples {dt_s / uc['time']:g} {uc['time_label']} "
@@ -269,7 +294,15 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401) -> dict:
     total = float(np.trapezoid(density, np.abs(p_kin)))
     energy = p_kin**2 / (2 * mass)
     energy_density = density * mass / np.maximum(np.abs(p_kin), 1e-300)
-    warnings = []
+    out = {"detector": name, "side": "+" if side > 0 else "-",
+           "momentum": p_kin / p_unit, "probability_density": density * p_unit,
+           "energy": energy / uc["energy"], "energy_density": energy_density * uc["energy"],
+           "total": total, "still_to_come": None,
+           "momentum_units": _momentum_label(ds, uc), "energy_units": uc["energy_label"],
+           "warnings": []}
+    if not details:
+        return out
+    warnings = out["warnings"]
     v_static = np.asarray(setup.static_potential, float)
     e_mean = float(np.trapezoid(density * energy, np.abs(p_kin)) / total) if total > 0 else 0.0
     v_d = float(np.interp(x_d, x, v_static))
@@ -300,12 +333,8 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401) -> dict:
         warnings.append(f"the run ended while slow parts were still arriving at detector {name!r}: "
                         f"{to_come:.3g} more probability (against {total:.3g} that crossed) lies before it "
                         "moving towards it; extend evolve.duration for the low momenta")
-    return {"detector": name, "side": "+" if side > 0 else "-",
-            "momentum": p_kin / p_unit, "probability_density": density * p_unit,
-            "energy": energy / uc["energy"], "energy_density": energy_density * uc["energy"],
-            "total": total, "still_to_come": to_come,
-            "momentum_units": _momentum_label(ds, uc), "energy_units": uc["energy_label"],
-            "warnings": warnings}
+    out["still_to_come"] = to_come
+    return out
 
 
 def _momentum_label(ds, uc) -> str:
@@ -348,30 +377,13 @@ def spectrum(result, detector: str | None = None, points: int = 401) -> dict:
     without a final state).  JobError where the run cannot give one."""
     ds = open_result(result, require=("time", "flux"))
     try:
-        setup = read_record(ds)
-        if setup.grid.ndim != 1 or setup.grid.radial:
-            raise JobError("RUN.nc", f"{source_name(ds)}: momentum spectra are given for 1D cartesian runs only "
-                                     "so far")
-        if "frame_offset" in ds.variables:
-            raise JobError("RUN.nc", f"{source_name(ds)}: the run's grid fell with the packet; the spectrum needs "
-                                     "a grid fixed in the lab (grid.frame = 'lab')")
-        if "detector_dpsi_real" not in ds:
-            raise JobError("RUN.nc", f"{source_name(ds)}: the run did not record dpsi/dx at its detectors "
-                                     "(written by an older version); run the job again")
-        if setup.time_dependent and "field_momentum" not in ds:
-            raise JobError("RUN.nc", f"{source_name(ds)}: the potential depends on time but not through a "
-                                     "uniform field; the surface-flux spectrum needs V beyond the detector to be "
-                                     "a driving field at most")
-        names = [str(d) for d in ds["detector"].values]
-        if not names:
-            raise JobError("RUN.nc", f"{source_name(ds)}: the run has no detector; add a [[detector]]")
+        setup, names = _spectrum_record(ds)
         if detector is not None:
             if detector not in names:
                 raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
             chosen = [names.index(detector)]
         else:
-            chosen = [j for j in range(len(names))
-                      if layer_holding(setup, 0, setup.detectors[j].position) is None]
+            chosen = _outside_layers(setup, names)
         out = {"detectors": [], "warnings": []}
         for j in chosen:
             found = momentum_spectrum(ds, setup, j, points)
@@ -381,3 +393,47 @@ def spectrum(result, detector: str | None = None, points: int = 401) -> dict:
     finally:
         if ds is not result:
             ds.close()
+
+
+def detector_spectra(ds, points: int = 401) -> dict:
+    """Each detector's spectrum of an open result as :func:`spectrum` gives
+    it (the same numbers), without the warnings and ``still_to_come``:
+    ``{name: entry or None}``, None for a detector :func:`spectrum` leaves
+    out (inside an absorbing layer) or refuses (aliased samples, nothing
+    crossed).  Reads no array of the grid's size where the run recorded what
+    the spectrum needs from psi0 (:mod:`wavesweep.io.record`); ``collect``
+    calls it.  JobError where the run gives no spectrum at all."""
+    setup, names = _spectrum_record(ds)
+    out = {name: None for name in names}
+    for j in _outside_layers(setup, names):
+        try:
+            out[names[j]] = momentum_spectrum(ds, setup, j, points, details=False)
+        except JobError:
+            pass
+    return out
+
+
+def _outside_layers(setup, names) -> list:
+    return [j for j in range(len(names)) if layer_holding(setup, 0, setup.detectors[j].position) is None]
+
+
+def _spectrum_record(ds):
+    """(record, detector names) of a result that can give spectra; JobError naming why not."""
+    setup = read_record(ds)
+    if setup.grid.ndim != 1 or setup.grid.radial:
+        raise JobError("RUN.nc", f"{source_name(ds)}: momentum spectra are given for 1D cartesian runs only "
+                                 "so far")
+    if "frame_offset" in ds.variables:
+        raise JobError("RUN.nc", f"{source_name(ds)}: the run's grid fell with the packet; the spectrum needs "
+                                 "a grid fixed in the lab (grid.frame = 'lab')")
+    if "detector_dpsi_real" not in ds:
+        raise JobError("RUN.nc", f"{source_name(ds)}: the run did not record dpsi/dx at its detectors "
+                                 "(written by an older version); run the job again")
+    if setup.time_dependent and "field_momentum" not in ds:
+        raise JobError("RUN.nc", f"{source_name(ds)}: the potential depends on time but not through a "
+                                 "uniform field; the surface-flux spectrum needs V beyond the detector to be "
+                                 "a driving field at most")
+    names = [str(d) for d in ds["detector"].values]
+    if not names:
+        raise JobError("RUN.nc", f"{source_name(ds)}: the run has no detector; add a [[detector]]")
+    return setup, names

@@ -63,7 +63,7 @@ from ..grid import Axis, Grid
 
 __all__ = ["RecordedRun", "RecordedDetector", "RecordedAbsorber", "RecordedLayer", "read_record", "has_record",
            "record_checksum", "result_name", "RECORD_VERSION", "LANCZOS_MAX_POINTS", "DETECTOR_VALUES", "FINAL_DETECTOR_VALUES",
-           "side_probability", "classical_share", "first_arrival", "packet_side_positions", "layer_holding",
+           "side_probability", "classical_share", "initial_beyond", "BEYOND_FLOOR", "first_arrival", "packet_side_positions", "layer_holding",
            "layer_edge"]
 
 # Bumped when the record's content changes; files without it are rebuilt (bounded).
@@ -109,6 +109,26 @@ DETECTOR_VALUES = {
     "final_probability_to_come": ("1", "probability before the detector (or the inner edge of the layer "
                                        "holding it) at the run's end, moving towards it"),
 }
+
+# initial_beyond keeps psi0 beyond a detector where |psi0| is above this fraction of its peak (what
+# it drops moves b(k, 0) by at most this fraction of max|psi0| per grid point: far below 1e-12 of a
+# spectrum's peak; an imaginary-time state's tail is rounding noise near 1e-16 of its peak)
+BEYOND_FLOOR = 1e-15
+
+
+def initial_beyond(psi0, x, x_detector: float, side: float) -> tuple[int, np.ndarray]:
+    """The part of psi0 on the grid ``x`` beyond ``x_detector`` towards
+    ``side`` (+1: larger x), trimmed to the span where |psi0| exceeds
+    BEYOND_FLOOR of its peak: (index of its first point, values; empty
+    when nothing is there).  Run time and analysis of older files call it alike."""
+    psi0 = np.asarray(psi0)
+    x = np.asarray(x, float)
+    peak = float(np.max(np.abs(psi0))) if psi0.size else 0.0
+    there = np.flatnonzero((side * (x - x_detector) > 0) & (np.abs(psi0) > BEYOND_FLOOR * peak))
+    if not there.size:
+        return 0, np.zeros(0, complex)
+    return int(there[0]), np.asarray(psi0[there[0]:there[-1] + 1], complex)
+
 
 # Those the run computes from its final state (1D runs that keep it).
 FINAL_DETECTOR_VALUES = ("final_probability_beyond", "final_probability_to_come")
@@ -162,6 +182,8 @@ class RecordedRun:
     warnings: list | None = None
     lanczos: tuple | None = None
     detector_values: dict = field(default_factory=dict)
+    potential_min: float | None = None       # hartree (1D; None where the file does not say)
+    initial_beyond: dict | None = None       # detector index -> (first grid index, psi0 values, bohr^-1/2)
 
     def __getattribute__(self, name):
         # arrays of the grid's size read from a file are loaded on first use (_OnFirstUse)
@@ -307,10 +329,20 @@ def _read(ds) -> RecordedRun:
             if v.shape != (len(dets),):
                 raise ValueError(f"{name} does not match the detectors")
             values[name] = v
+    beyond = None
+    if "initial_beyond_first" in ds.variables and dets:
+        first = np.asarray(ds["initial_beyond_first"].values, np.int64)
+        parts = (np.asarray(ds["initial_beyond_real"].values, float)
+                 + 1j * np.asarray(ds["initial_beyond_imag"].values, float)) / math.sqrt(lf)
+        if first.shape != (len(dets),) or parts.shape[0] != len(dets):
+            raise ValueError("initial_beyond does not match the detectors")
+        beyond = {j: (int(first[j]), parts[j][np.isfinite(parts[j])]) for j in range(len(dets))}
     return RecordedRun(grid=grid, mass=mass, detectors=dets, absorber=absorber,
                        time_dependent=bool(int(a["time_dependent"])), marginals=marginals,
                        dt=float(a["dt"]) * tf, psi0=psi0, static_potential=v_full,
-                       warnings=warnings, lanczos=lanczos, detector_values=values)
+                       warnings=warnings, lanczos=lanczos, detector_values=values,
+                       potential_min=float(ds["potential_min"].values) * ef if "potential_min" in ds.variables else None,
+                       initial_beyond=beyond)
 
 
 def result_name(ds) -> str:

@@ -486,6 +486,27 @@ class ResultWriter:
                 v.coordinates = "detector_x detector_axis"
                 if name in rec["detectors"]:
                     v[:] = rec["detectors"][name]
+        if rec.get("potential_min") is not None:
+            v = self._var("potential_min", "f8", ())
+            v[...] = rec["potential_min"]
+            v.units, v.long_name = u["energy"], "minimum of the static potential on the grid"
+        if len(ds.dimensions["detector"]) and rec.get("initial_beyond") is not None:
+            # psi0 beyond each detector (the spectrum's b(k, 0)), NaN-padded to the longest
+            parts = rec["initial_beyond"]
+            ds.createDimension("initial_beyond_point", max(1, *(len(v) for _, v in parts)))   # 0 would be unlimited
+            v = self._var("initial_beyond_first", "i8", ("detector",))
+            v[:] = np.array([first for first, _ in parts], np.int64)
+            v.units, v.long_name = "1", "grid index of the first point of initial_beyond_real/imag"
+            for part in ("real", "imag"):
+                v = self._var(f"initial_beyond_{part}", "f8", ("detector", "initial_beyond_point"),
+                              fill_value=np.nan)
+                padded = np.full((len(parts), len(ds.dimensions["initial_beyond_point"])), np.nan)
+                for j, (_, values) in enumerate(parts):
+                    padded[j, :len(values)] = getattr(values, part)
+                v[:] = padded
+                v.units = f"{u['length']}-0.5"
+                v.long_name = (f"{part} part of the initial wave function beyond the detector (away from the "
+                               "packet), where above 1e-15 of its peak; NaN past its end")
         if rec.get("lanczos") is not None:
             alphas, betas = rec["lanczos"][:2]
             factor = rec["energy_factor"]

@@ -31,6 +31,15 @@ Variables, with ``P`` the parameter dimensions (or ``run``):
 ``has_result``     P                           1 where a result was found, else 0
 =================  ==========================  ==========================================
 
+Momentum spectra (1D single-surface runs that recorded dpsi/dx at their
+detectors; :func:`wavesweep.analysis.surface_flux.detector_spectra`, the
+numbers of ``wavesweep spectrum``): ``spectrum_momentum``,
+``spectrum_probability_density``, ``spectrum_energy`` and
+``spectrum_energy_density`` on (P, detector, spectrum_point), each run on
+its own momenta (NaN-padded; ``spectrum_point`` rather than ``momentum``,
+which a sweep of packet.momentum takes), and ``spectrum_total`` (P,
+detector); NaN for a detector or run without one, absent when no run has one.
+
 A point without a result (queued, running, failed, or never planned in a
 union of submissions that does not fill the grid) is NaN everywhere, with
 ``run_id = ""`` and ``has_result = 0``.
@@ -71,6 +80,7 @@ import xarray as xr
 from .._version import __version__
 from ..analysis.arrivals import arrival_times, coupled_setup
 from ..analysis.recorded import run_record
+from ..analysis.surface_flux import detector_spectra
 from ..analysis.transmission import coupled_totals, transmission_totals
 from ..errors import JobError
 from ..io.atomic import atomic_output
@@ -87,11 +97,17 @@ from .queue import Queue
 
 __all__ = ["collect", "collect_study", "missing_points", "SUMMARY_NAME", "MANIFEST_NAME"]
 
+# per run and detector, the momentum spectrum of what left (wavesweep spectrum), each run on its own
+# momentum grid: name -> key of the spectrum's entry
+SPECTRUM_VARIABLES = {"spectrum_momentum": "momentum", "spectrum_probability_density": "probability_density",
+                      "spectrum_energy": "energy", "spectrum_energy_density": "energy_density",
+                      "spectrum_total": "total"}
+SPECTRUM_POINTS = 401      # the spectrum's default points: collect's numbers are `spectrum --json`'s
 UNIT_ATTRS = ("units_length", "units_energy", "units_time", "units_mass")
 TIME_MERGE = 1e-9          # relative to the largest |time|: samples this close are one
 _BASE_KINDS = {"length", "energy", "time", "mass"}
 _RESERVED = {"time", "boundary", "detector", "detector_x", "run", "norm", "absorbed", "flux",
-             "surface", "state", "population_adiabatic",
+             "surface", "state", "population_adiabatic", "spectrum_point", *SPECTRUM_VARIABLES,
              "final_norm", "final_absorbed", "final_time", "wall_seconds", "run_id",
              "expected_run_id", "has_result", "transmitted_beyond",
              *(f"arrival_{k}" for k in ("probability", "mean", "std", "median", "q10", "q90",
@@ -120,6 +136,7 @@ class _Result:
     # surface axis (norm (time, surface), absorbed[face] (time, surface), arrivals[det][stat] (surface,))
     surfaces: list | None = None
     population_adiabatic: np.ndarray | None = None   # (time, state), record.adiabatic
+    spectra: dict = field(default_factory=dict)      # detector -> spectrum entry (1D single surface)
 
 
 @dataclass
@@ -342,6 +359,12 @@ def _analyse(ds, result: _Result) -> None:
         return
     result.arrivals = {name: d.stats for name, d in dists.items()}
     result.beyond = {name: d["beyond"] for name, d in totals["detectors"].items()}
+    if "detector_dpsi_real" in ds.variables:
+        try:     # what `wavesweep spectrum` gives, without its warnings (the run's own check judges those)
+            spectra = detector_spectra(ds, SPECTRUM_POINTS)
+        except JobError:   # a run that gives no spectrum (2D, a falling grid, V(t) not a field): NaN
+            spectra = {}
+        result.spectra = {name: entry for name, entry in spectra.items() if entry is not None}
 
 
 def _analyse_surfaces(ds, result: _Result) -> None:
@@ -576,6 +599,10 @@ def _fill(shape, where, results, times, faces, detectors, surfaces=None) -> dict
     }
     if surfaces and any(r.population_adiabatic is not None for r in results.values()):
         d["population_adiabatic"] = np.full(shape + (nt, len(surfaces)), nan)
+    points = max((len(e["momentum"]) for r in results.values() for e in r.spectra.values()), default=0)
+    if points:   # each run's spectrum on its own momenta, NaN-padded (all have SPECTRUM_POINTS)
+        for name in SPECTRUM_VARIABLES:
+            d[name] = np.full(shape + (nd,) + (() if name == "spectrum_total" else (points,)), nan)
     for cell, run in where.items():
         d["expected_run_id"][cell] = run["run_id"]
         r = results.get(run["run_id"])
@@ -594,6 +621,13 @@ def _fill(shape, where, results, times, faces, detectors, surfaces=None) -> dict
                 for k in ARRIVAL_STATS:
                     d[f"arrival_{k}"][cell][..., j] = r.arrivals[det][k]
                 d["transmitted_beyond"][cell][..., j] = r.beyond.get(det, nan)
+            if det in r.spectra:
+                for name, key in SPECTRUM_VARIABLES.items():
+                    if name == "spectrum_total":
+                        d[name][cell][j] = float(r.spectra[det][key])
+                    else:
+                        values = np.asarray(r.spectra[det][key], float)
+                        d[name][cell][j, :len(values)] = values
         if r.population_adiabatic is not None and "population_adiabatic" in d:
             d["population_adiabatic"][cell][it] = r.population_adiabatic
         d["final_norm"][cell] = r.norm[-1]
@@ -629,6 +663,13 @@ _META = {
                                      "the run's constant uniform force)"),
     "arrival_still_to_come": ("1", "probability before the detector at the end, moving towards it "
                                    "(what may still arrive)"),
+    "spectrum_momentum": (None, "kinetic momentum at the run's end along the detector's axis (the run's own "
+                                "momenta, NaN-padded)"),
+    "spectrum_probability_density": (None, "probability per unit momentum of what crossed the detector by the "
+                                           "run's end (surface-flux method)"),
+    "spectrum_energy": (None, "kinetic energy at the run's end of spectrum_momentum"),
+    "spectrum_energy_density": (None, "probability per unit kinetic energy of what crossed the detector"),
+    "spectrum_total": ("1", "probability that crossed the detector outwards, integral of the spectrum"),
     "population_adiabatic": ("1", "probability on the adiabatic state (local eigenvectors of the potential "
                                   "matrix, ascending energy)"),
 }
@@ -646,12 +687,20 @@ def _dataset(data, params, pdims, mode, times, faces, detectors, results, first)
         "flux": pdims + ["time"] + per + ["detector"], "final_norm": pdims + per,
         "final_absorbed": pdims + per + ["boundary"], "transmitted_beyond": pdims + per + ["detector"],
         "population_adiabatic": pdims + ["time", "state"],
+        **{name: pdims + ["detector", "spectrum_point"] for name in SPECTRUM_VARIABLES},
+        "spectrum_total": pdims + ["detector"],
         **{f"arrival_{k}": pdims + per + ["detector"] for k in ARRIVAL_STATS},
     }
     ds = xr.Dataset()
+    spectrum = next((e for r in results.values() for e in r.spectra.values()), None)
+    spectrum_units = {}
+    if spectrum is not None:
+        mu, eu = spectrum["momentum_units"], spectrum["energy_units"]
+        spectrum_units = {"spectrum_momentum": mu, "spectrum_probability_density": f"1/({mu})",
+                          "spectrum_energy": eu, "spectrum_energy_density": f"1/({eu})"}
     for name, values in data.items():
         unit, long = _META[name]
-        unit = {"flux": funit, "final_time": tunit}.get(name, unit if unit is not None else tunit)
+        unit = {"flux": funit, "final_time": tunit, **spectrum_units}.get(name, unit if unit is not None else tunit)
         if values.dtype == object:
             values = values.astype(str)
         if per and name in ("norm", "absorbed", "flux", "final_norm", "final_absorbed", "transmitted_beyond") \
