@@ -364,13 +364,20 @@ def arrival_times(result, detector: str | None = None, classical: bool = True, w
             ds.close()
 
 
-def _arrivals(ds, detector, classical=True, warnings=True, curves=True):
+def _detector_names(ds, detector: str | None) -> list[str]:
+    """The run's detector names, refused in one line when it has none or
+    lacks the one asked for (``--detector``)."""
     names = [str(d) for d in ds["detector"].values] if "detector" in ds.coords else []
     if not names:
         raise JobError("RUN.nc", f"{source_name(ds)}: the run recorded no detector flux; add a [[detector]] table "
                                  "to the job and run it again")
     if detector is not None and detector not in names:
         raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
+    return names
+
+
+def _arrivals(ds, detector, classical=True, warnings=True, curves=True):
+    names = _detector_names(ds, detector)
     uc = result_units(ds)
     # what the run wrote for analysis: never a set-up rebuilt from the job attribute
     setup = read_record(ds)
@@ -512,12 +519,7 @@ def _surface_arrivals(ds, detector=None) -> dict:
     surface.  The classical estimate and the probability still to come are
     NaN (COUPLED_NOTE); a run still arriving at its end is flagged from the
     flux's tail alone.  Returns {detector: {surface: ArrivalDistribution}}."""
-    names = [str(d) for d in ds["detector"].values] if "detector" in ds.coords else []
-    if not names:
-        raise JobError("RUN.nc", f"{source_name(ds)}: the run recorded no detector flux; add a [[detector]] table "
-                                 "to the job and run it again")
-    if detector is not None and detector not in names:
-        raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
+    names = _detector_names(ds, detector)
     surfaces = [str(s) for s in ds["surface"].values]
     uc = result_units(ds)
     t = np.asarray(ds["time"].values, float)

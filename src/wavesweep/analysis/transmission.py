@@ -331,13 +331,7 @@ def _at_detector(ds, setup, j, k_all, w_all, points) -> dict:
     w_fwd = np.where(forward, w_all, 0.0)
     k_band = k_all[w_fwd > BAND_FLOOR * w_fwd.max()]
     e_band = v_start + k_band**2 / (2 * mass)
-    dt_rec = float(np.median(np.diff(t)))
-    width = float(e_band.max() - e_band.min())
-    if width >= 2 * math.pi / dt_rec:
-        need = 2 * math.pi / width / uc["time"]
-        raise JobError("record.every", f"samples {dt_rec / uc['time']:g} {uc['time_label']} apart alias "
-                                       f"the packet's band of {width / uc['energy']:.3g} {uc['energy_label']}; "
-                                       f"use record.every < {need:.3g} {uc['time_label']}")
+    dt_rec = _unaliased_spacing(t, e_band, uc)
     k = _wave_numbers_with_weight(k_all, w_fwd, points)
     phi = _momentum_amplitude(setup.psi0, x, k)
     # --- what had not passed the detector by the end (module notes) ---
@@ -849,6 +843,21 @@ def _duration_needed(t, amp, e_local, k_all, w_fwd, v_start, v_det, mass, larges
     return max(float(t0 + distance / v_slow - t[0]), span)
 
 
+def _unaliased_spacing(t, e_band, uc) -> float:
+    """The samples' spacing (hartree^-1 hbar), refused in one line naming
+    record.every when the packet's band of energies ``e_band`` (hartree) is
+    as wide as 2 pi hbar / spacing: the trapezoid over the samples is exact
+    only up to aliases 2 pi hbar / spacing apart (module notes)."""
+    dt_rec = float(np.median(np.diff(t)))
+    width = float(e_band.max() - e_band.min())
+    if width >= 2 * math.pi / dt_rec:
+        need = 2 * math.pi / width / uc["time"]
+        raise JobError("record.every", f"samples {dt_rec / uc['time']:g} {uc['time_label']} apart alias "
+                                       f"the packet's band of {width / uc['energy']:.3g} {uc['energy_label']}; "
+                                       f"use record.every < {need:.3g} {uc['time_label']}")
+    return dt_rec
+
+
 def _momentum_amplitude(psi, x, k) -> np.ndarray:
     """phi(k) = (2 pi)^(-1/2) int psi(x) exp(-i k x) dx by the grid sum (exact
     for a band-limited psi on the grid), in blocks to bound the memory."""
@@ -1058,13 +1067,7 @@ def coupled_energy_resolved(ds, setup, detector: str | None = None, points: int 
                                         "start it farther from the detector")
     k_band = k_all[w_fwd > BAND_FLOOR * w_fwd.max()]
     e_band = v_in + k_band**2 / (2 * setup.mass)
-    dt_rec = float(np.median(np.diff(t)))
-    width = float(e_band.max() - e_band.min())
-    if width >= 2 * math.pi / dt_rec:
-        need = 2 * math.pi / width / uc["time"]
-        raise JobError("record.every", f"samples {dt_rec / uc['time']:g} {uc['time_label']} apart alias "
-                                       f"the packet's band of {width / uc['energy']:.3g} {uc['energy_label']}; "
-                                       f"use record.every < {need:.3g} {uc['time_label']}")
+    dt_rec = _unaliased_spacing(t, e_band, uc)
     v_final = np.array([float(np.interp(x_d, x, potential[s])) for s in range(len(surfaces))])
     end_ratio = float(np.max(np.abs(amp[:, -1]) ** 2)) / peak
     psi_end = _final_psi(ds, uc)
