@@ -95,7 +95,8 @@ def test_arrivals_per_surface_add_up_to_what_crossed(crossing_run):
         assert not after[s].stats["truncated"] and np.isfinite(after[s].stats["mean"])
         assert np.isnan(after[s].stats["classical_mean"]) and np.isnan(after[s].stats["still_to_come"])
     assert sum(d.stats["probability"] for d in after.values()) == pytest.approx(1.0 - left, abs=1e-6)
-    # both surfaces carry much (the diabatic passage keeps about exp(-2 pi V12^2 / (v F)) on A)
+    # not a physics check (the coupling here is local, so Landau-Zener does not apply): only that both
+    # surfaces carry probability, so the per-surface sums above are tested on two populated surfaces
     assert 0.1 < after["A"].stats["probability"] < 0.9
     # B starts below A beyond the crossing (V_B = -F x / 2): its part arrives sooner
     assert after["B"].stats["mean"] < after["A"].stats["mean"]

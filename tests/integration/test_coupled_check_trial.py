@@ -179,8 +179,7 @@ BOX_JOB = {
 def test_a_box_without_absorber_that_returns_the_packet_through_a_detector_is_a_warning():
     # free flight at 0.06 hartree (0.08 on A beyond the crossing): 94 + 24 bohr to the wall and back to
     # the detector take about (94 + 24) / sqrt(2 * 0.08 / 2000) = 1.3e4 au: within 16000, not within 3000
-    v = math.sqrt(2 * 0.08 / 2000.0)
-    assert 3000.0 < (94 + 24) / v < 16000.0
+    # (so the run below is long enough for the return and a 3000 run is not: the job's own numbers)
     report = check_job(make_job(BOX_JOB), trial_seconds=0)
     (absorber,) = [f for f in report.findings if f.topic == "absorber"]
     assert absorber.level == "warn" and absorber.field == "absorber.kind" and "'right'" in absorber.message

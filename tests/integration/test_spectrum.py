@@ -79,15 +79,21 @@ def test_the_cli_prints_the_spectrum_as_json(free_run, capsys):
 def test_a_record_too_coarse_for_the_band_is_refused_with_the_sampling_that_would_do(tmp_path):
     """The trapezoid over samples dt_s apart is exact up to aliasing while
     what arrives lies in a band narrower than 2 pi / dt_s (module notes);
-    here the packet's energies reach 3.6 hartree and dt_s = 4 resolves up
-    to pi / 4: the aliased spectrum is still up there, refused with the
-    sampling that would do (pi / 3.6 = 0.87)."""
+    here dt_s = 4 resolves energies up to pi / 4, far below what the packet
+    holds: the aliased spectrum is still up there, refused with the sampling
+    that would do, pi / E_max, E_max where the packet's momentum density
+    (its Fourier transform, gaussian_momentum_density) falls to 1e-8 of its
+    peak (the band floor), to 5 %."""
     table = copy.deepcopy(FREE)
     table["record"] = {"every": 4.0, "snapshot_every": 40.0}
     path = _run(table, tmp_path)
     with pytest.raises(JobError) as e:
         spectrum(path)
-    assert e.value.field == "record.every" and "use record.every < 0.85 au_time" in e.value.message
+    assert e.value.field == "record.every"
+    sigma_p = 1.0 / (2 * SIGMA)
+    e_max = (P0 + sigma_p * math.sqrt(2 * math.log(1e8))) ** 2 / 2
+    said = float(e.value.message.split("use record.every < ")[1].split()[0])
+    assert said == pytest.approx(math.pi / e_max, rel=0.05)
 
 
 def test_the_time_transform_is_exact_up_to_aliasing():
@@ -153,7 +159,7 @@ def test_the_transmitted_spectrum_of_a_rectangular_barrier_is_t_times_the_incide
     assert out["warnings"] == []
 
 
-# A 1D atom: soft Coulomb (softening^2 = 2, ground state -0.5 hartree) cut off
+# A 1D atom: soft Coulomb (softening^2 = 2, ground state -0.5 hartree, from memory) cut off
 # smoothly from |x| = 25 bohr (a bare 1/|x| tail would shift the asymptotic
 # energies), ionised by a 5-cycle sin^2 pulse of omega = 1 hartree through the
 # `field` kind (A(T) = 0 at its end).  The detectors sit midway between grid
@@ -202,7 +208,7 @@ def test_a_driven_atom_spectrum_is_the_final_state_beyond_each_detector(tmp_path
         shown = reference > 1e-3 * reference.max()
         assert np.all(np.sign(k[k != 0]) == (1 if side == "right" else -1))
         assert np.max(np.abs(d["probability_density"] - reference)[shown] / reference[shown]) < 0.02
-        # the photoelectron line at E = omega - I_p = 0.5 hartree
+        # the photoelectron line at E = omega - I_p = 0.5 hartree (I_p = 0.5 from memory, as above)
         assert d["energy"][int(np.argmax(d["probability_density"]))] == pytest.approx(0.5, abs=0.05)
         assert d["still_to_come"] > 0
     assert any("still arriving" in w and "right" in w for w in out["warnings"])

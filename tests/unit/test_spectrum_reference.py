@@ -2,8 +2,7 @@
 closed forms before the code is checked against them.
 
 Sources: the rectangular-barrier transmission (textbook closed form, from
-memory); unitarity of a lossless step (R + T = 1 with the flux factor q/k,
-from memory); Parseval's theorem for the plane-wave projection (the
+memory); slicing a barrier leaves its transfer matrix unchanged; Parseval's theorem for the plane-wave projection (the
 Fourier transform is unitary); the Gaussian's Fourier transform.
 """
 from __future__ import annotations
