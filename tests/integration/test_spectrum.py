@@ -272,3 +272,20 @@ def test_a_scatterer_beyond_the_detector_is_said(tmp_path):
     table["potential"] = [{"kind": "barrier", "height": 1.0, "width": 1.0, "center": 20.0}]
     out = spectrum(_run(table, tmp_path))
     assert any("V beyond it" in w and "not the spectrum of what left" in w for w in out["warnings"])
+
+
+def test_a_field_still_on_at_the_end_is_said_and_another_moving_term_is_refused(tmp_path):
+    """The Volkov waves are the outgoing states only where the field alone
+    acts (Tao & Scrinzi 2012): a run ended mid-pulse reports momenta at its
+    end, not final ones (a warning), and a run with another term that moves
+    in time (an oscillating barrier beside the field) has no surface-flux
+    spectrum at all (refused in one line, not a silent number)."""
+    pulse = {"kind": "field", "amplitude": 0.01, "omega": 1.0, "envelope": "sin2", "duration": 80.0}
+    table = {**copy.deepcopy(FREE), "particle": {"charge": -1.0}, "potential": [pulse]}
+    out = spectrum(_run(table, tmp_path / "mid"))      # the pulse lasts 80, the run 40
+    assert any("field still acts at the end" in w for w in out["warnings"])
+    table["potential"] = [{**pulse, "duration": 20.0},
+                          {"kind": "expression", "expression": "0.1 * sin(t) * exp(-(x + 40)**2)"}]
+    with pytest.raises(JobError) as e:
+        spectrum(_run(table, tmp_path / "moving"))
+    assert "expression" in e.value.message and "not a uniform field" in e.value.message

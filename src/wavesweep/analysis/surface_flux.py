@@ -16,9 +16,10 @@ potential is that field alone, so chi_k are the outgoing states there and,
 with Theta = Theta(x - x_d),
 
     b(k, t) = <chi_k(t)| Theta |psi(t)>,
-    d_t b = i <chi_k| [H, Theta] |psi> = i <chi_k| [T, Theta] |psi>
+    d_t b = i <chi_k| H_f Theta - Theta H |psi> = i <chi_k| [T, Theta] |psi>
 
-(H = T + V(x, t) and V commutes with Theta).  [T, Theta] psi = -(1/2m)
+(wherever Theta is not zero H is the field's own H_f, so H_f Theta - Theta H
+= [T, Theta]; the field's -q E x commutes with Theta).  [T, Theta] psi = -(1/2m)
 (delta' psi + 2 delta psi'), and an integration by parts with
 d_x chi_k^* = -i (k - qA) chi_k^* gives
 
@@ -303,6 +304,12 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
     if not details:
         return out
     warnings = out["warnings"]
+    if field:
+        pushed = np.abs(np.diff(field["field_momentum"][-3:]))
+        if pushed.size and float(pushed.max()) > 1e-6 * max(float(np.max(np.abs(p_kin))), 1e-300):
+            warnings.append(f"detector {name!r}: the field still acts at the end of the run (its momentum "
+                            "transfer still changes between the last samples): the momenta are those at the "
+                            "run's end, not the final ones; extend evolve.duration past the pulse")
     v_static = np.asarray(setup.static_potential, float)
     e_mean = float(np.trapezoid(density * energy, np.abs(p_kin)) / total) if total > 0 else 0.0
     v_d = float(np.interp(x_d, x, v_static))
@@ -417,6 +424,22 @@ def _outside_layers(setup, names) -> list:
     return [j for j in range(len(names)) if layer_holding(setup, 0, setup.detectors[j].position) is None]
 
 
+def _moving_terms(ds) -> list[str]:
+    """Kinds of the run's potential terms that change in time and are no
+    uniform force (a field or gravity), from the job text the result
+    stores; [] when it cannot be read (older files: the record's own
+    check then stands)."""
+    import tomllib   # lazy: only a run whose potential depends on time needs its job read
+    # lazy: the job's terms are rebuilt only to see which move in time (the record does not say)
+    from ..job import job_from_dict
+    from ..setup import Model
+    try:
+        model = Model(job_from_dict(tomllib.loads(str(ds.attrs.get("job", "")))))
+    except (tomllib.TOMLDecodeError, JobError):
+        return []
+    return [t.kind for t in model.terms if t.time_dependent and not t.uniform_force]
+
+
 def _spectrum_record(ds):
     """(record, detector names) of a result that can give spectra; JobError naming why not."""
     setup = read_record(ds)
@@ -429,6 +452,11 @@ def _spectrum_record(ds):
     if "detector_dpsi_real" not in ds:
         raise JobError("RUN.nc", f"{source_name(ds)}: the run did not record dpsi/dx at its detectors "
                                  "(written by an older version); run the job again")
+    moving = _moving_terms(ds) if setup.time_dependent else []
+    if moving:
+        raise JobError("RUN.nc", f"{source_name(ds)}: the potential's {', '.join(moving)} term(s) change in "
+                                 "time and are not a uniform field: beyond the detector the Volkov waves of "
+                                 "the field are then not the outgoing states, so no surface-flux spectrum")
     if setup.time_dependent and "field_momentum" not in ds:
         raise JobError("RUN.nc", f"{source_name(ds)}: the potential depends on time but not through a "
                                  "uniform field; the surface-flux spectrum needs V beyond the detector to be "
