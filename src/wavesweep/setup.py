@@ -819,13 +819,20 @@ class CoupledSetup(Setup):
         with ``record.adiabatic``, ``population_adiabatic`` (state,): the
         probability on each adiabatic state at time ``t``
         (:meth:`adiabatic_basis`, :func:`~wavesweep.surfaces.adiabatic_populations`)."""
-        each = observer.measure_members(psi, np.zeros(self.grid.shape))
+        if getattr(self, "_no_potential", None) is None:   # the per-surface observables see no V: made once
+            self._no_potential = np.zeros(self.grid.shape)
+        each = observer.measure_members(psi, self._no_potential)
         out = {key: np.array([e[key] for e in each]) for key in ("norm", "x_mean", "x_std", "p_mean", "flux")}
         if "detector_psi" in each[0]:
             out["detector_psi"] = np.array([e["detector_psi"] for e in each])
         kinetic = float(sum(e["energy"] * e["norm"] for e in each if e["norm"] > 0))
         v = self.hamiltonian.matrix(t if self.hamiltonian.time_dependent else None)
-        potential = float(np.real(np.sum(np.conj(psi)[:, None] * v * psi[None, :]))) * self.grid.cell_volume
+        # sum_a <psi_a|V_aa|psi_a> + 2 Re sum_{a<b} <psi_a|V_ab|psi_b> (V real symmetric): no S x S temporaries
+        rho = np.abs(psi) ** 2
+        potential = sum(float(np.vdot(rho[a], v[a, a])) for a in range(len(self.surfaces)))
+        potential += sum(2.0 * float(np.real(np.vdot(psi[a], v[a, b] * psi[b])))
+                         for a, b in self.hamiltonian.couplings)
+        potential *= self.grid.cell_volume
         total = float(out["norm"].sum())
         out["energy"] = (kinetic + potential) / total if total > 0 else float("nan")
         if self.adiabatic:
