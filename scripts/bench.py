@@ -703,14 +703,19 @@ def bench_screen(repeats: int, backend: str = "auto"):
         "detector": [{"name": "screen", "x": 5.0}],
     }
     plain_sim = Simulation(job_from_dict(copy.deepcopy(table)))
+    lined = copy.deepcopy(table)
+    lined["detector"][0]["spectrum"] = True   # a line recording psi and dpsi/dn for its spectrum
+    line_sim = Simulation(job_from_dict(lined))
     table["detector"][0]["resolved"] = True
     screen_sim = Simulation(job_from_dict(table))
-    for sim in (plain_sim, screen_sim):
+    for sim in (plain_sim, screen_sim, line_sim):
         sim.setup.fft_backend = backend
     setup = screen_sim.setup
     prop = setup.make_propagator()
     holder = {"psi": prop.step(setup.psi0.astype(setup.dtype), 2)}
-    observers = {"plain": plain_sim.setup.make_observer(), "screen": setup.make_observer()}
+    observers = {"plain": plain_sim.setup.make_observer(), "screen": setup.make_observer(),
+                 "line": line_sim.setup.make_observer()}
+    sims = {"plain": plain_sim, "screen": screen_sim, "line": line_sim}
     v = setup.hamiltonian.static_potential
     absorbed = np.zeros(0)
 
@@ -718,15 +723,13 @@ def bench_screen(repeats: int, backend: str = "auto"):
         holder["psi"] = prop.step(holder["psi"], 1)
 
     with tempfile.TemporaryDirectory() as folder:
-        books = {name: sim.begin(Path(folder) / f"{name}.nc")
-                 for name, sim in (("plain", plain_sim), ("screen", screen_sim))}
+        books = {name: sim.begin(Path(folder) / f"{name}.nc") for name, sim in sims.items()}
         values = {name: obs.measure(holder["psi"], v) for name, obs in observers.items()}
-        samples = {"plain": 0, "screen": 0}
+        samples = {name: 0 for name in sims}
 
         def write(name):
             samples[name] += 1
-            sim = plain_sim if name == "plain" else screen_sim
-            sim.observe(books[name], dict(values[name]), 0.01 * samples[name], absorbed)
+            sims[name].observe(books[name], dict(values[name]), 0.01 * samples[name], absorbed)
 
         # the work the screen adds to the flux pass: its line (psi and dpsi/dn as transverse
         # coefficients) transformed back and multiplied, timed on its own (a difference of two
@@ -734,15 +737,19 @@ def bench_screen(repeats: int, backend: str = "auto"):
         ny = setup.grid.axes[1].points
         line = np.random.default_rng(1).standard_normal((2, 1, 1, ny)) + 0j
         obs = observers["screen"]
-        ratios = {"profile": [], "measure": [], "write": [], "sample": []}
+        ratios = {"profile": [], "measure": [], "write": [], "sample": [], "line_measure": [], "line_write": []}
         inner = 5
         for _ in range(repeats):
             one = timed(step, inner)
             m_plain = timed(lambda: observers["plain"].measure(holder["psi"], v), inner)
             m_screen = timed(lambda: obs.measure(holder["psi"], v), inner)
-            profile = timed(lambda: obs._screen_profile(line[0], line[1], 0), 100)
+            profile = timed(lambda: obs._screen_profile(*obs._line_values(line[0], line[1], 0)), 100)
             w_plain = timed(lambda: write("plain"), 256)
             w_screen = timed(lambda: write("screen"), 256)
+            m_line = timed(lambda: observers["line"].measure(holder["psi"], v), inner)
+            w_line = timed(lambda: write("line"), 256)
+            ratios["line_measure"].append((m_line - m_plain) / one)
+            ratios["line_write"].append((w_line - w_plain) / one)
             one = 0.5 * (one + timed(step, inner))
             ratios["profile"].append(profile / one)
             ratios["measure"].append((m_screen - m_plain) / one)
@@ -758,6 +765,10 @@ def bench_screen(repeats: int, backend: str = "auto"):
     print(f"  a whole measurement resolved minus plain (noisy: two large timings), per sample: {med['measure']:6.3f}x")
     print(f"  the whole sample with the screen (all observables and the write), per sample:  {med['sample']:6.3f}x"
           f" (recorded every 10 steps: {med['sample'] / 10:.3f}x per step)")
+    print(f"  a spectrum line (spectrum = true): its measurement minus plain (noisy), per sample: "
+          f"{med['line_measure']:6.3f}x")
+    print(f"  writing its psi and dpsi/dn (4 x 1024 values), per sample:                       "
+          f"{med['line_write']:6.3f}x")
     return med
 
 

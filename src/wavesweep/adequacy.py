@@ -1668,6 +1668,7 @@ def assess(setup) -> list[Finding]:
     out += size_findings(setup.grid)
     out += detector_findings(setup)
     out += screen_sampling_findings(setup, dyn)
+    out += spectrum_sampling_findings(setup, dyn)
     out += absorber_findings(setup, dyn)
     out += mean_field_findings(setup, dyn)
     out.append(disk_finding(setup))
@@ -1706,6 +1707,33 @@ def screen_sampling_findings(setup, dyn) -> list[Finding]:
                 f"record.every to {passing / tf:.2g} {T} or less",
                 {"detector": det.name, "every": every / tf, "passing_time": passing / tf}, field="record.every"))
     return out
+
+
+def spectrum_sampling_findings(setup, dyn) -> list[Finding]:
+    """A line's or plane's surface-flux spectrum (``spectrum = true``) is a
+    time transform over the samples: energies up to E_max (the packet's
+    kinetic energy reach over the run, all axes, the 6 sigma_p reach, plus
+    -min V for bound parts) alias unless record.every < pi hbar / E_max (the
+    Poisson summation formula; :mod:`wavesweep.analysis.surface_flux`); the
+    spectrum would be refused after the run, so it is said before it."""
+    lines = [d for d in setup.detectors if getattr(d, "spectrum", False) and setup.grid.ndim > 1]
+    if not lines:
+        return []
+    u = setup.units
+    tf, T = u.factor("time"), u.unit_label("time")
+    every = setup.sample_steps * setup.dt
+    reach = float(np.sum(np.asarray(dyn.over_run[6], float) ** 2)) / (2 * setup.mass)
+    e_max = reach - min(float(np.min(setup.recorded_potential())), 0.0)
+    if not e_max > 0 or every * e_max < math.pi:
+        return []
+    need = math.pi / e_max
+    names = ", ".join(repr(d.name) for d in lines)
+    return [Finding("detector", "warn",
+                    f"{names} record{'s' if len(lines) == 1 else ''} a spectrum, a time transform over the samples: "
+                    f"record.every = {every / tf:.4g} {T} aliases energies above {math.pi / every / u.factor('energy'):.4g} "
+                    f"{u.unit_label('energy')}, and the packet reaches {e_max / u.factor('energy'):.4g} "
+                    f"{u.unit_label('energy')}; set record.every to {need / tf:.2g} {T} or less",
+                    {"every": every / tf, "every_needed": need / tf}, field="record.every")]
 
 
 # ---------------------------------------------------------------------------

@@ -634,11 +634,19 @@ def _spectrum(args) -> int:
         print(json.dumps(_finite(out)))
     else:
         for d in out["detectors"]:
-            peak = int(np.argmax(d["probability_density"]))
             come = "" if d["still_to_come"] is None else f"; still to come {d['still_to_come']:.3g}"
+            density = np.asarray(d["probability_density"])
+            at = np.unravel_index(int(np.argmax(density)), density.shape)
+            where = [f"{d['momentum'][at[0]]:.4g}"] + [f"{d['momentum_' + a][i]:.4g}"   # normal, transverse
+                                                      for a, i in zip(d.get("transverse_axes", []), at[1:])]
+            names = [d.get("axis", "")] + d.get("transverse_axes", [])
+            label = "p" if len(where) == 1 else "(" + ", ".join(f"p_{n}" for n in names) + ")"
+            value = where[0] if len(where) == 1 else "(" + ", ".join(where) + ")"
+            e_peak = d["energy"][int(np.argmax(d["energy_density"]))]
             print(f"detector {d['detector']!r} (leaving to {d['side']}): total {d['total']:.6g}{come}; "
-                  f"peak at p = {d['momentum'][peak]:.4g} {d['momentum_units']} "
-                  f"(E = {d['energy'][peak]:.4g} {d['energy_units']})")
+                  f"peak at {label} = {value} {d['momentum_units']}; energy peak {e_peak:.4g} "
+                  f"{d['energy_units']}; density good to {max(d['cut_uncertainty'], 1e-16):.0e} of its "
+                  f"peak at the record's end")
         if args.plot:
             print(f"figure: {args.plot}")
     _warn("spectrum", out["warnings"])

@@ -12,6 +12,9 @@
   time-energy Fourier transform gives energy-resolved transmission, and
   dpsi/dx there (both already computed for the flux), which with it gives
   the surface-flux momentum spectrum (:mod:`wavesweep.analysis.surface_flux`);
+  on a 2D/3D detector with ``spectrum = true``, psi and dpsi/dn at every
+  point of its line or plane (the flux pass's line transformed back along
+  the transverse axes; :mod:`wavesweep.analysis.plane_spectrum`);
 * autocorrelation <psi(0)|psi(t)>;
 * with a condensate's contact interaction g N |psi|^2 (:mod:`wavesweep.interaction`),
   the energy is the Gross-Pitaevskii functional per atom,
@@ -70,12 +73,15 @@ def recorded_scalars(interacting: bool = False) -> list[Scalar]:
 class Detector:
     """A point (1D), line (2D) or plane (3D) at ``position`` (bohr) across
     ``axis``; ``resolved``: its flux density along the line or plane is
-    recorded too (a screen)."""
+    recorded too (a screen); ``spectrum``: psi and its normal derivative
+    along the line or plane are recorded too (the surface-flux spectrum's
+    input; a 1D detector records them always)."""
 
     name: str
     axis: int
     position: float
     resolved: bool = False
+    spectrum: bool = False
 
 
 def spectral_derivative(psi: np.ndarray, ax, axis: int) -> np.ndarray:
@@ -173,6 +179,10 @@ class Observer:
         self.stride = int(stride)
         if self.screens and (frame is not None or grid.ndim < 2):
             raise ValueError("a resolved screen needs a line or plane of a grid in the lab")
+        # 2D/3D detectors that record psi and dpsi/dn along them (the surface-flux spectrum's input)
+        self.spectrum_lines = [n for n, d in enumerate(self.detectors) if d.spectrum and grid.ndim > 1]
+        if self.spectrum_lines and frame is not None:
+            raise ValueError("a spectrum's line or plane needs a grid in the lab")
         self.dv = grid.cell_volume
         self._nb = members or 1
         nd = grid.ndim
@@ -257,7 +267,7 @@ class Observer:
         flux = np.zeros((nb, len(self.detectors)))
         amp = np.full((nb, len(self.detectors)), complex("nan"))
         slope = np.full((nb, len(self.detectors)), complex("nan"))
-        self._profiles = {}
+        self._profiles, self._lines = {}, {}
         groups = self._groups
         if self.frame is not None:   # the lab detectors the falling grid covers now
             covered = [(n, self.frame.covered(self.grid, d.axis, d.position, t)) for n, d in enumerate(self.detectors)]
@@ -280,6 +290,9 @@ class Observer:
                 r["detector_dpsi"] = slope[b].copy()
             if self.screens:
                 r["screen_flux"] = np.stack([self._profiles[n][b] for n in self.screens])
+            if self.spectrum_lines:
+                r["spectrum_psi"] = np.stack([self._lines[n][0][b] for n in self.spectrum_lines])
+                r["spectrum_dpsi"] = np.stack([self._lines[n][1][b] for n in self.spectrum_lines])
             if self._psi0 is not None:
                 r["autocorrelation_real"] = float(dens[b, 4] * dv)
                 r["autocorrelation_imag"] = float(dens[b, 5] * dv)
@@ -312,11 +325,19 @@ class Observer:
         r["frame_offset"] = np.array(x_off, float)
         return r
 
-    def _screen_profile(self, a, d, normal: int) -> np.ndarray:
+    def _screen_profile(self, a, d) -> np.ndarray:
         """The flux density J_n = (hbar/m) Im(conj(psi) dpsi/dn) along a
         resolved detector (atomic units: probability per bohr^(d-1) per
         atomic unit of time), per member and transverse point, every
-        ``stride``-th point of each transverse axis: shape (members, *transverse).
+        ``stride``-th point of each transverse axis: shape (members,
+        *transverse), from psi and dpsi/dn along the detector
+        (:meth:`_line_values`)."""
+        cut = (slice(None),) + (slice(None, None, self.stride),) * (a.ndim - 1)
+        return ((a.conj() * d).imag / self.mass)[cut]
+
+    def _line_values(self, a, d, normal: int) -> tuple[np.ndarray, np.ndarray]:
+        """psi and dpsi/dn (atomic units) at every grid point of a detector
+        line or plane, shape (members, *transverse), complex128.
 
         ``a``, ``d``: psi and dpsi/dn on the detector (already interpolated
         along the normal axis ``normal``), still as transform coefficients of
@@ -334,8 +355,7 @@ class Observer:
             else:                                    # the orthonormal DST-I is its own inverse
                 a = scipy.fft.dst(a, type=1, norm="ortho", axis=pos)
                 d = scipy.fft.dst(d, type=1, norm="ortho", axis=pos)
-        cut = (slice(None),) + (slice(None, None, self.stride),) * len(others)
-        return ((a.conj() * d).imag / self.mass)[cut]
+        return a, d
 
     def _momentum_box(self, psi4, safe):
         """<p> on a box first axis: Im sum conj(psi) dpsi/dx dV (the sine
@@ -366,8 +386,13 @@ class Observer:
         f = (a.conj() * d).imag.reshape(m, self._nb, -1).sum(axis=2).T * (weight / self.mass)
         flux[:, idx] = f
         for j, n in enumerate(idx):
-            if self.detectors[n].resolved:
-                self._profiles[n] = self._screen_profile(a[j], d[j], axis - (3 - self.grid.ndim) - 1)
+            det = self.detectors[n]
+            if det.resolved or (det.spectrum and self.grid.ndim > 1):
+                line_psi, line_dpsi = self._line_values(a[j], d[j], axis - (3 - self.grid.ndim) - 1)
+                if det.resolved:
+                    self._profiles[n] = self._screen_profile(line_psi, line_dpsi)
+                if det.spectrum and self.grid.ndim > 1:
+                    self._lines[n] = (line_psi, line_dpsi)
         if self.frame is not None:   # the density there, for the lab current (one run)
             self._density_at[idx] = (a.real.astype(float) ** 2 + a.imag.astype(float) ** 2).reshape(m, -1).sum(axis=1) * weight
         if a[0, 0].size == 1:

@@ -36,7 +36,7 @@ from .kernels import density_of
 from .setup import AXIS_LONG, CoupledSetup, Setup, analysis_record, coupled_attributes, final_detector_values
 from .surfaces import PHASE_CONVENTION
 from .units import decimal_multiple
-from .volkov import VolkovIntegrals, uniform_force_along
+from .volkov import VolkovIntegrals, uniform_force_along, uniform_force_vector
 
 __all__ = ["Simulation", "RunBook", "run_job", "progress_bar"]
 
@@ -201,8 +201,13 @@ class Simulation:
             row["detector_dpsi"] = values["detector_dpsi"] * conv["amplitude"] * conv["length"]
         if self._driving_force() is not None:   # the field's momentum transfer and Volkov phases here
             if book.volkov is None:
-                book.volkov = VolkovIntegrals(self._driving_force(), s.mass, s.dt)
+                book.volkov = VolkovIntegrals(self._driving_force(), s.mass, s.dt,
+                                              None if s.grid.ndim == 1 else s.grid.ndim)
             row.update(book.volkov.in_job_units(t_au, conv))
+        if "spectrum_psi" in values:   # 2D/3D lines or planes: psi scales as length^(-d/2), dpsi/dn one more
+            amplitude = conv["amplitude"] ** s.grid.ndim
+            row["spectrum_psi"] = values["spectrum_psi"] * amplitude
+            row["spectrum_dpsi"] = values["spectrum_dpsi"] * (amplitude * conv["length"])
         if "screen_flux" in values:   # resolved detectors: probability per unit length^(d-1) per unit time
             row["screen_flux"] = values["screen_flux"] * (conv["flux"] * conv["length"] ** (1 - s.grid.ndim))
         if "frame_offset" in values:
@@ -405,13 +410,18 @@ class Simulation:
         return density_of(psi, self.setup.units.factor("length") ** self.setup.grid.ndim, np.float32)
 
     def _driving_force(self):
-        """F(t) along x of a 1D run in the lab under a time-dependent uniform
-        force (the ``field`` kind), for the surface-flux spectrum's Volkov
-        phases (:mod:`wavesweep.volkov`); None otherwise."""
+        """F(t) of a run in the lab under a time-dependent uniform force (the
+        ``field`` kind), for the surface-flux spectrum's Volkov phases
+        (:mod:`wavesweep.volkov`): along x in 1D, the vector of the axes in
+        2D/3D when a detector records a spectrum; None otherwise."""
         s = self.setup
-        if self.coupled or s.frame is not None or s.grid.ndim != 1 or s.grid.radial:
+        if self.coupled or s.frame is not None or s.grid.radial:
             return None
-        return uniform_force_along(s.terms)
+        if s.grid.ndim == 1:
+            return uniform_force_along(s.terms)
+        if not any(d.spectrum for d in s.detectors):
+            return None
+        return uniform_force_vector(s.terms, s.grid.ndim)
 
     def _layout(self) -> dict:
         s = self.setup
@@ -438,6 +448,8 @@ class Simulation:
             "volkov": self._driving_force() is not None,   # field_momentum/excursion/phase per sample
             # resolved detectors: screen_flux(time, screen, *transverse axes), screen_probability
             "screens": _screens_layout(s),
+            # 2D/3D spectrum detectors: spectrum_psi/dpsi(time, spectrum_detector, *full transverse axes)
+            "spectra": _spectra_layout(s),
             "snapshot_psi": bool(s.job.table["record"].get("snapshot_psi")),
             # record.column: (axis index, its spacing in the job's length unit)
             "column": (None if s.job.table["record"].get("column") is None else
@@ -523,6 +535,17 @@ def _screens_layout(setup) -> dict | None:
         return None
     normal = screens[0].axis   # validation keeps every resolved detector across one axis
     return {"names": [d.name for d in screens], "normal": setup.grid.names[normal],
+            "transverse": [n for i, n in enumerate(setup.grid.names) if i != normal]}
+
+
+def _spectra_layout(setup) -> dict | None:
+    """The 2D/3D detectors that record psi and dpsi/dn along them, the
+    normal axis' name and the transverse axes' names (full grid), or None."""
+    lines = [d for d in setup.detectors if d.spectrum and setup.grid.ndim > 1]
+    if not lines:
+        return None
+    normal = lines[0].axis   # validation keeps every spectrum detector across one axis
+    return {"names": [d.name for d in lines], "normal": setup.grid.names[normal],
             "transverse": [n for i, n in enumerate(setup.grid.names) if i != normal]}
 
 

@@ -207,6 +207,9 @@ class Setup(Model):
             if d.get("resolved") and self.frame is not None:
                 raise JobError(f"detector.{i}.resolved", "a resolved screen on a falling grid is not supported "
                                                           "yet; use grid.frame = 'lab' or remove resolved")
+            if d.get("spectrum") and self.frame is not None:
+                raise JobError(f"detector.{i}.spectrum", "a spectrum needs a grid fixed in the lab; use "
+                                                          "grid.frame = 'lab' or remove spectrum")
         self.fft_backend = fft or ev.get("fft", AUTO)
         self.threads = threads or ev.get("threads")
         self.scheme = scheme_class(ev["scheme"])
@@ -351,7 +354,7 @@ class Setup(Model):
         axis = next(a for a in self.grid.names if d.get(a) is not None)
         return Detector(d["name"], self.grid.axis_index(axis),
                         self.units.to_atomic(d[axis], "length", f"detector.{i}.{axis}"),
-                        resolved=bool(d.get("resolved")))
+                        resolved=bool(d.get("resolved")), spectrum=bool(d.get("spectrum")))
 
     def propagator_transform(self, members: int | None = None, threads: int | None = None):
         """The propagator's transform (``members``: for a batch of that many
@@ -453,6 +456,11 @@ def analysis_record(setup, warnings: bool = True, lanczos: bool = True) -> dict:
         if setup.frame is None and not grid.radial:   # the spectrum: a cartesian grid fixed in the lab
             out["potential_min"] = float(np.min(out["potential_full"]))
             out["initial_beyond"] = _initial_beyond_values(setup, out["detectors"], psi0)
+    elif setup.frame is None and not grid.radial and any(d.spectrum for d in setup.detectors):
+        # a line's or plane's spectrum: psi0 beyond it (its b(k, 0)) and V's minimum (the band's low end)
+        out["potential_min"] = float(np.min(setup.recorded_potential())) / ef
+        out["spectrum_initial_beyond"] = _initial_beyond_values(
+            setup, out["detectors"], psi0, [d for d in setup.detectors if d.spectrum])
     # (a falling frame's H is not the lab's: its spectrum would mean nothing to levels)
     if lanczos and not setup.hamiltonian.time_dependent and grid.size <= LANCZOS_MAX_POINTS \
             and setup.frame is None:
@@ -517,20 +525,22 @@ def _initial_detector_values(setup, marginals_au) -> dict:
     return {name: np.asarray(v, float) for name, v in out.items()}
 
 
-def _initial_beyond_values(setup, detector_values, psi0) -> list:
-    """Per detector, (first grid index, psi0 beyond it in job units): the
-    part the momentum spectrum projects on plane waves as b(k, 0)
+def _initial_beyond_values(setup, detector_values, psi0, chosen=None) -> list:
+    """Per detector (or those ``chosen``), (first index along its axis,
+    psi0 beyond it in job units, that axis first): the part the momentum
+    spectrum projects on plane waves as b(k, 0)
     (:func:`wavesweep.io.record.initial_beyond`), beyond the detector away
     from the packet's mean (the mean as the file gives it back, so that
     analysis takes the same side)."""
     lf = setup.units.factor("length")
-    x = setup.grid.axes[0].coordinates
     out = []
     for d, mean in zip(setup.detectors, detector_values["detector_initial_mean"]):
+        if chosen is not None and d not in chosen:
+            continue
         x_d = float(d.position / lf) * lf        # as the file gives it back
         side = 1.0 if x_d >= float(mean) * lf else -1.0
-        first, values = initial_beyond(psi0, x, x_d, side)
-        out.append((first, values * math.sqrt(lf)))
+        first, values = initial_beyond(psi0, setup.grid.axes[d.axis].coordinates, x_d, side, d.axis)
+        out.append((first, values * lf ** (setup.grid.ndim / 2)))
     return out
 
 
@@ -690,6 +700,9 @@ class CoupledSetup(Setup):
             *((True, f"detector.{i}.resolved", "a resolved screen on coupled surfaces is not recorded yet; "
                                                "remove resolved") for i, d in enumerate(t["detector"])
               if d.get("resolved")),
+            *((True, f"detector.{i}.spectrum", "a spectrum's line or plane on coupled surfaces is not recorded "
+                                               "yet; remove spectrum") for i, d in enumerate(t["detector"])
+              if d.get("spectrum")),
         )
         for refused, field, message in refusals:
             if refused:

@@ -37,7 +37,8 @@ SWEEP_2D = {
     "absorber": {"kind": "cap", "thickness": 6.0},
     "evolve": {"dt": 0.05, "duration": 10.0},
     "record": {"every": 0.5, "snapshot_every": 2.5},
-    "detector": [{"name": "line", "x": 8.0}, {"name": "across", "y": 5.0}],
+    # the line records psi along it for a spectrum (spectrum_psi/dpsi per member, issue 17)
+    "detector": [{"name": "line", "x": 8.0, "spectrum": True}, {"name": "across", "y": 5.0}],
 }
 
 

@@ -469,3 +469,38 @@ def test_the_summary_carries_each_runs_spectra(tmp_path):
         peak = ds.spectrum_momentum.sel(detector="d").isel(
             spectrum_point=density.sel(detector="d").argmax("spectrum_point"))
         assert peak.values == pytest.approx([1.8, 2.2], abs=0.01)
+
+
+def test_the_summary_carries_a_lines_spectrum_as_its_normal_marginal(tmp_path):
+    """A 2D study with a `spectrum = true` line: the summary keeps, per
+    run, the density along the normal summed over the transverse momenta
+    (``probability_density_normal`` of `spectrum`), to 1e-12, and the
+    energy density summed over directions; each run's spectrum is the one
+    of its own packet (the peak follows p_x)."""
+    from wavesweep.analysis.surface_flux import spectrum
+
+    table = {
+        "title": "line spectra",
+        "grid": {"x": {"min": -30.0, "max": 60.0, "points": 192}, "y": {"min": -24.0, "max": 24.0, "points": 32},
+                 "boundary": "periodic"},
+        "packet": {"kind": "gaussian", "center": [-10.0, 0.0], "width": [2.0, 3.0], "momentum": [4.0, 0.5]},
+        "evolve": {"dt": 0.04, "duration": 12.0, "scheme": "strang"},
+        "absorber": {"kind": "none"},
+        "record": {"every": 0.08, "snapshot_every": 12.0},
+        "detector": [{"name": "line", "x": 5.0, "spectrum": True}, {"name": "plain", "x": 0.0}],
+        "sweep": {"packet.momentum": [[3.8, 0.5], [4.2, 0.5]]},
+    }
+    study = submit_and_run(table, tmp_path, "line")
+    with xr.open_dataset(collect(tmp_path, "line")) as ds:
+        dim = ds.spectrum_total.dims[0]
+        for i, spec in enumerate(study.runs):
+            at = ds.isel({dim: i})
+            ref = spectrum(tmp_path / "line" / f"{spec.run_id}.nc", detector="line")["detectors"][0]
+            for name, key in (("spectrum_momentum", "momentum"),
+                              ("spectrum_probability_density", "probability_density_normal"),
+                              ("spectrum_energy_density", "energy_density")):
+                got, want = at[name].sel(detector="line").values, np.asarray(ref[key])
+                assert np.max(np.abs(got - want)) <= 1e-12 * np.max(np.abs(want)), name
+            peak = float(ref["momentum"][np.argmax(ref["probability_density_normal"])])
+            assert peak == pytest.approx(spec.params["packet.momentum"][0], abs=0.02)
+            assert np.isnan(at.spectrum_total.sel(detector="plain")).all()

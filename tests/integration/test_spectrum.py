@@ -228,7 +228,7 @@ def test_t_of_e_goes_through_the_same_transform_unchanged():
     assert np.max(np.abs(got.energy_amplitude - written_out)) <= 1e-12 * np.max(np.abs(written_out))
 
 
-def test_the_plot_is_written_and_a_2d_run_is_refused_in_one_line(free_run, tmp_path, capsys):
+def test_the_plot_is_written_and_a_2d_run_without_its_line_is_refused_in_one_line(free_run, tmp_path, capsys):
     figure = tmp_path / "spectrum.png"
     assert main(["spectrum", str(free_run), "--plot", str(figure)]) == 0
     assert figure.stat().st_size > 0
@@ -244,7 +244,7 @@ def test_the_plot_is_written_and_a_2d_run_is_refused_in_one_line(free_run, tmp_p
     capsys.readouterr()
     assert main(["spectrum", str(path)]) == 2
     err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and "1D" in err[0]
+    assert len(err) == 1 and "spectrum = true" in err[0]   # a line records its psi only when asked
 
 
 def test_a_record_cut_while_psi_arrives_is_not_taken_for_aliasing(tmp_path):

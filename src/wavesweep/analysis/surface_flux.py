@@ -1,6 +1,9 @@
 """Momentum spectra of what leaves through a detector, by the time-dependent
 surface-flux method (L. Tao and A. Scrinzi, New J. Phys. 14, 013021 (2012)),
-valid with a driving field (1D; atomic units, hbar = 1, charge q).
+valid with a driving field (atomic units, hbar = 1, charge q): the 1D
+method here, a line's or plane's (transverse momenta resolved) in
+:mod:`wavesweep.analysis.plane_spectrum`, the time transform both use in
+:mod:`wavesweep.analysis.flux_transform`; :func:`spectrum` serves either.
 
 Derivation.  Let a uniform force F(t) = q E(t) act (length gauge, V = -q E x;
 the ``field`` potential kind), A(t) = -int_0^t E dt', P(t) = -q A(t) the
@@ -52,7 +55,9 @@ sample, not per step, is then exact to rounding (the field-free case is
 energy-resolved transmission's transform: :func:`time_transform` is the
 one both call).  A record cut while parts still arrive leaves the
 trapezoid's end error (Euler-Maclaurin), which :func:`_end_correction`
-removes to leading order.
+removes to leading order.  What the cut leaves out is estimated by the
+leading end term of the truncated integral (:func:`flux_transform.cut_bound`)
+and reported as ``cut_uncertainty``, relative to the density's peak.
 
 Split-step sidebands.  The split-operator step is periodic in time: a
 potential with sharp features couples E to E + 2 pi / dt, a wave the grid
@@ -67,6 +72,9 @@ import numpy as np
 
 from ..errors import JobError
 from ..io.record import initial_beyond, layer_holding
+from .flux_transform import (CUT_WARN, TRANSFORM_BLOCK, cut_bound, cut_warning, end_taper,
+                             surface_flux_amplitude, time_transform, trapezoid_weights)
+from .plane_spectrum import plane_spectrum
 from .recorded import run_record as read_record
 from ..io.results import open_result, result_units, source_name
 
@@ -80,104 +88,7 @@ SCATTERER_BEYOND = 1e-2
 BAND_FLOOR = 1e-8          # |psi(x_d)|^2 above this fraction of its peak sets the band W
 STILL_TO_COME_WARN = 1e-3  # a fraction still to come above this (of what crossed) is a warning
 SPECTRUM_FLOOR = 1e-6      # the momenta reported: where the density is above this fraction of its peak
-TRANSFORM_BLOCK = 2**21   # momenta x samples per block of the transform (32 MiB of complex phases)
 VARIES = 1e-3              # V counts as varying where it differs from V(x_d) by this fraction of <E_kin>
-
-
-def trapezoid_weights(time) -> np.ndarray:
-    """Trapezoid weights of the samples ``time`` (np.gradient's for uneven ones)."""
-    t = np.asarray(time, float)
-    dt_rec = float(np.median(np.diff(t)))
-    wq = np.full(len(t), dt_rec)
-    wq[0] = wq[-1] = dt_rec / 2
-    if not np.allclose(np.diff(t), dt_rec, rtol=1e-6, atol=0):
-        wq = np.gradient(t)                 # uneven samples (a resumed run is still even)
-    return wq
-
-
-def time_transform(time, samples, phase) -> np.ndarray:
-    """(1 / 2 pi) int f(t) exp(i phase(t)) dt by the trapezoid over the
-    samples: ``samples`` f(t_n) (N,), ``phase`` (K, N) radians per output
-    row; returns (K,).  Energy-resolved transmission's psi~(E) is the case
-    phase = E t (``transmission_from_samples``); the surface-flux amplitude
-    the case phase = Phi_k(t) (:func:`surface_flux_amplitude`)."""
-    amp = np.asarray(samples, complex)
-    return (np.exp(1j * phase) @ (amp * trapezoid_weights(time))) / (2 * math.pi)
-
-
-def _end_taper(t) -> np.ndarray:
-    """1 over the record, falling as cos^2 to 0 over its last tenth: a
-    record's end made smooth, so that a cut's leak into far energies fades
-    (an alias of the samples does not)."""
-    t = np.asarray(t, float)
-    start = t[0] + 0.9 * (t[-1] - t[0])
-    ramp = np.clip((t - start) / max(t[-1] - start, 1e-300), 0.0, 1.0)
-    return np.cos(0.5 * math.pi * ramp) ** 2
-
-
-def surface_flux_amplitude(time, psi_detector, dpsi_detector, momentum, mass, x_detector, side=1.0,
-                           field_momentum=None, excursion=None, field_phase=None, initial=None) -> np.ndarray:
-    """b(k) of the module notes (atomic units): the amplitude per unit
-    canonical momentum ``momentum`` k (bohr^-1) of what crossed the detector
-    at ``x_detector`` (bohr) towards ``side`` (+1: to larger x, -1: smaller)
-    between the first and last of ``time``, from psi and dpsi/dx there
-    (bohr^-1/2, bohr^-3/2).  ``field_momentum`` P(t) = -q A(t),
-    ``excursion`` alpha(t) = int P / m and ``field_phase`` S(t) = int P^2 / 2m
-    at the samples (None: no field); ``initial``: b(k, 0) (None: 0)."""
-    t = np.asarray(time, float)
-    k = np.asarray(momentum, float)
-    rows = max(1, TRANSFORM_BLOCK // max(len(t), 1))
-    if len(k) > rows:   # blocks of momenta: no (momenta x samples) temporary beyond TRANSFORM_BLOCK
-        init = None if initial is None else np.asarray(initial, complex)
-        return np.concatenate([surface_flux_amplitude(t, psi_detector, dpsi_detector, k[i:i + rows], mass,
-                                                      x_detector, side, field_momentum, excursion, field_phase,
-                                                      None if init is None else init[i:i + rows])
-                               for i in range(0, len(k), rows)])
-    psi = np.asarray(psi_detector, complex)
-    dpsi = np.asarray(dpsi_detector, complex)
-    zero = np.zeros_like(t)
-    p_t = zero if field_momentum is None else np.asarray(field_momentum, float)
-    alpha = zero if excursion is None else np.asarray(excursion, float)
-    s_t = zero if field_phase is None else np.asarray(field_phase, float)
-    # chi_k^*(x_d, t) = (2 pi)^(-1/2) exp(-i k x_d) exp(i (k^2 t / 2m + k alpha)) exp(i (S - P x_d))
-    g = np.exp(1j * (s_t - p_t * x_detector))
-    phase = np.outer(k**2 / (2 * mass), t) + np.outer(k, alpha)
-    slope_samples, value_samples = g * (dpsi + 1j * p_t * psi), g * psi
-    slope_part = time_transform(t, slope_samples, phase)
-    value_part = time_transform(t, value_samples, phase)
-    # 2 pi from time_transform's 1 / 2 pi, (2 pi)^(-1/2) from chi
-    integral = 2 * math.pi * (slope_part + 1j * k * value_part)
-    integral -= _end_correction(t, slope_samples, value_samples, k, p_t, alpha, mass)
-    integral = integral * np.exp(-1j * k * x_detector) / math.sqrt(2 * math.pi)
-    b = -side * 1j / (2 * mass) * integral
-    return b if initial is None else b + initial
-
-
-def _end_correction(t, slope_samples, value_samples, k, p_t, alpha, mass) -> np.ndarray:
-    """The trapezoid's leading error on the record's window, (dt^2 / 12)
-    (f'(t_N) - f'(t_0)) (Euler-Maclaurin; e.g. Abramowitz & Stegun 25.4.32,
-    from memory), for f(t) = exp(i Phi_k(t)) h_k(t), h_k = slope + i k value:
-    the record is cut while what is slow still arrives, and the sum is exact
-    only for a whole band-limited signal.  f' = exp(i Phi_k) (i Phi_k' h_k +
-    h_k') with S and P held in h_k (Phi_k' taken exactly), h_k' by second-order one-sided
-    differences of the samples.  Zero for uneven samples (a correction
-    the trapezoid's np.gradient weights do not define)."""
-    if len(t) < 3:
-        return np.zeros(len(k), complex)
-    dt = float(np.median(np.diff(t)))
-    if not np.allclose(np.diff(t), dt, rtol=1e-6, atol=0):
-        return np.zeros(len(k), complex)
-    def h(i):
-        return slope_samples[i] + 1j * k * value_samples[i]
-
-    rate_end = k**2 / (2 * mass) + k * p_t[-1] / mass     # d/dt (k^2 t / 2m + k alpha); S, P sit in h
-    rate_start = k**2 / (2 * mass) + k * p_t[0] / mass
-    dh_end = (3 * h(-1) - 4 * h(-2) + h(-3)) / (2 * dt)
-    dh_start = -(3 * h(0) - 4 * h(1) + h(2)) / (2 * dt)
-    f_end = np.exp(1j * (k**2 * t[-1] / (2 * mass) + k * alpha[-1])) * (1j * rate_end * h(-1) + dh_end)
-    f_start = np.exp(1j * (k**2 * t[0] / (2 * mass) + k * alpha[0])) * (1j * rate_start * h(0) + dh_start)
-    out = f_end - f_start
-    return dt**2 / 12 * out
 
 
 def _beyond_projection(first, values, x, k) -> np.ndarray:
@@ -268,7 +179,7 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
         # integral falls off only as 1 / (E - E_end)); an alias does not fade when the record's end is
         # tapered smoothly to zero, the cut's leak does: only what stays is aliasing
         upper = coarse[-len(coarse) // 20:]
-        taper = _end_taper(t)
+        taper = end_taper(t)
         tapered = np.abs(surface_flux_amplitude(t, psi * taper, dpsi * taper, upper, mass, x_d, side,
                                                 initial=b0(upper), **field)) ** 2
         top = float(tapered.max())
@@ -292,18 +203,22 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
     k = p_kin - p_end
     b = surface_flux_amplitude(t, psi, dpsi, k, mass, x_d, side, initial=b0(k), **field)
     density = np.abs(b) ** 2                       # per bohr^-1
+    cut = cut_bound(psi[-1], dpsi[-1], k, mass, t[-1] - t[0], p_end)
+    cut_uncertainty = float(np.max(2 * np.abs(b) * cut + cut**2) / density.max())
     total = float(np.trapezoid(density, np.abs(p_kin)))
     energy = p_kin**2 / (2 * mass)
     energy_density = density * mass / np.maximum(np.abs(p_kin), 1e-300)
     out = {"detector": name, "side": "+" if side > 0 else "-",
            "momentum": p_kin / p_unit, "probability_density": density * p_unit,
            "energy": energy / uc["energy"], "energy_density": energy_density * uc["energy"],
-           "total": total, "still_to_come": None,
+           "total": total, "still_to_come": None, "cut_uncertainty": cut_uncertainty,
            "momentum_units": _momentum_label(ds, uc), "energy_units": uc["energy_label"],
            "warnings": []}
     if not details:
         return out
     warnings = out["warnings"]
+    if cut_uncertainty > CUT_WARN:
+        warnings.append(cut_warning(name, cut_uncertainty))
     if field:
         pushed = np.abs(np.diff(field["field_momentum"][-3:]))
         if pushed.size and float(pushed.max()) > 1e-6 * max(float(np.max(np.abs(p_kin))), 1e-300):
@@ -375,13 +290,19 @@ def _still_to_come(ds, uc, x, v_static, x_d, side, e_mean) -> float | None:
     return float(np.sum(np.abs(phi[side * k > 0]) ** 2) * dk)
 
 
-def spectrum(result, detector: str | None = None, points: int = 401) -> dict:
+def spectrum(result, detector: str | None = None, points: int | None = None) -> dict:
     """Momentum and energy spectra of what left through each detector of a
-    1D run (or ``detector`` alone): ``{"detectors": [...], "warnings": [...]}``,
+    run (or ``detector`` alone): ``{"detectors": [...], "warnings": [...]}``,
     each detector's entry with ``momentum`` (the normal component, job units),
     ``probability_density`` (per unit momentum), ``energy``, ``energy_density``
     (per unit energy), ``total`` and ``still_to_come`` (probability; None
-    without a final state).  JobError where the run cannot give one."""
+    without a final state).  In 2D/3D (detectors with ``spectrum = true``)
+    the entry also has ``momentum_<axis>`` for each transverse axis,
+    ``probability_density`` on (normal, *transverse) per unit momentum^d and
+    its marginal ``probability_density_normal``
+    (:func:`wavesweep.analysis.plane_spectrum.plane_spectrum`).  ``points``:
+    normal momenta and energies (default 401 in 1D, 201 on a line or
+    plane).  JobError where the run cannot give one."""
     ds = open_result(result, require=("time", "flux"))
     try:
         setup, names = _spectrum_record(ds)
@@ -390,10 +311,10 @@ def spectrum(result, detector: str | None = None, points: int = 401) -> dict:
                 raise JobError("--detector", f"no detector {detector!r} in the run; it has {', '.join(names)}")
             chosen = [names.index(detector)]
         else:
-            chosen = _outside_layers(setup, names)
+            chosen = _spectrum_detectors(ds, setup, names)
         out = {"detectors": [], "warnings": []}
         for j in chosen:
-            found = momentum_spectrum(ds, setup, j, points)
+            found = _detector_spectrum(ds, setup, j, points)
             out["warnings"].extend(found.pop("warnings"))
             out["detectors"].append(found)
         return out
@@ -402,26 +323,45 @@ def spectrum(result, detector: str | None = None, points: int = 401) -> dict:
             ds.close()
 
 
-def detector_spectra(ds, points: int = 401) -> dict:
+def _detector_spectrum(ds, setup, j: int, points: int | None, details: bool = True) -> dict:
+    """One detector's spectrum: a point's (1D) or a line's or plane's."""
+    if setup.grid.ndim == 1:
+        return momentum_spectrum(ds, setup, j, points or 401, details)
+    return plane_spectrum(ds, setup, j, points or 201, details)
+
+
+def detector_spectra(ds, points: int | None = None) -> dict:
     """Each detector's spectrum of an open result as :func:`spectrum` gives
     it (the same numbers), without the warnings and ``still_to_come``:
     ``{name: entry or None}``, None for a detector :func:`spectrum` leaves
-    out (inside an absorbing layer) or refuses (aliased samples, nothing
-    crossed).  Reads no array of the grid's size where the run recorded what
-    the spectrum needs from psi0 (:mod:`wavesweep.io.record`); ``collect``
-    calls it.  JobError where the run gives no spectrum at all."""
+    out (inside an absorbing layer; in 2D/3D one without ``spectrum =
+    true``) or refuses (aliased samples, nothing crossed).  On a line or
+    plane ``probability_density`` is the marginal along the normal (per unit
+    normal momentum), the shape the study's summary keeps.  Reads no array
+    of the grid's size where the run recorded what the spectrum needs from
+    psi0 (:mod:`wavesweep.io.record`); ``collect`` calls it.  JobError where
+    the run gives no spectrum at all."""
     setup, names = _spectrum_record(ds)
     out = {name: None for name in names}
-    for j in _outside_layers(setup, names):
+    for j in _spectrum_detectors(ds, setup, names):
         try:
-            out[names[j]] = momentum_spectrum(ds, setup, j, points, details=False)
+            entry = _detector_spectrum(ds, setup, j, points, details=False)
         except JobError:
-            pass
+            continue
+        if "probability_density_normal" in entry:
+            entry = {**entry, "probability_density": entry["probability_density_normal"]}
+        out[names[j]] = entry
     return out
 
 
-def _outside_layers(setup, names) -> list:
-    return [j for j in range(len(names)) if layer_holding(setup, 0, setup.detectors[j].position) is None]
+def _spectrum_detectors(ds, setup, names) -> list:
+    """The detectors a spectrum is given for by default: outside the
+    absorbing layers, and in 2D/3D those that recorded their line or plane."""
+    lines = ([str(v) for v in ds["spectrum_detector"].values]
+             if setup.grid.ndim > 1 and "spectrum_detector" in ds.variables else None)
+    return [j for j in range(len(names))
+            if layer_holding(setup, setup.detectors[j].axis, setup.detectors[j].position) is None
+            and (lines is None or names[j] in lines)]
 
 
 def _moving_terms(ds) -> list[str]:
@@ -443,15 +383,19 @@ def _moving_terms(ds) -> list[str]:
 def _spectrum_record(ds):
     """(record, detector names) of a result that can give spectra; JobError naming why not."""
     setup = read_record(ds)
-    if setup.grid.ndim != 1 or setup.grid.radial:
-        raise JobError("RUN.nc", f"{source_name(ds)}: momentum spectra are given for 1D cartesian runs only "
-                                 "so far")
+    if setup.grid.radial:
+        raise JobError("RUN.nc", f"{source_name(ds)}: a radial run gives no surface-flux spectrum (its "
+                                 "outgoing states are not plane waves); use a cartesian grid")
     if "frame_offset" in ds.variables:
         raise JobError("RUN.nc", f"{source_name(ds)}: the run's grid fell with the packet; the spectrum needs "
                                  "a grid fixed in the lab (grid.frame = 'lab')")
-    if "detector_dpsi_real" not in ds:
+    if setup.grid.ndim == 1 and "detector_dpsi_real" not in ds:
         raise JobError("RUN.nc", f"{source_name(ds)}: the run did not record dpsi/dx at its detectors "
                                  "(written by an older version); run the job again")
+    if setup.grid.ndim > 1 and "spectrum_detector" not in ds.variables:
+        raise JobError("RUN.nc", f"{source_name(ds)}: no detector of the run recorded psi along its "
+                                 f"{'line' if setup.grid.ndim == 2 else 'plane'}; add spectrum = true to the "
+                                 "[[detector]] and run the job again")
     moving = _moving_terms(ds) if setup.time_dependent else []
     if moving:
         raise JobError("RUN.nc", f"{source_name(ds)}: the potential's {', '.join(moving)} term(s) change in "

@@ -117,7 +117,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from .surface_flux import time_transform
+from .flux_transform import time_transform
 from ..adequacy import reachable_surfaces, run_warnings
 from ..errors import JobError
 from ..io.results import open_result, result_units, source_name

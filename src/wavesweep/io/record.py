@@ -116,18 +116,21 @@ DETECTOR_VALUES = {
 BEYOND_FLOOR = 1e-15
 
 
-def initial_beyond(psi0, x, x_detector: float, side: float) -> tuple[int, np.ndarray]:
-    """The part of psi0 on the grid ``x`` beyond ``x_detector`` towards
-    ``side`` (+1: larger x), trimmed to the span where |psi0| exceeds
-    BEYOND_FLOOR of its peak: (index of its first point, values; empty
-    when nothing is there).  Run time and analysis of older files call it alike."""
+def initial_beyond(psi0, x, x_detector: float, side: float, axis: int = 0) -> tuple[int, np.ndarray]:
+    """The part of psi0 beyond ``x_detector`` on ``axis`` (coordinates
+    ``x``) towards ``side`` (+1: larger x), trimmed along that axis to the
+    span where |psi0| (its largest over the other axes) exceeds BEYOND_FLOOR
+    of its peak: (index of its first point along ``axis``, values with that
+    axis first; empty when nothing is there).  Run time and analysis of
+    older files call it alike."""
     psi0 = np.asarray(psi0)
     x = np.asarray(x, float)
-    peak = float(np.max(np.abs(psi0))) if psi0.size else 0.0
-    there = np.flatnonzero((side * (x - x_detector) > 0) & (np.abs(psi0) > BEYOND_FLOOR * peak))
+    size = np.moveaxis(np.abs(psi0), axis, 0).reshape(len(x), -1).max(axis=1) if psi0.size else np.zeros(len(x))
+    peak = float(size.max()) if psi0.size else 0.0
+    there = np.flatnonzero((side * (x - x_detector) > 0) & (size > BEYOND_FLOOR * peak))
     if not there.size:
-        return 0, np.zeros(0, complex)
-    return int(there[0]), np.asarray(psi0[there[0]:there[-1] + 1], complex)
+        return 0, np.zeros((0, *np.delete(psi0.shape, axis)), complex)
+    return int(there[0]), np.asarray(np.moveaxis(psi0, axis, 0)[there[0]:there[-1] + 1], complex)
 
 
 # Those the run computes from its final state (1D runs that keep it).
@@ -184,6 +187,9 @@ class RecordedRun:
     detector_values: dict = field(default_factory=dict)
     potential_min: float | None = None       # hartree (1D; None where the file does not say)
     initial_beyond: dict | None = None       # detector index -> (first grid index, psi0 values, bohr^-1/2)
+    # 2D/3D detectors recording a spectrum: index -> (first index along the normal, psi0 beyond the line or
+    # plane with the normal axis first, bohr^(-d/2))
+    spectrum_initial_beyond: dict | None = None
 
     def __getattribute__(self, name):
         # arrays of the grid's size read from a file are loaded on first use (_OnFirstUse)
@@ -337,12 +343,21 @@ def _read(ds) -> RecordedRun:
         if first.shape != (len(dets),) or parts.shape[0] != len(dets):
             raise ValueError("initial_beyond does not match the detectors")
         beyond = {j: (int(first[j]), parts[j][np.isfinite(parts[j])]) for j in range(len(dets))}
+    spectrum_beyond = None
+    if "spectrum_initial_beyond_first" in ds.variables and dets:
+        lines = [str(v) for v in ds["spectrum_detector"].values]
+        first = np.asarray(ds["spectrum_initial_beyond_first"].values, np.int64)
+        slabs = (np.asarray(ds["spectrum_initial_beyond_real"].values, float)
+                 + 1j * np.asarray(ds["spectrum_initial_beyond_imag"].values, float)) / lf ** (grid.ndim / 2)
+        count = np.asarray(ds["spectrum_initial_beyond_points"].values, np.int64)
+        by_name = {str(d.name): j for j, d in enumerate(dets)}
+        spectrum_beyond = {by_name[n]: (int(first[i]), slabs[i, :count[i]]) for i, n in enumerate(lines)}
     return RecordedRun(grid=grid, mass=mass, detectors=dets, absorber=absorber,
                        time_dependent=bool(int(a["time_dependent"])), marginals=marginals,
                        dt=float(a["dt"]) * tf, psi0=psi0, static_potential=v_full,
                        warnings=warnings, lanczos=lanczos, detector_values=values,
                        potential_min=float(ds["potential_min"].values) * ef if "potential_min" in ds.variables else None,
-                       initial_beyond=beyond)
+                       initial_beyond=beyond, spectrum_initial_beyond=spectrum_beyond)
 
 
 def result_name(ds) -> str:

@@ -95,6 +95,14 @@ class ResultWriter:
         ``screen_flux``, on the snapshot grid's transverse coordinates) and
         ``screen_probability(screen, *transverse)``, its time integral,
         written at :meth:`close`;
+        ``spectra``: None, or the same for the 2D/3D detectors recording a
+        spectrum's input: a ``spectrum_detector`` dimension and
+        ``spectrum_psi_*``/``spectrum_dpsi_*(time, spectrum_detector,
+        *transverse)`` on the full grid's transverse coordinates (the
+        samples' ``spectrum_psi``/``spectrum_dpsi``), and from ``record``
+        psi0 beyond each (``spectrum_initial_beyond_*``);
+        ``volkov``: bool, ``field_momentum``, ``field_excursion`` ((time,) in
+        1D, (time, axis) in 2D/3D) and ``field_phase`` per sample;
         ``snapshot_psi``: bool, psi (float32 parts) with each snapshot;
         ``surfaces``: None, or the names of coupled surfaces: a ``surface``
         dimension (coordinate: the names) leads the grid axes of ``density``,
@@ -195,7 +203,8 @@ class ResultWriter:
         per_detector = 3 if lay.get("detector_amplitude") else 1
         return 8 * (1 + self._n_surfaces() * (len(lay.get("scalars", SCALARS)) + per_detector * len(lay["detectors"])
                                               + len(lay["faces"])) + 2 + len(lay.get("frame_axes") or ())
-                    + (lay["adiabatic"]["states"] if lay.get("adiabatic") else 0)) + self._screen_row_bytes()
+                    + (lay["adiabatic"]["states"] if lay.get("adiabatic") else 0)) + self._screen_row_bytes() \
+            + self._spectrum_row_bytes()
 
     def _screen_points(self) -> list[int]:
         """The transverse points of the screens' profiles (the snapshot grid's)."""
@@ -344,15 +353,18 @@ class ResultWriter:
                 v.units = f"{u['length']}-1.5"
                 v.long_name = f"{part} part of dpsi/dx at the detector"
                 v.coordinates = "detector_x detector_axis"
-        if lay.get("volkov"):   # a driving (uniform) force along the first axis: see wavesweep.volkov
-            for name, unit, long in (("field_momentum", u["momentum"], "momentum the uniform forces gave, "
-                                      "int_0^t F dt (-q A(t))"),
-                                     ("field_excursion", u["length"], "classical excursion int_0^t "
-                                      "field_momentum / m dt"),
-                                     ("field_phase", "1", "ponderomotive phase int_0^t field_momentum^2 / 2m dt "
-                                      "(per hbar)")):
-                v = self._var(name, "f8", ("time",))
+        if lay.get("volkov"):   # a driving (uniform) force: see wavesweep.volkov
+            each_axis = self._axis_dimension(names) if len(names) > 1 else ()   # 2D/3D: per axis
+            for name, unit, long, dims in (("field_momentum", u["momentum"], "momentum the uniform forces gave, "
+                                            "int_0^t F dt (-q A(t))", ("time", *each_axis)),
+                                           ("field_excursion", u["length"], "classical excursion int_0^t "
+                                            "field_momentum / m dt", ("time", *each_axis)),
+                                           ("field_phase", "1", "ponderomotive phase int_0^t |field_momentum|^2 "
+                                            "/ 2m dt (per hbar)", ("time",))):
+                v = self._var(name, "f8", dims)
                 v.units, v.long_name = unit, long
+        if lay.get("spectra"):
+            self._define_spectra(lay["spectra"], u, names, lay["axes"], s, lay.get("record"))
         if lay.get("screens"):
             self._define_screens(lay["screens"], u, len(names))
         if lay.get("frame_axes"):   # a falling grid: lab position = grid coordinate + frame_offset
@@ -367,10 +379,7 @@ class ResultWriter:
         state_dims = names if s == 1 else [f"{n}_full" for n in names]
         if s != 1 and (lay.get("final_state", True) or lay.get("record") is not None):
             for (name, coords, long), n in zip(lay["axes"], state_dims):
-                ds.createDimension(n, len(coords))
-                v = self._var(n, "f8", (n,))
-                v[:] = coords
-                v.units, v.long_name = u["length"], f"{long} (full grid)"
+                self._full_axis(n, coords, long, u)
         if lay.get("record") is not None:
             self._define_record(lay["record"], state_dims, u)
         if lay.get("final_state", True):
@@ -431,18 +440,84 @@ class ResultWriter:
         v.long_name = "probability on the adiabatic state, sum_r |sum_a U_ak(r)^* psi_a(r)|^2 dV"
         v.comment = comment
 
-    def _define_frame_offset(self, axes, u):
-        """``frame_offset`` (time) in 1D, (time, axis) in 2D/3D, and
-        ``snapshot_frame_offset`` on the snapshots' times likewise."""
-        ds = self.ds
-        extra = ()
-        if len(axes) > 1:
-            ds.createDimension("axis", len(axes))
+    def _full_axis(self, dim: str, coords, long: str, u: dict) -> None:
+        """A full-grid axis ``dim`` (under decimated snapshots: ``<axis>_full``), made once."""
+        if dim in self.ds.dimensions:
+            return
+        self.ds.createDimension(dim, len(coords))
+        v = self._var(dim, "f8", (dim,))
+        v[:] = coords
+        v.units, v.long_name = u["length"], f"{long} (full grid)"
+
+    def _axis_dimension(self, axes) -> tuple[str]:
+        """The ``axis`` dimension (the grid axes' names), made once."""
+        if "axis" not in self.ds.dimensions:
+            self.ds.createDimension("axis", len(axes))
             v = self._var("axis", str, ("axis",))
             v.long_name, v.units = "grid axis", "1"
             for i, name in enumerate(axes):
                 v[i] = name
-            extra = ("axis",)
+        return ("axis",)
+
+    def _define_spectra(self, spectra: dict, u: dict, names, axes, stride: int, record: dict | None):
+        """``spectrum_detector`` (the names of the 2D/3D detectors recording
+        a spectrum's input) and ``spectrum_psi``/``spectrum_dpsi`` (real and
+        imaginary parts) on the full grid's transverse axes (no stride: a
+        decimated line would alias its transverse momenta)."""
+        ds = self.ds
+        ds.createDimension("spectrum_detector", len(spectra["names"]))
+        v = self._var("spectrum_detector", str, ("spectrum_detector",))
+        v.long_name, v.units = "name of a detector recording psi and dpsi/dn along it", "1"
+        for i, name in enumerate(spectra["names"]):
+            v[i] = name
+        across = []
+        for name, coords, long in axes:
+            if name not in spectra["transverse"]:
+                continue
+            dim = name if stride == 1 else f"{name}_full"
+            self._full_axis(dim, coords, long, u)
+            across.append(dim)
+        d = len(names)
+        for part in ("real", "imag"):
+            for var, power, what in (("spectrum_psi", d / 2, "psi"),
+                                     ("spectrum_dpsi", d / 2 + 1, f"dpsi/d{spectra['normal']}")):
+                v = self._var(f"{var}_{part}", "f8", ("time", "spectrum_detector", *across),
+                              chunksizes=[1, 1, *(len(ds.dimensions[a]) for a in across)])
+                v.units = f"{u['length']}-{power:g}"
+                v.long_name = f"{part} part of {what} on the detector's {'line' if d == 2 else 'plane'}"
+        slabs = (record or {}).get("spectrum_initial_beyond")
+        if slabs is not None:   # psi0 beyond each line or plane (the spectrum's b(k, 0)), NaN-padded
+            ds.createDimension("spectrum_beyond_point", max(1, *(len(v) for _, v in slabs)))
+            v = self._var("spectrum_initial_beyond_first", "i8", ("spectrum_detector",))
+            v[:] = np.array([first for first, _ in slabs], np.int64)
+            v.units, v.long_name = "1", (f"grid index along {spectra['normal']} of the first point of "
+                                         "spectrum_initial_beyond_real/imag")
+            v = self._var("spectrum_initial_beyond_points", "i8", ("spectrum_detector",))
+            v[:] = np.array([len(values) for _, values in slabs], np.int64)
+            v.units, v.long_name = "1", f"points along {spectra['normal']} of spectrum_initial_beyond_real/imag"
+            n = len(ds.dimensions["spectrum_beyond_point"])
+            for part in ("real", "imag"):
+                v = self._var(f"spectrum_initial_beyond_{part}", "f8",
+                              ("spectrum_detector", "spectrum_beyond_point", *across))
+                padded = np.zeros((len(slabs), n, *(len(ds.dimensions[a]) for a in across)))
+                for j, (_, values) in enumerate(slabs):
+                    padded[j, :len(values)] = getattr(values, part)
+                v[:] = padded
+                v.units = f"{u['length']}-{d / 2:g}"
+                v.long_name = (f"{part} part of the initial wave function beyond the detector (away from the "
+                               f"packet), {spectra['normal']} first, where above 1e-15 of its peak")
+
+    def _spectrum_row_bytes(self) -> int:
+        spectra = self.layout.get("spectra")
+        if not spectra:
+            return 0
+        points = int(np.prod([len(a[1]) for a in self.layout["axes"] if a[0] in spectra["transverse"]]))
+        return 32 * len(spectra["names"]) * points
+
+    def _define_frame_offset(self, axes, u):
+        """``frame_offset`` (time) in 1D, (time, axis) in 2D/3D, and
+        ``snapshot_frame_offset`` on the snapshots' times likewise."""
+        extra = self._axis_dimension(axes) if len(axes) > 1 else ()
         for name, dim, when in (("frame_offset", "time", "sample"),
                                 ("snapshot_frame_offset", "snapshot_time", "snapshot")):
             v = self._var(name, "f8", (dim,) + extra)
@@ -593,6 +668,11 @@ class ResultWriter:
                 ds[key][i0:i0 + n] = np.array([b[key] for b in self._buf])
         if "screen_flux" in ds.variables:
             ds["screen_flux"][i0:i0 + n, ...] = np.array([b["screen_flux"] for b in self._buf])
+        for key in ("spectrum_psi", "spectrum_dpsi"):
+            if f"{key}_real" in ds.variables:
+                values = np.array([b[key] for b in self._buf])
+                ds[f"{key}_real"][i0:i0 + n, ...] = values.real
+                ds[f"{key}_imag"][i0:i0 + n, ...] = values.imag
         if len(self.layout["faces"]):
             ds["absorbed"][i0:i0 + n, ...] = np.array([b["absorbed"] for b in self._buf])
         if "frame_offset" in ds.variables and "frame_offset" in self._buf[0]:

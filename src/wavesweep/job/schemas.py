@@ -121,6 +121,10 @@ DETECTOR = {
     "resolved": Field("bool", None, doc="2D/3D: also record the flux density along the line or plane "
                                         "(screen_flux, its time integral screen_probability), on the "
                                         "snapshot grid's transverse axes (record.stride)"),
+    "spectrum": Field("bool", None, doc="2D/3D: also record psi and its normal derivative along the line or "
+                                        "plane at every sample (spectrum_psi, spectrum_dpsi, on the full grid's "
+                                        "transverse axes), what `wavesweep spectrum` needs for the momentum "
+                                        "spectrum of what crossed; 1D detectors always record them"),
 }
 # The detector's position: one of the grid's axis names as the key.
 DETECTOR_POSITION = Field("length", None, doc="position of the detector plane on this axis "

@@ -768,6 +768,7 @@ def _detectors(raw, units, extents, axes) -> list[dict]:
     found = ErrorCollector()
     out, names = [], set()
     screen_axis = None   # the axis every resolved detector lies across (one for now)
+    spectrum_axis = None   # likewise for the detectors that record what a spectrum needs
     for i, table in enumerate(raw):
         field = f"detector.{i}"
         schema = {**DETECTOR, **{a: DETECTOR_POSITION for a in axes}}
@@ -792,6 +793,19 @@ def _detectors(raw, units, extents, axes) -> list[dict]:
                                                         f"supported yet; keep them all across {screen_axis} "
                                                         f"or remove resolved")
                 screen_axis = a
+            if t.get("spectrum") is not None and (len(axes) < 2 or "r" in axes):
+                if "r" in axes and t["spectrum"]:
+                    raise JobError(f"{field}.spectrum", "a radial grid gives no surface-flux spectrum; use a "
+                                                        "cartesian grid or remove spectrum")
+                del t["spectrum"]   # 1D detectors always record psi and dpsi/dx: the same job (and run id)
+            elif t.get("spectrum") is False:
+                del t["spectrum"]
+            elif t.get("spectrum"):
+                if spectrum_axis is not None and a != spectrum_axis:
+                    raise JobError(f"{field}.spectrum", f"spectrum detectors across different axes are not "
+                                                        f"supported yet; keep them all across {spectrum_axis} "
+                                                        f"or remove spectrum")
+                spectrum_axis = a
             if extents is not None and a in extents:
                 lo, hi, min_text, max_text = extents[a]
                 pos = units.to_atomic(t[a], "length", f"{field}.{a}")

@@ -102,7 +102,6 @@ __all__ = ["collect", "collect_study", "missing_points", "SUMMARY_NAME", "MANIFE
 SPECTRUM_VARIABLES = {"spectrum_momentum": "momentum", "spectrum_probability_density": "probability_density",
                       "spectrum_energy": "energy", "spectrum_energy_density": "energy_density",
                       "spectrum_total": "total"}
-SPECTRUM_POINTS = 401      # the spectrum's default points: collect's numbers are `spectrum --json`'s
 UNIT_ATTRS = ("units_length", "units_energy", "units_time", "units_mass")
 TIME_MERGE = 1e-9          # relative to the largest |time|: samples this close are one
 _BASE_KINDS = {"length", "energy", "time", "mass"}
@@ -359,10 +358,10 @@ def _analyse(ds, result: _Result) -> None:
         return
     result.arrivals = {name: d.stats for name, d in dists.items()}
     result.beyond = {name: d["beyond"] for name, d in totals["detectors"].items()}
-    if "detector_dpsi_real" in ds.variables:
+    if "detector_dpsi_real" in ds.variables or "spectrum_detector" in ds.variables:
         try:     # what `wavesweep spectrum` gives, without its warnings (the run's own check judges those)
-            spectra = detector_spectra(ds, SPECTRUM_POINTS)
-        except JobError:   # a run that gives no spectrum (2D, a falling grid, V(t) not a field): NaN
+            spectra = detector_spectra(ds)   # its default points, so the numbers are `spectrum --json`'s
+        except JobError:   # a run that gives no spectrum (a falling grid, V(t) not a field): NaN
             spectra = {}
         result.spectra = {name: entry for name, entry in spectra.items() if entry is not None}
 
@@ -600,7 +599,8 @@ def _fill(shape, where, results, times, faces, detectors, surfaces=None) -> dict
     if surfaces and any(r.population_adiabatic is not None for r in results.values()):
         d["population_adiabatic"] = np.full(shape + (nt, len(surfaces)), nan)
     points = max((len(e["momentum"]) for r in results.values() for e in r.spectra.values()), default=0)
-    if points:   # each run's spectrum on its own momenta, NaN-padded (all have SPECTRUM_POINTS)
+    if points:   # each run's spectrum on its own momenta, NaN-padded (`spectrum`'s default points: 401 in 1D,
+        # 201 on a line or plane)
         for name in SPECTRUM_VARIABLES:
             d[name] = np.full(shape + (nd,) + (() if name == "spectrum_total" else (points,)), nan)
     for cell, run in where.items():

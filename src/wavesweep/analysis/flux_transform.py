@@ -1,0 +1,156 @@
+"""The surface-flux method's time transform (atomic units): the trapezoid
+over a run's samples of f(t) exp(i phase(t)), the one both energy-resolved
+transmission (phase = E t) and the momentum spectra
+(:mod:`wavesweep.analysis.surface_flux`, :mod:`wavesweep.analysis.plane_spectrum`;
+phase = Phi_k(t)) use, with the trapezoid's end correction and the end
+taper that tells a cut record from an aliased one.  See
+:mod:`wavesweep.analysis.surface_flux` for the derivation and the sampling
+argument (Poisson summation)."""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+__all__ = ["time_transform", "trapezoid_weights", "surface_flux_amplitude", "end_taper", "cut_bound", "cut_warning",
+           "CUT_WARN",
+           "TRANSFORM_BLOCK"]
+
+TRANSFORM_BLOCK = 2**21   # momenta x samples per block of the transform (32 MiB of complex phases)
+# A cut record's bound on the density (relative to its peak) above this is a warning (common practice:
+# the 1e-3 of still_to_come's warning)
+CUT_WARN = 1e-3
+
+
+def trapezoid_weights(time) -> np.ndarray:
+    """Trapezoid weights of the samples ``time`` (np.gradient's for uneven ones)."""
+    t = np.asarray(time, float)
+    dt_rec = float(np.median(np.diff(t)))
+    wq = np.full(len(t), dt_rec)
+    wq[0] = wq[-1] = dt_rec / 2
+    if not np.allclose(np.diff(t), dt_rec, rtol=1e-6, atol=0):
+        wq = np.gradient(t)                 # uneven samples (a resumed run is still even)
+    return wq
+
+
+def time_transform(time, samples, phase) -> np.ndarray:
+    """(1 / 2 pi) int f(t) exp(i phase(t)) dt by the trapezoid over the
+    samples: ``samples`` f(t_n) (N,) or (N, R) (R signals at once: one
+    matrix product), ``phase`` (K, N) radians per output row; returns (K,)
+    or (K, R).  Energy-resolved transmission's psi~(E) is the case phase =
+    E t (``transmission_from_samples``); the surface-flux amplitude the case
+    phase = Phi_k(t) (:func:`surface_flux_amplitude`)."""
+    amp = np.asarray(samples, complex)
+    w = trapezoid_weights(time)
+    return (np.exp(1j * phase) @ (amp * (w if amp.ndim == 1 else w[:, None]))) / (2 * math.pi)
+
+
+def end_taper(t) -> np.ndarray:
+    """1 over the record, falling as cos^2 to 0 over its last tenth: a
+    record's end made smooth, so that a cut's leak into far energies fades
+    (an alias of the samples does not)."""
+    t = np.asarray(t, float)
+    start = t[0] + 0.9 * (t[-1] - t[0])
+    ramp = np.clip((t - start) / max(t[-1] - start, 1e-300), 0.0, 1.0)
+    return np.cos(0.5 * math.pi * ramp) ** 2
+
+
+def surface_flux_amplitude(time, psi_detector, dpsi_detector, momentum, mass, x_detector, side=1.0,
+                           field_momentum=None, excursion=None, field_phase=None, initial=None) -> np.ndarray:
+    """b(k) of :mod:`wavesweep.analysis.surface_flux` (atomic units): the
+    amplitude per unit canonical momentum ``momentum`` k (bohr^-1) of what
+    crossed the detector at ``x_detector`` (bohr) towards ``side`` (+1: to
+    larger x, -1: smaller) between the first and last of ``time``, from psi
+    and dpsi/dx there (bohr^-1/2, bohr^-3/2; shape (N,), or (N, R) for R
+    signals sharing the normal phase, the transverse rows of a line or
+    plane: :mod:`wavesweep.analysis.plane_spectrum`).  ``field_momentum``
+    P(t) = -q A(t), ``excursion`` alpha(t) = int P / m and ``field_phase``
+    S(t) = int P^2 / 2m at the samples (None: no field); ``initial``: b(k,
+    0) (None: 0).  Returns (K,) or (K, R)."""
+    t = np.asarray(time, float)
+    k = np.asarray(momentum, float)
+    rows = max(1, TRANSFORM_BLOCK // max(len(t), 1))
+    if len(k) > rows:   # blocks of momenta: no (momenta x samples) temporary beyond TRANSFORM_BLOCK
+        init = None if initial is None else np.asarray(initial, complex)
+        return np.concatenate([surface_flux_amplitude(t, psi_detector, dpsi_detector, k[i:i + rows], mass,
+                                                      x_detector, side, field_momentum, excursion, field_phase,
+                                                      None if init is None else init[i:i + rows])
+                               for i in range(0, len(k), rows)])
+    psi = np.asarray(psi_detector, complex)
+    dpsi = np.asarray(dpsi_detector, complex)
+    flat = psi.ndim == 1
+    psi, dpsi = (psi[:, None], dpsi[:, None]) if flat else (psi, dpsi)
+    zero = np.zeros_like(t)
+    p_t = zero if field_momentum is None else np.asarray(field_momentum, float)
+    alpha = zero if excursion is None else np.asarray(excursion, float)
+    s_t = zero if field_phase is None else np.asarray(field_phase, float)
+    # chi_k^*(x_d, t) = (2 pi)^(-1/2) exp(-i k x_d) exp(i (k^2 t / 2m + k alpha)) exp(i (S - P x_d))
+    g = np.exp(1j * (s_t - p_t * x_detector))[:, None]
+    phase = np.outer(k**2 / (2 * mass), t) + np.outer(k, alpha)
+    slope_samples, value_samples = g * (dpsi + 1j * p_t[:, None] * psi), g * psi
+    slope_part = time_transform(t, slope_samples, phase)
+    value_part = time_transform(t, value_samples, phase)
+    kc = k[:, None]
+    # 2 pi from time_transform's 1 / 2 pi, (2 pi)^(-1/2) from chi
+    integral = 2 * math.pi * (slope_part + 1j * kc * value_part)
+    integral -= _end_correction(t, slope_samples, value_samples, k, p_t, alpha, mass)
+    integral = integral * np.exp(-1j * kc * x_detector) / math.sqrt(2 * math.pi)
+    b = -side * 1j / (2 * mass) * integral
+    b = b[:, 0] if flat else b
+    return b if initial is None else b + initial
+
+
+def _end_correction(t, slope_samples, value_samples, k, p_t, alpha, mass) -> np.ndarray:
+    """(K, R): the trapezoid's leading error on the record's window, (dt^2 / 12)
+    (f'(t_N) - f'(t_0)) (Euler-Maclaurin; e.g. Abramowitz & Stegun 25.4.32,
+    from memory), for f(t) = exp(i Phi_k(t)) h_k(t), h_k = slope + i k value:
+    the record is cut while what is slow still arrives, and the sum is exact
+    only for a whole band-limited signal.  f' = exp(i Phi_k) (i Phi_k' h_k +
+    h_k') with S and P held in h_k (Phi_k' taken exactly), h_k' by second-order one-sided
+    differences of the samples.  Zero for uneven samples (a correction
+    the trapezoid's np.gradient weights do not define)."""
+    rows = slope_samples.shape[1]
+    if len(t) < 3:
+        return np.zeros((len(k), rows), complex)
+    dt = float(np.median(np.diff(t)))
+    if not np.allclose(np.diff(t), dt, rtol=1e-6, atol=0):
+        return np.zeros((len(k), rows), complex)
+    k = k[:, None]
+    def h(i):
+        return slope_samples[i] + 1j * k * value_samples[i]
+
+    rate_end = k**2 / (2 * mass) + k * p_t[-1] / mass     # d/dt (k^2 t / 2m + k alpha); S, P sit in h
+    rate_start = k**2 / (2 * mass) + k * p_t[0] / mass
+    dh_end = (3 * h(-1) - 4 * h(-2) + h(-3)) / (2 * dt)
+    dh_start = -(3 * h(0) - 4 * h(1) + h(2)) / (2 * dt)
+    f_end = np.exp(1j * (k**2 * t[-1] / (2 * mass) + k * alpha[-1])) * (1j * rate_end * h(-1) + dh_end)
+    f_start = np.exp(1j * (k**2 * t[0] / (2 * mass) + k * alpha[0])) * (1j * rate_start * h(0) + dh_start)
+    out = f_end - f_start
+    return dt**2 / 12 * out
+
+
+def cut_bound(psi_end, dpsi_end, momentum, mass, duration, field_momentum_end=0.0, transverse_energy=0.0):
+    """|B(k)|: the size of the surface-flux integral's part a record cut at T
+    misses, from psi and dpsi/dn at the detector at T (atomic units; (R,)
+    arrays for R transverse rows, or scalars).  Integrating the rest of
+    exp(i Phi_k(t)) h_k(t) by parts, its leading term is h_k(T) exp(i
+    Phi_k(T)) / (i Phi_k'(T)) (e.g. Bender & Orszag, Advanced Mathematical
+    Methods, sec. 6.3, from memory), with h_k = dpsi + i (k + P) psi and
+    Phi_k'(T) the kinetic energy (k + P(T))^2 / 2m plus ``transverse_energy``;
+    where Phi_k' is small the bound is capped by T |h_k| (the integral
+    over the whole record).  Returns (K,) or (K, R), in b's units."""
+    k = np.asarray(momentum, float)[:, None]
+    psi = np.atleast_1d(np.asarray(psi_end, complex))[None, :]
+    dpsi = np.atleast_1d(np.asarray(dpsi_end, complex))[None, :]
+    h = np.abs(dpsi + 1j * (k + field_momentum_end) * psi)
+    rate = (k + field_momentum_end) ** 2 / (2 * mass) + np.atleast_1d(transverse_energy)[None, :]
+    reach = np.minimum(1.0 / np.maximum(rate, 1e-300), duration)
+    bound = h * reach / (2 * mass * math.sqrt(2 * math.pi))
+    return bound[:, 0] if np.ndim(psi_end) == 0 else bound
+
+
+def cut_warning(name: str, cut_uncertainty: float) -> str:
+    """The warning of a record cut while psi is still at detector ``name``."""
+    return (f"detector {name!r}: the run ended while psi was still at it; the cut record leaves the density "
+            f"uncertain by up to {cut_uncertainty:.1g} of its peak (cut_uncertainty); extend evolve.duration "
+            "until what arrives has passed")
