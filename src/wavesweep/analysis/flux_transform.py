@@ -13,13 +13,21 @@ import math
 import numpy as np
 
 __all__ = ["time_transform", "trapezoid_weights", "surface_flux_amplitude", "end_taper", "cut_bound", "cut_warning",
-           "CUT_WARN",
+           "premise_warnings", "momentum_label", "CUT_WARN", "STILL_TO_COME_WARN", "BAND_FLOOR",
+           "SPECTRUM_FLOOR", "SCATTERER_BEYOND", "VARIES",
            "TRANSFORM_BLOCK"]
 
 TRANSFORM_BLOCK = 2**21   # momenta x samples per block of the transform (32 MiB of complex phases)
 # A cut record's bound on the density (relative to its peak) above this is a warning (common practice:
 # the 1e-3 of still_to_come's warning)
 CUT_WARN = 1e-3
+STILL_TO_COME_WARN = 1e-3  # a fraction still to come above this (of what crossed) is a warning
+BAND_FLOOR = 1e-8          # |psi(x_d)|^2 (the spectrum) above this fraction of its peak sets the band
+SPECTRUM_FLOOR = 1e-6      # the momenta reported: where the density is above this fraction of its peak
+# V beyond a detector (outwards) above this x the mean kinetic energy of what crossed: a scatterer lies
+# beyond it, and the surface flux is not the spectrum of what left (common practice: 1 %).
+SCATTERER_BEYOND = 1e-2
+VARIES = 1e-3              # V counts as varying where it differs from V(x_d) by this fraction of <E_kin>
 
 
 def trapezoid_weights(time) -> np.ndarray:
@@ -154,3 +162,46 @@ def cut_warning(name: str, cut_uncertainty: float) -> str:
     return (f"detector {name!r}: the run ended while psi was still at it; the cut record leaves the density "
             f"uncertain by up to {cut_uncertainty:.1g} of its peak (cut_uncertainty); extend evolve.duration "
             "until what arrives has passed")
+
+
+def premise_warnings(name: str, uc: dict, pushed: float, momentum_scale: float, e_mean: float,
+                     v_beyond: float, v_at: float, step: float, e_grid: float) -> list[str]:
+    """The method's premises, judged the same for a point, a line and a
+    plane (atomic units in, the job's units in the text): the field done by
+    the end (``pushed``: how much its momentum transfer still changed over
+    the last samples, against ``momentum_scale``), no scatterer beyond the
+    detector (``v_beyond``, the largest |V| there, against the mean kinetic
+    energy ``e_mean``), V vanishing on it (``v_at``), and the split step's
+    sidebands E + 2 pi / dt off the grid (``step`` dt against ``e_grid``,
+    the largest energy the grid carries)."""
+    out = []
+    if pushed > 1e-6 * max(momentum_scale, 1e-300):
+        out.append(f"detector {name!r}: the field still acts at the end of the run (its momentum "
+                   "transfer still changes between the last samples): the momenta are those at the "
+                   "run's end, not the final ones; extend evolve.duration past the pulse")
+    if v_beyond > SCATTERER_BEYOND * max(e_mean, 1e-300):
+        # beyond the detector H must be the free (Volkov) one; a scatterer there acts on what crossed after
+        # it crossed, which the flux through the detector cannot know
+        out.append(f"detector {name!r}: V beyond it (outwards) reaches {v_beyond / uc['energy']:.3g} "
+                   f"{uc['energy_label']}: what crosses it still meets a potential, so this is not the "
+                   "spectrum of what left (not even its total); use a detector beyond the scatterer, "
+                   "where V vanishes")
+    elif abs(v_at) > VARIES * max(e_mean, 1e-300):
+        out.append(f"V on detector {name!r} reaches {v_at / uc['energy']:.3g} {uc['energy_label']}, not 0: "
+                   "plane waves are not the outgoing states there and the energies are off by about that "
+                   "much; place the detector where V vanishes")
+    if step > 0 and 2 * math.pi / step < e_grid:
+        # the split step is periodic in time: a potential with sharp features couples E to E + 2 pi / dt,
+        # a wave the grid can carry; d psi / dx weighs it by its large k (measured: 3 % off at dx = 1/16 with
+        # a rectangular barrier and dt = 0.005, 7e-4 at dt = 0.004)
+        out.append(f"evolve.dt lets the split step's sidebands (E + 2 pi hbar / dt) travel on the grid, "
+                   f"which the surface flux counts; evolve.dt < {2 * math.pi / e_grid / uc['time']:.3g} "
+                   f"{uc['time_label']} keeps them off it")
+    return out
+
+
+def momentum_label(ds, uc) -> str:
+    """The job's momentum unit as the run labelled its own momenta (p_mean)."""
+    if "p_mean" in ds.variables and "units" in ds["p_mean"].attrs:
+        return str(ds["p_mean"].attrs["units"])
+    return f"{ds.attrs.get('units_mass', 'm_e')} {uc['length_label']} {uc['time_label']}-1"

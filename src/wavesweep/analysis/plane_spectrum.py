@@ -54,16 +54,13 @@ from scipy.interpolate import CubicSpline, PPoly
 
 from ..errors import JobError
 from ..io.results import result_units, source_name
-from .flux_transform import CUT_WARN, cut_bound, cut_warning, end_taper, surface_flux_amplitude
+from .flux_transform import (BAND_FLOOR, CUT_WARN, SPECTRUM_FLOOR, STILL_TO_COME_WARN, VARIES, cut_bound,
+                             cut_warning, end_taper, momentum_label, premise_warnings, surface_flux_amplitude)
 
 __all__ = ["plane_spectrum"]
 
-BAND_FLOOR = 1e-8          # the band's edge: above this fraction of the peak the samples alias (1D's rule)
-SPECTRUM_FLOOR = 1e-6      # the momenta reported: where the density is above this fraction of its peak
 ROW_FLOOR = 1e-14          # transverse rows whose time-integrated |psi~|^2 is below this fraction of the
                            # largest row's carry nothing the spectrum reports (and are not transformed)
-VARIES = 1e-3              # V counts as varying where it differs from V(x_d) by this fraction of <E_kin>
-SCATTERER_BEYOND = 1e-2    # V beyond the line above this x <E_kin>: not the spectrum of what left
 COARSE_POINTS = 512        # normal momenta of the first pass (the band and the range kept)
 
 
@@ -169,15 +166,14 @@ def plane_spectrum(ds, setup, j: int, points: int = 201, details: bool = True) -
            "probability_density_normal": marginal * p_unit,
            "energy": energy / uc["energy"], "energy_density": energy_density * uc["energy"],
            "total": total, "still_to_come": None, "cut_uncertainty": cut_uncertainty,
-           "momentum_units": _momentum_label(ds, uc), "energy_units": uc["energy_label"],
+           "momentum_units": momentum_label(ds, uc), "energy_units": uc["energy_label"],
            "warnings": []}
     if details:
         if cut_uncertainty > CUT_WARN:
             out["warnings"].append(cut_warning(name, cut_uncertainty))
-        out["warnings"] += _warnings(ds, setup, uc, name, normal, x_d, side, p_t, energy, energy_density, dens,
-                                     p_n)
+        out["warnings"] += _warnings(ds, setup, uc, name, normal, x_d, side, p_t, energy, energy_density, p_n)
         out["still_to_come"] = _still_to_come(ds, setup, uc, normal, x_d, side, energy, energy_density)
-        if out["still_to_come"] is not None and total > 0 and out["still_to_come"] > 1e-3 * total:
+        if out["still_to_come"] is not None and total > 0 and out["still_to_come"] > STILL_TO_COME_WARN * total:
             out["warnings"].append(f"the run ended while slow parts were still arriving at detector {name!r}: "
                                    f"{out['still_to_come']:.3g} more probability (against {total:.3g} that "
                                    "crossed) lies before it moving towards it; extend evolve.duration for the "
@@ -349,39 +345,22 @@ def _mean_energy(energy, energy_density) -> float:
     return float(np.trapezoid(energy_density * energy, energy) / total) if total > 0 else 0.0
 
 
-def _warnings(ds, setup, uc, name, normal, x_d, side, p_t, energy, energy_density, dens, p_n) -> list[str]:
-    warnings = []
-    if "field_momentum" in ds.variables:
-        pushed = np.abs(np.diff(p_t[-3:], axis=0))
-        if pushed.size and float(pushed.max()) > 1e-6 * max(float(np.max(np.abs(p_n))), 1e-300):
-            warnings.append(f"detector {name!r}: the field still acts at the end of the run (its momentum "
-                            "transfer still changes between the last samples): the momenta are those at the "
-                            "run's end, not the final ones; extend evolve.duration past the pulse")
-    e_mean = _mean_energy(energy, energy_density)
+def _warnings(ds, setup, uc, name, normal, x_d, side, p_t, energy, energy_density, p_n) -> list[str]:
+    """The premises' warnings (:func:`flux_transform.premise_warnings`)
+    with V beyond and on the line or plane from the snapshot grid's V."""
+    v_beyond = v_at = 0.0
     vs = _static_potential(ds, uc)
     if vs is not None:
         v, coords = vs
         xn = coords[normal]
         beyond = side * (xn - x_d) > 0
         v_beyond = float(np.max(np.abs(np.take(v, np.flatnonzero(beyond), axis=normal)))) if beyond.any() else 0.0
-        at = np.take(v, [int(np.argmin(np.abs(xn - x_d)))], axis=normal)
-        v_d = float(np.max(np.abs(at)))
-        if v_beyond > SCATTERER_BEYOND * max(e_mean, 1e-300):
-            warnings.append(f"detector {name!r}: V beyond it (outwards) reaches {v_beyond / uc['energy']:.3g} "
-                            f"{uc['energy_label']}: what crosses it still meets a potential, so this is not the "
-                            "spectrum of what left (not even its total); use a detector beyond the scatterer, "
-                            "where V vanishes")
-        elif v_d > VARIES * max(e_mean, 1e-300):
-            warnings.append(f"V on detector {name!r} reaches {v_d / uc['energy']:.3g} {uc['energy_label']}, not "
-                            "0: plane waves are not the outgoing states there and the energies are off by about "
-                            "that much; place the detector where V vanishes")
-    step = float(ds.attrs.get("dt", 0.0)) * uc["time"]
-    e_grid = sum((math.pi / ax.dx) ** 2 for ax in setup.grid.axes) / (2 * setup.mass)
-    if step > 0 and 2 * math.pi / step < e_grid:
-        warnings.append(f"evolve.dt lets the split step's sidebands (E + 2 pi hbar / dt) travel on the grid, "
-                        f"which the surface flux counts; evolve.dt < {2 * math.pi / e_grid / uc['time']:.3g} "
-                        f"{uc['time_label']} keeps them off it")
-    return warnings
+        v_at = float(np.max(np.abs(np.take(v, [int(np.argmin(np.abs(xn - x_d)))], axis=normal))))
+    pushed = np.abs(np.diff(p_t[-3:], axis=0)) if "field_momentum" in ds.variables else np.zeros(0)
+    return premise_warnings(name, uc, float(pushed.max(initial=0.0)), float(np.max(np.abs(p_n))),
+                            _mean_energy(energy, energy_density), v_beyond, v_at,
+                            float(ds.attrs.get("dt", 0.0)) * uc["time"],
+                            sum((math.pi / ax.dx) ** 2 for ax in setup.grid.axes) / (2 * setup.mass))
 
 
 def _still_to_come(ds, setup, uc, normal, x_d, side, energy, energy_density) -> float | None:
@@ -417,9 +396,3 @@ def _still_to_come(ds, setup, uc, normal, x_d, side, energy, energy_density) -> 
     toward = (side * k > 0).reshape(view)
     # Parseval along the normal: sum |psi|^2 dx = sum |fft|^2 dx / N; the other axes' cells as they are
     return float(np.sum(np.abs(np.where(toward, phi, 0.0)) ** 2) * dx / len(x) * setup.grid.cell_volume / dx)
-
-
-def _momentum_label(ds, uc) -> str:
-    if "p_mean" in ds.variables and "units" in ds["p_mean"].attrs:
-        return str(ds["p_mean"].attrs["units"])
-    return f"{ds.attrs.get('units_mass', 'm_e')} {uc['length_label']} {uc['time_label']}-1"

@@ -72,7 +72,8 @@ import numpy as np
 
 from ..errors import JobError
 from ..io.record import initial_beyond, layer_holding
-from .flux_transform import (CUT_WARN, TRANSFORM_BLOCK, cut_bound, cut_warning, end_taper,
+from .flux_transform import (BAND_FLOOR, CUT_WARN, SPECTRUM_FLOOR, STILL_TO_COME_WARN, VARIES,
+                             cut_bound, cut_warning, end_taper, momentum_label, premise_warnings,
                              surface_flux_amplitude, time_transform, trapezoid_weights)
 from .plane_spectrum import plane_spectrum
 from .recorded import run_record as read_record
@@ -82,13 +83,6 @@ __all__ = ["time_transform", "trapezoid_weights", "surface_flux_amplitude", "mom
            "detector_spectra",
            "BAND_FLOOR", "STILL_TO_COME_WARN"]
 
-# V beyond a detector (outwards) above this x the mean kinetic energy of what crossed: a scatterer lies
-# beyond it, and the surface flux is not the spectrum of what left (common practice: 1 %).
-SCATTERER_BEYOND = 1e-2
-BAND_FLOOR = 1e-8          # |psi(x_d)|^2 above this fraction of its peak sets the band W
-STILL_TO_COME_WARN = 1e-3  # a fraction still to come above this (of what crossed) is a warning
-SPECTRUM_FLOOR = 1e-6      # the momenta reported: where the density is above this fraction of its peak
-VARIES = 1e-3              # V counts as varying where it differs from V(x_d) by this fraction of <E_kin>
 
 
 def _beyond_projection(first, values, x, k) -> np.ndarray:
@@ -212,44 +206,21 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
            "momentum": p_kin / p_unit, "probability_density": density * p_unit,
            "energy": energy / uc["energy"], "energy_density": energy_density * uc["energy"],
            "total": total, "still_to_come": None, "cut_uncertainty": cut_uncertainty,
-           "momentum_units": _momentum_label(ds, uc), "energy_units": uc["energy_label"],
+           "momentum_units": momentum_label(ds, uc), "energy_units": uc["energy_label"],
            "warnings": []}
     if not details:
         return out
     warnings = out["warnings"]
     if cut_uncertainty > CUT_WARN:
         warnings.append(cut_warning(name, cut_uncertainty))
-    if field:
-        pushed = np.abs(np.diff(field["field_momentum"][-3:]))
-        if pushed.size and float(pushed.max()) > 1e-6 * max(float(np.max(np.abs(p_kin))), 1e-300):
-            warnings.append(f"detector {name!r}: the field still acts at the end of the run (its momentum "
-                            "transfer still changes between the last samples): the momenta are those at the "
-                            "run's end, not the final ones; extend evolve.duration past the pulse")
     v_static = np.asarray(setup.static_potential, float)
     e_mean = float(np.trapezoid(density * energy, np.abs(p_kin)) / total) if total > 0 else 0.0
-    v_d = float(np.interp(x_d, x, v_static))
     beyond = (x > x_d) if side > 0 else (x < x_d)
-    v_beyond = float(np.max(np.abs(v_static[beyond]))) if np.any(beyond) else 0.0
-    if v_beyond > SCATTERER_BEYOND * max(e_mean, 1e-300):
-        # the method's premise: beyond the detector H is the free (Volkov) one; a scatterer there acts on
-        # what crossed after it crossed, which the flux through the detector cannot know
-        warnings.append(f"detector {name!r}: V beyond it (outwards) reaches {v_beyond / uc['energy']:.3g} "
-                        f"{uc['energy_label']}: what crosses it still meets a potential, so this is not the "
-                        "spectrum of what left (not even its total); use a detector beyond the scatterer, "
-                        "where V vanishes")
-    elif abs(v_d) > VARIES * max(e_mean, 1e-300):
-        warnings.append(f"V at detector {name!r} is {v_d / uc['energy']:.3g} {uc['energy_label']}, not 0: plane "
-                        "waves are not the outgoing states there and the energies are off by about that much; "
-                        "place the detector where V vanishes")
-    step = float(ds.attrs.get("dt", 0.0)) * uc["time"]
-    e_grid = (math.pi / setup.grid.axes[0].dx) ** 2 / (2 * mass)
-    if step > 0 and 2 * math.pi / step < e_grid:
-        # the split step is periodic in time: a potential with sharp features couples E to E + 2 pi / dt,
-        # a wave the grid can carry; d psi / dx weighs it by its large k (measured: 3 % off at dx = 1/16 with
-        # a rectangular barrier and dt = 0.005, 7e-4 at dt = 0.004)
-        warnings.append(f"evolve.dt lets the split step's sidebands (E + 2 pi hbar / dt) travel on the grid, "
-                        f"which the surface flux counts; evolve.dt < {2 * math.pi / e_grid / uc['time']:.3g} "
-                        f"{uc['time_label']} keeps them off it")
+    pushed = np.abs(np.diff(field["field_momentum"][-3:])) if field else np.zeros(0)
+    warnings += premise_warnings(
+        name, uc, float(pushed.max(initial=0.0)), float(np.max(np.abs(p_kin))), e_mean,
+        float(np.max(np.abs(v_static[beyond]))) if np.any(beyond) else 0.0, float(np.interp(x_d, x, v_static)),
+        float(ds.attrs.get("dt", 0.0)) * uc["time"], (math.pi / setup.grid.axes[0].dx) ** 2 / (2 * mass))
     to_come = _still_to_come(ds, uc, x, v_static, x_d, side, e_mean)
     if to_come is not None and total > 0 and to_come > STILL_TO_COME_WARN * total:
         warnings.append(f"the run ended while slow parts were still arriving at detector {name!r}: "
@@ -257,13 +228,6 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
                         "moving towards it; extend evolve.duration for the low momenta")
     out["still_to_come"] = to_come
     return out
-
-
-def _momentum_label(ds, uc) -> str:
-    """The job's momentum unit as the run labelled its own momenta (p_mean)."""
-    if "p_mean" in ds.variables and "units" in ds["p_mean"].attrs:
-        return str(ds["p_mean"].attrs["units"])
-    return f"{ds.attrs.get('units_mass', 'm_e')} {uc['length_label']} {uc['time_label']}-1"
 
 
 def _still_to_come(ds, uc, x, v_static, x_d, side, e_mean) -> float | None:

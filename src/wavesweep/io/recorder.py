@@ -392,11 +392,7 @@ class ResultWriter:
         """``screen`` (the resolved detectors' names), ``screen_flux`` and
         ``screen_probability`` on the transverse snapshot axes."""
         ds = self.ds
-        ds.createDimension("screen", len(screens["names"]))
-        v = self._var("screen", str, ("screen",))
-        v.long_name, v.units = "resolved detector (screen) name", "1"
-        for i, name in enumerate(screens["names"]):
-            v[i] = name
+        self._name_dimension("screen", screens["names"], "resolved detector (screen) name")
         across = tuple(screens["transverse"])
         per_area = f"{u['length']}-{ndim - 1}"
         v = self._var("screen_flux", "f8", ("time", "screen", *across), zlib=True, complevel=4,
@@ -449,14 +445,19 @@ class ResultWriter:
         v[:] = coords
         v.units, v.long_name = u["length"], f"{long} (full grid)"
 
+    def _name_dimension(self, dim: str, names, long_name: str) -> None:
+        """A dimension ``dim`` whose coordinate holds ``names`` (strings), made once."""
+        if dim in self.ds.dimensions:
+            return
+        self.ds.createDimension(dim, len(names))
+        v = self._var(dim, str, (dim,))
+        v.long_name, v.units = long_name, "1"
+        for i, name in enumerate(names):
+            v[i] = name
+
     def _axis_dimension(self, axes) -> tuple[str]:
         """The ``axis`` dimension (the grid axes' names), made once."""
-        if "axis" not in self.ds.dimensions:
-            self.ds.createDimension("axis", len(axes))
-            v = self._var("axis", str, ("axis",))
-            v.long_name, v.units = "grid axis", "1"
-            for i, name in enumerate(axes):
-                v[i] = name
+        self._name_dimension("axis", axes, "grid axis")
         return ("axis",)
 
     def _define_spectra(self, spectra: dict, u: dict, names, axes, stride: int, record: dict | None):
@@ -465,11 +466,8 @@ class ResultWriter:
         imaginary parts) on the full grid's transverse axes (no stride: a
         decimated line would alias its transverse momenta)."""
         ds = self.ds
-        ds.createDimension("spectrum_detector", len(spectra["names"]))
-        v = self._var("spectrum_detector", str, ("spectrum_detector",))
-        v.long_name, v.units = "name of a detector recording psi and dpsi/dn along it", "1"
-        for i, name in enumerate(spectra["names"]):
-            v[i] = name
+        self._name_dimension("spectrum_detector", spectra["names"],
+                             "name of a detector recording psi and dpsi/dn along it")
         across = []
         for name, coords, long in axes:
             if name not in spectra["transverse"]:
