@@ -509,9 +509,12 @@ def _initial_detector_values(setup, marginals_au) -> dict:
     time (:func:`wavesweep.io.record.classical_share`), as analysis computes
     them from the marginals (O(grid), once, at run time)."""
     lf, tf = setup.units.factor("length"), setup.units.factor("time")
-    out = {"detector_initial_mean": [], "classical_arrival_probability": [], "classical_arrival_mean": []}
+    out = {"detector_initial_mean": [], "classical_arrival_probability": [], "classical_arrival_mean": [],
+           "detector_potential": []}
     accel = classical_acceleration(setup)
+    v_static = np.asarray(setup.recorded_potential(), float) if setup.detectors else None
     for d in setup.detectors:
+        out["detector_potential"].append(potential_on_detector(v_static, setup.grid, d) / setup.units.factor("energy"))
         rho, k, w = marginals_au[d.axis]
         coords = setup.grid.axes[d.axis].coordinates
         _, rho_kept, distance = packet_side_positions(coords, rho, d.position)
@@ -523,6 +526,16 @@ def _initial_detector_values(setup, marginals_au) -> dict:
     if accel is not None and setup.detectors:   # absent in free flight: those files stay as they were
         out["classical_acceleration"] = [float(accel[d.axis]) / (lf / tf**2) for d in setup.detectors]
     return {name: np.asarray(v, float) for name, v in out.items()}
+
+
+def potential_on_detector(v_static, grid, detector) -> float:
+    """The static V (hartree) at a detector: linear between the grid
+    points around it along its axis, on a line or plane its mean over it."""
+    x = grid.axes[detector.axis].coordinates
+    i = int(np.clip(np.searchsorted(x, detector.position) - 1, 0, len(x) - 2))
+    w = float(np.clip((detector.position - x[i]) / (x[i + 1] - x[i]), 0.0, 1.0))
+    v = np.asarray(v_static, float).reshape(grid.shape)
+    return float(np.mean((1 - w) * np.take(v, i, axis=detector.axis) + w * np.take(v, i + 1, axis=detector.axis)))
 
 
 def _initial_beyond_values(setup, detector_values, psi0, chosen=None) -> list:

@@ -12,7 +12,7 @@ import math
 
 import numpy as np
 
-__all__ = ["time_transform", "trapezoid_weights", "surface_flux_amplitude", "end_taper", "cut_bound", "cut_warning",
+__all__ = ["time_transform", "trapezoid_weights", "surface_flux_amplitude", "end_taper", "tail_decay", "cut_tail", "cut_warning",
            "premise_warnings", "momentum_label", "CUT_WARN", "STILL_TO_COME_WARN", "BAND_FLOOR",
            "SPECTRUM_FLOOR", "SCATTERER_BEYOND", "VARIES",
            "TRANSFORM_BLOCK"]
@@ -64,7 +64,8 @@ def end_taper(t) -> np.ndarray:
 
 
 def surface_flux_amplitude(time, psi_detector, dpsi_detector, momentum, mass, x_detector, side=1.0,
-                           field_momentum=None, excursion=None, field_phase=None, initial=None) -> np.ndarray:
+                           field_momentum=None, excursion=None, field_phase=None, initial=None,
+                           cut: bool = False):
     """b(k) of :mod:`wavesweep.analysis.surface_flux` (atomic units): the
     amplitude per unit canonical momentum ``momentum`` k (bohr^-1) of what
     crossed the detector at ``x_detector`` (bohr) towards ``side`` (+1: to
@@ -74,16 +75,23 @@ def surface_flux_amplitude(time, psi_detector, dpsi_detector, momentum, mass, x_
     plane: :mod:`wavesweep.analysis.plane_spectrum`).  ``field_momentum``
     P(t) = -q A(t), ``excursion`` alpha(t) = int P / m and ``field_phase``
     S(t) = int P^2 / 2m at the samples (None: no field); ``initial``: b(k,
-    0) (None: 0).  Returns (K,) or (K, R)."""
+    0) (None: 0).  Returns (K,) or (K, R); with ``cut`` (b, B), B the size
+    of the part of b a record cut while psi is still at the detector misses
+    (:func:`cut_tail`: the integrand h_k exp(i Phi_k) goes on at its end
+    value, at the rate mismatch Phi_k' minus psi's own local frequency
+    there, decaying as |psi| did over the last samples)."""
     t = np.asarray(time, float)
     k = np.asarray(momentum, float)
     rows = max(1, TRANSFORM_BLOCK // max(len(t), 1))
     if len(k) > rows:   # blocks of momenta: no (momenta x samples) temporary beyond TRANSFORM_BLOCK
         init = None if initial is None else np.asarray(initial, complex)
-        return np.concatenate([surface_flux_amplitude(t, psi_detector, dpsi_detector, k[i:i + rows], mass,
-                                                      x_detector, side, field_momentum, excursion, field_phase,
-                                                      None if init is None else init[i:i + rows])
-                               for i in range(0, len(k), rows)])
+        parts = [surface_flux_amplitude(t, psi_detector, dpsi_detector, k[i:i + rows], mass, x_detector, side,
+                                        field_momentum, excursion, field_phase,
+                                        None if init is None else init[i:i + rows], cut)
+                 for i in range(0, len(k), rows)]
+        if cut:
+            return np.concatenate([p[0] for p in parts]), np.concatenate([p[1] for p in parts])
+        return np.concatenate(parts)
     psi = np.asarray(psi_detector, complex)
     dpsi = np.asarray(dpsi_detector, complex)
     flat = psi.ndim == 1
@@ -105,7 +113,16 @@ def surface_flux_amplitude(time, psi_detector, dpsi_detector, momentum, mass, x_
     integral = integral * np.exp(-1j * kc * x_detector) / math.sqrt(2 * math.pi)
     b = -side * 1j / (2 * mass) * integral
     b = b[:, 0] if flat else b
-    return b if initial is None else b + initial
+    b = b if initial is None else b + initial
+    if not cut:
+        return b
+    # the integrand's rate past the end: Phi_k' (its normal part; S, V_d t and the transverse factors sit in
+    # the samples) plus the samples' own phase rate there
+    rate = -np.angle(value_samples[-1] / np.where(value_samples[-2] != 0, value_samples[-2], 1.0)) / (t[-1] - t[-2])
+    mismatch = kc**2 / (2 * mass) + kc * p_t[-1] / mass - rate[None, :]
+    end = slope_samples[-1][None, :] + 1j * kc * value_samples[-1][None, :]
+    bound = cut_tail(end, mismatch, tail_decay(value_samples, t)[None, :]) / (2 * mass * math.sqrt(2 * math.pi))
+    return b, (bound[:, 0] if flat else bound)
 
 
 def _end_correction(t, slope_samples, value_samples, k, p_t, alpha, mass) -> np.ndarray:
@@ -137,24 +154,29 @@ def _end_correction(t, slope_samples, value_samples, k, p_t, alpha, mass) -> np.
     return dt**2 / 12 * out
 
 
-def cut_bound(psi_end, dpsi_end, momentum, mass, duration, field_momentum_end=0.0, transverse_energy=0.0):
-    """|B(k)|: the size of the surface-flux integral's part a record cut at T
-    misses, from psi and dpsi/dn at the detector at T (atomic units; (R,)
-    arrays for R transverse rows, or scalars).  Integrating the rest of
-    exp(i Phi_k(t)) h_k(t) by parts, its leading term is h_k(T) exp(i
-    Phi_k(T)) / (i Phi_k'(T)) (e.g. Bender & Orszag, Advanced Mathematical
-    Methods, sec. 6.3, from memory), with h_k = dpsi + i (k + P) psi and
-    Phi_k'(T) the kinetic energy (k + P(T))^2 / 2m plus ``transverse_energy``;
-    where Phi_k' is small the bound is capped by T |h_k| (the integral
-    over the whole record).  Returns (K,) or (K, R), in b's units."""
-    k = np.asarray(momentum, float)[:, None]
-    psi = np.atleast_1d(np.asarray(psi_end, complex))[None, :]
-    dpsi = np.atleast_1d(np.asarray(dpsi_end, complex))[None, :]
-    h = np.abs(dpsi + 1j * (k + field_momentum_end) * psi)
-    rate = (k + field_momentum_end) ** 2 / (2 * mass) + np.atleast_1d(transverse_energy)[None, :]
-    reach = np.minimum(1.0 / np.maximum(rate, 1e-300), duration)
-    bound = h * reach / (2 * mass * math.sqrt(2 * math.pi))
-    return bound[:, 0] if np.ndim(psi_end) == 0 else bound
+def tail_decay(amplitude, t) -> np.ndarray:
+    """gamma, the decay rate of |amplitude| over the record's last 2 % of
+    samples (at least 1 / the record's length: a tail that does not decay
+    is counted as lasting as long as the record did), per column of
+    ``amplitude`` (N,) or (N, R); the tail model of :func:`cut_tail`."""
+    a = np.abs(np.asarray(amplitude))
+    t = np.asarray(t, float)
+    last = max(2, len(a) // 50)
+    span = float(t[-1] - t[-last])
+    floor = 1.0 / float(t[-1] - t[0])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        gamma = np.log(a[-last] / a[-1]) / span if span > 0 else np.zeros(a.shape[1:])
+    return np.maximum(np.where(np.isfinite(gamma), gamma, 0.0), floor)
+
+
+def cut_tail(end_value, mismatch, gamma) -> np.ndarray:
+    """|int_T^inf f(t) dt| for an integrand that goes on past the record's
+    end T as f(T) exp(i mismatch (t - T) - gamma (t - T)): |f(T)| /
+    (mismatch^2 + gamma^2)^(1/2).  A record cut while the signal still
+    arrives misses this much of any time transform: energy-resolved
+    transmission's (mismatch E - E_end) and the surface-flux amplitude's
+    (:func:`surface_flux_amplitude` with ``cut=True``)."""
+    return np.abs(end_value) / np.sqrt(np.asarray(mismatch) ** 2 + np.asarray(gamma) ** 2)
 
 
 def cut_warning(name: str, cut_uncertainty: float) -> str:
@@ -169,11 +191,12 @@ def premise_warnings(name: str, uc: dict, pushed: float, momentum_scale: float, 
     """The method's premises, judged the same for a point, a line and a
     plane (atomic units in, the job's units in the text): the field done by
     the end (``pushed``: how much its momentum transfer still changed over
-    the last samples, against ``momentum_scale``), no scatterer beyond the
-    detector (``v_beyond``, the largest |V| there, against the mean kinetic
-    energy ``e_mean``), V vanishing on it (``v_at``), and the split step's
-    sidebands E + 2 pi / dt off the grid (``step`` dt against ``e_grid``,
-    the largest energy the grid carries)."""
+    the last samples, against ``momentum_scale``), V flat beyond the
+    detector at its value V_d there (``v_beyond``, the largest |V - V_d|
+    beyond, against the mean kinetic energy ``e_mean``: a scatterer), and
+    along a line or plane (``v_at``, the largest |V - V_d| on it), and the
+    split step's sidebands E + 2 pi / dt off the grid (``step`` dt against
+    ``e_grid``, the largest energy the grid carries)."""
     out = []
     if pushed > 1e-6 * max(momentum_scale, 1e-300):
         out.append(f"detector {name!r}: the field still acts at the end of the run (its momentum "
@@ -182,14 +205,14 @@ def premise_warnings(name: str, uc: dict, pushed: float, momentum_scale: float, 
     if v_beyond > SCATTERER_BEYOND * max(e_mean, 1e-300):
         # beyond the detector H must be the free (Volkov) one; a scatterer there acts on what crossed after
         # it crossed, which the flux through the detector cannot know
-        out.append(f"detector {name!r}: V beyond it (outwards) reaches {v_beyond / uc['energy']:.3g} "
-                   f"{uc['energy_label']}: what crosses it still meets a potential, so this is not the "
-                   "spectrum of what left (not even its total); use a detector beyond the scatterer, "
-                   "where V vanishes")
+        out.append(f"detector {name!r}: V beyond it (outwards) differs from its value at the detector by up "
+                   f"to {v_beyond / uc['energy']:.3g} {uc['energy_label']}: what crosses it still meets a "
+                   "potential, so this is not the spectrum of what left (not even its total); use a detector "
+                   "beyond the scatterer, where V is flat")
     elif abs(v_at) > VARIES * max(e_mean, 1e-300):
-        out.append(f"V on detector {name!r} reaches {v_at / uc['energy']:.3g} {uc['energy_label']}, not 0: "
-                   "plane waves are not the outgoing states there and the energies are off by about that "
-                   "much; place the detector where V vanishes")
+        out.append(f"V varies along detector {name!r} by up to {v_at / uc['energy']:.3g} {uc['energy_label']}: "
+                   "plane waves of one energy offset are not the outgoing states there and the energies are "
+                   "off by about that much; place the detector where V is flat")
     if step > 0 and 2 * math.pi / step < e_grid:
         # the split step is periodic in time: a potential with sharp features couples E to E + 2 pi / dt,
         # a wave the grid can carry; d psi / dx weighs it by its large k (measured: 3 % off at dx = 1/16 with

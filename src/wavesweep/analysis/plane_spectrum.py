@@ -54,7 +54,7 @@ from scipy.interpolate import CubicSpline, PPoly
 
 from ..errors import JobError
 from ..io.results import result_units, source_name
-from .flux_transform import (BAND_FLOOR, CUT_WARN, SPECTRUM_FLOOR, STILL_TO_COME_WARN, VARIES, cut_bound,
+from .flux_transform import (BAND_FLOOR, CUT_WARN, SPECTRUM_FLOOR, STILL_TO_COME_WARN, VARIES,
                              cut_warning, end_taper, momentum_label, premise_warnings, surface_flux_amplitude)
 
 __all__ = ["plane_spectrum"]
@@ -109,18 +109,20 @@ def plane_spectrum(ds, setup, j: int, points: int = 201, details: bool = True) -
     e_band = math.pi / dt_s
     k_grid = math.pi / grid.axes[normal].dx
     k_top = min(math.sqrt(2 * mass * e_band), k_grid)
-    field = {"field_momentum": p_t[:, normal], "excursion": alpha[:, normal], "field_phase": s_t}
+    # a constant V_d beyond the line: the outgoing waves' phase V_d t more (surface_flux's rule)
+    v_d = setup.detector_value("detector_potential", j) or 0.0
+    field = {"field_momentum": p_t[:, normal], "excursion": alpha[:, normal], "field_phase": s_t + v_d * t}
     p_end = p_t[-1]
     slab = (setup.spectrum_initial_beyond or {}).get(j)
-    amplitude = lambda k, a=psi_rows, b=dpsi_rows: surface_flux_amplitude(   # noqa: E731
-        t, a, b, k, mass, x_d, side, **field,
+    amplitude = lambda k, a=psi_rows, b=dpsi_rows, cut=False: surface_flux_amplitude(   # noqa: E731
+        t, a, b, k, mass, x_d, side, **field, cut=cut,
         initial=None if slab is None else _beyond_projection(slab, grid.axes[normal].coordinates, y, k, rows))
     coarse = side * np.linspace(0.0, k_top, COARSE_POINTS + 1)[1:] - p_end[normal]
     dens_c = np.abs(amplitude(coarse)) ** 2
     marginal_c = dens_c.sum(axis=1)
     if not marginal_c.max() > 0:
         raise JobError("--detector", f"nothing crossed detector {name!r} outwards during the run")
-    v_min = min(_potential_min(ds, setup, uc), 0.0)
+    v_min = min(_potential_min(ds, setup, uc) - v_d, 0.0)   # bound parts, counted from V_d
     # the band (surface_flux's rule): an aliased spectrum fills the range it is computed on
     top = marginal_c[-len(coarse) // 20:].max()
     row_top = float(weight[rows][e_rows > 0.9 * e_band].max(initial=0.0))
@@ -139,11 +141,8 @@ def plane_spectrum(ds, setup, j: int, points: int = 201, details: bool = True) -
     step = k_top / COARSE_POINTS
     lo, hi = max(lo - 2 * step, 0.0), min(hi + 2 * step, k_top)
     p_n = side * np.linspace(lo, hi, points)                      # kinetic normal momenta at the end
-    b = amplitude(p_n - p_end[normal])
+    b, cut = amplitude(p_n - p_end[normal], cut=True)
     dens = np.abs(b) ** 2                                         # (points, rows) per bohr^-d
-    e_across = np.sum((k_rows[rows] + p_end[others]) ** 2, axis=1) / (2 * mass)
-    cut = cut_bound(psi_rows[-1], dpsi_rows[-1], p_n - p_end[normal], mass, t[-1] - t[0],
-                    p_end[normal], e_across)
     cut_uncertainty = float(np.max(2 * np.abs(b) * cut + cut**2) / dens.max())
     row_peak = dens.max(axis=0)
     shown = row_peak > SPECTRUM_FLOOR * row_peak.max()
@@ -171,7 +170,8 @@ def plane_spectrum(ds, setup, j: int, points: int = 201, details: bool = True) -
     if details:
         if cut_uncertainty > CUT_WARN:
             out["warnings"].append(cut_warning(name, cut_uncertainty))
-        out["warnings"] += _warnings(ds, setup, uc, name, normal, x_d, side, p_t, energy, energy_density, p_n)
+        out["warnings"] += _warnings(ds, setup, uc, name, normal, x_d, side, p_t, energy, energy_density, p_n,
+                                     v_d)
         out["still_to_come"] = _still_to_come(ds, setup, uc, normal, x_d, side, energy, energy_density)
         if out["still_to_come"] is not None and total > 0 and out["still_to_come"] > STILL_TO_COME_WARN * total:
             out["warnings"].append(f"the run ended while slow parts were still arriving at detector {name!r}: "
@@ -345,7 +345,7 @@ def _mean_energy(energy, energy_density) -> float:
     return float(np.trapezoid(energy_density * energy, energy) / total) if total > 0 else 0.0
 
 
-def _warnings(ds, setup, uc, name, normal, x_d, side, p_t, energy, energy_density, p_n) -> list[str]:
+def _warnings(ds, setup, uc, name, normal, x_d, side, p_t, energy, energy_density, p_n, v_d) -> list[str]:
     """The premises' warnings (:func:`flux_transform.premise_warnings`)
     with V beyond and on the line or plane from the snapshot grid's V."""
     v_beyond = v_at = 0.0
@@ -354,8 +354,9 @@ def _warnings(ds, setup, uc, name, normal, x_d, side, p_t, energy, energy_densit
         v, coords = vs
         xn = coords[normal]
         beyond = side * (xn - x_d) > 0
-        v_beyond = float(np.max(np.abs(np.take(v, np.flatnonzero(beyond), axis=normal)))) if beyond.any() else 0.0
-        v_at = float(np.max(np.abs(np.take(v, [int(np.argmin(np.abs(xn - x_d)))], axis=normal))))
+        v_beyond = (float(np.max(np.abs(np.take(v, np.flatnonzero(beyond), axis=normal) - v_d)))
+                    if beyond.any() else 0.0)
+        v_at = float(np.max(np.abs(np.take(v, [int(np.argmin(np.abs(xn - x_d)))], axis=normal) - v_d)))
     pushed = np.abs(np.diff(p_t[-3:], axis=0)) if "field_momentum" in ds.variables else np.zeros(0)
     return premise_warnings(name, uc, float(pushed.max(initial=0.0)), float(np.max(np.abs(p_n))),
                             _mean_energy(energy, energy_density), v_beyond, v_at,

@@ -34,9 +34,11 @@ is the initial state beyond the detector projected on plane waves (A(0) = 0).
 |b(k)|^2 is the probability per unit canonical momentum k of what has crossed
 the detector by T; after the pulse (A(T) = 0) k is the final momentum; the
 momentum reported is the kinetic momentum at the end, p = k - q A(T).  The
-kinetic energy is p^2 / 2m (the potential beyond the detector is taken as 0:
-where it is not, plane waves are not the outgoing states, and a warning says
-so); per energy the density is |b|^2 m / |p|.
+kinetic energy is p^2 / 2m; per energy the density is |b|^2 m / |p|.  A
+constant potential V_d beyond the detector (a biased lead) adds V_d t to
+Phi_k: the outgoing states are then the Volkov waves of energy p^2 / 2m +
+V_d, exactly (the run records V_d, ``detector_potential``); where V varies
+beyond it, plane waves are not the outgoing states, and a warning says so.
 
 Sampling.  The run records psi(x_d) and d_x psi(x_d) at every sample
 (``detector_psi``, ``detector_dpsi``; both were already computed for the flux,
@@ -56,7 +58,7 @@ energy-resolved transmission's transform: :func:`time_transform` is the
 one both call).  A record cut while parts still arrive leaves the
 trapezoid's end error (Euler-Maclaurin), which :func:`_end_correction`
 removes to leading order.  What the cut leaves out is estimated by the
-leading end term of the truncated integral (:func:`flux_transform.cut_bound`)
+integrand continued past the end as it was going (:func:`flux_transform.cut_tail`)
 and reported as ``cut_uncertainty``, relative to the density's peak.
 
 Split-step sidebands.  The split-operator step is periodic in time: a
@@ -73,7 +75,7 @@ import numpy as np
 from ..errors import JobError
 from ..io.record import initial_beyond, layer_holding
 from .flux_transform import (BAND_FLOOR, CUT_WARN, SPECTRUM_FLOOR, STILL_TO_COME_WARN, VARIES,
-                             cut_bound, cut_warning, end_taper, momentum_label, premise_warnings,
+                             cut_warning, end_taper, momentum_label, premise_warnings,
                              surface_flux_amplitude, time_transform, trapezoid_weights)
 from .plane_spectrum import plane_spectrum
 from .recorded import run_record as read_record
@@ -149,12 +151,18 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
         field = {"field_momentum": np.asarray(ds["field_momentum"].values, float) * p_unit,
                  "excursion": np.asarray(ds["field_excursion"].values, float) * uc["length"],
                  "field_phase": np.asarray(ds["field_phase"].values, float)}
+    # a constant V_d beyond the detector (a biased lead): the outgoing waves' energies are p^2 / 2m + V_d,
+    # their phase V_d t more (exact where V is flat beyond it; a warning says where it is not)
+    v_d = setup.detector_value("detector_potential", j)
+    v_d = float(np.interp(x_d, x, setup.static_potential)) if v_d is None else v_d
+    if v_d != 0.0:
+        field["field_phase"] = field.get("field_phase", 0.0) + v_d * t
     dt_s = float(np.median(np.diff(t)))
     # momenta: outward, up to the energy pi / dt_s (what lies between it and V_min + 2 pi / dt_s is where
     # the aliases of slow and bound parts fall) and what the grid holds
     k_grid = math.pi / setup.grid.axes[0].dx
     k_top = min(math.sqrt(2 * mass * math.pi / dt_s), k_grid)
-    p_end = float(field["field_momentum"][-1]) if field else 0.0
+    p_end = float(field["field_momentum"][-1]) if "field_momentum" in field else 0.0
     coarse = side * np.linspace(0.0, k_top, 2048)[1:] - p_end
     beyond = (setup.initial_beyond or {}).get(j)
     if beyond is None:   # an older file: from psi0
@@ -167,7 +175,7 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
     # above BAND_FLOOR of its peak at the top of a range the samples (not the grid) limit is refused
     top = dens_c[-len(dens_c) // 20:].max()
     v_low = setup.potential_min if setup.potential_min is not None else float(np.min(setup.static_potential))
-    v_min = min(v_low, 0.0)
+    v_min = min(v_low - v_d, 0.0)    # bound parts' energies, counted from the outgoing waves' V_d
     if k_top < k_grid and top > BAND_FLOOR * dens_c.max():
         # a record cut while psi still arrives leaks into every energy too (a truncated Fourier
         # integral falls off only as 1 / (E - E_end)); an alias does not fade when the record's end is
@@ -195,9 +203,8 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
     lo, hi = max(lo - 2 * step, 0.0), min(hi + 2 * step, k_top)
     p_kin = side * np.linspace(lo, hi, points)
     k = p_kin - p_end
-    b = surface_flux_amplitude(t, psi, dpsi, k, mass, x_d, side, initial=b0(k), **field)
+    b, cut = surface_flux_amplitude(t, psi, dpsi, k, mass, x_d, side, initial=b0(k), cut=True, **field)
     density = np.abs(b) ** 2                       # per bohr^-1
-    cut = cut_bound(psi[-1], dpsi[-1], k, mass, t[-1] - t[0], p_end)
     cut_uncertainty = float(np.max(2 * np.abs(b) * cut + cut**2) / density.max())
     total = float(np.trapezoid(density, np.abs(p_kin)))
     energy = p_kin**2 / (2 * mass)
@@ -216,10 +223,10 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
     v_static = np.asarray(setup.static_potential, float)
     e_mean = float(np.trapezoid(density * energy, np.abs(p_kin)) / total) if total > 0 else 0.0
     beyond = (x > x_d) if side > 0 else (x < x_d)
-    pushed = np.abs(np.diff(field["field_momentum"][-3:])) if field else np.zeros(0)
+    pushed = np.abs(np.diff(field["field_momentum"][-3:])) if "field_momentum" in field else np.zeros(0)
     warnings += premise_warnings(
         name, uc, float(pushed.max(initial=0.0)), float(np.max(np.abs(p_kin))), e_mean,
-        float(np.max(np.abs(v_static[beyond]))) if np.any(beyond) else 0.0, float(np.interp(x_d, x, v_static)),
+        float(np.max(np.abs(v_static[beyond] - v_d))) if np.any(beyond) else 0.0, 0.0,
         float(ds.attrs.get("dt", 0.0)) * uc["time"], (math.pi / setup.grid.axes[0].dx) ** 2 / (2 * mass))
     to_come = _still_to_come(ds, uc, x, v_static, x_d, side, e_mean)
     if to_come is not None and total > 0 and to_come > STILL_TO_COME_WARN * total:

@@ -117,7 +117,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from .flux_transform import time_transform
+from .flux_transform import cut_tail, tail_decay, time_transform
 from ..adequacy import reachable_surfaces, run_warnings
 from ..errors import JobError
 from ..io.results import open_result, result_units, source_name
@@ -713,14 +713,8 @@ def _cut_tail(amp, t, energy, e_end) -> np.ndarray:
     """|int_{t_end}^inf psi(x_d, t) exp(i E t) dt| / (2 pi) for a tail that
     goes on as psi_end exp(-i E_end (t - t_end) - gamma (t - t_end)): the
     sharp end of the record leaks |psi_end| / (2 pi |E - E_end|) into every
-    energy.  gamma is the decay rate of |psi| over the last samples (at
-    least 1 / the record's length)."""
-    a = np.abs(amp)
-    last = max(2, len(a) // 50)              # the last 2 % of the samples
-    span = float(t[-1] - t[-last])
-    gamma = math.log(a[-last] / a[-1]) / span if a[-1] > 0 and a[-last] > 0 and span > 0 else 0.0
-    gamma = max(gamma, 1.0 / float(t[-1] - t[0]))
-    return a[-1] / (2 * math.pi * np.sqrt((energy - e_end) ** 2 + gamma**2))
+    energy (:func:`flux_transform.cut_tail`, the model the spectra use)."""
+    return cut_tail(amp[-1], energy - e_end, tail_decay(amp, t)) / (2 * math.pi)
 
 
 def _still_to_come(psi, x, v_static, mass, x_d, direction, v_inc, energy, k_inc,

@@ -105,6 +105,8 @@ DETECTOR_VALUES = {
     # written only where a constant uniform force (gravity) acts along the detector's axis
     "classical_acceleration": ("acceleration", "constant acceleration along the detector's axis in the "
                                                "classical estimate (uniform forces; absent: free flight)"),
+    # the plane waves beyond a detector have energies p^2 / 2m + this (the spectrum's outgoing states)
+    "detector_potential": ("energy", "static V at the detector (on a line or plane its mean over it)"),
     "final_probability_beyond": ("1", "probability on the grid beyond the detector at the run's end"),
     "final_probability_to_come": ("1", "probability before the detector (or the inner edge of the layer "
                                        "holding it) at the run's end, moving towards it"),
@@ -327,7 +329,7 @@ def _read(ds) -> RecordedRun:
                    float(a["spectrum_max"]) * ef,
                    float(a["ground_energy"]) * ef if "ground_energy" in a else None)
     warnings = json.loads(a["adequacy_warnings"]) if "adequacy_warnings" in a else None
-    factors = {"1": 1.0, "length": lf, "time": tf, "acceleration": lf / tf**2}
+    factors = {"1": 1.0, "length": lf, "time": tf, "acceleration": lf / tf**2, "energy": ef}
     values = {}
     for name, (kind, _) in DETECTOR_VALUES.items():
         if name in ds.variables and dets:
