@@ -23,6 +23,7 @@
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import NamedTuple
 
@@ -207,6 +208,8 @@ class Observer:
         # detectors move across the grid: their rows are made per sample)
         self._groups = [] if frame is not None else self._detector_groups(
             [(n, d.position) for n, d in enumerate(self.detectors)])
+        self._v_view = None      # (the potential array, its kernel view): see _potential_view
+        self._rows_cast = {}     # the detectors' rows in psi's precision: see _rows_in
 
     def _detector_groups(self, where) -> list:
         """``(view axis, detector indices, rows (2M, n), weight)`` per axis for
@@ -239,7 +242,7 @@ class Observer:
         """The observables of every member (a list of dicts, in order)."""
         k, nb, dv = self._kernels, self._nb, self.dv
         psi4 = self._view4(np.ascontiguousarray(psi))
-        v3 = self._view4(np.ascontiguousarray(np.broadcast_to(potential, self.grid.shape), dtype=float))[0]
+        v3 = self._potential_view(potential)
         dens = np.empty((nb, 6))
         psi0 = self._psi0 if self._psi0 is not None else psi4[:1]
         k.density_sums(psi4, *self._x, v3, psi0, self._psi0 is not None, dens)
@@ -247,23 +250,33 @@ class Observer:
         phi4 = self._view4(phi)
         spec = np.empty((nb, 2))
         k.spectrum_sums(phi4, *self._t, *self._k, spec)
-        par = self.grid.parseval_factor
-        norm = dens[:, 0] * dv
-        safe = np.where(norm > 0, norm, np.nan)
-        x_rel = dens[:, 1] * dv / safe
-        x2 = dens[:, 2] * dv / safe - x_rel**2
-        energy = (spec[:, 0] * par * dv + dens[:, 3] * dv) / safe
+        # per member in Python floats: numpy's calls on arrays of one element cost ~1 us each
+        par_dv = self.grid.parseval_factor * dv
+        quartic = None
         if self.contact is not None:
             # the mean-field energy per atom: (g N / 2) sum |psi|^4 dV, over the norm
             rho = psi4.real.astype(float)**2 + psi4.imag.astype(float)**2
-            quartic = (rho * rho).reshape(nb, -1).sum(axis=1) * dv
-            mean_field = self.contact * quartic / safe
-            chemical = energy + mean_field
-            energy = energy + 0.5 * mean_field
-        if self._momentum_from_spectrum:
-            p_mean = spec[:, 1] * par * dv / safe
-        else:
-            p_mean = self._momentum_box(psi4, safe)
+            quartic = ((rho * rho).reshape(nb, -1).sum(axis=1) * dv).tolist()
+        p_box = None if self._momentum_from_spectrum else self._momentum_box(psi4)
+        scalars = []
+        for b, (d, sp) in enumerate(zip(dens.tolist(), spec.tolist())):
+            norm = d[0] * dv
+            safe = norm if norm > 0 else math.nan
+            x_rel = d[1] * dv / safe
+            x2 = d[2] * dv / safe - x_rel * x_rel
+            energy = (sp[0] * par_dv + d[3] * dv) / safe
+            r = {"norm": norm, "x_mean": x_rel + self._x_origin, "x_std": math.sqrt(max(x2, 0.0))
+                 if x2 == x2 else math.nan,
+                 "p_mean": sp[1] * par_dv / safe if p_box is None else p_box[b] * dv / safe}
+            if quartic is not None:
+                mean_field = self.contact * quartic[b] / safe
+                r["chemical_potential"] = energy + mean_field
+                energy = energy + 0.5 * mean_field
+            r["energy"] = energy
+            if self._psi0 is not None:
+                r["autocorrelation_real"] = d[4] * dv
+                r["autocorrelation_imag"] = d[5] * dv
+            scalars.append(r)
         flux = np.zeros((nb, len(self.detectors)))
         amp = np.full((nb, len(self.detectors)), complex("nan"))
         slope = np.full((nb, len(self.detectors)), complex("nan"))
@@ -278,13 +291,8 @@ class Observer:
         for group in groups:
             self._at_detectors(phi4, group, flux, amp, slope)
         out = []
-        for b in range(nb):
-            r = {"norm": float(norm[b]), "x_mean": float(x_rel[b] + self._x_origin),
-                 "x_std": float(np.sqrt(max(x2[b], 0.0))), "p_mean": float(p_mean[b]),
-                 "energy": float(energy[b]),
-                 "flux": flux[b].copy()}
-            if self.contact is not None:
-                r["chemical_potential"] = float(chemical[b])
+        for b, r in enumerate(scalars):
+            r["flux"] = flux[b].copy()
             if self.records_amplitude:
                 r["detector_psi"] = amp[b].copy()
                 r["detector_dpsi"] = slope[b].copy()
@@ -293,9 +301,6 @@ class Observer:
             if self.spectrum_lines:
                 r["spectrum_psi"] = np.stack([self._lines[n][0][b] for n in self.spectrum_lines])
                 r["spectrum_dpsi"] = np.stack([self._lines[n][1][b] for n in self.spectrum_lines])
-            if self._psi0 is not None:
-                r["autocorrelation_real"] = float(dens[b, 4] * dv)
-                r["autocorrelation_imag"] = float(dens[b, 5] * dv)
             out.append(r)
         return out
 
@@ -357,15 +362,36 @@ class Observer:
                 d = scipy.fft.dst(d, type=1, norm="ortho", axis=pos)
         return a, d
 
-    def _momentum_box(self, psi4, safe):
-        """<p> on a box first axis: Im sum conj(psi) dpsi/dx dV (the sine
-        coefficients do not give it by Parseval)."""
-        out = np.empty(self._nb)
+    def _potential_view(self, potential) -> np.ndarray:
+        """V (hartree) as the 3D view the kernels read; the static
+        potential, passed as the same array every sample, is viewed once."""
+        cached = self._v_view
+        if cached is not None and cached[0] is potential:
+            return cached[1]
+        v3 = self._view4(np.ascontiguousarray(np.broadcast_to(potential, self.grid.shape), dtype=float))[0]
+        self._v_view = (potential, v3)
+        return v3
+
+    def _momentum_box(self, psi4) -> list[float]:
+        """Im sum conj(psi) dpsi/dx per member on a box first axis (no dV;
+        the sine coefficients do not give <p> by Parseval)."""
+        out = []
         for b in range(self._nb):
             one = psi4[b].reshape(self.grid.shape).astype(np.complex128)
             dpsi = spectral_derivative(one, self.grid.axes[0], 0)
-            out[b] = float(np.vdot(one, dpsi).imag) * self.dv / safe[b]
+            out.append(float(np.vdot(one, dpsi).imag))
         return out
+
+    def _rows_in(self, rows, dtype):
+        """The interpolation rows in psi's precision, converted once per array."""
+        if rows.dtype == dtype:
+            return rows
+        key = (id(rows), np.dtype(dtype))
+        found = self._rows_cast.get(key)
+        if found is None or found[0] is not rows:
+            found = (rows, rows.astype(dtype))
+            self._rows_cast[key] = found
+        return found[1]
 
     def _at_detectors(self, phi4, group, flux, amp, slope):
         """Fill ``flux[b, n]``, ``amp[b, n]`` and ``slope[b, n]`` (psi and
@@ -374,9 +400,10 @@ class Observer:
         that axis, a matrix product over the view's last two axes."""
         axis, idx, rows, weight = group
         m = len(idx)
-        rows = rows.astype(phi4.dtype, copy=False)
-        if axis == 3:        # (.., n1, n2) @ (n2, 2M) -> (.., n1, 2M)
-            both = np.moveaxis(phi4 @ rows.T, -1, 0)
+        rows = self._rows_in(rows, phi4.dtype)
+        if axis == 3:        # (.., n1, n2) @ (n2, 2M) -> (.., n1, 2M); a product per member (a batch's
+            # members then sum as their solo runs do, to the last bit, in single precision too)
+            both = (phi4 @ rows.T).transpose(3, 0, 1, 2)
         elif axis == 2:      # (2M, n1) @ (.., n1, n2) -> (.., 2M, n2)
             both = np.moveaxis(rows @ phi4, -2, 0)
         else:                # (2M, n0) @ (b, n0, n1 n2) -> (b, 2M, n1 n2)

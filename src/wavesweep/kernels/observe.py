@@ -12,7 +12,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from .split import THREADED_MIN_ELEMENTS, _twins, row_indices
+from .split import REDUCTION_FLAGS, THREADED_MIN_ELEMENTS, _twins, row_indices
 
 __all__ = ["ObserveKernels", "observe_kernels_for", "density_of", "DENSITY_SUMS", "SPECTRUM_SUMS"]
 
@@ -155,7 +155,7 @@ def density_of(psi: np.ndarray, scale: float = 1.0, dtype=np.float64) -> np.ndar
     return out
 
 
-_KERNELS = {name: _twins(fn) for name, fn in
+_KERNELS = {name: _twins(fn, REDUCTION_FLAGS) for name, fn in
             (("density_sums", density_sums), ("spectrum_sums", spectrum_sums), ("contract", contract))}
 
 
