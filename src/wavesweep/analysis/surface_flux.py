@@ -3,7 +3,7 @@ surface-flux method (L. Tao and A. Scrinzi, New J. Phys. 14, 013021 (2012)),
 valid with a driving field (atomic units, hbar = 1, charge q): the 1D
 method here, a line's or plane's (transverse momenta resolved) in
 :mod:`wavesweep.analysis.plane_spectrum`, the time transform both use in
-:mod:`wavesweep.analysis.flux_transform`; :func:`spectrum` serves either.
+:mod:`wavesweep.analysis.flux_method`; :func:`spectrum` serves either.
 
 Derivation.  Let a uniform force F(t) = q E(t) act (length gauge, V = -q E x;
 the ``field`` potential kind), A(t) = -int_0^t E dt', P(t) = -q A(t) the
@@ -58,7 +58,7 @@ energy-resolved transmission's transform: :func:`time_transform` is the
 one both call).  A record cut while parts still arrive leaves the
 trapezoid's end error (Euler-Maclaurin), which :func:`_end_correction`
 removes to leading order.  What the cut leaves out is estimated by the
-integrand continued past the end as it was going (:func:`flux_transform.cut_tail`)
+integrand continued past the end as it was going (:func:`flux_method.cut_tail`)
 and reported as ``cut_uncertainty``, relative to the density's peak.
 
 Split-step sidebands.  The split-operator step is periodic in time: a
@@ -74,10 +74,11 @@ import numpy as np
 
 from ..errors import JobError
 from ..io.record import initial_beyond, layer_holding
-from .flux_transform import (BAND_FLOOR, CUT_WARN, SPECTRUM_FLOOR, STILL_TO_COME_WARN, VARIES,
-                             cut_warning, end_taper, momentum_label, premise_warnings,
+from .flux_method import (BAND_FLOOR, CUT_WARN, STILL_TO_COME_WARN, VARIES, alias_level, cut_warning,
+                             end_taper, kept_range, momentum_label, premise_warnings,
                              surface_flux_amplitude, time_transform, trapezoid_weights)
 from .plane_spectrum import plane_spectrum
+from .transmission import came_round_warning
 from .recorded import run_record as read_record
 from ..io.results import open_result, result_units, source_name
 
@@ -172,20 +173,17 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
     if not np.any(dens_c > 0):
         raise JobError("--detector", f"nothing crossed detector {name!r} outwards during the run")
     # the band (module notes): an aliased spectrum fills the whole range it is computed on, so one still
-    # above BAND_FLOOR of its peak at the top of a range the samples (not the grid) limit is refused
-    top = dens_c[-len(dens_c) // 20:].max()
+    # above BAND_FLOOR of its peak at the top of a range the samples (not the grid) limit is refused; a
+    # record cut while psi still arrives leaks into every energy too (a truncated Fourier integral falls
+    # off only as 1 / (E - E_end)), but that leak fades when the record's end is tapered, an alias does not
     v_low = setup.potential_min if setup.potential_min is not None else float(np.min(setup.static_potential))
     v_min = min(v_low - v_d, 0.0)    # bound parts' energies, counted from the outgoing waves' V_d
-    if k_top < k_grid and top > BAND_FLOOR * dens_c.max():
-        # a record cut while psi still arrives leaks into every energy too (a truncated Fourier
-        # integral falls off only as 1 / (E - E_end)); an alias does not fade when the record's end is
-        # tapered smoothly to zero, the cut's leak does: only what stays is aliasing
-        upper = coarse[-len(coarse) // 20:]
-        taper = end_taper(t)
-        tapered = np.abs(surface_flux_amplitude(t, psi * taper, dpsi * taper, upper, mass, x_d, side,
-                                                initial=b0(upper), **field)) ** 2
-        top = float(tapered.max())
-    if (k_top < k_grid and top > BAND_FLOOR * dens_c.max()) or -v_min * dt_s >= math.pi:
+    upper = coarse[-len(coarse) // 20:]
+    taper = end_taper(t)
+    top = alias_level(dens_c, lambda: (np.abs(surface_flux_amplitude(
+        t, psi * taper, dpsi * taper, upper, mass, x_d, side, initial=b0(upper), **field)) ** 2).max(),
+        k_top < k_grid)
+    if top > BAND_FLOOR or -v_min * dt_s >= math.pi:
         if not details:
             raise JobError("record.every", f"{source_name(ds)}: samples {dt_s / uc['time']:g} "
                                            f"{uc['time_label']} apart alias the band of energies arriving at "
@@ -194,13 +192,10 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
         need = min(math.pi / highest, dt_s / 2) / uc["time"]
         raise JobError("record.every", f"{source_name(ds)}: samples {dt_s / uc['time']:g} {uc['time_label']} "
                                        f"apart alias the band of energies arriving at detector {name!r} (the "
-                                       f"spectrum is still {top / dens_c.max():.1e} of its peak at the "
+                                       f"spectrum is still {top:.1e} of its peak at the "
                                        f"{k_top * k_top / (2 * mass) / uc['energy']:.3g} {uc['energy_label']} "
                                        f"they resolve); use record.every < {need:.3g} {uc['time_label']}")
-    kept = coarse[dens_c > SPECTRUM_FLOOR * dens_c.max()]
-    lo, hi = np.abs(kept + p_end).min(), np.abs(kept + p_end).max()
-    step = k_top / 2047
-    lo, hi = max(lo - 2 * step, 0.0), min(hi + 2 * step, k_top)
+    lo, hi = kept_range(coarse + p_end, dens_c, k_top / 2047, k_top)
     p_kin = side * np.linspace(lo, hi, points)
     k = p_kin - p_end
     b, cut = surface_flux_amplitude(t, psi, dpsi, k, mass, x_d, side, initial=b0(k), cut=True, **field)
@@ -228,6 +223,9 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
         name, uc, float(pushed.max(initial=0.0)), float(np.max(np.abs(p_kin))), e_mean,
         float(np.max(np.abs(v_static[beyond] - v_d))) if np.any(beyond) else 0.0, 0.0,
         float(ds.attrs.get("dt", 0.0)) * uc["time"], (math.pi / setup.grid.axes[0].dx) ** 2 / (2 * mass))
+    came_round = came_round_warning(ds, setup, j, name, side)
+    if came_round:
+        warnings.append(came_round)
     to_come = _still_to_come(ds, uc, x, v_static, x_d, side, e_mean)
     if to_come is not None and total > 0 and to_come > STILL_TO_COME_WARN * total:
         warnings.append(f"the run ended while slow parts were still arriving at detector {name!r}: "
