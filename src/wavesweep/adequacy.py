@@ -1717,7 +1717,8 @@ def spectrum_sampling_findings(setup, dyn) -> list[Finding]:
     over the run, the 6 sigma_p reach, plus -min V for bound parts) alias
     unless record.every < pi hbar / E_max (the Poisson summation formula);
     the spectrum would be refused after the run, so it is said before it."""
-    lines = [d for d in setup.detectors if getattr(d, "spectrum", False) and setup.grid.ndim > 1]
+    one_d = setup.grid.ndim == 1 and not setup.grid.radial and getattr(setup, "frame", None) is None
+    lines = [d for d in setup.detectors if one_d or (getattr(d, "spectrum", False) and setup.grid.ndim > 1)]
     if not lines:
         return []
     u = setup.units
@@ -1729,12 +1730,17 @@ def spectrum_sampling_findings(setup, dyn) -> list[Finding]:
         return []
     need = math.pi / e_max
     names = ", ".join(repr(d.name) for d in lines)
+    values = {"every": every / tf, "every_needed": need / tf}
+    aliases = (f"record.every = {every / tf:.4g} {T} aliases energies above "
+               f"{math.pi / every / u.factor('energy'):.4g} {u.unit_label('energy')}, and the packet's normal "
+               f"energy reaches {e_max / u.factor('energy'):.4g} {u.unit_label('energy')}")
+    if one_d:   # every 1D detector records what a spectrum needs, asked for or not: said, not a warning
+        return [Finding("detector", "ok", f"spectra (`wavesweep spectrum`): {aliases}, so they will be refused "
+                                          f"for this run; for spectra set record.every to {need / tf:.2g} {T} or "
+                                          "less (the run itself is not affected)", values, field="record.every")]
     return [Finding("detector", "warn",
                     f"{names} record{'s' if len(lines) == 1 else ''} a spectrum, a time transform over the samples: "
-                    f"record.every = {every / tf:.4g} {T} aliases energies above {math.pi / every / u.factor('energy'):.4g} "
-                    f"{u.unit_label('energy')}, and the packet's normal energy reaches {e_max / u.factor('energy'):.4g} "
-                    f"{u.unit_label('energy')}; set record.every to {need / tf:.2g} {T} or less",
-                    {"every": every / tf, "every_needed": need / tf}, field="record.every")]
+                    f"{aliases}; set record.every to {need / tf:.2g} {T} or less", values, field="record.every")]
 
 
 # ---------------------------------------------------------------------------

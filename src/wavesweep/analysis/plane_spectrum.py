@@ -58,6 +58,7 @@ from ..io.record import layer_holding
 from ..io.results import result_units, source_name
 from .flux_method import (BAND_FLOOR, CUT_WARN, SPECTRUM_FLOOR, STILL_TO_COME_WARN, VARIES, alias_level,
                           cut_warning, end_taper, kept_range, momentum_label, premise_warnings,
+                          refuse_if_nothing_crossed,
                           surface_flux_amplitude, trapezoid_weights)
 from .transmission import came_round_warning
 
@@ -96,6 +97,7 @@ def plane_spectrum(ds, setup, j: int, points: int = 201, details: bool = True) -
     x0 = setup.detector_value("detector_initial_mean", j)
     x0 = setup.packet_center(normal) if x0 is None else x0
     side = 1.0 if x_d >= x0 else -1.0
+    refuse_if_nothing_crossed(ds, j, name)
 
     t = np.asarray(ds["time"].values, float) * uc["time"]
     across = ds["spectrum_psi_real"].dims[2:]
@@ -142,7 +144,8 @@ def plane_spectrum(ds, setup, j: int, points: int = 201, details: bool = True) -
     p_n = side * np.linspace(lo, hi, points)                      # kinetic normal momenta at the end
     b, cut = amplitude(p_n - p_end[normal], cut=True)
     dens = np.abs(b) ** 2                                         # (points, rows) per bohr^-d
-    cut_uncertainty = float(np.max(2 * np.abs(b) * cut + cut**2) / dens.max())
+    spread = 2 * np.abs(b) * cut + cut**2                          # what the cut record may move it by
+    cut_uncertainty = float(np.max(spread) / dens.max())
     row_peak = dens.max(axis=0)
     shown = row_peak > SPECTRUM_FLOOR * row_peak.max()
     total = float(np.trapezoid(dens, np.abs(p_n), axis=0).sum() * dk_rows)
@@ -163,7 +166,8 @@ def plane_spectrum(ds, setup, j: int, points: int = 201, details: bool = True) -
            "probability_density": cube * p_unit**d,
            "probability_density_normal": marginal * p_unit,
            "energy": energy / uc["energy"], "energy_density": energy_density * uc["energy"],
-           "total": total, "still_to_come": None, "cut_uncertainty": cut_uncertainty,
+           "total": total, "total_uncertainty": float(np.trapezoid(spread, np.abs(p_n), axis=0).sum() * dk_rows),
+           "still_to_come": None, "cut_uncertainty": cut_uncertainty,
            "momentum_units": momentum_label(ds, uc), "energy_units": uc["energy_label"],
            "warnings": []}
     if details:
@@ -180,6 +184,13 @@ def plane_spectrum(ds, setup, j: int, points: int = 201, details: bool = True) -
         came_round = came_round_warning(ds, setup, j, name, side)
         if came_round:
             out["warnings"].append(came_round)
+        aside = _absorbed_across(ds, grid, normal)
+        if aside > CUT_WARN * max(total, 1e-300):
+            faces = ", ".join(grid.names[i] for i in others)
+            out["warnings"].append(f"detector {name!r}: {aside:.3g} was absorbed at the faces across {faces} "
+                                   f"(against {total:.3g} through the detector): what left that way without "
+                                   "crossing it, the larger angles, is not in this spectrum; widen the grid "
+                                   "across it or add spectrum lines on the other sides")
         out["still_to_come"] = _still_to_come(ds, setup, uc, normal, x_d, side, energy, energy_density)
         if out["still_to_come"] is not None and total > 0 and out["still_to_come"] > STILL_TO_COME_WARN * total:
             out["warnings"].append(f"the run ended while slow parts were still arriving at detector {name!r}: "
@@ -275,6 +286,16 @@ def _normal_reach(setup, normal: int, p_t, v_min) -> float:
     return (top + float(np.max(np.abs(p_t[:, normal])))) ** 2 / (2 * setup.mass) - v_min
 
 
+def _absorbed_across(ds, grid, normal: int) -> float:
+    """Probability absorbed by the end at the faces of the axes across the
+    detector's normal (the run's books)."""
+    if "boundary" not in ds.coords or not ds.sizes.get("time", 0):
+        return 0.0
+    across = {grid.names[i] for i in range(grid.ndim) if i != normal}
+    return float(sum(float(ds["absorbed"][-1, i].values) for i, face in enumerate(ds["boundary"].values)
+                     if str(face)[:-1] in across))
+
+
 def _share_in_layers(setup, others, y, crossing) -> float:
     """The share of sum |J_n| dt over the line that lies on points inside an
     absorbing layer of a transverse axis (``crossing``: per transverse
@@ -327,6 +348,8 @@ def _energy_density(p_n, p_rows, dens, dk_rows, mass, points, shown):
     e_lo = float(np.min(e_row[shown] + q[0] ** 2 / (2 * mass)))
     e_hi = float(np.max(e_row[shown] + q[-1] ** 2 / (2 * mass)))
     energy = np.linspace(e_lo, e_hi, points)
+    d_e = energy[1] - energy[0] if points > 1 else 1.0
+    near = q[1] - q[0] if len(q) > 1 else 0.0   # within a momentum step of a row's threshold: bin means
     g = np.zeros(points)
     spline = CubicSpline(q, dens, axis=0)     # every row at once; evaluated row by row below
     for r in range(len(e_row)):
@@ -337,8 +360,17 @@ def _energy_density(p_n, p_rows, dens, dk_rows, mass, points, shown):
         values = np.zeros(len(pn))
         # the row's own piece of the spline (a cubic on each interval: h^4 against linear's h^2, which
         # was 2.5e-4 of the peak at 201 points)
-        values[inside] = np.maximum(_row_spline(spline, r)(pn[inside]), 0.0)
-        g[ok] += values * mass / np.maximum(pn, 1e-300)
+        row = _row_spline(spline, r)
+        values[inside] = np.maximum(row(pn[inside]), 0.0) * mass / pn[inside]
+        low = inside & (pn < near)
+        if low.any():
+            # m / p_n diverges at the row's threshold (integrably): there the mean over the energy bin,
+            # int |b|^2 dp_n over the bin / dE, from the spline's antiderivative (a point value was 1e296)
+            lo = np.sqrt(2 * mass * np.maximum(e_n[ok][low] - d_e / 2, 0.0))
+            hi = np.sqrt(2 * mass * (e_n[ok][low] + d_e / 2))
+            area = PPoly(spline.c[:, :, r], spline.x).antiderivative()
+            values[low] = np.maximum(area(np.clip(hi, q[0], q[-1])) - area(np.clip(lo, q[0], q[-1])), 0.0) / d_e
+        g[ok] += values
     return energy, g * dk_rows
 
 
@@ -408,8 +440,9 @@ def _warnings(ds, setup, j, uc, name, normal, x_d, side, p_t, energy, energy_den
 
 def _still_to_come(ds, setup, uc, normal, x_d, side, energy, energy_density) -> float | None:
     """The final state's probability before the line, where V is flat (on
-    every transverse point) up to it, moving towards it along the normal
-    (None without a final state): a lower estimate, as in 1D."""
+    every transverse point) up to it, moving towards it along the normal,
+    less what moves away (net; None without a final state): a lower
+    estimate, as in 1D."""
     if "psi_real" not in ds.variables:
         return None
     d = setup.grid.ndim
@@ -437,5 +470,7 @@ def _still_to_come(ds, setup, uc, normal, x_d, side, energy, energy_density) -> 
     phi = np.fft.fft(part, axis=normal)
     k = 2 * math.pi * np.fft.fftfreq(len(x), dx)
     toward = (side * k > 0).reshape(view)
+    away = (side * k < 0).reshape(view)
     # Parseval along the normal: sum |psi|^2 dx = sum |fft|^2 dx / N; the other axes' cells as they are
-    return float(np.sum(np.abs(np.where(toward, phi, 0.0)) ** 2) * dx / len(x) * setup.grid.cell_volume / dx)
+    net = np.sum(np.abs(np.where(toward, phi, 0.0)) ** 2) - np.sum(np.abs(np.where(away, phi, 0.0)) ** 2)
+    return max(float(net) * dx / len(x) * setup.grid.cell_volume / dx, 0.0)   # net: a bound tail counts nothing

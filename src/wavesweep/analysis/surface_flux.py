@@ -75,7 +75,7 @@ import numpy as np
 from ..errors import JobError
 from ..io.record import initial_beyond, layer_holding
 from .flux_method import (BAND_FLOOR, CUT_WARN, STILL_TO_COME_WARN, VARIES, alias_level, cut_warning,
-                             end_taper, kept_range, momentum_label, premise_warnings,
+                             end_taper, kept_range, momentum_label, premise_warnings, refuse_if_nothing_crossed,
                              surface_flux_amplitude, time_transform, trapezoid_weights)
 from .plane_spectrum import plane_spectrum
 from .transmission import came_round_warning
@@ -140,6 +140,7 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
         dens0 = np.abs(setup.psi0) ** 2
         x0 = float(np.sum(dens0 * x) / np.sum(dens0))
     side = 1.0 if x_d >= x0 else -1.0
+    refuse_if_nothing_crossed(ds, j, name)
     mass = setup.mass
     t = np.asarray(ds["time"].values, float) * uc["time"]
     amp_scale = 1 / math.sqrt(uc["length"])
@@ -200,14 +201,21 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
     k = p_kin - p_end
     b, cut = surface_flux_amplitude(t, psi, dpsi, k, mass, x_d, side, initial=b0(k), cut=True, **field)
     density = np.abs(b) ** 2                       # per bohr^-1
-    cut_uncertainty = float(np.max(2 * np.abs(b) * cut + cut**2) / density.max())
+    spread = 2 * np.abs(b) * cut + cut**2          # what the cut record may move the density by
+    cut_uncertainty = float(np.max(spread) / density.max())
     total = float(np.trapezoid(density, np.abs(p_kin)))
     energy = p_kin**2 / (2 * mass)
-    energy_density = density * mass / np.maximum(np.abs(p_kin), 1e-300)
+    q = np.abs(p_kin)
+    energy_density = density * mass / np.where(q > 0, q, np.inf)
+    if len(q) > 1 and q[0] == 0:
+        # dP/dE = |b|^2 m / p diverges (integrably) at p = 0: there the mean over the energy bin up to the
+        # half step h, |b(0)|^2 h / (h^2 / 2m) (a point value was 1e296)
+        energy_density[0] = 4 * mass * density[0] / q[1]
     out = {"detector": name, "side": "+" if side > 0 else "-",
            "momentum": p_kin / p_unit, "probability_density": density * p_unit,
            "energy": energy / uc["energy"], "energy_density": energy_density * uc["energy"],
-           "total": total, "still_to_come": None, "cut_uncertainty": cut_uncertainty,
+           "total": total, "total_uncertainty": float(np.trapezoid(spread, np.abs(p_kin))),
+           "still_to_come": None, "cut_uncertainty": cut_uncertainty,
            "momentum_units": momentum_label(ds, uc), "energy_units": uc["energy_label"],
            "warnings": []}
     if not details:
@@ -237,7 +245,8 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
 
 def _still_to_come(ds, uc, x, v_static, x_d, side, e_mean) -> float | None:
     """The final state's probability before the detector, where V is flat up
-    to it, moving towards it (None without a final state).  What is still
+    to it, moving towards it, less what moves away (net; None without a
+    final state).  What is still
     inside the region where V varies (a bound part, a slow fragment being
     turned) is not counted: a lower estimate of what is to come."""
     if "psi_real" not in ds:
@@ -256,7 +265,9 @@ def _still_to_come(ds, uc, x, v_static, x_d, side, e_mean) -> float | None:
     phi = np.fft.fft(part) * dx / math.sqrt(2 * math.pi)
     k = 2 * math.pi * np.fft.fftfreq(len(x), dx)
     dk = 2 * math.pi / (len(x) * dx)
-    return float(np.sum(np.abs(phi[side * k > 0]) ** 2) * dk)
+    # net: what moves away is taken off, so a bound state's tail (real up to a phase, |phi(k)| even in k)
+    # counts nothing (counted alone, half of it was "still to come" in a run where nothing could come)
+    return max(float((np.sum(np.abs(phi[side * k > 0]) ** 2) - np.sum(np.abs(phi[side * k < 0]) ** 2)) * dk), 0.0)
 
 
 def spectrum(result, detector: str | None = None, points: int | None = None) -> dict:
@@ -284,7 +295,7 @@ def spectrum(result, detector: str | None = None, points: int | None = None) -> 
         out = {"detectors": [], "warnings": []}
         for j in chosen:
             found = _detector_spectrum(ds, setup, j, points)
-            out["warnings"].extend(found.pop("warnings"))
+            out["warnings"].extend(w for w in found.pop("warnings") if w not in out["warnings"])
             out["detectors"].append(found)
         return out
     finally:
