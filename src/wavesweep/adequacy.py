@@ -1711,29 +1711,36 @@ def screen_sampling_findings(setup, dyn) -> list[Finding]:
 
 def spectrum_sampling_findings(setup, dyn) -> list[Finding]:
     """A line's or plane's surface-flux spectrum (``spectrum = true``) is a
-    time transform over the samples: energies up to E_max (the packet's
-    kinetic energy reach over the run, all axes, the 6 sigma_p reach, plus
-    -min V for bound parts) alias unless record.every < pi hbar / E_max (the
-    Poisson summation formula; :mod:`wavesweep.analysis.surface_flux`); the
-    spectrum would be refused after the run, so it is said before it."""
-    lines = [d for d in setup.detectors if getattr(d, "spectrum", False) and setup.grid.ndim > 1]
+    time transform over the samples: each transverse row oscillates at its
+    normal energy (:mod:`wavesweep.analysis.plane_spectrum`), so normal
+    energies up to E_max (the packet's reach along the detectors' normal
+    over the run, the 6 sigma_p reach, plus -min V for bound parts) alias
+    unless record.every < pi hbar / E_max (the Poisson summation formula);
+    the spectrum would be refused after the run, so it is said before it."""
+    one_d = setup.grid.ndim == 1 and not setup.grid.radial and getattr(setup, "frame", None) is None
+    lines = [d for d in setup.detectors if one_d or (getattr(d, "spectrum", False) and setup.grid.ndim > 1)]
     if not lines:
         return []
     u = setup.units
     tf, T = u.factor("time"), u.unit_label("time")
     every = setup.sample_steps * setup.dt
-    reach = float(np.sum(np.asarray(dyn.over_run[6], float) ** 2)) / (2 * setup.mass)
+    reach = float(dyn.over_run[6][lines[0].axis]) ** 2 / (2 * setup.mass)   # one normal axis (validation)
     e_max = reach - min(float(np.min(setup.recorded_potential())), 0.0)
     if not e_max > 0 or every * e_max < math.pi:
         return []
     need = math.pi / e_max
     names = ", ".join(repr(d.name) for d in lines)
+    values = {"every": every / tf, "every_needed": need / tf}
+    aliases = (f"record.every = {every / tf:.4g} {T} aliases energies above "
+               f"{math.pi / every / u.factor('energy'):.4g} {u.unit_label('energy')}, and the packet's normal "
+               f"energy reaches {e_max / u.factor('energy'):.4g} {u.unit_label('energy')}")
+    if one_d:   # every 1D detector records what a spectrum needs, asked for or not: said, not a warning
+        return [Finding("detector", "ok", f"spectra (`wavesweep spectrum`): {aliases}, so they will be refused "
+                                          f"for this run; for spectra set record.every to {need / tf:.2g} {T} or "
+                                          "less (the run itself is not affected)", values, field="record.every")]
     return [Finding("detector", "warn",
                     f"{names} record{'s' if len(lines) == 1 else ''} a spectrum, a time transform over the samples: "
-                    f"record.every = {every / tf:.4g} {T} aliases energies above {math.pi / every / u.factor('energy'):.4g} "
-                    f"{u.unit_label('energy')}, and the packet reaches {e_max / u.factor('energy'):.4g} "
-                    f"{u.unit_label('energy')}; set record.every to {need / tf:.2g} {T} or less",
-                    {"every": every / tf, "every_needed": need / tf}, field="record.every")]
+                    f"{aliases}; set record.every to {need / tf:.2g} {T} or less", values, field="record.every")]
 
 
 # ---------------------------------------------------------------------------

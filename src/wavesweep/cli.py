@@ -642,11 +642,12 @@ def _spectrum(args) -> int:
             names = [d.get("axis", "")] + d.get("transverse_axes", [])
             label = "p" if len(where) == 1 else "(" + ", ".join(f"p_{n}" for n in names) + ")"
             value = where[0] if len(where) == 1 else "(" + ", ".join(where) + ")"
-            e_peak = d["energy"][int(np.argmax(d["energy_density"]))]
-            print(f"detector {d['detector']!r} (leaving to {d['side']}): total {d['total']:.6g}{come}; "
+            e_peak = d["energy"][int(np.nanargmax(d["energy_density"]))]
+            print(f"detector {d['detector']!r} (leaving to {d['side']}): total {d['total']:.6g} ± "
+                  f"{d['total_uncertainty']:.1g}{come}; "
                   f"peak at {label} = {value} {d['momentum_units']}; energy peak {e_peak:.4g} "
                   f"{d['energy_units']}; density good to {max(d['cut_uncertainty'], 1e-16):.0e} of its "
-                  f"peak at the record's end")
+                  f"peak as far as the record's end goes (see any warnings)")
         if args.plot:
             print(f"figure: {args.plot}")
     _warn("spectrum", out["warnings"])

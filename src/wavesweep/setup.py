@@ -509,12 +509,19 @@ def _initial_detector_values(setup, marginals_au) -> dict:
     time (:func:`wavesweep.io.record.classical_share`), as analysis computes
     them from the marginals (O(grid), once, at run time)."""
     lf, tf = setup.units.factor("length"), setup.units.factor("time")
+    ef = setup.units.factor("energy")
     out = {"detector_initial_mean": [], "classical_arrival_probability": [], "classical_arrival_mean": [],
-           "detector_potential": []}
+           "detector_potential": [], "potential_spread_beyond": [], "potential_spread_on": []}
     accel = classical_acceleration(setup)
-    v_static = np.asarray(setup.recorded_potential(), float) if setup.detectors else None
+    v_static = np.asarray(setup.recorded_potential(), float).reshape(setup.grid.shape) if setup.detectors else None
     for d in setup.detectors:
-        out["detector_potential"].append(potential_on_detector(v_static, setup.grid, d) / setup.units.factor("energy"))
+        rho = marginals_au[d.axis][0]
+        coords = setup.grid.axes[d.axis].coordinates
+        outwards = 1.0 if d.position >= float(np.sum(rho * coords) / np.sum(rho)) else -1.0
+        v_d, beyond, on = potential_on_detector(v_static, setup.grid, d, outwards)
+        out["detector_potential"].append(v_d / ef)
+        out["potential_spread_beyond"].append(beyond / ef)
+        out["potential_spread_on"].append(on / ef)
         rho, k, w = marginals_au[d.axis]
         coords = setup.grid.axes[d.axis].coordinates
         _, rho_kept, distance = packet_side_positions(coords, rho, d.position)
@@ -528,14 +535,20 @@ def _initial_detector_values(setup, marginals_au) -> dict:
     return {name: np.asarray(v, float) for name, v in out.items()}
 
 
-def potential_on_detector(v_static, grid, detector) -> float:
-    """The static V (hartree) at a detector: linear between the grid
-    points around it along its axis, on a line or plane its mean over it."""
+def potential_on_detector(v_static, grid, detector, outwards: float) -> tuple[float, float, float]:
+    """(V_d, spread beyond, spread on), hartree: the static V at a detector
+    (linear between the grid points around it along its axis; on a line or
+    plane its mean over it), and the largest |V - V_d| beyond it (towards
+    ``outwards``, +1 or -1 along its axis) and on its line or plane."""
     x = grid.axes[detector.axis].coordinates
     i = int(np.clip(np.searchsorted(x, detector.position) - 1, 0, len(x) - 2))
     w = float(np.clip((detector.position - x[i]) / (x[i + 1] - x[i]), 0.0, 1.0))
     v = np.asarray(v_static, float).reshape(grid.shape)
-    return float(np.mean((1 - w) * np.take(v, i, axis=detector.axis) + w * np.take(v, i + 1, axis=detector.axis)))
+    line = (1 - w) * np.take(v, i, axis=detector.axis) + w * np.take(v, i + 1, axis=detector.axis)
+    v_d = float(np.mean(line))
+    beyond = np.flatnonzero(outwards * (x - detector.position) > 0)
+    spread_beyond = float(np.max(np.abs(np.take(v, beyond, axis=detector.axis) - v_d))) if beyond.size else 0.0
+    return v_d, spread_beyond, float(np.max(np.abs(line - v_d)))
 
 
 def _initial_beyond_values(setup, detector_values, psi0, chosen=None) -> list:

@@ -357,3 +357,49 @@ def test_a_record_cut_while_psi_arrives_says_how_far_its_spectrum_holds(tmp_path
     error = np.max(np.abs(d["probability_density"] - reference)) / reference.max()
     assert error > 1e-4
     assert error / 3 < d["cut_uncertainty"] < 3 * error
+
+
+def test_check_says_when_a_1d_record_is_too_coarse_for_spectra():
+    """Every 1D detector records what a spectrum needs: a record.every that
+    aliases the packet's energies is said by `check` (a note, not a
+    warning: the run itself is fine), with the spacing that would do."""
+    from wavesweep.check import check_job
+    job = copy.deepcopy(FREE)
+    job["record"]["every"] = 2.0
+    found = [f for f in check_job(make_job(job)).findings if f.message.startswith("spectra (")]
+    assert found and found[0].level == "ok" and found[0].values["every_needed"] < 2.0
+    assert not [f for f in check_job(make_job(copy.deepcopy(FREE))).findings if f.message.startswith("spectra (")]
+
+
+def test_nothing_crossing_is_said_rather_than_shaped_into_a_peak(tmp_path):
+    """A packet at rest in a deep well (it stays bound): nothing crosses the
+    detector, which is said (before, rounding noise of 1e-11 came out as a
+    spectrum with a peak, or as an "aliased" record)."""
+    job = copy.deepcopy(FREE)
+    job["potential"] = [{"kind": "harmonic", "omega": 0.5, "center": -16.0}]
+    job["packet"] = {"kind": "gaussian", "center": -16.0, "width": 1.0, "momentum": 0.0}
+    job["evolve"]["duration"] = 10.0
+    job["record"]["snapshot_every"] = 10.0
+    with pytest.raises(JobError) as e:
+        spectrum(_run(job, tmp_path))
+    assert "nothing crossed" in e.value.message
+
+
+def test_a_bound_tail_is_not_still_to_come():
+    """Still to come is what moves towards the detector less what moves
+    away: a bound state's tail in flat V (real: exp(-|x|), |phi(k)| even in
+    k) counts nothing, where counting one direction alone gave half of its
+    weight there; a packet moving towards the detector counts whole."""
+    from wavesweep.analysis.surface_flux import _still_to_come
+    x = np.linspace(-40.0, 40.0, 801)[:-1]
+    units = {"length": 1.0}
+    flat = np.zeros_like(x)
+
+    def to_come(psi):
+        ds = xr.Dataset({"psi_real": ("x", psi.real), "psi_imag": ("x", psi.imag)})
+        return _still_to_come(ds, units, x, flat, 20.0, 1.0, 1.0)
+
+    bound = np.exp(-np.abs(x + 10.0)) / math.sqrt(1.0)          # normalised: int e^{-2|x|} dx = 1
+    assert to_come(bound.astype(complex)) < 1e-12
+    moving = np.exp(-((x + 10.0) ** 2) / 8 + 3j * x) / (4 * math.pi) ** 0.25   # sigma 2 (|psi|^2 sd), p = 3
+    assert to_come(moving) == pytest.approx(1.0, abs=1e-9)

@@ -25,7 +25,7 @@ box, the outgoing states while psi stays clear of its walls):
                    sum_y dy exp(-i (k_y + P_y) . y) psi(x_d, y, t),
 
 and likewise for d_n psi.  For each transverse row k_y this is the 1D
-amplitude (:func:`wavesweep.analysis.flux_transform.surface_flux_amplitude`)
+amplitude (:func:`wavesweep.analysis.flux_method.surface_flux_amplitude`)
 of the samples psi~, d_n psi~ with the normal phase k_n^2 t / 2m + k_n
 alpha_n + S: one matrix product over the samples serves every row.  The
 density |b(k)|^2 is per unit momentum^d; the momenta reported are the
@@ -38,10 +38,11 @@ transverse rows (spacing dk_y per axis),
 
 with |b|^2 of each row a cubic spline along the normal momentum.
 
-Sampling.  The time transform's aliasing argument is the 1D one with the
-whole kinetic energy: the normal and transverse energies together stay
-below pi / dt_s (the samples' spacing), or the record is refused with the
-record.every that would do.  The transverse rows are the grid's own, so
+Sampling.  The time transform's aliasing argument is the 1D one for each
+row: the transverse Volkov factor takes the transverse energy out of its
+samples, which then oscillate at the normal energy (and the field's share
+along the normal) only; that must stay below pi / dt_s (the samples'
+spacing), or the record is refused with the record.every that would do.  The transverse rows are the grid's own, so
 their spacing is 2 pi / L per axis (L the box length: Parseval holds on
 them exactly) and their range the grid's.
 """
@@ -53,15 +54,22 @@ import numpy as np
 from scipy.interpolate import CubicSpline, PPoly
 
 from ..errors import JobError
+from ..io.record import layer_holding
 from ..io.results import result_units, source_name
-from .flux_transform import (BAND_FLOOR, CUT_WARN, SPECTRUM_FLOOR, STILL_TO_COME_WARN, VARIES,
-                             cut_warning, end_taper, momentum_label, premise_warnings, surface_flux_amplitude)
+from .flux_method import (BAND_FLOOR, CUT_WARN, SPECTRUM_FLOOR, STILL_TO_COME_WARN, VARIES, alias_level,
+                          cut_warning, end_taper, kept_range, momentum_label, premise_warnings,
+                          refuse_if_nothing_crossed,
+                          surface_flux_amplitude, trapezoid_weights)
+from .transmission import came_round_warning
 
 __all__ = ["plane_spectrum"]
 
 ROW_FLOOR = 1e-14          # transverse rows whose time-integrated |psi~|^2 is below this fraction of the
                            # largest row's carry nothing the spectrum reports (and are not transformed)
 COARSE_POINTS = 512        # normal momenta of the first pass (the band and the range kept)
+# the share of what crosses a line inside absorbing layers of its transverse axes above this: a warning
+# (what the layer damps is not in the spectrum; 1e-6, the method's own accuracy on a free packet)
+LAYER_SHARE_WARN = 1e-6
 
 
 def plane_spectrum(ds, setup, j: int, points: int = 201, details: bool = True) -> dict:
@@ -89,6 +97,7 @@ def plane_spectrum(ds, setup, j: int, points: int = 201, details: bool = True) -
     x0 = setup.detector_value("detector_initial_mean", j)
     x0 = setup.packet_center(normal) if x0 is None else x0
     side = 1.0 if x_d >= x0 else -1.0
+    refuse_if_nothing_crossed(ds, j, name)
 
     t = np.asarray(ds["time"].values, float) * uc["time"]
     across = ds["spectrum_psi_real"].dims[2:]
@@ -97,7 +106,7 @@ def plane_spectrum(ds, setup, j: int, points: int = 201, details: bool = True) -
     # the transverse rows of each sample, in blocks of samples (no samples x plane temporary): a first
     # pass for each row's weight, a second keeping the rows that carry something
     line_rows = _LineRows(ds, jj, uc, d, t, y, p_t[:, others], alpha[:, others], mass)
-    weight = line_rows.weights()
+    weight, crossing = line_rows.weights()
     rows = np.flatnonzero(weight > ROW_FLOOR * weight.max()) if weight.max() > 0 else np.array([], int)
     if not rows.size:
         raise JobError("--detector", f"nothing crossed detector {name!r} during the run")
@@ -105,10 +114,10 @@ def plane_spectrum(ds, setup, j: int, points: int = 201, details: bool = True) -
     k_rows = line_rows.k_rows
     dk_rows = float(np.prod([2 * math.pi / (len(c) * (c[1] - c[0])) for c in y]))
     dt_s = float(np.median(np.diff(t)))
-    e_rows = np.sum(k_rows[rows] ** 2, axis=1) / (2 * mass)
-    e_band = math.pi / dt_s
+    # the band: the transverse Volkov factor leaves each row oscillating at its normal energy only, so
+    # the samples must resolve the normal energies (and the field's share along the normal)
     k_grid = math.pi / grid.axes[normal].dx
-    k_top = min(math.sqrt(2 * mass * e_band), k_grid)
+    k_top = min(math.sqrt(2 * mass * math.pi / dt_s), k_grid)
     # a constant V_d beyond the line: the outgoing waves' phase V_d t more (surface_flux's rule)
     v_d = setup.detector_value("detector_potential", j) or 0.0
     field = {"field_momentum": p_t[:, normal], "excursion": alpha[:, normal], "field_phase": s_t + v_d * t}
@@ -118,38 +127,31 @@ def plane_spectrum(ds, setup, j: int, points: int = 201, details: bool = True) -
         t, a, b, k, mass, x_d, side, **field, cut=cut,
         initial=None if slab is None else _beyond_projection(slab, grid.axes[normal].coordinates, y, k, rows))
     coarse = side * np.linspace(0.0, k_top, COARSE_POINTS + 1)[1:] - p_end[normal]
-    dens_c = np.abs(amplitude(coarse)) ** 2
-    marginal_c = dens_c.sum(axis=1)
+    marginal_c = (np.abs(amplitude(coarse)) ** 2).sum(axis=1)
     if not marginal_c.max() > 0:
         raise JobError("--detector", f"nothing crossed detector {name!r} outwards during the run")
     v_min = min(_potential_min(ds, setup, uc) - v_d, 0.0)   # bound parts, counted from V_d
-    # the band (surface_flux's rule): an aliased spectrum fills the range it is computed on
-    top = marginal_c[-len(coarse) // 20:].max()
-    row_top = float(weight[rows][e_rows > 0.9 * e_band].max(initial=0.0))
-    if k_top < k_grid and top > BAND_FLOOR * marginal_c.max():
-        upper = coarse[-len(coarse) // 20:]
-        taper = end_taper(t)[:, None]
-        top = float((np.abs(amplitude(upper, psi_rows * taper, dpsi_rows * taper)) ** 2).sum(axis=1).max())
-    if ((k_top < k_grid and top > BAND_FLOOR * marginal_c.max()) or row_top > BAND_FLOOR * weight.max()
-            or -v_min * dt_s >= math.pi):
-        need = min(dt_s / 2, math.pi / _energy_reach(setup, p_t, v_min)) / uc["time"]
+    upper = coarse[-len(coarse) // 20:]
+    taper = end_taper(t)[:, None]
+    top = alias_level(marginal_c, lambda: (np.abs(amplitude(upper, psi_rows * taper, dpsi_rows * taper)) ** 2)
+                      .sum(axis=1).max(), k_top < k_grid)
+    if top > BAND_FLOOR or -v_min * dt_s >= math.pi:
+        need = min(dt_s / 2, math.pi / _normal_reach(setup, normal, p_t, v_min)) / uc["time"]
         raise JobError("record.every", f"{source_name(ds)}: samples {dt_s / uc['time']:g} {uc['time_label']} "
                                        f"apart alias the band of energies arriving at detector {name!r}; use "
                                        f"record.every < {need:.3g} {uc['time_label']}")
-    kept = coarse[marginal_c > SPECTRUM_FLOOR * marginal_c.max()]
-    lo, hi = np.abs(kept + p_end[normal]).min(), np.abs(kept + p_end[normal]).max()
-    step = k_top / COARSE_POINTS
-    lo, hi = max(lo - 2 * step, 0.0), min(hi + 2 * step, k_top)
+    lo, hi = kept_range(coarse + p_end[normal], marginal_c, k_top / COARSE_POINTS, k_top)
     p_n = side * np.linspace(lo, hi, points)                      # kinetic normal momenta at the end
     b, cut = amplitude(p_n - p_end[normal], cut=True)
     dens = np.abs(b) ** 2                                         # (points, rows) per bohr^-d
-    cut_uncertainty = float(np.max(2 * np.abs(b) * cut + cut**2) / dens.max())
+    spread = 2 * np.abs(b) * cut + cut**2                          # what the cut record may move it by
+    cut_uncertainty = float(np.max(spread) / dens.max())
     row_peak = dens.max(axis=0)
     shown = row_peak > SPECTRUM_FLOOR * row_peak.max()
     total = float(np.trapezoid(dens, np.abs(p_n), axis=0).sum() * dk_rows)
     marginal = dens.sum(axis=1) * dk_rows                         # per unit normal momentum
     p_rows = k_rows[rows] + p_end[others]                         # kinetic transverse momenta at the end
-    energy, energy_density = _energy_density(p_n, p_rows, dens, dk_rows, mass, points)
+    energy, energy_density = _energy_density(p_n, p_rows, dens, dk_rows, mass, points, shown)
 
     # the transverse rows shown: the box of the grid's rows around those above the floor, in order
     box, axes_momenta = _row_box(k_rows, rows[shown], [len(c) for c in y], p_end[others])
@@ -164,14 +166,31 @@ def plane_spectrum(ds, setup, j: int, points: int = 201, details: bool = True) -
            "probability_density": cube * p_unit**d,
            "probability_density_normal": marginal * p_unit,
            "energy": energy / uc["energy"], "energy_density": energy_density * uc["energy"],
-           "total": total, "still_to_come": None, "cut_uncertainty": cut_uncertainty,
+           "total": total, "total_uncertainty": float(np.trapezoid(spread, np.abs(p_n), axis=0).sum() * dk_rows),
+           "still_to_come": None, "cut_uncertainty": cut_uncertainty,
            "momentum_units": momentum_label(ds, uc), "energy_units": uc["energy_label"],
            "warnings": []}
     if details:
         if cut_uncertainty > CUT_WARN:
             out["warnings"].append(cut_warning(name, cut_uncertainty))
-        out["warnings"] += _warnings(ds, setup, uc, name, normal, x_d, side, p_t, energy, energy_density, p_n,
+        out["warnings"] += _warnings(ds, setup, j, uc, name, normal, x_d, side, p_t, energy, energy_density, p_n,
                                      v_d)
+        in_layers = _share_in_layers(setup, others, y, crossing)
+        if in_layers > LAYER_SHARE_WARN:
+            faces = ", ".join(grid.names[i] for i in others)
+            out["warnings"].append(f"detector {name!r}: {in_layers:.2g} of what crosses it crosses inside the "
+                                   f"absorbing layers across {faces}, where the absorber damps it: the spectrum "
+                                   "misses it; widen the grid across the detector or thin absorber.thickness")
+        came_round = came_round_warning(ds, setup, j, name, side)
+        if came_round:
+            out["warnings"].append(came_round)
+        aside = _absorbed_across(ds, grid, normal)
+        if aside > CUT_WARN * max(total, 1e-300):
+            faces = ", ".join(grid.names[i] for i in others)
+            out["warnings"].append(f"detector {name!r}: {aside:.3g} was absorbed at the faces across {faces} "
+                                   f"(against {total:.3g} through the detector): what left that way without "
+                                   "crossing it, the larger angles, is not in this spectrum; widen the grid "
+                                   "across it or add spectrum lines on the other sides")
         out["still_to_come"] = _still_to_come(ds, setup, uc, normal, x_d, side, energy, energy_density)
         if out["still_to_come"] is not None and total > 0 and out["still_to_come"] > STILL_TO_COME_WARN * total:
             out["warnings"].append(f"the run ended while slow parts were still arriving at detector {name!r}: "
@@ -204,11 +223,7 @@ class _LineRows:
         self.scale_psi = uc["length"] ** (-d / 2)
         self.scale_dpsi = self.scale_psi / uc["length"]
         self.shape = tuple(len(c) for c in y)
-        mesh = np.meshgrid(*[2 * math.pi * np.fft.fftfreq(len(c), c[1] - c[0]) for c in y], indexing="ij")
-        self.k_rows = np.stack([m.ravel() for m in mesh], axis=1)
-        # exp(-i k_y . y_0) dy / (2 pi)^((d-1)/2): the FFT's sum made the line integral
-        self.origin = (np.exp(-1j * sum(k * c[0] for k, c in zip(mesh, y)))
-                       * float(np.prod([c[1] - c[0] for c in y])) / (2 * math.pi) ** (len(y) / 2)).ravel()
+        self.k_rows, self.origin = _transverse_basis(y)
         self.block = max(1, self.BLOCK_VALUES // max(1, int(np.prod(self.shape))))
 
     def _read(self, name, i0, i1, scale):
@@ -216,8 +231,10 @@ class _LineRows:
         return (np.asarray(ds[f"{name}_real"][i0:i1, jj].values, float)
                 + 1j * np.asarray(ds[f"{name}_imag"][i0:i1, jj].values, float)) * scale
 
-    def _block(self, i0, i1, rows=None):
-        """(psi~, d_n psi~) of samples i0:i1, (i1 - i0, R) or only ``rows``."""
+    def _block(self, i0, i1, rows=None, crossing=None):
+        """(psi~, d_n psi~) of samples i0:i1, (i1 - i0, R) or only ``rows``;
+        ``crossing`` (transverse shape): |J_n| = |Im(conj(psi) d_n psi)| / m
+        of the samples times their trapezoid weights is added to it."""
         n = i1 - i0
         shift = np.ones((n, *self.shape), complex)     # exp(-i P_y(t) . y) on the line
         for a, (c, p) in enumerate(zip(self.y, self.p_across[i0:i1].T)):
@@ -229,19 +246,29 @@ class _LineRows:
                               + self.alpha_across[i0:i1] @ k.T))
         origin = self.origin if rows is None else self.origin[rows]
         axes = tuple(range(1, 1 + len(self.shape)))
-        out = []
+        out, raw = [], []
         for name, scale in (("spectrum_psi", self.scale_psi), ("spectrum_dpsi", self.scale_dpsi)):
-            g = np.fft.fftn(self._read(name, i0, i1, scale) * shift, axes=axes).reshape(n, -1)
+            values = self._read(name, i0, i1, scale)
+            raw.append(values)
+            g = np.fft.fftn(values * shift, axes=axes).reshape(n, -1)
             g = g if rows is None else g[:, rows]
             out.append(g * origin * volkov)
+        if crossing is not None:
+            w = self.weights_t[i0:i1].reshape([n] + [1] * len(self.shape))
+            crossing += np.sum(np.abs((raw[0].conj() * raw[1]).imag) * w, axis=0) / self.mass
         return out
 
     def _spans(self):
         return [(i, min(i + self.block, len(self.t))) for i in range(0, len(self.t), self.block)]
 
-    def weights(self) -> np.ndarray:
-        """sum over the samples of |psi~|^2 per row (R,)."""
-        return sum(np.sum(np.abs(self._block(i0, i1)[0]) ** 2, axis=0) for i0, i1 in self._spans())
+    def weights(self) -> tuple[np.ndarray, np.ndarray]:
+        """(sum over the samples of |psi~|^2 per row (R,), int |J_n| dt per
+        transverse point (the line's shape))."""
+        self.weights_t = trapezoid_weights(self.t)
+        crossing = np.zeros(self.shape)
+        total = sum(np.sum(np.abs(self._block(i0, i1, crossing=crossing)[0]) ** 2, axis=0)
+                    for i0, i1 in self._spans())
+        return total, crossing
 
     def kept(self, rows) -> tuple[np.ndarray, np.ndarray]:
         """(psi~, d_n psi~) of every sample on ``rows`` only, (N, len(rows)) each."""
@@ -249,16 +276,51 @@ class _LineRows:
         return np.concatenate([p[0] for p in parts]), np.concatenate([p[1] for p in parts])
 
 
-def _energy_reach(setup, p_t, v_min) -> float:
-    """The largest energy arriving (hartree): per axis the initial packet's
-    momentum reach (where its momentum marginal is above BAND_FLOOR of its
-    peak) plus the field's largest momentum transfer, less V's minimum."""
-    reach = 0.0
-    for i in range(setup.grid.ndim):
-        _, k, w = setup.marginals[i]
-        top = float(np.max(np.abs(k[w > BAND_FLOOR * w.max()]))) if np.any(w > 0) else 0.0
-        reach += (top + float(np.max(np.abs(p_t[:, i])))) ** 2
-    return reach / (2 * setup.mass) - v_min
+def _normal_reach(setup, normal: int, p_t, v_min) -> float:
+    """The largest normal energy arriving (hartree): the initial packet's
+    momentum reach along the normal (where its momentum marginal is above
+    BAND_FLOOR of its peak) plus the field's largest momentum transfer
+    along it, less V's minimum (from V_d)."""
+    _, k, w = setup.marginals[normal]
+    top = float(np.max(np.abs(k[w > BAND_FLOOR * w.max()]))) if np.any(w > 0) else 0.0
+    return (top + float(np.max(np.abs(p_t[:, normal])))) ** 2 / (2 * setup.mass) - v_min
+
+
+def _absorbed_across(ds, grid, normal: int) -> float:
+    """Probability absorbed by the end at the faces of the axes across the
+    detector's normal (the run's books)."""
+    if "boundary" not in ds.coords or not ds.sizes.get("time", 0):
+        return 0.0
+    across = {grid.names[i] for i in range(grid.ndim) if i != normal}
+    return float(sum(float(ds["absorbed"][-1, i].values) for i, face in enumerate(ds["boundary"].values)
+                     if str(face)[:-1] in across))
+
+
+def _share_in_layers(setup, others, y, crossing) -> float:
+    """The share of sum |J_n| dt over the line that lies on points inside an
+    absorbing layer of a transverse axis (``crossing``: per transverse
+    point, :meth:`_LineRows.weights`)."""
+    total = float(crossing.sum())
+    if not total > 0 or not setup.absorber.active:
+        return 0.0
+    inside = np.zeros(crossing.shape, bool)
+    for a, (i, c) in enumerate(zip(others, y)):
+        held = np.array([layer_holding(setup, i, float(v)) is not None for v in c])
+        view = [1] * len(y)
+        view[a] = len(c)
+        inside |= held.reshape(view)
+    return float(crossing[inside].sum()) / total
+
+
+def _transverse_basis(y) -> tuple[np.ndarray, np.ndarray]:
+    """(k_rows (R, d-1) bohr^-1, factor (R,)): the transverse wave numbers of
+    the grid's points ``y`` (per axis, bohr) in the FFT's order, C order over
+    the axes, and exp(-i k_y . y_0) dy / (2 pi)^((d-1)/2), which makes the
+    FFT's sum over a line the plane-wave integral of the module notes."""
+    mesh = np.meshgrid(*[2 * math.pi * np.fft.fftfreq(len(c), c[1] - c[0]) for c in y], indexing="ij")
+    origin = (np.exp(-1j * sum(k * c[0] for k, c in zip(mesh, y)))
+              * float(np.prod([c[1] - c[0] for c in y])) / (2 * math.pi) ** (len(y) / 2))
+    return np.stack([m.ravel() for m in mesh], axis=1), origin.ravel()
 
 
 def _beyond_projection(slab, x, y, k_n, rows) -> np.ndarray | None:
@@ -272,21 +334,22 @@ def _beyond_projection(slab, x, y, k_n, rows) -> np.ndarray | None:
     xs = x[first:first + len(values)]
     dx = x[1] - x[0]
     axes = tuple(range(1, values.ndim))
-    scale = float(np.prod([c[1] - c[0] for c in y])) / (2 * math.pi) ** (len(y) / 2)
-    mesh = np.meshgrid(*[2 * math.pi * np.fft.fftfreq(len(c), c[1] - c[0]) for c in y], indexing="ij")
-    origin = np.exp(-1j * sum(k * c[0] for k, c in zip(mesh, y)))
-    across = (np.fft.fftn(values, axes=axes) * (origin * scale)).reshape(len(values), -1)[:, rows]
+    _, origin = _transverse_basis(y)
+    across = (np.fft.fftn(values, axes=axes).reshape(len(values), -1) * origin)[:, rows]
     return np.exp(-1j * np.outer(k_n, xs)) @ across * dx / math.sqrt(2 * math.pi)
 
 
-def _energy_density(p_n, p_rows, dens, dk_rows, mass, points):
+def _energy_density(p_n, p_rows, dens, dk_rows, mass, points, shown):
     """(E, g(E)) of the module notes (atomic units) on ``points`` energies
-    spanning the kept cells, each row's |b|^2 a cubic spline in |p_n|."""
+    spanning the cells of the ``shown`` rows (those above SPECTRUM_FLOOR of
+    the peak), each row's |b|^2 a cubic spline in |p_n|."""
     q = np.abs(p_n)
     e_row = np.sum(p_rows**2, axis=1) / (2 * mass)
-    e_lo = float(np.min(e_row + q[0] ** 2 / (2 * mass)))
-    e_hi = float(np.max(e_row + q[-1] ** 2 / (2 * mass)))
+    e_lo = float(np.min(e_row[shown] + q[0] ** 2 / (2 * mass)))
+    e_hi = float(np.max(e_row[shown] + q[-1] ** 2 / (2 * mass)))
     energy = np.linspace(e_lo, e_hi, points)
+    d_e = energy[1] - energy[0] if points > 1 else 1.0
+    near = q[1] - q[0] if len(q) > 1 else 0.0   # within a momentum step of a row's threshold: bin means
     g = np.zeros(points)
     spline = CubicSpline(q, dens, axis=0)     # every row at once; evaluated row by row below
     for r in range(len(e_row)):
@@ -297,8 +360,17 @@ def _energy_density(p_n, p_rows, dens, dk_rows, mass, points):
         values = np.zeros(len(pn))
         # the row's own piece of the spline (a cubic on each interval: h^4 against linear's h^2, which
         # was 2.5e-4 of the peak at 201 points)
-        values[inside] = np.maximum(_row_spline(spline, r)(pn[inside]), 0.0)
-        g[ok] += values * mass / np.maximum(pn, 1e-300)
+        row = _row_spline(spline, r)
+        values[inside] = np.maximum(row(pn[inside]), 0.0) * mass / pn[inside]
+        low = inside & (pn < near)
+        if low.any():
+            # m / p_n diverges at the row's threshold (integrably): there the mean over the energy bin,
+            # int |b|^2 dp_n over the bin / dE, from the spline's antiderivative (a point value was 1e296)
+            lo = np.sqrt(2 * mass * np.maximum(e_n[ok][low] - d_e / 2, 0.0))
+            hi = np.sqrt(2 * mass * (e_n[ok][low] + d_e / 2))
+            area = PPoly(spline.c[:, :, r], spline.x).antiderivative()
+            values[low] = np.maximum(area(np.clip(hi, q[0], q[-1])) - area(np.clip(lo, q[0], q[-1])), 0.0) / d_e
+        g[ok] += values
     return energy, g * dk_rows
 
 
@@ -345,11 +417,13 @@ def _mean_energy(energy, energy_density) -> float:
     return float(np.trapezoid(energy_density * energy, energy) / total) if total > 0 else 0.0
 
 
-def _warnings(ds, setup, uc, name, normal, x_d, side, p_t, energy, energy_density, p_n, v_d) -> list[str]:
-    """The premises' warnings (:func:`flux_transform.premise_warnings`)
-    with V beyond and on the line or plane from the snapshot grid's V."""
-    v_beyond = v_at = 0.0
-    vs = _static_potential(ds, uc)
+def _warnings(ds, setup, j, uc, name, normal, x_d, side, p_t, energy, energy_density, p_n, v_d) -> list[str]:
+    """The premises' warnings (:func:`flux_method.premise_warnings`) with
+    the spreads of V beyond and on the line or plane the run measured on
+    the full grid (an older file: from its snapshot grid's V)."""
+    v_beyond = setup.detector_value("potential_spread_beyond", j)
+    v_at = setup.detector_value("potential_spread_on", j)
+    vs = _static_potential(ds, uc) if v_beyond is None or v_at is None else None
     if vs is not None:
         v, coords = vs
         xn = coords[normal]
@@ -359,15 +433,16 @@ def _warnings(ds, setup, uc, name, normal, x_d, side, p_t, energy, energy_densit
         v_at = float(np.max(np.abs(np.take(v, [int(np.argmin(np.abs(xn - x_d)))], axis=normal) - v_d)))
     pushed = np.abs(np.diff(p_t[-3:], axis=0)) if "field_momentum" in ds.variables else np.zeros(0)
     return premise_warnings(name, uc, float(pushed.max(initial=0.0)), float(np.max(np.abs(p_n))),
-                            _mean_energy(energy, energy_density), v_beyond, v_at,
+                            _mean_energy(energy, energy_density), v_beyond or 0.0, v_at or 0.0,
                             float(ds.attrs.get("dt", 0.0)) * uc["time"],
                             sum((math.pi / ax.dx) ** 2 for ax in setup.grid.axes) / (2 * setup.mass))
 
 
 def _still_to_come(ds, setup, uc, normal, x_d, side, energy, energy_density) -> float | None:
     """The final state's probability before the line, where V is flat (on
-    every transverse point) up to it, moving towards it along the normal
-    (None without a final state): a lower estimate, as in 1D."""
+    every transverse point) up to it, moving towards it along the normal,
+    less what moves away (net; None without a final state): a lower
+    estimate, as in 1D."""
     if "psi_real" not in ds.variables:
         return None
     d = setup.grid.ndim
@@ -395,5 +470,7 @@ def _still_to_come(ds, setup, uc, normal, x_d, side, energy, energy_density) -> 
     phi = np.fft.fft(part, axis=normal)
     k = 2 * math.pi * np.fft.fftfreq(len(x), dx)
     toward = (side * k > 0).reshape(view)
+    away = (side * k < 0).reshape(view)
     # Parseval along the normal: sum |psi|^2 dx = sum |fft|^2 dx / N; the other axes' cells as they are
-    return float(np.sum(np.abs(np.where(toward, phi, 0.0)) ** 2) * dx / len(x) * setup.grid.cell_volume / dx)
+    net = np.sum(np.abs(np.where(toward, phi, 0.0)) ** 2) - np.sum(np.abs(np.where(away, phi, 0.0)) ** 2)
+    return max(float(net) * dx / len(x) * setup.grid.cell_volume / dx, 0.0)   # net: a bound tail counts nothing

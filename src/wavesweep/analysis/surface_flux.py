@@ -3,7 +3,7 @@ surface-flux method (L. Tao and A. Scrinzi, New J. Phys. 14, 013021 (2012)),
 valid with a driving field (atomic units, hbar = 1, charge q): the 1D
 method here, a line's or plane's (transverse momenta resolved) in
 :mod:`wavesweep.analysis.plane_spectrum`, the time transform both use in
-:mod:`wavesweep.analysis.flux_transform`; :func:`spectrum` serves either.
+:mod:`wavesweep.analysis.flux_method`; :func:`spectrum` serves either.
 
 Derivation.  Let a uniform force F(t) = q E(t) act (length gauge, V = -q E x;
 the ``field`` potential kind), A(t) = -int_0^t E dt', P(t) = -q A(t) the
@@ -58,7 +58,7 @@ energy-resolved transmission's transform: :func:`time_transform` is the
 one both call).  A record cut while parts still arrive leaves the
 trapezoid's end error (Euler-Maclaurin), which :func:`_end_correction`
 removes to leading order.  What the cut leaves out is estimated by the
-integrand continued past the end as it was going (:func:`flux_transform.cut_tail`)
+integrand continued past the end as it was going (:func:`flux_method.cut_tail`)
 and reported as ``cut_uncertainty``, relative to the density's peak.
 
 Split-step sidebands.  The split-operator step is periodic in time: a
@@ -74,10 +74,11 @@ import numpy as np
 
 from ..errors import JobError
 from ..io.record import initial_beyond, layer_holding
-from .flux_transform import (BAND_FLOOR, CUT_WARN, SPECTRUM_FLOOR, STILL_TO_COME_WARN, VARIES,
-                             cut_warning, end_taper, momentum_label, premise_warnings,
+from .flux_method import (BAND_FLOOR, CUT_WARN, STILL_TO_COME_WARN, VARIES, alias_level, cut_warning,
+                             end_taper, kept_range, momentum_label, premise_warnings, refuse_if_nothing_crossed,
                              surface_flux_amplitude, time_transform, trapezoid_weights)
 from .plane_spectrum import plane_spectrum
+from .transmission import came_round_warning
 from .recorded import run_record as read_record
 from ..io.results import open_result, result_units, source_name
 
@@ -139,6 +140,7 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
         dens0 = np.abs(setup.psi0) ** 2
         x0 = float(np.sum(dens0 * x) / np.sum(dens0))
     side = 1.0 if x_d >= x0 else -1.0
+    refuse_if_nothing_crossed(ds, j, name)
     mass = setup.mass
     t = np.asarray(ds["time"].values, float) * uc["time"]
     amp_scale = 1 / math.sqrt(uc["length"])
@@ -172,20 +174,17 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
     if not np.any(dens_c > 0):
         raise JobError("--detector", f"nothing crossed detector {name!r} outwards during the run")
     # the band (module notes): an aliased spectrum fills the whole range it is computed on, so one still
-    # above BAND_FLOOR of its peak at the top of a range the samples (not the grid) limit is refused
-    top = dens_c[-len(dens_c) // 20:].max()
+    # above BAND_FLOOR of its peak at the top of a range the samples (not the grid) limit is refused; a
+    # record cut while psi still arrives leaks into every energy too (a truncated Fourier integral falls
+    # off only as 1 / (E - E_end)), but that leak fades when the record's end is tapered, an alias does not
     v_low = setup.potential_min if setup.potential_min is not None else float(np.min(setup.static_potential))
     v_min = min(v_low - v_d, 0.0)    # bound parts' energies, counted from the outgoing waves' V_d
-    if k_top < k_grid and top > BAND_FLOOR * dens_c.max():
-        # a record cut while psi still arrives leaks into every energy too (a truncated Fourier
-        # integral falls off only as 1 / (E - E_end)); an alias does not fade when the record's end is
-        # tapered smoothly to zero, the cut's leak does: only what stays is aliasing
-        upper = coarse[-len(coarse) // 20:]
-        taper = end_taper(t)
-        tapered = np.abs(surface_flux_amplitude(t, psi * taper, dpsi * taper, upper, mass, x_d, side,
-                                                initial=b0(upper), **field)) ** 2
-        top = float(tapered.max())
-    if (k_top < k_grid and top > BAND_FLOOR * dens_c.max()) or -v_min * dt_s >= math.pi:
+    upper = coarse[-len(coarse) // 20:]
+    taper = end_taper(t)
+    top = alias_level(dens_c, lambda: (np.abs(surface_flux_amplitude(
+        t, psi * taper, dpsi * taper, upper, mass, x_d, side, initial=b0(upper), **field)) ** 2).max(),
+        k_top < k_grid)
+    if top > BAND_FLOOR or -v_min * dt_s >= math.pi:
         if not details:
             raise JobError("record.every", f"{source_name(ds)}: samples {dt_s / uc['time']:g} "
                                            f"{uc['time_label']} apart alias the band of energies arriving at "
@@ -194,25 +193,29 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
         need = min(math.pi / highest, dt_s / 2) / uc["time"]
         raise JobError("record.every", f"{source_name(ds)}: samples {dt_s / uc['time']:g} {uc['time_label']} "
                                        f"apart alias the band of energies arriving at detector {name!r} (the "
-                                       f"spectrum is still {top / dens_c.max():.1e} of its peak at the "
+                                       f"spectrum is still {top:.1e} of its peak at the "
                                        f"{k_top * k_top / (2 * mass) / uc['energy']:.3g} {uc['energy_label']} "
                                        f"they resolve); use record.every < {need:.3g} {uc['time_label']}")
-    kept = coarse[dens_c > SPECTRUM_FLOOR * dens_c.max()]
-    lo, hi = np.abs(kept + p_end).min(), np.abs(kept + p_end).max()
-    step = k_top / 2047
-    lo, hi = max(lo - 2 * step, 0.0), min(hi + 2 * step, k_top)
+    lo, hi = kept_range(coarse + p_end, dens_c, k_top / 2047, k_top)
     p_kin = side * np.linspace(lo, hi, points)
     k = p_kin - p_end
     b, cut = surface_flux_amplitude(t, psi, dpsi, k, mass, x_d, side, initial=b0(k), cut=True, **field)
     density = np.abs(b) ** 2                       # per bohr^-1
-    cut_uncertainty = float(np.max(2 * np.abs(b) * cut + cut**2) / density.max())
+    spread = 2 * np.abs(b) * cut + cut**2          # what the cut record may move the density by
+    cut_uncertainty = float(np.max(spread) / density.max())
     total = float(np.trapezoid(density, np.abs(p_kin)))
     energy = p_kin**2 / (2 * mass)
-    energy_density = density * mass / np.maximum(np.abs(p_kin), 1e-300)
+    q = np.abs(p_kin)
+    energy_density = density * mass / np.where(q > 0, q, np.inf)
+    if len(q) > 1 and q[0] == 0:
+        # dP/dE = |b|^2 m / p diverges (integrably) at p = 0: there the mean over the energy bin up to the
+        # half step h, |b(0)|^2 h / (h^2 / 2m) (a point value was 1e296)
+        energy_density[0] = 4 * mass * density[0] / q[1]
     out = {"detector": name, "side": "+" if side > 0 else "-",
            "momentum": p_kin / p_unit, "probability_density": density * p_unit,
            "energy": energy / uc["energy"], "energy_density": energy_density * uc["energy"],
-           "total": total, "still_to_come": None, "cut_uncertainty": cut_uncertainty,
+           "total": total, "total_uncertainty": float(np.trapezoid(spread, np.abs(p_kin))),
+           "still_to_come": None, "cut_uncertainty": cut_uncertainty,
            "momentum_units": momentum_label(ds, uc), "energy_units": uc["energy_label"],
            "warnings": []}
     if not details:
@@ -228,6 +231,9 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
         name, uc, float(pushed.max(initial=0.0)), float(np.max(np.abs(p_kin))), e_mean,
         float(np.max(np.abs(v_static[beyond] - v_d))) if np.any(beyond) else 0.0, 0.0,
         float(ds.attrs.get("dt", 0.0)) * uc["time"], (math.pi / setup.grid.axes[0].dx) ** 2 / (2 * mass))
+    came_round = came_round_warning(ds, setup, j, name, side)
+    if came_round:
+        warnings.append(came_round)
     to_come = _still_to_come(ds, uc, x, v_static, x_d, side, e_mean)
     if to_come is not None and total > 0 and to_come > STILL_TO_COME_WARN * total:
         warnings.append(f"the run ended while slow parts were still arriving at detector {name!r}: "
@@ -239,7 +245,8 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
 
 def _still_to_come(ds, uc, x, v_static, x_d, side, e_mean) -> float | None:
     """The final state's probability before the detector, where V is flat up
-    to it, moving towards it (None without a final state).  What is still
+    to it, moving towards it, less what moves away (net; None without a
+    final state).  What is still
     inside the region where V varies (a bound part, a slow fragment being
     turned) is not counted: a lower estimate of what is to come."""
     if "psi_real" not in ds:
@@ -258,7 +265,9 @@ def _still_to_come(ds, uc, x, v_static, x_d, side, e_mean) -> float | None:
     phi = np.fft.fft(part) * dx / math.sqrt(2 * math.pi)
     k = 2 * math.pi * np.fft.fftfreq(len(x), dx)
     dk = 2 * math.pi / (len(x) * dx)
-    return float(np.sum(np.abs(phi[side * k > 0]) ** 2) * dk)
+    # net: what moves away is taken off, so a bound state's tail (real up to a phase, |phi(k)| even in k)
+    # counts nothing (counted alone, half of it was "still to come" in a run where nothing could come)
+    return max(float((np.sum(np.abs(phi[side * k > 0]) ** 2) - np.sum(np.abs(phi[side * k < 0]) ** 2)) * dk), 0.0)
 
 
 def spectrum(result, detector: str | None = None, points: int | None = None) -> dict:
@@ -286,7 +295,7 @@ def spectrum(result, detector: str | None = None, points: int | None = None) -> 
         out = {"detectors": [], "warnings": []}
         for j in chosen:
             found = _detector_spectrum(ds, setup, j, points)
-            out["warnings"].extend(found.pop("warnings"))
+            out["warnings"].extend(w for w in found.pop("warnings") if w not in out["warnings"])
             out["detectors"].append(found)
         return out
     finally:

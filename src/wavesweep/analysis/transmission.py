@@ -117,7 +117,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from .flux_transform import cut_tail, tail_decay, time_transform
+from .flux_method import cut_tail, tail_decay, time_transform
 from ..adequacy import reachable_surfaces, run_warnings
 from ..errors import JobError
 from ..io.results import open_result, result_units, source_name
@@ -130,7 +130,7 @@ from .recorded import run_record as read_record
 __all__ = ["transmission", "energy_resolved_transmission", "transmission_totals", "truncation_warning",
            "UNCERTAINTY_TARGET", "PREMISE_LIMIT", "transmission_from_samples", "surface_transmission", "surface_spectra",
            "incident_wave_numbers",
-           "SampledTransmission", "coupled_transmission"]
+           "SampledTransmission", "coupled_transmission", "came_round_warning"]
 
 WEIGHT_FLOOR = 1e-2       # report T(E) where the incident weight is above 1 % of its peak
 BAND_FLOOR = 1e-8         # the band that must not alias: weight above 1e-8 of the peak
@@ -713,7 +713,7 @@ def _cut_tail(amp, t, energy, e_end) -> np.ndarray:
     """|int_{t_end}^inf psi(x_d, t) exp(i E t) dt| / (2 pi) for a tail that
     goes on as psi_end exp(-i E_end (t - t_end) - gamma (t - t_end)): the
     sharp end of the record leaks |psi_end| / (2 pi |E - E_end|) into every
-    energy (:func:`flux_transform.cut_tail`, the model the spectra use)."""
+    energy (:func:`flux_method.cut_tail`, the model the spectra use)."""
     return cut_tail(amp[-1], energy - e_end, tail_decay(amp, t)) / (2 * math.pi)
 
 
@@ -1204,3 +1204,30 @@ def coupled_transmission(ds, detector: str | None = None) -> dict:
     except JobError as e:
         out["energy_resolved"] = {"reason": f"{e.field}: {e.message}", "error": e, "requested": detector is not None}
     return out
+
+
+def came_round_warning(ds, setup, j: int, name: str, side: float) -> str | None:
+    """On a periodic normal axis without an absorbing layer beyond the
+    detector, what crossed it can come round the grid and cross again (the
+    spectrum then counts it twice): a warning where more crossed the
+    detector (its net flux, outwards) than lies beyond it at the end plus
+    everything the other faces absorbed (an upper bound on what left the
+    region beyond through them); None otherwise or where the file does not
+    say (no final state)."""
+    det = setup.detectors[j]
+    axis = setup.grid.axes[det.axis]
+    far_face = f"{axis.name}{'+' if side > 0 else '-'}"
+    if axis.boundary != "periodic" or any(layer.name == far_face for layer in setup.absorber.layers):
+        return None
+    totals = transmission_totals(ds, setup)
+    entry = totals["detectors"].get(name)
+    if entry is None or not math.isfinite(entry["beyond"]):
+        return None
+    crossed = entry["crossed"]
+    beyond = entry["beyond"] + sum(v for f, v in totals["absorbed"].items() if f != entry["far_face"])
+    if not (crossed - beyond > max(1e-6, 1e-3 * abs(crossed))):
+        return None
+    axis_name = axis.name
+    return (f"detector {name!r}: {crossed - beyond:.3g} of what crossed it has left the grid beyond it other than "
+            f"through an absorber (came round the periodic {axis_name} axis and crossed again?): the spectrum "
+            f"counts it twice; add an absorber beyond the detector or lengthen the {axis_name} axis")

@@ -107,6 +107,10 @@ DETECTOR_VALUES = {
                                                "classical estimate (uniform forces; absent: free flight)"),
     # the plane waves beyond a detector have energies p^2 / 2m + this (the spectrum's outgoing states)
     "detector_potential": ("energy", "static V at the detector (on a line or plane its mean over it)"),
+    # the spectrum's premises, judged on the full grid at run time (the file's V may be decimated)
+    "potential_spread_beyond": ("energy", "largest |V - detector_potential| beyond the detector (away from the "
+                                          "initial packet)"),
+    "potential_spread_on": ("energy", "largest |V - detector_potential| on the detector's line or plane"),
     "final_probability_beyond": ("1", "probability on the grid beyond the detector at the run's end"),
     "final_probability_to_come": ("1", "probability before the detector (or the inner edge of the layer "
                                        "holding it) at the run's end, moving towards it"),

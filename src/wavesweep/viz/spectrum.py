@@ -35,8 +35,11 @@ def plot_spectrum(out: dict, path, title: str = "", dpi: int = 100, overwrite: b
     for row, d in zip(axes, found):
         ax = row[0]
         density = np.asarray(d.get("probability_density_normal", d["probability_density"]), float)
+        trust = (f" ± {d['total_uncertainty']:.1g}" if d.get("total_uncertainty") else "")
+        good = d.get("cut_uncertainty")
         ax.semilogy(d["momentum"], np.maximum(density, 1e-300), color=QUANTUM, lw=1.5,
-                    label=f"through {d['detector']!r} (total {d['total']:.3g})")
+                    label=f"through {d['detector']!r} (total {d['total']:.3g}{trust}"
+                          + (f"; density good to {good:.0e} of its peak)" if good is not None else ")"))
         top = float(density.max()) if density.size else 1.0
         ax.set_ylim(top * 10.0**-DECADES, top * 2)
         normal = d.get("axis")

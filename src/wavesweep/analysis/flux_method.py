@@ -1,9 +1,12 @@
-"""The surface-flux method's time transform (atomic units): the trapezoid
-over a run's samples of f(t) exp(i phase(t)), the one both energy-resolved
-transmission (phase = E t) and the momentum spectra
-(:mod:`wavesweep.analysis.surface_flux`, :mod:`wavesweep.analysis.plane_spectrum`;
-phase = Phi_k(t)) use, with the trapezoid's end correction and the end
-taper that tells a cut record from an aliased one.  See
+"""The surface-flux method's shared pieces (atomic units), used by the
+momentum spectra of a point (:mod:`wavesweep.analysis.surface_flux`) and of
+a line or plane (:mod:`wavesweep.analysis.plane_spectrum`), and by
+energy-resolved transmission: the time transform (the trapezoid over a
+run's samples of f(t) exp(i phase(t)): phase = E t for T(E), Phi_k(t) for
+the spectra), the amplitude b(k) with the trapezoid's end correction, the
+tail model of a record cut early, the band a record's samples resolve (the
+end taper tells a cut record from an aliased one), and the premises both
+spectra judge alike, with their thresholds.  See
 :mod:`wavesweep.analysis.surface_flux` for the derivation and the sampling
 argument (Poisson summation)."""
 from __future__ import annotations
@@ -12,8 +15,10 @@ import math
 
 import numpy as np
 
+from ..errors import JobError
+
 __all__ = ["time_transform", "trapezoid_weights", "surface_flux_amplitude", "end_taper", "tail_decay", "cut_tail", "cut_warning",
-           "premise_warnings", "momentum_label", "CUT_WARN", "STILL_TO_COME_WARN", "BAND_FLOOR",
+           "premise_warnings", "momentum_label", "alias_level", "kept_range", "refuse_if_nothing_crossed", "CUT_WARN", "STILL_TO_COME_WARN", "BAND_FLOOR",
            "SPECTRUM_FLOOR", "SCATTERER_BEYOND", "VARIES",
            "TRANSFORM_BLOCK"]
 
@@ -228,3 +233,44 @@ def momentum_label(ds, uc) -> str:
     if "p_mean" in ds.variables and "units" in ds["p_mean"].attrs:
         return str(ds["p_mean"].attrs["units"])
     return f"{ds.attrs.get('units_mass', 'm_e')} {uc['length_label']} {uc['time_label']}-1"
+
+
+def alias_level(density, tapered_top, limited_by_samples: bool) -> float:
+    """How high an aliased spectrum stands at the top of the range it was
+    computed on, relative to its peak (0 where the grid, not the samples,
+    limits the range).  ``density``: the spectrum on a coarse grid of
+    momenta rising to the top of the band (K,); ``tapered_top()``: the same
+    top twentieth computed from the record with its end tapered (a cut
+    record's leak fades then, an alias does not), asked for only where the
+    plain one is still up."""
+    if not limited_by_samples:
+        return 0.0
+    peak = float(density.max())
+    top = float(density[-len(density) // 20:].max())
+    if top > BAND_FLOOR * peak:
+        top = float(tapered_top())
+    return top / peak
+
+
+def kept_range(coarse_kinetic, density, step: float, k_top: float) -> tuple[float, float]:
+    """(lo, hi): the |kinetic momenta| where the coarse spectrum is above
+    SPECTRUM_FLOOR of its peak, widened by two coarse steps within [0, k_top]."""
+    kept = np.abs(coarse_kinetic[density > SPECTRUM_FLOOR * density.max()])
+    return max(float(kept.min()) - 2 * step, 0.0), min(float(kept.max()) + 2 * step, k_top)
+
+
+# Less than this probability through a detector (the time integral of |J|) is nothing: its spectrum would be
+# rounding noise shaped into a peak (a bound state's: total 7e-11 with an uncertainty of 1.5x its peak)
+NOTHING_CROSSED = 1e-10
+
+
+def refuse_if_nothing_crossed(ds, j: int, name: str) -> None:
+    """JobError naming the detector when the run's flux through detector
+    ``j`` integrates (in absolute value, over the record) to less than
+    NOTHING_CROSSED."""
+    flux = np.abs(np.asarray(ds["flux"].values, float)[:, j])
+    t = np.asarray(ds["time"].values, float)
+    gross = float(np.trapezoid(flux, t)) if len(t) > 1 else 0.0
+    if not gross > NOTHING_CROSSED:
+        raise JobError("--detector", f"nothing crossed detector {name!r} during the run (|J| integrates to "
+                                     f"{gross:.1e}): no spectrum")
