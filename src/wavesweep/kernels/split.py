@@ -305,9 +305,12 @@ def real_matvec(q, x, out):
 
 
 _KERNELS = {name: _twins(fn) for name, fn in
-            (("kick", kick), ("kick_dynamic", kick_dynamic), ("kick_measured", kick_measured),
-             ("kick_contact", kick_contact), ("kinetic", kinetic), ("layer_loss", layer_loss),
+            (("kick", kick), ("kick_dynamic", kick_dynamic),
+             ("kick_contact", kick_contact), ("kinetic", kinetic),
              ("local_matrix", local_matrix), ("local_matrix_members", local_matrix_members))}
+# the kicks that also sum |psi|^2 (the books of absorbers and of single-precision norm keeping)
+_KERNELS.update({name: _twins(fn, REDUCTION_FLAGS) for name, fn in
+                 (("kick_measured", kick_measured), ("layer_loss", layer_loss))})
 
 
 class KernelSet:
