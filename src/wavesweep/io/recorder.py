@@ -93,7 +93,8 @@ SNAPSHOT_CHUNK_BYTES = 1 << 18
 # point), so its float32 mantissas are noise; zlib level 4 with shuffle shrank 16 KB
 # frames of a 1D run only 1.33x and cost ~300 us a frame (55 MB/s), 0.6 FFT pairs
 # a step at a frame every 20 steps of a 4096-point run (whole run 153 -> 124 ms, the
-# file 1.94 -> 2.46 MB).
+# file 1.94 -> 2.46 MB).  The final psi likewise (zlib 4 shrank it 1.03x, at ~1.3 ms
+# for a 4096-point psi: 7 % of a small run's fixed cost).
 FRAME_COMPRESSION: dict = {}
 
 
@@ -438,7 +439,7 @@ class ResultWriter:
             self._define_record(lay["record"], state_dims, u)
         if lay.get("final_state", True):
             for part in ("real", "imag"):
-                v = self._var(f"psi_{part}", "f8", (*lead, *state_dims), zlib=True, complevel=4)
+                v = self._var(f"psi_{part}", "f8", (*lead, *state_dims), **FRAME_COMPRESSION)
                 v.units = f"{u['length']}-{len(names) / 2:g}"
                 v.long_name = f"{part} part of the final wave function"
 
@@ -783,10 +784,11 @@ class ResultWriter:
         ds.sync()
 
     def set_final_state(self, psi: np.ndarray, scale: float = 1.0) -> None:
-        """psi times ``scale`` (to job units), written part by part and an
-        eighth of the grid at a time (no temporary of the grid's size)."""
+        """psi times ``scale`` (to job units), written part by part, a large
+        grid an eighth at a time (no temporary of the grid's size)."""
         if "psi_real" in self.ds.variables:
-            rows = max(1, psi.shape[0] // 8)   # an eighth of the grid at a time
+            # an eighth of a large grid at a time; a small one (up to 1 MiB a part) in one write
+            rows = psi.shape[0] if 8 * psi.size <= 1 << 20 else max(1, psi.shape[0] // 8)
             with self._room(16 * psi.size):
                 for part, name in ((psi.real, "psi_real"), (psi.imag, "psi_imag")):
                     for i in range(0, psi.shape[0], rows):
