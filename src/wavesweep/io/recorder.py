@@ -341,8 +341,9 @@ class ResultWriter:
         dx.units, dx.long_name = u["length"], "detector position along its axis"
         da = self._var("detector_axis", str, ("detector",))
         da.units, da.long_name = "1", "axis the detector is perpendicular to"
+        if ndet:
+            self._put(dx, np.array([det[2] for det in lay["detectors"]], float))
         for i, det in enumerate(lay["detectors"]):
-            self._put(dx, det[2], i)
             self._put(da, det[1], i)
         b = self._var("boundary", str, ("boundary",))
         b.long_name, b.units = "absorbing face", "1"
