@@ -248,12 +248,13 @@ class ResultWriter:
 
     def _remaining_bytes(self) -> int | None:
         """Bytes of data the file still needs from its shapes (before
-        compression): the snapshots and samples not yet written, and the
-        final state; None when the layout does not give the run's totals."""
+        compression): the snapshots and samples not yet written (those
+        still buffered count), and the final state; None when the layout
+        does not give the run's totals."""
         expected = self.layout.get("expected")
         if not expected:
             return None
-        n_time, n_snap = self.position
+        n_time, n_snap = self._n_time, self._n_snap   # written: a buffered block still needs its room
         rest = max(0, int(expected["snapshots"]) - n_snap) * self._frame_bytes()
         rest += max(0, int(expected["samples"]) - n_time) * self._row_bytes()
         if self.layout.get("final_state", True):
