@@ -79,11 +79,12 @@ PER_SURFACE = ("norm", "x_mean", "x_std", "p_mean")
 # Chunks along the unlimited time dimensions: samples in blocks of up to
 # SERIES_CHUNK_ROWS rows and SERIES_CHUNK_BYTES, snapshots (buffered and written
 # a block at a time) up to SNAPSHOT_CHUNK_FRAMES frames and SNAPSHOT_CHUNK_BYTES
-# before compression: a block is one HDF5 call, one checksum and one zlib stream
-# instead of one per row, and a frame read back still costs at most a quarter
-# MiB decompressed (measured: a 4096-point frame cost 210-300 us written alone,
-# ~100 us in blocks of 8 or more, most of it zlib).  A frame larger than the cap
-# is a chunk of its own and written as it comes, as before.
+# before compression: a block is one HDF5 call and one checksum (one zlib stream
+# where a variable is compressed) instead of one per row, and a frame read back
+# costs at most a quarter MiB read (measured: a 4096-point frame cost 210-300 us
+# written alone, ~100 us in blocks of 8 or more, most of it zlib, then dropped:
+# FRAME_COMPRESSION).  A frame larger than the cap is a chunk of its own and is
+# written as it comes, as before.
 SERIES_CHUNK_ROWS = 1024
 SERIES_CHUNK_BYTES = 1 << 18
 SNAPSHOT_CHUNK_FRAMES = 64
