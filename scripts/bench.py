@@ -5,8 +5,10 @@ recording and with the observables sampled every 10 steps, each against the
 bare forward+inverse pair of an identical transform timed before and after
 it; a plain numpy split-operator loop (numpy.fft, new arrays per operation)
 against the step; the peak memory of a whole run against the bytes of psi;
-single against double.  Then the throughput of a batched study against its
-runs one by one, and the start-up of a second process.  Ratios, medians over
+single against double.  Then a whole in-process run per step against the
+pair and a 10-step run's fixed cost, the throughput of a batched study
+against its runs one by one, and the start-up of a second process
+(``--study``: a 64-run sweep through submit and work against its floor).  Ratios, medians over
 rounds: the machine is shared and absolute times are noise (the start-up is
 the exception: its target is absolute).
 """
@@ -29,12 +31,12 @@ GRIDS = {
 }
 
 
-def job_for(grid, precision="double", duration=1.0):
+def job_for(grid, precision="double", duration=1.0, momentum=1.0):
     ndim = len(grid)
     return job_from_dict({
         "grid": {**grid, "boundary": "periodic"},
         "potential": [{"kind": "harmonic", "omega": 0.05}],
-        "packet": {"center": [-5.0] * ndim, "width": [2.0] * ndim, "momentum": [1.0] + [0.0] * (ndim - 1)},
+        "packet": {"center": [-5.0] * ndim, "width": [2.0] * ndim, "momentum": [momentum] + [0.0] * (ndim - 1)},
         "evolve": {"dt": 0.01, "duration": duration, "precision": precision},
         "record": {"every": 0.1},
         "detector": [{"name": "a", "x": 5.0}, {"name": "b", "x": -8.0}],
@@ -148,6 +150,159 @@ def bench(name, grid, repeats, backend, precision, memory=True):
           f"{med['plain']:10.2f} {mem}   ({tr.threads} thread(s), "
           f"{'threaded' if prop._kernels.threaded else 'serial'} kernels)", flush=True)
     return med
+
+
+def _pair_timer(setup):
+    """``pair()``: the bare forward + inverse FFT of the run's backend,
+    precision and threads on a transform of its own (zeros: repeated
+    unscaled pairs would overflow), and a repeat count of ~4e6 points."""
+    from wavesweep.fft import default_threads, make_transform
+    floor = make_transform(setup.grid, setup.fft_backend, setup.dtype, default_threads(setup.grid.size))
+    buf = floor.forward(np.zeros(setup.grid.shape, setup.dtype))
+
+    def pair():
+        floor.backward(floor.forward(buf), scaled=False)
+    pair()
+    return pair, max(2, int(4e6 / setup.grid.size)), floor
+
+
+def bench_whole_run(repeats: int):
+    """A whole in-process ``Simulation.run`` (set-up, propagation, observables
+    every 10 steps, snapshots, the result file) of 1D 4096 points, 2000 steps,
+    in a warm process (a run of the same grid made its plans before), per
+    step against the bare FFT pair timed before and after it; double and
+    single, medians over rounds."""
+    import tempfile
+
+    from wavesweep.run import Simulation
+
+    grid = GRIDS["1D 4096"]
+    with tempfile.TemporaryDirectory() as tmp:
+        line = []
+        for precision in ("double", "single"):
+            job = job_for(grid, precision, duration=20.0)
+            sim = Simulation(job)
+            sim.run(tmp, progress=False)                 # warm: plans, kernels, imports
+            pair, inner, floor = _pair_timer(sim.setup)
+            steps = sim.setup.total_steps
+            ratios, per_step = [], []
+            for _ in range(repeats):
+                p1 = timed(pair, inner)
+                t0 = time.perf_counter()
+                Simulation(job).run(tmp, progress=False)
+                t_run = (time.perf_counter() - t0) / steps
+                p2 = timed(pair, inner)
+                ratios.append(2 * t_run / (p1 + p2))
+                per_step.append(t_run)
+            line.append(f"{precision} {statistics.median(ratios):.2f}x ({statistics.median(per_step) * 1e6:.1f} us)")
+        print(f"whole run, 1D 4096, observables every 10 steps, a snapshot every 20, {steps} steps, in-process "
+              f"and warm ({floor.name}, {floor.threads} thread(s)), per step / bare FFT pair: {'; '.join(line)} "
+              f"(medians over {repeats} rounds)", flush=True)
+
+
+def bench_fixed_cost(repeats: int):
+    """What a 10-step 1D 4096 run (two samples, two snapshots, the result
+    file) costs beyond its 10 steps in a warm process (one that ran a job
+    of the grid before), in milliseconds: an absolute time, because the
+    target is one.  Each round runs a job of another packet momentum (what
+    a sweep's next run is: nothing of the job's own can be reused); the
+    10 steps are timed on their own, medians over rounds."""
+    import tempfile
+
+    from wavesweep.run import Simulation
+
+    grid = GRIDS["1D 4096"]
+    with tempfile.TemporaryDirectory() as tmp:
+        Simulation(job_for(grid, duration=0.1, momentum=0.5)).run(tmp, progress=False)   # the warm worker's first
+        runs, steps10 = [], []
+        for r in range(repeats):
+            job = job_for(grid, duration=0.1, momentum=0.6 + 0.01 * r)
+            t0 = time.perf_counter()
+            sim = Simulation(job)
+            sim.run(tmp, progress=False)
+            runs.append(time.perf_counter() - t0)
+            prop = sim.setup.make_propagator()
+            psi = prop.load(sim.setup.psi0)
+            steps10.append(timed(lambda: prop.step(psi, 10), 20))
+    run, ten = statistics.median(runs), statistics.median(steps10)
+    print(f"fixed cost of a 10-step 1D 4096 run in a warm process: {(run - ten) * 1e3:.1f} ms beyond its 10 steps "
+          f"(whole run {run * 1e3:.1f} ms, 10 steps {ten * 1e3:.2f} ms; medians over {repeats} runs; target 20 ms)",
+          flush=True)
+
+
+STUDY_JOB = {
+    "title": "study bench",
+    "grid": {"x": {"min": -150.0, "max": 150.0, "points": 2048}},
+    "potential": [{"kind": "barrier", "height": 0.5, "width": 1.0}],
+    "packet": {"center": -40.0, "width": 6.0, "momentum": 1.0},
+    "absorber": {"kind": "cap", "thickness": 20.0, "strength": 0.02, "power": 2.0},
+    "evolve": {"dt": 0.02, "duration": 6.0},
+    "record": {"every": 0.2, "snapshot_every": 1.0},
+    "detector": [{"name": "beyond", "x": 30.0}, {"name": "before", "x": -60.0}],
+    "sweep": {"packet.momentum": {"start": 0.7, "stop": 1.5, "num": 64}},
+}
+
+
+def bench_study(repeats: int, workers: int = 2):
+    """A 64-run 1D sweep (2048 points, 300 steps each, observables every 10
+    steps) through the command line as a user runs it: ``wavesweep submit``
+    then ``wavesweep work --workers 2`` on a fresh queue folder, timed from
+    the start of ``work`` to its exit (worker start-up, claims, set-ups,
+    result files); against the floor rate, every step of every run at the
+    cost of a bare FFT pair on one core per worker (the pair of the runs'
+    backend, precision and threads, timed in this process before and after).
+    Runs per minute, the ratio the median over rounds."""
+    import os
+    import subprocess
+    import sys
+    import tempfile
+    from pathlib import Path
+
+    import tomli_w
+
+    from wavesweep.setup import Setup
+
+    table = {k: v for k, v in STUDY_JOB.items() if k != "sweep"}
+    setup = Setup(job_from_dict(table))
+    pair, inner, floor = _pair_timer(setup)
+    steps, runs = setup.total_steps, STUDY_JOB["sweep"]["packet.momentum"]["num"]
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join(p for p in (os.path.join(os.path.dirname(__file__), "..", "src"),
+                                                                      os.environ.get("PYTHONPATH")) if p)}
+    rates, ratios, submits, walls, empties = [], [], [], [], []
+    with tempfile.TemporaryDirectory() as tmp:
+        tmp = Path(tmp)
+        (tmp / "study.toml").write_text(tomli_w.dumps(STUDY_JOB))
+        for rep in range(repeats):
+            root = tmp / f"root{rep}"
+            p1 = statistics.median(timed(pair, inner) for _ in range(5))
+            t0 = time.perf_counter()
+            subprocess.run([sys.executable, "-m", "wavesweep", "submit", str(tmp / "study.toml"), "--root", str(root)],
+                           check=True, capture_output=True, env=env, cwd=tmp)
+            t1 = time.perf_counter()
+            subprocess.run([sys.executable, "-m", "wavesweep", "work", "--root", str(root), "--workers", str(workers)],
+                           check=True, capture_output=True, env=env, cwd=tmp)
+            wall = time.perf_counter() - t1
+            p2 = statistics.median(timed(pair, inner) for _ in range(5))
+            t2 = time.perf_counter()   # the same command again on the drained queue: its fixed start-up
+            subprocess.run([sys.executable, "-m", "wavesweep", "work", "--root", str(root),
+                            "--workers", str(workers)], check=True, capture_output=True, env=env, cwd=tmp)
+            empties.append(time.perf_counter() - t2)
+            walls.append(wall)
+            done = len(list(root.rglob("*.nc")))
+            if done < runs:
+                raise RuntimeError(f"the study bench finished {done} of {runs} runs")
+            floor_wall = runs * steps * 0.5 * (p1 + p2) / workers
+            rates.append(60 * runs / wall)
+            ratios.append(floor_wall / wall)
+            submits.append(t1 - t0)
+    ratio = statistics.median(ratios)
+    print(f"study, {runs} runs x 2048 points x {steps} steps (submit, then work --workers {workers}): "
+          f"{statistics.median(rates):.0f} runs/min against a floor of {statistics.median(rates) / ratio:.0f} "
+          f"({steps} bare FFT pairs a run, {workers} cores; {floor.name}, {floor.threads} thread(s)): "
+          f"{ratio:.2f}x the floor rate (target 0.5; median over {repeats}; ratios "
+          f"{', '.join(f'{r:.2f}' for r in ratios)}); work took {statistics.median(walls):.2f} s, "
+          f"{statistics.median(empties):.2f} s again on the drained queue; submit {statistics.median(submits):.2f} s "
+          "apart", flush=True)
 
 
 BATCH_JOB = {
@@ -792,7 +947,19 @@ def main():
                     help="what recording for the surface-flux spectrum adds to a 1D 4096 step only")
     ap.add_argument("--screen", action="store_true",
                     help="a resolved screen's cost at 1024^2 (measure and write) against a step only")
+    ap.add_argument("--whole", action="store_true",
+                    help="a whole in-process 1D 4096 run per step against the FFT pair, and a 10-step run's "
+                         "fixed cost, only")
+    ap.add_argument("--study", action="store_true",
+                    help="a 64-run 1D sweep through submit and work --workers 2 against the FFT-pair floor only")
     args = ap.parse_args()
+    if args.whole:
+        bench_whole_run(3 if args.quick else args.repeats)
+        bench_fixed_cost(9 if args.quick else 21)
+        return
+    if args.study:
+        bench_study(1 if args.quick else 3)
+        return
     if args.spectrum:
         bench_spectrum(3 if args.quick else args.repeats)
         return
@@ -840,6 +1007,8 @@ def main():
     for name, grid in grids.items():
         print(f"{name:<10} single precision vs double: {single_vs_double(grid, repeats, args.backend):.2f}x "
               "faster per step (recorded every 10 steps)")
+    bench_whole_run(repeats)
+    bench_fixed_cost(9 if args.quick else 21)
     bench_batch(32, 1 if args.quick else 3)
     bench_collect(3)
     bench_startup(3)

@@ -236,3 +236,31 @@ def test_single_precision_keeps_the_norm(backend):
         books[precision] = prop.absorbed.copy()
     assert books["double"].sum() > 0.5
     np.testing.assert_allclose(books["single"], books["double"], atol=1e-5)
+
+
+@pytest.mark.skipif("pyfftw" not in BACKENDS, reason="pyFFTW not installed")
+def test_fftw_wisdom_is_read_once_and_written_only_after_a_new_plan(tmp_path, monkeypatch):
+    """A worker makes two transforms per run: the wisdom file is read once
+    per process and written only when a plan was measured (not found in the
+    wisdom), so a second transform of a grid writes nothing; a transform
+    made from the file's wisdom computes what a measured one does."""
+    from wavesweep import fft
+    from wavesweep.grid import Axis, Grid
+
+    monkeypatch.setenv("WAVESWEEP_CACHE", str(tmp_path))
+    monkeypatch.setattr(fft, "_wisdom_read", False, raising=False)
+    reads, writes = [], []
+    load, save = fft._load_wisdom, fft.write_bytes_atomic
+    monkeypatch.setattr(fft, "_load_wisdom", lambda p: (reads.append(1), load(p)))
+    monkeypatch.setattr(fft, "write_bytes_atomic", lambda path, data: (writes.append(path), save(path, data)))
+    # a size no other test plans (2 3^3 7), so this process holds no wisdom of it
+    grid = Grid((Axis("x", -10.0, 10.0, 378, "periodic"),))
+    first = fft.make_transform(grid, "pyfftw")
+    # the first read, and the merge with the file before the one write
+    assert len(reads) == 2 and len(writes) == 1 and (tmp_path / "fftw-wisdom.pickle").exists()
+    for _ in range(3):
+        again = fft.make_transform(grid, "pyfftw")
+    assert len(reads) == 2 and len(writes) == 1   # planned from the wisdom: nothing read, nothing new to keep
+    psi = np.exp(-grid.axes[0].coordinates ** 2 + 1j * grid.axes[0].coordinates)
+    np.testing.assert_array_equal(again.forward(psi.copy()).copy(), first.forward(psi.copy()))
+    np.testing.assert_allclose(again.forward(psi.copy()), np.fft.fft(psi), atol=1e-12)

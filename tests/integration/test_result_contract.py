@@ -205,13 +205,22 @@ def test_stride_decimates_snapshots_only(ds_1d, tmp_path):
         np.testing.assert_array_equal(ds[name].values, ds_1d[name].values, err_msg=name)
 
 
-def test_density_is_float32_one_frame_per_chunk(run_1d):
+def test_density_is_float32_in_chunks_of_whole_frames(run_1d):
+    """Frames are written in blocks (a chunk of whole frames, no more than
+    the run writes), with Fletcher-32 checksums and without zlib (a
+    split-operator density's mantissas are round-off noise: see
+    recorder.FRAME_COMPRESSION); every time series is chunked in blocks of
+    samples, not one chunk per sample."""
     with netCDF4.Dataset(run_1d["path"]) as nc:
         dens = nc["density"]
         assert dens.dtype == np.float32
-        assert dens.chunking() == [1, 128]
-        assert dens.filters()["zlib"]
+        assert dens.chunking() == [len(nc.dimensions["snapshot_time"]), 128]
+        assert dens.filters()["fletcher32"] and not dens.filters()["zlib"]
         assert nc.dimensions["snapshot_time"].isunlimited()
+        n_time = len(nc.dimensions["time"])
+        for name, var in nc.variables.items():
+            if var.dimensions[:1] == ("time",):
+                assert var.chunking()[0] == n_time, name
 
 
 def test_2d_layout(tmp_path):
@@ -231,7 +240,7 @@ def test_2d_layout(tmp_path):
     dxdy = float(ds["x"][1] - ds["x"][0]) * float(ds["y"][1] - ds["y"][0])
     assert float(ds["density"][0].sum()) * dxdy == pytest.approx(1.0, rel=1e-3)  # decimated sum
     with netCDF4.Dataset(path) as nc:
-        assert nc["density"].chunking() == [1, 32, 24]
+        assert nc["density"].chunking() == [3, 32, 24]   # the run's 3 frames: one block
 
 
 def test_radial_layout(tmp_path):
@@ -331,6 +340,37 @@ def test_writer_streams_frames_instead_of_keeping_them(tmp_path):
         np.testing.assert_array_equal(nc["density"][frames - 1], (frame * (frames - 1)).astype(np.float32))
         assert nc["time"].shape == (frames + 2 * ResultWriter.block,)
         np.testing.assert_allclose(nc["x_mean"][:5], 0.1 * np.arange(5))
+
+
+def test_buffered_frames_and_samples_reach_a_checkpoint_copy_and_the_file(tmp_path):
+    """Frames wait in a block (a chunk of whole frames) and samples in
+    theirs: a checkpoint's copy taken with both buffered holds every one of
+    them, and frames are the values given when added, even when the caller
+    reuses its array before the block is written."""
+    x, layout = _layout(64)
+    layout["expected"] = {"samples": 20, "snapshots": 20}
+    writer = ResultWriter(tmp_path / "r.nc", layout, {"run_id": "buffered"})
+    assert writer.frames_per_block == 20            # 256-byte frames: the whole run in one chunk
+    frame = np.empty(64, np.float32)             # as the run gives it: no conversion, no copy
+    for i in range(7):
+        frame[:] = np.cos(x * i)                    # one array, refilled for each frame
+        writer.add_snapshot(float(i), frame)
+        writer.add_sample(float(i), _sample(i))
+    assert writer.position == (7, 7)
+    writer.save_copy(tmp_path / "copy.nc")
+    with netCDF4.Dataset(tmp_path / "copy.nc") as nc:
+        assert len(nc.dimensions["snapshot_time"]) == 7 and len(nc.dimensions["time"]) == 7
+        np.testing.assert_array_equal(nc["density"][:], np.cos(np.outer(np.arange(7), x)).astype(np.float32))
+        np.testing.assert_array_equal(nc["snapshot_time"][:], np.arange(7.0))
+        np.testing.assert_allclose(nc["x_mean"][:], 0.1 * np.arange(7))
+    for i in range(7, 20):
+        frame[:] = np.cos(x * i)
+        writer.add_snapshot(float(i), frame)
+        writer.add_sample(float(i), _sample(i))
+    path = writer.close()
+    with netCDF4.Dataset(path) as nc:
+        np.testing.assert_array_equal(nc["density"][:], np.cos(np.outer(np.arange(20), x)).astype(np.float32))
+        np.testing.assert_array_equal(nc["time"][:], np.arange(20.0))
 
 
 def test_writer_abort_leaves_nothing(tmp_path):

@@ -350,3 +350,39 @@ def test_a_dask_task_stopped_by_a_full_disk_comes_back_queued_with_its_reason(tm
     assert end["outcome"] == DISK_FULL and end["state"] == "queued"
     assert end["reason"].startswith("disk full: cannot write the result ")
     assert q.runs()[0]["state"] == "running"      # the driver, not the task, settles it
+
+
+def test_a_full_disk_met_writing_a_block_of_buffered_frames_loses_nothing(tmp_path, monkeypatch):
+    """Frames wait in the writer and reach the file a block at a time, so a
+    full disk is met at the block's write: inside the next checkpoint (which
+    flushes the block first) it is DiskFull, the previous checkpoint stays
+    as it was, and resuming from it gives the uninterrupted result."""
+    ref = Simulation(job()).run(path=tmp_path / "ref.nc", progress=False)
+    out = tmp_path / "q" / "r.nc"
+    policy = CheckpointPolicy(tmp_path / "q" / "r.ckpt", every_seconds=NEVER)
+    stops = iter([False, False, True])
+    with pytest.raises(RunInterrupted) as first:
+        Simulation(job()).run(path=out, progress=False, checkpoint=policy, should_stop=lambda: next(stops))
+    before = {p.name: p.read_bytes() for p in policy.path.parent.iterdir()}
+    original = ResultWriter._flush_snapshots
+    blocks = []
+
+    def flush_snapshots(self):
+        if self._snaps:
+            blocks.append(len(self._snaps))
+            with self._room(len(self._snaps) * self._frame_bytes()):
+                raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(self.tmp))
+        return original(self)
+    monkeypatch.setattr(ResultWriter, "_flush_snapshots", flush_snapshots)
+    stops = iter([False, False, False, True])
+    with pytest.raises(DiskFull, match="disk full: cannot write the result"):
+        Simulation(job()).run(path=out, progress=False, checkpoint=policy, should_stop=lambda: next(stops))
+    assert blocks == [2]          # the two frames of four more samples, buffered until the checkpoint flushes them
+    after = {p.name: p.read_bytes() for p in policy.path.parent.iterdir()}
+    assert after == before        # the previous checkpoint whole, no .part left
+    monkeypatch.setattr(ResultWriter, "_flush_snapshots", original)
+    steps = []
+    Simulation(job()).run(path=out, progress=False, checkpoint=policy,
+                          on_resume=lambda step, total: steps.append((step, total)))
+    assert steps == [(first.value.step, Simulation(job()).setup.total_steps)]
+    same_result(ref, out)

@@ -1,8 +1,10 @@
 """Streaming netCDF writer for one run's result dataset.
 
-Density snapshots are appended frame by frame (float32, zlib, one chunk per
-frame), and scalar samples are buffered in small blocks, so memory does not
-grow with the duration.  The file is written under a temporary name in the
+Density snapshots (float32, uncompressed: see FRAME_COMPRESSION) and scalar
+samples are buffered and written a chunk at a time (blocks of rows along
+``snapshot_time`` and ``time``, bounded in bytes, so memory does not grow with
+the duration); every variable is defined before any is written (one switch
+out of netCDF's define mode).  The file is written under a temporary name in the
 output folder, flushed, fsync'ed and renamed into place when complete (an
 HDF5 file cut off mid-write can be unreadable, so a reader never sees one).
 
@@ -74,6 +76,28 @@ def _without_potential(layout: dict) -> dict:
 # the scalars a coupled run records per surface (the rest, the energy, is the total)
 PER_SURFACE = ("norm", "x_mean", "x_std", "p_mean")
 
+# Chunks along the unlimited time dimensions: samples in blocks of up to
+# SERIES_CHUNK_ROWS rows and SERIES_CHUNK_BYTES, snapshots (buffered and written
+# a block at a time) up to SNAPSHOT_CHUNK_FRAMES frames and SNAPSHOT_CHUNK_BYTES
+# before compression: a block is one HDF5 call and one checksum (one zlib stream
+# where a variable is compressed) instead of one per row, and a frame read back
+# costs at most a quarter MiB read (measured: a 4096-point frame cost 210-300 us
+# written alone, ~100 us in blocks of 8 or more, most of it zlib, then dropped:
+# FRAME_COMPRESSION).  A frame larger than the cap is a chunk of its own and is
+# written as it comes, as before.
+SERIES_CHUNK_ROWS = 1024
+SERIES_CHUNK_BYTES = 1 << 18
+SNAPSHOT_CHUNK_FRAMES = 64
+SNAPSHOT_CHUNK_BYTES = 1 << 18
+# Snapshot frames are stored uncompressed (Fletcher-32 still guards every chunk): a
+# split-operator density is never exactly zero (FFT round-off puts ~1e-34 in every
+# point), so its float32 mantissas are noise; zlib level 4 with shuffle shrank 16 KB
+# frames of a 1D run only 1.33x and cost ~300 us a frame (55 MB/s), 0.6 FFT pairs
+# a step at a frame every 20 steps of a 4096-point run (whole run 153 -> 124 ms, the
+# file 1.94 -> 2.46 MB).  The final psi likewise (zlib 4 shrank it 1.03x, at ~1.3 ms
+# for a 4096-point psi: 7 % of a small run's fixed cost).
+FRAME_COMPRESSION: dict = {}
+
 
 class ResultWriter:
     """Writes the result of one run.
@@ -130,13 +154,16 @@ class ResultWriter:
         self.tmp = temporary_path(self.path, ".part", unique=False)
         self.layout = _without_potential(layout)   # written once; not kept for the whole run
         self._buf: list[dict] = []
+        self._snaps: list[tuple] = []
         self._n_time = 0
         self._n_snap = 0
+        self._pending: list[tuple] = []
         self.ds = self._open("w")
         try:
             potential = np.asarray(layout["potential"])
             with self._room(potential.size * potential.itemsize):
                 self._define(layout, attrs)
+                self._write_pending()
         except Exception:
             self.abort()
             raise
@@ -155,6 +182,8 @@ class ResultWriter:
         self.tmp = temporary_path(self.path, ".part", unique=False)
         self.layout = _without_potential(layout)
         self._buf = []
+        self._snaps = []
+        self._pending = []
         self._n_time = int(n_time)
         self._n_snap = int(n_snap)
         try:
@@ -168,6 +197,8 @@ class ResultWriter:
             raise JobError("--output", f"cannot write {str(self.tmp.parent)!r}: "
                                        f"{e.strerror or e}; choose another folder with -o") from None
         self.ds = self._open("a")
+        chunking = self.ds["density"].chunking()   # the copy's: an older file's frames are chunks of one
+        self.frames_per_block = 1 if chunking == "contiguous" else int(chunking[0])
         if attrs:
             self.ds.setncatts({k: v for k, v in attrs.items() if v is not None})
         return self
@@ -218,12 +249,13 @@ class ResultWriter:
 
     def _remaining_bytes(self) -> int | None:
         """Bytes of data the file still needs from its shapes (before
-        compression): the snapshots and samples not yet written, and the
-        final state; None when the layout does not give the run's totals."""
+        compression): the snapshots and samples not yet written (those
+        still buffered count), and the final state; None when the layout
+        does not give the run's totals."""
         expected = self.layout.get("expected")
         if not expected:
             return None
-        n_time, n_snap = self.position
+        n_time, n_snap = self._n_time, self._n_snap   # written: a buffered block still needs its room
         rest = max(0, int(expected["snapshots"]) - n_snap) * self._frame_bytes()
         rest += max(0, int(expected["samples"]) - n_time) * self._row_bytes()
         if self.layout.get("final_state", True):
@@ -249,7 +281,30 @@ class ResultWriter:
     @property
     def position(self) -> tuple[int, int]:
         """(scalar samples, snapshots) written or buffered so far."""
-        return self._n_time + len(self._buf), self._n_snap
+        return self._n_time + len(self._buf), self._n_snap + len(self._snaps)
+
+    # -- chunk shapes ----------------------------------------------------------
+    def _expected(self, what: str) -> int | None:
+        expected = self.layout.get("expected")
+        return int(expected[what]) if expected and expected.get(what) else None
+
+    def _rows_per_chunk(self, row_bytes: int, what: str, cap_rows: int, cap_bytes: int) -> int:
+        """Rows (samples or snapshots) per chunk along an unlimited time
+        dimension: as many as ``cap_bytes`` hold (at most ``cap_rows``), no
+        more than the run will write (a short run's chunks stay small)."""
+        rows = min(cap_rows, max(1, cap_bytes // max(1, row_bytes)))
+        total = self._expected(what)
+        return max(1, min(rows, total)) if total else rows
+
+    def _series_chunks(self, dims, itemsize: int) -> list[int]:
+        """Chunk shape of a variable along ``time`` or ``snapshot_time``:
+        a block of rows, each whole (a dimension of length 0 counts 1)."""
+        rest = [max(1, len(self.ds.dimensions[d])) for d in dims[1:]]
+        what = "samples" if dims[0] == "time" else "snapshots"
+        cap = SERIES_CHUNK_BYTES if what == "samples" else SNAPSHOT_CHUNK_BYTES
+        rows = self._rows_per_chunk(itemsize * int(np.prod(rest)), what,
+                                    SERIES_CHUNK_ROWS if what == "samples" else SNAPSHOT_CHUNK_FRAMES, cap)
+        return [rows, *rest]
 
     # -- layout ------------------------------------------------------------
     def _define(self, lay, attrs):
@@ -261,7 +316,7 @@ class ResultWriter:
             c = np.asarray(coords)[::s]
             ds.createDimension(name, len(c))
             v = self._var(name, "f8", (name,))
-            v[:] = c
+            self._put(v, c)
             v.units, v.long_name, v.axis = u["length"], long, name.upper() if name in "xyz" else "X"
             full_shape.append(len(coords))
         names = [a[0] for a in lay["axes"]]
@@ -272,7 +327,7 @@ class ResultWriter:
             v = self._var("surface", str, ("surface",))
             v.long_name, v.units = "potential-energy surface (electronic state)", "1"
             for i, name in enumerate(surfaces):
-                v[i] = name
+                self._put(v, name, i)
         ds.createDimension("time", None)
         ds.createDimension("snapshot_time", None)
         self._coord("time", "time", u["time"], "time of the scalar samples")
@@ -283,52 +338,55 @@ class ResultWriter:
         d = self._var("detector", str, ("detector",))
         d.long_name, d.units = "detector name", "1"
         for i, det in enumerate(lay["detectors"]):
-            d[i] = det[0]
+            self._put(d, det[0], i)
         dx = self._var("detector_x", "f8", ("detector",))
         dx.units, dx.long_name = u["length"], "detector position along its axis"
         da = self._var("detector_axis", str, ("detector",))
         da.units, da.long_name = "1", "axis the detector is perpendicular to"
+        if ndet:
+            self._put(dx, np.array([det[2] for det in lay["detectors"]], float))
         for i, det in enumerate(lay["detectors"]):
-            dx[i] = det[2]
-            da[i] = det[1]
+            self._put(da, det[1], i)
         b = self._var("boundary", str, ("boundary",))
         b.long_name, b.units = "absorbing face", "1"
         for i, face in enumerate(lay["faces"]):
-            b[i] = face
-        chunks = [1] + ([len(surfaces)] if surfaces else []) + [len(np.asarray(a[1])[::s]) for a in lay["axes"]]
-        dens = self._var("density", "f4", ("snapshot_time", *lead, *names), zlib=True,
-                                 complevel=4, shuffle=True, chunksizes=chunks)
+            self._put(b, face, i)
+        frame = ([len(surfaces)] if surfaces else []) + [len(np.asarray(a[1])[::s]) for a in lay["axes"]]
+        self.frames_per_block = self._rows_per_chunk(4 * int(np.prod(frame)), "snapshots",
+                                                     SNAPSHOT_CHUNK_FRAMES, SNAPSHOT_CHUNK_BYTES)
+        chunks = [self.frames_per_block, *frame]
+        dens = self._var("density", "f4", ("snapshot_time", *lead, *names), chunksizes=chunks, **FRAME_COMPRESSION)
         dens.units = u["density"]
         dens.long_name = "probability density |psi|^2" + (" on each surface" if surfaces else "")
         if lay.get("column") is not None:
             k = lay["column"][0]
             rest = tuple(n for j, n in enumerate(names) if j != k)
-            col = self._var("column_density", "f4", ("snapshot_time", *rest), zlib=True, complevel=4, shuffle=True,
-                            chunksizes=[c for j, c in enumerate(chunks) if j != k + 1])
+            col = self._var("column_density", "f4", ("snapshot_time", *rest),
+                            chunksizes=[c for j, c in enumerate(chunks) if j != k + 1], **FRAME_COMPRESSION)
             col.units = f"{u['length']}-{len(rest)}"
             col.long_name = f"probability density integrated along {names[k]} (column density)"
         if lay.get("snapshot_psi"):
             for part in ("real", "imag"):
-                v = self._var(f"psi_snapshot_{part}", "f4", ("snapshot_time", *names), zlib=True,
-                                      complevel=4, shuffle=True, chunksizes=chunks)
+                v = self._var(f"psi_snapshot_{part}", "f4", ("snapshot_time", *names), chunksizes=chunks,
+                              **FRAME_COMPRESSION)
                 v.units = f"{u['length']}-{len(names) / 2:g}"
                 v.long_name = f"{part} part of psi at the snapshot"
         pot = self._var("potential", "f8", (*lead, *names), zlib=True, complevel=4)
         pot.units = u["energy"]
         pot.long_name = "static part of the potential V" + (" on each surface (diagonal V_ss)" if surfaces else "")
         cut = tuple(slice(None, None, s) for _ in names)
-        pot[:] = np.asarray(lay["potential"])[(slice(None),) * len(lead) + cut]
+        self._put(pot, np.asarray(lay["potential"])[(slice(None),) * len(lead) + cut])
         if lay.get("coupling_potential"):
             pairs = list(lay["coupling_potential"])
             ds.createDimension("pair", len(pairs))
             v = self._var("pair", str, ("pair",))
             v.long_name, v.units = "coupled surfaces, their names separated by a comma", "1"
             for i, pair in enumerate(pairs):
-                v[i] = pair
+                self._put(v, pair, i)
             v = self._var("coupling_potential", "f8", ("pair", *names), zlib=True, complevel=4)
             v.units = u["energy"]
             v.long_name = "static off-diagonal element V_ab of each coupled pair (pair, grid axes)"
-            v[:] = np.stack([np.asarray(lay["coupling_potential"][p])[cut] for p in pairs])
+            self._put(v, np.stack([np.asarray(lay["coupling_potential"][p])[cut] for p in pairs]))
         for scalar in lay.get("scalars", SCALARS):   # declared with the observables
             each = bool(surfaces) and scalar.name in PER_SURFACE
             v = self._var(scalar.name, "f8", ("time", "surface") if each else ("time",))
@@ -384,7 +442,7 @@ class ResultWriter:
             self._define_record(lay["record"], state_dims, u)
         if lay.get("final_state", True):
             for part in ("real", "imag"):
-                v = self._var(f"psi_{part}", "f8", (*lead, *state_dims), zlib=True, complevel=4)
+                v = self._var(f"psi_{part}", "f8", (*lead, *state_dims), **FRAME_COMPRESSION)
                 v.units = f"{u['length']}-{len(names) / 2:g}"
                 v.long_name = f"{part} part of the final wave function"
 
@@ -396,7 +454,7 @@ class ResultWriter:
         across = tuple(screens["transverse"])
         per_area = f"{u['length']}-{ndim - 1}"
         v = self._var("screen_flux", "f8", ("time", "screen", *across), zlib=True, complevel=4,
-                      chunksizes=[1, 1, *self._screen_points()])
+                      chunksizes=self._per_detector_chunks(self._screen_points()))
         v.units = f"{per_area} {u['time']}-1"
         v.long_name = (f"probability current density through the screen (across {screens['normal']}), "
                        f"per unit {'length' if ndim == 2 else 'area'} of the screen")
@@ -428,7 +486,7 @@ class ResultWriter:
         (time, state); ``comment``: how the states' phases are fixed."""
         self.ds.createDimension("state", n_states)
         v = self._var("state", "i4", ("state",))
-        v[:] = np.arange(n_states)
+        self._put(v, np.arange(n_states))
         v.long_name = "adiabatic state, in ascending order of the local potential matrix's eigenvalue"
         v.units = "1"
         v = self._var("population_adiabatic", "f8", ("time", "state"))
@@ -442,7 +500,7 @@ class ResultWriter:
             return
         self.ds.createDimension(dim, len(coords))
         v = self._var(dim, "f8", (dim,))
-        v[:] = coords
+        self._put(v, coords)
         v.units, v.long_name = u["length"], f"{long} (full grid)"
 
     def _name_dimension(self, dim: str, names, long_name: str) -> None:
@@ -453,7 +511,7 @@ class ResultWriter:
         v = self._var(dim, str, (dim,))
         v.long_name, v.units = long_name, "1"
         for i, name in enumerate(names):
-            v[i] = name
+            self._put(v, name, i)
 
     def _axis_dimension(self, axes) -> tuple[str]:
         """The ``axis`` dimension (the grid axes' names), made once."""
@@ -480,18 +538,18 @@ class ResultWriter:
             for var, power, what in (("spectrum_psi", d / 2, "psi"),
                                      ("spectrum_dpsi", d / 2 + 1, f"dpsi/d{spectra['normal']}")):
                 v = self._var(f"{var}_{part}", "f8", ("time", "spectrum_detector", *across),
-                              chunksizes=[1, 1, *(len(ds.dimensions[a]) for a in across)])
+                              chunksizes=self._per_detector_chunks([len(ds.dimensions[a]) for a in across]))
                 v.units = f"{u['length']}-{power:g}"
                 v.long_name = f"{part} part of {what} on the detector's {'line' if d == 2 else 'plane'}"
         slabs = (record or {}).get("spectrum_initial_beyond")
         if slabs is not None:   # psi0 beyond each line or plane (the spectrum's b(k, 0)), NaN-padded
             ds.createDimension("spectrum_beyond_point", max(1, *(len(v) for _, v in slabs)))
             v = self._var("spectrum_initial_beyond_first", "i8", ("spectrum_detector",))
-            v[:] = np.array([first for first, _ in slabs], np.int64)
+            self._put(v, np.array([first for first, _ in slabs], np.int64))
             v.units, v.long_name = "1", (f"grid index along {spectra['normal']} of the first point of "
                                          "spectrum_initial_beyond_real/imag")
             v = self._var("spectrum_initial_beyond_points", "i8", ("spectrum_detector",))
-            v[:] = np.array([len(values) for _, values in slabs], np.int64)
+            self._put(v, np.array([len(values) for _, values in slabs], np.int64))
             v.units, v.long_name = "1", f"points along {spectra['normal']} of spectrum_initial_beyond_real/imag"
             n = len(ds.dimensions["spectrum_beyond_point"])
             for part in ("real", "imag"):
@@ -500,7 +558,7 @@ class ResultWriter:
                 padded = np.zeros((len(slabs), n, *(len(ds.dimensions[a]) for a in across)))
                 for j, (_, values) in enumerate(slabs):
                     padded[j, :len(values)] = getattr(values, part)
-                v[:] = padded
+                self._put(v, padded)
                 v.units = f"{u['length']}-{d / 2:g}"
                 v.long_name = (f"{part} part of the initial wave function beyond the detector (away from the "
                                f"packet), {spectra['normal']} first, where above 1e-15 of its peak")
@@ -530,24 +588,24 @@ class ResultWriter:
         ds = self.ds
         for dim, (name, (rho, k, w)) in zip(full_dims, rec["marginals"].items()):
             v = self._var(f"initial_position_marginal_{name}", "f8", (dim,))
-            v[:] = rho
+            self._put(v, rho)
             v.units, v.long_name = "1", f"initial |psi|^2 summed over the other axes, per point along {name}"
             ds.createDimension(f"k_{name}", len(k))
             v = self._var(f"k_{name}", "f8", (f"k_{name}",))
-            v[:] = k
+            self._put(v, k)
             v.units, v.long_name = f"{u['length']}-1", f"wave number along {name} (transform padded 4x)"
             v = self._var(f"initial_momentum_marginal_{name}", "f8", (f"k_{name}",))
-            v[:] = w
+            self._put(v, w)
             v.units, v.long_name = "1", f"initial momentum distribution along {name}, per wave number sample"
         if rec.get("initial_psi") is not None:
             for part, values in (("real", rec["initial_psi"].real), ("imag", rec["initial_psi"].imag)):
                 v = self._var(f"initial_psi_{part}", "f8", tuple(full_dims))
-                v[:] = values
+                self._put(v, values)
                 v.units = f"{u['length']}-0.5"
                 v.long_name = f"{part} part of the initial wave function"
             if tuple(full_dims) != tuple(self.ds["potential"].dimensions):
                 v = self._var("potential_full", "f8", tuple(full_dims))
-                v[:] = rec["potential_full"]
+                self._put(v, rec["potential_full"])
                 v.units, v.long_name = u["energy"], "static part of the potential V (full grid)"
         # per detector: the few numbers analysis would otherwise take from grid-sized arrays
         if len(ds.dimensions["detector"]) and rec.get("detectors") is not None:
@@ -558,17 +616,17 @@ class ResultWriter:
                 v.units, v.long_name = u.get(kind, "1"), long
                 v.coordinates = "detector_x detector_axis"
                 if name in rec["detectors"]:
-                    v[:] = rec["detectors"][name]
+                    self._put(v, rec["detectors"][name])
         if rec.get("potential_min") is not None:
             v = self._var("potential_min", "f8", ())
-            v[...] = rec["potential_min"]
+            self._put(v, rec["potential_min"], ...)
             v.units, v.long_name = u["energy"], "minimum of the static potential on the grid"
         if len(ds.dimensions["detector"]) and rec.get("initial_beyond") is not None:
             # psi0 beyond each detector (the spectrum's b(k, 0)), NaN-padded to the longest
             parts = rec["initial_beyond"]
             ds.createDimension("initial_beyond_point", max(1, *(len(v) for _, v in parts)))   # 0 would be unlimited
             v = self._var("initial_beyond_first", "i8", ("detector",))
-            v[:] = np.array([first for first, _ in parts], np.int64)
+            self._put(v, np.array([first for first, _ in parts], np.int64))
             v.units, v.long_name = "1", "grid index of the first point of initial_beyond_real/imag"
             for part in ("real", "imag"):
                 v = self._var(f"initial_beyond_{part}", "f8", ("detector", "initial_beyond_point"),
@@ -576,7 +634,7 @@ class ResultWriter:
                 padded = np.full((len(parts), len(ds.dimensions["initial_beyond_point"])), np.nan)
                 for j, (_, values) in enumerate(parts):
                     padded[j, :len(values)] = getattr(values, part)
-                v[:] = padded
+                self._put(v, padded)
                 v.units = f"{u['length']}-0.5"
                 v.long_name = (f"{part} part of the initial wave function beyond the detector (away from the "
                                "packet), where above 1e-15 of its peak; NaN past its end")
@@ -585,20 +643,45 @@ class ResultWriter:
             factor = rec["energy_factor"]
             ds.createDimension("lanczos_step", len(alphas))
             v = self._var("lanczos_alpha", "f8", ("lanczos_step",))
-            v[:] = np.asarray(alphas) / factor
+            self._put(v, np.asarray(alphas) / factor)
             v.units, v.long_name = u["energy"], "diagonal of the Lanczos matrix of H from psi0"
             v = self._var("lanczos_beta", "f8", ("lanczos_step",))
             b = np.full(len(alphas), np.nan)
             b[:len(betas)] = np.asarray(betas) / factor
-            v[:] = b
+            self._put(v, b)
             v.units, v.long_name = u["energy"], "off-diagonal of the Lanczos matrix (NaN past the last)"
 
     def _var(self, name, dtype, dims, **kw):
         """A variable; numeric ones carry HDF5 Fletcher-32 checksums, so that
-        a damaged block is an error when read, never a silently wrong number."""
+        a damaged block is an error when read, never a silently wrong number.
+        Along ``time`` or ``snapshot_time`` it is chunked in blocks of rows
+        (:meth:`_series_chunks`): one chunk per sample made the final write of
+        200 samples cost ~145 us a sample (a chunk, its checksum and its
+        index entry each)."""
         if dtype is not str:
             kw.setdefault("fletcher32", True)
+            if dims and dims[0] in ("time", "snapshot_time") and "chunksizes" not in kw:
+                kw["chunksizes"] = self._series_chunks(dims, np.dtype(dtype).itemsize)
         return self.ds.createVariable(name, dtype, dims, **kw)
+
+    def _per_detector_chunks(self, profile) -> list[int]:
+        """Chunks of a profile per sample and detector (time, detector,
+        *profile): blocks of samples of one detector's whole profile."""
+        rows = self._rows_per_chunk(8 * int(np.prod(profile)), "samples", SERIES_CHUNK_ROWS, SERIES_CHUNK_BYTES)
+        return [rows, 1, *profile]
+
+    def _put(self, var, value, index=slice(None)) -> None:
+        """Write ``value`` into ``var[index]`` once every variable is
+        defined (:meth:`_write_pending`): netCDF-4 leaves define mode on
+        each write, creating the HDF5 datasets defined so far, so writes
+        between definitions cost a mode switch each (measured: 30 variables
+        written as defined 10 ms, defined first and then written 5 ms)."""
+        self._pending.append((var, index, value))
+
+    def _write_pending(self) -> None:
+        pending, self._pending = self._pending, []
+        for var, index, value in pending:
+            var[index] = value
 
     def _coord(self, name, dim, unit, long):
         v = self._var(name, "f8", (dim,))
@@ -609,37 +692,60 @@ class ResultWriter:
         """One scalar sample (job units), buffered."""
         self._buf.append({"time": time, **values})
         if len(self._buf) >= self.block:
-            self.flush()
+            self._flush_samples()
 
     def add_snapshot(self, time: float, density: np.ndarray, psi: np.ndarray | None = None,
                      frame_offset=None) -> None:
         """One density frame (job units, full grid; decimated here), psi
         (job units) when the layout stores it, and a falling grid's offset
-        (job length unit, per axis)."""
+        (job length unit, per axis).  Frames are buffered (as float32
+        copies) and written a chunk at a time (:attr:`frames_per_block`)."""
         s = self.layout["stride"]
         lead = 1 if self.layout.get("surfaces") else 0   # the surface axis is never decimated
         cut = (slice(None),) * lead + tuple(slice(None, None, s) for _ in range(density.ndim - lead))
-        i = self._n_snap
-        with self._room(self._frame_bytes()):
-            self.ds["snapshot_time"][i] = time
-            self.ds["density"][i] = density[cut].astype(np.float32, copy=False)
-            if self.layout.get("column") is not None:   # on the full grid, then decimated like the density
-                k, spacing = self.layout["column"]
-                column = density.sum(axis=k, dtype=np.float64) * spacing
-                self.ds["column_density"][i] = column[cut[:-1]].astype(np.float32)
-            if frame_offset is not None and "snapshot_frame_offset" in self.ds.variables:
-                offset = np.asarray(frame_offset, float)
-                self.ds["snapshot_frame_offset"][i] = offset[0] if offset.size == 1 else offset
-            if psi is not None and "psi_snapshot_real" in self.ds.variables:
-                self.ds["psi_snapshot_real"][i] = psi.real[cut].astype(np.float32)
-                self.ds["psi_snapshot_imag"][i] = psi.imag[cut].astype(np.float32)
-        self._n_snap += 1
+        column = offset = real = imag = None
+        if self.layout.get("column") is not None:   # on the full grid, then decimated like the density
+            k, spacing = self.layout["column"]
+            column = np.array((density.sum(axis=k, dtype=np.float64) * spacing)[cut[:-1]], np.float32)
+        if frame_offset is not None and "snapshot_frame_offset" in self.ds.variables:
+            offset = np.asarray(frame_offset, float)
+            offset = float(offset[0]) if offset.size == 1 else offset.copy()
+        if psi is not None and "psi_snapshot_real" in self.ds.variables:
+            real, imag = np.array(psi.real[cut], np.float32), np.array(psi.imag[cut], np.float32)
+        # copies: the caller's arrays may change before the block is written
+        self._snaps.append((float(time), np.array(density[cut], np.float32), column, offset, real, imag))
+        if len(self._snaps) >= self.frames_per_block:
+            self._flush_snapshots()
+
+    def _flush_snapshots(self) -> None:
+        """The buffered frames, one write per variable."""
+        if not self._snaps:
+            return
+        i0, n = self._n_snap, len(self._snaps)
+        ds, frames = self.ds, self._snaps
+        with self._room(n * self._frame_bytes()):
+            ds["snapshot_time"][i0:i0 + n] = np.array([f[0] for f in frames])
+            ds["density"][i0:i0 + n] = np.stack([f[1] for f in frames])
+            if frames[0][2] is not None:
+                ds["column_density"][i0:i0 + n] = np.stack([f[2] for f in frames])
+            if frames[0][3] is not None:
+                ds["snapshot_frame_offset"][i0:i0 + n] = np.array([f[3] for f in frames])
+            if frames[0][4] is not None:
+                ds["psi_snapshot_real"][i0:i0 + n] = np.stack([f[4] for f in frames])
+                ds["psi_snapshot_imag"][i0:i0 + n] = np.stack([f[5] for f in frames])
+        self._n_snap += n
+        self._snaps.clear()
 
     def flush(self) -> None:
-        if not self._buf:
-            return
-        with self._room(len(self._buf) * self._row_bytes()):
-            self._flush()
+        """Write the buffered samples and snapshots (before a checkpoint's
+        copy and at close)."""
+        self._flush_snapshots()
+        self._flush_samples()
+
+    def _flush_samples(self) -> None:
+        if self._buf:
+            with self._room(len(self._buf) * self._row_bytes()):
+                self._flush()
 
     def _flush(self) -> None:
         i0, n = self._n_time, len(self._buf)
@@ -681,10 +787,11 @@ class ResultWriter:
         ds.sync()
 
     def set_final_state(self, psi: np.ndarray, scale: float = 1.0) -> None:
-        """psi times ``scale`` (to job units), written part by part and an
-        eighth of the grid at a time (no temporary of the grid's size)."""
+        """psi times ``scale`` (to job units), written part by part, a large
+        grid an eighth at a time (no temporary of the grid's size)."""
         if "psi_real" in self.ds.variables:
-            rows = max(1, psi.shape[0] // 8)   # an eighth of the grid at a time
+            # an eighth of a large grid at a time; a small one (up to 1 MiB a part) in one write
+            rows = psi.shape[0] if 8 * psi.size <= 1 << 20 else max(1, psi.shape[0] // 8)
             with self._room(16 * psi.size):
                 for part, name in ((psi.real, "psi_real"), (psi.imag, "psi_imag")):
                     for i in range(0, psi.shape[0], rows):
