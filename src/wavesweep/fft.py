@@ -26,6 +26,7 @@ import scipy.fft
 
 from .io.atomic import write_bytes_atomic
 from .registry import registrar
+from .sine_transform import OddExtensionSine
 
 __all__ = ["Transform", "ScipyTransform", "PyFFTWTransform", "BACKENDS", "AUTO", "PLAIN", "make_transform",
            "register_backend", "backend_choices", "wisdom_path"]
@@ -234,20 +235,26 @@ class PyFFTWTransform(Transform):
     """
 
     name = "pyfftw"
-    summary = "FFTW through pyFFTW (when installed): planned once, in place; box axes by scipy.fft"
+    summary = "FFTW through pyFFTW (when installed): planned once, in place; box axes by FFTs of their odd extension"
 
     def __init__(self, grid, dtype=np.complex128, threads=None, members=None, effort="FFTW_MEASURE"):
         super().__init__(grid, dtype, threads, members)
         pyfftw = _load_pyfftw()
         self.buffer = pyfftw.empty_aligned(self.shape, dtype=self.dtype)
-        self._fwd = self._bwd = None
+        self._fwd = self._bwd = self._sine = None
+        learnt = []
         if self._fft_axes:
-            self._fwd, learnt = _plan(pyfftw, self.buffer, self._fft_axes, "FFTW_FORWARD", effort, self.threads)
-            self._bwd, learnt_too = _plan(pyfftw, self.buffer, self._fft_axes, "FFTW_BACKWARD", effort,
-                                          self.threads)
-            if learnt or learnt_too:   # keep what was learnt for the next process
-                with _pyfftw_lock:
-                    _save_wisdom(pyfftw)
+            self._fwd, new = _plan(pyfftw, self.buffer, self._fft_axes, "FFTW_FORWARD", effort, self.threads)
+            self._bwd, new_too = _plan(pyfftw, self.buffer, self._fft_axes, "FFTW_BACKWARD", effort, self.threads)
+            learnt += [new, new_too]
+        if self._dst_axes:   # box axes: FFTs of the odd extension (sine_transform), planned the same way
+            self._sine = OddExtensionSine(pyfftw, self.shape, self.dtype, self._dst_axes, self.threads, effort,
+                                          planner=lambda buf, axes: _plan(pyfftw, buf, axes, "FFTW_FORWARD",
+                                                                          effort, self.threads))
+            learnt.append(self._sine.learnt)
+        if any(learnt):   # keep what was learnt for the next process
+            with _pyfftw_lock:
+                _save_wisdom(pyfftw)
 
     def _into_buffer(self, a):
         if a is not self.buffer:
@@ -266,14 +273,14 @@ class PyFFTWTransform(Transform):
         b = self._into_buffer(a)
         if self._fwd is not None:
             self._fwd.execute()
-        if self._dst_axes:
-            b[...] = scipy.fft.dstn(b, type=1, axes=self._dst_axes, norm="ortho", workers=self.threads)
+        if self._sine is not None:
+            self._sine(b)
         return b
 
     def backward(self, c, scaled=True):
         b = self._into_buffer(c)
-        if self._dst_axes:
-            b[...] = scipy.fft.idstn(b, type=1, axes=self._dst_axes, norm="ortho", workers=self.threads)
+        if self._sine is not None:   # the orthonormal DST-I is its own inverse
+            self._sine(b)
         if self._bwd is not None:
             self._bwd.execute()
             if scaled:

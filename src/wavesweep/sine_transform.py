@@ -32,19 +32,28 @@ class OddExtensionSine:
     """DST-I (orthonormal) along ``axes`` of arrays of ``shape`` and
     ``dtype``, in place, through one planned FFT per axis of an extension
     buffer (twice psi's length along that axis); ``pyfftw`` the loaded
-    module, ``threads`` FFTW's threads, ``effort`` its planning flag."""
+    module, ``threads`` FFTW's threads, ``effort`` its planning flag.
+    ``planner(buffer, axes)``, when given, makes the in-place forward plan
+    (the backend's, from its wisdom) and says whether it had to measure it:
+    :attr:`learnt`."""
 
-    def __init__(self, pyfftw, shape, dtype, axes, threads: int = 1, effort: str = "FFTW_MEASURE"):
+    def __init__(self, pyfftw, shape, dtype, axes, threads: int = 1, effort: str = "FFTW_MEASURE",
+                 planner=None):
         self.shape, self.dtype = tuple(shape), np.dtype(dtype)
         self._steps = []
+        self.learnt = False
         for axis in axes:
             n = self.shape[axis]
             ext_shape = list(self.shape)
             ext_shape[axis] = 2 * (n + 1)
             ext = pyfftw.empty_aligned(tuple(ext_shape), dtype=self.dtype)
             ext[...] = 0.0
-            plan = pyfftw.FFTW(ext, ext, axes=(axis,), direction="FFTW_FORWARD",
-                               flags=(effort, "FFTW_DESTROY_INPUT"), threads=threads)
+            if planner is None:
+                plan = pyfftw.FFTW(ext, ext, axes=(axis,), direction="FFTW_FORWARD",
+                                   flags=(effort, "FFTW_DESTROY_INPUT"), threads=threads)
+            else:
+                plan, learnt = planner(ext, (axis,))
+                self.learnt = self.learnt or learnt
             self._steps.append((axis, n, ext, plan, 1j / math.sqrt(2.0 * (n + 1))))
 
     def __call__(self, a: np.ndarray) -> np.ndarray:
