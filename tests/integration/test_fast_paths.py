@@ -253,8 +253,9 @@ def test_fftw_wisdom_is_read_once_and_written_only_after_a_new_plan(tmp_path, mo
     load, save = fft._load_wisdom, fft.write_bytes_atomic
     monkeypatch.setattr(fft, "_load_wisdom", lambda p: (reads.append(1), load(p)))
     monkeypatch.setattr(fft, "write_bytes_atomic", lambda path, data: (writes.append(path), save(path, data)))
-    # a size no other test plans (2 3^3 7), so this process holds no wisdom of it
-    grid = Grid((Axis("x", -10.0, 10.0, 378, "periodic"),))
+    # a size no other test plans (3^4 7: odd, so no box axis's odd extension, 2 (N + 1), is of it either),
+    # so this process holds no wisdom of it
+    grid = Grid((Axis("x", -10.0, 10.0, 567, "periodic"),))
     first = fft.make_transform(grid, "pyfftw")
     # the first read, and the merge with the file before the one write
     assert len(reads) == 2 and len(writes) == 1 and (tmp_path / "fftw-wisdom.pickle").exists()
