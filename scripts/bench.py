@@ -230,19 +230,6 @@ def bench_fixed_cost(repeats: int):
           flush=True)
 
 
-STUDY_JOB = {
-    "title": "study bench",
-    "grid": {"x": {"min": -150.0, "max": 150.0, "points": 2048}},
-    "potential": [{"kind": "barrier", "height": 0.5, "width": 1.0}],
-    "packet": {"center": -40.0, "width": 6.0, "momentum": 1.0},
-    "absorber": {"kind": "cap", "thickness": 20.0, "strength": 0.02, "power": 2.0},
-    # the batch bench's runs (5000 steps: the packets reach the detectors and the layers, as a study's
-    # do); with 300-step runs the 20 ms a run's file and set-up cost was 6x its floor (0.04x)
-    "evolve": {"dt": 0.02, "duration": 100.0},
-    "record": {"every": 0.5, "snapshot_every": 10.0},
-    "detector": [{"name": "beyond", "x": 30.0}, {"name": "before", "x": -60.0}],
-    "sweep": {"packet.momentum": {"start": 0.7, "stop": 1.5, "num": 64}},
-}
 
 
 def bench_study(repeats: int, workers: int = 2):
@@ -317,6 +304,11 @@ BATCH_JOB = {
     "record": {"every": 0.5, "snapshot_every": 10.0},
     "detector": [{"name": "beyond", "x": 30.0}, {"name": "before", "x": -60.0}],
 }
+
+# --study: 64 of the batch bench's runs as a sweep (5000 steps: the packets reach the detectors and the
+# layers, as a study's do; with 300-step runs the 20 ms a run's file and set-up cost was 6x its floor: 0.04x)
+STUDY_JOB = {**BATCH_JOB, "title": "study bench",
+             "sweep": {"packet.momentum": {"start": 0.7, "stop": 1.5, "num": 64}}}
 
 # the batched study on two coupled surfaces (--surfaces-batch): crossing curves, a
 # coupling where they cross, packets on either surface; a CAP of given strength

@@ -143,9 +143,9 @@ def test_direct_run_on_a_full_disk_is_one_line_and_exit_1(tmp_path, monkeypatch,
     assert list((tmp_path / "out").iterdir()) == []
 
 
-def test_a_checkpoint_that_does_not_fit_keeps_the_previous_one(tmp_path, monkeypatch):
-    """Disk full while saving a checkpoint: the previous checkpoint stays
-    whole, and resuming from it gives the uninterrupted result."""
+def _interrupted_run(tmp_path):
+    """(the uninterrupted result, the output path, the checkpoint policy, the
+    RunInterrupted raised after two samples, the checkpoint folder's bytes)."""
     ref = Simulation(job()).run(path=tmp_path / "ref.nc", progress=False)
     out = tmp_path / "q" / "r.nc"
     policy = CheckpointPolicy(tmp_path / "q" / "r.ckpt", every_seconds=NEVER)
@@ -153,6 +153,24 @@ def test_a_checkpoint_that_does_not_fit_keeps_the_previous_one(tmp_path, monkeyp
     with pytest.raises(RunInterrupted) as first:
         Simulation(job()).run(path=out, progress=False, checkpoint=policy, should_stop=lambda: next(stops))
     before = {p.name: p.read_bytes() for p in policy.path.parent.iterdir()}
+    return ref, out, policy, first, before
+
+
+def _resumes_from_the_kept_checkpoint(ref, out, policy, first, before):
+    """The checkpoint folder holds exactly what it held (``before``), and the
+    run resumes from it at the step it stopped and ends with ``ref``'s result."""
+    assert {p.name: p.read_bytes() for p in policy.path.parent.iterdir()} == before
+    steps = []
+    Simulation(job()).run(path=out, progress=False, checkpoint=policy,
+                          on_resume=lambda step, total: steps.append((step, total)))
+    assert steps == [(first.value.step, Simulation(job()).setup.total_steps)]
+    same_result(ref, out)
+
+
+def test_a_checkpoint_that_does_not_fit_keeps_the_previous_one(tmp_path, monkeypatch):
+    """Disk full while saving a checkpoint: the previous checkpoint stays
+    whole, and resuming from it gives the uninterrupted result."""
+    ref, out, policy, first, before = _interrupted_run(tmp_path)
     real_savez = np.savez
 
     def savez(f, **arrays):   # the state file does not fit
@@ -160,14 +178,9 @@ def test_a_checkpoint_that_does_not_fit_keeps_the_previous_one(tmp_path, monkeyp
     monkeypatch.setattr(np, "savez", savez)
     with pytest.raises(DiskFull, match="disk full: cannot write the checkpoint"):
         Simulation(job()).run(path=out, progress=False, checkpoint=policy, should_stop=lambda: True)
-    after = {p.name: p.read_bytes() for p in policy.path.parent.iterdir()}
-    assert after == before       # no torn state, no orphan copy, no .part: the old pair as it was
     monkeypatch.setattr(np, "savez", real_savez)
-    steps = []
-    Simulation(job()).run(path=out, progress=False, checkpoint=policy,
-                          on_resume=lambda step, total: steps.append((step, total)))
-    assert steps == [(first.value.step, Simulation(job()).setup.total_steps)]
-    same_result(ref, out)
+    # no torn state, no orphan copy, no .part: the old pair as it was, and it resumes
+    _resumes_from_the_kept_checkpoint(ref, out, policy, first, before)
 
 
 # -------------------------------------------------------- under the queue
@@ -357,13 +370,7 @@ def test_a_full_disk_met_writing_a_block_of_buffered_frames_loses_nothing(tmp_pa
     full disk is met at the block's write: inside the next checkpoint (which
     flushes the block first) it is DiskFull, the previous checkpoint stays
     as it was, and resuming from it gives the uninterrupted result."""
-    ref = Simulation(job()).run(path=tmp_path / "ref.nc", progress=False)
-    out = tmp_path / "q" / "r.nc"
-    policy = CheckpointPolicy(tmp_path / "q" / "r.ckpt", every_seconds=NEVER)
-    stops = iter([False, False, True])
-    with pytest.raises(RunInterrupted) as first:
-        Simulation(job()).run(path=out, progress=False, checkpoint=policy, should_stop=lambda: next(stops))
-    before = {p.name: p.read_bytes() for p in policy.path.parent.iterdir()}
+    ref, out, policy, first, before = _interrupted_run(tmp_path)
     original = ResultWriter._flush_snapshots
     blocks = []
 
@@ -378,11 +385,5 @@ def test_a_full_disk_met_writing_a_block_of_buffered_frames_loses_nothing(tmp_pa
     with pytest.raises(DiskFull, match="disk full: cannot write the result"):
         Simulation(job()).run(path=out, progress=False, checkpoint=policy, should_stop=lambda: next(stops))
     assert blocks == [2]          # the two frames of four more samples, buffered until the checkpoint flushes them
-    after = {p.name: p.read_bytes() for p in policy.path.parent.iterdir()}
-    assert after == before        # the previous checkpoint whole, no .part left
     monkeypatch.setattr(ResultWriter, "_flush_snapshots", original)
-    steps = []
-    Simulation(job()).run(path=out, progress=False, checkpoint=policy,
-                          on_resume=lambda step, total: steps.append((step, total)))
-    assert steps == [(first.value.step, Simulation(job()).setup.total_steps)]
-    same_result(ref, out)
+    _resumes_from_the_kept_checkpoint(ref, out, policy, first, before)   # whole, no .part left
