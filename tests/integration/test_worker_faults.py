@@ -282,8 +282,11 @@ def test_a_60_run_study_survives_two_kills_and_a_full_disk(tmp_path, request):
     parked = [r for r in st["runs"] if r["state"] == "queued" and (r["reason"] or "").startswith("disk full")]
     def kills_of(run_id):
         return sum("was killed by SIGKILL" in (e["note"] or "") for e in q.history("target", run_id))
-    # the disk, not the run, failed: only kills spent attempts (a run may be both)
-    assert parked and all(r["attempts"] == kills_of(r["run_id"]) for r in parked), out
+    # the disk, not the run, failed: only kills spent attempts (a run may be both).  The disk may also
+    # fill between two runs (a run of this size is mostly its set-up and its file's close), then the worker
+    # stops holding none: said so, with nothing to park
+    between = "stopped by a full disk: 0 runs back in the queue" in out
+    assert (parked or between) and all(r["attempts"] == kills_of(r["run_id"]) for r in parked), out
     stuck = [r for r in st["runs"] if r["state"] in ("running", "failed")]
     assert not stuck, [(r["run_id"], r["state"], r["attempts"], r["reason"],
                         [(e["old"], e["new"], e["note"]) for e in q.history("target", r["run_id"])]) for r in stuck]
@@ -291,7 +294,7 @@ def test_a_60_run_study_survives_two_kills_and_a_full_disk(tmp_path, request):
     # the reason says disk full: the write that failed ("cannot write ...") or,
     # when the worker's own record of it could not be written either, the
     # worker's stop, recorded by `work` ("worker ... stopped: disk full")
-    assert "queued again:" in text and f"target/{parked[0]['run_id']}  disk full: " in text
+    assert not parked or ("queued again:" in text and f"target/{parked[0]['run_id']}  disk full: " in text)
     # no partial file of the full disk's runs (a SIGKILLed attempt's own .part
     # stays until its run is claimed again: nothing can clean up after -9)
     def cut_by_a_kill(name):
@@ -322,7 +325,7 @@ def test_a_60_run_study_survives_two_kills_and_a_full_disk(tmp_path, request):
         kills = sum("was killed by SIGKILL" in (e["note"] or "") for e in ends)
         assert r["attempts"] == 1 + kills              # a full disk spends no attempt
     assert interrupted["killed"] == died
-    assert interrupted["disk full"] >= 1
+    assert interrupted["disk full"] >= (1 if parked else 0)
 
     folder = root / "target"
     names = sorted(p.name for p in folder.iterdir())
