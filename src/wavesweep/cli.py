@@ -213,11 +213,14 @@ def _parser() -> argparse.ArgumentParser:
     tr.add_argument("--detector", default=None, help="detector beyond the scatterer for T(E)")
     tr.add_argument("--json", action="store_true", help="print one JSON object")
 
-    sp = sub.add_parser("spectrum", help="momentum and energy spectra of what left through each detector (1D)",
+    sp = sub.add_parser("spectrum", help="momentum and energy spectra of what left through each detector",
                         description="The surface-flux method (Tao & Scrinzi 2012): the momentum distribution of "
                                     "what crossed each detector outwards by the end of the run, with a driving "
-                                    "field (Volkov phases) or without.  Slow parts still arriving at the end "
-                                    "are a warning with the probability still to come.")
+                                    "field (Volkov phases) or without: through a point in 1D, through a line "
+                                    "or plane in 2D/3D when its [[detector]] says spectrum = true (transverse "
+                                    "momenta resolved).  Each carries how far it holds (cut_uncertainty, "
+                                    "total_uncertainty); slow parts still arriving at the end are a warning "
+                                    "with the probability still to come.")
     sp.add_argument("result", metavar="RUN.nc")
     sp.add_argument("--detector", default=None, help="only this detector")
     sp.add_argument("--json", action="store_true", help="print one JSON object")

@@ -15,6 +15,7 @@ import xarray as xr
 from conftest import make_job
 from wavesweep.batched import BatchedRun, batch_group, batch_key
 from wavesweep.errors import RunFailed, RunInterrupted
+from wavesweep.job import job_from_dict
 from wavesweep.io.checkpoint import CheckpointPolicy, ResultExists
 from wavesweep.run import Simulation
 
@@ -53,6 +54,20 @@ def members(table, momenta, precision="double", own_strength=False):
         pk["momentum"] = p if isinstance(pk["momentum"], float) else [p, *pk["momentum"][1:]]
         jobs.append(make_job(t))
     return jobs
+
+
+def assert_batched_like_solo(root, members, solo_folder, rtol):
+    """Every run of the queue at ``root`` ran in one batch of ``members`` and
+    its file equals its job run solo (into ``solo_folder``) to ``rtol``."""
+    import tomllib
+    from wavesweep.studies.queue import Queue
+    q = Queue(root)
+    for run in q.runs():
+        notes = [e["note"] or "" for e in q.history(run["study"], run["run_id"]) if e["new"] == "running"]
+        assert any(f"batch of {members}" in n for n in notes)
+        job = job_from_dict(tomllib.loads(q.run(run["study"], run["run_id"])["job_toml"]))
+        solo = Simulation(job).run(solo_folder, progress=False)
+        assert_same_file(solo, q.result_path(run["study"], run["run_id"]), rtol)
 
 
 def assert_same_file(a, b, rtol):
@@ -206,14 +221,7 @@ def test_work_drains_a_study_in_batches_like_solo_runs(tmp_path):
     submit(path, tmp_path / "root")
     summary = work(tmp_path / "root", workers=1)
     assert summary["done"] == 4
-    import tomllib
-    q = Queue(tmp_path / "root")
-    for run in q.runs():
-        notes = [e["note"] or "" for e in q.history(run["study"], run["run_id"]) if e["new"] == "running"]
-        assert any("batch of 4" in n for n in notes)
-        job = make_job(tomllib.loads(q.run(run["study"], run["run_id"])["job_toml"]))
-        solo = Simulation(job).run(tmp_path / "solo", progress=False)
-        assert_same_file(solo, q.result_path(run["study"], run["run_id"]), 1e-10)
+    assert_batched_like_solo(tmp_path / "root", 4, tmp_path / "solo", 1e-10)
 
 
 def test_stopped_members_leave_no_partial_file(tmp_path):

@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from test_batched import assert_same_file
+from test_batched import assert_batched_like_solo, assert_same_file
 from test_coupled_runs import ABSORBED_JOB
 from wavesweep.batched import BatchedRun, batch_group, batch_key
 from wavesweep.job import job_from_dict
@@ -137,12 +137,9 @@ def test_coupled_batch_keys():
 def test_a_study_of_coupled_runs_drains_in_batches(tmp_path):
     """Through the local queue: the runs of a sweep over the packet's
     momentum and surface go in one batch, each result its solo run's."""
-    import tomllib
-
     import tomli_w
 
     from wavesweep.studies.api import submit, work
-    from wavesweep.studies.queue import Queue
     table = {**copy.deepcopy(ABSORBED_JOB), "evolve": {**ABSORBED_JOB["evolve"], "duration": 4.0},
              "record": {"every": 0.4, "snapshot_every": 2.0},
              "sweep": {"packet.momentum": [2.5, 3.0], "packet.surface": ["A", "B"]}}
@@ -151,13 +148,7 @@ def test_a_study_of_coupled_runs_drains_in_batches(tmp_path):
     submit(path, tmp_path / "root")
     summary = work(tmp_path / "root", workers=1)
     assert summary["done"] == 4
-    q = Queue(tmp_path / "root")
-    for run in q.runs():
-        notes = [e["note"] or "" for e in q.history(run["study"], run["run_id"]) if e["new"] == "running"]
-        assert any("batch of 4" in n for n in notes)
-        job = job_from_dict(tomllib.loads(q.run(run["study"], run["run_id"])["job_toml"]))
-        solo = Simulation(job).run(tmp_path / "solo", progress=False)
-        assert_same_file(solo, q.result_path(run["study"], run["run_id"]), 1e-12)
+    assert_batched_like_solo(tmp_path / "root", 4, tmp_path / "solo", 1e-12)
 
 
 def test_an_interrupted_coupled_member_resumes_later_and_matches(tmp_path):
