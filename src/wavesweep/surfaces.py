@@ -54,7 +54,7 @@ from .fft import AUTO, make_transform
 from .hamiltonian import Hamiltonian
 from .kernels import view4
 from .propagators import scheme_class
-from .propagators.chebyshev import chebyshev_expansion
+from .propagators.chebyshev import chebyshev_expansion, chebyshev_series
 from .propagators.coefficients import STRANG
 
 __all__ = ["SurfaceHamiltonian", "local_exponential", "CoupledSplitOperator", "CoupledChebyshev", "coupled_weights",
@@ -725,17 +725,9 @@ class CoupledChebyshev:
     def step(self, psi: np.ndarray, nsteps: int = 1) -> np.ndarray:
         """Advance psi (S, *grid) by ``nsteps`` steps (a new array)."""
         psi = np.asarray(psi, dtype=np.complex128)
-        c = self.coefficients
         dv = self.grid.cell_volume
         for _ in range(int(nsteps)):
-            prev = psi
-            cur = self._scaled_h(psi)
-            out = c[0] * prev + c[1] * cur
-            for a in c[2:]:   # the recurrence T_n+1 = 2 H_n T_n - T_n-1
-                nxt = 2.0 * self._scaled_h(cur) - prev
-                out += a * nxt
-                prev, cur = cur, nxt
-            psi = out
+            psi = chebyshev_series(self._scaled_h, psi, self.coefficients)
             if self.absorber is not None:
                 density = np.abs(psi) ** 2
                 for n, (layer, lw) in enumerate(zip(self.absorber.layers, self._loss)):

@@ -20,7 +20,23 @@ from scipy.special import jv
 from ..errors import JobError
 from .base import Propagator, other_schemes, register_scheme
 
-__all__ = ["Chebyshev", "chebyshev_expansion"]
+__all__ = ["Chebyshev", "chebyshev_expansion", "chebyshev_series"]
+
+
+def chebyshev_series(scaled_h, psi, coefficients):
+    """sum_n c_n T_n(H') psi by the three-term recurrence T_n+1 = 2 H' T_n -
+    T_n-1 (Tal-Ezer & Kosloff, J. Chem. Phys. 81, 3967 (1984)), ``scaled_h``
+    applying H' (the spectrum mapped into [-1, 1]); one state or a stack of
+    coupled surfaces alike."""
+    c = coefficients
+    prev = psi
+    cur = scaled_h(psi)
+    out = c[0] * prev + c[1] * cur
+    for a in c[2:]:
+        nxt = 2.0 * scaled_h(cur) - prev
+        out += a * nxt
+        prev, cur = cur, nxt
+    return out
 
 
 def chebyshev_expansion(hamiltonian, dt: float):
@@ -94,16 +110,8 @@ class Chebyshev(Propagator):
 
     def _step_impl(self, psi, nsteps):
         psi = np.asarray(psi, dtype=np.complex128)
-        c = self.coefficients
         for _ in range(nsteps):
-            prev = psi
-            cur = self._scaled_h(psi)
-            out = c[0] * prev + c[1] * cur
-            for a in c[2:]:
-                nxt = 2.0 * self._scaled_h(cur) - prev
-                out += a * nxt
-                prev, cur = cur, nxt
-            psi = out
+            psi = chebyshev_series(self._scaled_h, psi, self.coefficients)
             if self._mask is not None:
                 dens = np.abs(psi) ** 2
                 dv = self.grid.cell_volume
