@@ -836,7 +836,9 @@ class CoupledSetup(Setup):
         if self.weights is None:
             if members is not None:
                 raise ValueError(f"{self.scheme.name!r} on coupled surfaces steps one run at a time")
-            return COUPLED_EXPANSIONS[self.scheme.name](self.hamiltonian, self.dt, absorber)
+            transform = transform or make_transform(self.grid, self.fft_backend, np.complex128,
+                                                    threads or self.threads, members=len(self.surfaces))
+            return COUPLED_EXPANSIONS[self.scheme.name](self.hamiltonian, self.dt, absorber, transform=transform)
         if transform is None and members is not None:
             rows = int(members) * len(self.surfaces)
             transform = make_transform(self.grid, AUTO, np.complex128, threads or self.threads, members=rows)
