@@ -223,10 +223,11 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
     k_all, w_all = _padded_momentum_density(setup.psi0, setup.grid.axes[0].dx)
     p_mean = float(np.sum(k_all * w_all) / np.sum(w_all))
     # judged first: a bound start has no direction to look for a detector in
-    _single_start(setup, k_all, w_all, 1.0 if p_mean >= 0 else -1.0, points, result_units(ds), refuse=True)
+    starts = {1.0 if p_mean >= 0 else -1.0: _single_start(setup, k_all, w_all, 1.0 if p_mean >= 0 else -1.0,
+                                                          points, result_units(ds), refuse=True)}
     if detector is not None:
         j = _requested_detector(setup, names, detector)
-        return _at_detector(ds, setup, j, k_all, w_all, points)
+        return _at_detector(ds, setup, j, k_all, w_all, points, starts)
     sign = 1.0 if p_mean >= 0 else -1.0
     order = sorted(range(len(names)), key=lambda i: -sign * setup.detectors[i].position)
     usable = [i for i in order if layer_holding(setup, 0, setup.detectors[i].position) is None]
@@ -236,7 +237,7 @@ def energy_resolved_transmission(ds, setup, detector: str | None = None, points:
     first, estimate = None, None
     for i in usable:
         try:
-            found = _at_detector(ds, setup, i, k_all, w_all, points)
+            found = _at_detector(ds, setup, i, k_all, w_all, points, starts)
         except JobError as e:
             first = first or e
             continue
@@ -288,7 +289,10 @@ def _requested_detector(setup, names, detector: str) -> int:
     return j
 
 
-def _at_detector(ds, setup, j, k_all, w_all, points) -> dict:
+def _at_detector(ds, setup, j, k_all, w_all, points, starts=None) -> dict:
+    """T(E) at detector ``j``; ``starts``: the start premise already judged
+    per direction (:func:`_single_start`, a grid x energies projection),
+    reused rather than computed again."""
     uc = result_units(ds)
     name = str(ds["detector"].values[j])
     x = setup.grid.axes[0].coordinates
@@ -346,7 +350,10 @@ def _at_detector(ds, setup, j, k_all, w_all, points) -> dict:
                                          still_to_come=to_come,
                                          band_center=0.5 * float(e_band.min() + e_band.max()))
     # the premises (module notes), as on coupled surfaces: a flat start, nothing sent back
-    start_rel, worst_start, refusal = _single_start(setup, k_all, w_all, direction, points, uc)
+    starts = {} if starts is None else starts
+    if direction not in starts:
+        starts[direction] = _single_start(setup, k_all, w_all, direction, points, uc)
+    start_rel, worst_start, refusal = starts[direction]
     failed = [("packet.center", refusal)] if refusal is not None else []
     back, forward = _came_back(np.asarray(ds["time"].values, float),
                                np.asarray(ds["flux"].values, float)[:, j] * direction)
