@@ -1439,6 +1439,18 @@ def _job_points(table) -> list[int]:
     return [int(table["grid"][a]["points"]) for a in ("x", "y", "z", "r") if a in table["grid"]]
 
 
+def box_extension_bytes(table, psi_bytes: float) -> float:
+    """The buffers of the sine transforms of box axes (pyFFTW: an odd
+    extension of 2 (N + 1) points along the axis, one buffer for all box
+    axes of a transform, :mod:`wavesweep.sine_transform`), for the run's
+    two transforms (propagator and observer)."""
+    grid = table["grid"]
+    default = grid.get("boundary", "periodic")
+    factors = [2.0 * (int(grid[a]["points"]) + 1) / int(grid[a]["points"]) for a in ("x", "y", "z")
+               if a in grid and grid[a].get("boundary", default) == "box"]
+    return 2 * max(factors, default=0.0) * psi_bytes
+
+
 def memory_estimate(job) -> dict:
     """Bytes a run of ``job`` holds at its peak, from the grid's shape, the
     precision and the scheme alone (nothing is allocated): the scheme's own
@@ -1450,7 +1462,7 @@ def memory_estimate(job) -> dict:
     scheme = scheme_class(table["evolve"].get("scheme", DEFAULT_SCHEME))
     absorbing = (table.get("absorber") or {}).get("kind", "none") != "none"
     radial = int(table["grid"]["r"]["points"]) if "r" in table["grid"] else None
-    estimate = scheme.peak_bytes(size, itemsize, absorbing, radial)
+    estimate = scheme.peak_bytes(size, itemsize, absorbing, radial) + box_extension_bytes(table, psi_bytes)
     surfaces = len(table.get("surface") or ()) or 1   # coupled surfaces: psi and its buffers per surface
     return {"psi_bytes": psi_bytes * surfaces, "estimate_bytes": estimate * surfaces, "points": size}
 

@@ -126,7 +126,7 @@ def _load_wisdom(pyfftw) -> None:
     try:
         with open(wisdom_path(), "rb") as f:
             pyfftw.import_wisdom(pickle.load(f))
-    except (OSError, ValueError, EOFError, pickle.UnpicklingError):
+    except Exception:   # noqa: BLE001 -- only a cache: a damaged or foreign file means no wisdom, never a failed run
         pass
 
 
@@ -231,7 +231,9 @@ class PyFFTWTransform(Transform):
     keeps psi there, so a step copies nothing); any other input is copied
     into it first.  Plans are made once per transform with FFTW_MEASURE, from
     the process's wisdom when it has the transform (:func:`_plan`); the
-    wisdom is cached on disk, read once per process.  Box (DST-I) axes go through scipy.fft.
+    wisdom is cached on disk, read once per process.  Box (DST-I) axes go
+    through planned FFTs of their odd extension
+    (:class:`~wavesweep.sine_transform.OddExtensionSine`).
     """
 
     name = "pyfftw"

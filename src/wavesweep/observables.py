@@ -212,6 +212,7 @@ class Observer:
         self._v_view = None      # (the potential array, its kernel view): see _potential_view
         self._parseval_dv = grid.parseval_factor * self.dv   # a property that costs 7 us: once
         self._rows_cast = {}     # the detectors' rows in psi's precision: see _rows_in
+        self._box_derivative = None   # i kappa of a 1D box's odd extension: see _momentum_box
 
     def _detector_groups(self, where) -> list:
         """``(view axis, detector indices, rows (2M, n), weight)`` per axis for
@@ -393,9 +394,12 @@ class Observer:
                 y = np.zeros(2 * (n + 1), complex)
                 y[1:n + 1] = -1j * math.sqrt(2.0 * (n + 1)) * c
                 y[n + 2:] = -y[n:0:-1]
-                kappa = np.pi * np.fft.fftfreq(2 * (n + 1), 1.0 / (2 * (n + 1))) / ((n + 1) * ax.dx)
-                kappa[n + 1] = 0.0   # the Nyquist mode has no well-defined derivative (and carries nothing)
-                dpsi = scipy.fft.ifft(1j * kappa * y)[1:n + 1]
+                if self._box_derivative is None:   # i kappa of the extension's modes, made once
+                    kappa = np.pi * np.fft.fftfreq(2 * (n + 1), 1.0 / (2 * (n + 1))) / ((n + 1) * ax.dx)
+                    kappa[n + 1] = 0.0   # the Nyquist mode has no well-defined derivative (and carries nothing)
+                    self._box_derivative = 1j * kappa
+                y *= self._box_derivative
+                dpsi = scipy.fft.ifft(y, overwrite_x=True)[1:n + 1]
             else:
                 dpsi = spectral_derivative(one, ax, 0)
             out.append(float(np.vdot(one, dpsi).imag))
@@ -405,6 +409,8 @@ class Observer:
         """The interpolation rows in psi's precision, converted once per array."""
         if rows.dtype == dtype:
             return rows
+        if self.frame is not None:   # a falling grid's rows are made anew each sample: nothing to keep
+            return rows.astype(dtype)
         key = (id(rows), np.dtype(dtype))
         found = self._rows_cast.get(key)
         if found is None or found[0] is not rows:

@@ -42,11 +42,18 @@ class OddExtensionSine:
         self.shape, self.dtype = tuple(shape), np.dtype(dtype)
         self._steps = []
         self.learnt = False
+        ext_shapes = []
         for axis in axes:
-            n = self.shape[axis]
             ext_shape = list(self.shape)
-            ext_shape[axis] = 2 * (n + 1)
-            ext = pyfftw.empty_aligned(tuple(ext_shape), dtype=self.dtype)
+            ext_shape[axis] = 2 * (self.shape[axis] + 1)
+            ext_shapes.append(tuple(ext_shape))
+        # one buffer for every axis (their transforms run one after another): the largest extension,
+        # 2 (N + 1) / N times psi, not that per box axis (adequacy.memory_estimate counts it)
+        flat = pyfftw.empty_aligned(max((int(np.prod(e)) for e in ext_shapes), default=0), dtype=self.dtype)
+        self.buffer_bytes = flat.nbytes
+        for axis, ext_shape in zip(axes, ext_shapes):
+            n = self.shape[axis]
+            ext = flat[:int(np.prod(ext_shape))].reshape(ext_shape)
             ext[...] = 0.0
             if planner is None:
                 plan = pyfftw.FFTW(ext, ext, axes=(axis,), direction="FFTW_FORWARD",
@@ -54,23 +61,21 @@ class OddExtensionSine:
             else:
                 plan, learnt = planner(ext, (axis,))
                 self.learnt = self.learnt or learnt
-            self._steps.append((axis, n, ext, plan, 1j / math.sqrt(2.0 * (n + 1))))
+            # the index tuples of the extension's parts, made once (a call runs twice a step)
+            def part(sl, axis=axis, ndim=len(self.shape)):
+                index = [slice(None)] * ndim
+                index[axis] = sl
+                return tuple(index)
+            self._steps.append((ext, plan, 1j / math.sqrt(2.0 * (n + 1)), part(slice(1, n + 1)),
+                                part(slice(2 * n + 1, n + 1, -1)), part(slice(0, 1)), part(slice(n + 1, n + 2))))
 
     def __call__(self, a: np.ndarray) -> np.ndarray:
         """``a`` (``shape``) replaced by its DST-I along the axes; returns ``a``."""
-        for axis, n, ext, plan, scale in self._steps:
-            head = [slice(None)] * a.ndim
-            tail = [slice(None)] * a.ndim
-            zero_lo = [slice(None)] * a.ndim
-            zero_mid = [slice(None)] * a.ndim
-            head[axis] = slice(1, n + 1)
-            tail[axis] = slice(2 * n + 1, n + 1, -1)    # positions 2N+1 .. N+2 hold psi_1 .. psi_N, negated
-            zero_lo[axis] = slice(0, 1)
-            zero_mid[axis] = slice(n + 1, n + 2)
-            ext[tuple(head)] = a
-            np.negative(a, out=ext[tuple(tail)])
-            ext[tuple(zero_lo)] = 0.0    # the FFT destroyed its input: the walls' zeros written again
-            ext[tuple(zero_mid)] = 0.0
+        for ext, plan, scale, head, tail, wall_lo, wall_mid in self._steps:
+            ext[head] = a
+            np.negative(a, out=ext[tail])    # positions 2N+1 .. N+2 hold psi_1 .. psi_N, negated
+            ext[wall_lo] = 0.0               # the FFT destroyed its input: the walls' zeros written again
+            ext[wall_mid] = 0.0
             plan.execute()
-            np.multiply(ext[tuple(head)], scale, out=a)
+            np.multiply(ext[head], scale, out=a)
         return a

@@ -30,7 +30,7 @@ def uniform_force_along(terms, axis: int = 0):
     """F(t) along ``axis`` (hartree/bohr) summed over the uniform-force
     terms that depend on time, or None when there are none.  A driving
     field's is q E(t) from its scalar E(t) (no array per call: it is asked
-    for twice a step)."""
+    for three times a step)."""
     moving = [term for term in terms if getattr(term, "uniform_force", False)
               and getattr(term, "time_dependent", False)]
     if not moving:
