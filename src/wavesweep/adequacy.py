@@ -365,7 +365,7 @@ class Reach:
 MAX_CLASSICAL_STEPS = 4000
 
 
-def classical_reach(setup, n_random: int = 96, seed: int = 1) -> Reach | None:
+def classical_reach(setup, n_random: int = 96, seed: int = 1, compiled: bool = True) -> Reach | None:
     """Classical trajectories (velocity Verlet) of the initial state's
     phase-space ensemble under the job's V(r, t) over ``evolve.duration``:
     the momenta they reach and the energies with which they enter each
@@ -374,7 +374,9 @@ def classical_reach(setup, n_random: int = 96, seed: int = 1) -> Reach | None:
     Gaussian part is its Wigner function (Gaussian in x and p, exactly) at
     a stencil of +/- 3 sigma_x and +/- 3, 6 sigma_p plus random samples;
     other states use their measured moments.  None on a radial grid (the
-    Coulomb singularity has no classical momentum bound)."""
+    Coulomb singularity has no classical momentum bound).  A static V runs
+    the compiled loop (``compiled=False``: this array version, the same
+    steps)."""
     grid = setup.grid
     if grid.radial:
         return None
@@ -413,6 +415,8 @@ def classical_reach(setup, n_random: int = 96, seed: int = 1) -> Reach | None:
         return None
     lo_seen, hi_seen = x.min(axis=0), x.max(axis=0)
     edges_reached = [False] * grid.ndim
+    if compiled and static and force.grad_static is not None:   # the same loop compiled (kernels.classical)
+        return _static_reach(setup, force, x, p, energy, random, layers, omega, lo_seen, hi_seen, f)
     while t < duration and alive.any() and steps < 4 * MAX_CLASSICAL_STEPS:
         v_max = float(np.abs(p[alive]).max()) / m if alive.any() else 0.0
         a_max = float(np.abs(f[alive]).max()) / m if alive.any() else 0.0
@@ -473,6 +477,50 @@ def classical_reach(setup, n_random: int = 96, seed: int = 1) -> Reach | None:
                 for face, got in arrivals.items()}
     return Reach(peak.max(axis=0), peak[0], sampled, arrivals, list(zip(lo_seen, hi_seen)), edges_reached,
                  steps)
+
+
+def _static_reach(setup, force, x, p, energy, random, layers, omega, lo_seen, hi_seen, f) -> Reach:
+    """:func:`classical_reach`'s loop for a static V, run by the compiled
+    kernel (:func:`wavesweep.kernels.classical.static_reach`: the same
+    steps and arithmetic, ~70 ms of numpy calls a run before)."""
+    from .kernels.classical import static_reach   # lazy: numba loads with the first set-up that needs it
+    grid, m, nd = setup.grid, setup.mass, setup.grid.ndim
+    pad = (1,) * (3 - nd)
+
+    def padded(a):
+        return np.ascontiguousarray(np.broadcast_to(np.asarray(a, float), grid.shape).reshape(grid.shape + pad))
+
+    grads = np.stack([padded(g) for g in force.grad_static])
+    axes = grid.axes
+    faces = list(layers.items())
+    layer_axis = np.array([i for _, (i, _, _) in faces], np.int64)
+    layer_side = np.array([1 if side == "+" else -1 for _, (_, side, _) in faces], np.int64)
+    layer_edge = np.array([edge for _, (_, _, edge) in faces], float)
+    x, p, f = (np.ascontiguousarray(a, dtype=float) for a in (x, p, f))
+    alive = ~_inside_layers(x, layers)
+    peak = np.abs(p)
+    entry = np.zeros_like(p)
+    hit = np.zeros(len(x), np.int64)
+    lo_seen, hi_seen = np.array(lo_seen, float), np.array(hi_seen, float)
+    edges = np.zeros(nd, np.bool_)
+    steps = static_reach(
+        x, p, np.ascontiguousarray(energy, dtype=float), float(m), padded(force.v_static)[None], grads,
+        np.array([a.coordinates[0] for a in axes], float), np.array([a.dx for a in axes], float),
+        np.array([a.points for a in axes], np.int64), np.array([a.boundary == "periodic" for a in axes]),
+        np.array([a.min for a in axes], float), np.array([a.max for a in axes], float),
+        np.array([a.length for a in axes], float), layer_axis, layer_side, layer_edge,
+        float(setup.duration), float(min(a.dx for a in axes)), float(omega), float(4 * MAX_CLASSICAL_STEPS),
+        4 * MAX_CLASSICAL_STEPS, alive, peak, f, entry, hit, lo_seen, hi_seen, edges)
+    arrivals = {}
+    for n, (face, (i, _, _)) in enumerate(faces):
+        took = (hit >> n) & 1 == 1
+        if took.any():
+            e = entry[took, i] ** 2 / (2 * m)
+            weighted = e[random[took]]
+            # as classical_reach: the slow end the Wigner samples' 5th percentile, else the slowest tail's
+            arrivals[face] = (float(np.percentile(weighted, 5)) if weighted.size else float(e.min()), float(e.max()))
+    return Reach(peak.max(axis=0), peak[0], peak[random], arrivals, list(zip(lo_seen, hi_seen)),
+                 [bool(b) for b in edges], int(steps))
 
 
 def _fastest_carrier(setup) -> float:

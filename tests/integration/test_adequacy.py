@@ -296,3 +296,43 @@ def test_levels_refuses_a_grid_that_cannot_fit_before_allocating(tmp_path, capsy
     assert main(["levels", str(job), "--count", "2"]) == 2
     err = capsys.readouterr().err.strip()
     assert len(err.splitlines()) == 1 and "grid.z.points" in err and "TiB" in err
+
+
+# The compiled classical loop (kernels.classical) against the array version it replaces for a static V:
+# the same velocity-Verlet steps and arithmetic, so every field of the Reach must agree exactly.  The
+# array version stays (it runs time-dependent V) and is what the checks above judge through `dynamics`.
+REACH_CASES = {
+    "1d barrier, layers both ends": {
+        "grid": {"x": {"min": -150.0, "max": 150.0, "points": 2048}},
+        "potential": [{"kind": "barrier", "height": 0.5, "width": 1.0}],
+        "packet": {"center": -40.0, "width": 6.0, "momentum": 1.2},
+        "absorber": {"kind": "cap", "thickness": 20.0}, "evolve": {"dt": 0.02, "duration": 150.0}},
+    "1d periodic harmonic, no layers": {
+        "grid": {"x": {"min": -40.0, "max": 40.0, "points": 512}},
+        "potential": [{"kind": "harmonic", "omega": 0.05}],
+        "packet": {"center": -5.0, "width": 2.0, "momentum": 1.0}, "evolve": {"dt": 0.05, "duration": 200.0}},
+    "2d box walls, one layer": {
+        "grid": {"x": {"min": -30.0, "max": 30.0, "points": 96, "boundary": "box"},
+                 "y": {"min": -20.0, "max": 20.0, "points": 64}},
+        "potential": [{"kind": "gaussian", "height": 0.3, "width": 2.0}],
+        "packet": {"center": [-10.0, 0.0], "width": [2.0, 2.0], "momentum": [1.0, 0.5]},
+        "absorber": {"kind": "cap", "thickness": 6.0, "faces": ["x+"]}, "evolve": {"dt": 0.05, "duration": 60.0}},
+    "3d trap, layers on every face": {
+        "grid": {a: {"min": -15.0, "max": 15.0, "points": 32} for a in "xyz"},
+        "potential": [{"kind": "harmonic", "omega": 0.1}],
+        "packet": {"center": [-3.0, 1.0, 0.0], "width": [1.5, 1.5, 1.5], "momentum": [1.0, 0.2, 0.0]},
+        "absorber": {"kind": "cap", "thickness": 4.0}, "evolve": {"dt": 0.05, "duration": 40.0}},
+}
+
+
+@pytest.mark.parametrize("case", list(REACH_CASES))
+def test_the_compiled_classical_loop_takes_the_array_versions_steps(case):
+    from wavesweep.adequacy import classical_reach
+    setup = Setup(make_job(copy.deepcopy(REACH_CASES[case])))
+    array, compiled = classical_reach(setup, compiled=False), classical_reach(setup)
+    assert compiled.time_steps == array.time_steps > 10
+    for name in ("momentum", "centre", "sampled", "visited", "edges_reached"):
+        np.testing.assert_array_equal(np.asarray(getattr(compiled, name)), np.asarray(getattr(array, name)), name)
+    assert compiled.arrivals == array.arrivals
+    if "no layers" not in case:
+        assert array.arrivals   # the case exercises the layers' bookkeeping
