@@ -160,9 +160,11 @@ def test_ctrl_c_leaves_the_queue_consistent_and_the_runs_resume(tmp_path):
     the queue (exit 0); a second drain finishes them."""
     table = copy.deepcopy(STUDY)
     table["grid"]["x"].update({"min": -150.0, "max": 150.0, "points": 2048})
-    # ~9 s a run on an idle core: stopped 1.5 s after both have stepped, well
-    # before the end (a 20 s run cost the second drain most of a minute)
-    table["evolve"] = {"dt": 0.005, "duration": 4500.0}
+    # ~20 s a run on an idle core: stopped 1.5 s after both have reported a
+    # step, well before the end.  Their first report comes with a heartbeat,
+    # ~10 s after the start here: a run of half this length (14 s once its
+    # set-up got faster) ended before the stop and the test with it.
+    table["evolve"] = {"dt": 0.005, "duration": 7000.0}
     table["record"] = {"every": 10.0}
     table["sweep"] = {"packet.momentum": {"start": 0.9, "stop": 1.2, "num": 2}}
     root = queued(tmp_path, table, "interrupted")

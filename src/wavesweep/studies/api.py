@@ -7,10 +7,8 @@ import socket
 from datetime import datetime, timedelta
 from pathlib import Path
 
-from ..check import preflight
 from ..errors import DiskFull, JobError
 from ..io.diskspace import free_bytes
-from ..study import load_study
 from .executors import CLUSTER_EXECUTOR, DEFAULT_EXECUTOR, WorkerSettings, executor_class
 from .executors.local import LocalExecutor
 from .layout import StudyLayout
@@ -32,6 +30,8 @@ def submit(job_path, root=None, study: str | None = None, overrides=(), force: b
     check`` finds an error at any point unless ``force`` (a JobError);
     ``warnings`` lists the warnings, one line per criterion."""
 
+    from ..check import preflight   # lazy: the jobs' modules only for a submit (work's parent needs none)
+    from ..study import load_study
     st = load_study(job_path, overrides, name=study)
     warnings = preflight(st.runs, force=force)
     counts = Queue(default_root(root)).submit(st)

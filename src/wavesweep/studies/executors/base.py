@@ -32,14 +32,15 @@ from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
 
-from ...batched import BatchedRun, batch_group
 from ...errors import DiskFull, JobError, RunFailed, RunInterrupted
-from ...io.checkpoint import CheckpointPolicy, ResultExists
 from ...io.atomic import atomic_rename
 from ...io.diskspace import free_bytes, is_no_space
-from ...job import job_from_dict
-from ...run import Simulation
 from ..layout import StudyLayout
+
+# The run's modules (job, run, batched: numpy, scipy, netCDF, numba) are
+# imported where a run is claimed or built, not here: the process that only
+# starts the workers (``work``'s parent) never needs them, and 0.3 s of its
+# imports came before any worker was started.
 
 __all__ = ["Executor", "WorkerSettings", "ClaimedRun", "execute_claim", "execute_batch", "claim_next",
            "failure_reason", "thread_environment", "DISK_FULL"]
@@ -178,7 +179,8 @@ class ClaimedRun:
     def log(self, text: str) -> None:
         _log(self.log_part, text)
 
-    def checkpoint_policy(self, settings: WorkerSettings) -> CheckpointPolicy:
+    def checkpoint_policy(self, settings: WorkerSettings):
+        from ...io.checkpoint import CheckpointPolicy   # lazy: a run's module (see the imports)
         return CheckpointPolicy(Path(self.claim["checkpoint"]), settings.checkpoint_seconds)
 
     def on_sample(self, step, total, rate) -> None:
@@ -215,6 +217,7 @@ class ClaimedRun:
                 return self._ended("lost")
             self.log(f"interrupted at step {outcome.step}; checkpoint kept")
             return self.release(f"interrupted at step {outcome.step}")
+        from ...io.checkpoint import ResultExists   # lazy: a run's module (see the imports)
         if outcome is None or isinstance(outcome, (Path, ResultExists)):
             if isinstance(outcome, ResultExists):
                 self.log("the result already exists; kept as it is")
@@ -295,6 +298,7 @@ def _heartbeats(runs: list[ClaimedRun], settings: WorkerSettings, name: str):
 
 def _queued_job(claim: dict):
     """The resolved job of a claim, checked against its run id."""
+    from ...job import job_from_dict   # lazy: a run's module (see the imports)
     job = job_from_dict(tomllib.loads(claim["job_toml"]))
     if job.run_id != claim["run_id"]:
         raise JobError("", f"the queued job text hashes to {job.run_id}, not {claim['run_id']}")
@@ -308,6 +312,7 @@ def execute_claim(queue, claim: dict, worker: str, settings: WorkerSettings,
     its attempt not counted, because the disk is full).  Never raises for a
     run's own failure; a queue that cannot record the end (its disk full
     even after its reserve was freed) raises DiskFull."""
+    from ...run import Simulation   # lazy: a run's module (see the imports)
     run = ClaimedRun(queue, claim, worker)
     parked = _make_folders([run])
     if parked is not None:
@@ -329,6 +334,7 @@ def execute_claim(queue, claim: dict, worker: str, settings: WorkerSettings,
 def claim_next(queue, worker: str, settings: WorkerSettings) -> list[dict]:
     """The next claims of a worker: one run, or a batch of runs that can be
     stepped together (up to ``settings.batch``); empty when none is queued."""
+    from ...batched import batch_group   # lazy: a run's module (see the imports)
     return queue.claim_batch(worker, max(1, settings.batch), batch_group, share=settings.share,
                              lease_seconds=settings.lease_seconds)
 
@@ -345,6 +351,7 @@ def execute_batch(queue, claims: list[dict], worker: str, settings: WorkerSettin
 
     if len(claims) == 1:
         return [execute_claim(queue, claims[0], worker, settings, stop_requested)]
+    from ...batched import BatchedRun   # lazy: a run's module (see the imports)
     n = len(claims)
     runs = [ClaimedRun(queue, c, worker) for c in claims]
     parked = _make_folders(runs)
