@@ -26,6 +26,7 @@ import scipy.fft
 
 from .io.atomic import write_bytes_atomic
 from .registry import registrar
+from .fftw_rows import row_plans
 from .sine_transform import OddExtensionSine
 
 __all__ = ["Transform", "ScipyTransform", "PyFFTWTransform", "BACKENDS", "AUTO", "PLAIN", "make_transform",
@@ -257,6 +258,18 @@ class PyFFTWTransform(Transform):
         if any(learnt):   # keep what was learnt for the next process
             with _pyfftw_lock:
                 _save_wisdom(pyfftw)
+
+    def row_plans(self):
+        """FFTW's own plans of one row of the buffer, for a compiled loop
+        (:func:`wavesweep.fftw_rows.row_plans`): a 1D periodic grid in
+        double precision, one thread; None otherwise."""
+        if self._dst_axes or len(self._fft_axes) != 1 or self.threads != 1 or self.dtype != np.complex128:
+            return None
+        plans = row_plans(self.buffer)
+        if plans is not None and plans.learnt:
+            with _pyfftw_lock:
+                _save_wisdom(_load_pyfftw())
+        return plans
 
     def _into_buffer(self, a):
         if a is not self.buffer:

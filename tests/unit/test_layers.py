@@ -22,7 +22,7 @@ PACKAGE = Path(__file__).resolve().parents[2] / "src" / "wavesweep"
 LAYERS = [
     ("foundation", ["_version", "errors", "registry", "units", "schema", "io.paths", "io.diskspace", "io.atomic"]),
     ("kernels", ["kernels", "kernels.*"]),
-    ("numerics", ["grid", "fft", "sine_transform", "marginals", "hamiltonian", "potentials", "potentials.*", "eigen",
+    ("numerics", ["grid", "fft", "fftw_rows", "sine_transform", "marginals", "hamiltonian", "potentials", "potentials.*", "eigen",
                   "absorbers", "absorbers.*", "interaction", "imaginary_time", "frame", "surfaces", "states", "propagators", "propagators.*", "observables", "volkov"]),
     ("adequacy", ["adequacy"]),
     ("job", ["job", "job.*"]),

@@ -162,6 +162,48 @@ class SplitOperator(Propagator):
         if self._contact:
             self._kick_static = self._kick_static_contact
             self._no_factor = np.ones((1, 1, 1, 1), self.dtype)
+        self._rows = self._compiled_steps()
+
+    def _compiled_steps(self):
+        """The arguments of :func:`wavesweep.kernels.steps.strang_rows` when
+        this propagator's steps can run in that one compiled loop: Strang
+        steps of a static H on a 1D Cartesian grid in double precision,
+        without a mean field, through FFTW plans of one row
+        (:func:`wavesweep.fftw_rows.row_plans`); None otherwise (the steps
+        then go through the calls of :meth:`_step_static`)."""
+        h, grid = self.hamiltonian, self.grid
+        if (len(self.weights) != 1 or grid.ndim != 1 or grid.radial or h.time_dependent or self._contact
+                or self._renormalise or self.dtype != np.complex128):
+            return None
+        direct = self.transform.in_place() if self.transform is not None else None
+        row_plans = getattr(self.transform, "row_plans", None)
+        if direct is None or row_plans is None:
+            return None
+        first, _, across, last, taus = self._plan
+        kicks = [self._factors[key] for key in (first, across, last)]
+        if any(f is None for f, _ in kicks):
+            return None
+        plans = row_plans()
+        if plans is None:
+            return None
+        n, nb = grid.size, self._nb
+        f = max(a.shape[0] for a, _ in kicks)
+        factors = np.ascontiguousarray(np.stack([np.broadcast_to(a.reshape(-1, n), (f, n)) for a, _ in kicks]))
+        squared = np.array([sq for _, sq in kicks])
+        kinetic = np.ascontiguousarray(self._kinetic_factor(taus[0])[1].reshape(n))
+        layers = self.absorber.layers if self._absorbing else []
+        lo = np.array([layer.slab[0].start for layer in layers], np.int64)
+        hi = np.array([layer.slab[0].stop for layer in layers], np.int64)
+        offset = np.concatenate([[0], np.cumsum(hi - lo)[:-1]]).astype(np.int64) if layers else lo
+        per = [self._losses.get(key) for key in (first, across, last)]
+        if layers and any(x is None for x in per):
+            return None
+        g = max((w.shape[0] for ws in per for w in ws), default=1) if layers else 1
+        losses = (np.ascontiguousarray(np.stack([np.concatenate([np.broadcast_to(w.reshape(w.shape[0], -1),
+                                                                                  (g, w[0].size)) for w in ws], axis=1)
+                                                 for ws in per]))
+                  if layers else np.zeros((3, 1, 0)))
+        return (factors, squared, kinetic, plans, lo, hi, offset, losses)
 
     def load(self, psi):
         direct = self.transform.in_place() if self._radial_basis is None and self.transform else None
@@ -477,6 +519,16 @@ class SplitOperator(Propagator):
         first, inner, across, last, taus = self._plan
         kick, nd = self._kick_static, self.grid.ndim
         direct = self.transform.in_place() if self._radial_basis is None else None
+        if self._rows is not None:   # the whole call in one compiled loop (kernels.steps)
+            from ..kernels.steps import strang_rows   # lazy: as the other kernels (numba), with the first step
+            buf = direct[2]
+            if psi is not buf:
+                np.copyto(buf, psi)
+            factors, squared, kinetic, plans, lo, hi, offset, losses = self._rows
+            strang_rows(buf.reshape(self._nb, -1), factors, squared, kinetic, int(nsteps), plans.execute,
+                        plans.forward, plans.backward, lo, hi, offset, losses,
+                        self.absorbed.reshape(self._nb, -1), float(self._dv))
+            return buf
         if direct is not None:
             fwd, bwd, buf = direct
             if psi is not buf:
