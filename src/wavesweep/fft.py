@@ -266,9 +266,10 @@ class PyFFTWTransform(Transform):
         if self._dst_axes or len(self._fft_axes) != 1 or self.threads != 1 or self.dtype != np.complex128:
             return None
         plans = row_plans(self.buffer)
-        if plans is not None and plans.learnt:
+        if plans is not None and plans.learnt:   # keep what was learnt for the next process
+            pyfftw = _load_pyfftw()
             with _pyfftw_lock:
-                _save_wisdom(_load_pyfftw())
+                _save_wisdom(pyfftw)
         return plans
 
     def _into_buffer(self, a):

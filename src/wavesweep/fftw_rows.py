@@ -34,7 +34,9 @@ __all__ = ["RowPlans", "row_plans"]
 FFTW_FORWARD, FFTW_BACKWARD = -1, 1
 FFTW_MEASURE, FFTW_DESTROY_INPUT, FFTW_UNALIGNED, FFTW_WISDOM_ONLY = 0, 1, 2, 1 << 21
 
-_lock = threading.Lock()
+# reentrant: a plan destroyed by the garbage collector (weakref.finalize) may take it inside a
+# planning block of the same thread
+_lock = threading.RLock()
 _library = None   # (the double-precision library, its plan_with_nthreads or None), once found
 _searched = False
 
