@@ -744,8 +744,7 @@ def band_window(duration: float, sample_step: float) -> tuple[float, float]:
 
 
 def lanczos_recurrence(h, psi, threshold: float = DEFAULT_MIN_WEIGHT, resolution: float = 0.0,
-                       width: float | None = None, max_steps: int = BAND_STEPS, ground: bool = True,
-                       transform=None):
+                       width: float | None = None, max_steps: int = BAND_STEPS, ground: bool = True):
     """``(alphas, betas, exhausted, spectrum_min, spectrum_max, ground)``:
     the Lanczos steps of H (with the eigensolvers' walls,
     :func:`walled_potential`) from psi that :func:`energy_band` takes for
@@ -757,26 +756,11 @@ def lanczos_recurrence(h, psi, threshold: float = DEFAULT_MIN_WEIGHT, resolution
     --from`` needs no H; other arguments may need steps not recorded, and
     then give a looser band).  ``max_steps`` caps the steps and
     ``ground=False`` leaves the ground level out (the band is then looser:
-    a run bounds what it spends on this).  ``transform``: a complex128
-    :class:`~wavesweep.fft.Transform` of the grid (a planned one) for T, in
-    place of scipy.fft's unplanned calls (a run's 40 steps at 4096 points
-    spent ~4 ms in them)."""
+    a run bounds what it spends on this)."""
     v, _ = walled_potential(h, None)
     lo = float(v.min()) + float(h.kinetic.min())
     hi = float(v.max()) + float(h.kinetic.max())
-    if transform is None:
-        def apply(x):
-            return h.apply_static(x, potential=v)
-    else:
-        kinetic = h.kinetic
-
-        def apply(x):   # (T + V) x as apply_static, T through the transform's own plans
-            c = transform.transform_of(x)
-            c *= kinetic
-            out = np.array(transform.backward(c), dtype=complex)
-            out += v * x
-            return out
-    lanczos = _Lanczos(apply, psi, hi - lo + 1e-300)
+    lanczos = _Lanczos(lambda x: h.apply_static(x, potential=v), psi, hi - lo + 1e-300)
     found = []
 
     def ground_level():

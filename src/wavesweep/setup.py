@@ -469,9 +469,7 @@ def analysis_record(setup, warnings: bool = True, lanczos: bool = True) -> dict:
         # the ground level only where it is a dense eigh of a few thousand points
         steps = min(BAND_STEPS, max(2 * BAND_CHUNK, setup.total_steps // 10))
         recorded = lanczos_recurrence(setup.hamiltonian, setup.psi0, DEFAULT_MIN_WEIGHT, resolution, width,
-                                      max_steps=steps, ground=grid.size <= DENSE_MAX_POINTS,
-                                      transform=make_transform(grid, setup.fft_backend, np.complex128,
-                                                               setup.threads))
+                                      max_steps=steps, ground=grid.size <= DENSE_MAX_POINTS)
         out["lanczos"] = recorded
         alphas, betas, exhausted, lo, hi, ground = recorded
         attrs.update({"lanczos_exhausted": int(exhausted), "spectrum_min": float(lo / ef),
