@@ -194,10 +194,27 @@ def bench_whole_run(repeats: int):
                 p2 = timed(pair, inner)
                 ratios.append(2 * t_run / (p1 + p2))
                 per_step.append(t_run)
-            line.append(f"{precision} {statistics.median(ratios):.2f}x ({statistics.median(per_step) * 1e6:.1f} us)")
+            # the marginal cost of a step in a whole run (samples and snapshots included, the run's fixed
+            # cost not): the same job 10x longer, the difference of the two runs over the steps added
+            long_job = job_for(grid, precision, duration=200.0)
+            Simulation(long_job).run(tmp, progress=False)
+            slopes = []
+            for _ in range(max(1, repeats // 2)):
+                p1 = timed(pair, inner)
+                t0 = time.perf_counter()
+                Simulation(job).run(tmp, progress=False)
+                t1 = time.perf_counter()
+                Simulation(long_job).run(tmp, progress=False)
+                t2 = time.perf_counter()
+                p2 = timed(pair, inner)
+                slope = ((t2 - t1) - (t1 - t0)) / (9 * steps)
+                slopes.append(2 * slope / (p1 + p2))
+            line.append(f"{precision} {statistics.median(ratios):.2f}x ({statistics.median(per_step) * 1e6:.1f} us), "
+                        f"{statistics.median(slopes):.2f}x a step added")
         print(f"whole run, 1D 4096, observables every 10 steps, a snapshot every 20, {steps} steps, in-process "
               f"and warm ({floor.name}, {floor.threads} thread(s)), per step / bare FFT pair: {'; '.join(line)} "
-              f"(medians over {repeats} rounds)", flush=True)
+              f"(medians over {repeats} rounds; 'a step added': the run 10x longer, its extra time over its extra "
+              "steps, the fixed cost left out)", flush=True)
 
 
 def bench_fixed_cost(repeats: int):
@@ -290,8 +307,9 @@ def bench_study(repeats: int, workers: int = 2):
           f"({steps} bare FFT pairs a run, {workers} cores; {floor.name}, {floor.threads} thread(s)): "
           f"{ratio:.2f}x the floor rate (target 0.5; median over {repeats}; ratios "
           f"{', '.join(f'{r:.2f}' for r in ratios)}); work took {statistics.median(walls):.2f} s, "
-          f"{statistics.median(empties):.2f} s again on the drained queue; submit {statistics.median(submits):.2f} s "
-          "apart", flush=True)
+          f"{statistics.median(empties):.2f} s again on the drained queue (its start-up: without it "
+          f"{statistics.median(r * w / max(w - e, 1e-9) for r, w, e in zip(ratios, walls, empties)):.2f}x); "
+          f"submit {statistics.median(submits):.2f} s apart", flush=True)
 
 
 BATCH_JOB = {

@@ -261,9 +261,9 @@ class PyFFTWTransform(Transform):
 
     def row_plans(self):
         """FFTW's own plans of one row of the buffer, for a compiled loop
-        (:func:`wavesweep.fftw_rows.row_plans`): a 1D periodic grid in
-        double precision, one thread; None otherwise."""
-        if self._dst_axes or len(self._fft_axes) != 1 or self.threads != 1 or self.dtype != np.complex128:
+        (:func:`wavesweep.fftw_rows.row_plans`): a 1D periodic grid, one
+        thread; None otherwise."""
+        if self._dst_axes or len(self._fft_axes) != 1 or self.threads != 1:
             return None
         plans = row_plans(self.buffer)
         if plans is not None and plans.learnt:   # keep what was learnt for the next process

@@ -4,9 +4,10 @@ A split-operator step of a 1D grid is two FFTs and two multiplications of a
 few thousand points; through Python each call costs ~1 us, and a 2048-point
 step spent a third of its time between calls.  A numba loop can call FFTW
 itself: :func:`row_plans` makes in-place forward and backward plans of one
-row (``n`` complex128 points) with FFTW's C interface, in the very library
+row (``n`` complex128 or complex64 points) with FFTW's C interface, in the very library
 pyFFTW loaded (so the process's wisdom serves them), and hands out the
-addresses of the plans and of ``fftw_execute_dft`` (FFTW's new-array
+addresses of the plans and of ``fftw_execute_dft`` (``fftwf_`` in single
+precision: FFTW's new-array
 execute, safe to call from several threads at once).  The loop
 (:func:`wavesweep.kernels.steps.strang_rows`) runs every row of a batch
 through the same two plans, one member at a time while its row is in cache.
@@ -37,23 +38,25 @@ FFTW_MEASURE, FFTW_DESTROY_INPUT, FFTW_UNALIGNED, FFTW_WISDOM_ONLY = 0, 1, 2, 1 
 # reentrant: a plan destroyed by the garbage collector (weakref.finalize) may take it inside a
 # planning block of the same thread
 _lock = threading.RLock()
-_library = None   # (the double-precision library, its plan_with_nthreads or None), once found
-_searched = False
+# per precision ("fftw" double, "fftwf" single): (the library, its planner's thread-count setter or
+# None), or None when it cannot be reached; looked for once
+_libraries: dict = {}
 
 
 class RowPlans:
     """In-place forward and backward FFTW plans of one row of ``n`` points:
     ``execute``, ``forward`` and ``backward`` are addresses (integers) for
     a compiled loop; ``learnt`` says whether planning measured a transform
-    the process's wisdom did not hold.  The plans are destroyed with this
-    object."""
+    the process's wisdom did not hold.  ``prefix``: "fftw" (complex128) or
+    "fftwf" (complex64).  The plans are destroyed with this object."""
 
-    def __init__(self, lib, n: int, row: np.ndarray, aligned: bool, nthreads):
+    def __init__(self, lib, prefix: str, n: int, row: np.ndarray, aligned: bool, nthreads):
         vp = ctypes.c_void_p
-        lib.fftw_plan_dft_1d.restype = vp
-        lib.fftw_plan_dft_1d.argtypes = [ctypes.c_int, vp, vp, ctypes.c_int, ctypes.c_uint]
-        lib.fftw_destroy_plan.argtypes = [vp]
-        lib.fftw_destroy_plan.restype = None
+        plan = getattr(lib, f"{prefix}_plan_dft_1d")
+        plan.restype = vp
+        plan.argtypes = [ctypes.c_int, vp, vp, ctypes.c_int, ctypes.c_uint]
+        destroy = getattr(lib, f"{prefix}_destroy_plan")
+        destroy.argtypes, destroy.restype = [vp], None
         saved = row.copy()       # planning overwrites the row
         flags = FFTW_MEASURE | FFTW_DESTROY_INPUT | (0 if aligned else FFTW_UNALIGNED)
         plans, self.learnt = [], False
@@ -61,23 +64,23 @@ class RowPlans:
             if nthreads is not None:
                 nthreads(1)      # pyFFTW sets the planner's thread count for each plan of its own
             for sign in (FFTW_FORWARD, FFTW_BACKWARD):
-                p = lib.fftw_plan_dft_1d(n, row.ctypes.data, row.ctypes.data, sign, flags | FFTW_WISDOM_ONLY)
+                p = plan(n, row.ctypes.data, row.ctypes.data, sign, flags | FFTW_WISDOM_ONLY)
                 if not p:
-                    p = lib.fftw_plan_dft_1d(n, row.ctypes.data, row.ctypes.data, sign, flags)
+                    p = plan(n, row.ctypes.data, row.ctypes.data, sign, flags)
                     self.learnt = True
                 plans.append(p)
         np.copyto(row, saved)
         if not all(plans):
             raise RuntimeError("FFTW made no plan")
         self.forward, self.backward = plans
-        self.execute = ctypes.cast(lib.fftw_execute_dft, ctypes.c_void_p).value
-        weakref.finalize(self, _destroy, lib, tuple(plans))
+        self.execute = ctypes.cast(getattr(lib, f"{prefix}_execute_dft"), ctypes.c_void_p).value
+        weakref.finalize(self, _destroy, destroy, tuple(plans))
 
 
-def _destroy(lib, plans) -> None:
+def _destroy(destroy, plans) -> None:
     with _lock:
         for p in plans:
-            lib.fftw_destroy_plan(p)
+            destroy(p)
 
 
 def _loaded_objects() -> list[str]:
@@ -88,55 +91,63 @@ def _loaded_objects() -> list[str]:
         return []
 
 
-def _find_library():
-    """FFTW's double-precision library as pyFFTW loaded it, and the
-    planner's thread-count setter of its threads library (None if none)."""
-    global _library, _searched
+def _find_library(prefix: str):
+    """FFTW's library of one precision (``prefix`` "fftw": libfftw3,
+    "fftwf": libfftw3f) as pyFFTW loaded it, and the planner's thread-count
+    setter of its threads library (None if none); None if not found."""
     with _lock:
-        if _searched:
-            return _library
-        _searched = True
+        if prefix in _libraries:
+            return _libraries[prefix]
+        _libraries[prefix] = None
+        stem = "libfftw3" + prefix[4:]      # libfftw3, libfftw3f
         paths = _loaded_objects()
 
-        def named(stem):
-            return [p for p in paths if os.path.basename(p).startswith(stem)]
+        def named(start):
+            return [p for p in paths if os.path.basename(p).split(".")[0].split("-")[0] == start]
 
-        plain = [p for p in named("libfftw3") if os.path.basename(p).split(".")[0].split("-")[0] == "libfftw3"]
+        plain = named(stem)
         if not plain:
             return None
         try:
             lib = ctypes.CDLL(plain[0])
-            lib.fftw_execute_dft, lib.fftw_plan_dft_1d, lib.fftw_destroy_plan, lib.fftw_alignment_of
+            for name in ("execute_dft", "plan_dft_1d", "destroy_plan", "alignment_of"):
+                getattr(lib, f"{prefix}_{name}")
         except (OSError, AttributeError):
             return None
         nthreads = None
-        for path in named("libfftw3_omp") + named("libfftw3_threads"):
+        for path in named(stem + "_omp") + named(stem + "_threads"):
             try:
-                setter = ctypes.CDLL(path).fftw_plan_with_nthreads
+                setter = getattr(ctypes.CDLL(path), f"{prefix}_plan_with_nthreads")
             except (OSError, AttributeError):
                 continue
             setter.argtypes, setter.restype = [ctypes.c_int], None
             nthreads = setter
             break
-        lib.fftw_alignment_of.argtypes, lib.fftw_alignment_of.restype = [ctypes.c_void_p], ctypes.c_int
-        _library = (lib, nthreads)
-        return _library
+        align = getattr(lib, f"{prefix}_alignment_of")
+        align.argtypes, align.restype = [ctypes.c_void_p], ctypes.c_int
+        _libraries[prefix] = (lib, nthreads)
+        return _libraries[prefix]
+
+
+_PREFIX = {np.dtype(np.complex128): "fftw", np.dtype(np.complex64): "fftwf"}
 
 
 def row_plans(buffer: np.ndarray) -> RowPlans | None:
-    """Plans of one row of ``buffer`` (complex128, shape (n,) or (rows,
-    n), C-contiguous; pyFFTW imported), or None where FFTW's library
-    cannot be reached this way."""
-    if buffer.dtype != np.complex128 or not buffer.flags.c_contiguous or buffer.ndim not in (1, 2):
+    """Plans of one row of ``buffer`` (complex128 or complex64, shape (n,)
+    or (rows, n), C-contiguous; pyFFTW imported), or None where FFTW's
+    library cannot be reached this way."""
+    prefix = _PREFIX.get(buffer.dtype)
+    if prefix is None or not buffer.flags.c_contiguous or buffer.ndim not in (1, 2):
         return None
-    found = _find_library()
+    found = _find_library(prefix)
     if found is None:
         return None
     lib, nthreads = found
+    align = getattr(lib, f"{prefix}_alignment_of")
     rows = buffer.reshape(-1, buffer.shape[-1])
-    first = lib.fftw_alignment_of(rows[0].ctypes.data)
-    aligned = all(lib.fftw_alignment_of(r.ctypes.data) == first for r in rows[1:])
+    first = align(rows[0].ctypes.data)
+    aligned = all(align(r.ctypes.data) == first for r in rows[1:])
     try:
-        return RowPlans(lib, rows.shape[1], rows[0], aligned, nthreads)
+        return RowPlans(lib, prefix, rows.shape[1], rows[0], aligned, nthreads)
     except RuntimeError:
         return None

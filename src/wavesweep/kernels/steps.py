@@ -5,7 +5,8 @@
 transforms (called through their addresses, see :mod:`wavesweep.fftw_rows`)
 and the kinetic phases, one member at a time, so that a member's row and
 its factors stay in cache across its steps; the absorbing layers' books are
-kept at every kick as :func:`wavesweep.kernels.split.layer_loss` keeps them.
+kept at every kick as :func:`wavesweep.kernels.split.layer_loss` keeps them,
+and a single-precision run's norm as its measured kicks keep it.
 Through Python a 2048-point step cost 1.5-1.7 bare FFT pairs, a third of it
 between calls; the loop also runs without the GIL, so a batch's lanes step
 in parallel.  The arithmetic per point is the plain loop's (a member's
@@ -53,7 +54,9 @@ def _kick(row, factor, squared):
 
 @numba.njit(cache=True, nogil=True, inline="always")
 def _book(row, lo, hi, offset, weights, books, dv):
-    """books[layer] += sum over the layer's slab of |psi|^2 w, times dv."""
+    """books[layer] += sum over the layer's slab of |psi|^2 w, times dv;
+    returns the sum over the layers of what they took (no dv)."""
+    lost = 0.0
     for layer in range(lo.size):
         s = 0.0
         o = offset[layer] - lo[layer]
@@ -61,15 +64,36 @@ def _book(row, lo, hi, offset, weights, books, dv):
             z = row[k]
             s += (z.real * z.real + z.imag * z.imag) * weights[o + k]
         books[layer] += s * dv
+        lost += s
+    return lost
 
 
 @numba.njit(cache=True, nogil=True, fastmath={"reassoc", "contract"})
 def _layer_sums(row, lo, hi, offset, weights, books, dv):
-    _book(row, lo, hi, offset, weights, books, dv)
+    return _book(row, lo, hi, offset, weights, books, dv)
+
+
+@numba.njit(cache=True, nogil=True)
+def _kick_measured(row, factor, squared, scale):
+    """As :func:`wavesweep.kernels.split.kick_measured` on one row (the same
+    arithmetic, IEEE order): (sum |psi|^2 before, after), psi *= f scale."""
+    sb = 0.0
+    sa = 0.0
+    for k in range(row.size):
+        f = factor[k]
+        if squared:
+            f = f * f
+        z = row[k]
+        sb += z.real * z.real + z.imag * z.imag
+        z = z * f * scale
+        row[k] = z
+        sa += z.real * z.real + z.imag * z.imag
+    return sb, sa
 
 
 def strang_rows(psi, factors, squared, kinetic, nsteps, execute, forward, backward,
-                lo, hi, offset, losses, books, dv):
+                lo, hi, offset, losses, books, dv, measure_every, count, scale, expected, has_expected,
+                lost_since):
     """``nsteps`` Strang steps of each row of ``psi`` (members, n), in
     place: the first half kick ``factors[0]``, then per step the kinetic
     step (FFTW ``forward``, times ``kinetic`` (n,), which holds the inverse
@@ -78,7 +102,16 @@ def strang_rows(psi, factors, squared, kinetic, nsteps, execute, forward, backwa
     one (shared) or one per member; ``squared[j]``: kick j multiplies by
     the factor squared.  Absorbing layers (slabs ``lo[l]:hi[l]``): before
     each kick j, books[b, l] += sum |psi|^2 w dv over the slab, the weights
-    ``losses[j, f, offset[l] + k - lo[l]]``; no layers: ``lo`` empty."""
+    ``losses[j, f, offset[l] + k - lo[l]]``; no layers: ``lo`` empty.
+
+    Single precision keeps its norm as :class:`~wavesweep.propagators.
+    split_operator.SplitOperator` does: with ``measure_every`` > 0 the kick
+    whose number (``count`` kicks came before this call) is a multiple of
+    it is measured, times ``scale[b]``; then ``expected[b]`` (psi's own
+    norm at the first measured kick unless ``has_expected``) less what the
+    layers took since (``lost_since[b]``) gives the next scale, sqrt(
+    expected / after).  All updated in place; a member's numbers depend on
+    no other member."""
     nb, n = psi.shape
     per_member = factors.shape[1] > 1
     per_member_loss = losses.shape[1] > 1
@@ -87,17 +120,29 @@ def strang_rows(psi, factors, squared, kinetic, nsteps, execute, forward, backwa
         p = row.ctypes.data
         fb = b if per_member else 0
         lb = b if per_member_loss else 0
-        if lo.size:
-            _layer_sums(row, lo, hi, offset, losses[0, lb], books[b], dv)
-        _kick(row, factors[0, fb], squared[0])
-        for s in range(nsteps):
-            _execute(execute, forward, p, p)
-            for k in range(n):
-                row[k] *= kinetic[k]
-            _execute(execute, backward, p, p)
-            j = 1 if s < nsteps - 1 else 2
+        have = has_expected
+        for s in range(nsteps + 1):
+            if s > 0:
+                _execute(execute, forward, p, p)
+                for k in range(n):
+                    row[k] *= kinetic[k]
+                _execute(execute, backward, p, p)
+            j = 0 if s == 0 else (1 if s < nsteps else 2)
+            lost = 0.0
             if lo.size:
-                _layer_sums(row, lo, hi, offset, losses[j, lb], books[b], dv)
+                lost = _layer_sums(row, lo, hi, offset, losses[j, lb], books[b], dv)
+            if measure_every > 0:
+                lost_since[b] += lost
+                if (count + s) % measure_every == 0:
+                    before, after = _kick_measured(row, factors[j, fb], squared[j], scale[b])
+                    if not have:
+                        expected[b] = before
+                        have = True
+                    expected[b] = expected[b] - lost_since[b]
+                    lost_since[b] = 0.0
+                    want = expected[b]
+                    scale[b] = np.sqrt(want / after) if (after > 0 and want > 0) else 1.0
+                    continue
             _kick(row, factors[j, fb], squared[j])
 
 

@@ -167,13 +167,13 @@ class SplitOperator(Propagator):
     def _compiled_steps(self):
         """The arguments of :func:`wavesweep.kernels.steps.strang_rows` when
         this propagator's steps can run in that one compiled loop: Strang
-        steps of a static H on a 1D Cartesian grid in double precision,
-        without a mean field, through FFTW plans of one row
-        (:func:`wavesweep.fftw_rows.row_plans`); None otherwise (the steps
-        then go through the calls of :meth:`_step_static`)."""
+        steps of a static H on a 1D Cartesian grid without a mean field,
+        through FFTW plans of one row (:func:`wavesweep.fftw_rows.row_plans`;
+        single precision keeps its measured kicks there); None otherwise
+        (the steps then go through the calls of :meth:`_step_static`)."""
         h, grid = self.hamiltonian, self.grid
         if (len(self.weights) != 1 or grid.ndim != 1 or grid.radial or h.time_dependent or self._contact
-                or self._renormalise or self.dtype != np.complex128):
+                or self.dtype not in (np.complex128, np.complex64)):
             return None
         direct = self.transform.in_place() if self.transform is not None else None
         row_plans = getattr(self.transform, "row_plans", None)
@@ -525,9 +525,23 @@ class SplitOperator(Propagator):
             if psi is not buf:
                 np.copyto(buf, psi)
             factors, squared, kinetic, plans, lo, hi, offset, losses = self._rows
-            strang_rows(buf.reshape(self._nb, -1), factors, squared, kinetic, int(nsteps), plans.execute,
+            nb = self._nb
+            # single precision's norm keeping (see _measuring, _renormalised), per member
+            lost_since = np.broadcast_to(np.asarray(self._lost_since, float), (nb,)).copy()
+            expected = (np.zeros(nb) if self._norm_expected is None
+                        else np.array(self._norm_expected, float).reshape(nb))
+            scale = np.array(self._scale, float).reshape(nb)
+            strang_rows(buf.reshape(nb, -1), factors, squared, kinetic, int(nsteps), plans.execute,
                         plans.forward, plans.backward, lo, hi, offset, losses,
-                        self.absorbed.reshape(self._nb, -1), float(self._dv))
+                        self.absorbed.reshape(nb, -1), float(self._dv),
+                        RENORMALISE_EVERY if self._renormalise else 0, self._kick_count, scale, expected,
+                        self._norm_expected is not None, lost_since)
+            if self._renormalise:
+                measured = any((self._kick_count + k) % RENORMALISE_EVERY == 0 for k in range(int(nsteps) + 1))
+                self._kick_count += int(nsteps) + 1
+                self._scale, self._lost_since = scale, (lost_since if nb > 1 else float(lost_since[0]))
+                if measured:
+                    self._norm_expected = expected
             return buf
         if direct is not None:
             fwd, bwd, buf = direct
