@@ -374,9 +374,9 @@ def classical_reach(setup, n_random: int = 96, seed: int = 1, compiled: bool = T
     Gaussian part is its Wigner function (Gaussian in x and p, exactly) at
     a stencil of +/- 3 sigma_x and +/- 3, 6 sigma_p plus random samples;
     other states use their measured moments.  None on a radial grid (the
-    Coulomb singularity has no classical momentum bound).  A static V runs
-    the compiled loop (``compiled=False``: this array version, the same
-    steps)."""
+    Coulomb singularity has no classical momentum bound).  A static V whose
+    force tables fit (ForceField.grad_static) runs the compiled loop
+    (``compiled=False``: this array version, the same steps)."""
     grid = setup.grid
     if grid.radial:
         return None
@@ -500,6 +500,7 @@ def _static_reach(setup, force, x, p, energy, random, layers, omega, lo_seen, hi
     alive = ~_inside_layers(x, layers)
     peak = np.abs(p)
     entry = np.zeros_like(p)
+    entry_step = np.zeros(len(x), np.int64)
     hit = np.zeros(len(x), np.int64)
     lo_seen, hi_seen = np.array(lo_seen, float), np.array(hi_seen, float)
     edges = np.zeros(nd, np.bool_)
@@ -510,15 +511,18 @@ def _static_reach(setup, force, x, p, energy, random, layers, omega, lo_seen, hi
         np.array([a.min for a in axes], float), np.array([a.max for a in axes], float),
         np.array([a.length for a in axes], float), layer_axis, layer_side, layer_edge,
         float(setup.duration), float(min(a.dx for a in axes)), float(omega), float(4 * MAX_CLASSICAL_STEPS),
-        4 * MAX_CLASSICAL_STEPS, alive, peak, f, entry, hit, lo_seen, hi_seen, edges)
-    arrivals = {}
+        4 * MAX_CLASSICAL_STEPS, alive, peak, f, entry, entry_step, hit, lo_seen, hi_seen, edges)
+    found = []
     for n, (face, (i, _, _)) in enumerate(faces):
         took = (hit >> n) & 1 == 1
         if took.any():
             e = entry[took, i] ** 2 / (2 * m)
             weighted = e[random[took]]
             # as classical_reach: the slow end the Wigner samples' 5th percentile, else the slowest tail's
-            arrivals[face] = (float(np.percentile(weighted, 5)) if weighted.size else float(e.min()), float(e.max()))
+            found.append((int(entry_step[took].min()), n, face,
+                          (float(np.percentile(weighted, 5)) if weighted.size else float(e.min()), float(e.max()))))
+    # in the order the faces were first reached (the array loop's order), faces reached at one step in layer order
+    arrivals = {face: window for _, _, face, window in sorted(found)}
     return Reach(peak.max(axis=0), peak[0], peak[random], arrivals, list(zip(lo_seen, hi_seen)),
                  [bool(b) for b in edges], int(steps))
 

@@ -26,7 +26,7 @@ import scipy.fft
 
 from .io.atomic import write_bytes_atomic
 from .registry import registrar
-from .fftw_rows import row_plans
+from .fftw_rows import PLANNER_LOCK, row_plans
 from .sine_transform import OddExtensionSine
 
 __all__ = ["Transform", "ScipyTransform", "PyFFTWTransform", "BACKENDS", "AUTO", "PLAIN", "make_transform",
@@ -160,11 +160,12 @@ def _plan(pyfftw, buffer, axes, direction, effort, threads):
             _load_wisdom(pyfftw)
             _wisdom_read = True
     flags = (effort, "FFTW_DESTROY_INPUT")
-    try:
-        return pyfftw.FFTW(buffer, buffer, axes=axes, direction=direction, flags=(*flags, "FFTW_WISDOM_ONLY"),
-                           threads=threads), False
-    except RuntimeError:   # no wisdom for this transform: plan it
-        return pyfftw.FFTW(buffer, buffer, axes=axes, direction=direction, flags=flags, threads=threads), True
+    with PLANNER_LOCK:   # never beside the row plans of fftw_rows (FFTW's planner is not thread-safe)
+        try:
+            return pyfftw.FFTW(buffer, buffer, axes=axes, direction=direction,
+                               flags=(*flags, "FFTW_WISDOM_ONLY"), threads=threads), False
+        except RuntimeError:   # no wisdom for this transform: plan it
+            return pyfftw.FFTW(buffer, buffer, axes=axes, direction=direction, flags=flags, threads=threads), True
 
 
 # pyFFTW is optional: a faster FFT for periodic axes.  It is registered when
@@ -243,6 +244,7 @@ class PyFFTWTransform(Transform):
     def __init__(self, grid, dtype=np.complex128, threads=None, members=None, effort="FFTW_MEASURE"):
         super().__init__(grid, dtype, threads, members)
         pyfftw = _load_pyfftw()
+        self.effort = effort
         self.buffer = pyfftw.empty_aligned(self.shape, dtype=self.dtype)
         self._fwd = self._bwd = self._sine = None
         learnt = []
@@ -262,11 +264,12 @@ class PyFFTWTransform(Transform):
     def row_plans(self):
         """FFTW's own plans of one row of the buffer, for a compiled loop
         (:func:`wavesweep.fftw_rows.row_plans`): a 1D periodic grid, one
-        thread; None otherwise."""
+        thread, built in the main thread; None otherwise."""
         if self._dst_axes or len(self._fft_axes) != 1 or self.threads != 1:
             return None
-        plans = row_plans(self.buffer)
+        plans = row_plans(self.buffer, self.effort)
         if plans is not None and plans.learnt:   # keep what was learnt for the next process
+            plans.learnt = False                 # (the plans are kept: saved once)
             pyfftw = _load_pyfftw()
             with _pyfftw_lock:
                 _save_wisdom(pyfftw)

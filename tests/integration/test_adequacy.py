@@ -334,5 +334,6 @@ def test_the_compiled_classical_loop_takes_the_array_versions_steps(case):
     for name in ("momentum", "centre", "sampled", "visited", "edges_reached"):
         np.testing.assert_array_equal(np.asarray(getattr(compiled, name)), np.asarray(getattr(array, name)), name)
     assert compiled.arrivals == array.arrivals
+    assert list(compiled.arrivals) == list(array.arrivals)   # in the order the faces were first reached
     if "no layers" not in case:
         assert array.arrivals   # the case exercises the layers' bookkeeping

@@ -124,7 +124,7 @@ def test_a_whole_kick_as_the_half_kick_squared(monkeypatch):
     monkeypatch.setattr(split_operator, "SQUARED_ARRAY_MAX", 512)
     setup = Setup(make_job(DEVICE))
     prop = setup.make_propagator()
-    assert prop._rows is not None and prop._rows[1].any()
+    assert prop._rows is not None and prop._rows[2]   # the whole kick: the half kick's array squared
     psi_c, books_c = stepped(setup, True)
     psi_p, books_p = stepped(setup, False)
     np.testing.assert_allclose(psi_c, psi_p, rtol=0, atol=1e-13)
@@ -137,3 +137,43 @@ def test_what_the_loop_cannot_take_goes_through_the_calls():
                    {"grid": {"x": {**DEVICE["grid"]["x"], "boundary": "box"}}}):
         table = {**copy.deepcopy(DEVICE), **change}
         assert Setup(make_job(table)).make_propagator()._rows is None, change
+
+
+def test_a_free_packet_takes_the_loop_and_spreads_as_the_closed_form():
+    """No potential and no absorber: the kicks multiply by one.  Reference:
+    the free Gaussian's closed form, |psi(x, t)|^2 with sigma(t)^2 =
+    sigma0^2 (1 + (t / (2 m sigma0^2))^2) and centre x0 + p0 t / m
+    (any quantum mechanics text, e.g. Griffiths sec. 2.4; from memory)."""
+    table = {"grid": {"x": {"min": -100.0, "max": 100.0, "points": 2048}},
+             "packet": {"center": -10.0, "width": 2.0, "momentum": 1.0},
+             "evolve": {"dt": 0.05, "duration": 20.0, "fft": "pyfftw", "threads": 1}}
+    setup = Setup(make_job(table))
+    prop = setup.make_propagator()
+    assert prop._rows is not None
+    psi = np.array(prop.step(prop.load(setup.psi0), 400))
+    t = 20.0
+    x = setup.grid.axes[0].coordinates
+    dens = np.abs(psi) ** 2
+    sigma_x = np.sqrt(np.sum(dens * (x - np.sum(dens * x) / np.sum(dens)) ** 2) / np.sum(dens))
+    x_mean = np.sum(dens * x) / np.sum(dens)
+    assert abs(x_mean - (-10.0 + t)) < 1e-9
+    sigma0 = float(np.sqrt(np.sum(np.abs(setup.psi0) ** 2 * (x + 10.0) ** 2) / np.sum(np.abs(setup.psi0) ** 2)))
+    expected = sigma0 * np.sqrt(1.0 + (t / (2.0 * sigma0 ** 2)) ** 2)
+    assert abs(sigma_x - expected) < 1e-9 * expected
+
+
+def test_plans_are_made_only_by_the_main_thread():
+    """FFTW's planner is not thread-safe and pyFFTW's lock is out of reach:
+    another thread gets no row plans (its runs take the plain calls)."""
+    import threading
+
+    import pyfftw
+
+    from wavesweep.fftw_rows import row_plans
+    buf = pyfftw.empty_aligned((2, 512), np.complex128)
+    assert row_plans(buf) is not None
+    got = []
+    worker = threading.Thread(target=lambda: got.append(row_plans(buf)))
+    worker.start()
+    worker.join()
+    assert got == [None]

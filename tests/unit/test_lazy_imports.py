@@ -76,3 +76,23 @@ def test_reading_results_loads_no_stepping_code(tmp_path):
     out = subprocess.run([sys.executable, "-c", READER_PROBE], capture_output=True, text=True, check=True,
                          cwd=tmp_path, env={**os.environ, "WAVESWEEP_CACHE": str(tmp_path)})
     assert json.loads(out.stdout.strip().splitlines()[-1]) == []
+
+
+PARENT_PROBE = r"""
+import json, sys
+from wavesweep.cli import _parser
+from wavesweep.studies.api import work
+from wavesweep.studies.executors.local import LocalExecutor
+print(json.dumps([m for m in ("numpy", "scipy", "numba", "netCDF4", "pyfftw", "wavesweep.run", "wavesweep.job",
+                              "wavesweep.batched", "wavesweep.check", "wavesweep.study", "wavesweep.io.checkpoint")
+                  if m in sys.modules]))
+"""
+
+
+def test_the_process_that_starts_workers_loads_no_run_modules(tmp_path):
+    """`wavesweep work`'s parent only starts worker processes (spawned:
+    each imports what runs need itself): its imports held up the first
+    worker by 0.3 s, so it loads none of the run's modules or numerics."""
+    out = subprocess.run([sys.executable, "-c", PARENT_PROBE], capture_output=True, text=True, check=True,
+                         cwd=tmp_path, env={**os.environ, "WAVESWEEP_CACHE": str(tmp_path)})
+    assert json.loads(out.stdout.strip().splitlines()[-1]) == []

@@ -103,13 +103,13 @@ def _beyond(x, j, f, layer_axis, layer_side, layer_edge):
 @numba.njit(cache=True, nogil=True)
 def static_reach(x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
                  layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps, max_steps,
-                 alive, peak, f, entry, faces_hit, lo_seen, hi_seen, edges_reached):
+                 alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen, edges_reached):
     """Integrate the trajectories ``x``, ``p`` (n, nd; bohr, hbar/bohr) of
     a static potential ``v`` (hartree, shape (1, grid padded to 3D)) with force
     tables ``grads`` (nd, padded grid: dV/dx_i) from t = 0 over
     ``duration``; updated in place: ``x``, ``p``, ``f`` (the force now),
     ``alive``, ``peak`` (largest |p_i| per trajectory), ``entry`` (p when
-    it entered a layer), ``faces_hit`` (bit f: beyond layer f's edge then),
+    it entered a layer), ``entry_step`` (the step count then), ``faces_hit`` (bit f: beyond layer f's edge then),
     ``lo_seen``/``hi_seen`` (per axis, outside the layers),
     ``edges_reached`` (per axis).  Returns the classical steps taken.
     ``energy``: each trajectory's conserved p^2/2m + V."""
@@ -183,6 +183,7 @@ def static_reach(x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min,
                 if _beyond(x, j, fc, layer_axis, layer_side, layer_edge):
                     faces_hit[j] |= 1 << fc
             if faces_hit[j]:
+                entry_step[j] = steps
                 for i in range(nd):
                     entry[j, i] = p[j, i]
                 alive[j] = False

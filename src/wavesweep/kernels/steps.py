@@ -91,18 +91,19 @@ def _kick_measured(row, factor, squared, scale):
     return sb, sa
 
 
-def strang_rows(psi, factors, squared, kinetic, nsteps, execute, forward, backward,
+def strang_rows(psi, half, whole, whole_squared, kinetic, nsteps, execute, forward, backward,
                 lo, hi, offset, losses, books, dv, measure_every, count, scale, expected, has_expected,
                 lost_since):
     """``nsteps`` Strang steps of each row of ``psi`` (members, n), in
-    place: the first half kick ``factors[0]``, then per step the kinetic
-    step (FFTW ``forward``, times ``kinetic`` (n,), which holds the inverse
-    transform's 1/n, FFTW ``backward``) and the kick ``factors[1]`` between
-    steps or ``factors[2]`` after the last.  ``factors`` is (3, f, n) with f
-    one (shared) or one per member; ``squared[j]``: kick j multiplies by
-    the factor squared.  Absorbing layers (slabs ``lo[l]:hi[l]``): before
-    each kick j, books[b, l] += sum |psi|^2 w dv over the slab, the weights
-    ``losses[j, f, offset[l] + k - lo[l]]``; no layers: ``lo`` empty.
+    place: the half kick ``half``, then per step the kinetic step (FFTW
+    ``forward``, times ``kinetic`` (n,), which holds the inverse
+    transform's 1/n, FFTW ``backward``) and the whole kick ``whole``
+    between steps (squared with ``whole_squared``: then it is the half
+    kick's array) or ``half`` after the last.  ``half`` and ``whole`` are
+    (f, n), f one (shared) or one per member.  Absorbing layers (slabs
+    ``lo[l]:hi[l]``): before kick j (0 the first, 1 between steps, 2 the
+    last), books[b, l] += sum |psi|^2 w dv over the slab, the weights
+    ``losses[j, g, offset[l] + k - lo[l]]``; no layers: ``lo`` empty.
 
     Single precision keeps its norm as :class:`~wavesweep.propagators.
     split_operator.SplitOperator` does: with ``measure_every`` > 0 the kick
@@ -113,12 +114,12 @@ def strang_rows(psi, factors, squared, kinetic, nsteps, execute, forward, backwa
     expected / after).  All updated in place; a member's numbers depend on
     no other member."""
     nb, n = psi.shape
-    per_member = factors.shape[1] > 1
     per_member_loss = losses.shape[1] > 1
     for b in range(nb):
         row = psi[b]
         p = row.ctypes.data
-        fb = b if per_member else 0
+        f_half = half[b if half.shape[0] > 1 else 0]
+        f_whole = whole[b if whole.shape[0] > 1 else 0]
         lb = b if per_member_loss else 0
         have = has_expected
         for s in range(nsteps + 1):
@@ -131,10 +132,12 @@ def strang_rows(psi, factors, squared, kinetic, nsteps, execute, forward, backwa
             lost = 0.0
             if lo.size:
                 lost = _layer_sums(row, lo, hi, offset, losses[j, lb], books[b], dv)
+            factor = f_whole if j == 1 else f_half
+            squared = whole_squared and j == 1
             if measure_every > 0:
                 lost_since[b] += lost
                 if (count + s) % measure_every == 0:
-                    before, after = _kick_measured(row, factors[j, fb], squared[j], scale[b])
+                    before, after = _kick_measured(row, factor, squared, scale[b])
                     if not have:
                         expected[b] = before
                         have = True
@@ -143,7 +146,7 @@ def strang_rows(psi, factors, squared, kinetic, nsteps, execute, forward, backwa
                     want = expected[b]
                     scale[b] = np.sqrt(want / after) if (after > 0 and want > 0) else 1.0
                     continue
-            _kick(row, factors[j, fb], squared[j])
+            _kick(row, factor, squared)
 
 
 strang_rows = numba.njit(cache=True, nogil=True)(strang_rows)

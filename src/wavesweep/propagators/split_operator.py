@@ -180,16 +180,18 @@ class SplitOperator(Propagator):
         if direct is None or row_plans is None:
             return None
         first, _, across, last, taus = self._plan
-        kicks = [self._factors[key] for key in (first, across, last)]
-        if any(f is None for f, _ in kicks):
+        (half, half_squared), (whole, whole_squared) = self._factors[first], self._factors[across]
+        if self._factors[last][0] is not half or half_squared:   # Strang: the two ends are one half kick
             return None
         plans = row_plans()
         if plans is None:
             return None
         n, nb = grid.size, self._nb
-        f = max(a.shape[0] for a, _ in kicks)
-        factors = np.ascontiguousarray(np.stack([np.broadcast_to(a.reshape(-1, n), (f, n)) for a, _ in kicks]))
-        squared = np.array([sq for _, sq in kicks])
+        if half is None:   # no potential, no absorber: the kicks multiply by one (exactly)
+            half = whole = np.ones((1, n), self.dtype)
+            whole_squared = False
+        # views of the propagator's own arrays, no copies (a batch's per-member factors are large)
+        half, whole = half.reshape(-1, n), whole.reshape(-1, n)
         kinetic = np.ascontiguousarray(self._kinetic_factor(taus[0])[1].reshape(n))
         layers = self.absorber.layers if self._absorbing else []
         lo = np.array([layer.slab[0].start for layer in layers], np.int64)
@@ -203,7 +205,7 @@ class SplitOperator(Propagator):
                                                                                   (g, w[0].size)) for w in ws], axis=1)
                                                  for ws in per]))
                   if layers else np.zeros((3, 1, 0)))
-        return (factors, squared, kinetic, plans, lo, hi, offset, losses)
+        return (half, whole, bool(whole_squared), kinetic, plans, lo, hi, offset, losses)
 
     def load(self, psi):
         direct = self.transform.in_place() if self._radial_basis is None and self.transform else None
@@ -524,14 +526,14 @@ class SplitOperator(Propagator):
             buf = direct[2]
             if psi is not buf:
                 np.copyto(buf, psi)
-            factors, squared, kinetic, plans, lo, hi, offset, losses = self._rows
+            half, whole, whole_squared, kinetic, plans, lo, hi, offset, losses = self._rows
             nb = self._nb
             # single precision's norm keeping (see _measuring, _renormalised), per member
             lost_since = np.broadcast_to(np.asarray(self._lost_since, float), (nb,)).copy()
             expected = (np.zeros(nb) if self._norm_expected is None
                         else np.array(self._norm_expected, float).reshape(nb))
             scale = np.array(self._scale, float).reshape(nb)
-            strang_rows(buf.reshape(nb, -1), factors, squared, kinetic, int(nsteps), plans.execute,
+            strang_rows(buf.reshape(nb, -1), half, whole, whole_squared, kinetic, int(nsteps), plans.execute,
                         plans.forward, plans.backward, lo, hi, offset, losses,
                         self.absorbed.reshape(nb, -1), float(self._dv),
                         RENORMALISE_EVERY if self._renormalise else 0, self._kick_count, scale, expected,
