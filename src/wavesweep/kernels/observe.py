@@ -12,7 +12,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from .split import REDUCTION_FLAGS, THREADED_MIN_ELEMENTS, _twins, row_indices
+from .split import REDUCTION_FLAGS, THREADED_MIN_ELEMENTS, _twins, abs2, row_indices
 
 __all__ = ["ObserveKernels", "observe_kernels_for", "density_of", "DENSITY_SUMS", "SPECTRUM_SUMS"]
 
@@ -41,7 +41,7 @@ def density_sums(psi, x0, x1, x2, v, psi0, has_psi0, out):
         s5 = 0.0
         for k in range(n2):
             z = psi[b, i, j, k]
-            d = z.real * z.real + z.imag * z.imag
+            d = abs2(z)
             x = x_ij + x2[k]
             s0 += d
             s1 += d * x
@@ -49,8 +49,10 @@ def density_sums(psi, x0, x1, x2, v, psi0, has_psi0, out):
             s3 += d * v[i, j, k]
             if has_psi0:
                 c = psi0[b0, i, j, k]
-                s4 += c.real * z.real + c.imag * z.imag
-                s5 += c.real * z.imag - c.imag * z.real
+                cr, ci = np.float64(c.real), np.float64(c.imag)   # promoted: see abs2
+                zr, zi = np.float64(z.real), np.float64(z.imag)
+                s4 += cr * zr + ci * zi
+                s5 += cr * zi - ci * zr
         part[r, 0] = s0
         part[r, 1] = s1
         part[r, 2] = s2
@@ -79,7 +81,7 @@ def spectrum_sums(phi, t0, t1, t2, k0, k1, k2, out):
         s1 = 0.0
         for k in range(n2):
             z = phi[b, i, j, k]
-            d = z.real * z.real + z.imag * z.imag
+            d = abs2(z)
             s0 += d * (t_ij + t2[k])
             s1 += d * (k_ij + k2[k])
         part[r, 0] = s0

@@ -65,6 +65,18 @@ def sum_rows(part, rows_per_member, out):
         out[r // rows_per_member] += part[r]
 
 
+@numba.njit(cache=True, nogil=True, inline="always")
+def abs2(z):
+    """|z|^2 in float64, a complex64 value's parts promoted before they are
+    squared: a packet's far tails in float32 square below float32's normal
+    range, and the subnormal arithmetic made a pass of sums over a 1024^2
+    single-precision grid 6x slower (4.1 ms against 0.63).  (complex128:
+    the same numbers as before.)"""
+    re = np.float64(z.real)
+    im = np.float64(z.imag)
+    return re * re + im * im
+
+
 # -- the kernels (pure functions of arrays; prange is range in the serial build)
 
 def kick(psi, factor, squared):
@@ -120,11 +132,11 @@ def kick_dynamic(psi, factor, squared, ph0, ph1, ph2, g, coef, v, has_v, scale, 
                 f = f * f
             z = psi[b, i, j, k]
             if measure:
-                sb += z.real * z.real + z.imag * z.imag
+                sb += abs2(z)
             z = z * f * (np.cos(ph) - 1j * np.sin(ph)) * s
             psi[b, i, j, k] = z
             if measure:
-                sa += z.real * z.real + z.imag * z.imag
+                sa += abs2(z)
         part_b[r] = sb
         part_a[r] = sa
     if measure:
@@ -151,10 +163,10 @@ def kick_measured(psi, factor, squared, scale, before, after):
             if squared:
                 f = f * f
             z = psi[b, i, j, k]
-            sb += z.real * z.real + z.imag * z.imag
+            sb += abs2(z)
             z = z * f * s
             psi[b, i, j, k] = z
-            sa += z.real * z.real + z.imag * z.imag
+            sa += abs2(z)
         part_b[r] = sb
         part_a[r] = sa
     sum_rows(part_b, n0 * n1, before)
@@ -181,7 +193,7 @@ def kick_contact(psi, factor, squared, has_factor, g_tau):
                 if squared:
                     f = f * f
                 z = z * f
-            ph = g_tau * (z.real * z.real + z.imag * z.imag)
+            ph = g_tau * abs2(z)
             psi[b, i, j, k] = z * (np.cos(ph) - 1j * np.sin(ph))
 
 
@@ -216,7 +228,7 @@ def layer_loss(psi, w, out):
         s = 0.0
         for k in range(n2):
             z = psi[b, i, j, k]
-            s += (z.real * z.real + z.imag * z.imag) * w[bw, i, j, k]
+            s += abs2(z) * w[bw, i, j, k]
         part[r] = s
     for r in range(rows):   # adds to out (the books of several kicks)
         out[r // (n0 * n1)] += part[r]

@@ -20,6 +20,8 @@ from llvmlite import ir
 from numba import types
 from numba.extending import intrinsic
 
+from .split import abs2
+
 __all__ = ["strang_rows"]
 
 
@@ -62,7 +64,7 @@ def _book(row, lo, hi, offset, weights, books, dv):
         o = offset[layer] - lo[layer]
         for k in range(lo[layer], hi[layer]):
             z = row[k]
-            s += (z.real * z.real + z.imag * z.imag) * weights[o + k]
+            s += abs2(z) * weights[o + k]
         books[layer] += s * dv
         lost += s
     return lost
@@ -84,10 +86,10 @@ def _kick_measured(row, factor, squared, scale):
         if squared:
             f = f * f
         z = row[k]
-        sb += z.real * z.real + z.imag * z.imag
+        sb += abs2(z)
         z = z * f * scale
         row[k] = z
-        sa += z.real * z.real + z.imag * z.imag
+        sa += abs2(z)
     return sb, sa
 
 
