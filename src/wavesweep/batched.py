@@ -170,6 +170,7 @@ class BatchedRun:
             if on_end is not None:
                 on_end(i, outcome)
 
+        self._prepare_members()
         try:
             for i, (sim, path, policy) in enumerate(zip(self.sims, paths, checkpoints)):
                 try:
@@ -201,6 +202,25 @@ class BatchedRun:
                     self.sims[i].abort(book, e)
             raise
         return outcomes
+
+    def _prepare_members(self) -> None:
+        """The members' analysis records (:meth:`Simulation.prepare`) made in
+        threads, one per core: numerics that release the GIL in large part
+        (the classical trajectories' kernel, FFTs), ~40 ms a member of a
+        sharp-barrier sweep, which the files' serial set-up (HDF5 is not
+        thread-safe) then finds made.  A member whose record fails is left
+        to begin(), which says why as its own outcome."""
+        cores = self.sims[0].setup.threads or default_threads()
+        if len(self.sims) < 2 or cores < 2:
+            return
+
+        def prepare(sim):
+            try:
+                sim.prepare()
+            except Exception:   # noqa: BLE001 -- begin() makes it again and ends this member with the reason
+                pass
+        with ThreadPoolExecutor(min(cores, len(self.sims))) as pool:
+            list(pool.map(prepare, self.sims))
 
     def lane_count(self, members: int) -> int:
         """Lanes for a group of ``members``: one per core (``evolve.threads``

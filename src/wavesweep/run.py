@@ -55,6 +55,17 @@ class Simulation:
         self.coupled = bool(job.table.get("surface"))
         self.setup = (CoupledSetup if self.coupled else Setup)(job, fft, threads)
         self.job = self.setup.job     # the complete job (a tuned CAP written in)
+        self._prepared = None         # the analysis record, when prepare() made it ahead of begin()
+
+    def prepare(self) -> None:
+        """Make what :meth:`begin` writes into a new run's file and needs
+        no file for: the analysis record (the warnings judged for the run,
+        its classical trajectories, its Lanczos recurrence).  Numerics only,
+        so a batch makes its members' in threads (:class:`~wavesweep.batched.
+        BatchedRun`: ~40 ms a member, which begin() made one after the
+        other); begin() makes it itself when it was not prepared."""
+        if not self.coupled and self._prepared is None:
+            self._prepared = analysis_record(self.setup)
 
     def output_path(self, outdir) -> Path:
         """``OUTDIR/NAME-RUNID.nc``: runs of other physics (another --set, a
@@ -164,7 +175,7 @@ class Simulation:
                 record = None
                 attrs = {**self._attrs(), **coupled_attributes(s)}
             else:   # what analysis needs of the set-up, written once with the file (a resumed file has it)
-                record = analysis_record(s)
+                record, self._prepared = self._prepared or analysis_record(s), None
                 attrs = {**self._attrs(), **record["attrs"]}
                 attrs["analysis_record_crc32"] = record_checksum(attrs)   # attributes have no HDF5 checksum
             writer = ResultWriter(path, {**self._layout(), "record": record}, attrs)
