@@ -205,6 +205,7 @@ class SplitOperator(Propagator):
                                                                                   (g, w[0].size)) for w in ws], axis=1)
                                                  for ws in per]))
                   if layers else np.zeros((3, 1, 0)))
+        self._books2d = self.absorbed.reshape(nb, -1)   # a view: the kernel books into self.absorbed
         return (half, whole, bool(whole_squared), kinetic, plans, lo, hi, offset, losses)
 
     def load(self, psi):
@@ -528,14 +529,16 @@ class SplitOperator(Propagator):
                 np.copyto(buf, psi)
             half, whole, whole_squared, kinetic, plans, lo, hi, offset, losses = self._rows
             nb = self._nb
-            # single precision's norm keeping (see _measuring, _renormalised), per member
-            lost_since = np.broadcast_to(np.asarray(self._lost_since, float), (nb,)).copy()
-            expected = (np.zeros(nb) if self._norm_expected is None
-                        else np.array(self._norm_expected, float).reshape(nb))
-            scale = np.array(self._scale, float).reshape(nb)
+            if self._renormalise:   # single precision's norm keeping (see _measuring, _renormalised), per member
+                lost_since = np.broadcast_to(np.asarray(self._lost_since, float), (nb,)).copy()
+                expected = (np.zeros(nb) if self._norm_expected is None
+                            else np.array(self._norm_expected, float).reshape(nb))
+                scale = np.array(self._scale, float).reshape(nb)
+            else:                   # unused: the arrays made once (a call's Python is per sample interval)
+                lost_since = expected = scale = self._ones
             strang_rows(buf.reshape(nb, -1), half, whole, whole_squared, kinetic, int(nsteps), plans.execute,
                         plans.forward, plans.backward, lo, hi, offset, losses,
-                        self.absorbed.reshape(nb, -1), float(self._dv),
+                        self._books2d, self._dv,
                         RENORMALISE_EVERY if self._renormalise else 0, self._kick_count, scale, expected,
                         self._norm_expected is not None, lost_since)
             if self._renormalise:
