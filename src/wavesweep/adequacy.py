@@ -15,6 +15,7 @@ import json
 import math
 import os
 import re
+import threading
 import time as _time
 import weakref
 from dataclasses import dataclass, field
@@ -689,6 +690,7 @@ def _nonseparable(v) -> bool:
 # trajectories cost ~0.3 s each time; they do not depend on the absorber's
 # strength, which the first of them chooses.
 _DYNAMICS_CACHE: dict = {}
+_DYNAMICS_LOCK = threading.Lock()
 # Per set-up object, without writing onto it (the set-up's class is a layer above).
 _DYNAMICS_OF: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
 _DYNAMICS_CACHE_SIZE = 64
@@ -756,9 +758,10 @@ def dynamics(setup) -> Dynamics:
     out = Dynamics(initial, over, reach, freed, windows, nonsep, bound, unreached)
     _DYNAMICS_OF[setup] = out
     if key is not None:
-        if len(_DYNAMICS_CACHE) >= _DYNAMICS_CACHE_SIZE:
-            _DYNAMICS_CACHE.pop(next(iter(_DYNAMICS_CACHE)))
-        _DYNAMICS_CACHE[key] = out
+        with _DYNAMICS_LOCK:   # a batch prepares its members' set-ups in threads (batched.BatchedRun)
+            if len(_DYNAMICS_CACHE) >= _DYNAMICS_CACHE_SIZE:
+                _DYNAMICS_CACHE.pop(next(iter(_DYNAMICS_CACHE)))
+            _DYNAMICS_CACHE[key] = out
     return out
 
 

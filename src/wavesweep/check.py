@@ -11,6 +11,9 @@ report judges every sweep point and names the points that fail.
 """
 from __future__ import annotations
 
+import os
+from concurrent.futures import ThreadPoolExecutor
+
 from .adequacy import (Finding, Report, assess, coupled_findings, memory_finding, remember_run_warnings,
                        run_time_finding, splitting_warning)
 from .errors import JobError, combine_errors
@@ -164,6 +167,21 @@ def check_study(study, trial_seconds: float = 1.0, progress=None) -> Report:
     return Report(first.title + f" ({len(study.runs)} runs)", findings)
 
 
+def _judge_point(spec) -> list:
+    """One job's (or study point's) findings for :func:`preflight`."""
+    job = getattr(spec, "job", spec)
+    fs = [memory_finding(job)]
+    if fs[0].level != "error":
+        try:
+            setup, found = _judged(job)
+            remember_run_warnings(setup, found)   # the run records them without judging again
+            fs += found
+        except JobError as e:   # this point cannot be set up: say which, judge the others
+            # (no --force makes a set-up that cannot be built run)
+            fs.append(Finding("set-up", "error", e.message, {"forceable": False}, field=e.field))
+    return fs
+
+
 def preflight(jobs, force: bool = False) -> list[str]:
     """What ``run`` and ``submit`` ask before computing: every job's
     criteria (no trial).  Error-level findings raise one JobError naming
@@ -172,19 +190,16 @@ def preflight(jobs, force: bool = False) -> list[str]:
 
     warnings: dict = {}
     errors: dict = {}
-    for spec in jobs:
-        job = getattr(spec, "job", spec)
+    points = list(jobs)
+    cores = min(len(points), os.cpu_count() or 1)
+    if cores > 1:   # the points judged in threads, one per core (their classical trajectories release the GIL)
+        with ThreadPoolExecutor(cores) as pool:
+            judged = list(pool.map(_judge_point, points))
+    else:
+        judged = [_judge_point(spec) for spec in points]
+    for spec, fs in zip(points, judged):
         params = getattr(spec, "params", {})
         where = ", ".join(f"{k} = {v!r}" for k, v in params.items())
-        fs = [memory_finding(job)]
-        if fs[0].level != "error":
-            try:
-                setup, found = _judged(job)
-                remember_run_warnings(setup, found)   # the run records them without judging again
-                fs += found
-            except JobError as e:   # this point cannot be set up: say which, judge the others
-                # (no --force makes a set-up that cannot be built run)
-                fs.append(Finding("set-up", "error", e.message, {"forceable": False}, field=e.field))
         for f in fs:
             bucket = errors if f.level == "error" else warnings if f.level == "warn" else None
             if bucket is None:

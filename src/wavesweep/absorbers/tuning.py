@@ -66,6 +66,7 @@ import hashlib
 import json
 import math
 import os
+import threading
 
 import numpy as np
 
@@ -517,6 +518,7 @@ class _TuningCache:
         with open(__file__, "rb") as f:
             self.revision = hashlib.sha256(f.read()).hexdigest()[:16]
         self._entries = None
+        self._lock = threading.Lock()
 
     def _load(self) -> dict:
         if self._entries is None:
@@ -537,11 +539,13 @@ class _TuningCache:
             return None   # a damaged entry: tune again
 
     def put(self, key: str, value) -> None:
-        entries = self._load()
-        entries[key] = [float(value[0]), float(value[1])]
+        with self._lock:   # threads of one process (a batch's members) tune too: one writer at a time
+            entries = self._load()
+            entries[key] = [float(value[0]), float(value[1])]
+            text = json.dumps({self.revision: entries})
         try:
             os.makedirs(os.path.dirname(self.path), exist_ok=True)
-            write_text_atomic(self.path, json.dumps({self.revision: entries}))
+            write_text_atomic(self.path, text)
         except OSError:
             pass   # a read-only cache folder: tune again next time
 
