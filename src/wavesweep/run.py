@@ -382,7 +382,9 @@ class Simulation:
 
     def _health(self, values, absorbed, t_au, step):
         norm = values["norm"]   # a number, or one per surface
-        total = (norm if isinstance(norm, float) else float(np.sum(norm))) + float(np.sum(absorbed))
+        # (a 1D books' sum in Python floats: the same sum, without numpy's ~2 us on a few elements)
+        books = sum(absorbed.tolist()) if getattr(absorbed, "ndim", 0) == 1 else float(np.sum(absorbed))
+        total = (norm if isinstance(norm, float) else float(np.sum(norm))) + books
         if math.isfinite(total) and abs(total - 1) <= 1e-6:   # the common case, decided without the rest
             return
         t = t_au / self.setup.units.factor("time")
