@@ -44,7 +44,7 @@ from .fft import AUTO, THREADS_MIN_POINTS, default_threads, make_transform
 from .io.checkpoint import ResultExists
 from .observables import Observer
 from .propagators import scheme_class
-from .run import Simulation, progress_bar
+from .run import Simulation, norm_keeping_of, take_up_norm_keeping, progress_bar
 from .setup import set_kernel_threads
 from .surfaces import CoupledSplitOperator
 
@@ -307,12 +307,14 @@ class BatchedRun:
                     lane, j = where[k]
                     if should_stop is not None and should_stop(members[k]):
                         saved = sims[k].save_checkpoint(book, done, lane.prop.absorbed[j], lane.psi[j],
-                                                    reopen=False) if book.store is not None else None
+                                                    reopen=False, norm_keeping=norm_keeping_of(lane.prop, j)) \
+                            if book.store is not None else None
                         stopped = RunInterrupted(saved, done)
                         sims[k].abort(book, stopped)   # the partial file goes; the checkpoint stays
                         end(k, stopped)
                     elif book.checkpoint_due():
-                        sims[k].save_checkpoint(book, done, lane.prop.absorbed[j], lane.psi[j])
+                        sims[k].save_checkpoint(book, done, lane.prop.absorbed[j], lane.psi[j],
+                                                norm_keeping=norm_keeping_of(lane.prop, j))
             for k in sorted(active):
                 lane, j = where[k]
                 try:
@@ -348,6 +350,7 @@ class _Lane:
             b.psi = None
         self.prop.steps_done = books[0].steps
         self.prop.absorbed[:] = np.stack([b.absorbed for b in books])
+        take_up_norm_keeping(self.prop, [b.norm_keeping for b in books])
         self.potential = s0.hamiltonian.potential
 
     def step(self, n: int) -> None:

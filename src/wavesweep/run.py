@@ -116,6 +116,7 @@ class Simulation:
             psi, book.psi = prop.load(book.psi), None
             prop.steps_done = book.steps
             prop.absorbed[:] = book.absorbed
+            take_up_norm_keeping(prop, [book.norm_keeping])
             done = start = int(prop.steps_done)
             bar = progress_bar(s.total_steps, progress, self.job.name)
             if bar is not None and done:
@@ -136,11 +137,12 @@ class Simulation:
                 if done >= s.total_steps:
                     break
                 if should_stop is not None and should_stop():
-                    saved = self.save_checkpoint(book, done, prop.absorbed, psi, reopen=False) \
+                    saved = self.save_checkpoint(book, done, prop.absorbed, psi, reopen=False,
+                                                 norm_keeping=norm_keeping_of(prop)) \
                         if book.store is not None else None
                     raise RunInterrupted(saved, done)
                 if book.checkpoint_due():
-                    self.save_checkpoint(book, done, prop.absorbed, psi)
+                    self.save_checkpoint(book, done, prop.absorbed, psi, norm_keeping=norm_keeping_of(prop))
             out = self.finish(book, psi, int(prop.steps_done))
         except BaseException as e:
             self.abort(book, e)
@@ -189,6 +191,7 @@ class Simulation:
                                      resume.n_snap, attrs=self._attrs())
         book = RunBook(path, writer, store, checkpoint, np.array(resume.psi, dtype=s.dtype, copy=True),
                        int(resume.steps), np.asarray(resume.absorbed, float).copy(), resume.wall_seconds, False)
+        book.norm_keeping = resume.extra.get("norm_keeping")
         if self.coupled:   # the sessions before: their warnings (in the file) and edge weights (in the checkpoint)
             book.warnings = json.loads(str(writer.ds.getncattr("adequacy_warnings")))
             book.edge = np.array(resume.extra.get("momentum_edge_weight")
@@ -302,7 +305,10 @@ class Simulation:
         period = s.snapshot_steps // math.gcd(s.sample_steps, s.snapshot_steps)
         return k + 1, 1 + k // period
 
-    def save_checkpoint(self, book, steps: int, absorbed, psi, reopen: bool = True) -> Path:
+    def save_checkpoint(self, book, steps: int, absorbed, psi, reopen: bool = True, norm_keeping=None) -> Path:
+        """A checkpoint of the run after ``steps`` steps; ``norm_keeping``:
+        the propagator's state of single precision's norm keeping for this
+        run (:meth:`~wavesweep.propagators.split_operator.SplitOperator.norm_keeping`)."""
         writer = book.writer
         n_time, n_snap = writer.position
         state = CheckpointState(run_id=self.job.run_id, steps=int(steps),
@@ -312,7 +318,8 @@ class Simulation:
                                        "scheme": self.setup.scheme.name,
                                        "wavesweep_version": __version__,
                                        **({"momentum_edge_weight": np.asarray(book.edge).tolist()}
-                                          if self.coupled else {})})
+                                          if self.coupled else {}),
+                                       **({"norm_keeping": norm_keeping} if norm_keeping is not None else {})})
         out = book.store.save(state, writer, reopen=reopen)
         book.last_checkpoint = _time.perf_counter()
         return out
@@ -526,6 +533,18 @@ class Simulation:
 EDGE_EVERY_STEPS = 10
 
 
+def norm_keeping_of(prop, member: int = 0):
+    """The propagator's norm-keeping state for a checkpoint (None where it keeps none)."""
+    keeping = getattr(prop, "norm_keeping", None)
+    return keeping(member) if keeping is not None else None
+
+
+def take_up_norm_keeping(prop, states) -> None:
+    resume = getattr(prop, "resume_norm_keeping", None)
+    if resume is not None:
+        resume(states)
+
+
 class RunBook:
     """What one run carries through its loop: the writer, the checkpoint
     store and policy, psi and books to start from, and the wall clock; on
@@ -536,6 +555,7 @@ class RunBook:
     warnings: list = []
     edge = None
     volkov = None     # VolkovIntegrals of a driven 1D run, made at its first sample
+    norm_keeping = None   # single precision's norm keeping from the checkpoint resumed (a dict), if any
 
     def __init__(self, path, writer, store, policy, psi, steps, absorbed, wall_before, fresh):
         self.path, self.writer, self.store, self.policy = path, writer, store, policy
