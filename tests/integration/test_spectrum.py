@@ -385,6 +385,27 @@ def test_nothing_crossing_is_said_rather_than_shaped_into_a_peak(tmp_path):
     assert "nothing crossed" in e.value.message
 
 
+def test_a_detector_nothing_crossed_is_left_out_of_all_detectors_spectra(tmp_path):
+    """A free packet in single precision with a second detector behind it:
+    the rounding alone integrates to ~1e-9 there (double: ~1e-11), which
+    had been shaped into a spectrum that aliased the band and refused the
+    whole command.  Now that detector is said to have had nothing cross
+    and left out; the other's spectrum is given (its total 1 within its
+    own uncertainty); asked for by name it is still refused."""
+    job = copy.deepcopy(FREE)
+    job["evolve"]["precision"] = "single"
+    job["detector"] = [{"name": "d", "x": 10.0}, {"name": "behind", "x": -40.0}]
+    path = _run(job, tmp_path)
+    out = spectrum(path)
+    assert [d["detector"] for d in out["detectors"]] == ["d"]
+    assert any("nothing crossed detector 'behind'" in w for w in out["warnings"])
+    d = out["detectors"][0]
+    assert abs(d["total"] - 1.0) <= max(3 * d["total_uncertainty"], 1e-3)
+    with pytest.raises(JobError) as e:
+        spectrum(path, detector="behind")
+    assert "nothing crossed" in e.value.message
+
+
 def test_a_bound_tail_is_not_still_to_come():
     """Still to come is what moves towards the detector less what moves
     away: a bound state's tail in flat V (real: exp(-|x|), |phi(k)| even in

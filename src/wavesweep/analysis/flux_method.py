@@ -18,7 +18,7 @@ import numpy as np
 from ..errors import JobError
 
 __all__ = ["time_transform", "trapezoid_weights", "surface_flux_amplitude", "end_taper", "tail_decay", "cut_tail", "cut_warning",
-           "premise_warnings", "momentum_label", "alias_level", "kept_range", "refuse_if_nothing_crossed", "CUT_WARN", "STILL_TO_COME_WARN", "BAND_FLOOR",
+           "premise_warnings", "momentum_label", "alias_level", "kept_range", "refuse_if_nothing_crossed", "NothingCrossed", "CUT_WARN", "STILL_TO_COME_WARN", "BAND_FLOOR",
            "SPECTRUM_FLOOR", "SCATTERER_BEYOND", "VARIES",
            "TRANSFORM_BLOCK"]
 
@@ -260,17 +260,27 @@ def kept_range(coarse_kinetic, density, step: float, k_top: float) -> tuple[floa
 
 
 # Less than this probability through a detector (the time integral of |J|) is nothing: its spectrum would be
-# rounding noise shaped into a peak (a bound state's: total 7e-11 with an uncertainty of 1.5x its peak)
+# rounding noise shaped into a peak (a bound state's: total 7e-11 with an uncertainty of 1.5x its peak).  In
+# single precision the rounding alone integrates to ~1e-9 (a free packet's detector behind it: 1.2e-9, where
+# double precision's gave 2e-11), and its spectrum then filled the band so that the whole command was refused
+# for aliasing, with advice to sample faster: so a single-precision run's floor is higher.
 NOTHING_CROSSED = 1e-10
+NOTHING_CROSSED_SINGLE = 1e-7
+
+
+class NothingCrossed(JobError):
+    """A detector nothing crossed: no spectrum there (a fact of the run, not
+    bad input; a spectrum of all the detectors leaves it out and says so)."""
 
 
 def refuse_if_nothing_crossed(ds, j: int, name: str) -> None:
-    """JobError naming the detector when the run's flux through detector
+    """NothingCrossed (a JobError) naming the detector when the run's flux through detector
     ``j`` integrates (in absolute value, over the record) to less than
-    NOTHING_CROSSED."""
+    NOTHING_CROSSED (NOTHING_CROSSED_SINGLE for a single-precision run)."""
     flux = np.abs(np.asarray(ds["flux"].values, float)[:, j])
     t = np.asarray(ds["time"].values, float)
     gross = float(np.trapezoid(flux, t)) if len(t) > 1 else 0.0
-    if not gross > NOTHING_CROSSED:
-        raise JobError("--detector", f"nothing crossed detector {name!r} during the run (|J| integrates to "
-                                     f"{gross:.1e}): no spectrum")
+    floor = NOTHING_CROSSED_SINGLE if ds.attrs.get("precision") == "single" else NOTHING_CROSSED
+    if not gross > floor:
+        raise NothingCrossed("--detector", f"nothing crossed detector {name!r} during the run (|J| integrates to "
+                                           f"{gross:.1e}): no spectrum")

@@ -74,9 +74,9 @@ import numpy as np
 
 from ..errors import JobError
 from ..io.record import initial_beyond, layer_holding
-from .flux_method import (BAND_FLOOR, CUT_WARN, STILL_TO_COME_WARN, VARIES, alias_level, cut_warning,
-                             end_taper, kept_range, momentum_label, premise_warnings, refuse_if_nothing_crossed,
-                             surface_flux_amplitude, time_transform, trapezoid_weights)
+from .flux_method import (BAND_FLOOR, CUT_WARN, STILL_TO_COME_WARN, VARIES, NothingCrossed, alias_level,
+                          cut_warning, end_taper, kept_range, momentum_label, premise_warnings,
+                          refuse_if_nothing_crossed, surface_flux_amplitude, time_transform, trapezoid_weights)
 from .plane_spectrum import plane_spectrum
 from .transmission import came_round_warning
 from .recorded import run_record as read_record
@@ -293,10 +293,20 @@ def spectrum(result, detector: str | None = None, points: int | None = None) -> 
         else:
             chosen = _spectrum_detectors(ds, setup, names)
         out = {"detectors": [], "warnings": []}
+        empty = []
         for j in chosen:
-            found = _detector_spectrum(ds, setup, j, points)
+            try:
+                found = _detector_spectrum(ds, setup, j, points)
+            except NothingCrossed as e:   # all detectors asked for: this one is left out, and said so
+                if detector is not None:
+                    raise
+                empty.append(e)
+                continue
             out["warnings"].extend(w for w in found.pop("warnings") if w not in out["warnings"])
             out["detectors"].append(found)
+        if empty and not out["detectors"]:
+            raise empty[0]
+        out["warnings"].extend(f"{e.message}; the other detectors' spectra are given" for e in empty)
         return out
     finally:
         if ds is not result:
