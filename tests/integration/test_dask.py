@@ -160,11 +160,11 @@ def test_ctrl_c_leaves_the_queue_consistent_and_the_runs_resume(tmp_path):
     the queue (exit 0); a second drain finishes them."""
     table = copy.deepcopy(STUDY)
     table["grid"]["x"].update({"min": -150.0, "max": 150.0, "points": 2048})
-    # ~20 s a run on an idle core: stopped 1.5 s after both have reported a
-    # step, well before the end.  Their first report comes with a heartbeat,
-    # ~10 s after the start here: a run of half this length (14 s once its
-    # set-up got faster) ended before the stop and the test with it.
-    table["evolve"] = {"dt": 0.005, "duration": 7000.0}
+    # ~9 s a run on an idle core: stopped once both have written a checkpoint
+    # (they step: one every 1.2 s here), well before the end.  (Waiting for
+    # their progress instead waited for a heartbeat, ~10 s in, by which time
+    # a run whose set-up got faster had ended.)
+    table["evolve"] = {"dt": 0.005, "duration": 4500.0}
     table["record"] = {"every": 10.0}
     table["sweep"] = {"packet.momentum": {"start": 0.9, "stop": 1.2, "num": 2}}
     root = queued(tmp_path, table, "interrupted")
@@ -173,9 +173,9 @@ def test_ctrl_c_leaves_the_queue_consistent_and_the_runs_resume(tmp_path):
                             text=True)
     q = Queue(root)
     deadline = time.time() + 120
-    while time.time() < deadline and not all((r["step"] or 0) > 0 for r in q.runs()):
-        time.sleep(0.3)
-    time.sleep(1.5)   # past a checkpoint
+    while time.time() < deadline and not all(q.checkpoint_path(r["study"], r["run_id"]).exists()
+                                             for r in q.runs()):
+        time.sleep(0.1)
     proc.send_signal(signal.SIGINT)
     out, err = proc.communicate(timeout=120)
     assert proc.returncode == 0, err
