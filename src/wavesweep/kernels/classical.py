@@ -95,19 +95,11 @@ def _beyond(x, j, f, layer_axis, layer_side, layer_edge):
 
 
 @numba.njit(cache=True, nogil=True)
-def static_reach(x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
-                 layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps, max_steps,
-                 alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen, edges_reached):
-    """Integrate the trajectories ``x``, ``p`` (n, nd; bohr, hbar/bohr) of
-    a static potential ``v`` (hartree, shape (1, grid padded to 3D)) with force
-    tables ``grads`` (nd, padded grid: dV/dx_i) from t = 0 over
-    ``duration``; updated in place: ``x``, ``p``, ``f`` (the force now),
-    ``alive``, ``peak`` (largest |p_i| per trajectory), ``entry`` (p when
-    it entered a layer), ``entry_step`` (the step count then), ``faces_hit`` (bit f: beyond layer f's edge then),
-    ``lo_seen``/``hi_seen`` (per axis, outside the layers),
-    ``edges_reached`` (per axis).  Returns the classical steps taken.
-    ``energy``: each trajectory's conserved p^2/2m + V."""
-    n, nd = x.shape
+def _static_reach(nd, x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
+                  layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps, max_steps,
+                  alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen, edges_reached):
+    """The loop of :func:`static_reach` on a grid of ``nd`` axes."""
+    n = x.shape[0]
     x_new = np.empty(nd)
     p_half = np.empty(nd)
     f_new = np.empty(nd)
@@ -188,3 +180,59 @@ def static_reach(x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min,
                     lo_seen[i] = min(lo_seen[i], x[j, i])
                     hi_seen[i] = max(hi_seen[i], x[j, i])
     return steps
+
+
+# One compiled entry per number of axes, each calling the loop with nd a constant: the compiler then
+# unrolls the loops over the axes and keeps a trajectory's coordinates in registers (with nd read from
+# the arrays, a sharp barrier's 1010 steps took 14.8 ms; with nd constant, 2.9 ms; the same numbers).
+# The arguments are spelt out: passed on as *args the constant did not reach the loop (15.5 ms).
+@numba.njit(cache=True, nogil=True)
+def _static_reach_1d(x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
+                     layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps, max_steps,
+                     alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen, edges_reached):
+    return _static_reach(1, x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
+                         layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps,
+                         max_steps, alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen,
+                         edges_reached)
+
+
+@numba.njit(cache=True, nogil=True)
+def _static_reach_2d(x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
+                     layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps, max_steps,
+                     alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen, edges_reached):
+    return _static_reach(2, x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
+                         layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps,
+                         max_steps, alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen,
+                         edges_reached)
+
+
+@numba.njit(cache=True, nogil=True)
+def _static_reach_3d(x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
+                     layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps, max_steps,
+                     alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen, edges_reached):
+    return _static_reach(3, x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
+                         layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps,
+                         max_steps, alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen,
+                         edges_reached)
+
+
+_BY_AXES = {1: _static_reach_1d, 2: _static_reach_2d, 3: _static_reach_3d}
+
+
+def static_reach(x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
+                 layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps, max_steps,
+                 alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen, edges_reached):
+    """Integrate the trajectories ``x``, ``p`` (n, nd; bohr, hbar/bohr) of
+    a static potential ``v`` (hartree, shape (1, grid padded to 3D)) with
+    force tables ``grads`` (nd, padded grid: dV/dx_i) from t = 0 over
+    ``duration``; updated in place: ``x``, ``p``, ``f`` (the force now),
+    ``alive``, ``peak`` (largest |p_i| per trajectory), ``entry`` (p when
+    it entered a layer), ``entry_step`` (the step count then), ``faces_hit``
+    (bit f: beyond layer f's edge then), ``lo_seen``/``hi_seen`` (per axis,
+    outside the layers), ``edges_reached`` (per axis).  Returns the
+    classical steps taken.  ``energy``: each trajectory's conserved p^2/2m
+    + V.  (The compiled loop of the grid's number of axes.)"""
+    return _BY_AXES[x.shape[1]](x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max,
+                                ax_length, layer_axis, layer_side, layer_edge, duration, dx_min, omega,
+                                min_tau_steps, max_steps, alive, peak, f, entry, entry_step, faces_hit,
+                                lo_seen, hi_seen, edges_reached)
