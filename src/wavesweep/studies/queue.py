@@ -835,7 +835,8 @@ class Queue:
         return json.loads(row[0]) if row else None
 
     # ------------------------------------------------------- worker side
-    @_room_for_the_queue
+    # (no _room_for_the_queue for a claim: the reserve is for recording how runs end; freed for a claim,
+    # the claimed run's own file used the room, and its end could not be recorded: it stayed running)
     def claim(self, worker: str, study: str | None = None,
               lease_seconds: float | None = None) -> dict | None:
         """Take the oldest queued run (of ``study``, if given) for ``worker``:
@@ -867,7 +868,6 @@ class Queue:
                 "result": str(self.result_path(st, rid)), "log": str(self.log_path(st, rid)),
                 "checkpoint": str(self.checkpoint_path(st, rid))}
 
-    @_room_for_the_queue
     def claim_batch(self, worker: str, limit: int, group_of, share: int = 1, window: int = 512,
                     study: str | None = None, lease_seconds: float | None = None) -> list[dict]:
         """Claim the oldest queued run and, with it, later queued runs of
