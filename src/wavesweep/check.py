@@ -11,9 +11,6 @@ report judges every sweep point and names the points that fail.
 """
 from __future__ import annotations
 
-import os
-from concurrent.futures import ThreadPoolExecutor
-
 from .adequacy import (Finding, Report, assess, coupled_findings, memory_finding, remember_run_warnings,
                        run_time_finding, splitting_warning)
 from .errors import JobError, combine_errors
@@ -190,14 +187,11 @@ def preflight(jobs, force: bool = False) -> list[str]:
 
     warnings: dict = {}
     errors: dict = {}
-    points = list(jobs)
-    cores = min(len(points), os.cpu_count() or 1)
-    if cores > 1:   # the points judged in threads, one per core (their classical trajectories release the GIL)
-        with ThreadPoolExecutor(cores) as pool:
-            judged = list(pool.map(_judge_point, points))
-    else:
-        judged = [_judge_point(spec) for spec in points]
-    for spec, fs in zip(points, judged):
+    # (one point after the other: judged in threads, two points' set-ups parsed their expressions at
+    # once, which CPython 3.11's parser does not survive; with the compiled classical trajectories a
+    # point costs ~20 ms)
+    for spec in jobs:
+        fs = _judge_point(spec)
         params = getattr(spec, "params", {})
         where = ", ".join(f"{k} = {v!r}" for k, v in params.items())
         for f in fs:

@@ -25,6 +25,7 @@ import keyword
 import math
 import numbers
 import re
+import threading
 from collections.abc import Callable, Mapping
 from typing import Any, NamedTuple
 
@@ -34,6 +35,11 @@ import scipy.special
 from wavesweep.errors import JobError
 
 __all__ = ["ALLOWED_FUNCTIONS", "CONSTANTS", "Expression", "MAX_LENGTH", "MAX_DEPTH"]
+
+# One parse at a time: CPython 3.11's parser keeps its recursion depth in state the threads of a
+# process share, and two threads parsing at once raised "SystemError: AST constructor recursion
+# depth mismatch" (a batch prepares its members, and submit judged its points, in threads)
+_PARSE_LOCK = threading.Lock()
 
 #: Longest accepted expression text, in characters.
 MAX_LENGTH = 2000
@@ -389,7 +395,8 @@ class Expression:
                 "are allowed (move long numbers into parameters)",
             )
         try:
-            return ast.parse(source, mode="eval")
+            with _PARSE_LOCK:
+                return ast.parse(source, mode="eval")
         except SyntaxError as exc:
             raise JobError(self.field, self._syntax_message(exc)) from None
         except (ValueError, RecursionError, MemoryError) as exc:
