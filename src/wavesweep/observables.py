@@ -132,6 +132,19 @@ def mean_position_momentum(psi, grid, axes=None) -> tuple[np.ndarray, np.ndarray
     return pos, mom, norm_sum * grid.cell_volume
 
 
+def _flushed(psi0) -> np.ndarray:
+    """A contiguous copy of ``psi0`` with its subnormal parts set to zero.
+    A packet's far tails underflow to subnormal numbers, and every product
+    with one costs the processor ~100 cycles (the autocorrelation pass over
+    a 4096-point Gaussian took 18 us for its 112 subnormal parts, against
+    2 us); what they add to the sum is below 1e-300, nothing a float64 sum
+    of the packet's overlap can hold."""
+    out = np.array(psi0, copy=True, order="C")
+    parts = out.view(out.real.dtype)
+    parts[np.abs(parts) < np.finfo(parts.dtype).tiny] = 0.0
+    return out
+
+
 class Observer:
     """Computes the recorded observables of one run, or of each member of a
     batch (``members`` states stacked along a leading axis).
@@ -190,7 +203,7 @@ class Observer:
         nd = grid.ndim
         self._view4 = lambda a: view4(a, nd)
         self._kernels = observe_kernels_for(grid.size * self._nb, getattr(transform, "threads", 1) or 1)
-        self._psi0 = None if psi0 is None else self._view4(np.ascontiguousarray(psi0))
+        self._psi0 = None if psi0 is None else self._view4(_flushed(psi0))
         pad = 3 - nd
         one_axis = [np.zeros(1)] * pad
         # x along the first grid axis, relative to its middle (the sums of x
@@ -213,6 +226,46 @@ class Observer:
         self._parseval_dv = grid.parseval_factor * self.dv   # a property that costs 7 us: once
         self._rows_cast = {}     # the detectors' rows in psi's precision: see _rows_in
         self._box_derivative = None   # i kappa of a 1D box's odd extension: see _momentum_box
+        self._row_sample = self._row_sampler()
+
+    def _row_sampler(self):
+        """The fixed arguments of the compiled sample of a 1D periodic
+        Cartesian grid in the lab (:mod:`wavesweep.kernels.sample`: the
+        density sums, the transform, the spectrum sums and the detectors'
+        rows in two passes); None for other grids, which go through numpy,
+        the transform's calls and BLAS.  ``plans``: FFTW's plans of one row
+        of the observer's buffer when they can be made (pyFFTW, one thread,
+        the main thread; :meth:`wavesweep.fft.PyFFTWTransform.row_plans`),
+        and the whole sample is then one kernel call; otherwise the
+        transform's own call runs between the two passes.  Solo runs and a
+        batch's members, local and Dask workers take the same passes."""
+        grid = self.grid
+        if grid.ndim != 1 or getattr(grid, "radial", False) or self.frame is not None \
+                or not self._momentum_from_spectrum or self._resolved_any:
+            return None
+        n, nb = grid.size, self._nb
+        if self._groups:
+            (_, idx, rows, weight), = self._groups   # one axis: one group, the detectors in their order
+        else:
+            idx, rows, weight = [], np.zeros((0, n), complex), 1.0
+        if idx != list(range(len(self.detectors))):
+            return None
+        buffer = getattr(self.transform, "buffer", None)
+        row_plans = getattr(self.transform, "row_plans", None)
+        plans = row_plans() if row_plans is not None else None
+        if buffer is not None and buffer.size == nb * n:
+            scratch = buffer.reshape(nb, n)
+            if not np.shares_memory(scratch, buffer):   # the transform's own rows, never a copy
+                return None
+        else:
+            scratch, plans = np.empty((nb, n), self.transform.dtype), None
+        from .kernels import sample   # lazy: numba kernels load on first use
+        psi0 = None if self._psi0 is None else np.ascontiguousarray(self._psi0.reshape(-1, n))
+        return {"kernels": sample, "scratch": scratch, "plans": plans, "x": np.ascontiguousarray(self._x[2]),
+                "kinetic": np.ascontiguousarray(self._t[2], dtype=float),
+                "wavenumber": np.ascontiguousarray(self._k[2], dtype=float),
+                "rows": np.ascontiguousarray(rows, dtype=np.complex128), "idx": idx, "weight": weight,
+                "psi0": psi0 if psi0 is not None else np.zeros((1, n), scratch.dtype)}
 
     def _detector_groups(self, where) -> list:
         """``(view axis, detector indices, rows (2M, n), weight)`` per axis for
@@ -243,6 +296,9 @@ class Observer:
 
     def measure_members(self, psi: np.ndarray, potential: np.ndarray, t: float | None = None) -> list[dict]:
         """The observables of every member (a list of dicts, in order)."""
+        rows = self._row_sample
+        if rows is not None and psi.dtype == rows["scratch"].dtype:   # 1D: one compiled pass
+            return self._measure_rows(psi, potential)
         k, nb, dv = self._kernels, self._nb, self.dv
         psi4 = self._view4(np.ascontiguousarray(psi))
         v3 = self._potential_view(potential)
@@ -253,33 +309,8 @@ class Observer:
         phi4 = self._view4(phi)
         spec = np.empty((nb, 2))
         k.spectrum_sums(phi4, *self._t, *self._k, spec)
-        # per member in Python floats: numpy's calls on arrays of one element cost ~1 us each
-        par_dv = self._parseval_dv
-        quartic = None
-        if self.contact is not None:
-            # the mean-field energy per atom: (g N / 2) sum |psi|^4 dV, over the norm
-            rho = psi4.real.astype(float)**2 + psi4.imag.astype(float)**2
-            quartic = ((rho * rho).reshape(nb, -1).sum(axis=1) * dv).tolist()
         p_box = None if self._momentum_from_spectrum else self._momentum_box(psi4, phi4)
-        scalars = []
-        for b, (d, sp) in enumerate(zip(dens.tolist(), spec.tolist())):
-            norm = d[0] * dv
-            safe = norm if norm > 0 else math.nan
-            x_rel = d[1] * dv / safe
-            x2 = d[2] * dv / safe - x_rel * x_rel
-            energy = (sp[0] * par_dv + d[3] * dv) / safe
-            r = {"norm": norm, "x_mean": x_rel + self._x_origin, "x_std": math.sqrt(max(x2, 0.0))
-                 if x2 == x2 else math.nan,
-                 "p_mean": sp[1] * par_dv / safe if p_box is None else p_box[b] * dv / safe}
-            if quartic is not None:
-                mean_field = self.contact * quartic[b] / safe
-                r["chemical_potential"] = energy + mean_field
-                energy = energy + 0.5 * mean_field
-            r["energy"] = energy
-            if self._psi0 is not None:
-                r["autocorrelation_real"] = d[4] * dv
-                r["autocorrelation_imag"] = d[5] * dv
-            scalars.append(r)
+        scalars = self._member_scalars(dens, spec, self._quartic(psi4), p_box)
         flux = np.zeros((nb, len(self.detectors)))
         amp = np.full((nb, len(self.detectors)), complex("nan"))
         slope = np.full((nb, len(self.detectors)), complex("nan"))
@@ -306,6 +337,69 @@ class Observer:
                 r["spectrum_dpsi"] = np.stack([self._lines[n][1][b] for n in self.spectrum_lines])
             out.append(r)
         return out
+
+    def _measure_rows(self, psi, potential) -> list[dict]:
+        """:meth:`measure_members` of a 1D periodic grid in the compiled
+        pass (:meth:`_row_sampler`): the same values, per member, with a
+        few array operations around the one kernel call (at 4096 points
+        the numpy calls had cost as much as the pass itself)."""
+        a = self._row_sample
+        nb, n, m = self._nb, self.grid.size, len(a["idx"])
+        psi2 = np.ascontiguousarray(psi).reshape(nb, n)
+        v = self._potential_view(potential).reshape(n)
+        sums = np.empty((nb, 8))             # the density sums, then the spectrum sums
+        both = np.empty((nb, 2 * m), np.complex128)
+        flux = np.empty((nb, m))
+        plans, kernels, has_psi0, flux_scale = a["plans"], a["kernels"], self._psi0 is not None, a["weight"] / self.mass
+        if plans is not None:
+            kernels.sample_rows(psi2, a["scratch"], plans.execute, plans.forward, a["x"], v, a["psi0"], has_psi0,
+                                a["kinetic"], a["wavenumber"], a["rows"], flux_scale, sums, both, flux)
+        else:
+            kernels.psi_sums(psi2, a["scratch"], a["x"], v, a["psi0"], has_psi0, sums)
+            phi = self.transform.forward(a["scratch"].reshape(self.transform.shape)).reshape(nb, n)
+            kernels.phi_sums(phi, a["kinetic"], a["wavenumber"], a["rows"], flux_scale, sums, both, flux)
+        scalars = self._member_scalars(sums[:, :6], sums[:, 6:], self._quartic(psi2), None)
+        for b, r in enumerate(scalars):
+            r["flux"] = flux[b]
+            r["detector_psi"] = both[b, :m]
+            r["detector_dpsi"] = both[b, m:]
+        return scalars
+
+    def _quartic(self, psi):
+        """sum |psi|^4 dV per member (a list), for a mean-field interaction's
+        energy; None for a linear run."""
+        if self.contact is None:
+            return None
+        rho = psi.real.astype(float)**2 + psi.imag.astype(float)**2
+        return ((rho * rho).reshape(self._nb, -1).sum(axis=1) * self.dv).tolist()
+
+    def _member_scalars(self, dens, spec, quartic, p_box) -> list[dict]:
+        """The scalars of every member (atomic units) from its density sums
+        ``dens`` (members, 6) and spectrum sums ``spec`` (members, 2); per
+        member in Python floats (numpy's calls on arrays of one element cost
+        ~1 us each).  ``quartic``: sum |psi|^4 dV per member, or None;
+        ``p_box``: a box axis' Im sum conj(psi) dpsi/dx per member, or None."""
+        dv, par_dv = self.dv, self._parseval_dv
+        scalars = []
+        for b, (d, sp) in enumerate(zip(dens.tolist(), spec.tolist())):
+            norm = d[0] * dv
+            safe = norm if norm > 0 else math.nan
+            x_rel = d[1] * dv / safe
+            x2 = d[2] * dv / safe - x_rel * x_rel
+            energy = (sp[0] * par_dv + d[3] * dv) / safe
+            r = {"norm": norm, "x_mean": x_rel + self._x_origin, "x_std": math.sqrt(max(x2, 0.0))
+                 if x2 == x2 else math.nan,
+                 "p_mean": sp[1] * par_dv / safe if p_box is None else p_box[b] * dv / safe}
+            if quartic is not None:
+                mean_field = self.contact * quartic[b] / safe
+                r["chemical_potential"] = energy + mean_field
+                energy = energy + 0.5 * mean_field
+            r["energy"] = energy
+            if self._psi0 is not None:
+                r["autocorrelation_real"] = d[4] * dv
+                r["autocorrelation_imag"] = d[5] * dv
+            scalars.append(r)
+        return scalars
 
     def _in_lab(self, r: dict, psi, t: float) -> dict:
         """One run's values on a falling grid turned into the lab's (see the

@@ -22,11 +22,11 @@ from numba.extending import intrinsic
 
 from .split import abs2
 
-__all__ = ["strang_rows"]
+__all__ = ["strang_rows", "execute_address"]
 
 
 @intrinsic
-def _execute(typingctx, fn, plan, src, dst):
+def execute_address(typingctx, fn, plan, src, dst):
     """Call ``void fn(plan, src, dst)`` (FFTW's new-array execute) at the
     address ``fn``: the address is an argument, not a constant of the
     machine code, so the compiled loop caches on disk like any kernel."""
@@ -126,10 +126,10 @@ def strang_rows(psi, half, whole, whole_squared, kinetic, nsteps, execute, forwa
         have = has_expected
         for s in range(nsteps + 1):
             if s > 0:
-                _execute(execute, forward, p, p)
+                execute_address(execute, forward, p, p)
                 for k in range(n):
                     row[k] *= kinetic[k]
-                _execute(execute, backward, p, p)
+                execute_address(execute, backward, p, p)
             j = 0 if s == 0 else (1 if s < nsteps else 2)
             lost = 0.0
             if lo.size:
