@@ -15,6 +15,7 @@ Conventions (shared with the numerics notes):
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -118,7 +119,8 @@ class Grid:
 
     @property
     def size(self) -> int:
-        return int(np.prod(self.shape))
+        # a product of the axes' points (math.prod: np.prod cost ~10 us, and the observer asks at every sample)
+        return math.prod(a.points for a in self.axes)
 
     @property
     def names(self) -> tuple[str, ...]:

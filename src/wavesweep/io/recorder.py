@@ -147,7 +147,7 @@ class ResultWriter:
     attrs : global attributes written at open (the job text, units, ...).
     """
 
-    block = 256  # scalar samples buffered before a write
+    block = SERIES_CHUNK_ROWS  # scalar samples buffered before a write (a chunk's worth: see _flush)
 
     def __init__(self, path, layout: dict, attrs: dict):
         self.path = Path(path)
