@@ -1027,4 +1027,6 @@ def main():
 
 
 if __name__ == "__main__":
-    main()
+    from wavesweep.setup import single_threaded_blas
+    with single_threaded_blas():   # as a run's loop has it (the steps and samples timed here in-process)
+        main()

@@ -45,7 +45,7 @@ from .io.checkpoint import ResultExists
 from .observables import Observer
 from .propagators import scheme_class
 from .run import Simulation, norm_keeping_of, take_up_norm_keeping, progress_bar
-from .setup import set_kernel_threads
+from .setup import blas_on_one_thread, set_kernel_threads
 from .surfaces import CoupledSplitOperator
 
 __all__ = ["BatchedRun", "batch_key", "batch_group", "members_for", "BATCH_MAX_ELEMENTS", "BATCH_MAX_MEMBERS"]
@@ -137,6 +137,7 @@ class BatchedRun:
         self.sims = [Simulation(j, fft, threads) for j in jobs]
         self.fft, self.threads = fft, threads
 
+    @blas_on_one_thread
     def run(self, paths, progress: bool = False, on_sample=None, checkpoints=None, should_stop=None,
             on_end=None, on_resume=None) -> list:
         """Propagate every member and write its result to ``paths[i]``.

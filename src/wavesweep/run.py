@@ -34,7 +34,8 @@ from .io.record import record_checksum
 from .io.recorder import ResultWriter
 from .job import Job, job_from_dict, load_job
 from .kernels import density_of
-from .setup import AXIS_LONG, CoupledSetup, Setup, analysis_record, coupled_attributes, final_detector_values
+from .setup import (AXIS_LONG, CoupledSetup, Setup, analysis_record, blas_on_one_thread, coupled_attributes,
+                    final_detector_values)
 from .surfaces import PHASE_CONVENTION
 from .units import decimal_multiple
 from .volkov import VolkovIntegrals, uniform_force_along, uniform_force_vector
@@ -74,6 +75,7 @@ class Simulation:
         replaces its own file."""
         return Path(outdir) / f"{self.job.name}-{self.job.run_id}.nc"
 
+    @blas_on_one_thread
     def run(self, outdir=None, path=None, progress: bool = True, on_sample=None,
             checkpoint=None, should_stop=None, on_resume=None) -> Path:
         """Propagate and write the result; returns the file path.
