@@ -133,15 +133,19 @@ def mean_position_momentum(psi, grid, axes=None) -> tuple[np.ndarray, np.ndarray
 
 
 def _flushed(psi0) -> np.ndarray:
-    """A contiguous copy of ``psi0`` with its subnormal parts set to zero.
-    A packet's far tails underflow to subnormal numbers, and every product
-    with one costs the processor ~100 cycles (the autocorrelation pass over
-    a 4096-point Gaussian took 18 us for its 112 subnormal parts, against
-    2 us); what they add to the sum is below 1e-300, nothing a float64 sum
-    of the packet's overlap can hold."""
+    """A contiguous copy of ``psi0`` with its tiny parts set to zero: below
+    sqrt of float64's smallest normal number (1.5e-154), or psi0's own
+    smallest normal (1.2e-38 in single precision), whichever is larger.
+    A packet's far tails reach such values, and the autocorrelation's
+    products of two of them underflow to subnormal numbers, each of which
+    costs the processor ~100 cycles: the pass over a 4096-point Gaussian
+    took 4.2 us (18 us while psi0's own subnormal parts were kept) against
+    1.2.  What they add to the sum is below 1e-150 of psi's scale, nothing
+    a float64 sum of the overlap can hold."""
     out = np.array(psi0, copy=True, order="C")
     parts = out.view(out.real.dtype)
-    parts[np.abs(parts) < np.finfo(parts.dtype).tiny] = 0.0
+    floor = max(float(np.finfo(parts.dtype).tiny), math.sqrt(float(np.finfo(np.float64).tiny)))
+    parts[np.abs(parts) < floor] = 0.0
     return out
 
 
@@ -261,10 +265,16 @@ class Observer:
             scratch, plans = np.empty((nb, n), self.transform.dtype), None
         from .kernels import sample   # lazy: numba kernels load on first use
         psi0 = None if self._psi0 is None else np.ascontiguousarray(self._psi0.reshape(-1, n))
+        # the value rows alone: a derivative row is i k times its value row (spectral derivative of the
+        # same interpolant) but at an even grid's Nyquist mode, whose entry is passed on its own
+        m = len(idx)
+        wavenumber = np.ascontiguousarray(self._k[2], dtype=float)   # the Nyquist mode's zeroed
+        nyquist = n // 2 if n % 2 == 0 else -1
+        nyquist_slope = rows[m:, nyquist].astype(np.complex128) if nyquist >= 0 else np.zeros(m, np.complex128)
         return {"kernels": sample, "scratch": scratch, "plans": plans, "x": np.ascontiguousarray(self._x[2]),
                 "kinetic": np.ascontiguousarray(self._t[2], dtype=float),
-                "wavenumber": np.ascontiguousarray(self._k[2], dtype=float),
-                "rows": np.ascontiguousarray(rows, dtype=np.complex128), "idx": idx, "weight": weight,
+                "wavenumber": wavenumber, "rows": np.ascontiguousarray(rows[:m], dtype=np.complex128),
+                "nyquist": nyquist, "nyquist_slope": np.ascontiguousarray(nyquist_slope), "idx": idx, "weight": weight,
                 "psi0": psi0 if psi0 is not None else np.zeros((1, n), scratch.dtype)}
 
     def _detector_groups(self, where) -> list:
@@ -353,11 +363,13 @@ class Observer:
         plans, kernels, has_psi0, flux_scale = a["plans"], a["kernels"], self._psi0 is not None, a["weight"] / self.mass
         if plans is not None:
             kernels.sample_rows(psi2, a["scratch"], plans.execute, plans.forward, a["x"], v, a["psi0"], has_psi0,
-                                a["kinetic"], a["wavenumber"], a["rows"], flux_scale, sums, both, flux)
+                                a["kinetic"], a["wavenumber"], a["rows"], a["nyquist"], a["nyquist_slope"],
+                                flux_scale, sums, both, flux)
         else:
             kernels.psi_sums(psi2, a["scratch"], a["x"], v, a["psi0"], has_psi0, sums)
             phi = self.transform.forward(a["scratch"].reshape(self.transform.shape)).reshape(nb, n)
-            kernels.phi_sums(phi, a["kinetic"], a["wavenumber"], a["rows"], flux_scale, sums, both, flux)
+            kernels.phi_sums(phi, a["kinetic"], a["wavenumber"], a["rows"], a["nyquist"], a["nyquist_slope"],
+                             flux_scale, sums, both, flux)
         scalars = self._member_scalars(sums[:, :6], sums[:, 6:], self._quartic(psi2), None)
         for b, r in enumerate(scalars):
             r["flux"] = flux[b]

@@ -39,22 +39,34 @@ def _copy_sums(row, out, x, v):
         s1 += d * xj
         s2 += d * xj * xj
         s3 += d * v[j]
-    return s0, s1, s2, s3
+    return s0, s1, s2, s3, 0.0, 0.0
 
 
 @numba.njit(cache=True, nogil=True, fastmath=set(REDUCTION_FLAGS))
-def _overlap(row0, row):
-    """(Re, Im) of sum conj(row0) row, promoted to float64 (see abs2)."""
+def _copy_sums_overlap(row, out, x, v, row0):
+    """:func:`_copy_sums` and (Re, Im) of sum conj(row0) row in the same
+    pass, promoted to float64 (see abs2)."""
+    s0 = 0.0
+    s1 = 0.0
+    s2 = 0.0
+    s3 = 0.0
     s4 = 0.0
     s5 = 0.0
     for j in range(row.size):
-        c = row0[j]
         z = row[j]
-        cr, ci = np.float64(c.real), np.float64(c.imag)
+        out[j] = z
         zr, zi = np.float64(z.real), np.float64(z.imag)
+        d = zr * zr + zi * zi
+        xj = x[j]
+        s0 += d
+        s1 += d * xj
+        s2 += d * xj * xj
+        s3 += d * v[j]
+        c = row0[j]
+        cr, ci = np.float64(c.real), np.float64(c.imag)
         s4 += cr * zr + ci * zi
         s5 += cr * zi - ci * zr
-    return s4, s5
+    return s0, s1, s2, s3, s4, s5
 
 
 @numba.njit(cache=True, nogil=True, fastmath=set(REDUCTION_FLAGS))
@@ -69,18 +81,27 @@ def _spectrum(out, kinetic, wavenumber):
 
 
 @numba.njit(cache=True, nogil=True, fastmath=set(REDUCTION_FLAGS))
-def _row_product(r, out):
-    """sum_j r[j] out[j] in complex128, as real and imaginary sums."""
-    sr = 0.0
-    si = 0.0
+def _value_and_slope(r, out, wavenumber):
+    """(sum_j r[j] out[j], sum_j i k_j r[j] out[j]) in complex128, k =
+    ``wavenumber``: a detector's interpolated psi and dpsi/dx from its
+    value row alone (the derivative row is i k times the value row but at
+    the Nyquist mode, which ``wavenumber`` leaves out and the caller adds)."""
+    ar = 0.0
+    ai = 0.0
+    dr = 0.0
+    di = 0.0
     for j in range(out.size):
         a = r[j]
         z = out[j]
-        ar, ai = a.real, a.imag
         zr, zi = np.float64(z.real), np.float64(z.imag)
-        sr += ar * zr - ai * zi
-        si += ar * zi + ai * zr
-    return complex(sr, si)
+        pr = a.real * zr - a.imag * zi
+        pi = a.real * zi + a.imag * zr
+        k = wavenumber[j]
+        ar += pr
+        ai += pi
+        dr -= k * pi
+        di += k * pr
+    return complex(ar, ai), complex(dr, di)
 
 
 def psi_sums(psi, scratch, x, v, psi0, has_psi0, sums):
@@ -92,20 +113,19 @@ def psi_sums(psi, scratch, x, v, psi0, has_psi0, sums):
         _psi_row(psi[b], scratch[b], x, v, psi0[b if per_member else 0], has_psi0, sums[b])
 
 
-def phi_sums(phi, kinetic, wavenumber, rows, flux_scale, sums, both, flux):
+def phi_sums(phi, kinetic, wavenumber, rows, nyquist, nyquist_slope, flux_scale, sums, both, flux):
     """The second half of :func:`sample_rows` for every row of the
     coefficients ``phi``: ``sums[b, 6:]``, ``both[b]`` and ``flux[b]``."""
     for b in range(phi.shape[0]):
-        _phi_row(phi[b], kinetic, wavenumber, rows, flux_scale, sums[b], both[b], flux[b])
+        _phi_row(phi[b], kinetic, wavenumber, rows, nyquist, nyquist_slope, flux_scale, sums[b], both[b], flux[b])
 
 
 @numba.njit(cache=True, nogil=True)
 def _psi_row(row, out, x, v, row0, has_psi0, sums):
-    s0, s1, s2, s3 = _copy_sums(row, out, x, v)
-    s4 = 0.0
-    s5 = 0.0
     if has_psi0:
-        s4, s5 = _overlap(row0, row)
+        s0, s1, s2, s3, s4, s5 = _copy_sums_overlap(row, out, x, v, row0)
+    else:
+        s0, s1, s2, s3, s4, s5 = _copy_sums(row, out, x, v)
     sums[0] = s0
     sums[1] = s1
     sums[2] = s2
@@ -115,17 +135,20 @@ def _psi_row(row, out, x, v, row0, has_psi0, sums):
 
 
 @numba.njit(cache=True, nogil=True)
-def _phi_row(out, kinetic, wavenumber, rows, flux_scale, sums, both, flux):
+def _phi_row(out, kinetic, wavenumber, rows, nyquist, nyquist_slope, flux_scale, sums, both, flux):
     sums[6], sums[7] = _spectrum(out, kinetic, wavenumber)
-    for m in range(rows.shape[0]):
-        both[m] = _row_product(rows[m], out)
-    half = rows.shape[0] // 2
-    for i in range(half):
-        flux[i] = (both[i].conjugate() * both[half + i]).imag * flux_scale
+    m = rows.shape[0]
+    for i in range(m):
+        a, d = _value_and_slope(rows[i], out, wavenumber)
+        if nyquist >= 0:   # the Nyquist mode's own derivative row entry
+            d += nyquist_slope[i] * np.complex128(out[nyquist])
+        both[i] = a
+        both[m + i] = d
+        flux[i] = (a.conjugate() * d).imag * flux_scale
 
 
 def sample_rows(psi, scratch, execute, forward, x, v, psi0, has_psi0, kinetic, wavenumber, rows,
-                flux_scale, sums, both, flux):
+                nyquist, nyquist_slope, flux_scale, sums, both, flux):
     """The sums of one sample of every row of ``psi`` (members, n) of a 1D
     periodic grid, psi untouched, in float64 whatever psi's precision:
 
@@ -136,9 +159,12 @@ def sample_rows(psi, scratch, execute, forward, x, v, psi0, has_psi0, kinetic, w
     * ``sums[b, 6:]``: sums of T |phi|^2 and k |phi|^2 over the coefficients
       phi of FFTW's unnormalised forward transform (``kinetic``,
       ``wavenumber``: (n,), in FFT order);
-    * ``both[b, m]``: sum_j rows[m, j] phi[j] in complex128, the detectors'
-      interpolation rows (value rows, then derivative rows) applied: psi
-      and dpsi/dx at the detectors;
+    * ``both[b, :m]``, ``both[b, m:]``: psi and dpsi/dx at the m detectors,
+      sum_j rows[i, j] phi[j] and sum_j i k_j rows[i, j] phi[j] in
+      complex128 (``rows`` the detectors' value rows of spectral
+      interpolation, k = ``wavenumber``), plus ``nyquist_slope[i]``
+      phi[nyquist] when the even grid's Nyquist mode ``nyquist`` >= 0
+      (its derivative row entry, which i k times the value row is not);
     * ``flux[b, i]``: Im(conj(psi) dpsi/dx) at detector i, times ``flux_scale``.
 
     psi's rows are copied into ``scratch`` (same shape, dtype and row
@@ -154,7 +180,7 @@ def sample_rows(psi, scratch, execute, forward, x, v, psi0, has_psi0, kinetic, w
         _psi_row(psi[b], out, x, v, psi0[b if per_member else 0], has_psi0, sums[b])
         p = out.ctypes.data
         execute_address(execute, forward, p, p)
-        _phi_row(out, kinetic, wavenumber, rows, flux_scale, sums[b], both[b], flux[b])
+        _phi_row(out, kinetic, wavenumber, rows, nyquist, nyquist_slope, flux_scale, sums[b], both[b], flux[b])
 
 
 sample_rows = numba.njit(cache=True, nogil=True)(sample_rows)
