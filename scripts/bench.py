@@ -17,6 +17,7 @@ from __future__ import annotations
 import argparse
 import statistics
 import time
+from pathlib import Path
 
 import numpy as np
 
@@ -209,12 +210,34 @@ def bench_whole_run(repeats: int):
                 p2 = timed(pair, inner)
                 slope = ((t2 - t1) - (t1 - t0)) / (9 * steps)
                 slopes.append(2 * slope / (p1 + p2))
+            # one sample alone: the observer's values (its transform and passes), and with its record
+            # (units, health, the buffered write) as the run makes it, per bare pair
+            setup = sim.setup
+            prop, obs = setup.make_propagator(), setup.make_observer()
+            psi = prop.step(prop.load(setup.psi0), 10)
+            book = sim.begin(Path(tmp) / "sample-bench.nc")
+            values = setup.measure(obs, psi, prop.t)
+
+            def record(values=values, book=book, psi=psi, prop=prop, sim=sim):
+                sim.record_sample(book, dict(values), prop.t, prop.absorbed, psi, 10)
+            samples, records = [], []
+            for _ in range(repeats):
+                p1 = timed(pair, inner)
+                t_sample = timed(lambda: setup.measure(obs, psi, prop.t), 200)
+                t_record = timed(record, 200)
+                p2 = timed(pair, inner)
+                samples.append(2 * t_sample / (p1 + p2))
+                records.append(2 * t_record / (p1 + p2))
+            book.writer.abort()
             line.append(f"{precision} {statistics.median(ratios):.2f}x ({statistics.median(per_step) * 1e6:.1f} us), "
-                        f"{statistics.median(slopes):.2f}x a step added")
+                        f"{statistics.median(slopes):.2f}x a step added, a sample {statistics.median(samples):.2f}x "
+                        f"(+ its record {statistics.median(records):.2f}x)")
         print(f"whole run, 1D 4096, observables every 10 steps, a snapshot every 20, {steps} steps, in-process "
               f"and warm ({floor.name}, {floor.threads} thread(s)), per step / bare FFT pair: {'; '.join(line)} "
               f"(medians over {repeats} rounds; 'a step added': the run 10x longer, its extra time over its extra "
-              "steps, the fixed cost left out)", flush=True)
+              "steps, the fixed cost left out, and its frames too: both runs record 101; 'a sample': the "
+              "observer's values of one sample per pair, 'its record' the units, health and buffered write of "
+              "its values)", flush=True)
 
 
 def bench_fixed_cost(repeats: int):
