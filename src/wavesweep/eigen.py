@@ -669,33 +669,50 @@ BAND_CHUNK = 20
 
 class _Lanczos:
     """Lanczos recurrence of a Hermitian ``apply`` from psi, extended on
-    demand; keeps three vectors and the tridiagonal matrix."""
+    demand; keeps three vectors and the tridiagonal matrix.  With
+    ``potential`` (real, psi's shape), ``apply`` is H's kinetic part alone
+    and the step's vector work, V q included, runs in one compiled kernel
+    (:func:`wavesweep.kernels.lanczos.lanczos_update`)."""
 
-    def __init__(self, apply, psi, scale):
+    def __init__(self, apply, psi, scale, potential=None):
         self.apply, self.shape, self.scale = apply, np.shape(psi), scale
+        self.potential = None if potential is None else np.ascontiguousarray(
+            np.broadcast_to(potential, np.shape(psi)), dtype=float).reshape(-1)
         q = np.array(psi, dtype=complex).reshape(-1)
         self.q, self.q_prev = q / np.linalg.norm(q), None
         self.alphas, self.betas, self.exhausted = [], [], False
 
+    @classmethod
+    def of_hamiltonian(cls, h, potential, psi, scale):
+        """The recurrence of T + ``potential`` (:meth:`Hamiltonian.apply_kinetic`)."""
+        return cls(h.apply_kinetic, psi, scale, potential=potential)
+
     def extend(self, steps):
+        if self.potential is not None:
+            from .kernels.lanczos import lanczos_update   # lazy: numba loads only where a recurrence runs
         for _ in range(int(steps)):
             if self.exhausted:
                 return
             q = self.q
             w = np.asarray(self.apply(q.reshape(self.shape)), complex).reshape(-1)
-            if self.q_prev is not None:
-                w -= self.betas[-1] * self.q_prev
-            a = float(np.vdot(q, w).real)
-            w -= a * q
-            c = np.vdot(q, w)          # a second pass against q keeps the local orthogonality
-            w -= c * q
-            self.alphas.append(a + float(c.real))
-            beta = float(np.linalg.norm(w))
+            if self.potential is not None:
+                a, c_real, beta = lanczos_update(w, q, q if self.q_prev is None else self.q_prev, self.potential,
+                                                 self.betas[-1] if self.betas else 0.0, self.q_prev is not None)
+            else:
+                if self.q_prev is not None:
+                    w -= self.betas[-1] * self.q_prev
+                a = float(np.vdot(q, w).real)
+                w -= a * q
+                c = np.vdot(q, w)          # a second pass against q keeps the local orthogonality
+                w -= c * q
+                c_real, beta = float(c.real), float(np.linalg.norm(w))
+            self.alphas.append(a + c_real)
             if not beta > 1e-13 * self.scale:
                 self.exhausted = True
                 return
             self.betas.append(beta)
-            self.q_prev, self.q = q, w / beta
+            w /= beta
+            self.q_prev, self.q = q, w
 
     more = True    # steps can always be added (a recorded recurrence runs out)
 
@@ -760,7 +777,7 @@ def lanczos_recurrence(h, psi, threshold: float = DEFAULT_MIN_WEIGHT, resolution
     v, _ = walled_potential(h, None)
     lo = float(v.min()) + float(h.kinetic.min())
     hi = float(v.max()) + float(h.kinetic.max())
-    lanczos = _Lanczos(lambda x: h.apply_static(x, potential=v), psi, hi - lo + 1e-300)
+    lanczos = _Lanczos.of_hamiltonian(h, v, psi, hi - lo + 1e-300)
     found = []
 
     def ground_level():
@@ -832,10 +849,7 @@ def energy_band(h, psi, threshold: float, resolution: float, width: float | None
     spectrum_hi = float(v.max()) + float(h.kinetic.max())
     scale = spectrum_hi - spectrum_lo + 1e-300
 
-    def apply(x):
-        return h.apply_static(x, potential=v)
-
-    return _band(_Lanczos(apply, psi, scale), spectrum_lo, spectrum_hi, threshold, resolution, width,
+    return _band(_Lanczos.of_hamiltonian(h, v, psi, scale), spectrum_lo, spectrum_hi, threshold, resolution, width,
                  ground=lambda: ground_energy(h))
 
 

@@ -406,3 +406,39 @@ def test_degenerate_levels_are_marked(tmp_path):
     assert all(abs(float(c[1]) - e) <= float(c[2]) for c, e in zip(cells, [1, 2, 2, 3, 3, 3, 4]))
     assert [c[3] if len(c) > 3 else "" for c in cells] == ["", "levels 1-2", "levels 1-2", "levels 3-5",
                                                           "levels 3-5", "levels 3-5", "levels 6-7 (or more)"]
+
+
+@pytest.mark.parametrize("points", [64, 65])
+def test_the_compiled_lanczos_steps_against_the_dense_spectrum(points):
+    """The Lanczos recurrence a run records (its vector work compiled:
+    kernels.lanczos) against references outside it: the numpy form of the
+    same three-term recurrence (Lanczos, J. Res. Natl. Bur. Stand. 45, 255
+    (1950); the recurrence with one extra orthogonalisation against q, as
+    before the kernel) to rounding over the first steps, and the dense
+    Hamiltonian's eigenvalues (scipy.linalg.eigvalsh of
+    Hamiltonian.static_matrix): once the Krylov space is the whole grid,
+    the extreme Ritz values are the spectrum's ends (Golub & Van Loan,
+    Matrix Computations, ch. 10; from memory)."""
+    from wavesweep import eigen
+    from wavesweep.job import job_from_dict
+    from wavesweep.setup import Setup
+    setup = Setup(job_from_dict({
+        "grid": {"x": {"min": -10.0, "max": 10.0, "points": points}},
+        "potential": [{"kind": "harmonic", "omega": 0.6}],
+        "packet": {"center": 1.0, "width": 1.2, "momentum": 0.7},
+        "evolve": {"dt": 0.01, "duration": 1.0}}))
+    h = setup.hamiltonian
+    v = h.static_potential
+    compiled = eigen._Lanczos.of_hamiltonian(h, v, setup.psi0, 1.0)
+    assert compiled.potential is not None
+    plain = eigen._Lanczos(lambda x: h.apply_static(x, potential=v), setup.psi0, 1.0)
+    compiled.extend(10)
+    plain.extend(10)
+    np.testing.assert_allclose(compiled.alphas, plain.alphas, rtol=1e-11)
+    np.testing.assert_allclose(compiled.betas, plain.betas, rtol=1e-11)
+    compiled.extend(3 * points)   # far past the grid's dimension: the ends converge (or the space is exhausted)
+    ritz = scipy.linalg.eigvalsh_tridiagonal(np.array(compiled.alphas),
+                                             np.array(compiled.betas[:len(compiled.alphas) - 1]))
+    exact = scipy.linalg.eigvalsh(h.static_matrix(potential=v))
+    assert ritz.min() == pytest.approx(exact.min(), rel=1e-9, abs=1e-9)
+    assert ritz.max() == pytest.approx(exact.max(), rel=1e-9)
