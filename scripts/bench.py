@@ -220,24 +220,33 @@ def bench_whole_run(repeats: int):
 
             def record(values=values, book=book, psi=psi, prop=prop, sim=sim):
                 sim.record_sample(book, dict(values), prop.t, prop.absorbed, psi, 10)
-            samples, records = [], []
+            samples, records, bounds = [], [], []
+            holder = {"psi": psi}
+
+            def ten_and_a_sample(holder=holder, prop=prop, obs=obs, setup=setup):
+                holder["psi"] = prop.step(holder["psi"], 10)
+                setup.measure(obs, holder["psi"], prop.t)
             for _ in range(repeats):
                 p1 = timed(pair, inner)
                 t_sample = timed(lambda: setup.measure(obs, psi, prop.t), 200)
                 t_record = timed(record, 200)
+                t_bound = timed(ten_and_a_sample, 100) / 10
                 p2 = timed(pair, inner)
                 samples.append(2 * t_sample / (p1 + p2))
                 records.append(2 * t_record / (p1 + p2))
+                bounds.append(2 * t_bound / (p1 + p2))
             book.writer.abort()
             line.append(f"{precision} {statistics.median(ratios):.2f}x ({statistics.median(per_step) * 1e6:.1f} us), "
                         f"{statistics.median(slopes):.2f}x a step added, a sample {statistics.median(samples):.2f}x "
-                        f"(+ its record {statistics.median(records):.2f}x)")
+                        f"(+ its record {statistics.median(records):.2f}x), steps and samples alone "
+                        f"{statistics.median(bounds):.2f}x")
         print(f"whole run, 1D 4096, observables every 10 steps, a snapshot every 20, {steps} steps, in-process "
               f"and warm ({floor.name}, {floor.threads} thread(s)), per step / bare FFT pair: {'; '.join(line)} "
               f"(medians over {repeats} rounds; 'a step added': the run 10x longer, its extra time over its extra "
               "steps, the fixed cost left out, and its frames too: both runs record 101; 'a sample': the "
               "observer's values of one sample per pair, 'its record' the units, health and buffered write of "
-              "its values)", flush=True)
+              "its values; 'steps and samples alone': 10 steps and a sample per 10 steps, no record, no "
+              "run loop: what this design's whole run can approach)", flush=True)
 
 
 def bench_fixed_cost(repeats: int):
