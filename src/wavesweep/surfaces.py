@@ -25,7 +25,7 @@ exactly their product since V does not change, with the absorber's
 exp(-W dt/2) of both step ends in the kick across steps (so a call of n
 steps makes one kick per sub-step and one more); the matrices are made
 once, their upper triangles packed (U is complex symmetric), and applied
-in place by a numba kernel (``local_matrix``); the kinetic step of all
+in place by a numba kernel (``local_matrix_members``, a solo run a batch of one); the kinetic step of all
 surfaces is one batched transform of the (S, *grid) array, in place in
 the transform's buffer where the backend allows, with the kinetic phase
 (the 1/N folded in) multiplied by the single surface's kernel.  Measured
@@ -339,6 +339,7 @@ class CoupledSplitOperator:
         n_faces = len(self.absorber.layers) if self.absorber is not None else 0
         # the state's leading axes, and its rows: one per surface (and member), each a grid
         self._lead = (s,) if self.members is None else (self.members, s)
+        self._batch_lead = (1, s) if self.members is None else self._lead   # the local_matrix_members kernel's
         rows = s if self.members is None else self.members * s
         self.absorbed = np.zeros(self._lead + (n_faces,))
         self._absorbed_rows = self.absorbed.reshape(rows, n_faces)   # a view: the books of each row
@@ -434,12 +435,9 @@ class CoupledSplitOperator:
         self._apply_rows(view4(self._rows(psi), self._nd), u, squared)
 
     def _apply_rows(self, rows4, u, squared):
-        """The kick U (packed, the ``local_matrix`` kernel's layout) on the
+        """The kick U (packed, the ``local_matrix_members`` kernel's layout) on the
         4D rows (surface, or member x surface, then i, j, k) of psi or of a slab."""
-        if self.members is None:
-            self._kernels.local_matrix(rows4, u, self._pair, squared)
-        else:
-            self._kernels.local_matrix_members(rows4.reshape(self._lead + rows4.shape[1:]), u, self._pair, squared)
+        self._kernels.local_matrix_members(rows4.reshape(self._batch_lead + rows4.shape[1:]), u, self._pair, squared)
 
     # -- pieces ------------------------------------------------------------------
     def _kinetic_factor(self, tau):
@@ -610,10 +608,8 @@ class CoupledSplitOperator:
         first, inner, across, last = self._plan
         kicks, losses, taus = self._kicks, self._losses, self._taus
         nd, pair = self._nd, self._pair
-        if self.members is None:
-            apply, shape = self._kernels.local_matrix, None
-        else:   # (member, surface, i, j, k)
-            apply, shape = self._kernels.local_matrix_members, self._lead + (1,) * (3 - nd) + self.grid.shape
+        # (member, surface, i, j, k); a solo run is a batch of one
+        apply, shape = self._kernels.local_matrix_members, self._batch_lead + (1,) * (3 - nd) + self.grid.shape
         book = self._book if self.absorber is not None else None
         decay = self._member_absorbers is not None
         m = len(taus) - 1
@@ -622,7 +618,7 @@ class CoupledSplitOperator:
             if book is not None:
                 book(psi, losses[key]) if key is not across else self._book_across(psi)
             u, squared = kicks[key]
-            apply(view4(psi, nd) if shape is None else psi.reshape(shape), u, pair, squared)
+            apply(psi.reshape(shape), u, pair, squared)
             if decay and key[1] > 0:
                 self._decay(self._slab_views(psi), key[1])
 

@@ -49,8 +49,10 @@ def _gaussian(x, x0, sigma, p0):
 @pytest.mark.parametrize("threaded", [False, True])
 @pytest.mark.parametrize("size", [2, 3])
 @pytest.mark.parametrize("squared", [False, True])
-def test_local_matrix_kernel_is_the_matrix_product(threaded, size, squared):
-    """On a 2D grid (several rows: the threaded build splits them)."""
+@pytest.mark.parametrize("members", [1, 3])
+def test_local_matrix_kernel_is_the_matrix_product(threaded, size, squared, members):
+    """On a 2D grid (several rows: the threaded build splits them), one run
+    (a batch of one) and a batch whose members share U."""
     rng = np.random.default_rng(10 * size + squared)
     shape = (5, 7)
     v = rng.normal(size=(size, size) + shape)
@@ -58,16 +60,16 @@ def test_local_matrix_kernel_is_the_matrix_product(threaded, size, squared):
     u = np.empty((size, size) + shape, complex)
     for i in np.ndindex(shape):
         u[(slice(None), slice(None)) + i] = scipy.linalg.expm(-0.4j * v[(slice(None), slice(None)) + i])
-    psi = rng.normal(size=(size,) + shape) + 1j * rng.normal(size=(size,) + shape)
+    psi = rng.normal(size=(members, size) + shape) + 1j * rng.normal(size=(members, size) + shape)
     upper = np.triu_indices(size)
     pair = np.zeros((size, size), np.int64)
     pair[upper] = pair.T[upper] = np.arange(len(upper[0]))
     packed = np.ascontiguousarray(u[upper].reshape(-1, 1, *shape))
     out = psi.copy()
-    KernelSet(threaded).local_matrix(out.reshape(size, 1, *shape), packed, pair, squared)
-    expected = np.einsum("ab...,b...->a...", u, psi)
+    KernelSet(threaded).local_matrix_members(out.reshape(members, size, 1, *shape), packed, pair, squared)
+    expected = np.einsum("ab...,mb...->ma...", u, psi)
     if squared:
-        expected = np.einsum("ab...,b...->a...", u, expected)
+        expected = np.einsum("ab...,mb...->ma...", u, expected)
     np.testing.assert_allclose(out, expected, rtol=0, atol=1e-13)
 
 

@@ -234,42 +234,18 @@ def layer_loss(psi, w, out):
         out[r // (n0 * n1)] += part[r]
 
 
-def local_matrix(psi, u, pair, squared):
-    """psi_a <- sum_b U_ab psi_b at every point of the (surface, i, j, k)
-    view ``psi``: the kick exp(-i V tau) of coupled surfaces, V the local
-    real symmetric S x S matrix (so U is complex symmetric).  Its upper
-    triangle is packed along u's first axis, U_ab = u[pair[a, b], i, j, k];
-    with ``squared`` U is applied twice (a kick twice as long as one built,
-    as in :func:`kick`).  Two surfaces have their own loop over contiguous
-    rows (no scratch vector; it vectorises: measured 1.3x faster at 4096
-    points than the general loop)."""
-    s, n0, n1, n2 = psi.shape
-    rows = n0 * n1
-    for r in numba.prange(rows):
-        i = r // n1
-        j = r % n1
-        if s == 2:
-            _apply_pair(psi[0, i, j], psi[1, i, j], u[0, i, j], u[1, i, j], u[2, i, j])
-            if squared:
-                _apply_pair(psi[0, i, j], psi[1, i, j], u[0, i, j], u[1, i, j], u[2, i, j])
-        else:
-            old = np.empty(s, psi.dtype)
-            for k in range(n2):
-                for _ in range(2 if squared else 1):
-                    for a in range(s):
-                        old[a] = psi[a, i, j, k]
-                    for a in range(s):
-                        acc = 0j
-                        for b in range(s):
-                            acc += u[pair[a, b], i, j, k] * old[b]
-                        psi[a, i, j, k] = acc
-
-
 def local_matrix_members(psi, u, pair, squared):
-    """:func:`local_matrix` on a batch: psi (member, surface, i, j, k), the
-    same packed U for every member (a batch of coupled runs that differ
-    only in their packets).  One loop over all members' rows, so a batch
-    pays one kernel call per kick, not one per member."""
+    """psi_a <- sum_b U_ab psi_b at every point of every member of the
+    (member, surface, i, j, k) array ``psi`` (a solo run is a batch of
+    one): the kick exp(-i V tau) of coupled surfaces, V the local real
+    symmetric S x S matrix (so U is complex symmetric), the same for every
+    member (a batch of coupled runs that differ only in their packets).
+    Its upper triangle is packed along u's first axis, U_ab = u[pair[a, b],
+    i, j, k]; with ``squared`` U is applied twice (a kick twice as long as
+    one built, as in :func:`kick`).  Two surfaces have their own loop over
+    contiguous rows (no scratch vector; it vectorises: measured 1.3x
+    faster at 4096 points than the general loop).  One loop over all
+    members' rows: a batch pays one kernel call per kick."""
     m, s, n0, n1, n2 = psi.shape
     rows = n0 * n1
     for r in numba.prange(m * rows):
@@ -319,7 +295,7 @@ def real_matvec(q, x, out):
 _KERNELS = {name: _twins(fn) for name, fn in
             (("kick", kick), ("kick_dynamic", kick_dynamic), ("kick_measured", kick_measured),
              ("kick_contact", kick_contact), ("kinetic", kinetic),
-             ("local_matrix", local_matrix), ("local_matrix_members", local_matrix_members))}
+             ("local_matrix_members", local_matrix_members))}
 # the absorbers' books only sum (they write no state): their sums may reassociate.  A kernel that writes
 # psi keeps IEEE order: with the flags the threaded and serial builds of the measured kick multiplied
 # z f s in different orders and their states differed in the last bit.
