@@ -40,13 +40,12 @@ from pathlib import Path
 import numpy as np
 
 from .errors import RunFailed, RunInterrupted
-from .fft import AUTO, THREADS_MIN_POINTS, default_threads, make_transform
+from .fft import THREADS_MIN_POINTS, default_threads
 from .io.checkpoint import ResultExists
 from .observables import Observer
 from .propagators import scheme_class
 from .run import Simulation, norm_keeping_of, take_up_norm_keeping, progress_bar
 from .setup import blas_on_one_thread, set_kernel_threads
-from .surfaces import CoupledSplitOperator
 
 __all__ = ["BatchedRun", "batch_key", "batch_group", "members_for", "BATCH_MAX_ELEMENTS", "BATCH_MAX_MEMBERS"]
 
@@ -372,11 +371,7 @@ class _CoupledLane:
         s0 = sims[0].setup
         nb = len(sims)
         self.positions = positions
-        # the transform of CoupledSetup.make_propagator's batch: all members' surfaces at once
-        transform = make_transform(s0.grid, AUTO, np.complex128, threads or s0.threads,
-                                   members=nb * len(s0.surfaces))
-        self.prop = CoupledSplitOperator(s0.hamiltonian, s0.dt, s0.weights, [s.setup.absorber for s in sims],
-                                         transform=transform, members=nb)
+        self.prop = s0.make_propagator(members=nb, threads=threads, absorbers=[s.setup.absorber for s in sims])
         set_kernel_threads(self.prop.transform.threads)
         self.setups = [s.setup for s in sims]
         self.observers = [s.setup.make_observer() for s in sims]

@@ -876,13 +876,16 @@ class CoupledSetup(Setup):
         return out
 
     def make_propagator(self, transform=None, members: int | None = None,
-                        threads: int | None = None) -> CoupledSplitOperator | CoupledChebyshev:
+                        threads: int | None = None, absorbers=None) -> CoupledSplitOperator | CoupledChebyshev:
         """The coupled split-operator of this job (or the expansion its
         scheme names, :data:`~wavesweep.surfaces.COUPLED_EXPANSIONS`);
         ``members``: for a batch of that many runs differing only in their
         packets (psi (members, S, *grid), :mod:`wavesweep.batched`), its
-        transform with ``threads``."""
+        transform with ``threads``, and ``absorbers`` one per member (their
+        CAP strengths may differ; default: this job's for all)."""
         absorber = self.absorber if self.absorber.active else None
+        if absorbers is not None:
+            absorber = list(absorbers)
         if self.weights is None:
             if members is not None:
                 raise ValueError(f"{self.scheme.name!r} on coupled surfaces steps one run at a time")
