@@ -261,8 +261,10 @@ class Observer:
             scratch = buffer.reshape(nb, n)
             if not np.shares_memory(scratch, buffer):   # the transform's own rows, never a copy
                 return None
+            to_transform = buffer   # (the buffer itself: pyFFTW copies any other array into it)
         else:
             scratch, plans = np.empty((nb, n), self.transform.dtype), None
+            to_transform = scratch.reshape(self.transform.shape)
         from .kernels import sample   # lazy: numba kernels load on first use
         psi0 = None if self._psi0 is None else np.ascontiguousarray(self._psi0.reshape(-1, n))
         # the value rows alone: a derivative row is i k times its value row (spectral derivative of the
@@ -271,7 +273,7 @@ class Observer:
         wavenumber = np.ascontiguousarray(self._k[2], dtype=float)   # the Nyquist mode's zeroed
         nyquist = n // 2 if n % 2 == 0 else -1
         nyquist_slope = rows[m:, nyquist].astype(np.complex128) if nyquist >= 0 else np.zeros(m, np.complex128)
-        return {"kernels": sample, "scratch": scratch, "plans": plans, "x": np.ascontiguousarray(self._x[2]),
+        return {"kernels": sample, "scratch": scratch, "to_transform": to_transform, "plans": plans, "x": np.ascontiguousarray(self._x[2]),
                 "kinetic": np.ascontiguousarray(self._t[2], dtype=float),
                 "wavenumber": wavenumber, "rows": np.ascontiguousarray(rows[:m], dtype=np.complex128),
                 "nyquist": nyquist, "nyquist_slope": np.ascontiguousarray(nyquist_slope), "idx": idx, "weight": weight,
@@ -367,7 +369,7 @@ class Observer:
                                 flux_scale, sums, both, flux)
         else:
             kernels.psi_sums(psi2, a["scratch"], a["x"], v, a["psi0"], has_psi0, sums)
-            phi = self.transform.forward(a["scratch"].reshape(self.transform.shape)).reshape(nb, n)
+            phi = self.transform.forward(a["to_transform"]).reshape(nb, n)
             kernels.phi_sums(phi, a["kinetic"], a["wavenumber"], a["rows"], a["nyquist"], a["nyquist_slope"],
                              flux_scale, sums, both, flux)
         scalars = self._member_scalars(sums[:, :6], sums[:, 6:], self._quartic(psi2), None)

@@ -50,7 +50,8 @@ from .surfaces import (COUPLED_EXPANSIONS, CoupledChebyshev, CoupledSplitOperato
                        adiabatic_populations, coupled_weights, local_eigenvectors)
 
 __all__ = ["Model", "Setup", "CoupledSetup", "resolve_job", "analysis_record", "recorded_run", "rebuilt_record",
-           "final_detector_values", "records_final_values", "set_kernel_threads", "single_threaded_blas", "blas_on_one_thread", "AXIS_LONG"]
+           "final_detector_values", "records_final_values", "set_kernel_threads", "single_threaded_blas",
+           "blas_on_one_thread", "AXIS_LONG"]
 
 AXIS_LONG = {"x": "position x", "y": "position y", "z": "position z", "r": "radius r"}
 

@@ -179,7 +179,7 @@ def test_plans_are_made_only_by_the_main_thread():
     assert got == [None]
 
 
-# -- a sample in one compiled pass (kernels.steps.sample_rows) ----------------------------------------
+# -- a sample in one compiled pass (kernels.sample.sample_rows) ----------------------------------------
 
 SAMPLED = {   # a made-up 1D device with two detectors and a well: every recorded value is non-trivial
     "grid": {"x": {"min": -60.0, "max": 60.0, "points": 1024}},

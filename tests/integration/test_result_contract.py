@@ -397,3 +397,25 @@ def test_writer_reports_an_unwritable_folder_as_bad_output(tmp_path, monkeypatch
     assert info.value.field == "--output"
     assert "Permission denied" in str(info.value)
     assert list(tmp_path.iterdir()) == []
+
+
+def test_the_sample_buffer_is_bounded_in_bytes_too(tmp_path, monkeypatch):
+    """Samples wait in a block of ResultWriter.block rows, fewer when a row
+    is large (a 3D spectrum plane is MiBs a sample): the block's bytes stay
+    within SAMPLE_BUFFER_BYTES, here set small, and every sample still
+    reaches the file in order."""
+    from wavesweep.io import recorder
+    x, layout = _layout(64)
+    writer = ResultWriter(tmp_path / "b.nc", layout, {"run_id": "bounded"})
+    row = writer._row_bytes()
+    monkeypatch.setattr(recorder, "SAMPLE_BUFFER_BYTES", 10 * row)
+    assert writer._sample_block() == 10
+    most = 0
+    for i in range(95):
+        writer.add_sample(float(i), _sample(i))
+        most = max(most, len(writer._buf))
+    assert most == 9   # the tenth sample wrote the block
+    path = writer.close()
+    with netCDF4.Dataset(path) as nc:
+        np.testing.assert_array_equal(nc["time"][:], np.arange(95.0))
+        np.testing.assert_allclose(nc["x_mean"][:], 0.1 * np.arange(95))

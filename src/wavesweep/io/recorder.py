@@ -87,6 +87,8 @@ PER_SURFACE = ("norm", "x_mean", "x_std", "p_mean")
 # written as it comes, as before.
 SERIES_CHUNK_ROWS = 1024
 SERIES_CHUNK_BYTES = 1 << 18
+# Samples are buffered up to ResultWriter.block rows or this many bytes (see _sample_block).
+SAMPLE_BUFFER_BYTES = 16 << 20
 SNAPSHOT_CHUNK_FRAMES = 64
 SNAPSHOT_CHUNK_BYTES = 1 << 18
 # Snapshot frames are stored uncompressed (Fletcher-32 still guards every chunk): a
@@ -147,7 +149,7 @@ class ResultWriter:
     attrs : global attributes written at open (the job text, units, ...).
     """
 
-    block = SERIES_CHUNK_ROWS  # scalar samples buffered before a write (a chunk's worth: see _flush)
+    block = SERIES_CHUNK_ROWS  # samples buffered before a write, at most (see _sample_block)
 
     def __init__(self, path, layout: dict, attrs: dict):
         self.path = Path(path)
@@ -691,8 +693,18 @@ class ResultWriter:
     def add_sample(self, time: float, values: dict) -> None:
         """One scalar sample (job units), buffered."""
         self._buf.append({"time": time, **values})
-        if len(self._buf) >= self.block:
+        if len(self._buf) >= self._sample_block():
             self._flush_samples()
+
+    def _sample_block(self) -> int:
+        """Samples buffered before a write: :attr:`block` (each write costs
+        ~100 us of netCDF calls per variable), fewer when a sample's rows
+        are large (a 3D spectrum plane of 256^2 points is 2 MiB a sample):
+        the buffer holds at most SAMPLE_BUFFER_BYTES."""
+        rows = self.__dict__.get("_block_rows")
+        if rows is None:
+            rows = self._block_rows = max(1, min(self.block, SAMPLE_BUFFER_BYTES // max(1, self._row_bytes())))
+        return rows
 
     def add_snapshot(self, time: float, density: np.ndarray, psi: np.ndarray | None = None,
                      frame_offset=None) -> None:
