@@ -355,14 +355,9 @@ def _at_detector(ds, setup, j, k_all, w_all, points, starts=None) -> dict:
         starts[direction] = _single_start(setup, k_all, w_all, direction, points, uc)
     start_rel, worst_start, refusal = starts[direction]
     failed = [("packet.center", refusal)] if refusal is not None else []
-    back, forward = _came_back(np.asarray(ds["time"].values, float),
-                               np.asarray(ds["flux"].values, float)[:, j] * direction)
-    beyond_left = None
-    far_face = "x+" if direction > 0 else "x-"
-    if psi_end is not None and _far_layer(setup, direction) is None:
-        beyond_left = float(np.sum(np.abs(psi_end[direction * (x - x_d) > 0]) ** 2)) * setup.grid.axes[0].dx
-    comes_back = _comes_back_reason(name, back, forward, beyond_left, far_face) if forward > 0 else None
-    if comes_back is not None and max(back, beyond_left or 0.0) > PREMISE_LIMIT * forward:
+    comes_back, refused = _sent_back(ds, np.asarray(ds["flux"].values, float)[:, j] * direction, psi_end,
+                                     setup, x, x_d, direction, name)
+    if refused:
         failed.append(("absorber.faces", comes_back))
     if failed:
         raise JobError(failed[0][0], "; ".join(m for _, m in failed))
@@ -503,6 +498,24 @@ def _came_back(t, forward_flux) -> tuple[float, float]:
     back = float(np.sum([np.trapezoid(np.maximum(-j[:, i], 0.0), t) for i in range(j.shape[1])]))
     forward = float(np.sum([np.trapezoid(np.maximum(j[:, i], 0.0), t) for i in range(j.shape[1])]))
     return back, forward
+
+
+def _sent_back(ds, forward_flux, psi_end, setup, x, x_d, direction: int, name: str) -> tuple[str | None, bool]:
+    """The premise that nothing comes back across detector ``name`` (at
+    ``x_d``, the packet moving along ``direction``), one rule for one
+    surface and coupled ones: ``(reason, refused)``, the reason (None when
+    it holds, :func:`_comes_back_reason`) and whether what came back, or
+    what is beyond the detector at the end with no absorber to take it
+    (``psi_end`` (..., x): summed over any surfaces), is above
+    PREMISE_LIMIT of what passed (T(E) is then refused, not warned about).
+    ``forward_flux`` (time, ...): J oriented along the motion."""
+    back, forward = _came_back(np.asarray(ds["time"].values, float), forward_flux)
+    beyond_left = None
+    far_face = "x+" if direction > 0 else "x-"
+    if psi_end is not None and _far_layer(setup, direction) is None:
+        beyond_left = float(np.sum(np.abs(psi_end[..., direction * (x - x_d) > 0]) ** 2)) * setup.grid.axes[0].dx
+    reason = _comes_back_reason(name, back, forward, beyond_left, far_face) if forward > 0 else None
+    return reason, reason is not None and max(back, beyond_left or 0.0) > PREMISE_LIMIT * forward
 
 
 def _comes_back_reason(name, back, forward, beyond_left, far_face) -> str | None:
@@ -1126,15 +1139,9 @@ def coupled_energy_resolved(ds, setup, detector: str | None = None, points: int 
                        f"{worst_mix:.2g}); T(E) per surface needs them uncoupled there: put the detector where "
                        "the surfaces are flat and uncoupled"))
     # 3. nothing comes back across the detector (a far side without an absorber sends psi back)
-    flux = np.asarray(ds["flux"].values, float)[:, :, j] * moving
-    back, forward = _came_back(np.asarray(ds["time"].values, float), flux)
-    beyond_left = None
-    far_face = "x+" if moving > 0 else "x-"
-    if psi_end is not None and _far_layer(setup, moving) is None:
-        beyond_left = float(np.sum(np.abs(psi_end[:, moving * (x - x_d) > 0]) ** 2)) * setup.grid.axes[0].dx
-    comes_back = _comes_back_reason(name, back, forward, beyond_left, far_face) if forward > 0 else None
-    if comes_back is not None and (back > PREMISE_LIMIT * forward or
-                                   (beyond_left or 0.0) > PREMISE_LIMIT * forward):
+    comes_back, refused = _sent_back(ds, np.asarray(ds["flux"].values, float)[:, :, j] * moving, psi_end,
+                                     setup, x, x_d, moving, name)
+    if refused:
         failed.append(("absorber.faces", comes_back))
     if failed:
         raise JobError(failed[0][0], "; ".join(m for _, m in failed))
