@@ -30,7 +30,7 @@ from .errors import DiskFull, JobError, RunFailed, RunInterrupted
 from .io.checkpoint import (CheckpointCorrupt, CheckpointMismatch, CheckpointState, CheckpointStore, ResultExists,
                             result_complete)
 from .io.paths import file_kind
-from .io.record import record_checksum
+from .io.record import DPSI_UNITS_VERSION, record_checksum
 from .io.recorder import ResultWriter
 from .job import Job, job_from_dict, load_job
 from .kernels import density_of
@@ -215,7 +215,9 @@ class Simulation:
         if "detector_psi" in values:
             row["detector_psi"] = values["detector_psi"] * conv["amplitude"]
         if "detector_dpsi" in values:   # |psi|^2 dx invariant: dpsi/dx scales as length^-3/2
-            row["detector_dpsi"] = values["detector_dpsi"] * conv["amplitude"] * conv["length"]
+            # (psi in job units is psi_au L^(1/2), L the job's length unit in bohr, and d/dx_job = L d/dx_au;
+            # conv["length"] is 1/L)
+            row["detector_dpsi"] = values["detector_dpsi"] * (conv["amplitude"] / conv["length"])
         if self._driving_force() is not None:   # the field's momentum transfer and Volkov phases here
             if book.volkov is None:
                 book.volkov = VolkovIntegrals(self._driving_force(), s.mass, s.dt,
@@ -224,7 +226,7 @@ class Simulation:
         if "spectrum_psi" in values:   # 2D/3D lines or planes: psi scales as length^(-d/2), dpsi/dn one more
             amplitude = conv["amplitude"] ** s.grid.ndim
             row["spectrum_psi"] = values["spectrum_psi"] * amplitude
-            row["spectrum_dpsi"] = values["spectrum_dpsi"] * (amplitude * conv["length"])
+            row["spectrum_dpsi"] = values["spectrum_dpsi"] * (amplitude / conv["length"])
         if "screen_flux" in values:   # resolved detectors: probability per unit length^(d-1) per unit time
             row["screen_flux"] = values["screen_flux"] * (conv["flux"] * conv["length"] ** (1 - s.grid.ndim))
         if "frame_offset" in values:
@@ -533,6 +535,9 @@ class Simulation:
             "angular_momentum": int(s.grid.angular_momentum),
             "absorber": s.absorber.kind,
             "frame": s.job.table["grid"].get("frame", "lab") if s.frame is not None else None,
+            # dpsi/dx (dpsi/dn) at detectors in the job's length units; files without this attribute were
+            # written with them off by (length unit / bohr)^2 (analysis.surface_flux.dpsi_correction)
+            "dpsi_units": DPSI_UNITS_VERSION,
         }
 
 

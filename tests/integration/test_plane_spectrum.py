@@ -309,3 +309,32 @@ def test_what_comes_round_a_periodic_axis_is_said(tmp_path):
                    record={"every": 0.08, "snapshot_every": 12.0})
     assert out["detectors"][0]["total"] > 1.5
     assert any("came round the periodic x axis" in w for w in out["warnings"])
+
+
+def test_a_line_spectrum_does_not_depend_on_the_length_unit(line_run, tmp_path):
+    """The same line run recorded in nm (every length given in bohr, the
+    packet's momenta as the same values in the nm run's momentum unit):
+    its total is the bohr run's, 1 (a user trial found 0.25: dpsi/dn was
+    recorded off by (nm/bohr)^2).  Reference: the bohr run, itself checked
+    against the Gaussian's momentum density above; L = 1 nm in bohr from
+    CODATA (scipy.constants)."""
+    import scipy.constants as sc
+    length = 1e-9 / sc.physical_constants["Bohr radius"][0]
+    t = copy.deepcopy(LINE)
+    t["units"] = {"length": "nm", "energy": "hartree"}   # time atomic, momentum (1 nm in bohr) hbar/bohr
+    for a in ("x", "y"):
+        t["grid"][a].update({k: f"{t['grid'][a][k]} bohr" for k in ("min", "max")})
+    t["packet"].update({"center": [f"{X0} bohr", f"{Y0} bohr"], "width": [f"{SX} bohr", f"{SY} bohr"],
+                        "momentum": [PX / length, PY / length]})
+    for d in t["detector"]:
+        d["x"] = f"{d['x']} bohr"
+    nm_path = _run(t, tmp_path)
+    nm = spectrum(nm_path)["detectors"][0]
+    bohr = spectrum(line_run)["detectors"][0]
+    assert abs(nm["total"] - 1.0) < 1e-6
+    assert nm["total"] == pytest.approx(bohr["total"], rel=1e-8)
+    with xr.open_dataset(nm_path) as ds, xr.open_dataset(line_run) as ref:
+        assert int(ds.attrs["dpsi_units"]) == 2   # recorded in the job's units, not corrected on reading
+        scale = length ** 2   # dpsi/dn in nm^-2: psi's nm^-1 (d = 2) over one more length
+        want = ref["spectrum_dpsi_real"].values * scale
+        np.testing.assert_allclose(ds["spectrum_dpsi_real"].values, want, rtol=1e-7, atol=1e-9 * np.abs(want).max())

@@ -424,3 +424,74 @@ def test_a_bound_tail_is_not_still_to_come():
     assert to_come(bound.astype(complex)) < 1e-12
     moving = np.exp(-((x + 10.0) ** 2) / 8 + 3j * x) / (4 * math.pi) ** 0.25   # sigma 2 (|psi|^2 sd), p = 3
     assert to_come(moving) == pytest.approx(1.0, abs=1e-9)
+
+
+# the free packet's job with the length unit nm and every length given in bohr: the same physics,
+# recorded in other units (L = 1 nm in bohr, CODATA through scipy.constants)
+L_NM = 1e-9 / __import__("scipy.constants", fromlist=["physical_constants"]).physical_constants["Bohr radius"][0]
+
+
+def _free_in_nm():
+    t = copy.deepcopy(FREE)
+    t["units"] = {"length": "nm", "energy": "hartree"}   # time then atomic (hbar/hartree), as in FREE
+    t["grid"]["x"].update({"min": "-64.0 bohr", "max": "40.0 bohr"})
+    t["packet"].update({"center": "-16.0 bohr", "width": f"{SIGMA} bohr"})
+    del t["packet"]["momentum"]
+    t["packet"]["energy"] = P0 ** 2 / 2   # hartree: the same packet, its momentum given by its energy
+    t["absorber"]["thickness"] = "12.0 bohr"
+    t["detector"][0]["x"] = "10.0 bohr"
+    return t
+
+
+def test_a_spectrum_does_not_depend_on_the_length_unit(free_run, tmp_path):
+    """The same run recorded in nm: its spectrum's total, peak energy and
+    density per energy are those of the run in bohr (a user trial found the
+    nm file's total 4x too small: dpsi/dx was recorded off by (nm/bohr)^2).
+    Reference: the bohr run, itself checked against |phi(p)|^2 above."""
+    nm_path = _run(_free_in_nm(), tmp_path)
+    bohr, nm = spectrum(free_run)["detectors"][0], spectrum(nm_path)["detectors"][0]
+    assert bohr["total"] == pytest.approx(1.0, abs=1e-5)
+    assert nm["total"] == pytest.approx(bohr["total"], rel=1e-9)
+    def mean_momentum(d, unit):   # hbar/bohr; ``unit``: the result's momentum unit in hbar/bohr
+        p, rho = np.asarray(d["momentum"]) * unit, np.asarray(d["probability_density"])
+        return float(np.trapezoid(p * rho, p) / np.trapezoid(rho, p))
+    # the nm run's momentum unit is m_e nm E_h / hbar = (1 nm in bohr) hbar/bohr
+    assert mean_momentum(nm, L_NM) == pytest.approx(mean_momentum(bohr, 1.0), rel=1e-7)
+    assert mean_momentum(bohr, 1.0) == pytest.approx(P0, rel=1e-4)
+    with xr.open_dataset(nm_path) as ds:
+        assert int(ds.attrs["dpsi_units"]) == 2
+        # dpsi/dx in nm^-1.5 is the bohr run's value times (nm in bohr)^1.5
+        with xr.open_dataset(free_run) as ref:
+            np.testing.assert_allclose(ds["detector_dpsi_real"].values, ref["detector_dpsi_real"].values * L_NM**1.5,
+                                       rtol=1e-9, atol=1e-12 * L_NM**1.5)
+
+
+def test_a_file_written_before_dpsi_units_is_corrected_and_says_so(tmp_path):
+    """A result written before the ``dpsi_units`` attribute holds dpsi/dx
+    off by (length unit / bohr)^2 exactly; spectrum corrects it and says
+    so, and a resumed run rescales the rows its checkpoint kept."""
+    import netCDF4
+
+    from wavesweep.io.recorder import ResultWriter
+    good = _run(_free_in_nm(), tmp_path / "good")
+    old = tmp_path / "old.nc"
+    old.write_bytes(good.read_bytes())
+    with netCDF4.Dataset(old, "a") as nc:   # as the older writer left it
+        nc.delncattr("dpsi_units")
+        for part in ("real", "imag"):
+            nc[f"detector_dpsi_{part}"][:] = nc[f"detector_dpsi_{part}"][:] / L_NM**2
+    want, got = spectrum(good), spectrum(old)
+    assert got["detectors"][0]["total"] == pytest.approx(want["detectors"][0]["total"], rel=1e-9)
+    assert any("older wavesweep" in w and "corrected" in w for w in got["warnings"])
+    assert not any("older wavesweep" in w for w in want["warnings"])
+    # a checkpoint's copy from before: the resumed file's kept rows in the new units
+    sim = Simulation(make_job(_free_in_nm()))
+    with netCDF4.Dataset(good) as nc:
+        n_time, n_snap, expected = len(nc.dimensions["time"]), len(nc.dimensions["snapshot_time"]), \
+            np.array(nc["detector_dpsi_real"][:])
+    writer = ResultWriter.resume(tmp_path / "resumed.nc", sim._layout(), old, n_time, n_snap, attrs=sim._attrs())
+    try:
+        np.testing.assert_allclose(np.array(writer.ds["detector_dpsi_real"][:n_time]), expected, rtol=1e-12)
+        assert int(writer.ds.getncattr("dpsi_units")) == 2
+    finally:
+        writer.abort()

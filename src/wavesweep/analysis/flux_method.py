@@ -16,9 +16,10 @@ import math
 import numpy as np
 
 from ..errors import JobError
+from ..io.results import source_name
 
 __all__ = ["time_transform", "trapezoid_weights", "surface_flux_amplitude", "end_taper", "tail_decay", "cut_tail", "cut_warning",
-           "premise_warnings", "momentum_label", "alias_level", "kept_range", "refuse_if_nothing_crossed", "NothingCrossed", "CUT_WARN", "STILL_TO_COME_WARN", "BAND_FLOOR",
+           "premise_warnings", "momentum_label", "alias_level", "dpsi_correction", "kept_range", "refuse_if_nothing_crossed", "NothingCrossed", "CUT_WARN", "STILL_TO_COME_WARN", "BAND_FLOOR",
            "SPECTRUM_FLOOR", "SCATTERER_BEYOND", "VARIES",
            "TRANSFORM_BLOCK"]
 
@@ -284,3 +285,21 @@ def refuse_if_nothing_crossed(ds, j: int, name: str) -> None:
     if not gross > floor:
         raise NothingCrossed("--detector", f"nothing crossed detector {name!r} during the run (|J| integrates to "
                                            f"{gross:.1e}): no spectrum")
+
+
+def dpsi_correction(ds, uc) -> tuple[float, str | None]:
+    """``(factor, note)``: what takes a result's recorded dpsi/dx or dpsi/dn
+    (``detector_dpsi_*``, ``spectrum_dpsi_*``) to the job's length units,
+    and a note when that is not 1.  A file with the ``dpsi_units``
+    attribute (:data:`~wavesweep.io.record.DPSI_UNITS_VERSION`) holds them
+    so; one written before it (2026-12-05) multiplied by the length unit's
+    size in bohr where it should have divided, so its dpsi is off by exactly
+    (length unit / bohr)^2, which is 1 in bohr.  ``uc``: the result's units
+    (:func:`~wavesweep.io.results.result_units`)."""
+    if "dpsi_units" in ds.attrs:
+        return 1.0, None
+    factor = float(uc["length"]) ** 2
+    if factor == 1.0:
+        return 1.0, None
+    return factor, (f"{source_name(ds)} was written by an older wavesweep whose recorded dpsi/dx was off by "
+                    f"(1 {uc['length_label']} in bohr)^2 = {factor:.6g}; corrected here")

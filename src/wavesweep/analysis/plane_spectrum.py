@@ -57,7 +57,7 @@ from ..errors import JobError
 from ..io.record import layer_holding
 from ..io.results import result_units, source_name
 from .flux_method import (BAND_FLOOR, CUT_WARN, SPECTRUM_FLOOR, STILL_TO_COME_WARN, VARIES, alias_level,
-                          cut_warning, end_taper, kept_range, momentum_label, premise_warnings,
+                          cut_warning, dpsi_correction, end_taper, kept_range, momentum_label, premise_warnings,
                           refuse_if_nothing_crossed,
                           surface_flux_amplitude, trapezoid_weights)
 from .transmission import came_round_warning
@@ -171,6 +171,8 @@ def plane_spectrum(ds, setup, j: int, points: int = 201, details: bool = True) -
            "momentum_units": momentum_label(ds, uc), "energy_units": uc["energy_label"],
            "warnings": []}
     if details:
+        if line_rows.old_units_note is not None:
+            out["warnings"].append(line_rows.old_units_note)
         if cut_uncertainty > CUT_WARN:
             out["warnings"].append(cut_warning(name, cut_uncertainty))
         out["warnings"] += _warnings(ds, setup, j, uc, name, normal, x_d, side, p_t, energy, energy_density, p_n,
@@ -221,7 +223,8 @@ class _LineRows:
         self.ds, self.jj, self.t, self.y, self.mass = ds, jj, t, y, mass
         self.p_across, self.alpha_across = p_across, alpha_across
         self.scale_psi = uc["length"] ** (-d / 2)
-        self.scale_dpsi = self.scale_psi / uc["length"]
+        self.old_units, self.old_units_note = dpsi_correction(ds, uc)   # (a file written before dpsi_units)
+        self.scale_dpsi = self.scale_psi * self.old_units / uc["length"]
         self.shape = tuple(len(c) for c in y)
         self.k_rows, self.origin = _transverse_basis(y)
         self.block = max(1, self.BLOCK_VALUES // max(1, int(np.prod(self.shape))))

@@ -75,7 +75,7 @@ import numpy as np
 from ..errors import JobError
 from ..io.record import initial_beyond, layer_holding
 from .flux_method import (BAND_FLOOR, CUT_WARN, STILL_TO_COME_WARN, VARIES, NothingCrossed, alias_level,
-                          cut_warning, end_taper, kept_range, momentum_label, premise_warnings,
+                          cut_warning, dpsi_correction, end_taper, kept_range, momentum_label, premise_warnings,
                           refuse_if_nothing_crossed, surface_flux_amplitude, time_transform, trapezoid_weights)
 from .plane_spectrum import plane_spectrum
 from .transmission import came_round_warning
@@ -146,8 +146,9 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
     amp_scale = 1 / math.sqrt(uc["length"])
     psi = (np.asarray(ds["detector_psi_real"].values[:, j], float)
            + 1j * np.asarray(ds["detector_psi_imag"].values[:, j], float)) * amp_scale
+    old_units, old_units_note = dpsi_correction(ds, uc)   # (a file written before dpsi_units: see there)
     dpsi = (np.asarray(ds["detector_dpsi_real"].values[:, j], float)
-            + 1j * np.asarray(ds["detector_dpsi_imag"].values[:, j], float)) * amp_scale / uc["length"]
+            + 1j * np.asarray(ds["detector_dpsi_imag"].values[:, j], float)) * (amp_scale * old_units / uc["length"])
     field = {}
     if "field_momentum" in ds.variables:
         field = {"field_momentum": np.asarray(ds["field_momentum"].values, float) * p_unit,
@@ -221,6 +222,8 @@ def momentum_spectrum(ds, setup, j: int, points: int = 401, details: bool = True
     if not details:
         return out
     warnings = out["warnings"]
+    if old_units_note is not None:
+        warnings.append(old_units_note)
     if cut_uncertainty > CUT_WARN:
         warnings.append(cut_warning(name, cut_uncertainty))
     v_static = np.asarray(setup.static_potential, float)

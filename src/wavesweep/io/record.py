@@ -62,12 +62,20 @@ from ..errors import JobError
 from ..grid import Axis, Grid
 
 __all__ = ["RecordedRun", "RecordedDetector", "RecordedAbsorber", "RecordedLayer", "read_record", "has_record",
-           "record_checksum", "result_name", "RECORD_VERSION", "LANCZOS_MAX_POINTS", "DETECTOR_VALUES", "FINAL_DETECTOR_VALUES",
+           "record_checksum", "result_name", "RECORD_VERSION", "DPSI_UNITS_VERSION", "LANCZOS_MAX_POINTS", "DETECTOR_VALUES", "FINAL_DETECTOR_VALUES",
            "side_probability", "classical_share", "initial_beyond", "BEYOND_FLOOR", "first_arrival", "packet_side_positions", "layer_holding",
            "layer_edge"]
 
 # Bumped when the record's content changes; files without it are rebuilt (bounded).
 RECORD_VERSION = 1
+
+# The global attribute ``dpsi_units`` of a result whose recorded dpsi/dx
+# (``detector_dpsi_*``, ``spectrum_dpsi_*``) is in the job's length units,
+# psi's unit over a length.  Files written before it (2026-12-05) multiplied
+# by the length unit's size in bohr where they should have divided: their
+# dpsi is off by (length unit / bohr)^2 (exactly 1 in bohr); the spectrum
+# analysis corrects that (analysis.surface_flux.dpsi_correction).
+DPSI_UNITS_VERSION = 2
 # Global attributes read_record relies on: HDF5 checksums cover variables, not attributes, so
 # the writer adds a CRC-32 of these (record_checksum) and the reader refuses a mismatch.
 CHECKED_ATTRS = ("analysis_record", "grid_axes", "absorber_thickness", "time_dependent", "adequacy_warnings",

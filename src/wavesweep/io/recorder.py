@@ -201,9 +201,29 @@ class ResultWriter:
         self.ds = self._open("a")
         chunking = self.ds["density"].chunking()   # the copy's: an older file's frames are chunks of one
         self.frames_per_block = 1 if chunking == "contiguous" else int(chunking[0])
+        if attrs and "dpsi_units" in attrs and "dpsi_units" not in self.ds.ncattrs():
+            self._dpsi_to_job_units(n_time)
         if attrs:
             self.ds.setncatts({k: v for k, v in attrs.items() if v is not None})
         return self
+
+    def _dpsi_to_job_units(self, n_time: int) -> None:
+        """A checkpoint's copy written before the ``dpsi_units`` attribute
+        (:data:`~wavesweep.io.record.DPSI_UNITS_VERSION`): its first
+        ``n_time`` rows of dpsi times (length unit / bohr)^2, as the samples
+        the resumed run writes, so the file holds one unit throughout (in
+        blocks of rows: a spectrum plane is MiBs a sample)."""
+        ncattrs = self.ds.ncattrs()
+        factor = float(self.ds.getncattr("length_to_bohr")) ** 2 if "length_to_bohr" in ncattrs else 1.0
+        if factor == 1.0 or not n_time:
+            return
+        for name in ("detector_dpsi_real", "detector_dpsi_imag", "spectrum_dpsi_real", "spectrum_dpsi_imag"):
+            if name in self.ds.variables:
+                var = self.ds[name]
+                rows = max(1, SAMPLE_BUFFER_BYTES // max(1, 8 * int(np.prod(var.shape[1:]))))
+                for i0 in range(0, n_time, rows):
+                    i1 = min(n_time, i0 + rows)
+                    var[i0:i1] = np.asarray(var[i0:i1]) * factor
 
     def _open(self, mode: str):
         import netCDF4  # lazy: netCDF4/HDF5 load with the first result file, not with the module
