@@ -446,6 +446,20 @@ def test_many_errors_are_capped_with_a_count(tmp_path, capsys):
     assert lines[-1] == "wavesweep check: ... and 10 more errors"
 
 
+def test_a_detector_on_the_grids_edge_is_refused_without_contradicting_itself(tmp_path, capsys):
+    """x = grid.x.min is inside [min, max]: the message says the detector
+    must lie strictly between them (a user trial read '-40.0 lies outside
+    the grid [-40.0, 40.0]'); one line, exit 2."""
+    from wavesweep.cli import main
+
+    for x in (-40.0, 40.0):
+        code = main(["check", str(write_job(tmp_path, merged(TINY, {"detector": [{"name": "edge", "x": x}]})))])
+        assert code == 2
+        err = capsys.readouterr().err.splitlines()
+        assert len(err) == 1 and err[0].startswith("wavesweep check: detector.0.x: ")
+        assert "edge" in err[0] and "strictly between" in err[0] and "outside" not in err[0]
+
+
 # -- --set and [sweep] -------------------------------------------------------------
 SWEPT = merged(TINY, {"sweep": {"packet.width": [1.0, 1.1]}})
 

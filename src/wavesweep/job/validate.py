@@ -809,6 +809,10 @@ def _detectors(raw, units, extents, axes) -> list[dict]:
             if extents is not None and a in extents:
                 lo, hi, min_text, max_text = extents[a]
                 pos = units.to_atomic(t[a], "length", f"{field}.{a}")
+                if pos == lo or pos == hi:   # (on the edge: "outside [min, max]" would contradict itself)
+                    raise JobError(f"{field}.{a}", f"{t[a]!r} is on the grid's edge: a detector lies strictly "
+                                                   f"between {min_text!r} and {max_text!r} (a box's walls hold "
+                                                   "psi = 0; a periodic grid's two ends are one point); move it inside")
                 if not lo < pos < hi:
                     raise JobError(f"{field}.{a}", f"{t[a]!r} lies outside the grid [{min_text!r}, {max_text!r}]")
             out.append(t)
