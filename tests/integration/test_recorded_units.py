@@ -95,3 +95,33 @@ def test_every_variable_is_in_the_units_it_declares(table, variant, tmp_path):
     expected = {"detector_dpsi_real", "psi_real", "x_mean", "p_mean", "flux", "density", "energy"} \
         if "y" not in table["grid"] else {"spectrum_dpsi_real", "spectrum_psi_real", "screen_flux", "flux", "density"}
     assert expected <= set(checked), expected - set(checked)
+
+
+@pytest.mark.parametrize("command", ["arrivals", "transmission"])
+def test_analysis_in_nm_gives_the_atomic_runs_numbers(command, tmp_path, capsys):
+    """Times and energies are in the same units in both runs (the nm run
+    keeps hartree and atomic time), and these commands give no lengths: every
+    number of their JSON is the atomic run's (the same check, one level up,
+    that the recorded variables pass above)."""
+    import json
+
+    from wavesweep.cli import main
+    atomic_path, nm_path = _both(LINE_1D, "nm", tmp_path)
+    outputs = []
+    for path in (atomic_path, nm_path):
+        assert main([command, str(path), "--json"]) == 0
+        outputs.append(json.loads(capsys.readouterr().out))
+
+    def numbers(node, at=""):
+        if isinstance(node, dict):
+            for k, v in node.items():
+                yield from numbers(v, f"{at}.{k}")
+        elif isinstance(node, list):
+            for i, v in enumerate(node):
+                yield from numbers(v, f"{at}[{i}]")
+        elif isinstance(node, (int, float)) and not isinstance(node, bool):
+            yield at, float(node)
+    atomic, nm = dict(numbers(outputs[0])), dict(numbers(outputs[1]))
+    assert atomic.keys() == nm.keys() and len(atomic) > 5
+    for key, value in atomic.items():
+        assert nm[key] == pytest.approx(value, rel=1e-7, abs=1e-12), key
