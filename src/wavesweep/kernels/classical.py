@@ -18,6 +18,7 @@ given as arrays (axis, side +1/-1, inner edge).
 from __future__ import annotations
 
 import math
+import types
 
 import numba
 import numpy as np
@@ -182,41 +183,32 @@ def _static_reach(nd, x, p, energy, mass, v, grads, x0, dx, points, periodic, ax
     return steps
 
 
-# One compiled entry per number of axes, each calling the loop with nd a constant: the compiler then
-# unrolls the loops over the axes and keeps a trajectory's coordinates in registers (with nd read from
-# the arrays, a sharp barrier's 1010 steps took 14.8 ms; with nd constant, 2.9 ms; the same numbers).
-# The arguments are spelt out: passed on as *args the constant did not reach the loop (15.5 ms).
-@numba.njit(cache=True, nogil=True)
-def _static_reach_1d(x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
-                     layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps, max_steps,
-                     alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen, edges_reached):
-    return _static_reach(1, x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
-                         layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps,
-                         max_steps, alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen,
-                         edges_reached)
+_AXES = 0   # the number of axes of a compiled copy of _static_reach_axes (see _entry_for); never called as is
 
 
-@numba.njit(cache=True, nogil=True)
-def _static_reach_2d(x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
-                     layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps, max_steps,
-                     alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen, edges_reached):
-    return _static_reach(2, x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
-                         layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps,
-                         max_steps, alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen,
-                         edges_reached)
+def _static_reach_axes(x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
+                       layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps, max_steps,
+                       alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen, edges_reached):
+    return _static_reach(_AXES, x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max,
+                         ax_length, layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps,
+                         max_steps, alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen, edges_reached)
 
 
-@numba.njit(cache=True, nogil=True)
-def _static_reach_3d(x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
-                     layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps, max_steps,
-                     alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen, edges_reached):
-    return _static_reach(3, x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
-                         layer_axis, layer_side, layer_edge, duration, dx_min, omega, min_tau_steps,
-                         max_steps, alive, peak, f, entry, entry_step, faces_hit, lo_seen, hi_seen,
-                         edges_reached)
+def _entry_for(nd: int):
+    """:func:`_static_reach_axes` compiled with ``_AXES`` = nd, a global and
+    so a compile-time constant: the compiler then unrolls the loops over the
+    axes and keeps a trajectory's coordinates in registers (with nd read
+    from the arrays a sharp barrier's 1010 steps took 14.8 ms, with nd
+    constant 2.9 ms; the same numbers).  Each copy has a name of its own:
+    numba's disk cache is keyed by name and line (as kernels.split._twins)."""
+    fn = _static_reach_axes
+    copy = types.FunctionType(fn.__code__, {**fn.__globals__, "_AXES": nd}, f"_static_reach_{nd}d",
+                              fn.__defaults__, fn.__closure__)
+    copy.__qualname__ = f"_static_reach_{nd}d"
+    return numba.njit(cache=True, nogil=True)(copy)
 
 
-_BY_AXES = {1: _static_reach_1d, 2: _static_reach_2d, 3: _static_reach_3d}
+_BY_AXES = {nd: _entry_for(nd) for nd in (1, 2, 3)}
 
 
 def static_reach(x, p, energy, mass, v, grads, x0, dx, points, periodic, ax_min, ax_max, ax_length,
