@@ -206,6 +206,8 @@ class SplitOperator(Propagator):
                                                  for ws in per]))
                   if layers else np.zeros((3, 1, 0)))
         self._books2d = self.absorbed.reshape(nb, -1)   # a view: the kernel books into self.absorbed
+        from ..kernels.steps import strang_rows   # lazy: as the other kernels (numba); bound once, not per call
+        self._strang_rows = strang_rows
         return (half, whole, bool(whole_squared), kinetic, plans, lo, hi, offset, losses)
 
     def load(self, psi):
@@ -554,7 +556,7 @@ class SplitOperator(Propagator):
         kick, nd = self._kick_static, self.grid.ndim
         direct = self.transform.in_place() if self._radial_basis is None else None
         if self._rows is not None:   # the whole call in one compiled loop (kernels.steps)
-            from ..kernels.steps import strang_rows   # lazy: as the other kernels (numba), with the first step
+            strang_rows = self._strang_rows
             buf = direct[2]
             if psi is not buf:
                 np.copyto(buf, psi)
