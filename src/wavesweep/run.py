@@ -19,7 +19,6 @@ import math
 import os
 import sys
 import time as _time
-from decimal import Decimal
 from pathlib import Path
 
 import numpy as np
@@ -248,12 +247,7 @@ class Simulation:
         if abs(steps * s.dt - t_au) <= 1e-9 * max(abs(t_au), s.dt):
             dt, every = self.job.table["evolve"]["dt"], self.job.table["record"]["every"]
             if _plain_number(dt):
-                # decimal_multiple(steps, dt) with dt's decimal made once per run (parsing it was
-                # most of the ~5 us this took at every sample and frame)
-                dt_decimal = self.__dict__.get("_dt_decimal")
-                if dt_decimal is None:
-                    dt_decimal = self._dt_decimal = Decimal(repr(float(dt)))
-                return float(dt_decimal * int(steps))
+                return decimal_multiple(steps, dt)
             if _plain_number(every) and steps % s.sample_steps == 0:
                 return decimal_multiple(steps // s.sample_steps, every)
         return t_au / self._factor("time")

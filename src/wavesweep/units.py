@@ -675,6 +675,12 @@ def decimal_multiple(count: int, step: float) -> float:
     them, rounded once to the nearest double: 60 x 0.5 is 30.0 and
     1200 x 0.025 is 30.0 (the float product is 30.000000000000004), so a
     time coordinate written this way is found by its written value
-    (``ds.sel(time=30.0)``).  ``step`` is read as its shortest repr."""
-    return float(Decimal(repr(float(step))) * int(count))
+    (``ds.sel(time=30.0)``).  ``step`` is read as its shortest repr
+    (parsed once per value: a run asks at every sample and frame)."""
+    return float(_decimal_of(float(step)) * int(count))
+
+
+@functools.lru_cache(maxsize=256)
+def _decimal_of(step: float) -> Decimal:
+    return Decimal(repr(step))
 
