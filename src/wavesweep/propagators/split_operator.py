@@ -575,7 +575,9 @@ class SplitOperator(Propagator):
                         RENORMALISE_EVERY if self._renormalise else 0, self._kick_count, scale, expected,
                         self._norm_expected is not None, lost_since)
             if self._renormalise:
-                measured = any((self._kick_count + k) % RENORMALISE_EVERY == 0 for k in range(int(nsteps) + 1))
+                # a kick numbered count .. count + nsteps was measured: a multiple of RENORMALISE_EVERY lies there
+                first_kick, last_kick = self._kick_count, self._kick_count + int(nsteps)
+                measured = last_kick // RENORMALISE_EVERY >= -(-first_kick // RENORMALISE_EVERY)
                 self._kick_count += int(nsteps) + 1
                 self._scale, self._lost_since = scale, (lost_since if nb > 1 else float(lost_since[0]))
                 if measured:
